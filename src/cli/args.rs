@@ -1,0 +1,134 @@
+//! The command line as the user types it (clap definitions). These structs stay close to what
+//! was typed; `cli::run` turns them into the engine's validated options.
+
+use std::path::PathBuf;
+
+use clap::{Args, Parser, Subcommand};
+
+#[derive(Debug, Parser)]
+#[command(
+    name = "sluice",
+    version,
+    about = "Keeps the provenance of cleaned data: every version by content hash, every step in a lineage graph",
+    long_about = "sluice records every version of a dataset by the BLAKE3 hash of its bytes and every \
+                  transform as a step in a lineage graph, so that a cleaned value can be traced back \
+                  to the raw line it came from.\n\n\
+                  Exit codes: 0 success; 1 the data or the store failed a check (verify found damage); \
+                  2 a usage or input error.",
+    after_help = "Start with `sluice demo` to see a worked example, or `sluice init` in a project folder."
+)]
+pub struct Cli {
+    /// The store to use (a project folder or its .sluice folder); by default the nearest
+    /// .sluice folder in the working directory or a parent of it
+    #[arg(long, global = true, env = "SLUICE_STORE", value_name = "PATH")]
+    pub store: Option<PathBuf>,
+
+    /// Who is acting, as "Name <email>"; default: SLUICE_AGENT, then git's user.name and
+    /// user.email, then the operating system user
+    #[arg(long, global = true, value_name = "IDENTITY")]
+    pub agent: Option<String>,
+
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+#[derive(Debug, Subcommand)]
+pub enum Command {
+    /// Create a store (.sluice/) in a folder
+    #[command(after_help = "Example:\n  sluice init work/q3-orders")]
+    Init {
+        /// The project folder (default: the working directory)
+        dir: Option<PathBuf>,
+    },
+
+    /// Record a file as a new version of a dataset
+    #[command(
+        after_help = "Example:\n  sluice ingest exports/quillby_2026q3.csv --as quillby_orders --key order_id \\\n      --null-token NA --why \"Q3 export from the Quillby till\""
+    )]
+    Ingest(IngestArgs),
+
+    /// Write a version's exact bytes to standard output or a file
+    #[command(
+        after_help = "Examples:\n  sluice cat quillby_orders@1 > q3-as-received.csv\n  sluice cat 5f3a9c -o q3.csv"
+    )]
+    Cat {
+        /// The version: NAME (latest), NAME@N (N-th version) or a hash prefix (6+ hex digits)
+        reference: String,
+        /// Write to this file instead of standard output
+        #[arg(short = 'o', long = "output", value_name = "FILE")]
+        output: Option<PathBuf>,
+    },
+
+    /// List the steps of the store or of one dataset, newest first
+    #[command(after_help = "Example:\n  sluice log quillby_orders --json")]
+    Log {
+        /// Only steps that read or produced versions of this dataset
+        dataset: Option<String>,
+        /// Print JSON (structure in README.md, "JSON output")
+        #[arg(long)]
+        json: bool,
+    },
+
+    /// Show one version: hash, size, dialect, columns, profile and the step that made it
+    #[command(after_help = "Example:\n  sluice show quillby_orders@1")]
+    Show {
+        /// The version: NAME (latest), NAME@N (N-th version) or a hash prefix (6+ hex digits)
+        reference: String,
+        /// Print JSON (structure in README.md, "JSON output")
+        #[arg(long)]
+        json: bool,
+    },
+
+    /// Re-hash every object, check every reference and the audit chain
+    #[command(
+        after_help = "Example:\n  sluice verify\n\nExit code 0 when the store is intact, 1 with the list of what is wrong otherwise."
+    )]
+    Verify {
+        /// Print JSON (structure in README.md, "JSON output")
+        #[arg(long)]
+        json: bool,
+    },
+
+    /// Create a store with an invented example (three bicycle repair shops) and take it in
+    #[command(after_help = "Example:\n  sluice demo\n  sluice demo /tmp/try-sluice")]
+    Demo {
+        /// Where to create it (default: a new folder sluice-demo… in the working directory)
+        dir: Option<PathBuf>,
+    },
+}
+
+#[derive(Debug, Args)]
+pub struct IngestArgs {
+    /// The file to take in (delimited text: comma, semicolon, tab or pipe)
+    pub file: PathBuf,
+
+    /// The dataset this file is a version of (created if new)
+    #[arg(long = "as", value_name = "NAME")]
+    pub dataset: String,
+
+    /// Declare key columns that identify each row, comma-separated; they must be unique and
+    /// never blank
+    #[arg(long, value_name = "COL[,COL..]", value_delimiter = ',')]
+    pub key: Option<Vec<String>>,
+
+    /// Why this version is being recorded (kept with the step)
+    #[arg(long, value_name = "TEXT")]
+    pub why: Option<String>,
+
+    /// The field delimiter, if detection should not decide: one character, or "tab"
+    #[arg(long, value_name = "C")]
+    pub delimiter: Option<String>,
+
+    /// The first line is data, not a header; columns are named col1, col2, ...
+    #[arg(long)]
+    pub no_header: bool,
+
+    /// The text encoding, for files not in UTF-8 (a WHATWG label: windows-1252, iso-8859-15,
+    /// shift_jis, utf-16le, ...)
+    #[arg(long, value_name = "NAME")]
+    pub encoding: Option<String>,
+
+    /// A value that means "missing" (counted as blank in the profile); repeat for several
+    #[arg(long = "null-token", value_name = "T")]
+    pub null_tokens: Vec<String>,
+}

@@ -1,0 +1,191 @@
+//! The command line: argument definitions ([`args`]), turning them into engine calls (this
+//! file), and rendering results as text or JSON ([`render`]). This is the only place that
+//! prints, reads the environment or picks exit codes.
+
+pub mod args;
+pub mod render;
+
+use std::io::Write;
+use std::path::{Path, PathBuf};
+
+use anyhow::{anyhow, Context};
+
+use args::{Cli, Command, IngestArgs};
+use sluice::intake::{self, IngestOptions, IngestOutcome};
+use sluice::model::Agent;
+use sluice::store::Store;
+use sluice::{agent, demo, history, refs, verify};
+
+/// What a command asks the process to exit with.
+pub type ExitCode = i32;
+
+fn cwd() -> anyhow::Result<PathBuf> {
+    std::env::current_dir().context("cannot read the working directory")
+}
+
+fn resolve_agent(cli: &Cli, cwd: &Path) -> Agent {
+    let env_agent = std::env::var("SLUICE_AGENT").ok();
+    let os_user = ["USER", "LOGNAME", "USERNAME"]
+        .iter()
+        .find_map(|k| std::env::var(k).ok().filter(|v| !v.is_empty()));
+    agent::resolve(
+        cli.agent.as_deref(),
+        env_agent.as_deref(),
+        os_user.as_deref(),
+        cwd,
+    )
+}
+
+fn open_store(cli: &Cli, cwd: &Path) -> anyhow::Result<Store> {
+    Ok(Store::discover(cli.store.as_deref(), cwd)?)
+}
+
+/// Runs a parsed command line; returns the exit code.
+pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
+    let cwd = cwd()?;
+    let stdout = std::io::stdout();
+    let mut out = stdout.lock();
+    match &cli.command {
+        Command::Init { dir } => {
+            let project = dir.clone().unwrap_or_else(|| cwd.clone());
+            let agent = resolve_agent(&cli, &cwd);
+            let store = Store::init_recorded(&project, &agent)?;
+            writeln!(out, "created a store in {}", store.dir().display())?;
+            writeln!(
+                out,
+                "next: take a file in with `sluice ingest FILE --as NAME --why \"...\"`"
+            )?;
+            Ok(0)
+        }
+        Command::Ingest(a) => {
+            let mut store = open_store(&cli, &cwd)?;
+            let opts = ingest_options(a, resolve_agent(&cli, &cwd))?;
+            let outcome = intake::ingest(&mut store, &a.file, &opts)?;
+            render::ingest_outcome(&mut out, &a.file, &outcome)?;
+            if let IngestOutcome::Recorded { warnings, .. } = &outcome {
+                for w in warnings {
+                    eprintln!("warning: {w}");
+                }
+            }
+            Ok(0)
+        }
+        Command::Cat { reference, output } => {
+            let store = open_store(&cli, &cwd)?;
+            let version = refs::resolve(&store.lineage, reference)?;
+            let hash = version.hash.parse().map_err(|e| {
+                anyhow!(
+                    "the store holds a malformed hash for {}: {e}",
+                    version.label()
+                )
+            })?;
+            match output {
+                None => {
+                    store.objects.copy_to(&hash, &mut out)?;
+                    out.flush()?;
+                }
+                Some(path) => write_file_atomically(path, |f| {
+                    store.objects.copy_to(&hash, f)?;
+                    Ok(())
+                })?,
+            }
+            Ok(0)
+        }
+        Command::Log { dataset, json } => {
+            let store = open_store(&cli, &cwd)?;
+            let entries = history::log(&store, dataset.as_deref())?;
+            if *json {
+                render::json(&mut out, &entries)?;
+            } else {
+                render::log(&mut out, &entries)?;
+            }
+            Ok(0)
+        }
+        Command::Show { reference, json } => {
+            let store = open_store(&cli, &cwd)?;
+            let detail = history::show(&store, reference)?;
+            if *json {
+                render::json(&mut out, &detail)?;
+            } else {
+                render::show(&mut out, &detail)?;
+            }
+            Ok(0)
+        }
+        Command::Verify { json } => {
+            let store = open_store(&cli, &cwd)?;
+            let report = verify::verify(&store)?;
+            if *json {
+                render::json(&mut out, &report)?;
+            } else {
+                render::verify(&mut out, &report)?;
+            }
+            Ok(if report.intact { 0 } else { 1 })
+        }
+        Command::Demo { dir } => {
+            let agent = resolve_agent(&cli, &cwd);
+            let target = match dir {
+                Some(d) => d.clone(),
+                None => demo::fresh_folder(&cwd),
+            };
+            let report = demo::run(&target, &agent)?;
+            render::demo(&mut out, &report)?;
+            Ok(0)
+        }
+    }
+}
+
+fn parse_delimiter(s: &str) -> anyhow::Result<u8> {
+    let b = match s {
+        "tab" | "\\t" | "\t" => b'\t',
+        _ if s.len() == 1 => s.as_bytes()[0],
+        _ => {
+            return Err(anyhow!(
+                "--delimiter takes one ASCII character (e.g. ';') or \"tab\", not \"{s}\""
+            ))
+        }
+    };
+    if !b.is_ascii() || b == b'"' || b == b'\n' || b == b'\r' {
+        return Err(anyhow!(
+            "--delimiter cannot be a quote, a line break or a non-ASCII character"
+        ));
+    }
+    Ok(b)
+}
+
+fn ingest_options(a: &IngestArgs, agent: Agent) -> anyhow::Result<IngestOptions> {
+    Ok(IngestOptions {
+        dataset: a.dataset.clone(),
+        key: a.key.clone(),
+        reason: a.why.clone(),
+        delimiter: a.delimiter.as_deref().map(parse_delimiter).transpose()?,
+        has_header: !a.no_header,
+        encoding: a.encoding.clone(),
+        null_tokens: a.null_tokens.clone(),
+        agent,
+    })
+}
+
+/// Writes through a temporary file beside `path` and renames it into place only when `fill`
+/// succeeds, so a failed `cat -o` never leaves a partial file under the requested name.
+fn write_file_atomically(
+    path: &Path,
+    fill: impl FnOnce(&mut std::fs::File) -> anyhow::Result<()>,
+) -> anyhow::Result<()> {
+    let dir = path
+        .parent()
+        .filter(|p| !p.as_os_str().is_empty())
+        .unwrap_or(Path::new("."));
+    let name = path
+        .file_name()
+        .ok_or_else(|| anyhow!("{}: not a file name", path.display()))?;
+    let tmp = dir.join(format!(".{}.sluice-part", name.to_string_lossy()));
+    let mut f =
+        std::fs::File::create(&tmp).with_context(|| format!("cannot create {}", tmp.display()))?;
+    let result = fill(&mut f).and_then(|_| f.sync_all().map_err(Into::into));
+    drop(f);
+    if let Err(e) = result {
+        let _ = std::fs::remove_file(&tmp);
+        return Err(e);
+    }
+    std::fs::rename(&tmp, path).with_context(|| format!("cannot write {}", path.display()))?;
+    Ok(())
+}

@@ -1,0 +1,328 @@
+//! Rendering engine results for people (aligned text) and machines (`--json`, pretty-printed,
+//! the structures documented in README.md).
+
+use std::io::{self, Write};
+use std::path::Path;
+
+use serde::Serialize;
+
+use sluice::demo::DemoReport;
+use sluice::history::{LogEntry, VersionDetail};
+use sluice::intake::IngestOutcome;
+use sluice::model::{Step, Version};
+use sluice::verify::VerifyReport;
+
+pub fn json<T: Serialize>(out: &mut impl Write, value: &T) -> io::Result<()> {
+    serde_json::to_writer_pretty(&mut *out, value).map_err(io::Error::other)?;
+    writeln!(out)
+}
+
+/// 1234567 -> "1,234,567".
+pub fn count(n: u64) -> String {
+    let s = n.to_string();
+    let mut out = String::with_capacity(s.len() + s.len() / 3);
+    for (i, c) in s.chars().enumerate() {
+        if i > 0 && (s.len() - i) % 3 == 0 {
+            out.push(',');
+        }
+        out.push(c);
+    }
+    out
+}
+
+fn plural(n: u64, one: &str, many: &str) -> String {
+    format!("{} {}", count(n), if n == 1 { one } else { many })
+}
+
+fn shape(v: &Version) -> String {
+    format!(
+        "{} × {}",
+        plural(v.n_rows, "row", "rows"),
+        plural(v.n_cols, "column", "columns")
+    )
+}
+
+pub fn ingest_outcome(out: &mut impl Write, file: &Path, o: &IngestOutcome) -> io::Result<()> {
+    match o {
+        IngestOutcome::Recorded { version, .. } => {
+            writeln!(
+                out,
+                "recorded {} ({}): {}, {}",
+                version.label(),
+                &version.hash[..12],
+                shape(version),
+                plural(version.n_bytes, "byte", "bytes")
+            )?;
+            writeln!(out, "next: `sluice show {}`", version.label())
+        }
+        IngestOutcome::Unchanged { version } => writeln!(
+            out,
+            "unchanged: {} has the same bytes as {} ({}); nothing recorded",
+            file.display(),
+            version.label(),
+            &version.hash[..12]
+        ),
+    }
+}
+
+fn step_line(s: &Step) -> String {
+    let what = match &s.operation {
+        Some(op) => format!("{} {op}", s.kind.as_str()),
+        None => s.kind.as_str().to_string(),
+    };
+    format!("step {} · {what} · {} · {}", s.id, s.ended_at, s.agent)
+}
+
+pub fn log(out: &mut impl Write, entries: &[LogEntry]) -> io::Result<()> {
+    if entries.is_empty() {
+        return writeln!(
+            out,
+            "no steps yet; take a file in with `sluice ingest FILE --as NAME`"
+        );
+    }
+    for (i, e) in entries.iter().enumerate() {
+        if i > 0 {
+            writeln!(out)?;
+        }
+        writeln!(out, "{}", step_line(&e.step))?;
+        if let Some(why) = &e.step.reason {
+            writeln!(out, "  why   {why}")?;
+        }
+        if !e.step.inputs.is_empty() {
+            writeln!(out, "  read  {}", e.step.inputs.join(", "))?;
+        }
+        if let Some(src) = &e.step.source {
+            writeln!(out, "  from  {}", src.path)?;
+        }
+        for v in &e.produced {
+            writeln!(
+                out,
+                "  made  {}  {}  {}",
+                v.label(),
+                &v.hash[..12],
+                shape(v)
+            )?;
+        }
+    }
+    Ok(())
+}
+
+pub fn show(out: &mut impl Write, d: &VersionDetail) -> io::Result<()> {
+    let v = &d.version;
+    writeln!(
+        out,
+        "{}{}",
+        v.label(),
+        if d.is_latest { "  (latest)" } else { "" }
+    )?;
+    writeln!(out, "  hash         {}", v.hash)?;
+    writeln!(out, "  size         {}", plural(v.n_bytes, "byte", "bytes"))?;
+    writeln!(out, "  shape        {}", shape(v))?;
+    let dl = &v.dialect;
+    let delim = match dl.delimiter.as_str() {
+        "\t" => "tab".to_string(),
+        d => format!("\"{d}\""),
+    };
+    writeln!(
+        out,
+        "  dialect      delimiter {delim}{}, line ending {}, {}{}, {}",
+        if dl.delimiter_detected {
+            " (detected)"
+        } else {
+            ""
+        },
+        dl.line_ending,
+        dl.encoding,
+        if dl.bom { " with BOM" } else { "" },
+        if dl.has_header {
+            "header line"
+        } else {
+            "no header line"
+        }
+    )?;
+    if let Some(k) = &d.key {
+        writeln!(out, "  key          {}", k.join(", "))?;
+    }
+    if !v.null_tokens.is_empty() {
+        writeln!(out, "  null tokens  {}", v.null_tokens.join(", "))?;
+    }
+    if let Some(s) = &d.step {
+        writeln!(out, "  made by      {}", step_line(s))?;
+        if let Some(why) = &s.reason {
+            writeln!(out, "  why          {why}")?;
+        }
+        if let Some(src) = &s.source {
+            writeln!(
+                out,
+                "  source       {} ({}, modified {})",
+                src.absolute_path,
+                plural(src.n_bytes, "byte", "bytes"),
+                src.modified.as_deref().unwrap_or("unknown")
+            )?;
+        }
+    }
+    writeln!(out, "  row index    {}", v.row_index)?;
+    writeln!(out)?;
+    let mut rows = vec![[
+        "column".to_string(),
+        "type".to_string(),
+        "blank".to_string(),
+        "distinct".to_string(),
+        "min".to_string(),
+        "max".to_string(),
+        "length".to_string(),
+    ]];
+    for p in &d.profile {
+        let clip = |s: &Option<String>| {
+            let s = s.clone().unwrap_or_else(|| "-".into());
+            let s = if s.chars().count() > 24 {
+                format!("{}…", s.chars().take(23).collect::<String>())
+            } else {
+                s
+            };
+            // Make stray white space at either end visible.
+            if s.starts_with(char::is_whitespace) || s.ends_with(char::is_whitespace) {
+                format!("\"{s}\"")
+            } else {
+                s
+            }
+        };
+        rows.push([
+            p.name.clone(),
+            p.inferred_type.clone(),
+            count(p.n_blank),
+            format!(
+                "{}{}",
+                if p.distinct_exact { "" } else { "~" },
+                count(p.n_distinct)
+            ),
+            clip(&p.min),
+            clip(&p.max),
+            match (p.min_len, p.max_len) {
+                (Some(a), Some(b)) if a == b => a.to_string(),
+                (Some(a), Some(b)) => format!("{a}-{b}"),
+                _ => "-".into(),
+            },
+        ]);
+    }
+    table(out, &rows, &[false, false, true, true, false, false, true])
+}
+
+fn table<const N: usize>(
+    out: &mut impl Write,
+    rows: &[[String; N]],
+    right: &[bool; N],
+) -> io::Result<()> {
+    let mut w = [0usize; N];
+    for r in rows {
+        for (i, c) in r.iter().enumerate() {
+            w[i] = w[i].max(c.chars().count());
+        }
+    }
+    for r in rows {
+        let mut line = String::from("  ");
+        for (i, c) in r.iter().enumerate() {
+            let pad = w[i] - c.chars().count();
+            if right[i] {
+                line.push_str(&" ".repeat(pad));
+                line.push_str(c);
+            } else {
+                line.push_str(c);
+                if i + 1 < N {
+                    line.push_str(&" ".repeat(pad));
+                }
+            }
+            if i + 1 < N {
+                line.push_str("  ");
+            }
+        }
+        writeln!(out, "{}", line.trim_end())?;
+    }
+    Ok(())
+}
+
+pub fn verify(out: &mut impl Write, r: &VerifyReport) -> io::Result<()> {
+    if r.intact {
+        writeln!(
+            out,
+            "intact: {} re-hashed ({}), {} checked, audit chain of {} verified; database structure and references sound",
+            plural(r.objects_checked, "object", "objects"),
+            plural(r.bytes_checked, "byte", "bytes"),
+            plural(r.versions_checked, "version", "versions"),
+            plural(r.audit_entries_checked, "entry", "entries"),
+        )?;
+    } else {
+        writeln!(
+            out,
+            "damaged: {} found ({} objects, {} versions, {} audit entries examined)",
+            plural(r.problems.len() as u64, "problem", "problems"),
+            count(r.objects_checked),
+            count(r.versions_checked),
+            count(r.audit_entries_checked),
+        )?;
+        for p in &r.problems {
+            writeln!(out, "  {}  {}: {}", p.kind, p.subject, p.detail)?;
+        }
+    }
+    if r.unreferenced_objects > 0 || r.leftover_temp_files > 0 {
+        writeln!(
+            out,
+            "note: {} and {} left by interrupted commands (harmless)",
+            plural(
+                r.unreferenced_objects,
+                "unreferenced object",
+                "unreferenced objects"
+            ),
+            plural(r.leftover_temp_files, "temporary file", "temporary files"),
+        )?;
+    }
+    Ok(())
+}
+
+pub fn demo(out: &mut impl Write, r: &DemoReport) -> io::Result<()> {
+    writeln!(out, "demo store created in {}", r.dir.display())?;
+    writeln!(out, "{}", r.scenario)?;
+    writeln!(out)?;
+    for (file, outcome) in &r.ingested {
+        write!(out, "  {}: ", file.display())?;
+        ingest_outcome_short(out, outcome)?;
+    }
+    writeln!(out)?;
+    writeln!(out, "try next:")?;
+    for c in &r.next_commands {
+        writeln!(out, "  {c}")?;
+    }
+    Ok(())
+}
+
+fn ingest_outcome_short(out: &mut impl Write, o: &IngestOutcome) -> io::Result<()> {
+    match o {
+        IngestOutcome::Recorded { version, .. } => writeln!(
+            out,
+            "recorded {} ({}), {}, delimiter \"{}\", {}",
+            version.label(),
+            &version.hash[..12],
+            shape(version),
+            if version.dialect.delimiter == "\t" {
+                "tab"
+            } else {
+                &version.dialect.delimiter
+            },
+            version.dialect.line_ending
+        ),
+        IngestOutcome::Unchanged { version } => {
+            writeln!(out, "unchanged ({})", version.label())
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    #[test]
+    fn thousands() {
+        assert_eq!(super::count(0), "0");
+        assert_eq!(super::count(999), "999");
+        assert_eq!(super::count(1000), "1,000");
+        assert_eq!(super::count(1234567), "1,234,567");
+    }
+}

@@ -1,0 +1,306 @@
+//! The engine's error type: a small box around a kind enum, so that `Result<T>` stays one
+//! pointer wide on the happy path, with accessors for callers that branch on what went wrong.
+//!
+//! Input errors carry a [`Position`] (byte offset 0-based, line 1-based, record 0-based, column
+//! 1-based on screen). Messages are lowercase, name the thing, and where there is an obvious next
+//! step they say which command to try.
+
+use std::fmt;
+use std::path::{Path, PathBuf};
+
+/// A position inside an input file. `byte` is 0-based; `line` is 1-based; `record` is the
+/// 0-based index of the record in the file (the header, when present, is record 0), when the
+/// problem was found inside a record; `column` is the 1-based field number when the problem is
+/// inside one field.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+pub struct Position {
+    pub byte: u64,
+    pub line: u64,
+    pub record: Option<u64>,
+    pub column: Option<u64>,
+}
+
+impl fmt::Display for Position {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self.record {
+            Some(r) => write!(f, "record {r} (line {}, byte {}", self.line, self.byte)?,
+            None => write!(f, "line {} (byte {}", self.line, self.byte)?,
+        }
+        if let Some(c) = self.column {
+            write!(f, ", field {c}")?;
+        }
+        write!(f, ")")
+    }
+}
+
+/// What is wrong with an input file. Each variant renders as one clear sentence.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum InputProblem {
+    Empty,
+    NoHeader,
+    RaggedRow {
+        expected: u64,
+        found: u64,
+    },
+    InvalidUtf8,
+    InvalidForEncoding {
+        encoding: String,
+    },
+    NulByte,
+    UnterminatedQuote,
+    BlankHeaderNames {
+        columns: Vec<u64>,
+    },
+    DuplicateHeaderNames {
+        names: Vec<String>,
+    },
+    UnknownKeyColumns {
+        missing: Vec<String>,
+        available: Vec<String>,
+    },
+    BlankKey {
+        column: String,
+    },
+    DuplicateKeys {
+        examples: Vec<(String, Vec<u64>)>,
+        total: u64,
+    },
+    ChangedWhileReading,
+}
+
+impl fmt::Display for InputProblem {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        use InputProblem::*;
+        match self {
+            Empty => write!(f, "the file is empty (0 bytes); expected at least a header line"),
+            NoHeader => write!(
+                f,
+                "the file holds no record (only blank lines); expected at least a header line"
+            ),
+            RaggedRow { expected, found } => write!(
+                f,
+                "expected {expected} fields, found {found}; every record needs as many fields as the header \
+                 (check for an unquoted delimiter inside a value, or pass --delimiter if the detected one is wrong)"
+            ),
+            InvalidUtf8 => write!(
+                f,
+                "invalid UTF-8; if the file was saved in a legacy encoding, pass it, e.g. --encoding windows-1252"
+            ),
+            InvalidForEncoding { encoding } => write!(
+                f,
+                "a byte sequence that is not valid {encoding}; check which encoding the file was saved in"
+            ),
+            NulByte => write!(
+                f,
+                "a NUL byte (0x00); this looks like a binary file or UTF-16 text, not CSV \
+                 (for UTF-16 pass --encoding utf-16le or utf-16be)"
+            ),
+            UnterminatedQuote => write!(
+                f,
+                "a quoted field is never closed before the end of the file; add the closing \" or escape the inner quote as \"\""
+            ),
+            BlankHeaderNames { columns } => write!(
+                f,
+                "blank header name in column{} {}; every column needs a name (pass --no-header if the file has no header line)",
+                if columns.len() == 1 { "" } else { "s" },
+                join_u64(columns)
+            ),
+            DuplicateHeaderNames { names } => write!(
+                f,
+                "duplicate header name{} {}; column names must be unique",
+                if names.len() == 1 { "" } else { "s" },
+                names.iter().map(|n| format!("\"{n}\"")).collect::<Vec<_>>().join(", ")
+            ),
+            UnknownKeyColumns { missing, available } => write!(
+                f,
+                "key column{} {} not in the header; the columns are: {}",
+                if missing.len() == 1 { "" } else { "s" },
+                missing.iter().map(|n| format!("\"{n}\"")).collect::<Vec<_>>().join(", "),
+                available.join(", ")
+            ),
+            BlankKey { column } => write!(
+                f,
+                "blank value in key column \"{column}\"; a key must identify every row"
+            ),
+            DuplicateKeys { examples, total } => {
+                write!(f, "{total} key value{} occur more than once: ", if *total == 1 { "" } else { "s" })?;
+                let shown: Vec<String> = examples
+                    .iter()
+                    .map(|(k, rows)| format!("{k} (data rows {})", join_u64(rows)))
+                    .collect();
+                write!(f, "{}", shown.join("; "))?;
+                if (*total as usize) > examples.len() {
+                    write!(f, "; and {} more", *total as usize - examples.len())?;
+                }
+                write!(f, "; choose a key that is unique, or ingest without --key")
+            }
+            ChangedWhileReading => write!(
+                f,
+                "the file changed while it was being read; take it in again once whatever writes it has finished"
+            ),
+        }
+    }
+}
+
+fn join_u64(v: &[u64]) -> String {
+    v.iter()
+        .map(|n| n.to_string())
+        .collect::<Vec<_>>()
+        .join(", ")
+}
+
+/// The kinds of error the engine reports.
+#[derive(Debug, thiserror::Error)]
+pub enum ErrorKind {
+    #[error("{path}: {problem}", path = path.display())]
+    Input {
+        path: PathBuf,
+        position: Option<Position>,
+        problem: InputProblem,
+    },
+    #[error("{}", render_io(path, source))]
+    Io {
+        path: PathBuf,
+        #[source]
+        source: std::io::Error,
+    },
+    #[error("{path}: is a directory, not a file; name a file to take in", path = path.display())]
+    IsDirectory { path: PathBuf },
+    #[error("no store here or in any parent folder of {start}; create one with `sluice init`, or point at one with --store PATH or SLUICE_STORE", start = start.display())]
+    NoStore { start: PathBuf },
+    #[error("{path}: a store already exists here; use it as it is, or pick another folder", path = path.display())]
+    StoreExists { path: PathBuf },
+    #[error("{path}: this store was written by a newer sluice (schema version {found}; this build knows up to {known}); upgrade sluice to use it", path = path.display())]
+    SchemaTooNew {
+        path: PathBuf,
+        found: i64,
+        known: i64,
+    },
+    #[error("{path}: the lineage database cannot be read ({detail}); run `sluice verify` for details, and restore .sluice/lineage.db from a backup if it is damaged", path = path.display())]
+    CorruptDatabase { path: PathBuf, detail: String },
+    #[error("lineage database: {0}")]
+    Database(String),
+    #[error("unknown version \"{reference}\"; {hint}")]
+    UnknownRef { reference: String, hint: String },
+    #[error("version reference \"{reference}\" is ambiguous; it matches {}; use more hex digits", candidates.join(", "))]
+    AmbiguousRef {
+        reference: String,
+        candidates: Vec<String>,
+    },
+    #[error("invalid version reference \"{reference}\": {why}")]
+    BadRef { reference: String, why: String },
+    #[error("object {hash} is damaged: its content hashes to {actual}; run `sluice verify` to list every damaged object")]
+    ObjectCorrupt { hash: String, actual: String },
+    #[error(
+        "object {hash} is missing from the store; run `sluice verify` to list every missing object"
+    )]
+    ObjectMissing { hash: String },
+    #[error("{0}")]
+    Usage(String),
+}
+
+fn render_io(path: &Path, source: &std::io::Error) -> String {
+    use std::io::ErrorKind as K;
+    let p = path.display();
+    match source.kind() {
+        K::NotFound => format!("{p}: no such file or folder; check the path"),
+        K::PermissionDenied => {
+            format!("{p}: permission denied; check the file's owner and mode (ls -l)")
+        }
+        K::StorageFull => format!(
+            "{p}: no space left on the device; free some space and run the command again (the store is unchanged)"
+        ),
+        _ => format!("{p}: {}", lower_first(&source.to_string())),
+    }
+}
+
+fn lower_first(s: &str) -> String {
+    let mut c = s.chars();
+    match c.next() {
+        Some(f) => f.to_lowercase().collect::<String>() + c.as_str(),
+        None => String::new(),
+    }
+}
+
+/// The engine's error: one box around an [`ErrorKind`].
+#[derive(Debug)]
+pub struct Error(Box<ErrorKind>);
+
+pub type Result<T, E = Error> = std::result::Result<T, E>;
+
+impl Error {
+    pub fn kind(&self) -> &ErrorKind {
+        &self.0
+    }
+
+    pub fn into_kind(self) -> ErrorKind {
+        *self.0
+    }
+
+    /// The position inside an input file, for input errors that have one.
+    pub fn position(&self) -> Option<&Position> {
+        match &*self.0 {
+            ErrorKind::Input { position, .. } => position.as_ref(),
+            _ => None,
+        }
+    }
+
+    pub fn input(path: &Path, position: Option<Position>, problem: InputProblem) -> Self {
+        ErrorKind::Input {
+            path: path.to_path_buf(),
+            position,
+            problem,
+        }
+        .into()
+    }
+
+    pub fn io(path: &Path, source: std::io::Error) -> Self {
+        ErrorKind::Io {
+            path: path.to_path_buf(),
+            source,
+        }
+        .into()
+    }
+
+    pub fn usage(msg: impl Into<String>) -> Self {
+        ErrorKind::Usage(msg.into()).into()
+    }
+
+    /// The process exit code this error maps to: 1 when the data or the store is at fault
+    /// (damage found), 2 for usage and input errors.
+    pub fn exit_code(&self) -> i32 {
+        match &*self.0 {
+            ErrorKind::ObjectCorrupt { .. }
+            | ErrorKind::ObjectMissing { .. }
+            | ErrorKind::CorruptDatabase { .. } => 1,
+            _ => 2,
+        }
+    }
+}
+
+impl fmt::Display for Error {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match &*self.0 {
+            // Input errors put the position between the file and the problem, the way people
+            // read them: "orders.csv: record 3 (line 4, byte 57): expected 8 fields, found 7".
+            ErrorKind::Input {
+                path,
+                position: Some(p),
+                problem,
+            } => write!(f, "{}: {p}: {problem}", path.display()),
+            k => k.fmt(f),
+        }
+    }
+}
+
+impl std::error::Error for Error {
+    fn source(&self) -> Option<&(dyn std::error::Error + 'static)> {
+        std::error::Error::source(&*self.0)
+    }
+}
+
+impl From<ErrorKind> for Error {
+    fn from(k: ErrorKind) -> Self {
+        Error(Box::new(k))
+    }
+}

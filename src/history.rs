@@ -1,0 +1,63 @@
+//! Looking at history: the steps of a store or of one dataset, newest first (`log`), and one
+//! version in full (`show`). Read-only queries that return plain data; rendering is the command
+//! line's job.
+
+use serde::Serialize;
+
+use crate::error::Result;
+use crate::model::{ColumnProfile, Step, Version};
+use crate::refs;
+use crate::store::Store;
+
+/// One entry of `sluice log`: a step and the versions it produced.
+#[derive(Debug, Clone, Serialize)]
+pub struct LogEntry {
+    pub step: Step,
+    pub produced: Vec<Version>,
+}
+
+/// The steps touching `dataset` (all steps when `None`), newest first.
+pub fn log(store: &Store, dataset: Option<&str>) -> Result<Vec<LogEntry>> {
+    if let Some(name) = dataset {
+        if store.lineage.dataset(name)?.is_none() {
+            // Reuse the reference resolver's message, which lists the datasets.
+            refs::resolve(&store.lineage, name)?;
+        }
+    }
+    let steps = store.lineage.steps(dataset)?;
+    let mut out = Vec::with_capacity(steps.len());
+    for step in steps {
+        let mut produced = Vec::new();
+        for label in &step.outputs {
+            produced.push(refs::resolve(&store.lineage, label)?);
+        }
+        out.push(LogEntry { step, produced });
+    }
+    Ok(out)
+}
+
+/// Everything about one version.
+#[derive(Debug, Clone, Serialize)]
+pub struct VersionDetail {
+    pub version: Version,
+    /// The dataset's declared key, if any.
+    pub key: Option<Vec<String>>,
+    pub is_latest: bool,
+    pub profile: Vec<ColumnProfile>,
+    pub step: Option<Step>,
+}
+
+pub fn show(store: &Store, reference: &str) -> Result<VersionDetail> {
+    let version = refs::resolve(&store.lineage, reference)?;
+    let profile = store.lineage.profiles(version.id)?;
+    let step = store.lineage.step(version.step_id)?;
+    let ds = store.lineage.dataset(&version.dataset)?;
+    let latest = store.lineage.latest_version(&version.dataset)?;
+    Ok(VersionDetail {
+        is_latest: latest.is_some_and(|l| l.id == version.id),
+        key: ds.and_then(|d| d.key),
+        version,
+        profile,
+        step,
+    })
+}

@@ -1,0 +1,705 @@
+//! Intake: recording an outside file as a new version of a dataset.
+//!
+//! One pass over the file, in two threads. The reading thread reads 1 MiB pieces, checks them
+//! (UTF-8, NUL bytes), hashes them and writes them to a temporary object; the calling thread
+//! parses the same pieces into records, checks them (header, field counts, keys), profiles the
+//! columns and writes the row index. Memory stays bounded by a few pieces in flight plus the
+//! profile (see `table::profile`), whatever the size of the file; only `--key` keeps 16 bytes per
+//! row, to find duplicate keys.
+//!
+//! Nothing is referenced until everything has been checked: the objects are made durable, then
+//! one transaction records the step, the version, its profile and the audit entry. A failure at
+//! any point before that commit leaves the store as it was.
+
+use std::collections::{BTreeMap, HashSet};
+use std::fs::{self, File};
+use std::io::Read;
+use std::path::{Path, PathBuf};
+use std::sync::mpsc;
+
+use serde_json::json;
+use xxhash_rust::xxh3::Xxh3;
+
+use crate::clock;
+use crate::error::{Error, ErrorKind, InputProblem, Position, Result};
+use crate::hash::STREAM_BUF;
+use crate::model::{Agent, ColumnProfile, Dialect, LineageKind, SourceFile, StepKind, Version};
+use crate::store::objects::ObjectWriter;
+use crate::store::{NewStep, NewVersion, Store};
+use crate::table::profile::{number_shape, Profiler};
+use crate::table::rowindex::{self, RowEntry};
+use crate::table::stream::{encoding_for, read_full, Utf8Check};
+use crate::table::{for_each_record, RawRecord, ReadSettings, RecordStream};
+
+/// What `sluice ingest` was asked to do.
+#[derive(Debug, Clone)]
+pub struct IngestOptions {
+    pub dataset: String,
+    pub key: Option<Vec<String>>,
+    pub reason: Option<String>,
+    pub delimiter: Option<u8>,
+    pub has_header: bool,
+    pub encoding: Option<String>,
+    pub null_tokens: Vec<String>,
+    pub agent: Agent,
+}
+
+/// What an intake did.
+#[derive(Debug, Clone)]
+pub enum IngestOutcome {
+    Recorded {
+        version: Version,
+        step_id: i64,
+        warnings: Vec<String>,
+    },
+    /// The bytes equal the dataset's latest version: nothing was recorded.
+    Unchanged { version: Version },
+}
+
+/// Checks a dataset name: 1 to 64 of letters, digits, `_`, `-`, `.`, starting with a letter,
+/// and not made only of hex digits (it would read as a hash prefix).
+pub fn validate_dataset_name(name: &str) -> Result<()> {
+    let ok_chars = name
+        .chars()
+        .all(|c| c.is_ascii_alphanumeric() || matches!(c, '_' | '-' | '.'));
+    let starts = name.chars().next().is_some_and(|c| c.is_ascii_alphabetic());
+    if name.is_empty() || name.len() > 64 || !ok_chars || !starts {
+        return Err(Error::usage(format!(
+            "invalid dataset name \"{name}\"; use 1 to 64 letters, digits, '_', '-' or '.', starting with a letter (e.g. work_orders)"
+        )));
+    }
+    if name.len() >= 6 && name.chars().all(|c| c.is_ascii_hexdigit()) {
+        return Err(Error::usage(format!(
+            "invalid dataset name \"{name}\": it would read as a version hash prefix; add a letter beyond a-f or a '_'"
+        )));
+    }
+    Ok(())
+}
+
+enum Msg {
+    Piece(Vec<u8>),
+    End,
+}
+
+/// The result of the reading thread.
+struct ReadSide {
+    table: ObjectWriter,
+    n_bytes: u64,
+}
+
+/// What the parsing side learnt.
+struct Scan {
+    header: Vec<String>,
+    n_rows: u64,
+    dialect: Dialect,
+    profiles: Vec<ColumnProfile>,
+    row_index: ObjectWriter,
+    key_hashes: Vec<(u64, u64)>,
+    warnings: Vec<String>,
+}
+
+fn store_io(store_dir: &Path, e: std::io::Error) -> Error {
+    Error::io(&store_dir.join("tmp"), e)
+}
+
+/// Records the file at `path` as a new version of `opts.dataset`.
+pub fn ingest(store: &mut Store, path: &Path, opts: &IngestOptions) -> Result<IngestOutcome> {
+    validate_dataset_name(&opts.dataset)?;
+    let encoding = match &opts.encoding {
+        Some(label) => Some(encoding_for(label)?),
+        None => None,
+    };
+    if let Some(k) = &opts.key {
+        if k.is_empty() || k.iter().any(|c| c.is_empty()) {
+            return Err(Error::usage(
+                "--key needs one or more column names separated by commas, e.g. --key order_id",
+            ));
+        }
+    }
+    let meta_before = fs::metadata(path).map_err(|e| Error::io(path, e))?;
+    if meta_before.is_dir() {
+        return Err(ErrorKind::IsDirectory {
+            path: path.to_path_buf(),
+        }
+        .into());
+    }
+    if meta_before.len() == 0 {
+        return Err(Error::input(path, None, InputProblem::Empty));
+    }
+    let file = File::open(path).map_err(|e| Error::io(path, e))?;
+    let started_at = clock::now_rfc3339();
+
+    let (read_side, scan) = run_pipeline(store, path, file, encoding, opts)?;
+
+    // Duplicate keys: equal hashes are candidates, confirmed on the values themselves.
+    if let Some(key) = &opts.key {
+        check_duplicate_keys(path, &scan, key, encoding)?;
+    }
+
+    let meta_after = fs::metadata(path).map_err(|e| Error::io(path, e))?;
+    if meta_after.len() != meta_before.len()
+        || read_side.n_bytes != meta_before.len()
+        || meta_after.modified().ok() != meta_before.modified().ok()
+    {
+        return Err(Error::input(path, None, InputProblem::ChangedWhileReading));
+    }
+
+    let hash = read_side.table.hash().hex();
+    if store
+        .lineage
+        .latest_version(&opts.dataset)?
+        .is_some_and(|v| v.hash == hash)
+    {
+        if let Some(v) = store.lineage.latest_version(&opts.dataset)? {
+            return Ok(IngestOutcome::Unchanged { version: v });
+        }
+    }
+
+    let store_dir = store.dir().to_path_buf();
+    let (table_hash, n_bytes) = read_side
+        .table
+        .finish()
+        .map_err(|e| store_io(&store_dir, e))?;
+    let (index_hash, index_bytes) = scan
+        .row_index
+        .finish()
+        .map_err(|e| store_io(&store_dir, e))?;
+    let ended_at = clock::now_rfc3339();
+
+    let source = SourceFile {
+        path: path.display().to_string(),
+        absolute_path: std::path::absolute(path)
+            .unwrap_or_else(|_| PathBuf::from(path))
+            .display()
+            .to_string(),
+        n_bytes,
+        modified: meta_before.modified().ok().map(clock::format_rfc3339),
+    };
+    let params = json!({
+        "delimiter": scan.dialect.delimiter,
+        "delimiter_detected": scan.dialect.delimiter_detected,
+        "encoding": scan.dialect.encoding,
+        "has_header": opts.has_header,
+        "key": opts.key,
+        "null_tokens": opts.null_tokens,
+    });
+    let table_hex = table_hash.hex();
+    let index_hex = index_hash.hex();
+    let outcome = store.write(|tx| {
+        // Another command may have recorded the same bytes while this one was reading.
+        if tx.latest_version_hash(&opts.dataset)?.as_deref() == Some(table_hex.as_str()) {
+            return Ok(None);
+        }
+        let step_id = tx.insert_step(&NewStep {
+            kind: StepKind::Ingest,
+            operation: None,
+            params: params.clone(),
+            agent: &opts.agent,
+            reason: opts.reason.as_deref(),
+            started_at: started_at.clone(),
+            ended_at: ended_at.clone(),
+            rows_in: None,
+            rows_out: Some(scan.n_rows),
+            lineage: LineageKind::None,
+            source: Some(&source),
+            inputs: Vec::new(),
+        })?;
+        let (version_id, seq) = tx.insert_version(&NewVersion {
+            dataset: &opts.dataset,
+            key: opts.key.as_deref(),
+            step_id,
+            hash: &table_hex,
+            n_bytes,
+            row_index: &index_hex,
+            row_index_bytes: index_bytes,
+            n_rows: scan.n_rows,
+            header: &scan.header,
+            dialect: &scan.dialect,
+            null_tokens: &opts.null_tokens,
+            profiles: &scan.profiles,
+            created_at: &ended_at,
+        })?;
+        tx.audit(
+            &opts.agent,
+            "ingest",
+            &format!("{}@{seq}", opts.dataset),
+            &json!({
+                "version": table_hex,
+                "row_index": index_hex,
+                "step": step_id,
+                "source": source.absolute_path,
+                "n_rows": scan.n_rows,
+                "n_bytes": n_bytes,
+            }),
+            &ended_at,
+        )?;
+        Ok(Some((version_id, step_id)))
+    })?;
+    match outcome {
+        Some((version_id, step_id)) => {
+            let version = store.lineage.version_by_id(version_id)?.ok_or_else(|| {
+                Error::from(ErrorKind::Database("the new version vanished".into()))
+            })?;
+            Ok(IngestOutcome::Recorded {
+                version,
+                step_id,
+                warnings: scan.warnings,
+            })
+        }
+        None => {
+            let version = store
+                .lineage
+                .latest_version(&opts.dataset)?
+                .ok_or_else(|| {
+                    Error::from(ErrorKind::Database("the latest version vanished".into()))
+                })?;
+            Ok(IngestOutcome::Unchanged { version })
+        }
+    }
+}
+
+fn run_pipeline(
+    store: &Store,
+    path: &Path,
+    mut file: File,
+    encoding: Option<&'static encoding_rs::Encoding>,
+    opts: &IngestOptions,
+) -> Result<(ReadSide, Scan)> {
+    let store_dir = store.dir().to_path_buf();
+    let objects = &store.objects;
+    let utf8 = encoding.is_none_or(|e| e == encoding_rs::UTF_8);
+    let check_nul =
+        encoding.is_none_or(|e| e != encoding_rs::UTF_16LE && e != encoding_rs::UTF_16BE);
+
+    std::thread::scope(|scope| {
+        let (tx, rx) = mpsc::sync_channel::<Msg>(4);
+        let (recycle_tx, recycle_rx) = mpsc::channel::<Vec<u8>>();
+        let store_dir_r = store_dir.clone();
+        let reader = scope.spawn(move || -> Result<Option<ReadSide>> {
+            let mut table = objects.writer().map_err(|e| store_io(&store_dir_r, e))?;
+            let mut check = Utf8Check::default();
+            let mut offset = 0u64;
+            loop {
+                let mut buf = recycle_rx.try_recv().unwrap_or_default();
+                buf.resize(STREAM_BUF, 0);
+                let n = read_full(&mut file, &mut buf).map_err(|e| Error::io(path, e))?;
+                buf.truncate(n);
+                if check_nul {
+                    if let Some(i) = memchr::memchr(0, &buf) {
+                        let byte = offset + i as u64;
+                        return Err(Error::input(
+                            path,
+                            Some(position_of(path, byte)),
+                            InputProblem::NulByte,
+                        ));
+                    }
+                }
+                if utf8 {
+                    if let Err(byte) = check.push(&buf) {
+                        return Err(Error::input(
+                            path,
+                            Some(position_of(path, byte)),
+                            InputProblem::InvalidUtf8,
+                        ));
+                    }
+                }
+                table.write(&buf).map_err(|e| store_io(&store_dir_r, e))?;
+                offset += n as u64;
+                let last = n < STREAM_BUF;
+                if n > 0 && tx.send(Msg::Piece(buf)).is_err() {
+                    // The parsing side stopped (it found a problem): stop reading.
+                    return Ok(None);
+                }
+                if last {
+                    break;
+                }
+            }
+            if utf8 {
+                if let Err(byte) = check.finish() {
+                    return Err(Error::input(
+                        path,
+                        Some(position_of(path, byte)),
+                        InputProblem::InvalidUtf8,
+                    ));
+                }
+            }
+            let _ = tx.send(Msg::End);
+            Ok(Some(ReadSide {
+                table,
+                n_bytes: offset,
+            }))
+        });
+
+        let parsed = parse_side(objects, &store_dir, path, encoding, opts, rx, recycle_tx);
+        let read = reader
+            .join()
+            .map_err(|_| Error::from(ErrorKind::Database("the reading thread panicked".into())))?;
+        // The parsing side only saw pieces the reader had checked, so a problem it found comes
+        // earlier in the file than the reader's: report it first.
+        match (parsed, read) {
+            (Err(e), _) => Err(e),
+            (Ok(_), Err(e)) => Err(e),
+            (Ok(Some(scan)), Ok(Some(read))) => Ok((read, scan)),
+            _ => Err(ErrorKind::Database("intake stopped without a reason".into()).into()),
+        }
+    })
+}
+
+/// The 1-based line of byte `byte`, found by reading the file again (error path only).
+fn position_of(path: &Path, byte: u64) -> Position {
+    let mut line = 1u64;
+    if let Ok(f) = File::open(path) {
+        let mut r = f.take(byte);
+        let mut buf = vec![0u8; 64 * 1024];
+        while let Ok(n) = r.read(&mut buf) {
+            if n == 0 {
+                break;
+            }
+            line += memchr::memchr_iter(b'\n', &buf[..n]).count() as u64;
+        }
+    }
+    Position {
+        byte,
+        line,
+        record: None,
+        column: None,
+    }
+}
+
+struct Sink<'a> {
+    path: &'a Path,
+    has_header: bool,
+    key: Option<&'a [String]>,
+    header: Option<Vec<String>>,
+    key_idx: Vec<usize>,
+    profiler: Option<Profiler>,
+    null_tokens: &'a [String],
+    n_rows: u64,
+    index_buf: Vec<u8>,
+    index: ObjectWriter,
+    store_dir: &'a Path,
+    key_hashes: Vec<(u64, u64)>,
+    first_row: Option<Vec<String>>,
+}
+
+impl Sink<'_> {
+    fn on_record(&mut self, rec: RawRecord<'_>) -> Result<()> {
+        if self.header.is_none() {
+            self.set_header(&rec)?;
+            if self.has_header {
+                return Ok(());
+            }
+        }
+        let n_cols = self.header.as_ref().map_or(0, |h| h.len());
+        if rec.len() != n_cols {
+            return Err(Error::input(
+                self.path,
+                Some(Position {
+                    byte: rec.byte,
+                    line: rec.line,
+                    record: Some(rec.index),
+                    column: None,
+                }),
+                InputProblem::RaggedRow {
+                    expected: n_cols as u64,
+                    found: rec.len() as u64,
+                },
+            ));
+        }
+        let profiler = self
+            .profiler
+            .as_mut()
+            .expect("profiler set with the header");
+        if self.first_row.is_none() {
+            self.first_row = Some(
+                rec.iter()
+                    .map(|f| String::from_utf8_lossy(f).into_owned())
+                    .collect(),
+            );
+        }
+        if !self.key_idx.is_empty() {
+            let mut h = Xxh3::new();
+            for (j, &c) in self.key_idx.iter().enumerate() {
+                let v = rec.field(c);
+                if profiler.is_blank(v) {
+                    let names = self.header.as_ref().expect("header set");
+                    return Err(Error::input(
+                        self.path,
+                        Some(Position {
+                            byte: rec.byte,
+                            line: rec.line,
+                            record: Some(rec.index),
+                            column: Some(c as u64 + 1),
+                        }),
+                        InputProblem::BlankKey {
+                            column: names[self.key_idx[j]].clone(),
+                        },
+                    ));
+                }
+                h.update(&(v.len() as u64).to_le_bytes());
+                h.update(v);
+            }
+            self.key_hashes.push((h.digest(), self.n_rows));
+        }
+        profiler.observe(rec.iter());
+        rowindex::encode_entry(
+            &RowEntry {
+                byte: rec.byte,
+                line: rec.line,
+                fingerprint: rowindex::fingerprint(&rec),
+            },
+            &mut self.index_buf,
+        );
+        if self.index_buf.len() >= 256 * 1024 {
+            self.index
+                .write(&self.index_buf)
+                .map_err(|e| store_io(self.store_dir, e))?;
+            self.index_buf.clear();
+        }
+        self.n_rows += 1;
+        Ok(())
+    }
+
+    fn set_header(&mut self, rec: &RawRecord<'_>) -> Result<()> {
+        let names: Vec<String> = if self.has_header {
+            rec.iter()
+                .map(|f| String::from_utf8_lossy(f).into_owned())
+                .collect()
+        } else {
+            (1..=rec.len()).map(|i| format!("col{i}")).collect()
+        };
+        let pos = Some(Position {
+            byte: rec.byte,
+            line: rec.line,
+            record: Some(rec.index),
+            column: None,
+        });
+        let blank: Vec<u64> = names
+            .iter()
+            .enumerate()
+            .filter(|(_, n)| n.trim().is_empty())
+            .map(|(i, _)| i as u64 + 1)
+            .collect();
+        if !blank.is_empty() {
+            return Err(Error::input(
+                self.path,
+                pos,
+                InputProblem::BlankHeaderNames { columns: blank },
+            ));
+        }
+        let mut seen = BTreeMap::<&str, usize>::new();
+        for n in &names {
+            *seen.entry(n.as_str()).or_default() += 1;
+        }
+        let dups: Vec<String> = names
+            .iter()
+            .filter(|n| seen.get(n.as_str()).copied().unwrap_or(0) > 1)
+            .fold(Vec::new(), |mut acc, n| {
+                if !acc.contains(n) {
+                    acc.push(n.clone());
+                }
+                acc
+            });
+        if !dups.is_empty() {
+            return Err(Error::input(
+                self.path,
+                pos,
+                InputProblem::DuplicateHeaderNames { names: dups },
+            ));
+        }
+        if let Some(key) = self.key {
+            let missing: Vec<String> = key.iter().filter(|k| !names.contains(k)).cloned().collect();
+            if !missing.is_empty() {
+                return Err(Error::input(
+                    self.path,
+                    None,
+                    InputProblem::UnknownKeyColumns {
+                        missing,
+                        available: names.clone(),
+                    },
+                ));
+            }
+            self.key_idx = key
+                .iter()
+                .filter_map(|k| names.iter().position(|n| n == k))
+                .collect();
+        }
+        self.profiler = Some(Profiler::new(names.len(), self.null_tokens));
+        self.header = Some(names);
+        Ok(())
+    }
+}
+
+fn parse_side(
+    objects: &crate::store::Objects,
+    store_dir: &Path,
+    path: &Path,
+    encoding: Option<&'static encoding_rs::Encoding>,
+    opts: &IngestOptions,
+    rx: mpsc::Receiver<Msg>,
+    recycle: mpsc::Sender<Vec<u8>>,
+) -> Result<Option<Scan>> {
+    let mut index = objects.writer().map_err(|e| store_io(store_dir, e))?;
+    index
+        .write(&rowindex::header())
+        .map_err(|e| store_io(store_dir, e))?;
+    let mut sink = Sink {
+        path,
+        has_header: opts.has_header,
+        key: opts.key.as_deref(),
+        header: None,
+        key_idx: Vec::new(),
+        profiler: None,
+        null_tokens: &opts.null_tokens,
+        n_rows: 0,
+        index_buf: Vec::with_capacity(512 * 1024),
+        index,
+        store_dir,
+        key_hashes: Vec::new(),
+        first_row: None,
+    };
+    let mut rs = RecordStream::new(
+        path,
+        ReadSettings {
+            delimiter: opts.delimiter,
+            encoding,
+        },
+    );
+    let mut ended = false;
+    {
+        let mut cb = |r: RawRecord<'_>| sink.on_record(r);
+        while let Ok(msg) = rx.recv() {
+            match msg {
+                Msg::Piece(buf) => {
+                    let last = buf.len() < STREAM_BUF;
+                    rs.push(&buf, last, &mut cb)?;
+                    let _ = recycle.send(buf);
+                }
+                Msg::End => {
+                    ended = true;
+                    break;
+                }
+            }
+        }
+        if !ended {
+            // The reading side stopped early; its error is the one to report.
+            return Ok(None);
+        }
+        rs.finish(&mut cb)?;
+    }
+    let Some(header) = sink.header.take() else {
+        return Err(Error::input(path, None, InputProblem::NoHeader));
+    };
+    sink.index
+        .write(&sink.index_buf)
+        .map_err(|e| store_io(store_dir, e))?;
+    let profiles = sink
+        .profiler
+        .as_ref()
+        .map(|p| p.finish(&header))
+        .unwrap_or_default();
+    let mut warnings = Vec::new();
+    if opts.has_header {
+        if let Some(w) = header_looks_like_data(&header, &profiles) {
+            warnings.push(w);
+        }
+    }
+    Ok(Some(Scan {
+        dialect: rs.dialect(opts.has_header),
+        header,
+        n_rows: sink.n_rows,
+        profiles,
+        row_index: sink.index,
+        key_hashes: sink.key_hashes,
+        warnings,
+    }))
+}
+
+/// A header whose names read as numbers or dates in columns whose data are numbers or dates is
+/// probably a data row.
+fn header_looks_like_data(header: &[String], profiles: &[ColumnProfile]) -> Option<String> {
+    let suspicious: Vec<&str> = header
+        .iter()
+        .zip(profiles)
+        .filter(|(name, p)| {
+            let b = name.as_bytes();
+            match p.inferred_type.as_str() {
+                "integer" | "decimal" => number_shape(b).is_some(),
+                "date" => crate::clock::is_iso_date(b),
+                _ => false,
+            }
+        })
+        .map(|(n, _)| n.as_str())
+        .collect();
+    (!suspicious.is_empty()).then(|| {
+        format!(
+            "the header holds {} that look{} like data ({}); if the file has no header line, take it in again with --no-header",
+            if suspicious.len() == 1 { "a name" } else { "names" },
+            if suspicious.len() == 1 { "s" } else { "" },
+            suspicious.join(", ")
+        )
+    })
+}
+
+fn check_duplicate_keys(
+    path: &Path,
+    scan: &Scan,
+    key: &[String],
+    encoding: Option<&'static encoding_rs::Encoding>,
+) -> Result<()> {
+    let mut hashes = scan.key_hashes.clone();
+    hashes.sort_unstable();
+    let mut candidates = HashSet::new();
+    for w in hashes.windows(2) {
+        if w[0].0 == w[1].0 {
+            candidates.insert(w[0].1);
+            candidates.insert(w[1].1);
+        }
+    }
+    if candidates.is_empty() {
+        return Ok(());
+    }
+    let key_idx: Vec<usize> = key
+        .iter()
+        .filter_map(|k| scan.header.iter().position(|n| n == k))
+        .collect();
+    let mut groups: BTreeMap<String, Vec<u64>> = BTreeMap::new();
+    let mut row = 0u64;
+    let mut header_seen = !scan.dialect.has_header;
+    let settings = ReadSettings {
+        delimiter: Some(scan.dialect.delimiter_byte()),
+        encoding,
+    };
+    let f = File::open(path).map_err(|e| Error::io(path, e))?;
+    for_each_record(path, f, &settings, |r| {
+        if !header_seen {
+            header_seen = true;
+            return Ok(());
+        }
+        if candidates.contains(&row) {
+            let k: Vec<String> = key_idx
+                .iter()
+                .map(|&c| String::from_utf8_lossy(r.field(c)).into_owned())
+                .collect();
+            groups.entry(k.join(", ")).or_default().push(row + 1);
+        }
+        row += 1;
+        Ok(())
+    })?;
+    let dups: Vec<(String, Vec<u64>)> = groups
+        .into_iter()
+        .filter(|(_, rows)| rows.len() > 1)
+        .collect();
+    if dups.is_empty() {
+        return Ok(());
+    }
+    let total = dups.len() as u64;
+    Err(Error::input(
+        path,
+        None,
+        InputProblem::DuplicateKeys {
+            examples: dups.into_iter().take(10).collect(),
+            total,
+        },
+    ))
+}

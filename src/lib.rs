@@ -1,0 +1,48 @@
+//! sluice keeps the provenance of cleaned data.
+//!
+//! Every dataset version is recorded by the BLAKE3 hash of its bytes, every transform as a step
+//! in a lineage graph held in SQLite, so that any cleaned value can be traced back to the raw
+//! line it came from. The flow runs one way:
+//!
+//! - read: [`table`] detects, decodes, parses and profiles delimited text;
+//! - record: [`intake`] takes outside files in; [`store`] keeps objects and the lineage database
+//!   (the only module that touches SQLite);
+//! - query: [`history`] (log, show), [`verify`], [`refs`] (version references).
+//!
+//! The engine never prints: it returns values and typed [`Error`]s, and the binary renders them.
+//!
+//! ```
+//! use sluice::{intake, model::Agent, store::Store};
+//! let dir = tempfile::tempdir().unwrap();
+//! std::fs::write(dir.path().join("shops.csv"), "shop,city\nQuillby Cycle Mend,Quillby\n").unwrap();
+//! let agent = Agent { identity: "Robin Example <robin@example.org>".into(), source: "option".into() };
+//! let mut store = Store::init_recorded(dir.path(), &agent).unwrap();
+//! let opts = intake::IngestOptions {
+//!     dataset: "shops".into(), key: None, reason: Some("first export".into()), delimiter: None,
+//!     has_header: true, encoding: None, null_tokens: vec![], agent,
+//! };
+//! match intake::ingest(&mut store, &dir.path().join("shops.csv"), &opts).unwrap() {
+//!     intake::IngestOutcome::Recorded { version, .. } => assert_eq!(version.n_rows, 1),
+//!     intake::IngestOutcome::Unchanged { .. } => unreachable!("a new dataset always records"),
+//! }
+//! assert!(sluice::verify::verify(&store).unwrap().intact);
+//! ```
+
+pub mod agent;
+pub mod clock;
+pub mod code;
+pub mod demo;
+pub mod error;
+pub mod hash;
+pub mod history;
+pub mod intake;
+pub mod model;
+pub mod refs;
+pub mod store;
+pub mod table;
+pub mod verify;
+
+pub use error::{Error, ErrorKind, InputProblem, Position, Result};
+
+/// The version of this build, recorded with every step.
+pub const TOOL_VERSION: &str = concat!("sluice ", env!("CARGO_PKG_VERSION"));

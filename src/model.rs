@@ -1,0 +1,214 @@
+//! The records of the lineage graph, in the user's words: [`Dataset`], [`Version`], [`Step`],
+//! [`ColumnProfile`], [`AuditEntry`]. They are plain data: the store reads and writes them, the
+//! query modules return them, the command line renders them. All of them serialise to the JSON
+//! that `--json` prints (the structures are documented in README.md and `schema/`).
+
+use serde::{Deserialize, Serialize};
+
+/// The kind of activity a step was.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum StepKind {
+    Ingest,
+    Operation,
+    Command,
+    HandEdit,
+    Revert,
+    Replay,
+}
+
+impl StepKind {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            StepKind::Ingest => "ingest",
+            StepKind::Operation => "operation",
+            StepKind::Command => "command",
+            StepKind::HandEdit => "hand_edit",
+            StepKind::Revert => "revert",
+            StepKind::Replay => "replay",
+        }
+    }
+
+    pub fn parse(s: &str) -> Option<Self> {
+        Some(match s {
+            "ingest" => StepKind::Ingest,
+            "operation" => StepKind::Operation,
+            "command" => StepKind::Command,
+            "hand_edit" => StepKind::HandEdit,
+            "revert" => StepKind::Revert,
+            "replay" => StepKind::Replay,
+            _ => return None,
+        })
+    }
+}
+
+/// How a step's row lineage is known.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum LineageKind {
+    /// Recorded by a sluice operation while it ran.
+    Exact,
+    /// Inferred afterwards by a diff (outside commands, hand edits).
+    Inferred,
+    /// No input version (an intake of an outside file).
+    None,
+}
+
+impl LineageKind {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            LineageKind::Exact => "exact",
+            LineageKind::Inferred => "inferred",
+            LineageKind::None => "none",
+        }
+    }
+
+    pub fn parse(s: &str) -> Option<Self> {
+        Some(match s {
+            "exact" => LineageKind::Exact,
+            "inferred" => LineageKind::Inferred,
+            "none" => LineageKind::None,
+            _ => return None,
+        })
+    }
+}
+
+/// The CSV dialect a version was read with.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Dialect {
+    /// The field delimiter as a one-character string: ",", ";", "\t" or "|" (or what was given).
+    pub delimiter: String,
+    pub quote: String,
+    /// "lf", "crlf", "cr", "mixed", or "none" (a single line with no terminator).
+    pub line_ending: String,
+    /// Whether the file starts with a UTF-8 byte-order mark.
+    pub bom: bool,
+    /// The text encoding the bytes were decoded from ("utf-8" unless --encoding was given).
+    pub encoding: String,
+    pub has_header: bool,
+    /// Whether the delimiter was detected (true) or given with --delimiter (false).
+    pub delimiter_detected: bool,
+}
+
+impl Dialect {
+    pub fn delimiter_byte(&self) -> u8 {
+        self.delimiter.as_bytes().first().copied().unwrap_or(b',')
+    }
+}
+
+/// What the intake knows about the outside file a raw version came from.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct SourceFile {
+    /// The path as given on the command line.
+    pub path: String,
+    /// The absolute path at intake time.
+    pub absolute_path: String,
+    pub n_bytes: u64,
+    /// Modification time (RFC 3339 UTC), when the file system reports one.
+    pub modified: Option<String>,
+}
+
+/// The quality profile of one column of a version.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct ColumnProfile {
+    pub name: String,
+    /// "integer", "decimal", "date", "text", or "empty" when every value is blank.
+    pub inferred_type: String,
+    pub n_blank: u64,
+    pub n_distinct: u64,
+    /// False when `n_distinct` is an estimate (columns with very many distinct values).
+    pub distinct_exact: bool,
+    pub min: Option<String>,
+    pub max: Option<String>,
+    pub min_len: Option<u64>,
+    pub max_len: Option<u64>,
+}
+
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Dataset {
+    pub name: String,
+    pub key: Option<Vec<String>>,
+    pub created_at: String,
+    pub n_versions: u64,
+}
+
+/// One immutable content of a dataset.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Version {
+    #[serde(skip)]
+    pub id: i64,
+    pub dataset: String,
+    /// 1-based number within the dataset (`orders@3`).
+    pub seq: u64,
+    /// BLAKE3 of the bytes, 64 hex digits: the version's name.
+    pub hash: String,
+    /// The object holding per-row byte offsets, line numbers and fingerprints.
+    pub row_index: String,
+    pub n_rows: u64,
+    pub n_cols: u64,
+    pub n_bytes: u64,
+    pub header: Vec<String>,
+    pub dialect: Dialect,
+    pub null_tokens: Vec<String>,
+    pub created_at: String,
+    #[serde(skip)]
+    pub step_id: i64,
+}
+
+impl Version {
+    /// `name@seq`, the way users refer to it.
+    pub fn label(&self) -> String {
+        format!("{}@{}", self.dataset, self.seq)
+    }
+}
+
+/// One activity that read versions and produced versions.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Step {
+    pub id: i64,
+    pub kind: StepKind,
+    pub operation: Option<String>,
+    pub params: serde_json::Value,
+    pub agent: String,
+    pub tool_version: String,
+    pub reason: Option<String>,
+    pub started_at: String,
+    pub ended_at: String,
+    pub rows_in: Option<u64>,
+    pub rows_out: Option<u64>,
+    pub lineage: LineageKind,
+    pub source: Option<SourceFile>,
+    /// Labels (`name@seq`) of the versions the step read.
+    pub inputs: Vec<String>,
+    /// Labels of the versions the step produced.
+    pub outputs: Vec<String>,
+}
+
+/// One entry of the hash-chained audit log.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct AuditEntry {
+    pub seq: u64,
+    pub at: String,
+    pub agent: String,
+    pub action: String,
+    pub subject: String,
+    /// Canonical JSON text.
+    pub details: String,
+    pub prev_hash: String,
+    pub hash: String,
+}
+
+/// An agent identity and where it came from.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Agent {
+    pub identity: String,
+    /// "option", "environment", "git", "os".
+    pub source: String,
+}
+
+/// Canonical JSON text of a value: object keys sorted, no insignificant white space. serde_json's
+/// map is ordered by key (the `preserve_order` feature is not enabled), so this is a plain
+/// compact serialisation.
+pub fn canonical_json(v: &serde_json::Value) -> String {
+    serde_json::to_string(v).unwrap_or_else(|_| "null".to_string())
+}

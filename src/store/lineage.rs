@@ -1,0 +1,801 @@
+//! The lineage database (`.sluice/lineage.db`): opening it with the right settings, applying the
+//! embedded migrations from `schema/`, the write transaction every command goes through, and the
+//! queries the rest of the engine asks. All SQL in sluice is here and in [`super::audit`], and
+//! every value reaches SQLite as a bound parameter, never spliced into SQL text.
+
+use std::path::{Path, PathBuf};
+use std::time::Duration;
+
+use rusqlite::{params, Connection, OpenFlags, OptionalExtension, TransactionBehavior};
+use serde_json::Value;
+
+use crate::error::{Error, ErrorKind, Result};
+use crate::model::{
+    canonical_json, Agent, AuditEntry, ColumnProfile, Dataset, Dialect, LineageKind, SourceFile,
+    Step, StepKind, Version,
+};
+
+/// The migrations, in order. Each entry is (schema version it produces, SQL).
+const MIGRATIONS: &[(i64, &str)] = &[(1, include_str!("../../schema/0001_lineage.sql"))];
+
+/// The schema version this build writes.
+pub const SCHEMA_VERSION: i64 = MIGRATIONS[MIGRATIONS.len() - 1].0;
+
+/// How long a command waits for another command's write transaction before giving up.
+const BUSY_TIMEOUT: Duration = Duration::from_secs(60);
+
+pub struct Lineage {
+    conn: Connection,
+    path: PathBuf,
+}
+
+fn db_err(e: rusqlite::Error) -> Error {
+    ErrorKind::Database(e.to_string().to_lowercase()).into()
+}
+
+fn corrupt(path: &Path, e: rusqlite::Error) -> Error {
+    ErrorKind::CorruptDatabase {
+        path: path.to_path_buf(),
+        detail: e.to_string().to_lowercase(),
+    }
+    .into()
+}
+
+impl Lineage {
+    /// Creates a new database at `path` and applies every migration.
+    pub fn create(path: &Path) -> Result<Lineage> {
+        let conn = Connection::open_with_flags(
+            path,
+            OpenFlags::SQLITE_OPEN_READ_WRITE | OpenFlags::SQLITE_OPEN_CREATE,
+        )
+        .map_err(|e| corrupt(path, e))?;
+        let mut l = Lineage {
+            conn,
+            path: path.to_path_buf(),
+        };
+        l.configure()?;
+        l.migrate()?;
+        Ok(l)
+    }
+
+    /// Opens an existing database, refusing one written by a newer schema and migrating an older
+    /// one.
+    pub fn open(path: &Path) -> Result<Lineage> {
+        let conn = Connection::open_with_flags(path, OpenFlags::SQLITE_OPEN_READ_WRITE)
+            .map_err(|e| corrupt(path, e))?;
+        let mut l = Lineage {
+            conn,
+            path: path.to_path_buf(),
+        };
+        l.configure()?;
+        l.migrate()?;
+        Ok(l)
+    }
+
+    fn configure(&mut self) -> Result<()> {
+        let path = self.path.clone();
+        self.conn
+            .busy_timeout(BUSY_TIMEOUT)
+            .map_err(|e| corrupt(&path, e))?;
+        // Reading the schema first turns "file is not a database" into a clear error.
+        self.conn
+            .query_row("SELECT count(*) FROM sqlite_master", [], |r| {
+                r.get::<_, i64>(0)
+            })
+            .map_err(|e| corrupt(&path, e))?;
+        let mode: String = self
+            .conn
+            .query_row("PRAGMA journal_mode = WAL", [], |r| r.get(0))
+            .map_err(|e| corrupt(&path, e))?;
+        if !mode.eq_ignore_ascii_case("wal") {
+            return Err(ErrorKind::Database(format!(
+                "could not switch the lineage database to WAL mode (got {mode})"
+            ))
+            .into());
+        }
+        self.conn
+            .execute_batch("PRAGMA foreign_keys = ON; PRAGMA synchronous = FULL;")
+            .map_err(|e| corrupt(&path, e))?;
+        Ok(())
+    }
+
+    fn user_version(&self) -> Result<i64> {
+        self.conn
+            .query_row("PRAGMA user_version", [], |r| r.get(0))
+            .map_err(|e| corrupt(&self.path, e))
+    }
+
+    fn migrate(&mut self) -> Result<()> {
+        let found = self.user_version()?;
+        if found > SCHEMA_VERSION {
+            return Err(ErrorKind::SchemaTooNew {
+                path: self.path.clone(),
+                found,
+                known: SCHEMA_VERSION,
+            }
+            .into());
+        }
+        if found == SCHEMA_VERSION {
+            return Ok(());
+        }
+        let path = self.path.clone();
+        let tx = self
+            .conn
+            .transaction_with_behavior(TransactionBehavior::Immediate)
+            .map_err(db_err)?;
+        // Another process may have migrated while we waited for the write lock.
+        let now: i64 = tx
+            .query_row("PRAGMA user_version", [], |r| r.get(0))
+            .map_err(|e| corrupt(&path, e))?;
+        for (v, sql) in MIGRATIONS {
+            if *v > now {
+                tx.execute_batch(sql).map_err(|e| {
+                    Error::from(ErrorKind::Database(format!(
+                        "applying schema migration {v}: {}",
+                        e.to_string().to_lowercase()
+                    )))
+                })?;
+                tx.execute_batch(&format!("PRAGMA user_version = {v}"))
+                    .map_err(db_err)?;
+            }
+        }
+        tx.commit().map_err(db_err)?;
+        Ok(())
+    }
+
+    pub fn path(&self) -> &Path {
+        &self.path
+    }
+
+    pub fn schema_version(&self) -> Result<i64> {
+        self.user_version()
+    }
+
+    /// Runs `f` inside one `BEGIN IMMEDIATE` transaction.
+    pub fn write<T>(&mut self, f: impl FnOnce(&mut Tx<'_>) -> Result<T>) -> Result<T> {
+        let tx = self
+            .conn
+            .transaction_with_behavior(TransactionBehavior::Immediate)
+            .map_err(db_err)?;
+        let mut t = Tx { tx };
+        let out = f(&mut t)?;
+        t.tx.commit().map_err(db_err)?;
+        Ok(out)
+    }
+
+    // ---- queries -------------------------------------------------------------------------
+
+    pub fn datasets(&self) -> Result<Vec<Dataset>> {
+        let mut st = self
+            .conn
+            .prepare(
+                "SELECT d.name, d.key_columns, d.created_at,
+                        (SELECT count(*) FROM versions v WHERE v.dataset_id = d.id)
+                 FROM datasets d ORDER BY d.name",
+            )
+            .map_err(db_err)?;
+        let rows = st
+            .query_map([], |r| {
+                Ok(Dataset {
+                    name: r.get(0)?,
+                    key: parse_key(r.get::<_, Option<String>>(1)?),
+                    created_at: r.get(2)?,
+                    n_versions: r.get::<_, i64>(3)? as u64,
+                })
+            })
+            .map_err(db_err)?;
+        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+    }
+
+    pub fn dataset(&self, name: &str) -> Result<Option<Dataset>> {
+        Ok(self.datasets()?.into_iter().find(|d| d.name == name))
+    }
+
+    pub fn versions_of(&self, dataset: &str) -> Result<Vec<Version>> {
+        self.query_versions("WHERE d.name = ?1 ORDER BY v.seq", params![dataset])
+    }
+
+    pub fn latest_version(&self, dataset: &str) -> Result<Option<Version>> {
+        Ok(self
+            .query_versions(
+                "WHERE d.name = ?1 ORDER BY v.seq DESC LIMIT 1",
+                params![dataset],
+            )?
+            .pop())
+    }
+
+    pub fn version_by_seq(&self, dataset: &str, seq: u64) -> Result<Option<Version>> {
+        Ok(self
+            .query_versions(
+                "WHERE d.name = ?1 AND v.seq = ?2",
+                params![dataset, seq as i64],
+            )?
+            .pop())
+    }
+
+    pub fn version_by_id(&self, id: i64) -> Result<Option<Version>> {
+        Ok(self.query_versions("WHERE v.id = ?1", params![id])?.pop())
+    }
+
+    /// Versions whose hash starts with `prefix` (lowercase hex).
+    pub fn versions_by_hash_prefix(&self, prefix: &str) -> Result<Vec<Version>> {
+        // A range scan instead of LIKE, so that no character of the prefix is a pattern.
+        let hi = format!("{prefix}g");
+        self.query_versions(
+            "WHERE v.hash >= ?1 AND v.hash < ?2 ORDER BY d.name, v.seq",
+            params![prefix, hi],
+        )
+    }
+
+    pub fn all_versions(&self) -> Result<Vec<Version>> {
+        self.query_versions("ORDER BY d.name, v.seq", params![])
+    }
+
+    fn query_versions(&self, tail: &str, p: impl rusqlite::Params) -> Result<Vec<Version>> {
+        let sql = format!(
+            "SELECT v.id, d.name, v.seq, v.hash, v.row_index, v.n_rows, v.n_cols, v.n_bytes,
+                    v.header, v.dialect, v.null_tokens, v.created_at, v.step_id
+             FROM versions v JOIN datasets d ON d.id = v.dataset_id {tail}"
+        );
+        let mut st = self.conn.prepare(&sql).map_err(db_err)?;
+        let rows = st
+            .query_map(p, |r| {
+                Ok((
+                    r.get::<_, i64>(0)?,
+                    r.get::<_, String>(1)?,
+                    r.get::<_, i64>(2)?,
+                    r.get::<_, String>(3)?,
+                    r.get::<_, String>(4)?,
+                    r.get::<_, i64>(5)?,
+                    r.get::<_, i64>(6)?,
+                    r.get::<_, i64>(7)?,
+                    r.get::<_, String>(8)?,
+                    r.get::<_, String>(9)?,
+                    r.get::<_, String>(10)?,
+                    r.get::<_, String>(11)?,
+                    r.get::<_, i64>(12)?,
+                ))
+            })
+            .map_err(db_err)?;
+        let mut out = Vec::new();
+        for row in rows {
+            let (
+                id,
+                dataset,
+                seq,
+                hash,
+                row_index,
+                n_rows,
+                n_cols,
+                n_bytes,
+                header,
+                dialect,
+                nulls,
+                created_at,
+                step_id,
+            ) = row.map_err(db_err)?;
+            out.push(Version {
+                id,
+                dataset,
+                seq: seq as u64,
+                hash,
+                row_index,
+                n_rows: n_rows as u64,
+                n_cols: n_cols as u64,
+                n_bytes: n_bytes as u64,
+                header: parse_json_field(&header, "versions.header")?,
+                dialect: parse_json_field::<Dialect>(&dialect, "versions.dialect")?,
+                null_tokens: parse_json_field(&nulls, "versions.null_tokens")?,
+                created_at,
+                step_id,
+            });
+        }
+        Ok(out)
+    }
+
+    pub fn profiles(&self, version_id: i64) -> Result<Vec<ColumnProfile>> {
+        let mut st = self
+            .conn
+            .prepare(
+                "SELECT name, inferred_type, n_blank, n_distinct, distinct_exact, min_value,
+                        max_value, min_len, max_len
+                 FROM column_profiles WHERE version_id = ?1 ORDER BY col_idx",
+            )
+            .map_err(db_err)?;
+        let rows = st
+            .query_map(params![version_id], |r| {
+                Ok(ColumnProfile {
+                    name: r.get(0)?,
+                    inferred_type: r.get(1)?,
+                    n_blank: r.get::<_, i64>(2)? as u64,
+                    n_distinct: r.get::<_, i64>(3)? as u64,
+                    distinct_exact: r.get::<_, i64>(4)? == 1,
+                    min: r.get(5)?,
+                    max: r.get(6)?,
+                    min_len: r.get::<_, Option<i64>>(7)?.map(|v| v as u64),
+                    max_len: r.get::<_, Option<i64>>(8)?.map(|v| v as u64),
+                })
+            })
+            .map_err(db_err)?;
+        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+    }
+
+    pub fn step(&self, id: i64) -> Result<Option<Step>> {
+        Ok(self.query_steps("WHERE s.id = ?1", params![id])?.pop())
+    }
+
+    /// Steps that produced or read a version of `dataset` (every step when `None`), newest first.
+    pub fn steps(&self, dataset: Option<&str>) -> Result<Vec<Step>> {
+        match dataset {
+            None => self.query_steps("ORDER BY s.id DESC", params![]),
+            Some(name) => self.query_steps(
+                "WHERE s.id IN (
+                    SELECT v.step_id FROM versions v JOIN datasets d ON d.id = v.dataset_id WHERE d.name = ?1
+                    UNION
+                    SELECT i.step_id FROM step_inputs i JOIN versions v ON v.id = i.version_id
+                        JOIN datasets d ON d.id = v.dataset_id WHERE d.name = ?1)
+                 ORDER BY s.id DESC",
+                params![name],
+            ),
+        }
+    }
+
+    fn query_steps(&self, tail: &str, p: impl rusqlite::Params) -> Result<Vec<Step>> {
+        let sql = format!(
+            "SELECT s.id, s.kind, s.operation, s.params, a.identity, s.tool_version, s.reason,
+                    s.started_at, s.ended_at, s.rows_in, s.rows_out, s.lineage, s.source
+             FROM steps s JOIN agents a ON a.id = s.agent_id {tail}"
+        );
+        let mut st = self.conn.prepare(&sql).map_err(db_err)?;
+        type Raw = (
+            i64,
+            String,
+            Option<String>,
+            String,
+            String,
+            String,
+            Option<String>,
+            String,
+            String,
+            Option<i64>,
+            Option<i64>,
+            String,
+            Option<String>,
+        );
+        let rows = st
+            .query_map(p, |r| {
+                Ok::<Raw, rusqlite::Error>((
+                    r.get(0)?,
+                    r.get(1)?,
+                    r.get(2)?,
+                    r.get(3)?,
+                    r.get(4)?,
+                    r.get(5)?,
+                    r.get(6)?,
+                    r.get(7)?,
+                    r.get(8)?,
+                    r.get(9)?,
+                    r.get(10)?,
+                    r.get(11)?,
+                    r.get(12)?,
+                ))
+            })
+            .map_err(db_err)?;
+        let raws = rows
+            .collect::<rusqlite::Result<Vec<Raw>>>()
+            .map_err(db_err)?;
+        let mut out = Vec::with_capacity(raws.len());
+        for (
+            id,
+            kind,
+            operation,
+            params_text,
+            agent,
+            tool_version,
+            reason,
+            started_at,
+            ended_at,
+            rows_in,
+            rows_out,
+            lineage,
+            source,
+        ) in raws
+        {
+            out.push(Step {
+                id,
+                kind: StepKind::parse(&kind).ok_or_else(|| bad_field("steps.kind", &kind))?,
+                operation,
+                params: parse_json_field::<Value>(&params_text, "steps.params")?,
+                agent,
+                tool_version,
+                reason,
+                started_at,
+                ended_at,
+                rows_in: rows_in.map(|v| v as u64),
+                rows_out: rows_out.map(|v| v as u64),
+                lineage: LineageKind::parse(&lineage)
+                    .ok_or_else(|| bad_field("steps.lineage", &lineage))?,
+                source: match source {
+                    Some(s) => Some(parse_json_field::<SourceFile>(&s, "steps.source")?),
+                    None => None,
+                },
+                inputs: self.labels(
+                    "SELECT d.name, v.seq FROM step_inputs i JOIN versions v ON v.id = i.version_id
+                     JOIN datasets d ON d.id = v.dataset_id WHERE i.step_id = ?1 ORDER BY i.position",
+                    id,
+                )?,
+                outputs: self.labels(
+                    "SELECT d.name, v.seq FROM versions v JOIN datasets d ON d.id = v.dataset_id
+                     WHERE v.step_id = ?1 ORDER BY v.id",
+                    id,
+                )?,
+            });
+        }
+        Ok(out)
+    }
+
+    fn labels(&self, sql: &str, step_id: i64) -> Result<Vec<String>> {
+        let mut st = self.conn.prepare_cached(sql).map_err(db_err)?;
+        let rows = st
+            .query_map(params![step_id], |r| {
+                Ok(format!(
+                    "{}@{}",
+                    r.get::<_, String>(0)?,
+                    r.get::<_, i64>(1)?
+                ))
+            })
+            .map_err(db_err)?;
+        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+    }
+
+    pub fn audit_entries(&self) -> Result<Vec<AuditEntry>> {
+        super::audit::entries(&self.conn)
+    }
+
+    /// Every object the database records, as (hash, kind, n_bytes).
+    pub fn objects(&self) -> Result<Vec<(String, String, u64)>> {
+        let mut st = self
+            .conn
+            .prepare("SELECT hash, kind, n_bytes FROM objects ORDER BY hash")
+            .map_err(db_err)?;
+        let rows = st
+            .query_map([], |r| {
+                Ok((r.get(0)?, r.get(1)?, r.get::<_, i64>(2)? as u64))
+            })
+            .map_err(db_err)?;
+        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+    }
+
+    /// SQLite's own structural check plus its foreign-key check, as human-readable lines.
+    pub fn integrity_problems(&self) -> Result<Vec<String>> {
+        let mut out = Vec::new();
+        let mut st = self
+            .conn
+            .prepare("PRAGMA integrity_check")
+            .map_err(|e| corrupt(&self.path, e))?;
+        let rows = st
+            .query_map([], |r| r.get::<_, String>(0))
+            .map_err(|e| corrupt(&self.path, e))?;
+        for r in rows {
+            let line = r.map_err(|e| corrupt(&self.path, e))?;
+            if line != "ok" {
+                out.push(format!("database structure: {line}"));
+            }
+        }
+        let mut st = self
+            .conn
+            .prepare("PRAGMA foreign_key_check")
+            .map_err(db_err)?;
+        let rows = st
+            .query_map([], |r| {
+                Ok(format!(
+                    "table {} row {} refers to a missing row of {}",
+                    r.get::<_, String>(0)?,
+                    r.get::<_, Option<i64>>(1)?
+                        .map_or("?".into(), |v| v.to_string()),
+                    r.get::<_, String>(2)?
+                ))
+            })
+            .map_err(db_err)?;
+        for r in rows {
+            out.push(r.map_err(db_err)?);
+        }
+        Ok(out)
+    }
+
+    /// Checks that go beyond foreign keys: every version's objects are of the right kind, and
+    /// version numbers of each dataset run 1..n without gaps.
+    pub fn consistency_problems(&self) -> Result<Vec<String>> {
+        let mut out = Vec::new();
+        let mut st = self
+            .conn
+            .prepare(
+                "SELECT d.name, v.seq, o.kind, 'table' FROM versions v JOIN datasets d ON d.id = v.dataset_id
+                    JOIN objects o ON o.hash = v.hash WHERE o.kind != 'table'
+                 UNION ALL
+                 SELECT d.name, v.seq, o.kind, 'row_index' FROM versions v JOIN datasets d ON d.id = v.dataset_id
+                    JOIN objects o ON o.hash = v.row_index WHERE o.kind != 'row_index'",
+            )
+            .map_err(db_err)?;
+        let rows = st
+            .query_map([], |r| {
+                Ok(format!(
+                    "version {}@{}: its {} object is recorded as kind {}",
+                    r.get::<_, String>(0)?,
+                    r.get::<_, i64>(1)?,
+                    r.get::<_, String>(3)?,
+                    r.get::<_, String>(2)?
+                ))
+            })
+            .map_err(db_err)?;
+        for r in rows {
+            out.push(r.map_err(db_err)?);
+        }
+        let mut st = self
+            .conn
+            .prepare(
+                "SELECT d.name, count(v.id), coalesce(max(v.seq), 0) FROM datasets d
+                 LEFT JOIN versions v ON v.dataset_id = d.id GROUP BY d.id
+                 HAVING count(v.id) != coalesce(max(v.seq), 0)",
+            )
+            .map_err(db_err)?;
+        let rows = st
+            .query_map([], |r| {
+                Ok(format!(
+                    "dataset {}: {} versions but numbers go up to {} (a version is missing)",
+                    r.get::<_, String>(0)?,
+                    r.get::<_, i64>(1)?,
+                    r.get::<_, i64>(2)?
+                ))
+            })
+            .map_err(db_err)?;
+        for r in rows {
+            out.push(r.map_err(db_err)?);
+        }
+        Ok(out)
+    }
+}
+
+fn parse_key(v: Option<String>) -> Option<Vec<String>> {
+    v.and_then(|s| serde_json::from_str(&s).ok())
+}
+
+fn bad_field(field: &str, value: &str) -> Error {
+    ErrorKind::Database(format!(
+        "unexpected value {value:?} in {field}; run `sluice verify`"
+    ))
+    .into()
+}
+
+fn parse_json_field<T: serde::de::DeserializeOwned>(text: &str, field: &str) -> Result<T> {
+    serde_json::from_str(text).map_err(|e| {
+        ErrorKind::Database(format!(
+            "{field} holds malformed JSON ({e}); run `sluice verify`"
+        ))
+        .into()
+    })
+}
+
+/// A step to record.
+pub struct NewStep<'a> {
+    pub kind: StepKind,
+    pub operation: Option<&'a str>,
+    pub params: Value,
+    pub agent: &'a Agent,
+    pub reason: Option<&'a str>,
+    pub started_at: String,
+    pub ended_at: String,
+    pub rows_in: Option<u64>,
+    pub rows_out: Option<u64>,
+    pub lineage: LineageKind,
+    pub source: Option<&'a SourceFile>,
+    /// (version id, role) of each input, in order.
+    pub inputs: Vec<(i64, &'a str)>,
+}
+
+/// A version to record.
+pub struct NewVersion<'a> {
+    pub dataset: &'a str,
+    /// When `Some`, the dataset's declared key is set to these columns.
+    pub key: Option<&'a [String]>,
+    pub step_id: i64,
+    pub hash: &'a str,
+    pub n_bytes: u64,
+    pub row_index: &'a str,
+    pub row_index_bytes: u64,
+    pub n_rows: u64,
+    pub header: &'a [String],
+    pub dialect: &'a Dialect,
+    pub null_tokens: &'a [String],
+    pub profiles: &'a [ColumnProfile],
+    pub created_at: &'a str,
+}
+
+/// An open write transaction.
+pub struct Tx<'c> {
+    tx: rusqlite::Transaction<'c>,
+}
+
+impl Tx<'_> {
+    fn agent_id(&self, agent: &Agent) -> Result<i64> {
+        self.tx
+            .execute(
+                "INSERT INTO agents (identity, kind, source) VALUES (?1, 'person', ?2)
+                 ON CONFLICT (identity) DO NOTHING",
+                params![agent.identity, agent.source],
+            )
+            .map_err(db_err)?;
+        self.tx
+            .query_row(
+                "SELECT id FROM agents WHERE identity = ?1",
+                params![agent.identity],
+                |r| r.get(0),
+            )
+            .map_err(db_err)
+    }
+
+    pub fn insert_step(&mut self, s: &NewStep<'_>) -> Result<i64> {
+        let agent_id = self.agent_id(s.agent)?;
+        let source = match s.source {
+            Some(src) => Some(serde_json::to_string(src).map_err(|e| Error::usage(e.to_string()))?),
+            None => None,
+        };
+        self.tx
+            .execute(
+                "INSERT INTO steps (kind, operation, params, agent_id, tool_version, reason,
+                    started_at, ended_at, rows_in, rows_out, lineage, source)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12)",
+                params![
+                    s.kind.as_str(),
+                    s.operation,
+                    canonical_json(&s.params),
+                    agent_id,
+                    crate::TOOL_VERSION,
+                    s.reason,
+                    s.started_at,
+                    s.ended_at,
+                    s.rows_in.map(|v| v as i64),
+                    s.rows_out.map(|v| v as i64),
+                    s.lineage.as_str(),
+                    source,
+                ],
+            )
+            .map_err(db_err)?;
+        let step_id = self.tx.last_insert_rowid();
+        for (pos, (vid, role)) in s.inputs.iter().enumerate() {
+            self.tx
+                .execute(
+                    "INSERT INTO step_inputs (step_id, position, version_id, role) VALUES (?1, ?2, ?3, ?4)",
+                    params![step_id, pos as i64, vid, role],
+                )
+                .map_err(db_err)?;
+        }
+        Ok(step_id)
+    }
+
+    pub fn insert_object(&mut self, hash: &str, n_bytes: u64, kind: &str, at: &str) -> Result<()> {
+        self.tx
+            .execute(
+                "INSERT INTO objects (hash, n_bytes, kind, created_at) VALUES (?1, ?2, ?3, ?4)
+                 ON CONFLICT (hash) DO NOTHING",
+                params![hash, n_bytes as i64, kind, at],
+            )
+            .map_err(db_err)?;
+        Ok(())
+    }
+
+    pub fn latest_version_hash(&self, dataset: &str) -> Result<Option<String>> {
+        self.tx
+            .query_row(
+                "SELECT v.hash FROM versions v JOIN datasets d ON d.id = v.dataset_id
+                 WHERE d.name = ?1 ORDER BY v.seq DESC LIMIT 1",
+                params![dataset],
+                |r| r.get(0),
+            )
+            .optional()
+            .map_err(db_err)
+    }
+
+    /// Records a version (creating its dataset when new) with its objects and profile, and
+    /// returns its id and 1-based number within the dataset.
+    pub fn insert_version(&mut self, v: &NewVersion<'_>) -> Result<(i64, u64)> {
+        let key_json = match v.key {
+            Some(k) => Some(serde_json::to_string(k).map_err(|e| Error::usage(e.to_string()))?),
+            None => None,
+        };
+        self.tx
+            .execute(
+                "INSERT INTO datasets (name, key_columns, created_at) VALUES (?1, ?2, ?3)
+                 ON CONFLICT (name) DO NOTHING",
+                params![v.dataset, key_json, v.created_at],
+            )
+            .map_err(db_err)?;
+        if let Some(k) = &key_json {
+            self.tx
+                .execute(
+                    "UPDATE datasets SET key_columns = ?2 WHERE name = ?1",
+                    params![v.dataset, k],
+                )
+                .map_err(db_err)?;
+        }
+        let dataset_id: i64 = self
+            .tx
+            .query_row(
+                "SELECT id FROM datasets WHERE name = ?1",
+                params![v.dataset],
+                |r| r.get(0),
+            )
+            .map_err(db_err)?;
+        let seq: i64 = self
+            .tx
+            .query_row(
+                "SELECT coalesce(max(seq), 0) + 1 FROM versions WHERE dataset_id = ?1",
+                params![dataset_id],
+                |r| r.get(0),
+            )
+            .map_err(db_err)?;
+        self.insert_object(v.hash, v.n_bytes, "table", v.created_at)?;
+        self.insert_object(v.row_index, v.row_index_bytes, "row_index", v.created_at)?;
+        self.tx
+            .execute(
+                "INSERT INTO versions (dataset_id, seq, hash, row_index, step_id, n_rows, n_cols,
+                    n_bytes, header, dialect, null_tokens, created_at)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12)",
+                params![
+                    dataset_id,
+                    seq,
+                    v.hash,
+                    v.row_index,
+                    v.step_id,
+                    v.n_rows as i64,
+                    v.header.len() as i64,
+                    v.n_bytes as i64,
+                    json(v.header),
+                    json(v.dialect),
+                    json(v.null_tokens),
+                    v.created_at,
+                ],
+            )
+            .map_err(db_err)?;
+        let version_id = self.tx.last_insert_rowid();
+        for (i, p) in v.profiles.iter().enumerate() {
+            self.tx
+                .execute(
+                    "INSERT INTO column_profiles (version_id, col_idx, name, inferred_type, n_blank,
+                        n_distinct, distinct_exact, min_value, max_value, min_len, max_len)
+                     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11)",
+                    params![
+                        version_id,
+                        i as i64,
+                        p.name,
+                        p.inferred_type,
+                        p.n_blank as i64,
+                        p.n_distinct as i64,
+                        i64::from(p.distinct_exact),
+                        p.min,
+                        p.max,
+                        p.min_len.map(|x| x as i64),
+                        p.max_len.map(|x| x as i64),
+                    ],
+                )
+                .map_err(db_err)?;
+        }
+        Ok((version_id, seq as u64))
+    }
+
+    /// Appends one entry to the audit chain, inside this transaction.
+    pub fn audit(
+        &mut self,
+        agent: &Agent,
+        action: &str,
+        subject: &str,
+        details: &Value,
+        at: &str,
+    ) -> Result<AuditEntry> {
+        super::audit::append(&self.tx, agent, action, subject, details, at)
+    }
+}
+
+fn json<T: serde::Serialize + ?Sized>(x: &T) -> String {
+    serde_json::to_string(x).unwrap_or_else(|_| "null".to_string())
+}

@@ -1,0 +1,336 @@
+//! Immutable, content-addressed object files under `.sluice/objects/`.
+//!
+//! An object is named by the BLAKE3 hash of its bytes and lives at `objects/ab/cdef…` (the
+//! first two hex digits are a fan-out folder). It is written to `.sluice/tmp/`, fsynced, renamed
+//! into place and its folder fsynced; after that it is never modified. Objects are stored
+//! uncompressed: `cat` is then a plain copy, and the bytes on disk are the bytes that were hashed,
+//! so anyone can check an object with any BLAKE3 tool. Compression can come later behind the
+//! same [`ObjectBackend`] trait, which also lets tests inject write failures.
+
+use std::fs::{self, File, OpenOptions};
+use std::io::{self, Read, Write};
+use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicU64, Ordering};
+
+use crate::error::{ErrorKind, Result};
+use crate::hash::{Hash, STREAM_BUF};
+
+/// A temporary object being written. Dropping it without `persist` removes the temporary file.
+pub trait TempObject: Write + Send {
+    /// Makes the bytes durable and gives them their final name.
+    fn persist(self: Box<Self>, hash: &Hash) -> io::Result<()>;
+}
+
+/// Where object bytes live. The file-system backend is the real one; tests wrap it to fail.
+pub trait ObjectBackend: Send + Sync {
+    fn create_temp(&self) -> io::Result<Box<dyn TempObject>>;
+    fn open(&self, hash: &Hash) -> io::Result<Box<dyn Read + Send>>;
+    fn exists(&self, hash: &Hash) -> bool;
+    fn size(&self, hash: &Hash) -> io::Result<u64>;
+    /// Every object name present, for `verify` and `gc`. Names that are not hashes are returned
+    /// as strays.
+    fn list(&self) -> io::Result<(Vec<Hash>, Vec<PathBuf>)>;
+    /// A description of where an object lives, for messages.
+    fn describe(&self, hash: &Hash) -> PathBuf;
+}
+
+/// The real backend: files under a `.sluice/` folder.
+pub struct FsBackend {
+    objects: PathBuf,
+    tmp: PathBuf,
+}
+
+static TEMP_COUNTER: AtomicU64 = AtomicU64::new(0);
+
+impl FsBackend {
+    pub fn new(store_dir: &Path) -> Self {
+        FsBackend {
+            objects: store_dir.join("objects"),
+            tmp: store_dir.join("tmp"),
+        }
+    }
+
+    fn path_of(&self, hash: &Hash) -> PathBuf {
+        let hex = hash.hex();
+        self.objects.join(&hex[..2]).join(&hex[2..])
+    }
+}
+
+struct FsTemp {
+    file: Option<File>,
+    path: PathBuf,
+    objects: PathBuf,
+}
+
+impl Write for FsTemp {
+    fn write(&mut self, buf: &[u8]) -> io::Result<usize> {
+        match &mut self.file {
+            Some(f) => f.write(buf),
+            None => Err(io::Error::other("temporary object already closed")),
+        }
+    }
+    fn write_all(&mut self, buf: &[u8]) -> io::Result<()> {
+        match &mut self.file {
+            Some(f) => f.write_all(buf),
+            None => Err(io::Error::other("temporary object already closed")),
+        }
+    }
+    fn flush(&mut self) -> io::Result<()> {
+        Ok(())
+    }
+}
+
+impl TempObject for FsTemp {
+    fn persist(mut self: Box<Self>, hash: &Hash) -> io::Result<()> {
+        let file = self
+            .file
+            .take()
+            .ok_or_else(|| io::Error::other("temporary object already closed"))?;
+        file.sync_all()?;
+        drop(file);
+        let hex = hash.hex();
+        let dir = self.objects.join(&hex[..2]);
+        let created_dir = !dir.exists();
+        fs::create_dir_all(&dir)?;
+        let dest = dir.join(&hex[2..]);
+        if dest.exists() {
+            // Same name means same bytes: the object is already there, and existing objects are
+            // never modified.
+            fs::remove_file(&self.path)?;
+        } else {
+            fs::rename(&self.path, &dest)?;
+            sync_dir(&dir)?;
+            if created_dir {
+                sync_dir(&self.objects)?;
+            }
+        }
+        Ok(())
+    }
+}
+
+impl Drop for FsTemp {
+    fn drop(&mut self) {
+        if self.file.take().is_some() || self.path.exists() {
+            let _ = fs::remove_file(&self.path);
+        }
+    }
+}
+
+fn sync_dir(dir: &Path) -> io::Result<()> {
+    File::open(dir)?.sync_all()
+}
+
+impl ObjectBackend for FsBackend {
+    fn create_temp(&self) -> io::Result<Box<dyn TempObject>> {
+        fs::create_dir_all(&self.tmp)?;
+        let n = TEMP_COUNTER.fetch_add(1, Ordering::Relaxed);
+        let nanos = std::time::SystemTime::now()
+            .duration_since(std::time::UNIX_EPOCH)
+            .map(|d| d.subsec_nanos())
+            .unwrap_or(0);
+        let path = self
+            .tmp
+            .join(format!("obj-{}-{n}-{nanos:09}.part", std::process::id()));
+        let file = OpenOptions::new()
+            .write(true)
+            .create_new(true)
+            .open(&path)?;
+        Ok(Box::new(FsTemp {
+            file: Some(file),
+            path,
+            objects: self.objects.clone(),
+        }))
+    }
+
+    fn open(&self, hash: &Hash) -> io::Result<Box<dyn Read + Send>> {
+        let p = self.path_of(hash);
+        // The store never follows a symlink out of itself: objects must be plain files.
+        let meta = fs::symlink_metadata(&p)?;
+        if !meta.file_type().is_file() {
+            return Err(io::Error::new(
+                io::ErrorKind::InvalidData,
+                "object is not a regular file",
+            ));
+        }
+        Ok(Box::new(File::open(p)?))
+    }
+
+    fn exists(&self, hash: &Hash) -> bool {
+        fs::symlink_metadata(self.path_of(hash))
+            .map(|m| m.file_type().is_file())
+            .unwrap_or(false)
+    }
+
+    fn size(&self, hash: &Hash) -> io::Result<u64> {
+        Ok(fs::symlink_metadata(self.path_of(hash))?.len())
+    }
+
+    fn list(&self) -> io::Result<(Vec<Hash>, Vec<PathBuf>)> {
+        let mut found = Vec::new();
+        let mut strays = Vec::new();
+        if !self.objects.exists() {
+            return Ok((found, strays));
+        }
+        for fan in fs::read_dir(&self.objects)? {
+            let fan = fan?;
+            let fan_name = fan.file_name().to_string_lossy().into_owned();
+            if !fan.file_type()?.is_dir() {
+                strays.push(fan.path());
+                continue;
+            }
+            for obj in fs::read_dir(fan.path())? {
+                let obj = obj?;
+                let name = format!("{fan_name}{}", obj.file_name().to_string_lossy());
+                match name.parse::<Hash>() {
+                    Ok(h) if obj.file_type()?.is_file() && name == h.hex() => found.push(h),
+                    _ => strays.push(obj.path()),
+                }
+            }
+        }
+        found.sort();
+        strays.sort();
+        Ok((found, strays))
+    }
+
+    fn describe(&self, hash: &Hash) -> PathBuf {
+        self.path_of(hash)
+    }
+}
+
+/// The object half of a store: writes and reads objects through a backend, always hashing.
+pub struct Objects {
+    backend: Box<dyn ObjectBackend>,
+}
+
+/// A hashing writer for one new object. `finish` persists it and returns its name.
+pub struct ObjectWriter {
+    temp: Box<dyn TempObject>,
+    hasher: blake3::Hasher,
+    n_bytes: u64,
+}
+
+impl ObjectWriter {
+    pub fn write(&mut self, data: &[u8]) -> io::Result<()> {
+        self.hasher.update(data);
+        self.n_bytes += data.len() as u64;
+        self.temp.write_all(data)
+    }
+
+    pub fn n_bytes(&self) -> u64 {
+        self.n_bytes
+    }
+
+    /// The hash of what has been written so far.
+    pub fn hash(&self) -> Hash {
+        Hash::from_bytes(*self.hasher.finalize().as_bytes())
+    }
+
+    pub fn finish(self) -> io::Result<(Hash, u64)> {
+        let h = self.hash();
+        self.temp.persist(&h)?;
+        Ok((h, self.n_bytes))
+    }
+}
+
+impl Objects {
+    pub fn new(backend: Box<dyn ObjectBackend>) -> Self {
+        Objects { backend }
+    }
+
+    pub fn backend(&self) -> &dyn ObjectBackend {
+        &*self.backend
+    }
+
+    pub fn writer(&self) -> io::Result<ObjectWriter> {
+        Ok(ObjectWriter {
+            temp: self.backend.create_temp()?,
+            hasher: blake3::Hasher::new(),
+            n_bytes: 0,
+        })
+    }
+
+    /// Stores everything `r` yields as one object, streaming in [`STREAM_BUF`] pieces.
+    pub fn put_reader(&self, mut r: impl Read) -> io::Result<(Hash, u64)> {
+        let mut w = self.writer()?;
+        let mut buf = vec![0u8; STREAM_BUF];
+        loop {
+            let n = match r.read(&mut buf) {
+                Ok(0) => break,
+                Ok(n) => n,
+                Err(e) if e.kind() == io::ErrorKind::Interrupted => continue,
+                Err(e) => return Err(e),
+            };
+            w.write(&buf[..n])?;
+        }
+        w.finish()
+    }
+
+    pub fn put_bytes(&self, data: &[u8]) -> io::Result<(Hash, u64)> {
+        let mut w = self.writer()?;
+        w.write(data)?;
+        w.finish()
+    }
+
+    pub fn exists(&self, hash: &Hash) -> bool {
+        self.backend.exists(hash)
+    }
+
+    /// Copies object `hash` to `out`, checking the hash as it goes. The bytes are written before
+    /// the check completes (the object may be larger than memory), so on a mismatch the caller
+    /// gets an error after the damaged bytes; `cat -o FILE` writes to a temporary file first.
+    pub fn copy_to(&self, hash: &Hash, out: &mut dyn Write) -> Result<u64> {
+        let mut r = self.open_raw(hash)?;
+        let mut hasher = blake3::Hasher::new();
+        let mut buf = vec![0u8; STREAM_BUF];
+        let mut n_bytes = 0u64;
+        let path = self.backend.describe(hash);
+        loop {
+            let n = match r.read(&mut buf) {
+                Ok(0) => break,
+                Ok(n) => n,
+                Err(e) if e.kind() == io::ErrorKind::Interrupted => continue,
+                Err(e) => return Err(crate::Error::io(&path, e)),
+            };
+            hasher.update(&buf[..n]);
+            n_bytes += n as u64;
+            out.write_all(&buf[..n])
+                .map_err(|e| crate::Error::io(Path::new("output"), e))?;
+        }
+        let actual = Hash::from_bytes(*hasher.finalize().as_bytes());
+        if actual != *hash {
+            return Err(ErrorKind::ObjectCorrupt {
+                hash: hash.hex(),
+                actual: actual.hex(),
+            }
+            .into());
+        }
+        Ok(n_bytes)
+    }
+
+    /// Reads a whole object into memory, checking its hash. For small objects only.
+    pub fn read_all(&self, hash: &Hash) -> Result<Vec<u8>> {
+        let mut v = Vec::new();
+        self.copy_to(hash, &mut v)?;
+        Ok(v)
+    }
+
+    /// Opens an object for reading without checking its hash (callers that stream large objects
+    /// check the hash themselves, or rely on `verify`).
+    pub fn open_raw(&self, hash: &Hash) -> Result<Box<dyn Read + Send>> {
+        self.backend.open(hash).map_err(|e| {
+            if e.kind() == io::ErrorKind::NotFound {
+                ErrorKind::ObjectMissing { hash: hash.hex() }.into()
+            } else {
+                crate::Error::io(&self.backend.describe(hash), e)
+            }
+        })
+    }
+
+    /// Re-hashes object `hash`; `Ok(None)` when intact, `Ok(Some(actual))` when damaged.
+    pub fn check(&self, hash: &Hash) -> Result<Option<Hash>> {
+        let r = self.open_raw(hash)?;
+        let (actual, _) = crate::hash::hash_reader(r)
+            .map_err(|e| crate::Error::io(&self.backend.describe(hash), e))?;
+        Ok(if actual == *hash { None } else { Some(actual) })
+    }
+}

@@ -1,0 +1,354 @@
+//! A push parser for delimited text: feed it the input in pieces of any size and it calls back
+//! once per record, with the record's fields and where it started (byte offset and line). It is
+//! built on `csv_core` (RFC 4180 quoting; CRLF, LF and CR all end a record) and adds what intake
+//! needs on top: positions that count every byte, line numbers that count LF, CRLF and lone CR
+//! alike, and detection of a quoted field left open at the end of the input.
+//!
+//! Blank lines between records are skipped, as csv_core does; they still count as lines.
+
+use csv_core::{ReadRecordResult, Reader, ReaderBuilder};
+
+/// One parsed record. Field `i` is `fields[ends[i-1]..ends[i]]` (with `ends[-1]` = 0).
+pub struct RawRecord<'a> {
+    pub fields: &'a [u8],
+    pub ends: &'a [usize],
+    /// 0-based byte offset of the record's first byte.
+    pub byte: u64,
+    /// 1-based line on which the record starts.
+    pub line: u64,
+    /// 0-based index of the record among all records (header included).
+    pub index: u64,
+}
+
+impl RawRecord<'_> {
+    pub fn len(&self) -> usize {
+        self.ends.len()
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.ends.is_empty()
+    }
+
+    pub fn field(&self, i: usize) -> &[u8] {
+        let start = if i == 0 { 0 } else { self.ends[i - 1] };
+        &self.fields[start..self.ends[i]]
+    }
+
+    pub fn iter(&self) -> impl Iterator<Item = &[u8]> + '_ {
+        (0..self.ends.len()).map(move |i| self.field(i))
+    }
+}
+
+/// Why parsing stopped early at the end of the input.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Unterminated {
+    /// Where the record holding the open quote starts.
+    pub byte: u64,
+    pub line: u64,
+    pub index: u64,
+}
+
+pub struct Parser {
+    rdr: Reader,
+    out: Vec<u8>,
+    ends: Vec<usize>,
+    out_len: usize,
+    n_ends: usize,
+    /// Bytes consumed so far, plus the starting offset.
+    consumed: u64,
+    /// Line terminators seen so far (so the current line is `lines + 1`).
+    lines: u64,
+    /// The last byte seen was a CR whose partner (an LF or not) is in the next piece.
+    pending_cr: bool,
+    in_record: bool,
+    rec_byte: u64,
+    rec_line: u64,
+    n_records: u64,
+}
+
+impl Parser {
+    /// A parser for fields separated by `delimiter`; positions start at `start_offset` (the
+    /// length of a byte-order mark that was removed before parsing, for instance).
+    pub fn new(delimiter: u8, start_offset: u64) -> Parser {
+        let rdr = ReaderBuilder::new()
+            .delimiter(delimiter)
+            .quote(b'"')
+            .double_quote(true)
+            .build();
+        Parser {
+            rdr,
+            out: vec![0; 64 * 1024],
+            ends: vec![0; 256],
+            out_len: 0,
+            n_ends: 0,
+            consumed: start_offset,
+            lines: 0,
+            pending_cr: false,
+            in_record: false,
+            rec_byte: 0,
+            rec_line: 0,
+            n_records: 0,
+        }
+    }
+
+    pub fn n_records(&self) -> u64 {
+        self.n_records
+    }
+
+    /// Bytes consumed so far (plus the start offset).
+    pub fn position(&self) -> u64 {
+        self.consumed
+    }
+
+    /// The current 1-based line.
+    pub fn line(&self) -> u64 {
+        self.lines + 1
+    }
+
+    fn count_lines(&mut self, s: &[u8]) {
+        if s.is_empty() {
+            return;
+        }
+        if self.pending_cr {
+            // A CR that ended the previous piece is a line break of its own unless this piece
+            // starts with its LF (then the LF is the one counted).
+            if s[0] != b'\n' {
+                self.lines += 1;
+            }
+            self.pending_cr = false;
+        }
+        for i in memchr::memchr2_iter(b'\n', b'\r', s) {
+            if s[i] == b'\n' {
+                self.lines += 1;
+            } else if i + 1 < s.len() {
+                if s[i + 1] != b'\n' {
+                    self.lines += 1;
+                }
+            } else {
+                self.pending_cr = true;
+            }
+        }
+    }
+
+    /// Parses `input`, calling `on_record` for every record completed inside it.
+    pub fn feed<E>(
+        &mut self,
+        mut input: &[u8],
+        on_record: &mut impl FnMut(RawRecord<'_>) -> Result<(), E>,
+    ) -> Result<(), E> {
+        loop {
+            if !self.in_record {
+                let skip = input
+                    .iter()
+                    .take_while(|&&b| b == b'\n' || b == b'\r')
+                    .count();
+                self.count_lines(&input[..skip]);
+                self.consumed += skip as u64;
+                input = &input[skip..];
+                if input.is_empty() {
+                    return Ok(());
+                }
+                if self.pending_cr {
+                    // The piece ended in CR and the next byte is not LF: settle the count
+                    // before recording where this record starts.
+                    self.lines += 1;
+                    self.pending_cr = false;
+                }
+                self.in_record = true;
+                self.rec_byte = self.consumed;
+                self.rec_line = self.lines + 1;
+            }
+            let (res, nin, nout, nend) = self.rdr.read_record(
+                input,
+                &mut self.out[self.out_len..],
+                &mut self.ends[self.n_ends..],
+            );
+            self.count_lines(&input[..nin]);
+            self.consumed += nin as u64;
+            input = &input[nin..];
+            self.out_len += nout;
+            self.n_ends += nend;
+            match res {
+                ReadRecordResult::InputEmpty => return Ok(()),
+                ReadRecordResult::OutputFull => {
+                    let n = self.out.len() * 2;
+                    self.out.resize(n, 0);
+                }
+                ReadRecordResult::OutputEndsFull => {
+                    let n = self.ends.len() * 2;
+                    self.ends.resize(n, 0);
+                }
+                ReadRecordResult::Record => self.emit(on_record)?,
+                ReadRecordResult::End => return Ok(()),
+            }
+        }
+    }
+
+    fn emit<E>(
+        &mut self,
+        on_record: &mut impl FnMut(RawRecord<'_>) -> Result<(), E>,
+    ) -> Result<(), E> {
+        let rec = RawRecord {
+            fields: &self.out[..self.out_len],
+            ends: &self.ends[..self.n_ends],
+            byte: self.rec_byte,
+            line: self.rec_line,
+            index: self.n_records,
+        };
+        let r = on_record(rec);
+        self.n_records += 1;
+        self.out_len = 0;
+        self.n_ends = 0;
+        self.in_record = false;
+        r
+    }
+
+    /// Ends the input: emits the last record if it had no line terminator, or reports a quoted
+    /// field that was never closed.
+    pub fn finish<E>(
+        &mut self,
+        on_record: &mut impl FnMut(RawRecord<'_>) -> Result<(), E>,
+    ) -> Result<Result<(), Unterminated>, E> {
+        if self.pending_cr {
+            self.lines += 1;
+            self.pending_cr = false;
+        }
+        if !self.in_record {
+            return Ok(Ok(()));
+        }
+        // csv_core ends an open quoted field silently at the end of input. To tell that case
+        // from a last record without a line terminator, give the reader a line break: outside
+        // quotes it completes the record (with the same fields the end of input would give),
+        // inside quotes it is copied into the field and the record stays open.
+        if self.out_len == self.out.len() {
+            let n = self.out.len() * 2;
+            self.out.resize(n, 0);
+        }
+        if self.n_ends == self.ends.len() {
+            let n = self.ends.len() * 2;
+            self.ends.resize(n, 0);
+        }
+        let (res, _, nout, nend) = self.rdr.read_record(
+            b"\n",
+            &mut self.out[self.out_len..],
+            &mut self.ends[self.n_ends..],
+        );
+        self.out_len += nout;
+        self.n_ends += nend;
+        match res {
+            ReadRecordResult::Record => {
+                self.emit(on_record)?;
+                return Ok(Ok(()));
+            }
+            ReadRecordResult::InputEmpty => {
+                return Ok(Err(Unterminated {
+                    byte: self.rec_byte,
+                    line: self.rec_line,
+                    index: self.n_records,
+                }))
+            }
+            _ => {}
+        }
+        loop {
+            let (res, _, nout, nend) = self.rdr.read_record(
+                &[],
+                &mut self.out[self.out_len..],
+                &mut self.ends[self.n_ends..],
+            );
+            self.out_len += nout;
+            self.n_ends += nend;
+            match res {
+                ReadRecordResult::OutputFull => {
+                    let n = self.out.len() * 2;
+                    self.out.resize(n, 0);
+                }
+                ReadRecordResult::OutputEndsFull => {
+                    let n = self.ends.len() * 2;
+                    self.ends.resize(n, 0);
+                }
+                ReadRecordResult::Record => {
+                    self.emit(on_record)?;
+                    return Ok(Ok(()));
+                }
+                ReadRecordResult::InputEmpty | ReadRecordResult::End => return Ok(Ok(())),
+            }
+        }
+    }
+}
+
+/// Parses a whole in-memory text into records of owned strings (for small inputs and tests).
+pub fn parse_all(data: &[u8], delimiter: u8) -> Result<Vec<Vec<Vec<u8>>>, Unterminated> {
+    let mut p = Parser::new(delimiter, 0);
+    let mut out = Vec::new();
+    let mut push = |r: RawRecord<'_>| -> Result<(), ()> {
+        out.push(r.iter().map(|f| f.to_vec()).collect());
+        Ok(())
+    };
+    let _ = p.feed(data, &mut push);
+    match p.finish(&mut push) {
+        Ok(Ok(())) => Ok(out),
+        Ok(Err(u)) => Err(u),
+        Err(()) => Ok(out),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn strs(recs: Vec<Vec<Vec<u8>>>) -> Vec<Vec<String>> {
+        recs.into_iter()
+            .map(|r| {
+                r.into_iter()
+                    .map(|f| String::from_utf8(f).unwrap())
+                    .collect()
+            })
+            .collect()
+    }
+
+    // RFC 4180 section 2, rules 5-7: quoted fields may hold commas, line breaks and doubled
+    // quotes. Expected fields as stated in the RFC (and as Python's csv module parses them).
+    #[test]
+    fn rfc4180_quoted_fields() {
+        let data = b"\"aaa\",\"b\r\nbb\",\"ccc\"\r\nzzz,\"y,y\",\"x\"\"x\"";
+        assert_eq!(
+            strs(parse_all(data, b',').unwrap()),
+            vec![vec!["aaa", "b\r\nbb", "ccc"], vec!["zzz", "y,y", "x\"x"]]
+        );
+    }
+
+    // RFC 4180 section 2: empty fields, quoted or not.
+    #[test]
+    fn rfc4180_empty_fields() {
+        let data = b"a,,c\r\n,\"\",\r\n";
+        assert_eq!(
+            strs(parse_all(data, b',').unwrap()),
+            vec![vec!["a", "", "c"], vec!["", "", ""]]
+        );
+    }
+
+    #[test]
+    fn positions_count_every_kind_of_line_break() {
+        let data = b"h1,h2\r\na,b\n\nc,d\re,f";
+        let mut p = Parser::new(b',', 0);
+        let mut seen = Vec::new();
+        let mut cb = |r: RawRecord<'_>| -> Result<(), ()> {
+            seen.push((r.index, r.byte, r.line));
+            Ok(())
+        };
+        // Feed one byte at a time: piece boundaries must not change positions.
+        for b in data.chunks(1) {
+            p.feed(b, &mut cb).unwrap();
+        }
+        p.finish(&mut cb).unwrap().unwrap();
+        assert_eq!(seen, vec![(0, 0, 1), (1, 7, 2), (2, 12, 4), (3, 16, 5)]);
+    }
+
+    #[test]
+    fn open_quote_at_end_is_reported() {
+        let err = parse_all(b"a,b\n1,\"never closed\n2,3\n", b',').unwrap_err();
+        assert_eq!((err.index, err.line, err.byte), (1, 2, 4));
+        // A closed quote followed by end of input is fine.
+        assert_eq!(parse_all(b"a,\"b\"", b',').unwrap().len(), 1);
+    }
+}

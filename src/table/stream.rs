@@ -1,0 +1,305 @@
+//! From bytes to records: byte-order mark, text encoding, delimiter detection and parsing, fed a
+//! piece at a time. Intake drives a [`RecordStream`] from a second thread's chunks; reading a
+//! stored version drives one from a file. Both therefore read a given set of bytes identically.
+
+use std::io::{self, Read};
+use std::path::Path;
+
+use encoding_rs::{CoderResult, Decoder, Encoding, UTF_8};
+
+use super::dialect::{detect_delimiter, detect_line_ending, SAMPLE_BYTES};
+use super::parse::{Parser, RawRecord};
+use crate::error::{Error, InputProblem, Position, Result};
+use crate::hash::STREAM_BUF;
+use crate::model::Dialect;
+
+pub const UTF8_BOM: &[u8] = b"\xEF\xBB\xBF";
+
+/// Looks up an encoding by its WHATWG label (`windows-1252`, `latin1`, `utf-16le`, ...).
+pub fn encoding_for(label: &str) -> Result<&'static Encoding> {
+    Encoding::for_label(label.trim().as_bytes()).ok_or_else(|| {
+        Error::usage(format!(
+            "unknown encoding \"{label}\"; use a WHATWG encoding label such as utf-8, windows-1252, iso-8859-15, shift_jis or utf-16le"
+        ))
+    })
+}
+
+/// Reads until `buf` is full or the input ends; returns the number of bytes read. Short only at
+/// the end of the input.
+pub fn read_full(r: &mut impl Read, buf: &mut [u8]) -> io::Result<usize> {
+    let mut n = 0;
+    while n < buf.len() {
+        match r.read(&mut buf[n..]) {
+            Ok(0) => break,
+            Ok(k) => n += k,
+            Err(e) if e.kind() == io::ErrorKind::Interrupted => {}
+            Err(e) => return Err(e),
+        }
+    }
+    Ok(n)
+}
+
+/// Validates UTF-8 across piece boundaries.
+#[derive(Default)]
+pub struct Utf8Check {
+    carry: Vec<u8>,
+    offset: u64,
+}
+
+impl Utf8Check {
+    /// Checks the next piece; `Err(byte)` gives the 0-based offset of the first invalid byte.
+    pub fn push(&mut self, mut s: &[u8]) -> std::result::Result<(), u64> {
+        if !self.carry.is_empty() {
+            // Complete the character split across pieces, one byte at a time.
+            while !self.carry.is_empty() && !s.is_empty() {
+                self.carry.push(s[0]);
+                s = &s[1..];
+                match std::str::from_utf8(&self.carry) {
+                    Ok(_) => {
+                        self.offset += self.carry.len() as u64;
+                        self.carry.clear();
+                    }
+                    Err(e) if e.error_len().is_some() => return Err(self.offset),
+                    Err(_) => {}
+                }
+            }
+            if s.is_empty() {
+                return Ok(());
+            }
+        }
+        match std::str::from_utf8(s) {
+            Ok(_) => {
+                self.offset += s.len() as u64;
+                Ok(())
+            }
+            Err(e) => {
+                let good = e.valid_up_to();
+                if e.error_len().is_some() {
+                    return Err(self.offset + good as u64);
+                }
+                self.offset += good as u64;
+                self.carry.extend_from_slice(&s[good..]);
+                Ok(())
+            }
+        }
+    }
+
+    /// The input ended: a character left incomplete is invalid.
+    pub fn finish(&self) -> std::result::Result<(), u64> {
+        if self.carry.is_empty() {
+            Ok(())
+        } else {
+            Err(self.offset)
+        }
+    }
+}
+
+/// How to read a table's bytes.
+#[derive(Debug, Clone)]
+pub struct ReadSettings {
+    /// `None`: detect from the first bytes.
+    pub delimiter: Option<u8>,
+    /// `None`: UTF-8 (validated elsewhere, a leading BOM removed).
+    pub encoding: Option<&'static Encoding>,
+}
+
+impl ReadSettings {
+    /// Settings that read a stored version exactly as its intake did.
+    pub fn for_dialect(d: &Dialect) -> Result<ReadSettings> {
+        Ok(ReadSettings {
+            delimiter: Some(d.delimiter_byte()),
+            encoding: if d.encoding == "utf-8" {
+                None
+            } else {
+                Some(encoding_for(&d.encoding)?)
+            },
+        })
+    }
+}
+
+/// Turns pieces of bytes into records.
+pub struct RecordStream<'p> {
+    path: &'p Path,
+    settings: ReadSettings,
+    decoder: Option<Decoder>,
+    decoded: Vec<u8>,
+    parser: Option<Parser>,
+    bom: bool,
+    line_ending: &'static str,
+    delimiter: u8,
+}
+
+impl<'p> RecordStream<'p> {
+    pub fn new(path: &'p Path, settings: ReadSettings) -> Self {
+        let decoder = settings
+            .encoding
+            .filter(|e| *e != UTF_8)
+            .map(|e| e.new_decoder_with_bom_removal());
+        RecordStream {
+            path,
+            settings,
+            decoder,
+            decoded: Vec::new(),
+            parser: None,
+            bom: false,
+            line_ending: "none",
+            delimiter: b',',
+        }
+    }
+
+    /// The dialect found so far (complete once the first piece was pushed).
+    pub fn dialect(&self, has_header: bool) -> Dialect {
+        Dialect {
+            delimiter: (self.delimiter as char).to_string(),
+            quote: "\"".to_string(),
+            line_ending: self.line_ending.to_string(),
+            bom: self.bom,
+            encoding: self
+                .settings
+                .encoding
+                .map_or("utf-8", |e| e.name())
+                .to_lowercase(),
+            has_header,
+            delimiter_detected: self.settings.delimiter.is_none(),
+        }
+    }
+
+    pub fn parser(&self) -> Option<&Parser> {
+        self.parser.as_ref()
+    }
+
+    /// Pushes the next piece. `is_last` tells whether the input ends after it (used only to
+    /// know whether the detection sample is the whole file).
+    pub fn push(
+        &mut self,
+        piece: &[u8],
+        is_last: bool,
+        on_record: &mut impl FnMut(RawRecord<'_>) -> Result<()>,
+    ) -> Result<()> {
+        let mut text: &[u8] = piece;
+        if let Some(dec) = self.decoder.as_mut() {
+            self.decoded.clear();
+            let need = dec
+                .max_utf8_buffer_length(piece.len())
+                .unwrap_or(piece.len() * 3 + 16);
+            self.decoded.resize(need, 0);
+            let (res, _read, written, had_errors) =
+                dec.decode_to_utf8(piece, &mut self.decoded, is_last);
+            debug_assert!(matches!(res, CoderResult::InputEmpty));
+            if had_errors {
+                let at = self.parser.as_ref().map_or(0, |p| p.position());
+                return Err(Error::input(
+                    self.path,
+                    Some(Position {
+                        byte: at,
+                        line: self.parser.as_ref().map_or(1, |p| p.line()),
+                        record: None,
+                        column: None,
+                    }),
+                    InputProblem::InvalidForEncoding {
+                        encoding: self
+                            .settings
+                            .encoding
+                            .map_or("utf-8", |e| e.name())
+                            .to_lowercase(),
+                    },
+                ));
+            }
+            self.decoded.truncate(written);
+            text = &self.decoded;
+        }
+        if self.parser.is_none() {
+            let mut start = 0u64;
+            if self.decoder.is_none() && text.starts_with(UTF8_BOM) {
+                self.bom = true;
+                text = &text[UTF8_BOM.len()..];
+                start = UTF8_BOM.len() as u64;
+            }
+            let sample = &text[..text.len().min(SAMPLE_BYTES)];
+            let complete = is_last && text.len() <= SAMPLE_BYTES;
+            self.delimiter = self
+                .settings
+                .delimiter
+                .unwrap_or_else(|| detect_delimiter(sample, complete));
+            self.line_ending = detect_line_ending(sample);
+            self.parser = Some(Parser::new(self.delimiter, start));
+        }
+        let parser = self.parser.as_mut().expect("parser set above");
+        // The decoder's buffer is borrowed through `text`; copy it out of the way only when it
+        // is the source, to satisfy the borrow of `self.parser` (no copy on the UTF-8 path).
+        if self.decoder.is_some() {
+            let buf = std::mem::take(&mut self.decoded);
+            let r = parser.feed(&buf, on_record);
+            self.decoded = buf;
+            r
+        } else {
+            parser.feed(text, on_record)
+        }
+    }
+
+    /// Ends the input.
+    pub fn finish(
+        &mut self,
+        on_record: &mut impl FnMut(RawRecord<'_>) -> Result<()>,
+    ) -> Result<()> {
+        let Some(parser) = self.parser.as_mut() else {
+            return Ok(());
+        };
+        match parser.finish(on_record)? {
+            Ok(()) => Ok(()),
+            Err(u) => Err(Error::input(
+                self.path,
+                Some(Position {
+                    byte: u.byte,
+                    line: u.line,
+                    record: Some(u.index),
+                    column: None,
+                }),
+                InputProblem::UnterminatedQuote,
+            )),
+        }
+    }
+}
+
+/// Reads all records of `src` with `settings`, single-threaded.
+pub fn for_each_record(
+    path: &Path,
+    mut src: impl Read,
+    settings: &ReadSettings,
+    mut on_record: impl FnMut(RawRecord<'_>) -> Result<()>,
+) -> Result<()> {
+    let mut rs = RecordStream::new(path, settings.clone());
+    let mut buf = vec![0u8; STREAM_BUF];
+    loop {
+        let n = read_full(&mut src, &mut buf).map_err(|e| Error::io(path, e))?;
+        let last = n < buf.len();
+        if n > 0 {
+            rs.push(&buf[..n], last, &mut on_record)?;
+        }
+        if last {
+            break;
+        }
+    }
+    rs.finish(&mut on_record)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn utf8_split_across_pieces() {
+        let s = "añb€c".as_bytes();
+        for cut in 0..s.len() {
+            let mut c = Utf8Check::default();
+            c.push(&s[..cut]).unwrap();
+            c.push(&s[cut..]).unwrap();
+            c.finish().unwrap();
+        }
+        let mut c = Utf8Check::default();
+        assert_eq!(c.push(b"ab\xffc"), Err(2));
+        let mut c = Utf8Check::default();
+        c.push(b"ab\xe2\x82").unwrap();
+        assert_eq!(c.finish(), Err(2));
+    }
+}
