@@ -1,0 +1,157 @@
+//! Shared helpers for the integration tests: each test gets a fresh temporary folder and runs
+//! the real `sluice` binary in it, with a fixed agent and no colour, and shows expected versus
+//! actual between rules when an assertion fails.
+
+#![allow(dead_code)]
+
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output};
+
+pub struct Sandbox {
+    pub dir: tempfile::TempDir,
+}
+
+pub const AGENT: &str = "Test Runner <runner@example.org>";
+
+pub struct Run {
+    pub code: i32,
+    pub stdout: String,
+    pub stderr: String,
+    pub raw_stdout: Vec<u8>,
+}
+
+impl Sandbox {
+    pub fn new() -> Sandbox {
+        Sandbox { dir: tempfile::tempdir().expect("temporary folder") }
+    }
+
+    /// A sandbox with an initialised store.
+    pub fn with_store() -> Sandbox {
+        let s = Sandbox::new();
+        s.ok(&["init"]);
+        s
+    }
+
+    pub fn path(&self) -> &Path {
+        self.dir.path()
+    }
+
+    pub fn file(&self, name: &str, content: impl AsRef<[u8]>) -> PathBuf {
+        let p = self.path().join(name);
+        if let Some(parent) = p.parent() {
+            std::fs::create_dir_all(parent).expect("create folder");
+        }
+        std::fs::write(&p, content).expect("write test file");
+        p
+    }
+
+    pub fn command(&self, args: &[&str]) -> Command {
+        let mut c = Command::new(env!("CARGO_BIN_EXE_sluice"));
+        c.args(args)
+            .current_dir(self.path())
+            .env("SLUICE_AGENT", AGENT)
+            .env("NO_COLOR", "1")
+            .env_remove("SLUICE_STORE");
+        c
+    }
+
+    pub fn run(&self, args: &[&str]) -> Run {
+        let out: Output = self.command(args).output().expect("run sluice");
+        Run {
+            code: out.status.code().unwrap_or(-1),
+            stdout: String::from_utf8_lossy(&out.stdout).into_owned(),
+            stderr: String::from_utf8_lossy(&out.stderr).into_owned(),
+            raw_stdout: out.stdout,
+        }
+    }
+
+    /// Runs and insists on exit code 0; returns stdout.
+    pub fn ok(&self, args: &[&str]) -> String {
+        let r = self.run(args);
+        if r.code != 0 {
+            panic!(
+                "\nsluice {} failed with exit code {}\n{}\nstdout:\n{}\n{}\nstderr:\n{}\n{}\n",
+                args.join(" "),
+                r.code,
+                rule(),
+                r.stdout,
+                rule(),
+                r.stderr,
+                rule()
+            );
+        }
+        r.stdout
+    }
+
+    /// Runs and insists on a failure with `code`; returns stderr.
+    pub fn fails(&self, code: i32, args: &[&str]) -> String {
+        let r = self.run(args);
+        if r.code != code {
+            panic!(
+                "\nsluice {}: expected exit code {code}, got {}\n{}\nstdout:\n{}\n{}\nstderr:\n{}\n{}\n",
+                args.join(" "),
+                r.code,
+                rule(),
+                r.stdout,
+                rule(),
+                r.stderr,
+                rule()
+            );
+        }
+        r.stderr
+    }
+
+    pub fn json(&self, args: &[&str]) -> serde_json::Value {
+        let out = self.ok(args);
+        serde_json::from_str(&out).unwrap_or_else(|e| panic!("not JSON ({e}):\n{out}"))
+    }
+
+    /// Everything observable about the store: object files with sizes, the steps and versions,
+    /// the audit log length, and leftover temporary files. Equal snapshots mean "unchanged".
+    pub fn snapshot(&self) -> String {
+        let mut files = Vec::new();
+        let root = self.path().join(".sluice");
+        collect(&root.join("objects"), &mut files);
+        collect(&root.join("tmp"), &mut files);
+        files.sort();
+        let log = self.ok(&["log", "--json"]);
+        let verify = self.json(&["verify", "--json"]);
+        format!(
+            "{}\n--\n{log}\n--\naudit entries: {}\n",
+            files.join("\n"),
+            verify["audit_entries_checked"]
+        )
+    }
+}
+
+fn collect(dir: &Path, out: &mut Vec<String>) {
+    if let Ok(rd) = std::fs::read_dir(dir) {
+        for e in rd.flatten() {
+            let p = e.path();
+            if p.is_dir() {
+                collect(&p, out);
+            } else {
+                let len = e.metadata().map(|m| m.len()).unwrap_or(0);
+                out.push(format!("{} {len}", p.display()));
+            }
+        }
+    }
+}
+
+pub fn rule() -> String {
+    "-".repeat(72)
+}
+
+/// Asserts `haystack` contains `needle`, showing both when it does not.
+#[track_caller]
+pub fn assert_contains(haystack: &str, needle: &str) {
+    if !haystack.contains(needle) {
+        panic!(
+            "\nexpected to find:\n{}\n{needle}\n{}\nin:\n{}\n{haystack}\n{}\n",
+            rule(),
+            rule(),
+            rule(),
+            rule()
+        );
+    }
+}

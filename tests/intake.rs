@@ -1,0 +1,343 @@
+//! Intake, cat, log, show and verify through the real binary, checked against outside
+//! references where one exists (RFC 4180, the palmerpenguins data set, Python's csv module).
+
+mod common;
+
+use std::process::Command;
+
+use common::*;
+
+fn penguins() -> Vec<u8> {
+    std::fs::read(concat!(
+        env!("CARGO_MANIFEST_DIR"),
+        "/tests/data/palmerpenguins/penguins.csv"
+    ))
+    .expect("vendored penguins.csv")
+}
+
+// RFC 4180 section 2, rules 5-7: the RFC's own examples of quoted fields with an embedded line
+// break, comma and doubled quote. Taken in as data (no header), the fields must be the ones
+// the RFC states, and `cat` must give the bytes back exactly.
+#[test]
+fn rfc4180_examples_parse_to_the_documented_fields_and_round_trip() {
+    let s = Sandbox::with_store();
+    let bytes = b"\"aaa\",\"b\r\nbb\",\"ccc\"\r\nzzz,\"y,y\",\"x\"\"x\"";
+    s.file("rfc.csv", bytes);
+    s.ok(&["ingest", "rfc.csv", "--as", "rfc", "--no-header"]);
+    let shown = s.json(&["show", "rfc", "--json"]);
+    assert_eq!(shown["version"]["n_rows"], 2);
+    assert_eq!(shown["version"]["n_cols"], 3);
+    assert_eq!(shown["version"]["header"], serde_json::json!(["col1", "col2", "col3"]));
+    let p = &shown["profile"];
+    // Fields per the RFC: col1 = aaa, zzz; col2 = "b\r\nbb" (5 chars), "y,y" (3); col3 = ccc, x"x.
+    assert_eq!((p[0]["min"].as_str(), p[0]["max"].as_str()), (Some("aaa"), Some("zzz")));
+    assert_eq!((p[1]["min_len"].as_u64(), p[1]["max_len"].as_u64()), (Some(3), Some(5)));
+    assert_eq!((p[2]["min"].as_str(), p[2]["max"].as_str()), (Some("ccc"), Some("x\"x")));
+    let r = s.run(&["cat", "rfc"]);
+    assert_eq!(r.code, 0);
+    assert_eq!(r.raw_stdout, bytes.to_vec());
+    // The second record starts on line 3: the first holds a line break inside quotes.
+    let store = sluice::store::Store::open(&s.path().join(".sluice")).unwrap();
+    let v = sluice::refs::resolve(&store.lineage, "rfc").unwrap();
+    let idx = store.objects.read_all(&v.row_index.parse().unwrap()).unwrap();
+    let second = sluice::table::rowindex::entry(&idx, 1).unwrap();
+    // "aaa" (5) , (1) "b\r\nbb" (7) , (1) "ccc" (5) \r\n (2) = 21 bytes before it.
+    assert_eq!((second.byte, second.line), (21, 3));
+}
+
+// RFC 4180 section 2: empty fields, quoted or not, are empty values.
+#[test]
+fn rfc4180_empty_fields_count_as_blanks() {
+    let s = Sandbox::with_store();
+    s.file("e.csv", "x,y,z\r\na,,c\r\n,\"\",\r\n");
+    s.ok(&["ingest", "e.csv", "--as", "empties"]);
+    let p = s.json(&["show", "empties", "--json"])["profile"].clone();
+    assert_eq!(p[0]["n_blank"], 1);
+    assert_eq!(p[1]["n_blank"], 2);
+    assert_eq!(p[1]["inferred_type"], "empty");
+    assert_eq!(p[2]["n_blank"], 1);
+}
+
+// The palmerpenguins data set (CC0; Horst, Hill & Gorman 2020; shipped in the PyPI package
+// palmerpenguins): 344 rows x 8 columns; NA counts bill_length_mm 2, bill_depth_mm 2,
+// flipper_length_mm 2, body_mass_g 2, sex 11, as documented with the data.
+#[test]
+fn palmerpenguins_profile_matches_the_published_counts() {
+    let s = Sandbox::with_store();
+    s.file("penguins.csv", penguins());
+    s.ok(&["ingest", "penguins.csv", "--as", "penguins", "--null-token", "NA"]);
+    let shown = s.json(&["show", "penguins", "--json"]);
+    assert_eq!(shown["version"]["n_rows"], 344);
+    assert_eq!(shown["version"]["n_cols"], 8);
+    let blanks: Vec<(String, u64)> = shown["profile"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|c| (c["name"].as_str().unwrap().to_string(), c["n_blank"].as_u64().unwrap()))
+        .collect();
+    let expect = [
+        ("species", 0),
+        ("island", 0),
+        ("bill_length_mm", 2),
+        ("bill_depth_mm", 2),
+        ("flipper_length_mm", 2),
+        ("body_mass_g", 2),
+        ("sex", 11),
+        ("year", 0),
+    ];
+    for ((name, n), (ename, en)) in blanks.iter().zip(expect) {
+        assert_eq!((name.as_str(), *n), (ename, en));
+    }
+    let p = &shown["profile"];
+    assert_eq!(p[2]["inferred_type"], "decimal");
+    assert_eq!(p[5]["inferred_type"], "integer");
+    assert_eq!(p[0]["n_distinct"], 3);
+    // Without the null token, NA is text and the measurement columns are not numeric.
+    s.ok(&["ingest", "penguins.csv", "--as", "penguins_raw"]);
+    let raw = s.json(&["show", "penguins_raw", "--json"]);
+    assert_eq!(raw["profile"][2]["inferred_type"], "text");
+    assert_eq!(raw["profile"][6]["n_blank"], 0);
+}
+
+fn python_profile(file: &std::path::Path, delimiter: &str, nulls: &[&str]) -> serde_json::Value {
+    let script = concat!(env!("CARGO_MANIFEST_DIR"), "/tests/reference/profile.py");
+    let mut c = Command::new("python3");
+    c.arg(script).arg(file).args(["--delimiter", delimiter]);
+    for n in nulls {
+        c.args(["--null", n]);
+    }
+    let out = c.output().expect("python3 is needed for the reference checks");
+    assert!(
+        out.status.success(),
+        "reference script failed: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    serde_json::from_slice(&out.stdout).expect("reference JSON")
+}
+
+fn assert_profile_matches_reference(s: &Sandbox, dataset: &str, reference: &serde_json::Value) {
+    let shown = s.json(&["show", dataset, "--json"]);
+    assert_eq!(shown["version"]["n_rows"], reference["n_rows"], "rows of {dataset}");
+    assert_eq!(shown["version"]["n_cols"], reference["n_cols"], "columns of {dataset}");
+    for (ours, theirs) in shown["profile"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .zip(reference["columns"].as_array().unwrap())
+    {
+        for key in ["name", "n_blank", "n_distinct", "min_len", "max_len"] {
+            assert_eq!(
+                ours[key], theirs[key],
+                "{dataset}: column {} field {key}",
+                theirs["name"]
+            );
+        }
+        assert_eq!(ours["distinct_exact"], true);
+    }
+}
+
+// Differential check against Python's csv module (a general-purpose reference): on the
+// vendored penguins file and on the demo's dirty exports (comma/LF, semicolon/CRLF/BOM,
+// comma/CRLF with quoted fields), row counts, blanks, distinct counts and lengths agree.
+#[test]
+fn profile_agrees_with_python_csv_module() {
+    let s = Sandbox::new();
+    let demo_dir = s.path().join("demo");
+    s.ok(&["demo", demo_dir.to_str().unwrap()]);
+    let p = s.file("penguins.csv", penguins());
+    let reference = python_profile(&p, ",", &["NA"]);
+    let ds = Sandbox { dir: tempfile::tempdir().unwrap() };
+    ds.ok(&["init"]);
+    ds.file("penguins.csv", penguins());
+    ds.ok(&["ingest", "penguins.csv", "--as", "penguins", "--null-token", "NA"]);
+    assert_profile_matches_reference(&ds, "penguins", &reference);
+
+    let demo = Sandbox { dir: tempfile::TempDir::new_in(s.path()).unwrap() };
+    std::fs::remove_dir_all(demo.path()).unwrap();
+    std::fs::rename(&demo_dir, demo.path()).unwrap();
+    for (file, dataset, delim) in [
+        ("quillby_2026q3.csv", "quillby_orders", ","),
+        ("oxwater_2026q3.csv", "oxwater_orders", ";"),
+        ("fennmarsh_2026q3.csv", "fennmarsh_orders", ","),
+    ] {
+        let reference = python_profile(&demo.path().join("exports").join(file), delim, &[]);
+        assert_profile_matches_reference(&demo, dataset, &reference);
+    }
+}
+
+#[test]
+fn dialect_of_each_demo_export_is_detected() {
+    let s = Sandbox::new();
+    s.ok(&["demo", "d"]);
+    let d = Sandbox { dir: tempfile::tempdir().unwrap() };
+    std::fs::remove_dir_all(d.path()).unwrap();
+    std::fs::rename(s.path().join("d"), d.path()).unwrap();
+    let ox = d.json(&["show", "oxwater_orders", "--json"]);
+    let dl = &ox["version"]["dialect"];
+    assert_eq!(dl["delimiter"], ";");
+    assert_eq!(dl["line_ending"], "crlf");
+    assert_eq!(dl["bom"], true);
+    assert_eq!(dl["delimiter_detected"], true);
+    // The BOM is not part of the first column's name.
+    assert_eq!(ox["version"]["header"][0], "order no");
+    let q = d.json(&["show", "quillby_orders", "--json"]);
+    assert_eq!(q["version"]["dialect"]["line_ending"], "lf");
+    assert_eq!(q["version"]["dialect"]["bom"], false);
+}
+
+#[test]
+fn tab_and_pipe_files_and_an_explicit_delimiter() {
+    let s = Sandbox::with_store();
+    s.file("t.tsv", "a\tb\n1\t2\n3\t4\n");
+    s.file("p.txt", "a|b|c\n1|2|3\n");
+    s.file("semi_as_comma.csv", "a;b,c\n1;2,3\n");
+    s.ok(&["ingest", "t.tsv", "--as", "tabbed"]);
+    s.ok(&["ingest", "p.txt", "--as", "piped"]);
+    s.ok(&["ingest", "semi_as_comma.csv", "--as", "given", "--delimiter", ","]);
+    assert_eq!(s.json(&["show", "tabbed", "--json"])["version"]["dialect"]["delimiter"], "\t");
+    assert_eq!(s.json(&["show", "piped", "--json"])["version"]["n_cols"], 3);
+    let g = s.json(&["show", "given", "--json"]);
+    assert_eq!(g["version"]["header"], serde_json::json!(["a;b", "c"]));
+    assert_eq!(g["version"]["dialect"]["delimiter_detected"], false);
+}
+
+#[test]
+fn identical_bytes_record_no_new_version() {
+    let s = Sandbox::with_store();
+    s.file("a.csv", "id,v\n1,x\n");
+    s.ok(&["ingest", "a.csv", "--as", "things"]);
+    let before = s.snapshot();
+    let out = s.ok(&["ingest", "a.csv", "--as", "things"]);
+    assert_contains(&out, "unchanged");
+    assert_contains(&out, "things@1");
+    assert_eq!(before, s.snapshot());
+    // Different bytes make version 2; going back to the first bytes makes version 3.
+    s.file("a.csv", "id,v\n1,y\n");
+    s.ok(&["ingest", "a.csv", "--as", "things"]);
+    s.file("a.csv", "id,v\n1,x\n");
+    let out = s.ok(&["ingest", "a.csv", "--as", "things"]);
+    assert_contains(&out, "things@3");
+    let v1 = s.json(&["show", "things@1", "--json"]);
+    let v3 = s.json(&["show", "things@3", "--json"]);
+    assert_eq!(v1["version"]["hash"], v3["version"]["hash"]);
+}
+
+#[test]
+fn references_by_name_number_and_hash_prefix() {
+    let s = Sandbox::with_store();
+    s.file("a.csv", "id\n1\n");
+    s.ok(&["ingest", "a.csv", "--as", "things"]);
+    s.file("a.csv", "id\n2\n");
+    s.ok(&["ingest", "a.csv", "--as", "things"]);
+    let v1 = s.json(&["show", "things@1", "--json"]);
+    let hash = v1["version"]["hash"].as_str().unwrap().to_string();
+    assert_eq!(hash, blake3::hash(b"id\n1\n").to_hex().to_string());
+    let by_prefix = s.json(&["show", &hash[..8], "--json"]);
+    assert_eq!(by_prefix["version"]["seq"], 1);
+    assert_eq!(by_prefix["is_latest"], false);
+    assert_eq!(s.json(&["show", "things", "--json"])["version"]["seq"], 2);
+    assert_eq!(s.run(&["cat", &hash[..6]]).raw_stdout, b"id\n1\n".to_vec());
+}
+
+#[test]
+fn log_lists_steps_newest_first_with_who_when_why() {
+    let s = Sandbox::with_store();
+    s.file("a.csv", "id\n1\n");
+    s.file("b.csv", "k\nz\n");
+    s.ok(&["ingest", "a.csv", "--as", "alpha", "--why", "first export"]);
+    s.ok(&["ingest", "b.csv", "--as", "beta", "--agent", "Jo Tester <jo@example.net>"]);
+    let log = s.json(&["log", "--json"]);
+    let entries = log.as_array().unwrap();
+    assert_eq!(entries.len(), 2);
+    assert_eq!(entries[0]["produced"][0]["dataset"], "beta");
+    // --agent wins over SLUICE_AGENT (set by the test helper).
+    assert_eq!(entries[0]["step"]["agent"], "Jo Tester <jo@example.net>");
+    assert_eq!(entries[1]["step"]["agent"], AGENT);
+    assert_eq!(entries[1]["step"]["reason"], "first export");
+    assert_eq!(entries[1]["step"]["kind"], "ingest");
+    assert_eq!(entries[1]["step"]["tool_version"], concat!("sluice ", env!("CARGO_PKG_VERSION")));
+    assert_eq!(entries[1]["step"]["rows_out"], 1);
+    assert!(entries[1]["step"]["source"]["absolute_path"].as_str().unwrap().ends_with("a.csv"));
+    let only_alpha = s.json(&["log", "alpha", "--json"]);
+    assert_eq!(only_alpha.as_array().unwrap().len(), 1);
+    let text = s.ok(&["log"]);
+    assert_contains(&text, "why   first export");
+    assert_contains(&text, "made  alpha@1");
+}
+
+#[test]
+fn key_is_declared_on_the_dataset() {
+    let s = Sandbox::with_store();
+    s.file("k.csv", "order_id,shop\n1,Quillby\n2,Oxwater\n");
+    s.ok(&["ingest", "k.csv", "--as", "orders", "--key", "order_id"]);
+    let shown = s.json(&["show", "orders", "--json"]);
+    assert_eq!(shown["key"], serde_json::json!(["order_id"]));
+}
+
+#[test]
+fn header_that_looks_like_data_gets_a_warning() {
+    let s = Sandbox::with_store();
+    s.file("n.csv", "1,2\n3,4\n5,6\n");
+    let r = s.run(&["ingest", "n.csv", "--as", "numbers"]);
+    assert_eq!(r.code, 0);
+    assert_contains(&r.stderr, "--no-header");
+}
+
+#[test]
+fn verify_names_a_flipped_byte_and_an_edited_audit_entry() {
+    let s = Sandbox::with_store();
+    s.file("a.csv", "id,v\n1,x\n2,y\n");
+    s.ok(&["ingest", "a.csv", "--as", "things"]);
+    assert_contains(&s.ok(&["verify"]), "intact");
+    let hash = blake3::hash(b"id,v\n1,x\n2,y\n").to_hex().to_string();
+    let obj = s.path().join(".sluice/objects").join(&hash[..2]).join(&hash[2..]);
+    let mut bytes = std::fs::read(&obj).unwrap();
+    bytes[3] ^= 0x01;
+    std::fs::write(&obj, &bytes).unwrap();
+    let r = s.run(&["verify"]);
+    assert_eq!(r.code, 1);
+    assert_contains(&r.stdout, &hash);
+    assert_contains(&r.stdout, "object_damaged");
+    bytes[3] ^= 0x01;
+    std::fs::write(&obj, &bytes).unwrap();
+    assert_eq!(s.run(&["verify"]).code, 0);
+
+    let db = rusqlite::Connection::open(s.path().join(".sluice/lineage.db")).unwrap();
+    db.execute("UPDATE audit_log SET subject = 'things@7' WHERE seq = 2", [])
+        .unwrap();
+    drop(db);
+    let r = s.run(&["verify", "--json"]);
+    assert_eq!(r.code, 1);
+    let report: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
+    assert_eq!(report["intact"], false);
+    let problems = report["problems"].as_array().unwrap();
+    assert!(problems
+        .iter()
+        .any(|p| p["kind"] == "audit" && p["detail"].as_str().unwrap().contains("audit entry 2")));
+}
+
+#[test]
+fn demo_builds_a_store_that_verifies() {
+    let s = Sandbox::new();
+    let out = s.ok(&["demo"]);
+    assert_contains(&out, "sluice-demo");
+    assert_contains(&out, "quillby_orders@1");
+    assert_contains(&out, "try next:");
+    let d = Sandbox { dir: tempfile::tempdir().unwrap() };
+    std::fs::remove_dir_all(d.path()).unwrap();
+    std::fs::rename(s.path().join("sluice-demo"), d.path()).unwrap();
+    assert_contains(&d.ok(&["verify"]), "intact");
+    assert_eq!(d.json(&["log", "--json"]).as_array().unwrap().len(), 4);
+    // A second demo in the same folder goes to a new folder.
+    assert_contains(&s.ok(&["demo"]), "sluice-demo");
+}
+
+#[test]
+fn cat_to_a_file_writes_exact_bytes() {
+    let s = Sandbox::with_store();
+    let bytes = penguins();
+    s.file("p.csv", &bytes);
+    s.ok(&["ingest", "p.csv", "--as", "penguins"]);
+    s.ok(&["cat", "penguins", "-o", "copy.csv"]);
+    assert_eq!(std::fs::read(s.path().join("copy.csv")).unwrap(), bytes);
+}
