@@ -168,6 +168,8 @@ pub enum ErrorKind {
     IsDirectory { path: PathBuf },
     #[error("no store here or in any parent folder of {start}; create one with `sluice init`, or point at one with --store PATH or SLUICE_STORE", start = start.display())]
     NoStore { start: PathBuf },
+    #[error("no store at {path}; create one with `sluice init {path}`, or point --store at a folder that holds a .sluice store", path = path.display())]
+    NoStoreAt { path: PathBuf },
     #[error("{path}: a store already exists here; use it as it is, or pick another folder", path = path.display())]
     StoreExists { path: PathBuf },
     #[error("{path}: this store was written by a newer sluice (schema version {found}; this build knows up to {known}); upgrade sluice to use it", path = path.display())]

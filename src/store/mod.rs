@@ -87,7 +87,7 @@ impl Store {
         };
         let db = dir.join(DB_FILE);
         if !db.is_file() {
-            return Err(ErrorKind::NoStore { start: dir }.into());
+            return Err(ErrorKind::NoStoreAt { path: dir }.into());
         }
         let lineage = Lineage::open(&db)?;
         Ok(Store {
