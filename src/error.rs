@@ -123,10 +123,14 @@ impl fmt::Display for InputProblem {
                 "blank value in key column \"{column}\"; a key must identify every row"
             ),
             DuplicateKeys { examples, total } => {
-                write!(f, "{total} key value{} occur more than once: ", if *total == 1 { "" } else { "s" })?;
+                write!(
+                    f,
+                    "{total} key value{} more than once: ",
+                    if *total == 1 { " occurs" } else { "s occur" }
+                )?;
                 let shown: Vec<String> = examples
                     .iter()
-                    .map(|(k, rows)| format!("{k} (data rows {})", join_u64(rows)))
+                    .map(|(k, lines)| format!("\"{k}\" (lines {})", join_u64(lines)))
                     .collect();
                 write!(f, "{}", shown.join("; "))?;
                 if (*total as usize) > examples.len() {
@@ -168,8 +172,8 @@ pub enum ErrorKind {
     IsDirectory { path: PathBuf },
     #[error("no store here or in any parent folder of {start}; create one with `sluice init`, or point at one with --store PATH or SLUICE_STORE", start = start.display())]
     NoStore { start: PathBuf },
-    #[error("no store at {path}; create one with `sluice init {path}`, or point --store at a folder that holds a .sluice store", path = path.display())]
-    NoStoreAt { path: PathBuf },
+    #[error("no store at {path}; create one with `sluice init {project}`, or point --store at a folder that holds a .sluice store", path = path.display(), project = project.display())]
+    NoStoreAt { path: PathBuf, project: PathBuf },
     #[error("{path}: a store already exists here; use it as it is, or pick another folder", path = path.display())]
     StoreExists { path: PathBuf },
     #[error("{path}: this store was written by a newer sluice (schema version {found}; this build knows up to {known}); upgrade sluice to use it", path = path.display())]
@@ -178,7 +182,7 @@ pub enum ErrorKind {
         found: i64,
         known: i64,
     },
-    #[error("{path}: the lineage database cannot be read ({detail}); run `sluice verify` for details, and restore .sluice/lineage.db from a backup if it is damaged", path = path.display())]
+    #[error("{path}: the lineage database cannot be read ({detail}); restore it from a backup (the objects beside it are plain files named by their BLAKE3 hash and can be checked on their own)", path = path.display())]
     CorruptDatabase { path: PathBuf, detail: String },
     #[error("lineage database: {0}")]
     Database(String),
@@ -275,6 +279,8 @@ impl Error {
             ErrorKind::ObjectCorrupt { .. }
             | ErrorKind::ObjectMissing { .. }
             | ErrorKind::CorruptDatabase { .. } => 1,
+            // A full disk is a failure of the system, not of the user's input.
+            ErrorKind::Io { source, .. } if source.kind() == std::io::ErrorKind::StorageFull => 1,
             _ => 2,
         }
     }

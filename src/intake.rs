@@ -681,7 +681,7 @@ fn check_duplicate_keys(
                 .iter()
                 .map(|&c| String::from_utf8_lossy(r.field(c)).into_owned())
                 .collect();
-            groups.entry(k.join(", ")).or_default().push(row + 1);
+            groups.entry(k.join(", ")).or_default().push(r.line);
         }
         row += 1;
         Ok(())

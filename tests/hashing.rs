@@ -12,10 +12,22 @@ use sluice::store::Store;
 
 /// (input length, expected hash) from the official vectors.
 const VECTORS: &[(usize, &str)] = &[
-    (0, "af1349b9f5f9a1a6a0404dea36dcc9499bcb25c9adc112b7cc9a93cae41f3262"),
-    (1023, "10108970eeda3eb932baac1428c7a2163b0e924c9a9e25b35bba72b28f70bd11"),
-    (1024, "42214739f095a406f3fc83deb889744ac00df831c10daa55189b5d121c855af7"),
-    (1025, "d00278ae47eb27b34faecf67b4fe263f82d5412916c1ffd97c8cb7fb814b8444"),
+    (
+        0,
+        "af1349b9f5f9a1a6a0404dea36dcc9499bcb25c9adc112b7cc9a93cae41f3262",
+    ),
+    (
+        1023,
+        "10108970eeda3eb932baac1428c7a2163b0e924c9a9e25b35bba72b28f70bd11",
+    ),
+    (
+        1024,
+        "42214739f095a406f3fc83deb889744ac00df831c10daa55189b5d121c855af7",
+    ),
+    (
+        1025,
+        "d00278ae47eb27b34faecf67b4fe263f82d5412916c1ffd97c8cb7fb814b8444",
+    ),
 ];
 
 fn vector_input(len: usize) -> Vec<u8> {
@@ -41,20 +53,36 @@ impl Read for Pieces {
 #[test]
 fn official_vectors_through_hash_reader_and_the_object_writer() {
     let dir = tempfile::tempdir().unwrap();
-    let agent = Agent { identity: "t".into(), source: "option".into() };
+    let agent = Agent {
+        identity: "t".into(),
+        source: "option".into(),
+    };
     let store = Store::init_recorded(dir.path(), &agent).unwrap();
     for &(len, expected) in VECTORS {
         let data = vector_input(len);
         for piece in [1usize, 7, 512, 1023, 1024, 1025, 1 << 20] {
-            let (h, n) = hash_reader(Pieces { data: data.clone(), at: 0, piece }).unwrap();
-            assert_eq!((h.hex().as_str(), n as usize), (expected, len), "hash_reader, pieces of {piece}");
+            let (h, n) = hash_reader(Pieces {
+                data: data.clone(),
+                at: 0,
+                piece,
+            })
+            .unwrap();
+            assert_eq!(
+                (h.hex().as_str(), n as usize),
+                (expected, len),
+                "hash_reader, pieces of {piece}"
+            );
             // The object writer is what intake's reading thread feeds, one piece per write.
             let mut w = store.objects.writer().unwrap();
             for chunk in data.chunks(piece) {
                 w.write(chunk).unwrap();
             }
             let (h, n) = w.finish().unwrap();
-            assert_eq!((h.hex().as_str(), n as usize), (expected, len), "object writer, pieces of {piece}");
+            assert_eq!(
+                (h.hex().as_str(), n as usize),
+                (expected, len),
+                "object writer, pieces of {piece}"
+            );
             // Reading it back checks the hash again.
             assert_eq!(store.objects.read_all(&h).unwrap(), data);
         }
@@ -71,13 +99,21 @@ fn ingest_records_the_blake3_of_the_bytes_across_piece_boundaries() {
         i += 1;
     }
     let dir = tempfile::tempdir().unwrap();
-    let agent = Agent { identity: "t".into(), source: "option".into() };
+    let agent = Agent {
+        identity: "t".into(),
+        source: "option".into(),
+    };
     let mut store = Store::init_recorded(dir.path(), &agent).unwrap();
     let path = dir.path().join("big.csv");
     std::fs::write(&path, &text).unwrap();
     let out = ingest(&mut store, &path, &options("big", agent)).unwrap();
-    let IngestOutcome::Recorded { version, .. } = out else { panic!("expected a new version") };
-    assert_eq!(version.hash, blake3::hash(text.as_bytes()).to_hex().to_string());
+    let IngestOutcome::Recorded { version, .. } = out else {
+        panic!("expected a new version")
+    };
+    assert_eq!(
+        version.hash,
+        blake3::hash(text.as_bytes()).to_hex().to_string()
+    );
     assert_eq!(version.n_rows, i);
 }
 

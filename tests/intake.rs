@@ -27,19 +27,34 @@ fn rfc4180_examples_parse_to_the_documented_fields_and_round_trip() {
     let shown = s.json(&["show", "rfc", "--json"]);
     assert_eq!(shown["version"]["n_rows"], 2);
     assert_eq!(shown["version"]["n_cols"], 3);
-    assert_eq!(shown["version"]["header"], serde_json::json!(["col1", "col2", "col3"]));
+    assert_eq!(
+        shown["version"]["header"],
+        serde_json::json!(["col1", "col2", "col3"])
+    );
     let p = &shown["profile"];
     // Fields per the RFC: col1 = aaa, zzz; col2 = "b\r\nbb" (5 chars), "y,y" (3); col3 = ccc, x"x.
-    assert_eq!((p[0]["min"].as_str(), p[0]["max"].as_str()), (Some("aaa"), Some("zzz")));
-    assert_eq!((p[1]["min_len"].as_u64(), p[1]["max_len"].as_u64()), (Some(3), Some(5)));
-    assert_eq!((p[2]["min"].as_str(), p[2]["max"].as_str()), (Some("ccc"), Some("x\"x")));
+    assert_eq!(
+        (p[0]["min"].as_str(), p[0]["max"].as_str()),
+        (Some("aaa"), Some("zzz"))
+    );
+    assert_eq!(
+        (p[1]["min_len"].as_u64(), p[1]["max_len"].as_u64()),
+        (Some(3), Some(5))
+    );
+    assert_eq!(
+        (p[2]["min"].as_str(), p[2]["max"].as_str()),
+        (Some("ccc"), Some("x\"x"))
+    );
     let r = s.run(&["cat", "rfc"]);
     assert_eq!(r.code, 0);
     assert_eq!(r.raw_stdout, bytes.to_vec());
     // The second record starts on line 3: the first holds a line break inside quotes.
     let store = sluice::store::Store::open(&s.path().join(".sluice")).unwrap();
     let v = sluice::refs::resolve(&store.lineage, "rfc").unwrap();
-    let idx = store.objects.read_all(&v.row_index.parse().unwrap()).unwrap();
+    let idx = store
+        .objects
+        .read_all(&v.row_index.parse().unwrap())
+        .unwrap();
     let second = sluice::table::rowindex::entry(&idx, 1).unwrap();
     // "aaa" (5) , (1) "b\r\nbb" (7) , (1) "ccc" (5) \r\n (2) = 21 bytes before it.
     assert_eq!((second.byte, second.line), (21, 3));
@@ -65,7 +80,14 @@ fn rfc4180_empty_fields_count_as_blanks() {
 fn palmerpenguins_profile_matches_the_published_counts() {
     let s = Sandbox::with_store();
     s.file("penguins.csv", penguins());
-    s.ok(&["ingest", "penguins.csv", "--as", "penguins", "--null-token", "NA"]);
+    s.ok(&[
+        "ingest",
+        "penguins.csv",
+        "--as",
+        "penguins",
+        "--null-token",
+        "NA",
+    ]);
     let shown = s.json(&["show", "penguins", "--json"]);
     assert_eq!(shown["version"]["n_rows"], 344);
     assert_eq!(shown["version"]["n_cols"], 8);
@@ -73,7 +95,12 @@ fn palmerpenguins_profile_matches_the_published_counts() {
         .as_array()
         .unwrap()
         .iter()
-        .map(|c| (c["name"].as_str().unwrap().to_string(), c["n_blank"].as_u64().unwrap()))
+        .map(|c| {
+            (
+                c["name"].as_str().unwrap().to_string(),
+                c["n_blank"].as_u64().unwrap(),
+            )
+        })
         .collect();
     let expect = [
         ("species", 0),
@@ -106,7 +133,9 @@ fn python_profile(file: &std::path::Path, delimiter: &str, nulls: &[&str]) -> se
     for n in nulls {
         c.args(["--null", n]);
     }
-    let out = c.output().expect("python3 is needed for the reference checks");
+    let out = c
+        .output()
+        .expect("python3 is needed for the reference checks");
     assert!(
         out.status.success(),
         "reference script failed: {}",
@@ -117,8 +146,14 @@ fn python_profile(file: &std::path::Path, delimiter: &str, nulls: &[&str]) -> se
 
 fn assert_profile_matches_reference(s: &Sandbox, dataset: &str, reference: &serde_json::Value) {
     let shown = s.json(&["show", dataset, "--json"]);
-    assert_eq!(shown["version"]["n_rows"], reference["n_rows"], "rows of {dataset}");
-    assert_eq!(shown["version"]["n_cols"], reference["n_cols"], "columns of {dataset}");
+    assert_eq!(
+        shown["version"]["n_rows"], reference["n_rows"],
+        "rows of {dataset}"
+    );
+    assert_eq!(
+        shown["version"]["n_cols"], reference["n_cols"],
+        "columns of {dataset}"
+    );
     for (ours, theirs) in shown["profile"]
         .as_array()
         .unwrap()
@@ -146,13 +181,24 @@ fn profile_agrees_with_python_csv_module() {
     s.ok(&["demo", demo_dir.to_str().unwrap()]);
     let p = s.file("penguins.csv", penguins());
     let reference = python_profile(&p, ",", &["NA"]);
-    let ds = Sandbox { dir: tempfile::tempdir().unwrap() };
+    let ds = Sandbox {
+        dir: tempfile::tempdir().unwrap(),
+    };
     ds.ok(&["init"]);
     ds.file("penguins.csv", penguins());
-    ds.ok(&["ingest", "penguins.csv", "--as", "penguins", "--null-token", "NA"]);
+    ds.ok(&[
+        "ingest",
+        "penguins.csv",
+        "--as",
+        "penguins",
+        "--null-token",
+        "NA",
+    ]);
     assert_profile_matches_reference(&ds, "penguins", &reference);
 
-    let demo = Sandbox { dir: tempfile::TempDir::new_in(s.path()).unwrap() };
+    let demo = Sandbox {
+        dir: tempfile::TempDir::new_in(s.path()).unwrap(),
+    };
     std::fs::remove_dir_all(demo.path()).unwrap();
     std::fs::rename(&demo_dir, demo.path()).unwrap();
     for (file, dataset, delim) in [
@@ -169,7 +215,9 @@ fn profile_agrees_with_python_csv_module() {
 fn dialect_of_each_demo_export_is_detected() {
     let s = Sandbox::new();
     s.ok(&["demo", "d"]);
-    let d = Sandbox { dir: tempfile::tempdir().unwrap() };
+    let d = Sandbox {
+        dir: tempfile::tempdir().unwrap(),
+    };
     std::fs::remove_dir_all(d.path()).unwrap();
     std::fs::rename(s.path().join("d"), d.path()).unwrap();
     let ox = d.json(&["show", "oxwater_orders", "--json"]);
@@ -193,8 +241,18 @@ fn tab_and_pipe_files_and_an_explicit_delimiter() {
     s.file("semi_as_comma.csv", "a;b,c\n1;2,3\n");
     s.ok(&["ingest", "t.tsv", "--as", "tabbed"]);
     s.ok(&["ingest", "p.txt", "--as", "piped"]);
-    s.ok(&["ingest", "semi_as_comma.csv", "--as", "given", "--delimiter", ","]);
-    assert_eq!(s.json(&["show", "tabbed", "--json"])["version"]["dialect"]["delimiter"], "\t");
+    s.ok(&[
+        "ingest",
+        "semi_as_comma.csv",
+        "--as",
+        "given",
+        "--delimiter",
+        ",",
+    ]);
+    assert_eq!(
+        s.json(&["show", "tabbed", "--json"])["version"]["dialect"]["delimiter"],
+        "\t"
+    );
     assert_eq!(s.json(&["show", "piped", "--json"])["version"]["n_cols"], 3);
     let g = s.json(&["show", "given", "--json"]);
     assert_eq!(g["version"]["header"], serde_json::json!(["a;b", "c"]));
@@ -245,7 +303,14 @@ fn log_lists_steps_newest_first_with_who_when_why() {
     s.file("a.csv", "id\n1\n");
     s.file("b.csv", "k\nz\n");
     s.ok(&["ingest", "a.csv", "--as", "alpha", "--why", "first export"]);
-    s.ok(&["ingest", "b.csv", "--as", "beta", "--agent", "Jo Tester <jo@example.net>"]);
+    s.ok(&[
+        "ingest",
+        "b.csv",
+        "--as",
+        "beta",
+        "--agent",
+        "Jo Tester <jo@example.net>",
+    ]);
     let log = s.json(&["log", "--json"]);
     let entries = log.as_array().unwrap();
     assert_eq!(entries.len(), 2);
@@ -255,9 +320,15 @@ fn log_lists_steps_newest_first_with_who_when_why() {
     assert_eq!(entries[1]["step"]["agent"], AGENT);
     assert_eq!(entries[1]["step"]["reason"], "first export");
     assert_eq!(entries[1]["step"]["kind"], "ingest");
-    assert_eq!(entries[1]["step"]["tool_version"], concat!("sluice ", env!("CARGO_PKG_VERSION")));
+    assert_eq!(
+        entries[1]["step"]["tool_version"],
+        concat!("sluice ", env!("CARGO_PKG_VERSION"))
+    );
     assert_eq!(entries[1]["step"]["rows_out"], 1);
-    assert!(entries[1]["step"]["source"]["absolute_path"].as_str().unwrap().ends_with("a.csv"));
+    assert!(entries[1]["step"]["source"]["absolute_path"]
+        .as_str()
+        .unwrap()
+        .ends_with("a.csv"));
     let only_alpha = s.json(&["log", "alpha", "--json"]);
     assert_eq!(only_alpha.as_array().unwrap().len(), 1);
     let text = s.ok(&["log"]);
@@ -290,7 +361,11 @@ fn verify_names_a_flipped_byte_and_an_edited_audit_entry() {
     s.ok(&["ingest", "a.csv", "--as", "things"]);
     assert_contains(&s.ok(&["verify"]), "intact");
     let hash = blake3::hash(b"id,v\n1,x\n2,y\n").to_hex().to_string();
-    let obj = s.path().join(".sluice/objects").join(&hash[..2]).join(&hash[2..]);
+    let obj = s
+        .path()
+        .join(".sluice/objects")
+        .join(&hash[..2])
+        .join(&hash[2..]);
     let mut bytes = std::fs::read(&obj).unwrap();
     bytes[3] ^= 0x01;
     std::fs::write(&obj, &bytes).unwrap();
@@ -303,8 +378,11 @@ fn verify_names_a_flipped_byte_and_an_edited_audit_entry() {
     assert_eq!(s.run(&["verify"]).code, 0);
 
     let db = rusqlite::Connection::open(s.path().join(".sluice/lineage.db")).unwrap();
-    db.execute("UPDATE audit_log SET subject = 'things@7' WHERE seq = 2", [])
-        .unwrap();
+    db.execute(
+        "UPDATE audit_log SET subject = 'things@7' WHERE seq = 2",
+        [],
+    )
+    .unwrap();
     drop(db);
     let r = s.run(&["verify", "--json"]);
     assert_eq!(r.code, 1);
@@ -323,7 +401,9 @@ fn demo_builds_a_store_that_verifies() {
     assert_contains(&out, "sluice-demo");
     assert_contains(&out, "quillby_orders@1");
     assert_contains(&out, "try next:");
-    let d = Sandbox { dir: tempfile::tempdir().unwrap() };
+    let d = Sandbox {
+        dir: tempfile::tempdir().unwrap(),
+    };
     std::fs::remove_dir_all(d.path()).unwrap();
     std::fs::rename(s.path().join("sluice-demo"), d.path()).unwrap();
     assert_contains(&d.ok(&["verify"]), "intact");

@@ -87,7 +87,16 @@ impl Store {
         };
         let db = dir.join(DB_FILE);
         if !db.is_file() {
-            return Err(ErrorKind::NoStoreAt { path: dir }.into());
+            // `sluice init` takes the project folder, the one that holds `.sluice`.
+            let project = if dir.file_name().is_some_and(|n| n == STORE_DIR) {
+                match dir.parent() {
+                    Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
+                    _ => PathBuf::from("."),
+                }
+            } else {
+                dir.clone()
+            };
+            return Err(ErrorKind::NoStoreAt { path: dir, project }.into());
         }
         let lineage = Lineage::open(&db)?;
         Ok(Store {

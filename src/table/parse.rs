@@ -5,8 +5,13 @@
 //! alike, and detection of a quoted field left open at the end of the input.
 //!
 //! Blank lines between records are skipped, as csv_core does; they still count as lines.
+//!
+//! When the text was decoded from another encoding, positions still count bytes of the
+//! original file: every consumed piece of UTF-8 is weighed by the length it has in that
+//! encoding (exact, because intake refuses text that does not decode cleanly).
 
 use csv_core::{ReadRecordResult, Reader, ReaderBuilder};
+use encoding_rs::Encoding;
 
 /// One parsed record. Field `i` is `fields[ends[i-1]..ends[i]]` (with `ends[-1]` = 0).
 pub struct RawRecord<'a> {
@@ -54,8 +59,12 @@ pub struct Parser {
     ends: Vec<usize>,
     out_len: usize,
     n_ends: usize,
-    /// Bytes consumed so far, plus the starting offset.
+    /// Bytes of the original input consumed so far, plus the starting offset.
     consumed: u64,
+    /// The encoding the text was decoded from (`None`: the text is the original).
+    source_encoding: Option<&'static Encoding>,
+    /// Bytes of an incomplete UTF-8 character at the end of the last weighed piece.
+    weigh_carry: Vec<u8>,
     /// Line terminators seen so far (so the current line is `lines + 1`).
     lines: u64,
     /// The last byte seen was a CR whose partner (an LF or not) is in the next piece.
@@ -70,6 +79,16 @@ impl Parser {
     /// A parser for fields separated by `delimiter`; positions start at `start_offset` (the
     /// length of a byte-order mark that was removed before parsing, for instance).
     pub fn new(delimiter: u8, start_offset: u64) -> Parser {
+        Parser::decoded(delimiter, start_offset, None)
+    }
+
+    /// A parser for text decoded from `source_encoding`, whose positions count bytes of the
+    /// original input.
+    pub fn decoded(
+        delimiter: u8,
+        start_offset: u64,
+        source_encoding: Option<&'static Encoding>,
+    ) -> Parser {
         let rdr = ReaderBuilder::new()
             .delimiter(delimiter)
             .quote(b'"')
@@ -82,6 +101,8 @@ impl Parser {
             out_len: 0,
             n_ends: 0,
             consumed: start_offset,
+            source_encoding: source_encoding.filter(|e| *e != encoding_rs::UTF_8),
+            weigh_carry: Vec::new(),
             lines: 0,
             pending_cr: false,
             in_record: false,
@@ -130,6 +151,14 @@ impl Parser {
         }
     }
 
+    fn advance(&mut self, s: &[u8]) {
+        self.count_lines(s);
+        self.consumed += match self.source_encoding {
+            None => s.len() as u64,
+            Some(enc) => original_len(enc, s, &mut self.weigh_carry),
+        };
+    }
+
     /// Parses `input`, calling `on_record` for every record completed inside it.
     pub fn feed<E>(
         &mut self,
@@ -142,8 +171,7 @@ impl Parser {
                     .iter()
                     .take_while(|&&b| b == b'\n' || b == b'\r')
                     .count();
-                self.count_lines(&input[..skip]);
-                self.consumed += skip as u64;
+                self.advance(&input[..skip]);
                 input = &input[skip..];
                 if input.is_empty() {
                     return Ok(());
@@ -163,8 +191,7 @@ impl Parser {
                 &mut self.out[self.out_len..],
                 &mut self.ends[self.n_ends..],
             );
-            self.count_lines(&input[..nin]);
-            self.consumed += nin as u64;
+            self.advance(&input[..nin]);
             input = &input[nin..];
             self.out_len += nout;
             self.n_ends += nend;
@@ -274,6 +301,47 @@ impl Parser {
             }
         }
     }
+}
+
+/// The length in `enc` of the UTF-8 bytes `s`. A character cut at the end of `s` is kept in
+/// `carry` and weighed with the next piece.
+pub fn original_len(enc: &'static Encoding, s: &[u8], carry: &mut Vec<u8>) -> u64 {
+    // Count characters by their leading bytes, so pieces may split a character anywhere.
+    let leading = |b: &u8| (b & 0xC0) != 0x80;
+    if enc.is_single_byte() {
+        return s.iter().filter(|b| leading(b)).count() as u64;
+    }
+    if enc == encoding_rs::UTF_16LE || enc == encoding_rs::UTF_16BE {
+        let chars = s.iter().filter(|b| leading(b)).count() as u64;
+        let astral = s.iter().filter(|&&b| b >= 0xF0).count() as u64;
+        return 2 * chars + 2 * astral;
+    }
+    // Multi-byte legacy encodings: encode the complete characters and count.
+    carry.extend_from_slice(s);
+    let valid = match std::str::from_utf8(carry) {
+        Ok(t) => t.len(),
+        Err(e) => e.valid_up_to(),
+    };
+    let text = std::str::from_utf8(&carry[..valid]).unwrap_or("");
+    let mut encoder = enc.new_encoder();
+    let mut scratch = vec![0u8; 4096];
+    let mut total = 0u64;
+    let mut rest = text;
+    loop {
+        let (res, read, written) =
+            encoder.encode_from_utf8_without_replacement(rest, &mut scratch, false);
+        total += written as u64;
+        rest = &rest[read..];
+        match res {
+            encoding_rs::EncoderResult::InputEmpty => break,
+            encoding_rs::EncoderResult::OutputFull => {}
+            // Text that came out of this decoder always encodes back; count the character as
+            // one byte rather than stop.
+            encoding_rs::EncoderResult::Unmappable(_) => total += 1,
+        }
+    }
+    carry.drain(..valid);
+    total
 }
 
 /// Parses a whole in-memory text into records of owned strings (for small inputs and tests).

@@ -5,7 +5,7 @@
 use std::io::{self, Read};
 use std::path::Path;
 
-use encoding_rs::{CoderResult, Decoder, Encoding, UTF_8};
+use encoding_rs::{Decoder, DecoderResult, Encoding, UTF_8};
 
 use super::dialect::{detect_delimiter, detect_line_ending, SAMPLE_BYTES};
 use super::parse::{Parser, RawRecord};
@@ -127,6 +127,10 @@ pub struct RecordStream<'p> {
     bom: bool,
     line_ending: &'static str,
     delimiter: u8,
+    /// Original bytes pushed before the current piece.
+    raw_seen: u64,
+    /// The first bytes of the input, to size a BOM the decoder removed.
+    first_bytes: Vec<u8>,
 }
 
 impl<'p> RecordStream<'p> {
@@ -144,6 +148,8 @@ impl<'p> RecordStream<'p> {
             bom: false,
             line_ending: "none",
             delimiter: b',',
+            raw_seen: 0,
+            first_bytes: Vec::new(),
         }
     }
 
@@ -176,38 +182,16 @@ impl<'p> RecordStream<'p> {
         is_last: bool,
         on_record: &mut impl FnMut(RawRecord<'_>) -> Result<()>,
     ) -> Result<()> {
+        if self.first_bytes.len() < 4 {
+            let take = (4 - self.first_bytes.len()).min(piece.len());
+            self.first_bytes.extend_from_slice(&piece[..take]);
+        }
         let mut text: &[u8] = piece;
-        if let Some(dec) = self.decoder.as_mut() {
-            self.decoded.clear();
-            let need = dec
-                .max_utf8_buffer_length(piece.len())
-                .unwrap_or(piece.len() * 3 + 16);
-            self.decoded.resize(need, 0);
-            let (res, _read, written, had_errors) =
-                dec.decode_to_utf8(piece, &mut self.decoded, is_last);
-            debug_assert!(matches!(res, CoderResult::InputEmpty));
-            if had_errors {
-                let at = self.parser.as_ref().map_or(0, |p| p.position());
-                return Err(Error::input(
-                    self.path,
-                    Some(Position {
-                        byte: at,
-                        line: self.parser.as_ref().map_or(1, |p| p.line()),
-                        record: None,
-                        column: None,
-                    }),
-                    InputProblem::InvalidForEncoding {
-                        encoding: self
-                            .settings
-                            .encoding
-                            .map_or("utf-8", |e| e.name())
-                            .to_lowercase(),
-                    },
-                ));
-            }
-            self.decoded.truncate(written);
+        if self.decoder.is_some() {
+            self.decode(piece, is_last)?;
             text = &self.decoded;
         }
+        self.raw_seen += piece.len() as u64;
         if self.parser.is_none() {
             let mut start = 0u64;
             if self.decoder.is_none() && text.starts_with(UTF8_BOM) {
@@ -222,7 +206,16 @@ impl<'p> RecordStream<'p> {
                 .delimiter
                 .unwrap_or_else(|| detect_delimiter(sample, complete));
             self.line_ending = detect_line_ending(sample);
-            self.parser = Some(Parser::new(self.delimiter, start));
+            // A BOM the decoder removed still occupies bytes of the file.
+            if self.decoder.is_some() {
+                start = self.decoded_bom_len();
+                self.bom = start > 0;
+            }
+            self.parser = Some(Parser::decoded(
+                self.delimiter,
+                start,
+                self.settings.encoding,
+            ));
         }
         let parser = self.parser.as_mut().expect("parser set above");
         // The decoder's buffer is borrowed through `text`; copy it out of the way only when it
@@ -234,6 +227,71 @@ impl<'p> RecordStream<'p> {
             r
         } else {
             parser.feed(text, on_record)
+        }
+    }
+
+    /// Decodes one piece into `self.decoded`, refusing malformed input with the byte offset
+    /// of the first bad sequence in the original file.
+    fn decode(&mut self, piece: &[u8], is_last: bool) -> Result<()> {
+        let Some(dec) = self.decoder.as_mut() else {
+            return Ok(());
+        };
+        self.decoded.clear();
+        let need = dec
+            .max_utf8_buffer_length_without_replacement(piece.len())
+            .unwrap_or(piece.len() * 3 + 16);
+        self.decoded.resize(need, 0);
+        let mut read_total = 0usize;
+        let mut written_total = 0usize;
+        loop {
+            let (res, read, written) = dec.decode_to_utf8_without_replacement(
+                &piece[read_total..],
+                &mut self.decoded[written_total..],
+                is_last,
+            );
+            read_total += read;
+            written_total += written;
+            match res {
+                DecoderResult::InputEmpty => break,
+                DecoderResult::OutputFull => {
+                    let n = self.decoded.len() * 2 + 16;
+                    self.decoded.resize(n, 0);
+                }
+                DecoderResult::Malformed(bad, after) => {
+                    let byte = self.raw_seen + (read_total - bad as usize - after as usize) as u64;
+                    // Lines: those parsed so far plus the line breaks decoded before the error.
+                    let parsed_lines = self.parser.as_ref().map_or(1, |p| p.line());
+                    let more =
+                        memchr::memchr_iter(b'\n', &self.decoded[..written_total]).count() as u64;
+                    return Err(Error::input(
+                        self.path,
+                        Some(Position {
+                            byte,
+                            line: parsed_lines + more,
+                            record: None,
+                            column: None,
+                        }),
+                        InputProblem::InvalidForEncoding {
+                            encoding: self
+                                .settings
+                                .encoding
+                                .map_or("utf-8", |e| e.name())
+                                .to_lowercase(),
+                        },
+                    ));
+                }
+            }
+        }
+        self.decoded.truncate(written_total);
+        Ok(())
+    }
+
+    /// The length of the byte-order mark the decoder removed at the start of the file, if any.
+    fn decoded_bom_len(&self) -> u64 {
+        match (self.settings.encoding, self.first_bytes.as_slice()) {
+            (Some(e), [0xFF, 0xFE, ..]) if e == encoding_rs::UTF_16LE => 2,
+            (Some(e), [0xFE, 0xFF, ..]) if e == encoding_rs::UTF_16BE => 2,
+            _ => 0,
         }
     }
 

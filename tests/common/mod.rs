@@ -22,7 +22,9 @@ pub struct Run {
 
 impl Sandbox {
     pub fn new() -> Sandbox {
-        Sandbox { dir: tempfile::tempdir().expect("temporary folder") }
+        Sandbox {
+            dir: tempfile::tempdir().expect("temporary folder"),
+        }
     }
 
     /// A sandbox with an initialised store.
