@@ -307,7 +307,8 @@ fn check_full_disk(p: &Project, target: Target, limit: u64) {
         }
         other => panic!("{target:?} limit {limit}: expected an I/O error, got {other:?}"),
     }
-    assert_eq!(err.exit_code(), 2);
+    // A full disk is a failure of the system, not a usage error: exit code 1.
+    assert_eq!(err.exit_code(), 1);
 
     assert_eq!(
         p.temp_files(),
@@ -450,7 +451,7 @@ fn disk_full_on_a_small_tmpfs_reports_no_space_left_and_leaves_the_store_unchang
     s.ok(&["ingest", "seed.csv", "--as", "orders"]);
 
     let before = s.snapshot();
-    let err = s.fails(2, &["ingest", big.to_str().unwrap(), "--as", "orders"]);
+    let err = s.fails(1, &["ingest", big.to_str().unwrap(), "--as", "orders"]);
     let after = s.snapshot();
     assert_contains(&err, ".sluice/tmp: no space left on the device");
     assert_contains(&err, "free some space and run the command again");

@@ -13,8 +13,8 @@ use clap::{Args, Parser, Subcommand};
     long_about = "sluice records every version of a dataset by the BLAKE3 hash of its bytes and every \
                   transform as a step in a lineage graph, so that a cleaned value can be traced back \
                   to the raw line it came from.\n\n\
-                  Exit codes: 0 success; 1 the data or the store failed a check (verify found damage); \
-                  2 a usage or input error.",
+                  Exit codes: 0 success; 1 the data, the store or the system failed (verify found damage, \
+                  the disk is full); 2 a usage or input error.",
     after_help = "Start with `sluice demo` to see a worked example, or `sluice init` in a project folder."
 )]
 pub struct Cli {
