@@ -379,7 +379,7 @@ struct Sink<'a> {
     index: ObjectWriter,
     store_dir: &'a Path,
     key_hashes: Vec<(u64, u64)>,
-    first_row: Option<Vec<String>>,
+    scratch: Vec<u8>,
 }
 
 impl Sink<'_> {
@@ -410,13 +410,6 @@ impl Sink<'_> {
             .profiler
             .as_mut()
             .expect("profiler set with the header");
-        if self.first_row.is_none() {
-            self.first_row = Some(
-                rec.iter()
-                    .map(|f| String::from_utf8_lossy(f).into_owned())
-                    .collect(),
-            );
-        }
         if !self.key_idx.is_empty() {
             let mut h = Xxh3::new();
             for (j, &c) in self.key_idx.iter().enumerate() {
@@ -446,7 +439,7 @@ impl Sink<'_> {
             &RowEntry {
                 byte: rec.byte,
                 line: rec.line,
-                fingerprint: rowindex::fingerprint(&rec),
+                fingerprint: rowindex::fingerprint(&rec, &mut self.scratch),
             },
             &mut self.index_buf,
         );
@@ -556,7 +549,7 @@ fn parse_side(
         index,
         store_dir,
         key_hashes: Vec::new(),
-        first_row: None,
+        scratch: Vec::with_capacity(4096),
     };
     let mut rs = RecordStream::new(
         path,

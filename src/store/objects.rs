@@ -19,7 +19,18 @@ use crate::hash::{Hash, STREAM_BUF};
 pub trait TempObject: Write + Send {
     /// Makes the bytes durable and gives them their final name.
     fn persist(self: Box<Self>, hash: &Hash) -> io::Result<()>;
+
+    /// Starts making the bytes written so far durable, so that the final `persist` has less
+    /// to wait for. Optional: the default does nothing.
+    fn sync_so_far(&mut self) -> io::Result<()> {
+        Ok(())
+    }
 }
+
+/// How many bytes an object writer lets pile up before it asks the backend to sync them. A large
+/// object is then flushed to disk while it is still being written (on intake's reading thread,
+/// in parallel with parsing) instead of all at once at the end.
+pub const SYNC_EVERY: u64 = 32 << 20;
 
 /// Where object bytes live. The file-system backend is the real one; tests wrap it to fail.
 pub trait ObjectBackend: Send + Sync {
@@ -81,6 +92,13 @@ impl Write for FsTemp {
 }
 
 impl TempObject for FsTemp {
+    fn sync_so_far(&mut self) -> io::Result<()> {
+        match &self.file {
+            Some(f) => f.sync_data(),
+            None => Ok(()),
+        }
+    }
+
     fn persist(mut self: Box<Self>, hash: &Hash) -> io::Result<()> {
         let file = self
             .file
@@ -207,13 +225,20 @@ pub struct ObjectWriter {
     temp: Box<dyn TempObject>,
     hasher: blake3::Hasher,
     n_bytes: u64,
+    unsynced: u64,
 }
 
 impl ObjectWriter {
     pub fn write(&mut self, data: &[u8]) -> io::Result<()> {
         self.hasher.update(data);
         self.n_bytes += data.len() as u64;
-        self.temp.write_all(data)
+        self.temp.write_all(data)?;
+        self.unsynced += data.len() as u64;
+        if self.unsynced >= SYNC_EVERY {
+            self.temp.sync_so_far()?;
+            self.unsynced = 0;
+        }
+        Ok(())
     }
 
     pub fn n_bytes(&self) -> u64 {
@@ -246,6 +271,7 @@ impl Objects {
             temp: self.backend.create_temp()?,
             hasher: blake3::Hasher::new(),
             n_bytes: 0,
+            unsynced: 0,
         })
     }
 

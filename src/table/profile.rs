@@ -26,7 +26,7 @@ use xxhash_rust::xxh3::xxh3_64;
 use crate::clock::is_iso_date;
 use crate::model::ColumnProfile;
 
-pub const EXACT_DISTINCT_LIMIT: usize = 1 << 16;
+pub const EXACT_DISTINCT_LIMIT: usize = 1 << 12;
 const HLL_BITS: u32 = 14;
 const HLL_REGISTERS: usize = 1 << HLL_BITS;
 

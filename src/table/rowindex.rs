@@ -15,7 +15,7 @@
 
 use std::io;
 
-use xxhash_rust::xxh3::Xxh3;
+use xxhash_rust::xxh3::xxh3_64;
 
 use super::parse::RawRecord;
 
@@ -32,22 +32,20 @@ pub struct RowEntry {
     pub fingerprint: u64,
 }
 
-/// The fingerprint of a record (see the module documentation).
-pub fn fingerprint(rec: &RawRecord<'_>) -> u64 {
-    fingerprint_parts(rec.fields, rec.ends)
+/// The fingerprint of a record (see the module documentation). `scratch` is reused between
+/// calls: hashing one contiguous buffer in one call is several times faster than feeding the
+/// streaming hasher piece by piece, and gives the same digest.
+pub fn fingerprint(rec: &RawRecord<'_>, scratch: &mut Vec<u8>) -> u64 {
+    fingerprint_parts(rec.fields, rec.ends, scratch)
 }
 
-pub fn fingerprint_parts(fields: &[u8], ends: &[usize]) -> u64 {
-    let mut h = Xxh3::new();
-    h.update(fields);
-    let mut buf = [0u8; 256];
-    for chunk in ends.chunks(64) {
-        for (i, e) in chunk.iter().enumerate() {
-            buf[i * 4..i * 4 + 4].copy_from_slice(&(*e as u32).to_le_bytes());
-        }
-        h.update(&buf[..chunk.len() * 4]);
+pub fn fingerprint_parts(fields: &[u8], ends: &[usize], scratch: &mut Vec<u8>) -> u64 {
+    scratch.clear();
+    scratch.extend_from_slice(fields);
+    for e in ends {
+        scratch.extend_from_slice(&(*e as u32).to_le_bytes());
     }
-    h.digest()
+    xxh3_64(scratch)
 }
 
 pub fn header() -> [u8; HEADER_LEN] {
@@ -106,15 +104,16 @@ mod tests {
 
     #[test]
     fn fingerprint_separates_fields() {
+        let mut s = Vec::new();
         // "ab","c" and "a","bc" hold the same bytes but are different rows.
-        assert_ne!(
-            fingerprint_parts(b"abc", &[2, 3]),
-            fingerprint_parts(b"abc", &[1, 3])
-        );
-        assert_eq!(
-            fingerprint_parts(b"abc", &[2, 3]),
-            fingerprint_parts(b"abc", &[2, 3])
-        );
+        let a = fingerprint_parts(b"abc", &[2, 3], &mut s);
+        assert_ne!(a, fingerprint_parts(b"abc", &[1, 3], &mut s));
+        assert_eq!(a, fingerprint_parts(b"abc", &[2, 3], &mut s));
+        // The definition: XXH3-64 of the field bytes, then each end offset as u32 LE.
+        let mut streamed = xxhash_rust::xxh3::Xxh3::new();
+        streamed.update(b"abc");
+        streamed.update(&[2, 0, 0, 0, 3, 0, 0, 0]);
+        assert_eq!(a, streamed.digest());
     }
 
     #[test]
