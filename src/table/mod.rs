@@ -2,6 +2,7 @@
 //! ([`stream`], [`parse`]), profiled ([`profile`]) and indexed by row ([`rowindex`]). Nothing
 //! here touches the store; intake and the operations build on these pieces.
 
+pub mod batch;
 pub mod dialect;
 pub mod parse;
 pub mod profile;

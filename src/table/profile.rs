@@ -211,6 +211,28 @@ struct Column {
     text_max: Vec<u8>,
     min_len: u64,
     max_len: u64,
+    /// Every number seen so far was an integer of at most 18 characters.
+    fast_ints: bool,
+    int_min: i64,
+    int_max: i64,
+}
+
+/// Parses `[+-]digits` of at most 18 characters (so it fits in an i64).
+fn parse_small_int(v: &[u8]) -> i64 {
+    let (neg, digits) = match v.first() {
+        Some(b'-') => (true, &v[1..]),
+        Some(b'+') => (false, &v[1..]),
+        _ => (false, v),
+    };
+    let mut n = 0i64;
+    for &c in digits {
+        n = n * 10 + i64::from(c - b'0');
+    }
+    if neg {
+        -n
+    } else {
+        n
+    }
 }
 
 impl Column {
@@ -228,43 +250,72 @@ impl Column {
             text_max: Vec::new(),
             min_len: u64::MAX,
             max_len: 0,
+            fast_ints: true,
+            int_min: 0,
+            int_max: 0,
         }
     }
 
     fn observe(&mut self, v: &[u8]) {
+        // `v` is never empty here: blanks are counted by the caller.
         let first = self.n_values == 0;
         self.n_values += 1;
         self.distinct.insert(xxh3_64(v));
         let len = v.iter().filter(|&&b| (b & 0xC0) != 0x80).count() as u64;
         self.min_len = self.min_len.min(len);
         self.max_len = self.max_len.max(len);
-        if first || v < self.text_min.as_slice() {
+        if first {
             set(&mut self.text_min, v);
-        }
-        if first || v > self.text_max.as_slice() {
             set(&mut self.text_max, v);
+        } else {
+            // The first byte decides most comparisons without a full compare.
+            let b = v[0];
+            let lo = self.text_min[0];
+            if b < lo || (b == lo && v < self.text_min.as_slice()) {
+                set(&mut self.text_min, v);
+            }
+            let hi = self.text_max[0];
+            if b > hi || (b == hi && v > self.text_max.as_slice()) {
+                set(&mut self.text_max, v);
+            }
         }
         if self.all_number {
-            match number_shape(v) {
-                Some(shape) => {
-                    if shape == NumberShape::Decimal {
-                        self.all_integer = false;
-                    }
-                    if first || cmp_numbers(v, &self.num_min) == Ordering::Less {
-                        set(&mut self.num_min, v);
-                    }
-                    if first || cmp_numbers(v, &self.num_max) == Ordering::Greater {
-                        set(&mut self.num_max, v);
-                    }
-                }
-                None => {
-                    self.all_number = false;
-                    self.all_integer = false;
-                }
-            }
+            self.observe_number(v, first);
         }
         if self.all_date && !is_iso_date(v) {
             self.all_date = false;
+        }
+    }
+
+    fn observe_number(&mut self, v: &[u8], first: bool) {
+        let Some(shape) = number_shape(v) else {
+            self.all_number = false;
+            self.all_integer = false;
+            return;
+        };
+        if shape == NumberShape::Decimal {
+            self.all_integer = false;
+        }
+        // Fast path while every number so far is an integer that fits in an i64 (18 digits
+        // always do): compare machine integers; the texts of the extremes are kept as well.
+        if self.fast_ints && shape == NumberShape::Integer && v.len() <= 18 {
+            let n = parse_small_int(v);
+            if first || n < self.int_min {
+                self.int_min = n;
+                set(&mut self.num_min, v);
+            }
+            if first || n > self.int_max {
+                self.int_max = n;
+                set(&mut self.num_max, v);
+            }
+            return;
+        }
+        self.fast_ints = false;
+        if first || cmp_numbers(v, &self.num_min) == Ordering::Less {
+            set(&mut self.num_min, v);
+        }
+        if first || cmp_numbers(v, &self.num_max) == Ordering::Greater {
+            set(&mut self.num_max, v);
         }
     }
 
@@ -358,6 +409,19 @@ mod tests {
             Ordering::Greater
         );
         assert_eq!(cmp_numbers(b"0.1", b".09"), Ordering::Greater);
+    }
+
+    #[test]
+    fn integer_fast_path_hands_over_to_exact_comparison() {
+        let names = vec!["n".to_string()];
+        let mut p = Profiler::new(1, &[]);
+        for v in ["5", "-12", "007", "99999999999999999999", "3.5", "-0"] {
+            p.observe(std::iter::once(v.as_bytes()));
+        }
+        let prof = p.finish(&names);
+        assert_eq!(prof[0].inferred_type, "decimal");
+        assert_eq!(prof[0].min.as_deref(), Some("-12"));
+        assert_eq!(prof[0].max.as_deref(), Some("99999999999999999999"));
     }
 
     #[test]
