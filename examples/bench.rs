@@ -1,0 +1,1131 @@
+//! sluice's benchmarks, run from one command:
+//!
+//! ```text
+//! cargo build --release                      # the benchmarks run the real target/release/sluice
+//! cargo run --release --example bench -- intake
+//! cargo run --release --example bench        # every benchmark there is
+//! cargo run --release --example bench -- intake --quick          # 100,000 rows only
+//! cargo run --release --example bench -- intake --rows 200000,2000000
+//! ```
+//!
+//! # `intake`
+//!
+//! Measures `sluice ingest` of a dirty work-order CSV (made by [`sluice::demo::work_orders`],
+//! Quillby till, deterministic: 1,000,000 rows are about 104 MB, 5,000,000 rows about 523 MB)
+//! into a fresh store: wall time, throughput (MB = 10^6 bytes per second) and the child
+//! process's peak resident memory (`ru_maxrss` from `wait4`). Side by side, on the same file in
+//! the same run, it measures the two baselines intake is judged against:
+//!
+//! - BLAKE3 alone, the floor any content-hashing intake pays: the file hashed by the `blake3`
+//!   crate in a child process (this example run again with a hidden flag) with 1 MiB reads, on
+//!   one thread and on two (the tree split with `blake3::hazmat`, no extra dependency); the time
+//!   is the hashing alone, measured inside the child, so the baseline is as fast as it can be;
+//! - `git add` of the file into a fresh repository, what people use today to version CSVs
+//!   (git's own defaults: user and system configuration are not read).
+//!
+//! Goals: ingest throughput >= 6x `git add` and >= 0.1x the faster BLAKE3
+//! figure; sluice's peak memory under 64 MiB at every size. The page cache is warm (the file is
+//! read once first) and dirty pages are flushed (`sync`) before every timed run; each time is
+//! the median of 3 runs (`--runs N`; 9 for a tool whose first run takes under 0.5 s; 1 for one
+//! whose first run takes over 30 s, and the table says so). Peak memory is the largest of the
+//! runs. The table also gives each tool's CPU time and how much CPU the rest of the machine
+//! used (from `/proc/stat`, before timing and during the runs): a warning says when the machine
+//! was not quiet enough for the times to be trusted.
+//!
+//! Files: data in `target/bench-data/` (kept, and checked byte for byte against the generator
+//! before reuse), scratch stores and repositories in `target/bench-tmp/` (removed after each
+//! run), results in `target/bench-results/<benchmark>.json`.
+
+use std::fs::{self, File};
+use std::io::{self, BufWriter, Read, Write};
+use std::os::unix::fs::FileExt;
+use std::path::{Path, PathBuf};
+use std::process::{Command, Stdio};
+use std::sync::atomic::{AtomicUsize, Ordering};
+use std::sync::Mutex;
+use std::time::{Duration, Instant, SystemTime};
+
+use anyhow::{anyhow, bail, ensure, Context, Result};
+use clap::{Parser, ValueEnum};
+use serde_json::{json, Value};
+
+/// The size of every read, as in sluice's own streaming.
+const PIECE: usize = 1 << 20;
+/// A tool whose first run takes longer than this is run only once.
+const LONG_RUN: Duration = Duration::from_secs(30);
+/// A tool whose first run takes less than this is run at least [`SHORT_RUNS`] times.
+const SHORT_RUN: Duration = Duration::from_millis(500);
+const SHORT_RUNS: u32 = 9;
+/// Other processes using more than this many cores make the times noisy (on 2 cores).
+const NOISY_CORES: f64 = 0.2;
+/// During a long run the tool's own writeback counts as "others": allow more.
+const NOISY_CORES_DURING: f64 = 0.5;
+/// The shortest window over which the machine's load is worth computing.
+const MIN_LOAD_WINDOW: Duration = Duration::from_secs(1);
+const AGENT: &str = "Bench Runner <bench@example.org>";
+const DEFAULT_ROWS: &[u64] = &[1_000_000, 5_000_000];
+const QUICK_ROWS: &[u64] = &[100_000];
+
+#[derive(Debug, Parser)]
+#[command(
+    name = "bench",
+    about = "sluice's benchmarks: each measures the real release binary against today's baselines",
+    after_help = "Run `cargo build --release` first. With no benchmark named, all of them run.\n\
+                  Example: cargo run --release --example bench -- intake --quick"
+)]
+struct Cli {
+    /// The benchmarks to run (default: all)
+    #[arg(value_enum)]
+    benches: Vec<Bench>,
+
+    /// Row counts of the generated files, separated by commas [default: 1000000,5000000]
+    #[arg(long, value_delimiter = ',', value_parser = parse_rows, value_name = "N[,N..]")]
+    rows: Option<Vec<u64>>,
+
+    /// Only 100,000 rows: a quick check that everything runs
+    #[arg(long, conflicts_with = "rows")]
+    quick: bool,
+
+    /// Runs of each tool; the median is reported
+    #[arg(long, default_value_t = 3, value_parser = clap::value_parser!(u32).range(1..=99))]
+    runs: u32,
+
+    /// Internal: hash FILE with BLAKE3 on THREADS threads and print "SECONDS HEX"
+    #[arg(long, hide = true, num_args = 2, value_names = ["FILE", "THREADS"])]
+    hash_child: Option<Vec<String>>,
+}
+
+/// The benchmarks. A new one is a variant here and an arm in [`run_bench`].
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+enum Bench {
+    /// `sluice ingest` against BLAKE3 alone and `git add`
+    Intake,
+}
+
+impl Bench {
+    fn name(self) -> &'static str {
+        match self {
+            Bench::Intake => "intake",
+        }
+    }
+}
+
+fn parse_rows(s: &str) -> std::result::Result<u64, String> {
+    let n: u64 = s
+        .trim()
+        .replace('_', "")
+        .parse()
+        .map_err(|_| format!("\"{s}\" is not a row count (e.g. 1000000)"))?;
+    if n == 0 {
+        return Err("a row count must be at least 1".into());
+    }
+    Ok(n)
+}
+
+/// Where things are and how to run.
+struct Ctx {
+    sluice: PathBuf,
+    data_dir: PathBuf,
+    tmp_dir: PathBuf,
+    results_dir: PathBuf,
+    rows: Vec<u64>,
+    runs: u32,
+    bench_exe: PathBuf,
+}
+
+fn main() {
+    if let Err(e) = run(Cli::parse()) {
+        eprintln!("error: {e:#}");
+        std::process::exit(2);
+    }
+}
+
+fn run(cli: Cli) -> Result<()> {
+    if let Some(args) = &cli.hash_child {
+        return hash_child(args);
+    }
+    let ctx = context(&cli)?;
+    let benches = if cli.benches.is_empty() {
+        Bench::value_variants().to_vec()
+    } else {
+        cli.benches.clone()
+    };
+    print_machine(&ctx);
+    for bench in benches {
+        run_bench(bench, &ctx)?;
+    }
+    Ok(())
+}
+
+fn run_bench(bench: Bench, ctx: &Ctx) -> Result<()> {
+    let result = match bench {
+        Bench::Intake => intake(ctx)?,
+    };
+    fs::create_dir_all(&ctx.results_dir)
+        .with_context(|| format!("creating {}", ctx.results_dir.display()))?;
+    let out = ctx.results_dir.join(format!("{}.json", bench.name()));
+    fs::write(&out, serde_json::to_string_pretty(&result)? + "\n")
+        .with_context(|| format!("writing {}", out.display()))?;
+    println!("results written to {}", out.display());
+    Ok(())
+}
+
+// ---------------------------------------------------------------------------------------------
+// Setting up
+
+fn context(cli: &Cli) -> Result<Ctx> {
+    let bench_exe = std::env::current_exe().context("finding this example's own path")?;
+    // target/release/examples/bench -> target/release -> target
+    let profile_dir = bench_exe.parent().and_then(Path::parent).ok_or_else(|| {
+        anyhow!(
+            "unexpected location of the example: {}",
+            bench_exe.display()
+        )
+    })?;
+    let target = profile_dir.parent().ok_or_else(|| {
+        anyhow!(
+            "unexpected location of the example: {}",
+            bench_exe.display()
+        )
+    })?;
+    let sluice = profile_dir.join("sluice");
+    if !sluice.is_file() {
+        bail!(
+            "{} is missing: the benchmark runs the real release binary. Run `cargo build --release` first, then this again.",
+            sluice.display()
+        );
+    }
+    check_fresh(&sluice)?;
+    let rows = match (&cli.rows, cli.quick) {
+        (Some(r), _) => r.clone(),
+        (None, true) => QUICK_ROWS.to_vec(),
+        (None, false) => DEFAULT_ROWS.to_vec(),
+    };
+    let tmp_dir = target.join("bench-tmp");
+    if tmp_dir.exists() {
+        fs::remove_dir_all(&tmp_dir)
+            .with_context(|| format!("removing the leftovers in {}", tmp_dir.display()))?;
+    }
+    Ok(Ctx {
+        sluice,
+        data_dir: target.join("bench-data"),
+        tmp_dir,
+        results_dir: target.join("bench-results"),
+        rows,
+        runs: cli.runs,
+        bench_exe,
+    })
+}
+
+/// Refuses to measure a sluice binary older than the sources it would be built from.
+fn check_fresh(sluice: &Path) -> Result<()> {
+    let built = fs::metadata(sluice)
+        .and_then(|m| m.modified())
+        .with_context(|| format!("reading the date of {}", sluice.display()))?;
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let mut newest: Option<(SystemTime, PathBuf)> = None;
+    for p in [
+        root.join("src"),
+        root.join("Cargo.toml"),
+        root.join("Cargo.lock"),
+    ] {
+        newest_mtime(&p, &mut newest);
+    }
+    if let Some((t, p)) = newest {
+        if t > built {
+            bail!(
+                "{} is older than {}: run `cargo build --release` so that the benchmark measures the current code.",
+                sluice.display(),
+                p.display()
+            );
+        }
+    }
+    Ok(())
+}
+
+fn newest_mtime(p: &Path, newest: &mut Option<(SystemTime, PathBuf)>) {
+    let Ok(meta) = fs::metadata(p) else { return };
+    if meta.is_dir() {
+        if let Ok(entries) = fs::read_dir(p) {
+            for e in entries.flatten() {
+                newest_mtime(&e.path(), newest);
+            }
+        }
+    } else if let Ok(t) = meta.modified() {
+        if newest.as_ref().is_none_or(|(n, _)| t > *n) {
+            *newest = Some((t, p.to_path_buf()));
+        }
+    }
+}
+
+fn print_machine(ctx: &Ctx) {
+    println!("sluice benchmarks");
+    println!("  binary:  {}", ctx.sluice.display());
+    println!(
+        "  source:  {}",
+        source_revision().unwrap_or_else(|| "unknown".into())
+    );
+    println!("  cores:   {}", cores());
+    println!(
+        "  cpu:     {}",
+        cpu_model().unwrap_or_else(|| "unknown".into())
+    );
+    println!(
+        "  git:     {}",
+        git_version().unwrap_or_else(|| "not found".into())
+    );
+    println!(
+        "  rows:    {}",
+        ctx.rows
+            .iter()
+            .map(|&n| thousands(n))
+            .collect::<Vec<_>>()
+            .join(", ")
+    );
+    println!();
+}
+
+/// The commit the sources are at, with "+changes" when the work tree differs from it.
+fn source_revision() -> Option<String> {
+    let root = env!("CARGO_MANIFEST_DIR");
+    let git = |args: &[&str]| {
+        let out = Command::new("git")
+            .arg("-C")
+            .arg(root)
+            .args(args)
+            .output()
+            .ok()?;
+        out.status
+            .success()
+            .then(|| String::from_utf8_lossy(&out.stdout).trim().to_string())
+    };
+    let head = git(&["rev-parse", "--short=12", "HEAD"])?;
+    let dirty =
+        git(&["status", "--porcelain", "--untracked-files=no"]).is_some_and(|s| !s.is_empty());
+    Some(if dirty {
+        format!("{head}+changes")
+    } else {
+        head
+    })
+}
+
+fn cores() -> usize {
+    std::thread::available_parallelism().map_or(1, |n| n.get())
+}
+
+fn cpu_model() -> Option<String> {
+    let info = fs::read_to_string("/proc/cpuinfo").ok()?;
+    info.lines()
+        .find(|l| l.starts_with("model name"))
+        .and_then(|l| l.split_once(':'))
+        .map(|(_, v)| v.trim().to_string())
+}
+
+fn git_version() -> Option<String> {
+    let out = Command::new("git").arg("--version").output().ok()?;
+    out.status
+        .success()
+        .then(|| String::from_utf8_lossy(&out.stdout).trim().to_string())
+}
+
+// ---------------------------------------------------------------------------------------------
+// Data
+
+/// The work-order file of `n_rows` rows, generated if it is missing or differs from what the
+/// generator makes now.
+fn ensure_data(dir: &Path, n_rows: u64) -> Result<PathBuf> {
+    fs::create_dir_all(dir).with_context(|| format!("creating {}", dir.display()))?;
+    let path = dir.join(format!("work_orders_{n_rows}.csv"));
+    let t = Instant::now();
+    if path.is_file() {
+        if matches_generator(&path, n_rows)? {
+            println!(
+                "data: {} (reused, checked in {:.1} s)",
+                path.display(),
+                secs(t.elapsed())
+            );
+            return Ok(path);
+        }
+        println!(
+            "data: {} differs from the generator's output: making it again",
+            path.display()
+        );
+    }
+    let partial = path.with_extension("csv.partial");
+    let file = File::create(&partial).with_context(|| format!("creating {}", partial.display()))?;
+    let mut w = BufWriter::with_capacity(PIECE, file);
+    sluice::demo::work_orders(&mut w, sluice::demo::Till::Quillby, n_rows, 1)
+        .and_then(|()| w.flush())
+        .with_context(|| format!("writing {}", partial.display()))?;
+    drop(w);
+    fs::rename(&partial, &path).with_context(|| format!("renaming {}", partial.display()))?;
+    println!(
+        "data: {} (generated in {:.1} s)",
+        path.display(),
+        secs(t.elapsed())
+    );
+    Ok(path)
+}
+
+/// Whether the file holds exactly the bytes the generator makes (compared as they are made).
+fn matches_generator(path: &Path, n_rows: u64) -> Result<bool> {
+    let file = File::open(path).with_context(|| format!("opening {}", path.display()))?;
+    let mut cmp = BufWriter::with_capacity(
+        PIECE,
+        Compare {
+            file,
+            buf: Vec::new(),
+            differs: false,
+        },
+    );
+    let made = sluice::demo::work_orders(&mut cmp, sluice::demo::Till::Quillby, n_rows, 1)
+        .and_then(|()| cmp.flush());
+    let mut cmp = cmp
+        .into_inner()
+        .map_err(|e| anyhow!("comparing {}: {}", path.display(), e.error()))?;
+    if cmp.differs {
+        return Ok(false);
+    }
+    made.with_context(|| format!("comparing {}", path.display()))?;
+    let mut rest = [0u8; 1];
+    Ok(cmp
+        .file
+        .read(&mut rest)
+        .with_context(|| format!("reading {}", path.display()))?
+        == 0)
+}
+
+/// A writer that compares what is written with a file's next bytes.
+struct Compare {
+    file: File,
+    buf: Vec<u8>,
+    differs: bool,
+}
+
+impl Write for Compare {
+    fn write(&mut self, data: &[u8]) -> io::Result<usize> {
+        self.buf.resize(data.len(), 0);
+        let same = match self.file.read_exact(&mut self.buf) {
+            Ok(()) => self.buf == data,
+            Err(e) if e.kind() == io::ErrorKind::UnexpectedEof => false,
+            Err(e) => return Err(e),
+        };
+        if !same {
+            self.differs = true;
+            return Err(io::Error::other(
+                "the file differs from the generator's output",
+            ));
+        }
+        Ok(data.len())
+    }
+
+    fn flush(&mut self) -> io::Result<()> {
+        Ok(())
+    }
+}
+
+/// Reads the whole file once, so every tool starts from a warm page cache.
+fn warm(path: &Path) -> Result<()> {
+    let mut f = File::open(path).with_context(|| format!("opening {}", path.display()))?;
+    let mut buf = vec![0u8; PIECE];
+    while f
+        .read(&mut buf)
+        .with_context(|| format!("reading {}", path.display()))?
+        > 0
+    {}
+    Ok(())
+}
+
+// ---------------------------------------------------------------------------------------------
+// Measuring a child process
+
+/// One timed run.
+#[derive(Debug, Clone, Copy)]
+struct Sample {
+    secs: f64,
+    peak_kib: u64,
+    /// CPU time of the child (user + system).
+    cpu_secs: f64,
+    /// CPU the rest of the machine used meanwhile, in cores on average (kernel threads writing
+    /// back the tool's own output count here too); only for runs long enough to tell, as the
+    /// counters tick in hundredths of a second.
+    others_cores: Option<f64>,
+}
+
+/// What a child process printed.
+struct Output {
+    stdout: String,
+}
+
+/// Runs `cmd` to its end with its output in files under `log_dir`; returns the wall time from
+/// spawn to exit and the child's peak resident memory.
+fn run_measured(cmd: &mut Command, log_dir: &Path, what: &str) -> Result<(Sample, Output)> {
+    fs::create_dir_all(log_dir).with_context(|| format!("creating {}", log_dir.display()))?;
+    let out_path = log_dir.join("stdout.txt");
+    let err_path = log_dir.join("stderr.txt");
+    let out =
+        File::create(&out_path).with_context(|| format!("creating {}", out_path.display()))?;
+    let err =
+        File::create(&err_path).with_context(|| format!("creating {}", err_path.display()))?;
+    cmd.stdin(Stdio::null()).stdout(out).stderr(err);
+    // Flush dirty pages left by earlier runs, so that they are not written during this one.
+    // SAFETY: sync has no preconditions.
+    unsafe { libc::sync() };
+    let busy_before = busy_cpu_secs();
+    let start = Instant::now();
+    let child = cmd.spawn().with_context(|| format!("starting {what}"))?;
+    let (status, rusage) = wait4(child.id())?;
+    let elapsed = start.elapsed();
+    let busy_after = busy_cpu_secs();
+    let stdout = fs::read_to_string(&out_path).unwrap_or_default();
+    if !(libc::WIFEXITED(status) && libc::WEXITSTATUS(status) == 0) {
+        let stderr = fs::read_to_string(&err_path).unwrap_or_default();
+        bail!("{what} failed (wait status {status}):\n{stdout}{stderr}");
+    }
+    let tv = |t: libc::timeval| t.tv_sec as f64 + t.tv_usec as f64 / 1e6;
+    let cpu_secs = tv(rusage.ru_utime) + tv(rusage.ru_stime);
+    let others_cores = match (busy_before, busy_after) {
+        (Some(a), Some(b)) if elapsed >= MIN_LOAD_WINDOW => {
+            Some(((b - a - cpu_secs) / secs(elapsed)).max(0.0))
+        }
+        _ => None,
+    };
+    let sample = Sample {
+        secs: secs(elapsed),
+        peak_kib: u64::try_from(rusage.ru_maxrss).unwrap_or(0),
+        cpu_secs,
+        others_cores,
+    };
+    Ok((sample, Output { stdout }))
+}
+
+/// The CPU time the whole machine has spent busy since boot (Linux `/proc/stat`).
+fn busy_cpu_secs() -> Option<f64> {
+    let stat = fs::read_to_string("/proc/stat").ok()?;
+    let line = stat.lines().next()?.strip_prefix("cpu ")?;
+    let v: Vec<u64> = line
+        .split_whitespace()
+        .filter_map(|x| x.parse().ok())
+        .collect();
+    // user nice system idle iowait irq softirq steal: all but idle and iowait are busy.
+    let busy = v.first()? + v.get(1)? + v.get(2)? + v.get(5)? + v.get(6)? + v.get(7)?;
+    // SAFETY: sysconf has no preconditions.
+    let hz = unsafe { libc::sysconf(libc::_SC_CLK_TCK) };
+    (hz > 0).then(|| busy as f64 / hz as f64)
+}
+
+/// The cores the machine keeps busy over one second, with nothing of ours running.
+fn background_load() -> Result<Option<f64>> {
+    // SAFETY: sync has no preconditions.
+    unsafe { libc::sync() };
+    let (Some(a), t) = (busy_cpu_secs(), Instant::now()) else {
+        return Ok(None);
+    };
+    std::thread::sleep(MIN_LOAD_WINDOW);
+    Ok(busy_cpu_secs().map(|b| (b - a) / secs(t.elapsed())))
+}
+
+/// Waits for the child `pid` and returns its wait status and resource usage.
+fn wait4(pid: u32) -> Result<(i32, libc::rusage)> {
+    let pid = libc::pid_t::try_from(pid).context("process id out of range")?;
+    let mut status = 0;
+    // SAFETY: rusage is plain old data; wait4 fills it in.
+    let mut rusage: libc::rusage = unsafe { std::mem::zeroed() };
+    loop {
+        // SAFETY: pointers to live locals; the child is ours and not waited for elsewhere.
+        let r = unsafe { libc::wait4(pid, &mut status, 0, &mut rusage) };
+        if r == pid {
+            return Ok((status, rusage));
+        }
+        let e = io::Error::last_os_error();
+        if e.kind() != io::ErrorKind::Interrupted {
+            return Err(e).context("waiting for a child process");
+        }
+    }
+}
+
+/// Repeats `once` `runs` times and collects the samples: only once if the first run is long,
+/// [`SHORT_RUNS`] times if it is short (a short run is cheap to repeat and noisier).
+fn repeat(runs: u32, mut once: impl FnMut(u32) -> Result<Sample>) -> Result<Vec<Sample>> {
+    let first = once(0)?;
+    let runs = if first.secs > LONG_RUN.as_secs_f64() {
+        1
+    } else if first.secs < SHORT_RUN.as_secs_f64() {
+        runs.max(SHORT_RUNS)
+    } else {
+        runs
+    };
+    let mut samples = vec![first];
+    for i in 1..runs {
+        samples.push(once(i)?);
+    }
+    Ok(samples)
+}
+
+/// A fresh scratch folder under target/bench-tmp; removed by [`Scratch::drop`].
+struct Scratch(PathBuf);
+
+impl Scratch {
+    fn new(ctx: &Ctx, name: &str) -> Result<Self> {
+        let p = ctx.tmp_dir.join(name);
+        if p.exists() {
+            fs::remove_dir_all(&p).with_context(|| format!("removing {}", p.display()))?;
+        }
+        fs::create_dir_all(&p).with_context(|| format!("creating {}", p.display()))?;
+        Ok(Scratch(p))
+    }
+}
+
+impl Drop for Scratch {
+    fn drop(&mut self) {
+        if let Err(e) = fs::remove_dir_all(&self.0) {
+            eprintln!("warning: could not remove {}: {e}", self.0.display());
+        }
+    }
+}
+
+// ---------------------------------------------------------------------------------------------
+// The tools
+
+/// `sluice init` (not timed) then `sluice --store DIR ingest FILE --as orders` (timed).
+/// Returns the sample and the short version hash sluice printed.
+fn sluice_ingest(ctx: &Ctx, file: &Path, run: u32) -> Result<(Sample, Option<String>)> {
+    let scratch = Scratch::new(ctx, &format!("sluice-{run}"))?;
+    let store = scratch.0.join("store");
+    let status = Command::new(&ctx.sluice)
+        .arg("init")
+        .arg(&store)
+        .env("SLUICE_AGENT", AGENT)
+        .stdout(Stdio::null())
+        .output()
+        .context("running `sluice init`")?;
+    ensure!(
+        status.status.success(),
+        "`sluice init {}` failed: {}",
+        store.display(),
+        String::from_utf8_lossy(&status.stderr)
+    );
+    let mut cmd = Command::new(&ctx.sluice);
+    cmd.arg("--store")
+        .arg(&store)
+        .arg("ingest")
+        .arg(file)
+        .args(["--as", "orders"])
+        .env("SLUICE_AGENT", AGENT);
+    let (sample, out) = run_measured(&mut cmd, &scratch.0.join("log"), "sluice ingest")?;
+    Ok((sample, short_hash(&out.stdout)))
+}
+
+/// The short hash in "recorded orders@1 (c42223f1fbf2): ...".
+fn short_hash(stdout: &str) -> Option<String> {
+    let start = stdout.find('(')? + 1;
+    let len = stdout[start..].find(')')?;
+    let h = &stdout[start..start + len];
+    h.bytes()
+        .all(|b| b.is_ascii_hexdigit())
+        .then(|| h.to_string())
+}
+
+/// `git init` and a copy of the file (not timed), then `git add` of it (timed).
+fn git_add(ctx: &Ctx, file: &Path, run: u32) -> Result<Sample> {
+    let scratch = Scratch::new(ctx, &format!("git-{run}"))?;
+    let repo = scratch.0.join("repo");
+    let git = |cmd: &mut Command| {
+        // git's defaults, whatever the user's or the system's configuration says.
+        cmd.env("GIT_CONFIG_GLOBAL", "/dev/null")
+            .env("GIT_CONFIG_NOSYSTEM", "1");
+    };
+    let mut init = Command::new("git");
+    init.args(["init", "-q"]).arg(&repo);
+    git(&mut init);
+    let out = init
+        .output()
+        .context("running `git init` (is git installed?)")?;
+    ensure!(
+        out.status.success(),
+        "`git init` failed: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let name = file
+        .file_name()
+        .ok_or_else(|| anyhow!("no file name in {}", file.display()))?;
+    let copy = repo.join(name);
+    fs::copy(file, &copy).with_context(|| format!("copying the data to {}", copy.display()))?;
+    File::open(&copy)
+        .and_then(|f| f.sync_all())
+        .context("syncing the copy")?;
+    let mut add = Command::new("git");
+    add.arg("-C").arg(&repo).arg("add").arg(name);
+    git(&mut add);
+    let (sample, _) = run_measured(&mut add, &scratch.0.join("log"), "git add")?;
+    Ok(sample)
+}
+
+/// This example run again as a child that hashes the file; the time is the one it measured.
+fn blake3_alone(ctx: &Ctx, file: &Path, threads: usize, run: u32) -> Result<(Sample, String)> {
+    let scratch = Scratch::new(ctx, &format!("blake3-{threads}-{run}"))?;
+    let mut cmd = Command::new(&ctx.bench_exe);
+    cmd.arg("--hash-child").arg(file).arg(threads.to_string());
+    let (mut sample, out) = run_measured(&mut cmd, &scratch.0, "the BLAKE3 child")?;
+    let (t, hex) = out
+        .stdout
+        .trim()
+        .split_once(' ')
+        .ok_or_else(|| anyhow!("unexpected output of the BLAKE3 child: {:?}", out.stdout))?;
+    sample.secs = t
+        .parse()
+        .with_context(|| format!("reading the BLAKE3 child's time {t:?}"))?;
+    Ok((sample, hex.to_string()))
+}
+
+/// The hidden `--hash-child FILE THREADS` mode.
+fn hash_child(args: &[String]) -> Result<()> {
+    let [file, threads] = args else {
+        bail!("--hash-child needs FILE THREADS")
+    };
+    let threads: usize = threads.parse().context("THREADS must be a number")?;
+    let path = Path::new(file);
+    let start = Instant::now();
+    let hash = if threads <= 1 {
+        blake3_serial(path)?
+    } else {
+        blake3_parallel(path, threads)?
+    };
+    let t = secs(start.elapsed());
+    println!("{t:.6} {}", hash.to_hex());
+    Ok(())
+}
+
+fn blake3_serial(path: &Path) -> Result<blake3::Hash> {
+    let mut f = File::open(path).with_context(|| format!("opening {}", path.display()))?;
+    let mut buf = vec![0u8; PIECE];
+    let mut h = blake3::Hasher::new();
+    loop {
+        let n = f
+            .read(&mut buf)
+            .with_context(|| format!("reading {}", path.display()))?;
+        if n == 0 {
+            break;
+        }
+        h.update(&buf[..n]);
+    }
+    Ok(h.finalize())
+}
+
+/// The subtrees each thread hashes on its own: at most this long (a power of two of chunks).
+const LEAF: u64 = 4 << 20;
+
+/// The shape of BLAKE3's tree above the leaves that threads hash.
+enum Tree {
+    Leaf { index: usize },
+    Parent(Box<Tree>, Box<Tree>),
+}
+
+/// Splits `len` bytes at `offset` as BLAKE3 does (the left subtree is the largest power of two
+/// of chunks shorter than the whole) until the pieces are at most [`LEAF`] long.
+fn plan(offset: u64, len: u64, leaves: &mut Vec<(u64, u64)>) -> Tree {
+    if len <= LEAF {
+        leaves.push((offset, len));
+        return Tree::Leaf {
+            index: leaves.len() - 1,
+        };
+    }
+    let left = blake3::hazmat::left_subtree_len(len);
+    Tree::Parent(
+        Box::new(plan(offset, left, leaves)),
+        Box::new(plan(offset + left, len - left, leaves)),
+    )
+}
+
+/// BLAKE3 of the file on `threads` threads, each taking the next leaf and reading it with 1 MiB
+/// positioned reads; the chaining values are then merged up the tree.
+fn blake3_parallel(path: &Path, threads: usize) -> Result<blake3::Hash> {
+    use blake3::hazmat::{
+        merge_subtrees_non_root, merge_subtrees_root, ChainingValue, HasherExt, Mode,
+    };
+    let file = File::open(path).with_context(|| format!("opening {}", path.display()))?;
+    let len = file.metadata().context("reading the file's size")?.len();
+    if len <= LEAF {
+        return blake3_serial(path);
+    }
+    let mut leaves = Vec::new();
+    let tree = plan(0, len, &mut leaves);
+    let cvs: Mutex<Vec<Option<ChainingValue>>> = Mutex::new(vec![None; leaves.len()]);
+    let next = AtomicUsize::new(0);
+    std::thread::scope(|s| -> Result<()> {
+        let workers: Vec<_> = (0..threads)
+            .map(|_| {
+                s.spawn(|| -> io::Result<()> {
+                    let mut buf = vec![0u8; PIECE];
+                    loop {
+                        let i = next.fetch_add(1, Ordering::Relaxed);
+                        let Some(&(offset, len)) = leaves.get(i) else {
+                            return Ok(());
+                        };
+                        let mut h = blake3::Hasher::new();
+                        h.set_input_offset(offset);
+                        let mut done = 0u64;
+                        while done < len {
+                            let n = (len - done).min(PIECE as u64) as usize;
+                            file.read_exact_at(&mut buf[..n], offset + done)?;
+                            h.update(&buf[..n]);
+                            done += n as u64;
+                        }
+                        let cv = h.finalize_non_root();
+                        cvs.lock().expect("no worker panics holding the lock")[i] = Some(cv);
+                    }
+                })
+            })
+            .collect();
+        for w in workers {
+            w.join()
+                .map_err(|_| anyhow!("a hashing thread panicked"))?
+                .with_context(|| format!("reading {}", path.display()))?;
+        }
+        Ok(())
+    })?;
+    let cvs = cvs.into_inner().expect("no worker panicked");
+    fn cv(t: &Tree, cvs: &[Option<ChainingValue>]) -> ChainingValue {
+        match t {
+            Tree::Leaf { index } => cvs[*index].expect("every leaf hashed"),
+            Tree::Parent(l, r) => merge_subtrees_non_root(&cv(l, cvs), &cv(r, cvs), Mode::Hash),
+        }
+    }
+    match &tree {
+        Tree::Parent(l, r) => Ok(merge_subtrees_root(&cv(l, &cvs), &cv(r, &cvs), Mode::Hash)),
+        Tree::Leaf { .. } => unreachable!("a file longer than a leaf has a parent at the root"),
+    }
+}
+
+// ---------------------------------------------------------------------------------------------
+// Reporting
+
+/// One tool's figures at one size.
+struct Row {
+    tool: &'static str,
+    key: &'static str,
+    samples: Vec<Sample>,
+}
+
+impl Row {
+    fn median_secs(&self) -> f64 {
+        median(self.samples.iter().map(|s| s.secs).collect())
+    }
+
+    fn mb_per_s(&self, bytes: u64) -> f64 {
+        bytes as f64 / 1e6 / self.median_secs()
+    }
+
+    fn median_cpu_secs(&self) -> f64 {
+        median(self.samples.iter().map(|s| s.cpu_secs).collect())
+    }
+
+    /// The most the rest of the machine used during one of the runs.
+    fn others_cores(&self) -> Option<f64> {
+        self.samples
+            .iter()
+            .filter_map(|s| s.others_cores)
+            .reduce(f64::max)
+    }
+
+    fn peak_mib(&self) -> f64 {
+        self.samples.iter().map(|s| s.peak_kib).max().unwrap_or(0) as f64 / 1024.0
+    }
+
+    fn json(&self, bytes: u64) -> Value {
+        json!({
+            "tool": self.tool,
+            "runs": self.samples.iter().map(|s| json!({
+                "seconds": s.secs,
+                "peak_kib": s.peak_kib,
+                "cpu_seconds": s.cpu_secs,
+                "other_processes_cores": s.others_cores,
+            })).collect::<Vec<_>>(),
+            "median_seconds": self.median_secs(),
+            "median_cpu_seconds": self.median_cpu_secs(),
+            "mb_per_s": self.mb_per_s(bytes),
+            "peak_mib": self.peak_mib(),
+        })
+    }
+}
+
+fn print_table(rows: &[Row], bytes: u64) {
+    println!(
+        "  {:<30} {:>4} {:>9} {:>9} {:>9} {:>8} {:>7}",
+        "tool", "runs", "seconds", "MB/s", "peak MiB", "cpu s", "others"
+    );
+    let dash = |c: Option<f64>| c.map_or("-".to_string(), |c| format!("{c:.2}"));
+    for r in rows {
+        let runs = if r.samples.len() == 1 {
+            "1*".to_string()
+        } else {
+            r.samples.len().to_string()
+        };
+        let others = dash(r.others_cores());
+        println!(
+            "  {:<30} {:>4} {:>9.3} {:>9.1} {:>9.1} {:>8.3} {:>7}",
+            r.tool,
+            runs,
+            r.median_secs(),
+            r.mb_per_s(bytes),
+            r.peak_mib(),
+            r.median_cpu_secs(),
+            others
+        );
+    }
+    println!("  (cpu s: the child's user + system time, median; others: the most CPU, in cores, that the");
+    println!("  rest of the machine used during one run of 1 s or more, the kernel's writeback included)");
+    if let Some(worst) = rows.iter().filter_map(Row::others_cores).reduce(f64::max) {
+        if worst > NOISY_CORES_DURING {
+            println!(
+                "  WARNING: other processes used up to {worst:.2} cores during the timed runs: the times are noisy; run again on a quiet machine"
+            );
+        }
+    }
+    if rows.iter().any(|r| r.samples.len() == 1) {
+        println!(
+            "  (* one run only: the first took over {} s)",
+            LONG_RUN.as_secs()
+        );
+    }
+}
+
+/// A goal check, printed and recorded.
+struct Goal {
+    label: String,
+    value: f64,
+    goal: &'static str,
+    pass: bool,
+}
+
+impl Goal {
+    fn print(&self) {
+        let verdict = if self.pass { "PASS" } else { "MISS" };
+        let claim = format!("{} = {:.2}", self.label, self.value);
+        println!(
+            "  {claim:<48} {:<14} {verdict}",
+            format!("(goal {})", self.goal)
+        );
+    }
+
+    fn json(&self) -> Value {
+        json!({"what": self.label, "value": self.value, "goal": self.goal, "pass": self.pass})
+    }
+}
+
+// ---------------------------------------------------------------------------------------------
+// The intake benchmark
+
+fn intake(ctx: &Ctx) -> Result<Value> {
+    println!("== intake: sluice ingest vs BLAKE3 alone vs git add ==");
+    let mut sizes = Vec::new();
+    let mut all_pass = true;
+    for &n in &ctx.rows {
+        let (size, pass) = intake_size(ctx, n)?;
+        sizes.push(size);
+        all_pass &= pass;
+    }
+    println!(
+        "intake: {}",
+        if all_pass {
+            "all goals met"
+        } else {
+            "some goals missed"
+        }
+    );
+    Ok(json!({
+        "benchmark": "intake",
+        "generated_by": "cargo run --release --example bench -- intake",
+        "machine": {"cores": cores(), "cpu": cpu_model(), "git": git_version()},
+        "sluice_binary": ctx.sluice.display().to_string(),
+        "source": source_revision(),
+        "runs_requested": ctx.runs,
+        "notes": [
+            "MB = 10^6 bytes; seconds are medians; peak memory is the largest ru_maxrss of the runs",
+            "BLAKE3 times are the hashing alone, measured inside a child process (1 MiB reads)",
+            "git add: fresh repository, git's default configuration, the file copied in before timing",
+            "warm page cache; sync before every timed run",
+        ],
+        "all_goals_met": all_pass,
+        "sizes": sizes,
+    }))
+}
+
+/// Measures every tool on the file of `n` rows, prints the table and the goals.
+fn intake_size(ctx: &Ctx, n: u64) -> Result<(Value, bool)> {
+    println!();
+    let file = ensure_data(&ctx.data_dir, n)?;
+    let bytes = fs::metadata(&file)
+        .with_context(|| format!("reading {}", file.display()))?
+        .len();
+    println!(
+        "{} rows, {:.1} MB ({bytes} bytes)",
+        thousands(n),
+        bytes as f64 / 1e6
+    );
+    warm(&file)?;
+    let background = background_load()?;
+    match background {
+        Some(c) if c > NOISY_CORES => println!(
+            "WARNING: other processes use {c:.2} cores before timing starts: the times will be noisy"
+        ),
+        Some(c) => println!("background load before timing: {c:.2} cores"),
+        None => {}
+    }
+
+    let mut hashes = Vec::new();
+    let mut b3 = |threads: usize| -> Result<Vec<Sample>> {
+        repeat(ctx.runs, |i| {
+            let (s, h) = blake3_alone(ctx, &file, threads, i)?;
+            hashes.push(h);
+            Ok(s)
+        })
+    };
+    let b3_1 = b3(1)?;
+    let b3_2 = b3(2)?;
+    ensure!(
+        hashes.windows(2).all(|w| w[0] == w[1]),
+        "the BLAKE3 runs disagree on the file's hash: {hashes:?}"
+    );
+    let file_hash = hashes.first().cloned().unwrap_or_default();
+
+    let mut recorded = Vec::new();
+    let ingest = repeat(ctx.runs, |i| {
+        let (s, h) = sluice_ingest(ctx, &file, i)?;
+        recorded.push(h);
+        Ok(s)
+    })?;
+    let git = repeat(ctx.runs, |i| git_add(ctx, &file, i))?;
+
+    let rows = vec![
+        Row {
+            tool: "sluice ingest (fresh store)",
+            key: "sluice_ingest",
+            samples: ingest,
+        },
+        Row {
+            tool: "BLAKE3 alone, 1 thread",
+            key: "blake3_1_thread",
+            samples: b3_1,
+        },
+        Row {
+            tool: "BLAKE3 alone, 2 threads",
+            key: "blake3_2_threads",
+            samples: b3_2,
+        },
+        Row {
+            tool: "git add (fresh repository)",
+            key: "git_add",
+            samples: git,
+        },
+    ];
+    print_table(&rows, bytes);
+    check_recorded_hash(&recorded, &file_hash);
+
+    let goals = intake_goals(&rows, bytes);
+    println!("  ratios:");
+    for g in &goals {
+        g.print();
+    }
+    let pass = goals.iter().all(|g| g.pass);
+    let tools: serde_json::Map<String, Value> = rows
+        .iter()
+        .map(|r| (r.key.to_string(), r.json(bytes)))
+        .collect();
+    let value = json!({
+        "rows": n,
+        "bytes": bytes,
+        "file": file.display().to_string(),
+        "blake3": file_hash,
+        "tools": tools,
+        "background_load_cores": background,
+        "max_other_processes_cores": rows.iter().filter_map(Row::others_cores).reduce(f64::max),
+        "goals": goals.iter().map(Goal::json).collect::<Vec<_>>(),
+        "all_goals_met": pass,
+    });
+    Ok((value, pass))
+}
+
+/// Checks that sluice recorded the bytes BLAKE3 hashed (it prints a short prefix of the hash).
+fn check_recorded_hash(recorded: &[Option<String>], file_hash: &str) {
+    match recorded.first().cloned().flatten() {
+        Some(h) if file_hash.starts_with(&h) && recorded.iter().all(|r| r.as_ref() == Some(&h)) => {
+            println!("  check: sluice recorded version {h}, the BLAKE3 hash of the file");
+        }
+        Some(h) => {
+            println!("  warning: sluice recorded {h} but the file's BLAKE3 hash is {file_hash}")
+        }
+        None => println!("  note: could not read the version hash in sluice's output"),
+    }
+}
+
+fn intake_goals(rows: &[Row], bytes: u64) -> Vec<Goal> {
+    let by = |key: &str| {
+        rows.iter()
+            .find(|r| r.key == key)
+            .expect("every tool measured")
+    };
+    let sluice = by("sluice_ingest");
+    let git = by("git_add");
+    let (b1, b2) = (by("blake3_1_thread"), by("blake3_2_threads"));
+    let fastest = if b2.mb_per_s(bytes) > b1.mb_per_s(bytes) {
+        b2
+    } else {
+        b1
+    };
+    let vs_git = sluice.mb_per_s(bytes) / git.mb_per_s(bytes);
+    let vs_b3 = sluice.mb_per_s(bytes) / fastest.mb_per_s(bytes);
+    let peak = sluice.peak_mib();
+    vec![
+        Goal {
+            label: "sluice/git add throughput".into(),
+            value: vs_git,
+            goal: ">= 6",
+            pass: vs_git >= 6.0,
+        },
+        Goal {
+            label: format!(
+                "sluice/BLAKE3 ({}) throughput",
+                fastest.tool.trim_start_matches("BLAKE3 alone, ")
+            ),
+            value: vs_b3,
+            goal: ">= 0.1",
+            pass: vs_b3 >= 0.1,
+        },
+        Goal {
+            label: "sluice peak memory, MiB".into(),
+            value: peak,
+            goal: "< 64",
+            pass: peak < 64.0,
+        },
+    ]
+}
+
+// ---------------------------------------------------------------------------------------------
+// Small helpers
+
+fn median(mut v: Vec<f64>) -> f64 {
+    v.sort_by(f64::total_cmp);
+    let n = v.len();
+    match n {
+        0 => f64::NAN,
+        _ if n % 2 == 1 => v[n / 2],
+        _ => (v[n / 2 - 1] + v[n / 2]) / 2.0,
+    }
+}
+
+fn secs(d: Duration) -> f64 {
+    d.as_secs_f64()
+}
+
+fn thousands(n: u64) -> String {
+    let s = n.to_string();
+    let mut out = String::new();
+    for (i, c) in s.chars().enumerate() {
+        if i > 0 && (s.len() - i) % 3 == 0 {
+            out.push(',');
+        }
+        out.push(c);
+    }
+    out
+}
