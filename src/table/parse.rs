@@ -65,6 +65,9 @@ pub struct Parser {
     source_encoding: Option<&'static Encoding>,
     /// Bytes of an incomplete UTF-8 character at the end of the last weighed piece.
     weigh_carry: Vec<u8>,
+    delimiter: u8,
+    /// Whether whole lines without quotes are split directly instead of by csv_core.
+    fast_path: bool,
     /// Line terminators seen so far (so the current line is `lines + 1`).
     lines: u64,
     /// The last byte seen was a CR whose partner (an LF or not) is in the next piece.
@@ -89,11 +92,16 @@ impl Parser {
         start_offset: u64,
         source_encoding: Option<&'static Encoding>,
     ) -> Parser {
-        let rdr = ReaderBuilder::new()
+        let mut rdr = ReaderBuilder::new()
             .delimiter(delimiter)
             .quote(b'"')
             .double_quote(true)
             .build();
+        // csv_core removes a byte-order mark at the start of the first input it is given. The
+        // caller removes a real one; records the fast path reads never reach csv_core, so give
+        // it one blank line now (skipped, as blank lines are) lest a BOM inside the file be
+        // taken for one later.
+        let _ = rdr.read_record(b"\n", &mut [0u8; 1], &mut [0usize; 1]);
         Parser {
             rdr,
             out: vec![0; 64 * 1024],
@@ -103,6 +111,8 @@ impl Parser {
             consumed: start_offset,
             source_encoding: source_encoding.filter(|e| *e != encoding_rs::UTF_8),
             weigh_carry: Vec::new(),
+            delimiter,
+            fast_path: true,
             lines: 0,
             pending_cr: false,
             in_record: false,
@@ -185,6 +195,32 @@ impl Parser {
                 self.in_record = true;
                 self.rec_byte = self.consumed;
                 self.rec_line = self.lines + 1;
+                if self.fast_path {
+                    if let Some(nl) = memchr::memchr(b'\n', input) {
+                        let body_end = if nl > 0 && input[nl - 1] == b'\r' {
+                            nl - 1
+                        } else {
+                            nl
+                        };
+                        let line = &input[..body_end];
+                        // A whole line with no quote and no other CR holds exactly the fields
+                        // between its delimiters, as csv_core would read them.
+                        if memchr::memchr2(b'"', b'\r', line).is_none() {
+                            self.split_plain(line);
+                            // One line break, and no CR but the one before it: count it here
+                            // rather than scan the line again.
+                            let taken = &input[..nl + 1];
+                            self.consumed += match self.source_encoding {
+                                None => taken.len() as u64,
+                                Some(enc) => original_len(enc, taken, &mut self.weigh_carry),
+                            };
+                            self.lines += 1;
+                            input = &input[nl + 1..];
+                            self.emit(on_record)?;
+                            continue;
+                        }
+                    }
+                }
             }
             let (res, nin, nout, nend) = self.rdr.read_record(
                 input,
@@ -209,6 +245,35 @@ impl Parser {
                 ReadRecordResult::End => return Ok(()),
             }
         }
+    }
+
+    /// Splits a line without quotes at every delimiter into the output buffers.
+    fn split_plain(&mut self, line: &[u8]) {
+        if self.out.len() < line.len() {
+            self.out.resize(line.len().next_power_of_two(), 0);
+        }
+        let mut out_pos = 0usize;
+        let mut k = 0usize;
+        let mut start = 0usize;
+        for pos in memchr::memchr_iter(self.delimiter, line).chain(std::iter::once(line.len())) {
+            let f = &line[start..pos];
+            self.out[out_pos..out_pos + f.len()].copy_from_slice(f);
+            out_pos += f.len();
+            if k == self.ends.len() {
+                let n = self.ends.len() * 2;
+                self.ends.resize(n, 0);
+            }
+            self.ends[k] = out_pos;
+            k += 1;
+            start = pos + 1;
+        }
+        self.out_len = out_pos;
+        self.n_ends = k;
+    }
+
+    /// Turns the fast path for plain lines off (tests compare both paths).
+    pub fn set_fast_path(&mut self, on: bool) {
+        self.fast_path = on;
     }
 
     fn emit<E>(
@@ -410,6 +475,56 @@ mod tests {
         }
         p.finish(&mut cb).unwrap().unwrap();
         assert_eq!(seen, vec![(0, 0, 1), (1, 7, 2), (2, 12, 4), (3, 16, 5)]);
+    }
+
+    type Seen = (Vec<(Vec<Vec<u8>>, u64, u64, u64)>, Option<(u64, u64, u64)>);
+
+    fn parse_with(data: &[u8], delimiter: u8, piece: usize, fast: bool) -> Seen {
+        let mut p = Parser::new(delimiter, 0);
+        p.set_fast_path(fast);
+        let mut recs = Vec::new();
+        let mut cb = |r: RawRecord<'_>| -> Result<(), ()> {
+            recs.push((
+                r.iter().map(|f| f.to_vec()).collect(),
+                r.byte,
+                r.line,
+                r.index,
+            ));
+            Ok(())
+        };
+        for chunk in data.chunks(piece.max(1)) {
+            p.feed(chunk, &mut cb).unwrap();
+        }
+        let end = p
+            .finish(&mut cb)
+            .unwrap()
+            .err()
+            .map(|u| (u.byte, u.line, u.index));
+        (recs, end)
+    }
+
+    proptest::proptest! {
+        // The fast path for plain lines must read exactly what csv_core reads: same fields,
+        // positions, lines and end state, however the input is cut into pieces.
+        #[test]
+        fn fast_path_reads_what_csv_core_reads(
+            data in proptest::collection::vec(
+                proptest::sample::select(vec![b'a', b'b', b',', b';', b'"', b'\n', b'\r', b' ', 0xEF, 0xBB, 0xBF]),
+                0..120,
+            ),
+            piece in 1usize..40,
+            semicolon in proptest::bool::ANY,
+        ) {
+            let d = if semicolon { b';' } else { b',' };
+            proptest::prop_assert_eq!(parse_with(&data, d, piece, true), parse_with(&data, d, 1 << 20, false));
+        }
+    }
+
+    #[test]
+    fn a_byte_order_mark_inside_the_file_is_data() {
+        let data = b"a,b\n\xEF\xBB\xBF\"x\",y\n";
+        let (recs, _) = parse_with(data, b',', 1 << 20, true);
+        assert_eq!(recs[1].0[0], b"\xEF\xBB\xBF\"x\"".to_vec());
     }
 
     #[test]
