@@ -189,6 +189,7 @@ fn context(cli: &Cli) -> Result<Ctx> {
         )
     })?;
     let sluice = profile_dir.join("sluice");
+    build_binary(profile_dir)?;
     if !sluice.is_file() {
         bail!(
             "{} is missing: the benchmark runs the real release binary. Run `cargo build --release` first, then this again.",
@@ -215,6 +216,28 @@ fn context(cli: &Cli) -> Result<Ctx> {
         runs: cli.runs,
         bench_exe,
     })
+}
+
+/// `cargo run --example` builds the library and the example, not the binary the benchmark runs:
+/// build it here, with the cargo that started this run, so one command measures current code.
+fn build_binary(profile_dir: &Path) -> Result<()> {
+    let Ok(cargo) = std::env::var("CARGO") else {
+        // Started without cargo: the freshness check below still guards against stale code.
+        return Ok(());
+    };
+    let mut c = Command::new(cargo);
+    c.args(["build", "--quiet", "--bin", "sluice", "--manifest-path"])
+        .arg(Path::new(env!("CARGO_MANIFEST_DIR")).join("Cargo.toml"));
+    if profile_dir.file_name().is_some_and(|n| n == "release") {
+        c.arg("--release");
+    }
+    let status = c
+        .status()
+        .context("running cargo build for the sluice binary")?;
+    if !status.success() {
+        bail!("cargo build of the sluice binary failed");
+    }
+    Ok(())
 }
 
 /// Refuses to measure a sluice binary older than the sources it would be built from.
