@@ -85,22 +85,39 @@ fn hex_val(c: u8) -> Option<u8> {
     }
 }
 
-/// Hashes everything `r` yields, in [`STREAM_BUF`]-sized reads, and returns the hash and the
-/// byte count. This is the same incremental hasher the object writer feeds.
-pub fn hash_reader(mut r: impl Read) -> io::Result<(Hash, u64)> {
-    let mut hasher = blake3::Hasher::new();
+/// Calls `f` with everything `r` yields, in [`STREAM_BUF`]-sized pieces, and returns the byte
+/// count. Read errors go through `read_err`, so callers can say which file failed.
+pub fn for_each_piece<E>(
+    mut r: impl Read,
+    read_err: impl Fn(io::Error) -> E,
+    mut f: impl FnMut(&[u8]) -> Result<(), E>,
+) -> Result<u64, E> {
     let mut buf = vec![0u8; STREAM_BUF];
     let mut n_bytes = 0u64;
     loop {
         let n = match r.read(&mut buf) {
-            Ok(0) => break,
+            Ok(0) => return Ok(n_bytes),
             Ok(n) => n,
             Err(e) if e.kind() == io::ErrorKind::Interrupted => continue,
-            Err(e) => return Err(e),
+            Err(e) => return Err(read_err(e)),
         };
-        hasher.update(&buf[..n]);
+        f(&buf[..n])?;
         n_bytes += n as u64;
     }
+}
+
+/// Hashes everything `r` yields and returns the hash and the byte count. This is the same
+/// incremental hasher the object writer feeds.
+pub fn hash_reader(r: impl Read) -> io::Result<(Hash, u64)> {
+    let mut hasher = blake3::Hasher::new();
+    let n_bytes = for_each_piece(
+        r,
+        |e| e,
+        |piece| {
+            hasher.update(piece);
+            Ok(())
+        },
+    )?;
     Ok((Hash(*hasher.finalize().as_bytes()), n_bytes))
 }
 

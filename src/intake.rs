@@ -428,12 +428,7 @@ impl Sink<'_> {
         if rec.len() != n_cols {
             return Err(Error::input(
                 self.path,
-                Some(Position {
-                    byte: rec.byte,
-                    line: rec.line,
-                    record: Some(rec.index),
-                    column: None,
-                }),
+                Some(rec.position(None)),
                 InputProblem::RaggedRow {
                     expected: n_cols as u64,
                     found: rec.len() as u64,
@@ -452,12 +447,7 @@ impl Sink<'_> {
                     let names = self.header.as_ref().expect("header set");
                     return Err(Error::input(
                         self.path,
-                        Some(Position {
-                            byte: rec.byte,
-                            line: rec.line,
-                            record: Some(rec.index),
-                            column: Some(c as u64 + 1),
-                        }),
+                        Some(rec.position(Some(c as u64 + 1))),
                         InputProblem::BlankKey {
                             column: names[self.key_idx[j]].clone(),
                         },
@@ -495,12 +485,7 @@ impl Sink<'_> {
         } else {
             (1..=rec.len()).map(|i| format!("col{i}")).collect()
         };
-        let pos = Some(Position {
-            byte: rec.byte,
-            line: rec.line,
-            record: Some(rec.index),
-            column: None,
-        });
+        let pos = Some(rec.position(None));
         let blank: Vec<u64> = names
             .iter()
             .enumerate()

@@ -10,15 +10,12 @@
 use rusqlite::{params, Connection, OptionalExtension};
 use serde_json::Value;
 
-use crate::error::{ErrorKind, Result};
+use super::lineage::db_err;
+use crate::error::Result;
 use crate::hash::Hash;
 use crate::model::{canonical_json, Agent, AuditEntry};
 
 pub const GENESIS: &str = "0000000000000000000000000000000000000000000000000000000000000000";
-
-fn db_err(e: rusqlite::Error) -> crate::Error {
-    ErrorKind::Database(e.to_string().to_lowercase()).into()
-}
 
 /// The hash of an entry's canonical encoding (see the module documentation).
 pub fn entry_hash(

@@ -29,7 +29,7 @@ pub struct Lineage {
     path: PathBuf,
 }
 
-fn db_err(e: rusqlite::Error) -> Error {
+pub(super) fn db_err(e: rusqlite::Error) -> Error {
     ErrorKind::Database(e.to_string().to_lowercase()).into()
 }
 
@@ -482,24 +482,15 @@ impl Lineage {
                 out.push(format!("database structure: {line}"));
             }
         }
-        let mut st = self
-            .conn
-            .prepare("PRAGMA foreign_key_check")
-            .map_err(db_err)?;
-        let rows = st
-            .query_map([], |r| {
-                Ok(format!(
-                    "table {} row {} refers to a missing row of {}",
-                    r.get::<_, String>(0)?,
-                    r.get::<_, Option<i64>>(1)?
-                        .map_or("?".into(), |v| v.to_string()),
-                    r.get::<_, String>(2)?
-                ))
-            })
-            .map_err(db_err)?;
-        for r in rows {
-            out.push(r.map_err(db_err)?);
-        }
+        out.extend(self.strings("PRAGMA foreign_key_check", |r| {
+            Ok(format!(
+                "table {} row {} refers to a missing row of {}",
+                r.get::<_, String>(0)?,
+                r.get::<_, Option<i64>>(1)?
+                    .map_or("?".into(), |v| v.to_string()),
+                r.get::<_, String>(2)?
+            ))
+        })?);
         Ok(out)
     }
 
@@ -507,18 +498,13 @@ impl Lineage {
     /// version numbers of each dataset run 1..n without gaps.
     pub fn consistency_problems(&self) -> Result<Vec<String>> {
         let mut out = Vec::new();
-        let mut st = self
-            .conn
-            .prepare(
-                "SELECT d.name, v.seq, o.kind, 'table' FROM versions v JOIN datasets d ON d.id = v.dataset_id
-                    JOIN objects o ON o.hash = v.hash WHERE o.kind != 'table'
-                 UNION ALL
-                 SELECT d.name, v.seq, o.kind, 'row_index' FROM versions v JOIN datasets d ON d.id = v.dataset_id
-                    JOIN objects o ON o.hash = v.row_index WHERE o.kind != 'row_index'",
-            )
-            .map_err(db_err)?;
-        let rows = st
-            .query_map([], |r| {
+        out.extend(self.strings(
+            "SELECT d.name, v.seq, o.kind, 'table' FROM versions v JOIN datasets d ON d.id = v.dataset_id
+                JOIN objects o ON o.hash = v.hash WHERE o.kind != 'table'
+             UNION ALL
+             SELECT d.name, v.seq, o.kind, 'row_index' FROM versions v JOIN datasets d ON d.id = v.dataset_id
+                JOIN objects o ON o.hash = v.row_index WHERE o.kind != 'row_index'",
+            |r| {
                 Ok(format!(
                     "version {}@{}: its {} object is recorded as kind {}",
                     r.get::<_, String>(0)?,
@@ -526,33 +512,33 @@ impl Lineage {
                     r.get::<_, String>(3)?,
                     r.get::<_, String>(2)?
                 ))
-            })
-            .map_err(db_err)?;
-        for r in rows {
-            out.push(r.map_err(db_err)?);
-        }
-        let mut st = self
-            .conn
-            .prepare(
-                "SELECT d.name, count(v.id), coalesce(max(v.seq), 0) FROM datasets d
-                 LEFT JOIN versions v ON v.dataset_id = d.id GROUP BY d.id
-                 HAVING count(v.id) != coalesce(max(v.seq), 0)",
-            )
-            .map_err(db_err)?;
-        let rows = st
-            .query_map([], |r| {
+            },
+        )?);
+        out.extend(self.strings(
+            "SELECT d.name, count(v.id), coalesce(max(v.seq), 0) FROM datasets d
+             LEFT JOIN versions v ON v.dataset_id = d.id GROUP BY d.id
+             HAVING count(v.id) != coalesce(max(v.seq), 0)",
+            |r| {
                 Ok(format!(
                     "dataset {}: {} versions but numbers go up to {} (a version is missing)",
                     r.get::<_, String>(0)?,
                     r.get::<_, i64>(1)?,
                     r.get::<_, i64>(2)?
                 ))
-            })
-            .map_err(db_err)?;
-        for r in rows {
-            out.push(r.map_err(db_err)?);
-        }
+            },
+        )?);
         Ok(out)
+    }
+
+    /// Runs a query without parameters and renders each row as a line.
+    fn strings(
+        &self,
+        sql: &str,
+        render: impl FnMut(&rusqlite::Row<'_>) -> rusqlite::Result<String>,
+    ) -> Result<Vec<String>> {
+        let mut st = self.conn.prepare(sql).map_err(db_err)?;
+        let rows = st.query_map([], render).map_err(db_err)?;
+        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
     }
 }
 

@@ -13,7 +13,7 @@ use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicU64, Ordering};
 
 use crate::error::{ErrorKind, Result};
-use crate::hash::{Hash, STREAM_BUF};
+use crate::hash::{for_each_piece, Hash};
 
 /// A temporary object being written. Dropping it without `persist` removes the temporary file.
 pub trait TempObject: Write + Send {
@@ -275,28 +275,6 @@ impl Objects {
         })
     }
 
-    /// Stores everything `r` yields as one object, streaming in [`STREAM_BUF`] pieces.
-    pub fn put_reader(&self, mut r: impl Read) -> io::Result<(Hash, u64)> {
-        let mut w = self.writer()?;
-        let mut buf = vec![0u8; STREAM_BUF];
-        loop {
-            let n = match r.read(&mut buf) {
-                Ok(0) => break,
-                Ok(n) => n,
-                Err(e) if e.kind() == io::ErrorKind::Interrupted => continue,
-                Err(e) => return Err(e),
-            };
-            w.write(&buf[..n])?;
-        }
-        w.finish()
-    }
-
-    pub fn put_bytes(&self, data: &[u8]) -> io::Result<(Hash, u64)> {
-        let mut w = self.writer()?;
-        w.write(data)?;
-        w.finish()
-    }
-
     pub fn exists(&self, hash: &Hash) -> bool {
         self.backend.exists(hash)
     }
@@ -305,23 +283,18 @@ impl Objects {
     /// the check completes (the object may be larger than memory), so on a mismatch the caller
     /// gets an error after the damaged bytes; `cat -o FILE` writes to a temporary file first.
     pub fn copy_to(&self, hash: &Hash, out: &mut dyn Write) -> Result<u64> {
-        let mut r = self.open_raw(hash)?;
+        let r = self.open_raw(hash)?;
         let mut hasher = blake3::Hasher::new();
-        let mut buf = vec![0u8; STREAM_BUF];
-        let mut n_bytes = 0u64;
         let path = self.backend.describe(hash);
-        loop {
-            let n = match r.read(&mut buf) {
-                Ok(0) => break,
-                Ok(n) => n,
-                Err(e) if e.kind() == io::ErrorKind::Interrupted => continue,
-                Err(e) => return Err(crate::Error::io(&path, e)),
-            };
-            hasher.update(&buf[..n]);
-            n_bytes += n as u64;
-            out.write_all(&buf[..n])
-                .map_err(|e| crate::Error::io(Path::new("output"), e))?;
-        }
+        let n_bytes = for_each_piece(
+            r,
+            |e| crate::Error::io(&path, e),
+            |piece| {
+                hasher.update(piece);
+                out.write_all(piece)
+                    .map_err(|e| crate::Error::io(Path::new("output"), e))
+            },
+        )?;
         let actual = Hash::from_bytes(*hasher.finalize().as_bytes());
         if actual != *hash {
             return Err(ErrorKind::ObjectCorrupt {

@@ -42,6 +42,16 @@ impl RawRecord<'_> {
     pub fn iter(&self) -> impl Iterator<Item = &[u8]> + '_ {
         (0..self.ends.len()).map(move |i| self.field(i))
     }
+
+    /// Where this record starts, for messages; `column` is a 1-based field number.
+    pub fn position(&self, column: Option<u64>) -> crate::error::Position {
+        crate::error::Position {
+            byte: self.byte,
+            line: self.line,
+            record: Some(self.index),
+            column,
+        }
+    }
 }
 
 /// Why parsing stopped early at the end of the input.
