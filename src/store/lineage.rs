@@ -44,25 +44,20 @@ fn corrupt(path: &Path, e: rusqlite::Error) -> Error {
 impl Lineage {
     /// Creates a new database at `path` and applies every migration.
     pub fn create(path: &Path) -> Result<Lineage> {
-        let conn = Connection::open_with_flags(
+        Lineage::connect(
             path,
             OpenFlags::SQLITE_OPEN_READ_WRITE | OpenFlags::SQLITE_OPEN_CREATE,
         )
-        .map_err(|e| corrupt(path, e))?;
-        let mut l = Lineage {
-            conn,
-            path: path.to_path_buf(),
-        };
-        l.configure()?;
-        l.migrate()?;
-        Ok(l)
     }
 
     /// Opens an existing database, refusing one written by a newer schema and migrating an older
     /// one.
     pub fn open(path: &Path) -> Result<Lineage> {
-        let conn = Connection::open_with_flags(path, OpenFlags::SQLITE_OPEN_READ_WRITE)
-            .map_err(|e| corrupt(path, e))?;
+        Lineage::connect(path, OpenFlags::SQLITE_OPEN_READ_WRITE)
+    }
+
+    fn connect(path: &Path, flags: OpenFlags) -> Result<Lineage> {
+        let conn = Connection::open_with_flags(path, flags).map_err(|e| corrupt(path, e))?;
         let mut l = Lineage {
             conn,
             path: path.to_path_buf(),
