@@ -168,12 +168,25 @@ fn assert_profile_matches_reference(s: &Sandbox, dataset: &str, reference: &serd
             );
         }
         assert_eq!(ours["distinct_exact"], true);
+        if !theirs["numeric_min"].is_null() {
+            assert_eq!(
+                ours["min"], theirs["numeric_min"],
+                "{dataset}: min of {}",
+                theirs["name"]
+            );
+            assert_eq!(
+                ours["max"], theirs["numeric_max"],
+                "{dataset}: max of {}",
+                theirs["name"]
+            );
+        }
     }
 }
 
-// Differential check against Python's csv module (a general-purpose reference): on the
-// vendored penguins file and on the demo's dirty exports (comma/LF, semicolon/CRLF/BOM,
-// comma/CRLF with quoted fields), row counts, blanks, distinct counts and lengths agree.
+// Differential check against Python's csv and decimal modules (general-purpose references): on
+// the vendored penguins file and on the demo's dirty exports (comma/LF, semicolon/CRLF/BOM,
+// comma/CRLF with quoted fields), row counts, blanks, distinct counts, lengths and the exact
+// extremes of numeric columns agree.
 #[test]
 fn profile_agrees_with_python_csv_module() {
     let s = Sandbox::new();
