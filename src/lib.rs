@@ -37,6 +37,7 @@ pub mod hash;
 pub mod history;
 pub mod intake;
 pub mod model;
+pub mod ops;
 pub mod refs;
 pub mod store;
 pub mod table;

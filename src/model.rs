@@ -198,6 +198,35 @@ pub struct AuditEntry {
     pub hash: String,
 }
 
+/// A run of the row map: output rows `out_start .. out_start + len` are input rows
+/// `in_start .. in_start + len`, in order (0-based data rows).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+pub struct RowRun {
+    pub out_start: u64,
+    pub in_start: u64,
+    pub len: u64,
+}
+
+/// One cell a step changed.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct CellChange {
+    /// 0-based data row of the output version.
+    pub row_idx: u64,
+    pub column: String,
+    pub old: Option<String>,
+    pub new: Option<String>,
+}
+
+/// One input row a step removed, and why.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Drop {
+    /// 0-based data row of the input version.
+    pub row_idx: u64,
+    pub reason: String,
+    /// For duplicates: the 0-based input row it duplicated.
+    pub duplicate_of: Option<u64>,
+}
+
 /// An agent identity and where it came from.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
 pub struct Agent {

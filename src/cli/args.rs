@@ -3,7 +3,7 @@
 
 use std::path::PathBuf;
 
-use clap::{Args, Parser, Subcommand};
+use clap::{Args, Parser, Subcommand, ValueEnum};
 
 #[derive(Debug, Parser)]
 #[command(
@@ -46,6 +46,12 @@ pub enum Command {
         after_help = "Example:\n  sluice ingest exports/quillby_2026q3.csv --as quillby_orders --key order_id \\\n      --null-token NA --why \"Q3 export from the Quillby till\""
     )]
     Ingest(IngestArgs),
+
+    /// Apply one built-in cleaning operation to a version, recording every changed cell
+    #[command(
+        after_help = "Examples:\n  sluice apply quillby_orders trim --inner --why \"the till pads names with spaces\"\n  sluice apply quillby_orders case --columns email --to lower --why \"e-mail addresses are case-blind\""
+    )]
+    Apply(ApplyArgs),
 
     /// Write a version's exact bytes to standard output or a file
     #[command(
@@ -131,4 +137,64 @@ pub struct IngestArgs {
     /// A value that means "missing" (counted as blank in the profile); repeat for several
     #[arg(long = "null-token", value_name = "T")]
     pub null_tokens: Vec<String>,
+}
+
+#[derive(Debug, Args)]
+pub struct ApplyArgs {
+    /// The version to clean: NAME (latest), NAME@N or a hash prefix
+    pub reference: String,
+
+    #[command(subcommand)]
+    pub op: OpCommand,
+}
+
+/// What every recorded step takes.
+#[derive(Debug, Args)]
+pub struct StepArgs {
+    /// Why this step is done (kept with the step)
+    #[arg(long, value_name = "TEXT")]
+    pub why: String,
+
+    /// Record the result as a version of this dataset instead of the input's
+    #[arg(long = "as", value_name = "NAME")]
+    pub dataset: Option<String>,
+}
+
+#[derive(Debug, Subcommand)]
+pub enum OpCommand {
+    /// Remove leading and trailing white space; --inner also turns inner runs into one space
+    #[command(
+        after_help = "Example:\n  sluice apply quillby_orders trim --columns customer,email --inner --why \"stray spaces from the till\""
+    )]
+    Trim {
+        /// Only these columns (default: all), comma-separated
+        #[arg(long, value_name = "COL[,COL..]", value_delimiter = ',')]
+        columns: Option<Vec<String>>,
+        /// Also collapse runs of white space inside values to one space
+        #[arg(long)]
+        inner: bool,
+        #[command(flatten)]
+        step: StepArgs,
+    },
+    /// Change letters to lower, upper or title case
+    #[command(
+        after_help = "Example:\n  sluice apply quillby_orders case --columns email --to lower --why \"e-mail addresses are case-blind\""
+    )]
+    Case {
+        /// Only these columns (default: all), comma-separated
+        #[arg(long, value_name = "COL[,COL..]", value_delimiter = ',')]
+        columns: Option<Vec<String>>,
+        /// The case to change to
+        #[arg(long, value_enum)]
+        to: CaseArg,
+        #[command(flatten)]
+        step: StepArgs,
+    },
+}
+
+#[derive(Debug, Clone, Copy, ValueEnum)]
+pub enum CaseArg {
+    Lower,
+    Upper,
+    Title,
 }

@@ -10,9 +10,11 @@ use std::path::{Path, PathBuf};
 
 use anyhow::{anyhow, Context};
 
-use args::{Cli, Command, IngestArgs};
+use args::{ApplyArgs, CaseArg, Cli, Command, IngestArgs, OpCommand};
 use sluice::intake::{self, IngestOptions, IngestOutcome};
 use sluice::model::Agent;
+use sluice::ops::apply::{self as apply_op, ApplyOptions};
+use sluice::ops::{CaseTo, Operation};
 use sluice::store::Store;
 use sluice::{agent, demo, history, refs, verify};
 
@@ -67,6 +69,13 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
                     eprintln!("warning: {w}");
                 }
             }
+            Ok(0)
+        }
+        Command::Apply(a) => {
+            let mut store = open_store(&cli, &cwd)?;
+            let opts = apply_options(a, resolve_agent(&cli, &cwd));
+            let outcome = apply_op::apply(&mut store, &a.reference, &opts)?;
+            render::apply_outcome(&mut out, &opts.op, &outcome)?;
             Ok(0)
         }
         Command::Cat { reference, output } => {
@@ -130,6 +139,39 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             render::demo(&mut out, &report)?;
             Ok(0)
         }
+    }
+}
+
+fn apply_options(a: &ApplyArgs, agent: Agent) -> ApplyOptions {
+    let (op, step) = match &a.op {
+        OpCommand::Trim {
+            columns,
+            inner,
+            step,
+        } => (
+            Operation::Trim {
+                columns: columns.clone(),
+                inner: *inner,
+            },
+            step,
+        ),
+        OpCommand::Case { columns, to, step } => (
+            Operation::Case {
+                columns: columns.clone(),
+                to: match to {
+                    CaseArg::Lower => CaseTo::Lower,
+                    CaseArg::Upper => CaseTo::Upper,
+                    CaseArg::Title => CaseTo::Title,
+                },
+            },
+            step,
+        ),
+    };
+    ApplyOptions {
+        op,
+        reason: step.why.clone(),
+        output_dataset: step.dataset.clone(),
+        agent,
     }
 }
 

@@ -10,6 +10,8 @@ use sluice::demo::DemoReport;
 use sluice::history::{LogEntry, VersionDetail};
 use sluice::intake::IngestOutcome;
 use sluice::model::{Step, Version};
+use sluice::ops::apply::ApplyOutcome;
+use sluice::ops::Operation;
 use sluice::verify::VerifyReport;
 
 pub fn json<T: Serialize>(out: &mut impl Write, value: &T) -> io::Result<()> {
@@ -59,6 +61,47 @@ pub fn ingest_outcome(out: &mut impl Write, file: &Path, o: &IngestOutcome) -> i
             out,
             "unchanged: {} has the same bytes as {} ({}); nothing recorded",
             file.display(),
+            version.label(),
+            &version.hash[..12]
+        ),
+    }
+}
+
+pub fn apply_outcome(out: &mut impl Write, op: &Operation, o: &ApplyOutcome) -> io::Result<()> {
+    match o {
+        ApplyOutcome::Recorded {
+            input,
+            version,
+            n_changed,
+            changed_by_column,
+            ..
+        } => {
+            let per_column: Vec<String> = changed_by_column
+                .iter()
+                .map(|(c, n)| format!("{c} {}", count(*n)))
+                .collect();
+            writeln!(
+                out,
+                "recorded {} ({}) from {}: {} changed {}{}; {}",
+                version.label(),
+                &version.hash[..12],
+                input.label(),
+                op.name(),
+                plural(*n_changed, "cell", "cells"),
+                if per_column.is_empty() {
+                    String::new()
+                } else {
+                    format!(" ({})", per_column.join(", "))
+                },
+                shape(version)
+            )?;
+            writeln!(out, "next: `sluice show {}`", version.label())
+        }
+        ApplyOutcome::Unchanged { input, version } => writeln!(
+            out,
+            "unchanged: {} of {} gives the same bytes as {} ({}); nothing recorded",
+            op.name(),
+            input.label(),
             version.label(),
             &version.hash[..12]
         ),

@@ -11,8 +11,8 @@ use serde_json::Value;
 
 use crate::error::{Error, ErrorKind, Result};
 use crate::model::{
-    canonical_json, Agent, AuditEntry, ColumnProfile, Dataset, Dialect, LineageKind, SourceFile,
-    Step, StepKind, Version,
+    canonical_json, Agent, AuditEntry, CellChange, ColumnProfile, Dataset, Dialect, Drop,
+    LineageKind, RowRun, SourceFile, Step, StepKind, Version,
 };
 
 /// The migrations, in order. Each entry is (schema version it produces, SQL).
@@ -443,6 +443,70 @@ impl Lineage {
         rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
     }
 
+    /// The row map of output version `output_id` from input `input_id`, ordered by output row.
+    pub fn row_runs(&self, output_id: i64, input_id: i64) -> Result<Vec<RowRun>> {
+        let mut st = self
+            .conn
+            .prepare_cached(
+                "SELECT out_start, in_start, len FROM row_runs
+                 WHERE output_id = ?1 AND input_id = ?2 ORDER BY out_start",
+            )
+            .map_err(db_err)?;
+        let rows = st
+            .query_map(params![output_id, input_id], |r| {
+                Ok(RowRun {
+                    out_start: r.get::<_, i64>(0)? as u64,
+                    in_start: r.get::<_, i64>(1)? as u64,
+                    len: r.get::<_, i64>(2)? as u64,
+                })
+            })
+            .map_err(db_err)?;
+        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+    }
+
+    /// The cells the step that made `output_id` changed, by row then column name.
+    pub fn cell_changes(&self, output_id: i64) -> Result<Vec<CellChange>> {
+        let mut st = self
+            .conn
+            .prepare_cached(
+                "SELECT row_idx, column_name, old_value, new_value FROM cell_changes
+                 WHERE output_id = ?1 ORDER BY row_idx, column_name",
+            )
+            .map_err(db_err)?;
+        let rows = st
+            .query_map(params![output_id], |r| {
+                Ok(CellChange {
+                    row_idx: r.get::<_, i64>(0)? as u64,
+                    column: r.get(1)?,
+                    old: r.get(2)?,
+                    new: r.get(3)?,
+                })
+            })
+            .map_err(db_err)?;
+        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+    }
+
+    /// The input rows of `input_id` that step `step_id` removed, by row.
+    pub fn drops(&self, step_id: i64, input_id: i64) -> Result<Vec<Drop>> {
+        let mut st = self
+            .conn
+            .prepare_cached(
+                "SELECT row_idx, reason, duplicate_of FROM drops
+                 WHERE step_id = ?1 AND input_id = ?2 ORDER BY row_idx",
+            )
+            .map_err(db_err)?;
+        let rows = st
+            .query_map(params![step_id, input_id], |r| {
+                Ok(Drop {
+                    row_idx: r.get::<_, i64>(0)? as u64,
+                    reason: r.get(1)?,
+                    duplicate_of: r.get::<_, Option<i64>>(2)?.map(|v| v as u64),
+                })
+            })
+            .map_err(db_err)?;
+        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+    }
+
     pub fn audit_entries(&self) -> Result<Vec<AuditEntry>> {
         super::audit::entries(&self.conn)
     }
@@ -762,6 +826,77 @@ impl Tx<'_> {
                 .map_err(db_err)?;
         }
         Ok((version_id, seq as u64))
+    }
+
+    /// Records the provenance of one output version: its row map, the cells changed and the
+    /// input rows dropped.
+    pub fn insert_provenance(
+        &mut self,
+        step_id: i64,
+        output_id: i64,
+        input_id: i64,
+        runs: &[RowRun],
+        changes: &[CellChange],
+        drops: &[Drop],
+    ) -> Result<()> {
+        {
+            let mut st = self
+                .tx
+                .prepare_cached(
+                    "INSERT INTO row_runs (step_id, output_id, input_id, out_start, in_start, len)
+                     VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
+                )
+                .map_err(db_err)?;
+            for r in runs {
+                st.execute(params![
+                    step_id,
+                    output_id,
+                    input_id,
+                    r.out_start as i64,
+                    r.in_start as i64,
+                    r.len as i64
+                ])
+                .map_err(db_err)?;
+            }
+        }
+        {
+            let mut st = self
+                .tx
+                .prepare_cached(
+                    "INSERT INTO cell_changes (step_id, output_id, row_idx, column_name, old_value, new_value)
+                     VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
+                )
+                .map_err(db_err)?;
+            for c in changes {
+                st.execute(params![
+                    step_id,
+                    output_id,
+                    c.row_idx as i64,
+                    c.column,
+                    c.old,
+                    c.new
+                ])
+                .map_err(db_err)?;
+            }
+        }
+        let mut st = self
+            .tx
+            .prepare_cached(
+                "INSERT INTO drops (step_id, input_id, row_idx, reason, duplicate_of)
+                 VALUES (?1, ?2, ?3, ?4, ?5)",
+            )
+            .map_err(db_err)?;
+        for d in drops {
+            st.execute(params![
+                step_id,
+                input_id,
+                d.row_idx as i64,
+                d.reason,
+                d.duplicate_of.map(|v| v as i64)
+            ])
+            .map_err(db_err)?;
+        }
+        Ok(())
     }
 
     /// Appends one entry to the audit chain, inside this transaction.

@@ -8,6 +8,7 @@ pub mod parse;
 pub mod profile;
 pub mod rowindex;
 pub mod stream;
+pub mod write;
 
 pub use parse::RawRecord;
 pub use stream::{for_each_record, ReadSettings, RecordStream};

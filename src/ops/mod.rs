@@ -1,0 +1,84 @@
+//! Built-in cleaning operations. Each is deterministic (no clock, no locale, no hash-map order
+//! in its output) and explains every output cell: copied through the row map, or changed with
+//! its old value recorded. [`text`] holds the per-cell text operations; [`apply`] runs an
+//! operation over a stored version and records the result with its provenance.
+
+pub mod apply;
+pub mod text;
+
+use serde::{Deserialize, Serialize};
+
+use crate::error::{Error, Result};
+
+/// The target case of `case`.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum CaseTo {
+    Lower,
+    Upper,
+    Title,
+}
+
+/// An operation and its parameters, as recorded with the step (canonical JSON, tagged by
+/// `op`).
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(tag = "op", rename_all = "snake_case")]
+pub enum Operation {
+    /// Leading and trailing white space removed; with `inner`, runs of white space inside a
+    /// value become one space.
+    Trim {
+        columns: Option<Vec<String>>,
+        inner: bool,
+    },
+    /// Letters changed to one case.
+    Case {
+        columns: Option<Vec<String>>,
+        to: CaseTo,
+    },
+}
+
+impl Operation {
+    pub fn name(&self) -> &'static str {
+        match self {
+            Operation::Trim { .. } => "trim",
+            Operation::Case { .. } => "case",
+        }
+    }
+
+    pub fn params(&self) -> serde_json::Value {
+        serde_json::to_value(self).unwrap_or(serde_json::Value::Null)
+    }
+
+    fn columns(&self) -> Option<&[String]> {
+        match self {
+            Operation::Trim { columns, .. } | Operation::Case { columns, .. } => columns.as_deref(),
+        }
+    }
+
+    /// The 0-based positions of the columns the operation works on (all when none are named).
+    pub fn target_columns(&self, header: &[String], version_label: &str) -> Result<Vec<usize>> {
+        match self.columns() {
+            None => Ok((0..header.len()).collect()),
+            Some(names) => names
+                .iter()
+                .map(|n| {
+                    header.iter().position(|h| h == n).ok_or_else(|| {
+                        Error::usage(format!(
+                            "column \"{n}\" is not in {version_label}; its columns are: {}",
+                            header.join(", ")
+                        ))
+                    })
+                })
+                .collect(),
+        }
+    }
+
+    /// The new value of one cell, or `None` when the operation leaves it as it is.
+    pub fn cell(&self, value: &str) -> Option<String> {
+        let new = match self {
+            Operation::Trim { inner, .. } => text::trim(value, *inner),
+            Operation::Case { to, .. } => text::case(value, *to),
+        };
+        (new != value).then_some(new)
+    }
+}
