@@ -10,7 +10,7 @@ use proptest::prelude::*;
 use sluice::intake::{ingest, IngestOptions, IngestOutcome};
 use sluice::model::{Agent, Version};
 use sluice::ops::apply::{apply, ApplyOptions, ApplyOutcome};
-use sluice::ops::{CaseTo, Operation};
+use sluice::ops::{CaseTo, KeepWhich, Operation};
 use sluice::store::Store;
 use sluice::table::{for_each_record, ReadSettings};
 
@@ -59,6 +59,29 @@ fn replay_provenance(store: &Store, input: &Version, output: &Version) -> Vec<Ve
             rebuilt[(run.out_start + k) as usize] = inp[(run.in_start + k) as usize].clone();
         }
     }
+    // Every input row is either carried by exactly one run or dropped, never both.
+    let drops = store.lineage.drops(output.step_id, input.id).unwrap();
+    let mut fate = vec![0u8; input.n_rows as usize];
+    for run in store.lineage.row_runs(output.id, input.id).unwrap() {
+        for k in 0..run.len {
+            fate[(run.in_start + k) as usize] += 1;
+        }
+    }
+    for d in &drops {
+        fate[d.row_idx as usize] += 1;
+        // A duplicate names a row that has the same values and is kept.
+        if let Some(of) = d.duplicate_of {
+            assert_eq!(
+                fate[of as usize], 1,
+                "row {} duplicates a row that was not kept",
+                d.row_idx
+            );
+        }
+    }
+    assert!(
+        fate.iter().all(|&f| f == 1),
+        "input rows covered other than once: {fate:?}"
+    );
     for c in store.lineage.cell_changes(output.id).unwrap() {
         let col = output.header.iter().position(|h| *h == c.column).unwrap();
         let cell = &mut rebuilt[c.row_idx as usize][col];
@@ -104,7 +127,13 @@ proptest! {
     // The law trace and revert rely on: for every step, the input rows taken through the row
     // map with the recorded cell changes applied are exactly the output rows.
     #[test]
-    fn provenance_reproduces_the_output((n_cols, rows) in table(), inner in any::<bool>(), to in 0u8..3) {
+    fn provenance_reproduces_the_output(
+        (n_cols, rows) in table(),
+        inner in any::<bool>(),
+        to in 0u8..3,
+        keep_last in any::<bool>(),
+        by_key in any::<bool>(),
+    ) {
         let dir = tempfile::tempdir().unwrap();
         let mut store = Store::init_recorded(dir.path(), &agent()).unwrap();
         let path = dir.path().join("t.csv");
@@ -117,7 +146,14 @@ proptest! {
             panic!("new dataset")
         };
         let to = [CaseTo::Lower, CaseTo::Upper, CaseTo::Title][to as usize];
-        for op in [Operation::Trim { columns: None, inner }, Operation::Case { columns: None, to }] {
+        let keep = if keep_last { KeepWhich::Last } else { KeepWhich::First };
+        let key = by_key.then(|| vec!["c0".to_string()]);
+        for op in [
+            Operation::Dedupe { key: key.clone(), keep },
+            Operation::Trim { columns: None, inner },
+            Operation::Case { columns: None, to },
+            Operation::Dedupe { key, keep },
+        ] {
             let o = ApplyOptions { op, reason: "law".into(), output_dataset: None, agent: agent() };
             match apply(&mut store, &current.label(), &o).unwrap() {
                 ApplyOutcome::Recorded { input, version, .. } => {
@@ -259,4 +295,119 @@ fn apply_refuses_unknown_columns_and_a_missing_reason() {
     let err = s.fails(2, &["apply", "orders", "trim", "--why", "  "]);
     assert_contains(&err, "--why needs a reason");
     assert_eq!(before, s.snapshot());
+}
+
+// Reference: order-preserving de-duplication with Python's standard library (dict keys keep
+// insertion order; keeping the first of each row is common practice). On the demo's dirty
+// exports, the rows sluice keeps are exactly the rows Python keeps.
+#[test]
+fn dedupe_agrees_with_python_on_the_demo_exports() {
+    let s = Sandbox::new();
+    s.ok(&["demo", "d"]);
+    let d = Sandbox {
+        dir: tempfile::tempdir().unwrap(),
+    };
+    std::fs::remove_dir_all(d.path()).unwrap();
+    std::fs::rename(s.path().join("d"), d.path()).unwrap();
+    for (dataset, file, delim, key) in [
+        ("quillby_orders", "quillby_2026q3.csv", ",", None),
+        ("oxwater_orders", "oxwater_2026q3.csv", ";", None),
+        (
+            "fennmarsh_orders",
+            "fennmarsh_2026q3.csv",
+            ",",
+            Some("order_id"),
+        ),
+    ] {
+        let mut args = vec!["apply", dataset, "dedupe", "--why", "exported twice"];
+        if let Some(k) = key {
+            args.extend(["--key", k]);
+        }
+        d.ok(&args);
+        let ours = d.run(&["cat", dataset]).stdout;
+        let script = r#"
+import csv, sys
+path, delim, key = sys.argv[1], sys.argv[2], sys.argv[3]
+with open(path, newline="", encoding="utf-8-sig") as f:
+    rows = [r for r in csv.reader(f, delimiter=delim) if r]
+header, data = rows[0], rows[1:]
+k = header.index(key) if key else None
+seen = {}
+for r in data:
+    seen.setdefault(tuple(r) if k is None else r[k], r)
+w = csv.writer(sys.stdout, lineterminator="\n")
+w.writerow(header)
+w.writerows(seen.values())
+"#;
+        let out = std::process::Command::new("python3")
+            .args(["-c", script])
+            .arg(d.path().join("exports").join(file))
+            .args([delim, key.unwrap_or("")])
+            .output()
+            .expect("python3 is needed for the reference checks");
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        let theirs = String::from_utf8(out.stdout).unwrap();
+        assert_eq!(
+            ours, theirs,
+            "{dataset}: sluice and Python keep different rows"
+        );
+    }
+}
+
+#[test]
+fn dedupe_records_what_each_dropped_row_duplicated() {
+    let s = Sandbox::with_store();
+    s.file(
+        "o.csv",
+        "id,shop\n1,Quillby\n2,Oxwater\n1,Quillby\n3,Fennmarsh\n2,Oxwater\n",
+    );
+    s.ok(&["ingest", "o.csv", "--as", "orders"]);
+    let out = s.ok(&["apply", "orders", "dedupe", "--why", "exported twice"]);
+    assert_contains(&out, "dedupe dropped 2 rows; 3 rows");
+    let store = Store::open(&s.path().join(".sluice")).unwrap();
+    let v1 = sluice::refs::resolve(&store.lineage, "orders@1").unwrap();
+    let v2 = sluice::refs::resolve(&store.lineage, "orders@2").unwrap();
+    let drops = store.lineage.drops(v2.step_id, v1.id).unwrap();
+    let seen: Vec<(u64, Option<u64>, &str)> = drops
+        .iter()
+        .map(|d| (d.row_idx, d.duplicate_of, d.reason.as_str()))
+        .collect();
+    assert_eq!(
+        seen,
+        vec![
+            (2, Some(0), "duplicate of data row 1 (the whole row)"),
+            (4, Some(1), "duplicate of data row 2 (the whole row)"),
+        ]
+    );
+    // Runs: rows 0-1 kept as 0-1, row 3 kept as 2.
+    let runs: Vec<(u64, u64, u64)> = store
+        .lineage
+        .row_runs(v2.id, v1.id)
+        .unwrap()
+        .iter()
+        .map(|r| (r.out_start, r.in_start, r.len))
+        .collect();
+    assert_eq!(runs, vec![(0, 0, 2), (2, 3, 1)]);
+    let out = s.ok(&[
+        "apply",
+        "orders@1",
+        "dedupe",
+        "--key",
+        "id",
+        "--keep",
+        "last",
+        "--why",
+        "last wins",
+        "--as",
+        "last",
+    ]);
+    assert_contains(&out, "dropped 2 rows");
+    assert_eq!(
+        s.run(&["cat", "last"]).stdout,
+        "id,shop\n1,Quillby\n3,Fennmarsh\n2,Oxwater\n"
+    );
 }

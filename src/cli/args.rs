@@ -190,6 +190,26 @@ pub enum OpCommand {
         #[command(flatten)]
         step: StepArgs,
     },
+    /// Remove rows that repeat another row (whole rows, or equal values in --key columns)
+    #[command(
+        after_help = "Examples:\n  sluice apply quillby_orders dedupe --why \"the till exports some orders twice\"\n  sluice apply quillby_orders dedupe --key order_id --keep last --why \"the last export of an order wins\""
+    )]
+    Dedupe {
+        /// Compare only these columns (default: the whole row), comma-separated
+        #[arg(long, value_name = "COL[,COL..]", value_delimiter = ',')]
+        key: Option<Vec<String>>,
+        /// Which of the repeated rows stays
+        #[arg(long, value_enum, default_value = "first")]
+        keep: KeepArg,
+        #[command(flatten)]
+        step: StepArgs,
+    },
+}
+
+#[derive(Debug, Clone, Copy, ValueEnum)]
+pub enum KeepArg {
+    First,
+    Last,
 }
 
 #[derive(Debug, Clone, Copy, ValueEnum)]

@@ -10,11 +10,11 @@ use std::path::{Path, PathBuf};
 
 use anyhow::{anyhow, Context};
 
-use args::{ApplyArgs, CaseArg, Cli, Command, IngestArgs, OpCommand};
+use args::{ApplyArgs, CaseArg, Cli, Command, IngestArgs, KeepArg, OpCommand};
 use sluice::intake::{self, IngestOptions, IngestOutcome};
 use sluice::model::Agent;
 use sluice::ops::apply::{self as apply_op, ApplyOptions};
-use sluice::ops::{CaseTo, Operation};
+use sluice::ops::{CaseTo, KeepWhich, Operation};
 use sluice::store::Store;
 use sluice::{agent, demo, history, refs, verify};
 
@@ -162,6 +162,16 @@ fn apply_options(a: &ApplyArgs, agent: Agent) -> ApplyOptions {
                     CaseArg::Lower => CaseTo::Lower,
                     CaseArg::Upper => CaseTo::Upper,
                     CaseArg::Title => CaseTo::Title,
+                },
+            },
+            step,
+        ),
+        OpCommand::Dedupe { key, keep, step } => (
+            Operation::Dedupe {
+                key: key.clone(),
+                keep: match keep {
+                    KeepArg::First => KeepWhich::First,
+                    KeepArg::Last => KeepWhich::Last,
                 },
             },
             step,

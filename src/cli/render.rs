@@ -74,25 +74,33 @@ pub fn apply_outcome(out: &mut impl Write, op: &Operation, o: &ApplyOutcome) -> 
             version,
             n_changed,
             changed_by_column,
+            n_dropped,
             ..
         } => {
             let per_column: Vec<String> = changed_by_column
                 .iter()
                 .map(|(c, n)| format!("{c} {}", count(*n)))
                 .collect();
+            let what = if op.changes_cells() {
+                format!(
+                    "changed {}{}",
+                    plural(*n_changed, "cell", "cells"),
+                    if per_column.is_empty() {
+                        String::new()
+                    } else {
+                        format!(" ({})", per_column.join(", "))
+                    }
+                )
+            } else {
+                format!("dropped {}", plural(*n_dropped, "row", "rows"))
+            };
             writeln!(
                 out,
-                "recorded {} ({}) from {}: {} changed {}{}; {}",
+                "recorded {} ({}) from {}: {} {what}; {}",
                 version.label(),
                 &version.hash[..12],
                 input.label(),
                 op.name(),
-                plural(*n_changed, "cell", "cells"),
-                if per_column.is_empty() {
-                    String::new()
-                } else {
-                    format!(" ({})", per_column.join(", "))
-                },
                 shape(version)
             )?;
             writeln!(out, "next: `sluice show {}`", version.label())

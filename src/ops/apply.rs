@@ -1,6 +1,6 @@
 //! Running one operation over a stored version and recording the result: the new version (as
-//! canonical CSV), a step of kind `operation`, and its provenance — the row map as runs and
-//! every changed cell with its old and new value. Provenance grows with what changed, not with
+//! canonical CSV), a step of kind `operation`, and its provenance — the row map as runs, every
+//! changed cell with its old and new value, and every dropped input row with its reason. Provenance grows with what changed, not with
 //! the number of rows: a cell operation that changes 10 cells of a million rows records 10 cell
 //! changes and one run.
 //!
@@ -13,16 +13,20 @@ use std::path::Path;
 
 use serde_json::json;
 
-use super::Operation;
+use std::collections::HashMap;
+
+use xxhash_rust::xxh3::Xxh3;
+
+use super::{KeepWhich, Operation};
 use crate::clock;
 use crate::error::{Error, ErrorKind, Result};
 use crate::hash::Hash;
 use crate::intake::validate_dataset_name;
-use crate::model::{Agent, CellChange, LineageKind, RowRun, StepKind, Version};
+use crate::model::{Agent, CellChange, Drop, LineageKind, RowRun, StepKind, Version};
 use crate::refs;
 use crate::store::{NewStep, NewVersion, Store};
 use crate::table::write::{canonical_dialect, CanonicalWriter};
-use crate::table::{for_each_record, ReadSettings};
+use crate::table::{for_each_record, RawRecord, ReadSettings};
 
 /// What `sluice apply` was asked to do.
 #[derive(Debug, Clone)]
@@ -44,6 +48,7 @@ pub enum ApplyOutcome {
         n_changed: u64,
         /// Changed cells per column, in column order (columns with none left out).
         changed_by_column: Vec<(String, u64)>,
+        n_dropped: u64,
     },
     /// The result equals the latest version of the target dataset: nothing was recorded.
     Unchanged { input: Version, version: Version },
@@ -85,43 +90,46 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
     let store_dir = store.dir().to_path_buf();
     let store_io = |e: io::Error| Error::io(&store_dir.join("tmp"), e);
 
-    let input_hash: Hash = input
-        .hash
-        .parse()
-        .map_err(|e: String| Error::from(ErrorKind::Database(e)))?;
-    let mut checked = Checked {
-        inner: store.objects.open_raw(&input_hash)?,
-        hasher: blake3::Hasher::new(),
-    };
-    let settings = ReadSettings::for_dialect(&input.dialect)?;
     let mut writer = CanonicalWriter::new(&store.objects, &input.header, &input.null_tokens)
         .map_err(store_io)?;
     let mut changes: Vec<CellChange> = Vec::new();
+    let mut drops: Vec<Drop> = Vec::new();
+    let mut runs: Vec<RowRun> = Vec::new();
     let mut changed_per_column = vec![0u64; input.header.len()];
-    let mut header_seen = !input.dialect.has_header;
-    let mut row = 0u64;
     let mut new_values: Vec<Option<Vec<u8>>> = vec![None; input.header.len()];
-    for_each_record(Path::new(&label), &mut checked, &settings, |r| {
-        if !header_seen {
-            header_seen = true;
+    let mut chooser = RowChooser::new(store, &input, &opts.op, &targets)?;
+    let mut out_row = 0u64;
+    each_input_row(store, &input, |in_row, r| {
+        if let Some(drop) = chooser.decide(in_row, &r) {
+            drops.push(drop);
             return Ok(());
+        }
+        match runs.last_mut() {
+            Some(run) if run.in_start + run.len == in_row && run.out_start + run.len == out_row => {
+                run.len += 1
+            }
+            _ => runs.push(RowRun {
+                out_start: out_row,
+                in_start: in_row,
+                len: 1,
+            }),
         }
         for (c, slot) in new_values.iter_mut().enumerate() {
             *slot = None;
-            if !is_target[c] {
+            if !is_target[c] || !opts.op.changes_cells() {
                 continue;
             }
             let old = r.field(c);
             let text = std::str::from_utf8(old).map_err(|_| {
                 Error::from(ErrorKind::Database(format!(
-                    "{label} holds invalid UTF-8 in row {} column {}; run `sluice verify`",
-                    row + 1,
+                    "{label} holds invalid UTF-8 in data row {} column {}; run `sluice verify`",
+                    in_row + 1,
                     input.header[c]
                 )))
             })?;
             if let Some(new) = opts.op.cell(text) {
                 changes.push(CellChange {
-                    row_idx: row,
+                    row_idx: out_row,
                     column: input.header[c].clone(),
                     old: Some(text.to_string()),
                     new: Some(new.clone()),
@@ -137,17 +145,9 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
             })
             .collect();
         writer.write_row(&fields).map_err(store_io)?;
-        row += 1;
+        out_row += 1;
         Ok(())
     })?;
-    let actual = Hash::from_bytes(*checked.hasher.finalize().as_bytes());
-    if actual != input_hash {
-        return Err(ErrorKind::ObjectCorrupt {
-            hash: input_hash.hex(),
-            actual: actual.hex(),
-        }
-        .into());
-    }
     let written = writer.finish().map_err(store_io)?;
     let out_hash = written.table.hash().hex();
     if let Some(latest) = store.lineage.latest_version(&dataset)? {
@@ -162,15 +162,6 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
     let (index_hash, index_bytes) = written.index.finish().map_err(store_io)?;
     let ended_at = clock::now_rfc3339();
     let n_rows = written.n_rows;
-    let runs: Vec<RowRun> = if n_rows > 0 {
-        vec![RowRun {
-            out_start: 0,
-            in_start: 0,
-            len: n_rows,
-        }]
-    } else {
-        Vec::new()
-    };
     let table_hex = table_hash.hex();
     let index_hex = index_hash.hex();
     let dialect = canonical_dialect();
@@ -211,7 +202,7 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
             profiles: &written.profiles,
             created_at: &ended_at,
         })?;
-        tx.insert_provenance(step_id, version_id, input.id, &runs, &changes, &[])?;
+        tx.insert_provenance(step_id, version_id, input.id, &runs, &changes, &drops)?;
         tx.audit(
             &opts.agent,
             "apply",
@@ -222,6 +213,7 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
                 "version": table_hex,
                 "step": step_id,
                 "cells_changed": changes.len(),
+                "rows_dropped": drops.len(),
             }),
             &ended_at,
         )?;
@@ -237,5 +229,120 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
         step_id,
         n_changed: changes.len() as u64,
         changed_by_column,
+        n_dropped: drops.len() as u64,
     })
+}
+
+/// Calls `f` with every data row of `input` (0-based index and record), re-hashing the object
+/// as it is read; a mismatch is an error after the last row, before anything is recorded.
+fn each_input_row(
+    store: &Store,
+    input: &Version,
+    mut f: impl FnMut(u64, RawRecord<'_>) -> Result<()>,
+) -> Result<()> {
+    let input_hash: Hash = input
+        .hash
+        .parse()
+        .map_err(|e: String| Error::from(ErrorKind::Database(e)))?;
+    let mut checked = Checked {
+        inner: store.objects.open_raw(&input_hash)?,
+        hasher: blake3::Hasher::new(),
+    };
+    let settings = ReadSettings::for_dialect(&input.dialect)?;
+    let mut header_seen = !input.dialect.has_header;
+    let mut row = 0u64;
+    for_each_record(Path::new(&input.label()), &mut checked, &settings, |r| {
+        if !header_seen {
+            header_seen = true;
+            return Ok(());
+        }
+        row += 1;
+        f(row - 1, r)
+    })?;
+    let actual = Hash::from_bytes(*checked.hasher.finalize().as_bytes());
+    if actual != input_hash {
+        return Err(ErrorKind::ObjectCorrupt {
+            hash: input_hash.hex(),
+            actual: actual.hex(),
+        }
+        .into());
+    }
+    Ok(())
+}
+
+/// The 128-bit XXH3 of some fields of a row, each preceded by its length, so that rows are
+/// compared by value without keeping them. Two different rows share a hash with probability
+/// about n²/2¹²⁹ for n rows.
+fn row_key(r: &RawRecord<'_>, cols: &[usize]) -> u128 {
+    let mut h = Xxh3::new();
+    for &c in cols {
+        let v = r.field(c);
+        h.update(&(v.len() as u64).to_le_bytes());
+        h.update(v);
+    }
+    h.digest128()
+}
+
+/// Decides which input rows an operation keeps. Cell operations keep every row.
+enum RowChooser {
+    All,
+    /// `dedupe`: the first (or last) row of every key, by the key's hash.
+    Dedupe {
+        cols: Vec<usize>,
+        /// keep first: the first row seen of each key; keep last: the last row of each key,
+        /// found by a pass over the input before the main one.
+        chosen: HashMap<u128, u64>,
+        keep_last: bool,
+        what: String,
+    },
+}
+
+impl RowChooser {
+    fn new(store: &Store, input: &Version, op: &Operation, targets: &[usize]) -> Result<Self> {
+        let Operation::Dedupe { key, keep } = op else {
+            return Ok(RowChooser::All);
+        };
+        let keep_last = *keep == KeepWhich::Last;
+        let mut chosen = HashMap::new();
+        if keep_last {
+            each_input_row(store, input, |row, r| {
+                chosen.insert(row_key(&r, targets), row);
+                Ok(())
+            })?;
+        }
+        let what = match key {
+            None => "the whole row".to_string(),
+            Some(k) => format!("key {}", k.join(", ")),
+        };
+        Ok(RowChooser::Dedupe {
+            cols: targets.to_vec(),
+            chosen,
+            keep_last,
+            what,
+        })
+    }
+
+    /// `Some(drop)` when input row `row` is to be removed.
+    fn decide(&mut self, row: u64, r: &RawRecord<'_>) -> Option<Drop> {
+        let RowChooser::Dedupe {
+            cols,
+            chosen,
+            keep_last,
+            what,
+        } = self
+        else {
+            return None;
+        };
+        let k = row_key(r, cols);
+        let kept = if *keep_last {
+            chosen.get(&k).copied().unwrap_or(row)
+        } else {
+            *chosen.entry(k).or_insert(row)
+        };
+        (kept != row).then(|| Drop {
+            row_idx: row,
+            reason: format!("duplicate of data row {} ({what})", kept + 1),
+            duplicate_of: Some(kept),
+        })
+    }
 }

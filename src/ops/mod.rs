@@ -19,6 +19,14 @@ pub enum CaseTo {
     Title,
 }
 
+/// Which of several duplicate rows `dedupe` keeps.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum KeepWhich {
+    First,
+    Last,
+}
+
 /// An operation and its parameters, as recorded with the step (canonical JSON, tagged by
 /// `op`).
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
@@ -35,6 +43,13 @@ pub enum Operation {
         columns: Option<Vec<String>>,
         to: CaseTo,
     },
+    /// Rows that repeat an earlier (or, with `keep: last`, a later) row removed: whole rows,
+    /// or rows with equal values in the `key` columns. Each removed row records the row it
+    /// duplicated.
+    Dedupe {
+        key: Option<Vec<String>>,
+        keep: KeepWhich,
+    },
 }
 
 impl Operation {
@@ -42,6 +57,7 @@ impl Operation {
         match self {
             Operation::Trim { .. } => "trim",
             Operation::Case { .. } => "case",
+            Operation::Dedupe { .. } => "dedupe",
         }
     }
 
@@ -52,7 +68,13 @@ impl Operation {
     fn columns(&self) -> Option<&[String]> {
         match self {
             Operation::Trim { columns, .. } | Operation::Case { columns, .. } => columns.as_deref(),
+            Operation::Dedupe { key, .. } => key.as_deref(),
         }
+    }
+
+    /// Whether the operation changes cells (and keeps every row) rather than choosing rows.
+    pub fn changes_cells(&self) -> bool {
+        !matches!(self, Operation::Dedupe { .. })
     }
 
     /// The 0-based positions of the columns the operation works on (all when none are named).
@@ -78,6 +100,7 @@ impl Operation {
         let new = match self {
             Operation::Trim { inner, .. } => text::trim(value, *inner),
             Operation::Case { to, .. } => text::case(value, *to),
+            Operation::Dedupe { .. } => return None,
         };
         (new != value).then_some(new)
     }
