@@ -16,6 +16,8 @@ use std::path::{Path, PathBuf};
 use crate::error::{Error, Result};
 use crate::intake::{self, IngestOptions, IngestOutcome};
 use crate::model::Agent;
+use crate::ops::apply::{self, ApplyOptions, ApplyOutcome};
+use crate::ops::{CaseTo, KeepWhich, Operation};
 use crate::store::Store;
 
 /// A small deterministic generator (SplitMix64), so the demo and benchmark data are the same
@@ -371,6 +373,8 @@ pub struct DemoReport {
     pub dir: PathBuf,
     pub scenario: String,
     pub ingested: Vec<(PathBuf, IngestOutcome)>,
+    /// The cleaning steps applied to the Quillby orders, in order.
+    pub cleaned: Vec<(Operation, ApplyOutcome)>,
     pub next_commands: Vec<String>,
 }
 
@@ -391,7 +395,8 @@ pub fn fresh_folder(cwd: &Path) -> PathBuf {
     }
 }
 
-/// Creates the demo in `dir`: the exports, a store, and their intake.
+/// Creates the demo in `dir`: the exports, a store, their intake, and the first cleaning steps
+/// on the Quillby orders.
 pub fn run(dir: &Path, agent: &Agent) -> Result<DemoReport> {
     let exports = dir.join("exports");
     std::fs::create_dir_all(&exports).map_err(|e| Error::io(&exports, e))?;
@@ -449,6 +454,40 @@ pub fn run(dir: &Path, agent: &Agent) -> Result<DemoReport> {
         outcome,
     ));
 
+    let mut cleaned = Vec::new();
+    for (op, why) in [
+        (
+            Operation::Trim {
+                columns: None,
+                inner: true,
+            },
+            "the Quillby till pads names, labels and amounts with spaces",
+        ),
+        (
+            Operation::Case {
+                columns: Some(vec!["email".into()]),
+                to: CaseTo::Lower,
+            },
+            "e-mail addresses are case-blind; one spelling per customer",
+        ),
+        (
+            Operation::Dedupe {
+                key: None,
+                keep: KeepWhich::First,
+            },
+            "the till exports some orders twice",
+        ),
+    ] {
+        let opts = ApplyOptions {
+            op: op.clone(),
+            reason: why.to_string(),
+            output_dataset: None,
+            agent: agent.clone(),
+        };
+        let outcome = apply::apply(&mut store, "quillby_orders", &opts)?;
+        cleaned.push((op, outcome));
+    }
+
     Ok(DemoReport {
         dir: dir.to_path_buf(),
         scenario: "The Three Rivers Cycle Cooperative: three bicycle repair shops, each exporting its Q3 work orders \
@@ -456,11 +495,13 @@ pub fn run(dir: &Path, agent: &Agent) -> Result<DemoReport> {
                    cooperative's table of service names. All of it is invented."
             .to_string(),
         ingested,
+        cleaned,
         next_commands: vec![
             format!("cd {}", dir.display()),
-            "sluice log".to_string(),
-            "sluice show oxwater_orders".to_string(),
+            "sluice log quillby_orders".to_string(),
+            "sluice show quillby_orders".to_string(),
             "sluice cat quillby_orders@1 | head -5".to_string(),
+            "sluice apply oxwater_orders trim --inner --why \"same dirt at Oxwater\"".to_string(),
             "sluice verify".to_string(),
         ],
     })

@@ -145,7 +145,9 @@ fn python_profile(file: &std::path::Path, delimiter: &str, nulls: &[&str]) -> se
 }
 
 fn assert_profile_matches_reference(s: &Sandbox, dataset: &str, reference: &serde_json::Value) {
-    let shown = s.json(&["show", dataset, "--json"]);
+    // The first version: the export as it was taken in.
+    let first = format!("{dataset}@1");
+    let shown = s.json(&["show", &first, "--json"]);
     assert_eq!(
         shown["version"]["n_rows"], reference["n_rows"],
         "rows of {dataset}"
@@ -241,7 +243,7 @@ fn dialect_of_each_demo_export_is_detected() {
     assert_eq!(dl["delimiter_detected"], true);
     // The BOM is not part of the first column's name.
     assert_eq!(ox["version"]["header"][0], "order no");
-    let q = d.json(&["show", "quillby_orders", "--json"]);
+    let q = d.json(&["show", "quillby_orders@1", "--json"]);
     assert_eq!(q["version"]["dialect"]["line_ending"], "lf");
     assert_eq!(q["version"]["dialect"]["bom"], false);
 }
@@ -420,7 +422,12 @@ fn demo_builds_a_store_that_verifies() {
     std::fs::remove_dir_all(d.path()).unwrap();
     std::fs::rename(s.path().join("sluice-demo"), d.path()).unwrap();
     assert_contains(&d.ok(&["verify"]), "intact");
-    assert_eq!(d.json(&["log", "--json"]).as_array().unwrap().len(), 4);
+    // Four intakes and three cleaning steps.
+    assert_eq!(d.json(&["log", "--json"]).as_array().unwrap().len(), 7);
+    assert_eq!(
+        d.json(&["show", "quillby_orders", "--json"])["version"]["seq"],
+        4
+    );
     // A second demo in the same folder goes to a new folder.
     assert_contains(&s.ok(&["demo"]), "sluice-demo");
 }

@@ -319,12 +319,21 @@ fn dedupe_agrees_with_python_on_the_demo_exports() {
             Some("order_id"),
         ),
     ] {
-        let mut args = vec!["apply", dataset, "dedupe", "--why", "exported twice"];
+        let first = format!("{dataset}@1");
+        let mut args = vec![
+            "apply",
+            &first,
+            "dedupe",
+            "--why",
+            "exported twice",
+            "--as",
+            "deduped",
+        ];
         if let Some(k) = key {
             args.extend(["--key", k]);
         }
         d.ok(&args);
-        let ours = d.run(&["cat", dataset]).stdout;
+        let ours = d.run(&["cat", "deduped"]).stdout;
         let script = r#"
 import csv, sys
 path, delim, key = sys.argv[1], sys.argv[2], sys.argv[3]

@@ -334,9 +334,23 @@ pub fn demo(out: &mut impl Write, r: &DemoReport) -> io::Result<()> {
     writeln!(out, "demo store created in {}", r.dir.display())?;
     writeln!(out, "{}", r.scenario)?;
     writeln!(out)?;
+    writeln!(out, "taken in:")?;
     for (file, outcome) in &r.ingested {
         write!(out, "  {}: ", file.display())?;
         ingest_outcome_short(out, outcome)?;
+    }
+    writeln!(out)?;
+    writeln!(
+        out,
+        "cleaned, each step with its reason and every changed cell recorded:"
+    )?;
+    for (op, outcome) in &r.cleaned {
+        write!(out, "  ")?;
+        let mut line = Vec::new();
+        apply_outcome(&mut line, op, outcome)?;
+        // Only the first line: the "next" hint is given below for the whole demo.
+        let text = String::from_utf8_lossy(&line);
+        writeln!(out, "{}", text.lines().next().unwrap_or(""))?;
     }
     writeln!(out)?;
     writeln!(out, "try next:")?;
