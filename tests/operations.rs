@@ -153,6 +153,8 @@ proptest! {
             Operation::Trim { columns: None, inner },
             Operation::Case { columns: None, to },
             Operation::Dedupe { key, keep },
+            Operation::DropRows { predicate: "c0 is blank or c0 matches '^a'".into() },
+            Operation::KeepRows { predicate: "not c0 in ('B', 'x-y')".into() },
         ] {
             let o = ApplyOptions { op, reason: "law".into(), output_dataset: None, agent: agent() };
             match apply(&mut store, &current.label(), &o).unwrap() {
@@ -419,4 +421,132 @@ fn dedupe_records_what_each_dropped_row_duplicated() {
         s.run(&["cat", "last"]).stdout,
         "id,shop\n1,Quillby\n3,Fennmarsh\n2,Oxwater\n"
     );
+}
+
+// palmerpenguins (CC0; Horst, Hill & Gorman 2020): dropping the rows with any NA leaves 333
+// complete rows, as documented with the data set.
+#[test]
+fn palmerpenguins_complete_rows_are_333() {
+    let s = Sandbox::with_store();
+    s.file(
+        "penguins.csv",
+        std::fs::read(concat!(
+            env!("CARGO_MANIFEST_DIR"),
+            "/tests/data/palmerpenguins/penguins.csv"
+        ))
+        .unwrap(),
+    );
+    s.ok(&[
+        "ingest",
+        "penguins.csv",
+        "--as",
+        "penguins",
+        "--null-token",
+        "NA",
+    ]);
+    let any_na = "bill_length_mm is blank or bill_depth_mm is blank or flipper_length_mm is blank \
+                  or body_mass_g is blank or sex is blank";
+    let out = s.ok(&[
+        "apply",
+        "penguins",
+        "drop",
+        any_na,
+        "--why",
+        "complete records only",
+        "--as",
+        "complete",
+    ]);
+    assert_contains(&out, "drop dropped 11 rows; 333 rows");
+    // keep with the negation gives the same bytes.
+    let keep = format!("not ({any_na})");
+    let out = s.ok(&[
+        "apply",
+        "penguins",
+        "keep",
+        &keep,
+        "--why",
+        "complete records only",
+        "--as",
+        "complete_k",
+    ]);
+    assert_contains(&out, "keep dropped 11 rows; 333 rows");
+    assert_eq!(
+        s.run(&["cat", "complete"]).stdout,
+        s.run(&["cat", "complete_k"]).stdout
+    );
+    // Species counts after dropping: Adelie 146, Gentoo 119, Chinstrap 68 (as documented).
+    for (species, n) in [("Adelie", 146), ("Gentoo", 119), ("Chinstrap", 68)] {
+        s.ok(&[
+            "apply",
+            "complete",
+            "keep",
+            &format!("species = '{species}'"),
+            "--why",
+            "one species",
+            "--as",
+            species,
+        ]);
+        assert_eq!(
+            s.json(&["show", species, "--json"])["version"]["n_rows"],
+            n,
+            "{species}"
+        );
+    }
+    // Every drop names the predicate.
+    let store = Store::open(&s.path().join(".sluice")).unwrap();
+    let raw = sluice::refs::resolve(&store.lineage, "penguins").unwrap();
+    let done = sluice::refs::resolve(&store.lineage, "complete").unwrap();
+    let drops = store.lineage.drops(done.step_id, raw.id).unwrap();
+    assert_eq!(drops.len(), 11);
+    assert!(drops[0]
+        .reason
+        .starts_with("matched the drop predicate: bill_length_mm is blank"));
+}
+
+#[test]
+fn a_bad_predicate_points_at_its_column_and_changes_nothing() {
+    let s = Sandbox::with_store();
+    s.file("o.csv", "id,status\n1,done\n2,cancelled\n");
+    s.ok(&["ingest", "o.csv", "--as", "orders"]);
+    let before = s.snapshot();
+    let err = s.fails(
+        2,
+        &[
+            "apply",
+            "orders",
+            "drop",
+            "status = 'cancelled",
+            "--why",
+            "x",
+        ],
+    );
+    assert_contains(
+        &err,
+        "predicate \"status = 'cancelled\", column 10: this text is never closed",
+    );
+    let err = s.fails(
+        2,
+        &[
+            "apply",
+            "orders",
+            "drop",
+            "state = 'cancelled'",
+            "--why",
+            "x",
+        ],
+    );
+    assert_contains(
+        &err,
+        "column 1: no column \"state\"; the columns are: id, status",
+    );
+    assert_eq!(before, s.snapshot());
+    let out = s.ok(&[
+        "apply",
+        "orders",
+        "drop",
+        "status = 'cancelled'",
+        "--why",
+        "not revenue",
+    ]);
+    assert_contains(&out, "drop dropped 1 row; 1 row");
 }

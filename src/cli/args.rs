@@ -190,6 +190,30 @@ pub enum OpCommand {
         #[command(flatten)]
         step: StepArgs,
     },
+    /// Keep only the rows where a predicate holds
+    #[command(
+        after_help = "Predicates: comparisons (= != < <= > >=; numeric when both sides are numbers), \
+        `is [not] blank`, `[not] in (...)`, `matches 're'`, and, or, not, parentheses. Text in 'single quotes', \
+        odd column names in `backquotes`.\n\nExample:\n  sluice apply penguins keep \"body_mass_g is not blank and sex in ('female', 'male')\" --why \"complete records only\""
+    )]
+    Keep {
+        /// The predicate, e.g. "status != 'cancelled'"
+        predicate: String,
+        #[command(flatten)]
+        step: StepArgs,
+    },
+    /// Remove the rows where a predicate holds
+    #[command(
+        after_help = "Predicates: comparisons (= != < <= > >=; numeric when both sides are numbers), \
+        `is [not] blank`, `[not] in (...)`, `matches 're'`, and, or, not, parentheses. Text in 'single quotes', \
+        odd column names in `backquotes`.\n\nExample:\n  sluice apply quillby_orders drop \"status in ('cancelled', 'Cancelled', 'test')\" --why \"not revenue\""
+    )]
+    Drop {
+        /// The predicate, e.g. "status = 'cancelled'"
+        predicate: String,
+        #[command(flatten)]
+        step: StepArgs,
+    },
     /// Remove rows that repeat another row (whole rows, or equal values in --key columns)
     #[command(
         after_help = "Examples:\n  sluice apply quillby_orders dedupe --why \"the till exports some orders twice\"\n  sluice apply quillby_orders dedupe --key order_id --keep last --why \"the last export of an order wins\""

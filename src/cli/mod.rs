@@ -166,6 +166,18 @@ fn apply_options(a: &ApplyArgs, agent: Agent) -> ApplyOptions {
             },
             step,
         ),
+        OpCommand::Keep { predicate, step } => (
+            Operation::KeepRows {
+                predicate: predicate.clone(),
+            },
+            step,
+        ),
+        OpCommand::Drop { predicate, step } => (
+            Operation::DropRows {
+                predicate: predicate.clone(),
+            },
+            step,
+        ),
         OpCommand::Dedupe { key, keep, step } => (
             Operation::Dedupe {
                 key: key.clone(),

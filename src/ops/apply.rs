@@ -17,6 +17,7 @@ use std::collections::HashMap;
 
 use xxhash_rust::xxh3::Xxh3;
 
+use super::predicate::Predicate;
 use super::{KeepWhich, Operation};
 use crate::clock;
 use crate::error::{Error, ErrorKind, Result};
@@ -286,6 +287,12 @@ fn row_key(r: &RawRecord<'_>, cols: &[usize]) -> u128 {
 /// Decides which input rows an operation keeps. Cell operations keep every row.
 enum RowChooser {
     All,
+    /// `keep` and `drop`: rows where the predicate holds are kept (or removed).
+    Filter {
+        predicate: Predicate,
+        keep_when_true: bool,
+        null_tokens: Vec<Vec<u8>>,
+    },
     /// `dedupe`: the first (or last) row of every key, by the key's hash.
     Dedupe {
         cols: Vec<usize>,
@@ -299,8 +306,23 @@ enum RowChooser {
 
 impl RowChooser {
     fn new(store: &Store, input: &Version, op: &Operation, targets: &[usize]) -> Result<Self> {
-        let Operation::Dedupe { key, keep } = op else {
-            return Ok(RowChooser::All);
+        let null_tokens = || {
+            input
+                .null_tokens
+                .iter()
+                .map(|t| t.as_bytes().to_vec())
+                .collect()
+        };
+        let (key, keep) = match op {
+            Operation::KeepRows { predicate } | Operation::DropRows { predicate } => {
+                return Ok(RowChooser::Filter {
+                    predicate: Predicate::parse(predicate, &input.header)?,
+                    keep_when_true: matches!(op, Operation::KeepRows { .. }),
+                    null_tokens: null_tokens(),
+                })
+            }
+            Operation::Dedupe { key, keep } => (key, keep),
+            Operation::Trim { .. } | Operation::Case { .. } => return Ok(RowChooser::All),
         };
         let keep_last = *keep == KeepWhich::Last;
         let mut chosen = HashMap::new();
@@ -324,6 +346,24 @@ impl RowChooser {
 
     /// `Some(drop)` when input row `row` is to be removed.
     fn decide(&mut self, row: u64, r: &RawRecord<'_>) -> Option<Drop> {
+        if let RowChooser::Filter {
+            predicate,
+            keep_when_true,
+            null_tokens,
+        } = self
+        {
+            let blank = |v: &[u8]| v.is_empty() || null_tokens.iter().any(|t| t.as_slice() == v);
+            let holds = predicate.holds(r, &blank);
+            return (holds != *keep_when_true).then(|| Drop {
+                row_idx: row,
+                reason: if *keep_when_true {
+                    format!("did not match the keep predicate: {}", predicate.text())
+                } else {
+                    format!("matched the drop predicate: {}", predicate.text())
+                },
+                duplicate_of: None,
+            });
+        }
         let RowChooser::Dedupe {
             cols,
             chosen,

@@ -4,6 +4,7 @@
 //! operation over a stored version and records the result with its provenance.
 
 pub mod apply;
+pub mod predicate;
 pub mod text;
 
 use serde::{Deserialize, Serialize};
@@ -50,6 +51,12 @@ pub enum Operation {
         key: Option<Vec<String>>,
         keep: KeepWhich,
     },
+    /// Only the rows where the predicate holds are kept (see [`predicate`]).
+    #[serde(rename = "keep")]
+    KeepRows { predicate: String },
+    /// The rows where the predicate holds are removed (see [`predicate`]).
+    #[serde(rename = "drop")]
+    DropRows { predicate: String },
 }
 
 impl Operation {
@@ -58,6 +65,8 @@ impl Operation {
             Operation::Trim { .. } => "trim",
             Operation::Case { .. } => "case",
             Operation::Dedupe { .. } => "dedupe",
+            Operation::KeepRows { .. } => "keep",
+            Operation::DropRows { .. } => "drop",
         }
     }
 
@@ -69,12 +78,13 @@ impl Operation {
         match self {
             Operation::Trim { columns, .. } | Operation::Case { columns, .. } => columns.as_deref(),
             Operation::Dedupe { key, .. } => key.as_deref(),
+            Operation::KeepRows { .. } | Operation::DropRows { .. } => None,
         }
     }
 
     /// Whether the operation changes cells (and keeps every row) rather than choosing rows.
     pub fn changes_cells(&self) -> bool {
-        !matches!(self, Operation::Dedupe { .. })
+        matches!(self, Operation::Trim { .. } | Operation::Case { .. })
     }
 
     /// The 0-based positions of the columns the operation works on (all when none are named).
@@ -100,7 +110,9 @@ impl Operation {
         let new = match self {
             Operation::Trim { inner, .. } => text::trim(value, *inner),
             Operation::Case { to, .. } => text::case(value, *to),
-            Operation::Dedupe { .. } => return None,
+            Operation::Dedupe { .. } | Operation::KeepRows { .. } | Operation::DropRows { .. } => {
+                return None
+            }
         };
         (new != value).then_some(new)
     }
