@@ -10,7 +10,7 @@ use proptest::prelude::*;
 use sluice::intake::{ingest, IngestOptions, IngestOutcome};
 use sluice::model::{Agent, Version};
 use sluice::ops::apply::{apply, ApplyOptions, ApplyOutcome};
-use sluice::ops::{CaseTo, KeepWhich, Operation};
+use sluice::ops::{CaseTo, KeepWhich, Operation, Renaming};
 use sluice::store::Store;
 use sluice::table::{for_each_record, ReadSettings};
 
@@ -53,10 +53,35 @@ fn rows_of(store: &Store, v: &Version) -> Vec<Vec<String>> {
 fn replay_provenance(store: &Store, input: &Version, output: &Version) -> Vec<Vec<String>> {
     let inp = rows_of(store, input);
     let runs = store.lineage.row_runs(output.id, input.id).unwrap();
+    // Each output column comes from the input column recorded for it, or else the one of the
+    // same name.
+    let sources = store.lineage.column_sources(output.id).unwrap();
+    let from: Vec<usize> = output
+        .header
+        .iter()
+        .map(|name| {
+            let recorded: Vec<&String> = sources
+                .iter()
+                .filter(|(o, _)| o == name)
+                .map(|(_, i)| i)
+                .collect();
+            let source = if recorded.len() == 1 {
+                recorded[0]
+            } else {
+                name
+            };
+            input
+                .header
+                .iter()
+                .position(|h| h == source)
+                .expect("a source column")
+        })
+        .collect();
     let mut rebuilt = vec![Vec::new(); output.n_rows as usize];
     for run in runs {
         for k in 0..run.len {
-            rebuilt[(run.out_start + k) as usize] = inp[(run.in_start + k) as usize].clone();
+            let row = &inp[(run.in_start + k) as usize];
+            rebuilt[(run.out_start + k) as usize] = from.iter().map(|&c| row[c].clone()).collect();
         }
     }
     // Every input row is either carried by exactly one run or dropped, never both.
@@ -155,6 +180,10 @@ proptest! {
             Operation::Dedupe { key, keep },
             Operation::DropRows { predicate: "c0 is blank or c0 matches '^a'".into() },
             Operation::KeepRows { predicate: "not c0 in ('B', 'x-y')".into() },
+            Operation::Fill { columns: vec!["c0".into()], value: None, from: Some(format!("c{}", n_cols - 1)) },
+            Operation::Fill { columns: vec!["c0".into()], value: Some("n/a".into()), from: None },
+            Operation::Rename { columns: vec![Renaming { from: "c0".into(), to: "first".into() }] },
+            Operation::Select { columns: std::iter::once("first".to_string()).chain((1..n_cols).rev().map(|i| format!("c{i}"))).collect() },
         ] {
             let o = ApplyOptions { op, reason: "law".into(), output_dataset: None, agent: agent() };
             match apply(&mut store, &current.label(), &o).unwrap() {
@@ -549,4 +578,64 @@ fn a_bad_predicate_points_at_its_column_and_changes_nothing() {
         "not revenue",
     ]);
     assert_contains(&out, "drop dropped 1 row; 1 row");
+}
+
+#[test]
+fn rename_select_and_fill_record_where_columns_came_from() {
+    let s = Sandbox::with_store();
+    s.file(
+        "o.csv",
+        "order no;e-mail;note\nOX-1;;ada@example.org\nOX-2;bram@example.org;\n",
+    );
+    s.ok(&["ingest", "o.csv", "--as", "orders"]);
+    let out = s.ok(&[
+        "apply",
+        "orders",
+        "fill",
+        "--columns",
+        "e-mail",
+        "--from",
+        "note",
+        "--why",
+        "address typed in the note",
+    ]);
+    assert_contains(&out, "fill changed 1 cell (e-mail 1)");
+    s.ok(&[
+        "apply",
+        "orders",
+        "rename",
+        "order no=order_id",
+        "e-mail=email",
+        "--why",
+        "one naming",
+    ]);
+    s.ok(&[
+        "apply",
+        "orders",
+        "select",
+        "email,order_id",
+        "--why",
+        "contact list",
+    ]);
+    assert_eq!(
+        s.run(&["cat", "orders"]).stdout,
+        "email,order_id\nada@example.org,OX-1\nbram@example.org,OX-2\n"
+    );
+    let store = Store::open(&s.path().join(".sluice")).unwrap();
+    let renamed = sluice::refs::resolve(&store.lineage, "orders@3").unwrap();
+    assert_eq!(
+        store.lineage.column_sources(renamed.id).unwrap(),
+        vec![
+            ("email".to_string(), "e-mail".to_string()),
+            ("order_id".to_string(), "order no".to_string())
+        ]
+    );
+    let filled = sluice::refs::resolve(&store.lineage, "orders@2").unwrap();
+    assert!(store
+        .lineage
+        .column_sources(filled.id)
+        .unwrap()
+        .contains(&("e-mail".to_string(), "note".to_string())));
+    let err = s.fails(2, &["apply", "orders", "rename", "nope=x", "--why", "typo"]);
+    assert_contains(&err, "column \"nope\" is not in orders@4");
 }

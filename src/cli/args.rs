@@ -190,6 +190,55 @@ pub enum OpCommand {
         #[command(flatten)]
         step: StepArgs,
     },
+    /// Fill blank cells (empty or a null token) with a value or from another column
+    #[command(
+        after_help = "Examples:\n  sluice apply quillby_orders fill --columns labour_hours --value 0 --why \"no labour booked\"\n  sluice apply quillby_orders fill --columns email --from notes --why \"clerk typed the address in the notes\""
+    )]
+    Fill {
+        /// The columns to fill, comma-separated
+        #[arg(
+            long,
+            required = true,
+            value_name = "COL[,COL..]",
+            value_delimiter = ','
+        )]
+        columns: Vec<String>,
+        /// The value to put in blank cells
+        #[arg(
+            long,
+            value_name = "TEXT",
+            conflicts_with = "from",
+            required_unless_present = "from"
+        )]
+        value: Option<String>,
+        /// Take the value from this column of the same row (when it is not blank itself)
+        #[arg(long, value_name = "COL")]
+        from: Option<String>,
+        #[command(flatten)]
+        step: StepArgs,
+    },
+    /// Rename columns; values and order stay
+    #[command(
+        after_help = "Example:\n  sluice apply oxwater_orders rename \"order no=order_id\" date=opened --why \"one naming for all shops\""
+    )]
+    Rename {
+        /// OLD=NEW pairs
+        #[arg(required = true, value_name = "OLD=NEW")]
+        pairs: Vec<String>,
+        #[command(flatten)]
+        step: StepArgs,
+    },
+    /// Keep only the named columns, in the order named
+    #[command(
+        after_help = "Example:\n  sluice apply quillby_orders select order_id,opened,service,parts_cost --why \"what the revenue report needs\""
+    )]
+    Select {
+        /// The columns, comma-separated, in the order wanted
+        #[arg(value_name = "COL[,COL..]", value_delimiter = ',', required = true)]
+        columns: Vec<String>,
+        #[command(flatten)]
+        step: StepArgs,
+    },
     /// Keep only the rows where a predicate holds
     #[command(
         after_help = "Predicates: comparisons (= != < <= > >=; numeric when both sides are numbers), \

@@ -14,7 +14,7 @@ use args::{ApplyArgs, CaseArg, Cli, Command, IngestArgs, KeepArg, OpCommand};
 use sluice::intake::{self, IngestOptions, IngestOutcome};
 use sluice::model::Agent;
 use sluice::ops::apply::{self as apply_op, ApplyOptions};
-use sluice::ops::{CaseTo, KeepWhich, Operation};
+use sluice::ops::{CaseTo, KeepWhich, Operation, Renaming};
 use sluice::store::Store;
 use sluice::{agent, demo, history, refs, verify};
 
@@ -73,7 +73,7 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         }
         Command::Apply(a) => {
             let mut store = open_store(&cli, &cwd)?;
-            let opts = apply_options(a, resolve_agent(&cli, &cwd));
+            let opts = apply_options(a, resolve_agent(&cli, &cwd))?;
             let outcome = apply_op::apply(&mut store, &a.reference, &opts)?;
             render::apply_outcome(&mut out, &opts.op, &outcome)?;
             Ok(0)
@@ -142,8 +142,40 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
     }
 }
 
-fn apply_options(a: &ApplyArgs, agent: Agent) -> ApplyOptions {
+fn apply_options(a: &ApplyArgs, agent: Agent) -> anyhow::Result<ApplyOptions> {
     let (op, step) = match &a.op {
+        OpCommand::Fill {
+            columns,
+            value,
+            from,
+            step,
+        } => (
+            Operation::Fill {
+                columns: columns.clone(),
+                value: value.clone(),
+                from: from.clone(),
+            },
+            step,
+        ),
+        OpCommand::Rename { pairs, step } => {
+            let mut columns = Vec::new();
+            for p in pairs {
+                let (from, to) = p.split_once('=').ok_or_else(|| {
+                    anyhow!("rename takes OLD=NEW pairs, e.g. \"order no=order_id\"; got \"{p}\"")
+                })?;
+                columns.push(Renaming {
+                    from: from.to_string(),
+                    to: to.to_string(),
+                });
+            }
+            (Operation::Rename { columns }, step)
+        }
+        OpCommand::Select { columns, step } => (
+            Operation::Select {
+                columns: columns.clone(),
+            },
+            step,
+        ),
         OpCommand::Trim {
             columns,
             inner,
@@ -189,12 +221,12 @@ fn apply_options(a: &ApplyArgs, agent: Agent) -> ApplyOptions {
             step,
         ),
     };
-    ApplyOptions {
+    Ok(ApplyOptions {
         op,
         reason: step.why.clone(),
         output_dataset: step.dataset.clone(),
         agent,
-    }
+    })
 }
 
 fn parse_delimiter(s: &str) -> anyhow::Result<u8> {

@@ -91,6 +91,8 @@ pub fn apply_outcome(out: &mut impl Write, op: &Operation, o: &ApplyOutcome) -> 
                         format!(" ({})", per_column.join(", "))
                     }
                 )
+            } else if matches!(op, Operation::Rename { .. } | Operation::Select { .. }) {
+                "reshaped the columns".to_string()
             } else {
                 format!("dropped {}", plural(*n_dropped, "row", "rows"))
             };

@@ -87,17 +87,21 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
     for &t in &targets {
         is_target[t] = true;
     }
+    // Each output column's name and the input column its values come from.
+    let columns = opts.op.output_columns(&input.header, &label)?;
+    let out_header: Vec<String> = columns.iter().map(|(n, _)| n.clone()).collect();
+    let fill = FillFrom::new(&opts.op, &input)?;
     let started_at = clock::now_rfc3339();
     let store_dir = store.dir().to_path_buf();
     let store_io = |e: io::Error| Error::io(&store_dir.join("tmp"), e);
 
-    let mut writer = CanonicalWriter::new(&store.objects, &input.header, &input.null_tokens)
-        .map_err(store_io)?;
+    let mut writer =
+        CanonicalWriter::new(&store.objects, &out_header, &input.null_tokens).map_err(store_io)?;
     let mut changes: Vec<CellChange> = Vec::new();
     let mut drops: Vec<Drop> = Vec::new();
     let mut runs: Vec<RowRun> = Vec::new();
-    let mut changed_per_column = vec![0u64; input.header.len()];
-    let mut new_values: Vec<Option<Vec<u8>>> = vec![None; input.header.len()];
+    let mut changed_per_column = vec![0u64; columns.len()];
+    let mut new_values: Vec<Option<Vec<u8>>> = vec![None; columns.len()];
     let mut chooser = RowChooser::new(store, &input, &opts.op, &targets)?;
     let mut out_row = 0u64;
     each_input_row(store, &input, |in_row, r| {
@@ -115,8 +119,9 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
                 len: 1,
             }),
         }
-        for (c, slot) in new_values.iter_mut().enumerate() {
+        for (o, slot) in new_values.iter_mut().enumerate() {
             *slot = None;
+            let c = columns[o].1;
             if !is_target[c] || !opts.op.changes_cells() {
                 continue;
             }
@@ -128,21 +133,25 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
                     input.header[c]
                 )))
             })?;
-            if let Some(new) = opts.op.cell(text) {
+            let new = match &fill {
+                Some(f) => f.fill(old, &r),
+                None => opts.op.cell(text),
+            };
+            if let Some(new) = new {
                 changes.push(CellChange {
                     row_idx: out_row,
-                    column: input.header[c].clone(),
+                    column: columns[o].0.clone(),
                     old: Some(text.to_string()),
                     new: Some(new.clone()),
                 });
-                changed_per_column[c] += 1;
+                changed_per_column[o] += 1;
                 *slot = Some(new.into_bytes());
             }
         }
-        let fields: Vec<&[u8]> = (0..input.header.len())
-            .map(|c| match &new_values[c] {
+        let fields: Vec<&[u8]> = (0..columns.len())
+            .map(|o| match &new_values[o] {
                 Some(v) => v.as_slice(),
-                None => r.field(c),
+                None => r.field(columns[o].1),
             })
             .collect();
         writer.write_row(&fields).map_err(store_io)?;
@@ -166,8 +175,7 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
     let table_hex = table_hash.hex();
     let index_hex = index_hash.hex();
     let dialect = canonical_dialect();
-    let changed_by_column: Vec<(String, u64)> = input
-        .header
+    let changed_by_column: Vec<(String, u64)> = out_header
         .iter()
         .zip(&changed_per_column)
         .filter(|(_, n)| **n > 0)
@@ -197,13 +205,28 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
             row_index: &index_hex,
             row_index_bytes: index_bytes,
             n_rows,
-            header: &input.header,
+            header: &out_header,
             dialect: &dialect,
             null_tokens: &input.null_tokens,
             profiles: &written.profiles,
             created_at: &ended_at,
         })?;
         tx.insert_provenance(step_id, version_id, input.id, &runs, &changes, &drops)?;
+        // Output columns whose values come from an input column of another name.
+        let mut sources: Vec<(String, String)> = columns
+            .iter()
+            .filter(|(name, c)| input.header[*c] != *name)
+            .map(|(name, c)| (name.clone(), input.header[*c].clone()))
+            .collect();
+        if let Some(f) = &fill {
+            if let Some(from) = f.from_name() {
+                for t in &targets {
+                    sources.push((input.header[*t].clone(), from.to_string()));
+                    sources.push((input.header[*t].clone(), input.header[*t].clone()));
+                }
+            }
+        }
+        tx.insert_column_sources(step_id, version_id, input.id, &sources)?;
         tx.audit(
             &opts.agent,
             "apply",
@@ -284,6 +307,78 @@ fn row_key(r: &RawRecord<'_>, cols: &[usize]) -> u128 {
     h.digest128()
 }
 
+/// How `fill` finds the value for a blank cell.
+struct FillFrom {
+    value: Option<String>,
+    from: Option<(usize, String)>,
+    null_tokens: Vec<Vec<u8>>,
+}
+
+impl FillFrom {
+    fn new(op: &Operation, input: &Version) -> Result<Option<FillFrom>> {
+        let Operation::Fill { value, from, .. } = op else {
+            return Ok(None);
+        };
+        let from = match from {
+            None => None,
+            Some(name) => Some((
+                input.header.iter().position(|h| h == name).ok_or_else(|| {
+                    Error::usage(format!(
+                        "column \"{name}\" is not in {}; its columns are: {}",
+                        input.label(),
+                        input.header.join(", ")
+                    ))
+                })?,
+                name.clone(),
+            )),
+        };
+        match (&value, &from) {
+            (Some(_), None) | (None, Some(_)) => {}
+            _ => {
+                return Err(Error::usage(
+                    "fill takes exactly one of --value TEXT or --from COLUMN",
+                ))
+            }
+        }
+        Ok(Some(FillFrom {
+            value: value.clone(),
+            from,
+            null_tokens: input
+                .null_tokens
+                .iter()
+                .map(|t| t.as_bytes().to_vec())
+                .collect(),
+        }))
+    }
+
+    fn from_name(&self) -> Option<&str> {
+        self.from.as_ref().map(|(_, n)| n.as_str())
+    }
+
+    fn blank(&self, v: &[u8]) -> bool {
+        v.is_empty() || self.null_tokens.iter().any(|t| t.as_slice() == v)
+    }
+
+    /// The value for a cell currently `old`, when it is blank and there is something to put in.
+    fn fill(&self, old: &[u8], r: &RawRecord<'_>) -> Option<String> {
+        if !self.blank(old) {
+            return None;
+        }
+        let new = match (&self.value, &self.from) {
+            (Some(v), _) => v.clone(),
+            (None, Some((c, _))) => {
+                let v = r.field(*c);
+                if self.blank(v) {
+                    return None;
+                }
+                String::from_utf8_lossy(v).into_owned()
+            }
+            (None, None) => return None,
+        };
+        (new.as_bytes() != old).then_some(new)
+    }
+}
+
 /// Decides which input rows an operation keeps. Cell operations keep every row.
 enum RowChooser {
     All,
@@ -322,7 +417,7 @@ impl RowChooser {
                 })
             }
             Operation::Dedupe { key, keep } => (key, keep),
-            Operation::Trim { .. } | Operation::Case { .. } => return Ok(RowChooser::All),
+            _ => return Ok(RowChooser::All),
         };
         let keep_last = *keep == KeepWhich::Last;
         let mut chosen = HashMap::new();

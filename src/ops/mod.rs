@@ -28,6 +28,13 @@ pub enum KeepWhich {
     Last,
 }
 
+/// One column renamed by `rename`.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Renaming {
+    pub from: String,
+    pub to: String,
+}
+
 /// An operation and its parameters, as recorded with the step (canonical JSON, tagged by
 /// `op`).
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
@@ -51,6 +58,17 @@ pub enum Operation {
         key: Option<Vec<String>>,
         keep: KeepWhich,
     },
+    /// Blank cells (empty or a null token) of `columns` filled with `value`, or with the value
+    /// of column `from` in the same row when that is not blank.
+    Fill {
+        columns: Vec<String>,
+        value: Option<String>,
+        from: Option<String>,
+    },
+    /// Columns renamed; values and order unchanged.
+    Rename { columns: Vec<Renaming> },
+    /// Only the named columns, in the order named.
+    Select { columns: Vec<String> },
     /// Only the rows where the predicate holds are kept (see [`predicate`]).
     #[serde(rename = "keep")]
     KeepRows { predicate: String },
@@ -67,6 +85,9 @@ impl Operation {
             Operation::Dedupe { .. } => "dedupe",
             Operation::KeepRows { .. } => "keep",
             Operation::DropRows { .. } => "drop",
+            Operation::Fill { .. } => "fill",
+            Operation::Rename { .. } => "rename",
+            Operation::Select { .. } => "select",
         }
     }
 
@@ -78,13 +99,19 @@ impl Operation {
         match self {
             Operation::Trim { columns, .. } | Operation::Case { columns, .. } => columns.as_deref(),
             Operation::Dedupe { key, .. } => key.as_deref(),
-            Operation::KeepRows { .. } | Operation::DropRows { .. } => None,
+            Operation::Fill { columns, .. } | Operation::Select { columns } => Some(columns),
+            Operation::KeepRows { .. } | Operation::DropRows { .. } | Operation::Rename { .. } => {
+                None
+            }
         }
     }
 
     /// Whether the operation changes cells (and keeps every row) rather than choosing rows.
     pub fn changes_cells(&self) -> bool {
-        matches!(self, Operation::Trim { .. } | Operation::Case { .. })
+        matches!(
+            self,
+            Operation::Trim { .. } | Operation::Case { .. } | Operation::Fill { .. }
+        )
     }
 
     /// The 0-based positions of the columns the operation works on (all when none are named).
@@ -105,15 +132,67 @@ impl Operation {
         }
     }
 
+    /// The output columns: for each, its name and the input column it comes from.
+    pub fn output_columns(
+        &self,
+        header: &[String],
+        version_label: &str,
+    ) -> Result<Vec<(String, usize)>> {
+        let same = || header.iter().cloned().zip(0..).collect::<Vec<_>>();
+        match self {
+            Operation::Rename { columns } => {
+                let mut out = same();
+                for r in columns {
+                    let i = header.iter().position(|h| *h == r.from).ok_or_else(|| {
+                        Error::usage(format!(
+                            "column \"{}\" is not in {version_label}; its columns are: {}",
+                            r.from,
+                            header.join(", ")
+                        ))
+                    })?;
+                    if r.to.trim().is_empty() {
+                        return Err(Error::usage(format!(
+                            "the new name of column \"{}\" is blank",
+                            r.from
+                        )));
+                    }
+                    out[i].0 = r.to.clone();
+                }
+                check_unique(&out)?;
+                Ok(out)
+            }
+            Operation::Select { columns } => {
+                let idx = self.target_columns(header, version_label)?;
+                let out: Vec<(String, usize)> = columns.iter().cloned().zip(idx).collect();
+                check_unique(&out)?;
+                if out.is_empty() {
+                    return Err(Error::usage("select needs at least one column"));
+                }
+                Ok(out)
+            }
+            _ => Ok(same()),
+        }
+    }
+
     /// The new value of one cell, or `None` when the operation leaves it as it is.
     pub fn cell(&self, value: &str) -> Option<String> {
         let new = match self {
             Operation::Trim { inner, .. } => text::trim(value, *inner),
             Operation::Case { to, .. } => text::case(value, *to),
-            Operation::Dedupe { .. } | Operation::KeepRows { .. } | Operation::DropRows { .. } => {
-                return None
-            }
+            _ => return None,
         };
         (new != value).then_some(new)
     }
+}
+
+fn check_unique(cols: &[(String, usize)]) -> Result<()> {
+    let mut seen = std::collections::BTreeSet::new();
+    for (name, _) in cols {
+        if !seen.insert(name.as_str()) {
+            return Err(Error::usage(format!(
+                "column \"{name}\" would appear twice in the result; column names must be unique"
+            )));
+        }
+    }
+    Ok(())
 }

@@ -486,6 +486,21 @@ impl Lineage {
         rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
     }
 
+    /// (output column, input column) pairs recorded for output version `output_id`.
+    pub fn column_sources(&self, output_id: i64) -> Result<Vec<(String, String)>> {
+        let mut st = self
+            .conn
+            .prepare_cached(
+                "SELECT output_column, input_column FROM column_sources
+                 WHERE output_id = ?1 ORDER BY output_column, input_column",
+            )
+            .map_err(db_err)?;
+        let rows = st
+            .query_map(params![output_id], |r| Ok((r.get(0)?, r.get(1)?)))
+            .map_err(db_err)?;
+        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+    }
+
     /// The input rows of `input_id` that step `step_id` removed, by row.
     pub fn drops(&self, step_id: i64, input_id: i64) -> Result<Vec<Drop>> {
         let mut st = self
@@ -895,6 +910,29 @@ impl Tx<'_> {
                 d.duplicate_of.map(|v| v as i64)
             ])
             .map_err(db_err)?;
+        }
+        Ok(())
+    }
+
+    /// Records, for output version `output_id`, which input columns its columns came from
+    /// (output column, input column), where that is not simply the column of the same name.
+    pub fn insert_column_sources(
+        &mut self,
+        step_id: i64,
+        output_id: i64,
+        input_id: i64,
+        sources: &[(String, String)],
+    ) -> Result<()> {
+        let mut st = self
+            .tx
+            .prepare_cached(
+                "INSERT INTO column_sources (step_id, output_id, output_column, input_id, input_column)
+                 VALUES (?1, ?2, ?3, ?4, ?5) ON CONFLICT DO NOTHING",
+            )
+            .map_err(db_err)?;
+        for (out, inp) in sources {
+            st.execute(params![step_id, output_id, out, input_id, inp])
+                .map_err(db_err)?;
         }
         Ok(())
     }
