@@ -219,7 +219,7 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
             .map(|(name, c)| (name.clone(), input.header[*c].clone()))
             .collect();
         if let Some(f) = &fill {
-            if let Some(from) = f.from_name() {
+            if let Some(from) = f.source_column() {
                 for t in &targets {
                     sources.push((input.header[*t].clone(), from.to_string()));
                     sources.push((input.header[*t].clone(), input.header[*t].clone()));
@@ -351,7 +351,7 @@ impl FillFrom {
         }))
     }
 
-    fn from_name(&self) -> Option<&str> {
+    fn source_column(&self) -> Option<&str> {
         self.from.as_ref().map(|(_, n)| n.as_str())
     }
 
