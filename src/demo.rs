@@ -17,7 +17,7 @@ use crate::error::{Error, Result};
 use crate::intake::{self, IngestOptions, IngestOutcome};
 use crate::model::Agent;
 use crate::ops::apply::{self, ApplyOptions, ApplyOutcome};
-use crate::ops::{CaseTo, KeepWhich, Operation};
+use crate::ops::{CaseTo, KeepWhich, OnError, Operation};
 use crate::store::Store;
 
 /// A small deterministic generator (SplitMix64), so the demo and benchmark data are the same
@@ -476,6 +476,14 @@ pub fn run(dir: &Path, agent: &Agent) -> Result<DemoReport> {
                 keep: KeepWhich::First,
             },
             "the till exports some orders twice",
+        ),
+        (
+            Operation::Number {
+                columns: vec!["parts_cost".into()],
+                decimal_comma: false,
+                on_error: OnError::Fail,
+            },
+            "parts costs are written with euro signs and thousands commas",
         ),
     ] {
         let opts = ApplyOptions {

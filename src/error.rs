@@ -203,6 +203,9 @@ pub enum ErrorKind {
     ObjectMissing { hash: String },
     #[error("{0}")]
     Usage(String),
+    /// The data does not meet what a step needs (an amount that cannot be read, ...).
+    #[error("{0}")]
+    Data(String),
 }
 
 fn render_io(path: &Path, source: &std::io::Error) -> String {
@@ -278,7 +281,8 @@ impl Error {
         match &*self.0 {
             ErrorKind::ObjectCorrupt { .. }
             | ErrorKind::ObjectMissing { .. }
-            | ErrorKind::CorruptDatabase { .. } => 1,
+            | ErrorKind::CorruptDatabase { .. }
+            | ErrorKind::Data(_) => 1,
             // A full disk is a failure of the system, not of the user's input.
             ErrorKind::Io { source, .. } if source.kind() == std::io::ErrorKind::StorageFull => 1,
             _ => 2,

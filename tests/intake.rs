@@ -422,11 +422,11 @@ fn demo_builds_a_store_that_verifies() {
     std::fs::remove_dir_all(d.path()).unwrap();
     std::fs::rename(s.path().join("sluice-demo"), d.path()).unwrap();
     assert_contains(&d.ok(&["verify"]), "intact");
-    // Four intakes and three cleaning steps.
-    assert_eq!(d.json(&["log", "--json"]).as_array().unwrap().len(), 7);
+    // Four intakes and four cleaning steps.
+    assert_eq!(d.json(&["log", "--json"]).as_array().unwrap().len(), 8);
     assert_eq!(
         d.json(&["show", "quillby_orders", "--json"])["version"]["seq"],
-        4
+        5
     );
     // A second demo in the same folder goes to a new folder.
     assert_contains(&s.ok(&["demo"]), "sluice-demo");

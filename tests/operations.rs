@@ -10,7 +10,7 @@ use proptest::prelude::*;
 use sluice::intake::{ingest, IngestOptions, IngestOutcome};
 use sluice::model::{Agent, Version};
 use sluice::ops::apply::{apply, ApplyOptions, ApplyOutcome};
-use sluice::ops::{CaseTo, KeepWhich, Operation, Renaming};
+use sluice::ops::{CaseTo, KeepWhich, OnError, Operation, Renaming};
 use sluice::store::Store;
 use sluice::table::{for_each_record, ReadSettings};
 
@@ -182,6 +182,7 @@ proptest! {
             Operation::KeepRows { predicate: "not c0 in ('B', 'x-y')".into() },
             Operation::Fill { columns: vec!["c0".into()], value: None, from: Some(format!("c{}", n_cols - 1)) },
             Operation::Fill { columns: vec!["c0".into()], value: Some("n/a".into()), from: None },
+            Operation::Number { columns: vec!["c0".into()], decimal_comma: false, on_error: OnError::Blank },
             Operation::Rename { columns: vec![Renaming { from: "c0".into(), to: "first".into() }] },
             Operation::Select { columns: std::iter::once("first".to_string()).chain((1..n_cols).rev().map(|i| format!("c{i}"))).collect() },
         ] {
@@ -638,4 +639,85 @@ fn rename_select_and_fill_record_where_columns_came_from() {
         .contains(&("e-mail".to_string(), "note".to_string())));
     let err = s.fails(2, &["apply", "orders", "rename", "nope=x", "--why", "typo"]);
     assert_contains(&err, "column \"nope\" is not in orders@4");
+}
+
+#[test]
+fn number_reads_amounts_exactly_and_never_zeroes_what_it_cannot_read() {
+    let s = Sandbox::with_store();
+    s.file(
+        "o.csv",
+        "id;amount\n1;1.204,50 €\n2;(5,00)\n3;EUR 12,5\n4;n/a\n5;\n6;12,5%\n",
+    );
+    s.ok(&["ingest", "o.csv", "--as", "orders"]);
+    // Refused by default, listing the cell, exit code 1 (a data failure); nothing recorded.
+    let before = s.snapshot();
+    let err = s.fails(
+        1,
+        &[
+            "apply",
+            "orders",
+            "number",
+            "--columns",
+            "amount",
+            "--decimal-comma",
+            "--why",
+            "amounts",
+        ],
+    );
+    assert_contains(&err, "1 cell is not an amount: data row 4 amount \"n/a\"");
+    assert_contains(&err, "--on-error keep");
+    assert_eq!(before, s.snapshot());
+    // Kept as text, with a note on the cell.
+    let out = s.ok(&[
+        "apply",
+        "orders",
+        "number",
+        "--columns",
+        "amount",
+        "--decimal-comma",
+        "--on-error",
+        "keep",
+        "--why",
+        "amounts",
+    ]);
+    assert_contains(&out, "number changed 4 cells (amount 4)");
+    assert_contains(&out, "noted: 1 cell that is not an amount");
+    assert_eq!(
+        s.run(&["cat", "orders"]).stdout,
+        "id,amount\n1,1204.50\n2,-5.00\n3,12.5\n4,n/a\n5,\n6,0.125\n"
+    );
+    let store = Store::open(&s.path().join(".sluice")).unwrap();
+    let v = sluice::refs::resolve(&store.lineage, "orders").unwrap();
+    assert_eq!(
+        store.lineage.cell_notes(v.id).unwrap(),
+        vec![(
+            3,
+            "amount".to_string(),
+            "not an amount; kept as it was".to_string()
+        )]
+    );
+    drop(store);
+    // Blanked, with a note, when asked.
+    s.ok(&[
+        "apply",
+        "orders@1",
+        "number",
+        "--columns",
+        "amount",
+        "--decimal-comma",
+        "--on-error",
+        "blank",
+        "--why",
+        "amounts",
+        "--as",
+        "blanked",
+    ]);
+    assert_eq!(
+        s.run(&["cat", "blanked"]).stdout,
+        "id,amount\n1,1204.50\n2,-5.00\n3,12.5\n4,\n5,\n6,0.125\n"
+    );
+    let shown = s.json(&["show", "blanked", "--json"]);
+    assert_eq!(shown["profile"][1]["inferred_type"], "decimal");
+    assert_eq!(shown["profile"][1]["min"], "-5.00");
+    assert_eq!(shown["profile"][1]["max"], "1204.50");
 }

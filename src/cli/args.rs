@@ -217,6 +217,30 @@ pub enum OpCommand {
         #[command(flatten)]
         step: StepArgs,
     },
+    /// Read amounts written as text ("$1,204.50", "12,50 €", "(5.00)", "12.5%") as exact decimals
+    #[command(
+        after_help = "Accepted: a currency sign ($ € £ ¥) or ISO 4217 code before or after; thousands separators in groups of three; \
+        a sign, a trailing minus or parentheses for negatives; a trailing % read as a fraction (12.5% -> 0.125). \
+        Never through floating point.\n\nExample:\n  sluice apply oxwater_orders number --columns parts --decimal-comma --why \"amounts as numbers\""
+    )]
+    Number {
+        /// The columns to read, comma-separated
+        #[arg(
+            long,
+            required = true,
+            value_name = "COL[,COL..]",
+            value_delimiter = ','
+        )]
+        columns: Vec<String>,
+        /// The decimal separator is a comma (and "." or a space groups thousands)
+        #[arg(long)]
+        decimal_comma: bool,
+        /// What to do with a value that is not an amount: fail (list them), keep it (noted) or blank it (noted)
+        #[arg(long, value_enum, default_value = "fail")]
+        on_error: OnErrorArg,
+        #[command(flatten)]
+        step: StepArgs,
+    },
     /// Rename columns; values and order stay
     #[command(
         after_help = "Example:\n  sluice apply oxwater_orders rename \"order no=order_id\" date=opened --why \"one naming for all shops\""
@@ -277,6 +301,13 @@ pub enum OpCommand {
         #[command(flatten)]
         step: StepArgs,
     },
+}
+
+#[derive(Debug, Clone, Copy, ValueEnum)]
+pub enum OnErrorArg {
+    Fail,
+    Keep,
+    Blank,
 }
 
 #[derive(Debug, Clone, Copy, ValueEnum)]

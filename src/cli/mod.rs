@@ -10,11 +10,11 @@ use std::path::{Path, PathBuf};
 
 use anyhow::{anyhow, Context};
 
-use args::{ApplyArgs, CaseArg, Cli, Command, IngestArgs, KeepArg, OpCommand};
+use args::{ApplyArgs, CaseArg, Cli, Command, IngestArgs, KeepArg, OnErrorArg, OpCommand};
 use sluice::intake::{self, IngestOptions, IngestOutcome};
 use sluice::model::Agent;
 use sluice::ops::apply::{self as apply_op, ApplyOptions};
-use sluice::ops::{CaseTo, KeepWhich, Operation, Renaming};
+use sluice::ops::{CaseTo, KeepWhich, OnError, Operation, Renaming};
 use sluice::store::Store;
 use sluice::{agent, demo, history, refs, verify};
 
@@ -154,6 +154,23 @@ fn apply_options(a: &ApplyArgs, agent: Agent) -> anyhow::Result<ApplyOptions> {
                 columns: columns.clone(),
                 value: value.clone(),
                 from: from.clone(),
+            },
+            step,
+        ),
+        OpCommand::Number {
+            columns,
+            decimal_comma,
+            on_error,
+            step,
+        } => (
+            Operation::Number {
+                columns: columns.clone(),
+                decimal_comma: *decimal_comma,
+                on_error: match on_error {
+                    OnErrorArg::Fail => OnError::Fail,
+                    OnErrorArg::Keep => OnError::Keep,
+                    OnErrorArg::Blank => OnError::Blank,
+                },
             },
             step,
         ),

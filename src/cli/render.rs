@@ -75,6 +75,7 @@ pub fn apply_outcome(out: &mut impl Write, op: &Operation, o: &ApplyOutcome) -> 
             n_changed,
             changed_by_column,
             n_dropped,
+            n_noted,
             ..
         } => {
             let per_column: Vec<String> = changed_by_column
@@ -105,16 +106,52 @@ pub fn apply_outcome(out: &mut impl Write, op: &Operation, o: &ApplyOutcome) -> 
                 op.name(),
                 shape(version)
             )?;
+            if *n_noted > 0 {
+                writeln!(
+                    out,
+                    "noted: {} (kept or blanked as asked; listed with the step)",
+                    plural(
+                        *n_noted,
+                        "cell that is not an amount",
+                        "cells that are not amounts"
+                    )
+                )?;
+            }
             writeln!(out, "next: `sluice show {}`", version.label())
         }
-        ApplyOutcome::Unchanged { input, version } => writeln!(
-            out,
-            "unchanged: {} of {} gives the same bytes as {} ({}); nothing recorded",
-            op.name(),
-            input.label(),
-            version.label(),
-            &version.hash[..12]
-        ),
+        ApplyOutcome::Unchanged {
+            input,
+            version,
+            notes,
+        } => {
+            writeln!(
+                out,
+                "unchanged: {} of {} gives the same bytes as {} ({}); nothing recorded",
+                op.name(),
+                input.label(),
+                version.label(),
+                &version.hash[..12]
+            )?;
+            if !notes.is_empty() {
+                let shown: Vec<String> = notes
+                    .iter()
+                    .take(5)
+                    .map(|(row, col, note)| format!("data row {} {col}: {note}", row + 1))
+                    .collect();
+                writeln!(
+                    out,
+                    "note: {}: {}{}",
+                    plural(
+                        notes.len() as u64,
+                        "cell was left alone",
+                        "cells were left alone"
+                    ),
+                    shown.join("; "),
+                    if notes.len() > 5 { "; ..." } else { "" }
+                )?;
+            }
+            Ok(())
+        }
     }
 }
 

@@ -17,8 +17,9 @@ use std::collections::HashMap;
 
 use xxhash_rust::xxh3::Xxh3;
 
+use super::number::parse_amount;
 use super::predicate::Predicate;
-use super::{KeepWhich, Operation};
+use super::{KeepWhich, OnError, Operation};
 use crate::clock;
 use crate::error::{Error, ErrorKind, Result};
 use crate::hash::Hash;
@@ -50,9 +51,16 @@ pub enum ApplyOutcome {
         /// Changed cells per column, in column order (columns with none left out).
         changed_by_column: Vec<(String, u64)>,
         n_dropped: u64,
+        n_noted: u64,
     },
     /// The result equals the latest version of the target dataset: nothing was recorded.
-    Unchanged { input: Version, version: Version },
+    /// `notes` are what the step would have noted on cells (e.g. values `number` could not
+    /// read and kept), so that the user still learns of them.
+    Unchanged {
+        input: Version,
+        version: Version,
+        notes: Vec<(u64, String, String)>,
+    },
 }
 
 /// A reader that hashes what passes through it.
@@ -103,6 +111,14 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
     let mut changed_per_column = vec![0u64; columns.len()];
     let mut new_values: Vec<Option<Vec<u8>>> = vec![None; columns.len()];
     let mut chooser = RowChooser::new(store, &input, &opts.op, &targets)?;
+    let null_tokens: Vec<Vec<u8>> = input
+        .null_tokens
+        .iter()
+        .map(|t| t.as_bytes().to_vec())
+        .collect();
+    let mut notes: Vec<(u64, String, String)> = Vec::new();
+    // Cells `number --on-error fail` could not read: (input row, column, text).
+    let mut failures: Vec<(u64, String, String)> = Vec::new();
     let mut out_row = 0u64;
     each_input_row(store, &input, |in_row, r| {
         if let Some(drop) = chooser.decide(in_row, &r) {
@@ -133,9 +149,47 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
                     input.header[c]
                 )))
             })?;
-            let new = match &fill {
-                Some(f) => f.fill(old, &r),
-                None => opts.op.cell(text),
+            let new = match (&fill, &opts.op) {
+                (Some(f), _) => f.fill(old, &r),
+                (
+                    None,
+                    Operation::Number {
+                        decimal_comma,
+                        on_error,
+                        ..
+                    },
+                ) => {
+                    if old.is_empty() || null_tokens.iter().any(|t| t.as_slice() == old) {
+                        None
+                    } else {
+                        match parse_amount(text, *decimal_comma) {
+                            Some(n) => (n != text).then_some(n),
+                            None => match on_error {
+                                OnError::Keep => {
+                                    notes.push((
+                                        out_row,
+                                        columns[o].0.clone(),
+                                        "not an amount; kept as it was".into(),
+                                    ));
+                                    None
+                                }
+                                OnError::Blank => {
+                                    notes.push((
+                                        out_row,
+                                        columns[o].0.clone(),
+                                        "not an amount; blanked".into(),
+                                    ));
+                                    Some(String::new())
+                                }
+                                OnError::Fail => {
+                                    failures.push((in_row, columns[o].0.clone(), text.to_string()));
+                                    None
+                                }
+                            },
+                        }
+                    }
+                }
+                (None, op) => op.cell(text),
             };
             if let Some(new) = new {
                 changes.push(CellChange {
@@ -158,6 +212,24 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
         out_row += 1;
         Ok(())
     })?;
+    if !failures.is_empty() {
+        let shown: Vec<String> = failures
+            .iter()
+            .take(10)
+            .map(|(row, col, v)| format!("data row {} {col} \"{v}\"", row + 1))
+            .collect();
+        return Err(ErrorKind::Data(format!(
+            "{label}: {}: {}{}; fix them upstream, or pass --on-error keep (leave the text, noted) or --on-error blank (empty the cell, noted)",
+            if failures.len() == 1 {
+                "1 cell is not an amount".to_string()
+            } else {
+                format!("{} cells are not amounts", failures.len())
+            },
+            shown.join(", "),
+            if failures.len() > 10 { format!(", and {} more", failures.len() - 10) } else { String::new() }
+        ))
+        .into());
+    }
     let written = writer.finish().map_err(store_io)?;
     let out_hash = written.table.hash().hex();
     if let Some(latest) = store.lineage.latest_version(&dataset)? {
@@ -165,6 +237,7 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
             return Ok(ApplyOutcome::Unchanged {
                 input,
                 version: latest,
+                notes,
             });
         }
     }
@@ -227,6 +300,7 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
             }
         }
         tx.insert_column_sources(step_id, version_id, input.id, &sources)?;
+        tx.insert_cell_notes(step_id, version_id, &notes)?;
         tx.audit(
             &opts.agent,
             "apply",
@@ -238,6 +312,7 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
                 "step": step_id,
                 "cells_changed": changes.len(),
                 "rows_dropped": drops.len(),
+                "cells_noted": notes.len(),
             }),
             &ended_at,
         )?;
@@ -254,6 +329,7 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
         n_changed: changes.len() as u64,
         changed_by_column,
         n_dropped: drops.len() as u64,
+        n_noted: notes.len() as u64,
     })
 }
 

@@ -4,6 +4,7 @@
 //! operation over a stored version and records the result with its provenance.
 
 pub mod apply;
+pub mod number;
 pub mod predicate;
 pub mod text;
 
@@ -26,6 +27,18 @@ pub enum CaseTo {
 pub enum KeepWhich {
     First,
     Last,
+}
+
+/// What `number` does with a value that is not an amount.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum OnError {
+    /// Leave the text as it was, with a note on the cell.
+    Keep,
+    /// Empty the cell, with a note on it.
+    Blank,
+    /// Refuse the step, listing the cells.
+    Fail,
 }
 
 /// One column renamed by `rename`.
@@ -65,6 +78,12 @@ pub enum Operation {
         value: Option<String>,
         from: Option<String>,
     },
+    /// Amounts written as text read into canonical decimal numbers (see [`number`]).
+    Number {
+        columns: Vec<String>,
+        decimal_comma: bool,
+        on_error: OnError,
+    },
     /// Columns renamed; values and order unchanged.
     Rename { columns: Vec<Renaming> },
     /// Only the named columns, in the order named.
@@ -86,6 +105,7 @@ impl Operation {
             Operation::KeepRows { .. } => "keep",
             Operation::DropRows { .. } => "drop",
             Operation::Fill { .. } => "fill",
+            Operation::Number { .. } => "number",
             Operation::Rename { .. } => "rename",
             Operation::Select { .. } => "select",
         }
@@ -99,7 +119,9 @@ impl Operation {
         match self {
             Operation::Trim { columns, .. } | Operation::Case { columns, .. } => columns.as_deref(),
             Operation::Dedupe { key, .. } => key.as_deref(),
-            Operation::Fill { columns, .. } | Operation::Select { columns } => Some(columns),
+            Operation::Fill { columns, .. }
+            | Operation::Number { columns, .. }
+            | Operation::Select { columns } => Some(columns),
             Operation::KeepRows { .. } | Operation::DropRows { .. } | Operation::Rename { .. } => {
                 None
             }
@@ -110,7 +132,10 @@ impl Operation {
     pub fn changes_cells(&self) -> bool {
         matches!(
             self,
-            Operation::Trim { .. } | Operation::Case { .. } | Operation::Fill { .. }
+            Operation::Trim { .. }
+                | Operation::Case { .. }
+                | Operation::Fill { .. }
+                | Operation::Number { .. }
         )
     }
 

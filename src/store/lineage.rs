@@ -16,7 +16,10 @@ use crate::model::{
 };
 
 /// The migrations, in order. Each entry is (schema version it produces, SQL).
-const MIGRATIONS: &[(i64, &str)] = &[(1, include_str!("../../schema/0001_lineage.sql"))];
+const MIGRATIONS: &[(i64, &str)] = &[
+    (1, include_str!("../../schema/0001_lineage.sql")),
+    (2, include_str!("../../schema/0002_cell_notes.sql")),
+];
 
 /// The schema version this build writes.
 pub const SCHEMA_VERSION: i64 = MIGRATIONS[MIGRATIONS.len() - 1].0;
@@ -486,6 +489,23 @@ impl Lineage {
         rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
     }
 
+    /// The notes on single cells of output version `output_id`: (row, column, note).
+    pub fn cell_notes(&self, output_id: i64) -> Result<Vec<(u64, String, String)>> {
+        let mut st = self
+            .conn
+            .prepare_cached(
+                "SELECT row_idx, column_name, note FROM cell_notes
+                 WHERE output_id = ?1 ORDER BY row_idx, column_name",
+            )
+            .map_err(db_err)?;
+        let rows = st
+            .query_map(params![output_id], |r| {
+                Ok((r.get::<_, i64>(0)? as u64, r.get(1)?, r.get(2)?))
+            })
+            .map_err(db_err)?;
+        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+    }
+
     /// (output column, input column) pairs recorded for output version `output_id`.
     pub fn column_sources(&self, output_id: i64) -> Result<Vec<(String, String)>> {
         let mut st = self
@@ -910,6 +930,27 @@ impl Tx<'_> {
                 d.duplicate_of.map(|v| v as i64)
             ])
             .map_err(db_err)?;
+        }
+        Ok(())
+    }
+
+    /// Records notes on single cells of output version `output_id`: (row, column, note).
+    pub fn insert_cell_notes(
+        &mut self,
+        step_id: i64,
+        output_id: i64,
+        notes: &[(u64, String, String)],
+    ) -> Result<()> {
+        let mut st = self
+            .tx
+            .prepare_cached(
+                "INSERT INTO cell_notes (step_id, output_id, row_idx, column_name, note)
+                 VALUES (?1, ?2, ?3, ?4, ?5)",
+            )
+            .map_err(db_err)?;
+        for (row, col, note) in notes {
+            st.execute(params![step_id, output_id, *row as i64, col, note])
+                .map_err(db_err)?;
         }
         Ok(())
     }
