@@ -183,6 +183,7 @@ proptest! {
             Operation::Fill { columns: vec!["c0".into()], value: None, from: Some(format!("c{}", n_cols - 1)) },
             Operation::Fill { columns: vec!["c0".into()], value: Some("n/a".into()), from: None },
             Operation::Number { columns: vec!["c0".into()], decimal_comma: false, on_error: OnError::Blank },
+            Operation::Date { columns: vec!["c0".into()], order: None, on_error: OnError::Keep },
             Operation::Rename { columns: vec![Renaming { from: "c0".into(), to: "first".into() }] },
             Operation::Select { columns: std::iter::once("first".to_string()).chain((1..n_cols).rev().map(|i| format!("c{i}"))).collect() },
         ] {
@@ -664,7 +665,10 @@ fn number_reads_amounts_exactly_and_never_zeroes_what_it_cannot_read() {
             "amounts",
         ],
     );
-    assert_contains(&err, "1 cell is not an amount: data row 4 amount \"n/a\"");
+    assert_contains(
+        &err,
+        "1 cell cannot be read as an amount: data row 4 amount \"n/a\" (not an amount)",
+    );
     assert_contains(&err, "--on-error keep");
     assert_eq!(before, s.snapshot());
     // Kept as text, with a note on the cell.
@@ -681,7 +685,7 @@ fn number_reads_amounts_exactly_and_never_zeroes_what_it_cannot_read() {
         "amounts",
     ]);
     assert_contains(&out, "number changed 4 cells (amount 4)");
-    assert_contains(&out, "noted: 1 cell that is not an amount");
+    assert_contains(&out, "noted: 1 cell that could not be read");
     assert_eq!(
         s.run(&["cat", "orders"]).stdout,
         "id,amount\n1,1204.50\n2,-5.00\n3,12.5\n4,n/a\n5,\n6,0.125\n"
@@ -720,4 +724,78 @@ fn number_reads_amounts_exactly_and_never_zeroes_what_it_cannot_read() {
     assert_eq!(shown["profile"][1]["inferred_type"], "decimal");
     assert_eq!(shown["profile"][1]["min"], "-5.00");
     assert_eq!(shown["profile"][1]["max"], "1204.50");
+}
+
+#[test]
+fn date_writes_iso_8601_and_refuses_to_guess() {
+    let s = Sandbox::with_store();
+    s.file(
+        "o.csv",
+        "id,opened\n1,03/04/2026\n2,13/04/2026\n3,8 Jul 2026\n4,2026-07-03T14:05+0200\n5,\n",
+    );
+    s.ok(&["ingest", "o.csv", "--as", "orders"]);
+    let before = s.snapshot();
+    // 03/04/2026 reads both ways: refused without --order, exit code 1, nothing recorded.
+    let err = s.fails(
+        1,
+        &[
+            "apply",
+            "orders",
+            "date",
+            "--columns",
+            "opened",
+            "--why",
+            "dates",
+        ],
+    );
+    assert_contains(&err, "1 cell cannot be read as a date: data row 1 opened \"03/04/2026\" (ambiguous day and month)");
+    assert_contains(&err, "--order dmy");
+    assert_eq!(before, s.snapshot());
+    s.ok(&[
+        "apply",
+        "orders",
+        "date",
+        "--columns",
+        "opened",
+        "--order",
+        "dmy",
+        "--why",
+        "the till writes day first",
+    ]);
+    assert_eq!(
+        s.run(&["cat", "orders"]).stdout,
+        "id,opened\n1,2026-04-03\n2,2026-04-13\n3,2026-07-08\n4,2026-07-03T14:05:00+02:00\n5,\n"
+    );
+    // A day that does not exist (ISO 8601 uses the Gregorian calendar) is an error, not March.
+    s.file("p.csv", "id,opened\n1,2023-02-29\n2,2024-02-29\n");
+    s.ok(&["ingest", "p.csv", "--as", "leap"]);
+    let err = s.fails(
+        1,
+        &[
+            "apply",
+            "leap",
+            "date",
+            "--columns",
+            "opened",
+            "--why",
+            "dates",
+        ],
+    );
+    assert_contains(&err, "data row 1 opened \"2023-02-29\" (no such date)");
+    let out = s.ok(&[
+        "apply",
+        "leap",
+        "date",
+        "--columns",
+        "opened",
+        "--on-error",
+        "blank",
+        "--why",
+        "dates",
+    ]);
+    assert_contains(&out, "date changed 1 cell");
+    assert_eq!(
+        s.run(&["cat", "leap"]).stdout,
+        "id,opened\n1,\n2,2024-02-29\n"
+    );
 }

@@ -241,6 +241,31 @@ pub enum OpCommand {
         #[command(flatten)]
         step: StepArgs,
     },
+    /// Write dates in mixed formats as ISO 8601 (YYYY-MM-DD, with time and offset when present)
+    #[command(
+        after_help = "Accepted: ISO 8601 (2026-07-03, 20260703, 2026-W27-5, 2026-184, with a time and offset), numeric dates \
+        with / . or - and a four-digit year, and English month names (3 Jul 2026, Jul 3, 2026). A numeric date that \
+        reads both ways (03/04/2026) needs --order; dates that do not exist (2023-02-29) are errors.\n\nExample:\n  \
+        sluice apply fennmarsh_orders date --columns opened --order dmy --why \"one date format\""
+    )]
+    Date {
+        /// The columns to read, comma-separated
+        #[arg(
+            long,
+            required = true,
+            value_name = "COL[,COL..]",
+            value_delimiter = ','
+        )]
+        columns: Vec<String>,
+        /// The order of day, month and year in numeric dates
+        #[arg(long, value_enum)]
+        order: Option<OrderArg>,
+        /// What to do with a value that is not a date (ambiguous dates always stop the step)
+        #[arg(long, value_enum, default_value = "fail")]
+        on_error: OnErrorArg,
+        #[command(flatten)]
+        step: StepArgs,
+    },
     /// Rename columns; values and order stay
     #[command(
         after_help = "Example:\n  sluice apply oxwater_orders rename \"order no=order_id\" date=opened --why \"one naming for all shops\""
@@ -301,6 +326,13 @@ pub enum OpCommand {
         #[command(flatten)]
         step: StepArgs,
     },
+}
+
+#[derive(Debug, Clone, Copy, ValueEnum)]
+pub enum OrderArg {
+    Dmy,
+    Mdy,
+    Ymd,
 }
 
 #[derive(Debug, Clone, Copy, ValueEnum)]

@@ -10,10 +10,13 @@ use std::path::{Path, PathBuf};
 
 use anyhow::{anyhow, Context};
 
-use args::{ApplyArgs, CaseArg, Cli, Command, IngestArgs, KeepArg, OnErrorArg, OpCommand};
+use args::{
+    ApplyArgs, CaseArg, Cli, Command, IngestArgs, KeepArg, OnErrorArg, OpCommand, OrderArg,
+};
 use sluice::intake::{self, IngestOptions, IngestOutcome};
 use sluice::model::Agent;
 use sluice::ops::apply::{self as apply_op, ApplyOptions};
+use sluice::ops::date::DateOrder;
 use sluice::ops::{CaseTo, KeepWhich, OnError, Operation, Renaming};
 use sluice::store::Store;
 use sluice::{agent, demo, history, refs, verify};
@@ -166,11 +169,24 @@ fn apply_options(a: &ApplyArgs, agent: Agent) -> anyhow::Result<ApplyOptions> {
             Operation::Number {
                 columns: columns.clone(),
                 decimal_comma: *decimal_comma,
-                on_error: match on_error {
-                    OnErrorArg::Fail => OnError::Fail,
-                    OnErrorArg::Keep => OnError::Keep,
-                    OnErrorArg::Blank => OnError::Blank,
-                },
+                on_error: on_error_of(*on_error),
+            },
+            step,
+        ),
+        OpCommand::Date {
+            columns,
+            order,
+            on_error,
+            step,
+        } => (
+            Operation::Date {
+                columns: columns.clone(),
+                order: order.map(|o| match o {
+                    OrderArg::Dmy => DateOrder::Dmy,
+                    OrderArg::Mdy => DateOrder::Mdy,
+                    OrderArg::Ymd => DateOrder::Ymd,
+                }),
+                on_error: on_error_of(*on_error),
             },
             step,
         ),
@@ -244,6 +260,14 @@ fn apply_options(a: &ApplyArgs, agent: Agent) -> anyhow::Result<ApplyOptions> {
         output_dataset: step.dataset.clone(),
         agent,
     })
+}
+
+fn on_error_of(a: OnErrorArg) -> OnError {
+    match a {
+        OnErrorArg::Fail => OnError::Fail,
+        OnErrorArg::Keep => OnError::Keep,
+        OnErrorArg::Blank => OnError::Blank,
+    }
 }
 
 fn parse_delimiter(s: &str) -> anyhow::Result<u8> {

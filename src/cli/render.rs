@@ -112,8 +112,8 @@ pub fn apply_outcome(out: &mut impl Write, op: &Operation, o: &ApplyOutcome) -> 
                     "noted: {} (kept or blanked as asked; listed with the step)",
                     plural(
                         *n_noted,
-                        "cell that is not an amount",
-                        "cells that are not amounts"
+                        "cell that could not be read",
+                        "cells that could not be read"
                     )
                 )?;
             }

@@ -17,6 +17,7 @@ use std::collections::HashMap;
 
 use xxhash_rust::xxh3::Xxh3;
 
+use super::date::{parse_date, DateProblem};
 use super::number::parse_amount;
 use super::predicate::Predicate;
 use super::{KeepWhich, OnError, Operation};
@@ -117,8 +118,8 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
         .map(|t| t.as_bytes().to_vec())
         .collect();
     let mut notes: Vec<(u64, String, String)> = Vec::new();
-    // Cells `number --on-error fail` could not read: (input row, column, text).
-    let mut failures: Vec<(u64, String, String)> = Vec::new();
+    // Cells `number` or `date` could not read and must not pass: (input row, column, text, why).
+    let mut failures: Vec<(u64, String, String, &'static str)> = Vec::new();
     let mut out_row = 0u64;
     each_input_row(store, &input, |in_row, r| {
         if let Some(drop) = chooser.decide(in_row, &r) {
@@ -151,38 +152,37 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
             })?;
             let new = match (&fill, &opts.op) {
                 (Some(f), _) => f.fill(old, &r),
-                (
-                    None,
-                    Operation::Number {
-                        decimal_comma,
-                        on_error,
-                        ..
-                    },
-                ) => {
+                (None, Operation::Number { .. } | Operation::Date { .. }) => {
                     if old.is_empty() || null_tokens.iter().any(|t| t.as_slice() == old) {
                         None
                     } else {
-                        match parse_amount(text, *decimal_comma) {
-                            Some(n) => (n != text).then_some(n),
-                            None => match on_error {
-                                OnError::Keep => {
+                        match read_value(&opts.op, text) {
+                            Ok(n) => (n != text).then_some(n),
+                            // An ambiguous date always stops the step: only --order decides.
+                            Err((why, on_error)) => match on_error {
+                                OnError::Keep if why != AMBIGUOUS => {
                                     notes.push((
                                         out_row,
                                         columns[o].0.clone(),
-                                        "not an amount; kept as it was".into(),
+                                        format!("{why}; kept as it was"),
                                     ));
                                     None
                                 }
-                                OnError::Blank => {
+                                OnError::Blank if why != AMBIGUOUS => {
                                     notes.push((
                                         out_row,
                                         columns[o].0.clone(),
-                                        "not an amount; blanked".into(),
+                                        format!("{why}; blanked"),
                                     ));
                                     Some(String::new())
                                 }
-                                OnError::Fail => {
-                                    failures.push((in_row, columns[o].0.clone(), text.to_string()));
+                                _ => {
+                                    failures.push((
+                                        in_row,
+                                        columns[o].0.clone(),
+                                        text.to_string(),
+                                        why,
+                                    ));
                                     None
                                 }
                             },
@@ -216,17 +216,24 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
         let shown: Vec<String> = failures
             .iter()
             .take(10)
-            .map(|(row, col, v)| format!("data row {} {col} \"{v}\"", row + 1))
+            .map(|(row, col, v, why)| format!("data row {} {col} \"{v}\" ({why})", row + 1))
             .collect();
+        let ambiguous = failures.iter().any(|f| f.3 == AMBIGUOUS);
+        let what = if matches!(opts.op, Operation::Date { .. }) {
+            "a date"
+        } else {
+            "an amount"
+        };
         return Err(ErrorKind::Data(format!(
-            "{label}: {}: {}{}; fix them upstream, or pass --on-error keep (leave the text, noted) or --on-error blank (empty the cell, noted)",
-            if failures.len() == 1 {
-                "1 cell is not an amount".to_string()
-            } else {
-                format!("{} cells are not amounts", failures.len())
-            },
+            "{label}: {} cannot be read as {what}: {}{}; {}",
+            if failures.len() == 1 { "1 cell".to_string() } else { format!("{} cells", failures.len()) },
             shown.join(", "),
-            if failures.len() > 10 { format!(", and {} more", failures.len() - 10) } else { String::new() }
+            if failures.len() > 10 { format!(", and {} more", failures.len() - 10) } else { String::new() },
+            if ambiguous {
+                "say which order the dates are written in with --order dmy or --order mdy"
+            } else {
+                "fix them upstream, or pass --on-error keep (leave the text, noted) or --on-error blank (empty the cell, noted)"
+            }
         ))
         .into());
     }
@@ -381,6 +388,32 @@ fn row_key(r: &RawRecord<'_>, cols: &[usize]) -> u128 {
         h.update(v);
     }
     h.digest128()
+}
+
+const AMBIGUOUS: &str = "ambiguous day and month";
+
+/// Reads one value for `number` or `date`: the canonical text, or why not and what to do.
+fn read_value(op: &Operation, text: &str) -> std::result::Result<String, (&'static str, OnError)> {
+    match op {
+        Operation::Number {
+            decimal_comma,
+            on_error,
+            ..
+        } => parse_amount(text, *decimal_comma).ok_or(("not an amount", *on_error)),
+        Operation::Date {
+            order, on_error, ..
+        } => parse_date(text, *order).map_err(|p| {
+            (
+                match p {
+                    DateProblem::Ambiguous => AMBIGUOUS,
+                    DateProblem::NoSuchDate => "no such date",
+                    DateProblem::NotADate => "not a date",
+                },
+                *on_error,
+            )
+        }),
+        _ => Ok(text.to_string()),
+    }
 }
 
 /// How `fill` finds the value for a blank cell.

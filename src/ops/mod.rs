@@ -4,6 +4,7 @@
 //! operation over a stored version and records the result with its provenance.
 
 pub mod apply;
+pub mod date;
 pub mod number;
 pub mod predicate;
 pub mod text;
@@ -84,6 +85,12 @@ pub enum Operation {
         decimal_comma: bool,
         on_error: OnError,
     },
+    /// Dates in mixed formats written as ISO 8601 (see [`date`]).
+    Date {
+        columns: Vec<String>,
+        order: Option<date::DateOrder>,
+        on_error: OnError,
+    },
     /// Columns renamed; values and order unchanged.
     Rename { columns: Vec<Renaming> },
     /// Only the named columns, in the order named.
@@ -106,6 +113,7 @@ impl Operation {
             Operation::DropRows { .. } => "drop",
             Operation::Fill { .. } => "fill",
             Operation::Number { .. } => "number",
+            Operation::Date { .. } => "date",
             Operation::Rename { .. } => "rename",
             Operation::Select { .. } => "select",
         }
@@ -121,6 +129,7 @@ impl Operation {
             Operation::Dedupe { key, .. } => key.as_deref(),
             Operation::Fill { columns, .. }
             | Operation::Number { columns, .. }
+            | Operation::Date { columns, .. }
             | Operation::Select { columns } => Some(columns),
             Operation::KeepRows { .. } | Operation::DropRows { .. } | Operation::Rename { .. } => {
                 None
@@ -136,6 +145,7 @@ impl Operation {
                 | Operation::Case { .. }
                 | Operation::Fill { .. }
                 | Operation::Number { .. }
+                | Operation::Date { .. }
         )
     }
 
