@@ -184,6 +184,8 @@ proptest! {
             Operation::Fill { columns: vec!["c0".into()], value: Some("n/a".into()), from: None },
             Operation::Number { columns: vec!["c0".into()], decimal_comma: false, on_error: OnError::Blank },
             Operation::Date { columns: vec!["c0".into()], order: None, on_error: OnError::Keep },
+            Operation::Replace { columns: None, find: "a".into(), with: "\"".into(), regex: false },
+            Operation::Replace { columns: None, find: "(?i)(b)(é?)".into(), with: "$2$1,".into(), regex: true },
             Operation::Rename { columns: vec![Renaming { from: "c0".into(), to: "first".into() }] },
             Operation::Select { columns: std::iter::once("first".to_string()).chain((1..n_cols).rev().map(|i| format!("c{i}"))).collect() },
         ] {
@@ -798,4 +800,53 @@ fn date_writes_iso_8601_and_refuses_to_guess() {
         s.run(&["cat", "leap"]).stdout,
         "id,opened\n1,\n2,2024-02-29\n"
     );
+}
+
+#[test]
+fn replace_literal_and_by_regular_expression() {
+    let s = Sandbox::with_store();
+    s.file(
+        "o.csv",
+        "id,hours,service\n1,\"1,5\",brakes - adjust\n2,2.25,Brake Tune\n",
+    );
+    s.ok(&["ingest", "o.csv", "--as", "orders"]);
+    let out = s.ok(&[
+        "apply",
+        "orders",
+        "replace",
+        "--columns",
+        "hours",
+        "--find",
+        ",",
+        "--with",
+        ".",
+        "--why",
+        "decimal commas",
+    ]);
+    assert_contains(&out, "replace changed 1 cell (hours 1)");
+    s.ok(&[
+        "apply",
+        "orders",
+        "replace",
+        "--columns",
+        "service",
+        "--regex",
+        "--find",
+        "(?i)^brakes? *(-|tune) *(adjust)?$",
+        "--with",
+        "brake adjustment",
+        "--why",
+        "one label",
+    ]);
+    assert_eq!(
+        s.run(&["cat", "orders"]).stdout,
+        "id,hours,service\n1,1.5,brake adjustment\n2,2.25,brake adjustment\n"
+    );
+    let err = s.fails(
+        2,
+        &[
+            "apply", "orders", "replace", "--regex", "--find", "(", "--with", "x", "--why", "x",
+        ],
+    );
+    assert_contains(&err, "--find \"(\" is not a valid regular expression");
 }

@@ -190,6 +190,27 @@ pub enum OpCommand {
         #[command(flatten)]
         step: StepArgs,
     },
+    /// Replace text inside values: literally, or by regular expression with --regex
+    #[command(
+        after_help = "Examples:\n  sluice apply quillby_orders replace --columns labour_hours --find , --with . --why \"decimal commas typed by hand\"\n  \
+        sluice apply quillby_orders replace --columns service --regex --find '^brakes? *- *adjust$' --with 'Brake tune' --why \"one label\""
+    )]
+    Replace {
+        /// Only these columns (default: all), comma-separated
+        #[arg(long, value_name = "COL[,COL..]", value_delimiter = ',')]
+        columns: Option<Vec<String>>,
+        /// The text (or with --regex, the regular expression) to find
+        #[arg(long, value_name = "TEXT", allow_hyphen_values = true)]
+        find: String,
+        /// What to put instead; with --regex, $1, $2 ... or ${name} insert groups
+        #[arg(long, value_name = "TEXT", allow_hyphen_values = true)]
+        with: String,
+        /// --find is a regular expression (Rust regex syntax)
+        #[arg(long)]
+        regex: bool,
+        #[command(flatten)]
+        step: StepArgs,
+    },
     /// Fill blank cells (empty or a null token) with a value or from another column
     #[command(
         after_help = "Examples:\n  sluice apply quillby_orders fill --columns labour_hours --value 0 --why \"no labour booked\"\n  sluice apply quillby_orders fill --columns email --from notes --why \"clerk typed the address in the notes\""

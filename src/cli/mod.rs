@@ -147,6 +147,21 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
 
 fn apply_options(a: &ApplyArgs, agent: Agent) -> anyhow::Result<ApplyOptions> {
     let (op, step) = match &a.op {
+        OpCommand::Replace {
+            columns,
+            find,
+            with,
+            regex,
+            step,
+        } => (
+            Operation::Replace {
+                columns: columns.clone(),
+                find: find.clone(),
+                with: with.clone(),
+                regex: *regex,
+            },
+            step,
+        ),
         OpCommand::Fill {
             columns,
             value,

@@ -100,6 +100,7 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
     let columns = opts.op.output_columns(&input.header, &label)?;
     let out_header: Vec<String> = columns.iter().map(|(n, _)| n.clone()).collect();
     let fill = FillFrom::new(&opts.op, &input)?;
+    let replacer = Replacer::new(&opts.op)?;
     let started_at = clock::now_rfc3339();
     let store_dir = store.dir().to_path_buf();
     let store_io = |e: io::Error| Error::io(&store_dir.join("tmp"), e);
@@ -189,6 +190,7 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
                         }
                     }
                 }
+                (None, Operation::Replace { .. }) => replacer.as_ref().and_then(|r| r.apply(text)),
                 (None, op) => op.cell(text),
             };
             if let Some(new) = new {
@@ -413,6 +415,51 @@ fn read_value(op: &Operation, text: &str) -> std::result::Result<String, (&'stat
             )
         }),
         _ => Ok(text.to_string()),
+    }
+}
+
+/// `replace`, ready to run: the regular expression compiled once.
+enum Replacer {
+    Literal { find: String, with: String },
+    Regex { re: regex::Regex, with: String },
+}
+
+impl Replacer {
+    fn new(op: &Operation) -> Result<Option<Replacer>> {
+        let Operation::Replace {
+            find, with, regex, ..
+        } = op
+        else {
+            return Ok(None);
+        };
+        if find.is_empty() {
+            return Err(Error::usage("replace needs something to find: --find TEXT"));
+        }
+        Ok(Some(if *regex {
+            let re = regex::Regex::new(find).map_err(|e| {
+                Error::usage(format!(
+                    "--find \"{find}\" is not a valid regular expression: {}",
+                    e.to_string().lines().last().unwrap_or("")
+                ))
+            })?;
+            Replacer::Regex {
+                re,
+                with: with.clone(),
+            }
+        } else {
+            Replacer::Literal {
+                find: find.clone(),
+                with: with.clone(),
+            }
+        }))
+    }
+
+    fn apply(&self, text: &str) -> Option<String> {
+        let new = match self {
+            Replacer::Literal { find, with } => text.replace(find.as_str(), with),
+            Replacer::Regex { re, with } => re.replace_all(text, with.as_str()).into_owned(),
+        };
+        (new != text).then_some(new)
     }
 }
 

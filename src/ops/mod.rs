@@ -72,6 +72,14 @@ pub enum Operation {
         key: Option<Vec<String>>,
         keep: KeepWhich,
     },
+    /// Every occurrence of `find` in the values replaced by `with`: literal text, or with
+    /// `regex` a regular expression (Rust `regex` syntax) whose `with` may name groups as `$1`.
+    Replace {
+        columns: Option<Vec<String>>,
+        find: String,
+        with: String,
+        regex: bool,
+    },
     /// Blank cells (empty or a null token) of `columns` filled with `value`, or with the value
     /// of column `from` in the same row when that is not blank.
     Fill {
@@ -112,6 +120,7 @@ impl Operation {
             Operation::KeepRows { .. } => "keep",
             Operation::DropRows { .. } => "drop",
             Operation::Fill { .. } => "fill",
+            Operation::Replace { .. } => "replace",
             Operation::Number { .. } => "number",
             Operation::Date { .. } => "date",
             Operation::Rename { .. } => "rename",
@@ -125,7 +134,9 @@ impl Operation {
 
     fn columns(&self) -> Option<&[String]> {
         match self {
-            Operation::Trim { columns, .. } | Operation::Case { columns, .. } => columns.as_deref(),
+            Operation::Trim { columns, .. }
+            | Operation::Case { columns, .. }
+            | Operation::Replace { columns, .. } => columns.as_deref(),
             Operation::Dedupe { key, .. } => key.as_deref(),
             Operation::Fill { columns, .. }
             | Operation::Number { columns, .. }
@@ -146,6 +157,7 @@ impl Operation {
                 | Operation::Fill { .. }
                 | Operation::Number { .. }
                 | Operation::Date { .. }
+                | Operation::Replace { .. }
         )
     }
 
