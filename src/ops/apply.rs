@@ -28,7 +28,7 @@ use crate::intake::validate_dataset_name;
 use crate::model::{Agent, CellChange, Drop, LineageKind, RowRun, StepKind, Version};
 use crate::refs;
 use crate::store::{NewStep, NewVersion, Store};
-use crate::table::write::{canonical_dialect, CanonicalWriter};
+use crate::table::write::{canonical_dialect, CanonicalWriter, Written};
 use crate::table::{for_each_record, RawRecord, ReadSettings};
 
 /// What `sluice apply` was asked to do.
@@ -240,13 +240,81 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
         .into());
     }
     let written = writer.finish().map_err(store_io)?;
+    // Output columns whose values come from an input column of another name.
+    let mut sources: Vec<(String, String)> = columns
+        .iter()
+        .filter(|(name, c)| input.header[*c] != *name)
+        .map(|(name, c)| (name.clone(), input.header[*c].clone()))
+        .collect();
+    if let Some(f) = &fill {
+        if let Some(from) = f.source_column() {
+            for t in &targets {
+                sources.push((input.header[*t].clone(), from.to_string()));
+                sources.push((input.header[*t].clone(), input.header[*t].clone()));
+            }
+        }
+    }
+    let changed_by_column: Vec<(String, u64)> = out_header
+        .iter()
+        .zip(&changed_per_column)
+        .filter(|(_, n)| **n > 0)
+        .map(|(h, n)| (h.clone(), *n))
+        .collect();
+    let prov = Provenance {
+        runs,
+        changes,
+        drops,
+        notes,
+        sources,
+    };
+    record(
+        store,
+        input,
+        &dataset,
+        opts,
+        &started_at,
+        written,
+        &out_header,
+        prov,
+        None,
+        changed_by_column,
+    )
+}
+
+/// Everything a built-in step records about how its output came from its input.
+pub(super) struct Provenance {
+    pub runs: Vec<RowRun>,
+    pub changes: Vec<CellChange>,
+    pub drops: Vec<Drop>,
+    pub notes: Vec<(u64, String, String)>,
+    /// (output column, input column) where they differ.
+    pub sources: Vec<(String, String)>,
+}
+
+/// Persists a written output and records it: the version (or nothing, when it equals the
+/// dataset's latest), the step, its provenance and the audit entry, in one transaction.
+#[allow(clippy::too_many_arguments)]
+pub(super) fn record(
+    store: &mut Store,
+    input: Version,
+    dataset: &str,
+    opts: &ApplyOptions,
+    started_at: &str,
+    written: Written,
+    out_header: &[String],
+    prov: Provenance,
+    key: Option<Vec<String>>,
+    changed_by_column: Vec<(String, u64)>,
+) -> Result<ApplyOutcome> {
+    let store_dir = store.dir().to_path_buf();
+    let store_io = |e: io::Error| Error::io(&store_dir.join("tmp"), e);
     let out_hash = written.table.hash().hex();
-    if let Some(latest) = store.lineage.latest_version(&dataset)? {
+    if let Some(latest) = store.lineage.latest_version(dataset)? {
         if latest.hash == out_hash {
             return Ok(ApplyOutcome::Unchanged {
                 input,
                 version: latest,
-                notes,
+                notes: prov.notes,
             });
         }
     }
@@ -257,12 +325,6 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
     let table_hex = table_hash.hex();
     let index_hex = index_hash.hex();
     let dialect = canonical_dialect();
-    let changed_by_column: Vec<(String, u64)> = out_header
-        .iter()
-        .zip(&changed_per_column)
-        .filter(|(_, n)| **n > 0)
-        .map(|(h, n)| (h.clone(), *n))
-        .collect();
     let (version_id, step_id) = store.write(|tx| {
         let step_id = tx.insert_step(&NewStep {
             kind: StepKind::Operation,
@@ -270,7 +332,7 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
             params: opts.op.params(),
             agent: &opts.agent,
             reason: Some(&opts.reason),
-            started_at: started_at.clone(),
+            started_at: started_at.to_string(),
             ended_at: ended_at.clone(),
             rows_in: Some(input.n_rows),
             rows_out: Some(n_rows),
@@ -279,37 +341,30 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
             inputs: vec![(input.id, "input")],
         })?;
         let (version_id, seq) = tx.insert_version(&NewVersion {
-            dataset: &dataset,
-            key: None,
+            dataset,
+            key: key.as_deref(),
             step_id,
             hash: &table_hex,
             n_bytes,
             row_index: &index_hex,
             row_index_bytes: index_bytes,
             n_rows,
-            header: &out_header,
+            header: out_header,
             dialect: &dialect,
             null_tokens: &input.null_tokens,
             profiles: &written.profiles,
             created_at: &ended_at,
         })?;
-        tx.insert_provenance(step_id, version_id, input.id, &runs, &changes, &drops)?;
-        // Output columns whose values come from an input column of another name.
-        let mut sources: Vec<(String, String)> = columns
-            .iter()
-            .filter(|(name, c)| input.header[*c] != *name)
-            .map(|(name, c)| (name.clone(), input.header[*c].clone()))
-            .collect();
-        if let Some(f) = &fill {
-            if let Some(from) = f.source_column() {
-                for t in &targets {
-                    sources.push((input.header[*t].clone(), from.to_string()));
-                    sources.push((input.header[*t].clone(), input.header[*t].clone()));
-                }
-            }
-        }
-        tx.insert_column_sources(step_id, version_id, input.id, &sources)?;
-        tx.insert_cell_notes(step_id, version_id, &notes)?;
+        tx.insert_provenance(
+            step_id,
+            version_id,
+            input.id,
+            &prov.runs,
+            &prov.changes,
+            &prov.drops,
+        )?;
+        tx.insert_column_sources(step_id, version_id, input.id, &prov.sources)?;
+        tx.insert_cell_notes(step_id, version_id, &prov.notes)?;
         tx.audit(
             &opts.agent,
             "apply",
@@ -319,9 +374,9 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
                 "input": input.hash,
                 "version": table_hex,
                 "step": step_id,
-                "cells_changed": changes.len(),
-                "rows_dropped": drops.len(),
-                "cells_noted": notes.len(),
+                "cells_changed": prov.changes.len(),
+                "rows_dropped": prov.drops.len(),
+                "cells_noted": prov.notes.len(),
             }),
             &ended_at,
         )?;
@@ -335,16 +390,16 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
         input,
         version,
         step_id,
-        n_changed: changes.len() as u64,
+        n_changed: prov.changes.len() as u64,
         changed_by_column,
-        n_dropped: drops.len() as u64,
-        n_noted: notes.len() as u64,
+        n_dropped: prov.drops.len() as u64,
+        n_noted: prov.notes.len() as u64,
     })
 }
 
 /// Calls `f` with every data row of `input` (0-based index and record), re-hashing the object
 /// as it is read; a mismatch is an error after the last row, before anything is recorded.
-fn each_input_row(
+pub(super) fn each_input_row(
     store: &Store,
     input: &Version,
     mut f: impl FnMut(u64, RawRecord<'_>) -> Result<()>,
