@@ -309,6 +309,37 @@ pub enum OpCommand {
         #[command(flatten)]
         step: StepArgs,
     },
+    /// One row per group with its count and exact sums, means, minimums and maximums
+    #[command(
+        after_help = "The result is a new dataset (--as NAME) keyed by the --by columns, one row per group in the order the \
+        groups first appear: the group values, count (rows), then sum_COL, mean_COL, min_COL, max_COL over non-blank values. \
+        Sums are exact decimals; means are rounded half to even at 6 fraction digits (more when the values have more).\n\n\
+        Example:\n  sluice apply quillby_orders summarize --by technician --sum parts_cost --mean parts_cost --as parts_by_technician --why \"Q3 report\""
+    )]
+    Summarize {
+        /// The columns to group on, comma-separated
+        #[arg(
+            long,
+            required = true,
+            value_name = "COL[,COL..]",
+            value_delimiter = ','
+        )]
+        by: Vec<String>,
+        /// Columns to sum
+        #[arg(long, value_name = "COL[,COL..]", value_delimiter = ',')]
+        sum: Vec<String>,
+        /// Columns to average
+        #[arg(long, value_name = "COL[,COL..]", value_delimiter = ',')]
+        mean: Vec<String>,
+        /// Columns whose least value to give
+        #[arg(long, value_name = "COL[,COL..]", value_delimiter = ',')]
+        min: Vec<String>,
+        /// Columns whose greatest value to give
+        #[arg(long, value_name = "COL[,COL..]", value_delimiter = ',')]
+        max: Vec<String>,
+        #[command(flatten)]
+        step: StepArgs,
+    },
     /// Keep only the rows where a predicate holds
     #[command(
         after_help = "Predicates: comparisons (= != < <= > >=; numeric when both sides are numbers), \

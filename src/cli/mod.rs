@@ -17,6 +17,7 @@ use sluice::intake::{self, IngestOptions, IngestOutcome};
 use sluice::model::Agent;
 use sluice::ops::apply::{self as apply_op, ApplyOptions};
 use sluice::ops::date::DateOrder;
+use sluice::ops::summarize::{AggFunc, Aggregate};
 use sluice::ops::{CaseTo, KeepWhich, OnError, Operation, Renaming};
 use sluice::store::Store;
 use sluice::{agent, demo, history, refs, verify};
@@ -147,6 +148,36 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
 
 fn apply_options(a: &ApplyArgs, agent: Agent) -> anyhow::Result<ApplyOptions> {
     let (op, step) = match &a.op {
+        OpCommand::Summarize {
+            by,
+            sum,
+            mean,
+            min,
+            max,
+            step,
+        } => {
+            let mut aggregates = Vec::new();
+            for (func, cols) in [
+                (AggFunc::Sum, sum),
+                (AggFunc::Mean, mean),
+                (AggFunc::Min, min),
+                (AggFunc::Max, max),
+            ] {
+                for c in cols {
+                    aggregates.push(Aggregate {
+                        func,
+                        column: c.clone(),
+                    });
+                }
+            }
+            (
+                Operation::Summarize {
+                    by: by.clone(),
+                    aggregates,
+                },
+                step,
+            )
+        }
         OpCommand::Replace {
             columns,
             find,

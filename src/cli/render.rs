@@ -94,6 +94,12 @@ pub fn apply_outcome(out: &mut impl Write, op: &Operation, o: &ApplyOutcome) -> 
                 )
             } else if matches!(op, Operation::Rename { .. } | Operation::Select { .. }) {
                 "reshaped the columns".to_string()
+            } else if matches!(op, Operation::Summarize { .. }) {
+                format!(
+                    "made {} from {}",
+                    plural(version.n_rows, "group", "groups"),
+                    plural(input.n_rows, "row", "rows")
+                )
             } else {
                 format!("dropped {}", plural(*n_dropped, "row", "rows"))
             };

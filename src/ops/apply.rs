@@ -90,6 +90,9 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
             "--why needs a reason: say why this step is done, e.g. --why \"till adds spaces\"",
         ));
     }
+    if matches!(opts.op, Operation::Summarize { .. }) {
+        return super::summarize::run(store, input, opts);
+    }
     let label = input.label();
     let targets = opts.op.target_columns(&input.header, &label)?;
     let mut is_target = vec![false; input.header.len()];

@@ -5,8 +5,10 @@
 
 pub mod apply;
 pub mod date;
+pub mod decimal;
 pub mod number;
 pub mod predicate;
+pub mod summarize;
 pub mod text;
 
 use serde::{Deserialize, Serialize};
@@ -103,6 +105,12 @@ pub enum Operation {
     Rename { columns: Vec<Renaming> },
     /// Only the named columns, in the order named.
     Select { columns: Vec<String> },
+    /// One row per group of equal `by` values with its count and aggregates (see
+    /// [`summarize`]); the result is a new dataset keyed by `by`.
+    Summarize {
+        by: Vec<String>,
+        aggregates: Vec<summarize::Aggregate>,
+    },
     /// Only the rows where the predicate holds are kept (see [`predicate`]).
     #[serde(rename = "keep")]
     KeepRows { predicate: String },
@@ -121,6 +129,7 @@ impl Operation {
             Operation::DropRows { .. } => "drop",
             Operation::Fill { .. } => "fill",
             Operation::Replace { .. } => "replace",
+            Operation::Summarize { .. } => "summarize",
             Operation::Number { .. } => "number",
             Operation::Date { .. } => "date",
             Operation::Rename { .. } => "rename",
@@ -142,9 +151,10 @@ impl Operation {
             | Operation::Number { columns, .. }
             | Operation::Date { columns, .. }
             | Operation::Select { columns } => Some(columns),
-            Operation::KeepRows { .. } | Operation::DropRows { .. } | Operation::Rename { .. } => {
-                None
-            }
+            Operation::KeepRows { .. }
+            | Operation::DropRows { .. }
+            | Operation::Rename { .. }
+            | Operation::Summarize { .. } => None,
         }
     }
 

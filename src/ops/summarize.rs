@@ -1,0 +1,267 @@
+//! Group summaries: one output row per distinct combination of the `by` columns, in the order
+//! the groups first appear, with `count` (rows in the group) and the asked aggregates of named
+//! columns: `sum` and `mean` exact in decimal (see [`super::decimal`]), `min` and `max` in
+//! exact numeric order, all over the group's non-blank values. Values that are not plain
+//! numbers stop the step, listed (run `number` first).
+//!
+//! Provenance: which input rows an output row aggregates is not stored; it is recomputed on
+//! demand from the immutable input: exactly the input rows whose `by` values equal the output
+//! row's. The output dataset's key is the `by` columns.
+
+use std::collections::HashMap;
+
+use serde::{Deserialize, Serialize};
+
+use super::apply::{each_input_row, record, ApplyOptions, ApplyOutcome, Provenance};
+use super::decimal::Decimal;
+use super::Operation;
+use crate::clock;
+use crate::error::{Error, ErrorKind, Result};
+use crate::model::Version;
+use crate::store::Store;
+use crate::table::profile::{cmp_numbers, number_shape};
+use crate::table::write::CanonicalWriter;
+use crate::table::RawRecord;
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum AggFunc {
+    Sum,
+    Mean,
+    Min,
+    Max,
+}
+
+impl AggFunc {
+    pub fn name(self) -> &'static str {
+        match self {
+            AggFunc::Sum => "sum",
+            AggFunc::Mean => "mean",
+            AggFunc::Min => "min",
+            AggFunc::Max => "max",
+        }
+    }
+}
+
+/// One aggregate column: `func` of input column `column`, named `func_column` in the output.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Aggregate {
+    pub func: AggFunc,
+    pub column: String,
+}
+
+impl Aggregate {
+    pub fn output_name(&self) -> String {
+        format!("{}_{}", self.func.name(), self.column)
+    }
+}
+
+#[derive(Debug, Clone, Default)]
+struct AggState {
+    sum: Decimal,
+    n_values: u64,
+    min: Option<String>,
+    max: Option<String>,
+}
+
+struct Group {
+    key: Vec<String>,
+    count: u64,
+    aggs: Vec<AggState>,
+}
+
+fn position(header: &[String], name: &str, label: &str) -> Result<usize> {
+    header.iter().position(|h| h == name).ok_or_else(|| {
+        Error::usage(format!(
+            "column \"{name}\" is not in {label}; its columns are: {}",
+            header.join(", ")
+        ))
+    })
+}
+
+/// Runs `summarize` over `input` and records the result as a new dataset.
+pub fn run(store: &mut Store, input: Version, opts: &ApplyOptions) -> Result<ApplyOutcome> {
+    let Operation::Summarize { by, aggregates } = &opts.op else {
+        return Err(Error::usage("summarize was called for another operation"));
+    };
+    let label = input.label();
+    let dataset =
+        match &opts.output_dataset {
+            Some(d) if *d != input.dataset => d.clone(),
+            _ => return Err(Error::usage(
+                "summarize makes a new dataset: name it with --as NAME (e.g. --as revenue_by_shop)",
+            )),
+        };
+    crate::intake::validate_dataset_name(&dataset)?;
+    if by.is_empty() {
+        return Err(Error::usage(
+            "summarize needs --by COLUMN[,COLUMN..] to group on",
+        ));
+    }
+    let by_idx: Vec<usize> = by
+        .iter()
+        .map(|c| position(&input.header, c, &label))
+        .collect::<Result<_>>()?;
+    let agg_idx: Vec<usize> = aggregates
+        .iter()
+        .map(|a| position(&input.header, &a.column, &label))
+        .collect::<Result<_>>()?;
+    let mut out_header: Vec<String> = by.clone();
+    out_header.push("count".to_string());
+    out_header.extend(aggregates.iter().map(Aggregate::output_name));
+    let mut seen = std::collections::BTreeSet::new();
+    for h in &out_header {
+        if !seen.insert(h) {
+            return Err(Error::usage(format!(
+                "column \"{h}\" would appear twice in the summary; group by other columns or rename first"
+            )));
+        }
+    }
+    let started_at = clock::now_rfc3339();
+    let null_tokens: Vec<Vec<u8>> = input
+        .null_tokens
+        .iter()
+        .map(|t| t.as_bytes().to_vec())
+        .collect();
+    let blank = |v: &[u8]| v.is_empty() || null_tokens.iter().any(|t| t.as_slice() == v);
+
+    let mut groups: Vec<Group> = Vec::new();
+    let mut index: HashMap<Vec<u8>, usize> = HashMap::new();
+    let mut key_buf = Vec::new();
+    let mut bad: Vec<(u64, String, String)> = Vec::new();
+    let mut overflow = false;
+    each_input_row(store, &input, |row, r: RawRecord<'_>| {
+        // The group key as bytes: each value with its length, so ("ab","c") != ("a","bc").
+        key_buf.clear();
+        for &c in &by_idx {
+            let v = r.field(c);
+            key_buf.extend_from_slice(&(v.len() as u64).to_le_bytes());
+            key_buf.extend_from_slice(v);
+        }
+        let g = match index.get(&key_buf) {
+            Some(&g) => g,
+            None => {
+                groups.push(Group {
+                    key: by_idx
+                        .iter()
+                        .map(|&c| String::from_utf8_lossy(r.field(c)).into_owned())
+                        .collect(),
+                    count: 0,
+                    aggs: vec![AggState::default(); aggregates.len()],
+                });
+                index.insert(key_buf.clone(), groups.len() - 1);
+                groups.len() - 1
+            }
+        };
+        let group = &mut groups[g];
+        group.count += 1;
+        for (k, &c) in agg_idx.iter().enumerate() {
+            let v = r.field(c);
+            if blank(v) {
+                continue;
+            }
+            let text = std::str::from_utf8(v).unwrap_or("");
+            let Some(d) = (number_shape(v).is_some())
+                .then(|| Decimal::parse(text))
+                .flatten()
+            else {
+                if bad.len() < 10 {
+                    bad.push((row, aggregates[k].column.clone(), text.to_string()));
+                } else {
+                    bad.push((row, String::new(), String::new()));
+                }
+                continue;
+            };
+            let st = &mut group.aggs[k];
+            match st.sum.checked_add(d) {
+                Some(s) => st.sum = s,
+                None => overflow = true,
+            }
+            st.n_values += 1;
+            if st
+                .min
+                .as_deref()
+                .is_none_or(|m| cmp_numbers(v, m.as_bytes()).is_lt())
+            {
+                st.min = Some(text.to_string());
+            }
+            if st
+                .max
+                .as_deref()
+                .is_none_or(|m| cmp_numbers(v, m.as_bytes()).is_gt())
+            {
+                st.max = Some(text.to_string());
+            }
+        }
+        Ok(())
+    })?;
+    if !bad.is_empty() {
+        let shown: Vec<String> = bad
+            .iter()
+            .filter(|(_, c, _)| !c.is_empty())
+            .map(|(row, col, v)| format!("data row {} {col} \"{v}\"", row + 1))
+            .collect();
+        return Err(ErrorKind::Data(format!(
+            "{label}: {} value{} to aggregate {} not plain numbers: {}{}; read them first with `sluice apply {label} number --columns ...`",
+            bad.len(),
+            if bad.len() == 1 { "" } else { "s" },
+            if bad.len() == 1 { "is" } else { "are" },
+            shown.join(", "),
+            if bad.len() > shown.len() { ", ..." } else { "" }
+        ))
+        .into());
+    }
+    if overflow {
+        return Err(ErrorKind::Data(format!(
+            "{label}: a sum does not fit in 38 significant digits; summarize fewer rows or fewer fraction digits"
+        ))
+        .into());
+    }
+
+    let store_dir = store.dir().to_path_buf();
+    let store_io = |e: std::io::Error| Error::io(&store_dir.join("tmp"), e);
+    let mut writer = CanonicalWriter::new(&store.objects, &out_header, &[]).map_err(store_io)?;
+    for g in &groups {
+        let mut cells: Vec<String> = g.key.clone();
+        cells.push(g.count.to_string());
+        for (a, st) in aggregates.iter().zip(&g.aggs) {
+            cells.push(match a.func {
+                _ if st.n_values == 0 => String::new(),
+                AggFunc::Sum => st.sum.to_string(),
+                AggFunc::Mean => st
+                    .sum
+                    .mean(st.n_values)
+                    .map(|m| m.to_string())
+                    .unwrap_or_default(),
+                AggFunc::Min => st.min.clone().unwrap_or_default(),
+                AggFunc::Max => st.max.clone().unwrap_or_default(),
+            });
+        }
+        let fields: Vec<&[u8]> = cells.iter().map(|c| c.as_bytes()).collect();
+        writer.write_row(&fields).map_err(store_io)?;
+    }
+    let written = writer.finish().map_err(store_io)?;
+    let sources = aggregates
+        .iter()
+        .map(|a| (a.output_name(), a.column.clone()))
+        .collect();
+    let prov = Provenance {
+        runs: Vec::new(),
+        changes: Vec::new(),
+        drops: Vec::new(),
+        notes: Vec::new(),
+        sources,
+    };
+    record(
+        store,
+        input,
+        &dataset,
+        opts,
+        &started_at,
+        written,
+        &out_header,
+        prov,
+        Some(by.clone()),
+        Vec::new(),
+    )
+}
