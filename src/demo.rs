@@ -491,6 +491,7 @@ pub fn run(dir: &Path, agent: &Agent) -> Result<DemoReport> {
             reason: why.to_string(),
             output_dataset: None,
             agent: agent.clone(),
+            map_table_file: None,
         };
         let outcome = apply::apply(&mut store, "quillby_orders", &opts)?;
         cleaned.push((op, outcome));

@@ -26,7 +26,7 @@ use crate::error::{Error, ErrorKind, InputProblem, Position, Result};
 use crate::hash::STREAM_BUF;
 use crate::model::{Agent, ColumnProfile, Dialect, LineageKind, SourceFile, StepKind, Version};
 use crate::store::objects::ObjectWriter;
-use crate::store::{NewStep, NewVersion, Store};
+use crate::store::{NewStep, NewVersion, Store, Tx};
 use crate::table::batch::RecordBatch;
 use crate::table::profile::{number_shape, Profiler};
 use crate::table::rowindex::{self, RowEntry};
@@ -108,8 +108,9 @@ fn store_io(store_dir: &Path, e: std::io::Error) -> Error {
     Error::io(&store_dir.join("tmp"), e)
 }
 
-/// Records the file at `path` as a new version of `opts.dataset`.
-pub fn ingest(store: &mut Store, path: &Path, opts: &IngestOptions) -> Result<IngestOutcome> {
+/// Reads, checks and stores the file at `path` as the next version of `opts.dataset`, without
+/// recording it yet (see [`PreparedIngest::commit`]).
+pub fn prepare(store: &Store, path: &Path, opts: &IngestOptions) -> Result<Prepared> {
     validate_dataset_name(&opts.dataset)?;
     let encoding = match &opts.encoding {
         Some(label) => Some(encoding_for(label)?),
@@ -157,19 +158,12 @@ pub fn ingest(store: &mut Store, path: &Path, opts: &IngestOptions) -> Result<In
         .is_some_and(|v| v.hash == hash)
     {
         if let Some(v) = store.lineage.latest_version(&opts.dataset)? {
-            return Ok(IngestOutcome::Unchanged { version: v });
+            return Ok(Prepared::Unchanged(Box::new(v)));
         }
     }
 
-    let store_dir = store.dir().to_path_buf();
-    let (table_hash, n_bytes) = read_side
-        .table
-        .finish()
-        .map_err(|e| store_io(&store_dir, e))?;
-    let (index_hash, index_bytes) = scan
-        .row_index
-        .finish()
-        .map_err(|e| store_io(&store_dir, e))?;
+    let n_bytes = read_side.table.n_bytes();
+    let table_hash = read_side.table.hash();
     let ended_at = clock::now_rfc3339();
 
     let source = SourceFile {
@@ -189,59 +183,34 @@ pub fn ingest(store: &mut Store, path: &Path, opts: &IngestOptions) -> Result<In
         "key": opts.key,
         "null_tokens": opts.null_tokens,
     });
-    let table_hex = table_hash.hex();
-    let index_hex = index_hash.hex();
-    let outcome = store.write(|tx| {
-        // Another command may have recorded the same bytes while this one was reading.
-        if tx.latest_version_hash(&opts.dataset)?.as_deref() == Some(table_hex.as_str()) {
-            return Ok(None);
-        }
-        let step_id = tx.insert_step(&NewStep {
-            kind: StepKind::Ingest,
-            operation: None,
-            params: params.clone(),
-            agent: &opts.agent,
-            reason: opts.reason.as_deref(),
-            started_at: started_at.clone(),
-            ended_at: ended_at.clone(),
-            rows_in: None,
-            rows_out: Some(scan.n_rows),
-            lineage: LineageKind::None,
-            source: Some(&source),
-            inputs: Vec::new(),
-        })?;
-        let (version_id, seq) = tx.insert_version(&NewVersion {
-            dataset: &opts.dataset,
-            key: opts.key.as_deref(),
-            step_id,
-            hash: &table_hex,
-            n_bytes,
-            row_index: &index_hex,
-            row_index_bytes: index_bytes,
-            n_rows: scan.n_rows,
-            header: &scan.header,
-            dialect: &scan.dialect,
-            null_tokens: &opts.null_tokens,
-            profiles: &scan.profiles,
-            created_at: &ended_at,
-        })?;
-        tx.audit(
-            &opts.agent,
-            "ingest",
-            &format!("{}@{seq}", opts.dataset),
-            &json!({
-                "version": table_hex,
-                "row_index": index_hex,
-                "step": step_id,
-                "source": source.absolute_path,
-                "n_rows": scan.n_rows,
-                "n_bytes": n_bytes,
-            }),
-            &ended_at,
-        )?;
-        Ok(Some((version_id, step_id)))
-    })?;
-    match outcome {
+    Ok(Prepared::Ready(Box::new(PreparedIngest {
+        opts: opts.clone(),
+        path: path.to_path_buf(),
+        started_at,
+        ended_at,
+        source,
+        params,
+        table_hex: table_hash.hex(),
+        n_bytes,
+        index_hex: scan.row_index.hash().hex(),
+        index_bytes: scan.row_index.n_bytes(),
+        objects: Some((read_side.table, scan.row_index)),
+        n_rows: scan.n_rows,
+        header: scan.header,
+        dialect: scan.dialect,
+        profiles: scan.profiles,
+        warnings: scan.warnings,
+    })))
+}
+
+/// Records the file at `path` as a new version of `opts.dataset`.
+pub fn ingest(store: &mut Store, path: &Path, opts: &IngestOptions) -> Result<IngestOutcome> {
+    let mut ready = match prepare(store, path, opts)? {
+        Prepared::Unchanged(version) => return Ok(IngestOutcome::Unchanged { version: *version }),
+        Prepared::Ready(p) => p,
+    };
+    let store_dir = store.dir().to_path_buf();
+    match store.write(|tx| ready.commit(&store_dir, tx))? {
         Some((version_id, step_id)) => {
             let version = store.lineage.version_by_id(version_id)?.ok_or_else(|| {
                 Error::from(ErrorKind::Database("the new version vanished".into()))
@@ -249,7 +218,7 @@ pub fn ingest(store: &mut Store, path: &Path, opts: &IngestOptions) -> Result<In
             Ok(IngestOutcome::Recorded {
                 version,
                 step_id,
-                warnings: scan.warnings,
+                warnings: ready.warnings.clone(),
             })
         }
         None => {
@@ -261,6 +230,114 @@ pub fn ingest(store: &mut Store, path: &Path, opts: &IngestOptions) -> Result<In
                 })?;
             Ok(IngestOutcome::Unchanged { version })
         }
+    }
+}
+
+/// An intake read and checked, its objects written but not yet given their names, waiting to
+/// be recorded; other steps (a `map` with a table file) commit it in their own transaction so
+/// that nothing at all is left if they fail.
+pub struct PreparedIngest {
+    opts: IngestOptions,
+    path: PathBuf,
+    /// The table and row index objects, persisted by `commit`.
+    objects: Option<(ObjectWriter, ObjectWriter)>,
+    started_at: String,
+    ended_at: String,
+    source: SourceFile,
+    params: serde_json::Value,
+    table_hex: String,
+    n_bytes: u64,
+    index_hex: String,
+    index_bytes: u64,
+    n_rows: u64,
+    pub header: Vec<String>,
+    pub dialect: Dialect,
+    profiles: Vec<ColumnProfile>,
+    warnings: Vec<String>,
+}
+
+/// The result of [`prepare`].
+pub enum Prepared {
+    /// The bytes equal the dataset's latest version.
+    Unchanged(Box<Version>),
+    Ready(Box<PreparedIngest>),
+}
+
+impl PreparedIngest {
+    pub fn hash(&self) -> &str {
+        &self.table_hex
+    }
+
+    pub fn null_tokens(&self) -> &[String] {
+        &self.opts.null_tokens
+    }
+
+    /// The file the intake reads (its bytes hash to [`PreparedIngest::hash`]).
+    pub fn path(&self) -> &Path {
+        &self.path
+    }
+
+    /// `name (hash)`, for messages before the version exists.
+    pub fn label(&self) -> String {
+        format!("{} ({})", self.opts.dataset, &self.table_hex[..12])
+    }
+
+    /// Makes the objects durable, then records the version, its ingest step and the audit
+    /// entry in `tx`; `None` when another command recorded the same bytes as the dataset's
+    /// latest version meanwhile.
+    pub fn commit(&mut self, store_dir: &Path, tx: &mut Tx<'_>) -> Result<Option<(i64, i64)>> {
+        if let Some((table, index)) = self.objects.take() {
+            table.finish().map_err(|e| store_io(store_dir, e))?;
+            index.finish().map_err(|e| store_io(store_dir, e))?;
+        }
+        let opts = &self.opts;
+        if tx.latest_version_hash(&opts.dataset)?.as_deref() == Some(self.table_hex.as_str()) {
+            return Ok(None);
+        }
+        let step_id = tx.insert_step(&NewStep {
+            kind: StepKind::Ingest,
+            operation: None,
+            params: self.params.clone(),
+            agent: &opts.agent,
+            reason: opts.reason.as_deref(),
+            started_at: self.started_at.clone(),
+            ended_at: self.ended_at.clone(),
+            rows_in: None,
+            rows_out: Some(self.n_rows),
+            lineage: LineageKind::None,
+            source: Some(&self.source),
+            inputs: Vec::new(),
+        })?;
+        let (version_id, seq) = tx.insert_version(&NewVersion {
+            dataset: &opts.dataset,
+            key: opts.key.as_deref(),
+            step_id,
+            hash: &self.table_hex,
+            n_bytes: self.n_bytes,
+            row_index: &self.index_hex,
+            row_index_bytes: self.index_bytes,
+            n_rows: self.n_rows,
+            header: &self.header,
+            dialect: &self.dialect,
+            null_tokens: &opts.null_tokens,
+            profiles: &self.profiles,
+            created_at: &self.ended_at,
+        })?;
+        tx.audit(
+            &opts.agent,
+            "ingest",
+            &format!("{}@{seq}", opts.dataset),
+            &json!({
+                "version": self.table_hex,
+                "row_index": self.index_hex,
+                "step": step_id,
+                "source": self.source.absolute_path,
+                "n_rows": self.n_rows,
+                "n_bytes": self.n_bytes,
+            }),
+            &self.ended_at,
+        )?;
+        Ok(Some((version_id, step_id)))
     }
 }
 

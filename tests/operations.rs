@@ -189,7 +189,7 @@ proptest! {
             Operation::Rename { columns: vec![Renaming { from: "c0".into(), to: "first".into() }] },
             Operation::Select { columns: std::iter::once("first".to_string()).chain((1..n_cols).rev().map(|i| format!("c{i}"))).collect() },
         ] {
-            let o = ApplyOptions { op, reason: "law".into(), output_dataset: None, agent: agent() };
+            let o = ApplyOptions { op, reason: "law".into(), output_dataset: None, agent: agent(), map_table_file: None };
             match apply(&mut store, &current.label(), &o).unwrap() {
                 ApplyOutcome::Recorded { input, version, .. } => {
                     prop_assert_eq!(replay_provenance(&store, &input, &version), rows_of(&store, &version));
@@ -687,7 +687,7 @@ fn number_reads_amounts_exactly_and_never_zeroes_what_it_cannot_read() {
         "amounts",
     ]);
     assert_contains(&out, "number changed 4 cells (amount 4)");
-    assert_contains(&out, "noted: 1 cell that could not be read");
+    assert_contains(&out, "noted: 1 cell left as asked");
     assert_eq!(
         s.run(&["cat", "orders"]).stdout,
         "id,amount\n1,1204.50\n2,-5.00\n3,12.5\n4,n/a\n5,\n6,0.125\n"
@@ -1028,4 +1028,101 @@ for (t, st), (n, total) in groups.items():
     let out = child.wait_with_output().unwrap();
     assert!(out.status.success());
     assert_eq!(ours, String::from_utf8(out.stdout).unwrap());
+}
+
+#[test]
+fn map_takes_the_table_in_and_records_it_as_an_input() {
+    let s = Sandbox::with_store();
+    s.file(
+        "o.csv",
+        "id,service\n1,flat fix\n2,Puncture\n3,gears\n4,\n5,tyre swap\n",
+    );
+    s.file(
+        "labels.csv",
+        "label,service\nflat fix,puncture repair\nPuncture,puncture repair\ngears,gear indexing\n",
+    );
+    s.ok(&["ingest", "o.csv", "--as", "orders"]);
+    let before = s.snapshot();
+    let err = s.fails(
+        1,
+        &[
+            "apply",
+            "orders",
+            "map",
+            "--columns",
+            "service",
+            "--table",
+            "labels.csv",
+            "--unmatched",
+            "fail",
+            "--why",
+            "names",
+        ],
+    );
+    assert_contains(
+        &err,
+        "data row 5 service \"tyre swap\" (no entry in the mapping table)",
+    );
+    // The table file is recorded only with a step that succeeds: a failed map leaves nothing.
+    assert_eq!(before, s.snapshot());
+    let out = s.ok(&[
+        "apply",
+        "orders",
+        "map",
+        "--columns",
+        "service",
+        "--table",
+        "labels.csv",
+        "--why",
+        "the cooperative's names",
+    ]);
+    assert_contains(&out, "took in the mapping table as labels");
+    assert_contains(&out, "map changed 3 cells (service 3)");
+    assert_contains(&out, "noted: 1 cell left as asked");
+    assert_eq!(
+        s.run(&["cat", "orders"]).stdout,
+        "id,service\n1,puncture repair\n2,puncture repair\n3,gear indexing\n4,\n5,tyre swap\n"
+    );
+    let log = s.json(&["log", "orders", "--json"]);
+    let step = &log[0]["step"];
+    assert_eq!(step["inputs"], serde_json::json!(["orders@1", "labels@1"]));
+    assert_eq!(
+        step["params"]["table"],
+        blake3::hash(
+            std::fs::read(s.path().join("labels.csv"))
+                .unwrap()
+                .as_slice()
+        )
+        .to_hex()
+        .to_string()
+    );
+    let store = Store::open(&s.path().join(".sluice")).unwrap();
+    let inp = sluice::refs::resolve(&store.lineage, "orders@1").unwrap();
+    let outv = sluice::refs::resolve(&store.lineage, "orders@2").unwrap();
+    assert_eq!(
+        replay_provenance(&store, &inp, &outv),
+        rows_of(&store, &outv)
+    );
+    drop(store);
+    // A table that maps one value two ways is refused.
+    s.file(
+        "bad.csv",
+        "from,to\ngears,gear indexing\ngears,gear tuning\n",
+    );
+    s.ok(&["ingest", "bad.csv", "--as", "bad_labels"]);
+    let err = s.fails(
+        1,
+        &[
+            "apply",
+            "orders",
+            "map",
+            "--columns",
+            "service",
+            "--table",
+            "bad_labels",
+            "--why",
+            "x",
+        ],
+    );
+    assert_contains(&err, "gives more than one value for: \"gears\"");
 }

@@ -211,6 +211,36 @@ pub enum OpCommand {
         #[command(flatten)]
         step: StepArgs,
     },
+    /// Replace values through a two-column mapping table (a file, taken in first, or a version)
+    #[command(
+        after_help = "The table's first column holds values as they are written, the second what they become (or name them with \
+        --from and --to). A file is taken in as a dataset named after it first, so the table is part of the lineage.\n\n\
+        Example:\n  sluice apply quillby_orders map --columns service --table exports/service_labels.csv --why \"the cooperative's service names\""
+    )]
+    Map {
+        /// The columns to map, comma-separated
+        #[arg(
+            long,
+            required = true,
+            value_name = "COL[,COL..]",
+            value_delimiter = ','
+        )]
+        columns: Vec<String>,
+        /// The mapping table: a file to take in, or a version (NAME, NAME@N, hash prefix)
+        #[arg(long, value_name = "FILE|REF")]
+        table: String,
+        /// The table column holding the values as written (default: its first of two)
+        #[arg(long, value_name = "COL")]
+        from: Option<String>,
+        /// The table column holding what they become (default: its second of two)
+        #[arg(long, value_name = "COL")]
+        to: Option<String>,
+        /// What to do with a value the table has no entry for: keep it (noted), blank it (noted) or fail
+        #[arg(long, value_enum, default_value = "keep")]
+        unmatched: OnErrorArg,
+        #[command(flatten)]
+        step: StepArgs,
+    },
     /// Fill blank cells (empty or a null token) with a value or from another column
     #[command(
         after_help = "Examples:\n  sluice apply quillby_orders fill --columns labour_hours --value 0 --why \"no labour booked\"\n  sluice apply quillby_orders fill --columns email --from notes --why \"clerk typed the address in the notes\""

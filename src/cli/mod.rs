@@ -77,7 +77,28 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         }
         Command::Apply(a) => {
             let mut store = open_store(&cli, &cwd)?;
-            let opts = apply_options(a, resolve_agent(&cli, &cwd))?;
+            let agent = resolve_agent(&cli, &cwd);
+            let mut opts = apply_options(a, agent.clone())?;
+            // A mapping table given as a file is taken in with the step, so it is part of the
+            // lineage, and recorded only if the step succeeds.
+            if let Operation::Map { table, .. } = &opts.op {
+                let path = Path::new(table.as_str()).to_path_buf();
+                if path.is_file() {
+                    opts.map_table_file = Some((
+                        path.clone(),
+                        IngestOptions {
+                            dataset: dataset_name_for(&path),
+                            key: None,
+                            reason: Some(format!("mapping table for `map` on {}", a.reference)),
+                            delimiter: None,
+                            has_header: true,
+                            encoding: None,
+                            null_tokens: Vec::new(),
+                            agent,
+                        },
+                    ));
+                }
+            }
             let outcome = apply_op::apply(&mut store, &a.reference, &opts)?;
             render::apply_outcome(&mut out, &opts.op, &outcome)?;
             Ok(0)
@@ -178,6 +199,23 @@ fn apply_options(a: &ApplyArgs, agent: Agent) -> anyhow::Result<ApplyOptions> {
                 step,
             )
         }
+        OpCommand::Map {
+            columns,
+            table,
+            from,
+            to,
+            unmatched,
+            step,
+        } => (
+            Operation::Map {
+                columns: columns.clone(),
+                table: table.clone(),
+                from: from.clone(),
+                to: to.clone(),
+                unmatched: on_error_of(*unmatched),
+            },
+            step,
+        ),
         OpCommand::Replace {
             columns,
             find,
@@ -305,7 +343,35 @@ fn apply_options(a: &ApplyArgs, agent: Agent) -> anyhow::Result<ApplyOptions> {
         reason: step.why.clone(),
         output_dataset: step.dataset.clone(),
         agent,
+        map_table_file: None,
     })
+}
+
+/// A dataset name for a file taken in on the way (a mapping table): its stem, with anything
+/// a name cannot hold turned into `_`.
+fn dataset_name_for(path: &Path) -> String {
+    let stem = path
+        .file_stem()
+        .map(|s| s.to_string_lossy().into_owned())
+        .unwrap_or_default();
+    let mut name: String = stem
+        .chars()
+        .map(|c| {
+            if c.is_ascii_alphanumeric() || c == '_' || c == '-' || c == '.' {
+                c
+            } else {
+                '_'
+            }
+        })
+        .take(60)
+        .collect();
+    if !name.starts_with(|c: char| c.is_ascii_alphabetic()) {
+        name.insert_str(0, "t_");
+    }
+    if name.len() >= 6 && name.chars().all(|c| c.is_ascii_hexdigit()) {
+        name.push_str("_table");
+    }
+    name
 }
 
 fn on_error_of(a: OnErrorArg) -> OnError {

@@ -76,8 +76,12 @@ pub fn apply_outcome(out: &mut impl Write, op: &Operation, o: &ApplyOutcome) -> 
             changed_by_column,
             n_dropped,
             n_noted,
+            table_taken_in,
             ..
         } => {
+            if let Some(t) = table_taken_in {
+                writeln!(out, "took in the mapping table as {t}")?;
+            }
             let per_column: Vec<String> = changed_by_column
                 .iter()
                 .map(|(c, n)| format!("{c} {}", count(*n)))
@@ -115,12 +119,8 @@ pub fn apply_outcome(out: &mut impl Write, op: &Operation, o: &ApplyOutcome) -> 
             if *n_noted > 0 {
                 writeln!(
                     out,
-                    "noted: {} (kept or blanked as asked; listed with the step)",
-                    plural(
-                        *n_noted,
-                        "cell that could not be read",
-                        "cells that could not be read"
-                    )
+                    "noted: {} left as asked (kept or blanked, each noted with the step)",
+                    plural(*n_noted, "cell", "cells")
                 )?;
             }
             writeln!(out, "next: `sluice show {}`", version.label())

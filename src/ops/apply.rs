@@ -24,7 +24,8 @@ use super::{KeepWhich, OnError, Operation};
 use crate::clock;
 use crate::error::{Error, ErrorKind, Result};
 use crate::hash::Hash;
-use crate::intake::validate_dataset_name;
+use crate::intake::{self, validate_dataset_name, IngestOptions, Prepared, PreparedIngest};
+use crate::model::Dialect;
 use crate::model::{Agent, CellChange, Drop, LineageKind, RowRun, StepKind, Version};
 use crate::refs;
 use crate::store::{NewStep, NewVersion, Store};
@@ -39,6 +40,9 @@ pub struct ApplyOptions {
     /// Record the result as a version of this dataset instead of the input's.
     pub output_dataset: Option<String>,
     pub agent: Agent,
+    /// For `map`: a table file to take in as part of the same step (recorded only if the map
+    /// succeeds), with the intake options for it.
+    pub map_table_file: Option<(std::path::PathBuf, IngestOptions)>,
 }
 
 /// What an apply did.
@@ -53,6 +57,8 @@ pub enum ApplyOutcome {
         changed_by_column: Vec<(String, u64)>,
         n_dropped: u64,
         n_noted: u64,
+        /// A table file taken in with the step (`map --table FILE`), as `name (hash)`.
+        table_taken_in: Option<String>,
     },
     /// The result equals the latest version of the target dataset: nothing was recorded.
     /// `notes` are what the step would have noted on cells (e.g. values `number` could not
@@ -93,6 +99,50 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
     if matches!(opts.op, Operation::Summarize { .. }) {
         return super::summarize::run(store, input, opts);
     }
+    // A mapping table is recorded by its exact version, whatever reference named it; a table
+    // file is read and stored now but recorded only with the step.
+    let mut table_ingest: Option<Box<PreparedIngest>> = None;
+    let mapper = match (&opts.op, &opts.map_table_file) {
+        (Operation::Map { .. }, Some((path, iopts))) => {
+            match intake::prepare(store, path, iopts)? {
+                Prepared::Unchanged(v) => {
+                    Mapper::new(store, &opts.op, Some(TableSource::Version(v)))?
+                }
+                Prepared::Ready(p) => {
+                    let m = Mapper::new(store, &opts.op, Some(TableSource::Pending(&p)))?;
+                    table_ingest = Some(p);
+                    m
+                }
+            }
+        }
+        _ => Mapper::new(store, &opts.op, None)?,
+    };
+    let resolved;
+    let opts = match (&mapper, &opts.op) {
+        (
+            Some(m),
+            Operation::Map {
+                columns,
+                from,
+                to,
+                unmatched,
+                ..
+            },
+        ) => {
+            resolved = ApplyOptions {
+                op: Operation::Map {
+                    columns: columns.clone(),
+                    table: m.table_hash.clone(),
+                    from: from.clone(),
+                    to: to.clone(),
+                    unmatched: *unmatched,
+                },
+                ..opts.clone()
+            };
+            &resolved
+        }
+        _ => opts,
+    };
     let label = input.label();
     let targets = opts.op.target_columns(&input.header, &label)?;
     let mut is_target = vec![false; input.header.len()];
@@ -194,6 +244,43 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
                     }
                 }
                 (None, Operation::Replace { .. }) => replacer.as_ref().and_then(|r| r.apply(text)),
+                (None, Operation::Map { unmatched, .. }) => match &mapper {
+                    Some(m)
+                        if !(old.is_empty() || null_tokens.iter().any(|t| t.as_slice() == old)) =>
+                    {
+                        match m.entries.get(text) {
+                            Some(new) => (new != text).then(|| new.clone()),
+                            None => match unmatched {
+                                OnError::Keep => {
+                                    notes.push((
+                                        out_row,
+                                        columns[o].0.clone(),
+                                        "no entry in the mapping table; kept as it was".into(),
+                                    ));
+                                    None
+                                }
+                                OnError::Blank => {
+                                    notes.push((
+                                        out_row,
+                                        columns[o].0.clone(),
+                                        "no entry in the mapping table; blanked".into(),
+                                    ));
+                                    Some(String::new())
+                                }
+                                OnError::Fail => {
+                                    failures.push((
+                                        in_row,
+                                        columns[o].0.clone(),
+                                        text.to_string(),
+                                        "no entry in the mapping table",
+                                    ));
+                                    None
+                                }
+                            },
+                        }
+                    }
+                    _ => None,
+                },
                 (None, op) => op.cell(text),
             };
             if let Some(new) = new {
@@ -269,6 +356,15 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
         drops,
         notes,
         sources,
+        table: mapper.as_ref().map(|m| {
+            (
+                m.table_id,
+                targets
+                    .iter()
+                    .map(|&t| (input.header[t].clone(), m.to_column.clone()))
+                    .collect(),
+            )
+        }),
     };
     record(
         store,
@@ -281,6 +377,7 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
         prov,
         None,
         changed_by_column,
+        table_ingest.as_deref_mut(),
     )
 }
 
@@ -292,6 +389,9 @@ pub(super) struct Provenance {
     pub notes: Vec<(u64, String, String)>,
     /// (output column, input column) where they differ.
     pub sources: Vec<(String, String)>,
+    /// A second input read as a table (map, lookup): its version id (`None` while the table
+    /// is an intake recorded with the step) and (output column, table column) pairs.
+    pub table: Option<TableInput>,
 }
 
 /// Persists a written output and records it: the version (or nothing, when it equals the
@@ -308,6 +408,7 @@ pub(super) fn record(
     prov: Provenance,
     key: Option<Vec<String>>,
     changed_by_column: Vec<(String, u64)>,
+    table_ingest: Option<&mut PreparedIngest>,
 ) -> Result<ApplyOutcome> {
     let store_dir = store.dir().to_path_buf();
     let store_io = |e: io::Error| Error::io(&store_dir.join("tmp"), e);
@@ -328,7 +429,24 @@ pub(super) fn record(
     let table_hex = table_hash.hex();
     let index_hex = index_hash.hex();
     let dialect = canonical_dialect();
-    let (version_id, step_id) = store.write(|tx| {
+    let (version_id, step_id, table_label) = store.write(|tx| {
+        // A table file taken in with this step is recorded first, in the same transaction.
+        let mut table_label = None;
+        let table_id = match (&prov.table, table_ingest) {
+            (Some((Some(id), _)), _) => Some(*id),
+            (Some((None, _)), Some(p)) => match p.commit(&store_dir, tx)? {
+                Some((id, _)) => {
+                    table_label = Some(p.label());
+                    Some(id)
+                }
+                None => {
+                    return Err(Error::from(ErrorKind::Database(
+                        "the mapping table was recorded by another command meanwhile; run the step again".into(),
+                    )))
+                }
+            },
+            _ => None,
+        };
         let step_id = tx.insert_step(&NewStep {
             kind: StepKind::Operation,
             operation: Some(opts.op.name()),
@@ -341,7 +459,10 @@ pub(super) fn record(
             rows_out: Some(n_rows),
             lineage: LineageKind::Exact,
             source: None,
-            inputs: vec![(input.id, "input")],
+            inputs: match table_id {
+                Some(t) => vec![(input.id, "input"), (t, "table")],
+                None => vec![(input.id, "input")],
+            },
         })?;
         let (version_id, seq) = tx.insert_version(&NewVersion {
             dataset,
@@ -367,6 +488,9 @@ pub(super) fn record(
             &prov.drops,
         )?;
         tx.insert_column_sources(step_id, version_id, input.id, &prov.sources)?;
+        if let (Some(t), Some((_, sources))) = (table_id, &prov.table) {
+            tx.insert_column_sources(step_id, version_id, t, sources)?;
+        }
         tx.insert_cell_notes(step_id, version_id, &prov.notes)?;
         tx.audit(
             &opts.agent,
@@ -383,7 +507,7 @@ pub(super) fn record(
             }),
             &ended_at,
         )?;
-        Ok((version_id, step_id))
+        Ok((version_id, step_id, table_label))
     })?;
     let version = store
         .lineage
@@ -393,6 +517,7 @@ pub(super) fn record(
         input,
         version,
         step_id,
+        table_taken_in: table_label,
         n_changed: prov.changes.len() as u64,
         changed_by_column,
         n_dropped: prov.drops.len() as u64,
@@ -405,20 +530,44 @@ pub(super) fn record(
 pub(super) fn each_input_row(
     store: &Store,
     input: &Version,
+    f: impl FnMut(u64, RawRecord<'_>) -> Result<()>,
+) -> Result<()> {
+    each_row(store, &input.hash, &input.dialect, &input.label(), f)
+}
+
+/// [`each_input_row`] for an object known by hash, dialect and a label for messages.
+fn each_row(
+    store: &Store,
+    hash: &str,
+    dialect: &Dialect,
+    label: &str,
+    f: impl FnMut(u64, RawRecord<'_>) -> Result<()>,
+) -> Result<()> {
+    let h: Hash = hash
+        .parse()
+        .map_err(|e: String| Error::from(ErrorKind::Database(e)))?;
+    each_row_from(store.objects.open_raw(&h)?, hash, dialect, label, f)
+}
+
+/// Reads the rows of `reader`, whose bytes must hash to `hash`.
+fn each_row_from(
+    reader: Box<dyn Read + Send>,
+    hash: &str,
+    dialect: &Dialect,
+    label: &str,
     mut f: impl FnMut(u64, RawRecord<'_>) -> Result<()>,
 ) -> Result<()> {
-    let input_hash: Hash = input
-        .hash
+    let input_hash: Hash = hash
         .parse()
         .map_err(|e: String| Error::from(ErrorKind::Database(e)))?;
     let mut checked = Checked {
-        inner: store.objects.open_raw(&input_hash)?,
+        inner: reader,
         hasher: blake3::Hasher::new(),
     };
-    let settings = ReadSettings::for_dialect(&input.dialect)?;
-    let mut header_seen = !input.dialect.has_header;
+    let settings = ReadSettings::for_dialect(dialect)?;
+    let mut header_seen = !dialect.has_header;
     let mut row = 0u64;
-    for_each_record(Path::new(&input.label()), &mut checked, &settings, |r| {
+    for_each_record(Path::new(label), &mut checked, &settings, |r| {
         if !header_seen {
             header_seen = true;
             return Ok(());
@@ -473,6 +622,112 @@ fn read_value(op: &Operation, text: &str) -> std::result::Result<String, (&'stat
             )
         }),
         _ => Ok(text.to_string()),
+    }
+}
+
+/// A second input read as a table: its version id (`None` while the table is an intake
+/// recorded with the step) and (output column, table column) pairs.
+pub(super) type TableInput = (Option<i64>, Vec<(String, String)>);
+
+/// Where `map` takes its table from.
+enum TableSource<'a> {
+    Version(Box<Version>),
+    Pending(&'a PreparedIngest),
+}
+
+/// `map`, ready to run: the mapping table's entries in memory.
+struct Mapper {
+    /// `None` while the table is an intake recorded with the step.
+    table_id: Option<i64>,
+    table_hash: String,
+    to_column: String,
+    entries: HashMap<String, String>,
+}
+
+impl Mapper {
+    fn new(
+        store: &Store,
+        op: &Operation,
+        source: Option<TableSource<'_>>,
+    ) -> Result<Option<Mapper>> {
+        let Operation::Map {
+            table, from, to, ..
+        } = op
+        else {
+            return Ok(None);
+        };
+        let source = match source {
+            Some(s) => s,
+            None => TableSource::Version(Box::new(refs::resolve(&store.lineage, table)?)),
+        };
+        let (table_id, hash, header, dialect, label) = match &source {
+            TableSource::Version(v) => (
+                Some(v.id),
+                v.hash.clone(),
+                v.header.clone(),
+                v.dialect.clone(),
+                v.label(),
+            ),
+            TableSource::Pending(p) => (
+                None,
+                p.hash().to_string(),
+                p.header.clone(),
+                p.dialect.clone(),
+                p.label(),
+            ),
+        };
+        let pick = |name: &Option<String>, default: usize| -> Result<usize> {
+            match name {
+                Some(n) => header.iter().position(|h| h == n).ok_or_else(|| {
+                    Error::usage(format!(
+                        "column \"{n}\" is not in the mapping table {label}; its columns are: {}",
+                        header.join(", ")
+                    ))
+                }),
+                None if header.len() == 2 => Ok(default),
+                None => Err(Error::usage(format!(
+                    "the mapping table {label} has {} columns; name the two to use with --from COL --to COL",
+                    header.len()
+                ))),
+            }
+        };
+        let (f, t) = (pick(from, 0)?, pick(to, 1)?);
+        let mut entries: HashMap<String, String> = HashMap::new();
+        let mut dups: Vec<String> = Vec::new();
+        let reader: Box<dyn Read + Send> = match &source {
+            TableSource::Version(_) => store.objects.open_raw(
+                &hash
+                    .parse()
+                    .map_err(|e: String| Error::from(ErrorKind::Database(e)))?,
+            )?,
+            // Not stored under its name yet: read the file itself, checked against its hash.
+            TableSource::Pending(p) => {
+                Box::new(std::fs::File::open(p.path()).map_err(|e| Error::io(p.path(), e))?)
+            }
+        };
+        each_row_from(reader, &hash, &dialect, &label, |_, r| {
+            let k = String::from_utf8_lossy(r.field(f)).into_owned();
+            let v = String::from_utf8_lossy(r.field(t)).into_owned();
+            if let Some(prev) = entries.insert(k.clone(), v.clone()) {
+                if prev != v && dups.len() < 10 && !dups.contains(&k) {
+                    dups.push(k);
+                }
+            }
+            Ok(())
+        })?;
+        if !dups.is_empty() {
+            return Err(ErrorKind::Data(format!(
+                "the mapping table {label} gives more than one value for: {}; keep one entry per value",
+                dups.iter().map(|d| format!("\"{d}\"")).collect::<Vec<_>>().join(", ")
+            ))
+            .into());
+        }
+        Ok(Some(Mapper {
+            table_id,
+            table_hash: hash,
+            to_column: header[t].clone(),
+            entries,
+        }))
     }
 }
 

@@ -82,6 +82,16 @@ pub enum Operation {
         with: String,
         regex: bool,
     },
+    /// Values replaced through a two-column mapping table (another version): a value equal to
+    /// a `from` entry becomes its `to` entry. `table` is recorded as the table version's hash.
+    /// Values with no entry follow `unmatched`; blank cells are left alone.
+    Map {
+        columns: Vec<String>,
+        table: String,
+        from: Option<String>,
+        to: Option<String>,
+        unmatched: OnError,
+    },
     /// Blank cells (empty or a null token) of `columns` filled with `value`, or with the value
     /// of column `from` in the same row when that is not blank.
     Fill {
@@ -129,6 +139,7 @@ impl Operation {
             Operation::DropRows { .. } => "drop",
             Operation::Fill { .. } => "fill",
             Operation::Replace { .. } => "replace",
+            Operation::Map { .. } => "map",
             Operation::Summarize { .. } => "summarize",
             Operation::Number { .. } => "number",
             Operation::Date { .. } => "date",
@@ -150,6 +161,7 @@ impl Operation {
             Operation::Fill { columns, .. }
             | Operation::Number { columns, .. }
             | Operation::Date { columns, .. }
+            | Operation::Map { columns, .. }
             | Operation::Select { columns } => Some(columns),
             Operation::KeepRows { .. }
             | Operation::DropRows { .. }
@@ -168,6 +180,7 @@ impl Operation {
                 | Operation::Number { .. }
                 | Operation::Date { .. }
                 | Operation::Replace { .. }
+                | Operation::Map { .. }
         )
     }
 

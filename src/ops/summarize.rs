@@ -251,6 +251,7 @@ pub fn run(store: &mut Store, input: Version, opts: &ApplyOptions) -> Result<App
         drops: Vec::new(),
         notes: Vec::new(),
         sources,
+        table: None,
     };
     record(
         store,
@@ -263,5 +264,6 @@ pub fn run(store: &mut Store, input: Version, opts: &ApplyOptions) -> Result<App
         prov,
         Some(by.clone()),
         Vec::new(),
+        None,
     )
 }
