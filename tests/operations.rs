@@ -1126,3 +1126,91 @@ fn map_takes_the_table_in_and_records_it_as_an_input() {
     );
     assert_contains(&err, "gives more than one value for: \"gears\"");
 }
+
+#[test]
+fn split_combine_and_extract_derive_new_columns_and_name_their_sources() {
+    let s = Sandbox::with_store();
+    s.file("o.csv", "order,customer,town\nOX-7201,Ada Quenwick,Oxwater\nOX-7202,Bram,\nQ-9,Cora de la Fenn,Quillby\n");
+    s.ok(&["ingest", "o.csv", "--as", "orders"]);
+    let out = s.ok(&[
+        "apply",
+        "orders",
+        "split",
+        "--column",
+        "customer",
+        "--on",
+        " ",
+        "--into",
+        "given,family",
+        "--why",
+        "mailing",
+    ]);
+    assert_contains(&out, "split derived given, family; 3 rows × 5 columns");
+    s.ok(&[
+        "apply",
+        "orders",
+        "combine",
+        "--columns",
+        "given,town",
+        "--with",
+        " of ",
+        "--into",
+        "label",
+        "--why",
+        "board",
+    ]);
+    s.ok(&[
+        "apply",
+        "orders",
+        "extract",
+        "--column",
+        "order",
+        "--regex",
+        "^OX-(\\d+)$",
+        "--into",
+        "number",
+        "--why",
+        "numeric id",
+    ]);
+    s.ok(&[
+        "apply",
+        "orders",
+        "extract",
+        "--column",
+        "order",
+        "--from",
+        "1",
+        "--len",
+        "2",
+        "--into",
+        "prefix",
+        "--why",
+        "till code",
+    ]);
+    assert_eq!(
+        s.run(&["cat", "orders"]).stdout,
+        // combine puts its column after the last of its sources (town).
+        "order,prefix,number,customer,given,family,town,label\n\
+         OX-7201,OX,7201,Ada Quenwick,Ada,Quenwick,Oxwater,Ada of Oxwater\n\
+         OX-7202,OX,7202,Bram,Bram,,,Bram\n\
+         Q-9,Q-,,Cora de la Fenn,Cora,de la Fenn,Quillby,Cora of Quillby\n"
+    );
+    let store = Store::open(&s.path().join(".sluice")).unwrap();
+    let combined = sluice::refs::resolve(&store.lineage, "orders@3").unwrap();
+    assert_eq!(
+        store.lineage.column_sources(combined.id).unwrap(),
+        vec![
+            ("label".to_string(), "given".to_string()),
+            ("label".to_string(), "town".to_string())
+        ]
+    );
+    drop(store);
+    let err = s.fails(
+        2,
+        &[
+            "apply", "orders", "split", "--column", "customer", "--on", " ", "--into", "town",
+            "--why", "x",
+        ],
+    );
+    assert_contains(&err, "column \"town\" would appear twice");
+}

@@ -317,6 +317,79 @@ pub enum OpCommand {
         #[command(flatten)]
         step: StepArgs,
     },
+    /// Split one column into new columns on a separator (the last new column takes the rest)
+    #[command(
+        after_help = "Example:\n  sluice apply quillby_orders split --column customer --on ' ' --into given_name,family_name --why \"names for the mailing\""
+    )]
+    Split {
+        /// The column to split
+        #[arg(long, value_name = "COL")]
+        column: String,
+        /// The separator
+        #[arg(long, value_name = "TEXT", allow_hyphen_values = true)]
+        on: String,
+        /// The new columns, comma-separated, placed after the source
+        #[arg(
+            long,
+            value_name = "COL[,COL..]",
+            value_delimiter = ',',
+            required = true
+        )]
+        into: Vec<String>,
+        #[command(flatten)]
+        step: StepArgs,
+    },
+    /// Join the non-blank values of several columns into a new column
+    #[command(
+        after_help = "Example:\n  sluice apply quillby_orders combine --columns service,technician --with ' by ' --into job --why \"one label for the board\""
+    )]
+    Combine {
+        /// The columns to join, comma-separated, in order
+        #[arg(
+            long,
+            value_name = "COL[,COL..]",
+            value_delimiter = ',',
+            required = true
+        )]
+        columns: Vec<String>,
+        /// What to put between values
+        #[arg(
+            long,
+            value_name = "TEXT",
+            default_value = " ",
+            allow_hyphen_values = true
+        )]
+        with: String,
+        /// The new column, placed after the last source
+        #[arg(long, value_name = "COL")]
+        into: String,
+        #[command(flatten)]
+        step: StepArgs,
+    },
+    /// Copy part of a column into a new column: by character position, or a regular expression's first group
+    #[command(
+        after_help = "Examples:\n  sluice apply oxwater_orders extract --column 'order no' --regex '^OX-(\\d+)$' --into order_number --why \"numeric id\"\n  \
+        sluice apply quillby_orders extract --column opened --from 1 --len 7 --into month --why \"monthly totals\""
+    )]
+    Extract {
+        /// The column to read
+        #[arg(long, value_name = "COL")]
+        column: String,
+        /// The new column, placed after the source
+        #[arg(long, value_name = "COL")]
+        into: String,
+        /// The first character to take, counted from 1
+        #[arg(long, value_name = "N", conflicts_with = "regex")]
+        from: Option<u64>,
+        /// How many characters to take (default: to the end)
+        #[arg(long, value_name = "L", requires = "from")]
+        len: Option<u64>,
+        /// A regular expression; its first group (or the whole match) is taken, blank when it does not match
+        #[arg(long, value_name = "RE")]
+        regex: Option<String>,
+        #[command(flatten)]
+        step: StepArgs,
+    },
     /// Rename columns; values and order stay
     #[command(
         after_help = "Example:\n  sluice apply oxwater_orders rename \"order no=order_id\" date=opened --why \"one naming for all shops\""

@@ -199,6 +199,49 @@ fn apply_options(a: &ApplyArgs, agent: Agent) -> anyhow::Result<ApplyOptions> {
                 step,
             )
         }
+        OpCommand::Split {
+            column,
+            on,
+            into,
+            step,
+        } => (
+            Operation::Split {
+                column: column.clone(),
+                on: on.clone(),
+                into: into.clone(),
+            },
+            step,
+        ),
+        OpCommand::Combine {
+            columns,
+            with,
+            into,
+            step,
+        } => (
+            Operation::Combine {
+                columns: columns.clone(),
+                with: with.clone(),
+                into: into.clone(),
+            },
+            step,
+        ),
+        OpCommand::Extract {
+            column,
+            into,
+            from,
+            len,
+            regex,
+            step,
+        } => (
+            Operation::Extract {
+                column: column.clone(),
+                into: into.clone(),
+                from: *from,
+                len: *len,
+                regex: regex.clone(),
+            },
+            step,
+        ),
         OpCommand::Map {
             columns,
             table,

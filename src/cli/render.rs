@@ -98,6 +98,14 @@ pub fn apply_outcome(out: &mut impl Write, op: &Operation, o: &ApplyOutcome) -> 
                 )
             } else if matches!(op, Operation::Rename { .. } | Operation::Select { .. }) {
                 "reshaped the columns".to_string()
+            } else if let Some(new) = match op {
+                Operation::Split { into, .. } => Some(into.join(", ")),
+                Operation::Combine { into, .. } | Operation::Extract { into, .. } => {
+                    Some(into.clone())
+                }
+                _ => None,
+            } {
+                format!("derived {new}")
             } else if matches!(op, Operation::Summarize { .. }) {
                 format!(
                     "made {} from {}",

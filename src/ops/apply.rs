@@ -149,8 +149,12 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
     for &t in &targets {
         is_target[t] = true;
     }
-    // Each output column's name and the input column its values come from.
-    let columns = opts.op.output_columns(&input.header, &label)?;
+    // Each output column's name, the input column its values come from, and for a derived
+    // column how it is computed.
+    let shaped = opts.op.derived_columns(&input.header, &label)?;
+    let derivs: Vec<Option<super::derive::Derivation>> =
+        shaped.iter().map(|(_, _, d)| d.clone()).collect();
+    let columns: Vec<(String, usize)> = shaped.into_iter().map(|(n, i, _)| (n, i)).collect();
     let out_header: Vec<String> = columns.iter().map(|(n, _)| n.clone()).collect();
     let fill = FillFrom::new(&opts.op, &input)?;
     let replacer = Replacer::new(&opts.op)?;
@@ -294,6 +298,13 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
                 *slot = Some(new.into_bytes());
             }
         }
+        for (o, d) in derivs.iter().enumerate() {
+            if let Some(d) = d {
+                let is_blank =
+                    |v: &[u8]| v.is_empty() || null_tokens.iter().any(|t| t.as_slice() == v);
+                new_values[o] = Some(d.value(&r, &is_blank).into_bytes());
+            }
+        }
         let fields: Vec<&[u8]> = (0..columns.len())
             .map(|o| match &new_values[o] {
                 Some(v) => v.as_slice(),
@@ -330,12 +341,21 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
         .into());
     }
     let written = writer.finish().map_err(store_io)?;
-    // Output columns whose values come from an input column of another name.
+    // Output columns whose values come from an input column of another name, and derived
+    // columns with every column they read.
     let mut sources: Vec<(String, String)> = columns
         .iter()
-        .filter(|(name, c)| input.header[*c] != *name)
-        .map(|(name, c)| (name.clone(), input.header[*c].clone()))
+        .zip(&derivs)
+        .filter(|((name, c), d)| d.is_none() && input.header[*c] != *name)
+        .map(|((name, c), _)| (name.clone(), input.header[*c].clone()))
         .collect();
+    for ((name, _), d) in columns.iter().zip(&derivs) {
+        if let Some(d) = d {
+            for c in d.sources() {
+                sources.push((name.clone(), input.header[c].clone()));
+            }
+        }
+    }
     if let Some(f) = &fill {
         if let Some(from) = f.source_column() {
             for t in &targets {

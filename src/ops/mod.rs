@@ -6,6 +6,7 @@
 pub mod apply;
 pub mod date;
 pub mod decimal;
+pub mod derive;
 pub mod number;
 pub mod predicate;
 pub mod summarize;
@@ -111,6 +112,29 @@ pub enum Operation {
         order: Option<date::DateOrder>,
         on_error: OnError,
     },
+    /// `column` split on `on` into new columns `into` (placed after it; the last takes the rest,
+    /// missing parts are blank).
+    Split {
+        column: String,
+        on: String,
+        into: Vec<String>,
+    },
+    /// The non-blank values of `columns` joined with `with` into a new column `into`, placed
+    /// after the last of them.
+    Combine {
+        columns: Vec<String>,
+        with: String,
+        into: String,
+    },
+    /// Part of `column` into a new column `into`, placed after it: characters `from` (1-based)
+    /// for `len` characters, or the first group of the regular expression `regex`.
+    Extract {
+        column: String,
+        into: String,
+        from: Option<u64>,
+        len: Option<u64>,
+        regex: Option<String>,
+    },
     /// Columns renamed; values and order unchanged.
     Rename { columns: Vec<Renaming> },
     /// Only the named columns, in the order named.
@@ -140,6 +164,9 @@ impl Operation {
             Operation::Fill { .. } => "fill",
             Operation::Replace { .. } => "replace",
             Operation::Map { .. } => "map",
+            Operation::Split { .. } => "split",
+            Operation::Combine { .. } => "combine",
+            Operation::Extract { .. } => "extract",
             Operation::Summarize { .. } => "summarize",
             Operation::Number { .. } => "number",
             Operation::Date { .. } => "date",
@@ -166,7 +193,10 @@ impl Operation {
             Operation::KeepRows { .. }
             | Operation::DropRows { .. }
             | Operation::Rename { .. }
-            | Operation::Summarize { .. } => None,
+            | Operation::Summarize { .. }
+            | Operation::Split { .. }
+            | Operation::Combine { .. }
+            | Operation::Extract { .. } => None,
         }
     }
 
@@ -200,6 +230,111 @@ impl Operation {
                 })
                 .collect(),
         }
+    }
+
+    /// The output columns: for each, its name, the input column it comes from (for a derived
+    /// column, its first source), and how a derived column is computed.
+    pub fn derived_columns(
+        &self,
+        header: &[String],
+        version_label: &str,
+    ) -> Result<Vec<(String, usize, Option<derive::Derivation>)>> {
+        use derive::{compile, find, Derivation};
+        let mut out: Vec<(String, usize, Option<Derivation>)> = header
+            .iter()
+            .cloned()
+            .zip(0..)
+            .map(|(n, i)| (n, i, None))
+            .collect();
+        let (after, new): (usize, Vec<(String, Derivation)>) = match self {
+            Operation::Split { column, on, into } => {
+                let c = find(header, column, version_label)?;
+                if on.is_empty() || into.is_empty() {
+                    return Err(Error::usage(
+                        "split needs --on SEPARATOR and --into COL[,COL..]",
+                    ));
+                }
+                let n = into.len();
+                let new = into
+                    .iter()
+                    .enumerate()
+                    .map(|(part, name)| {
+                        (
+                            name.clone(),
+                            Derivation::SplitPart {
+                                source: c,
+                                sep: on.clone(),
+                                part,
+                                last: part + 1 == n,
+                            },
+                        )
+                    })
+                    .collect();
+                (c, new)
+            }
+            Operation::Combine {
+                columns,
+                with,
+                into,
+            } => {
+                let idx: Vec<usize> = columns
+                    .iter()
+                    .map(|c| find(header, c, version_label))
+                    .collect::<Result<_>>()?;
+                let last = *idx
+                    .iter()
+                    .max()
+                    .ok_or_else(|| Error::usage("combine needs --columns"))?;
+                (
+                    last,
+                    vec![(
+                        into.clone(),
+                        Derivation::Combine {
+                            sources: idx,
+                            with: with.clone(),
+                        },
+                    )],
+                )
+            }
+            Operation::Extract {
+                column,
+                into,
+                from,
+                len,
+                regex,
+            } => {
+                let c = find(header, column, version_label)?;
+                let d = match (regex, from) {
+                    (Some(re), None) => Derivation::Pattern { source: c, re: compile(re)? },
+                    (None, Some(f)) if *f >= 1 => Derivation::Range {
+                        source: c,
+                        from: (*f - 1) as usize,
+                        len: len.map(|l| l as usize),
+                    },
+                    _ => {
+                        return Err(Error::usage(
+                            "extract takes either --from N [--len L] (characters, counted from 1) or --regex RE",
+                        ))
+                    }
+                };
+                (c, vec![(into.clone(), d)])
+            }
+            _ => {
+                return Ok(self
+                    .output_columns(header, version_label)?
+                    .into_iter()
+                    .map(|(n, i)| (n, i, None))
+                    .collect())
+            }
+        };
+        let at = after + 1;
+        for (k, (name, d)) in new.into_iter().enumerate() {
+            let first = d.sources()[0];
+            out.insert(at + k, (name, first, Some(d)));
+        }
+        let names: Vec<(String, usize)> = out.iter().map(|(n, i, _)| (n.clone(), *i)).collect();
+        check_unique(&names)?;
+        Ok(out)
     }
 
     /// The output columns: for each, its name and the input column it comes from.
