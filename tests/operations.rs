@@ -460,23 +460,7 @@ fn dedupe_records_what_each_dropped_row_duplicated() {
 // complete rows, as documented with the data set.
 #[test]
 fn palmerpenguins_complete_rows_are_333() {
-    let s = Sandbox::with_store();
-    s.file(
-        "penguins.csv",
-        std::fs::read(concat!(
-            env!("CARGO_MANIFEST_DIR"),
-            "/tests/data/palmerpenguins/penguins.csv"
-        ))
-        .unwrap(),
-    );
-    s.ok(&[
-        "ingest",
-        "penguins.csv",
-        "--as",
-        "penguins",
-        "--null-token",
-        "NA",
-    ]);
+    let s = Sandbox::with_penguins();
     let any_na = "bill_length_mm is blank or bill_depth_mm is blank or flipper_length_mm is blank \
                   or body_mass_g is blank or sex is blank";
     let out = s.ok(&[
@@ -857,23 +841,7 @@ fn replace_literal_and_by_regular_expression() {
 // rows 146, 119, 68; mean body_mass_g where present 3700.6623, 3733.0882, 5076.0163.
 #[test]
 fn palmerpenguins_group_counts_and_means() {
-    let s = Sandbox::with_store();
-    s.file(
-        "penguins.csv",
-        std::fs::read(concat!(
-            env!("CARGO_MANIFEST_DIR"),
-            "/tests/data/palmerpenguins/penguins.csv"
-        ))
-        .unwrap(),
-    );
-    s.ok(&[
-        "ingest",
-        "penguins.csv",
-        "--as",
-        "penguins",
-        "--null-token",
-        "NA",
-    ]);
+    let s = Sandbox::with_penguins();
     let groups = |dataset: &str| -> Vec<Vec<String>> {
         s.run(&["cat", dataset])
             .stdout

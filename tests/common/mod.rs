@@ -34,6 +34,22 @@ impl Sandbox {
         s
     }
 
+    /// A sandbox whose store holds the vendored palmerpenguins data as dataset `penguins`,
+    /// taken in with `NA` as the null token.
+    pub fn with_penguins() -> Sandbox {
+        let s = Sandbox::with_store();
+        s.file("penguins.csv", penguins_csv());
+        s.ok(&[
+            "ingest",
+            "penguins.csv",
+            "--as",
+            "penguins",
+            "--null-token",
+            "NA",
+        ]);
+        s
+    }
+
     pub fn path(&self) -> &Path {
         self.dir.path()
     }
@@ -138,6 +154,15 @@ fn collect(dir: &Path, out: &mut Vec<String>) {
             }
         }
     }
+}
+
+/// The vendored palmerpenguins file (tests/data/palmerpenguins, CC0).
+pub fn penguins_csv() -> Vec<u8> {
+    std::fs::read(concat!(
+        env!("CARGO_MANIFEST_DIR"),
+        "/tests/data/palmerpenguins/penguins.csv"
+    ))
+    .expect("vendored penguins.csv")
 }
 
 pub fn rule() -> String {
