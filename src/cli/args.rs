@@ -241,6 +241,39 @@ pub enum OpCommand {
         #[command(flatten)]
         step: StepArgs,
     },
+    /// Add columns from another table, matching rows on key columns (a left join)
+    #[command(
+        after_help = "Example:\n  sluice apply quillby_orders lookup --table technicians --on technician --table-on name --take grade,shop --why \"grade for the pay report\""
+    )]
+    Lookup {
+        /// The table to look up in: a file to take in, or a version (NAME, NAME@N, hash prefix)
+        #[arg(long, value_name = "FILE|REF")]
+        table: String,
+        /// The key columns of this table, comma-separated
+        #[arg(
+            long,
+            required = true,
+            value_name = "COL[,COL..]",
+            value_delimiter = ','
+        )]
+        on: Vec<String>,
+        /// The key columns of the looked-up table, if named differently
+        #[arg(long, value_name = "COL[,COL..]", value_delimiter = ',')]
+        table_on: Option<Vec<String>>,
+        /// The columns to take from the looked-up table
+        #[arg(
+            long,
+            required = true,
+            value_name = "COL[,COL..]",
+            value_delimiter = ','
+        )]
+        take: Vec<String>,
+        /// Stop when a key has no row in the table (default: leave the taken cells blank, noted)
+        #[arg(long)]
+        fail_unmatched: bool,
+        #[command(flatten)]
+        step: StepArgs,
+    },
     /// Fill blank cells (empty or a null token) with a value or from another column
     #[command(
         after_help = "Examples:\n  sluice apply quillby_orders fill --columns labour_hours --value 0 --why \"no labour booked\"\n  sluice apply quillby_orders fill --columns email --from notes --why \"clerk typed the address in the notes\""

@@ -81,7 +81,7 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             let mut opts = apply_options(a, agent.clone())?;
             // A mapping table given as a file is taken in with the step, so it is part of the
             // lineage, and recorded only if the step succeeds.
-            if let Operation::Map { table, .. } = &opts.op {
+            if let Operation::Map { table, .. } | Operation::Lookup { table, .. } = &opts.op {
                 let path = Path::new(table.as_str()).to_path_buf();
                 if path.is_file() {
                     opts.map_table_file = Some((
@@ -89,7 +89,11 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
                         IngestOptions {
                             dataset: dataset_name_for(&path),
                             key: None,
-                            reason: Some(format!("mapping table for `map` on {}", a.reference)),
+                            reason: Some(format!(
+                                "table for `{}` on {}",
+                                opts.op.name(),
+                                a.reference
+                            )),
                             delimiter: None,
                             has_header: true,
                             encoding: None,
@@ -199,6 +203,23 @@ fn apply_options(a: &ApplyArgs, agent: Agent) -> anyhow::Result<ApplyOptions> {
                 step,
             )
         }
+        OpCommand::Lookup {
+            table,
+            on,
+            table_on,
+            take,
+            fail_unmatched,
+            step,
+        } => (
+            Operation::Lookup {
+                table: table.clone(),
+                on: on.clone(),
+                table_on: table_on.clone(),
+                take: take.clone(),
+                unmatched_fail: *fail_unmatched,
+            },
+            step,
+        ),
         OpCommand::Split {
             column,
             on,

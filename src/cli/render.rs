@@ -80,7 +80,7 @@ pub fn apply_outcome(out: &mut impl Write, op: &Operation, o: &ApplyOutcome) -> 
             ..
         } => {
             if let Some(t) = table_taken_in {
-                writeln!(out, "took in the mapping table as {t}")?;
+                writeln!(out, "took in the table as {t}")?;
             }
             let per_column: Vec<String> = changed_by_column
                 .iter()
@@ -103,6 +103,7 @@ pub fn apply_outcome(out: &mut impl Write, op: &Operation, o: &ApplyOutcome) -> 
                 Operation::Combine { into, .. } | Operation::Extract { into, .. } => {
                     Some(into.clone())
                 }
+                Operation::Lookup { take, .. } => Some(take.join(", ")),
                 _ => None,
             } {
                 format!("derived {new}")

@@ -102,25 +102,60 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
     // A mapping table is recorded by its exact version, whatever reference named it; a table
     // file is read and stored now but recorded only with the step.
     let mut table_ingest: Option<Box<PreparedIngest>> = None;
-    let mapper = match (&opts.op, &opts.map_table_file) {
-        (Operation::Map { .. }, Some((path, iopts))) => {
-            match intake::prepare(store, path, iopts)? {
-                Prepared::Unchanged(v) => {
-                    Mapper::new(store, &opts.op, Some(TableSource::Version(v)))?
-                }
-                Prepared::Ready(p) => {
-                    let m = Mapper::new(store, &opts.op, Some(TableSource::Pending(&p)))?;
-                    table_ingest = Some(p);
-                    m
-                }
+    let table_ref = match &opts.op {
+        Operation::Map { table, .. } | Operation::Lookup { table, .. } => Some(table.as_str()),
+        _ => None,
+    };
+    let table = match (table_ref, &opts.map_table_file) {
+        (None, _) => None,
+        (Some(r), Some((path, iopts))) => match intake::prepare(store, path, iopts)? {
+            Prepared::Unchanged(v) => Some(Table::load(store, r, Some(TableSource::Version(v)))?),
+            Prepared::Ready(p) => {
+                let t = Table::load(store, r, Some(TableSource::Pending(&p)))?;
+                table_ingest = Some(p);
+                Some(t)
             }
+        },
+        (Some(r), None) => Some(Table::load(store, r, None)?),
+    };
+    let (mapper, looker) = match table {
+        Some(t) if matches!(opts.op, Operation::Map { .. }) => {
+            (Mapper::from_table(&opts.op, t)?, None)
         }
-        _ => Mapper::new(store, &opts.op, None)?,
+        Some(t) => (
+            None,
+            Looker::from_table(&opts.op, &input.header, &input.label(), t)?,
+        ),
+        None => (None, None),
     };
     let resolved;
-    let opts = match (&mapper, &opts.op) {
+    let opts = match (&mapper, &looker, &opts.op) {
+        (
+            _,
+            Some(l),
+            Operation::Lookup {
+                on,
+                table_on,
+                take,
+                unmatched_fail,
+                ..
+            },
+        ) => {
+            resolved = ApplyOptions {
+                op: Operation::Lookup {
+                    table: l.table_hash.clone(),
+                    on: on.clone(),
+                    table_on: table_on.clone(),
+                    take: take.clone(),
+                    unmatched_fail: *unmatched_fail,
+                },
+                ..opts.clone()
+            };
+            &resolved
+        }
         (
             Some(m),
+            _,
             Operation::Map {
                 columns,
                 from,
@@ -298,6 +333,39 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
                 *slot = Some(new.into_bytes());
             }
         }
+        if let Some(l) = &looker {
+            let base = columns.len() - l.take.len();
+            match l.find(&r) {
+                Some(values) => {
+                    for (k, v) in values.iter().enumerate() {
+                        new_values[base + k] = Some(v.clone().into_bytes());
+                    }
+                }
+                None if l.unmatched_fail => {
+                    let key: Vec<String> = l
+                        .key_idx
+                        .iter()
+                        .map(|&c| String::from_utf8_lossy(r.field(c)).into_owned())
+                        .collect();
+                    failures.push((
+                        in_row,
+                        l.take[0].clone(),
+                        key.join(", "),
+                        "no row of the lookup table has this key",
+                    ));
+                }
+                None => {
+                    for k in 0..l.take.len() {
+                        new_values[base + k] = Some(Vec::new());
+                    }
+                    notes.push((
+                        out_row,
+                        l.take[0].clone(),
+                        "no row of the lookup table has this key; left blank".into(),
+                    ));
+                }
+            }
+        }
         for (o, d) in derivs.iter().enumerate() {
             if let Some(d) = d {
                 let is_blank =
@@ -376,15 +444,20 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
         drops,
         notes,
         sources,
-        table: mapper.as_ref().map(|m| {
-            (
+        table: match (&mapper, &looker) {
+            (Some(m), _) => Some((
                 m.table_id,
                 targets
                     .iter()
                     .map(|&t| (input.header[t].clone(), m.to_column.clone()))
                     .collect(),
-            )
-        }),
+            )),
+            (_, Some(l)) => Some((
+                l.table_id,
+                l.take.iter().map(|c| (c.clone(), c.clone())).collect(),
+            )),
+            _ => None,
+        },
     };
     record(
         store,
@@ -664,23 +737,24 @@ struct Mapper {
     entries: HashMap<String, String>,
 }
 
-impl Mapper {
-    fn new(
-        store: &Store,
-        op: &Operation,
-        source: Option<TableSource<'_>>,
-    ) -> Result<Option<Mapper>> {
-        let Operation::Map {
-            table, from, to, ..
-        } = op
-        else {
-            return Ok(None);
-        };
+/// A table read whole into memory (mapping and lookup tables are small; the whole table is
+/// held while the step runs).
+struct Table {
+    /// `None` while the table is an intake recorded with the step.
+    id: Option<i64>,
+    hash: String,
+    header: Vec<String>,
+    label: String,
+    rows: Vec<Vec<String>>,
+}
+
+impl Table {
+    fn load(store: &Store, reference: &str, source: Option<TableSource<'_>>) -> Result<Table> {
         let source = match source {
             Some(s) => s,
-            None => TableSource::Version(Box::new(refs::resolve(&store.lineage, table)?)),
+            None => TableSource::Version(Box::new(refs::resolve(&store.lineage, reference)?)),
         };
-        let (table_id, hash, header, dialect, label) = match &source {
+        let (id, hash, header, dialect, label) = match &source {
             TableSource::Version(v) => (
                 Some(v.id),
                 v.hash.clone(),
@@ -696,24 +770,6 @@ impl Mapper {
                 p.label(),
             ),
         };
-        let pick = |name: &Option<String>, default: usize| -> Result<usize> {
-            match name {
-                Some(n) => header.iter().position(|h| h == n).ok_or_else(|| {
-                    Error::usage(format!(
-                        "column \"{n}\" is not in the mapping table {label}; its columns are: {}",
-                        header.join(", ")
-                    ))
-                }),
-                None if header.len() == 2 => Ok(default),
-                None => Err(Error::usage(format!(
-                    "the mapping table {label} has {} columns; name the two to use with --from COL --to COL",
-                    header.len()
-                ))),
-            }
-        };
-        let (f, t) = (pick(from, 0)?, pick(to, 1)?);
-        let mut entries: HashMap<String, String> = HashMap::new();
-        let mut dups: Vec<String> = Vec::new();
         let reader: Box<dyn Read + Send> = match &source {
             TableSource::Version(_) => store.objects.open_raw(
                 &hash
@@ -725,16 +781,61 @@ impl Mapper {
                 Box::new(std::fs::File::open(p.path()).map_err(|e| Error::io(p.path(), e))?)
             }
         };
+        let mut rows = Vec::new();
         each_row_from(reader, &hash, &dialect, &label, |_, r| {
-            let k = String::from_utf8_lossy(r.field(f)).into_owned();
-            let v = String::from_utf8_lossy(r.field(t)).into_owned();
-            if let Some(prev) = entries.insert(k.clone(), v.clone()) {
-                if prev != v && dups.len() < 10 && !dups.contains(&k) {
-                    dups.push(k);
-                }
-            }
+            rows.push(
+                r.iter()
+                    .map(|f| String::from_utf8_lossy(f).into_owned())
+                    .collect(),
+            );
             Ok(())
         })?;
+        Ok(Table {
+            id,
+            hash,
+            header,
+            label,
+            rows,
+        })
+    }
+
+    fn column(&self, name: &str, what: &str) -> Result<usize> {
+        self.header.iter().position(|h| h == name).ok_or_else(|| {
+            Error::usage(format!(
+                "column \"{name}\" is not in the {what} {}; its columns are: {}",
+                self.label,
+                self.header.join(", ")
+            ))
+        })
+    }
+}
+
+impl Mapper {
+    fn from_table(op: &Operation, table: Table) -> Result<Option<Mapper>> {
+        let Operation::Map { from, to, .. } = op else {
+            return Ok(None);
+        };
+        let label = table.label.clone();
+        let pick = |name: &Option<String>, default: usize| -> Result<usize> {
+            match name {
+                Some(n) => table.column(n, "mapping table"),
+                None if table.header.len() == 2 => Ok(default),
+                None => Err(Error::usage(format!(
+                    "the mapping table {label} has {} columns; name the two to use with --from COL --to COL",
+                    table.header.len()
+                ))),
+            }
+        };
+        let (f, t) = (pick(from, 0)?, pick(to, 1)?);
+        let mut entries: HashMap<String, String> = HashMap::new();
+        let mut dups: Vec<String> = Vec::new();
+        for r in &table.rows {
+            if let Some(prev) = entries.insert(r[f].clone(), r[t].clone()) {
+                if prev != r[t] && dups.len() < 10 && !dups.contains(&r[f]) {
+                    dups.push(r[f].clone());
+                }
+            }
+        }
         if !dups.is_empty() {
             return Err(ErrorKind::Data(format!(
                 "the mapping table {label} gives more than one value for: {}; keep one entry per value",
@@ -743,11 +844,99 @@ impl Mapper {
             .into());
         }
         Ok(Some(Mapper {
-            table_id,
-            table_hash: hash,
-            to_column: header[t].clone(),
+            table_id: table.id,
+            table_hash: table.hash,
+            to_column: table.header[t].clone(),
             entries,
         }))
+    }
+}
+
+/// `lookup`, ready to run: the looked-up table indexed by its key.
+struct Looker {
+    table_id: Option<i64>,
+    table_hash: String,
+    /// Input columns holding the key, in key order.
+    key_idx: Vec<usize>,
+    /// The table columns taken, by name.
+    take: Vec<String>,
+    entries: HashMap<Vec<String>, Vec<String>>,
+    unmatched_fail: bool,
+}
+
+impl Looker {
+    fn from_table(
+        op: &Operation,
+        header: &[String],
+        label: &str,
+        table: Table,
+    ) -> Result<Option<Looker>> {
+        let Operation::Lookup {
+            on,
+            table_on,
+            take,
+            unmatched_fail,
+            ..
+        } = op
+        else {
+            return Ok(None);
+        };
+        let key_idx: Vec<usize> = on
+            .iter()
+            .map(|c| super::derive::find(header, c, label))
+            .collect::<Result<_>>()?;
+        let table_keys = table_on.as_ref().unwrap_or(on);
+        if table_keys.len() != on.len() {
+            return Err(Error::usage("--table-on needs as many columns as --on"));
+        }
+        let tk: Vec<usize> = table_keys
+            .iter()
+            .map(|c| table.column(c, "lookup table"))
+            .collect::<Result<_>>()?;
+        let tt: Vec<usize> = take
+            .iter()
+            .map(|c| table.column(c, "lookup table"))
+            .collect::<Result<_>>()?;
+        let mut entries: HashMap<Vec<String>, Vec<String>> = HashMap::new();
+        let mut dups: Vec<String> = Vec::new();
+        for r in &table.rows {
+            let k: Vec<String> = tk.iter().map(|&c| r[c].clone()).collect();
+            let v: Vec<String> = tt.iter().map(|&c| r[c].clone()).collect();
+            if entries.insert(k.clone(), v).is_some() && dups.len() < 10 {
+                let shown = k.join(", ");
+                if !dups.contains(&shown) {
+                    dups.push(shown);
+                }
+            }
+        }
+        if !dups.is_empty() {
+            return Err(ErrorKind::Data(format!(
+                "the lookup table {} has more than one row for the key {}; a key must pick one row",
+                table.label,
+                dups.iter()
+                    .map(|d| format!("\"{d}\""))
+                    .collect::<Vec<_>>()
+                    .join(", ")
+            ))
+            .into());
+        }
+        Ok(Some(Looker {
+            table_id: table.id,
+            table_hash: table.hash,
+            key_idx,
+            take: take.clone(),
+            entries,
+            unmatched_fail: *unmatched_fail,
+        }))
+    }
+
+    fn find(&self, r: &RawRecord<'_>) -> Option<&Vec<String>> {
+        let k: Vec<String> = self
+            .key_idx
+            .iter()
+            .map(|&c| String::from_utf8_lossy(r.field(c)).into_owned())
+            .collect();
+        self.entries.get(&k)
     }
 }
 

@@ -93,6 +93,17 @@ pub enum Operation {
         to: Option<String>,
         unmatched: OnError,
     },
+    /// A left join: for each row, the row of `table` whose `table_on` columns (default: the
+    /// same names as `on`) equal its `on` columns, whose `take` columns are appended. A key the
+    /// table does not have leaves them blank (noted), or with `unmatched_fail` stops the step;
+    /// a table with a key on two rows is refused. `table` is recorded as the version's hash.
+    Lookup {
+        table: String,
+        on: Vec<String>,
+        table_on: Option<Vec<String>>,
+        take: Vec<String>,
+        unmatched_fail: bool,
+    },
     /// Blank cells (empty or a null token) of `columns` filled with `value`, or with the value
     /// of column `from` in the same row when that is not blank.
     Fill {
@@ -164,6 +175,7 @@ impl Operation {
             Operation::Fill { .. } => "fill",
             Operation::Replace { .. } => "replace",
             Operation::Map { .. } => "map",
+            Operation::Lookup { .. } => "lookup",
             Operation::Split { .. } => "split",
             Operation::Combine { .. } => "combine",
             Operation::Extract { .. } => "extract",
@@ -196,7 +208,8 @@ impl Operation {
             | Operation::Summarize { .. }
             | Operation::Split { .. }
             | Operation::Combine { .. }
-            | Operation::Extract { .. } => None,
+            | Operation::Extract { .. }
+            | Operation::Lookup { .. } => None,
         }
     }
 
@@ -318,6 +331,16 @@ impl Operation {
                     }
                 };
                 (c, vec![(into.clone(), d)])
+            }
+            Operation::Lookup { on, take, .. } => {
+                let first = find(header, on.first().map_or("", |s| s.as_str()), version_label)?;
+                for name in take {
+                    out.push((name.clone(), first, None));
+                }
+                let names: Vec<(String, usize)> =
+                    out.iter().map(|(n, i, _)| (n.clone(), *i)).collect();
+                check_unique(&names)?;
+                return Ok(out);
             }
             _ => {
                 return Ok(self
