@@ -1318,3 +1318,68 @@ fn lookup_join_keep_select_in_the_shape_of_the_where_provenance_example() {
     );
     assert_contains(&err, "has more than one row for the key \"1\"");
 }
+
+// Why-provenance of a union (Buneman, Khanna & Tan, ICDT 2001): for the union of two equal
+// one-row tables, the output row has two witnesses, one row from each. After append and
+// dedupe, the surviving row is carried from its own source and the other is recorded as a
+// dropped duplicate of it.
+#[test]
+fn append_then_dedupe_keeps_each_rows_origin() {
+    let s = Sandbox::with_store();
+    s.file("a.csv", "shop,city\nQuillby Cycle Mend,Quillby\n");
+    s.file("b.csv", "shop,town\nQuillby Cycle Mend,Quillby\n");
+    s.ok(&["ingest", "a.csv", "--as", "first"]);
+    s.ok(&["ingest", "b.csv", "--as", "second"]);
+    let err = s.fails(
+        2,
+        &[
+            "apply", "first", "append", "--other", "second", "--why", "merge",
+        ],
+    );
+    assert_contains(
+        &err,
+        "second@1 has column \"town\" that first@1 has not; map them with --map THEIRS=OURS",
+    );
+    let out = s.ok(&[
+        "apply",
+        "first",
+        "append",
+        "--other",
+        "second",
+        "--map",
+        "town=city",
+        "--why",
+        "merge",
+    ]);
+    assert_contains(&out, "append added 1 row; 2 rows");
+    let out = s.ok(&["apply", "first", "dedupe", "--why", "same shop twice"]);
+    assert_contains(&out, "dedupe dropped 1 row; 1 row");
+    let store = Store::open(&s.path().join(".sluice")).unwrap();
+    let a = sluice::refs::resolve(&store.lineage, "first@1").unwrap();
+    let b = sluice::refs::resolve(&store.lineage, "second@1").unwrap();
+    let merged = sluice::refs::resolve(&store.lineage, "first@2").unwrap();
+    let deduped = sluice::refs::resolve(&store.lineage, "first@3").unwrap();
+    let runs = |out: &Version, inp: &Version| -> Vec<(u64, u64, u64)> {
+        store
+            .lineage
+            .row_runs(out.id, inp.id)
+            .unwrap()
+            .iter()
+            .map(|r| (r.out_start, r.in_start, r.len))
+            .collect()
+    };
+    // Row 0 of the union came from the first table, row 1 from the second.
+    assert_eq!(runs(&merged, &a), vec![(0, 0, 1)]);
+    assert_eq!(runs(&merged, &b), vec![(1, 0, 1)]);
+    assert_eq!(
+        store.lineage.column_sources(merged.id).unwrap(),
+        vec![
+            ("city".into(), "town".into()),
+            ("shop".into(), "shop".into())
+        ]
+    );
+    // The survivor is union row 0 (from the first table); union row 1 is its duplicate.
+    assert_eq!(runs(&deduped, &merged), vec![(0, 0, 1)]);
+    let drops = store.lineage.drops(deduped.step_id, merged.id).unwrap();
+    assert_eq!((drops[0].row_idx, drops[0].duplicate_of), (1, Some(0)));
+}

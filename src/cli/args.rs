@@ -274,6 +274,20 @@ pub enum OpCommand {
         #[command(flatten)]
         step: StepArgs,
     },
+    /// Stack the rows of another version under this one, matching columns by name
+    #[command(
+        after_help = "Example:\n  sluice apply quillby_orders append --other oxwater_orders --map \"order no=order_id\" --map date=opened --why \"one table for the cooperative\""
+    )]
+    Append {
+        /// The version whose rows to add: NAME, NAME@N or a hash prefix
+        #[arg(long, value_name = "REF")]
+        other: String,
+        /// Rename one of its columns to one of ours: THEIRS=OURS (repeat for several)
+        #[arg(long = "map", value_name = "THEIRS=OURS")]
+        map: Vec<String>,
+        #[command(flatten)]
+        step: StepArgs,
+    },
     /// Fill blank cells (empty or a null token) with a value or from another column
     #[command(
         after_help = "Examples:\n  sluice apply quillby_orders fill --columns labour_hours --value 0 --why \"no labour booked\"\n  sluice apply quillby_orders fill --columns email --from notes --why \"clerk typed the address in the notes\""

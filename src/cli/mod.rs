@@ -203,6 +203,13 @@ fn apply_options(a: &ApplyArgs, agent: Agent) -> anyhow::Result<ApplyOptions> {
                 step,
             )
         }
+        OpCommand::Append { other, map, step } => (
+            Operation::Append {
+                other: other.clone(),
+                map: renamings(map, "append --map")?,
+            },
+            step,
+        ),
         OpCommand::Lookup {
             table,
             on,
@@ -338,19 +345,12 @@ fn apply_options(a: &ApplyArgs, agent: Agent) -> anyhow::Result<ApplyOptions> {
             },
             step,
         ),
-        OpCommand::Rename { pairs, step } => {
-            let mut columns = Vec::new();
-            for p in pairs {
-                let (from, to) = p.split_once('=').ok_or_else(|| {
-                    anyhow!("rename takes OLD=NEW pairs, e.g. \"order no=order_id\"; got \"{p}\"")
-                })?;
-                columns.push(Renaming {
-                    from: from.to_string(),
-                    to: to.to_string(),
-                });
-            }
-            (Operation::Rename { columns }, step)
-        }
+        OpCommand::Rename { pairs, step } => (
+            Operation::Rename {
+                columns: renamings(pairs, "rename")?,
+            },
+            step,
+        ),
         OpCommand::Select { columns, step } => (
             Operation::Select {
                 columns: columns.clone(),
@@ -409,6 +409,22 @@ fn apply_options(a: &ApplyArgs, agent: Agent) -> anyhow::Result<ApplyOptions> {
         agent,
         map_table_file: None,
     })
+}
+
+/// Parses `OLD=NEW` pairs.
+fn renamings(pairs: &[String], what: &str) -> anyhow::Result<Vec<Renaming>> {
+    pairs
+        .iter()
+        .map(|p| {
+            let (from, to) = p.split_once('=').ok_or_else(|| {
+                anyhow!("{what} takes OLD=NEW pairs, e.g. \"order no=order_id\"; got \"{p}\"")
+            })?;
+            Ok(Renaming {
+                from: from.to_string(),
+                to: to.to_string(),
+            })
+        })
+        .collect()
 }
 
 /// A dataset name for a file taken in on the way (a mapping table): its stem, with anything

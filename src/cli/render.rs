@@ -107,6 +107,15 @@ pub fn apply_outcome(out: &mut impl Write, op: &Operation, o: &ApplyOutcome) -> 
                 _ => None,
             } {
                 format!("derived {new}")
+            } else if matches!(op, Operation::Append { .. }) {
+                format!(
+                    "added {}",
+                    plural(
+                        version.n_rows - input.n_rows.min(version.n_rows),
+                        "row",
+                        "rows"
+                    )
+                )
             } else if matches!(op, Operation::Summarize { .. }) {
                 format!(
                     "made {} from {}",

@@ -99,6 +99,9 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
     if matches!(opts.op, Operation::Summarize { .. }) {
         return super::summarize::run(store, input, opts);
     }
+    if matches!(opts.op, Operation::Append { .. }) {
+        return super::append::run(store, input, opts);
+    }
     // A mapping table is recorded by its exact version, whatever reference named it; a table
     // file is read and stored now but recorded only with the step.
     let mut table_ingest: Option<Box<PreparedIngest>> = None;
@@ -458,6 +461,7 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
             )),
             _ => None,
         },
+        other: None,
     };
     record(
         store,
@@ -485,6 +489,16 @@ pub(super) struct Provenance {
     /// A second input read as a table (map, lookup): its version id (`None` while the table
     /// is an intake recorded with the step) and (output column, table column) pairs.
     pub table: Option<TableInput>,
+    /// A second source whose rows are carried into the output (append).
+    pub other: Option<OtherInput>,
+}
+
+/// The second source of an `append`: its version, the runs of output rows that came from it,
+/// and (output column, its column) pairs.
+pub(super) struct OtherInput {
+    pub id: i64,
+    pub runs: Vec<RowRun>,
+    pub sources: Vec<(String, String)>,
 }
 
 /// Persists a written output and records it: the version (or nothing, when it equals the
@@ -552,9 +566,15 @@ pub(super) fn record(
             rows_out: Some(n_rows),
             lineage: LineageKind::Exact,
             source: None,
-            inputs: match table_id {
-                Some(t) => vec![(input.id, "input"), (t, "table")],
-                None => vec![(input.id, "input")],
+            inputs: {
+                let mut v = vec![(input.id, "input")];
+                if let Some(t) = table_id {
+                    v.push((t, "table"));
+                }
+                if let Some(o) = &prov.other {
+                    v.push((o.id, "other"));
+                }
+                v
             },
         })?;
         let (version_id, seq) = tx.insert_version(&NewVersion {
@@ -585,6 +605,10 @@ pub(super) fn record(
             tx.insert_column_sources(step_id, version_id, t, sources)?;
         }
         tx.insert_cell_notes(step_id, version_id, &prov.notes)?;
+        if let Some(o) = &prov.other {
+            tx.insert_provenance(step_id, version_id, o.id, &o.runs, &[], &[])?;
+            tx.insert_column_sources(step_id, version_id, o.id, &o.sources)?;
+        }
         tx.audit(
             &opts.agent,
             "apply",

@@ -3,6 +3,7 @@
 //! its old value recorded. [`text`] holds the per-cell text operations; [`apply`] runs an
 //! operation over a stored version and records the result with its provenance.
 
+pub mod append;
 pub mod apply;
 pub mod date;
 pub mod decimal;
@@ -104,6 +105,11 @@ pub enum Operation {
         take: Vec<String>,
         unmatched_fail: bool,
     },
+    /// The rows of version `other` stacked under this one's: its columns matched by name,
+    /// after renaming them through `map` (theirs to ours); a column of ours it lacks is blank.
+    /// `other` is recorded as the version's hash; each output row keeps its origin in the row
+    /// map.
+    Append { other: String, map: Vec<Renaming> },
     /// Blank cells (empty or a null token) of `columns` filled with `value`, or with the value
     /// of column `from` in the same row when that is not blank.
     Fill {
@@ -176,6 +182,7 @@ impl Operation {
             Operation::Replace { .. } => "replace",
             Operation::Map { .. } => "map",
             Operation::Lookup { .. } => "lookup",
+            Operation::Append { .. } => "append",
             Operation::Split { .. } => "split",
             Operation::Combine { .. } => "combine",
             Operation::Extract { .. } => "extract",
@@ -209,7 +216,8 @@ impl Operation {
             | Operation::Split { .. }
             | Operation::Combine { .. }
             | Operation::Extract { .. }
-            | Operation::Lookup { .. } => None,
+            | Operation::Lookup { .. }
+            | Operation::Append { .. } => None,
         }
     }
 

@@ -252,6 +252,7 @@ pub fn run(store: &mut Store, input: Version, opts: &ApplyOptions) -> Result<App
         notes: Vec::new(),
         sources,
         table: None,
+        other: None,
     };
     record(
         store,
