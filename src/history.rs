@@ -45,6 +45,18 @@ pub struct VersionDetail {
     pub is_latest: bool,
     pub profile: Vec<ColumnProfile>,
     pub step: Option<Step>,
+    /// Rules checked on this version, oldest first.
+    pub checks: Vec<CheckRecord>,
+}
+
+/// One recorded check result.
+#[derive(Debug, Clone, Serialize)]
+pub struct CheckRecord {
+    pub rule: serde_json::Value,
+    pub passed: bool,
+    pub n_failing: u64,
+    pub agent: String,
+    pub checked_at: String,
 }
 
 pub fn show(store: &Store, reference: &str) -> Result<VersionDetail> {
@@ -53,7 +65,20 @@ pub fn show(store: &Store, reference: &str) -> Result<VersionDetail> {
     let step = store.lineage.step(version.step_id)?;
     let ds = store.lineage.dataset(&version.dataset)?;
     let latest = store.lineage.latest_version(&version.dataset)?;
+    let checks = store
+        .lineage
+        .check_results(version.id)?
+        .into_iter()
+        .map(|(rule, passed, n_failing, agent, checked_at)| CheckRecord {
+            rule: serde_json::from_str(&rule).unwrap_or(serde_json::Value::String(rule)),
+            passed,
+            n_failing,
+            agent,
+            checked_at,
+        })
+        .collect();
     Ok(VersionDetail {
+        checks,
         is_latest: latest.is_some_and(|l| l.id == version.id),
         key: ds.and_then(|d| d.key),
         version,

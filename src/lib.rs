@@ -29,6 +29,7 @@
 //! ```
 
 pub mod agent;
+pub mod checks;
 pub mod clock;
 pub mod code;
 pub mod demo;

@@ -1383,3 +1383,50 @@ fn append_then_dedupe_keeps_each_rows_origin() {
     let drops = store.lineage.drops(deduped.step_id, merged.id).unwrap();
     assert_eq!((drops[0].row_idx, drops[0].duplicate_of), (1, Some(0)));
 }
+
+// Checks on palmerpenguins (CC0; counts documented with the data set): bill_length_mm is
+// blank (NA) on 2 rows, sex on 11, and species takes only the three documented values.
+#[test]
+fn check_records_results_and_fails_with_exit_code_1() {
+    let s = Sandbox::with_penguins();
+    s.file(
+        "rules.json",
+        r#"{"rules": [
+            {"rule": "not_blank", "columns": ["bill_length_mm"]},
+            {"rule": "not_blank", "columns": ["sex"]},
+            {"rule": "allowed", "column": "species", "values": ["Adelie", "Gentoo", "Chinstrap"]},
+            {"rule": "range", "column": "body_mass_g", "min": "2700", "max": "6300"},
+            {"rule": "range", "column": "body_mass_g", "max": "6000"},
+            {"rule": "pattern", "column": "year", "regex": "20[0-9]{2}"},
+            {"rule": "length", "column": "island", "min": 5, "max": 9},
+            {"rule": "unique", "columns": ["species"]}
+        ]}"#,
+    );
+    let r = s.run(&["check", "penguins", "--rules", "rules.json", "--json"]);
+    assert_eq!(r.code, 1, "{}", r.stderr);
+    let report: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
+    let failing: Vec<u64> = report["results"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|x| x["n_failing"].as_u64().unwrap())
+        .collect();
+    // 2 and 11 blanks as documented; every species allowed; masses within the documented
+    // extremes (2700 and 6300, computed with Python); some above 6000; years four digits;
+    // island names 5 to 9 letters; species repeats (341 rows repeat one of three values).
+    assert_eq!(failing[0..4], [2, 11, 0, 0]);
+    assert!(failing[4] > 0);
+    assert_eq!(failing[5..7], [0, 0]);
+    assert_eq!(failing[7], 341);
+    let shown = s.json(&["show", "penguins", "--json"]);
+    assert_eq!(shown["checks"].as_array().unwrap().len(), 8);
+    assert_eq!(shown["checks"][0]["passed"], false);
+    assert_contains(&s.ok(&["verify"]), "intact");
+    s.file(
+        "bad.json",
+        "{\"rules\": [\n  {\"rule\": \"not_blank\", \"colums\": [\"sex\"]}\n]}",
+    );
+    let err = s.fails(2, &["check", "penguins", "--rules", "bad.json"]);
+    assert_contains(&err, "bad.json: line ");
+    assert_contains(&err, "unknown field `colums`, expected `columns`");
+}

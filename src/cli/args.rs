@@ -53,6 +53,24 @@ pub enum Command {
     )]
     Apply(ApplyArgs),
 
+    /// Check declared rules against a version and record the results on it
+    #[command(
+        after_help = "Rules file:\n  {\"rules\": [\n    {\"rule\": \"not_blank\", \"columns\": [\"order_id\"]},\n    {\"rule\": \"unique\", \"columns\": [\"order_id\"]},\n    \
+        {\"rule\": \"range\", \"column\": \"parts_cost\", \"min\": \"0\", \"max\": \"5000\"},\n    {\"rule\": \"length\", \"column\": \"order_id\", \"min\": 5, \"max\": 5},\n    \
+        {\"rule\": \"pattern\", \"column\": \"email\", \"regex\": \"[^@ ]+@[^@ ]+\"},\n    {\"rule\": \"allowed\", \"column\": \"status\", \"values\": [\"done\", \"open\"]}\n  ]}\n\n\
+        Example:\n  sluice check quillby_orders --rules rules.json\n\nExit code 0 when every rule passes, 1 when one fails."
+    )]
+    Check {
+        /// The version: NAME (latest), NAME@N or a hash prefix
+        reference: String,
+        /// The rules file (JSON)
+        #[arg(long, value_name = "FILE")]
+        rules: PathBuf,
+        /// Print JSON
+        #[arg(long)]
+        json: bool,
+    },
+
     /// Write a version's exact bytes to standard output or a file
     #[command(
         after_help = "Examples:\n  sluice cat quillby_orders@1 > q3-as-received.csv\n  sluice cat 5f3a9c -o q3.csv"

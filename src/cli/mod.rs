@@ -107,6 +107,24 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             render::apply_outcome(&mut out, &opts.op, &outcome)?;
             Ok(0)
         }
+        Command::Check {
+            reference,
+            rules,
+            json,
+        } => {
+            let mut store = open_store(&cli, &cwd)?;
+            let text = std::fs::read_to_string(rules)
+                .with_context(|| format!("cannot read the rules file {}", rules.display()))?;
+            let parsed = sluice::checks::parse_rules(&text, &rules.display().to_string())?;
+            let report =
+                sluice::checks::check(&mut store, reference, &parsed, &resolve_agent(&cli, &cwd))?;
+            if *json {
+                render::json(&mut out, &report)?;
+            } else {
+                render::check(&mut out, &report)?;
+            }
+            Ok(if report.passed { 0 } else { 1 })
+        }
         Command::Cat { reference, output } => {
             let store = open_store(&cli, &cwd)?;
             let version = refs::resolve(&store.lineage, reference)?;

@@ -276,6 +276,16 @@ pub fn show(out: &mut impl Write, d: &VersionDetail) -> io::Result<()> {
         }
     }
     writeln!(out, "  row index    {}", v.row_index)?;
+    for c in &d.checks {
+        writeln!(
+            out,
+            "  check        {} {} · {} · {}",
+            if c.passed { "pass" } else { "FAIL" },
+            c.rule,
+            c.checked_at,
+            c.agent
+        )?;
+    }
     writeln!(out)?;
     let mut rows = vec![[
         "column".to_string(),
@@ -353,6 +363,38 @@ fn table<const N: usize>(
         writeln!(out, "{}", line.trim_end())?;
     }
     Ok(())
+}
+
+pub fn check(out: &mut impl Write, r: &sluice::checks::CheckReport) -> io::Result<()> {
+    let failed = r.results.iter().filter(|c| !c.passed).count() as u64;
+    writeln!(
+        out,
+        "{} ({}): {} of {} passed",
+        r.version,
+        &r.hash[..12],
+        plural(r.results.len() as u64 - failed, "rule", "rules"),
+        r.results.len()
+    )?;
+    for c in &r.results {
+        let rule = serde_json::to_string(&c.rule).unwrap_or_default();
+        if c.passed {
+            writeln!(out, "  pass  {rule}")?;
+        } else {
+            let rows: Vec<String> = c.first_failing.iter().map(|n| n.to_string()).collect();
+            writeln!(
+                out,
+                "  FAIL  {rule}: {} (data rows {}{})",
+                plural(c.n_failing, "row", "rows"),
+                rows.join(", "),
+                if c.n_failing as usize > rows.len() {
+                    ", ..."
+                } else {
+                    ""
+                }
+            )?;
+        }
+    }
+    writeln!(out, "the results are recorded on {}", r.version)
 }
 
 pub fn verify(out: &mut impl Write, r: &VerifyReport) -> io::Result<()> {

@@ -652,6 +652,16 @@ pub(super) fn each_input_row(
     each_row(store, &input.hash, &input.dialect, &input.label(), f)
 }
 
+/// Calls `f` with every data row of version `v` (0-based index and record), re-hashing its
+/// object as it is read (for readers outside the operations, such as checks).
+pub fn each_version_row(
+    store: &Store,
+    v: &Version,
+    f: impl FnMut(u64, RawRecord<'_>) -> Result<()>,
+) -> Result<()> {
+    each_input_row(store, v, f)
+}
+
 /// [`each_input_row`] for an object known by hash, dialect and a label for messages.
 fn each_row(
     store: &Store,

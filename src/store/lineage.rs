@@ -489,6 +489,30 @@ impl Lineage {
         rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
     }
 
+    /// The check results recorded on a version, oldest first: (rule JSON, passed, failing
+    /// rows, who, when).
+    pub fn check_results(&self, version_id: i64) -> Result<Vec<CheckRow>> {
+        let mut st = self
+            .conn
+            .prepare_cached(
+                "SELECT c.rule, c.passed, c.n_failing, a.identity, c.checked_at FROM check_results c
+                 JOIN agents a ON a.id = c.agent_id WHERE c.version_id = ?1 ORDER BY c.id",
+            )
+            .map_err(db_err)?;
+        let rows = st
+            .query_map(params![version_id], |r| {
+                Ok((
+                    r.get(0)?,
+                    r.get::<_, i64>(1)? == 1,
+                    r.get::<_, i64>(2)? as u64,
+                    r.get(3)?,
+                    r.get(4)?,
+                ))
+            })
+            .map_err(db_err)?;
+        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+    }
+
     /// The notes on single cells of output version `output_id`: (row, column, note).
     pub fn cell_notes(&self, output_id: i64) -> Result<Vec<(u64, String, String)>> {
         let mut st = self
@@ -655,6 +679,9 @@ fn parse_json_field<T: serde::de::DeserializeOwned>(text: &str, field: &str) -> 
         .into()
     })
 }
+
+/// A recorded check result: (rule JSON, passed, failing rows, who, when).
+pub type CheckRow = (String, bool, u64, String, String);
 
 /// A step to record.
 pub struct NewStep<'a> {
@@ -928,6 +955,38 @@ impl Tx<'_> {
                 d.row_idx as i64,
                 d.reason,
                 d.duplicate_of.map(|v| v as i64)
+            ])
+            .map_err(db_err)?;
+        }
+        Ok(())
+    }
+
+    /// Records the results of checking rules on version `version_id`: (rule as canonical
+    /// JSON, passed, failing row count, first failing rows as JSON).
+    pub fn insert_check_results(
+        &mut self,
+        version_id: i64,
+        agent: &Agent,
+        results: &[(String, bool, u64, String)],
+        at: &str,
+    ) -> Result<()> {
+        let agent_id = self.agent_id(agent)?;
+        let mut st = self
+            .tx
+            .prepare_cached(
+                "INSERT INTO check_results (version_id, rule, passed, n_failing, first_failing, agent_id, checked_at)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
+            )
+            .map_err(db_err)?;
+        for (rule, passed, n, first) in results {
+            st.execute(params![
+                version_id,
+                rule,
+                i64::from(*passed),
+                *n as i64,
+                first,
+                agent_id,
+                at
             ])
             .map_err(db_err)?;
         }
