@@ -32,14 +32,7 @@ fn mask(text: &str, root: &str) -> String {
 #[test]
 fn show_of_palmerpenguins_matches_the_golden_file() {
     let s = Sandbox::with_store();
-    s.file(
-        "penguins.csv",
-        std::fs::read(concat!(
-            env!("CARGO_MANIFEST_DIR"),
-            "/tests/data/palmerpenguins/penguins.csv"
-        ))
-        .unwrap(),
-    );
+    s.file("penguins.csv", penguins_csv());
     s.ok(&[
         "ingest",
         "penguins.csv",

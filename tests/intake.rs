@@ -7,14 +7,6 @@ use std::process::Command;
 
 use common::*;
 
-fn penguins() -> Vec<u8> {
-    std::fs::read(concat!(
-        env!("CARGO_MANIFEST_DIR"),
-        "/tests/data/palmerpenguins/penguins.csv"
-    ))
-    .expect("vendored penguins.csv")
-}
-
 // RFC 4180 section 2, rules 5-7: the RFC's own examples of quoted fields with an embedded line
 // break, comma and doubled quote. Taken in as data (no header), the fields must be the ones
 // the RFC states, and `cat` must give the bytes back exactly.
@@ -78,16 +70,7 @@ fn rfc4180_empty_fields_count_as_blanks() {
 // flipper_length_mm 2, body_mass_g 2, sex 11, as documented with the data.
 #[test]
 fn palmerpenguins_profile_matches_the_published_counts() {
-    let s = Sandbox::with_store();
-    s.file("penguins.csv", penguins());
-    s.ok(&[
-        "ingest",
-        "penguins.csv",
-        "--as",
-        "penguins",
-        "--null-token",
-        "NA",
-    ]);
+    let s = Sandbox::with_penguins();
     let shown = s.json(&["show", "penguins", "--json"]);
     assert_eq!(shown["version"]["n_rows"], 344);
     assert_eq!(shown["version"]["n_cols"], 8);
@@ -191,31 +174,11 @@ fn assert_profile_matches_reference(s: &Sandbox, dataset: &str, reference: &serd
 // extremes of numeric columns agree.
 #[test]
 fn profile_agrees_with_python_csv_module() {
-    let s = Sandbox::new();
-    let demo_dir = s.path().join("demo");
-    s.ok(&["demo", demo_dir.to_str().unwrap()]);
-    let p = s.file("penguins.csv", penguins());
-    let reference = python_profile(&p, ",", &["NA"]);
-    let ds = Sandbox {
-        dir: tempfile::tempdir().unwrap(),
-    };
-    ds.ok(&["init"]);
-    ds.file("penguins.csv", penguins());
-    ds.ok(&[
-        "ingest",
-        "penguins.csv",
-        "--as",
-        "penguins",
-        "--null-token",
-        "NA",
-    ]);
+    let ds = Sandbox::with_penguins();
+    let reference = python_profile(&ds.path().join("penguins.csv"), ",", &["NA"]);
     assert_profile_matches_reference(&ds, "penguins", &reference);
 
-    let demo = Sandbox {
-        dir: tempfile::TempDir::new_in(s.path()).unwrap(),
-    };
-    std::fs::remove_dir_all(demo.path()).unwrap();
-    std::fs::rename(&demo_dir, demo.path()).unwrap();
+    let demo = Sandbox::with_demo();
     for (file, dataset, delim) in [
         ("quillby_2026q3.csv", "quillby_orders", ","),
         ("oxwater_2026q3.csv", "oxwater_orders", ";"),
@@ -228,13 +191,7 @@ fn profile_agrees_with_python_csv_module() {
 
 #[test]
 fn dialect_of_each_demo_export_is_detected() {
-    let s = Sandbox::new();
-    s.ok(&["demo", "d"]);
-    let d = Sandbox {
-        dir: tempfile::tempdir().unwrap(),
-    };
-    std::fs::remove_dir_all(d.path()).unwrap();
-    std::fs::rename(s.path().join("d"), d.path()).unwrap();
+    let d = Sandbox::with_demo();
     let ox = d.json(&["show", "oxwater_orders", "--json"]);
     let dl = &ox["version"]["dialect"];
     assert_eq!(dl["delimiter"], ";");
@@ -435,7 +392,7 @@ fn demo_builds_a_store_that_verifies() {
 #[test]
 fn cat_to_a_file_writes_exact_bytes() {
     let s = Sandbox::with_store();
-    let bytes = penguins();
+    let bytes = penguins_csv();
     s.file("p.csv", &bytes);
     s.ok(&["ingest", "p.csv", "--as", "penguins"]);
     s.ok(&["cat", "penguins", "-o", "copy.csv"]);

@@ -206,13 +206,7 @@ proptest! {
 fn the_same_step_on_the_same_bytes_gives_the_same_hash() {
     let mut hashes = Vec::new();
     for _ in 0..2 {
-        let s = Sandbox::with_store();
-        s.ok(&["demo", "d"]);
-        let d = Sandbox {
-            dir: tempfile::tempdir().unwrap(),
-        };
-        std::fs::remove_dir_all(d.path()).unwrap();
-        std::fs::rename(s.path().join("d"), d.path()).unwrap();
+        let d = Sandbox::with_demo();
         d.ok(&[
             "apply",
             "oxwater_orders",
@@ -337,13 +331,7 @@ fn apply_refuses_unknown_columns_and_a_missing_reason() {
 // exports, the rows sluice keeps are exactly the rows Python keeps.
 #[test]
 fn dedupe_agrees_with_python_on_the_demo_exports() {
-    let s = Sandbox::new();
-    s.ok(&["demo", "d"]);
-    let d = Sandbox {
-        dir: tempfile::tempdir().unwrap(),
-    };
-    std::fs::remove_dir_all(d.path()).unwrap();
-    std::fs::rename(s.path().join("d"), d.path()).unwrap();
+    let d = Sandbox::with_demo();
     for (dataset, file, delim, key) in [
         ("quillby_orders", "quillby_2026q3.csv", ",", None),
         ("oxwater_orders", "oxwater_2026q3.csv", ";", None),
@@ -943,13 +931,7 @@ fn palmerpenguins_group_counts_and_means() {
 // cleaned parts costs: the same groups, the same sums to the last digit.
 #[test]
 fn summarize_sums_agree_with_python_decimal() {
-    let s = Sandbox::new();
-    s.ok(&["demo", "d"]);
-    let d = Sandbox {
-        dir: tempfile::tempdir().unwrap(),
-    };
-    std::fs::remove_dir_all(d.path()).unwrap();
-    std::fs::rename(s.path().join("d"), d.path()).unwrap();
+    let d = Sandbox::with_demo();
     d.ok(&[
         "apply",
         "quillby_orders",

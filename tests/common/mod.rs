@@ -34,6 +34,14 @@ impl Sandbox {
         s
     }
 
+    /// A sandbox holding the demo (`sluice demo .`): the exports under `exports/` and a store
+    /// that has taken them in and cleaned the Quillby orders.
+    pub fn with_demo() -> Sandbox {
+        let s = Sandbox::new();
+        s.ok(&["demo", "."]);
+        s
+    }
+
     /// A sandbox whose store holds the vendored palmerpenguins data as dataset `penguins`,
     /// taken in with `NA` as the null token.
     pub fn with_penguins() -> Sandbox {
