@@ -152,6 +152,7 @@ pub fn check(
     store: &mut Store,
     reference: &str,
     rules: &[Rule],
+    gate: bool,
     agent: &Agent,
 ) -> Result<CheckReport> {
     let version = refs::resolve(&store.lineage, reference)?;
@@ -248,7 +249,7 @@ pub fn check(
         })
         .collect();
     store.write(|tx| {
-        tx.insert_check_results(version.id, agent, &rows, &at)?;
+        tx.insert_check_results(version.id, agent, &rows, gate, &at)?;
         tx.audit(
             agent,
             "check",
@@ -257,6 +258,7 @@ pub fn check(
                 "version": version.hash,
                 "rules": rows.len(),
                 "failed": rows.iter().filter(|r| !r.1).count(),
+                "gate": gate,
             }),
             &at,
         )

@@ -14,10 +14,8 @@ use std::io::{self, Write};
 use std::path::{Path, PathBuf};
 
 use crate::error::{Error, Result};
-use crate::intake::{self, IngestOptions, IngestOutcome};
 use crate::model::Agent;
-use crate::ops::apply::{self, ApplyOptions, ApplyOutcome};
-use crate::ops::{CaseTo, KeepWhich, OnError, Operation};
+use crate::plan;
 use crate::store::Store;
 
 /// A small deterministic generator (SplitMix64), so the demo and benchmark data are the same
@@ -353,7 +351,14 @@ fn write_row(out: &mut impl Write, row: &[String], delim: u8, nl: &[u8]) -> io::
 /// The cooperative's mapping from the labels the tills use to its own service names.
 pub fn service_labels() -> String {
     let mut s = String::from("label,service\n");
+    let mut seen = Vec::new();
     for l in SERVICES {
+        // The table lists each label once, as it reads after trimming.
+        let l = l.trim();
+        if seen.contains(&l) {
+            continue;
+        }
+        seen.push(l);
         let canon = match l.trim().to_lowercase().as_str() {
             "flat repair" | "flat fix" | "puncture" => "puncture repair",
             "brake tune" | "brakes - adjust" => "brake adjustment",
@@ -372,9 +377,10 @@ pub fn service_labels() -> String {
 pub struct DemoReport {
     pub dir: PathBuf,
     pub scenario: String,
-    pub ingested: Vec<(PathBuf, IngestOutcome)>,
-    /// The cleaning steps applied to the Quillby orders, in order.
-    pub cleaned: Vec<(Operation, ApplyOutcome)>,
+    /// The plan file, relative to `dir`.
+    pub plan: PathBuf,
+    /// What the run of the plan did: the intakes, then each step.
+    pub done: Vec<plan::Done>,
     pub next_commands: Vec<String>,
 }
 
@@ -395,12 +401,28 @@ pub fn fresh_folder(cwd: &Path) -> PathBuf {
     }
 }
 
-/// Creates the demo in `dir`: the exports, a store, their intake, and the first cleaning steps
-/// on the Quillby orders.
+/// The cooperative's staff list: who works at which shop.
+pub fn technicians() -> String {
+    let mut s = String::from("name,shop\n");
+    for till in [Till::Quillby, Till::Oxwater, Till::Fennmarsh] {
+        for t in till.technicians() {
+            s.push_str(&format!("{t},{}\n", till.shop()));
+        }
+    }
+    s
+}
+
+/// The demo's plan: every till's export cleaned its own way, stacked, checked and summed.
+pub const PLAN: &str = include_str!("../examples/plans/three_rivers_q3.json");
+
+/// Where the demo writes its plan, inside the demo folder.
+pub const PLAN_FILE: &str = "q3_cleaning.json";
+
+/// Creates the demo in `dir`: the exports and the plan, a store, and a run of the plan (which
+/// takes the exports in and records every step).
 pub fn run(dir: &Path, agent: &Agent) -> Result<DemoReport> {
     let exports = dir.join("exports");
     std::fs::create_dir_all(&exports).map_err(|e| Error::io(&exports, e))?;
-    let mut files = Vec::new();
     for (till, name, rows, first) in [
         (Till::Quillby, "quillby_2026q3.csv", 240u64, 41_000u64),
         (Till::Oxwater, "oxwater_2026q3.csv", 180, 7_200),
@@ -410,107 +432,46 @@ pub fn run(dir: &Path, agent: &Agent) -> Result<DemoReport> {
         let mut buf = Vec::new();
         work_orders(&mut buf, till, rows, first).map_err(|e| Error::io(&path, e))?;
         std::fs::write(&path, &buf).map_err(|e| Error::io(&path, e))?;
-        files.push((till, path));
     }
-    let labels = exports.join("service_labels.csv");
-    std::fs::write(&labels, service_labels()).map_err(|e| Error::io(&labels, e))?;
+    for (name, text) in [
+        ("service_labels.csv", service_labels()),
+        ("technicians.csv", technicians()),
+    ] {
+        let path = exports.join(name);
+        std::fs::write(&path, text).map_err(|e| Error::io(&path, e))?;
+    }
+    let plan_path = dir.join(PLAN_FILE);
+    std::fs::write(&plan_path, PLAN).map_err(|e| Error::io(&plan_path, e))?;
+    let plan = plan::parse(PLAN, PLAN_FILE)?;
 
     let mut store = Store::init_recorded(dir, agent)?;
-    let mut ingested = Vec::new();
-    let base = |dataset: &str, why: &str| IngestOptions {
-        dataset: dataset.to_string(),
-        key: None,
-        reason: Some(why.to_string()),
-        delimiter: None,
-        has_header: true,
-        encoding: None,
-        null_tokens: Vec::new(),
+    let opts = plan::RunOptions {
+        plan_dir: dir.to_path_buf(),
+        bindings: Vec::new(),
         agent: agent.clone(),
     };
-    for (till, path) in &files {
-        let dataset = match till {
-            Till::Quillby => "quillby_orders",
-            Till::Oxwater => "oxwater_orders",
-            Till::Fennmarsh => "fennmarsh_orders",
-        };
-        let why = format!(
-            "Q3 2026 work orders as exported by the {} till",
-            till.shop()
-        );
-        let outcome = intake::ingest(&mut store, path, &base(dataset, &why))?;
-        ingested.push((
-            path.strip_prefix(dir).unwrap_or(path).to_path_buf(),
-            outcome,
-        ));
-    }
-    let mut opts = base(
-        "service_labels",
-        "the cooperative's agreed names for the services the tills record",
-    );
-    opts.key = Some(vec!["label".to_string()]);
-    let outcome = intake::ingest(&mut store, &labels, &opts)?;
-    ingested.push((
-        labels.strip_prefix(dir).unwrap_or(&labels).to_path_buf(),
-        outcome,
-    ));
-
-    let mut cleaned = Vec::new();
-    for (op, why) in [
-        (
-            Operation::Trim {
-                columns: None,
-                inner: true,
-            },
-            "the Quillby till pads names, labels and amounts with spaces",
-        ),
-        (
-            Operation::Case {
-                columns: Some(vec!["email".into()]),
-                to: CaseTo::Lower,
-            },
-            "e-mail addresses are case-blind; one spelling per customer",
-        ),
-        (
-            Operation::Dedupe {
-                key: None,
-                keep: KeepWhich::First,
-            },
-            "the till exports some orders twice",
-        ),
-        (
-            Operation::Number {
-                columns: vec!["parts_cost".into()],
-                decimal_comma: false,
-                on_error: OnError::Fail,
-            },
-            "parts costs are written with euro signs and thousands commas",
-        ),
-    ] {
-        let opts = ApplyOptions {
-            op: op.clone(),
-            reason: why.to_string(),
-            output_dataset: None,
-            agent: agent.clone(),
-            map_table_file: None,
-        };
-        let outcome = apply::apply(&mut store, "quillby_orders", &opts)?;
-        cleaned.push((op, outcome));
-    }
+    let report = plan::run(&mut store, &plan, &opts).map_err(|f| {
+        Error::from(crate::error::ErrorKind::Data(format!(
+            "the demo plan stopped at {}: {}",
+            f.at, f.error
+        )))
+    })?;
 
     Ok(DemoReport {
         dir: dir.to_path_buf(),
         scenario: "The Three Rivers Cycle Cooperative: three bicycle repair shops, each exporting its Q3 work orders \
                    from a different till (comma / semicolon with decimal commas and a BOM / CRLF), plus the \
-                   cooperative's table of service names. All of it is invented."
+                   cooperative's table of service names and its staff list. All of it is invented."
             .to_string(),
-        ingested,
-        cleaned,
+        plan: PathBuf::from(PLAN_FILE),
+        done: report.done,
         next_commands: vec![
             format!("cd {}", dir.display()),
-            "sluice log quillby_orders".to_string(),
-            "sluice show quillby_orders".to_string(),
+            "sluice log all_orders".to_string(),
+            "sluice show all_orders".to_string(),
+            "sluice cat q3_by_shop".to_string(),
             "sluice cat quillby_orders@1 | head -5".to_string(),
-            "sluice apply oxwater_orders trim --inner --why \"same dirt at Oxwater\"".to_string(),
+            "sluice export q3_by_shop --format plan".to_string(),
             "sluice verify".to_string(),
         ],
     })

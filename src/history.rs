@@ -57,6 +57,8 @@ pub struct CheckRecord {
     pub n_failing: u64,
     pub agent: String,
     pub checked_at: String,
+    /// Whether the check ran as a plan's gate (a failure stopped the run).
+    pub gate: bool,
 }
 
 pub fn show(store: &Store, reference: &str) -> Result<VersionDetail> {
@@ -69,13 +71,16 @@ pub fn show(store: &Store, reference: &str) -> Result<VersionDetail> {
         .lineage
         .check_results(version.id)?
         .into_iter()
-        .map(|(rule, passed, n_failing, agent, checked_at)| CheckRecord {
-            rule: serde_json::from_str(&rule).unwrap_or(serde_json::Value::String(rule)),
-            passed,
-            n_failing,
-            agent,
-            checked_at,
-        })
+        .map(
+            |(rule, passed, n_failing, agent, checked_at, gate)| CheckRecord {
+                rule: serde_json::from_str(&rule).unwrap_or(serde_json::Value::String(rule)),
+                passed,
+                n_failing,
+                agent,
+                checked_at,
+                gate,
+            },
+        )
         .collect();
     Ok(VersionDetail {
         checks,

@@ -5,6 +5,8 @@
 //! line it came from. The flow runs one way:
 //!
 //! - read: [`table`] detects, decodes, parses and profiles delimited text;
+//! - operate: [`ops`] holds the built-in cleaning operations and records them; [`plan`] runs
+//!   and exports lists of them; [`checks`] evaluates declared rules;
 //! - record: [`intake`] takes outside files in; [`store`] keeps objects and the lineage database
 //!   (the only module that touches SQLite);
 //! - query: [`history`] (log, show), [`verify`], [`refs`] (version references).
@@ -39,6 +41,7 @@ pub mod history;
 pub mod intake;
 pub mod model;
 pub mod ops;
+pub mod plan;
 pub mod refs;
 pub mod store;
 pub mod table;

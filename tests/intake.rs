@@ -192,7 +192,7 @@ fn profile_agrees_with_python_csv_module() {
 #[test]
 fn dialect_of_each_demo_export_is_detected() {
     let d = Sandbox::with_demo();
-    let ox = d.json(&["show", "oxwater_orders", "--json"]);
+    let ox = d.json(&["show", "oxwater_orders@1", "--json"]);
     let dl = &ox["version"]["dialect"];
     assert_eq!(dl["delimiter"], ";");
     assert_eq!(dl["line_ending"], "crlf");
@@ -379,11 +379,29 @@ fn demo_builds_a_store_that_verifies() {
     std::fs::remove_dir_all(d.path()).unwrap();
     std::fs::rename(s.path().join("sluice-demo"), d.path()).unwrap();
     assert_contains(&d.ok(&["verify"]), "intact");
-    // Four intakes and four cleaning steps.
-    assert_eq!(d.json(&["log", "--json"]).as_array().unwrap().len(), 8);
+    // Five intakes and the plan's twenty built-in steps (its gate check records results, not
+    // a step).
+    let plan: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(d.path().join("q3_cleaning.json")).unwrap())
+            .unwrap();
+    let applies = plan["steps"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter(|s| s.get("apply").is_some())
+        .count();
+    assert_eq!(applies, 20);
+    assert_eq!(
+        d.json(&["log", "--json"]).as_array().unwrap().len(),
+        5 + applies
+    );
     assert_eq!(
         d.json(&["show", "quillby_orders", "--json"])["version"]["seq"],
-        5
+        4
+    );
+    assert_eq!(
+        d.json(&["show", "q3_by_shop", "--json"])["version"]["n_rows"],
+        9
     );
     // A second demo in the same folder goes to a new folder.
     assert_contains(&s.ok(&["demo"]), "sluice-demo");

@@ -71,6 +71,42 @@ pub enum Command {
         json: bool,
     },
 
+    /// Run a plan: take in its inputs, then record each of its steps in order
+    #[command(
+        after_help = "A plan is a JSON file listing steps (format: README.md, \"Plans\", and schema/plan.schema.json).\n\n\
+        Examples:\n  sluice run plans/q3-cleaning.json\n  sluice run plans/q3-cleaning.json --input quillby_orders=exports/quillby_2026q4.csv\n  \
+        sluice run plans/q3-cleaning.json --input quillby_orders=quillby_orders@1\n\n\
+        A failing step stops the run; the steps before it stay recorded and are listed. Exit code 1 when a step or a gate \
+        check fails on the data, 2 for a usage or input error."
+    )]
+    Run {
+        /// The plan file (JSON)
+        plan: PathBuf,
+        /// Take input NAME from a file, or bind it to a stored version (NAME@N, a hash prefix),
+        /// instead of the plan's file; repeatable
+        #[arg(long = "input", value_name = "NAME=FILE|REF")]
+        inputs: Vec<String>,
+        /// Print JSON
+        #[arg(long)]
+        json: bool,
+    },
+
+    /// Write what produced a version in another form: the plan that remakes it from raw data
+    #[command(
+        after_help = "Example:\n  sluice export quillby_orders --format plan -o plans/q3-cleaning.json\n\n\
+        The plan's input files are written relative to the folder of the -o file (or of the working directory)."
+    )]
+    Export {
+        /// The version: NAME (latest), NAME@N or a hash prefix
+        reference: String,
+        /// The form to write
+        #[arg(long, value_enum)]
+        format: ExportFormat,
+        /// Write to this file instead of standard output
+        #[arg(short = 'o', long = "output", value_name = "FILE")]
+        output: Option<PathBuf>,
+    },
+
     /// Write a version's exact bytes to standard output or a file
     #[command(
         after_help = "Examples:\n  sluice cat quillby_orders@1 > q3-as-received.csv\n  sluice cat 5f3a9c -o q3.csv"
@@ -546,6 +582,12 @@ pub enum OpCommand {
         #[command(flatten)]
         step: StepArgs,
     },
+}
+
+#[derive(Debug, Clone, Copy, ValueEnum)]
+pub enum ExportFormat {
+    /// A plan (JSON) that remakes the version from its raw inputs
+    Plan,
 }
 
 #[derive(Debug, Clone, Copy, ValueEnum)]

@@ -116,14 +116,114 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             let text = std::fs::read_to_string(rules)
                 .with_context(|| format!("cannot read the rules file {}", rules.display()))?;
             let parsed = sluice::checks::parse_rules(&text, &rules.display().to_string())?;
-            let report =
-                sluice::checks::check(&mut store, reference, &parsed, &resolve_agent(&cli, &cwd))?;
+            let report = sluice::checks::check(
+                &mut store,
+                reference,
+                &parsed,
+                false,
+                &resolve_agent(&cli, &cwd),
+            )?;
             if *json {
                 render::json(&mut out, &report)?;
             } else {
                 render::check(&mut out, &report)?;
             }
             Ok(if report.passed { 0 } else { 1 })
+        }
+        Command::Run { plan, inputs, json } => {
+            let mut store = open_store(&cli, &cwd)?;
+            let text = std::fs::read_to_string(plan)
+                .with_context(|| format!("cannot read the plan {}", plan.display()))?;
+            let parsed = sluice::plan::parse(&text, &plan.display().to_string())?;
+            let bindings = inputs
+                .iter()
+                .map(|i| binding(i, &cwd))
+                .collect::<anyhow::Result<Vec<_>>>()?;
+            let opts = sluice::plan::RunOptions {
+                plan_dir: plan
+                    .parent()
+                    .filter(|p| !p.as_os_str().is_empty())
+                    .map(Path::to_path_buf)
+                    .unwrap_or_else(|| cwd.clone()),
+                bindings,
+                agent: resolve_agent(&cli, &cwd),
+            };
+            match sluice::plan::run(&mut store, &parsed, &opts) {
+                Ok(report) => {
+                    if *json {
+                        render::json(&mut out, &render::run_json(&report.done, None))?;
+                    } else {
+                        render::run_done(&mut out, &report.done)?;
+                        if report.failed_checks > 0 {
+                            writeln!(
+                                out,
+                                "done, with {} failing (not {}: the run went on; the results are recorded)",
+                                if report.failed_checks == 1 { "1 check".to_string() } else { format!("{} checks", report.failed_checks) },
+                                if report.failed_checks == 1 { "a gate" } else { "gates" }
+                            )?;
+                        } else {
+                            writeln!(out, "done: every step recorded")?;
+                        }
+                    }
+                    Ok(if report.failed_checks > 0 { 1 } else { 0 })
+                }
+                Err(failure) => {
+                    let kept: Vec<String> = failure
+                        .done
+                        .iter()
+                        .filter_map(|d| d.recorded().map(|v| v.label()))
+                        .collect();
+                    if *json {
+                        let msg = failure.error.to_string();
+                        render::json(
+                            &mut out,
+                            &render::run_json(&failure.done, Some((&failure.at, &msg))),
+                        )?;
+                    } else {
+                        render::run_done(&mut out, &failure.done)?;
+                    }
+                    out.flush()?;
+                    let kept = if kept.is_empty() {
+                        "nothing was recorded".to_string()
+                    } else {
+                        format!("the store keeps what came before: {}", kept.join(", "))
+                    };
+                    Err(anyhow::Error::from(failure.error)
+                        .context(format!("the run stopped at {}; {kept}", failure.at)))
+                }
+            }
+        }
+        Command::Export {
+            reference,
+            format: args::ExportFormat::Plan,
+            output,
+        } => {
+            let store = open_store(&cli, &cwd)?;
+            let base = match output {
+                Some(o) => std::path::absolute(o)
+                    .ok()
+                    .and_then(|a| a.parent().map(Path::to_path_buf))
+                    .unwrap_or_else(|| cwd.clone()),
+                None => cwd.clone(),
+            };
+            let plan = sluice::plan::export(&store, reference, &base)?;
+            let mut text = serde_json::to_string_pretty(&plan)?;
+            text.push('\n');
+            match output {
+                None => out.write_all(text.as_bytes())?,
+                Some(path) => {
+                    write_file_atomically(path, |f| Ok(f.write_all(text.as_bytes())?))?;
+                    writeln!(
+                        out,
+                        "wrote the plan of {} ({} inputs, {} steps) to {}",
+                        reference,
+                        plan.inputs.len(),
+                        plan.steps.len(),
+                        path.display()
+                    )?;
+                }
+            }
+            Ok(0)
         }
         Command::Cat { reference, output } => {
             let store = open_store(&cli, &cwd)?;
@@ -496,6 +596,27 @@ fn parse_delimiter(s: &str) -> anyhow::Result<u8> {
         ));
     }
     Ok(b)
+}
+
+/// `NAME=FILE|REF`: an existing file is taken in; anything else must name a stored version.
+fn binding(text: &str, cwd: &Path) -> anyhow::Result<(String, sluice::plan::Binding)> {
+    let (name, value) = text.split_once('=').ok_or_else(|| {
+        anyhow!("--input {text}: expected NAME=FILE or NAME=REF, e.g. --input quillby_orders=exports/q4.csv")
+    })?;
+    if name.is_empty() || value.is_empty() {
+        return Err(anyhow!(
+            "--input {text}: expected NAME=FILE or NAME=REF with both parts given"
+        ));
+    }
+    let path = cwd.join(value);
+    Ok((
+        name.to_string(),
+        if path.is_file() {
+            sluice::plan::Binding::File(path)
+        } else {
+            sluice::plan::Binding::Version(value.to_string())
+        },
+    ))
 }
 
 fn ingest_options(a: &IngestArgs, agent: Agent) -> anyhow::Result<IngestOptions> {

@@ -5,6 +5,7 @@ use std::io::{self, Write};
 use std::path::Path;
 
 use serde::Serialize;
+use serde_json::json;
 
 use sluice::demo::DemoReport;
 use sluice::history::{LogEntry, VersionDetail};
@@ -12,6 +13,7 @@ use sluice::intake::IngestOutcome;
 use sluice::model::{Step, Version};
 use sluice::ops::apply::ApplyOutcome;
 use sluice::ops::Operation;
+use sluice::plan::Done;
 use sluice::verify::VerifyReport;
 
 pub fn json<T: Serialize>(out: &mut impl Write, value: &T) -> io::Result<()> {
@@ -279,7 +281,8 @@ pub fn show(out: &mut impl Write, d: &VersionDetail) -> io::Result<()> {
     for c in &d.checks {
         writeln!(
             out,
-            "  check        {} {} · {} · {}",
+            "  {}         {} {} · {} · {}",
+            if c.gate { "gate " } else { "check" },
             if c.passed { "pass" } else { "FAIL" },
             c.rule,
             c.checked_at,
@@ -439,23 +442,15 @@ pub fn demo(out: &mut impl Write, r: &DemoReport) -> io::Result<()> {
     writeln!(out, "demo store created in {}", r.dir.display())?;
     writeln!(out, "{}", r.scenario)?;
     writeln!(out)?;
-    writeln!(out, "taken in:")?;
-    for (file, outcome) in &r.ingested {
-        write!(out, "  {}: ", file.display())?;
-        ingest_outcome_short(out, outcome)?;
-    }
-    writeln!(out)?;
     writeln!(
         out,
-        "cleaned, each step with its reason and every changed cell recorded:"
+        "ran the plan {}: each export taken in, then every step recorded with its reason and every changed cell:",
+        r.plan.display()
     )?;
-    for (op, outcome) in &r.cleaned {
-        write!(out, "  ")?;
-        let mut line = Vec::new();
-        apply_outcome(&mut line, op, outcome)?;
-        // Only the first line: the "next" hint is given below for the whole demo.
-        let text = String::from_utf8_lossy(&line);
-        writeln!(out, "{}", text.lines().next().unwrap_or(""))?;
+    let mut lines = Vec::new();
+    run_done(&mut lines, &r.done)?;
+    for line in String::from_utf8_lossy(&lines).lines() {
+        writeln!(out, "  {line}")?;
     }
     writeln!(out)?;
     writeln!(out, "try next:")?;
@@ -463,6 +458,128 @@ pub fn demo(out: &mut impl Write, r: &DemoReport) -> io::Result<()> {
         writeln!(out, "  {c}")?;
     }
     Ok(())
+}
+
+/// The first line of an operation's outcome (the "next" hint left out).
+fn apply_line(op: &Operation, outcome: &ApplyOutcome) -> io::Result<String> {
+    let mut line = Vec::new();
+    apply_outcome(&mut line, op, outcome)?;
+    let text = String::from_utf8_lossy(&line);
+    Ok(text.lines().next().unwrap_or("").to_string())
+}
+
+/// What a plan run did, one line per input and step.
+pub fn run_done(out: &mut impl Write, done: &[Done]) -> io::Result<()> {
+    for d in done {
+        match d {
+            Done::Bound { name, version } => writeln!(
+                out,
+                "input {name}: bound to {} ({}), {}",
+                version.label(),
+                &version.hash[..12],
+                shape(version)
+            )?,
+            Done::TookIn {
+                name,
+                path,
+                outcome,
+                differs_from,
+            } => {
+                write!(out, "input {name} from {}: ", path.display())?;
+                ingest_outcome_short(out, outcome)?;
+                if let Some(h) = differs_from {
+                    writeln!(
+                        out,
+                        "  (other data than the plan was made from, {}: the steps run on it as written)",
+                        &h[..h.len().min(12)]
+                    )?;
+                }
+            }
+            Done::Applied { step, op, outcome } => {
+                writeln!(out, "step {step}: {}", apply_line(op, outcome)?)?
+            }
+            Done::Checked { step, gate, report } => {
+                let failed = report.results.iter().filter(|c| !c.passed).count();
+                writeln!(
+                    out,
+                    "step {step}: {} on {}: {}{}",
+                    if *gate { "gate" } else { "check" },
+                    report.version,
+                    if failed == 0 {
+                        format!(
+                            "all {} passed",
+                            plural(report.results.len() as u64, "rule", "rules")
+                        )
+                    } else {
+                        format!("{} of {} rules failed", failed, report.results.len())
+                    },
+                    if failed == 0 {
+                        String::new()
+                    } else {
+                        let names: Vec<String> = report
+                            .results
+                            .iter()
+                            .filter(|c| !c.passed)
+                            .map(|c| {
+                                format!(
+                                    "{} fails on {}",
+                                    sluice::plan::rule_summary(&c.rule),
+                                    plural(c.n_failing, "row", "rows")
+                                )
+                            })
+                            .collect();
+                        format!("; {}", names.join("; "))
+                    }
+                )?
+            }
+        }
+    }
+    Ok(())
+}
+
+/// The JSON form of what a plan run did.
+pub fn run_json(done: &[Done], stopped: Option<(&str, &str)>) -> serde_json::Value {
+    let version = |v: &Version| json!({"version": v.label(), "hash": v.hash});
+    let items: Vec<serde_json::Value> = done
+        .iter()
+        .map(|d| match d {
+            Done::Bound { name, version: v } => {
+                json!({"kind": "input", "name": name, "bound": true, "recorded": false, "output": version(v)})
+            }
+            Done::TookIn {
+                name,
+                path,
+                outcome,
+                differs_from,
+            } => {
+                let (v, recorded) = match &**outcome {
+                    IngestOutcome::Recorded { version, .. } => (version, true),
+                    IngestOutcome::Unchanged { version } => (version, false),
+                };
+                json!({"kind": "input", "name": name, "bound": false, "file": path.display().to_string(),
+                       "recorded": recorded, "output": version(v), "differs_from_plan": differs_from})
+            }
+            Done::Applied { step, op, outcome } => {
+                let (input, v, recorded) = match &**outcome {
+                    ApplyOutcome::Recorded { input, version, .. } => (input, version, true),
+                    ApplyOutcome::Unchanged { input, version, .. } => (input, version, false),
+                };
+                json!({"kind": "apply", "step": step, "op": op.name(), "recorded": recorded,
+                       "input": version(input), "output": version(v)})
+            }
+            Done::Checked { step, gate, report } => json!({
+                "kind": "check", "step": step, "gate": gate, "version": report.version,
+                "hash": report.hash, "passed": report.passed,
+                "failed_rules": report.results.iter().filter(|c| !c.passed).count(),
+            }),
+        })
+        .collect();
+    json!({
+        "completed": stopped.is_none(),
+        "stopped_at": stopped.map(|s| s.0),
+        "error": stopped.map(|s| s.1),
+        "done": items,
+    })
 }
 
 fn ingest_outcome_short(out: &mut impl Write, o: &IngestOutcome) -> io::Result<()> {

@@ -48,20 +48,23 @@ pub enum OnError {
 
 /// One column renamed by `rename`.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
 pub struct Renaming {
     pub from: String,
     pub to: String,
 }
 
 /// An operation and its parameters, as recorded with the step (canonical JSON, tagged by
-/// `op`).
+/// `op`) and as written in a plan. A recorded step always holds every field; in a plan the
+/// fields marked `default` may be left out and take the value the command line gives them.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
-#[serde(tag = "op", rename_all = "snake_case")]
+#[serde(tag = "op", rename_all = "snake_case", deny_unknown_fields)]
 pub enum Operation {
     /// Leading and trailing white space removed; with `inner`, runs of white space inside a
     /// value become one space.
     Trim {
         columns: Option<Vec<String>>,
+        #[serde(default)]
         inner: bool,
     },
     /// Letters changed to one case.
@@ -74,6 +77,7 @@ pub enum Operation {
     /// duplicated.
     Dedupe {
         key: Option<Vec<String>>,
+        #[serde(default = "keep_first")]
         keep: KeepWhich,
     },
     /// Every occurrence of `find` in the values replaced by `with`: literal text, or with
@@ -82,6 +86,7 @@ pub enum Operation {
         columns: Option<Vec<String>>,
         find: String,
         with: String,
+        #[serde(default)]
         regex: bool,
     },
     /// Values replaced through a two-column mapping table (another version): a value equal to
@@ -92,6 +97,7 @@ pub enum Operation {
         table: String,
         from: Option<String>,
         to: Option<String>,
+        #[serde(default = "on_error_keep")]
         unmatched: OnError,
     },
     /// A left join: for each row, the row of `table` whose `table_on` columns (default: the
@@ -103,13 +109,18 @@ pub enum Operation {
         on: Vec<String>,
         table_on: Option<Vec<String>>,
         take: Vec<String>,
+        #[serde(default)]
         unmatched_fail: bool,
     },
     /// The rows of version `other` stacked under this one's: its columns matched by name,
     /// after renaming them through `map` (theirs to ours); a column of ours it lacks is blank.
     /// `other` is recorded as the version's hash; each output row keeps its origin in the row
     /// map.
-    Append { other: String, map: Vec<Renaming> },
+    Append {
+        other: String,
+        #[serde(default)]
+        map: Vec<Renaming>,
+    },
     /// Blank cells (empty or a null token) of `columns` filled with `value`, or with the value
     /// of column `from` in the same row when that is not blank.
     Fill {
@@ -120,13 +131,16 @@ pub enum Operation {
     /// Amounts written as text read into canonical decimal numbers (see [`number`]).
     Number {
         columns: Vec<String>,
+        #[serde(default)]
         decimal_comma: bool,
+        #[serde(default = "on_error_fail")]
         on_error: OnError,
     },
     /// Dates in mixed formats written as ISO 8601 (see [`date`]).
     Date {
         columns: Vec<String>,
         order: Option<date::DateOrder>,
+        #[serde(default = "on_error_fail")]
         on_error: OnError,
     },
     /// `column` split on `on` into new columns `into` (placed after it; the last takes the rest,
@@ -168,6 +182,18 @@ pub enum Operation {
     /// The rows where the predicate holds are removed (see [`predicate`]).
     #[serde(rename = "drop")]
     DropRows { predicate: String },
+}
+
+fn keep_first() -> KeepWhich {
+    KeepWhich::First
+}
+
+fn on_error_keep() -> OnError {
+    OnError::Keep
+}
+
+fn on_error_fail() -> OnError {
+    OnError::Fail
 }
 
 impl Operation {

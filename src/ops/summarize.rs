@@ -45,6 +45,7 @@ impl AggFunc {
 
 /// One aggregate column: `func` of input column `column`, named `func_column` in the output.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
 pub struct Aggregate {
     pub func: AggFunc,
     pub column: String,

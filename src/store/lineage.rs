@@ -19,6 +19,7 @@ use crate::model::{
 const MIGRATIONS: &[(i64, &str)] = &[
     (1, include_str!("../../schema/0001_lineage.sql")),
     (2, include_str!("../../schema/0002_cell_notes.sql")),
+    (3, include_str!("../../schema/0003_check_gate.sql")),
 ];
 
 /// The schema version this build writes.
@@ -213,6 +214,36 @@ impl Lineage {
 
     pub fn version_by_id(&self, id: i64) -> Result<Option<Version>> {
         Ok(self.query_versions("WHERE v.id = ?1", params![id])?.pop())
+    }
+
+    /// The versions a step read, in order, each with its role ('input', 'table', 'other').
+    pub fn step_input_versions(&self, step_id: i64) -> Result<Vec<(String, Version)>> {
+        let mut st = self
+            .conn
+            .prepare_cached(
+                "SELECT version_id, role FROM step_inputs WHERE step_id = ?1 ORDER BY position",
+            )
+            .map_err(db_err)?;
+        let rows = st
+            .query_map(params![step_id], |r| {
+                Ok((r.get::<_, i64>(0)?, r.get::<_, String>(1)?))
+            })
+            .map_err(db_err)?
+            .collect::<rusqlite::Result<Vec<_>>>()
+            .map_err(db_err)?;
+        let mut out = Vec::with_capacity(rows.len());
+        for (id, role) in rows {
+            let v = self
+                .version_by_id(id)?
+                .ok_or_else(|| bad_field("step_inputs.version_id", &id.to_string()))?;
+            out.push((role, v));
+        }
+        Ok(out)
+    }
+
+    /// The versions a step produced, in order.
+    pub fn step_outputs(&self, step_id: i64) -> Result<Vec<Version>> {
+        self.query_versions("WHERE v.step_id = ?1 ORDER BY v.id", params![step_id])
     }
 
     /// Versions whose hash starts with `prefix` (lowercase hex).
@@ -490,12 +521,12 @@ impl Lineage {
     }
 
     /// The check results recorded on a version, oldest first: (rule JSON, passed, failing
-    /// rows, who, when).
+    /// rows, who, when, whether it ran as a plan's gate).
     pub fn check_results(&self, version_id: i64) -> Result<Vec<CheckRow>> {
         let mut st = self
             .conn
             .prepare_cached(
-                "SELECT c.rule, c.passed, c.n_failing, a.identity, c.checked_at FROM check_results c
+                "SELECT c.rule, c.passed, c.n_failing, a.identity, c.checked_at, c.gate FROM check_results c
                  JOIN agents a ON a.id = c.agent_id WHERE c.version_id = ?1 ORDER BY c.id",
             )
             .map_err(db_err)?;
@@ -507,6 +538,7 @@ impl Lineage {
                     r.get::<_, i64>(2)? as u64,
                     r.get(3)?,
                     r.get(4)?,
+                    r.get::<_, i64>(5)? == 1,
                 ))
             })
             .map_err(db_err)?;
@@ -681,7 +713,7 @@ fn parse_json_field<T: serde::de::DeserializeOwned>(text: &str, field: &str) -> 
 }
 
 /// A recorded check result: (rule JSON, passed, failing rows, who, when).
-pub type CheckRow = (String, bool, u64, String, String);
+pub type CheckRow = (String, bool, u64, String, String, bool);
 
 /// A step to record.
 pub struct NewStep<'a> {
@@ -968,14 +1000,15 @@ impl Tx<'_> {
         version_id: i64,
         agent: &Agent,
         results: &[(String, bool, u64, String)],
+        gate: bool,
         at: &str,
     ) -> Result<()> {
         let agent_id = self.agent_id(agent)?;
         let mut st = self
             .tx
             .prepare_cached(
-                "INSERT INTO check_results (version_id, rule, passed, n_failing, first_failing, agent_id, checked_at)
-                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7)",
+                "INSERT INTO check_results (version_id, rule, passed, n_failing, first_failing, agent_id, checked_at, gate)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8)",
             )
             .map_err(db_err)?;
         for (rule, passed, n, first) in results {
@@ -986,7 +1019,8 @@ impl Tx<'_> {
                 *n as i64,
                 first,
                 agent_id,
-                at
+                at,
+                i64::from(gate)
             ])
             .map_err(db_err)?;
         }

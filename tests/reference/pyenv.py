@@ -40,6 +40,8 @@ def main():
             [py, "-m", "pip", "install", "--quiet", "--disable-pip-version-check",
              "-r", REQS],
             check=True,
+            # Standard output carries only the interpreter's path, for the callers to read.
+            stdout=sys.stderr,
         )
         with open(STAMP, "w") as f:
             f.write(wanted + "\n")

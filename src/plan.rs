@@ -1,0 +1,749 @@
+//! Plans: a JSON list of steps that `sluice run` records one by one, and that `sluice export
+//! --format plan` writes back from the history of a version. A plan names its raw inputs, binds
+//! each to a file or a stored version when it runs, and then applies built-in operations and
+//! checks in order. Every step is recorded exactly as `sluice apply` and `sluice check` record
+//! it; a run is only a sequence of such commands, so a failure keeps the steps done before it.
+//!
+//! Inside a plan, a name is a dataset name: a step `on` a name reads the version this run last
+//! produced or bound for that dataset (or, for a name the run has not touched, the store's
+//! version of that reference), and records its output as the next version of the same dataset
+//! unless the step says `as`. The format is described field by field in
+//! `schema/plan.schema.json` and README.md ("Plans").
+
+use std::collections::{BTreeMap, BTreeSet};
+use std::path::{Path, PathBuf};
+
+use serde::{Deserialize, Serialize};
+
+use crate::checks::{self, CheckReport, Rule};
+use crate::error::{Error, ErrorKind, Result};
+use crate::intake::{self, IngestOptions, IngestOutcome};
+use crate::model::{Agent, StepKind, Version};
+use crate::ops::apply::{self, ApplyOptions, ApplyOutcome};
+use crate::ops::Operation;
+use crate::refs;
+use crate::store::Store;
+
+/// The plan format version this build reads and writes.
+pub const PLAN_FORMAT: u32 = 1;
+
+/// A plan file.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Plan {
+    /// The format version; always 1 for now.
+    pub sluice_plan: u32,
+    /// What the plan is for, in a sentence or two.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub description: Option<String>,
+    /// The raw data the plan starts from, taken in (or bound) before any step runs.
+    #[serde(default)]
+    pub inputs: Vec<PlanInput>,
+    /// The steps, in the order they run.
+    pub steps: Vec<PlanStep>,
+}
+
+/// One raw input of a plan: a dataset name and where its data comes from by default.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct PlanInput {
+    /// The dataset the data is taken in as.
+    pub name: String,
+    /// The file to take in, relative to the plan file's folder; `--input NAME=...` overrides it.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub file: Option<String>,
+    /// Why the file is taken in (the reason recorded with the intake).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub why: Option<String>,
+    /// Key columns declared at intake.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub key: Option<Vec<String>>,
+    /// The field delimiter, when it is not to be detected.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub delimiter: Option<String>,
+    /// Whether the first line is a header (default true).
+    #[serde(default = "yes", skip_serializing_if = "is_true")]
+    pub header: bool,
+    /// A legacy text encoding to decode from (default UTF-8).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub encoding: Option<String>,
+    /// Values that count as blank.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub null_tokens: Vec<String>,
+    /// The BLAKE3 hash of the raw version the plan was exported from. Informational: a run on
+    /// other data (next quarter's export) is the point of a plan; the run says when it differs.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub hash: Option<String>,
+}
+
+fn yes() -> bool {
+    true
+}
+
+fn is_true(b: &bool) -> bool {
+    *b
+}
+
+/// One step of a plan: exactly one of `apply` and `check`.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct PlanStep {
+    /// The dataset (or any version reference) the step works on.
+    pub on: String,
+    /// A built-in operation with its parameters, as `sluice apply` records them.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub apply: Option<Operation>,
+    /// Rules to check, as in a rules file.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub check: Option<Vec<Rule>>,
+    /// For a check: stop the run when a rule fails.
+    #[serde(default, skip_serializing_if = "std::ops::Not::not")]
+    pub gate: bool,
+    /// The reason recorded with the step (required for `apply`).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub why: Option<String>,
+    /// Record the output as a version of this dataset instead of `on`'s.
+    #[serde(default, rename = "as", skip_serializing_if = "Option::is_none")]
+    pub output: Option<String>,
+}
+
+impl PlanStep {
+    /// A short description for messages: "number on quillby_orders".
+    pub fn describe(&self) -> String {
+        match (&self.apply, &self.check) {
+            (Some(op), _) => format!("{} on {}", op.name(), self.on),
+            (None, _) if self.gate => format!("gate check on {}", self.on),
+            _ => format!("check on {}", self.on),
+        }
+    }
+}
+
+/// Reads a plan's text; errors name the line and column, or the step.
+pub fn parse(text: &str, path: &str) -> Result<Plan> {
+    let plan: Plan = serde_json::from_str(text).map_err(|e| {
+        let what = e.to_string();
+        let what = what.split(" at line").next().unwrap_or("malformed plan");
+        Error::usage(format!(
+            "{path}: line {}, column {}: {what}; the plan format is in schema/plan.schema.json and README.md (\"Plans\")",
+            e.line(),
+            e.column(),
+        ))
+    })?;
+    validate(&plan, path)?;
+    Ok(plan)
+}
+
+fn validate(plan: &Plan, path: &str) -> Result<()> {
+    if plan.sluice_plan != PLAN_FORMAT {
+        return Err(Error::usage(format!(
+            "{path}: plan format {} is not one this build reads (it reads {PLAN_FORMAT}); upgrade sluice",
+            plan.sluice_plan
+        )));
+    }
+    let mut names = BTreeSet::new();
+    for (i, input) in plan.inputs.iter().enumerate() {
+        if !names.insert(input.name.as_str()) {
+            return Err(Error::usage(format!(
+                "{path}: input {} names dataset \"{}\" a second time; give each input its own name",
+                i + 1,
+                input.name
+            )));
+        }
+        if let Some(d) = &input.delimiter {
+            if d.len() != 1 {
+                return Err(Error::usage(format!(
+                    "{path}: input \"{}\": the delimiter must be one ASCII character, not {d:?}",
+                    input.name
+                )));
+            }
+        }
+    }
+    if plan.steps.is_empty() {
+        return Err(Error::usage(format!("{path}: the plan has no steps")));
+    }
+    for (i, s) in plan.steps.iter().enumerate() {
+        let at = |what: &str| Error::usage(format!("{path}: step {}: {what}", i + 1));
+        match (&s.apply, &s.check) {
+            (Some(_), Some(_)) => {
+                return Err(at(
+                    "a step holds either \"apply\" or \"check\", not both; split it in two",
+                ))
+            }
+            (None, None) => {
+                return Err(at(
+                    "a step needs \"apply\" (an operation) or \"check\" (a list of rules)",
+                ))
+            }
+            (Some(_), None) => {
+                if s.why.as_deref().is_none_or(|w| w.trim().is_empty()) {
+                    return Err(at(
+                        "an \"apply\" step needs \"why\": the reason recorded with it",
+                    ));
+                }
+                if s.gate {
+                    return Err(at("\"gate\" belongs to \"check\" steps"));
+                }
+            }
+            (None, Some(rules)) => {
+                if rules.is_empty() {
+                    return Err(at("\"check\" holds no rule"));
+                }
+                if s.output.is_some() {
+                    return Err(at(
+                        "a check records no version, so it takes no \"as\"; remove it",
+                    ));
+                }
+            }
+        }
+    }
+    Ok(())
+}
+
+/// Where a plan input's data comes from in one run.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum Binding {
+    File(PathBuf),
+    Version(String),
+}
+
+/// What `run` needs besides the plan.
+#[derive(Debug, Clone)]
+pub struct RunOptions {
+    /// The folder relative file paths in the plan are read from (the plan file's folder).
+    pub plan_dir: PathBuf,
+    /// `--input NAME=...` choices, which override the plan's files.
+    pub bindings: Vec<(String, Binding)>,
+    pub agent: Agent,
+}
+
+/// One thing a run did.
+#[derive(Debug, Clone)]
+pub enum Done {
+    /// A plan input bound to a stored version.
+    Bound { name: String, version: Version },
+    /// A plan input taken in from a file.
+    TookIn {
+        name: String,
+        path: PathBuf,
+        outcome: Box<IngestOutcome>,
+        /// The hash the plan recorded for this input, when the data differs from it.
+        differs_from: Option<String>,
+    },
+    /// An `apply` step.
+    Applied {
+        step: usize,
+        op: Operation,
+        outcome: Box<ApplyOutcome>,
+    },
+    /// A `check` step.
+    Checked {
+        step: usize,
+        gate: bool,
+        report: CheckReport,
+    },
+}
+
+impl Done {
+    /// The version this item recorded, if it recorded one (an intake or an operation whose
+    /// result was new).
+    pub fn recorded(&self) -> Option<&Version> {
+        match self {
+            Done::TookIn { outcome, .. } => match &**outcome {
+                IngestOutcome::Recorded { version, .. } => Some(version),
+                IngestOutcome::Unchanged { .. } => None,
+            },
+            Done::Applied { outcome, .. } => match &**outcome {
+                ApplyOutcome::Recorded { version, .. } => Some(version),
+                ApplyOutcome::Unchanged { .. } => None,
+            },
+            Done::Bound { .. } | Done::Checked { .. } => None,
+        }
+    }
+}
+
+/// The result of a run that went to the end.
+#[derive(Debug, Clone)]
+pub struct RunReport {
+    pub done: Vec<Done>,
+    /// Non-gate checks with a failing rule.
+    pub failed_checks: usize,
+}
+
+/// A run that stopped: what was done and kept, where it stopped, and why.
+#[derive(Debug)]
+pub struct RunFailure {
+    pub done: Vec<Done>,
+    /// "step 4 (number on quillby_orders)" or "input quillby_orders".
+    pub at: String,
+    pub error: Error,
+}
+
+impl RunFailure {
+    fn before_start(error: Error) -> Self {
+        RunFailure {
+            done: Vec::new(),
+            at: "before the first step".into(),
+            error,
+        }
+    }
+}
+
+/// Runs a plan: binds or takes in its inputs, then records each step in order. Problems that
+/// can be seen before anything is recorded (unknown inputs, missing files, a name no step
+/// can resolve) stop the run before it starts.
+pub fn run(
+    store: &mut Store,
+    plan: &Plan,
+    opts: &RunOptions,
+) -> std::result::Result<RunReport, RunFailure> {
+    let sources = plan_sources(store, plan, opts).map_err(RunFailure::before_start)?;
+    let mut done = Vec::new();
+    // The version each dataset name stands for in this run.
+    let mut current: BTreeMap<String, Version> = BTreeMap::new();
+    for (input, source) in plan.inputs.iter().zip(sources) {
+        let fail = |done, error| RunFailure {
+            done,
+            at: format!("input {}", input.name),
+            error,
+        };
+        match source {
+            Binding::Version(r) => match refs::resolve(&store.lineage, &r) {
+                Ok(v) => {
+                    current.insert(input.name.clone(), v.clone());
+                    done.push(Done::Bound {
+                        name: input.name.clone(),
+                        version: v,
+                    });
+                }
+                Err(e) => return Err(fail(done, e)),
+            },
+            Binding::File(path) => {
+                let iopts = IngestOptions {
+                    dataset: input.name.clone(),
+                    key: input.key.clone(),
+                    reason: Some(
+                        input
+                            .why
+                            .clone()
+                            .unwrap_or_else(|| "raw input of a plan".to_string()),
+                    ),
+                    delimiter: input.delimiter.as_ref().and_then(|d| d.bytes().next()),
+                    has_header: input.header,
+                    encoding: input.encoding.clone(),
+                    null_tokens: input.null_tokens.clone(),
+                    agent: opts.agent.clone(),
+                };
+                match intake::ingest(store, &path, &iopts) {
+                    Ok(outcome) => {
+                        let v = match &outcome {
+                            IngestOutcome::Recorded { version, .. }
+                            | IngestOutcome::Unchanged { version } => version.clone(),
+                        };
+                        let differs_from = input
+                            .hash
+                            .clone()
+                            .filter(|h| !h.eq_ignore_ascii_case(&v.hash));
+                        current.insert(input.name.clone(), v);
+                        done.push(Done::TookIn {
+                            name: input.name.clone(),
+                            path,
+                            outcome: Box::new(outcome),
+                            differs_from,
+                        });
+                    }
+                    Err(e) => return Err(fail(done, e)),
+                }
+            }
+        }
+    }
+    let mut failed_checks = 0;
+    for (i, step) in plan.steps.iter().enumerate() {
+        let at = format!("step {} ({})", i + 1, step.describe());
+        match run_step(store, step, i + 1, &mut current, opts) {
+            Ok(d) => {
+                if let Done::Checked { report, gate, .. } = &d {
+                    if !report.passed {
+                        if *gate {
+                            let failing: Vec<String> = report
+                                .results
+                                .iter()
+                                .filter(|r| !r.passed)
+                                .map(|r| {
+                                    format!(
+                                        "{} ({} {})",
+                                        rule_summary(&r.rule),
+                                        r.n_failing,
+                                        if r.n_failing == 1 { "row" } else { "rows" }
+                                    )
+                                })
+                                .collect();
+                            let error = Error::from(ErrorKind::Data(format!(
+                                "the gate on {} failed: {}; the results are recorded on the version (`sluice show {}`)",
+                                report.version,
+                                failing.join(", "),
+                                report.version
+                            )));
+                            done.push(d);
+                            return Err(RunFailure { done, at, error });
+                        }
+                        failed_checks += 1;
+                    }
+                }
+                done.push(d);
+            }
+            Err(error) => return Err(RunFailure { done, at, error }),
+        }
+    }
+    Ok(RunReport {
+        done,
+        failed_checks,
+    })
+}
+
+/// A rule in a few words, for messages.
+pub fn rule_summary(rule: &Rule) -> String {
+    match rule {
+        Rule::NotBlank { columns } => format!("not_blank {}", columns.join(",")),
+        Rule::Unique { columns } => format!("unique {}", columns.join(",")),
+        Rule::Range { column, .. } => format!("range {column}"),
+        Rule::Length { column, .. } => format!("length {column}"),
+        Rule::Pattern { column, .. } => format!("pattern {column}"),
+        Rule::Allowed { column, .. } => format!("allowed {column}"),
+    }
+}
+
+/// Decides where each input's data comes from, and checks every name the steps use, before
+/// anything is recorded.
+fn plan_sources(store: &Store, plan: &Plan, opts: &RunOptions) -> Result<Vec<Binding>> {
+    for (name, _) in &opts.bindings {
+        if !plan.inputs.iter().any(|i| &i.name == name) {
+            let known: Vec<&str> = plan.inputs.iter().map(|i| i.name.as_str()).collect();
+            return Err(Error::usage(format!(
+                "--input {name}=...: the plan has no input named \"{name}\"; its inputs are: {}",
+                if known.is_empty() {
+                    "(none)".to_string()
+                } else {
+                    known.join(", ")
+                }
+            )));
+        }
+    }
+    let mut sources = Vec::new();
+    for input in &plan.inputs {
+        let chosen = opts
+            .bindings
+            .iter()
+            .rev()
+            .find(|(n, _)| n == &input.name)
+            .map(|(_, b)| b.clone());
+        let source = match (chosen, &input.file) {
+            (Some(Binding::File(p)), _) => Binding::File(p),
+            (Some(Binding::Version(r)), _) => {
+                refs::resolve(&store.lineage, &r)?;
+                Binding::Version(r)
+            }
+            (None, Some(f)) => Binding::File(opts.plan_dir.join(f)),
+            (None, None) => {
+                return Err(Error::usage(format!(
+                "plan input \"{}\" names no file; give one with --input {}=FILE or --input {}=REF",
+                input.name, input.name, input.name
+            )))
+            }
+        };
+        if let Binding::File(p) = &source {
+            if !p.is_file() {
+                return Err(Error::usage(format!(
+                    "plan input \"{}\": {} is not a file; give another with --input {}=FILE",
+                    input.name,
+                    p.display(),
+                    input.name
+                )));
+            }
+        }
+        sources.push(source);
+    }
+    // Every name a step reads must be an input, the output of an earlier step, or a version
+    // the store already holds.
+    let mut known: BTreeSet<String> = plan.inputs.iter().map(|i| i.name.clone()).collect();
+    for (i, step) in plan.steps.iter().enumerate() {
+        let mut reads = vec![step.on.as_str()];
+        if let Some(op) = &step.apply {
+            reads.extend(other_input(op));
+        }
+        for name in reads {
+            if !known.contains(name) {
+                refs::resolve(&store.lineage, name).map_err(|e| {
+                    Error::usage(format!(
+                        "step {} ({}) reads \"{name}\", which is neither an input of the plan, nor made by an earlier step, nor in the store ({e})",
+                        i + 1,
+                        step.describe()
+                    ))
+                })?;
+            }
+        }
+        if step.apply.is_some() {
+            known.insert(output_name(store, step)?);
+        }
+    }
+    Ok(sources)
+}
+
+/// The reference an operation reads besides its input (a mapping or lookup table, the other
+/// source of an append).
+fn other_input(op: &Operation) -> Option<&str> {
+    match op {
+        Operation::Map { table, .. } | Operation::Lookup { table, .. } => Some(table),
+        Operation::Append { other, .. } => Some(other),
+        _ => None,
+    }
+}
+
+fn with_other_input(op: &Operation, reference: String) -> Operation {
+    let mut op = op.clone();
+    match &mut op {
+        Operation::Map { table, .. } | Operation::Lookup { table, .. } => *table = reference,
+        Operation::Append { other, .. } => *other = reference,
+        _ => {}
+    }
+    op
+}
+
+/// The dataset a step's output is recorded in: `as`, else the dataset `on` names.
+fn output_name(store: &Store, step: &PlanStep) -> Result<String> {
+    if let Some(n) = &step.output {
+        return Ok(n.clone());
+    }
+    Ok(match refs::resolve(&store.lineage, &step.on) {
+        // A reference to a stored version (`orders@2`, a hash) writes to its dataset; a bare
+        // name is the dataset itself.
+        Ok(v) if v.dataset != step.on => v.dataset,
+        _ => step.on.clone(),
+    })
+}
+
+fn run_step(
+    store: &mut Store,
+    step: &PlanStep,
+    number: usize,
+    current: &mut BTreeMap<String, Version>,
+    opts: &RunOptions,
+) -> Result<Done> {
+    let resolve =
+        |store: &Store, name: &str, current: &BTreeMap<String, Version>| match current.get(name) {
+            Some(v) => Ok(v.clone()),
+            None => refs::resolve(&store.lineage, name),
+        };
+    let input = resolve(store, &step.on, current)?;
+    if let Some(rules) = &step.check {
+        let report = checks::check(store, &input.label(), rules, step.gate, &opts.agent)?;
+        return Ok(Done::Checked {
+            step: number,
+            gate: step.gate,
+            report,
+        });
+    }
+    let Some(op) = &step.apply else {
+        return Err(Error::usage(format!(
+            "step {number} holds neither \"apply\" nor \"check\""
+        )));
+    };
+    // Names are pinned to exact versions (`name@seq`), so a step reads what this run made.
+    let op = match other_input(op) {
+        Some(name) => with_other_input(op, resolve(store, name, current)?.label()),
+        None => op.clone(),
+    };
+    let dataset = match &step.output {
+        Some(n) => n.clone(),
+        None if current.contains_key(&step.on) => step.on.clone(),
+        None => input.dataset.clone(),
+    };
+    let aopts = ApplyOptions {
+        op: op.clone(),
+        reason: step.why.clone().unwrap_or_default(),
+        output_dataset: Some(dataset.clone()),
+        agent: opts.agent.clone(),
+        map_table_file: None,
+    };
+    let outcome = apply::apply(store, &input.label(), &aopts)?;
+    let version = match &outcome {
+        ApplyOutcome::Recorded { version, .. } | ApplyOutcome::Unchanged { version, .. } => {
+            version.clone()
+        }
+    };
+    current.insert(dataset, version);
+    Ok(Done::Applied {
+        step: number,
+        op,
+        outcome: Box::new(outcome),
+    })
+}
+
+/// Writes the plan that produced `reference` from its raw inputs: each intake on its way
+/// becomes an input (its file path made relative to `base_dir` when it lies under it), each
+/// built-in step an `apply` step with its recorded parameters and reason, and each check
+/// recorded on a version of the way a `check` step right after the step that made it.
+/// Histories a plan cannot express are refused with the reason: outside commands and hand
+/// edits, and branches (a dataset whose steps read two of its versions side by side).
+pub fn export(store: &Store, reference: &str, base_dir: &Path) -> Result<Plan> {
+    let target = refs::resolve(&store.lineage, reference)?;
+    // Every step on the way, found by walking inputs back to intakes.
+    let mut todo = vec![target.step_id];
+    let mut seen = BTreeSet::new();
+    while let Some(id) = todo.pop() {
+        if !seen.insert(id) {
+            continue;
+        }
+        for (_, v) in store.lineage.step_input_versions(id)? {
+            todo.push(v.step_id);
+        }
+    }
+    let cannot =
+        |what: String| Error::usage(format!("cannot write {} as a plan: {what}", target.label()));
+    let mut plan = Plan {
+        sluice_plan: PLAN_FORMAT,
+        description: Some(format!(
+            "the steps that made {} ({}) from its raw inputs",
+            target.label(),
+            &target.hash[..12]
+        )),
+        inputs: Vec::new(),
+        steps: Vec::new(),
+    };
+    // Which version each dataset name stands for at this point of the plan.
+    let mut current: BTreeMap<String, i64> = BTreeMap::new();
+    let name_of = |current: &BTreeMap<String, i64>, v: &Version| -> Result<String> {
+        if current.get(&v.dataset) == Some(&v.id) {
+            Ok(v.dataset.clone())
+        } else {
+            Err(cannot(format!(
+                "its history reads {} after a later version of {} was made (a branch); export a version on one line of history",
+                v.label(),
+                v.dataset
+            )))
+        }
+    };
+    for id in seen {
+        let step = store
+            .lineage
+            .step(id)?
+            .ok_or_else(|| cannot(format!("step {id} is missing from the database")))?;
+        let outputs = store.lineage.step_outputs(id)?;
+        match step.kind {
+            StepKind::Ingest => {
+                for v in &outputs {
+                    if plan.inputs.iter().any(|i| i.name == v.dataset) {
+                        return Err(cannot(format!(
+                            "its history takes in {} twice (as {} and later again); export a version on one line of history",
+                            v.dataset,
+                            v.label()
+                        )));
+                    }
+                    plan.inputs.push(input_of(&step, v, base_dir));
+                    current.insert(v.dataset.clone(), v.id);
+                }
+            }
+            StepKind::Operation => {
+                let op: Operation = serde_json::from_value(step.params.clone()).map_err(|e| {
+                    cannot(format!(
+                        "step {id} holds parameters this build cannot read ({e})"
+                    ))
+                })?;
+                let inputs = store.lineage.step_input_versions(id)?;
+                let Some((_, main)) = inputs.iter().find(|(role, _)| role == "input") else {
+                    return Err(cannot(format!("step {id} records no input")));
+                };
+                let on = name_of(&current, main)?;
+                let op = match inputs.iter().find(|(role, _)| role != "input") {
+                    Some((_, other)) => with_other_input(&op, name_of(&current, other)?),
+                    None => op,
+                };
+                let Some(out) = outputs.first() else {
+                    return Err(cannot(format!("step {id} records no output")));
+                };
+                plan.steps.push(PlanStep {
+                    output: (out.dataset != on).then(|| out.dataset.clone()),
+                    on,
+                    apply: Some(op),
+                    check: None,
+                    gate: false,
+                    why: step.reason.clone(),
+                });
+                current.insert(out.dataset.clone(), out.id);
+            }
+            other => {
+                return Err(cannot(format!(
+                    "step {id} is a {} step, which a plan cannot express",
+                    other.as_str().replace('_', " ")
+                )))
+            }
+        }
+        for v in &outputs {
+            plan.steps.extend(checks_on(store, v)?);
+        }
+    }
+    Ok(plan)
+}
+
+/// The checks recorded on a version, one plan step per check command (the rules recorded
+/// together by one agent at one time).
+fn checks_on(store: &Store, v: &Version) -> Result<Vec<PlanStep>> {
+    let mut steps: Vec<PlanStep> = Vec::new();
+    let mut last: Option<(String, String)> = None;
+    for (rule, _, _, agent, at, gate) in store.lineage.check_results(v.id)? {
+        let rule: Rule = serde_json::from_str(&rule).map_err(|e| {
+            Error::from(ErrorKind::Database(format!(
+                "a check on {} holds a rule this build cannot read ({e}); run `sluice verify`",
+                v.label()
+            )))
+        })?;
+        let group = (agent, at);
+        match steps.last_mut() {
+            Some(s) if last.as_ref() == Some(&group) => {
+                if let Some(rules) = s.check.as_mut() {
+                    rules.push(rule);
+                }
+            }
+            _ => steps.push(PlanStep {
+                on: v.dataset.clone(),
+                apply: None,
+                check: Some(vec![rule]),
+                gate,
+                why: None,
+                output: None,
+            }),
+        }
+        last = Some(group);
+    }
+    Ok(steps)
+}
+
+fn input_of(step: &crate::model::Step, v: &Version, base_dir: &Path) -> PlanInput {
+    let p = &step.params;
+    let file = step.source.as_ref().map(|s| {
+        let abs = Path::new(&s.absolute_path);
+        let rel = abs.strip_prefix(base_dir).unwrap_or(abs);
+        rel.display().to_string()
+    });
+    let strings = |key: &str| -> Option<Vec<String>> {
+        p.get(key)?.as_array().map(|a| {
+            a.iter()
+                .filter_map(|x| x.as_str().map(str::to_string))
+                .collect()
+        })
+    };
+    let detected = p
+        .get("delimiter_detected")
+        .and_then(|d| d.as_bool())
+        .unwrap_or(true);
+    PlanInput {
+        name: v.dataset.clone(),
+        file,
+        why: step.reason.clone(),
+        key: strings("key"),
+        delimiter: (!detected).then(|| v.dialect.delimiter.clone()),
+        header: v.dialect.has_header,
+        encoding: Some(v.dialect.encoding.clone()).filter(|e| e != "utf-8"),
+        null_tokens: strings("null_tokens").unwrap_or_default(),
+        hash: Some(v.hash.clone()),
+    }
+}
