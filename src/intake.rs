@@ -307,6 +307,7 @@ impl PreparedIngest {
             lineage: LineageKind::None,
             source: Some(&self.source),
             inputs: Vec::new(),
+            provenance: None,
         })?;
         let (version_id, seq) = tx.insert_version(&NewVersion {
             dataset: &opts.dataset,

@@ -42,6 +42,7 @@ pub mod intake;
 pub mod model;
 pub mod ops;
 pub mod plan;
+pub mod provenance;
 pub mod refs;
 pub mod store;
 pub mod table;

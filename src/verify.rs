@@ -128,6 +128,60 @@ pub fn verify(store: &Store) -> Result<VerifyReport> {
         }
     }
 
+    // Each step's provenance object reads back and points only at rows its versions have.
+    for v in &versions {
+        let Some(hex) = store.lineage.step_provenance(v.step_id)? else {
+            continue;
+        };
+        if damaged.contains(&hex) {
+            continue;
+        }
+        let Ok(h) = hex.parse::<Hash>() else {
+            continue;
+        };
+        let decoded = store
+            .objects
+            .read_all(&h)
+            .and_then(|data| crate::provenance::decode(&data, &hex));
+        let inputs = store.lineage.step_input_versions(v.step_id)?;
+        let input_rows = inputs
+            .iter()
+            .find(|(role, _)| role == "input")
+            .map(|(_, i)| i.n_rows);
+        match decoded {
+            Ok(d) => {
+                let past_output = d
+                    .changes
+                    .iter()
+                    .filter(|(name, rows)| {
+                        !v.header.contains(name) || rows.last().is_some_and(|&r| r >= v.n_rows)
+                    })
+                    .count();
+                let past_input = d
+                    .drops
+                    .last()
+                    .is_some_and(|dr| input_rows.is_none_or(|n| dr.row_idx >= n));
+                let bad_runs = d.runs.iter().any(|(position, set)| {
+                    let rows_in = inputs.get(*position as usize).map(|(_, i)| i.n_rows);
+                    set.iter().any(|r| {
+                        r.out_start + r.len > v.n_rows
+                            || rows_in.is_none_or(|n| r.in_start + r.len > n)
+                    })
+                });
+                if past_output > 0 || past_input || bad_runs {
+                    problems.push(problem(
+                        "provenance",
+                        v.label(),
+                        format!(
+                            "the provenance object {hex} names cells or rows the versions of its step do not have"
+                        ),
+                    ));
+                }
+            }
+            Err(e) => problems.push(problem("provenance", v.label(), e.to_string())),
+        }
+    }
+
     let entries = store.lineage.audit_entries()?;
     for p in audit::chain_problems(&entries) {
         let subject = p.split(':').next().unwrap_or("audit").to_string();

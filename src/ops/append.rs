@@ -97,8 +97,8 @@ pub fn run(store: &mut Store, input: Version, opts: &ApplyOptions) -> Result<App
     };
     let prov = Provenance {
         runs: run(0, n_ours),
-        changes: Vec::new(),
-        drops: Vec::new(),
+        changes: Default::default(),
+        drops: Default::default(),
         notes: Vec::new(),
         sources: Vec::new(),
         table: None,

@@ -26,7 +26,8 @@ use crate::error::{Error, ErrorKind, Result};
 use crate::hash::Hash;
 use crate::intake::{self, validate_dataset_name, IngestOptions, Prepared, PreparedIngest};
 use crate::model::Dialect;
-use crate::model::{Agent, CellChange, Drop, LineageKind, RowRun, StepKind, Version};
+use crate::model::{Agent, LineageKind, RowRun, StepKind, Version};
+use crate::provenance::{ChangeLog, DropLog};
 use crate::refs;
 use crate::store::{NewStep, NewVersion, Store};
 use crate::table::write::{canonical_dialect, CanonicalWriter, Written};
@@ -202,8 +203,8 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
 
     let mut writer =
         CanonicalWriter::new(&store.objects, &out_header, &input.null_tokens).map_err(store_io)?;
-    let mut changes: Vec<CellChange> = Vec::new();
-    let mut drops: Vec<Drop> = Vec::new();
+    let mut changes = ChangeLog::new(columns.len());
+    let mut drops = DropLog::default();
     let mut runs: Vec<RowRun> = Vec::new();
     let mut changed_per_column = vec![0u64; columns.len()];
     let mut new_values: Vec<Option<Vec<u8>>> = vec![None; columns.len()];
@@ -218,8 +219,7 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
     let mut failures: Vec<(u64, String, String, &'static str)> = Vec::new();
     let mut out_row = 0u64;
     each_input_row(store, &input, |in_row, r| {
-        if let Some(drop) = chooser.decide(in_row, &r) {
-            drops.push(drop);
+        if chooser.drops(in_row, &r, &mut drops) {
             return Ok(());
         }
         match runs.last_mut() {
@@ -326,12 +326,7 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
                 (None, op) => op.cell(text),
             };
             if let Some(new) = new {
-                changes.push(CellChange {
-                    row_idx: out_row,
-                    column: columns[o].0.clone(),
-                    old: Some(text.to_string()),
-                    new: Some(new.clone()),
-                });
+                changes.push(o, out_row);
                 changed_per_column[o] += 1;
                 *slot = Some(new.into_bytes());
             }
@@ -481,8 +476,9 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
 /// Everything a built-in step records about how its output came from its input.
 pub(super) struct Provenance {
     pub runs: Vec<RowRun>,
-    pub changes: Vec<CellChange>,
-    pub drops: Vec<Drop>,
+    /// Changed cells by output column position (of the output header).
+    pub changes: ChangeLog,
+    pub drops: DropLog,
     pub notes: Vec<(u64, String, String)>,
     /// (output column, input column) where they differ.
     pub sources: Vec<(String, String)>,
@@ -531,6 +527,26 @@ pub(super) fn record(
     }
     let (table_hash, n_bytes) = written.table.finish().map_err(store_io)?;
     let (index_hash, index_bytes) = written.index.finish().map_err(store_io)?;
+    // The row maps, changed cells and dropped rows, as one object (none when there are none).
+    // Run sets name their input by its position among the step's inputs, as recorded below:
+    // the input first, then a table, then an append's other source.
+    let other_position = 1 + u32::from(prov.table.is_some());
+    let mut run_sets: Vec<(u32, &[RowRun])> = Vec::new();
+    if !prov.runs.is_empty() {
+        run_sets.push((0, &prov.runs));
+    }
+    if let Some(o) = prov.other.as_ref().filter(|o| !o.runs.is_empty()) {
+        run_sets.push((other_position, &o.runs));
+    }
+    let provenance = if prov.changes.is_empty() && prov.drops.is_empty() && run_sets.is_empty() {
+        None
+    } else {
+        let bytes = crate::provenance::encode(out_header, &prov.changes, &prov.drops, &run_sets);
+        let mut w = store.objects.writer().map_err(store_io)?;
+        w.write(&bytes).map_err(store_io)?;
+        let (hash, n) = w.finish().map_err(store_io)?;
+        Some((hash.hex(), n))
+    };
     let ended_at = clock::now_rfc3339();
     let n_rows = written.n_rows;
     let table_hex = table_hash.hex();
@@ -554,7 +570,11 @@ pub(super) fn record(
             },
             _ => None,
         };
+        if let Some((hash, n)) = &provenance {
+            tx.insert_object(hash, *n, "blob", &ended_at)?;
+        }
         let step_id = tx.insert_step(&NewStep {
+            provenance: provenance.as_ref().map(|(h, _)| h.as_str()),
             kind: StepKind::Operation,
             operation: Some(opts.op.name()),
             params: opts.op.params(),
@@ -592,21 +612,12 @@ pub(super) fn record(
             profiles: &written.profiles,
             created_at: &ended_at,
         })?;
-        tx.insert_provenance(
-            step_id,
-            version_id,
-            input.id,
-            &prov.runs,
-            &prov.changes,
-            &prov.drops,
-        )?;
         tx.insert_column_sources(step_id, version_id, input.id, &prov.sources)?;
         if let (Some(t), Some((_, sources))) = (table_id, &prov.table) {
             tx.insert_column_sources(step_id, version_id, t, sources)?;
         }
         tx.insert_cell_notes(step_id, version_id, &prov.notes)?;
         if let Some(o) = &prov.other {
-            tx.insert_provenance(step_id, version_id, o.id, &o.runs, &[], &[])?;
             tx.insert_column_sources(step_id, version_id, o.id, &o.sources)?;
         }
         tx.audit(
@@ -620,6 +631,7 @@ pub(super) fn record(
                 "step": step_id,
                 "cells_changed": prov.changes.len(),
                 "rows_dropped": prov.drops.len(),
+                "provenance": provenance.as_ref().map(|(h, _)| h),
                 "cells_noted": prov.notes.len(),
             }),
             &ended_at,
@@ -1099,6 +1111,8 @@ enum RowChooser {
         predicate: Predicate,
         keep_when_true: bool,
         null_tokens: Vec<Vec<u8>>,
+        /// What each removed row records as its reason.
+        reason: String,
     },
     /// `dedupe`: the first (or last) row of every key, by the key's hash.
     Dedupe {
@@ -1122,11 +1136,18 @@ impl RowChooser {
         };
         let (key, keep) = match op {
             Operation::KeepRows { predicate } | Operation::DropRows { predicate } => {
+                let predicate = Predicate::parse(predicate, &input.header)?;
+                let keep_when_true = matches!(op, Operation::KeepRows { .. });
                 return Ok(RowChooser::Filter {
-                    predicate: Predicate::parse(predicate, &input.header)?,
-                    keep_when_true: matches!(op, Operation::KeepRows { .. }),
+                    reason: if keep_when_true {
+                        format!("did not match the keep predicate: {}", predicate.text())
+                    } else {
+                        format!("matched the drop predicate: {}", predicate.text())
+                    },
+                    predicate,
+                    keep_when_true,
                     null_tokens: null_tokens(),
-                })
+                });
             }
             Operation::Dedupe { key, keep } => (key, keep),
             _ => return Ok(RowChooser::All),
@@ -1151,25 +1172,23 @@ impl RowChooser {
         })
     }
 
-    /// `Some(drop)` when input row `row` is to be removed.
-    fn decide(&mut self, row: u64, r: &RawRecord<'_>) -> Option<Drop> {
+    /// Whether input row `row` is to be removed; a removed row is recorded in `log` with its
+    /// reason.
+    fn drops(&mut self, row: u64, r: &RawRecord<'_>, log: &mut DropLog) -> bool {
         if let RowChooser::Filter {
             predicate,
             keep_when_true,
             null_tokens,
+            reason,
         } = self
         {
             let blank = |v: &[u8]| v.is_empty() || null_tokens.iter().any(|t| t.as_slice() == v);
             let holds = predicate.holds(r, &blank);
-            return (holds != *keep_when_true).then(|| Drop {
-                row_idx: row,
-                reason: if *keep_when_true {
-                    format!("did not match the keep predicate: {}", predicate.text())
-                } else {
-                    format!("matched the drop predicate: {}", predicate.text())
-                },
-                duplicate_of: None,
-            });
+            if holds != *keep_when_true {
+                log.push(row, reason, None);
+                return true;
+            }
+            return false;
         }
         let RowChooser::Dedupe {
             cols,
@@ -1178,7 +1197,7 @@ impl RowChooser {
             what,
         } = self
         else {
-            return None;
+            return false;
         };
         let k = row_key(r, cols);
         let kept = if *keep_last {
@@ -1186,10 +1205,14 @@ impl RowChooser {
         } else {
             *chosen.entry(k).or_insert(row)
         };
-        (kept != row).then(|| Drop {
-            row_idx: row,
-            reason: format!("duplicate of data row {} ({what})", kept + 1),
-            duplicate_of: Some(kept),
-        })
+        if kept == row {
+            return false;
+        }
+        log.push(
+            row,
+            &format!("duplicate of data row {} ({what})", kept + 1),
+            Some(kept),
+        );
+        true
     }
 }

@@ -248,8 +248,8 @@ pub fn run(store: &mut Store, input: Version, opts: &ApplyOptions) -> Result<App
         .collect();
     let prov = Provenance {
         runs: Vec::new(),
-        changes: Vec::new(),
-        drops: Vec::new(),
+        changes: Default::default(),
+        drops: Default::default(),
         notes: Vec::new(),
         sources,
         table: None,

@@ -20,6 +20,7 @@ const MIGRATIONS: &[(i64, &str)] = &[
     (1, include_str!("../../schema/0001_lineage.sql")),
     (2, include_str!("../../schema/0002_cell_notes.sql")),
     (3, include_str!("../../schema/0003_check_gate.sql")),
+    (4, include_str!("../../schema/0004_step_provenance.sql")),
 ];
 
 /// The schema version this build writes.
@@ -239,6 +240,19 @@ impl Lineage {
             out.push((role, v));
         }
         Ok(out)
+    }
+
+    /// The hash of a step's provenance object, if it has one (see `crate::provenance`).
+    pub fn step_provenance(&self, step_id: i64) -> Result<Option<String>> {
+        self.conn
+            .query_row(
+                "SELECT provenance FROM steps WHERE id = ?1",
+                params![step_id],
+                |r| r.get::<_, Option<String>>(0),
+            )
+            .optional()
+            .map(Option::flatten)
+            .map_err(db_err)
     }
 
     /// The versions a step produced, in order.
@@ -730,6 +744,9 @@ pub struct NewStep<'a> {
     pub source: Option<&'a SourceFile>,
     /// (version id, role) of each input, in order.
     pub inputs: Vec<(i64, &'a str)>,
+    /// The hash of the step's provenance object (changed cells, dropped rows), when it has one;
+    /// the object must be recorded with `insert_object` first.
+    pub provenance: Option<&'a str>,
 }
 
 /// A version to record.
@@ -782,8 +799,8 @@ impl Tx<'_> {
         self.tx
             .execute(
                 "INSERT INTO steps (kind, operation, params, agent_id, tool_version, reason,
-                    started_at, ended_at, rows_in, rows_out, lineage, source)
-                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12)",
+                    started_at, ended_at, rows_in, rows_out, lineage, source, provenance)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13)",
                 params![
                     s.kind.as_str(),
                     s.operation,
@@ -797,6 +814,7 @@ impl Tx<'_> {
                     s.rows_out.map(|v| v as i64),
                     s.lineage.as_str(),
                     source,
+                    s.provenance,
                 ],
             )
             .map_err(db_err)?;
@@ -924,75 +942,6 @@ impl Tx<'_> {
 
     /// Records the provenance of one output version: its row map, the cells changed and the
     /// input rows dropped.
-    pub fn insert_provenance(
-        &mut self,
-        step_id: i64,
-        output_id: i64,
-        input_id: i64,
-        runs: &[RowRun],
-        changes: &[CellChange],
-        drops: &[Drop],
-    ) -> Result<()> {
-        {
-            let mut st = self
-                .tx
-                .prepare_cached(
-                    "INSERT INTO row_runs (step_id, output_id, input_id, out_start, in_start, len)
-                     VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
-                )
-                .map_err(db_err)?;
-            for r in runs {
-                st.execute(params![
-                    step_id,
-                    output_id,
-                    input_id,
-                    r.out_start as i64,
-                    r.in_start as i64,
-                    r.len as i64
-                ])
-                .map_err(db_err)?;
-            }
-        }
-        {
-            let mut st = self
-                .tx
-                .prepare_cached(
-                    "INSERT INTO cell_changes (step_id, output_id, row_idx, column_name, old_value, new_value)
-                     VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
-                )
-                .map_err(db_err)?;
-            for c in changes {
-                st.execute(params![
-                    step_id,
-                    output_id,
-                    c.row_idx as i64,
-                    c.column,
-                    c.old,
-                    c.new
-                ])
-                .map_err(db_err)?;
-            }
-        }
-        let mut st = self
-            .tx
-            .prepare_cached(
-                "INSERT INTO drops (step_id, input_id, row_idx, reason, duplicate_of)
-                 VALUES (?1, ?2, ?3, ?4, ?5)",
-            )
-            .map_err(db_err)?;
-        for d in drops {
-            st.execute(params![
-                step_id,
-                input_id,
-                d.row_idx as i64,
-                d.reason,
-                d.duplicate_of.map(|v| v as i64)
-            ])
-            .map_err(db_err)?;
-        }
-        Ok(())
-    }
-
     /// Records the results of checking rules on version `version_id`: (rule as canonical
     /// JSON, passed, failing row count, first failing rows as JSON).
     pub fn insert_check_results(

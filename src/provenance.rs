@@ -1,0 +1,608 @@
+//! The row- and cell-level provenance of a built-in step, kept compact: its row map (as runs),
+//! which output cells it changed and which input rows it dropped, and why. It is stored as one immutable object per
+//! step (named by its BLAKE3 hash like every object, so `verify` re-hashes it and any edit is
+//! found), and the old and new values of a changed cell are read back from the step's input and
+//! output versions, which are immutable too: the old value is the input cell the row map points
+//! at, the new value the output cell. So a step that changes 600,000 cells stores about one or
+//! two bytes per cell instead of the values twice, and provenance still grows with what
+//! changed, never with the rows left alone.
+//!
+//! Format (all integers LEB128 varints unless said):
+//!
+//! ```text
+//! "SLPV" u32-le format 1
+//! n_columns, then per column with changes: name (length, UTF-8 bytes), count, and the
+//!   0-based output rows in increasing order as differences (the first from 0)
+//! n_reasons, then each reason text (length, UTF-8 bytes)
+//! n_drops, then per dropped input row, in increasing order: the row as a difference from the
+//!   previous one, its reason's number, and the row it duplicated plus one (0 for none)
+//! n_run_sets, then per input the runs were taken from: its position among the step's inputs,
+//!   n_runs, and per run in output order: out_start as a difference from the previous run's
+//!   end, in_start as a zigzag-encoded difference from the previous run's input end, len
+//! ```
+//!
+//! Steps recorded by schema 3 and earlier kept their row maps, cell changes and drops in the
+//! database's `row_runs`, `cell_changes` and `drops` tables; the readers here return those too.
+
+use std::collections::HashMap;
+
+use crate::error::{Error, ErrorKind, Result};
+use crate::model::{CellChange, Drop, RowRun, Version};
+use crate::store::Store;
+
+const MAGIC: &[u8; 4] = b"SLPV";
+const FORMAT: u32 = 1;
+
+/// The cells a step changed, as output rows per output column, gathered while it runs.
+#[derive(Debug, Default, Clone)]
+pub struct ChangeLog {
+    /// Per output column (by position): the output rows changed, increasing.
+    rows: Vec<Vec<u64>>,
+}
+
+impl ChangeLog {
+    pub fn new(n_columns: usize) -> Self {
+        ChangeLog {
+            rows: vec![Vec::new(); n_columns],
+        }
+    }
+
+    /// Records that output row `row` of column `column` was changed. Rows come in order.
+    pub fn push(&mut self, column: usize, row: u64) {
+        if column >= self.rows.len() {
+            self.rows.resize(column + 1, Vec::new());
+        }
+        self.rows[column].push(row);
+    }
+
+    pub fn len(&self) -> usize {
+        self.rows.iter().map(Vec::len).sum()
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.rows.iter().all(Vec::is_empty)
+    }
+}
+
+/// The input rows a step dropped, with their reasons kept once each.
+#[derive(Debug, Default, Clone)]
+pub struct DropLog {
+    reasons: Vec<String>,
+    index: HashMap<String, u32>,
+    /// (input row, reason number, row it duplicated).
+    entries: Vec<(u64, u32, Option<u64>)>,
+}
+
+impl DropLog {
+    pub fn push(&mut self, row: u64, reason: &str, duplicate_of: Option<u64>) {
+        let n = match self.index.get(reason) {
+            Some(&n) => n,
+            None => {
+                let n = self.reasons.len() as u32;
+                self.reasons.push(reason.to_string());
+                self.index.insert(reason.to_string(), n);
+                n
+            }
+        };
+        self.entries.push((row, n, duplicate_of));
+    }
+
+    pub fn len(&self) -> usize {
+        self.entries.len()
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.entries.is_empty()
+    }
+
+    /// Every drop, in order of input row.
+    pub fn drops(&self) -> Vec<Drop> {
+        self.entries
+            .iter()
+            .map(|&(row, n, dup)| Drop {
+                row_idx: row,
+                reason: self.reasons[n as usize].clone(),
+                duplicate_of: dup,
+            })
+            .collect()
+    }
+}
+
+fn put_varint(out: &mut Vec<u8>, mut v: u64) {
+    while v >= 0x80 {
+        out.push((v as u8) | 0x80);
+        v >>= 7;
+    }
+    out.push(v as u8);
+}
+
+fn put_text(out: &mut Vec<u8>, s: &str) {
+    put_varint(out, s.len() as u64);
+    out.extend_from_slice(s.as_bytes());
+}
+
+/// The object's bytes for a step's changes (named by `header`, the output columns), drops and
+/// row maps (each with the position of its input among the step's inputs).
+pub fn encode(
+    header: &[String],
+    changes: &ChangeLog,
+    drops: &DropLog,
+    runs: &[(u32, &[RowRun])],
+) -> Vec<u8> {
+    let mut out = Vec::with_capacity(16 + changes.len() * 2 + drops.len() * 3);
+    out.extend_from_slice(MAGIC);
+    out.extend_from_slice(&FORMAT.to_le_bytes());
+    let columns: Vec<(usize, &Vec<u64>)> = changes
+        .rows
+        .iter()
+        .enumerate()
+        .filter(|(_, r)| !r.is_empty())
+        .collect();
+    put_varint(&mut out, columns.len() as u64);
+    for (c, rows) in columns {
+        put_text(&mut out, header.get(c).map(String::as_str).unwrap_or(""));
+        put_varint(&mut out, rows.len() as u64);
+        let mut prev = 0;
+        for &r in rows {
+            put_varint(&mut out, r - prev);
+            prev = r;
+        }
+    }
+    put_varint(&mut out, drops.reasons.len() as u64);
+    for r in &drops.reasons {
+        put_text(&mut out, r);
+    }
+    put_varint(&mut out, drops.entries.len() as u64);
+    let mut prev = 0;
+    for &(row, n, dup) in &drops.entries {
+        put_varint(&mut out, row - prev);
+        prev = row;
+        put_varint(&mut out, u64::from(n));
+        put_varint(&mut out, dup.map_or(0, |d| d + 1));
+    }
+    put_varint(&mut out, runs.len() as u64);
+    for (position, set) in runs {
+        put_varint(&mut out, u64::from(*position));
+        put_varint(&mut out, set.len() as u64);
+        let (mut out_end, mut in_end) = (0u64, 0u64);
+        for r in set.iter() {
+            put_varint(&mut out, r.out_start - out_end);
+            let d = r.in_start as i64 - in_end as i64;
+            put_varint(&mut out, ((d << 1) ^ (d >> 63)) as u64);
+            put_varint(&mut out, r.len);
+            out_end = r.out_start + r.len;
+            in_end = r.in_start + r.len;
+        }
+    }
+    out
+}
+
+/// A decoded provenance object.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Decoded {
+    /// (output column name, changed output rows in increasing order).
+    pub changes: Vec<(String, Vec<u64>)>,
+    pub drops: Vec<Drop>,
+    /// (position of the input among the step's inputs, its runs in output order).
+    pub runs: Vec<(u32, Vec<RowRun>)>,
+}
+
+struct Reader<'a> {
+    bytes: &'a [u8],
+    at: usize,
+    what: &'a str,
+}
+
+impl Reader<'_> {
+    fn bad(&self, why: &str) -> Error {
+        ErrorKind::Database(format!(
+            "the provenance object {} is malformed at byte {} ({why}); run `sluice verify`",
+            self.what, self.at
+        ))
+        .into()
+    }
+
+    fn varint(&mut self) -> Result<u64> {
+        let mut v = 0u64;
+        for shift in (0..64).step_by(7) {
+            let b = *self
+                .bytes
+                .get(self.at)
+                .ok_or_else(|| self.bad("it ends early"))?;
+            self.at += 1;
+            v |= u64::from(b & 0x7f) << shift;
+            if b & 0x80 == 0 {
+                return Ok(v);
+            }
+        }
+        Err(self.bad("a number is too long"))
+    }
+
+    fn text(&mut self) -> Result<String> {
+        let n = self.varint()? as usize;
+        let end = self
+            .at
+            .checked_add(n)
+            .filter(|&e| e <= self.bytes.len())
+            .ok_or_else(|| self.bad("a text runs past the end"))?;
+        let s = std::str::from_utf8(&self.bytes[self.at..end])
+            .map_err(|_| self.bad("a text is not UTF-8"))?
+            .to_string();
+        self.at = end;
+        Ok(s)
+    }
+
+    /// A count of items that each take at least one byte, so a damaged count cannot ask for
+    /// more memory than the object has bytes.
+    fn count(&mut self) -> Result<usize> {
+        let n = self.varint()?;
+        if n > (self.bytes.len() - self.at) as u64 {
+            return Err(self.bad("a count is larger than the object"));
+        }
+        Ok(n as usize)
+    }
+}
+
+/// Reads a provenance object; `what` names it in errors.
+pub fn decode(bytes: &[u8], what: &str) -> Result<Decoded> {
+    let mut r = Reader { bytes, at: 0, what };
+    if bytes.len() < 8 || &bytes[..4] != MAGIC {
+        return Err(r.bad("it does not start with SLPV"));
+    }
+    let format = u32::from_le_bytes([bytes[4], bytes[5], bytes[6], bytes[7]]);
+    if format != FORMAT {
+        return Err(r.bad(&format!(
+            "format {format}, this build reads {FORMAT}; upgrade sluice"
+        )));
+    }
+    r.at = 8;
+    let n_columns = r.count()?;
+    let mut changes = Vec::with_capacity(n_columns);
+    for _ in 0..n_columns {
+        let name = r.text()?;
+        let n = r.count()?;
+        let mut rows = Vec::with_capacity(n);
+        let mut prev = 0u64;
+        for i in 0..n {
+            let d = r.varint()?;
+            if i > 0 && d == 0 {
+                return Err(r.bad("a changed row is listed twice"));
+            }
+            prev = prev
+                .checked_add(d)
+                .ok_or_else(|| r.bad("a row number overflows"))?;
+            rows.push(prev);
+        }
+        changes.push((name, rows));
+    }
+    let n_reasons = r.count()?;
+    let reasons = (0..n_reasons)
+        .map(|_| r.text())
+        .collect::<Result<Vec<_>>>()?;
+    let n_drops = r.count()?;
+    let mut drops = Vec::with_capacity(n_drops);
+    let mut prev = 0u64;
+    for i in 0..n_drops {
+        let d = r.varint()?;
+        if i > 0 && d == 0 {
+            return Err(r.bad("a dropped row is listed twice"));
+        }
+        prev = prev
+            .checked_add(d)
+            .ok_or_else(|| r.bad("a row number overflows"))?;
+        let n = r.varint()? as usize;
+        let reason = reasons
+            .get(n)
+            .ok_or_else(|| r.bad("a drop names a reason that is not there"))?
+            .clone();
+        let dup = r.varint()?;
+        drops.push(Drop {
+            row_idx: prev,
+            reason,
+            duplicate_of: dup.checked_sub(1),
+        });
+    }
+    let n_sets = r.count()?;
+    let mut runs = Vec::with_capacity(n_sets);
+    for _ in 0..n_sets {
+        let position =
+            u32::try_from(r.varint()?).map_err(|_| r.bad("an input position is too large"))?;
+        let n = r.count()?;
+        let mut set = Vec::with_capacity(n);
+        let (mut out_end, mut in_end) = (0u64, 0u64);
+        for _ in 0..n {
+            let out_start = out_end
+                .checked_add(r.varint()?)
+                .ok_or_else(|| r.bad("a row number overflows"))?;
+            let z = r.varint()?;
+            let d = ((z >> 1) as i64) ^ -((z & 1) as i64);
+            let in_start = u64::try_from(in_end as i64 + d)
+                .map_err(|_| r.bad("a run starts before the first input row"))?;
+            let len = r.varint()?;
+            if len == 0 {
+                return Err(r.bad("a run of no rows"));
+            }
+            set.push(RowRun {
+                out_start,
+                in_start,
+                len,
+            });
+            out_end = out_start
+                .checked_add(len)
+                .ok_or_else(|| r.bad("a row number overflows"))?;
+            in_end = in_start
+                .checked_add(len)
+                .ok_or_else(|| r.bad("a row number overflows"))?;
+        }
+        runs.push((position, set));
+    }
+    if r.at != bytes.len() {
+        return Err(r.bad("bytes follow the last run"));
+    }
+    Ok(Decoded {
+        changes,
+        drops,
+        runs,
+    })
+}
+
+fn load(store: &Store, step_id: i64) -> Result<Option<Decoded>> {
+    let Some(hex) = store.lineage.step_provenance(step_id)? else {
+        return Ok(None);
+    };
+    let hash = hex.parse().map_err(|e| {
+        ErrorKind::Database(format!(
+            "step {step_id}: malformed provenance hash {hex}: {e}"
+        ))
+    })?;
+    let bytes = store.objects.read_all(&hash)?;
+    decode(&bytes, &hex).map(Some)
+}
+
+/// The row map of `output` from input version `input_id`, as runs in output order.
+pub fn row_runs(store: &Store, output: &Version, input_id: i64) -> Result<Vec<RowRun>> {
+    let mut out = store.lineage.row_runs(output.id, input_id)?;
+    if let Some(d) = load(store, output.step_id)? {
+        let inputs = store.lineage.step_input_versions(output.step_id)?;
+        for (position, set) in d.runs {
+            if inputs
+                .get(position as usize)
+                .is_some_and(|(_, v)| v.id == input_id)
+            {
+                out.extend(set);
+            }
+        }
+    }
+    out.sort_by_key(|r| r.out_start);
+    Ok(out)
+}
+
+/// Every input row the step dropped from input `input_id`, in order, with its reason.
+pub fn drops(store: &Store, step_id: i64, input_id: i64) -> Result<Vec<Drop>> {
+    let mut out = store.lineage.drops(step_id, input_id)?;
+    let is_main = store
+        .lineage
+        .step_input_versions(step_id)?
+        .iter()
+        .any(|(role, v)| role == "input" && v.id == input_id);
+    if is_main {
+        if let Some(d) = load(store, step_id)? {
+            out.extend(d.drops);
+        }
+    }
+    out.sort_by_key(|d| d.row_idx);
+    Ok(out)
+}
+
+/// How many cells the step that made `output` changed per column, in the object's column
+/// order, without reading any values.
+pub fn change_counts(store: &Store, output: &Version) -> Result<Vec<(String, u64)>> {
+    let mut counts: Vec<(String, u64)> = Vec::new();
+    for c in store.lineage.cell_changes(output.id)? {
+        match counts.iter_mut().find(|(n, _)| *n == c.column) {
+            Some((_, k)) => *k += 1,
+            None => counts.push((c.column, 1)),
+        }
+    }
+    if let Some(d) = load(store, output.step_id)? {
+        for (name, rows) in d.changes {
+            counts.push((name, rows.len() as u64));
+        }
+    }
+    Ok(counts)
+}
+
+/// Every cell the step that made `output` changed, ordered by row then column order, with its
+/// old value (the input cell the row map points at) and new value (the output cell).
+pub fn cell_changes(store: &Store, output: &Version) -> Result<Vec<CellChange>> {
+    let mut out = store.lineage.cell_changes(output.id)?;
+    if let Some(d) = load(store, output.step_id)? {
+        let input = store
+            .lineage
+            .step_input_versions(output.step_id)?
+            .into_iter()
+            .find(|(role, _)| role == "input")
+            .map(|(_, v)| v)
+            .ok_or_else(|| {
+                Error::from(ErrorKind::Database(format!(
+                    "the step that made {} records cell changes but no input; run `sluice verify`",
+                    output.label()
+                )))
+            })?;
+        let runs = row_runs(store, output, input.id)?;
+        out.extend(values_of(store, output, &input, &runs, &d.changes)?);
+    }
+    let order: HashMap<&str, usize> = output
+        .header
+        .iter()
+        .enumerate()
+        .map(|(i, h)| (h.as_str(), i))
+        .collect();
+    out.sort_by_key(|c| (c.row_idx, order.get(c.column.as_str()).copied()));
+    Ok(out)
+}
+
+/// The input row output row `row` came from, through the row map.
+fn input_row(runs: &[RowRun], row: u64) -> Option<u64> {
+    let i = runs.partition_point(|r| r.out_start + r.len <= row);
+    runs.get(i)
+        .filter(|r| r.out_start <= row)
+        .map(|r| r.in_start + (row - r.out_start))
+}
+
+/// Reads the old and new values of changed cells from the two versions, each in one pass.
+fn values_of(
+    store: &Store,
+    output: &Version,
+    input: &Version,
+    runs: &[RowRun],
+    changes: &[(String, Vec<u64>)],
+) -> Result<Vec<CellChange>> {
+    let col = |v: &Version, name: &str| v.header.iter().position(|h| h == name);
+    // (output row, input row, column name, output column, input column)
+    type Wanted<'a> = (u64, Option<u64>, &'a str, Option<usize>, Option<usize>);
+    let mut wanted: Vec<Wanted<'_>> = Vec::new();
+    for (name, rows) in changes {
+        let (oc, ic) = (col(output, name), col(input, name));
+        for &r in rows {
+            wanted.push((r, input_row(runs, r), name, oc, ic));
+        }
+    }
+    let mut new_values: HashMap<(u64, usize), String> = HashMap::new();
+    let mut need_out: HashMap<u64, Vec<usize>> = HashMap::new();
+    for w in &wanted {
+        if let Some(oc) = w.3 {
+            need_out.entry(w.0).or_default().push(oc);
+        }
+    }
+    crate::ops::apply::each_version_row(store, output, |row, rec| {
+        if let Some(cols) = need_out.get(&row) {
+            for &c in cols {
+                new_values.insert((row, c), String::from_utf8_lossy(rec.field(c)).into_owned());
+            }
+        }
+        Ok(())
+    })?;
+    let mut old_values: HashMap<(u64, usize), String> = HashMap::new();
+    let mut need_in: HashMap<u64, Vec<usize>> = HashMap::new();
+    for w in &wanted {
+        if let (Some(ir), Some(ic)) = (w.1, w.4) {
+            need_in.entry(ir).or_default().push(ic);
+        }
+    }
+    crate::ops::apply::each_version_row(store, input, |row, rec| {
+        if let Some(cols) = need_in.get(&row) {
+            for &c in cols {
+                old_values.insert((row, c), String::from_utf8_lossy(rec.field(c)).into_owned());
+            }
+        }
+        Ok(())
+    })?;
+    Ok(wanted
+        .into_iter()
+        .map(|(r, ir, name, oc, ic)| CellChange {
+            row_idx: r,
+            column: name.to_string(),
+            old: ir.zip(ic).and_then(|k| old_values.get(&k).cloned()),
+            new: oc.and_then(|c| new_values.get(&(r, c)).cloned()),
+        })
+        .collect())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn encode_then_decode_gives_the_log_back() {
+        let header: Vec<String> = ["id", "name", "email"]
+            .iter()
+            .map(|s| s.to_string())
+            .collect();
+        let mut c = ChangeLog::new(3);
+        for r in [0u64, 5, 6, 300, 70_000] {
+            c.push(1, r);
+        }
+        c.push(2, 9);
+        let mut d = DropLog::default();
+        d.push(3, "duplicate of data row 1 (the whole row)", Some(0));
+        d.push(4, "matched the drop predicate: status = 'test'", None);
+        d.push(200_000, "duplicate of data row 1 (the whole row)", Some(0));
+        let runs = [
+            RowRun {
+                out_start: 0,
+                in_start: 0,
+                len: 3,
+            },
+            RowRun {
+                out_start: 3,
+                in_start: 5,
+                len: 2,
+            },
+            RowRun {
+                out_start: 9,
+                in_start: 1,
+                len: 1,
+            },
+        ];
+        let bytes = encode(&header, &c, &d, &[(0, &runs[..]), (1, &runs[1..2])]);
+        let back = decode(&bytes, "test").unwrap();
+        assert_eq!(
+            back.runs,
+            vec![(0, runs.to_vec()), (1, runs[1..2].to_vec())]
+        );
+        assert_eq!(
+            back.changes,
+            vec![
+                ("name".to_string(), vec![0, 5, 6, 300, 70_000]),
+                ("email".to_string(), vec![9])
+            ]
+        );
+        assert_eq!(back.drops, d.drops());
+        // Cost follows change: a few bytes per changed cell, drop and run, besides the texts
+        // (column names and the two reasons, kept once each).
+        let texts: usize = ["name", "email"].iter().map(|t| t.len()).sum::<usize>()
+            + "duplicate of data row 1 (the whole row)".len()
+            + "matched the drop predicate: status = 'test'".len();
+        assert!(bytes.len() - texts < 60, "{} bytes", bytes.len());
+    }
+
+    #[test]
+    fn damaged_objects_are_refused_not_misread() {
+        let header = vec!["a".to_string()];
+        let mut c = ChangeLog::new(1);
+        c.push(0, 1);
+        c.push(0, 2);
+        let bytes = encode(&header, &c, &DropLog::default(), &[]);
+        for cut in 0..bytes.len() {
+            assert!(decode(&bytes[..cut], "t").is_err(), "cut at {cut}");
+        }
+        let mut longer = bytes.clone();
+        longer.push(0);
+        assert!(decode(&longer, "t").is_err());
+        let mut huge = bytes[..8].to_vec();
+        huge.extend_from_slice(&[0xff, 0xff, 0xff, 0xff, 0x0f]);
+        assert!(decode(&huge, "t").is_err());
+    }
+
+    #[test]
+    fn the_row_map_finds_input_rows() {
+        let runs = [
+            RowRun {
+                out_start: 0,
+                in_start: 0,
+                len: 3,
+            },
+            RowRun {
+                out_start: 3,
+                in_start: 5,
+                len: 2,
+            },
+        ];
+        assert_eq!(input_row(&runs, 0), Some(0));
+        assert_eq!(input_row(&runs, 2), Some(2));
+        assert_eq!(input_row(&runs, 3), Some(5));
+        assert_eq!(input_row(&runs, 4), Some(6));
+        assert_eq!(input_row(&runs, 5), None);
+    }
+}
