@@ -239,6 +239,9 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
                 continue;
             }
             let old = r.field(c);
+            if opts.op.cell_keeps(old) {
+                continue;
+            }
             let text = std::str::from_utf8(old).map_err(|_| {
                 Error::from(ErrorKind::Database(format!(
                     "{label} holds invalid UTF-8 in data row {} column {}; run `sluice verify`",

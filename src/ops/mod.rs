@@ -437,6 +437,16 @@ impl Operation {
     }
 
     /// The new value of one cell, or `None` when the operation leaves it as it is.
+    /// True when [`Operation::cell`] would certainly leave the value as it is, decided on its
+    /// bytes without decoding them; false means "ask `cell`".
+    pub fn cell_keeps(&self, value: &[u8]) -> bool {
+        match self {
+            Operation::Trim { inner, .. } => text::trim_keeps(value, *inner),
+            Operation::Case { to, .. } => text::case_keeps(value, *to),
+            _ => false,
+        }
+    }
+
     pub fn cell(&self, value: &str) -> Option<String> {
         let new = match self {
             Operation::Trim { inner, .. } => text::trim(value, *inner),

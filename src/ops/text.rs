@@ -27,6 +27,45 @@ pub fn trim(v: &str, inner: bool) -> String {
     out
 }
 
+/// ASCII bytes that are White_Space (`char::is_whitespace`); every other White_Space character
+/// is outside ASCII.
+fn ascii_space(b: u8) -> bool {
+    matches!(b, b' ' | b'\t' | b'\n' | b'\x0B' | b'\x0C' | b'\r')
+}
+
+/// True when `trim` would certainly leave `v` as it is, decided on the bytes without decoding
+/// (false means "maybe changed": ask [`trim`]). Most cells of a real export take this path.
+pub fn trim_keeps(v: &[u8], inner: bool) -> bool {
+    let (Some(&first), Some(&last)) = (v.first(), v.last()) else {
+        return true;
+    };
+    // A byte of 0x80 or more may start or end a non-ASCII space: decide those the slow way.
+    if first >= 0x80 || last >= 0x80 || ascii_space(first) || ascii_space(last) {
+        return false;
+    }
+    if !inner {
+        return true;
+    }
+    let mut prev_space = false;
+    for &b in v {
+        if b >= 0x80 || (ascii_space(b) && (b != b' ' || prev_space)) {
+            return false;
+        }
+        prev_space = b == b' ';
+    }
+    true
+}
+
+/// True when `case` would certainly leave `v` as it is, decided on the bytes (false means
+/// "maybe changed": ask [`case`]).
+pub fn case_keeps(v: &[u8], to: CaseTo) -> bool {
+    match to {
+        CaseTo::Lower => v.iter().all(|&b| b < 0x80 && !b.is_ascii_uppercase()),
+        CaseTo::Upper => v.iter().all(|&b| b < 0x80 && !b.is_ascii_lowercase()),
+        CaseTo::Title => false,
+    }
+}
+
 /// Changes case. `Title`: the first letter of every word upper case, the rest lower case; a
 /// word starts at a letter or digit that follows anything else (space, hyphen, apostrophe,
 /// the start of the value).
@@ -91,6 +130,38 @@ mod tests {
             assert_eq!(case(v, CaseTo::Upper), u);
             assert_eq!(case(v, CaseTo::Title), t);
         }
+    }
+
+    proptest::proptest! {
+        // The byte-level shortcuts never claim "unchanged" for a value the full operations
+        // would change.
+        #[test]
+        fn shortcuts_agree_with_the_operations(
+            v in proptest::string::string_regex("[ a\t\u{a0}\u{2003}Bé\x0bZ-]{0,6}").unwrap()
+        ) {
+            for inner in [false, true] {
+                if trim_keeps(v.as_bytes(), inner) {
+                    proptest::prop_assert_eq!(trim(&v, inner), v.clone());
+                }
+            }
+            for to in [CaseTo::Lower, CaseTo::Upper, CaseTo::Title] {
+                if case_keeps(v.as_bytes(), to) {
+                    proptest::prop_assert_eq!(case(&v, to), v.clone());
+                }
+            }
+        }
+    }
+
+    #[test]
+    fn shortcuts_take_the_common_cells() {
+        assert!(trim_keeps(b"Ada Quenwick", true));
+        assert!(trim_keeps(b"", false));
+        assert!(!trim_keeps(b"Ada  Quenwick", true));
+        assert!(trim_keeps(b"Ada  Quenwick", false));
+        assert!(!trim_keeps(b" Ada", false));
+        assert!(!trim_keeps("Ada\u{a0}".as_bytes(), false));
+        assert!(case_keeps(b"ada@example.org", CaseTo::Lower));
+        assert!(!case_keeps(b"Ada@example.org", CaseTo::Lower));
     }
 
     #[test]

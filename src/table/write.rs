@@ -1,24 +1,37 @@
 //! Writing a new version: canonical CSV (UTF-8, comma, LF line ends, minimal RFC 4180 quoting)
 //! into an object, with the version's row index and column profile built in the same pass.
 //!
+//! The writing runs on a thread of its own: the caller (an operation, reading and changing
+//! rows) hands rows over in batches of about 1 MiB, and the writer thread quotes, hashes,
+//! profiles and indexes them, so that the two halves of the work share the machine's cores.
+//!
 //! Canonical means one byte sequence per table: a field is quoted only when it holds a comma, a
 //! double quote, CR or LF (inner quotes doubled), or when it is the only field of its record and
 //! empty (so the record is not a blank line, which readers skip). No BOM, no trailing spaces,
 //! every record ends with LF. The same rows therefore always give the same hash.
 
 use std::io;
+use std::sync::mpsc::{self, Receiver, SyncSender};
+use std::thread::JoinHandle;
 
 use crate::model::{ColumnProfile, Dialect};
 use crate::store::objects::{ObjectWriter, Objects};
 use crate::table::profile::Profiler;
 use crate::table::rowindex::{self, RowEntry};
 
+/// The bytes that make a field need quotes.
+const SPECIAL: [bool; 256] = {
+    let mut t = [false; 256];
+    t[b',' as usize] = true;
+    t[b'"' as usize] = true;
+    t[b'\r' as usize] = true;
+    t[b'\n' as usize] = true;
+    t
+};
+
 /// Appends `field` to `out` in canonical form.
 pub fn push_field(out: &mut Vec<u8>, field: &[u8], only_field: bool) {
-    let needs = field.is_empty() && only_field
-        || field
-            .iter()
-            .any(|&b| b == b',' || b == b'"' || b == b'\r' || b == b'\n');
+    let needs = field.is_empty() && only_field || field.iter().any(|&b| SPECIAL[b as usize]);
     if !needs {
         out.extend_from_slice(field);
         return;
@@ -66,13 +79,132 @@ pub struct Written {
     pub profiles: Vec<ColumnProfile>,
 }
 
-/// Writes a version's rows in order.
+/// Rows handed to the writer thread: field bytes back to back, and the end of every field.
+#[derive(Default)]
+struct Batch {
+    bytes: Vec<u8>,
+    ends: Vec<usize>,
+    rows: usize,
+}
+
+/// How many bytes of rows go to the writer thread at once.
+const BATCH_BYTES: usize = 1 << 20;
+
+/// Writes a version's rows in order (on a thread of its own).
 pub struct CanonicalWriter {
+    n_cols: usize,
+    batch: Batch,
+    to_writer: Option<SyncSender<Batch>>,
+    spare: Receiver<Batch>,
+    thread: Option<JoinHandle<io::Result<Written>>>,
+}
+
+impl CanonicalWriter {
+    /// Starts a version with `header`; `null_tokens` count as blanks in its profile.
+    pub fn new(objects: &Objects, header: &[String], null_tokens: &[String]) -> io::Result<Self> {
+        let mut serial = Serial::new(objects, header, null_tokens)?;
+        let n_cols = header.len();
+        let (to_writer, batches) = mpsc::sync_channel::<Batch>(2);
+        let (give_back, spare) = mpsc::channel::<Batch>();
+        let thread = std::thread::Builder::new()
+            .name("sluice-writer".into())
+            .spawn(move || {
+                for mut b in batches {
+                    let mut fields: Vec<&[u8]> = Vec::with_capacity(n_cols);
+                    let mut start = 0;
+                    for row in 0..b.rows {
+                        fields.clear();
+                        for &end in &b.ends[row * n_cols..(row + 1) * n_cols] {
+                            fields.push(&b.bytes[start..end]);
+                            start = end;
+                        }
+                        serial.write_row(&fields)?;
+                    }
+                    drop(fields);
+                    b.bytes.clear();
+                    b.ends.clear();
+                    b.rows = 0;
+                    // The caller may be gone already; then the batch is simply dropped.
+                    let _ = give_back.send(b);
+                }
+                serial.finish()
+            })?;
+        Ok(CanonicalWriter {
+            n_cols,
+            batch: Batch {
+                bytes: Vec::with_capacity(BATCH_BYTES + 4096),
+                ends: Vec::new(),
+                rows: 0,
+            },
+            to_writer: Some(to_writer),
+            spare,
+            thread: Some(thread),
+        })
+    }
+
+    /// Writes one data row; `fields` must have one value per header column.
+    pub fn write_row(&mut self, fields: &[&[u8]]) -> io::Result<()> {
+        debug_assert_eq!(fields.len(), self.n_cols);
+        for f in fields {
+            self.batch.bytes.extend_from_slice(f);
+            self.batch.ends.push(self.batch.bytes.len());
+        }
+        self.batch.rows += 1;
+        if self.batch.bytes.len() >= BATCH_BYTES || self.batch.rows >= BATCH_BYTES / 16 {
+            self.send()?;
+        }
+        Ok(())
+    }
+
+    fn send(&mut self) -> io::Result<()> {
+        let next = self.spare.try_recv().unwrap_or_default();
+        let full = std::mem::replace(&mut self.batch, next);
+        let sent = self.to_writer.as_ref().map(|t| t.send(full));
+        if let Some(Err(_)) = sent {
+            // The writer thread stopped early: its error is what to report.
+            return Err(self.join().err().unwrap_or_else(|| {
+                io::Error::other("the version writer stopped without saying why")
+            }));
+        }
+        Ok(())
+    }
+
+    fn join(&mut self) -> io::Result<Written> {
+        self.to_writer = None;
+        match self.thread.take() {
+            Some(t) => t
+                .join()
+                .unwrap_or_else(|_| Err(io::Error::other("the version writer thread panicked"))),
+            None => Err(io::Error::other("the version writer was already finished")),
+        }
+    }
+
+    /// Flushes everything; the objects are not persisted yet (the caller decides).
+    pub fn finish(mut self) -> io::Result<Written> {
+        if self.batch.rows > 0 {
+            self.send()?;
+        }
+        self.join()
+    }
+}
+
+impl Drop for CanonicalWriter {
+    fn drop(&mut self) {
+        // A writer given up on (the step failed): stop the thread and wait for it.
+        if self.thread.is_some() {
+            let _ = self.join();
+        }
+    }
+}
+
+/// The writing itself, row after row, on the writer thread.
+struct Serial {
     table: ObjectWriter,
     index: ObjectWriter,
     buf: Vec<u8>,
     index_buf: Vec<u8>,
     scratch: Vec<u8>,
+    fp_scratch: Vec<u8>,
     ends: Vec<usize>,
     profiler: Profiler,
     header: Vec<String>,
@@ -82,15 +214,15 @@ pub struct CanonicalWriter {
     n_lines: u64,
 }
 
-impl CanonicalWriter {
-    /// Starts a version with `header`; `null_tokens` count as blanks in its profile.
-    pub fn new(objects: &Objects, header: &[String], null_tokens: &[String]) -> io::Result<Self> {
-        let mut w = CanonicalWriter {
+impl Serial {
+    fn new(objects: &Objects, header: &[String], null_tokens: &[String]) -> io::Result<Self> {
+        let mut w = Serial {
             table: objects.writer()?,
             index: objects.writer()?,
             buf: Vec::with_capacity(1 << 20),
             index_buf: Vec::with_capacity(256 * 1024),
             scratch: Vec::new(),
+            fp_scratch: Vec::new(),
             ends: Vec::new(),
             profiler: Profiler::new(header.len(), null_tokens),
             header: header.to_vec(),
@@ -111,8 +243,19 @@ impl CanonicalWriter {
         self.n_lines += memchr::memchr_iter(b'\n', rec).count() as u64;
     }
 
-    /// Writes one data row; `fields` must have one value per header column.
-    pub fn write_row(&mut self, fields: &[&[u8]]) -> io::Result<()> {
+    /// [`Self::account`] for a data row whose fields are known: line breaks can only be the
+    /// record's own and those inside its (quoted) fields.
+    fn account_row(&mut self, start: usize, fields: &[&[u8]]) {
+        self.n_bytes += (self.buf.len() - start) as u64;
+        self.n_lines += 1;
+        for f in fields {
+            if f.contains(&b'\n') {
+                self.n_lines += memchr::memchr_iter(b'\n', f).count() as u64;
+            }
+        }
+    }
+
+    fn write_row(&mut self, fields: &[&[u8]]) -> io::Result<()> {
         debug_assert_eq!(fields.len(), self.header.len());
         let entry_byte = self.n_bytes;
         let entry_line = self.n_lines + 1;
@@ -127,9 +270,10 @@ impl CanonicalWriter {
             self.scratch.extend_from_slice(f);
         }
         let fields_concat = std::mem::take(&mut self.scratch);
-        let mut fp_scratch = Vec::new();
+        let mut fp_scratch = std::mem::take(&mut self.fp_scratch);
         let fingerprint = rowindex::fingerprint_parts(&fields_concat, &self.ends, &mut fp_scratch);
         self.scratch = fields_concat;
+        self.fp_scratch = fp_scratch;
         rowindex::encode_entry(
             &RowEntry {
                 byte: entry_byte,
@@ -141,7 +285,7 @@ impl CanonicalWriter {
         self.profiler.observe(fields.iter().copied());
         let start = self.buf.len();
         push_record(&mut self.buf, fields.iter().copied());
-        self.account(start);
+        self.account_row(start, fields);
         self.n_rows += 1;
         if self.buf.len() >= 1 << 20 {
             self.table.write(&self.buf)?;
@@ -154,8 +298,7 @@ impl CanonicalWriter {
         Ok(())
     }
 
-    /// Flushes everything; the objects are not persisted yet (the caller decides).
-    pub fn finish(mut self) -> io::Result<Written> {
+    fn finish(mut self) -> io::Result<Written> {
         self.table.write(&self.buf)?;
         self.index.write(&self.index_buf)?;
         Ok(Written {
