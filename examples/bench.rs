@@ -8,6 +8,20 @@
 //! cargo run --release --example bench -- intake --rows 200000,2000000
 //! ```
 //!
+//! # `diff`
+//!
+//! Measures `sluice diff` of two versions of a Quillby work-order table made by
+//! [`sluice::demo::revision_pair`] (deterministic; 1,000,000 rows by default, about 1% of the
+//! rows changed in one or two cells, 0.5% removed and 0.5% inserted), both already in a store
+//! (taken in before timing, once with `--key order_id` and once without): the full diff by key,
+//! cell by cell, and the diff by order, each writing its text output to a file. In the same
+//! run, on the same two files: GNU `diff`, `git diff --no-index --stat`, and the outer-merge
+//! comparisons with pandas and polars (`tests/reference/diff_pandas.py`, `diff_polars.py`, run
+//! by the interpreter of `tests/reference/pyenv.py`). Goals: the diff by key at least 2x faster
+//! than GNU diff and 10x faster than pandas; the diff by order no slower than GNU diff. The
+//! counts sluice reports are checked against what the generator says it changed. Files:
+//! `target/bench-data/revision_N_{first,second}.csv`.
+//!
 //! # `intake`
 //!
 //! Measures `sluice ingest` of a dirty work-order CSV (made by [`sluice::demo::work_orders`],
@@ -65,6 +79,7 @@ const MIN_LOAD_WINDOW: Duration = Duration::from_secs(1);
 const AGENT: &str = "Bench Runner <bench@example.org>";
 const DEFAULT_ROWS: &[u64] = &[1_000_000, 5_000_000];
 const QUICK_ROWS: &[u64] = &[100_000];
+const DIFF_ROWS: &[u64] = &[1_000_000];
 
 #[derive(Debug, Parser)]
 #[command(
@@ -100,12 +115,15 @@ struct Cli {
 enum Bench {
     /// `sluice ingest` against BLAKE3 alone and `git add`
     Intake,
+    /// `sluice diff` (by key and by order) against GNU diff, git diff, pandas and polars
+    Diff,
 }
 
 impl Bench {
     fn name(self) -> &'static str {
         match self {
             Bench::Intake => "intake",
+            Bench::Diff => "diff",
         }
     }
 }
@@ -129,6 +147,8 @@ struct Ctx {
     tmp_dir: PathBuf,
     results_dir: PathBuf,
     rows: Vec<u64>,
+    /// Row counts for `diff` (two versions of each size).
+    diff_rows: Vec<u64>,
     runs: u32,
     bench_exe: PathBuf,
 }
@@ -160,6 +180,7 @@ fn run(cli: Cli) -> Result<()> {
 fn run_bench(bench: Bench, ctx: &Ctx) -> Result<()> {
     let result = match bench {
         Bench::Intake => intake(ctx)?,
+        Bench::Diff => diff(ctx)?,
     };
     fs::create_dir_all(&ctx.results_dir)
         .with_context(|| format!("creating {}", ctx.results_dir.display()))?;
@@ -202,6 +223,11 @@ fn context(cli: &Cli) -> Result<Ctx> {
         (None, true) => QUICK_ROWS.to_vec(),
         (None, false) => DEFAULT_ROWS.to_vec(),
     };
+    let diff_rows = match (&cli.rows, cli.quick) {
+        (Some(r), _) => r.clone(),
+        (None, true) => QUICK_ROWS.to_vec(),
+        (None, false) => DIFF_ROWS.to_vec(),
+    };
     let tmp_dir = target.join("bench-tmp");
     if tmp_dir.exists() {
         fs::remove_dir_all(&tmp_dir)
@@ -213,6 +239,7 @@ fn context(cli: &Cli) -> Result<Ctx> {
         tmp_dir,
         results_dir: target.join("bench-results"),
         rows,
+        diff_rows,
         runs: cli.runs,
         bench_exe,
     })
@@ -1122,6 +1149,363 @@ fn intake_goals(rows: &[Row], bytes: u64) -> Vec<Goal> {
             pass: peak < 64.0,
         },
     ]
+}
+
+// ---------------------------------------------------------------------------------------------
+// The diff benchmark
+
+fn diff(ctx: &Ctx) -> Result<Value> {
+    println!("== diff: sluice diff vs GNU diff, git diff, pandas and polars ==");
+    let python = reference_python()?;
+    let mut sizes = Vec::new();
+    let mut all_pass = true;
+    for &n in &ctx.diff_rows {
+        let (size, pass) = diff_size(ctx, n, &python)?;
+        sizes.push(size);
+        all_pass &= pass;
+    }
+    println!(
+        "diff: {}",
+        if all_pass {
+            "all goals met"
+        } else {
+            "some goals missed"
+        }
+    );
+    Ok(json!({
+        "benchmark": "diff",
+        "generated_by": "cargo run --release --example bench -- diff",
+        "machine": {"cores": cores(), "cpu": cpu_model(), "git": git_version()},
+        "sluice_binary": ctx.sluice.display().to_string(),
+        "source": source_revision(),
+        "runs_requested": ctx.runs,
+        "python": python,
+        "notes": [
+            "MB = 10^6 bytes of both files together; seconds are medians; peak memory is the largest ru_maxrss of the runs",
+            "sluice: both versions already in the store; the text output of the whole diff is written to a file",
+            "GNU diff and git diff --no-index --stat: exit status 1 (files differ) counts as success",
+            "pandas and polars: read both files as text, outer join on order_id, count per column",
+            "warm page cache; sync before every timed run",
+        ],
+        "all_goals_met": all_pass,
+        "sizes": sizes,
+    }))
+}
+
+/// The interpreter of the pinned reference environment (created once by the script).
+fn reference_python() -> Result<String> {
+    let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/reference/pyenv.py");
+    let out = Command::new("python3")
+        .arg(&script)
+        .output()
+        .context("running tests/reference/pyenv.py (is python3 installed?)")?;
+    ensure!(
+        out.status.success(),
+        "tests/reference/pyenv.py failed: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    Ok(String::from_utf8_lossy(&out.stdout).trim().to_string())
+}
+
+/// The two versions of `n` rows, generated if missing or different from what the generator
+/// makes now; with the generator's record of what it changed.
+fn ensure_revision(dir: &Path, n: u64) -> Result<(PathBuf, PathBuf, sluice::demo::Revision)> {
+    fs::create_dir_all(dir).with_context(|| format!("creating {}", dir.display()))?;
+    let first = dir.join(format!("revision_{n}_first.csv"));
+    let second = dir.join(format!("revision_{n}_second.csv"));
+    let t = Instant::now();
+    if first.is_file() && second.is_file() {
+        let open = |p: &Path| -> Result<BufWriter<Compare>> {
+            Ok(BufWriter::with_capacity(
+                PIECE,
+                Compare {
+                    file: File::open(p).with_context(|| format!("opening {}", p.display()))?,
+                    buf: Vec::new(),
+                    differs: false,
+                },
+            ))
+        };
+        let (mut ca, mut cb) = (open(&first)?, open(&second)?);
+        let made = sluice::demo::revision_pair(&mut ca, &mut cb, n)
+            .and_then(|r| ca.flush().and(cb.flush()).map(|()| r));
+        let ends = |w: BufWriter<Compare>| -> bool {
+            match w.into_inner() {
+                Ok(mut c) => !c.differs && matches!(c.file.read(&mut [0u8; 1]), Ok(0)),
+                Err(_) => false,
+            }
+        };
+        if let Ok(rev) = made {
+            if ends(ca) & ends(cb) {
+                println!(
+                    "data: {} and {} (reused, checked in {:.1} s)",
+                    first.display(),
+                    second.display(),
+                    secs(t.elapsed())
+                );
+                return Ok((first, second, rev));
+            }
+        }
+        println!("data: the revision files differ from the generator's output: making them again");
+    }
+    let create = |p: &Path| -> Result<BufWriter<File>> {
+        Ok(BufWriter::with_capacity(
+            PIECE,
+            File::create(p).with_context(|| format!("creating {}", p.display()))?,
+        ))
+    };
+    let (pa, pb) = (
+        first.with_extension("csv.partial"),
+        second.with_extension("csv.partial"),
+    );
+    let (mut wa, mut wb) = (create(&pa)?, create(&pb)?);
+    let rev = sluice::demo::revision_pair(&mut wa, &mut wb, n)
+        .and_then(|r| wa.flush().and(wb.flush()).map(|()| r))
+        .context("writing the revision files")?;
+    drop((wa, wb));
+    fs::rename(&pa, &first).with_context(|| format!("renaming {}", pa.display()))?;
+    fs::rename(&pb, &second).with_context(|| format!("renaming {}", pb.display()))?;
+    println!(
+        "data: {} and {} (generated in {:.1} s)",
+        first.display(),
+        second.display(),
+        secs(t.elapsed())
+    );
+    Ok((first, second, rev))
+}
+
+/// Runs sluice (not timed) and insists on success; returns its standard output.
+fn sluice_quiet(ctx: &Ctx, store: &Path, args: &[&std::ffi::OsStr]) -> Result<String> {
+    let out = Command::new(&ctx.sluice)
+        .arg("--store")
+        .arg(store)
+        .args(args)
+        .env("SLUICE_AGENT", AGENT)
+        .output()
+        .context("running sluice")?;
+    ensure!(
+        out.status.success(),
+        "sluice {:?} failed: {}",
+        args,
+        String::from_utf8_lossy(&out.stderr)
+    );
+    Ok(String::from_utf8_lossy(&out.stdout).into_owned())
+}
+
+fn diff_size(ctx: &Ctx, n: u64, python: &str) -> Result<(Value, bool)> {
+    use std::ffi::OsStr;
+    println!();
+    let (first, second, rev) = ensure_revision(&ctx.data_dir, n)?;
+    let size = |p: &Path| -> Result<u64> {
+        Ok(fs::metadata(p)
+            .with_context(|| format!("reading {}", p.display()))?
+            .len())
+    };
+    let bytes = size(&first)? + size(&second)?;
+    println!(
+        "{} and {} rows, {:.1} MB together; {} rows changed, {} removed, {} inserted",
+        thousands(rev.n_rows_first),
+        thousands(rev.n_rows_second),
+        bytes as f64 / 1e6,
+        thousands(rev.changed_rows),
+        thousands(rev.removed_rows),
+        thousands(rev.added_rows)
+    );
+    let scratch = Scratch::new(ctx, "diff-store")?;
+    let store = scratch.0.join("store");
+    let init = Command::new(&ctx.sluice)
+        .arg("init")
+        .arg(&store)
+        .env("SLUICE_AGENT", AGENT)
+        .output()
+        .context("running `sluice init`")?;
+    ensure!(init.status.success(), "`sluice init` failed");
+    let (f, s) = (first.as_os_str(), second.as_os_str());
+    for args in [
+        [
+            OsStr::new("ingest"),
+            f,
+            "--as".as_ref(),
+            "orders".as_ref(),
+            "--key".as_ref(),
+            "order_id".as_ref(),
+        ]
+        .as_slice(),
+        [OsStr::new("ingest"), s, "--as".as_ref(), "orders".as_ref()].as_slice(),
+        [OsStr::new("ingest"), f, "--as".as_ref(), "plain".as_ref()].as_slice(),
+        [OsStr::new("ingest"), s, "--as".as_ref(), "plain".as_ref()].as_slice(),
+    ] {
+        sluice_quiet(ctx, &store, args)?;
+    }
+    // What sluice reports must be what the generator did.
+    let stat = sluice_quiet(
+        ctx,
+        &store,
+        &["diff", "orders@1", "orders@2", "--json", "--stat"].map(OsStr::new),
+    )?;
+    let stat: Value = serde_json::from_str(&stat).context("reading sluice diff --json")?;
+    let counts = (
+        stat["rows"]["changed"].as_u64(),
+        stat["rows"]["removed"].as_u64(),
+        stat["rows"]["added"].as_u64(),
+    );
+    ensure!(
+        counts
+            == (
+                Some(rev.changed_rows),
+                Some(rev.removed_rows),
+                Some(rev.added_rows)
+            ),
+        "sluice diff reports {counts:?}, the generator made {:?}",
+        (rev.changed_rows, rev.removed_rows, rev.added_rows)
+    );
+    println!("  check: sluice's counts are the generator's");
+    warm(&first)?;
+    warm(&second)?;
+    let background = background_load()?;
+    if let Some(c) = background {
+        println!("background load before timing: {c:.2} cores");
+    }
+    let measure = |name: &str, make: &dyn Fn() -> Command| -> Result<Vec<Sample>> {
+        repeat(ctx.runs, |i| {
+            let log = scratch.0.join(format!("{name}-{i}"));
+            let (sample, _) = run_measured(&mut make(), &log, name)?;
+            Ok(sample)
+        })
+    };
+    let sluice_diff = |reference: &'static str| {
+        let (sl, st) = (ctx.sluice.clone(), store.clone());
+        move || {
+            let mut c = Command::new(&sl);
+            c.arg("--store")
+                .arg(&st)
+                .args(["diff", &format!("{reference}@1"), &format!("{reference}@2")])
+                .env("SLUICE_AGENT", AGENT);
+            c
+        }
+    };
+    let keyed = measure("sluice-keyed", &sluice_diff("orders"))?;
+    let unkeyed = measure("sluice-unkeyed", &sluice_diff("plain"))?;
+    // `diff` and `git diff` exit with 1 when the files differ, as they do here.
+    let differ_ok = |tool: &[&str]| {
+        let mut c = Command::new("sh");
+        c.arg("-c")
+            .arg(format!("{} \"$1\" \"$2\"; test $? -le 1", tool.join(" ")))
+            .arg("sh")
+            .arg(&first)
+            .arg(&second)
+            .env("GIT_CONFIG_GLOBAL", "/dev/null")
+            .env("GIT_CONFIG_NOSYSTEM", "1");
+        c
+    };
+    let gnu = measure("gnu-diff", &|| differ_ok(&["diff"]))?;
+    let git = measure("git-diff", &|| {
+        differ_ok(&["git", "diff", "--no-index", "--stat"])
+    })?;
+    let py = |script: &'static str| {
+        let (first, second) = (first.clone(), second.clone());
+        move || {
+            let mut c = Command::new(python);
+            c.arg(
+                Path::new(env!("CARGO_MANIFEST_DIR"))
+                    .join("tests/reference")
+                    .join(script),
+            )
+            .arg(&first)
+            .arg(&second)
+            .arg("order_id");
+            c
+        }
+    };
+    let pandas = measure("pandas", &py("diff_pandas.py"))?;
+    let polars = measure("polars", &py("diff_polars.py"))?;
+    let rows = vec![
+        Row {
+            tool: "sluice diff, by key",
+            key: "sluice_keyed",
+            samples: keyed,
+        },
+        Row {
+            tool: "sluice diff, by order",
+            key: "sluice_unkeyed",
+            samples: unkeyed,
+        },
+        Row {
+            tool: "GNU diff",
+            key: "gnu_diff",
+            samples: gnu,
+        },
+        Row {
+            tool: "git diff --no-index --stat",
+            key: "git_diff_stat",
+            samples: git,
+        },
+        Row {
+            tool: "pandas outer merge",
+            key: "pandas",
+            samples: pandas,
+        },
+        Row {
+            tool: "polars full join",
+            key: "polars",
+            samples: polars,
+        },
+    ];
+    print_table(&rows, bytes);
+    let by = |key: &str| {
+        rows.iter()
+            .find(|r| r.key == key)
+            .expect("every tool measured")
+    };
+    let (k, u, g) = (by("sluice_keyed"), by("sluice_unkeyed"), by("gnu_diff"));
+    let vs_gnu = g.median_secs() / k.median_secs();
+    let vs_pandas = by("pandas").median_secs() / k.median_secs();
+    let vs_polars = by("polars").median_secs() / k.median_secs();
+    let unkeyed_vs_gnu = g.median_secs() / u.median_secs();
+    let goals = vec![
+        Goal {
+            label: "GNU diff time / sluice by key".into(),
+            value: vs_gnu,
+            goal: ">= 2",
+            pass: vs_gnu >= 2.0,
+        },
+        Goal {
+            label: "pandas time / sluice by key".into(),
+            value: vs_pandas,
+            goal: ">= 10",
+            pass: vs_pandas >= 10.0,
+        },
+        Goal {
+            label: "GNU diff time / sluice by order".into(),
+            value: unkeyed_vs_gnu,
+            goal: ">= 1",
+            pass: unkeyed_vs_gnu >= 1.0,
+        },
+    ];
+    println!("  ratios:");
+    for g in &goals {
+        g.print();
+    }
+    println!("  (polars time / sluice by key = {vs_polars:.2}, for information)");
+    let pass = goals.iter().all(|g| g.pass);
+    let tools: serde_json::Map<String, Value> = rows
+        .iter()
+        .map(|r| (r.key.to_string(), r.json(bytes)))
+        .collect();
+    Ok((
+        json!({
+            "rows_first": rev.n_rows_first,
+            "rows_second": rev.n_rows_second,
+            "changed_rows": rev.changed_rows,
+            "removed_rows": rev.removed_rows,
+            "added_rows": rev.added_rows,
+            "bytes": bytes,
+            "tools": tools,
+            "background_load_cores": background,
+            "goals": goals.iter().map(Goal::json).collect::<Vec<_>>(),
+            "all_goals_met": pass,
+        }),
+        pass,
+    ))
 }
 
 // ---------------------------------------------------------------------------------------------

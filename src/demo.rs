@@ -491,3 +491,108 @@ mod tests {
         assert_eq!(a.iter().filter(|&&c| c == b'\n').count(), 501);
     }
 }
+
+// ---- two versions with known edits (diff benchmarks and the diff's reference check) ----------
+
+/// What [`revision_pair`] changed between the two versions it wrote.
+#[derive(Debug, Clone, PartialEq, Eq, Default)]
+pub struct Revision {
+    pub n_rows_first: u64,
+    pub n_rows_second: u64,
+    pub changed_rows: u64,
+    pub removed_rows: u64,
+    pub added_rows: u64,
+    /// Changed cells per column, in header order (zero counts included).
+    pub changed_cells: Vec<(String, u64)>,
+}
+
+/// The Quillby header used by [`revision_pair`]; `order_id` is unique in both versions.
+pub fn revision_header() -> Vec<String> {
+    Till::Quillby
+        .header()
+        .iter()
+        .map(|h| h.to_string())
+        .collect()
+}
+
+/// Writes two versions of a cleaned-looking Quillby work-order table (comma, LF, unique
+/// `order_id`): `first` with `n_rows` rows, and `second`, the same table in the same order in
+/// which about 1% of the rows have one or two cells changed (a trailing space removed where
+/// there is one, otherwise a revision mark appended), 0.5% are removed and 0.5% new rows are
+/// inserted after existing ones. Deterministic; returns exactly what it changed.
+pub fn revision_pair(
+    first: &mut impl Write,
+    second: &mut impl Write,
+    n_rows: u64,
+) -> io::Result<Revision> {
+    let till = Till::Quillby;
+    let header = revision_header();
+    let mut rng = Rng::new(0x5e_0d1f ^ n_rows.rotate_left(23));
+    let mut rev = Revision {
+        n_rows_first: n_rows,
+        changed_cells: header.iter().map(|h| (h.clone(), 0)).collect(),
+        ..Revision::default()
+    };
+    write_row(first, &header, b',', b"\n")?;
+    write_row(second, &header, b',', b"\n")?;
+    let mut new_order = 9_000_000u64;
+    let make = |rng: &mut Rng, order: u64| -> Vec<String> {
+        let given = *rng.pick(GIVEN);
+        let surname = format!("{}{}", rng.pick(SURNAME_HEAD), rng.pick(SURNAME_TAIL));
+        let trailing = if rng.chance(20) { " " } else { "" };
+        vec![
+            order.to_string(),
+            date(rng, till, 7),
+            format!("{given} {surname}{trailing}"),
+            format!(
+                "{}.{}@example.org",
+                given.to_lowercase(),
+                surname.to_lowercase()
+            ),
+            rng.pick(SERVICES).to_string(),
+            money(rng, till),
+            format!("{}.{}", rng.below(4), [0, 25, 5, 75][rng.below(4) as usize]),
+            rng.pick(STATUSES).to_string(),
+            rng.pick(till.technicians()).to_string(),
+            rng.pick(NOTES).to_string(),
+        ]
+    };
+    for i in 0..n_rows {
+        let row = make(&mut rng, 100_001 + i);
+        write_row(first, &row, b',', b"\n")?;
+        let roll = rng.below(1000);
+        if roll < 10 {
+            let mut edited = row.clone();
+            let n_cells = 1 + rng.below(2) as usize;
+            let mut touched = Vec::new();
+            while touched.len() < n_cells {
+                // Any column but the key.
+                let c = 1 + rng.below(header.len() as u64 - 1) as usize;
+                if !touched.contains(&c) {
+                    touched.push(c);
+                }
+            }
+            for &c in &touched {
+                edited[c] = match edited[c].strip_suffix(' ') {
+                    Some(trimmed) => trimmed.to_string(),
+                    None => format!("{} (rev)", edited[c]),
+                };
+                rev.changed_cells[c].1 += 1;
+            }
+            rev.changed_rows += 1;
+            write_row(second, &edited, b',', b"\n")?;
+        } else if roll < 15 {
+            rev.removed_rows += 1;
+        } else {
+            write_row(second, &row, b',', b"\n")?;
+        }
+        if (15..20).contains(&roll) {
+            new_order += 1;
+            let inserted = make(&mut rng, new_order);
+            write_row(second, &inserted, b',', b"\n")?;
+            rev.added_rows += 1;
+        }
+    }
+    rev.n_rows_second = n_rows - rev.removed_rows + rev.added_rows;
+    Ok(rev)
+}

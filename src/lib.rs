@@ -35,6 +35,7 @@ pub mod checks;
 pub mod clock;
 pub mod code;
 pub mod demo;
+pub mod diff;
 pub mod error;
 pub mod hash;
 pub mod history;

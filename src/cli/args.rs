@@ -149,6 +149,18 @@ pub enum Command {
         json: bool,
     },
 
+    /// Show the differences between two versions: rows added, removed and changed, every
+    /// changed cell, and added, removed, renamed or reordered columns
+    #[command(
+        after_help = "Rows are matched by --key, else by the key declared on the dataset, else by order (a minimal \
+        edit script over row fingerprints). Inside a changed cell, removed characters are shown as [-...] and \
+        added ones as [+...], with a space as ␣.\n\n\
+        Example:\n  sluice diff quillby_orders@1 quillby_orders@2 --key order_id --limit 20\n  \
+        changed  row 3 → 3  order_id 41003\n    customer  \"[-␣]Ada Quenwick\" → \"Ada Quenwick\"\n\n\
+        Exit code 0 whether or not the versions differ (1 and 2 as for every command: a failure, a usage error)."
+    )]
+    Diff(DiffArgs),
+
     /// Create a store with an invented example (three bicycle repair shops) and take it in
     #[command(after_help = "Example:\n  sluice demo\n  sluice demo /tmp/try-sluice")]
     Demo {
@@ -615,4 +627,25 @@ pub enum CaseArg {
     Lower,
     Upper,
     Title,
+}
+
+#[derive(Debug, Args)]
+pub struct DiffArgs {
+    /// The first version: NAME (latest), NAME@N or a hash prefix
+    pub from: String,
+    /// The second version
+    pub to: String,
+    /// Match rows by these key columns, comma-separated (default: the dataset's declared key,
+    /// else by order)
+    #[arg(long, value_name = "COL[,COL..]", value_delimiter = ',')]
+    pub key: Option<Vec<String>>,
+    /// Counts only: rows and changed cells per column
+    #[arg(long)]
+    pub stat: bool,
+    /// Print JSON (structure in README.md, "JSON output")
+    #[arg(long)]
+    pub json: bool,
+    /// List at most N changes (the counts stay complete)
+    #[arg(long, value_name = "N")]
+    pub limit: Option<usize>,
 }

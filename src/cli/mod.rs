@@ -4,6 +4,7 @@
 
 pub mod args;
 pub mod render;
+pub mod render_diff;
 
 use std::io::Write;
 use std::path::{Path, PathBuf};
@@ -275,6 +276,30 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
                 render::verify(&mut out, &report)?;
             }
             Ok(if report.intact { 0 } else { 1 })
+        }
+        Command::Diff(a) => {
+            let store = open_store(&cli, &cwd)?;
+            let key = match &a.key {
+                Some(cols) => sluice::diff::KeyChoice::Columns(cols.clone()),
+                None => sluice::diff::KeyChoice::Declared,
+            };
+            let d = sluice::diff::diff(&store, &a.from, &a.to, &sluice::diff::DiffOptions { key })?;
+            // Colour only for a person at a terminal, and never when NO_COLOR is set.
+            let colour = std::io::IsTerminal::is_terminal(&std::io::stdout())
+                && std::env::var_os("NO_COLOR").is_none_or(|v| v.is_empty());
+            let how = render_diff::How {
+                stat: a.stat,
+                limit: a.limit,
+                colour,
+            };
+            let mut buffered = std::io::BufWriter::new(&mut out);
+            if a.json {
+                render_diff::json(&mut buffered, &d, &how)?;
+            } else {
+                render_diff::text(&mut buffered, &d, &how)?;
+            }
+            buffered.flush()?;
+            Ok(0)
         }
         Command::Demo { dir } => {
             let agent = resolve_agent(&cli, &cwd);

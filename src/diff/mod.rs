@@ -1,0 +1,450 @@
+//! Differences between two versions of a table: which rows were added, removed or changed,
+//! every changed cell with its old and new value, and which columns were added, removed,
+//! renamed or reordered. Returns data ([`Diff`]); the command line renders it.
+//!
+//! Rows are matched in one of two ways:
+//!
+//! - **by key** ([`keyed`]), when a key is given or declared on the dataset: rows with equal key
+//!   values are the same row. Each side keeps a sorted vector of (key hash, row number) and the
+//!   two are walked together; only rows whose fingerprints differ are read again to compare
+//!   cells. A key that occurs twice or is blank is an error.
+//! - **by order** ([`aligned`]), otherwise: the two sequences of row fingerprints are aligned
+//!   by a minimal edit script (Myers' O(ND) algorithm, from the `similar` crate), rows matched
+//!   by fingerprint are confirmed on their values, and inside each block of removed and added
+//!   rows a removed row and an added row are paired as one *changed* row when at least half of
+//!   their compared cells are equal (see [`aligned::PAIR_WINDOW`]).
+//!
+//! Columns are matched by name; a column only in the first version and a column only in the
+//! second are reported as a rename when they hold equal values in every pair of matched rows.
+//! Cells are compared over the columns the versions share (renamed ones under their new name).
+//!
+//! The row pairing ([`RowPairing`]) is the diff's edit script: applying it to the first
+//! version (take the rows of each run, apply the cell changes, insert the added rows) gives
+//! the second, over the compared columns. Lineage inferred for outside work is built from it.
+
+pub mod aligned;
+pub mod chars;
+pub mod keyed;
+pub mod read;
+mod scan;
+
+use serde::Serialize;
+
+use crate::error::{Error, ErrorKind, Result};
+use crate::model::Version;
+use crate::refs;
+use crate::store::Store;
+
+pub use read::{RowRef, RowStore};
+
+/// How rows are matched.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum KeyChoice {
+    /// The key declared on the second version's dataset, else on the first's; by order when
+    /// neither declares one.
+    Declared,
+    /// These key columns.
+    Columns(Vec<String>),
+    /// By order, even when a key is declared.
+    Unkeyed,
+}
+
+#[derive(Debug, Clone)]
+pub struct DiffOptions {
+    pub key: KeyChoice,
+}
+
+/// A run of matched rows: rows `b_start..b_start+len` of the second version are rows
+/// `a_start..a_start+len` of the first (0-based), unchanged or, when `changed`, with the cell
+/// changes of [`RowPairing::cells`].
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+pub struct PairRun {
+    pub a_start: u64,
+    pub b_start: u64,
+    pub len: u64,
+    pub changed: bool,
+}
+
+/// One changed cell of a changed row (0-based rows; the column under its name in the second
+/// version).
+#[derive(Debug, Clone, PartialEq, Eq, Serialize)]
+pub struct CellDiff {
+    pub a_row: u64,
+    pub b_row: u64,
+    pub column: String,
+    pub old: String,
+    pub new: String,
+}
+
+/// The row pairing: the edit script from the first version to the second.
+#[derive(Debug, Clone, Default, PartialEq, Eq)]
+pub struct RowPairing {
+    /// Matched rows, in the order of the second version's rows.
+    pub runs: Vec<PairRun>,
+    /// Rows of the first version no row of the second comes from (0-based, ascending).
+    pub removed: Vec<u64>,
+    /// Rows of the second version that come from no row of the first (0-based, ascending).
+    pub added: Vec<u64>,
+    /// Every changed cell, ordered by the second version's row, then its column order.
+    pub cells: Vec<CellDiff>,
+}
+
+/// Column differences. Names are those of the header of each version.
+#[derive(Debug, Clone, Default, PartialEq, Eq, Serialize)]
+pub struct ColumnChanges {
+    pub added: Vec<String>,
+    pub removed: Vec<String>,
+    /// (old name, new name).
+    pub renamed: Vec<(String, String)>,
+    /// The compared columns are in another relative order in the second version.
+    pub reordered: bool,
+}
+
+/// How the rows were matched.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum MatchedBy {
+    Key(Vec<String>),
+    Order,
+}
+
+/// For a diff by order: the size of the minimal edit script by fingerprint, before removed and
+/// added rows are paired into changed ones. `edit_distance` (D) counts row deletions plus
+/// insertions; `common_rows` is the length of the longest common subsequence. A changed row
+/// counts as one deletion and one insertion here.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+pub struct Alignment {
+    pub edit_distance: u64,
+    pub common_rows: u64,
+}
+
+/// One listed change.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum ChangeKind {
+    Changed,
+    Removed,
+    Added,
+}
+
+/// One entry of the listing, in display order; `cells` is a range of [`RowPairing::cells`].
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Change {
+    pub kind: ChangeKind,
+    pub a_row: Option<u64>,
+    pub b_row: Option<u64>,
+    pub cells: std::ops::Range<usize>,
+}
+
+/// The differences between two versions.
+#[derive(Debug, Clone)]
+pub struct Diff {
+    pub from: Version,
+    pub to: Version,
+    pub matched_by: MatchedBy,
+    pub columns: ColumnChanges,
+    /// The compared columns as (index in the first header, index in the second), in the
+    /// second version's order.
+    pub compared: Vec<(usize, usize)>,
+    pub pairing: RowPairing,
+    pub alignment: Option<Alignment>,
+    /// Changed rows, removed rows, added rows, in display order.
+    pub changes: Vec<Change>,
+    /// Changed cells per compared column (second version's names and order), zero counts
+    /// included.
+    pub changed_by_column: Vec<(String, u64)>,
+    /// The rows the diff read again (removed, added and changed ones), for display.
+    pub from_rows: RowStore,
+    pub to_rows: RowStore,
+    /// Key column indices in the first and second header (empty for a diff by order).
+    pub key_idx: (Vec<usize>, Vec<usize>),
+}
+
+impl Diff {
+    pub fn n_changed(&self) -> u64 {
+        self.pairing
+            .runs
+            .iter()
+            .filter(|r| r.changed)
+            .map(|r| r.len)
+            .sum()
+    }
+
+    pub fn n_unchanged(&self) -> u64 {
+        self.pairing
+            .runs
+            .iter()
+            .filter(|r| !r.changed)
+            .map(|r| r.len)
+            .sum()
+    }
+
+    pub fn n_removed(&self) -> u64 {
+        self.pairing.removed.len() as u64
+    }
+
+    pub fn n_added(&self) -> u64 {
+        self.pairing.added.len() as u64
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.n_changed() == 0
+            && self.pairing.removed.is_empty()
+            && self.pairing.added.is_empty()
+            && self.columns == ColumnChanges::default()
+            && self.from.header.len() == self.to.header.len()
+    }
+
+    /// The key values of a listed change, from whichever side holds the row.
+    pub fn key_of(&self, c: &Change) -> Option<Vec<String>> {
+        if self.key_idx.0.is_empty() {
+            return None;
+        }
+        let (row, idx) = match (c.b_row, c.a_row) {
+            (Some(b), _) => (self.to_rows.get(b)?, &self.key_idx.1),
+            (None, Some(a)) => (self.from_rows.get(a)?, &self.key_idx.0),
+            (None, None) => return None,
+        };
+        Some(idx.iter().map(|&i| row.text(i)).collect())
+    }
+}
+
+/// Compares the versions `from` and `to` name (see [`crate::refs`]).
+pub fn diff(store: &Store, from: &str, to: &str, opts: &DiffOptions) -> Result<Diff> {
+    let a = refs::resolve(&store.lineage, from)?;
+    let b = refs::resolve(&store.lineage, to)?;
+    diff_versions(store, &a, &b, opts)
+}
+
+/// Compares two versions already resolved.
+pub fn diff_versions(store: &Store, a: &Version, b: &Version, opts: &DiffOptions) -> Result<Diff> {
+    let key = match &opts.key {
+        KeyChoice::Columns(cols) => Some(cols.clone()),
+        KeyChoice::Unkeyed => None,
+        KeyChoice::Declared => match store.lineage.dataset(&b.dataset)?.and_then(|d| d.key) {
+            Some(k) => Some(k),
+            None => store.lineage.dataset(&a.dataset)?.and_then(|d| d.key),
+        },
+    };
+    let layout = Layout::new(a, b);
+    match key {
+        Some(k) => {
+            if k.is_empty() || k.iter().any(|c| c.trim().is_empty()) {
+                return Err(Error::usage(
+                    "--key needs at least one column name, e.g. --key order_id",
+                ));
+            }
+            let ka = key_indices(a, &k)?;
+            let kb = key_indices(b, &k)?;
+            keyed::run(store, a, b, layout, k, ka, kb)
+        }
+        None => aligned::run(store, a, b, layout),
+    }
+}
+
+fn key_indices(v: &Version, key: &[String]) -> Result<Vec<usize>> {
+    let missing: Vec<&String> = key.iter().filter(|k| !v.header.contains(k)).collect();
+    if !missing.is_empty() {
+        return Err(ErrorKind::Usage(format!(
+            "key column{} {} not in {}; its columns are: {}; pass --key with columns both versions have",
+            if missing.len() == 1 { "" } else { "s" },
+            missing
+                .iter()
+                .map(|m| format!("\"{m}\""))
+                .collect::<Vec<_>>()
+                .join(", "),
+            v.label(),
+            v.header.join(", ")
+        ))
+        .into());
+    }
+    Ok(key
+        .iter()
+        .filter_map(|k| v.header.iter().position(|h| h == k))
+        .collect())
+}
+
+/// At most this many columns on each side are considered as renamed ones (each costs 8 bytes
+/// per row while the diff runs).
+pub const MAX_RENAME_CANDIDATES: usize = 16;
+
+/// How the two headers relate before any row is read.
+#[derive(Debug, Clone)]
+pub struct Layout {
+    /// The headers are equal: fingerprints cover whole rows.
+    pub identical: bool,
+    /// Columns with the same name on both sides: (index in A, index in B), in A's order.
+    pub by_name: Vec<(usize, usize)>,
+    /// Columns only in A, only in B (indices).
+    pub only_a: Vec<usize>,
+    pub only_b: Vec<usize>,
+}
+
+impl Layout {
+    pub fn new(a: &Version, b: &Version) -> Layout {
+        let by_name: Vec<(usize, usize)> = a
+            .header
+            .iter()
+            .enumerate()
+            .filter_map(|(i, n)| b.header.iter().position(|m| m == n).map(|j| (i, j)))
+            .collect();
+        let only_a = (0..a.header.len())
+            .filter(|i| !by_name.iter().any(|p| p.0 == *i))
+            .collect();
+        let only_b = (0..b.header.len())
+            .filter(|j| !by_name.iter().any(|p| p.1 == *j))
+            .collect();
+        Layout {
+            identical: a.header == b.header,
+            by_name,
+            only_a,
+            only_b,
+        }
+    }
+
+    /// The rename candidates on each side (none unless both sides have columns of their own).
+    pub fn candidates(&self) -> (Vec<usize>, Vec<usize>) {
+        if self.only_a.is_empty() || self.only_b.is_empty() {
+            return (Vec::new(), Vec::new());
+        }
+        let cap = |v: &[usize]| v.iter().copied().take(MAX_RENAME_CANDIDATES).collect();
+        (cap(&self.only_a), cap(&self.only_b))
+    }
+
+    pub fn fp_cols(&self) -> (Option<Vec<usize>>, Option<Vec<usize>>) {
+        if self.identical {
+            (None, None)
+        } else {
+            (
+                Some(self.by_name.iter().map(|p| p.0).collect()),
+                Some(self.by_name.iter().map(|p| p.1).collect()),
+            )
+        }
+    }
+}
+
+/// Calls its argument with every matched pair (row in A, row in B) while it returns true;
+/// true when it did for all of them.
+pub(crate) type PairCheck<'a> = dyn FnMut(&mut dyn FnMut(u64, u64) -> bool) -> bool + 'a;
+
+/// Decides renames from the per-row hashes of the candidate columns over the matched pairs
+/// `pairs` (row in A, row in B), greedily in header order; returns the compared columns (in B's
+/// order) and the column changes.
+pub(crate) fn settle_columns(
+    a: &Version,
+    b: &Version,
+    layout: &Layout,
+    cand: (&[usize], &[usize]),
+    hashes: (&[Vec<u64>], &[Vec<u64>]),
+    pairs: &mut PairCheck<'_>,
+) -> (Vec<(usize, usize)>, ColumnChanges) {
+    let mut renamed: Vec<(usize, usize)> = Vec::new();
+    let mut taken = vec![false; cand.1.len()];
+    for (x, &ca) in cand.0.iter().enumerate() {
+        for (y, &cb) in cand.1.iter().enumerate() {
+            if taken[y] {
+                continue;
+            }
+            let (ha, hb) = (&hashes.0[x], &hashes.1[y]);
+            let mut any = false;
+            let all = pairs(&mut |ra, rb| {
+                any = true;
+                ha[ra as usize] == hb[rb as usize]
+            });
+            if all && any {
+                taken[y] = true;
+                renamed.push((ca, cb));
+                break;
+            }
+        }
+    }
+    let mut compared: Vec<(usize, usize)> = layout.by_name.clone();
+    compared.extend(renamed.iter().copied());
+    compared.sort_by_key(|p| p.1);
+    let reordered = compared.windows(2).any(|w| w[0].0 > w[1].0);
+    let changes = ColumnChanges {
+        added: layout
+            .only_b
+            .iter()
+            .filter(|j| !renamed.iter().any(|r| r.1 == **j))
+            .map(|&j| b.header[j].clone())
+            .collect(),
+        removed: layout
+            .only_a
+            .iter()
+            .filter(|i| !renamed.iter().any(|r| r.0 == **i))
+            .map(|&i| a.header[i].clone())
+            .collect(),
+        renamed: renamed
+            .iter()
+            .map(|&(i, j)| (a.header[i].clone(), b.header[j].clone()))
+            .collect(),
+        reordered,
+    };
+    (compared, changes)
+}
+
+/// The cells of `ra` and `rb` that differ, over the compared columns.
+pub(crate) fn cell_diffs(
+    compared: &[(usize, usize)],
+    b_header: &[String],
+    (a_row, ra): (u64, RowRef<'_>),
+    (b_row, rb): (u64, RowRef<'_>),
+    out: &mut Vec<CellDiff>,
+) -> usize {
+    let mut n = 0;
+    for &(i, j) in compared {
+        if ra.field(i) != rb.field(j) {
+            out.push(CellDiff {
+                a_row,
+                b_row,
+                column: b_header[j].clone(),
+                old: ra.text(i),
+                new: rb.text(j),
+            });
+            n += 1;
+        }
+    }
+    n
+}
+
+/// How many compared cells of the two rows are equal.
+pub(crate) fn equal_cells(compared: &[(usize, usize)], ra: RowRef<'_>, rb: RowRef<'_>) -> usize {
+    compared
+        .iter()
+        .filter(|&&(i, j)| ra.field(i) == rb.field(j))
+        .count()
+}
+
+/// Changed cells per compared column, in the second version's column order.
+pub(crate) fn count_by_column(
+    compared: &[(usize, usize)],
+    b: &Version,
+    cells: &[CellDiff],
+) -> Vec<(String, u64)> {
+    let mut counts: Vec<(String, u64)> = compared
+        .iter()
+        .map(|&(_, j)| (b.header[j].clone(), 0))
+        .collect();
+    for c in cells {
+        if let Some(e) = counts.iter_mut().find(|e| e.0 == c.column) {
+            e.1 += 1;
+        }
+    }
+    counts
+}
+
+/// Appends `b_row ← a_row` to the runs, extending the last run when it continues.
+pub(crate) fn push_pair(runs: &mut Vec<PairRun>, a_row: u64, b_row: u64, changed: bool) {
+    if let Some(r) = runs.last_mut() {
+        if r.changed == changed && r.a_start + r.len == a_row && r.b_start + r.len == b_row {
+            r.len += 1;
+            return;
+        }
+    }
+    runs.push(PairRun {
+        a_start: a_row,
+        b_start: b_row,
+        len: 1,
+        changed,
+    });
+}

@@ -1,0 +1,403 @@
+//! Reading the two versions for a diff: every row of a version's object (re-hashed as it is
+//! read, so a damaged object stops the diff), the row fingerprints of its row index object, and
+//! [`RowStore`], a compact owned store of the few rows a diff needs to look at again.
+
+use std::io::Read;
+use std::path::Path;
+
+use crate::error::{Error, ErrorKind, Result};
+use crate::hash::Hash;
+use crate::model::Version;
+use crate::store::objects::Objects;
+use crate::table::rowindex::{ENTRY_LEN, FORMAT_VERSION, HEADER_LEN, MAGIC};
+use crate::table::{for_each_record, RawRecord, ReadSettings};
+
+fn parse_hash(hex: &str) -> Result<Hash> {
+    hex.parse()
+        .map_err(|e: String| Error::from(ErrorKind::Database(e)))
+}
+
+/// A reader that hashes what passes through it.
+struct Hashing<R> {
+    inner: R,
+    hasher: blake3::Hasher,
+}
+
+impl<R: Read> Read for Hashing<R> {
+    fn read(&mut self, buf: &mut [u8]) -> std::io::Result<usize> {
+        let n = self.inner.read(buf)?;
+        self.hasher.update(&buf[..n]);
+        Ok(n)
+    }
+}
+
+fn check_hash(expected: &Hash, hasher: &blake3::Hasher) -> Result<()> {
+    let actual = Hash::from_bytes(*hasher.finalize().as_bytes());
+    if &actual != expected {
+        return Err(ErrorKind::ObjectCorrupt {
+            hash: expected.hex(),
+            actual: actual.hex(),
+        }
+        .into());
+    }
+    Ok(())
+}
+
+/// Calls `f` with every data row of `v` (0-based row and record) in order. Only the object
+/// store is needed, so that the two versions of a diff can be read on two threads.
+pub fn each_row(
+    objects: &Objects,
+    v: &Version,
+    mut f: impl FnMut(u64, RawRecord<'_>) -> Result<()>,
+) -> Result<()> {
+    let hash = parse_hash(&v.hash)?;
+    let mut reader = Hashing {
+        inner: objects.open_raw(&hash)?,
+        hasher: blake3::Hasher::new(),
+    };
+    let settings = ReadSettings::for_dialect(&v.dialect)?;
+    let mut header_seen = !v.dialect.has_header;
+    let mut row = 0u64;
+    for_each_record(Path::new(&v.label()), &mut reader, &settings, |r| {
+        if !header_seen {
+            header_seen = true;
+            return Ok(());
+        }
+        row += 1;
+        f(row - 1, r)
+    })?;
+    check_hash(&hash, &reader.hasher)
+}
+
+/// The fingerprint of every row of `v`, from its row index object (checked against its hash
+/// and its row count).
+pub fn fingerprints(objects: &Objects, v: &Version) -> Result<Vec<u64>> {
+    Ok(row_index(objects, v)?.0)
+}
+
+/// The fingerprint and the byte offset of every row of `v`, from its row index object.
+pub fn row_index(objects: &Objects, v: &Version) -> Result<(Vec<u64>, Vec<u64>)> {
+    let hash = parse_hash(&v.row_index)?;
+    let mut reader = Hashing {
+        inner: objects.open_raw(&hash)?,
+        hasher: blake3::Hasher::new(),
+    };
+    let damaged = |why: &str| {
+        Error::from(ErrorKind::Database(format!(
+            "the row index of {} is damaged ({why}); run `sluice verify`",
+            v.label()
+        )))
+    };
+    let io = |e| Error::io(Path::new(&v.row_index), e);
+    let mut head = [0u8; HEADER_LEN];
+    reader.read_exact(&mut head).map_err(io)?;
+    if &head[..4] != MAGIC || head[4..8] != FORMAT_VERSION.to_le_bytes() {
+        return Err(damaged("unknown header"));
+    }
+    let mut fps = Vec::with_capacity(v.n_rows as usize);
+    let mut offsets = Vec::with_capacity(v.n_rows as usize);
+    let mut buf = vec![0u8; ENTRY_LEN * 16384];
+    let mut filled = 0usize;
+    loop {
+        let n = reader.read(&mut buf[filled..]).map_err(io)?;
+        filled += n;
+        let whole = filled / ENTRY_LEN * ENTRY_LEN;
+        for e in buf[..whole].chunks_exact(ENTRY_LEN) {
+            let word = |i: usize| {
+                let mut w = [0u8; 8];
+                w.copy_from_slice(&e[i..i + 8]);
+                u64::from_le_bytes(w)
+            };
+            offsets.push(word(0));
+            fps.push(word(16));
+        }
+        buf.copy_within(whole..filled, 0);
+        filled -= whole;
+        if n == 0 {
+            break;
+        }
+    }
+    if filled != 0 || fps.len() as u64 != v.n_rows {
+        return Err(damaged("its length does not match the row count"));
+    }
+    check_hash(&hash, &reader.hasher)?;
+    Ok((fps, offsets))
+}
+
+/// Owned rows, kept compactly: the field bytes of all rows in one buffer and the field ends in
+/// another (no allocation per row or per cell), each row known by its 0-based row number.
+#[derive(Debug, Default, Clone)]
+pub struct RowStore {
+    rows: Vec<u64>,
+    fields: Vec<u8>,
+    ends: Vec<usize>,
+    /// Per stored row: where its fields and ends stop in the two buffers.
+    stops: Vec<(usize, usize)>,
+}
+
+/// A borrowed view of one stored row.
+#[derive(Debug, Clone, Copy)]
+pub struct RowRef<'a> {
+    fields: &'a [u8],
+    ends: &'a [usize],
+}
+
+impl<'a> From<&RawRecord<'a>> for RowRef<'a> {
+    fn from(r: &RawRecord<'a>) -> Self {
+        RowRef {
+            fields: r.fields,
+            ends: r.ends,
+        }
+    }
+}
+
+impl<'a> RowRef<'a> {
+    /// Equal values in every field (the same bytes split the same way).
+    pub fn same_values(&self, other: &RowRef<'_>) -> bool {
+        self.fields == other.fields && self.ends == other.ends
+    }
+
+    pub fn len(&self) -> usize {
+        self.ends.len()
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.ends.is_empty()
+    }
+
+    pub fn field(&self, i: usize) -> &'a [u8] {
+        let start = if i == 0 { 0 } else { self.ends[i - 1] };
+        &self.fields[start..self.ends[i]]
+    }
+
+    /// The cell as text (stored versions are UTF-8 once decoded; anything else is shown with
+    /// replacement characters rather than refused).
+    pub fn text(&self, i: usize) -> String {
+        String::from_utf8_lossy(self.field(i)).into_owned()
+    }
+
+    pub fn texts(&self) -> Vec<String> {
+        (0..self.len()).map(|i| self.text(i)).collect()
+    }
+}
+
+impl RowStore {
+    pub fn new() -> Self {
+        RowStore::default()
+    }
+
+    pub fn len(&self) -> usize {
+        self.rows.len()
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.rows.is_empty()
+    }
+
+    /// Bytes of cell data held.
+    pub fn n_bytes(&self) -> usize {
+        self.fields.len()
+    }
+
+    /// Adds row `row`; rows must be pushed in increasing order.
+    pub fn push(&mut self, row: u64, r: &RawRecord<'_>) {
+        debug_assert!(self.rows.last().is_none_or(|&l| l < row));
+        self.rows.push(row);
+        // Field ends are kept relative to the row's first byte, as the parser gives them.
+        self.fields.extend_from_slice(r.fields);
+        self.ends.extend_from_slice(r.ends);
+        self.stops.push((self.fields.len(), self.ends.len()));
+    }
+
+    /// Adds a row held elsewhere; rows must be pushed in increasing order.
+    pub fn push_ref(&mut self, row: u64, r: RowRef<'_>) {
+        self.push(
+            row,
+            &RawRecord {
+                fields: r.fields,
+                ends: r.ends,
+                byte: 0,
+                line: 0,
+                index: 0,
+            },
+        );
+    }
+
+    /// The row number of the `i`-th stored row.
+    pub fn row_at(&self, i: usize) -> u64 {
+        self.rows[i]
+    }
+
+    /// The `i`-th stored row.
+    pub fn at(&self, i: usize) -> RowRef<'_> {
+        let (fs, es) = if i == 0 { (0, 0) } else { self.stops[i - 1] };
+        let (fe, ee) = self.stops[i];
+        RowRef {
+            fields: &self.fields[fs..fe],
+            ends: &self.ends[es..ee],
+        }
+    }
+
+    /// Row `row`, if it was stored.
+    pub fn get(&self, row: u64) -> Option<RowRef<'_>> {
+        self.rows.binary_search(&row).ok().map(|i| self.at(i))
+    }
+}
+
+/// Runs `fa` on another thread and `fb` on this one, and returns both results: the two
+/// versions of a diff are read at the same time, one per core.
+pub fn both<A: Send, B>(
+    fa: impl FnOnce() -> Result<A> + Send,
+    fb: impl FnOnce() -> Result<B>,
+) -> Result<(A, B)> {
+    std::thread::scope(|s| {
+        let h = s.spawn(fa);
+        let rb = fb();
+        let ra = h
+            .join()
+            .unwrap_or_else(|panic| std::panic::resume_unwind(panic));
+        Ok((ra?, rb?))
+    })
+}
+
+/// Whether rows of `v` can be cut out of its bytes by offset and parsed one by one: UTF-8
+/// text, where the row index's byte offsets point into the bytes as stored.
+pub fn cuttable(v: &Version) -> bool {
+    v.dialect.encoding == "utf-8"
+}
+
+/// The bytes of single rows of a stored version, cut out by the offsets of its row index while
+/// the object is read once from start to end (and re-hashed; [`RawRows::finish`] checks it).
+/// Nothing is parsed but the rows asked for.
+pub struct RawRows {
+    reader: Hashing<Box<dyn Read + Send>>,
+    hash: Hash,
+    offsets: Vec<u64>,
+    n_bytes: u64,
+    buf: Vec<u8>,
+    /// The object offset of `buf[0]`.
+    buf_start: u64,
+    delimiter: u8,
+    label: String,
+}
+
+impl RawRows {
+    pub fn new(objects: &Objects, v: &Version, offsets: Vec<u64>) -> Result<RawRows> {
+        let hash = parse_hash(&v.hash)?;
+        Ok(RawRows {
+            reader: Hashing {
+                inner: objects.open_raw(&hash)?,
+                hasher: blake3::Hasher::new(),
+            },
+            hash,
+            offsets,
+            n_bytes: v.n_bytes,
+            buf: Vec::new(),
+            buf_start: 0,
+            delimiter: v.dialect.delimiter_byte(),
+            label: v.label(),
+        })
+    }
+
+    /// The bytes of row `row` (its record, line ending and any blank lines after it). Rows
+    /// must be asked for in increasing order.
+    pub fn bytes(&mut self, row: u64) -> Result<&[u8]> {
+        let i = row as usize;
+        let (Some(&start), end) = (self.offsets.get(i), self.offsets.get(i + 1)) else {
+            return Err(self.short());
+        };
+        let end = end.copied().unwrap_or(self.n_bytes);
+        if start < self.buf_start || end < start {
+            return Err(self.short());
+        }
+        // Read until the row is whole, first dropping what lies before it (only then, so that
+        // the buffer moves once per piece read, not once per row).
+        while self.buf_start + (self.buf.len() as u64) < end {
+            let drop_n = ((start - self.buf_start) as usize).min(self.buf.len());
+            if drop_n > 0 {
+                self.buf.drain(..drop_n);
+                self.buf_start += drop_n as u64;
+            }
+            let have = self.buf.len();
+            self.buf.resize(have + crate::hash::STREAM_BUF, 0);
+            let n = self
+                .reader
+                .read(&mut self.buf[have..])
+                .map_err(|e| Error::io(Path::new(&self.label), e))?;
+            self.buf.truncate(have + n);
+            if n == 0 {
+                return Err(self.short());
+            }
+        }
+        let from = (start - self.buf_start) as usize;
+        let to = (end - self.buf_start) as usize;
+        Ok(&self.buf[from..to])
+    }
+
+    /// Parses row `row` into `out`.
+    pub fn parse_into(&mut self, row: u64, out: &mut RowStore) -> Result<()> {
+        let delimiter = self.delimiter;
+        let bytes = self.bytes(row)?;
+        let mut p = crate::table::parse::Parser::new(delimiter, 0);
+        let mut done = false;
+        let mut keep = |r: RawRecord<'_>| -> Result<()> {
+            if !done {
+                out.push(row, &r);
+                done = true;
+            }
+            Ok(())
+        };
+        p.feed(bytes, &mut keep)?;
+        let closed = p.finish(&mut keep)?;
+        if closed.is_err() || !done {
+            return Err(self.short());
+        }
+        Ok(())
+    }
+
+    /// Reads the rest of the object and checks its hash.
+    pub fn finish(mut self) -> Result<()> {
+        let mut sink = vec![0u8; crate::hash::STREAM_BUF];
+        while self
+            .reader
+            .read(&mut sink)
+            .map_err(|e| Error::io(Path::new(&self.label), e))?
+            > 0
+        {}
+        check_hash(&self.hash, &self.reader.hasher)
+    }
+
+    fn short(&self) -> Error {
+        ErrorKind::Database(format!(
+            "the bytes of {} do not match its row index; run `sluice verify`",
+            self.label
+        ))
+        .into()
+    }
+}
+
+/// Reads the rows `wanted` (0-based, ascending) of `v` into a [`RowStore`].
+pub fn rows_of(objects: &Objects, v: &Version, wanted: &[u64]) -> Result<RowStore> {
+    let mut out = RowStore::new();
+    if wanted.is_empty() {
+        return Ok(out);
+    }
+    if cuttable(v) {
+        let (_, offsets) = row_index(objects, v)?;
+        let mut raw = RawRows::new(objects, v, offsets)?;
+        for &w in wanted {
+            raw.parse_into(w, &mut out)?;
+        }
+        raw.finish()?;
+        return Ok(out);
+    }
+    let mut next = 0usize;
+    each_row(objects, v, |row, r| {
+        if next < wanted.len() && wanted[next] == row {
+            out.push(row, &r);
+            next += 1;
+        }
+        Ok(())
+    })?;
+    Ok(out)
+}

@@ -1,0 +1,86 @@
+//! The first pass over a version: per row, the hash of its key, the fingerprint of the cells
+//! the two versions share, and the hash of each column that might be a renamed one. All of it
+//! fixed-size numbers, so this pass keeps a few words per row and no values.
+
+use xxhash_rust::xxh3::xxh3_64_with_seed;
+
+use super::read::each_row;
+use crate::error::Result;
+use crate::model::Version;
+use crate::store::objects::Objects;
+use crate::table::rowindex::fingerprint;
+use crate::table::RawRecord;
+
+/// What to compute for each row of one side.
+pub struct ScanPlan<'a> {
+    /// Key columns (indices in this side's header); `None`: no key.
+    pub key: Option<&'a [usize]>,
+    /// The columns the fingerprint covers, in a common order; `None`: the whole row, with the
+    /// row index's own fingerprint definition.
+    pub fp_cols: Option<&'a [usize]>,
+    /// Columns whose per-row cell hashes are kept (rename candidates).
+    pub cand_cols: &'a [usize],
+    /// The seed of the key hash (changed when two different keys share a hash).
+    pub seed: u64,
+    pub null_tokens: &'a [String],
+}
+
+/// How many rows with a blank key are listed in an error.
+pub const SHOWN: usize = 5;
+
+#[derive(Debug, Default)]
+pub struct Scan {
+    /// (key hash, row), one per row, in row order until sorted.
+    pub keys: Vec<(u64, u64)>,
+    pub fps: Vec<u64>,
+    /// Per candidate column, per row.
+    pub cand: Vec<Vec<u64>>,
+    /// The first rows whose key is blank, and how many there are.
+    pub blank: Vec<u64>,
+    pub n_blank: u64,
+}
+
+/// A length-prefixed concatenation of some cells, hashed: different cell splits never give the
+/// same bytes.
+pub fn cells_hash(r: &RawRecord<'_>, cols: &[usize], seed: u64, scratch: &mut Vec<u8>) -> u64 {
+    scratch.clear();
+    for &c in cols {
+        let v = r.field(c);
+        scratch.extend_from_slice(&(v.len() as u64).to_le_bytes());
+        scratch.extend_from_slice(v);
+    }
+    xxh3_64_with_seed(scratch, seed)
+}
+
+pub fn scan(objects: &Objects, v: &Version, plan: &ScanPlan<'_>) -> Result<Scan> {
+    let n = v.n_rows as usize;
+    let mut s = Scan {
+        keys: Vec::with_capacity(if plan.key.is_some() { n } else { 0 }),
+        fps: Vec::with_capacity(n),
+        cand: vec![Vec::with_capacity(n); plan.cand_cols.len()],
+        ..Scan::default()
+    };
+    let mut scratch = Vec::new();
+    let blank = |b: &[u8]| b.is_empty() || plan.null_tokens.iter().any(|t| t.as_bytes() == b);
+    each_row(objects, v, |row, r| {
+        if let Some(k) = plan.key {
+            if k.iter().any(|&c| blank(r.field(c))) {
+                if s.blank.len() < SHOWN {
+                    s.blank.push(row);
+                }
+                s.n_blank += 1;
+            }
+            s.keys
+                .push((cells_hash(&r, k, plan.seed, &mut scratch), row));
+        }
+        s.fps.push(match plan.fp_cols {
+            None => fingerprint(&r, &mut scratch),
+            Some(cols) => cells_hash(&r, cols, 0, &mut scratch),
+        });
+        for (i, &c) in plan.cand_cols.iter().enumerate() {
+            s.cand[i].push(xxh3_64_with_seed(r.field(c), 0));
+        }
+        Ok(())
+    })?;
+    Ok(s)
+}

@@ -1,0 +1,416 @@
+//! `sluice diff`: the minimal edit script against the worked example of Myers' paper, the diff
+//! by key against pandas on generated versions with known edits, golden files of the text
+//! form, the errors, the column changes, and the law "diff, then apply the edit script, gives
+//! the second version" as a property test.
+
+mod common;
+
+use std::path::PathBuf;
+use std::process::Command;
+
+use common::*;
+use proptest::prelude::*;
+
+fn golden(name: &str, actual: &str) {
+    let path = PathBuf::from(env!("CARGO_MANIFEST_DIR"))
+        .join("tests/golden")
+        .join(name);
+    if std::env::var_os("SLUICE_BLESS").is_some() {
+        std::fs::write(&path, actual).unwrap();
+    }
+    let expected = std::fs::read_to_string(&path).unwrap_or_else(|_| {
+        panic!(
+            "golden file {} (run with SLUICE_BLESS=1 once)",
+            path.display()
+        )
+    });
+    if expected != actual {
+        panic!(
+            "\n{name}: expected:\n{}\n{expected}{}\nactual:\n{}\n{actual}{}\n",
+            rule(),
+            rule(),
+            rule(),
+            rule()
+        );
+    }
+}
+
+/// A store holding `first` and `second` as versions 1 and 2 of dataset `t`.
+fn two_versions(first: &str, second: &str, key: Option<&str>) -> Sandbox {
+    let s = Sandbox::with_store();
+    s.file("first.csv", first);
+    s.file("second.csv", second);
+    let mut args = vec!["ingest", "first.csv", "--as", "t"];
+    if let Some(k) = key {
+        args.extend(["--key", k]);
+    }
+    s.ok(&args);
+    s.ok(&["ingest", "second.csv", "--as", "t"]);
+    s
+}
+
+fn one_column(rows: &str) -> String {
+    let mut t = String::from("letter\n");
+    for c in rows.chars() {
+        t.push(c);
+        t.push('\n');
+    }
+    t
+}
+
+// Myers, "An O(ND) Difference Algorithm and Its Variations", Algorithmica 1 (1986), the worked
+// example of section 2: A = ABCABBA, B = CBABAC have D = 5 and a longest common subsequence of
+// length 4 (e.g. CABA). In a one-column table a changed cell is a whole different row, so no
+// removed and added rows are paired and the counts are those of the minimal script itself.
+#[test]
+fn myers_paper_example_has_d_5_and_4_rows_in_common() {
+    let s = two_versions(&one_column("ABCABBA"), &one_column("CBABAC"), None);
+    let d = s.json(&["diff", "t@1", "t@2", "--json"]);
+    assert_eq!(d["matched_by"], "order");
+    assert_eq!(d["alignment"]["edit_distance"], 5);
+    assert_eq!(d["alignment"]["common_rows"], 4);
+    assert_eq!(d["rows"]["unchanged"], 4);
+    assert_eq!(d["rows"]["removed"], 3);
+    assert_eq!(d["rows"]["added"], 2);
+    assert_eq!(d["rows"]["changed"], 0);
+    // The unchanged rows form a common subsequence of length 4 of both sequences.
+    let removed: Vec<u64> = d["changes"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter(|c| c["kind"] == "removed")
+        .map(|c| c["from_row"].as_u64().unwrap())
+        .collect();
+    let kept: String = "ABCABBA"
+        .chars()
+        .enumerate()
+        .filter(|(i, _)| !removed.contains(&(*i as u64 + 1)))
+        .map(|(_, c)| c)
+        .collect();
+    assert_eq!(kept.len(), 4);
+    let mut rest = "CBABAC".chars();
+    assert!(
+        kept.chars().all(|k| rest.any(|c| c == k)),
+        "{kept} is not a subsequence of CBABAC"
+    );
+}
+
+/// The interpreter of the pinned reference environment (tests/reference/pyenv.py).
+fn reference_python() -> String {
+    if let Some(p) = std::env::var_os("SLUICE_REFERENCE_PYTHON") {
+        return p.to_string_lossy().into_owned();
+    }
+    let script = concat!(env!("CARGO_MANIFEST_DIR"), "/tests/reference/pyenv.py");
+    let out = Command::new("python3")
+        .arg(script)
+        .output()
+        .expect("python3 is needed for the reference checks");
+    assert!(
+        out.status.success(),
+        "tests/reference/pyenv.py failed: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    String::from_utf8(out.stdout).unwrap().trim().to_string()
+}
+
+// The reference: pandas 3.1.1 (PyPI, pinned in tests/reference/requirements.txt), an outer
+// merge on the key (tests/reference/diff_pandas.py). Both it and sluice must also agree with
+// what the generator (sluice::demo::revision_pair) records that it changed.
+#[test]
+fn keyed_diff_counts_match_pandas_and_the_generator() {
+    let s = Sandbox::with_store();
+    let (mut first, mut second) = (Vec::new(), Vec::new());
+    let rev = sluice::demo::revision_pair(&mut first, &mut second, 100_000).unwrap();
+    let a = s.file("first.csv", &first);
+    let b = s.file("second.csv", &second);
+    s.ok(&["ingest", "first.csv", "--as", "orders"]);
+    s.ok(&["ingest", "second.csv", "--as", "orders"]);
+    let d = s.json(&[
+        "diff", "orders@1", "orders@2", "--key", "order_id", "--json", "--stat",
+    ]);
+
+    let out = Command::new(reference_python())
+        .arg(concat!(
+            env!("CARGO_MANIFEST_DIR"),
+            "/tests/reference/diff_pandas.py"
+        ))
+        .arg(&a)
+        .arg(&b)
+        .arg("order_id")
+        .output()
+        .expect("run the pandas reference");
+    assert!(
+        out.status.success(),
+        "diff_pandas.py failed: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let pd: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(pd["pandas"], "3.1.1");
+
+    assert!(rev.changed_rows > 500 && rev.removed_rows > 250 && rev.added_rows > 250);
+    for (ours, theirs, generator) in [
+        (&d["rows"]["changed"], &pd["changed_rows"], rev.changed_rows),
+        (&d["rows"]["removed"], &pd["removed"], rev.removed_rows),
+        (&d["rows"]["added"], &pd["added"], rev.added_rows),
+    ] {
+        assert_eq!(ours.as_u64(), Some(generator));
+        assert_eq!(theirs.as_u64(), Some(generator));
+    }
+    let by_column = d["cells"]["by_column"].as_array().unwrap();
+    assert_eq!(by_column.len(), rev.changed_cells.len());
+    for (entry, (column, n)) in by_column.iter().zip(&rev.changed_cells) {
+        assert_eq!(entry["column"], column.as_str());
+        assert_eq!(entry["changed"].as_u64(), Some(*n), "column {column}");
+        assert_eq!(
+            pd["changed_cells"][column].as_u64(),
+            Some(*n),
+            "pandas, column {column}"
+        );
+    }
+    assert_eq!(d["listed"], 0);
+}
+
+const SHOPS_1: &str = "order_id,customer,service,parts_cost\n\
+41001,Ada Quenwick ,Brake Tune ,12.50\n\
+41002,Bram Oxley,puncture repair,4.00\n\
+41003,Cora Fenn,gear indexing,0\n\
+41004,Dov Marsh,wheel true,7.25\n";
+
+const SHOPS_2: &str = "order_id,customer,service,parts_cost\n\
+41001,Ada Quenwick,Brake Tune,12.50\n\
+41003,Cora Fenn,gear indexing,0\n\
+41004,Dov Marsh,wheel truing,7.25\n\
+41005,Esk Tallow,chain swap,18.00\n";
+
+#[test]
+fn keyed_text_output_matches_the_golden_file() {
+    let s = two_versions(SHOPS_1, SHOPS_2, Some("order_id"));
+    let out = s.ok(&["diff", "t@1", "t@2"]);
+    assert_contains(&out, "Ada Quenwick[-␣]");
+    golden("diff_keyed.txt", &out);
+    golden(
+        "diff_keyed_stat.txt",
+        &s.ok(&["diff", "t@1", "t@2", "--stat"]),
+    );
+}
+
+#[test]
+fn unkeyed_text_output_matches_the_golden_file() {
+    let s = two_versions(SHOPS_1, SHOPS_2, None);
+    let out = s.ok(&["diff", "t@1", "t@2"]);
+    assert_contains(&out, "\"Brake Tune[-␣]\" → \"Brake Tune\"");
+    golden("diff_unkeyed.txt", &out);
+}
+
+#[test]
+fn limit_caps_the_listing_but_not_the_counts() {
+    let s = two_versions(SHOPS_1, SHOPS_2, Some("order_id"));
+    let d = s.json(&["diff", "t@1", "t@2", "--json", "--limit", "1"]);
+    assert_eq!(d["n_changes"], 4);
+    assert_eq!(d["listed"], 1);
+    assert_eq!(d["rows"]["changed"], 2);
+    assert_eq!(d["changes"][0]["key"], serde_json::json!(["41001"]));
+    assert_eq!(d["changes"][0]["cells"][0]["old"], "Ada Quenwick ");
+    assert_eq!(d["changes"][0]["cells"][0]["new"], "Ada Quenwick");
+    let text = s.ok(&["diff", "t@1", "t@2", "--limit", "1"]);
+    assert_contains(&text, "… and 3 more changes not listed (--limit 1)");
+}
+
+#[test]
+fn no_escape_codes_when_not_at_a_terminal_or_with_no_color() {
+    let s = two_versions(SHOPS_1, SHOPS_2, Some("order_id"));
+    // Standard output is a pipe here: no colour, whether NO_COLOR is set or not.
+    let with = s.command(&["diff", "t@1", "t@2"]).output().unwrap();
+    let without = s
+        .command(&["diff", "t@1", "t@2"])
+        .env_remove("NO_COLOR")
+        .output()
+        .unwrap();
+    for out in [&with, &without] {
+        assert!(out.status.success());
+        assert!(!out.stdout.contains(&0x1b), "escape code in the output");
+    }
+    assert_eq!(with.stdout, without.stdout);
+}
+
+#[test]
+fn identical_versions_have_no_differences() {
+    let s = Sandbox::with_store();
+    s.file("a.csv", SHOPS_1);
+    s.ok(&["ingest", "a.csv", "--as", "t"]);
+    s.ok(&["apply", "t", "rename", "service=job", "--why", "one name"]);
+    s.ok(&["apply", "t", "rename", "job=service", "--why", "back again"]);
+    let out = s.ok(&["diff", "t@1", "t@3"]);
+    assert_contains(&out, "no differences");
+    let d = s.json(&["diff", "t@1", "t@3", "--json", "--key", "order_id"]);
+    assert_eq!(d["rows"]["unchanged"], 4);
+    assert_eq!(d["n_changes"], 0);
+}
+
+#[test]
+fn duplicate_keys_are_listed_with_their_rows() {
+    let s = two_versions("id,v\n1,a\n2,b\n1,c\n3,d\n2,e\n", "id,v\n1,a\n", None);
+    let err = s.fails(2, &["diff", "t@1", "t@2", "--key", "id"]);
+    assert_contains(&err, "t@1: key id is not unique");
+    assert_contains(&err, "\"1\" (data rows 1, 3)");
+    assert_contains(&err, "\"2\" (data rows 2, 5)");
+}
+
+#[test]
+fn blank_keys_are_listed_with_their_rows() {
+    let s = two_versions("id,v\n1,a\n2,b\n", "id,v\n1,a\n,b\n3,c\n,d\n", None);
+    let err = s.fails(2, &["diff", "t@1", "t@2", "--key", "id"]);
+    assert_contains(&err, "t@2: blank key id in 2 data rows (2, 4)");
+}
+
+#[test]
+fn a_key_column_missing_in_one_version_is_named() {
+    let s = two_versions("id,v\n1,a\n", "code,v\n1,a\n", None);
+    let err = s.fails(2, &["diff", "t@1", "t@2", "--key", "id"]);
+    assert_contains(&err, "key column \"id\" not in t@2");
+    assert_contains(&err, "its columns are: code, v");
+}
+
+#[test]
+fn unknown_versions_are_refused() {
+    let s = two_versions("id\n1\n", "id\n2\n", None);
+    let err = s.fails(2, &["diff", "t@1", "t@9"]);
+    assert_contains(&err, "unknown version \"t@9\"");
+    let err = s.fails(2, &["diff", "nothing", "t@1"]);
+    assert_contains(&err, "unknown version \"nothing\"");
+}
+
+#[test]
+fn the_declared_key_is_used_without_key_option() {
+    let s = two_versions("id,v\n1,a\n2,b\n", "id,v\n2,b\n1,z\n", Some("id"));
+    let d = s.json(&["diff", "t@1", "t@2", "--json"]);
+    assert_eq!(d["matched_by"], "key");
+    assert_eq!(d["rows"]["changed"], 1);
+    assert_eq!(d["rows"]["unchanged"], 1);
+    assert_eq!(d["changes"][0]["from_row"], 1);
+    assert_eq!(d["changes"][0]["to_row"], 2);
+}
+
+#[test]
+fn added_removed_renamed_and_reordered_columns() {
+    let first =
+        "id,phone,notes,shop\n1,555-01,x,Quillby\n2,555-02,y,Oxwater\n3,555-03,,Fennmarsh\n";
+    // phone becomes telephone (same values), notes is removed, grade is added, shop moves
+    // before the telephone column, and one shop changes.
+    let second =
+        "id,shop,telephone,grade\n1,Quillby,555-01,A\n2,Oxwater,555-02,B\n3,Fenmarsh,555-03,C\n";
+    for key in [Some("id"), None] {
+        let s = two_versions(first, second, key);
+        let d = s.json(&["diff", "t@1", "t@2", "--json"]);
+        let cols = &d["columns"];
+        assert_eq!(cols["added"], serde_json::json!(["grade"]), "{key:?}");
+        assert_eq!(cols["removed"], serde_json::json!(["notes"]));
+        assert_eq!(
+            cols["renamed"],
+            serde_json::json!([{"from": "phone", "to": "telephone"}])
+        );
+        assert_eq!(cols["reordered"], true);
+        assert_eq!(d["rows"]["changed"], 1);
+        assert_eq!(d["rows"]["unchanged"], 2);
+        assert_eq!(d["cells"]["changed"], 1);
+        let cells = &d["changes"][0]["cells"];
+        assert_eq!(cells[0]["column"], "shop");
+        assert_eq!(cells[0]["old"], "Fennmarsh");
+        let text = s.ok(&["diff", "t@1", "t@2"]);
+        assert_contains(
+            &text,
+            "columns  added grade; removed notes; renamed phone → telephone; reordered (id, shop, telephone, grade)",
+        );
+    }
+}
+
+// ---- the law: the edit script applied to the first version gives the second -----------------
+
+fn csv_of(rows: &[Vec<String>]) -> String {
+    let mut t = String::from("a,b,c\n");
+    for r in rows {
+        t.push_str(&r.join(","));
+        t.push('\n');
+    }
+    t
+}
+
+/// Applies the pairing to `a`: each row of the second version is a row of the first (with the
+/// changed cells replaced) or an added row.
+fn apply(d: &sluice::diff::Diff, a: &[Vec<String>]) -> Vec<Vec<String>> {
+    let p = &d.pairing;
+    let n_b = d.to.n_rows as usize;
+    let mut out: Vec<Option<Vec<String>>> = vec![None; n_b];
+    for run in &p.runs {
+        for k in 0..run.len {
+            out[(run.b_start + k) as usize] = Some(a[(run.a_start + k) as usize].clone());
+        }
+    }
+    for c in &p.cells {
+        let col = d.to.header.iter().position(|h| *h == c.column).unwrap();
+        let row = out[c.b_row as usize].as_mut().unwrap();
+        assert_eq!(row[col], c.old);
+        row[col] = c.new.clone();
+    }
+    for &y in &p.added {
+        assert!(out[y as usize].is_none());
+        out[y as usize] = Some(d.to_rows.get(y).unwrap().texts());
+    }
+    // Every row of the first version is carried by a run or removed, never both.
+    let mut carried = vec![0u32; a.len()];
+    for run in &p.runs {
+        for k in 0..run.len {
+            carried[(run.a_start + k) as usize] += 1;
+        }
+    }
+    for &x in &p.removed {
+        carried[x as usize] += 1;
+    }
+    assert!(carried.iter().all(|&n| n == 1), "{carried:?}");
+    out.into_iter()
+        .map(|r| r.expect("every row explained"))
+        .collect()
+}
+
+fn table() -> impl Strategy<Value = Vec<Vec<String>>> {
+    // Few distinct values, so that rows repeat and blocks of changes are common.
+    let cell = prop::sample::select(vec!["x", "y", "z", "x ", ""]).prop_map(String::from);
+    prop::collection::vec(prop::collection::vec(cell, 3), 0..12)
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig::with_cases(48))]
+    #[test]
+    fn applying_the_edit_script_gives_the_second_version(a in table(), b in table()) {
+        let dir = tempfile::tempdir().unwrap();
+        let agent = sluice::model::Agent { identity: AGENT.into(), source: "option".into() };
+        let mut store = sluice::store::Store::init_recorded(dir.path(), &agent).unwrap();
+        let mut versions = Vec::new();
+        for (name, rows) in [("a.csv", &a), ("b.csv", &b)] {
+            let path = dir.path().join(name);
+            std::fs::write(&path, csv_of(rows)).unwrap();
+            let opts = sluice::intake::IngestOptions {
+                dataset: "t".into(), key: None, reason: None, delimiter: Some(b','),
+                has_header: true, encoding: None, null_tokens: vec![], agent: agent.clone(),
+            };
+            match sluice::intake::ingest(&mut store, &path, &opts).unwrap() {
+                sluice::intake::IngestOutcome::Recorded { version, .. }
+                | sluice::intake::IngestOutcome::Unchanged { version } => versions.push(version),
+            }
+        }
+        let d = sluice::diff::diff_versions(
+            &store,
+            &versions[0],
+            &versions[1],
+            &sluice::diff::DiffOptions { key: sluice::diff::KeyChoice::Unkeyed },
+        ).unwrap();
+        prop_assert_eq!(apply(&d, &a), b.clone());
+        // The counts of the minimal script: D = rows of both minus twice the common ones.
+        let al = d.alignment.unwrap();
+        prop_assert_eq!(al.edit_distance, (a.len() + b.len()) as u64 - 2 * al.common_rows);
+        prop_assert_eq!(
+            d.n_unchanged() + d.n_changed() + d.n_removed(),
+            a.len() as u64
+        );
+    }
+}
