@@ -5,8 +5,39 @@
 //! cargo run --release --example bench -- intake
 //! cargo run --release --example bench        # every benchmark there is
 //! cargo run --release --example bench -- intake --quick          # 100,000 rows only
+//! cargo run --release --example bench -- ops                     # 1,000,000 rows
+//! cargo run --release --example bench -- ops --quick
 //! cargo run --release --example bench -- intake --rows 200000,2000000
 //! ```
+//!
+//! # `ops`
+//!
+//! Measures a cleaning plan on the Quillby work-order file of 1,000,000 rows (the intake
+//! benchmark's file) against the same cleaning written in pandas and in polars, on the same
+//! file in the same run. The plan, written by the benchmark into its scratch folder, takes the
+//! file in as `orders` and runs `trim` (every column), `case` (email, to lower case), `dedupe`
+//! (whole rows, the first kept), `number` (parts_cost), `drop` (`status = 'cancelled'`) and
+//! `summarize` (sum of parts_cost by technician, `as` totals). The Quillby export has no shop
+//! column, so the totals are per technician rather than per shop. sluice's time is `sluice run
+//! PLAN` in a fresh store (made by `sluice init`, not timed) followed by `sluice cat orders -o
+//! cleaned.csv`, since writing the cleaned CSV is part of the job; the run alone is shown too,
+//! and the peak memory is the larger of the two processes'. The baselines are the scripts
+//! `examples/bench_ops_pandas.py` (pandas: `read_csv(dtype=str, keep_default_na=False)`,
+//! `str.strip`, `str.lower`, `drop_duplicates`, `to_numeric` after removing `€` and thousands
+//! commas, a filter, `groupby(...).sum()`, `to_csv`) and `examples/bench_ops_polars.py` (the same
+//! in polars, eager), each timed whole, interpreter start-up and imports included, with the
+//! interpreter of the pinned reference environment (`python3 tests/reference/pyenv.py`).
+//!
+//! Checks, not timed: the three agree on the number of cleaned rows and, per technician, on the
+//! row count and the sum (pandas and polars sum in floating point, so their sums are compared
+//! with sluice's exact ones within 0.01); a disagreement is printed as a finding. The store's
+//! footprint: the provenance stored for the run (how much `lineage.db` plus `lineage.db-wal`
+//! grew over a fresh store's) and the bytes of the objects (every version's bytes, the raw copy
+//! among them, and their row indexes), each as a percentage of the input file.
+//!
+//! Goals: sluice (run + cat, recording full provenance) at least 5x faster than pandas and no
+//! slower than polars; peak memory under 1 GiB; provenance under 5% of the input. Timing as for
+//! `intake`.
 //!
 //! # `diff`
 //!
@@ -80,6 +111,7 @@ const AGENT: &str = "Bench Runner <bench@example.org>";
 const DEFAULT_ROWS: &[u64] = &[1_000_000, 5_000_000];
 const QUICK_ROWS: &[u64] = &[100_000];
 const DIFF_ROWS: &[u64] = &[1_000_000];
+const OPS_ROWS: &[u64] = &[1_000_000];
 
 #[derive(Debug, Parser)]
 #[command(
@@ -117,6 +149,8 @@ enum Bench {
     Intake,
     /// `sluice diff` (by key and by order) against GNU diff, git diff, pandas and polars
     Diff,
+    /// A cleaning plan (`sluice run` + `sluice cat`) against the same cleaning in pandas and polars
+    Ops,
 }
 
 impl Bench {
@@ -124,6 +158,16 @@ impl Bench {
         match self {
             Bench::Intake => "intake",
             Bench::Diff => "diff",
+            Bench::Ops => "ops",
+        }
+    }
+
+    /// The sizes the benchmark runs at when neither `--rows` nor `--quick` is given.
+    fn default_rows(self) -> &'static [u64] {
+        match self {
+            Bench::Intake => DEFAULT_ROWS,
+            Bench::Diff => DIFF_ROWS,
+            Bench::Ops => OPS_ROWS,
         }
     }
 }
@@ -146,9 +190,8 @@ struct Ctx {
     data_dir: PathBuf,
     tmp_dir: PathBuf,
     results_dir: PathBuf,
-    rows: Vec<u64>,
-    /// Row counts for `diff` (two versions of each size).
-    diff_rows: Vec<u64>,
+    /// The sizes asked for (`--rows` or `--quick`); `None`: each benchmark's default.
+    rows: Option<Vec<u64>>,
     runs: u32,
     bench_exe: PathBuf,
 }
@@ -181,6 +224,7 @@ fn run_bench(bench: Bench, ctx: &Ctx) -> Result<()> {
     let result = match bench {
         Bench::Intake => intake(ctx)?,
         Bench::Diff => diff(ctx)?,
+        Bench::Ops => ops(ctx)?,
     };
     fs::create_dir_all(&ctx.results_dir)
         .with_context(|| format!("creating {}", ctx.results_dir.display()))?;
@@ -219,14 +263,9 @@ fn context(cli: &Cli) -> Result<Ctx> {
     }
     check_fresh(&sluice)?;
     let rows = match (&cli.rows, cli.quick) {
-        (Some(r), _) => r.clone(),
-        (None, true) => QUICK_ROWS.to_vec(),
-        (None, false) => DEFAULT_ROWS.to_vec(),
-    };
-    let diff_rows = match (&cli.rows, cli.quick) {
-        (Some(r), _) => r.clone(),
-        (None, true) => QUICK_ROWS.to_vec(),
-        (None, false) => DIFF_ROWS.to_vec(),
+        (Some(r), _) => Some(r.clone()),
+        (None, true) => Some(QUICK_ROWS.to_vec()),
+        (None, false) => None,
     };
     let tmp_dir = target.join("bench-tmp");
     if tmp_dir.exists() {
@@ -239,10 +278,18 @@ fn context(cli: &Cli) -> Result<Ctx> {
         tmp_dir,
         results_dir: target.join("bench-results"),
         rows,
-        diff_rows,
         runs: cli.runs,
         bench_exe,
     })
+}
+
+impl Ctx {
+    /// The row counts `bench` runs at.
+    fn rows_for(&self, bench: Bench) -> Vec<u64> {
+        self.rows
+            .clone()
+            .unwrap_or_else(|| bench.default_rows().to_vec())
+    }
 }
 
 /// `cargo run --example` builds the library and the example, not the binary the benchmark runs:
@@ -324,14 +371,23 @@ fn print_machine(ctx: &Ctx) {
         "  git:     {}",
         git_version().unwrap_or_else(|| "not found".into())
     );
-    println!(
-        "  rows:    {}",
-        ctx.rows
-            .iter()
+    let list = |rows: &[u64]| {
+        rows.iter()
             .map(|&n| thousands(n))
             .collect::<Vec<_>>()
             .join(", ")
-    );
+    };
+    match &ctx.rows {
+        Some(rows) => println!("  rows:    {}", list(rows)),
+        None => println!(
+            "  rows:    each benchmark's default ({})",
+            Bench::value_variants()
+                .iter()
+                .map(|b| format!("{}: {}", b.name(), list(b.default_rows())))
+                .collect::<Vec<_>>()
+                .join("; ")
+        ),
+    }
     println!();
 }
 
@@ -970,7 +1026,7 @@ fn intake(ctx: &Ctx) -> Result<Value> {
     println!("== intake: sluice ingest vs BLAKE3 alone vs git add ==");
     let mut sizes = Vec::new();
     let mut all_pass = true;
-    for &n in &ctx.rows {
+    for n in ctx.rows_for(Bench::Intake) {
         let (size, pass) = intake_size(ctx, n)?;
         sizes.push(size);
         all_pass &= pass;
@@ -1159,7 +1215,7 @@ fn diff(ctx: &Ctx) -> Result<Value> {
     let python = reference_python()?;
     let mut sizes = Vec::new();
     let mut all_pass = true;
-    for &n in &ctx.diff_rows {
+    for n in ctx.rows_for(Bench::Diff) {
         let (size, pass) = diff_size(ctx, n, &python)?;
         sizes.push(size);
         all_pass &= pass;
@@ -1506,6 +1562,601 @@ fn diff_size(ctx: &Ctx, n: u64, python: &str) -> Result<(Value, bool)> {
         }),
         pass,
     ))
+}
+
+// ---------------------------------------------------------------------------------------------
+// The ops benchmark
+
+/// The baselines' scripts, relative to the repository.
+const OPS_PANDAS: &str = "examples/bench_ops_pandas.py";
+const OPS_POLARS: &str = "examples/bench_ops_polars.py";
+/// The sums pandas and polars compute in floating point agree with sluice's exact ones within
+/// this (a cent).
+const SUM_TOLERANCE: f64 = 0.01;
+/// sluice's goals against the baselines, measured in the same run.
+const OPS_PANDAS_SPEEDUP: f64 = 5.0;
+const OPS_POLARS_SPEEDUP: f64 = 1.0;
+const OPS_PEAK_MIB: f64 = 1024.0;
+const OPS_PROVENANCE_PERCENT: f64 = 5.0;
+
+/// The result of one cleaning, in the terms the three tools share: the rows left, and per
+/// technician (in the order they first appear) the rows and the sum of parts_cost.
+#[derive(Debug, Clone)]
+struct Cleaned {
+    rows: u64,
+    totals: Vec<(String, u64, f64)>,
+}
+
+/// What one sluice run added to a fresh store, in bytes.
+#[derive(Debug, Clone, Copy)]
+struct Footprint {
+    /// `lineage.db` (and `-wal`, if any) of the fresh store.
+    db_fresh: u64,
+    /// `lineage.db` after the run.
+    db: u64,
+    /// `lineage.db-wal` after the run (0 when SQLite removed it on closing).
+    wal: u64,
+    /// The steps' provenance objects (row maps, changed cells, drops), as the database lists
+    /// them (kind `blob`).
+    provenance_objects: u64,
+    /// Every object: the versions' bytes (the raw copy of the input among them), row indexes
+    /// and provenance objects.
+    objects: u64,
+}
+
+impl Footprint {
+    /// The provenance stored for the run: how much the lineage database grew, plus the steps'
+    /// provenance objects.
+    fn provenance(&self) -> u64 {
+        (self.db + self.wal).saturating_sub(self.db_fresh) + self.provenance_objects
+    }
+
+    fn json(&self) -> Value {
+        json!({
+            "lineage_db_fresh_bytes": self.db_fresh,
+            "lineage_db_bytes": self.db,
+            "lineage_wal_bytes": self.wal,
+            "provenance_object_bytes": self.provenance_objects,
+            "provenance_bytes": self.provenance(),
+            "object_bytes": self.objects,
+        })
+    }
+}
+
+fn ops(ctx: &Ctx) -> Result<Value> {
+    println!("== ops: a cleaning plan with sluice (run + cat) vs the same cleaning in pandas and polars ==");
+    println!(
+        "   trim every column, email to lower case, dedupe whole rows, parts_cost as a number,"
+    );
+    println!(
+        "   drop status = 'cancelled', sum parts_cost per technician (the Quillby export has no"
+    );
+    println!("   shop column: all its rows are one shop's), cleaned CSV written out");
+    let python = PathBuf::from(reference_python()?);
+    let mut sizes = Vec::new();
+    let mut all_pass = true;
+    let mut all_agree = true;
+    for n in ctx.rows_for(Bench::Ops) {
+        let (size, pass, agree) = ops_size(ctx, &python, n)?;
+        sizes.push(size);
+        all_pass &= pass;
+        all_agree &= agree;
+    }
+    println!(
+        "ops: {}; {}",
+        if all_pass {
+            "all goals met"
+        } else {
+            "some goals missed"
+        },
+        if all_agree {
+            "the three tools agree"
+        } else {
+            "the tools DISAGREE (see above)"
+        }
+    );
+    Ok(json!({
+        "benchmark": "ops",
+        "generated_by": "cargo run --release --example bench -- ops",
+        "machine": {"cores": cores(), "cpu": cpu_model()},
+        "sluice_binary": ctx.sluice.display().to_string(),
+        "source": source_revision(),
+        "python": python.display().to_string(),
+        "runs_requested": ctx.runs,
+        "notes": [
+            "MB = 10^6 bytes of input; seconds are medians; peak memory is the largest ru_maxrss of the runs",
+            "sluice: fresh store (sluice init, not timed), then sluice run PLAN and sluice cat orders -o cleaned.csv, timed one after the other",
+            "pandas and polars: examples/bench_ops_pandas.py and examples/bench_ops_polars.py, timed whole (interpreter start-up and imports included)",
+            "the Quillby export has no shop column: the totals are per technician",
+            "pandas and polars sum in floating point: their sums are compared with sluice's exact sums within 0.01",
+            "provenance: growth of lineage.db plus lineage.db-wal over a fresh store's, after the run",
+            "warm page cache; sync before every timed run",
+        ],
+        "all_goals_met": all_pass,
+        "all_agree": all_agree,
+        "sizes": sizes,
+    }))
+}
+
+/// Measures the three tools on the file of `n` rows; prints the table, the checks and the
+/// goals. Returns the figures, whether every goal was met and whether the tools agreed.
+fn ops_size(ctx: &Ctx, python: &Path, n: u64) -> Result<(Value, bool, bool)> {
+    let (file, bytes, background) = prepare_size(ctx, n)?;
+
+    let mut run_alone = Vec::new();
+    let mut footprints = Vec::new();
+    let mut sluice_result = None;
+    let whole = repeat(ctx.runs, |i| {
+        let (whole, run, footprint, cleaned) = sluice_ops(ctx, &file, i)?;
+        run_alone.push(run);
+        footprints.push(footprint);
+        sluice_result.get_or_insert(cleaned);
+        Ok(whole)
+    })?;
+    let baseline = |script: &str, key: &str| -> Result<(Vec<Sample>, Cleaned, String)> {
+        let mut result = None;
+        let samples = repeat(ctx.runs, |i| {
+            let (s, cleaned, version) = python_ops(ctx, python, script, key, &file, i)?;
+            result.get_or_insert((cleaned, version));
+            Ok(s)
+        })?;
+        let (cleaned, version) = result.ok_or_else(|| anyhow!("{script} never ran"))?;
+        Ok((samples, cleaned, version))
+    };
+    let (pandas, pandas_result, pandas_version) = baseline(OPS_PANDAS, "pandas")?;
+    let (polars, polars_result, polars_version) = baseline(OPS_POLARS, "polars")?;
+    let sluice_result = sluice_result.ok_or_else(|| anyhow!("sluice never ran"))?;
+    let footprint = *footprints
+        .first()
+        .ok_or_else(|| anyhow!("sluice never ran"))?;
+
+    let rows = vec![
+        Row {
+            tool: "sluice run + cat (fresh store)",
+            key: "sluice_run_cat",
+            samples: whole,
+        },
+        Row {
+            tool: "  of which sluice run",
+            key: "sluice_run",
+            samples: run_alone,
+        },
+        Row {
+            tool: "pandas script",
+            key: "pandas",
+            samples: pandas,
+        },
+        Row {
+            tool: "polars script",
+            key: "polars",
+            samples: polars,
+        },
+    ];
+    println!("  baselines: pandas {pandas_version}, polars {polars_version} ({OPS_PANDAS}, {OPS_POLARS}, run by {})", python.display());
+    print_table(&rows, bytes);
+
+    let agree = ops_agree(
+        &sluice_result,
+        &[("pandas", &pandas_result), ("polars", &polars_result)],
+    );
+    print_footprint(&footprint, bytes);
+
+    let goals = ops_goals(&rows, &footprint, bytes);
+    println!("  goals:");
+    for g in &goals {
+        g.print();
+    }
+    let pass = goals.iter().all(|g| g.pass);
+    let tools: serde_json::Map<String, Value> = rows
+        .iter()
+        .map(|r| (r.key.to_string(), r.json(bytes)))
+        .collect();
+    let cleaned_json = |c: &Cleaned| {
+        json!({
+            "rows": c.rows,
+            "totals": c.totals.iter().map(|(t, count, sum)| json!({
+                "technician": t, "count": count, "sum": sum,
+            })).collect::<Vec<_>>(),
+        })
+    };
+    let value = json!({
+        "rows": n,
+        "bytes": bytes,
+        "file": file.display().to_string(),
+        "tools": tools,
+        "library_versions": {"pandas": pandas_version, "polars": polars_version},
+        "results": {
+            "sluice": cleaned_json(&sluice_result),
+            "pandas": cleaned_json(&pandas_result),
+            "polars": cleaned_json(&polars_result),
+        },
+        "agree": agree,
+        "store": footprint.json(),
+        "provenance_percent_of_input": percent(footprint.provenance(), bytes),
+        "objects_percent_of_input": percent(footprint.objects, bytes),
+        "background_load_cores": background,
+        "max_other_processes_cores": rows.iter().filter_map(Row::others_cores).reduce(f64::max),
+        "goals": goals.iter().map(Goal::json).collect::<Vec<_>>(),
+        "all_goals_met": pass,
+    });
+    Ok((value, pass, agree))
+}
+
+/// The plan the benchmark runs: `file` taken in as `orders`, cleaned, and summed per
+/// technician into `totals`.
+fn ops_plan(file: &Path) -> Value {
+    let why_trim = "the Quillby till pads names, addresses and amounts with spaces";
+    json!({
+        "sluice_plan": 1,
+        "description": "Work orders of the Quillby shop cleaned and summed per technician (the ops benchmark)",
+        "inputs": [
+            {"name": "orders", "file": file.display().to_string(), "why": "the generated Quillby work-order export"},
+        ],
+        "steps": [
+            {"on": "orders", "apply": {"op": "trim"}, "why": why_trim},
+            {"on": "orders", "apply": {"op": "case", "columns": ["email"], "to": "lower"}, "why": "e-mail addresses are case-blind"},
+            {"on": "orders", "apply": {"op": "dedupe", "keep": "first"}, "why": "the till exports some orders twice"},
+            {"on": "orders", "apply": {"op": "number", "columns": ["parts_cost"]}, "why": "parts costs are written with euro signs and thousands commas"},
+            {"on": "orders", "apply": {"op": "drop", "predicate": "status = 'cancelled'"}, "why": "cancelled orders are not work done"},
+            {"on": "orders", "apply": {"op": "summarize", "by": ["technician"],
+                "aggregates": [{"func": "sum", "column": "parts_cost"}]},
+                "as": "totals", "why": "parts cost per technician"},
+        ],
+    })
+}
+
+/// A fresh store (not timed), then `sluice run PLAN` and `sluice cat orders -o cleaned.csv`
+/// (timed). Returns the two timed together and the run alone, what the run added to the store,
+/// and the result as read back from the store afterwards (not timed).
+fn sluice_ops(ctx: &Ctx, file: &Path, run: u32) -> Result<(Sample, Sample, Footprint, Cleaned)> {
+    let scratch = Scratch::new(ctx, &format!("ops-sluice-{run}"))?;
+    let store = scratch.0.join("store");
+    sluice_init(ctx, &store)?;
+    let dot = store.join(".sluice");
+    let db = dot.join("lineage.db");
+    let wal = dot.join("lineage.db-wal");
+    let db_fresh = file_len(&db)? + file_len(&wal)?;
+    let plan = scratch.0.join("plan.json");
+    fs::write(&plan, serde_json::to_string_pretty(&ops_plan(file))? + "\n")
+        .with_context(|| format!("writing {}", plan.display()))?;
+    let sluice = |args: &[&std::ffi::OsStr]| {
+        let mut cmd = Command::new(&ctx.sluice);
+        cmd.arg("--store")
+            .arg(&store)
+            .args(args)
+            .env("SLUICE_AGENT", AGENT);
+        cmd
+    };
+    let (run_sample, _) = run_measured(
+        &mut sluice(&["run".as_ref(), plan.as_os_str()]),
+        &scratch.0.join("log-run"),
+        "sluice run",
+    )?;
+    let footprint = Footprint {
+        db_fresh,
+        db: file_len(&db)?,
+        wal: file_len(&wal)?,
+        provenance_objects: sluice::store::Store::open(&dot)
+            .and_then(|s| s.lineage.objects())
+            .context("listing the store's objects")?
+            .iter()
+            .filter(|(_, kind, _)| kind == "blob")
+            .map(|(_, _, n)| n)
+            .sum(),
+        objects: tree_bytes(&dot.join("objects"))?,
+    };
+    let cleaned_csv = scratch.0.join("cleaned.csv");
+    let (cat_sample, _) = run_measured(
+        &mut sluice(&[
+            "cat".as_ref(),
+            "orders".as_ref(),
+            "-o".as_ref(),
+            cleaned_csv.as_os_str(),
+        ]),
+        &scratch.0.join("log-cat"),
+        "sluice cat",
+    )?;
+
+    // The result, read back from the store.
+    let read = |args: &[&str], what: &str| -> Result<String> {
+        let out = sluice(&args.iter().map(|a| a.as_ref()).collect::<Vec<_>>())
+            .output()
+            .with_context(|| format!("running sluice {what}"))?;
+        ensure!(
+            out.status.success(),
+            "sluice {what} failed: {}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        String::from_utf8(out.stdout).with_context(|| format!("reading sluice {what}'s output"))
+    };
+    let shown: Value = serde_json::from_str(&read(&["show", "orders", "--json"], "show")?)
+        .context("reading `sluice show orders --json`")?;
+    let rows = shown["version"]["n_rows"]
+        .as_u64()
+        .ok_or_else(|| anyhow!("no version.n_rows in `sluice show orders --json`"))?;
+    let totals = sluice_totals(&read(&["cat", "totals"], "cat totals")?)?;
+    Ok((
+        then(run_sample, cat_sample),
+        run_sample,
+        footprint,
+        Cleaned { rows, totals },
+    ))
+}
+
+/// The rows of `technician,count,sum_parts_cost`, as sluice's summary writes them (no value
+/// here needs quoting; one that does is refused rather than misread).
+fn sluice_totals(csv: &str) -> Result<Vec<(String, u64, f64)>> {
+    let mut lines = csv.lines();
+    ensure!(
+        lines.next() == Some("technician,count,sum_parts_cost"),
+        "unexpected header in `sluice cat totals`: {csv:?}"
+    );
+    lines
+        .map(|line| {
+            let parts: Vec<&str> = line.split(',').collect();
+            match parts.as_slice() {
+                [t, count, sum] if !line.contains('"') => Ok((
+                    t.to_string(),
+                    count
+                        .parse()
+                        .with_context(|| format!("reading the count in {line:?}"))?,
+                    sum.parse()
+                        .with_context(|| format!("reading the sum in {line:?}"))?,
+                )),
+                _ => bail!("unexpected row in `sluice cat totals`: {line:?}"),
+            }
+        })
+        .collect()
+}
+
+/// One of the baseline scripts on `file`, timed whole. Returns the sample, the result it
+/// printed and the library's version.
+fn python_ops(
+    ctx: &Ctx,
+    python: &Path,
+    script: &str,
+    key: &str,
+    file: &Path,
+    run: u32,
+) -> Result<(Sample, Cleaned, String)> {
+    let scratch = Scratch::new(ctx, &format!("ops-{key}-{run}"))?;
+    let mut cmd = Command::new(python);
+    cmd.arg(Path::new(env!("CARGO_MANIFEST_DIR")).join(script))
+        .arg(file)
+        .arg(scratch.0.join("cleaned.csv"));
+    let (sample, out) = run_measured(&mut cmd, &scratch.0.join("log"), script)?;
+    let v: Value = serde_json::from_str(out.stdout.trim())
+        .with_context(|| format!("reading the result {script} printed: {:?}", out.stdout))?;
+    let bad = || anyhow!("unexpected result from {script}: {v}");
+    let totals = v["totals"]
+        .as_array()
+        .ok_or_else(bad)?
+        .iter()
+        .map(|t| {
+            Some((
+                t["technician"].as_str()?.to_string(),
+                t["count"].as_u64()?,
+                t["sum"].as_f64()?,
+            ))
+        })
+        .collect::<Option<Vec<_>>>()
+        .ok_or_else(bad)?;
+    let cleaned = Cleaned {
+        rows: v["rows"].as_u64().ok_or_else(bad)?,
+        totals,
+    };
+    let version = v["version"].as_str().ok_or_else(bad)?.to_string();
+    Ok((sample, cleaned, version))
+}
+
+/// Prints whether the baselines agree with sluice: the same number of cleaned rows, the same
+/// technicians with the same row counts, and sums within [`SUM_TOLERANCE`] of sluice's exact
+/// ones. A disagreement is printed as a finding, not an error.
+fn ops_agree(sluice: &Cleaned, others: &[(&str, &Cleaned)]) -> bool {
+    let mut agree = true;
+    for (name, other) in others {
+        let mut problems = Vec::new();
+        if other.rows != sluice.rows {
+            problems.push(format!(
+                "{} cleaned rows, sluice {}",
+                thousands(other.rows),
+                thousands(sluice.rows)
+            ));
+        }
+        if other.totals.len() != sluice.totals.len() {
+            problems.push(format!(
+                "{} technicians, sluice {}",
+                other.totals.len(),
+                sluice.totals.len()
+            ));
+        }
+        let mut worst: f64 = 0.0;
+        for (t, count, sum) in &sluice.totals {
+            match other.totals.iter().find(|(o, _, _)| o == t) {
+                None => problems.push(format!("no total for {t}")),
+                Some((_, c, s)) => {
+                    if c != count {
+                        problems.push(format!("{t}: {c} rows, sluice {count}"));
+                    }
+                    let d = (s - sum).abs();
+                    worst = worst.max(d);
+                    if d > SUM_TOLERANCE {
+                        problems.push(format!("{t}: sum {s}, sluice {sum}"));
+                    }
+                }
+            }
+        }
+        if problems.is_empty() {
+            println!(
+                "  check: {name} agrees with sluice: {} cleaned rows, {} technicians with the same counts, sums within {SUM_TOLERANCE} (largest difference {worst:.2e}; {name} sums in floating point, sluice exactly)",
+                thousands(sluice.rows),
+                sluice.totals.len()
+            );
+        } else {
+            agree = false;
+            println!(
+                "  FINDING: {name} and sluice disagree: {}",
+                problems.join("; ")
+            );
+        }
+    }
+    let sums = sluice
+        .totals
+        .iter()
+        .map(|(t, c, s)| format!("{t} {} rows {s:.2}", thousands(*c)))
+        .collect::<Vec<_>>()
+        .join(", ");
+    println!("  sluice totals: {sums}");
+    agree
+}
+
+fn print_footprint(f: &Footprint, bytes: u64) {
+    println!(
+        "  provenance stored for the run (growth of lineage.db + -wal, and provenance objects): {:.1} MB = {:.2}% of the input",
+        f.provenance() as f64 / 1e6,
+        percent(f.provenance(), bytes)
+    );
+    println!(
+        "    (lineage.db {} -> {} bytes, lineage.db-wal {} bytes after the run, provenance objects {} bytes)",
+        thousands(f.db_fresh),
+        thousands(f.db),
+        thousands(f.wal),
+        thousands(f.provenance_objects)
+    );
+    println!(
+        "  objects (every version's bytes and row index, and the provenance objects): {:.1} MB = {:.1}% of the input, the raw copy (100%) included",
+        f.objects as f64 / 1e6,
+        percent(f.objects, bytes)
+    );
+}
+
+fn ops_goals(rows: &[Row], footprint: &Footprint, bytes: u64) -> Vec<Goal> {
+    let by = |key: &str| {
+        rows.iter()
+            .find(|r| r.key == key)
+            .expect("every tool measured")
+    };
+    let sluice = by("sluice_run_cat");
+    let vs_pandas = by("pandas").median_secs() / sluice.median_secs();
+    let vs_polars = by("polars").median_secs() / sluice.median_secs();
+    let peak = sluice.peak_mib();
+    let provenance = percent(footprint.provenance(), bytes);
+    vec![
+        Goal {
+            label: "pandas time / sluice (run + cat) time".into(),
+            value: vs_pandas,
+            goal: ">= 5",
+            pass: vs_pandas >= OPS_PANDAS_SPEEDUP,
+        },
+        Goal {
+            label: "polars time / sluice (run + cat) time".into(),
+            value: vs_polars,
+            goal: ">= 1",
+            pass: vs_polars >= OPS_POLARS_SPEEDUP,
+        },
+        Goal {
+            label: "sluice peak memory, MiB".into(),
+            value: peak,
+            goal: "< 1024",
+            pass: peak < OPS_PEAK_MIB,
+        },
+        Goal {
+            label: "provenance, % of the input".into(),
+            value: provenance,
+            goal: "< 5",
+            pass: provenance < OPS_PROVENANCE_PERCENT,
+        },
+    ]
+}
+
+/// Two runs one after the other, as one: times added, the larger peak, the rest of the
+/// machine's load averaged over both.
+fn then(a: Sample, b: Sample) -> Sample {
+    let secs = a.secs + b.secs;
+    let others_cores = match (a.others_cores, b.others_cores) {
+        (Some(x), Some(y)) => Some((x * a.secs + y * b.secs) / secs),
+        (x, y) => x.or(y),
+    };
+    Sample {
+        secs,
+        peak_kib: a.peak_kib.max(b.peak_kib),
+        cpu_secs: a.cpu_secs + b.cpu_secs,
+        others_cores,
+    }
+}
+
+/// A file's length, 0 when it does not exist.
+fn file_len(p: &Path) -> Result<u64> {
+    match fs::metadata(p) {
+        Ok(m) => Ok(m.len()),
+        Err(e) if e.kind() == io::ErrorKind::NotFound => Ok(0),
+        Err(e) => Err(e).with_context(|| format!("reading the size of {}", p.display())),
+    }
+}
+
+/// The bytes of every file under `dir`.
+fn tree_bytes(dir: &Path) -> Result<u64> {
+    let mut total = 0;
+    for e in fs::read_dir(dir).with_context(|| format!("listing {}", dir.display()))? {
+        let e = e.with_context(|| format!("listing {}", dir.display()))?;
+        let meta = e
+            .metadata()
+            .with_context(|| format!("reading {}", e.path().display()))?;
+        total += if meta.is_dir() {
+            tree_bytes(&e.path())?
+        } else {
+            meta.len()
+        };
+    }
+    Ok(total)
+}
+
+fn percent(part: u64, whole: u64) -> f64 {
+    100.0 * part as f64 / whole as f64
+}
+
+// ---------------------------------------------------------------------------------------------
+/// The file of `n` rows made ready for timing (checked or generated, then read once), its size,
+/// and the machine's load before timing, printed with a warning when it is too busy.
+fn prepare_size(ctx: &Ctx, n: u64) -> Result<(PathBuf, u64, Option<f64>)> {
+    println!();
+    let file = ensure_data(&ctx.data_dir, n)?;
+    let bytes = fs::metadata(&file)
+        .with_context(|| format!("reading {}", file.display()))?
+        .len();
+    println!(
+        "{} rows, {:.1} MB ({bytes} bytes)",
+        thousands(n),
+        bytes as f64 / 1e6
+    );
+    warm(&file)?;
+    let background = background_load()?;
+    match background {
+        Some(c) if c > NOISY_CORES => println!(
+            "WARNING: other processes use {c:.2} cores before timing starts: the times will be noisy"
+        ),
+        Some(c) => println!("background load before timing: {c:.2} cores"),
+        None => {}
+    }
+    Ok((file, bytes, background))
+}
+
+/// `sluice init STORE` (not timed): a fresh, empty store.
+fn sluice_init(ctx: &Ctx, store: &Path) -> Result<()> {
+    let status = Command::new(&ctx.sluice)
+        .arg("init")
+        .arg(store)
+        .env("SLUICE_AGENT", AGENT)
+        .stdout(Stdio::null())
+        .output()
+        .context("running `sluice init`")?;
+    ensure!(
+        status.status.success(),
+        "`sluice init {}` failed: {}",
+        store.display(),
+        String::from_utf8_lossy(&status.stderr)
+    );
+    Ok(())
 }
 
 // ---------------------------------------------------------------------------------------------
