@@ -71,6 +71,20 @@ struct FsTemp {
     file: Option<File>,
     path: PathBuf,
     objects: PathBuf,
+    /// A flush of the bytes written so far, running on a thread of its own so that writing
+    /// goes on meanwhile; `persist` waits for it and reports its error.
+    syncing: Option<std::thread::JoinHandle<io::Result<()>>>,
+}
+
+impl FsTemp {
+    fn wait_for_sync(&mut self) -> io::Result<()> {
+        match self.syncing.take() {
+            Some(t) => t
+                .join()
+                .unwrap_or_else(|_| Err(io::Error::other("the flush thread panicked"))),
+            None => Ok(()),
+        }
+    }
 }
 
 impl Write for FsTemp {
@@ -93,13 +107,24 @@ impl Write for FsTemp {
 
 impl TempObject for FsTemp {
     fn sync_so_far(&mut self) -> io::Result<()> {
-        match &self.file {
-            Some(f) => f.sync_data(),
-            None => Ok(()),
+        // One flush at a time: a flush still running covers most of what was written since.
+        if self.syncing.as_ref().is_some_and(|t| !t.is_finished()) {
+            return Ok(());
         }
+        self.wait_for_sync()?;
+        if let Some(f) = &self.file {
+            let f = f.try_clone()?;
+            self.syncing = Some(
+                std::thread::Builder::new()
+                    .name("sluice-flush".into())
+                    .spawn(move || f.sync_data())?,
+            );
+        }
+        Ok(())
     }
 
     fn persist(mut self: Box<Self>, hash: &Hash) -> io::Result<()> {
+        self.wait_for_sync()?;
         let file = self
             .file
             .take()
@@ -128,6 +153,7 @@ impl TempObject for FsTemp {
 
 impl Drop for FsTemp {
     fn drop(&mut self) {
+        let _ = self.wait_for_sync();
         if self.file.take().is_some() || self.path.exists() {
             let _ = fs::remove_file(&self.path);
         }
@@ -157,6 +183,7 @@ impl ObjectBackend for FsBackend {
             file: Some(file),
             path,
             objects: self.objects.clone(),
+            syncing: None,
         }))
     }
 
