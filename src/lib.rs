@@ -47,6 +47,7 @@ pub mod provenance;
 pub mod refs;
 pub mod store;
 pub mod table;
+pub mod trace;
 pub mod verify;
 
 pub use error::{Error, ErrorKind, InputProblem, Position, Result};

@@ -107,6 +107,35 @@ pub enum Command {
         output: Option<PathBuf>,
     },
 
+    /// Where a cell's value came from: its trail back to the raw file and line
+    #[command(
+        after_help = "Examples:\n  sluice trace all_orders --row 12 --column customer\n  \
+        sluice trace all_orders --key order_id=41012 --column parts_cost --json\n\n\
+        Newest step first; steps that left the value alone are folded into one line. A derived column \
+        branches to every column it was made from; a looked-up column continues in the looked-up table."
+    )]
+    Trace {
+        /// The version: NAME (latest), NAME@N or a hash prefix
+        reference: String,
+        /// The 1-based data row, as `sluice cat` shows it (the header not counted)
+        #[arg(
+            long,
+            value_name = "N",
+            conflicts_with = "key",
+            required_unless_present = "key"
+        )]
+        row: Option<u64>,
+        /// The row whose columns hold these values, e.g. order_id=41012
+        #[arg(long, value_name = "COL=VAL[,COL=VAL..]", value_delimiter = ',')]
+        key: Vec<String>,
+        /// The column
+        #[arg(long, value_name = "COL")]
+        column: String,
+        /// Print JSON
+        #[arg(long)]
+        json: bool,
+    },
+
     /// Write a version's exact bytes to standard output or a file
     #[command(
         after_help = "Examples:\n  sluice cat quillby_orders@1 > q3-as-received.csv\n  sluice cat 5f3a9c -o q3.csv"

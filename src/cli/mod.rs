@@ -226,6 +226,38 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             }
             Ok(0)
         }
+        Command::Trace {
+            reference,
+            row,
+            key,
+            column,
+            json,
+        } => {
+            let store = open_store(&cli, &cwd)?;
+            let pick = match row {
+                Some(n) => sluice::trace::RowPick::Number(*n),
+                None => sluice::trace::RowPick::Key(
+                    key.iter()
+                        .map(|kv| {
+                            kv.split_once('=')
+                                .map(|(k, v)| (k.to_string(), v.to_string()))
+                                .ok_or_else(|| {
+                                    anyhow!(
+                                        "--key {kv}: expected COL=VAL, e.g. --key order_id=41012"
+                                    )
+                                })
+                        })
+                        .collect::<anyhow::Result<Vec<_>>>()?,
+                ),
+            };
+            let trail = sluice::trace::trace(&store, reference, &pick, column)?;
+            if *json {
+                render::json(&mut out, &trail)?;
+            } else {
+                render::trail(&mut out, &trail)?;
+            }
+            Ok(0)
+        }
         Command::Cat { reference, output } => {
             let store = open_store(&cli, &cwd)?;
             let version = refs::resolve(&store.lineage, reference)?;

@@ -14,6 +14,7 @@ use sluice::model::{Step, Version};
 use sluice::ops::apply::ApplyOutcome;
 use sluice::ops::Operation;
 use sluice::plan::Done;
+use sluice::trace::{End, Trail};
 use sluice::verify::VerifyReport;
 
 pub fn json<T: Serialize>(out: &mut impl Write, value: &T) -> io::Result<()> {
@@ -580,6 +581,145 @@ pub fn run_json(done: &[Done], stopped: Option<(&str, &str)>) -> serde_json::Val
         "error": stopped.map(|s| s.1),
         "done": items,
     })
+}
+
+/// A value in quotes, with white space and control characters visible.
+fn shown(v: &str) -> String {
+    format!("{v:?}")
+}
+
+/// A cell's trail, newest step first; steps that left the value alone folded into one line.
+pub fn trail(out: &mut impl Write, t: &Trail) -> io::Result<()> {
+    writeln!(
+        out,
+        "{} of {}, data row {}: {}",
+        t.column,
+        t.version,
+        t.row,
+        shown(&t.value)
+    )?;
+    trail_body(out, t, "  ")
+}
+
+fn trail_body(out: &mut impl Write, t: &Trail, pad: &str) -> io::Result<()> {
+    let mut i = 0;
+    while i < t.hops.len() {
+        let h = &t.hops[i];
+        if !h.changed {
+            let mut j = i;
+            while j < t.hops.len() && !t.hops[j].changed {
+                j += 1;
+            }
+            let group = &t.hops[i..j];
+            let names: Vec<String> = group
+                .iter()
+                .map(|g| {
+                    format!(
+                        "{} {}",
+                        g.step,
+                        g.operation.as_deref().unwrap_or(g.kind.as_str())
+                    )
+                })
+                .collect();
+            let last = &group[group.len() - 1];
+            writeln!(
+                out,
+                "{pad}{} left it alone (step {}); {} row {} was {} row {}",
+                plural(group.len() as u64, "step", "steps"),
+                names.join(", step "),
+                h.produced,
+                h.row_after,
+                last.read,
+                last.row_before
+            )?;
+            i = j;
+            continue;
+        }
+        writeln!(
+            out,
+            "{pad}step {} · {} ({}) · {} · {}",
+            h.step,
+            h.operation.as_deref().unwrap_or(h.kind.as_str()),
+            h.link,
+            h.at,
+            h.agent
+        )?;
+        if let Some(why) = &h.why {
+            writeln!(out, "{pad}  why     {why}")?;
+        }
+        writeln!(
+            out,
+            "{pad}  after   {} row {} {}: {}",
+            h.produced,
+            h.row_after,
+            h.column_after,
+            shown(&h.value_after)
+        )?;
+        if h.value_before.is_empty() && h.column_before.contains(" + ") {
+            writeln!(
+                out,
+                "{pad}  before  {} row {} {}",
+                h.read, h.row_before, h.column_before
+            )?;
+        } else {
+            writeln!(
+                out,
+                "{pad}  before  {} row {} {}: {}",
+                h.read,
+                h.row_before,
+                h.column_before,
+                shown(&h.value_before)
+            )?;
+        }
+        i += 1;
+    }
+    match &t.end {
+        End::Raw(o) => {
+            writeln!(
+                out,
+                "{pad}raw     {} ({}), taken in {} by {}",
+                o.path.as_deref().unwrap_or("(no path recorded)"),
+                &o.hash[..12],
+                o.taken_in_at,
+                o.agent
+            )?;
+            writeln!(
+                out,
+                "{pad}        {} line {}, column {}: {}",
+                o.version,
+                o.line,
+                o.column,
+                shown(&o.raw_value)
+            )?;
+            writeln!(out, "{pad}        {}", o.raw_line)?;
+        }
+        End::Made {
+            version,
+            step,
+            operation,
+            why,
+        } => writeln!(
+            out,
+            "{pad}made    by step {step} ({}) of {version}: {why}",
+            operation.as_deref().unwrap_or("outside work")
+        )?,
+        End::Branches { sources } => {
+            for b in sources {
+                writeln!(out, "{pad}branch  {}:", b.via)?;
+                let inner = format!("{pad}    ");
+                writeln!(
+                    out,
+                    "{inner}{} of {}, data row {}: {}",
+                    b.trail.column,
+                    b.trail.version,
+                    b.trail.row,
+                    shown(&b.trail.value)
+                )?;
+                trail_body(out, &b.trail, &inner)?;
+            }
+        }
+    }
+    Ok(())
 }
 
 fn ingest_outcome_short(out: &mut impl Write, o: &IngestOutcome) -> io::Result<()> {

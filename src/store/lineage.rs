@@ -591,6 +591,24 @@ impl Lineage {
         rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
     }
 
+    /// Like [`Lineage::column_sources`], with the input version each source column is in:
+    /// (output column, input version id, input column).
+    pub fn column_sources_from(&self, output_id: i64) -> Result<Vec<(String, i64, String)>> {
+        let mut st = self
+            .conn
+            .prepare_cached(
+                "SELECT output_column, input_id, input_column FROM column_sources
+                 WHERE output_id = ?1 ORDER BY output_column, input_id, input_column",
+            )
+            .map_err(db_err)?;
+        let rows = st
+            .query_map(params![output_id], |r| {
+                Ok((r.get(0)?, r.get(1)?, r.get(2)?))
+            })
+            .map_err(db_err)?;
+        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+    }
+
     /// The input rows of `input_id` that step `step_id` removed, by row.
     pub fn drops(&self, step_id: i64, input_id: i64) -> Result<Vec<Drop>> {
         let mut st = self

@@ -1,0 +1,496 @@
+//! Trails: where a cell's value came from. Starting at one cell of a version, each step back
+//! follows the step's recorded row map (and, for a column that was renamed or derived, its
+//! recorded source columns) to the cell it was made from, reading the value on both sides,
+//! until it reaches the raw file as it was taken in: its path, hash, intake, the line of the
+//! record and the raw text. Derived columns branch to every column they were made from; a
+//! looked-up column continues in the looked-up table's row. Nothing here is guessed: every link
+//! is a recorded run or source, marked `exact` for sluice's own operations and `inferred` for
+//! lineage recovered by a diff.
+
+use std::collections::HashMap;
+
+use serde::Serialize;
+
+use crate::diff::read::{row_index, rows_of, RawRows};
+use crate::error::{Error, ErrorKind, Result};
+use crate::model::{StepKind, Version};
+use crate::ops::Operation;
+use crate::refs;
+use crate::store::Store;
+use crate::table::rowindex;
+
+/// Which row to start from.
+#[derive(Debug, Clone)]
+pub enum RowPick {
+    /// A 1-based data row, as `sluice cat` shows it (the header not counted).
+    Number(u64),
+    /// The one row whose columns hold these values.
+    Key(Vec<(String, String)>),
+}
+
+/// One step of a trail, newest first.
+#[derive(Debug, Clone, Serialize)]
+pub struct Hop {
+    pub step: i64,
+    pub kind: StepKind,
+    pub operation: Option<String>,
+    pub agent: String,
+    pub at: String,
+    pub why: Option<String>,
+    /// The version the step made, and the one the cell came from.
+    pub produced: String,
+    pub read: String,
+    /// 1-based data rows in the two versions.
+    pub row_after: u64,
+    pub row_before: u64,
+    pub column_after: String,
+    pub column_before: String,
+    pub value_after: String,
+    pub value_before: String,
+    /// The value or column differs, or the row came from another dataset.
+    pub changed: bool,
+    /// "exact" (a sluice operation) or "inferred" (recovered by a diff).
+    pub link: String,
+}
+
+/// Where a trail ends.
+#[derive(Debug, Clone, Serialize)]
+#[serde(tag = "kind", rename_all = "snake_case")]
+pub enum End {
+    /// The raw file the data was taken in from.
+    Raw(Box<Origin>),
+    /// A column made from several columns (or a looked-up table): one trail per source.
+    Branches { sources: Vec<Branch> },
+    /// The step made the row or the value itself (a group summary, a row added by an outside
+    /// edit, a constant fill): nothing further back to follow.
+    Made {
+        version: String,
+        step: i64,
+        operation: Option<String>,
+        why: String,
+    },
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct Branch {
+    /// "from column given_name of orders@3", "looked up in technicians@1".
+    pub via: String,
+    pub trail: Trail,
+}
+
+/// The raw end of a trail.
+#[derive(Debug, Clone, Serialize)]
+pub struct Origin {
+    pub version: String,
+    pub hash: String,
+    /// The path as given at intake, and as an absolute path then.
+    pub path: Option<String>,
+    pub absolute_path: Option<String>,
+    pub taken_in_at: String,
+    pub agent: String,
+    /// The 1-based line of the file the record starts on.
+    pub line: u64,
+    pub column: String,
+    /// The cell as it is in the raw file (decoded, without quotes).
+    pub raw_value: String,
+    /// The whole record as it is in the file (lossy when it is not UTF-8 text).
+    pub raw_line: String,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct Trail {
+    pub version: String,
+    pub hash: String,
+    /// 1-based data row.
+    pub row: u64,
+    pub column: String,
+    pub value: String,
+    /// Newest first.
+    pub hops: Vec<Hop>,
+    pub end: End,
+}
+
+/// How deep derived columns may branch before the trail stops (a guard against a malformed
+/// database, never reached by real histories).
+const MAX_DEPTH: usize = 64;
+
+/// The trail of one cell of `reference`.
+pub fn trace(store: &Store, reference: &str, row: &RowPick, column: &str) -> Result<Trail> {
+    let v = refs::resolve(&store.lineage, reference)?;
+    if !v.header.iter().any(|h| h == column) {
+        return Err(Error::usage(format!(
+            "column \"{column}\" is not in {}; its columns are: {}",
+            v.label(),
+            v.header.join(", ")
+        )));
+    }
+    let r = match row {
+        RowPick::Number(n) => {
+            if *n == 0 || *n > v.n_rows {
+                return Err(Error::usage(format!(
+                    "{} has data rows 1 to {}; there is no row {n}",
+                    v.label(),
+                    v.n_rows
+                )));
+            }
+            n - 1
+        }
+        RowPick::Key(pairs) => find_by_key(store, &v, pairs)?,
+    };
+    let mut reader = Rows::default();
+    follow(store, &mut reader, v, r, column.to_string(), 0)
+}
+
+fn find_by_key(store: &Store, v: &Version, pairs: &[(String, String)]) -> Result<u64> {
+    let cols: Vec<usize> = pairs
+        .iter()
+        .map(|(c, _)| {
+            v.header.iter().position(|h| h == c).ok_or_else(|| {
+                Error::usage(format!(
+                    "key column \"{c}\" is not in {}; its columns are: {}",
+                    v.label(),
+                    v.header.join(", ")
+                ))
+            })
+        })
+        .collect::<Result<_>>()?;
+    let mut found = Vec::new();
+    crate::ops::apply::each_version_row(store, v, |row, r| {
+        if cols
+            .iter()
+            .zip(pairs)
+            .all(|(&c, (_, want))| r.field(c) == want.as_bytes())
+        {
+            found.push(row);
+        }
+        Ok(())
+    })?;
+    let what = pairs
+        .iter()
+        .map(|(c, x)| format!("{c}={x}"))
+        .collect::<Vec<_>>()
+        .join(",");
+    match found.as_slice() {
+        [one] => Ok(*one),
+        [] => Err(Error::usage(format!(
+            "no row of {} has {what}; check the values with `sluice cat {}`",
+            v.label(),
+            v.label()
+        ))),
+        many => Err(Error::usage(format!(
+            "{} rows of {} have {what} (data rows {}{}); add key columns or use --row",
+            many.len(),
+            v.label(),
+            many.iter()
+                .take(10)
+                .map(|r| (r + 1).to_string())
+                .collect::<Vec<_>>()
+                .join(", "),
+            if many.len() > 10 { ", ..." } else { "" }
+        ))),
+    }
+}
+
+/// Rows read so far, by version id and 0-based row.
+#[derive(Default)]
+struct Rows {
+    cache: HashMap<(i64, u64), Vec<String>>,
+}
+
+impl Rows {
+    fn get(&mut self, store: &Store, v: &Version, row: u64) -> Result<&Vec<String>> {
+        match self.cache.entry((v.id, row)) {
+            std::collections::hash_map::Entry::Occupied(e) => Ok(e.into_mut()),
+            std::collections::hash_map::Entry::Vacant(e) => {
+                let got = rows_of(&store.objects, v, &[row])?;
+                let r = got.get(row).ok_or_else(|| {
+                    Error::from(ErrorKind::Database(format!(
+                        "{} has no data row {}; run `sluice verify`",
+                        v.label(),
+                        row + 1
+                    )))
+                })?;
+                Ok(e.insert(r.texts()))
+            }
+        }
+    }
+
+    fn cell(&mut self, store: &Store, v: &Version, row: u64, column: &str) -> Result<String> {
+        let c = v.header.iter().position(|h| h == column).ok_or_else(|| {
+            Error::from(ErrorKind::Database(format!(
+                "{} has no column \"{column}\"; run `sluice verify`",
+                v.label()
+            )))
+        })?;
+        Ok(self.get(store, v, row)?.get(c).cloned().unwrap_or_default())
+    }
+}
+
+fn follow(
+    store: &Store,
+    rows: &mut Rows,
+    start: Version,
+    start_row: u64,
+    start_column: String,
+    depth: usize,
+) -> Result<Trail> {
+    let value = rows.cell(store, &start, start_row, &start_column)?;
+    let mut trail = Trail {
+        version: start.label(),
+        hash: start.hash.clone(),
+        row: start_row + 1,
+        column: start_column.clone(),
+        value,
+        hops: Vec::new(),
+        end: End::Branches {
+            sources: Vec::new(),
+        },
+    };
+    let (mut v, mut r, mut col) = (start, start_row, start_column);
+    loop {
+        let step = store.lineage.step(v.step_id)?.ok_or_else(|| {
+            Error::from(ErrorKind::Database(format!(
+                "the step that made {} is missing; run `sluice verify`",
+                v.label()
+            )))
+        })?;
+        let made = |why: &str| End::Made {
+            version: v.label(),
+            step: step.id,
+            operation: step.operation.clone(),
+            why: why.to_string(),
+        };
+        if step.kind == StepKind::Ingest {
+            trail.end = End::Raw(Box::new(origin(store, rows, &v, r, &col, &step)?));
+            return Ok(trail);
+        }
+        if step.operation.as_deref() == Some("summarize") {
+            trail.end = made("a group summary: the value aggregates every input row of its group");
+            return Ok(trail);
+        }
+        let inputs = store.lineage.step_input_versions(step.id)?;
+        // The input the row came from, and its row there.
+        let mut from: Option<(Version, u64)> = None;
+        for (_, input) in &inputs {
+            let runs = crate::provenance::row_runs(store, &v, input.id)?;
+            let i = runs.partition_point(|run| run.out_start + run.len <= r);
+            if let Some(run) = runs.get(i).filter(|run| run.out_start <= r) {
+                from = Some((input.clone(), run.in_start + (r - run.out_start)));
+                break;
+            }
+        }
+        let sources: Vec<(String, i64, String)> = store
+            .lineage
+            .column_sources_from(v.id)?
+            .into_iter()
+            .filter(|(out, _, _)| *out == col)
+            .collect();
+        // A column taken from a looked-up table continues in the table's matching row.
+        if let Some((_, table_id, table_col)) = sources.iter().find(|(_, id, _)| {
+            inputs
+                .iter()
+                .any(|(role, t)| role == "table" && t.id == *id)
+        }) {
+            let table = inputs
+                .iter()
+                .find(|(_, t)| t.id == *table_id)
+                .map(|(_, t)| t.clone())
+                .ok_or_else(|| Error::from(ErrorKind::Database("a lost table input".into())))?;
+            if step.operation.as_deref() == Some("lookup") {
+                let Ok(Operation::Lookup { on, table_on, .. }) =
+                    serde_json::from_value::<Operation>(step.params.clone())
+                else {
+                    trail.end = made("a looked-up value whose step parameters cannot be read");
+                    return Ok(trail);
+                };
+                let table_on = table_on.unwrap_or_else(|| on.clone());
+                let mut pairs = Vec::new();
+                for (ours, theirs) in on.iter().zip(&table_on) {
+                    pairs.push((theirs.clone(), rows.cell(store, &v, r, ours)?));
+                }
+                let hop_value = rows.cell(store, &v, r, &col)?;
+                match find_by_key(store, &table, &pairs) {
+                    Ok(tr) if depth < MAX_DEPTH => {
+                        let sub =
+                            follow(store, rows, table.clone(), tr, table_col.clone(), depth + 1)?;
+                        let before = sub.value.clone();
+                        trail.hops.push(hop(
+                            &step,
+                            &v,
+                            &table,
+                            r,
+                            tr,
+                            &col,
+                            table_col.clone(),
+                            hop_value,
+                            before,
+                        ));
+                        trail.end = End::Branches {
+                            sources: vec![Branch {
+                                via: format!(
+                                    "looked up in {} by {}",
+                                    table.label(),
+                                    table_on.join(", ")
+                                ),
+                                trail: sub,
+                            }],
+                        };
+                    }
+                    _ => {
+                        trail.end = made("no row of the looked-up table has this row's key: the cell was left blank");
+                    }
+                }
+                return Ok(trail);
+            }
+            // A mapping table: the value was changed through it; the trail goes on in the input.
+        }
+        let Some((input, ir)) = from else {
+            trail.end = made("the step added this row (no input row is recorded for it)");
+            return Ok(trail);
+        };
+        let from_input: Vec<&String> = sources
+            .iter()
+            .filter(|(_, id, _)| *id == input.id)
+            .map(|(_, _, c)| c)
+            .collect();
+        let before_cols: Vec<String> = if from_input.is_empty() {
+            if input.header.contains(&col) {
+                vec![col.clone()]
+            } else {
+                Vec::new()
+            }
+        } else {
+            from_input.into_iter().cloned().collect()
+        };
+        let after = rows.cell(store, &v, r, &col)?;
+        match before_cols.as_slice() {
+            [] => {
+                trail.end = made("the step made this column");
+                return Ok(trail);
+            }
+            [one] => {
+                let before = rows.cell(store, &input, ir, one)?;
+                trail.hops.push(hop(
+                    &step,
+                    &v,
+                    &input,
+                    r,
+                    ir,
+                    &col,
+                    one.clone(),
+                    after,
+                    before,
+                ));
+                col = one.clone();
+                v = input;
+                r = ir;
+            }
+            many => {
+                // Derived from several columns: a trail per source, each from the input row.
+                let joined = many.join(" + ");
+                trail.hops.push(hop(
+                    &step,
+                    &v,
+                    &input,
+                    r,
+                    ir,
+                    &col,
+                    joined,
+                    after,
+                    String::new(),
+                ));
+                let mut branches = Vec::new();
+                if depth < MAX_DEPTH {
+                    for c in many {
+                        branches.push(Branch {
+                            via: format!("from column {c} of {}", input.label()),
+                            trail: follow(store, rows, input.clone(), ir, c.clone(), depth + 1)?,
+                        });
+                    }
+                }
+                trail.end = End::Branches { sources: branches };
+                return Ok(trail);
+            }
+        }
+    }
+}
+
+#[allow(clippy::too_many_arguments)]
+fn hop(
+    step: &crate::model::Step,
+    produced: &Version,
+    read: &Version,
+    row_after: u64,
+    row_before: u64,
+    column_after: &str,
+    column_before: String,
+    value_after: String,
+    value_before: String,
+) -> Hop {
+    Hop {
+        step: step.id,
+        kind: step.kind,
+        operation: step.operation.clone(),
+        agent: step.agent.clone(),
+        at: step.ended_at.clone(),
+        why: step.reason.clone(),
+        produced: produced.label(),
+        read: read.label(),
+        row_after: row_after + 1,
+        row_before: row_before + 1,
+        column_after: column_after.to_string(),
+        // A hop into another dataset (a looked-up table, an appended source) is never folded
+        // away, even when the value is the same: it is where the value came from.
+        changed: value_after != value_before
+            || column_after != column_before
+            || produced.dataset != read.dataset,
+        column_before,
+        value_after,
+        value_before,
+        link: step.lineage.as_str().to_string(),
+    }
+}
+
+fn origin(
+    store: &Store,
+    rows: &mut Rows,
+    v: &Version,
+    r: u64,
+    column: &str,
+    step: &crate::model::Step,
+) -> Result<Origin> {
+    let raw_value = rows.cell(store, v, r, column)?;
+    let index_hash = v
+        .row_index
+        .parse()
+        .map_err(|e: String| Error::from(ErrorKind::Database(format!("{}: {e}", v.label()))))?;
+    let index = store.objects.read_all(&index_hash)?;
+    let entry = rowindex::entry(&index, r).ok_or_else(|| {
+        Error::from(ErrorKind::Database(format!(
+            "the row index of {} has no row {}; run `sluice verify`",
+            v.label(),
+            r + 1
+        )))
+    })?;
+    let (_, offsets) = row_index(&store.objects, v)?;
+    let mut raw = RawRows::new(&store.objects, v, offsets)?;
+    let bytes = raw.bytes(r)?.to_vec();
+    raw.finish()?;
+    // The record without its line ending and the blank lines after it.
+    let mut end = bytes.len();
+    while end > 0 && matches!(bytes[end - 1], b'\n' | b'\r') {
+        end -= 1;
+    }
+    Ok(Origin {
+        version: v.label(),
+        hash: v.hash.clone(),
+        path: step.source.as_ref().map(|s| s.path.clone()),
+        absolute_path: step.source.as_ref().map(|s| s.absolute_path.clone()),
+        taken_in_at: step.ended_at.clone(),
+        agent: step.agent.clone(),
+        line: entry.line,
+        column: column.to_string(),
+        raw_value,
+        raw_line: String::from_utf8_lossy(&bytes[..end]).into_owned(),
+    })
+}

@@ -1,0 +1,289 @@
+//! `sluice trace`: a cell's trail back through every step to the raw file and line it came
+//! from, branching for derived columns and continuing into looked-up tables and appended
+//! sources.
+
+mod common;
+
+use common::{assert_contains, Sandbox};
+use serde_json::Value;
+
+/// A store with orders whose notes hold line breaks (so lines and rows differ), cleaned by
+/// trim, dedupe, rename and number.
+fn cleaned() -> Sandbox {
+    let s = Sandbox::with_store();
+    s.file(
+        "orders.csv",
+        "id,customer,amount,note\n\
+         1, Ada Quenwick ,€12.50,\"two\nlines\"\n\
+         2,Bram Fenley,4.00,\n\
+         2,Bram Fenley,4.00,\n\
+         3,Cora Dunmore ,\"1,204.50\",\"a \"\"quoted\"\"\nnote\"\n\
+         4,Dev Ashby,7,plain\n",
+    );
+    s.ok(&["ingest", "orders.csv", "--as", "orders", "--why", "export"]);
+    s.ok(&["apply", "orders", "trim", "--why", "spaces"]);
+    s.ok(&["apply", "orders", "dedupe", "--why", "twice"]);
+    s.ok(&[
+        "apply",
+        "orders",
+        "rename",
+        "amount=parts_cost",
+        "--why",
+        "our name",
+    ]);
+    s.ok(&[
+        "apply",
+        "orders",
+        "number",
+        "--columns",
+        "parts_cost",
+        "--why",
+        "amounts",
+    ]);
+    s
+}
+
+fn trace(s: &Sandbox, args: &[&str]) -> Value {
+    let mut all = vec!["trace"];
+    all.extend_from_slice(args);
+    all.push("--json");
+    s.json(&all)
+}
+
+#[test]
+fn a_cell_is_traced_through_every_step_to_its_raw_line() {
+    let s = cleaned();
+    // Data row 3 of the cleaned version is order 3: row 4 of the raw file (a duplicate was
+    // dropped before it), whose record starts on line 6 (two notes above it hold line breaks).
+    let t = trace(&s, &["orders", "--row", "3", "--column", "parts_cost"]);
+    assert_eq!(t["value"], "1204.50");
+    let hops = t["hops"].as_array().unwrap();
+    let ops: Vec<&str> = hops
+        .iter()
+        .map(|h| h["operation"].as_str().unwrap())
+        .collect();
+    assert_eq!(ops, vec!["number", "rename", "dedupe", "trim"]);
+    assert_eq!(hops[0]["value_before"], "1,204.50");
+    assert_eq!(hops[0]["changed"], true);
+    assert_eq!(hops[1]["column_before"], "amount");
+    assert_eq!(hops[1]["column_after"], "parts_cost");
+    assert_eq!(hops[2]["row_after"], 3);
+    assert_eq!(hops[2]["row_before"], 4);
+    assert_eq!(hops[2]["changed"], false);
+    assert!(hops.iter().all(|h| h["link"] == "exact"));
+    let raw = &t["end"];
+    assert_eq!(raw["kind"], "raw");
+    assert_eq!(raw["path"], "orders.csv");
+    assert_eq!(raw["column"], "amount");
+    assert_eq!(raw["raw_value"], "1,204.50");
+    assert_eq!(
+        raw["raw_line"],
+        "3,Cora Dunmore ,\"1,204.50\",\"a \"\"quoted\"\"\nnote\""
+    );
+
+    // The line number agrees with Python's csv module (a general-purpose reference): its
+    // reader's line_num after the header and three records is the last line of the third, so
+    // the fourth record starts on the line after it.
+    let script = r#"
+import csv, sys
+with open(sys.argv[1], newline="") as f:
+    r = csv.reader(f)
+    next(r)
+    for _ in range(3):
+        next(r)
+    print(r.line_num + 1)
+"#;
+    let out = std::process::Command::new("python3")
+        .args(["-c", script])
+        .arg(s.path().join("orders.csv"))
+        .output()
+        .expect("python3 is needed for the reference checks");
+    assert!(out.status.success());
+    let python_line: u64 = String::from_utf8(out.stdout)
+        .unwrap()
+        .trim()
+        .parse()
+        .unwrap();
+    assert_eq!(raw["line"].as_u64().unwrap(), python_line);
+    assert_eq!(python_line, 6);
+
+    // The text form folds the steps that left the value alone and shows the raw record.
+    let text = s.ok(&["trace", "orders", "--row", "1", "--column", "customer"]);
+    assert_contains(&text, "customer of orders@5, data row 1: \"Ada Quenwick\"");
+    assert_contains(
+        &text,
+        "3 steps left it alone (step 5 number, step 4 rename, step 3 dedupe)",
+    );
+    assert_contains(&text, "before  orders@1 row 1 customer: \" Ada Quenwick \"");
+    assert_contains(
+        &text,
+        "orders@1 line 2, column customer: \" Ada Quenwick \"",
+    );
+}
+
+#[test]
+fn rows_are_picked_by_key_and_mistakes_are_named() {
+    let s = cleaned();
+    let t = trace(&s, &["orders", "--key", "id=4", "--column", "customer"]);
+    assert_eq!(t["row"], 4);
+    assert_eq!(t["end"]["line"], 8);
+    for (args, expected) in [
+        (
+            vec!["orders", "--row", "0", "--column", "customer"],
+            "orders@5 has data rows 1 to 4; there is no row 0",
+        ),
+        (
+            vec!["orders", "--row", "9", "--column", "customer"],
+            "there is no row 9",
+        ),
+        (
+            vec!["orders", "--row", "1", "--column", "colour"],
+            "column \"colour\" is not in orders@5",
+        ),
+        (
+            vec!["orders", "--key", "id=77", "--column", "customer"],
+            "no row of orders@5 has id=77",
+        ),
+        (
+            vec!["orders@1", "--key", "id=2", "--column", "customer"],
+            "2 rows of orders@1 have id=2 (data rows 2, 3)",
+        ),
+        (
+            vec!["orders", "--key", "shop=Q", "--column", "customer"],
+            "key column \"shop\" is not in orders@5",
+        ),
+    ] {
+        let mut all = vec!["trace"];
+        all.extend(args);
+        assert_contains(&s.fails(2, &all), expected);
+    }
+}
+
+#[test]
+fn derived_looked_up_appended_and_summarised_cells() {
+    let s = Sandbox::with_store();
+    s.file(
+        "q.csv",
+        "id,customer,tech\n1,Ada Quenwick,Ines\n2,Bram Fenley,Caspar\n",
+    );
+    s.file(
+        "o.csv",
+        "order no,client,mechanic\nOX-1,Cora Dunmore,Caspar\n",
+    );
+    s.file("staff.csv", "name,shop\nInes,Quillby\nCaspar,Oxwater\n");
+    s.ok(&["ingest", "q.csv", "--as", "q"]);
+    s.ok(&["ingest", "o.csv", "--as", "o"]);
+    s.ok(&["ingest", "staff.csv", "--as", "staff"]);
+    s.ok(&[
+        "apply",
+        "q",
+        "append",
+        "--other",
+        "o",
+        "--map",
+        "order no=id",
+        "--map",
+        "client=customer",
+        "--map",
+        "mechanic=tech",
+        "--as",
+        "all",
+        "--why",
+        "one table",
+    ]);
+    s.ok(&[
+        "apply",
+        "all",
+        "split",
+        "--column",
+        "customer",
+        "--on",
+        " ",
+        "--into",
+        "given,family",
+        "--why",
+        "names",
+    ]);
+    s.ok(&[
+        "apply",
+        "all",
+        "combine",
+        "--columns",
+        "family,given",
+        "--with",
+        ", ",
+        "--into",
+        "sort_name",
+        "--why",
+        "sorting",
+    ]);
+    s.ok(&[
+        "apply",
+        "all",
+        "lookup",
+        "--table",
+        "staff",
+        "--on",
+        "tech",
+        "--table-on",
+        "name",
+        "--take",
+        "shop",
+        "--why",
+        "shops",
+    ]);
+    s.ok(&[
+        "apply",
+        "all",
+        "summarize",
+        "--by",
+        "shop",
+        "--as",
+        "per_shop",
+        "--why",
+        "counts",
+    ]);
+
+    // A row from the appended source traces to that source's file, under its own names.
+    let t = trace(&s, &["all", "--row", "3", "--column", "customer"]);
+    let hops = t["hops"].as_array().unwrap();
+    let append = hops.iter().find(|h| h["operation"] == "append").unwrap();
+    assert_eq!(append["read"], "o@1");
+    assert_eq!(append["column_before"], "client");
+    assert_eq!(t["end"]["path"], "o.csv");
+    assert_eq!(t["end"]["raw_line"], "OX-1,Cora Dunmore,Caspar");
+
+    // A combined column branches to each column it was made from, each to its raw cell.
+    let t = trace(&s, &["all", "--row", "1", "--column", "sort_name"]);
+    assert_eq!(t["value"], "Quenwick, Ada");
+    let branches = t["end"]["sources"].as_array().unwrap();
+    assert_eq!(branches.len(), 2);
+    let ends: Vec<(&str, &str)> = branches
+        .iter()
+        .map(|b| {
+            (
+                b["trail"]["column"].as_str().unwrap(),
+                b["trail"]["value"].as_str().unwrap(),
+            )
+        })
+        .collect();
+    assert_eq!(ends, vec![("family", "Quenwick"), ("given", "Ada")]);
+    // ... and a split column back to the one it was split from.
+    let family = &branches[0]["trail"];
+    assert_eq!(family["end"]["kind"], "raw");
+    assert_eq!(family["end"]["column"], "customer");
+    assert_eq!(family["end"]["raw_value"], "Ada Quenwick");
+
+    // A looked-up column continues in the table's row with the same key.
+    let t = trace(&s, &["all", "--row", "2", "--column", "shop"]);
+    assert_eq!(t["value"], "Oxwater");
+    let sub = &t["end"]["sources"][0];
+    assert_contains(sub["via"].as_str().unwrap(), "looked up in staff@1 by name");
+    assert_eq!(sub["trail"]["row"], 2);
+    assert_eq!(sub["trail"]["end"]["raw_line"], "Caspar,Oxwater");
+
+    // A summary cell says it is made by the summary (explained elsewhere), not traced row by row.
+    let t = trace(&s, &["per_shop", "--row", "1", "--column", "count"]);
+    assert_eq!(t["end"]["kind"], "made");
+    assert_eq!(t["end"]["operation"], "summarize");
+}
