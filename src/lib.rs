@@ -37,6 +37,7 @@ pub mod code;
 pub mod demo;
 pub mod diff;
 pub mod error;
+pub mod explain;
 pub mod hash;
 pub mod history;
 pub mod intake;

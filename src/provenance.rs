@@ -412,6 +412,22 @@ pub fn change_counts(store: &Store, output: &Version) -> Result<Vec<(String, u64
     Ok(counts)
 }
 
+/// The rows the step that made `output` changed, per column (name, increasing output rows),
+/// without reading any values.
+pub fn cell_changes_rows(store: &Store, output: &Version) -> Result<Vec<(String, Vec<u64>)>> {
+    let mut out: Vec<(String, Vec<u64>)> = Vec::new();
+    for c in store.lineage.cell_changes(output.id)? {
+        match out.iter_mut().find(|(n, _)| *n == c.column) {
+            Some((_, rows)) => rows.push(c.row_idx),
+            None => out.push((c.column, vec![c.row_idx])),
+        }
+    }
+    if let Some(d) = load(store, output.step_id)? {
+        out.extend(d.changes);
+    }
+    Ok(out)
+}
+
 /// Every cell the step that made `output` changed, ordered by row then column order, with its
 /// old value (the input cell the row map points at) and new value (the output cell).
 pub fn cell_changes(store: &Store, output: &Version) -> Result<Vec<CellChange>> {

@@ -124,7 +124,14 @@ pub fn trace(store: &Store, reference: &str, row: &RowPick, column: &str) -> Res
             v.header.join(", ")
         )));
     }
-    let r = match row {
+    let r = row_of(store, &v, row)?;
+    let mut reader = Rows::default();
+    follow(store, &mut reader, v, r, column.to_string(), 0)
+}
+
+/// The 0-based row of `v` a pick names.
+pub fn row_of(store: &Store, v: &Version, row: &RowPick) -> Result<u64> {
+    Ok(match row {
         RowPick::Number(n) => {
             if *n == 0 || *n > v.n_rows {
                 return Err(Error::usage(format!(
@@ -135,10 +142,8 @@ pub fn trace(store: &Store, reference: &str, row: &RowPick, column: &str) -> Res
             }
             n - 1
         }
-        RowPick::Key(pairs) => find_by_key(store, &v, pairs)?,
-    };
-    let mut reader = Rows::default();
-    follow(store, &mut reader, v, r, column.to_string(), 0)
+        RowPick::Key(pairs) => find_by_key(store, v, pairs)?,
+    })
 }
 
 fn find_by_key(store: &Store, v: &Version, pairs: &[(String, String)]) -> Result<u64> {

@@ -136,6 +136,41 @@ pub enum Command {
         json: bool,
     },
 
+    /// Why a total is what it is: the rows a summary cell aggregates, its arithmetic, and what
+    /// earlier steps dropped or changed
+    #[command(
+        after_help = "Examples:\n  sluice explain q3_by_shop --row 1 --column sum_parts_cost\n  \
+        sluice explain by_species --key species=Adelie --column count --json\n\n\
+        The aggregate is computed again from the stored input and checked against the stored value. \
+        A row an earlier step dropped counts for the group when its group columns, as they were where \
+        it was dropped, hold the group's values; drops made before a group column existed are counted \
+        as undecided."
+    )]
+    Explain {
+        /// The summary version: NAME (latest), NAME@N or a hash prefix
+        reference: String,
+        /// The 1-based data row of the summary
+        #[arg(
+            long,
+            value_name = "N",
+            conflicts_with = "key",
+            required_unless_present = "key"
+        )]
+        row: Option<u64>,
+        /// The summary row whose columns hold these values, e.g. shop=Oxwater
+        #[arg(long, value_name = "COL=VAL[,COL=VAL..]", value_delimiter = ',')]
+        key: Vec<String>,
+        /// The summary column: count, or an aggregate such as sum_parts_cost
+        #[arg(long, value_name = "COL")]
+        column: String,
+        /// How many rows to list (contributing rows, and dropped rows per reason)
+        #[arg(long, value_name = "N", default_value_t = 10)]
+        limit: usize,
+        /// Print JSON
+        #[arg(long)]
+        json: bool,
+    },
+
     /// Write a version's exact bytes to standard output or a file
     #[command(
         after_help = "Examples:\n  sluice cat quillby_orders@1 > q3-as-received.csv\n  sluice cat 5f3a9c -o q3.csv"

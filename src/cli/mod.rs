@@ -234,22 +234,7 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             json,
         } => {
             let store = open_store(&cli, &cwd)?;
-            let pick = match row {
-                Some(n) => sluice::trace::RowPick::Number(*n),
-                None => sluice::trace::RowPick::Key(
-                    key.iter()
-                        .map(|kv| {
-                            kv.split_once('=')
-                                .map(|(k, v)| (k.to_string(), v.to_string()))
-                                .ok_or_else(|| {
-                                    anyhow!(
-                                        "--key {kv}: expected COL=VAL, e.g. --key order_id=41012"
-                                    )
-                                })
-                        })
-                        .collect::<anyhow::Result<Vec<_>>>()?,
-                ),
-            };
+            let pick = row_pick(*row, key)?;
             let trail = sluice::trace::trace(&store, reference, &pick, column)?;
             if *json {
                 render::json(&mut out, &trail)?;
@@ -257,6 +242,25 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
                 render::trail(&mut out, &trail)?;
             }
             Ok(0)
+        }
+        Command::Explain {
+            reference,
+            row,
+            key,
+            column,
+            limit,
+            json,
+        } => {
+            let store = open_store(&cli, &cwd)?;
+            let pick = row_pick(*row, key)?;
+            let e = sluice::explain::explain(&store, reference, &pick, column, *limit)?;
+            if *json {
+                render::json(&mut out, &e)?;
+            } else {
+                render::explanation(&mut out, &e)?;
+            }
+            // A stored value that the input does not give again is damage, not a usage error.
+            Ok(if e.agrees { 0 } else { 1 })
         }
         Command::Cat { reference, output } => {
             let store = open_store(&cli, &cwd)?;
@@ -653,6 +657,24 @@ fn parse_delimiter(s: &str) -> anyhow::Result<u8> {
         ));
     }
     Ok(b)
+}
+
+/// `--row N` or `--key COL=VAL,...` as a row pick.
+fn row_pick(row: Option<u64>, key: &[String]) -> anyhow::Result<sluice::trace::RowPick> {
+    Ok(match row {
+        Some(n) => sluice::trace::RowPick::Number(n),
+        None => sluice::trace::RowPick::Key(
+            key.iter()
+                .map(|kv| {
+                    kv.split_once('=')
+                        .map(|(k, v)| (k.to_string(), v.to_string()))
+                        .ok_or_else(|| {
+                            anyhow!("--key {kv}: expected COL=VAL, e.g. --key order_id=41012")
+                        })
+                })
+                .collect::<anyhow::Result<Vec<_>>>()?,
+        ),
+    })
 }
 
 /// `NAME=FILE|REF`: an existing file is taken in; anything else must name a stored version.

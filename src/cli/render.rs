@@ -8,6 +8,7 @@ use serde::Serialize;
 use serde_json::json;
 
 use sluice::demo::DemoReport;
+use sluice::explain::Explanation;
 use sluice::history::{LogEntry, VersionDetail};
 use sluice::intake::IngestOutcome;
 use sluice::model::{Step, Version};
@@ -717,6 +718,117 @@ fn trail_body(out: &mut impl Write, t: &Trail, pad: &str) -> io::Result<()> {
                 )?;
                 trail_body(out, &b.trail, &inner)?;
             }
+        }
+    }
+    Ok(())
+}
+
+/// An explanation of a summary cell.
+pub fn explanation(out: &mut impl Write, e: &Explanation) -> io::Result<()> {
+    let group: Vec<String> = e
+        .group
+        .iter()
+        .map(|(c, v)| format!("{c} {}", shown(v)))
+        .collect();
+    writeln!(
+        out,
+        "{} of {}, data row {} ({}): {}",
+        e.column,
+        e.version,
+        e.row,
+        group.join(", "),
+        shown(&e.value)
+    )?;
+    writeln!(out, "  {}", e.arithmetic)?;
+    if e.agrees {
+        writeln!(
+            out,
+            "  computed again from {}: {} (agrees)",
+            e.input,
+            shown(&e.recomputed)
+        )?;
+    } else {
+        writeln!(
+            out,
+            "  computed again from {}: {}, which DIFFERS from the stored value; run `sluice verify`",
+            e.input,
+            shown(&e.recomputed)
+        )?;
+    }
+    writeln!(
+        out,
+        "  {} of {} in the group{}",
+        plural(e.contributing.rows, "row", "rows"),
+        e.input,
+        match &e.of_column {
+            Some(c) => format!(", {} with a value in {c}", count(e.contributing.with_value)),
+            None => String::new(),
+        }
+    )?;
+    for (row, v) in &e.contributing.first {
+        match &e.of_column {
+            Some(_) => writeln!(out, "    data row {row}: {}", shown(v))?,
+            None => writeln!(out, "    data row {row}")?,
+        }
+    }
+    if e.contributing.rows > e.contributing.first.len() as u64 {
+        writeln!(
+            out,
+            "    ... (--limit N lists more; `sluice trace {} --row N --column COL` follows one)",
+            e.input
+        )?;
+    }
+    if e.upstream.is_empty() {
+        writeln!(
+            out,
+            "  no earlier step dropped rows of this group or changed its values"
+        )?;
+    }
+    for u in &e.upstream {
+        writeln!(
+            out,
+            "  step {} · {} ({} from {}){}",
+            u.step,
+            u.operation.as_deref().unwrap_or("outside work"),
+            u.produced,
+            u.read,
+            u.why
+                .as_deref()
+                .map(|w| format!(" · why: {w}"))
+                .unwrap_or_default()
+        )?;
+        for d in &u.dropped {
+            let rows: Vec<String> = d.first.iter().map(|r| r.to_string()).collect();
+            writeln!(
+                out,
+                "    dropped {} of this group: {} (data rows {}{} of {})",
+                plural(d.rows, "row", "rows"),
+                d.reason,
+                rows.join(", "),
+                if d.rows > d.first.len() as u64 {
+                    ", ..."
+                } else {
+                    ""
+                },
+                u.read
+            )?;
+        }
+        if u.undecided > 0 {
+            writeln!(
+                out,
+                "    dropped {} before a group column existed (not placed in any group)",
+                plural(u.undecided, "row", "rows")
+            )?;
+        }
+        if u.changed_cells > 0 {
+            writeln!(
+                out,
+                "    changed {} of the aggregated column in this group",
+                plural(u.changed_cells, "cell", "cells")
+            )?;
+        }
+        for (note, n) in &u.noted {
+            writeln!(out, "    noted {}: {note}", plural(*n, "cell", "cells"))?;
         }
     }
     Ok(())
