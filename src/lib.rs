@@ -38,6 +38,7 @@ pub mod demo;
 pub mod diff;
 pub mod error;
 pub mod explain;
+pub mod graph;
 pub mod hash;
 pub mod history;
 pub mod intake;

@@ -171,6 +171,33 @@ pub enum Command {
         json: bool,
     },
 
+    /// Every version and step that depends on a version (what a wrong raw file affects)
+    #[command(after_help = "Example:\n  sluice impact quillby_orders@1")]
+    Impact {
+        /// The version: NAME (latest), NAME@N or a hash prefix
+        reference: String,
+        /// Print JSON
+        #[arg(long)]
+        json: bool,
+    },
+
+    /// Draw the lineage graph (versions and steps) as Graphviz DOT text or as SVG
+    #[command(
+        after_help = "Examples:\n  sluice graph --format svg -o lineage.svg\n  sluice graph q3_by_shop --format dot | dot -Tpng > q3.png\n\n\
+        With a version, only what it comes from and what depends on it. The SVG is laid out by sluice itself \
+        (no outside program needed); latest versions are drawn in blue."
+    )]
+    Graph {
+        /// Only the part around this version
+        reference: Option<String>,
+        /// The form to write
+        #[arg(long, value_enum, default_value = "dot")]
+        format: GraphFormat,
+        /// Write to this file instead of standard output
+        #[arg(short = 'o', long = "output", value_name = "FILE")]
+        output: Option<PathBuf>,
+    },
+
     /// Write a version's exact bytes to standard output or a file
     #[command(
         after_help = "Examples:\n  sluice cat quillby_orders@1 > q3-as-received.csv\n  sluice cat 5f3a9c -o q3.csv"
@@ -658,6 +685,14 @@ pub enum OpCommand {
         #[command(flatten)]
         step: StepArgs,
     },
+}
+
+#[derive(Debug, Clone, Copy, ValueEnum)]
+pub enum GraphFormat {
+    /// Graphviz DOT text
+    Dot,
+    /// A self-contained SVG drawing
+    Svg,
 }
 
 #[derive(Debug, Clone, Copy, ValueEnum)]

@@ -262,6 +262,35 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             // A stored value that the input does not give again is damage, not a usage error.
             Ok(if e.agrees { 0 } else { 1 })
         }
+        Command::Impact { reference, json } => {
+            let store = open_store(&cli, &cwd)?;
+            let i = sluice::graph::impact(&store, reference)?;
+            if *json {
+                render::json(&mut out, &i)?;
+            } else {
+                render::impact(&mut out, &i)?;
+            }
+            Ok(0)
+        }
+        Command::Graph {
+            reference,
+            format,
+            output,
+        } => {
+            let store = open_store(&cli, &cwd)?;
+            let text = match format {
+                args::GraphFormat::Dot => sluice::graph::dot(&store, reference.as_deref())?,
+                args::GraphFormat::Svg => sluice::graph::svg(&store, reference.as_deref())?,
+            };
+            match output {
+                None => out.write_all(text.as_bytes())?,
+                Some(path) => {
+                    write_file_atomically(path, |f| Ok(f.write_all(text.as_bytes())?))?;
+                    writeln!(out, "wrote the lineage graph to {}", path.display())?;
+                }
+            }
+            Ok(0)
+        }
         Command::Cat { reference, output } => {
             let store = open_store(&cli, &cwd)?;
             let version = refs::resolve(&store.lineage, reference)?;

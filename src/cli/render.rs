@@ -834,6 +834,59 @@ pub fn explanation(out: &mut impl Write, e: &Explanation) -> io::Result<()> {
     Ok(())
 }
 
+/// What depends on a version.
+pub fn impact(out: &mut impl Write, i: &sluice::graph::Impact) -> io::Result<()> {
+    if i.steps.is_empty() {
+        return writeln!(out, "nothing depends on {} ({})", i.version, &i.hash[..12]);
+    }
+    writeln!(
+        out,
+        "{} ({}) is read, directly or through others, by {} making {}:",
+        i.version,
+        &i.hash[..12],
+        plural(i.steps.len() as u64, "step", "steps"),
+        plural(i.versions.len() as u64, "version", "versions")
+    )?;
+    for s in &i.steps {
+        if let sluice::graph::Node::Step {
+            id,
+            step_kind,
+            operation,
+            at,
+            agent,
+            ..
+        } = &s.step
+        {
+            let made: Vec<String> = s
+                .made
+                .iter()
+                .map(|m| {
+                    if i.current.contains(m) {
+                        format!("{m} (latest)")
+                    } else {
+                        m.clone()
+                    }
+                })
+                .collect();
+            writeln!(
+                out,
+                "  step {id} · {} · {at} · {agent} -> {}",
+                operation.as_deref().unwrap_or(step_kind),
+                made.join(", ")
+            )?;
+        }
+    }
+    writeln!(
+        out,
+        "in use now (latest versions that depend on it): {}",
+        if i.current.is_empty() {
+            "none".to_string()
+        } else {
+            i.current.join(", ")
+        }
+    )
+}
+
 fn ingest_outcome_short(out: &mut impl Write, o: &IngestOutcome) -> io::Result<()> {
     match o {
         IngestOutcome::Recorded { version, .. } => writeln!(
