@@ -7,13 +7,21 @@
 //! labels, blanks, cancelled and test orders. Every name, address and number is made up; e-mail
 //! addresses use the reserved `example.org`/`example.net` domains (RFC 2606).
 //!
+//! After the plan, the demo does two pieces of work outside sluice and records them with lineage
+//! inferred by a diff: a short Python script it writes (run with `python3` through
+//! [`crate::exec`]) restores a technician's accent the Quillby till cannot type, and a hand edit
+//! (made here, as a person would in a spreadsheet) adds a note the Oxwater till has no field for.
+//!
 //! The same generator makes the benchmark's large files (`work_orders`), so the benchmark
 //! measures the kind of file the demo shows.
 
 use std::io::{self, Write};
 use std::path::{Path, PathBuf};
 
-use crate::error::{Error, Result};
+use crate::error::{Error, ErrorKind, Result};
+use crate::exec::{ExecFailure, ExecOptions, ExecOutcome};
+use crate::inferred::{HandEditOutcome, RecordedSuccessor};
+use crate::intake::IngestOptions;
 use crate::model::Agent;
 use crate::plan;
 use crate::store::Store;
@@ -381,6 +389,9 @@ pub struct DemoReport {
     pub plan: PathBuf,
     /// What the run of the plan did: the intakes, then each step.
     pub done: Vec<plan::Done>,
+    /// The outside work after the plan: (what was done, as a command line, and the version it
+    /// recorded), the script's run first, then the hand edit.
+    pub outside: Vec<(String, RecordedSuccessor)>,
     pub next_commands: Vec<String>,
 }
 
@@ -457,7 +468,10 @@ pub fn run(dir: &Path, agent: &Agent) -> Result<DemoReport> {
         )))
     })?;
 
+    let outside = outside_work(&mut store, dir, agent)?;
+
     Ok(DemoReport {
+        outside,
         dir: dir.to_path_buf(),
         scenario: "The Three Rivers Cycle Cooperative: three bicycle repair shops, each exporting its Q3 work orders \
                    from a different till (comma / semicolon with decimal commas and a BOM / CRLF), plus the \
@@ -470,11 +484,168 @@ pub fn run(dir: &Path, agent: &Agent) -> Result<DemoReport> {
             "sluice log all_orders".to_string(),
             "sluice show all_orders".to_string(),
             "sluice cat q3_by_shop".to_string(),
+            "sluice log reviewed_orders".to_string(),
+            "sluice diff all_orders reviewed_orders@1".to_string(),
             "sluice cat quillby_orders@1 | head -5".to_string(),
             "sluice export q3_by_shop --format plan".to_string(),
             "sluice verify".to_string(),
         ],
     })
+}
+
+/// The demo's outside script: it reads the cooperative's orders and writes them back with one
+/// technician's name as she spells it.
+pub const FIX_SCRIPT: &str = r#""""The Quillby till cannot type accents: Inès's work orders say "Ines".
+Reads the work orders (argument 1) and writes them (argument 2) with her name as she spells it."""
+import csv
+import sys
+
+with open(sys.argv[1], newline="", encoding="utf-8") as src, \
+        open(sys.argv[2], "w", newline="", encoding="utf-8") as dst:
+    rows = csv.reader(src)
+    out = csv.writer(dst, lineterminator="\n")
+    header = next(rows)
+    out.writerow(header)
+    col = header.index("technician")
+    fixed = 0
+    for row in rows:
+        if row[col] == "Ines":
+            row[col] = "Inès"
+            fixed += 1
+        out.writerow(row)
+print(f"fixed {fixed} orders", file=sys.stderr)
+"#;
+
+/// The script run and the hand edit, each recorded with its reason.
+fn outside_work(
+    store: &mut Store,
+    dir: &Path,
+    agent: &Agent,
+) -> Result<Vec<(String, RecordedSuccessor)>> {
+    let review = dir.join("review");
+    std::fs::create_dir_all(&review).map_err(|e| Error::io(&review, e))?;
+    let script = review.join("restore_accents.py");
+    std::fs::write(&script, FIX_SCRIPT).map_err(|e| Error::io(&script, e))?;
+    let command: Vec<String> = [
+        "python3",
+        "review/restore_accents.py",
+        "{all_orders}",
+        "{out:reviewed_orders}",
+    ]
+    .iter()
+    .map(|s| s.to_string())
+    .collect();
+    let why = "the Quillby till cannot type accents; Inès asked for her name as she spells it";
+    let opts = ExecOptions {
+        inputs: vec![("all_orders".into(), "all_orders".into())],
+        outputs: vec![(
+            "reviewed_orders".into(),
+            PathBuf::from("review/reviewed_orders.csv"),
+        )],
+        command: command.clone(),
+        cwd: dir.to_path_buf(),
+        reason: why.into(),
+        agent: agent.clone(),
+    };
+    let shown = format!(
+        "sluice exec --input all_orders --output reviewed_orders=review/reviewed_orders.csv --why \"{why}\" -- {}",
+        command.join(" ")
+    );
+    let ran = match crate::exec::exec(store, &opts)? {
+        ExecOutcome::Recorded { mut recorded, .. } => recorded.pop().ok_or_else(|| {
+            Error::from(ErrorKind::Data(
+                "the demo's script wrote nothing new; run the demo in a fresh folder".into(),
+            ))
+        })?,
+        ExecOutcome::Failed {
+            failure: ExecFailure::NotStarted { found: false, .. },
+            ..
+        } => {
+            return Err(ErrorKind::Data(
+                "the demo runs a short Python script with `python3`, which was not found; install Python 3 (or put it on PATH) and run the demo again".into(),
+            )
+            .into())
+        }
+        ExecOutcome::Failed { failure, .. } => {
+            return Err(ErrorKind::Data(format!(
+                "the demo's script failed: {}; the demo needs Python 3 as `python3`",
+                failure.describe()
+            ))
+            .into())
+        }
+    };
+
+    // The hand edit: the Oxwater manager adds a note to the shop's first order, as one would
+    // in a spreadsheet, and saves the file under a new name.
+    let edited = review.join("reviewed_orders_with_note.csv");
+    let source = review.join("reviewed_orders.csv");
+    let bytes = std::fs::read(&source).map_err(|e| Error::io(&source, e))?;
+    let mut reader = csv::ReaderBuilder::new()
+        .has_headers(false)
+        .from_reader(&bytes[..]);
+    let mut rows: Vec<csv::StringRecord> = Vec::new();
+    for r in reader.records() {
+        rows.push(r.map_err(|e| {
+            Error::from(ErrorKind::Data(format!(
+                "the demo's script wrote {} that cannot be read back: {e}",
+                source.display()
+            )))
+        })?);
+    }
+    let col = |name: &str| rows.first().and_then(|h| h.iter().position(|c| c == name));
+    let (Some(shop), Some(notes)) = (col("shop"), col("notes")) else {
+        return Err(ErrorKind::Data(format!(
+            "{} lacks the shop or notes column the demo edits",
+            source.display()
+        ))
+        .into());
+    };
+    let mut writer = csv::WriterBuilder::new()
+        .terminator(csv::Terminator::Any(b'\n'))
+        .from_writer(Vec::new());
+    let mut noted = false;
+    for (i, r) in rows.iter().enumerate() {
+        let mut fields: Vec<String> = r.iter().map(str::to_string).collect();
+        if i > 0 && !noted && fields.get(shop).is_some_and(|s| s.starts_with("Oxwater")) {
+            fields[notes] = "chain replaced under warranty; no charge".into();
+            noted = true;
+        }
+        writer
+            .write_record(&fields)
+            .map_err(|e| Error::io(&edited, std::io::Error::other(e)))?;
+    }
+    let out = writer
+        .into_inner()
+        .map_err(|e| Error::io(&edited, std::io::Error::other(e.to_string())))?;
+    std::fs::write(&edited, out).map_err(|e| Error::io(&edited, e))?;
+    let why_edit = "the Oxwater till has no field for warranty work; the manager noted it by hand";
+    let edit = crate::inferred::ingest_hand_edit(
+        store,
+        &edited,
+        &IngestOptions {
+            dataset: "reviewed_orders".into(),
+            key: None,
+            reason: Some(why_edit.into()),
+            delimiter: None,
+            has_header: true,
+            encoding: None,
+            null_tokens: Vec::new(),
+            agent: agent.clone(),
+        },
+        "reviewed_orders",
+    )?;
+    let HandEditOutcome::Recorded { recorded: edit, .. } = edit else {
+        return Err(ErrorKind::Data("the demo's hand edit changed nothing".into()).into());
+    };
+    Ok(vec![
+        (shown, ran),
+        (
+            format!(
+                "sluice ingest review/reviewed_orders_with_note.csv --as reviewed_orders --from reviewed_orders --why \"{why_edit}\""
+            ),
+            *edit,
+        ),
+    ])
 }
 
 #[cfg(test)]

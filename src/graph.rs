@@ -7,7 +7,6 @@
 use std::collections::{BTreeSet, HashMap};
 use std::fmt::Write as _;
 
-use petgraph::algo::toposort;
 use petgraph::graph::{DiGraph, NodeIndex};
 use petgraph::visit::{Bfs, Reversed};
 use petgraph::Direction;
@@ -129,14 +128,28 @@ impl Lineage {
         })
     }
 
-    /// The nodes in an order where every step comes after what it read.
+    /// The nodes in an order where every step comes after what it read: steps by number (a
+    /// step reads only versions recorded before it), each version right after its step.
     fn ordered(&self, keep: &BTreeSet<NodeIndex>) -> Vec<NodeIndex> {
-        match toposort(&self.graph, None) {
-            Ok(order) => order.into_iter().filter(|n| keep.contains(n)).collect(),
-            // A cycle cannot be recorded (a step reads only versions that exist before it);
-            // fall back to the order of insertion.
-            Err(_) => keep.iter().copied().collect(),
-        }
+        let key = |n: NodeIndex| -> (i64, usize) {
+            match &self.graph[n] {
+                Node::Step { id, .. } => (id * 2, n.index()),
+                Node::Version { .. } => {
+                    let made_by = self
+                        .graph
+                        .neighbors_directed(n, Direction::Incoming)
+                        .find_map(|m| match &self.graph[m] {
+                            Node::Step { id, .. } => Some(*id),
+                            Node::Version { .. } => None,
+                        })
+                        .unwrap_or(0);
+                    (made_by * 2 + 1, n.index())
+                }
+            }
+        };
+        let mut nodes: Vec<NodeIndex> = keep.iter().copied().collect();
+        nodes.sort_by_key(|&n| key(n));
+        nodes
     }
 }
 

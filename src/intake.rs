@@ -256,6 +256,27 @@ pub struct PreparedIngest {
     warnings: Vec<String>,
 }
 
+/// How a prepared intake is recorded as the successor of a version (see
+/// [`PreparedIngest::commit_as`]): the step's kind, its inputs (the version it succeeds first,
+/// with role `input`), and the lineage inferred by a diff.
+pub struct Succession<'a> {
+    pub kind: StepKind,
+    /// (version id, role), the version succeeded first.
+    pub inputs: Vec<(i64, &'a str)>,
+    /// The hash of the version succeeded, for the audit entry.
+    pub from_hash: &'a str,
+    pub rows_in: u64,
+    /// When the step began (an outside command: before it ran).
+    pub started_at: String,
+    /// The provenance object (hash, size), already durable.
+    pub provenance: Option<(&'a str, u64)>,
+    pub code: Option<&'a serde_json::Value>,
+    /// How rows were matched, kept in the step's parameters.
+    pub inferred_by: serde_json::Value,
+    /// Renamed columns: (output column, input column).
+    pub column_sources: Vec<(String, String)>,
+}
+
 /// The result of [`prepare`].
 pub enum Prepared {
     /// The bytes equal the dataset's latest version.
@@ -272,6 +293,11 @@ impl PreparedIngest {
         &self.opts.null_tokens
     }
 
+    /// Problems worth a warning found while reading (the file is still taken in).
+    pub fn warnings(&self) -> &[String] {
+        &self.warnings
+    }
+
     /// The file the intake reads (its bytes hash to [`PreparedIngest::hash`]).
     pub fn path(&self) -> &Path {
         &self.path
@@ -282,32 +308,84 @@ impl PreparedIngest {
         format!("{} ({})", self.opts.dataset, &self.table_hex[..12])
     }
 
-    /// Makes the objects durable, then records the version, its ingest step and the audit
-    /// entry in `tx`; `None` when another command recorded the same bytes as the dataset's
-    /// latest version meanwhile.
-    pub fn commit(&mut self, store_dir: &Path, tx: &mut Tx<'_>) -> Result<Option<(i64, i64)>> {
+    /// Makes the table and row index objects durable (they stay unreferenced until a commit)
+    /// and describes the version they will be, so that it can be compared with others before
+    /// it is recorded. The description's `id` and `step_id` are 0; its `seq` is the next one.
+    pub fn draft(&mut self, store: &Store) -> Result<Version> {
+        self.persist(store.dir())?;
+        let seq = store
+            .lineage
+            .latest_version(&self.opts.dataset)?
+            .map_or(1, |v| v.seq + 1);
+        Ok(Version {
+            id: 0,
+            dataset: self.opts.dataset.clone(),
+            seq,
+            hash: self.table_hex.clone(),
+            row_index: self.index_hex.clone(),
+            n_rows: self.n_rows,
+            n_cols: self.header.len() as u64,
+            n_bytes: self.n_bytes,
+            header: self.header.clone(),
+            dialect: self.dialect.clone(),
+            null_tokens: self.opts.null_tokens.clone(),
+            created_at: self.ended_at.clone(),
+            step_id: 0,
+        })
+    }
+
+    fn persist(&mut self, store_dir: &Path) -> Result<()> {
         if let Some((table, index)) = self.objects.take() {
             table.finish().map_err(|e| store_io(store_dir, e))?;
             index.finish().map_err(|e| store_io(store_dir, e))?;
         }
+        Ok(())
+    }
+
+    /// Makes the objects durable, then records the version, its ingest step and the audit
+    /// entry in `tx`; `None` when another command recorded the same bytes as the dataset's
+    /// latest version meanwhile.
+    pub fn commit(&mut self, store_dir: &Path, tx: &mut Tx<'_>) -> Result<Option<(i64, i64)>> {
+        self.commit_as(store_dir, tx, None)
+    }
+
+    /// [`PreparedIngest::commit`], recording the file as the successor of other versions when
+    /// `succession` says so (an outside command's output or a hand edit) instead of as a plain
+    /// intake.
+    pub fn commit_as(
+        &mut self,
+        store_dir: &Path,
+        tx: &mut Tx<'_>,
+        succession: Option<&Succession<'_>>,
+    ) -> Result<Option<(i64, i64)>> {
+        self.persist(store_dir)?;
         let opts = &self.opts;
         if tx.latest_version_hash(&opts.dataset)?.as_deref() == Some(self.table_hex.as_str()) {
             return Ok(None);
         }
+        let mut params = self.params.clone();
+        if let (Some(s), Some(map)) = (succession, params.as_object_mut()) {
+            map.insert("inferred_by".into(), s.inferred_by.clone());
+        }
+        if let Some((hash, n)) = succession.and_then(|s| s.provenance) {
+            tx.insert_object(hash, n, "blob", &self.ended_at)?;
+        }
         let step_id = tx.insert_step(&NewStep {
-            kind: StepKind::Ingest,
+            kind: succession.map_or(StepKind::Ingest, |s| s.kind),
             operation: None,
-            params: self.params.clone(),
+            params,
             agent: &opts.agent,
             reason: opts.reason.as_deref(),
-            started_at: self.started_at.clone(),
+            started_at: succession
+                .map_or_else(|| self.started_at.clone(), |s| s.started_at.clone()),
             ended_at: self.ended_at.clone(),
-            rows_in: None,
+            rows_in: succession.map(|s| s.rows_in),
             rows_out: Some(self.n_rows),
-            lineage: LineageKind::None,
+            lineage: succession.map_or(LineageKind::None, |_| LineageKind::Inferred),
             source: Some(&self.source),
-            inputs: Vec::new(),
-            provenance: None,
+            inputs: succession.map_or_else(Vec::new, |s| s.inputs.clone()),
+            provenance: succession.and_then(|s| s.provenance.map(|p| p.0)),
+            code: succession.and_then(|s| s.code),
         })?;
         let (version_id, seq) = tx.insert_version(&NewVersion {
             dataset: &opts.dataset,
@@ -324,18 +402,27 @@ impl PreparedIngest {
             profiles: &self.profiles,
             created_at: &self.ended_at,
         })?;
+        let mut details = json!({
+            "version": self.table_hex,
+            "row_index": self.index_hex,
+            "step": step_id,
+            "source": self.source.absolute_path,
+            "n_rows": self.n_rows,
+            "n_bytes": self.n_bytes,
+        });
+        if let Some(s) = succession {
+            tx.insert_column_sources(step_id, version_id, s.inputs[0].0, &s.column_sources)?;
+            if let Some(map) = details.as_object_mut() {
+                map.insert("kind".into(), json!(s.kind.as_str()));
+                map.insert("from".into(), json!(s.from_hash));
+                map.insert("provenance".into(), json!(s.provenance.map(|p| p.0)));
+            }
+        }
         tx.audit(
             &opts.agent,
-            "ingest",
+            succession.map_or("ingest", |s| s.kind.as_str()),
             &format!("{}@{seq}", opts.dataset),
-            &json!({
-                "version": self.table_hex,
-                "row_index": self.index_hex,
-                "step": step_id,
-                "source": self.source.absolute_path,
-                "n_rows": self.n_rows,
-                "n_bytes": self.n_bytes,
-            }),
+            &details,
             &self.ended_at,
         )?;
         Ok(Some((version_id, step_id)))

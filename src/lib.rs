@@ -7,8 +7,9 @@
 //! - read: [`table`] detects, decodes, parses and profiles delimited text;
 //! - operate: [`ops`] holds the built-in cleaning operations and records them; [`plan`] runs
 //!   and exports lists of them; [`checks`] evaluates declared rules;
-//! - record: [`intake`] takes outside files in; [`store`] keeps objects and the lineage database
-//!   (the only module that touches SQLite);
+//! - record: [`intake`] takes outside files in; [`exec`] runs outside commands and, with
+//!   [`inferred`], records their outputs and hand edits with lineage inferred by a diff;
+//!   [`store`] keeps objects and the lineage database (the only module that touches SQLite);
 //! - query: [`history`] (log, show), [`verify`], [`refs`] (version references).
 //!
 //! The engine never prints: it returns values and typed [`Error`]s, and the binary renders them.
@@ -37,10 +38,12 @@ pub mod code;
 pub mod demo;
 pub mod diff;
 pub mod error;
+pub mod exec;
 pub mod explain;
 pub mod graph;
 pub mod hash;
 pub mod history;
+pub mod inferred;
 pub mod intake;
 pub mod model;
 pub mod ops;

@@ -178,6 +178,10 @@ pub struct Step {
     pub rows_out: Option<u64>,
     pub lineage: LineageKind,
     pub source: Option<SourceFile>,
+    /// For outside commands and hand edits: what ran and where (command line, working
+    /// directory, git commit, branch and modified files, times, exit status), as recorded.
+    #[serde(default)]
+    pub code: Option<serde_json::Value>,
     /// Labels (`name@seq`) of the versions the step read.
     pub inputs: Vec<String>,
     /// Labels of the versions the step produced.

@@ -13,12 +13,21 @@ fn impact_lists_everything_downstream_and_what_is_in_use_now() {
         .as_array()
         .unwrap()
         .iter()
-        .map(|s| s["step"]["operation"].as_str().unwrap())
+        .map(|s| {
+            s["step"]["operation"]
+                .as_str()
+                .or(s["step"]["step_kind"].as_str())
+                .unwrap()
+        })
         .collect();
-    assert_eq!(ops, vec!["lookup", "extract", "summarize"]);
+    // The plan's last three steps, then the demo's outside script and hand edit.
+    assert_eq!(
+        ops,
+        vec!["lookup", "extract", "summarize", "command", "hand_edit"]
+    );
     assert_eq!(
         i["current"],
-        serde_json::json!(["all_orders@9", "q3_by_shop@1"])
+        serde_json::json!(["all_orders@9", "q3_by_shop@1", "reviewed_orders@2"])
     );
     // A raw export reaches every version made from it, in recording order.
     let i = d.json(&["impact", "oxwater_orders@1", "--json"]);
@@ -29,12 +38,12 @@ fn impact_lists_everything_downstream_and_what_is_in_use_now() {
         .map(|v| v["label"].as_str().unwrap())
         .collect();
     assert_eq!(made.first(), Some(&"oxwater_orders@2"));
-    assert_eq!(made.last(), Some(&"q3_by_shop@1"));
+    assert_eq!(made.last(), Some(&"reviewed_orders@2"));
     assert!(!made.contains(&"quillby_orders@2"));
     assert_eq!(
         made.len(),
-        4 + 9 + 1,
-        "four Oxwater versions, all_orders@1-9, the summary"
+        4 + 9 + 1 + 2,
+        "four Oxwater versions, all_orders@1-9, the summary, the two reviewed versions"
     );
     assert_contains(
         &d.ok(&["impact", "q3_by_shop"]),

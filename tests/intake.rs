@@ -379,8 +379,8 @@ fn demo_builds_a_store_that_verifies() {
     std::fs::remove_dir_all(d.path()).unwrap();
     std::fs::rename(s.path().join("sluice-demo"), d.path()).unwrap();
     assert_contains(&d.ok(&["verify"]), "intact");
-    // Five intakes and the plan's twenty built-in steps (its gate check records results, not
-    // a step).
+    // Five intakes, the plan's twenty built-in steps (its gate check records results, not
+    // a step), then the outside script's step and the hand edit.
     let plan: serde_json::Value =
         serde_json::from_str(&std::fs::read_to_string(d.path().join("q3_cleaning.json")).unwrap())
             .unwrap();
@@ -393,8 +393,16 @@ fn demo_builds_a_store_that_verifies() {
     assert_eq!(applies, 20);
     assert_eq!(
         d.json(&["log", "--json"]).as_array().unwrap().len(),
-        5 + applies
+        5 + applies + 2
     );
+    let reviewed = d.json(&["log", "reviewed_orders", "--json"]);
+    let kinds: Vec<&str> = reviewed
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|e| e["step"]["kind"].as_str().unwrap())
+        .collect();
+    assert_eq!(kinds, ["hand_edit", "command"]);
     assert_eq!(
         d.json(&["show", "quillby_orders", "--json"])["version"]["seq"],
         4

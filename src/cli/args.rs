@@ -252,6 +252,21 @@ pub enum Command {
     )]
     Diff(DiffArgs),
 
+    /// Run an outside command on stored versions and record what it writes, with lineage
+    /// inferred by a diff
+    #[command(
+        after_help = "Placeholders in the command's arguments: {NAME} is the file holding input NAME (a copy of \
+        the stored version, in a temporary folder removed afterwards), {out:NAME} the file of output NAME. \
+        The same paths are in the environment variables SLUICE_INPUT_<NAME> and SLUICE_OUTPUT_<NAME> (NAME in \
+        upper case, other characters than letters and digits as _).\n\n\
+        Example:\n  sluice exec --input all_orders --output all_orders=fixed.csv --why \"one spelling of each name\" \\\n      \
+        -- python3 fix_names.py {all_orders} {out:all_orders}\n\n\
+        Exit code: the command's own status when it fails (128 + N when ended by signal N, 127 when the program \
+        does not exist, 126 when it cannot be started); 1 when it exits with 0 but an output is missing or it \
+        changed an input; then nothing but the failure's audit entry is recorded."
+    )]
+    Exec(ExecArgs),
+
     /// Create a store with an invented example (three bicycle repair shops) and take it in
     #[command(after_help = "Example:\n  sluice demo\n  sluice demo /tmp/try-sluice")]
     Demo {
@@ -294,6 +309,31 @@ pub struct IngestArgs {
     /// A value that means "missing" (counted as blank in the profile); repeat for several
     #[arg(long = "null-token", value_name = "T")]
     pub null_tokens: Vec<String>,
+
+    /// The file is a hand-edited successor of this version (NAME, NAME@N or a hash prefix):
+    /// record it as a hand edit, its row lineage inferred by a diff
+    #[arg(long, value_name = "REF")]
+    pub from: Option<String>,
+}
+
+#[derive(Debug, Args)]
+pub struct ExecArgs {
+    /// A version the command reads, as NAME (the latest version of dataset NAME) or
+    /// NAME=REF (NAME@N, a hash prefix); repeatable
+    #[arg(long = "input", value_name = "NAME[=REF]")]
+    pub inputs: Vec<String>,
+
+    /// A file the command writes, recorded as the next version of dataset NAME; repeatable
+    #[arg(long = "output", value_name = "NAME=FILE", required = true)]
+    pub outputs: Vec<String>,
+
+    /// Why the command is run (kept with each step it makes)
+    #[arg(long, value_name = "TEXT")]
+    pub why: String,
+
+    /// The command and its arguments, after `--`
+    #[arg(last = true, required = true, value_name = "COMMAND")]
+    pub command: Vec<String>,
 }
 
 #[derive(Debug, Args)]

@@ -12,7 +12,8 @@ use std::path::{Path, PathBuf};
 use anyhow::{anyhow, Context};
 
 use args::{
-    ApplyArgs, CaseArg, Cli, Command, IngestArgs, KeepArg, OnErrorArg, OpCommand, OrderArg,
+    ApplyArgs, CaseArg, Cli, Command, ExecArgs, IngestArgs, KeepArg, OnErrorArg, OpCommand,
+    OrderArg,
 };
 use sluice::intake::{self, IngestOptions, IngestOutcome};
 use sluice::model::Agent;
@@ -63,6 +64,45 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
                 "next: take a file in with `sluice ingest FILE --as NAME --why \"...\"`"
             )?;
             Ok(0)
+        }
+        Command::Ingest(a) if a.from.is_some() => {
+            let mut store = open_store(&cli, &cwd)?;
+            let opts = ingest_options(a, resolve_agent(&cli, &cwd))?;
+            let from = a.from.as_deref().unwrap_or_default();
+            if opts.reason.as_deref().is_none_or(|r| r.trim().is_empty()) {
+                return Err(anyhow!(
+                    "a hand edit needs a reason: add --why TEXT (what was changed by hand, and why)"
+                ));
+            }
+            let outcome = sluice::inferred::ingest_hand_edit(&mut store, &a.file, &opts, from)?;
+            render::hand_edit_outcome(&mut out, &a.file, &outcome)?;
+            if let sluice::inferred::HandEditOutcome::Recorded { warnings, .. } = &outcome {
+                for w in warnings {
+                    eprintln!("warning: {w}");
+                }
+            }
+            Ok(0)
+        }
+        Command::Exec(a) => {
+            let mut store = open_store(&cli, &cwd)?;
+            let opts = exec_options(a, &cwd, resolve_agent(&cli, &cwd))?;
+            match sluice::exec::exec(&mut store, &opts)? {
+                sluice::exec::ExecOutcome::Recorded {
+                    recorded,
+                    unchanged,
+                    code,
+                } => {
+                    render::exec_recorded(&mut out, &recorded, &unchanged, &code)?;
+                    Ok(0)
+                }
+                sluice::exec::ExecOutcome::Failed { failure, .. } => {
+                    eprintln!(
+                        "error: {}; nothing was recorded but an audit entry of the failure; fix the command and run `sluice exec` again",
+                        failure.describe()
+                    );
+                    Ok(failure.exit_code())
+                }
+            }
         }
         Command::Ingest(a) => {
             let mut store = open_store(&cli, &cwd)?;
@@ -377,6 +417,44 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             Ok(0)
         }
     }
+}
+
+/// `sluice exec`'s arguments as the engine's options: `NAME[=REF]` inputs, `NAME=FILE`
+/// outputs (relative files are relative to the working directory).
+fn exec_options(
+    a: &ExecArgs,
+    cwd: &Path,
+    agent: Agent,
+) -> anyhow::Result<sluice::exec::ExecOptions> {
+    let inputs = a
+        .inputs
+        .iter()
+        .map(|i| match i.split_once('=') {
+            Some((n, r)) if !n.is_empty() && !r.is_empty() => Ok((n.to_string(), r.to_string())),
+            Some(_) => Err(anyhow!(
+                "--input {i}: expected NAME or NAME=REF, e.g. --input orders or --input orders=orders@2"
+            )),
+            None => Ok((i.clone(), i.clone())),
+        })
+        .collect::<anyhow::Result<Vec<_>>>()?;
+    let outputs = a
+        .outputs
+        .iter()
+        .map(|o| match o.split_once('=') {
+            Some((n, f)) if !n.is_empty() && !f.is_empty() => Ok((n.to_string(), PathBuf::from(f))),
+            _ => Err(anyhow!(
+                "--output {o}: expected NAME=FILE, the dataset and the file the command writes, e.g. --output orders=clean.csv"
+            )),
+        })
+        .collect::<anyhow::Result<Vec<_>>>()?;
+    Ok(sluice::exec::ExecOptions {
+        inputs,
+        outputs,
+        command: a.command.clone(),
+        cwd: cwd.to_path_buf(),
+        reason: a.why.clone(),
+        agent,
+    })
 }
 
 fn apply_options(a: &ApplyArgs, agent: Agent) -> anyhow::Result<ApplyOptions> {

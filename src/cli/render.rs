@@ -7,11 +7,14 @@ use std::path::Path;
 use serde::Serialize;
 use serde_json::json;
 
+use serde_json::Value;
 use sluice::demo::DemoReport;
+use sluice::diff::MatchedBy;
 use sluice::explain::Explanation;
 use sluice::history::{LogEntry, VersionDetail};
+use sluice::inferred::{HandEditOutcome, InferredLineage, RecordedSuccessor};
 use sluice::intake::IngestOutcome;
-use sluice::model::{Step, Version};
+use sluice::model::{LineageKind, Step, Version};
 use sluice::ops::apply::ApplyOutcome;
 use sluice::ops::Operation;
 use sluice::plan::Done;
@@ -184,11 +187,199 @@ pub fn apply_outcome(out: &mut impl Write, op: &Operation, o: &ApplyOutcome) -> 
 }
 
 fn step_line(s: &Step) -> String {
-    let what = match &s.operation {
+    let mut what = match &s.operation {
         Some(op) => format!("{} {op}", s.kind.as_str()),
         None => s.kind.as_str().to_string(),
     };
+    if s.lineage == LineageKind::Inferred {
+        let by = match s.params.get("inferred_by") {
+            Some(b) if b["diff"] == "key" => format!(
+                " by key {}",
+                b["key"]
+                    .as_array()
+                    .map(|k| k
+                        .iter()
+                        .filter_map(|c| c.as_str())
+                        .collect::<Vec<_>>()
+                        .join(", "))
+                    .unwrap_or_default()
+            ),
+            Some(b) if b["diff"] == "order" => " by order".to_string(),
+            _ => String::new(),
+        };
+        what.push_str(&format!(" · lineage inferred{by}"));
+    }
     format!("step {} · {what} · {} · {}", s.id, s.ended_at, s.agent)
+}
+
+/// The lines saying what code an outside command ran: the command line, where, the git state
+/// and the exit status. `pad` is the label column's width.
+fn code_lines(out: &mut impl Write, code: &Value, indent: &str, pad: usize) -> io::Result<()> {
+    let words = |v: &Value| {
+        v.as_array()
+            .map(|a| {
+                a.iter()
+                    .filter_map(|w| w.as_str())
+                    .map(shell_word)
+                    .collect::<Vec<_>>()
+                    .join(" ")
+            })
+            .unwrap_or_default()
+    };
+    if code.get("command").is_some() {
+        writeln!(out, "{indent}{:pad$}{}", "run", words(&code["command"]))?;
+    }
+    if let Some(cwd) = code["cwd"].as_str() {
+        writeln!(out, "{indent}{:pad$}{cwd}", "in")?;
+    }
+    let git = &code["git"];
+    if git.is_object() {
+        let commit = git["commit"].as_str().unwrap_or("no commit yet");
+        let branch = git["branch"]
+            .as_str()
+            .map_or_else(|| "detached HEAD".to_string(), |b| format!("branch {b}"));
+        let modified: Vec<&str> = git["modified"]
+            .as_array()
+            .map(|a| a.iter().filter_map(|m| m.as_str()).collect())
+            .unwrap_or_default();
+        let state = if modified.is_empty() {
+            "clean".to_string()
+        } else {
+            format!("dirty: {}", modified.join(", "))
+        };
+        writeln!(
+            out,
+            "{indent}{:pad$}git {commit} ({branch}, {state})",
+            "code"
+        )?;
+    } else if let Some(p) = code["git_problem"].as_str() {
+        writeln!(out, "{indent}{:pad$}unknown ({p})", "code")?;
+    } else if code.get("command").is_some() {
+        writeln!(out, "{indent}{:pad$}not in a git repository", "code")?;
+    }
+    if let Some(st) = code.get("exit_status").filter(|s| !s.is_null()) {
+        writeln!(
+            out,
+            "{indent}{:pad$}status {st}, from {} to {}",
+            "exit",
+            code["started_at"].as_str().unwrap_or("?"),
+            code["ended_at"].as_str().unwrap_or("?")
+        )?;
+    }
+    Ok(())
+}
+
+/// A word of a command line as a shell would need it typed.
+fn shell_word(w: &str) -> String {
+    let plain = !w.is_empty()
+        && w.chars()
+            .all(|c| c.is_ascii_alphanumeric() || "-_./:=@%+,{}".contains(c));
+    if plain {
+        w.to_string()
+    } else {
+        format!("'{}'", w.replace('\'', "'\\''"))
+    }
+}
+
+/// What the diff inferred, in one line.
+fn inferred_summary(l: &InferredLineage) -> String {
+    let per_column: Vec<String> = l
+        .changed_by_column
+        .iter()
+        .map(|(c, n)| format!("{c} {}", count(*n)))
+        .collect();
+    let mut parts = vec![
+        format!(
+            "{} kept",
+            plural(l.n_unchanged + l.n_changed_rows, "row", "rows")
+        ),
+        format!(
+            "{}{}",
+            plural(l.n_changed_cells(), "cell changed", "cells changed"),
+            if per_column.is_empty() {
+                String::new()
+            } else {
+                format!(" ({})", per_column.join(", "))
+            }
+        ),
+        format!("{} removed", plural(l.n_removed, "row", "rows")),
+        format!("{} added", plural(l.n_added, "row", "rows")),
+    ];
+    if !l.columns_added.is_empty() {
+        parts.push(format!("columns added: {}", l.columns_added.join(", ")));
+    }
+    if !l.columns_removed.is_empty() {
+        parts.push(format!("columns removed: {}", l.columns_removed.join(", ")));
+    }
+    for (new, old) in &l.renamed {
+        parts.push(format!("{old} renamed to {new}"));
+    }
+    let by = match &l.matched_by {
+        MatchedBy::Key(k) => format!("by key {}", k.join(", ")),
+        MatchedBy::Order => "by order".to_string(),
+    };
+    format!("lineage inferred {by}: {}", parts.join(", "))
+}
+
+pub fn hand_edit_outcome(out: &mut impl Write, file: &Path, o: &HandEditOutcome) -> io::Result<()> {
+    match o {
+        HandEditOutcome::Recorded { recorded: r, .. } => {
+            writeln!(
+                out,
+                "recorded {} ({}) from {}: hand edit; {}",
+                r.version.label(),
+                &r.version.hash[..12],
+                r.from.label(),
+                shape(&r.version)
+            )?;
+            writeln!(out, "{}", inferred_summary(&r.lineage))?;
+            writeln!(
+                out,
+                "next: `sluice diff {} {}`",
+                r.from.label(),
+                r.version.label()
+            )
+        }
+        HandEditOutcome::Unchanged { version } => writeln!(
+            out,
+            "unchanged: {} has the same bytes as {} ({}); nothing recorded",
+            file.display(),
+            version.label(),
+            &version.hash[..12]
+        ),
+    }
+}
+
+pub fn exec_recorded(
+    out: &mut impl Write,
+    recorded: &[RecordedSuccessor],
+    unchanged: &[Version],
+    code: &Value,
+) -> io::Result<()> {
+    for r in recorded {
+        writeln!(
+            out,
+            "recorded {} ({}) from {}: command; {}",
+            r.version.label(),
+            &r.version.hash[..12],
+            r.from.label(),
+            shape(&r.version)
+        )?;
+        writeln!(out, "  {}", inferred_summary(&r.lineage))?;
+    }
+    for v in unchanged {
+        writeln!(
+            out,
+            "unchanged: the command wrote the same bytes as {} ({}); nothing recorded for it",
+            v.label(),
+            &v.hash[..12]
+        )?;
+    }
+    code_lines(out, code, "  ", 9)?;
+    if let Some(r) = recorded.first() {
+        writeln!(out, "next: `sluice show {}`", r.version.label())?;
+    }
+    Ok(())
 }
 
 pub fn log(out: &mut impl Write, entries: &[LogEntry]) -> io::Result<()> {
@@ -211,6 +402,9 @@ pub fn log(out: &mut impl Write, entries: &[LogEntry]) -> io::Result<()> {
         }
         if let Some(src) = &e.step.source {
             writeln!(out, "  from  {}", src.path)?;
+        }
+        if let Some(code) = &e.step.code {
+            code_lines(out, code, "  ", 6)?;
         }
         for v in &e.produced {
             writeln!(
@@ -277,6 +471,9 @@ pub fn show(out: &mut impl Write, d: &VersionDetail) -> io::Result<()> {
                 plural(src.n_bytes, "byte", "bytes"),
                 src.modified.as_deref().unwrap_or("unknown")
             )?;
+        }
+        if let Some(code) = &s.code {
+            code_lines(out, code, "  ", 13)?;
         }
     }
     writeln!(out, "  row index    {}", v.row_index)?;
@@ -453,6 +650,22 @@ pub fn demo(out: &mut impl Write, r: &DemoReport) -> io::Result<()> {
     run_done(&mut lines, &r.done)?;
     for line in String::from_utf8_lossy(&lines).lines() {
         writeln!(out, "  {line}")?;
+    }
+    writeln!(out)?;
+    writeln!(
+        out,
+        "then work outside sluice, recorded with its reason and with row lineage inferred by a diff:"
+    )?;
+    for (what, r) in &r.outside {
+        writeln!(out, "  {what}")?;
+        writeln!(
+            out,
+            "    recorded {} ({}) from {}; {}",
+            r.version.label(),
+            &r.version.hash[..12],
+            r.from.label(),
+            inferred_summary(&r.lineage)
+        )?;
     }
     writeln!(out)?;
     writeln!(out, "try next:")?;

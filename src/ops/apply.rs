@@ -589,6 +589,7 @@ pub(super) fn record(
             rows_out: Some(n_rows),
             lineage: LineageKind::Exact,
             source: None,
+            code: None,
             inputs: {
                 let mut v = vec![(input.id, "input")];
                 if let Some(t) = table_id {

@@ -386,7 +386,7 @@ impl Lineage {
     fn query_steps(&self, tail: &str, p: impl rusqlite::Params) -> Result<Vec<Step>> {
         let sql = format!(
             "SELECT s.id, s.kind, s.operation, s.params, a.identity, s.tool_version, s.reason,
-                    s.started_at, s.ended_at, s.rows_in, s.rows_out, s.lineage, s.source
+                    s.started_at, s.ended_at, s.rows_in, s.rows_out, s.lineage, s.source, s.code
              FROM steps s JOIN agents a ON a.id = s.agent_id {tail}"
         );
         let mut st = self.conn.prepare(&sql).map_err(db_err)?;
@@ -403,6 +403,7 @@ impl Lineage {
             Option<i64>,
             Option<i64>,
             String,
+            Option<String>,
             Option<String>,
         );
         let rows = st
@@ -421,6 +422,7 @@ impl Lineage {
                     r.get(10)?,
                     r.get(11)?,
                     r.get(12)?,
+                    r.get(13)?,
                 ))
             })
             .map_err(db_err)?;
@@ -442,6 +444,7 @@ impl Lineage {
             rows_out,
             lineage,
             source,
+            code,
         ) in raws
         {
             out.push(Step {
@@ -460,6 +463,10 @@ impl Lineage {
                     .ok_or_else(|| bad_field("steps.lineage", &lineage))?,
                 source: match source {
                     Some(s) => Some(parse_json_field::<SourceFile>(&s, "steps.source")?),
+                    None => None,
+                },
+                code: match code {
+                    Some(c) => Some(parse_json_field::<Value>(&c, "steps.code")?),
                     None => None,
                 },
                 inputs: self.labels(
@@ -765,6 +772,9 @@ pub struct NewStep<'a> {
     /// The hash of the step's provenance object (changed cells, dropped rows), when it has one;
     /// the object must be recorded with `insert_object` first.
     pub provenance: Option<&'a str>,
+    /// For outside commands and hand edits: what ran and where (stored as canonical JSON in
+    /// `steps.code`).
+    pub code: Option<&'a Value>,
 }
 
 /// A version to record.
@@ -817,8 +827,8 @@ impl Tx<'_> {
         self.tx
             .execute(
                 "INSERT INTO steps (kind, operation, params, agent_id, tool_version, reason,
-                    started_at, ended_at, rows_in, rows_out, lineage, source, provenance)
-                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13)",
+                    started_at, ended_at, rows_in, rows_out, lineage, source, provenance, code)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14)",
                 params![
                     s.kind.as_str(),
                     s.operation,
@@ -833,6 +843,7 @@ impl Tx<'_> {
                     s.lineage.as_str(),
                     source,
                     s.provenance,
+                    s.code.map(canonical_json),
                 ],
             )
             .map_err(db_err)?;
