@@ -392,6 +392,10 @@ pub struct DemoReport {
     /// The outside work after the plan: (what was done, as a command line, and the version it
     /// recorded), the script's run first, then the hand edit.
     pub outside: Vec<(String, RecordedSuccessor)>,
+    /// Where one cleaned amount came from: the command that asks, and its answer.
+    pub traced: (String, crate::trace::Trail),
+    /// Why one shop's quarterly total is what it is: the command, and its answer.
+    pub explained: (String, crate::explain::Explanation),
     pub next_commands: Vec<String>,
 }
 
@@ -470,8 +474,35 @@ pub fn run(dir: &Path, agent: &Agent) -> Result<DemoReport> {
 
     let outside = outside_work(&mut store, dir, agent)?;
 
+    // The questions sluice is for: where did this amount come from, and why is this total what
+    // it is. An Oxwater amount (written with a decimal comma and a euro sign at the till) and
+    // the Oxwater total.
+    let order = "OX-7201";
+    let traced = (
+        format!("sluice trace all_orders --key order_id={order} --column parts_cost"),
+        crate::trace::trace(
+            &store,
+            "all_orders",
+            &crate::trace::RowPick::Key(vec![("order_id".into(), order.into())]),
+            "parts_cost",
+        )?,
+    );
+    let shop = Till::Oxwater.shop();
+    let explained = (
+        format!("sluice explain q3_shop_totals --key \"shop={shop}\" --column sum_parts_cost"),
+        crate::explain::explain(
+            &store,
+            "q3_shop_totals",
+            &crate::trace::RowPick::Key(vec![("shop".into(), shop.into())]),
+            "sum_parts_cost",
+            3,
+        )?,
+    );
+
     Ok(DemoReport {
         outside,
+        traced,
+        explained,
         dir: dir.to_path_buf(),
         scenario: "The Three Rivers Cycle Cooperative: three bicycle repair shops, each exporting its Q3 work orders \
                    from a different till (comma / semicolon with decimal commas and a BOM / CRLF), plus the \

@@ -20,14 +20,26 @@ fn impact_lists_everything_downstream_and_what_is_in_use_now() {
                 .unwrap()
         })
         .collect();
-    // The plan's last three steps, then the demo's outside script and hand edit.
+    // The plan's last four steps, then the demo's outside script and hand edit.
     assert_eq!(
         ops,
-        vec!["lookup", "extract", "summarize", "command", "hand_edit"]
+        vec![
+            "lookup",
+            "extract",
+            "summarize",
+            "summarize",
+            "command",
+            "hand_edit"
+        ]
     );
     assert_eq!(
         i["current"],
-        serde_json::json!(["all_orders@9", "q3_by_shop@1", "reviewed_orders@2"])
+        serde_json::json!([
+            "all_orders@9",
+            "q3_by_shop@1",
+            "q3_shop_totals@1",
+            "reviewed_orders@2"
+        ])
     );
     // A raw export reaches every version made from it, in recording order.
     let i = d.json(&["impact", "oxwater_orders@1", "--json"]);
@@ -42,8 +54,8 @@ fn impact_lists_everything_downstream_and_what_is_in_use_now() {
     assert!(!made.contains(&"quillby_orders@2"));
     assert_eq!(
         made.len(),
-        4 + 9 + 1 + 2,
-        "four Oxwater versions, all_orders@1-9, the summary, the two reviewed versions"
+        4 + 9 + 2 + 2,
+        "four Oxwater versions, all_orders@1-9, the two summaries, the two reviewed versions"
     );
     assert_contains(
         &d.ok(&["impact", "q3_by_shop"]),

@@ -379,7 +379,7 @@ fn demo_builds_a_store_that_verifies() {
     std::fs::remove_dir_all(d.path()).unwrap();
     std::fs::rename(s.path().join("sluice-demo"), d.path()).unwrap();
     assert_contains(&d.ok(&["verify"]), "intact");
-    // Five intakes, the plan's twenty built-in steps (its gate check records results, not
+    // Five intakes, the plan's twenty-one built-in steps (its gate check records results, not
     // a step), then the outside script's step and the hand edit.
     let plan: serde_json::Value =
         serde_json::from_str(&std::fs::read_to_string(d.path().join("q3_cleaning.json")).unwrap())
@@ -390,7 +390,7 @@ fn demo_builds_a_store_that_verifies() {
         .iter()
         .filter(|s| s.get("apply").is_some())
         .count();
-    assert_eq!(applies, 20);
+    assert_eq!(applies, 21);
     assert_eq!(
         d.json(&["log", "--json"]).as_array().unwrap().len(),
         5 + applies + 2
@@ -411,6 +411,12 @@ fn demo_builds_a_store_that_verifies() {
         d.json(&["show", "q3_by_shop", "--json"])["version"]["n_rows"],
         9
     );
+    // It ends by answering the two questions: where an amount came from, why a total is what
+    // it is.
+    assert_contains(&out, "where did this amount come from?");
+    assert_contains(&out, "oxwater_orders@1 line 2, column parts: \"54,34 €\"");
+    assert_contains(&out, "why is this total what it is?");
+    assert_contains(&out, "(agrees)");
     // A second demo in the same folder goes to a new folder.
     assert_contains(&s.ok(&["demo"]), "sluice-demo");
 }

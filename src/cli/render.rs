@@ -668,6 +668,22 @@ pub fn demo(out: &mut impl Write, r: &DemoReport) -> io::Result<()> {
         )?;
     }
     writeln!(out)?;
+    writeln!(out, "where did this amount come from?")?;
+    writeln!(out, "  $ {}", r.traced.0)?;
+    let mut lines = Vec::new();
+    trail(&mut lines, &r.traced.1)?;
+    for line in String::from_utf8_lossy(&lines).lines() {
+        writeln!(out, "  {line}")?;
+    }
+    writeln!(out)?;
+    writeln!(out, "why is this total what it is?")?;
+    writeln!(out, "  $ {}", r.explained.0)?;
+    let mut lines = Vec::new();
+    explanation(&mut lines, &r.explained.1)?;
+    for line in String::from_utf8_lossy(&lines).lines() {
+        writeln!(out, "  {line}")?;
+    }
+    writeln!(out)?;
     writeln!(out, "try next:")?;
     for c in &r.next_commands {
         writeln!(out, "  {c}")?;
