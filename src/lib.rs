@@ -50,6 +50,7 @@ pub mod ops;
 pub mod plan;
 pub mod provenance;
 pub mod refs;
+pub mod replay;
 pub mod store;
 pub mod table;
 pub mod trace;

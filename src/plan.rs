@@ -254,7 +254,7 @@ impl Done {
             },
             Done::Applied { outcome, .. } => match &**outcome {
                 ApplyOutcome::Recorded { version, .. } => Some(version),
-                ApplyOutcome::Unchanged { .. } => None,
+                ApplyOutcome::Unchanged { .. } | ApplyOutcome::Replayed { .. } => None,
             },
             Done::Bound { .. } | Done::Checked { .. } => None,
         }
@@ -563,11 +563,15 @@ fn run_step(
         output_dataset: Some(dataset.clone()),
         agent: opts.agent.clone(),
         map_table_file: None,
+        replay: None,
     };
     let outcome = apply::apply(store, &input.label(), &aopts)?;
     let version = match &outcome {
         ApplyOutcome::Recorded { version, .. } | ApplyOutcome::Unchanged { version, .. } => {
             version.clone()
+        }
+        ApplyOutcome::Replayed { .. } => {
+            return Err(ErrorKind::Database("a plan step was replayed, not recorded".into()).into())
         }
     };
     current.insert(dataset, version);

@@ -198,6 +198,19 @@ pub enum Command {
         output: Option<PathBuf>,
     },
 
+    /// Compute a version again from its raw ancestors and check every step gives its recorded bytes
+    #[command(after_help = "Example:\n  sluice replay q3_by_shop\n\n\
+        Built-in steps are run again on their recorded inputs (nothing is recorded); an intermediate object \
+        missing from the store is restored when the recomputed bytes have its hash. Outside work is not run \
+        again by this build. Exit code 0 when every step was shown to give its recorded bytes, 1 otherwise.")]
+    Replay {
+        /// The version: NAME (latest), NAME@N or a hash prefix
+        reference: String,
+        /// Print JSON
+        #[arg(long)]
+        json: bool,
+    },
+
     /// Write a version's exact bytes to standard output or a file
     #[command(
         after_help = "Examples:\n  sluice cat quillby_orders@1 > q3-as-received.csv\n  sluice cat 5f3a9c -o q3.csv"

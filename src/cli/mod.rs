@@ -331,6 +331,16 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             }
             Ok(0)
         }
+        Command::Replay { reference, json } => {
+            let mut store = open_store(&cli, &cwd)?;
+            let r = sluice::replay::replay(&mut store, reference)?;
+            if *json {
+                render::json(&mut out, &r)?;
+            } else {
+                render::replay(&mut out, &r)?;
+            }
+            Ok(if r.reproduced { 0 } else { 1 })
+        }
         Command::Cat { reference, output } => {
             let store = open_store(&cli, &cwd)?;
             let version = refs::resolve(&store.lineage, reference)?;
@@ -694,6 +704,7 @@ fn apply_options(a: &ApplyArgs, agent: Agent) -> anyhow::Result<ApplyOptions> {
         output_dataset: step.dataset.clone(),
         agent,
         map_table_file: None,
+        replay: None,
     })
 }
 

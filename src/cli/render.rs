@@ -150,6 +150,23 @@ pub fn apply_outcome(out: &mut impl Write, op: &Operation, o: &ApplyOutcome) -> 
             }
             writeln!(out, "next: `sluice show {}`", version.label())
         }
+        ApplyOutcome::Replayed {
+            input,
+            output_hash,
+            matches,
+            ..
+        } => writeln!(
+            out,
+            "computed {} again from {}: {} ({})",
+            op.name(),
+            input.label(),
+            &output_hash[..12],
+            if *matches {
+                "the recorded bytes"
+            } else {
+                "NOT the recorded bytes"
+            }
+        ),
         ApplyOutcome::Unchanged {
             input,
             version,
@@ -791,12 +808,20 @@ pub fn run_json(done: &[Done], stopped: Option<(&str, &str)>) -> serde_json::Val
                        "recorded": recorded, "output": version(v), "differs_from_plan": differs_from})
             }
             Done::Applied { step, op, outcome } => {
-                let (input, v, recorded) = match &**outcome {
-                    ApplyOutcome::Recorded { input, version, .. } => (input, version, true),
-                    ApplyOutcome::Unchanged { input, version, .. } => (input, version, false),
-                };
-                json!({"kind": "apply", "step": step, "op": op.name(), "recorded": recorded,
-                       "input": version(input), "output": version(v)})
+                match &**outcome {
+                    ApplyOutcome::Recorded { input, version: v, .. } => {
+                        json!({"kind": "apply", "step": step, "op": op.name(), "recorded": true,
+                               "input": version(input), "output": version(v)})
+                    }
+                    ApplyOutcome::Unchanged { input, version: v, .. } => {
+                        json!({"kind": "apply", "step": step, "op": op.name(), "recorded": false,
+                               "input": version(input), "output": version(v)})
+                    }
+                    ApplyOutcome::Replayed { input, output_hash, .. } => {
+                        json!({"kind": "apply", "step": step, "op": op.name(), "recorded": false,
+                               "input": version(input), "output": {"hash": output_hash}})
+                    }
+                }
             }
             Done::Checked { step, gate, report } => json!({
                 "kind": "check", "step": step, "gate": gate, "version": report.version,
@@ -1114,6 +1139,50 @@ pub fn impact(out: &mut impl Write, i: &sluice::graph::Impact) -> io::Result<()>
             i.current.join(", ")
         }
     )
+}
+
+/// What a replay found.
+pub fn replay(out: &mut impl Write, r: &sluice::replay::ReplayReport) -> io::Result<()> {
+    for s in &r.steps {
+        let what = s.operation.as_deref().unwrap_or(s.kind.as_str());
+        let result = match s.result.as_str() {
+            "same" => "gave the recorded bytes".to_string(),
+            "restored" => "gave the recorded bytes; the missing object was restored".to_string(),
+            "raw_intact" => "raw data, intact".to_string(),
+            other => other.replace('_', " "),
+        };
+        writeln!(
+            out,
+            "  step {} · {what} -> {} ({}): {result}",
+            s.step,
+            s.produced,
+            &s.recorded_hash[..12]
+        )?;
+        if let Some(d) = &s.detail {
+            writeln!(out, "    {d}")?;
+        }
+    }
+    let rerun = r
+        .steps
+        .iter()
+        .filter(|s| matches!(s.result.as_str(), "same" | "restored"))
+        .count() as u64;
+    if r.reproduced {
+        writeln!(
+            out,
+            "reproduced {} ({}): every one of {} gave the recorded bytes",
+            r.version,
+            &r.hash[..12],
+            plural(rerun, "step", "steps")
+        )
+    } else {
+        writeln!(
+            out,
+            "not reproduced: {} ({}) could not be shown to come from its raw data (see above)",
+            r.version,
+            &r.hash[..12]
+        )
+    }
 }
 
 fn ingest_outcome_short(out: &mut impl Write, o: &IngestOutcome) -> io::Result<()> {

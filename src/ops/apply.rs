@@ -44,6 +44,17 @@ pub struct ApplyOptions {
     /// For `map`: a table file to take in as part of the same step (recorded only if the map
     /// succeeds), with the intake options for it.
     pub map_table_file: Option<(std::path::PathBuf, IngestOptions)>,
+    /// Recompute a recorded step instead of recording a new one (replay): the expected
+    /// output and provenance hashes. Nothing is written to the database; an output object
+    /// missing from the store is restored when the recomputed bytes have its hash.
+    pub replay: Option<ReplayCheck>,
+}
+
+/// What a replayed step is expected to give.
+#[derive(Debug, Clone)]
+pub struct ReplayCheck {
+    pub output_hash: String,
+    pub provenance_hash: Option<String>,
 }
 
 /// What an apply did.
@@ -60,6 +71,18 @@ pub enum ApplyOutcome {
         n_noted: u64,
         /// A table file taken in with the step (`map --table FILE`), as `name (hash)`.
         table_taken_in: Option<String>,
+    },
+    /// A recorded step computed again (replay): what it gave, against what was recorded.
+    Replayed {
+        input: Version,
+        /// The hash of the bytes computed now.
+        output_hash: String,
+        n_rows: u64,
+        matches: bool,
+        /// The provenance object computed now has the recorded hash (or both have none).
+        provenance_matches: bool,
+        /// The output object was missing and has been restored from the computed bytes.
+        restored: bool,
     },
     /// The result equals the latest version of the target dataset: nothing was recorded.
     /// `notes` are what the step would have noted on cells (e.g. values `number` could not
@@ -519,6 +542,9 @@ pub(super) fn record(
     let store_dir = store.dir().to_path_buf();
     let store_io = |e: io::Error| Error::io(&store_dir.join("tmp"), e);
     let out_hash = written.table.hash().hex();
+    if let Some(check) = &opts.replay {
+        return replayed(store, input, written, out_header, &prov, &out_hash, check);
+    }
     if let Some(latest) = store.lineage.latest_version(dataset)? {
         if latest.hash == out_hash {
             return Ok(ApplyOutcome::Unchanged {
@@ -655,6 +681,55 @@ pub(super) fn record(
         changed_by_column,
         n_dropped: prov.drops.len() as u64,
         n_noted: prov.notes.len() as u64,
+    })
+}
+
+/// The end of a replayed step: the computed output compared with the recorded one, and a
+/// missing output object restored from it when they agree.
+fn replayed(
+    store: &Store,
+    input: Version,
+    written: Written,
+    out_header: &[String],
+    prov: &Provenance,
+    out_hash: &str,
+    check: &ReplayCheck,
+) -> Result<ApplyOutcome> {
+    let store_dir = store.dir().to_path_buf();
+    let store_io = |e: io::Error| Error::io(&store_dir.join("tmp"), e);
+    let other_position = 1 + u32::from(prov.table.is_some());
+    let mut run_sets: Vec<(u32, &[RowRun])> = Vec::new();
+    if !prov.runs.is_empty() {
+        run_sets.push((0, &prov.runs));
+    }
+    if let Some(o) = prov.other.as_ref().filter(|o| !o.runs.is_empty()) {
+        run_sets.push((other_position, &o.runs));
+    }
+    let prov_hash = (!(prov.changes.is_empty() && prov.drops.is_empty() && run_sets.is_empty()))
+        .then(|| {
+            let bytes =
+                crate::provenance::encode(out_header, &prov.changes, &prov.drops, &run_sets);
+            crate::hash::Hash::from_bytes(*blake3::hash(&bytes).as_bytes()).hex()
+        });
+    let matches = out_hash == check.output_hash;
+    let n_rows = written.n_rows;
+    let mut restored = false;
+    if matches {
+        let hash: crate::hash::Hash = out_hash
+            .parse()
+            .map_err(|e: String| Error::from(ErrorKind::Database(e)))?;
+        if !store.objects.exists(&hash) {
+            written.table.finish().map_err(store_io)?;
+            restored = true;
+        }
+    }
+    Ok(ApplyOutcome::Replayed {
+        input,
+        output_hash: out_hash.to_string(),
+        n_rows,
+        matches,
+        provenance_matches: prov_hash == check.provenance_hash,
+        restored,
     })
 }
 
