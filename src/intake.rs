@@ -386,6 +386,7 @@ impl PreparedIngest {
             inputs: succession.map_or_else(Vec::new, |s| s.inputs.clone()),
             provenance: succession.and_then(|s| s.provenance.map(|p| p.0)),
             code: succession.and_then(|s| s.code),
+            repeats_step: None,
         })?;
         let (version_id, seq) = tx.insert_version(&NewVersion {
             dataset: &opts.dataset,

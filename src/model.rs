@@ -182,6 +182,9 @@ pub struct Step {
     /// directory, git commit, branch and modified files, times, exit status), as recorded.
     #[serde(default)]
     pub code: Option<serde_json::Value>,
+    /// The step this one repeats on other data (`replay --onto`).
+    #[serde(default)]
+    pub repeats_step: Option<i64>,
     /// Labels (`name@seq`) of the versions the step read.
     pub inputs: Vec<String>,
     /// Labels of the versions the step produced.

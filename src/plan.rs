@@ -74,6 +74,10 @@ pub struct PlanInput {
     /// other data (next quarter's export) is the point of a plan; the run says when it differs.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub hash: Option<String>,
+    /// For a plan exported from the history: the raw version itself (`name@seq`). Not part
+    /// of the file format.
+    #[serde(skip)]
+    pub recorded: Option<String>,
 }
 
 fn yes() -> bool {
@@ -105,6 +109,10 @@ pub struct PlanStep {
     /// Record the output as a version of this dataset instead of `on`'s.
     #[serde(default, rename = "as", skip_serializing_if = "Option::is_none")]
     pub output: Option<String>,
+    /// For a plan exported from the history: the recorded step this one is. A run records it
+    /// as the step each new step repeats. Not part of the file format.
+    #[serde(skip)]
+    pub repeats: Option<i64>,
 }
 
 impl PlanStep {
@@ -564,6 +572,7 @@ fn run_step(
         agent: opts.agent.clone(),
         map_table_file: None,
         replay: None,
+        repeats: step.repeats,
     };
     let outcome = apply::apply(store, &input.label(), &aopts)?;
     let version = match &outcome {
@@ -665,6 +674,7 @@ pub fn export(store: &Store, reference: &str, base_dir: &Path) -> Result<Plan> {
                     return Err(cannot(format!("step {id} records no output")));
                 };
                 plan.steps.push(PlanStep {
+                    repeats: Some(id),
                     output: (out.dataset != on).then(|| out.dataset.clone()),
                     on,
                     apply: Some(op),
@@ -708,6 +718,7 @@ fn checks_on(store: &Store, v: &Version) -> Result<Vec<PlanStep>> {
                 }
             }
             _ => steps.push(PlanStep {
+                repeats: None,
                 on: v.dataset.clone(),
                 apply: None,
                 check: Some(vec![rule]),
@@ -749,5 +760,6 @@ fn input_of(step: &crate::model::Step, v: &Version, base_dir: &Path) -> PlanInpu
         encoding: Some(v.dialect.encoding.clone()).filter(|e| e != "utf-8"),
         null_tokens: strings("null_tokens").unwrap_or_default(),
         hash: Some(v.hash.clone()),
+        recorded: Some(v.label()),
     }
 }

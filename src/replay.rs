@@ -172,6 +172,7 @@ pub fn replay(store: &mut Store, reference: &str) -> Result<ReplayReport> {
                     output_dataset: Some(out.dataset.clone()),
                     agent: agent.clone(),
                     map_table_file: None,
+                    repeats: None,
                     replay: Some(ReplayCheck {
                         output_hash: out.hash.clone(),
                         provenance_hash: store.lineage.step_provenance(id)?,
@@ -244,4 +245,51 @@ pub fn replay(store: &mut Store, reference: &str) -> Result<ReplayReport> {
         reproduced,
         steps,
     })
+}
+
+/// Applies the chain of steps that made `reference` to new raw data for its input `name`
+/// (next quarter's export): `file` is taken in as the next version of that dataset, the other
+/// raw inputs stay the versions the chain read, and every step is recorded again in order,
+/// each naming the step it repeats. A step that cannot apply (a missing column, a failing
+/// gate) stops the run and keeps what was done, as `sluice run` does.
+pub fn onto(
+    store: &mut Store,
+    reference: &str,
+    name: &str,
+    file: &std::path::Path,
+    why: Option<String>,
+    agent: &Agent,
+) -> Result<std::result::Result<crate::plan::RunReport, crate::plan::RunFailure>> {
+    let mut plan = crate::plan::export(store, reference, std::path::Path::new("/"))?;
+    if !plan.inputs.iter().any(|i| i.name == name) {
+        let names: Vec<&str> = plan.inputs.iter().map(|i| i.name.as_str()).collect();
+        return Err(crate::Error::usage(format!(
+            "--onto {name}=...: {reference} is not made from a dataset named \"{name}\"; its raw inputs are: {}",
+            names.join(", ")
+        )));
+    }
+    let mut bindings = Vec::new();
+    for input in &mut plan.inputs {
+        if input.name == name {
+            input.why =
+                Some(why.clone().unwrap_or_else(|| {
+                    format!("new raw data for the steps that made {reference}")
+                }));
+            bindings.push((
+                input.name.clone(),
+                crate::plan::Binding::File(file.to_path_buf()),
+            ));
+        } else if let Some(recorded) = &input.recorded {
+            bindings.push((
+                input.name.clone(),
+                crate::plan::Binding::Version(recorded.clone()),
+            ));
+        }
+    }
+    let opts = crate::plan::RunOptions {
+        plan_dir: std::path::PathBuf::from("."),
+        bindings,
+        agent: agent.clone(),
+    };
+    Ok(crate::plan::run(store, &plan, &opts))
 }

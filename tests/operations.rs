@@ -192,7 +192,7 @@ proptest! {
             Operation::Rename { columns: vec![Renaming { from: "c0".into(), to: "first".into() }] },
             Operation::Select { columns: std::iter::once("first".to_string()).chain((1..n_cols).rev().map(|i| format!("c{i}"))).collect() },
         ] {
-            let o = ApplyOptions { op, reason: "law".into(), output_dataset: None, agent: agent(), map_table_file: None, replay: None };
+            let o = ApplyOptions { op, reason: "law".into(), output_dataset: None, agent: agent(), map_table_file: None, replay: None, repeats: None };
             match apply(&mut store, &current.label(), &o).unwrap() {
                 ApplyOutcome::Recorded { input, version, .. } => {
                     prop_assert_eq!(replay_provenance(&store, &input, &version), rows_of(&store, &version));

@@ -123,3 +123,105 @@ fn outside_work_is_reported_as_not_run_again() {
         ]
     );
 }
+
+#[test]
+fn the_same_chain_runs_on_next_quarters_export_and_each_step_names_the_one_it_repeats() {
+    let d = Sandbox::with_demo();
+    // Next quarter's Quillby export: the first hundred lines of this quarter's, standing in
+    // for a new file with the same layout.
+    let q3 = std::fs::read_to_string(d.path().join("exports/quillby_2026q3.csv")).unwrap();
+    let q4: String = q3.lines().take(101).map(|l| format!("{l}\n")).collect();
+    d.file("exports/quillby_2026q4.csv", &q4);
+    let before = d.json(&["log", "--json"]).as_array().unwrap().len();
+    let out = d.ok(&[
+        "replay",
+        "q3_by_shop",
+        "--onto",
+        "quillby_orders=exports/quillby_2026q4.csv",
+        "--why",
+        "Q4 2026 export from the Quillby till",
+    ]);
+    assert_contains(&out, "input quillby_orders from");
+    assert_contains(&out, "recorded q3_by_shop@2");
+    assert_contains(&out, "done: every step recorded");
+    let log = d.json(&["log", "--json"]);
+    let log = log.as_array().unwrap();
+    let by_id: std::collections::HashMap<i64, &serde_json::Value> = log
+        .iter()
+        .map(|e| (e["step"]["id"].as_i64().unwrap(), &e["step"]))
+        .collect();
+    // Every new built-in step repeats a recorded step of the same operation.
+    let new: Vec<&serde_json::Value> = log[..log.len() - before]
+        .iter()
+        .map(|e| &e["step"])
+        .filter(|s| s["kind"] == "operation")
+        .collect();
+    assert_eq!(new.len(), 20);
+    for s in &new {
+        let repeated = by_id[&s["repeats_step"]
+            .as_i64()
+            .expect("names the step it repeats")];
+        assert_eq!(repeated["operation"], s["operation"]);
+        assert_eq!(repeated["reason"], s["reason"]);
+    }
+    // The new intake is the only new raw version; the Q4 summary counts the Q4 Quillby rows.
+    let shown = d.json(&["show", "quillby_orders", "--json"]);
+    assert_eq!(
+        shown["version"]["seq"], 8,
+        "raw Q4 (@5) and its three cleaned versions"
+    );
+    let summary = d.run(&["cat", "q3_by_shop@2"]).stdout;
+    assert!(summary.starts_with("shop,month,count,sum_parts_cost,mean_labour_hours\n"));
+    assert_contains(&d.ok(&["verify"]), "intact");
+
+    // A name the chain does not start from is refused before anything is recorded.
+    let snapshot = d.snapshot();
+    let err = d.fails(
+        2,
+        &[
+            "replay",
+            "q3_by_shop",
+            "--onto",
+            "orders=exports/quillby_2026q4.csv",
+        ],
+    );
+    assert_contains(
+        &err,
+        "q3_by_shop is not made from a dataset named \"orders\"",
+    );
+    assert_contains(&err, "its raw inputs are: ");
+    assert_contains(&err, "fennmarsh_orders, service_labels, technicians");
+    assert_eq!(snapshot, d.snapshot());
+}
+
+#[test]
+fn a_chain_that_cannot_apply_to_the_new_data_stops_and_keeps_what_was_done() {
+    let d = Sandbox::with_demo();
+    // A new export without the parts_cost column: the second step (number on parts_cost)
+    // cannot apply.
+    d.file(
+        "exports/odd.csv",
+        "order_id,opened,customer,email,service,labour_hours,status,technician,notes\n\
+         1,2026-10-01,Ada Quenwick,,Flat repair,1.0,done,Ines,\n",
+    );
+    let r = d.run(&[
+        "replay",
+        "q3_by_shop",
+        "--onto",
+        "quillby_orders=exports/odd.csv",
+    ]);
+    assert_eq!(r.code, 2);
+    assert_contains(
+        &r.stderr,
+        "the run stopped at step 2 (number on quillby_orders)",
+    );
+    // The trim of the new file changed nothing, so the number step read the new raw version.
+    assert_contains(
+        &r.stderr,
+        "column \"parts_cost\" is not in quillby_orders@5",
+    );
+    assert_contains(
+        &r.stderr,
+        "the store keeps what came before: quillby_orders@5\n",
+    );
+}

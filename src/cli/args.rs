@@ -206,6 +206,13 @@ pub enum Command {
     Replay {
         /// The version: NAME (latest), NAME@N or a hash prefix
         reference: String,
+        /// Apply the same chain of steps to new raw data for input NAME (next quarter's export):
+        /// the file is taken in and every step recorded again on it, each naming the step it repeats
+        #[arg(long, value_name = "NAME=FILE")]
+        onto: Option<String>,
+        /// With --onto: why the new file is taken in (kept with its intake)
+        #[arg(long, value_name = "TEXT", requires = "onto")]
+        why: Option<String>,
         /// Print JSON
         #[arg(long)]
         json: bool,

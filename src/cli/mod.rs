@@ -189,50 +189,11 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
                 bindings,
                 agent: resolve_agent(&cli, &cwd),
             };
-            match sluice::plan::run(&mut store, &parsed, &opts) {
-                Ok(report) => {
-                    if *json {
-                        render::json(&mut out, &render::run_json(&report.done, None))?;
-                    } else {
-                        render::run_done(&mut out, &report.done)?;
-                        if report.failed_checks > 0 {
-                            writeln!(
-                                out,
-                                "done, with {} failing (not {}: the run went on; the results are recorded)",
-                                if report.failed_checks == 1 { "1 check".to_string() } else { format!("{} checks", report.failed_checks) },
-                                if report.failed_checks == 1 { "a gate" } else { "gates" }
-                            )?;
-                        } else {
-                            writeln!(out, "done: every step recorded")?;
-                        }
-                    }
-                    Ok(if report.failed_checks > 0 { 1 } else { 0 })
-                }
-                Err(failure) => {
-                    let kept: Vec<String> = failure
-                        .done
-                        .iter()
-                        .filter_map(|d| d.recorded().map(|v| v.label()))
-                        .collect();
-                    if *json {
-                        let msg = failure.error.to_string();
-                        render::json(
-                            &mut out,
-                            &render::run_json(&failure.done, Some((&failure.at, &msg))),
-                        )?;
-                    } else {
-                        render::run_done(&mut out, &failure.done)?;
-                    }
-                    out.flush()?;
-                    let kept = if kept.is_empty() {
-                        "nothing was recorded".to_string()
-                    } else {
-                        format!("the store keeps what came before: {}", kept.join(", "))
-                    };
-                    Err(anyhow::Error::from(failure.error)
-                        .context(format!("the run stopped at {}; {kept}", failure.at)))
-                }
-            }
+            finish_run(
+                &mut out,
+                *json,
+                sluice::plan::run(&mut store, &parsed, &opts),
+            )
         }
         Command::Export {
             reference,
@@ -331,7 +292,32 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             }
             Ok(0)
         }
-        Command::Replay { reference, json } => {
+        Command::Replay {
+            reference,
+            onto: Some(onto),
+            why,
+            json,
+        } => {
+            let mut store = open_store(&cli, &cwd)?;
+            let (name, file) = onto.split_once('=').ok_or_else(|| {
+                anyhow!("--onto {onto}: expected NAME=FILE, e.g. --onto quillby_orders=exports/quillby_2026q4.csv")
+            })?;
+            let result = sluice::replay::onto(
+                &mut store,
+                reference,
+                name,
+                &cwd.join(file),
+                why.clone(),
+                &resolve_agent(&cli, &cwd),
+            )?;
+            finish_run(&mut out, *json, result)
+        }
+        Command::Replay {
+            reference,
+            onto: None,
+            json,
+            ..
+        } => {
             let mut store = open_store(&cli, &cwd)?;
             let r = sluice::replay::replay(&mut store, reference)?;
             if *json {
@@ -705,6 +691,7 @@ fn apply_options(a: &ApplyArgs, agent: Agent) -> anyhow::Result<ApplyOptions> {
         agent,
         map_table_file: None,
         replay: None,
+        repeats: None,
     })
 }
 
@@ -775,6 +762,66 @@ fn parse_delimiter(s: &str) -> anyhow::Result<u8> {
         ));
     }
     Ok(b)
+}
+
+/// Renders the end of a plan run (also of `replay --onto`) and picks the exit code.
+fn finish_run(
+    out: &mut impl Write,
+    json: bool,
+    result: Result<sluice::plan::RunReport, sluice::plan::RunFailure>,
+) -> anyhow::Result<ExitCode> {
+    match result {
+        Ok(report) => {
+            if json {
+                render::json(out, &render::run_json(&report.done, None))?;
+            } else {
+                render::run_done(out, &report.done)?;
+                if report.failed_checks > 0 {
+                    writeln!(
+                        out,
+                        "done, with {} failing (not {}: the run went on; the results are recorded)",
+                        if report.failed_checks == 1 {
+                            "1 check".to_string()
+                        } else {
+                            format!("{} checks", report.failed_checks)
+                        },
+                        if report.failed_checks == 1 {
+                            "a gate"
+                        } else {
+                            "gates"
+                        }
+                    )?;
+                } else {
+                    writeln!(out, "done: every step recorded")?;
+                }
+            }
+            Ok(if report.failed_checks > 0 { 1 } else { 0 })
+        }
+        Err(failure) => {
+            let kept: Vec<String> = failure
+                .done
+                .iter()
+                .filter_map(|d| d.recorded().map(|v| v.label()))
+                .collect();
+            if json {
+                let msg = failure.error.to_string();
+                render::json(
+                    out,
+                    &render::run_json(&failure.done, Some((&failure.at, &msg))),
+                )?;
+            } else {
+                render::run_done(out, &failure.done)?;
+            }
+            out.flush()?;
+            let kept = if kept.is_empty() {
+                "nothing was recorded".to_string()
+            } else {
+                format!("the store keeps what came before: {}", kept.join(", "))
+            };
+            Err(anyhow::Error::from(failure.error)
+                .context(format!("the run stopped at {}; {kept}", failure.at)))
+        }
+    }
 }
 
 /// `--row N` or `--key COL=VAL,...` as a row pick.

@@ -48,6 +48,8 @@ pub struct ApplyOptions {
     /// output and provenance hashes. Nothing is written to the database; an output object
     /// missing from the store is restored when the recomputed bytes have its hash.
     pub replay: Option<ReplayCheck>,
+    /// The recorded step this one repeats on other data (`replay --onto`).
+    pub repeats: Option<i64>,
 }
 
 /// What a replayed step is expected to give.
@@ -626,6 +628,7 @@ pub(super) fn record(
                 }
                 v
             },
+            repeats_step: opts.repeats,
         })?;
         let (version_id, seq) = tx.insert_version(&NewVersion {
             dataset,

@@ -386,7 +386,8 @@ impl Lineage {
     fn query_steps(&self, tail: &str, p: impl rusqlite::Params) -> Result<Vec<Step>> {
         let sql = format!(
             "SELECT s.id, s.kind, s.operation, s.params, a.identity, s.tool_version, s.reason,
-                    s.started_at, s.ended_at, s.rows_in, s.rows_out, s.lineage, s.source, s.code
+                    s.started_at, s.ended_at, s.rows_in, s.rows_out, s.lineage, s.source, s.code,
+                    s.repeats_step
              FROM steps s JOIN agents a ON a.id = s.agent_id {tail}"
         );
         let mut st = self.conn.prepare(&sql).map_err(db_err)?;
@@ -405,6 +406,7 @@ impl Lineage {
             String,
             Option<String>,
             Option<String>,
+            Option<i64>,
         );
         let rows = st
             .query_map(p, |r| {
@@ -423,6 +425,7 @@ impl Lineage {
                     r.get(11)?,
                     r.get(12)?,
                     r.get(13)?,
+                    r.get(14)?,
                 ))
             })
             .map_err(db_err)?;
@@ -445,6 +448,7 @@ impl Lineage {
             lineage,
             source,
             code,
+            repeats_step,
         ) in raws
         {
             out.push(Step {
@@ -469,6 +473,7 @@ impl Lineage {
                     Some(c) => Some(parse_json_field::<Value>(&c, "steps.code")?),
                     None => None,
                 },
+                repeats_step,
                 inputs: self.labels(
                     "SELECT d.name, v.seq FROM step_inputs i JOIN versions v ON v.id = i.version_id
                      JOIN datasets d ON d.id = v.dataset_id WHERE i.step_id = ?1 ORDER BY i.position",
@@ -775,6 +780,8 @@ pub struct NewStep<'a> {
     /// For outside commands and hand edits: what ran and where (stored as canonical JSON in
     /// `steps.code`).
     pub code: Option<&'a Value>,
+    /// The step this one repeats on other data (`replay --onto`).
+    pub repeats_step: Option<i64>,
 }
 
 /// A version to record.
@@ -827,8 +834,9 @@ impl Tx<'_> {
         self.tx
             .execute(
                 "INSERT INTO steps (kind, operation, params, agent_id, tool_version, reason,
-                    started_at, ended_at, rows_in, rows_out, lineage, source, provenance, code)
-                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14)",
+                    started_at, ended_at, rows_in, rows_out, lineage, source, provenance, code,
+                    repeats_step)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15)",
                 params![
                     s.kind.as_str(),
                     s.operation,
@@ -844,6 +852,7 @@ impl Tx<'_> {
                     source,
                     s.provenance,
                     s.code.map(canonical_json),
+                    s.repeats_step,
                 ],
             )
             .map_err(db_err)?;
