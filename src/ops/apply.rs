@@ -429,7 +429,7 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
             if ambiguous {
                 "say which order the dates are written in with --order dmy or --order mdy"
             } else {
-                "fix them upstream, or pass --on-error keep (leave the text, noted) or --on-error blank (empty the cell, noted)"
+                "fix them upstream, or pass --on-error keep (leave the text, noted) or --on-error blank (empty the cell, noted); in a plan, \"on_error\": \"keep\" or \"blank\""
             }
         ))
         .into());
