@@ -546,6 +546,14 @@ fn origin(
         line: entry.line,
         column: column.to_string(),
         raw_value,
-        raw_line: String::from_utf8_lossy(&bytes[..end]).into_owned(),
+        raw_line: decode(v, &bytes[..end]),
     })
+}
+
+/// A raw record's bytes as text, decoded from the encoding the file was taken in with.
+fn decode(v: &Version, bytes: &[u8]) -> String {
+    match encoding_rs::Encoding::for_label(v.dialect.encoding.as_bytes()) {
+        Some(enc) if !cuttable(v) => enc.decode_without_bom_handling(bytes).0.into_owned(),
+        _ => String::from_utf8_lossy(bytes).into_owned(),
+    }
 }

@@ -287,3 +287,25 @@ fn derived_looked_up_appended_and_summarised_cells() {
     assert_eq!(t["end"]["kind"], "made");
     assert_eq!(t["end"]["operation"], "summarize");
 }
+
+// Windows-1252 is the WHATWG Encoding Standard's legacy single-byte encoding for Western
+// European text (0xE9 is "é"): the raw line of a trail is shown decoded, as the file meant it.
+#[test]
+fn a_raw_line_in_a_legacy_encoding_is_shown_decoded() {
+    let s = Sandbox::with_store();
+    s.file("l1.csv", b"id;name\n1; Jos\xe9 \n2;Ren\xe9e\n");
+    s.ok(&[
+        "ingest",
+        "l1.csv",
+        "--as",
+        "people",
+        "--encoding",
+        "windows-1252",
+    ]);
+    s.ok(&["apply", "people", "trim", "--why", "spaces"]);
+    let t = trace(&s, &["people", "--row", "1", "--column", "name"]);
+    assert_eq!(t["value"], "José");
+    assert_eq!(t["end"]["raw_value"], " José ");
+    assert_eq!(t["end"]["raw_line"], "1; José ");
+    assert_eq!(t["end"]["line"], 2);
+}
