@@ -8,7 +8,41 @@
 //! cargo run --release --example bench -- ops                     # 1,000,000 rows
 //! cargo run --release --example bench -- ops --quick
 //! cargo run --release --example bench -- intake --rows 200000,2000000
+//! cargo run --release --example bench -- trace                   # 100,000, 1,000,000 and 5,000,000 rows
+//! cargo run --release --example bench -- trace --quick           # 100,000 rows
 //! ```
+//!
+//! # `trace`
+//!
+//! Measures `sluice trace` and `sluice explain` over a long history. At each size (100,000,
+//! 1,000,000 and 5,000,000 rows of the Quillby work-order file by default) the benchmark writes
+//! a plan and builds the history once with `sluice run` in a fresh store (set-up: not timed,
+//! but its time is printed): the file taken in as `orders`, then twenty steps on it, each
+//! recorded (trim with `inner`, case of email, status and service, two `replace`s on service
+//! and parts_cost, `number` on parts_cost, `replace` and `fill` on labour_hours, `date` with
+//! `"order": "mdy"`, `drop` of test orders, `dedupe` of whole rows, `keep` of amounts under
+//! 1000, `rename` of notes, `extract` of the month from opened, `split` of customer, `combine`
+//! of the two names, `extract` of a shop column that the Quillby order numbers never fill, and
+//! `fill` that makes it the constant `Quillby`, `case` of customer), then `summarize` of
+//! parts_cost and labour_hours by shop into `summary`: one group holding every row left (about
+//! 95% of the file).
+//!
+//! Timed, each as a whole process, median of 21 runs at each of five rows spread evenly over
+//! the latest version (first, quarter, middle, three quarters, last; the same at every run):
+//! `sluice trace orders --row R --column parts_cost` (changed by trim, number and a replace,
+//! traced back through all twenty steps to the raw line) and `--column month` (made by
+//! `extract` from opened, which `date` rewrote). Then `sluice explain summary --row 1 --column
+//! count` and `--column sum_parts_cost` (runs as for `intake`). Goals: a trace under 50 ms at
+//! every size, the slowest size's trace no more than 1.5x the fastest's; an explanation of a
+//! group of about a million rows under 2 s (judged where the group has at most 1,250,000 rows;
+//! larger groups are printed with the time per million rows).
+//!
+//! How the lookups scale: per step a trail reads the step's row map and does a binary search
+//! in its runs, then reads the cell by offset, through two entries of the row index and the
+//! record's bytes; so a trail's cost is the number of steps times a lookup that does not depend
+//! on the rows, plus reading each step's provenance object (which grows with what the step
+//! changed). A key lookup (`--key`) and `explain` scan the version they start from, and
+//! explain carries the group's rows back through every step, so both grow with the rows.
 //!
 //! # `ops`
 //!
@@ -151,6 +185,8 @@ enum Bench {
     Diff,
     /// A cleaning plan (`sluice run` + `sluice cat`) against the same cleaning in pandas and polars
     Ops,
+    /// `sluice trace` and `sluice explain` over a history of 20 steps, at three sizes
+    Trace,
 }
 
 impl Bench {
@@ -159,6 +195,7 @@ impl Bench {
             Bench::Intake => "intake",
             Bench::Diff => "diff",
             Bench::Ops => "ops",
+            Bench::Trace => "trace",
         }
     }
 
@@ -168,6 +205,7 @@ impl Bench {
             Bench::Intake => DEFAULT_ROWS,
             Bench::Diff => DIFF_ROWS,
             Bench::Ops => OPS_ROWS,
+            Bench::Trace => TRACE_ROWS,
         }
     }
 }
@@ -225,6 +263,7 @@ fn run_bench(bench: Bench, ctx: &Ctx) -> Result<()> {
         Bench::Intake => intake(ctx)?,
         Bench::Diff => diff(ctx)?,
         Bench::Ops => ops(ctx)?,
+        Bench::Trace => trace_bench(ctx)?,
     };
     fs::create_dir_all(&ctx.results_dir)
         .with_context(|| format!("creating {}", ctx.results_dir.display()))?;
@@ -2113,6 +2152,550 @@ fn tree_bytes(dir: &Path) -> Result<u64> {
 
 fn percent(part: u64, whole: u64) -> f64 {
     100.0 * part as f64 / whole as f64
+}
+
+// ---------------------------------------------------------------------------------------------
+// The trace benchmark
+
+/// The sizes of the trace benchmark: the question is whether a trail costs the same at each.
+const TRACE_ROWS: &[u64] = &[100_000, 1_000_000, 5_000_000];
+/// Runs of each timed trail (per row picked); the median is reported.
+const TRACE_RUNS: u32 = 21;
+/// Where the traced rows lie, as fractions of the latest version's rows.
+const TRACE_PICKS: &[f64] = &[0.0, 0.25, 0.5, 0.75, 1.0];
+/// The columns traced: one that several steps changed, one cut from another column.
+const TRACE_COLUMNS: &[&str] = &["parts_cost", "month"];
+/// The steps the plan applies to `orders` before it summarizes it.
+const TRACE_STEPS: usize = 20;
+/// Goals: a whole `sluice trace` process under this, at every size ...
+const TRACE_GOAL_MS: f64 = 50.0;
+/// ... and no size more than this many times slower than another.
+const TRACE_FLAT_RATIO: f64 = 1.5;
+/// Goal: `sluice explain` of a group of about a million rows under this.
+const EXPLAIN_GOAL_SECS: f64 = 2.0;
+/// The explain goal is judged where the group has at most this many rows (larger groups are
+/// shown for information).
+const EXPLAIN_GOAL_GROUP: u64 = 1_250_000;
+
+/// The plan that builds the history: `file` taken in as `orders`, twenty steps on it, each
+/// changing cells, dropping rows or adding a column, then a summary by `shop`, a column made
+/// constant on the way, so that the summary has one group holding nearly every row.
+fn trace_plan(file: &Path) -> Value {
+    let step = |apply: Value, why: &str| json!({"on": "orders", "apply": apply, "why": why});
+    let mut steps = vec![
+        step(
+            json!({"op": "trim", "inner": true}),
+            "the Quillby till pads values with spaces",
+        ),
+        step(
+            json!({"op": "case", "columns": ["email"], "to": "lower"}),
+            "e-mail addresses are case-blind",
+        ),
+        step(
+            json!({"op": "case", "columns": ["status"], "to": "lower"}),
+            "one spelling per status",
+        ),
+        step(
+            json!({"op": "case", "columns": ["service"], "to": "title"}),
+            "service names in title case",
+        ),
+        step(
+            json!({"op": "replace", "columns": ["service"], "regex": true,
+                   "find": "^(Flat Fix|Flat Repair|Puncture)$", "with": "Puncture Repair"}),
+            "three names for one service",
+        ),
+        step(
+            json!({"op": "number", "columns": ["parts_cost"]}),
+            "parts costs are written with euro signs and thousands commas",
+        ),
+        step(
+            json!({"op": "replace", "columns": ["parts_cost"], "regex": true,
+                   "find": "^(-?[0-9]+\\.[0-9])$", "with": "${1}0"}),
+            "amounts with cents written out",
+        ),
+        step(
+            json!({"op": "replace", "columns": ["labour_hours"], "find": ",", "with": "."}),
+            "some hours are written with a decimal comma",
+        ),
+        step(
+            json!({"op": "fill", "columns": ["labour_hours"], "value": "0"}),
+            "no hours booked is no hours",
+        ),
+        step(
+            json!({"op": "date", "columns": ["opened"], "order": "mdy"}),
+            "the till writes dates month first",
+        ),
+        step(
+            json!({"op": "drop", "predicate": "status = 'test'"}),
+            "test orders are not work done",
+        ),
+        step(
+            json!({"op": "dedupe", "keep": "first"}),
+            "the till exports some orders twice",
+        ),
+        step(
+            json!({"op": "keep", "predicate": "parts_cost < 1000"}),
+            "larger amounts are frame sales, reported apart",
+        ),
+        step(
+            json!({"op": "rename", "columns": [{"from": "notes", "to": "remarks"}]}),
+            "the cooperative's name for the column",
+        ),
+        step(
+            json!({"op": "extract", "column": "opened", "into": "month", "from": 1, "len": 7}),
+            "orders are reported by month",
+        ),
+        step(
+            json!({"op": "split", "column": "customer", "on": " ", "into": ["given", "family"]}),
+            "given and family names apart",
+        ),
+        step(
+            json!({"op": "combine", "columns": ["family", "given"], "with": ", ", "into": "sort_name"}),
+            "customers sorted by family name",
+        ),
+        step(
+            json!({"op": "extract", "column": "order_id", "into": "shop", "regex": "^Q-[0-9]+$"}),
+            "the shop, where the order number says it",
+        ),
+        step(
+            json!({"op": "fill", "columns": ["shop"], "value": "Quillby"}),
+            "every order of this export is Quillby's",
+        ),
+        step(
+            json!({"op": "case", "columns": ["customer"], "to": "title"}),
+            "customer names in title case",
+        ),
+    ];
+    debug_assert_eq!(steps.len(), TRACE_STEPS);
+    steps.push(json!({"on": "orders", "apply": {"op": "summarize", "by": ["shop"],
+        "aggregates": [{"func": "sum", "column": "parts_cost"}, {"func": "sum", "column": "labour_hours"}]},
+        "as": "summary", "why": "parts and hours of the shop"}));
+    json!({
+        "sluice_plan": 1,
+        "description": "Twenty cleaning steps on the Quillby work orders, then one summary (the trace benchmark)",
+        "inputs": [
+            {"name": "orders", "file": file.display().to_string(), "why": "the generated Quillby work-order export"},
+        ],
+        "steps": steps,
+    })
+}
+
+fn trace_bench(ctx: &Ctx) -> Result<Value> {
+    println!("== trace: sluice trace and sluice explain over a history of {TRACE_STEPS} steps ==");
+    let mut sizes = Vec::new();
+    let mut medians: Vec<(u64, Vec<f64>)> = Vec::new();
+    let mut all_pass = true;
+    for n in ctx.rows_for(Bench::Trace) {
+        let (size, per_column, pass) = trace_size(ctx, n)?;
+        sizes.push(size);
+        medians.push((n, per_column));
+        all_pass &= pass;
+    }
+    // Whether a trail costs the same at every size.
+    let mut flat = Vec::new();
+    if medians.len() > 1 {
+        println!();
+        println!("trace time across sizes (median ms):");
+        for (c, column) in TRACE_COLUMNS.iter().enumerate() {
+            let ms: Vec<f64> = medians.iter().map(|(_, m)| m[c]).collect();
+            let shown = medians
+                .iter()
+                .map(|(n, m)| format!("{} rows {:.1}", thousands(*n), m[c]))
+                .collect::<Vec<_>>()
+                .join(", ");
+            println!("  {column}: {shown}");
+            let base = ms[0];
+            for ((n, _), m) in medians.iter().zip(&ms).skip(1) {
+                println!(
+                    "    {} rows / {} rows = {:.2}",
+                    thousands(*n),
+                    thousands(medians[0].0),
+                    m / base
+                );
+            }
+            let (lo, hi) = ms.iter().fold((f64::INFINITY, 0.0f64), |(lo, hi), &m| {
+                (lo.min(m), hi.max(m))
+            });
+            flat.push(Goal {
+                label: format!("trace {column}: slowest / fastest size"),
+                value: hi / lo,
+                goal: "<= 1.5",
+                pass: hi / lo <= TRACE_FLAT_RATIO,
+            });
+        }
+        for g in &flat {
+            g.print();
+        }
+        all_pass &= flat.iter().all(|g| g.pass);
+    } else {
+        println!("(one size only: whether the time grows with the rows is not judged)");
+    }
+    println!(
+        "trace: {}",
+        if all_pass {
+            "all goals met"
+        } else {
+            "some goals missed"
+        }
+    );
+    Ok(json!({
+        "benchmark": "trace",
+        "generated_by": "cargo run --release --example bench -- trace",
+        "machine": {"cores": cores(), "cpu": cpu_model()},
+        "sluice_binary": ctx.sluice.display().to_string(),
+        "source": source_revision(),
+        "steps": TRACE_STEPS,
+        "trace_runs_per_row": TRACE_RUNS.max(ctx.runs),
+        "notes": [
+            "the history (sluice run of a plan of 20 steps and a summary) is built once per size, not timed",
+            "each trace and explain is one whole sluice process; seconds are medians, pooled over the rows picked",
+            "warm page cache; sync before every timed run",
+        ],
+        "flat_goals": flat.iter().map(Goal::json).collect::<Vec<_>>(),
+        "all_goals_met": all_pass,
+        "sizes": sizes,
+    }))
+}
+
+/// One column's trail from the latest version, as read once before timing.
+struct TrailShape {
+    hops: usize,
+    changed: usize,
+    end: String,
+}
+
+fn trail_shape(trail: &Value) -> Result<TrailShape> {
+    let hops = trail["hops"]
+        .as_array()
+        .ok_or_else(|| anyhow!("no hops in `sluice trace --json`: {trail}"))?;
+    let changed = hops
+        .iter()
+        .filter(|h| h["changed"].as_bool() == Some(true))
+        .count();
+    let end = &trail["end"];
+    let end = match end["kind"].as_str() {
+        Some("raw") => format!(
+            "raw line {} {:?}",
+            end["line"].as_u64().unwrap_or(0),
+            end["raw_value"].as_str().unwrap_or("")
+        ),
+        Some(kind) => kind.to_string(),
+        None => bail!("no end in `sluice trace --json`: {trail}"),
+    };
+    Ok(TrailShape {
+        hops: hops.len(),
+        changed,
+        end,
+    })
+}
+
+/// Builds the history of `n` rows, then times the trails and the explanations. Returns the
+/// figures, the median trace time per column in ms (in [`TRACE_COLUMNS`] order) and whether
+/// the goals at this size were met.
+fn trace_size(ctx: &Ctx, n: u64) -> Result<(Value, Vec<f64>, bool)> {
+    use std::ffi::OsStr;
+    println!();
+    let file = ensure_data(&ctx.data_dir, n)?;
+    let bytes = fs::metadata(&file)
+        .with_context(|| format!("reading {}", file.display()))?
+        .len();
+    println!(
+        "{} rows, {:.1} MB ({bytes} bytes)",
+        thousands(n),
+        bytes as f64 / 1e6
+    );
+    let scratch = Scratch::new(ctx, "trace-store")?;
+    let store = scratch.0.join("store");
+    sluice_init(ctx, &store)?;
+    let plan = scratch.0.join("plan.json");
+    fs::write(
+        &plan,
+        serde_json::to_string_pretty(&trace_plan(&file))? + "\n",
+    )
+    .with_context(|| format!("writing {}", plan.display()))?;
+
+    // The history: set-up, not timed, but its time is worth knowing.
+    let mut run = Command::new(&ctx.sluice);
+    run.arg("--store")
+        .arg(&store)
+        .arg("run")
+        .arg(&plan)
+        .arg("--json")
+        .env("SLUICE_AGENT", AGENT);
+    let (built, out) = run_measured(&mut run, &scratch.0.join("log-run"), "sluice run")?;
+    let done: Value = serde_json::from_str(&out.stdout).context("reading `sluice run --json`")?;
+    let applied: Vec<&Value> = done["done"]
+        .as_array()
+        .ok_or_else(|| anyhow!("no done list in `sluice run --json`"))?
+        .iter()
+        .filter(|d| d["kind"] == "apply")
+        .collect();
+    ensure!(
+        done["completed"] == true
+            && applied.len() == TRACE_STEPS + 1
+            && applied.iter().all(|d| d["recorded"] == true),
+        "the plan did not record {} steps and a summary: {}",
+        TRACE_STEPS,
+        out.stdout
+    );
+    let show = |reference: &str| -> Result<Value> {
+        let text = sluice_quiet(ctx, &store, &["show", reference, "--json"].map(OsStr::new))?;
+        serde_json::from_str(&text)
+            .with_context(|| format!("reading `sluice show {reference} --json`"))
+    };
+    let latest = show("orders")?;
+    let latest_rows = latest["version"]["n_rows"]
+        .as_u64()
+        .ok_or_else(|| anyhow!("no version.n_rows in `sluice show orders --json`"))?;
+    let latest_label = format!("orders@{}", latest["version"]["seq"].as_u64().unwrap_or(0));
+    println!(
+        "  history: {} steps and a summary built by `sluice run` in {:.1} s ({:.0} MiB peak); {latest_label} has {} rows × {} columns",
+        TRACE_STEPS,
+        built.secs,
+        built.peak_kib as f64 / 1024.0,
+        thousands(latest_rows),
+        latest["version"]["n_cols"].as_u64().unwrap_or(0)
+    );
+    ensure!(latest_rows > 0, "the history left no rows to trace");
+
+    // Rows spread over the table, the same at every run.
+    let mut picks: Vec<u64> = TRACE_PICKS
+        .iter()
+        .map(|f| 1 + ((latest_rows - 1) as f64 * f).round() as u64)
+        .collect();
+    picks.dedup();
+
+    // Each trail once, not timed: what it crosses.
+    let mut shapes = Vec::new();
+    for column in TRACE_COLUMNS {
+        let row = picks[picks.len() / 2].to_string();
+        let text = sluice_quiet(
+            ctx,
+            &store,
+            &[
+                "trace", "orders", "--row", &row, "--column", column, "--json",
+            ]
+            .map(OsStr::new),
+        )?;
+        let trail: Value = serde_json::from_str(&text).context("reading `sluice trace --json`")?;
+        let shape = trail_shape(&trail)?;
+        println!(
+            "  trail of {column} at row {row}: {} hops, {} of them changed it, ends at {}",
+            shape.hops, shape.changed, shape.end
+        );
+        shapes.push(shape);
+    }
+
+    // The summary's one group, checked once before timing.
+    let summary_cells = ["count", "sum_parts_cost"];
+    let mut group_rows = 0;
+    for column in summary_cells {
+        let text = sluice_quiet(
+            ctx,
+            &store,
+            &[
+                "explain", "summary", "--row", "1", "--column", column, "--json",
+            ]
+            .map(OsStr::new),
+        )?;
+        let e: Value = serde_json::from_str(&text).context("reading `sluice explain --json`")?;
+        ensure!(
+            e["agrees"] == true,
+            "sluice explain does not agree with the stored {column}: {}",
+            e["arithmetic"]
+        );
+        group_rows = e["contributing"]["rows"].as_u64().unwrap_or(0);
+        println!(
+            "  summary row 1, {column} = {}: {}; {} rows in the group, {} upstream steps listed",
+            e["value"].as_str().unwrap_or(""),
+            e["arithmetic"].as_str().unwrap_or(""),
+            thousands(group_rows),
+            e["upstream"].as_array().map_or(0, Vec::len)
+        );
+    }
+
+    let background = background_load()?;
+    match background {
+        Some(c) if c > NOISY_CORES => println!(
+            "WARNING: other processes use {c:.2} cores before timing starts: the times will be noisy"
+        ),
+        Some(c) => println!("background load before timing: {c:.2} cores"),
+        None => {}
+    }
+    let sluice = |args: &[&str]| {
+        let mut c = Command::new(&ctx.sluice);
+        c.arg("--store")
+            .arg(&store)
+            .args(args)
+            .env("SLUICE_AGENT", AGENT);
+        c
+    };
+
+    // The trails, timed: every row picked, TRACE_RUNS times each.
+    let runs = TRACE_RUNS.max(ctx.runs);
+    let mut trace_rows = Vec::new();
+    let mut per_pick = Vec::new();
+    for column in TRACE_COLUMNS {
+        let mut samples = Vec::new();
+        let mut medians = Vec::new();
+        for &row in &picks {
+            let row_text = row.to_string();
+            let mut these = Vec::new();
+            for i in 0..runs {
+                let (s, _) = run_measured(
+                    &mut sluice(&["trace", "orders", "--row", &row_text, "--column", column]),
+                    &scratch.0.join(format!("log-trace-{column}-{row}-{i}")),
+                    "sluice trace",
+                )?;
+                these.push(s);
+            }
+            medians.push((row, median(these.iter().map(|s| s.secs).collect())));
+            samples.extend(these);
+        }
+        per_pick.push(medians);
+        trace_rows.push(Row {
+            tool: column,
+            key: column,
+            samples,
+        });
+    }
+    let explain_rows: Vec<Row> = summary_cells
+        .iter()
+        .map(|column| -> Result<Row> {
+            let samples = repeat(ctx.runs, |i| {
+                let (s, _) = run_measured(
+                    &mut sluice(&["explain", "summary", "--row", "1", "--column", column]),
+                    &scratch.0.join(format!("log-explain-{column}-{i}")),
+                    "sluice explain",
+                )?;
+                Ok(s)
+            })?;
+            Ok(Row {
+                tool: column,
+                key: column,
+                samples,
+            })
+        })
+        .collect::<Result<_>>()?;
+
+    println!(
+        "  {:<44} {:>5} {:>10} {:>10} {:>10} {:>9}",
+        "command", "runs", "median ms", "max ms", "cpu ms", "peak MiB"
+    );
+    let line = |what: String, r: &Row| {
+        let max = r.samples.iter().map(|s| s.secs).fold(0.0, f64::max);
+        println!(
+            "  {:<44} {:>5} {:>10.1} {:>10.1} {:>10.1} {:>9.1}",
+            what,
+            r.samples.len(),
+            1e3 * r.median_secs(),
+            1e3 * max,
+            1e3 * r.median_cpu_secs(),
+            r.peak_mib()
+        );
+    };
+    for (r, medians) in trace_rows.iter().zip(&per_pick) {
+        line(format!("trace {latest_label} --column {}", r.tool), r);
+        let rows = medians
+            .iter()
+            .map(|(row, s)| format!("{} {:.1}", thousands(*row), 1e3 * s))
+            .collect::<Vec<_>>()
+            .join(", ");
+        println!("    median ms by row: {rows}");
+    }
+    for r in &explain_rows {
+        line(format!("explain summary@1 --row 1 --column {}", r.tool), r);
+    }
+    if let Some(worst) = trace_rows
+        .iter()
+        .chain(&explain_rows)
+        .filter_map(Row::others_cores)
+        .reduce(f64::max)
+    {
+        if worst > NOISY_CORES_DURING {
+            println!(
+                "  WARNING: other processes used up to {worst:.2} cores during the timed runs: the times are noisy"
+            );
+        }
+    }
+
+    let mut goals: Vec<Goal> = trace_rows
+        .iter()
+        .map(|r| {
+            let ms = 1e3 * r.median_secs();
+            Goal {
+                label: format!("trace {}, median ms", r.tool),
+                value: ms,
+                goal: "< 50",
+                pass: ms < TRACE_GOAL_MS,
+            }
+        })
+        .collect();
+    let judged = group_rows <= EXPLAIN_GOAL_GROUP;
+    for r in &explain_rows {
+        let s = r.median_secs();
+        let g = Goal {
+            label: format!("explain {}, seconds", r.tool),
+            value: s,
+            goal: "< 2",
+            pass: s < EXPLAIN_GOAL_SECS,
+        };
+        if judged {
+            goals.push(g);
+        } else {
+            println!(
+                "  explain {}: {:.2} s for a group of {} rows ({:.2} s per million rows; the goal is judged for groups of about a million)",
+                r.tool,
+                s,
+                thousands(group_rows),
+                s * 1e6 / group_rows.max(1) as f64
+            );
+        }
+    }
+    println!("  goals:");
+    for g in &goals {
+        g.print();
+    }
+    let pass = goals.iter().all(|g| g.pass);
+    let trace_json: serde_json::Map<String, Value> = trace_rows
+        .iter()
+        .zip(&per_pick)
+        .zip(&shapes)
+        .map(|((r, medians), shape)| {
+            let mut v = r.json(bytes);
+            v["hops"] = json!(shape.hops);
+            v["hops_that_changed_the_value"] = json!(shape.changed);
+            v["end"] = json!(shape.end);
+            v["median_seconds_by_row"] = json!(medians
+                .iter()
+                .map(|(row, s)| json!({"row": row, "seconds": s}))
+                .collect::<Vec<_>>());
+            (r.key.to_string(), v)
+        })
+        .collect();
+    let explain_json: serde_json::Map<String, Value> = explain_rows
+        .iter()
+        .map(|r| (r.key.to_string(), r.json(bytes)))
+        .collect();
+    let median_ms: Vec<f64> = trace_rows.iter().map(|r| 1e3 * r.median_secs()).collect();
+    let value = json!({
+        "rows": n,
+        "bytes": bytes,
+        "file": file.display().to_string(),
+        "history_build_seconds": built.secs,
+        "history_build_peak_mib": built.peak_kib as f64 / 1024.0,
+        "latest": latest_label,
+        "latest_rows": latest_rows,
+        "rows_traced": picks,
+        "trace": trace_json,
+        "explain_group_rows": group_rows,
+        "explain": explain_json,
+        "explain_goal_judged": judged,
+        "background_load_cores": background,
+        "goals": goals.iter().map(Goal::json).collect::<Vec<_>>(),
+        "all_goals_met": pass,
+    });
+    Ok((value, median_ms, pass))
 }
 
 // ---------------------------------------------------------------------------------------------
