@@ -377,14 +377,25 @@ fn walk(
     let mut changed_cells = 0;
     let mut noted: Vec<(String, u64)> = Vec::new();
     if let Some(of) = &of_name {
-        let in_group: std::collections::HashSet<u64> = rows.iter().copied().collect();
+        // Both lists are in increasing order: count the rows they share in one walk.
         for (col, changed) in crate::provenance::cell_changes_rows(store, &v)? {
             if col == *of {
-                changed_cells += changed.iter().filter(|r| in_group.contains(r)).count() as u64;
+                let (mut i, mut j) = (0, 0);
+                while i < rows.len() && j < changed.len() {
+                    match rows[i].cmp(&changed[j]) {
+                        std::cmp::Ordering::Less => i += 1,
+                        std::cmp::Ordering::Greater => j += 1,
+                        std::cmp::Ordering::Equal => {
+                            changed_cells += 1;
+                            i += 1;
+                            j += 1;
+                        }
+                    }
+                }
             }
         }
         for (row, col, note) in store.lineage.cell_notes(v.id)? {
-            if col == *of && in_group.contains(&row) {
+            if col == *of && rows.binary_search(&row).is_ok() {
                 match noted.iter_mut().find(|(n, _)| *n == note) {
                     Some((_, k)) => *k += 1,
                     None => noted.push((note, 1)),

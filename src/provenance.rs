@@ -10,16 +10,19 @@
 //! Format (all integers LEB128 varints unless said):
 //!
 //! ```text
-//! "SLPV" u32-le format 1
+//! "SLPV" u32-le format 1, u64-le byte length of the run sets
+//! the run sets: n_run_sets, then per input the runs were taken from: its position among the
+//!   step's inputs, n_runs, and per run in output order: out_start as a difference from the
+//!   previous run's end, in_start as a zigzag-encoded difference from the previous run's input
+//!   end, len
 //! n_columns, then per column with changes: name (length, UTF-8 bytes), count, and the
 //!   0-based output rows in increasing order as differences (the first from 0)
 //! n_reasons, then each reason text (length, UTF-8 bytes)
 //! n_drops, then per dropped input row, in increasing order: the row as a difference from the
 //!   previous one, its reason's number, and the row it duplicated plus one (0 for none)
-//! n_run_sets, then per input the runs were taken from: its position among the step's inputs,
-//!   n_runs, and per run in output order: out_start as a difference from the previous run's
-//!   end, in_start as a zigzag-encoded difference from the previous run's input end, len
 //! ```
+//!
+//! The run sets come first, after their length, so that a trail reads only them.
 //!
 //! Steps recorded by schema 3 and earlier kept their row maps, cell changes and drops in the
 //! database's `row_runs`, `cell_changes` and `drops` tables; the readers here return those too.
@@ -132,6 +135,25 @@ pub fn encode(
     let mut out = Vec::with_capacity(16 + changes.len() * 2 + drops.len() * 3);
     out.extend_from_slice(MAGIC);
     out.extend_from_slice(&FORMAT.to_le_bytes());
+    // The run sets first, after their length, so that a reader of the row map (trace) reads
+    // only them.
+    let mut run_bytes = Vec::new();
+    put_varint(&mut run_bytes, runs.len() as u64);
+    for (position, set) in runs {
+        put_varint(&mut run_bytes, u64::from(*position));
+        put_varint(&mut run_bytes, set.len() as u64);
+        let (mut out_end, mut in_end) = (0u64, 0u64);
+        for r in set.iter() {
+            put_varint(&mut run_bytes, r.out_start - out_end);
+            let d = r.in_start as i64 - in_end as i64;
+            put_varint(&mut run_bytes, ((d << 1) ^ (d >> 63)) as u64);
+            put_varint(&mut run_bytes, r.len);
+            out_end = r.out_start + r.len;
+            in_end = r.in_start + r.len;
+        }
+    }
+    out.extend_from_slice(&(run_bytes.len() as u64).to_le_bytes());
+    out.extend_from_slice(&run_bytes);
     let columns: Vec<(usize, &Vec<u64>)> = changes
         .rows
         .iter()
@@ -159,20 +181,6 @@ pub fn encode(
         prev = row;
         put_varint(&mut out, u64::from(n));
         put_varint(&mut out, dup.map_or(0, |d| d + 1));
-    }
-    put_varint(&mut out, runs.len() as u64);
-    for (position, set) in runs {
-        put_varint(&mut out, u64::from(*position));
-        put_varint(&mut out, set.len() as u64);
-        let (mut out_end, mut in_end) = (0u64, 0u64);
-        for r in set.iter() {
-            put_varint(&mut out, r.out_start - out_end);
-            let d = r.in_start as i64 - in_end as i64;
-            put_varint(&mut out, ((d << 1) ^ (d >> 63)) as u64);
-            put_varint(&mut out, r.len);
-            out_end = r.out_start + r.len;
-            in_end = r.in_start + r.len;
-        }
     }
     out
 }
@@ -246,7 +254,7 @@ impl Reader<'_> {
 /// Reads a provenance object; `what` names it in errors.
 pub fn decode(bytes: &[u8], what: &str) -> Result<Decoded> {
     let mut r = Reader { bytes, at: 0, what };
-    if bytes.len() < 8 || &bytes[..4] != MAGIC {
+    if bytes.len() < HEADER_LEN || &bytes[..4] != MAGIC {
         return Err(r.bad("it does not start with SLPV"));
     }
     let format = u32::from_le_bytes([bytes[4], bytes[5], bytes[6], bytes[7]]);
@@ -255,7 +263,12 @@ pub fn decode(bytes: &[u8], what: &str) -> Result<Decoded> {
             "format {format}, this build reads {FORMAT}; upgrade sluice"
         )));
     }
-    r.at = 8;
+    let runs_end = runs_end(bytes, &r)?;
+    r.at = HEADER_LEN;
+    let runs = run_sets(&mut r)?;
+    if r.at != runs_end {
+        return Err(r.bad("the run sets are not as long as the header says"));
+    }
     let n_columns = r.count()?;
     let mut changes = Vec::with_capacity(n_columns);
     for _ in 0..n_columns {
@@ -302,6 +315,36 @@ pub fn decode(bytes: &[u8], what: &str) -> Result<Decoded> {
             duplicate_of: dup.checked_sub(1),
         });
     }
+    if r.at != bytes.len() {
+        return Err(r.bad("bytes follow the last drop"));
+    }
+    Ok(Decoded {
+        changes,
+        drops,
+        runs,
+    })
+}
+
+/// Run sets: (position of the input among the step's inputs, its runs in output order).
+pub type RunSets = Vec<(u32, Vec<RowRun>)>;
+
+/// The magic, the format and the byte length of the run sets.
+const HEADER_LEN: usize = 16;
+
+/// Where the run sets end, from the header of a provenance object.
+fn runs_end(bytes: &[u8], r: &Reader<'_>) -> Result<usize> {
+    let len = bytes
+        .get(8..16)
+        .map(|b| u64::from_le_bytes(b.try_into().unwrap_or([0; 8])))
+        .ok_or_else(|| r.bad("the header is cut short"))?;
+    usize::try_from(len)
+        .ok()
+        .and_then(|l| l.checked_add(HEADER_LEN))
+        .filter(|&e| e <= bytes.len())
+        .ok_or_else(|| r.bad("the run sets run past the end"))
+}
+
+fn run_sets(r: &mut Reader<'_>) -> Result<RunSets> {
     let n_sets = r.count()?;
     let mut runs = Vec::with_capacity(n_sets);
     for _ in 0..n_sets {
@@ -336,14 +379,27 @@ pub fn decode(bytes: &[u8], what: &str) -> Result<Decoded> {
         }
         runs.push((position, set));
     }
-    if r.at != bytes.len() {
-        return Err(r.bad("bytes follow the last run"));
+    Ok(runs)
+}
+
+/// Reads the run sets of a provenance object from its first bytes alone (the header and the
+/// run sets): what a trail needs, without the changed cells and drops after them.
+pub fn decode_runs(prefix: &[u8], what: &str) -> Result<RunSets> {
+    let mut r = Reader {
+        bytes: prefix,
+        at: 0,
+        what,
+    };
+    if prefix.len() < HEADER_LEN || &prefix[..4] != MAGIC {
+        return Err(r.bad("it does not start with SLPV"));
     }
-    Ok(Decoded {
-        changes,
-        drops,
-        runs,
-    })
+    let end = runs_end(prefix, &r)?;
+    r.at = HEADER_LEN;
+    let runs = run_sets(&mut r)?;
+    if r.at != end {
+        return Err(r.bad("the run sets are not as long as the header says"));
+    }
+    Ok(runs)
 }
 
 fn load(store: &Store, step_id: i64) -> Result<Option<Decoded>> {
@@ -362,9 +418,9 @@ fn load(store: &Store, step_id: i64) -> Result<Option<Decoded>> {
 /// The row map of `output` from input version `input_id`, as runs in output order.
 pub fn row_runs(store: &Store, output: &Version, input_id: i64) -> Result<Vec<RowRun>> {
     let mut out = store.lineage.row_runs(output.id, input_id)?;
-    if let Some(d) = load(store, output.step_id)? {
+    if let Some(runs) = load_runs(store, output.step_id)? {
         let inputs = store.lineage.step_input_versions(output.step_id)?;
-        for (position, set) in d.runs {
+        for (position, set) in runs {
             if inputs
                 .get(position as usize)
                 .is_some_and(|(_, v)| v.id == input_id)
@@ -375,6 +431,27 @@ pub fn row_runs(store: &Store, output: &Version, input_id: i64) -> Result<Vec<Ro
     }
     out.sort_by_key(|r| r.out_start);
     Ok(out)
+}
+
+/// The run sets of a step's provenance object, read from its first bytes only.
+fn load_runs(store: &Store, step_id: i64) -> Result<Option<RunSets>> {
+    let Some(hex) = store.lineage.step_provenance(step_id)? else {
+        return Ok(None);
+    };
+    let hash = hex.parse().map_err(|e| {
+        ErrorKind::Database(format!(
+            "step {step_id}: malformed provenance hash {hex}: {e}"
+        ))
+    })?;
+    let head = store.objects.read_range(&hash, 0, HEADER_LEN)?;
+    let len = head
+        .get(8..16)
+        .map(|b| u64::from_le_bytes(b.try_into().unwrap_or([0; 8])))
+        .unwrap_or(0) as usize;
+    let prefix = store
+        .objects
+        .read_range(&hash, 0, HEADER_LEN.saturating_add(len))?;
+    decode_runs(&prefix, &hex).map(Some)
 }
 
 /// Every input row the step dropped from input `input_id`, in order, with its reason.
@@ -580,7 +657,10 @@ mod tests {
         let texts: usize = ["name", "email"].iter().map(|t| t.len()).sum::<usize>()
             + "duplicate of data row 1 (the whole row)".len()
             + "matched the drop predicate: status = 'test'".len();
-        assert!(bytes.len() - texts < 60, "{} bytes", bytes.len());
+        assert!(bytes.len() - texts < 70, "{} bytes", bytes.len());
+        // The run sets can be read from the first bytes alone.
+        let head = 16 + u64::from_le_bytes(bytes[8..16].try_into().unwrap()) as usize;
+        assert_eq!(decode_runs(&bytes[..head], "test").unwrap(), back.runs);
     }
 
     #[test]
