@@ -200,6 +200,9 @@ fn find_by_key(store: &Store, v: &Version, pairs: &[(String, String)]) -> Result
 #[derive(Default)]
 struct Rows {
     cache: HashMap<(i64, u64), Vec<String>>,
+    /// One parser, restarted for every record read by offset (making one costs more than
+    /// reading a record).
+    parser: Option<crate::table::parse::Parser>,
 }
 
 impl Rows {
@@ -209,7 +212,15 @@ impl Rows {
             std::collections::hash_map::Entry::Vacant(e) => {
                 let fields = if cuttable(v) {
                     let (_, bytes) = record_bytes(store, v, row)?;
-                    parse_one(&bytes, v)?
+                    let delimiter = v.dialect.delimiter_byte();
+                    let parser = match &mut self.parser {
+                        Some(p) if p.delimiter() == delimiter => {
+                            p.restart(0);
+                            p
+                        }
+                        slot => slot.insert(crate::table::parse::Parser::new(delimiter, 0)),
+                    };
+                    parse_one(parser, &bytes, v)?
                 } else {
                     // A raw file in a legacy encoding: its offsets count the file's own bytes,
                     // so it is decoded from the start.
@@ -272,8 +283,11 @@ fn record_bytes(store: &Store, v: &Version, row: u64) -> Result<(rowindex::RowEn
 }
 
 /// The fields of the one record in `bytes`.
-fn parse_one(bytes: &[u8], v: &Version) -> Result<Vec<String>> {
-    let mut p = crate::table::parse::Parser::new(v.dialect.delimiter_byte(), 0);
+fn parse_one(
+    p: &mut crate::table::parse::Parser,
+    bytes: &[u8],
+    v: &Version,
+) -> Result<Vec<String>> {
     let mut fields: Option<Vec<String>> = None;
     let mut keep = |r: crate::table::RawRecord<'_>| -> Result<()> {
         if fields.is_none() {

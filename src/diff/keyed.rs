@@ -1,5 +1,8 @@
 //! The diff by key. Per side, one pass keeps (key hash, row number) and a fingerprint per row;
-//! both vectors are sorted by hash and walked together. A pair of rows with equal fingerprints
+//! both vectors are sorted by hash and walked together. When the headers are equal and the
+//! version is UTF-8, the fingerprints are the row index's and each row is cut out by its offset
+//! with only the fields up to the key split off (see [`super::scan::scan_keys`]); otherwise
+//! every row is parsed. A pair of rows with equal fingerprints
 //! is unchanged without reading its values again; the others, and the removed and added rows,
 //! are read in a second pass, where the keys of each pair are also confirmed on their values.
 //!
@@ -8,8 +11,8 @@
 //! is repeated with another seed. A pair across the sides whose key values turn out to differ
 //! is reported as a removed and an added row.
 
-use super::read::{both, each_row, rows_of};
-use super::scan::{scan, Scan, ScanPlan, SHOWN};
+use super::read::{both, cuttable, each_row, rows_of};
+use super::scan::{scan, scan_keys, Scan, ScanPlan, SHOWN};
 use super::{
     cell_diffs, count_by_column, push_pair, settle_columns, Change, ChangeKind, Diff, Layout,
     MatchedBy, RowPairing,
@@ -44,7 +47,11 @@ pub(super) fn run(
                 seed,
                 null_tokens: &v.null_tokens,
             };
-            let mut s = scan(objects, v, &plan)?;
+            let mut s = if fp.is_none() && cand.is_empty() && cuttable(v) {
+                scan_keys(objects, v, k, seed, &v.null_tokens)?
+            } else {
+                scan(objects, v, &plan)?
+            };
             s.keys.sort_unstable();
             Ok(s)
         };
@@ -177,12 +184,22 @@ pub(super) fn run(
     added.sort_unstable();
 
     // The row map in the second version's order.
-    let mut by_b: Vec<(u64, u64)> = pairs.iter().map(|&(x, y)| (y, x)).collect();
+    // Each row of B's partner in A (`u64::MAX`: none), placed by row rather than sorted.
+    let mut a_of_b: Vec<u64> = vec![u64::MAX; b.n_rows as usize];
+    for &(x, y) in &pairs {
+        match a_of_b.get_mut(y as usize) {
+            Some(slot) => *slot = x,
+            None => return Err(lost_row(a, b)),
+        }
+    }
     drop(pairs);
-    by_b.sort_unstable();
     let mut runs = Vec::new();
     let mut c = 0usize;
-    for &(y, x) in &by_b {
+    for (y, &x) in a_of_b.iter().enumerate() {
+        if x == u64::MAX {
+            continue;
+        }
+        let y = y as u64;
         if added.binary_search(&y).is_ok() {
             // A pair split because its keys differed.
             continue;

@@ -9,6 +9,7 @@ use crate::error::{Error, ErrorKind, Result};
 use crate::hash::Hash;
 use crate::model::Version;
 use crate::store::objects::Objects;
+use crate::table::parse::Parser;
 use crate::table::rowindex::{ENTRY_LEN, FORMAT_VERSION, HEADER_LEN, MAGIC};
 use crate::table::{for_each_record, RawRecord, ReadSettings};
 
@@ -277,7 +278,8 @@ pub struct RawRows {
     buf: Vec<u8>,
     /// The object offset of `buf[0]`.
     buf_start: u64,
-    delimiter: u8,
+    /// One parser for every row parsed (restarted per row, never built again).
+    parser: Parser,
     label: String,
 }
 
@@ -294,7 +296,7 @@ impl RawRows {
             n_bytes: v.n_bytes,
             buf: Vec::new(),
             buf_start: 0,
-            delimiter: v.dialect.delimiter_byte(),
+            parser: Parser::new(v.dialect.delimiter_byte(), 0),
             label: v.label(),
         })
     }
@@ -302,6 +304,12 @@ impl RawRows {
     /// The bytes of row `row` (its record, line ending and any blank lines after it). Rows
     /// must be asked for in increasing order.
     pub fn bytes(&mut self, row: u64) -> Result<&[u8]> {
+        let (from, to) = self.fill(row)?;
+        Ok(&self.buf[from..to])
+    }
+
+    /// Reads until row `row` is whole in the buffer; returns where it lies there.
+    fn fill(&mut self, row: u64) -> Result<(usize, usize)> {
         let i = row as usize;
         let (Some(&start), end) = (self.offsets.get(i), self.offsets.get(i + 1)) else {
             return Err(self.short());
@@ -331,28 +339,61 @@ impl RawRows {
         }
         let from = (start - self.buf_start) as usize;
         let to = (end - self.buf_start) as usize;
-        Ok(&self.buf[from..to])
+        Ok((from, to))
     }
 
     /// Parses row `row` into `out`.
     pub fn parse_into(&mut self, row: u64, out: &mut RowStore) -> Result<()> {
-        let delimiter = self.delimiter;
-        let bytes = self.bytes(row)?;
-        let mut p = crate::table::parse::Parser::new(delimiter, 0);
-        let mut done = false;
+        self.with_record(row, |r| out.push(row, r))
+    }
+
+    /// Parses row `row` and calls `f` with its record.
+    pub fn with_record(&mut self, row: u64, f: impl FnOnce(&RawRecord<'_>)) -> Result<()> {
+        let (from, to) = self.fill(row)?;
+        let bytes = &self.buf[from..to];
+        let p = &mut self.parser;
+        p.restart(0);
+        let mut f = Some(f);
         let mut keep = |r: RawRecord<'_>| -> Result<()> {
-            if !done {
-                out.push(row, &r);
-                done = true;
+            if let Some(f) = f.take() {
+                f(&r);
             }
             Ok(())
         };
         p.feed(bytes, &mut keep)?;
         let closed = p.finish(&mut keep)?;
-        if closed.is_err() || !done {
+        if closed.is_err() || f.is_some() {
             return Err(self.short());
         }
         Ok(())
+    }
+
+    /// The fields `0..=last` of row `row` when they can be split off its bytes directly: none
+    /// of the bytes up to the end of field `last` is a quote or a line break, so csv_core
+    /// would read exactly the pieces between the delimiters. Fills `ends` (relative to the
+    /// record's first byte) and returns the record's bytes; `None` when the row needs parsing.
+    pub fn plain_prefix<'s>(
+        &'s mut self,
+        row: u64,
+        last: usize,
+        ends: &mut Vec<usize>,
+    ) -> Result<Option<&'s [u8]>> {
+        let (from, to) = self.fill(row)?;
+        let bytes = &self.buf[from..to];
+        let delimiter = self.parser.delimiter();
+        ends.clear();
+        for (i, &c) in bytes.iter().enumerate() {
+            if c == delimiter {
+                ends.push(i);
+                if ends.len() > last {
+                    return Ok(Some(bytes));
+                }
+            } else if c == b'"' || c == b'\r' || c == b'\n' {
+                // A quote needs csv_core; the record (or the line) may end here: parse it.
+                return Ok(None);
+            }
+        }
+        Ok(None)
     }
 
     /// Reads the rest of the object and checks its hash.

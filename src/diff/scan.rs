@@ -4,7 +4,7 @@
 
 use xxhash_rust::xxh3::xxh3_64_with_seed;
 
-use super::read::each_row;
+use super::read::{each_row, row_index, RawRows};
 use crate::error::Result;
 use crate::model::Version;
 use crate::store::objects::Objects;
@@ -43,13 +43,81 @@ pub struct Scan {
 /// A length-prefixed concatenation of some cells, hashed: different cell splits never give the
 /// same bytes.
 pub fn cells_hash(r: &RawRecord<'_>, cols: &[usize], seed: u64, scratch: &mut Vec<u8>) -> u64 {
+    hash_fields(|c| r.field(c), cols, seed, scratch)
+}
+
+fn hash_fields<'f>(
+    field: impl Fn(usize) -> &'f [u8],
+    cols: &[usize],
+    seed: u64,
+    scratch: &mut Vec<u8>,
+) -> u64 {
     scratch.clear();
     for &c in cols {
-        let v = r.field(c);
+        let v = field(c);
         scratch.extend_from_slice(&(v.len() as u64).to_le_bytes());
         scratch.extend_from_slice(v);
     }
     xxh3_64_with_seed(scratch, seed)
+}
+
+/// The first pass when the fingerprints are the row index's own (whole rows, no rename
+/// candidates) and rows can be cut out by offset: the fingerprints come from the row index, and
+/// of each row only the fields up to the last key column are split off its bytes (the row is
+/// parsed in full only when a quote or line break comes before them). The same numbers as
+/// [`scan`], without parsing every row.
+pub fn scan_keys(
+    objects: &Objects,
+    v: &Version,
+    key: &[usize],
+    seed: u64,
+    null_tokens: &[String],
+) -> Result<Scan> {
+    let (fps, offsets) = row_index(objects, v)?;
+    let n = fps.len() as u64;
+    let mut s = Scan {
+        keys: Vec::with_capacity(n as usize),
+        fps,
+        ..Scan::default()
+    };
+    let last = key.iter().copied().max().unwrap_or(0);
+    let mut raw = RawRows::new(objects, v, offsets)?;
+    let mut scratch = Vec::new();
+    let mut ends = Vec::new();
+    // One row's key: its hash, and whether it is blank.
+    fn note<'f>(
+        s: &mut Scan,
+        row: u64,
+        field: impl Fn(usize) -> &'f [u8] + Copy,
+        (key, seed, null_tokens): (&[usize], u64, &[String]),
+        scratch: &mut Vec<u8>,
+    ) {
+        let blank = |b: &[u8]| b.is_empty() || null_tokens.iter().any(|t| t.as_bytes() == b);
+        if key.iter().any(|&c| blank(field(c))) {
+            if s.blank.len() < SHOWN {
+                s.blank.push(row);
+            }
+            s.n_blank += 1;
+        }
+        s.keys.push((hash_fields(field, key, seed, scratch), row));
+    }
+    let how = (key, seed, null_tokens);
+    for row in 0..n {
+        if let Some(bytes) = raw.plain_prefix(row, last, &mut ends)? {
+            let ends = &ends;
+            let field = |c: usize| {
+                let start = if c == 0 { 0 } else { ends[c - 1] + 1 };
+                &bytes[start..ends[c]]
+            };
+            note(&mut s, row, field, how, &mut scratch);
+        } else {
+            raw.with_record(row, |r| {
+                note(&mut s, row, |c| r.field(c), how, &mut scratch)
+            })?;
+        }
+    }
+    raw.finish()?;
+    Ok(s)
 }
 
 pub fn scan(objects: &Objects, v: &Version, plan: &ScanPlan<'_>) -> Result<Scan> {
