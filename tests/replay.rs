@@ -170,6 +170,7 @@ fn the_same_chain_runs_on_next_quarters_export_and_each_step_names_the_one_it_re
         shown["version"]["seq"], 8,
         "raw Q4 (@5) and its three cleaned versions"
     );
+    assert_contains(&d.ok(&["log", "q3_by_shop"]), "· repeats step ");
     let summary = d.run(&["cat", "q3_by_shop@2"]).stdout;
     assert!(summary.starts_with("shop,month,count,sum_parts_cost,mean_labour_hours\n"));
     assert_contains(&d.ok(&["verify"]), "intact");

@@ -226,6 +226,9 @@ fn step_line(s: &Step) -> String {
         };
         what.push_str(&format!(" · lineage inferred{by}"));
     }
+    if let Some(r) = s.repeats_step {
+        what.push_str(&format!(" · repeats step {r}"));
+    }
     format!("step {} · {what} · {} · {}", s.id, s.ended_at, s.agent)
 }
 
