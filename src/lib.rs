@@ -10,7 +10,10 @@
 //! - record: [`intake`] takes outside files in; [`exec`] runs outside commands and, with
 //!   [`inferred`], records their outputs and hand edits with lineage inferred by a diff;
 //!   [`store`] keeps objects and the lineage database (the only module that touches SQLite);
-//! - query: [`history`] (log, show), [`verify`], [`refs`] (version references).
+//!   [`provenance`] keeps each step's row map, changed cells and drops compactly;
+//! - query: [`history`] (log, show), [`diff`], [`trace`] (where a value came from),
+//!   [`explain`] (why a total is what it is), [`graph`] (impact, drawings), [`replay`],
+//!   [`verify`], [`refs`] (version references).
 //!
 //! The engine never prints: it returns values and typed [`Error`]s, and the binary renders them.
 //!
