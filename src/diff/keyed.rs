@@ -1,7 +1,7 @@
 //! The diff by key. Per side, one pass keeps (key hash, row number) and a fingerprint per row;
 //! both vectors are sorted by hash and walked together. When the headers are equal and the
 //! version is UTF-8, the fingerprints are the row index's and each row is cut out by its offset
-//! with only the fields up to the key split off (see [`super::scan::scan_keys`]); otherwise
+//! with only the fields up to the key split off (see `scan::scan_keys`); otherwise
 //! every row is parsed. A pair of rows with equal fingerprints
 //! is unchanged without reading its values again; the others, and the removed and added rows,
 //! are read in a second pass, where the keys of each pair are also confirmed on their values.
