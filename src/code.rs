@@ -5,7 +5,7 @@
 
 use std::path::Path;
 
-/// The git identity as "Name &lt;email&gt;" (or just the name, or just the email), if configured.
+/// The git identity as `Name <email>` (or just the name, or just the email), if configured.
 pub fn git_identity(cwd: &Path) -> Option<String> {
     let config = match git2::Repository::discover(cwd) {
         // A repository's config includes the global and system levels beneath its own.
