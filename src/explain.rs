@@ -16,12 +16,10 @@ use serde::Serialize;
 use crate::diff::read::rows_of;
 use crate::error::{Error, ErrorKind, Result};
 use crate::model::{StepKind, Version};
-use crate::ops::decimal::Decimal;
-use crate::ops::summarize::AggFunc;
+use crate::ops::summarize::{AggFunc, AggState, NotAdded};
 use crate::ops::Operation;
 use crate::refs;
 use crate::store::Store;
-use crate::table::profile::{cmp_numbers, number_shape};
 use crate::trace::RowPick;
 
 /// How many rows a listing shows unless asked otherwise.
@@ -178,8 +176,7 @@ pub fn explain(
     // The group's rows in the input, and the aggregate computed again.
     let mut members: Vec<u64> = Vec::new();
     let mut first: Vec<(u64, String)> = Vec::new();
-    let (mut sum, mut n_values) = (Decimal::default(), 0u64);
-    let (mut min, mut max): (Option<String>, Option<String>) = (None, None);
+    let mut agg = AggState::default();
     let mut overflow = false;
     crate::ops::apply::each_version_row(store, &input, |row, rec| {
         if !by_idx
@@ -190,34 +187,17 @@ pub fn explain(
             return Ok(());
         }
         members.push(row);
-        let text = agg_idx
-            .map(|c| String::from_utf8_lossy(rec.field(c)).into_owned())
-            .unwrap_or_default();
         if first.len() < limit {
-            first.push((row + 1, text.clone()));
+            let text = agg_idx
+                .map(|c| String::from_utf8_lossy(rec.field(c)).into_owned())
+                .unwrap_or_default();
+            first.push((row + 1, text));
         }
         if let Some(c) = agg_idx {
             let b = rec.field(c);
-            if !blank(b) {
-                if let Some(d) = number_shape(b).and_then(|_| Decimal::parse(&text)) {
-                    n_values += 1;
-                    match sum.checked_add(d) {
-                        Some(s) => sum = s,
-                        None => overflow = true,
-                    }
-                    if min
-                        .as_deref()
-                        .is_none_or(|m| cmp_numbers(b, m.as_bytes()).is_lt())
-                    {
-                        min = Some(text.clone());
-                    }
-                    if max
-                        .as_deref()
-                        .is_none_or(|m| cmp_numbers(b, m.as_bytes()).is_gt())
-                    {
-                        max = Some(text);
-                    }
-                }
+            // The summary refused values that are not numbers; it recorded none.
+            if !blank(b) && matches!(agg.add(b), Err(NotAdded::Overflow)) {
+                overflow = true;
             }
         }
         Ok(())
@@ -238,20 +218,9 @@ pub fn explain(
         ),
         Some(f) => {
             let of = of_column.clone().unwrap_or_default();
-            let shown = |s: String| if n_values == 0 { String::new() } else { s };
-            let (name, result) = match f {
-                AggFunc::Sum => ("sum", shown(sum.to_string())),
-                AggFunc::Mean => (
-                    "mean",
-                    shown(
-                        sum.mean(n_values)
-                            .map(|m| m.to_string())
-                            .unwrap_or_default(),
-                    ),
-                ),
-                AggFunc::Min => ("min", min.clone().unwrap_or_default()),
-                AggFunc::Max => ("max", max.clone().unwrap_or_default()),
-            };
+            let (n_values, sum) = (agg.n_values, agg.sum);
+            let name = f.name();
+            let result = agg.value(f);
             let values = if n_values == 1 { "value" } else { "values" };
             let words = match f {
                 AggFunc::Mean => format!(
@@ -285,7 +254,7 @@ pub fn explain(
         input: input.label(),
         contributing: Contributing {
             rows: count,
-            with_value: n_values,
+            with_value: agg.n_values,
             first,
         },
         upstream,

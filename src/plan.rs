@@ -506,7 +506,9 @@ fn other_input(op: &Operation) -> Option<&str> {
     }
 }
 
-fn with_other_input(op: &Operation, reference: String) -> Operation {
+/// `op` reading `reference` as its table or other source (a map or lookup table, the other
+/// source of an append); other operations are returned as they are.
+pub(crate) fn with_other_input(op: &Operation, reference: String) -> Operation {
     let mut op = op.clone();
     match &mut op {
         Operation::Map { table, .. } | Operation::Lookup { table, .. } => *table = reference,
@@ -591,6 +593,22 @@ fn run_step(
     })
 }
 
+/// Every step a version comes from, found by walking inputs back to intakes, in recording
+/// order (a topological order: a step reads only versions recorded before it).
+pub(crate) fn steps_behind(store: &Store, v: &Version) -> Result<BTreeSet<i64>> {
+    let mut todo = vec![v.step_id];
+    let mut seen = BTreeSet::new();
+    while let Some(id) = todo.pop() {
+        if !seen.insert(id) {
+            continue;
+        }
+        for (_, input) in store.lineage.step_input_versions(id)? {
+            todo.push(input.step_id);
+        }
+    }
+    Ok(seen)
+}
+
 /// Writes the plan that produced `reference` from its raw inputs: each intake on its way
 /// becomes an input (its file path made relative to `base_dir` when it lies under it), each
 /// built-in step an `apply` step with its recorded parameters and reason, and each check
@@ -599,17 +617,7 @@ fn run_step(
 /// edits, and branches (a dataset whose steps read two of its versions side by side).
 pub fn export(store: &Store, reference: &str, base_dir: &Path) -> Result<Plan> {
     let target = refs::resolve(&store.lineage, reference)?;
-    // Every step on the way, found by walking inputs back to intakes.
-    let mut todo = vec![target.step_id];
-    let mut seen = BTreeSet::new();
-    while let Some(id) = todo.pop() {
-        if !seen.insert(id) {
-            continue;
-        }
-        for (_, v) in store.lineage.step_input_versions(id)? {
-            todo.push(v.step_id);
-        }
-    }
+    let seen = steps_behind(store, &target)?;
     let cannot =
         |what: String| Error::usage(format!("cannot write {} as a plan: {what}", target.label()));
     let mut plan = Plan {

@@ -331,12 +331,17 @@ pub type RunSets = Vec<(u32, Vec<RowRun>)>;
 /// The magic, the format and the byte length of the run sets.
 const HEADER_LEN: usize = 16;
 
+/// The byte length of the run sets, from the header (None when the header is cut short).
+fn runs_len(bytes: &[u8]) -> Option<u64> {
+    bytes
+        .get(8..HEADER_LEN)
+        .and_then(|b| b.try_into().ok())
+        .map(u64::from_le_bytes)
+}
+
 /// Where the run sets end, from the header of a provenance object.
 fn runs_end(bytes: &[u8], r: &Reader<'_>) -> Result<usize> {
-    let len = bytes
-        .get(8..16)
-        .map(|b| u64::from_le_bytes(b.try_into().unwrap_or([0; 8])))
-        .ok_or_else(|| r.bad("the header is cut short"))?;
+    let len = runs_len(bytes).ok_or_else(|| r.bad("the header is cut short"))?;
     usize::try_from(len)
         .ok()
         .and_then(|l| l.checked_add(HEADER_LEN))
@@ -402,7 +407,8 @@ pub fn decode_runs(prefix: &[u8], what: &str) -> Result<RunSets> {
     Ok(runs)
 }
 
-fn load(store: &Store, step_id: i64) -> Result<Option<Decoded>> {
+/// The hash of a step's provenance object, as text and parsed, if it has one.
+fn object_of(store: &Store, step_id: i64) -> Result<Option<(String, crate::hash::Hash)>> {
     let Some(hex) = store.lineage.step_provenance(step_id)? else {
         return Ok(None);
     };
@@ -411,6 +417,13 @@ fn load(store: &Store, step_id: i64) -> Result<Option<Decoded>> {
             "step {step_id}: malformed provenance hash {hex}: {e}"
         ))
     })?;
+    Ok(Some((hex, hash)))
+}
+
+fn load(store: &Store, step_id: i64) -> Result<Option<Decoded>> {
+    let Some((hex, hash)) = object_of(store, step_id)? else {
+        return Ok(None);
+    };
     let bytes = store.objects.read_all(&hash)?;
     decode(&bytes, &hex).map(Some)
 }
@@ -435,19 +448,11 @@ pub fn row_runs(store: &Store, output: &Version, input_id: i64) -> Result<Vec<Ro
 
 /// The run sets of a step's provenance object, read from its first bytes only.
 fn load_runs(store: &Store, step_id: i64) -> Result<Option<RunSets>> {
-    let Some(hex) = store.lineage.step_provenance(step_id)? else {
+    let Some((hex, hash)) = object_of(store, step_id)? else {
         return Ok(None);
     };
-    let hash = hex.parse().map_err(|e| {
-        ErrorKind::Database(format!(
-            "step {step_id}: malformed provenance hash {hex}: {e}"
-        ))
-    })?;
     let head = store.objects.read_range(&hash, 0, HEADER_LEN)?;
-    let len = head
-        .get(8..16)
-        .map(|b| u64::from_le_bytes(b.try_into().unwrap_or([0; 8])))
-        .unwrap_or(0) as usize;
+    let len = runs_len(&head).unwrap_or(0) as usize;
     let prefix = store
         .objects
         .read_range(&hash, 0, HEADER_LEN.saturating_add(len))?;

@@ -12,8 +12,6 @@
 //! hand edits) is not run again by this build; replay says so for each such step and checks
 //! that its recorded output is intact.
 
-use std::collections::BTreeSet;
-
 use serde::Serialize;
 
 use crate::error::{ErrorKind, Result};
@@ -66,16 +64,7 @@ fn object_state(store: &Store, hex: &str) -> Result<&'static str> {
 /// shown to give its recorded bytes.
 pub fn replay(store: &mut Store, reference: &str) -> Result<ReplayReport> {
     let target = refs::resolve(&store.lineage, reference)?;
-    let mut todo = vec![target.step_id];
-    let mut seen = BTreeSet::new();
-    while let Some(id) = todo.pop() {
-        if !seen.insert(id) {
-            continue;
-        }
-        for (_, v) in store.lineage.step_input_versions(id)? {
-            todo.push(v.step_id);
-        }
-    }
+    let seen = crate::plan::steps_behind(store, &target)?;
     let agent = Agent {
         identity: "sluice replay".into(),
         source: "builtin".into(),
@@ -127,44 +116,9 @@ pub fn replay(store: &mut Store, reference: &str) -> Result<ReplayReport> {
                     return Err(ErrorKind::Database(format!("step {id} records no input")).into());
                 };
                 // Tables and other sources by their exact recorded versions.
-                let op = match (inputs.iter().find(|(role, _)| role != "input"), op) {
-                    (
-                        Some((_, t)),
-                        Operation::Map {
-                            columns,
-                            from,
-                            to,
-                            unmatched,
-                            ..
-                        },
-                    ) => Operation::Map {
-                        columns,
-                        table: t.label(),
-                        from,
-                        to,
-                        unmatched,
-                    },
-                    (
-                        Some((_, t)),
-                        Operation::Lookup {
-                            on,
-                            table_on,
-                            take,
-                            unmatched_fail,
-                            ..
-                        },
-                    ) => Operation::Lookup {
-                        table: t.label(),
-                        on,
-                        table_on,
-                        take,
-                        unmatched_fail,
-                    },
-                    (Some((_, o)), Operation::Append { map, .. }) => Operation::Append {
-                        other: o.label(),
-                        map,
-                    },
-                    (_, op) => op,
+                let op = match inputs.iter().find(|(role, _)| role != "input") {
+                    Some((_, other)) => crate::plan::with_other_input(&op, other.label()),
+                    None => op,
                 };
                 let opts = ApplyOptions {
                     op,

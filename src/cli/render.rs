@@ -657,6 +657,19 @@ pub fn verify(out: &mut impl Write, r: &VerifyReport) -> io::Result<()> {
     Ok(())
 }
 
+/// What `render` writes, each line indented by two spaces.
+fn indented(
+    out: &mut impl Write,
+    render: impl FnOnce(&mut Vec<u8>) -> io::Result<()>,
+) -> io::Result<()> {
+    let mut lines = Vec::new();
+    render(&mut lines)?;
+    for line in String::from_utf8_lossy(&lines).lines() {
+        writeln!(out, "  {line}")?;
+    }
+    Ok(())
+}
+
 pub fn demo(out: &mut impl Write, r: &DemoReport) -> io::Result<()> {
     writeln!(out, "demo store created in {}", r.dir.display())?;
     writeln!(out, "{}", r.scenario)?;
@@ -666,11 +679,7 @@ pub fn demo(out: &mut impl Write, r: &DemoReport) -> io::Result<()> {
         "ran the plan {}: each export taken in, then every step recorded with its reason and every changed cell:",
         r.plan.display()
     )?;
-    let mut lines = Vec::new();
-    run_done(&mut lines, &r.done)?;
-    for line in String::from_utf8_lossy(&lines).lines() {
-        writeln!(out, "  {line}")?;
-    }
+    indented(out, |o| run_done(o, &r.done))?;
     writeln!(out)?;
     writeln!(
         out,
@@ -690,19 +699,11 @@ pub fn demo(out: &mut impl Write, r: &DemoReport) -> io::Result<()> {
     writeln!(out)?;
     writeln!(out, "where did this amount come from?")?;
     writeln!(out, "  $ {}", r.traced.0)?;
-    let mut lines = Vec::new();
-    trail(&mut lines, &r.traced.1)?;
-    for line in String::from_utf8_lossy(&lines).lines() {
-        writeln!(out, "  {line}")?;
-    }
+    indented(out, |o| trail(o, &r.traced.1))?;
     writeln!(out)?;
     writeln!(out, "why is this total what it is?")?;
     writeln!(out, "  $ {}", r.explained.0)?;
-    let mut lines = Vec::new();
-    explanation(&mut lines, &r.explained.1)?;
-    for line in String::from_utf8_lossy(&lines).lines() {
-        writeln!(out, "  {line}")?;
-    }
+    indented(out, |o| explanation(o, &r.explained.1))?;
     writeln!(out)?;
     writeln!(out, "try next:")?;
     for c in &r.next_commands {

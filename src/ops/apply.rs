@@ -517,6 +517,22 @@ pub(super) struct Provenance {
     pub other: Option<OtherInput>,
 }
 
+impl Provenance {
+    /// The row maps by the position of their input among the step's inputs, as `record`
+    /// records them: the input first, then a table, then an append's other source.
+    fn run_sets(&self) -> Vec<(u32, &[RowRun])> {
+        let other_position = 1 + u32::from(self.table.is_some());
+        let mut sets: Vec<(u32, &[RowRun])> = Vec::new();
+        if !self.runs.is_empty() {
+            sets.push((0, &self.runs));
+        }
+        if let Some(o) = self.other.as_ref().filter(|o| !o.runs.is_empty()) {
+            sets.push((other_position, &o.runs));
+        }
+        sets
+    }
+}
+
 /// The second source of an `append`: its version, the runs of output rows that came from it,
 /// and (output column, its column) pairs.
 pub(super) struct OtherInput {
@@ -559,16 +575,7 @@ pub(super) fn record(
     let (table_hash, n_bytes) = written.table.finish().map_err(store_io)?;
     let (index_hash, index_bytes) = written.index.finish().map_err(store_io)?;
     // The row maps, changed cells and dropped rows, as one object (none when there are none).
-    // Run sets name their input by its position among the step's inputs, as recorded below:
-    // the input first, then a table, then an append's other source.
-    let other_position = 1 + u32::from(prov.table.is_some());
-    let mut run_sets: Vec<(u32, &[RowRun])> = Vec::new();
-    if !prov.runs.is_empty() {
-        run_sets.push((0, &prov.runs));
-    }
-    if let Some(o) = prov.other.as_ref().filter(|o| !o.runs.is_empty()) {
-        run_sets.push((other_position, &o.runs));
-    }
+    let run_sets = prov.run_sets();
     let provenance = if prov.changes.is_empty() && prov.drops.is_empty() && run_sets.is_empty() {
         None
     } else {
@@ -700,14 +707,7 @@ fn replayed(
 ) -> Result<ApplyOutcome> {
     let store_dir = store.dir().to_path_buf();
     let store_io = |e: io::Error| Error::io(&store_dir.join("tmp"), e);
-    let other_position = 1 + u32::from(prov.table.is_some());
-    let mut run_sets: Vec<(u32, &[RowRun])> = Vec::new();
-    if !prov.runs.is_empty() {
-        run_sets.push((0, &prov.runs));
-    }
-    if let Some(o) = prov.other.as_ref().filter(|o| !o.runs.is_empty()) {
-        run_sets.push((other_position, &o.runs));
-    }
+    let run_sets = prov.run_sets();
     let prov_hash = (!(prov.changes.is_empty() && prov.drops.is_empty() && run_sets.is_empty()))
         .then(|| {
             let bytes =

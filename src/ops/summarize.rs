@@ -57,12 +57,66 @@ impl Aggregate {
     }
 }
 
+/// The aggregates of one column over one group, kept as values come: an exact sum, the count
+/// of values, the least and greatest in exact numeric order. `explain` uses it too, so a total
+/// is done again exactly as `summarize` did it.
 #[derive(Debug, Clone, Default)]
-struct AggState {
-    sum: Decimal,
-    n_values: u64,
+pub(crate) struct AggState {
+    pub sum: Decimal,
+    pub n_values: u64,
     min: Option<String>,
     max: Option<String>,
+}
+
+/// Why a value could not be added.
+pub(crate) enum NotAdded {
+    /// Not a plain number.
+    NotANumber,
+    /// The sum no longer fits.
+    Overflow,
+}
+
+impl AggState {
+    /// Adds non-blank value `v`.
+    pub fn add(&mut self, v: &[u8]) -> std::result::Result<(), NotAdded> {
+        let text = std::str::from_utf8(v).unwrap_or("");
+        let d = (number_shape(v).is_some())
+            .then(|| Decimal::parse(text))
+            .flatten()
+            .ok_or(NotAdded::NotANumber)?;
+        self.sum = self.sum.checked_add(d).ok_or(NotAdded::Overflow)?;
+        self.n_values += 1;
+        if self
+            .min
+            .as_deref()
+            .is_none_or(|m| cmp_numbers(v, m.as_bytes()).is_lt())
+        {
+            self.min = Some(text.to_string());
+        }
+        if self
+            .max
+            .as_deref()
+            .is_none_or(|m| cmp_numbers(v, m.as_bytes()).is_gt())
+        {
+            self.max = Some(text.to_string());
+        }
+        Ok(())
+    }
+
+    /// The aggregate as the summary writes it (blank over no values).
+    pub fn value(&self, func: AggFunc) -> String {
+        match func {
+            _ if self.n_values == 0 => String::new(),
+            AggFunc::Sum => self.sum.to_string(),
+            AggFunc::Mean => self
+                .sum
+                .mean(self.n_values)
+                .map(|m| m.to_string())
+                .unwrap_or_default(),
+            AggFunc::Min => self.min.clone().unwrap_or_default(),
+            AggFunc::Max => self.max.clone().unwrap_or_default(),
+        }
+    }
 }
 
 struct Group {
@@ -161,37 +215,17 @@ pub fn run(store: &mut Store, input: Version, opts: &ApplyOptions) -> Result<App
             if blank(v) {
                 continue;
             }
-            let text = std::str::from_utf8(v).unwrap_or("");
-            let Some(d) = (number_shape(v).is_some())
-                .then(|| Decimal::parse(text))
-                .flatten()
-            else {
-                if bad.len() < 10 {
-                    bad.push((row, aggregates[k].column.clone(), text.to_string()));
-                } else {
-                    bad.push((row, String::new(), String::new()));
+            match group.aggs[k].add(v) {
+                Ok(()) => {}
+                Err(NotAdded::Overflow) => overflow = true,
+                Err(NotAdded::NotANumber) => {
+                    if bad.len() < 10 {
+                        let text = String::from_utf8_lossy(v).into_owned();
+                        bad.push((row, aggregates[k].column.clone(), text));
+                    } else {
+                        bad.push((row, String::new(), String::new()));
+                    }
                 }
-                continue;
-            };
-            let st = &mut group.aggs[k];
-            match st.sum.checked_add(d) {
-                Some(s) => st.sum = s,
-                None => overflow = true,
-            }
-            st.n_values += 1;
-            if st
-                .min
-                .as_deref()
-                .is_none_or(|m| cmp_numbers(v, m.as_bytes()).is_lt())
-            {
-                st.min = Some(text.to_string());
-            }
-            if st
-                .max
-                .as_deref()
-                .is_none_or(|m| cmp_numbers(v, m.as_bytes()).is_gt())
-            {
-                st.max = Some(text.to_string());
             }
         }
         Ok(())
@@ -226,17 +260,7 @@ pub fn run(store: &mut Store, input: Version, opts: &ApplyOptions) -> Result<App
         let mut cells: Vec<String> = g.key.clone();
         cells.push(g.count.to_string());
         for (a, st) in aggregates.iter().zip(&g.aggs) {
-            cells.push(match a.func {
-                _ if st.n_values == 0 => String::new(),
-                AggFunc::Sum => st.sum.to_string(),
-                AggFunc::Mean => st
-                    .sum
-                    .mean(st.n_values)
-                    .map(|m| m.to_string())
-                    .unwrap_or_default(),
-                AggFunc::Min => st.min.clone().unwrap_or_default(),
-                AggFunc::Max => st.max.clone().unwrap_or_default(),
-            });
+            cells.push(st.value(a.func));
         }
         let fields: Vec<&[u8]> = cells.iter().map(|c| c.as_bytes()).collect();
         writer.write_row(&fields).map_err(store_io)?;
