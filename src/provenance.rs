@@ -22,7 +22,10 @@
 //!   previous one, its reason's number, and the row it duplicated plus one (0 for none)
 //! ```
 //!
-//! The run sets come first, after their length, so that a trail reads only them.
+//! The run sets come first, after their length, so that a trail reads only them. The reason of
+//! a duplicate is stored without the row it duplicates, which the drop holds anyway, so all the
+//! duplicates of one step share one reason text: "(the whole row)" is read back as "duplicate
+//! of data row 8 (the whole row)".
 //!
 //! Steps recorded by schema 3 and earlier kept their row maps, cell changes and drops in the
 //! database's `row_runs`, `cell_changes` and `drops` tables; the readers here return those too.
@@ -77,6 +80,8 @@ pub struct DropLog {
 }
 
 impl DropLog {
+    /// Records that input row `row` was dropped. For a duplicate, `reason` is what follows
+    /// "duplicate of data row N" (see [`reason_text`]).
     pub fn push(&mut self, row: u64, reason: &str, duplicate_of: Option<u64>) {
         let n = match self.index.get(reason) {
             Some(&n) => n,
@@ -104,10 +109,19 @@ impl DropLog {
             .iter()
             .map(|&(row, n, dup)| Drop {
                 row_idx: row,
-                reason: self.reasons[n as usize].clone(),
+                reason: reason_text(&self.reasons[n as usize], dup),
                 duplicate_of: dup,
             })
             .collect()
+    }
+}
+
+/// A drop's reason as people read it: a duplicate's stored reason follows the row it
+/// duplicates (1-based, as `cat` shows it).
+pub fn reason_text(stored: &str, duplicate_of: Option<u64>) -> String {
+    match duplicate_of {
+        Some(d) => format!("duplicate of data row {} {stored}", d + 1),
+        None => stored.to_string(),
     }
 }
 
@@ -304,15 +318,14 @@ pub fn decode(bytes: &[u8], what: &str) -> Result<Decoded> {
             .checked_add(d)
             .ok_or_else(|| r.bad("a row number overflows"))?;
         let n = r.varint()? as usize;
-        let reason = reasons
+        let stored = reasons
             .get(n)
-            .ok_or_else(|| r.bad("a drop names a reason that is not there"))?
-            .clone();
-        let dup = r.varint()?;
+            .ok_or_else(|| r.bad("a drop names a reason that is not there"))?;
+        let duplicate_of = r.varint()?.checked_sub(1);
         drops.push(Drop {
             row_idx: prev,
-            reason,
-            duplicate_of: dup.checked_sub(1),
+            reason: reason_text(stored, duplicate_of),
+            duplicate_of,
         });
     }
     if r.at != bytes.len() {
@@ -623,9 +636,9 @@ mod tests {
         }
         c.push(2, 9);
         let mut d = DropLog::default();
-        d.push(3, "duplicate of data row 1 (the whole row)", Some(0));
+        d.push(3, "(the whole row)", Some(0));
         d.push(4, "matched the drop predicate: status = 'test'", None);
-        d.push(200_000, "duplicate of data row 1 (the whole row)", Some(0));
+        d.push(200_000, "(the whole row)", Some(2));
         let runs = [
             RowRun {
                 out_start: 0,
@@ -657,10 +670,19 @@ mod tests {
             ]
         );
         assert_eq!(back.drops, d.drops());
+        // Duplicates share one stored reason and read back with the row they duplicate.
+        assert_eq!(
+            back.drops[0].reason,
+            "duplicate of data row 1 (the whole row)"
+        );
+        assert_eq!(
+            back.drops[2].reason,
+            "duplicate of data row 3 (the whole row)"
+        );
         // Cost follows change: a few bytes per changed cell, drop and run, besides the texts
         // (column names and the two reasons, kept once each).
         let texts: usize = ["name", "email"].iter().map(|t| t.len()).sum::<usize>()
-            + "duplicate of data row 1 (the whole row)".len()
+            + "(the whole row)".len()
             + "matched the drop predicate: status = 'test'".len();
         assert!(bytes.len() - texts < 70, "{} bytes", bytes.len());
         // The run sets can be read from the first bytes alone.

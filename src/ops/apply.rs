@@ -1290,11 +1290,7 @@ impl RowChooser {
         if kept == row {
             return false;
         }
-        log.push(
-            row,
-            &format!("duplicate of data row {} ({what})", kept + 1),
-            Some(kept),
-        );
+        log.push(row, &format!("({what})"), Some(kept));
         true
     }
 }
