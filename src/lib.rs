@@ -54,6 +54,7 @@ pub mod plan;
 pub mod provenance;
 pub mod refs;
 pub mod replay;
+pub mod revert;
 pub mod store;
 pub mod table;
 pub mod trace;

@@ -185,6 +185,9 @@ pub struct Step {
     /// The step this one repeats on other data (`replay --onto`).
     #[serde(default)]
     pub repeats_step: Option<i64>,
+    /// For a revert: the step whose effect it removed.
+    #[serde(default)]
+    pub reverts_step: Option<i64>,
     /// Labels (`name@seq`) of the versions the step read.
     pub inputs: Vec<String>,
     /// Labels of the versions the step produced.

@@ -51,6 +51,9 @@ pub struct Hop {
     pub changed: bool,
     /// "exact" (a sluice operation) or "inferred" (recovered by a diff).
     pub link: String,
+    /// For a revert: the step it took out (a revert hop is never folded away).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub reverts_step: Option<i64>,
 }
 
 /// Where a trail ends.
@@ -527,11 +530,13 @@ fn hop(
         // away, even when the value is the same: it is where the value came from.
         changed: value_after != value_before
             || column_after != column_before
-            || produced.dataset != read.dataset,
+            || produced.dataset != read.dataset
+            || step.kind == StepKind::Revert,
         column_before,
         value_after,
         value_before,
         link: step.lineage.as_str().to_string(),
+        reverts_step: step.reverts_step,
     }
 }
 

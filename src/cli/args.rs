@@ -218,6 +218,30 @@ pub enum Command {
         json: bool,
     },
 
+    /// Take out the step that made a version, keeping everything recorded after it
+    #[command(
+        after_help = "Example:\n  sluice revert all_orders@4 --why \"the dedupe key was wrong: two shops reuse order numbers\"\n\n\
+        Records the table from before that step as the dataset's next version (a step of kind revert), then applies \
+        every later step again on top of it: built-in steps run again with their recorded parameters, hand edits are \
+        re-applied as cell patches matched through the row lineage. Nothing is deleted. Conflicts (a later edit to a \
+        row or column only the reverted step made, to a row that is now dropped, to a row whose duplicate comes back, \
+        or an outside command after it) refuse the revert with exit code 1 and are listed; --force resolves them as \
+        README.md, \"Undoing a step\", documents."
+    )]
+    Revert {
+        /// The version whose step is taken out: NAME@N or a hash prefix
+        reference: String,
+        /// Why the step is taken out (kept with the revert step)
+        #[arg(long, value_name = "TEXT")]
+        why: String,
+        /// Resolve conflicts by the documented rules instead of refusing; each is recorded
+        #[arg(long)]
+        force: bool,
+        /// Print JSON
+        #[arg(long)]
+        json: bool,
+    },
+
     /// Write a version's exact bytes to standard output or a file
     #[command(
         after_help = "Examples:\n  sluice cat quillby_orders@1 > q3-as-received.csv\n  sluice cat 5f3a9c -o q3.csv"

@@ -327,6 +327,29 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             }
             Ok(if r.reproduced { 0 } else { 1 })
         }
+        Command::Revert {
+            reference,
+            why,
+            force,
+            json,
+        } => {
+            let mut store = open_store(&cli, &cwd)?;
+            let opts = sluice::revert::RevertOptions {
+                reason: why.clone(),
+                force: *force,
+                agent: resolve_agent(&cli, &cwd),
+            };
+            let outcome = sluice::revert::revert(&mut store, reference, &opts)?;
+            if *json {
+                render::json(&mut out, &render::RevertJson::from(&outcome))?;
+            } else {
+                render::revert(&mut out, &outcome)?;
+            }
+            Ok(match outcome {
+                sluice::revert::RevertOutcome::Recorded(_) => 0,
+                sluice::revert::RevertOutcome::Refused { .. } => 1,
+            })
+        }
         Command::Cat { reference, output } => {
             let store = open_store(&cli, &cwd)?;
             let version = refs::resolve(&store.lineage, reference)?;

@@ -229,6 +229,9 @@ fn step_line(s: &Step) -> String {
     if let Some(r) = s.repeats_step {
         what.push_str(&format!(" · repeats step {r}"));
     }
+    if let Some(r) = s.reverts_step {
+        what.push_str(&format!(" · reverts step {r}"));
+    }
     format!("step {} · {what} · {} · {}", s.id, s.ended_at, s.agent)
 }
 
@@ -906,6 +909,13 @@ fn trail_body(out: &mut impl Write, t: &Trail, pad: &str) -> io::Result<()> {
         if let Some(why) = &h.why {
             writeln!(out, "{pad}  why     {why}")?;
         }
+        if let Some(r) = h.reverts_step {
+            writeln!(
+                out,
+                "{pad}  revert  took out step {r}: {} is {}'s table from before that step",
+                h.produced, h.read
+            )?;
+        }
         writeln!(
             out,
             "{pad}  after   {} row {} {}: {}",
@@ -1143,6 +1153,115 @@ pub fn impact(out: &mut impl Write, i: &sluice::graph::Impact) -> io::Result<()>
             i.current.join(", ")
         }
     )
+}
+
+/// The JSON form of a revert: what was recorded, or the conflicts that refused it.
+#[derive(serde::Serialize)]
+pub struct RevertJson<'a> {
+    pub recorded: bool,
+    pub reverted: &'a str,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub report: Option<&'a sluice::revert::RevertReport>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub conflicts: Option<&'a [sluice::revert::Conflict]>,
+}
+
+impl<'a> From<&'a sluice::revert::RevertOutcome> for RevertJson<'a> {
+    fn from(o: &'a sluice::revert::RevertOutcome) -> Self {
+        match o {
+            sluice::revert::RevertOutcome::Recorded(r) => RevertJson {
+                recorded: true,
+                reverted: &r.reverted,
+                report: Some(r),
+                conflicts: None,
+            },
+            sluice::revert::RevertOutcome::Refused {
+                reverted,
+                conflicts,
+            } => RevertJson {
+                recorded: false,
+                reverted,
+                report: None,
+                conflicts: Some(conflicts),
+            },
+        }
+    }
+}
+
+fn conflict_line(out: &mut impl Write, c: &sluice::revert::Conflict) -> io::Result<()> {
+    writeln!(out, "  step {} ({}): {}", c.step, c.version, c.detail)?;
+    writeln!(out, "    with --force: {}", c.when_forced)
+}
+
+/// What a revert recorded, or why it was refused.
+pub fn revert(out: &mut impl Write, o: &sluice::revert::RevertOutcome) -> io::Result<()> {
+    match o {
+        sluice::revert::RevertOutcome::Refused {
+            reverted,
+            conflicts,
+        } => {
+            writeln!(
+                out,
+                "not reverted: taking out the step that made {reverted} conflicts with {} after it; nothing was recorded",
+                plural(conflicts.len() as u64, "change", "changes")
+            )?;
+            for c in conflicts {
+                conflict_line(out, c)?;
+            }
+            writeln!(
+                out,
+                "resolve them by hand first, or run the revert again with --force to apply the rules shown"
+            )
+        }
+        sluice::revert::RevertOutcome::Recorded(r) => {
+            writeln!(
+                out,
+                "reverted step {} (it made {}): {} is now {} ({})",
+                r.reverted_step,
+                r.reverted,
+                r.latest.split('@').next().unwrap_or(&r.latest),
+                r.latest,
+                &r.hash[..12]
+            )?;
+            for l in &r.recorded {
+                writeln!(
+                    out,
+                    "  step {}: recorded {} ({}), {}; {}",
+                    l.step,
+                    l.version,
+                    &l.hash[..12],
+                    plural(l.rows, "row", "rows"),
+                    l.what
+                )?;
+            }
+            for u in &r.unchanged {
+                writeln!(out, "  {u}")?;
+            }
+            if !r.forced.is_empty() {
+                writeln!(
+                    out,
+                    "resolved by --force ({}), recorded with the revert step:",
+                    plural(r.forced.len() as u64, "conflict", "conflicts")
+                )?;
+                for c in &r.forced {
+                    conflict_line(out, c)?;
+                }
+            }
+            writeln!(
+                out,
+                "nothing was deleted: {} and the versions after it stay as they were",
+                r.reverted
+            )?;
+            if !r.untouched_downstream.is_empty() {
+                writeln!(
+                    out,
+                    "not changed by the revert, though made from the history it replaced: {}",
+                    r.untouched_downstream.join(", ")
+                )?;
+            }
+            Ok(())
+        }
+    }
 }
 
 /// What a replay found.

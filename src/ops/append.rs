@@ -4,7 +4,7 @@
 //! of the second that matches nothing stops the step (rename it in the map, or `select` it
 //! away first). The row map says for every output row which source and row it came from.
 
-use super::apply::{each_input_row, record, ApplyOptions, ApplyOutcome, OtherInput, Provenance};
+use super::apply::{each_input_row, record, ApplyOptions, Done, Mode, OtherInput, Provenance};
 use super::Operation;
 use crate::clock;
 use crate::error::{Error, Result};
@@ -13,7 +13,12 @@ use crate::refs;
 use crate::store::Store;
 use crate::table::write::CanonicalWriter;
 
-pub fn run(store: &mut Store, input: Version, opts: &ApplyOptions) -> Result<ApplyOutcome> {
+pub(super) fn run(
+    store: &mut Store,
+    input: Version,
+    opts: &ApplyOptions,
+    mode: Mode,
+) -> Result<Done> {
     let Operation::Append { other, map } = &opts.op else {
         return Err(Error::usage("append was called for another operation"));
     };
@@ -133,5 +138,6 @@ pub fn run(store: &mut Store, input: Version, opts: &ApplyOptions) -> Result<App
         None,
         Vec::new(),
         None,
+        mode,
     )
 }

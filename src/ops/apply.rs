@@ -112,6 +112,40 @@ impl<R: Read> Read for Checked<R> {
 
 pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<ApplyOutcome> {
     let input = refs::resolve(&store.lineage, reference)?;
+    match apply_to(store, input, opts, Mode::Record)? {
+        Done::Outcome(o) => Ok(o),
+        Done::Deferred(_) => {
+            Err(ErrorKind::Database("a step meant to be recorded was deferred".into()).into())
+        }
+    }
+}
+
+/// Computes the step `opts` describes on `input` and makes its output objects durable, but
+/// records nothing: the result is what one transaction needs to record it later
+/// ([`insert_pending`]), together with other steps (a revert records a whole chain at once).
+/// `input` may itself be pending: a version whose objects are in the store but whose row in
+/// the database is still to be written, marked by a negative id ([`pending_version`]).
+pub fn compute(store: &mut Store, input: Version, opts: &ApplyOptions) -> Result<Pending> {
+    match apply_to(store, input, opts, Mode::Defer)? {
+        Done::Deferred(p) => Ok(p),
+        Done::Outcome(_) => Err(ErrorKind::Database("a deferred step was recorded".into()).into()),
+    }
+}
+
+/// Whether a computed step is recorded at once or handed back to be recorded later.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub(super) enum Mode {
+    Record,
+    Defer,
+}
+
+/// What a computed step became.
+pub(super) enum Done {
+    Outcome(ApplyOutcome),
+    Deferred(Pending),
+}
+
+fn apply_to(store: &mut Store, input: Version, opts: &ApplyOptions, mode: Mode) -> Result<Done> {
     let dataset = opts
         .output_dataset
         .clone()
@@ -123,10 +157,10 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
         ));
     }
     if matches!(opts.op, Operation::Summarize { .. }) {
-        return super::summarize::run(store, input, opts);
+        return super::summarize::run(store, input, opts, mode);
     }
     if matches!(opts.op, Operation::Append { .. }) {
-        return super::append::run(store, input, opts);
+        return super::append::run(store, input, opts, mode);
     }
     // A mapping table is recorded by its exact version, whatever reference named it; a table
     // file is read and stored now but recorded only with the step.
@@ -498,11 +532,12 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
         None,
         changed_by_column,
         table_ingest.as_deref_mut(),
+        mode,
     )
 }
 
 /// Everything a built-in step records about how its output came from its input.
-pub(super) struct Provenance {
+pub(crate) struct Provenance {
     pub runs: Vec<RowRun>,
     /// Changed cells by output column position (of the output header).
     pub changes: ChangeLog,
@@ -520,7 +555,7 @@ pub(super) struct Provenance {
 impl Provenance {
     /// The row maps by the position of their input among the step's inputs, as `record`
     /// records them: the input first, then a table, then an append's other source.
-    fn run_sets(&self) -> Vec<(u32, &[RowRun])> {
+    pub(crate) fn run_sets(&self) -> Vec<(u32, &[RowRun])> {
         let other_position = 1 + u32::from(self.table.is_some());
         let mut sets: Vec<(u32, &[RowRun])> = Vec::new();
         if !self.runs.is_empty() {
@@ -535,43 +570,163 @@ impl Provenance {
 
 /// The second source of an `append`: its version, the runs of output rows that came from it,
 /// and (output column, its column) pairs.
-pub(super) struct OtherInput {
+pub(crate) struct OtherInput {
     pub id: i64,
     pub runs: Vec<RowRun>,
     pub sources: Vec<(String, String)>,
 }
 
-/// Persists a written output and records it: the version (or nothing, when it equals the
-/// dataset's latest), the step, its provenance and the audit entry, in one transaction.
+/// A step computed and made durable (output objects and provenance object written) but not
+/// yet in the database: everything one transaction needs to record it ([`insert_pending`]).
+/// Ids of inputs that are themselves pending are negative ([`pending_version`]).
+#[derive(Debug, Clone)]
+pub struct Pending {
+    pub kind: StepKind,
+    pub operation: Option<String>,
+    pub params: serde_json::Value,
+    pub reason: String,
+    pub agent: Agent,
+    pub started_at: String,
+    pub ended_at: String,
+    pub rows_in: u64,
+    pub lineage: LineageKind,
+    pub code: Option<serde_json::Value>,
+    pub repeats_step: Option<i64>,
+    /// The provenance object (hash, bytes), already durable.
+    pub provenance: Option<(String, u64)>,
+    /// (version id, role) of each input, in order.
+    pub inputs: Vec<(i64, String)>,
+    pub dataset: String,
+    pub key: Option<Vec<String>>,
+    pub hash: String,
+    pub n_bytes: u64,
+    pub row_index: String,
+    pub row_index_bytes: u64,
+    pub n_rows: u64,
+    pub header: Vec<String>,
+    pub null_tokens: Vec<String>,
+    pub profiles: Vec<crate::model::ColumnProfile>,
+    /// Column sources by the input they name: (input version id, [(output column, its column)]).
+    pub sources: Vec<(i64, Vec<(String, String)>)>,
+    pub notes: Vec<(u64, String, String)>,
+    pub n_changed: u64,
+    pub changed_by_column: Vec<(String, u64)>,
+    pub n_dropped: u64,
+}
+
+impl Pending {
+    /// The version this step will record as `seq` of its dataset, as a [`Version`] the next
+    /// computed step can read (its id is `placeholder`, negative).
+    pub fn version(&self, placeholder: i64, seq: u64) -> Version {
+        Version {
+            id: placeholder,
+            dataset: self.dataset.clone(),
+            seq,
+            hash: self.hash.clone(),
+            row_index: self.row_index.clone(),
+            n_rows: self.n_rows,
+            n_cols: self.header.len() as u64,
+            n_bytes: self.n_bytes,
+            header: self.header.clone(),
+            dialect: canonical_dialect(),
+            null_tokens: self.null_tokens.clone(),
+            created_at: self.ended_at.clone(),
+            step_id: placeholder,
+        }
+    }
+}
+
+/// The placeholder id of the `index`-th pending version of a chain (0-based): negative, so it
+/// can never be a real row id.
+pub fn pending_id(index: usize) -> i64 {
+    -(index as i64) - 1
+}
+
+/// Records a pending step and its version inside `tx`; `real` turns a pending input's
+/// placeholder id into the id its version was given. Returns (version id, step id, seq). The
+/// audit entry is the caller's, since one may cover several steps.
+pub fn insert_pending(
+    tx: &mut crate::store::Tx<'_>,
+    p: &Pending,
+    real: &dyn Fn(i64) -> Result<i64>,
+) -> Result<(i64, i64, u64)> {
+    if let Some((hash, n)) = &p.provenance {
+        tx.insert_object(hash, *n, "blob", &p.ended_at)?;
+    }
+    let inputs: Vec<(i64, &str)> = p
+        .inputs
+        .iter()
+        .map(|(id, role)| Ok((real(*id)?, role.as_str())))
+        .collect::<Result<_>>()?;
+    let step_id = tx.insert_step(&NewStep {
+        provenance: p.provenance.as_ref().map(|(h, _)| h.as_str()),
+        kind: p.kind,
+        operation: p.operation.as_deref(),
+        params: p.params.clone(),
+        agent: &p.agent,
+        reason: Some(&p.reason),
+        started_at: p.started_at.clone(),
+        ended_at: p.ended_at.clone(),
+        rows_in: Some(p.rows_in),
+        rows_out: Some(p.n_rows),
+        lineage: p.lineage,
+        source: None,
+        code: p.code.as_ref(),
+        inputs,
+        repeats_step: p.repeats_step,
+    })?;
+    let dialect = canonical_dialect();
+    let (version_id, seq) = tx.insert_version(&NewVersion {
+        dataset: &p.dataset,
+        key: p.key.as_deref(),
+        step_id,
+        hash: &p.hash,
+        n_bytes: p.n_bytes,
+        row_index: &p.row_index,
+        row_index_bytes: p.row_index_bytes,
+        n_rows: p.n_rows,
+        header: &p.header,
+        dialect: &dialect,
+        null_tokens: &p.null_tokens,
+        profiles: &p.profiles,
+        created_at: &p.ended_at,
+    })?;
+    for (input, sources) in &p.sources {
+        tx.insert_column_sources(step_id, version_id, real(*input)?, sources)?;
+    }
+    tx.insert_cell_notes(step_id, version_id, &p.notes)?;
+    Ok((version_id, step_id, seq))
+}
+
+/// What a step of kind `kind` records besides its output: for [`persist`].
+pub(crate) struct StepMeta<'a> {
+    pub kind: StepKind,
+    pub operation: Option<String>,
+    pub params: serde_json::Value,
+    pub reason: &'a str,
+    pub agent: &'a Agent,
+    pub started_at: &'a str,
+    pub lineage: LineageKind,
+    pub repeats_step: Option<i64>,
+}
+
+/// Makes a written output and its provenance object durable and describes the step that will
+/// record them. A table still to be taken in with the step (a `map` table file) is named by id
+/// 0 in `sources` until the caller knows its id.
 #[allow(clippy::too_many_arguments)]
-pub(super) fn record(
-    store: &mut Store,
-    input: Version,
+pub(crate) fn persist(
+    store: &Store,
+    input: &Version,
     dataset: &str,
-    opts: &ApplyOptions,
-    started_at: &str,
+    meta: StepMeta<'_>,
     written: Written,
     out_header: &[String],
     prov: Provenance,
     key: Option<Vec<String>>,
     changed_by_column: Vec<(String, u64)>,
-    table_ingest: Option<&mut PreparedIngest>,
-) -> Result<ApplyOutcome> {
+) -> Result<Pending> {
     let store_dir = store.dir().to_path_buf();
     let store_io = |e: io::Error| Error::io(&store_dir.join("tmp"), e);
-    let out_hash = written.table.hash().hex();
-    if let Some(check) = &opts.replay {
-        return replayed(store, input, written, out_header, &prov, &out_hash, check);
-    }
-    if let Some(latest) = store.lineage.latest_version(dataset)? {
-        if latest.hash == out_hash {
-            return Ok(ApplyOutcome::Unchanged {
-                input,
-                version: latest,
-                notes: prov.notes,
-            });
-        }
-    }
     let (table_hash, n_bytes) = written.table.finish().map_err(store_io)?;
     let (index_hash, index_bytes) = written.index.finish().map_err(store_io)?;
     // The row maps, changed cells and dropped rows, as one object (none when there are none).
@@ -585,96 +740,151 @@ pub(super) fn record(
         let (hash, n) = w.finish().map_err(store_io)?;
         Some((hash.hex(), n))
     };
-    let ended_at = clock::now_rfc3339();
-    let n_rows = written.n_rows;
-    let table_hex = table_hash.hex();
-    let index_hex = index_hash.hex();
-    let dialect = canonical_dialect();
+    let mut inputs = vec![(input.id, "input".to_string())];
+    let mut sources = vec![(input.id, prov.sources.clone())];
+    if let Some((id, table_sources)) = &prov.table {
+        let id = id.unwrap_or(0);
+        inputs.push((id, "table".into()));
+        sources.push((id, table_sources.clone()));
+    }
+    if let Some(o) = &prov.other {
+        inputs.push((o.id, "other".into()));
+        sources.push((o.id, o.sources.clone()));
+    }
+    Ok(Pending {
+        kind: meta.kind,
+        operation: meta.operation,
+        params: meta.params,
+        reason: meta.reason.to_string(),
+        agent: meta.agent.clone(),
+        started_at: meta.started_at.to_string(),
+        ended_at: clock::now_rfc3339(),
+        rows_in: input.n_rows,
+        lineage: meta.lineage,
+        code: None,
+        repeats_step: meta.repeats_step,
+        provenance,
+        inputs,
+        dataset: dataset.to_string(),
+        key,
+        hash: table_hash.hex(),
+        n_bytes,
+        row_index: index_hash.hex(),
+        row_index_bytes: index_bytes,
+        n_rows: written.n_rows,
+        header: out_header.to_vec(),
+        null_tokens: input.null_tokens.clone(),
+        profiles: written.profiles,
+        sources,
+        notes: prov.notes,
+        n_changed: prov.changes.len() as u64,
+        changed_by_column,
+        n_dropped: prov.drops.len() as u64,
+    })
+}
+
+/// Persists a written output and records it: the version (or nothing, when it equals the
+/// dataset's latest), the step, its provenance and the audit entry, in one transaction. In
+/// [`Mode::Defer`] the step is only made durable and handed back.
+#[allow(clippy::too_many_arguments)]
+pub(super) fn record(
+    store: &mut Store,
+    input: Version,
+    dataset: &str,
+    opts: &ApplyOptions,
+    started_at: &str,
+    written: Written,
+    out_header: &[String],
+    prov: Provenance,
+    key: Option<Vec<String>>,
+    changed_by_column: Vec<(String, u64)>,
+    table_ingest: Option<&mut PreparedIngest>,
+    mode: Mode,
+) -> Result<Done> {
+    let out_hash = written.table.hash().hex();
+    if let Some(check) = &opts.replay {
+        return replayed(store, input, written, out_header, &prov, &out_hash, check)
+            .map(Done::Outcome);
+    }
+    if mode == Mode::Record {
+        if let Some(latest) = store.lineage.latest_version(dataset)? {
+            if latest.hash == out_hash {
+                return Ok(Done::Outcome(ApplyOutcome::Unchanged {
+                    input,
+                    version: latest,
+                    notes: prov.notes,
+                }));
+            }
+        }
+    }
+    let has_table_file = matches!(prov.table, Some((None, _)));
+    let meta = StepMeta {
+        kind: StepKind::Operation,
+        operation: Some(opts.op.name().to_string()),
+        params: opts.op.params(),
+        reason: &opts.reason,
+        agent: &opts.agent,
+        started_at,
+        lineage: LineageKind::Exact,
+        repeats_step: opts.repeats,
+    };
+    let mut pending = persist(
+        store,
+        &input,
+        dataset,
+        meta,
+        written,
+        out_header,
+        prov,
+        key,
+        changed_by_column,
+    )?;
+    if mode == Mode::Defer {
+        if has_table_file {
+            return Err(Error::usage(
+                "a step that takes a table file in cannot be computed ahead; give the table as a stored version",
+            ));
+        }
+        return Ok(Done::Deferred(pending));
+    }
+    let store_dir = store.dir().to_path_buf();
     let (version_id, step_id, table_label) = store.write(|tx| {
         // A table file taken in with this step is recorded first, in the same transaction.
         let mut table_label = None;
-        let table_id = match (&prov.table, table_ingest) {
-            (Some((Some(id), _)), _) => Some(*id),
-            (Some((None, _)), Some(p)) => match p.commit(&store_dir, tx)? {
+        if let (true, Some(p)) = (has_table_file, table_ingest) {
+            match p.commit(&store_dir, tx)? {
                 Some((id, _)) => {
                     table_label = Some(p.label());
-                    Some(id)
+                    for (input, _) in pending.inputs.iter_mut().skip(1).take(1) {
+                        *input = id;
+                    }
+                    for (input, _) in pending.sources.iter_mut().skip(1).take(1) {
+                        *input = id;
+                    }
                 }
                 None => {
                     return Err(Error::from(ErrorKind::Database(
                         "the mapping table was recorded by another command meanwhile; run the step again".into(),
                     )))
                 }
-            },
-            _ => None,
-        };
-        if let Some((hash, n)) = &provenance {
-            tx.insert_object(hash, *n, "blob", &ended_at)?;
+            }
         }
-        let step_id = tx.insert_step(&NewStep {
-            provenance: provenance.as_ref().map(|(h, _)| h.as_str()),
-            kind: StepKind::Operation,
-            operation: Some(opts.op.name()),
-            params: opts.op.params(),
-            agent: &opts.agent,
-            reason: Some(&opts.reason),
-            started_at: started_at.to_string(),
-            ended_at: ended_at.clone(),
-            rows_in: Some(input.n_rows),
-            rows_out: Some(n_rows),
-            lineage: LineageKind::Exact,
-            source: None,
-            code: None,
-            inputs: {
-                let mut v = vec![(input.id, "input")];
-                if let Some(t) = table_id {
-                    v.push((t, "table"));
-                }
-                if let Some(o) = &prov.other {
-                    v.push((o.id, "other"));
-                }
-                v
-            },
-            repeats_step: opts.repeats,
-        })?;
-        let (version_id, seq) = tx.insert_version(&NewVersion {
-            dataset,
-            key: key.as_deref(),
-            step_id,
-            hash: &table_hex,
-            n_bytes,
-            row_index: &index_hex,
-            row_index_bytes: index_bytes,
-            n_rows,
-            header: out_header,
-            dialect: &dialect,
-            null_tokens: &input.null_tokens,
-            profiles: &written.profiles,
-            created_at: &ended_at,
-        })?;
-        tx.insert_column_sources(step_id, version_id, input.id, &prov.sources)?;
-        if let (Some(t), Some((_, sources))) = (table_id, &prov.table) {
-            tx.insert_column_sources(step_id, version_id, t, sources)?;
-        }
-        tx.insert_cell_notes(step_id, version_id, &prov.notes)?;
-        if let Some(o) = &prov.other {
-            tx.insert_column_sources(step_id, version_id, o.id, &o.sources)?;
-        }
+        let (version_id, step_id, seq) = insert_pending(tx, &pending, &|id| Ok(id))?;
         tx.audit(
             &opts.agent,
             "apply",
             &format!("{dataset}@{seq}"),
             &json!({
-                "operation": opts.op.params(),
+                "operation": pending.params,
                 "input": input.hash,
-                "version": table_hex,
+                "version": pending.hash,
                 "step": step_id,
-                "cells_changed": prov.changes.len(),
-                "rows_dropped": prov.drops.len(),
-                "provenance": provenance.as_ref().map(|(h, _)| h),
-                "cells_noted": prov.notes.len(),
+                "cells_changed": pending.n_changed,
+                "rows_dropped": pending.n_dropped,
+                "provenance": pending.provenance.as_ref().map(|(h, _)| h),
+                "cells_noted": pending.notes.len(),
             }),
-            &ended_at,
+            &pending.ended_at,
         )?;
         Ok((version_id, step_id, table_label))
     })?;
@@ -682,16 +892,16 @@ pub(super) fn record(
         .lineage
         .version_by_id(version_id)?
         .ok_or_else(|| Error::from(ErrorKind::Database("the new version vanished".into())))?;
-    Ok(ApplyOutcome::Recorded {
+    Ok(Done::Outcome(ApplyOutcome::Recorded {
         input,
         version,
         step_id,
         table_taken_in: table_label,
-        n_changed: prov.changes.len() as u64,
-        changed_by_column,
-        n_dropped: prov.drops.len() as u64,
-        n_noted: prov.notes.len() as u64,
-    })
+        n_changed: pending.n_changed,
+        changed_by_column: pending.changed_by_column,
+        n_dropped: pending.n_dropped,
+        n_noted: pending.notes.len() as u64,
+    }))
 }
 
 /// The end of a replayed step: the computed output compared with the recorded one, and a
@@ -848,7 +1058,7 @@ fn read_value(op: &Operation, text: &str) -> std::result::Result<String, (&'stat
 
 /// A second input read as a table: its version id (`None` while the table is an intake
 /// recorded with the step) and (output column, table column) pairs.
-pub(super) type TableInput = (Option<i64>, Vec<(String, String)>);
+pub(crate) type TableInput = (Option<i64>, Vec<(String, String)>);
 
 /// Where `map` takes its table from.
 enum TableSource<'a> {

@@ -12,7 +12,7 @@ use std::collections::HashMap;
 
 use serde::{Deserialize, Serialize};
 
-use super::apply::{each_input_row, record, ApplyOptions, ApplyOutcome, Provenance};
+use super::apply::{each_input_row, record, ApplyOptions, Done, Mode, Provenance};
 use super::decimal::Decimal;
 use super::Operation;
 use crate::clock;
@@ -135,7 +135,12 @@ fn position(header: &[String], name: &str, label: &str) -> Result<usize> {
 }
 
 /// Runs `summarize` over `input` and records the result as a new dataset.
-pub fn run(store: &mut Store, input: Version, opts: &ApplyOptions) -> Result<ApplyOutcome> {
+pub(super) fn run(
+    store: &mut Store,
+    input: Version,
+    opts: &ApplyOptions,
+    mode: Mode,
+) -> Result<Done> {
     let Operation::Summarize { by, aggregates } = &opts.op else {
         return Err(Error::usage("summarize was called for another operation"));
     };
@@ -291,5 +296,6 @@ pub fn run(store: &mut Store, input: Version, opts: &ApplyOptions) -> Result<App
         Some(by.clone()),
         Vec::new(),
         None,
+        mode,
     )
 }

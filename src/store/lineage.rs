@@ -387,7 +387,7 @@ impl Lineage {
         let sql = format!(
             "SELECT s.id, s.kind, s.operation, s.params, a.identity, s.tool_version, s.reason,
                     s.started_at, s.ended_at, s.rows_in, s.rows_out, s.lineage, s.source, s.code,
-                    s.repeats_step
+                    s.repeats_step, s.reverts_step
              FROM steps s JOIN agents a ON a.id = s.agent_id {tail}"
         );
         let mut st = self.conn.prepare(&sql).map_err(db_err)?;
@@ -406,6 +406,7 @@ impl Lineage {
             String,
             Option<String>,
             Option<String>,
+            Option<i64>,
             Option<i64>,
         );
         let rows = st
@@ -426,6 +427,7 @@ impl Lineage {
                     r.get(12)?,
                     r.get(13)?,
                     r.get(14)?,
+                    r.get(15)?,
                 ))
             })
             .map_err(db_err)?;
@@ -449,6 +451,7 @@ impl Lineage {
             source,
             code,
             repeats_step,
+            reverts_step,
         ) in raws
         {
             out.push(Step {
@@ -474,6 +477,7 @@ impl Lineage {
                     None => None,
                 },
                 repeats_step,
+                reverts_step,
                 inputs: self.labels(
                     "SELECT d.name, v.seq FROM step_inputs i JOIN versions v ON v.id = i.version_id
                      JOIN datasets d ON d.id = v.dataset_id WHERE i.step_id = ?1 ORDER BY i.position",
@@ -647,6 +651,19 @@ impl Lineage {
     }
 
     /// Every object the database records, as (hash, kind, n_bytes).
+    /// The recorded size of object `hash`, when it is recorded.
+    pub fn object_size(&self, hash: &str) -> Result<Option<u64>> {
+        self.conn
+            .query_row(
+                "SELECT n_bytes FROM objects WHERE hash = ?1",
+                params![hash],
+                |r| r.get::<_, i64>(0),
+            )
+            .optional()
+            .map(|n| n.map(|n| n as u64))
+            .map_err(db_err)
+    }
+
     pub fn objects(&self) -> Result<Vec<(String, String, u64)>> {
         let mut st = self
             .conn
@@ -868,6 +885,17 @@ impl Tx<'_> {
         Ok(step_id)
     }
 
+    /// Marks `step_id` as the revert of `reverted` (`steps.reverts_step`).
+    pub fn set_reverts_step(&mut self, step_id: i64, reverted: i64) -> Result<()> {
+        self.tx
+            .execute(
+                "UPDATE steps SET reverts_step = ?1 WHERE id = ?2",
+                params![reverted, step_id],
+            )
+            .map_err(db_err)?;
+        Ok(())
+    }
+
     pub fn insert_object(&mut self, hash: &str, n_bytes: u64, kind: &str, at: &str) -> Result<()> {
         self.tx
             .execute(
@@ -883,6 +911,19 @@ impl Tx<'_> {
         self.tx
             .query_row(
                 "SELECT v.hash FROM versions v JOIN datasets d ON d.id = v.dataset_id
+                 WHERE d.name = ?1 ORDER BY v.seq DESC LIMIT 1",
+                params![dataset],
+                |r| r.get(0),
+            )
+            .optional()
+            .map_err(db_err)
+    }
+
+    /// The id of the latest version of `dataset`, inside the transaction.
+    pub fn latest_version_id(&self, dataset: &str) -> Result<Option<i64>> {
+        self.tx
+            .query_row(
+                "SELECT v.id FROM versions v JOIN datasets d ON d.id = v.dataset_id
                  WHERE d.name = ?1 ORDER BY v.seq DESC LIMIT 1",
                 params![dataset],
                 |r| r.get(0),

@@ -1,0 +1,1028 @@
+//! Revert: removing the effect of the step that made one version of a dataset whose history
+//! went on after it, without deleting anything.
+//!
+//! For `D@k`, made by step S from `D@(k-1)`, with later versions `D@(k+1)` .. `D@n` each made
+//! from the one before:
+//!
+//! 1. a step of kind `revert` (pointing at S through `steps.reverts_step`) records `D@(n+1)`,
+//!    the table of `D@(k-1)` again (same bytes, same objects), read from `D@(k-1)` by an
+//!    identity row map and beside it `D@n`, the version it replaces as the latest;
+//! 2. every later step is then applied again, in order, on top of it: a built-in operation is
+//!    run again with its recorded parameters (tables and appended sources pinned to the
+//!    versions it read); a hand edit is re-applied as cell patches: its changed cells, removed
+//!    rows and added rows, matched to the rows of the new history through the row lineage (a
+//!    row is the same row when both histories carry it from the same row of `D@(k-1)`, or from
+//!    the same row a later step brought in);
+//! 3. all of it is recorded in one transaction, with one audit entry, or nothing is.
+//!
+//! Re-applying can meet conflicts, which refuse the revert unless forced:
+//! - an outside command after S: its program is not run again here; forced, its recorded
+//!   changes are re-applied as cell patches, as a hand edit's would be;
+//! - a later hand edit (or forced command) changed a cell of a row or column that exists only
+//!   because of S: forced, that change is left out;
+//! - it changed or removed a row that the new history drops: forced, that change is left out;
+//! - it changed a row of which S had dropped a duplicate: the duplicate comes back without the
+//!   change; forced, it stays as it was;
+//! - it changed the columns themselves: it cannot be patched; forced, it is left out whole.
+//!
+//! Every forced conflict is listed in the revert step's parameters. A later built-in step that
+//! can no longer run (a column only S made, a value it no longer reads) stops the revert with
+//! that step's error: nothing is recorded (objects already written stay unreferenced, which
+//! `verify` counts as harmless).
+
+use std::collections::{HashMap, HashSet};
+
+use serde::Serialize;
+use serde_json::json;
+
+use crate::clock;
+use crate::error::{Error, ErrorKind, Result};
+use crate::hash::Hash;
+use crate::model::{Agent, LineageKind, RowRun, Step, StepKind, Version};
+use crate::ops::apply::{self, ApplyOptions, Pending, Provenance, StepMeta};
+use crate::ops::Operation;
+use crate::provenance::{ChangeLog, DropLog};
+use crate::refs;
+use crate::store::Store;
+use crate::table::write::CanonicalWriter;
+
+/// What `sluice revert` was asked to do.
+#[derive(Debug, Clone)]
+pub struct RevertOptions {
+    pub reason: String,
+    /// Resolve conflicts by the documented rules instead of refusing.
+    pub force: bool,
+    pub agent: Agent,
+}
+
+/// One thing that stands in the way of re-applying a later step.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize)]
+pub struct Conflict {
+    /// The later step.
+    pub step: i64,
+    /// The version it made (`name@seq`).
+    pub version: String,
+    /// `outside_command`, `row_from_reverted_step`, `column_from_reverted_step`,
+    /// `row_dropped_after_revert`, `duplicate_returns_unedited`, `columns_changed`.
+    pub kind: String,
+    /// 1-based data row of `version` (or of the version the step read, for a removed row).
+    pub row: Option<u64>,
+    pub column: Option<String>,
+    pub detail: String,
+    /// What `--force` does about it.
+    pub when_forced: String,
+}
+
+/// A version the revert recorded.
+#[derive(Debug, Clone, Serialize)]
+pub struct RevertedLink {
+    pub step: i64,
+    pub version: String,
+    pub hash: String,
+    pub rows: u64,
+    /// The later step this one applies again (none for the revert step itself).
+    pub repeats_step: Option<i64>,
+    pub what: String,
+}
+
+/// What a revert recorded.
+#[derive(Debug, Clone, Serialize)]
+pub struct RevertReport {
+    pub reverted: String,
+    pub reverted_step: i64,
+    pub base: String,
+    pub replaced_latest: String,
+    /// The revert step, then each later step applied again, in order.
+    pub recorded: Vec<RevertedLink>,
+    /// Later steps that changed nothing once the reverted step was gone (nothing recorded).
+    pub unchanged: Vec<String>,
+    /// Conflicts resolved because `--force` was given.
+    pub forced: Vec<Conflict>,
+    /// Latest versions of other datasets made from the reverted history; a revert does not
+    /// change them.
+    pub untouched_downstream: Vec<String>,
+    pub latest: String,
+    pub hash: String,
+}
+
+/// A revert either recorded, or refused because of conflicts (nothing recorded).
+#[derive(Debug, Clone)]
+pub enum RevertOutcome {
+    Recorded(RevertReport),
+    Refused {
+        reverted: String,
+        conflicts: Vec<Conflict>,
+    },
+}
+
+/// Where a row of a version in the chain came from, in terms both histories share.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+enum Origin {
+    /// This row of the version before the reverted step.
+    Base(u64),
+    /// Row `row` of the step's input at `input` (not the dataset's own previous version).
+    From { step: i64, input: u32, row: u64 },
+    /// Added by the step (a hand edit's new row), at that row of the step's recorded output.
+    Added { step: i64, row: u64 },
+}
+
+impl Origin {
+    fn step(&self) -> Option<i64> {
+        match self {
+            Origin::Base(_) => None,
+            Origin::From { step, .. } | Origin::Added { step, .. } => Some(*step),
+        }
+    }
+}
+
+fn db(msg: String) -> Error {
+    ErrorKind::Database(msg).into()
+}
+
+/// The input row an output row came from, through sorted runs.
+fn through(runs: &[RowRun], row: u64) -> Option<u64> {
+    let i = runs.partition_point(|r| r.out_start + r.len <= row);
+    runs.get(i)
+        .filter(|r| r.out_start <= row)
+        .map(|r| r.in_start + (row - r.out_start))
+}
+
+/// The origins of a step's output rows, from the origins of its main input's rows and its run
+/// sets (by input position).
+fn origins_through(
+    prev: &[Origin],
+    n_out: u64,
+    sets: &[(u32, Vec<RowRun>)],
+    main: u32,
+    step: i64,
+) -> Vec<Origin> {
+    let mut out: Vec<Option<Origin>> = vec![None; n_out as usize];
+    for (position, runs) in sets {
+        for r in runs {
+            for k in 0..r.len {
+                let o = (r.out_start + k) as usize;
+                let i = r.in_start + k;
+                if o >= out.len() {
+                    continue;
+                }
+                out[o] = Some(if *position == main {
+                    prev.get(i as usize).copied().unwrap_or(Origin::Added {
+                        step,
+                        row: o as u64,
+                    })
+                } else {
+                    Origin::From {
+                        step,
+                        input: *position,
+                        row: i,
+                    }
+                });
+            }
+        }
+    }
+    out.into_iter()
+        .enumerate()
+        .map(|(o, x)| {
+            x.unwrap_or(Origin::Added {
+                step,
+                row: o as u64,
+            })
+        })
+        .collect()
+}
+
+/// The run sets of a recorded step that made `output`, by input position.
+fn recorded_sets(store: &Store, output: &Version) -> Result<Vec<(u32, Vec<RowRun>)>> {
+    let inputs = store.lineage.step_input_versions(output.step_id)?;
+    let mut sets = Vec::new();
+    for (position, (_, v)) in inputs.iter().enumerate() {
+        let runs = crate::provenance::row_runs(store, output, v.id)?;
+        if !runs.is_empty() {
+            sets.push((position as u32, runs));
+        }
+    }
+    Ok(sets)
+}
+
+/// The run sets of a pending step, read back from its provenance object.
+fn pending_sets(store: &Store, p: &Pending) -> Result<Vec<(u32, Vec<RowRun>)>> {
+    let Some((hex, _)) = &p.provenance else {
+        return Ok(Vec::new());
+    };
+    let hash: Hash = hex.parse().map_err(db)?;
+    let bytes = store.objects.read_all(&hash)?;
+    Ok(crate::provenance::decode(&bytes, hex)?.runs)
+}
+
+/// A later step and what it read and made.
+struct Later {
+    step: Step,
+    input: Version,
+    output: Version,
+    /// Position of `input` among the step's inputs.
+    main: u32,
+}
+
+/// Undoes the step that made `reference` (see the module's description).
+pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Result<RevertOutcome> {
+    if opts.reason.trim().is_empty() {
+        return Err(Error::usage(
+            "say why the step is reverted with --why TEXT, e.g. --why \"the dedupe key was wrong\"",
+        ));
+    }
+    let target = refs::resolve(&store.lineage, reference)?;
+    let label = target.label();
+    let reverted = store.lineage.step(target.step_id)?.ok_or_else(|| {
+        db(format!(
+            "the step that made {label} is missing; run `sluice verify`"
+        ))
+    })?;
+    if reverted.kind == StepKind::Ingest {
+        return Err(Error::usage(format!(
+            "{label} was taken in from a file, not made by a step; to stop using it, take in the right file with `sluice ingest FILE --as {}`",
+            target.dataset
+        )));
+    }
+    if target.seq == 1 {
+        return Err(Error::usage(format!(
+            "{label} is the first version of {}: there is no earlier version of it to go back to; revert a later step, or stop using the dataset",
+            target.dataset
+        )));
+    }
+    let base = store
+        .lineage
+        .version_by_seq(&target.dataset, target.seq - 1)?
+        .ok_or_else(|| db(format!("{}@{} is missing", target.dataset, target.seq - 1)))?;
+    let reverted_inputs = store.lineage.step_input_versions(reverted.id)?;
+    let Some(reverted_main) = reverted_inputs.iter().position(|(_, v)| v.id == base.id) else {
+        return Err(Error::usage(format!(
+            "{label} was not made from {} (its step read {}); revert can only take out a step that continued a dataset's own history",
+            base.label(),
+            reverted_inputs
+                .iter()
+                .map(|(_, v)| v.label())
+                .collect::<Vec<_>>()
+                .join(", ")
+        )));
+    };
+
+    // The later history: each version made from the one before.
+    let versions = store.lineage.versions_of(&target.dataset)?;
+    let mut later: Vec<Later> = Vec::new();
+    let mut prev = target.clone();
+    for v in versions.into_iter().filter(|v| v.seq > target.seq) {
+        let step = store
+            .lineage
+            .step(v.step_id)?
+            .ok_or_else(|| db(format!("the step that made {} is missing", v.label())))?;
+        let inputs = store.lineage.step_input_versions(step.id)?;
+        let Some(main) = inputs.iter().position(|(_, i)| i.id == prev.id) else {
+            return Err(Error::usage(format!(
+                "{} was not made from {} ({}); revert can only apply again steps that continue from the reverted version",
+                v.label(),
+                prev.label(),
+                match step.kind {
+                    StepKind::Ingest => "it was taken in from a file".to_string(),
+                    _ => format!(
+                        "its step read {}",
+                        inputs.iter().map(|(_, i)| i.label()).collect::<Vec<_>>().join(", ")
+                    ),
+                }
+            )));
+        };
+        match step.kind {
+            StepKind::Operation | StepKind::HandEdit | StepKind::Command => {}
+            other => {
+                return Err(Error::usage(format!(
+                    "{} was made by a {} step; revert it first (`sluice revert {}`), then this one",
+                    v.label(),
+                    other.as_str().replace('_', " "),
+                    v.label()
+                )))
+            }
+        }
+        later.push(Later {
+            step,
+            input: prev.clone(),
+            output: v.clone(),
+            main: main as u32,
+        });
+        prev = v;
+    }
+    let latest = prev;
+
+    // The old history's row origins, kept for the versions a patch step reads.
+    let mut old_origin: Vec<Origin> = (0..base.n_rows).map(Origin::Base).collect();
+    old_origin = origins_through(
+        &old_origin,
+        target.n_rows,
+        &recorded_sets(store, &target)?,
+        reverted_main as u32,
+        reverted.id,
+    );
+    let mut old_origins_at: HashMap<i64, Vec<Origin>> = HashMap::new();
+    for l in &later {
+        if l.step.kind != StepKind::Operation {
+            old_origins_at.insert(l.step.id, old_origin.clone());
+        }
+        old_origin = origins_through(
+            &old_origin,
+            l.output.n_rows,
+            &recorded_sets(store, &l.output)?,
+            l.main,
+            l.step.id,
+        );
+    }
+    // Rows of the base the reverted step dropped as duplicates, by the row they duplicated.
+    let mut twins: HashMap<u64, Vec<u64>> = HashMap::new();
+    for d in crate::provenance::drops(store, reverted.id, base.id)? {
+        if let Some(of) = d.duplicate_of {
+            twins.entry(of).or_default().push(d.row_idx);
+        }
+    }
+
+    let base_label = base.label();
+    // The new history, computed and made durable but not recorded.
+    let started_at = clock::now_rfc3339();
+    let mut pendings: Vec<Pending> = Vec::new();
+    let mut conflicts: Vec<Conflict> = Vec::new();
+    let mut unchanged: Vec<String> = Vec::new();
+    let mut applied_again: Vec<(i64, String)> = Vec::new();
+    let restore = restore_step(store, &base, &latest, &reverted, &label, opts, &started_at)?;
+    let mut seq = latest.seq + 1;
+    let mut current = restore.version(apply::pending_id(0), seq);
+    pendings.push(restore);
+    let mut new_origin: Vec<Origin> = (0..base.n_rows).map(Origin::Base).collect();
+
+    for l in &later {
+        let computed = match l.step.kind {
+            StepKind::Operation => {
+                let p = rerun(store, l, &current, opts)?;
+                let sets = pending_sets(store, &p)?;
+                let origins = origins_through(&new_origin, p.n_rows, &sets, 0, l.step.id);
+                Some((
+                    p,
+                    origins,
+                    format!(
+                        "{} applied again",
+                        l.step.operation.as_deref().unwrap_or("step")
+                    ),
+                ))
+            }
+            _ => {
+                let old = old_origins_at.remove(&l.step.id).unwrap_or_default();
+                let mut found = Vec::new();
+                let taken_out = TakenOut {
+                    step: reverted.id,
+                    base: &base_label,
+                    twins: &twins,
+                };
+                let patched = patch(
+                    store,
+                    l,
+                    &current,
+                    &old,
+                    &new_origin,
+                    &taken_out,
+                    opts,
+                    &mut found,
+                )?;
+                conflicts.extend(found);
+                patched
+            }
+        };
+        let Some((p, origins, what)) = computed else {
+            continue;
+        };
+        if p.hash == current.hash {
+            unchanged.push(format!(
+                "{} ({}, step {}) changed nothing once the reverted step was gone",
+                l.output.label(),
+                l.step.operation.as_deref().unwrap_or(l.step.kind.as_str()),
+                l.step.id
+            ));
+            continue;
+        }
+        seq += 1;
+        current = p.version(apply::pending_id(pendings.len()), seq);
+        new_origin = origins;
+        applied_again.push((l.step.id, what));
+        pendings.push(p);
+    }
+
+    if !conflicts.is_empty() && !opts.force {
+        return Ok(RevertOutcome::Refused {
+            reverted: label,
+            conflicts,
+        });
+    }
+    if !conflicts.is_empty() {
+        if let Some(first) = pendings.first_mut() {
+            if let Some(map) = first.params.as_object_mut() {
+                map.insert("forced_conflicts".into(), json!(conflicts));
+            }
+        }
+    }
+
+    let downstream: Vec<String> = crate::graph::impact(store, &label)?
+        .current
+        .into_iter()
+        .filter(|l| l.split('@').next() != Some(target.dataset.as_str()))
+        .collect();
+
+    // Everything in one transaction, with one audit entry.
+    let ended_at = clock::now_rfc3339();
+    let dataset = target.dataset.clone();
+    let latest_id = latest.id;
+    let reverted_id = reverted.id;
+    let recorded = store.write(|tx| {
+        if tx.latest_version_id(&dataset)? != Some(latest_id) {
+            return Err(Error::usage(format!(
+                "{dataset} got a new version while the revert was computed; run the revert again"
+            )));
+        }
+        let mut ids: Vec<i64> = Vec::with_capacity(pendings.len());
+        let mut out = Vec::with_capacity(pendings.len());
+        for (i, p) in pendings.iter().enumerate() {
+            let real = |id: i64| -> Result<i64> {
+                if id >= 0 {
+                    return Ok(id);
+                }
+                ids.get((-id - 1) as usize)
+                    .copied()
+                    .ok_or_else(|| db("a pending version was used before it was recorded".into()))
+            };
+            let (vid, sid, seq) = apply::insert_pending(tx, p, &real)?;
+            if i == 0 {
+                tx.set_reverts_step(sid, reverted_id)?;
+            }
+            ids.push(vid);
+            out.push(RevertedLink {
+                step: sid,
+                version: format!("{dataset}@{seq}"),
+                hash: p.hash.clone(),
+                rows: p.n_rows,
+                repeats_step: p.repeats_step,
+                what: match i {
+                    0 => format!("the table of {} again, without step {reverted_id}", base.label()),
+                    _ => applied_again
+                        .get(i - 1)
+                        .map(|(_, w)| w.clone())
+                        .unwrap_or_default(),
+                },
+            });
+        }
+        let last = out.last().cloned();
+        tx.audit(
+            &opts.agent,
+            "revert",
+            &label,
+            &json!({
+                "reverts_step": reverted_id,
+                "base": base.hash,
+                "replaced_latest": latest.hash,
+                "steps": out.iter().map(|l| l.step).collect::<Vec<_>>(),
+                "versions": out.iter().map(|l| json!({"version": l.version, "hash": l.hash})).collect::<Vec<_>>(),
+                "forced_conflicts": conflicts.len(),
+                "reason": opts.reason,
+            }),
+            &ended_at,
+        )?;
+        Ok((out, last))
+    })?;
+    let (links, last) = recorded;
+    let last = last.ok_or_else(|| db("the revert recorded no version".into()))?;
+    Ok(RevertOutcome::Recorded(RevertReport {
+        reverted: label,
+        reverted_step: reverted.id,
+        base: base.label(),
+        replaced_latest: latest.label(),
+        latest: last.version.clone(),
+        hash: last.hash.clone(),
+        recorded: links,
+        unchanged,
+        forced: conflicts,
+        untouched_downstream: downstream,
+    }))
+}
+
+/// The revert step itself: `base`'s table again, as the next version of its dataset.
+fn restore_step(
+    store: &Store,
+    base: &Version,
+    latest: &Version,
+    reverted: &Step,
+    label: &str,
+    opts: &RevertOptions,
+    started_at: &str,
+) -> Result<Pending> {
+    let store_io = |e: std::io::Error| Error::io(&store.dir().join("tmp"), e);
+    let runs = [RowRun {
+        out_start: 0,
+        in_start: 0,
+        len: base.n_rows,
+    }];
+    let sets: Vec<(u32, &[RowRun])> = if base.n_rows > 0 {
+        vec![(0, &runs[..])]
+    } else {
+        Vec::new()
+    };
+    let provenance = if sets.is_empty() {
+        None
+    } else {
+        let bytes = crate::provenance::encode(
+            &base.header,
+            &ChangeLog::new(base.header.len()),
+            &DropLog::default(),
+            &sets,
+        );
+        let mut w = store.objects.writer().map_err(store_io)?;
+        w.write(&bytes).map_err(store_io)?;
+        let (hash, n) = w.finish().map_err(store_io)?;
+        Some((hash.hex(), n))
+    };
+    let row_index_bytes = store.lineage.object_size(&base.row_index)?.ok_or_else(|| {
+        db(format!(
+            "the row index of {} is not recorded; run `sluice verify`",
+            base.label()
+        ))
+    })?;
+    Ok(Pending {
+        kind: StepKind::Revert,
+        operation: None,
+        params: json!({
+            "reverts_step": reverted.id,
+            "reverted": label,
+            "reverted_operation": reverted.operation,
+            "base": base.label(),
+            "replaced_latest": latest.label(),
+        }),
+        reason: opts.reason.clone(),
+        agent: opts.agent.clone(),
+        started_at: started_at.to_string(),
+        ended_at: clock::now_rfc3339(),
+        rows_in: latest.n_rows,
+        lineage: LineageKind::Exact,
+        code: None,
+        repeats_step: None,
+        provenance,
+        inputs: vec![(base.id, "input".into()), (latest.id, "latest".into())],
+        dataset: base.dataset.clone(),
+        key: None,
+        hash: base.hash.clone(),
+        n_bytes: base.n_bytes,
+        row_index: base.row_index.clone(),
+        row_index_bytes,
+        n_rows: base.n_rows,
+        header: base.header.clone(),
+        null_tokens: base.null_tokens.clone(),
+        profiles: store.lineage.profiles(base.id)?,
+        sources: Vec::new(),
+        notes: Vec::new(),
+        n_changed: 0,
+        changed_by_column: Vec::new(),
+        n_dropped: 0,
+    })
+}
+
+/// A later built-in step run again on `current` with its recorded parameters.
+fn rerun(store: &mut Store, l: &Later, current: &Version, opts: &RevertOptions) -> Result<Pending> {
+    let op: Operation = serde_json::from_value(l.step.params.clone()).map_err(|e| {
+        db(format!(
+            "step {} holds parameters this build cannot read ({e})",
+            l.step.id
+        ))
+    })?;
+    let inputs = store.lineage.step_input_versions(l.step.id)?;
+    let op = match inputs
+        .iter()
+        .enumerate()
+        .find(|(i, (role, _))| *i as u32 != l.main && role != "input")
+    {
+        Some((_, (_, other))) => crate::plan::with_other_input(&op, other.label()),
+        None => op,
+    };
+    let aopts = ApplyOptions {
+        op,
+        reason: l
+            .step
+            .reason
+            .clone()
+            .unwrap_or_else(|| format!("step {} applied again", l.step.id)),
+        output_dataset: Some(current.dataset.clone()),
+        agent: opts.agent.clone(),
+        map_table_file: None,
+        replay: None,
+        repeats: Some(l.step.id),
+    };
+    apply::compute(store, current.clone(), &aopts).map_err(|e| {
+        Error::from(ErrorKind::Data(format!(
+            "step {} ({} that made {}) cannot be applied again once the reverted step is gone: {e}; nothing was recorded",
+            l.step.id,
+            l.step.operation.as_deref().unwrap_or("step"),
+            l.output.label()
+        )))
+    })
+}
+
+/// One conflict a patch met.
+fn conflict(
+    l: &Later,
+    kind: &str,
+    row: Option<u64>,
+    column: Option<&str>,
+    detail: String,
+    when_forced: &str,
+) -> Conflict {
+    Conflict {
+        step: l.step.id,
+        version: l.output.label(),
+        kind: kind.into(),
+        row: row.map(|r| r + 1),
+        column: column.map(str::to_string),
+        detail,
+        when_forced: when_forced.into(),
+    }
+}
+
+const LEFT_OUT: &str = "this change is left out";
+
+/// The step a revert takes out, as a patch needs it.
+struct TakenOut<'a> {
+    step: i64,
+    /// The version before it (`name@seq`).
+    base: &'a str,
+    /// Rows of the base it dropped as duplicates, by the row they duplicated.
+    twins: &'a HashMap<u64, Vec<u64>>,
+}
+
+/// A later hand edit (or outside command) re-applied on `current` as cell patches matched
+/// through the row lineage. `None` when the step is left out whole (forced).
+#[allow(clippy::too_many_arguments)]
+fn patch(
+    store: &Store,
+    l: &Later,
+    current: &Version,
+    old_origin: &[Origin],
+    new_origin: &[Origin],
+    taken_out: &TakenOut<'_>,
+    opts: &RevertOptions,
+    conflicts: &mut Vec<Conflict>,
+) -> Result<Option<(Pending, Vec<Origin>, String)>> {
+    let what = l.step.kind.as_str().replace('_', " ");
+    let reverted = taken_out.step;
+    let twins = taken_out.twins;
+    if l.step.kind == StepKind::Command {
+        let command = l
+            .step
+            .code
+            .as_ref()
+            .and_then(|c| c.get("command"))
+            .and_then(|c| c.as_array())
+            .map(|a| {
+                a.iter()
+                    .filter_map(|x| x.as_str())
+                    .collect::<Vec<_>>()
+                    .join(" ")
+            })
+            .unwrap_or_default();
+        conflicts.push(conflict(
+            l,
+            "outside_command",
+            None,
+            None,
+            format!(
+                "{} was made by the outside command `{command}`, which a revert does not run again",
+                l.output.label()
+            ),
+            "its recorded changes are re-applied as cell patches, as a hand edit's would be; the command's own logic is not run on the new history",
+        ));
+    }
+    if l.output.header != l.input.header {
+        conflicts.push(conflict(
+            l,
+            "columns_changed",
+            None,
+            None,
+            format!(
+                "the {what} that made {} changed the columns ({} became {}), which cell patches cannot carry",
+                l.output.label(),
+                l.input.header.join(","),
+                l.output.header.join(",")
+            ),
+            "the whole step is left out",
+        ));
+        return Ok(None);
+    }
+    let sets = recorded_sets(store, &l.output)?;
+    let runs: Vec<RowRun> = sets
+        .iter()
+        .filter(|(p, _)| *p == l.main)
+        .flat_map(|(_, r)| r.iter().copied())
+        .collect();
+    let mut runs = runs;
+    runs.sort_by_key(|r| r.out_start);
+    let changed = crate::provenance::cell_changes_rows(store, &l.output)?;
+    let dropped = crate::provenance::drops(store, l.step.id, l.input.id)?;
+
+    let where_new: HashMap<Origin, u64> = new_origin
+        .iter()
+        .enumerate()
+        .map(|(i, o)| (*o, i as u64))
+        .collect();
+    let column_of = |name: &str| current.header.iter().position(|h| h == name);
+
+    // Rows of `current` to drop, and patches by (row of current, column).
+    let mut drop_rows: HashMap<u64, u64> = HashMap::new(); // current row -> old input row
+    for d in &dropped {
+        let Some(origin) = old_origin.get(d.row_idx as usize) else {
+            continue;
+        };
+        match where_new.get(origin) {
+            Some(&w) => {
+                drop_rows.insert(w, d.row_idx);
+            }
+            None if origin.step() == Some(reverted) => conflicts.push(conflict(
+                l,
+                "row_from_reverted_step",
+                Some(d.row_idx),
+                None,
+                format!(
+                    "the {what} removed data row {} of {}, a row that exists only because of the reverted step",
+                    d.row_idx + 1,
+                    l.input.label()
+                ),
+                LEFT_OUT,
+            )),
+            // Already gone from the new history: removing it again changes nothing.
+            None => {}
+        }
+    }
+    // Output rows of the step that were added, not carried.
+    let mut carried = vec![false; l.output.n_rows as usize];
+    for r in &runs {
+        for k in 0..r.len {
+            if let Some(c) = carried.get_mut((r.out_start + k) as usize) {
+                *c = true;
+            }
+        }
+    }
+    // (row of the recorded output, column) -> where it goes in the new history.
+    let mut wanted: Vec<(u64, String, u64, usize)> = Vec::new(); // (out row, column, current row, current col)
+    for (name, rows) in &changed {
+        for &o in rows {
+            if !carried.get(o as usize).copied().unwrap_or(false) {
+                continue; // an added row: taken whole below
+            }
+            let Some(i) = through(&runs, o) else { continue };
+            let Some(origin) = old_origin.get(i as usize) else {
+                continue;
+            };
+            let Some(c) = column_of(name) else {
+                conflicts.push(conflict(
+                    l,
+                    "column_from_reverted_step",
+                    Some(o),
+                    Some(name),
+                    format!(
+                        "the {what} changed column {name} of data row {} of {}, a column that exists only because of the reverted step",
+                        o + 1,
+                        l.output.label()
+                    ),
+                    LEFT_OUT,
+                ));
+                continue;
+            };
+            match where_new.get(origin) {
+                Some(&w) => {
+                    if let Origin::Base(b) = origin {
+                        if let Some(ts) = twins.get(b) {
+                            conflicts.push(conflict(
+                                l,
+                                "duplicate_returns_unedited",
+                                Some(o),
+                                Some(name),
+                                format!(
+                                    "the {what} changed {name} of data row {} of {}; the reverted step had dropped {} of {} as {} of that row, which come{} back without the change",
+                                    o + 1,
+                                    l.output.label(),
+                                    ts.iter().map(|t| format!("data row {}", t + 1)).collect::<Vec<_>>().join(", "),
+                                    taken_out.base,
+                                    if ts.len() == 1 { "a duplicate" } else { "duplicates" },
+                                    if ts.len() == 1 { "s" } else { "" }
+                                ),
+                                "the change is applied to the row it was made on; the returning duplicate keeps its values",
+                            ));
+                        }
+                    }
+                    wanted.push((o, name.clone(), w, c));
+                }
+                None if origin.step() == Some(reverted) => conflicts.push(conflict(
+                    l,
+                    "row_from_reverted_step",
+                    Some(o),
+                    Some(name),
+                    format!(
+                        "the {what} changed {name} of data row {} of {}, a row that exists only because of the reverted step",
+                        o + 1,
+                        l.output.label()
+                    ),
+                    LEFT_OUT,
+                )),
+                None => conflicts.push(conflict(
+                    l,
+                    "row_dropped_after_revert",
+                    Some(o),
+                    Some(name),
+                    format!(
+                        "the {what} changed {name} of data row {} of {}, but without the reverted step a step before it drops that row",
+                        o + 1,
+                        l.output.label()
+                    ),
+                    LEFT_OUT,
+                )),
+            }
+        }
+    }
+    // Added rows go after the row of the new history that carries the output row before them.
+    let mut anchor: Option<u64> = None; // None: at the top
+    let mut added: Vec<(Option<u64>, u64)> = Vec::new(); // (after current row, out row)
+    for o in 0..l.output.n_rows {
+        if carried[o as usize] {
+            let origin = through(&runs, o).and_then(|i| old_origin.get(i as usize));
+            if let Some(&w) = origin.and_then(|g| where_new.get(g)) {
+                anchor = Some(w);
+            }
+        } else {
+            added.push((anchor, o));
+        }
+    }
+
+    // The values the step wrote: its changed cells and its added rows, from its output.
+    let need_cells: HashSet<u64> = wanted.iter().map(|w| w.0).collect();
+    let need_rows: HashSet<u64> = added.iter().map(|a| a.1).collect();
+    let mut cell_values: HashMap<(u64, usize), Vec<u8>> = HashMap::new();
+    let mut row_values: HashMap<u64, Vec<Vec<u8>>> = HashMap::new();
+    let out_col: Vec<Option<usize>> = current
+        .header
+        .iter()
+        .map(|h| l.output.header.iter().position(|x| x == h))
+        .collect();
+    let want_cols: HashMap<u64, Vec<usize>> = {
+        let mut m: HashMap<u64, Vec<usize>> = HashMap::new();
+        for (o, name, _, _) in &wanted {
+            if let Some(c) = l.output.header.iter().position(|h| h == name) {
+                m.entry(*o).or_default().push(c);
+            }
+        }
+        m
+    };
+    apply::each_version_row(store, &l.output, |row, rec| {
+        if need_cells.contains(&row) {
+            for &c in want_cols.get(&row).into_iter().flatten() {
+                cell_values.insert((row, c), rec.field(c).to_vec());
+            }
+        }
+        if need_rows.contains(&row) {
+            row_values.insert(
+                row,
+                out_col
+                    .iter()
+                    .map(|c| c.map_or_else(Vec::new, |c| rec.field(c).to_vec()))
+                    .collect(),
+            );
+        }
+        Ok(())
+    })?;
+    let mut patches: HashMap<(u64, usize), Vec<u8>> = HashMap::new();
+    for (o, name, w, c) in &wanted {
+        if let Some(oc) = l.output.header.iter().position(|h| h == name) {
+            if let Some(v) = cell_values.get(&(*o, oc)) {
+                patches.insert((*w, *c), v.clone());
+            }
+        }
+    }
+    let mut added_after: HashMap<Option<u64>, Vec<u64>> = HashMap::new();
+    for (a, o) in &added {
+        added_after.entry(*a).or_default().push(*o);
+    }
+
+    // The patched table, written through the canonical writer.
+    let started_at = clock::now_rfc3339();
+    let store_io = |e: std::io::Error| Error::io(&store.dir().join("tmp"), e);
+    let mut writer = CanonicalWriter::new(&store.objects, &current.header, &current.null_tokens)
+        .map_err(store_io)?;
+    let mut changes = ChangeLog::new(current.header.len());
+    let mut drops = DropLog::default();
+    let mut new_runs: Vec<RowRun> = Vec::new();
+    let mut origins: Vec<Origin> = Vec::new();
+    let mut out_row = 0u64;
+    let reason = format!(
+        "removed by the {what} of step {} (re-applied after a revert)",
+        l.step.id
+    );
+    let emit_added = |after: Option<u64>,
+                      writer: &mut CanonicalWriter,
+                      out_row: &mut u64,
+                      origins: &mut Vec<Origin>|
+     -> Result<()> {
+        for o in added_after.get(&after).into_iter().flatten() {
+            if let Some(vals) = row_values.get(o) {
+                let fields: Vec<&[u8]> = vals.iter().map(Vec::as_slice).collect();
+                writer.write_row(&fields).map_err(store_io)?;
+                origins.push(Origin::Added {
+                    step: l.step.id,
+                    row: *o,
+                });
+                *out_row += 1;
+            }
+        }
+        Ok(())
+    };
+    emit_added(None, &mut writer, &mut out_row, &mut origins)?;
+    apply::each_version_row(store, current, |row, rec| {
+        if drop_rows.contains_key(&row) {
+            drops.push(row, &reason, None);
+        } else {
+            match new_runs.last_mut() {
+                Some(r) if r.in_start + r.len == row && r.out_start + r.len == out_row => {
+                    r.len += 1
+                }
+                _ => new_runs.push(RowRun {
+                    out_start: out_row,
+                    in_start: row,
+                    len: 1,
+                }),
+            }
+            let fields: Vec<&[u8]> = (0..rec.len())
+                .map(|c| match patches.get(&(row, c)) {
+                    Some(v) => {
+                        if v.as_slice() != rec.field(c) {
+                            changes.push(c, out_row);
+                        }
+                        v.as_slice()
+                    }
+                    None => rec.field(c),
+                })
+                .collect();
+            writer.write_row(&fields).map_err(store_io)?;
+            origins.push(
+                new_origin
+                    .get(row as usize)
+                    .copied()
+                    .unwrap_or(Origin::Added {
+                        step: l.step.id,
+                        row,
+                    }),
+            );
+            out_row += 1;
+        }
+        emit_added(Some(row), &mut writer, &mut out_row, &mut origins)
+    })?;
+    let written = writer.finish().map_err(store_io)?;
+    let n_changed = changes.len();
+    let prov = Provenance {
+        runs: new_runs,
+        changes,
+        drops,
+        notes: Vec::new(),
+        sources: Vec::new(),
+        table: None,
+        other: None,
+    };
+    let params = json!({
+        "reapplies_step": l.step.id,
+        "as": "cell_patches",
+        "from": l.output.label(),
+    });
+    let p = apply::persist(
+        store,
+        current,
+        &current.dataset,
+        StepMeta {
+            kind: l.step.kind,
+            operation: None,
+            params,
+            reason: l.step.reason.as_deref().unwrap_or(&opts.reason),
+            agent: &opts.agent,
+            started_at: &started_at,
+            lineage: LineageKind::Exact,
+            repeats_step: Some(l.step.id),
+        },
+        written,
+        &current.header,
+        prov,
+        None,
+        Vec::new(),
+    )?;
+    let n_added = added.len();
+    let n_dropped = p.n_dropped;
+    Ok(Some((
+        p,
+        origins,
+        format!(
+            "the {what} of step {} re-applied: {n_changed} cells, {n_dropped} rows removed, {n_added} rows added",
+            l.step.id
+        ),
+    )))
+}
