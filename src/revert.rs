@@ -27,8 +27,9 @@
 //!
 //! Every forced conflict is listed in the revert step's parameters. A later built-in step that
 //! can no longer run (a column only S made, a value it no longer reads) stops the revert with
-//! that step's error: nothing is recorded (objects already written stay unreferenced, which
-//! `verify` counts as harmless).
+//! that step's error. A refused or failed revert leaves the store as it was: the new history's
+//! objects are written to a stage of their own under `tmp/` and published into `objects/` only
+//! just before the transaction that records them.
 
 use std::collections::{HashMap, HashSet};
 
@@ -214,6 +215,10 @@ fn pending_sets(store: &Store, p: &Pending) -> Result<Vec<(u32, Vec<RowRun>)>> {
     Ok(crate::provenance::decode(&bytes, hex)?.runs)
 }
 
+/// The new history before it is recorded: the pending steps, the conflicts met, the later
+/// steps that changed nothing, and what each recorded later step did.
+type Computed = (Vec<Pending>, Vec<Conflict>, Vec<String>, Vec<(i64, String)>);
+
 /// A later step and what it read and made.
 struct Later {
     step: Step,
@@ -342,80 +347,109 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
     }
 
     let base_label = base.label();
-    // The new history, computed and made durable but not recorded.
-    let started_at = clock::now_rfc3339();
-    let mut pendings: Vec<Pending> = Vec::new();
-    let mut conflicts: Vec<Conflict> = Vec::new();
-    let mut unchanged: Vec<String> = Vec::new();
-    let mut applied_again: Vec<(i64, String)> = Vec::new();
-    let restore = restore_step(store, &base, &latest, &reverted, &label, opts, &started_at)?;
-    let mut seq = latest.seq + 1;
-    let mut current = restore.version(apply::pending_id(0), seq);
-    pendings.push(restore);
-    let mut new_origin: Vec<Origin> = (0..base.n_rows).map(Origin::Base).collect();
+    // The new history, computed and written to a stage of its own: published into the store
+    // only when it is recorded, so a refused or failed revert leaves no trace.
+    let stage = store.dir().join("tmp").join(format!(
+        "revert-{}-{}",
+        std::process::id(),
+        std::time::SystemTime::now()
+            .duration_since(std::time::UNIX_EPOCH)
+            .map_or(0, |d| d.as_nanos())
+    ));
+    store
+        .objects
+        .begin_stage(stage.clone())
+        .map_err(|e| Error::io(&stage, e))?;
+    let computed = (|| -> Result<Computed> {
+        // The new history, computed and made durable but not recorded.
+        let started_at = clock::now_rfc3339();
+        let mut pendings: Vec<Pending> = Vec::new();
+        let mut conflicts: Vec<Conflict> = Vec::new();
+        let mut unchanged: Vec<String> = Vec::new();
+        let mut applied_again: Vec<(i64, String)> = Vec::new();
+        let restore = restore_step(store, &base, &latest, &reverted, &label, opts, &started_at)?;
+        let mut seq = latest.seq + 1;
+        let mut current = restore.version(apply::pending_id(0), seq);
+        pendings.push(restore);
+        let mut new_origin: Vec<Origin> = (0..base.n_rows).map(Origin::Base).collect();
 
-    for l in &later {
-        let computed = match l.step.kind {
-            StepKind::Operation => {
-                let p = rerun(store, l, &current, opts)?;
-                let sets = pending_sets(store, &p)?;
-                let origins = origins_through(&new_origin, p.n_rows, &sets, 0, l.step.id);
-                Some((
-                    p,
-                    origins,
-                    format!(
-                        "{} applied again",
-                        l.step.operation.as_deref().unwrap_or("step")
-                    ),
-                ))
+        for l in &later {
+            let computed = match l.step.kind {
+                StepKind::Operation => {
+                    let p = rerun(store, l, &current, opts)?;
+                    let sets = pending_sets(store, &p)?;
+                    let origins = origins_through(&new_origin, p.n_rows, &sets, 0, l.step.id);
+                    Some((
+                        p,
+                        origins,
+                        format!(
+                            "{} applied again",
+                            l.step.operation.as_deref().unwrap_or("step")
+                        ),
+                    ))
+                }
+                _ => {
+                    let old = old_origins_at.remove(&l.step.id).unwrap_or_default();
+                    let mut found = Vec::new();
+                    let taken_out = TakenOut {
+                        step: reverted.id,
+                        base: &base_label,
+                        twins: &twins,
+                    };
+                    let patched = patch(
+                        store,
+                        l,
+                        &current,
+                        &old,
+                        &new_origin,
+                        &taken_out,
+                        opts,
+                        &mut found,
+                    )?;
+                    conflicts.extend(found);
+                    patched
+                }
+            };
+            let Some((p, origins, what)) = computed else {
+                continue;
+            };
+            if p.hash == current.hash {
+                unchanged.push(format!(
+                    "{} ({}, step {}) changed nothing once the reverted step was gone",
+                    l.output.label(),
+                    l.step.operation.as_deref().unwrap_or(l.step.kind.as_str()),
+                    l.step.id
+                ));
+                continue;
             }
-            _ => {
-                let old = old_origins_at.remove(&l.step.id).unwrap_or_default();
-                let mut found = Vec::new();
-                let taken_out = TakenOut {
-                    step: reverted.id,
-                    base: &base_label,
-                    twins: &twins,
-                };
-                let patched = patch(
-                    store,
-                    l,
-                    &current,
-                    &old,
-                    &new_origin,
-                    &taken_out,
-                    opts,
-                    &mut found,
-                )?;
-                conflicts.extend(found);
-                patched
-            }
-        };
-        let Some((p, origins, what)) = computed else {
-            continue;
-        };
-        if p.hash == current.hash {
-            unchanged.push(format!(
-                "{} ({}, step {}) changed nothing once the reverted step was gone",
-                l.output.label(),
-                l.step.operation.as_deref().unwrap_or(l.step.kind.as_str()),
-                l.step.id
-            ));
-            continue;
+            seq += 1;
+            current = p.version(apply::pending_id(pendings.len()), seq);
+            new_origin = origins;
+            applied_again.push((l.step.id, what));
+            pendings.push(p);
         }
-        seq += 1;
-        current = p.version(apply::pending_id(pendings.len()), seq);
-        new_origin = origins;
-        applied_again.push((l.step.id, what));
-        pendings.push(p);
-    }
-
-    if !conflicts.is_empty() && !opts.force {
-        return Ok(RevertOutcome::Refused {
-            reverted: label,
-            conflicts,
-        });
-    }
+        Ok((pendings, conflicts, unchanged, applied_again))
+    })();
+    let (mut pendings, conflicts, unchanged, applied_again) = match computed {
+        Ok(c) if c.1.is_empty() || opts.force => {
+            store
+                .objects
+                .publish_stage()
+                .map_err(|e| Error::io(&stage, e))?;
+            c
+        }
+        Ok((_, conflicts, _, _)) => {
+            store.objects.discard_stage();
+            return Ok(RevertOutcome::Refused {
+                reverted: label,
+                conflicts,
+            });
+        }
+        Err(e) => {
+            store.objects.discard_stage();
+            return Err(e);
+        }
+    };
     if !conflicts.is_empty() {
         if let Some(first) = pendings.first_mut() {
             if let Some(map) = first.params.as_object_mut() {

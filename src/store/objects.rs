@@ -276,6 +276,16 @@ impl ObjectBackend for FsBackend {
 /// The object half of a store: writes and reads objects through a backend, always hashing.
 pub struct Objects {
     backend: Box<dyn ObjectBackend>,
+    /// While a command stages its objects ([`Objects::begin_stage`]): new objects are written
+    /// here, and reads look here first.
+    stage: Option<Stage>,
+}
+
+/// A private folder of objects a command wrote but may still give up (a revert that turns out
+/// to conflict): published into the store only when the command is about to record them.
+struct Stage {
+    dir: PathBuf,
+    fs: FsBackend,
 }
 
 /// A hashing writer for one new object. `finish` persists it and returns its name.
@@ -317,16 +327,84 @@ impl ObjectWriter {
 
 impl Objects {
     pub fn new(backend: Box<dyn ObjectBackend>) -> Self {
-        Objects { backend }
+        Objects {
+            backend,
+            stage: None,
+        }
     }
 
+    /// The store's own backend (never the stage).
     pub fn backend(&self) -> &dyn ObjectBackend {
         &*self.backend
     }
 
+    /// Where object `hash` is read from: the stage when it holds it, else the store.
+    fn reader(&self, hash: &Hash) -> &dyn ObjectBackend {
+        match &self.stage {
+            Some(st) if st.fs.exists(hash) => &st.fs,
+            _ => &*self.backend,
+        }
+    }
+
+    /// From now on new objects go to `dir` (a fresh folder under the store's `tmp/`), and
+    /// reads look there first, until [`Objects::publish_stage`] or [`Objects::discard_stage`].
+    pub fn begin_stage(&mut self, dir: PathBuf) -> io::Result<()> {
+        if self.stage.is_some() {
+            return Err(io::Error::other("objects are already being staged"));
+        }
+        fs::create_dir_all(dir.join("objects"))?;
+        let fs_backend = FsBackend {
+            objects: dir.join("objects"),
+            tmp: dir.join("tmp"),
+        };
+        self.stage = Some(Stage {
+            dir,
+            fs: fs_backend,
+        });
+        Ok(())
+    }
+
+    /// Moves every staged object into the store (durably: rename and folder sync, or a copy
+    /// through the backend when the two are not on one file system) and ends the stage.
+    pub fn publish_stage(&mut self) -> io::Result<()> {
+        let Some(st) = self.stage.take() else {
+            return Ok(());
+        };
+        let (found, _) = st.fs.list()?;
+        for hash in found {
+            if self.backend.exists(&hash) {
+                continue;
+            }
+            let from = st.fs.path_of(&hash);
+            let dest = self.backend.describe(&hash);
+            let moved = dest.parent().is_some_and(|dir| {
+                fs::create_dir_all(dir).is_ok()
+                    && fs::rename(&from, &dest).is_ok()
+                    && sync_dir(dir).is_ok()
+            });
+            if !moved || !self.backend.exists(&hash) {
+                let mut temp = self.backend.create_temp()?;
+                io::copy(&mut File::open(&from)?, &mut temp)?;
+                temp.persist(&hash)?;
+            }
+        }
+        let _ = fs::remove_dir_all(&st.dir);
+        Ok(())
+    }
+
+    /// Ends the stage and removes what it holds: the store is as it was before it began.
+    pub fn discard_stage(&mut self) {
+        if let Some(st) = self.stage.take() {
+            let _ = fs::remove_dir_all(&st.dir);
+        }
+    }
+
     pub fn writer(&self) -> io::Result<ObjectWriter> {
         Ok(ObjectWriter {
-            temp: self.backend.create_temp()?,
+            temp: match &self.stage {
+                Some(st) => st.fs.create_temp()?,
+                None => self.backend.create_temp()?,
+            },
             hasher: blake3::Hasher::new(),
             n_bytes: 0,
             unsynced: 0,
@@ -334,7 +412,7 @@ impl Objects {
     }
 
     pub fn exists(&self, hash: &Hash) -> bool {
-        self.backend.exists(hash)
+        self.reader(hash).exists(hash)
     }
 
     /// Copies object `hash` to `out`, checking the hash as it goes. The bytes are written before
@@ -343,7 +421,7 @@ impl Objects {
     pub fn copy_to(&self, hash: &Hash, out: &mut dyn Write) -> Result<u64> {
         let r = self.open_raw(hash)?;
         let mut hasher = blake3::Hasher::new();
-        let path = self.backend.describe(hash);
+        let path = self.reader(hash).describe(hash);
         let n_bytes = for_each_piece(
             r,
             |e| crate::Error::io(&path, e),
@@ -375,13 +453,16 @@ impl Objects {
     /// (trace reads single rows this way, in constant time; `verify` checks whole objects).
     pub fn read_range(&self, hash: &Hash, offset: u64, len: usize) -> Result<Vec<u8>> {
         let mut buf = vec![0u8; len];
-        let n = self.backend.read_at(hash, offset, &mut buf).map_err(|e| {
-            if e.kind() == io::ErrorKind::NotFound {
-                crate::Error::from(ErrorKind::ObjectMissing { hash: hash.hex() })
-            } else {
-                crate::Error::io(&self.backend.describe(hash), e)
-            }
-        })?;
+        let n = self
+            .reader(hash)
+            .read_at(hash, offset, &mut buf)
+            .map_err(|e| {
+                if e.kind() == io::ErrorKind::NotFound {
+                    crate::Error::from(ErrorKind::ObjectMissing { hash: hash.hex() })
+                } else {
+                    crate::Error::io(&self.reader(hash).describe(hash), e)
+                }
+            })?;
         buf.truncate(n);
         Ok(buf)
     }
@@ -389,11 +470,11 @@ impl Objects {
     /// Opens an object for reading without checking its hash (callers that stream large objects
     /// check the hash themselves, or rely on `verify`).
     pub fn open_raw(&self, hash: &Hash) -> Result<Box<dyn Read + Send>> {
-        self.backend.open(hash).map_err(|e| {
+        self.reader(hash).open(hash).map_err(|e| {
             if e.kind() == io::ErrorKind::NotFound {
                 ErrorKind::ObjectMissing { hash: hash.hex() }.into()
             } else {
-                crate::Error::io(&self.backend.describe(hash), e)
+                crate::Error::io(&self.reader(hash).describe(hash), e)
             }
         })
     }
@@ -402,7 +483,7 @@ impl Objects {
     pub fn check(&self, hash: &Hash) -> Result<Option<Hash>> {
         let r = self.open_raw(hash)?;
         let (actual, _) = crate::hash::hash_reader(r)
-            .map_err(|e| crate::Error::io(&self.backend.describe(hash), e))?;
+            .map_err(|e| crate::Error::io(&self.reader(hash).describe(hash), e))?;
         Ok(if actual == *hash { None } else { Some(actual) })
     }
 }
