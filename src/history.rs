@@ -91,3 +91,33 @@ pub fn show(store: &Store, reference: &str) -> Result<VersionDetail> {
         step,
     })
 }
+
+/// One step on the way to a version, with the versions it read (role and version, in the
+/// step's input order) and made.
+#[derive(Debug, Clone)]
+pub struct StepBehind {
+    pub step: Step,
+    pub inputs: Vec<(String, Version)>,
+    pub outputs: Vec<Version>,
+}
+
+/// Every step a version comes from (walking inputs back to intakes), in recording order, which
+/// is a topological order of the lineage graph: a step reads only versions recorded before it.
+/// Used by the report and the PROV export.
+pub fn behind(store: &Store, version: &Version) -> Result<Vec<StepBehind>> {
+    let ids = crate::plan::steps_behind(store, version)?;
+    let mut out = Vec::with_capacity(ids.len());
+    for id in ids {
+        let step = store.lineage.step(id)?.ok_or_else(|| {
+            crate::Error::from(crate::error::ErrorKind::Database(format!(
+                "step {id} is missing from the database; run `sluice verify`"
+            )))
+        })?;
+        out.push(StepBehind {
+            inputs: store.lineage.step_input_versions(id)?,
+            outputs: store.lineage.step_outputs(id)?,
+            step,
+        });
+    }
+    Ok(out)
+}

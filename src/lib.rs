@@ -51,6 +51,7 @@ pub mod intake;
 pub mod model;
 pub mod ops;
 pub mod plan;
+pub mod prov;
 pub mod provenance;
 pub mod refs;
 pub mod replay;

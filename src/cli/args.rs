@@ -91,10 +91,13 @@ pub enum Command {
         json: bool,
     },
 
-    /// Write what produced a version in another form: the plan that remakes it from raw data
+    /// Write what produced a version in another form: the plan that remakes it from raw data,
+    /// or its lineage in the W3C PROV data model
     #[command(
-        after_help = "Example:\n  sluice export quillby_orders --format plan -o plans/q3-cleaning.json\n\n\
-        The plan's input files are written relative to the folder of the -o file (or of the working directory)."
+        after_help = "Examples:\n  sluice export quillby_orders --format plan -o plans/q3-cleaning.json\n  \
+        sluice export q3_by_shop --format prov-json -o q3_by_shop.prov.json\n  sluice export q3_by_shop --format prov-n\n\n\
+        The plan's input files are written relative to the folder of the -o file (or of the working directory). \
+        In PROV, versions are entities, steps activities, people and sluice agents."
     )]
     Export {
         /// The version: NAME (latest), NAME@N or a hash prefix
@@ -759,6 +762,12 @@ pub enum GraphFormat {
 pub enum ExportFormat {
     /// A plan (JSON) that remakes the version from its raw inputs
     Plan,
+    /// The version's lineage in the W3C PROV data model, as PROV-JSON
+    #[value(name = "prov-json")]
+    ProvJson,
+    /// The version's lineage in the W3C PROV data model, as PROV-N text
+    #[value(name = "prov-n")]
+    ProvN,
 }
 
 #[derive(Debug, Clone, Copy, ValueEnum)]

@@ -227,6 +227,35 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             }
             Ok(0)
         }
+        Command::Export {
+            reference,
+            format: format @ (args::ExportFormat::ProvJson | args::ExportFormat::ProvN),
+            output,
+        } => {
+            let store = open_store(&cli, &cwd)?;
+            let doc = sluice::prov::document(&store, reference)?;
+            let text = match format {
+                args::ExportFormat::ProvN => sluice::prov::to_provn(&doc),
+                _ => sluice::prov::to_json(&doc),
+            };
+            match output {
+                None => out.write_all(text.as_bytes())?,
+                Some(path) => {
+                    write_file_atomically(path, |f| Ok(f.write_all(text.as_bytes())?))?;
+                    writeln!(
+                        out,
+                        "wrote the lineage of {} in W3C PROV ({} entities, {} activities, {} agents, {} relations) to {}",
+                        doc.subject,
+                        doc.count(sluice::prov::ElementKind::Entity),
+                        doc.count(sluice::prov::ElementKind::Activity),
+                        doc.count(sluice::prov::ElementKind::Agent),
+                        doc.relations.len(),
+                        path.display()
+                    )?;
+                }
+            }
+            Ok(0)
+        }
         Command::Trace {
             reference,
             row,
