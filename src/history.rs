@@ -67,9 +67,22 @@ pub fn show(store: &Store, reference: &str) -> Result<VersionDetail> {
     let step = store.lineage.step(version.step_id)?;
     let ds = store.lineage.dataset(&version.dataset)?;
     let latest = store.lineage.latest_version(&version.dataset)?;
-    let checks = store
+    let checks = checks_of(store, version.id)?;
+    Ok(VersionDetail {
+        checks,
+        is_latest: latest.is_some_and(|l| l.id == version.id),
+        key: ds.and_then(|d| d.key),
+        version,
+        profile,
+        step,
+    })
+}
+
+/// The rules checked on a version, oldest first.
+pub fn checks_of(store: &Store, version_id: i64) -> Result<Vec<CheckRecord>> {
+    Ok(store
         .lineage
-        .check_results(version.id)?
+        .check_results(version_id)?
         .into_iter()
         .map(
             |(rule, passed, n_failing, agent, checked_at, gate)| CheckRecord {
@@ -81,15 +94,7 @@ pub fn show(store: &Store, reference: &str) -> Result<VersionDetail> {
                 gate,
             },
         )
-        .collect();
-    Ok(VersionDetail {
-        checks,
-        is_latest: latest.is_some_and(|l| l.id == version.id),
-        key: ds.and_then(|d| d.key),
-        version,
-        profile,
-        step,
-    })
+        .collect())
 }
 
 /// One step on the way to a version, with the versions it read (role and version, in the

@@ -55,6 +55,7 @@ pub mod prov;
 pub mod provenance;
 pub mod refs;
 pub mod replay;
+pub mod report;
 pub mod store;
 pub mod table;
 pub mod trace;

@@ -110,6 +110,18 @@ pub enum Command {
         output: Option<PathBuf>,
     },
 
+    /// Write a lineage report of a version for reviewers and auditors: every step from its raw
+    /// inputs (who, when, why, what), checks, data quality before and after, hashes, and a
+    /// verification made now; the report's hash is recorded in the audit log
+    #[command(
+        after_help = "Examples:\n  sluice report q3_by_shop -o q3_by_shop-report.html\n  \
+        sluice report q3_by_shop --format md -o q3_by_shop-report.md --replay\n  \
+        sluice report --find q3_by_shop-report.html\n\n\
+        The format follows the -o file's extension (.html, .md, .json) unless --format is given. \
+        The report documents what was recorded; it is not legal or regulatory advice."
+    )]
+    Report(ReportArgs),
+
     /// Where a cell's value came from: its trail back to the raw file and line
     #[command(
         after_help = "Examples:\n  sluice trace all_orders --row 12 --column customer\n  \
@@ -756,6 +768,44 @@ pub enum GraphFormat {
     Dot,
     /// A self-contained SVG drawing
     Svg,
+}
+
+#[derive(Debug, Args)]
+pub struct ReportArgs {
+    /// The version: NAME (latest), NAME@N or a hash prefix
+    #[arg(required_unless_present = "find")]
+    pub reference: Option<String>,
+    /// The form to write (default: from the -o file's extension, else html)
+    #[arg(long, value_enum)]
+    pub format: Option<ReportFormat>,
+    /// The file to write
+    #[arg(
+        short = 'o',
+        long = "output",
+        value_name = "FILE",
+        required_unless_present = "find"
+    )]
+    pub output: Option<PathBuf>,
+    /// Instead of writing a report: find the audit entry that recorded the report in FILE (by
+    /// its BLAKE3 hash), to match a report to the store state that produced it
+    #[arg(long, value_name = "FILE", conflicts_with_all = ["reference", "output", "format", "replay"])]
+    pub find: Option<PathBuf>,
+    /// How many changed cells to list per step (the counts stay complete)
+    #[arg(long, value_name = "N", default_value_t = 5)]
+    pub sample: usize,
+    /// Also compute the version again from its raw inputs and state the result
+    #[arg(long)]
+    pub replay: bool,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+pub enum ReportFormat {
+    /// One self-contained HTML file (prints on A4 and Letter)
+    Html,
+    /// Markdown text tables
+    Md,
+    /// The report as data (schema/report.schema.json)
+    Json,
 }
 
 #[derive(Debug, Clone, Copy, ValueEnum)]
