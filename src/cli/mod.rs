@@ -313,23 +313,8 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
                 replay: a.replay,
                 agent: agent.identity.clone(),
             };
-            let report = sluice::report::build(&mut store, reference, &opts)?;
-            let (text, name) = match format {
-                args::ReportFormat::Html => (render_report::html(&report), "html"),
-                args::ReportFormat::Md => (render_report::markdown(&report), "md"),
-                args::ReportFormat::Json => (render_report::json(&report), "json"),
-            };
-            let shown = output.display().to_string();
-            let entry = write_file_recorded(output, text.as_bytes(), || {
-                Ok(sluice::report::record(
-                    &mut store,
-                    &agent,
-                    &report,
-                    name,
-                    text.as_bytes(),
-                    &shown,
-                )?)
-            })?;
+            let (report, hash, entry) =
+                write_report(&mut store, &agent, reference, format, output, &opts)?;
             writeln!(
                 out,
                 "wrote the lineage report of {} ({} steps) to {}",
@@ -339,8 +324,7 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             )?;
             writeln!(
                 out,
-                "  BLAKE3 {}, recorded as audit entry {}",
-                blake3::hash(text.as_bytes()).to_hex(),
+                "  BLAKE3 {hash}, recorded as audit entry {}",
                 entry.seq
             )?;
             writeln!(out, "  {}", report.verification.statement)?;
@@ -541,6 +525,56 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             };
             let report = demo::run(&target, &agent)?;
             render::demo(&mut out, &report)?;
+            // Documented for an audit: the report of the cooperative's Q3 figures (replayed from
+            // the raw exports) and their lineage in W3C PROV, written beside the demo's store.
+            let mut store = Store::open(&report.dir)?;
+            let reference = "q3_by_shop";
+            let html = report.dir.join("q3_by_shop-report.html");
+            let opts = sluice::report::ReportOptions {
+                sample: 5,
+                replay: true,
+                agent: agent.identity.clone(),
+            };
+            let (doc, hash, entry) = write_report(
+                &mut store,
+                &agent,
+                reference,
+                args::ReportFormat::Html,
+                &html,
+                &opts,
+            )?;
+            let prov_path = report.dir.join("q3_by_shop.prov.json");
+            let prov = sluice::prov::document(&store, reference)?;
+            let prov_text = sluice::prov::to_json(&prov);
+            write_file_atomically(&prov_path, |f| Ok(f.write_all(prov_text.as_bytes())?))?;
+            writeln!(out)?;
+            writeln!(out, "documented for an audit:")?;
+            writeln!(
+                out,
+                "  {}  the lineage report of {} ({} steps; open it in a browser, or print it)",
+                html.display(),
+                doc.subject.version,
+                doc.steps.len()
+            )?;
+            writeln!(
+                out,
+                "    BLAKE3 {}…, recorded as audit entry {}; {}",
+                &hash[..16],
+                entry.seq,
+                if doc.verification.intact {
+                    "the store verified intact when it was written"
+                } else {
+                    "the store did NOT verify; see the report"
+                }
+            )?;
+            writeln!(
+                out,
+                "  {}  its lineage in W3C PROV (PROV-JSON: {} entities, {} activities, {} agents)",
+                prov_path.display(),
+                prov.count(sluice::prov::ElementKind::Entity),
+                prov.count(sluice::prov::ElementKind::Activity),
+                prov.count(sluice::prov::ElementKind::Agent)
+            )?;
             Ok(0)
         }
     }
@@ -1005,6 +1039,37 @@ fn ingest_options(a: &IngestArgs, agent: Agent) -> anyhow::Result<IngestOptions>
         null_tokens: a.null_tokens.clone(),
         agent,
     })
+}
+
+/// Builds the report of `reference`, renders it, writes it to `output` and records it in the
+/// audit chain; returns the report, the written file's BLAKE3 and the audit entry.
+fn write_report(
+    store: &mut Store,
+    agent: &Agent,
+    reference: &str,
+    format: args::ReportFormat,
+    output: &Path,
+    opts: &sluice::report::ReportOptions,
+) -> anyhow::Result<(sluice::report::Report, String, sluice::model::AuditEntry)> {
+    let report = sluice::report::build(store, reference, opts)?;
+    let (text, name) = match format {
+        args::ReportFormat::Html => (render_report::html(&report), "html"),
+        args::ReportFormat::Md => (render_report::markdown(&report), "md"),
+        args::ReportFormat::Json => (render_report::json(&report), "json"),
+    };
+    let shown = output.display().to_string();
+    let entry = write_file_recorded(output, text.as_bytes(), || {
+        Ok(sluice::report::record(
+            store,
+            agent,
+            &report,
+            name,
+            text.as_bytes(),
+            &shown,
+        )?)
+    })?;
+    let hash = blake3::hash(text.as_bytes()).to_hex().to_string();
+    Ok((report, hash, entry))
 }
 
 /// Writes `bytes` to a temporary file beside `path`, then runs `record` (the audit entry), then
