@@ -253,3 +253,22 @@ fn a_failing_report_leaves_the_store_and_the_folder_unchanged() {
     assert_eq!(s.snapshot(), before);
     assert!(!s.path().join("r.html").exists());
 }
+
+#[test]
+fn the_demo_ends_by_writing_its_report_and_prov_export() {
+    let s = Sandbox::new();
+    let out = s.ok(&["demo", "."]);
+    assert_contains(&out, "documented for an audit:");
+    let html = s.path().join("q3_by_shop-report.html");
+    let prov = s.path().join("q3_by_shop.prov.json");
+    assert_contains(&out, "./q3_by_shop-report.html");
+    assert_contains(&out, "./q3_by_shop.prov.json");
+    let found = s.ok(&["report", "--find", "q3_by_shop-report.html"]);
+    assert_contains(&found, "lineage report (html) of q3_by_shop@1");
+    let doc: Value = serde_json::from_str(&std::fs::read_to_string(&prov).unwrap()).unwrap();
+    assert_eq!(doc["prefix"]["sluice"], "https://sluice.invalid/prov#");
+    assert!(doc["entity"]["sluice:version_q3_by_shop_1"].is_object());
+    let page = std::fs::read_to_string(&html).unwrap();
+    assert_contains(&page, "computed again from its raw inputs");
+    assert_eq!(s.json(&["verify", "--json"])["intact"], true);
+}
