@@ -67,9 +67,22 @@ pub fn show(store: &Store, reference: &str) -> Result<VersionDetail> {
     let step = store.lineage.step(version.step_id)?;
     let ds = store.lineage.dataset(&version.dataset)?;
     let latest = store.lineage.latest_version(&version.dataset)?;
-    let checks = store
+    let checks = checks_of(store, version.id)?;
+    Ok(VersionDetail {
+        checks,
+        is_latest: latest.is_some_and(|l| l.id == version.id),
+        key: ds.and_then(|d| d.key),
+        version,
+        profile,
+        step,
+    })
+}
+
+/// The rules checked on a version, oldest first.
+pub fn checks_of(store: &Store, version_id: i64) -> Result<Vec<CheckRecord>> {
+    Ok(store
         .lineage
-        .check_results(version.id)?
+        .check_results(version_id)?
         .into_iter()
         .map(
             |(rule, passed, n_failing, agent, checked_at, gate)| CheckRecord {
@@ -81,13 +94,35 @@ pub fn show(store: &Store, reference: &str) -> Result<VersionDetail> {
                 gate,
             },
         )
-        .collect();
-    Ok(VersionDetail {
-        checks,
-        is_latest: latest.is_some_and(|l| l.id == version.id),
-        key: ds.and_then(|d| d.key),
-        version,
-        profile,
-        step,
-    })
+        .collect())
+}
+
+/// One step on the way to a version, with the versions it read (role and version, in the
+/// step's input order) and made.
+#[derive(Debug, Clone)]
+pub struct StepBehind {
+    pub step: Step,
+    pub inputs: Vec<(String, Version)>,
+    pub outputs: Vec<Version>,
+}
+
+/// Every step a version comes from (walking inputs back to intakes), in recording order, which
+/// is a topological order of the lineage graph: a step reads only versions recorded before it.
+/// Used by the report and the PROV export.
+pub fn behind(store: &Store, version: &Version) -> Result<Vec<StepBehind>> {
+    let ids = crate::plan::steps_behind(store, version)?;
+    let mut out = Vec::with_capacity(ids.len());
+    for id in ids {
+        let step = store.lineage.step(id)?.ok_or_else(|| {
+            crate::Error::from(crate::error::ErrorKind::Database(format!(
+                "step {id} is missing from the database; run `sluice verify`"
+            )))
+        })?;
+        out.push(StepBehind {
+            inputs: store.lineage.step_input_versions(id)?,
+            outputs: store.lineage.step_outputs(id)?,
+            step,
+        });
+    }
+    Ok(out)
 }

@@ -553,6 +553,64 @@ pub fn cell_changes(store: &Store, output: &Version) -> Result<Vec<CellChange>> 
     Ok(out)
 }
 
+/// The first `limit` cells the step that made `output` changed, in row then column order, with
+/// their old and new values: like [`cell_changes`], but reading values for those cells only
+/// (the report's sample).
+pub fn cell_changes_sample(
+    store: &Store,
+    output: &Version,
+    limit: usize,
+) -> Result<Vec<CellChange>> {
+    let order: HashMap<&str, usize> = output
+        .header
+        .iter()
+        .enumerate()
+        .map(|(i, h)| (h.as_str(), i))
+        .collect();
+    let mut out = store.lineage.cell_changes(output.id)?;
+    out.sort_by_key(|c| (c.row_idx, order.get(c.column.as_str()).copied()));
+    out.truncate(limit);
+    if let Some(d) = load(store, output.step_id)? {
+        // The first `limit` rows of each column hold the first `limit` cells overall.
+        let mut first: Vec<(u64, usize, &str)> = d
+            .changes
+            .iter()
+            .flat_map(|(name, rows)| {
+                let c = order.get(name.as_str()).copied().unwrap_or(usize::MAX);
+                rows.iter().take(limit).map(move |&r| (r, c, name.as_str()))
+            })
+            .collect();
+        first.sort();
+        first.truncate(limit);
+        let mut picked: Vec<(String, Vec<u64>)> = Vec::new();
+        for (r, _, name) in first {
+            match picked.iter_mut().find(|(n, _)| n == name) {
+                Some((_, rows)) => rows.push(r),
+                None => picked.push((name.to_string(), vec![r])),
+            }
+        }
+        if !picked.is_empty() {
+            let input = store
+                .lineage
+                .step_input_versions(output.step_id)?
+                .into_iter()
+                .find(|(role, _)| role == "input")
+                .map(|(_, v)| v)
+                .ok_or_else(|| {
+                    Error::from(ErrorKind::Database(format!(
+                        "the step that made {} records cell changes but no input; run `sluice verify`",
+                        output.label()
+                    )))
+                })?;
+            let runs = row_runs(store, output, input.id)?;
+            out.extend(values_of(store, output, &input, &runs, &picked)?);
+        }
+    }
+    out.sort_by_key(|c| (c.row_idx, order.get(c.column.as_str()).copied()));
+    out.truncate(limit);
+    Ok(out)
+}
+
 /// The input row output row `row` came from, through the row map.
 fn input_row(runs: &[RowRun], row: u64) -> Option<u64> {
     let i = runs.partition_point(|r| r.out_start + r.len <= row);

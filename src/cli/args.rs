@@ -91,10 +91,13 @@ pub enum Command {
         json: bool,
     },
 
-    /// Write what produced a version in another form: the plan that remakes it from raw data
+    /// Write what produced a version in another form: the plan that remakes it from raw data,
+    /// or its lineage in the W3C PROV data model
     #[command(
-        after_help = "Example:\n  sluice export quillby_orders --format plan -o plans/q3-cleaning.json\n\n\
-        The plan's input files are written relative to the folder of the -o file (or of the working directory)."
+        after_help = "Examples:\n  sluice export quillby_orders --format plan -o plans/q3-cleaning.json\n  \
+        sluice export q3_by_shop --format prov-json -o q3_by_shop.prov.json\n  sluice export q3_by_shop --format prov-n\n\n\
+        The plan's input files are written relative to the folder of the -o file (or of the working directory). \
+        In PROV, versions are entities, steps activities, people and sluice agents."
     )]
     Export {
         /// The version: NAME (latest), NAME@N or a hash prefix
@@ -106,6 +109,18 @@ pub enum Command {
         #[arg(short = 'o', long = "output", value_name = "FILE")]
         output: Option<PathBuf>,
     },
+
+    /// Write a lineage report of a version for reviewers and auditors: every step from its raw
+    /// inputs (who, when, why, what), checks, data quality before and after, hashes, and a
+    /// verification made now; the report's hash is recorded in the audit log
+    #[command(
+        after_help = "Examples:\n  sluice report q3_by_shop -o q3_by_shop-report.html\n  \
+        sluice report q3_by_shop --format md -o q3_by_shop-report.md --replay\n  \
+        sluice report --find q3_by_shop-report.html\n\n\
+        The format follows the -o file's extension (.html, .md, .json) unless --format is given. \
+        The report documents what was recorded; it is not legal or regulatory advice."
+    )]
+    Report(ReportArgs),
 
     /// Where a cell's value came from: its trail back to the raw file and line
     #[command(
@@ -779,10 +794,54 @@ pub enum GraphFormat {
     Svg,
 }
 
+#[derive(Debug, Args)]
+pub struct ReportArgs {
+    /// The version: NAME (latest), NAME@N or a hash prefix
+    #[arg(required_unless_present = "find")]
+    pub reference: Option<String>,
+    /// The form to write (default: from the -o file's extension, else html)
+    #[arg(long, value_enum)]
+    pub format: Option<ReportFormat>,
+    /// The file to write
+    #[arg(
+        short = 'o',
+        long = "output",
+        value_name = "FILE",
+        required_unless_present = "find"
+    )]
+    pub output: Option<PathBuf>,
+    /// Instead of writing a report: find the audit entry that recorded the report in FILE (by
+    /// its BLAKE3 hash), to match a report to the store state that produced it
+    #[arg(long, value_name = "FILE", conflicts_with_all = ["reference", "output", "format", "replay"])]
+    pub find: Option<PathBuf>,
+    /// How many changed cells to list per step (the counts stay complete)
+    #[arg(long, value_name = "N", default_value_t = 5)]
+    pub sample: usize,
+    /// Also compute the version again from its raw inputs and state the result
+    #[arg(long)]
+    pub replay: bool,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+pub enum ReportFormat {
+    /// One self-contained HTML file (prints on A4 and Letter)
+    Html,
+    /// Markdown text tables
+    Md,
+    /// The report as data (schema/report.schema.json)
+    Json,
+}
+
 #[derive(Debug, Clone, Copy, ValueEnum)]
 pub enum ExportFormat {
     /// A plan (JSON) that remakes the version from its raw inputs
     Plan,
+    /// The version's lineage in the W3C PROV data model, as PROV-JSON
+    #[value(name = "prov-json")]
+    ProvJson,
+    /// The version's lineage in the W3C PROV data model, as PROV-N text
+    #[value(name = "prov-n")]
+    ProvN,
 }
 
 #[derive(Debug, Clone, Copy, ValueEnum)]

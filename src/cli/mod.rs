@@ -5,6 +5,7 @@
 pub mod args;
 pub mod render;
 pub mod render_diff;
+pub mod render_report;
 
 use std::io::Write;
 use std::path::{Path, PathBuf};
@@ -227,6 +228,120 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             }
             Ok(0)
         }
+        Command::Export {
+            reference,
+            format: format @ (args::ExportFormat::ProvJson | args::ExportFormat::ProvN),
+            output,
+        } => {
+            let store = open_store(&cli, &cwd)?;
+            let doc = sluice::prov::document(&store, reference)?;
+            let text = match format {
+                args::ExportFormat::ProvN => sluice::prov::to_provn(&doc),
+                _ => sluice::prov::to_json(&doc),
+            };
+            match output {
+                None => out.write_all(text.as_bytes())?,
+                Some(path) => {
+                    write_file_atomically(path, |f| Ok(f.write_all(text.as_bytes())?))?;
+                    writeln!(
+                        out,
+                        "wrote the lineage of {} in W3C PROV ({} entities, {} activities, {} agents, {} relations) to {}",
+                        doc.subject,
+                        doc.count(sluice::prov::ElementKind::Entity),
+                        doc.count(sluice::prov::ElementKind::Activity),
+                        doc.count(sluice::prov::ElementKind::Agent),
+                        doc.relations.len(),
+                        path.display()
+                    )?;
+                }
+            }
+            Ok(0)
+        }
+        Command::Report(a) if a.find.is_some() => {
+            let store = open_store(&cli, &cwd)?;
+            let file = a.find.as_deref().unwrap_or(Path::new(""));
+            let bytes =
+                std::fs::read(file).with_context(|| format!("cannot read {}", file.display()))?;
+            let hash = blake3::hash(&bytes).to_hex();
+            match sluice::report::find(&store, &bytes)? {
+                Some(e) => {
+                    let d: serde_json::Value = serde_json::from_str(&e.details).unwrap_or_default();
+                    writeln!(
+                        out,
+                        "{} is the lineage report ({}) of {} (version {})",
+                        file.display(),
+                        d["format"].as_str().unwrap_or("?"),
+                        e.subject,
+                        d["version"].as_str().unwrap_or("?")
+                    )?;
+                    writeln!(
+                        out,
+                        "  recorded as audit entry {} at {} by {}, made after audit entry {}",
+                        e.seq, e.at, e.agent, d["after_entry"]
+                    )?;
+                    writeln!(out, "  BLAKE3 {hash}")?;
+                    Ok(0)
+                }
+                None => {
+                    eprintln!(
+                        "error: no report with these bytes ({}, BLAKE3 {hash}) is recorded in this store; \
+                         it was changed after it was written, or written from another store",
+                        file.display()
+                    );
+                    Ok(1)
+                }
+            }
+        }
+        Command::Report(a) => {
+            let mut store = open_store(&cli, &cwd)?;
+            let agent = resolve_agent(&cli, &cwd);
+            let (Some(reference), Some(output)) = (a.reference.as_deref(), a.output.as_deref())
+            else {
+                return Err(anyhow!(
+                    "sluice report needs a version and -o FILE, e.g. sluice report q3_by_shop -o report.html"
+                ));
+            };
+            let format =
+                a.format
+                    .unwrap_or_else(|| match output.extension().and_then(|e| e.to_str()) {
+                        Some("md" | "markdown") => args::ReportFormat::Md,
+                        Some("json") => args::ReportFormat::Json,
+                        _ => args::ReportFormat::Html,
+                    });
+            let opts = sluice::report::ReportOptions {
+                sample: a.sample,
+                replay: a.replay,
+                agent: agent.identity.clone(),
+            };
+            let (report, hash, entry) =
+                write_report(&mut store, &agent, reference, format, output, &opts)?;
+            writeln!(
+                out,
+                "wrote the lineage report of {} ({} steps) to {}",
+                report.subject.version,
+                report.steps.len(),
+                output.display()
+            )?;
+            writeln!(
+                out,
+                "  BLAKE3 {hash}, recorded as audit entry {}",
+                entry.seq
+            )?;
+            writeln!(out, "  {}", report.verification.statement)?;
+            Ok(
+                if report.verification.intact
+                    && report
+                        .verification
+                        .replay
+                        .as_ref()
+                        .is_none_or(|r| r.failed.is_none())
+                {
+                    0
+                } else {
+                    1
+                },
+            )
+        }
         Command::Trace {
             reference,
             row,
@@ -433,6 +548,56 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             };
             let report = demo::run(&target, &agent)?;
             render::demo(&mut out, &report)?;
+            // Documented for an audit: the report of the cooperative's Q3 figures (replayed from
+            // the raw exports) and their lineage in W3C PROV, written beside the demo's store.
+            let mut store = Store::open(&report.dir)?;
+            let reference = "q3_by_shop";
+            let html = report.dir.join("q3_by_shop-report.html");
+            let opts = sluice::report::ReportOptions {
+                sample: 5,
+                replay: true,
+                agent: agent.identity.clone(),
+            };
+            let (doc, hash, entry) = write_report(
+                &mut store,
+                &agent,
+                reference,
+                args::ReportFormat::Html,
+                &html,
+                &opts,
+            )?;
+            let prov_path = report.dir.join("q3_by_shop.prov.json");
+            let prov = sluice::prov::document(&store, reference)?;
+            let prov_text = sluice::prov::to_json(&prov);
+            write_file_atomically(&prov_path, |f| Ok(f.write_all(prov_text.as_bytes())?))?;
+            writeln!(out)?;
+            writeln!(out, "documented for an audit:")?;
+            writeln!(
+                out,
+                "  {}  the lineage report of {} ({} steps; open it in a browser, or print it)",
+                html.display(),
+                doc.subject.version,
+                doc.steps.len()
+            )?;
+            writeln!(
+                out,
+                "    BLAKE3 {}…, recorded as audit entry {}; {}",
+                &hash[..16],
+                entry.seq,
+                if doc.verification.intact {
+                    "the store verified intact when it was written"
+                } else {
+                    "the store did NOT verify; see the report"
+                }
+            )?;
+            writeln!(
+                out,
+                "  {}  its lineage in W3C PROV (PROV-JSON: {} entities, {} activities, {} agents)",
+                prov_path.display(),
+                prov.count(sluice::prov::ElementKind::Entity),
+                prov.count(sluice::prov::ElementKind::Activity),
+                prov.count(sluice::prov::ElementKind::Agent)
+            )?;
             Ok(0)
         }
     }
@@ -897,6 +1062,77 @@ fn ingest_options(a: &IngestArgs, agent: Agent) -> anyhow::Result<IngestOptions>
         null_tokens: a.null_tokens.clone(),
         agent,
     })
+}
+
+/// Builds the report of `reference`, renders it, writes it to `output` and records it in the
+/// audit chain; returns the report, the written file's BLAKE3 and the audit entry.
+fn write_report(
+    store: &mut Store,
+    agent: &Agent,
+    reference: &str,
+    format: args::ReportFormat,
+    output: &Path,
+    opts: &sluice::report::ReportOptions,
+) -> anyhow::Result<(sluice::report::Report, String, sluice::model::AuditEntry)> {
+    let report = sluice::report::build(store, reference, opts)?;
+    let (text, name) = match format {
+        args::ReportFormat::Html => (render_report::html(&report), "html"),
+        args::ReportFormat::Md => (render_report::markdown(&report), "md"),
+        args::ReportFormat::Json => (render_report::json(&report), "json"),
+    };
+    let shown = output.display().to_string();
+    let entry = write_file_recorded(output, text.as_bytes(), || {
+        Ok(sluice::report::record(
+            store,
+            agent,
+            &report,
+            name,
+            text.as_bytes(),
+            &shown,
+        )?)
+    })?;
+    let hash = blake3::hash(text.as_bytes()).to_hex().to_string();
+    Ok((report, hash, entry))
+}
+
+/// Writes `bytes` to a temporary file beside `path`, then runs `record` (the audit entry), then
+/// renames the file into place: the report exists under its name only when it was recorded,
+/// and a failure to record removes it again.
+fn write_file_recorded<T>(
+    path: &Path,
+    bytes: &[u8],
+    record: impl FnOnce() -> anyhow::Result<T>,
+) -> anyhow::Result<T> {
+    let dir = path
+        .parent()
+        .filter(|p| !p.as_os_str().is_empty())
+        .unwrap_or(Path::new("."));
+    let name = path
+        .file_name()
+        .ok_or_else(|| anyhow!("{}: not a file name; give -o a file path", path.display()))?;
+    let tmp = dir.join(format!(".{}.sluice-part", name.to_string_lossy()));
+    let written = std::fs::File::create(&tmp)
+        .and_then(|mut f| f.write_all(bytes).and_then(|_| f.sync_all()))
+        .with_context(|| format!("cannot write {}", tmp.display()));
+    if let Err(e) = written {
+        let _ = std::fs::remove_file(&tmp);
+        return Err(e);
+    }
+    let recorded = match record() {
+        Ok(r) => r,
+        Err(e) => {
+            let _ = std::fs::remove_file(&tmp);
+            return Err(e);
+        }
+    };
+    std::fs::rename(&tmp, path).with_context(|| {
+        format!(
+            "cannot move the report into place at {} (it was recorded in the audit log; its text is in {})",
+            path.display(),
+            tmp.display()
+        )
+    })?;
+    Ok(recorded)
 }
 
 /// Writes through a temporary file beside `path` and renames it into place only when `fill`
