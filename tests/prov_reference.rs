@@ -106,10 +106,23 @@ fn the_prov_library_reads_the_demo_export_and_counts_what_the_store_holds() {
     let s = Sandbox::with_demo();
     let python = reference_python();
     let script = concat!(env!("CARGO_MANIFEST_DIR"), "/tests/reference/prov_check.py");
+    // A revert as well, so that its step and the steps it applied again are exported too.
+    s.ok(&[
+        "revert",
+        "all_orders@5",
+        "--why",
+        "test orders are kept for the training report",
+    ]);
     let log = s.json(&["log", "--json"]);
     // reviewed_orders@2 is the end of the demo's longest line: intakes of three exports and two
-    // tables, built-in steps, an outside command and a hand edit.
-    for target in ["reviewed_orders@2", "q3_by_shop@1", "quillby_orders@1"] {
+    // tables, built-in steps, an outside command and a hand edit; all_orders is now the end of
+    // the revert.
+    for target in [
+        "reviewed_orders@2",
+        "q3_by_shop@1",
+        "quillby_orders@1",
+        "all_orders@14",
+    ] {
         let json_path = s.path().join("lineage.prov.json");
         let provn_path = s.path().join("lineage.provn");
         s.ok(&[
