@@ -12,8 +12,8 @@ use std::path::{Path, PathBuf};
 use anyhow::{anyhow, Context};
 
 use args::{
-    ApplyArgs, CaseArg, Cli, Command, ExecArgs, IngestArgs, KeepArg, OnErrorArg, OpCommand,
-    OrderArg,
+    ApplyArgs, CaseArg, CatFormat, Cli, Command, ExecArgs, IngestArgs, KeepArg, OnErrorArg,
+    OpCommand, OrderArg,
 };
 use sluice::intake::{self, IngestOptions, IngestOutcome};
 use sluice::model::Agent;
@@ -107,7 +107,10 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Ingest(a) => {
             let mut store = open_store(&cli, &cwd)?;
             let opts = ingest_options(a, resolve_agent(&cli, &cwd))?;
-            let outcome = intake::ingest(&mut store, &a.file, &opts)?;
+            let source = intake::SourceOptions {
+                sheet: a.sheet.clone(),
+            };
+            let outcome = intake::ingest_from(&mut store, &a.file, &opts, &source)?;
             render::ingest_outcome(&mut out, &a.file, &outcome)?;
             if let IngestOutcome::Recorded { warnings, .. } = &outcome {
                 for w in warnings {
@@ -327,7 +330,33 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             }
             Ok(if r.reproduced { 0 } else { 1 })
         }
-        Command::Cat { reference, output } => {
+        Command::Cat {
+            reference,
+            output,
+            format: Some(format),
+        } => {
+            let store = open_store(&cli, &cwd)?;
+            let version = refs::resolve(&store.lineage, reference)?;
+            let format = match format {
+                CatFormat::Csv => sluice::export::TextFormat::Csv,
+                CatFormat::Tsv => sluice::export::TextFormat::Tsv,
+                CatFormat::Jsonl => sluice::export::TextFormat::Jsonl,
+            };
+            match output {
+                None => {
+                    sluice::export::write_as(&store, &version, format, &mut out)?;
+                    out.flush()?;
+                }
+                Some(path) => write_file_atomically(path, |f| {
+                    sluice::export::write_as(&store, &version, format, f)?;
+                    Ok(())
+                })?,
+            }
+            Ok(0)
+        }
+        Command::Cat {
+            reference, output, ..
+        } => {
             let store = open_store(&cli, &cwd)?;
             let version = refs::resolve(&store.lineage, reference)?;
             let hash = version.hash.parse().map_err(|e| {
