@@ -17,6 +17,8 @@ back as the same binary64, since Python 3.1), written without exponent by the de
 dates are datetime.isoformat(). The expected stored value of an xlsx cell is the text of its
 <v> element as written in the file.
 
+  blank_header.xlsx, repeated_header.xlsx  (openpyxl) workbooks whose header sluice refuses.
+
 Usage: make_workbooks.py OUTDIR  (prints the manifest as JSON)
 """
 import datetime
@@ -261,8 +263,25 @@ def ods(out_dir):
     }
 
 
+def refused(out_dir):
+    """Workbooks sluice must refuse: a blank header cell (C1), a repeated header name (D1)."""
+    from openpyxl import Workbook
+
+    for name, header in (("blank_header.xlsx", ["order_id", "shop", None, "note"]),
+                         ("repeated_header.xlsx", ["order_id", "shop", "note", "shop"])):
+        wb = Workbook()
+        ws = wb.active
+        ws.title = "Orders"
+        for j, h in enumerate(header, start=1):
+            if h is not None:
+                ws.cell(row=1, column=j, value=h)
+            ws.cell(row=2, column=j, value="x%d" % j)
+        wb.save(os.path.join(out_dir, name))
+
+
 def main():
     out_dir = sys.argv[1]
+    refused(out_dir)
     print(json.dumps({"xlsx": xlsx(out_dir), "ods": ods(out_dir)}, ensure_ascii=False))
 
 
