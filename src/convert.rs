@@ -198,6 +198,8 @@ struct Read {
     header_at: Vec<String>,
     /// Per column and data row, how to name a cell in a message.
     cell_name: Box<dyn Fn(usize, usize) -> String>,
+    /// Whether a row is named by its key's cell (workbooks) rather than its line.
+    by_cell: bool,
     record: serde_json::Value,
     warnings: Vec<String>,
 }
@@ -289,6 +291,7 @@ fn from_sheet(t: sheets::SheetTable, has_header: bool) -> Read {
             let r = rows_for_names.get(row).copied().unwrap_or(1);
             sheets::cell_ref(&sheet_for_names, (r - 1) as u32, c0 + col as u32)
         }),
+        by_cell: true,
         record,
         warnings,
     }
@@ -319,6 +322,7 @@ fn from_lines(t: jsonl::LinesTable) -> Read {
                 names.get(col).map_or("", |s| s.as_str())
             )
         }),
+        by_cell: false,
         record,
         warnings: Vec::new(),
     }
@@ -393,7 +397,7 @@ fn check_key(path: &Path, read: &Read, key: &[String], null_tokens: &[String]) -
         .iter()
         .filter_map(|k| read.header.iter().position(|h| h == k))
         .collect();
-    let mut seen: HashMap<Vec<&str>, Vec<u64>> = HashMap::new();
+    let mut seen: HashMap<Vec<&str>, Vec<usize>> = HashMap::new();
     for (i, row) in read.rows.iter().enumerate() {
         for &c in &idx {
             let v = &row[c];
@@ -409,9 +413,9 @@ fn check_key(path: &Path, read: &Read, key: &[String], null_tokens: &[String]) -
         }
         seen.entry(idx.iter().map(|&c| row[c].as_str()).collect())
             .or_default()
-            .push(read.source_rows[i]);
+            .push(i);
     }
-    let mut dups: Vec<(String, Vec<u64>)> = seen
+    let mut dups: Vec<(String, Vec<usize>)> = seen
         .into_iter()
         .filter(|(_, rows)| rows.len() > 1)
         .map(|(k, rows)| (k.join(", "), rows))
@@ -422,13 +426,27 @@ fn check_key(path: &Path, read: &Read, key: &[String], null_tokens: &[String]) -
     dups.sort_by(|a, b| a.1.cmp(&b.1));
     let total = dups.len() as u64;
     dups.truncate(10);
+    // Where each occurrence is: the cell of the key's first column, or the line.
+    let examples = dups
+        .into_iter()
+        .map(|(k, rows)| {
+            let at = rows
+                .into_iter()
+                .map(|i| {
+                    if read.by_cell {
+                        (read.cell_name)(idx[0], i)
+                    } else {
+                        format!("line {}", read.source_rows[i])
+                    }
+                })
+                .collect();
+            (k, at)
+        })
+        .collect();
     Err(Error::input(
         path,
         None,
-        InputProblem::DuplicateKeys {
-            examples: dups,
-            total,
-        },
+        InputProblem::DuplicateKeysAt { examples, total },
     ))
 }
 

@@ -81,6 +81,11 @@ pub enum InputProblem {
     EmptySheet {
         sheet: String,
     },
+    /// Duplicate keys of a workbook, each with the sheet cells that hold it.
+    DuplicateKeysAt {
+        examples: Vec<(String, Vec<String>)>,
+        total: u64,
+    },
     /// A problem at one cell of a workbook (`at` is a reference such as `Orders!B1`).
     AtCell {
         at: String,
@@ -207,6 +212,22 @@ impl fmt::Display for InputProblem {
                 f,
                 "sheet \"{sheet}\" holds no cell; expected at least a header row"
             ),
+            DuplicateKeysAt { examples, total } => {
+                write!(
+                    f,
+                    "{total} key value{} more than once: ",
+                    if *total == 1 { " occurs" } else { "s occur" }
+                )?;
+                let shown: Vec<String> = examples
+                    .iter()
+                    .map(|(k, at)| format!("\"{k}\" ({})", at.join(", ")))
+                    .collect();
+                write!(f, "{}", shown.join("; "))?;
+                if (*total as usize) > examples.len() {
+                    write!(f, "; and {} more", *total as usize - examples.len())?;
+                }
+                write!(f, "; choose a key that is unique, or ingest without --key")
+            }
             AtCell { at, problem } => write!(f, "cell {at}: {problem}"),
             InvalidJson { detail } => write!(
                 f,

@@ -353,6 +353,41 @@ fn a_workbook_header_with_a_blank_or_repeated_name_is_refused_at_its_cell() {
     let err = s.fails(2, &["ingest", "repeated_header.xlsx", "--as", "orders"]);
     assert_contains(&err, "cell Orders!D1");
     assert_contains(&err, "duplicate header name \"shop\"");
+    // A key is checked like a text file's, each duplicate named by its cells.
+    let err = s.fails(
+        2,
+        &[
+            "ingest",
+            "orders.xlsx",
+            "--as",
+            "orders",
+            "--sheet",
+            "1",
+            "--key",
+            "shop",
+        ],
+    );
+    assert_contains(
+        &err,
+        "\"Quillby Cycle Mend\" ('Work orders'!C2, 'Work orders'!C6)",
+    );
+    let err = s.fails(
+        2,
+        &[
+            "ingest",
+            "orders.xlsx",
+            "--as",
+            "orders",
+            "--sheet",
+            "1",
+            "--key",
+            "paid",
+        ],
+    );
+    assert_contains(
+        &err,
+        "cell 'Work orders'!G5: blank value in key column \"paid\"",
+    );
     // Not a workbook at all, whatever its name says.
     s.file("fake.xlsx", "order_id,shop\n1,Quillby Cycle Mend\n");
     let err = s.fails(2, &["ingest", "fake.xlsx", "--as", "orders"]);

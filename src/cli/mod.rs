@@ -74,7 +74,11 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
                     "a hand edit needs a reason: add --why TEXT (what was changed by hand, and why)"
                 ));
             }
-            let outcome = sluice::inferred::ingest_hand_edit(&mut store, &a.file, &opts, from)?;
+            let source = intake::SourceOptions {
+                sheet: a.sheet.clone(),
+            };
+            let outcome =
+                sluice::inferred::ingest_hand_edit_from(&mut store, &a.file, &opts, &source, from)?;
             render::hand_edit_outcome(&mut out, &a.file, &outcome)?;
             if let sluice::inferred::HandEditOutcome::Recorded { warnings, .. } = &outcome {
                 for w in warnings {
