@@ -425,6 +425,20 @@ mod tests {
         assert_eq!(number_text(3.0), "3");
     }
 
+    proptest::proptest! {
+        /// Law: the text of a number reads back as the same binary64 (Rust's own `f64` parser
+        /// as the reader), and has no exponent.
+        #[test]
+        fn number_text_round_trips(bits in proptest::num::u64::ANY) {
+            let x = f64::from_bits(bits);
+            proptest::prop_assume!(x.is_finite());
+            let t = number_text(x);
+            proptest::prop_assert!(!t.contains(['e', 'E']), "{t}");
+            let back: f64 = t.parse().unwrap();
+            proptest::prop_assert_eq!(back, if x == 0.0 { 0.0 } else { x });
+        }
+    }
+
     #[test]
     fn durations_are_iso_8601() {
         assert_eq!(iso_duration(1.5), "PT36H0M0S");

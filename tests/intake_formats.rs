@@ -596,3 +596,32 @@ print("same" if a == b and [list(x) for x in a] == [r[0]] * len(a) else "differ:
     let err = s.fails(1, &["cat", "orders", "--format", "tsv"]);
     assert_contains(&err, "holds a tab");
 }
+
+proptest::proptest! {
+    #![proptest_config(proptest::prelude::ProptestConfig { cases: 12, ..Default::default() })]
+
+    /// Law: a version written with `cat --format jsonl` and taken in again is the same table
+    /// (the same canonical CSV, so the same hash), whatever its cells hold.
+    #[test]
+    fn jsonl_written_and_taken_in_again_is_the_same_table(
+        cells in proptest::collection::vec(
+            proptest::collection::vec("[a-z0-9 ,\"\\\\\t\n\r\u{e9}\u{1F6B2}]{0,6}", 3),
+            1..6,
+        )
+    ) {
+        let s = Sandbox::with_store();
+        let mut csv = Vec::new();
+        sluice::table::write::push_record(&mut csv, ["shop", "note", "amount"].iter().map(|h| h.as_bytes()));
+        for row in &cells {
+            sluice::table::write::push_record(&mut csv, row.iter().map(|c| c.as_bytes()));
+        }
+        s.file("t.csv", &csv);
+        s.ok(&["ingest", "t.csv", "--as", "t", "--delimiter", ","]);
+        let jsonl = s.ok(&["cat", "t", "--format", "jsonl"]);
+        s.file("t.jsonl", jsonl);
+        s.ok(&["ingest", "t.jsonl", "--as", "again"]);
+        let a = s.json(&["show", "t", "--json"]);
+        let b = s.json(&["show", "again", "--json"]);
+        proptest::prop_assert_eq!(&a["version"]["hash"], &b["version"]["hash"]);
+    }
+}
