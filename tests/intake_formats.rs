@@ -625,3 +625,48 @@ proptest::proptest! {
         proptest::prop_assert_eq!(&a["version"]["hash"], &b["version"]["hash"]);
     }
 }
+
+#[test]
+fn a_history_from_a_workbook_exports_as_a_plan_that_remakes_it() {
+    let (s, _) = workbooks();
+    s.ok(&[
+        "ingest",
+        "orders.xlsx",
+        "--as",
+        "orders",
+        "--sheet",
+        "Work orders",
+    ]);
+    s.ok(&[
+        "apply",
+        "orders",
+        "case",
+        "--to",
+        "upper",
+        "--columns",
+        "shop",
+        "--why",
+        "one spelling",
+    ]);
+    s.ok(&["export", "orders", "--format", "plan", "-o", "remake.json"]);
+    let plan: Value =
+        serde_json::from_str(&std::fs::read_to_string(s.path().join("remake.json")).unwrap())
+            .unwrap();
+    assert_eq!(plan["inputs"][0]["sheet"], "Work orders");
+    assert_eq!(plan["inputs"][0]["file"], "orders.xlsx");
+    let fresh = Sandbox::with_store();
+    std::fs::copy(
+        s.path().join("orders.xlsx"),
+        fresh.path().join("orders.xlsx"),
+    )
+    .unwrap();
+    std::fs::copy(
+        s.path().join("remake.json"),
+        fresh.path().join("remake.json"),
+    )
+    .unwrap();
+    fresh.ok(&["run", "remake.json"]);
+    let a = s.json(&["show", "orders", "--json"]);
+    let b = fresh.json(&["show", "orders", "--json"]);
+    assert_eq!(a["version"]["hash"], b["version"]["hash"]);
+}
