@@ -450,6 +450,83 @@ fn check_key(path: &Path, read: &Read, key: &[String], null_tokens: &[String]) -
     ))
 }
 
+/// The table in `bytes`, its header checked.
+fn read_table(
+    bytes: &[u8],
+    path: &Path,
+    format: SourceFormat,
+    sheet: Option<&str>,
+    has_header: bool,
+) -> Result<Read> {
+    let read = match format {
+        SourceFormat::Workbook(_) => {
+            from_sheet(sheets::read_sheet(bytes, path, sheet)?, has_header)
+        }
+        SourceFormat::JsonLines => from_lines(jsonl::read(bytes, path)?),
+    };
+    if read.header.is_empty() {
+        return Err(Error::input(path, None, InputProblem::NoHeader));
+    }
+    check_header(path, &read)?;
+    Ok(read)
+}
+
+/// Writes the table as a version's objects (not yet durable).
+fn write_table(
+    store: &Store,
+    read: &Read,
+    null_tokens: &[String],
+) -> Result<crate::table::write::Written> {
+    let store_io = |e: std::io::Error| Error::io(&store.dir().join("tmp"), e);
+    let mut writer =
+        CanonicalWriter::new(&store.objects, &read.header, null_tokens).map_err(store_io)?;
+    let mut fields: Vec<&[u8]> = Vec::with_capacity(read.header.len());
+    for row in &read.rows {
+        fields.clear();
+        fields.extend(row.iter().map(|c| c.as_bytes()));
+        writer.write_row(&fields).map_err(store_io)?;
+    }
+    writer.finish().map_err(store_io)
+}
+
+/// Converts the raw object of a converted intake again, as `step` recorded it (format, sheet,
+/// header, null tokens), and returns the hash of the version that gives; nothing is kept.
+pub fn convert_again(store: &Store, step: &Step, conv: &Conversion) -> Result<String> {
+    let broken = |what: String| -> Error {
+        ErrorKind::Database(format!(
+            "step {} records a conversion that {what}; run `sluice verify`",
+            step.id
+        ))
+        .into()
+    };
+    let format = match conv.format.as_str() {
+        "xlsx" => SourceFormat::Workbook(WorkbookFormat::Xlsx),
+        "ods" => SourceFormat::Workbook(WorkbookFormat::Ods),
+        "jsonl" => SourceFormat::JsonLines,
+        other => return Err(broken(format!("names an unknown format \"{other}\""))),
+    };
+    let hash = conv
+        .raw
+        .hash
+        .parse()
+        .map_err(|e: String| broken(format!("names a malformed raw object ({e})")))?;
+    let bytes = store.objects.read_all(&hash)?;
+    let here = PathBuf::from(format!("raw object {}", &conv.raw.hash));
+    let has_header = step
+        .params
+        .get("has_header")
+        .and_then(|h| h.as_bool())
+        .unwrap_or(true);
+    let null_tokens: Vec<String> = step
+        .params
+        .get("null_tokens")
+        .and_then(|n| serde_json::from_value(n.clone()).ok())
+        .unwrap_or_default();
+    let read = read_table(&bytes, &here, format, conv.sheet.as_deref(), has_header)?;
+    let written = write_table(store, &read, &null_tokens)?;
+    Ok(written.table.hash().hex())
+}
+
 /// Reads the file at `path` in `format`, stores its bytes as the raw object and writes the table
 /// read from it as the dataset's next version, without recording anything yet.
 pub fn prepare(
@@ -497,17 +574,13 @@ pub fn prepare(
     {
         return Err(Error::input(path, None, InputProblem::ChangedWhileReading));
     }
-    let read = match format {
-        SourceFormat::Workbook(_) => from_sheet(
-            sheets::read_sheet(&bytes, path, source.sheet.as_deref())?,
-            opts.has_header,
-        ),
-        SourceFormat::JsonLines => from_lines(jsonl::read(&bytes, path)?),
-    };
-    if read.header.is_empty() {
-        return Err(Error::input(path, None, InputProblem::NoHeader));
-    }
-    check_header(path, &read)?;
+    let read = read_table(
+        &bytes,
+        path,
+        format,
+        source.sheet.as_deref(),
+        opts.has_header,
+    )?;
     if let Some(key) = &opts.key {
         if key.is_empty() || key.iter().any(|c| c.is_empty()) {
             return Err(Error::usage(
@@ -520,15 +593,7 @@ pub fn prepare(
     let store_io = |e: std::io::Error| Error::io(&store.dir().join("tmp"), e);
     let mut raw = store.objects.writer().map_err(store_io)?;
     raw.write(&bytes).map_err(store_io)?;
-    let mut writer =
-        CanonicalWriter::new(&store.objects, &read.header, &opts.null_tokens).map_err(store_io)?;
-    let mut fields: Vec<&[u8]> = Vec::with_capacity(read.header.len());
-    for row in &read.rows {
-        fields.clear();
-        fields.extend(row.iter().map(|c| c.as_bytes()));
-        writer.write_row(&fields).map_err(store_io)?;
-    }
-    let written = writer.finish().map_err(store_io)?;
+    let written = write_table(store, &read, &opts.null_tokens)?;
     let table_hex = written.table.hash().hex();
     if let Some(v) = store.lineage.latest_version(&opts.dataset)? {
         if v.hash == table_hex {

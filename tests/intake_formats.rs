@@ -670,3 +670,49 @@ fn a_history_from_a_workbook_exports_as_a_plan_that_remakes_it() {
     let b = fresh.json(&["show", "orders", "--json"]);
     assert_eq!(a["version"]["hash"], b["version"]["hash"]);
 }
+
+#[test]
+fn replay_converts_the_raw_workbook_again_and_stops_at_a_damaged_one() {
+    let (s, _) = workbooks();
+    s.ok(&["ingest", "orders.ods", "--as", "shop_orders"]);
+    s.ok(&[
+        "apply",
+        "shop_orders",
+        "case",
+        "--to",
+        "upper",
+        "--columns",
+        "note",
+        "--why",
+        "one spelling",
+    ]);
+    let r = s.json(&["replay", "shop_orders", "--json"]);
+    assert_eq!(r["reproduced"], true);
+    let first = &r["steps"][0];
+    assert_eq!(first["kind"], "ingest");
+    assert_eq!(first["result"], "same");
+    assert_eq!(first["computed_hash"], first["recorded_hash"]);
+
+    // The workbook object damaged behind sluice's back: replay names it and stops.
+    let conv = ingest_step(&s, "shop_orders")["params"]["convert"].clone();
+    let hash = conv["raw"]["hash"].as_str().unwrap();
+    let p = s
+        .path()
+        .join(".sluice/objects")
+        .join(&hash[..2])
+        .join(&hash[2..]);
+    let mut bytes = std::fs::read(&p).unwrap();
+    let last = bytes.len() - 1;
+    bytes[last] ^= 0x20;
+    let mut perms = std::fs::metadata(&p).unwrap().permissions();
+    #[allow(clippy::permissions_set_readonly_false)]
+    perms.set_readonly(false);
+    std::fs::set_permissions(&p, perms).unwrap();
+    std::fs::write(&p, &bytes).unwrap();
+    let out = s.run(&["replay", "shop_orders", "--json"]);
+    assert_eq!(out.code, 1);
+    let r: Value = serde_json::from_str(&out.stdout).unwrap();
+    assert_eq!(r["steps"][0]["result"], "raw_damaged");
+    assert_contains(r["steps"][0]["detail"].as_str().unwrap(), "raw ods object");
+    assert_contains(&s.run(&["verify"]).stdout, hash);
+}
