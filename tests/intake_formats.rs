@@ -716,3 +716,27 @@ fn replay_converts_the_raw_workbook_again_and_stops_at_a_damaged_one() {
     assert_contains(r["steps"][0]["detail"].as_str().unwrap(), "raw ods object");
     assert_contains(&s.run(&["verify"]).stdout, hash);
 }
+
+#[test]
+fn dates_of_the_1904_date_system_are_read_as_that_system_counts_them() {
+    let (s, m) = workbooks();
+    s.ok(&["ingest", "mac1904.xlsx", "--as", "mac", "--sheet", "Orders"]);
+    let got: Vec<String> = rows(&s, "mac")
+        .into_iter()
+        .map(|r| r[0].1.clone())
+        .collect();
+    // Python's isoformat of the dates openpyxl wrote with its 1904 epoch.
+    assert_eq!(serde_json::to_value(&got).unwrap(), m["mac1904"]);
+    let err = s.fails(
+        2,
+        &[
+            "ingest",
+            "mac1904.xlsx",
+            "--as",
+            "empty",
+            "--sheet",
+            "Empty",
+        ],
+    );
+    assert_contains(&err, "sheet \"Empty\" holds no cell");
+}

@@ -17,6 +17,7 @@ back as the same binary64, since Python 3.1), written without exponent by the de
 dates are datetime.isoformat(). The expected stored value of an xlsx cell is the text of its
 <v> element as written in the file.
 
+  mac1904.xlsx (openpyxl) dates in the 1904 date system, and an empty sheet.
   blank_header.xlsx, repeated_header.xlsx  (openpyxl) workbooks whose header sluice refuses.
 
 Usage: make_workbooks.py OUTDIR  (prints the manifest as JSON)
@@ -279,10 +280,29 @@ def refused(out_dir):
         wb.save(os.path.join(out_dir, name))
 
 
+def mac1904(out_dir):
+    """A workbook in the 1904 date system (serial 0 is 1904-01-01) with an empty second sheet."""
+    from openpyxl import Workbook
+    from openpyxl.utils.datetime import CALENDAR_MAC_1904
+
+    wb = Workbook()
+    wb.epoch = CALENDAR_MAC_1904
+    ws = wb.active
+    ws.title = "Orders"
+    dates = [datetime.date(2026, 9, 30), datetime.date(1904, 1, 2), datetime.datetime(2026, 9, 1, 8, 5, 7)]
+    ws.cell(row=1, column=1, value="opened")
+    for i, d in enumerate(dates, start=2):
+        ws.cell(row=i, column=1, value=d)
+    wb.create_sheet("Empty")
+    wb.save(os.path.join(out_dir, "mac1904.xlsx"))
+    return [d.isoformat() for d in dates]
+
+
 def main():
     out_dir = sys.argv[1]
     refused(out_dir)
-    print(json.dumps({"xlsx": xlsx(out_dir), "ods": ods(out_dir)}, ensure_ascii=False))
+    print(json.dumps({"xlsx": xlsx(out_dir), "ods": ods(out_dir), "mac1904": mac1904(out_dir)},
+                     ensure_ascii=False))
 
 
 if __name__ == "__main__":
