@@ -66,6 +66,55 @@ pub enum InputProblem {
         total: u64,
     },
     ChangedWhileReading,
+    /// A workbook the reader cannot open or read (not a workbook, damaged, a legacy format).
+    UnreadableWorkbook {
+        detail: String,
+    },
+    /// A workbook with several sheets and no `--sheet`.
+    SheetNeeded {
+        sheets: Vec<String>,
+    },
+    NoSuchSheet {
+        wanted: String,
+        sheets: Vec<String>,
+    },
+    EmptySheet {
+        sheet: String,
+    },
+    /// Duplicate keys of a workbook, each with the sheet cells that hold it.
+    DuplicateKeysAt {
+        examples: Vec<(String, Vec<String>)>,
+        total: u64,
+    },
+    /// A problem at one cell of a workbook (`at` is a reference such as `Orders!B1`).
+    AtCell {
+        at: String,
+        problem: Box<InputProblem>,
+    },
+    /// JSON Lines: a line that is not valid JSON (the parser's message).
+    InvalidJson {
+        detail: String,
+    },
+    /// JSON Lines: a line whose value is not an object.
+    NotAnObject {
+        found: String,
+    },
+    /// JSON Lines: an array or object as a value.
+    NestedValue {
+        key: String,
+    },
+    /// JSON Lines: the same key twice in one object.
+    RepeatedKey {
+        key: String,
+    },
+}
+
+fn quoted_list(names: &[String]) -> String {
+    names
+        .iter()
+        .map(|n| format!("\"{n}\""))
+        .collect::<Vec<_>>()
+        .join(", ")
 }
 
 impl fmt::Display for InputProblem {
@@ -141,6 +190,60 @@ impl fmt::Display for InputProblem {
             ChangedWhileReading => write!(
                 f,
                 "the file changed while it was being read; take it in again once whatever writes it has finished"
+            ),
+            UnreadableWorkbook { detail } => write!(
+                f,
+                "cannot be read as a workbook ({detail}); expected an .xlsx or .ods file saved by a spreadsheet program"
+            ),
+            SheetNeeded { sheets } => write!(
+                f,
+                "the workbook has {} sheets ({}); choose one with --sheet NAME or --sheet N (1 to {})",
+                sheets.len(),
+                quoted_list(sheets),
+                sheets.len()
+            ),
+            NoSuchSheet { wanted, sheets } => write!(
+                f,
+                "no sheet \"{wanted}\"; the sheets are {} (give a name or a position, 1 to {})",
+                quoted_list(sheets),
+                sheets.len()
+            ),
+            EmptySheet { sheet } => write!(
+                f,
+                "sheet \"{sheet}\" holds no cell; expected at least a header row"
+            ),
+            DuplicateKeysAt { examples, total } => {
+                write!(
+                    f,
+                    "{total} key value{} more than once: ",
+                    if *total == 1 { " occurs" } else { "s occur" }
+                )?;
+                let shown: Vec<String> = examples
+                    .iter()
+                    .map(|(k, at)| format!("\"{k}\" ({})", at.join(", ")))
+                    .collect();
+                write!(f, "{}", shown.join("; "))?;
+                if (*total as usize) > examples.len() {
+                    write!(f, "; and {} more", *total as usize - examples.len())?;
+                }
+                write!(f, "; choose a key that is unique, or ingest without --key")
+            }
+            AtCell { at, problem } => write!(f, "cell {at}: {problem}"),
+            InvalidJson { detail } => write!(
+                f,
+                "not valid JSON ({detail}); every line must hold one JSON object"
+            ),
+            NotAnObject { found } => write!(
+                f,
+                "expected a JSON object ({{\"column\": value, ...}}), found {found}; every line must hold one object"
+            ),
+            NestedValue { key } => write!(
+                f,
+                "the value of \"{key}\" is an array or an object; only text, numbers, true, false and null can become a cell (flatten it first)"
+            ),
+            RepeatedKey { key } => write!(
+                f,
+                "the key \"{key}\" appears twice in one object; each key names one column"
             ),
         }
     }

@@ -243,9 +243,21 @@ pub fn ingest_hand_edit(
     opts: &IngestOptions,
     from: &str,
 ) -> Result<HandEditOutcome> {
+    ingest_hand_edit_from(store, path, opts, &intake::SourceOptions::default(), from)
+}
+
+/// [`ingest_hand_edit`] with the options of formats other than delimited text (a workbook's
+/// sheet).
+pub fn ingest_hand_edit_from(
+    store: &mut Store,
+    path: &Path,
+    opts: &IngestOptions,
+    source: &intake::SourceOptions,
+    from: &str,
+) -> Result<HandEditOutcome> {
     let base = refs::resolve(&store.lineage, from)?;
     let started_at = crate::clock::now_rfc3339();
-    let prepared = match intake::prepare(store, path, opts)? {
+    let prepared = match intake::prepare_from(store, path, opts, source)? {
         Prepared::Unchanged(version) => return Ok(HandEditOutcome::Unchanged { version }),
         Prepared::Ready(p) => p,
     };

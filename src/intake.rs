@@ -108,10 +108,39 @@ fn store_io(store_dir: &Path, e: std::io::Error) -> Error {
     Error::io(&store_dir.join("tmp"), e)
 }
 
+/// How to read a file that is not delimited text: which sheet of a workbook. The format itself
+/// is told by the file name's extension (see [`crate::convert::SourceFormat::of`]).
+#[derive(Debug, Clone, Default)]
+pub struct SourceOptions {
+    /// A sheet's name or 1-based position; default: the only sheet.
+    pub sheet: Option<String>,
+}
+
 /// Reads, checks and stores the file at `path` as the next version of `opts.dataset`, without
 /// recording it yet (see [`PreparedIngest::commit`]).
 pub fn prepare(store: &Store, path: &Path, opts: &IngestOptions) -> Result<Prepared> {
+    prepare_from(store, path, opts, &SourceOptions::default())
+}
+
+/// [`prepare`], for any format sluice reads: delimited text is stored as it is; a workbook or a
+/// JSON Lines file is stored as a raw object and converted into a canonical CSV version (see
+/// [`crate::convert`]).
+pub fn prepare_from(
+    store: &Store,
+    path: &Path,
+    opts: &IngestOptions,
+    source: &SourceOptions,
+) -> Result<Prepared> {
     validate_dataset_name(&opts.dataset)?;
+    if let Some(format) = crate::convert::SourceFormat::of(path) {
+        return crate::convert::prepare(store, path, opts, source, format);
+    }
+    if source.sheet.is_some() {
+        return Err(Error::usage(format!(
+            "--sheet is for workbooks (.xlsx, .xlsm, .ods); {} is read as delimited text",
+            path.display()
+        )));
+    }
     let encoding = match &opts.encoding {
         Some(label) => Some(encoding_for(label)?),
         None => None,
@@ -195,6 +224,8 @@ pub fn prepare(store: &Store, path: &Path, opts: &IngestOptions) -> Result<Prepa
         index_hex: scan.row_index.hash().hex(),
         index_bytes: scan.row_index.n_bytes(),
         objects: Some((read_side.table, scan.row_index)),
+        raw: None,
+        raw_object: None,
         n_rows: scan.n_rows,
         header: scan.header,
         dialect: scan.dialect,
@@ -205,7 +236,17 @@ pub fn prepare(store: &Store, path: &Path, opts: &IngestOptions) -> Result<Prepa
 
 /// Records the file at `path` as a new version of `opts.dataset`.
 pub fn ingest(store: &mut Store, path: &Path, opts: &IngestOptions) -> Result<IngestOutcome> {
-    let mut ready = match prepare(store, path, opts)? {
+    ingest_from(store, path, opts, &SourceOptions::default())
+}
+
+/// [`ingest`] with the options of formats other than delimited text.
+pub fn ingest_from(
+    store: &mut Store,
+    path: &Path,
+    opts: &IngestOptions,
+    source: &SourceOptions,
+) -> Result<IngestOutcome> {
+    let mut ready = match prepare_from(store, path, opts, source)? {
         Prepared::Unchanged(version) => return Ok(IngestOutcome::Unchanged { version: *version }),
         Prepared::Ready(p) => p,
     };
@@ -241,6 +282,10 @@ pub struct PreparedIngest {
     path: PathBuf,
     /// The table and row index objects, persisted by `commit`.
     objects: Option<(ObjectWriter, ObjectWriter)>,
+    /// A converted intake's raw object (the workbook or JSON Lines bytes, kind `blob`), and
+    /// its hash and size.
+    raw: Option<ObjectWriter>,
+    raw_object: Option<(String, u64)>,
     started_at: String,
     ended_at: String,
     source: SourceFile,
@@ -334,7 +379,47 @@ impl PreparedIngest {
         })
     }
 
+    /// A converted intake (see [`crate::convert`]): the raw object, the version written from
+    /// the table read out of it, and the step's parameters.
+    #[allow(clippy::too_many_arguments)]
+    pub(crate) fn converted(
+        opts: &IngestOptions,
+        path: &Path,
+        started_at: String,
+        source: SourceFile,
+        params: serde_json::Value,
+        raw: ObjectWriter,
+        written: crate::table::write::Written,
+        header: Vec<String>,
+        warnings: Vec<String>,
+    ) -> PreparedIngest {
+        let raw_object = Some((raw.hash().hex(), raw.n_bytes()));
+        PreparedIngest {
+            opts: opts.clone(),
+            path: path.to_path_buf(),
+            started_at,
+            ended_at: clock::now_rfc3339(),
+            source,
+            params,
+            table_hex: written.table.hash().hex(),
+            n_bytes: written.table.n_bytes(),
+            index_hex: written.index.hash().hex(),
+            index_bytes: written.index.n_bytes(),
+            n_rows: written.n_rows,
+            objects: Some((written.table, written.index)),
+            raw: Some(raw),
+            raw_object,
+            header,
+            dialect: crate::table::write::canonical_dialect(),
+            profiles: written.profiles,
+            warnings,
+        }
+    }
+
     fn persist(&mut self, store_dir: &Path) -> Result<()> {
+        if let Some(raw) = self.raw.take() {
+            raw.finish().map_err(|e| store_io(store_dir, e))?;
+        }
         if let Some((table, index)) = self.objects.take() {
             table.finish().map_err(|e| store_io(store_dir, e))?;
             index.finish().map_err(|e| store_io(store_dir, e))?;
@@ -369,6 +454,9 @@ impl PreparedIngest {
         }
         if let Some((hash, n)) = succession.and_then(|s| s.provenance) {
             tx.insert_object(hash, n, "blob", &self.ended_at)?;
+        }
+        if let Some((hash, n)) = &self.raw_object {
+            tx.insert_object(hash, *n, "blob", &self.ended_at)?;
         }
         let step_id = tx.insert_step(&NewStep {
             kind: succession.map_or(StepKind::Ingest, |s| s.kind),
@@ -411,6 +499,9 @@ impl PreparedIngest {
             "n_rows": self.n_rows,
             "n_bytes": self.n_bytes,
         });
+        if let (Some((hash, _)), Some(map)) = (&self.raw_object, details.as_object_mut()) {
+            map.insert("raw_object".into(), json!(hash));
+        }
         if let Some(s) = succession {
             tx.insert_column_sources(step_id, version_id, s.inputs[0].0, &s.column_sources)?;
             if let Some(map) = details.as_object_mut() {

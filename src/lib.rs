@@ -4,16 +4,18 @@
 //! in a lineage graph held in SQLite, so that any cleaned value can be traced back to the raw
 //! line it came from. The flow runs one way:
 //!
-//! - read: [`table`] detects, decodes, parses and profiles delimited text;
+//! - read: [`table`] detects, decodes, parses and profiles delimited text; [`sheets`] reads
+//!   workbooks and [`jsonl`] JSON Lines;
 //! - operate: [`ops`] holds the built-in cleaning operations and records them; [`plan`] runs
 //!   and exports lists of them; [`checks`] evaluates declared rules;
-//! - record: [`intake`] takes outside files in; [`exec`] runs outside commands and, with
+//! - record: [`intake`] takes outside files in ([`convert`] those that are not delimited text); [`exec`] runs outside commands and, with
 //!   [`inferred`], records their outputs and hand edits with lineage inferred by a diff;
 //!   [`store`] keeps objects and the lineage database (the only module that touches SQLite);
 //!   [`provenance`] keeps each step's row map, changed cells and drops compactly;
 //! - query: [`history`] (log, show), [`diff`], [`trace`] (where a value came from),
 //!   [`explain`] (why a total is what it is), [`graph`] (impact, drawings), [`replay`],
-//!   [`verify`], [`refs`] (version references).
+//!   [`verify`], [`refs`] (version references); [`export`] writes a version as CSV, TSV or
+//!   JSON Lines.
 //!
 //! The engine never prints: it returns values and typed [`Error`]s, and the binary renders them.
 //!
@@ -38,16 +40,19 @@ pub mod agent;
 pub mod checks;
 pub mod clock;
 pub mod code;
+pub mod convert;
 pub mod demo;
 pub mod diff;
 pub mod error;
 pub mod exec;
 pub mod explain;
+pub mod export;
 pub mod graph;
 pub mod hash;
 pub mod history;
 pub mod inferred;
 pub mod intake;
+pub mod jsonl;
 pub mod model;
 pub mod ops;
 pub mod plan;
@@ -57,6 +62,7 @@ pub mod refs;
 pub mod replay;
 pub mod report;
 pub mod revert;
+pub mod sheets;
 pub mod store;
 pub mod table;
 pub mod trace;

@@ -70,6 +70,10 @@ pub struct PlanInput {
     /// Values that count as blank.
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub null_tokens: Vec<String>,
+    /// For a workbook: the sheet to take in, by name or 1-based position (default: the only
+    /// sheet).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub sheet: Option<String>,
     /// The BLAKE3 hash of the raw version the plan was exported from. Informational: a run on
     /// other data (next quarter's export) is the point of a plan; the run says when it differs.
     #[serde(default, skip_serializing_if = "Option::is_none")]
@@ -341,7 +345,10 @@ pub fn run(
                     null_tokens: input.null_tokens.clone(),
                     agent: opts.agent.clone(),
                 };
-                match intake::ingest(store, &path, &iopts) {
+                let source = intake::SourceOptions {
+                    sheet: input.sheet.clone(),
+                };
+                match intake::ingest_from(store, &path, &iopts, &source) {
                     Ok(outcome) => {
                         let v = match &outcome {
                             IngestOutcome::Recorded { version, .. }
@@ -767,6 +774,10 @@ fn input_of(step: &crate::model::Step, v: &Version, base_dir: &Path) -> PlanInpu
         header: v.dialect.has_header,
         encoding: Some(v.dialect.encoding.clone()).filter(|e| e != "utf-8"),
         null_tokens: strings("null_tokens").unwrap_or_default(),
+        sheet: p
+            .pointer("/convert/sheet")
+            .and_then(|x| x.as_str())
+            .map(str::to_string),
         hash: Some(v.hash.clone()),
         recorded: Some(v.label()),
     }

@@ -96,8 +96,21 @@ pub struct Origin {
     pub column: String,
     /// The cell as it is in the raw file (decoded, without quotes).
     pub raw_value: String,
-    /// The whole record as it is in the file (lossy when it is not UTF-8 text).
+    /// The whole record as it is in the file (lossy when it is not UTF-8 text); for a
+    /// workbook, the row as the first version holds it (canonical CSV).
     pub raw_line: String,
+    /// What the raw file is: `csv` (delimited text), `xlsx`, `ods` or `jsonl`.
+    pub format: String,
+    /// A converted file (workbook, JSON Lines): the hash of its raw object, and `value`, the
+    /// cell as the first version holds it after the conversion (`raw_value` is the file's).
+    pub raw_object: Option<String>,
+    pub converted_value: Option<String>,
+    /// Workbooks: the sheet and cell (`Orders!C7`), what the cell holds (number, date, text,
+    /// boolean, blank, error) and its formula, whose cached result was taken in. `line` is then
+    /// the sheet row.
+    pub cell: Option<String>,
+    pub stored_kind: Option<String>,
+    pub formula: Option<String>,
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -555,6 +568,29 @@ fn origin(
     while end > 0 && matches!(bytes[end - 1], b'\n' | b'\r') {
         end -= 1;
     }
+    if let Some(conv) = crate::convert::conversion_of(step) {
+        let place = crate::convert::locate(store, &conv, &v.header, r, column)?;
+        return Ok(Origin {
+            version: v.label(),
+            hash: v.hash.clone(),
+            path: step.source.as_ref().map(|s| s.path.clone()),
+            absolute_path: step.source.as_ref().map(|s| s.absolute_path.clone()),
+            taken_in_at: step.ended_at.clone(),
+            agent: step.agent.clone(),
+            line: place.line,
+            column: column.to_string(),
+            raw_value: place.stored,
+            raw_line: place
+                .raw_line
+                .unwrap_or_else(|| String::from_utf8_lossy(&bytes[..end]).into_owned()),
+            format: place.format,
+            raw_object: Some(place.raw_hash),
+            converted_value: Some(raw_value),
+            cell: place.cell,
+            stored_kind: Some(place.stored_kind),
+            formula: place.formula,
+        });
+    }
     Ok(Origin {
         version: v.label(),
         hash: v.hash.clone(),
@@ -566,6 +602,12 @@ fn origin(
         column: column.to_string(),
         raw_value,
         raw_line: decode(v, &bytes[..end]),
+        format: "csv".into(),
+        raw_object: None,
+        converted_value: None,
+        cell: None,
+        stored_kind: None,
+        formula: None,
     })
 }
 

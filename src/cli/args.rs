@@ -257,9 +257,9 @@ pub enum Command {
         json: bool,
     },
 
-    /// Write a version's exact bytes to standard output or a file
+    /// Write a version's exact bytes (or its rows as CSV, TSV or JSON Lines) to standard output or a file
     #[command(
-        after_help = "Examples:\n  sluice cat quillby_orders@1 > q3-as-received.csv\n  sluice cat 5f3a9c -o q3.csv"
+        after_help = "Examples:\n  sluice cat quillby_orders@1 > q3-as-received.csv\n  sluice cat 5f3a9c -o q3.csv\n  sluice cat all_orders --format jsonl -o all_orders.jsonl"
     )]
     Cat {
         /// The version: NAME (latest), NAME@N (N-th version) or a hash prefix (6+ hex digits)
@@ -267,6 +267,10 @@ pub enum Command {
         /// Write to this file instead of standard output
         #[arg(short = 'o', long = "output", value_name = "FILE")]
         output: Option<PathBuf>,
+        /// Write the rows as csv (canonical CSV), tsv (tab-separated) or jsonl (JSON Lines)
+        /// instead of the stored bytes
+        #[arg(long, value_name = "FORMAT")]
+        format: Option<CatFormat>,
     },
 
     /// List the steps of the store or of one dataset, newest first
@@ -334,9 +338,18 @@ pub enum Command {
     },
 }
 
+/// The formats `cat --format` writes.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+pub enum CatFormat {
+    Csv,
+    Tsv,
+    Jsonl,
+}
+
 #[derive(Debug, Args)]
 pub struct IngestArgs {
-    /// The file to take in (delimited text: comma, semicolon, tab or pipe)
+    /// The file to take in: delimited text (comma, semicolon, tab or pipe), a workbook (.xlsx,
+    /// .xlsm, .ods) or JSON Lines (.jsonl, .ndjson)
     pub file: PathBuf,
 
     /// The dataset this file is a version of (created if new)
@@ -368,6 +381,11 @@ pub struct IngestArgs {
     /// A value that means "missing" (counted as blank in the profile); repeat for several
     #[arg(long = "null-token", value_name = "T")]
     pub null_tokens: Vec<String>,
+
+    /// For a workbook (.xlsx, .xlsm, .ods): the sheet to take in, by name or 1-based position
+    /// (default: the only sheet)
+    #[arg(long, value_name = "NAME|N")]
+    pub sheet: Option<String>,
 
     /// The file is a hand-edited successor of this version (NAME, NAME@N or a hash prefix):
     /// record it as a hand edit, its row lineage inferred by a diff

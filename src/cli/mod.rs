@@ -13,8 +13,8 @@ use std::path::{Path, PathBuf};
 use anyhow::{anyhow, Context};
 
 use args::{
-    ApplyArgs, CaseArg, Cli, Command, ExecArgs, IngestArgs, KeepArg, OnErrorArg, OpCommand,
-    OrderArg,
+    ApplyArgs, CaseArg, CatFormat, Cli, Command, ExecArgs, IngestArgs, KeepArg, OnErrorArg,
+    OpCommand, OrderArg,
 };
 use sluice::intake::{self, IngestOptions, IngestOutcome};
 use sluice::model::Agent;
@@ -75,7 +75,11 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
                     "a hand edit needs a reason: add --why TEXT (what was changed by hand, and why)"
                 ));
             }
-            let outcome = sluice::inferred::ingest_hand_edit(&mut store, &a.file, &opts, from)?;
+            let source = intake::SourceOptions {
+                sheet: a.sheet.clone(),
+            };
+            let outcome =
+                sluice::inferred::ingest_hand_edit_from(&mut store, &a.file, &opts, &source, from)?;
             render::hand_edit_outcome(&mut out, &a.file, &outcome)?;
             if let sluice::inferred::HandEditOutcome::Recorded { warnings, .. } = &outcome {
                 for w in warnings {
@@ -108,7 +112,10 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Ingest(a) => {
             let mut store = open_store(&cli, &cwd)?;
             let opts = ingest_options(a, resolve_agent(&cli, &cwd))?;
-            let outcome = intake::ingest(&mut store, &a.file, &opts)?;
+            let source = intake::SourceOptions {
+                sheet: a.sheet.clone(),
+            };
+            let outcome = intake::ingest_from(&mut store, &a.file, &opts, &source)?;
             render::ingest_outcome(&mut out, &a.file, &outcome)?;
             if let IngestOutcome::Recorded { warnings, .. } = &outcome {
                 for w in warnings {
@@ -465,7 +472,33 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
                 sluice::revert::RevertOutcome::Refused { .. } => 1,
             })
         }
-        Command::Cat { reference, output } => {
+        Command::Cat {
+            reference,
+            output,
+            format: Some(format),
+        } => {
+            let store = open_store(&cli, &cwd)?;
+            let version = refs::resolve(&store.lineage, reference)?;
+            let format = match format {
+                CatFormat::Csv => sluice::export::TextFormat::Csv,
+                CatFormat::Tsv => sluice::export::TextFormat::Tsv,
+                CatFormat::Jsonl => sluice::export::TextFormat::Jsonl,
+            };
+            match output {
+                None => {
+                    sluice::export::write_as(&store, &version, format, &mut out)?;
+                    out.flush()?;
+                }
+                Some(path) => write_file_atomically(path, |f| {
+                    sluice::export::write_as(&store, &version, format, f)?;
+                    Ok(())
+                })?,
+            }
+            Ok(0)
+        }
+        Command::Cat {
+            reference, output, ..
+        } => {
             let store = open_store(&cli, &cwd)?;
             let version = refs::resolve(&store.lineage, reference)?;
             let hash = version.hash.parse().map_err(|e| {

@@ -426,6 +426,9 @@ pub fn log(out: &mut impl Write, entries: &[LogEntry]) -> io::Result<()> {
         if let Some(src) = &e.step.source {
             writeln!(out, "  from  {}", src.path)?;
         }
+        if let Some(c) = conversion_line(&e.step) {
+            writeln!(out, "  conv  {c}")?;
+        }
         if let Some(code) = &e.step.code {
             code_lines(out, code, "  ", 6)?;
         }
@@ -494,6 +497,9 @@ pub fn show(out: &mut impl Write, d: &VersionDetail) -> io::Result<()> {
                 plural(src.n_bytes, "byte", "bytes"),
                 src.modified.as_deref().unwrap_or("unknown")
             )?;
+        }
+        if let Some(c) = conversion_line(s) {
+            writeln!(out, "  converted    {c}")?;
         }
         if let Some(code) = &s.code {
             code_lines(out, code, "  ", 13)?;
@@ -944,23 +950,74 @@ fn trail_body(out: &mut impl Write, t: &Trail, pad: &str) -> io::Result<()> {
     }
     match &t.end {
         End::Raw(o) => {
+            let raw_hash = o.raw_object.as_deref().unwrap_or(&o.hash);
             writeln!(
                 out,
-                "{pad}raw     {} ({}), taken in {} by {}",
+                "{pad}raw     {} ({}{}), taken in {} by {}",
                 o.path.as_deref().unwrap_or("(no path recorded)"),
-                &o.hash[..12],
+                &raw_hash[..12.min(raw_hash.len())],
+                match o.format.as_str() {
+                    "csv" => "",
+                    "jsonl" => ", JSON Lines",
+                    "ods" => ", OpenDocument spreadsheet",
+                    _ => ", Office Open XML workbook",
+                },
                 o.taken_in_at,
                 o.agent
             )?;
-            writeln!(
-                out,
-                "{pad}        {} line {}, column {}: {}",
-                o.version,
-                o.line,
-                o.column,
-                shown(&o.raw_value)
-            )?;
-            writeln!(out, "{pad}        {}", o.raw_line)?;
+            match (&o.cell, &o.raw_object) {
+                (Some(cell), Some(_)) => {
+                    writeln!(
+                        out,
+                        "{pad}        cell {cell} ({}): {}{}",
+                        o.stored_kind.as_deref().unwrap_or("cell"),
+                        shown(&o.raw_value),
+                        o.formula
+                            .as_deref()
+                            .map(|f| format!(", the saved result of ={f}"))
+                            .unwrap_or_default()
+                    )?;
+                    writeln!(
+                        out,
+                        "{pad}        taken in as {} column {}: {}",
+                        o.version,
+                        o.column,
+                        shown(o.converted_value.as_deref().unwrap_or_default())
+                    )?;
+                }
+                (None, Some(_)) => {
+                    writeln!(
+                        out,
+                        "{pad}        line {}, key {}: {}",
+                        o.line,
+                        o.column,
+                        if o.stored_kind.as_deref() == Some("missing") {
+                            "(no such key on this line)".to_string()
+                        } else {
+                            o.raw_value.clone()
+                        }
+                    )?;
+                    writeln!(out, "{pad}        {}", o.raw_line)?;
+                    writeln!(
+                        out,
+                        "{pad}        taken in as {} column {}: {}",
+                        o.version,
+                        o.column,
+                        shown(o.converted_value.as_deref().unwrap_or_default())
+                    )?;
+                }
+                _ => {
+                    writeln!(
+                        out,
+                        "{pad}        {} line {}, column {}: {}",
+                        o.version,
+                        o.line,
+                        o.column,
+                        shown(&o.raw_value)
+                    )?;
+                    writeln!(out, "{pad}        {}", o.raw_line)?;
+                }
+            }
         }
         End::Made {
             version,
@@ -1327,6 +1384,42 @@ fn ingest_outcome_short(out: &mut impl Write, o: &IngestOutcome) -> io::Result<(
             writeln!(out, "unchanged ({})", version.label())
         }
     }
+}
+
+/// What an intake converted, for `log` and `show`: the format, the sheet, the raw object and
+/// the formulas and error values taken in.
+fn conversion_line(step: &sluice::model::Step) -> Option<String> {
+    let c = step.params.get("convert")?;
+    let raw = c.pointer("/raw/hash")?.as_str()?;
+    let format = c.get("format")?.as_str()?;
+    let mut text = match c.get("sheet").and_then(|s| s.as_str()) {
+        Some(sheet) => format!("{format} sheet \"{sheet}\""),
+        None => "JSON Lines".to_string(),
+    };
+    text.push_str(&format!(
+        " into canonical CSV; raw object {}",
+        &raw[..12.min(raw.len())]
+    ));
+    let count = |key: &str| {
+        c.get(key)
+            .and_then(|v| v.as_array())
+            .map_or(0, |a| a.len() as u64)
+    };
+    let formulas = count("formulas");
+    if formulas > 0 {
+        text.push_str(&format!(
+            ", {} (saved results taken in)",
+            plural(formulas, "formula", "formulas")
+        ));
+    }
+    let errors = count("errors");
+    if errors > 0 {
+        text.push_str(&format!(
+            ", {}",
+            plural(errors, "error value", "error values")
+        ));
+    }
+    Some(text)
 }
 
 #[cfg(test)]
