@@ -403,24 +403,47 @@ fn an_outside_command_runs_again_from_its_recorded_commit_only_with_allow_exec()
         "{orders}",
         "{out:orders}",
     ]);
-    // A second command names its output relative to the working directory, literally.
-    s.file("tag.py", "import sys\nrows = open(sys.argv[1]).read().splitlines()\nopen('out/tagged.csv', 'w').write('\\n'.join([rows[0] + ',shop'] + [r + ',Quillby' for r in rows[1:]]) + '\\n')\n");
-    std::fs::create_dir_all(dir.join("out")).unwrap();
-    git(dir, &["add", "tag.py"]);
+    // A second command names its output relative to the working directory, literally, and
+    // runs from a subfolder: an executable shell script that calls its helper through a
+    // symbolic link (so the checkout must keep the mode and the link).
+    s.file(
+        "tools/tag.sh",
+        "#!/bin/sh\nmkdir -p out\nexec python3 helper.py \"$1\"\n",
+    );
+    s.file(
+        "tools/tag_impl.py",
+        "import sys\nrows = open(sys.argv[1]).read().splitlines()\nopen('out/tagged.csv', 'w').write('\\n'.join([rows[0] + ',shop'] + [r + ',Quillby' for r in rows[1:]]) + '\\n')\n",
+    );
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::PermissionsExt;
+        std::fs::set_permissions(
+            dir.join("tools/tag.sh"),
+            std::fs::Permissions::from_mode(0o755),
+        )
+        .unwrap();
+        std::os::unix::fs::symlink("tag_impl.py", dir.join("tools/helper.py")).unwrap();
+    }
+    git(dir, &["add", "tools"]);
     git(dir, &["commit", "-q", "-m", "tagging script"]);
-    s.ok(&[
-        "exec",
-        "--input",
-        "orders",
-        "--output",
-        "orders=out/tagged.csv",
-        "--why",
-        "the shop",
-        "--",
-        "python3",
-        "tag.py",
-        "{orders}",
-    ]);
+    let tools = s.path().join("tools");
+    let r = s
+        .command(&[
+            "exec",
+            "--input",
+            "orders",
+            "--output",
+            "orders=out/tagged.csv",
+            "--why",
+            "the shop",
+            "--",
+            "./tag.sh",
+            "{orders}",
+        ])
+        .current_dir(&tools)
+        .output()
+        .unwrap();
+    assert!(r.status.success(), "{}", String::from_utf8_lossy(&r.stderr));
     let recorded = hash_of(&s, "orders@2");
     assert_eq!(runs_log(&s), "v1\n");
 
