@@ -251,7 +251,17 @@ pub(super) fn rerun(store: &Store, step: &Step, outputs: &[Version]) -> Result<R
             .parse()
             .map_err(|e: String| Error::from(ErrorKind::Database(e)))?;
         let mut f = fs::File::create(&path).map_err(|e| Error::io(&path, e))?;
-        store.objects.copy_to(&hash, &mut f)?;
+        if let Err(e) = store.objects.copy_to(&hash, &mut f) {
+            return Ok(Rerun::stop(
+                "failed",
+                format!(
+                    "input {} ({}) cannot be given to the command: {e}",
+                    i.name,
+                    &i.hash[..12.min(i.hash.len())]
+                ),
+                warnings,
+            ));
+        }
         files.push((i.name.clone(), path));
     }
     // The outputs, redirected into the temporary folder.
