@@ -1947,7 +1947,7 @@ fn replay_size(ctx: &Ctx, n: u64) -> Result<(Value, bool)> {
             samples: run,
         },
         Row {
-            tool: "sluice replay (same plan, hashes checked)",
+            tool: "sluice replay (hashes checked)",
             key: "sluice_replay",
             samples: replay,
         },
@@ -1955,6 +1955,8 @@ fn replay_size(ctx: &Ctx, n: u64) -> Result<(Value, bool)> {
     print_table(&rows, bytes);
     println!("  replay checked {steps_checked} steps (the intake and every step of the plan) and reproduced them");
     let overhead = rows[1].median_secs() / rows[0].median_secs() - 1.0;
+    let cpu_ratio = rows[1].median_cpu_secs() / rows[0].median_cpu_secs();
+    println!("  replay CPU time / plain run CPU time = {cpu_ratio:.2} (moves less with the machine's load than the wall time)");
     let goals = vec![Goal {
         label: "replay time / plain run time - 1".into(),
         value: overhead,
@@ -1978,6 +1980,7 @@ fn replay_size(ctx: &Ctx, n: u64) -> Result<(Value, bool)> {
             "tools": tools,
             "steps_checked": steps_checked,
             "overhead": overhead,
+            "cpu_ratio": cpu_ratio,
             "background_load_cores": background,
             "max_other_processes_cores": rows.iter().filter_map(Row::others_cores).reduce(f64::max),
             "goals": goals.iter().map(Goal::json).collect::<Vec<_>>(),

@@ -1,5 +1,13 @@
 //! `sluice replay`: a version computed again from its raw ancestors, every step checked against
-//! the bytes it recorded; missing intermediate objects restored; differences named.
+//! the bytes it recorded; missing intermediate objects restored; differences named and
+//! summarised; hand edits re-applied; outside commands run again only with `--allow-exec`.
+//!
+//! Outside references: the repositories are made by the `git` program itself, and what replay
+//! must leave alone is read back with it (`git status --porcelain --ignored`, `git rev-parse
+//! HEAD`); the scripts are run by `python3` and `sh`, and each one's own record of its runs
+//! (a log file outside the store) says whether and which version ran. The demo's version
+//! hashes in `tests/golden/demo_versions.txt` were recorded by this build: they hold the
+//! output fixed across checkouts and machines, they are not an outside truth.
 
 mod common;
 
