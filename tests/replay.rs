@@ -760,3 +760,107 @@ fn the_demo_plan_gives_the_same_hashes_in_fresh_stores_and_matches_the_golden_fi
         std::fs::read_to_string(golden).expect("golden file (run with SLUICE_BLESS=1 once)");
     assert_eq!(expected, actual, "the demo's version hashes changed");
 }
+
+#[test]
+fn a_hand_edit_whose_recorded_lineage_does_not_explain_it_is_named_with_the_cells() {
+    // Two copies of one export, each edited by hand in a different cell.
+    let s = Sandbox::with_store();
+    let export =
+        "order_id,technician,status\n41001,Ines,done\n41002,Tobiah,done\n41003,Caspar,done\n";
+    for name in ["orders", "copy"] {
+        s.file(&format!("{name}.csv"), export);
+        s.ok(&["ingest", &format!("{name}.csv"), "--as", name]);
+    }
+    s.file(
+        "orders_edited.csv",
+        export.replace("41001,Ines", "41001,Inès"),
+    );
+    s.ok(&[
+        "ingest",
+        "orders_edited.csv",
+        "--as",
+        "orders",
+        "--from",
+        "orders@1",
+        "--why",
+        "accent",
+    ]);
+    s.file(
+        "copy_edited.csv",
+        export.replace("41003,Caspar,done", "41003,Caspar,open"),
+    );
+    s.ok(&[
+        "ingest",
+        "copy_edited.csv",
+        "--as",
+        "copy",
+        "--from",
+        "copy@1",
+        "--why",
+        "reopened",
+    ]);
+    let out = s.run(&["replay", "orders"]);
+    assert_eq!(out.code, 0, "{}", out.stdout);
+    assert_contains(&out.stdout, "re-applied from its recorded lineage");
+
+    // The two edits' provenance swapped behind sluice's back: each object is well formed, but
+    // the orders edit now claims the other edit's cell.
+    let db = rusqlite::Connection::open(s.path().join(".sluice/lineage.db")).unwrap();
+    let n = db
+        .execute(
+            "UPDATE steps SET provenance = (SELECT group_concat(provenance) FROM steps AS o
+               WHERE o.kind = 'hand_edit' AND o.id <> steps.id)
+             WHERE kind = 'hand_edit'",
+            [],
+        )
+        .unwrap();
+    assert_eq!(n, 2);
+    drop(db);
+    let r = s.run(&["replay", "orders", "--json"]);
+    assert_eq!(r.code, 1);
+    let report: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
+    let last = report["steps"].as_array().unwrap().last().unwrap().clone();
+    assert_eq!(last["kind"], "hand_edit");
+    assert_eq!(last["result"], "differs");
+    assert_contains(
+        last["detail"].as_str().unwrap(),
+        "the recorded lineage does not explain the edit",
+    );
+    let d = &last["difference"];
+    assert_eq!(d["rows_changed"], 2);
+    let cells: Vec<(u64, String, String, String)> = d["examples"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .flat_map(|e| {
+            let row = e["recorded_row"].as_u64().unwrap();
+            e["cells"]
+                .as_array()
+                .unwrap()
+                .iter()
+                .map(move |c| {
+                    (
+                        row,
+                        c["column"].as_str().unwrap().to_string(),
+                        c["recorded"].as_str().unwrap().to_string(),
+                        c["computed"].as_str().unwrap().to_string(),
+                    )
+                })
+                .collect::<Vec<_>>()
+        })
+        .collect();
+    assert_eq!(
+        cells,
+        vec![
+            // Changed by hand, but not listed: the input's value does not give the output's.
+            (1, "technician".into(), "Inès".into(), "Ines".into()),
+            // Listed as changed, but the output holds the input's value.
+            (
+                3,
+                "status".into(),
+                "done".into(),
+                "done (listed as changed, but unchanged)".into()
+            ),
+        ]
+    );
+}
