@@ -199,13 +199,15 @@ pub enum Command {
     },
 
     /// Compute a version again from its raw ancestors and check every step gives its recorded bytes
-    #[command(after_help = "Example:\n  sluice replay q3_by_shop\n\n\
+    #[command(
+        after_help = "Examples:\n  sluice replay q3_by_shop\n  sluice replay reviewed_orders --allow-exec\n\n\
         Built-in steps are run again on their recorded inputs (nothing is recorded); an intermediate object \
         missing from the store is restored when the recomputed bytes have its hash. Hand edits are re-applied \
         from their recorded row map, changed cells and dropped rows. Outside commands run again only with \
         --allow-exec, each in a temporary checkout of its recorded commit; without it nothing recorded in the \
         store is executed. The first step whose output differs stops the replay with a summary of the \
-        difference. Exit code 0 when every step was shown to give its recorded bytes, 1 otherwise.")]
+        difference. Exit code 0 when every step was shown to give its recorded bytes, 1 otherwise."
+    )]
     Replay {
         /// The version: NAME (latest), NAME@N or a hash prefix
         reference: String,
