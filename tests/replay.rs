@@ -490,7 +490,11 @@ fn an_outside_command_runs_again_from_its_recorded_commit_only_with_allow_exec()
         &out,
         &format!("reproduced orders@3 ({})", &hash_of(&s, "orders@3")[..12]),
     );
-    let report = s.json(&["replay", "orders", "--allow-exec", "--json"]);
+    // With --json the list goes to standard error, so that standard output is one document.
+    let r = s.run(&["replay", "orders", "--allow-exec", "--json"]);
+    assert_eq!(r.code, 0);
+    assert_contains(&r.stderr, "replay will run 2 outside commands");
+    let report: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
     assert_eq!(report["reproduced"], true);
     let steps = report["steps"].as_array().unwrap();
     assert_eq!(steps[1]["result"], "same");
