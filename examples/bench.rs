@@ -187,6 +187,8 @@ enum Bench {
     Ops,
     /// `sluice trace` and `sluice explain` over a history of 20 steps, at three sizes
     Trace,
+    /// `sluice replay` of the ops benchmark's plan against a plain `sluice run` of it
+    Replay,
 }
 
 impl Bench {
@@ -196,6 +198,7 @@ impl Bench {
             Bench::Diff => "diff",
             Bench::Ops => "ops",
             Bench::Trace => "trace",
+            Bench::Replay => "replay",
         }
     }
 
@@ -206,6 +209,7 @@ impl Bench {
             Bench::Diff => DIFF_ROWS,
             Bench::Ops => OPS_ROWS,
             Bench::Trace => TRACE_ROWS,
+            Bench::Replay => OPS_ROWS,
         }
     }
 }
@@ -264,6 +268,7 @@ fn run_bench(bench: Bench, ctx: &Ctx) -> Result<()> {
         Bench::Diff => diff(ctx)?,
         Bench::Ops => ops(ctx)?,
         Bench::Trace => trace_bench(ctx)?,
+        Bench::Replay => replay_bench(ctx)?,
     };
     fs::create_dir_all(&ctx.results_dir)
         .with_context(|| format!("creating {}", ctx.results_dir.display()))?;
@@ -1842,6 +1847,147 @@ fn ops_plan(file: &Path) -> Value {
                 "as": "totals", "why": "parts cost per technician"},
         ],
     })
+}
+
+// ---------------------------------------------------------------------------------------------
+// The replay benchmark
+
+/// Replay may cost this much more than the plain run it checks (a fraction).
+const REPLAY_OVERHEAD: f64 = 0.10;
+
+fn replay_bench(ctx: &Ctx) -> Result<Value> {
+    println!("== replay: `sluice replay totals` (every step computed again, every hash checked) vs a plain `sluice run` of the same plan ==");
+    println!("   the ops benchmark's plan and data: trim, case, dedupe, number, drop, summarize");
+    let mut sizes = Vec::new();
+    let mut all_pass = true;
+    for n in ctx.rows_for(Bench::Replay) {
+        let (size, pass) = replay_size(ctx, n)?;
+        sizes.push(size);
+        all_pass &= pass;
+    }
+    println!(
+        "replay: {}",
+        if all_pass {
+            "all goals met"
+        } else {
+            "some goals missed"
+        }
+    );
+    Ok(json!({
+        "benchmark": "replay",
+        "generated_by": "cargo run --release --example bench -- replay",
+        "machine": {"cores": cores(), "cpu": cpu_model()},
+        "sluice_binary": ctx.sluice.display().to_string(),
+        "source": source_revision(),
+        "runs_requested": ctx.runs,
+        "notes": [
+            "seconds are medians; peak memory is the largest ru_maxrss of the runs",
+            "plain run: sluice run PLAN in a fresh store (sluice init not timed): intake of the raw file and six recorded steps",
+            "replay: sluice replay totals --json in the store of the last plain run: the raw object re-hashed, every step computed again from it and its output and provenance hashes compared, nothing recorded",
+            "warm page cache; sync before every timed run",
+        ],
+        "all_goals_met": all_pass,
+        "sizes": sizes,
+    }))
+}
+
+fn replay_size(ctx: &Ctx, n: u64) -> Result<(Value, bool)> {
+    let (file, bytes, background) = prepare_size(ctx, n)?;
+    let mut kept: Option<Scratch> = None;
+    let run = repeat(ctx.runs, |i| {
+        let scratch = Scratch::new(ctx, &format!("replay-run-{i}"))?;
+        let store = scratch.0.join("store");
+        sluice_init(ctx, &store)?;
+        let plan = scratch.0.join("plan.json");
+        fs::write(
+            &plan,
+            serde_json::to_string_pretty(&ops_plan(&file))? + "\n",
+        )
+        .with_context(|| format!("writing {}", plan.display()))?;
+        let (sample, _) = run_measured(
+            Command::new(&ctx.sluice)
+                .arg("--store")
+                .arg(&store)
+                .arg("run")
+                .arg(&plan)
+                .env("SLUICE_AGENT", AGENT),
+            &scratch.0.join("log-run"),
+            "sluice run",
+        )?;
+        kept = Some(scratch);
+        Ok(sample)
+    })?;
+    let scratch = kept.ok_or_else(|| anyhow!("sluice run never ran"))?;
+    let store = scratch.0.join("store");
+    let mut steps_checked = 0u64;
+    let replay = repeat(ctx.runs, |i| {
+        let (sample, out) = run_measured(
+            Command::new(&ctx.sluice)
+                .arg("--store")
+                .arg(&store)
+                .args(["replay", "totals", "--json"])
+                .env("SLUICE_AGENT", AGENT),
+            &scratch.0.join(format!("log-replay-{i}")),
+            "sluice replay",
+        )?;
+        let report: Value =
+            serde_json::from_str(&out.stdout).context("reading `sluice replay --json`")?;
+        ensure!(
+            report["reproduced"] == true,
+            "sluice replay did not reproduce the plan's output:\n{}",
+            out.stdout
+        );
+        steps_checked = report["steps"].as_array().map_or(0, |s| s.len() as u64);
+        Ok(sample)
+    })?;
+    let rows = vec![
+        Row {
+            tool: "sluice run (fresh store)",
+            key: "sluice_run",
+            samples: run,
+        },
+        Row {
+            tool: "sluice replay (hashes checked)",
+            key: "sluice_replay",
+            samples: replay,
+        },
+    ];
+    print_table(&rows, bytes);
+    println!("  replay checked {steps_checked} steps (the intake and every step of the plan) and reproduced them");
+    let overhead = rows[1].median_secs() / rows[0].median_secs() - 1.0;
+    let cpu_ratio = rows[1].median_cpu_secs() / rows[0].median_cpu_secs();
+    println!("  replay CPU time / plain run CPU time = {cpu_ratio:.2} (moves less with the machine's load than the wall time)");
+    let goals = vec![Goal {
+        label: "replay time / plain run time - 1".into(),
+        value: overhead,
+        goal: "< 0.10",
+        pass: overhead < REPLAY_OVERHEAD,
+    }];
+    println!("  goals:");
+    for g in &goals {
+        g.print();
+    }
+    let pass = goals.iter().all(|g| g.pass);
+    let tools: serde_json::Map<String, Value> = rows
+        .iter()
+        .map(|r| (r.key.to_string(), r.json(bytes)))
+        .collect();
+    Ok((
+        json!({
+            "rows": n,
+            "bytes": bytes,
+            "file": file.display().to_string(),
+            "tools": tools,
+            "steps_checked": steps_checked,
+            "overhead": overhead,
+            "cpu_ratio": cpu_ratio,
+            "background_load_cores": background,
+            "max_other_processes_cores": rows.iter().filter_map(Row::others_cores).reduce(f64::max),
+            "goals": goals.iter().map(Goal::json).collect::<Vec<_>>(),
+            "all_goals_met": pass,
+        }),
+        pass,
+    ))
 }
 
 /// A fresh store (not timed), then `sluice run PLAN` and `sluice cat orders -o cleaned.csv`

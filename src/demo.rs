@@ -396,6 +396,8 @@ pub struct DemoReport {
     pub traced: (String, crate::trace::Trail),
     /// Why one shop's quarterly total is what it is: the command, and its answer.
     pub explained: (String, crate::explain::Explanation),
+    /// The quarter's summary computed again from the raw exports: the command, and its answer.
+    pub replayed: (String, crate::replay::ReplayReport),
     pub next_commands: Vec<String>,
 }
 
@@ -499,10 +501,21 @@ pub fn run(dir: &Path, agent: &Agent) -> Result<DemoReport> {
         )?,
     );
 
+    // Can last quarter's figures be reproduced exactly? Every step again from the raw exports.
+    let replayed = (
+        "sluice replay q3_by_shop".to_string(),
+        crate::replay::replay(
+            &mut store,
+            "q3_by_shop",
+            &crate::replay::ReplayOptions::default(),
+        )?,
+    );
+
     Ok(DemoReport {
         outside,
         traced,
         explained,
+        replayed,
         dir: dir.to_path_buf(),
         scenario: "The Three Rivers Cycle Cooperative: three bicycle repair shops, each exporting its Q3 work orders \
                    from a different till (comma / semicolon with decimal commas and a BOM / CRLF), plus the \

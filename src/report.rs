@@ -313,7 +313,11 @@ pub fn build(store: &mut Store, reference: &str, opts: &ReportOptions) -> Result
     let entries = store.lineage.audit_entries()?;
     let head = entries.last();
     let replay = if opts.replay {
-        let r = replay::replay(store, reference)?;
+        let r = replay::replay(
+            store,
+            reference,
+            &replay::ReplayOptions { allow_exec: false },
+        )?;
         let count = |want: &[&str]| {
             r.steps
                 .iter()
@@ -323,13 +327,14 @@ pub fn build(store: &mut Store, reference: &str, opts: &ReportOptions) -> Result
         Some(ReplaySummary {
             reproduced: r.reproduced,
             steps_checked: r.steps.len() as u64,
-            steps_same: count(&["same", "restored"]),
+            steps_same: count(&["same", "restored", "reapplied"]),
             steps_not_rerun: count(&["not_rerun"]),
             failed: r
                 .steps
                 .iter()
                 .find(|s| {
-                    !["same", "restored", "raw_intact", "not_rerun"].contains(&s.result.as_str())
+                    !["same", "restored", "reapplied", "raw_intact", "not_rerun"]
+                        .contains(&s.result.as_str())
                 })
                 .map(|s| {
                     format!(

@@ -1,9 +1,87 @@
 //! `sluice replay`: a version computed again from its raw ancestors, every step checked against
-//! the bytes it recorded; missing intermediate objects restored; differences named.
+//! the bytes it recorded; missing intermediate objects restored; differences named and
+//! summarised; hand edits re-applied; outside commands run again only with `--allow-exec`.
+//!
+//! Outside references: the repositories are made by the `git` program itself, and what replay
+//! must leave alone is read back with it (`git status --porcelain --ignored`, `git rev-parse
+//! HEAD`); the scripts are run by `python3` and `sh`, and each one's own record of its runs
+//! (a log file outside the store) says whether and which version ran. The demo's version
+//! hashes in `tests/golden/demo_versions.txt` were recorded by this build: they hold the
+//! output fixed across checkouts and machines, they are not an outside truth.
 
 mod common;
 
+use std::path::Path;
+use std::process::Command;
+
 use common::{assert_contains, Sandbox};
+
+fn git(dir: &Path, args: &[&str]) -> String {
+    let out = Command::new("git")
+        .args(args)
+        .current_dir(dir)
+        .output()
+        .expect("run git");
+    assert!(
+        out.status.success(),
+        "git {}: {}",
+        args.join(" "),
+        String::from_utf8_lossy(&out.stderr)
+    );
+    String::from_utf8_lossy(&out.stdout).trim().to_string()
+}
+
+/// A sandbox that is a git repository holding `orders` (a small export, taken in) and a
+/// cleaning script, committed; every run of the script appends its version to `runs.log`
+/// (outside the store, an absolute path written into the script), so a test can tell whether
+/// and which version ran.
+fn repository_with_script() -> (Sandbox, String) {
+    let s = Sandbox::with_store();
+    let dir = s.path();
+    git(dir, &["init", "-q"]);
+    git(dir, &["config", "user.name", "Robin Example"]);
+    git(dir, &["config", "user.email", "robin@example.org"]);
+    s.file(".gitignore", ".sluice/\nruns.log\n*.csv\nout/\n");
+    s.file(
+        "orders.csv",
+        "order_id,technician,status\n41001,ines,done\n41002,tobiah,test\n41003,caspar,done\n",
+    );
+    s.ok(&[
+        "ingest",
+        "orders.csv",
+        "--as",
+        "orders",
+        "--why",
+        "the export",
+    ]);
+    s.file("clean.py", script(&s, "v1", "upper"));
+    git(dir, &["add", ".gitignore", "clean.py"]);
+    git(dir, &["commit", "-q", "-m", "cleaning script"]);
+    let first = git(dir, &["rev-parse", "HEAD"]);
+    (s, first)
+}
+
+/// The cleaning script: `how` the technician's name is written ("upper" or "title").
+fn script(s: &Sandbox, version: &str, how: &str) -> String {
+    format!(
+        "import sys\n\
+         log = {log:?}\n\
+         src, dst = sys.argv[1], sys.argv[2]\n\
+         rows = open(src).read().splitlines()\n\
+         out = [rows[0]]\n\
+         for r in rows[1:]:\n\
+         \x20   f = r.split(',')\n\
+         \x20   f[1] = f[1].{how}()\n\
+         \x20   out.append(','.join(f))\n\
+         open(dst, 'w').write('\\n'.join(out) + '\\n')\n\
+         open(log, 'a').write('{version}\\n')\n",
+        log = s.path().join("runs.log").display().to_string()
+    )
+}
+
+fn runs_log(s: &Sandbox) -> String {
+    std::fs::read_to_string(s.path().join("runs.log")).unwrap_or_default()
+}
 
 fn object_path(s: &Sandbox, hash: &str) -> std::path::PathBuf {
     s.path()
@@ -94,34 +172,122 @@ fn damage_and_differences_stop_the_replay_where_they_are() {
         .unwrap();
     assert_eq!(changed, 1);
     drop(db);
+    let snapshot = d.snapshot();
     let r = d.run(&["replay", "q3_by_shop"]);
     assert_eq!(r.code, 1);
     assert_contains(&r.stdout, "trim -> quillby_orders@2");
     assert_contains(&r.stdout, "differs");
     assert_contains(&r.stdout, "not reproduced: q3_by_shop@1");
     assert!(!r.stdout.contains("summarize -> q3_by_shop@1"));
+    // The difference, summarised by the diff engine: with inner spaces kept, the customer
+    // names that had doubled spaces differ, and nothing else does.
+    assert_contains(&r.stdout, "recorded quillby_orders@2 has 240 rows");
+    assert_contains(
+        &r.stdout,
+        "0 only in the recorded output, 0 only in the recomputed one",
+    );
+    assert_contains(&r.stdout, "changed cells by column: customer ");
+    let report = d.run(&["replay", "q3_by_shop", "--json"]);
+    let report: serde_json::Value = serde_json::from_str(&report.stdout).unwrap();
+    let last = report["steps"].as_array().unwrap().last().unwrap().clone();
+    let diff = &last["difference"];
+    assert_eq!(diff["rows_only_recorded"], 0);
+    assert!(diff["rows_changed"].as_u64().unwrap() > 0);
+    assert_eq!(diff["changed_cells"][0]["column"], "customer");
+    assert_eq!(diff["computed_hash"], last["computed_hash"]);
+    for e in diff["examples"].as_array().unwrap() {
+        let cell = &e["cells"][0];
+        // The recomputed cell is the recorded one with an inner run of spaces kept.
+        let recorded = cell["recorded"].as_str().unwrap();
+        let computed = cell["computed"].as_str().unwrap();
+        assert!(computed.contains("  "), "{computed:?}");
+        assert_eq!(
+            computed.split_whitespace().collect::<Vec<_>>().join(" "),
+            recorded
+        );
+    }
+    // Comparing left nothing behind: no version or step, no temporary file, no object.
+    let v = d.json(&["verify", "--json"]);
+    assert_eq!(v["unreferenced_objects"], 0);
+    assert_eq!(v["leftover_temp_files"], 0);
+    assert_eq!(snapshot, d.snapshot());
 }
 
 #[test]
-fn outside_work_is_reported_as_not_run_again() {
+fn without_allow_exec_a_command_is_not_run_and_a_hand_edit_is_reapplied() {
     let d = Sandbox::with_demo();
     let r = d.run(&["replay", "reviewed_orders", "--json"]);
     assert_eq!(r.code, 1);
     let report: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
-    let kinds: Vec<(&str, &str)> = report["steps"]
+    let outside: Vec<(&str, &str, &str)> = report["steps"]
         .as_array()
         .unwrap()
         .iter()
-        .filter(|s| s["result"] == "not_rerun")
-        .map(|s| (s["kind"].as_str().unwrap(), s["produced"].as_str().unwrap()))
+        .filter(|s| s["kind"] != "ingest" && s["kind"] != "operation")
+        .map(|s| {
+            (
+                s["kind"].as_str().unwrap(),
+                s["produced"].as_str().unwrap(),
+                s["result"].as_str().unwrap(),
+            )
+        })
         .collect();
     assert_eq!(
-        kinds,
+        outside,
         vec![
-            ("command", "reviewed_orders@1"),
-            ("hand_edit", "reviewed_orders@2")
+            ("command", "reviewed_orders@1", "not_rerun"),
+            ("hand_edit", "reviewed_orders@2", "reapplied"),
         ]
     );
+    assert_eq!(report["reproduced"], false, "the command was not run again");
+    assert_contains(&d.ok(&["verify"]), "intact");
+}
+
+#[test]
+fn a_hand_edit_whose_output_object_is_gone_cannot_be_reapplied() {
+    let d = Sandbox::with_demo();
+    let hash = hash_of(&d, "reviewed_orders@2");
+    std::fs::remove_file(object_path(&d, &hash)).unwrap();
+    let snapshot = d.path().join(".sluice/lineage.db");
+    let before = std::fs::read(&snapshot).unwrap();
+    let r = d.run(&["replay", "reviewed_orders"]);
+    assert_eq!(r.code, 1);
+    assert_contains(&r.stdout, "hand_edit -> reviewed_orders@2");
+    assert_contains(&r.stdout, "cannot reapply");
+    assert_contains(
+        &r.stdout,
+        "the output of this hand edit (reviewed_orders@2) is missing: the values a person typed are kept only in that version, so the edit cannot be re-applied",
+    );
+    assert_eq!(
+        before,
+        std::fs::read(&snapshot).unwrap(),
+        "nothing recorded"
+    );
+}
+
+#[test]
+fn a_damaged_intermediate_object_is_named_by_replay_and_by_verify() {
+    let d = Sandbox::with_demo();
+    let hash = hash_of(&d, "all_orders@5");
+    let p = object_path(&d, &hash);
+    let mut bytes = std::fs::read(&p).unwrap();
+    bytes[200] ^= 0x01;
+    let mut perms = std::fs::metadata(&p).unwrap().permissions();
+    #[allow(clippy::permissions_set_readonly_false)]
+    perms.set_readonly(false);
+    std::fs::set_permissions(&p, perms).unwrap();
+    std::fs::write(&p, &bytes).unwrap();
+
+    let r = d.run(&["replay", "q3_by_shop", "--json"]);
+    assert_eq!(r.code, 1);
+    let report: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
+    let last = report["steps"].as_array().unwrap().last().unwrap().clone();
+    assert_eq!(last["produced"], "all_orders@5");
+    assert_eq!(last["result"], "output_damaged");
+    assert_contains(last["detail"].as_str().unwrap(), &hash);
+    let v = d.run(&["verify"]);
+    assert_eq!(v.code, 1);
+    assert_contains(&v.stdout, &hash[..12]);
 }
 
 #[test]
@@ -224,5 +390,481 @@ fn a_chain_that_cannot_apply_to_the_new_data_stops_and_keeps_what_was_done() {
     assert_contains(
         &r.stderr,
         "the store keeps what came before: quillby_orders@5\n",
+    );
+}
+
+#[test]
+fn an_outside_command_runs_again_from_its_recorded_commit_only_with_allow_exec() {
+    let (s, first) = repository_with_script();
+    let dir = s.path();
+    s.ok(&[
+        "exec",
+        "--input",
+        "orders",
+        "--output",
+        "orders=cleaned.csv",
+        "--why",
+        "names in capitals",
+        "--",
+        "python3",
+        "clean.py",
+        "{orders}",
+        "{out:orders}",
+    ]);
+    // A second command names its output relative to the working directory, literally, and
+    // runs from a subfolder: an executable shell script that calls its helper through a
+    // symbolic link (so the checkout must keep the mode and the link).
+    s.file(
+        "tools/tag.sh",
+        "#!/bin/sh\nmkdir -p out\nexec python3 helper.py \"$1\"\n",
+    );
+    s.file(
+        "tools/tag_impl.py",
+        "import sys\nrows = open(sys.argv[1]).read().splitlines()\nopen('out/tagged.csv', 'w').write('\\n'.join([rows[0] + ',shop'] + [r + ',Quillby' for r in rows[1:]]) + '\\n')\n",
+    );
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::PermissionsExt;
+        std::fs::set_permissions(
+            dir.join("tools/tag.sh"),
+            std::fs::Permissions::from_mode(0o755),
+        )
+        .unwrap();
+        std::os::unix::fs::symlink("tag_impl.py", dir.join("tools/helper.py")).unwrap();
+    }
+    git(dir, &["add", "tools"]);
+    git(dir, &["commit", "-q", "-m", "tagging script"]);
+    let tools = s.path().join("tools");
+    let r = s
+        .command(&[
+            "exec",
+            "--input",
+            "orders",
+            "--output",
+            "orders=out/tagged.csv",
+            "--why",
+            "the shop",
+            "--",
+            "./tag.sh",
+            "{orders}",
+        ])
+        .current_dir(&tools)
+        .output()
+        .unwrap();
+    assert!(r.status.success(), "{}", String::from_utf8_lossy(&r.stderr));
+    let recorded = hash_of(&s, "orders@2");
+    assert_eq!(runs_log(&s), "v1\n");
+
+    // The script changes and is committed: title case now.
+    s.file("clean.py", script(&s, "v2", "title"));
+    git(dir, &["commit", "-q", "-am", "title case instead"]);
+    let status_before = git(dir, &["status", "--porcelain", "--ignored"]);
+    let head_before = git(dir, &["rev-parse", "HEAD"]);
+
+    // Without --allow-exec nothing runs; the store is not changed.
+    let snapshot = s.snapshot();
+    let r = s.run(&["replay", "orders", "--json"]);
+    assert_eq!(r.code, 1);
+    let report: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
+    let results: Vec<&str> = report["steps"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|s| s["result"].as_str().unwrap())
+        .collect();
+    assert_eq!(results, vec!["raw_intact", "not_rerun", "not_rerun"]);
+    assert_eq!(runs_log(&s), "v1\n", "the script did not run");
+    assert_eq!(snapshot, s.snapshot());
+
+    // With it, the first version runs (from the recorded commit) and gives the recorded bytes.
+    let out = s.ok(&["replay", "orders", "--allow-exec"]);
+    assert_eq!(
+        runs_log(&s),
+        "v1\nv1\n",
+        "the recorded version of the script ran"
+    );
+    assert_contains(&out, "replay will run 2 outside commands");
+    assert_contains(&out, "python3 clean.py {orders} {out:orders}");
+    assert_contains(&out, &format!("at commit {}", &first[..12]));
+    assert_contains(
+        &out,
+        &format!("reproduced orders@3 ({})", &hash_of(&s, "orders@3")[..12]),
+    );
+    // With --json the list goes to standard error, so that standard output is one document.
+    let r = s.run(&["replay", "orders", "--allow-exec", "--json"]);
+    assert_eq!(r.code, 0);
+    assert_contains(&r.stderr, "replay will run 2 outside commands");
+    let report: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
+    assert_eq!(report["reproduced"], true);
+    let steps = report["steps"].as_array().unwrap();
+    assert_eq!(steps[1]["result"], "same");
+    assert_eq!(steps[1]["computed_hash"].as_str(), Some(recorded.as_str()));
+    assert_eq!(steps[2]["result"], "same");
+    // The user's working tree, index and HEAD are as they were; the store too; no leftovers.
+    assert_eq!(
+        git(dir, &["status", "--porcelain", "--ignored"]),
+        status_before
+    );
+    assert_eq!(git(dir, &["rev-parse", "HEAD"]), head_before);
+    assert_eq!(
+        std::fs::read_to_string(dir.join("clean.py")).unwrap(),
+        script(&s, "v2", "title")
+    );
+    assert_eq!(snapshot, s.snapshot());
+
+    // A removed output object is restored from the command's bytes.
+    std::fs::remove_file(object_path(&s, &recorded)).unwrap();
+    let report = s.json(&["replay", "orders", "--allow-exec", "--json"]);
+    assert_eq!(report["steps"][1]["result"], "restored");
+    assert_contains(&s.ok(&["verify"]), "intact");
+}
+
+#[test]
+fn a_command_recorded_from_a_dirty_tree_replays_with_a_warning() {
+    let (s, _) = repository_with_script();
+    // An uncommitted change that does not alter the output.
+    s.file("clean.py", &(script(&s, "v1", "upper") + "# tidy later\n"));
+    s.ok(&[
+        "exec",
+        "--input",
+        "orders",
+        "--output",
+        "orders=cleaned.csv",
+        "--why",
+        "capitals",
+        "--",
+        "python3",
+        "clean.py",
+        "{orders}",
+        "{out:orders}",
+    ]);
+    let out = s.ok(&["replay", "orders", "--allow-exec"]);
+    assert_contains(
+        &out,
+        "warning: when step 2 ran, the working tree had changes not in commit",
+    );
+    assert_contains(
+        &out,
+        "(clean.py); the commit is run now, which may not be the code that ran",
+    );
+    assert_contains(&out, "reproduced orders@2");
+}
+
+#[test]
+fn a_commit_that_no_longer_exists_is_named() {
+    let (s, first) = repository_with_script();
+    s.ok(&[
+        "exec",
+        "--input",
+        "orders",
+        "--output",
+        "orders=cleaned.csv",
+        "--why",
+        "capitals",
+        "--",
+        "python3",
+        "clean.py",
+        "{orders}",
+        "{out:orders}",
+    ]);
+    // The recorded commit id edited behind sluice's back (as if history had been rewritten).
+    let gone = "0123456789abcdef0123456789abcdef01234567";
+    let db = rusqlite::Connection::open(s.path().join(".sluice/lineage.db")).unwrap();
+    let n = db
+        .execute(
+            "UPDATE steps SET code = replace(code, ?1, ?2) WHERE kind = 'command'",
+            [&first, gone],
+        )
+        .unwrap();
+    assert_eq!(n, 1);
+    drop(db);
+    let r = s.run(&["replay", "orders", "--allow-exec"]);
+    assert_eq!(r.code, 1);
+    assert_contains(&r.stdout, "code missing");
+    assert_contains(
+        &r.stdout,
+        &format!("commit {gone} is not in the repository"),
+    );
+    assert_eq!(runs_log(&s), "v1\n", "nothing ran");
+}
+
+#[test]
+fn a_command_recorded_outside_git_or_naming_an_absolute_output_is_not_run() {
+    // Outside any repository (the demo's folder): the code was never recorded.
+    let d = Sandbox::with_demo();
+    let r = d.run(&["replay", "reviewed_orders", "--allow-exec"]);
+    assert_eq!(r.code, 1);
+    assert_contains(&r.stdout, "will not run: the command ran in ");
+    assert_contains(
+        &r.stdout,
+        "outside any git repository, so the code that ran was never recorded",
+    );
+
+    // An absolute output path written into the command line itself.
+    let (s, _) = repository_with_script();
+    let target = s.path().join("elsewhere.csv");
+    let target = target.to_str().unwrap();
+    s.ok(&[
+        "exec",
+        "--input",
+        "orders",
+        "--output",
+        &format!("orders={target}"),
+        "--why",
+        "capitals",
+        "--",
+        "python3",
+        "clean.py",
+        "{orders}",
+        target,
+    ]);
+    let before = std::fs::metadata(target).unwrap().modified().unwrap();
+    let r = s.run(&["replay", "orders", "--allow-exec", "--json"]);
+    assert_eq!(r.code, 1);
+    let report: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
+    assert_eq!(report["steps"][1]["result"], "refused");
+    assert_contains(
+        report["steps"][1]["detail"].as_str().unwrap(),
+        &format!(
+            "names the absolute output path {target} itself rather than through {{out:orders}}"
+        ),
+    );
+    assert_eq!(
+        std::fs::metadata(target).unwrap().modified().unwrap(),
+        before
+    );
+    assert_eq!(runs_log(&s), "v1\n");
+}
+
+#[test]
+fn a_command_that_writes_other_bytes_now_shows_how_they_differ() {
+    let (s, _) = repository_with_script();
+    // A script whose output depends on how often it has run (as one reading a clock would).
+    s.file(
+        "count.py",
+        format!("import sys, os\n\
+         log = {:?}\n\
+         n = len(open(log).read().splitlines()) if os.path.exists(log) else 0\n\
+         open(log, 'a').write('count\\n')\n\
+         rows = open(sys.argv[1]).read().splitlines()\n\
+         open(sys.argv[2], 'w').write('\\n'.join([rows[0] + ',run'] + [r + ',' + str(n) for r in rows[1:]]) + '\\n')\n", s.path().join("runs.log").display().to_string()),
+    );
+    git(s.path(), &["add", "count.py"]);
+    git(s.path(), &["commit", "-q", "-m", "counting"]);
+    s.ok(&[
+        "exec",
+        "--input",
+        "orders",
+        "--output",
+        "orders=counted.csv",
+        "--why",
+        "runs",
+        "--",
+        "python3",
+        "count.py",
+        "{orders}",
+        "{out:orders}",
+    ]);
+    let snapshot = s.snapshot();
+    let r = s.run(&["replay", "orders", "--allow-exec"]);
+    assert_eq!(r.code, 1);
+    assert_contains(&r.stdout, "command -> orders@2");
+    assert_contains(&r.stdout, "differs");
+    assert_contains(&r.stdout, "recorded orders@2 has 3 rows; recomputed (");
+    assert_contains(
+        &r.stdout,
+        "3 rows changed, 0 only in the recorded output, 0 only in the recomputed one",
+    );
+    assert_contains(&r.stdout, "changed cells by column: run 3");
+    assert_contains(
+        &r.stdout,
+        "e.g. row 1: run: \"0\" recorded, \"1\" recomputed",
+    );
+    assert_eq!(
+        snapshot,
+        s.snapshot(),
+        "nothing recorded, nothing left behind"
+    );
+}
+
+/// Every version in the store, oldest first, as `name@n hash`.
+fn version_hashes(s: &Sandbox) -> Vec<String> {
+    let log = s.json(&["log", "--json"]);
+    let mut lines: Vec<String> = log
+        .as_array()
+        .unwrap()
+        .iter()
+        .rev()
+        .flat_map(|e| e["produced"].as_array().unwrap().clone())
+        .map(|v| {
+            format!(
+                "{}@{} {}",
+                v["dataset"].as_str().unwrap(),
+                v["seq"],
+                v["hash"].as_str().unwrap()
+            )
+        })
+        .collect();
+    lines.dedup();
+    lines
+}
+
+#[test]
+fn the_demo_plan_gives_the_same_hashes_in_fresh_stores_and_matches_the_golden_file() {
+    let a = Sandbox::new();
+    let out = a.ok(&["demo", "."]);
+    assert_contains(
+        &out,
+        "$ sluice replay q3_by_shop\n  reproduced q3_by_shop@1 (",
+    );
+    let b = Sandbox::with_demo();
+    let in_a = version_hashes(&a);
+    assert_eq!(in_a, version_hashes(&b), "two fresh demo stores");
+
+    // The plan alone, run with `sluice run` on the same exports in a third fresh store, gives
+    // the plan's part of the same history.
+    let c = Sandbox::with_store();
+    for name in [
+        "quillby_2026q3.csv",
+        "oxwater_2026q3.csv",
+        "fennmarsh_2026q3.csv",
+        "service_labels.csv",
+        "technicians.csv",
+    ] {
+        c.file(
+            &format!("exports/{name}"),
+            std::fs::read(a.path().join("exports").join(name)).unwrap(),
+        );
+    }
+    c.file(
+        "q3_cleaning.json",
+        std::fs::read(a.path().join("q3_cleaning.json")).unwrap(),
+    );
+    c.ok(&["run", "q3_cleaning.json"]);
+    let in_c = version_hashes(&c);
+    assert_eq!(
+        in_c.len(),
+        in_a.len() - 2,
+        "all but the two pieces of outside work"
+    );
+    for v in &in_c {
+        assert!(in_a.contains(v), "{v} is in the demo's history");
+    }
+
+    // The hashes are recorded: another checkout, another machine must give the same ones.
+    let actual = in_a.join("\n") + "\n";
+    let golden = concat!(
+        env!("CARGO_MANIFEST_DIR"),
+        "/tests/golden/demo_versions.txt"
+    );
+    if std::env::var_os("SLUICE_BLESS").is_some() {
+        std::fs::write(golden, &actual).unwrap();
+    }
+    let expected =
+        std::fs::read_to_string(golden).expect("golden file (run with SLUICE_BLESS=1 once)");
+    assert_eq!(expected, actual, "the demo's version hashes changed");
+}
+
+#[test]
+fn a_hand_edit_whose_recorded_lineage_does_not_explain_it_is_named_with_the_cells() {
+    // Two copies of one export, each edited by hand in a different cell.
+    let s = Sandbox::with_store();
+    let export =
+        "order_id,technician,status\n41001,Ines,done\n41002,Tobiah,done\n41003,Caspar,done\n";
+    for name in ["orders", "copy"] {
+        s.file(&format!("{name}.csv"), export);
+        s.ok(&["ingest", &format!("{name}.csv"), "--as", name]);
+    }
+    s.file(
+        "orders_edited.csv",
+        export.replace("41001,Ines", "41001,Inès"),
+    );
+    s.ok(&[
+        "ingest",
+        "orders_edited.csv",
+        "--as",
+        "orders",
+        "--from",
+        "orders@1",
+        "--why",
+        "accent",
+    ]);
+    s.file(
+        "copy_edited.csv",
+        export.replace("41003,Caspar,done", "41003,Caspar,open"),
+    );
+    s.ok(&[
+        "ingest",
+        "copy_edited.csv",
+        "--as",
+        "copy",
+        "--from",
+        "copy@1",
+        "--why",
+        "reopened",
+    ]);
+    let out = s.run(&["replay", "orders"]);
+    assert_eq!(out.code, 0, "{}", out.stdout);
+    assert_contains(&out.stdout, "re-applied from its recorded lineage");
+
+    // The two edits' provenance swapped behind sluice's back: each object is well formed, but
+    // the orders edit now claims the other edit's cell.
+    let db = rusqlite::Connection::open(s.path().join(".sluice/lineage.db")).unwrap();
+    let n = db
+        .execute(
+            "UPDATE steps SET provenance = (SELECT group_concat(provenance) FROM steps AS o
+               WHERE o.kind = 'hand_edit' AND o.id <> steps.id)
+             WHERE kind = 'hand_edit'",
+            [],
+        )
+        .unwrap();
+    assert_eq!(n, 2);
+    drop(db);
+    let r = s.run(&["replay", "orders", "--json"]);
+    assert_eq!(r.code, 1);
+    let report: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
+    let last = report["steps"].as_array().unwrap().last().unwrap().clone();
+    assert_eq!(last["kind"], "hand_edit");
+    assert_eq!(last["result"], "differs");
+    assert_contains(
+        last["detail"].as_str().unwrap(),
+        "the recorded lineage does not explain the edit",
+    );
+    let d = &last["difference"];
+    assert_eq!(d["rows_changed"], 2);
+    let cells: Vec<(u64, String, String, String)> = d["examples"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .flat_map(|e| {
+            let row = e["recorded_row"].as_u64().unwrap();
+            e["cells"]
+                .as_array()
+                .unwrap()
+                .iter()
+                .map(move |c| {
+                    (
+                        row,
+                        c["column"].as_str().unwrap().to_string(),
+                        c["recorded"].as_str().unwrap().to_string(),
+                        c["computed"].as_str().unwrap().to_string(),
+                    )
+                })
+                .collect::<Vec<_>>()
+        })
+        .collect();
+    assert_eq!(
+        cells,
+        vec![
+            // Changed by hand, but not listed: the input's value does not give the output's.
+            (1, "technician".into(), "Inès".into(), "Ines".into()),
+            // Listed as changed, but the output holds the input's value.
+            (
+                3,
+                "status".into(),
+                "done".into(),
+                "done (listed as changed, but unchanged)".into()
+            ),
+        ]
     );
 }

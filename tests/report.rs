@@ -226,10 +226,11 @@ fn the_demo_report_as_json_follows_the_schema() {
     assert!(kinds.contains(&"command") && kinds.contains(&"hand_edit"));
     assert_eq!(
         doc["verification"]["replay"]["reproduced"], false,
-        "outside work is not run again"
+        "the outside command is not run again without --allow-exec"
     );
     assert_eq!(doc["verification"]["replay"]["failed"], Value::Null);
-    assert_eq!(doc["verification"]["replay"]["steps_not_rerun"], 2);
+    // The command is not run again; the hand edit is re-applied from its recorded lineage.
+    assert_eq!(doc["verification"]["replay"]["steps_not_rerun"], 1);
 }
 
 #[test]

@@ -214,10 +214,15 @@ pub enum Command {
     },
 
     /// Compute a version again from its raw ancestors and check every step gives its recorded bytes
-    #[command(after_help = "Example:\n  sluice replay q3_by_shop\n\n\
+    #[command(
+        after_help = "Examples:\n  sluice replay q3_by_shop\n  sluice replay reviewed_orders --allow-exec\n\n\
         Built-in steps are run again on their recorded inputs (nothing is recorded); an intermediate object \
-        missing from the store is restored when the recomputed bytes have its hash. Outside work is not run \
-        again by this build. Exit code 0 when every step was shown to give its recorded bytes, 1 otherwise.")]
+        missing from the store is restored when the recomputed bytes have its hash. Hand edits are re-applied \
+        from their recorded row map, changed cells and dropped rows. Outside commands run again only with \
+        --allow-exec, each in a temporary checkout of its recorded commit; without it nothing recorded in the \
+        store is executed. The first step whose output differs stops the replay with a summary of the \
+        difference. Exit code 0 when every step was shown to give its recorded bytes, 1 otherwise."
+    )]
     Replay {
         /// The version: NAME (latest), NAME@N or a hash prefix
         reference: String,
@@ -228,6 +233,10 @@ pub enum Command {
         /// With --onto: why the new file is taken in (kept with its intake)
         #[arg(long, value_name = "TEXT", requires = "onto")]
         why: Option<String>,
+        /// Run the recorded outside commands again, each in a temporary checkout of the git commit
+        /// it was recorded at (the command lines are listed before anything runs)
+        #[arg(long, conflicts_with = "onto")]
+        allow_exec: bool,
         /// Print JSON
         #[arg(long)]
         json: bool,

@@ -419,6 +419,7 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             onto: Some(onto),
             why,
             json,
+            ..
         } => {
             let mut store = open_store(&cli, &cwd)?;
             let (name, file) = onto.split_once('=').ok_or_else(|| {
@@ -438,10 +439,25 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             reference,
             onto: None,
             json,
+            allow_exec,
             ..
         } => {
             let mut store = open_store(&cli, &cwd)?;
-            let r = sluice::replay::replay(&mut store, reference)?;
+            if *allow_exec {
+                // Every command line is shown before anything runs (on standard error with
+                // --json, so that standard output stays one JSON document).
+                let planned = sluice::replay::planned_commands(&store, reference)?;
+                if *json {
+                    render::planned_commands(&mut std::io::stderr().lock(), &planned)?;
+                } else {
+                    render::planned_commands(&mut out, &planned)?;
+                    out.flush()?;
+                }
+            }
+            let options = sluice::replay::ReplayOptions {
+                allow_exec: *allow_exec,
+            };
+            let r = sluice::replay::replay(&mut store, reference, &options)?;
             if *json {
                 render::json(&mut out, &r)?;
             } else {
@@ -631,6 +647,7 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
                 prov.count(sluice::prov::ElementKind::Activity),
                 prov.count(sluice::prov::ElementKind::Agent)
             )?;
+            render::demo_next(&mut out, &report)?;
             Ok(0)
         }
     }

@@ -714,6 +714,39 @@ pub fn demo(out: &mut impl Write, r: &DemoReport) -> io::Result<()> {
     writeln!(out, "  $ {}", r.explained.0)?;
     indented(out, |o| explanation(o, &r.explained.1))?;
     writeln!(out)?;
+    writeln!(
+        out,
+        "can the quarter's figures be reproduced from the raw exports?"
+    )?;
+    writeln!(out, "  $ {}", r.replayed.0)?;
+    let rp = &r.replayed.1;
+    let rerun = rp
+        .steps
+        .iter()
+        .filter(|s| matches!(s.result.as_str(), "same" | "restored"))
+        .count() as u64;
+    if rp.reproduced {
+        writeln!(
+            out,
+            "  reproduced {} ({}): {} run again from {} gave the recorded bytes",
+            rp.version,
+            &rp.hash[..12],
+            plural(rerun, "step", "steps"),
+            plural(
+                rp.steps.iter().filter(|s| s.result == "raw_intact").count() as u64,
+                "raw input",
+                "raw inputs"
+            )
+        )?;
+    } else {
+        writeln!(out, "  not reproduced: {} (run it to see why)", rp.version)?;
+    }
+    Ok(())
+}
+
+/// The commands the demo suggests trying next, last in its output.
+pub fn demo_next(out: &mut impl Write, r: &DemoReport) -> io::Result<()> {
+    writeln!(out)?;
     writeln!(out, "try next:")?;
     for c in &r.next_commands {
         writeln!(out, "  {c}")?;
@@ -1321,6 +1354,46 @@ pub fn revert(out: &mut impl Write, o: &sluice::revert::RevertOutcome) -> io::Re
     }
 }
 
+/// The outside commands `replay --allow-exec` will run, before any runs.
+pub fn planned_commands(
+    out: &mut impl Write,
+    planned: &[sluice::replay::PlannedCommand],
+) -> io::Result<()> {
+    if planned.is_empty() {
+        return writeln!(
+            out,
+            "no outside commands on the way; nothing will be executed"
+        );
+    }
+    writeln!(
+        out,
+        "--allow-exec: replay will run {}, each in a temporary checkout of its recorded commit:",
+        plural(planned.len() as u64, "outside command", "outside commands")
+    )?;
+    for p in planned {
+        match (&p.not_runnable, &p.commit) {
+            (None, Some(commit)) => writeln!(
+                out,
+                "  step {} · {}\n    in {} at commit {}",
+                p.step,
+                p.command,
+                p.cwd,
+                &commit[..commit.len().min(12)]
+            )?,
+            _ => writeln!(
+                out,
+                "  step {} · {}\n    will not run: {}",
+                p.step,
+                p.command,
+                p.not_runnable
+                    .as_deref()
+                    .unwrap_or("no commit was recorded")
+            )?,
+        }
+    }
+    Ok(())
+}
+
 /// What a replay found.
 pub fn replay(out: &mut impl Write, r: &sluice::replay::ReplayReport) -> io::Result<()> {
     for s in &r.steps {
@@ -1329,6 +1402,10 @@ pub fn replay(out: &mut impl Write, r: &sluice::replay::ReplayReport) -> io::Res
             "same" => "gave the recorded bytes".to_string(),
             "restored" => "gave the recorded bytes; the missing object was restored".to_string(),
             "raw_intact" => "raw data, intact".to_string(),
+            "reapplied" => {
+                "re-applied from its recorded lineage; equals the recorded output cell for cell"
+                    .to_string()
+            }
             other => other.replace('_', " "),
         };
         writeln!(
@@ -1338,14 +1415,20 @@ pub fn replay(out: &mut impl Write, r: &sluice::replay::ReplayReport) -> io::Res
             s.produced,
             &s.recorded_hash[..12]
         )?;
+        for w in &s.warnings {
+            writeln!(out, "    warning: {w}")?;
+        }
         if let Some(d) = &s.detail {
             writeln!(out, "    {d}")?;
+        }
+        if let Some(d) = &s.difference {
+            replay_difference(out, d)?;
         }
     }
     let rerun = r
         .steps
         .iter()
-        .filter(|s| matches!(s.result.as_str(), "same" | "restored"))
+        .filter(|s| matches!(s.result.as_str(), "same" | "restored" | "reapplied"))
         .count() as u64;
     if r.reproduced {
         writeln!(
@@ -1363,6 +1446,71 @@ pub fn replay(out: &mut impl Write, r: &sluice::replay::ReplayReport) -> io::Res
             &r.hash[..12]
         )
     }
+}
+
+/// Recorded against recomputed, in a few lines.
+fn replay_difference(out: &mut impl Write, d: &sluice::replay::Difference) -> io::Result<()> {
+    writeln!(
+        out,
+        "    recorded {} has {}; recomputed{} has {} (rows matched by {})",
+        d.recorded,
+        plural(d.recorded_rows, "row", "rows"),
+        d.computed_hash
+            .as_deref()
+            .map(|h| format!(" ({})", &h[..12]))
+            .unwrap_or_default(),
+        plural(d.computed_rows, "row", "rows"),
+        d.matched_by
+    )?;
+    writeln!(
+        out,
+        "    {} changed, {} only in the recorded output, {} only in the recomputed one",
+        plural(d.rows_changed, "row", "rows"),
+        count(d.rows_only_recorded),
+        count(d.rows_only_computed)
+    )?;
+    if !d.columns_only_recorded.is_empty() {
+        writeln!(
+            out,
+            "    columns only in the recorded output: {}",
+            d.columns_only_recorded.join(", ")
+        )?;
+    }
+    if !d.columns_only_computed.is_empty() {
+        writeln!(
+            out,
+            "    columns only in the recomputed output: {}",
+            d.columns_only_computed.join(", ")
+        )?;
+    }
+    if !d.changed_cells.is_empty() {
+        let per: Vec<String> = d
+            .changed_cells
+            .iter()
+            .map(|c| format!("{} {}", c.column, count(c.cells)))
+            .collect();
+        writeln!(out, "    changed cells by column: {}", per.join(", "))?;
+    }
+    for e in &d.examples {
+        let cells: Vec<String> = e
+            .cells
+            .iter()
+            .map(|c| match (&c.recorded, &c.computed) {
+                (Some(a), Some(b)) => format!("{}: {a:?} recorded, {b:?} recomputed", c.column),
+                (Some(a), None) | (None, Some(a)) => format!("{} {a:?}", c.column),
+                (None, None) => c.column.clone(),
+            })
+            .collect();
+        let at = match (e.kind.as_str(), e.recorded_row, e.computed_row) {
+            ("only_recorded", Some(r), _) => format!("recorded row {r}, missing now"),
+            ("only_computed", _, Some(c)) => format!("recomputed row {c}, not recorded"),
+            (_, Some(r), Some(c)) if r == c => format!("row {r}"),
+            (_, Some(r), Some(c)) => format!("recorded row {r} (recomputed row {c})"),
+            _ => "a row".into(),
+        };
+        writeln!(out, "    e.g. {at}: {}", cells.join("; "))?;
+    }
+    Ok(())
 }
 
 fn ingest_outcome_short(out: &mut impl Write, o: &IngestOutcome) -> io::Result<()> {

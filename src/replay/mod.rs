@@ -1,0 +1,508 @@
+//! Replay: computing a version again from its raw ancestors and checking that every step gives
+//! the bytes it recorded. The steps on the way are those `export` would write (every step
+//! reached by walking inputs back to intakes), taken in recording order, which is a topological
+//! order of the lineage graph: a step only reads versions recorded before it.
+//!
+//! A raw version cannot be computed, only checked: its object must be there and hash to its
+//! name. A built-in step is run again on its recorded inputs with its recorded parameters;
+//! nothing is written to the database, and an output object that is missing from the store is
+//! restored from the recomputed bytes when they have its hash (so replay is also how a store
+//! shows it can regenerate an intermediate file removed to save space). The step's provenance
+//! object is computed again too and compared with the recorded one.
+//!
+//! Outside work: a hand edit is re-applied from its recorded row map, changed cells and drops
+//! ([`hand_edit`]); an outside command is run again only when the caller allows it
+//! ([`ReplayOptions::allow_exec`]), in a checkout of its recorded commit ([`command`]). Without
+//! that permission a command is never executed, so a store received from someone else can be
+//! replayed, traced and verified without running anything it names.
+//!
+//! The first step whose output differs stops the replay, with a summary of how the recomputed
+//! output differs from the recorded one ([`difference`]). Nothing is recorded either way.
+
+pub mod command;
+pub mod difference;
+pub mod hand_edit;
+
+use serde::Serialize;
+
+use crate::error::{ErrorKind, Result};
+use crate::hash::Hash;
+use crate::model::{Agent, Step, StepKind, Version};
+use crate::ops::apply::{self, ApplyOptions, ApplyOutcome, ReplayCheck};
+use crate::ops::Operation;
+use crate::refs;
+use crate::store::Store;
+
+pub use difference::Difference;
+
+/// What replay is allowed to do.
+#[derive(Debug, Clone, Default)]
+pub struct ReplayOptions {
+    /// Run recorded outside commands again (in a checkout of their recorded commit).
+    pub allow_exec: bool,
+}
+
+/// What replay found for one step.
+#[derive(Debug, Clone, Serialize)]
+pub struct ReplayedStep {
+    pub step: i64,
+    pub kind: StepKind,
+    pub operation: Option<String>,
+    /// The version the step recorded (the first, for a step with several).
+    pub produced: String,
+    pub recorded_hash: String,
+    /// The hash computed now (built-in steps and commands run again).
+    pub computed_hash: Option<String>,
+    /// "same", "restored" (same, and the missing object was written again), "differs",
+    /// "provenance_differs", "raw_intact", "raw_missing", "raw_damaged", "reapplied" (a hand
+    /// edit), "cannot_reapply", "not_rerun" (a command, without permission to run it),
+    /// "code_unknown", "code_missing", "refused", "failed", "output_damaged" (the step gives
+    /// the recorded bytes but the stored object does not hold them).
+    pub result: String,
+    pub detail: Option<String>,
+    /// Things to know although the step reproduced (a command recorded from a dirty tree).
+    pub warnings: Vec<String>,
+    /// How the recomputed output differs from the recorded one (the first step that differs).
+    pub difference: Option<Box<Difference>>,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct ReplayReport {
+    pub version: String,
+    pub hash: String,
+    /// Every step was checked and gave (or, for raw data, has) the recorded bytes.
+    pub reproduced: bool,
+    pub steps: Vec<ReplayedStep>,
+}
+
+/// An outside command replay would run, for the caller to show before it runs.
+#[derive(Debug, Clone, Serialize)]
+pub struct PlannedCommand {
+    pub step: i64,
+    /// The command line as recorded, placeholders included.
+    pub command: String,
+    pub cwd: String,
+    pub repository: Option<String>,
+    pub commit: Option<String>,
+    /// Why it will not run, when it cannot (no recorded code, an absolute output path).
+    pub not_runnable: Option<String>,
+}
+
+fn object_state(store: &Store, hex: &str) -> Result<&'static str> {
+    let hash: Hash = hex
+        .parse()
+        .map_err(|e: String| crate::Error::from(ErrorKind::Database(e)))?;
+    Ok(match store.objects.check(&hash) {
+        Ok(None) => "intact",
+        Ok(Some(_)) => "damaged",
+        Err(e) if matches!(e.kind(), ErrorKind::ObjectMissing { .. }) => "missing",
+        Err(e) => return Err(e),
+    })
+}
+
+fn load_step(store: &Store, id: i64) -> Result<Step> {
+    store.lineage.step(id)?.ok_or_else(|| {
+        crate::Error::from(ErrorKind::Database(format!(
+            "step {id} is missing; run `sluice verify`"
+        )))
+    })
+}
+
+/// The outside commands on the way to `reference`, in the order replay would run them.
+pub fn planned_commands(store: &Store, reference: &str) -> Result<Vec<PlannedCommand>> {
+    let target = refs::resolve(&store.lineage, reference)?;
+    let mut out = Vec::new();
+    for id in crate::plan::steps_behind(store, &target)? {
+        let step = load_step(store, id)?;
+        if step.kind != StepKind::Command {
+            continue;
+        }
+        let rec = command::RecordedCode::of(&step)?;
+        out.push(PlannedCommand {
+            step: id,
+            command: rec.line(),
+            cwd: rec.cwd.clone(),
+            repository: rec.git.as_ref().map(|g| g.repository.clone()),
+            commit: rec.git.as_ref().and_then(|g| g.commit.clone()),
+            not_runnable: command::cannot_run(&rec).map(|(_, why)| why),
+        });
+    }
+    Ok(out)
+}
+
+/// Computes `reference` again from its raw ancestors; stops at the first step that cannot be
+/// shown to give its recorded bytes.
+pub fn replay(store: &mut Store, reference: &str, options: &ReplayOptions) -> Result<ReplayReport> {
+    let target = refs::resolve(&store.lineage, reference)?;
+    let seen = crate::plan::steps_behind(store, &target)?;
+    let mut steps = Vec::new();
+    let mut reproduced = true;
+    for id in seen {
+        let step = load_step(store, id)?;
+        let outputs = store.lineage.step_outputs(id)?;
+        let Some(out) = outputs.first() else {
+            continue;
+        };
+        let mut entry = ReplayedStep {
+            step: id,
+            kind: step.kind,
+            operation: step.operation.clone(),
+            produced: out.label(),
+            recorded_hash: out.hash.clone(),
+            computed_hash: None,
+            result: String::new(),
+            detail: None,
+            warnings: Vec::new(),
+            difference: None,
+        };
+        let stop = match step.kind {
+            StepKind::Ingest if crate::convert::conversion_of(&step).is_some() => {
+                converted_intake(store, &step, out, &mut entry)?
+            }
+            StepKind::Revert => revert_step(store, &step, out, &mut entry)?,
+            // Cell patches a revert recorded for a later command: re-applied like a hand edit.
+            StepKind::Command if step.params.get("reapplies_step").is_some() => {
+                hand_edit_step(store, &step, out, &mut entry)?
+            }
+            StepKind::Ingest => {
+                let state = object_state(store, &out.hash)?;
+                entry.result = format!("raw_{state}");
+                if state != "intact" {
+                    entry.detail = Some(format!(
+                        "the raw data of {} is {state}; replay can only recompute what steps made from raw data, not the raw data itself",
+                        out.label()
+                    ));
+                }
+                state != "intact"
+            }
+            StepKind::Operation => built_in(store, &step, out, &mut entry)?,
+            StepKind::HandEdit => hand_edit_step(store, &step, out, &mut entry)?,
+            StepKind::Command if options.allow_exec => {
+                let r = command::rerun(store, &step, &outputs)?;
+                entry.result = r.result.to_string();
+                entry.detail = r.detail;
+                entry.warnings = r.warnings;
+                entry.computed_hash = r.computed_hash;
+                entry.difference = r.difference;
+                !matches!(r.result, "same" | "restored") || stored_damaged(store, out, &mut entry)?
+            }
+            other => {
+                let state = object_state(store, &out.hash)?;
+                entry.result = "not_rerun".into();
+                entry.detail = Some(format!(
+                    "a {} step is outside work, which replay runs again only with --allow-exec; its recorded output is {state}",
+                    other.as_str().replace('_', " ")
+                ));
+                reproduced = false;
+                state != "intact"
+            }
+        };
+        steps.push(entry);
+        if stop {
+            reproduced = false;
+            break;
+        }
+    }
+    Ok(ReplayReport {
+        version: target.label(),
+        hash: target.hash.clone(),
+        reproduced,
+        steps,
+    })
+}
+
+/// A converted intake (a workbook, JSON Lines): the raw object is checked and converted again;
+/// the version must come out byte for byte. `true` when the replay stops here.
+fn converted_intake(
+    store: &Store,
+    step: &Step,
+    out: &Version,
+    entry: &mut ReplayedStep,
+) -> Result<bool> {
+    let conv = crate::convert::conversion_of(step)
+        .ok_or_else(|| crate::Error::from(ErrorKind::Database("a vanished conversion".into())))?;
+    let short = &conv.raw.hash[..12.min(conv.raw.hash.len())];
+    let state = object_state(store, &conv.raw.hash)?;
+    if state != "intact" {
+        entry.result = format!("raw_{state}");
+        entry.detail = Some(format!(
+            "the raw {} object {short} that {} was converted from is {state}",
+            conv.format,
+            out.label()
+        ));
+        return Ok(true);
+    }
+    let computed = crate::convert::convert_again(store, step, &conv)?;
+    let same = computed == out.hash;
+    entry.result = if same { "same" } else { "differs" }.into();
+    entry.detail = Some(format!(
+        "converted again from the raw {} object {short}",
+        conv.format
+    ));
+    entry.computed_hash = Some(computed);
+    Ok(!same)
+}
+
+/// A revert step: its version is the table of the version before the step it took out, so it
+/// must have that version's hash and be intact. `true` when the replay stops here.
+fn revert_step(
+    store: &Store,
+    step: &Step,
+    out: &Version,
+    entry: &mut ReplayedStep,
+) -> Result<bool> {
+    let inputs = store.lineage.step_input_versions(step.id)?;
+    let Some((_, base)) = inputs.iter().find(|(role, _)| role == "input") else {
+        return Err(ErrorKind::Database(format!("step {} records no input", step.id)).into());
+    };
+    entry.computed_hash = Some(base.hash.clone());
+    if base.hash != out.hash {
+        entry.result = "differs".into();
+        entry.detail = Some(format!(
+            "a revert records the table of {} again, but {} has other bytes",
+            base.label(),
+            out.label()
+        ));
+        return Ok(true);
+    }
+    let state = object_state(store, &out.hash)?;
+    entry.result = if state == "intact" {
+        "same"
+    } else {
+        "output_damaged"
+    }
+    .into();
+    entry.detail = Some(format!(
+        "the table of {} again, without step {}",
+        base.label(),
+        step.reverts_step
+            .map_or_else(|| "?".into(), |s| s.to_string())
+    ));
+    Ok(state != "intact")
+}
+
+/// Re-applies a hand edit; `true` when the replay stops here.
+fn hand_edit_step(
+    store: &Store,
+    step: &Step,
+    out: &Version,
+    entry: &mut ReplayedStep,
+) -> Result<bool> {
+    let state = object_state(store, &out.hash)?;
+    if state != "intact" {
+        entry.result = "cannot_reapply".into();
+        entry.detail = Some(format!(
+            "the output of this hand edit ({}) is {state}: the values a person typed are kept only in that version, so the edit cannot be re-applied",
+            out.label()
+        ));
+        return Ok(true);
+    }
+    let inputs = store.lineage.step_input_versions(step.id)?;
+    let Some((_, input)) = inputs.iter().find(|(role, _)| role == "input") else {
+        return Err(ErrorKind::Database(format!("step {} records no input", step.id)).into());
+    };
+    match hand_edit::reapply(store, step.id, input, out)? {
+        hand_edit::Reapplied::Same => {
+            entry.result = "reapplied".into();
+            entry.computed_hash = Some(out.hash.clone());
+            Ok(false)
+        }
+        hand_edit::Reapplied::Differs(d, why) => {
+            entry.result = "differs".into();
+            entry.detail = Some(why);
+            entry.difference = Some(d);
+            Ok(true)
+        }
+    }
+}
+
+/// After a step gave the recorded bytes: whether the stored object of `out` is damaged, in
+/// which case the entry says so and the replay stops (the steps after it would read it).
+fn stored_damaged(store: &Store, out: &Version, entry: &mut ReplayedStep) -> Result<bool> {
+    if entry.result == "restored" {
+        return Ok(false);
+    }
+    let state = object_state(store, &out.hash)?;
+    if state == "intact" {
+        return Ok(false);
+    }
+    entry.result = format!("output_{state}");
+    entry.detail = Some(format!(
+        "the step gives the recorded bytes, but the stored object of {} ({}) is {state}; `sluice verify` names it too",
+        out.label(),
+        out.hash
+    ));
+    Ok(true)
+}
+
+/// Runs a built-in step again; `true` when the replay stops here.
+fn built_in(
+    store: &mut Store,
+    step: &Step,
+    out: &Version,
+    entry: &mut ReplayedStep,
+) -> Result<bool> {
+    let id = step.id;
+    let op: Operation = serde_json::from_value(step.params.clone()).map_err(|e| {
+        crate::Error::from(ErrorKind::Database(format!(
+            "step {id} holds parameters this build cannot read ({e})"
+        )))
+    })?;
+    let inputs = store.lineage.step_input_versions(id)?;
+    let Some((_, main)) = inputs.iter().find(|(role, _)| role == "input") else {
+        return Err(ErrorKind::Database(format!("step {id} records no input")).into());
+    };
+    // Tables and other sources by their exact recorded versions.
+    let op = match inputs.iter().find(|(role, _)| role != "input") {
+        Some((_, other)) => crate::plan::with_other_input(&op, other.label()),
+        None => op,
+    };
+    let mut opts = ApplyOptions {
+        op,
+        reason: step.reason.clone().unwrap_or_else(|| "replay".into()),
+        output_dataset: Some(out.dataset.clone()),
+        agent: Agent {
+            identity: "sluice replay".into(),
+            source: "builtin".into(),
+        },
+        map_table_file: None,
+        repeats: None,
+        replay: Some(ReplayCheck {
+            output_hash: out.hash.clone(),
+            provenance_hash: store.lineage.step_provenance(id)?,
+        }),
+    };
+    match apply::apply(store, &main.label(), &opts) {
+        Ok(ApplyOutcome::Replayed {
+            output_hash,
+            matches,
+            provenance_matches,
+            restored,
+            ..
+        }) => {
+            entry.computed_hash = Some(output_hash.clone());
+            entry.result = match (matches, provenance_matches, restored) {
+                (false, _, _) => "differs",
+                (true, false, _) => "provenance_differs",
+                (true, true, true) => "restored",
+                (true, true, false) => "same",
+            }
+            .to_string();
+            if matches && provenance_matches {
+                return stored_damaged(store, out, entry);
+            }
+            if matches {
+                entry.detail = Some("the output bytes are the recorded ones, but the provenance computed now differs from the recorded object".to_string());
+                return Ok(true);
+            }
+            entry.detail = Some(format!(
+                "the step gives other bytes ({}) than it recorded for {} ({})",
+                &output_hash[..12],
+                out.label(),
+                &out.hash[..12]
+            ));
+            // The recomputed bytes, to compare: the step is computed once more, told that its
+            // own result is the one expected, so that apply writes them as an object.
+            opts.replay = Some(ReplayCheck {
+                output_hash: output_hash.clone(),
+                provenance_hash: None,
+            });
+            match computed_difference(store, main, out, &opts, &output_hash) {
+                Ok(d) => entry.difference = Some(Box::new(d)),
+                Err(e) => entry
+                    .warnings
+                    .push(format!("the outputs could not be compared: {e}")),
+            }
+            Ok(true)
+        }
+        Ok(_) => Err(ErrorKind::Database("a replayed step was recorded".into()).into()),
+        Err(e) => {
+            entry.result = "differs".into();
+            entry.detail = Some(format!("the step cannot run again: {e}"));
+            Ok(true)
+        }
+    }
+}
+
+/// The difference between `recorded` and the bytes the step computes now (hash `computed`):
+/// the bytes are written as an object by a second replayed apply, copied to a file under
+/// `tmp/`, and the object and file removed again (the object only if it was not there before
+/// and nothing refers to it).
+fn computed_difference(
+    store: &mut Store,
+    input: &Version,
+    recorded: &Version,
+    opts: &ApplyOptions,
+    computed: &str,
+) -> Result<Difference> {
+    let hash: Hash = computed
+        .parse()
+        .map_err(|e: String| crate::Error::from(ErrorKind::Database(e)))?;
+    let written = match apply::apply(store, &input.label(), opts)? {
+        ApplyOutcome::Replayed { restored, .. } => restored,
+        _ => return Err(ErrorKind::Database("a replayed step was recorded".into()).into()),
+    };
+    let tmp = store.dir().join("tmp").join(format!(
+        "replay-{}-{}.csv",
+        std::process::id(),
+        &computed[..16]
+    ));
+    let copied = (|| {
+        let mut f = std::fs::File::create(&tmp).map_err(|e| crate::Error::io(&tmp, e))?;
+        store.objects.copy_to(&hash, &mut f)?;
+        Ok::<(), crate::Error>(())
+    })();
+    if written && !store.lineage.object_recorded(computed)? {
+        store.objects.discard_unreferenced(&hash);
+    }
+    let result = copied.and_then(|_| difference::against_file(store, recorded, &tmp));
+    let _ = std::fs::remove_file(&tmp);
+    result
+}
+
+/// Applies the chain of steps that made `reference` to new raw data for its input `name`
+/// (next quarter's export): `file` is taken in as the next version of that dataset, the other
+/// raw inputs stay the versions the chain read, and every step is recorded again in order,
+/// each naming the step it repeats. A step that cannot apply (a missing column, a failing
+/// gate) stops the run and keeps what was done, as `sluice run` does.
+pub fn onto(
+    store: &mut Store,
+    reference: &str,
+    name: &str,
+    file: &std::path::Path,
+    why: Option<String>,
+    agent: &Agent,
+) -> Result<std::result::Result<crate::plan::RunReport, crate::plan::RunFailure>> {
+    let mut plan = crate::plan::export(store, reference, std::path::Path::new("/"))?;
+    if !plan.inputs.iter().any(|i| i.name == name) {
+        let names: Vec<&str> = plan.inputs.iter().map(|i| i.name.as_str()).collect();
+        return Err(crate::Error::usage(format!(
+            "--onto {name}=...: {reference} is not made from a dataset named \"{name}\"; its raw inputs are: {}",
+            names.join(", ")
+        )));
+    }
+    let mut bindings = Vec::new();
+    for input in &mut plan.inputs {
+        if input.name == name {
+            input.why =
+                Some(why.clone().unwrap_or_else(|| {
+                    format!("new raw data for the steps that made {reference}")
+                }));
+            bindings.push((
+                input.name.clone(),
+                crate::plan::Binding::File(file.to_path_buf()),
+            ));
+        } else if let Some(recorded) = &input.recorded {
+            bindings.push((
+                input.name.clone(),
+                crate::plan::Binding::Version(recorded.clone()),
+            ));
+        }
+    }
+    let opts = crate::plan::RunOptions {
+        plan_dir: std::path::PathBuf::from("."),
+        bindings,
+        agent: agent.clone(),
+    };
+    Ok(crate::plan::run(store, &plan, &opts))
+}
