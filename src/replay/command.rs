@@ -164,7 +164,7 @@ pub(super) fn cannot_run(rec: &RecordedCode) -> Option<(&'static str, String)> {
 }
 
 /// Runs the command step `step` again and compares what it writes with `outputs`.
-pub(super) fn rerun(store: &Store, step: &Step, outputs: &[Version]) -> Result<Rerun> {
+pub(super) fn rerun(store: &mut Store, step: &Step, outputs: &[Version]) -> Result<Rerun> {
     let rec = RecordedCode::of(step)?;
     if let Some((result, why)) = cannot_run(&rec) {
         return Ok(Rerun::stop(result, why, Vec::new()));

@@ -5,8 +5,9 @@
 //!
 //! The computed bytes are a file under the store's `tmp/`; to compare them the diff engine
 //! needs them as a version, so they are drafted like an intake (table and row index objects
-//! written, nothing recorded), compared, and the objects the draft wrote are removed again
-//! unless a recorded row refers to them. Nothing is written to the database.
+//! written, nothing recorded) into a stage of their own under `tmp/`
+//! ([`crate::store::Objects::begin_stage`]), compared, and the stage removed: the store is
+//! left as it was.
 
 use std::path::Path;
 
@@ -14,7 +15,6 @@ use serde::Serialize;
 
 use crate::diff::{self, ChangeKind, DiffOptions, KeyChoice, MatchedBy};
 use crate::error::Result;
-use crate::hash::Hash;
 use crate::intake::{self, IngestOptions, Prepared};
 use crate::model::{Agent, Version};
 use crate::store::Store;
@@ -69,7 +69,7 @@ pub struct Difference {
 }
 
 /// Compares the recorded version with the file `computed` (bytes a replayed step gave).
-pub fn against_file(store: &Store, recorded: &Version, computed: &Path) -> Result<Difference> {
+pub fn against_file(store: &mut Store, recorded: &Version, computed: &Path) -> Result<Difference> {
     let opts = IngestOptions {
         dataset: recorded.dataset.clone(),
         key: None,
@@ -83,29 +83,28 @@ pub fn against_file(store: &Store, recorded: &Version, computed: &Path) -> Resul
             source: "builtin".into(),
         },
     };
-    match intake::prepare(store, computed, &opts)? {
+    // The draft's objects go to a stage of their own, removed again afterwards: the store is
+    // left as it was.
+    let stage = store.dir().join("tmp").join(format!(
+        "compare-{}-{}",
+        std::process::id(),
+        std::time::SystemTime::now()
+            .duration_since(std::time::UNIX_EPOCH)
+            .map_or(0, |d| d.as_nanos())
+    ));
+    store
+        .objects
+        .begin_stage(stage.clone())
+        .map_err(|e| crate::Error::io(&stage, e))?;
+    let result = (|| match intake::prepare(store, computed, &opts)? {
         Prepared::Unchanged(v) => summarize(store, recorded, &v),
         Prepared::Ready(mut p) => {
-            let table: Hash = p
-                .hash()
-                .parse()
-                .map_err(|e: String| crate::Error::from(crate::error::ErrorKind::Database(e)))?;
-            let table_was_there = store.objects.exists(&table);
             let draft = p.draft(store)?;
-            let result = summarize(store, recorded, &draft);
-            // The draft's objects go again, unless they were there already or a row uses them.
-            for hex in [&draft.hash, &draft.row_index] {
-                if let Ok(h) = hex.parse::<Hash>() {
-                    let keep = (*hex == draft.hash && table_was_there)
-                        || store.lineage.object_recorded(hex)?;
-                    if !keep {
-                        store.objects.discard_unreferenced(&h);
-                    }
-                }
-            }
-            result
+            summarize(store, recorded, &draft)
         }
-    }
+    })();
+    store.objects.discard_stage();
+    result
 }
 
 fn summarize(store: &Store, recorded: &Version, computed: &Version) -> Result<Difference> {

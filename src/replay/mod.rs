@@ -425,9 +425,9 @@ fn built_in(
 }
 
 /// The difference between `recorded` and the bytes the step computes now (hash `computed`):
-/// the bytes are written as an object by a second replayed apply, copied to a file under
-/// `tmp/`, and the object and file removed again (the object only if it was not there before
-/// and nothing refers to it).
+/// a second replayed apply, told to expect its own result, writes them into a stage of their
+/// own under `tmp/`; they are copied to a file there, the stage is removed, and the file is
+/// compared and removed. The store is left as it was.
 fn computed_difference(
     store: &mut Store,
     input: &Version,
@@ -438,23 +438,23 @@ fn computed_difference(
     let hash: Hash = computed
         .parse()
         .map_err(|e: String| crate::Error::from(ErrorKind::Database(e)))?;
-    let written = match apply::apply(store, &input.label(), opts)? {
-        ApplyOutcome::Replayed { restored, .. } => restored,
-        _ => return Err(ErrorKind::Database("a replayed step was recorded".into()).into()),
-    };
-    let tmp = store.dir().join("tmp").join(format!(
-        "replay-{}-{}.csv",
-        std::process::id(),
-        &computed[..16]
-    ));
+    let name = format!("replay-{}-{}", std::process::id(), &computed[..16]);
+    let stage = store.dir().join("tmp").join(&name);
+    let tmp = store.dir().join("tmp").join(format!("{name}.csv"));
+    store
+        .objects
+        .begin_stage(stage.clone())
+        .map_err(|e| crate::Error::io(&stage, e))?;
     let copied = (|| {
+        match apply::apply(store, &input.label(), opts)? {
+            ApplyOutcome::Replayed { .. } => {}
+            _ => return Err(ErrorKind::Database("a replayed step was recorded".into()).into()),
+        }
         let mut f = std::fs::File::create(&tmp).map_err(|e| crate::Error::io(&tmp, e))?;
         store.objects.copy_to(&hash, &mut f)?;
         Ok::<(), crate::Error>(())
     })();
-    if written && !store.lineage.object_recorded(computed)? {
-        store.objects.discard_unreferenced(&hash);
-    }
+    store.objects.discard_stage();
     let result = copied.and_then(|_| difference::against_file(store, recorded, &tmp));
     let _ = std::fs::remove_file(&tmp);
     result

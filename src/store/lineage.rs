@@ -650,17 +650,6 @@ impl Lineage {
         super::audit::entries(&self.conn)
     }
 
-    /// Whether any row records object `hash` (a table, row index or blob).
-    pub fn object_recorded(&self, hash: &str) -> Result<bool> {
-        let mut st = self
-            .conn
-            .prepare_cached("SELECT count(*) FROM objects WHERE hash = ?1")
-            .map_err(db_err)?;
-        let n: i64 = st.query_row(params![hash], |r| r.get(0)).map_err(db_err)?;
-        Ok(n > 0)
-    }
-
-    /// Every object the database records, as (hash, kind, n_bytes).
     /// The recorded size of object `hash`, when it is recorded.
     pub fn object_size(&self, hash: &str) -> Result<Option<u64>> {
         self.conn
@@ -674,6 +663,7 @@ impl Lineage {
             .map_err(db_err)
     }
 
+    /// Every object the database records, as (hash, kind, n_bytes).
     pub fn objects(&self) -> Result<Vec<(String, String, u64)>> {
         let mut st = self
             .conn

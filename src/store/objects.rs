@@ -51,14 +51,6 @@ pub trait ObjectBackend: Send + Sync {
         Ok(n)
     }
     fn exists(&self, hash: &Hash) -> bool;
-    /// Removes an object that nothing refers to (one a command wrote for its own use, such as
-    /// the recomputed bytes replay compares). The default refuses: a backend says it can.
-    fn remove_unreferenced(&self, _hash: &Hash) -> io::Result<()> {
-        Err(io::Error::new(
-            io::ErrorKind::Unsupported,
-            "this object backend does not remove objects",
-        ))
-    }
     fn size(&self, hash: &Hash) -> io::Result<u64>;
     /// Every object name present, for `verify` and `gc`. Names that are not hashes are returned
     /// as strays.
@@ -237,13 +229,6 @@ impl ObjectBackend for FsBackend {
             ));
         }
         Ok(Box::new(File::open(p)?))
-    }
-
-    fn remove_unreferenced(&self, hash: &Hash) -> io::Result<()> {
-        match fs::remove_file(self.path_of(hash)) {
-            Err(e) if e.kind() != io::ErrorKind::NotFound => Err(e),
-            _ => Ok(()),
-        }
     }
 
     fn exists(&self, hash: &Hash) -> bool {
@@ -428,12 +413,6 @@ impl Objects {
 
     pub fn exists(&self, hash: &Hash) -> bool {
         self.reader(hash).exists(hash)
-    }
-
-    /// Removes object `hash`, which the caller wrote itself and no database row refers to
-    /// (the caller checks); a leftover is harmless, so a backend that cannot remove is no error.
-    pub fn discard_unreferenced(&self, hash: &Hash) {
-        let _ = self.backend.remove_unreferenced(hash);
     }
 
     /// Copies object `hash` to `out`, checking the hash as it goes. The bytes are written before
