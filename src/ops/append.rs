@@ -11,7 +11,6 @@ use crate::error::{Error, Result};
 use crate::model::{RowRun, Version};
 use crate::refs;
 use crate::store::Store;
-use crate::table::write::CanonicalWriter;
 
 pub(super) fn run(
     store: &mut Store,
@@ -70,7 +69,7 @@ pub(super) fn run(
     let started_at = clock::now_rfc3339();
     let store_dir = store.dir().to_path_buf();
     let store_io = |e: std::io::Error| Error::io(&store_dir.join("tmp"), e);
-    let mut writer = CanonicalWriter::new(&store.objects, &input.header, &input.null_tokens)
+    let mut writer = super::apply::output_writer(store, opts, &input.header, &input.null_tokens)
         .map_err(store_io)?;
     let mut n_ours = 0u64;
     each_input_row(store, &input, |_, r| {

@@ -261,7 +261,7 @@ fn apply_to(store: &mut Store, input: Version, opts: &ApplyOptions, mode: Mode) 
     let store_io = |e: io::Error| Error::io(&store_dir.join("tmp"), e);
 
     let mut writer =
-        CanonicalWriter::new(&store.objects, &out_header, &input.null_tokens).map_err(store_io)?;
+        output_writer(store, opts, &out_header, &input.null_tokens).map_err(store_io)?;
     let mut changes = ChangeLog::new(columns.len());
     let mut drops = DropLog::default();
     let mut runs: Vec<RowRun> = Vec::new();
@@ -574,6 +574,26 @@ pub(crate) struct OtherInput {
     pub id: i64,
     pub runs: Vec<RowRun>,
     pub sources: Vec<(String, String)>,
+}
+
+/// The writer of a step's output: in replay, when the recorded output is already stored, one
+/// that only hashes (nothing is written to disk); otherwise one that keeps the bytes.
+pub(super) fn output_writer(
+    store: &Store,
+    opts: &ApplyOptions,
+    header: &[String],
+    null_tokens: &[String],
+) -> io::Result<CanonicalWriter> {
+    let stored = opts.replay.as_ref().is_some_and(|c| {
+        c.output_hash
+            .parse::<Hash>()
+            .is_ok_and(|h| store.objects.exists(&h))
+    });
+    if stored {
+        CanonicalWriter::hashing_only(header, null_tokens)
+    } else {
+        CanonicalWriter::new(&store.objects, header, null_tokens)
+    }
 }
 
 /// A step computed and made durable (output objects and provenance object written) but not

@@ -20,7 +20,6 @@ use crate::error::{Error, ErrorKind, Result};
 use crate::model::Version;
 use crate::store::Store;
 use crate::table::profile::{cmp_numbers, number_shape};
-use crate::table::write::CanonicalWriter;
 use crate::table::RawRecord;
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
@@ -260,7 +259,8 @@ pub(super) fn run(
 
     let store_dir = store.dir().to_path_buf();
     let store_io = |e: std::io::Error| Error::io(&store_dir.join("tmp"), e);
-    let mut writer = CanonicalWriter::new(&store.objects, &out_header, &[]).map_err(store_io)?;
+    let mut writer =
+        super::apply::output_writer(store, opts, &out_header, &[]).map_err(store_io)?;
     for g in &groups {
         let mut cells: Vec<String> = g.key.clone();
         cells.push(g.count.to_string());

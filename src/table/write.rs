@@ -102,6 +102,20 @@ pub struct CanonicalWriter {
 impl CanonicalWriter {
     /// Starts a version with `header`; `null_tokens` count as blanks in its profile.
     pub fn new(objects: &Objects, header: &[String], null_tokens: &[String]) -> io::Result<Self> {
+        Self::start(Some(objects), header, null_tokens)
+    }
+
+    /// A writer that computes the version's hash, row index hash and profile but keeps no
+    /// bytes (replay of a step whose output is already stored); its objects cannot be finished.
+    pub fn hashing_only(header: &[String], null_tokens: &[String]) -> io::Result<Self> {
+        Self::start(None, header, null_tokens)
+    }
+
+    fn start(
+        objects: Option<&Objects>,
+        header: &[String],
+        null_tokens: &[String],
+    ) -> io::Result<Self> {
         let mut serial = Serial::new(objects, header, null_tokens)?;
         let n_cols = header.len();
         let (to_writer, batches) = mpsc::sync_channel::<Batch>(2);
@@ -215,10 +229,18 @@ struct Serial {
 }
 
 impl Serial {
-    fn new(objects: &Objects, header: &[String], null_tokens: &[String]) -> io::Result<Self> {
+    fn new(
+        objects: Option<&Objects>,
+        header: &[String],
+        null_tokens: &[String],
+    ) -> io::Result<Self> {
+        let writer = || match objects {
+            Some(o) => o.writer(),
+            None => Ok(crate::store::objects::ObjectWriter::hashing_only()),
+        };
         let mut w = Serial {
-            table: objects.writer()?,
-            index: objects.writer()?,
+            table: writer()?,
+            index: writer()?,
             buf: Vec::with_capacity(1 << 20),
             index_buf: Vec::with_capacity(256 * 1024),
             scratch: Vec::new(),
