@@ -51,6 +51,7 @@ pub mod intake;
 pub mod model;
 pub mod ops;
 pub mod plan;
+pub mod progress;
 pub mod provenance;
 pub mod refs;
 pub mod replay;

@@ -19,6 +19,20 @@ fn main() {
         .get_matches_from(argv);
     let args = cli::args::Cli::from_arg_matches(&matches).unwrap_or_else(|e| e.exit());
     let colour_errors = cli::term::colour_stderr(args.color);
+    // A progress bar for work longer than about a second, only for a person at a terminal,
+    // and never alongside JSON.
+    if std::io::IsTerminal::is_terminal(&std::io::stderr())
+        && !cli::term::asks_for_json(&std::env::args_os().collect::<Vec<_>>())
+        && std::env::var_os("TERM").is_none_or(|t| t != "dumb")
+    {
+        let delay = std::env::var("SLUICE_PROGRESS_DELAY_MS")
+            .ok()
+            .and_then(|v| v.parse().ok())
+            .unwrap_or(1000);
+        sluice::progress::listen(Box::new(cli::term::Bar::new(
+            std::time::Duration::from_millis(delay),
+        )));
+    }
     let code = match cli::run(args) {
         Ok(code) => code,
         Err(err) => {

@@ -71,7 +71,13 @@ pub fn replay(store: &mut Store, reference: &str) -> Result<ReplayReport> {
     };
     let mut steps = Vec::new();
     let mut reproduced = true;
+    let mut progress = crate::progress::Task::begin(
+        || format!("replaying {}", target.label()),
+        Some(seen.len() as u64),
+        crate::progress::Unit::Steps,
+    );
     for id in seen {
+        progress.add(1);
         let step = store.lineage.step(id)?.ok_or_else(|| {
             crate::Error::from(ErrorKind::Database(format!(
                 "step {id} is missing; run `sluice verify`"

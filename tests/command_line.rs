@@ -577,3 +577,50 @@ fn manual_pages_are_valid_roff_with_every_command() {
     );
     assert_contains(&String::from_utf8_lossy(&man.stdout), "--column");
 }
+
+/// Runs sluice with standard error (and output) on a pseudo-terminal, through util-linux's
+/// `script`, with the bar's delay at 0 so that even short work draws it.
+fn on_a_terminal(s: &Sandbox, args: &str) -> String {
+    let line = format!("{} {args}", env!("CARGO_BIN_EXE_sluice"));
+    let out = Command::new(program("script"))
+        .args(["-qec", &line, "/dev/null"])
+        .current_dir(s.path())
+        .env("SLUICE_AGENT", common::AGENT)
+        .env("SLUICE_PROGRESS_DELAY_MS", "0")
+        .env("TERM", "xterm")
+        .env_remove("SLUICE_STORE")
+        .output()
+        .expect("run script");
+    assert!(out.status.success(), "sluice {args} failed on a terminal");
+    String::from_utf8_lossy(&out.stdout).into_owned()
+}
+
+#[test]
+fn progress_is_drawn_only_on_a_terminal_and_never_with_json() {
+    let s = Sandbox::with_store();
+    let mut rows = String::from("id,name\n");
+    for i in 0..50_000 {
+        rows.push_str(&format!("{i}, name {i}\n"));
+    }
+    s.file("orders.csv", &rows);
+    // Piped: nothing on standard error, even with no delay.
+    let r = s
+        .command(&["ingest", "orders.csv", "--as", "orders", "--why", "w"])
+        .env("SLUICE_PROGRESS_DELAY_MS", "0")
+        .output()
+        .expect("run");
+    assert!(r.status.success());
+    assert!(
+        r.stderr.is_empty(),
+        "{}",
+        String::from_utf8_lossy(&r.stderr)
+    );
+    // On a terminal: the bar names the work, and is cleared before the report.
+    let screen = on_a_terminal(&s, "apply orders trim --why pads");
+    assert_contains(&screen, "reading orders@1");
+    assert_contains(&screen, "\r\u{1b}[Krecorded orders@2");
+    // With --json: no bar, only the JSON.
+    let screen = on_a_terminal(&s, "replay orders --json");
+    assert!(!screen.contains("replaying"), "{screen}");
+    assert!(screen.trim_start().starts_with('{'), "{screen}");
+}

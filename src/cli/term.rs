@@ -88,3 +88,200 @@ mod tests {
         );
     }
 }
+
+/// The progress bar on standard error: shown only after the work has taken `delay` (about a
+/// second: shorter work stays silent), redrawn at most ten times a second on one line, and
+/// cleared when the outermost task ends, so that nothing of it stays in the scrollback.
+pub struct Bar {
+    delay: std::time::Duration,
+    state: std::sync::Mutex<BarState>,
+}
+
+struct BarState {
+    /// The tasks under way, innermost last: what, total, unit, done.
+    tasks: Vec<(String, Option<u64>, sluice::progress::Unit, u64)>,
+    started: Option<std::time::Instant>,
+    last_draw: Option<std::time::Instant>,
+    drawn: bool,
+}
+
+impl Bar {
+    pub fn new(delay: std::time::Duration) -> Bar {
+        Bar {
+            delay,
+            state: std::sync::Mutex::new(BarState {
+                tasks: Vec::new(),
+                started: None,
+                last_draw: None,
+                drawn: false,
+            }),
+        }
+    }
+
+    fn draw(&self, st: &mut BarState, force: bool) {
+        let now = std::time::Instant::now();
+        let Some(started) = st.started else { return };
+        if now.duration_since(started) < self.delay {
+            return;
+        }
+        if !force
+            && st
+                .last_draw
+                .is_some_and(|t| now.duration_since(t) < std::time::Duration::from_millis(100))
+        {
+            return;
+        }
+        if let Some((what, total, unit, done)) = st.tasks.last() {
+            let text = bar_line(what, *done, *total, *unit, 78);
+            use std::io::Write;
+            let mut err = std::io::stderr().lock();
+            let _ = write!(err, "\r\x1b[K{text}");
+            let _ = err.flush();
+            st.drawn = true;
+            st.last_draw = Some(now);
+        }
+    }
+}
+
+impl sluice::progress::Listener for Bar {
+    fn begin(&self, what: &str, total: Option<u64>, unit: sluice::progress::Unit) {
+        let Ok(mut st) = self.state.lock() else {
+            return;
+        };
+        if st.tasks.is_empty() {
+            st.started = Some(std::time::Instant::now());
+        }
+        st.tasks.push((what.to_string(), total, unit, 0));
+        self.draw(&mut st, true);
+    }
+
+    fn update(&self, done: u64) {
+        let Ok(mut st) = self.state.lock() else {
+            return;
+        };
+        if let Some(t) = st.tasks.last_mut() {
+            t.3 = done;
+        }
+        self.draw(&mut st, false);
+    }
+
+    fn end(&self) {
+        let Ok(mut st) = self.state.lock() else {
+            return;
+        };
+        st.tasks.pop();
+        if st.tasks.is_empty() {
+            if st.drawn {
+                use std::io::Write;
+                let mut err = std::io::stderr().lock();
+                let _ = write!(err, "\r\x1b[K");
+                let _ = err.flush();
+            }
+            st.drawn = false;
+            st.started = None;
+        } else {
+            self.draw(&mut st, true);
+        }
+    }
+}
+
+/// One line of the bar, at most `width` characters: what, a gauge when the total is known,
+/// the share done and the amounts.
+pub fn bar_line(
+    what: &str,
+    done: u64,
+    total: Option<u64>,
+    unit: sluice::progress::Unit,
+    width: usize,
+) -> String {
+    use sluice::progress::Unit;
+    let amount = |n: u64| match unit {
+        Unit::Bytes => format!("{:.1} MB", n as f64 / 1e6),
+        Unit::Steps => n.to_string(),
+    };
+    let tail = match (total, unit) {
+        (Some(t), Unit::Steps) => format!("step {} of {t}", done.min(t)),
+        (Some(t), Unit::Bytes) => format!("{:.1} of {}", done.min(t) as f64 / 1e6, amount(t)),
+        (None, _) => amount(done),
+    };
+    let gauge = match total {
+        Some(t) if t > 0 => {
+            let share = done.min(t) as f64 / t as f64;
+            let cells = 20usize;
+            let full = (share * cells as f64).floor() as usize;
+            format!(
+                " [{}{}] {:>3}%",
+                "#".repeat(full),
+                "-".repeat(cells - full),
+                (share * 100.0).floor() as u64
+            )
+        }
+        _ => String::new(),
+    };
+    let fixed = gauge.chars().count() + tail.chars().count() + 2;
+    let room = width.saturating_sub(fixed).max(8);
+    let what: String = if what.chars().count() > room {
+        let keep: String = what
+            .chars()
+            .skip(what.chars().count() - (room - 1))
+            .collect();
+        format!("…{keep}")
+    } else {
+        what.to_string()
+    };
+    format!("{what}{gauge}  {tail}")
+}
+
+/// Whether this command line asks for JSON (`--json` before any `--`): then nothing but the
+/// JSON is written, and no bar either.
+pub fn asks_for_json(args: &[std::ffi::OsString]) -> bool {
+    args.iter()
+        .skip(1)
+        .map_while(|a| a.to_str().filter(|a| *a != "--"))
+        .any(|a| a == "--json")
+}
+
+#[cfg(test)]
+mod bar_tests {
+    use super::*;
+    use sluice::progress::Unit;
+
+    #[test]
+    fn a_bar_line_shows_what_how_far_and_fits() {
+        assert_eq!(
+            bar_line(
+                "taking in q3.csv",
+                50_000_000,
+                Some(200_000_000),
+                Unit::Bytes,
+                78
+            ),
+            "taking in q3.csv [#####---------------]  25%  50.0 of 200.0 MB"
+        );
+        assert_eq!(
+            bar_line("replaying q3_by_shop@1", 3, Some(20), Unit::Steps, 78),
+            "replaying q3_by_shop@1 [###-----------------]  15%  step 3 of 20"
+        );
+        assert_eq!(
+            bar_line("reading x", 1_500_000, None, Unit::Bytes, 78),
+            "reading x  1.5 MB"
+        );
+        let long = format!("taking in /{}/q3.csv", "very-long-folder".repeat(10));
+        let line = bar_line(&long, 1, Some(2), Unit::Bytes, 78);
+        assert!(line.chars().count() <= 78, "{line}");
+        assert!(line.starts_with('…') && line.contains("q3.csv"));
+    }
+
+    #[test]
+    fn json_is_asked_for_only_before_the_double_dash() {
+        let os = |v: &[&str]| {
+            v.iter()
+                .map(Into::into)
+                .collect::<Vec<std::ffi::OsString>>()
+        };
+        assert!(asks_for_json(&os(&["sluice", "log", "--json"])));
+        assert!(!asks_for_json(&os(&[
+            "sluice", "exec", "--", "tool", "--json"
+        ])));
+    }
+}
