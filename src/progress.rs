@@ -17,14 +17,15 @@ pub enum Unit {
     Steps,
 }
 
-/// Receives progress. Tasks nest (a replay's steps read versions): `begin` and `end` pair up.
+/// Receives progress. Tasks nest (a replay's steps read versions) and may run side by side on
+/// threads (a diff reads both versions at once), so each is named by the id `begin` returns.
 pub trait Listener: Send + Sync {
     /// A task starts: what it does, in words for a person, and its total when known.
-    fn begin(&self, what: &str, total: Option<u64>, unit: Unit);
-    /// The innermost task has done `done` of its total.
-    fn update(&self, done: u64);
-    /// The innermost task ended (finished or failed).
-    fn end(&self);
+    fn begin(&self, what: &str, total: Option<u64>, unit: Unit) -> u64;
+    /// Task `id` has done `done` of its total.
+    fn update(&self, id: u64, done: u64);
+    /// Task `id` ended (finished or failed).
+    fn end(&self, id: u64);
 }
 
 static LISTENER: OnceLock<Box<dyn Listener>> = OnceLock::new();
@@ -42,33 +43,25 @@ pub struct Task {
     done: u64,
     reported: u64,
     unit: Unit,
-    active: bool,
+    /// The listener's id for this task, when someone listens.
+    id: Option<u64>,
 }
 
 impl Task {
     /// Starts a task; `what` is only called when someone listens.
     pub fn begin(what: impl FnOnce() -> String, total: Option<u64>, unit: Unit) -> Task {
-        let active = match LISTENER.get() {
-            Some(l) => {
-                l.begin(&what(), total, unit);
-                true
-            }
-            None => false,
-        };
         Task {
             done: 0,
             reported: 0,
             unit,
-            active,
+            id: LISTENER.get().map(|l| l.begin(&what(), total, unit)),
         }
     }
 
     /// `n` more done.
     pub fn add(&mut self, n: u64) {
         self.done += n;
-        if !self.active {
-            return;
-        }
+        let Some(id) = self.id else { return };
         let due = match self.unit {
             Unit::Bytes => self.done - self.reported >= BYTES_PER_UPDATE,
             Unit::Steps => true,
@@ -76,7 +69,7 @@ impl Task {
         if due {
             self.reported = self.done;
             if let Some(l) = LISTENER.get() {
-                l.update(self.done);
+                l.update(id, self.done);
             }
         }
     }
@@ -84,10 +77,8 @@ impl Task {
 
 impl Drop for Task {
     fn drop(&mut self) {
-        if self.active {
-            if let Some(l) = LISTENER.get() {
-                l.end();
-            }
+        if let (Some(id), Some(l)) = (self.id, LISTENER.get()) {
+            l.end(id);
         }
     }
 }

@@ -98,8 +98,11 @@ pub struct Bar {
 }
 
 struct BarState {
-    /// The tasks under way, innermost last: what, total, unit, done.
-    tasks: Vec<(String, Option<u64>, sluice::progress::Unit, u64)>,
+    /// The tasks under way, oldest first: id, what, total, unit, done.
+    tasks: Vec<(u64, String, Option<u64>, sluice::progress::Unit, u64)>,
+    next_id: u64,
+    /// The task drawn: the one that last began or moved.
+    shown: u64,
     started: Option<std::time::Instant>,
     last_draw: Option<std::time::Instant>,
     drawn: bool,
@@ -111,6 +114,8 @@ impl Bar {
             delay,
             state: std::sync::Mutex::new(BarState {
                 tasks: Vec::new(),
+                next_id: 0,
+                shown: 0,
                 started: None,
                 last_draw: None,
                 drawn: false,
@@ -131,7 +136,9 @@ impl Bar {
         {
             return;
         }
-        if let Some((what, total, unit, done)) = st.tasks.last() {
+        let shown = st.shown;
+        let task = st.tasks.iter().find(|t| t.0 == shown).or(st.tasks.last());
+        if let Some((_, what, total, unit, done)) = task {
             let text = bar_line(what, *done, *total, *unit, 78);
             use std::io::Write;
             let mut err = std::io::stderr().lock();
@@ -144,32 +151,37 @@ impl Bar {
 }
 
 impl sluice::progress::Listener for Bar {
-    fn begin(&self, what: &str, total: Option<u64>, unit: sluice::progress::Unit) {
+    fn begin(&self, what: &str, total: Option<u64>, unit: sluice::progress::Unit) -> u64 {
         let Ok(mut st) = self.state.lock() else {
-            return;
+            return 0;
         };
         if st.tasks.is_empty() {
             st.started = Some(std::time::Instant::now());
         }
-        st.tasks.push((what.to_string(), total, unit, 0));
+        st.next_id += 1;
+        let id = st.next_id;
+        st.tasks.push((id, what.to_string(), total, unit, 0));
+        st.shown = id;
         self.draw(&mut st, true);
+        id
     }
 
-    fn update(&self, done: u64) {
+    fn update(&self, id: u64, done: u64) {
         let Ok(mut st) = self.state.lock() else {
             return;
         };
-        if let Some(t) = st.tasks.last_mut() {
-            t.3 = done;
+        if let Some(t) = st.tasks.iter_mut().find(|t| t.0 == id) {
+            t.4 = done;
         }
+        st.shown = id;
         self.draw(&mut st, false);
     }
 
-    fn end(&self) {
+    fn end(&self, id: u64) {
         let Ok(mut st) = self.state.lock() else {
             return;
         };
-        st.tasks.pop();
+        st.tasks.retain(|t| t.0 != id);
         if st.tasks.is_empty() {
             if st.drawn {
                 use std::io::Write;
