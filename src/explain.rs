@@ -131,9 +131,10 @@ pub fn explain(
         RowPick::Number(n) if *n >= 1 && *n <= v.n_rows => n - 1,
         RowPick::Number(n) => {
             return Err(Error::usage(format!(
-                "{} has data rows 1 to {}; there is no row {n}",
+                "{} has data rows 1 to {}; there is no row {n} (rows count from 1 after the header, as `sluice cat {}` writes them)",
                 v.label(),
-                v.n_rows
+                v.n_rows,
+                v.label()
             )))
         }
         RowPick::Key(_) => crate::trace::row_of(store, &v, row)?,

@@ -550,6 +550,11 @@ fn run_pipeline(
             let mut offset = 0u64;
             let mut buf = vec![0u8; STREAM_BUF];
             let mut batch = RecordBatch::new();
+            let mut progress = crate::progress::Task::begin(
+                || format!("taking in {}", path.display()),
+                file.metadata().ok().map(|m| m.len()),
+                crate::progress::Unit::Bytes,
+            );
             // Hands a full batch to the other thread; false when that thread has stopped.
             let send = |batch: &mut RecordBatch| -> bool {
                 let next = recycle_rx.try_recv().unwrap_or_default();
@@ -579,6 +584,7 @@ fn run_pipeline(
                 }
                 table.write(piece).map_err(|e| store_io(&store_dir_r, e))?;
                 offset += n as u64;
+                progress.add(n as u64);
                 let last = n < STREAM_BUF;
                 if n > 0 {
                     let mut stopped = false;

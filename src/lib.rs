@@ -56,6 +56,7 @@ pub mod jsonl;
 pub mod model;
 pub mod ops;
 pub mod plan;
+pub mod progress;
 pub mod prov;
 pub mod provenance;
 pub mod refs;

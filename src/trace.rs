@@ -151,9 +151,10 @@ pub fn row_of(store: &Store, v: &Version, row: &RowPick) -> Result<u64> {
         RowPick::Number(n) => {
             if *n == 0 || *n > v.n_rows {
                 return Err(Error::usage(format!(
-                    "{} has data rows 1 to {}; there is no row {n}",
+                    "{} has data rows 1 to {}; there is no row {n} (rows count from 1 after the header, as `sluice cat {}` writes them)",
                     v.label(),
-                    v.n_rows
+                    v.n_rows,
+                    v.label()
                 )));
             }
             n - 1

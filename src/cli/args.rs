@@ -14,7 +14,9 @@ use clap::{Args, Parser, Subcommand, ValueEnum};
                   transform as a step in a lineage graph, so that a cleaned value can be traced back \
                   to the raw line it came from.\n\n\
                   Exit codes: 0 success; 1 the data, the store or the system failed (verify found damage, \
-                  the disk is full); 2 a usage or input error.",
+                  a check or a gate failed, replay differed, the disk is full); 2 a usage or input error \
+                  (bad arguments, a refused file, an unknown version, no store). `sluice exec` passes on \
+                  a failing command's own status.",
     after_help = "Start with `sluice demo` to see a worked example, or `sluice init` in a project folder."
 )]
 pub struct Cli {
@@ -27,6 +29,17 @@ pub struct Cli {
     /// user.email, then the operating system user
     #[arg(long, global = true, value_name = "IDENTITY")]
     pub agent: Option<String>,
+
+    /// When to colour the output: auto (only on a terminal, and not when NO_COLOR is set),
+    /// always, or never
+    #[arg(
+        long,
+        global = true,
+        value_enum,
+        default_value = "auto",
+        value_name = "WHEN"
+    )]
+    pub color: ColorArg,
 
     #[command(subcommand)]
     pub command: Command,
@@ -345,6 +358,46 @@ pub enum Command {
         /// Where to create it (default: a new folder sluice-demo… in the working directory)
         dir: Option<PathBuf>,
     },
+
+    /// Print the tab-completion script for a shell (bash, zsh or fish)
+    #[command(after_help = "Examples:\n  \
+        sluice completions bash > ~/.local/share/bash-completion/completions/sluice\n  \
+        sluice completions zsh > ~/.zfunc/_sluice      # with fpath+=(~/.zfunc) before compinit\n  \
+        sluice completions fish > ~/.config/fish/completions/sluice.fish\n\n\
+        The script is made from this build's own command definitions; make it again after an upgrade.")]
+    Completions {
+        /// The shell to write the script for
+        #[arg(value_enum)]
+        shell: ShellArg,
+    },
+
+    /// Print the manual page (roff), or write one page per command into a folder
+    #[command(after_help = "Examples:\n  sluice manual | man -l -\n  \
+        sluice manual --dir ~/.local/share/man/man1    # then: man sluice, man sluice-trace\n\n\
+        The pages are made from this build's own command definitions and --help texts.")]
+    Manual {
+        /// Write sluice.1 and a page per command (sluice-ingest.1, sluice-apply-trim.1, ...)
+        /// into this folder instead of printing sluice.1
+        #[arg(long, value_name = "DIR")]
+        dir: Option<PathBuf>,
+    },
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
+pub enum ColorArg {
+    /// Colour only when writing to a terminal and NO_COLOR is not set
+    Auto,
+    /// Always colour (also when piped, e.g. into `less -R`)
+    Always,
+    /// Never colour
+    Never,
+}
+
+#[derive(Debug, Clone, Copy, ValueEnum)]
+pub enum ShellArg {
+    Bash,
+    Zsh,
+    Fish,
 }
 
 /// The formats `cat --format` writes.

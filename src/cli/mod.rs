@@ -6,6 +6,8 @@ pub mod args;
 pub mod render;
 pub mod render_diff;
 pub mod render_report;
+pub mod shell;
+pub mod term;
 
 use std::io::Write;
 use std::path::{Path, PathBuf};
@@ -162,8 +164,7 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             json,
         } => {
             let mut store = open_store(&cli, &cwd)?;
-            let text = std::fs::read_to_string(rules)
-                .with_context(|| format!("cannot read the rules file {}", rules.display()))?;
+            let text = read_text(rules, "the rules file", "sluice check --help")?;
             let parsed = sluice::checks::parse_rules(&text, &rules.display().to_string())?;
             let report = sluice::checks::check(
                 &mut store,
@@ -181,8 +182,7 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         }
         Command::Run { plan, inputs, json } => {
             let mut store = open_store(&cli, &cwd)?;
-            let text = std::fs::read_to_string(plan)
-                .with_context(|| format!("cannot read the plan {}", plan.display()))?;
+            let text = read_text(plan, "the plan", "sluice run --help")?;
             let parsed = sluice::plan::parse(&text, &plan.display().to_string())?;
             let bindings = inputs
                 .iter()
@@ -572,9 +572,8 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
                 None => sluice::diff::KeyChoice::Declared,
             };
             let d = sluice::diff::diff(&store, &a.from, &a.to, &sluice::diff::DiffOptions { key })?;
-            // Colour only for a person at a terminal, and never when NO_COLOR is set.
-            let colour = std::io::IsTerminal::is_terminal(&std::io::stdout())
-                && std::env::var_os("NO_COLOR").is_none_or(|v| v.is_empty());
+            // Colour only for a person at a terminal (or when asked with --color always).
+            let colour = term::colour_stdout(cli.color);
             let how = render_diff::How {
                 stat: a.stat,
                 limit: a.limit,
@@ -648,6 +647,29 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
                 prov.count(sluice::prov::ElementKind::Agent)
             )?;
             render::demo_next(&mut out, &report)?;
+            Ok(0)
+        }
+        Command::Completions { shell } => {
+            shell::completions(*shell, &mut out)?;
+            Ok(0)
+        }
+        Command::Manual { dir: None } => {
+            shell::top_page(&mut out)?;
+            Ok(0)
+        }
+        Command::Manual { dir: Some(dir) } => {
+            let written = shell::write_pages(dir)?;
+            writeln!(
+                out,
+                "wrote {} manual pages to {} (sluice.1 and one per command)",
+                written.len(),
+                dir.display()
+            )?;
+            writeln!(
+                out,
+                "next: `man -l {}`, or add the folder's parent to MANPATH and run `man sluice`",
+                dir.join("sluice.1").display()
+            )?;
             Ok(0)
         }
     }
@@ -1183,6 +1205,21 @@ fn write_file_recorded<T>(
         )
     })?;
     Ok(recorded)
+}
+
+/// Reads a file the user named (a plan, a rules file); a failure names the file, says what is
+/// wrong in the engine's words (no such file, permission denied) and where the format is.
+fn read_text(path: &Path, what: &str, format_help: &str) -> anyhow::Result<String> {
+    std::fs::read_to_string(path).map_err(|e| {
+        let detail = if e.kind() == std::io::ErrorKind::InvalidData {
+            format!("{}: not UTF-8 text", path.display())
+        } else {
+            sluice::Error::io(path, e).to_string()
+        };
+        anyhow!(sluice::Error::usage(format!(
+            "cannot read {what}: {detail} (its format: `{format_help}`)"
+        )))
+    })
 }
 
 /// Writes through a temporary file beside `path` and renames it into place only when `fill`

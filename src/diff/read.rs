@@ -18,16 +18,20 @@ fn parse_hash(hex: &str) -> Result<Hash> {
         .map_err(|e: String| Error::from(ErrorKind::Database(e)))
 }
 
-/// A reader that hashes what passes through it.
+/// A reader that hashes what passes through it (and reports how far it is, when asked to).
 struct Hashing<R> {
     inner: R,
     hasher: blake3::Hasher,
+    progress: Option<crate::progress::Task>,
 }
 
 impl<R: Read> Read for Hashing<R> {
     fn read(&mut self, buf: &mut [u8]) -> std::io::Result<usize> {
         let n = self.inner.read(buf)?;
         self.hasher.update(&buf[..n]);
+        if let Some(p) = &mut self.progress {
+            p.add(n as u64);
+        }
         Ok(n)
     }
 }
@@ -55,6 +59,11 @@ pub fn each_row(
     let mut reader = Hashing {
         inner: objects.open_raw(&hash)?,
         hasher: blake3::Hasher::new(),
+        progress: Some(crate::progress::Task::begin(
+            || format!("comparing {}", v.label()),
+            Some(v.n_bytes),
+            crate::progress::Unit::Bytes,
+        )),
     };
     let settings = ReadSettings::for_dialect(&v.dialect)?;
     let mut header_seen = !v.dialect.has_header;
@@ -82,6 +91,7 @@ pub fn row_index(objects: &Objects, v: &Version) -> Result<(Vec<u64>, Vec<u64>)>
     let mut reader = Hashing {
         inner: objects.open_raw(&hash)?,
         hasher: blake3::Hasher::new(),
+        progress: None,
     };
     let damaged = |why: &str| {
         Error::from(ErrorKind::Database(format!(
@@ -290,6 +300,11 @@ impl RawRows {
             reader: Hashing {
                 inner: objects.open_raw(&hash)?,
                 hasher: blake3::Hasher::new(),
+                progress: Some(crate::progress::Task::begin(
+                    || format!("comparing {}", v.label()),
+                    Some(v.n_bytes),
+                    crate::progress::Unit::Bytes,
+                )),
             },
             hash,
             offsets,

@@ -100,12 +100,14 @@ pub enum ApplyOutcome {
 struct Checked<R> {
     inner: R,
     hasher: blake3::Hasher,
+    progress: crate::progress::Task,
 }
 
 impl<R: Read> Read for Checked<R> {
     fn read(&mut self, buf: &mut [u8]) -> io::Result<usize> {
         let n = self.inner.read(buf)?;
         self.hasher.update(&buf[..n]);
+        self.progress.add(n as u64);
         Ok(n)
     }
 }
@@ -973,7 +975,14 @@ pub(super) fn each_input_row(
     input: &Version,
     f: impl FnMut(u64, RawRecord<'_>) -> Result<()>,
 ) -> Result<()> {
-    each_row(store, &input.hash, &input.dialect, &input.label(), f)
+    each_row(
+        store,
+        &input.hash,
+        &input.dialect,
+        &input.label(),
+        Some(input.n_bytes),
+        f,
+    )
 }
 
 /// Calls `f` with every data row of version `v` (0-based index and record), re-hashing its
@@ -992,12 +1001,20 @@ fn each_row(
     hash: &str,
     dialect: &Dialect,
     label: &str,
+    n_bytes: Option<u64>,
     f: impl FnMut(u64, RawRecord<'_>) -> Result<()>,
 ) -> Result<()> {
     let h: Hash = hash
         .parse()
         .map_err(|e: String| Error::from(ErrorKind::Database(e)))?;
-    each_row_from(store.objects.open_raw(&h)?, hash, dialect, label, f)
+    each_row_from(
+        store.objects.open_raw(&h)?,
+        hash,
+        dialect,
+        label,
+        n_bytes,
+        f,
+    )
 }
 
 /// Reads the rows of `reader`, whose bytes must hash to `hash`.
@@ -1006,6 +1023,7 @@ fn each_row_from(
     hash: &str,
     dialect: &Dialect,
     label: &str,
+    n_bytes: Option<u64>,
     mut f: impl FnMut(u64, RawRecord<'_>) -> Result<()>,
 ) -> Result<()> {
     let input_hash: Hash = hash
@@ -1014,6 +1032,11 @@ fn each_row_from(
     let mut checked = Checked {
         inner: reader,
         hasher: blake3::Hasher::new(),
+        progress: crate::progress::Task::begin(
+            || format!("reading {label}"),
+            n_bytes,
+            crate::progress::Unit::Bytes,
+        ),
     };
     let settings = ReadSettings::for_dialect(dialect)?;
     let mut header_seen = !dialect.has_header;
@@ -1140,7 +1163,7 @@ impl Table {
             }
         };
         let mut rows = Vec::new();
-        each_row_from(reader, &hash, &dialect, &label, |_, r| {
+        each_row_from(reader, &hash, &dialect, &label, None, |_, r| {
             rows.push(
                 r.iter()
                     .map(|f| String::from_utf8_lossy(f).into_owned())

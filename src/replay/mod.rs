@@ -137,7 +137,13 @@ pub fn replay(store: &mut Store, reference: &str, options: &ReplayOptions) -> Re
     let seen = crate::plan::steps_behind(store, &target)?;
     let mut steps = Vec::new();
     let mut reproduced = true;
+    let mut progress = crate::progress::Task::begin(
+        || format!("replaying {}", target.label()),
+        Some(seen.len() as u64),
+        crate::progress::Unit::Steps,
+    );
     for id in seen {
+        progress.add(1);
         let step = load_step(store, id)?;
         let outputs = store.lineage.step_outputs(id)?;
         let Some(out) = outputs.first() else {

@@ -190,3 +190,57 @@ pub fn assert_contains(haystack: &str, needle: &str) {
         );
     }
 }
+
+/// The subcommands a `--help` text lists under "Commands:", without clap's own `help`.
+pub fn commands_listed(help: &str) -> Vec<String> {
+    let mut names = Vec::new();
+    let mut inside = false;
+    for line in help.lines() {
+        if line.starts_with("Commands:") {
+            inside = true;
+            continue;
+        }
+        if inside {
+            if !line.starts_with("  ") {
+                if line.trim().is_empty() {
+                    continue;
+                }
+                break;
+            }
+            // A command line is "  name  description"; wrapped descriptions are indented more.
+            let rest = &line[2..];
+            if rest.starts_with(' ') {
+                continue;
+            }
+            let name = rest.split_whitespace().next().unwrap_or_default();
+            if !name.is_empty() && name != "help" {
+                names.push(name.to_string());
+            }
+        }
+    }
+    names
+}
+
+/// Every command path (`["apply", "trim"]`), found by walking the real binary's help texts,
+/// so that a new command is covered without touching this file.
+pub fn every_command(s: &Sandbox) -> Vec<Vec<String>> {
+    let mut out = Vec::new();
+    let mut todo: Vec<Vec<String>> = commands_listed(&s.ok(&["--help"]))
+        .into_iter()
+        .map(|n| vec![n])
+        .collect();
+    while let Some(path) = todo.pop() {
+        let mut args: Vec<&str> = path.iter().map(String::as_str).collect();
+        // `apply` takes the version before its operation; the help does not need one.
+        args.push("--help");
+        let help = s.ok(&args);
+        for sub in commands_listed(&help) {
+            let mut p = path.clone();
+            p.push(sub);
+            todo.push(p);
+        }
+        out.push(path);
+    }
+    out.sort();
+    out
+}
