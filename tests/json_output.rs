@@ -234,6 +234,30 @@ const CASES: &[(&str, &[&str], i32)] = &[
         ],
         1,
     ),
+    // Last, since they add versions: a revert refused by a later hand edit of the row whose
+    // duplicate it would bring back, then the revert of that hand edit.
+    (
+        "revert",
+        &[
+            "revert",
+            "edited@2",
+            "--why",
+            "the dedupe was wrong",
+            "--json",
+        ],
+        1,
+    ),
+    (
+        "revert",
+        &[
+            "revert",
+            "edited@3",
+            "--why",
+            "the typo was right",
+            "--json",
+        ],
+        0,
+    ),
 ];
 
 fn demo() -> Sandbox {
@@ -253,6 +277,22 @@ fn demo() -> Sandbox {
         "plan",
         "-o",
         "plan.json",
+    ]);
+    // A dedupe followed by a hand edit of the row whose duplicate it dropped: reverting the
+    // dedupe is refused.
+    s.file("edited.csv", "id,amount\n1,5\n1,5\n2,7\n");
+    s.ok(&["ingest", "edited.csv", "--as", "edited", "--why", "export"]);
+    s.ok(&["apply", "edited", "dedupe", "--why", "exported twice"]);
+    s.file("edited_fix.csv", "id,amount\n1,6\n2,7\n");
+    s.ok(&[
+        "ingest",
+        "edited_fix.csv",
+        "--as",
+        "edited",
+        "--from",
+        "edited",
+        "--why",
+        "typo",
     ]);
     s
 }
