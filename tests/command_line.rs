@@ -114,6 +114,21 @@ fn exit_codes_follow_the_documented_classes() {
             code: 0,
         },
         Case {
+            class: "usage: reverting the first version of a dataset",
+            args: &["revert", "all_orders@1", "--why", "x"],
+            code: 2,
+        },
+        Case {
+            class: "usage: reverting an intake",
+            args: &["revert", "quillby_orders@1", "--why", "x"],
+            code: 2,
+        },
+        Case {
+            class: "usage: revert without a reason",
+            args: &["revert", "all_orders@5"],
+            code: 2,
+        },
+        Case {
             class: "success: verify of an intact store",
             args: &["verify"],
             code: 0,
