@@ -37,10 +37,13 @@ fn main() {
         Ok(code) => code,
         Err(err) => {
             // A closed pipe (`sluice cat big | head`) is not an error worth a message.
-            if let Some(io) = err.downcast_ref::<std::io::Error>() {
-                if io.kind() == std::io::ErrorKind::BrokenPipe {
-                    std::process::exit(0);
-                }
+            // It may come wrapped in context (`output: ...`), so the whole chain is looked at.
+            let closed_pipe = err.chain().any(|e| {
+                e.downcast_ref::<std::io::Error>()
+                    .is_some_and(|io| io.kind() == std::io::ErrorKind::BrokenPipe)
+            });
+            if closed_pipe {
+                std::process::exit(0);
             }
             if colour_errors {
                 eprintln!("\x1b[1;31merror:\x1b[0m {err}");
