@@ -47,6 +47,10 @@ fn problem(kind: &str, subject: impl Into<String>, detail: impl Into<String>) ->
 }
 
 pub fn verify(store: &Store) -> Result<VerifyReport> {
+    store.lineage.snapshot(|| verify_snapshot(store))
+}
+
+fn verify_snapshot(store: &Store) -> Result<VerifyReport> {
     let mut problems = Vec::new();
     for p in store.lineage.integrity_problems()? {
         problems.push(problem("database", "lineage.db", p));
