@@ -258,7 +258,11 @@ impl<'p> RecordStream<'p> {
                     self.decoded.resize(n, 0);
                 }
                 DecoderResult::Malformed(bad, after) => {
-                    let byte = self.raw_seen + (read_total - bad as usize - after as usize) as u64;
+                    // The malformed bytes may have begun in an earlier piece (the decoder
+                    // keeps an incomplete sequence between calls), so count from the start
+                    // of the file, not of this piece.
+                    let byte = (self.raw_seen + read_total as u64)
+                        .saturating_sub(u64::from(bad) + u64::from(after));
                     // Lines: those parsed so far plus the line breaks decoded before the error.
                     let parsed_lines = self.parser.as_ref().map_or(1, |p| p.line());
                     let more =
@@ -344,6 +348,47 @@ pub fn for_each_record(
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    fn read_in_pieces(data: &[u8], settings: &ReadSettings, piece: usize) -> String {
+        let mut rs = RecordStream::new(Path::new("t.csv"), settings.clone());
+        let mut n = 0u64;
+        let chunks: Vec<&[u8]> = data.chunks(piece.max(1)).collect();
+        for (i, c) in chunks.iter().enumerate() {
+            if let Err(e) = rs.push(c, i + 1 == chunks.len(), &mut |_| {
+                n += 1;
+                Ok(())
+            }) {
+                return e.to_string();
+            }
+        }
+        match rs.finish(&mut |_| Ok(())) {
+            Ok(()) => format!("{n} records"),
+            Err(e) => e.to_string(),
+        }
+    }
+
+    /// Found by the `intake` fuzz target: in UTF-16 a malformed sequence can begin in the
+    /// piece before the one where the decoder reports it, and the byte position was computed
+    /// within the piece, which overflowed (a panic in debug builds, a position near 2^64 in
+    /// release builds).
+    #[test]
+    fn malformed_utf16_begun_in_an_earlier_piece_is_placed_in_the_file() {
+        let data = b"\"x\"\"y\x85\x10 a;b\x08\"x\"\"y\xff\xff\";;b\n\"x\"\xdb\xff\xff\xff\xff-\xff\xff\xffy2\n";
+        let settings = ReadSettings {
+            delimiter: Some(b'\t'),
+            encoding: Some(encoding_rs::UTF_16LE),
+        };
+        let whole = read_in_pieces(data, &settings, data.len());
+        // 0xDB22 at byte 26 is a high surrogate followed by 0xFFFF, not a low one.
+        assert!(whole.contains("line 1 (byte 26)"), "{whole}");
+        for piece in 1..data.len() {
+            assert_eq!(
+                read_in_pieces(data, &settings, piece),
+                whole,
+                "pieces of {piece}"
+            );
+        }
+    }
 
     #[test]
     fn utf8_split_across_pieces() {
