@@ -102,6 +102,7 @@ fn sql_is_only_in_the_store_and_built_from_constants() {
         r#"format!\(\s*"((?:[^"\\]|\\.)*(?:SELECT|INSERT|UPDATE|DELETE|PRAGMA|WHERE)(?:[^"\\]|\\.)*)""#,
     )
     .unwrap();
+    let caller = regex::Regex::new(r"\.query_(versions|steps)\(\s*(\S)").unwrap();
     let hole = regex::Regex::new(r"\{([a-z_]*)[^}]*\}").unwrap();
     let mut files = Vec::new();
     fn walk(d: &Path, out: &mut Vec<std::path::PathBuf>) {
@@ -144,7 +145,6 @@ fn sql_is_only_in_the_store_and_built_from_constants() {
             }
         }
         // Callers of the clause-taking helpers pass literals.
-        let caller = regex::Regex::new(r"\.query_(versions|steps)\(\s*(\S)").unwrap();
         for c in caller.captures_iter(&text) {
             if &c[2] != "t" {
                 assert_eq!(
