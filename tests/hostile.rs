@@ -309,3 +309,130 @@ fn a_file_that_grows_while_it_is_read_is_refused_and_the_store_is_unchanged() {
     );
     assert!(m.peak_kib / 1024 <= BASE_MIB);
 }
+
+/// Rule files, plans and mapping tables that are malformed, name missing columns, or are huge
+/// (a 100,000-step plan and a 100,000-rule file, each broken at its end): a clear error with
+/// the position (file, line, column) or the missing name and the columns there are; nothing
+/// recorded; memory bounded.
+#[test]
+fn malformed_missing_and_huge_rules_plans_and_tables_are_refused_with_positions() {
+    let s = Sandbox::with_store();
+    s.file("o.csv", "id,service\n1,tune\n2,flat\n");
+    s.ok(&["ingest", "o.csv", "--as", "o"]);
+    let before = s.snapshot();
+    let refused = |name: &str, content: &[u8], args: &[&str], texts: &[&str]| {
+        s.file(name, content);
+        let m = measured(s.path(), args);
+        // 2: the file is malformed or names what is not there; 1: the data in it is wrong
+        // (README, exit codes).
+        let code = if name == "twice.csv" { 1 } else { 2 };
+        assert_eq!(m.code, code, "{name}: expected a refusal:\n{}", m.stderr);
+        assert!(!m.stderr.contains("panicked"), "{name}: {}", m.stderr);
+        for t in texts {
+            assert_contains(&m.stderr, t);
+        }
+        let peak = m.peak_kib.div_ceil(1024);
+        assert!(peak <= BASE_MIB + 64, "{name}: peak {peak} MiB");
+        eprintln!(
+            "hostile: {name} ({} bytes) refused, peak {peak} MiB: {}",
+            content.len(),
+            m.stderr.lines().next().unwrap_or("")
+        );
+    };
+    refused(
+        "misspelt.json",
+        b"{\"rules\": [{\"rule\": \"unique\",\n \"colums\": [\"id\"]}]}",
+        &["check", "o", "--rules", "misspelt.json"],
+        &["misspelt.json: line 2, column 19: unknown field `colums`, expected `columns`"],
+    );
+    refused(
+        "missing.json",
+        b"{\"rules\": [{\"rule\": \"unique\", \"columns\": [\"technician\"]}]}",
+        &["check", "o", "--rules", "missing.json"],
+        &["\"technician\", which is not in o@1; its columns are: id, service"],
+    );
+    let mut rules = String::from("{\"rules\": [\n");
+    for _ in 0..100_000 {
+        rules.push_str("{\"rule\": \"not_blank\", \"columns\": [\"id\"]},\n");
+    }
+    rules.push_str("{\"rule\": \"not_blank\", \"columns\": [\"id\"]}\n");
+    refused(
+        "huge-rules.json",
+        rules.as_bytes(),
+        &["check", "o", "--rules", "huge-rules.json"],
+        &["huge-rules.json: line 100003, column 0: EOF while parsing"],
+    );
+    let mut plan = String::from(
+        "{\"sluice_plan\": 1, \"inputs\": [{\"name\": \"o\", \"file\": \"o.csv\"}], \"steps\": [\n",
+    );
+    for _ in 0..100_000 {
+        plan.push_str("{\"on\": \"o\", \"apply\": {\"op\": \"trim\"}, \"why\": \"x\"},\n");
+    }
+    plan.push_str("{\"on\": \"o\", \"apply\": {\"op\": \"trim\"}, \"why\": \"x\"}]\n");
+    refused(
+        "huge-plan.json",
+        plan.as_bytes(),
+        &["run", "huge-plan.json"],
+        &["huge-plan.json: line 100003, column 0"],
+    );
+    refused(
+        "missing-column-plan.json",
+        b"{\"sluice_plan\": 1, \"inputs\": [{\"name\": \"o\", \"file\": \"o.csv\"}],\n \"steps\": [{\"on\": \"o\", \"apply\": {\"op\": \"trim\", \"columns\": [\"shop\"]}, \"why\": \"x\"}]}",
+        &["run", "missing-column-plan.json"],
+        &["step 1 (trim on o)", "column \"shop\" is not in o@1; its columns are: id, service"],
+    );
+    refused(
+        "twice.csv",
+        b"label,name\ntune,Tune-up\ntune,Full service\n",
+        &[
+            "apply",
+            "o",
+            "map",
+            "--columns",
+            "service",
+            "--table",
+            "twice.csv",
+            "--why",
+            "t",
+        ],
+        &["gives more than one value for: \"tune\""],
+    );
+    refused(
+        "one-column.csv",
+        b"label\ntune\n",
+        &[
+            "apply",
+            "o",
+            "map",
+            "--columns",
+            "service",
+            "--table",
+            "one-column.csv",
+            "--why",
+            "t",
+        ],
+        &["has 1 columns; name the two to use with --from COL --to COL"],
+    );
+    refused(
+        "labels.csv",
+        b"label,name\ntune,Tune-up\n",
+        &[
+            "apply",
+            "o",
+            "map",
+            "--columns",
+            "service",
+            "--table",
+            "labels.csv",
+            "--from",
+            "written",
+            "--why",
+            "t",
+        ],
+        &[
+            "column \"written\" is not in the mapping table",
+            "its columns are: label, name",
+        ],
+    );
+    assert_eq!(before, s.snapshot(), "a refusal recorded something");
+}
