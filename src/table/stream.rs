@@ -192,6 +192,12 @@ impl<'p> RecordStream<'p> {
             text = &self.decoded;
         }
         self.raw_seen += piece.len() as u64;
+        // A piece can decode to nothing (half of a UTF-16 unit, the start of a multi-byte
+        // character, kept by the decoder for the next piece). The parser takes empty input
+        // as the end of the input, which would end the record there; wait for more instead.
+        if text.is_empty() && !is_last {
+            return Ok(());
+        }
         if self.parser.is_none() {
             let mut start = 0u64;
             if self.decoder.is_none() && text.starts_with(UTF8_BOM) {
@@ -364,6 +370,70 @@ mod tests {
         match rs.finish(&mut |_| Ok(())) {
             Ok(()) => format!("{n} records"),
             Err(e) => e.to_string(),
+        }
+    }
+
+    fn records_in_pieces(
+        data: &[u8],
+        settings: &ReadSettings,
+        piece: usize,
+    ) -> Vec<(Vec<u8>, u64, u64)> {
+        let mut rs = RecordStream::new(Path::new("t.csv"), settings.clone());
+        let mut recs = Vec::new();
+        let chunks: Vec<&[u8]> = data.chunks(piece).collect();
+        for (i, c) in chunks.iter().enumerate() {
+            rs.push(c, i + 1 == chunks.len(), &mut |r| {
+                recs.push((r.fields.to_vec(), r.byte, r.line));
+                Ok(())
+            })
+            .unwrap();
+        }
+        rs.finish(&mut |r| {
+            recs.push((r.fields.to_vec(), r.byte, r.line));
+            Ok(())
+        })
+        .unwrap();
+        recs
+    }
+
+    /// Found by the `intake` fuzz target: a piece of UTF-16 that decodes to nothing (one byte
+    /// of a two-byte unit) was handed to the parser as empty input, which it takes for the end
+    /// of the input, so a record ended there.
+    #[test]
+    fn a_piece_that_decodes_to_nothing_does_not_end_a_record() {
+        let settings = ReadSettings {
+            delimiter: Some(b','),
+            encoding: Some(encoding_rs::UTF_16LE),
+        };
+        for text in [
+            "\0\0\u{a00}",
+            "a,b\nc,d\n",
+            "shop,amount\nQuillby Cycle Mend,12.50\r\n",
+        ] {
+            let data: Vec<u8> = text.encode_utf16().flat_map(|u| u.to_le_bytes()).collect();
+            let whole = records_in_pieces(&data, &settings, data.len());
+            for piece in 1..data.len() {
+                assert_eq!(
+                    records_in_pieces(&data, &settings, piece),
+                    whole,
+                    "{text:?} in pieces of {piece}"
+                );
+            }
+        }
+        let sjis = ReadSettings {
+            delimiter: Some(b','),
+            encoding: Some(encoding_for("shift_jis").unwrap()),
+        };
+        // "店,金額" then a line break, in Shift_JIS: two-byte characters split by every cut.
+        let data = b"\x93\x58,\x8b\xe0\x8a\x7a\n\x93\x58,\x8b\xe0\n";
+        let whole = records_in_pieces(data, &sjis, data.len());
+        assert_eq!(whole.len(), 2);
+        for piece in 1..data.len() {
+            assert_eq!(
+                records_in_pieces(data, &sjis, piece),
+                whole,
+                "shift_jis in pieces of {piece}"
+            );
         }
     }
 
