@@ -52,6 +52,9 @@ fn eight_writers_at_once_lose_nothing() {
     assert_eq!(report["versions_checked"], 8);
     // init + 8 ingests, each exactly one entry.
     assert_eq!(report["audit_entries_checked"], 9);
+    eprintln!(
+        "concurrency: 8 ingest processes at once (4 into one dataset), 8 versions, versions of the shared dataset 1..4, 9 audit entries, verify intact"
+    );
 }
 
 /// Twelve processes at once: four take new exports in as versions of one dataset, four apply

@@ -330,6 +330,10 @@ fn check_full_disk(p: &Project, target: Target, limit: u64) {
     );
     assert_eq!(report.leftover_temp_files, 0);
     assert_eq!(report.unreferenced_objects, 0);
+    eprintln!(
+        "disk full: {target:?} limited to {limit} bytes: refused ({} table and {} row index writes refused), store unchanged",
+        table, index
+    );
 }
 
 /// After the failures, the real backend takes the same file in; also confirms the object sizes
