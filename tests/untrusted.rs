@@ -324,3 +324,59 @@ fn a_received_store_is_inspected_traced_and_verified_without_running_anything() 
     );
     eprintln!("received store: 11 reading commands, no program run");
 }
+
+// ---- paths an outside command is given ---------------------------------------------------
+
+/// An output an outside command leaves as a link (here to a file outside the project) is not
+/// followed: the run fails, only its failure is audited, and nothing of the linked file is
+/// recorded. A placeholder name that would lead the input copy out of its temporary folder is
+/// refused before anything runs.
+#[test]
+fn exec_never_follows_an_output_link_or_a_traversing_input_name() {
+    let s = seeded();
+    let outside = tempfile::tempdir().unwrap();
+    let secret = outside.path().join("secret.csv");
+    std::fs::write(&secret, "order_id,shop\nWO-9,not for the store\n").unwrap();
+    let before_versions = s.json(&["log", "orders", "--json"]);
+    let r = s.run(&[
+        "exec",
+        "--input",
+        "orders",
+        "--output",
+        "orders=out.csv",
+        "--why",
+        "a link",
+        "--",
+        "ln",
+        "-s",
+        secret.to_str().unwrap(),
+        "out.csv",
+    ]);
+    assert_eq!(r.code, 1, "{}", r.stderr);
+    assert_contains(&r.stderr, "out.csv (a symbolic link to");
+    assert_contains(
+        &r.stderr,
+        "not a file; have the command write the file itself",
+    );
+    assert_eq!(s.json(&["log", "orders", "--json"]), before_versions);
+    assert!(!s.ok(&["cat", "orders"]).contains("not for the store"));
+    let v = s.json(&["verify", "--json"]);
+    assert_eq!(v["intact"], true, "{v}");
+
+    let r = s.run(&[
+        "exec",
+        "--input",
+        "../../escape=orders",
+        "--output",
+        "orders=out2.csv",
+        "--why",
+        "traversal",
+        "--",
+        "true",
+    ]);
+    assert_eq!(r.code, 2, "{}", r.stderr);
+    assert_contains(&r.stderr, "invalid dataset name \"../../escape\"");
+    assert!(!s.path().join("escape.csv").exists());
+    assert!(!s.path().join(".sluice/escape.csv").exists());
+    eprintln!("exec: an output link and a traversing input name refused, nothing recorded");
+}
