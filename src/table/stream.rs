@@ -271,8 +271,7 @@ impl<'p> RecordStream<'p> {
                         .saturating_sub(u64::from(bad) + u64::from(after));
                     // Lines: those parsed so far plus the line breaks decoded before the error.
                     let parsed_lines = self.parser.as_ref().map_or(1, |p| p.line());
-                    let more =
-                        memchr::memchr_iter(b'\n', &self.decoded[..written_total]).count() as u64;
+                    let more = line_breaks(&self.decoded[..written_total]);
                     return Err(Error::input(
                         self.path,
                         Some(Position {
@@ -327,6 +326,18 @@ impl<'p> RecordStream<'p> {
             )),
         }
     }
+}
+
+/// Line breaks in `text` as the parser counts them: LF, CRLF and a lone CR each end a line.
+fn line_breaks(text: &[u8]) -> u64 {
+    let mut n = 0;
+    for i in memchr::memchr2_iter(b'\r', b'\n', text) {
+        // The LF of a CRLF was counted with its CR.
+        if text[i] == b'\r' || i == 0 || text[i - 1] != b'\r' {
+            n += 1;
+        }
+    }
+    n
 }
 
 /// Reads all records of `src` with `settings`, single-threaded.
@@ -435,6 +446,33 @@ mod tests {
                 "shift_jis in pieces of {piece}"
             );
         }
+    }
+
+    /// Found by the `intake` fuzz target: the line of a decoding error counted only LF line
+    /// breaks in the text decoded before it, so a lone CR (which ends a record) was missed
+    /// when the error was in the same piece, and counted by the parser when it was not.
+    #[test]
+    fn the_line_of_a_decoding_error_counts_lone_cr_line_breaks() {
+        // "a\rb\r\nc\n" then an unpaired low surrogate, in UTF-16LE.
+        let mut data: Vec<u8> = "a\rb\r\nc\n"
+            .encode_utf16()
+            .flat_map(|u| u.to_le_bytes())
+            .collect();
+        data.extend_from_slice(&[0x00, 0xdc, b'x', 0]);
+        let settings = ReadSettings {
+            delimiter: Some(b','),
+            encoding: Some(encoding_rs::UTF_16LE),
+        };
+        let whole = read_in_pieces(&data, &settings, data.len());
+        assert!(whole.contains("line 4 (byte 14)"), "{whole}");
+        for piece in 1..data.len() {
+            assert_eq!(
+                read_in_pieces(&data, &settings, piece),
+                whole,
+                "pieces of {piece}"
+            );
+        }
+        assert_eq!(line_breaks(b"a\rb\r\nc\n\n"), 4);
     }
 
     /// Found by the `intake` fuzz target: in UTF-16 a malformed sequence can begin in the
