@@ -395,7 +395,7 @@ fn malformed_missing_and_huge_rules_plans_and_tables_are_refused_with_positions(
             "--why",
             "t",
         ],
-        &["gives more than one value for: \"tune\""],
+        &["gives more than one value for: \"tune\" (data row 1 gives \"Tune-up\", data row 2 \"Full service\")"],
     );
     refused(
         "one-column.csv",
@@ -411,7 +411,7 @@ fn malformed_missing_and_huge_rules_plans_and_tables_are_refused_with_positions(
             "--why",
             "t",
         ],
-        &["has 1 columns; name the two to use with --from COL --to COL"],
+        &["has 1 column; name the two to use with --from COL --to COL"],
     );
     refused(
         "labels.csv",

@@ -271,7 +271,15 @@ impl<'p> RecordStream<'p> {
                         .saturating_sub(u64::from(bad) + u64::from(after));
                     // Lines: those parsed so far plus the line breaks decoded before the error.
                     let parsed_lines = self.parser.as_ref().map_or(1, |p| p.line());
-                    let more = line_breaks(&self.decoded[..written_total]);
+                    let before = &self.decoded[..written_total];
+                    let mut more = line_breaks(before);
+                    // A CR that ended the last piece the parser saw is a line break of its
+                    // own unless an LF follows it (which `line_breaks` counts).
+                    if self.parser.as_ref().is_some_and(|p| p.pending_cr())
+                        && !before.starts_with(b"\n")
+                    {
+                        more += 1;
+                    }
                     return Err(Error::input(
                         self.path,
                         Some(Position {
@@ -473,6 +481,21 @@ mod tests {
             );
         }
         assert_eq!(line_breaks(b"a\rb\r\nc\n\n"), 4);
+        // The same with the error right after a CR that ends a piece.
+        let mut data: Vec<u8> = "ab\ncd\r"
+            .encode_utf16()
+            .flat_map(|u| u.to_le_bytes())
+            .collect();
+        data.extend_from_slice(&[0x00, 0xdc]);
+        let whole = read_in_pieces(&data, &settings, data.len());
+        assert!(whole.contains("line 3 (byte 12)"), "{whole}");
+        for piece in 1..data.len() {
+            assert_eq!(
+                read_in_pieces(&data, &settings, piece),
+                whole,
+                "pieces of {piece}"
+            );
+        }
     }
 
     /// Found by the `intake` fuzz target: in UTF-16 a malformed sequence can begin in the
