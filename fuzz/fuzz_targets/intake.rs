@@ -22,7 +22,11 @@ fn read(data: &[u8], settings: &ReadSettings, cuts: &[usize]) -> (Vec<Seen>, Opt
         Ok(())
     };
     let mut start = 0;
-    let mut bounds: Vec<usize> = cuts.iter().copied().filter(|&c| c > 0 && c < data.len()).collect();
+    let mut bounds: Vec<usize> = cuts
+        .iter()
+        .copied()
+        .filter(|&c| c > 0 && c < data.len())
+        .collect();
     bounds.sort_unstable();
     bounds.dedup();
     bounds.push(data.len());
@@ -69,8 +73,18 @@ fuzz_target!(|input: &[u8]| {
     };
     let (whole, whole_err) = read(data, &settings, &[]);
     for r in whole.windows(2) {
-        assert!(r[0].2 < r[1].2, "record bytes go back: {} then {}", r[0].2, r[1].2);
-        assert!(r[0].3 <= r[1].3, "record lines go back: {} then {}", r[0].3, r[1].3);
+        assert!(
+            r[0].2 < r[1].2,
+            "record bytes go back: {} then {}",
+            r[0].2,
+            r[1].2
+        );
+        assert!(
+            r[0].3 <= r[1].3,
+            "record lines go back: {} then {}",
+            r[0].3,
+            r[1].3
+        );
         assert_eq!(r[0].4 + 1, r[1].4, "record numbers skip");
     }
     // The split comparison needs the delimiter the whole read detected, since detection
@@ -83,21 +97,47 @@ fuzz_target!(|input: &[u8]| {
         }
         pinned.delimiter = rs.dialect(true).delimiter.bytes().next();
         let (again, again_err) = read(data, &pinned, &[]);
-        assert_eq!((&whole, &whole_err), (&again, &again_err), "pinning the detected delimiter changed the records");
+        assert_eq!(
+            (&whole, &whole_err),
+            (&again, &again_err),
+            "pinning the detected delimiter changed the records"
+        );
     }
     let a = (control[1] as usize * data.len()) / 256;
     let b = (control[2] as usize * data.len()) / 256;
-    for cuts in [vec![a], vec![a, b], (1..data.len()).step_by(1 + control[2] as usize % 7).collect()] {
+    for cuts in [
+        vec![a],
+        vec![a, b],
+        (1..data.len())
+            .step_by(1 + control[2] as usize % 7)
+            .collect(),
+    ] {
         let (split, split_err) = read(data, &pinned, &cuts);
-        assert_eq!(whole_err, split_err, "errors differ when read in pieces at {cuts:?}");
+        assert_eq!(
+            whole_err, split_err,
+            "errors differ when read in pieces at {cuts:?}"
+        );
         // Records before an error may differ (a piece refused whole yields none); intake
         // records nothing of a refused file, so only complete reads must agree.
         if whole_err.is_none() {
-            assert_eq!(whole, split, "records differ when read in pieces at {cuts:?}");
+            assert_eq!(
+                whole, split,
+                "records differ when read in pieces at {cuts:?}"
+            );
         }
-        assert_eq!(utf8_first_bad(data, &[]), utf8_first_bad(data, &cuts), "UTF-8 check differs at {cuts:?}");
+        assert_eq!(
+            utf8_first_bad(data, &[]),
+            utf8_first_bad(data, &cuts),
+            "UTF-8 check differs at {cuts:?}"
+        );
     }
-    assert_eq!(utf8_first_bad(data, &[]).err(), std::str::from_utf8(data).err().map(|e| e.valid_up_to() as u64), "the UTF-8 check disagrees with the standard library");
+    assert_eq!(
+        utf8_first_bad(data, &[]).err(),
+        std::str::from_utf8(data)
+            .err()
+            .map(|e| e.valid_up_to() as u64),
+        "the UTF-8 check disagrees with the standard library"
+    );
 });
 
 fn encoding_rs_for(label: &str) -> &'static encoding_rs::Encoding {
