@@ -28,7 +28,7 @@ pub struct VerifyReport {
     pub bytes_checked: u64,
     pub versions_checked: u64,
     pub audit_entries_checked: u64,
-    /// The hash of the last audit entry: written down elsewhere (a report, a ticket, an email),
+    /// The hash of the last audit entry: written down elsewhere (a report, a filing, an email),
     /// it lets a later `verify` show that no entry was cut off the end of the chain.
     pub audit_head: Option<String>,
     /// Object files no database row refers to (left by an interrupted command; harmless).

@@ -144,7 +144,7 @@ fn sql_is_only_in_the_store_and_built_from_constants() {
                 checked += 1;
             }
         }
-        // Callers of the clause-taking helpers pass literals.
+        // Callers of the two functions that take a clause pass literals.
         for c in caller.captures_iter(&text) {
             if &c[2] != "t" {
                 assert_eq!(
