@@ -325,13 +325,25 @@ pub fn exec(store: &mut Store, opts: &ExecOptions) -> Result<ExecOutcome> {
             .zip(&before)
             .zip(&opts.outputs)
             .filter(|(((_, p), was), _)| {
-                let now = fs::metadata(p).ok().filter(|m| m.is_file());
+                // A link is not a written file: following it would record bytes from a path
+                // the user did not name.
+                let now = fs::symlink_metadata(p).ok().filter(|m| m.is_file());
                 match now {
                     None => true,
                     Some(m) => was.is_some() && m.modified().ok() == **was,
                 }
             })
-            .map(|(_, (n, f))| (n.clone(), f.display().to_string()))
+            .map(|(((_, p), _), (n, f))| {
+                let shown = match fs::read_link(p) {
+                    Ok(to) => format!(
+                        "{} (a symbolic link to {}, not a file; have the command write the file itself)",
+                        f.display(),
+                        to.display()
+                    ),
+                    Err(_) => f.display().to_string(),
+                };
+                (n.clone(), shown)
+            })
             .collect();
         (!missing.is_empty()).then_some(ExecFailure::MissingOutputs(missing))
     });

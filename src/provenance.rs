@@ -611,6 +611,40 @@ pub fn cell_changes_sample(
     Ok(out)
 }
 
+/// What the step's versions hold at the cells of `output` its legacy `cell_changes` rows (schema
+/// 3 and earlier) name: the old value from the input cell the row map points at, the new value
+/// from the output cell, in the same order as `Lineage::cell_changes`. `verify` compares the two,
+/// so an edited, added or moved row is found.
+pub fn legacy_changes_as_versions_hold_them(
+    store: &Store,
+    output: &Version,
+) -> Result<Option<(Vec<CellChange>, Vec<CellChange>)>> {
+    let recorded = store.lineage.cell_changes(output.id)?;
+    if recorded.is_empty() {
+        return Ok(None);
+    }
+    let Some(input) = store
+        .lineage
+        .step_input_versions(output.step_id)?
+        .into_iter()
+        .find(|(role, _)| role == "input")
+        .map(|(_, v)| v)
+    else {
+        return Ok(Some((recorded, Vec::new())));
+    };
+    let runs = row_runs(store, output, input.id)?;
+    let mut by_column: Vec<(String, Vec<u64>)> = Vec::new();
+    for c in &recorded {
+        match by_column.iter_mut().find(|(n, _)| *n == c.column) {
+            Some((_, rows)) => rows.push(c.row_idx),
+            None => by_column.push((c.column.clone(), vec![c.row_idx])),
+        }
+    }
+    let mut actual = values_of(store, output, &input, &runs, &by_column)?;
+    actual.sort_by(|a, b| (a.row_idx, &a.column).cmp(&(b.row_idx, &b.column)));
+    Ok(Some((recorded, actual)))
+}
+
 /// The input row output row `row` came from, through the row map.
 fn input_row(runs: &[RowRun], row: u64) -> Option<u64> {
     let i = runs.partition_point(|r| r.out_start + r.len <= row);

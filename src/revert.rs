@@ -13,7 +13,8 @@
 //!    rows and added rows, matched to the rows of the new history through the row lineage (a
 //!    row is the same row when both histories carry it from the same row of `D@(k-1)`, or from
 //!    the same row a later step brought in);
-//! 3. all of it is recorded in one transaction, with one audit entry, or nothing is.
+//! 3. all of it is recorded in one transaction, with one audit entry per version (the revert's
+//!    first), or nothing is.
 //!
 //! Re-applying can meet conflicts, which refuse the revert unless forced:
 //! - an outside command after S: its program is not run again here; forced, its recorded
@@ -490,10 +491,67 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
             if i == 0 {
                 tx.set_reverts_step(sid, reverted_id)?;
             }
+            let input_hash = match p.inputs.first() {
+                Some((id, _)) if *id < 0 => pendings
+                    .get((-id - 1) as usize)
+                    .map(|q| q.hash.clone()),
+                _ => None,
+            }
+            .unwrap_or_else(|| base.hash.clone());
             ids.push(vid);
+            let label_now = format!("{dataset}@{seq}");
+            // One audit entry per version, all in this transaction: the first is the revert,
+            // each later one says which step it applies again and for which revert.
+            let (action, details) = match (i, p.kind) {
+                (0, _) => (
+                    "revert",
+                    json!({
+                        "version": p.hash,
+                        "step": sid,
+                        "row_index": p.row_index,
+                        "provenance": p.provenance.as_ref().map(|(h, _)| h),
+                        "reverts_step": reverted_id,
+                        "reverted": label,
+                        "base": base.hash,
+                        "replaced_latest": latest.hash,
+                        "forced_conflicts": conflicts.len(),
+                        "reason": opts.reason,
+                    }),
+                ),
+                (_, StepKind::Operation) => (
+                    "apply",
+                    json!({
+                        "operation": p.params,
+                        "input": input_hash,
+                        "version": p.hash,
+                        "step": sid,
+                        "row_index": p.row_index,
+                        "cells_changed": p.n_changed,
+                        "rows_dropped": p.n_dropped,
+                        "provenance": p.provenance.as_ref().map(|(h, _)| h),
+                        "cells_noted": p.notes.len(),
+                        "repeats_step": p.repeats_step,
+                        "after_revert_of": reverted_id,
+                    }),
+                ),
+                (_, kind) => (
+                    kind.as_str(),
+                    json!({
+                        "from": input_hash,
+                        "version": p.hash,
+                        "step": sid,
+                        "row_index": p.row_index,
+                        "provenance": p.provenance.as_ref().map(|(h, _)| h),
+                        "reapplies_step": p.repeats_step,
+                        "as": "cell_patches",
+                        "after_revert_of": reverted_id,
+                    }),
+                ),
+            };
+            tx.audit(&opts.agent, action, &label_now, &details, &ended_at)?;
             out.push(RevertedLink {
                 step: sid,
-                version: format!("{dataset}@{seq}"),
+                version: label_now,
                 hash: p.hash.clone(),
                 rows: p.n_rows,
                 repeats_step: p.repeats_step,
@@ -507,21 +565,6 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
             });
         }
         let last = out.last().cloned();
-        tx.audit(
-            &opts.agent,
-            "revert",
-            &label,
-            &json!({
-                "reverts_step": reverted_id,
-                "base": base.hash,
-                "replaced_latest": latest.hash,
-                "steps": out.iter().map(|l| l.step).collect::<Vec<_>>(),
-                "versions": out.iter().map(|l| json!({"version": l.version, "hash": l.hash})).collect::<Vec<_>>(),
-                "forced_conflicts": conflicts.len(),
-                "reason": opts.reason,
-            }),
-            &ended_at,
-        )?;
         Ok((out, last))
     })?;
     let (links, last) = recorded;

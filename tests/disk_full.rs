@@ -1,6 +1,7 @@
 //! A full disk during intake: the engine must report "no space left", leave the store exactly as
 //! it was (no version, no audit entry, no object, no temporary file) and take the same file in
-//! once space is back.
+//! once space is back. The same holds for `apply` and for a plan's `run` (a real tmpfs that
+//! the step's output does not fit on).
 //!
 //! The library tests inject the failure through an object backend that wraps the real one and
 //! refuses writes past a byte limit with `ErrorKind::StorageFull` (the kind Rust's standard
@@ -329,6 +330,10 @@ fn check_full_disk(p: &Project, target: Target, limit: u64) {
     );
     assert_eq!(report.leftover_temp_files, 0);
     assert_eq!(report.unreferenced_objects, 0);
+    eprintln!(
+        "disk full: {target:?} limited to {limit} bytes: refused ({} table and {} row index writes refused), store unchanged",
+        table, index
+    );
 }
 
 /// After the failures, the real backend takes the same file in; also confirms the object sizes
@@ -463,4 +468,72 @@ fn disk_full_on_a_small_tmpfs_reports_no_space_left_and_leaves_the_store_unchang
     let v = s.json(&["verify", "--json"]);
     assert_eq!(v["intact"], true, "{v}");
     assert_eq!(v["leftover_temp_files"], 0, "{v}");
+}
+
+/// A file of work orders with padded names, so that `trim` changes every row.
+fn padded_orders(rows: usize) -> String {
+    let mut t = String::from("order_id,shop,notes\n");
+    for i in 0..rows {
+        t.push_str(&format!(
+            "WO-{i:06},  Oxwater Wheelworks  ,  brake cable replaced and gears indexed {i}  \n"
+        ));
+    }
+    t
+}
+
+#[test]
+fn disk_full_during_apply_and_run_reports_no_space_left_and_leaves_the_store_unchanged() {
+    // SAFETY: geteuid has no preconditions and cannot fail.
+    let root = unsafe { libc::geteuid() == 0 };
+    assert!(
+        root,
+        "this test mounts a 2 MiB tmpfs to fill it, which needs root; run the test suite as root"
+    );
+    let exports = tempfile::tempdir().unwrap();
+    // About 1.2 MB: its copy and row index fit on the file system, a cleaned copy does not.
+    let text = padded_orders(15_000);
+    let file = exports.path().join("oxwater.csv");
+    fs::write(&file, &text).unwrap();
+    let plan = exports.path().join("plan.json");
+    fs::write(
+        &plan,
+        r#"{"sluice_plan": 1, "steps": [
+             {"on": "orders", "apply": {"op": "trim", "inner": true}, "why": "padded names"},
+             {"on": "orders", "apply": {"op": "case", "columns": ["shop"], "to": "upper"}, "why": "one spelling"}]}"#,
+    )
+    .unwrap();
+
+    let s = Sandbox::new();
+    let _mount = TmpfsMount::new(s.path(), "2m"); // dropped (unmounted) before `s`
+    s.ok(&["init"]);
+    s.ok(&["ingest", file.to_str().unwrap(), "--as", "orders"]);
+    let free = {
+        let out = Command::new("df").arg("-k").arg(s.path()).output().unwrap();
+        String::from_utf8_lossy(&out.stdout).into_owned()
+    };
+    for args in [
+        vec!["apply", "orders", "trim", "--why", "padded names"],
+        vec!["run", plan.to_str().unwrap()],
+    ] {
+        let before = s.snapshot();
+        let err = s.fails(1, &args);
+        let after = s.snapshot();
+        assert_contains(&err, "no space left on the device");
+        assert_contains(&err, "free some space and run the command again");
+        assert!(!err.contains("panicked"), "{err}");
+        assert_eq!(
+            before, after,
+            "sluice {} changed the store:\n{err}",
+            args[0]
+        );
+        let v = s.json(&["verify", "--json"]);
+        assert_eq!(v["intact"], true, "{v}");
+        assert_eq!(v["leftover_temp_files"], 0, "{v}");
+        eprintln!(
+            "disk full: sluice {} on a 2 MiB tmpfs refused, store unchanged: {}",
+            args[0],
+            err.lines().next().unwrap_or("")
+        );
+    }
+    eprintln!("disk full: the file system after the intake:\n{free}");
 }

@@ -1202,25 +1202,36 @@ impl Mapper {
                 Some(n) => table.column(n, "mapping table"),
                 None if table.header.len() == 2 => Ok(default),
                 None => Err(Error::usage(format!(
-                    "the mapping table {label} has {} columns; name the two to use with --from COL --to COL",
-                    table.header.len()
+                    "the mapping table {label} has {} column{}; name the two to use with --from COL --to COL",
+                    table.header.len(),
+                    if table.header.len() == 1 { "" } else { "s" }
                 ))),
             }
         };
         let (f, t) = (pick(from, 0)?, pick(to, 1)?);
         let mut entries: HashMap<String, String> = HashMap::new();
+        // The 0-based data row where each value was first given.
+        let mut first_row: HashMap<&str, usize> = HashMap::new();
         let mut dups: Vec<String> = Vec::new();
-        for r in &table.rows {
+        for (row_idx, r) in table.rows.iter().enumerate() {
+            let first = *first_row.entry(r[f].as_str()).or_insert(row_idx);
             if let Some(prev) = entries.insert(r[f].clone(), r[t].clone()) {
-                if prev != r[t] && dups.len() < 10 && !dups.contains(&r[f]) {
-                    dups.push(r[f].clone());
+                let seen = format!("\"{}\"", r[f]);
+                if prev != r[t] && dups.len() < 10 && !dups.iter().any(|d| d.starts_with(&seen)) {
+                    // Data rows on screen are 1-based.
+                    dups.push(format!(
+                        "{seen} (data row {} gives \"{prev}\", data row {} \"{}\")",
+                        first + 1,
+                        row_idx + 1,
+                        r[t]
+                    ));
                 }
             }
         }
         if !dups.is_empty() {
             return Err(ErrorKind::Data(format!(
                 "the mapping table {label} gives more than one value for: {}; keep one entry per value",
-                dups.iter().map(|d| format!("\"{d}\"")).collect::<Vec<_>>().join(", ")
+                dups.join(", ")
             ))
             .into());
         }

@@ -163,6 +163,25 @@ impl Lineage {
         Ok(out)
     }
 
+    /// Runs `f`, whose queries all read one snapshot of the database (a deferred read
+    /// transaction; under WAL, writers committing meanwhile are not seen). `verify` reads
+    /// through it so that a step committed while it runs is seen whole or not at all.
+    pub fn snapshot<T>(&self, f: impl FnOnce() -> Result<T>) -> Result<T> {
+        self.conn.execute_batch("BEGIN DEFERRED").map_err(db_err)?;
+        // The snapshot starts at the first read.
+        let started = self
+            .conn
+            .query_row("SELECT count(*) FROM sqlite_master", [], |r| {
+                r.get::<_, i64>(0)
+            })
+            .map_err(db_err);
+        let out = started.and_then(|_| f());
+        let end = self.conn.execute_batch("COMMIT").map_err(db_err);
+        let out = out?;
+        end?;
+        Ok(out)
+    }
+
     // ---- queries -------------------------------------------------------------------------
 
     pub fn datasets(&self) -> Result<Vec<Dataset>> {

@@ -98,6 +98,19 @@ impl Store {
             };
             return Err(ErrorKind::NoStoreAt { path: dir, project }.into());
         }
+        // The store never follows a symbolic link out of `.sluice/`: a received store whose
+        // database, object folder or temporary folder is a link could make sluice read or
+        // write anywhere. (`.sluice` itself may be a link the user made.)
+        for part in [DB_FILE, "objects", "tmp"] {
+            let p = dir.join(part);
+            if fs::symlink_metadata(&p).is_ok_and(|m| m.file_type().is_symlink()) {
+                return Err(ErrorKind::Database(format!(
+                    "{} is a symbolic link; a store's lineage.db, objects/ and tmp/ must be inside its folder, never links out of it; replace the link with what it points to, then run `sluice verify`",
+                    p.display()
+                ))
+                .into());
+            }
+        }
         let lineage = Lineage::open(&db)?;
         Ok(Store {
             objects: Objects::new(Box::new(FsBackend::new(&dir))),

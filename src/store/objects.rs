@@ -79,6 +79,27 @@ impl FsBackend {
         let hex = hash.hex();
         self.objects.join(&hex[..2]).join(&hex[2..])
     }
+
+    /// The path of an object, refused when its fan-out folder is a symbolic link (which would
+    /// lead reads and writes out of the store).
+    fn checked_path_of(&self, hash: &Hash) -> io::Result<PathBuf> {
+        let p = self.path_of(hash);
+        if let Some(fan) = p.parent() {
+            no_link(fan)?;
+        }
+        Ok(p)
+    }
+}
+
+/// Refuses a path that is a symbolic link.
+fn no_link(p: &Path) -> io::Result<()> {
+    match fs::symlink_metadata(p) {
+        Ok(m) if m.file_type().is_symlink() => Err(io::Error::new(
+            io::ErrorKind::InvalidData,
+            "a symbolic link inside the store; sluice never follows links out of .sluice/",
+        )),
+        _ => Ok(()),
+    }
 }
 
 struct FsTemp {
@@ -147,6 +168,7 @@ impl TempObject for FsTemp {
         drop(file);
         let hex = hash.hex();
         let dir = self.objects.join(&hex[..2]);
+        no_link(&dir)?;
         let created_dir = !dir.exists();
         fs::create_dir_all(&dir)?;
         let dest = dir.join(&hex[2..]);
@@ -180,6 +202,7 @@ fn sync_dir(dir: &Path) -> io::Result<()> {
 
 impl ObjectBackend for FsBackend {
     fn create_temp(&self) -> io::Result<Box<dyn TempObject>> {
+        no_link(&self.tmp)?;
         fs::create_dir_all(&self.tmp)?;
         let n = TEMP_COUNTER.fetch_add(1, Ordering::Relaxed);
         let nanos = std::time::SystemTime::now()
@@ -203,7 +226,7 @@ impl ObjectBackend for FsBackend {
 
     fn read_at(&self, hash: &Hash, offset: u64, buf: &mut [u8]) -> io::Result<usize> {
         use std::os::unix::fs::FileExt;
-        let p = self.path_of(hash);
+        let p = self.checked_path_of(hash)?;
         if !fs::symlink_metadata(&p)?.is_file() {
             return Err(io::Error::other("an object that is not a plain file"));
         }
@@ -219,7 +242,7 @@ impl ObjectBackend for FsBackend {
     }
 
     fn open(&self, hash: &Hash) -> io::Result<Box<dyn Read + Send>> {
-        let p = self.path_of(hash);
+        let p = self.checked_path_of(hash)?;
         // The store never follows a symlink out of itself: objects must be plain files.
         let meta = fs::symlink_metadata(&p)?;
         if !meta.file_type().is_file() {
@@ -232,13 +255,16 @@ impl ObjectBackend for FsBackend {
     }
 
     fn exists(&self, hash: &Hash) -> bool {
-        fs::symlink_metadata(self.path_of(hash))
+        let Ok(p) = self.checked_path_of(hash) else {
+            return false;
+        };
+        fs::symlink_metadata(p)
             .map(|m| m.file_type().is_file())
             .unwrap_or(false)
     }
 
     fn size(&self, hash: &Hash) -> io::Result<u64> {
-        Ok(fs::symlink_metadata(self.path_of(hash))?.len())
+        Ok(fs::symlink_metadata(self.checked_path_of(hash)?)?.len())
     }
 
     fn list(&self) -> io::Result<(Vec<Hash>, Vec<PathBuf>)> {

@@ -170,6 +170,12 @@ impl Parser {
         self.lines + 1
     }
 
+    /// Whether the last byte seen was a CR not yet counted, its partner (an LF or not) being
+    /// in the next piece.
+    pub fn pending_cr(&self) -> bool {
+        self.pending_cr
+    }
+
     fn count_lines(&mut self, s: &[u8]) {
         if s.is_empty() {
             return;

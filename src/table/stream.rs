@@ -192,6 +192,12 @@ impl<'p> RecordStream<'p> {
             text = &self.decoded;
         }
         self.raw_seen += piece.len() as u64;
+        // A piece can decode to nothing (half of a UTF-16 unit, the start of a multi-byte
+        // character, kept by the decoder for the next piece). The parser takes empty input
+        // as the end of the input, which would end the record there; wait for more instead.
+        if text.is_empty() && !is_last {
+            return Ok(());
+        }
         if self.parser.is_none() {
             let mut start = 0u64;
             if self.decoder.is_none() && text.starts_with(UTF8_BOM) {
@@ -258,11 +264,22 @@ impl<'p> RecordStream<'p> {
                     self.decoded.resize(n, 0);
                 }
                 DecoderResult::Malformed(bad, after) => {
-                    let byte = self.raw_seen + (read_total - bad as usize - after as usize) as u64;
+                    // The malformed bytes may have begun in an earlier piece (the decoder
+                    // keeps an incomplete sequence between calls), so count from the start
+                    // of the file, not of this piece.
+                    let byte = (self.raw_seen + read_total as u64)
+                        .saturating_sub(u64::from(bad) + u64::from(after));
                     // Lines: those parsed so far plus the line breaks decoded before the error.
                     let parsed_lines = self.parser.as_ref().map_or(1, |p| p.line());
-                    let more =
-                        memchr::memchr_iter(b'\n', &self.decoded[..written_total]).count() as u64;
+                    let before = &self.decoded[..written_total];
+                    let mut more = line_breaks(before);
+                    // A CR that ended the last piece the parser saw is a line break of its
+                    // own unless an LF follows it (which `line_breaks` counts).
+                    if self.parser.as_ref().is_some_and(|p| p.pending_cr())
+                        && !before.starts_with(b"\n")
+                    {
+                        more += 1;
+                    }
                     return Err(Error::input(
                         self.path,
                         Some(Position {
@@ -319,6 +336,18 @@ impl<'p> RecordStream<'p> {
     }
 }
 
+/// Line breaks in `text` as the parser counts them: LF, CRLF and a lone CR each end a line.
+fn line_breaks(text: &[u8]) -> u64 {
+    let mut n = 0;
+    for i in memchr::memchr2_iter(b'\r', b'\n', text) {
+        // The LF of a CRLF was counted with its CR.
+        if text[i] == b'\r' || i == 0 || text[i - 1] != b'\r' {
+            n += 1;
+        }
+    }
+    n
+}
+
 /// Reads all records of `src` with `settings`, single-threaded.
 pub fn for_each_record(
     path: &Path,
@@ -344,6 +373,153 @@ pub fn for_each_record(
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    fn read_in_pieces(data: &[u8], settings: &ReadSettings, piece: usize) -> String {
+        let mut rs = RecordStream::new(Path::new("t.csv"), settings.clone());
+        let mut n = 0u64;
+        let chunks: Vec<&[u8]> = data.chunks(piece.max(1)).collect();
+        for (i, c) in chunks.iter().enumerate() {
+            if let Err(e) = rs.push(c, i + 1 == chunks.len(), &mut |_| {
+                n += 1;
+                Ok(())
+            }) {
+                return e.to_string();
+            }
+        }
+        match rs.finish(&mut |_| Ok(())) {
+            Ok(()) => format!("{n} records"),
+            Err(e) => e.to_string(),
+        }
+    }
+
+    fn records_in_pieces(
+        data: &[u8],
+        settings: &ReadSettings,
+        piece: usize,
+    ) -> Vec<(Vec<u8>, u64, u64)> {
+        let mut rs = RecordStream::new(Path::new("t.csv"), settings.clone());
+        let mut recs = Vec::new();
+        let chunks: Vec<&[u8]> = data.chunks(piece).collect();
+        for (i, c) in chunks.iter().enumerate() {
+            rs.push(c, i + 1 == chunks.len(), &mut |r| {
+                recs.push((r.fields.to_vec(), r.byte, r.line));
+                Ok(())
+            })
+            .unwrap();
+        }
+        rs.finish(&mut |r| {
+            recs.push((r.fields.to_vec(), r.byte, r.line));
+            Ok(())
+        })
+        .unwrap();
+        recs
+    }
+
+    /// Found by the `intake` fuzz target: a piece of UTF-16 that decodes to nothing (one byte
+    /// of a two-byte unit) was handed to the parser as empty input, which it takes for the end
+    /// of the input, so a record ended there.
+    #[test]
+    fn a_piece_that_decodes_to_nothing_does_not_end_a_record() {
+        let settings = ReadSettings {
+            delimiter: Some(b','),
+            encoding: Some(encoding_rs::UTF_16LE),
+        };
+        for text in [
+            "\0\0\u{a00}",
+            "a,b\nc,d\n",
+            "shop,amount\nQuillby Cycle Mend,12.50\r\n",
+        ] {
+            let data: Vec<u8> = text.encode_utf16().flat_map(|u| u.to_le_bytes()).collect();
+            let whole = records_in_pieces(&data, &settings, data.len());
+            for piece in 1..data.len() {
+                assert_eq!(
+                    records_in_pieces(&data, &settings, piece),
+                    whole,
+                    "{text:?} in pieces of {piece}"
+                );
+            }
+        }
+        let sjis = ReadSettings {
+            delimiter: Some(b','),
+            encoding: Some(encoding_for("shift_jis").unwrap()),
+        };
+        // "店,金額" then a line break, in Shift_JIS: two-byte characters split by every cut.
+        let data = b"\x93\x58,\x8b\xe0\x8a\x7a\n\x93\x58,\x8b\xe0\n";
+        let whole = records_in_pieces(data, &sjis, data.len());
+        assert_eq!(whole.len(), 2);
+        for piece in 1..data.len() {
+            assert_eq!(
+                records_in_pieces(data, &sjis, piece),
+                whole,
+                "shift_jis in pieces of {piece}"
+            );
+        }
+    }
+
+    /// Found by the `intake` fuzz target: the line of a decoding error counted only LF line
+    /// breaks in the text decoded before it, so a lone CR (which ends a record) was missed
+    /// when the error was in the same piece, and counted by the parser when it was not.
+    #[test]
+    fn the_line_of_a_decoding_error_counts_lone_cr_line_breaks() {
+        // "a\rb\r\nc\n" then an unpaired low surrogate, in UTF-16LE.
+        let mut data: Vec<u8> = "a\rb\r\nc\n"
+            .encode_utf16()
+            .flat_map(|u| u.to_le_bytes())
+            .collect();
+        data.extend_from_slice(&[0x00, 0xdc, b'x', 0]);
+        let settings = ReadSettings {
+            delimiter: Some(b','),
+            encoding: Some(encoding_rs::UTF_16LE),
+        };
+        let whole = read_in_pieces(&data, &settings, data.len());
+        assert!(whole.contains("line 4 (byte 14)"), "{whole}");
+        for piece in 1..data.len() {
+            assert_eq!(
+                read_in_pieces(&data, &settings, piece),
+                whole,
+                "pieces of {piece}"
+            );
+        }
+        assert_eq!(line_breaks(b"a\rb\r\nc\n\n"), 4);
+        // The same with the error right after a CR that ends a piece.
+        let mut data: Vec<u8> = "ab\ncd\r"
+            .encode_utf16()
+            .flat_map(|u| u.to_le_bytes())
+            .collect();
+        data.extend_from_slice(&[0x00, 0xdc]);
+        let whole = read_in_pieces(&data, &settings, data.len());
+        assert!(whole.contains("line 3 (byte 12)"), "{whole}");
+        for piece in 1..data.len() {
+            assert_eq!(
+                read_in_pieces(&data, &settings, piece),
+                whole,
+                "pieces of {piece}"
+            );
+        }
+    }
+
+    /// Found by the `intake` fuzz target: in UTF-16 a malformed sequence can begin in the
+    /// piece before the one where the decoder reports it, and the byte position was computed
+    /// within the piece, which overflowed (a panic in debug builds, a position near 2^64 in
+    /// release builds).
+    #[test]
+    fn malformed_utf16_begun_in_an_earlier_piece_is_placed_in_the_file() {
+        let data = b"\"x\"\"y\x85\x10 a;b\x08\"x\"\"y\xff\xff\";;b\n\"x\"\xdb\xff\xff\xff\xff-\xff\xff\xffy2\n";
+        let settings = ReadSettings {
+            delimiter: Some(b'\t'),
+            encoding: Some(encoding_rs::UTF_16LE),
+        };
+        let whole = read_in_pieces(data, &settings, data.len());
+        // 0xDB22 at byte 26 is a high surrogate followed by 0xFFFF, not a low one.
+        assert!(whole.contains("line 1 (byte 26)"), "{whole}");
+        for piece in 1..data.len() {
+            assert_eq!(
+                read_in_pieces(data, &settings, piece),
+                whole,
+                "pieces of {piece}"
+            );
+        }
+    }
 
     #[test]
     fn utf8_split_across_pieces() {

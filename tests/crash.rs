@@ -1,0 +1,321 @@
+//! Crash safety of real processes: `sluice ingest` of a large generated export and `sluice run`
+//! of a six-step plan are started as child processes and killed with SIGKILL at 50 moments
+//! each, spread evenly over the measured duration of an unkilled run (deterministic delays,
+//! not random ones). After every kill: `sluice verify` finds the store intact, the store holds
+//! either the complete new version and its step or none of it, and running the same command
+//! again succeeds and ends with the same bytes as the unkilled run.
+//!
+//! The kill lands wherever the child happens to be at that delay, so the stages hit vary with
+//! the machine's load; the delays themselves, and the checks, do not. The test prints how many
+//! kills found nothing recorded, how many a complete result, and how many came after the
+//! child had already exited.
+
+mod common;
+
+use std::path::{Path, PathBuf};
+use std::process::{Child, Command, Stdio};
+use std::time::{Duration, Instant};
+
+use common::*;
+
+const KILL_POINTS: u32 = 50;
+const ROWS: u64 = 20_000;
+/// Rows of the export the plan runs on: six steps in a debug build take about as long as
+/// intake of `ROWS`.
+const PLAN_ROWS: u64 = 2_500;
+
+fn copy_dir(from: &Path, to: &Path) {
+    std::fs::create_dir_all(to).unwrap();
+    for e in std::fs::read_dir(from).unwrap() {
+        let e = e.unwrap();
+        let dest = to.join(e.file_name());
+        if e.file_type().unwrap().is_dir() {
+            copy_dir(&e.path(), &dest);
+        } else {
+            std::fs::copy(e.path(), &dest).unwrap();
+        }
+    }
+}
+
+fn sluice(dir: &Path, args: &[&str]) -> Command {
+    let mut c = Command::new(env!("CARGO_BIN_EXE_sluice"));
+    c.args(args)
+        .current_dir(dir)
+        .env("SLUICE_AGENT", AGENT)
+        .env("NO_COLOR", "1")
+        .env_remove("SLUICE_STORE")
+        .stdout(Stdio::null())
+        .stderr(Stdio::null());
+    c
+}
+
+fn ok_json(dir: &Path, args: &[&str]) -> serde_json::Value {
+    let out = sluice(dir, args).stdout(Stdio::piped()).output().unwrap();
+    assert!(
+        out.status.success(),
+        "sluice {} failed in {}",
+        args.join(" "),
+        dir.display()
+    );
+    serde_json::from_slice(&out.stdout).unwrap()
+}
+
+/// The generated Quillby export (comma, LF, padded names, amounts as text, US dates).
+fn export(at: &Path, rows: u64) -> PathBuf {
+    let path = at.join("quillby_q3.csv");
+    let mut f = std::io::BufWriter::new(std::fs::File::create(&path).unwrap());
+    sluice::demo::work_orders(&mut f, sluice::demo::Till::Quillby, rows, 1).unwrap();
+    drop(f);
+    path
+}
+
+/// What kills found.
+#[derive(Default, Debug)]
+struct Tally {
+    nothing: u32,
+    complete: u32,
+    partial_plan: u32,
+    already_done: u32,
+}
+
+/// Kills `child` after `delay`; returns whether it was still running when killed.
+fn kill_after(mut child: Child, delay: Duration) -> bool {
+    let until = Instant::now() + delay;
+    loop {
+        if let Some(_status) = child.try_wait().unwrap() {
+            return false;
+        }
+        let now = Instant::now();
+        if now >= until {
+            break;
+        }
+        std::thread::sleep((until - now).min(Duration::from_millis(2)));
+    }
+    // SIGKILL: Child::kill sends it on Unix.
+    let _ = child.kill();
+    let status = child.wait().unwrap();
+    // A child that exited on its own between the last poll and the kill has a status code.
+    status.code().is_none()
+}
+
+/// The duration of an unkilled run: the shorter of a run in a copy of `dir` and one in `dir`
+/// itself (left with the result), so that a first run slowed by a cold cache does not push
+/// most kill points past the end.
+fn measure(dir: &Path, args: &[&str]) -> Duration {
+    let mut best = Duration::MAX;
+    let copy = tempfile::tempdir().unwrap();
+    copy_dir(dir, copy.path());
+    for at in [copy.path(), dir] {
+        let t = Instant::now();
+        let st = sluice(at, args).status().unwrap();
+        assert!(
+            st.success(),
+            "the unkilled sluice {} failed",
+            args.join(" ")
+        );
+        best = best.min(t.elapsed());
+    }
+    best
+}
+
+fn delays(total: Duration) -> impl Iterator<Item = Duration> {
+    (0..KILL_POINTS).map(move |k| total.mul_f64(f64::from(k) / f64::from(KILL_POINTS)))
+}
+
+fn versions_of(dir: &Path, dataset: &str) -> Vec<serde_json::Value> {
+    ok_json(dir, &["log", dataset, "--json"])
+        .as_array()
+        .unwrap()
+        .iter()
+        .flat_map(|e| e["produced"].as_array().unwrap().clone())
+        .collect()
+}
+
+fn assert_intact(dir: &Path, what: &str) -> serde_json::Value {
+    let v = ok_json(dir, &["verify", "--json"]);
+    assert_eq!(v["intact"], true, "{what}: verify found damage: {v}");
+    v
+}
+
+#[test]
+fn ingest_killed_at_fifty_moments_records_all_or_nothing() {
+    let base = Sandbox::with_store();
+    base.file(
+        "seed.csv",
+        "order_id,shop\nWO-1,Quillby Cycle Mend\nWO-2,Quillby Cycle Mend\n",
+    );
+    base.ok(&["ingest", "seed.csv", "--as", "orders"]);
+    let big = export(base.path(), ROWS);
+    let big_arg = big.to_str().unwrap().to_string();
+    let args = ["ingest", big_arg.as_str(), "--as", "orders"];
+
+    let reference = tempfile::tempdir().unwrap();
+    copy_dir(
+        &base.path().join(".sluice"),
+        &reference.path().join(".sluice"),
+    );
+    let total = measure(reference.path(), &args);
+    let want = versions_of(reference.path(), "orders");
+    assert_eq!(want.len(), 2);
+    let want_hash = want.iter().find(|v| v["seq"] == 2).unwrap()["hash"].clone();
+    let audit_before = assert_intact(base.path(), "base")["audit_entries_checked"]
+        .as_u64()
+        .unwrap();
+
+    let mut tally = Tally::default();
+    for (k, delay) in delays(total).enumerate() {
+        let dir = tempfile::tempdir().unwrap();
+        copy_dir(&base.path().join(".sluice"), &dir.path().join(".sluice"));
+        let child = sluice(dir.path(), &args).spawn().unwrap();
+        let killed = kill_after(child, delay);
+        let what = format!("kill point {k} at {delay:?}");
+        let report = assert_intact(dir.path(), &what);
+        let audit = report["audit_entries_checked"].as_u64().unwrap();
+        let now = versions_of(dir.path(), "orders");
+        match now.len() {
+            1 => {
+                assert_eq!(
+                    audit, audit_before,
+                    "{what}: an audit entry without its version"
+                );
+                tally.nothing += 1;
+            }
+            2 => {
+                let v2 = now.iter().find(|v| v["seq"] == 2).unwrap();
+                assert_eq!(v2["hash"], want_hash, "{what}: a different version");
+                assert_eq!(v2["n_rows"], ROWS, "{what}");
+                assert_eq!(audit, audit_before + 1, "{what}");
+                if killed {
+                    tally.complete += 1;
+                } else {
+                    tally.already_done += 1;
+                }
+            }
+            n => panic!("{what}: {n} versions of orders"),
+        }
+        // Running it again succeeds and ends where the unkilled run did.
+        let st = sluice(dir.path(), &args).status().unwrap();
+        assert!(st.success(), "{what}: the rerun failed");
+        let after = versions_of(dir.path(), "orders");
+        assert_eq!(after.len(), 2, "{what}: the rerun");
+        assert_eq!(
+            after.iter().find(|v| v["seq"] == 2).unwrap()["hash"],
+            want_hash,
+            "{what}: the rerun"
+        );
+        assert_intact(dir.path(), &format!("{what}, after the rerun"));
+    }
+    eprintln!(
+        "crash: ingest of {ROWS} rows ({} bytes) took {total:?} unkilled; {KILL_POINTS} kill points: \
+         {} left nothing recorded, {} a complete version and step, {} came after the child had exited",
+        std::fs::metadata(&big).unwrap().len(),
+        tally.nothing,
+        tally.complete,
+        tally.already_done
+    );
+    assert_eq!(
+        tally.nothing + tally.complete + tally.already_done,
+        KILL_POINTS
+    );
+    assert!(
+        tally.nothing > 0,
+        "no kill landed before the commit: {tally:?}"
+    );
+}
+
+const PLAN: &str = r#"{
+  "sluice_plan": 1,
+  "description": "Quillby's Q3 work orders cleaned for the crash test",
+  "inputs": [{"name": "orders", "file": "quillby_q3.csv", "why": "the till's Q3 export"}],
+  "steps": [
+    {"on": "orders", "apply": {"op": "trim", "inner": true}, "why": "padded names"},
+    {"on": "orders", "apply": {"op": "case", "columns": ["email"], "to": "lower"}, "why": "case-blind addresses"},
+    {"on": "orders", "apply": {"op": "number", "columns": ["parts_cost"]}, "why": "amounts as text"},
+    {"on": "orders", "apply": {"op": "date", "columns": ["opened"], "order": "mdy"}, "why": "month first"},
+    {"on": "orders", "apply": {"op": "dedupe"}, "why": "orders exported twice"},
+    {"on": "orders", "apply": {"op": "drop", "predicate": "status = 'test'"}, "why": "training orders"}
+  ]
+}"#;
+
+const PLAN_STEPS: usize = 6;
+
+#[test]
+fn plan_run_killed_at_fifty_moments_keeps_whole_steps_only() {
+    let base = Sandbox::with_store();
+    export(base.path(), PLAN_ROWS);
+    base.file("plan.json", PLAN);
+    // The export is taken in first, so that the kills land in the steps.
+    base.ok(&["ingest", "quillby_q3.csv", "--as", "orders"]);
+    let args = ["run", "plan.json"];
+
+    let reference = tempfile::tempdir().unwrap();
+    copy_dir(base.path(), reference.path());
+    let total = measure(reference.path(), &args);
+    let want = versions_of(reference.path(), "orders");
+    assert_eq!(want.len(), 1 + PLAN_STEPS);
+    let by_seq = |vs: &[serde_json::Value], seq: usize| {
+        vs.iter().find(|v| v["seq"] == seq as u64).unwrap()["hash"].clone()
+    };
+    let final_hash = by_seq(&want, 1 + PLAN_STEPS);
+    let audit_before = assert_intact(base.path(), "base")["audit_entries_checked"]
+        .as_u64()
+        .unwrap();
+
+    let mut tally = Tally::default();
+    let mut steps_seen = vec![0u32; PLAN_STEPS + 1];
+    for (k, delay) in delays(total).enumerate() {
+        let dir = tempfile::tempdir().unwrap();
+        copy_dir(base.path(), dir.path());
+        let child = sluice(dir.path(), &args).spawn().unwrap();
+        let killed = kill_after(child, delay);
+        let what = format!("kill point {k} at {delay:?}");
+        let report = assert_intact(dir.path(), &what);
+        let now = versions_of(dir.path(), "orders");
+        let made = now.len() - 1;
+        assert!(made <= PLAN_STEPS, "{what}: {made} steps");
+        // Whole steps only: each version the run made is the one the unkilled run made at
+        // that place, and each has exactly one audit entry.
+        for seq in 1..=now.len() {
+            assert_eq!(
+                by_seq(&now, seq),
+                by_seq(&want, seq),
+                "{what}: orders@{seq}"
+            );
+        }
+        assert_eq!(
+            report["audit_entries_checked"].as_u64().unwrap(),
+            audit_before + made as u64,
+            "{what}"
+        );
+        steps_seen[made] += 1;
+        match (made, killed) {
+            (0, _) => tally.nothing += 1,
+            (PLAN_STEPS, false) => tally.already_done += 1,
+            (PLAN_STEPS, true) => tally.complete += 1,
+            _ => tally.partial_plan += 1,
+        }
+        // Running the plan again succeeds and ends with the unkilled run's bytes.
+        let st = sluice(dir.path(), &args).status().unwrap();
+        assert!(st.success(), "{what}: the rerun failed");
+        let after = versions_of(dir.path(), "orders");
+        assert_eq!(
+            after.iter().max_by_key(|v| v["seq"].as_u64()).unwrap()["hash"],
+            final_hash,
+            "{what}: the rerun ended elsewhere"
+        );
+        assert_intact(dir.path(), &format!("{what}, after the rerun"));
+    }
+    eprintln!(
+        "crash: plan of {PLAN_STEPS} steps on {PLAN_ROWS} rows took {total:?} unkilled; {KILL_POINTS} kill points: \
+         {} before the first step was recorded, {} after some of the steps, {} after all of them \
+         (killed), {} after the child had exited; steps recorded when killed: {steps_seen:?}",
+        tally.nothing,
+        tally.partial_plan,
+        tally.complete,
+        tally.already_done
+    );
+    assert!(
+        tally.partial_plan > 0,
+        "no kill landed between steps: {tally:?}"
+    );
+}

@@ -1,0 +1,438 @@
+//! Hostile and broken input: a corpus of broken CSV files, generated here (the big ones are
+//! never committed), each taken in by the real binary. Each gives either a clear error with its
+//! position or the handling README documents, never a panic; the store is unchanged after a
+//! refusal; and the child's peak resident memory (from `wait4`'s resource usage) stays under a
+//! stated bound. The figures are printed (`--nocapture`).
+//!
+//! The bounds: intake keeps a few 1 MiB pieces in flight and the parser's record buffer, which
+//! holds one record, so memory grows with the longest record and the number of columns, not
+//! with the file. `BASE_MIB` covers the binary, SQLite and the pieces; a huge field adds a few
+//! copies of itself (the record buffer, the profile's min and max).
+
+mod common;
+
+use std::io::Write;
+use std::os::unix::process::ExitStatusExt;
+use std::path::Path;
+use std::process::{Command, Stdio};
+
+use common::*;
+
+/// Peak memory allowed for any file of ordinary records, in MiB.
+const BASE_MIB: u64 = 64;
+
+struct Measured {
+    code: i32,
+    stderr: String,
+    stdout: String,
+    peak_kib: u64,
+}
+
+/// Runs sluice in `dir` and reports its exit code, output and peak resident memory.
+fn measured(dir: &Path, args: &[&str]) -> Measured {
+    let out_path = dir.join(".hostile-out");
+    let err_path = dir.join(".hostile-err");
+    #[allow(clippy::zombie_processes)]
+    let child = Command::new(env!("CARGO_BIN_EXE_sluice"))
+        .args(args)
+        .current_dir(dir)
+        .env("SLUICE_AGENT", AGENT)
+        .env("NO_COLOR", "1")
+        .env_remove("SLUICE_STORE")
+        .stdin(Stdio::null())
+        .stdout(std::fs::File::create(&out_path).unwrap())
+        .stderr(std::fs::File::create(&err_path).unwrap())
+        .spawn()
+        .expect("start sluice");
+    // The child is reaped by wait4 below (for its resource usage), not by Child::wait; the
+    // handle is forgotten so that it never waits a second time.
+    let pid = child.id() as libc::pid_t;
+    std::mem::forget(child);
+    let mut status: libc::c_int = 0;
+    // SAFETY: an all-zero rusage is a valid value of the plain C struct.
+    let mut usage: libc::rusage = unsafe { std::mem::zeroed() };
+    // SAFETY: `pid` is our own child, not yet waited for; both pointers point at live locals.
+    let r = unsafe { libc::wait4(pid, &mut status, 0, &mut usage) };
+    assert_eq!(r, pid, "wait4 failed: {}", std::io::Error::last_os_error());
+    let st = std::process::ExitStatus::from_raw(status);
+    let stderr = std::fs::read_to_string(&err_path).unwrap_or_default();
+    let stdout = std::fs::read_to_string(&out_path).unwrap_or_default();
+    std::fs::remove_file(&out_path).unwrap();
+    std::fs::remove_file(&err_path).unwrap();
+    Measured {
+        code: st.code().unwrap_or(-1),
+        stderr,
+        stdout,
+        // ru_maxrss is in KiB on Linux (getrusage(2)).
+        peak_kib: usage.ru_maxrss as u64,
+    }
+}
+
+/// What a file of the corpus must do.
+enum Expect {
+    /// Refused with exit code 2; stderr holds each text; the store is unchanged.
+    Refused(&'static [&'static str]),
+    /// Taken in with this many data rows (and stderr holds each text).
+    Taken(u64, &'static [&'static str]),
+}
+
+fn check(s: &Sandbox, name: &str, bytes: &[u8], expect: Expect, bound_mib: u64) -> u64 {
+    let file = s.file(&format!("corpus/{name}"), bytes);
+    let dataset = name.replace(['.', '-'], "_");
+    let before = s.snapshot();
+    let m = measured(
+        s.path(),
+        &["ingest", file.to_str().unwrap(), "--as", &dataset],
+    );
+    std::fs::remove_file(&file).unwrap();
+    assert!(
+        !m.stderr.contains("panicked"),
+        "{name}: sluice panicked:\n{}",
+        m.stderr
+    );
+    let peak_mib = m.peak_kib.div_ceil(1024);
+    match expect {
+        Expect::Refused(texts) => {
+            assert_eq!(
+                m.code, 2,
+                "{name}: expected a refusal:\n{}{}",
+                m.stdout, m.stderr
+            );
+            for t in texts {
+                assert_contains(&m.stderr, t);
+            }
+            assert_eq!(before, s.snapshot(), "{name}: a refusal changed the store");
+        }
+        Expect::Taken(rows, texts) => {
+            assert_eq!(m.code, 0, "{name}: expected intake:\n{}", m.stderr);
+            for t in texts {
+                assert_contains(&m.stderr, t);
+            }
+            let v = s.json(&["show", &dataset, "--json"]);
+            assert_eq!(v["version"]["n_rows"], rows, "{name}: {v}");
+        }
+    }
+    assert!(
+        peak_mib <= bound_mib,
+        "{name}: peak memory {peak_mib} MiB is over the bound of {bound_mib} MiB"
+    );
+    eprintln!(
+        "hostile: {name} ({} bytes): exit {}, peak {peak_mib} MiB (bound {bound_mib} MiB)",
+        bytes.len(),
+        m.code
+    );
+    peak_mib
+}
+
+#[test]
+fn broken_csv_corpus_gets_clear_errors_or_documented_handling_within_memory_bounds() {
+    let s = Sandbox::with_store();
+    let header = b"order_id,shop,amount\n";
+    let with = |body: &[u8]| [header.as_slice(), body].concat();
+
+    check(
+        &s,
+        "ragged.csv",
+        &with(b"WO-1,Quillby Cycle Mend,12.50\nWO-2,Quillby Cycle Mend\n"),
+        Expect::Refused(&["record 2 (line 3, byte 51)", "expected 3 fields, found 2"]),
+        BASE_MIB,
+    );
+    check(
+        &s,
+        "invalid-utf8.csv",
+        &with(b"WO-1,Quillby Cycle M\xe9nd,12.50\n"),
+        Expect::Refused(&[
+            "line 2 (byte 41)",
+            "invalid UTF-8",
+            "--encoding windows-1252",
+        ]),
+        BASE_MIB,
+    );
+    check(
+        &s,
+        "nul.csv",
+        &with(b"WO-1,Quillby\0Cycle Mend,12.50\n"),
+        Expect::Refused(&["byte 33", "a NUL byte (0x00)"]),
+        BASE_MIB,
+    );
+    check(
+        &s,
+        "unterminated-quote.csv",
+        &with(b"WO-1,\"Quillby Cycle Mend,12.50\nWO-2,Oxwater Wheelworks,8.00\n"),
+        Expect::Refused(&["line 2", "quote"]),
+        BASE_MIB,
+    );
+    check(
+        &s,
+        "only-newlines.csv",
+        b"\n\n\n\r\n\n",
+        Expect::Refused(&["only blank lines"]),
+        BASE_MIB,
+    );
+    check(
+        &s,
+        "only-header.csv",
+        header,
+        Expect::Taken(0, &[]),
+        BASE_MIB,
+    );
+    // Bytes of a compressed file (a gzip header, then noise): the NUL at byte 3 is named as
+    // the sign of a binary file, ahead of the invalid UTF-8 at byte 1.
+    let mut binary = vec![0x1f, 0x8b, 0x08, 0x00];
+    let mut x: u32 = 2_463_534_242;
+    for _ in 0..65_536 {
+        // xorshift32 (Marsaglia 2003), for bytes that look like compressed data.
+        x ^= x << 13;
+        x ^= x >> 17;
+        x ^= x << 5;
+        binary.push(x as u8);
+    }
+    check(
+        &s,
+        "binary.csv",
+        &binary,
+        Expect::Refused(&[
+            "line 1 (byte 3)",
+            "a NUL byte (0x00); this looks like a binary file",
+        ]),
+        BASE_MIB,
+    );
+    // CR alone ends records (as in files from classic Mac OS); documented in README.
+    check(
+        &s,
+        "cr-only.csv",
+        b"order_id,shop,amount\rWO-1,Quillby Cycle Mend,12.50\rWO-2,Oxwater Wheelworks,8.00\r",
+        Expect::Taken(2, &[]),
+        BASE_MIB,
+    );
+    check(
+        &s,
+        "mixed-endings.csv",
+        &with(b"WO-1,Quillby Cycle Mend,12.50\r\nWO-2,Oxwater Wheelworks,8.00\nWO-3,Fennmarsh Bike Clinic,1.00\rWO-4,Quillby Cycle Mend,2.00\n"),
+        Expect::Taken(4, &[]),
+        BASE_MIB,
+    );
+    // A byte-order mark after the start is text (U+FEFF) inside its field, kept as it is.
+    check(
+        &s,
+        "bom-in-the-middle.csv",
+        &with(b"WO-1,\xef\xbb\xbfQuillby Cycle Mend,12.50\n\xef\xbb\xbfWO-2,Oxwater Wheelworks,8.00\n"),
+        Expect::Taken(2, &[]),
+        BASE_MIB,
+    );
+    let kept = s.ok(&["cat", "bom_in_the_middle_csv"]);
+    assert_contains(&kept, "WO-1,\u{feff}Quillby Cycle Mend");
+
+    // One field of 50 MB (quoted, with line breaks and doubled quotes inside).
+    let mut big = Vec::with_capacity(51 << 20);
+    big.extend_from_slice(b"order_id,notes\nWO-1,\"");
+    let chunk = b"the customer says \"\"the brakes squeal\"\" again\nand again, ";
+    while big.len() < 50_000_000 {
+        big.extend_from_slice(chunk);
+    }
+    big.extend_from_slice(b"\"\nWO-2,short\n");
+    check(
+        &s,
+        "one-50mb-field.csv",
+        &big,
+        Expect::Taken(2, &[]),
+        BASE_MIB + 4 * 50,
+    );
+    drop(big);
+
+    // 100,000 columns, two rows.
+    let n = 100_000;
+    let mut wide = Vec::new();
+    for i in 0..n {
+        write!(wide, "{}c{i}", if i > 0 { "," } else { "" }).unwrap();
+    }
+    wide.push(b'\n');
+    for r in 0..2 {
+        for i in 0..n {
+            write!(wide, "{}{}", if i > 0 { "," } else { "" }, i * 3 + r).unwrap();
+        }
+        wide.push(b'\n');
+    }
+    check(
+        &s,
+        "wide-100000-columns.csv",
+        &wide,
+        Expect::Taken(2, &[]),
+        BASE_MIB + 256,
+    );
+    assert_intact(&s);
+}
+
+fn assert_intact(s: &Sandbox) {
+    let v = s.json(&["verify", "--json"]);
+    assert_eq!(v["intact"], true, "{v}");
+}
+
+#[test]
+fn a_file_that_grows_while_it_is_read_is_refused_and_the_store_is_unchanged() {
+    let s = Sandbox::with_store();
+    let path = s.path().join("growing.csv");
+    let mut f = std::fs::File::create(&path).unwrap();
+    writeln!(f, "order_id,shop,amount").unwrap();
+    let line = b"WO-1,Quillby Cycle Mend,12.50\n";
+    for _ in 0..400_000 {
+        f.write_all(line).unwrap();
+    }
+    f.flush().unwrap();
+    let before = s.snapshot();
+    // A writer keeps appending whole lines until the ingest has finished.
+    let stop = std::sync::Arc::new(std::sync::atomic::AtomicBool::new(false));
+    let writer = {
+        let stop = stop.clone();
+        std::thread::spawn(move || {
+            let mut appended = 0u64;
+            while !stop.load(std::sync::atomic::Ordering::SeqCst) {
+                f.write_all(line).unwrap();
+                appended += 1;
+                std::thread::sleep(std::time::Duration::from_micros(200));
+            }
+            appended
+        })
+    };
+    let m = measured(s.path(), &["ingest", "growing.csv", "--as", "orders"]);
+    stop.store(true, std::sync::atomic::Ordering::SeqCst);
+    let appended = writer.join().unwrap();
+    assert_eq!(m.code, 2, "{}", m.stderr);
+    assert_contains(
+        &m.stderr,
+        "growing.csv: the file changed while it was being read",
+    );
+    assert_eq!(before, s.snapshot());
+    eprintln!(
+        "hostile: growing.csv refused after {appended} lines were appended during the read; peak {} MiB",
+        m.peak_kib.div_ceil(1024)
+    );
+    assert!(m.peak_kib / 1024 <= BASE_MIB);
+}
+
+/// Rule files, plans and mapping tables that are malformed, name missing columns, or are huge
+/// (a 100,000-step plan and a 100,000-rule file, each broken at its end): a clear error with
+/// the position (file, line, column) or the missing name and the columns there are; nothing
+/// recorded; memory bounded.
+#[test]
+fn malformed_missing_and_huge_rules_plans_and_tables_are_refused_with_positions() {
+    let s = Sandbox::with_store();
+    s.file("o.csv", "id,service\n1,tune\n2,flat\n");
+    s.ok(&["ingest", "o.csv", "--as", "o"]);
+    let before = s.snapshot();
+    let refused = |name: &str, content: &[u8], args: &[&str], texts: &[&str]| {
+        s.file(name, content);
+        let m = measured(s.path(), args);
+        // 2: the file is malformed or names what is not there; 1: the data in it is wrong
+        // (README, exit codes).
+        let code = if name == "twice.csv" { 1 } else { 2 };
+        assert_eq!(m.code, code, "{name}: expected a refusal:\n{}", m.stderr);
+        assert!(!m.stderr.contains("panicked"), "{name}: {}", m.stderr);
+        for t in texts {
+            assert_contains(&m.stderr, t);
+        }
+        let peak = m.peak_kib.div_ceil(1024);
+        assert!(peak <= BASE_MIB + 64, "{name}: peak {peak} MiB");
+        eprintln!(
+            "hostile: {name} ({} bytes) refused, peak {peak} MiB: {}",
+            content.len(),
+            m.stderr.lines().next().unwrap_or("")
+        );
+    };
+    refused(
+        "misspelt.json",
+        b"{\"rules\": [{\"rule\": \"unique\",\n \"colums\": [\"id\"]}]}",
+        &["check", "o", "--rules", "misspelt.json"],
+        &["misspelt.json: line 2, column 19: unknown field `colums`, expected `columns`"],
+    );
+    refused(
+        "missing.json",
+        b"{\"rules\": [{\"rule\": \"unique\", \"columns\": [\"technician\"]}]}",
+        &["check", "o", "--rules", "missing.json"],
+        &["\"technician\", which is not in o@1; its columns are: id, service"],
+    );
+    let mut rules = String::from("{\"rules\": [\n");
+    for _ in 0..100_000 {
+        rules.push_str("{\"rule\": \"not_blank\", \"columns\": [\"id\"]},\n");
+    }
+    rules.push_str("{\"rule\": \"not_blank\", \"columns\": [\"id\"]}\n");
+    refused(
+        "huge-rules.json",
+        rules.as_bytes(),
+        &["check", "o", "--rules", "huge-rules.json"],
+        &["huge-rules.json: line 100003, column 0: EOF while parsing"],
+    );
+    let mut plan = String::from(
+        "{\"sluice_plan\": 1, \"inputs\": [{\"name\": \"o\", \"file\": \"o.csv\"}], \"steps\": [\n",
+    );
+    for _ in 0..100_000 {
+        plan.push_str("{\"on\": \"o\", \"apply\": {\"op\": \"trim\"}, \"why\": \"x\"},\n");
+    }
+    plan.push_str("{\"on\": \"o\", \"apply\": {\"op\": \"trim\"}, \"why\": \"x\"}]\n");
+    refused(
+        "huge-plan.json",
+        plan.as_bytes(),
+        &["run", "huge-plan.json"],
+        &["huge-plan.json: line 100003, column 0"],
+    );
+    refused(
+        "missing-column-plan.json",
+        b"{\"sluice_plan\": 1, \"inputs\": [{\"name\": \"o\", \"file\": \"o.csv\"}],\n \"steps\": [{\"on\": \"o\", \"apply\": {\"op\": \"trim\", \"columns\": [\"shop\"]}, \"why\": \"x\"}]}",
+        &["run", "missing-column-plan.json"],
+        &["step 1 (trim on o)", "column \"shop\" is not in o@1; its columns are: id, service"],
+    );
+    refused(
+        "twice.csv",
+        b"label,name\ntune,Tune-up\ntune,Full service\n",
+        &[
+            "apply",
+            "o",
+            "map",
+            "--columns",
+            "service",
+            "--table",
+            "twice.csv",
+            "--why",
+            "t",
+        ],
+        &["gives more than one value for: \"tune\" (data row 1 gives \"Tune-up\", data row 2 \"Full service\")"],
+    );
+    refused(
+        "one-column.csv",
+        b"label\ntune\n",
+        &[
+            "apply",
+            "o",
+            "map",
+            "--columns",
+            "service",
+            "--table",
+            "one-column.csv",
+            "--why",
+            "t",
+        ],
+        &["has 1 column; name the two to use with --from COL --to COL"],
+    );
+    refused(
+        "labels.csv",
+        b"label,name\ntune,Tune-up\n",
+        &[
+            "apply",
+            "o",
+            "map",
+            "--columns",
+            "service",
+            "--table",
+            "labels.csv",
+            "--from",
+            "written",
+            "--why",
+            "t",
+        ],
+        &[
+            "column \"written\" is not in the mapping table",
+            "its columns are: label, name",
+        ],
+    );
+    assert_eq!(before, s.snapshot(), "a refusal recorded something");
+}
