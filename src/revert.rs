@@ -492,9 +492,9 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
                 tx.set_reverts_step(sid, reverted_id)?;
             }
             let input_hash = match p.inputs.first() {
-                Some((id, _)) if *id < 0 => pendings
-                    .get((-id - 1) as usize)
-                    .map(|q| q.hash.clone()),
+                Some((id, _)) if *id < 0 => {
+                    pendings.get((-id - 1) as usize).map(|q| q.hash.clone())
+                }
                 _ => None,
             }
             .unwrap_or_else(|| base.hash.clone());
@@ -556,7 +556,10 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
                 rows: p.n_rows,
                 repeats_step: p.repeats_step,
                 what: match i {
-                    0 => format!("the table of {} again, without step {reverted_id}", base.label()),
+                    0 => format!(
+                        "the table of {} again, without step {reverted_id}",
+                        base.label()
+                    ),
                     _ => applied_again
                         .get(i - 1)
                         .map(|(_, w)| w.clone())
