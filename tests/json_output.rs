@@ -3,7 +3,7 @@
 //! general-purpose validator from the crate registry) against the real outputs of the demo
 //! store, several per command so that the variants (keyed and by order, raw and derived trails,
 //! failing runs) are all seen. The schemas are closed (`additionalProperties: false`), so a new
-//! field fails here until the schema and README's "JSON output" describe it.
+//! field fails here until the schema and examples/reference.md's "JSON output" describe it.
 
 mod common;
 

@@ -300,7 +300,7 @@ pub enum Command {
     Log {
         /// Only steps that read or produced versions of this dataset
         dataset: Option<String>,
-        /// Print JSON (structure in README.md, "JSON output")
+        /// Print JSON (fields: examples/reference.md, "JSON output"; schema/output/)
         #[arg(long)]
         json: bool,
     },
@@ -310,7 +310,7 @@ pub enum Command {
     Show {
         /// The version: NAME (latest), NAME@N (N-th version) or a hash prefix (6+ hex digits)
         reference: String,
-        /// Print JSON (structure in README.md, "JSON output")
+        /// Print JSON (fields: examples/reference.md, "JSON output"; schema/output/)
         #[arg(long)]
         json: bool,
     },
@@ -320,7 +320,7 @@ pub enum Command {
         after_help = "Example:\n  sluice verify\n\nExit code 0 when the store is intact, 1 with the list of what is wrong otherwise."
     )]
     Verify {
-        /// Print JSON (structure in README.md, "JSON output")
+        /// Print JSON (fields: examples/reference.md, "JSON output"; schema/output/)
         #[arg(long)]
         json: bool,
     },
@@ -964,7 +964,7 @@ pub struct DiffArgs {
     /// Counts only: rows and changed cells per column
     #[arg(long)]
     pub stat: bool,
-    /// Print JSON (structure in README.md, "JSON output")
+    /// Print JSON (fields: examples/reference.md, "JSON output"; schema/output/)
     #[arg(long)]
     pub json: bool,
     /// List at most N changes (the counts stay complete)

@@ -1,6 +1,6 @@
 //! Rendering a diff: a text form for people (summary first, then each change with its rows in
 //! both versions, its key and what changed inside each cell) and `--json` for machines (the
-//! structure documented in README.md, "JSON output").
+//! structure documented in examples/reference.md, "JSON output").
 //!
 //! Inside a changed cell, removed characters are wrapped in `[-…]` and added ones in `[+…]`;
 //! inside those marks a space is shown as `␣` and a no-break space as `⍽`, so that a removed
