@@ -528,18 +528,7 @@ pub fn cell_changes_rows(store: &Store, output: &Version) -> Result<Vec<(String,
 pub fn cell_changes(store: &Store, output: &Version) -> Result<Vec<CellChange>> {
     let mut out = store.lineage.cell_changes(output.id)?;
     if let Some(d) = load(store, output.step_id)? {
-        let input = store
-            .lineage
-            .step_input_versions(output.step_id)?
-            .into_iter()
-            .find(|(role, _)| role == "input")
-            .map(|(_, v)| v)
-            .ok_or_else(|| {
-                Error::from(ErrorKind::Database(format!(
-                    "the step that made {} records cell changes but no input; run `sluice verify`",
-                    output.label()
-                )))
-            })?;
+        let input = changed_input(store, output)?;
         let runs = row_runs(store, output, input.id)?;
         out.extend(values_of(store, output, &input, &runs, &d.changes)?);
     }
@@ -590,18 +579,7 @@ pub fn cell_changes_sample(
             }
         }
         if !picked.is_empty() {
-            let input = store
-                .lineage
-                .step_input_versions(output.step_id)?
-                .into_iter()
-                .find(|(role, _)| role == "input")
-                .map(|(_, v)| v)
-                .ok_or_else(|| {
-                    Error::from(ErrorKind::Database(format!(
-                        "the step that made {} records cell changes but no input; run `sluice verify`",
-                        output.label()
-                    )))
-                })?;
+            let input = changed_input(store, output)?;
             let runs = row_runs(store, output, input.id)?;
             out.extend(values_of(store, output, &input, &runs, &picked)?);
         }
@@ -643,6 +621,23 @@ pub fn legacy_changes_as_versions_hold_them(
     let mut actual = values_of(store, output, &input, &runs, &by_column)?;
     actual.sort_by(|a, b| (a.row_idx, &a.column).cmp(&(b.row_idx, &b.column)));
     Ok(Some((recorded, actual)))
+}
+
+/// The main input of the step that made `output`, which its changed cells' old values come
+/// from.
+fn changed_input(store: &Store, output: &Version) -> Result<Version> {
+    store
+        .lineage
+        .step_input_versions(output.step_id)?
+        .into_iter()
+        .find(|(role, _)| role == "input")
+        .map(|(_, v)| v)
+        .ok_or_else(|| {
+            Error::from(ErrorKind::Database(format!(
+                "the step that made {} records cell changes but no input; run `sluice verify`",
+                output.label()
+            )))
+        })
 }
 
 /// The input row output row `row` came from, through the row map.

@@ -350,17 +350,7 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
     let base_label = base.label();
     // The new history, computed and written to a stage of its own: published into the store
     // only when it is recorded, so a refused or failed revert leaves no trace.
-    let stage = store.dir().join("tmp").join(format!(
-        "revert-{}-{}",
-        std::process::id(),
-        std::time::SystemTime::now()
-            .duration_since(std::time::UNIX_EPOCH)
-            .map_or(0, |d| d.as_nanos())
-    ));
-    store
-        .objects
-        .begin_stage(stage.clone())
-        .map_err(|e| Error::io(&stage, e))?;
+    let stage = store.begin_stage("revert")?;
     let computed = (|| -> Result<Computed> {
         // The new history, computed and made durable but not recorded.
         let started_at = clock::now_rfc3339();

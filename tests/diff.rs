@@ -95,24 +95,6 @@ fn myers_paper_example_has_d_5_and_4_rows_in_common() {
     );
 }
 
-/// The interpreter of the pinned reference environment (tests/reference/pyenv.py).
-fn reference_python() -> String {
-    if let Some(p) = std::env::var_os("SLUICE_REFERENCE_PYTHON") {
-        return p.to_string_lossy().into_owned();
-    }
-    let script = concat!(env!("CARGO_MANIFEST_DIR"), "/tests/reference/pyenv.py");
-    let out = Command::new("python3")
-        .arg(script)
-        .output()
-        .expect("python3 is needed for the reference checks");
-    assert!(
-        out.status.success(),
-        "tests/reference/pyenv.py failed: {}",
-        String::from_utf8_lossy(&out.stderr)
-    );
-    String::from_utf8(out.stdout).unwrap().trim().to_string()
-}
-
 // The reference: pandas 3.1.1 (PyPI, pinned in tests/reference/requirements.txt), an outer
 // merge on the key (tests/reference/diff_pandas.py). Both it and sluice must also agree with
 // what the generator (sluice::demo::revision_pair) records that it changed.

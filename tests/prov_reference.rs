@@ -11,39 +11,10 @@
 mod common;
 
 use std::collections::{BTreeSet, HashMap};
-use std::path::{Path, PathBuf};
 use std::process::Command;
 
 use common::*;
 use serde_json::Value;
-
-/// The interpreter of the pinned reference environment: SLUICE_REFERENCE_PYTHON (tests/run
-/// sets it), or else the one tests/reference/pyenv.py makes or finds under target/pyref, so
-/// that a plain `cargo test` runs this check too rather than skipping it.
-fn reference_python() -> PathBuf {
-    if let Some(p) = std::env::var_os("SLUICE_REFERENCE_PYTHON").filter(|p| !p.is_empty()) {
-        return PathBuf::from(p);
-    }
-    let script = concat!(env!("CARGO_MANIFEST_DIR"), "/tests/reference/pyenv.py");
-    let how = "create it with `python3 tests/reference/pyenv.py` (needs Python 3 and, the first \
-               time, PyPI reachable), or run tests/run, which does it";
-    let out = Command::new("python3")
-        .arg(script)
-        .output()
-        .unwrap_or_else(|e| panic!("python3 could not be started ({e}); {how}"));
-    assert!(
-        out.status.success(),
-        "the reference environment (target/pyref) could not be made:\n{}\n{how}",
-        String::from_utf8_lossy(&out.stderr)
-    );
-    let stdout = String::from_utf8_lossy(&out.stdout);
-    let path = stdout.lines().last().unwrap_or("").trim().to_string();
-    assert!(
-        Path::new(&path).exists(),
-        "tests/reference/pyenv.py printed {path:?}, which does not exist; {how}"
-    );
-    PathBuf::from(path)
-}
 
 /// What the store holds on the way to `target`, counted from `sluice log --json` the way the
 /// PROV mapping is documented (README, "W3C PROV"): versions and outside files as entities,

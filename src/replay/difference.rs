@@ -85,17 +85,7 @@ pub fn against_file(store: &mut Store, recorded: &Version, computed: &Path) -> R
     };
     // The draft's objects go to a stage of their own, removed again afterwards: the store is
     // left as it was.
-    let stage = store.dir().join("tmp").join(format!(
-        "compare-{}-{}",
-        std::process::id(),
-        std::time::SystemTime::now()
-            .duration_since(std::time::UNIX_EPOCH)
-            .map_or(0, |d| d.as_nanos())
-    ));
-    store
-        .objects
-        .begin_stage(stage.clone())
-        .map_err(|e| crate::Error::io(&stage, e))?;
+    store.begin_stage("compare")?;
     let result = (|| match intake::prepare(store, computed, &opts)? {
         Prepared::Unchanged(v) => summarize(store, recorded, &v),
         Prepared::Ready(mut p) => {

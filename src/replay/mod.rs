@@ -444,13 +444,8 @@ fn computed_difference(
     let hash: Hash = computed
         .parse()
         .map_err(|e: String| crate::Error::from(ErrorKind::Database(e)))?;
-    let name = format!("replay-{}-{}", std::process::id(), &computed[..16]);
-    let stage = store.dir().join("tmp").join(&name);
-    let tmp = store.dir().join("tmp").join(format!("{name}.csv"));
-    store
-        .objects
-        .begin_stage(stage.clone())
-        .map_err(|e| crate::Error::io(&stage, e))?;
+    let stage = store.begin_stage("replay")?;
+    let tmp = stage.with_extension("csv");
     let copied = (|| {
         match apply::apply(store, &input.label(), opts)? {
             ApplyOutcome::Replayed { .. } => {}

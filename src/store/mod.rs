@@ -150,6 +150,23 @@ impl Store {
         &self.dir
     }
 
+    /// Starts staging new objects in a fresh folder `tmp/WHAT-PID-NANOS` (see
+    /// [`Objects::begin_stage`]); returns the folder. The caller ends it with
+    /// `objects.publish_stage()` or `objects.discard_stage()`.
+    pub fn begin_stage(&mut self, what: &str) -> Result<PathBuf> {
+        let dir = self.dir.join("tmp").join(format!(
+            "{what}-{}-{}",
+            std::process::id(),
+            std::time::SystemTime::now()
+                .duration_since(std::time::UNIX_EPOCH)
+                .map_or(0, |d| d.as_nanos())
+        ));
+        self.objects
+            .begin_stage(dir.clone())
+            .map_err(|e| crate::Error::io(&dir, e))?;
+        Ok(dir)
+    }
+
     /// Runs `f` in one write transaction; commits when it returns `Ok`, rolls back otherwise.
     pub fn write<T>(&mut self, f: impl FnOnce(&mut Tx<'_>) -> Result<T>) -> Result<T> {
         self.lineage.write(f)

@@ -244,3 +244,33 @@ pub fn every_command(s: &Sandbox) -> Vec<Vec<String>> {
     out.sort();
     out
 }
+
+/// The interpreter of the pinned reference environment (pandas, polars, prov, openpyxl, odfpy):
+/// SLUICE_REFERENCE_PYTHON (tests/run sets it), or else the one tests/reference/pyenv.py makes
+/// or finds under target/pyref, so that a plain `cargo test` runs the reference checks too
+/// rather than skipping them.
+pub fn reference_python() -> PathBuf {
+    if let Some(p) = std::env::var_os("SLUICE_REFERENCE_PYTHON").filter(|p| !p.is_empty()) {
+        return PathBuf::from(p);
+    }
+    let script = concat!(env!("CARGO_MANIFEST_DIR"), "/tests/reference/pyenv.py");
+    let how = "create it with `python3 tests/reference/pyenv.py` (needs Python 3 and, the first \
+               time, PyPI reachable), or run tests/run, which does it";
+    let out = Command::new("python3")
+        .arg(script)
+        .output()
+        .unwrap_or_else(|e| panic!("python3 could not be started ({e}); {how}"));
+    assert!(
+        out.status.success(),
+        "the reference environment (target/pyref) could not be made:\n{}\n{how}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    // The interpreter's path is the last line pyenv.py prints.
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    let path = stdout.lines().last().unwrap_or("").trim().to_string();
+    assert!(
+        Path::new(&path).exists(),
+        "tests/reference/pyenv.py printed {path:?}, which does not exist; {how}"
+    );
+    PathBuf::from(path)
+}
