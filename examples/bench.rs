@@ -1063,6 +1063,30 @@ impl Goal {
     }
 }
 
+/// The last line of a benchmark's report.
+fn verdict(all_pass: bool) -> &'static str {
+    if all_pass {
+        "all goals met"
+    } else {
+        "some goals missed"
+    }
+}
+
+/// A benchmark's JSON summary: what ran, where and from which source, then its own `fields`.
+fn with_header(ctx: &Ctx, name: &str, fields: Value) -> Value {
+    let mut out = json!({
+        "benchmark": name,
+        "generated_by": format!("cargo run --release --example bench -- {name}"),
+        "machine": {"cores": cores(), "cpu": cpu_model(), "git": git_version()},
+        "sluice_binary": ctx.sluice.display().to_string(),
+        "source": source_revision(),
+    });
+    if let (Some(o), Value::Object(f)) = (out.as_object_mut(), fields) {
+        o.extend(f);
+    }
+    out
+}
+
 // ---------------------------------------------------------------------------------------------
 // The intake benchmark
 
@@ -1075,20 +1099,11 @@ fn intake(ctx: &Ctx) -> Result<Value> {
         sizes.push(size);
         all_pass &= pass;
     }
-    println!(
-        "intake: {}",
-        if all_pass {
-            "all goals met"
-        } else {
-            "some goals missed"
-        }
-    );
-    Ok(json!({
-        "benchmark": "intake",
-        "generated_by": "cargo run --release --example bench -- intake",
-        "machine": {"cores": cores(), "cpu": cpu_model(), "git": git_version()},
-        "sluice_binary": ctx.sluice.display().to_string(),
-        "source": source_revision(),
+    println!("intake: {}", verdict(all_pass));
+    Ok(with_header(
+        ctx,
+        "intake",
+        json!({
         "runs_requested": ctx.runs,
         "notes": [
             "MB = 10^6 bytes; seconds are medians; peak memory is the largest ru_maxrss of the runs",
@@ -1098,7 +1113,8 @@ fn intake(ctx: &Ctx) -> Result<Value> {
         ],
         "all_goals_met": all_pass,
         "sizes": sizes,
-    }))
+        }),
+    ))
 }
 
 /// Measures every tool on the file of `n` rows, prints the table and the goals.
@@ -1264,20 +1280,11 @@ fn diff(ctx: &Ctx) -> Result<Value> {
         sizes.push(size);
         all_pass &= pass;
     }
-    println!(
-        "diff: {}",
-        if all_pass {
-            "all goals met"
-        } else {
-            "some goals missed"
-        }
-    );
-    Ok(json!({
-        "benchmark": "diff",
-        "generated_by": "cargo run --release --example bench -- diff",
-        "machine": {"cores": cores(), "cpu": cpu_model(), "git": git_version()},
-        "sluice_binary": ctx.sluice.display().to_string(),
-        "source": source_revision(),
+    println!("diff: {}", verdict(all_pass));
+    Ok(with_header(
+        ctx,
+        "diff",
+        json!({
         "runs_requested": ctx.runs,
         "python": python,
         "notes": [
@@ -1289,7 +1296,8 @@ fn diff(ctx: &Ctx) -> Result<Value> {
         ],
         "all_goals_met": all_pass,
         "sizes": sizes,
-    }))
+        }),
+    ))
 }
 
 /// The interpreter of the pinned reference environment (created once by the script).
@@ -1688,23 +1696,17 @@ fn ops(ctx: &Ctx) -> Result<Value> {
     }
     println!(
         "ops: {}; {}",
-        if all_pass {
-            "all goals met"
-        } else {
-            "some goals missed"
-        },
+        verdict(all_pass),
         if all_agree {
             "the three tools agree"
         } else {
             "the tools DISAGREE (see above)"
         }
     );
-    Ok(json!({
-        "benchmark": "ops",
-        "generated_by": "cargo run --release --example bench -- ops",
-        "machine": {"cores": cores(), "cpu": cpu_model()},
-        "sluice_binary": ctx.sluice.display().to_string(),
-        "source": source_revision(),
+    Ok(with_header(
+        ctx,
+        "ops",
+        json!({
         "python": python.display().to_string(),
         "runs_requested": ctx.runs,
         "notes": [
@@ -1719,7 +1721,8 @@ fn ops(ctx: &Ctx) -> Result<Value> {
         "all_goals_met": all_pass,
         "all_agree": all_agree,
         "sizes": sizes,
-    }))
+        }),
+    ))
 }
 
 /// Measures the three tools on the file of `n` rows; prints the table, the checks and the
@@ -1865,20 +1868,11 @@ fn replay_bench(ctx: &Ctx) -> Result<Value> {
         sizes.push(size);
         all_pass &= pass;
     }
-    println!(
-        "replay: {}",
-        if all_pass {
-            "all goals met"
-        } else {
-            "some goals missed"
-        }
-    );
-    Ok(json!({
-        "benchmark": "replay",
-        "generated_by": "cargo run --release --example bench -- replay",
-        "machine": {"cores": cores(), "cpu": cpu_model()},
-        "sluice_binary": ctx.sluice.display().to_string(),
-        "source": source_revision(),
+    println!("replay: {}", verdict(all_pass));
+    Ok(with_header(
+        ctx,
+        "replay",
+        json!({
         "runs_requested": ctx.runs,
         "notes": [
             "seconds are medians; peak memory is the largest ru_maxrss of the runs",
@@ -1888,7 +1882,8 @@ fn replay_bench(ctx: &Ctx) -> Result<Value> {
         ],
         "all_goals_met": all_pass,
         "sizes": sizes,
-    }))
+        }),
+    ))
 }
 
 fn replay_size(ctx: &Ctx, n: u64) -> Result<(Value, bool)> {
@@ -2476,20 +2471,11 @@ fn trace_bench(ctx: &Ctx) -> Result<Value> {
     } else {
         println!("(one size only: whether the time grows with the rows is not judged)");
     }
-    println!(
-        "trace: {}",
-        if all_pass {
-            "all goals met"
-        } else {
-            "some goals missed"
-        }
-    );
-    Ok(json!({
-        "benchmark": "trace",
-        "generated_by": "cargo run --release --example bench -- trace",
-        "machine": {"cores": cores(), "cpu": cpu_model()},
-        "sluice_binary": ctx.sluice.display().to_string(),
-        "source": source_revision(),
+    println!("trace: {}", verdict(all_pass));
+    Ok(with_header(
+        ctx,
+        "trace",
+        json!({
         "steps": TRACE_STEPS,
         "trace_runs_per_row": TRACE_RUNS.max(ctx.runs),
         "notes": [
@@ -2500,7 +2486,8 @@ fn trace_bench(ctx: &Ctx) -> Result<Value> {
         "flat_goals": flat.iter().map(Goal::json).collect::<Vec<_>>(),
         "all_goals_met": all_pass,
         "sizes": sizes,
-    }))
+        }),
+    ))
 }
 
 /// One column's trail from the latest version, as read once before timing.
