@@ -785,12 +785,11 @@ fn patch(
         return Ok(None);
     }
     let sets = recorded_sets(store, &l.output)?;
-    let runs: Vec<RowRun> = sets
+    let mut runs: Vec<RowRun> = sets
         .iter()
         .filter(|(p, _)| *p == l.main)
         .flat_map(|(_, r)| r.iter().copied())
         .collect();
-    let mut runs = runs;
     runs.sort_by_key(|r| r.out_start);
     let changed = crate::provenance::cell_changes_rows(store, &l.output)?;
     let dropped = crate::provenance::drops(store, l.step.id, l.input.id)?;
@@ -928,30 +927,25 @@ fn patch(
         }
     }
 
-    // The values the step wrote: its changed cells and its added rows, from its output.
-    let need_cells: HashSet<u64> = wanted.iter().map(|w| w.0).collect();
+    // The values the step wrote, read from its output in one pass: its changed cells, put
+    // straight where they go in the new history, and its added rows.
+    let mut wanted_at: HashMap<u64, Vec<(usize, u64, usize)>> = HashMap::new(); // out row -> (its column, current row, current column)
+    for (o, name, w, c) in &wanted {
+        if let Some(oc) = l.output.header.iter().position(|h| h == name) {
+            wanted_at.entry(*o).or_default().push((oc, *w, *c));
+        }
+    }
     let need_rows: HashSet<u64> = added.iter().map(|a| a.1).collect();
-    let mut cell_values: HashMap<(u64, usize), Vec<u8>> = HashMap::new();
-    let mut row_values: HashMap<u64, Vec<Vec<u8>>> = HashMap::new();
     let out_col: Vec<Option<usize>> = current
         .header
         .iter()
         .map(|h| l.output.header.iter().position(|x| x == h))
         .collect();
-    let want_cols: HashMap<u64, Vec<usize>> = {
-        let mut m: HashMap<u64, Vec<usize>> = HashMap::new();
-        for (o, name, _, _) in &wanted {
-            if let Some(c) = l.output.header.iter().position(|h| h == name) {
-                m.entry(*o).or_default().push(c);
-            }
-        }
-        m
-    };
+    let mut patches: HashMap<(u64, usize), Vec<u8>> = HashMap::new();
+    let mut row_values: HashMap<u64, Vec<Vec<u8>>> = HashMap::new();
     apply::each_version_row(store, &l.output, |row, rec| {
-        if need_cells.contains(&row) {
-            for &c in want_cols.get(&row).into_iter().flatten() {
-                cell_values.insert((row, c), rec.field(c).to_vec());
-            }
+        for &(oc, w, c) in wanted_at.get(&row).into_iter().flatten() {
+            patches.insert((w, c), rec.field(oc).to_vec());
         }
         if need_rows.contains(&row) {
             row_values.insert(
@@ -964,14 +958,6 @@ fn patch(
         }
         Ok(())
     })?;
-    let mut patches: HashMap<(u64, usize), Vec<u8>> = HashMap::new();
-    for (o, name, w, c) in &wanted {
-        if let Some(oc) = l.output.header.iter().position(|h| h == name) {
-            if let Some(v) = cell_values.get(&(*o, oc)) {
-                patches.insert((*w, *c), v.clone());
-            }
-        }
-    }
     let mut added_after: HashMap<Option<u64>, Vec<u64>> = HashMap::new();
     for (a, o) in &added {
         added_after.entry(*a).or_default().push(*o);
