@@ -18,7 +18,12 @@ pub fn completions(shell: ShellArg, out: &mut dyn Write) -> anyhow::Result<()> {
         ShellArg::Zsh => clap_complete::Shell::Zsh,
         ShellArg::Fish => clap_complete::Shell::Fish,
     };
-    clap_complete::generate(shell, &mut cmd, "sluice", out);
+    // clap_complete panics when its writer fails (a closed pipe: `... | head`), so the script
+    // is made in memory and written here, where a write error is an ordinary error.
+    let mut script = Vec::new();
+    clap_complete::generate(shell, &mut cmd, "sluice", &mut script);
+    out.write_all(&script)
+        .context("writing the completion script")?;
     Ok(())
 }
 
