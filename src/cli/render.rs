@@ -651,6 +651,14 @@ pub fn verify(out: &mut impl Write, r: &VerifyReport) -> io::Result<()> {
             writeln!(out, "  {}  {}: {}", p.kind, p.subject, p.detail)?;
         }
     }
+    if r.entries_without_row_commitments > 0 {
+        writeln!(
+            out,
+            "note: audit entries 1-{} were written by an earlier sluice: they commit to their own fields and to the version hash, step, row index and provenance they name, not to every field of the {} they wrote; every later entry commits to every row its command wrote",
+            r.entries_without_row_commitments,
+            plural(r.rows_before_commitments, "database row", "database rows"),
+        )?;
+    }
     if r.unreferenced_objects > 0 || r.leftover_temp_files > 0 {
         writeln!(
             out,
