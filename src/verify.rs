@@ -13,7 +13,7 @@ use crate::table::rowindex;
 #[derive(Debug, Clone, PartialEq, Eq, Serialize)]
 pub struct Problem {
     /// "object_missing", "object_damaged", "object_size", "row_index", "database", "audit",
-    /// "provenance", "cell_change", "audit_mismatch", "stray_file".
+    /// "provenance", "cell_change", "audit_mismatch", "stray_file", "profile" (`--deep`).
     pub kind: String,
     /// What is affected: an object hash, a table, an audit sequence number.
     pub subject: String,
@@ -41,6 +41,8 @@ pub struct VerifyReport {
     pub entries_without_row_commitments: u64,
     /// Database rows written in that time, which no row commitment covers.
     pub rows_before_commitments: u64,
+    /// With `--deep`: versions whose row index and profile were computed again from their bytes.
+    pub versions_recomputed: u64,
     pub problems: Vec<Problem>,
 }
 
@@ -53,7 +55,22 @@ fn problem(kind: &str, subject: impl Into<String>, detail: impl Into<String>) ->
 }
 
 pub fn verify(store: &Store) -> Result<VerifyReport> {
-    store.lineage.snapshot(|| verify_snapshot(store))
+    verify_with(store, false)
+}
+
+/// [`verify`], and with `deep` also every version's row index and profile computed again from
+/// its bytes and compared with what is stored ([`deep_problems`]).
+pub fn verify_with(store: &Store, deep: bool) -> Result<VerifyReport> {
+    store.lineage.snapshot(|| {
+        let mut report = verify_snapshot(store)?;
+        if deep {
+            let (problems, n) = deep_problems(store, &report)?;
+            report.versions_recomputed = n;
+            report.problems.extend(problems);
+            report.intact = report.problems.is_empty();
+        }
+        Ok(report)
+    })
 }
 
 fn verify_snapshot(store: &Store) -> Result<VerifyReport> {
@@ -287,6 +304,7 @@ fn verify_snapshot(store: &Store) -> Result<VerifyReport> {
         leftover_temp_files: leftover,
         entries_without_row_commitments: rows.legacy_entries,
         rows_before_commitments: rows.legacy_rows,
+        versions_recomputed: 0,
         problems,
     })
 }
@@ -623,4 +641,92 @@ fn describe_range(sel: &audit::Selector) -> String {
     } else {
         format!("{}..{}", key(&sel.from), key(&sel.to))
     }
+}
+
+/// The deep check: each version whose objects read back intact is read again, and its row
+/// index (each row's byte offset and fingerprint) and column profile are computed as intake and
+/// the writer compute them, then compared with the stored row index object and the
+/// `column_profiles` rows. A difference means the store was written by something else than
+/// sluice, or by a sluice with a bug: the row commitments only prove the rows are the ones
+/// recorded, not that they were right. Returns the problems and the number of versions done.
+fn deep_problems(store: &Store, report: &VerifyReport) -> Result<(Vec<Problem>, u64)> {
+    use std::path::Path;
+    let mut out = Vec::new();
+    let mut done = 0u64;
+    let damaged: std::collections::HashSet<&str> =
+        report.problems.iter().map(|p| p.subject.as_str()).collect();
+    for v in store.lineage.all_versions()? {
+        if damaged.contains(v.hash.as_str()) || damaged.contains(v.row_index.as_str()) {
+            continue;
+        }
+        let Ok(hash) = v.hash.parse::<Hash>() else {
+            continue;
+        };
+        let stored = match crate::diff::read::row_index(&store.objects, &v) {
+            Ok(x) => x,
+            Err(e) => {
+                out.push(problem("row_index", v.label(), e.to_string()));
+                continue;
+            }
+        };
+        let settings = crate::table::stream::ReadSettings::for_dialect(&v.dialect)?;
+        let mut profiler = crate::table::profile::Profiler::new(v.header.len(), &v.null_tokens);
+        let mut header_seen = !v.dialect.has_header;
+        let (mut fps, mut offsets) = (Vec::new(), Vec::new());
+        let mut scratch = Vec::new();
+        let read = store.objects.open_raw(&hash).and_then(|src| {
+            crate::table::stream::for_each_record(Path::new(&v.label()), src, &settings, |r| {
+                if !header_seen {
+                    header_seen = true;
+                    return Ok(());
+                }
+                profiler.observe(r.iter());
+                offsets.push(r.byte);
+                fps.push(rowindex::fingerprint(&r, &mut scratch));
+                Ok(())
+            })
+        });
+        if let Err(e) = read {
+            out.push(problem("row_index", v.label(), e.to_string()));
+            continue;
+        }
+        done += 1;
+        if (fps.as_slice(), offsets.as_slice()) != (stored.0.as_slice(), stored.1.as_slice()) {
+            let first = (0..fps.len().max(stored.0.len()))
+                .find(|&i| fps.get(i) != stored.0.get(i) || offsets.get(i) != stored.1.get(i))
+                .unwrap_or(0);
+            out.push(problem(
+                "row_index",
+                v.label(),
+                format!(
+                    "the row index {} does not match the version's bytes read again ({} rows read, {} indexed; first difference at data row {})",
+                    v.row_index,
+                    fps.len(),
+                    stored.0.len(),
+                    first + 1
+                ),
+            ));
+        }
+        let computed = profiler.finish(&v.header);
+        let recorded = store.lineage.profiles(v.id)?;
+        if computed != recorded {
+            let which: Vec<String> = computed
+                .iter()
+                .zip(recorded.iter())
+                .filter(|(a, b)| a != b)
+                .map(|(a, _)| a.name.clone())
+                .collect();
+            out.push(problem(
+                "profile",
+                v.label(),
+                format!(
+                    "the recorded column profile does not match the version's bytes read again (columns: {}; {} profiled, {} recorded)",
+                    if which.is_empty() { "-".to_string() } else { which.join(", ") },
+                    computed.len(),
+                    recorded.len()
+                ),
+            ));
+        }
+    }
+    Ok((out, done))
 }

@@ -320,6 +320,10 @@ pub enum Command {
         after_help = "Example:\n  sluice verify\n\nExit code 0 when the store is intact, 1 with the list of what is wrong otherwise."
     )]
     Verify {
+        /// Also read every version again and compare its row index and column profile with
+        /// ones computed from its bytes (reads every version in full)
+        #[arg(long)]
+        deep: bool,
         /// Print JSON (fields: examples/reference.md, "JSON output"; schema/output/)
         #[arg(long)]
         json: bool,

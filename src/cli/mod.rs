@@ -555,9 +555,9 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             }
             Ok(0)
         }
-        Command::Verify { json } => {
+        Command::Verify { json, deep } => {
             let store = open_store(&cli, &cwd)?;
-            let report = verify::verify(&store)?;
+            let report = verify::verify_with(&store, *deep)?;
             if *json {
                 render::json(&mut out, &report)?;
             } else {

@@ -651,6 +651,21 @@ pub fn verify(out: &mut impl Write, r: &VerifyReport) -> io::Result<()> {
             writeln!(out, "  {}  {}: {}", p.kind, p.subject, p.detail)?;
         }
     }
+    if r.versions_recomputed > 0 {
+        writeln!(
+            out,
+            "deep: {} read again; row indexes and column profiles computed from the bytes{}",
+            plural(r.versions_recomputed, "version", "versions"),
+            if r.problems
+                .iter()
+                .any(|p| p.kind == "profile" || p.kind == "row_index")
+            {
+                " (differences listed above)"
+            } else {
+                " match what is stored"
+            }
+        )?;
+    }
     if r.entries_without_row_commitments > 0 {
         writeln!(
             out,
