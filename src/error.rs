@@ -48,6 +48,10 @@ pub enum InputProblem {
     },
     NulByte,
     UnterminatedQuote,
+    /// A record (or the header) with more field bytes than the bound.
+    RecordTooLong {
+        max_bytes: u64,
+    },
     BlankHeaderNames {
         columns: Vec<u64>,
     },
@@ -143,6 +147,12 @@ impl fmt::Display for InputProblem {
                 f,
                 "a NUL byte (0x00); this looks like a binary file or UTF-16 text, not CSV \
                  (for UTF-16 pass --encoding utf-16le or utf-16be)"
+            ),
+            RecordTooLong { max_bytes } => write!(
+                f,
+                "this record holds more than {} MiB, the bound on one record (header included) that keeps memory bounded; \
+                 if the file really holds records this long, raise it with --max-record-mib",
+                max_bytes.div_ceil(1 << 20)
             ),
             UnterminatedQuote => write!(
                 f,

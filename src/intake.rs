@@ -541,6 +541,7 @@ fn run_pipeline(
         let settings = ReadSettings {
             delimiter: opts.delimiter,
             encoding,
+            max_record: Some(crate::table::stream::max_record_bytes()),
         };
         let has_header = opts.has_header;
         let reader = scope.spawn(move || -> Result<Option<ReadSide>> {
@@ -932,6 +933,7 @@ fn check_duplicate_keys(
     let settings = ReadSettings {
         delimiter: Some(scan.dialect.delimiter_byte()),
         encoding,
+        max_record: None,
     };
     let f = File::open(path).map_err(|e| Error::io(path, e))?;
     for_each_record(path, f, &settings, |r| {

@@ -41,6 +41,11 @@ pub struct Cli {
     )]
     pub color: ColorArg,
 
+    /// The most one record of a file taken in may hold, header included, in MiB (default 32);
+    /// a longer record is refused with its line and byte, so a hostile file cannot fill memory
+    #[arg(long, global = true, value_name = "MIB", value_parser = clap::value_parser!(u64).range(1..=65536))]
+    pub max_record_mib: Option<u64>,
+
     #[command(subcommand)]
     pub command: Command,
 }

@@ -54,6 +54,9 @@ fn open_store(cli: &Cli, cwd: &Path) -> anyhow::Result<Store> {
 /// Runs a parsed command line; returns the exit code.
 pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
     let cwd = cwd()?;
+    if let Some(mib) = cli.max_record_mib {
+        sluice::table::stream::set_max_record_bytes(mib << 20);
+    }
     let stdout = std::io::stdout();
     let mut out = stdout.lock();
     match &cli.command {

@@ -560,7 +560,21 @@ pub fn show(out: &mut impl Write, d: &VersionDetail) -> io::Result<()> {
             },
         ]);
     }
-    table(out, &rows, &[false, false, true, true, false, false, true])
+    table(out, &rows, &[false, false, true, true, false, false, true])?;
+    let cut = d.profile.iter().any(|p| {
+        [&p.min, &p.max]
+            .into_iter()
+            .flatten()
+            .any(|v| v.len() > sluice::table::profile::KEPT_VALUE_BYTES && v.ends_with('\u{2026}'))
+    });
+    if cut {
+        writeln!(
+            out,
+            "  (the profile keeps a min or max longer than {} bytes as its start and \u{2026}; the version holds the whole value)",
+            sluice::table::profile::KEPT_VALUE_BYTES
+        )?;
+    }
+    Ok(())
 }
 
 fn table<const N: usize>(
