@@ -74,6 +74,10 @@ pub enum InputProblem {
     UnreadableWorkbook {
         detail: String,
     },
+    /// A workbook past the bounds on its decompressed size or on a sheet's cells.
+    WorkbookTooLarge {
+        detail: String,
+    },
     /// A workbook with several sheets and no `--sheet`.
     SheetNeeded {
         sheets: Vec<String>,
@@ -201,6 +205,7 @@ impl fmt::Display for InputProblem {
                 f,
                 "the file changed while it was being read; take it in again once whatever writes it has finished"
             ),
+            WorkbookTooLarge { detail } => write!(f, "workbook refused: {detail}"),
             UnreadableWorkbook { detail } => write!(
                 f,
                 "cannot be read as a workbook ({detail}); expected an .xlsx or .ods file saved by a spreadsheet program"

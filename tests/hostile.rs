@@ -626,3 +626,81 @@ fn one_huge_record_is_refused_at_the_bound_and_a_raised_bound_keeps_the_profile_
     assert!(grew < 1 << 20, "the database grew by {grew} bytes");
     eprintln!("hostile: a 40 MiB cell taken with --max-record-mib 64, peak {peak} MiB, database grew by {grew} bytes");
 }
+
+/// Writes a zip archive holding `parts` (name, content made by the closure, which writes into
+/// the compressed entry a piece at a time), deflated.
+/// What writes one part of a generated archive.
+type Fill<'a> = &'a dyn Fn(&mut dyn Write);
+
+fn write_zip(path: &Path, parts: &[(&str, Fill<'_>)]) {
+    let mut z = zip::ZipWriter::new(std::fs::File::create(path).unwrap());
+    let opts = zip::write::SimpleFileOptions::default()
+        .compression_method(zip::CompressionMethod::Deflated)
+        .compression_level(Some(1))
+        .large_file(true);
+    for (name, fill) in parts {
+        z.start_file(*name, opts).unwrap();
+        fill(&mut z);
+    }
+    z.finish().unwrap();
+}
+
+/// Workbooks built to exhaust memory: a sheet whose XML inflates far past its file (a few
+/// hundred KiB of .xlsx, 160 MiB of XML), and a sheet of two cells at opposite corners of the
+/// grid (A1 and XFD1048576, a range of 17 billion cells). Both are refused before the
+/// workbook is read, with the bound named, in bounded memory.
+#[test]
+fn workbooks_that_inflate_or_span_the_grid_are_refused_before_they_are_read() {
+    let s = Sandbox::with_store();
+    let head = b"<?xml version=\"1.0\"?><worksheet xmlns=\"http://schemas.openxmlformats.org/spreadsheetml/2006/main\"><sheetData>";
+    let tail = b"</sheetData></worksheet>";
+    let padded = |w: &mut dyn Write| {
+        w.write_all(head).unwrap();
+        // White space between elements: XML that holds nothing and compresses to almost nothing.
+        let block = vec![b' '; 1 << 20];
+        let mut n = 0usize;
+        while n < 160 << 20 {
+            w.write_all(&block).unwrap();
+            n += block.len();
+        }
+        w.write_all(tail).unwrap();
+    };
+    let corners = |w: &mut dyn Write| {
+        w.write_all(head).unwrap();
+        w.write_all(b"<row r=\"1\"><c r=\"A1\" t=\"inlineStr\"><is><t>order_id</t></is></c></row>")
+            .unwrap();
+        w.write_all(
+            b"<row r=\"1048576\"><c r=\"XFD1048576\" t=\"inlineStr\"><is><t>x</t></is></c></row>",
+        )
+        .unwrap();
+        w.write_all(tail).unwrap();
+    };
+    let before = s.snapshot();
+    for (name, fill, says) in [
+        (
+            "inflating.xlsx",
+            &padded as &dyn Fn(&mut dyn Write),
+            "decompress to more than 128 MiB",
+        ),
+        (
+            "corners.xlsx",
+            &corners as &dyn Fn(&mut dyn Write),
+            "span 1048576 rows by 16384 columns",
+        ),
+    ] {
+        let file = s.path().join(name);
+        write_zip(&file, &[("xl/worksheets/sheet1.xml", fill)]);
+        let size = std::fs::metadata(&file).unwrap().len();
+        let m = measured(s.path(), &["ingest", name, "--as", "book"]);
+        assert_eq!(m.code, 2, "{name}: {}", m.stderr);
+        assert_contains(&m.stderr, name);
+        assert_contains(&m.stderr, says);
+        let peak = m.peak_kib.div_ceil(1024);
+        assert!(peak <= 2 * BASE_MIB, "{name}: peak {peak} MiB");
+        eprintln!(
+            "hostile: {name} ({size} bytes) refused, peak {peak} MiB: {}",
+            m.stderr.trim()
+        );
+    }
+    assert_eq!(before, s.snapshot());
+}
