@@ -130,8 +130,22 @@ impl PlanStep {
     }
 }
 
+/// The most steps a plan may have: 10,000, far past any written by hand or exported from a
+/// history, so that a plan cannot make a run of unbounded length.
+pub const MAX_PLAN_STEPS: usize = 10_000;
+
+/// The largest plan text read: 16 MiB (every step of a plan is parsed before the first runs).
+pub const MAX_PLAN_BYTES: usize = 16 << 20;
+
 /// Reads a plan's text; errors name the line and column, or the step.
 pub fn parse(text: &str, path: &str) -> Result<Plan> {
+    if text.len() > MAX_PLAN_BYTES {
+        return Err(Error::usage(format!(
+            "{path}: the plan is {} bytes, more than the {} MiB a plan may be; split it into several plans",
+            text.len(),
+            MAX_PLAN_BYTES >> 20
+        )));
+    }
     let plan: Plan = serde_json::from_str(text).map_err(|e| {
         let what = e.to_string();
         let what = what.split(" at line").next().unwrap_or("malformed plan");
@@ -172,6 +186,12 @@ fn validate(plan: &Plan, path: &str) -> Result<()> {
     }
     if plan.steps.is_empty() {
         return Err(Error::usage(format!("{path}: the plan has no steps")));
+    }
+    if plan.steps.len() > MAX_PLAN_STEPS {
+        return Err(Error::usage(format!(
+            "{path}: the plan has {} steps, more than the {MAX_PLAN_STEPS} a plan may have; split it into several plans",
+            plan.steps.len()
+        )));
     }
     for (i, s) in plan.steps.iter().enumerate() {
         let at = |what: &str| Error::usage(format!("{path}: step {}: {what}", i + 1));

@@ -412,6 +412,29 @@ fn malformed_missing_and_huge_rules_plans_and_tables_are_refused_with_positions(
         &["run", "huge-plan.json"],
         &["huge-plan.json: line 100003, column 0"],
     );
+    let mut plan = String::from(
+        "{\"sluice_plan\": 1, \"inputs\": [{\"name\": \"o\", \"file\": \"o.csv\"}], \"steps\": [\n",
+    );
+    for _ in 0..10_000 {
+        plan.push_str("{\"on\": \"o\", \"apply\": {\"op\": \"trim\"}, \"why\": \"x\"},\n");
+    }
+    plan.push_str("{\"on\": \"o\", \"apply\": {\"op\": \"trim\"}, \"why\": \"x\"}]}\n");
+    refused(
+        "10001-steps.json",
+        plan.as_bytes(),
+        &["run", "10001-steps.json"],
+        &["the plan has 10001 steps, more than the 10000 a plan may have"],
+    );
+    let mut plan = String::from("{\"sluice_plan\": 1, \"inputs\": [], \"steps\": []");
+    plan.push_str(&" ".repeat(17 << 20));
+    plan.push('}');
+    refused(
+        "17mib-plan.json",
+        plan.as_bytes(),
+        &["run", "17mib-plan.json"],
+        &["more than the 16 MiB a plan may be"],
+    );
+    drop(plan);
     refused(
         "missing-column-plan.json",
         b"{\"sluice_plan\": 1, \"inputs\": [{\"name\": \"o\", \"file\": \"o.csv\"}],\n \"steps\": [{\"on\": \"o\", \"apply\": {\"op\": \"trim\", \"columns\": [\"shop\"]}, \"why\": \"x\"}]}",
