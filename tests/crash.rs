@@ -76,6 +76,22 @@ struct Tally {
     complete: u32,
     partial_plan: u32,
     already_done: u32,
+    /// Temporary files and folders the killed commands left in `tmp/`.
+    leftovers: usize,
+}
+
+/// The entries of `tmp/` that process `pid` made (sluice names them `KIND-PID-...`).
+fn leftovers(dir: &Path, pid: u32) -> Vec<String> {
+    let mut found: Vec<String> = std::fs::read_dir(dir.join(".sluice/tmp"))
+        .map(|rd| {
+            rd.flatten()
+                .map(|e| e.file_name().to_string_lossy().into_owned())
+                .filter(|n| n.split('-').nth(1) == Some(pid.to_string().as_str()))
+                .collect()
+        })
+        .unwrap_or_default();
+    found.sort();
+    found
 }
 
 /// Kills `child` after `delay`; returns whether it was still running when killed.
@@ -167,8 +183,11 @@ fn ingest_killed_at_fifty_moments_records_all_or_nothing() {
         let dir = tempfile::tempdir().unwrap();
         copy_dir(&base.path().join(".sluice"), &dir.path().join(".sluice"));
         let child = sluice(dir.path(), &args).spawn().unwrap();
+        let pid = child.id();
         let killed = kill_after(child, delay);
         let what = format!("kill point {k} at {delay:?}");
+        let left = leftovers(dir.path(), pid);
+        tally.leftovers += left.len();
         let report = assert_intact(dir.path(), &what);
         let audit = report["audit_entries_checked"].as_u64().unwrap();
         let now = versions_of(dir.path(), "orders");
@@ -196,6 +215,11 @@ fn ingest_killed_at_fifty_moments_records_all_or_nothing() {
         // Running it again succeeds and ends where the unkilled run did.
         let st = sluice(dir.path(), &args).status().unwrap();
         assert!(st.success(), "{what}: the rerun failed");
+        assert_eq!(
+            leftovers(dir.path(), pid),
+            Vec::<String>::new(),
+            "{what}: the rerun left the killed command's temporary files (there were {left:?})"
+        );
         let after = versions_of(dir.path(), "orders");
         assert_eq!(after.len(), 2, "{what}: the rerun");
         assert_eq!(
@@ -207,11 +231,13 @@ fn ingest_killed_at_fifty_moments_records_all_or_nothing() {
     }
     eprintln!(
         "crash: ingest of {ROWS} rows ({} bytes) took {total:?} unkilled; {KILL_POINTS} kill points: \
-         {} left nothing recorded, {} a complete version and step, {} came after the child had exited",
+         {} left nothing recorded, {} a complete version and step, {} came after the child had exited; \
+         {} temporary files left by the kills, all removed by the rerun",
         std::fs::metadata(&big).unwrap().len(),
         tally.nothing,
         tally.complete,
-        tally.already_done
+        tally.already_done,
+        tally.leftovers
     );
     assert_eq!(
         tally.nothing + tally.complete + tally.already_done,
@@ -267,8 +293,11 @@ fn plan_run_killed_at_fifty_moments_keeps_whole_steps_only() {
         let dir = tempfile::tempdir().unwrap();
         copy_dir(base.path(), dir.path());
         let child = sluice(dir.path(), &args).spawn().unwrap();
+        let pid = child.id();
         let killed = kill_after(child, delay);
         let what = format!("kill point {k} at {delay:?}");
+        let left = leftovers(dir.path(), pid);
+        tally.leftovers += left.len();
         let report = assert_intact(dir.path(), &what);
         let now = versions_of(dir.path(), "orders");
         let made = now.len() - 1;
@@ -297,6 +326,11 @@ fn plan_run_killed_at_fifty_moments_keeps_whole_steps_only() {
         // Running the plan again succeeds and ends with the unkilled run's bytes.
         let st = sluice(dir.path(), &args).status().unwrap();
         assert!(st.success(), "{what}: the rerun failed");
+        assert_eq!(
+            leftovers(dir.path(), pid),
+            Vec::<String>::new(),
+            "{what}: the rerun left the killed command's temporary files (there were {left:?})"
+        );
         let after = versions_of(dir.path(), "orders");
         assert_eq!(
             after.iter().max_by_key(|v| v["seq"].as_u64()).unwrap()["hash"],
@@ -308,11 +342,13 @@ fn plan_run_killed_at_fifty_moments_keeps_whole_steps_only() {
     eprintln!(
         "crash: plan of {PLAN_STEPS} steps on {PLAN_ROWS} rows took {total:?} unkilled; {KILL_POINTS} kill points: \
          {} before the first step was recorded, {} after some of the steps, {} after all of them \
-         (killed), {} after the child had exited; steps recorded when killed: {steps_seen:?}",
+         (killed), {} after the child had exited; steps recorded when killed: {steps_seen:?}; \
+         {} temporary files left by the kills, all removed by the rerun",
         tally.nothing,
         tally.partial_plan,
         tally.complete,
-        tally.already_done
+        tally.already_done,
+        tally.leftovers
     );
     assert!(
         tally.partial_plan > 0,

@@ -17,6 +17,29 @@ use crate::error::{Error, ErrorKind, Result};
 pub use lineage::{Lineage, NewStep, NewVersion, Tx};
 pub use objects::{FsBackend, ObjectBackend, Objects};
 
+/// The process id in the name of an entry sluice made in `tmp/` (`KIND-PID-...`).
+fn leftover_pid(name: &str) -> Option<u32> {
+    let mut parts = name.splitn(3, '-');
+    let kind = parts.next()?;
+    let pid = parts.next()?.parse::<u32>().ok()?;
+    parts.next()?;
+    ["obj", "exec", "replay", "revert", "compare"]
+        .contains(&kind)
+        .then_some(pid)
+}
+
+/// Whether process `pid` runs (exists and is not a zombie waiting to be reaped).
+fn process_alive(proc_root: &Path, pid: u32) -> bool {
+    match fs::read_to_string(proc_root.join(pid.to_string()).join("stat")) {
+        // The state follows the command name, which is in parentheses and may hold any byte.
+        Ok(stat) => stat
+            .rsplit_once(')')
+            .and_then(|(_, rest)| rest.trim_start().chars().next())
+            .is_none_or(|state| state != 'Z' && state != 'X'),
+        Err(_) => proc_root.join(pid.to_string()).exists(),
+    }
+}
+
 /// The name of the store folder inside a project.
 pub const STORE_DIR: &str = ".sluice";
 /// The lineage database file inside the store folder.
@@ -168,7 +191,47 @@ impl Store {
     }
 
     /// Runs `f` in one write transaction; commits when it returns `Ok`, rolls back otherwise.
+    /// Every command that records something comes here, so it first clears what interrupted
+    /// commands left in `tmp/` ([`Store::sweep_tmp`]).
     pub fn write<T>(&mut self, f: impl FnOnce(&mut Tx<'_>) -> Result<T>) -> Result<T> {
+        self.sweep_tmp();
         self.lineage.write(f)
+    }
+
+    /// Removes the temporary files and folders of commands that are no longer running: every
+    /// name sluice gives in `tmp/` is `KIND-PID-...` (`obj-` for objects being written,
+    /// `exec-`, `replay-`, `revert-`, `compare-` for folders), and an entry is removed only when
+    /// its process is gone (no `/proc/PID`, or a zombie), so a concurrent writer's files are
+    /// never touched. Where `/proc` cannot tell, nothing is removed. Best effort: a failure to
+    /// remove is left for `verify` to count. Returns how many entries were removed.
+    pub fn sweep_tmp(&self) -> u64 {
+        let proc_root = Path::new("/proc");
+        if !proc_root.join("self").exists() {
+            return 0;
+        }
+        let Ok(entries) = fs::read_dir(self.dir.join("tmp")) else {
+            return 0;
+        };
+        let me = std::process::id();
+        let mut removed = 0;
+        for e in entries.flatten() {
+            let name = e.file_name();
+            let Some(pid) = name.to_str().and_then(leftover_pid) else {
+                continue;
+            };
+            if pid == me || process_alive(proc_root, pid) {
+                continue;
+            }
+            let path = e.path();
+            let gone = match e.file_type() {
+                Ok(t) if t.is_dir() => fs::remove_dir_all(&path),
+                Ok(_) => fs::remove_file(&path),
+                Err(err) => Err(err),
+            };
+            if gone.is_ok() {
+                removed += 1;
+            }
+        }
+        removed
     }
 }
