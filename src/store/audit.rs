@@ -597,6 +597,35 @@ mod tests {
         assert!(!chain_problems(&c).is_empty());
     }
 
+    /// The row encoding: columns by name whatever their order in the table, typed values
+    /// (an integer differs from its text), NULL distinct from an empty text, and a column that
+    /// is NULL the same as one that is not there (what a later migration adds).
+    #[test]
+    fn row_encoding_is_canonical() {
+        let c = Connection::open_in_memory().unwrap();
+        c.execute_batch(
+            "CREATE TABLE ab (a, b); CREATE TABLE ba (b, a); CREATE TABLE abc (a, b, c);
+             INSERT INTO ab VALUES (1, 'x'), (1, ''), (1, NULL), ('1', 'x');
+             INSERT INTO ba VALUES ('x', 1);
+             INSERT INTO abc VALUES (1, 'x', NULL);",
+        )
+        .unwrap();
+        let rows = |sql: &str| -> Vec<Vec<u8>> {
+            c.prepare(sql)
+                .unwrap()
+                .query_map([], |r| encode_row(r, 0))
+                .unwrap()
+                .map(|r| r.unwrap())
+                .collect()
+        };
+        let ab = rows("SELECT * FROM ab ORDER BY rowid");
+        assert_eq!(rows("SELECT * FROM ba")[0], ab[0]);
+        assert_eq!(rows("SELECT * FROM abc")[0], ab[0]);
+        assert_ne!(ab[0], ab[3], "an integer differs from its text");
+        assert_ne!(ab[1], ab[2], "NULL differs from an empty text");
+        assert_ne!(ab[0], ab[1]);
+    }
+
     #[test]
     fn encoding_is_unambiguous() {
         // Moving a byte between two adjacent fields must change the hash.
