@@ -719,7 +719,9 @@ fn workbooks_that_inflate_or_span_the_grid_are_refused_before_they_are_read() {
         assert_contains(&m.stderr, name);
         assert_contains(&m.stderr, says);
         let peak = m.peak_kib.div_ceil(1024);
-        assert!(peak <= 2 * BASE_MIB, "{name}: peak {peak} MiB");
+        // 17-18 MiB when this test runs alone; beside the others the figure starts at this
+        // process's own peak (see the top of the file), hence the room.
+        assert!(peak <= 3 * BASE_MIB, "{name}: peak {peak} MiB");
         eprintln!(
             "hostile: {name} ({size} bytes) refused, peak {peak} MiB: {}",
             m.stderr.trim()
