@@ -1,4 +1,4 @@
-//! Who is recorded as acting: --agent, then SLUICE_AGENT, then git's configured user (the
+//! Who is recorded as acting: --person, then SLUICE_PERSON, then git's configured user (the
 //! repository's config, then the global one), then the operating system user.
 
 mod common;
@@ -20,10 +20,13 @@ fn git(dir: &std::path::Path, args: &[&str]) {
 
 fn recorded_agent(s: &Sandbox, home: &std::path::Path, envs: &[(&str, &str)]) -> String {
     // New bytes each time, so that every call records a step.
-    let n = s.json(&["log", "--json"]).as_array().map_or(0, |a| a.len());
+    let n = s
+        .json(&["timeline", "--json"])
+        .as_array()
+        .map_or(0, |a| a.len());
     s.file("a.csv", format!("id\n{n}\n"));
-    let mut c = s.command(&["ingest", "a.csv", "--as", "things"]);
-    c.env_remove("SLUICE_AGENT")
+    let mut c = s.command(&["receive", "a.csv", "--as", "things"]);
+    c.env_remove("SLUICE_PERSON")
         .env("HOME", home)
         .env("XDG_CONFIG_HOME", home.join(".config"))
         .env("GIT_CONFIG_NOSYSTEM", "1")
@@ -39,7 +42,7 @@ fn recorded_agent(s: &Sandbox, home: &std::path::Path, envs: &[(&str, &str)]) ->
         "{}",
         String::from_utf8_lossy(&out.stderr)
     );
-    let log = s.json(&["log", "--json"]);
+    let log = s.json(&["timeline", "--json"]);
     log[0]["step"]["agent"].as_str().unwrap().to_string()
 }
 
@@ -54,12 +57,12 @@ fn git_repository_identity_is_used_when_nothing_else_is_given() {
         recorded_agent(&s, home.path(), &[]),
         "Pat Mechanic <pat@example.org>"
     );
-    // SLUICE_AGENT wins over git.
+    // SLUICE_PERSON wins over git.
     assert_eq!(
         recorded_agent(
             &s,
             home.path(),
-            &[("SLUICE_AGENT", "Lee Auditor <lee@example.net>")]
+            &[("SLUICE_PERSON", "Lee Auditor <lee@example.net>")]
         ),
         "Lee Auditor <lee@example.net>"
     );

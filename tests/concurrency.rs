@@ -23,7 +23,7 @@ fn eight_writers_at_once_lose_nothing() {
         }
         s.file(&file, text);
         children.push(
-            s.command(&["ingest", &file, "--as", &name])
+            s.command(&["receive", &file, "--as", &name])
                 .stdout(std::process::Stdio::piped())
                 .stderr(std::process::Stdio::piped())
                 .spawn()
@@ -38,7 +38,7 @@ fn eight_writers_at_once_lose_nothing() {
             String::from_utf8_lossy(&out.stderr)
         );
     }
-    let shared = s.json(&["log", "shared", "--json"]);
+    let shared = s.json(&["timeline", "--dataset", "shared", "--json"]);
     let mut seqs: Vec<u64> = shared
         .as_array()
         .unwrap()
@@ -78,13 +78,14 @@ fn twelve_writers_ingesting_and_applying_while_a_reader_verifies() {
         t
     };
     s.file("base.csv", rows("B", 3000));
-    s.ok(&["ingest", "base.csv", "--as", "base"]);
+    s.ok(&["receive", "base.csv", "--as", "base"]);
     let sh = |script: String| {
         let mut c = std::process::Command::new("sh");
         c.arg("-c")
             .arg(script)
             .current_dir(s.path())
-            .env("SLUICE_AGENT", AGENT)
+            .env("SLUICE_PERSON", PERSON)
+            .env("SLUICE_EMAIL", EMAIL)
             .env("NO_COLOR", "1")
             .env_remove("SLUICE_STORE")
             .stdout(Stdio::null())
@@ -108,9 +109,9 @@ fn twelve_writers_ingesting_and_applying_while_a_reader_verifies() {
     ];
     for op in ops {
         writers.push((
-            format!("apply {op} to base@1"),
+            format!("apply {op} to base:v1"),
             sh(format!(
-                "'{bin}' apply base@1 {op} --as base --why 'concurrent step'"
+                "'{bin}' apply base:v1 {op} --as base --why 'concurrent step'"
             )),
         ));
     }
@@ -151,7 +152,7 @@ fn twelve_writers_ingesting_and_applying_while_a_reader_verifies() {
     }
     let seqs = |name: &str| -> Vec<u64> {
         let mut v: Vec<u64> = s
-            .json(&["log", name, "--json"])
+            .json(&["timeline", name, "--json"])
             .as_array()
             .unwrap()
             .iter()

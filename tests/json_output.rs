@@ -36,16 +36,20 @@ fn errors(v: &jsonschema::Validator, value: &Value) -> Vec<String> {
 /// (schema, arguments, exit code): the outputs checked. Adding a command with `--json` means
 /// adding its schema and a row here.
 const CASES: &[(&str, &[&str], i32)] = &[
-    ("log", &["log", "--json"], 0),
-    ("log", &["log", "all_orders", "--json"], 0),
-    ("show", &["show", "quillby_orders@1", "--json"], 0),
-    ("show", &["show", "all_orders", "--json"], 0),
-    ("show", &["show", "q3_by_shop", "--json"], 0),
-    ("show", &["show", "reviewed_orders@1", "--json"], 0),
-    ("show", &["show", "reviewed_orders@2", "--json"], 0),
+    ("timeline", &["timeline", "--json"], 0),
     (
-        "check",
-        &["check", "all_orders", "--rules", "rules.json", "--json"],
+        "timeline",
+        &["timeline", "--dataset", "all_orders", "--json"],
+        0,
+    ),
+    ("about", &["about", "quillby_orders:v1", "--json"], 0),
+    ("about", &["about", "all_orders", "--json"], 0),
+    ("about", &["about", "q3_by_shop", "--json"], 0),
+    ("about", &["about", "reviewed_orders:v1", "--json"], 0),
+    ("about", &["about", "reviewed_orders:v2", "--json"], 0),
+    (
+        "inspect",
+        &["inspect", "all_orders", "--rules", "rules.json", "--json"],
         1,
     ),
     ("run", &["run", "plan.json", "--json"], 0),
@@ -55,17 +59,17 @@ const CASES: &[(&str, &[&str], i32)] = &[
             "run",
             "bad_plan.json",
             "--input",
-            "quillby_orders=quillby_orders@1",
+            "quillby_orders=quillby_orders:v1",
             "--json",
         ],
         1,
     ),
     (
-        "diff",
+        "compare",
         &[
-            "diff",
-            "all_orders@6",
-            "all_orders@7",
+            "compare",
+            "all_orders:v6",
+            "all_orders:v7",
             "--key",
             "order_id",
             "--json",
@@ -75,11 +79,11 @@ const CASES: &[(&str, &[&str], i32)] = &[
         0,
     ),
     (
-        "diff",
+        "compare",
         &[
-            "diff",
-            "quillby_orders@1",
-            "quillby_orders@2",
+            "compare",
+            "quillby_orders:v1",
+            "quillby_orders:v2",
             "--json",
             "--limit",
             "3",
@@ -87,16 +91,16 @@ const CASES: &[(&str, &[&str], i32)] = &[
         0,
     ),
     (
-        "diff",
-        &["diff", "all_orders@4", "all_orders@5", "--json"],
+        "compare",
+        &["compare", "all_orders:v4", "all_orders:v5", "--json"],
         0,
     ),
     (
-        "diff",
+        "compare",
         &[
-            "diff",
-            "oxwater_orders@2",
-            "oxwater_orders@3",
+            "compare",
+            "oxwater_orders:v2",
+            "oxwater_orders:v3",
             "--json",
             "--limit",
             "2",
@@ -104,11 +108,11 @@ const CASES: &[(&str, &[&str], i32)] = &[
         0,
     ),
     (
-        "diff",
+        "compare",
         &[
-            "diff",
-            "all_orders@7",
-            "all_orders@9",
+            "compare",
+            "all_orders:v7",
+            "all_orders:v9",
             "--key",
             "order_id",
             "--json",
@@ -118,8 +122,14 @@ const CASES: &[(&str, &[&str], i32)] = &[
         0,
     ),
     (
-        "diff",
-        &["diff", "all_orders@1", "all_orders@2", "--stat", "--json"],
+        "compare",
+        &[
+            "compare",
+            "all_orders:v1",
+            "all_orders:v2",
+            "--counts",
+            "--json",
+        ],
         0,
     ),
     (
@@ -215,20 +225,20 @@ const CASES: &[(&str, &[&str], i32)] = &[
         ],
         0,
     ),
-    ("impact", &["impact", "technicians@1", "--json"], 0),
+    ("impact", &["impact", "technicians:v1", "--json"], 0),
     ("impact", &["impact", "q3_by_shop", "--json"], 0),
-    ("replay", &["replay", "q3_by_shop", "--json"], 0),
-    ("replay", &["replay", "reviewed_orders", "--json"], 1),
+    ("reproduce", &["reproduce", "q3_by_shop", "--json"], 0),
+    ("reproduce", &["reproduce", "reviewed_orders", "--json"], 1),
     ("verify", &["verify", "--json"], 0),
     // Last, since it records: the same chain on the same export again prints a run; exit 1
-    // because the failing `check` recorded above on all_orders@9 is part of the chain and
+    // because the failing `check` recorded above on all_orders:v9 is part of the chain and
     // fails again (not a gate, so the run completes).
     (
         "run",
         &[
-            "replay",
+            "reproduce",
             "q3_by_shop",
-            "--onto",
+            "--with",
             "quillby_orders=exports/quillby_2026q3.csv",
             "--json",
         ],
@@ -237,10 +247,10 @@ const CASES: &[(&str, &[&str], i32)] = &[
     // Last, since they add versions: a revert refused by a later hand edit of the row whose
     // duplicate it would bring back, then the revert of that hand edit.
     (
-        "revert",
+        "withdraw",
         &[
-            "revert",
-            "edited@2",
+            "withdraw",
+            "edited:v2",
             "--why",
             "the dedupe was wrong",
             "--json",
@@ -248,10 +258,10 @@ const CASES: &[(&str, &[&str], i32)] = &[
         1,
     ),
     (
-        "revert",
+        "withdraw",
         &[
-            "revert",
-            "edited@3",
+            "withdraw",
+            "edited:v3",
             "--why",
             "the typo was right",
             "--json",
@@ -281,11 +291,11 @@ fn demo() -> Sandbox {
     // A dedupe followed by a hand edit of the row whose duplicate it dropped: reverting the
     // dedupe is refused.
     s.file("edited.csv", "id,amount\n1,5\n1,5\n2,7\n");
-    s.ok(&["ingest", "edited.csv", "--as", "edited", "--why", "export"]);
-    s.ok(&["apply", "edited", "dedupe", "--why", "exported twice"]);
+    s.ok(&["receive", "edited.csv", "--as", "edited", "--why", "export"]);
+    s.ok(&["clean", "edited", "dedupe", "--why", "exported twice"]);
     s.file("edited_fix.csv", "id,amount\n1,6\n2,7\n");
     s.ok(&[
-        "ingest",
+        "receive",
         "edited_fix.csv",
         "--as",
         "edited",

@@ -277,7 +277,7 @@ fn the_readme_walkthrough_works_as_shown() {
             .arg(&e.command)
             .current_dir(&cwd)
             .env("PATH", &path)
-            .env("SLUICE_AGENT", README_AGENT)
+            .env("SLUICE_PERSON", README_AGENT)
             .env("NO_COLOR", "1")
             .env_remove("SLUICE_STORE")
             .output()

@@ -28,7 +28,7 @@ fn check(store: &Store, t: &Trail, listed: &mut HashMap<String, HashSet<(String,
         );
         assert_eq!(h.value_after, expect_value, "step {}", h.step);
         let same_shape = h.column_after == h.column_before
-            && h.produced.split('@').next() == h.read.split('@').next();
+            && h.produced.split(':').next() == h.read.split(':').next();
         if h.link == "exact" && same_shape {
             let changes = listed.entry(h.produced.clone()).or_insert_with(|| {
                 let v = sluice::refs::resolve(&store.lineage, &h.produced).unwrap();

@@ -42,7 +42,7 @@ its raw data, \fBexplain\fR computed another value than the stored one, the disk
 a usage or input error: bad arguments or option values, a refused file, an unknown version
 or dataset, no store
 .PP
-\fBsluice exec\fR exits with a failing outside command's own status.
+\fBsluice capture\fR exits with a failing outside command's own status.
 .SH ENVIRONMENT
 .TP
 \fBSLUICE_STORE\fR
