@@ -63,7 +63,6 @@ fn every_query_with_json_output_says_so_in_its_help() {
     let s = Sandbox::new();
     for cmd in [
         "timeline",
-        "--dataset",
         "about",
         "verify",
         "inspect",
@@ -73,6 +72,13 @@ fn every_query_with_json_output_says_so_in_its_help() {
         "explain",
         "impact",
         "reproduce",
+        "receive",
+        "clean",
+        "capture",
+        "rerun",
+        "withdraw",
+        "identify",
+        "identity",
     ] {
         assert_contains(&s.ok(&[cmd, "--help"]), "--json");
     }
@@ -213,7 +219,7 @@ fn exit_codes_follow_the_documented_classes() {
         },
         Case {
             class: "usage: unknown hash prefix",
-            args: &["retrieve", "abcdef12"],
+            args: &["retrieve", "blake3:abcdef12"],
             code: 2,
         },
         Case {
@@ -249,7 +255,7 @@ fn exit_codes_follow_the_documented_classes() {
     let mut wrong = Vec::new();
     let mut before = String::new();
     for c in checks.into_iter().chain(others.iter().copied()) {
-        if c.args[0] != "check" && before.is_empty() {
+        if c.args[0] != "inspect" && before.is_empty() {
             before = s.snapshot();
         }
         let r = s.run(c.args);
@@ -292,12 +298,20 @@ fn common_mistakes_name_the_thing_and_the_next_command() {
             &["has 9 versions", "`sluice timeline --dataset all_orders`"],
         ),
         (
-            &["retrieve", "abcdef12"],
+            &["retrieve", "blake3:abcdef12"],
             &["no version's hash starts with", "`sluice timeline`"],
         ),
         (
-            &["about", "all_orders@x"],
-            &["after '@' comes a version number", "orders:v2"],
+            &["retrieve", "abcdef12"],
+            &["write blake3: before the digits", "blake3:abcdef12"],
+        ),
+        (
+            &["about", "all_orders:vx"],
+            &["after the ':' comes a version number", "all_orders:v2"],
+        ),
+        (
+            &["about", "all_orders@2"],
+            &["a version is written NAME:vN", "all_orders:v2"],
         ),
         (
             &[
@@ -597,8 +611,8 @@ fn manual_pages_are_valid_roff_with_every_command() {
     let man = Command::new(program("man"))
         .arg("-l")
         .arg(s.path().join("man1/sluice-trace.1"))
-        .env("MANPAGER", "retrieve")
-        .env("PAGER", "retrieve")
+        .env("MANPAGER", "cat")
+        .env("PAGER", "cat")
         .output()
         .expect("run man");
     assert!(
@@ -648,11 +662,11 @@ fn progress_is_drawn_only_on_a_terminal_and_never_with_json() {
         String::from_utf8_lossy(&r.stderr)
     );
     // On a terminal: the bar names the work, and is cleared before the report.
-    let screen = on_a_terminal(&s, "apply orders trim --why pads");
+    let screen = on_a_terminal(&s, "clean orders trim --why pads");
     assert_contains(&screen, "reading orders:v1");
     assert_contains(&screen, "\r\u{1b}[Krecorded orders:v2");
     // With --json: no bar, only the JSON.
-    let screen = on_a_terminal(&s, "replay orders --json");
-    assert!(!screen.contains("replaying"), "{screen}");
+    let screen = on_a_terminal(&s, "reproduce orders --json");
+    assert!(!screen.contains("reproducing"), "{screen}");
     assert!(screen.trim_start().starts_with('{'), "{screen}");
 }

@@ -138,7 +138,7 @@ pub fn replay(store: &mut Store, reference: &str, options: &ReplayOptions) -> Re
     let mut steps = Vec::new();
     let mut reproduced = true;
     let mut progress = crate::progress::Task::begin(
-        || format!("replaying {}", target.label()),
+        || format!("reproducing {}", target.label()),
         Some(seen.len() as u64),
         crate::progress::Unit::Steps,
     );
