@@ -26,7 +26,11 @@ fn engine_sources() -> Vec<(String, String)> {
     files
         .into_iter()
         .map(|f| {
-            let rel = f.strip_prefix(&root).unwrap().to_string_lossy().replace('\\', "/");
+            let rel = f
+                .strip_prefix(&root)
+                .unwrap()
+                .to_string_lossy()
+                .replace('\\', "/");
             let text = std::fs::read_to_string(&f).expect("read source");
             (rel, without_comments(&text))
         })
@@ -87,7 +91,10 @@ fn the_engine_never_prints_or_reads_the_environment() {
             }
         }
     }
-    assert!(scanned > 40, "the scan found only {scanned} files; is the walk stale?");
+    assert!(
+        scanned > 40,
+        "the scan found only {scanned} files; is the walk stale?"
+    );
     assert!(
         found.is_empty(),
         "the engine prints or reads the environment (the binary, src/cli/, does both):\n{}",
@@ -103,18 +110,29 @@ fn the_engine_never_prints_or_reads_the_environment() {
 const LAYERS: &[(&str, &[&str])] = &[
     (
         "foundation",
-        &["error", "model", "hash", "clock", "progress", "code", "upgrade", "lib"],
+        &[
+            "error", "model", "hash", "clock", "progress", "code", "upgrade", "lib",
+        ],
     ),
     ("read", &["table", "sheets", "jsonl"]),
     ("store", &["store", "refs", "agent"]),
     ("operate", &["ops", "diff", "checks", "provenance"]),
     (
         "record",
-        &["ops::apply", "intake", "convert", "inferred", "exec", "plan"],
+        &[
+            "ops::apply",
+            "intake",
+            "convert",
+            "inferred",
+            "exec",
+            "plan",
+        ],
     ),
     (
         "query",
-        &["history", "trace", "explain", "graph", "replay", "verify", "export", "revert"],
+        &[
+            "history", "trace", "explain", "graph", "replay", "verify", "export", "revert",
+        ],
     ),
     ("document", &["report", "prov", "demo"]),
 ];
@@ -261,10 +279,19 @@ fn the_import_reader_sees_groups_and_paths() {
     );
     assert_eq!(
         found,
-        ["error::", "intake::", "model", "store::Store", "ops::apply::compute"]
-            .map(|s| s.trim_end_matches(':').to_string())
+        [
+            "error::",
+            "intake::",
+            "model",
+            "store::Store",
+            "ops::apply::compute"
+        ]
+        .map(|s| s.trim_end_matches(':').to_string())
     );
-    assert_eq!(layer_of("ops::apply::compute").map(|l| l.1), Some("ops::apply"));
+    assert_eq!(
+        layer_of("ops::apply::compute").map(|l| l.1),
+        Some("ops::apply")
+    );
     assert_eq!(layer_of("ops::text").map(|l| l.1), Some("ops"));
     assert_eq!(layer_of("store::Store").map(|l| l.1), Some("store"));
 }
