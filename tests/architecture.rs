@@ -116,7 +116,7 @@ const LAYERS: &[(&str, &[&str])] = &[
     ),
     ("read", &["table", "sheets", "jsonl"]),
     ("store", &["store", "refs", "agent"]),
-    ("operate", &["ops", "diff", "checks", "provenance"]),
+    ("operate", &["ops", "compare", "checks", "provenance"]),
     (
         "record",
         &[
@@ -124,14 +124,21 @@ const LAYERS: &[(&str, &[&str])] = &[
             "intake",
             "convert",
             "inferred",
-            "exec",
+            "capture",
             "plan",
         ],
     ),
     (
         "query",
         &[
-            "history", "trace", "explain", "graph", "replay", "verify", "export", "revert",
+            "history",
+            "trace",
+            "explain",
+            "lineage",
+            "reproduce",
+            "verify",
+            "export",
+            "withdraw",
         ],
     ),
     ("document", &["report", "prov", "demo"]),

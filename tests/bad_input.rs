@@ -90,7 +90,7 @@ fn raw_store(project: &Path) -> Vec<(PathBuf, Vec<u8>)> {
         }
     }
     let mut out = Vec::new();
-    walk(&project.join(".sluice"), &mut out);
+    walk(&project.join("sluice-store"), &mut out);
     out.sort();
     out
 }
@@ -641,7 +641,7 @@ fn no_store_suggests_sluice_init() {
         assert_contains(&err, "create one with `sluice setup`");
     }
     assert!(
-        !s.path().join(".sluice").exists(),
+        !s.path().join("sluice-store").exists(),
         "a failed command must not create a store"
     );
 }
@@ -656,25 +656,25 @@ fn store_option_pointing_at_no_store_suggests_init_on_that_folder() {
         &err,
         "error: no store at q3; create one with `sluice setup q3`",
     );
-    assert!(!s.path().join("q3/.sluice").exists());
+    assert!(!s.path().join("q3/sluice-store").exists());
 }
 
 #[test]
 fn store_option_naming_an_empty_store_folder_suggests_init_on_its_project() {
-    // `sluice setup DIR` creates DIR/.sluice, so for --store q3/.sluice the command to suggest
-    // is `sluice setup q3`; `sluice setup q3/.sluice` would make q3/.sluice/.sluice.
+    // `sluice setup DIR` creates DIR/sluice-store, so for --store q3/sluice-store the command to suggest
+    // is `sluice setup q3`; `sluice setup q3/sluice-store` would make q3/sluice-store/sluice-store.
     let s = Sandbox::new();
-    std::fs::create_dir_all(s.path().join("q3/.sluice")).unwrap();
-    let err = s.fails(2, &["timeline", "--store", "q3/.sluice"]);
+    std::fs::create_dir_all(s.path().join("q3/sluice-store")).unwrap();
+    let err = s.fails(2, &["timeline", "--store", "q3/sluice-store"]);
     one_paragraph(&err);
-    assert_contains(&err, "no store at q3/.sluice");
+    assert_contains(&err, "no store at q3/sluice-store");
     assert_contains(&err, "create one with `sluice setup q3`,");
 }
 
 #[test]
 fn store_from_a_newer_schema_is_refused_with_both_versions() {
     let s = seeded();
-    let db = s.path().join(".sluice/lineage.db");
+    let db = s.path().join("sluice-store/lineage.db");
     rusqlite::Connection::open(&db)
         .unwrap()
         .execute_batch("PRAGMA user_version = 99")
@@ -704,7 +704,7 @@ fn store_from_a_newer_schema_is_refused_with_both_versions() {
 #[test]
 fn store_from_an_older_schema_is_migrated_on_open() {
     let s = Sandbox::new();
-    let store = s.path().join(".sluice");
+    let store = s.path().join("sluice-store");
     for sub in ["objects", "tmp"] {
         std::fs::create_dir_all(store.join(sub)).unwrap();
     }
@@ -734,7 +734,7 @@ fn store_from_an_older_schema_is_migrated_on_open() {
 #[test]
 fn corrupted_database_is_named_with_a_restore_hint() {
     let s = seeded();
-    let dir = s.path().join(".sluice");
+    let dir = s.path().join("sluice-store");
     for side in ["lineage.db-wal", "lineage.db-shm"] {
         let _ = std::fs::remove_file(dir.join(side));
     }
@@ -755,7 +755,7 @@ fn corrupted_database_is_named_with_a_restore_hint() {
         one_paragraph(&err);
         assert_contains(
             &err,
-            ".sluice/lineage.db: the lineage database cannot be read",
+            "sluice-store/lineage.db: the lineage database cannot be read",
         );
         // Not "run verify": verify cannot read the database either.
         assert!(!err.contains("sluice verify"), "{err}");
@@ -799,34 +799,41 @@ fn version_zero_is_refused_because_numbers_start_at_one() {
     one_paragraph(&err);
     assert_contains(
         &err,
-        "error: invalid version reference \"orders:v0\": after '@' comes a version number starting at 1",
+        "error: invalid version reference \"orders:v0\": after the ':' comes a version number starting at 1",
     );
 }
 
 #[test]
-fn four_hex_digit_prefix_is_too_short() {
+fn a_hash_needs_its_label_and_eight_digits() {
     let s = seeded();
     let hash = s.json(&["about", "orders", "--json"])["version"]["hash"]
         .as_str()
         .unwrap()
         .to_string();
-    let prefix = &hash[..4];
-    let err = fails_unchanged(&s, 2, &["retrieve", prefix]);
+    let short = format!("blake3:{}", &hash[..7]);
+    let err = fails_unchanged(&s, 2, &["retrieve", &short]);
     one_paragraph(&err);
     assert_contains(
         &err,
         &format!(
-            "error: invalid version reference \"{prefix}\": a hash prefix needs at least 6 hex digits"
+            "error: invalid version reference \"{short}\": after blake3: come 8 to 64 hex digits"
         ),
     );
-    // Six digits of the same hash do name the version.
-    let out = s.run(&["retrieve", &hash[..6]]);
+    // Bare digits are refused with the advice that works.
+    let bare = &hash[..8];
+    let err = fails_unchanged(&s, 2, &["retrieve", bare]);
+    assert_contains(
+        &err,
+        &format!("write blake3: before the digits (blake3:{bare})"),
+    );
+    // Eight digits of the same hash, with the label, do name the version.
+    let out = s.run(&["retrieve", &format!("blake3:{bare}")]);
     assert_eq!(out.code, 0, "{}", out.stderr);
     assert_eq!(out.raw_stdout, SEED.as_bytes());
 }
 
 #[test]
-fn hash_prefix_matching_nothing_points_to_the_log() {
+fn hash_prefix_matching_nothing_points_to_the_timeline() {
     let s = seeded();
     let hash = s.json(&["about", "orders", "--json"])["version"]["hash"]
         .as_str()
@@ -834,7 +841,7 @@ fn hash_prefix_matching_nothing_points_to_the_log() {
         .to_string();
     // The real hash with its first digit changed cannot name the (only) version.
     let first = if hash.starts_with('0') { '1' } else { '0' };
-    let other = format!("{first}{}", &hash[1..8]);
+    let other = format!("blake3:{first}{}", &hash[1..8]);
     let err = fails_unchanged(&s, 2, &["about", &other]);
     assert_contains(
         &err,
@@ -847,16 +854,16 @@ fn hash_prefix_matching_nothing_points_to_the_log() {
 #[test]
 fn ambiguous_hash_prefix_lists_the_candidates() {
     // Versions are named by the BLAKE3 hash of their bytes, so two small files whose hashes
-    // share the first 6 hex digits (24 bits) make an ambiguous prefix; by the birthday bound a
-    // pair turns up after a few thousand candidates.
+    // share the first 8 hex digits (32 bits) make an ambiguous prefix; by the birthday bound a
+    // pair turns up after some 80,000 candidates.
     let content = |i: u32| format!("order_id,shop\nWO-{i},Quillby Cycle Mend\n");
     let mut seen = std::collections::HashMap::new();
-    let (a, b) = (0u32..1_000_000)
+    let (a, b) = (0u32..10_000_000)
         .find_map(|i| {
             let h = sluice::hash::Hash::of(content(i).as_bytes()).hex();
-            seen.insert(h[..6].to_string(), i).map(|j| (j, i))
+            seen.insert(h[..8].to_string(), i).map(|j| (j, i))
         })
-        .expect("two hashes sharing 6 hex digits");
+        .expect("two hashes sharing 8 hex digits");
     let s = Sandbox::with_store();
     s.file("exports/a.csv", content(a));
     s.file("exports/b.csv", content(b));
@@ -864,15 +871,15 @@ fn ambiguous_hash_prefix_lists_the_candidates() {
     s.ok(&["receive", "exports/b.csv", "--as", "returns"]);
     let ha = sluice::hash::Hash::of(content(a).as_bytes()).hex();
     let hb = sluice::hash::Hash::of(content(b).as_bytes()).hex();
-    let prefix = &ha[..6];
-    let err = fails_unchanged(&s, 2, &["about", prefix]);
+    let prefix = format!("blake3:{}", &ha[..8]);
+    let err = fails_unchanged(&s, 2, &["about", &prefix]);
     one_paragraph(&err);
     assert_contains(
         &err,
         &format!(
-            "error: version reference \"{prefix}\" is ambiguous; it matches orders:v1 ({}), returns:v1 ({}); use more hex digits",
-            &ha[..12],
-            &hb[..12]
+            "error: {prefix} matches 2 versions: orders:v1 (blake3:{}), returns:v1 (blake3:{}); give more digits or name one as NAME:vN",
+            &ha[..16],
+            &hb[..16]
         ),
     );
     // Digits up to the first that differs tell them apart.
@@ -881,10 +888,33 @@ fn ambiguous_hash_prefix_lists_the_candidates() {
         .zip(hb.bytes())
         .position(|(x, y)| x != y)
         .unwrap();
-    let longer = &hb[..(differ + 1).max(6)];
-    let r = s.run(&["retrieve", longer]);
+    let longer = format!("blake3:{}", &hb[..(differ + 1).max(8)]);
+    let r = s.run(&["retrieve", &longer]);
     assert_eq!(r.code, 0, "{}", r.stderr);
     assert_eq!(r.raw_stdout, content(b).as_bytes());
+}
+
+#[test]
+fn a_full_hash_shared_by_identical_versions_asks_for_a_name() {
+    // The same bytes received as two datasets: one hash, two versions. More digits cannot
+    // tell them apart, so the advice is to name one.
+    let s = Sandbox::with_store();
+    s.file("exports/a.csv", SEED);
+    s.ok(&["receive", "exports/a.csv", "--as", "orders"]);
+    s.ok(&["receive", "exports/a.csv", "--as", "returns"]);
+    let hash = sluice::hash::Hash::of(SEED.as_bytes()).hex();
+    let err = fails_unchanged(&s, 2, &["about", &format!("blake3:{hash}")]);
+    one_paragraph(&err);
+    assert_contains(
+        &err,
+        "the versions orders:v1 and returns:v1 hold identical bytes",
+    );
+    assert_contains(&err, "name one as NAME:vN");
+    // The advice works.
+    assert_eq!(
+        s.json(&["about", "returns:v1", "--json"])["version"]["hash"],
+        hash.as_str()
+    );
 }
 
 // ---- permissions -------------------------------------------------------------------------
@@ -976,7 +1006,7 @@ fn unreadable_input_file_reports_permission_denied() {
 fn object_bytes(s: &Sandbox) -> Vec<(PathBuf, Vec<u8>)> {
     raw_store(s.path())
         .into_iter()
-        .filter(|(p, _)| p.starts_with(s.path().join(".sluice/objects")))
+        .filter(|(p, _)| p.starts_with(s.path().join("sluice-store/objects")))
         .collect()
 }
 
@@ -1002,7 +1032,7 @@ fn failed_ingest_into_existing_dataset_leaves_log_and_objects_byte_identical() {
     let log_text = s.ok(&["timeline"]);
     let log_json = s.ok(&["timeline", "--json"]);
     let objects = object_bytes(&s);
-    let db = std::fs::read(s.path().join(".sluice/lineage.db")).unwrap();
+    let db = std::fs::read(s.path().join("sluice-store/lineage.db")).unwrap();
     for (file, key) in [
         ("exports/bytes.csv", None),
         ("exports/fields.csv", None),
@@ -1018,12 +1048,12 @@ fn failed_ingest_into_existing_dataset_leaves_log_and_objects_byte_identical() {
         assert_eq!(s.ok(&["timeline", "--json"]), log_json, "after {file}");
         let now = object_bytes(&s);
         assert_raw_unchanged(&objects, &now);
-        let tmp: Vec<_> = std::fs::read_dir(s.path().join(".sluice/tmp"))
+        let tmp: Vec<_> = std::fs::read_dir(s.path().join("sluice-store/tmp"))
             .unwrap()
             .collect();
         assert!(tmp.is_empty(), "temporary files left after {file}: {tmp:?}");
         assert!(
-            std::fs::read(s.path().join(".sluice/lineage.db")).unwrap() == db,
+            std::fs::read(s.path().join("sluice-store/lineage.db")).unwrap() == db,
             "lineage.db bytes changed after {file}"
         );
     }

@@ -310,7 +310,7 @@ fn common_mistakes_name_the_thing_and_the_next_command() {
             &["after the ':' comes a version number", "all_orders:v2"],
         ),
         (
-            &["about", "all_orders@2"],
+            &["about", "all_orders:v2"],
             &["a version is written NAME:vN", "all_orders:v2"],
         ),
         (

@@ -171,7 +171,7 @@ fn twelve_writers_ingesting_and_applying_while_a_reader_verifies() {
     // init, base, 4 shared ingests, 4 steps on base, 4 x (ingest + 2 steps): one entry each.
     let entries = report["audit_entries_checked"].as_u64().unwrap();
     assert_eq!(entries, 1 + 1 + 4 + 4 + 12);
-    let db = rusqlite::Connection::open(s.path().join(".sluice/lineage.db")).unwrap();
+    let db = rusqlite::Connection::open(s.path().join("sluice-store/lineage.db")).unwrap();
     let (n, lo, hi): (i64, i64, i64) = db
         .query_row(
             "SELECT count(DISTINCT seq), min(seq), max(seq) FROM audit_log",

@@ -152,8 +152,8 @@ fn ingest_killed_at_fifty_moments_records_all_or_nothing() {
 
     let reference = tempfile::tempdir().unwrap();
     copy_dir(
-        &base.path().join(".sluice"),
-        &reference.path().join(".sluice"),
+        &base.path().join("sluice-store"),
+        &reference.path().join("sluice-store"),
     );
     let total = measure(reference.path(), &args);
     let want = versions_of(reference.path(), "orders");
@@ -166,7 +166,10 @@ fn ingest_killed_at_fifty_moments_records_all_or_nothing() {
     let mut tally = Tally::default();
     for (k, delay) in delays(total).enumerate() {
         let dir = tempfile::tempdir().unwrap();
-        copy_dir(&base.path().join(".sluice"), &dir.path().join(".sluice"));
+        copy_dir(
+            &base.path().join("sluice-store"),
+            &dir.path().join("sluice-store"),
+        );
         let child = sluice(dir.path(), &args).spawn().unwrap();
         let killed = kill_after(child, delay);
         let what = format!("kill point {k} at {delay:?}");

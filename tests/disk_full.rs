@@ -213,7 +213,7 @@ fn project() -> Project {
 
 impl Project {
     fn store_dir(&self) -> PathBuf {
-        self.dir.path().join(".sluice")
+        self.dir.path().join("sluice-store")
     }
 
     /// Everything observable about the store, read through the library: steps and versions,
@@ -313,7 +313,7 @@ fn check_full_disk(p: &Project, target: Target, limit: u64) {
     assert_eq!(
         p.temp_files(),
         Vec::<String>::new(),
-        "{target:?} limit {limit}: temporary files left in .sluice/tmp"
+        "{target:?} limit {limit}: temporary files left in sluice-store/tmp"
     );
     assert_eq!(
         before,
@@ -457,7 +457,7 @@ fn disk_full_on_a_small_tmpfs_reports_no_space_left_and_leaves_the_store_unchang
     let before = s.snapshot();
     let err = s.fails(1, &["receive", big.to_str().unwrap(), "--as", "orders"]);
     let after = s.snapshot();
-    assert_contains(&err, ".sluice/tmp: no space left on the device");
+    assert_contains(&err, "sluice-store/tmp: no space left on the device");
     assert_contains(&err, "free some space and run the command again");
     assert!(
         !err.contains("panicked"),

@@ -41,7 +41,7 @@ fn rfc4180_examples_parse_to_the_documented_fields_and_round_trip() {
     assert_eq!(r.code, 0);
     assert_eq!(r.raw_stdout, bytes.to_vec());
     // The second record starts on line 3: the first holds a line break inside quotes.
-    let store = sluice::store::Store::open(&s.path().join(".sluice")).unwrap();
+    let store = sluice::store::Store::open(&s.path().join("sluice-store")).unwrap();
     let v = sluice::refs::resolve(&store.lineage, "rfc").unwrap();
     let idx = store
         .objects
@@ -129,7 +129,7 @@ fn python_profile(file: &std::path::Path, delimiter: &str, nulls: &[&str]) -> se
 
 fn assert_profile_matches_reference(s: &Sandbox, dataset: &str, reference: &serde_json::Value) {
     // The first version: the export as it was taken in.
-    let first = format!("{dataset}@1");
+    let first = format!("{dataset}:v1");
     let shown = s.json(&["about", &first, "--json"]);
     assert_eq!(
         shown["version"]["n_rows"], reference["n_rows"],
@@ -265,18 +265,18 @@ fn references_by_name_number_and_hash_prefix() {
     let v1 = s.json(&["about", "things:v1", "--json"]);
     let hash = v1["version"]["hash"].as_str().unwrap().to_string();
     assert_eq!(hash, blake3::hash(b"id\n1\n").to_hex().to_string());
-    let by_prefix = s.json(&["about", &hash[..8], "--json"]);
+    let by_prefix = s.json(&["about", &format!("blake3:{}", &hash[..8]), "--json"]);
     assert_eq!(by_prefix["version"]["seq"], 1);
     assert_eq!(by_prefix["is_latest"], false);
     assert_eq!(s.json(&["about", "things", "--json"])["version"]["seq"], 2);
     assert_eq!(
-        s.run(&["retrieve", &hash[..6]]).raw_stdout,
+        s.run(&["retrieve", &format!("blake3:{hash}")]).raw_stdout,
         b"id\n1\n".to_vec()
     );
 }
 
 #[test]
-fn log_lists_steps_newest_first_with_who_when_why() {
+fn timeline_lists_steps_oldest_first_with_who_when_why() {
     let s = Sandbox::with_store();
     s.file("a.csv", "id\n1\n");
     s.file("b.csv", "k\nz\n");
@@ -287,31 +287,66 @@ fn log_lists_steps_newest_first_with_who_when_why() {
         "--as",
         "beta",
         "--person",
-        "Jo Tester <jo@example.net>",
+        "Jo Tester",
+        "--email",
+        "jo@example.net",
     ]);
     let log = s.json(&["timeline", "--json"]);
     let entries = log.as_array().unwrap();
     assert_eq!(entries.len(), 2);
-    assert_eq!(entries[0]["produced"][0]["dataset"], "beta");
+    assert_eq!(entries[1]["produced"][0]["dataset"], "beta");
     // --person wins over SLUICE_PERSON (set by the test helper).
-    assert_eq!(entries[0]["step"]["agent"], "Jo Tester <jo@example.net>");
-    assert_eq!(entries[1]["step"]["agent"], AGENT);
-    assert_eq!(entries[1]["step"]["reason"], "first export");
-    assert_eq!(entries[1]["step"]["kind"], "receive");
+    assert_eq!(entries[1]["step"]["agent"], "Jo Tester (jo@example.net)");
+    assert_eq!(entries[0]["step"]["agent"], AGENT);
+    assert_eq!(entries[0]["step"]["reason"], "first export");
+    assert_eq!(entries[0]["step"]["kind"], "ingest");
     assert_eq!(
-        entries[1]["step"]["tool_version"],
+        entries[0]["step"]["tool_version"],
         concat!("sluice ", env!("CARGO_PKG_VERSION"))
     );
-    assert_eq!(entries[1]["step"]["rows_out"], 1);
-    assert!(entries[1]["step"]["source"]["absolute_path"]
+    assert_eq!(entries[0]["step"]["rows_out"], 1);
+    assert!(entries[0]["step"]["source"]["absolute_path"]
         .as_str()
         .unwrap()
         .ends_with("a.csv"));
     let only_alpha = s.json(&["timeline", "--dataset", "alpha", "--json"]);
     assert_eq!(only_alpha.as_array().unwrap().len(), 1);
     let text = s.ok(&["timeline"]);
-    assert_contains(&text, "why   first export");
-    assert_contains(&text, "made  alpha:v1");
+    let lines: Vec<&str> = text.lines().collect();
+    assert_eq!(lines.len(), 3, "{text}");
+    for col in ["when (UTC)", "step", "action", "made", "by", "reason"] {
+        assert_contains(lines[0], col);
+    }
+    // Oldest first: alpha's intake, then beta's; the store-wide step numbers 1 and 2.
+    let words = |l: &str| l.split_whitespace().map(str::to_string).collect::<Vec<_>>();
+    assert_eq!(&words(lines[1])[2..5], ["1", "receive", "alpha:v1"]);
+    assert!(
+        lines[1].trim_end().ends_with("Test Runner  first export"),
+        "{text}"
+    );
+    assert_eq!(&words(lines[2])[2..5], ["2", "receive", "beta:v1"]);
+    // The filters: by person (name or address), by time, the latest N.
+    let count = |args: &[&str]| {
+        let mut all = vec!["timeline", "--json"];
+        all.extend_from_slice(args);
+        s.json(&all).as_array().unwrap().len()
+    };
+    assert_eq!(count(&["--by", "jo tester"]), 1);
+    assert_eq!(count(&["--by", "jo@example.net"]), 1);
+    assert_eq!(count(&["--by", "Nobody"]), 0);
+    assert_eq!(count(&["--since", "2000-01-01"]), 2);
+    assert_eq!(count(&["--until", "2000-01-01"]), 0);
+    assert_eq!(count(&["--since", "9999-12-31T00:00:00Z"]), 0);
+    let today = entries[0]["step"]["started_at"].as_str().unwrap()[..10].to_string();
+    assert_eq!(
+        count(&["--until", &today]),
+        2,
+        "a date includes its whole day"
+    );
+    let latest = s.json(&["timeline", "--json", "--limit", "1"]);
+    assert_eq!(latest[0]["produced"][0]["dataset"], "beta");
+    let err = s.fails(2, &["timeline", "--since", "yesterday"]);
+    assert_contains(&err, "--since yesterday: expected an ISO 8601 date");
 }
 
 #[test]
@@ -341,7 +376,7 @@ fn verify_names_a_flipped_byte_and_an_edited_audit_entry() {
     let hash = blake3::hash(b"id,v\n1,x\n2,y\n").to_hex().to_string();
     let obj = s
         .path()
-        .join(".sluice/objects")
+        .join("sluice-store/objects")
         .join(&hash[..2])
         .join(&hash[2..]);
     let mut bytes = std::fs::read(&obj).unwrap();
@@ -355,7 +390,7 @@ fn verify_names_a_flipped_byte_and_an_edited_audit_entry() {
     std::fs::write(&obj, &bytes).unwrap();
     assert_eq!(s.run(&["verify"]).code, 0);
 
-    let db = rusqlite::Connection::open(s.path().join(".sluice/lineage.db")).unwrap();
+    let db = rusqlite::Connection::open(s.path().join("sluice-store/lineage.db")).unwrap();
     db.execute(
         "UPDATE audit_log SET subject = 'things:v7' WHERE seq = 2",
         [],
@@ -394,7 +429,7 @@ fn demo_builds_a_store_that_verifies() {
         .as_array()
         .unwrap()
         .iter()
-        .filter(|s| s.get("clean").is_some())
+        .filter(|s| s.get("apply").is_some())
         .count();
     assert_eq!(applies, 21);
     assert_eq!(

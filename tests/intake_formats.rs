@@ -166,7 +166,7 @@ fn an_xlsx_sheet_is_taken_in_cell_for_cell_and_traced_to_its_cells() {
     assert_eq!(conv["raw"]["n_bytes"], bytes.len() as u64);
     let stored = std::fs::read(
         s.path()
-            .join(".sluice/objects")
+            .join("sluice-store/objects")
             .join(&hash[..2])
             .join(&hash[2..]),
     )
@@ -664,7 +664,7 @@ fn replay_converts_the_raw_workbook_again_and_stops_at_a_damaged_one() {
     let r = s.json(&["reproduce", "shop_orders", "--json"]);
     assert_eq!(r["reproduced"], true);
     let first = &r["steps"][0];
-    assert_eq!(first["kind"], "receive");
+    assert_eq!(first["kind"], "ingest");
     assert_eq!(first["result"], "same");
     assert_eq!(first["computed_hash"], first["recorded_hash"]);
 
@@ -673,7 +673,7 @@ fn replay_converts_the_raw_workbook_again_and_stops_at_a_damaged_one() {
     let hash = conv["raw"]["hash"].as_str().unwrap();
     let p = s
         .path()
-        .join(".sluice/objects")
+        .join("sluice-store/objects")
         .join(&hash[..2])
         .join(&hash[2..]);
     let mut bytes = std::fs::read(&p).unwrap();

@@ -38,7 +38,7 @@ fn a_schema_1_store_is_migrated_and_keeps_its_history() {
         )),
         s.path(),
     );
-    let db = s.path().join(".sluice/lineage.db");
+    let db = s.path().join("sluice-store/lineage.db");
     assert_eq!(user_version(&db), 1);
     // Any command opens the store and migrates it.
     let log = s.json(&["timeline", "--json"]);
@@ -59,7 +59,7 @@ fn a_schema_1_store_is_migrated_and_keeps_its_history() {
     // Provenance recorded by schema 1 in the database's tables reads back through the same
     // API that reads the provenance objects of schema 4 and later.
     {
-        let store = sluice::store::Store::open(&s.path().join(".sluice")).unwrap();
+        let store = sluice::store::Store::open(&s.path().join("sluice-store")).unwrap();
         let trimmed = sluice::refs::resolve(&store.lineage, "orders:v2").unwrap();
         let raw = sluice::refs::resolve(&store.lineage, "orders:v1").unwrap();
         let changes = sluice::provenance::cell_changes(&store, &trimmed).unwrap();

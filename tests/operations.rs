@@ -403,7 +403,7 @@ fn dedupe_records_what_each_dropped_row_duplicated() {
     s.ok(&["receive", "o.csv", "--as", "orders"]);
     let out = s.ok(&["clean", "orders", "dedupe", "--why", "exported twice"]);
     assert_contains(&out, "dedupe dropped 2 rows; 3 rows");
-    let store = Store::open(&s.path().join(".sluice")).unwrap();
+    let store = Store::open(&s.path().join("sluice-store")).unwrap();
     let v1 = sluice::refs::resolve(&store.lineage, "orders:v1").unwrap();
     let v2 = sluice::refs::resolve(&store.lineage, "orders:v2").unwrap();
     let drops = sluice::provenance::drops(&store, v2.step_id, v1.id).unwrap();
@@ -499,7 +499,7 @@ fn palmerpenguins_complete_rows_are_333() {
         );
     }
     // Every drop names the predicate.
-    let store = Store::open(&s.path().join(".sluice")).unwrap();
+    let store = Store::open(&s.path().join("sluice-store")).unwrap();
     let raw = sluice::refs::resolve(&store.lineage, "penguins").unwrap();
     let done = sluice::refs::resolve(&store.lineage, "complete").unwrap();
     let drops = sluice::provenance::drops(&store, done.step_id, raw.id).unwrap();
@@ -598,7 +598,7 @@ fn rename_select_and_fill_record_where_columns_came_from() {
         s.run(&["retrieve", "orders"]).stdout,
         "email,order_id\nada@example.org,OX-1\nbram@example.org,OX-2\n"
     );
-    let store = Store::open(&s.path().join(".sluice")).unwrap();
+    let store = Store::open(&s.path().join("sluice-store")).unwrap();
     let renamed = sluice::refs::resolve(&store.lineage, "orders:v3").unwrap();
     assert_eq!(
         store.lineage.column_sources(renamed.id).unwrap(),
@@ -665,7 +665,7 @@ fn number_reads_amounts_exactly_and_never_zeroes_what_it_cannot_read() {
         s.run(&["retrieve", "orders"]).stdout,
         "id,amount\n1,1204.50\n2,-5.00\n3,12.5\n4,n/a\n5,\n6,0.125\n"
     );
-    let store = Store::open(&s.path().join(".sluice")).unwrap();
+    let store = Store::open(&s.path().join("sluice-store")).unwrap();
     let v = sluice::refs::resolve(&store.lineage, "orders").unwrap();
     assert_eq!(
         store.lineage.cell_notes(v.id).unwrap(),
@@ -1050,7 +1050,7 @@ fn map_takes_the_table_in_and_records_it_as_an_input() {
         .to_hex()
         .to_string()
     );
-    let store = Store::open(&s.path().join(".sluice")).unwrap();
+    let store = Store::open(&s.path().join("sluice-store")).unwrap();
     let inp = sluice::refs::resolve(&store.lineage, "orders:v1").unwrap();
     let outv = sluice::refs::resolve(&store.lineage, "orders:v2").unwrap();
     assert_eq!(
@@ -1149,7 +1149,7 @@ fn split_combine_and_extract_derive_new_columns_and_name_their_sources() {
          OX-7202,OX,7202,Bram,Bram,,,Bram\n\
          Q-9,Q-,,Cora de la Fenn,Cora,de la Fenn,Quillby,Cora of Quillby\n"
     );
-    let store = Store::open(&s.path().join(".sluice")).unwrap();
+    let store = Store::open(&s.path().join("sluice-store")).unwrap();
     let combined = sluice::refs::resolve(&store.lineage, "orders:v3").unwrap();
     assert_eq!(
         store.lineage.column_sources(combined.id).unwrap(),
@@ -1231,7 +1231,7 @@ fn lookup_join_keep_select_in_the_shape_of_the_where_provenance_example() {
         lookup["step"]["inputs"],
         serde_json::json!(["employees:v1", "departments:v1"])
     );
-    let store = Store::open(&s.path().join(".sluice")).unwrap();
+    let store = Store::open(&s.path().join("sluice-store")).unwrap();
     let joined = sluice::refs::resolve(&store.lineage, "employees:v2").unwrap();
     let sources = store.lineage.column_sources(joined.id).unwrap();
     assert!(sources.contains(&("dept_name".to_string(), "dept_name".to_string())));
@@ -1340,7 +1340,7 @@ fn append_then_dedupe_keeps_each_rows_origin() {
     assert_contains(&out, "append added 1 row; 2 rows");
     let out = s.ok(&["clean", "first", "dedupe", "--why", "same shop twice"]);
     assert_contains(&out, "dedupe dropped 1 row; 1 row");
-    let store = Store::open(&s.path().join(".sluice")).unwrap();
+    let store = Store::open(&s.path().join("sluice-store")).unwrap();
     let a = sluice::refs::resolve(&store.lineage, "first:v1").unwrap();
     let b = sluice::refs::resolve(&store.lineage, "second:v1").unwrap();
     let merged = sluice::refs::resolve(&store.lineage, "first:v2").unwrap();

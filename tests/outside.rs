@@ -35,7 +35,7 @@ fn to_csv(rows: &[Vec<String>]) -> String {
 }
 
 fn open_store(s: &Sandbox) -> Store {
-    Store::open(&s.path().join(".sluice")).expect("open the store")
+    Store::open(&s.path().join("sluice-store")).expect("open the store")
 }
 
 fn version(store: &Store, reference: &str) -> sluice::model::Version {
@@ -323,7 +323,9 @@ fn an_outside_command_records_its_commit_branch_dirty_files_and_lineage() {
     assert_eq!(mapped, kept);
     // The temporary copies of the inputs are gone.
     assert_eq!(
-        std::fs::read_dir(dir.join(".sluice/tmp")).unwrap().count(),
+        std::fs::read_dir(dir.join("sluice-store/tmp"))
+            .unwrap()
+            .count(),
         0
     );
     assert_contains(&s.ok(&["verify"]), "intact");

@@ -75,7 +75,7 @@ fn the_demo_plan_and_its_export_validate_against_the_schema() {
         .as_array()
         .unwrap()
         .iter()
-        .find(|s| s.get("inspect").is_some())
+        .find(|s| s.get("check").is_some())
         .expect("the gate is exported");
     assert_eq!(gate["gate"], true);
     assert_eq!(gate["inspect"].as_array().unwrap().len(), 5);

@@ -41,7 +41,7 @@ fn repository_with_script() -> (Sandbox, String) {
     git(dir, &["init", "-q"]);
     git(dir, &["config", "user.name", "Robin Example"]);
     git(dir, &["config", "user.email", "robin@example.org"]);
-    s.file(".gitignore", ".sluice/\nruns.log\n*.csv\nout/\n");
+    s.file(".gitignore", "sluice-store/\nruns.log\n*.csv\nout/\n");
     s.file(
         "orders.csv",
         "order_id,technician,status\n41001,ines,done\n41002,tobiah,test\n41003,caspar,done\n",
@@ -85,7 +85,7 @@ fn runs_log(s: &Sandbox) -> String {
 
 fn object_path(s: &Sandbox, hash: &str) -> std::path::PathBuf {
     s.path()
-        .join(".sluice/objects")
+        .join("sluice-store/objects")
         .join(&hash[..2])
         .join(&hash[2..])
 }
@@ -162,7 +162,7 @@ fn damage_and_differences_stop_the_replay_where_they_are() {
     // A step whose recorded parameters no longer give its recorded bytes is named, and the
     // replay stops there. (The parameters are edited behind sluice's back, in the database.)
     let d = Sandbox::with_demo();
-    let db = rusqlite::Connection::open(d.path().join(".sluice/lineage.db")).unwrap();
+    let db = rusqlite::Connection::open(d.path().join("sluice-store/lineage.db")).unwrap();
     let changed = db
         .execute(
             "UPDATE steps SET params = replace(params, '\"inner\":true', '\"inner\":false')
@@ -248,7 +248,7 @@ fn a_hand_edit_whose_output_object_is_gone_cannot_be_reapplied() {
     let d = Sandbox::with_demo();
     let hash = hash_of(&d, "reviewed_orders:v2");
     std::fs::remove_file(object_path(&d, &hash)).unwrap();
-    let snapshot = d.path().join(".sluice/lineage.db");
+    let snapshot = d.path().join("sluice-store/lineage.db");
     let before = std::fs::read(&snapshot).unwrap();
     let r = d.run(&["reproduce", "reviewed_orders"]);
     assert_eq!(r.code, 1);
@@ -572,7 +572,7 @@ fn a_commit_that_no_longer_exists_is_named() {
     ]);
     // The recorded commit id edited behind sluice's back (as if history had been rewritten).
     let gone = "0123456789abcdef0123456789abcdef01234567";
-    let db = rusqlite::Connection::open(s.path().join(".sluice/lineage.db")).unwrap();
+    let db = rusqlite::Connection::open(s.path().join("sluice-store/lineage.db")).unwrap();
     let n = db
         .execute(
             "UPDATE steps SET code = replace(code, ?1, ?2) WHERE kind = 'command'",
@@ -812,7 +812,7 @@ fn a_hand_edit_whose_recorded_lineage_does_not_explain_it_is_named_with_the_cell
 
     // The two edits' provenance swapped behind sluice's back: each object is well formed, but
     // the orders edit now claims the other edit's cell.
-    let db = rusqlite::Connection::open(s.path().join(".sluice/lineage.db")).unwrap();
+    let db = rusqlite::Connection::open(s.path().join("sluice-store/lineage.db")).unwrap();
     let n = db
         .execute(
             "UPDATE steps SET provenance = (SELECT group_concat(provenance) FROM steps AS o

@@ -183,7 +183,7 @@ fn a_report_is_recorded_with_its_hash_and_verify_stays_intact() {
     // A file that no report produced is not found.
     s.file("other.html", "<html></html>");
     let stderr = s.fails(1, &["identify", "other.html"]);
-    assert_contains(&stderr, "no report with these bytes");
+    assert_contains(&stderr, "no version or report with these bytes");
 }
 
 #[test]
@@ -211,7 +211,7 @@ fn the_demo_report_as_json_follows_the_schema() {
         "reviewed_orders",
         "-o",
         "reviewed.json",
-        "--replay",
+        "--reproduce",
     ]);
     let doc: Value =
         serde_json::from_str(&std::fs::read_to_string(s.path().join("reviewed.json")).unwrap())

@@ -107,7 +107,13 @@ fn file_url(p: &Path) -> String {
 fn the_demo_report_renders_in_chromium_without_errors() {
     let browser = chromium();
     let s = Sandbox::with_demo();
-    s.ok(&["report", "q3_by_shop", "-o", "q3_by_shop.html", "--replay"]);
+    s.ok(&[
+        "report",
+        "q3_by_shop",
+        "-o",
+        "q3_by_shop.html",
+        "--reproduce",
+    ]);
     let report = s.path().join("q3_by_shop.html");
     let artefacts = PathBuf::from(concat!(env!("CARGO_MANIFEST_DIR"), "/target/browser"));
     std::fs::create_dir_all(&artefacts).unwrap();

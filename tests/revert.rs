@@ -119,7 +119,7 @@ fn reverting_dedupe_gives_the_bytes_of_the_chain_without_it() {
     }
     // The revert step points at the step it took out; the later ones at the steps they repeat.
     let steps = steps_of(&s, "t");
-    let revert = steps.iter().find(|x| x["kind"] == "withdraw").unwrap();
+    let revert = steps.iter().find(|x| x["kind"] == "revert").unwrap();
     assert_eq!(revert["reverts_step"], 3);
     assert_eq!(revert["reason"], "the two orders 1 are separate sales");
     let repeats: Vec<i64> = steps
@@ -228,7 +228,7 @@ fn forced_the_edit_stays_on_its_row_and_the_duplicate_returns_as_it_was() {
     // The forced conflict is kept with the revert step.
     let revert = steps_of(&s, "t")
         .into_iter()
-        .find(|x| x["kind"] == "withdraw")
+        .find(|x| x["kind"] == "revert")
         .unwrap();
     assert_eq!(
         revert["params"]["forced_conflicts"][0]["kind"],

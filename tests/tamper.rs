@@ -43,12 +43,12 @@ fn store() -> Sandbox {
 }
 
 fn db(s: &Sandbox) -> rusqlite::Connection {
-    rusqlite::Connection::open(s.path().join(".sluice/lineage.db")).unwrap()
+    rusqlite::Connection::open(s.path().join("sluice-store/lineage.db")).unwrap()
 }
 
 fn object_path(s: &Sandbox, hash: &str) -> PathBuf {
     s.path()
-        .join(".sluice/objects")
+        .join("sluice-store/objects")
         .join(&hash[..2])
         .join(&hash[2..])
 }

@@ -80,7 +80,7 @@ fn check(store: &Store, t: &Trail, listed: &mut HashMap<String, HashSet<(String,
 #[test]
 fn every_sampled_cell_of_the_cleaned_orders_has_an_unbroken_exact_trail() {
     let d = Sandbox::with_demo();
-    let store = Store::open(&d.path().join(".sluice")).unwrap();
+    let store = Store::open(&d.path().join("sluice-store")).unwrap();
     let v = sluice::refs::resolve(&store.lineage, "all_orders").unwrap();
     let mut listed = HashMap::new();
     let mut cells = 0;

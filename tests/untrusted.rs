@@ -75,7 +75,7 @@ fn quotes_semicolons_and_sql_keywords_are_data_everywhere() {
     assert_eq!(v["intact"], true, "{v}");
     assert_eq!(v["audit_entries_checked"], 5);
     // Every table is still there and nothing was rewritten.
-    let db = rusqlite::Connection::open(s.path().join(".sluice/lineage.db")).unwrap();
+    let db = rusqlite::Connection::open(s.path().join("sluice-store/lineage.db")).unwrap();
     let n: i64 = db
         .query_row("SELECT count(*) FROM steps", [], |r| r.get(0))
         .unwrap();
@@ -180,7 +180,7 @@ fn a_store_whose_folders_are_links_out_of_it_is_refused_and_nothing_is_written_t
     for part in ["tmp", "objects"] {
         let s = seeded();
         let outside = tempfile::tempdir().unwrap();
-        let p = s.path().join(".sluice").join(part);
+        let p = s.path().join("sluice-store").join(part);
         // Move the real folder outside and leave a link in its place.
         let moved = outside.path().join(part);
         std::fs::rename(&p, &moved).unwrap();
@@ -188,7 +188,7 @@ fn a_store_whose_folders_are_links_out_of_it_is_refused_and_nothing_is_written_t
         let before = files_in(&moved);
         s.file("b.csv", "order_id,shop\nWO-2,Oxwater Wheelworks\n");
         let err = s.fails(2, &["receive", "b.csv", "--as", "orders"]);
-        assert_contains(&err, &format!(".sluice/{part} is a symbolic link"));
+        assert_contains(&err, &format!("sluice-store/{part} is a symbolic link"));
         assert_contains(&err, "never links out of it");
         assert_eq!(
             files_in(&moved),
@@ -198,14 +198,14 @@ fn a_store_whose_folders_are_links_out_of_it_is_refused_and_nothing_is_written_t
         // Reading commands refuse too, verify included.
         let err = s.fails(2, &["verify"]);
         assert_contains(&err, "is a symbolic link");
-        eprintln!("links: .sluice/{part} as a link out of the store is refused");
+        eprintln!("links: sluice-store/{part} as a link out of the store is refused");
     }
 }
 
 #[test]
 fn an_object_folder_linked_out_of_the_store_is_never_read_or_written() {
     let s = seeded();
-    let objects = s.path().join(".sluice/objects");
+    let objects = s.path().join("sluice-store/objects");
     let outside = tempfile::tempdir().unwrap();
     // Every fan-out folder of the one version becomes a link to a copy outside.
     let mut linked = 0;
@@ -260,7 +260,10 @@ fn a_received_store_is_inspected_traced_and_verified_without_running_anything() 
         }
         go(from, to)
     };
-    copy(&made.path().join(".sluice"), &project.join(".sluice"));
+    copy(
+        &made.path().join("sluice-store"),
+        &project.join("sluice-store"),
+    );
     let decoys = received.path().join("decoys");
     std::fs::create_dir_all(&decoys).unwrap();
     let mark = received.path().join("ran");
@@ -381,6 +384,6 @@ fn exec_never_follows_an_output_link_or_a_traversing_input_name() {
     assert_eq!(r.code, 2, "{}", r.stderr);
     assert_contains(&r.stderr, "invalid dataset name \"../../escape\"");
     assert!(!s.path().join("escape.csv").exists());
-    assert!(!s.path().join(".sluice/escape.csv").exists());
+    assert!(!s.path().join("sluice-store/escape.csv").exists());
     eprintln!("exec: an output link and a traversing input name refused, nothing recorded");
 }

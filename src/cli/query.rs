@@ -276,7 +276,7 @@ pub fn about_text(out: &mut impl Write, d: &VersionDetail) -> io::Result<()> {
         v.label(),
         if d.is_latest { "  (latest)" } else { "" }
     )?;
-    writeln!(out, "  hash         {}", v.hash)?;
+    writeln!(out, "  hash         blake3:{}", v.hash)?;
     writeln!(out, "  size         {}", plural(v.n_bytes, "byte", "bytes"))?;
     writeln!(out, "  shape        {}", shape(v))?;
     let dl = &v.dialect;
@@ -328,7 +328,7 @@ pub fn about_text(out: &mut impl Write, d: &VersionDetail) -> io::Result<()> {
             code_lines(out, code, "  ", 13)?;
         }
     }
-    writeln!(out, "  row index    {}", v.row_index)?;
+    writeln!(out, "  row index    blake3:{}", v.row_index)?;
     for c in &d.checks {
         writeln!(
             out,
