@@ -116,7 +116,7 @@ const LAYERS: &[(&str, &[&str])] = &[
     ),
     ("read", &["table", "sheets", "jsonl"]),
     ("store", &["store", "refs", "agent"]),
-    ("operate", &["ops", "compare", "checks", "provenance"]),
+    ("operate", &["ops", "diff", "checks", "provenance"]),
     (
         "record",
         &[
@@ -124,21 +124,14 @@ const LAYERS: &[(&str, &[&str])] = &[
             "intake",
             "convert",
             "inferred",
-            "capture",
+            "exec",
             "plan",
         ],
     ),
     (
         "query",
         &[
-            "history",
-            "trace",
-            "explain",
-            "lineage",
-            "reproduce",
-            "verify",
-            "export",
-            "withdraw",
+            "history", "trace", "explain", "graph", "replay", "verify", "export", "revert",
         ],
     ),
     ("document", &["report", "prov", "demo"]),

@@ -722,7 +722,7 @@ fn store_from_an_older_schema_is_migrated_on_open() {
     }
     assert_eq!(user_version(&db), 0);
     let out = s.ok(&["timeline"]);
-    assert_contains(&out, "no steps yet");
+    assert_contains(&out, "no steps to show");
     assert_eq!(user_version(&db), sluice::store::lineage::SCHEMA_VERSION);
     s.file("exports/seed.csv", SEED);
     s.ok(&["receive", "exports/seed.csv", "--as", "orders"]);

@@ -97,8 +97,8 @@ fn twelve_writers_ingesting_and_applying_while_a_reader_verifies() {
     for i in 0..4 {
         s.file(&format!("shared_{i}.csv"), rows(&format!("S{i}"), 3000));
         writers.push((
-            format!("ingest shared {i}"),
-            sh(format!("'{bin}' ingest shared_{i}.csv --as shared")),
+            format!("receive shared {i}"),
+            sh(format!("'{bin}' receive shared_{i}.csv --as shared")),
         ));
     }
     let ops = [
@@ -109,9 +109,9 @@ fn twelve_writers_ingesting_and_applying_while_a_reader_verifies() {
     ];
     for op in ops {
         writers.push((
-            format!("apply {op} to base:v1"),
+            format!("clean {op} to base:v1"),
             sh(format!(
-                "'{bin}' apply base:v1 {op} --as base --why 'concurrent step'"
+                "'{bin}' clean base:v1 {op} --as base --why 'concurrent step'"
             )),
         ));
     }
@@ -120,9 +120,9 @@ fn twelve_writers_ingesting_and_applying_while_a_reader_verifies() {
         writers.push((
             format!("own {i}"),
             sh(format!(
-                "'{bin}' ingest own_{i}.csv --as own_{i} && \
-                 '{bin}' apply own_{i} trim --why tidy && \
-                 '{bin}' apply own_{i} number --columns parts_cost --why amounts"
+                "'{bin}' receive own_{i}.csv --as own_{i} && \
+                 '{bin}' clean own_{i} trim --why tidy && \
+                 '{bin}' clean own_{i} number --columns parts_cost --why amounts"
             )),
         ));
     }
@@ -152,7 +152,7 @@ fn twelve_writers_ingesting_and_applying_while_a_reader_verifies() {
     }
     let seqs = |name: &str| -> Vec<u64> {
         let mut v: Vec<u64> = s
-            .json(&["timeline", name, "--json"])
+            .json(&["timeline", "--dataset", name, "--json"])
             .as_array()
             .unwrap()
             .iter()

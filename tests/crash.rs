@@ -124,7 +124,7 @@ fn delays(total: Duration) -> impl Iterator<Item = Duration> {
 }
 
 fn versions_of(dir: &Path, dataset: &str) -> Vec<serde_json::Value> {
-    ok_json(dir, &["timeline", dataset, "--json"])
+    ok_json(dir, &["timeline", "--dataset", dataset, "--json"])
         .as_array()
         .unwrap()
         .iter()

@@ -1,7 +1,7 @@
 //! The interface speaks its own vocabulary: every command's help (and every clean operation's),
 //! the manual pages and the completion scripts are read, and none may use a name sluice had
 //! before it chose its own (the list is below). Matching is by whole word, and the command
-//! words that are also ordinary English ("about", "clean", "timeline", ...) are looked for only
+//! words that are also ordinary English ("show", "apply", "log", ...) are looked for only
 //! where they would be commands: after `sluice `, or as an entry of a command list.
 
 mod common;
@@ -10,36 +10,26 @@ use common::*;
 
 /// Old command names, looked for as commands (`sluice NAME`, or a command-list entry).
 const OLD_COMMANDS: &[&str] = &[
-    "setup",
-    "receive",
-    "clean",
-    "inspect",
-    "capture",
-    "lineage",
-    "reproduce",
-    "withdraw",
-    "retrieve",
-    "compare",
-    "timeline",
-    "about",
+    "init", "ingest", "apply", "check", "exec", "graph", "replay", "revert", "cat", "diff", "log",
+    "show",
 ];
 
 /// Old words looked for anywhere, as whole words: options, the environment variable, the name
 /// of a stopping check, and old command names that are not ordinary English.
 const OLD_WORDS: &[&str] = &[
-    "--with",
-    "--accept-conflicts",
-    "--counts",
+    "--onto",
+    "--force",
+    "--stat",
     "--find",
-    "--person",
-    "SLUICE_PERSON",
+    "--agent",
+    "SLUICE_AGENT",
     "gate",
     "gates",
-    "reproduce",
+    "replay",
     "replayed",
-    "receive",
+    "ingest",
     "ingested",
-    "withdraw",
+    "revert",
 ];
 
 /// Where an old word is the right word after all, with the reason.
@@ -125,14 +115,14 @@ fn the_word_lists_find_what_they_are_for_and_pass_plain_english() {
     // Each kind of old name is found...
     for (text, what) in [
         (
-            "Example:\n  sluice receive x.csv --as x",
+            "Example:\n  sluice ingest x.csv --as x",
             "command \"ingest\"",
         ),
         ("  show     Show one version", "command \"show\""),
         ("use --onto NAME=FILE", "\"--onto\""),
-        ("set SLUICE_PERSON first", "\"SLUICE_PERSON\""),
+        ("set SLUICE_AGENT first", "\"SLUICE_AGENT\""),
         ("a failing gate stops the run", "\"gate\""),
-        ("e.g. orders:v2", "reference \"orders:v2\""),
+        ("e.g. orders@2", "reference \"orders@2\""),
     ] {
         let found = old_names(text, "t");
         assert!(found.iter().any(|f| f.contains(what)), "{text}: {found:?}");
@@ -218,7 +208,7 @@ fn manual_pages_and_completions_use_no_old_name() {
                 found.push(format!("{shell} completions: command \"{c}\""));
             }
         }
-        for w in ["--with", "--accept-conflicts", "--counts", "--person"] {
+        for w in ["--onto", "--force", "--stat", "--agent"] {
             if script.contains(w) {
                 found.push(format!("{shell} completions: \"{w}\""));
             }

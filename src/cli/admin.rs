@@ -242,17 +242,15 @@ pub fn demo_text(out: &mut impl Write, r: &DemoReport) -> io::Result<()> {
     writeln!(out, "  $ {}", r.replayed.0)?;
     let rp = &r.replayed.1;
     if rp.reproduced {
+        let raw = rp.steps.iter().filter(|s| s.result == "raw_intact").count() as u64;
         writeln!(
             out,
-            "  reproduced {} ({}): all {} check out, from {} to the last step run again",
+            "  reproduced {} ({}): all {} check out ({} intact, {} run again gave the recorded bytes)",
             rp.version,
             short_hash(&rp.hash),
             plural(rp.steps.len() as u64, "step", "steps"),
-            plural(
-                rp.steps.iter().filter(|s| s.result == "raw_intact").count() as u64,
-                "raw input",
-                "raw inputs"
-            )
+            plural(raw, "raw input", "raw inputs"),
+            plural(rp.steps.len() as u64 - raw, "step", "steps")
         )?;
     } else {
         writeln!(out, "  not reproduced: {} (run it to see why)", rp.version)?;
