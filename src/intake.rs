@@ -352,7 +352,11 @@ impl PreparedIngest {
 
     /// `name (hash)`, for messages before the version exists.
     pub fn label(&self) -> String {
-        format!("{} ({})", self.opts.dataset, &self.table_hex[..12])
+        format!(
+            "{} ({})",
+            self.opts.dataset,
+            crate::model::short_hash(&self.table_hex)
+        )
     }
 
     /// Makes the table and row index objects durable (they stay unreferenced until a commit)

@@ -58,14 +58,12 @@ fn identity_comes_from_options_environment_store_then_the_os_user() {
         "[user]\n\tname = Sam Global\n\temail = sam@example.org\n",
     )
     .unwrap();
-    let git = Command::new("git")
-        .args(["setup", "-q"])
+    // (Where git is installed; the test holds without it too.)
+    let _ = Command::new("git")
+        .args(["init", "-q"])
         .current_dir(s.path())
         .env("HOME", home.path())
         .status();
-    if let Ok(st) = git {
-        assert!(st.success());
-    }
     // Nothing given: the operating system user.
     assert_eq!(
         recorded_agent(&s, home.path(), &[], &[("USER", "tillclerk")]),

@@ -283,7 +283,7 @@ fn plan_run_killed_at_fifty_moments_keeps_whole_steps_only() {
             assert_eq!(
                 by_seq(&now, seq),
                 by_seq(&want, seq),
-                "{what}: orders@{seq}"
+                "{what}: orders:v{seq}"
             );
         }
         assert_eq!(

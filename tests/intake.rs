@@ -443,7 +443,7 @@ fn demo_builds_a_store_that_verifies() {
         .iter()
         .map(|e| e["step"]["kind"].as_str().unwrap())
         .collect();
-    assert_eq!(kinds, ["hand_edit", "command"]);
+    assert_eq!(kinds, ["command", "hand_edit"], "oldest first");
     assert_eq!(
         d.json(&["about", "quillby_orders", "--json"])["version"]["seq"],
         4

@@ -95,7 +95,7 @@ fn trace(s: &Sandbox, reference: &str, row: u64, column: &str) -> Value {
 
 fn ingest_step(s: &Sandbox, dataset: &str) -> Value {
     let log = s.json(&["timeline", "--dataset", dataset, "--json"]);
-    log.as_array().unwrap().last().unwrap()["step"].clone()
+    log.as_array().unwrap().first().unwrap()["step"].clone()
 }
 
 #[test]

@@ -49,7 +49,7 @@ fn a_schema_1_store_is_migrated_and_keeps_its_history() {
         .iter()
         .map(|e| e["step"]["operation"].as_str().unwrap_or("receive"))
         .collect();
-    assert_eq!(kinds, vec!["dedupe", "trim", "receive"]);
+    assert_eq!(kinds, vec!["receive", "trim", "dedupe"], "oldest first");
     let report = s.json(&["verify", "--json"]);
     assert_eq!(report["intact"], true, "{report}");
     assert_eq!(

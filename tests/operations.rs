@@ -273,7 +273,7 @@ fn apply_records_an_exact_step_with_cell_counts() {
         "id,name,email\n1,Ada Quenwick,ada@example.org\n2,Bram Fenley,bram@example.org\n"
     );
     let log = s.json(&["timeline", "--dataset", "orders_clean", "--json"]);
-    let step = &log[0]["step"];
+    let step = &log.as_array().unwrap().last().unwrap()["step"];
     assert_eq!(step["kind"], "operation");
     assert_eq!(step["operation"], "case");
     assert_eq!(step["lineage"], "exact");
@@ -345,7 +345,7 @@ fn dedupe_agrees_with_python_on_the_demo_exports() {
             Some("order_id"),
         ),
     ] {
-        let first = format!("{dataset}@1");
+        let first = format!("{dataset}:v1");
         let mut args = vec![
             "clean",
             &first,
@@ -1035,7 +1035,7 @@ fn map_takes_the_table_in_and_records_it_as_an_input() {
         "id,service\n1,puncture repair\n2,puncture repair\n3,gear indexing\n4,\n5,tyre swap\n"
     );
     let log = s.json(&["timeline", "--dataset", "orders", "--json"]);
-    let step = &log[0]["step"];
+    let step = &log.as_array().unwrap().last().unwrap()["step"];
     assert_eq!(
         step["inputs"],
         serde_json::json!(["orders:v1", "labels:v1"])

@@ -95,7 +95,7 @@ fn a_hand_edit_names_exactly_the_cells_and_the_row_it_changed() {
         "orders_edited.csv",
         "--as",
         "orders",
-        "--from",
+        "--hand-edit-of",
         "orders:v1",
         "--why",
         "corrections phoned in by the shop",
@@ -142,11 +142,11 @@ fn a_hand_edit_names_exactly_the_cells_and_the_row_it_changed() {
     assert_eq!(runs, vec![(0, 0, d), (d, d + 1, n - d - 1)]);
 
     let show = s.ok(&["about", "orders:v2"]);
-    assert_contains(&show, "hand_edit");
-    assert_contains(&show, "lineage inferred");
+    assert_contains(&show, "hand edit (lineage inferred by order)");
     assert_contains(&show, "corrections phoned in by the shop");
     let log = s.ok(&["timeline", "--dataset", "orders"]);
-    assert_contains(&log, "hand_edit · lineage inferred by order");
+    assert_contains(&log, "hand edit");
+    assert_contains(&log, "orders:v2");
     let json = s.json(&["about", "orders:v2", "--json"]);
     assert_eq!(json["step"]["kind"], "hand_edit");
     assert_eq!(json["step"]["lineage"], "inferred");
@@ -166,7 +166,7 @@ fn a_hand_edit_needs_a_reason_and_a_known_version() {
             "orders.csv",
             "--as",
             "orders",
-            "--from",
+            "--hand-edit-of",
             "orders:v1",
         ],
     );
@@ -178,7 +178,7 @@ fn a_hand_edit_needs_a_reason_and_a_known_version() {
             "orders.csv",
             "--as",
             "orders",
-            "--from",
+            "--hand-edit-of",
             "orders:v7",
             "--why",
             "x",
@@ -272,8 +272,8 @@ fn an_outside_command_records_its_commit_branch_dirty_files_and_lineage() {
         &format!("git {head} (branch {branch}, dirty: NOTES.txt)"),
     );
     assert_contains(
-        &s.ok(&["timeline", "--dataset", "orders"]),
-        "command · lineage inferred by key order_id",
+        &s.ok(&["about", "orders"]),
+        "capture (lineage inferred by key order_id)",
     );
 
     // The lineage is what the script did (by construction of CLEAN_PY on `orders()`): every

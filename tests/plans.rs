@@ -69,8 +69,8 @@ fn the_demo_plan_and_its_export_validate_against_the_schema() {
         demo_steps.len() - 1
     );
     assert_eq!(exported["inputs"][0]["file"], "exports/quillby_2026q3.csv");
-    assert_eq!(exported["steps"][0]["clean"]["inner"], true);
-    assert_eq!(exported["steps"][0]["clean"]["columns"], Value::Null);
+    assert_eq!(exported["steps"][0]["apply"]["inner"], true);
+    assert_eq!(exported["steps"][0]["apply"]["columns"], Value::Null);
     let gate = exported["steps"]
         .as_array()
         .unwrap()
@@ -78,7 +78,7 @@ fn the_demo_plan_and_its_export_validate_against_the_schema() {
         .find(|s| s.get("check").is_some())
         .expect("the gate is exported");
     assert_eq!(gate["gate"], true);
-    assert_eq!(gate["inspect"].as_array().unwrap().len(), 5);
+    assert_eq!(gate["check"].as_array().unwrap().len(), 5);
 }
 
 #[test]
@@ -349,7 +349,7 @@ fn inputs_bind_to_stored_versions_or_to_new_files() {
     assert_eq!(done.len(), 4);
     assert!(done[1..]
         .iter()
-        .all(|s| s["kind"] == "apply" && s["recorded"] == true));
+        .all(|s| s["kind"] == "clean" && s["recorded"] == true));
     let latest = d.json(&["about", "quillby_orders", "--json"]);
     assert_eq!(latest["version"]["n_rows"].as_u64().unwrap(), 90);
 
@@ -383,8 +383,13 @@ fn a_failing_step_stops_the_run_and_keeps_the_steps_before_it() {
     );
     let r = s.run(&["run", "p.json"]);
     assert_eq!(r.code, 1, "an amount that cannot be read is a data failure");
-    assert_contains(&r.stdout, "step 1: recorded orders:v2");
-    assert_contains(&r.stderr, "the run stopped at step 2 (number on orders)");
+    // Steps are called by their store-wide number (the intake is step 1); plan entries by
+    // their place in the plan.
+    assert_contains(&r.stdout, "step 2: recorded orders:v2");
+    assert_contains(
+        &r.stderr,
+        "the run stopped at plan entry 2 (number on orders)",
+    );
     assert_contains(
         &r.stderr,
         "the store keeps what came before: orders:v1, orders:v2",
@@ -404,7 +409,7 @@ fn a_failing_step_stops_the_run_and_keeps_the_steps_before_it() {
             ]}"#,
     );
     let err = s.fails(2, &["run", "q.json"]);
-    assert_contains(&err, "step 2 (case on orders)");
+    assert_contains(&err, "plan entry 2 (case on orders)");
     assert_contains(&err, "column \"colour\" is not in orders:v3");
 }
 
@@ -426,8 +431,12 @@ fn a_gate_that_fails_stops_the_run_and_a_plain_check_does_not() {
     s.file("plain.json", plan(false));
     let r = s.run(&["run", "plain.json"]);
     assert_eq!(r.code, 1, "a failing check is reported in the exit code");
-    assert_contains(&r.stdout, "step 2: check on orders:v2: 1 of 2 rules failed");
+    assert_contains(
+        &r.stdout,
+        "plan entry 2: inspection on orders:v2: 1 of 2 rules failed",
+    );
     assert_contains(&r.stdout, "unique id fails on 1 row");
+    // The dedupe is the store's third step: the intake, the trim, then it.
     assert_contains(&r.stdout, "step 3: recorded orders:v3");
 
     let s = Sandbox::with_store();
@@ -437,7 +446,7 @@ fn a_gate_that_fails_stops_the_run_and_a_plain_check_does_not() {
     assert_eq!(r.code, 1);
     assert_contains(
         &r.stderr,
-        "the run stopped at step 2 (gate check on orders)",
+        "the run stopped at plan entry 2 (inspection at a hold point on orders)",
     );
     assert_contains(&r.stderr, "the gate on orders:v2 failed: unique id (1 row)");
     let shown = s.json(&["about", "orders:v2", "--json"]);

@@ -113,7 +113,7 @@ fn the_demo_summary_is_reproduced_step_by_step() {
         .all(|s| s["computed_hash"] == s["recorded_hash"]));
     assert_contains(
         &d.ok(&["reproduce", "q3_by_shop"]),
-        "every one of 20 steps gave the recorded bytes",
+        "all 25 steps above check out (5 raw inputs intact, 20 steps run again gave the recorded bytes)",
     );
 }
 
@@ -252,7 +252,7 @@ fn a_hand_edit_whose_output_object_is_gone_cannot_be_reapplied() {
     let before = std::fs::read(&snapshot).unwrap();
     let r = d.run(&["reproduce", "reviewed_orders"]);
     assert_eq!(r.code, 1);
-    assert_contains(&r.stdout, "hand_edit -> reviewed_orders:v2");
+    assert_contains(&r.stdout, "hand edit -> reviewed_orders:v2");
     assert_contains(&r.stdout, "cannot reapply");
     assert_contains(
         &r.stdout,
@@ -300,7 +300,7 @@ fn the_same_chain_runs_on_next_quarters_export_and_each_step_names_the_one_it_re
     d.file("exports/quillby_2026q4.csv", &q4);
     let before = d.json(&["timeline", "--json"]).as_array().unwrap().len();
     let out = d.ok(&[
-        "reproduce",
+        "rerun",
         "q3_by_shop",
         "--with",
         "quillby_orders=exports/quillby_2026q4.csv",
@@ -317,7 +317,7 @@ fn the_same_chain_runs_on_next_quarters_export_and_each_step_names_the_one_it_re
         .map(|e| (e["step"]["id"].as_i64().unwrap(), &e["step"]))
         .collect();
     // Every new built-in step repeats a recorded step of the same operation.
-    let new: Vec<&serde_json::Value> = log[..log.len() - before]
+    let new: Vec<&serde_json::Value> = log[before..]
         .iter()
         .map(|e| &e["step"])
         .filter(|s| s["kind"] == "operation")
@@ -349,7 +349,7 @@ fn the_same_chain_runs_on_next_quarters_export_and_each_step_names_the_one_it_re
     let err = d.fails(
         2,
         &[
-            "reproduce",
+            "rerun",
             "q3_by_shop",
             "--with",
             "orders=exports/quillby_2026q4.csv",
@@ -375,7 +375,7 @@ fn a_chain_that_cannot_apply_to_the_new_data_stops_and_keeps_what_was_done() {
          1,2026-10-01,Ada Quenwick,,Flat repair,1.0,done,Ines,\n",
     );
     let r = d.run(&[
-        "reproduce",
+        "rerun",
         "q3_by_shop",
         "--with",
         "quillby_orders=exports/odd.csv",
@@ -383,7 +383,7 @@ fn a_chain_that_cannot_apply_to_the_new_data_stops_and_keeps_what_was_done() {
     assert_eq!(r.code, 2);
     assert_contains(
         &r.stderr,
-        "the run stopped at step 2 (number on quillby_orders)",
+        "the run stopped at plan entry 2 (number on quillby_orders)",
     );
     // The trim of the new file changed nothing, so the number step read the new raw version.
     assert_contains(
@@ -486,17 +486,20 @@ fn an_outside_command_runs_again_from_its_recorded_commit_only_with_allow_exec()
         "v1\nv1\n",
         "the recorded version of the script ran"
     );
-    assert_contains(&out, "replay will run 2 outside commands");
+    assert_contains(&out, "reproduce will run 2 outside commands");
     assert_contains(&out, "python3 clean.py {orders} {out:orders}");
     assert_contains(&out, &format!("at commit {}", &first[..12]));
     assert_contains(
         &out,
-        &format!("reproduced orders:v3 ({})", &hash_of(&s, "orders:v3")[..12]),
+        &format!(
+            "reproduced orders:v3 (blake3:{})",
+            &hash_of(&s, "orders:v3")[..16]
+        ),
     );
     // With --json the list goes to standard error, so that standard output is one document.
     let r = s.run(&["reproduce", "orders", "--allow-exec", "--json"]);
     assert_eq!(r.code, 0);
-    assert_contains(&r.stderr, "replay will run 2 outside commands");
+    assert_contains(&r.stderr, "reproduce will run 2 outside commands");
     let report: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
     assert_eq!(report["reproduced"], true);
     let steps = report["steps"].as_array().unwrap();
@@ -671,7 +674,7 @@ fn a_command_that_writes_other_bytes_now_shows_how_they_differ() {
     let snapshot = s.snapshot();
     let r = s.run(&["reproduce", "orders", "--allow-exec"]);
     assert_eq!(r.code, 1);
-    assert_contains(&r.stdout, "command -> orders:v2");
+    assert_contains(&r.stdout, "capture -> orders:v2");
     assert_contains(&r.stdout, "differs");
     assert_contains(&r.stdout, "recorded orders:v2 has 3 rows; recomputed (");
     assert_contains(
@@ -697,11 +700,10 @@ fn version_hashes(s: &Sandbox) -> Vec<String> {
         .as_array()
         .unwrap()
         .iter()
-        .rev()
         .flat_map(|e| e["produced"].as_array().unwrap().clone())
         .map(|v| {
             format!(
-                "{}@{} {}",
+                "{}:v{} {}",
                 v["dataset"].as_str().unwrap(),
                 v["seq"],
                 v["hash"].as_str().unwrap()
@@ -787,7 +789,7 @@ fn a_hand_edit_whose_recorded_lineage_does_not_explain_it_is_named_with_the_cell
         "orders_edited.csv",
         "--as",
         "orders",
-        "--from",
+        "--hand-edit-of",
         "orders:v1",
         "--why",
         "accent",
@@ -801,7 +803,7 @@ fn a_hand_edit_whose_recorded_lineage_does_not_explain_it_is_named_with_the_cell
         "copy_edited.csv",
         "--as",
         "copy",
-        "--from",
+        "--hand-edit-of",
         "copy:v1",
         "--why",
         "reopened",

@@ -225,12 +225,12 @@ fn the_demo_report_as_json_follows_the_schema() {
         .collect();
     assert!(kinds.contains(&"command") && kinds.contains(&"hand_edit"));
     assert_eq!(
-        doc["verification"]["reproduce"]["reproduced"], false,
+        doc["verification"]["replay"]["reproduced"], false,
         "the outside command is not run again without --allow-exec"
     );
-    assert_eq!(doc["verification"]["reproduce"]["failed"], Value::Null);
+    assert_eq!(doc["verification"]["replay"]["failed"], Value::Null);
     // The command is not run again; the hand edit is re-applied from its recorded lineage.
-    assert_eq!(doc["verification"]["reproduce"]["steps_not_rerun"], 1);
+    assert_eq!(doc["verification"]["replay"]["steps_not_rerun"], 1);
 }
 
 #[test]

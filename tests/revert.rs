@@ -24,7 +24,7 @@ fn refused(s: &Sandbox, args: &[&str]) -> String {
 
 /// The steps `log --json` lists for `dataset`, newest first.
 fn steps_of(s: &Sandbox, dataset: &str) -> Vec<serde_json::Value> {
-    s.json(&["timeline", dataset, "--json"])
+    s.json(&["timeline", "--dataset", dataset, "--json"])
         .as_array()
         .unwrap()
         .iter()
@@ -70,14 +70,14 @@ fn chain() -> Sandbox {
 #[test]
 fn reverting_dedupe_gives_the_bytes_of_the_chain_without_it() {
     let s = chain();
-    let before: Vec<String> = (1..=5).map(|n| hash_of(&s, &format!("t@{n}"))).collect();
+    let before: Vec<String> = (1..=5).map(|n| hash_of(&s, &format!("t:v{n}"))).collect();
     let out = s.ok(&[
         "withdraw",
         "t:v3",
         "--why",
         "the two orders 1 are separate sales",
     ]);
-    assert_contains(&out, "reverted step 3 (it made t:v3): t is now t:v8");
+    assert_contains(&out, "withdrew step 3 (it made t:v3): t is now t:v8");
     assert_contains(&out, "the table of t:v2 again, without step 3");
     assert_contains(&out, "nothing was deleted");
 
@@ -115,7 +115,7 @@ fn reverting_dedupe_gives_the_bytes_of_the_chain_without_it() {
 
     // Nothing deleted: every earlier version is still there with its hash.
     for (n, h) in before.iter().enumerate() {
-        assert_eq!(&hash_of(&s, &format!("t@{}", n + 1)), h);
+        assert_eq!(&hash_of(&s, &format!("t:v{}", n + 1)), h);
     }
     // The revert step points at the step it took out; the later ones at the steps they repeat.
     let steps = steps_of(&s, "t");
@@ -149,11 +149,11 @@ fn trace_through_a_revert_names_it_and_reaches_the_raw_line() {
     ]);
     // Row 3 is the second order 1, which dedupe had dropped and the revert brought back.
     let out = s.ok(&["trace", "t", "--row", "3", "--column", "name"]);
-    assert_contains(&out, "step 6 · revert (exact)");
+    assert_contains(&out, "step 6 · withdraw (exact)");
     assert_contains(&out, "why     the two orders 1 are separate sales");
     assert_contains(
         &out,
-        "took out step 3: t:v6 is t:v2's table from before that step",
+        "withdrew step 3: t:v6 is t:v2's table from before that step",
     );
     assert_contains(&out, "before  t:v1 row 3 name: \" Ann \"");
     assert_contains(&out, "t:v1 line 4, column name: \" Ann \"");
@@ -174,7 +174,7 @@ fn chain_with_hand_edit() -> Sandbox {
         "edit.csv",
         "--as",
         "t",
-        "--from",
+        "--hand-edit-of",
         "t",
         "--why",
         "the till rounded order 1",
@@ -187,14 +187,14 @@ fn a_later_edit_to_a_row_whose_duplicate_comes_back_refuses_the_revert() {
     let s = chain_with_hand_edit();
     let snapshot = s.snapshot();
     let out = refused(&s, &["withdraw", "t:v3", "--why", "separate sales"]);
-    assert_contains(&out, "not reverted");
+    assert_contains(&out, "not withdrawn");
     assert_contains(
         &out,
         "step 6 (t:v6): the hand edit changed amount of data row 1 of t:v6; the reverted step had dropped data row 3 of t:v2 as a duplicate of that row",
     );
     assert_contains(
         &out,
-        "with --force: the change is applied to the row it was made on",
+        "with --accept-conflicts: the change is applied to the row it was made on",
     );
     assert_eq!(s.snapshot(), snapshot, "a refused revert records nothing");
     let r = s.run(&["withdraw", "t:v3", "--why", "separate sales", "--json"]);
@@ -220,7 +220,7 @@ fn forced_the_edit_stays_on_its_row_and_the_duplicate_returns_as_it_was() {
         &out,
         "the hand edit of step 6 re-applied: 1 cells, 0 rows removed, 0 rows added",
     );
-    assert_contains(&out, "resolved by --force (1 conflict)");
+    assert_contains(&out, "resolved by --accept-conflicts (1 conflict)");
     assert_eq!(
         s.ok(&["retrieve", "t"]),
         "id,name,amount,status\n1,Ann,1.75,done\n2,Bob,2.0,open\n1,Ann,1.5,done\n4,Dee,3,done\n"
@@ -236,7 +236,7 @@ fn forced_the_edit_stays_on_its_row_and_the_duplicate_returns_as_it_was() {
     );
     // The re-applied edit is exact lineage: its changed cell traces to the hand edit.
     let t = s.ok(&["trace", "t", "--row", "1", "--column", "amount"]);
-    assert_contains(&t, "after   t@");
+    assert_contains(&t, "after   t:v");
     assert_contains(&t, "\"1.75\"");
     assert_contains(&s.ok(&["verify"]), "intact");
 }
@@ -273,7 +273,7 @@ fn an_edit_to_a_row_the_new_history_drops_is_a_conflict() {
         "edit.csv",
         "--as",
         "o",
-        "--from",
+        "--hand-edit-of",
         "o",
         "--why",
         "typo in order 2",
@@ -293,7 +293,7 @@ fn an_edit_to_a_row_the_new_history_drops_is_a_conflict() {
         "blank does not mean done",
         "--accept-conflicts",
     ]);
-    assert_contains(&out, "resolved by --force (1 conflict)");
+    assert_contains(&out, "resolved by --accept-conflicts (1 conflict)");
     assert_eq!(s.ok(&["retrieve", "o"]), "id,status,amount\n1,done,5\n");
 }
 
@@ -317,7 +317,7 @@ fn an_edit_to_a_column_only_the_reverted_step_made_is_a_conflict() {
         "edit.csv",
         "--as",
         "w",
-        "--from",
+        "--hand-edit-of",
         "w",
         "--why",
         "wrong day",
@@ -371,7 +371,7 @@ fn outside_commands_after_the_step_are_conflicts() {
     );
     assert_contains(
         &out,
-        "with --force: its recorded changes are re-applied as cell patches",
+        "with --accept-conflicts: its recorded changes are re-applied as cell patches",
     );
     let out = s.ok(&[
         "withdraw",
@@ -418,7 +418,7 @@ fn what_cannot_be_reverted_is_refused_with_the_next_thing_to_try() {
     // A summary made from the old history is not changed, and the output says so.
     assert_contains(
         &out,
-        "not changed by the revert, though made from the history it replaced: by_status:v1",
+        "not changed by the withdrawal, though made from the history it replaced: by_status:v1",
     );
 }
 

@@ -453,7 +453,9 @@ fn trail_body(out: &mut impl Write, t: &Trail, pad: &str) -> io::Result<()> {
                     format!(
                         "{} {}",
                         g.step,
-                        g.operation.as_deref().unwrap_or(g.kind.as_str())
+                        g.operation
+                            .as_deref()
+                            .unwrap_or(sluice::history::action_of(g.kind))
                     )
                 })
                 .collect();
@@ -475,7 +477,9 @@ fn trail_body(out: &mut impl Write, t: &Trail, pad: &str) -> io::Result<()> {
             out,
             "{pad}step {} · {} ({}) · {} · {}",
             h.step,
-            h.operation.as_deref().unwrap_or(h.kind.as_str()),
+            h.operation
+                .as_deref()
+                .unwrap_or(sluice::history::action_of(h.kind)),
             h.link,
             h.at,
             h.agent
@@ -486,7 +490,7 @@ fn trail_body(out: &mut impl Write, t: &Trail, pad: &str) -> io::Result<()> {
         if let Some(r) = h.reverts_step {
             writeln!(
                 out,
-                "{pad}  revert  took out step {r}: {} is {}'s table from before that step",
+                "{pad}  withdrew step {r}: {} is {}'s table from before that step",
                 h.produced, h.read
             )?;
         }
@@ -521,9 +525,9 @@ fn trail_body(out: &mut impl Write, t: &Trail, pad: &str) -> io::Result<()> {
             let raw_hash = o.raw_object.as_deref().unwrap_or(&o.hash);
             writeln!(
                 out,
-                "{pad}raw     {} ({}{}), taken in {} by {}",
+                "{pad}raw     {} ({}{}), received {} by {}",
                 o.path.as_deref().unwrap_or("(no path recorded)"),
-                &raw_hash[..12.min(raw_hash.len())],
+                short_hash(raw_hash),
                 match o.format.as_str() {
                     "csv" => "",
                     "jsonl" => ", JSON Lines",
@@ -547,7 +551,7 @@ fn trail_body(out: &mut impl Write, t: &Trail, pad: &str) -> io::Result<()> {
                     )?;
                     writeln!(
                         out,
-                        "{pad}        taken in as {} column {}: {}",
+                        "{pad}        received as {} column {}: {}",
                         o.version,
                         o.column,
                         shown(o.converted_value.as_deref().unwrap_or_default())
@@ -568,7 +572,7 @@ fn trail_body(out: &mut impl Write, t: &Trail, pad: &str) -> io::Result<()> {
                     writeln!(out, "{pad}        {}", o.raw_line)?;
                     writeln!(
                         out,
-                        "{pad}        taken in as {} column {}: {}",
+                        "{pad}        received as {} column {}: {}",
                         o.version,
                         o.column,
                         shown(o.converted_value.as_deref().unwrap_or_default())
@@ -769,7 +773,12 @@ pub fn impact_text(out: &mut impl Write, i: &sluice::graph::Impact) -> io::Resul
             writeln!(
                 out,
                 "  step {id} · {} · {at} · {agent} -> {}",
-                operation.as_deref().unwrap_or(step_kind),
+                operation
+                    .as_deref()
+                    .unwrap_or(match sluice::model::StepKind::parse(step_kind) {
+                        Some(k) => sluice::history::action_of(k),
+                        None => step_kind.as_str(),
+                    }),
                 made.join(", ")
             )?;
         }

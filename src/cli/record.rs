@@ -638,6 +638,13 @@ pub fn finish_run(
             Ok(if report.failed_checks > 0 { 1 } else { 0 })
         }
         Err(failure) => {
+            // The plan names the entry it stopped at as "step N"; steps are called by their
+            // store-wide number everywhere, so a plan's own places are plan entries.
+            let at = match failure.at.strip_prefix("step ") {
+                Some(rest) => format!("plan entry {rest}"),
+                None => failure.at.clone(),
+            }
+            .replace("gate check on", "inspection at a hold point on");
             let kept: Vec<String> = failure
                 .done
                 .iter()
@@ -645,7 +652,7 @@ pub fn finish_run(
                 .collect();
             if as_json {
                 let msg = failure.error.to_string();
-                json(out, &RunJson::new(&failure.done, Some((&failure.at, &msg))))?;
+                json(out, &RunJson::new(&failure.done, Some((&at, &msg))))?;
             } else {
                 run_done(out, &failure.done)?;
             }
@@ -656,7 +663,7 @@ pub fn finish_run(
                 format!("the store keeps what came before: {}", kept.join(", "))
             };
             Err(anyhow::Error::from(failure.error)
-                .context(format!("the run stopped at {}; {kept}", failure.at)))
+                .context(format!("the run stopped at {at}; {kept}")))
         }
     }
 }
@@ -1191,7 +1198,7 @@ pub fn exec_recorded(
     for r in recorded {
         writeln!(
             out,
-            "recorded {} ({}) from {}: command; {}",
+            "recorded {} ({}) from {}: capture; {}",
             r.version.label(),
             short_hash(&r.version.hash),
             r.from.label(),

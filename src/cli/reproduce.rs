@@ -242,7 +242,10 @@ pub fn planned_commands(
 /// What a reproduction found.
 pub fn reproduce_text(out: &mut impl Write, r: &sluice::replay::ReplayReport) -> io::Result<()> {
     for s in &r.steps {
-        let what = s.operation.as_deref().unwrap_or(s.kind.as_str());
+        let what = s
+            .operation
+            .as_deref()
+            .unwrap_or(sluice::history::action_of(s.kind));
         let result = match s.result.as_str() {
             "same" => "gave the recorded bytes".to_string(),
             "restored" => "gave the recorded bytes; the missing object was restored".to_string(),

@@ -376,7 +376,7 @@ pub(super) fn rerun(store: &mut Store, step: &Step, outputs: &[Version]) -> Resu
                     "run again from commit {}, the command wrote other bytes for {} ({}) than it recorded",
                     &commit[..commit.len().min(12)],
                     v.label(),
-                    &hash.hex()[..12]
+                    crate::model::short_hash(&hash.hex())
                 )),
                 warnings,
                 computed_hash: Some(hash.hex()),

@@ -401,9 +401,9 @@ fn built_in(
             }
             entry.detail = Some(format!(
                 "the step gives other bytes ({}) than it recorded for {} ({})",
-                &output_hash[..12],
+                crate::model::short_hash(&output_hash),
                 out.label(),
-                &out.hash[..12]
+                crate::model::short_hash(&out.hash)
             ));
             // The recomputed bytes, to compare: the step is computed once more, told that its
             // own result is the one expected, so that apply writes them as an object.

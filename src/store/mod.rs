@@ -108,7 +108,7 @@ impl Store {
         for part in [DB_FILE, "objects", "tmp"] {
             let p = dir.join(part);
             if fs::symlink_metadata(&p).is_ok_and(|m| m.file_type().is_symlink()) {
-                return Err(ErrorKind::Inconsistent(format!(
+                return Err(ErrorKind::Usage(format!(
                     "{} is a symbolic link; a store's lineage.db, objects/ and tmp/ must be inside its folder, never links out of it; replace the link with what it points to, then run `sluice verify`",
                     p.display()
                 ))
