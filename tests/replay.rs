@@ -334,11 +334,11 @@ fn the_same_chain_runs_on_next_quarters_export_and_each_step_names_the_one_it_re
     let shown = d.json(&["about", "quillby_orders", "--json"]);
     assert_eq!(
         shown["version"]["seq"], 8,
-        "raw Q4 (@5) and its three cleaned versions"
+        "raw Q4 (v5) and its three cleaned versions"
     );
     assert_contains(
         &d.ok(&["timeline", "--dataset", "q3_by_shop"]),
-        "· repeats step ",
+        "(repeats step 25) parts and labour",
     );
     let summary = d.run(&["retrieve", "q3_by_shop:v2"]).stdout;
     assert!(summary.starts_with("shop,month,count,sum_parts_cost,mean_labour_hours\n"));

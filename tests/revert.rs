@@ -128,8 +128,8 @@ fn reverting_dedupe_gives_the_bytes_of_the_chain_without_it() {
         .collect();
     assert_eq!(
         repeats,
-        vec![5, 4],
-        "keep repeats step 5, number step 4 (newest first)"
+        vec![4, 5],
+        "number repeats step 4, keep step 5 (oldest first)"
     );
     assert_contains(&s.ok(&["verify"]), "intact");
     assert_eq!(
