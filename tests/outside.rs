@@ -246,7 +246,7 @@ fn an_outside_command_records_its_commit_branch_dirty_files_and_lineage() {
         "{out:orders}",
     ]);
     assert_contains(&out, "recorded orders:v2");
-    assert_contains(&out, "command");
+    assert_contains(&out, "capture;");
 
     // The outside reference: git itself (`git rev-parse HEAD`, `git rev-parse --abbrev-ref
     // HEAD`) for the commit and branch the command ran from.
