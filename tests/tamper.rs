@@ -26,29 +26,29 @@ fn store() -> Sandbox {
         "oxwater.csv",
         "order_id,shop\nOX-1,Oxwater Wheelworks\nOX-2,Oxwater Wheelworks\n",
     );
-    s.ok(&["ingest", "quillby.csv", "--as", "orders"]);
-    s.ok(&["apply", "orders", "trim", "--why", "stray spaces"]);
+    s.ok(&["receive", "quillby.csv", "--as", "orders"]);
+    s.ok(&["clean", "orders", "trim", "--why", "stray spaces"]);
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "drop",
         "status = 'cancelled'",
         "--why",
         "not revenue",
     ]);
-    s.ok(&["ingest", "oxwater.csv", "--as", "oxwater"]);
+    s.ok(&["receive", "oxwater.csv", "--as", "oxwater"]);
     let v = s.json(&["verify", "--json"]);
     assert_eq!(v["intact"], true, "the untouched store must verify: {v}");
     s
 }
 
 fn db(s: &Sandbox) -> rusqlite::Connection {
-    rusqlite::Connection::open(s.path().join(".sluice/lineage.db")).unwrap()
+    rusqlite::Connection::open(s.path().join("sluice-store/lineage.db")).unwrap()
 }
 
 fn object_path(s: &Sandbox, hash: &str) -> PathBuf {
     s.path()
-        .join(".sluice/objects")
+        .join("sluice-store/objects")
         .join(&hash[..2])
         .join(&hash[2..])
 }
@@ -162,8 +162,8 @@ fn a_provenance_reference_pointed_at_another_object_is_named() {
         )
         .unwrap();
     let found = problems(&s);
-    assert_named(&found, "audit_mismatch", "orders@2", "the entry says");
-    assert_named(&found, "audit_mismatch", "orders@2", &other);
+    assert_named(&found, "audit_mismatch", "orders:v2", "the entry says");
+    assert_named(&found, "audit_mismatch", "orders:v2", &other);
     // Removing the reference is found the same way.
     let s = store();
     db(&s)
@@ -176,7 +176,7 @@ fn a_provenance_reference_pointed_at_another_object_is_named() {
     assert_named(
         &found,
         "audit_mismatch",
-        "orders@3",
+        "orders:v3",
         "its step's provenance object is none",
     );
 }
@@ -198,7 +198,7 @@ fn a_version_hash_pointed_at_another_table_is_named() {
     assert_named(
         &found,
         "audit_mismatch",
-        "orders@2",
+        "orders:v2",
         &format!("its hash is {raw}"),
     );
 }
@@ -217,7 +217,7 @@ fn a_version_added_without_an_audit_entry_is_named() {
     .unwrap();
     drop(conn);
     let found = problems(&s);
-    assert_named(&found, "audit_mismatch", "orders@4", "has no audit entry");
+    assert_named(&found, "audit_mismatch", "orders:v4", "has no audit entry");
 }
 
 // ---- the audit chain ---------------------------------------------------------------------
@@ -301,7 +301,7 @@ fn a_deleted_audit_entry_is_named_where_the_chain_breaks() {
         "audit entry 4",
         "expected sequence number 3",
     );
-    assert_named(&found, "audit_mismatch", "orders@2", "has no audit entry");
+    assert_named(&found, "audit_mismatch", "orders:v2", "has no audit entry");
     // At the end: no chain can show its tail is gone, but the version it recorded is left
     // without its entry, and the head hash verify reports differs from the one written down.
     let s = store();
@@ -310,7 +310,7 @@ fn a_deleted_audit_entry_is_named_where_the_chain_breaks() {
         .execute("DELETE FROM audit_log WHERE seq = 5", [])
         .unwrap();
     let found = problems(&s);
-    assert_named(&found, "audit_mismatch", "oxwater@1", "has no audit entry");
+    assert_named(&found, "audit_mismatch", "oxwater:v1", "has no audit entry");
     let r = s.run(&["verify", "--json"]);
     let report: Value = serde_json::from_str(&r.stdout).unwrap();
     assert_ne!(report["audit_head"], head);
@@ -357,7 +357,7 @@ fn an_audit_entry_inserted_out_of_chain_is_named() {
         "2026-10-01T09:00:00.000Z",
         "Someone Else <else@example.org>",
         "note",
-        "orders@1",
+        "orders:v1",
         "{}",
         &first,
     )
@@ -365,7 +365,7 @@ fn an_audit_entry_inserted_out_of_chain_is_named() {
     conn.execute(
         "INSERT INTO audit_log (seq, at, agent, action, subject, details, prev_hash, hash)
          VALUES (6, '2026-10-01T09:00:00.000Z', 'Someone Else <else@example.org>', 'note',
-                 'orders@1', '{}', ?1, ?2)",
+                 'orders:v1', '{}', ?1, ?2)",
         [&first, &hash],
     )
     .unwrap();
@@ -390,10 +390,11 @@ fn an_audit_entry_inserted_out_of_chain_is_named() {
     let prev: String = conn
         .query_row("SELECT hash FROM audit_log WHERE seq = 2", [], |r| r.get(0))
         .unwrap();
-    let hash = sluice::store::audit::entry_hash(3, "t", "x", "note", "orders@1", "{}", &prev).hex();
+    let hash =
+        sluice::store::audit::entry_hash(3, "t", "x", "note", "orders:v1", "{}", &prev).hex();
     conn.execute(
         "INSERT INTO audit_log (seq, at, agent, action, subject, details, prev_hash, hash)
-         VALUES (3, 't', 'x', 'note', 'orders@1', '{}', ?1, ?2)",
+         VALUES (3, 't', 'x', 'note', 'orders:v1', '{}', ?1, ?2)",
         [&prev, &hash],
     )
     .unwrap();
@@ -455,10 +456,15 @@ fn an_edited_legacy_cell_change_row_is_named_with_what_the_versions_hold() {
         assert_named(
             &found,
             "cell_change",
-            "orders@2",
+            "orders:v2",
             "data row 1 column \"amount\"",
         );
-        assert_named(&found, "cell_change", "orders@2", "\" 12.50\" -> \"12.50\"");
+        assert_named(
+            &found,
+            "cell_change",
+            "orders:v2",
+            "\" 12.50\" -> \"12.50\"",
+        );
     }
     // Moved to another cell, whose values are not those.
     let s = legacy();
@@ -469,7 +475,7 @@ fn an_edited_legacy_cell_change_row_is_named_with_what_the_versions_hold() {
     assert_named(
         &found,
         "cell_change",
-        "orders@2",
+        "orders:v2",
         "data row 2 column \"amount\"",
     );
 }
@@ -482,7 +488,7 @@ fn a_deleted_legacy_cell_change_row_is_named_by_the_count_its_audit_entry_kept()
     assert_named(
         &found,
         "audit_mismatch",
-        "orders@2",
+        "orders:v2",
         "its step records 0 changed cells, the entry says 1",
     );
 }
@@ -495,7 +501,7 @@ fn a_deleted_legacy_drop_row_is_named_by_the_count_its_audit_entry_kept() {
     assert_named(
         &found,
         "audit_mismatch",
-        "orders@3",
+        "orders:v3",
         "its step records 0 dropped rows, the entry says 1",
     );
 }
@@ -516,7 +522,7 @@ fn rich_store() -> Sandbox {
          WO-3;  Quillby Cycle Mend;open;n/a\n",
     );
     s.ok(&[
-        "ingest",
+        "receive",
         "quillby.csv",
         "--as",
         "orders",
@@ -525,9 +531,9 @@ fn rich_store() -> Sandbox {
         "--why",
         "monthly export",
     ]);
-    s.ok(&["apply", "orders", "trim", "--why", "stray spaces"]);
+    s.ok(&["clean", "orders", "trim", "--why", "stray spaces"]);
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "drop",
         "status = 'cancelled'",
@@ -535,7 +541,7 @@ fn rich_store() -> Sandbox {
         "not revenue",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "rename",
         "shop=workshop",
@@ -543,7 +549,7 @@ fn rich_store() -> Sandbox {
         "one naming",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "number",
         "--columns",
@@ -558,15 +564,15 @@ fn rich_store() -> Sandbox {
         "rules.json",
         r#"{"rules": [{"rule": "unique", "columns": ["order_id"]}, {"rule": "not_blank", "columns": ["amount"]}, {"rule": "unique", "columns": ["status"]}]}"#,
     );
-    s.run(&["check", "orders", "--rules", "rules.json"]);
-    let cleaned = s.ok(&["cat", "orders"]);
+    s.run(&["inspect", "orders", "--rules", "rules.json"]);
+    let cleaned = s.ok(&["retrieve", "orders"]);
     s.file("fixed.csv", cleaned.replace("WO-3", "WO-33"));
     s.ok(&[
-        "ingest",
+        "receive",
         "fixed.csv",
         "--as",
         "orders",
-        "--from",
+        "--hand-edit-of",
         "orders",
         "--why",
         "typo",
@@ -581,14 +587,14 @@ fn settle(s: &Sandbox) -> Vec<u8> {
     let c = db(s);
     c.execute_batch("PRAGMA wal_checkpoint(TRUNCATE)").unwrap();
     drop(c);
-    std::fs::read(s.path().join(".sluice/lineage.db")).unwrap()
+    std::fs::read(s.path().join("sluice-store/lineage.db")).unwrap()
 }
 
 fn restore(s: &Sandbox, saved: &[u8]) {
     for tail in ["-wal", "-shm"] {
-        let _ = std::fs::remove_file(s.path().join(format!(".sluice/lineage.db{tail}")));
+        let _ = std::fs::remove_file(s.path().join(format!("sluice-store/lineage.db{tail}")));
     }
-    std::fs::write(s.path().join(".sluice/lineage.db"), saved).unwrap();
+    std::fs::write(s.path().join("sluice-store/lineage.db"), saved).unwrap();
 }
 
 /// The tables and columns of the database as it declares them (`PRAGMA table_info`), so that a
@@ -812,7 +818,7 @@ fn a_store_from_before_row_commitments_verifies_and_says_what_its_entries_cover(
     );
     let name = query_one(&s, "SELECT name FROM datasets ORDER BY id LIMIT 1");
     s.ok(&[
-        "apply",
+        "clean",
         &name,
         "case",
         "--columns",
@@ -844,7 +850,7 @@ fn a_store_from_before_row_commitments_verifies_and_says_what_its_entries_cover(
     // A check result added by hand to the old store: no entry commits to it.
     let s = legacy();
     s.ok(&[
-        "apply",
+        "clean",
         &name,
         "case",
         "--columns",
@@ -894,10 +900,10 @@ fn deep_verify_recomputes_row_indexes_and_profiles() {
     assert_eq!(r.code, 1);
     let found: Value = serde_json::from_str(&r.stdout).unwrap();
     let found = found["problems"].as_array().unwrap();
-    assert_named(found, "profile", "orders@2", "order_id");
+    assert_named(found, "profile", "orders:v2", "order_id");
 
     restore(&s, &saved);
-    // orders@1 and orders@2 have the same rows in other bytes (the trim changed cells).
+    // orders:v1 and orders:v2 have the same rows in other bytes (the trim changed cells).
     let other = query_one(&s, "SELECT row_index FROM versions WHERE id = 1");
     db(&s)
         .execute("UPDATE versions SET row_index = ?1 WHERE id = 2", [&other])
@@ -908,7 +914,7 @@ fn deep_verify_recomputes_row_indexes_and_profiles() {
     assert_named(
         found,
         "row_index",
-        "orders@2",
+        "orders:v2",
         "does not match the version's bytes",
     );
 }

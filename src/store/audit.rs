@@ -78,7 +78,7 @@ pub(super) fn append(
     };
     let mut details = details.clone();
     let Some(map) = details.as_object_mut() else {
-        return Err(ErrorKind::Database("audit details must be a JSON object".into()).into());
+        return Err(ErrorKind::Internal("audit details must be a JSON object".into()).into());
     };
     let mut rows = Vec::new();
     for sel in merge(journal) {
@@ -99,7 +99,7 @@ pub(super) fn append(
     let hash = entry_hash(
         seq,
         at,
-        &agent.identity,
+        &agent.identity(),
         action,
         subject,
         &details,
@@ -112,7 +112,7 @@ pub(super) fn append(
         params![
             seq as i64,
             at,
-            agent.identity,
+            agent.identity(),
             action,
             subject,
             details,
@@ -124,7 +124,7 @@ pub(super) fn append(
     Ok(AuditEntry {
         seq,
         at: at.to_string(),
-        agent: agent.identity.clone(),
+        agent: agent.identity(),
         action: action.to_string(),
         subject: subject.to_string(),
         details,
