@@ -380,7 +380,7 @@ fn malformed_missing_and_huge_rules_plans_and_tables_are_refused_with_positions(
         "missing-column-plan.json",
         b"{\"sluice_plan\": 1, \"inputs\": [{\"name\": \"o\", \"file\": \"o.csv\"}],\n \"steps\": [{\"on\": \"o\", \"apply\": {\"op\": \"trim\", \"columns\": [\"shop\"]}, \"why\": \"x\"}]}",
         &["run", "missing-column-plan.json"],
-        &["step 1 (trim on o)", "column \"shop\" is not in o:v1; its columns are: id, service"],
+        &["plan entry 1 (trim on o)", "column \"shop\" is not in o:v1; its columns are: id, service"],
     );
     refused(
         "twice.csv",
