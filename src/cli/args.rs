@@ -366,8 +366,8 @@ pub enum Command {
     /// Compare two versions: rows kept, added and removed, every changed cell, and added,
     /// removed, renamed or reordered columns
     #[command(
-        after_help = "Rows are paired by lineage when one version was made from the other by recorded steps, else by \
-        --key or the key declared on the dataset, else by order (a minimal edit script over row fingerprints). \
+        after_help = "Rows are paired by --key, else by the key declared on the dataset, else by order (a minimal edit \
+        script over row fingerprints); the first line says which. \
         Changed cells are listed as a table (row | key | column | before | after); the characters that changed are \
         wrapped in « and », and white space is made visible (space ·, tab →, no-break space ⍽, line break ↵).\n\n\
         Examples:\n  sluice compare quillby_orders:v1 quillby_orders:v2 --key order_id --limit 20\n  \
