@@ -50,6 +50,7 @@ impl InferredLineage {
         match &self.matched_by {
             MatchedBy::Key(k) => json!({"diff": "key", "key": k}),
             MatchedBy::Order => json!({"diff": "order"}),
+            MatchedBy::Lineage { ancestor, .. } => json!({"diff": "lineage", "through": ancestor}),
         }
     }
 }

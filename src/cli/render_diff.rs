@@ -96,12 +96,48 @@ fn plural(n: u64, one: &str, many: &str) -> String {
 }
 
 fn summary(out: &mut impl Write, d: &Diff, colour: bool) -> io::Result<()> {
-    let how = match &d.matched_by {
-        MatchedBy::Key(k) => format!("rows matched by key {}", k.join(", ")),
-        MatchedBy::Order => "rows matched by order".to_string(),
-    };
+    let how = d.matched_by.describe();
     let (b, r) = if colour { (BOLD, RESET) } else { ("", "") };
     writeln!(out, "{b}{} → {}{r}, {how}", d.from.label(), d.to.label())?;
+    if let Some(dup) = &d.duplicates {
+        let first: Vec<String> = dup
+            .first
+            .iter()
+            .map(|g| {
+                let rows = |rs: &[u64], n: u64| {
+                    let mut t: Vec<String> = rs.iter().map(|r| count(*r)).collect();
+                    if n > rs.len() as u64 {
+                        t.push(format!("and {} more", count(n - rs.len() as u64)));
+                    }
+                    if t.is_empty() {
+                        "-".to_string()
+                    } else {
+                        t.join(", ")
+                    }
+                };
+                format!(
+                    "\"{}\" rows {} → {}",
+                    g.key.join(", "),
+                    rows(&g.from_rows, g.n_from),
+                    rows(&g.to_rows, g.n_to)
+                )
+            })
+            .collect();
+        writeln!(
+            out,
+            "shared   {} shared by several rows ({} before, {} after), paired within each group by {}: {}{}",
+            plural(dup.groups, "key value is", "key values are"),
+            count(dup.rows_from),
+            count(dup.rows_to),
+            dup.paired_by,
+            first.join("; "),
+            if dup.groups > dup.first.len() as u64 {
+                format!("; and {} more", count(dup.groups - dup.first.len() as u64))
+            } else {
+                String::new()
+            }
+        )?;
+    }
     writeln!(
         out,
         "rows     {} → {}: {} changed, {} removed, {} added, {} unchanged",
@@ -180,10 +216,7 @@ fn change(out: &mut impl Write, d: &Diff, c: &Change, colour: bool) -> io::Resul
     let key = d
         .key_of(c)
         .map(|k| {
-            let names = match &d.matched_by {
-                MatchedBy::Key(k) => k.join(", "),
-                MatchedBy::Order => String::new(),
-            };
+            let names = d.matched_by.key().map(|k| k.join(", ")).unwrap_or_default();
             format!("  {names} {}", k.join(", "))
         })
         .unwrap_or_default();
@@ -331,6 +364,12 @@ struct JsonDiff<'a> {
     from: JsonVersion<'a>,
     to: JsonVersion<'a>,
     matched_by: &'static str,
+    /// How the rows were paired, in a sentence.
+    pairing: String,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    lineage_steps: Option<&'a Vec<i64>>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    duplicates: Option<&'a sluice::diff::DuplicateKeys>,
     key: Option<&'a [String]>,
     rows: JsonRows,
     alignment: Option<sluice::diff::Alignment>,
@@ -388,14 +427,14 @@ pub fn json(out: &mut impl Write, d: &Diff, how: &How) -> io::Result<()> {
             version: d.to.label(),
             hash: &d.to.hash,
         },
-        matched_by: match d.matched_by {
-            MatchedBy::Key(_) => "key",
-            MatchedBy::Order => "order",
+        matched_by: d.matched_by.method(),
+        pairing: d.matched_by.describe(),
+        lineage_steps: match &d.matched_by {
+            MatchedBy::Lineage { steps, .. } => Some(steps),
+            _ => None,
         },
-        key: match &d.matched_by {
-            MatchedBy::Key(k) => Some(k),
-            MatchedBy::Order => None,
-        },
+        duplicates: d.duplicates.as_ref(),
+        key: d.matched_by.key(),
         rows: JsonRows {
             from: d.from.n_rows,
             to: d.to.n_rows,
