@@ -209,3 +209,160 @@ fn a_keyed_diff_on_a_column_that_is_not_unique_shows_a_count_and_the_first_few_r
     let d = s.json(&["diff", "a@1", "b@1", "--key", "shop", "--json"]);
     assert_eq!(d["rows"]["changed"], 1);
 }
+
+/// Raw orders where order 1 was exported twice in different case; a plan upper-cases shop,
+/// drops exact duplicates and checks, as a gate, that order ids are unique; then a clerk fixes
+/// the kept order 1's shop by hand to "Ferry Lane".
+fn case_dedupe_gate_and_hand_edit() -> Sandbox {
+    let s = Sandbox::with_store();
+    s.file(
+        "o.csv",
+        "order_id,shop,amount\n1,ferry lane,10\n1,Ferry Lane,10\n2,Mill Row,5\n",
+    );
+    s.file(
+        "plan.json",
+        r#"{"sluice_plan": 1,
+        "inputs": [{"name": "o", "file": "o.csv"}],
+        "steps": [
+          {"on": "o", "apply": {"op": "case", "columns": ["shop"], "to": "upper"}, "why": "one spelling"},
+          {"on": "o", "apply": {"op": "dedupe"}, "why": "exported twice"},
+          {"on": "o", "check": [{"rule": "unique", "columns": ["order_id"]}], "gate": true}
+        ]}"#,
+    );
+    s.ok(&["run", "plan.json"]);
+    s.file(
+        "edit.csv",
+        "order_id,shop,amount\n1,Ferry Lane,10\n2,MILL ROW,5\n",
+    );
+    s.ok(&[
+        "ingest",
+        "edit.csv",
+        "--as",
+        "o",
+        "--from",
+        "o",
+        "--why",
+        "the shop's own spelling",
+    ]);
+    s
+}
+
+// Before: taking out the case step silently brought back the duplicate the dedupe had removed
+// (the dedupe no longer saw two equal rows), the hand edit made the kept row equal to its
+// returning twin, and the unique-id gate recorded on o@3 was not run again.
+#[test]
+fn a_revert_runs_the_recorded_gate_again_and_refuses_a_hand_edited_row_appearing_twice() {
+    let s = case_dedupe_gate_and_hand_edit();
+    let before = s.snapshot();
+    let r = s.run(&[
+        "revert",
+        "o@2",
+        "--why",
+        "keep the shops' own spelling",
+        "--json",
+    ]);
+    assert_eq!(r.code, 1, "refused:\n{}\n{}", r.stdout, r.stderr);
+    let v: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
+    let kinds: Vec<&str> = v["conflicts"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|c| c["kind"].as_str().unwrap())
+        .collect();
+    assert!(kinds.contains(&"gate_fails"), "{kinds:?}");
+    assert!(kinds.contains(&"edited_row_twice"), "{kinds:?}");
+    assert_eq!(s.snapshot(), before, "a refused revert records nothing");
+
+    let forced = s.json(&[
+        "revert",
+        "o@2",
+        "--why",
+        "keep the shops' own spelling",
+        "--force",
+        "--json",
+    ]);
+    let check = &forced["report"]["checks"][0];
+    assert_eq!(check["original"], "o@3");
+    assert_eq!(check["gate"], true);
+    assert_eq!(check["passed"], false);
+    assert_eq!(check["first_failing"], serde_json::json!([2]));
+    // The dedupe changed nothing on the new history, so the revert's own version stands for
+    // o@3 and keeps the check result.
+    assert_eq!(check["version"], "o@5");
+    let about = s.json(&["show", "o@5", "--json"]);
+    let checks = about["checks"].as_array().expect("checks listed");
+    assert_eq!(checks.len(), 1, "{about}");
+    assert_eq!(checks[0]["passed"], false);
+    let forced_kinds: Vec<&str> = forced["report"]["forced"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|c| c["kind"].as_str().unwrap())
+        .collect();
+    assert!(
+        forced_kinds.contains(&"edited_row_twice"),
+        "{forced_kinds:?}"
+    );
+}
+
+#[test]
+fn a_forced_revert_prints_the_checks_it_ran_again() {
+    let s = case_dedupe_gate_and_hand_edit();
+    let out = s.ok(&[
+        "revert",
+        "o@2",
+        "--why",
+        "keep the shops' own spelling",
+        "--force",
+    ]);
+    assert_contains(&out, "checks recorded on the old history, run again:");
+    assert_contains(&out, "o@5 (as on o@3, a gate)");
+    assert_contains(&out, "fails: 1 row (first: 2)");
+}
+
+// Before: a hand edit re-applied by a revert was recorded as exact lineage although the
+// original's was inferred by a diff.
+#[test]
+fn a_hand_edit_re_applied_by_a_revert_keeps_its_inferred_lineage() {
+    let s = Sandbox::with_store();
+    s.file(
+        "o.csv",
+        "order_id,shop,amount\n1, Ferry Lane ,10\n2,Mill Row,5\n",
+    );
+    s.ok(&["ingest", "o.csv", "--as", "o"]);
+    s.ok(&["apply", "o", "trim", "--why", "padding"]);
+    s.ok(&[
+        "apply",
+        "o",
+        "case",
+        "--columns",
+        "shop",
+        "--to",
+        "upper",
+        "--why",
+        "one spelling",
+    ]);
+    s.file(
+        "edit.csv",
+        "order_id,shop,amount\n1,FERRY LANE,12\n2,MILL ROW,5\n",
+    );
+    s.ok(&[
+        "ingest",
+        "edit.csv",
+        "--as",
+        "o",
+        "--from",
+        "o",
+        "--why",
+        "till rounded",
+    ]);
+    s.ok(&["revert", "o@3", "--why", "keep the case"]);
+    let log = s.json(&["log", "o", "--json"]);
+    let steps = log.as_array().unwrap();
+    let reapplied = steps
+        .iter()
+        .map(|x| &x["step"])
+        .find(|x| x["kind"] == "hand_edit" && !x["repeats_step"].is_null())
+        .expect("the re-applied hand edit");
+    assert_eq!(reapplied["lineage"], "inferred");
+}
