@@ -366,3 +366,55 @@ fn a_hand_edit_re_applied_by_a_revert_keeps_its_inferred_lineage() {
         .expect("the re-applied hand edit");
     assert_eq!(reapplied["lineage"], "inferred");
 }
+
+// Before: `explain --limit 3` printed 244 lines, one per dropped duplicate, because each
+// duplicate's reason named the row it duplicated. Now one line per reason, with a count and the
+// first rows, and at most `--limit` reasons.
+#[test]
+fn explain_groups_dropped_duplicates_into_one_line_and_honours_the_limit() {
+    let mut t = String::from("shop,amount\n");
+    // 40 distinct orders of one shop, each exported twice, and 5 test orders.
+    for i in 0..40 {
+        t.push_str(&format!("Ferry Lane,{i}\nFerry Lane,{i}\n"));
+    }
+    for i in 0..5 {
+        t.push_str(&format!("Ferry Lane,-{}\n", i + 1));
+    }
+    let s = Sandbox::with_store();
+    s.file("o.csv", &t);
+    s.ok(&["ingest", "o.csv", "--as", "o"]);
+    s.ok(&["apply", "o", "dedupe", "--why", "exported twice"]);
+    s.ok(&["apply", "o", "drop", "amount < 0", "--why", "test orders"]);
+    s.ok(&[
+        "apply",
+        "o",
+        "summarize",
+        "--by",
+        "shop",
+        "--as",
+        "by_shop",
+        "--why",
+        "count",
+    ]);
+    let text = s.ok(&[
+        "explain", "by_shop", "--row", "1", "--column", "count", "--limit", "3",
+    ]);
+    assert!(text.lines().count() <= 16, "{text}");
+    assert_contains(
+        &text,
+        "dropped 40 rows of this group: duplicate of an earlier row (the whole row) (data rows 2 (of 1), 4 (of 3), 6 (of 5), ...",
+    );
+    assert_contains(&text, "dropped 5 rows of this group: ");
+    let e = s.json(&[
+        "explain", "by_shop", "--row", "1", "--column", "count", "--limit", "3", "--json",
+    ]);
+    assert_eq!(e["contributing"]["rows"], 40);
+    let dedupe = e["upstream"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|u| u["operation"] == "dedupe")
+        .unwrap();
+    assert_eq!(dedupe["dropped"].as_array().unwrap().len(), 1);
+    assert_eq!(dedupe["dropped"][0]["rows"], 40);
+}
