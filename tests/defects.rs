@@ -418,3 +418,59 @@ fn explain_groups_dropped_duplicates_into_one_line_and_honours_the_limit() {
     assert_eq!(dedupe["dropped"].as_array().unwrap().len(), 1);
     assert_eq!(dedupe["dropped"][0]["rows"], 40);
 }
+
+// Before: amounts such as "335,00 USD" failed with advice to keep or blank them, although
+// `--decimal-comma` reads every one. Decimal commas are common practice in much of Europe.
+#[test]
+fn number_suggests_the_decimal_comma_when_it_reads_the_failing_values() {
+    let s = Sandbox::with_store();
+    s.file(
+        "o.csv",
+        "order_id,amount\n1,\"335,00 USD\"\n2,\"12,50 EUR\"\n",
+    );
+    s.ok(&["ingest", "o.csv", "--as", "o"]);
+    let err = s.fails(
+        1,
+        &[
+            "apply",
+            "o",
+            "number",
+            "--columns",
+            "amount",
+            "--why",
+            "text",
+        ],
+    );
+    assert_contains(
+        &err,
+        "all of them read as amounts written with a decimal comma: retry with --decimal-comma (`sluice clean o number --columns amount --decimal-comma`",
+    );
+    assert!(!err.contains("--on-error keep"), "{err}");
+    s.ok(&[
+        "apply",
+        "o",
+        "number",
+        "--columns",
+        "amount",
+        "--decimal-comma",
+        "--why",
+        "text",
+    ]);
+    assert_eq!(s.ok(&["cat", "o"]), "order_id,amount\n1,335.00\n2,12.50\n");
+    // Values neither mark reads keep the old advice.
+    s.file("p.csv", "order_id,amount\n1,twelve\n");
+    s.ok(&["ingest", "p.csv", "--as", "p"]);
+    let err = s.fails(
+        1,
+        &[
+            "apply",
+            "p",
+            "number",
+            "--columns",
+            "amount",
+            "--why",
+            "text",
+        ],
+    );
+    assert_contains(&err, "--on-error keep");
+}
