@@ -474,3 +474,54 @@ fn number_suggests_the_decimal_comma_when_it_reads_the_failing_values() {
     );
     assert_contains(&err, "--on-error keep");
 }
+
+// Before: a header-only file was recorded with 0 rows and no word.
+#[test]
+fn a_header_only_file_is_recorded_with_a_warning() {
+    let s = Sandbox::with_store();
+    s.file("o.csv", "order_id,shop,amount\n");
+    let r = s.run(&["ingest", "o.csv", "--as", "o"]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert_contains(
+        &format!("{}{}", r.stdout, r.stderr),
+        "o.csv has a header and no data rows: recorded as an empty table of 3 columns",
+    );
+}
+
+// Before: a tab-separated text file named .xls was recorded without a word, and a legacy binary
+// workbook got a message about NUL bytes and UTF-16. The Compound File signature is the one the
+// format's specification gives ([MS-CFB] 2.2: D0 CF 11 E0 A1 B1 1A E1).
+#[test]
+fn a_legacy_xls_workbook_is_refused_by_name_and_a_text_file_named_xls_is_noted() {
+    let s = Sandbox::with_store();
+    let mut ole = vec![0xD0, 0xCF, 0x11, 0xE0, 0xA1, 0xB1, 0x1A, 0xE1];
+    ole.extend(std::iter::repeat_n(0u8, 504));
+    s.file("old.xls", &ole);
+    let before = s.snapshot();
+    let err = s.fails(2, &["ingest", "old.xls", "--as", "old"]);
+    assert_contains(&err, "old.xls is a legacy binary Excel workbook");
+    assert_contains(&err, "save it as .xlsx");
+    assert!(!err.contains("UTF-16"), "{err}");
+    assert_eq!(s.snapshot(), before);
+
+    s.file("till.xls", "order_id\tshop\n1\tFerry Lane\n");
+    let r = s.run(&["ingest", "till.xls", "--as", "till"]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert_contains(
+        &format!("{}{}", r.stdout, r.stderr),
+        "till.xls is named .xls but holds text, not a workbook: it was read as delimited text",
+    );
+    let shown = s.json(&["show", "till", "--json"]);
+    assert_eq!(
+        shown["version"]["header"],
+        serde_json::json!(["order_id", "shop"])
+    );
+    assert_eq!(shown["version"]["n_rows"], 1);
+
+    s.file(
+        "page.xls",
+        "<html><body><table><tr><td>1</td></tr></table></body></html>\n",
+    );
+    let err = s.fails(2, &["ingest", "page.xls", "--as", "page"]);
+    assert_contains(&err, "page.xls is named .xls but holds a web page or XML");
+}
