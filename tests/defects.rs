@@ -525,3 +525,20 @@ fn a_legacy_xls_workbook_is_refused_by_name_and_a_text_file_named_xls_is_noted()
     let err = s.fails(2, &["ingest", "page.xls", "--as", "page"]);
     assert_contains(&err, "page.xls is named .xls but holds a web page or XML");
 }
+
+// Before: a report written into a folder that does not exist named the internal temporary file
+// (".r.html.sluice-part"). Now the message names the folder given.
+#[test]
+fn a_report_into_a_missing_folder_names_that_folder() {
+    let s = Sandbox::with_penguins();
+    let before = s.snapshot();
+    let err = s.fails(2, &["report", "penguins", "-o", "missing/r.html"]);
+    assert_contains(
+        &err,
+        "cannot write missing/r.html: the folder missing does not exist",
+    );
+    assert!(!err.contains("sluice-part"), "{err}");
+    assert_eq!(s.snapshot(), before, "nothing recorded");
+    let err = s.fails(2, &["cat", "penguins", "-o", "missing/p.csv"]);
+    assert!(!err.contains("sluice-part"), "{err}");
+}

@@ -1182,10 +1182,11 @@ fn write_file_recorded<T>(
     let name = path
         .file_name()
         .ok_or_else(|| anyhow!("{}: not a file name; give -o a file path", path.display()))?;
+    folder_exists(path, dir)?;
     let tmp = dir.join(format!(".{}.sluice-part", name.to_string_lossy()));
     let written = std::fs::File::create(&tmp)
         .and_then(|mut f| f.write_all(bytes).and_then(|_| f.sync_all()))
-        .with_context(|| format!("cannot write {}", tmp.display()));
+        .with_context(|| format!("cannot write {}", path.display()));
     if let Err(e) = written {
         let _ = std::fs::remove_file(&tmp);
         return Err(e);
@@ -1205,6 +1206,19 @@ fn write_file_recorded<T>(
         )
     })?;
     Ok(recorded)
+}
+
+/// The folder a file the user named goes into must exist; the message names that folder, not
+/// the temporary file written beside the target.
+fn folder_exists(path: &Path, dir: &Path) -> anyhow::Result<()> {
+    if dir.is_dir() {
+        return Ok(());
+    }
+    Err(anyhow!(sluice::Error::usage(format!(
+        "cannot write {}: the folder {} does not exist; create it first or give another path",
+        path.display(),
+        dir.display()
+    ))))
 }
 
 /// Reads a file the user named (a plan, a rules file); a failure names the file, says what is
@@ -1235,9 +1249,10 @@ fn write_file_atomically(
     let name = path
         .file_name()
         .ok_or_else(|| anyhow!("{}: not a file name", path.display()))?;
+    folder_exists(path, dir)?;
     let tmp = dir.join(format!(".{}.sluice-part", name.to_string_lossy()));
     let mut f =
-        std::fs::File::create(&tmp).with_context(|| format!("cannot create {}", tmp.display()))?;
+        std::fs::File::create(&tmp).with_context(|| format!("cannot write {}", path.display()))?;
     let result = fill(&mut f).and_then(|_| f.sync_all().map_err(Into::into));
     drop(f);
     if let Err(e) = result {
