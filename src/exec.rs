@@ -26,6 +26,7 @@ use serde_json::json;
 
 use crate::clock;
 use crate::code::{self, CodeState};
+use crate::diff::KeyChoice;
 use crate::error::{Error, ErrorKind, Result};
 use crate::hash::hash_reader;
 use crate::inferred::{self, RecordedSuccessor};
@@ -48,6 +49,10 @@ pub struct ExecOptions {
     pub cwd: PathBuf,
     pub reason: String,
     pub agent: Agent,
+    /// Match each output's rows to its input's by order (a diff without a key) even when a key
+    /// is declared: for a command that rewrites key values, whose rows a diff by key would all
+    /// report as removed and added. The step's `params.inferred_by` says which matching was used.
+    pub match_by_order: bool,
 }
 
 /// Why a run recorded nothing.
@@ -462,12 +467,17 @@ fn record_outputs(
             .filter(|(i, _)| *i != b)
             .map(|(_, (_, v))| v.clone())
             .collect();
-        successors.push(inferred::infer(
+        successors.push(inferred::infer_matching(
             store,
             prepared,
             from,
             others,
             "removed by the command (inferred by diff)",
+            if opts.match_by_order {
+                KeyChoice::Unkeyed
+            } else {
+                KeyChoice::Declared
+            },
         )?);
     }
     let recorded = inferred::record(

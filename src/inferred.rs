@@ -38,6 +38,9 @@ pub struct InferredLineage {
     pub columns_removed: Vec<String>,
     /// Renamed columns: (new name, old name).
     pub renamed: Vec<(String, String)>,
+    /// Rows were matched by order because it was asked for (`exec --match-by-order`), though a
+    /// key is declared.
+    pub order_asked: bool,
 }
 
 impl InferredLineage {
@@ -49,6 +52,7 @@ impl InferredLineage {
     pub fn inferred_by(&self) -> serde_json::Value {
         match &self.matched_by {
             MatchedBy::Key(k) => json!({"diff": "key", "key": k}),
+            MatchedBy::Order if self.order_asked => json!({"diff": "order", "asked": true}),
             MatchedBy::Order => json!({"diff": "order"}),
             MatchedBy::Lineage { ancestor, .. } => json!({"diff": "lineage", "through": ancestor}),
         }
@@ -70,20 +74,34 @@ pub struct Successor {
 /// `drop_reason` is the reason given to each removed row.
 pub fn infer(
     store: &Store,
-    mut prepared: Box<PreparedIngest>,
+    prepared: Box<PreparedIngest>,
     from: Version,
     others: Vec<Version>,
     drop_reason: &str,
 ) -> Result<Successor> {
-    let to = prepared.draft(store)?;
-    let d = diff::diff_versions(
+    infer_matching(
         store,
-        &from,
-        &to,
-        &DiffOptions {
-            key: KeyChoice::Declared,
-        },
-    )?;
+        prepared,
+        from,
+        others,
+        drop_reason,
+        KeyChoice::Declared,
+    )
+}
+
+/// [`infer`], with the rows matched as `key` says (`KeyChoice::Unkeyed`: by order even when a
+/// key is declared, for outside work that rewrites key values).
+pub fn infer_matching(
+    store: &Store,
+    mut prepared: Box<PreparedIngest>,
+    from: Version,
+    others: Vec<Version>,
+    drop_reason: &str,
+    key: KeyChoice,
+) -> Result<Successor> {
+    let asked_order = key == KeyChoice::Unkeyed;
+    let to = prepared.draft(store)?;
+    let d = diff::diff_versions(store, &from, &to, &DiffOptions { key })?;
     let mut runs: Vec<RowRun> = Vec::with_capacity(d.pairing.runs.len());
     for r in &d.pairing.runs {
         // Changed and unchanged stretches that continue each other are one run of the row map.
@@ -155,6 +173,7 @@ pub fn infer(
             .map(|(old, new)| (new.clone(), old.clone()))
             .collect(),
         matched_by: d.matched_by,
+        order_asked: asked_order,
     };
     Ok(Successor {
         prepared,

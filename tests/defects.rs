@@ -542,3 +542,47 @@ fn a_report_into_a_missing_folder_names_that_folder() {
     let err = s.fails(2, &["cat", "penguins", "-o", "missing/p.csv"]);
     assert!(!err.contains("sluice-part"), "{err}");
 }
+
+// Before: an outside command that rewrote a declared key column lost all row lineage (every row
+// removed and added again), with no way to say the rows are the same. `--match-by-order`
+// matches them by order, and the step records that it did.
+#[test]
+fn an_outside_command_that_rewrites_the_key_can_be_matched_by_order() {
+    let s = Sandbox::with_store();
+    s.file(
+        "o.csv",
+        "order_id,shop,amount\nq-1,Ferry Lane,10\nq-2,Mill Row,12\nq-3,Ferry Lane,7\n",
+    );
+    s.ok(&["ingest", "o.csv", "--as", "o", "--key", "order_id"]);
+    let run = |extra: &[&str], out: &str, prefix: &str| {
+        let target = "{out:o}";
+        let script = format!("sed 's/^q-/{prefix}-/' {{o}} > {target}");
+        let mut args = vec!["exec", "--input", "o=o@1", "--output"];
+        let output = format!("o={out}");
+        args.push(&output);
+        args.extend_from_slice(&["--why", "till prefix"]);
+        args.extend_from_slice(extra);
+        args.extend_from_slice(&["--", "sh", "-c", &script]);
+        s.ok(&args)
+    };
+    run(&[], "by_key.csv", "Q3");
+    let by_key = s.json(&["show", "o@2", "--json"]);
+    assert_eq!(by_key["step"]["params"]["inferred_by"]["diff"], "key");
+    assert_eq!(by_key["step"]["rows_in"], 3);
+    let d = s.json(&["diff", "o@1", "o@2", "--json"]);
+    assert_eq!(d["rows"]["removed"], 3, "by key, no row is kept");
+
+    run(&["--match-by-order"], "by_order.csv", "FL");
+    let by_order = s.json(&["show", "o@3", "--json"]);
+    assert_eq!(
+        by_order["step"]["params"]["inferred_by"],
+        serde_json::json!({"diff": "order", "asked": true})
+    );
+    // The lineage now pairs the rows: each order kept, its id changed.
+    let d = s.json(&["diff", "o@1", "o@3", "--json"]);
+    assert_eq!(d["matched_by"], "lineage");
+    assert_eq!(d["rows"]["changed"], 3);
+    assert_eq!(d["rows"]["removed"], 0);
+    let t = s.json(&["trace", "o@3", "--row", "2", "--column", "shop", "--json"]);
+    assert_eq!(t["end"]["path"], "o.csv");
+}

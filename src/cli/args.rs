@@ -470,6 +470,11 @@ pub struct ExecArgs {
     #[arg(long, value_name = "TEXT")]
     pub why: String,
 
+    /// Match the output's rows to the input's by order, not by the declared key (for a command
+    /// that rewrites key values); the step records which matching was used
+    #[arg(long = "match-by-order")]
+    pub match_by_order: bool,
+
     /// The command and its arguments, after `--`
     #[arg(last = true, required = true, value_name = "COMMAND")]
     pub command: Vec<String>,

@@ -710,6 +710,7 @@ fn exec_options(
         cwd: cwd.to_path_buf(),
         reason: a.why.clone(),
         agent,
+        match_by_order: a.match_by_order,
     })
 }
 

@@ -55,7 +55,8 @@ pub enum KeyChoice {
     /// These key columns.
     Columns(Vec<String>),
     /// Without a key, even when one is declared: by lineage when the versions are related,
-    /// else by order.
+    /// else by order, and then without the declared key columns guarding the pairing (for
+    /// outside work that rewrites key values, `exec --match-by-order`).
     Unkeyed,
 }
 
@@ -361,9 +362,9 @@ pub fn diff_versions(store: &Store, a: &Version, b: &Version, opts: &DiffOptions
             }
             None => aligned::run(store, a, b, layout, &history_key_columns(store, a, b)?),
         },
-        (KeyChoice::Unkeyed, None) => {
-            aligned::run(store, a, b, layout, &history_key_columns(store, a, b)?)
-        }
+        // Asked for explicitly (outside work that rewrites key values): no key column
+        // guards the pairing either.
+        (KeyChoice::Unkeyed, None) => aligned::run(store, a, b, layout, &[]),
     }
 }
 
