@@ -203,9 +203,15 @@ pub fn record(
     kind: StepKind,
     code: Option<&serde_json::Value>,
     started_at: &str,
+    blobs: &[(String, u64)],
 ) -> Result<Vec<RecordedSuccessor>> {
     let store_dir = store.dir().to_path_buf();
     let ids = store.write(|tx| {
+        // Objects the step's record names besides its versions (the files an outside
+        // command's arguments named).
+        for (hash, n) in blobs {
+            tx.insert_object(hash, *n, "blob", started_at)?;
+        }
         let mut ids = Vec::with_capacity(successors.len());
         for s in successors.iter_mut() {
             let mut inputs = vec![(s.from.id, "input")];
@@ -289,7 +295,7 @@ pub fn ingest_hand_edit_from(
         Vec::new(),
         "removed by hand (inferred by diff)",
     )?];
-    let mut recorded = record(store, &mut s, StepKind::HandEdit, None, &started_at)?;
+    let mut recorded = record(store, &mut s, StepKind::HandEdit, None, &started_at, &[])?;
     match recorded.pop() {
         Some(r) => Ok(HandEditOutcome::Recorded {
             recorded: Box::new(r),

@@ -586,3 +586,84 @@ fn an_outside_command_that_rewrites_the_key_can_be_matched_by_order() {
     let t = s.json(&["trace", "o@3", "--row", "2", "--column", "shop", "--json"]);
     assert_eq!(t["end"]["path"], "o.csv");
 }
+
+fn git(dir: &std::path::Path, args: &[&str]) -> String {
+    let out = std::process::Command::new("git")
+        .args(args)
+        .current_dir(dir)
+        .output()
+        .expect("run git");
+    assert!(
+        out.status.success(),
+        "git {}: {}",
+        args.join(" "),
+        String::from_utf8_lossy(&out.stderr)
+    );
+    String::from_utf8_lossy(&out.stdout).trim().to_string()
+}
+
+// Before: the code state of an outside command said "clean" at the repository's commit although
+// the script it ran was untracked (or ignored), so the commit did not hold the code that ran.
+// Now the files its command line names are stored with the step and their git state recorded;
+// `git status --porcelain --ignored` is the outside reference for that state.
+#[test]
+fn an_untracked_or_ignored_script_is_recorded_with_its_bytes_and_replayed_from_them() {
+    let s = Sandbox::with_store();
+    let dir = s.path();
+    git(dir, &["init", "-q"]);
+    git(dir, &["config", "user.name", "Robin Example"]);
+    git(dir, &["config", "user.email", "robin@example.org"]);
+    s.file(".gitignore", "*.local\n");
+    s.file("NOTES.txt", "how the orders are cleaned\n");
+    git(dir, &["add", ".gitignore", "NOTES.txt"]);
+    git(dir, &["commit", "-q", "-m", "notes"]);
+    s.file("o.csv", "order_id,shop\n1,ferry lane\n2,mill row\n");
+    s.ok(&["ingest", "o.csv", "--as", "o"]);
+    let script = "tr a-z A-Z < \"$1\" > \"$2\"\n";
+    s.file("clean.sh", script);
+    s.file("settings.local", "upper\n");
+    let status = git(dir, &["status", "--porcelain", "--ignored"]);
+    assert_contains(&status, "?? clean.sh");
+    assert_contains(&status, "!! settings.local");
+    s.ok(&[
+        "exec",
+        "--input",
+        "o",
+        "--output",
+        "o=out.csv",
+        "--why",
+        "upper case",
+        "--",
+        "sh",
+        "clean.sh",
+        "{o}",
+        "{out:o}",
+        "settings.local",
+    ]);
+    let shown = s.json(&["show", "o@2", "--json"]);
+    let code = &shown["step"]["code"];
+    assert_eq!(code["git"]["dirty"], true, "{code}");
+    assert_eq!(code["git"]["untracked"], serde_json::json!(["clean.sh"]));
+    assert_eq!(
+        code["git"]["ignored"],
+        serde_json::json!(["settings.local"])
+    );
+    let files = code["files"].as_array().unwrap();
+    assert_eq!(files[0]["path"], "clean.sh");
+    assert_eq!(files[0]["git"], "untracked");
+    assert_eq!(
+        files[0]["hash"],
+        blake3::hash(script.as_bytes()).to_hex().to_string()
+    );
+    assert_eq!(files[1]["git"], "ignored");
+    assert_contains(&s.ok(&["show", "o@2"]), "clean.sh (untracked)");
+    assert_contains(&s.ok(&["verify"]), "intact");
+
+    // The script changes on disk afterwards; a replay runs the recorded bytes and so gives the
+    // recorded output again.
+    s.file("clean.sh", "tr a-z x < \"$1\" > \"$2\"\n");
+    let out = s.ok(&["replay", "o@2", "--allow-exec"]);
+    assert_contains(&out, "run with the recorded bytes of clean.sh");
+    let r = s.json(&["replay", "o@2", "--allow-exec", "--json"]);
+    assert_eq!(r["reproduced"], true, "{r}");
+}
