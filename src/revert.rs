@@ -1267,7 +1267,9 @@ fn recheck(
                 serde_json::from_str(&text).unwrap_or(serde_json::Value::Null);
             let result = match crate::checks::evaluate(store, new, std::slice::from_ref(&rule)) {
                 Ok(mut r) => r.pop(),
-                // A column the rule names is gone with the reverted step.
+                // A column the rule names is gone with the reverted step: a gate that cannot
+                // run cannot pass; a plain check is left out.
+                Err(_) if !gate => continue,
                 Err(e) => {
                     conflicts.push(Conflict {
                         step: *step,
@@ -1276,7 +1278,7 @@ fn recheck(
                         row: None,
                         column: None,
                         detail: format!(
-                            "the check {text} recorded on {} cannot run on the new history: {e}",
+                            "the check {text}, a gate on {}, cannot run on the new history: {e}",
                             old.label()
                         ),
                         when_forced: "the check is left out".into(),
