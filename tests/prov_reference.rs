@@ -77,12 +77,14 @@ fn the_prov_library_reads_the_demo_export_and_counts_what_the_store_holds() {
     let s = Sandbox::with_demo();
     let python = reference_python();
     let script = concat!(env!("CARGO_MANIFEST_DIR"), "/tests/reference/prov_check.py");
-    // A revert as well, so that its step and the steps it applied again are exported too.
+    // A revert as well, so that its step and the steps it applied again are exported too
+    // (forced: the test orders it brings back fail the plan's status gate, which it runs again).
     s.ok(&[
         "revert",
         "all_orders@5",
         "--why",
         "test orders are kept for the training report",
+        "--force",
     ]);
     let log = s.json(&["log", "--json"]);
     // reviewed_orders@2 is the end of the demo's longest line: intakes of three exports and two
