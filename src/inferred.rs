@@ -48,6 +48,21 @@ impl InferredLineage {
         self.changed_by_column.iter().map(|c| c.1).sum()
     }
 
+    /// Whether matching by key kept no row although rows were removed and added: what outside
+    /// work that rewrote the key values looks like. The key columns, if so.
+    pub fn key_rewritten(&self) -> Option<&[String]> {
+        match &self.matched_by {
+            MatchedBy::Key(k)
+                if self.n_unchanged + self.n_changed_rows == 0
+                    && self.n_removed > 0
+                    && self.n_added > 0 =>
+            {
+                Some(k)
+            }
+            _ => None,
+        }
+    }
+
     /// How rows were matched, as recorded in the step's parameters.
     pub fn inferred_by(&self) -> serde_json::Value {
         match &self.matched_by {

@@ -565,7 +565,11 @@ fn an_outside_command_that_rewrites_the_key_can_be_matched_by_order() {
         args.extend_from_slice(&["--", "sh", "-c", &script]);
         s.ok(&args)
     };
-    run(&[], "by_key.csv", "Q3");
+    let out = run(&[], "by_key.csv", "Q3");
+    assert_contains(
+        &out,
+        "no row kept its key order_id: if the command rewrote the key values, run it again matching rows by order",
+    );
     let by_key = s.json(&["show", "o@2", "--json"]);
     assert_eq!(by_key["step"]["params"]["inferred_by"]["diff"], "key");
     assert_eq!(by_key["step"]["rows_in"], 3);

@@ -390,6 +390,13 @@ pub fn exec_recorded(
             shape(&r.version)
         )?;
         writeln!(out, "  {}", inferred_summary(&r.lineage))?;
+        if let Some(k) = r.lineage.key_rewritten() {
+            writeln!(
+                out,
+                "  no row kept its key {}: if the command rewrote the key values, run it again matching rows by order (`sluice capture ... --match-by-order`)",
+                k.join(", ")
+            )?;
+        }
     }
     for v in unchanged {
         writeln!(
