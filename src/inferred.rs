@@ -38,7 +38,7 @@ pub struct InferredLineage {
     pub columns_removed: Vec<String>,
     /// Renamed columns: (new name, old name).
     pub renamed: Vec<(String, String)>,
-    /// Rows were matched by order because it was asked for (`exec --match-by-order`), though a
+    /// Rows were matched by order because it was asked for (`capture --match-by-order`), though a
     /// key is declared.
     pub order_asked: bool,
 }
@@ -141,7 +141,7 @@ pub fn infer_matching(
             .iter()
             .position(|h| *h == c.column)
             .ok_or_else(|| {
-                Error::from(ErrorKind::Database(format!(
+                Error::from(ErrorKind::Inconsistent(format!(
                     "the diff named a column \"{}\" that {} does not have",
                     c.column,
                     to.label()
@@ -251,10 +251,9 @@ pub fn record(
         let Some((version_id, step_id)) = id else {
             continue;
         };
-        let version = store
-            .lineage
-            .version_by_id(version_id)?
-            .ok_or_else(|| Error::from(ErrorKind::Database("the new version vanished".into())))?;
+        let version = store.lineage.version_by_id(version_id)?.ok_or_else(|| {
+            Error::from(ErrorKind::Inconsistent("the new version vanished".into()))
+        })?;
         out.push(RecordedSuccessor {
             version,
             from: s.from.clone(),
@@ -265,7 +264,7 @@ pub fn record(
     Ok(out)
 }
 
-/// What `sluice ingest FILE --from REF` did.
+/// What `sluice receive FILE --hand-edit-of REF` did.
 #[derive(Debug, Clone)]
 pub enum HandEditOutcome {
     Recorded {
@@ -321,7 +320,9 @@ pub fn ingest_hand_edit_from(
                 .lineage
                 .latest_version(&opts.dataset)?
                 .ok_or_else(|| {
-                    Error::from(ErrorKind::Database("the latest version vanished".into()))
+                    Error::from(ErrorKind::Inconsistent(
+                        "the latest version vanished".into(),
+                    ))
                 })?;
             Ok(HandEditOutcome::Unchanged {
                 version: Box::new(version),

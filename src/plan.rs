@@ -1,7 +1,7 @@
 //! Plans: a JSON list of steps that `sluice run` records one by one, and that `sluice export
 //! --format plan` writes back from the history of a version. A plan names its raw inputs, binds
 //! each to a file or a stored version when it runs, and then applies built-in operations and
-//! checks in order. Every step is recorded exactly as `sluice apply` and `sluice check` record
+//! checks in order. Every step is recorded exactly as `sluice clean` and `sluice inspect` record
 //! it; a run is only a sequence of such commands, so a failure keeps the steps done before it.
 //!
 //! Inside a plan, a name is a dataset name: a step `on` a name reads the version this run last
@@ -98,7 +98,7 @@ fn is_true(b: &bool) -> bool {
 pub struct PlanStep {
     /// The dataset (or any version reference) the step works on.
     pub on: String,
-    /// A built-in operation with its parameters, as `sluice apply` records them.
+    /// A built-in operation with its parameters, as `sluice clean` records them.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub apply: Option<Operation>,
     /// Rules to check, as in a rules file.
@@ -393,7 +393,7 @@ pub fn run(
                                 })
                                 .collect();
                             let error = Error::from(ErrorKind::Data(format!(
-                                "the gate on {} failed: {}; the results are recorded on the version (`sluice show {}`)",
+                                "the gate on {} failed: {}; the results are recorded on the version (`sluice about {}`)",
                                 report.version,
                                 failing.join(", "),
                                 report.version
@@ -531,7 +531,7 @@ fn output_name(store: &Store, step: &PlanStep) -> Result<String> {
         return Ok(n.clone());
     }
     Ok(match refs::resolve(&store.lineage, &step.on) {
-        // A reference to a stored version (`orders@2`, a hash) writes to its dataset; a bare
+        // A reference to a stored version (`orders:v2`, a hash) writes to its dataset; a bare
         // name is the dataset itself.
         Ok(v) if v.dataset != step.on => v.dataset,
         _ => step.on.clone(),
@@ -589,7 +589,9 @@ fn run_step(
             version.clone()
         }
         ApplyOutcome::Replayed { .. } => {
-            return Err(ErrorKind::Database("a plan step was replayed, not recorded".into()).into())
+            return Err(
+                ErrorKind::Inconsistent("a plan step was replayed, not recorded".into()).into(),
+            )
         }
     };
     current.insert(dataset, version);
@@ -720,7 +722,7 @@ fn checks_on(store: &Store, v: &Version) -> Result<Vec<PlanStep>> {
     let mut last: Option<(String, String)> = None;
     for (rule, _, _, agent, at, gate) in store.lineage.check_results(v.id)? {
         let rule: Rule = serde_json::from_str(&rule).map_err(|e| {
-            Error::from(ErrorKind::Database(format!(
+            Error::from(ErrorKind::Inconsistent(format!(
                 "a check on {} holds a rule this build cannot read ({e}); run `sluice verify`",
                 v.label()
             )))

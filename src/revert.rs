@@ -27,11 +27,11 @@
 //! - it changed the columns themselves: it cannot be patched; forced, it is left out whole;
 //! - re-applied, it makes a row equal to another row of the new history (the same row twice,
 //!   which its own version did not have): forced, both rows stay;
-//! - a check recorded as a gate on a version the revert replaces fails on the new version that
-//!   stands for it: forced, that version is recorded with the failing result.
+//! - an inspection recorded as a hold point on a version the withdrawal replaces fails on the
+//!   new version that stands for it: forced, that version is recorded with the failing result.
 //!
-//! Every check recorded on a replaced version is run again on the version standing for it and
-//! recorded with it (as a gate where it was one). Patches keep the lineage kind of the step
+//! Every inspection recorded on a replaced version is run again on the version standing for it
+//! and recorded with it (as a hold point where it was one). Patches keep the lineage kind of the step
 //! they re-apply (a hand edit's stays `inferred`).
 //!
 //! Every forced conflict is listed in the revert step's parameters. A later built-in step that
@@ -56,7 +56,7 @@ use crate::refs;
 use crate::store::Store;
 use crate::table::write::CanonicalWriter;
 
-/// What `sluice revert` was asked to do.
+/// What `sluice withdraw` was asked to do.
 #[derive(Debug, Clone)]
 pub struct RevertOptions {
     pub reason: String,
@@ -74,7 +74,7 @@ pub struct Conflict {
     pub version: String,
     /// `outside_command`, `row_from_reverted_step`, `column_from_reverted_step`,
     /// `row_dropped_after_revert`, `duplicate_returns_unedited`, `columns_changed`,
-    /// `edited_row_twice`, `gate_fails`.
+    /// `edited_row_twice`, `hold_point_fails`.
     pub kind: String,
     /// 1-based data row of `version` (or of the version the step read, for a removed row).
     pub row: Option<u64>,
@@ -100,12 +100,14 @@ pub struct RevertedLink {
 /// for it.
 #[derive(Debug, Clone, Serialize)]
 pub struct Recheck {
-    /// The version of the old history it was recorded on (`name@seq`).
+    /// The version of the old history it was recorded on (`NAME:vN`).
     pub original: String,
-    /// The new version it ran on (`name@seq`).
+    /// The new version it ran on (`NAME:vN`).
     pub version: String,
     pub rule: serde_json::Value,
-    /// It stopped a plan's run when it failed (a gate); failing again refuses the revert.
+    /// It stopped a plan's run when it failed (a hold point); failing again refuses the
+    /// withdrawal.
+    #[serde(rename = "hold_point")]
     pub gate: bool,
     pub passed: bool,
     pub n_failing: u64,
@@ -167,7 +169,7 @@ impl Origin {
 }
 
 fn db(msg: String) -> Error {
-    ErrorKind::Database(msg).into()
+    ErrorKind::Inconsistent(msg).into()
 }
 
 /// The input row an output row came from, through sorted runs.
@@ -280,7 +282,7 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
     })?;
     if reverted.kind == StepKind::Ingest {
         return Err(Error::usage(format!(
-            "{label} was taken in from a file, not made by a step; to stop using it, take in the right file with `sluice ingest FILE --as {}`",
+            "{label} was taken in from a file, not made by a step; to stop using it, take in the right file with `sluice receive FILE --as {}`",
             target.dataset
         )));
     }
@@ -293,7 +295,7 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
     let base = store
         .lineage
         .version_by_seq(&target.dataset, target.seq - 1)?
-        .ok_or_else(|| db(format!("{}@{} is missing", target.dataset, target.seq - 1)))?;
+        .ok_or_else(|| db(format!("{}:v{} is missing", target.dataset, target.seq - 1)))?;
     let reverted_inputs = store.lineage.step_input_versions(reverted.id)?;
     let Some(reverted_main) = reverted_inputs.iter().position(|(_, v)| v.id == base.id) else {
         return Err(Error::usage(format!(
@@ -335,11 +337,11 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
             StepKind::Operation | StepKind::HandEdit | StepKind::Command => {}
             other => {
                 return Err(Error::usage(format!(
-                    "{} was made by a {} step; revert it first (`sluice revert {}`), then this one",
-                    v.label(),
-                    other.as_str().replace('_', " "),
-                    v.label()
-                )))
+                "{} was made by a {} step; revert it first (`sluice withdraw {}`), then this one",
+                v.label(),
+                other.as_str().replace('_', " "),
+                v.label()
+            )))
             }
         }
         later.push(Later {
@@ -510,7 +512,7 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
     let downstream: Vec<String> = crate::graph::impact(store, &label)?
         .current
         .into_iter()
-        .filter(|l| l.split('@').next() != Some(target.dataset.as_str()))
+        .filter(|l| l.split(':').next() != Some(target.dataset.as_str()))
         .collect();
 
     // Everything in one transaction, with one audit entry.
@@ -616,7 +618,7 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
             tx.audit(&opts.agent, action, &label_now, &details, &ended_at)?;
             out.push(RevertedLink {
                 step: sid,
-                version: label_now,
+                version: format!("{dataset}:v{seq}"),
                 hash: p.hash.clone(),
                 rows: p.n_rows,
                 repeats_step: p.repeats_step,
@@ -1274,11 +1276,11 @@ fn recheck(
                     conflicts.push(Conflict {
                         step: *step,
                         version: old.label(),
-                        kind: "gate_fails".into(),
+                        kind: "hold_point_fails".into(),
                         row: None,
                         column: None,
                         detail: format!(
-                            "the check {text}, a gate on {}, cannot run on the new history: {e}",
+                            "the inspection {text}, a hold point on {}, cannot run on the new history: {e}",
                             old.label()
                         ),
                         when_forced: "the check is left out".into(),
@@ -1291,11 +1293,11 @@ fn recheck(
                 conflicts.push(Conflict {
                     step: *step,
                     version: old.label(),
-                    kind: "gate_fails".into(),
+                    kind: "hold_point_fails".into(),
                     row: r.first_failing.first().copied(),
                     column: None,
                     detail: format!(
-                        "the check {text}, a gate on {}, fails on the new history: {} failing row{} (first: {})",
+                        "the inspection {text}, a hold point on {}, fails on the new history: {} failing row{} (first: {})",
                         old.label(),
                         r.n_failing,
                         if r.n_failing == 1 { "" } else { "s" },

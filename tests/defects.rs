@@ -23,10 +23,10 @@ fn padded_orders() -> String {
 fn a_diff_of_cleaned_data_pairs_rows_by_the_recorded_lineage_not_by_similarity() {
     let s = Sandbox::with_store();
     s.file("orders.csv", padded_orders());
-    s.ok(&["ingest", "orders.csv", "--as", "o"]);
-    s.ok(&["apply", "o", "trim", "--why", "padding"]);
+    s.ok(&["receive", "orders.csv", "--as", "o"]);
+    s.ok(&["clean", "o", "trim", "--why", "padding"]);
     s.ok(&[
-        "apply",
+        "clean",
         "o",
         "case",
         "--columns",
@@ -36,8 +36,8 @@ fn a_diff_of_cleaned_data_pairs_rows_by_the_recorded_lineage_not_by_similarity()
         "--why",
         "one spelling",
     ]);
-    let d = s.json(&["diff", "o@1", "o@3", "--json"]);
-    assert_eq!(d["matched_by"], "lineage");
+    let d = s.json(&["compare", "o:v1", "o:v3", "--json"]);
+    assert_eq!(d["paired_by"], "lineage");
     assert_eq!(d["rows"]["removed"], 0);
     assert_eq!(d["rows"]["added"], 0);
     assert_eq!(d["rows"]["changed"], 12);
@@ -46,14 +46,14 @@ fn a_diff_of_cleaned_data_pairs_rows_by_the_recorded_lineage_not_by_similarity()
     let first = &d["changes"][0]["cells"];
     assert_eq!(first[1]["old"], "  Rider 1 ");
     assert_eq!(first[1]["new"], "RIDER 1");
-    let text = s.ok(&["diff", "o@1", "o@3"]);
+    let text = s.ok(&["compare", "o:v1", "o:v3"]);
     assert_contains(
         &text,
-        "rows matched by the recorded lineage: the row maps of steps 2, 3, back to o@1",
+        "rows paired through the recorded lineage: the row maps of steps 2, 3, back to o:v1",
     );
     // Newer first: the same pairs, seen the other way round.
-    let back = s.json(&["diff", "o@3", "o@1", "--json"]);
-    assert_eq!(back["matched_by"], "lineage");
+    let back = s.json(&["compare", "o:v3", "o:v1", "--json"]);
+    assert_eq!(back["paired_by"], "lineage");
     assert_eq!(back["rows"]["changed"], 12);
     assert_eq!(back["rows"]["removed"], 0);
 }
@@ -67,9 +67,9 @@ fn a_dropped_row_is_removed_and_no_record_is_reported_changed_into_another() {
         "o.csv",
         "order_id,shop,status,amount\n1,Ferry Lane,done,10\n2,Ferry Lane,test,10\n3,Ferry Lane,done,10\n",
     );
-    s.ok(&["ingest", "o.csv", "--as", "o"]);
+    s.ok(&["receive", "o.csv", "--as", "o"]);
     s.ok(&[
-        "apply",
+        "clean",
         "o",
         "drop",
         "status = 'test'",
@@ -77,7 +77,7 @@ fn a_dropped_row_is_removed_and_no_record_is_reported_changed_into_another() {
         "training orders",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "o",
         "case",
         "--columns",
@@ -87,8 +87,8 @@ fn a_dropped_row_is_removed_and_no_record_is_reported_changed_into_another() {
         "--why",
         "one spelling",
     ]);
-    let d = s.json(&["diff", "o@1", "o@3", "--json"]);
-    assert_eq!(d["matched_by"], "lineage");
+    let d = s.json(&["compare", "o:v1", "o:v3", "--json"]);
+    assert_eq!(d["paired_by"], "lineage");
     assert_eq!(d["rows"]["removed"], 1);
     assert_eq!(d["rows"]["changed"], 2);
     assert_eq!(d["rows"]["added"], 0);
@@ -119,17 +119,17 @@ fn unrelated_versions_say_the_pairing_is_a_guess_and_never_pair_different_keys()
         "b.csv",
         "order_id,shop,amount\n1,Ferry Lane,10\n3,Mill Row,12\n",
     );
-    s.ok(&["ingest", "a.csv", "--as", "raw", "--key", "order_id"]);
-    s.ok(&["ingest", "b.csv", "--as", "other"]);
-    let d = s.json(&["diff", "other@1", "raw@1", "--json"]);
+    s.ok(&["receive", "a.csv", "--as", "raw", "--key", "order_id"]);
+    s.ok(&["receive", "b.csv", "--as", "other"]);
+    let d = s.json(&["compare", "other:v1", "raw:v1", "--json"]);
     // raw declares order_id as its key, so this is a diff by key; the second order is removed
     // and another added, not one order changed into the other.
-    assert_eq!(d["matched_by"], "key");
+    assert_eq!(d["paired_by"], "key");
     assert_eq!(d["rows"]["changed"], 0);
     assert_eq!(d["rows"]["removed"], 1);
-    s.ok(&["apply", "raw", "rename", "order_id=id", "--why", "short"]);
+    s.ok(&["clean", "raw", "rename", "order_id=id", "--why", "short"]);
     s.ok(&[
-        "apply",
+        "clean",
         "raw",
         "rename",
         "id=order_id",
@@ -142,12 +142,12 @@ fn unrelated_versions_say_the_pairing_is_a_guess_and_never_pair_different_keys()
         "c.csv",
         "order_id,shop,amount\n1,Ferry Lane,10\n4,Mill Row,12\n",
     );
-    s.ok(&["ingest", "c.csv", "--as", "third"]);
-    let d = s.json(&["diff", "third@1", "cleaned@1", "--json"]);
-    assert_eq!(d["matched_by"], "order");
+    s.ok(&["receive", "c.csv", "--as", "third"]);
+    let d = s.json(&["compare", "third:v1", "cleaned:v1", "--json"]);
+    assert_eq!(d["paired_by"], "order");
     assert_contains(
         d["pairing"].as_str().unwrap(),
-        "not related by recorded steps",
+        "no recorded steps relate the versions",
     );
     assert_eq!(d["rows"]["changed"], 0, "order 4 is not order 2 changed");
     assert_eq!(d["rows"]["removed"], 1);
@@ -162,10 +162,10 @@ fn unrelated_versions_say_the_pairing_is_a_guess_and_never_pair_different_keys()
 fn a_keyed_diff_of_raw_data_with_exact_duplicates_pairs_them_by_lineage() {
     let s = Sandbox::with_store();
     s.file("o.csv", "order_id,amount\n1,10\n2,12\n2,12\n3,7\n2,12\n");
-    s.ok(&["ingest", "o.csv", "--as", "o"]);
-    s.ok(&["apply", "o", "dedupe", "--why", "exported twice"]);
-    let d = s.json(&["diff", "o@1", "o@2", "--key", "order_id", "--json"]);
-    assert_eq!(d["matched_by"], "key");
+    s.ok(&["receive", "o.csv", "--as", "o"]);
+    s.ok(&["clean", "o", "dedupe", "--why", "exported twice"]);
+    let d = s.json(&["compare", "o:v1", "o:v2", "--key", "order_id", "--json"]);
+    assert_eq!(d["paired_by"], "key");
     assert_eq!(d["duplicates"]["paired_by"], "lineage");
     assert_eq!(d["duplicates"]["groups"], 1);
     assert_eq!(d["duplicates"]["rows_from"], 3);
@@ -197,21 +197,21 @@ fn a_keyed_diff_on_a_column_that_is_not_unique_shows_a_count_and_the_first_few_r
     let s = Sandbox::with_store();
     s.file("a.csv", &t);
     s.file("b.csv", t.replace(",299\n", ",300\n"));
-    s.ok(&["ingest", "a.csv", "--as", "a"]);
-    s.ok(&["ingest", "b.csv", "--as", "b"]);
-    let text = s.ok(&["diff", "a@1", "b@1", "--key", "shop", "--stat"]);
+    s.ok(&["receive", "a.csv", "--as", "a"]);
+    s.ok(&["receive", "b.csv", "--as", "b"]);
+    let text = s.ok(&["compare", "a:v1", "b:v1", "--key", "shop", "--counts"]);
     assert_contains(
         &text,
         "2 key values are shared by several rows (300 before, 300 after), paired within each group by order",
     );
     assert_contains(&text, "\"Ferry Lane\" rows 1, 3, 5, 7, 9, and 145 more");
     assert!(!text.contains(" 11,"), "no long lists of rows:\n{text}");
-    let d = s.json(&["diff", "a@1", "b@1", "--key", "shop", "--json"]);
+    let d = s.json(&["compare", "a:v1", "b:v1", "--key", "shop", "--json"]);
     assert_eq!(d["rows"]["changed"], 1);
 }
 
 /// Raw orders where order 1 was exported twice in different case; a plan upper-cases shop,
-/// drops exact duplicates and checks, as a gate, that order ids are unique; then a clerk fixes
+/// drops exact duplicates and inspects, as a hold point, that order ids are unique; then a clerk fixes
 /// the kept order 1's shop by hand to "Ferry Lane".
 fn case_dedupe_gate_and_hand_edit() -> Sandbox {
     let s = Sandbox::with_store();
@@ -235,11 +235,11 @@ fn case_dedupe_gate_and_hand_edit() -> Sandbox {
         "order_id,shop,amount\n1,Ferry Lane,10\n2,MILL ROW,5\n",
     );
     s.ok(&[
-        "ingest",
+        "receive",
         "edit.csv",
         "--as",
         "o",
-        "--from",
+        "--hand-edit-of",
         "o",
         "--why",
         "the shop's own spelling",
@@ -249,14 +249,14 @@ fn case_dedupe_gate_and_hand_edit() -> Sandbox {
 
 // Before: taking out the case step silently brought back the duplicate the dedupe had removed
 // (the dedupe no longer saw two equal rows), the hand edit made the kept row equal to its
-// returning twin, and the unique-id gate recorded on o@3 was not run again.
+// returning twin, and the unique-id hold point recorded on o:v3 was not run again.
 #[test]
-fn a_revert_runs_the_recorded_gate_again_and_refuses_a_hand_edited_row_appearing_twice() {
+fn a_withdrawal_runs_the_recorded_hold_point_again_and_refuses_a_hand_edited_row_appearing_twice() {
     let s = case_dedupe_gate_and_hand_edit();
     let before = s.snapshot();
     let r = s.run(&[
-        "revert",
-        "o@2",
+        "withdraw",
+        "o:v2",
         "--why",
         "keep the shops' own spelling",
         "--json",
@@ -269,27 +269,27 @@ fn a_revert_runs_the_recorded_gate_again_and_refuses_a_hand_edited_row_appearing
         .iter()
         .map(|c| c["kind"].as_str().unwrap())
         .collect();
-    assert!(kinds.contains(&"gate_fails"), "{kinds:?}");
+    assert!(kinds.contains(&"hold_point_fails"), "{kinds:?}");
     assert!(kinds.contains(&"edited_row_twice"), "{kinds:?}");
     assert_eq!(s.snapshot(), before, "a refused revert records nothing");
 
     let forced = s.json(&[
-        "revert",
-        "o@2",
+        "withdraw",
+        "o:v2",
         "--why",
         "keep the shops' own spelling",
-        "--force",
+        "--accept-conflicts",
         "--json",
     ]);
     let check = &forced["report"]["checks"][0];
-    assert_eq!(check["original"], "o@3");
-    assert_eq!(check["gate"], true);
+    assert_eq!(check["original"], "o:v3");
+    assert_eq!(check["hold_point"], true);
     assert_eq!(check["passed"], false);
     assert_eq!(check["first_failing"], serde_json::json!([2]));
     // The dedupe changed nothing on the new history, so the revert's own version stands for
-    // o@3 and keeps the check result.
-    assert_eq!(check["version"], "o@5");
-    let about = s.json(&["show", "o@5", "--json"]);
+    // o:v3 and keeps the check result.
+    assert_eq!(check["version"], "o:v5");
+    let about = s.json(&["about", "o:v5", "--json"]);
     let checks = about["checks"].as_array().expect("checks listed");
     assert_eq!(checks.len(), 1, "{about}");
     assert_eq!(checks[0]["passed"], false);
@@ -306,33 +306,33 @@ fn a_revert_runs_the_recorded_gate_again_and_refuses_a_hand_edited_row_appearing
 }
 
 #[test]
-fn a_forced_revert_prints_the_checks_it_ran_again() {
+fn a_withdrawal_with_accepted_conflicts_prints_the_inspections_it_ran_again() {
     let s = case_dedupe_gate_and_hand_edit();
     let out = s.ok(&[
-        "revert",
-        "o@2",
+        "withdraw",
+        "o:v2",
         "--why",
         "keep the shops' own spelling",
-        "--force",
+        "--accept-conflicts",
     ]);
-    assert_contains(&out, "checks recorded on the old history, run again:");
-    assert_contains(&out, "o@5 (as on o@3, a gate)");
+    assert_contains(&out, "inspections recorded on the old history, run again:");
+    assert_contains(&out, "o:v5 (as on o:v3, a hold point)");
     assert_contains(&out, "fails: 1 row (first: 2)");
 }
 
-// Before: a hand edit re-applied by a revert was recorded as exact lineage although the
+// Before: a hand edit re-applied by a withdrawal was recorded as exact lineage although the
 // original's was inferred by a diff.
 #[test]
-fn a_hand_edit_re_applied_by_a_revert_keeps_its_inferred_lineage() {
+fn a_hand_edit_re_applied_by_a_withdrawal_keeps_its_inferred_lineage() {
     let s = Sandbox::with_store();
     s.file(
         "o.csv",
         "order_id,shop,amount\n1, Ferry Lane ,10\n2,Mill Row,5\n",
     );
-    s.ok(&["ingest", "o.csv", "--as", "o"]);
-    s.ok(&["apply", "o", "trim", "--why", "padding"]);
+    s.ok(&["receive", "o.csv", "--as", "o"]);
+    s.ok(&["clean", "o", "trim", "--why", "padding"]);
     s.ok(&[
-        "apply",
+        "clean",
         "o",
         "case",
         "--columns",
@@ -347,17 +347,17 @@ fn a_hand_edit_re_applied_by_a_revert_keeps_its_inferred_lineage() {
         "order_id,shop,amount\n1,FERRY LANE,12\n2,MILL ROW,5\n",
     );
     s.ok(&[
-        "ingest",
+        "receive",
         "edit.csv",
         "--as",
         "o",
-        "--from",
+        "--hand-edit-of",
         "o",
         "--why",
         "till rounded",
     ]);
-    s.ok(&["revert", "o@3", "--why", "keep the case"]);
-    let log = s.json(&["log", "o", "--json"]);
+    s.ok(&["withdraw", "o:v3", "--why", "keep the case"]);
+    let log = s.json(&["timeline", "--dataset", "o", "--json"]);
     let steps = log.as_array().unwrap();
     let reapplied = steps
         .iter()
@@ -382,11 +382,11 @@ fn explain_groups_dropped_duplicates_into_one_line_and_honours_the_limit() {
     }
     let s = Sandbox::with_store();
     s.file("o.csv", &t);
-    s.ok(&["ingest", "o.csv", "--as", "o"]);
-    s.ok(&["apply", "o", "dedupe", "--why", "exported twice"]);
-    s.ok(&["apply", "o", "drop", "amount < 0", "--why", "test orders"]);
+    s.ok(&["receive", "o.csv", "--as", "o"]);
+    s.ok(&["clean", "o", "dedupe", "--why", "exported twice"]);
+    s.ok(&["clean", "o", "drop", "amount < 0", "--why", "test orders"]);
     s.ok(&[
-        "apply",
+        "clean",
         "o",
         "summarize",
         "--by",
@@ -428,11 +428,11 @@ fn number_suggests_the_decimal_comma_when_it_reads_the_failing_values() {
         "o.csv",
         "order_id,amount\n1,\"335,00 USD\"\n2,\"12,50 EUR\"\n",
     );
-    s.ok(&["ingest", "o.csv", "--as", "o"]);
+    s.ok(&["receive", "o.csv", "--as", "o"]);
     let err = s.fails(
         1,
         &[
-            "apply",
+            "clean",
             "o",
             "number",
             "--columns",
@@ -447,7 +447,7 @@ fn number_suggests_the_decimal_comma_when_it_reads_the_failing_values() {
     );
     assert!(!err.contains("--on-error keep"), "{err}");
     s.ok(&[
-        "apply",
+        "clean",
         "o",
         "number",
         "--columns",
@@ -456,14 +456,17 @@ fn number_suggests_the_decimal_comma_when_it_reads_the_failing_values() {
         "--why",
         "text",
     ]);
-    assert_eq!(s.ok(&["cat", "o"]), "order_id,amount\n1,335.00\n2,12.50\n");
+    assert_eq!(
+        s.ok(&["retrieve", "o"]),
+        "order_id,amount\n1,335.00\n2,12.50\n"
+    );
     // Values neither mark reads keep the old advice.
     s.file("p.csv", "order_id,amount\n1,twelve\n");
-    s.ok(&["ingest", "p.csv", "--as", "p"]);
+    s.ok(&["receive", "p.csv", "--as", "p"]);
     let err = s.fails(
         1,
         &[
-            "apply",
+            "clean",
             "p",
             "number",
             "--columns",
@@ -480,7 +483,7 @@ fn number_suggests_the_decimal_comma_when_it_reads_the_failing_values() {
 fn a_header_only_file_is_recorded_with_a_warning() {
     let s = Sandbox::with_store();
     s.file("o.csv", "order_id,shop,amount\n");
-    let r = s.run(&["ingest", "o.csv", "--as", "o"]);
+    let r = s.run(&["receive", "o.csv", "--as", "o"]);
     assert_eq!(r.code, 0, "{}", r.stderr);
     assert_contains(
         &format!("{}{}", r.stdout, r.stderr),
@@ -498,20 +501,20 @@ fn a_legacy_xls_workbook_is_refused_by_name_and_a_text_file_named_xls_is_noted()
     ole.extend(std::iter::repeat_n(0u8, 504));
     s.file("old.xls", &ole);
     let before = s.snapshot();
-    let err = s.fails(2, &["ingest", "old.xls", "--as", "old"]);
+    let err = s.fails(2, &["receive", "old.xls", "--as", "old"]);
     assert_contains(&err, "old.xls is a legacy binary Excel workbook");
     assert_contains(&err, "save it as .xlsx");
     assert!(!err.contains("UTF-16"), "{err}");
     assert_eq!(s.snapshot(), before);
 
     s.file("till.xls", "order_id\tshop\n1\tFerry Lane\n");
-    let r = s.run(&["ingest", "till.xls", "--as", "till"]);
+    let r = s.run(&["receive", "till.xls", "--as", "till"]);
     assert_eq!(r.code, 0, "{}", r.stderr);
     assert_contains(
         &format!("{}{}", r.stdout, r.stderr),
         "till.xls is named .xls but holds text, not a workbook: it was read as delimited text",
     );
-    let shown = s.json(&["show", "till", "--json"]);
+    let shown = s.json(&["about", "till", "--json"]);
     assert_eq!(
         shown["version"]["header"],
         serde_json::json!(["order_id", "shop"])
@@ -522,7 +525,7 @@ fn a_legacy_xls_workbook_is_refused_by_name_and_a_text_file_named_xls_is_noted()
         "page.xls",
         "<html><body><table><tr><td>1</td></tr></table></body></html>\n",
     );
-    let err = s.fails(2, &["ingest", "page.xls", "--as", "page"]);
+    let err = s.fails(2, &["receive", "page.xls", "--as", "page"]);
     assert_contains(&err, "page.xls is named .xls but holds a web page or XML");
 }
 
@@ -539,7 +542,7 @@ fn a_report_into_a_missing_folder_names_that_folder() {
     );
     assert!(!err.contains("sluice-part"), "{err}");
     assert_eq!(s.snapshot(), before, "nothing recorded");
-    let err = s.fails(2, &["cat", "penguins", "-o", "missing/p.csv"]);
+    let err = s.fails(2, &["retrieve", "penguins", "-o", "missing/p.csv"]);
     assert!(!err.contains("sluice-part"), "{err}");
 }
 
@@ -553,11 +556,11 @@ fn an_outside_command_that_rewrites_the_key_can_be_matched_by_order() {
         "o.csv",
         "order_id,shop,amount\nq-1,Ferry Lane,10\nq-2,Mill Row,12\nq-3,Ferry Lane,7\n",
     );
-    s.ok(&["ingest", "o.csv", "--as", "o", "--key", "order_id"]);
+    s.ok(&["receive", "o.csv", "--as", "o", "--key", "order_id"]);
     let run = |extra: &[&str], out: &str, prefix: &str| {
         let target = "{out:o}";
         let script = format!("sed 's/^q-/{prefix}-/' {{o}} > {target}");
-        let mut args = vec!["exec", "--input", "o=o@1", "--output"];
+        let mut args = vec!["capture", "--input", "o=o:v1", "--output"];
         let output = format!("o={out}");
         args.push(&output);
         args.extend_from_slice(&["--why", "till prefix"]);
@@ -570,24 +573,24 @@ fn an_outside_command_that_rewrites_the_key_can_be_matched_by_order() {
         &out,
         "no row kept its key order_id: if the command rewrote the key values, run it again matching rows by order",
     );
-    let by_key = s.json(&["show", "o@2", "--json"]);
+    let by_key = s.json(&["about", "o:v2", "--json"]);
     assert_eq!(by_key["step"]["params"]["inferred_by"]["diff"], "key");
     assert_eq!(by_key["step"]["rows_in"], 3);
-    let d = s.json(&["diff", "o@1", "o@2", "--json"]);
+    let d = s.json(&["compare", "o:v1", "o:v2", "--json"]);
     assert_eq!(d["rows"]["removed"], 3, "by key, no row is kept");
 
     run(&["--match-by-order"], "by_order.csv", "FL");
-    let by_order = s.json(&["show", "o@3", "--json"]);
+    let by_order = s.json(&["about", "o:v3", "--json"]);
     assert_eq!(
         by_order["step"]["params"]["inferred_by"],
         serde_json::json!({"diff": "order", "asked": true})
     );
     // The lineage now pairs the rows: each order kept, its id changed.
-    let d = s.json(&["diff", "o@1", "o@3", "--json"]);
-    assert_eq!(d["matched_by"], "lineage");
+    let d = s.json(&["compare", "o:v1", "o:v3", "--json"]);
+    assert_eq!(d["paired_by"], "lineage");
     assert_eq!(d["rows"]["changed"], 3);
     assert_eq!(d["rows"]["removed"], 0);
-    let t = s.json(&["trace", "o@3", "--row", "2", "--column", "shop", "--json"]);
+    let t = s.json(&["trace", "o:v3", "--row", "2", "--column", "shop", "--json"]);
     assert_eq!(t["end"]["path"], "o.csv");
 }
 
@@ -622,7 +625,7 @@ fn an_untracked_or_ignored_script_is_recorded_with_its_bytes_and_replayed_from_t
     git(dir, &["add", ".gitignore", "NOTES.txt"]);
     git(dir, &["commit", "-q", "-m", "notes"]);
     s.file("o.csv", "order_id,shop\n1,ferry lane\n2,mill row\n");
-    s.ok(&["ingest", "o.csv", "--as", "o"]);
+    s.ok(&["receive", "o.csv", "--as", "o"]);
     let script = "tr a-z A-Z < \"$1\" > \"$2\"\n";
     s.file("clean.sh", script);
     s.file("settings.local", "upper\n");
@@ -630,7 +633,7 @@ fn an_untracked_or_ignored_script_is_recorded_with_its_bytes_and_replayed_from_t
     assert_contains(&status, "?? clean.sh");
     assert_contains(&status, "!! settings.local");
     s.ok(&[
-        "exec",
+        "capture",
         "--input",
         "o",
         "--output",
@@ -644,7 +647,7 @@ fn an_untracked_or_ignored_script_is_recorded_with_its_bytes_and_replayed_from_t
         "{out:o}",
         "settings.local",
     ]);
-    let shown = s.json(&["show", "o@2", "--json"]);
+    let shown = s.json(&["about", "o:v2", "--json"]);
     let code = &shown["step"]["code"];
     assert_eq!(code["git"]["dirty"], true, "{code}");
     assert_eq!(code["git"]["untracked"], serde_json::json!(["clean.sh"]));
@@ -660,14 +663,14 @@ fn an_untracked_or_ignored_script_is_recorded_with_its_bytes_and_replayed_from_t
         blake3::hash(script.as_bytes()).to_hex().to_string()
     );
     assert_eq!(files[1]["git"], "ignored");
-    assert_contains(&s.ok(&["show", "o@2"]), "clean.sh (untracked)");
+    assert_contains(&s.ok(&["about", "o:v2"]), "clean.sh (untracked)");
     assert_contains(&s.ok(&["verify"]), "intact");
 
     // The script changes on disk afterwards; a replay runs the recorded bytes and so gives the
     // recorded output again.
     s.file("clean.sh", "tr a-z x < \"$1\" > \"$2\"\n");
-    let out = s.ok(&["replay", "o@2", "--allow-exec"]);
+    let out = s.ok(&["reproduce", "o:v2", "--allow-exec"]);
     assert_contains(&out, "run with the recorded bytes of clean.sh");
-    let r = s.json(&["replay", "o@2", "--allow-exec", "--json"]);
+    let r = s.json(&["reproduce", "o:v2", "--allow-exec", "--json"]);
     assert_eq!(r["reproduced"], true, "{r}");
 }

@@ -225,7 +225,7 @@ pub(super) fn assemble(
         (sa.fps, sb.fps, sa.cand, sb.cand)
     };
     let lost = || -> crate::error::Error {
-        ErrorKind::Database(format!(
+        ErrorKind::Inconsistent(format!(
             "{} or {} has fewer rows than the store records; run `sluice verify`",
             a.label(),
             b.label()

@@ -56,7 +56,7 @@ pub enum KeyChoice {
     Columns(Vec<String>),
     /// Without a key, even when one is declared: by lineage when the versions are related,
     /// else by order, and then without the declared key columns guarding the pairing (for
-    /// outside work that rewrites key values, `exec --match-by-order`).
+    /// outside work that rewrites key values, `capture --match-by-order`).
     Unkeyed,
 }
 
@@ -152,10 +152,10 @@ impl MatchedBy {
     /// One sentence on how the rows were paired, for people.
     pub fn describe(&self) -> String {
         match self {
-            MatchedBy::Key(k) => format!("rows matched by key {}", k.join(", ")),
-            MatchedBy::Order => "rows matched by order: the versions are not related by \
-                                 recorded steps, so a removed and an added row are paired as \
-                                 changed when at least half their cells agree (a guess)"
+            MatchedBy::Key(k) => format!("rows paired by key {}", k.join(", ")),
+            MatchedBy::Order => "rows paired by order (no key); no recorded steps relate the \
+                                 versions, so a removed and an added row are paired as changed \
+                                 when at least half their cells agree (a guess)"
                 .to_string(),
             MatchedBy::Lineage {
                 ancestor,
@@ -177,7 +177,7 @@ impl MatchedBy {
                     )
                 };
                 format!(
-                    "rows matched by the recorded lineage: {through}, back to {ancestor}{}",
+                    "rows paired through the recorded lineage: {through}, back to {ancestor}{}",
                     if *inferred {
                         " (some of it inferred when outside work was recorded)"
                     } else {
