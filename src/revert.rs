@@ -337,7 +337,7 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
             StepKind::Operation | StepKind::HandEdit | StepKind::Command => {}
             other => {
                 return Err(Error::usage(format!(
-                "{} was made by a {} step; revert it first (`sluice withdraw {}`), then this one",
+                "{} was made by a {} step; withdraw that one first (`sluice withdraw {}`), then this one",
                 v.label(),
                 other.as_str().replace('_', " "),
                 v.label()
@@ -1261,7 +1261,7 @@ fn recheck(
         for (text, gate) in rules {
             let Ok(rule) = serde_json::from_str::<crate::checks::Rule>(&text) else {
                 return Err(db(format!(
-                    "a check recorded on {} holds a rule this build cannot read: {text}",
+                    "an inspection recorded on {} holds a rule this build cannot read: {text}",
                     old.label()
                 )));
             };
@@ -1283,7 +1283,7 @@ fn recheck(
                             "the inspection {text}, a hold point on {}, cannot run on the new history: {e}",
                             old.label()
                         ),
-                        when_forced: "the check is left out".into(),
+                        when_forced: "the inspection is left out".into(),
                     });
                     continue;
                 }
