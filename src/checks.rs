@@ -159,9 +159,50 @@ pub fn check(
     if rules.is_empty() {
         return Err(Error::usage("the rules file holds no rule"));
     }
+    let results = evaluate(store, &version, rules)?;
+    let at = clock::now_rfc3339();
+    let passed = results.iter().all(|r| r.passed);
+    let label = version.label();
+    let rows: Vec<(String, bool, u64, String)> = results
+        .iter()
+        .map(|r| {
+            (
+                canonical_json(&serde_json::to_value(&r.rule).unwrap_or_default()),
+                r.passed,
+                r.n_failing,
+                canonical_json(&json!(r.first_failing)),
+            )
+        })
+        .collect();
+    store.write(|tx| {
+        tx.insert_check_results(version.id, agent, &rows, gate, &at)?;
+        tx.audit(
+            agent,
+            "check",
+            &label,
+            &json!({
+                "version": version.hash,
+                "rules": rows.len(),
+                "failed": rows.iter().filter(|r| !r.1).count(),
+                "gate": gate,
+            }),
+            &at,
+        )
+    })?;
+    Ok(CheckReport {
+        version: label,
+        hash: version.hash.clone(),
+        passed,
+        results,
+    })
+}
+
+/// Evaluates `rules` on `version` without recording anything (also on a version a revert is
+/// about to record).
+pub fn evaluate(store: &Store, version: &Version, rules: &[Rule]) -> Result<Vec<CheckResult>> {
     let mut compiled: Vec<Compiled> = rules
         .iter()
-        .map(|r| compile(r, &version))
+        .map(|r| compile(r, version))
         .collect::<Result<_>>()?;
     let null_tokens: Vec<Vec<u8>> = version
         .null_tokens
@@ -170,7 +211,7 @@ pub fn check(
         .collect();
     let blank = |v: &[u8]| v.is_empty() || null_tokens.iter().any(|t| t.as_slice() == v);
     let mut failing: Vec<(u64, Vec<u64>)> = vec![(0, Vec::new()); rules.len()];
-    crate::ops::apply::each_version_row(store, &version, |row, r| {
+    crate::ops::apply::each_version_row(store, version, |row, r| {
         for (k, c) in compiled.iter_mut().enumerate() {
             let fails = match c {
                 Compiled::NotBlank(cols) => cols.iter().any(|&i| blank(r.field(i))),
@@ -224,7 +265,7 @@ pub fn check(
         }
         Ok(())
     })?;
-    let results: Vec<CheckResult> = rules
+    Ok(rules
         .iter()
         .zip(failing)
         .map(|(rule, (n, first))| CheckResult {
@@ -233,40 +274,5 @@ pub fn check(
             n_failing: n,
             first_failing: first,
         })
-        .collect();
-    let at = clock::now_rfc3339();
-    let passed = results.iter().all(|r| r.passed);
-    let label = version.label();
-    let rows: Vec<(String, bool, u64, String)> = results
-        .iter()
-        .map(|r| {
-            (
-                canonical_json(&serde_json::to_value(&r.rule).unwrap_or_default()),
-                r.passed,
-                r.n_failing,
-                canonical_json(&json!(r.first_failing)),
-            )
-        })
-        .collect();
-    store.write(|tx| {
-        tx.insert_check_results(version.id, agent, &rows, gate, &at)?;
-        tx.audit(
-            agent,
-            "check",
-            &label,
-            &json!({
-                "version": version.hash,
-                "rules": rows.len(),
-                "failed": rows.iter().filter(|r| !r.1).count(),
-                "gate": gate,
-            }),
-            &at,
-        )
-    })?;
-    Ok(CheckReport {
-        version: label,
-        hash: version.hash.clone(),
-        passed,
-        results,
-    })
+        .collect())
 }

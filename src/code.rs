@@ -19,10 +19,58 @@ pub struct CodeState {
     pub commit: Option<String>,
     /// The branch HEAD points at; `None` when HEAD is detached.
     pub branch: Option<String>,
-    /// Whether tracked files differ from the commit.
+    /// Whether the code that ran may not be the commit's: tracked files differ from it, or a
+    /// file the command line names is untracked or ignored.
     pub dirty: bool,
-    /// Those files, relative to the repository's working folder, in git's order.
+    /// The tracked files that differ, relative to the repository's working folder, in git's
+    /// order; then each file the command line names that is not in the commit, marked
+    /// `(untracked)` or `(ignored)`.
     pub modified: Vec<String>,
+    /// Files the command line names that git does not track (relative to the repository).
+    #[serde(default)]
+    pub untracked: Vec<String>,
+    /// Files the command line names that git ignores (relative to the repository).
+    #[serde(default)]
+    pub ignored: Vec<String>,
+}
+
+impl CodeState {
+    /// Notes a file the command line names, as [`file_status`] found it: an untracked or
+    /// ignored one makes the state dirty, since the commit does not hold it.
+    pub fn note_named_file(&mut self, in_repository: &str, status: &str) {
+        let list = match status {
+            "untracked" => &mut self.untracked,
+            "ignored" => &mut self.ignored,
+            _ => return,
+        };
+        if list.iter().any(|f| f == in_repository) {
+            return;
+        }
+        list.push(in_repository.to_string());
+        self.modified.push(format!("{in_repository} ({status})"));
+        self.dirty = true;
+    }
+}
+
+/// How git sees `file` (a file an outside command's arguments name): its path relative to the
+/// repository around `cwd` and one of `unchanged`, `modified`, `untracked`, `ignored` or
+/// `outside_repository`; `None` when `cwd` is in no repository or the file cannot be resolved.
+pub fn file_status(cwd: &Path, file: &Path) -> Option<(String, &'static str)> {
+    let repo = git2::Repository::discover(cwd).ok()?;
+    let workdir = std::fs::canonicalize(repo.workdir()?).ok()?;
+    let full = std::fs::canonicalize(file).ok()?;
+    let Ok(rel) = full.strip_prefix(&workdir) else {
+        return Some((full.display().to_string(), "outside_repository"));
+    };
+    let shown = rel.display().to_string();
+    let status = match repo.status_file(rel) {
+        Ok(s) if s.contains(git2::Status::IGNORED) => "ignored",
+        Ok(s) if s.contains(git2::Status::WT_NEW) => "untracked",
+        Ok(s) if s.is_empty() => "unchanged",
+        Ok(_) => "modified",
+        Err(_) => return None,
+    };
+    Some((shown, status))
 }
 
 /// Reads the code state of the git repository containing `cwd`; `Ok(None)` when `cwd` is in
@@ -85,6 +133,8 @@ pub fn code_state(cwd: &Path) -> Result<Option<CodeState>, String> {
         branch,
         dirty: !modified.is_empty(),
         modified,
+        untracked: Vec::new(),
+        ignored: Vec::new(),
     }))
 }
 

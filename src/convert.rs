@@ -574,13 +574,16 @@ pub fn prepare(
     {
         return Err(Error::input(path, None, InputProblem::ChangedWhileReading));
     }
-    let read = read_table(
+    let mut read = read_table(
         &bytes,
         path,
         format,
         source.sheet.as_deref(),
         opts.has_header,
     )?;
+    if read.source_rows.is_empty() {
+        read.warnings.push(no_rows_warning(path, read.header.len()));
+    }
     if let Some(key) = &opts.key {
         if key.is_empty() || key.iter().any(|c| c.is_empty()) {
             return Err(Error::usage(
@@ -635,6 +638,93 @@ pub fn prepare(
         read.header,
         read.warnings,
     ))))
+}
+
+/// The first bytes of an OLE2 Compound File (the container of legacy `.xls` workbooks, and of
+/// encrypted `.xlsx` ones), from the format's published specification ([MS-CFB] 2.2).
+const COMPOUND_FILE: [u8; 8] = [0xD0, 0xCF, 0x11, 0xE0, 0xA1, 0xB1, 0x1A, 0xE1];
+
+/// What a file's first bytes and name say before it is read as a table: a legacy binary
+/// workbook (or an encrypted one) and a binary `.xlsb` workbook are refused by name, as are an
+/// HTML or XML page saved under a spreadsheet's name; a text file named `.xls` is read as
+/// delimited text, with a note saying so (returned).
+pub fn check_named_format(path: &Path) -> Result<Vec<String>> {
+    let mut head = [0u8; 8];
+    if !fs::metadata(path).is_ok_and(|m| m.is_file()) {
+        // Left to the reader, which names the problem in its own words.
+        return Ok(Vec::new());
+    }
+    let n = match fs::File::open(path) {
+        Ok(mut f) => {
+            use std::io::Read as _;
+            let mut n = 0;
+            while n < head.len() {
+                match f.read(&mut head[n..]) {
+                    Ok(0) => break,
+                    Ok(k) => n += k,
+                    Err(e) if e.kind() == std::io::ErrorKind::Interrupted => {}
+                    Err(_) => return Ok(Vec::new()),
+                }
+            }
+            n
+        }
+        // Left to the reader, which names the problem in its own words.
+        Err(_) => return Ok(Vec::new()),
+    };
+    let head = &head[..n];
+    let ext = path
+        .extension()
+        .and_then(|e| e.to_str())
+        .map(str::to_ascii_lowercase)
+        .unwrap_or_default();
+    let name = path.display();
+    if head == COMPOUND_FILE {
+        return Err(Error::usage(format!(
+            "{name} is a legacy binary Excel workbook (the Compound File format of .xls, also used \
+             for password-protected workbooks), which sluice does not read; open it in a spreadsheet \
+             program and save it as .xlsx (without a password) or export the sheet as CSV, then take \
+             that file in"
+        )));
+    }
+    if ext == "xlsb" {
+        return Err(Error::usage(format!(
+            "{name} is a binary Excel workbook (.xlsb), which sluice does not read; save it as .xlsx \
+             or export the sheet as CSV, then take that file in"
+        )));
+    }
+    if ext == "xls" {
+        let text = String::from_utf8_lossy(head)
+            .trim_start()
+            .to_ascii_lowercase();
+        if text.starts_with('<') {
+            return Err(Error::usage(format!(
+                "{name} is named .xls but holds a web page or XML (some systems export HTML under a \
+                 spreadsheet's name), not a table sluice reads; open it in a spreadsheet program and \
+                 save it as .xlsx or CSV, then take that file in"
+            )));
+        }
+        if head.starts_with(b"PK") {
+            return Err(Error::usage(format!(
+                "{name} is named .xls but holds a zip container (probably an .xlsx workbook); rename \
+                 it to .xlsx and take it in again"
+            )));
+        }
+        return Ok(vec![format!(
+            "{name} is named .xls but holds text, not a workbook: it was read as delimited text; \
+             check the delimiter and columns below (rename it to .csv or .tsv to say so)"
+        )]);
+    }
+    Ok(Vec::new())
+}
+
+/// The warning for a table with a header and no data rows.
+pub fn no_rows_warning(path: &Path, n_columns: usize) -> String {
+    format!(
+        "{} has a header and no data rows: recorded as an empty table of {n_columns} column{}; if \
+         rows were expected, check the export (a filter, an empty sheet, the wrong file)",
+        path.display(),
+        if n_columns == 1 { "" } else { "s" }
+    )
 }
 
 #[cfg(test)]

@@ -590,6 +590,7 @@ fn outside_work(
         cwd: dir.to_path_buf(),
         reason: why.into(),
         agent: agent.clone(),
+        match_by_order: false,
     };
     let shown = format!(
         "sluice capture --input all_orders --output reviewed_orders=review/reviewed_orders.csv --why \"{why}\" -- {}",

@@ -26,6 +26,7 @@ use serde_json::json;
 
 use crate::clock;
 use crate::code::{self, CodeState};
+use crate::diff::KeyChoice;
 use crate::error::{Error, ErrorKind, Result};
 use crate::hash::hash_reader;
 use crate::inferred::{self, RecordedSuccessor};
@@ -48,6 +49,10 @@ pub struct ExecOptions {
     pub cwd: PathBuf,
     pub reason: String,
     pub agent: Agent,
+    /// Match each output's rows to its input's by order (a diff without a key) even when a key
+    /// is declared: for a command that rewrites key values, whose rows a diff by key would all
+    /// report as removed and added. The step's `params.inferred_by` says which matching was used.
+    pub match_by_order: bool,
 }
 
 /// Why a run recorded nothing.
@@ -252,11 +257,19 @@ pub fn exec(store: &mut Store, opts: &ExecOptions) -> Result<ExecOutcome> {
         .map(|(_, p)| fs::metadata(p).ok().and_then(|m| m.modified().ok()))
         .collect();
 
-    let (git, git_problem): (Option<CodeState>, Option<String>) = match code::code_state(&opts.cwd)
-    {
-        Ok(g) => (g, None),
-        Err(e) => (None, Some(e)),
-    };
+    let (mut git, git_problem): (Option<CodeState>, Option<String>) =
+        match code::code_state(&opts.cwd) {
+            Ok(g) => (g, None),
+            Err(e) => (None, Some(e)),
+        };
+    // The files the command line names (a script, a settings file), stored as they are now,
+    // before the command runs; an untracked or ignored one makes the code state dirty.
+    let named = named_files(store, opts)?;
+    if let Some(g) = git.as_mut() {
+        for f in &named {
+            g.note_named_file(&f.in_repository, &f.git);
+        }
+    }
     let started_at = clock::now_rfc3339();
     let mut child = Command::new(&ran[0]);
     child
@@ -287,6 +300,10 @@ pub fn exec(store: &mut Store, opts: &ExecOptions) -> Result<ExecOutcome> {
         "outputs": opts.outputs.iter().map(|(n, f)| json!({
             "name": n, "file": f.display().to_string(),
             "env": env_name("SLUICE_OUTPUT_", n),
+        })).collect::<Vec<_>>(),
+        "files": named.iter().map(|f| json!({
+            "path": f.path, "hash": f.hash, "n_bytes": f.n_bytes, "git": f.git,
+            "executable": f.executable,
         })).collect::<Vec<_>>(),
     });
     if let (Some(p), Some(map)) = (&git_problem, code.as_object_mut()) {
@@ -368,7 +385,17 @@ pub fn exec(store: &mut Store, opts: &ExecOptions) -> Result<ExecOutcome> {
     }
     drop(folder);
 
-    match record_outputs(store, opts, &inputs, &outputs, &code, &started_at) {
+    // The named files' objects, made durable before the transaction that records them.
+    let mut blobs: Vec<(String, u64)> = Vec::with_capacity(named.len());
+    for f in &named {
+        let store_io = |e: io::Error| Error::io(&store.dir().join("tmp"), e);
+        let mut w = store.objects.writer().map_err(store_io)?;
+        w.write(&f.bytes).map_err(store_io)?;
+        let (hash, n) = w.finish().map_err(store_io)?;
+        blobs.push((hash.hex(), n));
+    }
+    drop(named);
+    match record_outputs(store, opts, &inputs, &outputs, &code, &started_at, &blobs) {
         Ok((recorded, unchanged)) => Ok(ExecOutcome::Recorded {
             recorded,
             unchanged,
@@ -385,6 +412,84 @@ pub fn exec(store: &mut Store, opts: &ExecOptions) -> Result<ExecOutcome> {
             Err(e)
         }
     }
+}
+
+/// A file an outside command's arguments name, as it was when the command ran.
+struct NamedFile {
+    /// The argument as typed.
+    path: String,
+    /// Its path in the git repository (or its absolute path when outside it).
+    in_repository: String,
+    /// How git saw it (see [`code::file_status`]); `no_repository` outside any.
+    git: String,
+    hash: String,
+    n_bytes: u64,
+    /// Whether it could be run as a program (Unix permission bits).
+    executable: bool,
+    /// Its bytes, read before the command ran; stored only when the run is recorded, so that a
+    /// failing command leaves the store as it was.
+    bytes: Vec<u8>,
+}
+
+#[cfg(unix)]
+fn is_executable(m: &fs::Metadata) -> bool {
+    std::os::unix::fs::PermissionsExt::mode(&m.permissions()) & 0o111 != 0
+}
+
+#[cfg(not(unix))]
+fn is_executable(_: &fs::Metadata) -> bool {
+    false
+}
+
+/// The most bytes a file named on the command line is stored with; larger files (data rather
+/// than code) are left out. The files are held in memory while the command runs, at most
+/// [`NAMED_FILES_TOTAL`] bytes in all.
+const NAMED_FILE_LIMIT: u64 = 16 * 1024 * 1024;
+const NAMED_FILES_TOTAL: u64 = 64 * 1024 * 1024;
+
+/// Reads and hashes every file the command's arguments name (whole arguments naming an
+/// existing regular file, relative to the working directory, placeholders excepted).
+fn named_files(store: &Store, opts: &ExecOptions) -> Result<Vec<NamedFile>> {
+    let mut out: Vec<NamedFile> = Vec::new();
+    let mut total = 0u64;
+    let store_dir = fs::canonicalize(store.dir()).ok();
+    for arg in &opts.command {
+        if arg.contains('{') || arg.starts_with('-') || out.iter().any(|f| f.path == *arg) {
+            continue;
+        }
+        let path = opts.cwd.join(arg);
+        let Ok(meta) = fs::metadata(&path) else {
+            continue;
+        };
+        if !meta.is_file()
+            || meta.len() > NAMED_FILE_LIMIT
+            || total + meta.len() > NAMED_FILES_TOTAL
+        {
+            continue;
+        }
+        let full = fs::canonicalize(&path).unwrap_or_else(|_| path.clone());
+        if store_dir.as_ref().is_some_and(|d| full.starts_with(d)) {
+            continue;
+        }
+        let bytes = fs::read(&path).map_err(|e| Error::io(&path, e))?;
+        total += bytes.len() as u64;
+        let hash = blake3::hash(&bytes).to_hex().to_string();
+        let n_bytes = bytes.len() as u64;
+        let (in_repository, git) = match code::file_status(&opts.cwd, &path) {
+            Some((p, s)) => (p, s.to_string()),
+            None => (full.display().to_string(), "no_repository".to_string()),
+        };
+        out.push(NamedFile {
+            path: arg.clone(),
+            in_repository,
+            git,
+            hash,
+            n_bytes,
+            executable: is_executable(&meta),
+            bytes,
+        });
+    }
+    Ok(out)
 }
 
 #[cfg(unix)]
@@ -425,6 +530,7 @@ fn record_outputs(
     outputs: &[(String, PathBuf)],
     code: &serde_json::Value,
     started_at: &str,
+    blobs: &[(String, u64)],
 ) -> Result<Recorded> {
     let mut successors = Vec::new();
     let mut unchanged = Vec::new();
@@ -462,12 +568,17 @@ fn record_outputs(
             .filter(|(i, _)| *i != b)
             .map(|(_, (_, v))| v.clone())
             .collect();
-        successors.push(inferred::infer(
+        successors.push(inferred::infer_matching(
             store,
             prepared,
             from,
             others,
             "removed by the command (inferred by diff)",
+            if opts.match_by_order {
+                KeyChoice::Unkeyed
+            } else {
+                KeyChoice::Declared
+            },
         )?);
     }
     let recorded = inferred::record(
@@ -476,6 +587,7 @@ fn record_outputs(
         StepKind::Command,
         Some(code),
         started_at,
+        blobs,
     )?;
     Ok((recorded, unchanged))
 }

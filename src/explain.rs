@@ -71,15 +71,23 @@ pub struct Upstream {
     /// The version the step made and the one it read.
     pub produced: String,
     pub read: String,
-    /// Rows of the group the step dropped, per reason.
+    /// Rows of the group the step dropped, one entry per reason (every duplicate under one
+    /// reason, whatever row it duplicated), at most `limit` reasons.
     pub dropped: Vec<DroppedFor>,
+    /// Reasons beyond the listed ones, and the rows dropped for them.
+    pub more_reasons: u64,
+    pub more_reason_rows: u64,
     /// Rows the step dropped that cannot be placed in a group (a group column did not exist
     /// yet in the version it read).
     pub undecided: u64,
     /// Cells of the aggregated column, in rows of the group, the step changed.
     pub changed_cells: u64,
-    /// Cells of the aggregated column, in rows of the group, the step noted, per note.
+    /// Cells of the aggregated column, in rows of the group, the step noted, per note (at most
+    /// `limit` notes).
     pub noted: Vec<(String, u64)>,
+    /// Notes beyond the listed ones, and the cells they were made on.
+    pub more_notes: u64,
+    pub more_note_cells: u64,
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -88,6 +96,9 @@ pub struct DroppedFor {
     pub rows: u64,
     /// The first rows, 1-based data rows of the version the step read.
     pub first: Vec<u64>,
+    /// For duplicates: the row each of `first` duplicated (1-based, same version), in the
+    /// same order; empty for other reasons.
+    pub first_duplicate_of: Vec<u64>,
 }
 
 /// Explains cell `column` of the summary row `row` of `reference`.
@@ -407,17 +418,28 @@ fn walk(
                     if !in_group {
                         continue;
                     }
-                    match dropped.iter_mut().find(|x| x.reason == d.reason) {
+                    let reason = grouped_reason(d);
+                    match dropped.iter_mut().find(|x| x.reason == reason) {
                         Some(x) => {
                             x.rows += 1;
                             if x.first.len() < limit {
                                 x.first.push(d.row_idx + 1);
+                                x.first_duplicate_of.extend(d.duplicate_of.map(|r| r + 1));
                             }
                         }
                         None => dropped.push(DroppedFor {
-                            reason: d.reason.clone(),
+                            reason,
                             rows: 1,
-                            first: vec![d.row_idx + 1],
+                            first: if limit > 0 {
+                                vec![d.row_idx + 1]
+                            } else {
+                                Vec::new()
+                            },
+                            first_duplicate_of: if limit > 0 {
+                                d.duplicate_of.map(|r| r + 1).into_iter().collect()
+                            } else {
+                                Vec::new()
+                            },
                         }),
                     }
                 }
@@ -427,6 +449,14 @@ fn walk(
         }
     }
     if !dropped.is_empty() || undecided > 0 || changed_cells > 0 || !noted.is_empty() {
+        // The most frequent reasons and notes first; the rest counted.
+        dropped.sort_by_key(|d| std::cmp::Reverse(d.rows));
+        let rest = dropped.split_off(limit.min(dropped.len()));
+        let (more_reasons, more_reason_rows) =
+            (rest.len() as u64, rest.iter().map(|d| d.rows).sum());
+        noted.sort_by_key(|n| std::cmp::Reverse(n.1));
+        let rest = noted.split_off(limit.min(noted.len()));
+        let (more_notes, more_note_cells) = (rest.len() as u64, rest.iter().map(|n| n.1).sum());
         out.push(Upstream {
             step: step.id,
             operation: step.operation.clone(),
@@ -434,9 +464,13 @@ fn walk(
             produced: v.label(),
             read: main.as_ref().map(Version::label).unwrap_or_default(),
             dropped,
+            more_reasons,
+            more_reason_rows,
             undecided,
             changed_cells,
             noted,
+            more_notes,
+            more_note_cells,
         });
     }
 
@@ -472,4 +506,24 @@ fn walk(
         )?;
     }
     Ok(())
+}
+
+/// The reason a drop is listed under: a duplicate's reason without the row it duplicated, so
+/// that every duplicate a step dropped is one line.
+fn grouped_reason(d: &crate::model::Drop) -> String {
+    match d.duplicate_of {
+        Some(of) => {
+            let stored = d
+                .reason
+                .strip_prefix(&format!("duplicate of data row {}", of + 1))
+                .unwrap_or("")
+                .trim();
+            if stored.is_empty() {
+                "duplicate of an earlier row".to_string()
+            } else {
+                format!("duplicate of an earlier row {stored}")
+            }
+        }
+        None => d.reason.clone(),
+    }
 }

@@ -38,6 +38,9 @@ pub struct InferredLineage {
     pub columns_removed: Vec<String>,
     /// Renamed columns: (new name, old name).
     pub renamed: Vec<(String, String)>,
+    /// Rows were matched by order because it was asked for (`capture --match-by-order`), though a
+    /// key is declared.
+    pub order_asked: bool,
 }
 
 impl InferredLineage {
@@ -45,11 +48,28 @@ impl InferredLineage {
         self.changed_by_column.iter().map(|c| c.1).sum()
     }
 
+    /// Whether matching by key kept no row although rows were removed and added: what outside
+    /// work that rewrote the key values looks like. The key columns, if so.
+    pub fn key_rewritten(&self) -> Option<&[String]> {
+        match &self.matched_by {
+            MatchedBy::Key(k)
+                if self.n_unchanged + self.n_changed_rows == 0
+                    && self.n_removed > 0
+                    && self.n_added > 0 =>
+            {
+                Some(k)
+            }
+            _ => None,
+        }
+    }
+
     /// How rows were matched, as recorded in the step's parameters.
     pub fn inferred_by(&self) -> serde_json::Value {
         match &self.matched_by {
             MatchedBy::Key(k) => json!({"diff": "key", "key": k}),
+            MatchedBy::Order if self.order_asked => json!({"diff": "order", "asked": true}),
             MatchedBy::Order => json!({"diff": "order"}),
+            MatchedBy::Lineage { ancestor, .. } => json!({"diff": "lineage", "through": ancestor}),
         }
     }
 }
@@ -69,20 +89,34 @@ pub struct Successor {
 /// `drop_reason` is the reason given to each removed row.
 pub fn infer(
     store: &Store,
-    mut prepared: Box<PreparedIngest>,
+    prepared: Box<PreparedIngest>,
     from: Version,
     others: Vec<Version>,
     drop_reason: &str,
 ) -> Result<Successor> {
-    let to = prepared.draft(store)?;
-    let d = diff::diff_versions(
+    infer_matching(
         store,
-        &from,
-        &to,
-        &DiffOptions {
-            key: KeyChoice::Declared,
-        },
-    )?;
+        prepared,
+        from,
+        others,
+        drop_reason,
+        KeyChoice::Declared,
+    )
+}
+
+/// [`infer`], with the rows matched as `key` says (`KeyChoice::Unkeyed`: by order even when a
+/// key is declared, for outside work that rewrites key values).
+pub fn infer_matching(
+    store: &Store,
+    mut prepared: Box<PreparedIngest>,
+    from: Version,
+    others: Vec<Version>,
+    drop_reason: &str,
+    key: KeyChoice,
+) -> Result<Successor> {
+    let asked_order = key == KeyChoice::Unkeyed;
+    let to = prepared.draft(store)?;
+    let d = diff::diff_versions(store, &from, &to, &DiffOptions { key })?;
     let mut runs: Vec<RowRun> = Vec::with_capacity(d.pairing.runs.len());
     for r in &d.pairing.runs {
         // Changed and unchanged stretches that continue each other are one run of the row map.
@@ -154,6 +188,7 @@ pub fn infer(
             .map(|(old, new)| (new.clone(), old.clone()))
             .collect(),
         matched_by: d.matched_by,
+        order_asked: asked_order,
     };
     Ok(Successor {
         prepared,
@@ -183,9 +218,15 @@ pub fn record(
     kind: StepKind,
     code: Option<&serde_json::Value>,
     started_at: &str,
+    blobs: &[(String, u64)],
 ) -> Result<Vec<RecordedSuccessor>> {
     let store_dir = store.dir().to_path_buf();
     let ids = store.write(|tx| {
+        // Objects the step's record names besides its versions (the files an outside
+        // command's arguments named).
+        for (hash, n) in blobs {
+            tx.insert_object(hash, *n, "blob", started_at)?;
+        }
         let mut ids = Vec::with_capacity(successors.len());
         for s in successors.iter_mut() {
             let mut inputs = vec![(s.from.id, "input")];
@@ -268,7 +309,7 @@ pub fn ingest_hand_edit_from(
         Vec::new(),
         "removed by hand (inferred by diff)",
     )?];
-    let mut recorded = record(store, &mut s, StepKind::HandEdit, None, &started_at)?;
+    let mut recorded = record(store, &mut s, StepKind::HandEdit, None, &started_at, &[])?;
     match recorded.pop() {
         Some(r) => Ok(HandEditOutcome::Recorded {
             recorded: Box::new(r),

@@ -132,6 +132,7 @@ pub fn prepare_from(
     source: &SourceOptions,
 ) -> Result<Prepared> {
     validate_dataset_name(&opts.dataset)?;
+    let named = crate::convert::check_named_format(path)?;
     if let Some(format) = crate::convert::SourceFormat::of(path) {
         return crate::convert::prepare(store, path, opts, source, format);
     }
@@ -195,6 +196,7 @@ pub fn prepare_from(
     let table_hash = read_side.table.hash();
     let ended_at = clock::now_rfc3339();
 
+    let n_columns = scan.header.len();
     let source = SourceFile {
         path: path.display().to_string(),
         absolute_path: std::path::absolute(path)
@@ -230,7 +232,14 @@ pub fn prepare_from(
         header: scan.header,
         dialect: scan.dialect,
         profiles: scan.profiles,
-        warnings: scan.warnings,
+        warnings: {
+            let mut w = named;
+            w.extend(scan.warnings);
+            if scan.n_rows == 0 && opts.has_header {
+                w.push(crate::convert::no_rows_warning(path, n_columns));
+            }
+            w
+        },
     })))
 }
 

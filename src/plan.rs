@@ -314,7 +314,7 @@ impl RunFailure {
     fn before_start(error: Error) -> Self {
         RunFailure {
             done: Vec::new(),
-            at: "before the first step".into(),
+            at: "the start, before the first step".into(),
             error,
         }
     }

@@ -24,7 +24,15 @@
 //! - it changed or removed a row that the new history drops: forced, that change is left out;
 //! - it changed a row of which S had dropped a duplicate: the duplicate comes back without the
 //!   change; forced, it stays as it was;
-//! - it changed the columns themselves: it cannot be patched; forced, it is left out whole.
+//! - it changed the columns themselves: it cannot be patched; forced, it is left out whole;
+//! - re-applied, it makes a row equal to another row of the new history (the same row twice,
+//!   which its own version did not have): forced, both rows stay;
+//! - an inspection recorded as a hold point on a version the withdrawal replaces fails on the
+//!   new version that stands for it: forced, that version is recorded with the failing result.
+//!
+//! Every inspection recorded on a replaced version is run again on the version standing for it
+//! and recorded with it (as a hold point where it was one). Patches keep the lineage kind of the step
+//! they re-apply (a hand edit's stays `inferred`).
 //!
 //! Every forced conflict is listed in the revert step's parameters. A later built-in step that
 //! can no longer run (a column only S made, a value it no longer reads) stops the revert with
@@ -65,7 +73,8 @@ pub struct Conflict {
     /// The version it made (`name@seq`).
     pub version: String,
     /// `outside_command`, `row_from_reverted_step`, `column_from_reverted_step`,
-    /// `row_dropped_after_revert`, `duplicate_returns_unedited`, `columns_changed`.
+    /// `row_dropped_after_revert`, `duplicate_returns_unedited`, `columns_changed`,
+    /// `edited_row_twice`, `hold_point_fails`.
     pub kind: String,
     /// 1-based data row of `version` (or of the version the step read, for a removed row).
     pub row: Option<u64>,
@@ -87,6 +96,25 @@ pub struct RevertedLink {
     pub what: String,
 }
 
+/// A check recorded on a version of the old history, run again on the new version that stands
+/// for it.
+#[derive(Debug, Clone, Serialize)]
+pub struct Recheck {
+    /// The version of the old history it was recorded on (`NAME:vN`).
+    pub original: String,
+    /// The new version it ran on (`NAME:vN`).
+    pub version: String,
+    pub rule: serde_json::Value,
+    /// It stopped a plan's run when it failed (a hold point); failing again refuses the
+    /// withdrawal.
+    #[serde(rename = "hold_point")]
+    pub gate: bool,
+    pub passed: bool,
+    pub n_failing: u64,
+    /// The first failing rows, 1-based data rows of `version`.
+    pub first_failing: Vec<u64>,
+}
+
 /// What a revert recorded.
 #[derive(Debug, Clone, Serialize)]
 pub struct RevertReport {
@@ -100,6 +128,9 @@ pub struct RevertReport {
     pub unchanged: Vec<String>,
     /// Conflicts resolved because `--force` was given.
     pub forced: Vec<Conflict>,
+    /// The checks recorded on the versions the revert replaces, run again on the new versions
+    /// that stand for them (recorded with them, as gates where they were gates).
+    pub checks: Vec<Recheck>,
     /// Latest versions of other datasets made from the reverted history; a revert does not
     /// change them.
     pub untouched_downstream: Vec<String>,
@@ -218,7 +249,13 @@ fn pending_sets(store: &Store, p: &Pending) -> Result<Vec<(u32, Vec<RowRun>)>> {
 
 /// The new history before it is recorded: the pending steps, the conflicts met, the later
 /// steps that changed nothing, and what each recorded later step did.
-type Computed = (Vec<Pending>, Vec<Conflict>, Vec<String>, Vec<(i64, String)>);
+type Computed = (
+    Vec<Pending>,
+    Vec<Conflict>,
+    Vec<String>,
+    Vec<(i64, String)>,
+    Vec<(usize, Recheck)>,
+);
 
 /// A later step and what it read and made.
 struct Later {
@@ -300,7 +337,7 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
             StepKind::Operation | StepKind::HandEdit | StepKind::Command => {}
             other => {
                 return Err(Error::usage(format!(
-                "{} was made by a {} step; revert it first (`sluice withdraw {}`), then this one",
+                "{} was made by a {} step; withdraw that one first (`sluice withdraw {}`), then this one",
                 v.label(),
                 other.as_str().replace('_', " "),
                 v.label()
@@ -363,6 +400,10 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
         let mut current = restore.version(apply::pending_id(0), seq);
         pendings.push(restore);
         let mut new_origin: Vec<Origin> = (0..base.n_rows).map(Origin::Base).collect();
+        // Each version of the old history and the new one that stands for it (by its index
+        // among the pendings), with the step that made the old one.
+        let mut stands_for: Vec<(Version, i64, usize, Version)> =
+            vec![(target.clone(), reverted.id, 0, current.clone())];
 
         for l in &later {
             let computed = match l.step.kind {
@@ -402,9 +443,21 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
                 }
             };
             let Some((p, origins, what)) = computed else {
+                stands_for.push((
+                    l.output.clone(),
+                    l.step.id,
+                    pendings.len() - 1,
+                    current.clone(),
+                ));
                 continue;
             };
             if p.hash == current.hash {
+                stands_for.push((
+                    l.output.clone(),
+                    l.step.id,
+                    pendings.len() - 1,
+                    current.clone(),
+                ));
                 unchanged.push(format!(
                     "{} ({}, step {}) changed nothing once the reverted step was gone",
                     l.output.label(),
@@ -418,10 +471,17 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
             new_origin = origins;
             applied_again.push((l.step.id, what));
             pendings.push(p);
+            stands_for.push((
+                l.output.clone(),
+                l.step.id,
+                pendings.len() - 1,
+                current.clone(),
+            ));
         }
-        Ok((pendings, conflicts, unchanged, applied_again))
+        let rechecks = recheck(store, &stands_for, &mut conflicts)?;
+        Ok((pendings, conflicts, unchanged, applied_again, rechecks))
     })();
-    let (mut pendings, conflicts, unchanged, applied_again) = match computed {
+    let (mut pendings, conflicts, unchanged, applied_again, rechecks) = match computed {
         Ok(c) if c.1.is_empty() || opts.force => {
             store
                 .objects
@@ -429,7 +489,7 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
                 .map_err(|e| Error::io(&stage, e))?;
             c
         }
-        Ok((_, conflicts, _, _)) => {
+        Ok((_, conflicts, _, _, _)) => {
             store.objects.discard_stage();
             return Ok(RevertOutcome::Refused {
                 reverted: label,
@@ -480,6 +540,23 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
             let (vid, sid, seq) = apply::insert_pending(tx, p, &real)?;
             if i == 0 {
                 tx.set_reverts_step(sid, reverted_id)?;
+            }
+            for gate in [false, true] {
+                let rows: Vec<(String, bool, u64, String)> = rechecks
+                    .iter()
+                    .filter(|(at, r)| *at == i && r.gate == gate)
+                    .map(|(_, r)| {
+                        (
+                            crate::model::canonical_json(&r.rule),
+                            r.passed,
+                            r.n_failing,
+                            crate::model::canonical_json(&json!(r.first_failing)),
+                        )
+                    })
+                    .collect();
+                if !rows.is_empty() {
+                    tx.insert_check_results(vid, &opts.agent, &rows, gate, &ended_at)?;
+                }
             }
             let input_hash = match p.inputs.first() {
                 Some((id, _)) if *id < 0 => {
@@ -562,6 +639,7 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
     })?;
     let (links, last) = recorded;
     let last = last.ok_or_else(|| db("the revert recorded no version".into()))?;
+    let links_for_checks = links.clone();
     Ok(RevertOutcome::Recorded(RevertReport {
         reverted: label,
         reverted_step: reverted.id,
@@ -572,6 +650,15 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
         recorded: links,
         unchanged,
         forced: conflicts,
+        checks: rechecks
+            .into_iter()
+            .map(|(at, mut r)| {
+                if let Some(l) = links_for_checks.get(at) {
+                    r.version = l.version.clone();
+                }
+                r
+            })
+            .collect(),
         untouched_downstream: downstream,
     }))
 }
@@ -943,7 +1030,11 @@ fn patch(
         .collect();
     let mut patches: HashMap<(u64, usize), Vec<u8>> = HashMap::new();
     let mut row_values: HashMap<u64, Vec<Vec<u8>>> = HashMap::new();
+    // How often each row of the step's own version occurs there.
+    let mut own_copies: HashMap<u64, u64> = HashMap::new();
     apply::each_version_row(store, &l.output, |row, rec| {
+        let fields: Vec<&[u8]> = (0..rec.len()).map(|c| rec.field(c)).collect();
+        *own_copies.entry(row_hash(&fields)).or_default() += 1;
         for &(oc, w, c) in wanted_at.get(&row).into_iter().flatten() {
             patches.insert((w, c), rec.field(oc).to_vec());
         }
@@ -977,14 +1068,22 @@ fn patch(
         "removed by the {what} of step {} (re-applied after a revert)",
         l.step.id
     );
+    // Every written row's hash, and the rows the patch wrote values into (added or changed):
+    // one of those that now appears twice is a conflict.
+    let mut row_hashes: Vec<u64> = Vec::new();
+    let mut touched: Vec<u64> = Vec::new();
     let emit_added = |after: Option<u64>,
                       writer: &mut CanonicalWriter,
                       out_row: &mut u64,
-                      origins: &mut Vec<Origin>|
+                      origins: &mut Vec<Origin>,
+                      row_hashes: &mut Vec<u64>,
+                      touched: &mut Vec<u64>|
      -> Result<()> {
         for o in added_after.get(&after).into_iter().flatten() {
             if let Some(vals) = row_values.get(o) {
                 let fields: Vec<&[u8]> = vals.iter().map(Vec::as_slice).collect();
+                row_hashes.push(row_hash(&fields));
+                touched.push(*out_row);
                 writer.write_row(&fields).map_err(store_io)?;
                 origins.push(Origin::Added {
                     step: l.step.id,
@@ -995,7 +1094,14 @@ fn patch(
         }
         Ok(())
     };
-    emit_added(None, &mut writer, &mut out_row, &mut origins)?;
+    emit_added(
+        None,
+        &mut writer,
+        &mut out_row,
+        &mut origins,
+        &mut row_hashes,
+        &mut touched,
+    )?;
     apply::each_version_row(store, current, |row, rec| {
         if drop_rows.contains_key(&row) {
             drops.push(row, &reason, None);
@@ -1010,17 +1116,23 @@ fn patch(
                     len: 1,
                 }),
             }
+            let mut patched = false;
             let fields: Vec<&[u8]> = (0..rec.len())
                 .map(|c| match patches.get(&(row, c)) {
                     Some(v) => {
                         if v.as_slice() != rec.field(c) {
                             changes.push(c, out_row);
+                            patched = true;
                         }
                         v.as_slice()
                     }
                     None => rec.field(c),
                 })
                 .collect();
+            row_hashes.push(row_hash(&fields));
+            if patched {
+                touched.push(out_row);
+            }
             writer.write_row(&fields).map_err(store_io)?;
             origins.push(
                 new_origin
@@ -1033,9 +1145,53 @@ fn patch(
             );
             out_row += 1;
         }
-        emit_added(Some(row), &mut writer, &mut out_row, &mut origins)
+        emit_added(
+            Some(row),
+            &mut writer,
+            &mut out_row,
+            &mut origins,
+            &mut row_hashes,
+            &mut touched,
+        )
     })?;
     let written = writer.finish().map_err(store_io)?;
+    let mut seen: HashMap<u64, Vec<u64>> = HashMap::new();
+    for (r, h) in row_hashes.iter().enumerate() {
+        seen.entry(*h).or_default().push(r as u64);
+    }
+    let mut reported: HashSet<u64> = HashSet::new();
+    for &t in &touched {
+        let Some((h, same)) = row_hashes
+            .get(t as usize)
+            .and_then(|h| seen.get(h).map(|s| (h, s)))
+        else {
+            continue;
+        };
+        let own = own_copies.get(h).copied().unwrap_or(0);
+        if same.len() > 1 && same.len() as u64 > own && reported.insert(*h) {
+            let others: Vec<String> = same
+                .iter()
+                .filter(|&&r| r != t)
+                .take(5)
+                .map(|r| (r + 1).to_string())
+                .collect();
+            conflicts.push(conflict(
+                l,
+                "edited_row_twice",
+                None,
+                None,
+                format!(
+                    "the {what} of step {} re-applied makes data row {} of the new {} equal to data row{} {} (the same row twice, which the step's own version did not have)",
+                    l.step.id,
+                    t + 1,
+                    current.dataset,
+                    if others.len() == 1 { "" } else { "s" },
+                    others.join(", ")
+                ),
+                "both rows are kept; remove the copy with a later step",
+            ));
+        }
+    }
     let n_changed = changes.len();
     let prov = Provenance {
         runs: new_runs,
@@ -1062,7 +1218,9 @@ fn patch(
             reason: l.step.reason.as_deref().unwrap_or(&opts.reason),
             agent: &opts.agent,
             started_at: &started_at,
-            lineage: LineageKind::Exact,
+            // A hand edit's or command's lineage was inferred by a diff; patching it onto the
+            // new history does not make it more certain than it was.
+            lineage: l.step.lineage,
             repeats_step: Some(l.step.id),
         },
         written,
@@ -1081,4 +1239,100 @@ fn patch(
             l.step.id
         ),
     )))
+}
+
+/// Runs again, on the new version standing for each version of the old history, the checks
+/// recorded on that version (each rule once per version; a gate if it ever was one). A gate
+/// that fails again is a conflict.
+fn recheck(
+    store: &Store,
+    stands_for: &[(Version, i64, usize, Version)],
+    conflicts: &mut Vec<Conflict>,
+) -> Result<Vec<(usize, Recheck)>> {
+    let mut out = Vec::new();
+    for (old, step, at, new) in stands_for {
+        let mut rules: Vec<(String, bool)> = Vec::new();
+        for (rule, _, _, _, _, gate) in store.lineage.check_results(old.id)? {
+            match rules.iter_mut().find(|r| r.0 == rule) {
+                Some(r) => r.1 |= gate,
+                None => rules.push((rule, gate)),
+            }
+        }
+        for (text, gate) in rules {
+            let Ok(rule) = serde_json::from_str::<crate::checks::Rule>(&text) else {
+                return Err(db(format!(
+                    "an inspection recorded on {} holds a rule this build cannot read: {text}",
+                    old.label()
+                )));
+            };
+            let rule_value: serde_json::Value =
+                serde_json::from_str(&text).unwrap_or(serde_json::Value::Null);
+            let result = match crate::checks::evaluate(store, new, std::slice::from_ref(&rule)) {
+                Ok(mut r) => r.pop(),
+                // A column the rule names is gone with the reverted step: a gate that cannot
+                // run cannot pass; a plain check is left out.
+                Err(_) if !gate => continue,
+                Err(e) => {
+                    conflicts.push(Conflict {
+                        step: *step,
+                        version: old.label(),
+                        kind: "hold_point_fails".into(),
+                        row: None,
+                        column: None,
+                        detail: format!(
+                            "the inspection {text}, a hold point on {}, cannot run on the new history: {e}",
+                            old.label()
+                        ),
+                        when_forced: "the inspection is left out".into(),
+                    });
+                    continue;
+                }
+            };
+            let Some(r) = result else { continue };
+            if gate && !r.passed {
+                conflicts.push(Conflict {
+                    step: *step,
+                    version: old.label(),
+                    kind: "hold_point_fails".into(),
+                    row: r.first_failing.first().copied(),
+                    column: None,
+                    detail: format!(
+                        "the inspection {text}, a hold point on {}, fails on the new history: {} failing row{} (first: {})",
+                        old.label(),
+                        r.n_failing,
+                        if r.n_failing == 1 { "" } else { "s" },
+                        r.first_failing
+                            .iter()
+                            .map(|x| x.to_string())
+                            .collect::<Vec<_>>()
+                            .join(", ")
+                    ),
+                    when_forced: "the new version is recorded with the failing result".into(),
+                });
+            }
+            out.push((
+                *at,
+                Recheck {
+                    original: old.label(),
+                    version: new.label(),
+                    rule: rule_value,
+                    gate,
+                    passed: r.passed,
+                    n_failing: r.n_failing,
+                    first_failing: r.first_failing,
+                },
+            ));
+        }
+    }
+    Ok(out)
+}
+
+/// A hash of a row's fields (length-prefixed, so different splits differ).
+fn row_hash(fields: &[&[u8]]) -> u64 {
+    let mut h = xxhash_rust::xxh3::Xxh3::new();
+    for f in fields {
+        h.update(&(f.len() as u64).to_le_bytes());
+        h.update(f);
+    }
+    h.digest()
 }

@@ -238,12 +238,28 @@ fn identical_versions_have_no_differences() {
 }
 
 #[test]
-fn duplicate_keys_are_listed_with_their_rows() {
+fn duplicate_keys_are_paired_within_their_group_and_reported() {
     let s = two_versions("id,v\n1,a\n2,b\n1,c\n3,d\n2,e\n", "id,v\n1,a\n", None);
-    let err = s.fails(2, &["compare", "t:v1", "t:v2", "--key", "id"]);
-    assert_contains(&err, "t:v1: key id is not unique");
-    assert_contains(&err, "\"1\" (data rows 1, 3)");
-    assert_contains(&err, "\"2\" (data rows 2, 5)");
+    let d = s.json(&["compare", "t:v1", "t:v2", "--key", "id", "--json"]);
+    assert_eq!(d["paired_by"], "key");
+    // Unrelated versions: inside a group, the first row with the first row.
+    assert_eq!(d["duplicates"]["paired_by"], "order");
+    assert_eq!(d["duplicates"]["groups"], 2);
+    assert_eq!(d["duplicates"]["rows_from"], 4);
+    assert_eq!(d["duplicates"]["first"][0]["key"][0], "1");
+    assert_eq!(
+        d["duplicates"]["first"][0]["from_rows"],
+        serde_json::json!([1, 3])
+    );
+    assert_eq!(d["rows"]["unchanged"], 1);
+    assert_eq!(d["rows"]["removed"], 4);
+    assert_eq!(d["rows"]["added"], 0);
+    let text = s.ok(&["compare", "t:v1", "t:v2", "--key", "id"]);
+    assert_contains(
+        &text,
+        "2 key values are shared by several rows (4 before, 1 after)",
+    );
+    assert_contains(&text, "\"1\" rows 1, 3 → 1");
 }
 
 #[test]

@@ -137,9 +137,13 @@ fn a_union_then_dedupe_names_the_dropped_duplicate() {
     assert_eq!(up[0]["operation"], "dedupe");
     assert_eq!(
         up[0]["dropped"][0]["reason"],
-        "duplicate of data row 1 (the whole row)"
+        "duplicate of an earlier row (the whole row)"
     );
     assert_eq!(up[0]["dropped"][0]["first"], serde_json::json!([2]));
+    assert_eq!(
+        up[0]["dropped"][0]["first_duplicate_of"],
+        serde_json::json!([1])
+    );
     // The surviving row traces to its own source.
     let t = s.json(&["trace", "first", "--row", "1", "--column", "shop", "--json"]);
     assert_eq!(t["end"]["path"], "a.csv");

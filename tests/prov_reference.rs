@@ -77,12 +77,15 @@ fn the_prov_library_reads_the_demo_export_and_counts_what_the_store_holds() {
     let s = Sandbox::with_demo();
     let python = reference_python();
     let script = concat!(env!("CARGO_MANIFEST_DIR"), "/tests/reference/prov_check.py");
-    // A revert as well, so that its step and the steps it applied again are exported too.
+    // A revert as well, so that its step and the steps it applied again are exported too
+    // (conflicts accepted: the test orders it brings back fail the plan's status hold point,
+    // which it runs again).
     s.ok(&[
         "withdraw",
         "all_orders:v5",
         "--why",
         "test orders are kept for the training report",
+        "--accept-conflicts",
     ]);
     let log = s.json(&["timeline", "--json"]);
     // reviewed_orders:v2 is the end of the demo's longest line: intakes of three exports and two

@@ -377,36 +377,69 @@ fn the_same_chain_runs_on_next_quarters_export_and_each_step_names_the_one_it_re
     assert_eq!(snapshot, d.snapshot());
 }
 
+// Before: the file was recorded as quillby_orders' latest version and the run stopped at step 2,
+// leaving the broken file as the dataset's latest. Now every step's columns are checked against
+// the new file first.
 #[test]
-fn a_chain_that_cannot_apply_to_the_new_data_stops_and_keeps_what_was_done() {
+fn a_new_file_without_a_column_a_step_reads_is_refused_before_anything_is_recorded() {
     let d = Sandbox::with_demo();
-    // A new export without the parts_cost column: the second step (number on parts_cost)
-    // cannot apply.
+    // A new export without the parts_cost column, which the number step reads.
     d.file(
         "exports/odd.csv",
         "order_id,opened,customer,email,service,labour_hours,status,technician,notes\n\
          1,2026-10-01,Ada Quenwick,,Flat repair,1.0,done,Ines,\n",
     );
-    let r = d.run(&[
-        "rerun",
-        "q3_by_shop",
-        "--with",
-        "quillby_orders=exports/odd.csv",
-    ]);
-    assert_eq!(r.code, 2);
-    assert_contains(
-        &r.stderr,
-        "the run stopped at plan entry 2 (number on quillby_orders)",
-    );
-    // The trim of the new file changed nothing, so the number step read the new raw version.
-    assert_contains(
-        &r.stderr,
-        "column \"parts_cost\" is not in quillby_orders:v5",
+    let latest = d.json(&["about", "quillby_orders", "--json"])["version"]["seq"].clone();
+    let snapshot = d.snapshot();
+    let err = d.fails(
+        2,
+        &[
+            "rerun",
+            "q3_by_shop",
+            "--with",
+            "quillby_orders=exports/odd.csv",
+        ],
     );
     assert_contains(
-        &r.stderr,
-        "the store keeps what came before: quillby_orders:v5\n",
+        &err,
+        "exports/odd.csv lacks column \"parts_cost\" (used by step ",
     );
+    assert_contains(&err, "number on quillby_orders)");
+    assert_contains(
+        &err,
+        "nothing was recorded and the latest version of quillby_orders is unchanged",
+    );
+    assert_contains(&err, "`sluice rerun q3_by_shop --with quillby_orders=FILE`");
+    assert_eq!(snapshot, d.snapshot(), "nothing recorded");
+    assert_eq!(
+        d.json(&["about", "quillby_orders", "--json"])["version"]["seq"],
+        latest
+    );
+}
+
+// Before: "the run stopped at before the first step", with advice to use an --input option
+// this command does not have.
+#[test]
+fn a_missing_new_file_is_named_with_advice_that_works() {
+    let d = Sandbox::with_demo();
+    let snapshot = d.snapshot();
+    let err = d.fails(
+        2,
+        &[
+            "rerun",
+            "q3_by_shop",
+            "--with",
+            "quillby_orders=exports/nowhere.csv",
+        ],
+    );
+    assert_contains(
+        &err,
+        "exports/nowhere.csv: no such file; nothing was recorded",
+    );
+    assert_contains(&err, "`sluice rerun q3_by_shop --with quillby_orders=FILE`");
+    assert!(!err.contains("stopped at before"), "{err}");
+    assert!(!err.contains("--input"), "{err}");
+    assert_eq!(snapshot, d.snapshot());
 }
 
 #[test]

@@ -366,9 +366,12 @@ pub enum Command {
     /// Compare two versions: rows kept, added and removed, every changed cell, and added,
     /// removed, renamed or reordered columns
     #[command(
-        after_help = "Rows are paired by --key, else by the key declared on the dataset, else by order (a minimal edit \
-        script over row fingerprints); the first line says which. \
-        Changed cells are listed as a table (row | key | column | before | after); the characters that changed are \
+        after_help = "Rows are paired by --key; else, when recorded steps relate the two versions, through those steps' \
+        row maps (the recorded lineage); else by the key declared on the dataset; else by order (a minimal edit \
+        script over row fingerprints, then a guess at which removed and added rows are one row changed). The first \
+        line says which, and key values shared by several rows are counted and paired within their group. \
+        Changed cells are listed as a table (row | key | column | before | after; no key column when rows are paired \
+        by order); the characters that changed are \
         wrapped in « and », and white space is made visible (space ·, tab →, no-break space ⍽, line break ↵).\n\n\
         Examples:\n  sluice compare quillby_orders:v1 quillby_orders:v2 --key order_id --limit 20\n  \
         sluice compare all_orders:v1 all_orders:v2 --counts\n\n\
@@ -545,6 +548,11 @@ pub struct CaptureArgs {
     /// Why the command is run (kept with each step it makes)
     #[arg(long, value_name = "TEXT")]
     pub why: String,
+
+    /// Match the output's rows to the input's by order, not by the declared key (for a command
+    /// that rewrites key values); the step records which matching was used
+    #[arg(long = "match-by-order")]
+    pub match_by_order: bool,
 
     /// Print JSON (schema/output/capture.schema.json)
     #[arg(long)]
@@ -1031,8 +1039,8 @@ pub struct CompareArgs {
     pub from: String,
     /// The second version
     pub to: String,
-    /// Match rows by these key columns, comma-separated (default: the dataset's declared key,
-    /// else by order)
+    /// Pair rows by these key columns, comma-separated (default: through the recorded lineage
+    /// when steps relate the versions, else the dataset's declared key, else by order)
     #[arg(long, value_name = "COL[,COL..]", value_delimiter = ',')]
     pub key: Option<Vec<String>>,
     /// Counts only: changed cells per column, rows kept, added and removed, and how rows

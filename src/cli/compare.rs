@@ -110,12 +110,47 @@ fn marked_pair(old: &str, new: &str, colour: bool) -> (String, String) {
     (o, n)
 }
 
-/// How rows were paired, in words.
-fn pairing(d: &Diff) -> String {
-    match &d.matched_by {
-        MatchedBy::Key(k) => format!("rows paired by key {}", k.join(", ")),
-        MatchedBy::Order => "rows paired by order (no key)".to_string(),
+/// Rows that share a key value, paired within their group: how many, and the first groups with
+/// their 1-based data rows on each side.
+fn duplicates_line(out: &mut impl Write, dup: &sluice::diff::DuplicateKeys) -> io::Result<()> {
+    let rows = |rs: &[u64], n: u64| {
+        let mut t: Vec<String> = rs.iter().map(|r| count(*r)).collect();
+        if n > rs.len() as u64 {
+            t.push(format!("and {} more", count(n - rs.len() as u64)));
+        }
+        if t.is_empty() {
+            "-".to_string()
+        } else {
+            t.join(", ")
+        }
+    };
+    let mut groups: Vec<String> = dup
+        .first
+        .iter()
+        .map(|g| {
+            format!(
+                "\"{}\" rows {} → {}",
+                g.key.join(", "),
+                rows(&g.from_rows, g.n_from),
+                rows(&g.to_rows, g.n_to)
+            )
+        })
+        .collect();
+    if dup.groups > dup.first.len() as u64 {
+        groups.push(format!(
+            "and {} more",
+            count(dup.groups - dup.first.len() as u64)
+        ));
     }
+    writeln!(
+        out,
+        "  shared keys: {} shared by several rows ({} before, {} after), paired within each group by {}: {}",
+        plural(dup.groups, "key value is", "key values are"),
+        count(dup.rows_from),
+        count(dup.rows_to),
+        dup.paired_by,
+        groups.join("; ")
+    )
 }
 
 fn summary(out: &mut impl Write, d: &Diff, colour: bool) -> io::Result<()> {
@@ -125,8 +160,11 @@ fn summary(out: &mut impl Write, d: &Diff, colour: bool) -> io::Result<()> {
         "{b}compared {} with {}{r}; {}",
         d.from.label(),
         d.to.label(),
-        pairing(d)
+        d.matched_by.describe()
     )?;
+    if let Some(dup) = &d.duplicates {
+        duplicates_line(out, dup)?;
+    }
     writeln!(
         out,
         "  rows: {} before, {} after; {} kept ({} of them changed), {} removed, {} added",
@@ -230,12 +268,14 @@ pub fn compare_text(out: &mut impl Write, d: &Diff, how: &How) -> io::Result<()>
     }
     let limit = how.limit.unwrap_or(usize::MAX);
     let listed: Vec<&Change> = d.changes.iter().take(limit).collect();
-    // Rows paired by order have no key: the table then has no key column.
-    let keyed = matches!(d.matched_by, MatchedBy::Key(_));
+    // Rows paired by order have no key: the table then has no key column. Rows paired through
+    // the lineage show the declared key, if any.
+    let key_names = d.matched_by.key().map(|k| k.join(", "));
+    let keyed = key_names.is_some();
     let mut cells: Vec<Vec<String>> = Vec::new();
     let mut header = vec!["row".to_string()];
-    if let MatchedBy::Key(k) = &d.matched_by {
-        header.push(k.join(", "));
+    if let Some(k) = key_names {
+        header.push(k);
     }
     header.extend(["column", "before", "after"].map(String::from));
     cells.push(header);
@@ -373,6 +413,12 @@ struct JsonDiff<'a> {
     from: JsonVersion<'a>,
     to: JsonVersion<'a>,
     paired_by: &'static str,
+    /// How the rows were paired, in a sentence.
+    pairing: String,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    lineage_steps: Option<&'a Vec<i64>>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    duplicates: Option<&'a sluice::diff::DuplicateKeys>,
     key: Option<&'a [String]>,
     rows: JsonRows,
     alignment: Option<sluice::diff::Alignment>,
@@ -430,14 +476,14 @@ pub fn compare_json(out: &mut impl Write, d: &Diff, how: &How) -> io::Result<()>
             version: d.to.label(),
             hash: &d.to.hash,
         },
-        paired_by: match d.matched_by {
-            MatchedBy::Key(_) => "key",
-            MatchedBy::Order => "order",
+        paired_by: d.matched_by.method(),
+        pairing: d.matched_by.describe(),
+        lineage_steps: match &d.matched_by {
+            MatchedBy::Lineage { steps, .. } => Some(steps),
+            _ => None,
         },
-        key: match &d.matched_by {
-            MatchedBy::Key(k) => Some(k),
-            MatchedBy::Order => None,
-        },
+        duplicates: d.duplicates.as_ref(),
+        key: d.matched_by.key(),
         rows: JsonRows {
             from: d.from.n_rows,
             to: d.to.n_rows,

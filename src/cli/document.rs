@@ -257,10 +257,11 @@ fn write_file_recorded<T>(
     let name = path
         .file_name()
         .ok_or_else(|| anyhow!("{}: not a file name; give -o a file path", path.display()))?;
+    super::folder_exists(path, dir)?;
     let tmp = dir.join(format!(".{}.sluice-part", name.to_string_lossy()));
     let written = std::fs::File::create(&tmp)
         .and_then(|mut f| f.write_all(bytes).and_then(|_| f.sync_all()))
-        .with_context(|| format!("cannot write {}", tmp.display()));
+        .with_context(|| format!("cannot write {}", path.display()));
     if let Err(e) = written {
         let _ = std::fs::remove_file(&tmp);
         return Err(e);

@@ -181,9 +181,10 @@ pub fn write_file_atomically(
     let name = path
         .file_name()
         .ok_or_else(|| anyhow!("{}: not a file name", path.display()))?;
+    folder_exists(path, dir)?;
     let tmp = dir.join(format!(".{}.sluice-part", name.to_string_lossy()));
     let mut f =
-        std::fs::File::create(&tmp).with_context(|| format!("cannot create {}", tmp.display()))?;
+        std::fs::File::create(&tmp).with_context(|| format!("cannot write {}", path.display()))?;
     let result = fill(&mut f).and_then(|_| f.sync_all().map_err(Into::into));
     drop(f);
     if let Err(e) = result {
@@ -192,6 +193,19 @@ pub fn write_file_atomically(
     }
     std::fs::rename(&tmp, path).with_context(|| format!("cannot write {}", path.display()))?;
     Ok(())
+}
+
+/// The folder a file the user named goes into must exist; the message names that folder, not
+/// the temporary file written beside the target.
+pub fn folder_exists(path: &Path, dir: &Path) -> anyhow::Result<()> {
+    if dir.is_dir() {
+        return Ok(());
+    }
+    Err(anyhow!(sluice::Error::usage(format!(
+        "cannot write {}: the folder {} does not exist; create it first or give another path",
+        path.display(),
+        dir.display()
+    ))))
 }
 
 /// Writes `text` to `output`, or to standard output when no file is named.

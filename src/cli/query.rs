@@ -737,7 +737,15 @@ pub fn explanation(out: &mut impl Write, e: &Explanation) -> io::Result<()> {
                 .unwrap_or_default()
         )?;
         for d in &u.dropped {
-            let rows: Vec<String> = d.first.iter().map(|r| r.to_string()).collect();
+            let rows: Vec<String> = d
+                .first
+                .iter()
+                .enumerate()
+                .map(|(i, r)| match d.first_duplicate_of.get(i) {
+                    Some(of) => format!("{r} (of {of})"),
+                    None => r.to_string(),
+                })
+                .collect();
             writeln!(
                 out,
                 "    dropped {} of this group: {} (data rows {}{} of {})",
@@ -750,6 +758,14 @@ pub fn explanation(out: &mut impl Write, e: &Explanation) -> io::Result<()> {
                     ""
                 },
                 u.read
+            )?;
+        }
+        if u.more_reasons > 0 {
+            writeln!(
+                out,
+                "    dropped {} of this group for {} (--limit N lists more)",
+                plural(u.more_reason_rows, "row", "rows"),
+                plural(u.more_reasons, "other reason", "other reasons")
             )?;
         }
         if u.undecided > 0 {
@@ -768,6 +784,14 @@ pub fn explanation(out: &mut impl Write, e: &Explanation) -> io::Result<()> {
         }
         for (note, n) in &u.noted {
             writeln!(out, "    noted {}: {note}", plural(*n, "cell", "cells"))?;
+        }
+        if u.more_notes > 0 {
+            writeln!(
+                out,
+                "    noted {} with {} (--limit N lists more)",
+                plural(u.more_note_cells, "cell", "cells"),
+                plural(u.more_notes, "other note", "other notes")
+            )?;
         }
     }
     Ok(())

@@ -748,6 +748,9 @@ impl<'a> From<&'a RecordedSuccessor> for SuccessorJson<'a> {
             matched_by: match &l.matched_by {
                 sluice::diff::MatchedBy::Key(k) => format!("key {}", k.join(", ")),
                 sluice::diff::MatchedBy::Order => "order".to_string(),
+                sluice::diff::MatchedBy::Lineage { ancestor, .. } => {
+                    format!("lineage through {ancestor}")
+                }
             },
         }
     }
@@ -793,6 +796,7 @@ impl TryFrom<Acting<'_, CaptureArgs>> for sluice::exec::ExecOptions {
             cwd: a.cwd.to_path_buf(),
             reason: a.args.why.clone(),
             agent: a.agent,
+            match_by_order: a.args.match_by_order,
         })
     }
 }
@@ -1205,6 +1209,13 @@ pub fn exec_recorded(
             shape(&r.version)
         )?;
         writeln!(out, "  {}", inferred_summary(&r.lineage))?;
+        if let Some(k) = r.lineage.key_rewritten() {
+            writeln!(
+                out,
+                "  no row kept its key {}: if the command rewrote the key values, run it again matching rows by order (`sluice capture ... --match-by-order`)",
+                k.join(", ")
+            )?;
+        }
     }
     for v in unchanged {
         writeln!(

@@ -182,6 +182,32 @@ pub fn withdraw_text(out: &mut impl Write, o: &sluice::revert::RevertOutcome) ->
                     conflict_line(out, c)?;
                 }
             }
+            if !r.checks.is_empty() {
+                writeln!(out, "inspections recorded on the old history, run again:")?;
+                for c in &r.checks {
+                    let outcome = if c.passed {
+                        "passes".to_string()
+                    } else {
+                        format!(
+                            "fails: {} (first: {})",
+                            plural(c.n_failing, "row", "rows"),
+                            c.first_failing
+                                .iter()
+                                .map(|x| x.to_string())
+                                .collect::<Vec<_>>()
+                                .join(", ")
+                        )
+                    };
+                    writeln!(
+                        out,
+                        "  {} (as on {}{}): {} {outcome}",
+                        c.version,
+                        c.original,
+                        if c.gate { ", a hold point" } else { "" },
+                        c.rule
+                    )?;
+                }
+            }
             writeln!(
                 out,
                 "nothing was deleted: {} and the versions after it stay as they were",

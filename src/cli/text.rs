@@ -181,6 +181,7 @@ pub fn inferred_summary(l: &InferredLineage) -> String {
     let by = match &l.matched_by {
         MatchedBy::Key(k) => format!("by key {}", k.join(", ")),
         MatchedBy::Order => "by order".to_string(),
+        MatchedBy::Lineage { ancestor, .. } => format!("by lineage through {ancestor}"),
     };
     format!("lineage inferred {by}: {}", parts.join(", "))
 }

@@ -13,8 +13,10 @@
 //! versions are parsed at once, the first on another thread. Inside each block of
 //! removed and added rows, rows are paired greedily in order into changed rows: a removed row is
 //! paired with the first of the next [`PAIR_WINDOW`] unpaired added rows of the block with which
-//! at least half of its compared cells are equal. A one-column table therefore never pairs:
-//! its rows differ in their only cell.
+//! at least half of its compared cells are equal, and none of the columns declared as a key in
+//! either version's history differs. A one-column table therefore never pairs: its rows differ
+//! in their only cell. This pairing is a guess, used only for versions no recorded steps relate
+//! (see [`super::lineage`]), and the diff says so.
 
 use std::collections::HashSet;
 use std::convert::Infallible;
@@ -138,7 +140,15 @@ impl Cursor {
     }
 }
 
-pub(super) fn run(store: &Store, a: &Version, b: &Version, layout: Layout) -> Result<Diff> {
+/// `guard`: columns (index in A, index in B) declared as a key somewhere in the versions'
+/// history; two rows that differ in one of them are never paired as a changed row.
+pub(super) fn run(
+    store: &Store,
+    a: &Version,
+    b: &Version,
+    layout: Layout,
+    guard: &[(usize, usize)],
+) -> Result<Diff> {
     let objects = &store.objects;
     let (cand_a, cand_b) = layout.candidates();
     let (fp_a, fp_b) = layout.fp_cols();
@@ -255,7 +265,9 @@ pub(super) fn run(store: &Store, a: &Version, b: &Version, layout: Layout) -> Re
     let pair_up = |x: u64, y: u64| -> bool {
         match (from_rows.get(x), to_rows.get(y)) {
             (Some(ra), Some(rb)) => {
-                n_compared > 0 && 2 * equal_cells(&compared, ra, rb) >= n_compared
+                n_compared > 0
+                    && guard.iter().all(|&(i, j)| ra.field(i) == rb.field(j))
+                    && 2 * equal_cells(&compared, ra, rb) >= n_compared
             }
             _ => false,
         }
@@ -354,6 +366,7 @@ pub(super) fn run(store: &Store, a: &Version, b: &Version, layout: Layout) -> Re
         from_rows,
         to_rows,
         key_idx: (Vec::new(), Vec::new()),
+        duplicates: None,
     })
 }
 

@@ -6,16 +6,20 @@
 //! is unchanged without reading its values again; the others, and the removed and added rows,
 //! are read in a second pass, where the keys of each pair are also confirmed on their values.
 //!
-//! Keys are hashed with XXH3-64. Two rows of one side with the same hash are read again: equal
-//! key values are a duplicate key (an error), different ones a collision, after which the pass
-//! is repeated with another seed. A pair across the sides whose key values turn out to differ
-//! is reported as a removed and an added row.
+//! Keys are hashed with XXH3-64. Two rows of one side with the same hash are read again:
+//! different key values are a collision, after which the pass is repeated with another seed;
+//! equal ones are a duplicate key. Rows that share a key (raw data with exact duplicate rows,
+//! a column that is not unique) are paired within their group: through the recorded lineage
+//! when the versions are related, else in row order; the diff reports how many groups and rows
+//! there are and the first few ([`DuplicateKeys`]). A pair across the sides whose key values
+//! turn out to differ is reported as a removed and an added row.
 
+use super::lineage::Link;
 use super::read::{both, cuttable, each_row, rows_of};
-use super::scan::{scan, scan_keys, Scan, ScanPlan, SHOWN};
+use super::scan::{scan, scan_keys, Scan, ScanPlan};
 use super::{
-    cell_diffs, count_by_column, push_pair, settle_columns, Change, ChangeKind, Diff, Layout,
-    MatchedBy, RowPairing,
+    cell_diffs, count_by_column, push_pair, settle_columns, Change, ChangeKind, Diff,
+    DuplicateGroup, DuplicateKeys, Layout, MatchedBy, RowPairing,
 };
 use crate::error::{Error, ErrorKind, Result};
 use crate::model::Version;
@@ -25,6 +29,14 @@ use crate::store::Store;
 /// (each further try is needed with probability about n²/2⁶⁵).
 const SEEDS: u64 = 4;
 
+/// Key hashes with their key values as text, sorted by hash.
+type KeyTexts = Vec<(u64, Vec<String>)>;
+
+/// How many groups of rows sharing a key, and how many rows of each, a diff lists.
+const GROUPS_SHOWN: usize = 5;
+const ROWS_SHOWN: usize = 5;
+
+#[allow(clippy::too_many_arguments)]
 pub(super) fn run(
     store: &Store,
     a: &Version,
@@ -33,12 +45,13 @@ pub(super) fn run(
     key: Vec<String>,
     ka: Vec<usize>,
     kb: Vec<usize>,
+    link: Option<&Link>,
 ) -> Result<Diff> {
     let objects = &store.objects;
     let (cand_a, cand_b) = layout.candidates();
     let (fp_a, fp_b) = layout.fp_cols();
     let mut seed = 0u64;
-    let (sa, sb) = loop {
+    let (sa, sb, dup_texts) = loop {
         let plan = |k: &'_ [usize], fp: Option<&'_ [usize]>, cand: &'_ [usize], v: &Version| {
             let plan = ScanPlan {
                 key: Some(k),
@@ -61,10 +74,13 @@ pub(super) fn run(
         )?;
         blank_keys(a, &key, &sa)?;
         blank_keys(b, &key, &sb)?;
-        let clean_a = unique_keys(store, a, &key, &ka, &sa)?;
-        let clean_b = unique_keys(store, b, &key, &kb, &sb)?;
-        if clean_a && clean_b {
-            break (sa, sb);
+        let dup_a = duplicate_keys(store, a, &ka, &sa)?;
+        let dup_b = duplicate_keys(store, b, &kb, &sb)?;
+        if let (Some(mut da), Some(db)) = (dup_a, dup_b) {
+            da.extend(db);
+            da.sort();
+            da.dedup_by_key(|d| d.0);
+            break (sa, sb, da);
         }
         seed += 1;
         if seed == SEEDS {
@@ -78,33 +94,93 @@ pub(super) fn run(
         }
     };
 
-    // The merge walk: (row in A, row in B) for equal key hashes.
+    // The merge walk: (row in A, row in B) for equal key hashes; rows sharing a key are paired
+    // within their group.
     let mut pairs: Vec<(u64, u64)> = Vec::new();
     let mut removed: Vec<u64> = Vec::new();
     let mut added: Vec<u64> = Vec::new();
+    let mut dups = DuplicateKeys {
+        paired_by: if link.is_some() { "lineage" } else { "order" },
+        groups: 0,
+        rows_from: 0,
+        rows_to: 0,
+        first: Vec::new(),
+    };
     let (mut i, mut j) = (0usize, 0usize);
     while i < sa.keys.len() || j < sb.keys.len() {
-        match (sa.keys.get(i), sb.keys.get(j)) {
-            (Some(x), Some(y)) if x.0 == y.0 => {
-                pairs.push((x.1, y.1));
-                i += 1;
-                j += 1;
-            }
-            (Some(x), Some(y)) if x.0 < y.0 => {
-                removed.push(x.1);
-                i += 1;
-            }
-            (Some(x), None) => {
-                removed.push(x.1);
-                i += 1;
-            }
-            (_, Some(y)) => {
-                added.push(y.1);
-                j += 1;
-            }
+        let h = match (sa.keys.get(i), sb.keys.get(j)) {
+            (Some(x), Some(y)) => x.0.min(y.0),
+            (Some(x), None) => x.0,
+            (None, Some(y)) => y.0,
             (None, None) => break,
+        };
+        let i2 = i + sa.keys[i..].iter().take_while(|k| k.0 == h).count();
+        let j2 = j + sb.keys[j..].iter().take_while(|k| k.0 == h).count();
+        let ga: Vec<u64> = sa.keys[i..i2].iter().map(|k| k.1).collect();
+        let gb: Vec<u64> = sb.keys[j..j2].iter().map(|k| k.1).collect();
+        i = i2;
+        j = j2;
+        if ga.len() <= 1 && gb.len() <= 1 {
+            match (ga.first(), gb.first()) {
+                (Some(&x), Some(&y)) => pairs.push((x, y)),
+                (Some(&x), None) => removed.push(x),
+                (None, Some(&y)) => added.push(y),
+                (None, None) => {}
+            }
+            continue;
+        }
+        dups.groups += 1;
+        dups.rows_from += ga.len() as u64;
+        dups.rows_to += gb.len() as u64;
+        if dups.first.len() < GROUPS_SHOWN {
+            let text = dup_texts
+                .binary_search_by_key(&h, |d| d.0)
+                .ok()
+                .map(|k| dup_texts[k].1.clone())
+                .unwrap_or_default();
+            dups.first.push(DuplicateGroup {
+                key: text,
+                from_rows: ga.iter().take(ROWS_SHOWN).map(|r| r + 1).collect(),
+                n_from: ga.len() as u64,
+                to_rows: gb.iter().take(ROWS_SHOWN).map(|r| r + 1).collect(),
+                n_to: gb.len() as u64,
+            });
+        }
+        match link {
+            Some(l) => {
+                // The same row of the version both come from.
+                let mut taken = vec![false; ga.len()];
+                for &y in &gb {
+                    let anc = l.b_rows().get(y as usize).copied().unwrap_or(u64::MAX);
+                    let partner = (anc != u64::MAX)
+                        .then(|| {
+                            ga.iter().enumerate().position(|(k, &x)| {
+                                !taken[k] && l.a_rows().get(x as usize) == Some(&anc)
+                            })
+                        })
+                        .flatten();
+                    match partner {
+                        Some(k) => {
+                            taken[k] = true;
+                            pairs.push((ga[k], y));
+                        }
+                        None => added.push(y),
+                    }
+                }
+                removed.extend(ga.iter().zip(&taken).filter(|(_, &t)| !t).map(|(&x, _)| x));
+            }
+            None => {
+                // In row order: the first with the first, and so on.
+                let n = ga.len().min(gb.len());
+                pairs.extend(ga[..n].iter().copied().zip(gb[..n].iter().copied()));
+                removed.extend_from_slice(&ga[n..]);
+                added.extend_from_slice(&gb[n..]);
+            }
         }
     }
+    removed.sort_unstable();
+    added.sort_unstable();
+    drop(dup_texts);
     let Scan {
         fps: fps_a,
         cand: hash_a,
@@ -268,6 +344,7 @@ pub(super) fn run(
         from_rows,
         to_rows,
         key_idx: (ka, kb),
+        duplicates: (dups.groups > 0).then_some(dups),
     })
 }
 
@@ -302,81 +379,57 @@ fn blank_keys(v: &Version, key: &[String], s: &Scan) -> Result<()> {
     )))
 }
 
-/// `Ok(true)` when no two rows share a key hash; an error listing them when two rows share key
-/// values; `Ok(false)` when only hashes collide.
-fn unique_keys(
+/// The key hashes that two or more rows of `v` share with equal key values, with those values
+/// (sorted by hash); `None` when two different keys share a hash (a collision: try another
+/// seed).
+fn duplicate_keys(
     store: &Store,
     v: &Version,
-    key: &[String],
     kcols: &[usize],
     s: &Scan,
-) -> Result<bool> {
-    let mut suspects: Vec<u64> = Vec::new();
+) -> Result<Option<KeyTexts>> {
+    let mut suspects: Vec<(u64, u64)> = Vec::new();
     for w in s.keys.windows(2) {
         if w[0].0 == w[1].0 {
-            suspects.push(w[0].1);
-            suspects.push(w[1].1);
+            suspects.push((w[0].1, w[0].0));
+            suspects.push((w[1].1, w[1].0));
         }
     }
     if suspects.is_empty() {
-        return Ok(true);
+        return Ok(Some(Vec::new()));
     }
     suspects.sort_unstable();
     suspects.dedup();
-    // Read the suspects' key values: (values, row), in row order.
-    let mut found: Vec<(Vec<Vec<u8>>, u64)> = Vec::with_capacity(suspects.len());
+    // Read the suspects' key values: (hash, values), in row order.
+    let mut found: Vec<(u64, Vec<Vec<u8>>)> = Vec::with_capacity(suspects.len());
     let mut next = 0usize;
     each_row(&store.objects, v, |row, r| {
-        if next < suspects.len() && suspects[next] == row {
-            found.push((kcols.iter().map(|&c| r.field(c).to_vec()).collect(), row));
+        if next < suspects.len() && suspects[next].0 == row {
+            found.push((
+                suspects[next].1,
+                kcols.iter().map(|&c| r.field(c).to_vec()).collect(),
+            ));
             next += 1;
         }
         Ok(())
     })?;
     found.sort();
-    let mut groups: Vec<(String, Vec<u64>)> = Vec::new();
-    let mut n_groups = 0u64;
-    let mut i = 0usize;
-    while i < found.len() {
-        let mut j = i + 1;
-        while j < found.len() && found[j].0 == found[i].0 {
-            j += 1;
+    found.dedup();
+    let mut out: Vec<(u64, Vec<String>)> = Vec::new();
+    for w in found.windows(2) {
+        if w[0].0 == w[1].0 {
+            // Two different key values under one hash.
+            return Ok(None);
         }
-        if j - i > 1 {
-            n_groups += 1;
-            let text: Vec<String> = found[i]
-                .0
+    }
+    for (h, values) in found {
+        out.push((
+            h,
+            values
                 .iter()
                 .map(|f| String::from_utf8_lossy(f).into_owned())
-                .collect();
-            groups.push((text.join(", "), found[i..j].iter().map(|f| f.1).collect()));
-        }
-        i = j;
+                .collect(),
+        ));
     }
-    if groups.is_empty() {
-        return Ok(false);
-    }
-    // The groups in the order their first row appears.
-    groups.sort_by_key(|g| g.1[0]);
-    let shown: Vec<String> = groups
-        .iter()
-        .take(SHOWN)
-        .map(|(k, rows)| {
-            let rows: Vec<String> = rows.iter().map(|r| (r + 1).to_string()).collect();
-            format!("\"{k}\" (data rows {})", rows.join(", "))
-        })
-        .collect();
-    let more = n_groups.saturating_sub(SHOWN as u64);
-    Err(Error::usage(format!(
-        "{}: key {} is not unique: {}{}; a diff by key needs every key once: pass --key with \
-         columns that identify each row",
-        v.label(),
-        key.join(", "),
-        shown.join("; "),
-        if more > 0 {
-            format!("; and {more} more")
-        } else {
-            String::new()
-        }
-    )))
+    Ok(Some(out))
 }

@@ -2,17 +2,25 @@
 //! every changed cell with its old and new value, and which columns were added, removed,
 //! renamed or reordered. Returns data ([`Diff`]); the command line renders it.
 //!
-//! Rows are matched in one of two ways:
+//! Rows are matched in one of three ways:
 //!
+//! - **by lineage** ([`lineage`]), when the two versions come from one version through recorded
+//!   steps (one descends from the other, or both from a common one): each side's rows are
+//!   carried back through the steps' row maps, and rows from the same row are the same row.
+//!   This is the truth the steps recorded, so it is preferred to a declared key; an explicit
+//!   key (`KeyChoice::Columns`) still matches by key.
 //! - **by key** ([`keyed`]), when a key is given or declared on the dataset: rows with equal key
 //!   values are the same row. Each side keeps a sorted vector of (key hash, row number) and the
 //!   two are walked together; only rows whose fingerprints differ are read again to compare
-//!   cells. A key that occurs twice or is blank is an error.
-//! - **by order** ([`aligned`]), otherwise: the two sequences of row fingerprints are aligned
+//!   cells. A blank key is an error; rows that share a key are paired within their group (by
+//!   lineage when the versions are related, else in order) and reported ([`DuplicateKeys`]).
+//! - **by order** ([`aligned`]), for unrelated versions without a key: the two sequences of row fingerprints are aligned
 //!   by a minimal edit script (Myers' O(ND) algorithm, from the `similar` crate), rows matched
 //!   by fingerprint are confirmed on their values, and inside each block of removed and added
 //!   rows a removed row and an added row are paired as one *changed* row when at least half of
-//!   their compared cells are equal (see [`aligned::PAIR_WINDOW`]).
+//!   their compared cells are equal (see [`aligned::PAIR_WINDOW`]). This is a heuristic and
+//!   the diff says so; it never pairs two rows whose values differ in a column declared as a
+//!   key on any dataset of either version's history.
 //!
 //! Columns are matched by name; a column only in the first version and a column only in the
 //! second are reported as a rename when they hold equal values in every pair of matched rows.
@@ -25,6 +33,7 @@
 pub mod aligned;
 pub mod chars;
 pub mod keyed;
+pub mod lineage;
 pub mod read;
 mod scan;
 
@@ -45,7 +54,9 @@ pub enum KeyChoice {
     Declared,
     /// These key columns.
     Columns(Vec<String>),
-    /// By order, even when a key is declared.
+    /// Without a key, even when one is declared: by lineage when the versions are related,
+    /// else by order, and then without the declared key columns guarding the pairing (for
+    /// outside work that rewrites key values, `capture --match-by-order`).
     Unkeyed,
 }
 
@@ -104,7 +115,101 @@ pub struct ColumnChanges {
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub enum MatchedBy {
     Key(Vec<String>),
+    /// By the similarity heuristic, for versions no recorded steps relate.
     Order,
+    /// Through the row maps of recorded steps.
+    Lineage {
+        /// The version (`name@seq`) both sides' rows were carried back to.
+        ancestor: String,
+        /// The steps between it and each side, oldest first.
+        steps: Vec<i64>,
+        /// Whether any of them has lineage inferred by a diff (outside work, hand edits).
+        inferred: bool,
+        /// The key declared on the dataset, shown beside each row.
+        key: Option<Vec<String>>,
+    },
+}
+
+impl MatchedBy {
+    /// `lineage`, `key` or `order`.
+    pub fn method(&self) -> &'static str {
+        match self {
+            MatchedBy::Key(_) => "key",
+            MatchedBy::Order => "order",
+            MatchedBy::Lineage { .. } => "lineage",
+        }
+    }
+
+    /// The key columns shown beside each row, if any.
+    pub fn key(&self) -> Option<&[String]> {
+        match self {
+            MatchedBy::Key(k) => Some(k),
+            MatchedBy::Lineage { key, .. } => key.as_deref(),
+            MatchedBy::Order => None,
+        }
+    }
+
+    /// One sentence on how the rows were paired, for people.
+    pub fn describe(&self) -> String {
+        match self {
+            MatchedBy::Key(k) => format!("rows paired by key {}", k.join(", ")),
+            MatchedBy::Order => "rows paired by order (no key); no recorded steps relate the \
+                                 versions, so a removed and an added row are paired as changed \
+                                 when at least half their cells agree (a guess)"
+                .to_string(),
+            MatchedBy::Lineage {
+                ancestor,
+                steps,
+                inferred,
+                ..
+            } => {
+                let through = if steps.is_empty() {
+                    "the same rows".to_string()
+                } else {
+                    format!(
+                        "the row maps of step{} {}",
+                        if steps.len() == 1 { "" } else { "s" },
+                        steps
+                            .iter()
+                            .map(|s| s.to_string())
+                            .collect::<Vec<_>>()
+                            .join(", ")
+                    )
+                };
+                format!(
+                    "rows paired through the recorded lineage: {through}, back to {ancestor}{}",
+                    if *inferred {
+                        " (some of it inferred when outside work was recorded)"
+                    } else {
+                        ""
+                    }
+                )
+            }
+        }
+    }
+}
+
+/// Rows that share a key value in a diff by key, paired within their group.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize)]
+pub struct DuplicateKeys {
+    /// How rows inside a group were paired: `lineage` or `order`.
+    pub paired_by: &'static str,
+    /// Key values that occur more than once on either side.
+    pub groups: u64,
+    /// Rows in those groups, per side.
+    pub rows_from: u64,
+    pub rows_to: u64,
+    /// The first few groups: key values and their first few 1-based data rows per side.
+    pub first: Vec<DuplicateGroup>,
+}
+
+#[derive(Debug, Clone, PartialEq, Eq, Serialize)]
+pub struct DuplicateGroup {
+    pub key: Vec<String>,
+    pub from_rows: Vec<u64>,
+    pub n_from: u64,
+    pub to_rows: Vec<u64>,
+    pub n_to: u64,
 }
 
 /// For a diff by order: the size of the minimal edit script by fingerprint, before removed and
@@ -157,6 +262,8 @@ pub struct Diff {
     pub to_rows: RowStore,
     /// Key column indices in the first and second header (empty for a diff by order).
     pub key_idx: (Vec<usize>, Vec<usize>),
+    /// In a diff by key: the rows that share a key value, paired within their group.
+    pub duplicates: Option<DuplicateKeys>,
 }
 
 impl Diff {
@@ -217,28 +324,81 @@ pub fn diff(store: &Store, from: &str, to: &str, opts: &DiffOptions) -> Result<D
 
 /// Compares two versions already resolved.
 pub fn diff_versions(store: &Store, a: &Version, b: &Version, opts: &DiffOptions) -> Result<Diff> {
-    let key = match &opts.key {
-        KeyChoice::Columns(cols) => Some(cols.clone()),
-        KeyChoice::Unkeyed => None,
-        KeyChoice::Declared => match store.lineage.dataset(&b.dataset)?.and_then(|d| d.key) {
-            Some(k) => Some(k),
-            None => store.lineage.dataset(&a.dataset)?.and_then(|d| d.key),
-        },
+    let declared = || -> Result<Option<Vec<String>>> {
+        Ok(
+            match store.lineage.dataset(&b.dataset)?.and_then(|d| d.key) {
+                Some(k) => Some(k),
+                None => store.lineage.dataset(&a.dataset)?.and_then(|d| d.key),
+            },
+        )
     };
     let layout = Layout::new(a, b);
-    match key {
-        Some(k) => {
-            if k.is_empty() || k.iter().any(|c| c.trim().is_empty()) {
-                return Err(Error::usage(
-                    "--key needs at least one column name, e.g. --key order_id",
-                ));
-            }
+    let link = lineage::link(store, a, b)?;
+    match (&opts.key, link) {
+        (KeyChoice::Columns(k), link) => {
+            let k = k.clone();
+            check_key(&k)?;
             let ka = key_indices(a, &k)?;
             let kb = key_indices(b, &k)?;
-            keyed::run(store, a, b, layout, k, ka, kb)
+            keyed::run(store, a, b, layout, k, ka, kb, link.as_ref())
         }
-        None => aligned::run(store, a, b, layout),
+        (KeyChoice::Declared | KeyChoice::Unkeyed, Some(link)) => {
+            // The key is only shown beside each row, when both versions have its columns.
+            let key = match (&opts.key, declared()?) {
+                (KeyChoice::Declared, Some(k)) => match (key_indices(a, &k), key_indices(b, &k)) {
+                    (Ok(ka), Ok(kb)) => Some((k, ka, kb)),
+                    _ => None,
+                },
+                _ => None,
+            };
+            lineage::run(store, a, b, layout, link, key)
+        }
+        (KeyChoice::Declared, None) => match declared()? {
+            Some(k) => {
+                check_key(&k)?;
+                let ka = key_indices(a, &k)?;
+                let kb = key_indices(b, &k)?;
+                keyed::run(store, a, b, layout, k, ka, kb, None)
+            }
+            None => aligned::run(store, a, b, layout, &history_key_columns(store, a, b)?),
+        },
+        // Asked for explicitly (outside work that rewrites key values): no key column
+        // guards the pairing either.
+        (KeyChoice::Unkeyed, None) => aligned::run(store, a, b, layout, &[]),
     }
+}
+
+fn check_key(k: &[String]) -> Result<()> {
+    if k.is_empty() || k.iter().any(|c| c.trim().is_empty()) {
+        return Err(Error::usage(
+            "--key needs at least one column name, e.g. --key order_id",
+        ));
+    }
+    Ok(())
+}
+
+/// The columns declared as a key on any dataset of either version's history that both headers
+/// have, as (index in A, index in B): the heuristic pairing never pairs rows that differ in
+/// one of them.
+fn history_key_columns(store: &Store, a: &Version, b: &Version) -> Result<Vec<(usize, usize)>> {
+    let mut names: Vec<String> = Vec::new();
+    for v in [a, b] {
+        for d in lineage::datasets_behind(store, v)? {
+            if let Some(k) = store.lineage.dataset(&d)?.and_then(|d| d.key) {
+                names.extend(k);
+            }
+        }
+    }
+    names.sort();
+    names.dedup();
+    Ok(names
+        .iter()
+        .filter_map(|n| {
+            let i = a.header.iter().position(|h| h == n)?;
+            let j = b.header.iter().position(|h| h == n)?;
+            Some((i, j))
+        })
+        .collect())
 }
 
 fn key_indices(v: &Version, key: &[String]) -> Result<Vec<usize>> {

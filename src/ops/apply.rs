@@ -452,6 +452,27 @@ fn apply_to(store: &mut Store, input: Version, opts: &ApplyOptions, mode: Mode) 
             .map(|(row, col, v, why)| format!("data row {} {col} \"{v}\" ({why})", row + 1))
             .collect();
         let ambiguous = failures.iter().any(|f| f.3 == AMBIGUOUS);
+        let mark_advice = match &opts.op {
+            Operation::Number {
+                columns,
+                decimal_comma,
+                ..
+            } => super::number::decimal_mark_advice(
+                failures.iter().map(|f| f.2.as_str()),
+                *decimal_comma,
+                &format!(
+                    "sluice clean {} number --columns {}{}",
+                    input.dataset,
+                    columns.join(","),
+                    if *decimal_comma {
+                        ""
+                    } else {
+                        " --decimal-comma"
+                    }
+                ),
+            ),
+            _ => None,
+        };
         let what = if matches!(opts.op, Operation::Date { .. }) {
             "a date"
         } else {
@@ -463,9 +484,11 @@ fn apply_to(store: &mut Store, input: Version, opts: &ApplyOptions, mode: Mode) 
             shown.join(", "),
             if failures.len() > 10 { format!(", and {} more", failures.len() - 10) } else { String::new() },
             if ambiguous {
-                "say which order the dates are written in with --order dmy or --order mdy"
+                "say which order the dates are written in with --order dmy or --order mdy".to_string()
+            } else if let Some(advice) = mark_advice {
+                advice
             } else {
-                "fix them upstream, or pass --on-error keep (leave the text, noted) or --on-error blank (empty the cell, noted); in a plan, \"on_error\": \"keep\" or \"blank\""
+                "fix them upstream, or pass --on-error keep (leave the text, noted) or --on-error blank (empty the cell, noted); in a plan, \"on_error\": \"keep\" or \"blank\"".to_string()
             }
         ))
         .into());

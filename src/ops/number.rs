@@ -169,6 +169,49 @@ pub fn parse_amount(text: &str, decimal_comma: bool) -> Option<String> {
     Some(out)
 }
 
+/// Advice for amounts that could not be read: when the other decimal mark reads some of them,
+/// which option to change, and how many it would read. `None` when it reads none.
+pub fn decimal_mark_advice<'a>(
+    failing: impl IntoIterator<Item = &'a str>,
+    decimal_comma: bool,
+    retry: &str,
+) -> Option<String> {
+    let (mut n, mut read) = (0u64, 0u64);
+    for v in failing {
+        n += 1;
+        if parse_amount(v, !decimal_comma).is_some() {
+            read += 1;
+        }
+    }
+    if read == 0 {
+        return None;
+    }
+    let (mark, change, plan) = if decimal_comma {
+        (
+            "a decimal point",
+            "without --decimal-comma",
+            "\"decimal_comma\": false",
+        )
+    } else {
+        (
+            "a decimal comma",
+            "with --decimal-comma",
+            "\"decimal_comma\": true",
+        )
+    };
+    let how_many = if read == n {
+        format!(
+            "{} read as amounts written with {mark}",
+            if n == 1 { "it" } else { "all of them" }
+        )
+    } else {
+        format!("{read} of the {n} read as amounts written with {mark}")
+    };
+    Some(format!(
+        "{how_many}: retry {change} (`{retry}`; in a plan, {plan})"
+    ))
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

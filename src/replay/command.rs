@@ -41,6 +41,18 @@ pub(super) struct RecordedCode {
     pub inputs: Vec<RecordedInput>,
     #[serde(default)]
     pub outputs: Vec<RecordedOutput>,
+    /// The files the command line named, with the bytes they had when it ran.
+    #[serde(default)]
+    pub files: Vec<RecordedFile>,
+}
+
+#[derive(Debug, Clone, Deserialize)]
+pub(super) struct RecordedFile {
+    /// The argument as typed (relative to the working directory, or absolute).
+    pub path: String,
+    pub hash: String,
+    #[serde(default)]
+    pub executable: bool,
 }
 
 #[derive(Debug, Clone, Deserialize)]
@@ -234,6 +246,55 @@ pub(super) fn rerun(store: &mut Store, step: &Step, outputs: &[Version]) -> Resu
     };
     let cwd = checkout.join(inside);
     fs::create_dir_all(&cwd).map_err(|e| Error::io(&cwd, e))?;
+
+    // The files the command line named, as they were when it ran (an untracked script, a
+    // modified settings file), written over the commit's.
+    let mut restored = Vec::new();
+    for f in &rec.files {
+        let rel = Path::new(&f.path);
+        if rel.is_absolute()
+            || rel
+                .components()
+                .any(|c| c == std::path::Component::ParentDir)
+        {
+            warnings.push(format!(
+                "{} lies outside the working directory; the command reads it where it is now, not as recorded",
+                f.path
+            ));
+            continue;
+        }
+        let target = cwd.join(rel);
+        if let Some(parent) = target.parent() {
+            fs::create_dir_all(parent).map_err(|e| Error::io(parent, e))?;
+        }
+        let hash: Hash = f
+            .hash
+            .parse()
+            .map_err(|e: String| Error::from(ErrorKind::Inconsistent(e)))?;
+        let _ = fs::remove_file(&target);
+        let mut out = fs::File::create(&target).map_err(|e| Error::io(&target, e))?;
+        if let Err(e) = store.objects.copy_to(&hash, &mut out) {
+            return Ok(Rerun::stop(
+                "code_missing",
+                format!("the recorded bytes of {} cannot be read: {e}", f.path),
+                warnings,
+            ));
+        }
+        drop(out);
+        #[cfg(unix)]
+        if f.executable {
+            use std::os::unix::fs::PermissionsExt;
+            fs::set_permissions(&target, fs::Permissions::from_mode(0o755))
+                .map_err(|e| Error::io(&target, e))?;
+        }
+        restored.push(f.path.clone());
+    }
+    if !restored.is_empty() {
+        warnings.push(format!(
+            "run with the recorded bytes of {}",
+            restored.join(", ")
+        ));
+    }
 
     // The inputs, copied from the store.
     let recorded_inputs = store.lineage.step_input_versions(step.id)?;

@@ -153,6 +153,7 @@ fn summarize(store: &Store, recorded: &Version, computed: &Version) -> Result<Di
         matched_by: match &d.matched_by {
             MatchedBy::Key(k) => format!("key {}", k.join(",")),
             MatchedBy::Order => "order".into(),
+            MatchedBy::Lineage { .. } => "lineage".into(),
         },
         rows_changed: d.n_changed(),
         rows_only_recorded: d.n_removed(),

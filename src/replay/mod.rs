@@ -462,8 +462,11 @@ fn computed_difference(
 /// Applies the chain of steps that made `reference` to new raw data for its input `name`
 /// (next quarter's export): `file` is taken in as the next version of that dataset, the other
 /// raw inputs stay the versions the chain read, and every step is recorded again in order,
-/// each naming the step it repeats. A step that cannot apply (a missing column, a failing
-/// gate) stops the run and keeps what was done, as `sluice run` does.
+/// each naming the step it repeats. Before anything is recorded the file is read (without
+/// recording it) and every column of the recorded raw version that a step names must be in it:
+/// a missing file or column refuses the run with nothing recorded, so the dataset's latest
+/// version stays where it was. A step that cannot apply for another reason (a value it cannot
+/// read, a failing gate) stops the run and keeps what was done, as `sluice run` does.
 pub fn onto(
     store: &mut Store,
     reference: &str,
@@ -480,6 +483,7 @@ pub fn onto(
             names.join(", ")
         )));
     }
+    check_new_file(store, &plan, reference, name, file, agent)?;
     let mut bindings = Vec::new();
     for input in &mut plan.inputs {
         if input.name == name {
@@ -504,4 +508,111 @@ pub fn onto(
         agent: agent.clone(),
     };
     Ok(crate::plan::run(store, &plan, &opts))
+}
+
+/// The checks of [`onto`] before anything is recorded: `file` exists and can be read as the
+/// plan input `name` would read it, and has every column of the recorded raw version that a
+/// step of the chain names.
+fn check_new_file(
+    store: &Store,
+    plan: &crate::plan::Plan,
+    reference: &str,
+    name: &str,
+    file: &std::path::Path,
+    agent: &Agent,
+) -> Result<()> {
+    let retry = format!("sluice rerun {reference} --with {name}=FILE");
+    if !file.is_file() {
+        return Err(crate::Error::usage(format!(
+            "{}: no such file; nothing was recorded; give the new data for {name} as `{retry}`",
+            file.display()
+        )));
+    }
+    let Some(input) = plan.inputs.iter().find(|i| i.name == name) else {
+        return Ok(());
+    };
+    let iopts = crate::intake::IngestOptions {
+        dataset: name.to_string(),
+        key: input.key.clone(),
+        reason: None,
+        delimiter: input.delimiter.as_ref().and_then(|d| d.bytes().next()),
+        has_header: input.header,
+        encoding: input.encoding.clone(),
+        null_tokens: input.null_tokens.clone(),
+        agent: agent.clone(),
+    };
+    let header = match crate::intake::prepare_from(
+        store,
+        file,
+        &iopts,
+        &crate::intake::SourceOptions::default(),
+    )
+    .map_err(|e| {
+        crate::Error::from(ErrorKind::Usage(format!(
+            "{}: cannot be read as new data for {name}: {e}; nothing was recorded",
+            file.display()
+        )))
+    })? {
+        crate::intake::Prepared::Unchanged(v) => v.header.clone(),
+        crate::intake::Prepared::Ready(p) => p.header.clone(),
+    };
+    let Some(recorded) = input
+        .recorded
+        .as_deref()
+        .and_then(|r| crate::refs::resolve(&store.lineage, r).ok())
+    else {
+        return Ok(());
+    };
+    let mut missing: Vec<String> = Vec::new();
+    for column in recorded.header.iter().filter(|c| !header.contains(c)) {
+        let user = plan.steps.iter().find(|step| names_column(step, column));
+        if let Some(step) = user {
+            missing.push(format!(
+                "\"{column}\" (used by {}{})",
+                step.repeats
+                    .map(|id| format!("step {id}, "))
+                    .unwrap_or_default(),
+                step.describe()
+            ));
+        }
+    }
+    if missing.is_empty() {
+        return Ok(());
+    }
+    Err(crate::Error::usage(format!(
+        "{} lacks column{} {} that the steps behind {reference} read from {}; its columns are: {}; nothing was recorded and the latest version of {name} is unchanged; give a file with those columns as `{retry}`",
+        file.display(),
+        if missing.len() == 1 { "" } else { "s" },
+        missing.join(", "),
+        recorded.label(),
+        header.join(", ")
+    )))
+}
+
+/// Whether a plan step names `column` in its parameters or rules (as a value, or as a word of
+/// a predicate).
+fn names_column(step: &crate::plan::PlanStep, column: &str) -> bool {
+    let mut todo: Vec<serde_json::Value> = Vec::new();
+    if let Some(op) = &step.apply {
+        todo.push(serde_json::to_value(op).unwrap_or_default());
+    }
+    if let Some(rules) = &step.check {
+        todo.push(serde_json::to_value(rules).unwrap_or_default());
+    }
+    while let Some(v) = todo.pop() {
+        match v {
+            serde_json::Value::String(t)
+                if t == column
+                    || t.split(|c: char| !(c.is_alphanumeric() || c == '_'))
+                        .any(|w| w == column)
+                    || (column.contains(' ') && t.contains(column)) =>
+            {
+                return true;
+            }
+            serde_json::Value::Array(a) => todo.extend(a),
+            serde_json::Value::Object(o) => todo.extend(o.into_iter().map(|(_, x)| x)),
+            _ => {}
+        }
+    }
+    false
 }

@@ -21,7 +21,9 @@ if [ "$(id -u)" -ne 0 ]; then
 fi
 echo "chromium.sh: installing Debian's chromium for the browser check of the HTML report" >&2
 export DEBIAN_FRONTEND=noninteractive
-if ! { apt-get update -qq && apt-get install -y -qq --no-install-recommends chromium; } >&2; then
+# Wait (up to 10 minutes) for another install that holds the package manager's lock.
+if ! { apt-get -o DPkg::Lock::Timeout=600 update -qq &&
+       apt-get -o DPkg::Lock::Timeout=600 install -y -qq --no-install-recommends chromium; } >&2; then
     echo "chromium.sh: apt-get could not install chromium (messages above); check that a" \
         "Debian mirror is reachable, then run tests/run again" >&2
     exit 1

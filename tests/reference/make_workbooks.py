@@ -1,5 +1,5 @@
 #!/usr/bin/env python3
-"""Writes the workbooks tests/sheets.rs takes in, with general-purpose writers from PyPI, and a
+"""Writes the workbooks tests/intake_formats.rs takes in, with general-purpose writers from PyPI, and a
 manifest of what each checked cell must become, computed here from the values written.
 
   orders.xlsx  written by openpyxl (pinned in requirements.txt): sheet "Work orders" (dates, a

@@ -1,0 +1,389 @@
+//! The diff by recorded lineage. When two versions come from one version through recorded
+//! steps (one descends from the other, or both from a common version), each side's rows are
+//! carried back through the steps' row maps to that version, and two rows are the same row
+//! exactly when they come from the same row of it. Nothing is guessed: a row the steps
+//! brought in is added, a row they dropped is removed, and a row whose values changed out of
+//! all recognition is still the row it was.
+//!
+//! Each side's chain follows the main input of each step (role `input`) back to its root: an
+//! intake, or a version whose step keeps no row map (a `summarize`, whose rows are groups, not
+//! input rows). Two chains that meet are related; the nearest version they share is the one
+//! rows are carried back to.
+
+use super::read::{both, row_index, rows_of};
+use super::scan::{scan, ScanPlan};
+use super::{
+    cell_diffs, count_by_column, push_pair, settle_columns, Change, ChangeKind, Diff, Layout,
+    MatchedBy, RowPairing,
+};
+use crate::error::{ErrorKind, Result};
+use crate::model::{LineageKind, StepKind, Version};
+use crate::provenance;
+use crate::store::Store;
+
+/// No row: the row came from no row of the version the chains meet at.
+const NONE: u64 = u64::MAX;
+
+/// How two versions are related through recorded steps.
+#[derive(Debug, Clone)]
+pub struct Link {
+    /// The nearest version both descend from (one of the two when one descends from the other).
+    pub ancestor: Version,
+    /// The steps between the ancestor and each side, oldest first (the first version's, then
+    /// the second's).
+    pub steps: Vec<i64>,
+    /// Whether any of those steps has lineage inferred by a diff (outside work, hand edits).
+    pub inferred: bool,
+    /// Per row of each side, its row in the ancestor (`u64::MAX`: none).
+    a_rows: Vec<u64>,
+    b_rows: Vec<u64>,
+}
+
+/// The chain of versions a version comes from through the main inputs of their steps, the
+/// version itself first, ending at a root.
+fn chain(store: &Store, v: &Version) -> Result<Vec<Version>> {
+    let mut out = vec![v.clone()];
+    while let Some(last) = out.last() {
+        let Some(step) = store.lineage.step(last.step_id)? else {
+            break;
+        };
+        if step.kind == StepKind::Ingest
+            || step.lineage == LineageKind::None
+            || step.operation.as_deref() == Some("summarize")
+        {
+            break;
+        }
+        let input = store
+            .lineage
+            .step_input_versions(last.step_id)?
+            .into_iter()
+            .find(|(role, _)| role == "input")
+            .map(|(_, v)| v);
+        match input {
+            // Inputs are always older than what a step makes; the guard keeps a damaged
+            // database from looping.
+            Some(i) if i.id < last.id => out.push(i),
+            _ => break,
+        }
+    }
+    Ok(out)
+}
+
+/// Each row of `chain[0]`'s row in the chain's last version, through every step's row map.
+fn carry_back(store: &Store, chain: &[Version]) -> Result<Vec<u64>> {
+    let Some(first) = chain.first() else {
+        return Ok(Vec::new());
+    };
+    let mut rows: Vec<u64> = (0..first.n_rows).collect();
+    for w in chain.windows(2) {
+        let (out, input) = (&w[0], &w[1]);
+        let mut back = vec![NONE; out.n_rows as usize];
+        for r in provenance::row_runs(store, out, input.id)? {
+            for k in 0..r.len {
+                if let Some(slot) = back.get_mut((r.out_start + k) as usize) {
+                    *slot = r.in_start + k;
+                }
+            }
+        }
+        for row in rows.iter_mut() {
+            if *row != NONE {
+                *row = back.get(*row as usize).copied().unwrap_or(NONE);
+            }
+        }
+    }
+    Ok(rows)
+}
+
+/// How `a` and `b` are related through recorded steps, if they are.
+pub fn link(store: &Store, a: &Version, b: &Version) -> Result<Option<Link>> {
+    let ca = chain(store, a)?;
+    let cb = chain(store, b)?;
+    let Some((ib, ia)) = cb
+        .iter()
+        .enumerate()
+        .find_map(|(j, v)| ca.iter().position(|x| x.id == v.id).map(|i| (j, i)))
+    else {
+        return Ok(None);
+    };
+    let (ca, cb) = (&ca[..=ia], &cb[..=ib]);
+    let mut steps: Vec<i64> = ca[..ia].iter().rev().map(|v| v.step_id).collect();
+    steps.extend(cb[..ib].iter().rev().map(|v| v.step_id));
+    let mut inferred = false;
+    for &s in &steps {
+        if let Some(step) = store.lineage.step(s)? {
+            inferred |= step.lineage == LineageKind::Inferred;
+        }
+    }
+    Ok(Some(Link {
+        ancestor: ca[ia].clone(),
+        steps,
+        inferred,
+        a_rows: carry_back(store, ca)?,
+        b_rows: carry_back(store, cb)?,
+    }))
+}
+
+impl Link {
+    /// The matched pairs (row in the first version, row in the second), in the second's row
+    /// order. A row of the ancestor that reaches one side more than once (a step that copied
+    /// it) pairs with the first such row of the other side once; the other copies are added.
+    pub fn pairs(&self) -> Vec<(u64, u64)> {
+        let mut by_anc: Vec<(u64, u64)> = self
+            .a_rows
+            .iter()
+            .enumerate()
+            .filter(|(_, &r)| r != NONE)
+            .map(|(x, &r)| (r, x as u64))
+            .collect();
+        by_anc.sort_unstable();
+        by_anc.dedup_by_key(|p| p.0);
+        let mut taken = vec![false; by_anc.len()];
+        let mut out = Vec::new();
+        for (y, &r) in self.b_rows.iter().enumerate() {
+            if r == NONE {
+                continue;
+            }
+            if let Ok(i) = by_anc.binary_search_by_key(&r, |p| p.0) {
+                if !taken[i] {
+                    taken[i] = true;
+                    out.push((by_anc[i].1, y as u64));
+                }
+            }
+        }
+        out
+    }
+
+    /// Per row of the first version, its row in the ancestor (`u64::MAX`: none).
+    pub fn a_rows(&self) -> &[u64] {
+        &self.a_rows
+    }
+
+    /// Per row of the second version, its row in the ancestor (`u64::MAX`: none).
+    pub fn b_rows(&self) -> &[u64] {
+        &self.b_rows
+    }
+}
+
+/// The diff with rows paired by the lineage `link`.
+pub(super) fn run(
+    store: &Store,
+    a: &Version,
+    b: &Version,
+    layout: Layout,
+    link: Link,
+    key: Option<(Vec<String>, Vec<usize>, Vec<usize>)>,
+) -> Result<Diff> {
+    let pairs = link.pairs();
+    let (key, key_idx) = match key {
+        Some((k, ka, kb)) => (Some(k), (ka, kb)),
+        None => (None, (Vec::new(), Vec::new())),
+    };
+    let matched_by = MatchedBy::Lineage {
+        ancestor: link.ancestor.label(),
+        steps: link.steps.clone(),
+        inferred: link.inferred,
+        key,
+    };
+    assemble(store, a, b, layout, pairs, matched_by, key_idx)
+}
+
+/// A diff from known pairs (row in A, row in B) in B's row order: rows of A in no pair are
+/// removed, rows of B in no pair added, and the cells of every pair compared.
+pub(super) fn assemble(
+    store: &Store,
+    a: &Version,
+    b: &Version,
+    layout: Layout,
+    pairs: Vec<(u64, u64)>,
+    matched_by: MatchedBy,
+    key_idx: (Vec<usize>, Vec<usize>),
+) -> Result<Diff> {
+    let objects = &store.objects;
+    let (cand_a, cand_b) = layout.candidates();
+    let (fp_a, fp_b) = layout.fp_cols();
+    let (fps_a, fps_b, hash_a, hash_b) = if layout.identical && cand_a.is_empty() {
+        let ((fa, _), (fb, _)) = both(|| row_index(objects, a), || row_index(objects, b))?;
+        (fa, fb, Vec::new(), Vec::new())
+    } else {
+        let plan = |fp: Option<&'_ [usize]>, cand: &'_ [usize], v: &Version| {
+            scan(
+                objects,
+                v,
+                &ScanPlan {
+                    key: None,
+                    fp_cols: fp,
+                    cand_cols: cand,
+                    seed: 0,
+                    null_tokens: &v.null_tokens,
+                },
+            )
+        };
+        let (sa, sb) = both(
+            || plan(fp_a.as_deref(), &cand_a, a),
+            || plan(fp_b.as_deref(), &cand_b, b),
+        )?;
+        (sa.fps, sb.fps, sa.cand, sb.cand)
+    };
+    let lost = || -> crate::error::Error {
+        ErrorKind::Inconsistent(format!(
+            "{} or {} has fewer rows than the store records; run `sluice verify`",
+            a.label(),
+            b.label()
+        ))
+        .into()
+    };
+    if fps_a.len() as u64 != a.n_rows || fps_b.len() as u64 != b.n_rows {
+        return Err(lost());
+    }
+    if pairs.iter().any(|&(x, y)| x >= a.n_rows || y >= b.n_rows) {
+        return Err(lost());
+    }
+    let (compared, columns) = settle_columns(
+        a,
+        b,
+        &layout,
+        (&cand_a, &cand_b),
+        (&hash_a, &hash_b),
+        &mut |check| pairs.iter().all(|&(x, y)| check(x, y)),
+    );
+    let renamed_hashes: Vec<(&Vec<u64>, &Vec<u64>)> = compared
+        .iter()
+        .filter_map(|&(ci, cj)| {
+            let x = cand_a.iter().position(|&c| c == ci)?;
+            let y = cand_b.iter().position(|&c| c == cj)?;
+            Some((&hash_a[x], &hash_b[y]))
+        })
+        .collect();
+    let differs = |&(x, y): &(u64, u64)| {
+        fps_a[x as usize] != fps_b[y as usize]
+            || renamed_hashes
+                .iter()
+                .any(|(ha, hb)| ha[x as usize] != hb[y as usize])
+    };
+    let to_compare: Vec<(u64, u64)> = pairs.iter().copied().filter(differs).collect();
+    let mut in_pair_a = vec![false; a.n_rows as usize];
+    let mut in_pair_b = vec![false; b.n_rows as usize];
+    for &(x, y) in &pairs {
+        in_pair_a[x as usize] = true;
+        in_pair_b[y as usize] = true;
+    }
+    let removed: Vec<u64> = (0..a.n_rows).filter(|&x| !in_pair_a[x as usize]).collect();
+    let added: Vec<u64> = (0..b.n_rows).filter(|&y| !in_pair_b[y as usize]).collect();
+    drop(in_pair_a);
+    drop(in_pair_b);
+
+    let mut want_a: Vec<u64> = removed.clone();
+    want_a.extend(to_compare.iter().map(|p| p.0));
+    want_a.sort_unstable();
+    want_a.dedup();
+    let mut want_b: Vec<u64> = added.clone();
+    want_b.extend(to_compare.iter().map(|p| p.1));
+    want_b.sort_unstable();
+    want_b.dedup();
+    let (from_rows, to_rows) = both(
+        || rows_of(objects, a, &want_a),
+        || rows_of(objects, b, &want_b),
+    )?;
+
+    let mut cells = Vec::new();
+    let mut changed_b: Vec<u64> = Vec::new();
+    for &(x, y) in &to_compare {
+        let (Some(ra), Some(rb)) = (from_rows.get(x), to_rows.get(y)) else {
+            return Err(lost());
+        };
+        if cell_diffs(&compared, &b.header, (x, ra), (y, rb), &mut cells) > 0 {
+            changed_b.push(y);
+        }
+    }
+    let mut runs = Vec::new();
+    let mut c = 0usize;
+    for &(x, y) in &pairs {
+        let changed = changed_b.get(c) == Some(&y);
+        if changed {
+            c += 1;
+        }
+        push_pair(&mut runs, x, y, changed);
+    }
+
+    // The listing: changed and added rows in the second version's order, then removed rows.
+    let mut changes = Vec::with_capacity(changed_b.len() + added.len() + removed.len());
+    let (mut ci, mut ai, mut cell) = (0usize, 0usize, 0usize);
+    while ci < changed_b.len() || ai < added.len() {
+        let take_changed = match (changed_b.get(ci), added.get(ai)) {
+            (Some(x), Some(y)) => x < y,
+            (Some(_), None) => true,
+            _ => false,
+        };
+        if take_changed {
+            let y = changed_b[ci];
+            let start = cell;
+            while cell < cells.len() && cells[cell].b_row == y {
+                cell += 1;
+            }
+            changes.push(Change {
+                kind: ChangeKind::Changed,
+                a_row: cells.get(start).map(|c| c.a_row),
+                b_row: Some(y),
+                cells: start..cell,
+            });
+            ci += 1;
+        } else {
+            changes.push(Change {
+                kind: ChangeKind::Added,
+                a_row: None,
+                b_row: Some(added[ai]),
+                cells: cell..cell,
+            });
+            ai += 1;
+        }
+    }
+    changes.extend(removed.iter().map(|&x| Change {
+        kind: ChangeKind::Removed,
+        a_row: Some(x),
+        b_row: None,
+        cells: 0..0,
+    }));
+    let changed_by_column = count_by_column(&compared, b, &cells);
+    Ok(Diff {
+        from: a.clone(),
+        to: b.clone(),
+        matched_by,
+        columns,
+        compared,
+        pairing: RowPairing {
+            runs,
+            removed,
+            added,
+            cells,
+        },
+        alignment: None,
+        changes,
+        changed_by_column,
+        from_rows,
+        to_rows,
+        key_idx,
+        duplicates: None,
+    })
+}
+
+/// The datasets of every version `v` comes from through recorded steps (every input, not only
+/// the main one), `v`'s own first. Walked with a work list, not recursion.
+pub fn datasets_behind(store: &Store, v: &Version) -> Result<Vec<String>> {
+    let mut names = vec![v.dataset.clone()];
+    let mut seen: std::collections::HashSet<i64> = std::collections::HashSet::new();
+    let mut todo = vec![v.clone()];
+    while let Some(x) = todo.pop() {
+        if !seen.insert(x.id) {
+            continue;
+        }
+        if !names.contains(&x.dataset) {
+            names.push(x.dataset.clone());
+        }
+        for (_, i) in store.lineage.step_input_versions(x.step_id)? {
+            if i.id < x.id && !seen.contains(&i.id) {
+                todo.push(i);
+            }
+        }
+    }
+    Ok(names)
+}
