@@ -225,9 +225,9 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
                     write_file_atomically(path, |f| Ok(f.write_all(text.as_bytes())?))?;
                     writeln!(
                         out,
-                        "wrote the plan of {} ({} inputs, {} steps) to {}",
+                        "wrote the plan of {} ({} sources, {} steps) to {}",
                         reference,
-                        plan.inputs.len(),
+                        plan.sources.len(),
                         plan.steps.len(),
                         path.display()
                     )?;

@@ -510,9 +510,9 @@ pub fn show(out: &mut impl Write, d: &VersionDetail) -> io::Result<()> {
         writeln!(
             out,
             "  {}         {} {} · {} · {}",
-            if c.gate { "gate " } else { "check" },
+            if c.hold_point { "hold " } else { "check" },
             if c.passed { "pass" } else { "FAIL" },
-            c.rule,
+            sluice::checks::describe_stored(&c.rule),
             c.checked_at,
             c.agent
         )?;
@@ -607,7 +607,7 @@ pub fn check(out: &mut impl Write, r: &sluice::checks::CheckReport) -> io::Resul
         r.results.len()
     )?;
     for c in &r.results {
-        let rule = serde_json::to_string(&c.rule).unwrap_or_default();
+        let rule = c.rule.describe();
         if c.passed {
             writeln!(out, "  pass  {rule}")?;
         } else {
@@ -792,12 +792,16 @@ pub fn run_done(out: &mut impl Write, done: &[Done]) -> io::Result<()> {
             Done::Applied { step, op, outcome } => {
                 writeln!(out, "step {step}: {}", apply_line(op, outcome)?)?
             }
-            Done::Checked { step, gate, report } => {
+            Done::Checked {
+                step,
+                hold_point,
+                report,
+            } => {
                 let failed = report.results.iter().filter(|c| !c.passed).count();
                 writeln!(
                     out,
                     "step {step}: {} on {}: {}{}",
-                    if *gate { "gate" } else { "check" },
+                    if *hold_point { "hold point" } else { "check" },
                     report.version,
                     if failed == 0 {
                         format!(
@@ -817,7 +821,7 @@ pub fn run_done(out: &mut impl Write, done: &[Done]) -> io::Result<()> {
                             .map(|c| {
                                 format!(
                                     "{} fails on {}",
-                                    sluice::plan::rule_summary(&c.rule),
+                                    c.rule.describe(),
                                     plural(c.n_failing, "row", "rows")
                                 )
                             })
@@ -869,8 +873,8 @@ pub fn run_json(done: &[Done], stopped: Option<(&str, &str)>) -> serde_json::Val
                     }
                 }
             }
-            Done::Checked { step, gate, report } => json!({
-                "kind": "check", "step": step, "gate": gate, "version": report.version,
+            Done::Checked { step, hold_point, report } => json!({
+                "kind": "check", "step": step, "hold_point": hold_point, "version": report.version,
                 "hash": report.hash, "passed": report.passed,
                 "failed_rules": report.results.iter().filter(|c| !c.passed).count(),
             }),

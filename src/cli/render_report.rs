@@ -192,7 +192,7 @@ fn distinct(p: &ColumnProfile) -> String {
 }
 
 fn rule_text(rule: &serde_json::Value) -> String {
-    canonical_json(rule)
+    sluice::checks::describe_stored(rule)
 }
 
 // ---------------------------------------------------------------------------------------------
@@ -350,7 +350,7 @@ pub fn markdown(r: &Report) -> String {
     for vc in &r.checks {
         let _ = writeln!(
             o,
-            "### {} (`{}`)\n\n| rule | result | failing rows | by | at | gate |\n| --- | --- | ---: | --- | --- | --- |",
+            "### {} (`{}`)\n\n| rule | result | failing rows | by | at | hold point |\n| --- | --- | ---: | --- | --- | --- |",
             vc.version,
             &vc.hash[..12.min(vc.hash.len())]
         );
@@ -363,7 +363,7 @@ pub fn markdown(r: &Report) -> String {
                 c.n_failing,
                 md(&c.agent),
                 c.checked_at,
-                if c.gate { "yes" } else { "no" }
+                if c.hold_point { "yes" } else { "no" }
             );
         }
         o.push('\n');
@@ -788,7 +788,7 @@ pub fn html(r: &Report) -> String {
         );
         let _ = writeln!(
             o,
-            "<table><thead><tr><th>rule</th><th>result</th><th class=\"n\">failing rows</th><th>by</th><th>at</th><th>gate</th></tr></thead><tbody>"
+            "<table><thead><tr><th>rule</th><th>result</th><th class=\"n\">failing rows</th><th>by</th><th>at</th><th>hold point</th></tr></thead><tbody>"
         );
         for c in &vc.checks {
             let _ = writeln!(
@@ -800,7 +800,7 @@ pub fn html(r: &Report) -> String {
                 c.n_failing,
                 esc(&c.agent),
                 esc(&c.checked_at),
-                if c.gate { "yes" } else { "no" }
+                if c.hold_point { "yes" } else { "no" }
             );
         }
         let _ = writeln!(o, "</tbody></table>");

@@ -164,6 +164,9 @@ fn apply_to(store: &mut Store, input: Version, opts: &ApplyOptions, mode: Mode) 
     if matches!(opts.op, Operation::Append { .. }) {
         return super::append::run(store, input, opts, mode);
     }
+    if matches!(opts.op, Operation::Sort { .. }) {
+        return super::sort::run(store, input, opts, mode);
+    }
     // A mapping table is recorded by its exact version, whatever reference named it; a table
     // file is read and stored now but recorded only with the step.
     let mut table_ingest: Option<Box<PreparedIngest>> = None;

@@ -475,27 +475,27 @@ pub fn onto(
     agent: &Agent,
 ) -> Result<std::result::Result<crate::plan::RunReport, crate::plan::RunFailure>> {
     let mut plan = crate::plan::export(store, reference, std::path::Path::new("/"))?;
-    if !plan.inputs.iter().any(|i| i.name == name) {
-        let names: Vec<&str> = plan.inputs.iter().map(|i| i.name.as_str()).collect();
+    if !plan.sources.iter().any(|i| i.dataset == name) {
+        let names: Vec<&str> = plan.sources.iter().map(|i| i.dataset.as_str()).collect();
         return Err(crate::Error::usage(format!(
             "--onto {name}=...: {reference} is not made from a dataset named \"{name}\"; its raw inputs are: {}",
             names.join(", ")
         )));
     }
     let mut bindings = Vec::new();
-    for input in &mut plan.inputs {
-        if input.name == name {
-            input.why =
+    for input in &mut plan.sources {
+        if input.dataset == name {
+            input.reason =
                 Some(why.clone().unwrap_or_else(|| {
                     format!("new raw data for the steps that made {reference}")
                 }));
             bindings.push((
-                input.name.clone(),
+                input.dataset.clone(),
                 crate::plan::Binding::File(file.to_path_buf()),
             ));
         } else if let Some(recorded) = &input.recorded {
             bindings.push((
-                input.name.clone(),
+                input.dataset.clone(),
                 crate::plan::Binding::Version(recorded.clone()),
             ));
         }
