@@ -117,9 +117,7 @@ impl TryFrom<RuleText> for Rule {
                     _ => "uniqueness",
                 };
                 let Some(columns) = t.columns else {
-                    return Err(format!(
-                        "a {name} rule needs \"columns\": [..]"
-                    ));
+                    return Err(format!("a {name} rule needs \"columns\": [..]"));
                 };
                 if columns.is_empty() {
                     return Err(format!("a {name} rule needs at least one column"));
@@ -447,9 +445,7 @@ fn compile(rule: &Rule, v: &Version) -> Result<Compiled> {
                     }
                     Compiled::Range(c, at_least.clone(), at_most.clone())
                 }
-                Validity::Length { at_least, at_most } => {
-                    Compiled::Length(c, *at_least, *at_most)
-                }
+                Validity::Length { at_least, at_most } => Compiled::Length(c, *at_least, *at_most),
                 Validity::Pattern(regex) => Compiled::Pattern(
                     c,
                     Regex::new(&format!("^(?:{regex})$")).map_err(|e| {

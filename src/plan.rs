@@ -565,7 +565,7 @@ fn plan_sources(store: &Store, plan: &Plan, opts: &RunOptions) -> Result<Vec<Bin
         if !plan.sources.iter().any(|i| &i.dataset == name) {
             let known: Vec<&str> = plan.sources.iter().map(|i| i.dataset.as_str()).collect();
             return Err(Error::usage(format!(
-                "--input {name}=...: the plan has no input named \"{name}\"; its inputs are: {}",
+                "--input {name}=...: the plan has no source named \"{name}\"; its sources are: {}",
                 if known.is_empty() {
                     "(none)".to_string()
                 } else {
@@ -591,7 +591,7 @@ fn plan_sources(store: &Store, plan: &Plan, opts: &RunOptions) -> Result<Vec<Bin
             (None, Some(f)) => Binding::File(opts.plan_dir.join(f)),
             (None, None) => {
                 return Err(Error::usage(format!(
-                "plan input \"{}\" names no file; give one with --input {}=FILE or --input {}=REF",
+                "plan source \"{}\" names no file; give one with --input {}=FILE or --input {}=REF",
                 input.dataset, input.dataset, input.dataset
             )))
             }
@@ -599,7 +599,7 @@ fn plan_sources(store: &Store, plan: &Plan, opts: &RunOptions) -> Result<Vec<Bin
         if let Binding::File(p) = &source {
             if !p.is_file() {
                 return Err(Error::usage(format!(
-                    "plan input \"{}\": {} is not a file; give another with --input {}=FILE",
+                    "plan source \"{}\": {} is not a file; give another with --input {}=FILE",
                     input.dataset,
                     p.display(),
                     input.dataset
@@ -620,7 +620,7 @@ fn plan_sources(store: &Store, plan: &Plan, opts: &RunOptions) -> Result<Vec<Bin
             if !known.contains(name) {
                 refs::resolve(&store.lineage, name).map_err(|e| {
                     Error::usage(format!(
-                        "step {} ({}) reads \"{name}\", which is neither an input of the plan, nor made by an earlier step, nor in the store ({e})",
+                        "step {} ({}) reads \"{name}\", which is neither a source of the plan, nor made by an earlier step, nor in the store ({e})",
                         i + 1,
                         step.describe()
                     ))

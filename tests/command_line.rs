@@ -80,11 +80,11 @@ fn exit_codes_follow_the_documented_classes() {
     let s = Sandbox::with_demo();
     s.file(
         "rules_fail.json",
-        r#"{"rules": [{"rule": "allowed", "column": "status", "values": ["done"]}]}"#,
+        r#"{"sluice_rules": 2, "rules": [{"dimension": "validity", "column": "status", "one_of": ["done"]}]}"#,
     );
     s.file(
         "rules_pass.json",
-        r#"{"rules": [{"rule": "unique", "columns": ["order_id"]}]}"#,
+        r#"{"sluice_rules": 2, "rules": [{"dimension": "uniqueness", "columns": ["order_id"]}]}"#,
     );
     s.file("bad.csv", "a,b\n1,2,3\n");
     let cases = [

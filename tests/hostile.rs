@@ -363,12 +363,12 @@ fn malformed_missing_and_huge_rules_plans_and_tables_are_refused_with_positions(
         &["huge-rules.json: line 100003, column 0: EOF while parsing"],
     );
     let mut plan = String::from(
-        "{\"sluice_plan\": 1, \"inputs\": [{\"name\": \"o\", \"file\": \"o.csv\"}], \"steps\": [\n",
+        "{\"sluice_plan\": 2, \"sources\": [{\"dataset\": \"o\", \"file\": \"o.csv\"}], \"steps\": [\n",
     );
     for _ in 0..100_000 {
-        plan.push_str("{\"on\": \"o\", \"apply\": {\"op\": \"trim\"}, \"why\": \"x\"},\n");
+        plan.push_str("{\"dataset\": \"o\", \"clean\": \"trim\", \"reason\": \"x\"},\n");
     }
-    plan.push_str("{\"on\": \"o\", \"apply\": {\"op\": \"trim\"}, \"why\": \"x\"}]\n");
+    plan.push_str("{\"dataset\": \"o\", \"clean\": \"trim\", \"reason\": \"x\"}]\n");
     refused(
         "huge-plan.json",
         plan.as_bytes(),
@@ -377,7 +377,7 @@ fn malformed_missing_and_huge_rules_plans_and_tables_are_refused_with_positions(
     );
     refused(
         "missing-column-plan.json",
-        b"{\"sluice_plan\": 1, \"inputs\": [{\"name\": \"o\", \"file\": \"o.csv\"}],\n \"steps\": [{\"on\": \"o\", \"apply\": {\"op\": \"trim\", \"columns\": [\"shop\"]}, \"why\": \"x\"}]}",
+        b"{\"sluice_plan\": 2, \"sources\": [{\"dataset\": \"o\", \"file\": \"o.csv\"}],\n \"steps\": [{\"dataset\": \"o\", \"clean\": \"trim\", \"settings\": {\"columns\": [\"shop\"]}, \"reason\": \"x\"}]}",
         &["run", "missing-column-plan.json"],
         &["step 1 (trim on o)", "column \"shop\" is not in o@1; its columns are: id, service"],
     );

@@ -58,10 +58,10 @@ fn penguin_history() -> Sandbox {
     ]);
     s.file(
         "rules.json",
-        r#"{"rules": [
-            {"rule": "not_blank", "columns": ["species", "sex", "body_mass_g"]},
-            {"rule": "allowed", "column": "sex", "values": ["MALE", "FEMALE"]},
-            {"rule": "range", "column": "body_mass_g", "min": "2700", "max": "6300"}
+        r#"{"sluice_rules": 2, "rules": [
+            {"dimension": "completeness", "columns": ["species", "sex", "body_mass_g"]},
+            {"dimension": "validity", "column": "sex", "one_of": ["MALE", "FEMALE"]},
+            {"dimension": "validity", "column": "body_mass_g", "at_least": "2700", "at_most": "6300"}
         ]}"#,
     );
     s.ok(&["check", "penguins", "--rules", "rules.json"]);

@@ -93,7 +93,10 @@ pub fn upgrade(text: &str) -> Result<String> {
             "line {}, column {}: not JSON ({}); expected a plan or a rules file",
             e.line(),
             e.column(),
-            e.to_string().split(" at line").next().unwrap_or("malformed")
+            e.to_string()
+                .split(" at line")
+                .next()
+                .unwrap_or("malformed")
         ))
     })?;
     let Value::Object(top) = &value else {
@@ -124,13 +127,16 @@ pub fn upgrade(text: &str) -> Result<String> {
         }
         pretty(&plan_of(old)?)?
     } else if let Some(form) = top.get("sluice_rules") {
-        return Err(Error::usage(if form.as_u64() == Some(RULES_FORMAT.into()) {
-            "this rules file is already of the current form (\"sluice_rules\": 2); nothing to convert".to_string()
-        } else {
-            format!("rules format {form} is not one this build converts")
-        }));
+        return Err(Error::usage(
+            if form.as_u64() == Some(RULES_FORMAT.into()) {
+                "this rules file is already of the current form (\"sluice_rules\": 2); nothing to convert".to_string()
+            } else {
+                format!("rules format {form} is not one this build converts")
+            },
+        ));
     } else if top.contains_key("rules") {
-        let old: OldRules = serde_json::from_str(text).map_err(|e| positioned("a rules file", e))?;
+        let old: OldRules =
+            serde_json::from_str(text).map_err(|e| positioned("a rules file", e))?;
         let rules: Vec<Rule> = old.rules.into_iter().map(Rule::from).collect();
         let rules = pretty(&rules)?.replace('\n', "\n  ");
         format!("{{\n  \"sluice_rules\": {RULES_FORMAT},\n  \"rules\": {rules}\n}}")
@@ -200,4 +206,77 @@ fn plan_of(old: OldPlan) -> Result<PlanText> {
 fn pretty(v: &impl serde::Serialize) -> Result<String> {
     serde_json::to_string_pretty(v)
         .map_err(|e| Error::usage(format!("the converted file cannot be written as JSON: {e}")))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    const OLD_DEMO: &str = include_str!("../../tests/fixtures/plans/three_rivers_q3.form1.json");
+    const NEW_DEMO: &str = include_str!("../../tests/golden/three_rivers_q3.form2.json");
+
+    #[test]
+    fn the_old_demo_plan_becomes_the_golden_new_one() {
+        let converted = upgrade(OLD_DEMO).unwrap();
+        assert_eq!(converted, NEW_DEMO);
+        // It reads as a plan, with the old plan's steps and sources in order.
+        let plan = crate::plan::parse(&converted, "new.json").unwrap();
+        assert_eq!(plan.sources.len(), 5);
+        assert_eq!(plan.steps.len(), 22);
+        assert!(plan.steps[19].hold_point);
+        assert_eq!(plan.steps[19].inspect.as_ref().map(Vec::len), Some(5));
+        // Converting is deterministic, and a converted file is not converted again.
+        assert_eq!(upgrade(OLD_DEMO).unwrap(), converted);
+        let again = upgrade(&converted).unwrap_err().to_string();
+        assert!(again.contains("already of the current form"), "{again}");
+    }
+
+    #[test]
+    fn old_rules_become_rules_by_dimension() {
+        let old = r#"{"rules": [
+            {"rule": "not_blank", "columns": ["a", "b"]},
+            {"rule": "unique", "columns": ["a"]},
+            {"rule": "range", "column": "x", "min": "0"},
+            {"rule": "length", "column": "z", "min": 5, "max": 5},
+            {"rule": "pattern", "column": "e", "regex": "[^@]+@[^@]+"},
+            {"rule": "allowed", "column": "s", "values": ["done", "open"]}
+        ]}"#;
+        let new = upgrade(old).unwrap();
+        let v: Value = serde_json::from_str(&new).unwrap();
+        assert_eq!(v["sluice_rules"], 2);
+        let rules: Vec<Rule> = serde_json::from_value(v["rules"].clone()).unwrap();
+        let words: Vec<String> = rules.iter().map(Rule::describe).collect();
+        assert_eq!(
+            words,
+            [
+                "completeness: a, b",
+                "uniqueness: a",
+                "validity: x at least 0",
+                "validity: z length 5",
+                "validity: e matches [^@]+@[^@]+",
+                "validity: s one of done, open",
+            ]
+        );
+        assert!(new.starts_with("{\n  \"sluice_rules\": 2,\n  \"rules\": [\n"));
+        assert!(new.ends_with("\n  ]\n}\n"));
+    }
+
+    #[test]
+    fn files_of_neither_kind_are_refused_with_what_was_found() {
+        for (text, expected) in [
+            ("[1, 2]", "found another JSON value"),
+            ("{\"colour\": 1}", "found neither"),
+            ("{\"rules\": [{\"rule\": \"shiny\"}]}", "line 1, column"),
+            ("{\"sluice_plan\": 7, \"steps\": []}", "plan format 7"),
+            ("{\"sluice_rules\": 2, \"rules\": []}", "already of the current form"),
+            (
+                "{\"sluice_plan\": 1, \"steps\": [{\"on\": \"o\", \"apply\": {\"op\": \"sparkle\"}}]}",
+                "step 1: \"clean\": \"sparkle\" is not an operation",
+            ),
+            ("{\"sluice_plan\": 1", "not JSON"),
+        ] {
+            let err = upgrade(text).unwrap_err().to_string();
+            assert!(err.contains(expected), "{text}: {err}");
+        }
+    }
 }
