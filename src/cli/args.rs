@@ -14,7 +14,7 @@ use clap::{Args, Parser, Subcommand, ValueEnum};
                   transform as a step in a lineage graph, so that a cleaned value can be traced back \
                   to the raw line it came from.\n\n\
                   Exit codes: 0 success; 1 the data, the store or the system failed (verify found damage, \
-                  a check or a gate failed, replay differed, the disk is full); 2 a usage or input error \
+                  a check or a hold point failed, replay differed, the disk is full); 2 a usage or input error \
                   (bad arguments, a refused file, an unknown version, no store). `sluice exec` passes on \
                   a failing command's own status.",
     after_help = "Start with `sluice demo` to see a worked example, or `sluice init` in a project folder."
@@ -68,9 +68,12 @@ pub enum Command {
 
     /// Check declared rules against a version and record the results on it
     #[command(
-        after_help = "Rules file:\n  {\"rules\": [\n    {\"rule\": \"not_blank\", \"columns\": [\"order_id\"]},\n    {\"rule\": \"unique\", \"columns\": [\"order_id\"]},\n    \
-        {\"rule\": \"range\", \"column\": \"parts_cost\", \"min\": \"0\", \"max\": \"5000\"},\n    {\"rule\": \"length\", \"column\": \"order_id\", \"min\": 5, \"max\": 5},\n    \
-        {\"rule\": \"pattern\", \"column\": \"email\", \"regex\": \"[^@ ]+@[^@ ]+\"},\n    {\"rule\": \"allowed\", \"column\": \"status\", \"values\": [\"done\", \"open\"]}\n  ]}\n\n\
+        after_help = "Rules file (schema/rules.schema.json), rules by data-quality dimension:\n  {\"sluice_rules\": 2, \"rules\": [\n    \
+        {\"dimension\": \"completeness\", \"columns\": [\"order_id\"]},\n    {\"dimension\": \"uniqueness\", \"columns\": [\"order_id\"]},\n    \
+        {\"dimension\": \"validity\", \"column\": \"parts_cost\", \"at_least\": \"0\", \"at_most\": \"5000\"},\n    \
+        {\"dimension\": \"validity\", \"column\": \"order_id\", \"length_at_least\": 5, \"length_at_most\": 5},\n    \
+        {\"dimension\": \"validity\", \"column\": \"email\", \"pattern\": \"[^@ ]+@[^@ ]+\"},\n    \
+        {\"dimension\": \"validity\", \"column\": \"status\", \"one_of\": [\"done\", \"open\"]}\n  ]}\n\n\
         Example:\n  sluice check quillby_orders --rules rules.json\n\nExit code 0 when every rule passes, 1 when one fails."
     )]
     Check {
@@ -89,8 +92,8 @@ pub enum Command {
         after_help = "A plan is a JSON file listing steps (format: README.md, \"Plans\", and schema/plan.schema.json).\n\n\
         Examples:\n  sluice run plans/q3-cleaning.json\n  sluice run plans/q3-cleaning.json --input quillby_orders=exports/quillby_2026q4.csv\n  \
         sluice run plans/q3-cleaning.json --input quillby_orders=quillby_orders@1\n\n\
-        A failing step stops the run; the steps before it stay recorded and are listed. Exit code 1 when a step or a gate \
-        check fails on the data, 2 for a usage or input error."
+        A failing step stops the run; the steps before it stay recorded and are listed. Exit code 1 when a step or a hold point \
+        fails on the data, 2 for a usage or input error."
     )]
     Run {
         /// The plan file (JSON)

@@ -1046,9 +1046,9 @@ fn finish_run(
                             format!("{} checks", report.failed_checks)
                         },
                         if report.failed_checks == 1 {
-                            "a gate"
+                            "a hold point"
                         } else {
-                            "gates"
+                            "hold points"
                         }
                     )?;
                 } else {

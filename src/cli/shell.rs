@@ -35,7 +35,7 @@ success (also a \fBdiff\fR that finds differences)
 .TP
 \fB1\fR
 the data, the store or the system failed: \fBverify\fR found damage, a damaged object was
-read, a check or a plan's gate failed, \fBreplay\fR could not show that a version comes from
+read, a check or a plan's hold point failed, \fBreplay\fR could not show that a version comes from
 its raw data, \fBexplain\fR computed another value than the stored one, the disk is full
 .TP
 \fB2\fR

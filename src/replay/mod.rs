@@ -465,7 +465,7 @@ fn computed_difference(
 /// (next quarter's export): `file` is taken in as the next version of that dataset, the other
 /// raw inputs stay the versions the chain read, and every step is recorded again in order,
 /// each naming the step it repeats. A step that cannot apply (a missing column, a failing
-/// gate) stops the run and keeps what was done, as `sluice run` does.
+/// hold point) stops the run and keeps what was done, as `sluice run` does.
 pub fn onto(
     store: &mut Store,
     reference: &str,
