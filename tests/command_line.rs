@@ -279,7 +279,7 @@ fn common_mistakes_name_the_thing_and_the_next_command() {
         ),
         (
             &["show", "all_orders@99"],
-            &["has 9 versions", "`sluice log all_orders`"],
+            &["has 12 versions", "`sluice log all_orders`"],
         ),
         (
             &["cat", "abcdef12"],
@@ -299,9 +299,9 @@ fn common_mistakes_name_the_thing_and_the_next_command() {
                 "parts_cost",
             ],
             &[
-                "data rows 1 to 610",
+                "data rows 1 to 440",
                 "no row 9999",
-                "`sluice cat all_orders@9`",
+                "`sluice cat all_orders@12`",
             ],
         ),
         (
@@ -317,7 +317,7 @@ fn common_mistakes_name_the_thing_and_the_next_command() {
                 "--column",
                 "parts_cost",
             ],
-            &["order_id=ZZ", "`sluice cat all_orders@9`"],
+            &["order_id=ZZ", "`sluice cat all_orders@12`"],
         ),
         (
             &[
@@ -328,7 +328,7 @@ fn common_mistakes_name_the_thing_and_the_next_command() {
                 "--column",
                 "parts_cost",
             ],
-            &["not made by summarize", "`sluice trace all_orders@9"],
+            &["not made by summarize", "`sluice trace all_orders@12"],
         ),
         (
             &["ingest", "missing.csv", "--as", "x"],

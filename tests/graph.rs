@@ -20,12 +20,15 @@ fn impact_lists_everything_downstream_and_what_is_in_use_now() {
                 .unwrap()
         })
         .collect();
-    // The plan's last four steps, then the demo's outside script and hand edit.
+    // The plan's last seven steps, then the demo's outside script and hand edit.
     assert_eq!(
         ops,
         vec![
             "lookup",
             "extract",
+            "case",
+            "drop",
+            "sort",
             "summarize",
             "summarize",
             "command",
@@ -35,7 +38,7 @@ fn impact_lists_everything_downstream_and_what_is_in_use_now() {
     assert_eq!(
         i["current"],
         serde_json::json!([
-            "all_orders@9",
+            "all_orders@12",
             "q3_by_shop@1",
             "q3_shop_totals@1",
             "reviewed_orders@2"
@@ -54,8 +57,8 @@ fn impact_lists_everything_downstream_and_what_is_in_use_now() {
     assert!(!made.contains(&"quillby_orders@2"));
     assert_eq!(
         made.len(),
-        4 + 9 + 2 + 2,
-        "four Oxwater versions, all_orders@1-9, the two summaries, the two reviewed versions"
+        4 + 12 + 2 + 2,
+        "four Oxwater versions, all_orders@1-12, the two summaries, the two reviewed versions"
     );
     assert_contains(
         &d.ok(&["impact", "q3_by_shop"]),
