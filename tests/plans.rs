@@ -748,13 +748,13 @@ for (shop, month), (n, parts, hours, n_hours) in groups.items():
     assert!(out.status.success());
     let out = String::from_utf8(out.stdout).unwrap();
     let (counts, expected) = out.split_once('\n').unwrap();
-    let counts: Vec<u64> = counts
-        .split(' ')
-        .map(|n| n.parse().unwrap())
-        .collect();
+    let counts: Vec<u64> = counts.split(' ').map(|n| n.parse().unwrap()).collect();
     let after = d.json(&["show", "all_orders", "--json"]);
     assert_eq!(after["version"]["n_rows"].as_u64(), Some(counts[1]));
-    assert!(counts[0] > counts[1], "the demo has cancelled orders to leave out");
+    assert!(
+        counts[0] > counts[1],
+        "the demo has cancelled orders to leave out"
+    );
     assert_eq!(d.run(&["cat", "q3_by_shop"]).stdout, expected);
     // Months in calendar order within each shop.
     let by_shop = d.run(&["cat", "q3_by_shop"]).stdout;

@@ -106,14 +106,14 @@ fn the_demo_summary_is_reproduced_step_by_step() {
     let raw = steps.iter().filter(|s| s["result"] == "raw_intact").count();
     let same = steps.iter().filter(|s| s["result"] == "same").count();
     assert_eq!(raw, 5, "the five raw inputs");
-    assert_eq!(same, 20, "the plan's built-in steps up to q3_by_shop");
+    assert_eq!(same, 23, "the plan's built-in steps up to q3_by_shop");
     assert!(steps
         .iter()
         .filter(|s| s["result"] == "same")
         .all(|s| s["computed_hash"] == s["recorded_hash"]));
     assert_contains(
         &d.ok(&["replay", "q3_by_shop"]),
-        "every one of 20 steps gave the recorded bytes",
+        "every one of 23 steps gave the recorded bytes",
     );
 }
 
@@ -322,7 +322,7 @@ fn the_same_chain_runs_on_next_quarters_export_and_each_step_names_the_one_it_re
         .map(|e| &e["step"])
         .filter(|s| s["kind"] == "operation")
         .collect();
-    assert_eq!(new.len(), 20);
+    assert_eq!(new.len(), 23);
     for s in &new {
         let repeated = by_id[&s["repeats_step"]
             .as_i64()
