@@ -201,6 +201,21 @@ fn the_html_report_is_self_contained_and_carries_the_caution() {
     assert_contains(&html, "not legal or regulatory advice");
     assert_contains(&html, "@media print");
     assert_contains(&html, "dedupe");
+    // Callouts are bordered stamps with a plain label, not boxes with a coloured left edge.
+    assert_contains(
+        &html,
+        "<div class=\"stamp caution\"><span class=\"stamp-label\">Caution</span>",
+    );
+    assert_contains(
+        &html,
+        "<div class=\"stamp verified\"><span class=\"stamp-label\">Verified</span>",
+    );
+    assert!(!html.contains("border-left"));
+    // Rules in their dimension's words; the lineage in the W3C PROV shapes, with a legend.
+    assert_contains(&html, "<td>completeness: species, sex, body_mass_g</td>");
+    assert_contains(&html, "<g class=\"legend\">");
+    assert_contains(&html, "<ellipse");
+    assert_contains(&html, "<g class=\"agent\"><title>Test Runner");
 }
 
 #[test]

@@ -358,7 +358,7 @@ pub fn markdown(r: &Report) -> String {
             let _ = writeln!(
                 o,
                 "| {} | {} | {} | {} | {} | {} |",
-                md_code(&rule_text(&c.rule)),
+                md(&rule_text(&c.rule)),
                 if c.passed { "passed" } else { "failed" },
                 c.n_failing,
                 md(&c.agent),
@@ -802,7 +802,7 @@ pub fn html(r: &Report) -> String {
         for c in &vc.checks {
             let _ = writeln!(
                 o,
-                "<tr><td><code>{}</code></td><td class=\"{}\">{}</td><td class=\"n\">{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
+                "<tr><td>{}</td><td class=\"{}\">{}</td><td class=\"n\">{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
                 esc(&rule_text(&c.rule)),
                 if c.passed { "pass" } else { "fail" },
                 if c.passed { "passed" } else { "failed" },
