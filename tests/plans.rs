@@ -515,7 +515,7 @@ fn a_hold_point_that_fails_stops_the_run_and_a_plain_inspection_does_not() {
         "the dedupe after the hold point did not run"
     );
     let shown = s.ok(&["show", "orders@2"]);
-    assert_contains(&shown, "hold          FAIL uniqueness: id");
+    assert_contains(&shown, "hold point   FAIL uniqueness: id");
     // The export writes the hold point back as a hold point.
     let exported: Value = serde_json::from_str(&s.ok(&["export", "orders", "--format", "plan"]))
         .expect("a plan on standard output");

@@ -123,6 +123,17 @@ pub fn apply_outcome(out: &mut impl Write, op: &Operation, o: &ApplyOutcome) -> 
                         "rows"
                     )
                 )
+            } else if let Operation::Sort { by } = op {
+                let keys: Vec<String> = by
+                    .iter()
+                    .map(|k| match k.direction {
+                        sluice::ops::sort::Direction::Ascending => k.column.clone(),
+                        sluice::ops::sort::Direction::Descending => {
+                            format!("{} (descending)", k.column)
+                        }
+                    })
+                    .collect();
+                format!("put the rows in order by {}", keys.join(", "))
             } else if matches!(op, Operation::Summarize { .. }) {
                 format!(
                     "made {} from {}",
@@ -509,8 +520,8 @@ pub fn show(out: &mut impl Write, d: &VersionDetail) -> io::Result<()> {
     for c in &d.checks {
         writeln!(
             out,
-            "  {}         {} {} · {} · {}",
-            if c.hold_point { "hold " } else { "check" },
+            "  {:<13}{} {} · {} · {}",
+            if c.hold_point { "hold point" } else { "check" },
             if c.passed { "pass" } else { "FAIL" },
             sluice::checks::describe_stored(&c.rule),
             c.checked_at,
