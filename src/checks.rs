@@ -392,7 +392,7 @@ pub fn parse_rules(text: &str, path: &str) -> Result<Vec<Rule>> {
     }
     let f: RuleFile = serde_json::from_str(text).map_err(|e| {
         Error::usage(format!(
-            "{path}: line {}, column {}: {}; the rules format is in schema/rules.schema.json and README.md (\"Rules\")",
+            "{path}: line {}, column {}: {}; the rules format is in schema/rules.schema.json and README.md (under `sluice check`)",
             e.line(),
             e.column(),
             e.to_string()

@@ -10,6 +10,7 @@ use proptest::prelude::*;
 use sluice::intake::{ingest, IngestOptions, IngestOutcome};
 use sluice::model::{Agent, Version};
 use sluice::ops::apply::{apply, ApplyOptions, ApplyOutcome};
+use sluice::ops::sort::{Direction, SortKey};
 use sluice::ops::{CaseTo, KeepWhich, OnError, Operation, Renaming};
 use sluice::store::Store;
 use sluice::table::{for_each_record, ReadSettings};
@@ -180,6 +181,11 @@ proptest! {
             Operation::Dedupe { key: key.clone(), keep },
             Operation::Trim { columns: None, inner },
             Operation::Case { columns: None, to },
+            // A permutation of the rows, recorded as runs.
+            Operation::Sort { by: vec![
+                SortKey { column: format!("c{}", n_cols - 1), direction: Direction::Descending },
+                SortKey { column: "c0".into(), direction: Direction::Ascending },
+            ] },
             Operation::Dedupe { key, keep },
             Operation::DropRows { predicate: "c0 is blank or c0 matches '^a'".into() },
             Operation::KeepRows { predicate: "not c0 in ('B', 'x-y')".into() },
