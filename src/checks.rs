@@ -375,9 +375,15 @@ pub struct CheckReport {
 /// (`{"rules": [{"rule": ...}]}`, without `"sluice_rules"`) is refused with the advice to
 /// convert it.
 pub fn parse_rules(text: &str, path: &str) -> Result<Vec<Rule>> {
-    if let Ok(serde_json::Value::Object(m)) = serde_json::from_str::<serde_json::Value>(text) {
-        match m.get("sluice_rules") {
-            None if m.contains_key("rules") => {
+    // A first look at the form, skipping everything else without keeping it.
+    #[derive(Deserialize)]
+    struct Form {
+        sluice_rules: Option<serde_json::Value>,
+        rules: Option<serde::de::IgnoredAny>,
+    }
+    if let Ok(form) = serde_json::from_str::<Form>(text) {
+        match form.sluice_rules {
+            None if form.rules.is_some() => {
                 return Err(Error::usage(format!(
                     "{path}: this is a rules file of the old form (rules named by \"rule\", no \"sluice_rules\"); convert it with `sluice upgrade {path} -o NEW.json`"
                 )))

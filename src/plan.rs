@@ -257,8 +257,13 @@ impl PlanStep {
 /// Reads a plan's text; errors name the line and column, or the step. A plan of the old form
 /// (`"sluice_plan": 1`) is refused with the advice to convert it.
 pub fn parse(text: &str, path: &str) -> Result<Plan> {
-    if let Ok(Value::Object(m)) = serde_json::from_str::<Value>(text) {
-        match m.get("sluice_plan") {
+    // A first look at the form, skipping everything else without keeping it.
+    #[derive(Deserialize)]
+    struct Form {
+        sluice_plan: Option<Value>,
+    }
+    if let Ok(form) = serde_json::from_str::<Form>(text) {
+        match form.sluice_plan.as_ref() {
             Some(Value::Number(n)) if n.as_u64() == Some(1) => {
                 return Err(Error::usage(format!(
                     "{path}: this is a plan of the old form (\"sluice_plan\": 1, steps with \"on\" and \"apply\"); convert it with `sluice upgrade {path} -o NEW.json`"

@@ -341,21 +341,21 @@ fn malformed_missing_and_huge_rules_plans_and_tables_are_refused_with_positions(
     };
     refused(
         "misspelt.json",
-        b"{\"rules\": [{\"rule\": \"unique\",\n \"colums\": [\"id\"]}]}",
+        b"{\"sluice_rules\": 2, \"rules\": [{\"dimension\": \"uniqueness\",\n \"colums\": [\"id\"]}]}",
         &["check", "o", "--rules", "misspelt.json"],
-        &["misspelt.json: line 2, column 19: unknown field `colums`, expected `columns`"],
+        &["misspelt.json: line 2, column 9: unknown field `colums`"],
     );
     refused(
         "missing.json",
-        b"{\"rules\": [{\"rule\": \"unique\", \"columns\": [\"technician\"]}]}",
+        b"{\"sluice_rules\": 2, \"rules\": [{\"dimension\": \"uniqueness\", \"columns\": [\"technician\"]}]}",
         &["check", "o", "--rules", "missing.json"],
         &["\"technician\", which is not in o@1; its columns are: id, service"],
     );
-    let mut rules = String::from("{\"rules\": [\n");
+    let mut rules = String::from("{\"sluice_rules\": 2, \"rules\": [\n");
     for _ in 0..100_000 {
-        rules.push_str("{\"rule\": \"not_blank\", \"columns\": [\"id\"]},\n");
+        rules.push_str("{\"dimension\": \"completeness\", \"columns\": [\"id\"]},\n");
     }
-    rules.push_str("{\"rule\": \"not_blank\", \"columns\": [\"id\"]}\n");
+    rules.push_str("{\"dimension\": \"completeness\", \"columns\": [\"id\"]}\n");
     refused(
         "huge-rules.json",
         rules.as_bytes(),
