@@ -156,3 +156,35 @@ proptest! {
         }
     }
 }
+
+#[test]
+fn apply_sorts_from_the_command_line_too() {
+    let s = Sandbox::with_store();
+    s.file("rows.csv", "id,shop,amount\n1,b,2\n2,a,10\n3,b,9\n4,a,-1\n");
+    s.ok(&["ingest", "rows.csv", "--as", "rows"]);
+    let out = s.ok(&[
+        "apply",
+        "rows",
+        "sort",
+        "--by",
+        "shop,amount:desc",
+        "--why",
+        "by shop, largest first",
+    ]);
+    assert_contains(
+        &out,
+        "sort put the rows in order by shop, amount (descending)",
+    );
+    assert_eq!(
+        s.ok(&["cat", "rows"]),
+        "id,shop,amount\n2,a,10\n4,a,-1\n3,b,9\n1,b,2\n"
+    );
+    // The plan exported from it says the same in settings.
+    let plan: serde_json::Value =
+        serde_json::from_str(&s.ok(&["export", "rows", "--format", "plan"])).unwrap();
+    assert_eq!(plan["steps"][0]["clean"], "sort");
+    assert_eq!(
+        plan["steps"][0]["settings"],
+        json!({"by": [{"column": "shop", "direction": "ascending"}, {"column": "amount", "direction": "descending"}]})
+    );
+}

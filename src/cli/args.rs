@@ -867,6 +867,24 @@ pub enum OpCommand {
         #[command(flatten)]
         step: StepArgs,
     },
+    /// Put the rows in a stable order by one or more columns (numbers as numbers, else text)
+    #[command(
+        after_help = "Each column sorts ascending unless it ends in :desc. Two cells that are both plain numbers compare \
+        as numbers, exactly; otherwise as text; numbers come before text. Rows with equal keys keep their order.\n\n\
+        Example:\n  sluice apply all_orders sort --by shop,opened:desc --why \"each shop's latest orders first\""
+    )]
+    Sort {
+        /// The columns to sort by, the first deciding first; COL:desc for descending
+        #[arg(
+            long,
+            required = true,
+            value_name = "COL[:desc][,COL..]",
+            value_delimiter = ','
+        )]
+        by: Vec<String>,
+        #[command(flatten)]
+        step: StepArgs,
+    },
 }
 
 #[derive(Debug, Clone, Copy, ValueEnum)]

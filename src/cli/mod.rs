@@ -943,6 +943,12 @@ fn apply_options(a: &ApplyArgs, agent: Agent) -> anyhow::Result<ApplyOptions> {
             },
             step,
         ),
+        OpCommand::Sort { by, step } => (
+            Operation::Sort {
+                by: by.iter().map(|k| sort_key(k)).collect(),
+            },
+            step,
+        ),
     };
     Ok(ApplyOptions {
         op,
@@ -1205,6 +1211,21 @@ fn write_file_recorded<T>(
         )
     })?;
     Ok(recorded)
+}
+
+/// `COL`, `COL:asc` or `COL:desc` as a sort key (a column whose name ends in `:desc` is written
+/// `NAME:desc:asc`).
+fn sort_key(text: &str) -> sluice::ops::sort::SortKey {
+    use sluice::ops::sort::{Direction, SortKey};
+    let (column, direction) = match text.rsplit_once(':') {
+        Some((c, "desc" | "descending")) => (c, Direction::Descending),
+        Some((c, "asc" | "ascending")) => (c, Direction::Ascending),
+        _ => (text, Direction::Ascending),
+    };
+    SortKey {
+        column: column.to_string(),
+        direction,
+    }
 }
 
 /// Reads a file the user named (a plan, a rules file); a failure names the file, says what is
