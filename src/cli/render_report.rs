@@ -131,7 +131,16 @@ fn facts(s: &ReportStep) -> Vec<(&'static str, String)> {
         f.push(("operation", op.clone()));
     }
     if !s.params.is_null() {
-        f.push(("parameters", canonical_json(&s.params)));
+        // An operation's settings as a plan writes them: the store's `op` tag is internal and
+        // the operation is named on the line above.
+        match (&s.operation, &s.params) {
+            (Some(_), serde_json::Value::Object(m)) if m.contains_key("op") => {
+                let mut m = m.clone();
+                m.remove("op");
+                f.push(("settings", canonical_json(&serde_json::Value::Object(m))));
+            }
+            _ => f.push(("parameters", canonical_json(&s.params))),
+        }
     }
     if !s.inputs.is_empty() {
         f.push(("read", versions(&s.inputs)));
@@ -293,7 +302,7 @@ pub fn markdown(r: &Report) -> String {
         let _ = writeln!(o, "### {}\n", step_title(s));
         let _ = writeln!(o, "| | |\n| --- | --- |");
         for (k, v) in facts(s) {
-            if k == "parameters" || k == "command" {
+            if k == "parameters" || k == "settings" || k == "command" {
                 let _ = writeln!(o, "| {k} | {} |", md_code(&v));
             } else {
                 let _ = writeln!(o, "| {k} | {} |", md(&v));
@@ -711,7 +720,7 @@ pub fn html(r: &Report) -> String {
             s.id
         );
         for (k, v) in facts(s) {
-            let shown = if k == "parameters" || k == "command" {
+            let shown = if k == "parameters" || k == "settings" || k == "command" {
                 format!("<code>{}</code>", esc(&v))
             } else {
                 esc(&v)
