@@ -398,7 +398,7 @@ pub fn parse_rules(text: &str, path: &str) -> Result<Vec<Rule>> {
     }
     let f: RuleFile = serde_json::from_str(text).map_err(|e| {
         Error::usage(format!(
-            "{path}: line {}, column {}: {}; the rules format is in schema/rules.schema.json and README.md (under `sluice check`)",
+            "{path}: line {}, column {}: {}; the rules format is in schema/rules.schema.json and `sluice inspect --help`",
             e.line(),
             e.column(),
             e.to_string()

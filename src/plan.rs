@@ -1,7 +1,7 @@
 //! Plans: a JSON list of steps that `sluice run` records one by one, and that `sluice export
 //! --format plan` writes back from the history of a version. A plan names its sources (raw
 //! data), binds each to a file or a stored version when it runs, and then cleans and inspects
-//! in order. Every step is recorded exactly as `sluice apply` and `sluice check` record it; a
+//! in order. Every step is recorded exactly as `sluice clean` and `sluice inspect` record it; a
 //! run is only a sequence of such commands, so a failure keeps the steps done before it.
 //!
 //! Inside a plan, a name is a dataset name: a step on a `dataset` reads the version this run
@@ -107,7 +107,7 @@ fn is_true(b: &bool) -> bool {
 pub struct PlanStep {
     /// The dataset (or any version reference) the step works on.
     pub dataset: String,
-    /// A built-in operation with its parameters, as `sluice apply` records them.
+    /// A built-in operation with its parameters, as `sluice clean` records them.
     pub clean: Option<Operation>,
     /// Rules to inspect the version against, as in a rules file.
     pub inspect: Option<Vec<Rule>>,
@@ -248,7 +248,9 @@ impl PlanStep {
     pub fn describe(&self) -> String {
         match (&self.clean, &self.inspect) {
             (Some(op), _) => format!("{} on {}", op.name(), self.dataset),
-            (None, _) if self.hold_point => format!("hold point on {}", self.dataset),
+            (None, _) if self.hold_point => {
+                format!("inspection at a hold point on {}", self.dataset)
+            }
             _ => format!("inspection of {}", self.dataset),
         }
     }
@@ -541,7 +543,7 @@ pub fn run(
                                 })
                                 .collect();
                             let error = Error::from(ErrorKind::Data(format!(
-                                "the hold point on {} failed: {}; the results are recorded on the version (`sluice show {}`)",
+                                "the hold point on {} failed: {}; the results are recorded on the version (`sluice about {}`)",
                                 report.version,
                                 failing.join(", "),
                                 report.version
@@ -667,7 +669,7 @@ fn output_name(store: &Store, step: &PlanStep) -> Result<String> {
         return Ok(n.clone());
     }
     Ok(match refs::resolve(&store.lineage, &step.dataset) {
-        // A reference to a stored version (`orders@2`, a hash) writes to its dataset; a bare
+        // A reference to a stored version (`orders:v2`, a hash) writes to its dataset; a bare
         // name is the dataset itself.
         Ok(v) if v.dataset != step.dataset => v.dataset,
         _ => step.dataset.clone(),
@@ -725,7 +727,9 @@ fn run_step(
             version.clone()
         }
         ApplyOutcome::Replayed { .. } => {
-            return Err(ErrorKind::Database("a plan step was replayed, not recorded".into()).into())
+            return Err(
+                ErrorKind::Inconsistent("a plan step was replayed, not recorded".into()).into(),
+            )
         }
     };
     current.insert(dataset, version);
@@ -860,7 +864,7 @@ fn checks_on(store: &Store, v: &Version) -> Result<Vec<PlanStep>> {
             .ok()
             .and_then(|r| Rule::from_stored(&r))
             .ok_or_else(|| {
-                Error::from(ErrorKind::Database(format!(
+                Error::from(ErrorKind::Inconsistent(format!(
                     "an inspection of {} holds a rule this build cannot read ({rule}); run `sluice verify`",
                     v.label()
                 )))

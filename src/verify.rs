@@ -298,7 +298,7 @@ fn audit_against_records(
         if e.action == "check" {
             continue;
         }
-        let Some(v) = versions.iter().find(|v| v.label() == e.subject) else {
+        let Some(v) = versions.iter().find(|v| v.audit_subject() == e.subject) else {
             out.push(problem(
                 "audit_mismatch",
                 e.subject.clone(),

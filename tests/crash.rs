@@ -1,4 +1,4 @@
-//! Crash safety of real processes: `sluice ingest` of a large generated export and `sluice run`
+//! Crash safety of real processes: `sluice receive` of a large generated export and `sluice run`
 //! of a six-step plan are started as child processes and killed with SIGKILL at 50 moments
 //! each, spread evenly over the measured duration of an unkilled run (deterministic delays,
 //! not random ones). After every kill: `sluice verify` finds the store intact, the store holds
@@ -41,7 +41,8 @@ fn sluice(dir: &Path, args: &[&str]) -> Command {
     let mut c = Command::new(env!("CARGO_BIN_EXE_sluice"));
     c.args(args)
         .current_dir(dir)
-        .env("SLUICE_AGENT", AGENT)
+        .env("SLUICE_PERSON", PERSON)
+        .env("SLUICE_EMAIL", EMAIL)
         .env("NO_COLOR", "1")
         .env_remove("SLUICE_STORE")
         .stdout(Stdio::null())
@@ -123,7 +124,7 @@ fn delays(total: Duration) -> impl Iterator<Item = Duration> {
 }
 
 fn versions_of(dir: &Path, dataset: &str) -> Vec<serde_json::Value> {
-    ok_json(dir, &["log", dataset, "--json"])
+    ok_json(dir, &["timeline", "--dataset", dataset, "--json"])
         .as_array()
         .unwrap()
         .iter()
@@ -144,15 +145,15 @@ fn ingest_killed_at_fifty_moments_records_all_or_nothing() {
         "seed.csv",
         "order_id,shop\nWO-1,Quillby Cycle Mend\nWO-2,Quillby Cycle Mend\n",
     );
-    base.ok(&["ingest", "seed.csv", "--as", "orders"]);
+    base.ok(&["receive", "seed.csv", "--as", "orders"]);
     let big = export(base.path(), ROWS);
     let big_arg = big.to_str().unwrap().to_string();
-    let args = ["ingest", big_arg.as_str(), "--as", "orders"];
+    let args = ["receive", big_arg.as_str(), "--as", "orders"];
 
     let reference = tempfile::tempdir().unwrap();
     copy_dir(
-        &base.path().join(".sluice"),
-        &reference.path().join(".sluice"),
+        &base.path().join("sluice-store"),
+        &reference.path().join("sluice-store"),
     );
     let total = measure(reference.path(), &args);
     let want = versions_of(reference.path(), "orders");
@@ -165,7 +166,10 @@ fn ingest_killed_at_fifty_moments_records_all_or_nothing() {
     let mut tally = Tally::default();
     for (k, delay) in delays(total).enumerate() {
         let dir = tempfile::tempdir().unwrap();
-        copy_dir(&base.path().join(".sluice"), &dir.path().join(".sluice"));
+        copy_dir(
+            &base.path().join("sluice-store"),
+            &dir.path().join("sluice-store"),
+        );
         let child = sluice(dir.path(), &args).spawn().unwrap();
         let killed = kill_after(child, delay);
         let what = format!("kill point {k} at {delay:?}");
@@ -245,7 +249,7 @@ fn plan_run_killed_at_fifty_moments_keeps_whole_steps_only() {
     export(base.path(), PLAN_ROWS);
     base.file("plan.json", PLAN);
     // The export is taken in first, so that the kills land in the steps.
-    base.ok(&["ingest", "quillby_q3.csv", "--as", "orders"]);
+    base.ok(&["receive", "quillby_q3.csv", "--as", "orders"]);
     let args = ["run", "plan.json"];
 
     let reference = tempfile::tempdir().unwrap();
@@ -279,7 +283,7 @@ fn plan_run_killed_at_fifty_moments_keeps_whole_steps_only() {
             assert_eq!(
                 by_seq(&now, seq),
                 by_seq(&want, seq),
-                "{what}: orders@{seq}"
+                "{what}: orders:v{seq}"
             );
         }
         assert_eq!(

@@ -36,7 +36,8 @@ fn measured(dir: &Path, args: &[&str]) -> Measured {
     let child = Command::new(env!("CARGO_BIN_EXE_sluice"))
         .args(args)
         .current_dir(dir)
-        .env("SLUICE_AGENT", AGENT)
+        .env("SLUICE_PERSON", PERSON)
+        .env("SLUICE_EMAIL", EMAIL)
         .env("NO_COLOR", "1")
         .env_remove("SLUICE_STORE")
         .stdin(Stdio::null())
@@ -82,7 +83,7 @@ fn check(s: &Sandbox, name: &str, bytes: &[u8], expect: Expect, bound_mib: u64) 
     let before = s.snapshot();
     let m = measured(
         s.path(),
-        &["ingest", file.to_str().unwrap(), "--as", &dataset],
+        &["receive", file.to_str().unwrap(), "--as", &dataset],
     );
     std::fs::remove_file(&file).unwrap();
     assert!(
@@ -108,7 +109,7 @@ fn check(s: &Sandbox, name: &str, bytes: &[u8], expect: Expect, bound_mib: u64) 
             for t in texts {
                 assert_contains(&m.stderr, t);
             }
-            let v = s.json(&["show", &dataset, "--json"]);
+            let v = s.json(&["about", &dataset, "--json"]);
             assert_eq!(v["version"]["n_rows"], rows, "{name}: {v}");
         }
     }
@@ -220,7 +221,7 @@ fn broken_csv_corpus_gets_clear_errors_or_documented_handling_within_memory_boun
         Expect::Taken(2, &[]),
         BASE_MIB,
     );
-    let kept = s.ok(&["cat", "bom_in_the_middle_csv"]);
+    let kept = s.ok(&["retrieve", "bom_in_the_middle_csv"]);
     assert_contains(&kept, "WO-1,\u{feff}Quillby Cycle Mend");
 
     // One field of 50 MB (quoted, with line breaks and doubled quotes inside).
@@ -294,7 +295,7 @@ fn a_file_that_grows_while_it_is_read_is_refused_and_the_store_is_unchanged() {
             appended
         })
     };
-    let m = measured(s.path(), &["ingest", "growing.csv", "--as", "orders"]);
+    let m = measured(s.path(), &["receive", "growing.csv", "--as", "orders"]);
     stop.store(true, std::sync::atomic::Ordering::SeqCst);
     let appended = writer.join().unwrap();
     assert_eq!(m.code, 2, "{}", m.stderr);
@@ -318,7 +319,7 @@ fn a_file_that_grows_while_it_is_read_is_refused_and_the_store_is_unchanged() {
 fn malformed_missing_and_huge_rules_plans_and_tables_are_refused_with_positions() {
     let s = Sandbox::with_store();
     s.file("o.csv", "id,service\n1,tune\n2,flat\n");
-    s.ok(&["ingest", "o.csv", "--as", "o"]);
+    s.ok(&["receive", "o.csv", "--as", "o"]);
     let before = s.snapshot();
     let refused = |name: &str, content: &[u8], args: &[&str], texts: &[&str]| {
         s.file(name, content);
@@ -342,14 +343,14 @@ fn malformed_missing_and_huge_rules_plans_and_tables_are_refused_with_positions(
     refused(
         "misspelt.json",
         b"{\"sluice_rules\": 2, \"rules\": [{\"dimension\": \"uniqueness\",\n \"colums\": [\"id\"]}]}",
-        &["check", "o", "--rules", "misspelt.json"],
+        &["inspect", "o", "--rules", "misspelt.json"],
         &["misspelt.json: line 2, column 9: unknown field `colums`"],
     );
     refused(
         "missing.json",
         b"{\"sluice_rules\": 2, \"rules\": [{\"dimension\": \"uniqueness\", \"columns\": [\"technician\"]}]}",
-        &["check", "o", "--rules", "missing.json"],
-        &["\"technician\", which is not in o@1; its columns are: id, service"],
+        &["inspect", "o", "--rules", "missing.json"],
+        &["\"technician\", which is not in o:v1; its columns are: id, service"],
     );
     let mut rules = String::from("{\"sluice_rules\": 2, \"rules\": [\n");
     for _ in 0..100_000 {
@@ -359,7 +360,7 @@ fn malformed_missing_and_huge_rules_plans_and_tables_are_refused_with_positions(
     refused(
         "huge-rules.json",
         rules.as_bytes(),
-        &["check", "o", "--rules", "huge-rules.json"],
+        &["inspect", "o", "--rules", "huge-rules.json"],
         &["huge-rules.json: line 100003, column 0: EOF while parsing"],
     );
     let mut plan = String::from(
@@ -379,13 +380,13 @@ fn malformed_missing_and_huge_rules_plans_and_tables_are_refused_with_positions(
         "missing-column-plan.json",
         b"{\"sluice_plan\": 2, \"sources\": [{\"dataset\": \"o\", \"file\": \"o.csv\"}],\n \"steps\": [{\"dataset\": \"o\", \"clean\": \"trim\", \"settings\": {\"columns\": [\"shop\"]}, \"reason\": \"x\"}]}",
         &["run", "missing-column-plan.json"],
-        &["step 1 (trim on o)", "column \"shop\" is not in o@1; its columns are: id, service"],
+        &["plan entry 1 (trim on o)", "column \"shop\" is not in o:v1; its columns are: id, service"],
     );
     refused(
         "twice.csv",
         b"label,name\ntune,Tune-up\ntune,Full service\n",
         &[
-            "apply",
+            "clean",
             "o",
             "map",
             "--columns",
@@ -401,7 +402,7 @@ fn malformed_missing_and_huge_rules_plans_and_tables_are_refused_with_positions(
         "one-column.csv",
         b"label\ntune\n",
         &[
-            "apply",
+            "clean",
             "o",
             "map",
             "--columns",
@@ -417,7 +418,7 @@ fn malformed_missing_and_huge_rules_plans_and_tables_are_refused_with_positions(
         "labels.csv",
         b"label,name\ntune,Tune-up\n",
         &[
-            "apply",
+            "clean",
             "o",
             "map",
             "--columns",

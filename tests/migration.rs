@@ -38,43 +38,43 @@ fn a_schema_1_store_is_migrated_and_keeps_its_history() {
         )),
         s.path(),
     );
-    let db = s.path().join(".sluice/lineage.db");
+    let db = s.path().join("sluice-store/lineage.db");
     assert_eq!(user_version(&db), 1);
     // Any command opens the store and migrates it.
-    let log = s.json(&["log", "--json"]);
+    let log = s.json(&["timeline", "--json"]);
     assert_eq!(user_version(&db), sluice::store::lineage::SCHEMA_VERSION);
     let kinds: Vec<&str> = log
         .as_array()
         .unwrap()
         .iter()
-        .map(|e| e["step"]["operation"].as_str().unwrap_or("ingest"))
+        .map(|e| e["step"]["operation"].as_str().unwrap_or("receive"))
         .collect();
-    assert_eq!(kinds, vec!["dedupe", "trim", "ingest"]);
+    assert_eq!(kinds, vec!["receive", "trim", "dedupe"], "oldest first");
     let report = s.json(&["verify", "--json"]);
     assert_eq!(report["intact"], true, "{report}");
     assert_eq!(
-        s.run(&["cat", "orders"]).stdout,
+        s.run(&["retrieve", "orders"]).stdout,
         "order_id,shop,amount\nWO-1,Quillby Cycle Mend,12.50\nWO-2,Oxwater Wheelworks,8.00\n"
     );
     // Provenance recorded by schema 1 in the database's tables reads back through the same
     // API that reads the provenance objects of schema 4 and later.
     {
-        let store = sluice::store::Store::open(&s.path().join(".sluice")).unwrap();
-        let trimmed = sluice::refs::resolve(&store.lineage, "orders@2").unwrap();
-        let raw = sluice::refs::resolve(&store.lineage, "orders@1").unwrap();
+        let store = sluice::store::Store::open(&s.path().join("sluice-store")).unwrap();
+        let trimmed = sluice::refs::resolve(&store.lineage, "orders:v2").unwrap();
+        let raw = sluice::refs::resolve(&store.lineage, "orders:v1").unwrap();
         let changes = sluice::provenance::cell_changes(&store, &trimmed).unwrap();
         assert_eq!(changes.len(), 1);
         assert_ne!(changes[0].old, changes[0].new);
         let runs = sluice::provenance::row_runs(&store, &trimmed, raw.id).unwrap();
         assert_eq!(runs.iter().map(|r| r.len).sum::<u64>(), trimmed.n_rows);
-        let deduped = sluice::refs::resolve(&store.lineage, "orders@3").unwrap();
+        let deduped = sluice::refs::resolve(&store.lineage, "orders:v3").unwrap();
         let drops = sluice::provenance::drops(&store, deduped.step_id, trimmed.id).unwrap();
         assert_eq!(drops.len(), 1);
         assert!(drops[0].duplicate_of.is_some());
     }
     // The migrated store takes new steps and their new kinds of record.
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "number",
         "--columns",

@@ -41,7 +41,7 @@ fn assert_valid(v: &jsonschema::Validator, plan: &Value, what: &str) {
 }
 
 fn hash_of(s: &Sandbox, reference: &str) -> String {
-    s.json(&["show", reference, "--json"])["version"]["hash"]
+    s.json(&["about", reference, "--json"])["version"]["hash"]
         .as_str()
         .unwrap()
         .to_string()
@@ -349,8 +349,8 @@ fn an_exported_plan_remakes_the_version_byte_for_byte_in_a_fresh_store() {
         assert_eq!(hash_of(&fresh, r), hash_of(&d, r), "{r}");
     }
     assert_eq!(
-        fresh.run(&["cat", "q3_by_shop"]).raw_stdout,
-        d.run(&["cat", "q3_by_shop"]).raw_stdout
+        fresh.run(&["retrieve", "q3_by_shop"]).raw_stdout,
+        d.run(&["retrieve", "q3_by_shop"]).raw_stdout
     );
     assert_contains(&fresh.ok(&["verify"]), "intact");
 }
@@ -375,9 +375,9 @@ fn inputs_bind_to_stored_versions_or_to_new_files() {
         "run",
         "quillby_only.json",
         "--input",
-        "quillby_orders=quillby_orders@1",
+        "quillby_orders=quillby_orders:v1",
     ]);
-    assert_contains(&out, "input quillby_orders: bound to quillby_orders@1");
+    assert_contains(&out, "input quillby_orders: bound to quillby_orders:v1");
     assert_eq!(hash_of(&d, "quillby_orders"), cleaned);
 
     // Next quarter's export, given on the command line instead of the plan's file: the same
@@ -408,8 +408,8 @@ fn inputs_bind_to_stored_versions_or_to_new_files() {
     assert_eq!(done.len(), 4);
     assert!(done[1..]
         .iter()
-        .all(|s| s["kind"] == "apply" && s["recorded"] == true));
-    let latest = d.json(&["show", "quillby_orders", "--json"]);
+        .all(|s| s["kind"] == "clean" && s["recorded"] == true));
+    let latest = d.json(&["about", "quillby_orders", "--json"]);
     assert_eq!(latest["version"]["n_rows"].as_u64().unwrap(), 90);
 
     // An input the plan does not have, or a file that is not there: refused before anything.
@@ -442,14 +442,19 @@ fn a_failing_step_stops_the_run_and_keeps_the_steps_before_it() {
     );
     let r = s.run(&["run", "p.json"]);
     assert_eq!(r.code, 1, "an amount that cannot be read is a data failure");
-    assert_contains(&r.stdout, "step 1: recorded orders@2");
-    assert_contains(&r.stderr, "the run stopped at step 2 (number on orders)");
+    // Steps are called by their store-wide number (the intake is step 1); plan entries by
+    // their place in the plan.
+    assert_contains(&r.stdout, "step 2: recorded orders:v2");
     assert_contains(
         &r.stderr,
-        "the store keeps what came before: orders@1, orders@2",
+        "the run stopped at plan entry 2 (number on orders)",
+    );
+    assert_contains(
+        &r.stderr,
+        "the store keeps what came before: orders:v1, orders:v2",
     );
     assert_contains(&r.stderr, "abc");
-    let log = s.json(&["log", "orders", "--json"]);
+    let log = s.json(&["timeline", "--dataset", "orders", "--json"]);
     assert_eq!(log.as_array().unwrap().len(), 2, "the intake and the trim");
     assert_contains(&s.ok(&["verify"]), "intact");
 
@@ -463,8 +468,8 @@ fn a_failing_step_stops_the_run_and_keeps_the_steps_before_it() {
             ]}"#,
     );
     let err = s.fails(2, &["run", "q.json"]);
-    assert_contains(&err, "step 2 (case on orders)");
-    assert_contains(&err, "column \"colour\" is not in orders@3");
+    assert_contains(&err, "plan entry 2 (case on orders)");
+    assert_contains(&err, "column \"colour\" is not in orders:v3");
 }
 
 #[test]
@@ -485,9 +490,13 @@ fn a_hold_point_that_fails_stops_the_run_and_a_plain_inspection_does_not() {
     s.file("plain.json", plan(false));
     let r = s.run(&["run", "plain.json"]);
     assert_eq!(r.code, 1, "a failing check is reported in the exit code");
-    assert_contains(&r.stdout, "step 2: check on orders@2: 1 of 2 rules failed");
+    assert_contains(
+        &r.stdout,
+        "plan entry 2: inspection on orders:v2: 1 of 2 rules failed",
+    );
     assert_contains(&r.stdout, "uniqueness: id fails on 1 row");
-    assert_contains(&r.stdout, "step 3: recorded orders@3");
+    // The dedupe is the store's third step: the intake, the trim, then it.
+    assert_contains(&r.stdout, "step 3: recorded orders:v3");
 
     let s = Sandbox::with_store();
     s.file("o.csv", "id,status\n1,done\n1,done \n2,\n");
@@ -496,25 +505,25 @@ fn a_hold_point_that_fails_stops_the_run_and_a_plain_inspection_does_not() {
     assert_eq!(r.code, 1);
     assert_contains(
         &r.stderr,
-        "the run stopped at step 2 (hold point on orders)",
+        "the run stopped at plan entry 2 (inspection at a hold point on orders)",
     );
     assert_contains(
         &r.stderr,
-        "the hold point on orders@2 failed: uniqueness: id (1 row)",
+        "the hold point on orders:v2 failed: uniqueness: id (1 row)",
     );
-    let shown = s.json(&["show", "orders@2", "--json"]);
+    let shown = s.json(&["about", "orders:v2", "--json"]);
     let checks = shown["checks"].as_array().unwrap();
     assert_eq!(checks.len(), 2);
     assert!(checks.iter().all(|c| c["hold_point"] == true));
     assert_eq!(
-        s.json(&["log", "orders", "--json"])
+        s.json(&["timeline", "--dataset", "orders", "--json"])
             .as_array()
             .unwrap()
             .len(),
         2,
         "the dedupe after the hold point did not run"
     );
-    let shown = s.ok(&["show", "orders@2"]);
+    let shown = s.ok(&["about", "orders:v2"]);
     assert_contains(&shown, "hold point   FAIL uniqueness: id");
     // The export writes the hold point back as a hold point.
     let exported: Value = serde_json::from_str(&s.ok(&["export", "orders", "--format", "plan"]))
@@ -530,25 +539,25 @@ fn a_hold_point_that_fails_stops_the_run_and_a_plain_inspection_does_not() {
 fn histories_a_plan_cannot_express_are_refused_with_the_reason() {
     let s = Sandbox::with_store();
     s.file("o.csv", "id,name\n1, Ada\n2,Bram\n");
-    s.ok(&["ingest", "o.csv", "--as", "orders"]);
-    s.ok(&["apply", "orders", "trim", "--why", "spaces"]);
-    // orders@1 stacked under orders@2: the plan would need two versions of one name at once.
+    s.ok(&["receive", "o.csv", "--as", "orders"]);
+    s.ok(&["clean", "orders", "trim", "--why", "spaces"]);
+    // orders:v1 stacked under orders:v2: the plan would need two versions of one name at once.
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "append",
         "--other",
-        "orders@1",
+        "orders:v1",
         "--as",
         "both",
         "--why",
         "before and after",
     ]);
     let err = s.fails(2, &["export", "both", "--format", "plan"]);
-    assert_contains(&err, "cannot write both@1 as a plan");
+    assert_contains(&err, "cannot write both:v1 as a plan");
     assert_contains(
         &err,
-        "reads orders@1 after a later version of orders was made",
+        "reads orders:v1 after a later version of orders was made",
     );
 }
 
@@ -556,7 +565,7 @@ fn histories_a_plan_cannot_express_are_refused_with_the_reason() {
 fn plans_and_rules_files_of_the_old_form_are_refused_with_the_way_to_convert_them() {
     let s = Sandbox::with_store();
     s.file("o.csv", "id,name\n1, Ada\n");
-    s.ok(&["ingest", "o.csv", "--as", "o"]);
+    s.ok(&["receive", "o.csv", "--as", "o"]);
     let before = s.snapshot();
     s.file(
         "old.json",
@@ -572,7 +581,7 @@ fn plans_and_rules_files_of_the_old_form_are_refused_with_the_way_to_convert_the
         "old_rules.json",
         r#"{"rules": [{"rule": "unique", "columns": ["id"]}]}"#,
     );
-    let err = s.fails(2, &["check", "o", "--rules", "old_rules.json"]);
+    let err = s.fails(2, &["inspect", "o", "--rules", "old_rules.json"]);
     assert_contains(&err, "old_rules.json: this is a rules file of the old form");
     assert_contains(
         &err,
@@ -584,7 +593,7 @@ fn plans_and_rules_files_of_the_old_form_are_refused_with_the_way_to_convert_the
     let plan = sluice::plan::upgrade(&std::fs::read_to_string(s.path().join("old.json")).unwrap())
         .unwrap();
     s.file("new.json", &plan);
-    assert_contains(&s.ok(&["run", "new.json"]), "recorded o@2");
+    assert_contains(&s.ok(&["run", "new.json"]), "recorded o:v2");
     let rules =
         sluice::plan::upgrade(&std::fs::read_to_string(s.path().join("old_rules.json")).unwrap())
             .unwrap();
@@ -594,7 +603,7 @@ fn plans_and_rules_files_of_the_old_form_are_refused_with_the_way_to_convert_the
     );
     s.file("new_rules.json", &rules);
     assert_contains(
-        &s.ok(&["check", "o", "--rules", "new_rules.json"]),
+        &s.ok(&["inspect", "o", "--rules", "new_rules.json"]),
         "pass  uniqueness: id",
     );
     assert_valid(
@@ -625,7 +634,7 @@ fn malformed_rules_files_are_refused_by_the_schema_and_by_sluice_alike() {
     let v = schema_file("rules.schema.json");
     let s = Sandbox::with_store();
     s.file("o.csv", "id,name\n1,Ada\n");
-    s.ok(&["ingest", "o.csv", "--as", "o"]);
+    s.ok(&["receive", "o.csv", "--as", "o"]);
     for (rules, expected) in [
         (
             r#"{"sluice_rules": 2, "rules": [{"dimension": "validity", "column": "id"}]}"#,
@@ -654,7 +663,7 @@ fn malformed_rules_files_are_refused_by_the_schema_and_by_sluice_alike() {
             "the schema accepts rules sluice refuses: {rules}"
         );
         s.file("r.json", rules);
-        let err = s.fails(2, &["check", "o", "--rules", "r.json"]);
+        let err = s.fails(2, &["inspect", "o", "--rules", "r.json"]);
         assert_contains(&err, expected);
         assert_contains(&err, "r.json");
     }
@@ -664,14 +673,14 @@ fn malformed_rules_files_are_refused_by_the_schema_and_by_sluice_alike() {
 fn check_results_an_older_build_stored_are_shown_and_exported_in_the_current_form() {
     let s = Sandbox::with_store();
     s.file("o.csv", "id,status\n1,done\n2,open\n");
-    s.ok(&["ingest", "o.csv", "--as", "o"]);
+    s.ok(&["receive", "o.csv", "--as", "o"]);
     s.file(
         "r.json",
         r#"{"sluice_rules": 2, "rules": [{"dimension": "validity", "column": "status", "one_of": ["done", "open"]}, {"dimension": "completeness", "columns": ["id"]}]}"#,
     );
-    s.ok(&["check", "o", "--rules", "r.json"]);
+    s.ok(&["inspect", "o", "--rules", "r.json"]);
     // Stores written before the dimensions hold the rules in their old JSON; put them back so.
-    let db = s.path().join(".sluice/lineage.db");
+    let db = s.path().join("sluice-store/lineage.db");
     let conn = rusqlite::Connection::open(&db).unwrap();
     conn.execute(
         "UPDATE check_results SET rule = ?1 WHERE rule LIKE '%one_of%'",
@@ -684,10 +693,10 @@ fn check_results_an_older_build_stored_are_shown_and_exported_in_the_current_for
     )
     .unwrap();
     drop(conn);
-    let shown = s.ok(&["show", "o"]);
+    let shown = s.ok(&["about", "o"]);
     assert_contains(&shown, "pass validity: status one of done, open");
     assert_contains(&shown, "pass completeness: id");
-    let json = s.json(&["show", "o", "--json"]);
+    let json = s.json(&["about", "o", "--json"]);
     assert_eq!(
         json["checks"][0]["rule"],
         json!({"dimension": "validity", "column": "status", "one_of": ["done", "open"]})
@@ -707,12 +716,12 @@ fn check_results_an_older_build_stored_are_shown_and_exported_in_the_current_for
 
 // The demo's figures worked out again with Python's csv and decimal modules (general-purpose
 // references) from the table as it stood before the demo's last three cleaning steps
-// (all_orders@9): cancelled orders left out, customers' names in one case, every shop's months
+// (all_orders:v9): cancelled orders left out, customers' names in one case, every shop's months
 // in calendar order; sums exact, means rounded half to even at six places.
 #[test]
 fn the_demo_figures_leave_out_cancelled_work_and_come_in_calendar_order() {
     let d = Sandbox::with_demo();
-    let before = d.run(&["cat", "all_orders@9"]).stdout;
+    let before = d.run(&["retrieve", "all_orders:v9"]).stdout;
     let script = r#"
 import csv, decimal, io, sys
 rows = list(csv.DictReader(io.StringIO(sys.stdin.read())))
@@ -749,15 +758,15 @@ for (shop, month), (n, parts, hours, n_hours) in groups.items():
     let out = String::from_utf8(out.stdout).unwrap();
     let (counts, expected) = out.split_once('\n').unwrap();
     let counts: Vec<u64> = counts.split(' ').map(|n| n.parse().unwrap()).collect();
-    let after = d.json(&["show", "all_orders", "--json"]);
+    let after = d.json(&["about", "all_orders", "--json"]);
     assert_eq!(after["version"]["n_rows"].as_u64(), Some(counts[1]));
     assert!(
         counts[0] > counts[1],
         "the demo has cancelled orders to leave out"
     );
-    assert_eq!(d.run(&["cat", "q3_by_shop"]).stdout, expected);
+    assert_eq!(d.run(&["retrieve", "q3_by_shop"]).stdout, expected);
     // Months in calendar order within each shop.
-    let by_shop = d.run(&["cat", "q3_by_shop"]).stdout;
+    let by_shop = d.run(&["retrieve", "q3_by_shop"]).stdout;
     let months: Vec<&str> = by_shop
         .lines()
         .skip(1)
@@ -765,7 +774,7 @@ for (shop, month), (n, parts, hours, n_hours) in groups.items():
         .collect();
     assert_eq!(months[..3], ["2026-07", "2026-08", "2026-09"]);
     // No customer's name is left in capitals: every name is its words capitalised.
-    let cleaned = d.run(&["cat", "all_orders"]).stdout;
+    let cleaned = d.run(&["retrieve", "all_orders"]).stdout;
     let mut rdr = csv::Reader::from_reader(cleaned.as_bytes());
     let col = rdr
         .headers()

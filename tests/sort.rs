@@ -33,11 +33,11 @@ fn a_trail_goes_through_a_sort_to_the_raw_line() {
         "p.json",
         plan(json!([{"column": "shop"}, {"column": "amount", "direction": "descending"}])),
     );
-    assert_contains(&s.ok(&["run", "p.json"]), "recorded rows@2");
+    assert_contains(&s.ok(&["run", "p.json"]), "recorded rows:v2");
     // Fennmarsh 10, Fennmarsh -3, Oxwater 12.50, Oxwater 7, Quillby 7.0 (numbers compared as
     // numbers: 12.50 > 7 although "1" < "7" as text).
     assert_eq!(
-        s.ok(&["cat", "rows"]),
+        s.ok(&["retrieve", "rows"]),
         "id,shop,amount\n4,Fennmarsh,10\n2,Fennmarsh,-3\n1,Oxwater,12.50\n3,Oxwater,7\n5,Quillby,7.0\n"
     );
     // Output row 3 (id 1) is input row 1: raw line 2.
@@ -50,7 +50,7 @@ fn a_trail_goes_through_a_sort_to_the_raw_line() {
     assert_eq!(trail["end"]["line"], 2);
     assert_eq!(trail["end"]["raw_value"], "12.50");
     // The step is reproduced from the raw file.
-    assert_contains(&s.ok(&["replay", "rows"]), "reproduced rows@2");
+    assert_contains(&s.ok(&["reproduce", "rows"]), "reproduced rows:v2");
     assert_contains(&s.ok(&["verify"]), "intact");
 }
 
@@ -62,7 +62,7 @@ fn a_sort_on_a_column_that_is_not_there_is_refused() {
     let err = s.fails(2, &["run", "p.json"]);
     assert_contains(
         &err,
-        "column \"colour\" is not in rows@1; its columns are: id, shop",
+        "column \"colour\" is not in rows:v1; its columns are: id, shop",
     );
     s.file(
         "q.json",
@@ -147,7 +147,7 @@ proptest! {
             want.push_str(&format!("{i},{a},{b}\n"));
         }
         // The canonical CSV writes these cells as they are (no quoting needed).
-        prop_assert_eq!(s.ok(&["cat", "rows"]), want);
+        prop_assert_eq!(s.ok(&["retrieve", "rows"]), want);
 
         // The row map: output row r is input row expected[r] (raw line = input row + 2).
         for r in [0, expected.len() / 2, expected.len() - 1] {
@@ -161,9 +161,9 @@ proptest! {
 fn apply_sorts_from_the_command_line_too() {
     let s = Sandbox::with_store();
     s.file("rows.csv", "id,shop,amount\n1,b,2\n2,a,10\n3,b,9\n4,a,-1\n");
-    s.ok(&["ingest", "rows.csv", "--as", "rows"]);
+    s.ok(&["receive", "rows.csv", "--as", "rows"]);
     let out = s.ok(&[
-        "apply",
+        "clean",
         "rows",
         "sort",
         "--by",
@@ -176,7 +176,7 @@ fn apply_sorts_from_the_command_line_too() {
         "sort put the rows in order by shop, amount (descending)",
     );
     assert_eq!(
-        s.ok(&["cat", "rows"]),
+        s.ok(&["retrieve", "rows"]),
         "id,shop,amount\n2,a,10\n4,a,-1\n3,b,9\n1,b,2\n"
     );
     // The plan exported from it says the same in settings.

@@ -26,29 +26,29 @@ fn store() -> Sandbox {
         "oxwater.csv",
         "order_id,shop\nOX-1,Oxwater Wheelworks\nOX-2,Oxwater Wheelworks\n",
     );
-    s.ok(&["ingest", "quillby.csv", "--as", "orders"]);
-    s.ok(&["apply", "orders", "trim", "--why", "stray spaces"]);
+    s.ok(&["receive", "quillby.csv", "--as", "orders"]);
+    s.ok(&["clean", "orders", "trim", "--why", "stray spaces"]);
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "drop",
         "status = 'cancelled'",
         "--why",
         "not revenue",
     ]);
-    s.ok(&["ingest", "oxwater.csv", "--as", "oxwater"]);
+    s.ok(&["receive", "oxwater.csv", "--as", "oxwater"]);
     let v = s.json(&["verify", "--json"]);
     assert_eq!(v["intact"], true, "the untouched store must verify: {v}");
     s
 }
 
 fn db(s: &Sandbox) -> rusqlite::Connection {
-    rusqlite::Connection::open(s.path().join(".sluice/lineage.db")).unwrap()
+    rusqlite::Connection::open(s.path().join("sluice-store/lineage.db")).unwrap()
 }
 
 fn object_path(s: &Sandbox, hash: &str) -> PathBuf {
     s.path()
-        .join(".sluice/objects")
+        .join("sluice-store/objects")
         .join(&hash[..2])
         .join(&hash[2..])
 }
@@ -162,8 +162,8 @@ fn a_provenance_reference_pointed_at_another_object_is_named() {
         )
         .unwrap();
     let found = problems(&s);
-    assert_named(&found, "audit_mismatch", "orders@2", "the entry says");
-    assert_named(&found, "audit_mismatch", "orders@2", &other);
+    assert_named(&found, "audit_mismatch", "orders:v2", "the entry says");
+    assert_named(&found, "audit_mismatch", "orders:v2", &other);
     // Removing the reference is found the same way.
     let s = store();
     db(&s)
@@ -176,7 +176,7 @@ fn a_provenance_reference_pointed_at_another_object_is_named() {
     assert_named(
         &found,
         "audit_mismatch",
-        "orders@3",
+        "orders:v3",
         "its step's provenance object is none",
     );
 }
@@ -198,7 +198,7 @@ fn a_version_hash_pointed_at_another_table_is_named() {
     assert_named(
         &found,
         "audit_mismatch",
-        "orders@2",
+        "orders:v2",
         &format!("its hash is {raw}"),
     );
 }
@@ -217,7 +217,7 @@ fn a_version_added_without_an_audit_entry_is_named() {
     .unwrap();
     drop(conn);
     let found = problems(&s);
-    assert_named(&found, "audit_mismatch", "orders@4", "has no audit entry");
+    assert_named(&found, "audit_mismatch", "orders:v4", "has no audit entry");
 }
 
 // ---- the audit chain ---------------------------------------------------------------------
@@ -301,7 +301,7 @@ fn a_deleted_audit_entry_is_named_where_the_chain_breaks() {
         "audit entry 4",
         "expected sequence number 3",
     );
-    assert_named(&found, "audit_mismatch", "orders@2", "has no audit entry");
+    assert_named(&found, "audit_mismatch", "orders:v2", "has no audit entry");
     // At the end: no chain can show its tail is gone, but the version it recorded is left
     // without its entry, and the head hash verify reports differs from the one written down.
     let s = store();
@@ -310,7 +310,7 @@ fn a_deleted_audit_entry_is_named_where_the_chain_breaks() {
         .execute("DELETE FROM audit_log WHERE seq = 5", [])
         .unwrap();
     let found = problems(&s);
-    assert_named(&found, "audit_mismatch", "oxwater@1", "has no audit entry");
+    assert_named(&found, "audit_mismatch", "oxwater:v1", "has no audit entry");
     let r = s.run(&["verify", "--json"]);
     let report: Value = serde_json::from_str(&r.stdout).unwrap();
     assert_ne!(report["audit_head"], head);
@@ -357,7 +357,7 @@ fn an_audit_entry_inserted_out_of_chain_is_named() {
         "2026-10-01T09:00:00.000Z",
         "Someone Else <else@example.org>",
         "note",
-        "orders@1",
+        "orders:v1",
         "{}",
         &first,
     )
@@ -365,7 +365,7 @@ fn an_audit_entry_inserted_out_of_chain_is_named() {
     conn.execute(
         "INSERT INTO audit_log (seq, at, agent, action, subject, details, prev_hash, hash)
          VALUES (6, '2026-10-01T09:00:00.000Z', 'Someone Else <else@example.org>', 'note',
-                 'orders@1', '{}', ?1, ?2)",
+                 'orders:v1', '{}', ?1, ?2)",
         [&first, &hash],
     )
     .unwrap();
@@ -390,10 +390,11 @@ fn an_audit_entry_inserted_out_of_chain_is_named() {
     let prev: String = conn
         .query_row("SELECT hash FROM audit_log WHERE seq = 2", [], |r| r.get(0))
         .unwrap();
-    let hash = sluice::store::audit::entry_hash(3, "t", "x", "note", "orders@1", "{}", &prev).hex();
+    let hash =
+        sluice::store::audit::entry_hash(3, "t", "x", "note", "orders:v1", "{}", &prev).hex();
     conn.execute(
         "INSERT INTO audit_log (seq, at, agent, action, subject, details, prev_hash, hash)
-         VALUES (3, 't', 'x', 'note', 'orders@1', '{}', ?1, ?2)",
+         VALUES (3, 't', 'x', 'note', 'orders:v1', '{}', ?1, ?2)",
         [&prev, &hash],
     )
     .unwrap();
@@ -455,10 +456,15 @@ fn an_edited_legacy_cell_change_row_is_named_with_what_the_versions_hold() {
         assert_named(
             &found,
             "cell_change",
-            "orders@2",
+            "orders:v2",
             "data row 1 column \"amount\"",
         );
-        assert_named(&found, "cell_change", "orders@2", "\" 12.50\" -> \"12.50\"");
+        assert_named(
+            &found,
+            "cell_change",
+            "orders:v2",
+            "\" 12.50\" -> \"12.50\"",
+        );
     }
     // Moved to another cell, whose values are not those.
     let s = legacy();
@@ -469,7 +475,7 @@ fn an_edited_legacy_cell_change_row_is_named_with_what_the_versions_hold() {
     assert_named(
         &found,
         "cell_change",
-        "orders@2",
+        "orders:v2",
         "data row 2 column \"amount\"",
     );
 }
@@ -482,7 +488,7 @@ fn a_deleted_legacy_cell_change_row_is_named_by_the_count_its_audit_entry_kept()
     assert_named(
         &found,
         "audit_mismatch",
-        "orders@2",
+        "orders:v2",
         "its step records 0 changed cells, the entry says 1",
     );
 }
@@ -495,7 +501,7 @@ fn a_deleted_legacy_drop_row_is_named_by_the_count_its_audit_entry_kept() {
     assert_named(
         &found,
         "audit_mismatch",
-        "orders@3",
+        "orders:v3",
         "its step records 0 dropped rows, the entry says 1",
     );
 }

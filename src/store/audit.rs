@@ -69,7 +69,7 @@ pub(super) fn append(
     let hash = entry_hash(
         seq,
         at,
-        &agent.identity,
+        &agent.identity(),
         action,
         subject,
         &details,
@@ -82,7 +82,7 @@ pub(super) fn append(
         params![
             seq as i64,
             at,
-            agent.identity,
+            agent.identity(),
             action,
             subject,
             details,
@@ -94,7 +94,7 @@ pub(super) fn append(
     Ok(AuditEntry {
         seq,
         at: at.to_string(),
-        agent: agent.identity.clone(),
+        agent: agent.identity(),
         action: action.to_string(),
         subject: subject.to_string(),
         details,

@@ -35,7 +35,7 @@ pub struct Lineage {
 }
 
 pub(super) fn db_err(e: rusqlite::Error) -> Error {
-    ErrorKind::Database(e.to_string().to_lowercase()).into()
+    ErrorKind::Sqlite(e.to_string().to_lowercase()).into()
 }
 
 fn corrupt(path: &Path, e: rusqlite::Error) -> Error {
@@ -88,7 +88,7 @@ impl Lineage {
             .query_row("PRAGMA journal_mode = WAL", [], |r| r.get(0))
             .map_err(|e| corrupt(&path, e))?;
         if !mode.eq_ignore_ascii_case("wal") {
-            return Err(ErrorKind::Database(format!(
+            return Err(ErrorKind::Sqlite(format!(
                 "could not switch the lineage database to WAL mode (got {mode})"
             ))
             .into());
@@ -130,7 +130,7 @@ impl Lineage {
         for (v, sql) in MIGRATIONS {
             if *v > now {
                 tx.execute_batch(sql).map_err(|e| {
-                    Error::from(ErrorKind::Database(format!(
+                    Error::from(ErrorKind::Sqlite(format!(
                         "applying schema migration {v}: {}",
                         e.to_string().to_lowercase()
                     )))
@@ -517,7 +517,7 @@ impl Lineage {
         let rows = st
             .query_map(params![step_id], |r| {
                 Ok(format!(
-                    "{}@{}",
+                    "{}:v{}",
                     r.get::<_, String>(0)?,
                     r.get::<_, i64>(1)?
                 ))
@@ -736,7 +736,7 @@ impl Lineage {
                 JOIN objects o ON o.hash = v.row_index WHERE o.kind != 'row_index'",
             |r| {
                 Ok(format!(
-                    "version {}@{}: its {} object is recorded as kind {}",
+                    "version {}:v{}: its {} object is recorded as kind {}",
                     r.get::<_, String>(0)?,
                     r.get::<_, i64>(1)?,
                     r.get::<_, String>(3)?,
@@ -777,7 +777,7 @@ fn parse_key(v: Option<String>) -> Option<Vec<String>> {
 }
 
 fn bad_field(field: &str, value: &str) -> Error {
-    ErrorKind::Database(format!(
+    ErrorKind::Inconsistent(format!(
         "unexpected value {value:?} in {field}; run `sluice verify`"
     ))
     .into()
@@ -785,7 +785,7 @@ fn bad_field(field: &str, value: &str) -> Error {
 
 fn parse_json_field<T: serde::de::DeserializeOwned>(text: &str, field: &str) -> Result<T> {
     serde_json::from_str(text).map_err(|e| {
-        ErrorKind::Database(format!(
+        ErrorKind::Inconsistent(format!(
             "{field} holds malformed JSON ({e}); run `sluice verify`"
         ))
         .into()
@@ -816,7 +816,7 @@ pub struct NewStep<'a> {
     /// For outside commands and hand edits: what ran and where (stored as canonical JSON in
     /// `steps.code`).
     pub code: Option<&'a Value>,
-    /// The step this one repeats on other data (`replay --onto`).
+    /// The step this one repeats on other data (`rerun --with`).
     pub repeats_step: Option<i64>,
 }
 
@@ -849,13 +849,13 @@ impl Tx<'_> {
             .execute(
                 "INSERT INTO agents (identity, kind, source) VALUES (?1, 'person', ?2)
                  ON CONFLICT (identity) DO NOTHING",
-                params![agent.identity, agent.source],
+                params![agent.identity(), agent.source],
             )
             .map_err(db_err)?;
         self.tx
             .query_row(
                 "SELECT id FROM agents WHERE identity = ?1",
-                params![agent.identity],
+                params![agent.identity()],
                 |r| r.get(0),
             )
             .map_err(db_err)

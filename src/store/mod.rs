@@ -1,4 +1,4 @@
-//! The store: a project's `.sluice/` folder, holding immutable objects ([`objects`]) and one
+//! The store: a project's `sluice-store/` folder, holding immutable objects ([`objects`]) and one
 //! SQLite lineage database ([`lineage`], with its hash-chained audit log in [`audit`]).
 //!
 //! This is the only module that touches SQLite. Everything that changes the store goes through
@@ -17,8 +17,11 @@ use crate::error::{Error, ErrorKind, Result};
 pub use lineage::{Lineage, NewStep, NewVersion, Tx};
 pub use objects::{FsBackend, ObjectBackend, Objects};
 
-/// The name of the store folder inside a project.
-pub const STORE_DIR: &str = ".sluice";
+/// The name of the store folder inside a project: visible, so that people see that the
+/// project holds copies of its raw data.
+pub const STORE_DIR: &str = "sluice-store";
+/// The hidden folder name stores had before; recognised and refused with advice to rename it.
+pub const LEGACY_STORE_DIR: &str = ".sluice";
 /// The lineage database file inside the store folder.
 pub const DB_FILE: &str = "lineage.db";
 
@@ -30,7 +33,7 @@ pub struct Store {
 }
 
 impl Store {
-    /// Creates a new store in `project/.sluice`. Fails if one is already there.
+    /// Creates a new store in `project/sluice-store`. Fails if one is already there.
     pub fn init(project: &Path) -> Result<Store> {
         let dir = project.join(STORE_DIR);
         if dir.join(DB_FILE).exists() {
@@ -75,9 +78,10 @@ impl Store {
         Ok(store)
     }
 
-    /// Opens the store whose folder is `dir` (the `.sluice` folder itself, or a project folder
-    /// containing one).
+    /// Opens the store whose folder is `dir` (the `sluice-store` folder itself, or a project
+    /// folder containing one).
     pub fn open(dir: &Path) -> Result<Store> {
+        legacy_check(dir)?;
         let dir = if dir.file_name().is_some_and(|n| n == STORE_DIR) {
             dir.to_path_buf()
         } else if dir.join(STORE_DIR).is_dir() {
@@ -87,7 +91,7 @@ impl Store {
         };
         let db = dir.join(DB_FILE);
         if !db.is_file() {
-            // `sluice init` takes the project folder, the one that holds `.sluice`.
+            // `sluice setup` takes the project folder, the one that holds `sluice-store`.
             let project = if dir.file_name().is_some_and(|n| n == STORE_DIR) {
                 match dir.parent() {
                     Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
@@ -98,13 +102,13 @@ impl Store {
             };
             return Err(ErrorKind::NoStoreAt { path: dir, project }.into());
         }
-        // The store never follows a symbolic link out of `.sluice/`: a received store whose
+        // The store never follows a symbolic link out of `sluice-store/`: a received store whose
         // database, object folder or temporary folder is a link could make sluice read or
-        // write anywhere. (`.sluice` itself may be a link the user made.)
+        // write anywhere. (`sluice-store` itself may be a link the user made.)
         for part in [DB_FILE, "objects", "tmp"] {
             let p = dir.join(part);
             if fs::symlink_metadata(&p).is_ok_and(|m| m.file_type().is_symlink()) {
-                return Err(ErrorKind::Database(format!(
+                return Err(ErrorKind::Usage(format!(
                     "{} is a symbolic link; a store's lineage.db, objects/ and tmp/ must be inside its folder, never links out of it; replace the link with what it points to, then run `sluice verify`",
                     p.display()
                 ))
@@ -127,7 +131,8 @@ impl Store {
     }
 
     /// Finds the store for a command: `explicit` (from --store or SLUICE_STORE) when given,
-    /// else the nearest `.sluice` folder in `start` or a parent of it.
+    /// else the `sluice-store` folder in `start` or the nearest parent that has one. A folder
+    /// holding an old hidden `.sluice` store is refused with the advice to rename it.
     pub fn discover(explicit: Option<&Path>, start: &Path) -> Result<Store> {
         if let Some(p) = explicit {
             return Store::open(p);
@@ -137,6 +142,7 @@ impl Store {
             if d.join(STORE_DIR).join(DB_FILE).is_file() {
                 return Store::open(&d.join(STORE_DIR));
             }
+            legacy_check(d)?;
             cur = d.parent();
         }
         Err(ErrorKind::NoStore {
@@ -145,7 +151,7 @@ impl Store {
         .into())
     }
 
-    /// The `.sluice` folder.
+    /// The `sluice-store` folder.
     pub fn dir(&self) -> &Path {
         &self.dir
     }
@@ -171,4 +177,27 @@ impl Store {
     pub fn write<T>(&mut self, f: impl FnOnce(&mut Tx<'_>) -> Result<T>) -> Result<T> {
         self.lineage.write(f)
     }
+}
+
+/// Refuses a store in the old hidden folder (`dir` is that folder, or a project folder holding
+/// it and no `sluice-store`), saying how to rename it.
+fn legacy_check(dir: &Path) -> Result<()> {
+    let (legacy, project) = if dir.file_name().is_some_and(|n| n == LEGACY_STORE_DIR) {
+        (dir.to_path_buf(), dir.parent().map(Path::to_path_buf))
+    } else if !dir.join(STORE_DIR).exists() && dir.join(LEGACY_STORE_DIR).join(DB_FILE).is_file() {
+        (dir.join(LEGACY_STORE_DIR), Some(dir.to_path_buf()))
+    } else {
+        return Ok(());
+    };
+    if !legacy.join(DB_FILE).is_file() {
+        return Ok(());
+    }
+    let project = project
+        .filter(|p| !p.as_os_str().is_empty())
+        .unwrap_or_else(|| PathBuf::from("."));
+    Err(ErrorKind::LegacyStore {
+        path: legacy,
+        project,
+    }
+    .into())
 }

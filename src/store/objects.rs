@@ -96,7 +96,7 @@ fn no_link(p: &Path) -> io::Result<()> {
     match fs::symlink_metadata(p) {
         Ok(m) if m.file_type().is_symlink() => Err(io::Error::new(
             io::ErrorKind::InvalidData,
-            "a symbolic link inside the store; sluice never follows links out of .sluice/",
+            "a symbolic link inside the store; sluice never follows links out of its store folder",
         )),
         _ => Ok(()),
     }
