@@ -230,26 +230,41 @@ pub fn compare_text(out: &mut impl Write, d: &Diff, how: &How) -> io::Result<()>
     }
     let limit = how.limit.unwrap_or(usize::MAX);
     let listed: Vec<&Change> = d.changes.iter().take(limit).collect();
-    let key_name = match &d.matched_by {
-        MatchedBy::Key(k) => k.join(", "),
-        MatchedBy::Order => "key".to_string(),
-    };
-    let mut cells = vec![[
-        "row".to_string(),
-        key_name,
-        "column".to_string(),
-        "before".to_string(),
-        "after".to_string(),
-    ]];
+    // Rows paired by order have no key: the table then has no key column.
+    let keyed = matches!(d.matched_by, MatchedBy::Key(_));
+    let mut cells: Vec<Vec<String>> = Vec::new();
+    let mut header = vec!["row".to_string()];
+    if let MatchedBy::Key(k) = &d.matched_by {
+        header.push(k.join(", "));
+    }
+    header.extend(["column", "before", "after"].map(String::from));
+    cells.push(header);
     for c in listed.iter().filter(|c| c.kind == ChangeKind::Changed) {
         for cell in &d.pairing.cells[c.cells.clone()] {
             let (o, n) = marked_pair(&cell.old, &cell.new, how.colour);
-            cells.push([row_text(c), key_text(d, c), cell.column.clone(), o, n]);
+            let mut row = vec![row_text(c)];
+            if keyed {
+                row.push(key_text(d, c));
+            }
+            row.extend([cell.column.clone(), o, n]);
+            cells.push(row);
         }
     }
     if cells.len() > 1 {
         writeln!(out)?;
-        table(out, &cells, &[true, false, false, false, false])?;
+        if keyed {
+            let rows: Vec<[String; 5]> = cells
+                .into_iter()
+                .map(|r| r.try_into().unwrap_or_default())
+                .collect();
+            table(out, &rows, &[true, false, false, false, false])?;
+        } else {
+            let rows: Vec<[String; 4]> = cells
+                .into_iter()
+                .map(|r| r.try_into().unwrap_or_default())
+                .collect();
+            table(out, &rows, &[true, false, false, false])?;
+        }
     }
     for (kind, title, col) in [
         (ChangeKind::Removed, "removed rows", RED),
@@ -267,13 +282,17 @@ pub fn compare_text(out: &mut impl Write, d: &Diff, how: &How) -> io::Result<()>
                 ChangeKind::Removed => c.a_row.and_then(|r| d.from_rows.get(r)),
                 _ => c.b_row.and_then(|r| d.to_rows.get(r)),
             };
-            writeln!(
-                out,
-                "  row {}, key {}: {}",
-                row_text(c),
-                key_text(d, c),
-                row_values(values)
-            )?;
+            if keyed {
+                writeln!(
+                    out,
+                    "  row {}, key {}: {}",
+                    row_text(c),
+                    key_text(d, c),
+                    row_values(values)
+                )?;
+            } else {
+                writeln!(out, "  row {}: {}", row_text(c), row_values(values))?;
+            }
         }
     }
     if d.changes.len() > limit {

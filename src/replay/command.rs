@@ -154,7 +154,7 @@ pub(super) fn cannot_run(rec: &RecordedCode) -> Option<(&'static str, String)> {
             return Some((
                 "refused",
                 format!(
-                    "the recorded command line names the absolute output path {} itself rather than through {{out:{}}}; running it again would overwrite that file, so replay does not run it",
+                    "the recorded command line names the absolute output path {} itself rather than through {{out:{}}}; running it again would overwrite that file, so reproduce does not run it",
                     o.file, o.name
                 ),
             ));

@@ -175,7 +175,7 @@ pub fn replay(store: &mut Store, reference: &str, options: &ReplayOptions) -> Re
                 entry.result = format!("raw_{state}");
                 if state != "intact" {
                     entry.detail = Some(format!(
-                        "the raw data of {} is {state}; replay can only recompute what steps made from raw data, not the raw data itself",
+                        "the raw data of {} is {state}; reproduce can only recompute what steps made from raw data, not the raw data itself",
                         out.label()
                     ));
                 }
@@ -196,7 +196,7 @@ pub fn replay(store: &mut Store, reference: &str, options: &ReplayOptions) -> Re
                 let state = object_state(store, &out.hash)?;
                 entry.result = "not_rerun".into();
                 entry.detail = Some(format!(
-                    "a {} step is outside work, which replay runs again only with --allow-exec; its recorded output is {state}",
+                    "a {} step is outside work, which reproduce runs again only with --allow-exec; its recorded output is {state}",
                     other.as_str().replace('_', " ")
                 ));
                 reproduced = false;
