@@ -1833,7 +1833,7 @@ fn ops_size(ctx: &Ctx, python: &Path, n: u64) -> Result<(Value, bool, bool)> {
 /// technician into `totals`.
 fn ops_plan(file: &Path) -> Value {
     let why_trim = "the Quillby till pads names, addresses and amounts with spaces";
-    json!({
+    current_form(json!({
         "sluice_plan": 1,
         "description": "Work orders of the Quillby shop cleaned and summed per technician (the ops benchmark)",
         "inputs": [
@@ -1849,7 +1849,7 @@ fn ops_plan(file: &Path) -> Value {
                 "aggregates": [{"func": "sum", "column": "parts_cost"}]},
                 "as": "totals", "why": "parts cost per technician"},
         ],
-    })
+    }))
 }
 
 // ---------------------------------------------------------------------------------------------
@@ -2411,14 +2411,21 @@ fn trace_plan(file: &Path) -> Value {
     steps.push(json!({"on": "orders", "apply": {"op": "summarize", "by": ["shop"],
         "aggregates": [{"func": "sum", "column": "parts_cost"}, {"func": "sum", "column": "labour_hours"}]},
         "as": "summary", "why": "parts and hours of the shop"}));
-    json!({
+    current_form(json!({
         "sluice_plan": 1,
         "description": "Twenty cleaning steps on the Quillby work orders, then one summary (the trace benchmark)",
         "inputs": [
             {"name": "orders", "file": file.display().to_string(), "why": "the generated Quillby work-order export"},
         ],
         "steps": steps,
-    })
+    }))
+}
+
+/// A plan written here in the compact form of format 1, in the current form (converted by
+/// `sluice::plan::upgrade`, the converter `sluice upgrade` runs).
+fn current_form(old: Value) -> Value {
+    let text = sluice::plan::upgrade(&old.to_string()).expect("the benchmark's plan converts");
+    serde_json::from_str(&text).expect("the converter writes JSON")
 }
 
 fn trace_bench(ctx: &Ctx) -> Result<Value> {

@@ -2,7 +2,9 @@
 //! "read" edges from a version to the step that read it and "made" edges from a step to the
 //! version it made. It is loaded from the database into petgraph for the questions that walk
 //! it: what depends on a version (`impact`), and the drawing of it (Graphviz DOT text, or an SVG
-//! laid out here in layers, so no outside program is needed).
+//! laid out here in layers, so no outside program is needed). The drawing follows the W3C PROV
+//! diagram convention for shapes (entities as ovals, activities as rectangles, agents as
+//! pentagons, each agent linked to the steps it did) in a palette of our own, with a legend.
 
 use std::collections::{BTreeSet, HashMap};
 use std::fmt::Write as _;
@@ -256,9 +258,10 @@ pub fn dot(store: &Store, reference: Option<&str>) -> Result<String> {
     );
     for n in g.ordered(&keep) {
         let node = &g.graph[n];
+        // The W3C PROV diagram shapes: entities ovals, activities rectangles.
         let shape = match node {
-            Node::Version { .. } => "box",
-            Node::Step { .. } => "ellipse",
+            Node::Version { .. } => "ellipse",
+            Node::Step { .. } => "box",
         };
         let _ = writeln!(
             out,
@@ -273,6 +276,26 @@ pub fn dot(store: &Store, reference: Option<&str>) -> Result<String> {
             if keep.contains(&a) && keep.contains(&b) {
                 let _ = writeln!(out, "  n{} -> n{};", a.index(), b.index());
             }
+        }
+    }
+    // Agents (pentagons, Graphviz's "house"), each linked to the steps it did by a dashed edge.
+    let mut agents: Vec<&str> = Vec::new();
+    for n in g.ordered(&keep) {
+        if let Node::Step { agent, .. } = &g.graph[n] {
+            let k = match agents.iter().position(|a| a == agent) {
+                Some(k) => k,
+                None => {
+                    agents.push(agent);
+                    let _ = writeln!(
+                        out,
+                        "  a{} [shape=house, label=\"{}\"];",
+                        agents.len() - 1,
+                        dot_text(agent)
+                    );
+                    agents.len() - 1
+                }
+            };
+            let _ = writeln!(out, "  n{} -> a{k} [style=dashed];", n.index());
         }
     }
     out.push_str("}\n");
@@ -302,6 +325,130 @@ const BOX_H: f64 = 40.0;
 const GAP_X: f64 = 24.0;
 const GAP_Y: f64 = 36.0;
 const MARGIN: f64 = 16.0;
+/// The legend's band above the drawing.
+const LEGEND_H: f64 = 44.0;
+/// The column of agents to the right of the layers.
+const AGENT_W: f64 = 170.0;
+const AGENT_H: f64 = 46.0;
+const AGENT_GAP: f64 = 60.0;
+
+/// The drawing's palette (ours): muted, and legible in black-and-white print by shape alone.
+const INK: &str = "#23272b";
+const MUTED_INK: &str = "#4a4f55";
+const EDGE: &str = "#8c8a84";
+const ENTITY_FILL: &str = "#e6ede4";
+const ENTITY_LINE: &str = "#4f6b4a";
+const ENTITY_LATEST_FILL: &str = "#d3e2cf";
+const ENTITY_LATEST_LINE: &str = "#2f4f2b";
+const ACTIVITY_FILL: &str = "#ebe7f0";
+const ACTIVITY_LINE: &str = "#5e4b6e";
+const AGENT_FILL: &str = "#f2e6da";
+const AGENT_LINE: &str = "#8a5a3c";
+
+/// The points of a pentagon (a house shape, the PROV diagrams' agent) in a box.
+fn pentagon(x: f64, y: f64, w: f64, h: f64) -> String {
+    format!(
+        "{:.1},{:.1} {:.1},{:.1} {:.1},{:.1} {:.1},{:.1} {:.1},{:.1}",
+        x,
+        y + h * 0.32,
+        x + w / 2.0,
+        y,
+        x + w,
+        y + h * 0.32,
+        x + w,
+        y + h,
+        x,
+        y + h
+    )
+}
+
+/// A node's shape: versions (entities) as ovals, steps (activities) as rectangles, in the
+/// W3C PROV diagram convention.
+fn shape(node: &Node, x: f64, y: f64) -> String {
+    match node {
+        Node::Version { latest, .. } => {
+            let (fill, line, width) = if *latest {
+                (ENTITY_LATEST_FILL, ENTITY_LATEST_LINE, 1.6)
+            } else {
+                (ENTITY_FILL, ENTITY_LINE, 1.0)
+            };
+            format!(
+                "<ellipse cx=\"{:.1}\" cy=\"{:.1}\" rx=\"{:.1}\" ry=\"{:.1}\" fill=\"{fill}\" stroke=\"{line}\" stroke-width=\"{width}\"/>",
+                x + BOX_W / 2.0,
+                y + BOX_H / 2.0,
+                BOX_W / 2.0,
+                BOX_H / 2.0
+            )
+        }
+        Node::Step { .. } => format!(
+            "<rect x=\"{x:.1}\" y=\"{y:.1}\" width=\"{BOX_W}\" height=\"{BOX_H}\" fill=\"{ACTIVITY_FILL}\" stroke=\"{ACTIVITY_LINE}\"/>"
+        ),
+    }
+}
+
+/// An agent as the drawing names it: the name without the e-mail address.
+fn agent_name(agent: &str) -> &str {
+    agent.split(" <").next().unwrap_or(agent).trim()
+}
+
+/// The legend: one sample of each shape and line, with what it stands for.
+fn legend(out: &mut String) {
+    let y = MARGIN;
+    let h = 22.0;
+    let mut x = MARGIN;
+    let label = |out: &mut String, x: f64, text: &str| {
+        let _ = writeln!(
+            out,
+            "<text x=\"{x:.1}\" y=\"{:.1}\" fill=\"{INK}\">{}</text>",
+            y + h / 2.0 + 4.0,
+            xml(text)
+        );
+    };
+    out.push_str("<g class=\"legend\">\n");
+    let _ = writeln!(
+        out,
+        "<ellipse cx=\"{:.1}\" cy=\"{:.1}\" rx=\"18\" ry=\"{:.1}\" fill=\"{ENTITY_FILL}\" stroke=\"{ENTITY_LINE}\"/>",
+        x + 18.0,
+        y + h / 2.0,
+        h / 2.0
+    );
+    label(out, x + 42.0, "version (entity); bold: a dataset's latest");
+    x += 290.0;
+    let _ = writeln!(
+        out,
+        "<rect x=\"{x:.1}\" y=\"{y:.1}\" width=\"36\" height=\"{h}\" fill=\"{ACTIVITY_FILL}\" stroke=\"{ACTIVITY_LINE}\"/>"
+    );
+    label(out, x + 42.0, "step (activity)");
+    x += 150.0;
+    let _ = writeln!(
+        out,
+        "<polygon points=\"{}\" fill=\"{AGENT_FILL}\" stroke=\"{AGENT_LINE}\"/>",
+        pentagon(x, y, 36.0, h)
+    );
+    label(out, x + 42.0, "who acted (agent)");
+    x += 160.0;
+    let _ = writeln!(
+        out,
+        "<line x1=\"{x:.1}\" y1=\"{:.1}\" x2=\"{:.1}\" y2=\"{:.1}\" stroke=\"{EDGE}\"/>",
+        y + h / 2.0,
+        x + 30.0,
+        y + h / 2.0
+    );
+    label(out, x + 36.0, "read by / made by (downward)");
+    x += 220.0;
+    let _ = writeln!(
+        out,
+        "<line x1=\"{x:.1}\" y1=\"{:.1}\" x2=\"{:.1}\" y2=\"{:.1}\" stroke=\"{AGENT_LINE}\" stroke-dasharray=\"4 3\"/>",
+        y + h / 2.0,
+        x + 30.0,
+        y + h / 2.0
+    );
+    label(out, x + 36.0, "done by");
+    out.push_str("</g>\n");
+}
+
+/// The legend's width.
+const LEGEND_W: f64 = 290.0 + 150.0 + 160.0 + 220.0 + 90.0;
 
 /// The graph (or the part around `reference`) as a self-contained SVG: nodes in layers (each
 /// node one layer below the lowest node it depends on), ordered within a layer by the mean
@@ -355,8 +502,8 @@ pub fn svg(store: &Store, reference: Option<&str>) -> Result<String> {
         }
     }
     let widest = rows.iter().map(Vec::len).max().unwrap_or(1).max(1);
-    let width = MARGIN * 2.0 + widest as f64 * (BOX_W + GAP_X) - GAP_X;
-    let height = MARGIN * 2.0 + n_layers as f64 * (BOX_H + GAP_Y) - GAP_Y;
+    let layers_w = widest as f64 * (BOX_W + GAP_X) - GAP_X;
+    let top = MARGIN + LEGEND_H;
     let pos = |n: NodeIndex| -> (f64, f64) {
         let l = layer[&n];
         let row = &rows[l];
@@ -365,15 +512,59 @@ pub fn svg(store: &Store, reference: Option<&str>) -> Result<String> {
         let offset = (widest - row.len()) as f64 * (BOX_W + GAP_X) / 2.0;
         (
             MARGIN + offset + slot as f64 * (BOX_W + GAP_X),
-            MARGIN + l as f64 * (BOX_H + GAP_Y),
+            top + l as f64 * (BOX_H + GAP_Y),
         )
     };
+    // The agents (PROV agents: who a step is associated with), each once, in a column to the
+    // right, near the middle of the steps they did, without overlapping.
+    let mut agents: Vec<(String, Vec<NodeIndex>)> = Vec::new();
+    for &n in &order {
+        if let Node::Step { agent, .. } = &g.graph[n] {
+            match agents.iter_mut().find(|(a, _)| a == agent) {
+                Some((_, steps)) => steps.push(n),
+                None => agents.push((agent.clone(), vec![n])),
+            }
+        }
+    }
+    let agent_x = MARGIN + layers_w + AGENT_GAP;
+    let mut agent_y: Vec<f64> = Vec::new();
+    let mut next_free = top;
+    for (_, steps) in &agents {
+        let mean = steps.iter().map(|&n| pos(n).1).sum::<f64>() / steps.len().max(1) as f64;
+        let y = mean.max(next_free);
+        agent_y.push(y);
+        next_free = y + AGENT_H + 12.0;
+    }
+    let layers_h = n_layers as f64 * (BOX_H + GAP_Y) - GAP_Y;
+    let agents_bottom = agent_y.last().map_or(top, |y| y + AGENT_H);
+    let width = (if agents.is_empty() {
+        MARGIN * 2.0 + layers_w
+    } else {
+        agent_x + AGENT_W + MARGIN
+    })
+    .max(MARGIN * 2.0 + LEGEND_W);
+    let height = (top + layers_h).max(agents_bottom) + MARGIN;
     let mut out = String::new();
     let _ = writeln!(
         out,
-        "<svg xmlns=\"http://www.w3.org/2000/svg\" width=\"{width:.0}\" height=\"{height:.0}\" viewBox=\"0 0 {width:.0} {height:.0}\" font-family=\"sans-serif\" font-size=\"11\">"
+        "<svg xmlns=\"http://www.w3.org/2000/svg\" width=\"{width:.0}\" height=\"{height:.0}\" viewBox=\"0 0 {width:.0} {height:.0}\" font-family=\"'Gill Sans', 'Gill Sans MT', Optima, Candara, sans-serif\" font-size=\"11\">"
     );
     out.push_str("<title>sluice lineage graph</title>\n");
+    legend(&mut out);
+    // Lines first, under the shapes: each agent to the steps it did (dashed), then read and
+    // made.
+    for ((_, steps), &ay) in agents.iter().zip(&agent_y) {
+        for &n in steps {
+            let (x, y) = pos(n);
+            let _ = writeln!(
+                out,
+                "<line x1=\"{:.1}\" y1=\"{:.1}\" x2=\"{agent_x:.1}\" y2=\"{:.1}\" stroke=\"{AGENT_LINE}\" stroke-opacity=\"0.45\" stroke-dasharray=\"4 3\"/>",
+                x + BOX_W,
+                y + BOX_H / 2.0,
+                ay + AGENT_H * 0.66
+            );
+        }
+    }
     for e in g.graph.edge_indices() {
         let Some((a, b)) = g.graph.edge_endpoints(e) else {
             continue;
@@ -388,34 +579,55 @@ pub fn svg(store: &Store, reference: Option<&str>) -> Result<String> {
         let my = (y1 + y2) / 2.0;
         let _ = writeln!(
             out,
-            "<path d=\"M{x1:.1},{y1:.1} C{x1:.1},{my:.1} {x2:.1},{my:.1} {x2:.1},{y2:.1}\" fill=\"none\" stroke=\"#777\" stroke-width=\"1\"/>"
+            "<path d=\"M{x1:.1},{y1:.1} C{x1:.1},{my:.1} {x2:.1},{my:.1} {x2:.1},{y2:.1}\" fill=\"none\" stroke=\"{EDGE}\" stroke-width=\"1\"/>"
         );
     }
     for &n in &order {
         let (x, y) = pos(n);
         let node = &g.graph[n];
-        let (rx, fill, stroke) = match node {
-            Node::Version { latest: true, .. } => (2.0, "#eef4fb", "#2b5d8a"),
-            Node::Version { .. } => (2.0, "#f7f7f7", "#666"),
-            Node::Step { .. } => (18.0, "#fdf6e3", "#8a6d2b"),
-        };
         let _ = writeln!(
             out,
-            "<g><title>{}</title><rect x=\"{x:.1}\" y=\"{y:.1}\" width=\"{BOX_W}\" height=\"{BOX_H}\" rx=\"{rx}\" fill=\"{fill}\" stroke=\"{stroke}\"/>",
-            xml(&format!("{} — {}", node.title(), node.detail()))
+            "<g><title>{}</title>{}",
+            xml(&format!("{} — {}", node.title(), node.detail())),
+            shape(node, x, y)
         );
         let cx = x + BOX_W / 2.0;
         let _ = writeln!(
             out,
-            "<text x=\"{cx:.1}\" y=\"{:.1}\" text-anchor=\"middle\" font-weight=\"bold\">{}</text>",
-            y + 16.0,
-            xml(&clip(&node.title(), 30))
+            "<text x=\"{cx:.1}\" y=\"{:.1}\" text-anchor=\"middle\" font-weight=\"bold\" fill=\"{INK}\">{}</text>",
+            y + 17.0,
+            xml(&clip(&node.title(), 28))
         );
         let _ = writeln!(
             out,
-            "<text x=\"{cx:.1}\" y=\"{:.1}\" text-anchor=\"middle\" fill=\"#444\">{}</text></g>",
-            y + 31.0,
-            xml(&clip(&node.detail(), 34))
+            "<text x=\"{cx:.1}\" y=\"{:.1}\" text-anchor=\"middle\" fill=\"{MUTED_INK}\">{}</text></g>",
+            y + 30.0,
+            xml(&clip(&node.detail(), 30))
+        );
+    }
+    for ((agent, steps), &ay) in agents.iter().zip(&agent_y) {
+        let _ = writeln!(
+            out,
+            "<g class=\"agent\"><title>{}</title><polygon points=\"{}\" fill=\"{AGENT_FILL}\" stroke=\"{AGENT_LINE}\"/>",
+            xml(&format!("{agent} — {} steps", steps.len())),
+            pentagon(agent_x, ay, AGENT_W, AGENT_H)
+        );
+        let cx = agent_x + AGENT_W / 2.0;
+        let _ = writeln!(
+            out,
+            "<text x=\"{cx:.1}\" y=\"{:.1}\" text-anchor=\"middle\" font-weight=\"bold\" fill=\"{INK}\">{}</text>",
+            ay + AGENT_H * 0.56,
+            xml(&clip(agent_name(agent), 24))
+        );
+        let _ = writeln!(
+            out,
+            "<text x=\"{cx:.1}\" y=\"{:.1}\" text-anchor=\"middle\" fill=\"{MUTED_INK}\">{}</text></g>",
+            ay + AGENT_H * 0.85,
+            xml(&format!(
+                "{} step{}",
+                steps.len(),
+                if steps.len() == 1 { "" } else { "s" }
+            ))
         );
     }
     out.push_str("</svg>\n");

@@ -158,8 +158,8 @@ pub struct CheckRecord {
     pub n_failing: u64,
     pub agent: String,
     pub checked_at: String,
-    /// Whether the check ran at a plan's hold point (a failure stopped the run).
-    pub gate: bool,
+    /// Whether the inspection ran as a plan's hold point (a failure stopped the run).
+    pub hold_point: bool,
 }
 
 pub fn about(store: &Store, reference: &str) -> Result<VersionDetail> {
@@ -187,12 +187,15 @@ pub fn checks_of(store: &Store, version_id: i64) -> Result<Vec<CheckRecord>> {
         .into_iter()
         .map(
             |(rule, passed, n_failing, agent, checked_at, gate)| CheckRecord {
-                rule: serde_json::from_str(&rule).unwrap_or(serde_json::Value::String(rule)),
+                // Old stores' rules (`{"rule": "not_blank", ...}`) are shown in the current form.
+                rule: serde_json::from_str(&rule)
+                    .map(crate::checks::stored_as_current)
+                    .unwrap_or(serde_json::Value::String(rule)),
                 passed,
                 n_failing,
                 agent,
                 checked_at,
-                gate,
+                hold_point: gate,
             },
         )
         .collect())

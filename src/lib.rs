@@ -67,7 +67,6 @@ pub mod sheets;
 pub mod store;
 pub mod table;
 pub mod trace;
-pub mod upgrade;
 pub mod verify;
 
 pub use error::{Error, ErrorKind, InputProblem, Position, Result};

@@ -198,7 +198,7 @@ pub struct Step {
     /// directory, git commit, branch and modified files, times, exit status), as recorded.
     #[serde(default)]
     pub code: Option<serde_json::Value>,
-    /// The step this one repeats on other data (`replay --onto`).
+    /// The step this one repeats on other data (`rerun --with`).
     #[serde(default)]
     pub repeats_step: Option<i64>,
     /// For a revert: the step whose effect it removed.

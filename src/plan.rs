@@ -1,19 +1,27 @@
 //! Plans: a JSON list of steps that `sluice run` records one by one, and that `sluice export
-//! --format plan` writes back from the history of a version. A plan names its raw inputs, binds
-//! each to a file or a stored version when it runs, and then applies built-in operations and
-//! checks in order. Every step is recorded exactly as `sluice clean` and `sluice inspect` record
-//! it; a run is only a sequence of such commands, so a failure keeps the steps done before it.
+//! --format plan` writes back from the history of a version. A plan names its sources (raw
+//! data), binds each to a file or a stored version when it runs, and then cleans and inspects
+//! in order. Every step is recorded exactly as `sluice clean` and `sluice inspect` record it; a
+//! run is only a sequence of such commands, so a failure keeps the steps done before it.
 //!
-//! Inside a plan, a name is a dataset name: a step `on` a name reads the version this run last
-//! produced or bound for that dataset (or, for a name the run has not touched, the store's
-//! version of that reference), and records its output as the next version of the same dataset
-//! unless the step says `as`. The format is described field by field in
-//! `schema/plan.schema.json` and README.md ("Plans").
+//! Inside a plan, a name is a dataset name: a step on a `dataset` reads the version this run
+//! last produced or bound for it (or, for a name the run has not touched, the store's version
+//! of that reference), and records its output as the next version of the same dataset unless
+//! the step says `save_as`. A step's `clean` names an operation and its `settings` are the
+//! operation's parameters; the store keeps them in its own encoding (the operation's name as
+//! an `op` field beside them), which the plan never shows. The format is described field by
+//! field in `schema/plan.schema.json` and README.md ("Plans"); plans and rules files of the
+//! form before it are converted by [`upgrade()`].
+
+mod upgrade;
+
+pub use upgrade::upgrade;
 
 use std::collections::{BTreeMap, BTreeSet};
 use std::path::{Path, PathBuf};
 
 use serde::{Deserialize, Serialize};
+use serde_json::Value;
 
 use crate::checks::{self, CheckReport, Rule};
 use crate::error::{Error, ErrorKind, Result};
@@ -25,39 +33,39 @@ use crate::refs;
 use crate::store::Store;
 
 /// The plan format version this build reads and writes.
-pub const PLAN_FORMAT: u32 = 1;
+pub const PLAN_FORMAT: u32 = 2;
 
 /// A plan file.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct Plan {
-    /// The format version; always 1 for now.
+    /// The format version; 2.
     pub sluice_plan: u32,
     /// What the plan is for, in a sentence or two.
     #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub description: Option<String>,
+    pub purpose: Option<String>,
     /// The raw data the plan starts from, taken in (or bound) before any step runs.
     #[serde(default)]
-    pub inputs: Vec<PlanInput>,
+    pub sources: Vec<PlanSource>,
     /// The steps, in the order they run.
     pub steps: Vec<PlanStep>,
 }
 
-/// One raw input of a plan: a dataset name and where its data comes from by default.
+/// One source of a plan: a dataset name and where its data comes from by default.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
-pub struct PlanInput {
+pub struct PlanSource {
     /// The dataset the data is taken in as.
-    pub name: String,
+    pub dataset: String,
     /// The file to take in, relative to the plan file's folder; `--input NAME=...` overrides it.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub file: Option<String>,
-    /// Why the file is taken in (the reason recorded with the intake).
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub why: Option<String>,
     /// Key columns declared at intake.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub key: Option<Vec<String>>,
+    /// Why the file is taken in (the reason recorded with the intake).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub reason: Option<String>,
     /// The field delimiter, when it is not to be detected.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub delimiter: Option<String>,
@@ -92,40 +100,158 @@ fn is_true(b: &bool) -> bool {
     *b
 }
 
-/// One step of a plan: exactly one of `apply` and `check`.
+/// One step of a plan: a cleaning (`clean` with its `settings`) or an inspection (`inspect`
+/// with its rules), never both.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-#[serde(deny_unknown_fields)]
+#[serde(try_from = "StepText", into = "StepText")]
 pub struct PlanStep {
     /// The dataset (or any version reference) the step works on.
-    pub on: String,
+    pub dataset: String,
     /// A built-in operation with its parameters, as `sluice clean` records them.
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub apply: Option<Operation>,
-    /// Rules to check, as in a rules file.
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub check: Option<Vec<Rule>>,
-    /// For a check: stop the run when a rule fails.
-    #[serde(default, skip_serializing_if = "std::ops::Not::not")]
-    pub gate: bool,
-    /// The reason recorded with the step (required for `apply`).
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub why: Option<String>,
-    /// Record the output as a version of this dataset instead of `on`'s.
-    #[serde(default, rename = "as", skip_serializing_if = "Option::is_none")]
-    pub output: Option<String>,
+    pub clean: Option<Operation>,
+    /// Rules to inspect the version against, as in a rules file.
+    pub inspect: Option<Vec<Rule>>,
+    /// For an inspection: stop the run when a rule fails.
+    pub hold_point: bool,
+    /// The reason recorded with the step (required for a cleaning).
+    pub reason: Option<String>,
+    /// Record the output as a version of this dataset instead of `dataset`'s.
+    pub save_as: Option<String>,
     /// For a plan exported from the history: the recorded step this one is. A run records it
     /// as the step each new step repeats. Not part of the file format.
-    #[serde(skip)]
     pub repeats: Option<i64>,
+}
+
+/// A step as written in a plan file.
+#[derive(Debug, Clone, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct StepText {
+    dataset: String,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    clean: Option<String>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    settings: Option<serde_json::Map<String, Value>>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    save_as: Option<String>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    inspect: Option<Vec<Rule>>,
+    #[serde(default, skip_serializing_if = "std::ops::Not::not")]
+    hold_point: bool,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    reason: Option<String>,
+}
+
+/// The names `clean` takes, in the order README.md lists them.
+pub const OPERATION_NAMES: &[&str] = &[
+    "trim",
+    "case",
+    "replace",
+    "map",
+    "lookup",
+    "fill",
+    "number",
+    "date",
+    "split",
+    "combine",
+    "extract",
+    "rename",
+    "select",
+    "keep",
+    "drop",
+    "dedupe",
+    "sort",
+    "append",
+    "summarize",
+];
+
+/// An operation from a plan's `clean` and `settings`: the store's encoding of it is the
+/// settings with the operation's name as `op`.
+pub fn operation_from(
+    clean: &str,
+    settings: Option<serde_json::Map<String, Value>>,
+) -> std::result::Result<Operation, String> {
+    if !OPERATION_NAMES.contains(&clean) {
+        return Err(format!(
+            "\"clean\": \"{clean}\" is not an operation; the operations are: {}",
+            OPERATION_NAMES.join(", ")
+        ));
+    }
+    let mut m = settings.unwrap_or_default();
+    if m.contains_key("op") {
+        return Err("\"settings\" takes the operation's settings; name the operation in \"clean\", not as \"op\"".into());
+    }
+    m.insert("op".into(), Value::String(clean.into()));
+    serde_json::from_value(Value::Object(m))
+        .map_err(|e| format!("the settings of \"{clean}\": {e}"))
+}
+
+/// A plan's `clean` and `settings` for an operation: its name and every parameter but `op`
+/// (none: no settings).
+pub fn clean_and_settings(op: &Operation) -> (String, Option<serde_json::Map<String, Value>>) {
+    let mut m = match op.params() {
+        Value::Object(m) => m,
+        _ => serde_json::Map::new(),
+    };
+    m.remove("op");
+    (op.name().to_string(), (!m.is_empty()).then_some(m))
+}
+
+impl TryFrom<StepText> for PlanStep {
+    type Error = String;
+
+    fn try_from(t: StepText) -> std::result::Result<Self, String> {
+        let clean = match t.clean {
+            Some(c) => Some(operation_from(&c, t.settings)?),
+            None if t.settings.is_some() => {
+                return Err(
+                    "\"settings\" belongs to a \"clean\" step; name the operation in \"clean\""
+                        .into(),
+                )
+            }
+            None => None,
+        };
+        Ok(PlanStep {
+            dataset: t.dataset,
+            clean,
+            inspect: t.inspect,
+            hold_point: t.hold_point,
+            reason: t.reason,
+            save_as: t.save_as,
+            repeats: None,
+        })
+    }
+}
+
+impl From<PlanStep> for StepText {
+    fn from(s: PlanStep) -> Self {
+        let (clean, settings) = match &s.clean {
+            Some(op) => {
+                let (c, m) = clean_and_settings(op);
+                (Some(c), m)
+            }
+            None => (None, None),
+        };
+        StepText {
+            dataset: s.dataset,
+            clean,
+            settings,
+            save_as: s.save_as,
+            inspect: s.inspect,
+            hold_point: s.hold_point,
+            reason: s.reason,
+        }
+    }
 }
 
 impl PlanStep {
     /// A short description for messages: "number on quillby_orders".
     pub fn describe(&self) -> String {
-        match (&self.apply, &self.check) {
-            (Some(op), _) => format!("{} on {}", op.name(), self.on),
-            (None, _) if self.gate => format!("gate check on {}", self.on),
-            _ => format!("check on {}", self.on),
+        match (&self.clean, &self.inspect) {
+            (Some(op), _) => format!("{} on {}", op.name(), self.dataset),
+            (None, _) if self.hold_point => {
+                format!("inspection at a hold point on {}", self.dataset)
+            }
+            _ => format!("inspection of {}", self.dataset),
         }
     }
 }
@@ -137,7 +263,8 @@ pub const MAX_PLAN_STEPS: usize = 10_000;
 /// The largest plan text read: 16 MiB (every step of a plan is parsed before the first runs).
 pub const MAX_PLAN_BYTES: usize = 16 << 20;
 
-/// Reads a plan's text; errors name the line and column, or the step.
+/// Reads a plan's text; errors name the line and column, or the step. A plan of the old form
+/// (`"sluice_plan": 1`) is refused with the advice to convert it.
 pub fn parse(text: &str, path: &str) -> Result<Plan> {
     if text.len() > MAX_PLAN_BYTES {
         return Err(Error::usage(format!(
@@ -145,6 +272,26 @@ pub fn parse(text: &str, path: &str) -> Result<Plan> {
             text.len(),
             MAX_PLAN_BYTES >> 20
         )));
+    }
+    // A first look at the form, skipping everything else without keeping it.
+    #[derive(Deserialize)]
+    struct Form {
+        sluice_plan: Option<Value>,
+    }
+    if let Ok(form) = serde_json::from_str::<Form>(text) {
+        match form.sluice_plan.as_ref() {
+            Some(Value::Number(n)) if n.as_u64() == Some(1) => {
+                return Err(Error::usage(format!(
+                    "{path}: this is a plan of the old form (\"sluice_plan\": 1, steps with \"on\" and \"apply\"); convert it with `sluice upgrade {path} -o NEW.json`"
+                )))
+            }
+            Some(Value::Number(n)) if n.as_u64() != Some(PLAN_FORMAT.into()) => {
+                return Err(Error::usage(format!(
+                    "{path}: plan format {n} is not one this build reads (it reads {PLAN_FORMAT}); use a newer sluice"
+                )))
+            }
+            _ => {}
+        }
     }
     let plan: Plan = serde_json::from_str(text).map_err(|e| {
         let what = e.to_string();
@@ -167,19 +314,19 @@ fn validate(plan: &Plan, path: &str) -> Result<()> {
         )));
     }
     let mut names = BTreeSet::new();
-    for (i, input) in plan.inputs.iter().enumerate() {
-        if !names.insert(input.name.as_str()) {
+    for (i, source) in plan.sources.iter().enumerate() {
+        if !names.insert(source.dataset.as_str()) {
             return Err(Error::usage(format!(
-                "{path}: input {} names dataset \"{}\" a second time; give each input its own name",
+                "{path}: source {} names dataset \"{}\" a second time; give each source its own name",
                 i + 1,
-                input.name
+                source.dataset
             )));
         }
-        if let Some(d) = &input.delimiter {
+        if let Some(d) = &source.delimiter {
             if d.len() != 1 {
                 return Err(Error::usage(format!(
-                    "{path}: input \"{}\": the delimiter must be one ASCII character, not {d:?}",
-                    input.name
+                    "{path}: source \"{}\": the delimiter must be one ASCII character, not {d:?}",
+                    source.dataset
                 )));
             }
         }
@@ -195,34 +342,34 @@ fn validate(plan: &Plan, path: &str) -> Result<()> {
     }
     for (i, s) in plan.steps.iter().enumerate() {
         let at = |what: &str| Error::usage(format!("{path}: step {}: {what}", i + 1));
-        match (&s.apply, &s.check) {
+        match (&s.clean, &s.inspect) {
             (Some(_), Some(_)) => {
                 return Err(at(
-                    "a step holds either \"apply\" or \"check\", not both; split it in two",
+                    "a step holds either \"clean\" or \"inspect\", not both; split it in two",
                 ))
             }
             (None, None) => {
                 return Err(at(
-                    "a step needs \"apply\" (an operation) or \"check\" (a list of rules)",
+                    "a step needs \"clean\" (an operation) or \"inspect\" (a list of rules)",
                 ))
             }
             (Some(_), None) => {
-                if s.why.as_deref().is_none_or(|w| w.trim().is_empty()) {
+                if s.reason.as_deref().is_none_or(|w| w.trim().is_empty()) {
                     return Err(at(
-                        "an \"apply\" step needs \"why\": the reason recorded with it",
+                        "a \"clean\" step needs \"reason\": the reason recorded with it",
                     ));
                 }
-                if s.gate {
-                    return Err(at("\"gate\" belongs to \"check\" steps"));
+                if s.hold_point {
+                    return Err(at("\"hold_point\" belongs to \"inspect\" steps"));
                 }
             }
             (None, Some(rules)) => {
                 if rules.is_empty() {
-                    return Err(at("\"check\" holds no rule"));
+                    return Err(at("\"inspect\" holds no rule"));
                 }
-                if s.output.is_some() {
+                if s.save_as.is_some() {
                     return Err(at(
-                        "a check records no version, so it takes no \"as\"; remove it",
+                        "an inspection records no version, so it takes no \"save_as\"; remove it",
                     ));
                 }
             }
@@ -261,16 +408,16 @@ pub enum Done {
         /// The hash the plan recorded for this input, when the data differs from it.
         differs_from: Option<String>,
     },
-    /// An `apply` step.
+    /// A `clean` step.
     Applied {
         step: usize,
         op: Operation,
         outcome: Box<ApplyOutcome>,
     },
-    /// A `check` step.
+    /// An `inspect` step.
     Checked {
         step: usize,
-        gate: bool,
+        hold_point: bool,
         report: CheckReport,
     },
 }
@@ -297,7 +444,7 @@ impl Done {
 #[derive(Debug, Clone)]
 pub struct RunReport {
     pub done: Vec<Done>,
-    /// Non-gate checks with a failing rule.
+    /// Inspections that are not hold points with a failing rule.
     pub failed_checks: usize,
 }
 
@@ -332,18 +479,18 @@ pub fn run(
     let mut done = Vec::new();
     // The version each dataset name stands for in this run.
     let mut current: BTreeMap<String, Version> = BTreeMap::new();
-    for (input, source) in plan.inputs.iter().zip(sources) {
+    for (input, source) in plan.sources.iter().zip(sources) {
         let fail = |done, error| RunFailure {
             done,
-            at: format!("input {}", input.name),
+            at: format!("input {}", input.dataset),
             error,
         };
         match source {
             Binding::Version(r) => match refs::resolve(&store.lineage, &r) {
                 Ok(v) => {
-                    current.insert(input.name.clone(), v.clone());
+                    current.insert(input.dataset.clone(), v.clone());
                     done.push(Done::Bound {
-                        name: input.name.clone(),
+                        name: input.dataset.clone(),
                         version: v,
                     });
                 }
@@ -351,11 +498,11 @@ pub fn run(
             },
             Binding::File(path) => {
                 let iopts = IngestOptions {
-                    dataset: input.name.clone(),
+                    dataset: input.dataset.clone(),
                     key: input.key.clone(),
                     reason: Some(
                         input
-                            .why
+                            .reason
                             .clone()
                             .unwrap_or_else(|| "raw input of a plan".to_string()),
                     ),
@@ -378,9 +525,9 @@ pub fn run(
                             .hash
                             .clone()
                             .filter(|h| !h.eq_ignore_ascii_case(&v.hash));
-                        current.insert(input.name.clone(), v);
+                        current.insert(input.dataset.clone(), v);
                         done.push(Done::TookIn {
-                            name: input.name.clone(),
+                            name: input.dataset.clone(),
                             path,
                             outcome: Box::new(outcome),
                             differs_from,
@@ -396,9 +543,12 @@ pub fn run(
         let at = format!("step {} ({})", i + 1, step.describe());
         match run_step(store, step, i + 1, &mut current, opts) {
             Ok(d) => {
-                if let Done::Checked { report, gate, .. } = &d {
+                if let Done::Checked {
+                    report, hold_point, ..
+                } = &d
+                {
                     if !report.passed {
-                        if *gate {
+                        if *hold_point {
                             let failing: Vec<String> = report
                                 .results
                                 .iter()
@@ -406,14 +556,14 @@ pub fn run(
                                 .map(|r| {
                                     format!(
                                         "{} ({} {})",
-                                        rule_summary(&r.rule),
+                                        r.rule.describe(),
                                         r.n_failing,
                                         if r.n_failing == 1 { "row" } else { "rows" }
                                     )
                                 })
                                 .collect();
                             let error = Error::from(ErrorKind::Data(format!(
-                                "the gate on {} failed: {}; the results are recorded on the version (`sluice about {}`)",
+                                "the hold point on {} failed: {}; the results are recorded on the version (`sluice about {}`)",
                                 report.version,
                                 failing.join(", "),
                                 report.version
@@ -435,26 +585,14 @@ pub fn run(
     })
 }
 
-/// A rule in a few words, for messages.
-pub fn rule_summary(rule: &Rule) -> String {
-    match rule {
-        Rule::NotBlank { columns } => format!("not_blank {}", columns.join(",")),
-        Rule::Unique { columns } => format!("unique {}", columns.join(",")),
-        Rule::Range { column, .. } => format!("range {column}"),
-        Rule::Length { column, .. } => format!("length {column}"),
-        Rule::Pattern { column, .. } => format!("pattern {column}"),
-        Rule::Allowed { column, .. } => format!("allowed {column}"),
-    }
-}
-
 /// Decides where each input's data comes from, and checks every name the steps use, before
 /// anything is recorded.
 fn plan_sources(store: &Store, plan: &Plan, opts: &RunOptions) -> Result<Vec<Binding>> {
     for (name, _) in &opts.bindings {
-        if !plan.inputs.iter().any(|i| &i.name == name) {
-            let known: Vec<&str> = plan.inputs.iter().map(|i| i.name.as_str()).collect();
+        if !plan.sources.iter().any(|i| &i.dataset == name) {
+            let known: Vec<&str> = plan.sources.iter().map(|i| i.dataset.as_str()).collect();
             return Err(Error::usage(format!(
-                "--input {name}=...: the plan has no input named \"{name}\"; its inputs are: {}",
+                "--input {name}=...: the plan has no source named \"{name}\"; its sources are: {}",
                 if known.is_empty() {
                     "(none)".to_string()
                 } else {
@@ -464,12 +602,12 @@ fn plan_sources(store: &Store, plan: &Plan, opts: &RunOptions) -> Result<Vec<Bin
         }
     }
     let mut sources = Vec::new();
-    for input in &plan.inputs {
+    for input in &plan.sources {
         let chosen = opts
             .bindings
             .iter()
             .rev()
-            .find(|(n, _)| n == &input.name)
+            .find(|(n, _)| n == &input.dataset)
             .map(|(_, b)| b.clone());
         let source = match (chosen, &input.file) {
             (Some(Binding::File(p)), _) => Binding::File(p),
@@ -480,18 +618,18 @@ fn plan_sources(store: &Store, plan: &Plan, opts: &RunOptions) -> Result<Vec<Bin
             (None, Some(f)) => Binding::File(opts.plan_dir.join(f)),
             (None, None) => {
                 return Err(Error::usage(format!(
-                "plan input \"{}\" names no file; give one with --input {}=FILE or --input {}=REF",
-                input.name, input.name, input.name
+                "plan source \"{}\" names no file; give one with --input {}=FILE or --input {}=REF",
+                input.dataset, input.dataset, input.dataset
             )))
             }
         };
         if let Binding::File(p) = &source {
             if !p.is_file() {
                 return Err(Error::usage(format!(
-                    "plan input \"{}\": {} is not a file; give another with --input {}=FILE",
-                    input.name,
+                    "plan source \"{}\": {} is not a file; give another with --input {}=FILE",
+                    input.dataset,
                     p.display(),
-                    input.name
+                    input.dataset
                 )));
             }
         }
@@ -499,24 +637,24 @@ fn plan_sources(store: &Store, plan: &Plan, opts: &RunOptions) -> Result<Vec<Bin
     }
     // Every name a step reads must be an input, the output of an earlier step, or a version
     // the store already holds.
-    let mut known: BTreeSet<String> = plan.inputs.iter().map(|i| i.name.clone()).collect();
+    let mut known: BTreeSet<String> = plan.sources.iter().map(|i| i.dataset.clone()).collect();
     for (i, step) in plan.steps.iter().enumerate() {
-        let mut reads = vec![step.on.as_str()];
-        if let Some(op) = &step.apply {
+        let mut reads = vec![step.dataset.as_str()];
+        if let Some(op) = &step.clean {
             reads.extend(other_input(op));
         }
         for name in reads {
             if !known.contains(name) {
                 refs::resolve(&store.lineage, name).map_err(|e| {
                     Error::usage(format!(
-                        "step {} ({}) reads \"{name}\", which is neither an input of the plan, nor made by an earlier step, nor in the store ({e})",
+                        "step {} ({}) reads \"{name}\", which is neither a source of the plan, nor made by an earlier step, nor in the store ({e})",
                         i + 1,
                         step.describe()
                     ))
                 })?;
             }
         }
-        if step.apply.is_some() {
+        if step.clean.is_some() {
             known.insert(output_name(store, step)?);
         }
     }
@@ -547,14 +685,14 @@ pub(crate) fn with_other_input(op: &Operation, reference: String) -> Operation {
 
 /// The dataset a step's output is recorded in: `as`, else the dataset `on` names.
 fn output_name(store: &Store, step: &PlanStep) -> Result<String> {
-    if let Some(n) = &step.output {
+    if let Some(n) = &step.save_as {
         return Ok(n.clone());
     }
-    Ok(match refs::resolve(&store.lineage, &step.on) {
+    Ok(match refs::resolve(&store.lineage, &step.dataset) {
         // A reference to a stored version (`orders:v2`, a hash) writes to its dataset; a bare
         // name is the dataset itself.
-        Ok(v) if v.dataset != step.on => v.dataset,
-        _ => step.on.clone(),
+        Ok(v) if v.dataset != step.dataset => v.dataset,
+        _ => step.dataset.clone(),
     })
 }
 
@@ -570,16 +708,16 @@ fn run_step(
             Some(v) => Ok(v.clone()),
             None => refs::resolve(&store.lineage, name),
         };
-    let input = resolve(store, &step.on, current)?;
-    if let Some(rules) = &step.check {
-        let report = checks::check(store, &input.label(), rules, step.gate, &opts.agent)?;
+    let input = resolve(store, &step.dataset, current)?;
+    if let Some(rules) = &step.inspect {
+        let report = checks::check(store, &input.label(), rules, step.hold_point, &opts.agent)?;
         return Ok(Done::Checked {
             step: number,
-            gate: step.gate,
+            hold_point: step.hold_point,
             report,
         });
     }
-    let Some(op) = &step.apply else {
+    let Some(op) = &step.clean else {
         return Err(Error::usage(format!(
             "step {number} holds neither \"apply\" nor \"check\""
         )));
@@ -589,14 +727,14 @@ fn run_step(
         Some(name) => with_other_input(op, resolve(store, name, current)?.label()),
         None => op.clone(),
     };
-    let dataset = match &step.output {
+    let dataset = match &step.save_as {
         Some(n) => n.clone(),
-        None if current.contains_key(&step.on) => step.on.clone(),
+        None if current.contains_key(&step.dataset) => step.dataset.clone(),
         None => input.dataset.clone(),
     };
     let aopts = ApplyOptions {
         op: op.clone(),
-        reason: step.why.clone().unwrap_or_default(),
+        reason: step.reason.clone().unwrap_or_default(),
         output_dataset: Some(dataset.clone()),
         agent: opts.agent.clone(),
         map_table_file: None,
@@ -639,9 +777,9 @@ pub(crate) fn steps_behind(store: &Store, v: &Version) -> Result<BTreeSet<i64>> 
 }
 
 /// Writes the plan that produced `reference` from its raw inputs: each intake on its way
-/// becomes an input (its file path made relative to `base_dir` when it lies under it), each
-/// built-in step an `apply` step with its recorded parameters and reason, and each check
-/// recorded on a version of the way a `check` step right after the step that made it.
+/// becomes a source (its file path made relative to `base_dir` when it lies under it), each
+/// built-in step a `clean` step with its recorded settings and reason, and each inspection
+/// recorded on a version of the way an `inspect` step right after the step that made it.
 /// Histories a plan cannot express are refused with the reason: outside commands and hand
 /// edits, and branches (a dataset whose steps read two of its versions side by side).
 pub fn export(store: &Store, reference: &str, base_dir: &Path) -> Result<Plan> {
@@ -651,12 +789,12 @@ pub fn export(store: &Store, reference: &str, base_dir: &Path) -> Result<Plan> {
         |what: String| Error::usage(format!("cannot write {} as a plan: {what}", target.label()));
     let mut plan = Plan {
         sluice_plan: PLAN_FORMAT,
-        description: Some(format!(
+        purpose: Some(format!(
             "the steps that made {} ({}) from its raw inputs",
             target.label(),
             &target.hash[..12]
         )),
-        inputs: Vec::new(),
+        sources: Vec::new(),
         steps: Vec::new(),
     };
     // Which version each dataset name stands for at this point of the plan.
@@ -681,14 +819,14 @@ pub fn export(store: &Store, reference: &str, base_dir: &Path) -> Result<Plan> {
         match step.kind {
             StepKind::Ingest => {
                 for v in &outputs {
-                    if plan.inputs.iter().any(|i| i.name == v.dataset) {
+                    if plan.sources.iter().any(|i| i.dataset == v.dataset) {
                         return Err(cannot(format!(
                             "its history takes in {} twice (as {} and later again); export a version on one line of history",
                             v.dataset,
                             v.label()
                         )));
                     }
-                    plan.inputs.push(input_of(&step, v, base_dir));
+                    plan.sources.push(input_of(&step, v, base_dir));
                     current.insert(v.dataset.clone(), v.id);
                 }
             }
@@ -712,12 +850,12 @@ pub fn export(store: &Store, reference: &str, base_dir: &Path) -> Result<Plan> {
                 };
                 plan.steps.push(PlanStep {
                     repeats: Some(id),
-                    output: (out.dataset != on).then(|| out.dataset.clone()),
-                    on,
-                    apply: Some(op),
-                    check: None,
-                    gate: false,
-                    why: step.reason.clone(),
+                    save_as: (out.dataset != on).then(|| out.dataset.clone()),
+                    dataset: on,
+                    clean: Some(op),
+                    inspect: None,
+                    hold_point: false,
+                    reason: step.reason.clone(),
                 });
                 current.insert(out.dataset.clone(), out.id);
             }
@@ -735,33 +873,37 @@ pub fn export(store: &Store, reference: &str, base_dir: &Path) -> Result<Plan> {
     Ok(plan)
 }
 
-/// The checks recorded on a version, one plan step per check command (the rules recorded
+/// The inspections recorded on a version, one plan step per inspection (the rules recorded
 /// together by one agent at one time).
 fn checks_on(store: &Store, v: &Version) -> Result<Vec<PlanStep>> {
     let mut steps: Vec<PlanStep> = Vec::new();
     let mut last: Option<(String, String)> = None;
     for (rule, _, _, agent, at, gate) in store.lineage.check_results(v.id)? {
-        let rule: Rule = serde_json::from_str(&rule).map_err(|e| {
-            Error::from(ErrorKind::Inconsistent(format!(
-                "a check on {} holds a rule this build cannot read ({e}); run `sluice verify`",
-                v.label()
-            )))
-        })?;
+        // Old stores hold rules of the form before the dimensions; both are read.
+        let rule: Rule = serde_json::from_str::<Value>(&rule)
+            .ok()
+            .and_then(|r| Rule::from_stored(&r))
+            .ok_or_else(|| {
+                Error::from(ErrorKind::Inconsistent(format!(
+                    "an inspection of {} holds a rule this build cannot read ({rule}); run `sluice verify`",
+                    v.label()
+                )))
+            })?;
         let group = (agent, at);
         match steps.last_mut() {
             Some(s) if last.as_ref() == Some(&group) => {
-                if let Some(rules) = s.check.as_mut() {
+                if let Some(rules) = s.inspect.as_mut() {
                     rules.push(rule);
                 }
             }
             _ => steps.push(PlanStep {
                 repeats: None,
-                on: v.dataset.clone(),
-                apply: None,
-                check: Some(vec![rule]),
-                gate,
-                why: None,
-                output: None,
+                dataset: v.dataset.clone(),
+                clean: None,
+                inspect: Some(vec![rule]),
+                hold_point: gate,
+                reason: None,
+                save_as: None,
             }),
         }
         last = Some(group);
@@ -769,7 +911,7 @@ fn checks_on(store: &Store, v: &Version) -> Result<Vec<PlanStep>> {
     Ok(steps)
 }
 
-fn input_of(step: &crate::model::Step, v: &Version, base_dir: &Path) -> PlanInput {
+fn input_of(step: &crate::model::Step, v: &Version, base_dir: &Path) -> PlanSource {
     let p = &step.params;
     let file = step.source.as_ref().map(|s| {
         let abs = Path::new(&s.absolute_path);
@@ -787,10 +929,10 @@ fn input_of(step: &crate::model::Step, v: &Version, base_dir: &Path) -> PlanInpu
         .get("delimiter_detected")
         .and_then(|d| d.as_bool())
         .unwrap_or(true);
-    PlanInput {
-        name: v.dataset.clone(),
+    PlanSource {
+        dataset: v.dataset.clone(),
         file,
-        why: step.reason.clone(),
+        reason: step.reason.clone(),
         key: strings("key"),
         delimiter: (!detected).then(|| v.dialect.delimiter.clone()),
         header: v.dialect.has_header,

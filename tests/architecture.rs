@@ -105,14 +105,12 @@ fn the_engine_never_prints_or_reads_the_environment() {
 /// The layers, earliest first. A module may import from its own layer and earlier ones only.
 /// The flow of DEVELOPERS.md is read -> operate -> record -> query -> document; below it are
 /// the shared records and tools every stage uses (errors, the model, hashes, time, progress,
-/// the code capture, the form converter), and the store with the references into it and the
+/// the code capture), and the store with the references into it and the
 /// identity of who acts, which every stage reads.
 const LAYERS: &[(&str, &[&str])] = &[
     (
         "foundation",
-        &[
-            "error", "model", "hash", "clock", "progress", "code", "upgrade", "lib",
-        ],
+        &["error", "model", "hash", "clock", "progress", "code", "lib"],
     ),
     ("read", &["table", "sheets", "jsonl"]),
     ("store", &["store", "refs", "agent"]),

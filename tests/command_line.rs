@@ -96,11 +96,11 @@ fn exit_codes_follow_the_documented_classes() {
     let s = Sandbox::with_demo();
     s.file(
         "rules_fail.json",
-        r#"{"rules": [{"rule": "allowed", "column": "status", "values": ["done"]}]}"#,
+        r#"{"sluice_rules": 2, "rules": [{"dimension": "validity", "column": "status", "one_of": ["done"]}]}"#,
     );
     s.file(
         "rules_pass.json",
-        r#"{"rules": [{"rule": "unique", "columns": ["order_id"]}]}"#,
+        r#"{"sluice_rules": 2, "rules": [{"dimension": "uniqueness", "columns": ["order_id"]}]}"#,
     );
     s.file("bad.csv", "a,b\n1,2,3\n");
     let cases = [
@@ -295,7 +295,7 @@ fn common_mistakes_name_the_thing_and_the_next_command() {
         ),
         (
             &["about", "all_orders:v99"],
-            &["has 9 versions", "`sluice timeline --dataset all_orders`"],
+            &["has 12 versions", "`sluice timeline --dataset all_orders`"],
         ),
         (
             &["retrieve", "blake3:abcdef12"],
@@ -324,9 +324,9 @@ fn common_mistakes_name_the_thing_and_the_next_command() {
                 "parts_cost",
             ],
             &[
-                "data rows 1 to 610",
+                "data rows 1 to 440",
                 "no row 9999",
-                "`sluice retrieve all_orders:v9`",
+                "`sluice retrieve all_orders:v12`",
             ],
         ),
         (
@@ -342,7 +342,7 @@ fn common_mistakes_name_the_thing_and_the_next_command() {
                 "--column",
                 "parts_cost",
             ],
-            &["order_id=ZZ", "`sluice retrieve all_orders:v9`"],
+            &["order_id=ZZ", "`sluice retrieve all_orders:v12`"],
         ),
         (
             &[
@@ -353,7 +353,7 @@ fn common_mistakes_name_the_thing_and_the_next_command() {
                 "--column",
                 "parts_cost",
             ],
-            &["not made by summarize", "`sluice trace all_orders:v9"],
+            &["not made by summarize", "`sluice trace all_orders:v12"],
         ),
         (
             &["receive", "missing.csv", "--as", "x"],

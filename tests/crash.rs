@@ -254,16 +254,16 @@ fn ingest_killed_at_fifty_moments_records_all_or_nothing() {
 }
 
 const PLAN: &str = r#"{
-  "sluice_plan": 1,
-  "description": "Quillby's Q3 work orders cleaned for the crash test",
-  "inputs": [{"name": "orders", "file": "quillby_q3.csv", "why": "the till's Q3 export"}],
+  "sluice_plan": 2,
+  "purpose": "Quillby's Q3 work orders cleaned for the crash test",
+  "sources": [{"dataset": "orders", "file": "quillby_q3.csv", "reason": "the till's Q3 export"}],
   "steps": [
-    {"on": "orders", "apply": {"op": "trim", "inner": true}, "why": "padded names"},
-    {"on": "orders", "apply": {"op": "case", "columns": ["email"], "to": "lower"}, "why": "case-blind addresses"},
-    {"on": "orders", "apply": {"op": "number", "columns": ["parts_cost"]}, "why": "amounts as text"},
-    {"on": "orders", "apply": {"op": "date", "columns": ["opened"], "order": "mdy"}, "why": "month first"},
-    {"on": "orders", "apply": {"op": "dedupe"}, "why": "orders exported twice"},
-    {"on": "orders", "apply": {"op": "drop", "predicate": "status = 'test'"}, "why": "training orders"}
+    {"dataset": "orders", "clean": "trim", "settings": {"inner": true}, "reason": "padded names"},
+    {"dataset": "orders", "clean": "case", "settings": {"columns": ["email"], "to": "lower"}, "reason": "case-blind addresses"},
+    {"dataset": "orders", "clean": "number", "settings": {"columns": ["parts_cost"]}, "reason": "amounts as text"},
+    {"dataset": "orders", "clean": "date", "settings": {"columns": ["opened"], "order": "mdy"}, "reason": "month first"},
+    {"dataset": "orders", "clean": "dedupe", "reason": "orders exported twice"},
+    {"dataset": "orders", "clean": "drop", "settings": {"predicate": "status = 'test'"}, "reason": "training orders"}
   ]
 }"#;
 

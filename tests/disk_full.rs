@@ -496,9 +496,9 @@ fn disk_full_during_apply_and_run_reports_no_space_left_and_leaves_the_store_unc
     let plan = exports.path().join("plan.json");
     fs::write(
         &plan,
-        r#"{"sluice_plan": 1, "steps": [
-             {"on": "orders", "apply": {"op": "trim", "inner": true}, "why": "padded names"},
-             {"on": "orders", "apply": {"op": "case", "columns": ["shop"], "to": "upper"}, "why": "one spelling"}]}"#,
+        r#"{"sluice_plan": 2, "steps": [
+             {"dataset": "orders", "clean": "trim", "settings": {"inner": true}, "reason": "padded names"},
+             {"dataset": "orders", "clean": "case", "settings": {"columns": ["shop"], "to": "upper"}, "reason": "one spelling"}]}"#,
     )
     .unwrap();
 

@@ -20,12 +20,15 @@ fn impact_lists_everything_downstream_and_what_is_in_use_now() {
                 .unwrap()
         })
         .collect();
-    // The plan's last four steps, then the demo's outside script and hand edit.
+    // The plan's last seven steps, then the demo's outside script and hand edit.
     assert_eq!(
         ops,
         vec![
             "lookup",
             "extract",
+            "case",
+            "drop",
+            "sort",
             "summarize",
             "summarize",
             "command",
@@ -35,7 +38,7 @@ fn impact_lists_everything_downstream_and_what_is_in_use_now() {
     assert_eq!(
         i["current"],
         serde_json::json!([
-            "all_orders:v9",
+            "all_orders:v12",
             "q3_by_shop:v1",
             "q3_shop_totals:v1",
             "reviewed_orders:v2"
@@ -54,8 +57,8 @@ fn impact_lists_everything_downstream_and_what_is_in_use_now() {
     assert!(!made.contains(&"quillby_orders:v2"));
     assert_eq!(
         made.len(),
-        4 + 9 + 2 + 2,
-        "four Oxwater versions, all_orders:v1-9, the two summaries, the two reviewed versions"
+        4 + 12 + 2 + 2,
+        "four Oxwater versions, all_orders:v1-12, the two summaries, the two reviewed versions"
     );
     assert_contains(
         &d.ok(&["impact", "q3_by_shop"]),
@@ -78,7 +81,23 @@ fn the_graph_is_drawn_as_dot_and_as_well_formed_self_contained_svg() {
                 + e["step"]["outputs"].as_array().unwrap().len()
         })
         .sum();
-    assert_eq!(dot.matches(" -> ").count(), edges);
+    // One edge per version a step read or made, and a dashed one from each step to its agent
+    // (W3C PROV's wasAssociatedWith), drawn as a pentagon ("house").
+    assert_eq!(dot.matches(" -> ").count(), edges + steps.len());
+    assert_eq!(dot.matches("[style=dashed]").count(), steps.len());
+    assert_eq!(
+        dot.matches("[shape=house").count(),
+        1,
+        "the demo has one agent"
+    );
+    assert_eq!(
+        dot.matches("[shape=ellipse").count(),
+        steps
+            .iter()
+            .map(|e| e["produced"].as_array().unwrap().len())
+            .sum::<usize>(),
+        "versions (entities) are ovals"
+    );
     assert_contains(&dot, "label=\"q3_by_shop:v1\\n");
     // Around one version: what it comes from and what depends on it, nothing else.
     let part = d.ok(&["lineage", "technicians"]);
@@ -88,13 +107,17 @@ fn the_graph_is_drawn_as_dot_and_as_well_formed_self_contained_svg() {
 
     d.ok(&["lineage", "--format", "svg", "-o", "lineage.svg"]);
     // Well-formed XML, checked with Python's xml.etree (a general-purpose parser), with one
-    // box per node, one curve per edge, and nothing fetched from outside.
+    // shape per node in the W3C PROV diagram convention (versions ovals, steps rectangles, the
+    // one agent a pentagon), one curve per edge, and nothing fetched from outside.
     let script = r#"
 import sys, xml.etree.ElementTree as ET
 root = ET.parse(sys.argv[1]).getroot()
 ns = "{http://www.w3.org/2000/svg}"
 assert root.tag == ns + "svg", root.tag
-print(len(root.findall(".//" + ns + "rect")), len(root.findall(".//" + ns + "path")))
+def count(tag):
+    return len(root.findall(".//" + ns + tag))
+# Shapes (the legend holds one of each): steps rectangles, versions ovals, agents pentagons.
+print(count("rect") - 1, count("ellipse") - 1, count("polygon") - 1, count("path"))
 "#;
     let out = std::process::Command::new("python3")
         .args(["-c", script])
@@ -113,7 +136,7 @@ print(len(root.findall(".//" + ns + "rect")), len(root.findall(".//" + ns + "pat
         .sum();
     assert_eq!(
         counts.trim(),
-        format!("{} {}", n_versions + steps.len(), edges)
+        format!("{} {} 1 {}", steps.len(), n_versions, edges)
     );
     let svg = std::fs::read_to_string(d.path().join("lineage.svg")).unwrap();
     for outside in ["href", "<script", "@import", "url("] {

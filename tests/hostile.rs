@@ -390,21 +390,21 @@ fn malformed_missing_and_huge_rules_plans_and_tables_are_refused_with_positions(
     };
     refused(
         "misspelt.json",
-        b"{\"rules\": [{\"rule\": \"unique\",\n \"colums\": [\"id\"]}]}",
+        b"{\"sluice_rules\": 2, \"rules\": [{\"dimension\": \"uniqueness\",\n \"colums\": [\"id\"]}]}",
         &["inspect", "o", "--rules", "misspelt.json"],
-        &["misspelt.json: line 2, column 19: unknown field `colums`, expected `columns`"],
+        &["misspelt.json: line 2, column 9: unknown field `colums`"],
     );
     refused(
         "missing.json",
-        b"{\"rules\": [{\"rule\": \"unique\", \"columns\": [\"technician\"]}]}",
+        b"{\"sluice_rules\": 2, \"rules\": [{\"dimension\": \"uniqueness\", \"columns\": [\"technician\"]}]}",
         &["inspect", "o", "--rules", "missing.json"],
         &["\"technician\", which is not in o:v1; its columns are: id, service"],
     );
-    let mut rules = String::from("{\"rules\": [\n");
+    let mut rules = String::from("{\"sluice_rules\": 2, \"rules\": [\n");
     for _ in 0..100_000 {
-        rules.push_str("{\"rule\": \"not_blank\", \"columns\": [\"id\"]},\n");
+        rules.push_str("{\"dimension\": \"completeness\", \"columns\": [\"id\"]},\n");
     }
-    rules.push_str("{\"rule\": \"not_blank\", \"columns\": [\"id\"]}\n");
+    rules.push_str("{\"dimension\": \"completeness\", \"columns\": [\"id\"]}\n");
     refused(
         "huge-rules.json",
         rules.as_bytes(),
@@ -412,12 +412,12 @@ fn malformed_missing_and_huge_rules_plans_and_tables_are_refused_with_positions(
         &["huge-rules.json: line 100003, column 0: EOF while parsing"],
     );
     let mut plan = String::from(
-        "{\"sluice_plan\": 1, \"inputs\": [{\"name\": \"o\", \"file\": \"o.csv\"}], \"steps\": [\n",
+        "{\"sluice_plan\": 2, \"sources\": [{\"dataset\": \"o\", \"file\": \"o.csv\"}], \"steps\": [\n",
     );
     for _ in 0..100_000 {
-        plan.push_str("{\"on\": \"o\", \"apply\": {\"op\": \"trim\"}, \"why\": \"x\"},\n");
+        plan.push_str("{\"dataset\": \"o\", \"clean\": \"trim\", \"reason\": \"x\"},\n");
     }
-    plan.push_str("{\"on\": \"o\", \"apply\": {\"op\": \"trim\"}, \"why\": \"x\"}]\n");
+    plan.push_str("{\"dataset\": \"o\", \"clean\": \"trim\", \"reason\": \"x\"}]\n");
     refused(
         "huge-plan.json",
         plan.as_bytes(),
@@ -449,7 +449,7 @@ fn malformed_missing_and_huge_rules_plans_and_tables_are_refused_with_positions(
     drop(plan);
     refused(
         "missing-column-plan.json",
-        b"{\"sluice_plan\": 1, \"inputs\": [{\"name\": \"o\", \"file\": \"o.csv\"}],\n \"steps\": [{\"on\": \"o\", \"apply\": {\"op\": \"trim\", \"columns\": [\"shop\"]}, \"why\": \"x\"}]}",
+        b"{\"sluice_plan\": 2, \"sources\": [{\"dataset\": \"o\", \"file\": \"o.csv\"}],\n \"steps\": [{\"dataset\": \"o\", \"clean\": \"trim\", \"settings\": {\"columns\": [\"shop\"]}, \"reason\": \"x\"}]}",
         &["run", "missing-column-plan.json"],
         &["plan entry 1 (trim on o)", "column \"shop\" is not in o:v1; its columns are: id, service"],
     );

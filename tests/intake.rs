@@ -420,7 +420,7 @@ fn demo_builds_a_store_that_verifies() {
     std::fs::remove_dir_all(d.path()).unwrap();
     std::fs::rename(s.path().join("sluice-demo"), d.path()).unwrap();
     assert_contains(&d.ok(&["verify"]), "intact");
-    // Five intakes, the plan's twenty-one built-in steps (its gate check records results, not
+    // Five intakes, the plan's twenty-four cleaning steps (its hold point records results, not
     // a step), then the outside script's step and the hand edit.
     let plan: serde_json::Value =
         serde_json::from_str(&std::fs::read_to_string(d.path().join("q3_cleaning.json")).unwrap())
@@ -429,9 +429,9 @@ fn demo_builds_a_store_that_verifies() {
         .as_array()
         .unwrap()
         .iter()
-        .filter(|s| s.get("apply").is_some())
+        .filter(|s| s.get("clean").is_some())
         .count();
-    assert_eq!(applies, 21);
+    assert_eq!(applies, 24);
     assert_eq!(
         d.json(&["timeline", "--json"]).as_array().unwrap().len(),
         5 + applies + 2

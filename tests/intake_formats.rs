@@ -627,8 +627,8 @@ fn a_history_from_a_workbook_exports_as_a_plan_that_remakes_it() {
     let plan: Value =
         serde_json::from_str(&std::fs::read_to_string(s.path().join("remake.json")).unwrap())
             .unwrap();
-    assert_eq!(plan["inputs"][0]["sheet"], "Work orders");
-    assert_eq!(plan["inputs"][0]["file"], "orders.xlsx");
+    assert_eq!(plan["sources"][0]["sheet"], "Work orders");
+    assert_eq!(plan["sources"][0]["file"], "orders.xlsx");
     let fresh = Sandbox::with_store();
     std::fs::copy(
         s.path().join("orders.xlsx"),

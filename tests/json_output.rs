@@ -355,11 +355,11 @@ fn demo() -> Sandbox {
     let s = Sandbox::with_demo();
     s.file(
         "rules.json",
-        r#"{"rules": [{"rule": "allowed", "column": "status", "values": ["done"]}, {"rule": "unique", "columns": ["order_id"]}]}"#,
+        r#"{"sluice_rules": 2, "rules": [{"dimension": "validity", "column": "status", "one_of": ["done"]}, {"dimension": "uniqueness", "columns": ["order_id"]}]}"#,
     );
     s.file(
         "bad_plan.json",
-        r#"{"sluice_plan": 1, "inputs": [{"name": "quillby_orders"}], "steps": [{"on": "quillby_orders", "apply": {"op": "number", "columns": ["customer"]}, "why": "a column that holds no amounts"}]}"#,
+        r#"{"sluice_plan": 2, "sources": [{"dataset": "quillby_orders"}], "steps": [{"dataset": "quillby_orders", "clean": "number", "settings": {"columns": ["customer"]}, "reason": "a column that holds no amounts"}]}"#,
     );
     s.ok(&[
         "export",

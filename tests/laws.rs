@@ -204,13 +204,23 @@ fn step() -> impl Strategy<Value = serde_json::Value> {
     use serde_json::json;
     let on = prop::sample::select(vec!["orders", "labels"]);
     let op = prop::sample::select(vec![
-        json!({"op": "trim", "inner": true}),
-        json!({"op": "case", "columns": ["email"], "to": "lower"}),
-        json!({"op": "number", "columns": ["parts_cost"], "decimal_comma": true}),
-        json!({"op": "date", "columns": ["opened"], "order": "dmy"}),
-        json!({"op": "dedupe", "keep": "last", "key": ["order_id"]}),
-        json!({"op": "drop", "predicate": "status = 'test'"}),
-        json!({"op": "rename", "columns": [{"from": "e-mail", "to": "email"}]}),
+        ("trim", json!({"inner": true})),
+        ("case", json!({"columns": ["email"], "to": "lower"})),
+        (
+            "number",
+            json!({"columns": ["parts_cost"], "decimal_comma": true}),
+        ),
+        ("date", json!({"columns": ["opened"], "order": "dmy"})),
+        ("dedupe", json!({"keep": "last", "key": ["order_id"]})),
+        ("drop", json!({"predicate": "status = 'test'"})),
+        (
+            "rename",
+            json!({"columns": [{"from": "e-mail", "to": "email"}]}),
+        ),
+        (
+            "sort",
+            json!({"by": [{"column": "opened", "direction": "descending"}, {"column": "order_id"}]}),
+        ),
     ]);
     let why = prop::sample::select(vec![
         "stray spaces",
@@ -225,17 +235,18 @@ fn step() -> impl Strategy<Value = serde_json::Value> {
             why,
             proptest::option::of(prop::sample::select(vec!["cleaned", "q3"]))
         )
-            .prop_map(|(on, op, why, out)| {
-                let mut s = json!({"on": on, "apply": op, "why": why});
+            .prop_map(|(on, (clean, settings), why, out)| {
+                let mut s =
+                    json!({"dataset": on, "clean": clean, "settings": settings, "reason": why});
                 if let Some(o) = out {
-                    s["as"] = json!(o);
+                    s["save_as"] = json!(o);
                 }
                 s
             }),
-        (on, any::<bool>()).prop_map(|(on, gate)| json!({"on": on, "check": [
-            {"rule": "unique", "columns": ["order_id"]},
-            {"rule": "range", "column": "parts_cost", "min": "0", "max": "5000"}
-        ], "gate": gate})),
+        (on, any::<bool>()).prop_map(|(on, hold)| json!({"dataset": on, "inspect": [
+            {"dimension": "uniqueness", "columns": ["order_id"]},
+            {"dimension": "validity", "column": "parts_cost", "at_least": "0", "at_most": "5000"}
+        ], "hold_point": hold})),
     ]
 }
 
@@ -246,16 +257,16 @@ proptest! {
     #[test]
     fn plans_round_trip_through_their_format(steps in prop::collection::vec(step(), 1..12)) {
         let plan = serde_json::json!({
-            "sluice_plan": 1,
-            "inputs": [{"name": "orders", "file": "o.csv"}, {"name": "labels", "file": "l.csv", "key": ["label"]}],
+            "sluice_plan": 2,
+            "sources": [{"dataset": "orders", "file": "o.csv"}, {"dataset": "labels", "file": "l.csv", "key": ["label"]}],
             "steps": steps,
         });
         let text = serde_json::to_string_pretty(&plan).unwrap();
         let parsed = sluice::plan::parse(&text, "p.json").unwrap();
         prop_assert_eq!(parsed.steps.len(), steps.len());
         for (p, s) in parsed.steps.iter().zip(&steps) {
-            prop_assert_eq!(&p.on, s["on"].as_str().unwrap());
-            prop_assert_eq!(p.why.as_deref(), s["why"].as_str());
+            prop_assert_eq!(&p.dataset, s["dataset"].as_str().unwrap());
+            prop_assert_eq!(p.reason.as_deref(), s["reason"].as_str());
         }
         let again = sluice::plan::parse(&serde_json::to_string(&parsed).unwrap(), "p.json").unwrap();
         prop_assert_eq!(again, parsed);
@@ -264,7 +275,7 @@ proptest! {
     /// A plan cut anywhere is refused with the file's name and a position, never a panic.
     #[test]
     fn a_cut_plan_is_refused_with_a_position(steps in prop::collection::vec(step(), 1..6), at in 0.0f64..1.0) {
-        let plan = serde_json::json!({"sluice_plan": 1, "inputs": [{"name": "orders", "file": "o.csv"}], "steps": steps});
+        let plan = serde_json::json!({"sluice_plan": 2, "sources": [{"dataset": "orders", "file": "o.csv"}], "steps": steps});
         let text = serde_json::to_string_pretty(&plan).unwrap();
         let cut = ((text.len() - 1) as f64 * at) as usize;
         let cut = (0..=cut).rev().find(|&i| text.is_char_boundary(i)).unwrap_or(0);

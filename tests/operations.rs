@@ -10,6 +10,7 @@ use proptest::prelude::*;
 use sluice::intake::{ingest, IngestOptions, IngestOutcome};
 use sluice::model::{Agent, Version};
 use sluice::ops::apply::{apply, ApplyOptions, ApplyOutcome};
+use sluice::ops::sort::{Direction, SortKey};
 use sluice::ops::{CaseTo, KeepWhich, OnError, Operation, Renaming};
 use sluice::store::Store;
 use sluice::table::{for_each_record, ReadSettings};
@@ -177,6 +178,11 @@ proptest! {
             Operation::Dedupe { key: key.clone(), keep },
             Operation::Trim { columns: None, inner },
             Operation::Case { columns: None, to },
+            // A permutation of the rows, recorded as runs.
+            Operation::Sort { by: vec![
+                SortKey { column: format!("c{}", n_cols - 1), direction: Direction::Descending },
+                SortKey { column: "c0".into(), direction: Direction::Ascending },
+            ] },
             Operation::Dedupe { key, keep },
             Operation::DropRows { predicate: "c0 is blank or c0 matches '^a'".into() },
             Operation::KeepRows { predicate: "not c0 in ('B', 'x-y')".into() },
@@ -1375,15 +1381,15 @@ fn check_records_results_and_fails_with_exit_code_1() {
     let s = Sandbox::with_penguins();
     s.file(
         "rules.json",
-        r#"{"rules": [
-            {"rule": "not_blank", "columns": ["bill_length_mm"]},
-            {"rule": "not_blank", "columns": ["sex"]},
-            {"rule": "allowed", "column": "species", "values": ["Adelie", "Gentoo", "Chinstrap"]},
-            {"rule": "range", "column": "body_mass_g", "min": "2700", "max": "6300"},
-            {"rule": "range", "column": "body_mass_g", "max": "6000"},
-            {"rule": "pattern", "column": "year", "regex": "20[0-9]{2}"},
-            {"rule": "length", "column": "island", "min": 5, "max": 9},
-            {"rule": "unique", "columns": ["species"]}
+        r#"{"sluice_rules": 2, "rules": [
+            {"dimension": "completeness", "columns": ["bill_length_mm"]},
+            {"dimension": "completeness", "columns": ["sex"]},
+            {"dimension": "validity", "column": "species", "one_of": ["Adelie", "Gentoo", "Chinstrap"]},
+            {"dimension": "validity", "column": "body_mass_g", "at_least": "2700", "at_most": "6300"},
+            {"dimension": "validity", "column": "body_mass_g", "at_most": "6000"},
+            {"dimension": "validity", "column": "year", "pattern": "20[0-9]{2}"},
+            {"dimension": "validity", "column": "island", "length_at_least": 5, "length_at_most": 9},
+            {"dimension": "uniqueness", "columns": ["species"]}
         ]}"#,
     );
     let r = s.run(&["inspect", "penguins", "--rules", "rules.json", "--json"]);
@@ -1408,9 +1414,22 @@ fn check_records_results_and_fails_with_exit_code_1() {
     assert_contains(&s.ok(&["verify"]), "intact");
     s.file(
         "bad.json",
-        "{\"rules\": [\n  {\"rule\": \"not_blank\", \"colums\": [\"sex\"]}\n]}",
+        "{\"sluice_rules\": 2, \"rules\": [\n  {\"dimension\": \"completeness\", \"colums\": [\"sex\"]}\n]}",
     );
     let err = s.fails(2, &["inspect", "penguins", "--rules", "bad.json"]);
-    assert_contains(&err, "bad.json: line ");
-    assert_contains(&err, "unknown field `colums`, expected `columns`");
+    assert_contains(&err, "bad.json: line 2, column");
+    assert_contains(&err, "unknown field `colums`");
+    // The screen names each rule in its dimension's words.
+    let r = s.run(&["inspect", "penguins", "--rules", "rules.json"]);
+    assert_contains(&r.stdout, "FAIL  completeness: sex: 11 rows");
+    assert_contains(
+        &r.stdout,
+        "pass  validity: body_mass_g between 2700 and 6300",
+    );
+    assert_contains(&r.stdout, "pass  validity: island length between 5 and 9");
+    assert_contains(
+        &r.stdout,
+        "pass  validity: species one of Adelie, Gentoo, Chinstrap",
+    );
+    assert_contains(&r.stdout, "pass  validity: year matches 20[0-9]{2}");
 }

@@ -106,14 +106,14 @@ fn the_demo_summary_is_reproduced_step_by_step() {
     let raw = steps.iter().filter(|s| s["result"] == "raw_intact").count();
     let same = steps.iter().filter(|s| s["result"] == "same").count();
     assert_eq!(raw, 5, "the five raw inputs");
-    assert_eq!(same, 20, "the plan's built-in steps up to q3_by_shop");
+    assert_eq!(same, 23, "the plan's built-in steps up to q3_by_shop");
     assert!(steps
         .iter()
         .filter(|s| s["result"] == "same")
         .all(|s| s["computed_hash"] == s["recorded_hash"]));
     assert_contains(
         &d.ok(&["reproduce", "q3_by_shop"]),
-        "all 25 steps above check out (5 raw inputs intact, 20 steps run again gave the recorded bytes)",
+        "all 28 steps above check out (5 raw inputs intact, 23 steps run again gave the recorded bytes)",
     );
 }
 
@@ -335,7 +335,7 @@ fn the_same_chain_runs_on_next_quarters_export_and_each_step_names_the_one_it_re
         .map(|e| &e["step"])
         .filter(|s| s["kind"] == "operation")
         .collect();
-    assert_eq!(new.len(), 20);
+    assert_eq!(new.len(), 23);
     for s in &new {
         let repeated = by_id[&s["repeats_step"]
             .as_i64()
@@ -351,7 +351,7 @@ fn the_same_chain_runs_on_next_quarters_export_and_each_step_names_the_one_it_re
     );
     assert_contains(
         &d.ok(&["timeline", "--dataset", "q3_by_shop"]),
-        "(repeats step 25) parts and labour",
+        "(repeats step 28) parts and labour",
     );
     let summary = d.run(&["retrieve", "q3_by_shop:v2"]).stdout;
     assert!(summary.starts_with("shop,month,count,sum_parts_cost,mean_labour_hours\n"));

@@ -58,10 +58,10 @@ fn penguin_history() -> Sandbox {
     ]);
     s.file(
         "rules.json",
-        r#"{"rules": [
-            {"rule": "not_blank", "columns": ["species", "sex", "body_mass_g"]},
-            {"rule": "allowed", "column": "sex", "values": ["MALE", "FEMALE"]},
-            {"rule": "range", "column": "body_mass_g", "min": "2700", "max": "6300"}
+        r#"{"sluice_rules": 2, "rules": [
+            {"dimension": "completeness", "columns": ["species", "sex", "body_mass_g"]},
+            {"dimension": "validity", "column": "sex", "one_of": ["MALE", "FEMALE"]},
+            {"dimension": "validity", "column": "body_mass_g", "at_least": "2700", "at_most": "6300"}
         ]}"#,
     );
     s.ok(&["inspect", "penguins", "--rules", "rules.json"]);
@@ -201,6 +201,21 @@ fn the_html_report_is_self_contained_and_carries_the_caution() {
     assert_contains(&html, "not legal or regulatory advice");
     assert_contains(&html, "@media print");
     assert_contains(&html, "dedupe");
+    // Callouts are bordered stamps with a plain label, not boxes with a coloured left edge.
+    assert_contains(
+        &html,
+        "<div class=\"stamp caution\"><span class=\"stamp-label\">Caution</span>",
+    );
+    assert_contains(
+        &html,
+        "<div class=\"stamp verified\"><span class=\"stamp-label\">Verified</span>",
+    );
+    assert!(!html.contains("border-left"));
+    // Rules in their dimension's words; the lineage in the W3C PROV shapes, with a legend.
+    assert_contains(&html, "<td>completeness: species, sex, body_mass_g</td>");
+    assert_contains(&html, "<g class=\"legend\">");
+    assert_contains(&html, "<ellipse");
+    assert_contains(&html, "<g class=\"agent\"><title>Test Runner");
 }
 
 #[test]

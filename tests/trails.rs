@@ -85,8 +85,9 @@ fn every_sampled_cell_of_the_cleaned_orders_has_an_unbroken_exact_trail() {
     let mut listed = HashMap::new();
     let mut cells = 0;
     let mut hops = 0;
-    // Every seventh row, every column: 88 rows x 12 columns = 1,056 cells.
-    for row in (1..=v.n_rows).step_by(7) {
+    // Every fifth row, every column: 88 rows x 12 columns = 1,056 cells, every trail through
+    // the demo's sort (a permutation of the rows) as well.
+    for row in (1..=v.n_rows).step_by(5) {
         for column in &v.header {
             let t = trace(&store, "all_orders", &RowPick::Number(row), column).unwrap();
             hops += check(&store, &t, &mut listed);

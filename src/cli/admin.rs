@@ -112,7 +112,7 @@ pub fn upgrade(
 ) -> anyhow::Result<ExitCode> {
     let text = read_text(file, "the file to upgrade", "sluice upgrade --help")?;
     let converted =
-        sluice::upgrade::upgrade(&text).map_err(|e| anyhow::anyhow!("{}: {e}", file.display()))?;
+        sluice::plan::upgrade(&text).map_err(|e| anyhow::anyhow!("{}: {e}", file.display()))?;
     match output {
         None => out.write_all(converted.as_bytes())?,
         Some(path) => {

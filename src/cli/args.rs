@@ -77,9 +77,12 @@ pub enum Command {
 
     /// Inspect a version against declared rules and record the results on it
     #[command(
-        after_help = "Rules file:\n  {\"rules\": [\n    {\"rule\": \"not_blank\", \"columns\": [\"order_id\"]},\n    {\"rule\": \"unique\", \"columns\": [\"order_id\"]},\n    \
-        {\"rule\": \"range\", \"column\": \"parts_cost\", \"min\": \"0\", \"max\": \"5000\"},\n    {\"rule\": \"length\", \"column\": \"order_id\", \"min\": 5, \"max\": 5},\n    \
-        {\"rule\": \"pattern\", \"column\": \"email\", \"regex\": \"[^@ ]+@[^@ ]+\"},\n    {\"rule\": \"allowed\", \"column\": \"status\", \"values\": [\"done\", \"open\"]}\n  ]}\n\n\
+        after_help = "Rules file (schema/rules.schema.json), rules by data-quality dimension:\n  {\"sluice_rules\": 2, \"rules\": [\n    \
+        {\"dimension\": \"completeness\", \"columns\": [\"order_id\"]},\n    {\"dimension\": \"uniqueness\", \"columns\": [\"order_id\"]},\n    \
+        {\"dimension\": \"validity\", \"column\": \"parts_cost\", \"at_least\": \"0\", \"at_most\": \"5000\"},\n    \
+        {\"dimension\": \"validity\", \"column\": \"order_id\", \"length_at_least\": 5, \"length_at_most\": 5},\n    \
+        {\"dimension\": \"validity\", \"column\": \"email\", \"pattern\": \"[^@ ]+@[^@ ]+\"},\n    \
+        {\"dimension\": \"validity\", \"column\": \"status\", \"one_of\": [\"done\", \"open\"]}\n  ]}\n\n\
         Example:\n  sluice inspect quillby_orders --rules rules.json\n\nExit code 0 when every rule passes, 1 when one fails."
     )]
     Inspect {
@@ -953,6 +956,24 @@ pub enum OpCommand {
         /// Which of the repeated rows stays
         #[arg(long, value_enum, default_value = "first")]
         keep: KeepArg,
+        #[command(flatten)]
+        step: StepArgs,
+    },
+    /// Put the rows in a stable order by one or more columns (numbers as numbers, else text)
+    #[command(
+        after_help = "Each column sorts ascending unless it ends in :desc. Two cells that are both plain numbers compare \
+        as numbers, exactly; otherwise as text; numbers come before text. Rows with equal keys keep their order.\n\n\
+        Example:\n  sluice clean all_orders sort --by shop,opened:desc --why \"each shop's latest orders first\""
+    )]
+    Sort {
+        /// The columns to sort by, the first deciding first; COL:desc for descending
+        #[arg(
+            long,
+            required = true,
+            value_name = "COL[:desc][,COL..]",
+            value_delimiter = ','
+        )]
+        by: Vec<String>,
         #[command(flatten)]
         step: StepArgs,
     },

@@ -37,9 +37,9 @@ pub fn export(
             if let (true, Some(path)) = (write_text_to(output, &text, out)?, output) {
                 writeln!(
                     out,
-                    "wrote the plan of {} ({} inputs, {} steps) to {}",
+                    "wrote the plan of {} ({} sources, {} steps) to {}",
                     reference,
-                    plan.inputs.len(),
+                    plan.sources.len(),
                     plan.steps.len(),
                     path.display()
                 )?;

@@ -337,10 +337,10 @@ pub fn about_text(out: &mut impl Write, d: &VersionDetail) -> io::Result<()> {
     for c in &d.checks {
         writeln!(
             out,
-            "  {}         {} {} · {} · {}",
-            if c.gate { "hold " } else { "check" },
+            "  {:<13}{} {} · {} · {}",
+            if c.hold_point { "hold point" } else { "check" },
             if c.passed { "pass" } else { "FAIL" },
-            c.rule,
+            sluice::checks::describe_stored(&c.rule),
             c.checked_at,
             c.agent
         )?;

@@ -332,7 +332,8 @@ impl OpCommand {
             | OpCommand::Summarize { step, .. }
             | OpCommand::Keep { step, .. }
             | OpCommand::Drop { step, .. }
-            | OpCommand::Dedupe { step, .. } => step,
+            | OpCommand::Dedupe { step, .. }
+            | OpCommand::Sort { step, .. } => step,
         }
     }
 }
@@ -537,7 +538,25 @@ impl TryFrom<&OpCommand> for Operation {
                 key: key.clone(),
                 keep: (*keep).into(),
             },
+            OpCommand::Sort { by, .. } => Operation::Sort {
+                by: by.iter().map(|k| sort_key(k)).collect(),
+            },
         })
+    }
+}
+
+/// `COL`, `COL:asc` or `COL:desc` as a sort key (a column whose name ends in `:desc` is written
+/// `NAME:desc:asc`).
+fn sort_key(text: &str) -> sluice::ops::sort::SortKey {
+    use sluice::ops::sort::{Direction, SortKey};
+    let (column, direction) = match text.rsplit_once(':') {
+        Some((c, "desc" | "descending")) => (c, Direction::Descending),
+        Some((c, "asc" | "ascending")) => (c, Direction::Ascending),
+        _ => (text, Direction::Ascending),
+    };
+    SortKey {
+        column: column.to_string(),
+        direction,
     }
 }
 
@@ -643,8 +662,7 @@ pub fn finish_run(
             let at = match failure.at.strip_prefix("step ") {
                 Some(rest) => format!("plan entry {rest}"),
                 None => failure.at.clone(),
-            }
-            .replace("gate check on", "inspection at a hold point on");
+            };
             let kept: Vec<String> = failure
                 .done
                 .iter()
@@ -939,9 +957,13 @@ impl<'a> From<&'a Done> for DoneJson<'a> {
                     output,
                 }
             }
-            Done::Checked { step, gate, report } => DoneJson::Inspect {
+            Done::Checked {
+                step,
+                hold_point,
+                report,
+            } => DoneJson::Inspect {
                 plan_entry: *step,
-                hold_point: *gate,
+                hold_point: *hold_point,
                 version: &report.version,
                 hash: &report.hash,
                 passed: report.passed,
@@ -1084,6 +1106,17 @@ pub fn apply_outcome(out: &mut impl Write, op: &Operation, o: &ApplyOutcome) -> 
                         "rows"
                     )
                 )
+            } else if let Operation::Sort { by } = op {
+                let keys: Vec<String> = by
+                    .iter()
+                    .map(|k| match k.direction {
+                        sluice::ops::sort::Direction::Ascending => k.column.clone(),
+                        sluice::ops::sort::Direction::Descending => {
+                            format!("{} (descending)", k.column)
+                        }
+                    })
+                    .collect();
+                format!("put the rows in order by {}", keys.join(", "))
             } else if matches!(op, Operation::Summarize { .. }) {
                 format!(
                     "made {} from {}",
@@ -1243,7 +1276,7 @@ pub fn check(out: &mut impl Write, r: &sluice::checks::CheckReport) -> io::Resul
         r.results.len()
     )?;
     for c in &r.results {
-        let rule = serde_json::to_string(&c.rule).unwrap_or_default();
+        let rule = c.rule.describe();
         if c.passed {
             writeln!(out, "  pass  {rule}")?;
         } else {
@@ -1305,12 +1338,16 @@ pub fn run_done(out: &mut impl Write, done: &[Done]) -> io::Result<()> {
                 }
                 _ => writeln!(out, "plan entry {step}: {}", apply_line(op, outcome)?)?,
             },
-            Done::Checked { step, gate, report } => {
+            Done::Checked {
+                step,
+                hold_point,
+                report,
+            } => {
                 let failed = report.results.iter().filter(|c| !c.passed).count();
                 writeln!(
                     out,
                     "plan entry {step}: {} on {}: {}{}",
-                    if *gate {
+                    if *hold_point {
                         "inspection at a hold point"
                     } else {
                         "inspection"
@@ -1334,7 +1371,7 @@ pub fn run_done(out: &mut impl Write, done: &[Done]) -> io::Result<()> {
                             .map(|c| {
                                 format!(
                                     "{} fails on {}",
-                                    sluice::plan::rule_summary(&c.rule),
+                                    c.rule.describe(),
                                     plural(c.n_failing, "row", "rows")
                                 )
                             })

@@ -131,7 +131,16 @@ fn facts(s: &ReportStep) -> Vec<(&'static str, String)> {
         f.push(("operation", op.clone()));
     }
     if !s.params.is_null() {
-        f.push(("parameters", canonical_json(&s.params)));
+        // An operation's settings as a plan writes them: the store's `op` tag is internal and
+        // the operation is named on the line above.
+        match (&s.operation, &s.params) {
+            (Some(_), serde_json::Value::Object(m)) if m.contains_key("op") => {
+                let mut m = m.clone();
+                m.remove("op");
+                f.push(("settings", canonical_json(&serde_json::Value::Object(m))));
+            }
+            _ => f.push(("parameters", canonical_json(&s.params))),
+        }
     }
     if !s.inputs.is_empty() {
         f.push(("read", versions(&s.inputs)));
@@ -192,7 +201,7 @@ fn distinct(p: &ColumnProfile) -> String {
 }
 
 fn rule_text(rule: &serde_json::Value) -> String {
-    canonical_json(rule)
+    sluice::checks::describe_stored(rule)
 }
 
 // ---------------------------------------------------------------------------------------------
@@ -253,7 +262,7 @@ pub fn markdown(r: &Report) -> String {
         md(&r.generated.by),
         r.generated.tool_version
     );
-    let _ = writeln!(o, "> **Caution.** {}\n", r.caution);
+    let _ = writeln!(o, "**[Caution]** {}\n", r.caution);
 
     let _ = writeln!(o, "## Verification\n");
     let _ = writeln!(
@@ -293,7 +302,7 @@ pub fn markdown(r: &Report) -> String {
         let _ = writeln!(o, "### {}\n", step_title(s));
         let _ = writeln!(o, "| | |\n| --- | --- |");
         for (k, v) in facts(s) {
-            if k == "parameters" || k == "command" {
+            if k == "parameters" || k == "settings" || k == "command" {
                 let _ = writeln!(o, "| {k} | {} |", md_code(&v));
             } else {
                 let _ = writeln!(o, "| {k} | {} |", md(&v));
@@ -350,7 +359,7 @@ pub fn markdown(r: &Report) -> String {
     for vc in &r.checks {
         let _ = writeln!(
             o,
-            "### {} (`{}`)\n\n| rule | result | failing rows | by | at | gate |\n| --- | --- | ---: | --- | --- | --- |",
+            "### {} (`{}`)\n\n| rule | result | failing rows | by | at | hold point |\n| --- | --- | ---: | --- | --- | --- |",
             vc.version,
             &vc.hash[..12.min(vc.hash.len())]
         );
@@ -358,12 +367,12 @@ pub fn markdown(r: &Report) -> String {
             let _ = writeln!(
                 o,
                 "| {} | {} | {} | {} | {} | {} |",
-                md_code(&rule_text(&c.rule)),
+                md(&rule_text(&c.rule)),
                 if c.passed { "passed" } else { "failed" },
                 c.n_failing,
                 md(&c.agent),
                 c.checked_at,
-                if c.gate { "yes" } else { "no" }
+                if c.hold_point { "yes" } else { "no" }
             );
         }
         o.push('\n');
@@ -454,29 +463,39 @@ fn esc(s: &str) -> String {
 }
 
 const STYLE: &str = r#"
-:root { --ink: #1d2733; --muted: #5b6773; --line: #d5dbe1; --band: #f3f5f7; --accent: #1f5f99; --ok: #23744a; --bad: #a3271f; }
+:root {
+  --ink: #23272b; --muted: #5f6368; --rule: #cfd0c9; --band: #f1f0ea; --paper: #ffffff;
+  --slate: #34576b; --moss: #3d6b3a; --brick: #9b3b2f; --umber: #7a5a2b;
+  --entity: #e6ede4; --entity-line: #4f6b4a; --activity: #ebe7f0; --activity-line: #5e4b6e;
+  --agent: #f2e6da; --agent-line: #8a5a3c;
+}
 * { box-sizing: border-box; }
-body { font: 14px/1.45 system-ui, -apple-system, "Segoe UI", Roboto, "Helvetica Neue", Arial, sans-serif; color: var(--ink); margin: 0 auto; max-width: 60rem; padding: 1.5rem; }
-h1 { font-size: 1.6rem; margin: 0 0 .5rem; }
-h2 { font-size: 1.25rem; margin: 2rem 0 .6rem; padding-bottom: .2rem; border-bottom: 2px solid var(--accent); }
-h3 { font-size: 1.05rem; margin: 1.4rem 0 .4rem; }
+body { font: 14px/1.5 Georgia, "Iowan Old Style", "Palatino Linotype", Palatino, serif; color: var(--ink); background: var(--paper); margin: 0 auto; max-width: 60rem; padding: 1.5rem; }
+h1, h2, h3, th, .stamp-label, table.facts th { font-family: "Gill Sans", "Gill Sans MT", Optima, Candara, "Trebuchet MS", sans-serif; }
+h1 { font-size: 1.6rem; margin: 0 0 .5rem; font-weight: 600; }
+h2 { font-size: 1.2rem; margin: 2.2rem 0 .6rem; padding-bottom: .15rem; border-bottom: 1px solid var(--slate); color: var(--slate); font-weight: 600; letter-spacing: .01em; }
+h3 { font-size: 1.02rem; margin: 1.4rem 0 .4rem; font-weight: 600; }
 table { border-collapse: collapse; width: 100%; margin: .4rem 0 .8rem; }
-th, td { text-align: left; vertical-align: top; padding: .25rem .5rem; border-bottom: 1px solid var(--line); }
-th { background: var(--band); font-weight: 600; }
+th, td { text-align: left; vertical-align: top; padding: .25rem .5rem; border-bottom: 1px solid var(--rule); }
+th { background: var(--band); font-weight: 600; font-size: .92em; }
 td.n, th.n { text-align: right; font-variant-numeric: tabular-nums; }
 table.facts th { width: 9rem; background: none; color: var(--muted); font-weight: 500; }
 code { white-space: pre-wrap; }
-code, .hash { font-family: ui-monospace, "SFMono-Regular", Menlo, Consolas, monospace; font-size: .86em; overflow-wrap: anywhere; }
-.caution { border-left: 4px solid #b7791f; background: #fdf6e7; padding: .6rem .9rem; margin: 1rem 0; }
-.verdict { border-left: 4px solid var(--ok); background: #ecf6f0; padding: .6rem .9rem; }
-.verdict.bad { border-left-color: var(--bad); background: #fbeceb; }
+code, .hash { font-family: ui-monospace, "SFMono-Regular", Menlo, Consolas, monospace; font-size: .84em; overflow-wrap: anywhere; }
+.stamp { border: 2px solid var(--umber); border-radius: 3px; outline: 1px solid var(--umber); outline-offset: 2px; padding: .55rem .85rem; margin: 1.1rem 3px; color: var(--ink); }
+.stamp p { margin: 0; display: inline; }
+.stamp-label { display: inline-block; margin-right: .6rem; padding: 0 .4rem; border: 1px solid currentColor; font-size: .74rem; font-weight: 600; letter-spacing: .12em; text-transform: uppercase; color: var(--umber); vertical-align: .1em; }
+.stamp.verified { border-color: var(--moss); outline-color: var(--moss); }
+.stamp.verified .stamp-label { color: var(--moss); }
+.stamp.problems { border-color: var(--brick); outline-color: var(--brick); }
+.stamp.problems .stamp-label { color: var(--brick); }
 .muted { color: var(--muted); }
-.step { border: 1px solid var(--line); border-radius: 4px; padding: .2rem .9rem .6rem; margin: .8rem 0; }
+.step { border-top: 1px solid var(--rule); padding: .2rem 0 .6rem; margin: .8rem 0; }
 .lineage svg { max-width: 100%; height: auto; display: block; margin: 0 auto; }
-.lineage { border: 1px solid var(--line); padding: .5rem; overflow: auto; max-height: 50rem; }
+.lineage { border: 1px solid var(--rule); padding: .5rem; overflow: auto; max-height: 50rem; }
 .bar { vertical-align: middle; }
-.pass { color: var(--ok); font-weight: 600; }
-.fail { color: var(--bad); font-weight: 600; }
+.pass { color: var(--moss); font-weight: 600; }
+.fail { color: var(--brick); font-weight: 600; }
 @media print {
   @page { margin: 14mm 12mm; }
   body { max-width: none; padding: 0; font-size: 9.5pt; }
@@ -484,9 +503,8 @@ code, .hash { font-family: ui-monospace, "SFMono-Regular", Menlo, Consolas, mono
   .lineage svg { max-height: 240mm; width: auto; }
   h2 { break-after: avoid; page-break-after: avoid; }
   h3 { break-after: avoid; page-break-after: avoid; }
-  tr, .caution, .verdict { break-inside: avoid; page-break-inside: avoid; }
+  tr, .stamp { break-inside: avoid; page-break-inside: avoid; }
   thead { display: table-header-group; }
-  .step { border: none; padding: 0; }
   a { color: inherit; text-decoration: none; }
 }
 "#;
@@ -503,7 +521,7 @@ fn bars(values: &[(Option<u64>, u64)], colour: &str) -> String {
         let y = i * 7;
         let _ = write!(
             o,
-            "<rect x=\"0\" y=\"{y}\" width=\"{w:.0}\" height=\"5\" fill=\"#e4e8ec\"/>"
+            "<rect x=\"0\" y=\"{y}\" width=\"{w:.0}\" height=\"5\" fill=\"#ebeae4\"/>"
         );
         if let Some(v) = v {
             let share = if *of == 0 {
@@ -515,7 +533,7 @@ fn bars(values: &[(Option<u64>, u64)], colour: &str) -> String {
                 o,
                 "<rect x=\"0\" y=\"{y}\" width=\"{:.1}\" height=\"5\" fill=\"{}\"/>",
                 share * w,
-                if i == 0 { "#9aa7b4" } else { colour }
+                if i == 0 { "#a3a29a" } else { colour }
             );
         }
     }
@@ -551,14 +569,14 @@ fn quality_html(o: &mut String, q: &QualityComparison) {
                 (c.raw.as_ref().map(|p| p.n_blank), q.raw.n_rows),
                 (c.subject.as_ref().map(|p| p.n_blank), q.subject.n_rows),
             ],
-            "#c0504d",
+            "#9b3b2f",
         );
         let distinct_bars = bars(
             &[
                 (c.raw.as_ref().map(|p| p.n_distinct), q.raw.n_rows),
                 (c.subject.as_ref().map(|p| p.n_distinct), q.subject.n_rows),
             ],
-            "#1f5f99",
+            "#34576b",
         );
         let _ = writeln!(
             o,
@@ -638,7 +656,7 @@ pub fn html(r: &Report) -> String {
     let _ = writeln!(o, "</tbody></table></header>");
     let _ = writeln!(
         o,
-        "<p class=\"caution\"><strong>Caution.</strong> {}</p>",
+        "<div class=\"stamp caution\"><span class=\"stamp-label\">Caution</span><p>{}</p></div>",
         esc(&r.caution)
     );
 
@@ -650,8 +668,8 @@ pub fn html(r: &Report) -> String {
     let _ = writeln!(o, "<section id=\"verification\"><h2>Verification</h2>");
     let _ = writeln!(
         o,
-        "<p class=\"verdict{}\"><strong>{}.</strong> {}</p>",
-        if ok { "" } else { " bad" },
+        "<div class=\"stamp {}\"><span class=\"stamp-label\">{}</span><p>{}</p></div>",
+        if ok { "verified" } else { "problems" },
         if ok { "Verified" } else { "Problems found" },
         esc(&r.verification.statement)
     );
@@ -702,7 +720,7 @@ pub fn html(r: &Report) -> String {
             s.id
         );
         for (k, v) in facts(s) {
-            let shown = if k == "parameters" || k == "command" {
+            let shown = if k == "parameters" || k == "settings" || k == "command" {
                 format!("<code>{}</code>", esc(&v))
             } else {
                 esc(&v)
@@ -788,19 +806,19 @@ pub fn html(r: &Report) -> String {
         );
         let _ = writeln!(
             o,
-            "<table><thead><tr><th>rule</th><th>result</th><th class=\"n\">failing rows</th><th>by</th><th>at</th><th>gate</th></tr></thead><tbody>"
+            "<table><thead><tr><th>rule</th><th>result</th><th class=\"n\">failing rows</th><th>by</th><th>at</th><th>hold point</th></tr></thead><tbody>"
         );
         for c in &vc.checks {
             let _ = writeln!(
                 o,
-                "<tr><td><code>{}</code></td><td class=\"{}\">{}</td><td class=\"n\">{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
+                "<tr><td>{}</td><td class=\"{}\">{}</td><td class=\"n\">{}</td><td>{}</td><td>{}</td><td>{}</td></tr>",
                 esc(&rule_text(&c.rule)),
                 if c.passed { "pass" } else { "fail" },
                 if c.passed { "passed" } else { "failed" },
                 c.n_failing,
                 esc(&c.agent),
                 esc(&c.checked_at),
-                if c.gate { "yes" } else { "no" }
+                if c.hold_point { "yes" } else { "no" }
             );
         }
         let _ = writeln!(o, "</tbody></table>");
@@ -814,7 +832,7 @@ pub fn html(r: &Report) -> String {
     );
     let _ = writeln!(
         o,
-        "<p class=\"muted\">A → B: raw input, then {}; “-”: the column is not in that version. Bars: grey the raw input, colour {}, each as a share of its rows.</p>",
+        "<p class=\"muted\">A → B: raw input, then {}; “-”: the column is not in that version. Bars: the upper (grey) the raw input, the lower {}, each as a share of its rows.</p>",
         esc(&r.subject.version),
         esc(&r.subject.version)
     );
@@ -855,7 +873,7 @@ pub fn html(r: &Report) -> String {
     );
     let _ = writeln!(
         o,
-        "<footer><p class=\"caution\"><strong>Caution.</strong> {}</p></footer>\n</body>\n</html>",
+        "<footer><div class=\"stamp caution\"><span class=\"stamp-label\">Caution</span><p>{}</p></div></footer>\n</body>\n</html>",
         esc(&r.caution)
     );
     o

@@ -48,7 +48,7 @@ pub struct ApplyOptions {
     /// output and provenance hashes. Nothing is written to the database; an output object
     /// missing from the store is restored when the recomputed bytes have its hash.
     pub replay: Option<ReplayCheck>,
-    /// The recorded step this one repeats on other data (`replay --onto`).
+    /// The recorded step this one repeats on other data (`rerun --with`).
     pub repeats: Option<i64>,
 }
 
@@ -163,6 +163,9 @@ fn apply_to(store: &mut Store, input: Version, opts: &ApplyOptions, mode: Mode) 
     }
     if matches!(opts.op, Operation::Append { .. }) {
         return super::append::run(store, input, opts, mode);
+    }
+    if matches!(opts.op, Operation::Sort { .. }) {
+        return super::sort::run(store, input, opts, mode);
     }
     // A mapping table is recorded by its exact version, whatever reference named it; a table
     // file is read and stored now but recorded only with the step.

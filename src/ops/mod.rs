@@ -10,6 +10,7 @@ pub mod decimal;
 pub mod derive;
 pub mod number;
 pub mod predicate;
+pub mod sort;
 pub mod summarize;
 pub mod text;
 
@@ -182,6 +183,9 @@ pub enum Operation {
     /// The rows where the predicate holds are removed (see [`predicate`]).
     #[serde(rename = "drop")]
     DropRows { predicate: String },
+    /// Rows put in a stable order by one or more columns, each ascending or descending (see
+    /// [`sort`]); the row map records the permutation.
+    Sort { by: Vec<sort::SortKey> },
 }
 
 fn keep_first() -> KeepWhich {
@@ -217,6 +221,7 @@ impl Operation {
             Operation::Date { .. } => "date",
             Operation::Rename { .. } => "rename",
             Operation::Select { .. } => "select",
+            Operation::Sort { .. } => "sort",
         }
     }
 
@@ -243,6 +248,7 @@ impl Operation {
             | Operation::Combine { .. }
             | Operation::Extract { .. }
             | Operation::Lookup { .. }
+            | Operation::Sort { .. }
             | Operation::Append { .. } => None,
         }
     }

@@ -466,7 +466,7 @@ fn computed_difference(
 /// recording it) and every column of the recorded raw version that a step names must be in it:
 /// a missing file or column refuses the run with nothing recorded, so the dataset's latest
 /// version stays where it was. A step that cannot apply for another reason (a value it cannot
-/// read, a failing gate) stops the run and keeps what was done, as `sluice run` does.
+/// read, a failing hold point) stops the run and keeps what was done, as `sluice run` does.
 pub fn onto(
     store: &mut Store,
     reference: &str,
@@ -476,28 +476,28 @@ pub fn onto(
     agent: &Agent,
 ) -> Result<std::result::Result<crate::plan::RunReport, crate::plan::RunFailure>> {
     let mut plan = crate::plan::export(store, reference, std::path::Path::new("/"))?;
-    if !plan.inputs.iter().any(|i| i.name == name) {
-        let names: Vec<&str> = plan.inputs.iter().map(|i| i.name.as_str()).collect();
+    if !plan.sources.iter().any(|i| i.dataset == name) {
+        let names: Vec<&str> = plan.sources.iter().map(|i| i.dataset.as_str()).collect();
         return Err(crate::Error::usage(format!(
-            "--onto {name}=...: {reference} is not made from a dataset named \"{name}\"; its raw inputs are: {}",
+            "--with {name}=...: {reference} is not made from a dataset named \"{name}\"; its raw inputs are: {}",
             names.join(", ")
         )));
     }
     check_new_file(store, &plan, reference, name, file, agent)?;
     let mut bindings = Vec::new();
-    for input in &mut plan.inputs {
-        if input.name == name {
-            input.why =
+    for input in &mut plan.sources {
+        if input.dataset == name {
+            input.reason =
                 Some(why.clone().unwrap_or_else(|| {
                     format!("new raw data for the steps that made {reference}")
                 }));
             bindings.push((
-                input.name.clone(),
+                input.dataset.clone(),
                 crate::plan::Binding::File(file.to_path_buf()),
             ));
         } else if let Some(recorded) = &input.recorded {
             bindings.push((
-                input.name.clone(),
+                input.dataset.clone(),
                 crate::plan::Binding::Version(recorded.clone()),
             ));
         }

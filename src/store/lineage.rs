@@ -854,7 +854,7 @@ pub struct NewStep<'a> {
     /// For outside commands and hand edits: what ran and where (stored as canonical JSON in
     /// `steps.code`).
     pub code: Option<&'a Value>,
-    /// The step this one repeats on other data (`replay --onto`).
+    /// The step this one repeats on other data (`rerun --with`).
     pub repeats_step: Option<i64>,
 }
 
