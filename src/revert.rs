@@ -1259,14 +1259,16 @@ fn recheck(
             }
         }
         for (text, gate) in rules {
-            let Ok(rule) = serde_json::from_str::<crate::checks::Rule>(&text) else {
+            let rule_value: serde_json::Value =
+                serde_json::from_str(&text).unwrap_or(serde_json::Value::Null);
+            // Stored rules may be of the old form (an older build's store): read both.
+            let Some(rule) = crate::checks::Rule::from_stored(&rule_value) else {
                 return Err(db(format!(
                     "an inspection recorded on {} holds a rule this build cannot read: {text}",
                     old.label()
                 )));
             };
-            let rule_value: serde_json::Value =
-                serde_json::from_str(&text).unwrap_or(serde_json::Value::Null);
+            let text = rule.describe();
             let result = match crate::checks::evaluate(store, new, std::slice::from_ref(&rule)) {
                 Ok(mut r) => r.pop(),
                 // A column the rule names is gone with the reverted step: a gate that cannot

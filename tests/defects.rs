@@ -221,12 +221,12 @@ fn case_dedupe_gate_and_hand_edit() -> Sandbox {
     );
     s.file(
         "plan.json",
-        r#"{"sluice_plan": 1,
-        "inputs": [{"name": "o", "file": "o.csv"}],
+        r#"{"sluice_plan": 2,
+        "sources": [{"dataset": "o", "file": "o.csv"}],
         "steps": [
-          {"on": "o", "apply": {"op": "case", "columns": ["shop"], "to": "upper"}, "why": "one spelling"},
-          {"on": "o", "apply": {"op": "dedupe"}, "why": "exported twice"},
-          {"on": "o", "check": [{"rule": "unique", "columns": ["order_id"]}], "gate": true}
+          {"dataset": "o", "clean": "case", "settings": {"columns": ["shop"], "to": "upper"}, "reason": "one spelling"},
+          {"dataset": "o", "clean": "dedupe", "reason": "exported twice"},
+          {"dataset": "o", "inspect": [{"dimension": "uniqueness", "columns": ["order_id"]}], "hold_point": true}
         ]}"#,
     );
     s.ok(&["run", "plan.json"]);

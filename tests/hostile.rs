@@ -425,19 +425,19 @@ fn malformed_missing_and_huge_rules_plans_and_tables_are_refused_with_positions(
         &["huge-plan.json: line 100003, column 0"],
     );
     let mut plan = String::from(
-        "{\"sluice_plan\": 1, \"inputs\": [{\"name\": \"o\", \"file\": \"o.csv\"}], \"steps\": [\n",
+        "{\"sluice_plan\": 2, \"sources\": [{\"dataset\": \"o\", \"file\": \"o.csv\"}], \"steps\": [\n",
     );
     for _ in 0..10_000 {
-        plan.push_str("{\"on\": \"o\", \"apply\": {\"op\": \"trim\"}, \"why\": \"x\"},\n");
+        plan.push_str("{\"dataset\": \"o\", \"clean\": \"trim\", \"reason\": \"x\"},\n");
     }
-    plan.push_str("{\"on\": \"o\", \"apply\": {\"op\": \"trim\"}, \"why\": \"x\"}]}\n");
+    plan.push_str("{\"dataset\": \"o\", \"clean\": \"trim\", \"reason\": \"x\"}]}\n");
     refused(
         "10001-steps.json",
         plan.as_bytes(),
         &["run", "10001-steps.json"],
         &["the plan has 10001 steps, more than the 10000 a plan may have"],
     );
-    let mut plan = String::from("{\"sluice_plan\": 1, \"inputs\": [], \"steps\": []");
+    let mut plan = String::from("{\"sluice_plan\": 2, \"sources\": [], \"steps\": []");
     plan.push_str(&" ".repeat(17 << 20));
     plan.push('}');
     refused(
@@ -519,9 +519,9 @@ fn predicates_nested_past_the_limit_are_refused_and_long_chains_run() {
     s.file("o.csv", "id,status\n1,open\n2,cancelled\n3,open\n");
     let plan = |name: &str, pred: &str| {
         let text = serde_json::json!({
-            "sluice_plan": 1,
-            "inputs": [{"name": "o", "file": "o.csv"}],
-            "steps": [{"on": "o", "apply": {"op": "drop", "predicate": pred}, "why": "hostile"}],
+            "sluice_plan": 2,
+            "sources": [{"dataset": "o", "file": "o.csv"}],
+            "steps": [{"dataset": "o", "clean": "drop", "settings": {"predicate": pred}, "reason": "hostile"}],
         });
         s.file(name, text.to_string());
     };

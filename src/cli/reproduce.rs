@@ -204,7 +204,7 @@ pub fn withdraw_text(out: &mut impl Write, o: &sluice::revert::RevertOutcome) ->
                         c.version,
                         c.original,
                         if c.gate { ", a hold point" } else { "" },
-                        c.rule
+                        sluice::checks::describe_stored(&c.rule)
                     )?;
                 }
             }

@@ -528,7 +528,7 @@ fn check_new_file(
             file.display()
         )));
     }
-    let Some(input) = plan.inputs.iter().find(|i| i.name == name) else {
+    let Some(input) = plan.sources.iter().find(|i| i.dataset == name) else {
         return Ok(());
     };
     let iopts = crate::intake::IngestOptions {
@@ -593,10 +593,10 @@ fn check_new_file(
 /// a predicate).
 fn names_column(step: &crate::plan::PlanStep, column: &str) -> bool {
     let mut todo: Vec<serde_json::Value> = Vec::new();
-    if let Some(op) = &step.apply {
+    if let Some(op) = &step.clean {
         todo.push(serde_json::to_value(op).unwrap_or_default());
     }
-    if let Some(rules) = &step.check {
+    if let Some(rules) = &step.inspect {
         todo.push(serde_json::to_value(rules).unwrap_or_default());
     }
     while let Some(v) = todo.pop() {
