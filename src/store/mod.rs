@@ -9,6 +9,7 @@
 pub mod audit;
 pub mod lineage;
 pub mod objects;
+pub mod segments;
 
 use std::fs;
 use std::path::{Path, PathBuf};
@@ -37,15 +38,16 @@ impl Store {
             return Err(ErrorKind::StoreExists { path: dir }.into());
         }
         fs::create_dir_all(project).map_err(|e| Error::io(project, e))?;
-        for sub in ["objects", "tmp"] {
+        for sub in [segments::SEGMENTS_DIR, "tmp"] {
             let p = dir.join(sub);
             fs::create_dir_all(&p).map_err(|e| Error::io(&p, e))?;
         }
         let readme = dir.join("README");
         fs::write(
             &readme,
-            "This folder is a sluice store: immutable objects named by their BLAKE3 hash, and the\n\
-             lineage database lineage.db. It holds copies of raw data, personal data included:\n\
+            "This folder is a sluice store: immutable objects named by their BLAKE3 hash, kept\n\
+             compressed (Zstandard) in the segment files under segments/, and the lineage\n\
+             database lineage.db. It holds copies of raw data, personal data included:\n\
              keep it where only the people allowed to read that data can read it.\n\
              Do not edit anything here by hand; run `sluice verify` to check it.\n",
         )
@@ -101,11 +103,11 @@ impl Store {
         // The store never follows a symbolic link out of `.sluice/`: a received store whose
         // database, object folder or temporary folder is a link could make sluice read or
         // write anywhere. (`.sluice` itself may be a link the user made.)
-        for part in [DB_FILE, "objects", "tmp"] {
+        for part in [DB_FILE, "objects", segments::SEGMENTS_DIR, "tmp", objects::WRITERS_LOCK] {
             let p = dir.join(part);
             if fs::symlink_metadata(&p).is_ok_and(|m| m.file_type().is_symlink()) {
                 return Err(ErrorKind::Database(format!(
-                    "{} is a symbolic link; a store's lineage.db, objects/ and tmp/ must be inside its folder, never links out of it; replace the link with what it points to, then run `sluice verify`",
+                    "{} is a symbolic link; a store's lineage.db, segments/, objects/, tmp/ and writers.lock must be inside its folder, never links out of it; replace the link with what it points to, then run `sluice verify`",
                     p.display()
                 ))
                 .into());
