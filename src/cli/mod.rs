@@ -565,6 +565,17 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             }
             Ok(if report.intact { 0 } else { 1 })
         }
+        Command::Reclaim { json } => {
+            let agent = resolve_agent(&cli, &cwd);
+            let mut store = open_store(&cli, &cwd)?;
+            let done = store.reclaim(&agent, &sluice::clock::now_rfc3339())?;
+            if *json {
+                render::json(&mut out, &done)?;
+            } else {
+                render::reclaim(&mut out, &done)?;
+            }
+            Ok(0)
+        }
         Command::Diff(a) => {
             let store = open_store(&cli, &cwd)?;
             let key = match &a.key {

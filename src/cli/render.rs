@@ -628,6 +628,21 @@ pub fn check(out: &mut impl Write, r: &sluice::checks::CheckReport) -> io::Resul
     writeln!(out, "the results are recorded on {}", r.version)
 }
 
+pub fn reclaim(out: &mut impl Write, r: &sluice::store::objects::Reclaimed) -> io::Result<()> {
+    writeln!(
+        out,
+        "reclaimed {}: {} removed, {} kept in {} (were {}, {}); {} of the earlier layout moved into a segment, {} removed",
+        plural(r.bytes_before.saturating_sub(r.bytes_after), "byte", "bytes"),
+        plural(r.objects_removed, "unreferenced object", "unreferenced objects"),
+        plural(r.objects_kept, "object", "objects"),
+        plural(r.segments_after, "segment", "segments"),
+        plural(r.segments_before, "segment", "segments"),
+        plural(r.bytes_before, "byte", "bytes"),
+        plural(r.loose_converted, "loose object", "loose objects"),
+        plural(r.temp_files_removed, "leftover temporary file", "leftover temporary files"),
+    )
+}
+
 pub fn verify(out: &mut impl Write, r: &VerifyReport) -> io::Result<()> {
     if r.intact {
         writeln!(

@@ -9,6 +9,7 @@
 pub mod audit;
 pub mod lineage;
 pub mod objects;
+pub mod reclaim;
 pub mod segments;
 
 use std::fs;
@@ -103,7 +104,13 @@ impl Store {
         // The store never follows a symbolic link out of `.sluice/`: a received store whose
         // database, object folder or temporary folder is a link could make sluice read or
         // write anywhere. (`.sluice` itself may be a link the user made.)
-        for part in [DB_FILE, "objects", segments::SEGMENTS_DIR, "tmp", objects::WRITERS_LOCK] {
+        for part in [
+            DB_FILE,
+            "objects",
+            segments::SEGMENTS_DIR,
+            "tmp",
+            objects::WRITERS_LOCK,
+        ] {
             let p = dir.join(part);
             if fs::symlink_metadata(&p).is_ok_and(|m| m.file_type().is_symlink()) {
                 return Err(ErrorKind::Database(format!(

@@ -298,6 +298,18 @@ impl FsBackend {
             }
         }
         let (loose, _) = list_loose(&sh.loose)?;
+        // A lone small segment with nothing to drop stays as it is.
+        if loose.is_empty() && rewrite.len() == 1 {
+            let entries = &rewrite[0].1;
+            let unique: HashSet<Hash> = entries.iter().map(|e| e.hash).collect();
+            if unique.len() == entries.len()
+                && entries
+                    .iter()
+                    .all(|e| live.contains(&e.hash) && !placed.contains(&e.hash))
+            {
+                rewrite.clear();
+            }
+        }
         for h in &loose {
             out.bytes_before += fs::symlink_metadata(sh.loose_path(h))?.len();
         }
@@ -361,7 +373,9 @@ impl FsBackend {
                 if hasher.finalize().as_bytes() != h.as_bytes() {
                     return Err(io::Error::new(
                         io::ErrorKind::InvalidData,
-                        format!("loose object {h} is damaged; run `sluice verify` before reclaiming"),
+                        format!(
+                            "loose object {h} is damaged; run `sluice verify` before reclaiming"
+                        ),
                     ));
                 }
                 w.end_object(h, &tick)?;
@@ -412,10 +426,7 @@ impl FsBackend {
             }
         })?;
         *sh.index.lock().unwrap_or_else(|p| p.into_inner()) = Index::default();
-        sh.tables
-            .lock()
-            .unwrap_or_else(|p| p.into_inner())
-            .clear();
+        sh.tables.lock().unwrap_or_else(|p| p.into_inner()).clear();
         for (path, r) in self.segments()? {
             out.segments_after += 1;
             out.bytes_after += fs::symlink_metadata(&path)?.len();
@@ -855,6 +866,8 @@ pub struct Objects {
     /// While a command stages its objects ([`Objects::begin_stage`]): new objects are written
     /// here, and reads look here first.
     stage: Option<Stage>,
+    /// Objects found intact by a check made earlier in this process.
+    intact: Mutex<HashSet<Hash>>,
 }
 
 /// A private folder of objects a command wrote but may still give up (a revert that turns out
@@ -937,6 +950,7 @@ impl Objects {
         Objects {
             backend,
             stage: None,
+            intact: Mutex::new(HashSet::new()),
         }
     }
 
@@ -1071,8 +1085,26 @@ impl Objects {
         })
     }
 
+    /// Notes that object `hash`, where the store reads it from, was just re-hashed and found
+    /// intact (by `verify`'s segment check), so that [`Objects::check`] need not hash it again.
+    pub fn note_intact(&self, hash: &Hash) {
+        self.intact
+            .lock()
+            .unwrap_or_else(|p| p.into_inner())
+            .insert(*hash);
+    }
+
     /// Re-hashes object `hash`; `Ok(None)` when intact, `Ok(Some(actual))` when damaged.
     pub fn check(&self, hash: &Hash) -> Result<Option<Hash>> {
+        if self.stage.is_none()
+            && self
+                .intact
+                .lock()
+                .unwrap_or_else(|p| p.into_inner())
+                .contains(hash)
+        {
+            return Ok(None);
+        }
         let r = self.open_raw(hash)?;
         let (actual, _) = crate::hash::hash_reader(r)
             .map_err(|e| crate::Error::io(&self.reader(hash).describe(hash), e))?;

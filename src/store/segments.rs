@@ -322,7 +322,9 @@ pub fn read_index(path: &Path) -> io::Result<Vec<Entry>> {
     for chunk in index[8..].chunks_exact(ENTRY_LEN) {
         let e = Entry::decode(chunk);
         let inside = e.offset >= HEADER_LEN
-            && e.offset.checked_add(e.stored).is_some_and(|end| end <= index_at)
+            && e.offset
+                .checked_add(e.stored)
+                .is_some_and(|end| end <= index_at)
             && e.stored >= 8 + SEEK_FOOTER_LEN;
         if !inside || e.frame_size == 0 || e.frame_size > MAX_FRAME_SIZE {
             return Err(bad(format!(
@@ -575,11 +577,17 @@ mod tests {
         w.finish(&no_tick).unwrap();
         let bytes = fs::read(&path).unwrap();
         fs::write(&path, &bytes[..bytes.len() - 3]).unwrap();
-        assert!(read_index(&path).unwrap_err().to_string().contains("truncated"));
+        assert!(read_index(&path)
+            .unwrap_err()
+            .to_string()
+            .contains("truncated"));
         let mut flipped = bytes.clone();
         let at = bytes.len() - TAIL_LEN as usize - 5;
         flipped[at] ^= 1;
         fs::write(&path, &flipped).unwrap();
-        assert!(read_index(&path).unwrap_err().to_string().contains("checksum"));
+        assert!(read_index(&path)
+            .unwrap_err()
+            .to_string()
+            .contains("checksum"));
     }
 }
