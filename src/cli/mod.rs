@@ -51,8 +51,29 @@ fn open_store(cli: &Cli, cwd: &Path) -> anyhow::Result<Store> {
     Ok(Store::discover(cli.store.as_deref(), cwd)?)
 }
 
+/// In debug builds only (the crash tests' binary): `SLUICE_TEST_IO_POINT=stop:N` ends the
+/// process at the Nth I/O point of its object writes as a kill would, `fail:N` makes that
+/// point fail (`store::objects::Countdown`).
+fn install_test_countdown() {
+    if !cfg!(debug_assertions) {
+        return;
+    }
+    let Ok(v) = std::env::var("SLUICE_TEST_IO_POINT") else {
+        return;
+    };
+    let Some((mode, n)) = v.split_once(':') else {
+        return;
+    };
+    if let Ok(n) = n.parse::<u64>() {
+        sluice::store::objects::install_countdown(std::sync::Arc::new(
+            sluice::store::objects::Countdown::new(n, mode == "stop"),
+        ));
+    }
+}
+
 /// Runs a parsed command line; returns the exit code.
 pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
+    install_test_countdown();
     let cwd = cwd()?;
     let stdout = std::io::stdout();
     let mut out = stdout.lock();

@@ -696,10 +696,14 @@ impl TempObject for SegTemp {
         ));
         sh.tick("rename")?;
         fs::rename(&self.path, &dest)?;
-        sh.tick("sync")?;
-        sync_dir(&sh.segments)?;
-        if created {
-            sync_dir(&sh.root)?;
+        let synced = sh
+            .tick("sync")
+            .and_then(|()| sync_dir(&sh.segments))
+            .and_then(|()| if created { sync_dir(&sh.root) } else { Ok(()) });
+        if let Err(e) = synced {
+            // Not known to be durable: the command fails, and leaves nothing behind.
+            let _ = fs::remove_file(&dest);
+            return Err(e);
         }
         let mut idx = sh.index.lock().unwrap_or_else(|p| p.into_inner());
         idx.known.insert(dest.clone());

@@ -125,10 +125,21 @@ impl SegmentWriter {
             .open(path)?;
         let mut head = MAGIC.to_vec();
         head.extend_from_slice(&FORMAT.to_le_bytes());
-        tick("write")?;
-        file.write_all(&head)?;
-        let mut compressor = zstd::bulk::Compressor::new(level)?;
-        compressor.set_parameter(zstd::stream::raw::CParameter::ChecksumFlag(true))?;
+        let started = tick("write")
+            .and_then(|()| file.write_all(&head))
+            .and_then(|()| zstd::bulk::Compressor::new(level))
+            .and_then(|mut c| {
+                c.set_parameter(zstd::stream::raw::CParameter::ChecksumFlag(true))?;
+                Ok(c)
+            });
+        let compressor = match started {
+            Ok(c) => c,
+            Err(e) => {
+                drop(file);
+                let _ = fs::remove_file(path);
+                return Err(e);
+            }
+        };
         Ok(SegmentWriter {
             file,
             pos: HEADER_LEN,
