@@ -138,6 +138,7 @@ impl Sandbox {
         let mut files = Vec::new();
         let root = self.path().join(".sluice");
         collect(&root.join("objects"), &mut files);
+        collect(&root.join("segments"), &mut files);
         collect(&root.join("tmp"), &mut files);
         files.sort();
         let log = self.ok(&["log", "--json"]);
