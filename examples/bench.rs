@@ -843,12 +843,20 @@ fn cat_compressed_vs_loose(ctx: &Ctx, file: &Path) -> Result<(Row, Row)> {
     sluice_quiet(
         ctx,
         &packed,
-        &["ingest".as_ref(), file.as_os_str(), "--as".as_ref(), "orders".as_ref()],
+        &[
+            "ingest".as_ref(),
+            file.as_os_str(),
+            "--as".as_ref(),
+            "orders".as_ref(),
+        ],
     )?;
     let loose = scratch.0.join("loose");
     fs::create_dir_all(loose.join(".sluice/objects"))?;
     for f in ["lineage.db", "README"] {
-        fs::copy(packed.join(".sluice").join(f), loose.join(".sluice").join(f))?;
+        fs::copy(
+            packed.join(".sluice").join(f),
+            loose.join(".sluice").join(f),
+        )?;
     }
     fs::create_dir_all(loose.join(".sluice/tmp"))?;
     {
@@ -863,7 +871,11 @@ fn cat_compressed_vs_loose(ctx: &Ctx, file: &Path) -> Result<(Row, Row)> {
     let mut rows = Vec::new();
     for (store, tool, key) in [
         (&packed, "sluice cat, compressed segments", "cat_compressed"),
-        (&loose, "sluice cat, uncompressed loose objects", "cat_loose"),
+        (
+            &loose,
+            "sluice cat, uncompressed loose objects",
+            "cat_loose",
+        ),
     ] {
         let out = scratch.0.join(format!("{key}.csv"));
         let samples = repeat(ctx.runs, |i| {
@@ -896,7 +908,13 @@ fn frame_sizes(file: &Path) -> Result<Value> {
     let data = fs::read(file)?;
     println!("  frames (1 thread, in process): level, frame size, ratio, compress MB/s, decode one frame");
     let mut out = Vec::new();
-    for (level, frame) in [(1, 64usize << 10), (1, 256 << 10), (1, 1 << 20), (3, 256 << 10), (3, 1 << 20)] {
+    for (level, frame) in [
+        (1, 64usize << 10),
+        (1, 256 << 10),
+        (1, 1 << 20),
+        (3, 256 << 10),
+        (3, 1 << 20),
+    ] {
         let mut c = zstd::bulk::Compressor::new(level)?;
         let t = Instant::now();
         let frames: Vec<Vec<u8>> = data
