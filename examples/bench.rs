@@ -823,7 +823,7 @@ fn stored_size(dot: &Path) -> Result<StoredSize> {
         index_rows: 0,
     };
     for v in store.lineage.all_versions().context("listing versions")? {
-        let h: sluice::hash::Hash = v.row_index.parse().context("a row index hash")?;
+        let h: sluice::hash::Hash = v.row_index.parse().map_err(|e| anyhow!("{e}"))?;
         if let Some((_, e)) = backend.locate(&h) {
             size.index_raw += e.raw;
             size.index_stored += e.stored;
@@ -865,7 +865,8 @@ fn cat_compressed_vs_loose(ctx: &Ctx, file: &Path) -> Result<(Row, Row)> {
             let dir = loose.join(".sluice/objects").join(&hex[..2]);
             fs::create_dir_all(&dir)?;
             let mut out = fs::File::create(dir.join(&hex[2..]))?;
-            store.objects.copy_to(&hex.parse()?, &mut out)?;
+            let h: sluice::hash::Hash = hex.parse().map_err(|e| anyhow!("{e}"))?;
+            store.objects.copy_to(&h, &mut out)?;
         }
     }
     let mut rows = Vec::new();
