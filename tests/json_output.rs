@@ -220,6 +220,7 @@ const CASES: &[(&str, &[&str], i32)] = &[
     ("replay", &["replay", "q3_by_shop", "--json"], 0),
     ("replay", &["replay", "reviewed_orders", "--json"], 1),
     ("verify", &["verify", "--json"], 0),
+    ("reclaim", &["reclaim", "--json"], 0),
     // Last, since it records: the same chain on the same export again prints a run; exit 1
     // because the failing `check` recorded above on all_orders@9 is part of the chain and
     // fails again (not a gate, so the run completes).
