@@ -774,7 +774,11 @@ impl ObjectBackend for FsBackend {
 
     fn open(&self, hash: &Hash) -> io::Result<Box<dyn Read + Send>> {
         if let Some(r) = self.shared.with_object(hash, |file, table| {
-            Ok(Box::new(segments::FrameReader::new(file, table)?) as Box<dyn Read + Send>)
+            if table.raw.len() > 2 {
+                Ok(Box::new(segments::AheadReader::new(file, table)?) as Box<dyn Read + Send>)
+            } else {
+                Ok(Box::new(segments::FrameReader::new(file, table)?) as Box<dyn Read + Send>)
+            }
         })? {
             return Ok(r);
         }
