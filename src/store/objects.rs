@@ -67,6 +67,13 @@ pub trait ObjectBackend: Send + Sync {
     fn hold_for_writing(&self) -> io::Result<()> {
         Ok(())
     }
+    /// Like `create_temp`, for an object read mostly a few bytes at a time by offset (a row
+    /// index): the real backend compresses it in frames of `frame_size` bytes. The default
+    /// ignores the frame size.
+    fn create_temp_framed(&self, frame_size: u32) -> io::Result<Box<dyn TempObject>> {
+        let _ = frame_size;
+        self.create_temp()
+    }
     /// Publishes every object of a finished segment file (a stage's); the default copies
     /// them through `create_temp`.
     fn adopt_segment(&self, path: &Path) -> io::Result<()> {
@@ -726,22 +733,27 @@ impl Drop for SegTemp {
 
 impl ObjectBackend for FsBackend {
     fn create_temp(&self) -> io::Result<Box<dyn TempObject>> {
+        self.create_temp_framed(self.shared.frame_size)
+    }
+
+    fn hold_for_writing(&self) -> io::Result<()> {
+        self.shared.hold_for_writing()
+    }
+
+    fn create_temp_framed(&self, frame_size: u32) -> io::Result<Box<dyn TempObject>> {
         let sh = &self.shared;
         sh.hold_for_writing()?;
         no_link(&sh.tmp)?;
         fs::create_dir_all(&sh.tmp)?;
         let path = sh.tmp.join(temp_name("obj"));
-        let writer = SegmentWriter::create(&path, sh.level, sh.frame_size, &|w| sh.tick(w))?;
+        let frame_size = frame_size.clamp(1, segments::MAX_FRAME_SIZE);
+        let writer = SegmentWriter::create(&path, sh.level, frame_size, &|w| sh.tick(w))?;
         Ok(Box::new(SegTemp {
             writer: Some(writer),
             path,
             shared: Arc::clone(sh),
             syncing: None,
         }))
-    }
-
-    fn hold_for_writing(&self) -> io::Result<()> {
-        self.shared.hold_for_writing()
     }
 
     fn read_at(&self, hash: &Hash, offset: u64, buf: &mut [u8]) -> io::Result<usize> {
@@ -1018,6 +1030,22 @@ impl Objects {
             temp: match &self.stage {
                 Some(st) => st.fs.create_temp()?,
                 None => self.backend.create_temp()?,
+            },
+            hasher: blake3::Hasher::new(),
+            n_bytes: 0,
+            unsynced: 0,
+        })
+    }
+
+    /// A writer for a row index: smaller frames ([`segments::INDEX_FRAME_SIZE`]), since a
+    /// trail reads two of its entries at a time and decodes the frame that holds them.
+    pub fn row_index_writer(&self) -> io::Result<ObjectWriter> {
+        self.backend.hold_for_writing()?;
+        let frame = segments::INDEX_FRAME_SIZE;
+        Ok(ObjectWriter {
+            temp: match &self.stage {
+                Some(st) => st.fs.create_temp_framed(frame)?,
+                None => self.backend.create_temp_framed(frame)?,
             },
             hasher: blake3::Hasher::new(),
             n_bytes: 0,
