@@ -314,7 +314,7 @@ pub fn read_index(path: &Path) -> io::Result<Vec<Entry>> {
         ));
     }
     let n_bytes = usize::try_from(index_len).map_err(|_| bad("index too large"))?;
-    if n_bytes < 8 || (n_bytes - 8) % ENTRY_LEN != 0 {
+    if n_bytes < 8 || !(n_bytes - 8).is_multiple_of(ENTRY_LEN) {
         return Err(bad("the index is not a whole number of entries"));
     }
     let mut index = vec![0u8; n_bytes];
