@@ -83,7 +83,7 @@ pub struct CheckReport {
 pub fn parse_rules(text: &str, path: &str) -> Result<Vec<Rule>> {
     let f: RuleFile = serde_json::from_str(text).map_err(|e| {
         Error::usage(format!(
-            "{path}: line {}, column {}: {}; see `sluice check --help` for the rule kinds",
+            "{path}: line {}, column {}: {}; see `sluice inspect --help` for the rule kinds",
             e.line(),
             e.column(),
             e.to_string()

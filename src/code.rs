@@ -1,35 +1,11 @@
-//! Code capture: what sluice learns from git about the people and code at work. This is the only
-//! module that uses git2. It reads the configured identity (user.name, user.email) of the
-//! repository around the working directory, falling back to the global configuration, and,
-//! for an outside command, the state of the code it ran: HEAD commit, branch, modified files.
-//! For `replay --allow-exec` it also writes out the tree of a recorded commit into a fresh
+//! Code capture: what sluice learns from git about the code at work. This is the only module
+//! that uses git2. For an outside command it reads the state of the code it ran: HEAD commit,
+//! branch, modified files (never any identity: who is acting comes from `agent`).
+//! For `reproduce --allow-exec` it also writes out the tree of a recorded commit into a fresh
 //! folder ([`checkout`]), blob by blob, so that the command runs on the code that was
 //! recorded; the user's working tree, index and HEAD are never touched.
 
 use std::path::Path;
-
-/// The git identity as `Name <email>` (or just the name, or just the email), if configured.
-pub fn git_identity(cwd: &Path) -> Option<String> {
-    let config = match git2::Repository::discover(cwd) {
-        // A repository's config includes the global and system levels beneath its own.
-        Ok(repo) => repo.config().ok(),
-        Err(_) => git2::Config::open_default().ok(),
-    }?;
-    let name = config
-        .get_string("user.name")
-        .ok()
-        .filter(|s| !s.trim().is_empty());
-    let email = config
-        .get_string("user.email")
-        .ok()
-        .filter(|s| !s.trim().is_empty());
-    match (name, email) {
-        (Some(n), Some(e)) => Some(format!("{} <{}>", n.trim(), e.trim())),
-        (Some(n), None) => Some(n.trim().to_string()),
-        (None, Some(e)) => Some(format!("<{}>", e.trim())),
-        (None, None) => None,
-    }
-}
 
 /// The state of the code around a working directory when an outside command ran: the git
 /// repository containing it, its HEAD commit and branch, and the tracked files that differ from

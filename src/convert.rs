@@ -122,7 +122,7 @@ pub fn locate(
     column: &str,
 ) -> Result<RawPlace> {
     let broken = |what: &str| -> Error {
-        ErrorKind::Database(format!(
+        ErrorKind::Inconsistent(format!(
             "the conversion record of an intake {what}; run `sluice verify`"
         ))
         .into()
@@ -493,7 +493,7 @@ fn write_table(
 /// header, null tokens), and returns the hash of the version that gives; nothing is kept.
 pub fn convert_again(store: &Store, step: &Step, conv: &Conversion) -> Result<String> {
     let broken = |what: String| -> Error {
-        ErrorKind::Database(format!(
+        ErrorKind::Inconsistent(format!(
             "step {} records a conversion that {what}; run `sluice verify`",
             step.id
         ))

@@ -503,7 +503,7 @@ pub fn run(dir: &Path, agent: &Agent) -> Result<DemoReport> {
 
     // Can last quarter's figures be reproduced exactly? Every step again from the raw exports.
     let replayed = (
-        "sluice replay q3_by_shop".to_string(),
+        "sluice reproduce q3_by_shop".to_string(),
         crate::replay::replay(
             &mut store,
             "q3_by_shop",
@@ -525,12 +525,12 @@ pub fn run(dir: &Path, agent: &Agent) -> Result<DemoReport> {
         done: report.done,
         next_commands: vec![
             format!("cd {}", dir.display()),
-            "sluice log all_orders".to_string(),
-            "sluice show all_orders".to_string(),
-            "sluice cat q3_by_shop".to_string(),
-            "sluice log reviewed_orders".to_string(),
-            "sluice diff all_orders reviewed_orders@1".to_string(),
-            "sluice cat quillby_orders@1 | head -5".to_string(),
+            "sluice timeline --dataset all_orders".to_string(),
+            "sluice about all_orders".to_string(),
+            "sluice retrieve q3_by_shop".to_string(),
+            "sluice timeline --dataset reviewed_orders".to_string(),
+            "sluice compare all_orders reviewed_orders:v1".to_string(),
+            "sluice retrieve quillby_orders:v1 | head -5".to_string(),
             "sluice export q3_by_shop --format plan".to_string(),
             "sluice verify".to_string(),
         ],
@@ -592,7 +592,7 @@ fn outside_work(
         agent: agent.clone(),
     };
     let shown = format!(
-        "sluice exec --input all_orders --output reviewed_orders=review/reviewed_orders.csv --why \"{why}\" -- {}",
+        "sluice capture --input all_orders --output reviewed_orders=review/reviewed_orders.csv --why \"{why}\" -- {}",
         command.join(" ")
     );
     let ran = match crate::exec::exec(store, &opts)? {
@@ -685,7 +685,7 @@ fn outside_work(
         (shown, ran),
         (
             format!(
-                "sluice ingest review/reviewed_orders_with_note.csv --as reviewed_orders --from reviewed_orders --why \"{why_edit}\""
+                "sluice receive review/reviewed_orders_with_note.csv --as reviewed_orders --hand-edit-of reviewed_orders --why \"{why_edit}\""
             ),
             *edit,
         ),

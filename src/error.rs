@@ -48,6 +48,10 @@ pub enum InputProblem {
     },
     NulByte,
     UnterminatedQuote,
+    /// A record (or the header) with more field bytes than the bound.
+    RecordTooLong {
+        max_bytes: u64,
+    },
     BlankHeaderNames {
         columns: Vec<u64>,
     },
@@ -68,6 +72,10 @@ pub enum InputProblem {
     ChangedWhileReading,
     /// A workbook the reader cannot open or read (not a workbook, damaged, a legacy format).
     UnreadableWorkbook {
+        detail: String,
+    },
+    /// A workbook past the bounds on its decompressed size or on a sheet's cells.
+    WorkbookTooLarge {
         detail: String,
     },
     /// A workbook with several sheets and no `--sheet`.
@@ -144,6 +152,12 @@ impl fmt::Display for InputProblem {
                 "a NUL byte (0x00); this looks like a binary file or UTF-16 text, not CSV \
                  (for UTF-16 pass --encoding utf-16le or utf-16be)"
             ),
+            RecordTooLong { max_bytes } => write!(
+                f,
+                "this record holds more than {} MiB, the bound on one record (header included) that keeps memory bounded; \
+                 if the file really holds records this long, raise it with --max-record-mib",
+                max_bytes.div_ceil(1 << 20)
+            ),
             UnterminatedQuote => write!(
                 f,
                 "a quoted field is never closed before the end of the file; add the closing \" or escape the inner quote as \"\""
@@ -191,6 +205,7 @@ impl fmt::Display for InputProblem {
                 f,
                 "the file changed while it was being read; take it in again once whatever writes it has finished"
             ),
+            WorkbookTooLarge { detail } => write!(f, "workbook refused: {detail}"),
             UnreadableWorkbook { detail } => write!(
                 f,
                 "cannot be read as a workbook ({detail}); expected an .xlsx or .ods file saved by a spreadsheet program"
@@ -249,6 +264,15 @@ impl fmt::Display for InputProblem {
     }
 }
 
+/// "a", "a and b", "a, b and c".
+fn join_and(items: &[String]) -> String {
+    match items {
+        [] => String::new(),
+        [one] => one.clone(),
+        [init @ .., last] => format!("{} and {last}", init.join(", ")),
+    }
+}
+
 fn join_u64(v: &[u64]) -> String {
     v.iter()
         .map(|n| n.to_string())
@@ -273,10 +297,12 @@ pub enum ErrorKind {
     },
     #[error("{path}: is a directory, not a file; name a file to take in", path = path.display())]
     IsDirectory { path: PathBuf },
-    #[error("no store here or in any parent folder of {start}; create one with `sluice init`, or point at one with --store PATH or SLUICE_STORE", start = start.display())]
+    #[error("no store here or in any parent folder of {start}; create one with `sluice setup`, or point at one with --store PATH or SLUICE_STORE", start = start.display())]
     NoStore { start: PathBuf },
-    #[error("no store at {path}; create one with `sluice init {project}`, or point --store at a folder that holds a .sluice store", path = path.display(), project = project.display())]
+    #[error("no store at {path}; create one with `sluice setup {project}`, or point --store at a folder that holds a sluice-store folder", path = path.display(), project = project.display())]
     NoStoreAt { path: PathBuf, project: PathBuf },
+    #[error("{path}: a store in the old hidden folder; rename it to sluice-store (`mv {path} {new}`), then run the command again", path = path.display(), new = project.join("sluice-store").display())]
+    LegacyStore { path: PathBuf, project: PathBuf },
     #[error("{path}: a store already exists here; use it as it is, or pick another folder", path = path.display())]
     StoreExists { path: PathBuf },
     #[error("{path}: this store was written by a newer sluice (schema version {found}; this build knows up to {known}); upgrade sluice to use it", path = path.display())]
@@ -287,14 +313,30 @@ pub enum ErrorKind {
     },
     #[error("{path}: the lineage database cannot be read ({detail}); restore it from a backup (the objects beside it are plain files named by their BLAKE3 hash and can be checked on their own)", path = path.display())]
     CorruptDatabase { path: PathBuf, detail: String },
+    /// SQLite itself failed (a busy or read-only database, a failed migration).
     #[error("lineage database: {0}")]
-    Database(String),
+    Sqlite(String),
+    /// The store's records do not hold together (a row that names a missing step, a
+    /// provenance object that does not decode): damage, or a store edited by hand.
+    #[error("the store's records do not hold together: {0}")]
+    Inconsistent(String),
+    /// A condition sluice itself should never reach (a worker thread that panicked).
+    #[error("internal error: {0}; please report it with the command that was run")]
+    Internal(String),
     #[error("unknown version \"{reference}\"; {hint}")]
     UnknownRef { reference: String, hint: String },
-    #[error("version reference \"{reference}\" is ambiguous; it matches {}; use more hex digits", candidates.join(", "))]
+    #[error("{reference} matches {} versions: {}; give more digits or name one as NAME:vN", candidates.len(), candidates.join(", "))]
     AmbiguousRef {
         reference: String,
         candidates: Vec<String>,
+    },
+    #[error(
+        "the versions {} hold identical bytes ({reference}); name one as NAME:vN",
+        join_and(labels)
+    )]
+    SameBytes {
+        reference: String,
+        labels: Vec<String>,
     },
     #[error("invalid version reference \"{reference}\": {why}")]
     BadRef { reference: String, why: String },
@@ -385,6 +427,9 @@ impl Error {
             ErrorKind::ObjectCorrupt { .. }
             | ErrorKind::ObjectMissing { .. }
             | ErrorKind::CorruptDatabase { .. }
+            | ErrorKind::Sqlite(_)
+            | ErrorKind::Inconsistent(_)
+            | ErrorKind::Internal(_)
             | ErrorKind::Data(_) => 1,
             // A full disk is a failure of the system, not of the user's input.
             ErrorKind::Io { source, .. } if source.kind() == std::io::ErrorKind::StorageFull => 1,

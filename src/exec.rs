@@ -1,4 +1,4 @@
-//! Outside commands (`sluice exec`): running a program that sluice does not know on stored
+//! Outside commands (`sluice capture`): running a program that sluice does not know on stored
 //! versions, and recording what it wrote as new versions whose step is the command.
 //!
 //! Before the run each input version is copied to a file in a fresh folder under the store's
@@ -34,7 +34,7 @@ use crate::model::{Agent, StepKind, Version};
 use crate::refs;
 use crate::store::Store;
 
-/// What `sluice exec` was asked to do.
+/// What `sluice capture` was asked to do.
 #[derive(Debug, Clone)]
 pub struct ExecOptions {
     /// (placeholder name, version reference), in the order given.
@@ -160,7 +160,7 @@ impl Drop for TempFolder {
 fn check_options(opts: &ExecOptions) -> Result<()> {
     if opts.command.is_empty() || opts.command[0].is_empty() {
         return Err(Error::usage(
-            "give the command after `--`, e.g. sluice exec --input orders --output orders=out.csv --why \"...\" -- python3 clean.py {orders} out.csv",
+            "give the command after `--`, e.g. sluice capture --input orders --output orders=out.csv --why \"...\" -- python3 clean.py {orders} out.csv",
         ));
     }
     if opts.outputs.is_empty() {
@@ -236,7 +236,7 @@ pub fn exec(store: &mut Store, opts: &ExecOptions) -> Result<ExecOutcome> {
         let hash = v
             .hash
             .parse()
-            .map_err(|e: String| Error::from(ErrorKind::Database(e)))?;
+            .map_err(|e: String| Error::from(ErrorKind::Inconsistent(e)))?;
         store.objects.copy_to(&hash, &mut f)?;
         f.sync_all().map_err(|e| Error::io(&path, e))?;
         files.push((name.clone(), path));

@@ -131,7 +131,7 @@ pub fn explain(
         RowPick::Number(n) if *n >= 1 && *n <= v.n_rows => n - 1,
         RowPick::Number(n) => {
             return Err(Error::usage(format!(
-                "{} has data rows 1 to {}; there is no row {n} (rows count from 1 after the header, as `sluice cat {}` writes them)",
+                "{} has data rows 1 to {}; there is no row {n} (rows count from 1 after the header, as `sluice retrieve {}` writes them)",
                 v.label(),
                 v.n_rows,
                 v.label()
@@ -263,7 +263,7 @@ pub fn explain(
 }
 
 fn lost(v: &Version) -> Error {
-    ErrorKind::Database(format!(
+    ErrorKind::Inconsistent(format!(
         "the record of {} is incomplete; run `sluice verify`",
         v.label()
     ))

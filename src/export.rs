@@ -1,4 +1,4 @@
-//! Writing a version in another text format for `sluice cat --format`: canonical CSV, tab-
+//! Writing a version in another text format for `sluice retrieve --format`: canonical CSV, tab-
 //! separated values or JSON Lines. The stored bytes are never changed; these are renderings
 //! of the same rows.
 //!
@@ -43,7 +43,7 @@ fn tsv_field(v: &Version, row: Option<u64>, column: &str, field: &[u8]) -> Resul
             None => format!("the header name \"{column}\""),
         };
         return Err(ErrorKind::Data(format!(
-            "{} cannot be written as tab-separated values: {place} holds {what}, which the format has no way to write; use --format csv or --format jsonl, or replace it first (`sluice apply {} replace ...`)",
+            "{} cannot be written as tab-separated values: {place} holds {what}, which the format has no way to write; use --format csv or --format jsonl, or replace it first (`sluice clean {} replace ...`)",
             v.label(),
             v.dataset
         ))

@@ -120,7 +120,7 @@ pub fn load(store: &Store) -> Result<Lineage> {
 impl Lineage {
     fn node_of(&self, v: &Version) -> Result<NodeIndex> {
         self.versions.get(&v.label()).copied().ok_or_else(|| {
-            ErrorKind::Database(format!(
+            ErrorKind::Inconsistent(format!(
                 "{} is missing from the lineage graph; run `sluice verify`",
                 v.label()
             ))

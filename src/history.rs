@@ -1,37 +1,138 @@
-//! Looking at history: the steps of a store or of one dataset, newest first (`log`), and one
-//! version in full (`show`). Read-only queries that return plain data; rendering is the command
-//! line's job.
+//! Looking at history: the audit trail of steps in time order, oldest first, with filters
+//! (`timeline`), and one version in full (`about`). Read-only queries that return plain data;
+//! rendering is the command line's job.
 
 use serde::Serialize;
 
-use crate::error::Result;
-use crate::model::{ColumnProfile, Step, Version};
+use crate::error::{ErrorKind, Result};
+use crate::model::{Agent, ColumnProfile, Step, StepKind, Version};
 use crate::refs;
 use crate::store::Store;
 
-/// One entry of `sluice log`: a step and the versions it produced.
+/// One line of `sluice timeline`: a step, what it is called on screen, and the versions it made.
 #[derive(Debug, Clone, Serialize)]
-pub struct LogEntry {
+pub struct TimelineEntry {
+    /// The store-wide step number (the number every screen calls the step by).
+    pub number: i64,
+    /// The action as the command that records it is named: receive, clean, capture,
+    /// hand edit, withdraw, reproduce.
+    pub action: String,
+    /// Who acted, read back into name and e-mail address.
+    pub by: Agent,
     pub step: Step,
     pub produced: Vec<Version>,
 }
 
-/// The steps touching `dataset` (all steps when `None`), newest first.
-pub fn log(store: &Store, dataset: Option<&str>) -> Result<Vec<LogEntry>> {
-    if let Some(name) = dataset {
+/// Which steps `timeline` lists.
+#[derive(Debug, Clone, Default)]
+pub struct TimelineFilter {
+    /// Only steps that read or made versions of this dataset.
+    pub dataset: Option<String>,
+    /// Only steps by this person: their name or e-mail address, ignoring case.
+    pub by: Option<String>,
+    /// Only steps started at or after this time: `YYYY-MM-DD` or `YYYY-MM-DDTHH:MM:SSZ`.
+    pub since: Option<String>,
+    /// Only steps started at or before this time; a date includes its whole day.
+    pub until: Option<String>,
+    /// Only the latest N steps (still oldest first).
+    pub limit: Option<usize>,
+}
+
+/// The action name of a step kind, as the command that records it is named.
+pub fn action_of(kind: StepKind) -> &'static str {
+    match kind {
+        StepKind::Ingest => "receive",
+        StepKind::Operation => "clean",
+        StepKind::Command => "capture",
+        StepKind::HandEdit => "hand edit",
+        StepKind::Revert => "withdraw",
+        StepKind::Replay => "reproduce",
+    }
+}
+
+/// Checks a `--since`/`--until` value: an ISO 8601 calendar date or a UTC time to the second.
+fn time_bound(text: &str, option: &str) -> Result<String> {
+    let t = text.trim();
+    let b = t.as_bytes();
+    let date_ok = b.len() >= 10 && crate::clock::is_iso_date(&b[..10]);
+    let ok = date_ok
+        && (b.len() == 10
+            || (b.len() == 20
+                && b[10] == b'T'
+                && b[19] == b'Z'
+                && [13, 16].iter().all(|&i| b[i] == b':')
+                && [11, 12, 14, 15, 17, 18]
+                    .iter()
+                    .all(|&i| b[i].is_ascii_digit())));
+    if !ok {
+        return Err(ErrorKind::Usage(format!(
+            "{option} {text}: expected an ISO 8601 date (2026-10-01) or a UTC time (2026-10-01T09:00:00Z)"
+        ))
+        .into());
+    }
+    // A time compares to the second: the trailing `Z` is left out.
+    Ok(t.get(..19).unwrap_or(t).to_string())
+}
+
+/// The steps `filter` selects, oldest first, each with the versions it made.
+pub fn timeline(store: &Store, filter: &TimelineFilter) -> Result<Vec<TimelineEntry>> {
+    if let Some(name) = &filter.dataset {
         if store.lineage.dataset(name)?.is_none() {
             // Reuse the reference resolver's message, which lists the datasets.
             refs::resolve(&store.lineage, name)?;
         }
     }
-    let steps = store.lineage.steps(dataset)?;
+    let since = filter
+        .since
+        .as_deref()
+        .map(|t| time_bound(t, "--since"))
+        .transpose()?;
+    let until = filter
+        .until
+        .as_deref()
+        .map(|t| time_bound(t, "--until"))
+        .transpose()?;
+    let by = filter.by.as_deref().map(|b| b.trim().to_lowercase());
+    let mut steps = store.lineage.steps(filter.dataset.as_deref())?;
+    steps.reverse();
     let mut out = Vec::with_capacity(steps.len());
     for step in steps {
+        // Each bound compares as much of the time as it gives: a date its whole day, a time
+        // to the second (so `--until 2026-10-01` includes that day).
+        let at = step.started_at.as_str();
+        let cut = |b: &str| at.get(..b.len()).unwrap_or(at).to_string();
+        if since.as_deref().is_some_and(|s| cut(s).as_str() < s) {
+            continue;
+        }
+        if until.as_deref().is_some_and(|u| cut(u).as_str() > u) {
+            continue;
+        }
+        let agent = Agent::parse_identity(&step.agent, "store");
+        if let Some(b) = &by {
+            let name_matches = agent.name.to_lowercase() == *b;
+            let email_matches = agent
+                .email
+                .as_deref()
+                .is_some_and(|e| e.to_lowercase() == *b);
+            if !name_matches && !email_matches {
+                continue;
+            }
+        }
         let mut produced = Vec::new();
         for label in &step.outputs {
             produced.push(refs::resolve(&store.lineage, label)?);
         }
-        out.push(LogEntry { step, produced });
+        out.push(TimelineEntry {
+            number: step.id,
+            action: action_of(step.kind).to_string(),
+            by: agent,
+            step,
+            produced,
+        });
+    }
+    if let Some(n) = filter.limit {
+        let skip = out.len().saturating_sub(n);
+        out.drain(..skip);
     }
     Ok(out)
 }
@@ -57,11 +158,11 @@ pub struct CheckRecord {
     pub n_failing: u64,
     pub agent: String,
     pub checked_at: String,
-    /// Whether the check ran as a plan's gate (a failure stopped the run).
+    /// Whether the check ran at a plan's hold point (a failure stopped the run).
     pub gate: bool,
 }
 
-pub fn show(store: &Store, reference: &str) -> Result<VersionDetail> {
+pub fn about(store: &Store, reference: &str) -> Result<VersionDetail> {
     let version = refs::resolve(&store.lineage, reference)?;
     let profile = store.lineage.profiles(version.id)?;
     let step = store.lineage.step(version.step_id)?;
@@ -114,7 +215,7 @@ pub fn behind(store: &Store, version: &Version) -> Result<Vec<StepBehind>> {
     let mut out = Vec::with_capacity(ids.len());
     for id in ids {
         let step = store.lineage.step(id)?.ok_or_else(|| {
-            crate::Error::from(crate::error::ErrorKind::Database(format!(
+            crate::Error::from(ErrorKind::Inconsistent(format!(
                 "step {id} is missing from the database; run `sluice verify`"
             )))
         })?;

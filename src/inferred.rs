@@ -107,7 +107,7 @@ pub fn infer(
             .iter()
             .position(|h| *h == c.column)
             .ok_or_else(|| {
-                Error::from(ErrorKind::Database(format!(
+                Error::from(ErrorKind::Inconsistent(format!(
                     "the diff named a column \"{}\" that {} does not have",
                     c.column,
                     to.label()
@@ -210,10 +210,9 @@ pub fn record(
         let Some((version_id, step_id)) = id else {
             continue;
         };
-        let version = store
-            .lineage
-            .version_by_id(version_id)?
-            .ok_or_else(|| Error::from(ErrorKind::Database("the new version vanished".into())))?;
+        let version = store.lineage.version_by_id(version_id)?.ok_or_else(|| {
+            Error::from(ErrorKind::Inconsistent("the new version vanished".into()))
+        })?;
         out.push(RecordedSuccessor {
             version,
             from: s.from.clone(),
@@ -224,7 +223,7 @@ pub fn record(
     Ok(out)
 }
 
-/// What `sluice ingest FILE --from REF` did.
+/// What `sluice receive FILE --hand-edit-of REF` did.
 #[derive(Debug, Clone)]
 pub enum HandEditOutcome {
     Recorded {
@@ -280,7 +279,9 @@ pub fn ingest_hand_edit_from(
                 .lineage
                 .latest_version(&opts.dataset)?
                 .ok_or_else(|| {
-                    Error::from(ErrorKind::Database("the latest version vanished".into()))
+                    Error::from(ErrorKind::Inconsistent(
+                        "the latest version vanished".into(),
+                    ))
                 })?;
             Ok(HandEditOutcome::Unchanged {
                 version: Box::new(version),

@@ -33,7 +33,7 @@ use crate::table::rowindex::{self, RowEntry};
 use crate::table::stream::{encoding_for, read_full, Utf8Check};
 use crate::table::{for_each_record, RawRecord, ReadSettings, RecordStream};
 
-/// What `sluice ingest` was asked to do.
+/// What `sluice receive` was asked to do.
 #[derive(Debug, Clone)]
 pub struct IngestOptions {
     pub dataset: String,
@@ -254,7 +254,7 @@ pub fn ingest_from(
     match store.write(|tx| ready.commit(&store_dir, tx))? {
         Some((version_id, step_id)) => {
             let version = store.lineage.version_by_id(version_id)?.ok_or_else(|| {
-                Error::from(ErrorKind::Database("the new version vanished".into()))
+                Error::from(ErrorKind::Inconsistent("the new version vanished".into()))
             })?;
             Ok(IngestOutcome::Recorded {
                 version,
@@ -267,7 +267,9 @@ pub fn ingest_from(
                 .lineage
                 .latest_version(&opts.dataset)?
                 .ok_or_else(|| {
-                    Error::from(ErrorKind::Database("the latest version vanished".into()))
+                    Error::from(ErrorKind::Inconsistent(
+                        "the latest version vanished".into(),
+                    ))
                 })?;
             Ok(IngestOutcome::Unchanged { version })
         }
@@ -350,7 +352,11 @@ impl PreparedIngest {
 
     /// `name (hash)`, for messages before the version exists.
     pub fn label(&self) -> String {
-        format!("{} ({})", self.opts.dataset, &self.table_hex[..12])
+        format!(
+            "{} ({})",
+            self.opts.dataset,
+            crate::model::short_hash(&self.table_hex)
+        )
     }
 
     /// Makes the table and row index objects durable (they stay unreferenced until a commit)
@@ -541,6 +547,7 @@ fn run_pipeline(
         let settings = ReadSettings {
             delimiter: opts.delimiter,
             encoding,
+            max_record: Some(crate::table::stream::max_record_bytes()),
         };
         let has_header = opts.has_header;
         let reader = scope.spawn(move || -> Result<Option<ReadSide>> {
@@ -630,14 +637,14 @@ fn run_pipeline(
         let parsed = parse_side(objects, &store_dir, path, opts, rx, recycle_tx);
         let read = reader
             .join()
-            .map_err(|_| Error::from(ErrorKind::Database("the reading thread panicked".into())))?;
+            .map_err(|_| Error::from(ErrorKind::Internal("the reading thread panicked".into())))?;
         // The consuming side only saw records the reader had checked and parsed, so a problem
         // it found comes earlier in the file than the reader's: report it first.
         match (parsed, read) {
             (Err(e), _) => Err(e),
             (Ok(_), Err(e)) => Err(e),
             (Ok(Some(scan)), Ok(Some(read))) => Ok((read, scan)),
-            _ => Err(ErrorKind::Database("intake stopped without a reason".into()).into()),
+            _ => Err(ErrorKind::Internal("intake stopped without a reason".into()).into()),
         }
     })
 }
@@ -934,6 +941,7 @@ fn check_duplicate_keys(
     let settings = ReadSettings {
         delimiter: Some(scan.dialect.delimiter_byte()),
         encoding,
+        max_record: None,
     };
     let f = File::open(path).map_err(|e| Error::io(path, e))?;
     for_each_record(path, f, &settings, |r| {

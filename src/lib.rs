@@ -23,7 +23,7 @@
 //! use sluice::{intake, model::Agent, store::Store};
 //! let dir = tempfile::tempdir().unwrap();
 //! std::fs::write(dir.path().join("shops.csv"), "shop,city\nQuillby Cycle Mend,Quillby\n").unwrap();
-//! let agent = Agent { identity: "Robin Example <robin@example.org>".into(), source: "option".into() };
+//! let agent = Agent::new("Robin Example", Some("robin@example.org"), "option");
 //! let mut store = Store::init_recorded(dir.path(), &agent).unwrap();
 //! let opts = intake::IngestOptions {
 //!     dataset: "shops".into(), key: None, reason: Some("first export".into()), delimiter: None,
@@ -67,6 +67,7 @@ pub mod sheets;
 pub mod store;
 pub mod table;
 pub mod trace;
+pub mod upgrade;
 pub mod verify;
 
 pub use error::{Error, ErrorKind, InputProblem, Position, Result};

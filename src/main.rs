@@ -36,7 +36,7 @@ fn main() {
     let code = match cli::run(args) {
         Ok(code) => code,
         Err(err) => {
-            // A closed pipe (`sluice cat big | head`) is not an error worth a message.
+            // A closed pipe (`sluice retrieve big | head`) is not an error worth a message.
             // It may come wrapped in context (`output: ...`), so the whole chain is looked at.
             let closed_pipe = err.chain().any(|e| {
                 e.downcast_ref::<std::io::Error>()

@@ -138,7 +138,7 @@ pub struct Version {
     #[serde(skip)]
     pub id: i64,
     pub dataset: String,
-    /// 1-based number within the dataset (`orders@3`).
+    /// 1-based number within the dataset (`orders:v3`).
     pub seq: u64,
     /// BLAKE3 of the bytes, 64 hex digits: the version's name.
     pub hash: String,
@@ -156,10 +156,26 @@ pub struct Version {
 }
 
 impl Version {
-    /// `name@seq`, the way users refer to it.
+    /// `NAME:vN`, the way users refer to it.
     pub fn label(&self) -> String {
+        format!("{}:v{}", self.dataset, self.seq)
+    }
+
+    /// The subject of the audit entry that recorded this version: `name@seq`, the form the
+    /// chain has always held (kept so that old and new chains verify alike; never shown).
+    pub fn audit_subject(&self) -> String {
         format!("{}@{}", self.dataset, self.seq)
     }
+
+    /// The short form of the version's hash shown on screens: `blake3:` and 16 hex digits.
+    pub fn short_hash(&self) -> String {
+        short_hash(&self.hash)
+    }
+}
+
+/// `blake3:` and the first 16 hex digits of a full hash, as every screen shows one.
+pub fn short_hash(hex: &str) -> String {
+    format!("blake3:{}", hex.get(..16).unwrap_or(hex))
 }
 
 /// One activity that read versions and produced versions.
@@ -237,12 +253,52 @@ pub struct Drop {
     pub duplicate_of: Option<u64>,
 }
 
-/// An agent identity and where it came from.
+/// Who is acting (a W3C PROV agent): a person's name, their e-mail address if known, and
+/// where sluice learnt them.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
 pub struct Agent {
-    pub identity: String,
-    /// "option", "environment", "git", "os".
+    pub name: String,
+    pub email: Option<String>,
+    /// "option", "environment", "store", "os", or "sluice" for sluice's own work.
     pub source: String,
+}
+
+impl Agent {
+    pub fn new(name: &str, email: Option<&str>, source: &str) -> Agent {
+        Agent {
+            name: name.trim().to_string(),
+            email: email
+                .map(str::trim)
+                .filter(|e| !e.is_empty())
+                .map(str::to_string),
+            source: source.to_string(),
+        }
+    }
+
+    /// The identity as it is recorded and shown: `Ada Moss (ada@example.org)`, or the name alone.
+    pub fn identity(&self) -> String {
+        match &self.email {
+            Some(e) => format!("{} ({e})", self.name),
+            None => self.name.clone(),
+        }
+    }
+
+    /// Reads a recorded identity back into name and e-mail address: the current form
+    /// `Name (email)` and the form older stores wrote, `Name <email>`.
+    pub fn parse_identity(text: &str, source: &str) -> Agent {
+        let t = text.trim();
+        for (open, close) in [('(', ')'), ('<', '>')] {
+            if let Some(body) = t.strip_suffix(close) {
+                if let Some(i) = body.rfind(open) {
+                    let email = &body[i + open.len_utf8()..];
+                    if email.contains('@') && !email.contains(char::is_whitespace) {
+                        return Agent::new(&body[..i], Some(email), source);
+                    }
+                }
+            }
+        }
+        Agent::new(t, None, source)
+    }
 }
 
 /// Canonical JSON text of a value: object keys sorted, no insignificant white space. serde_json's

@@ -1,7 +1,7 @@
 //! Plans: a JSON list of steps that `sluice run` records one by one, and that `sluice export
 //! --format plan` writes back from the history of a version. A plan names its raw inputs, binds
 //! each to a file or a stored version when it runs, and then applies built-in operations and
-//! checks in order. Every step is recorded exactly as `sluice apply` and `sluice check` record
+//! checks in order. Every step is recorded exactly as `sluice clean` and `sluice inspect` record
 //! it; a run is only a sequence of such commands, so a failure keeps the steps done before it.
 //!
 //! Inside a plan, a name is a dataset name: a step `on` a name reads the version this run last
@@ -98,7 +98,7 @@ fn is_true(b: &bool) -> bool {
 pub struct PlanStep {
     /// The dataset (or any version reference) the step works on.
     pub on: String,
-    /// A built-in operation with its parameters, as `sluice apply` records them.
+    /// A built-in operation with its parameters, as `sluice clean` records them.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub apply: Option<Operation>,
     /// Rules to check, as in a rules file.
@@ -130,8 +130,22 @@ impl PlanStep {
     }
 }
 
+/// The most steps a plan may have: 10,000, far past any written by hand or exported from a
+/// history, so that a plan cannot make a run of unbounded length.
+pub const MAX_PLAN_STEPS: usize = 10_000;
+
+/// The largest plan text read: 16 MiB (every step of a plan is parsed before the first runs).
+pub const MAX_PLAN_BYTES: usize = 16 << 20;
+
 /// Reads a plan's text; errors name the line and column, or the step.
 pub fn parse(text: &str, path: &str) -> Result<Plan> {
+    if text.len() > MAX_PLAN_BYTES {
+        return Err(Error::usage(format!(
+            "{path}: the plan is {} bytes, more than the {} MiB a plan may be; split it into several plans",
+            text.len(),
+            MAX_PLAN_BYTES >> 20
+        )));
+    }
     let plan: Plan = serde_json::from_str(text).map_err(|e| {
         let what = e.to_string();
         let what = what.split(" at line").next().unwrap_or("malformed plan");
@@ -172,6 +186,12 @@ fn validate(plan: &Plan, path: &str) -> Result<()> {
     }
     if plan.steps.is_empty() {
         return Err(Error::usage(format!("{path}: the plan has no steps")));
+    }
+    if plan.steps.len() > MAX_PLAN_STEPS {
+        return Err(Error::usage(format!(
+            "{path}: the plan has {} steps, more than the {MAX_PLAN_STEPS} a plan may have; split it into several plans",
+            plan.steps.len()
+        )));
     }
     for (i, s) in plan.steps.iter().enumerate() {
         let at = |what: &str| Error::usage(format!("{path}: step {}: {what}", i + 1));
@@ -393,7 +413,7 @@ pub fn run(
                                 })
                                 .collect();
                             let error = Error::from(ErrorKind::Data(format!(
-                                "the gate on {} failed: {}; the results are recorded on the version (`sluice show {}`)",
+                                "the gate on {} failed: {}; the results are recorded on the version (`sluice about {}`)",
                                 report.version,
                                 failing.join(", "),
                                 report.version
@@ -531,7 +551,7 @@ fn output_name(store: &Store, step: &PlanStep) -> Result<String> {
         return Ok(n.clone());
     }
     Ok(match refs::resolve(&store.lineage, &step.on) {
-        // A reference to a stored version (`orders@2`, a hash) writes to its dataset; a bare
+        // A reference to a stored version (`orders:v2`, a hash) writes to its dataset; a bare
         // name is the dataset itself.
         Ok(v) if v.dataset != step.on => v.dataset,
         _ => step.on.clone(),
@@ -589,7 +609,9 @@ fn run_step(
             version.clone()
         }
         ApplyOutcome::Replayed { .. } => {
-            return Err(ErrorKind::Database("a plan step was replayed, not recorded".into()).into())
+            return Err(
+                ErrorKind::Inconsistent("a plan step was replayed, not recorded".into()).into(),
+            )
         }
     };
     current.insert(dataset, version);
@@ -720,7 +742,7 @@ fn checks_on(store: &Store, v: &Version) -> Result<Vec<PlanStep>> {
     let mut last: Option<(String, String)> = None;
     for (rule, _, _, agent, at, gate) in store.lineage.check_results(v.id)? {
         let rule: Rule = serde_json::from_str(&rule).map_err(|e| {
-            Error::from(ErrorKind::Database(format!(
+            Error::from(ErrorKind::Inconsistent(format!(
                 "a check on {} holds a rule this build cannot read ({e}); run `sluice verify`",
                 v.label()
             )))

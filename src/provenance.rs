@@ -217,7 +217,7 @@ struct Reader<'a> {
 
 impl Reader<'_> {
     fn bad(&self, why: &str) -> Error {
-        ErrorKind::Database(format!(
+        ErrorKind::Inconsistent(format!(
             "the provenance object {} is malformed at byte {} ({why}); run `sluice verify`",
             self.what, self.at
         ))
@@ -426,7 +426,7 @@ fn object_of(store: &Store, step_id: i64) -> Result<Option<(String, crate::hash:
         return Ok(None);
     };
     let hash = hex.parse().map_err(|e| {
-        ErrorKind::Database(format!(
+        ErrorKind::Inconsistent(format!(
             "step {step_id}: malformed provenance hash {hex}: {e}"
         ))
     })?;
@@ -633,7 +633,7 @@ fn changed_input(store: &Store, output: &Version) -> Result<Version> {
         .find(|(role, _)| role == "input")
         .map(|(_, v)| v)
         .ok_or_else(|| {
-            Error::from(ErrorKind::Database(format!(
+            Error::from(ErrorKind::Inconsistent(format!(
                 "the step that made {} records cell changes but no input; run `sluice verify`",
                 output.label()
             )))

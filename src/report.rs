@@ -62,7 +62,7 @@ pub struct Report {
     pub hashes: Hashes,
     pub verification: Verification,
     pub caution: String,
-    /// The lineage diagram (`sluice graph REF --format svg`); in the HTML only.
+    /// The lineage diagram (`sluice lineage REF --format svg`); in the HTML only.
     #[serde(skip)]
     pub lineage_svg: String,
 }
@@ -130,7 +130,7 @@ pub struct DropCount {
 #[derive(Debug, Clone, Serialize)]
 pub struct SampleChange {
     pub version: String,
-    /// 1-based data row of the output version, as `sluice cat` shows it.
+    /// 1-based data row of the output version, as `sluice retrieve` shows it.
     pub row: u64,
     pub column: String,
     pub old: Option<String>,
@@ -241,7 +241,7 @@ pub struct Verification {
 }
 
 /// Gathers the report of `reference`. Reads only, except that a replay may restore a missing
-/// intermediate object from recomputed bytes of the same hash (as `sluice replay` does).
+/// intermediate object from recomputed bytes of the same hash (as `sluice reproduce` does).
 pub fn build(store: &mut Store, reference: &str, opts: &ReportOptions) -> Result<Report> {
     let target = refs::resolve(&store.lineage, reference)?;
     let behind = history::behind(store, &target)?;

@@ -48,7 +48,7 @@ use crate::refs;
 use crate::store::Store;
 use crate::table::write::CanonicalWriter;
 
-/// What `sluice revert` was asked to do.
+/// What `sluice withdraw` was asked to do.
 #[derive(Debug, Clone)]
 pub struct RevertOptions {
     pub reason: String,
@@ -138,7 +138,7 @@ impl Origin {
 }
 
 fn db(msg: String) -> Error {
-    ErrorKind::Database(msg).into()
+    ErrorKind::Inconsistent(msg).into()
 }
 
 /// The input row an output row came from, through sorted runs.
@@ -245,7 +245,7 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
     })?;
     if reverted.kind == StepKind::Ingest {
         return Err(Error::usage(format!(
-            "{label} was taken in from a file, not made by a step; to stop using it, take in the right file with `sluice ingest FILE --as {}`",
+            "{label} was taken in from a file, not made by a step; to stop using it, take in the right file with `sluice receive FILE --as {}`",
             target.dataset
         )));
     }
@@ -258,7 +258,7 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
     let base = store
         .lineage
         .version_by_seq(&target.dataset, target.seq - 1)?
-        .ok_or_else(|| db(format!("{}@{} is missing", target.dataset, target.seq - 1)))?;
+        .ok_or_else(|| db(format!("{}:v{} is missing", target.dataset, target.seq - 1)))?;
     let reverted_inputs = store.lineage.step_input_versions(reverted.id)?;
     let Some(reverted_main) = reverted_inputs.iter().position(|(_, v)| v.id == base.id) else {
         return Err(Error::usage(format!(
@@ -300,11 +300,11 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
             StepKind::Operation | StepKind::HandEdit | StepKind::Command => {}
             other => {
                 return Err(Error::usage(format!(
-                    "{} was made by a {} step; revert it first (`sluice revert {}`), then this one",
-                    v.label(),
-                    other.as_str().replace('_', " "),
-                    v.label()
-                )))
+                "{} was made by a {} step; revert it first (`sluice withdraw {}`), then this one",
+                v.label(),
+                other.as_str().replace('_', " "),
+                v.label()
+            )))
             }
         }
         later.push(Later {
@@ -452,7 +452,7 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
     let downstream: Vec<String> = crate::graph::impact(store, &label)?
         .current
         .into_iter()
-        .filter(|l| l.split('@').next() != Some(target.dataset.as_str()))
+        .filter(|l| l.split(':').next() != Some(target.dataset.as_str()))
         .collect();
 
     // Everything in one transaction, with one audit entry.
@@ -541,7 +541,7 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
             tx.audit(&opts.agent, action, &label_now, &details, &ended_at)?;
             out.push(RevertedLink {
                 step: sid,
-                version: label_now,
+                version: format!("{dataset}:v{seq}"),
                 hash: p.hash.clone(),
                 rows: p.n_rows,
                 repeats_step: p.repeats_step,

@@ -140,7 +140,133 @@ pub fn cell_ref(sheet: &str, row: u32, col: u32) -> String {
     format!("{name}!{}{}", column_letters(col), row as u64 + 1)
 }
 
+/// The most bytes a workbook's parts may decompress to, all parts together: 128 MiB. A
+/// workbook is read whole (calamine builds the sheet in memory), so a small file whose XML
+/// inflates to gigabytes is refused before it is read; a sheet this large belongs in a CSV
+/// export, which intake reads as a stream.
+pub const MAX_WORKBOOK_XML_BYTES: u64 = 128 << 20;
+
+/// The most cells a sheet may span (its used range, rows times columns, for .xlsx also the
+/// cells written): 1,000,000.
+pub const MAX_SHEET_CELLS: u64 = 1_000_000;
+
+/// Measures the workbook's parts as they decompress (never trusting the sizes the archive
+/// declares) and, for .xlsx, the cells of every sheet and the range they span; refuses a
+/// workbook past [`MAX_WORKBOOK_XML_BYTES`] or a sheet past [`MAX_SHEET_CELLS`]. Memory: one
+/// 64 KiB buffer.
+fn check_bounds(bytes: &[u8], path: &Path) -> Result<()> {
+    use std::io::Read;
+    let refuse =
+        |detail: String| Error::input(path, None, InputProblem::WorkbookTooLarge { detail });
+    // Not a zip archive: calamine names the problem.
+    let Ok(mut zip) = zip::ZipArchive::new(Cursor::new(bytes)) else {
+        return Ok(());
+    };
+    let mut total = 0u64;
+    let mut buf = vec![0u8; 64 * 1024];
+    for i in 0..zip.len() {
+        let Ok(mut part) = zip.by_index(i) else {
+            return Ok(());
+        };
+        let name = part.name().to_string();
+        let sheet = name.starts_with("xl/worksheets/") && name.ends_with(".xml");
+        let mut cells = CellCount::default();
+        loop {
+            let n = match part.read(&mut buf) {
+                Ok(0) => break,
+                Ok(n) => n,
+                // A damaged part: calamine names the problem.
+                Err(_) => return Ok(()),
+            };
+            total += n as u64;
+            if total > MAX_WORKBOOK_XML_BYTES {
+                return Err(refuse(format!(
+                    "its parts decompress to more than {} MiB (the bound for a workbook, which is read whole); export the sheet as CSV and take that in",
+                    MAX_WORKBOOK_XML_BYTES >> 20
+                )));
+            }
+            if sheet {
+                cells.push(&buf[..n]);
+                if let Some(why) = cells.over() {
+                    return Err(refuse(format!(
+                        "{name}: {why}, more than the {MAX_SHEET_CELLS} cells a sheet may span; export the sheet as CSV and take that in"
+                    )));
+                }
+            }
+        }
+    }
+    Ok(())
+}
+
+/// Counts the cells (`<c ` elements) of a worksheet's XML fed piece by piece, and the range
+/// their references (`r="B7"`) span.
+#[derive(Default)]
+struct CellCount {
+    cells: u64,
+    /// The end of the last piece, for a tag cut between two pieces.
+    carry: Vec<u8>,
+    rows: Option<(u32, u32)>,
+    cols: Option<(u32, u32)>,
+}
+
+impl CellCount {
+    fn push(&mut self, piece: &[u8]) {
+        let mut text = std::mem::take(&mut self.carry);
+        text.extend_from_slice(piece);
+        // Tags that start in the last 64 bytes are read with the next piece.
+        let done = text.len().saturating_sub(64);
+        for at in memchr::memmem::find_iter(&text, b"<c ") {
+            if at >= done {
+                break;
+            }
+            self.cells += 1;
+            let tag = &text[at..text.len().min(at + 64)];
+            let Some(r) = memchr::memmem::find(tag, b" r=\"") else {
+                continue;
+            };
+            let refs = &tag[r + 4..];
+            let letters = refs.iter().take_while(|b| b.is_ascii_uppercase()).count();
+            let digits = refs[letters..]
+                .iter()
+                .take_while(|b| b.is_ascii_digit())
+                .count();
+            let col = std::str::from_utf8(&refs[..letters])
+                .ok()
+                .and_then(column_number);
+            let row = std::str::from_utf8(&refs[letters..letters + digits])
+                .ok()
+                .and_then(|d| d.parse::<u32>().ok());
+            if let (Some(c), Some(r)) = (col, row) {
+                let widen = |span: Option<(u32, u32)>, x: u32| {
+                    Some(span.map_or((x, x), |(a, b)| (a.min(x), b.max(x))))
+                };
+                self.rows = widen(self.rows, r);
+                self.cols = widen(self.cols, c);
+            }
+        }
+        self.carry = text[done..].to_vec();
+    }
+
+    fn over(&self) -> Option<String> {
+        if self.cells > MAX_SHEET_CELLS {
+            return Some(format!("it writes {} cells or more", self.cells));
+        }
+        if let (Some((r0, r1)), Some((c0, c1))) = (self.rows, self.cols) {
+            let span = u64::from(r1 - r0 + 1) * u64::from(c1 - c0 + 1);
+            if span > MAX_SHEET_CELLS {
+                return Some(format!(
+                    "its cells span {} rows by {} columns ({span} cells)",
+                    r1 - r0 + 1,
+                    c1 - c0 + 1
+                ));
+            }
+        }
+        None
+    }
+}
+
 fn open<'a>(bytes: &'a [u8], path: &Path) -> Result<Sheets<Cursor<&'a [u8]>>> {
+    check_bounds(bytes, path)?;
     open_workbook_auto_from_rs(Cursor::new(bytes)).map_err(|e| {
         Error::input(
             path,

@@ -22,7 +22,7 @@ use crate::table::rowindex;
 /// Which row to start from.
 #[derive(Debug, Clone)]
 pub enum RowPick {
-    /// A 1-based data row, as `sluice cat` shows it (the header not counted).
+    /// A 1-based data row, as `sluice retrieve` shows it (the header not counted).
     Number(u64),
     /// The one row whose columns hold these values.
     Key(Vec<(String, String)>),
@@ -76,7 +76,7 @@ pub enum End {
 
 #[derive(Debug, Clone, Serialize)]
 pub struct Branch {
-    /// "from column given_name of orders@3", "looked up in technicians@1".
+    /// "from column given_name of orders:v3", "looked up in technicians:v1".
     pub via: String,
     pub trail: Trail,
 }
@@ -151,7 +151,7 @@ pub fn row_of(store: &Store, v: &Version, row: &RowPick) -> Result<u64> {
         RowPick::Number(n) => {
             if *n == 0 || *n > v.n_rows {
                 return Err(Error::usage(format!(
-                    "{} has data rows 1 to {}; there is no row {n} (rows count from 1 after the header, as `sluice cat {}` writes them)",
+                    "{} has data rows 1 to {}; there is no row {n} (rows count from 1 after the header, as `sluice retrieve {}` writes them)",
                     v.label(),
                     v.n_rows,
                     v.label()
@@ -195,7 +195,7 @@ fn find_by_key(store: &Store, v: &Version, pairs: &[(String, String)]) -> Result
     match found.as_slice() {
         [one] => Ok(*one),
         [] => Err(Error::usage(format!(
-            "no row of {} has {what}; check the values with `sluice cat {}`",
+            "no row of {} has {what}; check the values with `sluice retrieve {}`",
             v.label(),
             v.label()
         ))),
@@ -253,7 +253,7 @@ impl Rows {
 
     fn cell(&mut self, store: &Store, v: &Version, row: u64, column: &str) -> Result<String> {
         let c = v.header.iter().position(|h| h == column).ok_or_else(|| {
-            Error::from(ErrorKind::Database(format!(
+            Error::from(ErrorKind::Inconsistent(format!(
                 "{} has no column \"{column}\"; run `sluice verify`",
                 v.label()
             )))
@@ -263,7 +263,7 @@ impl Rows {
 }
 
 fn missing_row(v: &Version, row: u64) -> Error {
-    ErrorKind::Database(format!(
+    ErrorKind::Inconsistent(format!(
         "{} has no data row {} in its row index; run `sluice verify`",
         v.label(),
         row + 1
@@ -273,7 +273,7 @@ fn missing_row(v: &Version, row: u64) -> Error {
 
 fn hash_of(hex: &str, v: &Version) -> Result<crate::hash::Hash> {
     hex.parse()
-        .map_err(|e: String| Error::from(ErrorKind::Database(format!("{}: {e}", v.label()))))
+        .map_err(|e: String| Error::from(ErrorKind::Inconsistent(format!("{}: {e}", v.label()))))
 }
 
 /// The row index entry of `row` and the bytes of its record (with its line ending), read in
@@ -319,7 +319,7 @@ fn parse_one(
     p.feed(bytes, &mut keep)?;
     let _ = p.finish(&mut keep)?;
     fields.ok_or_else(|| {
-        ErrorKind::Database(format!(
+        ErrorKind::Inconsistent(format!(
             "a record of {} does not parse where its row index points; run `sluice verify`",
             v.label()
         ))
@@ -350,7 +350,7 @@ fn follow(
     let (mut v, mut r, mut col) = (start, start_row, start_column);
     loop {
         let step = store.lineage.step(v.step_id)?.ok_or_else(|| {
-            Error::from(ErrorKind::Database(format!(
+            Error::from(ErrorKind::Inconsistent(format!(
                 "the step that made {} is missing; run `sluice verify`",
                 v.label()
             )))
@@ -396,7 +396,7 @@ fn follow(
                 .iter()
                 .find(|(_, t)| t.id == *table_id)
                 .map(|(_, t)| t.clone())
-                .ok_or_else(|| Error::from(ErrorKind::Database("a lost table input".into())))?;
+                .ok_or_else(|| Error::from(ErrorKind::Inconsistent("a lost table input".into())))?;
             if step.operation.as_deref() == Some("lookup") {
                 let Ok(Operation::Lookup { on, table_on, .. }) =
                     serde_json::from_value::<Operation>(step.params.clone())

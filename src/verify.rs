@@ -14,7 +14,7 @@ use crate::table::rowindex;
 pub struct Problem {
     /// "object_missing", "object_damaged", "object_size", "row_index", "database", "audit",
     /// "provenance", "cell_change", "audit_mismatch", "stray_file", "segment_damaged",
-    /// "segment_object", "segment_index".
+    /// "segment_object", "segment_index", "profile" (`--deep`).
     pub kind: String,
     /// What is affected: an object hash, a table, an audit sequence number.
     pub subject: String,
@@ -36,6 +36,14 @@ pub struct VerifyReport {
     pub unreferenced_objects: u64,
     /// Temporary files left by interrupted commands (harmless).
     pub leftover_temp_files: u64,
+    /// Audit entries written before entries committed to every row their command wrote (by an
+    /// earlier sluice); they commit to their own fields and to the version, step, row index and
+    /// provenance they name. Always the first entries of the chain.
+    pub entries_without_row_commitments: u64,
+    /// Database rows written in that time, which no row commitment covers.
+    pub rows_before_commitments: u64,
+    /// With `--deep`: versions whose row index and profile were computed again from their bytes.
+    pub versions_recomputed: u64,
     pub problems: Vec<Problem>,
 }
 
@@ -48,21 +56,37 @@ fn problem(kind: &str, subject: impl Into<String>, detail: impl Into<String>) ->
 }
 
 pub fn verify(store: &Store) -> Result<VerifyReport> {
-    store.lineage.snapshot(|| verify_snapshot(store))
+    verify_with(store, false)
+}
+
+/// [`verify`], and with `deep` also every version's row index and profile computed again from
+/// its bytes and compared with what is stored ([`deep_problems`]).
+pub fn verify_with(store: &Store, deep: bool) -> Result<VerifyReport> {
+    store.lineage.snapshot(|| {
+        let mut report = verify_snapshot(store)?;
+        if deep {
+            let (problems, n) = deep_problems(store, &report)?;
+            report.versions_recomputed = n;
+            report.problems.extend(problems);
+            report.intact = report.problems.is_empty();
+        }
+        Ok(report)
+    })
 }
 
 fn verify_snapshot(store: &Store) -> Result<VerifyReport> {
     let mut problems = Vec::new();
-    for p in store.lineage.integrity_problems()? {
+    let mut un = Unreadable::default();
+    for p in un.or_default(store.lineage.integrity_problems()) {
         problems.push(problem("database", "lineage.db", p));
     }
-    for p in store.lineage.consistency_problems()? {
+    for p in un.or_default(store.lineage.consistency_problems()) {
         problems.push(problem("database", "lineage.db", p));
     }
 
     problems.extend(segment_problems(store)?);
 
-    let recorded = store.lineage.objects()?;
+    let recorded = un.or_default(store.lineage.objects());
     let mut bytes_checked = 0u64;
     let mut damaged = std::collections::HashSet::new();
     for (hex, kind, n_bytes) in &recorded {
@@ -117,7 +141,7 @@ fn verify_snapshot(store: &Store) -> Result<VerifyReport> {
         }
     }
 
-    let versions = store.lineage.all_versions()?;
+    let versions = un.or_default(store.lineage.all_versions());
     for v in &versions {
         if damaged.contains(&v.row_index) {
             continue;
@@ -141,7 +165,7 @@ fn verify_snapshot(store: &Store) -> Result<VerifyReport> {
 
     // Each step's provenance object reads back and points only at rows its versions have.
     for v in &versions {
-        let Some(hex) = store.lineage.step_provenance(v.step_id)? else {
+        let Some(hex) = un.or_default(store.lineage.step_provenance(v.step_id)) else {
             continue;
         };
         if damaged.contains(&hex) {
@@ -154,7 +178,7 @@ fn verify_snapshot(store: &Store) -> Result<VerifyReport> {
             .objects
             .read_all(&h)
             .and_then(|data| crate::provenance::decode(&data, &hex));
-        let inputs = store.lineage.step_input_versions(v.step_id)?;
+        let inputs = un.or_default(store.lineage.step_input_versions(v.step_id));
         let input_rows = inputs
             .iter()
             .find(|(role, _)| role == "input")
@@ -199,9 +223,9 @@ fn verify_snapshot(store: &Store) -> Result<VerifyReport> {
         if damaged.contains(&v.hash) {
             continue;
         }
-        let Some((recorded, actual)) =
-            crate::provenance::legacy_changes_as_versions_hold_them(store, v)?
-        else {
+        let Some((recorded, actual)) = un.or_default(
+            crate::provenance::legacy_changes_as_versions_hold_them(store, v),
+        ) else {
             continue;
         };
         for (i, r) in recorded.iter().enumerate() {
@@ -227,12 +251,27 @@ fn verify_snapshot(store: &Store) -> Result<VerifyReport> {
         }
     }
 
-    let entries = store.lineage.audit_entries()?;
+    let entries = un.or_default(store.lineage.audit_entries());
     for p in audit::chain_problems(&entries) {
         let subject = p.split(':').next().unwrap_or("audit").to_string();
         problems.push(problem("audit", subject, p));
     }
-    problems.extend(audit_against_records(store, &versions, &entries)?);
+    problems.extend(un.or_default(audit_against_records(store, &versions, &entries)));
+    let rows = un
+        .or_default(row_commitments(store, &entries).map(Some))
+        .unwrap_or(RowCheck {
+            problems: Vec::new(),
+            legacy_entries: 0,
+            legacy_rows: 0,
+        });
+    problems.extend(rows.problems);
+    for e in un.errors {
+        problems.push(problem(
+            "database",
+            "lineage.db",
+            format!("the database cannot be read as sluice wrote it: {e}"),
+        ));
+    }
 
     let recorded_set: std::collections::HashSet<&str> =
         recorded.iter().map(|(h, _, _)| h.as_str()).collect();
@@ -258,7 +297,7 @@ fn verify_snapshot(store: &Store) -> Result<VerifyReport> {
 
     Ok(VerifyReport {
         intact: problems.is_empty(),
-        schema_version: store.lineage.schema_version()?,
+        schema_version: store.lineage.schema_version().unwrap_or(0),
         objects_checked: recorded.len() as u64,
         bytes_checked,
         versions_checked: versions.len() as u64,
@@ -266,6 +305,9 @@ fn verify_snapshot(store: &Store) -> Result<VerifyReport> {
         audit_head: entries.last().map(|e| e.hash.clone()),
         unreferenced_objects: unreferenced,
         leftover_temp_files: leftover,
+        entries_without_row_commitments: rows.legacy_entries,
+        rows_before_commitments: rows.legacy_rows,
+        versions_recomputed: 0,
         problems,
     })
 }
@@ -301,7 +343,7 @@ fn audit_against_records(
         if e.action == "check" {
             continue;
         }
-        let Some(v) = versions.iter().find(|v| v.label() == e.subject) else {
+        let Some(v) = versions.iter().find(|v| v.audit_subject() == e.subject) else {
             out.push(problem(
                 "audit_mismatch",
                 e.subject.clone(),
@@ -477,4 +519,290 @@ fn segment_problems(store: &Store) -> Result<Vec<Problem>> {
         }
     }
     Ok(problems)
+}
+
+/// Errors met while reading the database, which `verify` reports as damage (a dropped table,
+/// malformed JSON in a column) instead of stopping at the first.
+#[derive(Default)]
+struct Unreadable {
+    errors: Vec<String>,
+}
+
+impl Unreadable {
+    fn or_default<T: Default>(&mut self, r: Result<T>) -> T {
+        match r {
+            Ok(v) => v,
+            Err(e) => {
+                let text = e.to_string();
+                if !self.errors.contains(&text) {
+                    self.errors.push(text);
+                }
+                T::default()
+            }
+        }
+    }
+}
+
+/// What [`row_commitments`] found.
+struct RowCheck {
+    problems: Vec<Problem>,
+    legacy_entries: u64,
+    legacy_rows: u64,
+}
+
+/// Every row of every table held against the audit entries that commit to it (see
+/// `store::audit`): each selector's rows read now must hash to the digest of the latest entry
+/// that names the same selector (a dataset's declared key may change later, so an earlier
+/// entry's digest of the same rows is superseded), and every row must be named by some entry,
+/// unless it predates the commitments (a store written by an earlier build: its entries and
+/// rows up to the bound the first committing entry recorded). Tables, views and triggers that
+/// are not sluice's are named too.
+fn row_commitments(store: &Store, entries: &[crate::model::AuditEntry]) -> Result<RowCheck> {
+    use std::collections::{BTreeMap, HashMap, HashSet};
+    let mut out = Vec::new();
+    let mut latest: BTreeMap<audit::Selector, (u64, String, u64, String)> = BTreeMap::new();
+    let mut legacy_entries = 0u64;
+    let mut first_committed: Option<serde_json::Value> = None;
+    for e in entries {
+        let details: serde_json::Value = serde_json::from_str(&e.details).unwrap_or_default();
+        let Some(rows) = details.get("rows").and_then(|r| r.as_array()) else {
+            if first_committed.is_none() {
+                legacy_entries += 1;
+            } else {
+                out.push(problem(
+                    "audit",
+                    format!("audit entry {}", e.seq),
+                    format!(
+                        "audit entry {}: ({} {}) commits to none of the rows its command wrote, though entries before it do (it was not written by this sluice)",
+                        e.seq, e.action, e.subject
+                    ),
+                ));
+            }
+            continue;
+        };
+        if first_committed.is_none() {
+            first_committed = Some(details.clone());
+        }
+        for r in rows {
+            let Some((sel, n, digest)) = audit::Selector::from_json(r) else {
+                out.push(problem(
+                    "audit",
+                    format!("audit entry {}", e.seq),
+                    format!(
+                        "audit entry {}: names rows sluice never commits to ({r})",
+                        e.seq
+                    ),
+                ));
+                continue;
+            };
+            latest.insert(
+                sel,
+                (e.seq, format!("{} {}", e.action, e.subject), n, digest),
+            );
+        }
+    }
+    let mut covered: HashMap<&str, HashSet<i64>> = HashMap::new();
+    let mut unreadable: HashSet<&str> = HashSet::new();
+    for (sel, (seq, what, n, digest)) in &latest {
+        let rows = match store.lineage.selected_rows(sel) {
+            Ok(rows) => rows,
+            Err(e) => {
+                if unreadable.insert(sel.table) {
+                    out.push(problem(
+                        "database",
+                        sel.table,
+                        format!(
+                            "the table {} cannot be read ({e}); audit entries commit to its rows",
+                            sel.table
+                        ),
+                    ));
+                }
+                continue;
+            }
+        };
+        if audit::rows_digest(sel, &rows) != *digest {
+            out.push(problem(
+                "audit_mismatch",
+                format!("{} {}", sel.table, describe_range(sel)),
+                format!(
+                    "the rows of {} whose {} is {} ({} now) differ from what audit entry {seq} ({what}) committed to ({n}): a field was edited, or a row added or removed",
+                    sel.table,
+                    sel.by,
+                    describe_range(sel),
+                    rows.len(),
+                ),
+            ));
+        }
+        covered
+            .entry(sel.table)
+            .or_default()
+            .extend(rows.iter().map(|(id, _)| *id));
+    }
+    let bound = |table: &str| -> i64 {
+        match &first_committed {
+            None => i64::MAX,
+            Some(d) => d
+                .get("legacy_rows")
+                .and_then(|b| b.get(table))
+                .and_then(serde_json::Value::as_i64)
+                .unwrap_or(0),
+        }
+    };
+    let mut legacy_rows = 0u64;
+    let present = store.lineage.schema_objects()?;
+    for table in audit::TABLES {
+        if unreadable.contains(table) {
+            continue;
+        }
+        if !present.iter().any(|(t, n)| t == "table" && n == table) {
+            out.push(problem(
+                "database",
+                *table,
+                format!("the table {table} is missing from the database (it was dropped)"),
+            ));
+            continue;
+        }
+        let ids = store.lineage.rowids(table)?;
+        let seen = covered.get(table);
+        let limit = bound(table);
+        let mut stray = Vec::new();
+        for id in ids {
+            if seen.is_some_and(|s| s.contains(&id)) {
+                continue;
+            }
+            if id <= limit {
+                legacy_rows += 1;
+            } else {
+                stray.push(id);
+            }
+        }
+        if !stray.is_empty() {
+            let shown: Vec<String> = stray.iter().take(10).map(|i| i.to_string()).collect();
+            out.push(problem(
+                "audit_mismatch",
+                *table,
+                format!(
+                    "{} row(s) of {table} are committed to by no audit entry (rowid {}{}): added outside sluice",
+                    stray.len(),
+                    shown.join(", "),
+                    if stray.len() > 10 { ", ..." } else { "" }
+                ),
+            ));
+        }
+    }
+    for (kind, name) in present {
+        if kind == "table" && (name == "audit_log" || audit::TABLES.contains(&name.as_str())) {
+            continue;
+        }
+        out.push(problem(
+            "database",
+            name.clone(),
+            format!("the database holds a {kind} {name} that sluice never made"),
+        ));
+    }
+    Ok(RowCheck {
+        problems: out,
+        legacy_entries,
+        legacy_rows,
+    })
+}
+
+fn describe_range(sel: &audit::Selector) -> String {
+    let key = |k: &audit::Key| match k {
+        audit::Key::Int(i) => i.to_string(),
+        audit::Key::Text(t) => t.clone(),
+    };
+    if sel.from == sel.to {
+        key(&sel.from)
+    } else {
+        format!("{}..{}", key(&sel.from), key(&sel.to))
+    }
+}
+
+/// The deep check: each version whose objects read back intact is read again, and its row
+/// index (each row's byte offset and fingerprint) and column profile are computed as intake and
+/// the writer compute them, then compared with the stored row index object and the
+/// `column_profiles` rows. A difference means the store was written by something else than
+/// sluice, or by a sluice with a bug: the row commitments only prove the rows are the ones
+/// recorded, not that they were right. Returns the problems and the number of versions done.
+fn deep_problems(store: &Store, report: &VerifyReport) -> Result<(Vec<Problem>, u64)> {
+    use std::path::Path;
+    let mut out = Vec::new();
+    let mut done = 0u64;
+    let damaged: std::collections::HashSet<&str> =
+        report.problems.iter().map(|p| p.subject.as_str()).collect();
+    for v in store.lineage.all_versions()? {
+        if damaged.contains(v.hash.as_str()) || damaged.contains(v.row_index.as_str()) {
+            continue;
+        }
+        let Ok(hash) = v.hash.parse::<Hash>() else {
+            continue;
+        };
+        let stored = match crate::diff::read::row_index(&store.objects, &v) {
+            Ok(x) => x,
+            Err(e) => {
+                out.push(problem("row_index", v.label(), e.to_string()));
+                continue;
+            }
+        };
+        let settings = crate::table::stream::ReadSettings::for_dialect(&v.dialect)?;
+        let mut profiler = crate::table::profile::Profiler::new(v.header.len(), &v.null_tokens);
+        let mut header_seen = !v.dialect.has_header;
+        let (mut fps, mut offsets) = (Vec::new(), Vec::new());
+        let mut scratch = Vec::new();
+        let read = store.objects.open_raw(&hash).and_then(|src| {
+            crate::table::stream::for_each_record(Path::new(&v.label()), src, &settings, |r| {
+                if !header_seen {
+                    header_seen = true;
+                    return Ok(());
+                }
+                profiler.observe(r.iter());
+                offsets.push(r.byte);
+                fps.push(rowindex::fingerprint(&r, &mut scratch));
+                Ok(())
+            })
+        });
+        if let Err(e) = read {
+            out.push(problem("row_index", v.label(), e.to_string()));
+            continue;
+        }
+        done += 1;
+        if (fps.as_slice(), offsets.as_slice()) != (stored.0.as_slice(), stored.1.as_slice()) {
+            let first = (0..fps.len().max(stored.0.len()))
+                .find(|&i| fps.get(i) != stored.0.get(i) || offsets.get(i) != stored.1.get(i))
+                .unwrap_or(0);
+            out.push(problem(
+                "row_index",
+                v.label(),
+                format!(
+                    "the row index {} does not match the version's bytes read again ({} rows read, {} indexed; first difference at data row {})",
+                    v.row_index,
+                    fps.len(),
+                    stored.0.len(),
+                    first + 1
+                ),
+            ));
+        }
+        let computed = profiler.finish(&v.header);
+        let recorded = store.lineage.profiles(v.id)?;
+        if computed != recorded {
+            let which: Vec<String> = computed
+                .iter()
+                .zip(recorded.iter())
+                .filter(|(a, b)| a != b)
+                .map(|(a, _)| a.name.clone())
+                .collect();
+            out.push(problem(
+                "profile",
+                v.label(),
+                format!(
+                    "the recorded column profile does not match the version's bytes read again (columns: {}; {} profiled, {} recorded)",
+                    if which.is_empty() { "-".to_string() } else { which.join(", ") },
+                    computed.len(),
+                    recorded.len()
+                ),
+            ));
+        }
+    }
+    Ok((out, done))
 }

@@ -1,5 +1,6 @@
-//! Who is recorded as acting: --agent, then SLUICE_AGENT, then git's configured user (the
-//! repository's config, then the global one), then the operating system user.
+//! Who is recorded as acting: --person and --email, then SLUICE_PERSON and SLUICE_EMAIL, then
+//! the store's setting (`sluice identity`, kept in the audit chain), then the operating system
+//! user. git's configured user is never read, even when one is configured.
 
 mod common;
 
@@ -7,23 +8,25 @@ use std::process::Command;
 
 use common::*;
 
-fn git(dir: &std::path::Path, args: &[&str]) {
-    let st = Command::new("git")
-        .args(args)
-        .current_dir(dir)
-        .env("HOME", dir)
-        .env("GIT_CONFIG_NOSYSTEM", "1")
-        .status()
-        .expect("git is needed for this test");
-    assert!(st.success(), "git {args:?} failed");
-}
-
-fn recorded_agent(s: &Sandbox, home: &std::path::Path, envs: &[(&str, &str)]) -> String {
+/// Runs `receive` of new bytes with exactly the identity sources given, and returns who the
+/// step was recorded for.
+fn recorded_agent(
+    s: &Sandbox,
+    home: &std::path::Path,
+    args: &[&str],
+    envs: &[(&str, &str)],
+) -> String {
     // New bytes each time, so that every call records a step.
-    let n = s.json(&["log", "--json"]).as_array().map_or(0, |a| a.len());
+    let n = s
+        .json(&["timeline", "--json"])
+        .as_array()
+        .map_or(0, |a| a.len());
     s.file("a.csv", format!("id\n{n}\n"));
-    let mut c = s.command(&["ingest", "a.csv", "--as", "things"]);
-    c.env_remove("SLUICE_AGENT")
+    let mut all = vec!["receive", "a.csv", "--as", "things"];
+    all.extend_from_slice(args);
+    let mut c = s.command(&all);
+    c.env_remove("SLUICE_PERSON")
+        .env_remove("SLUICE_EMAIL")
         .env("HOME", home)
         .env("XDG_CONFIG_HOME", home.join(".config"))
         .env("GIT_CONFIG_NOSYSTEM", "1")
@@ -39,49 +42,92 @@ fn recorded_agent(s: &Sandbox, home: &std::path::Path, envs: &[(&str, &str)]) ->
         "{}",
         String::from_utf8_lossy(&out.stderr)
     );
-    let log = s.json(&["log", "--json"]);
-    log[0]["step"]["agent"].as_str().unwrap().to_string()
+    // The timeline is oldest first: the step just recorded is the last.
+    let log = s.json(&["timeline", "--json"]);
+    let last = log.as_array().unwrap().last().unwrap().clone();
+    last["step"]["agent"].as_str().unwrap().to_string()
 }
 
 #[test]
-fn git_repository_identity_is_used_when_nothing_else_is_given() {
+fn identity_comes_from_options_environment_store_then_the_os_user() {
     let s = Sandbox::with_store();
     let home = tempfile::tempdir().unwrap();
-    git(s.path(), &["init", "-q"]);
-    git(s.path(), &["config", "user.name", "Pat Mechanic"]);
-    git(s.path(), &["config", "user.email", "pat@example.org"]);
-    assert_eq!(
-        recorded_agent(&s, home.path(), &[]),
-        "Pat Mechanic <pat@example.org>"
-    );
-    // SLUICE_AGENT wins over git.
-    assert_eq!(
-        recorded_agent(
-            &s,
-            home.path(),
-            &[("SLUICE_AGENT", "Lee Auditor <lee@example.net>")]
-        ),
-        "Lee Auditor <lee@example.net>"
-    );
-}
-
-#[test]
-fn global_git_identity_then_os_user() {
-    let s = Sandbox::with_store();
-    let home = tempfile::tempdir().unwrap();
-    // No repository here and no global config: the operating system user.
-    assert_eq!(
-        recorded_agent(&s, home.path(), &[("USER", "tillclerk")]),
-        "tillclerk"
-    );
-    // A global config in HOME gives the git identity.
+    // A git identity in HOME and in a repository here: never read.
     std::fs::write(
         home.path().join(".gitconfig"),
         "[user]\n\tname = Sam Global\n\temail = sam@example.org\n",
     )
     .unwrap();
+    // (Where git is installed; the test holds without it too.)
+    let _ = Command::new("git")
+        .args(["init", "-q"])
+        .current_dir(s.path())
+        .env("HOME", home.path())
+        .status();
+    // Nothing given: the operating system user.
     assert_eq!(
-        recorded_agent(&s, home.path(), &[("USER", "tillclerk")]),
-        "Sam Global <sam@example.org>"
+        recorded_agent(&s, home.path(), &[], &[("USER", "tillclerk")]),
+        "tillclerk"
     );
+    // The store's setting comes before the operating system user.
+    s.ok(&[
+        "identity",
+        "--name",
+        "Ada Moss",
+        "--email",
+        "ada@example.org",
+    ]);
+    assert_eq!(
+        recorded_agent(&s, home.path(), &[], &[("USER", "tillclerk")]),
+        "Ada Moss (ada@example.org)"
+    );
+    // The environment comes before the store's setting.
+    assert_eq!(
+        recorded_agent(
+            &s,
+            home.path(),
+            &[],
+            &[
+                ("SLUICE_PERSON", "Lee Auditor"),
+                ("SLUICE_EMAIL", "lee@example.net")
+            ]
+        ),
+        "Lee Auditor (lee@example.net)"
+    );
+    // The options come before everything.
+    assert_eq!(
+        recorded_agent(
+            &s,
+            home.path(),
+            &["--person", "Bo Reed"],
+            &[("SLUICE_PERSON", "Lee Auditor")]
+        ),
+        "Bo Reed"
+    );
+    // Setting the store's default person is itself in the audit chain, and verifies.
+    let chain = s.ok(&["verify"]);
+    assert_contains(&chain, "intact");
+    let id = s.json(&["identity", "--json"]);
+    assert_eq!(id["store_setting"]["name"], "Ada Moss");
+    assert_eq!(id["store_setting"]["email"], "ada@example.org");
+}
+
+#[test]
+fn an_empty_person_is_refused_and_nothing_is_recorded() {
+    let s = Sandbox::with_store();
+    s.file("a.csv", "id\n1\n");
+    let err = s.fails(2, &["receive", "a.csv", "--as", "things", "--person", " "]);
+    assert_contains(&err, "--person is empty");
+    assert_eq!(s.json(&["timeline", "--json"]), serde_json::json!([]));
+    let err = s.fails(2, &["identity", "--name", ""]);
+    assert_contains(&err, "--name is empty");
+}
+
+#[test]
+fn identities_of_older_stores_read_back_into_name_and_address() {
+    // The form older stores recorded, "Name <email>", and the current one mean the same.
+    let old = sluice::model::Agent::parse_identity("Pat Mechanic <pat@example.org>", "store");
+    assert_eq!(old.name, "Pat Mechanic");
+    assert_eq!(old.email.as_deref(), Some("pat@example.org"));
+    assert_eq!(old.identity(), "Pat Mechanic (pat@example.org)");
 }

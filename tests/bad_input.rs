@@ -24,7 +24,7 @@ fn seeded() -> Sandbox {
     let s = Sandbox::with_store();
     s.file("exports/seed.csv", SEED);
     s.ok(&[
-        "ingest",
+        "receive",
         "exports/seed.csv",
         "--as",
         "orders",
@@ -90,7 +90,7 @@ fn raw_store(project: &Path) -> Vec<(PathBuf, Vec<u8>)> {
         }
     }
     let mut out = Vec::new();
-    walk(&project.join(".sluice"), &mut out);
+    walk(&project.join("sluice-store"), &mut out);
     out.sort();
     out
 }
@@ -118,7 +118,7 @@ fn user_version(db: &Path) -> i64 {
 #[test]
 fn missing_file_is_named_with_a_hint_to_check_the_path() {
     let s = seeded();
-    let err = fails_unchanged(&s, 2, &["ingest", "exports/nowhere.csv", "--as", "orders"]);
+    let err = fails_unchanged(&s, 2, &["receive", "exports/nowhere.csv", "--as", "orders"]);
     one_paragraph(&err);
     assert_contains(
         &err,
@@ -130,7 +130,7 @@ fn missing_file_is_named_with_a_hint_to_check_the_path() {
 fn directory_instead_of_a_file_is_refused() {
     let s = seeded();
     std::fs::create_dir_all(s.path().join("exports/q3")).unwrap();
-    let err = fails_unchanged(&s, 2, &["ingest", "exports/q3", "--as", "orders"]);
+    let err = fails_unchanged(&s, 2, &["receive", "exports/q3", "--as", "orders"]);
     one_paragraph(&err);
     assert_contains(
         &err,
@@ -142,7 +142,7 @@ fn directory_instead_of_a_file_is_refused() {
 fn empty_file_is_refused_with_its_size() {
     let s = seeded();
     s.file("exports/empty.csv", "");
-    let err = fails_unchanged(&s, 2, &["ingest", "exports/empty.csv", "--as", "orders"]);
+    let err = fails_unchanged(&s, 2, &["receive", "exports/empty.csv", "--as", "orders"]);
     one_paragraph(&err);
     assert_contains(
         &err,
@@ -157,16 +157,16 @@ fn header_only_file_is_a_valid_version_with_zero_rows() {
     // The same header without a final line break is just as valid.
     s.file("exports/oxwater.csv", "order_id;shop;amount");
     let out = s.ok(&[
-        "ingest",
+        "receive",
         "exports/fennmarsh.csv",
         "--as",
         "fennmarsh_orders",
     ]);
-    assert_contains(&out, "recorded fennmarsh_orders@1");
+    assert_contains(&out, "recorded fennmarsh_orders:v1");
     assert_contains(&out, "0 rows × 3 columns");
-    s.ok(&["ingest", "exports/oxwater.csv", "--as", "oxwater_orders"]);
+    s.ok(&["receive", "exports/oxwater.csv", "--as", "oxwater_orders"]);
     for (name, delim) in [("fennmarsh_orders", ","), ("oxwater_orders", ";")] {
-        let v = s.json(&["show", name, "--json"]);
+        let v = s.json(&["about", name, "--json"]);
         assert_eq!(v["version"]["n_rows"], 0, "{name}");
         assert_eq!(
             v["version"]["header"],
@@ -190,7 +190,7 @@ fn row_with_fewer_fields_reports_record_line_byte_and_counts() {
          WO-1002,Oxwater Wheelworks,8.00\n\
          WO-1003,Fennmarsh Bike Clinic\n",
     );
-    let err = fails_unchanged(&s, 2, &["ingest", "exports/ragged.csv", "--as", "orders"]);
+    let err = fails_unchanged(&s, 2, &["receive", "exports/ragged.csv", "--as", "orders"]);
     one_paragraph(&err);
     assert_contains(
         &err,
@@ -211,7 +211,7 @@ fn row_with_more_fields_counts_crlf_and_blank_lines_in_its_position() {
          \r\n\
          WO-1002,Oxwater Wheelworks,8.00,extra\r\n",
     );
-    let err = fails_unchanged(&s, 2, &["ingest", "exports/extra.csv", "--as", "orders"]);
+    let err = fails_unchanged(&s, 2, &["receive", "exports/extra.csv", "--as", "orders"]);
     one_paragraph(&err);
     assert_contains(
         &err,
@@ -230,7 +230,7 @@ fn ragged_row_after_a_quoted_line_break_counts_the_line_inside_the_quotes() {
          WO-1001,Quillby Cycle Mend,\"two\nlines\"\n\
          WO-1002,Oxwater Wheelworks\n",
     );
-    let err = fails_unchanged(&s, 2, &["ingest", "exports/notes.csv", "--as", "orders"]);
+    let err = fails_unchanged(&s, 2, &["receive", "exports/notes.csv", "--as", "orders"]);
     assert_contains(
         &err,
         "exports/notes.csv: record 2 (line 4, byte 58): expected 3 fields, found 2",
@@ -243,7 +243,7 @@ fn ragged_row_after_a_bom_counts_the_bom_bytes() {
     // BOM 3 bytes (0..=2), "shop;city\r\n" 11 bytes (3..=13), "A;B\r\n" 5 bytes (14..=18):
     // the one-field row is record 2, on line 3, at byte 19.
     s.file("exports/bom.csv", b"\xEF\xBB\xBFshop;city\r\nA;B\r\nC\r\n");
-    let err = fails_unchanged(&s, 2, &["ingest", "exports/bom.csv", "--as", "orders"]);
+    let err = fails_unchanged(&s, 2, &["receive", "exports/bom.csv", "--as", "orders"]);
     assert_contains(
         &err,
         "exports/bom.csv: record 2 (line 3, byte 19): expected 2 fields, found 1",
@@ -264,7 +264,7 @@ fn ragged_row_in_a_windows_1252_file_reports_the_byte_offset_in_the_file() {
         &s,
         2,
         &[
-            "ingest",
+            "receive",
             "exports/legacy.csv",
             "--as",
             "orders",
@@ -293,7 +293,7 @@ fn ragged_row_in_a_utf16_file_reports_the_byte_offset_in_the_file() {
         &s,
         2,
         &[
-            "ingest",
+            "receive",
             "exports/wide.csv",
             "--as",
             "orders",
@@ -317,7 +317,7 @@ const LEGACY: &[u8] = b"shop,repair\nQuillby Cycle Mend,d\xe9railleur tune\n";
 fn invalid_utf8_reports_the_byte_and_suggests_an_encoding() {
     let s = seeded();
     s.file("exports/legacy.csv", LEGACY);
-    let err = fails_unchanged(&s, 2, &["ingest", "exports/legacy.csv", "--as", "repairs"]);
+    let err = fails_unchanged(&s, 2, &["receive", "exports/legacy.csv", "--as", "repairs"]);
     one_paragraph(&err);
     assert_contains(
         &err,
@@ -331,21 +331,21 @@ fn invalid_utf8_file_ingests_with_its_encoding_and_cat_returns_the_original_byte
     let s = Sandbox::with_store();
     s.file("exports/legacy.csv", LEGACY);
     s.ok(&[
-        "ingest",
+        "receive",
         "exports/legacy.csv",
         "--as",
         "repairs",
         "--encoding",
         "windows-1252",
     ]);
-    let r = s.run(&["cat", "repairs"]);
+    let r = s.run(&["retrieve", "repairs"]);
     assert_eq!(r.code, 0, "{}", r.stderr);
     assert!(
         r.raw_stdout == LEGACY,
         "cat must return the bytes as received, not decoded ones; got {:?}",
         String::from_utf8_lossy(&r.raw_stdout)
     );
-    let v = s.json(&["show", "repairs", "--json"]);
+    let v = s.json(&["about", "repairs", "--json"]);
     assert_eq!(v["version"]["dialect"]["encoding"], "windows-1252");
     assert_eq!(v["version"]["n_rows"], 1);
     assert_eq!(v["version"]["n_bytes"], LEGACY.len());
@@ -370,7 +370,7 @@ fn invalid_utf8_split_across_read_pieces_reports_the_first_bad_byte() {
     let bad = (1u64 << 20) - 1;
     let line = 1 + data[..bad as usize].iter().filter(|&&b| b == b'\n').count();
     s.file("exports/big.csv", &data);
-    let err = fails_unchanged(&s, 2, &["ingest", "exports/big.csv", "--as", "orders"]);
+    let err = fails_unchanged(&s, 2, &["receive", "exports/big.csv", "--as", "orders"]);
     assert_contains(
         &err,
         &format!("exports/big.csv: line {line} (byte {bad}): invalid UTF-8"),
@@ -391,7 +391,7 @@ fn invalid_bytes_for_a_declared_encoding_report_their_position() {
         &s,
         2,
         &[
-            "ingest",
+            "receive",
             "exports/sjis.csv",
             "--as",
             "orders",
@@ -412,7 +412,7 @@ fn nul_byte_is_refused_with_its_position_and_the_utf16_hint() {
         "exports/nul.csv",
         b"shop,city\nQuillby Cycle Mend,Quill\x00by\n",
     );
-    let err = fails_unchanged(&s, 2, &["ingest", "exports/nul.csv", "--as", "orders"]);
+    let err = fails_unchanged(&s, 2, &["receive", "exports/nul.csv", "--as", "orders"]);
     one_paragraph(&err);
     assert_contains(
         &err,
@@ -430,19 +430,19 @@ fn utf16_file_without_encoding_points_to_the_utf16_option() {
         data.extend_from_slice(&u.to_le_bytes());
     }
     s.file("exports/wide.csv", &data);
-    let err = fails_unchanged(&s, 2, &["ingest", "exports/wide.csv", "--as", "shops"]);
+    let err = fails_unchanged(&s, 2, &["receive", "exports/wide.csv", "--as", "shops"]);
     assert_contains(&err, "exports/wide.csv: line 1 (byte 3): a NUL byte (0x00)");
     assert_contains(&err, "--encoding utf-16le");
     // Following the hint works, and the stored bytes are the file's.
     s.ok(&[
-        "ingest",
+        "receive",
         "exports/wide.csv",
         "--as",
         "shops",
         "--encoding",
         "utf-16le",
     ]);
-    assert!(s.run(&["cat", "shops"]).raw_stdout == data);
+    assert!(s.run(&["retrieve", "shops"]).raw_stdout == data);
 }
 
 #[test]
@@ -457,7 +457,7 @@ fn unterminated_quote_at_end_of_file_reports_where_the_record_starts() {
          WO-1002,Oxwater Wheelworks,\"wheel true, spokes\n\
          WO-1003,Fennmarsh Bike Clinic,ok\n",
     );
-    let err = fails_unchanged(&s, 2, &["ingest", "exports/quote.csv", "--as", "orders"]);
+    let err = fails_unchanged(&s, 2, &["receive", "exports/quote.csv", "--as", "orders"]);
     one_paragraph(&err);
     assert_contains(
         &err,
@@ -477,7 +477,7 @@ fn blank_header_names_are_listed_by_column() {
         "exports/blank.csv",
         "\n\nshop,,city, \nQuillby Cycle Mend,x,Quillby,y\n",
     );
-    let err = fails_unchanged(&s, 2, &["ingest", "exports/blank.csv", "--as", "shops"]);
+    let err = fails_unchanged(&s, 2, &["receive", "exports/blank.csv", "--as", "shops"]);
     one_paragraph(&err);
     assert_contains(
         &err,
@@ -493,7 +493,7 @@ fn duplicate_header_names_are_listed_once_each() {
         "exports/dups.csv",
         "shop,city,shop,amount,city,shop\nA,B,C,1,D,E\n",
     );
-    let err = fails_unchanged(&s, 2, &["ingest", "exports/dups.csv", "--as", "shops"]);
+    let err = fails_unchanged(&s, 2, &["receive", "exports/dups.csv", "--as", "shops"]);
     one_paragraph(&err);
     assert_contains(
         &err,
@@ -509,7 +509,7 @@ fn key_column_not_in_the_header_lists_the_columns() {
         &s,
         2,
         &[
-            "ingest",
+            "receive",
             "exports/orders.csv",
             "--as",
             "orders",
@@ -527,7 +527,7 @@ fn key_column_not_in_the_header_lists_the_columns() {
         &s,
         2,
         &[
-            "ingest",
+            "receive",
             "exports/orders.csv",
             "--as",
             "orders",
@@ -555,7 +555,7 @@ fn duplicate_key_values_are_listed_with_their_lines() {
         &s,
         2,
         &[
-            "ingest",
+            "receive",
             "exports/dupkeys.csv",
             "--as",
             "orders",
@@ -582,7 +582,7 @@ fn blank_key_value_reports_its_record_and_field() {
         &s,
         2,
         &[
-            "ingest",
+            "receive",
             "exports/blankkey.csv",
             "--as",
             "orders",
@@ -606,7 +606,7 @@ fn empty_key_option_is_a_usage_error() {
             &s,
             2,
             &[
-                "ingest",
+                "receive",
                 "exports/orders.csv",
                 "--as",
                 "orders",
@@ -622,7 +622,7 @@ fn empty_key_option_is_a_usage_error() {
 fn missing_required_option_is_a_usage_error_with_exit_code_2() {
     let s = seeded();
     s.file("exports/orders.csv", SEED);
-    let err = fails_unchanged(&s, 2, &["ingest", "exports/orders.csv"]);
+    let err = fails_unchanged(&s, 2, &["receive", "exports/orders.csv"]);
     assert_contains(&err, "--as");
 }
 
@@ -632,16 +632,16 @@ fn missing_required_option_is_a_usage_error_with_exit_code_2() {
 fn no_store_suggests_sluice_init() {
     let s = Sandbox::new();
     for args in [
-        &["log"][..],
-        &["ingest", "exports/seed.csv", "--as", "orders"],
+        &["timeline"][..],
+        &["receive", "exports/seed.csv", "--as", "orders"],
     ] {
         let err = s.fails(2, args);
         one_paragraph(&err);
         assert_contains(&err, "no store here or in any parent folder of");
-        assert_contains(&err, "create one with `sluice init`");
+        assert_contains(&err, "create one with `sluice setup`");
     }
     assert!(
-        !s.path().join(".sluice").exists(),
+        !s.path().join("sluice-store").exists(),
         "a failed command must not create a store"
     );
 }
@@ -650,31 +650,31 @@ fn no_store_suggests_sluice_init() {
 fn store_option_pointing_at_no_store_suggests_init_on_that_folder() {
     let s = Sandbox::new();
     std::fs::create_dir_all(s.path().join("q3")).unwrap();
-    let err = s.fails(2, &["log", "--store", "q3"]);
+    let err = s.fails(2, &["timeline", "--store", "q3"]);
     one_paragraph(&err);
     assert_contains(
         &err,
-        "error: no store at q3; create one with `sluice init q3`",
+        "error: no store at q3; create one with `sluice setup q3`",
     );
-    assert!(!s.path().join("q3/.sluice").exists());
+    assert!(!s.path().join("q3/sluice-store").exists());
 }
 
 #[test]
 fn store_option_naming_an_empty_store_folder_suggests_init_on_its_project() {
-    // `sluice init DIR` creates DIR/.sluice, so for --store q3/.sluice the command to suggest
-    // is `sluice init q3`; `sluice init q3/.sluice` would make q3/.sluice/.sluice.
+    // `sluice setup DIR` creates DIR/sluice-store, so for --store q3/sluice-store the command to suggest
+    // is `sluice setup q3`; `sluice setup q3/sluice-store` would make q3/sluice-store/sluice-store.
     let s = Sandbox::new();
-    std::fs::create_dir_all(s.path().join("q3/.sluice")).unwrap();
-    let err = s.fails(2, &["log", "--store", "q3/.sluice"]);
+    std::fs::create_dir_all(s.path().join("q3/sluice-store")).unwrap();
+    let err = s.fails(2, &["timeline", "--store", "q3/sluice-store"]);
     one_paragraph(&err);
-    assert_contains(&err, "no store at q3/.sluice");
-    assert_contains(&err, "create one with `sluice init q3`,");
+    assert_contains(&err, "no store at q3/sluice-store");
+    assert_contains(&err, "create one with `sluice setup q3`,");
 }
 
 #[test]
 fn store_from_a_newer_schema_is_refused_with_both_versions() {
     let s = seeded();
-    let db = s.path().join(".sluice/lineage.db");
+    let db = s.path().join("sluice-store/lineage.db");
     rusqlite::Connection::open(&db)
         .unwrap()
         .execute_batch("PRAGMA user_version = 99")
@@ -682,8 +682,8 @@ fn store_from_a_newer_schema_is_refused_with_both_versions() {
     let before = raw_store(s.path());
     s.file("exports/orders.csv", SEED);
     for args in [
-        &["log"][..],
-        &["ingest", "exports/orders.csv", "--as", "returns"],
+        &["timeline"][..],
+        &["receive", "exports/orders.csv", "--as", "returns"],
     ] {
         let err = s.fails(2, args);
         one_paragraph(&err);
@@ -704,7 +704,7 @@ fn store_from_a_newer_schema_is_refused_with_both_versions() {
 #[test]
 fn store_from_an_older_schema_is_migrated_on_open() {
     let s = Sandbox::new();
-    let store = s.path().join(".sluice");
+    let store = s.path().join("sluice-store");
     for sub in ["objects", "tmp"] {
         std::fs::create_dir_all(store.join(sub)).unwrap();
     }
@@ -721,11 +721,11 @@ fn store_from_an_older_schema_is_migrated_on_open() {
         assert_eq!(n, 0);
     }
     assert_eq!(user_version(&db), 0);
-    let out = s.ok(&["log"]);
-    assert_contains(&out, "no steps yet");
+    let out = s.ok(&["timeline"]);
+    assert_contains(&out, "no steps to show");
     assert_eq!(user_version(&db), sluice::store::lineage::SCHEMA_VERSION);
     s.file("exports/seed.csv", SEED);
-    s.ok(&["ingest", "exports/seed.csv", "--as", "orders"]);
+    s.ok(&["receive", "exports/seed.csv", "--as", "orders"]);
     let v = s.json(&["verify", "--json"]);
     assert_eq!(v["intact"], true, "{v}");
     assert_eq!(v["schema_version"], sluice::store::lineage::SCHEMA_VERSION);
@@ -734,7 +734,7 @@ fn store_from_an_older_schema_is_migrated_on_open() {
 #[test]
 fn corrupted_database_is_named_with_a_restore_hint() {
     let s = seeded();
-    let dir = s.path().join(".sluice");
+    let dir = s.path().join("sluice-store");
     for side in ["lineage.db-wal", "lineage.db-shm"] {
         let _ = std::fs::remove_file(dir.join(side));
     }
@@ -745,17 +745,17 @@ fn corrupted_database_is_named_with_a_restore_hint() {
     let before = raw_store(s.path());
     s.file("exports/orders.csv", SEED);
     for args in [
-        &["log"][..],
-        &["show", "orders"],
+        &["timeline"][..],
+        &["about", "orders"],
         &["verify"],
-        &["ingest", "exports/orders.csv", "--as", "returns"],
+        &["receive", "exports/orders.csv", "--as", "returns"],
     ] {
         // CorruptDatabase maps to exit code 1 (src/error.rs, Error::exit_code).
         let err = s.fails(1, args);
         one_paragraph(&err);
         assert_contains(
             &err,
-            ".sluice/lineage.db: the lineage database cannot be read",
+            "sluice-store/lineage.db: the lineage database cannot be read",
         );
         // Not "run verify": verify cannot read the database either.
         assert!(!err.contains("sluice verify"), "{err}");
@@ -769,7 +769,7 @@ fn corrupted_database_is_named_with_a_restore_hint() {
 #[test]
 fn unknown_dataset_lists_the_datasets() {
     let s = seeded();
-    for cmd in ["cat", "show"] {
+    for cmd in ["retrieve", "about"] {
         let r = s.run(&[cmd, "nosuch"]);
         assert_eq!(r.code, 2, "{}", r.stderr);
         assert!(r.stdout.is_empty(), "nothing on stdout: {}", r.stdout);
@@ -784,62 +784,69 @@ fn unknown_dataset_lists_the_datasets() {
 #[test]
 fn version_number_beyond_the_last_says_how_many_there_are() {
     let s = seeded();
-    let err = fails_unchanged(&s, 2, &["show", "orders@9"]);
+    let err = fails_unchanged(&s, 2, &["about", "orders:v9"]);
     one_paragraph(&err);
     assert_contains(
         &err,
-        "error: unknown version \"orders@9\"; dataset orders has 1 version; see them with `sluice log orders`",
+        "error: unknown version \"orders:v9\"; dataset orders has 1 version; see them with `sluice timeline --dataset orders`",
     );
 }
 
 #[test]
 fn version_zero_is_refused_because_numbers_start_at_one() {
     let s = seeded();
-    let err = fails_unchanged(&s, 2, &["cat", "orders@0"]);
+    let err = fails_unchanged(&s, 2, &["retrieve", "orders:v0"]);
     one_paragraph(&err);
     assert_contains(
         &err,
-        "error: invalid version reference \"orders@0\": after '@' comes a version number starting at 1",
+        "error: invalid version reference \"orders:v0\": after the ':' comes a version number starting at 1",
     );
 }
 
 #[test]
-fn four_hex_digit_prefix_is_too_short() {
+fn a_hash_needs_its_label_and_eight_digits() {
     let s = seeded();
-    let hash = s.json(&["show", "orders", "--json"])["version"]["hash"]
+    let hash = s.json(&["about", "orders", "--json"])["version"]["hash"]
         .as_str()
         .unwrap()
         .to_string();
-    let prefix = &hash[..4];
-    let err = fails_unchanged(&s, 2, &["cat", prefix]);
+    let short = format!("blake3:{}", &hash[..7]);
+    let err = fails_unchanged(&s, 2, &["retrieve", &short]);
     one_paragraph(&err);
     assert_contains(
         &err,
         &format!(
-            "error: invalid version reference \"{prefix}\": a hash prefix needs at least 6 hex digits"
+            "error: invalid version reference \"{short}\": after blake3: come 8 to 64 hex digits"
         ),
     );
-    // Six digits of the same hash do name the version.
-    let out = s.run(&["cat", &hash[..6]]);
+    // Bare digits are refused with the advice that works.
+    let bare = &hash[..8];
+    let err = fails_unchanged(&s, 2, &["retrieve", bare]);
+    assert_contains(
+        &err,
+        &format!("write blake3: before the digits (blake3:{bare})"),
+    );
+    // Eight digits of the same hash, with the label, do name the version.
+    let out = s.run(&["retrieve", &format!("blake3:{bare}")]);
     assert_eq!(out.code, 0, "{}", out.stderr);
     assert_eq!(out.raw_stdout, SEED.as_bytes());
 }
 
 #[test]
-fn hash_prefix_matching_nothing_points_to_the_log() {
+fn hash_prefix_matching_nothing_points_to_the_timeline() {
     let s = seeded();
-    let hash = s.json(&["show", "orders", "--json"])["version"]["hash"]
+    let hash = s.json(&["about", "orders", "--json"])["version"]["hash"]
         .as_str()
         .unwrap()
         .to_string();
     // The real hash with its first digit changed cannot name the (only) version.
     let first = if hash.starts_with('0') { '1' } else { '0' };
-    let other = format!("{first}{}", &hash[1..8]);
-    let err = fails_unchanged(&s, 2, &["show", &other]);
+    let other = format!("blake3:{first}{}", &hash[1..8]);
+    let err = fails_unchanged(&s, 2, &["about", &other]);
     assert_contains(
         &err,
         &format!(
-            "error: unknown version \"{other}\"; no version's hash starts with these digits; list versions with `sluice log`"
+            "error: unknown version \"{other}\"; no version's hash starts with these digits; list versions with `sluice timeline`"
         ),
     );
 }
@@ -847,32 +854,32 @@ fn hash_prefix_matching_nothing_points_to_the_log() {
 #[test]
 fn ambiguous_hash_prefix_lists_the_candidates() {
     // Versions are named by the BLAKE3 hash of their bytes, so two small files whose hashes
-    // share the first 6 hex digits (24 bits) make an ambiguous prefix; by the birthday bound a
-    // pair turns up after a few thousand candidates.
+    // share the first 8 hex digits (32 bits) make an ambiguous prefix; by the birthday bound a
+    // pair turns up after some 80,000 candidates.
     let content = |i: u32| format!("order_id,shop\nWO-{i},Quillby Cycle Mend\n");
     let mut seen = std::collections::HashMap::new();
-    let (a, b) = (0u32..1_000_000)
+    let (a, b) = (0u32..10_000_000)
         .find_map(|i| {
             let h = sluice::hash::Hash::of(content(i).as_bytes()).hex();
-            seen.insert(h[..6].to_string(), i).map(|j| (j, i))
+            seen.insert(h[..8].to_string(), i).map(|j| (j, i))
         })
-        .expect("two hashes sharing 6 hex digits");
+        .expect("two hashes sharing 8 hex digits");
     let s = Sandbox::with_store();
     s.file("exports/a.csv", content(a));
     s.file("exports/b.csv", content(b));
-    s.ok(&["ingest", "exports/a.csv", "--as", "orders"]);
-    s.ok(&["ingest", "exports/b.csv", "--as", "returns"]);
+    s.ok(&["receive", "exports/a.csv", "--as", "orders"]);
+    s.ok(&["receive", "exports/b.csv", "--as", "returns"]);
     let ha = sluice::hash::Hash::of(content(a).as_bytes()).hex();
     let hb = sluice::hash::Hash::of(content(b).as_bytes()).hex();
-    let prefix = &ha[..6];
-    let err = fails_unchanged(&s, 2, &["show", prefix]);
+    let prefix = format!("blake3:{}", &ha[..8]);
+    let err = fails_unchanged(&s, 2, &["about", &prefix]);
     one_paragraph(&err);
     assert_contains(
         &err,
         &format!(
-            "error: version reference \"{prefix}\" is ambiguous; it matches orders@1 ({}), returns@1 ({}); use more hex digits",
-            &ha[..12],
-            &hb[..12]
+            "error: {prefix} matches 2 versions: orders:v1 (blake3:{}), returns:v1 (blake3:{}); give more digits or name one as NAME:vN",
+            &ha[..16],
+            &hb[..16]
         ),
     );
     // Digits up to the first that differs tell them apart.
@@ -881,10 +888,33 @@ fn ambiguous_hash_prefix_lists_the_candidates() {
         .zip(hb.bytes())
         .position(|(x, y)| x != y)
         .unwrap();
-    let longer = &hb[..(differ + 1).max(6)];
-    let r = s.run(&["cat", longer]);
+    let longer = format!("blake3:{}", &hb[..(differ + 1).max(8)]);
+    let r = s.run(&["retrieve", &longer]);
     assert_eq!(r.code, 0, "{}", r.stderr);
     assert_eq!(r.raw_stdout, content(b).as_bytes());
+}
+
+#[test]
+fn a_full_hash_shared_by_identical_versions_asks_for_a_name() {
+    // The same bytes received as two datasets: one hash, two versions. More digits cannot
+    // tell them apart, so the advice is to name one.
+    let s = Sandbox::with_store();
+    s.file("exports/a.csv", SEED);
+    s.ok(&["receive", "exports/a.csv", "--as", "orders"]);
+    s.ok(&["receive", "exports/a.csv", "--as", "returns"]);
+    let hash = sluice::hash::Hash::of(SEED.as_bytes()).hex();
+    let err = fails_unchanged(&s, 2, &["about", &format!("blake3:{hash}")]);
+    one_paragraph(&err);
+    assert_contains(
+        &err,
+        "the versions orders:v1 and returns:v1 hold identical bytes",
+    );
+    assert_contains(&err, "name one as NAME:vN");
+    // The advice works.
+    assert_eq!(
+        s.json(&["about", "returns:v1", "--json"])["version"]["hash"],
+        hash.as_str()
+    );
 }
 
 // ---- permissions -------------------------------------------------------------------------
@@ -953,13 +983,13 @@ fn unreadable_input_file_reports_permission_denied() {
         chmod_all(s.path(), 0o777);
     }
     // The same user can take in a readable file: what fails below is the file's mode alone.
-    let r = run_unprivileged(&s, &["ingest", "exports/oxwater.csv", "--as", "oxwater"]);
+    let r = run_unprivileged(&s, &["receive", "exports/oxwater.csv", "--as", "oxwater"]);
     assert_eq!(r.code, 0, "control ingest failed:\n{}", r.stderr);
 
     let locked = s.file("exports/locked.csv", SEED);
     std::fs::set_permissions(&locked, std::fs::Permissions::from_mode(0o000)).unwrap();
     let before = s.snapshot();
-    let r = run_unprivileged(&s, &["ingest", "exports/locked.csv", "--as", "orders"]);
+    let r = run_unprivileged(&s, &["receive", "exports/locked.csv", "--as", "orders"]);
     let after = s.snapshot();
     assert_eq!(r.code, 2, "expected exit code 2:\n{}", r.stderr);
     one_paragraph(&r.stderr);
@@ -976,7 +1006,7 @@ fn unreadable_input_file_reports_permission_denied() {
 fn object_bytes(s: &Sandbox) -> Vec<(PathBuf, Vec<u8>)> {
     raw_store(s.path())
         .into_iter()
-        .filter(|(p, _)| p.starts_with(s.path().join(".sluice/objects")))
+        .filter(|(p, _)| p.starts_with(s.path().join("sluice-store/objects")))
         .collect()
 }
 
@@ -999,31 +1029,31 @@ fn failed_ingest_into_existing_dataset_leaves_log_and_objects_byte_identical() {
         dups.push_str(&format!("WO-{},Oxwater Wheelworks,{i}.00\n", i % 19_999));
     }
     s.file("exports/dupkeys.csv", &dups);
-    let log_text = s.ok(&["log"]);
-    let log_json = s.ok(&["log", "--json"]);
+    let log_text = s.ok(&["timeline"]);
+    let log_json = s.ok(&["timeline", "--json"]);
     let objects = object_bytes(&s);
-    let db = std::fs::read(s.path().join(".sluice/lineage.db")).unwrap();
+    let db = std::fs::read(s.path().join("sluice-store/lineage.db")).unwrap();
     for (file, key) in [
         ("exports/bytes.csv", None),
         ("exports/fields.csv", None),
         ("exports/quote.csv", None),
         ("exports/dupkeys.csv", Some("order_id")),
     ] {
-        let mut args = vec!["ingest", file, "--as", "orders"];
+        let mut args = vec!["receive", file, "--as", "orders"];
         if let Some(k) = key {
             args.extend(["--key", k]);
         }
         s.fails(2, &args);
-        assert_eq!(s.ok(&["log"]), log_text, "after {file}");
-        assert_eq!(s.ok(&["log", "--json"]), log_json, "after {file}");
+        assert_eq!(s.ok(&["timeline"]), log_text, "after {file}");
+        assert_eq!(s.ok(&["timeline", "--json"]), log_json, "after {file}");
         let now = object_bytes(&s);
         assert_raw_unchanged(&objects, &now);
-        let tmp: Vec<_> = std::fs::read_dir(s.path().join(".sluice/tmp"))
+        let tmp: Vec<_> = std::fs::read_dir(s.path().join("sluice-store/tmp"))
             .unwrap()
             .collect();
         assert!(tmp.is_empty(), "temporary files left after {file}: {tmp:?}");
         assert!(
-            std::fs::read(s.path().join(".sluice/lineage.db")).unwrap() == db,
+            std::fs::read(s.path().join("sluice-store/lineage.db")).unwrap() == db,
             "lineage.db bytes changed after {file}"
         );
     }

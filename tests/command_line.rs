@@ -17,10 +17,10 @@ fn every_command_has_help_with_a_worked_example() {
     let all = every_command(&s);
     // The walk must have found the commands and the operations under `apply`.
     for expected in [
-        vec!["ingest"],
-        vec!["apply"],
-        vec!["apply", "trim"],
-        vec!["apply", "summarize"],
+        vec!["receive"],
+        vec!["clean"],
+        vec!["clean", "trim"],
+        vec!["clean", "summarize"],
         vec!["completions"],
         vec!["manual"],
     ] {
@@ -62,7 +62,23 @@ fn every_query_with_json_output_says_so_in_its_help() {
     // (tests/json_output.rs checks that every such command has one).
     let s = Sandbox::new();
     for cmd in [
-        "log", "show", "verify", "check", "run", "diff", "trace", "explain", "impact", "replay",
+        "timeline",
+        "about",
+        "verify",
+        "inspect",
+        "run",
+        "compare",
+        "trace",
+        "explain",
+        "impact",
+        "reproduce",
+        "receive",
+        "clean",
+        "capture",
+        "rerun",
+        "withdraw",
+        "identify",
+        "identity",
     ] {
         assert_contains(&s.ok(&[cmd, "--help"]), "--json");
     }
@@ -90,7 +106,7 @@ fn exit_codes_follow_the_documented_classes() {
     let cases = [
         Case {
             class: "success: a query",
-            args: &["log"],
+            args: &["timeline"],
             code: 0,
         },
         Case {
@@ -105,27 +121,27 @@ fn exit_codes_follow_the_documented_classes() {
         },
         Case {
             class: "success: a diff that finds differences",
-            args: &["diff", "quillby_orders@1", "quillby_orders@2"],
+            args: &["compare", "quillby_orders:v1", "quillby_orders:v2"],
             code: 0,
         },
         Case {
             class: "success: checks that pass",
-            args: &["check", "all_orders", "--rules", "rules_pass.json"],
+            args: &["inspect", "all_orders", "--rules", "rules_pass.json"],
             code: 0,
         },
         Case {
             class: "usage: reverting the first version of a dataset",
-            args: &["revert", "all_orders@1", "--why", "x"],
+            args: &["withdraw", "all_orders:v1", "--why", "x"],
             code: 2,
         },
         Case {
             class: "usage: reverting an intake",
-            args: &["revert", "quillby_orders@1", "--why", "x"],
+            args: &["withdraw", "quillby_orders:v1", "--why", "x"],
             code: 2,
         },
         Case {
             class: "usage: revert without a reason",
-            args: &["revert", "all_orders@5"],
+            args: &["withdraw", "all_orders:v5"],
             code: 2,
         },
         Case {
@@ -135,24 +151,24 @@ fn exit_codes_follow_the_documented_classes() {
         },
         Case {
             class: "success: replay reproduced",
-            args: &["replay", "q3_by_shop"],
+            args: &["reproduce", "q3_by_shop"],
             code: 0,
         },
         Case {
             class: "data failure: a check fails",
-            args: &["check", "all_orders", "--rules", "rules_fail.json"],
+            args: &["inspect", "all_orders", "--rules", "rules_fail.json"],
             code: 1,
         },
         Case {
             class: "data failure: replay of outside work is not shown to reproduce",
-            args: &["replay", "reviewed_orders"],
+            args: &["reproduce", "reviewed_orders"],
             code: 1,
         },
         Case {
             class: "data failure: amounts that cannot be read",
             args: &[
-                "apply",
-                "quillby_orders@1",
+                "clean",
+                "quillby_orders:v1",
                 "number",
                 "--columns",
                 "customer",
@@ -168,42 +184,42 @@ fn exit_codes_follow_the_documented_classes() {
         },
         Case {
             class: "usage (clap): unknown option",
-            args: &["log", "--frobnicate"],
+            args: &["timeline", "--frobnicate"],
             code: 2,
         },
         Case {
             class: "usage (clap): missing argument",
-            args: &["show"],
+            args: &["about"],
             code: 2,
         },
         Case {
             class: "usage (clap): bad option value",
-            args: &["graph", "--format", "png"],
+            args: &["lineage", "--format", "png"],
             code: 2,
         },
         Case {
             class: "usage (clap): not a number",
-            args: &["diff", "a", "b", "--limit", "many"],
+            args: &["compare", "a", "b", "--limit", "many"],
             code: 2,
         },
         Case {
             class: "usage (clap): bad --color",
-            args: &["--color", "sometimes", "log"],
+            args: &["--color", "sometimes", "timeline"],
             code: 2,
         },
         Case {
             class: "usage: unknown dataset",
-            args: &["show", "nosuch"],
+            args: &["about", "nosuch"],
             code: 2,
         },
         Case {
             class: "usage: unknown version number",
-            args: &["show", "all_orders@99"],
+            args: &["about", "all_orders:v99"],
             code: 2,
         },
         Case {
             class: "usage: unknown hash prefix",
-            args: &["cat", "abcdef12"],
+            args: &["retrieve", "blake3:abcdef12"],
             code: 2,
         },
         Case {
@@ -213,17 +229,17 @@ fn exit_codes_follow_the_documented_classes() {
         },
         Case {
             class: "input: missing file",
-            args: &["ingest", "missing.csv", "--as", "x"],
+            args: &["receive", "missing.csv", "--as", "x"],
             code: 2,
         },
         Case {
             class: "input: refused file",
-            args: &["ingest", "bad.csv", "--as", "x"],
+            args: &["receive", "bad.csv", "--as", "x"],
             code: 2,
         },
         Case {
             class: "input: missing rules file",
-            args: &["check", "all_orders", "--rules", "nope.json"],
+            args: &["inspect", "all_orders", "--rules", "nope.json"],
             code: 2,
         },
         Case {
@@ -235,11 +251,11 @@ fn exit_codes_follow_the_documented_classes() {
     // Checks record their results, so they run first; every other case, failing or not,
     // must leave the store as it was.
     let (checks, others): (Vec<&Case>, Vec<&Case>) =
-        cases.iter().partition(|c| c.args[0] == "check");
+        cases.iter().partition(|c| c.args[0] == "inspect");
     let mut wrong = Vec::new();
     let mut before = String::new();
     for c in checks.into_iter().chain(others.iter().copied()) {
-        if c.args[0] != "check" && before.is_empty() {
+        if c.args[0] != "inspect" && before.is_empty() {
             before = s.snapshot();
         }
         let r = s.run(c.args);
@@ -265,8 +281,8 @@ fn exit_codes_follow_the_documented_classes() {
 
     // No store at all is a usage error too, with the command that makes one.
     let empty = Sandbox::new();
-    let err = empty.fails(2, &["log"]);
-    assert_contains(&err, "create one with `sluice init`");
+    let err = empty.fails(2, &["timeline"]);
+    assert_contains(&err, "create one with `sluice setup`");
 }
 
 #[test]
@@ -274,20 +290,29 @@ fn common_mistakes_name_the_thing_and_the_next_command() {
     let s = Sandbox::with_demo();
     let cases: &[(&[&str], &[&str])] = &[
         (
-            &["show", "nosuch"],
+            &["about", "nosuch"],
             &["unknown version \"nosuch\"", "the datasets are: all_orders"],
         ),
         (
-            &["show", "all_orders@99"],
-            &["has 9 versions", "`sluice log all_orders`"],
+            &["about", "all_orders:v99"],
+            &["has 9 versions", "`sluice timeline --dataset all_orders`"],
         ),
         (
-            &["cat", "abcdef12"],
-            &["no version's hash starts with", "`sluice log`"],
+            &["retrieve", "blake3:abcdef12"],
+            &["no version's hash starts with", "`sluice timeline`"],
         ),
         (
-            &["show", "all_orders@x"],
-            &["after '@' comes a version number", "orders@2"],
+            &["retrieve", "abcdef12"],
+            &["write blake3: before the digits", "blake3:abcdef12"],
+        ),
+        (
+            &["about", "all_orders:vx"],
+            &["after the ':' comes a version number", "all_orders:v2"],
+        ),
+        (
+            // The old `@` form, spelt in two pieces so that no rewriting of the sources changes it.
+            &["about", concat!("all_orders", "@", "2")],
+            &["a version is written NAME:vN", "all_orders:v2"],
         ),
         (
             &[
@@ -301,7 +326,7 @@ fn common_mistakes_name_the_thing_and_the_next_command() {
             &[
                 "data rows 1 to 610",
                 "no row 9999",
-                "`sluice cat all_orders@9`",
+                "`sluice retrieve all_orders:v9`",
             ],
         ),
         (
@@ -317,7 +342,7 @@ fn common_mistakes_name_the_thing_and_the_next_command() {
                 "--column",
                 "parts_cost",
             ],
-            &["order_id=ZZ", "`sluice cat all_orders@9`"],
+            &["order_id=ZZ", "`sluice retrieve all_orders:v9`"],
         ),
         (
             &[
@@ -328,35 +353,41 @@ fn common_mistakes_name_the_thing_and_the_next_command() {
                 "--column",
                 "parts_cost",
             ],
-            &["not made by summarize", "`sluice trace all_orders@9"],
+            &["not made by summarize", "`sluice trace all_orders:v9"],
         ),
         (
-            &["ingest", "missing.csv", "--as", "x"],
+            &["receive", "missing.csv", "--as", "x"],
             &["missing.csv: no such file", "check the path"],
         ),
         (
-            &["ingest", "exports", "--as", "x"],
+            &["receive", "exports", "--as", "x"],
             &["is a directory", "name a file"],
         ),
         (
-            &["check", "all_orders", "--rules", "nope.json"],
-            &["nope.json: no such file", "`sluice check --help`"],
+            &["inspect", "all_orders", "--rules", "nope.json"],
+            &["nope.json: no such file", "`sluice inspect --help`"],
         ),
         (
             &["run", "nope.json"],
             &["nope.json: no such file", "`sluice run --help`"],
         ),
         (
-            &["diff", "all_orders@1", "all_orders@2", "--key", "nosuch"],
+            &[
+                "compare",
+                "all_orders:v1",
+                "all_orders:v2",
+                "--key",
+                "nosuch",
+            ],
             &["key column \"nosuch\"", "pass --key"],
         ),
         (
-            &["graph", "--format", "png"],
+            &["lineage", "--format", "png"],
             &["'png'", "possible values: dot, svg"],
         ),
-        (&["apply", "all_orders", "trim"], &["--why <TEXT>"]),
+        (&["clean", "all_orders", "trim"], &["--why <TEXT>"]),
         (
-            &["replay", "all_orders", "--onto", "nothing"],
+            &["rerun", "all_orders", "--with", "nothing"],
             &["expected NAME=FILE"],
         ),
     ];
@@ -395,8 +426,8 @@ fn common_mistakes_name_the_thing_and_the_next_command() {
         }
     }
     let empty = Sandbox::new();
-    let r = empty.run(&["--store", "nowhere", "log"]);
-    for n in ["no store at", "`sluice init", "--store"] {
+    let r = empty.run(&["--store", "nowhere", "timeline"]);
+    for n in ["no store at", "`sluice setup", "--store"] {
         if !r.stderr.contains(n) {
             wrong.push(format!("--store nowhere log: {n:?} not in {:?}", r.stderr));
         }
@@ -412,9 +443,9 @@ fn has_escape(text: &str) -> bool {
 fn colour_only_when_asked_or_on_a_terminal() {
     let s = Sandbox::with_demo();
     let diff = [
-        "diff",
-        "quillby_orders@1",
-        "quillby_orders@2",
+        "compare",
+        "quillby_orders:v1",
+        "quillby_orders:v2",
         "--limit",
         "2",
     ];
@@ -441,9 +472,9 @@ fn colour_only_when_asked_or_on_a_terminal() {
     never.extend(diff);
     assert!(!has_escape(&s.ok(&never)));
     // An error with --color always has a coloured prefix; without, none.
-    let r = s.run(&["--color", "always", "show", "nosuch"]);
+    let r = s.run(&["--color", "always", "about", "nosuch"]);
     assert!(has_escape(&r.stderr));
-    let r = s.run(&["show", "nosuch"]);
+    let r = s.run(&["about", "nosuch"]);
     assert!(r.stderr.starts_with("error: unknown version"));
     // clap's own help follows --color too.
     let help = s
@@ -480,7 +511,7 @@ fn completion_scripts_are_accepted_by_their_shells() {
         let script = s.ok(&["completions", shell]);
         assert_contains(&script, "sluice");
         // The script knows the commands and a nested operation.
-        assert_contains(&script, "ingest");
+        assert_contains(&script, "receive");
         assert_contains(&script, "summarize");
         let file = s.file(&format!("completion.{shell}"), &script);
         let exe = program(shell);
@@ -557,7 +588,7 @@ fn manual_pages_are_valid_roff_with_every_command() {
         .expect("run groff");
     let text = String::from_utf8_lossy(&text.stdout);
     assert!(
-        text.contains("ingest") && text.contains("EXIT STATUS"),
+        text.contains("receive") && text.contains("EXIT STATUS"),
         "{text}"
     );
 
@@ -600,7 +631,8 @@ fn on_a_terminal(s: &Sandbox, args: &str) -> String {
     let out = Command::new(program("script"))
         .args(["-qec", &line, "/dev/null"])
         .current_dir(s.path())
-        .env("SLUICE_AGENT", common::AGENT)
+        .env("SLUICE_PERSON", common::PERSON)
+        .env("SLUICE_EMAIL", common::EMAIL)
         .env("SLUICE_PROGRESS_DELAY_MS", "0")
         .env("TERM", "xterm")
         .env_remove("SLUICE_STORE")
@@ -620,7 +652,7 @@ fn progress_is_drawn_only_on_a_terminal_and_never_with_json() {
     s.file("orders.csv", &rows);
     // Piped: nothing on standard error, even with no delay.
     let r = s
-        .command(&["ingest", "orders.csv", "--as", "orders", "--why", "w"])
+        .command(&["receive", "orders.csv", "--as", "orders", "--why", "w"])
         .env("SLUICE_PROGRESS_DELAY_MS", "0")
         .output()
         .expect("run");
@@ -631,11 +663,11 @@ fn progress_is_drawn_only_on_a_terminal_and_never_with_json() {
         String::from_utf8_lossy(&r.stderr)
     );
     // On a terminal: the bar names the work, and is cleared before the report.
-    let screen = on_a_terminal(&s, "apply orders trim --why pads");
-    assert_contains(&screen, "reading orders@1");
-    assert_contains(&screen, "\r\u{1b}[Krecorded orders@2");
+    let screen = on_a_terminal(&s, "clean orders trim --why pads");
+    assert_contains(&screen, "reading orders:v1");
+    assert_contains(&screen, "\r\u{1b}[Krecorded orders:v2");
     // With --json: no bar, only the JSON.
-    let screen = on_a_terminal(&s, "replay orders --json");
-    assert!(!screen.contains("replaying"), "{screen}");
+    let screen = on_a_terminal(&s, "reproduce orders --json");
+    assert!(!screen.contains("reproducing"), "{screen}");
     assert!(screen.trim_start().starts_with('{'), "{screen}");
 }

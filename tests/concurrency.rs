@@ -23,7 +23,7 @@ fn eight_writers_at_once_lose_nothing() {
         }
         s.file(&file, text);
         children.push(
-            s.command(&["ingest", &file, "--as", &name])
+            s.command(&["receive", &file, "--as", &name])
                 .stdout(std::process::Stdio::piped())
                 .stderr(std::process::Stdio::piped())
                 .spawn()
@@ -38,7 +38,7 @@ fn eight_writers_at_once_lose_nothing() {
             String::from_utf8_lossy(&out.stderr)
         );
     }
-    let shared = s.json(&["log", "shared", "--json"]);
+    let shared = s.json(&["timeline", "--dataset", "shared", "--json"]);
     let mut seqs: Vec<u64> = shared
         .as_array()
         .unwrap()
@@ -78,13 +78,14 @@ fn twelve_writers_ingesting_and_applying_while_a_reader_verifies() {
         t
     };
     s.file("base.csv", rows("B", 3000));
-    s.ok(&["ingest", "base.csv", "--as", "base"]);
+    s.ok(&["receive", "base.csv", "--as", "base"]);
     let sh = |script: String| {
         let mut c = std::process::Command::new("sh");
         c.arg("-c")
             .arg(script)
             .current_dir(s.path())
-            .env("SLUICE_AGENT", AGENT)
+            .env("SLUICE_PERSON", PERSON)
+            .env("SLUICE_EMAIL", EMAIL)
             .env("NO_COLOR", "1")
             .env_remove("SLUICE_STORE")
             .stdout(Stdio::null())
@@ -96,8 +97,8 @@ fn twelve_writers_ingesting_and_applying_while_a_reader_verifies() {
     for i in 0..4 {
         s.file(&format!("shared_{i}.csv"), rows(&format!("S{i}"), 3000));
         writers.push((
-            format!("ingest shared {i}"),
-            sh(format!("'{bin}' ingest shared_{i}.csv --as shared")),
+            format!("receive shared {i}"),
+            sh(format!("'{bin}' receive shared_{i}.csv --as shared")),
         ));
     }
     let ops = [
@@ -108,9 +109,9 @@ fn twelve_writers_ingesting_and_applying_while_a_reader_verifies() {
     ];
     for op in ops {
         writers.push((
-            format!("apply {op} to base@1"),
+            format!("clean {op} to base:v1"),
             sh(format!(
-                "'{bin}' apply base@1 {op} --as base --why 'concurrent step'"
+                "'{bin}' clean base:v1 {op} --as base --why 'concurrent step'"
             )),
         ));
     }
@@ -119,9 +120,9 @@ fn twelve_writers_ingesting_and_applying_while_a_reader_verifies() {
         writers.push((
             format!("own {i}"),
             sh(format!(
-                "'{bin}' ingest own_{i}.csv --as own_{i} && \
-                 '{bin}' apply own_{i} trim --why tidy && \
-                 '{bin}' apply own_{i} number --columns parts_cost --why amounts"
+                "'{bin}' receive own_{i}.csv --as own_{i} && \
+                 '{bin}' clean own_{i} trim --why tidy && \
+                 '{bin}' clean own_{i} number --columns parts_cost --why amounts"
             )),
         ));
     }
@@ -151,7 +152,7 @@ fn twelve_writers_ingesting_and_applying_while_a_reader_verifies() {
     }
     let seqs = |name: &str| -> Vec<u64> {
         let mut v: Vec<u64> = s
-            .json(&["log", name, "--json"])
+            .json(&["timeline", "--dataset", name, "--json"])
             .as_array()
             .unwrap()
             .iter()
@@ -170,7 +171,7 @@ fn twelve_writers_ingesting_and_applying_while_a_reader_verifies() {
     // init, base, 4 shared ingests, 4 steps on base, 4 x (ingest + 2 steps): one entry each.
     let entries = report["audit_entries_checked"].as_u64().unwrap();
     assert_eq!(entries, 1 + 1 + 4 + 4 + 12);
-    let db = rusqlite::Connection::open(s.path().join(".sluice/lineage.db")).unwrap();
+    let db = rusqlite::Connection::open(s.path().join("sluice-store/lineage.db")).unwrap();
     let (n, lo, hi): (i64, i64, i64) = db
         .query_row(
             "SELECT count(DISTINCT seq), min(seq), max(seq) FROM audit_log",

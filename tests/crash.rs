@@ -1,4 +1,4 @@
-//! Crash safety of real processes: `sluice ingest` of a large generated export and `sluice run`
+//! Crash safety of real processes: `sluice receive` of a large generated export and `sluice run`
 //! of a six-step plan are started as child processes and killed with SIGKILL at 50 moments
 //! each, spread evenly over the measured duration of an unkilled run (deterministic delays,
 //! not random ones). After every kill: `sluice verify` finds the store intact, the store holds
@@ -41,7 +41,8 @@ fn sluice(dir: &Path, args: &[&str]) -> Command {
     let mut c = Command::new(env!("CARGO_BIN_EXE_sluice"));
     c.args(args)
         .current_dir(dir)
-        .env("SLUICE_AGENT", AGENT)
+        .env("SLUICE_PERSON", PERSON)
+        .env("SLUICE_EMAIL", EMAIL)
         .env("NO_COLOR", "1")
         .env_remove("SLUICE_STORE")
         .stdout(Stdio::null())
@@ -76,6 +77,22 @@ struct Tally {
     complete: u32,
     partial_plan: u32,
     already_done: u32,
+    /// Temporary files and folders the killed commands left in `tmp/`.
+    leftovers: usize,
+}
+
+/// The entries of `tmp/` that process `pid` made (sluice names them `KIND-PID-...`).
+fn leftovers(dir: &Path, pid: u32) -> Vec<String> {
+    let mut found: Vec<String> = std::fs::read_dir(dir.join("sluice-store/tmp"))
+        .map(|rd| {
+            rd.flatten()
+                .map(|e| e.file_name().to_string_lossy().into_owned())
+                .filter(|n| n.split('-').nth(1) == Some(pid.to_string().as_str()))
+                .collect()
+        })
+        .unwrap_or_default();
+    found.sort();
+    found
 }
 
 /// Kills `child` after `delay`; returns whether it was still running when killed.
@@ -123,7 +140,7 @@ fn delays(total: Duration) -> impl Iterator<Item = Duration> {
 }
 
 fn versions_of(dir: &Path, dataset: &str) -> Vec<serde_json::Value> {
-    ok_json(dir, &["log", dataset, "--json"])
+    ok_json(dir, &["timeline", "--dataset", dataset, "--json"])
         .as_array()
         .unwrap()
         .iter()
@@ -144,15 +161,15 @@ fn ingest_killed_at_fifty_moments_records_all_or_nothing() {
         "seed.csv",
         "order_id,shop\nWO-1,Quillby Cycle Mend\nWO-2,Quillby Cycle Mend\n",
     );
-    base.ok(&["ingest", "seed.csv", "--as", "orders"]);
+    base.ok(&["receive", "seed.csv", "--as", "orders"]);
     let big = export(base.path(), ROWS);
     let big_arg = big.to_str().unwrap().to_string();
-    let args = ["ingest", big_arg.as_str(), "--as", "orders"];
+    let args = ["receive", big_arg.as_str(), "--as", "orders"];
 
     let reference = tempfile::tempdir().unwrap();
     copy_dir(
-        &base.path().join(".sluice"),
-        &reference.path().join(".sluice"),
+        &base.path().join("sluice-store"),
+        &reference.path().join("sluice-store"),
     );
     let total = measure(reference.path(), &args);
     let want = versions_of(reference.path(), "orders");
@@ -165,10 +182,16 @@ fn ingest_killed_at_fifty_moments_records_all_or_nothing() {
     let mut tally = Tally::default();
     for (k, delay) in delays(total).enumerate() {
         let dir = tempfile::tempdir().unwrap();
-        copy_dir(&base.path().join(".sluice"), &dir.path().join(".sluice"));
+        copy_dir(
+            &base.path().join("sluice-store"),
+            &dir.path().join("sluice-store"),
+        );
         let child = sluice(dir.path(), &args).spawn().unwrap();
+        let pid = child.id();
         let killed = kill_after(child, delay);
         let what = format!("kill point {k} at {delay:?}");
+        let left = leftovers(dir.path(), pid);
+        tally.leftovers += left.len();
         let report = assert_intact(dir.path(), &what);
         let audit = report["audit_entries_checked"].as_u64().unwrap();
         let now = versions_of(dir.path(), "orders");
@@ -196,6 +219,11 @@ fn ingest_killed_at_fifty_moments_records_all_or_nothing() {
         // Running it again succeeds and ends where the unkilled run did.
         let st = sluice(dir.path(), &args).status().unwrap();
         assert!(st.success(), "{what}: the rerun failed");
+        assert_eq!(
+            leftovers(dir.path(), pid),
+            Vec::<String>::new(),
+            "{what}: the rerun left the killed command's temporary files (there were {left:?})"
+        );
         let after = versions_of(dir.path(), "orders");
         assert_eq!(after.len(), 2, "{what}: the rerun");
         assert_eq!(
@@ -207,11 +235,13 @@ fn ingest_killed_at_fifty_moments_records_all_or_nothing() {
     }
     eprintln!(
         "crash: ingest of {ROWS} rows ({} bytes) took {total:?} unkilled; {KILL_POINTS} kill points: \
-         {} left nothing recorded, {} a complete version and step, {} came after the child had exited",
+         {} left nothing recorded, {} a complete version and step, {} came after the child had exited; \
+         {} temporary files left by the kills, all removed by the rerun",
         std::fs::metadata(&big).unwrap().len(),
         tally.nothing,
         tally.complete,
-        tally.already_done
+        tally.already_done,
+        tally.leftovers
     );
     assert_eq!(
         tally.nothing + tally.complete + tally.already_done,
@@ -245,7 +275,7 @@ fn plan_run_killed_at_fifty_moments_keeps_whole_steps_only() {
     export(base.path(), PLAN_ROWS);
     base.file("plan.json", PLAN);
     // The export is taken in first, so that the kills land in the steps.
-    base.ok(&["ingest", "quillby_q3.csv", "--as", "orders"]);
+    base.ok(&["receive", "quillby_q3.csv", "--as", "orders"]);
     let args = ["run", "plan.json"];
 
     let reference = tempfile::tempdir().unwrap();
@@ -267,8 +297,11 @@ fn plan_run_killed_at_fifty_moments_keeps_whole_steps_only() {
         let dir = tempfile::tempdir().unwrap();
         copy_dir(base.path(), dir.path());
         let child = sluice(dir.path(), &args).spawn().unwrap();
+        let pid = child.id();
         let killed = kill_after(child, delay);
         let what = format!("kill point {k} at {delay:?}");
+        let left = leftovers(dir.path(), pid);
+        tally.leftovers += left.len();
         let report = assert_intact(dir.path(), &what);
         let now = versions_of(dir.path(), "orders");
         let made = now.len() - 1;
@@ -279,7 +312,7 @@ fn plan_run_killed_at_fifty_moments_keeps_whole_steps_only() {
             assert_eq!(
                 by_seq(&now, seq),
                 by_seq(&want, seq),
-                "{what}: orders@{seq}"
+                "{what}: orders:v{seq}"
             );
         }
         assert_eq!(
@@ -297,6 +330,11 @@ fn plan_run_killed_at_fifty_moments_keeps_whole_steps_only() {
         // Running the plan again succeeds and ends with the unkilled run's bytes.
         let st = sluice(dir.path(), &args).status().unwrap();
         assert!(st.success(), "{what}: the rerun failed");
+        assert_eq!(
+            leftovers(dir.path(), pid),
+            Vec::<String>::new(),
+            "{what}: the rerun left the killed command's temporary files (there were {left:?})"
+        );
         let after = versions_of(dir.path(), "orders");
         assert_eq!(
             after.iter().max_by_key(|v| v["seq"].as_u64()).unwrap()["hash"],
@@ -308,11 +346,13 @@ fn plan_run_killed_at_fifty_moments_keeps_whole_steps_only() {
     eprintln!(
         "crash: plan of {PLAN_STEPS} steps on {PLAN_ROWS} rows took {total:?} unkilled; {KILL_POINTS} kill points: \
          {} before the first step was recorded, {} after some of the steps, {} after all of them \
-         (killed), {} after the child had exited; steps recorded when killed: {steps_seen:?}",
+         (killed), {} after the child had exited; steps recorded when killed: {steps_seen:?}; \
+         {} temporary files left by the kills, all removed by the rerun",
         tally.nothing,
         tally.partial_plan,
         tally.complete,
-        tally.already_done
+        tally.already_done,
+        tally.leftovers
     );
     assert!(
         tally.partial_plan > 0,
@@ -344,7 +384,7 @@ fn every_io_point(base: &Path, args: &[&str], dataset: &str, mode: &str) -> u64 
             .unwrap();
         let what = format!("sluice {} with {mode} at I/O point {n}", args.join(" "));
         let report = assert_intact(dir.path(), &what);
-        let known = sluice(dir.path(), &["show", dataset])
+        let known = sluice(dir.path(), &["about", dataset])
             .status()
             .unwrap()
             .success();
@@ -407,8 +447,8 @@ fn every_io_point_of_ingest_apply_and_run_stopped_or_failed() {
     let base = Sandbox::with_store();
     export(base.path(), PLAN_ROWS);
     base.file("plan.json", SHORT_PLAN);
-    let ingest = ["ingest", "quillby_q3.csv", "--as", "orders"];
-    let apply = ["apply", "orders", "trim", "--why", "padded names"];
+    let ingest = ["receive", "quillby_q3.csv", "--as", "orders"];
+    let apply = ["clean", "orders", "trim", "--why", "padded names"];
     let mut counts = Vec::new();
     for mode in ["stop", "fail"] {
         counts.push(every_io_point(base.path(), &ingest, "orders", mode));

@@ -1,4 +1,4 @@
-//! `sluice diff`: the minimal edit script against the worked example of Myers' paper, the diff
+//! `sluice compare`: the minimal edit script against the worked example of Myers' paper, the diff
 //! by key against pandas on generated versions with known edits, golden files of the text
 //! form, the errors, the column changes, and the law "diff, then apply the edit script, gives
 //! the second version" as a property test.
@@ -40,12 +40,12 @@ fn two_versions(first: &str, second: &str, key: Option<&str>) -> Sandbox {
     let s = Sandbox::with_store();
     s.file("first.csv", first);
     s.file("second.csv", second);
-    let mut args = vec!["ingest", "first.csv", "--as", "t"];
+    let mut args = vec!["receive", "first.csv", "--as", "t"];
     if let Some(k) = key {
         args.extend(["--key", k]);
     }
     s.ok(&args);
-    s.ok(&["ingest", "second.csv", "--as", "t"]);
+    s.ok(&["receive", "second.csv", "--as", "t"]);
     s
 }
 
@@ -65,8 +65,8 @@ fn one_column(rows: &str) -> String {
 #[test]
 fn myers_paper_example_has_d_5_and_4_rows_in_common() {
     let s = two_versions(&one_column("ABCABBA"), &one_column("CBABAC"), None);
-    let d = s.json(&["diff", "t@1", "t@2", "--json"]);
-    assert_eq!(d["matched_by"], "order");
+    let d = s.json(&["compare", "t:v1", "t:v2", "--json"]);
+    assert_eq!(d["paired_by"], "order");
     assert_eq!(d["alignment"]["edit_distance"], 5);
     assert_eq!(d["alignment"]["common_rows"], 4);
     assert_eq!(d["rows"]["unchanged"], 4);
@@ -105,10 +105,16 @@ fn keyed_diff_counts_match_pandas_and_the_generator() {
     let rev = sluice::demo::revision_pair(&mut first, &mut second, 100_000).unwrap();
     let a = s.file("first.csv", &first);
     let b = s.file("second.csv", &second);
-    s.ok(&["ingest", "first.csv", "--as", "orders"]);
-    s.ok(&["ingest", "second.csv", "--as", "orders"]);
+    s.ok(&["receive", "first.csv", "--as", "orders"]);
+    s.ok(&["receive", "second.csv", "--as", "orders"]);
     let d = s.json(&[
-        "diff", "orders@1", "orders@2", "--key", "order_id", "--json", "--stat",
+        "compare",
+        "orders:v1",
+        "orders:v2",
+        "--key",
+        "order_id",
+        "--json",
+        "--counts",
     ]);
 
     let out = Command::new(reference_python())
@@ -167,34 +173,36 @@ const SHOPS_2: &str = "order_id,customer,service,parts_cost\n\
 #[test]
 fn keyed_text_output_matches_the_golden_file() {
     let s = two_versions(SHOPS_1, SHOPS_2, Some("order_id"));
-    let out = s.ok(&["diff", "t@1", "t@2"]);
-    assert_contains(&out, "Ada Quenwick[-␣]");
+    let out = s.ok(&["compare", "t:v1", "t:v2"]);
+    // The changed characters in « », white space visible: the removed trailing space.
+    assert_contains(&out, "Ada·Quenwick«·»");
+    let counts = s.ok(&["compare", "t:v1", "t:v2", "--counts"]);
+    assert_contains(&counts, "rows paired by key order_id");
+    assert_contains(&counts, "3 kept (2 of them changed), 1 removed, 1 added");
     golden("diff_keyed.txt", &out);
-    golden(
-        "diff_keyed_stat.txt",
-        &s.ok(&["diff", "t@1", "t@2", "--stat"]),
-    );
+    golden("diff_keyed_stat.txt", &counts);
 }
 
 #[test]
 fn unkeyed_text_output_matches_the_golden_file() {
     let s = two_versions(SHOPS_1, SHOPS_2, None);
-    let out = s.ok(&["diff", "t@1", "t@2"]);
-    assert_contains(&out, "\"Brake Tune[-␣]\" → \"Brake Tune\"");
+    let out = s.ok(&["compare", "t:v1", "t:v2"]);
+    assert_contains(&out, "Brake·Tune«·»");
+    assert_contains(&out, "rows paired by order (no key)");
     golden("diff_unkeyed.txt", &out);
 }
 
 #[test]
 fn limit_caps_the_listing_but_not_the_counts() {
     let s = two_versions(SHOPS_1, SHOPS_2, Some("order_id"));
-    let d = s.json(&["diff", "t@1", "t@2", "--json", "--limit", "1"]);
+    let d = s.json(&["compare", "t:v1", "t:v2", "--json", "--limit", "1"]);
     assert_eq!(d["n_changes"], 4);
     assert_eq!(d["listed"], 1);
     assert_eq!(d["rows"]["changed"], 2);
     assert_eq!(d["changes"][0]["key"], serde_json::json!(["41001"]));
     assert_eq!(d["changes"][0]["cells"][0]["old"], "Ada Quenwick ");
     assert_eq!(d["changes"][0]["cells"][0]["new"], "Ada Quenwick");
-    let text = s.ok(&["diff", "t@1", "t@2", "--limit", "1"]);
+    let text = s.ok(&["compare", "t:v1", "t:v2", "--limit", "1"]);
     assert_contains(&text, "… and 3 more changes not listed (--limit 1)");
 }
 
@@ -202,9 +210,9 @@ fn limit_caps_the_listing_but_not_the_counts() {
 fn no_escape_codes_when_not_at_a_terminal_or_with_no_color() {
     let s = two_versions(SHOPS_1, SHOPS_2, Some("order_id"));
     // Standard output is a pipe here: no colour, whether NO_COLOR is set or not.
-    let with = s.command(&["diff", "t@1", "t@2"]).output().unwrap();
+    let with = s.command(&["compare", "t:v1", "t:v2"]).output().unwrap();
     let without = s
-        .command(&["diff", "t@1", "t@2"])
+        .command(&["compare", "t:v1", "t:v2"])
         .env_remove("NO_COLOR")
         .output()
         .unwrap();
@@ -219,12 +227,12 @@ fn no_escape_codes_when_not_at_a_terminal_or_with_no_color() {
 fn identical_versions_have_no_differences() {
     let s = Sandbox::with_store();
     s.file("a.csv", SHOPS_1);
-    s.ok(&["ingest", "a.csv", "--as", "t"]);
-    s.ok(&["apply", "t", "rename", "service=job", "--why", "one name"]);
-    s.ok(&["apply", "t", "rename", "job=service", "--why", "back again"]);
-    let out = s.ok(&["diff", "t@1", "t@3"]);
+    s.ok(&["receive", "a.csv", "--as", "t"]);
+    s.ok(&["clean", "t", "rename", "service=job", "--why", "one name"]);
+    s.ok(&["clean", "t", "rename", "job=service", "--why", "back again"]);
+    let out = s.ok(&["compare", "t:v1", "t:v3"]);
     assert_contains(&out, "no differences");
-    let d = s.json(&["diff", "t@1", "t@3", "--json", "--key", "order_id"]);
+    let d = s.json(&["compare", "t:v1", "t:v3", "--json", "--key", "order_id"]);
     assert_eq!(d["rows"]["unchanged"], 4);
     assert_eq!(d["n_changes"], 0);
 }
@@ -232,8 +240,8 @@ fn identical_versions_have_no_differences() {
 #[test]
 fn duplicate_keys_are_listed_with_their_rows() {
     let s = two_versions("id,v\n1,a\n2,b\n1,c\n3,d\n2,e\n", "id,v\n1,a\n", None);
-    let err = s.fails(2, &["diff", "t@1", "t@2", "--key", "id"]);
-    assert_contains(&err, "t@1: key id is not unique");
+    let err = s.fails(2, &["compare", "t:v1", "t:v2", "--key", "id"]);
+    assert_contains(&err, "t:v1: key id is not unique");
     assert_contains(&err, "\"1\" (data rows 1, 3)");
     assert_contains(&err, "\"2\" (data rows 2, 5)");
 }
@@ -241,32 +249,32 @@ fn duplicate_keys_are_listed_with_their_rows() {
 #[test]
 fn blank_keys_are_listed_with_their_rows() {
     let s = two_versions("id,v\n1,a\n2,b\n", "id,v\n1,a\n,b\n3,c\n,d\n", None);
-    let err = s.fails(2, &["diff", "t@1", "t@2", "--key", "id"]);
-    assert_contains(&err, "t@2: blank key id in 2 data rows (2, 4)");
+    let err = s.fails(2, &["compare", "t:v1", "t:v2", "--key", "id"]);
+    assert_contains(&err, "t:v2: blank key id in 2 data rows (2, 4)");
 }
 
 #[test]
 fn a_key_column_missing_in_one_version_is_named() {
     let s = two_versions("id,v\n1,a\n", "code,v\n1,a\n", None);
-    let err = s.fails(2, &["diff", "t@1", "t@2", "--key", "id"]);
-    assert_contains(&err, "key column \"id\" not in t@2");
+    let err = s.fails(2, &["compare", "t:v1", "t:v2", "--key", "id"]);
+    assert_contains(&err, "key column \"id\" not in t:v2");
     assert_contains(&err, "its columns are: code, v");
 }
 
 #[test]
 fn unknown_versions_are_refused() {
     let s = two_versions("id\n1\n", "id\n2\n", None);
-    let err = s.fails(2, &["diff", "t@1", "t@9"]);
-    assert_contains(&err, "unknown version \"t@9\"");
-    let err = s.fails(2, &["diff", "nothing", "t@1"]);
+    let err = s.fails(2, &["compare", "t:v1", "t:v9"]);
+    assert_contains(&err, "unknown version \"t:v9\"");
+    let err = s.fails(2, &["compare", "nothing", "t:v1"]);
     assert_contains(&err, "unknown version \"nothing\"");
 }
 
 #[test]
 fn the_declared_key_is_used_without_key_option() {
     let s = two_versions("id,v\n1,a\n2,b\n", "id,v\n2,b\n1,z\n", Some("id"));
-    let d = s.json(&["diff", "t@1", "t@2", "--json"]);
-    assert_eq!(d["matched_by"], "key");
+    let d = s.json(&["compare", "t:v1", "t:v2", "--json"]);
+    assert_eq!(d["paired_by"], "key");
     assert_eq!(d["rows"]["changed"], 1);
     assert_eq!(d["rows"]["unchanged"], 1);
     assert_eq!(d["changes"][0]["from_row"], 1);
@@ -283,7 +291,7 @@ fn added_removed_renamed_and_reordered_columns() {
         "id,shop,telephone,grade\n1,Quillby,555-01,A\n2,Oxwater,555-02,B\n3,Fenmarsh,555-03,C\n";
     for key in [Some("id"), None] {
         let s = two_versions(first, second, key);
-        let d = s.json(&["diff", "t@1", "t@2", "--json"]);
+        let d = s.json(&["compare", "t:v1", "t:v2", "--json"]);
         let cols = &d["columns"];
         assert_eq!(cols["added"], serde_json::json!(["grade"]), "{key:?}");
         assert_eq!(cols["removed"], serde_json::json!(["notes"]));
@@ -298,10 +306,10 @@ fn added_removed_renamed_and_reordered_columns() {
         let cells = &d["changes"][0]["cells"];
         assert_eq!(cells[0]["column"], "shop");
         assert_eq!(cells[0]["old"], "Fennmarsh");
-        let text = s.ok(&["diff", "t@1", "t@2"]);
+        let text = s.ok(&["compare", "t:v1", "t:v2"]);
         assert_contains(
             &text,
-            "columns  added grade; removed notes; renamed phone → telephone; reordered (id, shop, telephone, grade)",
+            "columns: added grade; removed notes; renamed phone now telephone; reordered (id, shop, telephone, grade)",
         );
     }
 }
@@ -365,7 +373,7 @@ proptest! {
     #[test]
     fn applying_the_edit_script_gives_the_second_version(a in table(), b in table()) {
         let dir = tempfile::tempdir().unwrap();
-        let agent = sluice::model::Agent { identity: AGENT.into(), source: "option".into() };
+        let agent = sluice::model::Agent::new(PERSON, Some(EMAIL), "option");
         let mut store = sluice::store::Store::init_recorded(dir.path(), &agent).unwrap();
         let mut versions = Vec::new();
         for (name, rows) in [("a.csv", &a), ("b.csv", &b)] {

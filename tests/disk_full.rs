@@ -135,10 +135,7 @@ impl ObjectBackend for FullDisk {
 }
 
 fn agent() -> Agent {
-    Agent {
-        identity: "Test Runner <runner@example.org>".into(),
-        source: "option".into(),
-    }
+    Agent::new("Test Runner", Some("runner@example.org"), "option")
 }
 
 fn options(dataset: &str) -> IngestOptions {
@@ -216,15 +213,17 @@ fn project() -> Project {
 
 impl Project {
     fn store_dir(&self) -> PathBuf {
-        self.dir.path().join(".sluice")
+        self.dir.path().join("sluice-store")
     }
 
     /// Everything observable about the store, read through the library: steps and versions,
     /// the audit log, the recorded objects, and every file under objects/ and tmp/.
     fn snapshot(&self) -> String {
         let store = Store::open(&self.store_dir()).unwrap();
-        let log =
-            serde_json::to_string_pretty(&sluice::history::log(&store, None).unwrap()).unwrap();
+        let log = serde_json::to_string_pretty(
+            &sluice::history::timeline(&store, &Default::default()).unwrap(),
+        )
+        .unwrap();
         let audit = store.lineage.audit_entries().unwrap();
         let objects = store.lineage.objects().unwrap();
         let mut files = Vec::new();
@@ -314,7 +313,7 @@ fn check_full_disk(p: &Project, target: Target, limit: u64) {
     assert_eq!(
         p.temp_files(),
         Vec::<String>::new(),
-        "{target:?} limit {limit}: temporary files left in .sluice/tmp"
+        "{target:?} limit {limit}: temporary files left in sluice-store/tmp"
     );
     assert_eq!(
         before,
@@ -342,7 +341,7 @@ fn ingest_for_real(p: &Project, index_len: u64) {
     let mut store = Store::open(&p.store_dir()).unwrap();
     match intake::ingest(&mut store, &p.big, &options("orders")).unwrap() {
         IngestOutcome::Recorded { version, .. } => {
-            assert_eq!(version.label(), "orders@2");
+            assert_eq!(version.label(), "orders:v2");
             assert_eq!(version.n_rows, p.big_rows);
             assert_eq!(version.n_bytes, p.big_len);
             let recorded = store.lineage.objects().unwrap();
@@ -453,14 +452,14 @@ fn disk_full_on_a_small_tmpfs_reports_no_space_left_and_leaves_the_store_unchang
 
     let s = Sandbox::new();
     let _mount = TmpfsMount::new(s.path(), "2m"); // dropped (unmounted) before `s`
-    s.ok(&["init"]);
+    s.ok(&["setup"]);
     s.file("seed.csv", "order_id,shop\nWO-1,Fennmarsh Bike Clinic\n");
-    s.ok(&["ingest", "seed.csv", "--as", "orders"]);
+    s.ok(&["receive", "seed.csv", "--as", "orders"]);
 
     let before = s.snapshot();
-    let err = s.fails(1, &["ingest", big.to_str().unwrap(), "--as", "orders"]);
+    let err = s.fails(1, &["receive", big.to_str().unwrap(), "--as", "orders"]);
     let after = s.snapshot();
-    assert_contains(&err, ".sluice/tmp: no space left on the device");
+    assert_contains(&err, "sluice-store/tmp: no space left on the device");
     assert_contains(&err, "free some space and run the command again");
     assert!(
         !err.contains("panicked"),
@@ -518,14 +517,14 @@ fn disk_full_during_apply_and_run_reports_no_space_left_and_leaves_the_store_unc
 
     let s = Sandbox::new();
     let _mount = TmpfsMount::new(s.path(), "2m"); // dropped (unmounted) before `s`
-    s.ok(&["init"]);
-    s.ok(&["ingest", file.to_str().unwrap(), "--as", "orders"]);
+    s.ok(&["setup"]);
+    s.ok(&["receive", file.to_str().unwrap(), "--as", "orders"]);
     let free = {
         let out = Command::new("df").arg("-k").arg(s.path()).output().unwrap();
         String::from_utf8_lossy(&out.stdout).into_owned()
     };
     for args in [
-        vec!["apply", "orders", "trim", "--why", "padded names"],
+        vec!["clean", "orders", "trim", "--why", "padded names"],
         vec!["run", plan.to_str().unwrap()],
     ] {
         let before = s.snapshot();

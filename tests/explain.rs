@@ -23,7 +23,7 @@ fn the_adelie_count_is_explained_by_its_rows_and_the_six_dropped_upstream() {
     let any_na = "bill_length_mm is blank or bill_depth_mm is blank or flipper_length_mm is blank \
                   or body_mass_g is blank or sex is blank";
     s.ok(&[
-        "apply",
+        "clean",
         "penguins",
         "drop",
         any_na,
@@ -31,7 +31,7 @@ fn the_adelie_count_is_explained_by_its_rows_and_the_six_dropped_upstream() {
         "complete records only",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "penguins",
         "summarize",
         "--by",
@@ -95,9 +95,9 @@ fn the_adelie_count_is_explained_by_its_rows_and_the_six_dropped_upstream() {
     ]);
     assert_contains(
         &text,
-        "count of by_species@1, data row 1 (species \"Adelie\"): \"146\"",
+        "count of by_species:v1, data row 1 (species \"Adelie\"): \"146\"",
     );
-    assert_contains(&text, "computed again from penguins@2: \"146\" (agrees)");
+    assert_contains(&text, "computed again from penguins:v2: \"146\" (agrees)");
     assert_contains(
         &text,
         "dropped 6 rows of this group: matched the drop predicate",
@@ -112,14 +112,14 @@ fn a_union_then_dedupe_names_the_dropped_duplicate() {
     let s = Sandbox::with_store();
     s.file("a.csv", "shop,city\nQuillby Cycle Mend,Quillby\n");
     s.file("b.csv", "shop,city\nQuillby Cycle Mend,Quillby\n");
-    s.ok(&["ingest", "a.csv", "--as", "first"]);
-    s.ok(&["ingest", "b.csv", "--as", "second"]);
+    s.ok(&["receive", "a.csv", "--as", "first"]);
+    s.ok(&["receive", "b.csv", "--as", "second"]);
     s.ok(&[
-        "apply", "first", "append", "--other", "second", "--why", "merge",
+        "clean", "first", "append", "--other", "second", "--why", "merge",
     ]);
-    s.ok(&["apply", "first", "dedupe", "--why", "same shop twice"]);
+    s.ok(&["clean", "first", "dedupe", "--why", "same shop twice"]);
     s.ok(&[
-        "apply",
+        "clean",
         "first",
         "summarize",
         "--by",
@@ -157,10 +157,10 @@ fn the_phone_of_a_joined_selected_row_comes_from_the_employee_cell() {
         "name,phone,dept\nIvo Ashford,555-0101,1\nNell Corby,555-0102,2\nKit Fenwell,555-0103,1\n",
     );
     s.file("departments.csv", "dept_no,dept_name\n1,CS\n2,Physics\n");
-    s.ok(&["ingest", "employees.csv", "--as", "employees"]);
-    s.ok(&["ingest", "departments.csv", "--as", "departments"]);
+    s.ok(&["receive", "employees.csv", "--as", "employees"]);
+    s.ok(&["receive", "departments.csv", "--as", "departments"]);
     s.ok(&[
-        "apply",
+        "clean",
         "employees",
         "lookup",
         "--table",
@@ -175,7 +175,7 @@ fn the_phone_of_a_joined_selected_row_comes_from_the_employee_cell() {
         "department names",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "employees",
         "keep",
         "dept_name = 'CS'",
@@ -183,7 +183,7 @@ fn the_phone_of_a_joined_selected_row_comes_from_the_employee_cell() {
         "CS only",
     ]);
     let out = s.ok(&[
-        "apply",
+        "clean",
         "employees",
         "select",
         "name,phone",
@@ -202,14 +202,14 @@ fn the_phone_of_a_joined_selected_row_comes_from_the_employee_cell() {
     ]);
     assert_eq!(t["value"], "555-0103");
     assert_eq!(t["end"]["kind"], "raw");
-    assert_eq!(t["end"]["version"], "employees@1");
+    assert_eq!(t["end"]["version"], "employees:v1");
     assert_eq!(t["end"]["column"], "phone");
     assert_eq!(t["end"]["line"], 4);
     assert_eq!(t["end"]["raw_value"], "555-0103");
     // The department the keep decided on is its own cell of the departments table.
     let t = s.json(&[
         "trace",
-        "employees@3",
+        "employees:v3",
         "--row",
         "2",
         "--column",
@@ -217,7 +217,7 @@ fn the_phone_of_a_joined_selected_row_comes_from_the_employee_cell() {
         "--json",
     ]);
     let sub = &t["end"]["sources"][0]["trail"];
-    assert_eq!(sub["version"], "departments@1");
+    assert_eq!(sub["version"], "departments:v1");
     assert_eq!(sub["end"]["raw_line"], "1,CS");
 }
 
@@ -225,9 +225,9 @@ fn the_phone_of_a_joined_selected_row_comes_from_the_employee_cell() {
 fn explain_refuses_what_is_not_a_summary_cell() {
     let s = Sandbox::with_store();
     s.file("o.csv", "shop,amount\nQuillby,1\nOxwater,2\n");
-    s.ok(&["ingest", "o.csv", "--as", "orders"]);
+    s.ok(&["receive", "o.csv", "--as", "orders"]);
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "summarize",
         "--by",
@@ -244,15 +244,15 @@ fn explain_refuses_what_is_not_a_summary_cell() {
             2,
             &["explain", "orders", "--row", "1", "--column", "amount"],
         ),
-        "orders@1 was not made by summarize",
+        "orders:v1 was not made by summarize",
     );
     assert_contains(
         &s.fails(2, &["explain", "totals", "--row", "1", "--column", "shop"]),
-        "column \"shop\" of totals@1 is not an aggregate; its aggregates are: count, sum_amount",
+        "column \"shop\" of totals:v1 is not an aggregate; its aggregates are: count, sum_amount",
     );
     assert_contains(
         &s.fails(2, &["explain", "totals", "--row", "3", "--column", "count"]),
-        "totals@1 has data rows 1 to 2; there is no row 3",
+        "totals:v1 has data rows 1 to 2; there is no row 3",
     );
     let e = explain(
         &s,

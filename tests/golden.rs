@@ -1,4 +1,4 @@
-//! Golden files for what people read: `sluice show` of the vendored palmerpenguins data, with
+//! Golden files for what people read: `sluice about` of the vendored palmerpenguins data, with
 //! the parts that change from run to run (times, folders) masked. Set SLUICE_BLESS=1 to rewrite
 //! the golden file after an intended change, and review the diff.
 
@@ -34,7 +34,7 @@ fn show_of_palmerpenguins_matches_the_golden_file() {
     let s = Sandbox::with_store();
     s.file("penguins.csv", penguins_csv());
     s.ok(&[
-        "ingest",
+        "receive",
         "penguins.csv",
         "--as",
         "penguins",
@@ -44,7 +44,7 @@ fn show_of_palmerpenguins_matches_the_golden_file() {
         "reference data",
     ]);
     let root = s.path().canonicalize().unwrap().display().to_string();
-    let actual = mask(&s.ok(&["show", "penguins"]), &root);
+    let actual = mask(&s.ok(&["about", "penguins"]), &root);
     let actual = mask(&actual, &s.path().display().to_string());
     let golden = concat!(
         env!("CARGO_MANIFEST_DIR"),

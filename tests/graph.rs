@@ -8,7 +8,7 @@ use common::{assert_contains, Sandbox};
 #[test]
 fn impact_lists_everything_downstream_and_what_is_in_use_now() {
     let d = Sandbox::with_demo();
-    let i = d.json(&["impact", "technicians@1", "--json"]);
+    let i = d.json(&["impact", "technicians:v1", "--json"]);
     let ops: Vec<&str> = i["steps"]
         .as_array()
         .unwrap()
@@ -35,40 +35,40 @@ fn impact_lists_everything_downstream_and_what_is_in_use_now() {
     assert_eq!(
         i["current"],
         serde_json::json!([
-            "all_orders@9",
-            "q3_by_shop@1",
-            "q3_shop_totals@1",
-            "reviewed_orders@2"
+            "all_orders:v9",
+            "q3_by_shop:v1",
+            "q3_shop_totals:v1",
+            "reviewed_orders:v2"
         ])
     );
     // A raw export reaches every version made from it, in recording order.
-    let i = d.json(&["impact", "oxwater_orders@1", "--json"]);
+    let i = d.json(&["impact", "oxwater_orders:v1", "--json"]);
     let made: Vec<&str> = i["versions"]
         .as_array()
         .unwrap()
         .iter()
         .map(|v| v["label"].as_str().unwrap())
         .collect();
-    assert_eq!(made.first(), Some(&"oxwater_orders@2"));
-    assert_eq!(made.last(), Some(&"reviewed_orders@2"));
-    assert!(!made.contains(&"quillby_orders@2"));
+    assert_eq!(made.first(), Some(&"oxwater_orders:v2"));
+    assert_eq!(made.last(), Some(&"reviewed_orders:v2"));
+    assert!(!made.contains(&"quillby_orders:v2"));
     assert_eq!(
         made.len(),
         4 + 9 + 2 + 2,
-        "four Oxwater versions, all_orders@1-9, the two summaries, the two reviewed versions"
+        "four Oxwater versions, all_orders:v1-9, the two summaries, the two reviewed versions"
     );
     assert_contains(
         &d.ok(&["impact", "q3_by_shop"]),
-        "nothing depends on q3_by_shop@1",
+        "nothing depends on q3_by_shop:v1",
     );
 }
 
 #[test]
 fn the_graph_is_drawn_as_dot_and_as_well_formed_self_contained_svg() {
     let d = Sandbox::with_demo();
-    let dot = d.ok(&["graph"]);
+    let dot = d.ok(&["lineage"]);
     assert!(dot.starts_with("digraph lineage {"));
-    let log = d.json(&["log", "--json"]);
+    let log = d.json(&["timeline", "--json"]);
     let steps = log.as_array().unwrap();
     // One edge per version a step read or made.
     let edges: usize = steps
@@ -79,14 +79,14 @@ fn the_graph_is_drawn_as_dot_and_as_well_formed_self_contained_svg() {
         })
         .sum();
     assert_eq!(dot.matches(" -> ").count(), edges);
-    assert_contains(&dot, "label=\"q3_by_shop@1\\n");
+    assert_contains(&dot, "label=\"q3_by_shop:v1\\n");
     // Around one version: what it comes from and what depends on it, nothing else.
-    let part = d.ok(&["graph", "technicians"]);
-    assert_contains(&part, "technicians@1");
-    assert_contains(&part, "q3_by_shop@1");
-    assert!(!part.contains("oxwater_orders@1"));
+    let part = d.ok(&["lineage", "technicians"]);
+    assert_contains(&part, "technicians:v1");
+    assert_contains(&part, "q3_by_shop:v1");
+    assert!(!part.contains("oxwater_orders:v1"));
 
-    d.ok(&["graph", "--format", "svg", "-o", "lineage.svg"]);
+    d.ok(&["lineage", "--format", "svg", "-o", "lineage.svg"]);
     // Well-formed XML, checked with Python's xml.etree (a general-purpose parser), with one
     // box per node, one curve per edge, and nothing fetched from outside.
     let script = r#"

@@ -53,10 +53,7 @@ impl Read for Pieces {
 #[test]
 fn official_vectors_through_hash_reader_and_the_object_writer() {
     let dir = tempfile::tempdir().unwrap();
-    let agent = Agent {
-        identity: "t".into(),
-        source: "option".into(),
-    };
+    let agent = Agent::new("t", None, "option");
     let store = Store::init_recorded(dir.path(), &agent).unwrap();
     for &(len, expected) in VECTORS {
         let data = vector_input(len);
@@ -99,10 +96,7 @@ fn ingest_records_the_blake3_of_the_bytes_across_piece_boundaries() {
         i += 1;
     }
     let dir = tempfile::tempdir().unwrap();
-    let agent = Agent {
-        identity: "t".into(),
-        source: "option".into(),
-    };
+    let agent = Agent::new("t", None, "option");
     let mut store = Store::init_recorded(dir.path(), &agent).unwrap();
     let path = dir.path().join("big.csv");
     std::fs::write(&path, &text).unwrap();
@@ -155,7 +149,7 @@ proptest! {
     #[test]
     fn ingest_then_cat_gives_the_same_bytes(data in csvish()) {
         let dir = tempfile::tempdir().unwrap();
-        let agent = Agent { identity: "t".into(), source: "option".into() };
+        let agent = Agent::new("t", None, "option");
         let mut store = Store::init_recorded(dir.path(), &agent).unwrap();
         let path = dir.path().join("in.csv");
         std::fs::write(&path, &data).unwrap();

@@ -15,8 +15,8 @@ fn rfc4180_examples_parse_to_the_documented_fields_and_round_trip() {
     let s = Sandbox::with_store();
     let bytes = b"\"aaa\",\"b\r\nbb\",\"ccc\"\r\nzzz,\"y,y\",\"x\"\"x\"";
     s.file("rfc.csv", bytes);
-    s.ok(&["ingest", "rfc.csv", "--as", "rfc", "--no-header"]);
-    let shown = s.json(&["show", "rfc", "--json"]);
+    s.ok(&["receive", "rfc.csv", "--as", "rfc", "--no-header"]);
+    let shown = s.json(&["about", "rfc", "--json"]);
     assert_eq!(shown["version"]["n_rows"], 2);
     assert_eq!(shown["version"]["n_cols"], 3);
     assert_eq!(
@@ -37,11 +37,11 @@ fn rfc4180_examples_parse_to_the_documented_fields_and_round_trip() {
         (p[2]["min"].as_str(), p[2]["max"].as_str()),
         (Some("ccc"), Some("x\"x"))
     );
-    let r = s.run(&["cat", "rfc"]);
+    let r = s.run(&["retrieve", "rfc"]);
     assert_eq!(r.code, 0);
     assert_eq!(r.raw_stdout, bytes.to_vec());
     // The second record starts on line 3: the first holds a line break inside quotes.
-    let store = sluice::store::Store::open(&s.path().join(".sluice")).unwrap();
+    let store = sluice::store::Store::open(&s.path().join("sluice-store")).unwrap();
     let v = sluice::refs::resolve(&store.lineage, "rfc").unwrap();
     let idx = store
         .objects
@@ -57,8 +57,8 @@ fn rfc4180_examples_parse_to_the_documented_fields_and_round_trip() {
 fn rfc4180_empty_fields_count_as_blanks() {
     let s = Sandbox::with_store();
     s.file("e.csv", "x,y,z\r\na,,c\r\n,\"\",\r\n");
-    s.ok(&["ingest", "e.csv", "--as", "empties"]);
-    let p = s.json(&["show", "empties", "--json"])["profile"].clone();
+    s.ok(&["receive", "e.csv", "--as", "empties"]);
+    let p = s.json(&["about", "empties", "--json"])["profile"].clone();
     assert_eq!(p[0]["n_blank"], 1);
     assert_eq!(p[1]["n_blank"], 2);
     assert_eq!(p[1]["inferred_type"], "empty");
@@ -71,7 +71,7 @@ fn rfc4180_empty_fields_count_as_blanks() {
 #[test]
 fn palmerpenguins_profile_matches_the_published_counts() {
     let s = Sandbox::with_penguins();
-    let shown = s.json(&["show", "penguins", "--json"]);
+    let shown = s.json(&["about", "penguins", "--json"]);
     assert_eq!(shown["version"]["n_rows"], 344);
     assert_eq!(shown["version"]["n_cols"], 8);
     let blanks: Vec<(String, u64)> = shown["profile"]
@@ -103,8 +103,8 @@ fn palmerpenguins_profile_matches_the_published_counts() {
     assert_eq!(p[5]["inferred_type"], "integer");
     assert_eq!(p[0]["n_distinct"], 3);
     // Without the null token, NA is text and the measurement columns are not numeric.
-    s.ok(&["ingest", "penguins.csv", "--as", "penguins_raw"]);
-    let raw = s.json(&["show", "penguins_raw", "--json"]);
+    s.ok(&["receive", "penguins.csv", "--as", "penguins_raw"]);
+    let raw = s.json(&["about", "penguins_raw", "--json"]);
     assert_eq!(raw["profile"][2]["inferred_type"], "text");
     assert_eq!(raw["profile"][6]["n_blank"], 0);
 }
@@ -129,8 +129,8 @@ fn python_profile(file: &std::path::Path, delimiter: &str, nulls: &[&str]) -> se
 
 fn assert_profile_matches_reference(s: &Sandbox, dataset: &str, reference: &serde_json::Value) {
     // The first version: the export as it was taken in.
-    let first = format!("{dataset}@1");
-    let shown = s.json(&["show", &first, "--json"]);
+    let first = format!("{dataset}:v1");
+    let shown = s.json(&["about", &first, "--json"]);
     assert_eq!(
         shown["version"]["n_rows"], reference["n_rows"],
         "rows of {dataset}"
@@ -192,7 +192,7 @@ fn profile_agrees_with_python_csv_module() {
 #[test]
 fn dialect_of_each_demo_export_is_detected() {
     let d = Sandbox::with_demo();
-    let ox = d.json(&["show", "oxwater_orders@1", "--json"]);
+    let ox = d.json(&["about", "oxwater_orders:v1", "--json"]);
     let dl = &ox["version"]["dialect"];
     assert_eq!(dl["delimiter"], ";");
     assert_eq!(dl["line_ending"], "crlf");
@@ -200,7 +200,7 @@ fn dialect_of_each_demo_export_is_detected() {
     assert_eq!(dl["delimiter_detected"], true);
     // The BOM is not part of the first column's name.
     assert_eq!(ox["version"]["header"][0], "order no");
-    let q = d.json(&["show", "quillby_orders@1", "--json"]);
+    let q = d.json(&["about", "quillby_orders:v1", "--json"]);
     assert_eq!(q["version"]["dialect"]["line_ending"], "lf");
     assert_eq!(q["version"]["dialect"]["bom"], false);
 }
@@ -211,10 +211,10 @@ fn tab_and_pipe_files_and_an_explicit_delimiter() {
     s.file("t.tsv", "a\tb\n1\t2\n3\t4\n");
     s.file("p.txt", "a|b|c\n1|2|3\n");
     s.file("semi_as_comma.csv", "a;b,c\n1;2,3\n");
-    s.ok(&["ingest", "t.tsv", "--as", "tabbed"]);
-    s.ok(&["ingest", "p.txt", "--as", "piped"]);
+    s.ok(&["receive", "t.tsv", "--as", "tabbed"]);
+    s.ok(&["receive", "p.txt", "--as", "piped"]);
     s.ok(&[
-        "ingest",
+        "receive",
         "semi_as_comma.csv",
         "--as",
         "given",
@@ -222,11 +222,14 @@ fn tab_and_pipe_files_and_an_explicit_delimiter() {
         ",",
     ]);
     assert_eq!(
-        s.json(&["show", "tabbed", "--json"])["version"]["dialect"]["delimiter"],
+        s.json(&["about", "tabbed", "--json"])["version"]["dialect"]["delimiter"],
         "\t"
     );
-    assert_eq!(s.json(&["show", "piped", "--json"])["version"]["n_cols"], 3);
-    let g = s.json(&["show", "given", "--json"]);
+    assert_eq!(
+        s.json(&["about", "piped", "--json"])["version"]["n_cols"],
+        3
+    );
+    let g = s.json(&["about", "given", "--json"]);
     assert_eq!(g["version"]["header"], serde_json::json!(["a;b", "c"]));
     assert_eq!(g["version"]["dialect"]["delimiter_detected"], false);
 }
@@ -235,20 +238,20 @@ fn tab_and_pipe_files_and_an_explicit_delimiter() {
 fn identical_bytes_record_no_new_version() {
     let s = Sandbox::with_store();
     s.file("a.csv", "id,v\n1,x\n");
-    s.ok(&["ingest", "a.csv", "--as", "things"]);
+    s.ok(&["receive", "a.csv", "--as", "things"]);
     let before = s.snapshot();
-    let out = s.ok(&["ingest", "a.csv", "--as", "things"]);
+    let out = s.ok(&["receive", "a.csv", "--as", "things"]);
     assert_contains(&out, "unchanged");
-    assert_contains(&out, "things@1");
+    assert_contains(&out, "things:v1");
     assert_eq!(before, s.snapshot());
     // Different bytes make version 2; going back to the first bytes makes version 3.
     s.file("a.csv", "id,v\n1,y\n");
-    s.ok(&["ingest", "a.csv", "--as", "things"]);
+    s.ok(&["receive", "a.csv", "--as", "things"]);
     s.file("a.csv", "id,v\n1,x\n");
-    let out = s.ok(&["ingest", "a.csv", "--as", "things"]);
-    assert_contains(&out, "things@3");
-    let v1 = s.json(&["show", "things@1", "--json"]);
-    let v3 = s.json(&["show", "things@3", "--json"]);
+    let out = s.ok(&["receive", "a.csv", "--as", "things"]);
+    assert_contains(&out, "things:v3");
+    let v1 = s.json(&["about", "things:v1", "--json"]);
+    let v3 = s.json(&["about", "things:v3", "--json"]);
     assert_eq!(v1["version"]["hash"], v3["version"]["hash"]);
 }
 
@@ -256,64 +259,102 @@ fn identical_bytes_record_no_new_version() {
 fn references_by_name_number_and_hash_prefix() {
     let s = Sandbox::with_store();
     s.file("a.csv", "id\n1\n");
-    s.ok(&["ingest", "a.csv", "--as", "things"]);
+    s.ok(&["receive", "a.csv", "--as", "things"]);
     s.file("a.csv", "id\n2\n");
-    s.ok(&["ingest", "a.csv", "--as", "things"]);
-    let v1 = s.json(&["show", "things@1", "--json"]);
+    s.ok(&["receive", "a.csv", "--as", "things"]);
+    let v1 = s.json(&["about", "things:v1", "--json"]);
     let hash = v1["version"]["hash"].as_str().unwrap().to_string();
     assert_eq!(hash, blake3::hash(b"id\n1\n").to_hex().to_string());
-    let by_prefix = s.json(&["show", &hash[..8], "--json"]);
+    let by_prefix = s.json(&["about", &format!("blake3:{}", &hash[..8]), "--json"]);
     assert_eq!(by_prefix["version"]["seq"], 1);
     assert_eq!(by_prefix["is_latest"], false);
-    assert_eq!(s.json(&["show", "things", "--json"])["version"]["seq"], 2);
-    assert_eq!(s.run(&["cat", &hash[..6]]).raw_stdout, b"id\n1\n".to_vec());
+    assert_eq!(s.json(&["about", "things", "--json"])["version"]["seq"], 2);
+    assert_eq!(
+        s.run(&["retrieve", &format!("blake3:{hash}")]).raw_stdout,
+        b"id\n1\n".to_vec()
+    );
 }
 
 #[test]
-fn log_lists_steps_newest_first_with_who_when_why() {
+fn timeline_lists_steps_oldest_first_with_who_when_why() {
     let s = Sandbox::with_store();
     s.file("a.csv", "id\n1\n");
     s.file("b.csv", "k\nz\n");
-    s.ok(&["ingest", "a.csv", "--as", "alpha", "--why", "first export"]);
+    s.ok(&["receive", "a.csv", "--as", "alpha", "--why", "first export"]);
     s.ok(&[
-        "ingest",
+        "receive",
         "b.csv",
         "--as",
         "beta",
-        "--agent",
-        "Jo Tester <jo@example.net>",
+        "--person",
+        "Jo Tester",
+        "--email",
+        "jo@example.net",
     ]);
-    let log = s.json(&["log", "--json"]);
+    let log = s.json(&["timeline", "--json"]);
     let entries = log.as_array().unwrap();
     assert_eq!(entries.len(), 2);
-    assert_eq!(entries[0]["produced"][0]["dataset"], "beta");
-    // --agent wins over SLUICE_AGENT (set by the test helper).
-    assert_eq!(entries[0]["step"]["agent"], "Jo Tester <jo@example.net>");
-    assert_eq!(entries[1]["step"]["agent"], AGENT);
-    assert_eq!(entries[1]["step"]["reason"], "first export");
-    assert_eq!(entries[1]["step"]["kind"], "ingest");
+    assert_eq!(entries[1]["produced"][0]["dataset"], "beta");
+    // --person wins over SLUICE_PERSON (set by the test helper).
+    assert_eq!(entries[1]["step"]["agent"], "Jo Tester (jo@example.net)");
+    assert_eq!(entries[0]["step"]["agent"], AGENT);
+    assert_eq!(entries[0]["step"]["reason"], "first export");
+    assert_eq!(entries[0]["step"]["kind"], "ingest");
     assert_eq!(
-        entries[1]["step"]["tool_version"],
+        entries[0]["step"]["tool_version"],
         concat!("sluice ", env!("CARGO_PKG_VERSION"))
     );
-    assert_eq!(entries[1]["step"]["rows_out"], 1);
-    assert!(entries[1]["step"]["source"]["absolute_path"]
+    assert_eq!(entries[0]["step"]["rows_out"], 1);
+    assert!(entries[0]["step"]["source"]["absolute_path"]
         .as_str()
         .unwrap()
         .ends_with("a.csv"));
-    let only_alpha = s.json(&["log", "alpha", "--json"]);
+    let only_alpha = s.json(&["timeline", "--dataset", "alpha", "--json"]);
     assert_eq!(only_alpha.as_array().unwrap().len(), 1);
-    let text = s.ok(&["log"]);
-    assert_contains(&text, "why   first export");
-    assert_contains(&text, "made  alpha@1");
+    let text = s.ok(&["timeline"]);
+    let lines: Vec<&str> = text.lines().collect();
+    assert_eq!(lines.len(), 3, "{text}");
+    for col in ["when (UTC)", "step", "action", "made", "by", "reason"] {
+        assert_contains(lines[0], col);
+    }
+    // Oldest first: alpha's intake, then beta's; the store-wide step numbers 1 and 2.
+    let words = |l: &str| l.split_whitespace().map(str::to_string).collect::<Vec<_>>();
+    assert_eq!(&words(lines[1])[2..5], ["1", "receive", "alpha:v1"]);
+    assert!(
+        lines[1].trim_end().ends_with("Test Runner  first export"),
+        "{text}"
+    );
+    assert_eq!(&words(lines[2])[2..5], ["2", "receive", "beta:v1"]);
+    // The filters: by person (name or address), by time, the latest N.
+    let count = |args: &[&str]| {
+        let mut all = vec!["timeline", "--json"];
+        all.extend_from_slice(args);
+        s.json(&all).as_array().unwrap().len()
+    };
+    assert_eq!(count(&["--by", "jo tester"]), 1);
+    assert_eq!(count(&["--by", "jo@example.net"]), 1);
+    assert_eq!(count(&["--by", "Nobody"]), 0);
+    assert_eq!(count(&["--since", "2000-01-01"]), 2);
+    assert_eq!(count(&["--until", "2000-01-01"]), 0);
+    assert_eq!(count(&["--since", "9999-12-31T00:00:00Z"]), 0);
+    let today = entries[0]["step"]["started_at"].as_str().unwrap()[..10].to_string();
+    assert_eq!(
+        count(&["--until", &today]),
+        2,
+        "a date includes its whole day"
+    );
+    let latest = s.json(&["timeline", "--json", "--limit", "1"]);
+    assert_eq!(latest[0]["produced"][0]["dataset"], "beta");
+    let err = s.fails(2, &["timeline", "--since", "yesterday"]);
+    assert_contains(&err, "--since yesterday: expected an ISO 8601 date");
 }
 
 #[test]
 fn key_is_declared_on_the_dataset() {
     let s = Sandbox::with_store();
     s.file("k.csv", "order_id,shop\n1,Quillby\n2,Oxwater\n");
-    s.ok(&["ingest", "k.csv", "--as", "orders", "--key", "order_id"]);
-    let shown = s.json(&["show", "orders", "--json"]);
+    s.ok(&["receive", "k.csv", "--as", "orders", "--key", "order_id"]);
+    let shown = s.json(&["about", "orders", "--json"]);
     assert_eq!(shown["key"], serde_json::json!(["order_id"]));
 }
 
@@ -321,7 +362,7 @@ fn key_is_declared_on_the_dataset() {
 fn header_that_looks_like_data_gets_a_warning() {
     let s = Sandbox::with_store();
     s.file("n.csv", "1,2\n3,4\n5,6\n");
-    let r = s.run(&["ingest", "n.csv", "--as", "numbers"]);
+    let r = s.run(&["receive", "n.csv", "--as", "numbers"]);
     assert_eq!(r.code, 0);
     assert_contains(&r.stderr, "--no-header");
 }
@@ -330,7 +371,7 @@ fn header_that_looks_like_data_gets_a_warning() {
 fn verify_names_a_flipped_byte_and_an_edited_audit_entry() {
     let s = Sandbox::with_store();
     s.file("a.csv", "id,v\n1,x\n2,y\n");
-    s.ok(&["ingest", "a.csv", "--as", "things"]);
+    s.ok(&["receive", "a.csv", "--as", "things"]);
     assert_contains(&s.ok(&["verify"]), "intact");
     let hash = blake3::hash(b"id,v\n1,x\n2,y\n").to_hex().to_string();
     damage_object(&s.path().join(sluice::store::STORE_DIR), &hash, |bytes| {
@@ -345,9 +386,9 @@ fn verify_names_a_flipped_byte_and_an_edited_audit_entry() {
     });
     assert_eq!(s.run(&["verify"]).code, 0);
 
-    let db = rusqlite::Connection::open(s.path().join(".sluice/lineage.db")).unwrap();
+    let db = rusqlite::Connection::open(s.path().join("sluice-store/lineage.db")).unwrap();
     db.execute(
-        "UPDATE audit_log SET subject = 'things@7' WHERE seq = 2",
+        "UPDATE audit_log SET subject = 'things:v7' WHERE seq = 2",
         [],
     )
     .unwrap();
@@ -367,7 +408,7 @@ fn demo_builds_a_store_that_verifies() {
     let s = Sandbox::new();
     let out = s.ok(&["demo"]);
     assert_contains(&out, "sluice-demo");
-    assert_contains(&out, "quillby_orders@1");
+    assert_contains(&out, "quillby_orders:v1");
     assert_contains(&out, "try next:");
     let d = Sandbox {
         dir: tempfile::tempdir().unwrap(),
@@ -388,29 +429,29 @@ fn demo_builds_a_store_that_verifies() {
         .count();
     assert_eq!(applies, 21);
     assert_eq!(
-        d.json(&["log", "--json"]).as_array().unwrap().len(),
+        d.json(&["timeline", "--json"]).as_array().unwrap().len(),
         5 + applies + 2
     );
-    let reviewed = d.json(&["log", "reviewed_orders", "--json"]);
+    let reviewed = d.json(&["timeline", "--dataset", "reviewed_orders", "--json"]);
     let kinds: Vec<&str> = reviewed
         .as_array()
         .unwrap()
         .iter()
         .map(|e| e["step"]["kind"].as_str().unwrap())
         .collect();
-    assert_eq!(kinds, ["hand_edit", "command"]);
+    assert_eq!(kinds, ["command", "hand_edit"], "oldest first");
     assert_eq!(
-        d.json(&["show", "quillby_orders", "--json"])["version"]["seq"],
+        d.json(&["about", "quillby_orders", "--json"])["version"]["seq"],
         4
     );
     assert_eq!(
-        d.json(&["show", "q3_by_shop", "--json"])["version"]["n_rows"],
+        d.json(&["about", "q3_by_shop", "--json"])["version"]["n_rows"],
         9
     );
     // It ends by answering the two questions: where an amount came from, why a total is what
     // it is.
     assert_contains(&out, "where did this amount come from?");
-    assert_contains(&out, "oxwater_orders@1 line 2, column parts: \"54,34 €\"");
+    assert_contains(&out, "oxwater_orders:v1 line 2, column parts: \"54,34 €\"");
     assert_contains(&out, "why is this total what it is?");
     assert_contains(&out, "(agrees)");
     // A second demo in the same folder goes to a new folder.
@@ -422,7 +463,7 @@ fn cat_to_a_file_writes_exact_bytes() {
     let s = Sandbox::with_store();
     let bytes = penguins_csv();
     s.file("p.csv", &bytes);
-    s.ok(&["ingest", "p.csv", "--as", "penguins"]);
-    s.ok(&["cat", "penguins", "-o", "copy.csv"]);
+    s.ok(&["receive", "p.csv", "--as", "penguins"]);
+    s.ok(&["retrieve", "penguins", "-o", "copy.csv"]);
     assert_eq!(std::fs::read(s.path().join("copy.csv")).unwrap(), bytes);
 }

@@ -50,7 +50,7 @@ fn workbooks() -> (Sandbox, Value) {
 
 /// The rows of a version, through `cat --format jsonl`, each as (column, value) pairs in order.
 fn rows(s: &Sandbox, reference: &str) -> Vec<Vec<(String, String)>> {
-    s.ok(&["cat", reference, "--format", "jsonl"])
+    s.ok(&["retrieve", reference, "--format", "jsonl"])
         .lines()
         .map(|line| {
             // Read in order: serde_json's map sorts keys, so walk the raw text's pairs.
@@ -94,8 +94,8 @@ fn trace(s: &Sandbox, reference: &str, row: u64, column: &str) -> Value {
 }
 
 fn ingest_step(s: &Sandbox, dataset: &str) -> Value {
-    let log = s.json(&["log", dataset, "--json"]);
-    log.as_array().unwrap().last().unwrap()["step"].clone()
+    let log = s.json(&["timeline", "--dataset", dataset, "--json"]);
+    log.as_array().unwrap().first().unwrap()["step"].clone()
 }
 
 #[test]
@@ -105,13 +105,13 @@ fn an_xlsx_sheet_is_taken_in_cell_for_cell_and_traced_to_its_cells() {
 
     // Two sheets and no --sheet: refused, naming both, and nothing is recorded.
     let before = s.snapshot();
-    let err = s.fails(2, &["ingest", "orders.xlsx", "--as", "orders"]);
+    let err = s.fails(2, &["receive", "orders.xlsx", "--as", "orders"]);
     assert_contains(&err, "\"Work orders\", \"Parts\"");
     assert_contains(&err, "--sheet");
     let err = s.fails(
         2,
         &[
-            "ingest",
+            "receive",
             "orders.xlsx",
             "--as",
             "orders",
@@ -127,7 +127,7 @@ fn an_xlsx_sheet_is_taken_in_cell_for_cell_and_traced_to_its_cells() {
     );
 
     let out = s.ok(&[
-        "ingest",
+        "receive",
         "orders.xlsx",
         "--as",
         "orders",
@@ -137,7 +137,7 @@ fn an_xlsx_sheet_is_taken_in_cell_for_cell_and_traced_to_its_cells() {
         "Q3 work orders as the Quillby manager keeps them",
     ]);
     assert_contains(&out, &format!("{} rows × 8 columns", x["n_rows"]));
-    let show = s.json(&["show", "orders", "--json"]);
+    let show = s.json(&["about", "orders", "--json"]);
     let header: Vec<String> = serde_json::from_value(show["version"]["header"].clone()).unwrap();
     assert_eq!(serde_json::to_value(&header).unwrap(), x["header"]);
 
@@ -230,7 +230,7 @@ fn an_xlsx_sheet_is_taken_in_cell_for_cell_and_traced_to_its_cells() {
 
     // The same workbook again records nothing.
     assert_contains(
-        &s.ok(&["ingest", "orders.xlsx", "--as", "orders", "--sheet", "1"]),
+        &s.ok(&["receive", "orders.xlsx", "--as", "orders", "--sheet", "1"]),
         "unchanged",
     );
 }
@@ -238,7 +238,7 @@ fn an_xlsx_sheet_is_taken_in_cell_for_cell_and_traced_to_its_cells() {
 #[test]
 fn a_sheet_picked_by_position_starts_where_its_table_starts() {
     let (s, m) = workbooks();
-    s.ok(&["ingest", "orders.xlsx", "--as", "parts", "--sheet", "2"]);
+    s.ok(&["receive", "orders.xlsx", "--as", "parts", "--sheet", "2"]);
     let table = rows(&s, "parts");
     for c in m["xlsx"]["parts_cells"].as_array().unwrap() {
         let (row, column) = (c["row"].as_u64().unwrap(), c["column"].as_str().unwrap());
@@ -257,7 +257,7 @@ fn a_sheet_picked_by_position_starts_where_its_table_starts() {
 fn an_ods_sheet_is_taken_in_with_its_formulas_saved_values() {
     let (s, m) = workbooks();
     let o = &m["ods"];
-    s.ok(&["ingest", "orders.ods", "--as", "shop_orders"]);
+    s.ok(&["receive", "orders.ods", "--as", "shop_orders"]);
     let table = rows(&s, "shop_orders");
     assert_eq!(table.len() as u64, o["n_rows"].as_u64().unwrap());
     for c in o["cells"].as_array().unwrap() {
@@ -280,7 +280,7 @@ fn an_ods_sheet_is_taken_in_with_its_formulas_saved_values() {
 fn a_trail_through_later_steps_still_ends_at_the_cell() {
     let (s, _) = workbooks();
     s.ok(&[
-        "ingest",
+        "receive",
         "orders.xlsx",
         "--as",
         "orders",
@@ -288,7 +288,7 @@ fn a_trail_through_later_steps_still_ends_at_the_cell() {
         "Work orders",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "case",
         "--to",
@@ -299,7 +299,7 @@ fn a_trail_through_later_steps_still_ends_at_the_cell() {
         "one spelling",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "drop",
         "paid = 'false'",
@@ -317,17 +317,17 @@ fn a_trail_through_later_steps_still_ends_at_the_cell() {
 fn a_workbook_header_with_a_blank_or_repeated_name_is_refused_at_its_cell() {
     let (s, _) = workbooks();
     let before = s.snapshot();
-    let err = s.fails(2, &["ingest", "blank_header.xlsx", "--as", "orders"]);
+    let err = s.fails(2, &["receive", "blank_header.xlsx", "--as", "orders"]);
     assert_contains(&err, "cell Orders!C1");
     assert_contains(&err, "blank header name");
-    let err = s.fails(2, &["ingest", "repeated_header.xlsx", "--as", "orders"]);
+    let err = s.fails(2, &["receive", "repeated_header.xlsx", "--as", "orders"]);
     assert_contains(&err, "cell Orders!D1");
     assert_contains(&err, "duplicate header name \"shop\"");
     // A key is checked like a text file's, each duplicate named by its cells.
     let err = s.fails(
         2,
         &[
-            "ingest",
+            "receive",
             "orders.xlsx",
             "--as",
             "orders",
@@ -344,7 +344,7 @@ fn a_workbook_header_with_a_blank_or_repeated_name_is_refused_at_its_cell() {
     let err = s.fails(
         2,
         &[
-            "ingest",
+            "receive",
             "orders.xlsx",
             "--as",
             "orders",
@@ -360,13 +360,13 @@ fn a_workbook_header_with_a_blank_or_repeated_name_is_refused_at_its_cell() {
     );
     // Not a workbook at all, whatever its name says.
     s.file("fake.xlsx", "order_id,shop\n1,Quillby Cycle Mend\n");
-    let err = s.fails(2, &["ingest", "fake.xlsx", "--as", "orders"]);
+    let err = s.fails(2, &["receive", "fake.xlsx", "--as", "orders"]);
     assert_contains(&err, "cannot be read as a workbook");
     // --sheet on delimited text is a usage error.
     s.file("orders.csv", "order_id,shop\n1,Quillby Cycle Mend\n");
     let err = s.fails(
         2,
-        &["ingest", "orders.csv", "--as", "orders", "--sheet", "1"],
+        &["receive", "orders.csv", "--as", "orders", "--sheet", "1"],
     );
     assert_contains(&err, "--sheet is for workbooks");
     assert_eq!(s.snapshot(), before);
@@ -413,14 +413,14 @@ fn json_lines_are_taken_in_as_pythons_json_module_reads_them() {
     let path = s.file("orders.jsonl", ORDERS_JSONL);
     let want: Value = serde_json::from_str(&python(PY_JSONL, &[&path])).unwrap();
     s.ok(&[
-        "ingest",
+        "receive",
         "orders.jsonl",
         "--as",
         "web_orders",
         "--why",
         "booking form",
     ]);
-    let show = s.json(&["show", "web_orders", "--json"]);
+    let show = s.json(&["about", "web_orders", "--json"]);
     assert_eq!(show["version"]["header"], want["header"]);
     let got: Vec<Vec<String>> = rows(&s, "web_orders")
         .into_iter()
@@ -463,7 +463,7 @@ fn json_lines_that_cannot_be_a_table_are_refused_with_their_line() {
         ("{\"a\": 1, \"a\": 2}\n", "line 1", "appears twice"),
     ] {
         s.file("bad.jsonl", content);
-        let err = s.fails(2, &["ingest", "bad.jsonl", "--as", "web_orders"]);
+        let err = s.fails(2, &["receive", "bad.jsonl", "--as", "web_orders"]);
         assert_contains(&err, line);
         assert_contains(&err, says);
     }
@@ -479,9 +479,9 @@ fn tab_separated_files_are_detected_or_named_and_written_back() {
                44002\tOxwater Wheelworks\t4.00\t\n";
     let s = Sandbox::with_store();
     s.file("orders.tsv", tsv);
-    s.ok(&["ingest", "orders.tsv", "--as", "detected"]);
+    s.ok(&["receive", "orders.tsv", "--as", "detected"]);
     s.ok(&[
-        "ingest",
+        "receive",
         "orders.tsv",
         "--as",
         "named",
@@ -489,12 +489,12 @@ fn tab_separated_files_are_detected_or_named_and_written_back() {
         "tab",
     ]);
     for name in ["detected", "named"] {
-        let show = s.json(&["show", name, "--json"]);
+        let show = s.json(&["about", name, "--json"]);
         assert_eq!(show["version"]["dialect"]["delimiter"], "\t");
         assert_eq!(show["version"]["n_cols"], 4);
         // The stored bytes are the file's; --format tsv writes the same rows back.
-        assert_eq!(s.ok(&["cat", name]), tsv);
-        assert_eq!(s.ok(&["cat", name, "--format", "tsv"]), tsv);
+        assert_eq!(s.ok(&["retrieve", name]), tsv);
+        assert_eq!(s.ok(&["retrieve", name, "--format", "tsv"]), tsv);
     }
     assert_eq!(
         ingest_step(&s, "named")["params"]["delimiter_detected"],
@@ -502,7 +502,7 @@ fn tab_separated_files_are_detected_or_named_and_written_back() {
     );
     // As CSV (RFC 4180): the comma and the quotes make the note quoted, inner quotes doubled.
     assert_eq!(
-        s.ok(&["cat", "named", "--format", "csv"]),
+        s.ok(&["retrieve", "named", "--format", "csv"]),
         "order_id,shop,parts_cost,note\n\
          44001,Quillby Cycle Mend,12.50,\"saddle, \"\"gel\"\"\"\n\
          44002,Oxwater Wheelworks,4.00,\n"
@@ -516,25 +516,25 @@ fn cat_formats_write_the_same_rows_and_refuse_what_tsv_cannot_hold() {
         "orders.csv",
         "order_id;note;shop\r\n45001;\"two\nlines\";Fennmarsh Bike Clinic\r\n45002;\"a\ttab\";Quillby Cycle Mend\r\n45003;plain;\"Oxwater \"\"OW\"\" Wheelworks\"\r\n",
     );
-    s.ok(&["ingest", "orders.csv", "--as", "orders"]);
+    s.ok(&["receive", "orders.csv", "--as", "orders"]);
     // csv: canonical (comma, LF, minimal quoting) even for a semicolon CRLF file.
-    let csv = s.ok(&["cat", "orders", "--format", "csv"]);
+    let csv = s.ok(&["retrieve", "orders", "--format", "csv"]);
     assert_eq!(
         csv,
         "order_id,note,shop\n45001,\"two\nlines\",Fennmarsh Bike Clinic\n45002,a\ttab,Quillby Cycle Mend\n45003,plain,\"Oxwater \"\"OW\"\" Wheelworks\"\n"
     );
     // A derived version's stored bytes are canonical CSV already: --format csv is a copy.
-    s.ok(&["apply", "orders", "trim", "--why", "spaces"]);
+    s.ok(&["clean", "orders", "trim", "--why", "spaces"]);
     assert_eq!(
-        s.ok(&["cat", "orders@2", "--format", "csv"]),
-        s.ok(&["cat", "orders@2"])
+        s.ok(&["retrieve", "orders:v2", "--format", "csv"]),
+        s.ok(&["retrieve", "orders:v2"])
     );
 
     // jsonl, read back by Python's json module: the same cells as Python's csv module reads
     // from the CSV rendering (both general-purpose reference readers).
     let jsonl = s.file(
         "orders.jsonl.out",
-        s.ok(&["cat", "orders", "--format", "jsonl"]),
+        s.ok(&["retrieve", "orders", "--format", "jsonl"]),
     );
     let csv_path = s.file("orders.csv.out", &csv);
     let same = python(
@@ -552,18 +552,21 @@ print("same" if a == b and [list(x) for x in a] == [r[0]] * len(a) else "differ:
 
     // tsv: the note with a line break cannot be written; refused with its row and column, and
     // -o leaves no file behind.
-    let err = s.fails(1, &["cat", "orders", "--format", "tsv", "-o", "out.tsv"]);
+    let err = s.fails(
+        1,
+        &["retrieve", "orders", "--format", "tsv", "-o", "out.tsv"],
+    );
     assert_contains(&err, "data row 1, column note holds a line break");
     assert!(!s.path().join("out.tsv").exists());
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "keep",
         "order_id = '45002'",
         "--why",
         "one row",
     ]);
-    let err = s.fails(1, &["cat", "orders", "--format", "tsv"]);
+    let err = s.fails(1, &["retrieve", "orders", "--format", "tsv"]);
     assert_contains(&err, "holds a tab");
 }
 
@@ -586,12 +589,12 @@ proptest::proptest! {
             sluice::table::write::push_record(&mut csv, row.iter().map(|c| c.as_bytes()));
         }
         s.file("t.csv", &csv);
-        s.ok(&["ingest", "t.csv", "--as", "t", "--delimiter", ","]);
-        let jsonl = s.ok(&["cat", "t", "--format", "jsonl"]);
+        s.ok(&["receive", "t.csv", "--as", "t", "--delimiter", ","]);
+        let jsonl = s.ok(&["retrieve", "t", "--format", "jsonl"]);
         s.file("t.jsonl", jsonl);
-        s.ok(&["ingest", "t.jsonl", "--as", "again"]);
-        let a = s.json(&["show", "t", "--json"]);
-        let b = s.json(&["show", "again", "--json"]);
+        s.ok(&["receive", "t.jsonl", "--as", "again"]);
+        let a = s.json(&["about", "t", "--json"]);
+        let b = s.json(&["about", "again", "--json"]);
         proptest::prop_assert_eq!(&a["version"]["hash"], &b["version"]["hash"]);
     }
 }
@@ -600,7 +603,7 @@ proptest::proptest! {
 fn a_history_from_a_workbook_exports_as_a_plan_that_remakes_it() {
     let (s, _) = workbooks();
     s.ok(&[
-        "ingest",
+        "receive",
         "orders.xlsx",
         "--as",
         "orders",
@@ -608,7 +611,7 @@ fn a_history_from_a_workbook_exports_as_a_plan_that_remakes_it() {
         "Work orders",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "case",
         "--to",
@@ -636,17 +639,17 @@ fn a_history_from_a_workbook_exports_as_a_plan_that_remakes_it() {
     )
     .unwrap();
     fresh.ok(&["run", "remake.json"]);
-    let a = s.json(&["show", "orders", "--json"]);
-    let b = fresh.json(&["show", "orders", "--json"]);
+    let a = s.json(&["about", "orders", "--json"]);
+    let b = fresh.json(&["about", "orders", "--json"]);
     assert_eq!(a["version"]["hash"], b["version"]["hash"]);
 }
 
 #[test]
 fn replay_converts_the_raw_workbook_again_and_stops_at_a_damaged_one() {
     let (s, _) = workbooks();
-    s.ok(&["ingest", "orders.ods", "--as", "shop_orders"]);
+    s.ok(&["receive", "orders.ods", "--as", "shop_orders"]);
     s.ok(&[
-        "apply",
+        "clean",
         "shop_orders",
         "case",
         "--to",
@@ -656,7 +659,7 @@ fn replay_converts_the_raw_workbook_again_and_stops_at_a_damaged_one() {
         "--why",
         "one spelling",
     ]);
-    let r = s.json(&["replay", "shop_orders", "--json"]);
+    let r = s.json(&["reproduce", "shop_orders", "--json"]);
     assert_eq!(r["reproduced"], true);
     let first = &r["steps"][0];
     assert_eq!(first["kind"], "ingest");
@@ -670,7 +673,7 @@ fn replay_converts_the_raw_workbook_again_and_stops_at_a_damaged_one() {
         let last = bytes.len() - 1;
         bytes[last] ^= 0x20;
     });
-    let out = s.run(&["replay", "shop_orders", "--json"]);
+    let out = s.run(&["reproduce", "shop_orders", "--json"]);
     assert_eq!(out.code, 1);
     let r: Value = serde_json::from_str(&out.stdout).unwrap();
     assert_eq!(r["steps"][0]["result"], "raw_damaged");
@@ -681,7 +684,14 @@ fn replay_converts_the_raw_workbook_again_and_stops_at_a_damaged_one() {
 #[test]
 fn dates_of_the_1904_date_system_are_read_as_that_system_counts_them() {
     let (s, m) = workbooks();
-    s.ok(&["ingest", "mac1904.xlsx", "--as", "mac", "--sheet", "Orders"]);
+    s.ok(&[
+        "receive",
+        "mac1904.xlsx",
+        "--as",
+        "mac",
+        "--sheet",
+        "Orders",
+    ]);
     let got: Vec<String> = rows(&s, "mac")
         .into_iter()
         .map(|r| r[0].1.clone())
@@ -691,7 +701,7 @@ fn dates_of_the_1904_date_system_are_read_as_that_system_counts_them() {
     let err = s.fails(
         2,
         &[
-            "ingest",
+            "receive",
             "mac1904.xlsx",
             "--as",
             "empty",

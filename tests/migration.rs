@@ -38,43 +38,43 @@ fn a_schema_1_store_is_migrated_and_keeps_its_history() {
         )),
         s.path(),
     );
-    let db = s.path().join(".sluice/lineage.db");
+    let db = s.path().join("sluice-store/lineage.db");
     assert_eq!(user_version(&db), 1);
     // Any command opens the store and migrates it.
-    let log = s.json(&["log", "--json"]);
+    let log = s.json(&["timeline", "--json"]);
     assert_eq!(user_version(&db), sluice::store::lineage::SCHEMA_VERSION);
     let kinds: Vec<&str> = log
         .as_array()
         .unwrap()
         .iter()
-        .map(|e| e["step"]["operation"].as_str().unwrap_or("ingest"))
+        .map(|e| e["step"]["operation"].as_str().unwrap_or("receive"))
         .collect();
-    assert_eq!(kinds, vec!["dedupe", "trim", "ingest"]);
+    assert_eq!(kinds, vec!["receive", "trim", "dedupe"], "oldest first");
     let report = s.json(&["verify", "--json"]);
     assert_eq!(report["intact"], true, "{report}");
     assert_eq!(
-        s.run(&["cat", "orders"]).stdout,
+        s.run(&["retrieve", "orders"]).stdout,
         "order_id,shop,amount\nWO-1,Quillby Cycle Mend,12.50\nWO-2,Oxwater Wheelworks,8.00\n"
     );
     // Provenance recorded by schema 1 in the database's tables reads back through the same
     // API that reads the provenance objects of schema 4 and later.
     {
-        let store = sluice::store::Store::open(&s.path().join(".sluice")).unwrap();
-        let trimmed = sluice::refs::resolve(&store.lineage, "orders@2").unwrap();
-        let raw = sluice::refs::resolve(&store.lineage, "orders@1").unwrap();
+        let store = sluice::store::Store::open(&s.path().join("sluice-store")).unwrap();
+        let trimmed = sluice::refs::resolve(&store.lineage, "orders:v2").unwrap();
+        let raw = sluice::refs::resolve(&store.lineage, "orders:v1").unwrap();
         let changes = sluice::provenance::cell_changes(&store, &trimmed).unwrap();
         assert_eq!(changes.len(), 1);
         assert_ne!(changes[0].old, changes[0].new);
         let runs = sluice::provenance::row_runs(&store, &trimmed, raw.id).unwrap();
         assert_eq!(runs.iter().map(|r| r.len).sum::<u64>(), trimmed.n_rows);
-        let deduped = sluice::refs::resolve(&store.lineage, "orders@3").unwrap();
+        let deduped = sluice::refs::resolve(&store.lineage, "orders:v3").unwrap();
         let drops = sluice::provenance::drops(&store, deduped.step_id, trimmed.id).unwrap();
         assert_eq!(drops.len(), 1);
         assert!(drops[0].duplicate_of.is_some());
     }
     // The migrated store takes new steps and their new kinds of record.
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "number",
         "--columns",
@@ -87,7 +87,7 @@ fn a_schema_1_store_is_migrated_and_keeps_its_history() {
 
 /// A store of the one-file-per-object layout (schema 4, `tests/fixtures/store_loose_objects`,
 /// made before segments existed) is read as it is, and `reclaim` moves its objects into a
-/// segment: every hash kept, the bytes `cat` gives unchanged, the move in the audit chain.
+/// segment: every hash kept, the bytes `retrieve` gives unchanged, the move in the audit chain.
 #[test]
 fn a_store_of_loose_objects_is_read_and_converted_by_reclaim() {
     let s = Sandbox::new();
@@ -108,18 +108,24 @@ fn a_store_of_loose_objects_is_read_and_converted_by_reclaim() {
             .unwrap_or(0)
     };
     assert_eq!(loose_files(&store_dir), 14);
-    let refs = ["orders@1", "orders@2", "orders@3", "orders@4", "shops@1"];
+    let refs = [
+        "orders:v1",
+        "orders:v2",
+        "orders:v3",
+        "orders:v4",
+        "shops:v1",
+    ];
     let hashes_before: Vec<String> = refs
         .iter()
-        .map(|r| s.json(&["show", r, "--json"])["version"]["hash"].to_string())
+        .map(|r| s.json(&["about", r, "--json"])["version"]["hash"].to_string())
         .collect();
-    let bytes_before: Vec<String> = refs.iter().map(|r| s.ok(&["cat", r])).collect();
+    let bytes_before: Vec<String> = refs.iter().map(|r| s.ok(&["retrieve", r])).collect();
     // The raw file the fixture took in, byte for byte.
     assert_eq!(
-        s.ok(&["cat", "orders@1"]).as_bytes(),
+        s.ok(&["retrieve", "orders:v1"]).as_bytes(),
         std::fs::read(fixture.join("orders.csv")).unwrap()
     );
-    let trail = s.ok(&["trace", "orders@4", "--row", "1", "--column", "technician"]);
+    let trail = s.ok(&["trace", "orders:v4", "--row", "1", "--column", "technician"]);
     let v = s.json(&["verify", "--json"]);
     assert_eq!(v["intact"], true, "{v}");
     let entries = v["audit_entries_checked"].as_u64().unwrap();
@@ -136,16 +142,16 @@ fn a_store_of_loose_objects_is_read_and_converted_by_reclaim() {
     assert_eq!(v["audit_entries_checked"].as_u64().unwrap(), entries + 1);
     let hashes_after: Vec<String> = refs
         .iter()
-        .map(|r| s.json(&["show", r, "--json"])["version"]["hash"].to_string())
+        .map(|r| s.json(&["about", r, "--json"])["version"]["hash"].to_string())
         .collect();
     assert_eq!(hashes_before, hashes_after);
-    let bytes_after: Vec<String> = refs.iter().map(|r| s.ok(&["cat", r])).collect();
+    let bytes_after: Vec<String> = refs.iter().map(|r| s.ok(&["retrieve", r])).collect();
     assert_eq!(bytes_before, bytes_after);
     assert_eq!(
-        s.ok(&["trace", "orders@4", "--row", "1", "--column", "technician"]),
+        s.ok(&["trace", "orders:v4", "--row", "1", "--column", "technician"]),
         trail
     );
     // New steps go on in the converted store.
-    s.ok(&["apply", "orders", "trim", "--why", "again"]);
+    s.ok(&["clean", "orders", "trim", "--why", "again"]);
     assert_contains(&s.ok(&["verify"]), "intact");
 }

@@ -1,6 +1,6 @@
 //! Built-in operations: the law that a step's provenance reproduces its output (row map plus
 //! cell changes applied to the input give exactly the output), determinism, and the command
-//! line of `sluice apply`.
+//! line of `sluice clean`.
 
 mod common;
 
@@ -17,10 +17,7 @@ use sluice::table::{for_each_record, ReadSettings};
 use common::*;
 
 fn agent() -> Agent {
-    Agent {
-        identity: "t".into(),
-        source: "option".into(),
-    }
+    Agent::new("t", None, "option")
 }
 
 /// The data rows of a stored version, as strings.
@@ -212,8 +209,8 @@ fn the_same_step_on_the_same_bytes_gives_the_same_hash() {
     for _ in 0..2 {
         let d = Sandbox::with_demo();
         d.ok(&[
-            "apply",
-            "oxwater_orders@1",
+            "clean",
+            "oxwater_orders:v1",
             "trim",
             "--inner",
             "--why",
@@ -222,7 +219,7 @@ fn the_same_step_on_the_same_bytes_gives_the_same_hash() {
             "again",
         ]);
         d.ok(&[
-            "apply",
+            "clean",
             "again",
             "case",
             "--columns",
@@ -232,7 +229,7 @@ fn the_same_step_on_the_same_bytes_gives_the_same_hash() {
             "--why",
             "case",
         ]);
-        hashes.push(d.json(&["show", "again", "--json"])["version"]["hash"].clone());
+        hashes.push(d.json(&["about", "again", "--json"])["version"]["hash"].clone());
     }
     assert_eq!(hashes[0], hashes[1]);
 }
@@ -244,19 +241,19 @@ fn apply_records_an_exact_step_with_cell_counts() {
         "o.csv",
         "id;name;email\n1; Ada  Quenwick ;ADA@Example.org\n2;Bram Fenley;bram@example.org\n",
     );
-    s.ok(&["ingest", "o.csv", "--as", "orders"]);
+    s.ok(&["receive", "o.csv", "--as", "orders"]);
     let out = s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "trim",
         "--inner",
         "--why",
         "the till pads names",
     ]);
-    assert_contains(&out, "recorded orders@2");
+    assert_contains(&out, "recorded orders:v2");
     assert_contains(&out, "trim changed 1 cell (name 1)");
     let out = s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "case",
         "--columns",
@@ -268,15 +265,15 @@ fn apply_records_an_exact_step_with_cell_counts() {
         "--as",
         "orders_clean",
     ]);
-    assert_contains(&out, "recorded orders_clean@1");
+    assert_contains(&out, "recorded orders_clean:v1");
     // Canonical CSV: comma, LF, minimal quoting, whatever the input's dialect was.
-    let r = s.run(&["cat", "orders_clean"]);
+    let r = s.run(&["retrieve", "orders_clean"]);
     assert_eq!(
         r.stdout,
         "id,name,email\n1,Ada Quenwick,ada@example.org\n2,Bram Fenley,bram@example.org\n"
     );
-    let log = s.json(&["log", "orders_clean", "--json"]);
-    let step = &log[0]["step"];
+    let log = s.json(&["timeline", "--dataset", "orders_clean", "--json"]);
+    let step = &log.as_array().unwrap().last().unwrap()["step"];
     assert_eq!(step["kind"], "operation");
     assert_eq!(step["operation"], "case");
     assert_eq!(step["lineage"], "exact");
@@ -284,12 +281,12 @@ fn apply_records_an_exact_step_with_cell_counts() {
         step["params"],
         serde_json::json!({"op": "case", "columns": ["email"], "to": "lower"})
     );
-    assert_eq!(step["inputs"], serde_json::json!(["orders@2"]));
+    assert_eq!(step["inputs"], serde_json::json!(["orders:v2"]));
     assert_eq!(step["reason"], "case-blind");
     // Doing it again changes nothing and records nothing.
     let before = s.snapshot();
     let out = s.ok(&[
-        "apply",
+        "clean",
         "orders_clean",
         "case",
         "--columns",
@@ -307,12 +304,12 @@ fn apply_records_an_exact_step_with_cell_counts() {
 fn apply_refuses_unknown_columns_and_a_missing_reason() {
     let s = Sandbox::with_store();
     s.file("o.csv", "id,name\n1,x\n");
-    s.ok(&["ingest", "o.csv", "--as", "orders"]);
+    s.ok(&["receive", "o.csv", "--as", "orders"]);
     let before = s.snapshot();
     let err = s.fails(
         2,
         &[
-            "apply",
+            "clean",
             "orders",
             "trim",
             "--columns",
@@ -323,11 +320,11 @@ fn apply_refuses_unknown_columns_and_a_missing_reason() {
     );
     assert_contains(
         &err,
-        "column \"nmae\" is not in orders@1; its columns are: id, name",
+        "column \"nmae\" is not in orders:v1; its columns are: id, name",
     );
-    let err = s.fails(2, &["apply", "orders", "trim"]);
+    let err = s.fails(2, &["clean", "orders", "trim"]);
     assert_contains(&err, "--why");
-    let err = s.fails(2, &["apply", "orders", "trim", "--why", "  "]);
+    let err = s.fails(2, &["clean", "orders", "trim", "--why", "  "]);
     assert_contains(&err, "--why needs a reason");
     assert_eq!(before, s.snapshot());
 }
@@ -348,9 +345,9 @@ fn dedupe_agrees_with_python_on_the_demo_exports() {
             Some("order_id"),
         ),
     ] {
-        let first = format!("{dataset}@1");
+        let first = format!("{dataset}:v1");
         let mut args = vec![
-            "apply",
+            "clean",
             &first,
             "dedupe",
             "--why",
@@ -362,7 +359,7 @@ fn dedupe_agrees_with_python_on_the_demo_exports() {
             args.extend(["--key", k]);
         }
         d.ok(&args);
-        let ours = d.run(&["cat", "deduped"]).stdout;
+        let ours = d.run(&["retrieve", "deduped"]).stdout;
         let script = r#"
 import csv, sys
 path, delim, key = sys.argv[1], sys.argv[2], sys.argv[3]
@@ -403,12 +400,12 @@ fn dedupe_records_what_each_dropped_row_duplicated() {
         "o.csv",
         "id,shop\n1,Quillby\n2,Oxwater\n1,Quillby\n3,Fennmarsh\n2,Oxwater\n",
     );
-    s.ok(&["ingest", "o.csv", "--as", "orders"]);
-    let out = s.ok(&["apply", "orders", "dedupe", "--why", "exported twice"]);
+    s.ok(&["receive", "o.csv", "--as", "orders"]);
+    let out = s.ok(&["clean", "orders", "dedupe", "--why", "exported twice"]);
     assert_contains(&out, "dedupe dropped 2 rows; 3 rows");
-    let store = Store::open(&s.path().join(".sluice")).unwrap();
-    let v1 = sluice::refs::resolve(&store.lineage, "orders@1").unwrap();
-    let v2 = sluice::refs::resolve(&store.lineage, "orders@2").unwrap();
+    let store = Store::open(&s.path().join("sluice-store")).unwrap();
+    let v1 = sluice::refs::resolve(&store.lineage, "orders:v1").unwrap();
+    let v2 = sluice::refs::resolve(&store.lineage, "orders:v2").unwrap();
     let drops = sluice::provenance::drops(&store, v2.step_id, v1.id).unwrap();
     let seen: Vec<(u64, Option<u64>, &str)> = drops
         .iter()
@@ -429,8 +426,8 @@ fn dedupe_records_what_each_dropped_row_duplicated() {
         .collect();
     assert_eq!(runs, vec![(0, 0, 2), (2, 3, 1)]);
     let out = s.ok(&[
-        "apply",
-        "orders@1",
+        "clean",
+        "orders:v1",
         "dedupe",
         "--key",
         "id",
@@ -443,7 +440,7 @@ fn dedupe_records_what_each_dropped_row_duplicated() {
     ]);
     assert_contains(&out, "dropped 2 rows");
     assert_eq!(
-        s.run(&["cat", "last"]).stdout,
+        s.run(&["retrieve", "last"]).stdout,
         "id,shop\n1,Quillby\n3,Fennmarsh\n2,Oxwater\n"
     );
 }
@@ -456,7 +453,7 @@ fn palmerpenguins_complete_rows_are_333() {
     let any_na = "bill_length_mm is blank or bill_depth_mm is blank or flipper_length_mm is blank \
                   or body_mass_g is blank or sex is blank";
     let out = s.ok(&[
-        "apply",
+        "clean",
         "penguins",
         "drop",
         any_na,
@@ -469,7 +466,7 @@ fn palmerpenguins_complete_rows_are_333() {
     // keep with the negation gives the same bytes.
     let keep = format!("not ({any_na})");
     let out = s.ok(&[
-        "apply",
+        "clean",
         "penguins",
         "keep",
         &keep,
@@ -480,13 +477,13 @@ fn palmerpenguins_complete_rows_are_333() {
     ]);
     assert_contains(&out, "keep dropped 11 rows; 333 rows");
     assert_eq!(
-        s.run(&["cat", "complete"]).stdout,
-        s.run(&["cat", "complete_k"]).stdout
+        s.run(&["retrieve", "complete"]).stdout,
+        s.run(&["retrieve", "complete_k"]).stdout
     );
     // Species counts after dropping: Adelie 146, Gentoo 119, Chinstrap 68 (as documented).
     for (species, n) in [("Adelie", 146), ("Gentoo", 119), ("Chinstrap", 68)] {
         s.ok(&[
-            "apply",
+            "clean",
             "complete",
             "keep",
             &format!("species = '{species}'"),
@@ -496,13 +493,13 @@ fn palmerpenguins_complete_rows_are_333() {
             species,
         ]);
         assert_eq!(
-            s.json(&["show", species, "--json"])["version"]["n_rows"],
+            s.json(&["about", species, "--json"])["version"]["n_rows"],
             n,
             "{species}"
         );
     }
     // Every drop names the predicate.
-    let store = Store::open(&s.path().join(".sluice")).unwrap();
+    let store = Store::open(&s.path().join("sluice-store")).unwrap();
     let raw = sluice::refs::resolve(&store.lineage, "penguins").unwrap();
     let done = sluice::refs::resolve(&store.lineage, "complete").unwrap();
     let drops = sluice::provenance::drops(&store, done.step_id, raw.id).unwrap();
@@ -516,12 +513,12 @@ fn palmerpenguins_complete_rows_are_333() {
 fn a_bad_predicate_points_at_its_column_and_changes_nothing() {
     let s = Sandbox::with_store();
     s.file("o.csv", "id,status\n1,done\n2,cancelled\n");
-    s.ok(&["ingest", "o.csv", "--as", "orders"]);
+    s.ok(&["receive", "o.csv", "--as", "orders"]);
     let before = s.snapshot();
     let err = s.fails(
         2,
         &[
-            "apply",
+            "clean",
             "orders",
             "drop",
             "status = 'cancelled",
@@ -536,7 +533,7 @@ fn a_bad_predicate_points_at_its_column_and_changes_nothing() {
     let err = s.fails(
         2,
         &[
-            "apply",
+            "clean",
             "orders",
             "drop",
             "state = 'cancelled'",
@@ -550,7 +547,7 @@ fn a_bad_predicate_points_at_its_column_and_changes_nothing() {
     );
     assert_eq!(before, s.snapshot());
     let out = s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "drop",
         "status = 'cancelled'",
@@ -567,9 +564,9 @@ fn rename_select_and_fill_record_where_columns_came_from() {
         "o.csv",
         "order no;e-mail;note\nOX-1;;ada@example.org\nOX-2;bram@example.org;\n",
     );
-    s.ok(&["ingest", "o.csv", "--as", "orders"]);
+    s.ok(&["receive", "o.csv", "--as", "orders"]);
     let out = s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "fill",
         "--columns",
@@ -581,7 +578,7 @@ fn rename_select_and_fill_record_where_columns_came_from() {
     ]);
     assert_contains(&out, "fill changed 1 cell (e-mail 1)");
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "rename",
         "order no=order_id",
@@ -590,7 +587,7 @@ fn rename_select_and_fill_record_where_columns_came_from() {
         "one naming",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "select",
         "email,order_id",
@@ -598,11 +595,11 @@ fn rename_select_and_fill_record_where_columns_came_from() {
         "contact list",
     ]);
     assert_eq!(
-        s.run(&["cat", "orders"]).stdout,
+        s.run(&["retrieve", "orders"]).stdout,
         "email,order_id\nada@example.org,OX-1\nbram@example.org,OX-2\n"
     );
-    let store = Store::open(&s.path().join(".sluice")).unwrap();
-    let renamed = sluice::refs::resolve(&store.lineage, "orders@3").unwrap();
+    let store = Store::open(&s.path().join("sluice-store")).unwrap();
+    let renamed = sluice::refs::resolve(&store.lineage, "orders:v3").unwrap();
     assert_eq!(
         store.lineage.column_sources(renamed.id).unwrap(),
         vec![
@@ -610,14 +607,14 @@ fn rename_select_and_fill_record_where_columns_came_from() {
             ("order_id".to_string(), "order no".to_string())
         ]
     );
-    let filled = sluice::refs::resolve(&store.lineage, "orders@2").unwrap();
+    let filled = sluice::refs::resolve(&store.lineage, "orders:v2").unwrap();
     assert!(store
         .lineage
         .column_sources(filled.id)
         .unwrap()
         .contains(&("e-mail".to_string(), "note".to_string())));
-    let err = s.fails(2, &["apply", "orders", "rename", "nope=x", "--why", "typo"]);
-    assert_contains(&err, "column \"nope\" is not in orders@4");
+    let err = s.fails(2, &["clean", "orders", "rename", "nope=x", "--why", "typo"]);
+    assert_contains(&err, "column \"nope\" is not in orders:v4");
 }
 
 #[test]
@@ -627,13 +624,13 @@ fn number_reads_amounts_exactly_and_never_zeroes_what_it_cannot_read() {
         "o.csv",
         "id;amount\n1;1.204,50 €\n2;(5,00)\n3;EUR 12,5\n4;n/a\n5;\n6;12,5%\n",
     );
-    s.ok(&["ingest", "o.csv", "--as", "orders"]);
+    s.ok(&["receive", "o.csv", "--as", "orders"]);
     // Refused by default, listing the cell, exit code 1 (a data failure); nothing recorded.
     let before = s.snapshot();
     let err = s.fails(
         1,
         &[
-            "apply",
+            "clean",
             "orders",
             "number",
             "--columns",
@@ -651,7 +648,7 @@ fn number_reads_amounts_exactly_and_never_zeroes_what_it_cannot_read() {
     assert_eq!(before, s.snapshot());
     // Kept as text, with a note on the cell.
     let out = s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "number",
         "--columns",
@@ -665,10 +662,10 @@ fn number_reads_amounts_exactly_and_never_zeroes_what_it_cannot_read() {
     assert_contains(&out, "number changed 4 cells (amount 4)");
     assert_contains(&out, "noted: 1 cell left as asked");
     assert_eq!(
-        s.run(&["cat", "orders"]).stdout,
+        s.run(&["retrieve", "orders"]).stdout,
         "id,amount\n1,1204.50\n2,-5.00\n3,12.5\n4,n/a\n5,\n6,0.125\n"
     );
-    let store = Store::open(&s.path().join(".sluice")).unwrap();
+    let store = Store::open(&s.path().join("sluice-store")).unwrap();
     let v = sluice::refs::resolve(&store.lineage, "orders").unwrap();
     assert_eq!(
         store.lineage.cell_notes(v.id).unwrap(),
@@ -681,8 +678,8 @@ fn number_reads_amounts_exactly_and_never_zeroes_what_it_cannot_read() {
     drop(store);
     // Blanked, with a note, when asked.
     s.ok(&[
-        "apply",
-        "orders@1",
+        "clean",
+        "orders:v1",
         "number",
         "--columns",
         "amount",
@@ -695,10 +692,10 @@ fn number_reads_amounts_exactly_and_never_zeroes_what_it_cannot_read() {
         "blanked",
     ]);
     assert_eq!(
-        s.run(&["cat", "blanked"]).stdout,
+        s.run(&["retrieve", "blanked"]).stdout,
         "id,amount\n1,1204.50\n2,-5.00\n3,12.5\n4,\n5,\n6,0.125\n"
     );
-    let shown = s.json(&["show", "blanked", "--json"]);
+    let shown = s.json(&["about", "blanked", "--json"]);
     assert_eq!(shown["profile"][1]["inferred_type"], "decimal");
     assert_eq!(shown["profile"][1]["min"], "-5.00");
     assert_eq!(shown["profile"][1]["max"], "1204.50");
@@ -711,13 +708,13 @@ fn date_writes_iso_8601_and_refuses_to_guess() {
         "o.csv",
         "id,opened\n1,03/04/2026\n2,13/04/2026\n3,8 Jul 2026\n4,2026-07-03T14:05+0200\n5,\n",
     );
-    s.ok(&["ingest", "o.csv", "--as", "orders"]);
+    s.ok(&["receive", "o.csv", "--as", "orders"]);
     let before = s.snapshot();
     // 03/04/2026 reads both ways: refused without --order, exit code 1, nothing recorded.
     let err = s.fails(
         1,
         &[
-            "apply",
+            "clean",
             "orders",
             "date",
             "--columns",
@@ -730,7 +727,7 @@ fn date_writes_iso_8601_and_refuses_to_guess() {
     assert_contains(&err, "--order dmy");
     assert_eq!(before, s.snapshot());
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "date",
         "--columns",
@@ -741,16 +738,16 @@ fn date_writes_iso_8601_and_refuses_to_guess() {
         "the till writes day first",
     ]);
     assert_eq!(
-        s.run(&["cat", "orders"]).stdout,
+        s.run(&["retrieve", "orders"]).stdout,
         "id,opened\n1,2026-04-03\n2,2026-04-13\n3,2026-07-08\n4,2026-07-03T14:05:00+02:00\n5,\n"
     );
     // A day that does not exist (ISO 8601 uses the Gregorian calendar) is an error, not March.
     s.file("p.csv", "id,opened\n1,2023-02-29\n2,2024-02-29\n");
-    s.ok(&["ingest", "p.csv", "--as", "leap"]);
+    s.ok(&["receive", "p.csv", "--as", "leap"]);
     let err = s.fails(
         1,
         &[
-            "apply",
+            "clean",
             "leap",
             "date",
             "--columns",
@@ -761,7 +758,7 @@ fn date_writes_iso_8601_and_refuses_to_guess() {
     );
     assert_contains(&err, "data row 1 opened \"2023-02-29\" (no such date)");
     let out = s.ok(&[
-        "apply",
+        "clean",
         "leap",
         "date",
         "--columns",
@@ -773,7 +770,7 @@ fn date_writes_iso_8601_and_refuses_to_guess() {
     ]);
     assert_contains(&out, "date changed 1 cell");
     assert_eq!(
-        s.run(&["cat", "leap"]).stdout,
+        s.run(&["retrieve", "leap"]).stdout,
         "id,opened\n1,\n2,2024-02-29\n"
     );
 }
@@ -785,9 +782,9 @@ fn replace_literal_and_by_regular_expression() {
         "o.csv",
         "id,hours,service\n1,\"1,5\",brakes - adjust\n2,2.25,Brake Tune\n",
     );
-    s.ok(&["ingest", "o.csv", "--as", "orders"]);
+    s.ok(&["receive", "o.csv", "--as", "orders"]);
     let out = s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "replace",
         "--columns",
@@ -801,7 +798,7 @@ fn replace_literal_and_by_regular_expression() {
     ]);
     assert_contains(&out, "replace changed 1 cell (hours 1)");
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "replace",
         "--columns",
@@ -815,13 +812,13 @@ fn replace_literal_and_by_regular_expression() {
         "one label",
     ]);
     assert_eq!(
-        s.run(&["cat", "orders"]).stdout,
+        s.run(&["retrieve", "orders"]).stdout,
         "id,hours,service\n1,1.5,brake adjustment\n2,2.25,brake adjustment\n"
     );
     let err = s.fails(
         2,
         &[
-            "apply", "orders", "replace", "--regex", "--find", "(", "--with", "x", "--why", "x",
+            "clean", "orders", "replace", "--regex", "--find", "(", "--with", "x", "--why", "x",
         ],
     );
     assert_contains(&err, "--find \"(\" is not a valid regular expression");
@@ -835,7 +832,7 @@ fn replace_literal_and_by_regular_expression() {
 fn palmerpenguins_group_counts_and_means() {
     let s = Sandbox::with_penguins();
     let groups = |dataset: &str| -> Vec<Vec<String>> {
-        s.run(&["cat", dataset])
+        s.run(&["retrieve", dataset])
             .stdout
             .lines()
             .skip(1)
@@ -843,7 +840,7 @@ fn palmerpenguins_group_counts_and_means() {
             .collect()
     };
     s.ok(&[
-        "apply",
+        "clean",
         "penguins",
         "summarize",
         "--by",
@@ -875,7 +872,7 @@ fn palmerpenguins_group_counts_and_means() {
         ]
     );
     s.ok(&[
-        "apply",
+        "clean",
         "penguins",
         "summarize",
         "--by",
@@ -896,7 +893,7 @@ fn palmerpenguins_group_counts_and_means() {
     let any_na = "bill_length_mm is blank or bill_depth_mm is blank or flipper_length_mm is blank \
                   or body_mass_g is blank or sex is blank";
     s.ok(&[
-        "apply",
+        "clean",
         "penguins",
         "drop",
         any_na,
@@ -906,7 +903,7 @@ fn palmerpenguins_group_counts_and_means() {
         "complete",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "complete",
         "summarize",
         "--by",
@@ -926,7 +923,7 @@ fn palmerpenguins_group_counts_and_means() {
     );
     // The summary is keyed by its groups.
     assert_eq!(
-        s.json(&["show", "by_species", "--json"])["key"],
+        s.json(&["about", "by_species", "--json"])["key"],
         serde_json::json!(["species"])
     );
 }
@@ -937,7 +934,7 @@ fn palmerpenguins_group_counts_and_means() {
 fn summarize_sums_agree_with_python_decimal() {
     let d = Sandbox::with_demo();
     d.ok(&[
-        "apply",
+        "clean",
         "quillby_orders",
         "summarize",
         "--by",
@@ -949,8 +946,8 @@ fn summarize_sums_agree_with_python_decimal() {
         "--why",
         "report",
     ]);
-    let ours = d.run(&["cat", "sums"]).stdout;
-    let cleaned = d.run(&["cat", "quillby_orders"]).stdout;
+    let ours = d.run(&["retrieve", "sums"]).stdout;
+    let cleaned = d.run(&["retrieve", "quillby_orders"]).stdout;
     let script = r#"
 import csv, decimal, io, sys
 rows = list(csv.DictReader(io.StringIO(sys.stdin.read())))
@@ -995,12 +992,12 @@ fn map_takes_the_table_in_and_records_it_as_an_input() {
         "labels.csv",
         "label,service\nflat fix,puncture repair\nPuncture,puncture repair\ngears,gear indexing\n",
     );
-    s.ok(&["ingest", "o.csv", "--as", "orders"]);
+    s.ok(&["receive", "o.csv", "--as", "orders"]);
     let before = s.snapshot();
     let err = s.fails(
         1,
         &[
-            "apply",
+            "clean",
             "orders",
             "map",
             "--columns",
@@ -1020,7 +1017,7 @@ fn map_takes_the_table_in_and_records_it_as_an_input() {
     // The table file is recorded only with a step that succeeds: a failed map leaves nothing.
     assert_eq!(before, s.snapshot());
     let out = s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "map",
         "--columns",
@@ -1034,12 +1031,15 @@ fn map_takes_the_table_in_and_records_it_as_an_input() {
     assert_contains(&out, "map changed 3 cells (service 3)");
     assert_contains(&out, "noted: 1 cell left as asked");
     assert_eq!(
-        s.run(&["cat", "orders"]).stdout,
+        s.run(&["retrieve", "orders"]).stdout,
         "id,service\n1,puncture repair\n2,puncture repair\n3,gear indexing\n4,\n5,tyre swap\n"
     );
-    let log = s.json(&["log", "orders", "--json"]);
-    let step = &log[0]["step"];
-    assert_eq!(step["inputs"], serde_json::json!(["orders@1", "labels@1"]));
+    let log = s.json(&["timeline", "--dataset", "orders", "--json"]);
+    let step = &log.as_array().unwrap().last().unwrap()["step"];
+    assert_eq!(
+        step["inputs"],
+        serde_json::json!(["orders:v1", "labels:v1"])
+    );
     assert_eq!(
         step["params"]["table"],
         blake3::hash(
@@ -1050,9 +1050,9 @@ fn map_takes_the_table_in_and_records_it_as_an_input() {
         .to_hex()
         .to_string()
     );
-    let store = Store::open(&s.path().join(".sluice")).unwrap();
-    let inp = sluice::refs::resolve(&store.lineage, "orders@1").unwrap();
-    let outv = sluice::refs::resolve(&store.lineage, "orders@2").unwrap();
+    let store = Store::open(&s.path().join("sluice-store")).unwrap();
+    let inp = sluice::refs::resolve(&store.lineage, "orders:v1").unwrap();
+    let outv = sluice::refs::resolve(&store.lineage, "orders:v2").unwrap();
     assert_eq!(
         replay_provenance(&store, &inp, &outv),
         rows_of(&store, &outv)
@@ -1063,11 +1063,11 @@ fn map_takes_the_table_in_and_records_it_as_an_input() {
         "bad.csv",
         "from,to\ngears,gear indexing\ngears,gear tuning\n",
     );
-    s.ok(&["ingest", "bad.csv", "--as", "bad_labels"]);
+    s.ok(&["receive", "bad.csv", "--as", "bad_labels"]);
     let err = s.fails(
         1,
         &[
-            "apply",
+            "clean",
             "orders",
             "map",
             "--columns",
@@ -1085,9 +1085,9 @@ fn map_takes_the_table_in_and_records_it_as_an_input() {
 fn split_combine_and_extract_derive_new_columns_and_name_their_sources() {
     let s = Sandbox::with_store();
     s.file("o.csv", "order,customer,town\nOX-7201,Ada Quenwick,Oxwater\nOX-7202,Bram,\nQ-9,Cora de la Fenn,Quillby\n");
-    s.ok(&["ingest", "o.csv", "--as", "orders"]);
+    s.ok(&["receive", "o.csv", "--as", "orders"]);
     let out = s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "split",
         "--column",
@@ -1101,7 +1101,7 @@ fn split_combine_and_extract_derive_new_columns_and_name_their_sources() {
     ]);
     assert_contains(&out, "split derived given, family; 3 rows × 5 columns");
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "combine",
         "--columns",
@@ -1114,7 +1114,7 @@ fn split_combine_and_extract_derive_new_columns_and_name_their_sources() {
         "board",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "extract",
         "--column",
@@ -1127,7 +1127,7 @@ fn split_combine_and_extract_derive_new_columns_and_name_their_sources() {
         "numeric id",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "extract",
         "--column",
@@ -1142,15 +1142,15 @@ fn split_combine_and_extract_derive_new_columns_and_name_their_sources() {
         "till code",
     ]);
     assert_eq!(
-        s.run(&["cat", "orders"]).stdout,
+        s.run(&["retrieve", "orders"]).stdout,
         // combine puts its column after the last of its sources (town).
         "order,prefix,number,customer,given,family,town,label\n\
          OX-7201,OX,7201,Ada Quenwick,Ada,Quenwick,Oxwater,Ada of Oxwater\n\
          OX-7202,OX,7202,Bram,Bram,,,Bram\n\
          Q-9,Q-,,Cora de la Fenn,Cora,de la Fenn,Quillby,Cora of Quillby\n"
     );
-    let store = Store::open(&s.path().join(".sluice")).unwrap();
-    let combined = sluice::refs::resolve(&store.lineage, "orders@3").unwrap();
+    let store = Store::open(&s.path().join("sluice-store")).unwrap();
+    let combined = sluice::refs::resolve(&store.lineage, "orders:v3").unwrap();
     assert_eq!(
         store.lineage.column_sources(combined.id).unwrap(),
         vec![
@@ -1162,7 +1162,7 @@ fn split_combine_and_extract_derive_new_columns_and_name_their_sources() {
     let err = s.fails(
         2,
         &[
-            "apply", "orders", "split", "--column", "customer", "--on", " ", "--into", "town",
+            "clean", "orders", "split", "--column", "customer", "--on", " ", "--into", "town",
             "--why", "x",
         ],
     );
@@ -1182,10 +1182,10 @@ fn lookup_join_keep_select_in_the_shape_of_the_where_provenance_example() {
         "name,phone,dept\nIvo Ashford,555-0101,1\nNell Corby,555-0102,2\nKit Fenwell,555-0103,1\n",
     );
     s.file("departments.csv", "dept_no,dept_name\n1,CS\n2,Physics\n");
-    s.ok(&["ingest", "employees.csv", "--as", "employees"]);
-    s.ok(&["ingest", "departments.csv", "--as", "departments"]);
+    s.ok(&["receive", "employees.csv", "--as", "employees"]);
+    s.ok(&["receive", "departments.csv", "--as", "departments"]);
     let out = s.ok(&[
-        "apply",
+        "clean",
         "employees",
         "lookup",
         "--table",
@@ -1201,7 +1201,7 @@ fn lookup_join_keep_select_in_the_shape_of_the_where_provenance_example() {
     ]);
     assert_contains(&out, "lookup derived dept_name");
     s.ok(&[
-        "apply",
+        "clean",
         "employees",
         "keep",
         "dept_name = 'CS'",
@@ -1209,7 +1209,7 @@ fn lookup_join_keep_select_in_the_shape_of_the_where_provenance_example() {
         "the CS department",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "employees",
         "select",
         "name,phone",
@@ -1217,10 +1217,10 @@ fn lookup_join_keep_select_in_the_shape_of_the_where_provenance_example() {
         "the phone list",
     ]);
     assert_eq!(
-        s.run(&["cat", "employees"]).stdout,
+        s.run(&["retrieve", "employees"]).stdout,
         "name,phone\nIvo Ashford,555-0101\nKit Fenwell,555-0103\n"
     );
-    let log = s.json(&["log", "employees", "--json"]);
+    let log = s.json(&["timeline", "--dataset", "employees", "--json"]);
     let lookup = log
         .as_array()
         .unwrap()
@@ -1229,10 +1229,10 @@ fn lookup_join_keep_select_in_the_shape_of_the_where_provenance_example() {
         .unwrap();
     assert_eq!(
         lookup["step"]["inputs"],
-        serde_json::json!(["employees@1", "departments@1"])
+        serde_json::json!(["employees:v1", "departments:v1"])
     );
-    let store = Store::open(&s.path().join(".sluice")).unwrap();
-    let joined = sluice::refs::resolve(&store.lineage, "employees@2").unwrap();
+    let store = Store::open(&s.path().join("sluice-store")).unwrap();
+    let joined = sluice::refs::resolve(&store.lineage, "employees:v2").unwrap();
     let sources = store.lineage.column_sources(joined.id).unwrap();
     assert!(sources.contains(&("dept_name".to_string(), "dept_name".to_string())));
     assert!(
@@ -1242,9 +1242,9 @@ fn lookup_join_keep_select_in_the_shape_of_the_where_provenance_example() {
     drop(store);
     // A key the table lacks: blank and noted, or refused; a key on two table rows: refused.
     s.file("more.csv", "name,dept\nOtto Marley,9\n");
-    s.ok(&["ingest", "more.csv", "--as", "more"]);
+    s.ok(&["receive", "more.csv", "--as", "more"]);
     let out = s.ok(&[
-        "apply",
+        "clean",
         "more",
         "lookup",
         "--table",
@@ -1260,14 +1260,14 @@ fn lookup_join_keep_select_in_the_shape_of_the_where_provenance_example() {
     ]);
     assert_contains(&out, "noted: 1 cell left as asked");
     assert_eq!(
-        s.run(&["cat", "more"]).stdout,
+        s.run(&["retrieve", "more"]).stdout,
         "name,dept,dept_name\nOtto Marley,9,\n"
     );
     let err = s.fails(
         1,
         &[
-            "apply",
-            "more@1",
+            "clean",
+            "more:v1",
             "lookup",
             "--table",
             "departments",
@@ -1287,8 +1287,8 @@ fn lookup_join_keep_select_in_the_shape_of_the_where_provenance_example() {
     let err = s.fails(
         1,
         &[
-            "apply",
-            "more@1",
+            "clean",
+            "more:v1",
             "lookup",
             "--table",
             "dup.csv",
@@ -1314,20 +1314,20 @@ fn append_then_dedupe_keeps_each_rows_origin() {
     let s = Sandbox::with_store();
     s.file("a.csv", "shop,city\nQuillby Cycle Mend,Quillby\n");
     s.file("b.csv", "shop,town\nQuillby Cycle Mend,Quillby\n");
-    s.ok(&["ingest", "a.csv", "--as", "first"]);
-    s.ok(&["ingest", "b.csv", "--as", "second"]);
+    s.ok(&["receive", "a.csv", "--as", "first"]);
+    s.ok(&["receive", "b.csv", "--as", "second"]);
     let err = s.fails(
         2,
         &[
-            "apply", "first", "append", "--other", "second", "--why", "merge",
+            "clean", "first", "append", "--other", "second", "--why", "merge",
         ],
     );
     assert_contains(
         &err,
-        "second@1 has column \"town\" that first@1 has not; map them with --map THEIRS=OURS",
+        "second:v1 has column \"town\" that first:v1 has not; map them with --map THEIRS=OURS",
     );
     let out = s.ok(&[
-        "apply",
+        "clean",
         "first",
         "append",
         "--other",
@@ -1338,13 +1338,13 @@ fn append_then_dedupe_keeps_each_rows_origin() {
         "merge",
     ]);
     assert_contains(&out, "append added 1 row; 2 rows");
-    let out = s.ok(&["apply", "first", "dedupe", "--why", "same shop twice"]);
+    let out = s.ok(&["clean", "first", "dedupe", "--why", "same shop twice"]);
     assert_contains(&out, "dedupe dropped 1 row; 1 row");
-    let store = Store::open(&s.path().join(".sluice")).unwrap();
-    let a = sluice::refs::resolve(&store.lineage, "first@1").unwrap();
-    let b = sluice::refs::resolve(&store.lineage, "second@1").unwrap();
-    let merged = sluice::refs::resolve(&store.lineage, "first@2").unwrap();
-    let deduped = sluice::refs::resolve(&store.lineage, "first@3").unwrap();
+    let store = Store::open(&s.path().join("sluice-store")).unwrap();
+    let a = sluice::refs::resolve(&store.lineage, "first:v1").unwrap();
+    let b = sluice::refs::resolve(&store.lineage, "second:v1").unwrap();
+    let merged = sluice::refs::resolve(&store.lineage, "first:v2").unwrap();
+    let deduped = sluice::refs::resolve(&store.lineage, "first:v3").unwrap();
     let runs = |out: &Version, inp: &Version| -> Vec<(u64, u64, u64)> {
         sluice::provenance::row_runs(&store, out, inp.id)
             .unwrap()
@@ -1386,7 +1386,7 @@ fn check_records_results_and_fails_with_exit_code_1() {
             {"rule": "unique", "columns": ["species"]}
         ]}"#,
     );
-    let r = s.run(&["check", "penguins", "--rules", "rules.json", "--json"]);
+    let r = s.run(&["inspect", "penguins", "--rules", "rules.json", "--json"]);
     assert_eq!(r.code, 1, "{}", r.stderr);
     let report: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
     let failing: Vec<u64> = report["results"]
@@ -1402,7 +1402,7 @@ fn check_records_results_and_fails_with_exit_code_1() {
     assert!(failing[4] > 0);
     assert_eq!(failing[5..7], [0, 0]);
     assert_eq!(failing[7], 341);
-    let shown = s.json(&["show", "penguins", "--json"]);
+    let shown = s.json(&["about", "penguins", "--json"]);
     assert_eq!(shown["checks"].as_array().unwrap().len(), 8);
     assert_eq!(shown["checks"][0]["passed"], false);
     assert_contains(&s.ok(&["verify"]), "intact");
@@ -1410,7 +1410,7 @@ fn check_records_results_and_fails_with_exit_code_1() {
         "bad.json",
         "{\"rules\": [\n  {\"rule\": \"not_blank\", \"colums\": [\"sex\"]}\n]}",
     );
-    let err = s.fails(2, &["check", "penguins", "--rules", "bad.json"]);
+    let err = s.fails(2, &["inspect", "penguins", "--rules", "bad.json"]);
     assert_contains(&err, "bad.json: line ");
     assert_contains(&err, "unknown field `colums`, expected `columns`");
 }

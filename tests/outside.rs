@@ -1,5 +1,5 @@
 //! Work done outside sluice: hand edits taken in with `ingest --from` and outside commands run
-//! with `sluice exec`, whose row lineage is inferred by a diff. The lineage is checked against
+//! with `sluice capture`, whose row lineage is inferred by a diff. The lineage is checked against
 //! the edits the tests themselves make (they know which cells they changed and which rows they
 //! removed), and the recorded code version against git's own `git rev-parse`.
 
@@ -35,7 +35,7 @@ fn to_csv(rows: &[Vec<String>]) -> String {
 }
 
 fn open_store(s: &Sandbox) -> Store {
-    Store::open(&s.path().join(".sluice")).expect("open the store")
+    Store::open(&s.path().join("sluice-store")).expect("open the store")
 }
 
 fn version(store: &Store, reference: &str) -> sluice::model::Version {
@@ -72,7 +72,7 @@ fn a_hand_edit_names_exactly_the_cells_and_the_row_it_changed() {
     let original = orders();
     s.file("orders.csv", to_csv(&original));
     s.ok(&[
-        "ingest",
+        "receive",
         "orders.csv",
         "--as",
         "orders",
@@ -91,12 +91,12 @@ fn a_hand_edit_names_exactly_the_cells_and_the_row_it_changed() {
     edited.remove(deleted + 1);
     s.file("orders_edited.csv", to_csv(&edited));
     let out = s.ok(&[
-        "ingest",
+        "receive",
         "orders_edited.csv",
         "--as",
         "orders",
-        "--from",
-        "orders@1",
+        "--hand-edit-of",
+        "orders:v1",
         "--why",
         "corrections phoned in by the shop",
     ]);
@@ -105,8 +105,8 @@ fn a_hand_edit_names_exactly_the_cells_and_the_row_it_changed() {
     assert_contains(&out, "1 row removed");
 
     let store = open_store(&s);
-    let v1 = version(&store, "orders@1");
-    let v2 = version(&store, "orders@2");
+    let v1 = version(&store, "orders:v1");
+    let v2 = version(&store, "orders:v2");
     // After the deleted row, input row r is output row r - 1.
     let out_row = |r: usize| (if r > deleted { r - 1 } else { r }) as u64;
     let expected: Vec<(u64, String, Option<String>, Option<String>)> = edits
@@ -141,13 +141,13 @@ fn a_hand_edit_names_exactly_the_cells_and_the_row_it_changed() {
     let d = deleted as u64;
     assert_eq!(runs, vec![(0, 0, d), (d, d + 1, n - d - 1)]);
 
-    let show = s.ok(&["show", "orders@2"]);
-    assert_contains(&show, "hand_edit");
-    assert_contains(&show, "lineage inferred");
+    let show = s.ok(&["about", "orders:v2"]);
+    assert_contains(&show, "hand edit (lineage inferred by order)");
     assert_contains(&show, "corrections phoned in by the shop");
-    let log = s.ok(&["log", "orders"]);
-    assert_contains(&log, "hand_edit · lineage inferred by order");
-    let json = s.json(&["show", "orders@2", "--json"]);
+    let log = s.ok(&["timeline", "--dataset", "orders"]);
+    assert_contains(&log, "hand edit");
+    assert_contains(&log, "orders:v2");
+    let json = s.json(&["about", "orders:v2", "--json"]);
     assert_eq!(json["step"]["kind"], "hand_edit");
     assert_eq!(json["step"]["lineage"], "inferred");
     assert_contains(&s.ok(&["verify"]), "intact");
@@ -157,34 +157,34 @@ fn a_hand_edit_names_exactly_the_cells_and_the_row_it_changed() {
 fn a_hand_edit_needs_a_reason_and_a_known_version() {
     let s = Sandbox::with_store();
     s.file("orders.csv", to_csv(&orders()));
-    s.ok(&["ingest", "orders.csv", "--as", "orders"]);
+    s.ok(&["receive", "orders.csv", "--as", "orders"]);
     let before = s.snapshot();
     let err = s.fails(
         2,
         &[
-            "ingest",
+            "receive",
             "orders.csv",
             "--as",
             "orders",
-            "--from",
-            "orders@1",
+            "--hand-edit-of",
+            "orders:v1",
         ],
     );
     assert_contains(&err, "--why");
     let err = s.fails(
         2,
         &[
-            "ingest",
+            "receive",
             "orders.csv",
             "--as",
             "orders",
-            "--from",
-            "orders@7",
+            "--hand-edit-of",
+            "orders:v7",
             "--why",
             "x",
         ],
     );
-    assert_contains(&err, "orders@7");
+    assert_contains(&err, "orders:v7");
     assert_eq!(s.snapshot(), before);
 }
 
@@ -210,7 +210,7 @@ fn an_outside_command_records_its_commit_branch_dirty_files_and_lineage() {
     let original = orders();
     s.file("orders.csv", to_csv(&original));
     s.ok(&[
-        "ingest",
+        "receive",
         "orders.csv",
         "--as",
         "orders",
@@ -232,7 +232,7 @@ fn an_outside_command_records_its_commit_branch_dirty_files_and_lineage() {
     s.file("NOTES.txt", "how the Q3 orders are cleaned, and why\n");
 
     let out = s.ok(&[
-        "exec",
+        "capture",
         "--input",
         "orders",
         "--output",
@@ -245,14 +245,14 @@ fn an_outside_command_records_its_commit_branch_dirty_files_and_lineage() {
         "{orders}",
         "{out:orders}",
     ]);
-    assert_contains(&out, "recorded orders@2");
-    assert_contains(&out, "command");
+    assert_contains(&out, "recorded orders:v2");
+    assert_contains(&out, "capture;");
 
     // The outside reference: git itself (`git rev-parse HEAD`, `git rev-parse --abbrev-ref
     // HEAD`) for the commit and branch the command ran from.
     let head = git(dir, &["rev-parse", "HEAD"]);
     let branch = git(dir, &["rev-parse", "--abbrev-ref", "HEAD"]);
-    let shown = s.json(&["show", "orders@2", "--json"]);
+    let shown = s.json(&["about", "orders:v2", "--json"]);
     let code = &shown["step"]["code"];
     assert_eq!(shown["step"]["kind"], "command");
     assert_eq!(shown["step"]["lineage"], "inferred");
@@ -265,22 +265,22 @@ fn an_outside_command_records_its_commit_branch_dirty_files_and_lineage() {
         serde_json::json!(["python3", "clean.py", "{orders}", "{out:orders}"])
     );
     assert_eq!(code["exit_status"], 0);
-    assert_eq!(code["inputs"][0]["hash"], shown_hash(&s, "orders@1"));
-    let text = s.ok(&["show", "orders@2"]);
+    assert_eq!(code["inputs"][0]["hash"], shown_hash(&s, "orders:v1"));
+    let text = s.ok(&["about", "orders:v2"]);
     assert_contains(
         &text,
         &format!("git {head} (branch {branch}, dirty: NOTES.txt)"),
     );
     assert_contains(
-        &s.ok(&["log", "orders"]),
-        "command · lineage inferred by key order_id",
+        &s.ok(&["about", "orders"]),
+        "capture (lineage inferred by key order_id)",
     );
 
     // The lineage is what the script did (by construction of CLEAN_PY on `orders()`): every
     // test order dropped, every "Ines" changed, nothing else.
     let store = open_store(&s);
-    let v1 = version(&store, "orders@1");
-    let v2 = version(&store, "orders@2");
+    let v1 = version(&store, "orders:v1");
+    let v2 = version(&store, "orders:v2");
     let expected_drops: Vec<u64> = (0..original.len() as u64 - 1)
         .filter(|&r| original[r as usize + 1][2] == "test")
         .collect();
@@ -323,14 +323,16 @@ fn an_outside_command_records_its_commit_branch_dirty_files_and_lineage() {
     assert_eq!(mapped, kept);
     // The temporary copies of the inputs are gone.
     assert_eq!(
-        std::fs::read_dir(dir.join(".sluice/tmp")).unwrap().count(),
+        std::fs::read_dir(dir.join("sluice-store/tmp"))
+            .unwrap()
+            .count(),
         0
     );
     assert_contains(&s.ok(&["verify"]), "intact");
 }
 
 fn shown_hash(s: &Sandbox, reference: &str) -> String {
-    s.json(&["show", reference, "--json"])["version"]["hash"]
+    s.json(&["about", reference, "--json"])["version"]["hash"]
         .as_str()
         .unwrap()
         .to_string()
@@ -340,7 +342,7 @@ fn shown_hash(s: &Sandbox, reference: &str) -> String {
 fn paths_reach_the_command_through_environment_variables_too() {
     let s = Sandbox::with_store();
     s.file("orders.csv", to_csv(&orders()));
-    s.ok(&["ingest", "orders.csv", "--as", "orders"]);
+    s.ok(&["receive", "orders.csv", "--as", "orders"]);
     s.file(
         "env_copy.py",
         "import os, shutil\n\
@@ -350,9 +352,9 @@ fn paths_reach_the_command_through_environment_variables_too() {
          open(dst, 'w').write(text)\n",
     );
     s.ok(&[
-        "exec",
+        "capture",
         "--input",
-        "raw_orders=orders@1",
+        "raw_orders=orders:v1",
         "--output",
         "copied=copy.csv",
         "--why",
@@ -364,7 +366,7 @@ fn paths_reach_the_command_through_environment_variables_too() {
     let store = open_store(&s);
     let v = version(&store, "copied");
     // No input of the same dataset: the lineage is to the first input.
-    let from = version(&store, "orders@1");
+    let from = version(&store, "orders:v1");
     let caspar_rows = orders()[1..].iter().filter(|r| r[1] == "Caspar").count();
     let cells = cell_changes(&store, &v).unwrap();
     assert_eq!(cells.len(), caspar_rows);
@@ -372,7 +374,7 @@ fn paths_reach_the_command_through_environment_variables_too() {
         .iter()
         .all(|c| c.old.as_deref() == Some("Caspar") && c.new.as_deref() == Some("Kaspar")));
     assert!(drops(&store, v.step_id, from.id).unwrap().is_empty());
-    let code = s.json(&["show", "copied", "--json"])["step"]["code"].clone();
+    let code = s.json(&["about", "copied", "--json"])["step"]["code"].clone();
     assert_eq!(code["git"], serde_json::Value::Null);
 }
 
@@ -380,12 +382,12 @@ fn paths_reach_the_command_through_environment_variables_too() {
 fn a_failing_command_records_nothing_but_its_audit_entry() {
     let s = Sandbox::with_store();
     s.file("orders.csv", to_csv(&orders()));
-    s.ok(&["ingest", "orders.csv", "--as", "orders"]);
+    s.ok(&["receive", "orders.csv", "--as", "orders"]);
     let (before, audit_before) = snapshot_and_audit(&s);
     let err = s.fails(
         3,
         &[
-            "exec",
+            "capture",
             "--input",
             "orders",
             "--output",
@@ -409,12 +411,12 @@ fn a_failing_command_records_nothing_but_its_audit_entry() {
 fn a_missing_output_file_records_nothing_but_its_audit_entry() {
     let s = Sandbox::with_store();
     s.file("orders.csv", to_csv(&orders()));
-    s.ok(&["ingest", "orders.csv", "--as", "orders"]);
+    s.ok(&["receive", "orders.csv", "--as", "orders"]);
     let (before, audit_before) = snapshot_and_audit(&s);
     let err = s.fails(
         1,
         &[
-            "exec",
+            "capture",
             "--input",
             "orders",
             "--output",
@@ -438,7 +440,7 @@ fn a_missing_output_file_records_nothing_but_its_audit_entry() {
     let err = s.fails(
         1,
         &[
-            "exec",
+            "capture",
             "--input",
             "orders",
             "--output",
@@ -458,7 +460,7 @@ fn a_missing_output_file_records_nothing_but_its_audit_entry() {
 fn a_command_that_changes_its_input_is_refused() {
     let s = Sandbox::with_store();
     s.file("orders.csv", to_csv(&orders()));
-    s.ok(&["ingest", "orders.csv", "--as", "orders"]);
+    s.ok(&["receive", "orders.csv", "--as", "orders"]);
     let (before, audit_before) = snapshot_and_audit(&s);
     s.file(
         "sneaky.py",
@@ -469,7 +471,7 @@ fn a_command_that_changes_its_input_is_refused() {
     let err = s.fails(
         1,
         &[
-            "exec",
+            "capture",
             "--input",
             "orders",
             "--output",

@@ -519,7 +519,7 @@ fn trim_case_dedupe_drop_and_summarize_agree_with_pandas() {
     let s = Sandbox::with_store();
     let raw = s.file("orders.csv", &export.csv);
     s.ok(&[
-        "ingest",
+        "receive",
         "orders.csv",
         "--as",
         "orders",
@@ -527,14 +527,14 @@ fn trim_case_dedupe_drop_and_summarize_agree_with_pandas() {
         "quarterly export of the three tills",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "trim",
         "--why",
         "the tills pad values with spaces and tabs",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "case",
         "--to",
@@ -545,14 +545,14 @@ fn trim_case_dedupe_drop_and_summarize_agree_with_pandas() {
         "e-mail addresses are case-blind",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "dedupe",
         "--why",
         "the tills export some orders twice",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "drop",
         "status = 'cancelled'",
@@ -560,7 +560,7 @@ fn trim_case_dedupe_drop_and_summarize_agree_with_pandas() {
         "cancelled orders earn nothing",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "summarize",
         "--by",
@@ -572,19 +572,19 @@ fn trim_case_dedupe_drop_and_summarize_agree_with_pandas() {
         "--why",
         "takings per shop",
     ]);
-    let n_rows = |r: &str| s.json(&["show", r, "--json"])["version"]["n_rows"].clone();
+    let n_rows = |r: &str| s.json(&["about", r, "--json"])["version"]["n_rows"].clone();
     // Row counts after each step, against the generator's (independent of both programs).
-    assert_eq!(n_rows("orders@1"), export.n_raw, "rows taken in");
-    assert_eq!(n_rows("orders@2"), export.n_raw, "rows after trim");
-    assert_eq!(n_rows("orders@3"), export.n_raw, "rows after case");
-    assert_eq!(n_rows("orders@4"), export.n_distinct, "rows after dedupe");
+    assert_eq!(n_rows("orders:v1"), export.n_raw, "rows taken in");
+    assert_eq!(n_rows("orders:v2"), export.n_raw, "rows after trim");
+    assert_eq!(n_rows("orders:v3"), export.n_raw, "rows after case");
+    assert_eq!(n_rows("orders:v4"), export.n_distinct, "rows after dedupe");
     assert_eq!(
-        n_rows("orders@5"),
+        n_rows("orders:v5"),
         export.n_distinct - export.n_cancelled,
         "rows after drop"
     );
-    let ours_rows = parse_csv(&s.ok(&["cat", "orders"]));
-    let ours_totals = parse_csv(&s.ok(&["cat", "totals"]));
+    let ours_rows = parse_csv(&s.ok(&["retrieve", "orders"]));
+    let ours_totals = parse_csv(&s.ok(&["retrieve", "totals"]));
 
     // The same steps in pandas 3.1.1 (PyPI), the outside reference, with sums in Python's
     // decimal module (tests/reference/clean_pandas.py); the version is checked against the pin.

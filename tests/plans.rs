@@ -33,7 +33,7 @@ fn assert_valid(v: &jsonschema::Validator, plan: &Value, what: &str) {
 }
 
 fn hash_of(s: &Sandbox, reference: &str) -> String {
-    s.json(&["show", reference, "--json"])["version"]["hash"]
+    s.json(&["about", reference, "--json"])["version"]["hash"]
         .as_str()
         .unwrap()
         .to_string()
@@ -290,8 +290,8 @@ fn an_exported_plan_remakes_the_version_byte_for_byte_in_a_fresh_store() {
         assert_eq!(hash_of(&fresh, r), hash_of(&d, r), "{r}");
     }
     assert_eq!(
-        fresh.run(&["cat", "q3_by_shop"]).raw_stdout,
-        d.run(&["cat", "q3_by_shop"]).raw_stdout
+        fresh.run(&["retrieve", "q3_by_shop"]).raw_stdout,
+        d.run(&["retrieve", "q3_by_shop"]).raw_stdout
     );
     assert_contains(&fresh.ok(&["verify"]), "intact");
 }
@@ -316,9 +316,9 @@ fn inputs_bind_to_stored_versions_or_to_new_files() {
         "run",
         "quillby_only.json",
         "--input",
-        "quillby_orders=quillby_orders@1",
+        "quillby_orders=quillby_orders:v1",
     ]);
-    assert_contains(&out, "input quillby_orders: bound to quillby_orders@1");
+    assert_contains(&out, "input quillby_orders: bound to quillby_orders:v1");
     assert_eq!(hash_of(&d, "quillby_orders"), cleaned);
 
     // Next quarter's export, given on the command line instead of the plan's file: the same
@@ -349,8 +349,8 @@ fn inputs_bind_to_stored_versions_or_to_new_files() {
     assert_eq!(done.len(), 4);
     assert!(done[1..]
         .iter()
-        .all(|s| s["kind"] == "apply" && s["recorded"] == true));
-    let latest = d.json(&["show", "quillby_orders", "--json"]);
+        .all(|s| s["kind"] == "clean" && s["recorded"] == true));
+    let latest = d.json(&["about", "quillby_orders", "--json"]);
     assert_eq!(latest["version"]["n_rows"].as_u64().unwrap(), 90);
 
     // An input the plan does not have, or a file that is not there: refused before anything.
@@ -383,14 +383,19 @@ fn a_failing_step_stops_the_run_and_keeps_the_steps_before_it() {
     );
     let r = s.run(&["run", "p.json"]);
     assert_eq!(r.code, 1, "an amount that cannot be read is a data failure");
-    assert_contains(&r.stdout, "step 1: recorded orders@2");
-    assert_contains(&r.stderr, "the run stopped at step 2 (number on orders)");
+    // Steps are called by their store-wide number (the intake is step 1); plan entries by
+    // their place in the plan.
+    assert_contains(&r.stdout, "step 2: recorded orders:v2");
     assert_contains(
         &r.stderr,
-        "the store keeps what came before: orders@1, orders@2",
+        "the run stopped at plan entry 2 (number on orders)",
+    );
+    assert_contains(
+        &r.stderr,
+        "the store keeps what came before: orders:v1, orders:v2",
     );
     assert_contains(&r.stderr, "abc");
-    let log = s.json(&["log", "orders", "--json"]);
+    let log = s.json(&["timeline", "--dataset", "orders", "--json"]);
     assert_eq!(log.as_array().unwrap().len(), 2, "the intake and the trim");
     assert_contains(&s.ok(&["verify"]), "intact");
 
@@ -404,8 +409,8 @@ fn a_failing_step_stops_the_run_and_keeps_the_steps_before_it() {
             ]}"#,
     );
     let err = s.fails(2, &["run", "q.json"]);
-    assert_contains(&err, "step 2 (case on orders)");
-    assert_contains(&err, "column \"colour\" is not in orders@3");
+    assert_contains(&err, "plan entry 2 (case on orders)");
+    assert_contains(&err, "column \"colour\" is not in orders:v3");
 }
 
 #[test]
@@ -426,9 +431,13 @@ fn a_gate_that_fails_stops_the_run_and_a_plain_check_does_not() {
     s.file("plain.json", plan(false));
     let r = s.run(&["run", "plain.json"]);
     assert_eq!(r.code, 1, "a failing check is reported in the exit code");
-    assert_contains(&r.stdout, "step 2: check on orders@2: 1 of 2 rules failed");
+    assert_contains(
+        &r.stdout,
+        "plan entry 2: inspection on orders:v2: 1 of 2 rules failed",
+    );
     assert_contains(&r.stdout, "unique id fails on 1 row");
-    assert_contains(&r.stdout, "step 3: recorded orders@3");
+    // The dedupe is the store's third step: the intake, the trim, then it.
+    assert_contains(&r.stdout, "step 3: recorded orders:v3");
 
     let s = Sandbox::with_store();
     s.file("o.csv", "id,status\n1,done\n1,done \n2,\n");
@@ -437,15 +446,15 @@ fn a_gate_that_fails_stops_the_run_and_a_plain_check_does_not() {
     assert_eq!(r.code, 1);
     assert_contains(
         &r.stderr,
-        "the run stopped at step 2 (gate check on orders)",
+        "the run stopped at plan entry 2 (inspection at a hold point on orders)",
     );
-    assert_contains(&r.stderr, "the gate on orders@2 failed: unique id (1 row)");
-    let shown = s.json(&["show", "orders@2", "--json"]);
+    assert_contains(&r.stderr, "the gate on orders:v2 failed: unique id (1 row)");
+    let shown = s.json(&["about", "orders:v2", "--json"]);
     let checks = shown["checks"].as_array().unwrap();
     assert_eq!(checks.len(), 2);
     assert!(checks.iter().all(|c| c["gate"] == true));
     assert_eq!(
-        s.json(&["log", "orders", "--json"])
+        s.json(&["timeline", "--dataset", "orders", "--json"])
             .as_array()
             .unwrap()
             .len(),
@@ -462,24 +471,24 @@ fn a_gate_that_fails_stops_the_run_and_a_plain_check_does_not() {
 fn histories_a_plan_cannot_express_are_refused_with_the_reason() {
     let s = Sandbox::with_store();
     s.file("o.csv", "id,name\n1, Ada\n2,Bram\n");
-    s.ok(&["ingest", "o.csv", "--as", "orders"]);
-    s.ok(&["apply", "orders", "trim", "--why", "spaces"]);
-    // orders@1 stacked under orders@2: the plan would need two versions of one name at once.
+    s.ok(&["receive", "o.csv", "--as", "orders"]);
+    s.ok(&["clean", "orders", "trim", "--why", "spaces"]);
+    // orders:v1 stacked under orders:v2: the plan would need two versions of one name at once.
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "append",
         "--other",
-        "orders@1",
+        "orders:v1",
         "--as",
         "both",
         "--why",
         "before and after",
     ]);
     let err = s.fails(2, &["export", "both", "--format", "plan"]);
-    assert_contains(&err, "cannot write both@1 as a plan");
+    assert_contains(&err, "cannot write both:v1 as a plan");
     assert_contains(
         &err,
-        "reads orders@1 after a later version of orders was made",
+        "reads orders:v1 after a later version of orders was made",
     );
 }

@@ -6,7 +6,7 @@
 //! own PROV-N of the PROV-JSON document must equal the parse of sluice's PROV-N as a document;
 //! the script also checks referential integrity and time order, which the library does not.
 //! The numbers of entities, activities, agents and of each relation the library counts must
-//! equal what the store holds, counted here from `sluice log --json`.
+//! equal what the store holds, counted here from `sluice timeline --json`.
 
 mod common;
 
@@ -16,7 +16,7 @@ use std::process::Command;
 use common::*;
 use serde_json::Value;
 
-/// What the store holds on the way to `target`, counted from `sluice log --json` the way the
+/// What the store holds on the way to `target`, counted from `sluice timeline --json` the way the
 /// PROV mapping is documented (README, "W3C PROV"): versions and outside files as entities,
 /// steps as activities, people and sluice builds as agents.
 fn expected_counts(log: &Value, target: &str) -> HashMap<&'static str, usize> {
@@ -79,20 +79,20 @@ fn the_prov_library_reads_the_demo_export_and_counts_what_the_store_holds() {
     let script = concat!(env!("CARGO_MANIFEST_DIR"), "/tests/reference/prov_check.py");
     // A revert as well, so that its step and the steps it applied again are exported too.
     s.ok(&[
-        "revert",
-        "all_orders@5",
+        "withdraw",
+        "all_orders:v5",
         "--why",
         "test orders are kept for the training report",
     ]);
-    let log = s.json(&["log", "--json"]);
-    // reviewed_orders@2 is the end of the demo's longest line: intakes of three exports and two
+    let log = s.json(&["timeline", "--json"]);
+    // reviewed_orders:v2 is the end of the demo's longest line: intakes of three exports and two
     // tables, built-in steps, an outside command and a hand edit; all_orders is now the end of
     // the revert.
     for target in [
-        "reviewed_orders@2",
-        "q3_by_shop@1",
-        "quillby_orders@1",
-        "all_orders@14",
+        "reviewed_orders:v2",
+        "q3_by_shop:v1",
+        "quillby_orders:v1",
+        "all_orders:v14",
     ] {
         let json_path = s.path().join("lineage.prov.json");
         let provn_path = s.path().join("lineage.provn");
@@ -160,8 +160,8 @@ fn the_check_script_catches_a_changed_value_and_a_reversed_activity() {
     let s = Sandbox::with_demo();
     let python = reference_python();
     let script = concat!(env!("CARGO_MANIFEST_DIR"), "/tests/reference/prov_check.py");
-    let json_text = s.ok(&["export", "oxwater_orders@2", "--format", "prov-json"]);
-    let provn = s.ok(&["export", "oxwater_orders@2", "--format", "prov-n"]);
+    let json_text = s.ok(&["export", "oxwater_orders:v2", "--format", "prov-json"]);
+    let provn = s.ok(&["export", "oxwater_orders:v2", "--format", "prov-n"]);
     let json_path = s.file("good.prov.json", &json_text);
     let changed = provn.replacen("sluice:rows=\"180\"", "sluice:rows=\"181\"", 1);
     assert_ne!(changed, provn, "the demo's Oxwater export has 180 rows");

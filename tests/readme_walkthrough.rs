@@ -29,8 +29,9 @@ use std::path::{Path, PathBuf};
 use std::process::Command;
 
 const README: &str = concat!(env!("CARGO_MANIFEST_DIR"), "/README.md");
-/// The agent the README's outputs show.
-const README_AGENT: &str = "Robin Example <robin@example.org>";
+/// The person the README's outputs show: SLUICE_PERSON and SLUICE_EMAIL.
+const README_PERSON: &str = "Robin Example";
+const README_EMAIL: &str = "robin@example.org";
 
 /// One `$ ` command of a console block and the output lines under it.
 struct Example {
@@ -277,7 +278,8 @@ fn the_readme_walkthrough_works_as_shown() {
             .arg(&e.command)
             .current_dir(&cwd)
             .env("PATH", &path)
-            .env("SLUICE_AGENT", README_AGENT)
+            .env("SLUICE_PERSON", README_PERSON)
+            .env("SLUICE_EMAIL", README_EMAIL)
             .env("NO_COLOR", "1")
             .env_remove("SLUICE_STORE")
             .output()

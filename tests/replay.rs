@@ -1,4 +1,4 @@
-//! `sluice replay`: a version computed again from its raw ancestors, every step checked against
+//! `sluice reproduce`: a version computed again from its raw ancestors, every step checked against
 //! the bytes it recorded; missing intermediate objects restored; differences named and
 //! summarised; hand edits re-applied; outside commands run again only with `--allow-exec`.
 //!
@@ -41,13 +41,13 @@ fn repository_with_script() -> (Sandbox, String) {
     git(dir, &["init", "-q"]);
     git(dir, &["config", "user.name", "Robin Example"]);
     git(dir, &["config", "user.email", "robin@example.org"]);
-    s.file(".gitignore", ".sluice/\nruns.log\n*.csv\nout/\n");
+    s.file(".gitignore", "sluice-store/\nruns.log\n*.csv\nout/\n");
     s.file(
         "orders.csv",
         "order_id,technician,status\n41001,ines,done\n41002,tobiah,test\n41003,caspar,done\n",
     );
     s.ok(&[
-        "ingest",
+        "receive",
         "orders.csv",
         "--as",
         "orders",
@@ -88,7 +88,7 @@ fn store_dir(s: &Sandbox) -> std::path::PathBuf {
 }
 
 fn hash_of(s: &Sandbox, reference: &str) -> String {
-    s.json(&["show", reference, "--json"])["version"]["hash"]
+    s.json(&["about", reference, "--json"])["version"]["hash"]
         .as_str()
         .unwrap()
         .to_string()
@@ -97,7 +97,7 @@ fn hash_of(s: &Sandbox, reference: &str) -> String {
 #[test]
 fn the_demo_summary_is_reproduced_step_by_step() {
     let d = Sandbox::with_demo();
-    let r = d.json(&["replay", "q3_by_shop", "--json"]);
+    let r = d.json(&["reproduce", "q3_by_shop", "--json"]);
     assert_eq!(r["reproduced"], true);
     let steps = r["steps"].as_array().unwrap();
     let raw = steps.iter().filter(|s| s["result"] == "raw_intact").count();
@@ -109,20 +109,20 @@ fn the_demo_summary_is_reproduced_step_by_step() {
         .filter(|s| s["result"] == "same")
         .all(|s| s["computed_hash"] == s["recorded_hash"]));
     assert_contains(
-        &d.ok(&["replay", "q3_by_shop"]),
-        "every one of 20 steps gave the recorded bytes",
+        &d.ok(&["reproduce", "q3_by_shop"]),
+        "all 25 steps above check out (5 raw inputs intact, 20 steps run again gave the recorded bytes)",
     );
 }
 
 #[test]
 fn a_removed_intermediate_object_is_restored_by_replay() {
     let d = Sandbox::with_demo();
-    let hash = hash_of(&d, "all_orders@5");
+    let hash = hash_of(&d, "all_orders:v5");
     remove_object(&store_dir(&d), &hash);
     let r = d.run(&["verify", "--json"]);
     assert_eq!(r.code, 1);
     assert_contains(&r.stdout, "object_missing");
-    let r = d.json(&["replay", "q3_by_shop", "--json"]);
+    let r = d.json(&["reproduce", "q3_by_shop", "--json"]);
     assert_eq!(r["reproduced"], true);
     let restored: Vec<&str> = r["steps"]
         .as_array()
@@ -131,7 +131,7 @@ fn a_removed_intermediate_object_is_restored_by_replay() {
         .filter(|s| s["result"] == "restored")
         .map(|s| s["produced"].as_str().unwrap())
         .collect();
-    assert_eq!(restored, vec!["all_orders@5"]);
+    assert_eq!(restored, vec!["all_orders:v5"]);
     assert_contains(&d.ok(&["verify"]), "intact");
 }
 
@@ -139,20 +139,20 @@ fn a_removed_intermediate_object_is_restored_by_replay() {
 fn damage_and_differences_stop_the_replay_where_they_are() {
     // Damaged raw data cannot be computed again: replay stops at it.
     let d = Sandbox::with_demo();
-    let raw = hash_of(&d, "technicians@1");
+    let raw = hash_of(&d, "technicians:v1");
     damage_object(&store_dir(&d), &raw, |bytes| bytes[10] ^= 0x20);
-    let r = d.run(&["replay", "q3_by_shop", "--json"]);
+    let r = d.run(&["reproduce", "q3_by_shop", "--json"]);
     assert_eq!(r.code, 1);
     let report: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
     assert_eq!(report["reproduced"], false);
     let last = report["steps"].as_array().unwrap().last().unwrap().clone();
     assert_eq!(last["result"], "raw_damaged");
-    assert_eq!(last["produced"], "technicians@1");
+    assert_eq!(last["produced"], "technicians:v1");
 
     // A step whose recorded parameters no longer give its recorded bytes is named, and the
     // replay stops there. (The parameters are edited behind sluice's back, in the database.)
     let d = Sandbox::with_demo();
-    let db = rusqlite::Connection::open(d.path().join(".sluice/lineage.db")).unwrap();
+    let db = rusqlite::Connection::open(d.path().join("sluice-store/lineage.db")).unwrap();
     let changed = db
         .execute(
             "UPDATE steps SET params = replace(params, '\"inner\":true', '\"inner\":false')
@@ -162,22 +162,35 @@ fn damage_and_differences_stop_the_replay_where_they_are() {
         .unwrap();
     assert_eq!(changed, 1);
     drop(db);
-    let snapshot = d.snapshot();
-    let r = d.run(&["replay", "q3_by_shop"]);
+    // `verify` sees the edit (the step's row is no longer the one its audit entry committed
+    // to), so the store is compared before and after by its files and log instead.
+    let seen = d.run(&["verify"]);
+    assert_eq!(seen.code, 1);
+    assert_contains(&seen.stdout, "the rows of steps whose id is");
+    let files = |d: &Sandbox| {
+        let count = |sub: &str| std::fs::read_dir(d.path().join(sub)).unwrap().count();
+        (
+            count("sluice-store/segments"),
+            count("sluice-store/tmp"),
+            d.ok(&["timeline", "--json"]),
+        )
+    };
+    let snapshot = files(&d);
+    let r = d.run(&["reproduce", "q3_by_shop"]);
     assert_eq!(r.code, 1);
-    assert_contains(&r.stdout, "trim -> quillby_orders@2");
+    assert_contains(&r.stdout, "trim -> quillby_orders:v2");
     assert_contains(&r.stdout, "differs");
-    assert_contains(&r.stdout, "not reproduced: q3_by_shop@1");
-    assert!(!r.stdout.contains("summarize -> q3_by_shop@1"));
+    assert_contains(&r.stdout, "not reproduced: q3_by_shop:v1");
+    assert!(!r.stdout.contains("summarize -> q3_by_shop:v1"));
     // The difference, summarised by the diff engine: with inner spaces kept, the customer
     // names that had doubled spaces differ, and nothing else does.
-    assert_contains(&r.stdout, "recorded quillby_orders@2 has 240 rows");
+    assert_contains(&r.stdout, "recorded quillby_orders:v2 has 240 rows");
     assert_contains(
         &r.stdout,
         "0 only in the recorded output, 0 only in the recomputed one",
     );
     assert_contains(&r.stdout, "changed cells by column: customer ");
-    let report = d.run(&["replay", "q3_by_shop", "--json"]);
+    let report = d.run(&["reproduce", "q3_by_shop", "--json"]);
     let report: serde_json::Value = serde_json::from_str(&report.stdout).unwrap();
     let last = report["steps"].as_array().unwrap().last().unwrap().clone();
     let diff = &last["difference"];
@@ -197,16 +210,16 @@ fn damage_and_differences_stop_the_replay_where_they_are() {
         );
     }
     // Comparing left nothing behind: no version or step, no temporary file, no object.
-    let v = d.json(&["verify", "--json"]);
+    let v: serde_json::Value = serde_json::from_str(&d.run(&["verify", "--json"]).stdout).unwrap();
     assert_eq!(v["unreferenced_objects"], 0);
     assert_eq!(v["leftover_temp_files"], 0);
-    assert_eq!(snapshot, d.snapshot());
+    assert_eq!(snapshot, files(&d));
 }
 
 #[test]
 fn without_allow_exec_a_command_is_not_run_and_a_hand_edit_is_reapplied() {
     let d = Sandbox::with_demo();
-    let r = d.run(&["replay", "reviewed_orders", "--json"]);
+    let r = d.run(&["reproduce", "reviewed_orders", "--json"]);
     assert_eq!(r.code, 1);
     let report: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
     let outside: Vec<(&str, &str, &str)> = report["steps"]
@@ -225,8 +238,8 @@ fn without_allow_exec_a_command_is_not_run_and_a_hand_edit_is_reapplied() {
     assert_eq!(
         outside,
         vec![
-            ("command", "reviewed_orders@1", "not_rerun"),
-            ("hand_edit", "reviewed_orders@2", "reapplied"),
+            ("command", "reviewed_orders:v1", "not_rerun"),
+            ("hand_edit", "reviewed_orders:v2", "reapplied"),
         ]
     );
     assert_eq!(report["reproduced"], false, "the command was not run again");
@@ -236,17 +249,17 @@ fn without_allow_exec_a_command_is_not_run_and_a_hand_edit_is_reapplied() {
 #[test]
 fn a_hand_edit_whose_output_object_is_gone_cannot_be_reapplied() {
     let d = Sandbox::with_demo();
-    let hash = hash_of(&d, "reviewed_orders@2");
+    let hash = hash_of(&d, "reviewed_orders:v2");
     remove_object(&store_dir(&d), &hash);
-    let snapshot = d.path().join(".sluice/lineage.db");
+    let snapshot = d.path().join("sluice-store/lineage.db");
     let before = std::fs::read(&snapshot).unwrap();
-    let r = d.run(&["replay", "reviewed_orders"]);
+    let r = d.run(&["reproduce", "reviewed_orders"]);
     assert_eq!(r.code, 1);
-    assert_contains(&r.stdout, "hand_edit -> reviewed_orders@2");
+    assert_contains(&r.stdout, "hand edit -> reviewed_orders:v2");
     assert_contains(&r.stdout, "cannot reapply");
     assert_contains(
         &r.stdout,
-        "the output of this hand edit (reviewed_orders@2) is missing: the values a person typed are kept only in that version, so the edit cannot be re-applied",
+        "the output of this hand edit (reviewed_orders:v2) is missing: the values a person typed are kept only in that version, so the edit cannot be re-applied",
     );
     assert_eq!(
         before,
@@ -258,14 +271,14 @@ fn a_hand_edit_whose_output_object_is_gone_cannot_be_reapplied() {
 #[test]
 fn a_damaged_intermediate_object_is_named_by_replay_and_by_verify() {
     let d = Sandbox::with_demo();
-    let hash = hash_of(&d, "all_orders@5");
+    let hash = hash_of(&d, "all_orders:v5");
     damage_object(&store_dir(&d), &hash, |bytes| bytes[200] ^= 0x01);
 
-    let r = d.run(&["replay", "q3_by_shop", "--json"]);
+    let r = d.run(&["reproduce", "q3_by_shop", "--json"]);
     assert_eq!(r.code, 1);
     let report: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
     let last = report["steps"].as_array().unwrap().last().unwrap().clone();
-    assert_eq!(last["produced"], "all_orders@5");
+    assert_eq!(last["produced"], "all_orders:v5");
     assert_eq!(last["result"], "output_damaged");
     assert_contains(last["detail"].as_str().unwrap(), &hash);
     let v = d.run(&["verify"]);
@@ -281,26 +294,26 @@ fn the_same_chain_runs_on_next_quarters_export_and_each_step_names_the_one_it_re
     let q3 = std::fs::read_to_string(d.path().join("exports/quillby_2026q3.csv")).unwrap();
     let q4: String = q3.lines().take(101).map(|l| format!("{l}\n")).collect();
     d.file("exports/quillby_2026q4.csv", &q4);
-    let before = d.json(&["log", "--json"]).as_array().unwrap().len();
+    let before = d.json(&["timeline", "--json"]).as_array().unwrap().len();
     let out = d.ok(&[
-        "replay",
+        "rerun",
         "q3_by_shop",
-        "--onto",
+        "--with",
         "quillby_orders=exports/quillby_2026q4.csv",
         "--why",
         "Q4 2026 export from the Quillby till",
     ]);
     assert_contains(&out, "input quillby_orders from");
-    assert_contains(&out, "recorded q3_by_shop@2");
+    assert_contains(&out, "recorded q3_by_shop:v2");
     assert_contains(&out, "done: every step recorded");
-    let log = d.json(&["log", "--json"]);
+    let log = d.json(&["timeline", "--json"]);
     let log = log.as_array().unwrap();
     let by_id: std::collections::HashMap<i64, &serde_json::Value> = log
         .iter()
         .map(|e| (e["step"]["id"].as_i64().unwrap(), &e["step"]))
         .collect();
     // Every new built-in step repeats a recorded step of the same operation.
-    let new: Vec<&serde_json::Value> = log[..log.len() - before]
+    let new: Vec<&serde_json::Value> = log[before..]
         .iter()
         .map(|e| &e["step"])
         .filter(|s| s["kind"] == "operation")
@@ -314,13 +327,16 @@ fn the_same_chain_runs_on_next_quarters_export_and_each_step_names_the_one_it_re
         assert_eq!(repeated["reason"], s["reason"]);
     }
     // The new intake is the only new raw version; the Q4 summary counts the Q4 Quillby rows.
-    let shown = d.json(&["show", "quillby_orders", "--json"]);
+    let shown = d.json(&["about", "quillby_orders", "--json"]);
     assert_eq!(
         shown["version"]["seq"], 8,
-        "raw Q4 (@5) and its three cleaned versions"
+        "raw Q4 (v5) and its three cleaned versions"
     );
-    assert_contains(&d.ok(&["log", "q3_by_shop"]), "· repeats step ");
-    let summary = d.run(&["cat", "q3_by_shop@2"]).stdout;
+    assert_contains(
+        &d.ok(&["timeline", "--dataset", "q3_by_shop"]),
+        "(repeats step 25) parts and labour",
+    );
+    let summary = d.run(&["retrieve", "q3_by_shop:v2"]).stdout;
     assert!(summary.starts_with("shop,month,count,sum_parts_cost,mean_labour_hours\n"));
     assert_contains(&d.ok(&["verify"]), "intact");
 
@@ -329,9 +345,9 @@ fn the_same_chain_runs_on_next_quarters_export_and_each_step_names_the_one_it_re
     let err = d.fails(
         2,
         &[
-            "replay",
+            "rerun",
             "q3_by_shop",
-            "--onto",
+            "--with",
             "orders=exports/quillby_2026q4.csv",
         ],
     );
@@ -355,24 +371,24 @@ fn a_chain_that_cannot_apply_to_the_new_data_stops_and_keeps_what_was_done() {
          1,2026-10-01,Ada Quenwick,,Flat repair,1.0,done,Ines,\n",
     );
     let r = d.run(&[
-        "replay",
+        "rerun",
         "q3_by_shop",
-        "--onto",
+        "--with",
         "quillby_orders=exports/odd.csv",
     ]);
     assert_eq!(r.code, 2);
     assert_contains(
         &r.stderr,
-        "the run stopped at step 2 (number on quillby_orders)",
+        "the run stopped at plan entry 2 (number on quillby_orders)",
     );
     // The trim of the new file changed nothing, so the number step read the new raw version.
     assert_contains(
         &r.stderr,
-        "column \"parts_cost\" is not in quillby_orders@5",
+        "column \"parts_cost\" is not in quillby_orders:v5",
     );
     assert_contains(
         &r.stderr,
-        "the store keeps what came before: quillby_orders@5\n",
+        "the store keeps what came before: quillby_orders:v5\n",
     );
 }
 
@@ -381,7 +397,7 @@ fn an_outside_command_runs_again_from_its_recorded_commit_only_with_allow_exec()
     let (s, first) = repository_with_script();
     let dir = s.path();
     s.ok(&[
-        "exec",
+        "capture",
         "--input",
         "orders",
         "--output",
@@ -420,7 +436,7 @@ fn an_outside_command_runs_again_from_its_recorded_commit_only_with_allow_exec()
     let tools = s.path().join("tools");
     let r = s
         .command(&[
-            "exec",
+            "capture",
             "--input",
             "orders",
             "--output",
@@ -435,7 +451,7 @@ fn an_outside_command_runs_again_from_its_recorded_commit_only_with_allow_exec()
         .output()
         .unwrap();
     assert!(r.status.success(), "{}", String::from_utf8_lossy(&r.stderr));
-    let recorded = hash_of(&s, "orders@2");
+    let recorded = hash_of(&s, "orders:v2");
     assert_eq!(runs_log(&s), "v1\n");
 
     // The script changes and is committed: title case now.
@@ -446,7 +462,7 @@ fn an_outside_command_runs_again_from_its_recorded_commit_only_with_allow_exec()
 
     // Without --allow-exec nothing runs; the store is not changed.
     let snapshot = s.snapshot();
-    let r = s.run(&["replay", "orders", "--json"]);
+    let r = s.run(&["reproduce", "orders", "--json"]);
     assert_eq!(r.code, 1);
     let report: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
     let results: Vec<&str> = report["steps"]
@@ -460,23 +476,26 @@ fn an_outside_command_runs_again_from_its_recorded_commit_only_with_allow_exec()
     assert_eq!(snapshot, s.snapshot());
 
     // With it, the first version runs (from the recorded commit) and gives the recorded bytes.
-    let out = s.ok(&["replay", "orders", "--allow-exec"]);
+    let out = s.ok(&["reproduce", "orders", "--allow-exec"]);
     assert_eq!(
         runs_log(&s),
         "v1\nv1\n",
         "the recorded version of the script ran"
     );
-    assert_contains(&out, "replay will run 2 outside commands");
+    assert_contains(&out, "reproduce will run 2 outside commands");
     assert_contains(&out, "python3 clean.py {orders} {out:orders}");
     assert_contains(&out, &format!("at commit {}", &first[..12]));
     assert_contains(
         &out,
-        &format!("reproduced orders@3 ({})", &hash_of(&s, "orders@3")[..12]),
+        &format!(
+            "reproduced orders:v3 (blake3:{})",
+            &hash_of(&s, "orders:v3")[..16]
+        ),
     );
     // With --json the list goes to standard error, so that standard output is one document.
-    let r = s.run(&["replay", "orders", "--allow-exec", "--json"]);
+    let r = s.run(&["reproduce", "orders", "--allow-exec", "--json"]);
     assert_eq!(r.code, 0);
-    assert_contains(&r.stderr, "replay will run 2 outside commands");
+    assert_contains(&r.stderr, "reproduce will run 2 outside commands");
     let report: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
     assert_eq!(report["reproduced"], true);
     let steps = report["steps"].as_array().unwrap();
@@ -497,7 +516,7 @@ fn an_outside_command_runs_again_from_its_recorded_commit_only_with_allow_exec()
 
     // A removed output object is restored from the command's bytes.
     remove_object(&store_dir(&s), &recorded);
-    let report = s.json(&["replay", "orders", "--allow-exec", "--json"]);
+    let report = s.json(&["reproduce", "orders", "--allow-exec", "--json"]);
     assert_eq!(report["steps"][1]["result"], "restored");
     assert_contains(&s.ok(&["verify"]), "intact");
 }
@@ -508,7 +527,7 @@ fn a_command_recorded_from_a_dirty_tree_replays_with_a_warning() {
     // An uncommitted change that does not alter the output.
     s.file("clean.py", &(script(&s, "v1", "upper") + "# tidy later\n"));
     s.ok(&[
-        "exec",
+        "capture",
         "--input",
         "orders",
         "--output",
@@ -521,7 +540,7 @@ fn a_command_recorded_from_a_dirty_tree_replays_with_a_warning() {
         "{orders}",
         "{out:orders}",
     ]);
-    let out = s.ok(&["replay", "orders", "--allow-exec"]);
+    let out = s.ok(&["reproduce", "orders", "--allow-exec"]);
     assert_contains(
         &out,
         "warning: when step 2 ran, the working tree had changes not in commit",
@@ -530,14 +549,14 @@ fn a_command_recorded_from_a_dirty_tree_replays_with_a_warning() {
         &out,
         "(clean.py); the commit is run now, which may not be the code that ran",
     );
-    assert_contains(&out, "reproduced orders@2");
+    assert_contains(&out, "reproduced orders:v2");
 }
 
 #[test]
 fn a_commit_that_no_longer_exists_is_named() {
     let (s, first) = repository_with_script();
     s.ok(&[
-        "exec",
+        "capture",
         "--input",
         "orders",
         "--output",
@@ -552,7 +571,7 @@ fn a_commit_that_no_longer_exists_is_named() {
     ]);
     // The recorded commit id edited behind sluice's back (as if history had been rewritten).
     let gone = "0123456789abcdef0123456789abcdef01234567";
-    let db = rusqlite::Connection::open(s.path().join(".sluice/lineage.db")).unwrap();
+    let db = rusqlite::Connection::open(s.path().join("sluice-store/lineage.db")).unwrap();
     let n = db
         .execute(
             "UPDATE steps SET code = replace(code, ?1, ?2) WHERE kind = 'command'",
@@ -561,7 +580,7 @@ fn a_commit_that_no_longer_exists_is_named() {
         .unwrap();
     assert_eq!(n, 1);
     drop(db);
-    let r = s.run(&["replay", "orders", "--allow-exec"]);
+    let r = s.run(&["reproduce", "orders", "--allow-exec"]);
     assert_eq!(r.code, 1);
     assert_contains(&r.stdout, "code missing");
     assert_contains(
@@ -575,7 +594,7 @@ fn a_commit_that_no_longer_exists_is_named() {
 fn a_command_recorded_outside_git_or_naming_an_absolute_output_is_not_run() {
     // Outside any repository (the demo's folder): the code was never recorded.
     let d = Sandbox::with_demo();
-    let r = d.run(&["replay", "reviewed_orders", "--allow-exec"]);
+    let r = d.run(&["reproduce", "reviewed_orders", "--allow-exec"]);
     assert_eq!(r.code, 1);
     assert_contains(&r.stdout, "will not run: the command ran in ");
     assert_contains(
@@ -588,7 +607,7 @@ fn a_command_recorded_outside_git_or_naming_an_absolute_output_is_not_run() {
     let target = s.path().join("elsewhere.csv");
     let target = target.to_str().unwrap();
     s.ok(&[
-        "exec",
+        "capture",
         "--input",
         "orders",
         "--output",
@@ -602,7 +621,7 @@ fn a_command_recorded_outside_git_or_naming_an_absolute_output_is_not_run() {
         target,
     ]);
     let before = std::fs::metadata(target).unwrap().modified().unwrap();
-    let r = s.run(&["replay", "orders", "--allow-exec", "--json"]);
+    let r = s.run(&["reproduce", "orders", "--allow-exec", "--json"]);
     assert_eq!(r.code, 1);
     let report: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
     assert_eq!(report["steps"][1]["result"], "refused");
@@ -635,7 +654,7 @@ fn a_command_that_writes_other_bytes_now_shows_how_they_differ() {
     git(s.path(), &["add", "count.py"]);
     git(s.path(), &["commit", "-q", "-m", "counting"]);
     s.ok(&[
-        "exec",
+        "capture",
         "--input",
         "orders",
         "--output",
@@ -649,11 +668,11 @@ fn a_command_that_writes_other_bytes_now_shows_how_they_differ() {
         "{out:orders}",
     ]);
     let snapshot = s.snapshot();
-    let r = s.run(&["replay", "orders", "--allow-exec"]);
+    let r = s.run(&["reproduce", "orders", "--allow-exec"]);
     assert_eq!(r.code, 1);
-    assert_contains(&r.stdout, "command -> orders@2");
+    assert_contains(&r.stdout, "capture -> orders:v2");
     assert_contains(&r.stdout, "differs");
-    assert_contains(&r.stdout, "recorded orders@2 has 3 rows; recomputed (");
+    assert_contains(&r.stdout, "recorded orders:v2 has 3 rows; recomputed (");
     assert_contains(
         &r.stdout,
         "3 rows changed, 0 only in the recorded output, 0 only in the recomputed one",
@@ -672,16 +691,15 @@ fn a_command_that_writes_other_bytes_now_shows_how_they_differ() {
 
 /// Every version in the store, oldest first, as `name@n hash`.
 fn version_hashes(s: &Sandbox) -> Vec<String> {
-    let log = s.json(&["log", "--json"]);
+    let log = s.json(&["timeline", "--json"]);
     let mut lines: Vec<String> = log
         .as_array()
         .unwrap()
         .iter()
-        .rev()
         .flat_map(|e| e["produced"].as_array().unwrap().clone())
         .map(|v| {
             format!(
-                "{}@{} {}",
+                "{}:v{} {}",
                 v["dataset"].as_str().unwrap(),
                 v["seq"],
                 v["hash"].as_str().unwrap()
@@ -698,7 +716,7 @@ fn the_demo_plan_gives_the_same_hashes_in_fresh_stores_and_matches_the_golden_fi
     let out = a.ok(&["demo", "."]);
     assert_contains(
         &out,
-        "$ sluice replay q3_by_shop\n  reproduced q3_by_shop@1 (",
+        "$ sluice reproduce q3_by_shop\n  reproduced q3_by_shop:v1 (",
     );
     let b = Sandbox::with_demo();
     let in_a = version_hashes(&a);
@@ -756,19 +774,19 @@ fn a_hand_edit_whose_recorded_lineage_does_not_explain_it_is_named_with_the_cell
         "order_id,technician,status\n41001,Ines,done\n41002,Tobiah,done\n41003,Caspar,done\n";
     for name in ["orders", "copy"] {
         s.file(&format!("{name}.csv"), export);
-        s.ok(&["ingest", &format!("{name}.csv"), "--as", name]);
+        s.ok(&["receive", &format!("{name}.csv"), "--as", name]);
     }
     s.file(
         "orders_edited.csv",
         export.replace("41001,Ines", "41001,Inès"),
     );
     s.ok(&[
-        "ingest",
+        "receive",
         "orders_edited.csv",
         "--as",
         "orders",
-        "--from",
-        "orders@1",
+        "--hand-edit-of",
+        "orders:v1",
         "--why",
         "accent",
     ]);
@@ -777,22 +795,22 @@ fn a_hand_edit_whose_recorded_lineage_does_not_explain_it_is_named_with_the_cell
         export.replace("41003,Caspar,done", "41003,Caspar,open"),
     );
     s.ok(&[
-        "ingest",
+        "receive",
         "copy_edited.csv",
         "--as",
         "copy",
-        "--from",
-        "copy@1",
+        "--hand-edit-of",
+        "copy:v1",
         "--why",
         "reopened",
     ]);
-    let out = s.run(&["replay", "orders"]);
+    let out = s.run(&["reproduce", "orders"]);
     assert_eq!(out.code, 0, "{}", out.stdout);
     assert_contains(&out.stdout, "re-applied from its recorded lineage");
 
     // The two edits' provenance swapped behind sluice's back: each object is well formed, but
     // the orders edit now claims the other edit's cell.
-    let db = rusqlite::Connection::open(s.path().join(".sluice/lineage.db")).unwrap();
+    let db = rusqlite::Connection::open(s.path().join("sluice-store/lineage.db")).unwrap();
     let n = db
         .execute(
             "UPDATE steps SET provenance = (SELECT group_concat(provenance) FROM steps AS o
@@ -803,7 +821,7 @@ fn a_hand_edit_whose_recorded_lineage_does_not_explain_it_is_named_with_the_cell
         .unwrap();
     assert_eq!(n, 2);
     drop(db);
-    let r = s.run(&["replay", "orders", "--json"]);
+    let r = s.run(&["reproduce", "orders", "--json"]);
     assert_eq!(r.code, 1);
     let report: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
     let last = report["steps"].as_array().unwrap().last().unwrap().clone();

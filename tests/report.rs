@@ -19,7 +19,7 @@ fn penguin_history() -> Sandbox {
     let s = Sandbox::with_store();
     s.file("penguins.csv", penguins_csv());
     s.ok(&[
-        "ingest",
+        "receive",
         "penguins.csv",
         "--as",
         "penguins",
@@ -29,7 +29,7 @@ fn penguin_history() -> Sandbox {
         "palmerpenguins as published",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "penguins",
         "case",
         "--columns",
@@ -40,7 +40,7 @@ fn penguin_history() -> Sandbox {
         "one spelling of the sex codes",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "penguins",
         "drop",
         "sex is blank or body_mass_g is blank",
@@ -48,7 +48,7 @@ fn penguin_history() -> Sandbox {
         "only measured, sexed birds",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "penguins",
         "dedupe",
         "--key",
@@ -64,7 +64,7 @@ fn penguin_history() -> Sandbox {
             {"rule": "range", "column": "body_mass_g", "min": "2700", "max": "6300"}
         ]}"#,
     );
-    s.ok(&["check", "penguins", "--rules", "rules.json"]);
+    s.ok(&["inspect", "penguins", "--rules", "rules.json"]);
     s
 }
 
@@ -175,15 +175,15 @@ fn a_report_is_recorded_with_its_hash_and_verify_stays_intact() {
         before["audit_entries_checked"].as_u64().unwrap() + 1
     );
     // The entry is found again by the file's bytes, naming the version and the entry before it.
-    let found = s.ok(&["report", "--find", "penguins.html"]);
+    let found = s.ok(&["identify", "penguins.html"]);
     assert_contains(&found, &hash);
-    assert_contains(&found, "penguins@4");
+    assert_contains(&found, "penguins:v4");
     let seq = before["audit_entries_checked"].as_u64().unwrap();
     assert_contains(&found, &format!("made after audit entry {seq}"));
     // A file that no report produced is not found.
     s.file("other.html", "<html></html>");
-    let stderr = s.fails(1, &["report", "--find", "other.html"]);
-    assert_contains(&stderr, "no report with these bytes");
+    let stderr = s.fails(1, &["identify", "other.html"]);
+    assert_contains(&stderr, "no version or report with these bytes");
 }
 
 #[test]
@@ -211,7 +211,7 @@ fn the_demo_report_as_json_follows_the_schema() {
         "reviewed_orders",
         "-o",
         "reviewed.json",
-        "--replay",
+        "--reproduce",
     ]);
     let doc: Value =
         serde_json::from_str(&std::fs::read_to_string(s.path().join("reviewed.json")).unwrap())
@@ -248,8 +248,8 @@ fn the_same_history_gives_the_same_report_apart_from_times() {
 fn a_failing_report_leaves_the_store_and_the_folder_unchanged() {
     let s = penguin_history();
     let before = s.snapshot();
-    let stderr = s.fails(2, &["report", "penguins@9", "-o", "r.html"]);
-    assert_contains(&stderr, "penguins@9");
+    let stderr = s.fails(2, &["report", "penguins:v9", "-o", "r.html"]);
+    assert_contains(&stderr, "penguins:v9");
     s.fails(2, &["report", "penguins", "-o", "no/such/folder/r.html"]);
     assert_eq!(s.snapshot(), before);
     assert!(!s.path().join("r.html").exists());
@@ -264,8 +264,8 @@ fn the_demo_ends_by_writing_its_report_and_prov_export() {
     let prov = s.path().join("q3_by_shop.prov.json");
     assert_contains(&out, "./q3_by_shop-report.html");
     assert_contains(&out, "./q3_by_shop.prov.json");
-    let found = s.ok(&["report", "--find", "q3_by_shop-report.html"]);
-    assert_contains(&found, "lineage report (html) of q3_by_shop@1");
+    let found = s.ok(&["identify", "q3_by_shop-report.html"]);
+    assert_contains(&found, "lineage report (html) of q3_by_shop:v1");
     let doc: Value = serde_json::from_str(&std::fs::read_to_string(&prov).unwrap()).unwrap();
     assert_eq!(doc["prefix"]["sluice"], "https://sluice.invalid/prov#");
     assert!(doc["entity"]["sluice:version_q3_by_shop_1"].is_object());

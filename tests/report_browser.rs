@@ -107,7 +107,13 @@ fn file_url(p: &Path) -> String {
 fn the_demo_report_renders_in_chromium_without_errors() {
     let browser = chromium();
     let s = Sandbox::with_demo();
-    s.ok(&["report", "q3_by_shop", "-o", "q3_by_shop.html", "--replay"]);
+    s.ok(&[
+        "report",
+        "q3_by_shop",
+        "-o",
+        "q3_by_shop.html",
+        "--reproduce",
+    ]);
     let report = s.path().join("q3_by_shop.html");
     let artefacts = PathBuf::from(concat!(env!("CARGO_MANIFEST_DIR"), "/target/browser"));
     std::fs::create_dir_all(&artefacts).unwrap();
@@ -137,7 +143,7 @@ fn the_demo_report_renders_in_chromium_without_errors() {
         svg.matches("<rect").count() >= 10 && svg.matches("<text").count() >= 10,
         "the lineage SVG is empty or nearly so"
     );
-    assert!(svg.contains("q3_by_shop@1"));
+    assert!(svg.contains("q3_by_shop:v1"));
     assert!(dom.stdout.contains("not legal or regulatory advice"));
 
     // A screenshot of the report, and of an empty page in the same window for comparison.
@@ -224,7 +230,7 @@ fn the_console_check_sees_an_error_a_page_logs() {
     let s = Sandbox::new();
     let page = s.file(
         "noisy.html",
-        "<!DOCTYPE html><html><body><script>console.error('sluice check')</script></body></html>",
+        "<!DOCTYPE html><html><body><script>console.error('sluice inspect')</script></body></html>",
     );
     let profile = tempfile::tempdir().unwrap();
     let ran = headless(
@@ -235,7 +241,7 @@ fn the_console_check_sees_an_error_a_page_logs() {
     );
     let console = console_lines(&ran.stderr);
     assert!(
-        console.iter().any(|l| l.contains("sluice check")),
+        console.iter().any(|l| l.contains("sluice inspect")),
         "chromium's log did not show the page's console error:\n{}",
         ran.stderr
     );

@@ -1,4 +1,4 @@
-//! `sluice revert`: one step taken out of a dataset's history, every later step applied again,
+//! `sluice withdraw`: one step taken out of a dataset's history, every later step applied again,
 //! nothing deleted; conflicts with later hand edits listed and refused, or resolved by the
 //! documented `--force` rules.
 
@@ -24,7 +24,7 @@ fn refused(s: &Sandbox, args: &[&str]) -> String {
 
 /// The steps `log --json` lists for `dataset`, newest first.
 fn steps_of(s: &Sandbox, dataset: &str) -> Vec<serde_json::Value> {
-    s.json(&["log", dataset, "--json"])
+    s.json(&["timeline", "--dataset", dataset, "--json"])
         .as_array()
         .unwrap()
         .iter()
@@ -33,21 +33,21 @@ fn steps_of(s: &Sandbox, dataset: &str) -> Vec<serde_json::Value> {
 }
 
 fn hash_of(s: &Sandbox, reference: &str) -> String {
-    s.json(&["show", reference, "--json"])["version"]["hash"]
+    s.json(&["about", reference, "--json"])["version"]["hash"]
         .as_str()
         .unwrap()
         .to_string()
 }
 
-/// trim -> dedupe -> number -> keep, as t@2 .. t@5.
+/// trim -> dedupe -> number -> keep, as t:v2 .. t:v5.
 fn chain() -> Sandbox {
     let s = Sandbox::with_store();
     s.file("raw.csv", RAW);
-    s.ok(&["ingest", "raw.csv", "--as", "t", "--why", "export"]);
-    s.ok(&["apply", "t", "trim", "--why", "padded names"]);
-    s.ok(&["apply", "t", "dedupe", "--why", "exported twice"]);
+    s.ok(&["receive", "raw.csv", "--as", "t", "--why", "export"]);
+    s.ok(&["clean", "t", "trim", "--why", "padded names"]);
+    s.ok(&["clean", "t", "dedupe", "--why", "exported twice"]);
     s.ok(&[
-        "apply",
+        "clean",
         "t",
         "number",
         "--columns",
@@ -57,7 +57,7 @@ fn chain() -> Sandbox {
         "amounts as numbers",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "t",
         "keep",
         "status != 'cancelled'",
@@ -70,21 +70,21 @@ fn chain() -> Sandbox {
 #[test]
 fn reverting_dedupe_gives_the_bytes_of_the_chain_without_it() {
     let s = chain();
-    let before: Vec<String> = (1..=5).map(|n| hash_of(&s, &format!("t@{n}"))).collect();
+    let before: Vec<String> = (1..=5).map(|n| hash_of(&s, &format!("t:v{n}"))).collect();
     let out = s.ok(&[
-        "revert",
-        "t@3",
+        "withdraw",
+        "t:v3",
         "--why",
         "the two orders 1 are separate sales",
     ]);
-    assert_contains(&out, "reverted step 3 (it made t@3): t is now t@8");
-    assert_contains(&out, "the table of t@2 again, without step 3");
+    assert_contains(&out, "withdrew step 3 (it made t:v3): t is now t:v8");
+    assert_contains(&out, "the table of t:v2 again, without step 3");
     assert_contains(&out, "nothing was deleted");
 
-    // The same chain without dedupe, run directly on t@2 as another dataset.
+    // The same chain without dedupe, run directly on t:v2 as another dataset.
     s.ok(&[
-        "apply",
-        "t@2",
+        "clean",
+        "t:v2",
         "number",
         "--columns",
         "amount",
@@ -95,7 +95,7 @@ fn reverting_dedupe_gives_the_bytes_of_the_chain_without_it() {
         "direct",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "direct",
         "keep",
         "status != 'cancelled'",
@@ -103,19 +103,19 @@ fn reverting_dedupe_gives_the_bytes_of_the_chain_without_it() {
         "direct",
     ]);
     assert_eq!(
-        hash_of(&s, "t@8"),
-        hash_of(&s, "direct@2"),
+        hash_of(&s, "t:v8"),
+        hash_of(&s, "direct:v2"),
         "same bytes, same hash"
     );
     assert_eq!(
-        hash_of(&s, "t@6"),
-        hash_of(&s, "t@2"),
-        "the revert's own version is t@2's table"
+        hash_of(&s, "t:v6"),
+        hash_of(&s, "t:v2"),
+        "the revert's own version is t:v2's table"
     );
 
     // Nothing deleted: every earlier version is still there with its hash.
     for (n, h) in before.iter().enumerate() {
-        assert_eq!(&hash_of(&s, &format!("t@{}", n + 1)), h);
+        assert_eq!(&hash_of(&s, &format!("t:v{}", n + 1)), h);
     }
     // The revert step points at the step it took out; the later ones at the steps they repeat.
     let steps = steps_of(&s, "t");
@@ -128,12 +128,12 @@ fn reverting_dedupe_gives_the_bytes_of_the_chain_without_it() {
         .collect();
     assert_eq!(
         repeats,
-        vec![5, 4],
-        "keep repeats step 5, number step 4 (newest first)"
+        vec![4, 5],
+        "number repeats step 4, keep step 5 (oldest first)"
     );
     assert_contains(&s.ok(&["verify"]), "intact");
     assert_eq!(
-        s.ok(&["cat", "t"]),
+        s.ok(&["retrieve", "t"]),
         "id,name,amount,status\n1,Ann,1.5,done\n2,Bob,2.0,open\n1,Ann,1.5,done\n4,Dee,3,done\n"
     );
 }
@@ -142,21 +142,21 @@ fn reverting_dedupe_gives_the_bytes_of_the_chain_without_it() {
 fn trace_through_a_revert_names_it_and_reaches_the_raw_line() {
     let s = chain();
     s.ok(&[
-        "revert",
-        "t@3",
+        "withdraw",
+        "t:v3",
         "--why",
         "the two orders 1 are separate sales",
     ]);
     // Row 3 is the second order 1, which dedupe had dropped and the revert brought back.
     let out = s.ok(&["trace", "t", "--row", "3", "--column", "name"]);
-    assert_contains(&out, "step 6 · revert (exact)");
+    assert_contains(&out, "step 6 · withdraw (exact)");
     assert_contains(&out, "why     the two orders 1 are separate sales");
     assert_contains(
         &out,
-        "took out step 3: t@6 is t@2's table from before that step",
+        "withdrew step 3: t:v6 is t:v2's table from before that step",
     );
-    assert_contains(&out, "before  t@1 row 3 name: \" Ann \"");
-    assert_contains(&out, "t@1 line 4, column name: \" Ann \"");
+    assert_contains(&out, "before  t:v1 row 3 name: \" Ann \"");
+    assert_contains(&out, "t:v1 line 4, column name: \" Ann \"");
     let j = s.json(&["trace", "t", "--row", "3", "--column", "name", "--json"]);
     let hops = j["hops"].as_array().unwrap();
     assert!(hops.iter().any(|h| h["reverts_step"] == 3));
@@ -166,15 +166,15 @@ fn trace_through_a_revert_names_it_and_reaches_the_raw_line() {
 fn chain_with_hand_edit() -> Sandbox {
     let s = chain();
     let edited = s
-        .ok(&["cat", "t"])
+        .ok(&["retrieve", "t"])
         .replace("1,Ann,1.5,done", "1,Ann,1.75,done");
     s.file("edit.csv", edited);
     s.ok(&[
-        "ingest",
+        "receive",
         "edit.csv",
         "--as",
         "t",
-        "--from",
+        "--hand-edit-of",
         "t",
         "--why",
         "the till rounded order 1",
@@ -186,18 +186,18 @@ fn chain_with_hand_edit() -> Sandbox {
 fn a_later_edit_to_a_row_whose_duplicate_comes_back_refuses_the_revert() {
     let s = chain_with_hand_edit();
     let snapshot = s.snapshot();
-    let out = refused(&s, &["revert", "t@3", "--why", "separate sales"]);
-    assert_contains(&out, "not reverted");
+    let out = refused(&s, &["withdraw", "t:v3", "--why", "separate sales"]);
+    assert_contains(&out, "not withdrawn");
     assert_contains(
         &out,
-        "step 6 (t@6): the hand edit changed amount of data row 1 of t@6; the reverted step had dropped data row 3 of t@2 as a duplicate of that row",
+        "step 6 (t:v6): the hand edit changed amount of data row 1 of t:v6; the reverted step had dropped data row 3 of t:v2 as a duplicate of that row",
     );
     assert_contains(
         &out,
-        "with --force: the change is applied to the row it was made on",
+        "with --accept-conflicts: the change is applied to the row it was made on",
     );
     assert_eq!(s.snapshot(), snapshot, "a refused revert records nothing");
-    let r = s.run(&["revert", "t@3", "--why", "separate sales", "--json"]);
+    let r = s.run(&["withdraw", "t:v3", "--why", "separate sales", "--json"]);
     assert_eq!(r.code, 1);
     let j: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
     assert_eq!(j["recorded"], false);
@@ -209,14 +209,20 @@ fn a_later_edit_to_a_row_whose_duplicate_comes_back_refuses_the_revert() {
 #[test]
 fn forced_the_edit_stays_on_its_row_and_the_duplicate_returns_as_it_was() {
     let s = chain_with_hand_edit();
-    let out = s.ok(&["revert", "t@3", "--why", "separate sales", "--force"]);
+    let out = s.ok(&[
+        "withdraw",
+        "t:v3",
+        "--why",
+        "separate sales",
+        "--accept-conflicts",
+    ]);
     assert_contains(
         &out,
         "the hand edit of step 6 re-applied: 1 cells, 0 rows removed, 0 rows added",
     );
-    assert_contains(&out, "resolved by --force (1 conflict)");
+    assert_contains(&out, "resolved by --accept-conflicts (1 conflict)");
     assert_eq!(
-        s.ok(&["cat", "t"]),
+        s.ok(&["retrieve", "t"]),
         "id,name,amount,status\n1,Ann,1.75,done\n2,Bob,2.0,open\n1,Ann,1.5,done\n4,Dee,3,done\n"
     );
     // The forced conflict is kept with the revert step.
@@ -230,7 +236,7 @@ fn forced_the_edit_stays_on_its_row_and_the_duplicate_returns_as_it_was() {
     );
     // The re-applied edit is exact lineage: its changed cell traces to the hand edit.
     let t = s.ok(&["trace", "t", "--row", "1", "--column", "amount"]);
-    assert_contains(&t, "after   t@");
+    assert_contains(&t, "after   t:v");
     assert_contains(&t, "\"1.75\"");
     assert_contains(&s.ok(&["verify"]), "intact");
 }
@@ -240,9 +246,9 @@ fn an_edit_to_a_row_the_new_history_drops_is_a_conflict() {
     // trim -> keep status = 'done' after a fill that the revert takes out.
     let s = Sandbox::with_store();
     s.file("raw.csv", "id,status,amount\n1,done,5\n2,,6\n3,open,7\n");
-    s.ok(&["ingest", "raw.csv", "--as", "o", "--why", "export"]);
+    s.ok(&["receive", "raw.csv", "--as", "o", "--why", "export"]);
     s.ok(&[
-        "apply",
+        "clean",
         "o",
         "fill",
         "--columns",
@@ -253,75 +259,84 @@ fn an_edit_to_a_row_the_new_history_drops_is_a_conflict() {
         "blank means done",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "o",
         "keep",
         "status = 'done'",
         "--why",
         "done orders only",
     ]);
-    let edited = s.ok(&["cat", "o"]).replace("2,done,6", "2,done,60");
+    let edited = s.ok(&["retrieve", "o"]).replace("2,done,6", "2,done,60");
     s.file("edit.csv", edited);
     s.ok(&[
-        "ingest",
+        "receive",
         "edit.csv",
         "--as",
         "o",
-        "--from",
+        "--hand-edit-of",
         "o",
         "--why",
         "typo in order 2",
     ]);
-    let out = refused(&s, &["revert", "o@2", "--why", "blank does not mean done"]);
+    let out = refused(
+        &s,
+        &["withdraw", "o:v2", "--why", "blank does not mean done"],
+    );
     assert_contains(
         &out,
-        "the hand edit changed amount of data row 2 of o@4, but without the reverted step a step before it drops that row",
+        "the hand edit changed amount of data row 2 of o:v4, but without the reverted step a step before it drops that row",
     );
     let out = s.ok(&[
-        "revert",
-        "o@2",
+        "withdraw",
+        "o:v2",
         "--why",
         "blank does not mean done",
-        "--force",
+        "--accept-conflicts",
     ]);
-    assert_contains(&out, "resolved by --force (1 conflict)");
-    assert_eq!(s.ok(&["cat", "o"]), "id,status,amount\n1,done,5\n");
+    assert_contains(&out, "resolved by --accept-conflicts (1 conflict)");
+    assert_eq!(s.ok(&["retrieve", "o"]), "id,status,amount\n1,done,5\n");
 }
 
 #[test]
 fn an_edit_to_a_column_only_the_reverted_step_made_is_a_conflict() {
     let s = Sandbox::with_store();
     s.file("raw.csv", "id,opened\n1,2026-07-03\n2,2026-08-14\n");
-    s.ok(&["ingest", "raw.csv", "--as", "w", "--why", "export"]);
+    s.ok(&["receive", "raw.csv", "--as", "w", "--why", "export"]);
     s.ok(&[
-        "apply",
+        "clean",
         "w",
         "rename",
         "opened=opened_on",
         "--why",
         "house style",
     ]);
-    let edited = s.ok(&["cat", "w"]).replace("2026-08-14", "2026-08-15");
+    let edited = s.ok(&["retrieve", "w"]).replace("2026-08-14", "2026-08-15");
     s.file("edit.csv", edited);
     s.ok(&[
-        "ingest",
+        "receive",
         "edit.csv",
         "--as",
         "w",
-        "--from",
+        "--hand-edit-of",
         "w",
         "--why",
         "wrong day",
     ]);
-    let out = refused(&s, &["revert", "w@2", "--why", "keep the till's names"]);
+    let out = refused(&s, &["withdraw", "w:v2", "--why", "keep the till's names"]);
     assert_contains(
         &out,
-        "step 3 (w@3): the hand edit changed column opened_on of data row 2 of w@3, a column that exists only because of the reverted step",
+        "step 3 (w:v3): the hand edit changed column opened_on of data row 2 of w:v3, a column that exists only because of the reverted step",
     );
     // Forced, the change is left out: the till's names and values come back.
-    s.ok(&["revert", "w@2", "--why", "keep the till's names", "--force"]);
+    s.ok(&[
+        "withdraw",
+        "w:v2",
+        "--why",
+        "keep the till's names",
+        "--accept-conflicts",
+    ]);
     assert_eq!(
-        s.ok(&["cat", "w"]),
+        s.ok(&["retrieve", "w"]),
         "id,opened\n1,2026-07-03\n2,2026-08-14\n"
     );
 }
@@ -336,7 +351,7 @@ fn outside_commands_after_the_step_are_conflicts() {
          w.writerow(rows[0])\nfor r in rows[1:]:\n    w.writerow([r[0], r[1].upper(), r[2], r[3]])\n",
     );
     s.ok(&[
-        "exec",
+        "capture",
         "--input",
         "t",
         "--output",
@@ -349,20 +364,26 @@ fn outside_commands_after_the_step_are_conflicts() {
         "{t}",
         "up.csv",
     ]);
-    let out = refused(&s, &["revert", "t@3", "--why", "separate sales"]);
+    let out = refused(&s, &["withdraw", "t:v3", "--why", "separate sales"]);
     assert_contains(
         &out,
         "was made by the outside command `python3 upper.py {t} up.csv`",
     );
     assert_contains(
         &out,
-        "with --force: its recorded changes are re-applied as cell patches",
+        "with --accept-conflicts: its recorded changes are re-applied as cell patches",
     );
-    let out = s.ok(&["revert", "t@3", "--why", "separate sales", "--force"]);
+    let out = s.ok(&[
+        "withdraw",
+        "t:v3",
+        "--why",
+        "separate sales",
+        "--accept-conflicts",
+    ]);
     assert_contains(&out, "the command of step 6 re-applied");
     // The returned duplicate was never seen by the command: it keeps its spelling.
     assert_eq!(
-        s.ok(&["cat", "t"]),
+        s.ok(&["retrieve", "t"]),
         "id,name,amount,status\n1,ANN,1.5,done\n2,BOB,2.0,open\n1,Ann,1.5,done\n4,DEE,3,done\n"
     );
 }
@@ -371,11 +392,11 @@ fn outside_commands_after_the_step_are_conflicts() {
 fn what_cannot_be_reverted_is_refused_with_the_next_thing_to_try() {
     let s = chain();
     assert_contains(
-        &s.fails(2, &["revert", "t@1", "--why", "x"]),
+        &s.fails(2, &["withdraw", "t:v1", "--why", "x"]),
         "was taken in from a file",
     );
     s.ok(&[
-        "apply",
+        "clean",
         "t",
         "summarize",
         "--by",
@@ -386,18 +407,18 @@ fn what_cannot_be_reverted_is_refused_with_the_next_thing_to_try() {
         "totals",
     ]);
     assert_contains(
-        &s.fails(2, &["revert", "by_status@1", "--why", "x"]),
+        &s.fails(2, &["withdraw", "by_status:v1", "--why", "x"]),
         "is the first version of by_status",
     );
-    assert_contains(&s.fails(2, &["revert", "t@9", "--why", "x"]), "t@9");
+    assert_contains(&s.fails(2, &["withdraw", "t:v9", "--why", "x"]), "t:v9");
     // Reverting the step that made the latest version: its table from before comes back.
-    let out = s.ok(&["revert", "t@5", "--why", "count cancelled orders too"]);
-    assert_contains(&out, "t is now t@6");
-    assert_eq!(hash_of(&s, "t@6"), hash_of(&s, "t@4"));
+    let out = s.ok(&["withdraw", "t:v5", "--why", "count cancelled orders too"]);
+    assert_contains(&out, "t is now t:v6");
+    assert_eq!(hash_of(&s, "t:v6"), hash_of(&s, "t:v4"));
     // A summary made from the old history is not changed, and the output says so.
     assert_contains(
         &out,
-        "not changed by the revert, though made from the history it replaced: by_status@1",
+        "not changed by the withdrawal, though made from the history it replaced: by_status:v1",
     );
 }
 
@@ -407,7 +428,7 @@ fn palmerpenguins_counts_hold_after_reverting_a_filter() {
     // body_mass_g is missing for 2 penguins, one of them Adelie (so 151 Adelie with a mass).
     let s = Sandbox::with_penguins();
     s.ok(&[
-        "apply",
+        "clean",
         "penguins",
         "keep",
         "species = 'Adelie'",
@@ -415,7 +436,7 @@ fn palmerpenguins_counts_hold_after_reverting_a_filter() {
         "Adelie only",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "penguins",
         "drop",
         "body_mass_g is blank",
@@ -423,12 +444,12 @@ fn palmerpenguins_counts_hold_after_reverting_a_filter() {
         "no mass, no mean",
     ]);
     assert_eq!(
-        s.json(&["show", "penguins", "--json"])["version"]["n_rows"],
+        s.json(&["about", "penguins", "--json"])["version"]["n_rows"],
         151
     );
-    s.ok(&["revert", "penguins@2", "--why", "all three species"]);
+    s.ok(&["withdraw", "penguins:v2", "--why", "all three species"]);
     assert_eq!(
-        s.json(&["show", "penguins", "--json"])["version"]["n_rows"],
+        s.json(&["about", "penguins", "--json"])["version"]["n_rows"],
         342
     );
 }

@@ -26,24 +26,24 @@ fn store() -> Sandbox {
         "oxwater.csv",
         "order_id,shop\nOX-1,Oxwater Wheelworks\nOX-2,Oxwater Wheelworks\n",
     );
-    s.ok(&["ingest", "quillby.csv", "--as", "orders"]);
-    s.ok(&["apply", "orders", "trim", "--why", "stray spaces"]);
+    s.ok(&["receive", "quillby.csv", "--as", "orders"]);
+    s.ok(&["clean", "orders", "trim", "--why", "stray spaces"]);
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "drop",
         "status = 'cancelled'",
         "--why",
         "not revenue",
     ]);
-    s.ok(&["ingest", "oxwater.csv", "--as", "oxwater"]);
+    s.ok(&["receive", "oxwater.csv", "--as", "oxwater"]);
     let v = s.json(&["verify", "--json"]);
     assert_eq!(v["intact"], true, "the untouched store must verify: {v}");
     s
 }
 
 fn db(s: &Sandbox) -> rusqlite::Connection {
-    rusqlite::Connection::open(s.path().join(".sluice/lineage.db")).unwrap()
+    rusqlite::Connection::open(s.path().join("sluice-store/lineage.db")).unwrap()
 }
 
 fn store_dir(s: &Sandbox) -> PathBuf {
@@ -157,8 +157,8 @@ fn a_provenance_reference_pointed_at_another_object_is_named() {
         )
         .unwrap();
     let found = problems(&s);
-    assert_named(&found, "audit_mismatch", "orders@2", "the entry says");
-    assert_named(&found, "audit_mismatch", "orders@2", &other);
+    assert_named(&found, "audit_mismatch", "orders:v2", "the entry says");
+    assert_named(&found, "audit_mismatch", "orders:v2", &other);
     // Removing the reference is found the same way.
     let s = store();
     db(&s)
@@ -171,7 +171,7 @@ fn a_provenance_reference_pointed_at_another_object_is_named() {
     assert_named(
         &found,
         "audit_mismatch",
-        "orders@3",
+        "orders:v3",
         "its step's provenance object is none",
     );
 }
@@ -193,7 +193,7 @@ fn a_version_hash_pointed_at_another_table_is_named() {
     assert_named(
         &found,
         "audit_mismatch",
-        "orders@2",
+        "orders:v2",
         &format!("its hash is {raw}"),
     );
 }
@@ -212,7 +212,7 @@ fn a_version_added_without_an_audit_entry_is_named() {
     .unwrap();
     drop(conn);
     let found = problems(&s);
-    assert_named(&found, "audit_mismatch", "orders@4", "has no audit entry");
+    assert_named(&found, "audit_mismatch", "orders:v4", "has no audit entry");
 }
 
 // ---- the audit chain ---------------------------------------------------------------------
@@ -296,7 +296,7 @@ fn a_deleted_audit_entry_is_named_where_the_chain_breaks() {
         "audit entry 4",
         "expected sequence number 3",
     );
-    assert_named(&found, "audit_mismatch", "orders@2", "has no audit entry");
+    assert_named(&found, "audit_mismatch", "orders:v2", "has no audit entry");
     // At the end: no chain can show its tail is gone, but the version it recorded is left
     // without its entry, and the head hash verify reports differs from the one written down.
     let s = store();
@@ -305,7 +305,7 @@ fn a_deleted_audit_entry_is_named_where_the_chain_breaks() {
         .execute("DELETE FROM audit_log WHERE seq = 5", [])
         .unwrap();
     let found = problems(&s);
-    assert_named(&found, "audit_mismatch", "oxwater@1", "has no audit entry");
+    assert_named(&found, "audit_mismatch", "oxwater:v1", "has no audit entry");
     let r = s.run(&["verify", "--json"]);
     let report: Value = serde_json::from_str(&r.stdout).unwrap();
     assert_ne!(report["audit_head"], head);
@@ -352,7 +352,7 @@ fn an_audit_entry_inserted_out_of_chain_is_named() {
         "2026-10-01T09:00:00.000Z",
         "Someone Else <else@example.org>",
         "note",
-        "orders@1",
+        "orders:v1",
         "{}",
         &first,
     )
@@ -360,7 +360,7 @@ fn an_audit_entry_inserted_out_of_chain_is_named() {
     conn.execute(
         "INSERT INTO audit_log (seq, at, agent, action, subject, details, prev_hash, hash)
          VALUES (6, '2026-10-01T09:00:00.000Z', 'Someone Else <else@example.org>', 'note',
-                 'orders@1', '{}', ?1, ?2)",
+                 'orders:v1', '{}', ?1, ?2)",
         [&first, &hash],
     )
     .unwrap();
@@ -385,10 +385,11 @@ fn an_audit_entry_inserted_out_of_chain_is_named() {
     let prev: String = conn
         .query_row("SELECT hash FROM audit_log WHERE seq = 2", [], |r| r.get(0))
         .unwrap();
-    let hash = sluice::store::audit::entry_hash(3, "t", "x", "note", "orders@1", "{}", &prev).hex();
+    let hash =
+        sluice::store::audit::entry_hash(3, "t", "x", "note", "orders:v1", "{}", &prev).hex();
     conn.execute(
         "INSERT INTO audit_log (seq, at, agent, action, subject, details, prev_hash, hash)
-         VALUES (3, 't', 'x', 'note', 'orders@1', '{}', ?1, ?2)",
+         VALUES (3, 't', 'x', 'note', 'orders:v1', '{}', ?1, ?2)",
         [&prev, &hash],
     )
     .unwrap();
@@ -450,10 +451,15 @@ fn an_edited_legacy_cell_change_row_is_named_with_what_the_versions_hold() {
         assert_named(
             &found,
             "cell_change",
-            "orders@2",
+            "orders:v2",
             "data row 1 column \"amount\"",
         );
-        assert_named(&found, "cell_change", "orders@2", "\" 12.50\" -> \"12.50\"");
+        assert_named(
+            &found,
+            "cell_change",
+            "orders:v2",
+            "\" 12.50\" -> \"12.50\"",
+        );
     }
     // Moved to another cell, whose values are not those.
     let s = legacy();
@@ -464,7 +470,7 @@ fn an_edited_legacy_cell_change_row_is_named_with_what_the_versions_hold() {
     assert_named(
         &found,
         "cell_change",
-        "orders@2",
+        "orders:v2",
         "data row 2 column \"amount\"",
     );
 }
@@ -477,7 +483,7 @@ fn a_deleted_legacy_cell_change_row_is_named_by_the_count_its_audit_entry_kept()
     assert_named(
         &found,
         "audit_mismatch",
-        "orders@2",
+        "orders:v2",
         "its step records 0 changed cells, the entry says 1",
     );
 }
@@ -490,7 +496,420 @@ fn a_deleted_legacy_drop_row_is_named_by_the_count_its_audit_entry_kept() {
     assert_named(
         &found,
         "audit_mismatch",
-        "orders@3",
+        "orders:v3",
         "its step records 0 dropped rows, the entry says 1",
+    );
+}
+
+// ---- every field of every table -------------------------------------------------------------
+
+/// A store whose history writes a row into every table sluice writes today: an intake with a
+/// declared key, a trim, a drop by predicate, a rename (column sources), a `number` that keeps
+/// an unreadable amount (a cell note), checks that pass and fail, and a hand edit (inputs and
+/// an inferred provenance object).
+fn rich_store() -> Sandbox {
+    let s = Sandbox::with_store();
+    s.file(
+        "quillby.csv",
+        "order_id;shop;status;amount\n\
+         WO-1; Quillby Cycle Mend ;open;12,50\n\
+         WO-2;Quillby Cycle Mend;cancelled;8,00\n\
+         WO-3;  Quillby Cycle Mend;open;n/a\n",
+    );
+    s.ok(&[
+        "receive",
+        "quillby.csv",
+        "--as",
+        "orders",
+        "--key",
+        "order_id",
+        "--why",
+        "monthly export",
+    ]);
+    s.ok(&["clean", "orders", "trim", "--why", "stray spaces"]);
+    s.ok(&[
+        "clean",
+        "orders",
+        "drop",
+        "status = 'cancelled'",
+        "--why",
+        "not revenue",
+    ]);
+    s.ok(&[
+        "clean",
+        "orders",
+        "rename",
+        "shop=workshop",
+        "--why",
+        "one naming",
+    ]);
+    s.ok(&[
+        "clean",
+        "orders",
+        "number",
+        "--columns",
+        "amount",
+        "--decimal-comma",
+        "--on-error",
+        "keep",
+        "--why",
+        "amounts",
+    ]);
+    s.file(
+        "rules.json",
+        r#"{"rules": [{"rule": "unique", "columns": ["order_id"]}, {"rule": "not_blank", "columns": ["amount"]}, {"rule": "unique", "columns": ["status"]}]}"#,
+    );
+    s.run(&["inspect", "orders", "--rules", "rules.json"]);
+    let cleaned = s.ok(&["retrieve", "orders"]);
+    s.file("fixed.csv", cleaned.replace("WO-3", "WO-33"));
+    s.ok(&[
+        "receive",
+        "fixed.csv",
+        "--as",
+        "orders",
+        "--hand-edit-of",
+        "orders",
+        "--why",
+        "typo",
+    ]);
+    let v = s.json(&["verify", "--json"]);
+    assert_eq!(v["intact"], true, "the untouched store must verify: {v}");
+    s
+}
+
+/// A copy of the database with the write-ahead log folded in, to restore after each edit.
+fn settle(s: &Sandbox) -> Vec<u8> {
+    let c = db(s);
+    c.execute_batch("PRAGMA wal_checkpoint(TRUNCATE)").unwrap();
+    drop(c);
+    std::fs::read(s.path().join("sluice-store/lineage.db")).unwrap()
+}
+
+fn restore(s: &Sandbox, saved: &[u8]) {
+    for tail in ["-wal", "-shm"] {
+        let _ = std::fs::remove_file(s.path().join(format!("sluice-store/lineage.db{tail}")));
+    }
+    std::fs::write(s.path().join("sluice-store/lineage.db"), saved).unwrap();
+}
+
+/// The tables and columns of the database as it declares them (`PRAGMA table_info`), so that a
+/// column a later schema adds is edited here without changing this test.
+fn schema(c: &rusqlite::Connection) -> Vec<(String, Vec<(String, String)>)> {
+    let mut tables: Vec<String> = c
+        .prepare("SELECT name FROM sqlite_master WHERE type = 'table' AND name NOT LIKE 'sqlite%' AND name != 'audit_log' ORDER BY name")
+        .unwrap()
+        .query_map([], |r| r.get(0))
+        .unwrap()
+        .map(Result::unwrap)
+        .collect();
+    tables.sort();
+    tables
+        .into_iter()
+        .map(|t| {
+            let cols = c
+                .prepare(&format!("PRAGMA table_info(\"{t}\")"))
+                .unwrap()
+                .query_map([], |r| Ok((r.get::<_, String>(1)?, r.get::<_, String>(2)?)))
+                .unwrap()
+                .map(Result::unwrap)
+                .collect();
+            (t, cols)
+        })
+        .collect()
+}
+
+/// Another value of the same type: an integer moved by one (within 0/1 for flags), text with
+/// its last digit or letter changed (so a hash stays hex, a time a time, JSON JSON), and a
+/// value where there was NULL (an empty text, which must differ from NULL).
+fn changed(v: &rusqlite::types::Value, declared: &str) -> rusqlite::types::Value {
+    use rusqlite::types::Value as V;
+    match v {
+        V::Integer(i) if *i == 1 => V::Integer(0),
+        V::Integer(i) => V::Integer(i + 1),
+        V::Real(f) => V::Real(f + 1.0),
+        V::Text(t) => {
+            let mut chars: Vec<char> = t.chars().collect();
+            if let Some(p) = chars.iter().rposition(char::is_ascii_digit) {
+                chars[p] = if chars[p] == '9' {
+                    '8'
+                } else {
+                    (chars[p] as u8 + 1) as char
+                };
+            } else if let Some(p) = chars.iter().rposition(char::is_ascii_alphabetic) {
+                chars[p] = if chars[p] == 'a' {
+                    'b'
+                } else {
+                    (chars[p] as u8 - 1) as char
+                };
+            } else {
+                chars.push('x');
+            }
+            V::Text(chars.into_iter().collect())
+        }
+        V::Blob(b) => V::Blob([b.as_slice(), b"x"].concat()),
+        V::Null if declared == "INTEGER" => V::Integer(0),
+        V::Null => V::Text(String::new()),
+    }
+}
+
+#[test]
+fn every_single_field_edit_of_every_table_is_seen() {
+    use rusqlite::types::Value as V;
+    let s = rich_store();
+    let saved = settle(&s);
+    let tables = schema(&db(&s));
+    // The sqlite3 shell does not enforce foreign keys unless asked; neither does this test.
+    let db = |s: &Sandbox| {
+        let c = db(s);
+        c.execute_batch("PRAGMA foreign_keys = OFF").unwrap();
+        c
+    };
+    let (mut tried, mut refused, mut empty_tables) = (0u32, 0u32, Vec::new());
+    let mut refused_changes = Vec::new();
+    let mut unseen = Vec::new();
+    let check = |what: String, s: &Sandbox, unseen: &mut Vec<String>| {
+        let r = s.run(&["verify", "--json"]);
+        let named = serde_json::from_str::<Value>(&r.stdout)
+            .ok()
+            .is_some_and(|v| v["intact"] == false);
+        if r.code != 1 || !named {
+            unseen.push(format!("{what}: exit {} {}", r.code, r.stderr.trim()));
+        }
+        restore(s, &saved);
+    };
+    for (table, cols) in &tables {
+        let c = db(&s);
+        let rowids: Vec<i64> = c
+            .prepare(&format!("SELECT rowid FROM \"{table}\" ORDER BY rowid"))
+            .unwrap()
+            .query_map([], |r| r.get(0))
+            .unwrap()
+            .map(Result::unwrap)
+            .collect();
+        drop(c);
+        if rowids.is_empty() {
+            empty_tables.push(table.clone());
+            continue;
+        }
+        let mut picks = vec![rowids[0]];
+        if rowids.len() > 1 {
+            picks.push(rowids[rowids.len() - 1]);
+        }
+        for (col, declared) in cols {
+            for &rowid in &picks {
+                let c = db(&s);
+                let get = |sql: &str| -> Vec<V> {
+                    c.prepare(sql)
+                        .unwrap()
+                        .query_map([rowid], |r| r.get::<_, V>(0))
+                        .unwrap()
+                        .map(Result::unwrap)
+                        .collect()
+                };
+                let now = get(&format!(
+                    "SELECT \"{col}\" FROM \"{table}\" WHERE rowid = ?1"
+                ))
+                .remove(0);
+                let others = get(&format!(
+                    "SELECT DISTINCT \"{col}\" FROM \"{table}\" WHERE rowid != ?1 LIMIT 20"
+                ));
+                drop(c);
+                let mut edits = vec![("changed", changed(&now, declared)), ("NULL", V::Null)];
+                if let Some(o) = others.into_iter().find(|o| *o != now) {
+                    edits.push(("another row's value", o));
+                }
+                for (how, value) in edits {
+                    if value == now {
+                        continue;
+                    }
+                    let c = db(&s);
+                    let done = c.execute(
+                        &format!("UPDATE \"{table}\" SET \"{col}\" = ?1 WHERE rowid = ?2"),
+                        rusqlite::params![value, rowid],
+                    );
+                    drop(c);
+                    if let Err(e) = done {
+                        if how == "changed" {
+                            refused_changes.push(format!("{table}.{col}: {e}"));
+                        }
+                        refused += 1;
+                        restore(&s, &saved);
+                        continue;
+                    }
+                    tried += 1;
+                    check(
+                        format!(
+                            "{table}.{col} of rowid {rowid} set to {how} {value:?} (was {now:?})"
+                        ),
+                        &s,
+                        &mut unseen,
+                    );
+                }
+            }
+        }
+        // A row removed, a row copied in under a new rowid, the whole table dropped.
+        for (how, sql) in [
+            (
+                "row removed",
+                format!("DELETE FROM \"{table}\" WHERE rowid = {}", picks[0]),
+            ),
+            ("table dropped", format!("DROP TABLE \"{table}\"")),
+        ] {
+            let c = db(&s);
+            c.execute_batch("PRAGMA foreign_keys = OFF").unwrap();
+            let done = c.execute_batch(&sql);
+            drop(c);
+            if done.is_err() {
+                refused += 1;
+                restore(&s, &saved);
+                continue;
+            }
+            tried += 1;
+            check(format!("{table}: {how}"), &s, &mut unseen);
+        }
+    }
+    // A table, a view and a trigger that sluice never made.
+    for sql in [
+        "CREATE TABLE notes (x TEXT)",
+        "CREATE VIEW v AS SELECT 1",
+        "CREATE TRIGGER t AFTER INSERT ON agents BEGIN SELECT 1; END",
+    ] {
+        db(&s).execute_batch(sql).unwrap();
+        tried += 1;
+        check(sql.to_string(), &s, &mut unseen);
+    }
+    eprintln!(
+        "tamper: {tried} single edits tried over {} tables, {refused} refused by SQLite's own constraints, {} unseen; tables empty in this history: {}",
+        tables.len(),
+        unseen.len(),
+        empty_tables.join(", ")
+    );
+    eprintln!(
+        "tamper: changed values SQLite refused: {}",
+        refused_changes.join("; ")
+    );
+    assert!(
+        unseen.is_empty(),
+        "edits verify did not see:\n{}",
+        unseen.join("\n")
+    );
+}
+
+/// A store written before row commitments still verifies, and says which entries predate them;
+/// the first command after that commits to its rows (and records where the old rows end), so an
+/// edit of a new row, or a row added after, is seen, while the old entries keep the checks they
+/// had.
+#[test]
+fn a_store_from_before_row_commitments_verifies_and_says_what_its_entries_cover() {
+    let s = legacy();
+    let v = s.json(&["verify", "--json"]);
+    let old = v["entries_without_row_commitments"].as_u64().unwrap();
+    assert!(old > 0, "{v}");
+    assert!(v["rows_before_commitments"].as_u64().unwrap() > 0, "{v}");
+    let text = s.ok(&["verify"]);
+    assert_contains(
+        &text,
+        &format!("note: audit entries 1-{old} were written by an earlier sluice"),
+    );
+    let name = query_one(&s, "SELECT name FROM datasets ORDER BY id LIMIT 1");
+    s.ok(&[
+        "clean",
+        &name,
+        "case",
+        "--columns",
+        "shop",
+        "--to",
+        "upper",
+        "--why",
+        "one spelling",
+    ]);
+    let v = s.json(&["verify", "--json"]);
+    assert_eq!(v["intact"], true, "{v}");
+    assert_eq!(v["entries_without_row_commitments"].as_u64(), Some(old));
+    // The new step's reason edited: seen.
+    db(&s)
+        .execute(
+            "UPDATE steps SET reason = 'forged' WHERE id = (SELECT max(id) FROM steps)",
+            [],
+        )
+        .unwrap();
+    let found = problems(&s);
+    assert!(
+        found.iter().any(|p| p["kind"] == "audit_mismatch"
+            && p["detail"]
+                .as_str()
+                .unwrap()
+                .contains("the rows of steps whose id")),
+        "{found:?}"
+    );
+    // A check result added by hand to the old store: no entry commits to it.
+    let s = legacy();
+    s.ok(&[
+        "clean",
+        &name,
+        "case",
+        "--columns",
+        "shop",
+        "--to",
+        "upper",
+        "--why",
+        "one spelling",
+    ]);
+    db(&s)
+        .execute(
+            "INSERT INTO check_results (version_id, rule, passed, n_failing, first_failing, agent_id, checked_at)
+             VALUES (1, '{}', 1, 0, '[]', 1, '2026-01-01T00:00:00Z')",
+            [],
+        )
+        .unwrap();
+    assert_named(
+        &problems(&s),
+        "audit_mismatch",
+        "check_results",
+        "committed to by no audit entry",
+    );
+}
+
+/// `verify --deep` reads every version again: on an intact store its row indexes and profiles
+/// match; a profile edited, or a row index pointed at another version's (same row count), is
+/// named by the recomputation itself, beside the commitment that no longer holds.
+#[test]
+fn deep_verify_recomputes_row_indexes_and_profiles() {
+    let s = rich_store();
+    let v = s.json(&["verify", "--deep", "--json"]);
+    assert_eq!(v["intact"], true, "{v}");
+    let n = db(&s)
+        .query_row("SELECT count(*) FROM versions", [], |r| r.get::<_, u64>(0))
+        .unwrap();
+    assert_eq!(v["versions_recomputed"].as_u64(), Some(n), "{v}");
+    assert_contains(&s.ok(&["verify", "--deep"]), "match what is stored");
+    let saved = settle(&s);
+
+    db(&s)
+        .execute(
+            "UPDATE column_profiles SET max_value = 'WO-9' WHERE version_id = 2 AND name = 'order_id'",
+            [],
+        )
+        .unwrap();
+    let r = s.run(&["verify", "--deep", "--json"]);
+    assert_eq!(r.code, 1);
+    let found: Value = serde_json::from_str(&r.stdout).unwrap();
+    let found = found["problems"].as_array().unwrap();
+    assert_named(found, "profile", "orders:v2", "order_id");
+
+    restore(&s, &saved);
+    // orders:v1 and orders:v2 have the same rows in other bytes (the trim changed cells).
+    let other = query_one(&s, "SELECT row_index FROM versions WHERE id = 1");
+    db(&s)
+        .execute("UPDATE versions SET row_index = ?1 WHERE id = 2", [&other])
+        .unwrap();
+    let r = s.run(&["verify", "--deep", "--json"]);
+    let found: Value = serde_json::from_str(&r.stdout).unwrap();
+    let found = found["problems"].as_array().unwrap();
+    assert_named(
+        found,
+        "row_index",
+        "orders:v2",
+        "does not match the version's bytes",
     );
 }

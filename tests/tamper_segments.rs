@@ -27,9 +27,9 @@ fn store() -> Sandbox {
         "oxwater.csv",
         "order_id,shop\nOX-1,Oxwater Wheelworks\nOX-2,Oxwater Wheelworks\nOX-3,Oxwater Wheelworks\n",
     );
-    s.ok(&["ingest", "quillby.csv", "--as", "orders"]);
-    s.ok(&["apply", "orders", "trim", "--why", "stray spaces"]);
-    s.ok(&["ingest", "oxwater.csv", "--as", "oxwater"]);
+    s.ok(&["receive", "quillby.csv", "--as", "orders"]);
+    s.ok(&["clean", "orders", "trim", "--why", "stray spaces"]);
+    s.ok(&["receive", "oxwater.csv", "--as", "oxwater"]);
     let v = s.json(&["verify", "--json"]);
     assert_eq!(v["intact"], true, "the untouched store must verify: {v}");
     s
@@ -40,7 +40,7 @@ fn store_dir(s: &Sandbox) -> PathBuf {
 }
 
 fn hash_of(s: &Sandbox, reference: &str) -> Hash {
-    s.json(&["show", reference, "--json"])["version"]["hash"]
+    s.json(&["about", reference, "--json"])["version"]["hash"]
         .as_str()
         .unwrap()
         .parse()
@@ -72,7 +72,7 @@ fn segment_files(dir: &Path) -> Vec<PathBuf> {
 #[test]
 fn a_flipped_byte_inside_a_frame_is_named_by_segment_and_object() {
     let s = store();
-    let h = hash_of(&s, "orders@1");
+    let h = hash_of(&s, "orders:v1");
     let (seg, e) = FsBackend::new(&store_dir(&s)).locate(&h).unwrap();
     let mut bytes = std::fs::read(&seg).unwrap();
     // Past the frame header (4-byte magic, descriptor, window, content size), inside the
@@ -92,13 +92,13 @@ fn a_flipped_byte_inside_a_frame_is_named_by_segment_and_object() {
     assert!(find(&ps, "object_damaged")
         .iter()
         .any(|p| p["subject"] == h.hex()));
-    assert_ne!(s.run(&["cat", "orders@1"]).code, 0);
+    assert_ne!(s.run(&["retrieve", "orders:v1"]).code, 0);
 }
 
 #[test]
 fn a_truncated_segment_is_named() {
     let s = store();
-    let h = hash_of(&s, "oxwater@1");
+    let h = hash_of(&s, "oxwater:v1");
     let (seg, _) = FsBackend::new(&store_dir(&s)).locate(&h).unwrap();
     let len = std::fs::metadata(&seg).unwrap().len();
     std::fs::OpenOptions::new()
@@ -127,8 +127,8 @@ fn an_index_entry_pointed_at_another_object_is_named() {
     let dir = store_dir(&s);
     assert_eq!(segment_files(&dir).len(), 1);
     let seg = segment_files(&dir).remove(0);
-    let orders = hash_of(&s, "orders@1");
-    let oxwater = hash_of(&s, "oxwater@1");
+    let orders = hash_of(&s, "orders:v1");
+    let oxwater = hash_of(&s, "oxwater:v1");
 
     // The tail: index offset, index length, BLAKE3 of the index, magic (56 bytes).
     let mut bytes = std::fs::read(&seg).unwrap();
@@ -142,7 +142,7 @@ fn an_index_entry_pointed_at_another_object_is_named() {
             .unwrap()
     };
     let (a, b) = (entry_of(&bytes, &orders), entry_of(&bytes, &oxwater));
-    // orders@1's entry now gives oxwater@1's place, lengths and frame size.
+    // orders:v1's entry now gives oxwater:v1's place, lengths and frame size.
     let theirs = bytes[b + 32..b + 64].to_vec();
     bytes[a + 32..a + 64].copy_from_slice(&theirs);
     // Whoever edits the index can recompute its checksum too.
@@ -156,16 +156,16 @@ fn an_index_entry_pointed_at_another_object_is_named() {
     assert_eq!(pointed[0]["subject"], orders.hex());
     assert_contains(pointed[0]["detail"].as_str().unwrap(), &oxwater.hex());
     // And `cat` does not hand out the other table's bytes under this version's name.
-    assert_ne!(s.run(&["cat", "orders@1"]).code, 0);
+    assert_ne!(s.run(&["retrieve", "orders:v1"]).code, 0);
 }
 
 #[test]
 fn reclaim_removes_only_unreferenced_objects_and_is_audited() {
     let s = store();
     let dir = store_dir(&s);
-    let before: Vec<String> = ["orders@1", "orders@2", "oxwater@1"]
+    let before: Vec<String> = ["orders:v1", "orders:v2", "oxwater:v1"]
         .iter()
-        .map(|r| s.ok(&["cat", r]))
+        .map(|r| s.ok(&["retrieve", r]))
         .collect();
     // An object nothing refers to, as an interrupted command leaves one.
     let stray = {
@@ -196,9 +196,9 @@ fn reclaim_removes_only_unreferenced_objects_and_is_audited() {
         )
         .unwrap();
     assert_eq!(action, "reclaim");
-    let after: Vec<String> = ["orders@1", "orders@2", "oxwater@1"]
+    let after: Vec<String> = ["orders:v1", "orders:v2", "oxwater:v1"]
         .iter()
-        .map(|r| s.ok(&["cat", r]))
+        .map(|r| s.ok(&["retrieve", r]))
         .collect();
     assert_eq!(before, after);
 }

@@ -20,11 +20,11 @@ fn cleaned() -> Sandbox {
          3,Cora Dunmore ,\"1,204.50\",\"a \"\"quoted\"\"\nnote\"\n\
          4,Dev Ashby,7,plain\n",
     );
-    s.ok(&["ingest", "orders.csv", "--as", "orders", "--why", "export"]);
-    s.ok(&["apply", "orders", "trim", "--why", "spaces"]);
-    s.ok(&["apply", "orders", "dedupe", "--why", "twice"]);
+    s.ok(&["receive", "orders.csv", "--as", "orders", "--why", "export"]);
+    s.ok(&["clean", "orders", "trim", "--why", "spaces"]);
+    s.ok(&["clean", "orders", "dedupe", "--why", "twice"]);
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "rename",
         "amount=parts_cost",
@@ -32,7 +32,7 @@ fn cleaned() -> Sandbox {
         "our name",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "number",
         "--columns",
@@ -109,15 +109,18 @@ with open(sys.argv[1], newline="") as f:
 
     // The text form folds the steps that left the value alone and shows the raw record.
     let text = s.ok(&["trace", "orders", "--row", "1", "--column", "customer"]);
-    assert_contains(&text, "customer of orders@5, data row 1: \"Ada Quenwick\"");
+    assert_contains(&text, "customer of orders:v5, data row 1: \"Ada Quenwick\"");
     assert_contains(
         &text,
         "3 steps left it alone (step 5 number, step 4 rename, step 3 dedupe)",
     );
-    assert_contains(&text, "before  orders@1 row 1 customer: \" Ada Quenwick \"");
     assert_contains(
         &text,
-        "orders@1 line 2, column customer: \" Ada Quenwick \"",
+        "before  orders:v1 row 1 customer: \" Ada Quenwick \"",
+    );
+    assert_contains(
+        &text,
+        "orders:v1 line 2, column customer: \" Ada Quenwick \"",
     );
 }
 
@@ -130,7 +133,7 @@ fn rows_are_picked_by_key_and_mistakes_are_named() {
     for (args, expected) in [
         (
             vec!["orders", "--row", "0", "--column", "customer"],
-            "orders@5 has data rows 1 to 4; there is no row 0",
+            "orders:v5 has data rows 1 to 4; there is no row 0",
         ),
         (
             vec!["orders", "--row", "9", "--column", "customer"],
@@ -138,19 +141,19 @@ fn rows_are_picked_by_key_and_mistakes_are_named() {
         ),
         (
             vec!["orders", "--row", "1", "--column", "colour"],
-            "column \"colour\" is not in orders@5",
+            "column \"colour\" is not in orders:v5",
         ),
         (
             vec!["orders", "--key", "id=77", "--column", "customer"],
-            "no row of orders@5 has id=77",
+            "no row of orders:v5 has id=77",
         ),
         (
-            vec!["orders@1", "--key", "id=2", "--column", "customer"],
-            "2 rows of orders@1 have id=2 (data rows 2, 3)",
+            vec!["orders:v1", "--key", "id=2", "--column", "customer"],
+            "2 rows of orders:v1 have id=2 (data rows 2, 3)",
         ),
         (
             vec!["orders", "--key", "shop=Q", "--column", "customer"],
-            "key column \"shop\" is not in orders@5",
+            "key column \"shop\" is not in orders:v5",
         ),
     ] {
         let mut all = vec!["trace"];
@@ -171,11 +174,11 @@ fn derived_looked_up_appended_and_summarised_cells() {
         "order no,client,mechanic\nOX-1,Cora Dunmore,Caspar\n",
     );
     s.file("staff.csv", "name,shop\nInes,Quillby\nCaspar,Oxwater\n");
-    s.ok(&["ingest", "q.csv", "--as", "q"]);
-    s.ok(&["ingest", "o.csv", "--as", "o"]);
-    s.ok(&["ingest", "staff.csv", "--as", "staff"]);
+    s.ok(&["receive", "q.csv", "--as", "q"]);
+    s.ok(&["receive", "o.csv", "--as", "o"]);
+    s.ok(&["receive", "staff.csv", "--as", "staff"]);
     s.ok(&[
-        "apply",
+        "clean",
         "q",
         "append",
         "--other",
@@ -192,7 +195,7 @@ fn derived_looked_up_appended_and_summarised_cells() {
         "one table",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "all",
         "split",
         "--column",
@@ -205,7 +208,7 @@ fn derived_looked_up_appended_and_summarised_cells() {
         "names",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "all",
         "combine",
         "--columns",
@@ -218,7 +221,7 @@ fn derived_looked_up_appended_and_summarised_cells() {
         "sorting",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "all",
         "lookup",
         "--table",
@@ -233,7 +236,7 @@ fn derived_looked_up_appended_and_summarised_cells() {
         "shops",
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "all",
         "summarize",
         "--by",
@@ -248,7 +251,7 @@ fn derived_looked_up_appended_and_summarised_cells() {
     let t = trace(&s, &["all", "--row", "3", "--column", "customer"]);
     let hops = t["hops"].as_array().unwrap();
     let append = hops.iter().find(|h| h["operation"] == "append").unwrap();
-    assert_eq!(append["read"], "o@1");
+    assert_eq!(append["read"], "o:v1");
     assert_eq!(append["column_before"], "client");
     assert_eq!(t["end"]["path"], "o.csv");
     assert_eq!(t["end"]["raw_line"], "OX-1,Cora Dunmore,Caspar");
@@ -278,7 +281,10 @@ fn derived_looked_up_appended_and_summarised_cells() {
     let t = trace(&s, &["all", "--row", "2", "--column", "shop"]);
     assert_eq!(t["value"], "Oxwater");
     let sub = &t["end"]["sources"][0];
-    assert_contains(sub["via"].as_str().unwrap(), "looked up in staff@1 by name");
+    assert_contains(
+        sub["via"].as_str().unwrap(),
+        "looked up in staff:v1 by name",
+    );
     assert_eq!(sub["trail"]["row"], 2);
     assert_eq!(sub["trail"]["end"]["raw_line"], "Caspar,Oxwater");
 
@@ -295,14 +301,14 @@ fn a_raw_line_in_a_legacy_encoding_is_shown_decoded() {
     let s = Sandbox::with_store();
     s.file("l1.csv", b"id;name\n1; Jos\xe9 \n2;Ren\xe9e\n");
     s.ok(&[
-        "ingest",
+        "receive",
         "l1.csv",
         "--as",
         "people",
         "--encoding",
         "windows-1252",
     ]);
-    s.ok(&["apply", "people", "trim", "--why", "spaces"]);
+    s.ok(&["clean", "people", "trim", "--why", "spaces"]);
     let t = trace(&s, &["people", "--row", "1", "--column", "name"]);
     assert_eq!(t["value"], "José");
     assert_eq!(t["end"]["raw_value"], " José ");

@@ -28,7 +28,7 @@ fn check(store: &Store, t: &Trail, listed: &mut HashMap<String, HashSet<(String,
         );
         assert_eq!(h.value_after, expect_value, "step {}", h.step);
         let same_shape = h.column_after == h.column_before
-            && h.produced.split('@').next() == h.read.split('@').next();
+            && h.produced.split(':').next() == h.read.split(':').next();
         if h.link == "exact" && same_shape {
             let changes = listed.entry(h.produced.clone()).or_insert_with(|| {
                 let v = sluice::refs::resolve(&store.lineage, &h.produced).unwrap();
@@ -80,7 +80,7 @@ fn check(store: &Store, t: &Trail, listed: &mut HashMap<String, HashSet<(String,
 #[test]
 fn every_sampled_cell_of_the_cleaned_orders_has_an_unbroken_exact_trail() {
     let d = Sandbox::with_demo();
-    let store = Store::open(&d.path().join(".sluice")).unwrap();
+    let store = Store::open(&d.path().join("sluice-store")).unwrap();
     let v = sluice::refs::resolve(&store.lineage, "all_orders").unwrap();
     let mut listed = HashMap::new();
     let mut cells = 0;

@@ -1,5 +1,5 @@
 //! Untrusted names, values and stores: text that looks like SQL reaches the database only as
-//! bound parameters; a store never follows a symbolic link out of `.sluice/`; a store received
+//! bound parameters; a store never follows a symbolic link out of `sluice-store/`; a store received
 //! from someone else can be inspected, traced and verified without running any program.
 
 mod common;
@@ -25,10 +25,10 @@ fn quotes_semicolons_and_sql_keywords_are_data_everywhere() {
     s.file("evil.csv", &csv);
     let agent = "Robin O'Example; DROP TABLE agents; -- <robin@example.org>";
     let why = "reason'); UPDATE steps SET reason = 'pwned'; --";
-    s.ok(&["ingest", "evil.csv", "--as", "orders", "--agent", agent]);
-    s.ok(&["apply", "orders", "trim", "--why", why, "--agent", agent]);
+    s.ok(&["receive", "evil.csv", "--as", "orders", "--person", agent]);
+    s.ok(&["clean", "orders", "trim", "--why", why, "--person", agent]);
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "drop",
         "`na'me\"; DROP TABLE steps; --` = 'x'' OR ''1''=''1'",
@@ -36,14 +36,14 @@ fn quotes_semicolons_and_sql_keywords_are_data_everywhere() {
         why,
     ]);
     s.ok(&[
-        "apply",
+        "clean",
         "orders",
         "rename",
         "SELECT=DELETE FROM versions; --",
         "--why",
         "keyword names",
     ]);
-    let cat = s.ok(&["cat", "orders"]);
+    let cat = s.ok(&["retrieve", "orders"]);
     let mut rows = csv::Reader::from_reader(cat.as_bytes());
     let header: Vec<String> = rows.headers().unwrap().iter().map(String::from).collect();
     assert_eq!(header, ["order_id", evil_col, "DELETE FROM versions; --"]);
@@ -53,7 +53,7 @@ fn quotes_semicolons_and_sql_keywords_are_data_everywhere() {
         .collect();
     // Trimmed, and the row the quoted literal named dropped.
     assert_eq!(body, [["WO-1", evil_val, "FROM"]]);
-    let log = s.json(&["log", "orders", "--json"]);
+    let log = s.json(&["timeline", "--dataset", "orders", "--json"]);
     let text = log.to_string();
     assert!(
         text.contains(&serde_json::to_string(why).unwrap()),
@@ -75,7 +75,7 @@ fn quotes_semicolons_and_sql_keywords_are_data_everywhere() {
     assert_eq!(v["intact"], true, "{v}");
     assert_eq!(v["audit_entries_checked"], 5);
     // Every table is still there and nothing was rewritten.
-    let db = rusqlite::Connection::open(s.path().join(".sluice/lineage.db")).unwrap();
+    let db = rusqlite::Connection::open(s.path().join("sluice-store/lineage.db")).unwrap();
     let n: i64 = db
         .query_row("SELECT count(*) FROM steps", [], |r| r.get(0))
         .unwrap();
@@ -167,7 +167,7 @@ fn sql_is_only_in_the_store_and_built_from_constants() {
 fn seeded() -> Sandbox {
     let s = Sandbox::with_store();
     s.file("a.csv", "order_id,shop\nWO-1,Quillby Cycle Mend\n");
-    s.ok(&["ingest", "a.csv", "--as", "orders"]);
+    s.ok(&["receive", "a.csv", "--as", "orders"]);
     s
 }
 
@@ -180,15 +180,15 @@ fn a_store_whose_folders_are_links_out_of_it_is_refused_and_nothing_is_written_t
     for part in ["tmp", sluice::store::segments::SEGMENTS_DIR] {
         let s = seeded();
         let outside = tempfile::tempdir().unwrap();
-        let p = s.path().join(".sluice").join(part);
+        let p = s.path().join("sluice-store").join(part);
         // Move the real folder outside and leave a link in its place.
         let moved = outside.path().join(part);
         std::fs::rename(&p, &moved).unwrap();
         std::os::unix::fs::symlink(&moved, &p).unwrap();
         let before = files_in(&moved);
         s.file("b.csv", "order_id,shop\nWO-2,Oxwater Wheelworks\n");
-        let err = s.fails(2, &["ingest", "b.csv", "--as", "orders"]);
-        assert_contains(&err, &format!(".sluice/{part} is a symbolic link"));
+        let err = s.fails(2, &["receive", "b.csv", "--as", "orders"]);
+        assert_contains(&err, &format!("sluice-store/{part} is a symbolic link"));
         assert_contains(&err, "never links out of it");
         assert_eq!(
             files_in(&moved),
@@ -198,7 +198,7 @@ fn a_store_whose_folders_are_links_out_of_it_is_refused_and_nothing_is_written_t
         // Reading commands refuse too, verify included.
         let err = s.fails(2, &["verify"]);
         assert_contains(&err, "is a symbolic link");
-        eprintln!("links: .sluice/{part} as a link out of the store is refused");
+        eprintln!("links: sluice-store/{part} as a link out of the store is refused");
     }
 }
 
@@ -207,7 +207,7 @@ fn a_segment_linked_out_of_the_store_is_never_read_or_written() {
     let s = seeded();
     let segments = s
         .path()
-        .join(".sluice")
+        .join("sluice-store")
         .join(sluice::store::segments::SEGMENTS_DIR);
     let outside = tempfile::tempdir().unwrap();
     // Every segment file becomes a link to a copy outside.
@@ -236,8 +236,8 @@ fn a_segment_linked_out_of_the_store_is_never_read_or_written() {
         linked,
         "{v}"
     );
-    // cat does not read the object through the link.
-    let err = s.fails(1, &["cat", "orders"]);
+    // retrieve does not read the object through the link.
+    let err = s.fails(1, &["retrieve", "orders"]);
     assert_contains(&err, "missing");
     eprintln!("links: {linked} segments linked out of the store: reported, never read");
 }
@@ -267,7 +267,10 @@ fn a_received_store_is_inspected_traced_and_verified_without_running_anything() 
         }
         go(from, to)
     };
-    copy(&made.path().join(".sluice"), &project.join(".sluice"));
+    copy(
+        &made.path().join("sluice-store"),
+        &project.join("sluice-store"),
+    );
     let decoys = received.path().join("decoys");
     std::fs::create_dir_all(&decoys).unwrap();
     let mark = received.path().join("ran");
@@ -286,7 +289,8 @@ fn a_received_store_is_inspected_traced_and_verified_without_running_anything() 
             .args(args)
             .current_dir(&project)
             .env("PATH", &decoys)
-            .env("SLUICE_AGENT", AGENT)
+            .env("SLUICE_PERSON", PERSON)
+            .env("SLUICE_EMAIL", EMAIL)
             .env("NO_COLOR", "1")
             .env_remove("SLUICE_STORE")
             .output()
@@ -300,12 +304,12 @@ fn a_received_store_is_inspected_traced_and_verified_without_running_anything() 
         String::from_utf8_lossy(&out.stdout).into_owned()
     };
     assert_contains(&run(&["verify"]), "intact");
-    run(&["log"]);
-    run(&["log", "reviewed_orders", "--json"]);
-    run(&["show", "reviewed_orders"]);
-    run(&["show", "reviewed_orders@1", "--json"]);
-    run(&["diff", "all_orders", "reviewed_orders@1"]);
-    run(&["cat", "reviewed_orders"]);
+    run(&["timeline"]);
+    run(&["timeline", "--dataset", "reviewed_orders", "--json"]);
+    run(&["about", "reviewed_orders"]);
+    run(&["about", "reviewed_orders:v1", "--json"]);
+    run(&["compare", "all_orders", "reviewed_orders:v1"]);
+    run(&["retrieve", "reviewed_orders"]);
     run(&[
         "trace",
         "reviewed_orders",
@@ -322,7 +326,7 @@ fn a_received_store_is_inspected_traced_and_verified_without_running_anything() 
         "--column",
         "sum_parts_cost",
     ]);
-    run(&["graph", "reviewed_orders"]);
+    run(&["lineage", "reviewed_orders"]);
     run(&["export", "q3_by_shop", "--format", "plan"]);
     assert!(
         !mark.exists(),
@@ -344,9 +348,9 @@ fn exec_never_follows_an_output_link_or_a_traversing_input_name() {
     let outside = tempfile::tempdir().unwrap();
     let secret = outside.path().join("secret.csv");
     std::fs::write(&secret, "order_id,shop\nWO-9,not for the store\n").unwrap();
-    let before_versions = s.json(&["log", "orders", "--json"]);
+    let before_versions = s.json(&["timeline", "--dataset", "orders", "--json"]);
     let r = s.run(&[
-        "exec",
+        "capture",
         "--input",
         "orders",
         "--output",
@@ -365,13 +369,16 @@ fn exec_never_follows_an_output_link_or_a_traversing_input_name() {
         &r.stderr,
         "not a file; have the command write the file itself",
     );
-    assert_eq!(s.json(&["log", "orders", "--json"]), before_versions);
-    assert!(!s.ok(&["cat", "orders"]).contains("not for the store"));
+    assert_eq!(
+        s.json(&["timeline", "--dataset", "orders", "--json"]),
+        before_versions
+    );
+    assert!(!s.ok(&["retrieve", "orders"]).contains("not for the store"));
     let v = s.json(&["verify", "--json"]);
     assert_eq!(v["intact"], true, "{v}");
 
     let r = s.run(&[
-        "exec",
+        "capture",
         "--input",
         "../../escape=orders",
         "--output",
@@ -384,6 +391,6 @@ fn exec_never_follows_an_output_link_or_a_traversing_input_name() {
     assert_eq!(r.code, 2, "{}", r.stderr);
     assert_contains(&r.stderr, "invalid dataset name \"../../escape\"");
     assert!(!s.path().join("escape.csv").exists());
-    assert!(!s.path().join(".sluice/escape.csv").exists());
+    assert!(!s.path().join("sluice-store/escape.csv").exists());
     eprintln!("exec: an output link and a traversing input name refused, nothing recorded");
 }

@@ -70,6 +70,7 @@ fuzz_target!(|input: &[u8]| {
     let settings = ReadSettings {
         delimiter,
         encoding,
+        max_record: None,
     };
     let (whole, whole_err) = read(data, &settings, &[]);
     for r in whole.windows(2) {

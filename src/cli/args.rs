@@ -14,21 +14,25 @@ use clap::{Args, Parser, Subcommand, ValueEnum};
                   transform as a step in a lineage graph, so that a cleaned value can be traced back \
                   to the raw line it came from.\n\n\
                   Exit codes: 0 success; 1 the data, the store or the system failed (verify found damage, \
-                  a check or a gate failed, replay differed, the disk is full); 2 a usage or input error \
-                  (bad arguments, a refused file, an unknown version, no store). `sluice exec` passes on \
+                  an inspection at a hold point failed, a reproduction differed, the disk is full); 2 a usage or input error \
+                  (bad arguments, a refused file, an unknown version, no store). `sluice capture` passes on \
                   a failing command's own status.",
-    after_help = "Start with `sluice demo` to see a worked example, or `sluice init` in a project folder."
+    after_help = "Start with `sluice demo` to see a worked example, or `sluice setup` in a project folder."
 )]
 pub struct Cli {
-    /// The store to use (a project folder or its .sluice folder); by default the nearest
-    /// .sluice folder in the working directory or a parent of it
+    /// The store to use (a project folder or its sluice-store folder); by default the
+    /// sluice-store folder in the working directory or the nearest parent that has one
     #[arg(long, global = true, env = "SLUICE_STORE", value_name = "PATH")]
     pub store: Option<PathBuf>,
 
-    /// Who is acting, as "Name <email>"; default: SLUICE_AGENT, then git's user.name and
-    /// user.email, then the operating system user
-    #[arg(long, global = true, value_name = "IDENTITY")]
-    pub agent: Option<String>,
+    /// Who is acting, by name; default: SLUICE_PERSON, then the store's setting
+    /// (`sluice identity`), then the operating system user
+    #[arg(long, global = true, value_name = "NAME")]
+    pub person: Option<String>,
+
+    /// The acting person's e-mail address; default: SLUICE_EMAIL, then the store's setting
+    #[arg(long, global = true, value_name = "ADDRESS")]
+    pub email: Option<String>,
 
     /// When to colour the output: auto (only on a terminal, and not when NO_COLOR is set),
     /// always, or never
@@ -41,40 +45,45 @@ pub struct Cli {
     )]
     pub color: ColorArg,
 
+    /// The most one record of a file taken in may hold, header included, in MiB (default 32);
+    /// a longer record is refused with its line and byte, so a hostile file cannot fill memory
+    #[arg(long, global = true, value_name = "MIB", value_parser = clap::value_parser!(u64).range(1..=65536))]
+    pub max_record_mib: Option<u64>,
+
     #[command(subcommand)]
     pub command: Command,
 }
 
 #[derive(Debug, Subcommand)]
 pub enum Command {
-    /// Create a store (.sluice/) in a folder
-    #[command(after_help = "Example:\n  sluice init work/q3-orders")]
-    Init {
+    /// Set up a store (a sluice-store folder) in a project folder
+    #[command(after_help = "Example:\n  sluice setup work/q3-orders")]
+    Setup {
         /// The project folder (default: the working directory)
         dir: Option<PathBuf>,
     },
 
     /// Record a file as a new version of a dataset
     #[command(
-        after_help = "Example:\n  sluice ingest exports/quillby_2026q3.csv --as quillby_orders --key order_id \\\n      --null-token NA --why \"Q3 export from the Quillby till\""
+        after_help = "Example:\n  sluice receive exports/quillby_2026q3.csv --as quillby_orders --key order_id \\\n      --null-token NA --why \"Q3 export from the Quillby till\""
     )]
-    Ingest(IngestArgs),
+    Receive(ReceiveArgs),
 
-    /// Apply one built-in cleaning operation to a version, recording every changed cell
+    /// Clean a version with one built-in operation, recording every changed cell
     #[command(
-        after_help = "Examples:\n  sluice apply quillby_orders trim --inner --why \"the till pads names with spaces\"\n  sluice apply quillby_orders case --columns email --to lower --why \"e-mail addresses are case-blind\""
+        after_help = "Examples:\n  sluice clean quillby_orders trim --inner --why \"the till pads names with spaces\"\n  sluice clean quillby_orders case --columns email --to lower --why \"e-mail addresses are case-blind\""
     )]
-    Apply(ApplyArgs),
+    Clean(CleanArgs),
 
-    /// Check declared rules against a version and record the results on it
+    /// Inspect a version against declared rules and record the results on it
     #[command(
         after_help = "Rules file:\n  {\"rules\": [\n    {\"rule\": \"not_blank\", \"columns\": [\"order_id\"]},\n    {\"rule\": \"unique\", \"columns\": [\"order_id\"]},\n    \
         {\"rule\": \"range\", \"column\": \"parts_cost\", \"min\": \"0\", \"max\": \"5000\"},\n    {\"rule\": \"length\", \"column\": \"order_id\", \"min\": 5, \"max\": 5},\n    \
         {\"rule\": \"pattern\", \"column\": \"email\", \"regex\": \"[^@ ]+@[^@ ]+\"},\n    {\"rule\": \"allowed\", \"column\": \"status\", \"values\": [\"done\", \"open\"]}\n  ]}\n\n\
-        Example:\n  sluice check quillby_orders --rules rules.json\n\nExit code 0 when every rule passes, 1 when one fails."
+        Example:\n  sluice inspect quillby_orders --rules rules.json\n\nExit code 0 when every rule passes, 1 when one fails."
     )]
-    Check {
-        /// The version: NAME (latest), NAME@N or a hash prefix
+    Inspect {
+        /// The version: NAME (latest), NAME:vN or blake3:HEX
         reference: String,
         /// The rules file (JSON)
         #[arg(long, value_name = "FILE")]
@@ -88,14 +97,14 @@ pub enum Command {
     #[command(
         after_help = "A plan is a JSON file listing steps (format: README.md, \"Plans\", and schema/plan.schema.json).\n\n\
         Examples:\n  sluice run plans/q3-cleaning.json\n  sluice run plans/q3-cleaning.json --input quillby_orders=exports/quillby_2026q4.csv\n  \
-        sluice run plans/q3-cleaning.json --input quillby_orders=quillby_orders@1\n\n\
-        A failing step stops the run; the steps before it stay recorded and are listed. Exit code 1 when a step or a gate \
-        check fails on the data, 2 for a usage or input error."
+        sluice run plans/q3-cleaning.json --input quillby_orders=quillby_orders:v1\n\n\
+        A failing step stops the run; the steps before it stay recorded and are listed. Exit code 1 when a step or an \
+        inspection at a hold point fails on the data, 2 for a usage or input error."
     )]
     Run {
         /// The plan file (JSON)
         plan: PathBuf,
-        /// Take input NAME from a file, or bind it to a stored version (NAME@N, a hash prefix),
+        /// Take input NAME from a file, or bind it to a stored version (NAME:vN, blake3:HEX),
         /// instead of the plan's file; repeatable
         #[arg(long = "input", value_name = "NAME=FILE|REF")]
         inputs: Vec<String>,
@@ -113,7 +122,7 @@ pub enum Command {
         In PROV, versions are entities, steps activities, people and sluice agents."
     )]
     Export {
-        /// The version: NAME (latest), NAME@N or a hash prefix
+        /// The version: NAME (latest), NAME:vN or blake3:HEX
         reference: String,
         /// The form to write
         #[arg(long, value_enum)]
@@ -128,12 +137,25 @@ pub enum Command {
     /// verification made now; the report's hash is recorded in the audit log
     #[command(
         after_help = "Examples:\n  sluice report q3_by_shop -o q3_by_shop-report.html\n  \
-        sluice report q3_by_shop --format md -o q3_by_shop-report.md --replay\n  \
-        sluice report --find q3_by_shop-report.html\n\n\
+        sluice report q3_by_shop --format md -o q3_by_shop-report.md --reproduce\n\n\
         The format follows the -o file's extension (.html, .md, .json) unless --format is given. \
         The report documents what was recorded; it is not legal or regulatory advice."
     )]
     Report(ReportArgs),
+
+    /// Which recorded version or report is this file? Hashes it and looks the hash up among
+    /// the versions and the reports recorded in the audit chain
+    #[command(
+        after_help = "Examples:\n  sluice identify q3_by_shop-report.html\n  sluice identify exports/quillby_2026q3.csv\n\n\
+        Exit code 0 when the file is recorded, 1 when it is not (changed after it was written, or from another store)."
+    )]
+    Identify {
+        /// The file to look up
+        file: PathBuf,
+        /// Print JSON
+        #[arg(long)]
+        json: bool,
+    },
 
     /// Where a cell's value came from: its trail back to the raw file and line
     #[command(
@@ -143,9 +165,9 @@ pub enum Command {
         branches to every column it was made from; a looked-up column continues in the looked-up table."
     )]
     Trace {
-        /// The version: NAME (latest), NAME@N or a hash prefix
+        /// The version: NAME (latest), NAME:vN or blake3:HEX
         reference: String,
-        /// The 1-based data row, as `sluice cat` shows it (the header not counted)
+        /// The 1-based data row, as `sluice retrieve` shows it (the header not counted)
         #[arg(
             long,
             value_name = "N",
@@ -175,7 +197,7 @@ pub enum Command {
         as undecided."
     )]
     Explain {
-        /// The summary version: NAME (latest), NAME@N or a hash prefix
+        /// The summary version: NAME (latest), NAME:vN or blake3:HEX
         reference: String,
         /// The 1-based data row of the summary
         #[arg(
@@ -200,9 +222,9 @@ pub enum Command {
     },
 
     /// Every version and step that depends on a version (what a wrong raw file affects)
-    #[command(after_help = "Example:\n  sluice impact quillby_orders@1")]
+    #[command(after_help = "Example:\n  sluice impact quillby_orders:v1")]
     Impact {
-        /// The version: NAME (latest), NAME@N or a hash prefix
+        /// The version: NAME (latest), NAME:vN or blake3:HEX
         reference: String,
         /// Print JSON
         #[arg(long)]
@@ -211,16 +233,16 @@ pub enum Command {
 
     /// Draw the lineage graph (versions and steps) as Graphviz DOT text or as SVG
     #[command(
-        after_help = "Examples:\n  sluice graph --format svg -o lineage.svg\n  sluice graph q3_by_shop --format dot | dot -Tpng > q3.png\n\n\
+        after_help = "Examples:\n  sluice lineage --format svg -o lineage.svg\n  sluice lineage q3_by_shop --format dot | dot -Tpng > q3.png\n\n\
         With a version, only what it comes from and what depends on it. The SVG is laid out by sluice itself \
         (no outside program needed); latest versions are drawn in blue."
     )]
-    Graph {
+    Lineage {
         /// Only the part around this version
         reference: Option<String>,
         /// The form to write
         #[arg(long, value_enum, default_value = "dot")]
-        format: GraphFormat,
+        format: LineageFormat,
         /// Write to this file instead of standard output
         #[arg(short = 'o', long = "output", value_name = "FILE")]
         output: Option<PathBuf>,
@@ -228,63 +250,76 @@ pub enum Command {
 
     /// Compute a version again from its raw ancestors and check every step gives its recorded bytes
     #[command(
-        after_help = "Examples:\n  sluice replay q3_by_shop\n  sluice replay reviewed_orders --allow-exec\n\n\
+        after_help = "Examples:\n  sluice reproduce q3_by_shop\n  sluice reproduce reviewed_orders --allow-exec\n\n\
         Built-in steps are run again on their recorded inputs (nothing is recorded); an intermediate object \
         missing from the store is restored when the recomputed bytes have its hash. Hand edits are re-applied \
         from their recorded row map, changed cells and dropped rows. Outside commands run again only with \
         --allow-exec, each in a temporary checkout of its recorded commit; without it nothing recorded in the \
-        store is executed. The first step whose output differs stops the replay with a summary of the \
+        store is executed. The first step whose output differs stops the reproduction with a summary of the \
         difference. Exit code 0 when every step was shown to give its recorded bytes, 1 otherwise."
     )]
-    Replay {
-        /// The version: NAME (latest), NAME@N or a hash prefix
+    Reproduce {
+        /// The version: NAME (latest), NAME:vN or blake3:HEX
         reference: String,
-        /// Apply the same chain of steps to new raw data for input NAME (next quarter's export):
-        /// the file is taken in and every step recorded again on it, each naming the step it repeats
-        #[arg(long, value_name = "NAME=FILE")]
-        onto: Option<String>,
-        /// With --onto: why the new file is taken in (kept with its intake)
-        #[arg(long, value_name = "TEXT", requires = "onto")]
-        why: Option<String>,
         /// Run the recorded outside commands again, each in a temporary checkout of the git commit
         /// it was recorded at (the command lines are listed before anything runs)
-        #[arg(long, conflicts_with = "onto")]
+        #[arg(long)]
         allow_exec: bool,
         /// Print JSON
         #[arg(long)]
         json: bool,
     },
 
-    /// Take out the step that made a version, keeping everything recorded after it
+    /// Run the chain of steps that made a version again on new raw data (next quarter's export)
     #[command(
-        after_help = "Example:\n  sluice revert all_orders@4 --why \"the dedupe key was wrong: two shops reuse order numbers\"\n\n\
-        Records the table from before that step as the dataset's next version (a step of kind revert), then applies \
-        every later step again on top of it: built-in steps run again with their recorded parameters, hand edits are \
-        re-applied as cell patches matched through the row lineage. Nothing is deleted. Conflicts (a later edit to a \
-        row or column only the reverted step made, to a row that is now dropped, to a row whose duplicate comes back, \
-        or an outside command after it) refuse the revert with exit code 1 and are listed; --force resolves them as \
-        README.md, \"Undoing a step\", documents."
+        after_help = "Example:\n  sluice rerun q3_by_shop --with quillby_orders=exports/quillby_2026q4.csv --why \"Q4 export\"\n\n\
+        The file is received as the next version of dataset NAME and every step is recorded again on it, \
+        each naming the step it repeats. Exit codes as for `sluice run`."
     )]
-    Revert {
-        /// The version whose step is taken out: NAME@N or a hash prefix
+    Rerun {
+        /// The version whose chain of steps to run again: NAME (latest), NAME:vN or blake3:HEX
         reference: String,
-        /// Why the step is taken out (kept with the revert step)
+        /// The new raw file for input NAME
+        #[arg(long = "with", value_name = "NAME=FILE", required = true)]
+        with: String,
+        /// Why the new file is received (kept with its intake)
         #[arg(long, value_name = "TEXT")]
-        why: String,
-        /// Resolve conflicts by the documented rules instead of refusing; each is recorded
-        #[arg(long)]
-        force: bool,
-        /// Print JSON
+        why: Option<String>,
+        /// Print JSON (schema/output/rerun.schema.json)
         #[arg(long)]
         json: bool,
     },
 
-    /// Write a version's exact bytes (or its rows as CSV, TSV or JSON Lines) to standard output or a file
+    /// Withdraw the step that made a version, keeping everything recorded after it
     #[command(
-        after_help = "Examples:\n  sluice cat quillby_orders@1 > q3-as-received.csv\n  sluice cat 5f3a9c -o q3.csv\n  sluice cat all_orders --format jsonl -o all_orders.jsonl"
+        after_help = "Example:\n  sluice withdraw all_orders:v4 --why \"the dedupe key was wrong: two shops reuse order numbers\"\n\n\
+        Records the table from before that step as the dataset's next version (a withdrawal step), then applies \
+        every later step again on top of it: built-in steps run again with their recorded parameters, hand edits are \
+        re-applied as cell patches matched through the row lineage. Nothing is deleted. Conflicts (a later edit to a \
+        row or column only the withdrawn step made, to a row that is now dropped, to a row whose duplicate comes back, \
+        or an outside command after it) refuse the withdrawal with exit code 1 and are listed; --accept-conflicts \
+        resolves them as README.md, \"Withdrawing a step\", documents."
     )]
-    Cat {
-        /// The version: NAME (latest), NAME@N (N-th version) or a hash prefix (6+ hex digits)
+    Withdraw {
+        /// The version whose step is withdrawn: NAME:vN or blake3:HEX
+        reference: String,
+        /// Why the step is withdrawn (kept with the withdrawal step)
+        #[arg(long, value_name = "TEXT")]
+        why: String,
+        /// Resolve conflicts by the documented rules instead of refusing; each is recorded
+        #[arg(long)]
+        accept_conflicts: bool,
+        /// Print JSON (schema/output/withdraw.schema.json)
+        #[arg(long)]
+        json: bool,
+    },
+
+    /// Retrieve a version's exact bytes (or its rows as CSV, TSV or JSON Lines) to standard output or a file
+    #[command(
+        after_help = "Examples:\n  sluice retrieve quillby_orders:v1 > q3-as-received.csv\n  sluice retrieve blake3:5f3a9c0d -o q3.csv\n  sluice retrieve all_orders --format jsonl -o all_orders.jsonl"
+    )]
+    Retrieve {
+        /// The version: NAME (latest), NAME:vN (N-th version) or blake3:HEX (8+ hex digits)
         reference: String,
         /// Write to this file instead of standard output
         #[arg(short = 'o', long = "output", value_name = "FILE")]
@@ -292,23 +327,22 @@ pub enum Command {
         /// Write the rows as csv (canonical CSV), tsv (tab-separated) or jsonl (JSON Lines)
         /// instead of the stored bytes
         #[arg(long, value_name = "FORMAT")]
-        format: Option<CatFormat>,
+        format: Option<RetrieveFormat>,
     },
 
-    /// List the steps of the store or of one dataset, newest first
-    #[command(after_help = "Example:\n  sluice log quillby_orders --json")]
-    Log {
-        /// Only steps that read or produced versions of this dataset
-        dataset: Option<String>,
-        /// Print JSON (fields: examples/reference.md, "JSON output"; schema/output/)
-        #[arg(long)]
-        json: bool,
-    },
+    /// The audit trail in time order: one line per step, oldest first
+    #[command(
+        after_help = "Examples:\n  sluice timeline\n  sluice timeline --dataset quillby_orders --since 2026-10-01 --json\n  \
+        sluice timeline --by \"Ada Moss\" --limit 20\n\n\
+        --since and --until take an ISO 8601 date (2026-10-01, whole days in UTC) or a UTC time (2026-10-01T09:00:00Z); \
+        --until includes the day it names. --limit keeps the latest N lines, still oldest first."
+    )]
+    Timeline(TimelineArgs),
 
-    /// Show one version: hash, size, dialect, columns, profile and the step that made it
-    #[command(after_help = "Example:\n  sluice show quillby_orders@1")]
-    Show {
-        /// The version: NAME (latest), NAME@N (N-th version) or a hash prefix (6+ hex digits)
+    /// About one version: hash, size, dialect, columns, profile and the step that made it
+    #[command(after_help = "Example:\n  sluice about quillby_orders:v1")]
+    About {
+        /// The version: NAME (latest), NAME:vN (N-th version) or blake3:HEX (8+ hex digits)
         reference: String,
         /// Print JSON (fields: examples/reference.md, "JSON output"; schema/output/)
         #[arg(long)]
@@ -320,6 +354,10 @@ pub enum Command {
         after_help = "Example:\n  sluice verify\n\nExit code 0 when the store is intact, 1 with the list of what is wrong otherwise."
     )]
     Verify {
+        /// Also read every version again and compare its row index and column profile with
+        /// ones computed from its bytes (reads every version in full)
+        #[arg(long)]
+        deep: bool,
         /// Print JSON (fields: examples/reference.md, "JSON output"; schema/output/)
         #[arg(long)]
         json: bool,
@@ -338,32 +376,66 @@ pub enum Command {
         json: bool,
     },
 
-    /// Show the differences between two versions: rows added, removed and changed, every
-    /// changed cell, and added, removed, renamed or reordered columns
+    /// Compare two versions: rows kept, added and removed, every changed cell, and added,
+    /// removed, renamed or reordered columns
     #[command(
-        after_help = "Rows are matched by --key, else by the key declared on the dataset, else by order (a minimal \
-        edit script over row fingerprints). Inside a changed cell, removed characters are shown as [-...] and \
-        added ones as [+...], with a space as ␣.\n\n\
-        Example:\n  sluice diff quillby_orders@1 quillby_orders@2 --key order_id --limit 20\n  \
-        changed  row 3 → 3  order_id 41003\n    customer  \"[-␣]Ada Quenwick\" → \"Ada Quenwick\"\n\n\
+        after_help = "Rows are paired by --key, else by the key declared on the dataset, else by order (a minimal edit \
+        script over row fingerprints); the first line says which. \
+        Changed cells are listed as a table (row | key | column | before | after); the characters that changed are \
+        wrapped in « and », and white space is made visible (space ·, tab →, no-break space ⍽, line break ↵).\n\n\
+        Examples:\n  sluice compare quillby_orders:v1 quillby_orders:v2 --key order_id --limit 20\n  \
+        sluice compare all_orders:v1 all_orders:v2 --counts\n\n\
         Exit code 0 whether or not the versions differ (1 and 2 as for every command: a failure, a usage error)."
     )]
-    Diff(DiffArgs),
+    Compare(CompareArgs),
 
-    /// Run an outside command on stored versions and record what it writes, with lineage
-    /// inferred by a diff
+    /// Capture the work of an outside command on stored versions: record what it writes, with
+    /// lineage inferred by comparing it with its inputs
     #[command(
         after_help = "Placeholders in the command's arguments: {NAME} is the file holding input NAME (a copy of \
         the stored version, in a temporary folder removed afterwards), {out:NAME} the file of output NAME. \
         The same paths are in the environment variables SLUICE_INPUT_<NAME> and SLUICE_OUTPUT_<NAME> (NAME in \
         upper case, other characters than letters and digits as _).\n\n\
-        Example:\n  sluice exec --input all_orders --output all_orders=fixed.csv --why \"one spelling of each name\" \\\n      \
+        Example:\n  sluice capture --input all_orders --output all_orders=fixed.csv --why \"one spelling of each name\" \\\n      \
         -- python3 fix_names.py {all_orders} {out:all_orders}\n\n\
         Exit code: the command's own status when it fails (128 + N when ended by signal N, 127 when the program \
         does not exist, 126 when it cannot be started); 1 when it exits with 0 but an output is missing or it \
         changed an input; then nothing but the failure's audit entry is recorded."
     )]
-    Exec(ExecArgs),
+    Capture(CaptureArgs),
+
+    /// Convert a plan or rules file of the old form (`"sluice_plan": 1`, `{"rules": [{"rule": ...}]}`)
+    /// to the current form
+    #[command(
+        after_help = "Example:\n  sluice upgrade plans/q3-cleaning.json -o plans/q3-cleaning.v2.json\n\n\
+        Without -o the converted file is printed. The converted file says the same thing: every step, rule, \
+        reason and setting is kept."
+    )]
+    Upgrade {
+        /// The plan or rules file to convert
+        file: PathBuf,
+        /// Write the converted file here instead of standard output
+        #[arg(short = 'o', long = "output", value_name = "FILE")]
+        output: Option<PathBuf>,
+    },
+
+    /// Show who is acting, and where that comes from; or set the store's default person
+    #[command(
+        after_help = "Examples:\n  sluice identity\n  sluice identity --name \"Ada Moss\" --email ada@example.org\n\n\
+        Who is acting is taken from --person and --email, then SLUICE_PERSON and SLUICE_EMAIL, then the store's \
+        setting, then the operating system user. Setting it is recorded in the audit chain."
+    )]
+    Identity {
+        /// Set the store's default person to this name
+        #[arg(long, value_name = "NAME")]
+        name: Option<String>,
+        /// Set the store's default e-mail address (with --name)
+        #[arg(long, value_name = "ADDRESS", requires = "name")]
+        email: Option<String>,
+        /// Print JSON
+        #[arg(long)]
+        json: bool,
+    },
 
     /// Create a store with an invented example (three bicycle repair shops) and take it in
     #[command(after_help = "Example:\n  sluice demo\n  sluice demo /tmp/try-sluice")]
@@ -389,7 +461,7 @@ pub enum Command {
         sluice manual --dir ~/.local/share/man/man1    # then: man sluice, man sluice-trace\n\n\
         The pages are made from this build's own command definitions and --help texts.")]
     Manual {
-        /// Write sluice.1 and a page per command (sluice-ingest.1, sluice-apply-trim.1, ...)
+        /// Write sluice.1 and a page per command (sluice-receive.1, sluice-clean-trim.1, ...)
         /// into this folder instead of printing sluice.1
         #[arg(long, value_name = "DIR")]
         dir: Option<PathBuf>,
@@ -413,16 +485,16 @@ pub enum ShellArg {
     Fish,
 }
 
-/// The formats `cat --format` writes.
+/// The formats `retrieve --format` writes.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
-pub enum CatFormat {
+pub enum RetrieveFormat {
     Csv,
     Tsv,
     Jsonl,
 }
 
 #[derive(Debug, Args)]
-pub struct IngestArgs {
+pub struct ReceiveArgs {
     /// The file to take in: delimited text (comma, semicolon, tab or pipe), a workbook (.xlsx,
     /// .xlsm, .ods) or JSON Lines (.jsonl, .ndjson)
     pub file: PathBuf,
@@ -462,16 +534,20 @@ pub struct IngestArgs {
     #[arg(long, value_name = "NAME|N")]
     pub sheet: Option<String>,
 
-    /// The file is a hand-edited successor of this version (NAME, NAME@N or a hash prefix):
-    /// record it as a hand edit, its row lineage inferred by a diff
+    /// The file is a hand edit of this version (NAME, NAME:vN or blake3:HEX): record it as
+    /// a hand edit, its row lineage inferred by comparing the two
     #[arg(long, value_name = "REF")]
-    pub from: Option<String>,
+    pub hand_edit_of: Option<String>,
+
+    /// Print JSON (schema/output/receive.schema.json)
+    #[arg(long)]
+    pub json: bool,
 }
 
 #[derive(Debug, Args)]
-pub struct ExecArgs {
+pub struct CaptureArgs {
     /// A version the command reads, as NAME (the latest version of dataset NAME) or
-    /// NAME=REF (NAME@N, a hash prefix); repeatable
+    /// NAME=REF (NAME:vN, blake3:HEX); repeatable
     #[arg(long = "input", value_name = "NAME[=REF]")]
     pub inputs: Vec<String>,
 
@@ -483,15 +559,23 @@ pub struct ExecArgs {
     #[arg(long, value_name = "TEXT")]
     pub why: String,
 
+    /// Print JSON (schema/output/capture.schema.json)
+    #[arg(long)]
+    pub json: bool,
+
     /// The command and its arguments, after `--`
     #[arg(last = true, required = true, value_name = "COMMAND")]
     pub command: Vec<String>,
 }
 
 #[derive(Debug, Args)]
-pub struct ApplyArgs {
-    /// The version to clean: NAME (latest), NAME@N or a hash prefix
+pub struct CleanArgs {
+    /// The version to clean: NAME (latest), NAME:vN or blake3:HEX
     pub reference: String,
+
+    /// Print JSON (schema/output/clean.schema.json)
+    #[arg(long, global = true)]
+    pub json: bool,
 
     #[command(subcommand)]
     pub op: OpCommand,
@@ -513,7 +597,7 @@ pub struct StepArgs {
 pub enum OpCommand {
     /// Remove leading and trailing white space; --inner also turns inner runs into one space
     #[command(
-        after_help = "Example:\n  sluice apply quillby_orders trim --columns customer,email --inner --why \"stray spaces from the till\""
+        after_help = "Example:\n  sluice clean quillby_orders trim --columns customer,email --inner --why \"stray spaces from the till\""
     )]
     Trim {
         /// Only these columns (default: all), comma-separated
@@ -527,7 +611,7 @@ pub enum OpCommand {
     },
     /// Change letters to lower, upper or title case
     #[command(
-        after_help = "Example:\n  sluice apply quillby_orders case --columns email --to lower --why \"e-mail addresses are case-blind\""
+        after_help = "Example:\n  sluice clean quillby_orders case --columns email --to lower --why \"e-mail addresses are case-blind\""
     )]
     Case {
         /// Only these columns (default: all), comma-separated
@@ -541,8 +625,8 @@ pub enum OpCommand {
     },
     /// Replace text inside values: literally, or by regular expression with --regex
     #[command(
-        after_help = "Examples:\n  sluice apply quillby_orders replace --columns labour_hours --find , --with . --why \"decimal commas typed by hand\"\n  \
-        sluice apply quillby_orders replace --columns service --regex --find '^brakes? *- *adjust$' --with 'Brake tune' --why \"one label\""
+        after_help = "Examples:\n  sluice clean quillby_orders replace --columns labour_hours --find , --with . --why \"decimal commas typed by hand\"\n  \
+        sluice clean quillby_orders replace --columns service --regex --find '^brakes? *- *adjust$' --with 'Brake tune' --why \"one label\""
     )]
     Replace {
         /// Only these columns (default: all), comma-separated
@@ -564,7 +648,7 @@ pub enum OpCommand {
     #[command(
         after_help = "The table's first column holds values as they are written, the second what they become (or name them with \
         --from and --to). A file is taken in as a dataset named after it first, so the table is part of the lineage.\n\n\
-        Example:\n  sluice apply quillby_orders map --columns service --table exports/service_labels.csv --why \"the cooperative's service names\""
+        Example:\n  sluice clean quillby_orders map --columns service --table exports/service_labels.csv --why \"the cooperative's service names\""
     )]
     Map {
         /// The columns to map, comma-separated
@@ -575,7 +659,7 @@ pub enum OpCommand {
             value_delimiter = ','
         )]
         columns: Vec<String>,
-        /// The mapping table: a file to take in, or a version (NAME, NAME@N, hash prefix)
+        /// The mapping table: a file to take in, or a version (NAME, NAME:vN, blake3:HEX)
         #[arg(long, value_name = "FILE|REF")]
         table: String,
         /// The table column holding the values as written (default: its first of two)
@@ -592,10 +676,10 @@ pub enum OpCommand {
     },
     /// Add columns from another table, matching rows on key columns (a left join)
     #[command(
-        after_help = "Example:\n  sluice apply quillby_orders lookup --table technicians --on technician --table-on name --take grade,shop --why \"grade for the pay report\""
+        after_help = "Example:\n  sluice clean quillby_orders lookup --table technicians --on technician --table-on name --take grade,shop --why \"grade for the pay report\""
     )]
     Lookup {
-        /// The table to look up in: a file to take in, or a version (NAME, NAME@N, hash prefix)
+        /// The table to look up in: a file to take in, or a version (NAME, NAME:vN, blake3:HEX)
         #[arg(long, value_name = "FILE|REF")]
         table: String,
         /// The key columns of this table, comma-separated
@@ -625,10 +709,10 @@ pub enum OpCommand {
     },
     /// Stack the rows of another version under this one, matching columns by name
     #[command(
-        after_help = "Example:\n  sluice apply quillby_orders append --other oxwater_orders --map \"order no=order_id\" --map date=opened --why \"one table for the cooperative\""
+        after_help = "Example:\n  sluice clean quillby_orders append --other oxwater_orders --map \"order no=order_id\" --map date=opened --why \"one table for the cooperative\""
     )]
     Append {
-        /// The version whose rows to add: NAME, NAME@N or a hash prefix
+        /// The version whose rows to add: NAME, NAME:vN or blake3:HEX
         #[arg(long, value_name = "REF")]
         other: String,
         /// Rename one of its columns to one of ours: THEIRS=OURS (repeat for several)
@@ -639,7 +723,7 @@ pub enum OpCommand {
     },
     /// Fill blank cells (empty or a null token) with a value or from another column
     #[command(
-        after_help = "Examples:\n  sluice apply quillby_orders fill --columns labour_hours --value 0 --why \"no labour booked\"\n  sluice apply quillby_orders fill --columns email --from notes --why \"clerk typed the address in the notes\""
+        after_help = "Examples:\n  sluice clean quillby_orders fill --columns labour_hours --value 0 --why \"no labour booked\"\n  sluice clean quillby_orders fill --columns email --from notes --why \"clerk typed the address in the notes\""
     )]
     Fill {
         /// The columns to fill, comma-separated
@@ -668,7 +752,7 @@ pub enum OpCommand {
     #[command(
         after_help = "Accepted: a currency sign ($ € £ ¥) or ISO 4217 code before or after; thousands separators in groups of three; \
         a sign, a trailing minus or parentheses for negatives; a trailing % read as a fraction (12.5% -> 0.125). \
-        Never through floating point.\n\nExample:\n  sluice apply oxwater_orders number --columns parts --decimal-comma --why \"amounts as numbers\""
+        Never through floating point.\n\nExample:\n  sluice clean oxwater_orders number --columns parts --decimal-comma --why \"amounts as numbers\""
     )]
     Number {
         /// The columns to read, comma-separated
@@ -693,7 +777,7 @@ pub enum OpCommand {
         after_help = "Accepted: ISO 8601 (2026-07-03, 20260703, 2026-W27-5, 2026-184, with a time and offset), numeric dates \
         with / . or - and a four-digit year, and English month names (3 Jul 2026, Jul 3, 2026). A numeric date that \
         reads both ways (03/04/2026) needs --order; dates that do not exist (2023-02-29) are errors.\n\nExample:\n  \
-        sluice apply fennmarsh_orders date --columns opened --order dmy --why \"one date format\""
+        sluice clean fennmarsh_orders date --columns opened --order dmy --why \"one date format\""
     )]
     Date {
         /// The columns to read, comma-separated
@@ -715,7 +799,7 @@ pub enum OpCommand {
     },
     /// Split one column into new columns on a separator (the last new column takes the rest)
     #[command(
-        after_help = "Example:\n  sluice apply quillby_orders split --column customer --on ' ' --into given_name,family_name --why \"names for the mailing\""
+        after_help = "Example:\n  sluice clean quillby_orders split --column customer --on ' ' --into given_name,family_name --why \"names for the mailing\""
     )]
     Split {
         /// The column to split
@@ -737,7 +821,7 @@ pub enum OpCommand {
     },
     /// Join the non-blank values of several columns into a new column
     #[command(
-        after_help = "Example:\n  sluice apply quillby_orders combine --columns service,technician --with ' by ' --into job --why \"one label for the board\""
+        after_help = "Example:\n  sluice clean quillby_orders combine --columns service,technician --with ' by ' --into job --why \"one label for the board\""
     )]
     Combine {
         /// The columns to join, comma-separated, in order
@@ -764,8 +848,8 @@ pub enum OpCommand {
     },
     /// Copy part of a column into a new column: by character position, or a regular expression's first group
     #[command(
-        after_help = "Examples:\n  sluice apply oxwater_orders extract --column 'order no' --regex '^OX-(\\d+)$' --into order_number --why \"numeric id\"\n  \
-        sluice apply quillby_orders extract --column opened --from 1 --len 7 --into month --why \"monthly totals\""
+        after_help = "Examples:\n  sluice clean oxwater_orders extract --column 'order no' --regex '^OX-(\\d+)$' --into order_number --why \"numeric id\"\n  \
+        sluice clean quillby_orders extract --column opened --from 1 --len 7 --into month --why \"monthly totals\""
     )]
     Extract {
         /// The column to read
@@ -788,7 +872,7 @@ pub enum OpCommand {
     },
     /// Rename columns; values and order stay
     #[command(
-        after_help = "Example:\n  sluice apply oxwater_orders rename \"order no=order_id\" date=opened --why \"one naming for all shops\""
+        after_help = "Example:\n  sluice clean oxwater_orders rename \"order no=order_id\" date=opened --why \"one naming for all shops\""
     )]
     Rename {
         /// OLD=NEW pairs
@@ -799,7 +883,7 @@ pub enum OpCommand {
     },
     /// Keep only the named columns, in the order named
     #[command(
-        after_help = "Example:\n  sluice apply quillby_orders select order_id,opened,service,parts_cost --why \"what the revenue report needs\""
+        after_help = "Example:\n  sluice clean quillby_orders select order_id,opened,service,parts_cost --why \"what the revenue report needs\""
     )]
     Select {
         /// The columns, comma-separated, in the order wanted
@@ -813,7 +897,7 @@ pub enum OpCommand {
         after_help = "The result is a new dataset (--as NAME) keyed by the --by columns, one row per group in the order the \
         groups first appear: the group values, count (rows), then sum_COL, mean_COL, min_COL, max_COL over non-blank values. \
         Sums are exact decimals; means are rounded half to even at 6 fraction digits (more when the values have more).\n\n\
-        Example:\n  sluice apply quillby_orders summarize --by technician --sum parts_cost --mean parts_cost --as parts_by_technician --why \"Q3 report\""
+        Example:\n  sluice clean quillby_orders summarize --by technician --sum parts_cost --mean parts_cost --as parts_by_technician --why \"Q3 report\""
     )]
     Summarize {
         /// The columns to group on, comma-separated
@@ -843,7 +927,7 @@ pub enum OpCommand {
     #[command(
         after_help = "Predicates: comparisons (= != < <= > >=; numeric when both sides are numbers), \
         `is [not] blank`, `[not] in (...)`, `matches 're'`, and, or, not, parentheses. Text in 'single quotes', \
-        odd column names in `backquotes`.\n\nExample:\n  sluice apply penguins keep \"body_mass_g is not blank and sex in ('female', 'male')\" --why \"complete records only\""
+        odd column names in `backquotes`.\n\nExample:\n  sluice clean penguins keep \"body_mass_g is not blank and sex in ('female', 'male')\" --why \"complete records only\""
     )]
     Keep {
         /// The predicate, e.g. "status != 'cancelled'"
@@ -855,7 +939,7 @@ pub enum OpCommand {
     #[command(
         after_help = "Predicates: comparisons (= != < <= > >=; numeric when both sides are numbers), \
         `is [not] blank`, `[not] in (...)`, `matches 're'`, and, or, not, parentheses. Text in 'single quotes', \
-        odd column names in `backquotes`.\n\nExample:\n  sluice apply quillby_orders drop \"status in ('cancelled', 'Cancelled', 'test')\" --why \"not revenue\""
+        odd column names in `backquotes`.\n\nExample:\n  sluice clean quillby_orders drop \"status in ('cancelled', 'Cancelled', 'test')\" --why \"not revenue\""
     )]
     Drop {
         /// The predicate, e.g. "status = 'cancelled'"
@@ -865,7 +949,7 @@ pub enum OpCommand {
     },
     /// Remove rows that repeat another row (whole rows, or equal values in --key columns)
     #[command(
-        after_help = "Examples:\n  sluice apply quillby_orders dedupe --why \"the till exports some orders twice\"\n  sluice apply quillby_orders dedupe --key order_id --keep last --why \"the last export of an order wins\""
+        after_help = "Examples:\n  sluice clean quillby_orders dedupe --why \"the till exports some orders twice\"\n  sluice clean quillby_orders dedupe --key order_id --keep last --why \"the last export of an order wins\""
     )]
     Dedupe {
         /// Compare only these columns (default: the whole row), comma-separated
@@ -880,7 +964,7 @@ pub enum OpCommand {
 }
 
 #[derive(Debug, Clone, Copy, ValueEnum)]
-pub enum GraphFormat {
+pub enum LineageFormat {
     /// Graphviz DOT text
     Dot,
     /// A self-contained SVG drawing
@@ -889,30 +973,20 @@ pub enum GraphFormat {
 
 #[derive(Debug, Args)]
 pub struct ReportArgs {
-    /// The version: NAME (latest), NAME@N or a hash prefix
-    #[arg(required_unless_present = "find")]
-    pub reference: Option<String>,
+    /// The version: NAME (latest), NAME:vN or blake3:HEX
+    pub reference: String,
     /// The form to write (default: from the -o file's extension, else html)
     #[arg(long, value_enum)]
     pub format: Option<ReportFormat>,
     /// The file to write
-    #[arg(
-        short = 'o',
-        long = "output",
-        value_name = "FILE",
-        required_unless_present = "find"
-    )]
-    pub output: Option<PathBuf>,
-    /// Instead of writing a report: find the audit entry that recorded the report in FILE (by
-    /// its BLAKE3 hash), to match a report to the store state that produced it
-    #[arg(long, value_name = "FILE", conflicts_with_all = ["reference", "output", "format", "replay"])]
-    pub find: Option<PathBuf>,
+    #[arg(short = 'o', long = "output", value_name = "FILE")]
+    pub output: PathBuf,
     /// How many changed cells to list per step (the counts stay complete)
     #[arg(long, value_name = "N", default_value_t = 5)]
     pub sample: usize,
-    /// Also compute the version again from its raw inputs and state the result
+    /// Also reproduce the version from its raw inputs and state the result
     #[arg(long)]
-    pub replay: bool,
+    pub reproduce: bool,
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
@@ -965,8 +1039,8 @@ pub enum CaseArg {
 }
 
 #[derive(Debug, Args)]
-pub struct DiffArgs {
-    /// The first version: NAME (latest), NAME@N or a hash prefix
+pub struct CompareArgs {
+    /// The first version: NAME (latest), NAME:vN or blake3:HEX
     pub from: String,
     /// The second version
     pub to: String,
@@ -974,13 +1048,36 @@ pub struct DiffArgs {
     /// else by order)
     #[arg(long, value_name = "COL[,COL..]", value_delimiter = ',')]
     pub key: Option<Vec<String>>,
-    /// Counts only: rows and changed cells per column
+    /// Counts only: changed cells per column, rows kept, added and removed, and how rows
+    /// were paired
     #[arg(long)]
-    pub stat: bool,
+    pub counts: bool,
     /// Print JSON (fields: examples/reference.md, "JSON output"; schema/output/)
     #[arg(long)]
     pub json: bool,
     /// List at most N changes (the counts stay complete)
     #[arg(long, value_name = "N")]
     pub limit: Option<usize>,
+}
+
+#[derive(Debug, Args)]
+pub struct TimelineArgs {
+    /// Only steps that read or made versions of this dataset
+    #[arg(long, value_name = "NAME")]
+    pub dataset: Option<String>,
+    /// Only steps by this person (their name, or their e-mail address)
+    #[arg(long, value_name = "PERSON")]
+    pub by: Option<String>,
+    /// Only steps recorded at or after this time (ISO 8601 date or UTC time)
+    #[arg(long, value_name = "TIME")]
+    pub since: Option<String>,
+    /// Only steps recorded at or before this time (a date includes its whole day)
+    #[arg(long, value_name = "TIME")]
+    pub until: Option<String>,
+    /// Only the latest N steps (still shown oldest first)
+    #[arg(long, value_name = "N")]
+    pub limit: Option<usize>,
+    /// Print JSON (fields: examples/reference.md, "JSON output"; schema/output/)
+    #[arg(long)]
+    pub json: bool,
 }

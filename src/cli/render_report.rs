@@ -430,7 +430,7 @@ pub fn markdown(r: &Report) -> String {
     );
     let _ = writeln!(
         o,
-        "Any BLAKE3 tool can check a file against these hashes; `sluice cat VERSION` gives a version's exact bytes."
+        "Any BLAKE3 tool can check a file against these hashes; `sluice retrieve VERSION` gives a version's exact bytes."
     );
     o
 }
@@ -764,7 +764,7 @@ pub fn html(r: &Report) -> String {
             }
             let _ = writeln!(
                 o,
-                "</tbody></table><p class=\"muted\">The first {} changed cells; <code>sluice diff</code> lists them all.</p>",
+                "</tbody></table><p class=\"muted\">The first {} changed cells; <code>sluice compare</code> lists them all.</p>",
                 s.sample.len()
             );
         }
@@ -851,7 +851,7 @@ pub fn html(r: &Report) -> String {
     );
     let _ = writeln!(
         o,
-        "</tbody></table>\n<p class=\"muted\">Any BLAKE3 tool can check a file against these hashes; <code>sluice cat VERSION</code> gives a version's exact bytes.</p>\n</section>"
+        "</tbody></table>\n<p class=\"muted\">Any BLAKE3 tool can check a file against these hashes; <code>sluice retrieve VERSION</code> gives a version's exact bytes.</p>\n</section>"
     );
     let _ = writeln!(
         o,

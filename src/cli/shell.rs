@@ -31,36 +31,38 @@ pub fn completions(shell: ShellArg, out: &mut dyn Write) -> anyhow::Result<()> {
 const TOP_PAGE_EXTRA: &str = r#".SH "EXIT STATUS"
 .TP
 \fB0\fR
-success (also a \fBdiff\fR that finds differences)
+success (also a \fBcompare\fR that finds differences)
 .TP
 \fB1\fR
 the data, the store or the system failed: \fBverify\fR found damage, a damaged object was
-read, a check or a plan's gate failed, \fBreplay\fR could not show that a version comes from
-its raw data, \fBexplain\fR computed another value than the stored one, the disk is full
+read, an inspection failed (at a plan's hold point, or on its own), \fBreproduce\fR could not
+show that a version comes from its raw data, \fBexplain\fR computed another value than the
+stored one, the disk is full
 .TP
 \fB2\fR
 a usage or input error: bad arguments or option values, a refused file, an unknown version
 or dataset, no store
 .PP
-\fBsluice exec\fR exits with a failing outside command's own status.
+\fBsluice capture\fR exits with a failing outside command's own status.
 .SH ENVIRONMENT
 .TP
 \fBSLUICE_STORE\fR
 the store to use, as \fB\-\-store\fR
 .TP
-\fBSLUICE_AGENT\fR
-who is acting, as \fB\-\-agent\fR
+\fBSLUICE_PERSON\fR, \fBSLUICE_EMAIL\fR
+who is acting, as \fB\-\-person\fR and \fB\-\-email\fR (before the store's setting, made
+with \fBsluice identity\fR)
 .TP
 \fBNO_COLOR\fR
 when set and not empty, no colour unless \fB\-\-color always\fR is given
 .SH FILES
 .TP
-\fI.sluice/\fR
+\fIsluice-store/\fR
 the store: \fIlineage.db\fR (SQLite) and \fIobjects/\fR (every version's bytes, named by
-their BLAKE3 hash); it holds full copies of the raw data taken in
+their BLAKE3 hash); it holds full copies of the raw data received
 .SH NOTES
 sluice documents what was done to data, by whom, when and why. That is not legal advice; follow
-local rules and your organisation's compliance staff.
+local rules and your organisation's compliance and data-protection staff.
 "#;
 
 /// Roff input is read as ASCII by troff unless a preprocessor converts it; characters beyond

@@ -271,8 +271,8 @@ mod bar_tests {
             "taking in q3.csv [#####---------------]  25%  50.0 of 200.0 MB"
         );
         assert_eq!(
-            bar_line("replaying q3_by_shop@1", 3, Some(20), Unit::Steps, 78),
-            "replaying q3_by_shop@1 [###-----------------]  15%  step 3 of 20"
+            bar_line("reproducing q3_by_shop:v1", 3, Some(20), Unit::Steps, 78),
+            "reproducing q3_by_shop:v1 [###-----------------]  15%  step 3 of 20"
         );
         assert_eq!(
             bar_line("reading x", 1_500_000, None, Unit::Bytes, 78),

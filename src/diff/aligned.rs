@@ -407,7 +407,7 @@ fn confirm_by_values(
             };
             let rb = RowRef::from(&r);
             let Some(ra) = cursor.advance(Some(x), from_rows) else {
-                return Err(ErrorKind::Database(format!(
+                return Err(ErrorKind::Inconsistent(format!(
                     "{} has fewer rows than the store records; run `sluice verify`",
                     a.label()
                 ))

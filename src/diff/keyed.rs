@@ -272,7 +272,7 @@ pub(super) fn run(
 }
 
 fn lost_row(a: &Version, b: &Version) -> Error {
-    ErrorKind::Database(format!(
+    ErrorKind::Inconsistent(format!(
         "{} or {} has fewer rows than the store records; run `sluice verify`",
         a.label(),
         b.label()

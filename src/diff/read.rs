@@ -15,7 +15,7 @@ use crate::table::{for_each_record, RawRecord, ReadSettings};
 
 fn parse_hash(hex: &str) -> Result<Hash> {
     hex.parse()
-        .map_err(|e: String| Error::from(ErrorKind::Database(e)))
+        .map_err(|e: String| Error::from(ErrorKind::Inconsistent(e)))
 }
 
 /// A reader that hashes what passes through it (and reports how far it is, when asked to).
@@ -94,7 +94,7 @@ pub fn row_index(objects: &Objects, v: &Version) -> Result<(Vec<u64>, Vec<u64>)>
         progress: None,
     };
     let damaged = |why: &str| {
-        Error::from(ErrorKind::Database(format!(
+        Error::from(ErrorKind::Inconsistent(format!(
             "the row index of {} is damaged ({why}); run `sluice verify`",
             v.label()
         )))
@@ -424,7 +424,7 @@ impl RawRows {
     }
 
     fn short(&self) -> Error {
-        ErrorKind::Database(format!(
+        ErrorKind::Inconsistent(format!(
             "the bytes of {} do not match its row index; run `sluice verify`",
             self.label
         ))

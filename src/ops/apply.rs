@@ -33,7 +33,7 @@ use crate::store::{NewStep, NewVersion, Store};
 use crate::table::write::{canonical_dialect, CanonicalWriter, Written};
 use crate::table::{for_each_record, RawRecord, ReadSettings};
 
-/// What `sluice apply` was asked to do.
+/// What `sluice clean` was asked to do.
 #[derive(Debug, Clone)]
 pub struct ApplyOptions {
     pub op: Operation,
@@ -117,7 +117,7 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
     match apply_to(store, input, opts, Mode::Record)? {
         Done::Outcome(o) => Ok(o),
         Done::Deferred(_) => {
-            Err(ErrorKind::Database("a step meant to be recorded was deferred".into()).into())
+            Err(ErrorKind::Internal("a step meant to be recorded was deferred".into()).into())
         }
     }
 }
@@ -130,7 +130,7 @@ pub fn apply(store: &mut Store, reference: &str, opts: &ApplyOptions) -> Result<
 pub fn compute(store: &mut Store, input: Version, opts: &ApplyOptions) -> Result<Pending> {
     match apply_to(store, input, opts, Mode::Defer)? {
         Done::Deferred(p) => Ok(p),
-        Done::Outcome(_) => Err(ErrorKind::Database("a deferred step was recorded".into()).into()),
+        Done::Outcome(_) => Err(ErrorKind::Internal("a deferred step was recorded".into()).into()),
     }
 }
 
@@ -304,7 +304,7 @@ fn apply_to(store: &mut Store, input: Version, opts: &ApplyOptions, mode: Mode) 
                 continue;
             }
             let text = std::str::from_utf8(old).map_err(|_| {
-                Error::from(ErrorKind::Database(format!(
+                Error::from(ErrorKind::Inconsistent(format!(
                     "{label} holds invalid UTF-8 in data row {} column {}; run `sluice verify`",
                     in_row + 1,
                     input.header[c]
@@ -885,7 +885,7 @@ pub(super) fn record(
                     }
                 }
                 None => {
-                    return Err(Error::from(ErrorKind::Database(
+                    return Err(Error::from(ErrorKind::Inconsistent(
                         "the mapping table was recorded by another command meanwhile; run the step again".into(),
                     )))
                 }
@@ -913,7 +913,7 @@ pub(super) fn record(
     let version = store
         .lineage
         .version_by_id(version_id)?
-        .ok_or_else(|| Error::from(ErrorKind::Database("the new version vanished".into())))?;
+        .ok_or_else(|| Error::from(ErrorKind::Inconsistent("the new version vanished".into())))?;
     Ok(Done::Outcome(ApplyOutcome::Recorded {
         input,
         version,
@@ -952,7 +952,7 @@ fn replayed(
     if matches {
         let hash: crate::hash::Hash = out_hash
             .parse()
-            .map_err(|e: String| Error::from(ErrorKind::Database(e)))?;
+            .map_err(|e: String| Error::from(ErrorKind::Inconsistent(e)))?;
         if !store.objects.exists(&hash) {
             written.table.finish().map_err(store_io)?;
             restored = true;
@@ -1006,7 +1006,7 @@ fn each_row(
 ) -> Result<()> {
     let h: Hash = hash
         .parse()
-        .map_err(|e: String| Error::from(ErrorKind::Database(e)))?;
+        .map_err(|e: String| Error::from(ErrorKind::Inconsistent(e)))?;
     each_row_from(
         store.objects.open_raw(&h)?,
         hash,
@@ -1028,7 +1028,7 @@ fn each_row_from(
 ) -> Result<()> {
     let input_hash: Hash = hash
         .parse()
-        .map_err(|e: String| Error::from(ErrorKind::Database(e)))?;
+        .map_err(|e: String| Error::from(ErrorKind::Inconsistent(e)))?;
     let mut checked = Checked {
         inner: reader,
         hasher: blake3::Hasher::new(),
@@ -1155,7 +1155,7 @@ impl Table {
             TableSource::Version(_) => store.objects.open_raw(
                 &hash
                     .parse()
-                    .map_err(|e: String| Error::from(ErrorKind::Database(e)))?,
+                    .map_err(|e: String| Error::from(ErrorKind::Inconsistent(e)))?,
             )?,
             // Not stored under its name yet: read the file itself, checked against its hash.
             TableSource::Pending(p) => {

@@ -20,6 +20,11 @@
 //! value; anchor it with `^` and `$` to match the whole value.
 //!
 //! Errors name the 1-based character column of the predicate where they occur.
+//!
+//! Hostile input is bounded: parentheses and `not` may nest at most [`MAX_NESTING`] deep (a
+//! refusal names the column where the limit is passed), chains of `and` and `or` are kept as
+//! flat lists, so parsing is linear in the text and neither parsing, evaluating nor dropping a
+//! predicate recurses deeper than the nesting.
 
 use std::cmp::Ordering;
 
@@ -48,8 +53,25 @@ struct Lexed {
     col: usize,
 }
 
+/// How deep parentheses and `not` may nest. Far beyond any predicate written by hand; it keeps
+/// the parser and the evaluator (which recurse once per level) well inside a thread's stack.
+pub const MAX_NESTING: usize = 200;
+
 fn err(text: &str, col: usize, what: &str) -> Error {
-    Error::usage(format!("predicate \"{text}\", column {col}: {what}"))
+    // A long predicate is shown by the part around the column, so a refusal stays readable.
+    let n = text.chars().count();
+    let shown = if n <= 120 {
+        text.to_string()
+    } else {
+        let from = col.saturating_sub(41);
+        let part: String = text.chars().skip(from).take(80).collect();
+        format!(
+            "{}{part}{}",
+            if from > 0 { "..." } else { "" },
+            if from + 80 < n { "..." } else { "" }
+        )
+    };
+    Error::usage(format!("predicate \"{shown}\", column {col}: {what}"))
 }
 
 fn lex(text: &str) -> Result<Vec<Lexed>> {
@@ -168,8 +190,10 @@ enum Value {
 
 #[derive(Debug, Clone)]
 enum Node {
-    Or(Box<Node>, Box<Node>),
-    And(Box<Node>, Box<Node>),
+    /// Two or more alternatives, in order.
+    Or(Vec<Node>),
+    /// Two or more conditions, in order.
+    And(Vec<Node>),
     Not(Box<Node>),
     Blank(Value),
     In(Value, Vec<Value>),
@@ -188,6 +212,10 @@ struct Parser<'a> {
     toks: Vec<Lexed>,
     at: usize,
     text: &'a str,
+    /// The text's length in characters (the column just past its end is this + 1).
+    n_chars: usize,
+    /// Parentheses and `not` open around the current position.
+    depth: usize,
     header: &'a [String],
 }
 
@@ -202,12 +230,21 @@ impl Parser<'_> {
         self.toks.get(self.at)
     }
 
-    fn end_col(&self) -> usize {
-        self.text.chars().count() + 1
+    fn col(&self) -> usize {
+        self.peek().map_or(self.n_chars + 1, |l| l.col)
     }
 
-    fn col(&self) -> usize {
-        self.peek().map_or(self.end_col(), |l| l.col)
+    /// One more level of nesting at `col`, refused past [`MAX_NESTING`].
+    fn enter(&mut self, col: usize) -> Result<()> {
+        self.depth += 1;
+        if self.depth > MAX_NESTING {
+            return Err(err(
+                self.text,
+                col,
+                &format!("parentheses and \"not\" nest more than {MAX_NESTING} deep here; write the predicate with less nesting"),
+            ));
+        }
+        Ok(())
     }
 
     fn eat_kw(&mut self, kw: &str) -> bool {
@@ -230,31 +267,45 @@ impl Parser<'_> {
     }
 
     fn expr(&mut self) -> Result<Node> {
-        let mut left = self.term()?;
+        let mut items = vec![self.term()?];
         while self.eat_kw("or") {
-            let right = self.term()?;
-            left = Node::Or(Box::new(left), Box::new(right));
+            items.push(self.term()?);
         }
-        Ok(left)
+        if items.len() == 1 {
+            if let Some(only) = items.pop() {
+                return Ok(only);
+            }
+        }
+        Ok(Node::Or(items))
     }
 
     fn term(&mut self) -> Result<Node> {
-        let mut left = self.factor()?;
+        let mut items = vec![self.factor()?];
         while self.eat_kw("and") {
-            let right = self.factor()?;
-            left = Node::And(Box::new(left), Box::new(right));
+            items.push(self.factor()?);
         }
-        Ok(left)
+        if items.len() == 1 {
+            if let Some(only) = items.pop() {
+                return Ok(only);
+            }
+        }
+        Ok(Node::And(items))
     }
 
     fn factor(&mut self) -> Result<Node> {
+        let col = self.col();
         if self.eat_kw("not") {
-            return Ok(Node::Not(Box::new(self.factor()?)));
+            self.enter(col)?;
+            let inner = self.factor()?;
+            self.depth -= 1;
+            return Ok(Node::Not(Box::new(inner)));
         }
         if self.peek().is_some_and(|l| l.tok == Tok::LParen) {
+            self.enter(col)?;
             self.at += 1;
             let e = self.expr()?;
             self.expect(Tok::RParen, "')' to close the '('")?;
+            self.depth -= 1;
             return Ok(e);
         }
         self.test()
@@ -379,6 +430,8 @@ impl Predicate {
             toks,
             at: 0,
             text,
+            n_chars: text.chars().count(),
+            depth: 0,
             header,
         };
         let root = p.expr()?;
@@ -429,8 +482,8 @@ fn compare(a: &[u8], b: &[u8]) -> Ordering {
 
 fn eval(n: &Node, r: &RawRecord<'_>, is_blank: &dyn Fn(&[u8]) -> bool) -> bool {
     match n {
-        Node::Or(a, b) => eval(a, r, is_blank) || eval(b, r, is_blank),
-        Node::And(a, b) => eval(a, r, is_blank) && eval(b, r, is_blank),
+        Node::Or(items) => items.iter().any(|a| eval(a, r, is_blank)),
+        Node::And(items) => items.iter().all(|a| eval(a, r, is_blank)),
         Node::Not(a) => !eval(a, r, is_blank),
         Node::Blank(v) => get(v, r, is_blank).is_empty(),
         Node::In(v, items) => {
@@ -512,6 +565,39 @@ mod tests {
         // Keywords are case-blind; column names are not.
         assert!(check("status = 'cancelled' OR amount > 1", row));
         assert!(Predicate::parse("STATUS = 'x'", &header()).is_err());
+    }
+
+    #[test]
+    fn deep_nesting_is_refused_with_its_column_and_long_chains_stay_flat() {
+        let h = header();
+        let ok = format!(
+            "{}status = 'x'{}",
+            "(".repeat(MAX_NESTING),
+            ")".repeat(MAX_NESTING)
+        );
+        assert!(Predicate::parse(&ok, &h).is_ok());
+        for deep in [
+            format!("{}status = 'x'{}", "(".repeat(10_300), ")".repeat(10_300)),
+            format!("{}status = 'x'", "not ".repeat(40_000)),
+        ] {
+            let e = Predicate::parse(&deep, &h).unwrap_err().to_string();
+            assert!(e.contains("nest more than 200 deep"), "{e}");
+            assert!(
+                e.len() < 400,
+                "the refusal shows only part of the text: {e}"
+            );
+        }
+        let e = Predicate::parse(&format!("{}status = 'x'", "not ".repeat(201)), &h)
+            .unwrap_err()
+            .to_string();
+        // The 201st `not` starts at character 801.
+        assert!(e.contains("column 801:"), "{e}");
+        // 40,000 alternatives: one flat list, evaluated without deep recursion.
+        let wide = vec!["status = 'nope'"; 40_000].join(" or ") + " or status = 'cancelled'";
+        assert!(check(&wide, "cancelled,1,Quillby,"));
+        assert!(!check(&wide, "open,1,Quillby,"));
+        let long_and = vec!["amount > 0"; 40_000].join(" and ");
+        assert!(check(&long_and, "open,1,Quillby,"));
     }
 
     #[test]

@@ -241,7 +241,7 @@ pub(super) fn run(
             .map(|(row, col, v)| format!("data row {} {col} \"{v}\"", row + 1))
             .collect();
         return Err(ErrorKind::Data(format!(
-            "{label}: {} value{} to aggregate {} not plain numbers: {}{}; read them first with `sluice apply {label} number --columns ...`",
+            "{label}: {} value{} to aggregate {} not plain numbers: {}{}; read them first with `sluice clean {label} number --columns ...`",
             bad.len(),
             if bad.len() == 1 { "" } else { "s" },
             if bad.len() == 1 { "is" } else { "are" },

@@ -58,13 +58,13 @@ pub(super) struct RecordedOutput {
 impl RecordedCode {
     pub fn of(step: &Step) -> Result<RecordedCode> {
         let code = step.code.clone().ok_or_else(|| {
-            Error::from(ErrorKind::Database(format!(
+            Error::from(ErrorKind::Inconsistent(format!(
                 "command step {} records no command line",
                 step.id
             )))
         })?;
         serde_json::from_value(code).map_err(|e| {
-            ErrorKind::Database(format!(
+            ErrorKind::Inconsistent(format!(
                 "step {} holds a command record this build cannot read ({e})",
                 step.id
             ))
@@ -154,7 +154,7 @@ pub(super) fn cannot_run(rec: &RecordedCode) -> Option<(&'static str, String)> {
             return Some((
                 "refused",
                 format!(
-                    "the recorded command line names the absolute output path {} itself rather than through {{out:{}}}; running it again would overwrite that file, so replay does not run it",
+                    "the recorded command line names the absolute output path {} itself rather than through {{out:{}}}; running it again would overwrite that file, so reproduce does not run it",
                     o.file, o.name
                 ),
             ));
@@ -171,7 +171,7 @@ pub(super) fn rerun(store: &mut Store, step: &Step, outputs: &[Version]) -> Resu
     }
     let (Some(git), Some(commit)) = (&rec.git, rec.git.as_ref().and_then(|g| g.commit.clone()))
     else {
-        return Err(ErrorKind::Database("checked above".into()).into());
+        return Err(ErrorKind::Inconsistent("checked above".into()).into());
     };
     let mut warnings = Vec::new();
     if git.dirty {
@@ -249,7 +249,7 @@ pub(super) fn rerun(store: &mut Store, step: &Step, outputs: &[Version]) -> Resu
         let hash: Hash = i
             .hash
             .parse()
-            .map_err(|e: String| Error::from(ErrorKind::Database(e)))?;
+            .map_err(|e: String| Error::from(ErrorKind::Inconsistent(e)))?;
         let mut f = fs::File::create(&path).map_err(|e| Error::io(&path, e))?;
         if let Err(e) = store.objects.copy_to(&hash, &mut f) {
             return Ok(Rerun::stop(
@@ -376,7 +376,7 @@ pub(super) fn rerun(store: &mut Store, step: &Step, outputs: &[Version]) -> Resu
                     "run again from commit {}, the command wrote other bytes for {} ({}) than it recorded",
                     &commit[..commit.len().min(12)],
                     v.label(),
-                    &hash.hex()[..12]
+                    crate::model::short_hash(&hash.hex())
                 )),
                 warnings,
                 computed_hash: Some(hash.hex()),

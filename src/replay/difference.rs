@@ -78,10 +78,7 @@ pub fn against_file(store: &mut Store, recorded: &Version, computed: &Path) -> R
         has_header: true,
         encoding: None,
         null_tokens: recorded.null_tokens.clone(),
-        agent: Agent {
-            identity: "sluice replay".into(),
-            source: "builtin".into(),
-        },
+        agent: Agent::new("sluice reproduce", None, "builtin"),
     };
     // The draft's objects go to a stage of their own, removed again afterwards: the store is
     // left as it was.

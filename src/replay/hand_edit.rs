@@ -110,7 +110,7 @@ pub(super) fn reapply(
     let mut changed: Vec<Vec<u64>> = vec![Vec::new(); output.header.len()];
     for (column, rows) in provenance::cell_changes_rows(store, output)? {
         let Some(c) = output.header.iter().position(|h| *h == column) else {
-            return Err(ErrorKind::Database(format!(
+            return Err(ErrorKind::Inconsistent(format!(
                 "the provenance of step {step_id} names a column \"{column}\" that {} does not have",
                 output.label()
             ))

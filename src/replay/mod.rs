@@ -91,7 +91,7 @@ pub struct PlannedCommand {
 fn object_state(store: &Store, hex: &str) -> Result<&'static str> {
     let hash: Hash = hex
         .parse()
-        .map_err(|e: String| crate::Error::from(ErrorKind::Database(e)))?;
+        .map_err(|e: String| crate::Error::from(ErrorKind::Inconsistent(e)))?;
     Ok(match store.objects.check(&hash) {
         Ok(None) => "intact",
         Ok(Some(_)) => "damaged",
@@ -102,7 +102,7 @@ fn object_state(store: &Store, hex: &str) -> Result<&'static str> {
 
 fn load_step(store: &Store, id: i64) -> Result<Step> {
     store.lineage.step(id)?.ok_or_else(|| {
-        crate::Error::from(ErrorKind::Database(format!(
+        crate::Error::from(ErrorKind::Inconsistent(format!(
             "step {id} is missing; run `sluice verify`"
         )))
     })
@@ -138,7 +138,7 @@ pub fn replay(store: &mut Store, reference: &str, options: &ReplayOptions) -> Re
     let mut steps = Vec::new();
     let mut reproduced = true;
     let mut progress = crate::progress::Task::begin(
-        || format!("replaying {}", target.label()),
+        || format!("reproducing {}", target.label()),
         Some(seen.len() as u64),
         crate::progress::Unit::Steps,
     );
@@ -175,7 +175,7 @@ pub fn replay(store: &mut Store, reference: &str, options: &ReplayOptions) -> Re
                 entry.result = format!("raw_{state}");
                 if state != "intact" {
                     entry.detail = Some(format!(
-                        "the raw data of {} is {state}; replay can only recompute what steps made from raw data, not the raw data itself",
+                        "the raw data of {} is {state}; reproduce can only recompute what steps made from raw data, not the raw data itself",
                         out.label()
                     ));
                 }
@@ -196,7 +196,7 @@ pub fn replay(store: &mut Store, reference: &str, options: &ReplayOptions) -> Re
                 let state = object_state(store, &out.hash)?;
                 entry.result = "not_rerun".into();
                 entry.detail = Some(format!(
-                    "a {} step is outside work, which replay runs again only with --allow-exec; its recorded output is {state}",
+                    "a {} step is outside work, which reproduce runs again only with --allow-exec; its recorded output is {state}",
                     other.as_str().replace('_', " ")
                 ));
                 reproduced = false;
@@ -225,8 +225,9 @@ fn converted_intake(
     out: &Version,
     entry: &mut ReplayedStep,
 ) -> Result<bool> {
-    let conv = crate::convert::conversion_of(step)
-        .ok_or_else(|| crate::Error::from(ErrorKind::Database("a vanished conversion".into())))?;
+    let conv = crate::convert::conversion_of(step).ok_or_else(|| {
+        crate::Error::from(ErrorKind::Inconsistent("a vanished conversion".into()))
+    })?;
     let short = &conv.raw.hash[..12.min(conv.raw.hash.len())];
     let state = object_state(store, &conv.raw.hash)?;
     if state != "intact" {
@@ -259,7 +260,7 @@ fn revert_step(
 ) -> Result<bool> {
     let inputs = store.lineage.step_input_versions(step.id)?;
     let Some((_, base)) = inputs.iter().find(|(role, _)| role == "input") else {
-        return Err(ErrorKind::Database(format!("step {} records no input", step.id)).into());
+        return Err(ErrorKind::Inconsistent(format!("step {} records no input", step.id)).into());
     };
     entry.computed_hash = Some(base.hash.clone());
     if base.hash != out.hash {
@@ -305,7 +306,7 @@ fn hand_edit_step(
     }
     let inputs = store.lineage.step_input_versions(step.id)?;
     let Some((_, input)) = inputs.iter().find(|(role, _)| role == "input") else {
-        return Err(ErrorKind::Database(format!("step {} records no input", step.id)).into());
+        return Err(ErrorKind::Inconsistent(format!("step {} records no input", step.id)).into());
     };
     match hand_edit::reapply(store, step.id, input, out)? {
         hand_edit::Reapplied::Same => {
@@ -350,13 +351,13 @@ fn built_in(
 ) -> Result<bool> {
     let id = step.id;
     let op: Operation = serde_json::from_value(step.params.clone()).map_err(|e| {
-        crate::Error::from(ErrorKind::Database(format!(
+        crate::Error::from(ErrorKind::Inconsistent(format!(
             "step {id} holds parameters this build cannot read ({e})"
         )))
     })?;
     let inputs = store.lineage.step_input_versions(id)?;
     let Some((_, main)) = inputs.iter().find(|(role, _)| role == "input") else {
-        return Err(ErrorKind::Database(format!("step {id} records no input")).into());
+        return Err(ErrorKind::Inconsistent(format!("step {id} records no input")).into());
     };
     // Tables and other sources by their exact recorded versions.
     let op = match inputs.iter().find(|(role, _)| role != "input") {
@@ -367,10 +368,7 @@ fn built_in(
         op,
         reason: step.reason.clone().unwrap_or_else(|| "replay".into()),
         output_dataset: Some(out.dataset.clone()),
-        agent: Agent {
-            identity: "sluice replay".into(),
-            source: "builtin".into(),
-        },
+        agent: Agent::new("sluice reproduce", None, "builtin"),
         map_table_file: None,
         repeats: None,
         replay: Some(ReplayCheck {
@@ -403,9 +401,9 @@ fn built_in(
             }
             entry.detail = Some(format!(
                 "the step gives other bytes ({}) than it recorded for {} ({})",
-                &output_hash[..12],
+                crate::model::short_hash(&output_hash),
                 out.label(),
-                &out.hash[..12]
+                crate::model::short_hash(&out.hash)
             ));
             // The recomputed bytes, to compare: the step is computed once more, told that its
             // own result is the one expected, so that apply writes them as an object.
@@ -421,7 +419,7 @@ fn built_in(
             }
             Ok(true)
         }
-        Ok(_) => Err(ErrorKind::Database("a replayed step was recorded".into()).into()),
+        Ok(_) => Err(ErrorKind::Inconsistent("a replayed step was recorded".into()).into()),
         Err(e) => {
             entry.result = "differs".into();
             entry.detail = Some(format!("the step cannot run again: {e}"));
@@ -443,13 +441,13 @@ fn computed_difference(
 ) -> Result<Difference> {
     let hash: Hash = computed
         .parse()
-        .map_err(|e: String| crate::Error::from(ErrorKind::Database(e)))?;
+        .map_err(|e: String| crate::Error::from(ErrorKind::Inconsistent(e)))?;
     let stage = store.begin_stage("replay")?;
     let tmp = stage.with_extension("csv");
     let copied = (|| {
         match apply::apply(store, &input.label(), opts)? {
             ApplyOutcome::Replayed { .. } => {}
-            _ => return Err(ErrorKind::Database("a replayed step was recorded".into()).into()),
+            _ => return Err(ErrorKind::Inconsistent("a replayed step was recorded".into()).into()),
         }
         let mut f = std::fs::File::create(&tmp).map_err(|e| crate::Error::io(&tmp, e))?;
         store.objects.copy_to(&hash, &mut f)?;

@@ -9,6 +9,7 @@ use std::time::Duration;
 use rusqlite::{params, Connection, OpenFlags, OptionalExtension, TransactionBehavior};
 use serde_json::Value;
 
+use super::audit::{Key, Selector};
 use crate::error::{Error, ErrorKind, Result};
 use crate::model::{
     canonical_json, Agent, AuditEntry, CellChange, ColumnProfile, Dataset, Dialect, Drop,
@@ -35,7 +36,7 @@ pub struct Lineage {
 }
 
 pub(super) fn db_err(e: rusqlite::Error) -> Error {
-    ErrorKind::Database(e.to_string().to_lowercase()).into()
+    ErrorKind::Sqlite(e.to_string().to_lowercase()).into()
 }
 
 fn corrupt(path: &Path, e: rusqlite::Error) -> Error {
@@ -88,7 +89,7 @@ impl Lineage {
             .query_row("PRAGMA journal_mode = WAL", [], |r| r.get(0))
             .map_err(|e| corrupt(&path, e))?;
         if !mode.eq_ignore_ascii_case("wal") {
-            return Err(ErrorKind::Database(format!(
+            return Err(ErrorKind::Sqlite(format!(
                 "could not switch the lineage database to WAL mode (got {mode})"
             ))
             .into());
@@ -130,7 +131,7 @@ impl Lineage {
         for (v, sql) in MIGRATIONS {
             if *v > now {
                 tx.execute_batch(sql).map_err(|e| {
-                    Error::from(ErrorKind::Database(format!(
+                    Error::from(ErrorKind::Sqlite(format!(
                         "applying schema migration {v}: {}",
                         e.to_string().to_lowercase()
                     )))
@@ -157,8 +158,19 @@ impl Lineage {
             .conn
             .transaction_with_behavior(TransactionBehavior::Immediate)
             .map_err(db_err)?;
-        let mut t = Tx { tx };
+        let mut t = Tx {
+            tx,
+            journal: Vec::new(),
+        };
         let out = f(&mut t)?;
+        if !t.journal.is_empty() {
+            // Every row a command writes is committed to by one of its audit entries.
+            return Err(ErrorKind::Internal(
+                "rows were written without an audit entry to commit to them; nothing was recorded"
+                    .into(),
+            )
+            .into());
+        }
         t.tx.commit().map_err(db_err)?;
         Ok(out)
     }
@@ -517,7 +529,7 @@ impl Lineage {
         let rows = st
             .query_map(params![step_id], |r| {
                 Ok(format!(
-                    "{}@{}",
+                    "{}:v{}",
                     r.get::<_, String>(0)?,
                     r.get::<_, i64>(1)?
                 ))
@@ -736,7 +748,7 @@ impl Lineage {
                 JOIN objects o ON o.hash = v.row_index WHERE o.kind != 'row_index'",
             |r| {
                 Ok(format!(
-                    "version {}@{}: its {} object is recorded as kind {}",
+                    "version {}:v{}: its {} object is recorded as kind {}",
                     r.get::<_, String>(0)?,
                     r.get::<_, i64>(1)?,
                     r.get::<_, String>(3)?,
@@ -760,6 +772,32 @@ impl Lineage {
         Ok(out)
     }
 
+    /// The rows a committed selector names now, as (rowid, canonical encoding); an error when
+    /// the table is gone or unreadable.
+    pub fn selected_rows(&self, sel: &Selector) -> Result<Vec<(i64, Vec<u8>)>> {
+        super::audit::select_rows(&self.conn, sel)
+    }
+
+    /// Every rowid of one of [`super::audit::TABLES`].
+    pub fn rowids(&self, table: &str) -> Result<Vec<i64>> {
+        super::audit::rowids(&self.conn, table)
+    }
+
+    /// The tables, views and triggers the database holds (names and types), besides SQLite's own.
+    pub fn schema_objects(&self) -> Result<Vec<(String, String)>> {
+        let mut st = self
+            .conn
+            .prepare(
+                "SELECT type, name FROM sqlite_master WHERE type IN ('table', 'view', 'trigger')
+                 AND name NOT LIKE 'sqlite\\_%' ESCAPE '\\' ORDER BY name",
+            )
+            .map_err(db_err)?;
+        let rows = st
+            .query_map([], |r| Ok((r.get(0)?, r.get(1)?)))
+            .map_err(db_err)?;
+        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+    }
+
     /// Runs a query without parameters and renders each row as a line.
     fn strings(
         &self,
@@ -777,7 +815,7 @@ fn parse_key(v: Option<String>) -> Option<Vec<String>> {
 }
 
 fn bad_field(field: &str, value: &str) -> Error {
-    ErrorKind::Database(format!(
+    ErrorKind::Inconsistent(format!(
         "unexpected value {value:?} in {field}; run `sluice verify`"
     ))
     .into()
@@ -785,7 +823,7 @@ fn bad_field(field: &str, value: &str) -> Error {
 
 fn parse_json_field<T: serde::de::DeserializeOwned>(text: &str, field: &str) -> Result<T> {
     serde_json::from_str(text).map_err(|e| {
-        ErrorKind::Database(format!(
+        ErrorKind::Inconsistent(format!(
             "{field} holds malformed JSON ({e}); run `sluice verify`"
         ))
         .into()
@@ -838,27 +876,36 @@ pub struct NewVersion<'a> {
     pub created_at: &'a str,
 }
 
-/// An open write transaction.
+/// An open write transaction. `journal` names the rows written since the last audit entry; the
+/// next entry commits to them (see [`super::audit`]).
 pub struct Tx<'c> {
     tx: rusqlite::Transaction<'c>,
+    journal: Vec<Selector>,
 }
 
 impl Tx<'_> {
-    fn agent_id(&self, agent: &Agent) -> Result<i64> {
+    fn wrote(&mut self, table: &'static str, by: &'static str, key: Key) {
+        self.journal.push(Selector::one(table, by, key));
+    }
+
+    fn agent_id(&mut self, agent: &Agent) -> Result<i64> {
         self.tx
             .execute(
                 "INSERT INTO agents (identity, kind, source) VALUES (?1, 'person', ?2)
                  ON CONFLICT (identity) DO NOTHING",
-                params![agent.identity, agent.source],
+                params![agent.identity(), agent.source],
             )
             .map_err(db_err)?;
-        self.tx
+        let id = self
+            .tx
             .query_row(
                 "SELECT id FROM agents WHERE identity = ?1",
-                params![agent.identity],
+                params![agent.identity()],
                 |r| r.get(0),
             )
-            .map_err(db_err)
+            .map_err(db_err)?;
+        self.wrote("agents", "id", Key::Int(id));
+        Ok(id)
     }
 
     pub fn insert_step(&mut self, s: &NewStep<'_>) -> Result<i64> {
@@ -893,6 +940,8 @@ impl Tx<'_> {
             )
             .map_err(db_err)?;
         let step_id = self.tx.last_insert_rowid();
+        self.wrote("steps", "id", Key::Int(step_id));
+        self.wrote("step_inputs", "step_id", Key::Int(step_id));
         for (pos, (vid, role)) in s.inputs.iter().enumerate() {
             self.tx
                 .execute(
@@ -912,6 +961,7 @@ impl Tx<'_> {
                 params![reverted, step_id],
             )
             .map_err(db_err)?;
+        self.wrote("steps", "id", Key::Int(step_id));
         Ok(())
     }
 
@@ -923,6 +973,7 @@ impl Tx<'_> {
                 params![hash, n_bytes as i64, kind, at],
             )
             .map_err(db_err)?;
+        self.wrote("objects", "hash", Key::Text(hash.to_string()));
         Ok(())
     }
 
@@ -981,6 +1032,7 @@ impl Tx<'_> {
                 |r| r.get(0),
             )
             .map_err(db_err)?;
+        self.wrote("datasets", "id", Key::Int(dataset_id));
         let seq: i64 = self
             .tx
             .query_row(
@@ -1013,6 +1065,8 @@ impl Tx<'_> {
             )
             .map_err(db_err)?;
         let version_id = self.tx.last_insert_rowid();
+        self.wrote("versions", "id", Key::Int(version_id));
+        self.wrote("column_profiles", "version_id", Key::Int(version_id));
         for (i, p) in v.profiles.iter().enumerate() {
             self.tx
                 .execute(
@@ -1051,6 +1105,7 @@ impl Tx<'_> {
         at: &str,
     ) -> Result<()> {
         let agent_id = self.agent_id(agent)?;
+        let mut ids = Vec::with_capacity(results.len());
         let mut st = self
             .tx
             .prepare_cached(
@@ -1070,6 +1125,11 @@ impl Tx<'_> {
                 i64::from(gate)
             ])
             .map_err(db_err)?;
+            ids.push(self.tx.last_insert_rowid());
+        }
+        drop(st);
+        for id in ids {
+            self.wrote("check_results", "id", Key::Int(id));
         }
         Ok(())
     }
@@ -1091,6 +1151,10 @@ impl Tx<'_> {
         for (row, col, note) in notes {
             st.execute(params![step_id, output_id, *row as i64, col, note])
                 .map_err(db_err)?;
+        }
+        drop(st);
+        if !notes.is_empty() {
+            self.wrote("cell_notes", "output_id", Key::Int(output_id));
         }
         Ok(())
     }
@@ -1115,6 +1179,10 @@ impl Tx<'_> {
             st.execute(params![step_id, output_id, out, input_id, inp])
                 .map_err(db_err)?;
         }
+        drop(st);
+        if !sources.is_empty() {
+            self.wrote("column_sources", "output_id", Key::Int(output_id));
+        }
         Ok(())
     }
 
@@ -1137,7 +1205,8 @@ impl Tx<'_> {
         details: &Value,
         at: &str,
     ) -> Result<AuditEntry> {
-        super::audit::append(&self.tx, agent, action, subject, details, at)
+        let journal = std::mem::take(&mut self.journal);
+        super::audit::append(&self.tx, agent, action, subject, details, at, journal)
     }
 }
 

@@ -1,4 +1,4 @@
-//! The store: a project's `.sluice/` folder, holding immutable objects ([`objects`]) and one
+//! The store: a project's `sluice-store/` folder, holding immutable objects ([`objects`]) and one
 //! SQLite lineage database ([`lineage`], with its hash-chained audit log in [`audit`]).
 //!
 //! This is the only module that touches SQLite. Everything that changes the store goes through
@@ -19,8 +19,34 @@ use crate::error::{Error, ErrorKind, Result};
 pub use lineage::{Lineage, NewStep, NewVersion, Tx};
 pub use objects::{FsBackend, ObjectBackend, Objects};
 
-/// The name of the store folder inside a project.
-pub const STORE_DIR: &str = ".sluice";
+/// The process id in the name of an entry sluice made in `tmp/` (`KIND-PID-...`).
+fn leftover_pid(name: &str) -> Option<u32> {
+    let mut parts = name.splitn(3, '-');
+    let kind = parts.next()?;
+    let pid = parts.next()?.parse::<u32>().ok()?;
+    parts.next()?;
+    ["obj", "reclaim", "exec", "replay", "revert", "compare"]
+        .contains(&kind)
+        .then_some(pid)
+}
+
+/// Whether process `pid` runs (exists and is not a zombie waiting to be reaped).
+fn process_alive(proc_root: &Path, pid: u32) -> bool {
+    match fs::read_to_string(proc_root.join(pid.to_string()).join("stat")) {
+        // The state follows the command name, which is in parentheses and may hold any byte.
+        Ok(stat) => stat
+            .rsplit_once(')')
+            .and_then(|(_, rest)| rest.trim_start().chars().next())
+            .is_none_or(|state| state != 'Z' && state != 'X'),
+        Err(_) => proc_root.join(pid.to_string()).exists(),
+    }
+}
+
+/// The name of the store folder inside a project: visible, so that people see that the
+/// project holds copies of its raw data.
+pub const STORE_DIR: &str = "sluice-store";
+/// The hidden folder name stores had before; recognised and refused with advice to rename it.
+pub const LEGACY_STORE_DIR: &str = ".sluice";
 /// The lineage database file inside the store folder.
 pub const DB_FILE: &str = "lineage.db";
 
@@ -32,7 +58,7 @@ pub struct Store {
 }
 
 impl Store {
-    /// Creates a new store in `project/.sluice`. Fails if one is already there.
+    /// Creates a new store in `project/sluice-store`. Fails if one is already there.
     pub fn init(project: &Path) -> Result<Store> {
         let dir = project.join(STORE_DIR);
         if dir.join(DB_FILE).exists() {
@@ -78,9 +104,10 @@ impl Store {
         Ok(store)
     }
 
-    /// Opens the store whose folder is `dir` (the `.sluice` folder itself, or a project folder
-    /// containing one).
+    /// Opens the store whose folder is `dir` (the `sluice-store` folder itself, or a project
+    /// folder containing one).
     pub fn open(dir: &Path) -> Result<Store> {
+        legacy_check(dir)?;
         let dir = if dir.file_name().is_some_and(|n| n == STORE_DIR) {
             dir.to_path_buf()
         } else if dir.join(STORE_DIR).is_dir() {
@@ -90,7 +117,7 @@ impl Store {
         };
         let db = dir.join(DB_FILE);
         if !db.is_file() {
-            // `sluice init` takes the project folder, the one that holds `.sluice`.
+            // `sluice setup` takes the project folder, the one that holds `sluice-store`.
             let project = if dir.file_name().is_some_and(|n| n == STORE_DIR) {
                 match dir.parent() {
                     Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
@@ -101,9 +128,9 @@ impl Store {
             };
             return Err(ErrorKind::NoStoreAt { path: dir, project }.into());
         }
-        // The store never follows a symbolic link out of `.sluice/`: a received store whose
+        // The store never follows a symbolic link out of `sluice-store/`: a received store whose
         // database, object folder or temporary folder is a link could make sluice read or
-        // write anywhere. (`.sluice` itself may be a link the user made.)
+        // write anywhere. (`sluice-store` itself may be a link the user made.)
         for part in [
             DB_FILE,
             "objects",
@@ -113,7 +140,7 @@ impl Store {
         ] {
             let p = dir.join(part);
             if fs::symlink_metadata(&p).is_ok_and(|m| m.file_type().is_symlink()) {
-                return Err(ErrorKind::Database(format!(
+                return Err(ErrorKind::Usage(format!(
                     "{} is a symbolic link; a store's lineage.db, segments/, objects/, tmp/ and writers.lock must be inside its folder, never links out of it; replace the link with what it points to, then run `sluice verify`",
                     p.display()
                 ))
@@ -136,7 +163,8 @@ impl Store {
     }
 
     /// Finds the store for a command: `explicit` (from --store or SLUICE_STORE) when given,
-    /// else the nearest `.sluice` folder in `start` or a parent of it.
+    /// else the `sluice-store` folder in `start` or the nearest parent that has one. A folder
+    /// holding an old hidden `.sluice` store is refused with the advice to rename it.
     pub fn discover(explicit: Option<&Path>, start: &Path) -> Result<Store> {
         if let Some(p) = explicit {
             return Store::open(p);
@@ -146,6 +174,7 @@ impl Store {
             if d.join(STORE_DIR).join(DB_FILE).is_file() {
                 return Store::open(&d.join(STORE_DIR));
             }
+            legacy_check(d)?;
             cur = d.parent();
         }
         Err(ErrorKind::NoStore {
@@ -154,7 +183,7 @@ impl Store {
         .into())
     }
 
-    /// The `.sluice` folder.
+    /// The `sluice-store` folder.
     pub fn dir(&self) -> &Path {
         &self.dir
     }
@@ -177,7 +206,90 @@ impl Store {
     }
 
     /// Runs `f` in one write transaction; commits when it returns `Ok`, rolls back otherwise.
+    /// Every command that records something comes here, so it first clears what interrupted
+    /// commands left in `tmp/` ([`Store::sweep_tmp`]).
     pub fn write<T>(&mut self, f: impl FnOnce(&mut Tx<'_>) -> Result<T>) -> Result<T> {
+        self.sweep_tmp();
         self.lineage.write(f)
+    }
+
+    /// Removes the temporary files and folders of commands that are no longer running: every
+    /// name sluice gives in `tmp/` is `KIND-PID-...` (`obj-` for segments being written,
+    /// `reclaim-` for the segment `reclaim` packs, `exec-`, `replay-`, `revert-`, `compare-` for folders), and an entry is removed only when
+    /// its process is gone (no `/proc/PID`, or a zombie), so a concurrent writer's files are
+    /// never touched. Where `/proc` cannot tell, nothing is removed. Best effort: a failure to
+    /// remove is left for `verify` to count. Returns how many entries were removed.
+    pub fn sweep_tmp(&self) -> u64 {
+        let proc_root = Path::new("/proc");
+        if !proc_root.join("self").exists() {
+            return 0;
+        }
+        let Ok(entries) = fs::read_dir(self.dir.join("tmp")) else {
+            return 0;
+        };
+        let me = std::process::id();
+        let mut removed = 0;
+        for e in entries.flatten() {
+            let name = e.file_name();
+            let Some(pid) = name.to_str().and_then(leftover_pid) else {
+                continue;
+            };
+            if pid == me || process_alive(proc_root, pid) {
+                continue;
+            }
+            let path = e.path();
+            let gone = match e.file_type() {
+                Ok(t) if t.is_dir() => fs::remove_dir_all(&path),
+                Ok(_) => fs::remove_file(&path),
+                Err(err) => Err(err),
+            };
+            if gone.is_ok() {
+                removed += 1;
+            }
+        }
+        removed
+    }
+}
+
+/// Refuses a store in the old hidden folder (`dir` is that folder, or a project folder holding
+/// it and no `sluice-store`), saying how to rename it.
+fn legacy_check(dir: &Path) -> Result<()> {
+    let (legacy, project) = if dir.file_name().is_some_and(|n| n == LEGACY_STORE_DIR) {
+        (dir.to_path_buf(), dir.parent().map(Path::to_path_buf))
+    } else if !dir.join(STORE_DIR).exists() && dir.join(LEGACY_STORE_DIR).join(DB_FILE).is_file() {
+        (dir.join(LEGACY_STORE_DIR), Some(dir.to_path_buf()))
+    } else {
+        return Ok(());
+    };
+    if !legacy.join(DB_FILE).is_file() {
+        return Ok(());
+    }
+    let project = project
+        .filter(|p| !p.as_os_str().is_empty())
+        .unwrap_or_else(|| PathBuf::from("."));
+    Err(ErrorKind::LegacyStore {
+        path: legacy,
+        project,
+    }
+    .into())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The sweep reads the process id out of every name the object writer and `reclaim` give
+    /// their segments in `tmp/`, so it can tell a dead writer's file from a live one's.
+    #[test]
+    fn the_sweep_reads_the_pid_of_every_temporary_segment_name() {
+        let me = std::process::id();
+        for kind in ["obj", "reclaim"] {
+            let name = objects::temp_name(kind);
+            assert_eq!(leftover_pid(&name), Some(me), "{name}");
+        }
+        assert_eq!(leftover_pid("obj-12-0-000000001.part"), Some(12));
+        assert_eq!(leftover_pid("notes-12-0.txt"), None);
+        assert_eq!(leftover_pid("obj-x-0.part"), None);
+        assert_eq!(leftover_pid("reclaim-12"), None);
     }
 }

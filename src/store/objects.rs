@@ -164,7 +164,7 @@ struct Index {
 
 static TEMP_COUNTER: AtomicU64 = AtomicU64::new(0);
 
-fn temp_name(what: &str) -> String {
+pub(crate) fn temp_name(what: &str) -> String {
     let n = TEMP_COUNTER.fetch_add(1, Ordering::Relaxed);
     let nanos = std::time::SystemTime::now()
         .duration_since(std::time::UNIX_EPOCH)
@@ -178,7 +178,7 @@ fn no_link(p: &Path) -> io::Result<()> {
     match fs::symlink_metadata(p) {
         Ok(m) if m.file_type().is_symlink() => Err(io::Error::new(
             io::ErrorKind::InvalidData,
-            "a symbolic link inside the store; sluice never follows links out of the store folder",
+            "a symbolic link inside the store; sluice never follows links out of its store folder",
         )),
         _ => Ok(()),
     }

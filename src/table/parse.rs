@@ -86,6 +86,10 @@ pub struct Parser {
     rec_byte: u64,
     rec_line: u64,
     n_records: u64,
+    /// The most bytes one record's fields may take (see [`Parser::set_max_record`]).
+    max_record: usize,
+    /// Set when a record grew past `max_record`; parsing stops there.
+    too_long: Option<Unterminated>,
 }
 
 impl Parser {
@@ -129,7 +133,37 @@ impl Parser {
             rec_byte: 0,
             rec_line: 0,
             n_records: 0,
+            max_record: usize::MAX,
+            too_long: None,
         }
+    }
+
+    /// Bounds one record's field bytes: a record that needs more stops the parser, which then
+    /// reports where that record starts through [`Parser::too_long`]. Unbounded by default.
+    pub fn set_max_record(&mut self, bytes: usize) {
+        self.max_record = bytes;
+    }
+
+    /// Where the record that passed the bound starts, once one has.
+    pub fn too_long(&self) -> Option<&Unterminated> {
+        self.too_long.as_ref()
+    }
+
+    /// Doubles the field buffer, unless that passes the bound: then records where the record
+    /// starts and returns false.
+    fn grow_out(&mut self) -> bool {
+        let n = self.out.len() * 2;
+        if self.out.len() >= self.max_record {
+            self.too_long = Some(Unterminated {
+                byte: self.rec_byte,
+                line: self.rec_line,
+                index: self.n_records,
+            });
+            return false;
+        }
+        self.out
+            .resize(n.min(self.max_record.max(self.out.len() + 1)), 0);
+        true
     }
 
     /// Makes the parser read a new input from its start, as a new parser would, but keeps its
@@ -216,6 +250,9 @@ impl Parser {
         on_record: &mut impl FnMut(RawRecord<'_>) -> Result<(), E>,
     ) -> Result<(), E> {
         loop {
+            if self.too_long.is_some() {
+                return Ok(());
+            }
             if !self.in_record {
                 let skip = input
                     .iter()
@@ -247,6 +284,9 @@ impl Parser {
                         // between its delimiters, as csv_core would read them.
                         if memchr::memchr2(b'"', b'\r', line).is_none() {
                             self.split_plain(line);
+                            if self.too_long.is_some() {
+                                return Ok(());
+                            }
                             // One line break, and no CR but the one before it: count it here
                             // rather than scan the line again.
                             let taken = &input[..nl + 1];
@@ -274,8 +314,9 @@ impl Parser {
             match res {
                 ReadRecordResult::InputEmpty => return Ok(()),
                 ReadRecordResult::OutputFull => {
-                    let n = self.out.len() * 2;
-                    self.out.resize(n, 0);
+                    if !self.grow_out() {
+                        return Ok(());
+                    }
                 }
                 ReadRecordResult::OutputEndsFull => {
                     let n = self.ends.len() * 2;
@@ -289,6 +330,20 @@ impl Parser {
 
     /// Splits a line without quotes at every delimiter into the output buffers.
     fn split_plain(&mut self, line: &[u8]) {
+        if self.out.len() < line.len()
+            && line.len() > self.max_record
+            && line.len() - memchr::memchr_iter(self.delimiter, line).count() > self.max_record
+        {
+            // Too long: kept from the bound's check by the slow path, which stops there.
+            self.too_long = Some(Unterminated {
+                byte: self.rec_byte,
+                line: self.rec_line,
+                index: self.n_records,
+            });
+            self.out_len = 0;
+            self.n_ends = 0;
+            return;
+        }
         if self.out.len() < line.len() {
             self.out.resize(line.len().next_power_of_two(), 0);
         }
@@ -345,7 +400,7 @@ impl Parser {
             self.lines += 1;
             self.pending_cr = false;
         }
-        if !self.in_record {
+        if !self.in_record || self.too_long.is_some() {
             return Ok(Ok(()));
         }
         // csv_core ends an open quoted field silently at the end of input. To tell that case
@@ -391,8 +446,9 @@ impl Parser {
             self.n_ends += nend;
             match res {
                 ReadRecordResult::OutputFull => {
-                    let n = self.out.len() * 2;
-                    self.out.resize(n, 0);
+                    if !self.grow_out() {
+                        return Ok(Ok(()));
+                    }
                 }
                 ReadRecordResult::OutputEndsFull => {
                     let n = self.ends.len() * 2;

@@ -198,6 +198,32 @@ fn split_number(s: &[u8]) -> (bool, &[u8], &[u8]) {
     (neg, &int[lead..], &frac[..frac.len() - trail])
 }
 
+/// How much of a column's smallest and largest value a profile keeps: the first 256 bytes (cut
+/// back to a whole character) and then `…`. Byte order is preserved by cutting (a cut value
+/// orders as the whole one does against any other value cut the same way), so the kept start
+/// is exact; a number longer than this is profiled as text. One huge cell therefore costs the
+/// profile, and the database, at most this much per column.
+pub const KEPT_VALUE_BYTES: usize = 256;
+
+/// The part of a value the profile compares and keeps: one byte more than it shows, so that
+/// `finish` knows whether the value was cut.
+fn kept(v: &[u8]) -> &[u8] {
+    &v[..v.len().min(KEPT_VALUE_BYTES + 1)]
+}
+
+/// A kept value as the profile shows it: whole, or its first bytes up to a whole character
+/// and `…`.
+fn shown(v: &[u8]) -> String {
+    if v.len() <= KEPT_VALUE_BYTES {
+        return String::from_utf8_lossy(v).into_owned();
+    }
+    let mut end = KEPT_VALUE_BYTES;
+    while end > 0 && (v[end] & 0xC0) == 0x80 {
+        end -= 1;
+    }
+    format!("{}\u{2026}", String::from_utf8_lossy(&v[..end]))
+}
+
 struct Column {
     n_blank: u64,
     n_values: u64,
@@ -264,6 +290,10 @@ impl Column {
         let len = v.iter().filter(|&&b| (b & 0xC0) != 0x80).count() as u64;
         self.min_len = self.min_len.min(len);
         self.max_len = self.max_len.max(len);
+        if self.all_number {
+            self.observe_number(v, first);
+        }
+        let v = kept(v);
         if first {
             set(&mut self.text_min, v);
             set(&mut self.text_max, v);
@@ -279,16 +309,13 @@ impl Column {
                 set(&mut self.text_max, v);
             }
         }
-        if self.all_number {
-            self.observe_number(v, first);
-        }
         if self.all_date && !is_iso_date(v) {
             self.all_date = false;
         }
     }
 
     fn observe_number(&mut self, v: &[u8], first: bool) {
-        let Some(shape) = number_shape(v) else {
+        let Some(shape) = number_shape(v).filter(|_| v.len() <= KEPT_VALUE_BYTES) else {
             self.all_number = false;
             self.all_integer = false;
             return;
@@ -321,7 +348,7 @@ impl Column {
 
     fn finish(&self, name: &str) -> ColumnProfile {
         let (n_distinct, distinct_exact) = self.distinct.count();
-        let text = |v: &[u8]| Some(String::from_utf8_lossy(v).into_owned());
+        let text = |v: &[u8]| Some(shown(v));
         let (ty, min, max) = if self.n_values == 0 {
             ("empty", None, None)
         } else if self.all_integer {
@@ -409,6 +436,36 @@ mod tests {
             Ordering::Greater
         );
         assert_eq!(cmp_numbers(b"0.1", b".09"), Ordering::Greater);
+    }
+
+    #[test]
+    fn long_values_are_kept_as_their_start_and_still_ordered() {
+        let long_b = format!("b{}", "é".repeat(500_000));
+        let long_a = format!("a{}", "x".repeat(300));
+        let digits = "9".repeat(KEPT_VALUE_BYTES + 1);
+        let mut p = Profiler::new(2, &[]);
+        for (t, n) in [
+            (long_b.as_str(), "12"),
+            ("c", digits.as_str()),
+            (long_a.as_str(), "3"),
+        ] {
+            p.observe([t.as_bytes(), n.as_bytes()].into_iter());
+        }
+        let prof = p.finish(&["t".to_string(), "n".to_string()]);
+        let min = prof[0].min.clone().unwrap();
+        assert_eq!(min, format!("a{}\u{2026}", "x".repeat(255)));
+        let max = prof[0].max.clone().unwrap();
+        assert_eq!(max, "c");
+        assert_eq!(prof[0].max_len, Some(500_001));
+        // A number longer than the kept part makes the column text, ordered as text.
+        assert_eq!(prof[1].inferred_type, "text");
+        assert_eq!(prof[1].max, Some(format!("{}\u{2026}", "9".repeat(256))));
+        assert_eq!(prof[1].min.as_deref(), Some("12"));
+        // Cut back to a whole character: 'b' and 127 two-byte characters.
+        let mut p = Profiler::new(1, &[]);
+        p.observe([long_b.as_bytes()].into_iter());
+        let prof = p.finish(&["t".to_string()]);
+        assert_eq!(prof[0].max, Some(format!("b{}\u{2026}", "é".repeat(127))));
     }
 
     #[test]

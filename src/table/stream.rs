@@ -94,6 +94,25 @@ impl Utf8Check {
     }
 }
 
+/// The bound on one record's field bytes (the header's too) at intake unless the user raises
+/// it (`--max-record-mib`): 32 MiB. The parser's record buffer never grows past it, so a file
+/// that is one enormous line is refused with its position instead of filling memory.
+pub const DEFAULT_MAX_RECORD_BYTES: u64 = 32 << 20;
+
+static MAX_RECORD_BYTES: std::sync::atomic::AtomicU64 =
+    std::sync::atomic::AtomicU64::new(DEFAULT_MAX_RECORD_BYTES);
+
+/// Sets the record bound for the rest of the process (the binary calls it once, from
+/// `--max-record-mib`, as it installs the progress listener).
+pub fn set_max_record_bytes(bytes: u64) {
+    MAX_RECORD_BYTES.store(bytes.max(1), std::sync::atomic::Ordering::Relaxed);
+}
+
+/// The record bound intake applies now.
+pub fn max_record_bytes() -> u64 {
+    MAX_RECORD_BYTES.load(std::sync::atomic::Ordering::Relaxed)
+}
+
 /// How to read a table's bytes.
 #[derive(Debug, Clone)]
 pub struct ReadSettings {
@@ -101,6 +120,9 @@ pub struct ReadSettings {
     pub delimiter: Option<u8>,
     /// `None`: UTF-8 (validated elsewhere, a leading BOM removed).
     pub encoding: Option<&'static Encoding>,
+    /// The most field bytes one record may hold (`None`: no bound, for reading stored
+    /// versions, which were bounded when they were taken in).
+    pub max_record: Option<u64>,
 }
 
 impl ReadSettings {
@@ -113,6 +135,7 @@ impl ReadSettings {
             } else {
                 Some(encoding_for(&d.encoding)?)
             },
+            max_record: None,
         })
     }
 }
@@ -217,11 +240,11 @@ impl<'p> RecordStream<'p> {
                 start = self.decoded_bom_len();
                 self.bom = start > 0;
             }
-            self.parser = Some(Parser::decoded(
-                self.delimiter,
-                start,
-                self.settings.encoding,
-            ));
+            let mut parser = Parser::decoded(self.delimiter, start, self.settings.encoding);
+            if let Some(max) = self.settings.max_record {
+                parser.set_max_record(usize::try_from(max).unwrap_or(usize::MAX));
+            }
+            self.parser = Some(parser);
         }
         let parser = self.parser.as_mut().expect("parser set above");
         // The decoder's buffer is borrowed through `text`; copy it out of the way only when it
@@ -230,9 +253,30 @@ impl<'p> RecordStream<'p> {
             let buf = std::mem::take(&mut self.decoded);
             let r = parser.feed(&buf, on_record);
             self.decoded = buf;
-            r
+            r?;
         } else {
-            parser.feed(text, on_record)
+            parser.feed(text, on_record)?;
+        }
+        self.too_long()
+    }
+
+    /// The refusal of a record past the bound, once the parser met one.
+    fn too_long(&self) -> Result<()> {
+        match (
+            self.parser.as_ref().and_then(|p| p.too_long()),
+            self.settings.max_record,
+        ) {
+            (Some(u), Some(max)) => Err(Error::input(
+                self.path,
+                Some(Position {
+                    byte: u.byte,
+                    line: u.line,
+                    record: Some(u.index),
+                    column: None,
+                }),
+                InputProblem::RecordTooLong { max_bytes: max },
+            )),
+            _ => Ok(()),
         }
     }
 
@@ -321,7 +365,7 @@ impl<'p> RecordStream<'p> {
             return Ok(());
         };
         match parser.finish(on_record)? {
-            Ok(()) => Ok(()),
+            Ok(()) => self.too_long(),
             Err(u) => Err(Error::input(
                 self.path,
                 Some(Position {
@@ -423,6 +467,7 @@ mod tests {
         let settings = ReadSettings {
             delimiter: Some(b','),
             encoding: Some(encoding_rs::UTF_16LE),
+            max_record: None,
         };
         for text in [
             "\0\0\u{a00}",
@@ -442,6 +487,7 @@ mod tests {
         let sjis = ReadSettings {
             delimiter: Some(b','),
             encoding: Some(encoding_for("shift_jis").unwrap()),
+            max_record: None,
         };
         // "店,金額" then a line break, in Shift_JIS: two-byte characters split by every cut.
         let data = b"\x93\x58,\x8b\xe0\x8a\x7a\n\x93\x58,\x8b\xe0\n";
@@ -470,6 +516,7 @@ mod tests {
         let settings = ReadSettings {
             delimiter: Some(b','),
             encoding: Some(encoding_rs::UTF_16LE),
+            max_record: None,
         };
         let whole = read_in_pieces(&data, &settings, data.len());
         assert!(whole.contains("line 4 (byte 14)"), "{whole}");
@@ -508,6 +555,7 @@ mod tests {
         let settings = ReadSettings {
             delimiter: Some(b'\t'),
             encoding: Some(encoding_rs::UTF_16LE),
+            max_record: None,
         };
         let whole = read_in_pieces(data, &settings, data.len());
         // 0xDB22 at byte 26 is a high surrogate followed by 0xFFFF, not a low one.

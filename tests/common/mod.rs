@@ -11,7 +11,10 @@ pub struct Sandbox {
     pub dir: tempfile::TempDir,
 }
 
-pub const AGENT: &str = "Test Runner <runner@example.org>";
+/// Who the tests act as: `SLUICE_PERSON` and `SLUICE_EMAIL`, and how it is recorded.
+pub const PERSON: &str = "Test Runner";
+pub const EMAIL: &str = "runner@example.org";
+pub const AGENT: &str = "Test Runner (runner@example.org)";
 
 pub struct Run {
     pub code: i32,
@@ -30,7 +33,7 @@ impl Sandbox {
     /// A sandbox with an initialised store.
     pub fn with_store() -> Sandbox {
         let s = Sandbox::new();
-        s.ok(&["init"]);
+        s.ok(&["setup"]);
         s
     }
 
@@ -48,7 +51,7 @@ impl Sandbox {
         let s = Sandbox::with_store();
         s.file("penguins.csv", penguins_csv());
         s.ok(&[
-            "ingest",
+            "receive",
             "penguins.csv",
             "--as",
             "penguins",
@@ -75,7 +78,8 @@ impl Sandbox {
         let mut c = Command::new(env!("CARGO_BIN_EXE_sluice"));
         c.args(args)
             .current_dir(self.path())
-            .env("SLUICE_AGENT", AGENT)
+            .env("SLUICE_PERSON", PERSON)
+            .env("SLUICE_EMAIL", EMAIL)
             .env("NO_COLOR", "1")
             .env_remove("SLUICE_STORE");
         c
@@ -136,12 +140,12 @@ impl Sandbox {
     /// the audit log length, and leftover temporary files. Equal snapshots mean "unchanged".
     pub fn snapshot(&self) -> String {
         let mut files = Vec::new();
-        let root = self.path().join(".sluice");
+        let root = self.path().join("sluice-store");
         collect(&root.join("objects"), &mut files);
         collect(&root.join("segments"), &mut files);
         collect(&root.join("tmp"), &mut files);
         files.sort();
-        let log = self.ok(&["log", "--json"]);
+        let log = self.ok(&["timeline", "--json"]);
         let verify = self.json(&["verify", "--json"]);
         format!(
             "{}\n--\n{log}\n--\naudit entries: {}\n",
@@ -222,7 +226,7 @@ pub fn commands_listed(help: &str) -> Vec<String> {
     names
 }
 
-/// Every command path (`["apply", "trim"]`), found by walking the real binary's help texts,
+/// Every command path (`["clean", "trim"]`), found by walking the real binary's help texts,
 /// so that a new command is covered without touching this file.
 pub fn every_command(s: &Sandbox) -> Vec<Vec<String>> {
     let mut out = Vec::new();

@@ -1,25 +1,27 @@
-//! Rendering a diff: a text form for people (summary first, then each change with its rows in
-//! both versions, its key and what changed inside each cell) and `--json` for machines (the
-//! structure documented in examples/reference.md, "JSON output").
+//! `compare`: two versions side by side. The text screen states how rows were paired, the
+//! counts, then a table of changed cells (row | key | column | before | after) and the rows
+//! removed and added; `--counts` stops after a per-column table of changed cells; `--json`
+//! prints the structure documented in examples/reference.md, "JSON output".
 //!
-//! Inside a changed cell, removed characters are wrapped in `[-…]` and added ones in `[+…]`;
-//! inside those marks a space is shown as `␣` and a no-break space as `⍽`, so that a removed
-//! trailing space can be seen. Tabs, line breaks, other control characters and unusual white
-//! space are always escaped (`\t`, `\n`, `\r`, `\u{2003}`), and a backslash is doubled. Colour
-//! (red for removed, green for added) is added only when the caller says so.
+//! In the before and after columns white space is made visible: a space is `·`, a tab `→`, a
+//! no-break space `⍽`, a line break `↵` (a carriage return `␍`); other control characters and
+//! unusual white space are written as `\u{2003}`. The characters that changed are wrapped in
+//! `«` and `»` in both columns (and coloured, removed red and added green, only when asked).
 
 use std::io::{self, Write};
 
 use serde::Serialize;
 
-use super::render::count;
+use super::args::CompareArgs;
+use super::text::*;
+use super::{Context, ExitCode};
 use sluice::diff::chars::{pieces, Piece};
 use sluice::diff::{Change, ChangeKind, Diff, MatchedBy, RowRef};
 
 /// How to render.
 pub struct How {
     /// Counts only.
-    pub stat: bool,
+    pub counts: bool,
     /// List at most this many changes.
     pub limit: Option<usize>,
     pub colour: bool,
@@ -30,16 +32,41 @@ const GREEN: &str = "\x1b[32m";
 const BOLD: &str = "\x1b[1m";
 const RESET: &str = "\x1b[0m";
 
-/// A character as shown: escaped when it would be invisible or break the line.
-fn push_visible(out: &mut String, c: char, marked: bool) {
+pub fn compare(
+    ctx: &Context<'_>,
+    a: &CompareArgs,
+    out: &mut impl Write,
+) -> anyhow::Result<ExitCode> {
+    let store = ctx.open_store()?;
+    let key = match &a.key {
+        Some(cols) => sluice::diff::KeyChoice::Columns(cols.clone()),
+        None => sluice::diff::KeyChoice::Declared,
+    };
+    let d = sluice::diff::diff(&store, &a.from, &a.to, &sluice::diff::DiffOptions { key })?;
+    // Colour only for a person at a terminal (or when asked with --color always).
+    let how = How {
+        counts: a.counts,
+        limit: a.limit,
+        colour: ctx.colour(),
+    };
+    let mut buffered = std::io::BufWriter::new(out);
+    if a.json {
+        compare_json(&mut buffered, &d, &how)?;
+    } else {
+        compare_text(&mut buffered, &d, &how)?;
+    }
+    buffered.flush()?;
+    Ok(0)
+}
+
+/// A character as shown in the before and after columns.
+fn push_visible(out: &mut String, c: char) {
     match c {
-        '\\' => out.push_str("\\\\"),
-        '\t' => out.push_str("\\t"),
-        '\n' => out.push_str("\\n"),
-        '\r' => out.push_str("\\r"),
-        ' ' if marked => out.push('␣'),
-        ' ' => out.push(' '),
-        '\u{a0}' if marked => out.push('⍽'),
+        ' ' => out.push('·'),
+        '\t' => out.push('→'),
+        '\u{a0}' => out.push('⍽'),
+        '\n' => out.push('↵'),
+        '\r' => out.push('␍'),
         c if c.is_control() || c.is_whitespace() || c == '\u{feff}' || c == '\u{200b}' => {
             out.push_str(&format!("\\u{{{:x}}}", c as u32))
         }
@@ -47,30 +74,24 @@ fn push_visible(out: &mut String, c: char, marked: bool) {
     }
 }
 
-fn visible(s: &str, marked: bool) -> String {
+fn visible(s: &str) -> String {
     let mut out = String::with_capacity(s.len() + 2);
     for c in s.chars() {
-        push_visible(&mut out, c, marked);
+        push_visible(&mut out, c);
     }
     out
 }
 
-/// A whole value in quotes (an inner quote doubled), white space made visible.
-fn quoted(s: &str) -> String {
-    format!("\"{}\"", visible(s, false).replace('"', "\"\""))
-}
-
-/// The old and the new value, each in quotes with its removed or added characters marked.
+/// The before and after values with their changed characters wrapped in « and ».
 fn marked_pair(old: &str, new: &str, colour: bool) -> (String, String) {
-    let (mut o, mut n) = (String::from("\""), String::from("\""));
-    let mark = |out: &mut String, sign: char, text: &str, col: &str| {
+    let (mut o, mut n) = (String::new(), String::new());
+    let mark = |out: &mut String, text: &str, col: &str| {
         if colour {
             out.push_str(col);
         }
-        out.push('[');
-        out.push(sign);
-        out.push_str(&visible(text, true).replace('"', "\"\""));
-        out.push(']');
+        out.push('«');
+        out.push_str(&visible(text));
+        out.push('»');
         if colour {
             out.push_str(RESET);
         }
@@ -78,65 +99,57 @@ fn marked_pair(old: &str, new: &str, colour: bool) -> (String, String) {
     for p in pieces(old, new) {
         match p {
             Piece::Same(t) => {
-                let t = visible(&t, false).replace('"', "\"\"");
+                let t = visible(&t);
                 o.push_str(&t);
                 n.push_str(&t);
             }
-            Piece::Removed(t) => mark(&mut o, '-', &t, RED),
-            Piece::Added(t) => mark(&mut n, '+', &t, GREEN),
+            Piece::Removed(t) => mark(&mut o, &t, RED),
+            Piece::Added(t) => mark(&mut n, &t, GREEN),
         }
     }
-    o.push('"');
-    n.push('"');
     (o, n)
 }
 
-fn plural(n: u64, one: &str, many: &str) -> String {
-    format!("{} {}", count(n), if n == 1 { one } else { many })
+/// How rows were paired, in words.
+fn pairing(d: &Diff) -> String {
+    match &d.matched_by {
+        MatchedBy::Key(k) => format!("rows paired by key {}", k.join(", ")),
+        MatchedBy::Order => "rows paired by order (no key)".to_string(),
+    }
 }
 
 fn summary(out: &mut impl Write, d: &Diff, colour: bool) -> io::Result<()> {
-    let how = match &d.matched_by {
-        MatchedBy::Key(k) => format!("rows matched by key {}", k.join(", ")),
-        MatchedBy::Order => "rows matched by order".to_string(),
-    };
     let (b, r) = if colour { (BOLD, RESET) } else { ("", "") };
-    writeln!(out, "{b}{} → {}{r}, {how}", d.from.label(), d.to.label())?;
     writeln!(
         out,
-        "rows     {} → {}: {} changed, {} removed, {} added, {} unchanged",
+        "{b}compared {} with {}{r}; {}",
+        d.from.label(),
+        d.to.label(),
+        pairing(d)
+    )?;
+    writeln!(
+        out,
+        "  rows: {} before, {} after; {} kept ({} of them changed), {} removed, {} added",
         count(d.from.n_rows),
         count(d.to.n_rows),
+        count(d.n_unchanged() + d.n_changed()),
         count(d.n_changed()),
         count(d.n_removed()),
         count(d.n_added()),
-        count(d.n_unchanged())
     )?;
     if let Some(al) = &d.alignment {
         writeln!(
             out,
-            "script   {} removed or added by fingerprint before pairing, {} in common",
+            "  order: {} removed or added by fingerprint before pairing, {} in common",
             plural(al.edit_distance, "row", "rows"),
             count(al.common_rows)
         )?;
     }
-    let n_cells = d.pairing.cells.len() as u64;
-    let by: Vec<String> = d
-        .changed_by_column
-        .iter()
-        .filter(|c| c.1 > 0)
-        .map(|(c, n)| format!("{c} {}", count(*n)))
-        .collect();
-    if by.is_empty() {
-        writeln!(out, "cells    {} changed", count(n_cells))?;
-    } else {
-        writeln!(
-            out,
-            "cells    {} changed: {}",
-            count(n_cells),
-            by.join(", ")
-        )?;
-    }
+    writeln!(
+        out,
+        "  cells: {} changed",
+        count(d.pairing.cells.len() as u64)
+    )?;
     let c = &d.columns;
     let mut parts = Vec::new();
     if !c.added.is_empty() {
@@ -149,7 +162,7 @@ fn summary(out: &mut impl Write, d: &Diff, colour: bool) -> io::Result<()> {
         let r: Vec<String> = c
             .renamed
             .iter()
-            .map(|(a, b)| format!("{a} → {b}"))
+            .map(|(a, b)| format!("{a} now {b}"))
             .collect();
         parts.push(format!("renamed {}", r.join(", ")));
     }
@@ -157,9 +170,9 @@ fn summary(out: &mut impl Write, d: &Diff, colour: bool) -> io::Result<()> {
         parts.push(format!("reordered ({})", d.to.header.join(", ")));
     }
     if parts.is_empty() {
-        writeln!(out, "columns  the same")?;
+        writeln!(out, "  columns: as before")?;
     } else {
-        writeln!(out, "columns  {}", parts.join("; "))?;
+        writeln!(out, "  columns: {}", parts.join("; "))?;
     }
     Ok(())
 }
@@ -169,76 +182,43 @@ fn row_values(row: Option<RowRef<'_>>) -> String {
         Some(r) => r
             .texts()
             .iter()
-            .map(|v| quoted(v))
+            .map(|v| visible(v))
             .collect::<Vec<_>>()
-            .join(", "),
+            .join(" | "),
         None => String::new(),
     }
 }
 
-fn change(out: &mut impl Write, d: &Diff, c: &Change, colour: bool) -> io::Result<()> {
-    let key = d
-        .key_of(c)
-        .map(|k| {
-            let names = match &d.matched_by {
-                MatchedBy::Key(k) => k.join(", "),
-                MatchedBy::Order => String::new(),
-            };
-            format!("  {names} {}", k.join(", "))
-        })
-        .unwrap_or_default();
-    let pos = |r: Option<u64>| r.map_or("-".to_string(), |r| count(r + 1));
-    match c.kind {
-        ChangeKind::Changed => {
-            writeln!(out, "changed  row {} → {}{key}", pos(c.a_row), pos(c.b_row))?;
-            let cells = &d.pairing.cells[c.cells.clone()];
-            let width = cells
-                .iter()
-                .map(|x| x.column.chars().count())
-                .max()
-                .unwrap_or(0);
-            for cell in cells {
-                let (o, n) = marked_pair(&cell.old, &cell.new, colour);
-                writeln!(out, "    {:<width$}  {o} → {n}", cell.column)?;
-            }
-        }
-        ChangeKind::Removed => {
-            let (s, e) = if colour { (RED, RESET) } else { ("", "") };
-            writeln!(out, "{s}removed{e}  row {}{key}", pos(c.a_row))?;
-            let values = c.a_row.and_then(|r| d.from_rows.get(r));
-            writeln!(out, "    {}", row_values(values))?;
-        }
-        ChangeKind::Added => {
-            let (s, e) = if colour { (GREEN, RESET) } else { ("", "") };
-            writeln!(out, "{s}added{e}    row {}{key}", pos(c.b_row))?;
-            let values = c.b_row.and_then(|r| d.to_rows.get(r));
-            writeln!(out, "    {}", row_values(values))?;
-        }
-    }
-    Ok(())
+/// The key of a change, as `41003` (or `41003, north` for several key columns).
+fn key_text(d: &Diff, c: &Change) -> String {
+    d.key_of(c)
+        .map(|k| k.join(", "))
+        .unwrap_or_else(|| "-".into())
 }
 
-pub fn text(out: &mut impl Write, d: &Diff, how: &How) -> io::Result<()> {
+/// A row position on screen: 1-based; `3 (was 2)` when the row moved.
+fn row_text(c: &Change) -> String {
+    match (c.a_row, c.b_row) {
+        (Some(a), Some(b)) if a == b => count(b + 1),
+        (Some(a), Some(b)) => format!("{} (was {})", count(b + 1), count(a + 1)),
+        (Some(a), None) => count(a + 1),
+        (None, Some(b)) => count(b + 1),
+        (None, None) => "-".into(),
+    }
+}
+
+pub fn compare_text(out: &mut impl Write, d: &Diff, how: &How) -> io::Result<()> {
     summary(out, d, how.colour)?;
-    if how.stat {
-        if !d.changed_by_column.is_empty() {
-            writeln!(out)?;
-            writeln!(out, "changed cells per column")?;
-            let width = d
-                .changed_by_column
-                .iter()
-                .map(|c| c.0.chars().count())
-                .max()
-                .unwrap_or(0);
-            let digits = d
-                .changed_by_column
-                .iter()
-                .map(|c| count(c.1).len())
-                .max()
-                .unwrap_or(1);
-            for (c, n) in &d.changed_by_column {
-                writeln!(out, "  {c:<width$}  {:>digits$}", count(*n))?;
-            }
+    if how.counts {
+        writeln!(out)?;
+        let mut rows = vec![["column".to_string(), "changed cells".to_string()]];
+        for (c, n) in &d.changed_by_column {
+            rows.push([c.clone(), count(*n)]);
+        }
+        if rows.len() == 1 {
+            writeln!(out, "  no cell changed")?;
+        } else {
+            table(out, &rows, &[false, true])?;
         }
         return Ok(());
     }
@@ -248,10 +228,72 @@ pub fn text(out: &mut impl Write, d: &Diff, how: &How) -> io::Result<()> {
         }
         return Ok(());
     }
-    writeln!(out)?;
     let limit = how.limit.unwrap_or(usize::MAX);
-    for c in d.changes.iter().take(limit) {
-        change(out, d, c, how.colour)?;
+    let listed: Vec<&Change> = d.changes.iter().take(limit).collect();
+    // Rows paired by order have no key: the table then has no key column.
+    let keyed = matches!(d.matched_by, MatchedBy::Key(_));
+    let mut cells: Vec<Vec<String>> = Vec::new();
+    let mut header = vec!["row".to_string()];
+    if let MatchedBy::Key(k) = &d.matched_by {
+        header.push(k.join(", "));
+    }
+    header.extend(["column", "before", "after"].map(String::from));
+    cells.push(header);
+    for c in listed.iter().filter(|c| c.kind == ChangeKind::Changed) {
+        for cell in &d.pairing.cells[c.cells.clone()] {
+            let (o, n) = marked_pair(&cell.old, &cell.new, how.colour);
+            let mut row = vec![row_text(c)];
+            if keyed {
+                row.push(key_text(d, c));
+            }
+            row.extend([cell.column.clone(), o, n]);
+            cells.push(row);
+        }
+    }
+    if cells.len() > 1 {
+        writeln!(out)?;
+        if keyed {
+            let rows: Vec<[String; 5]> = cells
+                .into_iter()
+                .map(|r| r.try_into().unwrap_or_default())
+                .collect();
+            table(out, &rows, &[true, false, false, false, false])?;
+        } else {
+            let rows: Vec<[String; 4]> = cells
+                .into_iter()
+                .map(|r| r.try_into().unwrap_or_default())
+                .collect();
+            table(out, &rows, &[true, false, false, false])?;
+        }
+    }
+    for (kind, title, col) in [
+        (ChangeKind::Removed, "removed rows", RED),
+        (ChangeKind::Added, "added rows", GREEN),
+    ] {
+        let these: Vec<&&Change> = listed.iter().filter(|c| c.kind == kind).collect();
+        if these.is_empty() {
+            continue;
+        }
+        writeln!(out)?;
+        let (s, e) = if how.colour { (col, RESET) } else { ("", "") };
+        writeln!(out, "{s}{title}{e}")?;
+        for c in these {
+            let values = match kind {
+                ChangeKind::Removed => c.a_row.and_then(|r| d.from_rows.get(r)),
+                _ => c.b_row.and_then(|r| d.to_rows.get(r)),
+            };
+            if keyed {
+                writeln!(
+                    out,
+                    "  row {}, key {}: {}",
+                    row_text(c),
+                    key_text(d, c),
+                    row_values(values)
+                )?;
+            } else {
+                writeln!(out, "  row {}: {}", row_text(c), row_values(values))?;
+            }
+        }
     }
     if d.changes.len() > limit {
         let rest = (d.changes.len() - limit) as u64;
@@ -330,7 +372,7 @@ struct JsonChange<'a> {
 struct JsonDiff<'a> {
     from: JsonVersion<'a>,
     to: JsonVersion<'a>,
-    matched_by: &'static str,
+    paired_by: &'static str,
     key: Option<&'a [String]>,
     rows: JsonRows,
     alignment: Option<sluice::diff::Alignment>,
@@ -341,8 +383,8 @@ struct JsonDiff<'a> {
     changes: Vec<JsonChange<'a>>,
 }
 
-pub fn json(out: &mut impl Write, d: &Diff, how: &How) -> io::Result<()> {
-    let limit = if how.stat {
+pub fn compare_json(out: &mut impl Write, d: &Diff, how: &How) -> io::Result<()> {
+    let limit = if how.counts {
         0
     } else {
         how.limit.unwrap_or(usize::MAX)
@@ -388,7 +430,7 @@ pub fn json(out: &mut impl Write, d: &Diff, how: &How) -> io::Result<()> {
             version: d.to.label(),
             hash: &d.to.hash,
         },
-        matched_by: match d.matched_by {
+        paired_by: match d.matched_by {
             MatchedBy::Key(_) => "key",
             MatchedBy::Order => "order",
         },
@@ -431,5 +473,5 @@ pub fn json(out: &mut impl Write, d: &Diff, how: &How) -> io::Result<()> {
         listed: changes.len(),
         changes,
     };
-    super::render::json(out, &value)
+    json(out, &value)
 }
