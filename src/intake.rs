@@ -829,7 +829,9 @@ fn parse_side(
     rx: mpsc::Receiver<Msg>,
     recycle: mpsc::Sender<RecordBatch>,
 ) -> Result<Option<Scan>> {
-    let mut index = objects.writer().map_err(|e| store_io(store_dir, e))?;
+    let mut index = objects
+        .row_index_writer()
+        .map_err(|e| store_io(store_dir, e))?;
     index
         .write(&rowindex::header())
         .map_err(|e| store_io(store_dir, e))?;

@@ -13,7 +13,8 @@ use crate::table::rowindex;
 #[derive(Debug, Clone, PartialEq, Eq, Serialize)]
 pub struct Problem {
     /// "object_missing", "object_damaged", "object_size", "row_index", "database", "audit",
-    /// "provenance", "cell_change", "audit_mismatch", "stray_file", "profile" (`--deep`).
+    /// "provenance", "cell_change", "audit_mismatch", "stray_file", "segment_damaged",
+    /// "segment_object", "segment_index", "profile" (`--deep`).
     pub kind: String,
     /// What is affected: an object hash, a table, an audit sequence number.
     pub subject: String,
@@ -82,6 +83,8 @@ fn verify_snapshot(store: &Store) -> Result<VerifyReport> {
     for p in un.or_default(store.lineage.consistency_problems()) {
         problems.push(problem("database", "lineage.db", p));
     }
+
+    problems.extend(segment_problems(store)?);
 
     let recorded = un.or_default(store.lineage.objects());
     let mut bytes_checked = 0u64;
@@ -443,6 +446,79 @@ fn audit_against_records(
         }
     }
     Ok(out)
+}
+
+/// The segment files held against their indexes: each segment's tail, index checksum and
+/// entry bounds read (a truncated segment or a changed index byte is named with its file), and
+/// every object of every index decoded frame by frame through its seek table and re-hashed,
+/// referenced or not: a changed byte in a frame is named by segment, object and frame, and an
+/// index entry pointed at another object's bytes by both objects. Objects found intact here
+/// are not hashed a second time by the object check.
+fn segment_problems(store: &Store) -> Result<Vec<Problem>> {
+    use crate::store::objects::FsBackend;
+    let backend = FsBackend::new(store.dir());
+    let segs = backend
+        .segments()
+        .map_err(|e| crate::Error::io(&store.dir().join("segments"), e))?;
+    let mut problems = Vec::new();
+    let indexed: std::collections::HashSet<Hash> = segs
+        .iter()
+        .filter_map(|(_, r)| r.as_ref().ok())
+        .flatten()
+        .map(|e| e.hash)
+        .collect();
+    for (path, entries) in &segs {
+        let name = path.display().to_string();
+        let entries = match entries {
+            Ok(e) => e,
+            Err(e) => {
+                problems.push(problem(
+                    "segment_damaged",
+                    name,
+                    format!("the segment cannot be read: {e}"),
+                ));
+                continue;
+            }
+        };
+        for e in entries {
+            match FsBackend::hash_entry(path, e) {
+                Ok(actual) if actual == e.hash => {
+                    if backend.locate(&e.hash).is_some_and(|(p, at)| p == *path && at == *e) {
+                        store.objects.note_intact(&e.hash);
+                    }
+                }
+                Ok(actual) if indexed.contains(&actual) => problems.push(problem(
+                    "segment_index",
+                    e.hash.hex(),
+                    format!(
+                        "the index entry of {} in {name} points at the bytes of another object, {actual} (bytes {}..{})",
+                        e.hash,
+                        e.offset,
+                        e.offset + e.stored
+                    ),
+                )),
+                Ok(actual) => problems.push(problem(
+                    "segment_object",
+                    e.hash.hex(),
+                    format!(
+                        "the object at bytes {}..{} of {name} hashes to {actual}, not to its name",
+                        e.offset,
+                        e.offset + e.stored
+                    ),
+                )),
+                Err(err) => problems.push(problem(
+                    "segment_object",
+                    e.hash.hex(),
+                    format!(
+                        "the object at bytes {}..{} of {name} cannot be decoded: {err}",
+                        e.offset,
+                        e.offset + e.stored
+                    ),
+                )),
+            }
+        }
+    }
+    Ok(problems)
 }
 
 /// Errors met while reading the database, which `verify` reports as damage (a dropped table,

@@ -359,3 +359,111 @@ fn plan_run_killed_at_fifty_moments_keeps_whole_steps_only() {
         "no kill landed between steps: {tally:?}"
     );
 }
+
+/// Runs `args` in fresh copies of `base`, each stopped (`stop`: the process ends at once, as
+/// if killed) or failed (`fail`: that write, sync or rename returns an error) at its Nth I/O
+/// point of object writes, N = 1, 2, ... until a run passes them all (debug builds read
+/// `SLUICE_TEST_IO_POINT`). After each: `verify` finds the store intact, `dataset` holds a
+/// prefix of the unstopped run's versions, a failure leaves no temporary file behind, and running the command again ends with the unstopped run's bytes. Returns the
+/// number of I/O points.
+fn every_io_point(base: &Path, args: &[&str], dataset: &str, mode: &str) -> u64 {
+    let reference = tempfile::tempdir().unwrap();
+    copy_dir(base, reference.path());
+    assert!(sluice(reference.path(), args).status().unwrap().success());
+    let want = versions_of(reference.path(), dataset);
+    let by_seq = |vs: &[serde_json::Value], seq: usize| {
+        vs.iter().find(|v| v["seq"] == seq as u64).unwrap()["hash"].clone()
+    };
+    let last = by_seq(&want, want.len());
+    for n in 1u64.. {
+        let dir = tempfile::tempdir().unwrap();
+        copy_dir(base, dir.path());
+        let status = sluice(dir.path(), args)
+            .env("SLUICE_TEST_IO_POINT", format!("{mode}:{n}"))
+            .status()
+            .unwrap();
+        let what = format!("sluice {} with {mode} at I/O point {n}", args.join(" "));
+        let report = assert_intact(dir.path(), &what);
+        let known = sluice(dir.path(), &["about", dataset])
+            .status()
+            .unwrap()
+            .success();
+        let now = if known {
+            versions_of(dir.path(), dataset)
+        } else {
+            Vec::new()
+        };
+        for seq in 1..=now.len() {
+            assert_eq!(
+                by_seq(&now, seq),
+                by_seq(&want, seq),
+                "{what}: {dataset}@{seq}"
+            );
+        }
+        if status.success() {
+            assert_eq!(now.len(), want.len(), "{what}: finished short");
+            return n - 1;
+        }
+        match mode {
+            "stop" => assert_eq!(status.code(), Some(86), "{what}: did not stop there"),
+            _ => {
+                assert!(
+                    matches!(status.code(), Some(1 | 2)),
+                    "{what}: did not fail as an error: {status:?}"
+                );
+                // An object the command published before a later one failed stays, unreferenced
+                // (never read; `reclaim` removes it); no temporary file does.
+                assert_eq!(report["leftover_temp_files"], 0, "{what}: {report}");
+            }
+        }
+        assert!(
+            sluice(dir.path(), args).status().unwrap().success(),
+            "{what}: the rerun failed"
+        );
+        let after = versions_of(dir.path(), dataset);
+        assert_eq!(
+            after.iter().max_by_key(|v| v["seq"].as_u64()).unwrap()["hash"],
+            last,
+            "{what}: the rerun ended elsewhere"
+        );
+        assert_intact(dir.path(), &format!("{what}, after the rerun"));
+    }
+    unreachable!()
+}
+
+const SHORT_PLAN: &str = r#"{
+  "sluice_plan": 2,
+  "purpose": "Quillby's Q3 work orders, three steps, for the I/O point test",
+  "sources": [{"dataset": "orders", "file": "quillby_q3.csv", "reason": "the till's Q3 export"}],
+  "steps": [
+    {"dataset": "orders", "clean": "trim", "settings": {"inner": true}, "reason": "padded names"},
+    {"dataset": "orders", "clean": "number", "settings": {"columns": ["parts_cost"]}, "reason": "amounts as text"},
+    {"dataset": "orders", "clean": "dedupe", "reason": "orders exported twice"}
+  ]
+}"#;
+
+#[test]
+fn every_io_point_of_ingest_apply_and_run_stopped_or_failed() {
+    let base = Sandbox::with_store();
+    export(base.path(), PLAN_ROWS);
+    base.file("plan.json", SHORT_PLAN);
+    let ingest = ["receive", "quillby_q3.csv", "--as", "orders"];
+    let apply = ["clean", "orders", "trim", "--why", "padded names"];
+    let mut counts = Vec::new();
+    for mode in ["stop", "fail"] {
+        counts.push(every_io_point(base.path(), &ingest, "orders", mode));
+    }
+    base.ok(&ingest);
+    for mode in ["stop", "fail"] {
+        counts.push(every_io_point(base.path(), &apply, "orders", mode));
+        counts.push(every_io_point(
+            base.path(),
+            &["run", "plan.json"],
+            "orders",
+            mode,
+        ));
+    }
+    eprintln!("crash: I/O points of ingest, ingest, apply, run, apply, run: {counts:?}");
+    // Two objects for an intake (table, row index), three for each step (and provenance).
+    assert!(counts.iter().all(|&c| c >= 8), "{counts:?}");
+}

@@ -442,9 +442,11 @@ fn disk_full_on_a_small_tmpfs_reports_no_space_left_and_leaves_the_store_unchang
         root,
         "this test mounts a 2 MiB tmpfs to fill it, which needs root; run the test suite as root"
     );
-    // The 4 MB export lives outside the small file system; the store lives on it.
+    // The 16 MB export lives outside the small file system; the store lives on it. Objects
+    // are stored compressed (about 3.6 times smaller for these rows), so the export is large
+    // enough that even its compressed copy does not fit.
     let exports = tempfile::tempdir().unwrap();
-    let (text, _) = work_orders(4_000_000);
+    let (text, _) = work_orders(16_000_000);
     let big = exports.path().join("q3.csv");
     fs::write(&big, &text).unwrap();
 
@@ -469,12 +471,22 @@ fn disk_full_on_a_small_tmpfs_reports_no_space_left_and_leaves_the_store_unchang
     assert_eq!(v["leftover_temp_files"], 0, "{v}");
 }
 
-/// A file of work orders with padded names, so that `trim` changes every row.
+/// A file of work orders with padded names, so that `trim` changes every row, and a serial
+/// number of 48 pseudo-random hex digits per row (xorshift64, Marsaglia 2003), which no
+/// compressor shrinks below half, so that the stored objects keep a predictable size.
 fn padded_orders(rows: usize) -> String {
-    let mut t = String::from("order_id,shop,notes\n");
+    let mut t = String::from("order_id,shop,notes,serial\n");
+    let mut x: u64 = 0x9E37_79B9_7F4A_7C15;
     for i in 0..rows {
+        let mut serial = String::new();
+        for _ in 0..3 {
+            x ^= x << 13;
+            x ^= x >> 7;
+            x ^= x << 17;
+            serial.push_str(&format!("{x:016x}"));
+        }
         t.push_str(&format!(
-            "WO-{i:06},  Oxwater Wheelworks  ,  brake cable replaced and gears indexed {i}  \n"
+            "WO-{i:06},  Oxwater Wheelworks  ,  brake cable replaced and gears indexed {i}  ,{serial}\n"
         ));
     }
     t
@@ -489,8 +501,9 @@ fn disk_full_during_apply_and_run_reports_no_space_left_and_leaves_the_store_unc
         "this test mounts a 2 MiB tmpfs to fill it, which needs root; run the test suite as root"
     );
     let exports = tempfile::tempdir().unwrap();
-    // About 1.2 MB: its copy and row index fit on the file system, a cleaned copy does not.
-    let text = padded_orders(15_000);
+    // About 3.4 MB, stored compressed in about 1 MB with its row index: its copy fits on the
+    // file system, a cleaned copy as well does not.
+    let text = padded_orders(30_000);
     let file = exports.path().join("oxwater.csv");
     fs::write(&file, &text).unwrap();
     let plan = exports.path().join("plan.json");

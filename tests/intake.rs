@@ -374,20 +374,16 @@ fn verify_names_a_flipped_byte_and_an_edited_audit_entry() {
     s.ok(&["receive", "a.csv", "--as", "things"]);
     assert_contains(&s.ok(&["verify"]), "intact");
     let hash = blake3::hash(b"id,v\n1,x\n2,y\n").to_hex().to_string();
-    let obj = s
-        .path()
-        .join("sluice-store/objects")
-        .join(&hash[..2])
-        .join(&hash[2..]);
-    let mut bytes = std::fs::read(&obj).unwrap();
-    bytes[3] ^= 0x01;
-    std::fs::write(&obj, &bytes).unwrap();
+    damage_object(&s.path().join(sluice::store::STORE_DIR), &hash, |bytes| {
+        bytes[3] ^= 0x01;
+    });
     let r = s.run(&["verify"]);
     assert_eq!(r.code, 1);
     assert_contains(&r.stdout, &hash);
     assert_contains(&r.stdout, "object_damaged");
-    bytes[3] ^= 0x01;
-    std::fs::write(&obj, &bytes).unwrap();
+    damage_object(&s.path().join(sluice::store::STORE_DIR), &hash, |bytes| {
+        bytes[3] ^= 0x01;
+    });
     assert_eq!(s.run(&["verify"]).code, 0);
 
     let db = rusqlite::Connection::open(s.path().join("sluice-store/lineage.db")).unwrap();

@@ -9,7 +9,7 @@ mod common;
 use std::path::Path;
 use std::process::Command;
 
-use common::{assert_contains, reference_python, Sandbox};
+use common::{assert_contains, damage_object, reference_python, Sandbox};
 use serde_json::Value;
 
 /// Runs a Python snippet of the reference environment with `args`; returns its standard output.
@@ -164,13 +164,11 @@ fn an_xlsx_sheet_is_taken_in_cell_for_cell_and_traced_to_its_cells() {
     let hash = blake3::hash(&bytes).to_hex().to_string();
     assert_eq!(conv["raw"]["hash"], hash.as_str());
     assert_eq!(conv["raw"]["n_bytes"], bytes.len() as u64);
-    let stored = std::fs::read(
-        s.path()
-            .join("sluice-store/objects")
-            .join(&hash[..2])
-            .join(&hash[2..]),
-    )
-    .expect("the workbook is stored as an object");
+    let stored = sluice::store::Store::open(&s.path().join(sluice::store::STORE_DIR))
+        .unwrap()
+        .objects
+        .read_all(&hash.parse().unwrap())
+        .expect("the workbook is stored as an object");
     assert_eq!(stored, bytes);
     assert_eq!(conv["format"], "xlsx");
     assert_eq!(conv["sheet"], "Work orders");
@@ -671,19 +669,10 @@ fn replay_converts_the_raw_workbook_again_and_stops_at_a_damaged_one() {
     // The workbook object damaged behind sluice's back: replay names it and stops.
     let conv = ingest_step(&s, "shop_orders")["params"]["convert"].clone();
     let hash = conv["raw"]["hash"].as_str().unwrap();
-    let p = s
-        .path()
-        .join("sluice-store/objects")
-        .join(&hash[..2])
-        .join(&hash[2..]);
-    let mut bytes = std::fs::read(&p).unwrap();
-    let last = bytes.len() - 1;
-    bytes[last] ^= 0x20;
-    let mut perms = std::fs::metadata(&p).unwrap().permissions();
-    #[allow(clippy::permissions_set_readonly_false)]
-    perms.set_readonly(false);
-    std::fs::set_permissions(&p, perms).unwrap();
-    std::fs::write(&p, &bytes).unwrap();
+    damage_object(&s.path().join(sluice::store::STORE_DIR), hash, |bytes| {
+        let last = bytes.len() - 1;
+        bytes[last] ^= 0x20;
+    });
     let out = s.run(&["reproduce", "shop_orders", "--json"]);
     assert_eq!(out.code, 1);
     let r: Value = serde_json::from_str(&out.stdout).unwrap();

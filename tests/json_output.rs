@@ -230,6 +230,7 @@ const CASES: &[(&str, &[&str], i32)] = &[
     ("reproduce", &["reproduce", "q3_by_shop", "--json"], 0),
     ("reproduce", &["reproduce", "reviewed_orders", "--json"], 1),
     ("verify", &["verify", "--json"], 0),
+    ("reclaim", &["reclaim", "--json"], 0),
     (
         "identify",
         &["identify", "q3_by_shop-report.html", "--json"],

@@ -166,7 +166,7 @@ fn amount_text(cents: i64, style: usize) -> String {
             1 => format!("{sign}{units}."),
             _ => format!("{sign}{int}.00"),
         }
-    } else if frac % 10 == 0 && style % 2 == 0 {
+    } else if frac % 10 == 0 && style.is_multiple_of(2) {
         format!("{sign}{int}.{}", frac / 10)
     } else {
         format!("{sign}{int}.{frac:02}")

@@ -14,7 +14,7 @@ mod common;
 use std::path::Path;
 use std::process::Command;
 
-use common::{assert_contains, Sandbox};
+use common::{assert_contains, damage_object, remove_object, Sandbox};
 
 fn git(dir: &Path, args: &[&str]) -> String {
     let out = Command::new("git")
@@ -83,11 +83,8 @@ fn runs_log(s: &Sandbox) -> String {
     std::fs::read_to_string(s.path().join("runs.log")).unwrap_or_default()
 }
 
-fn object_path(s: &Sandbox, hash: &str) -> std::path::PathBuf {
-    s.path()
-        .join("sluice-store/objects")
-        .join(&hash[..2])
-        .join(&hash[2..])
+fn store_dir(s: &Sandbox) -> std::path::PathBuf {
+    s.path().join(sluice::store::STORE_DIR)
 }
 
 fn hash_of(s: &Sandbox, reference: &str) -> String {
@@ -121,7 +118,7 @@ fn the_demo_summary_is_reproduced_step_by_step() {
 fn a_removed_intermediate_object_is_restored_by_replay() {
     let d = Sandbox::with_demo();
     let hash = hash_of(&d, "all_orders:v5");
-    std::fs::remove_file(object_path(&d, &hash)).unwrap();
+    remove_object(&store_dir(&d), &hash);
     let r = d.run(&["verify", "--json"]);
     assert_eq!(r.code, 1);
     assert_contains(&r.stdout, "object_missing");
@@ -143,14 +140,7 @@ fn damage_and_differences_stop_the_replay_where_they_are() {
     // Damaged raw data cannot be computed again: replay stops at it.
     let d = Sandbox::with_demo();
     let raw = hash_of(&d, "technicians:v1");
-    let p = object_path(&d, &raw);
-    let mut bytes = std::fs::read(&p).unwrap();
-    bytes[10] ^= 0x20;
-    let mut perms = std::fs::metadata(&p).unwrap().permissions();
-    #[allow(clippy::permissions_set_readonly_false)]
-    perms.set_readonly(false);
-    std::fs::set_permissions(&p, perms).unwrap();
-    std::fs::write(&p, &bytes).unwrap();
+    damage_object(&store_dir(&d), &raw, |bytes| bytes[10] ^= 0x20);
     let r = d.run(&["reproduce", "q3_by_shop", "--json"]);
     assert_eq!(r.code, 1);
     let report: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
@@ -180,7 +170,7 @@ fn damage_and_differences_stop_the_replay_where_they_are() {
     let files = |d: &Sandbox| {
         let count = |sub: &str| std::fs::read_dir(d.path().join(sub)).unwrap().count();
         (
-            count("sluice-store/objects"),
+            count("sluice-store/segments"),
             count("sluice-store/tmp"),
             d.ok(&["timeline", "--json"]),
         )
@@ -260,7 +250,7 @@ fn without_allow_exec_a_command_is_not_run_and_a_hand_edit_is_reapplied() {
 fn a_hand_edit_whose_output_object_is_gone_cannot_be_reapplied() {
     let d = Sandbox::with_demo();
     let hash = hash_of(&d, "reviewed_orders:v2");
-    std::fs::remove_file(object_path(&d, &hash)).unwrap();
+    remove_object(&store_dir(&d), &hash);
     let snapshot = d.path().join("sluice-store/lineage.db");
     let before = std::fs::read(&snapshot).unwrap();
     let r = d.run(&["reproduce", "reviewed_orders"]);
@@ -282,14 +272,7 @@ fn a_hand_edit_whose_output_object_is_gone_cannot_be_reapplied() {
 fn a_damaged_intermediate_object_is_named_by_replay_and_by_verify() {
     let d = Sandbox::with_demo();
     let hash = hash_of(&d, "all_orders:v5");
-    let p = object_path(&d, &hash);
-    let mut bytes = std::fs::read(&p).unwrap();
-    bytes[200] ^= 0x01;
-    let mut perms = std::fs::metadata(&p).unwrap().permissions();
-    #[allow(clippy::permissions_set_readonly_false)]
-    perms.set_readonly(false);
-    std::fs::set_permissions(&p, perms).unwrap();
-    std::fs::write(&p, &bytes).unwrap();
+    damage_object(&store_dir(&d), &hash, |bytes| bytes[200] ^= 0x01);
 
     let r = d.run(&["reproduce", "q3_by_shop", "--json"]);
     assert_eq!(r.code, 1);
@@ -565,7 +548,7 @@ fn an_outside_command_runs_again_from_its_recorded_commit_only_with_allow_exec()
     assert_eq!(snapshot, s.snapshot());
 
     // A removed output object is restored from the command's bytes.
-    std::fs::remove_file(object_path(&s, &recorded)).unwrap();
+    remove_object(&store_dir(&s), &recorded);
     let report = s.json(&["reproduce", "orders", "--allow-exec", "--json"]);
     assert_eq!(report["steps"][1]["result"], "restored");
     assert_contains(&s.ok(&["verify"]), "intact");

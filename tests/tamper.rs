@@ -46,11 +46,8 @@ fn db(s: &Sandbox) -> rusqlite::Connection {
     rusqlite::Connection::open(s.path().join("sluice-store/lineage.db")).unwrap()
 }
 
-fn object_path(s: &Sandbox, hash: &str) -> PathBuf {
-    s.path()
-        .join("sluice-store/objects")
-        .join(&hash[..2])
-        .join(&hash[2..])
+fn store_dir(s: &Sandbox) -> PathBuf {
+    s.path().join(sluice::store::STORE_DIR)
 }
 
 fn query_one(s: &Sandbox, sql: &str) -> String {
@@ -87,12 +84,6 @@ fn assert_named(found: &[Value], kind: &str, subject: &str, detail: &str) {
     eprintln!("tamper: detected as {kind} on {subject}");
 }
 
-fn flip_byte(path: &Path, at: usize) {
-    let mut bytes = std::fs::read(path).unwrap();
-    bytes[at] ^= 0x20;
-    std::fs::write(path, bytes).unwrap();
-}
-
 #[test]
 fn one_flipped_byte_in_each_kind_of_object_is_named_by_hash() {
     for (what, sql) in [
@@ -111,9 +102,11 @@ fn one_flipped_byte_in_each_kind_of_object_is_named_by_hash() {
     ] {
         let s = store();
         let hash = query_one(&s, sql);
-        let path = object_path(&s, &hash);
-        let len = std::fs::metadata(&path).unwrap().len() as usize;
-        flip_byte(&path, len / 2);
+        let mut len = 0;
+        damage_object(&store_dir(&s), &hash, |b| {
+            len = b.len();
+            b[len / 2] ^= 0x20;
+        });
         let found = problems(&s);
         eprintln!("tamper: flipped byte {} of the {what} object", len / 2);
         assert_named(&found, "object_damaged", &hash, "hashes to");
@@ -127,15 +120,17 @@ fn a_truncated_object_is_named_with_both_sizes() {
         &s,
         "SELECT hash FROM versions WHERE seq = 1 AND dataset_id = 1",
     );
-    let path = object_path(&s, &hash);
-    let bytes = std::fs::read(&path).unwrap();
-    std::fs::write(&path, &bytes[..bytes.len() - 7]).unwrap();
+    let mut len = 0;
+    damage_object(&store_dir(&s), &hash, |b| {
+        len = b.len();
+        b.truncate(len - 7);
+    });
     let found = problems(&s);
     assert_named(
         &found,
         "object_size",
         &hash,
-        &format!("{} bytes, {} were recorded", bytes.len() - 7, bytes.len()),
+        &format!("{} bytes, {} were recorded", len - 7, len),
     );
     assert_named(&found, "object_damaged", &hash, "hashes to");
 }
@@ -144,7 +139,7 @@ fn a_truncated_object_is_named_with_both_sizes() {
 fn a_missing_object_is_named_with_its_path() {
     let s = store();
     let hash = query_one(&s, "SELECT provenance FROM steps WHERE operation = 'trim'");
-    std::fs::remove_file(object_path(&s, &hash)).unwrap();
+    remove_object(&store_dir(&s), &hash);
     let found = problems(&s);
     assert_named(&found, "object_missing", &hash, "blob object is missing");
 }

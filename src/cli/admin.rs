@@ -1,5 +1,6 @@
 //! Commands about sluice itself and its setting: `demo`, `completions`, `manual`, `upgrade`
-//! (old plan and rules files to the current form) and `identity` (who is acting).
+//! (old plan and rules files to the current form), `identity` (who is acting) and `reclaim`
+//! (the space of objects nothing refers to).
 
 use std::io::{self, Write};
 use std::path::Path;
@@ -266,4 +267,33 @@ pub fn demo_next(out: &mut impl Write, r: &DemoReport) -> io::Result<()> {
         writeln!(out, "  {c}")?;
     }
     Ok(())
+}
+
+/// `reclaim`: removes objects nothing refers to and packs small segments (recorded in the
+/// audit log).
+pub fn reclaim(ctx: &Context<'_>, as_json: bool, out: &mut impl Write) -> anyhow::Result<ExitCode> {
+    let mut store = ctx.open_store()?;
+    let agent = ctx.agent(Some(&store))?;
+    let done = store.reclaim(&agent, &sluice::clock::now_rfc3339())?;
+    if as_json {
+        json(out, &done)?;
+    } else {
+        reclaim_text(out, &done)?;
+    }
+    Ok(0)
+}
+
+pub fn reclaim_text(out: &mut impl Write, r: &sluice::store::objects::Reclaimed) -> io::Result<()> {
+    writeln!(
+        out,
+        "reclaimed {}: {} removed, {} kept in {} (were {}, {}); {} of the earlier layout moved into a segment, {} removed",
+        plural(r.bytes_before.saturating_sub(r.bytes_after), "byte", "bytes"),
+        plural(r.objects_removed, "unreferenced object", "unreferenced objects"),
+        plural(r.objects_kept, "object", "objects"),
+        plural(r.segments_after, "segment", "segments"),
+        plural(r.segments_before, "segment", "segments"),
+        plural(r.bytes_before, "byte", "bytes"),
+        plural(r.loose_converted, "loose object", "loose objects"),
+        plural(r.temp_files_removed, "leftover temporary file", "leftover temporary files"),
+    )
 }

@@ -366,6 +366,19 @@ pub enum Command {
         json: bool,
     },
 
+    /// Give back the space of objects no version or step refers to, and pack small segments
+    /// (recorded in the audit log)
+    #[command(
+        after_help = "Objects nothing refers to are left by interrupted or failed commands; they are never read. \
+        Reclaim waits for commands that are writing objects, re-hashes every object it keeps, and also moves \
+        objects of the earlier one-file-per-object layout into a segment.\n\nExample:\n  sluice reclaim"
+    )]
+    Reclaim {
+        /// Print JSON (fields: examples/reference.md, "JSON output"; schema/output/)
+        #[arg(long)]
+        json: bool,
+    },
+
     /// Compare two versions: rows kept, added and removed, every changed cell, and added,
     /// removed, renamed or reordered columns
     #[command(

@@ -69,8 +69,29 @@ impl Context<'_> {
     }
 }
 
+/// In debug builds only (the crash tests' binary): `SLUICE_TEST_IO_POINT=stop:N` ends the
+/// process at the Nth I/O point of its object writes as a kill would, `fail:N` makes that
+/// point fail (`store::objects::Countdown`).
+fn install_test_countdown() {
+    if !cfg!(debug_assertions) {
+        return;
+    }
+    let Ok(v) = std::env::var("SLUICE_TEST_IO_POINT") else {
+        return;
+    };
+    let Some((mode, n)) = v.split_once(':') else {
+        return;
+    };
+    if let Ok(n) = n.parse::<u64>() {
+        sluice::store::objects::install_countdown(std::sync::Arc::new(
+            sluice::store::objects::Countdown::new(n, mode == "stop"),
+        ));
+    }
+}
+
 /// Runs a parsed command line; returns the exit code.
 pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
+    install_test_countdown();
     let cwd = std::env::current_dir().context("cannot read the working directory")?;
     let ctx = Context { cli: &cli, cwd };
     if let Some(mib) = cli.max_record_mib {
@@ -125,6 +146,7 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             format,
         } => query::retrieve(&ctx, reference, output.as_deref(), *format, out),
         Command::Verify { json, deep } => query::verify(&ctx, *deep, *json, out),
+        Command::Reclaim { json } => admin::reclaim(&ctx, *json, out),
         Command::Compare(a) => compare::compare(&ctx, a, out),
         Command::Reproduce {
             reference,

@@ -1186,6 +1186,16 @@ impl Tx<'_> {
         Ok(())
     }
 
+    /// The hash of every object the database records (`reclaim` keeps exactly these).
+    pub fn object_hashes(&self) -> Result<Vec<String>> {
+        let mut st = self
+            .tx
+            .prepare("SELECT hash FROM objects ORDER BY hash")
+            .map_err(db_err)?;
+        let rows = st.query_map([], |r| r.get(0)).map_err(db_err)?;
+        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+    }
+
     /// Appends one entry to the audit chain, inside this transaction.
     pub fn audit(
         &mut self,

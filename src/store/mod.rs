@@ -9,6 +9,8 @@
 pub mod audit;
 pub mod lineage;
 pub mod objects;
+pub mod reclaim;
+pub mod segments;
 
 use std::fs;
 use std::path::{Path, PathBuf};
@@ -23,7 +25,7 @@ fn leftover_pid(name: &str) -> Option<u32> {
     let kind = parts.next()?;
     let pid = parts.next()?.parse::<u32>().ok()?;
     parts.next()?;
-    ["obj", "exec", "replay", "revert", "compare"]
+    ["obj", "reclaim", "exec", "replay", "revert", "compare"]
         .contains(&kind)
         .then_some(pid)
 }
@@ -63,15 +65,16 @@ impl Store {
             return Err(ErrorKind::StoreExists { path: dir }.into());
         }
         fs::create_dir_all(project).map_err(|e| Error::io(project, e))?;
-        for sub in ["objects", "tmp"] {
+        for sub in [segments::SEGMENTS_DIR, "tmp"] {
             let p = dir.join(sub);
             fs::create_dir_all(&p).map_err(|e| Error::io(&p, e))?;
         }
         let readme = dir.join("README");
         fs::write(
             &readme,
-            "This folder is a sluice store: immutable objects named by their BLAKE3 hash, and the\n\
-             lineage database lineage.db. It holds copies of raw data, personal data included:\n\
+            "This folder is a sluice store: immutable objects named by their BLAKE3 hash, kept\n\
+             compressed (Zstandard) in the segment files under segments/, and the lineage\n\
+             database lineage.db. It holds copies of raw data, personal data included:\n\
              keep it where only the people allowed to read that data can read it.\n\
              Do not edit anything here by hand; run `sluice verify` to check it.\n",
         )
@@ -128,11 +131,17 @@ impl Store {
         // The store never follows a symbolic link out of `sluice-store/`: a received store whose
         // database, object folder or temporary folder is a link could make sluice read or
         // write anywhere. (`sluice-store` itself may be a link the user made.)
-        for part in [DB_FILE, "objects", "tmp"] {
+        for part in [
+            DB_FILE,
+            "objects",
+            segments::SEGMENTS_DIR,
+            "tmp",
+            objects::WRITERS_LOCK,
+        ] {
             let p = dir.join(part);
             if fs::symlink_metadata(&p).is_ok_and(|m| m.file_type().is_symlink()) {
                 return Err(ErrorKind::Usage(format!(
-                    "{} is a symbolic link; a store's lineage.db, objects/ and tmp/ must be inside its folder, never links out of it; replace the link with what it points to, then run `sluice verify`",
+                    "{} is a symbolic link; a store's lineage.db, segments/, objects/, tmp/ and writers.lock must be inside its folder, never links out of it; replace the link with what it points to, then run `sluice verify`",
                     p.display()
                 ))
                 .into());
@@ -205,8 +214,8 @@ impl Store {
     }
 
     /// Removes the temporary files and folders of commands that are no longer running: every
-    /// name sluice gives in `tmp/` is `KIND-PID-...` (`obj-` for objects being written,
-    /// `exec-`, `replay-`, `revert-`, `compare-` for folders), and an entry is removed only when
+    /// name sluice gives in `tmp/` is `KIND-PID-...` (`obj-` for segments being written,
+    /// `reclaim-` for the segment `reclaim` packs, `exec-`, `replay-`, `revert-`, `compare-` for folders), and an entry is removed only when
     /// its process is gone (no `/proc/PID`, or a zombie), so a concurrent writer's files are
     /// never touched. Where `/proc` cannot tell, nothing is removed. Best effort: a failure to
     /// remove is left for `verify` to count. Returns how many entries were removed.
@@ -263,4 +272,24 @@ fn legacy_check(dir: &Path) -> Result<()> {
         project,
     }
     .into())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The sweep reads the process id out of every name the object writer and `reclaim` give
+    /// their segments in `tmp/`, so it can tell a dead writer's file from a live one's.
+    #[test]
+    fn the_sweep_reads_the_pid_of_every_temporary_segment_name() {
+        let me = std::process::id();
+        for kind in ["obj", "reclaim"] {
+            let name = objects::temp_name(kind);
+            assert_eq!(leftover_pid(&name), Some(me), "{name}");
+        }
+        assert_eq!(leftover_pid("obj-12-0-000000001.part"), Some(12));
+        assert_eq!(leftover_pid("notes-12-0.txt"), None);
+        assert_eq!(leftover_pid("obj-x-0.part"), None);
+        assert_eq!(leftover_pid("reclaim-12"), None);
+    }
 }

@@ -1,17 +1,22 @@
-//! Immutable, content-addressed object files under `.sluice/objects/`.
+//! The store's objects: immutable byte strings named by the BLAKE3 hash of their
+//! (uncompressed) bytes, kept compressed in segment files under `segments/` (format and
+//! guarantees in [`super::segments`]).
 //!
-//! An object is named by the BLAKE3 hash of its bytes and lives at `objects/ab/cdef…` (the
-//! first two hex digits are a fan-out folder). It is written to `.sluice/tmp/`, fsynced, renamed
-//! into place and its folder fsynced; after that it is never modified. Objects are stored
-//! uncompressed: `cat` is then a plain copy, and the bytes on disk are the bytes that were hashed,
-//! so anyone can check an object with any BLAKE3 tool. Compression can come later behind the
-//! same [`ObjectBackend`] trait, which also lets tests inject write failures.
+//! A new object is compressed frame by frame into a segment of its own under `tmp/`, fsynced,
+//! renamed into `segments/` and the folder fsynced; after that it is never modified. `cat`
+//! decodes it and re-hashes what it writes, so the bytes are the originals. `reclaim` packs
+//! small segments together and drops objects nothing refers to. The [`ObjectBackend`] trait is
+//! the seam tests use to inject faults (and [`Countdown`] the way to fail or stop at any one
+//! I/O point of the real backend).
 
+use std::collections::{HashMap, HashSet};
 use std::fs::{self, File, OpenOptions};
 use std::io::{self, Read, Write};
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::{Arc, Mutex};
 
+use super::segments::{self, Entry, SeekTable, SegmentWriter, SEGMENTS_DIR};
 use crate::error::{ErrorKind, Result};
 use crate::hash::{for_each_piece, Hash};
 
@@ -57,38 +62,115 @@ pub trait ObjectBackend: Send + Sync {
     fn list(&self) -> io::Result<(Vec<Hash>, Vec<PathBuf>)>;
     /// A description of where an object lives, for messages.
     fn describe(&self, hash: &Hash) -> PathBuf;
+    /// Called before a command writes objects: the real backend takes the writers' lock
+    /// shared so that `reclaim` waits until the command has referenced them or ended.
+    fn hold_for_writing(&self) -> io::Result<()> {
+        Ok(())
+    }
+    /// Like `create_temp`, for an object read mostly a few bytes at a time by offset (a row
+    /// index): the real backend compresses it in frames of `frame_size` bytes. The default
+    /// ignores the frame size.
+    fn create_temp_framed(&self, frame_size: u32) -> io::Result<Box<dyn TempObject>> {
+        let _ = frame_size;
+        self.create_temp()
+    }
+    /// Publishes every object of a finished segment file (a stage's); the default copies
+    /// them through `create_temp`.
+    fn adopt_segment(&self, path: &Path) -> io::Result<()> {
+        adopt_by_copy(self, path)
+    }
 }
 
-/// The real backend: files under a `.sluice/` folder.
+/// Fault injection for tests: counts the I/O points of object writes (each write of a frame,
+/// seek table, index or tail; each sync; each rename; each folder sync) and fails or stops the
+/// process at the Nth. `stop` exits at once with [`STOPPED_EXIT`] without cleaning up, as a
+/// killed process would; otherwise the Nth point returns an error and later points go on.
+pub struct Countdown {
+    at: u64,
+    stop: bool,
+    seen: AtomicU64,
+}
+
+/// The exit status of a process stopped by a [`Countdown`].
+pub const STOPPED_EXIT: i32 = 86;
+
+impl Countdown {
+    pub fn new(at: u64, stop: bool) -> Countdown {
+        Countdown {
+            at,
+            stop,
+            seen: AtomicU64::new(0),
+        }
+    }
+
+    /// How many I/O points have been passed.
+    pub fn seen(&self) -> u64 {
+        self.seen.load(Ordering::SeqCst)
+    }
+
+    pub fn tick(&self, what: &str) -> io::Result<()> {
+        let n = self.seen.fetch_add(1, Ordering::SeqCst) + 1;
+        if n != self.at {
+            return Ok(());
+        }
+        if self.stop {
+            std::process::exit(STOPPED_EXIT);
+        }
+        Err(io::Error::other(format!(
+            "injected failure at I/O point {n} ({what})"
+        )))
+    }
+}
+
+static COUNTDOWN: std::sync::OnceLock<Arc<Countdown>> = std::sync::OnceLock::new();
+
+/// Installs a countdown every file-system backend of this process consults (the binary does
+/// this in debug builds only, for the crash tests).
+pub fn install_countdown(c: Arc<Countdown>) {
+    let _ = COUNTDOWN.set(c);
+}
+
+/// The lock file writers hold shared while they may have objects not yet referenced, and
+/// `reclaim` holds exclusive.
+pub const WRITERS_LOCK: &str = "writers.lock";
+
+/// The real backend: segment files under `segments/` (see [`segments`]); objects of the
+/// earlier loose layout (`objects/`, one file per object) are still read until `reclaim`
+/// moves them into a segment.
 pub struct FsBackend {
-    objects: PathBuf,
+    shared: Arc<Shared>,
+}
+
+struct Shared {
+    root: PathBuf,
+    segments: PathBuf,
+    loose: PathBuf,
     tmp: PathBuf,
+    index: Mutex<Index>,
+    tables: Mutex<HashMap<Hash, Arc<SeekTable>>>,
+    writing: Mutex<Option<File>>,
+    faults: Option<Arc<Countdown>>,
+    level: i32,
+    frame_size: u32,
+}
+
+#[derive(Default)]
+struct Index {
+    loaded: bool,
+    known: HashSet<PathBuf>,
+    at: HashMap<Hash, (Arc<PathBuf>, Entry)>,
+    damaged: Vec<(PathBuf, String)>,
 }
 
 static TEMP_COUNTER: AtomicU64 = AtomicU64::new(0);
 
-impl FsBackend {
-    pub fn new(store_dir: &Path) -> Self {
-        FsBackend {
-            objects: store_dir.join("objects"),
-            tmp: store_dir.join("tmp"),
-        }
-    }
-
-    fn path_of(&self, hash: &Hash) -> PathBuf {
-        let hex = hash.hex();
-        self.objects.join(&hex[..2]).join(&hex[2..])
-    }
-
-    /// The path of an object, refused when its fan-out folder is a symbolic link (which would
-    /// lead reads and writes out of the store).
-    fn checked_path_of(&self, hash: &Hash) -> io::Result<PathBuf> {
-        let p = self.path_of(hash);
-        if let Some(fan) = p.parent() {
-            no_link(fan)?;
-        }
-        Ok(p)
-    }
+pub(crate) fn temp_name(what: &str) -> String {
+    let n = TEMP_COUNTER.fetch_add(1, Ordering::Relaxed);
+    let nanos = std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .map(|d| d.subsec_nanos())
+        .unwrap_or(0);
+    format!("{what}-{}-{n}-{nanos:09}.part", std::process::id())
 }
 
 /// Refuses a path that is a symbolic link.
@@ -102,16 +184,455 @@ fn no_link(p: &Path) -> io::Result<()> {
     }
 }
 
-struct FsTemp {
-    file: Option<File>,
+fn sync_dir(dir: &Path) -> io::Result<()> {
+    File::open(dir)?.sync_all()
+}
+
+/// What `reclaim` did.
+#[derive(Debug, Clone, Default, PartialEq, Eq, serde::Serialize)]
+pub struct Reclaimed {
+    pub segments_before: u64,
+    pub segments_after: u64,
+    pub bytes_before: u64,
+    pub bytes_after: u64,
+    pub objects_kept: u64,
+    pub objects_removed: u64,
+    pub loose_converted: u64,
+    pub temp_files_removed: u64,
+}
+
+/// Segments smaller than this are packed together by `reclaim` even when all they hold is
+/// referenced.
+pub const PACK_BELOW: u64 = 8 << 20;
+
+impl FsBackend {
+    pub fn new(store_dir: &Path) -> Self {
+        Self::with_faults(store_dir, COUNTDOWN.get().cloned())
+    }
+
+    /// A backend that consults `faults` at every I/O point of its writes.
+    pub fn with_faults(store_dir: &Path, faults: Option<Arc<Countdown>>) -> Self {
+        FsBackend {
+            shared: Arc::new(Shared {
+                root: store_dir.to_path_buf(),
+                segments: store_dir.join(SEGMENTS_DIR),
+                loose: store_dir.join("objects"),
+                tmp: store_dir.join("tmp"),
+                index: Mutex::new(Index::default()),
+                tables: Mutex::new(HashMap::new()),
+                writing: Mutex::new(None),
+                faults,
+                level: segments::LEVEL,
+                frame_size: segments::FRAME_SIZE,
+            }),
+        }
+    }
+
+    /// The same store with another compression level and frame size for new objects (the
+    /// benchmark measures them this way).
+    pub fn with_compression(store_dir: &Path, level: i32, frame_size: u32) -> Self {
+        let mut b = Self::new(store_dir);
+        if let Some(s) = Arc::get_mut(&mut b.shared) {
+            s.level = level;
+            s.frame_size = frame_size.clamp(1, segments::MAX_FRAME_SIZE);
+        }
+        b
+    }
+
+    /// Where a segment object lives: its segment and index entry.
+    pub fn locate(&self, hash: &Hash) -> Option<(PathBuf, Entry)> {
+        self.shared.locate(hash).map(|(p, e)| ((*p).clone(), e))
+    }
+
+    /// Every segment with the entries of its index, or what is wrong with it; read afresh.
+    pub fn segments(&self) -> io::Result<Vec<(PathBuf, io::Result<Vec<Entry>>)>> {
+        no_link(&self.shared.segments)?;
+        let (segs, _) = segments::list(&self.shared.segments)?;
+        Ok(segs
+            .into_iter()
+            .map(|p| {
+                let r = segments::read_index(&p);
+                (p, r)
+            })
+            .collect())
+    }
+
+    /// Re-hashes the object an entry of segment `path` describes, frame by frame; returns the
+    /// hash of its bytes.
+    pub fn hash_entry(path: &Path, e: &Entry) -> io::Result<Hash> {
+        let file = File::open(path)?;
+        let table = Arc::new(segments::read_seek_table(&file, e)?);
+        let (h, n) = crate::hash::hash_reader(segments::FrameReader::new(file, table)?)?;
+        if n != e.raw {
+            return Err(io::Error::new(
+                io::ErrorKind::InvalidData,
+                format!("decodes to {n} bytes, its index entry says {}", e.raw),
+            ));
+        }
+        Ok(h)
+    }
+
+    /// Removes every object no name in `live` refers to, packs small segments and the loose
+    /// objects of the earlier layout into one new segment, and removes leftover temporary
+    /// object files. The caller holds [`FsBackend::exclusive`] and the write transaction.
+    pub fn reclaim(&self, live: &HashSet<Hash>) -> io::Result<Reclaimed> {
+        let sh = &self.shared;
+        let mut out = Reclaimed::default();
+        let segs = self.segments()?;
+        let mut rewrite = Vec::new();
+        let mut placed: HashSet<Hash> = HashSet::new();
+        for (path, entries) in &segs {
+            let len = fs::symlink_metadata(path)?.len();
+            out.segments_before += 1;
+            out.bytes_before += len;
+            let entries = entries.as_ref().map_err(|e| {
+                io::Error::new(
+                    io::ErrorKind::InvalidData,
+                    format!(
+                        "{} is damaged ({e}); run `sluice verify`, and restore the store from a copy before reclaiming",
+                        path.display()
+                    ),
+                )
+            })?;
+            let all_live = entries
+                .iter()
+                .all(|e| live.contains(&e.hash) && !placed.contains(&e.hash));
+            let unique: HashSet<Hash> = entries.iter().map(|e| e.hash).collect();
+            if all_live && unique.len() == entries.len() && len >= PACK_BELOW {
+                placed.extend(unique);
+            } else {
+                rewrite.push((path.clone(), entries.clone()));
+            }
+        }
+        let (loose, _) = list_loose(&sh.loose)?;
+        // A lone small segment with nothing to drop stays as it is.
+        if loose.is_empty() && rewrite.len() == 1 {
+            let entries = &rewrite[0].1;
+            let unique: HashSet<Hash> = entries.iter().map(|e| e.hash).collect();
+            if unique.len() == entries.len()
+                && entries
+                    .iter()
+                    .all(|e| live.contains(&e.hash) && !placed.contains(&e.hash))
+            {
+                rewrite.clear();
+            }
+        }
+        for h in &loose {
+            out.bytes_before += fs::symlink_metadata(sh.loose_path(h))?.len();
+        }
+        let tick = |what: &str| sh.tick(what);
+        let mut writer: Option<(SegmentWriter, PathBuf)> = None;
+        let open_writer = |writer: &mut Option<(SegmentWriter, PathBuf)>| -> io::Result<()> {
+            if writer.is_none() {
+                no_link(&sh.tmp)?;
+                fs::create_dir_all(&sh.tmp)?;
+                let p = sh.tmp.join(temp_name("reclaim"));
+                *writer = Some((
+                    SegmentWriter::create(&p, sh.level, sh.frame_size, &tick)?,
+                    p,
+                ));
+            }
+            Ok(())
+        };
+        for (path, entries) in &rewrite {
+            let file = File::open(path)?;
+            for e in entries {
+                if !live.contains(&e.hash) || placed.contains(&e.hash) {
+                    out.objects_removed += u64::from(!live.contains(&e.hash));
+                    continue;
+                }
+                let actual = Self::hash_entry(path, e)?;
+                if actual != e.hash {
+                    return Err(io::Error::new(
+                        io::ErrorKind::InvalidData,
+                        format!(
+                            "object {} in {} is damaged (its bytes hash to {actual}); run `sluice verify` before reclaiming",
+                            e.hash,
+                            path.display()
+                        ),
+                    ));
+                }
+                open_writer(&mut writer)?;
+                if let Some((w, _)) = writer.as_mut() {
+                    w.copy_stored(&file, e, &tick)?;
+                }
+                placed.insert(e.hash);
+            }
+        }
+        for h in &loose {
+            if !live.contains(h) || placed.contains(h) {
+                out.objects_removed += u64::from(!live.contains(h));
+                continue;
+            }
+            open_writer(&mut writer)?;
+            if let Some((w, _)) = writer.as_mut() {
+                let mut f = File::open(sh.loose_path(h))?;
+                let mut hasher = blake3::Hasher::new();
+                let mut buf = vec![0u8; 1 << 20];
+                loop {
+                    let n = f.read(&mut buf)?;
+                    if n == 0 {
+                        break;
+                    }
+                    hasher.update(&buf[..n]);
+                    w.write(&buf[..n], &tick)?;
+                }
+                if hasher.finalize().as_bytes() != h.as_bytes() {
+                    return Err(io::Error::new(
+                        io::ErrorKind::InvalidData,
+                        format!(
+                            "loose object {h} is damaged; run `sluice verify` before reclaiming"
+                        ),
+                    ));
+                }
+                w.end_object(h, &tick)?;
+            }
+            placed.insert(*h);
+            out.loose_converted += 1;
+        }
+        if let Some((w, temp)) = writer {
+            w.finish(&tick)?;
+            fs::create_dir_all(&sh.segments)?;
+            let dest = sh.segments.join(segments::fresh_name(
+                TEMP_COUNTER.fetch_add(1, Ordering::Relaxed),
+            ));
+            sh.tick("rename")?;
+            fs::rename(&temp, &dest)?;
+            sh.tick("sync")?;
+            sync_dir(&sh.segments)?;
+        }
+        // Only now, with every kept object durable in its new segment, the old bytes go.
+        for (path, _) in &rewrite {
+            fs::remove_file(path)?;
+        }
+        for h in &loose {
+            fs::remove_file(sh.loose_path(h))?;
+        }
+        if sh.loose.is_dir() {
+            for fan in fs::read_dir(&sh.loose)?.flatten() {
+                let _ = fs::remove_dir(fan.path());
+            }
+            let _ = fs::remove_dir(&sh.loose);
+        }
+        if let Ok(rd) = fs::read_dir(&sh.tmp) {
+            for e in rd.flatten() {
+                if e.file_type().is_ok_and(|t| t.is_file())
+                    && e.file_name().to_string_lossy().ends_with(".part")
+                {
+                    fs::remove_file(e.path())?;
+                    out.temp_files_removed += 1;
+                }
+            }
+        }
+        sh.tick("sync")?;
+        sync_dir(&sh.segments).or_else(|e| {
+            if e.kind() == io::ErrorKind::NotFound {
+                Ok(())
+            } else {
+                Err(e)
+            }
+        })?;
+        *sh.index.lock().unwrap_or_else(|p| p.into_inner()) = Index::default();
+        sh.tables.lock().unwrap_or_else(|p| p.into_inner()).clear();
+        for (path, r) in self.segments()? {
+            out.segments_after += 1;
+            out.bytes_after += fs::symlink_metadata(&path)?.len();
+            out.objects_kept += r.map_or(0, |e| e.len() as u64);
+        }
+        Ok(out)
+    }
+
+    /// Takes the writers' lock exclusively (waiting for every process that may hold objects
+    /// not yet referenced); released when the returned file is dropped.
+    pub fn exclusive(&self) -> io::Result<File> {
+        let f = self.shared.lock_file()?;
+        f.lock()?;
+        Ok(f)
+    }
+}
+
+/// The loose objects of the earlier layout under `dir` (`ab/cdef…`), and strays.
+fn list_loose(dir: &Path) -> io::Result<(Vec<Hash>, Vec<PathBuf>)> {
+    let mut found = Vec::new();
+    let mut strays = Vec::new();
+    if !dir.exists() {
+        return Ok((found, strays));
+    }
+    no_link(dir)?;
+    for fan in fs::read_dir(dir)? {
+        let fan = fan?;
+        let fan_name = fan.file_name().to_string_lossy().into_owned();
+        if !fan.file_type()?.is_dir() {
+            strays.push(fan.path());
+            continue;
+        }
+        for obj in fs::read_dir(fan.path())? {
+            let obj = obj?;
+            let name = format!("{fan_name}{}", obj.file_name().to_string_lossy());
+            match name.parse::<Hash>() {
+                Ok(h) if obj.file_type()?.is_file() && name == h.hex() => found.push(h),
+                _ => strays.push(obj.path()),
+            }
+        }
+    }
+    found.sort();
+    strays.sort();
+    Ok((found, strays))
+}
+
+impl Shared {
+    fn tick(&self, what: &str) -> io::Result<()> {
+        match &self.faults {
+            Some(c) => c.tick(what),
+            None => Ok(()),
+        }
+    }
+
+    fn lock_file(&self) -> io::Result<File> {
+        no_link(&self.root.join(WRITERS_LOCK))?;
+        OpenOptions::new()
+            .create(true)
+            .truncate(false)
+            .write(true)
+            .open(self.root.join(WRITERS_LOCK))
+    }
+
+    /// Holds the writers' lock shared from the first object this process writes until it
+    /// ends, so that `reclaim` never removes an object written but not yet referenced.
+    fn hold_for_writing(&self) -> io::Result<()> {
+        let mut w = self.writing.lock().unwrap_or_else(|p| p.into_inner());
+        if w.is_none() {
+            let f = self.lock_file()?;
+            f.lock_shared()?;
+            *w = Some(f);
+        }
+        Ok(())
+    }
+
+    fn loose_path(&self, hash: &Hash) -> PathBuf {
+        let hex = hash.hex();
+        self.loose.join(&hex[..2]).join(&hex[2..])
+    }
+
+    /// A loose object's path, refused when its fan-out folder is a symbolic link.
+    fn checked_loose_path(&self, hash: &Hash) -> io::Result<PathBuf> {
+        let p = self.loose_path(hash);
+        no_link(&self.loose)?;
+        if let Some(fan) = p.parent() {
+            no_link(fan)?;
+        }
+        Ok(p)
+    }
+
+    /// Reads the index of every segment not read yet (all of them again when `full`).
+    fn refresh(&self, idx: &mut Index, full: bool) -> io::Result<()> {
+        if full {
+            *idx = Index::default();
+        }
+        idx.loaded = true;
+        no_link(&self.segments)?;
+        let (segs, _) = segments::list(&self.segments)?;
+        for p in segs {
+            if idx.known.contains(&p) {
+                continue;
+            }
+            idx.known.insert(p.clone());
+            match segments::read_index(&p) {
+                Ok(entries) => {
+                    let shared = Arc::new(p);
+                    for e in entries {
+                        idx.at.entry(e.hash).or_insert((Arc::clone(&shared), e));
+                    }
+                }
+                Err(e) => idx.damaged.push((p, e.to_string())),
+            }
+        }
+        Ok(())
+    }
+
+    fn locate(&self, hash: &Hash) -> Option<(Arc<PathBuf>, Entry)> {
+        let mut idx = self.index.lock().unwrap_or_else(|p| p.into_inner());
+        if !idx.loaded {
+            let _ = self.refresh(&mut idx, false);
+        }
+        if let Some(found) = idx.at.get(hash) {
+            return Some(found.clone());
+        }
+        // Another process may have published a segment since.
+        let _ = self.refresh(&mut idx, false);
+        idx.at.get(hash).cloned()
+    }
+
+    fn open_segment(&self, path: &Path) -> io::Result<File> {
+        no_link(&self.segments)?;
+        if !fs::symlink_metadata(path)?.file_type().is_file() {
+            return Err(io::Error::new(
+                io::ErrorKind::InvalidData,
+                "a segment that is not a plain file",
+            ));
+        }
+        File::open(path)
+    }
+
+    fn table(&self, file: &File, e: &Entry) -> io::Result<Arc<SeekTable>> {
+        if let Some(t) = self
+            .tables
+            .lock()
+            .unwrap_or_else(|p| p.into_inner())
+            .get(&e.hash)
+        {
+            return Ok(Arc::clone(t));
+        }
+        let t = Arc::new(segments::read_seek_table(file, e)?);
+        self.tables
+            .lock()
+            .unwrap_or_else(|p| p.into_inner())
+            .insert(e.hash, Arc::clone(&t));
+        Ok(t)
+    }
+
+    /// Runs `f` on the segment object `hash`: `Ok(None)` when no segment holds it. A segment
+    /// removed meanwhile (a `reclaim` moved its objects) makes the index be read again once.
+    fn with_object<T>(
+        &self,
+        hash: &Hash,
+        f: impl Fn(File, Arc<SeekTable>) -> io::Result<T>,
+    ) -> io::Result<Option<T>> {
+        for attempt in 0..2 {
+            let Some((path, e)) = self.locate(hash) else {
+                return Ok(None);
+            };
+            match self.open_segment(&path) {
+                Ok(file) => {
+                    let table = self.table(&file, &e)?;
+                    return f(file, table).map(Some);
+                }
+                Err(err) if err.kind() == io::ErrorKind::NotFound && attempt == 0 => {
+                    let mut idx = self.index.lock().unwrap_or_else(|p| p.into_inner());
+                    self.refresh(&mut idx, true)?;
+                    self.tables
+                        .lock()
+                        .unwrap_or_else(|p| p.into_inner())
+                        .clear();
+                }
+                Err(err) => return Err(err),
+            }
+        }
+        Ok(None)
+    }
+}
+
+/// An object being written into a segment of its own under `tmp/`.
+struct SegTemp {
+    writer: Option<SegmentWriter>,
     path: PathBuf,
-    objects: PathBuf,
+    shared: Arc<Shared>,
     /// A flush of the bytes written so far, running on a thread of its own so that writing
     /// goes on meanwhile; `persist` waits for it and reports its error.
     syncing: Option<std::thread::JoinHandle<io::Result<()>>>,
 }
 
-impl FsTemp {
+impl SegTemp {
     fn wait_for_sync(&mut self) -> io::Result<()> {
         match self.syncing.take() {
             Some(t) => t
@@ -122,16 +643,15 @@ impl FsTemp {
     }
 }
 
-impl Write for FsTemp {
+impl Write for SegTemp {
     fn write(&mut self, buf: &[u8]) -> io::Result<usize> {
-        match &mut self.file {
-            Some(f) => f.write(buf),
-            None => Err(io::Error::other("temporary object already closed")),
-        }
+        self.write_all(buf)?;
+        Ok(buf.len())
     }
     fn write_all(&mut self, buf: &[u8]) -> io::Result<()> {
-        match &mut self.file {
-            Some(f) => f.write_all(buf),
+        let sh = Arc::clone(&self.shared);
+        match &mut self.writer {
+            Some(w) => w.write(buf, &|what| sh.tick(what)),
             None => Err(io::Error::other("temporary object already closed")),
         }
     }
@@ -140,15 +660,16 @@ impl Write for FsTemp {
     }
 }
 
-impl TempObject for FsTemp {
+impl TempObject for SegTemp {
     fn sync_so_far(&mut self) -> io::Result<()> {
         // One flush at a time: a flush still running covers most of what was written since.
         if self.syncing.as_ref().is_some_and(|t| !t.is_finished()) {
             return Ok(());
         }
         self.wait_for_sync()?;
-        if let Some(f) = &self.file {
-            let f = f.try_clone()?;
+        if let Some(w) = &self.writer {
+            self.shared.tick("sync")?;
+            let f = w.file().try_clone()?;
             self.syncing = Some(
                 std::thread::Builder::new()
                     .name("sluice-flush".into())
@@ -160,73 +681,95 @@ impl TempObject for FsTemp {
 
     fn persist(mut self: Box<Self>, hash: &Hash) -> io::Result<()> {
         self.wait_for_sync()?;
-        let file = self
-            .file
+        let mut w = self
+            .writer
             .take()
             .ok_or_else(|| io::Error::other("temporary object already closed"))?;
-        file.sync_all()?;
-        drop(file);
-        let hex = hash.hex();
-        let dir = self.objects.join(&hex[..2]);
-        no_link(&dir)?;
-        let created_dir = !dir.exists();
-        fs::create_dir_all(&dir)?;
-        let dest = dir.join(&hex[2..]);
-        if dest.exists() {
-            // Same name means same bytes: the object is already there, and existing objects are
-            // never modified.
-            fs::remove_file(&self.path)?;
-        } else {
-            fs::rename(&self.path, &dest)?;
-            sync_dir(&dir)?;
-            if created_dir {
-                sync_dir(&self.objects)?;
-            }
+        let sh = Arc::clone(&self.shared);
+        if sh.locate(hash).is_some() {
+            // Same name means same bytes: the object is already stored, and stored objects
+            // are never modified.
+            drop(w);
+            return fs::remove_file(&self.path);
+        }
+        let tick = |what: &str| sh.tick(what);
+        w.end_object(hash, &tick)?;
+        let entries = w.finish(&tick)?;
+        no_link(&sh.segments)?;
+        let created = !sh.segments.exists();
+        fs::create_dir_all(&sh.segments)?;
+        let dest = sh.segments.join(segments::fresh_name(
+            TEMP_COUNTER.fetch_add(1, Ordering::Relaxed),
+        ));
+        sh.tick("rename")?;
+        fs::rename(&self.path, &dest)?;
+        let synced = sh
+            .tick("sync")
+            .and_then(|()| sync_dir(&sh.segments))
+            .and_then(|()| if created { sync_dir(&sh.root) } else { Ok(()) });
+        if let Err(e) = synced {
+            // Not known to be durable: the command fails, and leaves nothing behind.
+            let _ = fs::remove_file(&dest);
+            return Err(e);
+        }
+        let mut idx = sh.index.lock().unwrap_or_else(|p| p.into_inner());
+        idx.known.insert(dest.clone());
+        let dest = Arc::new(dest);
+        for e in entries {
+            idx.at.entry(e.hash).or_insert((Arc::clone(&dest), e));
         }
         Ok(())
     }
 }
 
-impl Drop for FsTemp {
+impl Drop for SegTemp {
     fn drop(&mut self) {
         let _ = self.wait_for_sync();
-        if self.file.take().is_some() || self.path.exists() {
+        if self.writer.take().is_some() || self.path.exists() {
             let _ = fs::remove_file(&self.path);
         }
     }
 }
 
-fn sync_dir(dir: &Path) -> io::Result<()> {
-    File::open(dir)?.sync_all()
-}
-
 impl ObjectBackend for FsBackend {
     fn create_temp(&self) -> io::Result<Box<dyn TempObject>> {
-        no_link(&self.tmp)?;
-        fs::create_dir_all(&self.tmp)?;
-        let n = TEMP_COUNTER.fetch_add(1, Ordering::Relaxed);
-        let nanos = std::time::SystemTime::now()
-            .duration_since(std::time::UNIX_EPOCH)
-            .map(|d| d.subsec_nanos())
-            .unwrap_or(0);
-        let path = self
-            .tmp
-            .join(format!("obj-{}-{n}-{nanos:09}.part", std::process::id()));
-        let file = OpenOptions::new()
-            .write(true)
-            .create_new(true)
-            .open(&path)?;
-        Ok(Box::new(FsTemp {
-            file: Some(file),
+        self.create_temp_framed(self.shared.frame_size)
+    }
+
+    fn hold_for_writing(&self) -> io::Result<()> {
+        self.shared.hold_for_writing()
+    }
+
+    fn create_temp_framed(&self, frame_size: u32) -> io::Result<Box<dyn TempObject>> {
+        let sh = &self.shared;
+        sh.hold_for_writing()?;
+        no_link(&sh.tmp)?;
+        fs::create_dir_all(&sh.tmp)?;
+        let path = sh.tmp.join(temp_name("obj"));
+        let frame_size = frame_size.clamp(1, segments::MAX_FRAME_SIZE);
+        let writer = SegmentWriter::create(&path, sh.level, frame_size, &|w| sh.tick(w))?;
+        Ok(Box::new(SegTemp {
+            writer: Some(writer),
             path,
-            objects: self.objects.clone(),
+            shared: Arc::clone(sh),
             syncing: None,
         }))
     }
 
     fn read_at(&self, hash: &Hash, offset: u64, buf: &mut [u8]) -> io::Result<usize> {
+        let len = buf.len();
+        let got = self.shared.with_object(hash, |file, table| {
+            let mut tmp = vec![0u8; len];
+            let n = segments::read_at(&file, &table, offset, &mut tmp)?;
+            tmp.truncate(n);
+            Ok(tmp)
+        })?;
+        if let Some(bytes) = got {
+            buf[..bytes.len()].copy_from_slice(&bytes);
+            return Ok(bytes.len());
+        }
         use std::os::unix::fs::FileExt;
-        let p = self.checked_path_of(hash)?;
+        let p = self.shared.checked_loose_path(hash)?;
         if !fs::symlink_metadata(&p)?.is_file() {
             return Err(io::Error::other("an object that is not a plain file"));
         }
@@ -242,7 +785,16 @@ impl ObjectBackend for FsBackend {
     }
 
     fn open(&self, hash: &Hash) -> io::Result<Box<dyn Read + Send>> {
-        let p = self.checked_path_of(hash)?;
+        if let Some(r) = self.shared.with_object(hash, |file, table| {
+            if table.raw.len() > 2 {
+                Ok(Box::new(segments::AheadReader::new(file, table)?) as Box<dyn Read + Send>)
+            } else {
+                Ok(Box::new(segments::FrameReader::new(file, table)?) as Box<dyn Read + Send>)
+            }
+        })? {
+            return Ok(r);
+        }
+        let p = self.shared.checked_loose_path(hash)?;
         // The store never follows a symlink out of itself: objects must be plain files.
         let meta = fs::symlink_metadata(&p)?;
         if !meta.file_type().is_file() {
@@ -255,7 +807,10 @@ impl ObjectBackend for FsBackend {
     }
 
     fn exists(&self, hash: &Hash) -> bool {
-        let Ok(p) = self.checked_path_of(hash) else {
+        if self.shared.locate(hash).is_some() {
+            return true;
+        }
+        let Ok(p) = self.shared.checked_loose_path(hash) else {
             return false;
         };
         fs::symlink_metadata(p)
@@ -264,47 +819,75 @@ impl ObjectBackend for FsBackend {
     }
 
     fn size(&self, hash: &Hash) -> io::Result<u64> {
-        Ok(fs::symlink_metadata(self.checked_path_of(hash)?)?.len())
+        if let Some((_, e)) = self.shared.locate(hash) {
+            return Ok(e.raw);
+        }
+        Ok(fs::symlink_metadata(self.shared.checked_loose_path(hash)?)?.len())
     }
 
     fn list(&self) -> io::Result<(Vec<Hash>, Vec<PathBuf>)> {
-        let mut found = Vec::new();
-        let mut strays = Vec::new();
-        if !self.objects.exists() {
-            return Ok((found, strays));
-        }
-        for fan in fs::read_dir(&self.objects)? {
-            let fan = fan?;
-            let fan_name = fan.file_name().to_string_lossy().into_owned();
-            if !fan.file_type()?.is_dir() {
-                strays.push(fan.path());
-                continue;
-            }
-            for obj in fs::read_dir(fan.path())? {
-                let obj = obj?;
-                let name = format!("{fan_name}{}", obj.file_name().to_string_lossy());
-                match name.parse::<Hash>() {
-                    Ok(h) if obj.file_type()?.is_file() && name == h.hex() => found.push(h),
-                    _ => strays.push(obj.path()),
-                }
-            }
-        }
+        let sh = &self.shared;
+        let mut idx = sh.index.lock().unwrap_or_else(|p| p.into_inner());
+        sh.refresh(&mut idx, true)?;
+        let mut found: Vec<Hash> = idx.at.keys().copied().collect();
+        drop(idx);
+        let (_, mut strays) = segments::list(&sh.segments)?;
+        let (loose, loose_strays) = list_loose(&sh.loose)?;
+        found.extend(loose);
         found.sort();
+        found.dedup();
+        strays.extend(loose_strays);
         strays.sort();
         Ok((found, strays))
     }
 
     fn describe(&self, hash: &Hash) -> PathBuf {
-        self.path_of(hash)
+        match self.shared.locate(hash) {
+            Some((p, _)) => (*p).clone(),
+            None if self.shared.loose_path(hash).exists() => self.shared.loose_path(hash),
+            None => self.shared.segments.clone(),
+        }
+    }
+
+    fn adopt_segment(&self, path: &Path) -> io::Result<()> {
+        let sh = &self.shared;
+        sh.hold_for_writing()?;
+        fs::create_dir_all(&sh.segments)?;
+        let dest = sh.segments.join(segments::fresh_name(
+            TEMP_COUNTER.fetch_add(1, Ordering::Relaxed),
+        ));
+        sh.tick("rename")?;
+        if fs::rename(path, &dest).is_err() {
+            return adopt_by_copy(self, path);
+        }
+        sh.tick("sync")?;
+        sync_dir(&sh.segments)
     }
 }
 
+/// Publishes the objects of segment `path` through `backend`'s own writes (when the segment
+/// cannot simply be renamed into place).
+fn adopt_by_copy<B: ObjectBackend + ?Sized>(backend: &B, path: &Path) -> io::Result<()> {
+    for e in segments::read_index(path)? {
+        if backend.exists(&e.hash) {
+            continue;
+        }
+        let file = File::open(path)?;
+        let table = Arc::new(segments::read_seek_table(&file, &e)?);
+        let mut temp = backend.create_temp()?;
+        io::copy(&mut segments::FrameReader::new(file, table)?, &mut temp)?;
+        temp.persist(&e.hash)?;
+    }
+    Ok(())
+}
 /// The object half of a store: writes and reads objects through a backend, always hashing.
 pub struct Objects {
     backend: Box<dyn ObjectBackend>,
     /// While a command stages its objects ([`Objects::begin_stage`]): new objects are written
     /// here, and reads look here first.
     stage: Option<Stage>,
+    /// Objects found intact by a check made earlier in this process.
+    intact: Mutex<HashSet<Hash>>,
 }
 
 /// A private folder of objects a command wrote but may still give up (a revert that turns out
@@ -387,6 +970,7 @@ impl Objects {
         Objects {
             backend,
             stage: None,
+            intact: Mutex::new(HashSet::new()),
         }
     }
 
@@ -409,11 +993,9 @@ impl Objects {
         if self.stage.is_some() {
             return Err(io::Error::other("objects are already being staged"));
         }
-        fs::create_dir_all(dir.join("objects"))?;
-        let fs_backend = FsBackend {
-            objects: dir.join("objects"),
-            tmp: dir.join("tmp"),
-        };
+        self.backend.hold_for_writing()?;
+        fs::create_dir_all(&dir)?;
+        let fs_backend = FsBackend::new(&dir);
         self.stage = Some(Stage {
             dir,
             fs: fs_backend,
@@ -421,29 +1003,15 @@ impl Objects {
         Ok(())
     }
 
-    /// Moves every staged object into the store (durably: rename and folder sync, or a copy
+    /// Moves every staged segment into the store (durably: rename and folder sync, or a copy
     /// through the backend when the two are not on one file system) and ends the stage.
     pub fn publish_stage(&mut self) -> io::Result<()> {
         let Some(st) = self.stage.take() else {
             return Ok(());
         };
-        let (found, _) = st.fs.list()?;
-        for hash in found {
-            if self.backend.exists(&hash) {
-                continue;
-            }
-            let from = st.fs.path_of(&hash);
-            let dest = self.backend.describe(&hash);
-            let moved = dest.parent().is_some_and(|dir| {
-                fs::create_dir_all(dir).is_ok()
-                    && fs::rename(&from, &dest).is_ok()
-                    && sync_dir(dir).is_ok()
-            });
-            if !moved || !self.backend.exists(&hash) {
-                let mut temp = self.backend.create_temp()?;
-                io::copy(&mut File::open(&from)?, &mut temp)?;
-                temp.persist(&hash)?;
-            }
+        let (segs, _) = segments::list(&st.dir.join(SEGMENTS_DIR))?;
+        for seg in segs {
+            self.backend.adopt_segment(&seg)?;
         }
         let _ = fs::remove_dir_all(&st.dir);
         Ok(())
@@ -457,10 +1025,27 @@ impl Objects {
     }
 
     pub fn writer(&self) -> io::Result<ObjectWriter> {
+        self.backend.hold_for_writing()?;
         Ok(ObjectWriter {
             temp: match &self.stage {
                 Some(st) => st.fs.create_temp()?,
                 None => self.backend.create_temp()?,
+            },
+            hasher: blake3::Hasher::new(),
+            n_bytes: 0,
+            unsynced: 0,
+        })
+    }
+
+    /// A writer for a row index: smaller frames ([`segments::INDEX_FRAME_SIZE`]), since a
+    /// trail reads two of its entries at a time and decodes the frame that holds them.
+    pub fn row_index_writer(&self) -> io::Result<ObjectWriter> {
+        self.backend.hold_for_writing()?;
+        let frame = segments::INDEX_FRAME_SIZE;
+        Ok(ObjectWriter {
+            temp: match &self.stage {
+                Some(st) => st.fs.create_temp_framed(frame)?,
+                None => self.backend.create_temp_framed(frame)?,
             },
             hasher: blake3::Hasher::new(),
             n_bytes: 0,
@@ -536,8 +1121,26 @@ impl Objects {
         })
     }
 
+    /// Notes that object `hash`, where the store reads it from, was just re-hashed and found
+    /// intact (by `verify`'s segment check), so that [`Objects::check`] need not hash it again.
+    pub fn note_intact(&self, hash: &Hash) {
+        self.intact
+            .lock()
+            .unwrap_or_else(|p| p.into_inner())
+            .insert(*hash);
+    }
+
     /// Re-hashes object `hash`; `Ok(None)` when intact, `Ok(Some(actual))` when damaged.
     pub fn check(&self, hash: &Hash) -> Result<Option<Hash>> {
+        if self.stage.is_none()
+            && self
+                .intact
+                .lock()
+                .unwrap_or_else(|p| p.into_inner())
+                .contains(hash)
+        {
+            return Ok(None);
+        }
         let r = self.open_raw(hash)?;
         let (actual, _) = crate::hash::hash_reader(r)
             .map_err(|e| crate::Error::io(&self.reader(hash).describe(hash), e))?;

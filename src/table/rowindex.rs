@@ -77,7 +77,7 @@ pub fn validate(data: &[u8]) -> io::Result<u64> {
         ));
     }
     let body = data.len() - HEADER_LEN;
-    if body % ENTRY_LEN != 0 {
+    if !body.is_multiple_of(ENTRY_LEN) {
         return Err(io::Error::new(
             io::ErrorKind::InvalidData,
             "row index length is not a whole number of rows",

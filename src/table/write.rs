@@ -234,13 +234,14 @@ impl Serial {
         header: &[String],
         null_tokens: &[String],
     ) -> io::Result<Self> {
-        let writer = || match objects {
+        let writer = |row_index: bool| match objects {
+            Some(o) if row_index => o.row_index_writer(),
             Some(o) => o.writer(),
             None => Ok(crate::store::objects::ObjectWriter::hashing_only()),
         };
         let mut w = Serial {
-            table: writer()?,
-            index: writer()?,
+            table: writer(false)?,
+            index: writer(true)?,
             buf: Vec::with_capacity(1 << 20),
             index_buf: Vec::with_capacity(256 * 1024),
             scratch: Vec::new(),

@@ -142,6 +142,7 @@ impl Sandbox {
         let mut files = Vec::new();
         let root = self.path().join("sluice-store");
         collect(&root.join("objects"), &mut files);
+        collect(&root.join("segments"), &mut files);
         collect(&root.join("tmp"), &mut files);
         files.sort();
         let log = self.ok(&["timeline", "--json"]);
@@ -277,4 +278,60 @@ pub fn reference_python() -> PathBuf {
         "tests/reference/pyenv.py printed {path:?}, which does not exist; {how}"
     );
     PathBuf::from(path)
+}
+
+/// Changes the bytes of stored object `hash` behind sluice's back, keeping its name: `edit`
+/// gets the object's bytes and changes them; its segment is rewritten in place with the
+/// changed bytes compressed under the old name (as someone who knows the segment format would
+/// do it), every other object of that segment copied as it was.
+#[allow(dead_code)]
+pub fn damage_object(store_dir: &Path, hash: &str, edit: impl FnOnce(&mut Vec<u8>)) {
+    rewrite_segment_of(store_dir, hash, Some(edit));
+}
+
+/// Removes stored object `hash` behind sluice's back: its segment is rewritten without it (or
+/// removed when it held nothing else).
+#[allow(dead_code)]
+pub fn remove_object(store_dir: &Path, hash: &str) {
+    rewrite_segment_of(store_dir, hash, None::<fn(&mut Vec<u8>)>);
+}
+
+fn rewrite_segment_of(store_dir: &Path, hash: &str, edit: Option<impl FnOnce(&mut Vec<u8>)>) {
+    use sluice::store::objects::FsBackend;
+    use sluice::store::segments::{self, SegmentWriter};
+    let h: sluice::hash::Hash = hash.parse().unwrap();
+    let backend = FsBackend::new(store_dir);
+    let (seg, _) = backend
+        .locate(&h)
+        .unwrap_or_else(|| panic!("object {hash} is in no segment"));
+    let entries = segments::read_index(&seg).unwrap();
+    let old = std::fs::File::open(&seg).unwrap();
+    let temp = seg.with_extension("rewritten");
+    let none = |_: &str| Ok(());
+    let mut w = SegmentWriter::create(&temp, 1, segments::FRAME_SIZE, &none).unwrap();
+    let mut edit = edit;
+    let mut kept = 0;
+    for e in &entries {
+        if e.hash != h {
+            w.copy_stored(&old, e, &none).unwrap();
+            kept += 1;
+            continue;
+        }
+        let Some(f) = edit.take() else { continue };
+        let store = sluice::store::Store::open(store_dir).unwrap();
+        let mut bytes = Vec::new();
+        std::io::Read::read_to_end(&mut store.objects.open_raw(&h).unwrap(), &mut bytes).unwrap();
+        f(&mut bytes);
+        w.write(&bytes, &none).unwrap();
+        w.end_object(&h, &none).unwrap();
+        kept += 1;
+    }
+    w.finish(&none).unwrap();
+    drop(old);
+    if kept == 0 {
+        std::fs::remove_file(&temp).unwrap();
+        std::fs::remove_file(&seg).unwrap();
+    } else {
+        std::fs::rename(&temp, &seg).unwrap();
+    }
 }
