@@ -13,8 +13,8 @@
 use super::read::{both, row_index, rows_of};
 use super::scan::{scan, ScanPlan};
 use super::{
-    cell_diffs, count_by_column, push_pair, settle_columns, Change, ChangeKind, Diff, Layout,
-    MatchedBy, RowPairing,
+    cell_diffs, count_by_column, listing, push_pair, settle_columns, Diff, Layout, MatchedBy,
+    RowPairing,
 };
 use crate::error::{ErrorKind, Result};
 use crate::model::{LineageKind, StepKind, Version};
@@ -305,44 +305,7 @@ pub(super) fn assemble(
         push_pair(&mut runs, x, y, changed);
     }
 
-    // The listing: changed and added rows in the second version's order, then removed rows.
-    let mut changes = Vec::with_capacity(changed_b.len() + added.len() + removed.len());
-    let (mut ci, mut ai, mut cell) = (0usize, 0usize, 0usize);
-    while ci < changed_b.len() || ai < added.len() {
-        let take_changed = match (changed_b.get(ci), added.get(ai)) {
-            (Some(x), Some(y)) => x < y,
-            (Some(_), None) => true,
-            _ => false,
-        };
-        if take_changed {
-            let y = changed_b[ci];
-            let start = cell;
-            while cell < cells.len() && cells[cell].b_row == y {
-                cell += 1;
-            }
-            changes.push(Change {
-                kind: ChangeKind::Changed,
-                a_row: cells.get(start).map(|c| c.a_row),
-                b_row: Some(y),
-                cells: start..cell,
-            });
-            ci += 1;
-        } else {
-            changes.push(Change {
-                kind: ChangeKind::Added,
-                a_row: None,
-                b_row: Some(added[ai]),
-                cells: cell..cell,
-            });
-            ai += 1;
-        }
-    }
-    changes.extend(removed.iter().map(|&x| Change {
-        kind: ChangeKind::Removed,
-        a_row: Some(x),
-        b_row: None,
-        cells: 0..0,
-    }));
+    let changes = listing(&changed_b, &added, &removed, &cells);
     let changed_by_column = count_by_column(&compared, b, &cells);
     Ok(Diff {
         from: a.clone(),

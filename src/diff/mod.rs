@@ -574,6 +574,54 @@ pub(crate) fn equal_cells(compared: &[(usize, usize)], ra: RowRef<'_>, rb: RowRe
         .filter(|&&(i, j)| ra.field(i) == rb.field(j))
         .count()
 }
+/// The listing of a comparison: changed and added rows in the second version's order (each
+/// changed row with its run of `cells`, which are sorted by the second version's row), then
+/// removed rows.
+pub(crate) fn listing(
+    changed_b: &[u64],
+    added: &[u64],
+    removed: &[u64],
+    cells: &[CellDiff],
+) -> Vec<Change> {
+    let mut changes = Vec::with_capacity(changed_b.len() + added.len() + removed.len());
+    let (mut ci, mut ai, mut cell) = (0usize, 0usize, 0usize);
+    while ci < changed_b.len() || ai < added.len() {
+        let take_changed = match (changed_b.get(ci), added.get(ai)) {
+            (Some(x), Some(y)) => x < y,
+            (Some(_), None) => true,
+            _ => false,
+        };
+        if take_changed {
+            let y = changed_b[ci];
+            let start = cell;
+            while cell < cells.len() && cells[cell].b_row == y {
+                cell += 1;
+            }
+            changes.push(Change {
+                kind: ChangeKind::Changed,
+                a_row: cells.get(start).map(|c| c.a_row),
+                b_row: Some(y),
+                cells: start..cell,
+            });
+            ci += 1;
+        } else {
+            changes.push(Change {
+                kind: ChangeKind::Added,
+                a_row: None,
+                b_row: Some(added[ai]),
+                cells: cell..cell,
+            });
+            ai += 1;
+        }
+    }
+    changes.extend(removed.iter().map(|&x| Change {
+        kind: ChangeKind::Removed,
+        a_row: Some(x),
+        b_row: None,
+        cells: 0..0,
+    }));
+    changes
+}
 
 /// Changed cells per compared column, in the second version's column order.
 pub(crate) fn count_by_column(
