@@ -18,8 +18,8 @@ use super::lineage::Link;
 use super::read::{both, cuttable, each_row, rows_of};
 use super::scan::{scan, scan_keys, Scan, ScanPlan};
 use super::{
-    cell_diffs, count_by_column, listing, push_pair, settle_columns, Diff, DuplicateGroup,
-    DuplicateKeys, Layout, MatchedBy, RowPairing,
+    cell_diffs, compared_hashes, count_by_column, listing, push_pair, settle_columns, Diff,
+    DuplicateGroup, DuplicateKeys, Layout, MatchedBy, RowPairing,
 };
 use crate::error::{Error, ErrorKind, Result};
 use crate::model::Version;
@@ -200,15 +200,7 @@ pub(super) fn run(
         (&hash_a, &hash_b),
         &mut |check| pairs.iter().all(|&(x, y)| check(x, y)),
     );
-    // Renamed columns are compared too, so a pair is unchanged only when their cells agree.
-    let renamed_hashes: Vec<(&Vec<u64>, &Vec<u64>)> = compared
-        .iter()
-        .filter_map(|&(ci, cj)| {
-            let x = cand_a.iter().position(|&c| c == ci)?;
-            let y = cand_b.iter().position(|&c| c == cj)?;
-            Some((&hash_a[x], &hash_b[y]))
-        })
-        .collect();
+    let renamed_hashes = compared_hashes(&compared, (&cand_a, &cand_b), (&hash_a, &hash_b));
     let differs = |&(x, y): &(u64, u64)| {
         fps_a[x as usize] != fps_b[y as usize]
             || renamed_hashes

@@ -13,8 +13,8 @@
 use super::read::{both, row_index, rows_of};
 use super::scan::{scan, ScanPlan};
 use super::{
-    cell_diffs, count_by_column, listing, push_pair, settle_columns, Diff, Layout, MatchedBy,
-    RowPairing,
+    cell_diffs, compared_hashes, count_by_column, listing, push_pair, settle_columns, Diff, Layout,
+    MatchedBy, RowPairing,
 };
 use crate::error::{ErrorKind, Result};
 use crate::model::{LineageKind, StepKind, Version};
@@ -246,14 +246,7 @@ pub(super) fn assemble(
         (&hash_a, &hash_b),
         &mut |check| pairs.iter().all(|&(x, y)| check(x, y)),
     );
-    let renamed_hashes: Vec<(&Vec<u64>, &Vec<u64>)> = compared
-        .iter()
-        .filter_map(|&(ci, cj)| {
-            let x = cand_a.iter().position(|&c| c == ci)?;
-            let y = cand_b.iter().position(|&c| c == cj)?;
-            Some((&hash_a[x], &hash_b[y]))
-        })
-        .collect();
+    let renamed_hashes = compared_hashes(&compared, (&cand_a, &cand_b), (&hash_a, &hash_b));
     let differs = |&(x, y): &(u64, u64)| {
         fps_a[x as usize] != fps_b[y as usize]
             || renamed_hashes

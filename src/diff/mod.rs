@@ -486,6 +486,23 @@ impl Layout {
 /// true when it did for all of them.
 pub(crate) type PairCheck<'a> = dyn FnMut(&mut dyn FnMut(u64, u64) -> bool) -> bool + 'a;
 
+/// The per-row hashes of each compared column pair whose columns are candidates on both sides,
+/// so that renamed columns are compared too: a pair is unchanged only when their cells agree.
+pub(crate) fn compared_hashes<'h>(
+    compared: &[(usize, usize)],
+    cand: (&[usize], &[usize]),
+    hashes: (&'h [Vec<u64>], &'h [Vec<u64>]),
+) -> Vec<(&'h Vec<u64>, &'h Vec<u64>)> {
+    compared
+        .iter()
+        .filter_map(|&(ci, cj)| {
+            let x = cand.0.iter().position(|&c| c == ci)?;
+            let y = cand.1.iter().position(|&c| c == cj)?;
+            Some((&hashes.0[x], &hashes.1[y]))
+        })
+        .collect()
+}
+
 /// Decides renames from the per-row hashes of the candidate columns over the matched pairs
 /// `pairs` (row in A, row in B), greedily in header order; returns the compared columns (in B's
 /// order) and the column changes.
