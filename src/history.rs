@@ -148,6 +148,10 @@ pub struct VersionDetail {
     pub step: Option<Step>,
     /// Rules checked on this version, oldest first.
     pub checks: Vec<CheckRecord>,
+    /// Whether anyone signed this very version off (a sign-off whose signature verifies).
+    pub signed: bool,
+    /// The sign-offs over this version, oldest first, each with its signature checked.
+    pub sign_offs: Vec<crate::endorse::SignOff>,
 }
 
 /// One recorded check result.
@@ -169,8 +173,13 @@ pub fn about(store: &Store, reference: &str) -> Result<VersionDetail> {
     let ds = store.lineage.dataset(&version.dataset)?;
     let latest = store.lineage.latest_version(&version.dataset)?;
     let checks = checks_of(store, version.id)?;
+    let sign_offs = crate::endorse::sign_offs_of_version(store, &version, true)?;
     Ok(VersionDetail {
         checks,
+        signed: sign_offs
+            .iter()
+            .any(|s| s.status == crate::endorse::SignatureStatus::Verified),
+        sign_offs,
         is_latest: latest.is_some_and(|l| l.id == version.id),
         key: ds.and_then(|d| d.key),
         version,

@@ -43,6 +43,7 @@ pub mod code;
 pub mod convert;
 pub mod demo;
 pub mod diff;
+pub mod endorse;
 pub mod error;
 pub mod exec;
 pub mod explain;

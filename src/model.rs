@@ -224,6 +224,42 @@ pub struct AuditEntry {
     pub hash: String,
 }
 
+/// One recorded endorsement: a sign-off (kind `version`, `report`, `audit_head`) or a signed
+/// change to the keys the store trusts (`admission`, `retirement`). `statement` is the exact
+/// text that was signed; `signature` its signature in the OpenSSH format (see `endorse`).
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Endorsement {
+    pub id: i64,
+    pub kind: String,
+    /// The signed thing's hash (BLAKE3 hex), or a key's fingerprint for admissions and retirements.
+    pub subject: String,
+    /// `NAME:vN`, a report's file name, an audit entry's number, or an admitted person's name.
+    pub label: String,
+    pub meaning: String,
+    /// The signer's printed name.
+    pub name: String,
+    /// RFC 3339 UTC.
+    pub signed_at: String,
+    /// The signing key's SHA-256 fingerprint (`SHA256:...`).
+    pub fingerprint: String,
+    /// The signing key as an OpenSSH public key line.
+    pub public_key: String,
+    /// For an admission: the admitted key as an OpenSSH public key line.
+    pub admitted_key: Option<String>,
+    pub statement: String,
+    pub signature: String,
+}
+
+/// A meaning a sign-off may state: built in (prepared, reviewed, approved) or declared by the
+/// store (with when).
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Meaning {
+    pub word: String,
+    pub description: String,
+    /// When the store declared it; `None` for the built-in meanings.
+    pub declared_at: Option<String>,
+}
+
 /// A run of the row map: output rows `out_start .. out_start + len` are input rows
 /// `in_start .. in_start + len`, in order (0-based data rows).
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]

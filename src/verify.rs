@@ -14,7 +14,9 @@ use crate::table::rowindex;
 pub struct Problem {
     /// "object_missing", "object_damaged", "object_size", "row_index", "database", "audit",
     /// "provenance", "cell_change", "audit_mismatch", "stray_file", "segment_damaged",
-    /// "segment_object", "segment_index", "profile" (`--deep`).
+    /// "segment_object", "segment_index", "profile" (`--deep`), "signature_bad",
+    /// "signature_missing", "signature_unknown_key", "signed_subject" (sign-offs and the
+    /// signatories, `endorse`).
     pub kind: String,
     /// What is affected: an object hash, a table, an audit sequence number.
     pub subject: String,
@@ -44,6 +46,9 @@ pub struct VerifyReport {
     pub rows_before_commitments: u64,
     /// With `--deep`: versions whose row index and profile were computed again from their bytes.
     pub versions_recomputed: u64,
+    /// Endorsements (sign-offs, admissions and retirements of signatories) whose signatures
+    /// were checked against the keys the store trusted when each was made.
+    pub endorsements_checked: u64,
     pub problems: Vec<Problem>,
 }
 
@@ -251,6 +256,12 @@ fn verify_snapshot(store: &Store) -> Result<VerifyReport> {
         }
     }
 
+    let endorsements = un.or_default(crate::endorse::assess(store).map(Some));
+    let endorsements_checked = endorsements.as_ref().map_or(0, |a| a.statuses.len() as u64);
+    for f in endorsements.map(|a| a.findings).unwrap_or_default() {
+        problems.push(problem(f.kind, f.subject, f.detail));
+    }
+
     let entries = un.or_default(store.lineage.audit_entries());
     for p in audit::chain_problems(&entries) {
         let subject = p.split(':').next().unwrap_or("audit").to_string();
@@ -308,8 +319,19 @@ fn verify_snapshot(store: &Store) -> Result<VerifyReport> {
         entries_without_row_commitments: rows.legacy_entries,
         rows_before_commitments: rows.legacy_rows,
         versions_recomputed: 0,
+        endorsements_checked,
         problems,
     })
+}
+
+/// An endorsement file kept outside the store (`sluice endorse -o FILE`), held against the
+/// store: its signature, its key, and what it signed (for the audit head: that the chain still
+/// reaches that entry with that hash). Returns the problems found, named by `file`.
+pub fn endorsement_file(store: &Store, file: &str, text: &str) -> Result<Vec<Problem>> {
+    Ok(crate::endorse::check_file(store, text)?
+        .into_iter()
+        .map(|f| problem(f.kind, f.subject, format!("{file}: {}", f.detail)))
+        .collect())
 }
 
 /// The audit entry that recorded a version names its hash, its step, its row index and its

@@ -124,6 +124,7 @@ const LAYERS: &[(&str, &[&str])] = &[
             "inferred",
             "exec",
             "plan",
+            "endorse",
         ],
     ),
     (

@@ -357,6 +357,11 @@ pub enum Command {
         after_help = "Example:\n  sluice verify\n\nExit code 0 when the store is intact, 1 with the list of what is wrong otherwise."
     )]
     Verify {
+        /// Also hold an endorsement file kept outside the store (`sluice endorse -o`) against
+        /// the store: its signature, its key, and that the store still holds what it signed;
+        /// repeatable
+        #[arg(long, value_name = "FILE")]
+        endorsement: Vec<PathBuf>,
         /// Also read every version again and compare its row index and column profile with
         /// ones computed from its bytes (reads every version in full)
         #[arg(long)]
@@ -423,6 +428,48 @@ pub enum Command {
         /// Write the converted file here instead of standard output
         #[arg(short = 'o', long = "output", value_name = "FILE")]
         output: Option<PathBuf>,
+    },
+
+    /// Sign off a version, a report sluice wrote, or the audit head, with a stated meaning and
+    /// an Ed25519 key in the OpenSSH format; the signature is recorded in the audit chain
+    #[command(
+        after_help = "Examples:\n  sluice endorse q3_by_shop --meaning approved --signing-key ~/.ssh/id_ed25519\n  \
+        sluice endorse --report q3_by_shop-report.html --meaning reviewed --signing-key ~/.ssh/id_ed25519\n  \
+        sluice endorse --audit-head --meaning approved --signing-key ~/.ssh/id_ed25519 -o q3-close.endorsement\n\n\
+        The key must be one of the store's signatories (`sluice signatories`); the printed name is the one it was \
+        admitted under. A key protected by a passphrase reads it from SLUICE_KEY_PASSPHRASE. The signature is in \
+        the OpenSSH signature format (namespace sluice-endorsement): `ssh-keygen -Y verify` checks it too. Signing \
+        the audit head ties the whole history to you and this moment; keep the -o file outside the store, and \
+        `sluice verify --endorsement FILE` later shows whether the store still holds that history. A sign-off \
+        supports a compliance process; it does not by itself make one (README.md, \"Sign-offs\")."
+    )]
+    Endorse(EndorseArgs),
+
+    /// The keys the store trusts for sign-offs; admit or retire one by a signed, recorded change
+    #[command(after_help = "Examples:\n  sluice signatories\n  \
+        sluice signatories --admit ada.pub --name \"Ada Moss\" --signing-key ~/.ssh/id_ed25519\n  \
+        sluice signatories --retire SHA256:Hh2Bx... --signing-key ~/.ssh/id_ed25519\n\n\
+        The first key is admitted by its holder: its admission is signed with its own private key. Every later \
+        admission or retirement is signed by a key the store trusts at that moment. Write the first key's \
+        fingerprint down outside the store: the store itself cannot show who admitted it.")]
+    Signatories(SignatoriesArgs),
+
+    /// The meanings a sign-off may state; declare another one (recorded in the audit chain)
+    #[command(
+        after_help = "Examples:\n  sluice meanings\n  sluice meanings --declare \"released to the board\" --says \"I release these figures to the board\"\n\n\
+        prepared, reviewed and approved are always known; what a meaning commits a person to is for the \
+        organisation's compliance staff to decide."
+    )]
+    Meanings {
+        /// Declare this meaning
+        #[arg(long, value_name = "WORD", requires = "says")]
+        declare: Option<String>,
+        /// What a person states by signing with it (with --declare)
+        #[arg(long, value_name = "TEXT", requires = "declare")]
+        says: Option<String>,
+        /// Print JSON
+        #[arg(long)]
+        json: bool,
     },
 
     /// Show who is acting, and where that comes from; or set the store's default person
@@ -998,6 +1045,58 @@ pub enum LineageFormat {
     Dot,
     /// A self-contained SVG drawing
     Svg,
+}
+
+#[derive(Debug, Args)]
+pub struct EndorseArgs {
+    /// The version to sign: NAME (latest), NAME:vN or blake3:HEX
+    #[arg(
+        required_unless_present_any = ["report", "audit_head"],
+        conflicts_with_all = ["report", "audit_head"]
+    )]
+    pub reference: Option<String>,
+    /// Sign this report file, as `sluice report` wrote it (by its hash)
+    #[arg(long, value_name = "FILE", conflicts_with = "audit_head")]
+    pub report: Option<PathBuf>,
+    /// Sign the audit chain's last entry, and with it the whole history up to now
+    #[arg(long)]
+    pub audit_head: bool,
+    /// What the signature means: prepared, reviewed, approved, or a meaning the store declares
+    #[arg(long, value_name = "MEANING")]
+    pub meaning: String,
+    /// The private key to sign with (OpenSSH format, Ed25519)
+    #[arg(long, value_name = "FILE")]
+    pub signing_key: PathBuf,
+    /// Also write the endorsement (the signed statement and its signature) to this file
+    #[arg(short = 'o', long = "output", value_name = "FILE")]
+    pub output: Option<PathBuf>,
+    /// Print JSON
+    #[arg(long)]
+    pub json: bool,
+}
+
+#[derive(Debug, Args)]
+pub struct SignatoriesArgs {
+    /// Admit the public key in this file (the .pub file ssh-keygen writes)
+    #[arg(
+        long,
+        value_name = "FILE",
+        requires_all = ["name", "signing_key"],
+        conflicts_with = "retire"
+    )]
+    pub admit: Option<PathBuf>,
+    /// The printed name the admitted key signs under (with --admit)
+    #[arg(long, value_name = "NAME", requires = "admit")]
+    pub name: Option<String>,
+    /// Retire the key with this fingerprint (SHA256:...)
+    #[arg(long, value_name = "FINGERPRINT", requires = "signing_key")]
+    pub retire: Option<String>,
+    /// The private key that signs the change (OpenSSH format, Ed25519)
+    #[arg(long, value_name = "FILE")]
+    pub signing_key: Option<PathBuf>,
+    /// Print JSON
+    #[arg(long)]
+    pub json: bool,
 }
 
 #[derive(Debug, Args)]

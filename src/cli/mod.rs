@@ -10,6 +10,7 @@ pub mod admin;
 pub mod args;
 pub mod compare;
 pub mod document;
+pub mod endorse;
 pub mod query;
 pub mod record;
 pub mod render_report;
@@ -145,7 +146,11 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             output,
             format,
         } => query::retrieve(&ctx, reference, output.as_deref(), *format, out),
-        Command::Verify { json, deep } => query::verify(&ctx, *deep, *json, out),
+        Command::Verify {
+            json,
+            deep,
+            endorsement,
+        } => query::verify(&ctx, *deep, endorsement, *json, out),
         Command::Reclaim { json } => admin::reclaim(&ctx, *json, out),
         Command::Compare(a) => compare::compare(&ctx, a, out),
         Command::Reproduce {
@@ -169,6 +174,13 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Completions { shell } => admin::completions(*shell, out),
         Command::Manual { dir } => admin::manual(dir.as_deref(), out),
         Command::Upgrade { file, output } => admin::upgrade(file, output.as_deref(), out),
+        Command::Endorse(a) => endorse::endorse(&ctx, a, out),
+        Command::Signatories(a) => endorse::signatories(&ctx, a, out),
+        Command::Meanings {
+            declare,
+            says,
+            json,
+        } => endorse::meanings(&ctx, declare.as_deref(), says.as_deref(), *json, out),
         Command::Identity { name, email, json } => {
             admin::identity(&ctx, name.as_deref(), email.as_deref(), *json, out)
         }

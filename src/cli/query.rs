@@ -260,11 +260,22 @@ pub fn retrieve(
 pub fn verify(
     ctx: &Context<'_>,
     deep: bool,
+    endorsements: &[std::path::PathBuf],
     as_json: bool,
     out: &mut impl Write,
 ) -> anyhow::Result<ExitCode> {
     let store = ctx.open_store()?;
-    let report = sluice::verify::verify_with(&store, deep)?;
+    let mut report = sluice::verify::verify_with(&store, deep)?;
+    for file in endorsements {
+        let text = super::read_text(
+            file,
+            "the endorsement file",
+            "sluice endorse --help; README.md, \"Sign-offs\"",
+        )?;
+        let found = sluice::verify::endorsement_file(&store, &file.display().to_string(), &text)?;
+        report.problems.extend(found);
+    }
+    report.intact = report.problems.is_empty();
     if as_json {
         json(out, &report)?;
     } else {
@@ -334,6 +345,20 @@ pub fn about_text(out: &mut impl Write, d: &VersionDetail) -> io::Result<()> {
         }
     }
     writeln!(out, "  row index    blake3:{}", v.row_index)?;
+    if d.sign_offs.is_empty() {
+        writeln!(out, "  signed off   no (unsigned)")?;
+    }
+    for s in &d.sign_offs {
+        writeln!(
+            out,
+            "  signed off   {} · {} · {} · {} ({})",
+            s.meaning,
+            s.name,
+            s.at,
+            s.fingerprint,
+            s.status.describe()
+        )?;
+    }
     for c in &d.checks {
         writeln!(
             out,
@@ -427,6 +452,13 @@ pub fn verify_text(out: &mut impl Write, r: &VerifyReport) -> io::Result<()> {
         for p in &r.problems {
             writeln!(out, "  {}  {}: {}", p.kind, p.subject, p.detail)?;
         }
+    }
+    if r.endorsements_checked > 0 && r.intact {
+        writeln!(
+            out,
+            "sign-offs: {} checked against the keys the store trusted when each was made",
+            plural(r.endorsements_checked, "signature", "signatures")
+        )?;
     }
     if r.versions_recomputed > 0 {
         writeln!(

@@ -212,6 +212,8 @@ pub const TABLES: &[&str] = &[
     "column_sources",
     "datasets",
     "drops",
+    "endorsements",
+    "meanings",
     "objects",
     "row_runs",
     "step_inputs",
@@ -318,6 +320,16 @@ const SELECTABLE: &[(&str, &str, &str)] = &[
         "column_sources",
         "output_id",
         "SELECT rowid, * FROM column_sources WHERE output_id BETWEEN ?1 AND ?2",
+    ),
+    (
+        "endorsements",
+        "id",
+        "SELECT rowid, * FROM endorsements WHERE id BETWEEN ?1 AND ?2",
+    ),
+    (
+        "meanings",
+        "id",
+        "SELECT rowid, * FROM meanings WHERE id BETWEEN ?1 AND ?2",
     ),
 ];
 
@@ -501,6 +513,8 @@ pub(super) fn max_rowid(conn: &Connection, table: &str) -> Result<i64> {
         "column_sources" => "SELECT coalesce(max(rowid), 0) FROM column_sources",
         "datasets" => "SELECT coalesce(max(rowid), 0) FROM datasets",
         "drops" => "SELECT coalesce(max(rowid), 0) FROM drops",
+        "endorsements" => "SELECT coalesce(max(rowid), 0) FROM endorsements",
+        "meanings" => "SELECT coalesce(max(rowid), 0) FROM meanings",
         "objects" => "SELECT coalesce(max(rowid), 0) FROM objects",
         "row_runs" => "SELECT coalesce(max(rowid), 0) FROM row_runs",
         "step_inputs" => "SELECT coalesce(max(rowid), 0) FROM step_inputs",
@@ -522,6 +536,8 @@ pub(super) fn rowids(conn: &Connection, table: &str) -> Result<Vec<i64>> {
         "column_sources" => "SELECT rowid FROM column_sources ORDER BY rowid",
         "datasets" => "SELECT rowid FROM datasets ORDER BY rowid",
         "drops" => "SELECT rowid FROM drops ORDER BY rowid",
+        "endorsements" => "SELECT rowid FROM endorsements ORDER BY rowid",
+        "meanings" => "SELECT rowid FROM meanings ORDER BY rowid",
         "objects" => "SELECT rowid FROM objects ORDER BY rowid",
         "row_runs" => "SELECT rowid FROM row_runs ORDER BY rowid",
         "step_inputs" => "SELECT rowid FROM step_inputs ORDER BY rowid",

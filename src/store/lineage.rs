@@ -13,7 +13,7 @@ use super::audit::{Key, Selector};
 use crate::error::{Error, ErrorKind, Result};
 use crate::model::{
     canonical_json, Agent, AuditEntry, CellChange, ColumnProfile, Dataset, Dialect, Drop,
-    LineageKind, RowRun, SourceFile, Step, StepKind, Version,
+    Endorsement, LineageKind, Meaning, RowRun, SourceFile, Step, StepKind, Version,
 };
 
 /// The migrations, in order. Each entry is (schema version it produces, SQL).
@@ -22,6 +22,7 @@ const MIGRATIONS: &[(i64, &str)] = &[
     (2, include_str!("../../schema/0002_cell_notes.sql")),
     (3, include_str!("../../schema/0003_check_gate.sql")),
     (4, include_str!("../../schema/0004_step_provenance.sql")),
+    (5, include_str!("../../schema/0005_endorsements.sql")),
 ];
 
 /// The schema version this build writes.
@@ -681,6 +682,55 @@ impl Lineage {
         super::audit::entries(&self.conn)
     }
 
+    /// Every endorsement (sign-offs and changes to the trusted keys), in recording order.
+    pub fn endorsements(&self) -> Result<Vec<Endorsement>> {
+        let mut st = self
+            .conn
+            .prepare(
+                "SELECT id, kind, subject, label, meaning, name, signed_at, fingerprint,
+                        public_key, admitted_key, statement, signature
+                 FROM endorsements ORDER BY id",
+            )
+            .map_err(db_err)?;
+        let rows = st
+            .query_map([], |r| {
+                Ok(Endorsement {
+                    id: r.get(0)?,
+                    kind: r.get(1)?,
+                    subject: r.get(2)?,
+                    label: r.get(3)?,
+                    meaning: r.get(4)?,
+                    name: r.get(5)?,
+                    signed_at: r.get(6)?,
+                    fingerprint: r.get(7)?,
+                    public_key: r.get(8)?,
+                    admitted_key: r.get(9)?,
+                    statement: r.get(10)?,
+                    signature: r.get(11)?,
+                })
+            })
+            .map_err(db_err)?;
+        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+    }
+
+    /// The meanings the store declared, in declaration order.
+    pub fn meanings(&self) -> Result<Vec<Meaning>> {
+        let mut st = self
+            .conn
+            .prepare("SELECT word, description, declared_at FROM meanings ORDER BY id")
+            .map_err(db_err)?;
+        let rows = st
+            .query_map([], |r| {
+                Ok(Meaning {
+                    word: r.get(0)?,
+                    description: r.get(1)?,
+                    declared_at: Some(r.get(2)?),
+                })
+            })
+            .map_err(db_err)?;
+        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+    }
+
     /// The recorded size of object `hash`, when it is recorded.
     pub fn object_size(&self, hash: &str) -> Result<Option<u64>> {
         self.conn
@@ -1194,6 +1244,58 @@ impl Tx<'_> {
             .map_err(db_err)?;
         let rows = st.query_map([], |r| r.get(0)).map_err(db_err)?;
         rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+    }
+
+    /// The last audit entry's sequence number and hash, inside the transaction.
+    pub fn audit_head(&self) -> Result<Option<(u64, String)>> {
+        self.tx
+            .query_row(
+                "SELECT seq, hash FROM audit_log ORDER BY seq DESC LIMIT 1",
+                [],
+                |r| Ok((r.get::<_, i64>(0)? as u64, r.get(1)?)),
+            )
+            .optional()
+            .map_err(db_err)
+    }
+
+    /// Records an endorsement (its `id` is ignored) and returns its id.
+    pub fn insert_endorsement(&mut self, e: &Endorsement) -> Result<i64> {
+        self.tx
+            .execute(
+                "INSERT INTO endorsements (kind, subject, label, meaning, name, signed_at,
+                    fingerprint, public_key, admitted_key, statement, signature)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11)",
+                params![
+                    e.kind,
+                    e.subject,
+                    e.label,
+                    e.meaning,
+                    e.name,
+                    e.signed_at,
+                    e.fingerprint,
+                    e.public_key,
+                    e.admitted_key,
+                    e.statement,
+                    e.signature
+                ],
+            )
+            .map_err(db_err)?;
+        let id = self.tx.last_insert_rowid();
+        self.wrote("endorsements", "id", Key::Int(id));
+        Ok(id)
+    }
+
+    /// Records a meaning the store declares; returns its id.
+    pub fn insert_meaning(&mut self, m: &Meaning, at: &str) -> Result<i64> {
+        self.tx
+            .execute(
+                "INSERT INTO meanings (word, description, declared_at) VALUES (?1, ?2, ?3)",
+                params![m.word, m.description, at],
+            )
+            .map_err(db_err)?;
+        let id = self.tx.last_insert_rowid();
+        self.wrote("meanings", "id", Key::Int(id));
+        Ok(id)
     }
 
     /// Appends one entry to the audit chain, inside this transaction.
