@@ -963,6 +963,11 @@ pub fn check_file(store: &Store, text: &str) -> Result<Vec<Finding>> {
     };
     let get = |n: &str| field(&f, n).unwrap_or("").to_string();
     let (kind, label) = (get("kind"), get("label"));
+    let shown = if kind == "audit_head" {
+        format!("audit entry {label}")
+    } else {
+        label.clone()
+    };
     let subject = get("subject");
     let subject_hash = subject
         .strip_prefix("blake3:")
@@ -985,7 +990,7 @@ pub fn check_file(store: &Store, text: &str) -> Result<Vec<Finding>> {
     if !assessment.signatories.iter().any(|s| s.fingerprint == fp) {
         out.push(Finding {
             kind: "signature_unknown_key",
-            subject: label.clone(),
+            subject: shown.clone(),
             detail: format!(
                 "the endorsement file is signed with {fp}, which the store never admitted"
             ),
@@ -995,7 +1000,7 @@ pub fn check_file(store: &Store, text: &str) -> Result<Vec<Finding>> {
     if get("store") != store_id(store)? {
         out.push(Finding {
             kind: "signed_subject",
-            subject: label.clone(),
+            subject: shown.clone(),
             detail: "the endorsement names another store, or this store's audit chain was rebuilt from its first entry".into(),
         });
     }
@@ -1023,11 +1028,7 @@ pub fn check_file(store: &Store, text: &str) -> Result<Vec<Finding>> {
     if let Some(p) = problem {
         out.push(Finding {
             kind: "signed_subject",
-            subject: if kind == "audit_head" {
-                format!("audit entry {label}")
-            } else {
-                label
-            },
+            subject: shown,
             detail: format!("the endorsement file's {kind} does not match the store: {p}"),
         });
     }

@@ -79,6 +79,9 @@ fn every_query_with_json_output_says_so_in_its_help() {
         "withdraw",
         "identify",
         "identity",
+        "endorse",
+        "signatories",
+        "meanings",
     ] {
         assert_contains(&s.ok(&[cmd, "--help"]), "--json");
     }

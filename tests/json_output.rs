@@ -36,6 +36,62 @@ fn errors(v: &jsonschema::Validator, value: &Value) -> Vec<String> {
 /// (schema, arguments, exit code): the outputs checked. Adding a command with `--json` means
 /// adding its schema and a row here.
 const CASES: &[(&str, &[&str], i32)] = &[
+    (
+        "signatories",
+        &[
+            "signatories",
+            "--admit",
+            "ada.pub",
+            "--name",
+            "Ada Moss",
+            "--signing-key",
+            "ada",
+            "--json",
+        ],
+        0,
+    ),
+    (
+        "meanings",
+        &[
+            "meanings",
+            "--declare",
+            "filed",
+            "--says",
+            "I filed these figures with the county",
+            "--json",
+        ],
+        0,
+    ),
+    (
+        "endorse",
+        &[
+            "endorse",
+            "q3_by_shop",
+            "--meaning",
+            "filed",
+            "--signing-key",
+            "ada",
+            "--json",
+        ],
+        0,
+    ),
+    (
+        "endorse",
+        &[
+            "endorse",
+            "--audit-head",
+            "--meaning",
+            "approved",
+            "--signing-key",
+            "ada",
+            "-o",
+            "head.endorsement",
+            "--json",
+        ],
+        0,
+    ),
+    ("signatories", &["signatories", "--json"], 0),
+    ("meanings", &["meanings", "--json"], 0),
     ("timeline", &["timeline", "--json"], 0),
     (
         "timeline",
@@ -354,6 +410,13 @@ const CASES: &[(&str, &[&str], i32)] = &[
 
 fn demo() -> Sandbox {
     let s = Sandbox::with_demo();
+    // A signing key made by OpenSSH's ssh-keygen, for the sign-off commands.
+    let made = std::process::Command::new("ssh-keygen")
+        .args(["-q", "-t", "ed25519", "-N", "", "-C", "ada", "-f"])
+        .arg(s.path().join("ada"))
+        .status()
+        .expect("ssh-keygen runs (Debian: openssh-client; tests/run installs it)");
+    assert!(made.success());
     s.file(
         "rules.json",
         r#"{"sluice_rules": 2, "rules": [{"dimension": "validity", "column": "status", "one_of": ["done"]}, {"dimension": "uniqueness", "columns": ["order_id"]}]}"#,

@@ -155,3 +155,61 @@ fn a_store_of_loose_objects_is_read_and_converted_by_reclaim() {
     s.ok(&["clean", "orders", "trim", "--why", "again"]);
     assert_contains(&s.ok(&["verify"]), "intact");
 }
+
+/// A store of schema 4 with segments (`tests/fixtures/store_v4`: `receive` with a key and a
+/// `trim`, made by the last build before sign-offs) is migrated to schema 5: its history
+/// verifies as before, its versions are unsigned, and a key can then be admitted and a version
+/// signed off, with the new rows committed to by the chain like the old ones.
+#[test]
+fn a_schema_4_store_takes_sign_offs_after_migration() {
+    let s = Sandbox::new();
+    let fixture = Path::new(concat!(
+        env!("CARGO_MANIFEST_DIR"),
+        "/tests/fixtures/store_v4"
+    ));
+    copy_dir(fixture, s.path());
+    let db = s.path().join("sluice-store/lineage.db");
+    assert_eq!(user_version(&db), 4);
+    let before = s.ok(&["retrieve", "orders:v2"]);
+    let v = s.json(&["verify", "--json"]);
+    assert_eq!(v["intact"], true, "{v}");
+    assert_eq!(v["schema_version"], 5);
+    assert_eq!(v["endorsements_checked"], 0);
+    assert_eq!(user_version(&db), 5);
+    let about = s.json(&["about", "orders", "--json"]);
+    assert_eq!(about["signed"], false);
+    assert_eq!(about["step"]["reason"], "the till pads names with spaces");
+    assert_eq!(
+        s.ok(&["retrieve", "orders:v1"]).as_bytes(),
+        std::fs::read(fixture.join("orders.csv")).unwrap()
+    );
+
+    let made = std::process::Command::new("ssh-keygen")
+        .args(["-q", "-t", "ed25519", "-N", "", "-C", "ada", "-f"])
+        .arg(s.path().join("ada"))
+        .status()
+        .expect("ssh-keygen runs (Debian: openssh-client; tests/run installs it)");
+    assert!(made.success());
+    s.ok(&[
+        "signatories",
+        "--admit",
+        "ada.pub",
+        "--name",
+        "Ada Moss",
+        "--signing-key",
+        "ada",
+    ]);
+    s.ok(&[
+        "endorse",
+        "orders",
+        "--meaning",
+        "approved",
+        "--signing-key",
+        "ada",
+    ]);
+    let v = s.json(&["verify", "--json"]);
+    assert_eq!(v["intact"], true, "{v}");
+    assert_eq!(v["endorsements_checked"], 2);
+    assert_eq!(s.json(&["about", "orders", "--json"])["signed"], true);
+    assert_eq!(s.ok(&["retrieve", "orders:v2"]), before);
+}
