@@ -506,7 +506,7 @@ fn a_deleted_legacy_drop_row_is_named_by_the_count_its_audit_entry_kept() {
 /// A store whose history writes a row into every table sluice writes today: an intake with a
 /// declared key, a trim, a drop by predicate, a rename (column sources), a `number` that keeps
 /// an unreadable amount (a cell note), checks that pass and fail, and a hand edit (inputs and
-/// an inferred provenance object).
+/// an inferred provenance object), a signatory admitted, a meaning declared and a sign-off.
 fn rich_store() -> Sandbox {
     let s = Sandbox::with_store();
     s.file(
@@ -571,6 +571,31 @@ fn rich_store() -> Sandbox {
         "orders",
         "--why",
         "typo",
+    ]);
+    // A signatory (key made by OpenSSH's ssh-keygen), a declared meaning and a sign-off.
+    let made = std::process::Command::new("ssh-keygen")
+        .args(["-q", "-t", "ed25519", "-N", "", "-C", "ada", "-f"])
+        .arg(s.path().join("ada"))
+        .status()
+        .expect("ssh-keygen runs (Debian: openssh-client; tests/run installs it)");
+    assert!(made.success());
+    s.ok(&[
+        "signatories",
+        "--admit",
+        "ada.pub",
+        "--name",
+        "Ada Moss",
+        "--signing-key",
+        "ada",
+    ]);
+    s.ok(&["meanings", "--declare", "filed", "--says", "I filed it"]);
+    s.ok(&[
+        "endorse",
+        "orders",
+        "--meaning",
+        "filed",
+        "--signing-key",
+        "ada",
     ]);
     let v = s.json(&["verify", "--json"]);
     assert_eq!(v["intact"], true, "the untouched store must verify: {v}");
