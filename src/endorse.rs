@@ -1034,3 +1034,74 @@ pub fn check_file(store: &Store, text: &str) -> Result<Vec<Finding>> {
     }
     Ok(out)
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn statement(admitted_key: Option<&str>) -> String {
+        Statement {
+            kind: "version",
+            meaning: "approved",
+            name: "Ada Moss",
+            at: "2026-10-05T09:00:00.000Z",
+            key: "SHA256:abc",
+            store: "blake3:00",
+            subject: "blake3:11",
+            label: "q3_by_shop:v1",
+            admitted_key,
+        }
+        .text()
+    }
+
+    #[test]
+    fn a_statement_reads_back_field_by_field() {
+        let text = statement(None);
+        assert!(text.starts_with("sluice endorsement 1\nkind: version\n"));
+        let f = fields(&text).unwrap();
+        assert_eq!(field(&f, "label"), Some("q3_by_shop:v1"));
+        assert_eq!(field(&f, "at"), Some("2026-10-05T09:00:00.000Z"));
+        assert_eq!(field(&f, "admitted-key"), None);
+        let with_key = statement(Some("ssh-ed25519 AAAA"));
+        assert_eq!(
+            field(&fields(&with_key).unwrap(), "admitted-key"),
+            Some("ssh-ed25519 AAAA")
+        );
+        // Another first line, or a line without a field name, is not a statement.
+        assert!(fields("sluice endorsement 2\nkind: version\n").is_none());
+        assert!(fields("sluice endorsement 1\nkind version\n").is_none());
+    }
+
+    #[test]
+    fn one_line_values_only() {
+        assert!(one_line("name", "Ada Moss").is_ok());
+        for bad in ["", " Ada", "Ada\nkind: report", "Ada\r"] {
+            assert!(one_line("name", bad).is_err(), "{bad:?}");
+        }
+    }
+
+    fn entry(seq: u64, hash: &str) -> crate::model::AuditEntry {
+        crate::model::AuditEntry {
+            seq,
+            at: String::new(),
+            agent: String::new(),
+            action: String::new(),
+            subject: String::new(),
+            details: "{}".into(),
+            prev_hash: String::new(),
+            hash: hash.into(),
+        }
+    }
+
+    #[test]
+    fn a_signed_head_is_held_against_the_chain() {
+        let chain = [entry(1, "a"), entry(2, "b"), entry(3, "c")];
+        assert_eq!(head_problem(&chain, "2", "b"), None);
+        assert!(head_problem(&chain, "2", "x")
+            .unwrap()
+            .contains("rebuilt or changed"));
+        assert!(head_problem(&chain[..1], "2", "b")
+            .unwrap()
+            .contains("ends at entry 1, before the signed head (entry 2)"));
+    }
+}
