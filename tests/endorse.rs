@@ -817,6 +817,14 @@ fn the_engine_lists_sign_offs_by_hash_with_their_status() {
         (offs[0].kind.as_str(), offs[0].meaning.as_str()),
         ("report", "reviewed")
     );
+    // `identify` of the report file names its sign-off, with its status.
+    let id = s.json(&["identify", "orders-report.md", "--json"]);
+    assert_eq!(id["sign_offs"][0]["meaning"], "reviewed", "{id}");
+    assert_eq!(id["sign_offs"][0]["status"], "verified", "{id}");
+    assert_contains(
+        &s.ok(&["identify", "orders-report.md"]),
+        "signed off   reviewed · Ada Moss",
+    );
     // A file that is not a report this store wrote cannot be signed as one.
     s.file("other.md", "# not a report\n");
     let err = s.fails(

@@ -118,6 +118,8 @@ pub struct Identified<'a> {
     pub versions: &'a [Version],
     /// The audit entry that recorded a report with these bytes.
     pub report: Option<ReportFound>,
+    /// The sign-offs over these bytes (a version's or a report's), signatures checked.
+    pub sign_offs: Vec<sluice::endorse::SignOff>,
 }
 
 #[derive(Serialize)]
@@ -168,6 +170,7 @@ pub fn identify(
         hash: format!("blake3:{hex}"),
         versions: &versions,
         report,
+        sign_offs: sluice::endorse::sign_offs(&store, &hex, true)?,
     };
     if as_json {
         json(out, &id)?;
@@ -201,7 +204,11 @@ pub fn identify(
             r.audit_entry, r.at, r.by, r.after_entry
         )?;
         writeln!(out, "  {}", id.hash)?;
-    } else {
+    }
+    if found && !as_json {
+        super::endorse::sign_off_lines(out, &id.sign_offs)?;
+    }
+    if !found && !as_json {
         eprintln!(
             "error: no version or report with these bytes ({}, {}) is recorded in this store; \
              it was changed after it was written, or comes from another store",

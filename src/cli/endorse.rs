@@ -10,7 +10,7 @@ use serde::Serialize;
 use super::args::{EndorseArgs, SignatoriesArgs};
 use super::text::json;
 use super::{read_text, write_file_atomically, Context, ExitCode};
-use sluice::endorse::{self, Signatory, Target};
+use sluice::endorse::{self, SignOff, Signatory, Target};
 use sluice::model::{short_hash, Endorsement, Meaning};
 
 /// The environment variable a protected key's passphrase is read from.
@@ -224,4 +224,24 @@ pub fn meanings(
         )?;
     }
     Ok(0)
+}
+
+/// The sign-off lines of a screen (`identify`): one per sign-off, or that there is none.
+pub fn sign_off_lines(out: &mut impl Write, offs: &[SignOff]) -> std::io::Result<()> {
+    if offs.is_empty() {
+        return writeln!(out, "  signed off   no (unsigned)");
+    }
+    for s in offs {
+        writeln!(
+            out,
+            "  signed off   {} · {} · {} · {} ({}; {})",
+            s.meaning,
+            s.name,
+            s.at,
+            s.fingerprint,
+            s.label,
+            s.status.describe()
+        )?;
+    }
+    Ok(())
 }
