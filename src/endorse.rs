@@ -53,6 +53,13 @@ pub const BUILT_IN_MEANINGS: &[(&str, &str)] = &[
     ("approved", "I approve this for release or filing"),
 ];
 
+/// The caution that goes with sign-offs wherever they are shown to a reader (README.md and the
+/// report's sign-off block).
+pub const CAUTION: &str = "These signatures support, but do not by themselves make a system \
+compliant with, electronic-record and electronic-signature rules such as US 21 CFR Part 11 or \
+the EU's eIDAS regulation. What a signature means for your organisation, and whether these fit \
+its rules, is for its compliance staff to decide; this is not legal advice.";
+
 /// The audit action of a sign-off, an admission, a retirement and a declared meaning.
 pub const ENDORSED: &str = "endorsed";
 pub const ADMITTED: &str = "signatory_admitted";
