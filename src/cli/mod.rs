@@ -12,7 +12,6 @@ pub mod compare;
 pub mod document;
 pub mod query;
 pub mod record;
-pub mod render_report;
 pub mod reproduce;
 pub mod shell;
 pub mod term;
