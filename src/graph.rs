@@ -685,15 +685,51 @@ pub fn drawing(store: &Store, reference: Option<&str>, upstream_only: bool) -> R
     let agents_h = agent_rows as f64 * (agent_h + 10.0);
     let top = MARGIN + LEGEND_H + agents_h + 10.0;
     let left = MARGIN + lanes_w + (inner_w - lanes_w - layers_w) / 2.0;
+    // Each node's left edge: under the middle of what it depends on where there is room (so a
+    // chain of steps runs straight down), else pushed aside; a layer with nothing placed above
+    // it is centred. Layers are placed top down, so parents are placed first.
+    let step = BOX_W + GAP_X;
+    let right = left + layers_w - BOX_W;
+    let mut x_at: HashMap<NodeIndex, f64> = HashMap::new();
+    for row in &rows {
+        let centred = left + (widest - row.len()) as f64 * step / 2.0;
+        let mut xs: Vec<f64> = row
+            .iter()
+            .enumerate()
+            .map(|(slot, &n)| {
+                let parents: Vec<f64> = g
+                    .graph
+                    .neighbors_directed(n, Direction::Incoming)
+                    .filter_map(|p| x_at.get(&p).copied())
+                    .collect();
+                if parents.is_empty() {
+                    centred + slot as f64 * step
+                } else {
+                    parents.iter().sum::<f64>() / parents.len() as f64
+                }
+            })
+            .collect();
+        // No overlaps, left to right; then back within the right edge, right to left.
+        for i in 0..xs.len() {
+            let floor = if i == 0 { left } else { xs[i - 1] + step };
+            xs[i] = xs[i].max(floor);
+        }
+        for i in (0..xs.len()).rev() {
+            let ceiling = if i + 1 == xs.len() {
+                right
+            } else {
+                xs[i + 1] - step
+            };
+            xs[i] = xs[i].min(ceiling);
+        }
+        for (&n, x) in row.iter().zip(xs) {
+            x_at.insert(n, x);
+        }
+    }
     let pos = |n: NodeIndex| -> (f64, f64) {
-        let l = layer[&n];
-        let row = &rows[l];
-        let slot = row.iter().position(|&m| m == n).unwrap_or(0);
-        // Centre each layer.
-        let offset = (widest - row.len()) as f64 * (BOX_W + GAP_X) / 2.0;
         (
-            left + offset + slot as f64 * (BOX_W + GAP_X),
-            top + l as f64 * (box_h + GAP_Y),
+            x_at.get(&n).copied().unwrap_or(left),
+            top + layer[&n] as f64 * (box_h + GAP_Y),
         )
     };
     let width = inner_w + MARGIN * 2.0;

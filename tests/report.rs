@@ -266,6 +266,44 @@ fn the_demo_report_as_json_follows_the_schema() {
     assert_eq!(doc["verification"]["replay"]["failed"], Value::Null);
     // The command is not run again; the hand edit is re-applied from its recorded lineage.
     assert_eq!(doc["verification"]["replay"]["steps_not_rerun"], 1);
+    // Not shown to follow from the raw data alone, so not "passed"; nothing failed either.
+    assert_eq!(doc["verification"]["verdict"], "not_checked");
+    assert_eq!(doc["summary"]["reproduction"], "partly");
+    // The step numbers the way skips are named with what they made: the plan's two summaries
+    // come between the cleaning and the outside work on the cleaned orders.
+    let numbers: Vec<i64> = doc["steps"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|st| st["id"].as_i64().unwrap())
+        .collect();
+    let skipped = &doc["other_steps"][0];
+    let (first, last) = (
+        skipped["first"].as_i64().unwrap(),
+        skipped["last"].as_i64().unwrap(),
+    );
+    assert!(numbers.contains(&(first - 1)) && numbers.contains(&(last + 1)));
+    assert!((first..=last).all(|n| !numbers.contains(&n)));
+    let made: Vec<&str> = skipped["made"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|m| m.as_str().unwrap())
+        .collect();
+    assert_eq!(made, ["q3_by_shop:v1", "q3_shop_totals:v1"]);
+    // Dropped rows are listed (at most 10 per step) with the rest counted, and the summary's
+    // drops add up to the steps'.
+    let mut dropped = 0;
+    for st in doc["steps"].as_array().unwrap() {
+        let n = st["rows_dropped"].as_u64().unwrap();
+        dropped += n;
+        assert_eq!(st["excluded"].as_array().unwrap().len() as u64, n.min(10));
+    }
+    assert!(dropped > 0);
+    assert_eq!(doc["summary"]["rows_dropped"], dropped);
+    // The raw data rows in: the three tills' exports (240, 180 and 210 rows, as the demo makes
+    // them), the service names and staff list counted apart as reference tables.
+    assert_eq!(doc["summary"]["raw_rows_in"], 240 + 180 + 210);
 }
 
 #[test]

@@ -509,7 +509,10 @@ pub fn build(store: &mut Store, reference: &str, opts: &ReportOptions) -> Result
         if checked.intact {
             "every object matched its name and the audit chain is unbroken".to_string()
         } else {
-            format!("{} problems were found (listed below)", problems.len())
+            match problems.len() {
+                1 => "1 problem was found (listed below)".to_string(),
+                n => format!("{n} problems were found (listed below)"),
+            }
         }
     );
     if let Some(r) = &replay {

@@ -371,7 +371,7 @@ fn summary_lines(r: &Report) -> Vec<(&'static str, String)> {
 fn verdict_words(verdict: &str) -> (&'static str, &'static str) {
     match verdict {
         "passed" => ("Verified", "passed: store intact and the version computed again to its bytes"),
-        "failed" => ("Failed", "FAILED: problems found (see Verification)"),
+        "failed" => ("Failed", "FAILED: problems found (listed under Verification)"),
         _ => ("Not fully checked", "not fully checked: the store is intact, but the version is not shown to follow from its raw data"),
     }
 }
