@@ -1637,6 +1637,125 @@ mod tests {
         assert_eq!(utc("yesterday"), "yesterday");
     }
 
+    /// A report of one intake, with the sign-off lines given.
+    fn small_report(signoffs: Vec<super::super::SignOffLine>) -> Report {
+        use super::super::*;
+        let hash = "ab".repeat(32);
+        let at = "2026-07-01T09:30:00.000Z".to_string();
+        Report {
+            sluice_report: REPORT_FORMAT,
+            generated: Generated {
+                at: at.clone(),
+                by: "Wren Alder".into(),
+                tool_version: "sluice test".into(),
+            },
+            subject: Subject {
+                version: "orders:v1".into(),
+                dataset: "orders".into(),
+                hash: hash.clone(),
+                n_rows: 1,
+                n_cols: 1,
+                n_bytes: 4,
+                recorded_at: at.clone(),
+                latest: true,
+            },
+            summary: Summary {
+                raw: Vec::new(),
+                raw_rows_in: 1,
+                rows_out: 1,
+                dropped: Vec::new(),
+                rows_dropped: 0,
+                cells_changed: 0,
+                checks_passed: 0,
+                checks_failed: 0,
+                reproduction: "not_checked".into(),
+            },
+            figures: Figures {
+                summary: false,
+                header: vec!["a".into()],
+                rows: vec![vec!["1".into()]],
+                n_rows: 1,
+            },
+            steps: Vec::new(),
+            other_steps: Vec::new(),
+            checks: Vec::new(),
+            quality: Vec::new(),
+            hashes: Hashes {
+                algorithm: "blake3".into(),
+                raw: Vec::new(),
+                subject: hash.clone(),
+            },
+            verification: Verification {
+                intact: true,
+                objects_checked: 1,
+                bytes_checked: 4,
+                versions_checked: 1,
+                audit_entries_checked: 1,
+                audit_head_seq: 1,
+                audit_head_hash: hash,
+                problems: Vec::new(),
+                replay: None,
+                verdict: "not_checked".into(),
+                statement: "checked".into(),
+            },
+            signoffs,
+            caution: CAUTION.into(),
+            own_hash: OWN_HASH_PLACEHOLDER.into(),
+            lineage: crate::graph::Drawing::default(),
+        }
+    }
+
+    #[test]
+    fn sign_offs_are_shown_in_every_form_and_their_absence_is_said() {
+        use super::super::{SignOffLine, SignOffStatus};
+        let none = small_report(Vec::new());
+        assert!(html(&none).contains("No sign-off recorded"));
+        assert!(markdown(&none).contains("No sign-off recorded"));
+        assert!(json(&none).contains("\"signoffs\": []"));
+        let line = |meaning: &str, status| SignOffLine {
+            meaning: meaning.into(),
+            name: "Wren Alder".into(),
+            at: "2026-07-02T10:00:00.000Z".into(),
+            fingerprint: "SHA256:fingerprint-of-the-key".into(),
+            status,
+        };
+        let signed = small_report(vec![
+            line("prepared", SignOffStatus::Verified),
+            line("approved", SignOffStatus::BadSignature),
+        ]);
+        let (h, m, j) = (html(&signed), markdown(&signed), json(&signed));
+        for text in [&h, &m] {
+            assert!(!text.contains("No sign-off recorded"));
+            assert!(text.contains("2026-07-02 10:00:00.000 UTC"));
+            assert!(text.contains("SHA256:fingerprint-of-the-key"));
+            assert!(text.contains("signature verified") && text.contains("bad signature"));
+        }
+        assert!(h.contains("<span class=\"verdict failed\">bad signature</span>"));
+        assert!(j.contains("\"status\": \"bad_signature\""));
+        // A bad signature fails the signatures' part of the verification.
+        assert!(h.contains("<span class=\"verdict failed\">failed</span> signatures"));
+    }
+
+    #[test]
+    fn the_drawing_is_cut_only_between_rows_and_within_a_page() {
+        let d = crate::graph::Drawing {
+            width: 500.0,
+            height: 2000.0,
+            body: String::new(),
+            cuts: (1..20).map(|i| i as f64 * 100.0 + 50.0).collect(),
+        };
+        let b = bands(&d, 780.0, 880.0);
+        assert_eq!(b.first().map(|x| x.0), Some(0.0));
+        let mut top = 0.0;
+        for (i, (t, h)) in b.iter().enumerate() {
+            assert_eq!(*t, top, "bands follow one another");
+            assert!(*h <= if i == 0 { 780.0 } else { 880.0 });
+            top += h;
+            assert!(top == d.height || d.cuts.contains(&top), "cut at {top}");
+        }
+        assert_eq!(top, d.height);
+    }
+
     #[test]
     fn settings_read_as_words() {
         let p = serde_json::json!({"op": "trim", "columns": null, "inner": true,
