@@ -521,7 +521,7 @@ fn other_steps_text(r: &Report) -> Vec<String> {
                 format!("{which} not part of this version's history: they made no version on its way.")
             } else {
                 format!(
-                    "{which} not part of this version's history: {} {} from the same data, which {} does not come from.",
+                    "{which} not part of this version's history: {} {}, which {} does not come from.",
                     if o.first == o.last { "it made" } else { "they made" },
                     o.made.join(", "),
                     r.subject.version
@@ -996,7 +996,7 @@ dl.settings dd { margin: 0; }
 .stamp.unchecked .stamp-label { color: var(--ash); }
 ul.parts { list-style: none; padding: 0; margin: .5rem 0 .2rem; }
 ul.parts li { margin: .15rem 0; }
-.verdict { display: inline-block; min-width: 7.5rem; font-size: .8rem; font-weight: 600; letter-spacing: .06em; text-transform: uppercase; }
+.verdict { display: inline-block; min-width: 8.8rem; font-size: .8rem; font-weight: 600; letter-spacing: .06em; text-transform: uppercase; }
 .verdict.passed { color: var(--moss); }
 .verdict.passed::before { content: "✓ "; }
 .verdict.failed { color: var(--brick); }
