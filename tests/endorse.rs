@@ -894,3 +894,62 @@ fn a_failed_sign_off_leaves_the_store_as_it_was() {
     );
     assert_eq!(s.snapshot(), before);
 }
+
+/// The report's sign-off block reads the store's sign-offs and checks each signature: an
+/// approval verifies, and after its signature is changed in the database the same report shows
+/// it failed (and the report's verification fails with it).
+#[test]
+fn the_report_shows_each_sign_off_and_whether_it_verifies() {
+    let s = store();
+    s.ok(&[
+        "endorse",
+        "orders",
+        "--meaning",
+        "approved",
+        "--signing-key",
+        "ada",
+    ]);
+    s.ok(&["report", "orders", "-o", "orders.json"]);
+    let report: Value =
+        serde_json::from_str(&std::fs::read_to_string(s.path().join("orders.json")).unwrap())
+            .unwrap();
+    let lines = report["signoffs"].as_array().expect("signoffs listed");
+    assert_eq!(lines.len(), 1, "{report}");
+    assert_eq!(lines[0]["meaning"], "approved");
+    assert_eq!(lines[0]["name"], "Ada Moss");
+    assert_eq!(lines[0]["status"], "verified");
+    s.ok(&["report", "orders", "-o", "orders.md"]);
+    let md = std::fs::read_to_string(s.path().join("orders.md")).unwrap();
+    assert!(md.contains("Ada Moss"), "{md}");
+    assert!(md.contains("signature verified"), "{md}");
+
+    // One changed byte of the stored signature.
+    let c = db(&s);
+    let sig: String = c
+        .query_row(
+            "SELECT signature FROM endorsements WHERE meaning = 'approved'",
+            [],
+            |r| r.get(0),
+        )
+        .unwrap();
+    // The last line of the armored body before the END line holds signature bytes.
+    let mut lines: Vec<String> = sig.lines().map(str::to_string).collect();
+    let body = lines.len() - 2;
+    let mut chars: Vec<char> = lines[body].chars().collect();
+    chars[4] = if chars[4] == 'Q' { 'R' } else { 'Q' };
+    lines[body] = chars.into_iter().collect();
+    let flipped = lines.join("\n") + if sig.ends_with('\n') { "\n" } else { "" };
+    assert_ne!(flipped, sig);
+    c.execute(
+        "UPDATE endorsements SET signature = ?1 WHERE meaning = 'approved'",
+        [&flipped],
+    )
+    .unwrap();
+    drop(c);
+    s.fails(1, &["report", "orders", "-o", "tampered.json"]);
+    let report: Value =
+        serde_json::from_str(&std::fs::read_to_string(s.path().join("tampered.json")).unwrap())
+            .unwrap();
+    assert_ne!(report["signoffs"][0]["status"], "verified", "{report}");
+    assert_eq!(report["verification"]["verdict"], "failed", "{report}");
+}

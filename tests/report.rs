@@ -69,9 +69,11 @@ fn penguin_history() -> Sandbox {
 }
 
 fn mask(text: &str, s: &Sandbox) -> String {
-    let time = Regex::new(r"\d{4}-\d{2}-\d{2}T\d{2}:\d{2}:\d{2}(\.\d+)?Z").unwrap();
+    let time = Regex::new(r"\d{4}-\d{2}-\d{2}(T| )\d{2}:\d{2}:\d{2}(\.\d+)?(Z| UTC)").unwrap();
     let head =
         Regex::new(r"(entry \d+, `|<span class=.hash.>|audit_head_hash.: .)[0-9a-f]{64}").unwrap();
+    // The own hash covers the generation time, so it differs from run to run.
+    let own = Regex::new(r"(Own hash \(BLAKE3\): `|own_hash.: .)[0-9a-f]{64}").unwrap();
     let mut t = text.to_string();
     for root in [
         s.path().canonicalize().unwrap().display().to_string(),
@@ -80,7 +82,8 @@ fn mask(text: &str, s: &Sandbox) -> String {
         t = t.replace(&root, "<dir>");
     }
     let t = time.replace_all(&t, "<time>");
-    head.replace_all(&t, "${1}<audit head>").into_owned()
+    let t = head.replace_all(&t, "${1}<audit head>");
+    own.replace_all(&t, "${1}<own hash>").into_owned()
 }
 
 fn golden(name: &str, actual: &str) {
@@ -168,6 +171,20 @@ fn a_report_is_recorded_with_its_hash_and_verify_stays_intact() {
     let bytes = std::fs::read(s.path().join("penguins.html")).unwrap();
     let hash = blake3::hash(&bytes).to_hex().to_string();
     assert_contains(&out, &hash);
+    // The report's own hash, checked as the report tells its reader to: the hash written as 64
+    // zeros wherever it appears, the result hashed (with the blake3 crate, not sluice).
+    let own = out
+        .lines()
+        .find_map(|l| l.trim().strip_prefix("own hash blake3:"))
+        .expect("the command names the report's own hash")
+        .to_string();
+    let text = String::from_utf8(bytes.clone()).unwrap();
+    assert!(
+        text.matches(&own).count() >= 2,
+        "the footer and the page carry it"
+    );
+    let zeroed = text.replace(&own, &"0".repeat(64));
+    assert_eq!(blake3::hash(zeroed.as_bytes()).to_hex().to_string(), own);
     let after = s.json(&["verify", "--json"]);
     assert_eq!(after["intact"], true, "{after}");
     assert_eq!(
@@ -206,10 +223,13 @@ fn the_html_report_is_self_contained_and_carries_the_caution() {
         &html,
         "<div class=\"stamp caution\"><span class=\"stamp-label\">Caution</span>",
     );
+    // Without --reproduce the version is not shown to follow from its raw data: the box says
+    // so in its own look and words, not "Verified".
     assert_contains(
         &html,
-        "<div class=\"stamp verified\"><span class=\"stamp-label\">Verified</span>",
+        "<div class=\"stamp unchecked\"><span class=\"stamp-label\">Not fully checked</span>",
     );
+    assert!(!html.contains("stamp-label\">Verified"));
     assert!(!html.contains("border-left"));
     // Rules in their dimension's words; the lineage in the W3C PROV shapes, with a legend.
     assert_contains(&html, "<td>completeness: species, sex, body_mass_g</td>");
@@ -246,6 +266,44 @@ fn the_demo_report_as_json_follows_the_schema() {
     assert_eq!(doc["verification"]["replay"]["failed"], Value::Null);
     // The command is not run again; the hand edit is re-applied from its recorded lineage.
     assert_eq!(doc["verification"]["replay"]["steps_not_rerun"], 1);
+    // Not shown to follow from the raw data alone, so not "passed"; nothing failed either.
+    assert_eq!(doc["verification"]["verdict"], "not_checked");
+    assert_eq!(doc["summary"]["reproduction"], "partly");
+    // The step numbers the way skips are named with what they made: the plan's two summaries
+    // come between the cleaning and the outside work on the cleaned orders.
+    let numbers: Vec<i64> = doc["steps"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|st| st["id"].as_i64().unwrap())
+        .collect();
+    let skipped = &doc["other_steps"][0];
+    let (first, last) = (
+        skipped["first"].as_i64().unwrap(),
+        skipped["last"].as_i64().unwrap(),
+    );
+    assert!(numbers.contains(&(first - 1)) && numbers.contains(&(last + 1)));
+    assert!((first..=last).all(|n| !numbers.contains(&n)));
+    let made: Vec<&str> = skipped["made"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|m| m.as_str().unwrap())
+        .collect();
+    assert_eq!(made, ["q3_by_shop:v1", "q3_shop_totals:v1"]);
+    // Dropped rows are listed (at most 10 per step) with the rest counted, and the summary's
+    // drops add up to the steps'.
+    let mut dropped = 0;
+    for st in doc["steps"].as_array().unwrap() {
+        let n = st["rows_dropped"].as_u64().unwrap();
+        dropped += n;
+        assert_eq!(st["excluded"].as_array().unwrap().len() as u64, n.min(10));
+    }
+    assert!(dropped > 0);
+    assert_eq!(doc["summary"]["rows_dropped"], dropped);
+    // The raw data rows in: the three tills' exports (240, 180 and 210 rows, as the demo makes
+    // them), the service names and staff list counted apart as reference tables.
+    assert_eq!(doc["summary"]["raw_rows_in"], 240 + 180 + 210);
 }
 
 #[test]

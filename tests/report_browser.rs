@@ -5,8 +5,13 @@
 //! report has no scripts, so any would be an error or a refused load; a page that logs one
 //! shows the check can fail), the lineage SVG present and non-empty in the DOM Chromium built,
 //! a screenshot that is not blank (far larger than the same window's screenshot of an empty
-//! page), and a printed PDF of more than one page. The screenshot and the PDF stay under
-//! target/browser/ as artefacts.
+//! page), and a printed PDF of more than one page, read back with poppler's pdftotext (Debian's
+//! poppler-utils, a PDF reader independent of Chromium): every page carries its number and the
+//! report's own hash in the footer, no page holds a heading and nothing else, and the lineage
+//! drawing is printed at 7 pt or more. A report of a history whose database was changed behind
+//! sluice's back shows a failed verification, in its own look and words. The screenshots, the
+//! PDFs and their pages as PNG (pdftoppm) stay under target/browser/ as artefacts, to be
+//! looked at.
 
 mod common;
 
@@ -103,17 +108,77 @@ fn file_url(p: &Path) -> String {
     format!("file://{}", p.canonicalize().unwrap().display())
 }
 
+/// A poppler-utils program (installed with chromium by tests/reference/chromium.sh).
+fn poppler(name: &str) -> PathBuf {
+    let path = PathBuf::from(format!("/usr/bin/{name}"));
+    if !path.exists() {
+        chromium_installed_again();
+    }
+    assert!(
+        path.exists(),
+        "{name} (poppler-utils) is needed to read the printed report back"
+    );
+    path
+}
+
+fn chromium_installed_again() {
+    let script = concat!(env!("CARGO_MANIFEST_DIR"), "/tests/reference/chromium.sh");
+    let _ = Command::new("bash").arg(script).output();
+}
+
+/// The text of each page of a PDF, as pdftotext reads it (pages end with a form feed).
+fn pdf_pages(pdf: &Path) -> Vec<String> {
+    let out = Command::new(poppler("pdftotext"))
+        .args(["-layout"])
+        .arg(pdf)
+        .arg("-")
+        .output()
+        .expect("run pdftotext");
+    assert!(
+        out.status.success(),
+        "pdftotext failed on {}",
+        pdf.display()
+    );
+    let text = String::from_utf8_lossy(&out.stdout).into_owned();
+    let mut pages: Vec<String> = text.split('\u{c}').map(str::to_string).collect();
+    if pages.last().is_some_and(|p| p.trim().is_empty()) {
+        pages.pop();
+    }
+    pages
+}
+
+/// The PDF's pages as PNG images beside it, for a person to look at.
+fn pdf_to_png(pdf: &Path) {
+    let stem = pdf.with_extension("");
+    let out = Command::new(poppler("pdftoppm"))
+        .args(["-r", "70", "-png"])
+        .arg(pdf)
+        .arg(&stem)
+        .output()
+        .expect("run pdftoppm");
+    assert!(out.status.success(), "pdftoppm failed on {}", pdf.display());
+}
+
+/// The report's own hash, as the command printed it.
+fn own_hash(out: &str) -> String {
+    out.lines()
+        .find_map(|l| l.trim().strip_prefix("own hash blake3:"))
+        .unwrap_or_else(|| panic!("no own hash in:\n{out}"))
+        .to_string()
+}
+
 #[test]
 fn the_demo_report_renders_in_chromium_without_errors() {
     let browser = chromium();
     let s = Sandbox::with_demo();
-    s.ok(&[
+    let written = s.ok(&[
         "report",
         "q3_by_shop",
         "-o",
         "q3_by_shop.html",
         "--reproduce",
     ]);
+    let own = own_hash(&written);
     let report = s.path().join("q3_by_shop.html");
     let artefacts = PathBuf::from(concat!(env!("CARGO_MANIFEST_DIR"), "/target/browser"));
     std::fs::create_dir_all(&artefacts).unwrap();
@@ -145,6 +210,33 @@ fn the_demo_report_renders_in_chromium_without_errors() {
     );
     assert!(svg.contains("q3_by_shop:v1"));
     assert!(dom.stdout.contains("not legal or regulatory advice"));
+    // Every edge has its arrowhead, and no label is cut short.
+    assert_eq!(
+        svg.matches("<path ").count(),
+        svg.matches("class=\"arrowhead\"").count()
+    );
+    assert!(!svg.contains('…'), "a label in the drawing was cut");
+    // The published figures themselves, and the verification in its own words: the demo's
+    // report is made with --reproduce, so it passed.
+    assert!(dom.stdout.contains("The published figures: q3_by_shop:v1"));
+    assert!(dom.stdout.contains("<td>Quillby Cycle Mend</td>"));
+    assert!(dom
+        .stdout
+        .contains("<div class=\"stamp passed\"><span class=\"stamp-label\">Verified</span>"));
+    // The drawing's width in its units: printed on A4 (210 mm less 24 mm of margins = 703 CSS
+    // px; CSS 2.1: 1 in = 96 px = 72 pt) it is scaled to fit, never enlarged, and its 11-unit
+    // labels must come out at 7 pt or more.
+    let width: f64 = svg
+        .split("width=\"")
+        .nth(1)
+        .and_then(|w| w.split('"').next())
+        .and_then(|w| w.parse().ok())
+        .expect("the drawing's width");
+    let printed_pt = 11.0 * (703.0 / width).min(1.0) * 0.75;
+    assert!(
+        printed_pt >= 7.0,
+        "the drawing ({width} units wide) prints its labels at {printed_pt:.1} pt on A4"
+    );
 
     // A screenshot of the report, and of an empty page in the same window for comparison.
     let size = "--window-size=1280,2400".to_string();
@@ -205,6 +297,40 @@ fn the_demo_report_renders_in_chromium_without_errors() {
             pages >= 2,
             "the report printed on {paper} has {pages} pages"
         );
+        // Read back by poppler: each page's footer, and no page that holds a heading alone.
+        let texts = pdf_pages(&pdf_path);
+        assert_eq!(
+            texts.len(),
+            pages,
+            "pdftotext and the PDF disagree on pages"
+        );
+        for (i, page) in texts.iter().enumerate() {
+            let footer = format!("page {} of {}", i + 1, pages);
+            assert!(
+                page.contains(&footer) && page.contains(&format!("own hash blake3:{own}")),
+                "page {} of the {paper} print lacks its footer ({footer}, own hash):\n{page}",
+                i + 1
+            );
+            let body: Vec<&str> = page
+                .lines()
+                .map(str::trim)
+                .filter(|l| !l.is_empty() && !l.contains(&footer))
+                .collect();
+            assert!(
+                body.len() > 1,
+                "page {} of the {paper} print holds only {body:?}",
+                i + 1
+            );
+        }
+        let lineage = texts
+            .iter()
+            .find(|p| p.lines().any(|l| l.trim() == "Lineage"))
+            .expect("a page with the lineage heading");
+        assert!(
+            lineage.contains("version (entity)") && lineage.contains("step 1 · ingest"),
+            "the lineage heading is printed without the drawing under it:\n{lineage}"
+        );
+        pdf_to_png(&pdf_path);
         let first = text
             .split("/MediaBox [")
             .nth(1)
@@ -221,6 +347,60 @@ fn the_demo_report_renders_in_chromium_without_errors() {
             "the report printed on {paper} has pages of [{first}], not {media_box:?} points"
         );
     }
+}
+
+#[test]
+fn a_report_of_a_tampered_history_shows_a_failed_verification() {
+    let browser = chromium();
+    let s = Sandbox::with_demo();
+    // A recorded reason changed in the database behind sluice's back: the audit chain's row
+    // commitment for that step no longer matches.
+    let db = rusqlite::Connection::open(s.path().join("sluice-store/lineage.db")).unwrap();
+    let changed = db
+        .execute(
+            "UPDATE steps SET reason = 'nothing to see here' WHERE id = 20",
+            [],
+        )
+        .unwrap();
+    assert_eq!(changed, 1);
+    drop(db);
+    // The report is still written, and the command says the data failed (exit code 1).
+    s.fails(
+        1,
+        &["report", "q3_by_shop", "-o", "tampered.html", "--reproduce"],
+    );
+    let report = s.path().join("tampered.html");
+    let profile = tempfile::tempdir().unwrap();
+    let dom = headless(
+        &browser,
+        profile.path(),
+        &["--dump-dom".to_string()],
+        &file_url(&report),
+    );
+    let page = &dom.stdout;
+    assert!(
+        page.contains("<div class=\"stamp failed\"><span class=\"stamp-label\">Failed</span>"),
+        "the tampered history's report does not show a failed verification:\n{page}"
+    );
+    assert!(page.contains("FAILED: problems found"));
+    assert!(page.contains("<ul class=\"problems\">"));
+    assert!(!page.contains("stamp passed") && !page.contains("stamp-label\">Verified"));
+    let artefacts = PathBuf::from(concat!(env!("CARGO_MANIFEST_DIR"), "/target/browser"));
+    std::fs::create_dir_all(&artefacts).unwrap();
+    let shot = artefacts.join("tampered_report.png");
+    let _ = std::fs::remove_file(&shot);
+    headless(
+        &browser,
+        profile.path(),
+        &[
+            format!("--screenshot={}", shot.display()),
+            "--window-size=1280,2000".to_string(),
+        ],
+        &file_url(&report),
+    );
+    assert!(std::fs::read(&shot)
+        .expect("chromium wrote the screenshot")
+        .starts_with(b"\x89PNG"));
 }
 
 #[test]

@@ -7,12 +7,11 @@ use std::path::Path;
 
 use serde::Serialize;
 
-use super::args::{ReportFormat, ShellArg};
+use super::args::ShellArg;
 use super::text::*;
 use super::{read_text, shell, write_file_atomically, Context, ExitCode};
 use sluice::demo::DemoReport;
 use sluice::model::Agent;
-use sluice::store::Store;
 
 pub fn demo(
     ctx: &Context<'_>,
@@ -26,42 +25,22 @@ pub fn demo(
     };
     let report = sluice::demo::run(&target, &agent)?;
     demo_text(out, &report)?;
-    // Documented for an audit: the report of the cooperative's Q3 figures (reproduced from the
-    // raw exports) and their lineage in W3C PROV, written beside the demo's store.
-    let mut store = Store::open(&report.dir)?;
-    let reference = "q3_by_shop";
-    let html = report.dir.join("q3_by_shop-report.html");
-    let opts = sluice::report::ReportOptions {
-        sample: 5,
-        replay: true,
-        agent: agent.identity(),
-    };
-    let (doc, hash, entry) = super::document::write_report(
-        &mut store,
-        &agent,
-        reference,
-        ReportFormat::Html,
-        &html,
-        &opts,
-    )?;
-    let prov_path = report.dir.join("q3_by_shop.prov.json");
-    let prov = sluice::prov::document(&store, reference)?;
-    let prov_text = sluice::prov::to_json(&prov);
-    write_file_atomically(&prov_path, |f| Ok(f.write_all(prov_text.as_bytes())?))?;
+    let d = &report.documented;
+    let doc = &d.report.report;
     writeln!(out)?;
     writeln!(out, "documented for an audit:")?;
     writeln!(
         out,
         "  {}  the lineage report of {} ({} steps; open it in a browser, or print it)",
-        html.display(),
+        d.report_file.display(),
         doc.subject.version,
         doc.steps.len()
     )?;
     writeln!(
         out,
         "    {}, recorded as audit entry {}; {}",
-        short_hash(&hash),
-        entry.seq,
+        short_hash(&d.report.hash),
+        d.report.entry.seq,
         if doc.verification.intact {
             "the store verified intact when it was written"
         } else {
@@ -71,10 +50,10 @@ pub fn demo(
     writeln!(
         out,
         "  {}  its lineage in W3C PROV (PROV-JSON: {} entities, {} activities, {} agents)",
-        prov_path.display(),
-        prov.count(sluice::prov::ElementKind::Entity),
-        prov.count(sluice::prov::ElementKind::Activity),
-        prov.count(sluice::prov::ElementKind::Agent)
+        d.prov_file.display(),
+        d.prov_counts.0,
+        d.prov_counts.1,
+        d.prov_counts.2
     )?;
     demo_next(out, &report)?;
     Ok(0)

@@ -1112,6 +1112,9 @@ pub struct ReportArgs {
     /// How many changed cells to list per step (the counts stay complete)
     #[arg(long, value_name = "N", default_value_t = 5)]
     pub sample: usize,
+    /// How many dropped rows to list per step (the counts stay complete)
+    #[arg(long, value_name = "N", default_value_t = 10)]
+    pub excluded: usize,
     /// Also reproduce the version from its raw inputs and state the result
     #[arg(long)]
     pub reproduce: bool,

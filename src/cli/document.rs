@@ -5,14 +5,13 @@
 use std::io::Write;
 use std::path::Path;
 
-use anyhow::{anyhow, Context as _};
+use anyhow::Context as _;
 use serde::Serialize;
 
 use super::args::{ExportFormat, ReportArgs, ReportFormat};
 use super::text::*;
-use super::{render_report, write_text_to, Context, ExitCode};
+use super::{write_text_to, Context, ExitCode};
 use sluice::model::{Agent, Version};
-use sluice::store::Store;
 
 pub fn export(
     ctx: &Context<'_>,
@@ -82,10 +81,16 @@ pub fn report(ctx: &Context<'_>, a: &ReportArgs, out: &mut impl Write) -> anyhow
     let opts = sluice::report::ReportOptions {
         sample: a.sample,
         replay: a.reproduce,
+        excluded: a.excluded,
         agent: agent.identity(),
     };
-    let (report, hash, entry) =
-        write_report(&mut store, &agent, &a.reference, format, output, &opts)?;
+    let format = match format {
+        ReportFormat::Html => sluice::report::Format::Html,
+        ReportFormat::Md => sluice::report::Format::Markdown,
+        ReportFormat::Json => sluice::report::Format::Json,
+    };
+    let written = sluice::report::write(&mut store, &agent, &a.reference, format, output, &opts)?;
+    let (report, hash, entry) = (&written.report, &written.hash, &written.entry);
     writeln!(
         out,
         "wrote the lineage report of {} ({} steps) to {}",
@@ -98,14 +103,9 @@ pub fn report(ctx: &Context<'_>, a: &ReportArgs, out: &mut impl Write) -> anyhow
         "  blake3:{hash}, recorded as audit entry {}",
         entry.seq
     )?;
+    writeln!(out, "  own hash blake3:{}", written.own_hash)?;
     writeln!(out, "  {}", report.verification.statement)?;
-    let intact = report.verification.intact
-        && report
-            .verification
-            .replay
-            .as_ref()
-            .is_none_or(|r| r.failed.is_none());
-    Ok(if intact { 0 } else { 1 })
+    Ok(if report.verification.failed() { 1 } else { 0 })
 }
 
 /// What `identify --json` prints.
@@ -216,76 +216,4 @@ pub fn identify(
         );
     }
     Ok(if found { 0 } else { 1 })
-}
-
-/// Builds the report of `reference`, renders it, writes it to `output` and records it in the
-/// audit chain; returns the report, the written file's BLAKE3 and the audit entry.
-pub fn write_report(
-    store: &mut Store,
-    agent: &Agent,
-    reference: &str,
-    format: ReportFormat,
-    output: &Path,
-    opts: &sluice::report::ReportOptions,
-) -> anyhow::Result<(sluice::report::Report, String, sluice::model::AuditEntry)> {
-    let report = sluice::report::build(store, reference, opts)?;
-    let (text, name) = match format {
-        ReportFormat::Html => (render_report::html(&report), "html"),
-        ReportFormat::Md => (render_report::markdown(&report), "md"),
-        ReportFormat::Json => (render_report::json(&report), "json"),
-    };
-    let shown = output.display().to_string();
-    let entry = write_file_recorded(output, text.as_bytes(), || {
-        Ok(sluice::report::record(
-            store,
-            agent,
-            &report,
-            name,
-            text.as_bytes(),
-            &shown,
-        )?)
-    })?;
-    let hash = blake3::hash(text.as_bytes()).to_hex().to_string();
-    Ok((report, hash, entry))
-}
-
-/// Writes `bytes` to a temporary file beside `path`, then runs `record` (the audit entry), then
-/// renames the file into place: the report exists under its name only when it was recorded,
-/// and a failure to record removes it again.
-fn write_file_recorded<T>(
-    path: &Path,
-    bytes: &[u8],
-    record: impl FnOnce() -> anyhow::Result<T>,
-) -> anyhow::Result<T> {
-    let dir = path
-        .parent()
-        .filter(|p| !p.as_os_str().is_empty())
-        .unwrap_or(Path::new("."));
-    let name = path
-        .file_name()
-        .ok_or_else(|| anyhow!("{}: not a file name; give -o a file path", path.display()))?;
-    super::folder_exists(path, dir)?;
-    let tmp = dir.join(format!(".{}.sluice-part", name.to_string_lossy()));
-    let written = std::fs::File::create(&tmp)
-        .and_then(|mut f| f.write_all(bytes).and_then(|_| f.sync_all()))
-        .with_context(|| format!("cannot write {}", path.display()));
-    if let Err(e) = written {
-        let _ = std::fs::remove_file(&tmp);
-        return Err(e);
-    }
-    let recorded = match record() {
-        Ok(r) => r,
-        Err(e) => {
-            let _ = std::fs::remove_file(&tmp);
-            return Err(e);
-        }
-    };
-    std::fs::rename(&tmp, path).with_context(|| {
-        format!(
-            "cannot move the report into place at {} (it was recorded in the audit log; its text is in {})",
-            path.display(),
-            tmp.display()
-        )
-    })?;
-    Ok(recorded)
 }

@@ -13,7 +13,6 @@ pub mod document;
 pub mod endorse;
 pub mod query;
 pub mod record;
-pub mod render_report;
 pub mod reproduce;
 pub mod shell;
 pub mod term;
