@@ -674,3 +674,100 @@ fn an_untracked_or_ignored_script_is_recorded_with_its_bytes_and_replayed_from_t
     let r = s.json(&["reproduce", "o:v2", "--allow-exec", "--json"]);
     assert_eq!(r["reproduced"], true, "{r}");
 }
+
+// Before: `drop "status == 'test'"` said only "expected a column name". Equality is one `=`,
+// and the refusal now says so, at the column of the `==`.
+#[test]
+fn a_predicate_written_with_double_equals_says_equality_is_one_equals_sign() {
+    let s = Sandbox::with_store();
+    s.file("o.csv", "order_id,status\n1,done\n2,test\n");
+    s.ok(&["receive", "o.csv", "--as", "o"]);
+    let before = s.snapshot();
+    let err = s.fails(
+        2,
+        &["clean", "o", "drop", "status == 'test'", "--why", "tests"],
+    );
+    assert_contains(&err, "column 8");
+    assert_contains(&err, "equality is one \"=\"");
+    assert!(!err.contains("expected a column name"), "{err}");
+    assert_eq!(s.snapshot(), before, "nothing recorded");
+    // One `=` is the comparison the user meant: the test order goes.
+    s.ok(&["clean", "o", "drop", "status = 'test'", "--why", "tests"]);
+    assert_eq!(s.ok(&["retrieve", "o"]), "order_id,status\n1,done\n");
+}
+
+/// Runs `args` with standard output a pipe whose reading end is already closed, as when the
+/// output goes into `head -c 10` that has finished: every write fails with a broken pipe.
+fn into_closed_pipe(s: &Sandbox, args: &[&str]) -> (i32, String) {
+    let (reader, writer) = std::io::pipe().expect("a pipe");
+    drop(reader);
+    let out = s
+        .command(args)
+        .stdout(writer)
+        .stderr(std::process::Stdio::piped())
+        .output()
+        .expect("run sluice");
+    (
+        out.status.code().unwrap_or(-1),
+        String::from_utf8_lossy(&out.stderr).into_owned(),
+    )
+}
+
+// Before: `sluice timeline --json | head -c 10` printed "error: Broken pipe" (the JSON writer's
+// error hid the pipe's), while the text output ended quietly. Every reading command, in text and
+// in JSON, now ends quietly with status 0 when its reader has gone (common practice for Unix
+// filters: a closed pipe is the reader's choice, not a failure).
+#[test]
+fn output_into_a_closed_pipe_ends_quietly_in_text_and_json() {
+    let s = Sandbox::with_demo();
+    let commands: &[&[&str]] = &[
+        &["timeline"],
+        &["about", "all_orders"],
+        &["compare", "all_orders:v4", "all_orders:v5"],
+        &[
+            "compare",
+            "quillby_orders:v1",
+            "quillby_orders:v2",
+            "--counts",
+        ],
+        &[
+            "trace",
+            "all_orders",
+            "--row",
+            "3",
+            "--column",
+            "parts_cost",
+        ],
+        &["explain", "q3_by_shop", "--row", "1", "--column", "count"],
+        &["impact", "technicians:v1"],
+        &["reproduce", "q3_by_shop"],
+        &["verify"],
+        &["identity"],
+        &["identify", "q3_by_shop-report.html"],
+    ];
+    for args in commands {
+        for json in [false, true] {
+            let mut a = args.to_vec();
+            if json {
+                a.push("--json");
+            }
+            let (code, err) = into_closed_pipe(&s, &a);
+            assert_eq!(code, 0, "sluice {}: {err}", a.join(" "));
+            assert_eq!(err, "", "sluice {} wrote to standard error", a.join(" "));
+        }
+    }
+    // Commands without --json that print data or text.
+    for args in [
+        &["retrieve", "all_orders"][..],
+        &["retrieve", "all_orders", "--format", "jsonl"],
+        &["export", "q3_by_shop", "--format", "plan"],
+        &["lineage"],
+        &["completions", "bash"],
+        &["manual"],
+        &["--help"],
+    ] {
+        let (code, err) = into_closed_pipe(&s, args);
+        assert_eq!(code, 0, "sluice {}: {err}", args.join(" "));
+        assert_eq!(err, "", "sluice {} wrote to standard error", args.join(" "));
+    }
+}

@@ -111,7 +111,12 @@ pub fn upgrade(
     output: Option<&Path>,
     out: &mut impl Write,
 ) -> anyhow::Result<ExitCode> {
-    let text = read_text(file, "the file to upgrade", "sluice upgrade --help")?;
+    let text = read_text(
+        file,
+        "the file to upgrade",
+        "sluice upgrade --help",
+        sluice::plan::MAX_PLAN_BYTES,
+    )?;
     let converted =
         sluice::plan::upgrade(&text).map_err(|e| anyhow::anyhow!("{}: {e}", file.display()))?;
     match output {
