@@ -771,3 +771,62 @@ fn output_into_a_closed_pipe_ends_quietly_in_text_and_json() {
         assert_eq!(err, "", "sluice {} wrote to standard error", args.join(" "));
     }
 }
+
+// Before: "(1 sources, 1 steps)" and "1 of 1 rules failed"; screens now write one thing in the
+// singular, and counts with thousands separators as every other screen does.
+#[test]
+fn counts_of_one_are_written_in_the_singular() {
+    let s = Sandbox::with_store();
+    s.file("o.csv", "order_id,status\n1,done\n2,test\n");
+    s.ok(&["receive", "o.csv", "--as", "o"]);
+    s.ok(&["clean", "o", "drop", "status = 'test'", "--why", "tests"]);
+    let out = s.ok(&["export", "o", "--format", "plan", "-o", "plan.json"]);
+    assert_contains(&out, "wrote the plan of o (1 source, 1 step) to plan.json");
+    let out = s.ok(&["report", "o", "-o", "o.md", "--format", "md"]);
+    assert_contains(&out, "(2 steps)");
+    s.ok(&["receive", "o.csv", "--as", "p"]);
+    let out = s.ok(&["report", "p", "-o", "p.md", "--format", "md"]);
+    assert_contains(&out, "wrote the lineage report of p:v1 (1 step) to p.md");
+    assert!(!out.contains("1 steps"), "{out}");
+}
+
+// Before: a file named through `..` was recorded, and shown by trace, as
+// `/home/.../plans/../o.csv`. The absolute path recorded is the file's real path.
+#[test]
+fn the_absolute_path_of_a_raw_file_is_recorded_without_dot_dot() {
+    let s = Sandbox::with_store();
+    s.file("plans/keep.txt", "");
+    s.file("o.csv", "order_id,status\n1,done\n");
+    s.ok(&["receive", "plans/../o.csv", "--as", "o"]);
+    let t = s.json(&["trace", "o", "--row", "1", "--column", "status", "--json"]);
+    let real = std::fs::canonicalize(s.path().join("o.csv")).unwrap();
+    assert_eq!(t["end"]["path"], "plans/../o.csv", "as given");
+    assert_eq!(t["end"]["absolute_path"], real.display().to_string());
+}
+
+// Before: the demo's outside script printed "fixed 74 orders" among sluice's own lines, with
+// nothing to say whose line it was. Its line now names the script and what it did.
+#[test]
+fn the_demo_script_labels_its_own_line() {
+    let s = Sandbox::new();
+    let r = s.run(&["demo", "."]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let all = format!("{}{}", r.stdout, r.stderr);
+    assert!(!all.contains("\nfixed "), "{all}");
+    // The rows the script changed are counted in its input, the version its step read.
+    let about = s.json(&["about", "reviewed_orders:v1", "--json"]);
+    let input = about["step"]["inputs"][0].as_str().unwrap().to_string();
+    let raw = s.ok(&["retrieve", &input]);
+    let header: Vec<&str> = raw.lines().next().unwrap().split(',').collect();
+    let col = header.iter().position(|h| *h == "technician").unwrap();
+    let n = raw
+        .lines()
+        .skip(1)
+        .filter(|l| l.split(',').nth(col) == Some("Ines"))
+        .count();
+    assert!(n > 0);
+    assert_contains(
+        &all,
+        &format!("restore_accents.py: Inès written in {n} orders"),
+    );
+}

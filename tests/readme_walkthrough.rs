@@ -403,3 +403,60 @@ fn the_comparison_rule_itself() {
         "raw exports/o.csv and d"
     );
 }
+
+// Before: the quick start ran `cargo run --release -- demo`, after which `sluice` was not on
+// the PATH and every example below failed with "command not found". The quick start's shell
+// block is now run as written (its build stood in for by the built binary at the place the
+// build puts it) in a shell whose PATH holds no sluice, and must leave a runnable `sluice`.
+#[test]
+fn the_quick_start_leaves_sluice_runnable_by_name() {
+    let readme = std::fs::read_to_string(README).expect("README.md");
+    let start = readme
+        .find("## Quick start")
+        .expect("README.md has a Quick start");
+    let block = readme[start..]
+        .split("```sh\n")
+        .nth(1)
+        .and_then(|b| b.split("```").next())
+        .expect("the Quick start has a ```sh block");
+    let commands: Vec<&str> = block
+        .lines()
+        .map(|l| l.split(" #").next().unwrap_or("").trim())
+        .filter(|l| !l.is_empty())
+        .collect();
+    assert!(
+        commands.first() == Some(&"cargo build --release"),
+        "the quick start builds first: {commands:?}"
+    );
+    // A repository folder whose build has run: the binary where `cargo build --release` puts it.
+    let repo = tempfile::tempdir().expect("a fresh folder");
+    let release = repo.path().join("target/release");
+    std::fs::create_dir_all(&release).unwrap();
+    std::os::unix::fs::symlink(env!("CARGO_BIN_EXE_sluice"), release.join("sluice")).unwrap();
+    let script: Vec<&str> = commands
+        .iter()
+        .copied()
+        .filter(|c| !c.starts_with("cargo build") && *c != "tests/run")
+        .collect();
+    assert!(
+        script.iter().any(|c| c.starts_with("sluice ")),
+        "the quick start calls sluice by name: {commands:?}"
+    );
+    let out = Command::new("bash")
+        .arg("-c")
+        .arg(format!("set -e\n{}\nsluice --version", script.join("\n")))
+        .current_dir(repo.path())
+        .env("PATH", "/usr/bin:/bin")
+        .env("SLUICE_PERSON", README_PERSON)
+        .env("SLUICE_EMAIL", README_EMAIL)
+        .env_remove("SLUICE_STORE")
+        .output()
+        .expect("run bash");
+    assert!(
+        out.status.success(),
+        "the quick start {script:?} failed:\n{}{}",
+        String::from_utf8_lossy(&out.stdout),
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert!(repo.path().join("sluice-demo/sluice-store").is_dir());
+}

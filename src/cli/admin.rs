@@ -52,10 +52,10 @@ pub fn demo(
     writeln!(out, "documented for an audit:")?;
     writeln!(
         out,
-        "  {}  the lineage report of {} ({} steps; open it in a browser, or print it)",
+        "  {}  the lineage report of {} ({}; open it in a browser, or print it)",
         html.display(),
         doc.subject.version,
-        doc.steps.len()
+        super::text::plural(doc.steps.len() as u64, "step", "steps")
     )?;
     writeln!(
         out,

@@ -37,10 +37,10 @@ pub fn export(
             if let (true, Some(path)) = (write_text_to(output, &text, out)?, output) {
                 writeln!(
                     out,
-                    "wrote the plan of {} ({} sources, {} steps) to {}",
+                    "wrote the plan of {} ({}, {}) to {}",
                     reference,
-                    plan.sources.len(),
-                    plan.steps.len(),
+                    plural(plan.sources.len() as u64, "source", "sources"),
+                    plural(plan.steps.len() as u64, "step", "steps"),
                     path.display()
                 )?;
             }
@@ -88,9 +88,9 @@ pub fn report(ctx: &Context<'_>, a: &ReportArgs, out: &mut impl Write) -> anyhow
         write_report(&mut store, &agent, &a.reference, format, output, &opts)?;
     writeln!(
         out,
-        "wrote the lineage report of {} ({} steps) to {}",
+        "wrote the lineage report of {} ({}) to {}",
         report.subject.version,
-        report.steps.len(),
+        plural(report.steps.len() as u64, "step", "steps"),
         output.display()
     )?;
     writeln!(

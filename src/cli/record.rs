@@ -1369,7 +1369,11 @@ pub fn run_done(out: &mut impl Write, done: &[Done]) -> io::Result<()> {
                             plural(report.results.len() as u64, "rule", "rules")
                         )
                     } else {
-                        format!("{} of {} rules failed", failed, report.results.len())
+                        format!(
+                            "{} of {} failed",
+                            count(failed as u64),
+                            plural(report.results.len() as u64, "rule", "rules")
+                        )
                     },
                     if failed == 0 {
                         String::new()
