@@ -54,12 +54,24 @@ pub fn export(
             if let (true, Some(path)) = (write_text_to(output, &text, out)?, output) {
                 writeln!(
                     out,
-                    "wrote the lineage of {} in W3C PROV ({} entities, {} activities, {} agents, {} relations) to {}",
+                    "wrote the lineage of {} in W3C PROV ({}, {}, {}, {}) to {}",
                     doc.subject,
-                    doc.count(sluice::prov::ElementKind::Entity),
-                    doc.count(sluice::prov::ElementKind::Activity),
-                    doc.count(sluice::prov::ElementKind::Agent),
-                    doc.relations.len(),
+                    plural(
+                        doc.count(sluice::prov::ElementKind::Entity) as u64,
+                        "entity",
+                        "entities"
+                    ),
+                    plural(
+                        doc.count(sluice::prov::ElementKind::Activity) as u64,
+                        "activity",
+                        "activities"
+                    ),
+                    plural(
+                        doc.count(sluice::prov::ElementKind::Agent) as u64,
+                        "agent",
+                        "agents"
+                    ),
+                    plural(doc.relations.len() as u64, "relation", "relations"),
                     path.display()
                 )?;
             }
