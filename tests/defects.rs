@@ -830,3 +830,35 @@ fn the_demo_script_labels_its_own_line() {
         &format!("restore_accents.py: Inès written in {n} orders"),
     );
 }
+
+// Before: compare wrote row 1,001 where trace, explain and every message write data row 1001.
+// Row numbers name a row and are written alike on every screen, without separators; counts
+// keep theirs.
+#[test]
+fn row_numbers_are_written_alike_on_every_screen_and_counts_with_separators() {
+    let s = Sandbox::with_store();
+    let table = |last: &str| {
+        let mut t = String::from("order_id,shop\n");
+        for i in 1..=1000 {
+            t.push_str(&format!("{i},Ferry Lane\n"));
+        }
+        t.push_str(&format!("1001,{last}\n"));
+        t
+    };
+    s.file("a.csv", table("Ferry Lane"));
+    s.file("b.csv", table("Mill Row"));
+    s.ok(&["receive", "a.csv", "--as", "o", "--key", "order_id"]);
+    s.ok(&["receive", "b.csv", "--as", "o", "--key", "order_id"]);
+    let out = s.ok(&["compare", "o:v1", "o:v2"]);
+    assert_contains(
+        &out,
+        "rows: 1,001 before, 1,001 after; 1,001 kept (1 of them changed)",
+    );
+    let row = out
+        .lines()
+        .find(|l| l.contains("Mill«·Row»") || l.contains("Mill"))
+        .unwrap_or_else(|| panic!("{out}"));
+    assert!(row.trim_start().starts_with("1001 "), "{row}");
+    let trace = s.ok(&["trace", "o", "--row", "1001", "--column", "shop"]);
+    assert_contains(&trace, "data row 1001");
+}

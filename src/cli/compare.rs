@@ -126,7 +126,7 @@ fn marked_pair(old: &str, new: &str, colour: bool) -> (String, String) {
 /// their 1-based data rows on each side.
 fn duplicates_line(out: &mut impl Write, dup: &sluice::diff::DuplicateKeys) -> io::Result<()> {
     let rows = |rs: &[u64], n: u64| {
-        let mut t: Vec<String> = rs.iter().map(|r| count(*r)).collect();
+        let mut t: Vec<String> = rs.iter().map(|r| r.to_string()).collect();
         if n > rs.len() as u64 {
             t.push(format!("and {} more", count(n - rs.len() as u64)));
         }
@@ -242,13 +242,15 @@ fn key_text(d: &Diff, c: &Change) -> String {
         .unwrap_or_else(|| "-".into())
 }
 
-/// A row position on screen: 1-based; `3 (was 2)` when the row moved.
+/// A row position on screen: 1-based; `3 (was 2)` when the row moved. Row numbers are written
+/// as every screen writes a data row, without thousands separators (they name a row; counts
+/// have separators).
 fn row_text(c: &Change) -> String {
     match (c.a_row, c.b_row) {
-        (Some(a), Some(b)) if a == b => count(b + 1),
-        (Some(a), Some(b)) => format!("{} (was {})", count(b + 1), count(a + 1)),
-        (Some(a), None) => count(a + 1),
-        (None, Some(b)) => count(b + 1),
+        (Some(a), Some(b)) if a == b => (b + 1).to_string(),
+        (Some(a), Some(b)) => format!("{} (was {})", b + 1, a + 1),
+        (Some(a), None) => (a + 1).to_string(),
+        (None, Some(b)) => (b + 1).to_string(),
         (None, None) => "-".into(),
     }
 }
