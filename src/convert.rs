@@ -565,6 +565,33 @@ pub fn prepare(
     if meta_before.len() == 0 {
         return Err(Error::input(path, None, InputProblem::Empty));
     }
+    // Both forms are read whole: a file past its bound is refused before it is read.
+    match format {
+        SourceFormat::JsonLines if meta_before.len() > jsonl::MAX_JSONL_BYTES => {
+            return Err(Error::input(
+                path,
+                None,
+                InputProblem::LinesTooLarge {
+                    size: meta_before.len(),
+                    limit: jsonl::MAX_JSONL_BYTES,
+                },
+            ));
+        }
+        SourceFormat::Workbook(_) if meta_before.len() > sheets::MAX_WORKBOOK_XML_BYTES => {
+            return Err(Error::input(
+                path,
+                None,
+                InputProblem::WorkbookTooLarge {
+                    detail: format!(
+                        "the file is {} bytes, more than the {} MiB its parts may decompress to (the bound for a workbook, which is read whole); export the sheet as CSV and take that in",
+                        meta_before.len(),
+                        sheets::MAX_WORKBOOK_XML_BYTES >> 20
+                    ),
+                },
+            ));
+        }
+        _ => {}
+    }
     let started_at = clock::now_rfc3339();
     let bytes = fs::read(path).map_err(|e| Error::io(path, e))?;
     let meta_after = fs::metadata(path).map_err(|e| Error::io(path, e))?;
@@ -620,7 +647,9 @@ pub fn prepare(
     });
     let source = SourceFile {
         path: path.display().to_string(),
-        absolute_path: std::path::absolute(path)
+        // The file's real path, without `.` or `..` (`plans/../data/x.csv` is `data/x.csv`).
+        absolute_path: std::fs::canonicalize(path)
+            .or_else(|_| std::path::absolute(path))
             .unwrap_or_else(|_| PathBuf::from(path))
             .display()
             .to_string(),

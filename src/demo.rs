@@ -622,7 +622,7 @@ with open(sys.argv[1], newline="", encoding="utf-8") as src, \
             row[col] = "Inès"
             fixed += 1
         out.writerow(row)
-print(f"fixed {fixed} orders", file=sys.stderr)
+print(f"restore_accents.py: Inès written in {fixed} orders", file=sys.stderr)
 "#;
 
 /// The script run and the hand edit, each recorded with its reason.

@@ -78,6 +78,11 @@ pub enum InputProblem {
     WorkbookTooLarge {
         detail: String,
     },
+    /// A JSON Lines file past the size read whole.
+    LinesTooLarge {
+        size: u64,
+        limit: u64,
+    },
     /// A workbook with several sheets and no `--sheet`.
     SheetNeeded {
         sheets: Vec<String>,
@@ -206,6 +211,11 @@ impl fmt::Display for InputProblem {
                 "the file changed while it was being read; take it in again once whatever writes it has finished"
             ),
             WorkbookTooLarge { detail } => write!(f, "workbook refused: {detail}"),
+            LinesTooLarge { size, limit } => write!(
+                f,
+                "JSON Lines file refused: it is {size} bytes, more than the {} MiB a JSON Lines file may be (it is read whole); split it, or convert it to CSV, which is read as a stream",
+                limit >> 20
+            ),
             UnreadableWorkbook { detail } => write!(
                 f,
                 "cannot be read as a workbook ({detail}); expected an .xlsx or .ods file saved by a spreadsheet program"

@@ -199,7 +199,9 @@ pub fn prepare_from(
     let n_columns = scan.header.len();
     let source = SourceFile {
         path: path.display().to_string(),
-        absolute_path: std::path::absolute(path)
+        // The file's real path, without `.` or `..` (`plans/../data/x.csv` is `data/x.csv`).
+        absolute_path: std::fs::canonicalize(path)
+            .or_else(|_| std::path::absolute(path))
             .unwrap_or_else(|_| PathBuf::from(path))
             .display()
             .to_string(),

@@ -60,6 +60,10 @@ pub struct LinesTable {
     pub kinds: [u64; 5],
 }
 
+/// The largest JSON Lines file taken in: 24 MiB. The file is read whole and its table held in
+/// memory (a few times the file's size for short values) before it is written as a version.
+pub const MAX_JSONL_BYTES: u64 = 24 << 20;
+
 /// Names of [`LinesTable::kinds`], in order.
 pub const KIND_NAMES: [&str; 5] = ["string", "number", "boolean", "null", "missing"];
 

@@ -150,6 +150,11 @@ pub const MAX_WORKBOOK_XML_BYTES: u64 = 128 << 20;
 /// cells written): 1,000,000.
 pub const MAX_SHEET_CELLS: u64 = 1_000_000;
 
+/// The most cells all the sheets of an .ods may span together: 4,000,000. An .ods is read
+/// with all its sheets at once (they share one part, `content.xml`), so each sheet's bound
+/// alone would not bound the whole.
+pub const MAX_ODS_CELLS: u64 = 4 * MAX_SHEET_CELLS;
+
 /// Measures the workbook's parts as they decompress (never trusting the sizes the archive
 /// declares) and, for .xlsx, the cells of every sheet and the range they span; refuses a
 /// workbook past [`MAX_WORKBOOK_XML_BYTES`] or a sheet past [`MAX_SHEET_CELLS`]. Memory: one
@@ -171,6 +176,7 @@ fn check_bounds(bytes: &[u8], path: &Path) -> Result<()> {
         let name = part.name().to_string();
         let sheet = name.starts_with("xl/worksheets/") && name.ends_with(".xml");
         let mut cells = CellCount::default();
+        let mut ods = (name == "content.xml").then(OdsCount::default);
         loop {
             let n = match part.read(&mut buf) {
                 Ok(0) => break,
@@ -193,9 +199,179 @@ fn check_bounds(bytes: &[u8], path: &Path) -> Result<()> {
                     )));
                 }
             }
+            if let Some(ods) = &mut ods {
+                ods.push(&buf[..n], false);
+                if let Some(why) = ods.over() {
+                    return Err(refuse(why));
+                }
+            }
+        }
+        if let Some(ods) = &mut ods {
+            ods.push(&[], true);
+            if let Some(why) = ods.over() {
+                return Err(refuse(why));
+            }
         }
     }
     Ok(())
+}
+
+/// Counts, in an .ods `content.xml` fed piece by piece, the cells each sheet (`table:table`)
+/// spans once its repeated rows and columns (`table:number-rows-repeated`,
+/// `table:number-columns-repeated`) are expanded, as the reader expands them: from the first
+/// to the last row that holds a value, by the columns from the first to the last cell that
+/// holds one. Empty rows and cells repeated past the last value (spreadsheet programs write
+/// the rest of the grid that way) span nothing. A cell holds a value when it names a value
+/// type or a formula, or has content (it is not written as an empty element).
+#[derive(Default)]
+struct OdsCount {
+    /// The end of the last piece, for a tag cut between two pieces.
+    carry: Vec<u8>,
+    /// The current sheet's name, its span so far and the rows read in it.
+    sheet: String,
+    rows_read: u64,
+    first_row: Option<u64>,
+    rows_end: u64,
+    cols: Option<(u64, u64)>,
+    /// The current row: its repeat count, the columns read in it, the span of its values.
+    row_repeat: u64,
+    col: u64,
+    row_cols: Option<(u64, u64)>,
+    /// The spans of the sheets already read.
+    done: u64,
+    over: Option<String>,
+}
+
+/// An attribute's number in a tag (`table:number-rows-repeated="12"`); 1 when absent.
+fn repeat_of(tag: &[u8], attr: &[u8]) -> u64 {
+    let Some(at) = memchr::memmem::find(tag, attr) else {
+        return 1;
+    };
+    let rest = &tag[at + attr.len()..];
+    let rest = rest
+        .strip_prefix(b"=\"")
+        .or_else(|| rest.strip_prefix(b"='"))
+        .unwrap_or(rest);
+    let digits = rest.iter().take_while(|b| b.is_ascii_digit()).count();
+    std::str::from_utf8(&rest[..digits])
+        .ok()
+        .and_then(|d| d.parse::<u64>().ok())
+        .unwrap_or(u64::MAX)
+        .max(1)
+}
+
+impl OdsCount {
+    /// The longest tag looked at; attributes past it are not read.
+    const TAG: usize = 4096;
+
+    fn span(&self) -> u64 {
+        match (self.first_row, self.cols) {
+            (Some(r0), Some((c0, c1))) => (self.rows_end - r0).saturating_mul(c1 - c0),
+            _ => 0,
+        }
+    }
+
+    fn push(&mut self, piece: &[u8], last: bool) {
+        let mut text = std::mem::take(&mut self.carry);
+        text.extend_from_slice(piece);
+        // Tags that start near the end are read with the next piece.
+        let done = if last {
+            text.len()
+        } else {
+            text.len().saturating_sub(Self::TAG)
+        };
+        let mut at = 0usize;
+        while let Some(i) = memchr::memchr(b'<', &text[at..]) {
+            let p = at + i;
+            if p >= done {
+                break;
+            }
+            at = p + 1;
+            let window = &text[p..text.len().min(p + Self::TAG)];
+            let tag = match memchr::memchr(b'>', window) {
+                Some(e) => &window[..=e],
+                None => window,
+            };
+            self.tag(tag);
+            if self.over.is_some() {
+                return;
+            }
+        }
+        self.carry = text[done..].to_vec();
+    }
+
+    fn tag(&mut self, tag: &[u8]) {
+        let named = |name: &[u8]| {
+            tag.strip_prefix(name).is_some_and(|r| {
+                matches!(r.first(), Some(b' ' | b'>' | b'/' | b'\t' | b'\n' | b'\r'))
+            })
+        };
+        if named(b"<table:table") {
+            self.done = self.done.saturating_add(self.span());
+            self.sheet = String::from_utf8_lossy(
+                memchr::memmem::find(tag, b"table:name=\"")
+                    .map(|i| {
+                        let v = &tag[i + 12..];
+                        &v[..memchr::memchr(b'"', v).unwrap_or(v.len())]
+                    })
+                    .unwrap_or(b""),
+            )
+            .into_owned();
+            self.rows_read = 0;
+            self.first_row = None;
+            self.rows_end = 0;
+            self.cols = None;
+        } else if named(b"<table:table-row") {
+            self.row_repeat = repeat_of(tag, b"table:number-rows-repeated");
+            self.col = 0;
+            self.row_cols = None;
+            if tag.ends_with(b"/>") {
+                self.row_end();
+            }
+        } else if tag.starts_with(b"</table:table-row") {
+            self.row_end();
+        } else if named(b"<table:table-cell") || named(b"<table:covered-table-cell") {
+            let n = repeat_of(tag, b"table:number-columns-repeated");
+            let value = !tag.ends_with(b"/>")
+                || memchr::memmem::find(tag, b"office:value-type").is_some()
+                || memchr::memmem::find(tag, b"table:formula").is_some();
+            if value {
+                let (c0, _) = self.row_cols.unwrap_or((self.col, self.col));
+                self.row_cols = Some((c0, self.col.saturating_add(n)));
+            }
+            self.col = self.col.saturating_add(n);
+        }
+    }
+
+    fn row_end(&mut self) {
+        let n = self.row_repeat.max(1);
+        if let Some((c0, c1)) = self.row_cols.take() {
+            self.first_row.get_or_insert(self.rows_read);
+            self.rows_end = self.rows_read.saturating_add(n);
+            self.cols = Some(match self.cols {
+                Some((a, b)) => (a.min(c0), b.max(c1)),
+                None => (c0, c1),
+            });
+        }
+        self.rows_read = self.rows_read.saturating_add(n);
+        let span = self.span();
+        if span > MAX_SHEET_CELLS {
+            let rows = self.rows_end - self.first_row.unwrap_or(0);
+            let cols = self.cols.map_or(0, |(a, b)| b - a);
+            self.over = Some(format!(
+                "content.xml: sheet \"{}\" spans {rows} rows by {cols} columns ({span} cells) once its repeated rows and columns are expanded, more than the {MAX_SHEET_CELLS} cells a sheet may span; export the sheet as CSV and take that in",
+                self.sheet
+            ));
+        } else if self.done.saturating_add(span) > MAX_ODS_CELLS {
+            self.over = Some(format!(
+                "content.xml: its sheets span more than {MAX_ODS_CELLS} cells together once their repeated rows and columns are expanded (an .ods is read with all its sheets); export the sheet as CSV and take that in"
+            ));
+        }
+    }
+
+    fn over(&self) -> Option<String> {
+        self.over.clone()
+    }
 }
 
 /// Counts the cells (`<c ` elements) of a worksheet's XML fed piece by piece, and the range

@@ -674,3 +674,191 @@ fn an_untracked_or_ignored_script_is_recorded_with_its_bytes_and_replayed_from_t
     let r = s.json(&["reproduce", "o:v2", "--allow-exec", "--json"]);
     assert_eq!(r["reproduced"], true, "{r}");
 }
+
+// Before: `drop "status == 'test'"` said only "expected a column name". Equality is one `=`,
+// and the refusal now says so, at the column of the `==`.
+#[test]
+fn a_predicate_written_with_double_equals_says_equality_is_one_equals_sign() {
+    let s = Sandbox::with_store();
+    s.file("o.csv", "order_id,status\n1,done\n2,test\n");
+    s.ok(&["receive", "o.csv", "--as", "o"]);
+    let before = s.snapshot();
+    let err = s.fails(
+        2,
+        &["clean", "o", "drop", "status == 'test'", "--why", "tests"],
+    );
+    assert_contains(&err, "column 8");
+    assert_contains(&err, "equality is one \"=\"");
+    assert!(!err.contains("expected a column name"), "{err}");
+    assert_eq!(s.snapshot(), before, "nothing recorded");
+    // One `=` is the comparison the user meant: the test order goes.
+    s.ok(&["clean", "o", "drop", "status = 'test'", "--why", "tests"]);
+    assert_eq!(s.ok(&["retrieve", "o"]), "order_id,status\n1,done\n");
+}
+
+/// Runs `args` with standard output a pipe whose reading end is already closed, as when the
+/// output goes into `head -c 10` that has finished: every write fails with a broken pipe.
+fn into_closed_pipe(s: &Sandbox, args: &[&str]) -> (i32, String) {
+    let (reader, writer) = std::io::pipe().expect("a pipe");
+    drop(reader);
+    let out = s
+        .command(args)
+        .stdout(writer)
+        .stderr(std::process::Stdio::piped())
+        .output()
+        .expect("run sluice");
+    (
+        out.status.code().unwrap_or(-1),
+        String::from_utf8_lossy(&out.stderr).into_owned(),
+    )
+}
+
+// Before: `sluice timeline --json | head -c 10` printed "error: Broken pipe" (the JSON writer's
+// error hid the pipe's), while the text output ended quietly. Every reading command, in text and
+// in JSON, now ends quietly with status 0 when its reader has gone (common practice for Unix
+// filters: a closed pipe is the reader's choice, not a failure).
+#[test]
+fn output_into_a_closed_pipe_ends_quietly_in_text_and_json() {
+    let s = Sandbox::with_demo();
+    let commands: &[&[&str]] = &[
+        &["timeline"],
+        &["about", "all_orders"],
+        &["compare", "all_orders:v4", "all_orders:v5"],
+        &[
+            "compare",
+            "quillby_orders:v1",
+            "quillby_orders:v2",
+            "--counts",
+        ],
+        &[
+            "trace",
+            "all_orders",
+            "--row",
+            "3",
+            "--column",
+            "parts_cost",
+        ],
+        &["explain", "q3_by_shop", "--row", "1", "--column", "count"],
+        &["impact", "technicians:v1"],
+        &["reproduce", "q3_by_shop"],
+        &["verify"],
+        &["identity"],
+        &["identify", "q3_by_shop-report.html"],
+    ];
+    for args in commands {
+        for json in [false, true] {
+            let mut a = args.to_vec();
+            if json {
+                a.push("--json");
+            }
+            let (code, err) = into_closed_pipe(&s, &a);
+            assert_eq!(code, 0, "sluice {}: {err}", a.join(" "));
+            assert_eq!(err, "", "sluice {} wrote to standard error", a.join(" "));
+        }
+    }
+    // Commands without --json that print data or text.
+    for args in [
+        &["retrieve", "all_orders"][..],
+        &["retrieve", "all_orders", "--format", "jsonl"],
+        &["export", "q3_by_shop", "--format", "plan"],
+        &["lineage"],
+        &["completions", "bash"],
+        &["manual"],
+        &["--help"],
+    ] {
+        let (code, err) = into_closed_pipe(&s, args);
+        assert_eq!(code, 0, "sluice {}: {err}", args.join(" "));
+        assert_eq!(err, "", "sluice {} wrote to standard error", args.join(" "));
+    }
+}
+
+// Before: "(1 sources, 1 steps)" and "1 of 1 rules failed"; screens now write one thing in the
+// singular, and counts with thousands separators as every other screen does.
+#[test]
+fn counts_of_one_are_written_in_the_singular() {
+    let s = Sandbox::with_store();
+    s.file("o.csv", "order_id,status\n1,done\n2,test\n");
+    s.ok(&["receive", "o.csv", "--as", "o"]);
+    s.ok(&["clean", "o", "drop", "status = 'test'", "--why", "tests"]);
+    let out = s.ok(&["export", "o", "--format", "plan", "-o", "plan.json"]);
+    assert_contains(&out, "wrote the plan of o (1 source, 1 step) to plan.json");
+    let out = s.ok(&["report", "o", "-o", "o.md", "--format", "md"]);
+    assert_contains(&out, "(2 steps)");
+    s.ok(&["receive", "o.csv", "--as", "p"]);
+    let out = s.ok(&["report", "p", "-o", "p.md", "--format", "md"]);
+    assert_contains(&out, "wrote the lineage report of p:v1 (1 step) to p.md");
+    assert!(!out.contains("1 steps"), "{out}");
+}
+
+// Before: a file named through `..` was recorded, and shown by trace, as
+// `/home/.../plans/../o.csv`. The absolute path recorded is the file's real path.
+#[test]
+fn the_absolute_path_of_a_raw_file_is_recorded_without_dot_dot() {
+    let s = Sandbox::with_store();
+    s.file("plans/keep.txt", "");
+    s.file("o.csv", "order_id,status\n1,done\n");
+    s.ok(&["receive", "plans/../o.csv", "--as", "o"]);
+    let t = s.json(&["trace", "o", "--row", "1", "--column", "status", "--json"]);
+    let real = std::fs::canonicalize(s.path().join("o.csv")).unwrap();
+    assert_eq!(t["end"]["path"], "plans/../o.csv", "as given");
+    assert_eq!(t["end"]["absolute_path"], real.display().to_string());
+}
+
+// Before: the demo's outside script printed "fixed 74 orders" among sluice's own lines, with
+// nothing to say whose line it was. Its line now names the script and what it did.
+#[test]
+fn the_demo_script_labels_its_own_line() {
+    let s = Sandbox::new();
+    let r = s.run(&["demo", "."]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let all = format!("{}{}", r.stdout, r.stderr);
+    assert!(!all.contains("\nfixed "), "{all}");
+    // The rows the script changed are counted in its input, the version its step read.
+    let about = s.json(&["about", "reviewed_orders:v1", "--json"]);
+    let input = about["step"]["inputs"][0].as_str().unwrap().to_string();
+    let raw = s.ok(&["retrieve", &input]);
+    let header: Vec<&str> = raw.lines().next().unwrap().split(',').collect();
+    let col = header.iter().position(|h| *h == "technician").unwrap();
+    let n = raw
+        .lines()
+        .skip(1)
+        .filter(|l| l.split(',').nth(col) == Some("Ines"))
+        .count();
+    assert!(n > 0);
+    assert_contains(
+        &all,
+        &format!("restore_accents.py: Inès written in {n} orders"),
+    );
+}
+
+// Before: compare wrote row 1,001 where trace, explain and every message write data row 1001.
+// Row numbers name a row and are written alike on every screen, without separators; counts
+// keep theirs.
+#[test]
+fn row_numbers_are_written_alike_on_every_screen_and_counts_with_separators() {
+    let s = Sandbox::with_store();
+    let table = |last: &str| {
+        let mut t = String::from("order_id,shop\n");
+        for i in 1..=1000 {
+            t.push_str(&format!("{i},Ferry Lane\n"));
+        }
+        t.push_str(&format!("1001,{last}\n"));
+        t
+    };
+    s.file("a.csv", table("Ferry Lane"));
+    s.file("b.csv", table("Mill Row"));
+    s.ok(&["receive", "a.csv", "--as", "o", "--key", "order_id"]);
+    s.ok(&["receive", "b.csv", "--as", "o", "--key", "order_id"]);
+    let out = s.ok(&["compare", "o:v1", "o:v2"]);
+    assert_contains(
+        &out,
+        "rows: 1,001 before, 1,001 after; 1,001 kept (1 of them changed)",
+    );
+    let row = out
+        .lines()
+        .find(|l| l.contains("Mill«·Row»") || l.contains("Mill"))
+        .unwrap_or_else(|| panic!("{out}"));
+    assert!(row.trim_start().starts_with("1001 "), "{row}");
+    let trace = s.ok(&["trace", "o", "--row", "1001", "--column", "shop"]);
+    assert_contains(&trace, "data row 1001");
+}

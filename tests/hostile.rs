@@ -62,7 +62,27 @@ fn measured(dir: &Path, args: &[&str]) -> Measured {
     assert_eq!(r, pid, "wait4 failed: {}", std::io::Error::last_os_error());
     let st = std::process::ExitStatus::from_raw(status);
     let stderr = std::fs::read_to_string(&err_path).unwrap_or_default();
-    let stdout = std::fs::read_to_string(&out_path).unwrap_or_default();
+    // A large output (a comparison's listing) is kept by its start and end only, so that this
+    // process's own memory stays small (see the top of the file).
+    let stdout = {
+        use std::io::{Read, Seek};
+        let mut f = std::fs::File::open(&out_path).unwrap();
+        let len = f.metadata().unwrap().len();
+        if len <= 4 << 20 {
+            std::fs::read_to_string(&out_path).unwrap_or_default()
+        } else {
+            let mut head = vec![0u8; 1 << 20];
+            f.read_exact(&mut head).unwrap();
+            f.seek(std::io::SeekFrom::End(-(64 << 10))).unwrap();
+            let mut tail = Vec::new();
+            f.read_to_end(&mut tail).unwrap();
+            format!(
+                "{}\n[...]\n{}",
+                String::from_utf8_lossy(&head),
+                String::from_utf8_lossy(&tail)
+            )
+        }
+    };
     std::fs::remove_file(&out_path).unwrap();
     std::fs::remove_file(&err_path).unwrap();
     Measured {
@@ -444,9 +464,26 @@ fn malformed_missing_and_huge_rules_plans_and_tables_are_refused_with_positions(
         "17mib-plan.json",
         plan.as_bytes(),
         &["run", "17mib-plan.json"],
-        &["more than the 16 MiB a plan may be"],
+        &["17mib-plan.json: the plan is more than the 16 MiB it may be"],
     );
     drop(plan);
+    // A plan of 4 GiB (a sparse file of NUL bytes, which are UTF-8): read only up to the bound,
+    // so memory stays small; before, the whole file was read before its size was checked.
+    let sparse = s.path().join("4gib-plan.json");
+    std::fs::File::create(&sparse)
+        .unwrap()
+        .set_len(4 << 30)
+        .unwrap();
+    let m = measured(s.path(), &["run", "4gib-plan.json"]);
+    assert_eq!(m.code, 2, "{}", m.stderr);
+    assert_contains(
+        &m.stderr,
+        "4gib-plan.json: the plan is more than the 16 MiB it may be",
+    );
+    let peak = m.peak_kib.div_ceil(1024);
+    assert!(peak <= BASE_MIB + 64, "4 GiB plan: peak {peak} MiB");
+    eprintln!("hostile: a 4 GiB plan refused after 16 MiB were read, peak {peak} MiB");
+    std::fs::remove_file(&sparse).unwrap();
     refused(
         "missing-column-plan.json",
         b"{\"sluice_plan\": 2, \"sources\": [{\"dataset\": \"o\", \"file\": \"o.csv\"}],\n \"steps\": [{\"dataset\": \"o\", \"clean\": \"trim\", \"settings\": {\"columns\": [\"shop\"]}, \"reason\": \"x\"}]}",
@@ -743,4 +780,226 @@ fn workbooks_that_inflate_or_span_the_grid_are_refused_before_they_are_read() {
         );
     }
     assert_eq!(before, s.snapshot());
+}
+
+/// An .ods whose content holds a row of one value repeated across the grid, written with
+/// `table:number-rows-repeated` and `table:number-columns-repeated` (a few hundred bytes that
+/// the reader would expand to billions of cells), and one whose sheets each stay under the
+/// sheet bound but together pass the workbook's: both refused before the workbook is read, in
+/// bounded memory. An .ods as spreadsheet programs save it, the rest of the grid written as
+/// repeated empty rows and cells, is taken in (the repeat attributes are those of OpenDocument
+/// 1.2, part 1, 19.615 and 19.675).
+#[test]
+fn ods_repeated_rows_and_columns_are_bounded_like_workbook_cells() {
+    let s = Sandbox::with_store();
+    let doc = |tables: &str| {
+        format!(
+            "<?xml version=\"1.0\" encoding=\"UTF-8\"?><office:document-content xmlns:office=\"urn:oasis:names:tc:opendocument:xmlns:office:1.0\" xmlns:table=\"urn:oasis:names:tc:opendocument:xmlns:table:1.0\" xmlns:text=\"urn:oasis:names:tc:opendocument:xmlns:text:1.0\" office:version=\"1.2\"><office:body><office:spreadsheet>{tables}</office:spreadsheet></office:body></office:document-content>"
+        )
+    };
+    let cell = |v: &str| {
+        format!("<table:table-cell office:value-type=\"string\"><text:p>{v}</text:p></table:table-cell>")
+    };
+    let header = format!(
+        "<table:table-row>{}{}</table:table-row>",
+        cell("order_id"),
+        cell("shop")
+    );
+    let write_ods = |name: &str, content: String| {
+        let mime = |w: &mut dyn Write| {
+            w.write_all(b"application/vnd.oasis.opendocument.spreadsheet")
+                .unwrap()
+        };
+        let body = move |w: &mut dyn Write| w.write_all(content.as_bytes()).unwrap();
+        let manifest = |w: &mut dyn Write| {
+            w.write_all(b"<?xml version=\"1.0\" encoding=\"UTF-8\"?><manifest:manifest xmlns:manifest=\"urn:oasis:names:tc:opendocument:xmlns:manifest:1.0\"><manifest:file-entry manifest:full-path=\"/\" manifest:media-type=\"application/vnd.oasis.opendocument.spreadsheet\"/><manifest:file-entry manifest:full-path=\"content.xml\" manifest:media-type=\"text/xml\"/></manifest:manifest>")
+                .unwrap()
+        };
+        write_zip(
+            &s.path().join(name),
+            &[
+                ("mimetype", &mime),
+                ("META-INF/manifest.xml", &manifest),
+                ("content.xml", &body),
+            ],
+        );
+    };
+    // A saved sheet: two data rows, then the rest of the grid as empty repeats.
+    write_ods(
+        "saved.ods",
+        doc(&format!(
+            "<table:table table:name=\"Orders\"><table:table-column table:number-columns-repeated=\"1024\"/>{header}<table:table-row>{}{}<table:table-cell table:number-columns-repeated=\"1022\"/></table:table-row><table:table-row>{}{}<table:table-cell table:number-columns-repeated=\"1022\"/></table:table-row><table:table-row table:number-rows-repeated=\"1048573\"><table:table-cell table:number-columns-repeated=\"1024\"/></table:table-row></table:table>",
+            cell("Q-1"),
+            cell("Ferry Lane"),
+            cell("Q-2"),
+            cell("Mill Row"),
+        )),
+    );
+    let m = measured(s.path(), &["receive", "saved.ods", "--as", "saved"]);
+    assert_eq!(m.code, 0, "{}", m.stderr);
+    assert_eq!(
+        s.ok(&["retrieve", "saved"]),
+        "order_id,shop\nQ-1,Ferry Lane\nQ-2,Mill Row\n"
+    );
+    let before = s.snapshot();
+    let row = "<table:table-row table:number-rows-repeated=\"1048000\"><table:table-cell office:value-type=\"string\" table:number-columns-repeated=\"16000\"><text:p>x</text:p></table:table-cell></table:table-row>";
+    write_ods(
+        "repeated.ods",
+        doc(&format!(
+            "<table:table table:name=\"Orders\">{header}{row}</table:table>"
+        )),
+    );
+    // Five sheets of 1,000 rows by 1,000 columns: each at the sheet bound, 5,000,000 together.
+    let square = "<table:table-row table:number-rows-repeated=\"1000\"><table:table-cell office:value-type=\"string\" table:number-columns-repeated=\"1000\"><text:p>x</text:p></table:table-cell></table:table-row>";
+    let tables: String = (1..=5)
+        .map(|i| format!("<table:table table:name=\"S{i}\">{square}</table:table>"))
+        .collect();
+    write_ods("five.ods", doc(&tables));
+    for (name, says) in [
+        (
+            "repeated.ods",
+            "sheet \"Orders\" spans 1048001 rows by 16000 columns (16768016000 cells) once its repeated rows and columns are expanded, more than the 1000000 cells a sheet may span",
+        ),
+        (
+            "five.ods",
+            "its sheets span more than 4000000 cells together",
+        ),
+    ] {
+        let size = std::fs::metadata(s.path().join(name)).unwrap().len();
+        let m = measured(s.path(), &["receive", name, "--as", "book", "--sheet", "1"]);
+        assert_eq!(m.code, 2, "{name}: {}", m.stderr);
+        assert_contains(&m.stderr, name);
+        assert_contains(&m.stderr, says);
+        let peak = m.peak_kib.div_ceil(1024);
+        assert!(peak <= 3 * BASE_MIB, "{name}: peak {peak} MiB");
+        eprintln!(
+            "hostile: {name} ({size} bytes) refused, peak {peak} MiB: {}",
+            m.stderr.trim()
+        );
+    }
+    assert_eq!(before, s.snapshot());
+}
+
+/// JSON Lines are read whole, so a file past the bound is refused by its size before it is
+/// read; one just under the bound, of many short values (the most memory per byte), is taken
+/// in within the memory bound.
+#[test]
+fn json_lines_past_their_bound_are_refused_before_they_are_read() {
+    let s = Sandbox::with_store();
+    let line = b"{\"id\": 1, \"shop\": \"a\", \"ok\": true, \"n\": null}\n";
+    let write_lines = |name: &str, bytes: u64| {
+        let mut f = std::io::BufWriter::new(std::fs::File::create(s.path().join(name)).unwrap());
+        let mut n = 0u64;
+        while n + line.len() as u64 <= bytes {
+            f.write_all(line).unwrap();
+            n += line.len() as u64;
+        }
+        f.flush().unwrap();
+    };
+    write_lines("big.jsonl", (24 << 20) + 4096);
+    let before = s.snapshot();
+    let m = measured(s.path(), &["receive", "big.jsonl", "--as", "lines"]);
+    assert_eq!(m.code, 2, "{}", m.stderr);
+    assert_contains(
+        &m.stderr,
+        "more than the 24 MiB a JSON Lines file may be (it is read whole)",
+    );
+    let refused_peak = m.peak_kib.div_ceil(1024);
+    assert!(refused_peak <= BASE_MIB + 16, "peak {refused_peak} MiB");
+    assert_eq!(before, s.snapshot());
+    std::fs::remove_file(s.path().join("big.jsonl")).unwrap();
+    write_lines("under.jsonl", 24 << 20);
+    let m = measured(s.path(), &["receive", "under.jsonl", "--as", "lines"]);
+    assert_eq!(m.code, 0, "{}", m.stderr);
+    let peak = m.peak_kib.div_ceil(1024);
+    assert!(peak <= 256, "24 MiB of JSON Lines: peak {peak} MiB");
+    eprintln!(
+        "hostile: JSON Lines of 24 MiB + 4 KiB refused, peak {refused_peak} MiB; 24 MiB of short values taken in, peak {peak} MiB"
+    );
+}
+
+/// A comparison by key in which every row changed (200,000 rows, two of four cells changed in
+/// each, known by construction): everything is counted, only the first 50,000 changes are
+/// listed when no `--limit` is given, and memory stays a few words per row: before, every
+/// changed row was kept with both sides' values (about 730 bytes a row with `--counts`, 1,780
+/// with `--json`: 159 and 361 MiB at this size).
+#[test]
+fn a_keyed_comparison_in_which_every_row_changed_keeps_a_few_words_per_row() {
+    let s = Sandbox::with_store();
+    let rows = 200_000u64;
+    let write = |name: &str, changed: bool| {
+        let mut f = std::io::BufWriter::new(std::fs::File::create(s.path().join(name)).unwrap());
+        writeln!(f, "order_id,shop,amount,note").unwrap();
+        for i in 0..rows {
+            let (shop, amount) = if changed {
+                ("Mill Row", i % 1000 + 1)
+            } else {
+                ("Ferry Lane", i % 1000)
+            };
+            writeln!(f, "Q-{i:06},{shop},{amount}.50,same note {}", i % 7).unwrap();
+        }
+        f.flush().unwrap();
+    };
+    write("v1.csv", false);
+    write("v2.csv", true);
+    s.ok(&["receive", "v1.csv", "--as", "o"]);
+    s.ok(&["receive", "v2.csv", "--as", "o"]);
+    let cmp = ["compare", "o:v1", "o:v2", "--key", "order_id"];
+    let mut figures = Vec::new();
+    for extra in [
+        &["--counts"][..],
+        &["--counts", "--json"],
+        &["--json", "--limit", "10"],
+        &[],
+        &["--json"],
+    ] {
+        let mut args = cmp.to_vec();
+        args.extend(extra);
+        let m = measured(s.path(), &args);
+        assert_eq!(m.code, 0, "{}", m.stderr);
+        let peak = m.peak_kib.div_ceil(1024);
+        figures.push(format!("{}: {peak} MiB", extra.join(" ")));
+        if extra == ["--json"] {
+            // 50,000 changes listed: the counts come before the listing.
+            assert_contains(&m.stdout, "\"n_changes\": 200000,\n  \"listed\": 50000,");
+            assert_contains(&m.stdout, "\"changed\": 400000,");
+        } else if extra.contains(&"--json") {
+            let v: serde_json::Value = serde_json::from_str(&m.stdout).unwrap();
+            assert_eq!(v["rows"]["changed"], rows);
+            assert_eq!(v["cells"]["changed"], 2 * rows);
+            assert_eq!(v["n_changes"], rows);
+            let listed = if extra.contains(&"--counts") { 0 } else { 10 };
+            assert_eq!(v["listed"], listed);
+            if listed > 0 {
+                // The last listed change is row 'listed' of both versions, as written above.
+                let last = &v["changes"][listed - 1];
+                assert_eq!(last["to_row"], listed);
+                assert_eq!(last["key"][0], format!("Q-{:06}", listed - 1));
+                assert_eq!(last["cells"][0]["old"], "Ferry Lane");
+                assert_eq!(last["cells"][0]["new"], "Mill Row");
+            }
+        } else if extra.is_empty() {
+            assert_contains(
+                &m.stdout,
+                "… and 150,000 more changes not listed (at most 50,000 are listed unless --limit asks for more)",
+            );
+        } else {
+            assert_contains(&m.stdout, "rows: 200,000 before, 200,000 after; 200,000 kept (200,000 of them changed), 0 removed, 0 added");
+            assert_contains(&m.stdout, "cells: 400,000 changed");
+        }
+        let bound = if extra.contains(&"--counts") || extra.contains(&"--limit") {
+            BASE_MIB + 64
+        } else {
+            256
+        };
+        assert!(
+            peak <= bound,
+            "compare {}: peak {peak} MiB",
+            extra.join(" ")
+        );
+    }
+    eprintln!(
+        "hostile: keyed comparison of 200,000 rows, every row changed: {}",
+        figures.join(", ")
+    );
 }

@@ -20,8 +20,11 @@
 //! (`/tmp/xyz/sluice-demo/exports/o.csv` as `exports/o.csv` after `cd sluice-demo`);
 //! trailing white space is ignored. Hashes are compared as shown: the demo is deterministic.
 //!
-//! Blocks that illustrate a command on other data (a plan you would write yourself) are fenced
-//! ```text instead and not run.
+//! A console block right after the line `<!-- a fresh demo -->` runs on its own, in a fresh
+//! folder where `sluice demo` has just run (after `cd sluice-demo`), so that an example of one
+//! command shows what it does to the demo's store as the demo leaves it, whatever the blocks
+//! before it did. Blocks that illustrate a command on other data (a plan you would write
+//! yourself) are fenced ```text instead and not run.
 
 mod common;
 
@@ -40,21 +43,35 @@ struct Example {
     command: String,
     /// (README line, text) of each expected output line.
     expected: Vec<(usize, String)>,
+    /// For a block after `<!-- a fresh demo -->`: the README line of its fence.
+    fresh: Option<usize>,
 }
+
+/// The line that makes the next console block run in a fresh demo.
+const FRESH_DEMO: &str = "<!-- a fresh demo -->";
 
 fn examples(readme: &str) -> Vec<Example> {
     let mut out: Vec<Example> = Vec::new();
     let mut in_console = false;
     let mut continuing = false;
+    let mut fresh_next = false;
+    let mut fresh: Option<usize> = None;
     for (i, line) in readme.lines().enumerate() {
         let n = i + 1;
         if let Some(fence) = line.strip_prefix("```") {
             if in_console {
                 in_console = false;
+                fresh = None;
             } else {
                 in_console = fence.trim() == "console";
+                fresh = (in_console && fresh_next).then_some(n);
             }
+            fresh_next = false;
             continuing = false;
+            continue;
+        }
+        if !in_console {
+            fresh_next = line.trim() == FRESH_DEMO;
             continue;
         }
         if !in_console {
@@ -74,6 +91,7 @@ fn examples(readme: &str) -> Vec<Example> {
                 line: n,
                 command: cmd.trim_end().trim_end_matches('\\').trim_end().to_string(),
                 expected: Vec::new(),
+                fresh,
             });
         } else if let Some(e) = out.last_mut() {
             e.expected.push((n, line.to_string()));
@@ -260,88 +278,121 @@ fn the_readme_walkthrough_works_as_shown() {
     );
     let mut cwd = root_path.clone();
     let mut failures = Vec::new();
-    for e in &all {
-        if let Some(dir) = e.command.strip_prefix("cd ") {
-            cwd = cwd.join(dir.trim());
-            assert!(
-                cwd.is_dir(),
-                "README.md line {}: `$ {}`: no folder {}",
-                e.line,
-                e.command,
-                cwd.display()
-            );
-            continue;
+    for e in all.iter().filter(|e| e.fresh.is_none()) {
+        if let Some(f) = run_example(e, &mut cwd, &root_text, &path) {
+            failures.push(f);
         }
-        let cwd_text = cwd.display().to_string();
-        let out = Command::new("bash")
-            .arg("-c")
-            .arg(&e.command)
-            .current_dir(&cwd)
-            .env("PATH", &path)
+    }
+    // Blocks after `<!-- a fresh demo -->`, each in a folder of its own.
+    let mut blocks: Vec<usize> = all.iter().filter_map(|e| e.fresh).collect();
+    blocks.dedup();
+    for block in blocks {
+        let fresh = tempfile::tempdir().expect("a fresh folder");
+        let fresh_path = fresh.path().canonicalize().expect("canonical folder");
+        let demo = Command::new(env!("CARGO_BIN_EXE_sluice"))
+            .arg("demo")
+            .current_dir(&fresh_path)
             .env("SLUICE_PERSON", README_PERSON)
             .env("SLUICE_EMAIL", README_EMAIL)
-            .env("NO_COLOR", "1")
             .env_remove("SLUICE_STORE")
             .output()
-            .expect("run bash");
-        let mut printed: Vec<String> = String::from_utf8_lossy(&out.stdout)
-            .lines()
-            .map(|l| mask(l, &cwd_text, &root_text))
-            .collect();
-        let failed = !out.status.success();
-        if failed {
-            printed.extend(
-                String::from_utf8_lossy(&out.stderr)
-                    .lines()
-                    .map(|l| mask(l, &cwd_text, &root_text)),
-            );
-        }
-        let expected: Vec<(usize, String)> = e
-            .expected
-            .iter()
-            .map(|(n, l)| (*n, mask(l, &cwd_text, &root_text)))
-            .collect();
-        let shows_error = expected.iter().any(|(_, l)| l.starts_with("error:"));
-        let numbered = || {
-            printed
-                .iter()
-                .enumerate()
-                .map(|(i, l)| format!("  {:>4} | {l}", i + 1))
-                .collect::<Vec<_>>()
-                .join("\n")
-        };
-        if failed && !shows_error {
-            failures.push(format!(
-                "README.md line {}: `$ {}` failed with exit code {:?}; the README shows no error.\n{}\n\
-                 Fix the command or the README.",
-                e.line,
-                e.command,
-                out.status.code(),
-                numbered()
-            ));
-            continue;
-        }
-        if let Err(m) = compare(&expected, &printed) {
-            let near = match &m.near {
-                Some((k, l)) => format!("printed line {k} is:\n    {l}"),
-                None => "nothing was printed there".to_string(),
-            };
-            failures.push(format!(
-                "README.md line {}: the output of `$ {}` (README line {}) differs.\n  the README shows:\n    {}\n  {near}\n\
-                 everything it printed (masked):\n{}\n\
-                 To refresh: if the new output is right, copy the lines you want to show into README.md under line {}, \
-                 keeping `...` for lines left out (times and the folder are masked, see tests/readme_walkthrough.rs); \
-                 the command runs after the README's earlier console blocks, in a folder where `sluice demo` ran.",
-                m.readme_line,
-                e.command,
-                e.line,
-                m.wanted,
-                numbered(),
-                e.line
-            ));
+            .expect("run sluice demo");
+        assert!(
+            demo.status.success(),
+            "sluice demo failed for README line {block}"
+        );
+        let mut cwd = fresh_path.join("sluice-demo");
+        let fresh_text = fresh_path.display().to_string();
+        for e in all.iter().filter(|e| e.fresh == Some(block)) {
+            if let Some(f) = run_example(e, &mut cwd, &fresh_text, &path) {
+                failures.push(f);
+            }
         }
     }
     assert!(failures.is_empty(), "\n\n{}\n", failures.join("\n\n"));
+}
+
+/// Runs one example in `cwd` (a `cd` moves it); returns what differs, if anything.
+fn run_example(e: &Example, cwd: &mut PathBuf, root_text: &str, path: &str) -> Option<String> {
+    if let Some(dir) = e.command.strip_prefix("cd ") {
+        *cwd = cwd.join(dir.trim());
+        assert!(
+            cwd.is_dir(),
+            "README.md line {}: `$ {}`: no folder {}",
+            e.line,
+            e.command,
+            cwd.display()
+        );
+        return None;
+    }
+    let cwd_text = cwd.display().to_string();
+    let out = Command::new("bash")
+        .arg("-c")
+        .arg(&e.command)
+        .current_dir(&*cwd)
+        .env("PATH", path)
+        .env("SLUICE_PERSON", README_PERSON)
+        .env("SLUICE_EMAIL", README_EMAIL)
+        .env("NO_COLOR", "1")
+        .env_remove("SLUICE_STORE")
+        .output()
+        .expect("run bash");
+    let mut printed: Vec<String> = String::from_utf8_lossy(&out.stdout)
+        .lines()
+        .map(|l| mask(l, &cwd_text, root_text))
+        .collect();
+    let failed = !out.status.success();
+    if failed {
+        printed.extend(
+            String::from_utf8_lossy(&out.stderr)
+                .lines()
+                .map(|l| mask(l, &cwd_text, root_text)),
+        );
+    }
+    let expected: Vec<(usize, String)> = e
+        .expected
+        .iter()
+        .map(|(n, l)| (*n, mask(l, &cwd_text, root_text)))
+        .collect();
+    let shows_error = expected.iter().any(|(_, l)| l.starts_with("error:"));
+    let numbered = || {
+        printed
+            .iter()
+            .enumerate()
+            .map(|(i, l)| format!("  {:>4} | {l}", i + 1))
+            .collect::<Vec<_>>()
+            .join("\n")
+    };
+    if failed && !shows_error {
+        return Some(format!(
+            "README.md line {}: `$ {}` failed with exit code {:?}; the README shows no error.\n{}\n\
+             Fix the command or the README.",
+            e.line,
+            e.command,
+            out.status.code(),
+            numbered()
+        ));
+    }
+    if let Err(m) = compare(&expected, &printed) {
+        let near = match &m.near {
+            Some((k, l)) => format!("printed line {k} is:\n    {l}"),
+            None => "nothing was printed there".to_string(),
+        };
+        return Some(format!(
+            "README.md line {}: the output of `$ {}` (README line {}) differs.\n  the README shows:\n    {}\n  {near}\n\
+             everything it printed (masked):\n{}\n\
+             To refresh: if the new output is right, copy the lines you want to show into README.md under line {}, \
+             keeping `...` for lines left out (times and the folder are masked, see tests/readme_walkthrough.rs); \
+             the command runs after the README's earlier console blocks, in a folder where `sluice demo` ran.",
+            m.readme_line,
+            e.command,
+            e.line,
+            m.wanted,
+            numbered(),
+            e.line
+        ));
+    }
+    None
 }
 
 #[test]
@@ -402,4 +453,61 @@ fn the_comparison_rule_itself() {
         ),
         "raw exports/o.csv and d"
     );
+}
+
+// Before: the quick start ran `cargo run --release -- demo`, after which `sluice` was not on
+// the PATH and every example below failed with "command not found". The quick start's shell
+// block is now run as written (its build stood in for by the built binary at the place the
+// build puts it) in a shell whose PATH holds no sluice, and must leave a runnable `sluice`.
+#[test]
+fn the_quick_start_leaves_sluice_runnable_by_name() {
+    let readme = std::fs::read_to_string(README).expect("README.md");
+    let start = readme
+        .find("## Quick start")
+        .expect("README.md has a Quick start");
+    let block = readme[start..]
+        .split("```sh\n")
+        .nth(1)
+        .and_then(|b| b.split("```").next())
+        .expect("the Quick start has a ```sh block");
+    let commands: Vec<&str> = block
+        .lines()
+        .map(|l| l.split(" #").next().unwrap_or("").trim())
+        .filter(|l| !l.is_empty())
+        .collect();
+    assert!(
+        commands.first() == Some(&"cargo build --release"),
+        "the quick start builds first: {commands:?}"
+    );
+    // A repository folder whose build has run: the binary where `cargo build --release` puts it.
+    let repo = tempfile::tempdir().expect("a fresh folder");
+    let release = repo.path().join("target/release");
+    std::fs::create_dir_all(&release).unwrap();
+    std::os::unix::fs::symlink(env!("CARGO_BIN_EXE_sluice"), release.join("sluice")).unwrap();
+    let script: Vec<&str> = commands
+        .iter()
+        .copied()
+        .filter(|c| !c.starts_with("cargo build") && *c != "tests/run")
+        .collect();
+    assert!(
+        script.iter().any(|c| c.starts_with("sluice ")),
+        "the quick start calls sluice by name: {commands:?}"
+    );
+    let out = Command::new("bash")
+        .arg("-c")
+        .arg(format!("set -e\n{}\nsluice --version", script.join("\n")))
+        .current_dir(repo.path())
+        .env("PATH", "/usr/bin:/bin")
+        .env("SLUICE_PERSON", README_PERSON)
+        .env("SLUICE_EMAIL", README_EMAIL)
+        .env_remove("SLUICE_STORE")
+        .output()
+        .expect("run bash");
+    assert!(
+        out.status.success(),
+        "the quick start {script:?} failed:\n{}{}",
+        String::from_utf8_lossy(&out.stdout),
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert!(repo.path().join("sluice-demo/sluice-store").is_dir());
 }

@@ -902,3 +902,74 @@ fn a_hand_edit_whose_recorded_lineage_does_not_explain_it_is_named_with_the_cell
         ]
     );
 }
+
+// Before: a rerun whose new export held a value a later step cannot read, or a value a hold
+// point refuses, recorded the new export as the dataset's latest version (and the steps before
+// the failure), then stopped. The whole chain now runs first in a trial copy of the store, so
+// such a rerun records nothing and leaves "latest" where it was.
+#[test]
+fn a_rerun_that_fails_at_a_later_step_records_nothing() {
+    let d = Sandbox::with_demo();
+    let q3 = std::fs::read_to_string(d.path().join("exports/quillby_2026q3.csv")).unwrap();
+    let header: Vec<&str> = q3.lines().next().unwrap().split(',').collect();
+    let cost = header.iter().position(|h| *h == "parts_cost").unwrap();
+    let status = header.iter().position(|h| *h == "status").unwrap();
+    // The first data row's parts_cost made unreadable as an amount, or its status one the hold
+    // point's rule (status one of done, open) refuses; the rest as exported.
+    let with_cell = |col: usize, value: &str| -> String {
+        let mut lines: Vec<String> = q3.lines().take(51).map(str::to_string).collect();
+        let mut cells: Vec<String> = lines[1].split(',').map(str::to_string).collect();
+        cells[col] = value.to_string();
+        lines[1] = cells.join(",");
+        lines.join("\n") + "\n"
+    };
+    assert!(
+        !q3.lines().nth(1).unwrap().contains('"'),
+        "the first data row has no quoted cell, so it can be split on commas"
+    );
+    d.file("exports/bad_amount.csv", with_cell(cost, "about forty"));
+    d.file("exports/bad_status.csv", with_cell(status, "paused"));
+    let latest = d.json(&["about", "quillby_orders", "--json"])["version"]["seq"].clone();
+    for (file, says) in [
+        (
+            "bad_amount.csv",
+            "cannot be read as an amount: data row 1 parts_cost \"about forty\"",
+        ),
+        ("bad_status.csv", "status one of done, open"),
+    ] {
+        let snapshot = d.snapshot();
+        let r = d.run(&[
+            "rerun",
+            "q3_by_shop",
+            "--with",
+            &format!("quillby_orders=exports/{file}"),
+        ]);
+        assert_eq!(r.code, 1, "{file}: {}{}", r.stdout, r.stderr);
+        assert_contains(&r.stderr, "in a trial run of the whole chain");
+        assert_contains(&r.stderr, "nothing was recorded");
+        assert_contains(&format!("{}{}", r.stdout, r.stderr), says);
+        assert_eq!(snapshot, d.snapshot(), "{file}: the store changed");
+        assert_eq!(
+            d.json(&["about", "quillby_orders", "--json"])["version"]["seq"],
+            latest
+        );
+        // Nothing of the trial is left in tmp/.
+        let left: Vec<_> = std::fs::read_dir(d.path().join("sluice-store/tmp"))
+            .unwrap()
+            .flatten()
+            .map(|e| e.file_name())
+            .collect();
+        assert!(left.is_empty(), "{file}: left in tmp/: {left:?}");
+    }
+    // The same rows without the bad cell rerun, and everything is recorded.
+    let good: String = q3.lines().take(51).map(|l| format!("{l}\n")).collect();
+    d.file("exports/good.csv", good);
+    let out = d.ok(&[
+        "rerun",
+        "q3_by_shop",
+        "--with",
+        "quillby_orders=exports/good.csv",
+    ]);
+    assert_contains(&out, "recorded q3_by_shop:v2");
+    assert_contains(&out, "done: every step recorded");
+}

@@ -31,10 +31,10 @@ pub fn demo(
     writeln!(out, "documented for an audit:")?;
     writeln!(
         out,
-        "  {}  the lineage report of {} ({} steps; open it in a browser, or print it)",
+        "  {}  the lineage report of {} ({}; open it in a browser, or print it)",
         d.report_file.display(),
         doc.subject.version,
-        doc.steps.len()
+        super::text::plural(doc.steps.len() as u64, "step", "steps")
     )?;
     writeln!(
         out,
@@ -90,7 +90,12 @@ pub fn upgrade(
     output: Option<&Path>,
     out: &mut impl Write,
 ) -> anyhow::Result<ExitCode> {
-    let text = read_text(file, "the file to upgrade", "sluice upgrade --help")?;
+    let text = read_text(
+        file,
+        "the file to upgrade",
+        "sluice upgrade --help",
+        sluice::plan::MAX_PLAN_BYTES,
+    )?;
     let converted =
         sluice::plan::upgrade(&text).map_err(|e| anyhow::anyhow!("{}: {e}", file.display()))?;
     match output {

@@ -1186,7 +1186,8 @@ pub struct CompareArgs {
     /// Print JSON (fields: examples/reference.md, "JSON output"; schema/output/)
     #[arg(long)]
     pub json: bool,
-    /// List at most N changes (the counts stay complete)
+    /// List at most N changes (the counts stay complete); without it, at most 50,000 are
+    /// listed (a larger N lists more, holding their values in memory)
     #[arg(long, value_name = "N")]
     pub limit: Option<usize>,
 }

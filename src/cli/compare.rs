@@ -42,7 +42,19 @@ pub fn compare(
         Some(cols) => sluice::diff::KeyChoice::Columns(cols.clone()),
         None => sluice::diff::KeyChoice::Declared,
     };
-    let d = sluice::diff::diff(&store, &a.from, &a.to, &sluice::diff::DiffOptions { key })?;
+    // Values are kept only for the changes listed; everything else is counted.
+    let listed = if a.counts {
+        0
+    } else {
+        a.limit.unwrap_or(sluice::diff::LISTED_BY_DEFAULT)
+    };
+    let d = sluice::diff::diff_listed(
+        &store,
+        &a.from,
+        &a.to,
+        &sluice::diff::DiffOptions { key },
+        listed,
+    )?;
     // Colour only for a person at a terminal (or when asked with --color always).
     let how = How {
         counts: a.counts,
@@ -114,7 +126,7 @@ fn marked_pair(old: &str, new: &str, colour: bool) -> (String, String) {
 /// their 1-based data rows on each side.
 fn duplicates_line(out: &mut impl Write, dup: &sluice::diff::DuplicateKeys) -> io::Result<()> {
     let rows = |rs: &[u64], n: u64| {
-        let mut t: Vec<String> = rs.iter().map(|r| count(*r)).collect();
+        let mut t: Vec<String> = rs.iter().map(|r| r.to_string()).collect();
         if n > rs.len() as u64 {
             t.push(format!("and {} more", count(n - rs.len() as u64)));
         }
@@ -183,11 +195,7 @@ fn summary(out: &mut impl Write, d: &Diff, colour: bool) -> io::Result<()> {
             count(al.common_rows)
         )?;
     }
-    writeln!(
-        out,
-        "  cells: {} changed",
-        count(d.pairing.cells.len() as u64)
-    )?;
+    writeln!(out, "  cells: {} changed", count(d.n_cells))?;
     let c = &d.columns;
     let mut parts = Vec::new();
     if !c.added.is_empty() {
@@ -234,13 +242,15 @@ fn key_text(d: &Diff, c: &Change) -> String {
         .unwrap_or_else(|| "-".into())
 }
 
-/// A row position on screen: 1-based; `3 (was 2)` when the row moved.
+/// A row position on screen: 1-based; `3 (was 2)` when the row moved. Row numbers are written
+/// as every screen writes a data row, without thousands separators (they name a row; counts
+/// have separators).
 fn row_text(c: &Change) -> String {
     match (c.a_row, c.b_row) {
-        (Some(a), Some(b)) if a == b => count(b + 1),
-        (Some(a), Some(b)) => format!("{} (was {})", count(b + 1), count(a + 1)),
-        (Some(a), None) => count(a + 1),
-        (None, Some(b)) => count(b + 1),
+        (Some(a), Some(b)) if a == b => (b + 1).to_string(),
+        (Some(a), Some(b)) => format!("{} (was {})", b + 1, a + 1),
+        (Some(a), None) => (a + 1).to_string(),
+        (None, Some(b)) => (b + 1).to_string(),
         (None, None) => "-".into(),
     }
 }
@@ -260,7 +270,7 @@ pub fn compare_text(out: &mut impl Write, d: &Diff, how: &How) -> io::Result<()>
         }
         return Ok(());
     }
-    if d.changes.is_empty() {
+    if d.n_changes == 0 {
         if d.is_empty() {
             writeln!(out, "no differences")?;
         }
@@ -335,11 +345,18 @@ pub fn compare_text(out: &mut impl Write, d: &Diff, how: &How) -> io::Result<()>
             }
         }
     }
-    if d.changes.len() > limit {
-        let rest = (d.changes.len() - limit) as u64;
+    if d.n_changes > listed.len() as u64 {
+        let rest = d.n_changes - listed.len() as u64;
+        let why = match how.limit {
+            Some(n) => format!("--limit {n}"),
+            None => format!(
+                "at most {} are listed unless --limit asks for more",
+                count(sluice::diff::LISTED_BY_DEFAULT as u64)
+            ),
+        };
         writeln!(
             out,
-            "… and {} not listed (--limit {limit})",
+            "… and {} not listed ({why})",
             plural(rest, "more change", "more changes")
         )?;
     }
@@ -424,7 +441,7 @@ struct JsonDiff<'a> {
     alignment: Option<sluice::diff::Alignment>,
     cells: JsonCells<'a>,
     columns: JsonColumns<'a>,
-    n_changes: usize,
+    n_changes: u64,
     listed: usize,
     changes: Vec<JsonChange<'a>>,
 }
@@ -494,7 +511,7 @@ pub fn compare_json(out: &mut impl Write, d: &Diff, how: &How) -> io::Result<()>
         },
         alignment: d.alignment,
         cells: JsonCells {
-            changed: d.pairing.cells.len() as u64,
+            changed: d.n_cells,
             by_column: d
                 .changed_by_column
                 .iter()
@@ -515,7 +532,7 @@ pub fn compare_json(out: &mut impl Write, d: &Diff, how: &How) -> io::Result<()>
                 .collect(),
             reordered: d.columns.reordered,
         },
-        n_changes: d.changes.len(),
+        n_changes: d.n_changes,
         listed: changes.len(),
         changes,
     };

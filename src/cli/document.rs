@@ -36,10 +36,10 @@ pub fn export(
             if let (true, Some(path)) = (write_text_to(output, &text, out)?, output) {
                 writeln!(
                     out,
-                    "wrote the plan of {} ({} sources, {} steps) to {}",
+                    "wrote the plan of {} ({}, {}) to {}",
                     reference,
-                    plan.sources.len(),
-                    plan.steps.len(),
+                    plural(plan.sources.len() as u64, "source", "sources"),
+                    plural(plan.steps.len() as u64, "step", "steps"),
                     path.display()
                 )?;
             }
@@ -53,12 +53,24 @@ pub fn export(
             if let (true, Some(path)) = (write_text_to(output, &text, out)?, output) {
                 writeln!(
                     out,
-                    "wrote the lineage of {} in W3C PROV ({} entities, {} activities, {} agents, {} relations) to {}",
+                    "wrote the lineage of {} in W3C PROV ({}, {}, {}, {}) to {}",
                     doc.subject,
-                    doc.count(sluice::prov::ElementKind::Entity),
-                    doc.count(sluice::prov::ElementKind::Activity),
-                    doc.count(sluice::prov::ElementKind::Agent),
-                    doc.relations.len(),
+                    plural(
+                        doc.count(sluice::prov::ElementKind::Entity) as u64,
+                        "entity",
+                        "entities"
+                    ),
+                    plural(
+                        doc.count(sluice::prov::ElementKind::Activity) as u64,
+                        "activity",
+                        "activities"
+                    ),
+                    plural(
+                        doc.count(sluice::prov::ElementKind::Agent) as u64,
+                        "agent",
+                        "agents"
+                    ),
+                    plural(doc.relations.len() as u64, "relation", "relations"),
                     path.display()
                 )?;
             }
@@ -93,9 +105,9 @@ pub fn report(ctx: &Context<'_>, a: &ReportArgs, out: &mut impl Write) -> anyhow
     let (report, hash, entry) = (&written.report, &written.hash, &written.entry);
     writeln!(
         out,
-        "wrote the lineage report of {} ({} steps) to {}",
+        "wrote the lineage report of {} ({}) to {}",
         report.subject.version,
-        report.steps.len(),
+        plural(report.steps.len() as u64, "step", "steps"),
         output.display()
     )?;
     writeln!(

@@ -113,6 +113,8 @@ pub fn signatories(
             file,
             "the public key",
             "the .pub file of `ssh-keygen -t ed25519`",
+            // A public key line is under a kilobyte; anything near this bound is not one.
+            64 << 10,
         )?;
         let key = signing_key(key_file)?;
         let name = a.name.as_deref().unwrap_or_default();

@@ -187,18 +187,34 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
 }
 
 /// Reads a file the user named (a plan, a rules file); a failure names the file, says what is
-/// wrong in the engine's words (no such file, permission denied) and where the format is.
-pub fn read_text(path: &Path, what: &str, format_help: &str) -> anyhow::Result<String> {
-    std::fs::read_to_string(path).map_err(|e| {
-        let detail = if e.kind() == std::io::ErrorKind::InvalidData {
-            format!("{}: not UTF-8 text", path.display())
-        } else {
-            sluice::Error::io(path, e).to_string()
-        };
+/// wrong in the engine's words (no such file, permission denied) and where the format is. At
+/// most `max_bytes` are read: a larger file is refused before more of it is held in memory.
+pub fn read_text(
+    path: &Path,
+    what: &str,
+    format_help: &str,
+    max_bytes: usize,
+) -> anyhow::Result<String> {
+    use std::io::Read;
+    let refused = |detail: String| {
         anyhow!(sluice::Error::usage(format!(
             "cannot read {what}: {detail} (its format: `{format_help}`)"
         )))
-    })
+    };
+    let io = |e: std::io::Error| refused(sluice::Error::io(path, e).to_string());
+    let file = std::fs::File::open(path).map_err(io)?;
+    let mut bytes = Vec::new();
+    file.take(max_bytes as u64 + 1)
+        .read_to_end(&mut bytes)
+        .map_err(io)?;
+    if bytes.len() > max_bytes {
+        return Err(anyhow!(sluice::Error::usage(format!(
+            "{}: {what} is more than the {} MiB it may be; split it into several files",
+            path.display(),
+            max_bytes >> 20
+        ))));
+    }
+    String::from_utf8(bytes).map_err(|_| refused(format!("{}: not UTF-8 text", path.display())))
 }
 
 /// Writes through a temporary file beside `path` and renames it into place only when `fill`

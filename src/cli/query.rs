@@ -271,6 +271,8 @@ pub fn verify(
             file,
             "the endorsement file",
             "sluice endorse --help; README.md, \"Sign-offs\"",
+            // A statement and its armored signature take a few kilobytes.
+            1 << 20,
         )?;
         let found = sluice::verify::endorsement_file(&store, &file.display().to_string(), &text)?;
         report.problems.extend(found);
@@ -443,11 +445,11 @@ pub fn verify_text(out: &mut impl Write, r: &VerifyReport) -> io::Result<()> {
     } else {
         writeln!(
             out,
-            "damaged: {} found ({} objects, {} versions, {} audit entries examined)",
+            "damaged: {} found ({}, {}, {} examined)",
             plural(r.problems.len() as u64, "problem", "problems"),
-            count(r.objects_checked),
-            count(r.versions_checked),
-            count(r.audit_entries_checked),
+            plural(r.objects_checked, "object", "objects"),
+            plural(r.versions_checked, "version", "versions"),
+            plural(r.audit_entries_checked, "audit entry", "audit entries"),
         )?;
         for p in &r.problems {
             writeln!(out, "  {}  {}: {}", p.kind, p.subject, p.detail)?;

@@ -569,7 +569,12 @@ pub fn inspect(
 ) -> anyhow::Result<ExitCode> {
     let mut store = ctx.open_store()?;
     let agent = ctx.agent(Some(&store))?;
-    let text = read_text(rules, "the rules file", "sluice inspect --help")?;
+    let text = read_text(
+        rules,
+        "the rules file",
+        "sluice inspect --help",
+        sluice::plan::MAX_PLAN_BYTES,
+    )?;
     let parsed = sluice::checks::parse_rules(&text, &rules.display().to_string())?;
     let report = sluice::checks::check(&mut store, reference, &parsed, false, &agent)?;
     if as_json {
@@ -589,7 +594,12 @@ pub fn run(
 ) -> anyhow::Result<ExitCode> {
     let mut store = ctx.open_store()?;
     let agent = ctx.agent(Some(&store))?;
-    let text = read_text(plan, "the plan", "sluice run --help")?;
+    let text = read_text(
+        plan,
+        "the plan",
+        "sluice run --help",
+        sluice::plan::MAX_PLAN_BYTES,
+    )?;
     let parsed = sluice::plan::parse(&text, &plan.display().to_string())?;
     let bindings = inputs
         .iter()
@@ -1359,7 +1369,11 @@ pub fn run_done(out: &mut impl Write, done: &[Done]) -> io::Result<()> {
                             plural(report.results.len() as u64, "rule", "rules")
                         )
                     } else {
-                        format!("{} of {} rules failed", failed, report.results.len())
+                        format!(
+                            "{} of {} failed",
+                            count(failed as u64),
+                            plural(report.results.len() as u64, "rule", "rules")
+                        )
                     },
                     if failed == 0 {
                         String::new()

@@ -12,7 +12,8 @@ pub use sluice::model::short_hash;
 use sluice::model::{LineageKind, Step, Version};
 
 pub fn json<T: Serialize>(out: &mut impl Write, value: &T) -> io::Result<()> {
-    serde_json::to_writer_pretty(&mut *out, value).map_err(io::Error::other)?;
+    // serde_json gives back the writer's own error (a closed pipe stays a closed pipe).
+    serde_json::to_writer_pretty(&mut *out, value).map_err(io::Error::from)?;
     writeln!(out)
 }
 

@@ -353,6 +353,7 @@ pub(super) fn run(
         pb = mb + len;
     }
     let changed_by_column = count_by_column(&compared, b, &pairing.cells);
+    let n_cells = pairing.cells.len() as u64;
     Ok(Diff {
         from: a.clone(),
         to: b.clone(),
@@ -361,6 +362,8 @@ pub(super) fn run(
         compared,
         pairing,
         alignment: Some(alignment),
+        n_changes: changes.len() as u64,
+        n_cells,
         changes,
         changed_by_column,
         from_rows,

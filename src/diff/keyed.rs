@@ -15,11 +15,12 @@
 //! turn out to differ is reported as a removed and an added row.
 
 use super::lineage::Link;
-use super::read::{both, cuttable, each_row, rows_of};
+use super::listed::{compare_pairs, Listing};
+use super::read::{both, cuttable, each_row};
 use super::scan::{scan, scan_keys, Scan, ScanPlan};
 use super::{
-    cell_diffs, compared_hashes, count_by_column, listing, push_pair, settle_columns, Diff,
-    DuplicateGroup, DuplicateKeys, Layout, MatchedBy, RowPairing,
+    compared_hashes, push_pair, settle_columns, Diff, DuplicateGroup, DuplicateKeys, Layout,
+    MatchedBy, RowPairing,
 };
 use crate::error::{Error, ErrorKind, Result};
 use crate::model::Version;
@@ -46,12 +47,13 @@ pub(super) fn run(
     ka: Vec<usize>,
     kb: Vec<usize>,
     link: Option<&Link>,
+    list: Listing,
 ) -> Result<Diff> {
     let objects = &store.objects;
     let (cand_a, cand_b) = layout.candidates();
     let (fp_a, fp_b) = layout.fp_cols();
     let mut seed = 0u64;
-    let (sa, sb, dup_texts) = loop {
+    let (mut sa, mut sb, dup_texts) = loop {
         let plan = |k: &'_ [usize], fp: Option<&'_ [usize]>, cand: &'_ [usize], v: &Version| {
             let plan = ScanPlan {
                 key: Some(k),
@@ -181,6 +183,8 @@ pub(super) fn run(
     removed.sort_unstable();
     added.sort_unstable();
     drop(dup_texts);
+    drop(std::mem::take(&mut sa.keys));
+    drop(std::mem::take(&mut sb.keys));
     let Scan {
         fps: fps_a,
         cand: hash_a,
@@ -207,49 +211,23 @@ pub(super) fn run(
                 .iter()
                 .any(|(ha, hb)| ha[x as usize] != hb[y as usize])
     };
-    let mut to_compare: Vec<(u64, u64)> = pairs.iter().copied().filter(differs).collect();
+    let to_compare: Vec<(u64, u64)> = pairs.iter().copied().filter(differs).collect();
     drop(fps_a);
     drop(fps_b);
 
-    // The second pass: the rows to look at again.
-    let mut want_a: Vec<u64> = removed.to_vec();
-    want_a.extend(to_compare.iter().map(|p| p.0));
-    want_a.sort_unstable();
-    let mut want_b: Vec<u64> = added.to_vec();
-    want_b.extend(to_compare.iter().map(|p| p.1));
-    want_b.sort_unstable();
-    let (from_rows, to_rows) = both(
-        || rows_of(objects, a, &want_a),
-        || rows_of(objects, b, &want_b),
+    // The second pass: the rows to look at again (keys confirmed on their values).
+    let done = compare_pairs(
+        objects,
+        a,
+        b,
+        &compared,
+        Some((&ka, &kb)),
+        to_compare,
+        &mut removed,
+        &mut added,
+        list,
     )?;
-    drop(want_a);
-    drop(want_b);
-
-    // Compare the cells of each pair, in the second version's row order.
-    to_compare.sort_unstable_by_key(|p| p.1);
-    let mut cells = Vec::new();
-    let mut changed_b: Vec<u64> = Vec::new();
-    for &(x, y) in &to_compare {
-        let (Some(ra), Some(rb)) = (from_rows.get(x), to_rows.get(y)) else {
-            return Err(lost_row(a, b));
-        };
-        if ka
-            .iter()
-            .zip(&kb)
-            .any(|(&i, &j)| ra.field(i) != rb.field(j))
-        {
-            // Different keys that share a hash.
-            removed.push(x);
-            added.push(y);
-            continue;
-        }
-        // No cell differs when only columns outside the comparison did.
-        if cell_diffs(&compared, &b.header, (x, ra), (y, rb), &mut cells) > 0 {
-            changed_b.push(y);
-        }
-    }
-    removed.sort_unstable();
-    added.sort_unstable();
+    let changed_b = &done.changed_b;
 
     // The row map in the second version's order.
     // Each row of B's partner in A (`u64::MAX`: none), placed by row rather than sorted.
@@ -279,8 +257,6 @@ pub(super) fn run(
         push_pair(&mut runs, x, y, changed);
     }
 
-    let changes = listing(&changed_b, &added, &removed, &cells);
-    let changed_by_column = count_by_column(&compared, b, &cells);
     Ok(Diff {
         from: a.clone(),
         to: b.clone(),
@@ -291,13 +267,15 @@ pub(super) fn run(
             runs,
             removed,
             added,
-            cells,
+            cells: done.cells,
         },
         alignment: None,
-        changes,
-        changed_by_column,
-        from_rows,
-        to_rows,
+        changes: done.changes,
+        n_changes: done.n_changes,
+        n_cells: done.n_cells,
+        changed_by_column: done.changed_by_column,
+        from_rows: done.from_rows,
+        to_rows: done.to_rows,
         key_idx: (ka, kb),
         duplicates: (dups.groups > 0).then_some(dups),
     })

@@ -10,12 +10,10 @@
 //! input rows). Two chains that meet are related; the nearest version they share is the one
 //! rows are carried back to.
 
-use super::read::{both, row_index, rows_of};
+use super::listed::{compare_pairs, Listing};
+use super::read::{both, row_index};
 use super::scan::{scan, ScanPlan};
-use super::{
-    cell_diffs, compared_hashes, count_by_column, listing, push_pair, settle_columns, Diff, Layout,
-    MatchedBy, RowPairing,
-};
+use super::{compared_hashes, push_pair, settle_columns, Diff, Layout, MatchedBy, RowPairing};
 use crate::error::{ErrorKind, Result};
 use crate::model::{LineageKind, StepKind, Version};
 use crate::provenance;
@@ -172,6 +170,7 @@ pub(super) fn run(
     layout: Layout,
     link: Link,
     key: Option<(Vec<String>, Vec<usize>, Vec<usize>)>,
+    list: Listing,
 ) -> Result<Diff> {
     let pairs = link.pairs();
     let (key, key_idx) = match key {
@@ -184,11 +183,12 @@ pub(super) fn run(
         inferred: link.inferred,
         key,
     };
-    assemble(store, a, b, layout, pairs, matched_by, key_idx)
+    assemble(store, a, b, layout, pairs, matched_by, key_idx, list)
 }
 
 /// A diff from known pairs (row in A, row in B) in B's row order: rows of A in no pair are
 /// removed, rows of B in no pair added, and the cells of every pair compared.
+#[allow(clippy::too_many_arguments)]
 pub(super) fn assemble(
     store: &Store,
     a: &Version,
@@ -197,6 +197,7 @@ pub(super) fn assemble(
     pairs: Vec<(u64, u64)>,
     matched_by: MatchedBy,
     key_idx: (Vec<usize>, Vec<usize>),
+    list: Listing,
 ) -> Result<Diff> {
     let objects = &store.objects;
     let (cand_a, cand_b) = layout.candidates();
@@ -265,29 +266,22 @@ pub(super) fn assemble(
     drop(in_pair_a);
     drop(in_pair_b);
 
-    let mut want_a: Vec<u64> = removed.clone();
-    want_a.extend(to_compare.iter().map(|p| p.0));
-    want_a.sort_unstable();
-    want_a.dedup();
-    let mut want_b: Vec<u64> = added.clone();
-    want_b.extend(to_compare.iter().map(|p| p.1));
-    want_b.sort_unstable();
-    want_b.dedup();
-    let (from_rows, to_rows) = both(
-        || rows_of(objects, a, &want_a),
-        || rows_of(objects, b, &want_b),
+    drop(fps_a);
+    drop(fps_b);
+    let mut removed = removed;
+    let mut added = added;
+    let done = compare_pairs(
+        objects,
+        a,
+        b,
+        &compared,
+        None,
+        to_compare,
+        &mut removed,
+        &mut added,
+        list,
     )?;
-
-    let mut cells = Vec::new();
-    let mut changed_b: Vec<u64> = Vec::new();
-    for &(x, y) in &to_compare {
-        let (Some(ra), Some(rb)) = (from_rows.get(x), to_rows.get(y)) else {
-            return Err(lost());
-        };
-        if cell_diffs(&compared, &b.header, (x, ra), (y, rb), &mut cells) > 0 {
-            changed_b.push(y);
-        }
-    }
+    let changed_b = &done.changed_b;
     let mut runs = Vec::new();
     let mut c = 0usize;
     for &(x, y) in &pairs {
@@ -298,8 +292,6 @@ pub(super) fn assemble(
         push_pair(&mut runs, x, y, changed);
     }
 
-    let changes = listing(&changed_b, &added, &removed, &cells);
-    let changed_by_column = count_by_column(&compared, b, &cells);
     Ok(Diff {
         from: a.clone(),
         to: b.clone(),
@@ -310,13 +302,15 @@ pub(super) fn assemble(
             runs,
             removed,
             added,
-            cells,
+            cells: done.cells,
         },
         alignment: None,
-        changes,
-        changed_by_column,
-        from_rows,
-        to_rows,
+        changes: done.changes,
+        n_changes: done.n_changes,
+        n_cells: done.n_cells,
+        changed_by_column: done.changed_by_column,
+        from_rows: done.from_rows,
+        to_rows: done.to_rows,
         key_idx,
         duplicates: None,
     })

@@ -34,6 +34,7 @@ pub mod aligned;
 pub mod chars;
 pub mod keyed;
 pub mod lineage;
+pub mod listed;
 pub mod read;
 mod scan;
 
@@ -44,6 +45,7 @@ use crate::model::Version;
 use crate::refs;
 use crate::store::Store;
 
+pub use listed::Listing;
 pub use read::{RowRef, RowStore};
 
 /// How rows are matched.
@@ -252,8 +254,14 @@ pub struct Diff {
     pub compared: Vec<(usize, usize)>,
     pub pairing: RowPairing,
     pub alignment: Option<Alignment>,
-    /// Changed rows, removed rows, added rows, in display order.
+    /// Changed rows, removed rows, added rows, in display order: all of them, or with
+    /// [`Listing::First`] the first ones (`pairing.cells`, `from_rows` and `to_rows` then hold
+    /// only what these need).
     pub changes: Vec<Change>,
+    /// How many changes there are, listed or not.
+    pub n_changes: u64,
+    /// How many cells changed, listed or not.
+    pub n_cells: u64,
     /// Changed cells per compared column (second version's names and order), zero counts
     /// included.
     pub changed_by_column: Vec<(String, u64)>,
@@ -322,8 +330,38 @@ pub fn diff(store: &Store, from: &str, to: &str, opts: &DiffOptions) -> Result<D
     diff_versions(store, &a, &b, opts)
 }
 
+/// How many changes `compare` lists when no `--limit` is given: 50,000. Their values are held
+/// in memory (some 2 KB a change as JSON), so a comparison in which millions of rows changed
+/// lists the first ones and counts the rest; `--limit` asks for more or fewer.
+pub const LISTED_BY_DEFAULT: usize = 50_000;
+
+/// Compares the versions `from` and `to` name, keeping values only for the first `n` changes
+/// of the listing (for rows paired by key or through the lineage; by order everything is
+/// kept), so that memory per changed row stays a few words (see [`listed`]).
+pub fn diff_listed(
+    store: &Store,
+    from: &str,
+    to: &str,
+    opts: &DiffOptions,
+    n: usize,
+) -> Result<Diff> {
+    let a = refs::resolve(&store.lineage, from)?;
+    let b = refs::resolve(&store.lineage, to)?;
+    diff_with(store, &a, &b, opts, Listing::First(n))
+}
+
 /// Compares two versions already resolved.
 pub fn diff_versions(store: &Store, a: &Version, b: &Version, opts: &DiffOptions) -> Result<Diff> {
+    diff_with(store, a, b, opts, Listing::All)
+}
+
+fn diff_with(
+    store: &Store,
+    a: &Version,
+    b: &Version,
+    opts: &DiffOptions,
+    list: Listing,
+) -> Result<Diff> {
     let declared = || -> Result<Option<Vec<String>>> {
         Ok(
             match store.lineage.dataset(&b.dataset)?.and_then(|d| d.key) {
@@ -340,7 +378,7 @@ pub fn diff_versions(store: &Store, a: &Version, b: &Version, opts: &DiffOptions
             check_key(&k)?;
             let ka = key_indices(a, &k)?;
             let kb = key_indices(b, &k)?;
-            keyed::run(store, a, b, layout, k, ka, kb, link.as_ref())
+            keyed::run(store, a, b, layout, k, ka, kb, link.as_ref(), list)
         }
         (KeyChoice::Declared | KeyChoice::Unkeyed, Some(link)) => {
             // The key is only shown beside each row, when both versions have its columns.
@@ -351,14 +389,14 @@ pub fn diff_versions(store: &Store, a: &Version, b: &Version, opts: &DiffOptions
                 },
                 _ => None,
             };
-            lineage::run(store, a, b, layout, link, key)
+            lineage::run(store, a, b, layout, link, key, list)
         }
         (KeyChoice::Declared, None) => match declared()? {
             Some(k) => {
                 check_key(&k)?;
                 let ka = key_indices(a, &k)?;
                 let kb = key_indices(b, &k)?;
-                keyed::run(store, a, b, layout, k, ka, kb, None)
+                keyed::run(store, a, b, layout, k, ka, kb, None, list)
             }
             None => aligned::run(store, a, b, layout, &history_key_columns(store, a, b)?),
         },

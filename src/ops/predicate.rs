@@ -98,6 +98,13 @@ fn lex(text: &str) -> Result<Vec<Lexed>> {
                 i += 1;
                 Tok::Comma
             }
+            '=' if chars.get(i + 1) == Some(&'=') => {
+                return Err(err(
+                    text,
+                    col,
+                    "\"==\" is not an operator here: equality is one \"=\" (e.g. status = 'test')",
+                ))
+            }
             '=' => {
                 i += 1;
                 Tok::Op("=")

@@ -507,6 +507,23 @@ pub fn onto(
         bindings,
         agent: agent.clone(),
     };
+    // All or nothing: the whole chain runs first in a trial copy of the store, whose records
+    // and objects are thrown away, so that a step that fails on the new data (a value it cannot
+    // read, a hold point) stops the rerun before anything is recorded. The steps are
+    // deterministic, so the recorded run that follows passes where the trial did.
+    let mut trial_store = store.trial()?;
+    let trial = crate::plan::run(&mut trial_store, &plan, &opts);
+    trial_store.end_trial();
+    if let Err(failure) = trial {
+        return Ok(Err(crate::plan::RunFailure {
+            done: Vec::new(),
+            at: format!(
+                "{} in a trial run of the whole chain (versions named as they would have been)",
+                failure.at
+            ),
+            error: failure.error,
+        }));
+    }
     Ok(crate::plan::run(store, &plan, &opts))
 }
 

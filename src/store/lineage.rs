@@ -57,6 +57,20 @@ impl Lineage {
         )
     }
 
+    /// Writes a copy of the database as it is now (one snapshot) to the new file `path`.
+    pub fn copy_to(&self, path: &Path) -> Result<()> {
+        let target = path.to_str().ok_or_else(|| {
+            Error::from(ErrorKind::Internal(format!(
+                "{}: not a UTF-8 path",
+                path.display()
+            )))
+        })?;
+        self.conn
+            .execute("VACUUM INTO ?1", [target])
+            .map_err(db_err)?;
+        Ok(())
+    }
+
     /// Opens an existing database, refusing one written by a newer schema and migrating an older
     /// one.
     pub fn open(path: &Path) -> Result<Lineage> {

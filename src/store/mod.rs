@@ -205,6 +205,43 @@ impl Store {
         Ok(dir)
     }
 
+    /// A trial copy of this store, for work that must be seen to succeed before it is recorded:
+    /// the database copied as it is now into a fresh folder `tmp/replay-PID-NANOS/`, objects
+    /// read from this store, new ones staged in that folder and never published. Whatever is
+    /// recorded in the trial goes when the folder is removed ([`Store::end_trial`]; an
+    /// interrupted command's trial folder is swept like its other leftovers).
+    pub fn trial(&self) -> Result<Store> {
+        let dir = self.dir.join("tmp").join(format!(
+            "replay-{}-{}",
+            std::process::id(),
+            std::time::SystemTime::now()
+                .duration_since(std::time::UNIX_EPOCH)
+                .map_or(0, |d| d.as_nanos())
+        ));
+        fs::create_dir_all(dir.join("tmp")).map_err(|e| Error::io(&dir, e))?;
+        let db = dir.join(DB_FILE);
+        self.lineage.copy_to(&db)?;
+        let mut trial = Store {
+            objects: Objects::new(Box::new(FsBackend::new(&self.dir))),
+            lineage: Lineage::open(&db)?,
+            dir,
+        };
+        let stage = trial.dir.join("stage");
+        trial
+            .objects
+            .begin_stage(stage.clone())
+            .map_err(|e| Error::io(&stage, e))?;
+        Ok(trial)
+    }
+
+    /// Ends a trial made by [`Store::trial`]: its folder, database and staged objects removed.
+    pub fn end_trial(mut self) {
+        self.objects.discard_stage();
+        let dir = self.dir.clone();
+        drop(self);
+        let _ = fs::remove_dir_all(dir);
+    }
+
     /// Runs `f` in one write transaction; commits when it returns `Ok`, rolls back otherwise.
     /// Every command that records something comes here, so it first clears what interrupted
     /// commands left in `tmp/` ([`Store::sweep_tmp`]).

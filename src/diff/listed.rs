@@ -1,0 +1,306 @@
+//! The second pass of a comparison whose pairs are known (by key, or through the lineage):
+//! each pair whose fingerprints differ is compared cell by cell, then the removed and added
+//! rows are read for their values.
+//!
+//! In full ([`Listing::All`], for lineage inferred from outside work and for replay's summary of
+//! a difference) every such row of both sides is read and kept, with every changed cell's old
+//! and new text. For a listing ([`Listing::First`], `compare`) memory does not hold values: one
+//! side's rows to compare are read in their order and only a hash of each compared cell is kept
+//! (8 bytes per cell); the other side is then read as a stream, in its order, and each of its
+//! cells compared with its partner's hash, so that a changed row costs a few words whatever its
+//! values. Only the rows of the first `n` listed changes are read again for their values. Two
+//! cells with equal 64-bit hashes are taken as equal, as equal row fingerprints already are.
+
+use xxhash_rust::xxh3::xxh3_64_with_seed;
+
+use super::read::{both, cuttable, each_row, row_index, rows_of, RawRows, RowStore};
+use super::{cell_diffs, count_by_column, listing, CellDiff, Change};
+use crate::error::{ErrorKind, Result};
+use crate::model::Version;
+use crate::store::objects::Objects;
+use crate::table::RawRecord;
+
+/// How much of a comparison's detail is kept.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Listing {
+    /// Every changed cell with its values, every removed and added row.
+    All,
+    /// Counts of everything, values only for the first `n` changes in listing order.
+    First(usize),
+}
+
+/// What the second pass found.
+pub(super) struct Compared {
+    /// The changed cells of the listed changes (all of them with [`Listing::All`]).
+    pub cells: Vec<CellDiff>,
+    /// Every changed row of the second version, ascending.
+    pub changed_b: Vec<u64>,
+    pub from_rows: RowStore,
+    pub to_rows: RowStore,
+    /// The listed changes.
+    pub changes: Vec<Change>,
+    pub changed_by_column: Vec<(String, u64)>,
+    pub n_cells: u64,
+    pub n_changes: u64,
+}
+
+/// The seed of the per-cell hashes (any fixed value; not the key hash's).
+const CELL_SEED: u64 = 0x636f_6d70_6172_6564;
+
+/// Compares the cells of the pairs `to_compare` (row in A, row in B; any order) over the
+/// `compared` columns. With `keys`, a pair whose key values differ (two keys that share a
+/// hash) is split into a removed and an added row. `removed` and `added` are sorted on return.
+#[allow(clippy::too_many_arguments)]
+pub(super) fn compare_pairs(
+    objects: &Objects,
+    a: &Version,
+    b: &Version,
+    compared: &[(usize, usize)],
+    keys: Option<(&[usize], &[usize])>,
+    mut to_compare: Vec<(u64, u64)>,
+    removed: &mut Vec<u64>,
+    added: &mut Vec<u64>,
+    list: Listing,
+) -> Result<Compared> {
+    let lost = || -> crate::error::Error {
+        ErrorKind::Inconsistent(format!(
+            "{} or {} has fewer rows than the store records; run `sluice verify`",
+            a.label(),
+            b.label()
+        ))
+        .into()
+    };
+    let n = match list {
+        Listing::All => {
+            return compare_all(objects, a, b, compared, keys, to_compare, removed, added)
+        }
+        Listing::First(n) => n,
+    };
+    let (ka, kb): (&[usize], &[usize]) = keys.unwrap_or((&[], &[]));
+    let cols_a: Vec<usize> = compared
+        .iter()
+        .map(|p| p.0)
+        .chain(ka.iter().copied())
+        .collect();
+    let cols_b: Vec<usize> = compared
+        .iter()
+        .map(|p| p.1)
+        .chain(kb.iter().copied())
+        .collect();
+    let width = cols_a.len();
+
+    // A's side: the hash of each compared cell (and key cell) of each row to compare.
+    to_compare.sort_unstable();
+    let want_a: Vec<u64> = to_compare.iter().map(|p| p.0).collect();
+    let mut hashes_a: Vec<u64> = Vec::with_capacity(want_a.len() * width);
+    each_wanted(objects, a, &want_a, |_, r| {
+        hashes_a.extend(
+            cols_a
+                .iter()
+                .map(|&c| xxh3_64_with_seed(r.field(c), CELL_SEED)),
+        );
+    })?;
+    if hashes_a.len() != want_a.len() * width {
+        return Err(lost());
+    }
+
+    // B's side, read in its order: each row compared with its partner's hashes.
+    to_compare.sort_unstable_by_key(|p| p.1);
+    let want_b: Vec<u64> = to_compare.iter().map(|p| p.1).collect();
+    let mut counts = vec![0u64; compared.len()];
+    let mut changed_b: Vec<u64> = Vec::new();
+    let mut split: Vec<(u64, u64)> = Vec::new();
+    let mut at = 0usize;
+    let mut broken = false;
+    each_wanted(objects, b, &want_b, |y, r| {
+        let x = to_compare[at].0;
+        at += 1;
+        let Ok(i) = want_a.binary_search(&x) else {
+            broken = true;
+            return;
+        };
+        let ha = &hashes_a[i * width..(i + 1) * width];
+        let h = |k: usize| xxh3_64_with_seed(r.field(cols_b[k]), CELL_SEED);
+        if (compared.len()..width).any(|k| ha[k] != h(k)) {
+            split.push((x, y));
+            return;
+        }
+        let mut any = false;
+        for (k, count) in counts.iter_mut().enumerate() {
+            if ha[k] != h(k) {
+                *count += 1;
+                any = true;
+            }
+        }
+        if any {
+            changed_b.push(y);
+        }
+    })?;
+    if broken || at != want_b.len() {
+        return Err(lost());
+    }
+    drop(hashes_a);
+    drop(want_a);
+    drop(want_b);
+    removed.extend(split.iter().map(|p| p.0));
+    added.extend(split.iter().map(|p| p.1));
+    removed.sort_unstable();
+    added.sort_unstable();
+    let n_changes = (changed_b.len() + added.len() + removed.len()) as u64;
+
+    // The first n changes in listing order: changed and added rows in B's order, then removed.
+    let (mut ci, mut ai) = (0usize, 0usize);
+    while ci + ai < n && (ci < changed_b.len() || ai < added.len()) {
+        match (changed_b.get(ci), added.get(ai)) {
+            (Some(x), Some(y)) if x < y => ci += 1,
+            (Some(_), None) => ci += 1,
+            _ => ai += 1,
+        }
+    }
+    let ri = n.saturating_sub(ci + ai).min(removed.len());
+    let listed_changed = &changed_b[..ci];
+    let listed_added = &added[..ai];
+    let listed_removed = &removed[..ri];
+    let partner = |y: u64| -> Option<u64> {
+        to_compare
+            .binary_search_by_key(&y, |p| p.1)
+            .ok()
+            .map(|i| to_compare[i].0)
+    };
+    let mut listed_pairs: Vec<(u64, u64)> = Vec::with_capacity(ci);
+    for &y in listed_changed {
+        listed_pairs.push((partner(y).ok_or_else(lost)?, y));
+    }
+    let mut want_a: Vec<u64> = listed_pairs.iter().map(|p| p.0).collect();
+    want_a.extend_from_slice(listed_removed);
+    want_a.sort_unstable();
+    want_a.dedup();
+    let mut want_b: Vec<u64> = listed_changed.to_vec();
+    want_b.extend_from_slice(listed_added);
+    want_b.sort_unstable();
+    want_b.dedup();
+    let (from_rows, to_rows) = both(
+        || rows_of(objects, a, &want_a),
+        || rows_of(objects, b, &want_b),
+    )?;
+    let mut cells = Vec::new();
+    for &(x, y) in &listed_pairs {
+        let (Some(ra), Some(rb)) = (from_rows.get(x), to_rows.get(y)) else {
+            return Err(lost());
+        };
+        cell_diffs(compared, &b.header, (x, ra), (y, rb), &mut cells);
+    }
+    let changes = listing(listed_changed, listed_added, listed_removed, &cells);
+    let changed_by_column = compared
+        .iter()
+        .zip(&counts)
+        .map(|(&(_, j), &c)| (b.header[j].clone(), c))
+        .collect();
+    Ok(Compared {
+        cells,
+        changed_b,
+        from_rows,
+        to_rows,
+        changes,
+        changed_by_column,
+        n_cells: counts.iter().sum(),
+        n_changes,
+    })
+}
+
+/// Every changed cell with its values, every row of both sides kept.
+#[allow(clippy::too_many_arguments)]
+fn compare_all(
+    objects: &Objects,
+    a: &Version,
+    b: &Version,
+    compared: &[(usize, usize)],
+    keys: Option<(&[usize], &[usize])>,
+    mut to_compare: Vec<(u64, u64)>,
+    removed: &mut Vec<u64>,
+    added: &mut Vec<u64>,
+) -> Result<Compared> {
+    let mut want_a: Vec<u64> = removed.to_vec();
+    want_a.extend(to_compare.iter().map(|p| p.0));
+    want_a.sort_unstable();
+    want_a.dedup();
+    let mut want_b: Vec<u64> = added.to_vec();
+    want_b.extend(to_compare.iter().map(|p| p.1));
+    want_b.sort_unstable();
+    want_b.dedup();
+    let (from_rows, to_rows) = both(
+        || rows_of(objects, a, &want_a),
+        || rows_of(objects, b, &want_b),
+    )?;
+    drop(want_a);
+    drop(want_b);
+    // Compare the cells of each pair, in the second version's row order.
+    to_compare.sort_unstable_by_key(|p| p.1);
+    let mut cells = Vec::new();
+    let mut changed_b: Vec<u64> = Vec::new();
+    for &(x, y) in &to_compare {
+        let (Some(ra), Some(rb)) = (from_rows.get(x), to_rows.get(y)) else {
+            return Err(ErrorKind::Inconsistent(format!(
+                "{} or {} has fewer rows than the store records; run `sluice verify`",
+                a.label(),
+                b.label()
+            ))
+            .into());
+        };
+        if let Some((ka, kb)) = keys {
+            if ka.iter().zip(kb).any(|(&i, &j)| ra.field(i) != rb.field(j)) {
+                // Different keys that share a hash.
+                removed.push(x);
+                added.push(y);
+                continue;
+            }
+        }
+        // No cell differs when only columns outside the comparison did.
+        if cell_diffs(compared, &b.header, (x, ra), (y, rb), &mut cells) > 0 {
+            changed_b.push(y);
+        }
+    }
+    removed.sort_unstable();
+    added.sort_unstable();
+    let changes = listing(&changed_b, added, removed, &cells);
+    let changed_by_column = count_by_column(compared, b, &cells);
+    Ok(Compared {
+        n_cells: cells.len() as u64,
+        n_changes: changes.len() as u64,
+        cells,
+        changed_b,
+        from_rows,
+        to_rows,
+        changes,
+        changed_by_column,
+    })
+}
+
+/// Calls `f` with each row of `wanted` (0-based, ascending, no repeats) of `v`, in order; rows
+/// are cut out by offset when the version allows it, so only they are parsed.
+fn each_wanted(
+    objects: &Objects,
+    v: &Version,
+    wanted: &[u64],
+    mut f: impl FnMut(u64, &RawRecord<'_>),
+) -> Result<()> {
+    if wanted.is_empty() {
+        return Ok(());
+    }
+    if cuttable(v) {
+        let (_, offsets) = row_index(objects, v)?;
+        let mut raw = RawRows::new(objects, v, offsets)?;
+        for &w in wanted {
+            raw.with_record(w, |r| f(w, r))?;
+        }
+        return raw.finish();
+    }
+    let mut next = 0usize;
+    each_row(objects, v, |row, r| {
+        if next < wanted.len() && wanted[next] == row {
+            f(row, &r);
+            next += 1;
+        }
+        Ok(())
+    })
+}
