@@ -40,7 +40,7 @@
 //! objects are written to a stage of their own under `tmp/` and published into `objects/` only
 //! just before the transaction that records them.
 
-use std::collections::{HashMap, HashSet};
+use std::collections::{HashMap, HashSet, VecDeque};
 
 use serde::Serialize;
 use serde_json::json;
@@ -398,10 +398,19 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
         let mut stands_for: Vec<(Version, i64, usize, Version)> =
             vec![(target.clone(), reverted.id, 0, current.clone())];
 
-        for l in &later {
+        // Later built-in steps computed ahead in one pass, not yet taken.
+        let mut fused: VecDeque<apply::Computed> = VecDeque::new();
+        for (li, l) in later.iter().enumerate() {
             let computed = match l.step.kind {
                 StepKind::Operation => {
-                    let p = rerun(store, l, &current, opts)?;
+                    if fused.is_empty() {
+                        fused = fuse_ahead(store, &later[li..], &current, opts);
+                    }
+                    let p = match fused.pop_front() {
+                        Some(c) => apply::defer_computed(store, current.clone(), c)
+                            .map_err(|e| cannot_apply_again(l, e))?,
+                        None => rerun(store, l, &current, opts)?,
+                    };
                     let sets = pending_sets(store, &p)?;
                     let origins = origins_through(&new_origin, p.n_rows, &sets, 0, l.step.id);
                     Some((
@@ -727,7 +736,13 @@ fn restore_step(
 }
 
 /// A later built-in step run again on `current` with its recorded parameters.
-fn rerun(store: &mut Store, l: &Later, current: &Version, opts: &RevertOptions) -> Result<Pending> {
+/// The options that apply a later built-in step again on `current`'s dataset.
+fn later_options(
+    store: &Store,
+    l: &Later,
+    current: &Version,
+    opts: &RevertOptions,
+) -> Result<ApplyOptions> {
     let op: Operation = serde_json::from_value(l.step.params.clone()).map_err(|e| {
         db(format!(
             "step {} holds parameters this build cannot read ({e})",
@@ -743,7 +758,7 @@ fn rerun(store: &mut Store, l: &Later, current: &Version, opts: &RevertOptions) 
         Some((_, (_, other))) => crate::plan::with_other_input(&op, other.label()),
         None => op,
     };
-    let aopts = ApplyOptions {
+    Ok(ApplyOptions {
         op,
         reason: l
             .step
@@ -755,15 +770,53 @@ fn rerun(store: &mut Store, l: &Later, current: &Version, opts: &RevertOptions) 
         map_table_file: None,
         replay: None,
         repeats: Some(l.step.id),
-    };
-    apply::compute(store, current.clone(), &aopts).map_err(|e| {
-        Error::from(ErrorKind::Data(format!(
-            "step {} ({} that made {}) cannot be applied again once the reverted step is gone: {e}; nothing was recorded",
-            l.step.id,
-            l.step.operation.as_deref().unwrap_or("step"),
-            l.output.label()
-        )))
     })
+}
+
+fn cannot_apply_again(l: &Later, e: Error) -> Error {
+    Error::from(ErrorKind::Data(format!(
+        "step {} ({} that made {}) cannot be applied again once the reverted step is gone: {e}; nothing was recorded",
+        l.step.id,
+        l.step.operation.as_deref().unwrap_or("step"),
+        l.output.label()
+    )))
+}
+
+/// Applies a later built-in step again on `current` (a pending version or a stored one).
+fn rerun(store: &mut Store, l: &Later, current: &Version, opts: &RevertOptions) -> Result<Pending> {
+    let aopts = later_options(store, l, current, opts)?;
+    apply::compute(store, current.clone(), &aopts).map_err(|e| cannot_apply_again(l, e))
+}
+
+/// The stretch of later built-in steps from the first of `later` that can run in one pass
+/// (`apply::fusable`), computed on `current`; empty when fewer than two can, or when the pass
+/// cannot finish (the steps are then applied one at a time, which fail where and as they
+/// would).
+fn fuse_ahead(
+    store: &Store,
+    later: &[Later],
+    current: &Version,
+    opts: &RevertOptions,
+) -> VecDeque<apply::Computed> {
+    let mut aopts = Vec::new();
+    for (k, l) in later.iter().enumerate() {
+        if l.step.kind != StepKind::Operation || l.main != 0 {
+            break;
+        }
+        let Ok(o) = later_options(store, l, current, opts) else {
+            break;
+        };
+        if !apply::fusable(&o.op, k == 0) {
+            break;
+        }
+        aopts.push(o);
+    }
+    if aopts.len() < 2 {
+        return VecDeque::new();
+    }
+    apply::compute_chain(store, current, &aopts)
+        .map(VecDeque::from)
+        .unwrap_or_default()
 }
 
 /// One conflict a patch met.

@@ -435,6 +435,21 @@ pub fn apply_computed(store: &mut Store, input: Version, c: Computed) -> Result<
     }
 }
 
+/// One step of a fused run ([`compute_chain`]) on `input`, made durable but not recorded
+/// (a withdrawal records its whole new history in one transaction): as [`compute`] would
+/// have given it.
+pub fn defer_computed(store: &mut Store, input: Version, c: Computed) -> Result<Pending> {
+    let dataset = c
+        .opts
+        .output_dataset
+        .clone()
+        .unwrap_or_else(|| input.dataset.clone());
+    match record_computed(store, input, &dataset, c, None, Mode::Defer)? {
+        Done::Deferred(p) => Ok(p),
+        Done::Outcome(_) => Err(ErrorKind::Internal("a deferred step was recorded".into()).into()),
+    }
+}
+
 /// A row-by-row step computed (its output written, not yet durable) and what it recorded.
 pub struct Computed {
     /// The step's options, its table pinned to the exact version.
