@@ -162,7 +162,10 @@ fn apply_to(store: &mut Store, input: Version, opts: &ApplyOptions, mode: Mode) 
     let mut out = OwnedRow::default();
     each_input_row(store, &input, |in_row, r| {
         if step.row(in_row, &r, &mut out)? {
-            writer.write_row(&out.fields()).map_err(store_io)?;
+            {
+                let (bytes, ends) = out.packed();
+                writer.write_packed(bytes, ends).map_err(store_io)?;
+            }
         }
         Ok(())
     })?;
@@ -384,10 +387,8 @@ pub fn compute_chain(
         if !first.step.row(in_row, &r, &mut first.out)? {
             return Ok(());
         }
-        first
-            .writer
-            .write_row(&first.out.fields())
-            .map_err(store_io)?;
+        let (bytes, ends) = first.out.packed();
+        first.writer.write_packed(bytes, ends).map_err(store_io)?;
         first.n_out += 1;
         let mut prev = first;
         for stage in rest {
@@ -395,10 +396,8 @@ pub fn compute_chain(
             if !stage.step.row(row, &prev.out.record(row), &mut stage.out)? {
                 break;
             }
-            stage
-                .writer
-                .write_row(&stage.out.fields())
-                .map_err(store_io)?;
+            let (bytes, ends) = stage.out.packed();
+            stage.writer.write_packed(bytes, ends).map_err(store_io)?;
             stage.n_out += 1;
             prev = stage;
         }

@@ -53,17 +53,9 @@ impl OwnedRow {
         }
     }
 
-    /// The fields, for a writer.
-    pub fn fields(&self) -> Vec<&[u8]> {
-        let mut start = 0;
-        self.ends
-            .iter()
-            .map(|&e| {
-                let f = &self.bytes[start..e];
-                start = e;
-                f
-            })
-            .collect()
+    /// The fields' bytes back to back, and where each ends (for a writer).
+    pub fn packed(&self) -> (&[u8], &[usize]) {
+        (&self.bytes, &self.ends)
     }
 }
 

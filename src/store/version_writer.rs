@@ -114,6 +114,20 @@ impl CanonicalWriter {
         Ok(())
     }
 
+    /// [`Self::write_row`] for a row held as its fields' bytes back to back and where each
+    /// ends (an operation's output row), without a list of slices.
+    pub fn write_packed(&mut self, bytes: &[u8], ends: &[usize]) -> io::Result<()> {
+        debug_assert_eq!(ends.len(), self.n_cols);
+        let base = self.batch.bytes.len();
+        self.batch.bytes.extend_from_slice(bytes);
+        self.batch.ends.extend(ends.iter().map(|e| base + e));
+        self.batch.rows += 1;
+        if self.batch.bytes.len() >= BATCH_BYTES || self.batch.rows >= BATCH_BYTES / 16 {
+            self.send()?;
+        }
+        Ok(())
+    }
+
     fn send(&mut self) -> io::Result<()> {
         let next = self.spare.try_recv().unwrap_or_default();
         let full = std::mem::replace(&mut self.batch, next);
