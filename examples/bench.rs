@@ -748,10 +748,10 @@ fn sluice_ingest(ctx: &Ctx, file: &Path, run: u32) -> Result<(Sample, Option<Str
         .env("SLUICE_AGENT", AGENT)
         .stdout(Stdio::null())
         .output()
-        .context("running `sluice init`")?;
+        .context("running `sluice setup`")?;
     ensure!(
         status.status.success(),
-        "`sluice init {}` failed: {}",
+        "`sluice setup {}` failed: {}",
         store.display(),
         String::from_utf8_lossy(&status.stderr)
     );
@@ -1905,10 +1905,12 @@ fn ops(ctx: &Ctx) -> Result<Value> {
     let mut all_pass = true;
     let mut all_agree = true;
     for n in ctx.rows_for(Bench::Ops) {
-        let (size, pass, agree) = ops_size(ctx, &python, n)?;
-        sizes.push(size);
-        all_pass &= pass;
-        all_agree &= agree;
+        for ten in [false, true] {
+            let (size, pass, agree) = ops_size(ctx, &python, n, ten)?;
+            sizes.push(size);
+            all_pass &= pass;
+            all_agree &= agree;
+        }
     }
     println!(
         "ops: {}; {}",
@@ -1943,14 +1945,23 @@ fn ops(ctx: &Ctx) -> Result<Value> {
 
 /// Measures the three tools on the file of `n` rows; prints the table, the checks and the
 /// goals. Returns the figures, whether every goal was met and whether the tools agreed.
-fn ops_size(ctx: &Ctx, python: &Path, n: u64) -> Result<(Value, bool, bool)> {
+fn ops_size(ctx: &Ctx, python: &Path, n: u64, ten: bool) -> Result<(Value, bool, bool)> {
     let (file, bytes, background) = prepare_size(ctx, n)?;
+    println!(
+        "  the {} plan ({} rows)",
+        if ten {
+            "ten-step (six + case, replace, fill, rename before the summary)"
+        } else {
+            "six-step"
+        },
+        n
+    );
 
     let mut run_alone = Vec::new();
     let mut footprints = Vec::new();
     let mut sluice_result = None;
     let whole = repeat(ctx.runs, |i| {
-        let (whole, run, footprint, cleaned) = sluice_ops(ctx, &file, i)?;
+        let (whole, run, footprint, cleaned) = sluice_ops(ctx, &file, i, ten)?;
         run_alone.push(run);
         footprints.push(footprint);
         sluice_result.get_or_insert(cleaned);
@@ -1959,7 +1970,7 @@ fn ops_size(ctx: &Ctx, python: &Path, n: u64) -> Result<(Value, bool, bool)> {
     let baseline = |script: &str, key: &str| -> Result<(Vec<Sample>, Cleaned, String)> {
         let mut result = None;
         let samples = repeat(ctx.runs, |i| {
-            let (s, cleaned, version) = python_ops(ctx, python, script, key, &file, i)?;
+            let (s, cleaned, version) = python_ops(ctx, python, script, key, &file, i, ten)?;
             result.get_or_insert((cleaned, version));
             Ok(s)
         })?;
@@ -2023,6 +2034,7 @@ fn ops_size(ctx: &Ctx, python: &Path, n: u64) -> Result<(Value, bool, bool)> {
         })
     };
     let value = json!({
+        "plan": if ten { "ten steps" } else { "six steps" },
         "rows": n,
         "bytes": bytes,
         "file": file.display().to_string(),
@@ -2047,9 +2059,9 @@ fn ops_size(ctx: &Ctx, python: &Path, n: u64) -> Result<(Value, bool, bool)> {
 
 /// The plan the benchmark runs: `file` taken in as `orders`, cleaned, and summed per
 /// technician into `totals`.
-fn ops_plan(file: &Path) -> Value {
+fn ops_plan(file: &Path, ten: bool) -> Value {
     let why_trim = "the Quillby till pads names, addresses and amounts with spaces";
-    current_form(json!({
+    let mut plan = json!({
         "sluice_plan": 1,
         "description": "Work orders of the Quillby shop cleaned and summed per technician (the ops benchmark)",
         "inputs": [
@@ -2065,7 +2077,22 @@ fn ops_plan(file: &Path) -> Value {
                 "aggregates": [{"func": "sum", "column": "parts_cost"}]},
                 "as": "totals", "why": "parts cost per technician"},
         ],
-    }))
+    });
+    if ten {
+        // Four more row-by-row steps before the summary (the baselines' --ten does the same).
+        let more = json!([
+            {"on": "orders", "apply": {"op": "case", "columns": ["service"], "to": "upper"}, "why": "service codes in capitals"},
+            {"on": "orders", "apply": {"op": "replace", "columns": ["opened"], "find": "-", "with": "/"}, "why": "dates with slashes for the paper forms"},
+            {"on": "orders", "apply": {"op": "fill", "columns": ["notes"], "value": "none"}, "why": "no blank notes"},
+            {"on": "orders", "apply": {"op": "rename", "columns": [{"from": "labour_hours", "to": "hours"}]}, "why": "the ledger's name"},
+        ]);
+        let steps = plan["steps"].as_array_mut().expect("the plan has steps");
+        let at = steps.len() - 1;
+        for (k, step) in more.as_array().expect("a list").iter().enumerate() {
+            steps.insert(at + k, step.clone());
+        }
+    }
+    current_form(plan)
 }
 
 // ---------------------------------------------------------------------------------------------
@@ -2112,7 +2139,7 @@ fn replay_size(ctx: &Ctx, n: u64) -> Result<(Value, bool)> {
         let plan = scratch.0.join("plan.json");
         fs::write(
             &plan,
-            serde_json::to_string_pretty(&ops_plan(&file))? + "\n",
+            serde_json::to_string_pretty(&ops_plan(&file, false))? + "\n",
         )
         .with_context(|| format!("writing {}", plan.display()))?;
         let (sample, _) = run_measured(
@@ -2204,17 +2231,25 @@ fn replay_size(ctx: &Ctx, n: u64) -> Result<(Value, bool)> {
 /// A fresh store (not timed), then `sluice run PLAN` and `sluice cat orders -o cleaned.csv`
 /// (timed). Returns the two timed together and the run alone, what the run added to the store,
 /// and the result as read back from the store afterwards (not timed).
-fn sluice_ops(ctx: &Ctx, file: &Path, run: u32) -> Result<(Sample, Sample, Footprint, Cleaned)> {
+fn sluice_ops(
+    ctx: &Ctx,
+    file: &Path,
+    run: u32,
+    ten: bool,
+) -> Result<(Sample, Sample, Footprint, Cleaned)> {
     let scratch = Scratch::new(ctx, &format!("ops-sluice-{run}"))?;
     let store = scratch.0.join("store");
     sluice_init(ctx, &store)?;
-    let dot = store.join(".sluice");
+    let dot = store.join("sluice-store");
     let db = dot.join("lineage.db");
     let wal = dot.join("lineage.db-wal");
     let db_fresh = file_len(&db)? + file_len(&wal)?;
     let plan = scratch.0.join("plan.json");
-    fs::write(&plan, serde_json::to_string_pretty(&ops_plan(file))? + "\n")
-        .with_context(|| format!("writing {}", plan.display()))?;
+    fs::write(
+        &plan,
+        serde_json::to_string_pretty(&ops_plan(file, ten))? + "\n",
+    )
+    .with_context(|| format!("writing {}", plan.display()))?;
     let sluice = |args: &[&std::ffi::OsStr]| {
         let mut cmd = Command::new(&ctx.sluice);
         cmd.arg("--store")
@@ -2250,13 +2285,13 @@ fn sluice_ops(ctx: &Ctx, file: &Path, run: u32) -> Result<(Sample, Sample, Footp
     let cleaned_csv = scratch.0.join("cleaned.csv");
     let (cat_sample, _) = run_measured(
         &mut sluice(&[
-            "cat".as_ref(),
+            "retrieve".as_ref(),
             "orders".as_ref(),
             "-o".as_ref(),
             cleaned_csv.as_os_str(),
         ]),
         &scratch.0.join("log-cat"),
-        "sluice cat",
+        "sluice retrieve",
     )?;
 
     // The result, read back from the store.
@@ -2271,12 +2306,12 @@ fn sluice_ops(ctx: &Ctx, file: &Path, run: u32) -> Result<(Sample, Sample, Footp
         );
         String::from_utf8(out.stdout).with_context(|| format!("reading sluice {what}'s output"))
     };
-    let shown: Value = serde_json::from_str(&read(&["show", "orders", "--json"], "show")?)
-        .context("reading `sluice show orders --json`")?;
+    let shown: Value = serde_json::from_str(&read(&["about", "orders", "--json"], "about")?)
+        .context("reading `sluice about orders --json`")?;
     let rows = shown["version"]["n_rows"]
         .as_u64()
-        .ok_or_else(|| anyhow!("no version.n_rows in `sluice show orders --json`"))?;
-    let totals = sluice_totals(&read(&["cat", "totals"], "cat totals")?)?;
+        .ok_or_else(|| anyhow!("no version.n_rows in `sluice about orders --json`"))?;
+    let totals = sluice_totals(&read(&["retrieve", "totals"], "retrieve totals")?)?;
     Ok((
         then(run_sample, cat_sample),
         run_sample,
@@ -2320,12 +2355,16 @@ fn python_ops(
     key: &str,
     file: &Path,
     run: u32,
+    ten: bool,
 ) -> Result<(Sample, Cleaned, String)> {
     let scratch = Scratch::new(ctx, &format!("ops-{key}-{run}"))?;
     let mut cmd = Command::new(python);
     cmd.arg(Path::new(env!("CARGO_MANIFEST_DIR")).join(script))
         .arg(file)
         .arg(scratch.0.join("cleaned.csv"));
+    if ten {
+        cmd.arg("--ten");
+    }
     let (sample, out) = run_measured(&mut cmd, &scratch.0.join("log"), script)?;
     let v: Value = serde_json::from_str(out.stdout.trim())
         .with_context(|| format!("reading the result {script} printed: {:?}", out.stdout))?;
@@ -3091,7 +3130,7 @@ fn prepare_size(ctx: &Ctx, n: u64) -> Result<(PathBuf, u64, Option<f64>)> {
 /// `sluice init STORE` (not timed): a fresh, empty store.
 fn sluice_init(ctx: &Ctx, store: &Path) -> Result<()> {
     let status = Command::new(&ctx.sluice)
-        .arg("init")
+        .arg("setup")
         .arg(store)
         .env("SLUICE_AGENT", AGENT)
         .stdout(Stdio::null())

@@ -14,7 +14,11 @@ of JSON for the benchmark to compare with sluice's result: pandas' version, the 
 cleaned rows, and per technician (in the order they first appear) the row count and the sum,
 a float.
 
-usage: python bench_ops_pandas.py RAW_CSV CLEANED_OUT
+With --ten, four more steps after the filter, as the ten-step plan has them: service in
+upper case, "-" replaced by "/" in opened, blank notes filled with "none", labour_hours
+renamed hours.
+
+usage: python bench_ops_pandas.py RAW_CSV CLEANED_OUT [--ten]
 """
 
 import json
@@ -23,7 +27,7 @@ import sys
 import pandas as pd
 
 
-def main(raw, cleaned_out):
+def main(raw, cleaned_out, ten):
     df = pd.read_csv(raw, dtype=str, keep_default_na=False)
     for column in df.columns:
         df[column] = df[column].str.strip()
@@ -33,6 +37,11 @@ def main(raw, cleaned_out):
         df["parts_cost"].str.replace("€", "", regex=False).str.replace(",", "", regex=False)
     )
     df = df[df["status"] != "cancelled"]
+    if ten:
+        df["service"] = df["service"].str.upper()
+        df["opened"] = df["opened"].str.replace("-", "/", regex=False)
+        df["notes"] = df["notes"].mask(df["notes"] == "", "none")
+        df = df.rename(columns={"labour_hours": "hours"})
     totals = df.groupby("technician", sort=False)["parts_cost"].agg(["size", "sum"])
     df.to_csv(cleaned_out, index=False)
     print(json.dumps({
@@ -47,4 +56,4 @@ def main(raw, cleaned_out):
 
 
 if __name__ == "__main__":
-    main(sys.argv[1], sys.argv[2])
+    main(sys.argv[1], sys.argv[2], sys.argv[3:] == ["--ten"])

@@ -533,7 +533,7 @@ pub fn evaluate(store: &Store, version: &Version, rules: &[Rule]) -> Result<Vec<
         .collect();
     let blank = |v: &[u8]| v.is_empty() || null_tokens.iter().any(|t| t.as_slice() == v);
     let mut failing: Vec<(u64, Vec<u64>)> = vec![(0, Vec::new()); rules.len()];
-    crate::ops::apply::each_version_row(store, version, |row, r| {
+    store.objects.each_row(version, |row, r| {
         for (k, c) in compiled.iter_mut().enumerate() {
             let fails = match c {
                 Compiled::NotBlank(cols) => cols.iter().any(|&i| blank(r.field(i))),

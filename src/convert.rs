@@ -27,8 +27,8 @@ use crate::intake::{IngestOptions, Prepared, PreparedIngest, SourceOptions};
 use crate::jsonl;
 use crate::model::{SourceFile, Step};
 use crate::sheets::{self, WorkbookFormat};
+use crate::store::version_writer::CanonicalWriter;
 use crate::store::Store;
-use crate::table::write::CanonicalWriter;
 
 /// The formats taken in through a conversion.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -476,7 +476,7 @@ fn write_table(
     store: &Store,
     read: &Read,
     null_tokens: &[String],
-) -> Result<crate::table::write::Written> {
+) -> Result<crate::store::version_writer::Written> {
     let store_io = |e: std::io::Error| Error::io(&store.dir().join("tmp"), e);
     let mut writer =
         CanonicalWriter::new(&store.objects, &read.header, null_tokens).map_err(store_io)?;

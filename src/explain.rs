@@ -190,7 +190,7 @@ pub fn explain(
     let mut first: Vec<(u64, String)> = Vec::new();
     let mut agg = AggState::default();
     let mut overflow = false;
-    crate::ops::apply::each_version_row(store, &input, |row, rec| {
+    store.objects.each_row(&input, |row, rec| {
         if !by_idx
             .iter()
             .zip(&group)
@@ -482,9 +482,8 @@ fn walk(
         }
         let mut prev: Vec<u64> = Vec::new();
         for &r in &rows {
-            let i = runs.partition_point(|run| run.out_start + run.len <= r);
-            if let Some(run) = runs.get(i).filter(|run| run.out_start <= r) {
-                prev.push(run.in_start + (r - run.out_start));
+            if let Some(row) = crate::model::input_of(&runs, r) {
+                prev.push(row);
             }
         }
         if prev.is_empty() {

@@ -95,7 +95,7 @@ pub fn write_as(store: &Store, v: &Version, format: TextFormat, out: &mut dyn Wr
         }
         TextFormat::Jsonl => {}
     }
-    crate::ops::apply::each_version_row(store, v, |row, r| {
+    store.objects.each_row(v, |row, r| {
         let fields: Vec<&[u8]> = r.iter().collect();
         match format {
             TextFormat::Csv => push_record(&mut buf, fields.iter().copied()),

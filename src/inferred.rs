@@ -117,23 +117,12 @@ pub fn infer_matching(
     let asked_order = key == KeyChoice::Unkeyed;
     let to = prepared.draft(store)?;
     let d = diff::diff_versions(store, &from, &to, &DiffOptions { key })?;
-    let mut runs: Vec<RowRun> = Vec::with_capacity(d.pairing.runs.len());
+    let mut map = crate::model::RowMap::default();
     for r in &d.pairing.runs {
         // Changed and unchanged stretches that continue each other are one run of the row map.
-        match runs.last_mut() {
-            Some(last)
-                if last.out_start + last.len == r.b_start
-                    && last.in_start + last.len == r.a_start =>
-            {
-                last.len += r.len;
-            }
-            _ => runs.push(RowRun {
-                out_start: r.b_start,
-                in_start: r.a_start,
-                len: r.len,
-            }),
-        }
+        map.push_run(r.b_start, r.a_start, r.len);
     }
+    let runs = map.into_runs();
     let mut changes = ChangeLog::new(to.header.len());
     for c in &d.pairing.cells {
         let col = to

@@ -406,7 +406,7 @@ impl PreparedIngest {
         source: SourceFile,
         params: serde_json::Value,
         raw: ObjectWriter,
-        written: crate::table::write::Written,
+        written: crate::store::version_writer::Written,
         header: Vec<String>,
         warnings: Vec<String>,
     ) -> PreparedIngest {

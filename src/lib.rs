@@ -60,6 +60,7 @@ pub mod plan;
 pub mod progress;
 pub mod prov;
 pub mod provenance;
+pub mod recording;
 pub mod refs;
 pub mod replay;
 pub mod report;

@@ -269,6 +269,66 @@ pub struct RowRun {
     pub len: u64,
 }
 
+/// A step's row map for one of its inputs: sorted, non-overlapping runs of output rows, each
+/// a stretch of consecutive input rows. The one home of "which input row did output row R come
+/// from" (trace, explain, provenance and withdrawals ask it) and of building runs row by row.
+#[derive(Debug, Clone, Default, PartialEq, Eq)]
+pub struct RowMap {
+    runs: Vec<RowRun>,
+}
+
+impl RowMap {
+    /// The map of runs already sorted by output row (as every step records them).
+    pub fn from_runs(runs: Vec<RowRun>) -> Self {
+        RowMap { runs }
+    }
+
+    pub fn runs(&self) -> &[RowRun] {
+        &self.runs
+    }
+
+    pub fn into_runs(self) -> Vec<RowRun> {
+        self.runs
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.runs.is_empty()
+    }
+
+    /// The input row output row `row` came from, or `None` when no run carries it.
+    pub fn input_of(&self, row: u64) -> Option<u64> {
+        input_of(&self.runs, row)
+    }
+
+    /// Records that output row `out_row` is input row `in_row`; rows must come in output
+    /// order. A row that continues the last run lengthens it.
+    pub fn push(&mut self, out_row: u64, in_row: u64) {
+        self.push_run(out_row, in_row, 1);
+    }
+
+    /// Records `len` output rows from `out_row` as the input rows from `in_row`.
+    pub fn push_run(&mut self, out_row: u64, in_row: u64, len: u64) {
+        match self.runs.last_mut() {
+            Some(r) if r.in_start + r.len == in_row && r.out_start + r.len == out_row => {
+                r.len += len
+            }
+            _ => self.runs.push(RowRun {
+                out_start: out_row,
+                in_start: in_row,
+                len,
+            }),
+        }
+    }
+}
+
+/// The input row output row `row` came from, through runs sorted by output row.
+pub fn input_of(runs: &[RowRun], row: u64) -> Option<u64> {
+    let i = runs.partition_point(|r| r.out_start + r.len <= row);
+    runs.get(i)
+        .filter(|r| r.out_start <= row)
+        .map(|r| r.in_start + (row - r.out_start))
+}
+
 /// One cell a step changed.
 #[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
 pub struct CellChange {

@@ -539,8 +539,35 @@ pub fn run(
         }
     }
     let mut failed_checks = 0;
+    // Steps already recorded by a fused pass, and steps to run one at a time after a fused
+    // pass could not finish.
+    let (mut skip_until, mut plain_until) = (0, 0);
     for (i, step) in plan.steps.iter().enumerate() {
+        if i < skip_until {
+            continue;
+        }
         let at = format!("step {} ({})", i + 1, step.describe());
+        if i >= plain_until {
+            // A stretch of row-by-row steps, each reading the one before, runs in one pass.
+            let n = fusable_stretch(store, &plan.steps[i..], &current);
+            if n >= 2 {
+                match run_fused(store, &plan.steps[i..i + n], i + 1, &mut current, opts) {
+                    Ok(Some(items)) => {
+                        done.extend(items);
+                        skip_until = i + n;
+                        continue;
+                    }
+                    // The pass could not finish: the same steps one at a time, which stop
+                    // where and as a step-by-step run does.
+                    Ok(None) => plain_until = i + n,
+                    Err((items, k, error)) => {
+                        done.extend(items);
+                        let at = format!("step {} ({})", i + k + 1, plan.steps[i + k].describe());
+                        return Err(RunFailure { done, at, error });
+                    }
+                }
+            }
+        }
         match run_step(store, step, i + 1, &mut current, opts) {
             Ok(d) => {
                 if let Done::Checked {
@@ -694,6 +721,130 @@ fn output_name(store: &Store, step: &PlanStep) -> Result<String> {
         Ok(v) if v.dataset != step.dataset => v.dataset,
         _ => step.dataset.clone(),
     })
+}
+
+/// How many steps from the start of `steps` can run fused in one pass: `clean` steps whose
+/// operation works row by row (`apply::fusable`), each reading the dataset the step before it
+/// wrote, none reading as a table a dataset written earlier in the stretch.
+fn fusable_stretch(
+    store: &Store,
+    steps: &[PlanStep],
+    current: &BTreeMap<String, Version>,
+) -> usize {
+    let mut written: Vec<String> = Vec::new();
+    for (k, step) in steps.iter().enumerate() {
+        let Some(op) = &step.clean else {
+            return k;
+        };
+        if !apply::fusable(op, k == 0) {
+            return k;
+        }
+        if let Some(last) = written.last() {
+            if &step.dataset != last {
+                return k;
+            }
+        }
+        if other_input(op).is_some_and(|t| written.iter().any(|w| w == t)) {
+            return k;
+        }
+        let out = match &step.save_as {
+            Some(n) => n.clone(),
+            None if k > 0 || current.contains_key(&step.dataset) => step.dataset.clone(),
+            None => match refs::resolve(&store.lineage, &step.dataset) {
+                Ok(v) => v.dataset,
+                Err(_) => return k,
+            },
+        };
+        written.push(out);
+    }
+    steps.len()
+}
+
+/// What a fused stretch recorded before it stopped, the 0-based position in the stretch of
+/// the step that failed, and why.
+type FusedFailure = (Vec<Done>, usize, Error);
+
+/// Runs a stretch of row-by-row steps in one pass ([`apply::compute_chain`]), then records
+/// each step in turn in its own transaction, as [`run_step`] would. `Ok(None)`: the pass could
+/// not be completed (a step refused its input, a cell could not be read), nothing was
+/// recorded, and the caller runs the steps one at a time instead, which stops where and as
+/// such a run does. A failed write stops the run at the stretch's first step.
+fn run_fused(
+    store: &mut Store,
+    steps: &[PlanStep],
+    first_number: usize,
+    current: &mut BTreeMap<String, Version>,
+    opts: &RunOptions,
+) -> std::result::Result<Option<Vec<Done>>, FusedFailure> {
+    let resolve =
+        |store: &Store, name: &str, current: &BTreeMap<String, Version>| match current.get(name) {
+            Some(v) => Ok(v.clone()),
+            None => refs::resolve(&store.lineage, name),
+        };
+    let Ok(input) = resolve(store, &steps[0].dataset, current) else {
+        return Ok(None);
+    };
+    let mut aopts = Vec::with_capacity(steps.len());
+    let mut datasets = Vec::with_capacity(steps.len());
+    for (k, step) in steps.iter().enumerate() {
+        let Some(op) = &step.clean else {
+            return Ok(None);
+        };
+        let op = match other_input(op) {
+            Some(name) => match resolve(store, name, current) {
+                Ok(v) => with_other_input(op, v.label()),
+                Err(_) => return Ok(None),
+            },
+            None => op.clone(),
+        };
+        let dataset = match &step.save_as {
+            Some(n) => n.clone(),
+            None if k > 0 || current.contains_key(&step.dataset) => step.dataset.clone(),
+            None => input.dataset.clone(),
+        };
+        datasets.push(dataset.clone());
+        aopts.push(ApplyOptions {
+            op,
+            reason: step.reason.clone().unwrap_or_default(),
+            output_dataset: Some(dataset),
+            agent: opts.agent.clone(),
+            map_table_file: None,
+            replay: None,
+            repeats: step.repeats,
+        });
+    }
+    let computed = match apply::compute_chain(store, &input, &aopts) {
+        Ok(c) => c,
+        // A write that failed (a full disk) fails the run as it would have failed the first
+        // step; nothing is recorded.
+        Err(e) if matches!(e.kind(), ErrorKind::Io { .. }) => return Err((Vec::new(), 0, e)),
+        Err(_) => return Ok(None),
+    };
+    let mut done = Vec::with_capacity(steps.len());
+    let mut reads = input;
+    for (k, (c, dataset)) in computed.into_iter().zip(datasets).enumerate() {
+        let outcome = match apply::apply_computed(store, reads.clone(), c) {
+            Ok(o) => o,
+            Err(e) => return Err((done, k, e)),
+        };
+        let version = match &outcome {
+            ApplyOutcome::Recorded { version, .. } | ApplyOutcome::Unchanged { version, .. } => {
+                version.clone()
+            }
+            ApplyOutcome::Replayed { .. } => {
+                let e = ErrorKind::Inconsistent("a plan step was replayed, not recorded".into());
+                return Err((done, k, e.into()));
+            }
+        };
+        current.insert(dataset, version.clone());
+        reads = version;
+        done.push(Done::Applied {
+            step: first_number + k,
+            op: aopts[k].op.clone(),
+            outcome: Box::new(outcome),
+        });
+    }
+    Ok(Some(done))
 }
 
 fn run_step(

@@ -640,14 +640,6 @@ fn changed_input(store: &Store, output: &Version) -> Result<Version> {
         })
 }
 
-/// The input row output row `row` came from, through the row map.
-fn input_row(runs: &[RowRun], row: u64) -> Option<u64> {
-    let i = runs.partition_point(|r| r.out_start + r.len <= row);
-    runs.get(i)
-        .filter(|r| r.out_start <= row)
-        .map(|r| r.in_start + (row - r.out_start))
-}
-
 /// Reads the old and new values of changed cells from the two versions, each in one pass.
 fn values_of(
     store: &Store,
@@ -663,7 +655,7 @@ fn values_of(
     for (name, rows) in changes {
         let (oc, ic) = (col(output, name), col(input, name));
         for &r in rows {
-            wanted.push((r, input_row(runs, r), name, oc, ic));
+            wanted.push((r, crate::model::input_of(runs, r), name, oc, ic));
         }
     }
     let mut new_values: HashMap<(u64, usize), String> = HashMap::new();
@@ -673,7 +665,7 @@ fn values_of(
             need_out.entry(w.0).or_default().push(oc);
         }
     }
-    crate::ops::apply::each_version_row(store, output, |row, rec| {
+    store.objects.each_row(output, |row, rec| {
         if let Some(cols) = need_out.get(&row) {
             for &c in cols {
                 new_values.insert((row, c), String::from_utf8_lossy(rec.field(c)).into_owned());
@@ -688,7 +680,7 @@ fn values_of(
             need_in.entry(ir).or_default().push(ic);
         }
     }
-    crate::ops::apply::each_version_row(store, input, |row, rec| {
+    store.objects.each_row(input, |row, rec| {
         if let Some(cols) = need_in.get(&row) {
             for &c in cols {
                 old_values.insert((row, c), String::from_utf8_lossy(rec.field(c)).into_owned());
@@ -809,10 +801,10 @@ mod tests {
                 len: 2,
             },
         ];
-        assert_eq!(input_row(&runs, 0), Some(0));
-        assert_eq!(input_row(&runs, 2), Some(2));
-        assert_eq!(input_row(&runs, 3), Some(5));
-        assert_eq!(input_row(&runs, 4), Some(6));
-        assert_eq!(input_row(&runs, 5), None);
+        assert_eq!(crate::model::input_of(&runs, 0), Some(0));
+        assert_eq!(crate::model::input_of(&runs, 2), Some(2));
+        assert_eq!(crate::model::input_of(&runs, 3), Some(5));
+        assert_eq!(crate::model::input_of(&runs, 4), Some(6));
+        assert_eq!(crate::model::input_of(&runs, 5), None);
     }
 }

@@ -40,7 +40,7 @@
 //! objects are written to a stage of their own under `tmp/` and published into `objects/` only
 //! just before the transaction that records them.
 
-use std::collections::{HashMap, HashSet};
+use std::collections::{HashMap, HashSet, VecDeque};
 
 use serde::Serialize;
 use serde_json::json;
@@ -49,12 +49,13 @@ use crate::clock;
 use crate::error::{Error, ErrorKind, Result};
 use crate::hash::Hash;
 use crate::model::{Agent, LineageKind, RowRun, Step, StepKind, Version};
-use crate::ops::apply::{self, ApplyOptions, Pending, Provenance, StepMeta};
+use crate::ops::apply::{self, ApplyOptions};
 use crate::ops::Operation;
 use crate::provenance::{ChangeLog, DropLog};
+use crate::recording::{self, Pending, Provenance, StepMeta};
 use crate::refs;
+use crate::store::version_writer::CanonicalWriter;
 use crate::store::Store;
-use crate::table::write::CanonicalWriter;
 
 /// What `sluice withdraw` was asked to do.
 #[derive(Debug, Clone)]
@@ -170,14 +171,6 @@ impl Origin {
 
 fn db(msg: String) -> Error {
     ErrorKind::Inconsistent(msg).into()
-}
-
-/// The input row an output row came from, through sorted runs.
-fn through(runs: &[RowRun], row: u64) -> Option<u64> {
-    let i = runs.partition_point(|r| r.out_start + r.len <= row);
-    runs.get(i)
-        .filter(|r| r.out_start <= row)
-        .map(|r| r.in_start + (row - r.out_start))
 }
 
 /// The origins of a step's output rows, from the origins of its main input's rows and its run
@@ -397,7 +390,7 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
         let mut applied_again: Vec<(i64, String)> = Vec::new();
         let restore = restore_step(store, &base, &latest, &reverted, &label, opts, &started_at)?;
         let mut seq = latest.seq + 1;
-        let mut current = restore.version(apply::pending_id(0), seq);
+        let mut current = restore.version(recording::pending_id(0), seq);
         pendings.push(restore);
         let mut new_origin: Vec<Origin> = (0..base.n_rows).map(Origin::Base).collect();
         // Each version of the old history and the new one that stands for it (by its index
@@ -405,10 +398,19 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
         let mut stands_for: Vec<(Version, i64, usize, Version)> =
             vec![(target.clone(), reverted.id, 0, current.clone())];
 
-        for l in &later {
+        // Later built-in steps computed ahead in one pass, not yet taken.
+        let mut fused: VecDeque<apply::Computed> = VecDeque::new();
+        for (li, l) in later.iter().enumerate() {
             let computed = match l.step.kind {
                 StepKind::Operation => {
-                    let p = rerun(store, l, &current, opts)?;
+                    if fused.is_empty() {
+                        fused = fuse_ahead(store, &later[li..], &current, opts);
+                    }
+                    let p = match fused.pop_front() {
+                        Some(c) => apply::defer_computed(store, current.clone(), c)
+                            .map_err(|e| cannot_apply_again(l, e))?,
+                        None => rerun(store, l, &current, opts)?,
+                    };
                     let sets = pending_sets(store, &p)?;
                     let origins = origins_through(&new_origin, p.n_rows, &sets, 0, l.step.id);
                     Some((
@@ -467,7 +469,7 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
                 continue;
             }
             seq += 1;
-            current = p.version(apply::pending_id(pendings.len()), seq);
+            current = p.version(recording::pending_id(pendings.len()), seq);
             new_origin = origins;
             applied_again.push((l.step.id, what));
             pendings.push(p);
@@ -537,7 +539,7 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
                     .copied()
                     .ok_or_else(|| db("a pending version was used before it was recorded".into()))
             };
-            let (vid, sid, seq) = apply::insert_pending(tx, p, &real)?;
+            let (vid, sid, seq) = recording::insert_pending(tx, p, &real)?;
             if i == 0 {
                 tx.set_reverts_step(sid, reverted_id)?;
             }
@@ -585,22 +587,13 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
                         "reason": opts.reason,
                     }),
                 ),
-                (_, StepKind::Operation) => (
-                    "apply",
-                    json!({
-                        "operation": p.params,
-                        "input": input_hash,
-                        "version": p.hash,
-                        "step": sid,
-                        "row_index": p.row_index,
-                        "cells_changed": p.n_changed,
-                        "rows_dropped": p.n_dropped,
-                        "provenance": p.provenance.as_ref().map(|(h, _)| h),
-                        "cells_noted": p.notes.len(),
-                        "repeats_step": p.repeats_step,
-                        "after_revert_of": reverted_id,
-                    }),
-                ),
+                (_, StepKind::Operation) => ("apply", {
+                    let mut d = crate::recording::apply_entry(p, &input_hash, sid);
+                    d["row_index"] = json!(p.row_index);
+                    d["repeats_step"] = json!(p.repeats_step);
+                    d["after_revert_of"] = json!(reverted_id);
+                    d
+                }),
                 (_, kind) => (
                     kind.as_str(),
                     json!({
@@ -743,7 +736,13 @@ fn restore_step(
 }
 
 /// A later built-in step run again on `current` with its recorded parameters.
-fn rerun(store: &mut Store, l: &Later, current: &Version, opts: &RevertOptions) -> Result<Pending> {
+/// The options that apply a later built-in step again on `current`'s dataset.
+fn later_options(
+    store: &Store,
+    l: &Later,
+    current: &Version,
+    opts: &RevertOptions,
+) -> Result<ApplyOptions> {
     let op: Operation = serde_json::from_value(l.step.params.clone()).map_err(|e| {
         db(format!(
             "step {} holds parameters this build cannot read ({e})",
@@ -759,7 +758,7 @@ fn rerun(store: &mut Store, l: &Later, current: &Version, opts: &RevertOptions) 
         Some((_, (_, other))) => crate::plan::with_other_input(&op, other.label()),
         None => op,
     };
-    let aopts = ApplyOptions {
+    Ok(ApplyOptions {
         op,
         reason: l
             .step
@@ -771,15 +770,53 @@ fn rerun(store: &mut Store, l: &Later, current: &Version, opts: &RevertOptions) 
         map_table_file: None,
         replay: None,
         repeats: Some(l.step.id),
-    };
-    apply::compute(store, current.clone(), &aopts).map_err(|e| {
-        Error::from(ErrorKind::Data(format!(
-            "step {} ({} that made {}) cannot be applied again once the reverted step is gone: {e}; nothing was recorded",
-            l.step.id,
-            l.step.operation.as_deref().unwrap_or("step"),
-            l.output.label()
-        )))
     })
+}
+
+fn cannot_apply_again(l: &Later, e: Error) -> Error {
+    Error::from(ErrorKind::Data(format!(
+        "step {} ({} that made {}) cannot be applied again once the reverted step is gone: {e}; nothing was recorded",
+        l.step.id,
+        l.step.operation.as_deref().unwrap_or("step"),
+        l.output.label()
+    )))
+}
+
+/// Applies a later built-in step again on `current` (a pending version or a stored one).
+fn rerun(store: &mut Store, l: &Later, current: &Version, opts: &RevertOptions) -> Result<Pending> {
+    let aopts = later_options(store, l, current, opts)?;
+    apply::compute(store, current.clone(), &aopts).map_err(|e| cannot_apply_again(l, e))
+}
+
+/// The stretch of later built-in steps from the first of `later` that can run in one pass
+/// (`apply::fusable`), computed on `current`; empty when fewer than two can, or when the pass
+/// cannot finish (the steps are then applied one at a time, which fail where and as they
+/// would).
+fn fuse_ahead(
+    store: &Store,
+    later: &[Later],
+    current: &Version,
+    opts: &RevertOptions,
+) -> VecDeque<apply::Computed> {
+    let mut aopts = Vec::new();
+    for (k, l) in later.iter().enumerate() {
+        if l.step.kind != StepKind::Operation || l.main != 0 {
+            break;
+        }
+        let Ok(o) = later_options(store, l, current, opts) else {
+            break;
+        };
+        if !apply::fusable(&o.op, k == 0) {
+            break;
+        }
+        aopts.push(o);
+    }
+    if aopts.len() < 2 {
+        return VecDeque::new();
+    }
+    apply::compute_chain(store, current, &aopts)
+        .map(VecDeque::from)
+        .unwrap_or_default()
 }
 
 /// One conflict a patch met.
@@ -930,7 +967,9 @@ fn patch(
             if !carried.get(o as usize).copied().unwrap_or(false) {
                 continue; // an added row: taken whole below
             }
-            let Some(i) = through(&runs, o) else { continue };
+            let Some(i) = crate::model::input_of(&runs, o) else {
+                continue;
+            };
             let Some(origin) = old_origin.get(i as usize) else {
                 continue;
             };
@@ -1005,7 +1044,7 @@ fn patch(
     let mut added: Vec<(Option<u64>, u64)> = Vec::new(); // (after current row, out row)
     for o in 0..l.output.n_rows {
         if carried[o as usize] {
-            let origin = through(&runs, o).and_then(|i| old_origin.get(i as usize));
+            let origin = crate::model::input_of(&runs, o).and_then(|i| old_origin.get(i as usize));
             if let Some(&w) = origin.and_then(|g| where_new.get(g)) {
                 anchor = Some(w);
             }
@@ -1032,7 +1071,7 @@ fn patch(
     let mut row_values: HashMap<u64, Vec<Vec<u8>>> = HashMap::new();
     // How often each row of the step's own version occurs there.
     let mut own_copies: HashMap<u64, u64> = HashMap::new();
-    apply::each_version_row(store, &l.output, |row, rec| {
+    store.objects.each_row(&l.output, |row, rec| {
         let fields: Vec<&[u8]> = (0..rec.len()).map(|c| rec.field(c)).collect();
         *own_copies.entry(row_hash(&fields)).or_default() += 1;
         for &(oc, w, c) in wanted_at.get(&row).into_iter().flatten() {
@@ -1061,7 +1100,7 @@ fn patch(
         .map_err(store_io)?;
     let mut changes = ChangeLog::new(current.header.len());
     let mut drops = DropLog::default();
-    let mut new_runs: Vec<RowRun> = Vec::new();
+    let mut new_runs = crate::model::RowMap::default();
     let mut origins: Vec<Origin> = Vec::new();
     let mut out_row = 0u64;
     let reason = format!(
@@ -1102,20 +1141,11 @@ fn patch(
         &mut row_hashes,
         &mut touched,
     )?;
-    apply::each_version_row(store, current, |row, rec| {
+    store.objects.each_row(current, |row, rec| {
         if drop_rows.contains_key(&row) {
             drops.push(row, &reason, None);
         } else {
-            match new_runs.last_mut() {
-                Some(r) if r.in_start + r.len == row && r.out_start + r.len == out_row => {
-                    r.len += 1
-                }
-                _ => new_runs.push(RowRun {
-                    out_start: out_row,
-                    in_start: row,
-                    len: 1,
-                }),
-            }
+            new_runs.push(out_row, row);
             let mut patched = false;
             let fields: Vec<&[u8]> = (0..rec.len())
                 .map(|c| match patches.get(&(row, c)) {
@@ -1194,7 +1224,7 @@ fn patch(
     }
     let n_changed = changes.len();
     let prov = Provenance {
-        runs: new_runs,
+        runs: new_runs.into_runs(),
         changes,
         drops,
         notes: Vec::new(),
@@ -1207,7 +1237,7 @@ fn patch(
         "as": "cell_patches",
         "from": l.output.label(),
     });
-    let p = apply::persist(
+    let p = recording::persist(
         store,
         current,
         &current.dataset,

@@ -177,7 +177,7 @@ fn find_by_key(store: &Store, v: &Version, pairs: &[(String, String)]) -> Result
         })
         .collect::<Result<_>>()?;
     let mut found = Vec::new();
-    crate::ops::apply::each_version_row(store, v, |row, r| {
+    store.objects.each_row(v, |row, r| {
         if cols
             .iter()
             .zip(pairs)
@@ -374,9 +374,8 @@ fn follow(
         let mut from: Option<(Version, u64)> = None;
         for (_, input) in &inputs {
             let runs = crate::provenance::row_runs(store, &v, input.id)?;
-            let i = runs.partition_point(|run| run.out_start + run.len <= r);
-            if let Some(run) = runs.get(i).filter(|run| run.out_start <= r) {
-                from = Some((input.clone(), run.in_start + (r - run.out_start)));
+            if let Some(row) = crate::model::input_of(&runs, r) {
+                from = Some((input.clone(), row));
                 break;
             }
         }

@@ -119,6 +119,7 @@ const LAYERS: &[(&str, &[&str])] = &[
         "record",
         &[
             "ops::apply",
+            "recording",
             "intake",
             "convert",
             "inferred",
@@ -138,21 +139,6 @@ const LAYERS: &[(&str, &[&str])] = &[
 
 /// Imports that go against the layers, each with its reason.
 const EXCEPTIONS: &[(&str, &str, &str)] = &[
-    (
-        "checks",
-        "ops::apply",
-        "reading every row of a stored version, with its hash checked, has one home (ops::apply::each_version_row); rules read versions through it",
-    ),
-    (
-        "provenance",
-        "ops::apply",
-        "reading cell values back from a step's versions goes through the one reader of stored rows (ops::apply::each_version_row)",
-    ),
-    (
-        "table::write",
-        "store",
-        "the canonical writer streams each version straight into an object (ObjectWriter), so that the CSV, its row index and its profile come from one pass over the rows",
-    ),
     (
         "ops::append",
         "intake",

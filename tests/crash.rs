@@ -5,6 +5,12 @@
 //! either the complete new version and its step or none of it, and running the same command
 //! again succeeds and ends with the same bytes as the unkilled run.
 //!
+//! Every step of both plans works row by row, so the plans run fused: one pass computes every
+//! step's output, then the steps are recorded one transaction each. These are the kill tests of
+//! a fused run: a kill during the pass leaves nothing recorded, a kill while the steps are
+//! recorded keeps the first k whole (the unkilled run is checked to have been fused: every
+//! step started before the first one ended).
+//!
 //! The kill lands wherever the child happens to be at that delay, so the stages hit vary with
 //! the machine's load; the delays themselves, and the checks, do not. The test prints how many
 //! kills found nothing recorded, how many a complete result, and how many came after the
@@ -287,6 +293,7 @@ fn plan_run_killed_at_fifty_moments_keeps_whole_steps_only() {
         vs.iter().find(|v| v["seq"] == seq as u64).unwrap()["hash"].clone()
     };
     let final_hash = by_seq(&want, 1 + PLAN_STEPS);
+    assert_fused(reference.path(), PLAN_STEPS);
     let audit_before = assert_intact(base.path(), "base")["audit_entries_checked"]
         .as_u64()
         .unwrap();
@@ -358,6 +365,29 @@ fn plan_run_killed_at_fifty_moments_keeps_whole_steps_only() {
         tally.partial_plan > 0,
         "no kill landed between steps: {tally:?}"
     );
+}
+
+/// The last `n` operation steps of the store in `dir` were computed in one pass: each started
+/// before the first of them ended (one at a time, each starts after the one before ended).
+fn assert_fused(dir: &Path, n: usize) {
+    let db = rusqlite::Connection::open(dir.join("sluice-store").join("lineage.db")).unwrap();
+    let mut q = db
+        .prepare("SELECT started_at, ended_at FROM steps WHERE kind = 'operation' ORDER BY id")
+        .unwrap();
+    let times: Vec<(String, String)> = q
+        .query_map([], |r| Ok((r.get(0)?, r.get(1)?)))
+        .unwrap()
+        .map(|r| r.unwrap())
+        .collect();
+    let last = &times[times.len() - n..];
+    for (k, (started, _)) in last.iter().enumerate() {
+        assert!(
+            started <= &last[0].1,
+            "step {} of the run started at {started}, after the first ended at {}: the run was not fused",
+            k + 1,
+            last[0].1
+        );
+    }
 }
 
 /// Runs `args` in fresh copies of `base`, each stopped (`stop`: the process ends at once, as

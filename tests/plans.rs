@@ -807,3 +807,197 @@ for (shop, month), (n, parts, hours, n_hours) in groups.items():
     assert_contains(&why, "a cancelled order is work not done");
     assert_contains(&why, "(agrees)");
 }
+
+/// The row-by-row operations a fused run chains, and the table operations that end a fused
+/// stretch, as plan steps on `orders` (with the tables `shops`, `regions` and `extra`).
+fn step_pool() -> Vec<Value> {
+    let step = |clean: &str, settings: Value| {
+        let mut s = json!({"dataset": "orders", "clean": clean, "reason": "property"});
+        if !settings.is_null() {
+            s["settings"] = settings;
+        }
+        s
+    };
+    vec![
+        step("trim", Value::Null),
+        step("trim", json!({"columns": ["customer"], "inner": true})),
+        step("case", json!({"columns": ["shop"], "to": "lower"})),
+        step("case", json!({"columns": ["customer"], "to": "title"})),
+        step(
+            "replace",
+            json!({"columns": ["opened"], "find": "-", "with": "/"}),
+        ),
+        step(
+            "replace",
+            json!({"columns": ["parts"], "find": "^\\$", "with": "", "regex": true}),
+        ),
+        step(
+            "map",
+            json!({"columns": ["shop"], "table": "shops", "unmatched": "keep"}),
+        ),
+        step(
+            "lookup",
+            json!({"table": "regions", "on": ["shop"], "take": ["region"]}),
+        ),
+        step("fill", json!({"columns": ["parts"], "value": "0"})),
+        step("fill", json!({"columns": ["note"], "from": "customer"})),
+        step("number", json!({"columns": ["parts"], "on_error": "keep"})),
+        step(
+            "date",
+            json!({"columns": ["opened"], "order": "dmy", "on_error": "blank"}),
+        ),
+        step(
+            "split",
+            json!({"column": "customer", "on": " ", "into": ["given", "family"]}),
+        ),
+        step(
+            "combine",
+            json!({"columns": ["shop", "status"], "with": "-", "into": "tag"}),
+        ),
+        step(
+            "extract",
+            json!({"column": "opened", "into": "year", "from": 1, "len": 4}),
+        ),
+        step(
+            "rename",
+            json!({"columns": [{"from": "note", "to": "remark"}]}),
+        ),
+        step(
+            "select",
+            json!({"columns": ["id", "customer", "shop", "opened", "parts", "status", "note"]}),
+        ),
+        step("keep", json!({"predicate": "status = 'done'"})),
+        step("drop", json!({"predicate": "status = 'test'"})),
+        step("dedupe", json!({"key": ["id"]})),
+        step("dedupe", json!({"key": ["customer"], "keep": "last"})),
+        step("dedupe", Value::Null),
+        step(
+            "sort",
+            json!({"by": [{"column": "id", "direction": "descending"}]}),
+        ),
+        step("append", json!({"other": "extra"})),
+        {
+            let mut s = step(
+                "summarize",
+                json!({"by": ["shop"], "aggregates": [{"func": "max", "column": "id"}]}),
+            );
+            s["save_as"] = json!("totals");
+            s
+        },
+    ]
+}
+
+/// A small work-order table with stray spaces, mixed case, amounts in several forms, dates in
+/// two orders, blanks, repeated ids and rows.
+fn orders_csv(rows: &[(u8, u8, u8, u8, u8)]) -> String {
+    let customers = ["Ada Lovel", " ada lovel", "Bo  Quint ", "", "cy ren"];
+    let shops = ["north", "South", " east", "west", "north"];
+    let opened = ["2026-07-01", "03/08/2026", "31-07-2026", "", "not a date"];
+    let parts = ["$12.50", "1,204.50", "", "(3.00)", "abc"];
+    let status = ["done", "test", "open", "done", ""];
+    let mut out = String::from("id,customer,shop,opened,parts,status,note\n");
+    for (i, (c, s, o, p, st)) in rows.iter().enumerate() {
+        let id = i % 7;
+        out.push_str(&format!(
+            "{id},{},{},{},\"{}\",{},\n",
+            customers[*c as usize % 5],
+            shops[*s as usize % 5],
+            opened[*o as usize % 5],
+            parts[*p as usize % 5],
+            status[*st as usize % 5]
+        ));
+    }
+    out
+}
+
+/// Every version of the store with the step that made it: dataset, number, hashes of the
+/// bytes and row index, rows, header, and for operation steps the operation, parameters,
+/// provenance object, rows in and out, column sources and cell notes.
+fn recorded_versions(s: &Sandbox) -> Vec<String> {
+    let db = rusqlite::Connection::open(s.path().join("sluice-store").join("lineage.db")).unwrap();
+    let mut q = db
+        .prepare(
+            "SELECT d.name, v.seq, v.hash, v.row_index, v.n_rows, v.header, s.kind, \
+                    COALESCE(s.operation, ''), CASE WHEN s.kind = 'operation' THEN s.params ELSE '' END, \
+                    COALESCE(s.provenance, ''), COALESCE(s.rows_in, -1), COALESCE(s.rows_out, -1), \
+                    (SELECT COALESCE(GROUP_CONCAT(t, ';'), '') FROM (SELECT n.row_idx || ':' || \
+                       n.column_name || ':' || n.note AS t FROM cell_notes n \
+                       WHERE n.output_id = v.id ORDER BY n.row_idx, n.column_name)), \
+                    (SELECT COALESCE(GROUP_CONCAT(t, ';'), '') FROM (SELECT c.output_column || '<' || \
+                       c.input_column AS t FROM column_sources c WHERE c.output_id = v.id ORDER BY t)) \
+             FROM versions v JOIN datasets d ON d.id = v.dataset_id JOIN steps s ON s.id = v.step_id \
+             ORDER BY d.name, v.seq",
+        )
+        .unwrap();
+    let rows = q
+        .query_map([], |r| {
+            let mut cells = Vec::new();
+            for i in 0..14 {
+                let v: rusqlite::types::Value = r.get(i)?;
+                cells.push(format!("{v:?}"));
+            }
+            Ok(cells.join(" | "))
+        })
+        .unwrap();
+    rows.map(|r| r.unwrap()).collect()
+}
+
+proptest::proptest! {
+    #![proptest_config(proptest::prelude::ProptestConfig::with_cases(12))]
+
+    /// A plan's stretches of row-by-row steps run fused in one pass; every step must get the
+    /// same version bytes, row index and provenance as when each step runs alone (a plan of one
+    /// step at a time), and a run that stops must stop at the same step, keeping the same
+    /// steps before it.
+    #[test]
+    fn a_fused_run_records_what_one_step_at_a_time_records(
+        rows in proptest::collection::vec((0u8..5, 0u8..5, 0u8..5, 0u8..5, 0u8..5), 0..24),
+        picks in proptest::collection::vec(0usize..25, 2..9),
+    ) {
+        let pool = step_pool();
+        let steps: Vec<Value> = picks.iter().map(|&i| pool[i].clone()).collect();
+        let data = orders_csv(&rows);
+        let tables = [
+            ("shops.csv", "from,to\nnorth,North Yard\nSouth,South Yard\n east,East Yard\n"),
+            ("regions.csv", "shop,region\nnorth,Upland\nNorth Yard,Upland\nwest,Coast\n"),
+            ("extra.csv", "id,customer,shop,opened,parts,status,note\n90,Dee Ash,west,2026-07-02,4.00,done,late\n91,,north,,,open,\n"),
+        ];
+        let fused = Sandbox::with_store();
+        let alone = Sandbox::with_store();
+        for s in [&fused, &alone] {
+            s.file("orders.csv", &data);
+            for (name, text) in tables {
+                s.file(name, text);
+                s.ok(&["receive", name, "--as", name.trim_end_matches(".csv"), "--why", "tables"]);
+            }
+        }
+        alone.ok(&["receive", "orders.csv", "--as", "orders", "--why", "raw input of a plan"]);
+        let plan = json!({"sluice_plan": 2, "sources": [{"dataset": "orders", "file": "orders.csv"}], "steps": steps});
+        fused.file("plan.json", plan.to_string());
+        let whole = fused.run(&["run", "plan.json"]);
+        let mut stopped_alone = None;
+        for (i, step) in steps.iter().enumerate() {
+            let one = json!({"sluice_plan": 2, "sources": [], "steps": [step]});
+            alone.file("one.json", one.to_string());
+            let r = alone.run(&["run", "one.json"]);
+            if r.code != 0 {
+                stopped_alone = Some((i, r.code, r.stderr));
+                break;
+            }
+        }
+        let v_fused = recorded_versions(&fused);
+        let v_alone = recorded_versions(&alone);
+        proptest::prop_assert_eq!(&v_fused, &v_alone, "plan: {}\nfused run: {}", plan, whole.stderr);
+        match stopped_alone {
+            None => proptest::prop_assert_eq!(whole.code, 0, "{}", whole.stderr),
+            Some((i, code, why)) => {
+                proptest::prop_assert_eq!(whole.code, code, "{}", whole.stderr);
+                let at = format!("plan entry {} (", i + 1);
+                proptest::prop_assert!(whole.stderr.contains(&at), "the fused run stopped elsewhere than entry {}: {}", i + 1, whole.stderr);
+                // The same reason, from the same step.
+                let cause = why.split("caused by:").nth(1).unwrap_or(&why).trim();
+                proptest::prop_assert!(whole.stderr.contains(cause), "{}\nagainst\n{}", whole.stderr, why);
+            }
+        }
+    }
+}

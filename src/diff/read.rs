@@ -1,5 +1,5 @@
-//! Reading the two versions for a diff: every row of a version's object (re-hashed as it is
-//! read, so a damaged object stops the diff), the row fingerprints of its row index object, and
+//! Reading the two versions for a diff: every row of a version's object (through the one
+//! reader of stored rows, [`crate::table::stored`]), rows picked by offset ([`RawRows`]), the row fingerprints of its row index object, and
 //! [`RowStore`], a compact owned store of the few rows a diff needs to look at again.
 
 use std::io::Read;
@@ -11,7 +11,7 @@ use crate::model::Version;
 use crate::store::objects::Objects;
 use crate::table::parse::Parser;
 use crate::table::rowindex::{ENTRY_LEN, FORMAT_VERSION, HEADER_LEN, MAGIC};
-use crate::table::{for_each_record, RawRecord, ReadSettings};
+use crate::table::RawRecord;
 
 fn parse_hash(hex: &str) -> Result<Hash> {
     hex.parse()
@@ -53,30 +53,9 @@ fn check_hash(expected: &Hash, hasher: &blake3::Hasher) -> Result<()> {
 pub fn each_row(
     objects: &Objects,
     v: &Version,
-    mut f: impl FnMut(u64, RawRecord<'_>) -> Result<()>,
+    f: impl FnMut(u64, RawRecord<'_>) -> Result<()>,
 ) -> Result<()> {
-    let hash = parse_hash(&v.hash)?;
-    let mut reader = Hashing {
-        inner: objects.open_raw(&hash)?,
-        hasher: blake3::Hasher::new(),
-        progress: Some(crate::progress::Task::begin(
-            || format!("comparing {}", v.label()),
-            Some(v.n_bytes),
-            crate::progress::Unit::Bytes,
-        )),
-    };
-    let settings = ReadSettings::for_dialect(&v.dialect)?;
-    let mut header_seen = !v.dialect.has_header;
-    let mut row = 0u64;
-    for_each_record(Path::new(&v.label()), &mut reader, &settings, |r| {
-        if !header_seen {
-            header_seen = true;
-            return Ok(());
-        }
-        row += 1;
-        f(row - 1, r)
-    })?;
-    check_hash(&hash, &reader.hasher)
+    objects.each_row_doing(v, "comparing", f)
 }
 
 /// The fingerprint of every row of `v`, from its row index object (checked against its hash

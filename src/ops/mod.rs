@@ -10,6 +10,7 @@ pub mod decimal;
 pub mod derive;
 pub mod number;
 pub mod predicate;
+pub mod rowwise;
 pub mod sort;
 pub mod summarize;
 pub mod text;

@@ -71,19 +71,11 @@ pub fn permutation(keys: &[Vec<Vec<u8>>], directions: &[Direction]) -> Vec<u64> 
 
 /// The row map of a permutation: runs of output rows that are consecutive input rows.
 pub fn runs_of(order: &[u64]) -> Vec<RowRun> {
-    let mut runs: Vec<RowRun> = Vec::new();
+    let mut map = crate::model::RowMap::default();
     for (out, &input) in order.iter().enumerate() {
-        let out = out as u64;
-        match runs.last_mut() {
-            Some(r) if r.in_start + r.len == input && r.out_start + r.len == out => r.len += 1,
-            _ => runs.push(RowRun {
-                out_start: out,
-                in_start: input,
-                len: 1,
-            }),
-        }
+        map.push(out as u64, input);
     }
-    runs
+    map.into_runs()
 }
 
 pub(super) fn run(

@@ -18,7 +18,6 @@ use std::collections::HashMap;
 
 use crate::error::{ErrorKind, Result};
 use crate::model::Version;
-use crate::ops::apply::each_version_row;
 use crate::provenance;
 use crate::store::Store;
 
@@ -44,7 +43,7 @@ pub(super) fn reapply(
     output: &Version,
 ) -> Result<Reapplied> {
     let mut before: Vec<Vec<String>> = Vec::with_capacity(input.n_rows as usize);
-    each_version_row(store, input, |_, rec| {
+    store.objects.each_row(input, |_, rec| {
         before.push(rec.iter().map(text).collect());
         Ok(())
     })?;
@@ -123,7 +122,7 @@ pub(super) fn reapply(
     let mut by_column = vec![0u64; output.header.len()];
     let mut rows_changed = 0u64;
     let mut examples: Vec<Example> = Vec::new();
-    each_version_row(store, output, |o, rec| {
+    store.objects.each_row(output, |o, rec| {
         let Some(Some(i)) = source.get(o as usize) else {
             return Ok(()); // added by hand: taken whole from the recorded output
         };

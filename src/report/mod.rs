@@ -777,7 +777,7 @@ fn excluded_rows(store: &Store, input: &Version, drops: &[Drop]) -> Result<Vec<E
     let mut named: Vec<Vec<(String, String)>> = vec![Vec::new(); drops.len()];
     let mut at = 0;
     // The whole version is read (and re-hashed), as every reader of stored rows does.
-    crate::ops::apply::each_version_row(store, input, |row_idx, rec| {
+    store.objects.each_row(input, |row_idx, rec| {
         while at < wanted.len() && wanted[at].0 == row_idx {
             named[wanted[at].1] = cols
                 .iter()
@@ -832,7 +832,7 @@ fn figures_of(store: &Store, target: &Version, made_by: Option<&StepBehind>) -> 
         DATA_FIRST_ROWS
     };
     let mut rows: Vec<Vec<String>> = Vec::new();
-    crate::ops::apply::each_version_row(store, target, |_, rec| {
+    store.objects.each_row(target, |_, rec| {
         if rows.len() >= limit {
             return Ok(());
         }

@@ -10,7 +10,9 @@ pub mod audit;
 pub mod lineage;
 pub mod objects;
 pub mod reclaim;
+pub mod rows;
 pub mod segments;
+pub mod version_writer;
 
 use std::fs;
 use std::path::{Path, PathBuf};

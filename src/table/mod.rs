@@ -7,6 +7,7 @@ pub mod dialect;
 pub mod parse;
 pub mod profile;
 pub mod rowindex;
+pub mod stored;
 pub mod stream;
 pub mod write;
 
