@@ -258,6 +258,13 @@ pub fn build(target: &Version, steps: &[StepBehind]) -> Document {
         }
     };
 
+    // When each version behind the target was generated (its step's end), so that a usage of a
+    // version still being made is not given a time before that (see below).
+    let generated_at: std::collections::HashMap<i64, &str> = steps
+        .iter()
+        .flat_map(|sb| sb.outputs.iter().map(|v| (v.id, sb.step.ended_at.as_str())))
+        .collect();
+
     for sb in steps {
         let s = &sb.step;
         let act = step_id(s.id);
@@ -347,15 +354,29 @@ pub fn build(target: &Version, steps: &[StepBehind]) -> Document {
         let mut usages: Vec<(String, String)> = Vec::new();
         for (i, (role, v)) in sb.inputs.iter().enumerate() {
             let id = q(&format!("use_{}_{}", s.id, i + 1));
+            // A step run in one pass with the step before it reads that step's rows as they are
+            // made, so it starts before its input is whole. PROV dates a usage at its beginning
+            // and requires it to follow the generation; rather than give a time that is not
+            // true, such a usage has no time and says that the rows were streamed.
+            let streamed = generated_at
+                .get(&v.id)
+                .is_some_and(|made| s.started_at.as_str() < *made);
+            let mut attributes = vec![qname("prov:role", q(&local_name(role)))];
+            if streamed {
+                attributes.push(text(
+                    &q("usage"),
+                    "rows read as the input was made, in one pass",
+                ));
+            }
             relations.push(Relation {
                 kind: RelationKind::Used,
                 id: id.clone(),
                 arguments: vec![
                     Some(act.clone()),
                     Some(version_id(v)),
-                    Some(s.started_at.clone()),
+                    (!streamed).then(|| s.started_at.clone()),
                 ],
-                attributes: vec![qname("prov:role", q(&local_name(role)))],
+                attributes,
             });
             usages.push((id, version_id(v)));
         }
