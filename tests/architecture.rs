@@ -112,7 +112,7 @@ const LAYERS: &[(&str, &[&str])] = &[
         "foundation",
         &["error", "model", "hash", "clock", "progress", "code", "lib"],
     ),
-    ("read", &["table", "sheets", "jsonl"]),
+    ("read", &["table", "sheets", "jsonl", "columnar"]),
     ("store", &["store", "refs", "agent"]),
     ("operate", &["ops", "diff", "checks", "provenance"]),
     (
@@ -129,7 +129,15 @@ const LAYERS: &[(&str, &[&str])] = &[
     (
         "query",
         &[
-            "history", "trace", "explain", "graph", "replay", "verify", "export", "revert",
+            "history",
+            "trace",
+            "explain",
+            "graph",
+            "replay",
+            "verify",
+            "export",
+            "revert",
+            "columnar::write",
         ],
     ),
     ("document", &["report", "prov", "demo"]),
