@@ -131,7 +131,17 @@ const ROWS_PER_GROUP: usize = 128 * 1024;
 /// A version's rows as one Arrow record batch, with types from its profile (the whole table
 /// in memory).
 pub fn version_batch(store: &Store, v: &Version) -> Result<RecordBatch> {
-    let profiles = store.lineage.profiles(v.id)?;
+    batch_of(store, v, true)
+}
+
+/// A version's rows as one record batch, typed from the profile or, with `typed` false,
+/// every column as text (blanks still nulls).
+fn batch_of(store: &Store, v: &Version, typed: bool) -> Result<RecordBatch> {
+    let profiles = if typed {
+        store.lineage.profiles(v.id)?
+    } else {
+        Vec::new()
+    };
     let mut cells: Vec<Vec<String>> = vec![Vec::with_capacity(v.n_rows as usize); v.header.len()];
     crate::ops::apply::each_version_row(store, v, |_, r| {
         for (j, f) in r.iter().enumerate() {
@@ -158,6 +168,24 @@ pub fn version_batch(store: &Store, v: &Version) -> Result<RecordBatch> {
     RecordBatch::try_new(schema, arrays).map_err(|e| {
         ErrorKind::Internal(format!("building the table of {}: {e}", v.label())).into()
     })
+}
+
+/// Writes version `v` as an Arrow IPC file into `out`, typed from its profile or, with `typed`
+/// false, every column as text: the form a dataframe library reads without a CSV round trip.
+pub fn write_ipc(
+    store: &Store,
+    v: &Version,
+    typed: bool,
+    out: &mut dyn std::io::Write,
+) -> Result<()> {
+    let batch = batch_of(store, v, typed)?;
+    let internal = |e: &dyn std::fmt::Display| -> Error {
+        ErrorKind::Internal(format!("writing {} as Arrow IPC: {e}", v.label())).into()
+    };
+    let mut w =
+        arrow_ipc::writer::FileWriter::try_new(out, &batch.schema()).map_err(|e| internal(&e))?;
+    w.write(&batch).map_err(|e| internal(&e))?;
+    w.finish().map_err(|e| internal(&e))
 }
 
 /// Writes version `v` as Parquet or Arrow IPC into `out`. The bytes depend only on the

@@ -1,0 +1,163 @@
+"""The Python package against outside references: pandas' and polars' own readers of the same
+bytes, Python's csv module for raw line numbers, and pyarrow for Parquet files. Run by tests/run
+(pytest, in the pinned environment target/pyref, with the package built from this checkout)."""
+import csv
+import io
+import json
+import os
+
+import pandas as pd
+import polars as pl
+import pyarrow as pa
+import pyarrow.parquet as pq
+import pytest
+
+import sluice
+
+RAW = (
+    "ticket,shop,service,labour\n"
+    "7001, Quillby Cycle Mend ,puncture,12.50\n"
+    "7002,Ferrow Spokes,brake bleed,30\n"
+    "7003,annick bike hub,puncture,12.50\n"
+    "7002,Ferrow Spokes,brake bleed,30\n"
+    "7004,\"Quillby, east\",chain,8.75\n"
+)
+
+
+@pytest.fixture
+def store(tmp_path):
+    s = sluice.Store.setup(tmp_path, person="Robin Example", email="robin@example.org")
+    (tmp_path / "repairs.csv").write_text(RAW, encoding="utf-8")
+    s.project = tmp_path
+    return s
+
+
+def pandas_reading(path):
+    # Source: pandas.read_csv, every cell as text, no value taken as missing.
+    return pd.read_csv(path, dtype=str, keep_default_na=False)
+
+
+def test_a_cleaned_version_reads_as_pandas_reads_its_file(store):
+    store.receive(store.project / "repairs.csv", as_="repairs", why="weekly export")
+    store.clean("repairs", "trim", why="the till pads names")
+    store.clean("repairs", "case", why="shop names in title case", columns=["shop"], to="title")
+    store.clean("repairs", "dedupe", why="the export repeats tickets")
+    got = store.read("repairs", typed=False)
+    store.write("repairs", store.project / "out.csv")
+    want = pandas_reading(store.project / "out.csv")
+    pd.testing.assert_frame_equal(got.fillna(""), want)
+    # The cleaning did what the raw text says it should: 5 rows, one repeated.
+    assert len(got) == 4
+    assert list(got["shop"]) == ["Quillby Cycle Mend", "Ferrow Spokes", "Annick Bike Hub",
+                                 "Quillby, East"]
+    # Polars reads the same file to the same values (polars.read_csv, all as text).
+    pl_want = pl.read_csv(store.project / "out.csv", infer_schema=False)
+    pl_got = store.read("repairs", library="polars", typed=False).fill_null("")
+    assert pl_got.equals(pl_want)
+
+
+def test_typed_reading_keeps_decimals_exact(store):
+    store.receive(store.project / "repairs.csv", as_="repairs")
+    t = store.arrow("repairs")
+    assert str(t.schema.field("ticket").type) == "int64"
+    # 12.50 and 30 in one column: decimal128 with scale 2, exact (decimal module).
+    assert str(t.schema.field("labour").type) == "decimal128(4, 2)"
+    import decimal
+    assert t.column("labour").to_pylist()[1] == decimal.Decimal("30.00")
+
+
+@pytest.mark.parametrize("library", ["pandas", "polars"])
+def test_frames_in_and_out(store, library):
+    data = {"shop": ["Quillby Cycle Mend", "Ferrow Spokes", None],
+            "bikes": [3, 12, 7], "paid": ["12.50", "3.10", ""]}
+    frame = pd.DataFrame(data) if library == "pandas" else pl.DataFrame(data)
+    r = store.receive(frame, as_="fleet", why="from a notebook")
+    assert r.recorded and r.version["n_rows"] == 3
+    back = store.read("fleet", library=library, typed=False)
+    if library == "pandas":
+        assert list(back["shop"].fillna("")) == ["Quillby Cycle Mend", "Ferrow Spokes", ""]
+        assert list(back["bikes"]) == ["3", "12", "7"]
+    else:
+        assert back["shop"].fill_null("").to_list() == ["Quillby Cycle Mend", "Ferrow Spokes", ""]
+        assert back["bikes"].to_list() == ["3", "12", "7"]
+    # The raw object is the Parquet file the frame was written as: pyarrow reads the same rows.
+    assert store.verify()["intact"]
+    # Receiving the same frame again records nothing.
+    assert not store.receive(frame, as_="fleet").recorded
+
+
+def test_a_trail_ends_at_the_raw_line(store):
+    store.receive(store.project / "repairs.csv", as_="repairs", why="weekly export")
+    store.clean("repairs", "trim", why="pads")
+    store.clean("repairs", "dedupe", why="repeats")
+    trail = store.trace("repairs", row=4, column="shop")
+    assert trail["value"] == "Quillby, east"
+    # Source: Python's csv module, which gives the line each record starts on.
+    reader = csv.reader(io.StringIO(RAW))
+    lines = {}
+    for row in reader:
+        lines[row[0]] = reader.line_num
+    end = json.dumps(trail["end"])
+    assert '"line": %d' % lines["7004"] in end
+    assert "Quillby, east" in trail._repr_html_()
+
+
+def test_compare_explain_report_and_timeline(store):
+    store.receive(store.project / "repairs.csv", as_="repairs")
+    store.clean("repairs", "trim", why="pads")
+    c = store.compare("repairs:v1", "repairs:v2")
+    assert c["matched_by"]["by"] == "lineage"
+    assert c["rows_changed"] == 1
+    assert c["cells"] == [{"row_a": 1, "row_b": 1, "column": "shop",
+                           "old": " Quillby Cycle Mend ", "new": "Quillby Cycle Mend"}]
+    assert "Quillby Cycle Mend" in c._repr_html_()
+    store.clean("repairs", "summarize", why="labour per shop", by=["shop"],
+                aggregates=[{"column": "labour", "func": "sum"}], save_as="by_shop")
+    total = store.version("by_shop")["header"][-1]
+    e = store.explain("by_shop", row=1, column=total)
+    assert e["value"] == "12.50"
+    rep = store.report("by_shop")
+    assert len(rep["steps"]) == 3
+    assert [t["step"]["id"] for t in store.timeline("repairs")] == [1, 2, 3]
+    v = store.version("by_shop")
+    assert v.label == "by_shop:v1" and "by_shop:v1" in v._repr_html_()
+
+
+def test_errors_carry_the_engine_message_and_record_nothing(store):
+    store.receive(store.project / "repairs.csv", as_="repairs")
+    before = len(store.timeline())
+    with pytest.raises(sluice.InputError) as e:
+        store.clean("repairs", "trim", why="x", columns=["nope"])
+    assert 'column "nope"' in e.value.message
+    (store.project / "ragged.csv").write_text("a,b\n1,2\n3\n", encoding="utf-8")
+    with pytest.raises(sluice.InputError) as e:
+        store.receive(store.project / "ragged.csv", as_="ragged")
+    assert "expected 2 fields, found 1" in e.value.message
+    assert e.value.position["line"] == 3
+    assert len(store.timeline()) == before
+    assert store.verify()["intact"]
+
+
+def test_a_plan_runs(store):
+    plan = {"sluice_plan": 2,
+            "sources": [{"dataset": "repairs", "file": "repairs.csv"}],
+            "steps": [{"dataset": "repairs", "clean": "trim", "reason": "pads"},
+                      {"dataset": "repairs", "clean": "dedupe", "reason": "repeats"}]}
+    (store.project / "plan.json").write_text(json.dumps(plan), encoding="utf-8")
+    out = store.run(store.project / "plan.json")
+    assert out["ok"]
+    assert [d["done"] for d in out["done"]] == ["received", "cleaned", "cleaned"]
+    assert store.version("repairs")["n_rows"] == 4
+
+
+def test_parquet_from_pyarrow_reads_back_to_its_values(store):
+    # Source: pyarrow writes the file and reads it back; the package gives the same values.
+    t = pa.table({"till_id": pa.array([1, 2, 3], pa.int64()),
+                  "shop": pa.array(["Quillby", None, "Ferrow"])})
+    pq.write_table(t, store.project / "till.parquet")
+    store.receive(store.project / "till.parquet", as_="till")
+    back = store.arrow("till")
+    assert back.column("till_id").to_pylist() == [1, 2, 3]
+    assert back.column("shop").to_pylist() == ["Quillby", None, "Ferrow"]
+    store.write("till", store.project / "till_out.parquet", format="parquet")
+    assert pq.read_table(store.project / "till_out.parquet").equals(back)
