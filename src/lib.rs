@@ -54,6 +54,7 @@ pub mod history;
 pub mod inferred;
 pub mod intake;
 pub mod jsonl;
+pub mod labelled;
 pub mod model;
 pub mod ops;
 pub mod plan;

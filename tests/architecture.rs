@@ -125,6 +125,7 @@ const LAYERS: &[(&str, &[&str])] = &[
             "intake",
             "convert",
             "inferred",
+            "labelled",
             "exec",
             "plan",
         ],

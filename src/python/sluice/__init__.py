@@ -12,6 +12,7 @@ the fields the command's ``--json`` output holds.
     store.trace("till", row=3, column="shop")
 """
 import getpass
+import inspect
 import html
 import json
 import os
@@ -138,6 +139,36 @@ class Comparison(Record):
                        % (html.escape(self["a"]), html.escape(self["b"]), cells))
 
 
+LABEL = "sluice_row"
+
+
+def _source_of(frame):
+    try:
+        return frame.attrs["sluice_version"]
+    except (AttributeError, KeyError):
+        raise TypeError("input: give the version reference the frame was read from "
+                        "(e.g. \"till:v2\")") from None
+
+
+def _labels_of(frame):
+    """(labels or None, where they came from, the frame as an Arrow table without them)."""
+    mod = type(frame).__module__.split(".")[0]
+    if mod == "polars":
+        if LABEL in frame.columns:
+            labels = frame[LABEL].to_list()
+            return ([int(x) for x in labels] if None not in labels else None,
+                    "column " + LABEL, frame.drop(LABEL).to_arrow())
+        return None, "", frame.to_arrow()
+    if mod == "pandas":
+        import pandas
+        table = pa.Table.from_pandas(frame, preserve_index=False)
+        idx = frame.index
+        if idx.name == LABEL and pandas.api.types.is_integer_dtype(idx.dtype):
+            return [int(x) for x in idx], "pandas index " + LABEL, table
+        return None, "", table
+    return None, "", _to_arrow(frame)
+
+
 def _who(person, email):
     """Who acts: the given person, else SLUICE_PERSON, else the operating system user (the
     same order as the command line, without its store setting)."""
@@ -213,6 +244,36 @@ class Store:
             [(k, os.fspath(v)) for k, v in (inputs or {}).items()],
             self.person, self.email)))
 
+    def record(self, input, output, why, as_=None):
+        """Records the frame ``output`` that dataframe code made from ``input`` (a version
+        reference, or a frame ``read`` gave) as the next version of ``as_`` (default: the
+        input's dataset), with the calling file and line, the source of the calling function
+        or cell, and the git state of its folder.
+
+        The row map is exact when ``output`` kept the row labels ``read`` put on the rows (a
+        pandas index named ``sluice_row``, or a ``sluice_row`` column, which is not recorded as
+        data): every output row is paired with the input row its label names, and cells are
+        compared by column name. When the labels were lost (an index reset, the column
+        dropped) or are not unique, the lineage is inferred by a diff, and the result's
+        ``lineage`` and ``fallback`` say so."""
+        reference = input if isinstance(input, str) else _source_of(input)
+        labels, labels_from, table = _labels_of(output)
+        frame = inspect.stack()[1]
+        try:
+            source = inspect.getsource(frame.frame.f_code)
+        except (OSError, TypeError):
+            source = None
+        dataset = as_ or self.version(reference)["dataset"]
+        with tempfile.TemporaryDirectory(prefix="sluice-frame-") as tmp:
+            path = os.path.join(tmp, "%s.parquet" % dataset)
+            pq.write_table(table, path)
+            out = json.loads(_call(
+                "record_frame", self.dir, path, reference, dataset, why, self.person,
+                self.email, labels, labels_from, os.path.abspath(frame.filename),
+                frame.lineno, source))
+        out["version"] = Version(out["version"])
+        return Record(out)
+
     # Reading ---------------------------------------------------------------------------
 
     def arrow(self, reference, typed=True):
@@ -222,13 +283,19 @@ class Store:
         return ipc.open_file(pa.BufferReader(data)).read_all()
 
     def read(self, reference, library="pandas", typed=True):
-        """A version as a pandas (default) or polars DataFrame."""
+        """A version as a pandas (default) or polars DataFrame. Its rows carry their labels
+        for ``record``: a pandas index named ``sluice_row``, a polars column ``sluice_row``
+        (0-based rows of the version)."""
         table = self.arrow(reference, typed)
+        label = self.version(reference).label
         if library == "pandas":
-            return table.to_pandas()
+            frame = table.to_pandas()
+            frame.index.name = LABEL
+            frame.attrs["sluice_version"] = label
+            return frame
         if library == "polars":
             import polars
-            return polars.from_arrow(table)
+            return polars.from_arrow(table).with_row_index(LABEL)
         if library == "arrow":
             return table
         raise ValueError("library: expected \"pandas\", \"polars\" or \"arrow\"")

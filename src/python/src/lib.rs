@@ -122,6 +122,76 @@ fn receive(
     })
 }
 
+/// Records the file at `path` (a frame the caller's code made) as the successor of `from`,
+/// with an exact row map from `labels` (0-based input rows) when they allow it.
+#[pyfunction]
+#[pyo3(signature = (dir, path, from_ref, dataset, reason, name, email, labels, labels_from, file, line, source))]
+#[allow(clippy::too_many_arguments)]
+fn record_frame(
+    dir: &str,
+    path: &str,
+    from_ref: &str,
+    dataset: &str,
+    reason: &str,
+    name: &str,
+    email: Option<&str>,
+    labels: Option<Vec<i64>>,
+    labels_from: &str,
+    file: &str,
+    line: u64,
+    source: Option<String>,
+) -> PyResult<String> {
+    use sluice::labelled::{CallingCode, LabelledOptions, LabelledOutcome};
+    let mut store = open(dir)?;
+    let folder = Path::new(file)
+        .parent()
+        .filter(|p| p.is_dir())
+        .map(Path::to_path_buf)
+        .unwrap_or_else(|| PathBuf::from("."));
+    let opts = LabelledOptions {
+        ingest: IngestOptions {
+            dataset: dataset.into(),
+            key: None,
+            reason: Some(reason.into()),
+            delimiter: None,
+            has_header: true,
+            encoding: None,
+            null_tokens: Vec::new(),
+            agent: agent(name, email),
+        },
+        from: from_ref.into(),
+        labels,
+        code: CallingCode {
+            file: file.into(),
+            line,
+            folder,
+            source,
+            labels_from: labels_from.into(),
+        },
+    };
+    let outcome = sluice::labelled::record(&mut store, Path::new(path), &opts).map_err(raise)?;
+    to_json(&match outcome {
+        LabelledOutcome::Recorded {
+            recorded,
+            exact,
+            fallback,
+        } => {
+            let l = &recorded.lineage;
+            json!({
+                "recorded": true, "step": recorded.step_id, "input": recorded.from,
+                "version": recorded.version, "lineage": if exact { "exact" } else { "inferred" },
+                "fallback": fallback,
+                "rows_unchanged": l.n_unchanged, "rows_changed": l.n_changed_rows,
+                "rows_removed": l.n_removed, "rows_added": l.n_added,
+                "changed_by_column": l.changed_by_column.iter().map(|(c, n)| json!({"column": c, "cells": n})).collect::<Vec<_>>(),
+            })
+        }
+        LabelledOutcome::Unchanged { version } => {
+            json!({"recorded": false, "step": null, "version": version, "lineage": null})
+        }
+    })
+}
+
 /// Applies one built-in operation (`clean` and `settings` as in a plan step) to `reference`.
 #[pyfunction]
 #[pyo3(signature = (dir, reference, clean, settings, reason, name, email=None, save_as=None))]
@@ -424,6 +494,7 @@ fn _engine(m: &Bound<'_, PyModule>) -> PyResult<()> {
         wrap_pyfunction!(store_dir, m)?,
         wrap_pyfunction!(receive, m)?,
         wrap_pyfunction!(apply, m)?,
+        wrap_pyfunction!(record_frame, m)?,
         wrap_pyfunction!(run_plan, m)?,
         wrap_pyfunction!(read_ipc, m)?,
         wrap_pyfunction!(write_file, m)?,

@@ -45,14 +45,14 @@ def test_a_cleaned_version_reads_as_pandas_reads_its_file(store):
     got = store.read("repairs", typed=False)
     store.write("repairs", store.project / "out.csv")
     want = pandas_reading(store.project / "out.csv")
-    pd.testing.assert_frame_equal(got.fillna(""), want)
+    pd.testing.assert_frame_equal(got.fillna("").reset_index(drop=True), want)
     # The cleaning did what the raw text says it should: 5 rows, one repeated.
     assert len(got) == 4
     assert list(got["shop"]) == ["Quillby Cycle Mend", "Ferrow Spokes", "Annick Bike Hub",
                                  "Quillby, East"]
     # Polars reads the same file to the same values (polars.read_csv, all as text).
     pl_want = pl.read_csv(store.project / "out.csv", infer_schema=False)
-    pl_got = store.read("repairs", library="polars", typed=False).fill_null("")
+    pl_got = store.read("repairs", library="polars", typed=False).drop("sluice_row").fill_null("")
     assert pl_got.equals(pl_want)
 
 
@@ -161,3 +161,80 @@ def test_parquet_from_pyarrow_reads_back_to_its_values(store):
     assert back.column("shop").to_pylist() == ["Quillby", None, "Ferrow"]
     store.write("till", store.project / "till_out.parquet", format="parquet")
     assert pq.read_table(store.project / "till_out.parquet").equals(back)
+
+
+def raw_lines():
+    # Source: Python's csv module: the line each ticket's record starts on.
+    reader = csv.reader(io.StringIO(RAW))
+    lines = {}
+    for row in reader:
+        lines.setdefault(row[0], reader.line_num)
+    return lines
+
+
+def clean_with_pandas(df):
+    """A dataframe script: filter, de-duplicate, fix the key column, merge a lookup."""
+    df = df[df["service"] != "chain"]
+    df = df.drop_duplicates()
+    df = df.assign(shop=df["shop"].str.strip().str.upper(), ticket="R-" + df["ticket"])
+    towns = pd.DataFrame({"shop": ["QUILLBY CYCLE MEND", "FERROW SPOKES", "ANNICK BIKE HUB"],
+                          "town": ["Quillby", "Ferrow", "Annick"]})
+    # merge makes a new index: the labels go through a column and back.
+    return df.reset_index().merge(towns, on="shop", how="left").set_index("sluice_row")
+
+
+def test_dataframe_code_that_keeps_its_labels_is_recorded_exactly(store):
+    store.receive(store.project / "repairs.csv", as_="repairs", why="weekly export")
+    df = store.read("repairs", typed=False)
+    out = clean_with_pandas(df)
+    r = store.record(df, out, why="clean in pandas")
+    assert r["lineage"] == "exact" and r["fallback"] is None
+    # By construction of RAW: one chain row filtered, one repeated ticket removed.
+    assert r["rows_removed"] == 2 and r["version"]["n_rows"] == 3
+    assert {c["column"]: c["cells"] for c in r["changed_by_column"]} == {"shop": 3, "ticket": 3}
+    # The trail of a rewritten key goes back through the step to the raw line.
+    trail = store.trace("repairs", row=3, column="ticket")
+    assert trail["value"] == "R-7003"
+    hop = trail["hops"][0]
+    assert hop["value_before"] == "7003" and hop["value_after"] == "R-7003"
+    assert '"line": %d' % raw_lines()["7003"] in json.dumps(trail["end"])
+    # The code is recorded: this file, the calling line, the function's source.
+    step = store.timeline("repairs")[-1]["step"]
+    assert step["lineage"] == "exact"
+    assert step["code"]["python"]["file"] == os.path.abspath(__file__)
+    assert "store.record(df, out" in step["code"]["python"]["source"]
+    # Values read back equal pandas' own reading of the cleaned file.
+    store.write("repairs", store.project / "cleaned.csv")
+    want = pandas_reading(store.project / "cleaned.csv")
+    got = store.read("repairs", typed=False).reset_index(drop=True).fillna("")
+    pd.testing.assert_frame_equal(got, want)
+    assert store.verify()["intact"]
+
+
+def test_dataframe_code_that_loses_its_labels_is_recorded_as_inferred(store):
+    store.receive(store.project / "repairs.csv", as_="repairs", why="weekly export")
+    df = store.read("repairs", typed=False)
+    out = clean_with_pandas(df).reset_index(drop=True)
+    r = store.record("repairs:v1", out, why="clean in pandas, index reset")
+    assert r["lineage"] == "inferred"
+    assert "no row labels" in r["fallback"]
+    assert store.timeline("repairs")[-1]["step"]["lineage"] == "inferred"
+    # Labels on two rows at once are not a row map either.
+    twice = df.iloc[[0, 0, 1]]
+    r = store.record("repairs:v1", twice, why="a row twice", as_="twice")
+    assert r["lineage"] == "inferred" and "more than one row" in r["fallback"]
+    assert store.verify()["intact"]
+
+
+def test_polars_code_that_keeps_the_row_id_column_is_exact(store):
+    store.receive(store.project / "repairs.csv", as_="repairs")
+    df = store.read("repairs", library="polars", typed=False)
+    out = (df.filter(pl.col("service") != "chain")
+             .with_columns(pl.col("shop").str.strip_chars()))
+    r = store.record("repairs", out, why="clean in polars")
+    assert r["lineage"] == "exact"
+    assert r["rows_removed"] == 1
+    assert "sluice_row" not in store.version("repairs")["header"]
+    trail = store.trace("repairs", row=3, column="shop")
+    assert trail["value"] == "annick bike hub"
+    assert '"line": %d' % raw_lines()["7003"] in json.dumps(trail["end"])
