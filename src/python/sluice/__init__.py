@@ -169,6 +169,13 @@ def _labels_of(frame):
     return None, "", _to_arrow(frame)
 
 
+def _bound(value):
+    """A plan input's binding: a file (relative to the current folder, as on the command
+    line) or a version reference."""
+    value = os.fspath(value)
+    return os.path.abspath(value) if os.path.isfile(value) else value
+
+
 def _who(person, email):
     """Who acts: the given person, else SLUICE_PERSON, else the operating system user (the
     same order as the command line, without its store setting)."""
@@ -235,13 +242,14 @@ class Store:
         return Record(out)
 
     def run(self, plan, inputs=None):
-        """Runs a plan file; ``inputs`` binds plan inputs to files or stored versions."""
+        """Runs a plan file; ``inputs`` binds plan inputs to files (relative to the current
+        folder) or stored versions."""
         plan = os.fspath(plan)
         with open(plan, encoding="utf-8") as f:
             text = f.read()
         return Record(json.loads(_call("run_plan", 
             self.dir, text, plan, os.path.dirname(os.path.abspath(plan)),
-            [(k, os.fspath(v)) for k, v in (inputs or {}).items()],
+            [(k, _bound(v)) for k, v in (inputs or {}).items()],
             self.person, self.email)))
 
     def record(self, input, output, why, as_=None):

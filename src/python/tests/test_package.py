@@ -138,7 +138,7 @@ def test_errors_carry_the_engine_message_and_record_nothing(store):
     assert store.verify()["intact"]
 
 
-def test_a_plan_runs(store):
+def test_a_plan_runs(store, monkeypatch):
     plan = {"sluice_plan": 2,
             "sources": [{"dataset": "repairs", "file": "repairs.csv"}],
             "steps": [{"dataset": "repairs", "clean": "trim", "reason": "pads"},
@@ -148,6 +148,12 @@ def test_a_plan_runs(store):
     assert out["ok"]
     assert [d["done"] for d in out["done"]] == ["received", "cleaned", "cleaned"]
     assert store.version("repairs")["n_rows"] == 4
+    # The same plan on another file, bound from the current folder.
+    (store.project / "next").mkdir()
+    (store.project / "next" / "week2.csv").write_text(RAW.replace("7001", "7101"), encoding="utf-8")
+    monkeypatch.chdir(store.project / "next")
+    out = store.run(store.project / "plan.json", inputs={"repairs": "week2.csv"})
+    assert out["ok"] and store.read("repairs", typed=False)["ticket"][0] == "7101"
 
 
 def test_parquet_from_pyarrow_reads_back_to_its_values(store):
