@@ -22,6 +22,7 @@ use serde::{Deserialize, Serialize};
 use serde_json::json;
 
 use crate::clock;
+use crate::columnar::{self, ColumnarFormat};
 use crate::error::{Error, ErrorKind, InputProblem, Result};
 use crate::intake::{IngestOptions, Prepared, PreparedIngest, SourceOptions};
 use crate::jsonl;
@@ -35,6 +36,8 @@ use crate::store::Store;
 pub enum SourceFormat {
     Workbook(WorkbookFormat),
     JsonLines,
+    /// Apache Parquet or Arrow IPC.
+    Columnar(ColumnarFormat),
 }
 
 impl SourceFormat {
@@ -44,6 +47,9 @@ impl SourceFormat {
         if let Some(f) = sheets::format_of(path) {
             return Some(SourceFormat::Workbook(f));
         }
+        if let Some(f) = ColumnarFormat::of(path) {
+            return Some(SourceFormat::Columnar(f));
+        }
         jsonl::is_jsonl(path).then_some(SourceFormat::JsonLines)
     }
 
@@ -51,6 +57,7 @@ impl SourceFormat {
         match self {
             SourceFormat::Workbook(f) => f.as_str(),
             SourceFormat::JsonLines => "jsonl",
+            SourceFormat::Columnar(f) => f.as_str(),
         }
     }
 }
@@ -74,7 +81,11 @@ pub struct Conversion {
     #[serde(default)]
     pub columns: Option<Vec<String>>,
     /// The row map as runs `[first data row, first sheet row or line, count]`, all 1-based.
+    /// For columnar files the "line" is the row's 1-based place in the file.
     pub rows: Vec<[u64; 3]>,
+    /// Columnar files: rows per Parquet row group or IPC record batch.
+    #[serde(default)]
+    pub groups: Option<Vec<u64>>,
 }
 
 impl Conversion {
@@ -140,6 +151,26 @@ pub fn locate(
         "raw object {}",
         &conv.raw.hash[..12.min(conv.raw.hash.len())]
     ));
+    if let Some(format) = columnar_format(&conv.format) {
+        let groups = conv.groups.as_deref().unwrap_or_default();
+        let (stored, arrow_type) =
+            columnar::value_at(&bytes, &here, format, groups, line - 1, column)?;
+        let (g, r) = columnar::group_of(groups, line - 1).unwrap_or((0, line - 1));
+        let unit = match format {
+            ColumnarFormat::Parquet => "row group",
+            ColumnarFormat::ArrowIpc => "record batch",
+        };
+        return Ok(RawPlace {
+            format: conv.format.clone(),
+            raw_hash: conv.raw.hash.clone(),
+            line,
+            cell: Some(format!("{unit} {}, row {}", g + 1, r + 1)),
+            stored,
+            stored_kind: arrow_type,
+            formula: None,
+            raw_line: None,
+        });
+    }
     if conv.format == "jsonl" {
         let (text, value) = jsonl::raw_value(&bytes, &here, line, column)?;
         let kind = match value.as_deref().and_then(|v| v.bytes().next()) {
@@ -328,6 +359,51 @@ fn from_lines(t: jsonl::LinesTable) -> Read {
     }
 }
 
+fn columnar_format(name: &str) -> Option<ColumnarFormat> {
+    match name {
+        "parquet" => Some(ColumnarFormat::Parquet),
+        "arrow" => Some(ColumnarFormat::ArrowIpc),
+        _ => None,
+    }
+}
+
+fn from_columnar(t: columnar::ColumnarTable, format: ColumnarFormat) -> Read {
+    let record = json!({
+        "format": format.as_str(),
+        "column_types": t.types,
+        "groups": t.groups,
+        "codecs": t.codecs,
+        "created_by": t.created_by,
+        "nulls": t.n_nulls,
+    });
+    let header_at = t.header.iter().map(|k| format!("column \"{k}\"")).collect();
+    let n = t.rows.len() as u64;
+    let names = t.header.clone();
+    let groups = t.groups.clone();
+    let unit = match format {
+        ColumnarFormat::Parquet => "row group",
+        ColumnarFormat::ArrowIpc => "record batch",
+    };
+    Read {
+        header: t.header,
+        rows: t.rows,
+        source_rows: (1..=n).collect(),
+        header_at,
+        cell_name: Box::new(move |col, row| {
+            let (g, r) = columnar::group_of(&groups, row as u64).unwrap_or((0, row as u64));
+            format!(
+                "{unit} {}, row {}, column \"{}\"",
+                g + 1,
+                r + 1,
+                names.get(col).map_or("", |s| s.as_str())
+            )
+        }),
+        by_cell: true,
+        record,
+        warnings: Vec::new(),
+    }
+}
+
 /// Runs `[first data row, first source row, count]` (1-based) of a row map.
 fn runs(source_rows: &[u64]) -> Vec<[u64; 3]> {
     let mut out: Vec<[u64; 3]> = Vec::new();
@@ -463,6 +539,7 @@ fn read_table(
             from_sheet(sheets::read_sheet(bytes, path, sheet)?, has_header)
         }
         SourceFormat::JsonLines => from_lines(jsonl::read(bytes, path)?),
+        SourceFormat::Columnar(f) => from_columnar(columnar::read(bytes, path, f)?, f),
     };
     if read.header.is_empty() {
         return Err(Error::input(path, None, InputProblem::NoHeader));
@@ -503,6 +580,8 @@ pub fn convert_again(store: &Store, step: &Step, conv: &Conversion) -> Result<St
         "xlsx" => SourceFormat::Workbook(WorkbookFormat::Xlsx),
         "ods" => SourceFormat::Workbook(WorkbookFormat::Ods),
         "jsonl" => SourceFormat::JsonLines,
+        "parquet" => SourceFormat::Columnar(ColumnarFormat::Parquet),
+        "arrow" => SourceFormat::Columnar(ColumnarFormat::ArrowIpc),
         other => return Err(broken(format!("names an unknown format \"{other}\""))),
     };
     let hash = conv
@@ -542,6 +621,20 @@ pub fn prepare(
             "--delimiter and --encoding are for delimited text; {} is read as {what} by its extension",
             path.display()
         )));
+    }
+    if let SourceFormat::Columnar(f) = format {
+        if source.sheet.is_some() {
+            return Err(Error::usage(format!(
+                "--sheet is for workbooks (.xlsx, .xlsm, .ods); this file is {}",
+                f.title()
+            )));
+        }
+        if !opts.has_header {
+            return Err(Error::usage(format!(
+                "--no-header does not apply to {}: the file's schema names the columns",
+                f.title()
+            )));
+        }
     }
     if format == SourceFormat::JsonLines {
         if source.sheet.is_some() {
@@ -773,6 +866,7 @@ mod tests {
             sheet: None,
             columns: None,
             rows: r,
+            groups: None,
         };
         let back: Vec<Option<u64>> = (0..7).map(|i| c.source_row(i)).collect();
         assert_eq!(

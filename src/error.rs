@@ -120,6 +120,17 @@ pub enum InputProblem {
     RepeatedKey {
         key: String,
     },
+    /// A Parquet or Arrow IPC file its reader cannot open or decode.
+    UnreadableColumnar {
+        format: String,
+        detail: String,
+    },
+    /// A Parquet or Arrow IPC column of a nested or otherwise non-tabular type.
+    NestedColumn {
+        format: String,
+        column: String,
+        type_name: String,
+    },
 }
 
 fn quoted_list(names: &[String]) -> String {
@@ -209,6 +220,18 @@ impl fmt::Display for InputProblem {
             ChangedWhileReading => write!(
                 f,
                 "the file changed while it was being read; take it in again once whatever writes it has finished"
+            ),
+            UnreadableColumnar { format, detail } => write!(
+                f,
+                "cannot be read as {format} ({detail}); expected a file written by a Parquet or Arrow library, whole and undamaged"
+            ),
+            NestedColumn {
+                format,
+                column,
+                type_name,
+            } => write!(
+                f,
+                "column \"{column}\" of this {format} file holds {type_name}, which a table cell cannot hold; flatten or drop the column before taking the file in"
             ),
             WorkbookTooLarge { detail } => write!(f, "workbook refused: {detail}"),
             LinesTooLarge { size, limit } => write!(

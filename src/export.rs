@@ -12,6 +12,7 @@
 //! - `jsonl`: one JSON object per data row (RFC 8259), the header's names as keys in column
 //!   order, every cell as a JSON string (cells are text; an empty cell is `""`), escaped by
 //!   serde_json (`"`, `\`, control characters; other characters as UTF-8).
+//! - `parquet`, `arrow`: the columnar formats, through [`crate::columnar::write::write_version`].
 
 use std::io::Write;
 
@@ -26,6 +27,21 @@ pub enum TextFormat {
     Csv,
     Tsv,
     Jsonl,
+}
+
+/// Any output format of `retrieve --format`.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Format {
+    Text(TextFormat),
+    Columnar(crate::columnar::write::OutFormat),
+}
+
+/// Writes every row of `v` to `out` in `format`, text or columnar.
+pub fn write_in(store: &Store, v: &Version, format: Format, out: &mut dyn Write) -> Result<()> {
+    match format {
+        Format::Text(t) => write_as(store, v, t, out),
+        Format::Columnar(c) => crate::columnar::write::write_version(store, v, c, out),
+    }
 }
 
 fn io(e: std::io::Error) -> Error {

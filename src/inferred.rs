@@ -16,7 +16,7 @@ use serde_json::json;
 use crate::diff::{self, DiffOptions, KeyChoice, MatchedBy};
 use crate::error::{Error, ErrorKind, Result};
 use crate::intake::{self, IngestOptions, Prepared, PreparedIngest, Succession};
-use crate::model::{RowRun, StepKind, Version};
+use crate::model::{LineageKind, RowRun, StepKind, Version};
 use crate::provenance::{self, ChangeLog, DropLog};
 use crate::refs;
 use crate::store::Store;
@@ -83,6 +83,9 @@ pub struct Successor {
     pub others: Vec<Version>,
     pub lineage: InferredLineage,
     provenance: Option<(String, u64)>,
+    /// Set when the row map came from row labels (`crate::labelled`): how the rows were
+    /// matched, recorded instead of the diff's method, and the step marked exact.
+    pub(crate) labels: Option<serde_json::Value>,
 }
 
 /// Compares `from` with the version `prepared` will be and writes the provenance object;
@@ -142,21 +145,7 @@ pub fn infer_matching(
     for &row in &d.pairing.removed {
         drops.push(row, drop_reason, None);
     }
-    let provenance = if runs.is_empty() && changes.is_empty() && drops.is_empty() {
-        None
-    } else {
-        let run_sets: Vec<(u32, &[RowRun])> = if runs.is_empty() {
-            Vec::new()
-        } else {
-            vec![(0, &runs[..])]
-        };
-        let bytes = provenance::encode(&to.header, &changes, &drops, &run_sets);
-        let store_io = |e: std::io::Error| Error::io(&store.dir().join("tmp"), e);
-        let mut w = store.objects.writer().map_err(store_io)?;
-        w.write(&bytes).map_err(store_io)?;
-        let (hash, n) = w.finish().map_err(store_io)?;
-        Some((hash.hex(), n))
-    };
+    let provenance = write_provenance(store, &to.header, &runs, &changes, &drops)?;
     let lineage = InferredLineage {
         n_unchanged: d.n_unchanged(),
         n_changed_rows: d.n_changed(),
@@ -185,7 +174,53 @@ pub fn infer_matching(
         others,
         lineage,
         provenance,
+        labels: None,
     })
+}
+
+/// Writes the provenance object of a successor (none when there is nothing to say); durable,
+/// not yet referenced.
+pub(crate) fn write_provenance(
+    store: &Store,
+    header: &[String],
+    runs: &[RowRun],
+    changes: &ChangeLog,
+    drops: &DropLog,
+) -> Result<Option<(String, u64)>> {
+    if runs.is_empty() && changes.is_empty() && drops.is_empty() {
+        return Ok(None);
+    }
+    let run_sets: Vec<(u32, &[RowRun])> = if runs.is_empty() {
+        Vec::new()
+    } else {
+        vec![(0, runs)]
+    };
+    let bytes = provenance::encode(header, changes, drops, &run_sets);
+    let store_io = |e: std::io::Error| Error::io(&store.dir().join("tmp"), e);
+    let mut w = store.objects.writer().map_err(store_io)?;
+    w.write(&bytes).map_err(store_io)?;
+    let (hash, n) = w.finish().map_err(store_io)?;
+    Ok(Some((hash.hex(), n)))
+}
+
+impl Successor {
+    /// A successor whose row map, changes and drops were found from row labels, not a diff.
+    pub(crate) fn labelled(
+        prepared: Box<PreparedIngest>,
+        from: Version,
+        lineage: InferredLineage,
+        provenance: Option<(String, u64)>,
+        labels: serde_json::Value,
+    ) -> Successor {
+        Successor {
+            prepared,
+            from,
+            others: Vec::new(),
+            lineage,
+            provenance,
+            labels: Some(labels),
+        }
+    }
 }
 
 /// One successor as recorded.
@@ -228,8 +263,13 @@ pub fn record(
                 started_at: started_at.to_string(),
                 provenance: s.provenance.as_ref().map(|(h, n)| (h.as_str(), *n)),
                 code,
-                inferred_by: s.lineage.inferred_by(),
+                inferred_by: s.labels.clone().unwrap_or_else(|| s.lineage.inferred_by()),
                 column_sources: s.lineage.renamed.clone(),
+                lineage: if s.labels.is_some() {
+                    LineageKind::Exact
+                } else {
+                    LineageKind::Inferred
+                },
             };
             ids.push(s.prepared.commit_as(&store_dir, tx, Some(&succession))?);
         }

@@ -333,6 +333,8 @@ pub struct Succession<'a> {
     pub inferred_by: serde_json::Value,
     /// Renamed columns: (output column, input column).
     pub column_sources: Vec<(String, String)>,
+    /// Exact when the row map came from row labels the work kept, inferred when from a diff.
+    pub lineage: LineageKind,
 }
 
 /// The result of [`prepare`].
@@ -486,7 +488,7 @@ impl PreparedIngest {
             ended_at: self.ended_at.clone(),
             rows_in: succession.map(|s| s.rows_in),
             rows_out: Some(self.n_rows),
-            lineage: succession.map_or(LineageKind::None, |_| LineageKind::Inferred),
+            lineage: succession.map_or(LineageKind::None, |s| s.lineage),
             source: Some(&self.source),
             inputs: succession.map_or_else(Vec::new, |s| s.inputs.clone()),
             provenance: succession.and_then(|s| s.provenance.map(|p| p.0)),

@@ -5,7 +5,7 @@
 //! line it came from. The flow runs one way:
 //!
 //! - read: [`table`] detects, decodes, parses and profiles delimited text; [`sheets`] reads
-//!   workbooks and [`jsonl`] JSON Lines;
+//!   workbooks, [`jsonl`] JSON Lines and [`columnar`] Parquet and Arrow IPC files;
 //! - operate: [`ops`] holds the built-in cleaning operations and records them; [`plan`] runs
 //!   and exports lists of them; [`checks`] evaluates declared rules;
 //! - record: [`intake`] takes outside files in ([`convert`] those that are not delimited text); [`exec`] runs outside commands and, with
@@ -40,6 +40,7 @@ pub mod agent;
 pub mod checks;
 pub mod clock;
 pub mod code;
+pub mod columnar;
 pub mod convert;
 pub mod demo;
 pub mod diff;
@@ -54,6 +55,7 @@ pub mod history;
 pub mod inferred;
 pub mod intake;
 pub mod jsonl;
+pub mod labelled;
 pub mod model;
 pub mod ops;
 pub mod plan;

@@ -6,8 +6,9 @@
 
 use std::path::{Path, PathBuf};
 
-/// Every engine source file (everything under src/ but the binary: src/main.rs, src/cli/),
-/// as (path relative to src/, text with comments removed).
+/// Every engine source file (everything under src/ but the binary: src/main.rs, src/cli/, and
+/// the Python package's native module, src/python/, an edge like the binary that calls the
+/// engine as a library), as (path relative to src/, text with comments removed).
 fn engine_sources() -> Vec<(String, String)> {
     let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("src");
     let mut files = Vec::new();
@@ -34,7 +35,9 @@ fn engine_sources() -> Vec<(String, String)> {
             let text = std::fs::read_to_string(&f).expect("read source");
             (rel, without_comments(&text))
         })
-        .filter(|(rel, _)| rel != "main.rs" && !rel.starts_with("cli/"))
+        .filter(|(rel, _)| {
+            rel != "main.rs" && !rel.starts_with("cli/") && !rel.starts_with("python/")
+        })
         .collect()
 }
 
@@ -112,7 +115,7 @@ const LAYERS: &[(&str, &[&str])] = &[
         "foundation",
         &["error", "model", "hash", "clock", "progress", "code", "lib"],
     ),
-    ("read", &["table", "sheets", "jsonl"]),
+    ("read", &["table", "sheets", "jsonl", "columnar"]),
     ("store", &["store", "refs", "agent"]),
     ("operate", &["ops", "diff", "checks", "provenance"]),
     (
@@ -123,6 +126,7 @@ const LAYERS: &[(&str, &[&str])] = &[
             "intake",
             "convert",
             "inferred",
+            "labelled",
             "exec",
             "plan",
             "endorse",
@@ -131,7 +135,15 @@ const LAYERS: &[(&str, &[&str])] = &[
     (
         "query",
         &[
-            "history", "trace", "explain", "graph", "replay", "verify", "export", "revert",
+            "history",
+            "trace",
+            "explain",
+            "graph",
+            "replay",
+            "verify",
+            "export",
+            "revert",
+            "columnar::write",
         ],
     ),
     ("document", &["report", "prov", "demo"]),

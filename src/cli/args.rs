@@ -544,12 +544,17 @@ pub enum RetrieveFormat {
     Csv,
     Tsv,
     Jsonl,
+    /// Apache Parquet, typed from the profile (integers, exact decimals, dates, text)
+    Parquet,
+    /// Arrow IPC file (Feather version 2), typed as for parquet
+    Arrow,
 }
 
 #[derive(Debug, Args)]
 pub struct ReceiveArgs {
     /// The file to take in: delimited text (comma, semicolon, tab or pipe), a workbook (.xlsx,
-    /// .xlsm, .ods) or JSON Lines (.jsonl, .ndjson)
+    /// .xlsm, .ods), JSON Lines (.jsonl, .ndjson), Apache Parquet (.parquet) or Arrow IPC
+    /// (.arrow, .feather)
     pub file: PathBuf,
 
     /// The dataset this file is a version of (created if new)

@@ -221,18 +221,22 @@ pub fn retrieve(
     let store = ctx.open_store()?;
     let version = sluice::refs::resolve(&store.lineage, reference)?;
     if let Some(format) = format {
+        use sluice::columnar::write::OutFormat;
+        use sluice::export::{Format, TextFormat};
         let format = match format {
-            RetrieveFormat::Csv => sluice::export::TextFormat::Csv,
-            RetrieveFormat::Tsv => sluice::export::TextFormat::Tsv,
-            RetrieveFormat::Jsonl => sluice::export::TextFormat::Jsonl,
+            RetrieveFormat::Csv => Format::Text(TextFormat::Csv),
+            RetrieveFormat::Tsv => Format::Text(TextFormat::Tsv),
+            RetrieveFormat::Jsonl => Format::Text(TextFormat::Jsonl),
+            RetrieveFormat::Parquet => Format::Columnar(OutFormat::Parquet),
+            RetrieveFormat::Arrow => Format::Columnar(OutFormat::ArrowIpc),
         };
         match output {
             None => {
-                sluice::export::write_as(&store, &version, format, out)?;
+                sluice::export::write_in(&store, &version, format, out)?;
                 out.flush()?;
             }
             Some(path) => super::write_file_atomically(path, |f| {
-                sluice::export::write_as(&store, &version, format, f)?;
+                sluice::export::write_in(&store, &version, format, f)?;
                 Ok(())
             })?,
         }
@@ -607,6 +611,8 @@ fn trail_body(out: &mut impl Write, t: &Trail, pad: &str) -> io::Result<()> {
                 match o.format.as_str() {
                     "csv" => "",
                     "jsonl" => ", JSON Lines",
+                    "parquet" => ", Apache Parquet",
+                    "arrow" => ", Arrow IPC",
                     "ods" => ", OpenDocument spreadsheet",
                     _ => ", Office Open XML workbook",
                 },
