@@ -10,6 +10,9 @@
 //! cargo run --release --example bench -- intake --rows 200000,2000000
 //! cargo run --release --example bench -- trace                   # 100,000, 1,000,000 and 5,000,000 rows
 //! cargo run --release --example bench -- trace --quick           # 100,000 rows
+//! cargo run --release --example bench -- compare                 # 1,000,000 rows, two versions
+//! cargo run --release --example bench -- reproduce --quick       # 100,000 rows
+//! cargo run --release --example bench -- ops --rows 10000        # any size, to check it runs
 //! ```
 //!
 //! # `trace`
@@ -53,7 +56,7 @@
 //! (whole rows, the first kept), `number` (parts_cost), `drop` (`status = 'cancelled'`) and
 //! `summarize` (sum of parts_cost by technician, `as` totals). The Quillby export has no shop
 //! column, so the totals are per technician rather than per shop. sluice's time is `sluice run
-//! PLAN` in a fresh store (made by `sluice init`, not timed) followed by `sluice cat orders -o
+//! PLAN` in a fresh store (made by `sluice setup`, not timed) followed by `sluice retrieve orders -o
 //! cleaned.csv`, since writing the cleaned CSV is part of the job; the run alone is shown too,
 //! and the peak memory is the larger of the two processes'. The baselines are the scripts
 //! `examples/bench_ops_pandas.py` (pandas: `read_csv(dtype=str, keep_default_na=False)`,
@@ -69,13 +72,13 @@
 //! grew over a fresh store's) and the bytes of the objects (every version's bytes, the raw copy
 //! among them, and their row indexes), each as a percentage of the input file.
 //!
-//! Goals: sluice (run + cat, recording full provenance) at least 5x faster than pandas and no
+//! Goals: sluice (run + retrieve, recording full provenance) at least 5x faster than pandas and no
 //! slower than polars; peak memory under 1 GiB; provenance under 5% of the input. Timing as for
 //! `intake`.
 //!
-//! # `diff`
+//! # `compare` (also `diff`)
 //!
-//! Measures `sluice diff` of two versions of a Quillby work-order table made by
+//! Measures `sluice compare` of two versions of a Quillby work-order table made by
 //! [`sluice::demo::revision_pair`] (deterministic; 1,000,000 rows by default, about 1% of the
 //! rows changed in one or two cells, 0.5% removed and 0.5% inserted), both already in a store
 //! (taken in before timing, once with `--key order_id` and once without): the full diff by key,
@@ -89,7 +92,7 @@
 //!
 //! # `intake`
 //!
-//! Measures `sluice ingest` of a dirty work-order CSV (made by [`sluice::demo::work_orders`],
+//! Measures `sluice receive` of a dirty work-order CSV (made by [`sluice::demo::work_orders`],
 //! Quillby till, deterministic: 1,000,000 rows are about 104 MB, 5,000,000 rows about 523 MB)
 //! into a fresh store: wall time, throughput (MB = 10^6 bytes per second) and the child
 //! process's peak resident memory (`ru_maxrss` from `wait4`). Side by side, on the same file in
@@ -102,7 +105,7 @@
 //! - `git add` of the file into a fresh repository, what people use today to version CSVs
 //!   (git's own defaults: user and system configuration are not read).
 //!
-//! Goals: ingest throughput >= 6x `git add` and >= 0.1x the faster BLAKE3
+//! Goals: receive throughput >= 6x `git add` and >= 0.1x the faster BLAKE3
 //! figure; sluice's peak memory under 64 MiB at every size. The page cache is warm (the file is
 //! read once first) and dirty pages are flushed (`sync`) before every timed run; each time is
 //! the median of 3 runs (`--runs N`; 9 for a tool whose first run takes under 0.5 s; 1 for one
@@ -130,6 +133,8 @@ use serde_json::{json, Value};
 
 /// The size of every read, as in sluice's own streaming.
 const PIECE: usize = 1 << 20;
+/// The store folder in a project folder.
+const STORE_DIR: &str = sluice::store::STORE_DIR;
 /// A tool whose first run takes longer than this is run only once.
 const LONG_RUN: Duration = Duration::from_secs(30);
 /// A tool whose first run takes less than this is run at least [`SHORT_RUNS`] times.
@@ -141,7 +146,11 @@ const NOISY_CORES: f64 = 0.2;
 const NOISY_CORES_DURING: f64 = 0.5;
 /// The shortest window over which the machine's load is worth computing.
 const MIN_LOAD_WINDOW: Duration = Duration::from_secs(1);
-const AGENT: &str = "Bench Runner <bench@example.org>";
+/// Who the benchmark's stores record as acting (`SLUICE_PERSON`, `SLUICE_EMAIL`).
+const IDENTITY: [(&str, &str); 2] = [
+    ("SLUICE_PERSON", "Bench Runner"),
+    ("SLUICE_EMAIL", "bench@example.org"),
+];
 const DEFAULT_ROWS: &[u64] = &[1_000_000, 5_000_000];
 const QUICK_ROWS: &[u64] = &[100_000];
 const DIFF_ROWS: &[u64] = &[1_000_000];
@@ -179,26 +188,28 @@ struct Cli {
 /// The benchmarks. A new one is a variant here and an arm in [`run_bench`].
 #[derive(Debug, Clone, Copy, PartialEq, Eq, ValueEnum)]
 enum Bench {
-    /// `sluice ingest` against BLAKE3 alone and `git add`
+    /// `sluice receive` against BLAKE3 alone and `git add`
     Intake,
-    /// `sluice diff` (by key and by order) against GNU diff, git diff, pandas and polars
-    Diff,
-    /// A cleaning plan (`sluice run` + `sluice cat`) against the same cleaning in pandas and polars
+    /// `sluice compare` (by key and by order) against GNU diff, git diff, pandas and polars
+    #[value(alias = "diff")]
+    Compare,
+    /// A cleaning plan (`sluice run` + `sluice retrieve`) against the same cleaning in pandas and polars
     Ops,
     /// `sluice trace` and `sluice explain` over a history of 20 steps, at three sizes
     Trace,
-    /// `sluice replay` of the ops benchmark's plan against a plain `sluice run` of it
-    Replay,
+    /// `sluice reproduce` of the ops benchmark's plan against a plain `sluice run` of it
+    #[value(alias = "replay")]
+    Reproduce,
 }
 
 impl Bench {
     fn name(self) -> &'static str {
         match self {
             Bench::Intake => "intake",
-            Bench::Diff => "diff",
+            Bench::Compare => "compare",
             Bench::Ops => "ops",
             Bench::Trace => "trace",
-            Bench::Replay => "replay",
+            Bench::Reproduce => "reproduce",
         }
     }
 
@@ -206,10 +217,10 @@ impl Bench {
     fn default_rows(self) -> &'static [u64] {
         match self {
             Bench::Intake => DEFAULT_ROWS,
-            Bench::Diff => DIFF_ROWS,
+            Bench::Compare => DIFF_ROWS,
             Bench::Ops => OPS_ROWS,
             Bench::Trace => TRACE_ROWS,
-            Bench::Replay => OPS_ROWS,
+            Bench::Reproduce => OPS_ROWS,
         }
     }
 }
@@ -265,10 +276,10 @@ fn run(cli: Cli) -> Result<()> {
 fn run_bench(bench: Bench, ctx: &Ctx) -> Result<()> {
     let result = match bench {
         Bench::Intake => intake(ctx)?,
-        Bench::Diff => diff(ctx)?,
+        Bench::Compare => diff(ctx)?,
         Bench::Ops => ops(ctx)?,
         Bench::Trace => trace_bench(ctx)?,
-        Bench::Replay => replay_bench(ctx)?,
+        Bench::Reproduce => replay_bench(ctx)?,
     };
     fs::create_dir_all(&ctx.results_dir)
         .with_context(|| format!("creating {}", ctx.results_dir.display()))?;
@@ -737,37 +748,25 @@ impl Drop for Scratch {
 // ---------------------------------------------------------------------------------------------
 // The tools
 
-/// `sluice init` (not timed) then `sluice --store DIR ingest FILE --as orders` (timed).
-/// Returns the sample and the short version hash sluice printed.
+/// `sluice setup` (not timed) then `sluice --store DIR receive FILE --as orders --json` (timed).
+/// Returns the sample and the full version hash sluice recorded.
 fn sluice_ingest(ctx: &Ctx, file: &Path, run: u32) -> Result<(Sample, Option<String>)> {
     let scratch = Scratch::new(ctx, &format!("sluice-{run}"))?;
     let store = scratch.0.join("store");
-    let status = Command::new(&ctx.sluice)
-        .arg("init")
-        .arg(&store)
-        .env("SLUICE_AGENT", AGENT)
-        .stdout(Stdio::null())
-        .output()
-        .context("running `sluice setup`")?;
-    ensure!(
-        status.status.success(),
-        "`sluice setup {}` failed: {}",
-        store.display(),
-        String::from_utf8_lossy(&status.stderr)
-    );
+    sluice_init(ctx, &store)?;
     let mut cmd = Command::new(&ctx.sluice);
     cmd.arg("--store")
         .arg(&store)
-        .arg("ingest")
+        .arg("receive")
         .arg(file)
-        .args(["--as", "orders"])
-        .env("SLUICE_AGENT", AGENT);
-    let (sample, out) = run_measured(&mut cmd, &scratch.0.join("log"), "sluice ingest")?;
+        .args(["--as", "orders", "--json"])
+        .envs(IDENTITY);
+    let (sample, out) = run_measured(&mut cmd, &scratch.0.join("log"), "sluice receive")?;
     if run == 0 {
-        let size = stored_size(&store.join(".sluice"))?;
+        let size = stored_size(&store.join(STORE_DIR))?;
         STORE_AFTER_INTAKE.with(|s| *s.borrow_mut() = Some(size));
     }
-    Ok((sample, short_hash(&out.stdout)))
+    Ok((sample, recorded_hash(&out.stdout)))
 }
 
 thread_local! {
@@ -833,7 +832,7 @@ fn stored_size(dot: &Path) -> Result<StoredSize> {
     Ok(size)
 }
 
-/// The same version read by `sluice cat` from a compressed store and from a copy of it in the
+/// The same version read by `sluice retrieve` from a compressed store and from a copy of it in the
 /// earlier layout (each object an uncompressed file, which this build still reads): the
 /// baseline for reading through the compression.
 fn cat_compressed_vs_loose(ctx: &Ctx, file: &Path) -> Result<(Row, Row)> {
@@ -844,25 +843,25 @@ fn cat_compressed_vs_loose(ctx: &Ctx, file: &Path) -> Result<(Row, Row)> {
         ctx,
         &packed,
         &[
-            "ingest".as_ref(),
+            "receive".as_ref(),
             file.as_os_str(),
             "--as".as_ref(),
             "orders".as_ref(),
         ],
     )?;
     let loose = scratch.0.join("loose");
-    fs::create_dir_all(loose.join(".sluice/objects"))?;
+    fs::create_dir_all(loose.join(STORE_DIR).join("objects"))?;
     for f in ["lineage.db", "README"] {
         fs::copy(
-            packed.join(".sluice").join(f),
-            loose.join(".sluice").join(f),
+            packed.join(STORE_DIR).join(f),
+            loose.join(STORE_DIR).join(f),
         )?;
     }
-    fs::create_dir_all(loose.join(".sluice/tmp"))?;
+    fs::create_dir_all(loose.join(STORE_DIR).join("tmp"))?;
     {
-        let store = sluice::store::Store::open(&packed.join(".sluice"))?;
+        let store = sluice::store::Store::open(&packed.join(STORE_DIR))?;
         for (hex, _, _) in store.lineage.objects()? {
-            let dir = loose.join(".sluice/objects").join(&hex[..2]);
+            let dir = loose.join(STORE_DIR).join("objects").join(&hex[..2]);
             fs::create_dir_all(&dir)?;
             let mut out = fs::File::create(dir.join(&hex[2..]))?;
             let h: sluice::hash::Hash = hex.parse().map_err(|e| anyhow!("{e}"))?;
@@ -871,10 +870,14 @@ fn cat_compressed_vs_loose(ctx: &Ctx, file: &Path) -> Result<(Row, Row)> {
     }
     let mut rows = Vec::new();
     for (store, tool, key) in [
-        (&packed, "sluice cat, compressed segments", "cat_compressed"),
+        (
+            &packed,
+            "sluice retrieve, compressed segments",
+            "cat_compressed",
+        ),
         (
             &loose,
-            "sluice cat, uncompressed loose objects",
+            "sluice retrieve, uncompressed loose objects",
             "cat_loose",
         ),
     ] {
@@ -884,9 +887,9 @@ fn cat_compressed_vs_loose(ctx: &Ctx, file: &Path) -> Result<(Row, Row)> {
             let mut cmd = Command::new(&ctx.sluice);
             cmd.arg("--store")
                 .arg(store)
-                .args(["cat", "orders", "-o"])
+                .args(["retrieve", "orders", "-o"])
                 .arg(&out)
-                .env("SLUICE_AGENT", AGENT);
+                .envs(IDENTITY);
             let (sample, _) =
                 run_measured(&mut cmd, &scratch.0.join(format!("log-{key}-{i}")), tool)?;
             Ok(sample)
@@ -942,14 +945,10 @@ fn frame_sizes(file: &Path) -> Result<Value> {
     Ok(Value::Array(out))
 }
 
-/// The short hash in "recorded orders@1 (c42223f1fbf2): ...".
-fn short_hash(stdout: &str) -> Option<String> {
-    let start = stdout.find('(')? + 1;
-    let len = stdout[start..].find(')')?;
-    let h = &stdout[start..start + len];
-    h.bytes()
-        .all(|b| b.is_ascii_hexdigit())
-        .then(|| h.to_string())
+/// The version hash in `sluice receive --json`'s output (`version.hash`, the full hex digits).
+fn recorded_hash(stdout: &str) -> Option<String> {
+    let v: Value = serde_json::from_str(stdout).ok()?;
+    v["version"]["hash"].as_str().map(str::to_string)
 }
 
 /// `git init` and a copy of the file (not timed), then `git add` of it (timed).
@@ -1176,8 +1175,9 @@ impl Row {
 }
 
 fn print_table(rows: &[Row], bytes: u64) {
+    let w = rows.iter().map(|r| r.tool.len()).fold(30, usize::max);
     println!(
-        "  {:<30} {:>4} {:>9} {:>9} {:>9} {:>8} {:>7}",
+        "  {:<w$} {:>4} {:>9} {:>9} {:>9} {:>8} {:>7}",
         "tool", "runs", "seconds", "MB/s", "peak MiB", "cpu s", "others"
     );
     let dash = |c: Option<f64>| c.map_or("-".to_string(), |c| format!("{c:.2}"));
@@ -1189,7 +1189,7 @@ fn print_table(rows: &[Row], bytes: u64) {
         };
         let others = dash(r.others_cores());
         println!(
-            "  {:<30} {:>4} {:>9.3} {:>9.1} {:>9.1} {:>8.3} {:>7}",
+            "  {:<w$} {:>4} {:>9.3} {:>9.1} {:>9.1} {:>8.3} {:>7}",
             r.tool,
             runs,
             r.median_secs(),
@@ -1210,7 +1210,7 @@ fn print_table(rows: &[Row], bytes: u64) {
     }
     if rows.iter().any(|r| r.samples.len() == 1) {
         println!(
-            "  (* one run only: the first took over {} s)",
+            "  (* one run only: --runs 1 was asked for, or the first took over {} s)",
             LONG_RUN.as_secs()
         );
     }
@@ -1267,7 +1267,7 @@ fn with_header(ctx: &Ctx, name: &str, fields: Value) -> Value {
 // The intake benchmark
 
 fn intake(ctx: &Ctx) -> Result<Value> {
-    println!("== intake: sluice ingest vs BLAKE3 alone vs git add ==");
+    println!("== intake: sluice receive vs BLAKE3 alone vs git add ==");
     let mut sizes = Vec::new();
     let mut all_pass = true;
     for n in ctx.rows_for(Bench::Intake) {
@@ -1341,7 +1341,7 @@ fn intake_size(ctx: &Ctx, n: u64) -> Result<(Value, bool)> {
 
     let rows = vec![
         Row {
-            tool: "sluice ingest (fresh store)",
+            tool: "sluice receive (fresh store)",
             key: "sluice_ingest",
             samples: ingest,
         },
@@ -1394,7 +1394,7 @@ fn intake_size(ctx: &Ctx, n: u64) -> Result<(Value, bool)> {
         pass: store_ratio <= 0.3,
     });
     goals.push(Goal {
-        label: "cat compressed / cat uncompressed".into(),
+        label: "retrieve compressed / retrieve uncompressed".into(),
         value: cat_ratio,
         goal: "<= 1.5",
         pass: cat_ratio <= 1.5,
@@ -1425,11 +1425,14 @@ fn intake_size(ctx: &Ctx, n: u64) -> Result<(Value, bool)> {
     Ok((value, pass))
 }
 
-/// Checks that sluice recorded the bytes BLAKE3 hashed (it prints a short prefix of the hash).
+/// Checks that sluice recorded the bytes BLAKE3 hashed.
 fn check_recorded_hash(recorded: &[Option<String>], file_hash: &str) {
     match recorded.first().cloned().flatten() {
-        Some(h) if file_hash.starts_with(&h) && recorded.iter().all(|r| r.as_ref() == Some(&h)) => {
-            println!("  check: sluice recorded version {h}, the BLAKE3 hash of the file");
+        Some(h) if h == file_hash && recorded.iter().all(|r| r.as_ref() == Some(&h)) => {
+            println!(
+                "  check: sluice recorded version {}, the BLAKE3 hash of the file",
+                sluice::model::short_hash(&h)
+            );
         }
         Some(h) => {
             println!("  warning: sluice recorded {h} but the file's BLAKE3 hash is {file_hash}")
@@ -1484,25 +1487,25 @@ fn intake_goals(rows: &[Row], bytes: u64) -> Vec<Goal> {
 // The diff benchmark
 
 fn diff(ctx: &Ctx) -> Result<Value> {
-    println!("== diff: sluice diff vs GNU diff, git diff, pandas and polars ==");
+    println!("== compare: sluice compare vs GNU diff, git diff, pandas and polars ==");
     let python = reference_python()?;
     let mut sizes = Vec::new();
     let mut all_pass = true;
-    for n in ctx.rows_for(Bench::Diff) {
+    for n in ctx.rows_for(Bench::Compare) {
         let (size, pass) = diff_size(ctx, n, &python)?;
         sizes.push(size);
         all_pass &= pass;
     }
-    println!("diff: {}", verdict(all_pass));
+    println!("compare: {}", verdict(all_pass));
     Ok(with_header(
         ctx,
-        "diff",
+        "compare",
         json!({
         "runs_requested": ctx.runs,
         "python": python,
         "notes": [
             "MB = 10^6 bytes of both files together; seconds are medians; peak memory is the largest ru_maxrss of the runs",
-            "sluice: both versions already in the store; the text output of the whole diff is written to a file",
+            "sluice: both versions already in the store; the text output of the whole comparison is written to a file",
             "GNU diff and git diff --no-index --stat: exit status 1 (files differ) counts as success",
             "pandas and polars: read both files as text, outer join on order_id, count per column",
             "warm page cache; sync before every timed run",
@@ -1600,7 +1603,7 @@ fn sluice_quiet(ctx: &Ctx, store: &Path, args: &[&std::ffi::OsStr]) -> Result<St
         .arg("--store")
         .arg(store)
         .args(args)
-        .env("SLUICE_AGENT", AGENT)
+        .envs(IDENTITY)
         .output()
         .context("running sluice")?;
     ensure!(
@@ -1633,17 +1636,11 @@ fn diff_size(ctx: &Ctx, n: u64, python: &str) -> Result<(Value, bool)> {
     );
     let scratch = Scratch::new(ctx, "diff-store")?;
     let store = scratch.0.join("store");
-    let init = Command::new(&ctx.sluice)
-        .arg("init")
-        .arg(&store)
-        .env("SLUICE_AGENT", AGENT)
-        .output()
-        .context("running `sluice init`")?;
-    ensure!(init.status.success(), "`sluice init` failed");
+    sluice_init(ctx, &store)?;
     let (f, s) = (first.as_os_str(), second.as_os_str());
     for args in [
         [
-            OsStr::new("ingest"),
+            OsStr::new("receive"),
             f,
             "--as".as_ref(),
             "orders".as_ref(),
@@ -1651,9 +1648,9 @@ fn diff_size(ctx: &Ctx, n: u64, python: &str) -> Result<(Value, bool)> {
             "order_id".as_ref(),
         ]
         .as_slice(),
-        [OsStr::new("ingest"), s, "--as".as_ref(), "orders".as_ref()].as_slice(),
-        [OsStr::new("ingest"), f, "--as".as_ref(), "plain".as_ref()].as_slice(),
-        [OsStr::new("ingest"), s, "--as".as_ref(), "plain".as_ref()].as_slice(),
+        [OsStr::new("receive"), s, "--as".as_ref(), "orders".as_ref()].as_slice(),
+        [OsStr::new("receive"), f, "--as".as_ref(), "plain".as_ref()].as_slice(),
+        [OsStr::new("receive"), s, "--as".as_ref(), "plain".as_ref()].as_slice(),
     ] {
         sluice_quiet(ctx, &store, args)?;
     }
@@ -1661,9 +1658,9 @@ fn diff_size(ctx: &Ctx, n: u64, python: &str) -> Result<(Value, bool)> {
     let stat = sluice_quiet(
         ctx,
         &store,
-        &["diff", "orders@1", "orders@2", "--json", "--stat"].map(OsStr::new),
+        &["compare", "orders:v1", "orders:v2", "--json", "--counts"].map(OsStr::new),
     )?;
-    let stat: Value = serde_json::from_str(&stat).context("reading sluice diff --json")?;
+    let stat: Value = serde_json::from_str(&stat).context("reading sluice compare --json")?;
     let counts = (
         stat["rows"]["changed"].as_u64(),
         stat["rows"]["removed"].as_u64(),
@@ -1676,7 +1673,7 @@ fn diff_size(ctx: &Ctx, n: u64, python: &str) -> Result<(Value, bool)> {
                 Some(rev.removed_rows),
                 Some(rev.added_rows)
             ),
-        "sluice diff reports {counts:?}, the generator made {:?}",
+        "sluice compare reports {counts:?}, the generator made {:?}",
         (rev.changed_rows, rev.removed_rows, rev.added_rows)
     );
     println!("  check: sluice's counts are the generator's");
@@ -1699,8 +1696,12 @@ fn diff_size(ctx: &Ctx, n: u64, python: &str) -> Result<(Value, bool)> {
             let mut c = Command::new(&sl);
             c.arg("--store")
                 .arg(&st)
-                .args(["diff", &format!("{reference}@1"), &format!("{reference}@2")])
-                .env("SLUICE_AGENT", AGENT);
+                .args([
+                    "compare",
+                    &format!("{reference}:v1"),
+                    &format!("{reference}:v2"),
+                ])
+                .envs(IDENTITY);
             c
         }
     };
@@ -1741,12 +1742,12 @@ fn diff_size(ctx: &Ctx, n: u64, python: &str) -> Result<(Value, bool)> {
     let polars = measure("polars", &py("diff_polars.py"))?;
     let rows = vec![
         Row {
-            tool: "sluice diff, by key",
+            tool: "sluice compare, by key",
             key: "sluice_keyed",
             samples: keyed,
         },
         Row {
-            tool: "sluice diff, by order",
+            tool: "sluice compare, by order",
             key: "sluice_unkeyed",
             samples: unkeyed,
         },
@@ -1892,7 +1893,7 @@ impl Footprint {
 }
 
 fn ops(ctx: &Ctx) -> Result<Value> {
-    println!("== ops: a cleaning plan with sluice (run + cat) vs the same cleaning in pandas and polars ==");
+    println!("== ops: a cleaning plan with sluice (run + retrieve) vs the same cleaning in pandas and polars ==");
     println!(
         "   trim every column, email to lower case, dedupe whole rows, parts_cost as a number,"
     );
@@ -1929,7 +1930,7 @@ fn ops(ctx: &Ctx) -> Result<Value> {
         "runs_requested": ctx.runs,
         "notes": [
             "MB = 10^6 bytes of input; seconds are medians; peak memory is the largest ru_maxrss of the runs",
-            "sluice: fresh store (sluice init, not timed), then sluice run PLAN and sluice cat orders -o cleaned.csv, timed one after the other",
+            "sluice: fresh store (sluice setup, not timed), then sluice run PLAN and sluice retrieve orders -o cleaned.csv, timed one after the other",
             "pandas and polars: examples/bench_ops_pandas.py and examples/bench_ops_polars.py, timed whole (interpreter start-up and imports included)",
             "the Quillby export has no shop column: the totals are per technician",
             "pandas and polars sum in floating point: their sums are compared with sluice's exact sums within 0.01",
@@ -1986,7 +1987,7 @@ fn ops_size(ctx: &Ctx, python: &Path, n: u64, ten: bool) -> Result<(Value, bool,
 
     let rows = vec![
         Row {
-            tool: "sluice run + cat (fresh store)",
+            tool: "sluice run + retrieve (fresh store)",
             key: "sluice_run_cat",
             samples: whole,
         },
@@ -2060,67 +2061,102 @@ fn ops_size(ctx: &Ctx, python: &Path, n: u64, ten: bool) -> Result<(Value, bool,
 /// The plan the benchmark runs: `file` taken in as `orders`, cleaned, and summed per
 /// technician into `totals`.
 fn ops_plan(file: &Path, ten: bool) -> Value {
-    let why_trim = "the Quillby till pads names, addresses and amounts with spaces";
-    let mut plan = json!({
-        "sluice_plan": 1,
-        "description": "Work orders of the Quillby shop cleaned and summed per technician (the ops benchmark)",
-        "inputs": [
-            {"name": "orders", "file": file.display().to_string(), "why": "the generated Quillby work-order export"},
-        ],
-        "steps": [
-            {"on": "orders", "apply": {"op": "trim"}, "why": why_trim},
-            {"on": "orders", "apply": {"op": "case", "columns": ["email"], "to": "lower"}, "why": "e-mail addresses are case-blind"},
-            {"on": "orders", "apply": {"op": "dedupe", "keep": "first"}, "why": "the till exports some orders twice"},
-            {"on": "orders", "apply": {"op": "number", "columns": ["parts_cost"]}, "why": "parts costs are written with euro signs and thousands commas"},
-            {"on": "orders", "apply": {"op": "drop", "predicate": "status = 'cancelled'"}, "why": "cancelled orders are not work done"},
-            {"on": "orders", "apply": {"op": "summarize", "by": ["technician"],
-                "aggregates": [{"func": "sum", "column": "parts_cost"}]},
-                "as": "totals", "why": "parts cost per technician"},
-        ],
-    });
+    let step = |clean: &str, settings: Value, reason: &str| json!({"dataset": "orders", "clean": clean, "settings": settings, "reason": reason});
+    let mut steps = vec![
+        step(
+            "trim",
+            json!({}),
+            "the Quillby till pads names, addresses and amounts with spaces",
+        ),
+        step(
+            "case",
+            json!({"columns": ["email"], "to": "lower"}),
+            "e-mail addresses are case-blind",
+        ),
+        step(
+            "dedupe",
+            json!({"keep": "first"}),
+            "the till exports some orders twice",
+        ),
+        step(
+            "number",
+            json!({"columns": ["parts_cost"]}),
+            "parts costs are written with euro signs and thousands commas",
+        ),
+        step(
+            "drop",
+            json!({"predicate": "status = 'cancelled'"}),
+            "cancelled orders are not work done",
+        ),
+    ];
     if ten {
         // Four more row-by-row steps before the summary (the baselines' --ten does the same).
-        let more = json!([
-            {"on": "orders", "apply": {"op": "case", "columns": ["service"], "to": "upper"}, "why": "service codes in capitals"},
-            {"on": "orders", "apply": {"op": "replace", "columns": ["opened"], "find": "-", "with": "/"}, "why": "dates with slashes for the paper forms"},
-            {"on": "orders", "apply": {"op": "fill", "columns": ["notes"], "value": "none"}, "why": "no blank notes"},
-            {"on": "orders", "apply": {"op": "rename", "columns": [{"from": "labour_hours", "to": "hours"}]}, "why": "the ledger's name"},
+        steps.extend([
+            step(
+                "case",
+                json!({"columns": ["service"], "to": "upper"}),
+                "service codes in capitals",
+            ),
+            step(
+                "replace",
+                json!({"columns": ["opened"], "find": "-", "with": "/"}),
+                "dates with slashes for the paper forms",
+            ),
+            step(
+                "fill",
+                json!({"columns": ["notes"], "value": "none"}),
+                "no blank notes",
+            ),
+            step(
+                "rename",
+                json!({"columns": [{"from": "labour_hours", "to": "hours"}]}),
+                "the ledger's name",
+            ),
         ]);
-        let steps = plan["steps"].as_array_mut().expect("the plan has steps");
-        let at = steps.len() - 1;
-        for (k, step) in more.as_array().expect("a list").iter().enumerate() {
-            steps.insert(at + k, step.clone());
-        }
     }
-    current_form(plan)
+    let mut summary = step(
+        "summarize",
+        json!({"by": ["technician"], "aggregates": [{"func": "sum", "column": "parts_cost"}]}),
+        "parts cost per technician",
+    );
+    summary["save_as"] = json!("totals");
+    steps.push(summary);
+    json!({
+        "sluice_plan": sluice::plan::PLAN_FORMAT,
+        "purpose": "Work orders of the Quillby shop cleaned and summed per technician (the ops benchmark)",
+        "sources": [
+            {"dataset": "orders", "file": file.display().to_string(), "reason": "the generated Quillby work-order export"},
+        ],
+        "steps": steps,
+    })
 }
 
 // ---------------------------------------------------------------------------------------------
-// The replay benchmark
+// The reproduce benchmark
 
-/// Replay may cost this much more than the plain run it checks (a fraction).
+/// Reproducing may cost this much more than the plain run it checks (a fraction).
 const REPLAY_OVERHEAD: f64 = 0.10;
 
 fn replay_bench(ctx: &Ctx) -> Result<Value> {
-    println!("== replay: `sluice replay totals` (every step computed again, every hash checked) vs a plain `sluice run` of the same plan ==");
+    println!("== reproduce: `sluice reproduce totals` (every step computed again, every hash checked) vs a plain `sluice run` of the same plan ==");
     println!("   the ops benchmark's plan and data: trim, case, dedupe, number, drop, summarize");
     let mut sizes = Vec::new();
     let mut all_pass = true;
-    for n in ctx.rows_for(Bench::Replay) {
+    for n in ctx.rows_for(Bench::Reproduce) {
         let (size, pass) = replay_size(ctx, n)?;
         sizes.push(size);
         all_pass &= pass;
     }
-    println!("replay: {}", verdict(all_pass));
+    println!("reproduce: {}", verdict(all_pass));
     Ok(with_header(
         ctx,
-        "replay",
+        "reproduce",
         json!({
         "runs_requested": ctx.runs,
         "notes": [
             "seconds are medians; peak memory is the largest ru_maxrss of the runs",
-            "plain run: sluice run PLAN in a fresh store (sluice init not timed): intake of the raw file and six recorded steps",
-            "replay: sluice replay totals --json in the store of the last plain run: the raw object re-hashed, every step computed again from it and its output and provenance hashes compared, nothing recorded",
+            "plain run: sluice run PLAN in a fresh store (sluice setup not timed): intake of the raw file and six recorded steps",
+            "reproduce: sluice reproduce totals --json in the store of the last plain run: the raw object re-hashed, every step computed again from it and its output and provenance hashes compared, nothing recorded",
             "warm page cache; sync before every timed run",
         ],
         "all_goals_met": all_pass,
@@ -2148,7 +2184,7 @@ fn replay_size(ctx: &Ctx, n: u64) -> Result<(Value, bool)> {
                 .arg(&store)
                 .arg("run")
                 .arg(&plan)
-                .env("SLUICE_AGENT", AGENT),
+                .envs(IDENTITY),
             &scratch.0.join("log-run"),
             "sluice run",
         )?;
@@ -2163,16 +2199,16 @@ fn replay_size(ctx: &Ctx, n: u64) -> Result<(Value, bool)> {
             Command::new(&ctx.sluice)
                 .arg("--store")
                 .arg(&store)
-                .args(["replay", "totals", "--json"])
-                .env("SLUICE_AGENT", AGENT),
+                .args(["reproduce", "totals", "--json"])
+                .envs(IDENTITY),
             &scratch.0.join(format!("log-replay-{i}")),
-            "sluice replay",
+            "sluice reproduce",
         )?;
         let report: Value =
-            serde_json::from_str(&out.stdout).context("reading `sluice replay --json`")?;
+            serde_json::from_str(&out.stdout).context("reading `sluice reproduce --json`")?;
         ensure!(
             report["reproduced"] == true,
-            "sluice replay did not reproduce the plan's output:\n{}",
+            "sluice reproduce did not reproduce the plan's output:\n{}",
             out.stdout
         );
         steps_checked = report["steps"].as_array().map_or(0, |s| s.len() as u64);
@@ -2185,18 +2221,18 @@ fn replay_size(ctx: &Ctx, n: u64) -> Result<(Value, bool)> {
             samples: run,
         },
         Row {
-            tool: "sluice replay (hashes checked)",
+            tool: "sluice reproduce (hashes checked)",
             key: "sluice_replay",
             samples: replay,
         },
     ];
     print_table(&rows, bytes);
-    println!("  replay checked {steps_checked} steps (the intake and every step of the plan) and reproduced them");
+    println!("  reproduce checked {steps_checked} steps (the intake and every step of the plan) and reproduced them");
     let overhead = rows[1].median_secs() / rows[0].median_secs() - 1.0;
     let cpu_ratio = rows[1].median_cpu_secs() / rows[0].median_cpu_secs();
-    println!("  replay CPU time / plain run CPU time = {cpu_ratio:.2} (moves less with the machine's load than the wall time)");
+    println!("  reproduce CPU time / plain run CPU time = {cpu_ratio:.2} (moves less with the machine's load than the wall time)");
     let goals = vec![Goal {
-        label: "replay time / plain run time - 1".into(),
+        label: "reproduce time / plain run time - 1".into(),
         value: overhead,
         goal: "< 0.10",
         pass: overhead < REPLAY_OVERHEAD,
@@ -2228,7 +2264,7 @@ fn replay_size(ctx: &Ctx, n: u64) -> Result<(Value, bool)> {
     ))
 }
 
-/// A fresh store (not timed), then `sluice run PLAN` and `sluice cat orders -o cleaned.csv`
+/// A fresh store (not timed), then `sluice run PLAN` and `sluice retrieve orders -o cleaned.csv`
 /// (timed). Returns the two timed together and the run alone, what the run added to the store,
 /// and the result as read back from the store afterwards (not timed).
 fn sluice_ops(
@@ -2252,10 +2288,7 @@ fn sluice_ops(
     .with_context(|| format!("writing {}", plan.display()))?;
     let sluice = |args: &[&std::ffi::OsStr]| {
         let mut cmd = Command::new(&ctx.sluice);
-        cmd.arg("--store")
-            .arg(&store)
-            .args(args)
-            .env("SLUICE_AGENT", AGENT);
+        cmd.arg("--store").arg(&store).args(args).envs(IDENTITY);
         cmd
     };
     let (run_sample, _) = run_measured(
@@ -2326,7 +2359,7 @@ fn sluice_totals(csv: &str) -> Result<Vec<(String, u64, f64)>> {
     let mut lines = csv.lines();
     ensure!(
         lines.next() == Some("technician,count,sum_parts_cost"),
-        "unexpected header in `sluice cat totals`: {csv:?}"
+        "unexpected header in `sluice retrieve totals`: {csv:?}"
     );
     lines
         .map(|line| {
@@ -2340,7 +2373,7 @@ fn sluice_totals(csv: &str) -> Result<Vec<(String, u64, f64)>> {
                     sum.parse()
                         .with_context(|| format!("reading the sum in {line:?}"))?,
                 )),
-                _ => bail!("unexpected row in `sluice cat totals`: {line:?}"),
+                _ => bail!("unexpected row in `sluice retrieve totals`: {line:?}"),
             }
         })
         .collect()
@@ -2486,13 +2519,13 @@ fn ops_goals(rows: &[Row], footprint: &Footprint, bytes: u64) -> Vec<Goal> {
     let provenance = percent(footprint.provenance(), bytes);
     vec![
         Goal {
-            label: "pandas time / sluice (run + cat) time".into(),
+            label: "pandas time / sluice (run + retrieve) time".into(),
             value: vs_pandas,
             goal: ">= 5",
             pass: vs_pandas >= OPS_PANDAS_SPEEDUP,
         },
         Goal {
-            label: "polars time / sluice (run + cat) time".into(),
+            label: "polars time / sluice (run + retrieve) time".into(),
             value: vs_polars,
             goal: ">= 1",
             pass: vs_polars >= OPS_POLARS_SPEEDUP,
@@ -2585,7 +2618,15 @@ const EXPLAIN_GOAL_GROUP: u64 = 1_250_000;
 /// changing cells, dropping rows or adding a column, then a summary by `shop`, a column made
 /// constant on the way, so that the summary has one group holding nearly every row.
 fn trace_plan(file: &Path) -> Value {
-    let step = |apply: Value, why: &str| json!({"on": "orders", "apply": apply, "why": why});
+    // Each step written as the operation's name beside its settings, then placed in the plan's
+    // form: `clean` names the operation, `settings` holds the rest.
+    let step = |mut settings: Value, reason: &str| {
+        let op = settings
+            .as_object_mut()
+            .and_then(|m| m.remove("op"))
+            .expect("every step names its operation");
+        json!({"dataset": "orders", "clean": op, "settings": settings, "reason": reason})
+    };
     let mut steps = vec![
         step(
             json!({"op": "trim", "inner": true}),
@@ -2671,24 +2712,21 @@ fn trace_plan(file: &Path) -> Value {
         ),
     ];
     debug_assert_eq!(steps.len(), TRACE_STEPS);
-    steps.push(json!({"on": "orders", "apply": {"op": "summarize", "by": ["shop"],
-        "aggregates": [{"func": "sum", "column": "parts_cost"}, {"func": "sum", "column": "labour_hours"}]},
-        "as": "summary", "why": "parts and hours of the shop"}));
-    current_form(json!({
-        "sluice_plan": 1,
-        "description": "Twenty cleaning steps on the Quillby work orders, then one summary (the trace benchmark)",
-        "inputs": [
-            {"name": "orders", "file": file.display().to_string(), "why": "the generated Quillby work-order export"},
+    let mut summary = step(
+        json!({"op": "summarize", "by": ["shop"],
+               "aggregates": [{"func": "sum", "column": "parts_cost"}, {"func": "sum", "column": "labour_hours"}]}),
+        "parts and hours of the shop",
+    );
+    summary["save_as"] = json!("summary");
+    steps.push(summary);
+    json!({
+        "sluice_plan": sluice::plan::PLAN_FORMAT,
+        "purpose": "Twenty cleaning steps on the Quillby work orders, then one summary (the trace benchmark)",
+        "sources": [
+            {"dataset": "orders", "file": file.display().to_string(), "reason": "the generated Quillby work-order export"},
         ],
         "steps": steps,
-    }))
-}
-
-/// A plan written here in the compact form of format 1, in the current form (converted by
-/// `sluice::plan::upgrade`, the converter `sluice upgrade` runs).
-fn current_form(old: Value) -> Value {
-    let text = sluice::plan::upgrade(&old.to_string()).expect("the benchmark's plan converts");
-    serde_json::from_str(&text).expect("the converter writes JSON")
+    })
 }
 
 fn trace_bench(ctx: &Ctx) -> Result<Value> {
@@ -2824,14 +2862,14 @@ fn trace_size(ctx: &Ctx, n: u64) -> Result<(Value, Vec<f64>, bool)> {
         .arg("run")
         .arg(&plan)
         .arg("--json")
-        .env("SLUICE_AGENT", AGENT);
+        .envs(IDENTITY);
     let (built, out) = run_measured(&mut run, &scratch.0.join("log-run"), "sluice run")?;
     let done: Value = serde_json::from_str(&out.stdout).context("reading `sluice run --json`")?;
     let applied: Vec<&Value> = done["done"]
         .as_array()
         .ok_or_else(|| anyhow!("no done list in `sluice run --json`"))?
         .iter()
-        .filter(|d| d["kind"] == "apply")
+        .filter(|d| d["kind"] == "clean")
         .collect();
     ensure!(
         done["completed"] == true
@@ -2841,16 +2879,16 @@ fn trace_size(ctx: &Ctx, n: u64) -> Result<(Value, Vec<f64>, bool)> {
         TRACE_STEPS,
         out.stdout
     );
-    let show = |reference: &str| -> Result<Value> {
-        let text = sluice_quiet(ctx, &store, &["show", reference, "--json"].map(OsStr::new))?;
+    let about = |reference: &str| -> Result<Value> {
+        let text = sluice_quiet(ctx, &store, &["about", reference, "--json"].map(OsStr::new))?;
         serde_json::from_str(&text)
-            .with_context(|| format!("reading `sluice show {reference} --json`"))
+            .with_context(|| format!("reading `sluice about {reference} --json`"))
     };
-    let latest = show("orders")?;
+    let latest = about("orders")?;
     let latest_rows = latest["version"]["n_rows"]
         .as_u64()
-        .ok_or_else(|| anyhow!("no version.n_rows in `sluice show orders --json`"))?;
-    let latest_label = format!("orders@{}", latest["version"]["seq"].as_u64().unwrap_or(0));
+        .ok_or_else(|| anyhow!("no version.n_rows in `sluice about orders --json`"))?;
+    let latest_label = format!("orders:v{}", latest["version"]["seq"].as_u64().unwrap_or(0));
     println!(
         "  history: {} steps and a summary built by `sluice run` in {:.1} s ({:.0} MiB peak); {latest_label} has {} rows × {} columns",
         TRACE_STEPS,
@@ -2927,10 +2965,7 @@ fn trace_size(ctx: &Ctx, n: u64) -> Result<(Value, Vec<f64>, bool)> {
     }
     let sluice = |args: &[&str]| {
         let mut c = Command::new(&ctx.sluice);
-        c.arg("--store")
-            .arg(&store)
-            .args(args)
-            .env("SLUICE_AGENT", AGENT);
+        c.arg("--store").arg(&store).args(args).envs(IDENTITY);
         c
     };
 
@@ -3007,7 +3042,7 @@ fn trace_size(ctx: &Ctx, n: u64) -> Result<(Value, Vec<f64>, bool)> {
         println!("    median ms by row: {rows}");
     }
     for r in &explain_rows {
-        line(format!("explain summary@1 --row 1 --column {}", r.tool), r);
+        line(format!("explain summary:v1 --row 1 --column {}", r.tool), r);
     }
     if let Some(worst) = trace_rows
         .iter()
@@ -3127,18 +3162,18 @@ fn prepare_size(ctx: &Ctx, n: u64) -> Result<(PathBuf, u64, Option<f64>)> {
     Ok((file, bytes, background))
 }
 
-/// `sluice init STORE` (not timed): a fresh, empty store.
+/// `sluice setup STORE` (not timed): a fresh, empty store.
 fn sluice_init(ctx: &Ctx, store: &Path) -> Result<()> {
     let status = Command::new(&ctx.sluice)
         .arg("setup")
         .arg(store)
-        .env("SLUICE_AGENT", AGENT)
+        .envs(IDENTITY)
         .stdout(Stdio::null())
         .output()
-        .context("running `sluice init`")?;
+        .context("running `sluice setup`")?;
     ensure!(
         status.status.success(),
-        "`sluice init {}` failed: {}",
+        "`sluice setup {}` failed: {}",
         store.display(),
         String::from_utf8_lossy(&status.stderr)
     );
