@@ -106,7 +106,19 @@ pub struct ColumnarTable {
     /// Parquet: the writer the file names.
     pub created_by: Option<String>,
     pub n_nulls: u64,
+    /// What the table holds in memory as text so far: the cells' bytes plus
+    /// [`CELL_OVERHEAD`] each, counted against [`MAX_COLUMNAR_TEXT_BYTES`].
+    pub held_bytes: u64,
 }
+
+/// The most a columnar file's table may hold in memory as text. A columnar file is converted
+/// whole, and a small file can expand a thousandfold (a dictionary-encoded column repeating a
+/// long value, a page of one value compressed away), so its expansion is counted as the
+/// batches are turned into text and refused past this bound, before memory runs out.
+pub const MAX_COLUMNAR_TEXT_BYTES: u64 = 2 << 30;
+
+/// What a cell costs in memory besides its bytes (a `String`'s own size), for the bound.
+pub const CELL_OVERHEAD: u64 = std::mem::size_of::<String>() as u64;
 
 fn unreadable(path: &Path, format: ColumnarFormat, detail: impl std::fmt::Display) -> Error {
     Error::input(
@@ -461,6 +473,7 @@ fn push_batch(
     batch: &RecordBatch,
     path: &Path,
     format: ColumnarFormat,
+    limit: u64,
 ) -> Result<()> {
     let n = batch.num_rows();
     let first = table.rows.len();
@@ -478,6 +491,21 @@ fn push_batch(
             )
         })?;
         table.n_nulls += col.logical_null_count() as u64;
+        table.held_bytes = texts.iter().fold(table.held_bytes, |held, t| {
+            held.saturating_add(t.len() as u64 + CELL_OVERHEAD)
+        });
+        if table.held_bytes > limit {
+            return Err(unreadable(
+                path,
+                format,
+                format!(
+                    "its table grows past {} MiB as text by column \"{}\" of the rows up to {}; a columnar file is converted in memory, so split it (by row group) or save it as CSV and take that in",
+                    limit >> 20,
+                    table.header.get(j).map_or("", |s| s),
+                    first + n
+                ),
+            ));
+        }
         for (row, t) in table.rows[first..].iter_mut().zip(texts.drain(..)) {
             row.push(t);
         }
@@ -488,12 +516,17 @@ fn push_batch(
 /// Reads a whole columnar file held in `bytes`.
 pub fn read(bytes: &[u8], path: &Path, format: ColumnarFormat) -> Result<ColumnarTable> {
     match format {
-        ColumnarFormat::Parquet => read_parquet(bytes, path, None),
-        ColumnarFormat::ArrowIpc => read_ipc(bytes, path),
+        ColumnarFormat::Parquet => read_parquet(bytes, path, None, MAX_COLUMNAR_TEXT_BYTES),
+        ColumnarFormat::ArrowIpc => read_ipc(bytes, path, MAX_COLUMNAR_TEXT_BYTES),
     }
 }
 
-fn read_parquet(bytes: &[u8], path: &Path, only_group: Option<usize>) -> Result<ColumnarTable> {
+fn read_parquet(
+    bytes: &[u8],
+    path: &Path,
+    only_group: Option<usize>,
+    limit: u64,
+) -> Result<ColumnarTable> {
     use parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder;
     let format = ColumnarFormat::Parquet;
     let data = bytes::Bytes::copy_from_slice(bytes);
@@ -534,7 +567,7 @@ fn read_parquet(bytes: &[u8], path: &Path, only_group: Option<usize>) -> Result<
         .map_err(|e| unreadable(path, format, e))?;
     for batch in reader {
         let batch = batch.map_err(|e| unreadable(path, format, e))?;
-        push_batch(&mut table, &batch, path, format)?;
+        push_batch(&mut table, &batch, path, format, limit)?;
     }
     Ok(table)
 }
@@ -542,7 +575,7 @@ fn read_parquet(bytes: &[u8], path: &Path, only_group: Option<usize>) -> Result<
 /// The Arrow IPC file format starts (and ends) with these bytes; the stream format does not.
 const IPC_FILE_MAGIC: &[u8] = b"ARROW1";
 
-fn read_ipc(bytes: &[u8], path: &Path) -> Result<ColumnarTable> {
+fn read_ipc(bytes: &[u8], path: &Path, limit: u64) -> Result<ColumnarTable> {
     let format = ColumnarFormat::ArrowIpc;
     let mut table = ColumnarTable::default();
     let start = |schema: &SchemaRef, table: &mut ColumnarTable| -> Result<()> {
@@ -557,7 +590,7 @@ fn read_ipc(bytes: &[u8], path: &Path) -> Result<ColumnarTable> {
         for batch in reader {
             let batch = batch.map_err(|e| unreadable(path, format, e))?;
             table.groups.push(batch.num_rows() as u64);
-            push_batch(&mut table, &batch, path, format)?;
+            push_batch(&mut table, &batch, path, format, limit)?;
         }
     } else {
         let reader = arrow_ipc::reader::StreamReader::try_new(std::io::Cursor::new(bytes), None)
@@ -566,7 +599,7 @@ fn read_ipc(bytes: &[u8], path: &Path) -> Result<ColumnarTable> {
         for batch in reader {
             let batch = batch.map_err(|e| unreadable(path, format, e))?;
             table.groups.push(batch.num_rows() as u64);
-            push_batch(&mut table, &batch, path, format)?;
+            push_batch(&mut table, &batch, path, format, limit)?;
         }
     }
     Ok(table)
@@ -604,8 +637,11 @@ pub fn value_at(
     })?;
     let (table, at) = match format {
         // Only the row group that holds the row is decoded.
-        ColumnarFormat::Parquet => (read_parquet(bytes, path, Some(g))?, in_group),
-        ColumnarFormat::ArrowIpc => (read_ipc(bytes, path)?, row),
+        ColumnarFormat::Parquet => (
+            read_parquet(bytes, path, Some(g), MAX_COLUMNAR_TEXT_BYTES)?,
+            in_group,
+        ),
+        ColumnarFormat::ArrowIpc => (read_ipc(bytes, path, MAX_COLUMNAR_TEXT_BYTES)?, row),
     };
     let c = table
         .header
@@ -642,6 +678,32 @@ mod tests {
             "1969-12-31T23:59:59.999999"
         );
         assert_eq!(duration_text(-1_500, &TimeUnit::Millisecond), "-PT1.500S");
+    }
+
+    /// An Arrow IPC file of `rows` rows repeating one value of `width` bytes.
+    fn repeated(rows: usize, width: usize) -> Vec<u8> {
+        use arrow_array::{ArrayRef, StringArray};
+        let value = "x".repeat(width);
+        let col: ArrayRef = std::sync::Arc::new(StringArray::from(vec![value.as_str(); rows]));
+        let batch = RecordBatch::try_from_iter([("note", col)]).unwrap();
+        let mut out = Vec::new();
+        let mut w = arrow_ipc::writer::FileWriter::try_new(&mut out, &batch.schema()).unwrap();
+        w.write(&batch).unwrap();
+        w.finish().unwrap();
+        drop(w);
+        out
+    }
+
+    #[test]
+    fn a_table_that_grows_past_the_bound_as_text_is_refused() {
+        let bytes = repeated(1000, 1000);
+        let path = Path::new("notes.arrow");
+        // 1000 cells of 1000 bytes: 1,000,000 bytes of text and the cells' own size.
+        let whole = 1000 * (1000 + CELL_OVERHEAD);
+        let t = read_ipc(&bytes, path, whole).expect("exactly at the bound is accepted");
+        assert_eq!((t.rows.len(), t.held_bytes), (1000, whole));
+        let e = read_ipc(&bytes, path, whole - 1).unwrap_err().to_string();
+        assert!(e.contains("grows past") && e.contains("\"note\""), "{e}");
     }
 
     #[test]
