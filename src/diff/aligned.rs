@@ -26,7 +26,7 @@ use std::sync::mpsc::{sync_channel, Receiver};
 use similar::algorithms::{myers, DiffHook};
 
 use super::read::{both, cuttable, each_row, row_index, RawRows, RowRef, RowStore};
-use super::scan::{scan, ScanPlan};
+use super::scan::scan_both;
 use super::{
     cell_diffs, count_by_column, equal_cells, push_pair, settle_columns, Alignment, Change,
     ChangeKind, Diff, Layout, MatchedBy, RowPairing,
@@ -167,22 +167,11 @@ pub(super) fn run(
         }
         (fa, fb, Vec::new(), Vec::new())
     } else {
-        let plan = |fp: Option<&'_ [usize]>, cand: &'_ [usize], v: &Version| {
-            scan(
-                objects,
-                v,
-                &ScanPlan {
-                    key: None,
-                    fp_cols: fp,
-                    cand_cols: cand,
-                    seed: 0,
-                    null_tokens: &v.null_tokens,
-                },
-            )
-        };
-        let (sa, sb) = both(
-            || plan(fp_a.as_deref(), &cand_a, a),
-            || plan(fp_b.as_deref(), &cand_b, b),
+        let (sa, sb) = scan_both(
+            objects,
+            (a, b),
+            (fp_a.as_deref(), fp_b.as_deref()),
+            (&cand_a, &cand_b),
         )?;
         (sa.fps, sb.fps, sa.cand, sb.cand)
     };

@@ -19,8 +19,8 @@ use super::listed::{compare_pairs, Listing};
 use super::read::{both, cuttable, each_row};
 use super::scan::{scan, scan_keys, Scan, ScanPlan};
 use super::{
-    compared_hashes, push_pair, settle_columns, Diff, DuplicateGroup, DuplicateKeys, Layout,
-    MatchedBy, RowPairing,
+    pairs_that_differ, push_pair, Diff, DuplicateGroup, DuplicateKeys, Layout, MatchedBy,
+    RowPairing,
 };
 use crate::error::{Error, ErrorKind, Result};
 use crate::model::Version;
@@ -196,22 +196,18 @@ pub(super) fn run(
         ..
     } = sb;
 
-    let (compared, columns) = settle_columns(
-        a,
-        b,
+    let super::Settled {
+        compared,
+        columns,
+        to_compare,
+    } = pairs_that_differ(
+        (a, b),
         &layout,
         (&cand_a, &cand_b),
         (&hash_a, &hash_b),
-        &mut |check| pairs.iter().all(|&(x, y)| check(x, y)),
+        (&fps_a, &fps_b),
+        &pairs,
     );
-    let renamed_hashes = compared_hashes(&compared, (&cand_a, &cand_b), (&hash_a, &hash_b));
-    let differs = |&(x, y): &(u64, u64)| {
-        fps_a[x as usize] != fps_b[y as usize]
-            || renamed_hashes
-                .iter()
-                .any(|(ha, hb)| ha[x as usize] != hb[y as usize])
-    };
-    let to_compare: Vec<(u64, u64)> = pairs.iter().copied().filter(differs).collect();
     drop(fps_a);
     drop(fps_b);
 

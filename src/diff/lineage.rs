@@ -12,8 +12,8 @@
 
 use super::listed::{compare_pairs, Listing};
 use super::read::{both, row_index};
-use super::scan::{scan, ScanPlan};
-use super::{compared_hashes, push_pair, settle_columns, Diff, Layout, MatchedBy, RowPairing};
+use super::scan::scan_both;
+use super::{pairs_that_differ, push_pair, Diff, Layout, MatchedBy, RowPairing};
 use crate::error::{ErrorKind, Result};
 use crate::model::{LineageKind, StepKind, Version};
 use crate::provenance;
@@ -206,22 +206,11 @@ pub(super) fn assemble(
         let ((fa, _), (fb, _)) = both(|| row_index(objects, a), || row_index(objects, b))?;
         (fa, fb, Vec::new(), Vec::new())
     } else {
-        let plan = |fp: Option<&'_ [usize]>, cand: &'_ [usize], v: &Version| {
-            scan(
-                objects,
-                v,
-                &ScanPlan {
-                    key: None,
-                    fp_cols: fp,
-                    cand_cols: cand,
-                    seed: 0,
-                    null_tokens: &v.null_tokens,
-                },
-            )
-        };
-        let (sa, sb) = both(
-            || plan(fp_a.as_deref(), &cand_a, a),
-            || plan(fp_b.as_deref(), &cand_b, b),
+        let (sa, sb) = scan_both(
+            objects,
+            (a, b),
+            (fp_a.as_deref(), fp_b.as_deref()),
+            (&cand_a, &cand_b),
         )?;
         (sa.fps, sb.fps, sa.cand, sb.cand)
     };
@@ -239,22 +228,18 @@ pub(super) fn assemble(
     if pairs.iter().any(|&(x, y)| x >= a.n_rows || y >= b.n_rows) {
         return Err(lost());
     }
-    let (compared, columns) = settle_columns(
-        a,
-        b,
+    let super::Settled {
+        compared,
+        columns,
+        to_compare,
+    } = pairs_that_differ(
+        (a, b),
         &layout,
         (&cand_a, &cand_b),
         (&hash_a, &hash_b),
-        &mut |check| pairs.iter().all(|&(x, y)| check(x, y)),
+        (&fps_a, &fps_b),
+        &pairs,
     );
-    let renamed_hashes = compared_hashes(&compared, (&cand_a, &cand_b), (&hash_a, &hash_b));
-    let differs = |&(x, y): &(u64, u64)| {
-        fps_a[x as usize] != fps_b[y as usize]
-            || renamed_hashes
-                .iter()
-                .any(|(ha, hb)| ha[x as usize] != hb[y as usize])
-    };
-    let to_compare: Vec<(u64, u64)> = pairs.iter().copied().filter(differs).collect();
     let mut in_pair_a = vec![false; a.n_rows as usize];
     let mut in_pair_b = vec![false; b.n_rows as usize];
     for &(x, y) in &pairs {

@@ -541,6 +541,44 @@ pub(crate) fn compared_hashes<'h>(
         .collect()
 }
 
+/// For rows paired by key or lineage: the columns compared and their changes
+/// ([`settle_columns`] over `pairs`), and the pairs whose rows differ, by their fingerprints or
+/// by the cells of a renamed column, which the second pass reads again.
+pub(crate) fn pairs_that_differ(
+    (a, b): (&Version, &Version),
+    layout: &Layout,
+    cand: (&[usize], &[usize]),
+    hashes: (&[Vec<u64>], &[Vec<u64>]),
+    (fps_a, fps_b): (&[u64], &[u64]),
+    pairs: &[(u64, u64)],
+) -> Settled {
+    let (compared, columns) = settle_columns(a, b, layout, cand, hashes, &mut |check| {
+        pairs.iter().all(|&(x, y)| check(x, y))
+    });
+    let renamed_hashes = compared_hashes(&compared, cand, hashes);
+    let differs = |&(x, y): &(u64, u64)| {
+        fps_a[x as usize] != fps_b[y as usize]
+            || renamed_hashes
+                .iter()
+                .any(|(ha, hb)| ha[x as usize] != hb[y as usize])
+    };
+    let to_compare = pairs.iter().copied().filter(differs).collect();
+    Settled {
+        compared,
+        columns,
+        to_compare,
+    }
+}
+
+/// What [`pairs_that_differ`] finds.
+pub(crate) struct Settled {
+    /// The compared column pairs (A's column, B's column), in B's order.
+    pub compared: Vec<(usize, usize)>,
+    pub columns: ColumnChanges,
+    /// The pairs (row in A, row in B) whose rows differ.
+    pub to_compare: Vec<(u64, u64)>,
+}
+
 /// Decides renames from the per-row hashes of the candidate columns over the matched pairs
 /// `pairs` (row in A, row in B), greedily in header order; returns the compared columns (in B's
 /// order) and the column changes.

@@ -120,6 +120,30 @@ pub fn scan_keys(
     Ok(s)
 }
 
+/// [`scan`] of both versions at once, without a key: each side's fingerprint columns (`None`:
+/// the whole row) and candidate columns to hash.
+pub fn scan_both(
+    objects: &Objects,
+    (a, b): (&Version, &Version),
+    (fp_a, fp_b): (Option<&[usize]>, Option<&[usize]>),
+    (cand_a, cand_b): (&[usize], &[usize]),
+) -> Result<(Scan, Scan)> {
+    let plan = |fp: Option<&[usize]>, cand: &[usize], v: &Version| {
+        scan(
+            objects,
+            v,
+            &ScanPlan {
+                key: None,
+                fp_cols: fp,
+                cand_cols: cand,
+                seed: 0,
+                null_tokens: &v.null_tokens,
+            },
+        )
+    };
+    super::read::both(|| plan(fp_a, cand_a, a), || plan(fp_b, cand_b, b))
+}
+
 pub fn scan(objects: &Objects, v: &Version, plan: &ScanPlan<'_>) -> Result<Scan> {
     let n = v.n_rows as usize;
     let mut s = Scan {
