@@ -125,6 +125,20 @@ fn store() -> Sandbox {
     s
 }
 
+/// [`store`] with its latest version (`orders:v3`) approved by Ada Moss.
+fn approved() -> Sandbox {
+    let s = store();
+    s.ok(&[
+        "endorse",
+        "orders",
+        "--meaning",
+        "approved",
+        "--signing-key",
+        "ada",
+    ]);
+    s
+}
+
 fn db(s: &Sandbox) -> rusqlite::Connection {
     rusqlite::Connection::open(s.path().join("sluice-store/lineage.db")).unwrap()
 }
@@ -262,15 +276,7 @@ fn ssh_keygen_verifies_each_kind_of_sign_off_and_rejects_one_changed_byte() {
 
 #[test]
 fn the_signature_about_shows_is_the_one_ssh_keygen_accepts() {
-    let s = store();
-    s.ok(&[
-        "endorse",
-        "orders",
-        "--meaning",
-        "approved",
-        "--signing-key",
-        "ada",
-    ]);
+    let s = approved();
     let about = s.json(&["about", "orders", "--json"]);
     assert_eq!(about["signed"], true, "{about}");
     let so = &about["sign_offs"][0];
@@ -608,15 +614,7 @@ fn a_store_cut_short_before_its_signed_head_is_found_by_the_endorsement_kept_out
 #[test]
 fn verify_names_a_bad_a_missing_and_an_unknown_key_signature() {
     // Bad: one byte of the stored signature changed.
-    let s = store();
-    s.ok(&[
-        "endorse",
-        "orders",
-        "--meaning",
-        "approved",
-        "--signing-key",
-        "ada",
-    ]);
+    let s = approved();
     let c = db(&s);
     let sig: String = c
         .query_row(
@@ -642,15 +640,7 @@ fn verify_names_a_bad_a_missing_and_an_unknown_key_signature() {
     );
 
     // Bad: the meaning changed in the record (approved -> reviewed), the signature kept.
-    let s = store();
-    s.ok(&[
-        "endorse",
-        "orders",
-        "--meaning",
-        "approved",
-        "--signing-key",
-        "ada",
-    ]);
+    let s = approved();
     db(&s)
         .execute(
             "UPDATE endorsements SET meaning = 'reviewed' WHERE kind = 'version'",
@@ -661,15 +651,7 @@ fn verify_names_a_bad_a_missing_and_an_unknown_key_signature() {
     assert_named(&found, "signature_bad", "orders:v3", "meaning");
 
     // Missing: the signature emptied.
-    let s = store();
-    s.ok(&[
-        "endorse",
-        "orders",
-        "--meaning",
-        "approved",
-        "--signing-key",
-        "ada",
-    ]);
+    let s = approved();
     db(&s)
         .execute(
             "UPDATE endorsements SET signature = '' WHERE kind = 'version'",
@@ -685,15 +667,7 @@ fn verify_names_a_bad_a_missing_and_an_unknown_key_signature() {
 
     // Unknown key: the admission taken out with its audit entry and the chain rebuilt, so that
     // the chain and the row commitments hold and only the signature check sees it.
-    let s = store();
-    s.ok(&[
-        "endorse",
-        "orders",
-        "--meaning",
-        "approved",
-        "--signing-key",
-        "ada",
-    ]);
+    let s = approved();
     let c = db(&s);
     c.execute("DELETE FROM endorsements WHERE kind = 'admission'", [])
         .unwrap();
@@ -725,15 +699,7 @@ fn verify_names_a_bad_a_missing_and_an_unknown_key_signature() {
 
 #[test]
 fn a_withdrawn_step_or_a_rerun_makes_unsigned_versions() {
-    let s = store();
-    s.ok(&[
-        "endorse",
-        "orders",
-        "--meaning",
-        "approved",
-        "--signing-key",
-        "ada",
-    ]);
+    let s = approved();
     assert_eq!(s.json(&["about", "orders:v3", "--json"])["signed"], true);
     // Withdrawing the trim records the table before it (v4) and the filter again on top (v5).
     s.ok(&["withdraw", "orders:v2", "--why", "the spaces mark a branch"]);
@@ -900,15 +866,7 @@ fn a_failed_sign_off_leaves_the_store_as_it_was() {
 /// it failed (and the report's verification fails with it).
 #[test]
 fn the_report_shows_each_sign_off_and_whether_it_verifies() {
-    let s = store();
-    s.ok(&[
-        "endorse",
-        "orders",
-        "--meaning",
-        "approved",
-        "--signing-key",
-        "ada",
-    ]);
+    let s = approved();
     s.ok(&["report", "orders", "-o", "orders.json"]);
     let report: Value =
         serde_json::from_str(&std::fs::read_to_string(s.path().join("orders.json")).unwrap())
