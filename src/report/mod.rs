@@ -169,26 +169,17 @@ pub struct SignOffLine {
     pub status: SignOffStatus,
 }
 
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
-#[serde(rename_all = "snake_case")]
-pub enum SignOffStatus {
-    Verified,
-    BadSignature,
-    MissingSignature,
-    UnknownKey,
-    NotChecked,
-}
+/// How a sign-off's signature checks out: the sign-off module's own verdict.
+pub use crate::endorse::SignatureStatus as SignOffStatus;
 
-impl SignOffStatus {
-    /// In words, for a person.
-    pub fn words(self) -> &'static str {
-        match self {
-            SignOffStatus::Verified => "signature verified",
-            SignOffStatus::BadSignature => "bad signature",
-            SignOffStatus::MissingSignature => "signature missing",
-            SignOffStatus::UnknownKey => "unknown key",
-            SignOffStatus::NotChecked => "not checked",
-        }
+/// A signature's verdict in the report's words.
+pub fn status_words(status: SignOffStatus) -> &'static str {
+    match status {
+        SignOffStatus::Verified => "signature verified",
+        SignOffStatus::BadSignature => "bad signature",
+        SignOffStatus::MissingSignature => "signature missing",
+        SignOffStatus::UnknownKey => "unknown key",
+        SignOffStatus::NotChecked => "not checked",
     }
 }
 
@@ -649,7 +640,6 @@ pub fn build(store: &mut Store, reference: &str, opts: &ReportOptions) -> Result
 
 /// The sign-offs of the subject version, each signature checked against the store's signatories.
 fn sign_off_lines(store: &Store, target: &Version) -> Result<Vec<SignOffLine>> {
-    use crate::endorse::SignatureStatus as S;
     Ok(crate::endorse::sign_offs_of_version(store, target, true)?
         .into_iter()
         .map(|x| SignOffLine {
@@ -657,13 +647,7 @@ fn sign_off_lines(store: &Store, target: &Version) -> Result<Vec<SignOffLine>> {
             name: x.name,
             at: x.at,
             fingerprint: x.fingerprint,
-            status: match x.status {
-                S::Verified => SignOffStatus::Verified,
-                S::BadSignature => SignOffStatus::BadSignature,
-                S::MissingSignature => SignOffStatus::MissingSignature,
-                S::UnknownKey => SignOffStatus::UnknownKey,
-                S::NotChecked => SignOffStatus::NotChecked,
-            },
+            status: x.status,
         })
         .collect())
 }

@@ -877,7 +877,7 @@ pub fn markdown(r: &Report) -> String {
                 md(&x.name),
                 utc(&x.at),
                 x.fingerprint,
-                x.status.words()
+                super::status_words(x.status)
             );
         }
         o.push('\n');
@@ -1605,7 +1605,7 @@ pub fn html(r: &Report) -> String {
                 esc(&x.name),
                 esc(&utc(&x.at)),
                 esc(&x.fingerprint),
-                esc(x.status.words())
+                esc(super::status_words(x.status))
             );
         }
         let _ = writeln!(o, "</tbody></table>");
