@@ -131,3 +131,20 @@ fn identities_of_older_stores_read_back_into_name_and_address() {
     assert_eq!(old.email.as_deref(), Some("pat@example.org"));
     assert_eq!(old.identity(), "Pat Mechanic (pat@example.org)");
 }
+
+#[test]
+fn with_no_user_in_the_environment_the_account_name_is_recorded() {
+    // Services and `env -i` start processes without USER, LOGNAME or USERNAME: the account the
+    // process runs as is still known to the system. Outside reference: coreutils' `id -un`
+    // names the same account.
+    let s = Sandbox::with_store();
+    let home = tempfile::tempdir().unwrap();
+    let expected = Command::new("id").arg("-un").output().unwrap();
+    assert!(expected.status.success());
+    let expected = String::from_utf8(expected.stdout)
+        .unwrap()
+        .trim()
+        .to_string();
+    assert!(!expected.is_empty());
+    assert_eq!(recorded_agent(&s, home.path(), &[], &[]), expected);
+}

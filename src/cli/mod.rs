@@ -48,7 +48,8 @@ impl Context<'_> {
         let env_email = env("SLUICE_EMAIL");
         let os_user = ["USER", "LOGNAME", "USERNAME"]
             .iter()
-            .find_map(|k| env(k).filter(|v| !v.is_empty()));
+            .find_map(|k| env(k).filter(|v| !v.is_empty()))
+            .or_else(account_name);
         let setting = match store {
             Some(s) => sluice::agent::store_setting(s)?,
             None => None,
@@ -273,4 +274,21 @@ pub fn write_text_to(
             Ok(true)
         }
     }
+}
+
+/// The name of the account this process runs as, from the system's account list, for when the
+/// environment names no user (services, containers, `env -i`): the owner of `/proc/self` is the
+/// process's user on Linux, and `/etc/passwd` maps that number to a name (common practice:
+/// passwd(5)). Elsewhere, or if either cannot be read, no name.
+fn account_name() -> Option<String> {
+    use std::os::unix::fs::MetadataExt;
+    let uid = std::fs::metadata("/proc/self").ok()?.uid();
+    let list = std::fs::read_to_string("/etc/passwd").ok()?;
+    list.lines().find_map(|line| {
+        let mut fields = line.split(':');
+        let name = fields.next()?;
+        let _password = fields.next()?;
+        let id: u32 = fields.next()?.parse().ok()?;
+        (id == uid && !name.is_empty()).then(|| name.to_string())
+    })
 }
