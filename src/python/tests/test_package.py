@@ -106,11 +106,15 @@ def test_compare_explain_report_and_timeline(store):
     store.receive(store.project / "repairs.csv", as_="repairs")
     store.clean("repairs", "trim", why="pads")
     c = store.compare("repairs:v1", "repairs:v2")
-    assert c["matched_by"]["by"] == "lineage"
-    assert c["rows_changed"] == 1
-    assert c["cells"] == [{"row_a": 1, "row_b": 1, "column": "shop",
-                           "old": " Quillby Cycle Mend ", "new": "Quillby Cycle Mend"}]
-    assert "Quillby Cycle Mend" in c._repr_html_()
+    assert c["paired_by"] == "lineage"
+    assert c["rows"]["changed"] == 1
+    [change] = c["changes"]
+    assert (change["from_row"], change["to_row"]) == (1, 1)
+    assert [(x["column"], x["old"], x["new"]) for x in change["cells"]] == [
+        ("shop", " Quillby Cycle Mend ", "Quillby Cycle Mend")]
+    # In a notebook: the compare screen's table, the removed spaces visible and marked.
+    page = c._repr_html_()
+    assert "<b>«·»</b>Quillby·Cycle·Mend<b>«·»</b>" in page and "<td>1 → 1</td>" in page
     store.clean("repairs", "summarize", why="labour per shop", by=["shop"],
                 aggregates=[{"column": "labour", "func": "sum"}], save_as="by_shop")
     total = store.version("by_shop")["header"][-1]
@@ -155,15 +159,15 @@ def test_a_plan_runs(store, monkeypatch):
                       {"dataset": "repairs", "clean": "dedupe", "reason": "repeats"}]}
     (store.project / "plan.json").write_text(json.dumps(plan), encoding="utf-8")
     out = store.run(store.project / "plan.json")
-    assert out["ok"]
-    assert [d["done"] for d in out["done"]] == ["received", "cleaned", "cleaned"]
+    assert out["completed"]
+    assert [d["kind"] for d in out["done"]] == ["input", "clean", "clean"]
     assert store.version("repairs")["n_rows"] == 4
     # The same plan on another file, bound from the current folder.
     (store.project / "next").mkdir()
     (store.project / "next" / "week2.csv").write_text(RAW.replace("7001", "7101"), encoding="utf-8")
     monkeypatch.chdir(store.project / "next")
     out = store.run(store.project / "plan.json", inputs={"repairs": "week2.csv"})
-    assert out["ok"] and store.read("repairs", typed=False)["ticket"][0] == "7101"
+    assert out["completed"] and store.read("repairs", typed=False)["ticket"][0] == "7101"
 
 
 def test_parquet_from_pyarrow_reads_back_to_its_values(store):
