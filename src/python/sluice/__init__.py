@@ -219,6 +219,11 @@ def _with_versions(out):
     return Record(out)
 
 
+def _types(types):
+    """Given column types as (column, type) pairs for the engine."""
+    return [(str(c), str(t)) for c, t in (types or {}).items()]
+
+
 def _bound(value):
     """A plan input's binding: a file (relative to the current folder, as on the command
     line) or a version reference."""
@@ -405,17 +410,19 @@ class Store:
 
     # Reading ---------------------------------------------------------------------------
 
-    def arrow(self, reference, typed=True):
+    def arrow(self, reference, typed=True, types=None):
         """A version's rows as a pyarrow Table (Arrow IPC from the engine, no CSV between):
-        typed from its profile (int64, exact decimal128, date32, text), or all text."""
-        data = _call("read_ipc", self.dir, reference, typed)
+        typed from its profile (int64, exact decimal128, date32, text), or all text; ``types``
+        gives columns their types (``{"paid": "decimal(12,2)", "at": "timestamp(ms, UTC)"}``,
+        as ``retrieve --column-type``), every value checked."""
+        data = _call("read_ipc", self.dir, reference, typed, _types(types))
         return ipc.open_file(pa.BufferReader(data)).read_all()
 
-    def read(self, reference, library="pandas", typed=True):
+    def read(self, reference, library="pandas", typed=True, types=None):
         """A version as a pandas (default) or polars DataFrame. Its rows carry their labels
         for ``record``: a pandas index named ``sluice_row``, a polars column ``sluice_row``
         (0-based rows of the version)."""
-        table = self.arrow(reference, typed)
+        table = self.arrow(reference, typed, types)
         label = self.version(reference).label
         if library == "pandas":
             frame = table.to_pandas()
@@ -429,10 +436,10 @@ class Store:
             return table
         raise ValueError("library: expected \"pandas\", \"polars\" or \"arrow\"")
 
-    def write(self, reference, path, format="csv"):
+    def write(self, reference, path, format="csv", types=None):
         """Writes a version's rows to ``path`` as ``retrieve --format`` does: csv, tsv, jsonl,
-        parquet or arrow."""
-        _call("write_file", self.dir, reference, format, os.fspath(path))
+        parquet or arrow; ``types`` as for ``arrow`` (parquet and arrow only)."""
+        _call("write_file", self.dir, reference, format, os.fspath(path), _types(types))
 
     def about(self, reference):
         return Record(json.loads(_call("about", self.dir, reference)))

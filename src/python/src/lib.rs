@@ -11,6 +11,7 @@ use pyo3::prelude::*;
 use pyo3::types::PyBytes;
 use serde_json::{json, Value};
 
+use sluice::columnar::write::GivenType;
 use sluice::intake::{IngestOptions, SourceOptions};
 use sluice::model::Agent;
 use sluice::ops::apply::ApplyOptions;
@@ -251,25 +252,49 @@ fn run_plan(
     }
 }
 
-/// A version's rows as Arrow IPC file bytes: typed from the profile, or every column as text.
+/// Column types given as (column, type) pairs, read as `retrieve --column-type` reads them.
+fn given_types(types: Vec<(String, String)>) -> PyResult<Vec<(String, GivenType)>> {
+    types
+        .into_iter()
+        .map(|(c, t)| {
+            GivenType::parse(&t)
+                .map(|g| (c.clone(), g))
+                .map_err(|e| InputError::new_err((format!("types[{c:?}]: {e}"), None::<String>)))
+        })
+        .collect()
+}
+
+/// A version's rows as Arrow IPC file bytes: typed from the profile, or every column as text,
+/// the `types` given as given.
 #[pyfunction]
+#[pyo3(signature = (dir, reference, typed, types=Vec::new()))]
 fn read_ipc<'py>(
     py: Python<'py>,
     dir: &str,
     reference: &str,
     typed: bool,
+    types: Vec<(String, String)>,
 ) -> PyResult<Bound<'py, PyBytes>> {
+    let given = given_types(types)?;
     let store = open(dir)?;
     let v = sluice::refs::resolve(&store.lineage, reference).map_err(raise)?;
     let mut out = Vec::new();
-    sluice::columnar::write::write_ipc(&store, &v, typed, &mut out).map_err(raise)?;
+    sluice::columnar::write::write_ipc(&store, &v, typed, &given, &mut out).map_err(raise)?;
     Ok(PyBytes::new(py, &out))
 }
 
 /// Writes a version's rows to `path` in `format` (csv, tsv, jsonl, parquet, arrow), through a
 /// temporary file renamed into place when complete.
 #[pyfunction]
-fn write_file(dir: &str, reference: &str, format: &str, path: &str) -> PyResult<()> {
+#[pyo3(signature = (dir, reference, format, path, types=Vec::new()))]
+fn write_file(
+    dir: &str,
+    reference: &str,
+    format: &str,
+    path: &str,
+    types: Vec<(String, String)>,
+) -> PyResult<()> {
+    let given = given_types(types)?;
     use sluice::columnar::write::OutFormat;
     use sluice::export::{Format, TextFormat};
     let format = match format {
@@ -291,7 +316,7 @@ fn write_file(dir: &str, reference: &str, format: &str, path: &str) -> PyResult<
     let tmp = target.with_extension("sluice-part");
     let io = |e: std::io::Error| raise(sluice::Error::io(target, e));
     let mut f = std::io::BufWriter::new(std::fs::File::create(&tmp).map_err(io)?);
-    let written = sluice::export::write_in(&store, &v, format, &mut f)
+    let written = sluice::export::write_in_with(&store, &v, format, &given, &mut f)
         .map_err(raise)
         .and_then(|()| std::io::Write::flush(&mut f).map_err(io));
     drop(f);
