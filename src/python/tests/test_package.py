@@ -258,3 +258,37 @@ def test_polars_code_that_keeps_the_row_id_column_is_exact(store):
     trail = store.trace("repairs", row=3, column="shop")
     assert trail["value"] == "annick bike hub"
     assert '"line": %d' % raw_lines()["7003"] in json.dumps(trail["end"])
+
+
+@pytest.mark.parametrize("fmt", ["parquet", "arrow"])
+def test_a_file_of_many_batches_is_taken_in_to_pyarrows_values(store, fmt):
+    # 20,000 rows in row groups (record batches) of 7,000: the intake converts batch by batch
+    # (8,192 rows at most), and with a key checked it holds the table whole; both give the
+    # rows pyarrow reads from the file, in order, and the same version.
+    import pyarrow.ipc as ipc
+    n = 20_000
+    t = pa.table({"ticket": pa.array(range(n), pa.int64()),
+                  "shop": pa.array(["Quillby" if i % 3 else None for i in range(n)]),
+                  "labour": pa.array([decimal_of(i) for i in range(n)], pa.decimal128(8, 2))})
+    path = store.project / ("many." + fmt)
+    if fmt == "parquet":
+        pq.write_table(t, path, row_group_size=7_000)
+    else:
+        with ipc.new_file(path, t.schema) as w:
+            for b in t.to_batches(max_chunksize=7_000):
+                w.write_batch(b)
+    streamed = store.receive(path, as_="many")
+    keyed = store.receive(path, as_="many_keyed", key=["ticket"])
+    assert streamed["version"]["hash"] == keyed["version"]["hash"]
+    back = store.arrow("many", typed=False)
+    want = pq.read_table(path) if fmt == "parquet" else ipc.open_file(path).read_all()
+    assert back.column("ticket").to_pylist() == [str(v) for v in want.column("ticket").to_pylist()]
+    assert back.column("shop").to_pylist() == want.column("shop").to_pylist()
+    assert back.column("labour").to_pylist() == [str(v) for v in want.column("labour").to_pylist()]
+    trail = store.trace("many", row=15_001, column="labour")
+    assert trail["value"] == str(want.column("labour")[15_000].as_py())
+
+
+def decimal_of(i):
+    import decimal
+    return decimal.Decimal(i % 9973) / 100
