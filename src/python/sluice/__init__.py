@@ -379,16 +379,17 @@ class Store:
         compared by column name. When the labels were lost (an index reset, the column
         dropped) or are not unique, the lineage is inferred by a diff, and the result's
         ``lineage`` and ``fallback`` say so."""
-        caller = inspect.stack()[1]
+        caller = inspect.currentframe().f_back
+        filename, lineno = caller.f_code.co_filename, caller.f_lineno
         if why is None or not str(why).strip():
             raise InputError("a step recorded from dataframe code needs a reason: give why=TEXT")
         if output is None:
-            return Recording(self, input, why, as_, library, caller.filename, caller.lineno)
+            return Recording(self, input, why, as_, library, filename, lineno)
         try:
-            source = inspect.getsource(caller.frame.f_code)
+            source = inspect.getsource(caller.f_code)
         except (OSError, TypeError):
             source = None
-        return self._record(input, output, why, as_, caller.filename, caller.lineno, source)
+        return self._record(input, output, why, as_, filename, lineno, source)
 
     def _record(self, input, output, why, as_, filename, lineno, source):
         reference = input if isinstance(input, str) else _source_of(input)

@@ -170,6 +170,9 @@ def test_a_with_block_that_raises_records_nothing(store):
         with store.record("repairs", why="forgot the output") as step:
             step.input.drop_duplicates()
     assert "step.output" in e.value.message
+    # A step without a reason is refused before the block runs.
+    with pytest.raises(sluice.InputError):
+        store.record("repairs")
     assert store.timeline() == before
 
 

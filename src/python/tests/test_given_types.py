@@ -124,6 +124,13 @@ def test_a_value_that_does_not_fit_is_refused_with_its_place(store, given, row, 
     assert e.value.position["line"] == row + 1
     assert e.value.position["column"] == list(TYPES).index(column) + 1
     assert not target.exists()
+    # The command refuses it alike: exit code 2, the same place, no file left behind.
+    done = subprocess.run([BIN, "retrieve", "jobs", "--format", "parquet", "--column-type",
+                           "%s=%s" % (column, given), "-o", str(target)],
+                          cwd=store.project, capture_output=True, text=True)
+    assert done.returncode == 2
+    assert "data row %d, column \"%s\"" % (row, column) in done.stderr
+    assert not target.exists()
 
 
 def test_types_that_cannot_be_given(store):
