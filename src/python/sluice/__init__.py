@@ -108,6 +108,27 @@ class Version(Record):
         return _html_table(self.label, shown)
 
 
+class About(Record):
+    """One version in full (``about --json``), shown in a notebook as the version, the step
+    that made it and its column profile as a table."""
+
+    def _repr_html_(self):
+        v = Version(self["version"])
+        step = self.get("step") or {}
+        head = "<p><b>%s</b> (blake3:%s): %d rows, %d columns%s</p>" % (
+            html.escape(v.label), html.escape(v["hash"][:16]), v["n_rows"], v["n_cols"],
+            "" if not step else "; made by step %s (%s) on %s, because: %s" % (
+                step.get("id"), html.escape(str(step.get("kind"))),
+                html.escape(str(step.get("started_at"))), html.escape(str(step.get("reason")))))
+        keys = ("name", "inferred_type", "n_blank", "n_distinct", "min", "max")
+        rows = "".join("<tr>%s</tr>" % "".join(
+            "<td style='text-align:left'>%s</td>" % _cell(p.get(k)) for k in keys)
+            for p in self.get("profile") or [])
+        return head + "<table><tr>%s</tr>%s</table>" % (
+            "".join("<th>%s</th>" % h for h in ("column", "type", "blank", "distinct", "min",
+                                                  "max")), rows)
+
+
 class Trail(Record):
     """Where a value came from: the hops from a cell back to its raw file (``trace --json``)."""
 
@@ -443,7 +464,9 @@ class Store:
         _call("write_file", self.dir, reference, format, os.fspath(path), _types(types))
 
     def about(self, reference):
-        return Record(json.loads(_call("about", self.dir, reference)))
+        """One version in full, as ``sluice about --json``: the version, its key, the step that
+        made it, its column profile, inspections and sign-offs."""
+        return About(json.loads(_call("about", self.dir, reference)))
 
     def version(self, reference):
         return Version(self.about(reference)["version"])

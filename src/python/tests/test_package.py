@@ -135,6 +135,10 @@ def test_compare_explain_report_and_timeline(store):
     assert [t["step"]["id"] for t in store.timeline("repairs")] == [1, 2, 3]
     v = store.version("by_shop")
     assert v.label == "by_shop:v1" and "by_shop:v1" in v._repr_html_()
+    # A version in full shows its profile: one table row per column, its type as profiled.
+    page = store.about("repairs:v2")._repr_html_()
+    assert page.count("<tr>") == 1 + 4 and "<td style='text-align:left'>labour</td>" in page
+    assert "labour per shop" not in page and "because: pads" in page
 
 
 def test_errors_carry_the_engine_message_and_record_nothing(store):
