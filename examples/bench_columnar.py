@@ -7,14 +7,18 @@ run (medians of --runs, default 3):
   read     a version of those rows read into pandas through the package (Store.read, typed
            from the profile, and typed=False, every column as text), against pandas.read_csv of
            `sluice retrieve`'s output (the same rows as CSV; default type inference, and
-           dtype=str).
+           dtype=str);
+  memory   the peak memory (maximum resident set size, from GNU time) of `sluice receive` of
+           the Parquet file and of `sluice retrieve --format parquet` and `--format arrow` of
+           its version, against a Python process that reads the same file with pyarrow and
+           writes it again as Parquet (pyarrow holds the table in memory).
 
 One command, from the repository's top folder, after `python3 tests/reference/pyenv.py`:
 
-  target/pyref/bin/python examples/bench_columnar.py [--rows N] [--runs N]
+  target/pyref/bin/python examples/bench_columnar.py [--rows N] [--runs N] [--binary PATH]
 
 It builds the release binary and installs the package (release profile) into target/pyref
-first, writes its data under target/bench-data/columnar/ and prints a table of times and
+first (with --binary, it uses that binary and the package as installed), writes its data under target/bench-data/columnar/ and prints a table of times and
 ratios, with a JSON summary in target/bench-results/columnar.json.
 """
 import argparse
@@ -72,6 +76,17 @@ def make_parquet(path, rows):
     pq.write_table(t, path)
 
 
+def peak_mib(args, env=None):
+    """Runs a command to its end under GNU time (/usr/bin/time, Debian's `time` package); its
+    peak memory (maximum resident set size) in MiB. Not measured from this process: a child
+    forked from it is charged this interpreter's memory (pandas and pyarrow loaded) up to its
+    exec, whatever it uses itself."""
+    with tempfile.NamedTemporaryFile("r") as f:
+        subprocess.run(["/usr/bin/time", "-f", "%M", "-o", f.name, *args], env=env, check=True,
+                       stdout=subprocess.DEVNULL)
+        return int(f.read().split()[-1]) / 1024
+
+
 def timed(f):
     t0 = time.perf_counter()
     f()
@@ -86,8 +101,9 @@ def main():
     ap = argparse.ArgumentParser()
     ap.add_argument("--rows", type=int, default=1_000_000)
     ap.add_argument("--runs", type=int, default=3)
+    ap.add_argument("--binary", help="an existing sluice binary (nothing is built)")
     a = ap.parse_args()
-    binary = build()
+    binary = a.binary or build()
     import pandas as pd
     import sluice
 
@@ -126,6 +142,16 @@ def main():
         results["pandas_read_csv_text_s"] = median_of(
             a.runs, lambda: pd.read_csv(csv_path, dtype=str, keep_default_na=False))
         assert len(store.read("till")) == a.rows
+        results["receive_peak_mib"] = peak_mib(
+            [binary, "--store", d, "receive", src, "--as", "till_again"], env=env)
+        for fmt in ("parquet", "arrow"):
+            results["retrieve_%s_peak_mib" % fmt] = peak_mib(
+                [binary, "--store", d, "retrieve", "till", "--format", fmt, "-o",
+                 os.path.join(d, "out." + fmt)], env=env)
+        results["pyarrow_round_trip_peak_mib"] = peak_mib([
+            sys.executable, "-c",
+            "import sys, pyarrow.parquet as pq; pq.write_table(pq.read_table(sys.argv[1]), "
+            "sys.argv[2])", src, os.path.join(d, "pyarrow.parquet")])
     finally:
         shutil.rmtree(d)
 
@@ -141,6 +167,12 @@ def main():
     print("  read     Store.read (typed=False)  %7.2f s   %5.2fx pandas.read_csv dtype=str (%.2f s)"
           % (r["package_read_text_s"], r["package_read_text_s"] / r["pandas_read_csv_text_s"],
              r["pandas_read_csv_text_s"]))
+    base = r["pyarrow_round_trip_peak_mib"]
+    for what, key in (("receive (Parquet)", "receive_peak_mib"),
+                      ("retrieve --format parquet", "retrieve_parquet_peak_mib"),
+                      ("retrieve --format arrow", "retrieve_arrow_peak_mib")):
+        print("  memory   %-26s %7.0f MiB %5.2fx pyarrow read and write (%.0f MiB)"
+              % (what, r[key], r[key] / base, base))
     out = os.path.join(ROOT, "target", "bench-results")
     os.makedirs(out, exist_ok=True)
     r["pandas"] = pd.__version__

@@ -566,6 +566,71 @@ fn write_table(
     writer.finish().map_err(store_io)
 }
 
+/// Reads a columnar file batch by batch into a version's objects (not yet durable): the header
+/// checked before any row is written, each batch's rows written as they are read, so memory
+/// holds one batch as text; the `Read` it returns has no rows (its source rows are counted).
+fn stream_columnar(
+    store: &Store,
+    bytes: &[u8],
+    path: &Path,
+    format: ColumnarFormat,
+    null_tokens: &[String],
+) -> Result<(Read, crate::store::version_writer::Written)> {
+    let store_io = |e: std::io::Error| Error::io(&store.dir().join("tmp"), e);
+    let writer: std::cell::RefCell<Option<CanonicalWriter>> = std::cell::RefCell::new(None);
+    let mut n_rows = 0u64;
+    let described = columnar::read_batches(
+        bytes,
+        path,
+        format,
+        &mut |t| {
+            let named = from_columnar(
+                columnar::ColumnarTable {
+                    header: t.header.clone(),
+                    ..columnar::ColumnarTable::default()
+                },
+                format,
+            );
+            if named.header.is_empty() {
+                return Err(Error::input(path, None, InputProblem::NoHeader));
+            }
+            check_header(path, &named)?;
+            let w =
+                CanonicalWriter::new(&store.objects, &t.header, null_tokens).map_err(store_io)?;
+            *writer.borrow_mut() = Some(w);
+            Ok(())
+        },
+        &mut |rows| {
+            let mut w = writer.borrow_mut();
+            let w = w.as_mut().ok_or_else(|| {
+                Error::from(ErrorKind::Internal(
+                    "columnar rows came before the header".into(),
+                ))
+            })?;
+            let mut fields: Vec<&[u8]> = Vec::new();
+            for row in rows {
+                fields.clear();
+                fields.extend(row.iter().map(|c| c.as_bytes()));
+                w.write_row(&fields).map_err(store_io)?;
+            }
+            n_rows += rows.len() as u64;
+            Ok(())
+        },
+    )?;
+    let written = writer
+        .into_inner()
+        .ok_or_else(|| {
+            Error::from(ErrorKind::Internal(
+                "a columnar file without a header".into(),
+            ))
+        })?
+        .finish()
+        .map_err(store_io)?;
+    let mut read = from_columnar(described, format);
+    read.source_rows = (1..=n_rows).collect();
+    Ok((read, written))
+}
+
 /// Converts the raw object of a converted intake again, as `step` recorded it (format, sheet,
 /// header, null tokens), and returns the hash of the version that gives; nothing is kept.
 pub fn convert_again(store: &Store, step: &Step, conv: &Conversion) -> Result<String> {
@@ -601,8 +666,13 @@ pub fn convert_again(store: &Store, step: &Step, conv: &Conversion) -> Result<St
         .get("null_tokens")
         .and_then(|n| serde_json::from_value(n.clone()).ok())
         .unwrap_or_default();
-    let read = read_table(&bytes, &here, format, conv.sheet.as_deref(), has_header)?;
-    let written = write_table(store, &read, &null_tokens)?;
+    let written = match format {
+        SourceFormat::Columnar(f) => stream_columnar(store, &bytes, &here, f, &null_tokens)?.1,
+        _ => {
+            let read = read_table(&bytes, &here, format, conv.sheet.as_deref(), has_header)?;
+            write_table(store, &read, &null_tokens)?
+        }
+    };
     Ok(written.table.hash().hex())
 }
 
@@ -694,13 +764,23 @@ pub fn prepare(
     {
         return Err(Error::input(path, None, InputProblem::ChangedWhileReading));
     }
-    let mut read = read_table(
-        &bytes,
-        path,
-        format,
-        source.sheet.as_deref(),
-        opts.has_header,
-    )?;
+    // Without a key to check across all rows, a columnar file is converted batch by batch.
+    let (mut read, streamed) = match format {
+        SourceFormat::Columnar(f) if opts.key.is_none() => {
+            let (read, written) = stream_columnar(store, &bytes, path, f, &opts.null_tokens)?;
+            (read, Some(written))
+        }
+        _ => (
+            read_table(
+                &bytes,
+                path,
+                format,
+                source.sheet.as_deref(),
+                opts.has_header,
+            )?,
+            None,
+        ),
+    };
     if read.source_rows.is_empty() {
         read.warnings.push(no_rows_warning(path, read.header.len()));
     }
@@ -716,7 +796,10 @@ pub fn prepare(
     let store_io = |e: std::io::Error| Error::io(&store.dir().join("tmp"), e);
     let mut raw = store.objects.writer().map_err(store_io)?;
     raw.write(&bytes).map_err(store_io)?;
-    let written = write_table(store, &read, &opts.null_tokens)?;
+    let written = match streamed {
+        Some(w) => w,
+        None => write_table(store, &read, &opts.null_tokens)?,
+    };
     let table_hex = written.table.hash().hex();
     if let Some(v) = store.lineage.latest_version(&opts.dataset)? {
         if v.hash == table_hex {

@@ -125,6 +125,15 @@ pub enum InputProblem {
         format: String,
         detail: String,
     },
+    /// A value that does not fit the type the user gave its column for a columnar output.
+    NotOfType {
+        column: String,
+        /// 1-based data row.
+        row: u64,
+        given: String,
+        value: String,
+        why: String,
+    },
     /// A Parquet or Arrow IPC column of a nested or otherwise non-tabular type.
     NestedColumn {
         format: String,
@@ -277,6 +286,16 @@ impl fmt::Display for InputProblem {
                 write!(f, "; choose a key that is unique, or ingest without --key")
             }
             AtCell { at, problem } => write!(f, "cell {at}: {problem}"),
+            NotOfType {
+                column,
+                row,
+                given,
+                value,
+                why,
+            } => write!(
+                f,
+                "data row {row}, column \"{column}\": \"{value}\" {why}, so it cannot be written as {given}; give the column another type, or clean the value first"
+            ),
             InvalidJson { detail } => write!(
                 f,
                 "not valid JSON ({detail}); every line must hold one JSON object"

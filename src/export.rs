@@ -38,9 +38,24 @@ pub enum Format {
 
 /// Writes every row of `v` to `out` in `format`, text or columnar.
 pub fn write_in(store: &Store, v: &Version, format: Format, out: &mut dyn Write) -> Result<()> {
+    write_in_with(store, v, format, &[], out)
+}
+
+/// As [`write_in`], with column types the user gave for a columnar format (refused for text,
+/// where every cell is text).
+pub fn write_in_with(
+    store: &Store,
+    v: &Version,
+    format: Format,
+    given: &crate::columnar::write::GivenTypes,
+    out: &mut dyn Write,
+) -> Result<()> {
     match format {
+        Format::Text(_) if !given.is_empty() => Err(Error::usage(
+            "column types are for the columnar formats: give --format parquet or --format arrow, or leave the types out",
+        )),
         Format::Text(t) => write_as(store, v, t, out),
-        Format::Columnar(c) => crate::columnar::write::write_version(store, v, c, out),
+        Format::Columnar(c) => crate::columnar::write::write_version(store, v, c, given, out),
     }
 }
 

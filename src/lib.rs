@@ -15,7 +15,8 @@
 //! - query: [`history`] (log, show), [`diff`], [`trace`] (where a value came from),
 //!   [`explain`] (why a total is what it is), [`graph`] (impact, drawings), [`replay`],
 //!   [`verify`], [`refs`] (version references); [`export`] writes a version as CSV, TSV or
-//!   JSON Lines.
+//!   JSON Lines; [`outcome`] holds the records the recording commands and `compare` return,
+//!   which the binary prints with `--json` and the Python package returns.
 //!
 //! The engine never prints: it returns values and typed [`Error`]s, and the binary renders them.
 //!
@@ -58,6 +59,7 @@ pub mod jsonl;
 pub mod labelled;
 pub mod model;
 pub mod ops;
+pub mod outcome;
 pub mod plan;
 pub mod progress;
 pub mod prov;

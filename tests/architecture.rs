@@ -144,6 +144,7 @@ const LAYERS: &[(&str, &[&str])] = &[
             "export",
             "revert",
             "columnar::write",
+            "outcome",
         ],
     ),
     ("document", &["report", "prov", "demo"]),

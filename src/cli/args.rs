@@ -319,7 +319,7 @@ pub enum Command {
 
     /// Retrieve a version's exact bytes (or its rows as CSV, TSV or JSON Lines) to standard output or a file
     #[command(
-        after_help = "Examples:\n  sluice retrieve quillby_orders:v1 > q3-as-received.csv\n  sluice retrieve blake3:5f3a9c0d -o q3.csv\n  sluice retrieve all_orders --format jsonl -o all_orders.jsonl"
+        after_help = "Examples:\n  sluice retrieve quillby_orders:v1 > q3-as-received.csv\n  sluice retrieve blake3:5f3a9c0d -o q3.csv\n  sluice retrieve all_orders --format jsonl -o all_orders.jsonl\n  sluice retrieve all_orders --format parquet --column-type total=decimal(12,2) -o all_orders.parquet"
     )]
     Retrieve {
         /// The version: NAME (latest), NAME:vN (N-th version) or blake3:HEX (8+ hex digits)
@@ -331,6 +331,12 @@ pub enum Command {
         /// instead of the stored bytes
         #[arg(long, value_name = "FORMAT")]
         format: Option<RetrieveFormat>,
+        /// With --format parquet or arrow: write COLUMN as TYPE instead of the type its profile
+        /// suggests, every value checked (integer, decimal(P,S), date, timestamp(UNIT) or
+        /// timestamp(UNIT, ZONE) with UNIT s, ms, us or ns and ZONE UTC or +HH:MM, text);
+        /// repeat for more columns
+        #[arg(long = "column-type", value_name = "COLUMN=TYPE")]
+        column_type: Vec<String>,
     },
 
     /// The audit trail in time order: one line per step, oldest first

@@ -10,13 +10,11 @@
 
 use std::io::{self, Write};
 
-use serde::Serialize;
-
 use super::args::CompareArgs;
 use super::text::*;
 use super::{Context, ExitCode};
 use sluice::diff::chars::{pieces, Piece};
-use sluice::diff::{Change, ChangeKind, Diff, MatchedBy, RowRef};
+use sluice::diff::{Change, ChangeKind, Diff, RowRef};
 
 /// How to render.
 pub struct How {
@@ -63,7 +61,12 @@ pub fn compare(
     };
     let mut buffered = std::io::BufWriter::new(out);
     if a.json {
-        compare_json(&mut buffered, &d, &how)?;
+        let limit = if how.counts {
+            0
+        } else {
+            how.limit.unwrap_or(usize::MAX)
+        };
+        json(&mut buffered, &sluice::outcome::CompareJson::new(&d, limit))?;
     } else {
         compare_text(&mut buffered, &d, &how)?;
     }
@@ -361,180 +364,4 @@ pub fn compare_text(out: &mut impl Write, d: &Diff, how: &How) -> io::Result<()>
         )?;
     }
     Ok(())
-}
-
-#[derive(Serialize)]
-struct JsonVersion<'a> {
-    version: String,
-    hash: &'a str,
-}
-
-#[derive(Serialize)]
-struct JsonRows {
-    from: u64,
-    to: u64,
-    unchanged: u64,
-    changed: u64,
-    removed: u64,
-    added: u64,
-}
-
-#[derive(Serialize)]
-struct JsonColumnCount<'a> {
-    column: &'a str,
-    changed: u64,
-}
-
-#[derive(Serialize)]
-struct JsonCells<'a> {
-    changed: u64,
-    by_column: Vec<JsonColumnCount<'a>>,
-}
-
-#[derive(Serialize)]
-struct JsonRename<'a> {
-    from: &'a str,
-    to: &'a str,
-}
-
-#[derive(Serialize)]
-struct JsonColumns<'a> {
-    added: &'a [String],
-    removed: &'a [String],
-    renamed: Vec<JsonRename<'a>>,
-    reordered: bool,
-}
-
-#[derive(Serialize)]
-struct JsonCell<'a> {
-    column: &'a str,
-    old: &'a str,
-    new: &'a str,
-    pieces: Vec<Piece>,
-}
-
-#[derive(Serialize)]
-struct JsonChange<'a> {
-    kind: ChangeKind,
-    from_row: Option<u64>,
-    to_row: Option<u64>,
-    key: Option<Vec<String>>,
-    #[serde(skip_serializing_if = "Option::is_none")]
-    cells: Option<Vec<JsonCell<'a>>>,
-    #[serde(skip_serializing_if = "Option::is_none")]
-    values: Option<Vec<String>>,
-}
-
-#[derive(Serialize)]
-struct JsonDiff<'a> {
-    from: JsonVersion<'a>,
-    to: JsonVersion<'a>,
-    paired_by: &'static str,
-    /// How the rows were paired, in a sentence.
-    pairing: String,
-    #[serde(skip_serializing_if = "Option::is_none")]
-    lineage_steps: Option<&'a Vec<i64>>,
-    #[serde(skip_serializing_if = "Option::is_none")]
-    duplicates: Option<&'a sluice::diff::DuplicateKeys>,
-    key: Option<&'a [String]>,
-    rows: JsonRows,
-    alignment: Option<sluice::diff::Alignment>,
-    cells: JsonCells<'a>,
-    columns: JsonColumns<'a>,
-    n_changes: u64,
-    listed: usize,
-    changes: Vec<JsonChange<'a>>,
-}
-
-pub fn compare_json(out: &mut impl Write, d: &Diff, how: &How) -> io::Result<()> {
-    let limit = if how.counts {
-        0
-    } else {
-        how.limit.unwrap_or(usize::MAX)
-    };
-    let changes: Vec<JsonChange<'_>> = d
-        .changes
-        .iter()
-        .take(limit)
-        .map(|c| {
-            let cells = (c.kind == ChangeKind::Changed).then(|| {
-                d.pairing.cells[c.cells.clone()]
-                    .iter()
-                    .map(|x| JsonCell {
-                        column: &x.column,
-                        old: &x.old,
-                        new: &x.new,
-                        pieces: pieces(&x.old, &x.new),
-                    })
-                    .collect()
-            });
-            let values = match c.kind {
-                ChangeKind::Removed => c.a_row.and_then(|r| d.from_rows.get(r)),
-                ChangeKind::Added => c.b_row.and_then(|r| d.to_rows.get(r)),
-                ChangeKind::Changed => None,
-            }
-            .map(|r| r.texts());
-            JsonChange {
-                kind: c.kind,
-                from_row: c.a_row.map(|r| r + 1),
-                to_row: c.b_row.map(|r| r + 1),
-                key: d.key_of(c),
-                cells,
-                values,
-            }
-        })
-        .collect();
-    let value = JsonDiff {
-        from: JsonVersion {
-            version: d.from.label(),
-            hash: &d.from.hash,
-        },
-        to: JsonVersion {
-            version: d.to.label(),
-            hash: &d.to.hash,
-        },
-        paired_by: d.matched_by.method(),
-        pairing: d.matched_by.describe(),
-        lineage_steps: match &d.matched_by {
-            MatchedBy::Lineage { steps, .. } => Some(steps),
-            _ => None,
-        },
-        duplicates: d.duplicates.as_ref(),
-        key: d.matched_by.key(),
-        rows: JsonRows {
-            from: d.from.n_rows,
-            to: d.to.n_rows,
-            unchanged: d.n_unchanged(),
-            changed: d.n_changed(),
-            removed: d.n_removed(),
-            added: d.n_added(),
-        },
-        alignment: d.alignment,
-        cells: JsonCells {
-            changed: d.n_cells,
-            by_column: d
-                .changed_by_column
-                .iter()
-                .map(|(c, n)| JsonColumnCount {
-                    column: c,
-                    changed: *n,
-                })
-                .collect(),
-        },
-        columns: JsonColumns {
-            added: &d.columns.added,
-            removed: &d.columns.removed,
-            renamed: d
-                .columns
-                .renamed
-                .iter()
-                .map(|(a, b)| JsonRename { from: a, to: b })
-                .collect(),
-            reordered: d.columns.reordered,
-        },
-        n_changes: d.n_changes,
-        listed: changes.len(),
-        changes,
-    };
-    json(out, &value)
 }

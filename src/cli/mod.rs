@@ -145,7 +145,15 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             reference,
             output,
             format,
-        } => query::retrieve(&ctx, reference, output.as_deref(), *format, out),
+            column_type,
+        } => query::retrieve(
+            &ctx,
+            reference,
+            output.as_deref(),
+            *format,
+            column_type,
+            out,
+        ),
         Command::Verify {
             json,
             deep,

@@ -216,8 +216,18 @@ pub fn retrieve(
     reference: &str,
     output: Option<&Path>,
     format: Option<RetrieveFormat>,
+    column_types: &[String],
     out: &mut impl Write,
 ) -> anyhow::Result<ExitCode> {
+    let given = column_types
+        .iter()
+        .map(|p| sluice::columnar::write::parse_given(p).map_err(|e| anyhow!("--column-type {e}")))
+        .collect::<anyhow::Result<Vec<_>>>()?;
+    if !given.is_empty() && format.is_none() {
+        return Err(anyhow!(
+            "--column-type applies to --format parquet or --format arrow; add one of them"
+        ));
+    }
     let store = ctx.open_store()?;
     let version = sluice::refs::resolve(&store.lineage, reference)?;
     if let Some(format) = format {
@@ -232,11 +242,11 @@ pub fn retrieve(
         };
         match output {
             None => {
-                sluice::export::write_in(&store, &version, format, out)?;
+                sluice::export::write_in_with(&store, &version, format, &given, out)?;
                 out.flush()?;
             }
             Some(path) => super::write_file_atomically(path, |f| {
-                sluice::export::write_in(&store, &version, format, f)?;
+                sluice::export::write_in_with(&store, &version, format, &given, f)?;
                 Ok(())
             })?,
         }

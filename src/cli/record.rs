@@ -6,7 +6,6 @@ use std::io::{self, Write};
 use std::path::{Path, PathBuf};
 
 use anyhow::anyhow;
-use serde::Serialize;
 use serde_json::Value;
 
 use super::args::{
@@ -21,6 +20,7 @@ use sluice::ops::apply::{self as apply_op, ApplyOptions, ApplyOutcome};
 use sluice::ops::date::DateOrder;
 use sluice::ops::summarize::{AggFunc, Aggregate};
 use sluice::ops::{CaseTo, KeepWhich, OnError, Operation, Renaming};
+use sluice::outcome::{CaptureJson, CleanJson, ReceiveJson, RunJson, SuccessorJson};
 use sluice::plan::Done;
 use sluice::store::Store;
 
@@ -100,63 +100,6 @@ pub fn receive(
     Ok(0)
 }
 
-/// What `receive --json` prints (schema/output/receive.schema.json).
-#[derive(Serialize)]
-pub struct ReceiveJson<'a> {
-    /// Whether a new version was recorded (false: the bytes equal the latest version).
-    pub recorded: bool,
-    /// The store-wide number of the step that recorded it.
-    pub step: Option<i64>,
-    pub version: &'a Version,
-    /// For a hand edit: the version it was made from.
-    pub hand_edit_of: Option<&'a Version>,
-    pub warnings: &'a [String],
-}
-
-impl<'a> ReceiveJson<'a> {
-    fn from_intake(o: &'a IngestOutcome) -> Self {
-        match o {
-            IngestOutcome::Recorded {
-                version,
-                step_id,
-                warnings,
-            } => ReceiveJson {
-                recorded: true,
-                step: Some(*step_id),
-                version,
-                hand_edit_of: None,
-                warnings,
-            },
-            IngestOutcome::Unchanged { version } => ReceiveJson {
-                recorded: false,
-                step: None,
-                version,
-                hand_edit_of: None,
-                warnings: &[],
-            },
-        }
-    }
-
-    fn from_hand_edit(o: &'a HandEditOutcome) -> Self {
-        match o {
-            HandEditOutcome::Recorded { recorded, warnings } => ReceiveJson {
-                recorded: true,
-                step: Some(recorded.version.step_id),
-                version: &recorded.version,
-                hand_edit_of: Some(&recorded.from),
-                warnings,
-            },
-            HandEditOutcome::Unchanged { version } => ReceiveJson {
-                recorded: false,
-                step: None,
-                version,
-                hand_edit_of: None,
-                warnings: &[],
-            },
-        }
-    }
-}
-
 impl TryFrom<Acting<'_, ReceiveArgs>> for IngestOptions {
     type Error = anyhow::Error;
 
@@ -194,82 +137,6 @@ pub fn clean(ctx: &Context<'_>, a: &CleanArgs, out: &mut impl Write) -> anyhow::
         apply_outcome(out, &opts.op, &outcome)?;
     }
     Ok(0)
-}
-
-/// What `clean --json` prints (schema/output/clean.schema.json).
-#[derive(Serialize)]
-pub struct CleanJson<'a> {
-    pub operation: &'a str,
-    pub recorded: bool,
-    /// The store-wide number of the step that recorded it.
-    pub step: Option<i64>,
-    pub input: &'a Version,
-    pub version: Option<&'a Version>,
-    pub changed_cells: u64,
-    pub changed_by_column: Vec<ColumnCount<'a>>,
-    pub dropped_rows: u64,
-    pub noted_cells: u64,
-    pub table_received: Option<&'a str>,
-}
-
-#[derive(Serialize)]
-pub struct ColumnCount<'a> {
-    pub column: &'a str,
-    pub cells: u64,
-}
-
-impl<'a> CleanJson<'a> {
-    fn new(op: &'a Operation, o: &'a ApplyOutcome) -> Self {
-        let mut j = CleanJson {
-            operation: op.name(),
-            recorded: false,
-            step: None,
-            input: match o {
-                ApplyOutcome::Recorded { input, .. }
-                | ApplyOutcome::Replayed { input, .. }
-                | ApplyOutcome::Unchanged { input, .. } => input,
-            },
-            version: None,
-            changed_cells: 0,
-            changed_by_column: Vec::new(),
-            dropped_rows: 0,
-            noted_cells: 0,
-            table_received: None,
-        };
-        match o {
-            ApplyOutcome::Recorded {
-                version,
-                step_id,
-                n_changed,
-                changed_by_column,
-                n_dropped,
-                n_noted,
-                table_taken_in,
-                ..
-            } => {
-                j.recorded = true;
-                j.step = Some(*step_id);
-                j.version = Some(version);
-                j.changed_cells = *n_changed;
-                j.changed_by_column = changed_by_column
-                    .iter()
-                    .map(|(c, n)| ColumnCount {
-                        column: c,
-                        cells: *n,
-                    })
-                    .collect();
-                j.dropped_rows = *n_dropped;
-                j.noted_cells = *n_noted;
-                j.table_received = table_taken_in.as_deref();
-            }
-            ApplyOutcome::Unchanged { version, notes, .. } => {
-                j.version = Some(version);
-                j.noted_cells = notes.len() as u64;
-            }
-            ApplyOutcome::Replayed { .. } => {}
-        }
-        j
-    }
 }
 
 impl TryFrom<Acting<'_, CleanArgs>> for ApplyOptions {
@@ -667,12 +534,7 @@ pub fn finish_run(
             Ok(if report.failed_checks > 0 { 1 } else { 0 })
         }
         Err(failure) => {
-            // The plan names the entry it stopped at as "step N"; steps are called by their
-            // store-wide number everywhere, so a plan's own places are plan entries.
-            let at = match failure.at.strip_prefix("step ") {
-                Some(rest) => format!("plan entry {rest}"),
-                None => failure.at.clone(),
-            };
+            let at = sluice::outcome::stopped_at(&failure.at);
             let kept: Vec<String> = failure
                 .done
                 .iter()
@@ -738,52 +600,6 @@ pub fn capture(
     }
 }
 
-/// What `capture --json` prints (schema/output/capture.schema.json).
-#[derive(Serialize)]
-pub struct CaptureJson<'a> {
-    pub recorded: Vec<SuccessorJson<'a>>,
-    /// Outputs whose bytes equal the dataset's latest version: nothing recorded for them.
-    pub unchanged: &'a [Version],
-    /// What ran and where, as recorded with each step.
-    pub code: &'a serde_json::Value,
-}
-
-/// A version recorded as the successor of another, with the lineage inferred between them.
-#[derive(Serialize)]
-pub struct SuccessorJson<'a> {
-    /// The store-wide number of the step that recorded it.
-    pub step: i64,
-    pub version: &'a Version,
-    pub from: &'a Version,
-    pub rows_kept: u64,
-    pub rows_added: u64,
-    pub rows_removed: u64,
-    pub changed_cells: u64,
-    pub matched_by: String,
-}
-
-impl<'a> From<&'a RecordedSuccessor> for SuccessorJson<'a> {
-    fn from(r: &'a RecordedSuccessor) -> Self {
-        let l = &r.lineage;
-        SuccessorJson {
-            step: r.version.step_id,
-            version: &r.version,
-            from: &r.from,
-            rows_kept: l.n_unchanged + l.n_changed_rows,
-            rows_added: l.n_added,
-            rows_removed: l.n_removed,
-            changed_cells: l.n_changed_cells(),
-            matched_by: match &l.matched_by {
-                sluice::diff::MatchedBy::Key(k) => format!("key {}", k.join(", ")),
-                sluice::diff::MatchedBy::Order => "order".to_string(),
-                sluice::diff::MatchedBy::Lineage { ancestor, .. } => {
-                    format!("lineage through {ancestor}")
-                }
-            },
-        }
-    }
-}
-
 impl TryFrom<Acting<'_, CaptureArgs>> for sluice::exec::ExecOptions {
     type Error = anyhow::Error;
 
@@ -826,160 +642,6 @@ impl TryFrom<Acting<'_, CaptureArgs>> for sluice::exec::ExecOptions {
             agent: a.agent,
             match_by_order: a.args.match_by_order,
         })
-    }
-}
-
-/// What `run --json` and `rerun --json` print (schema/output/run.schema.json).
-#[derive(Serialize)]
-pub struct RunJson<'a> {
-    pub completed: bool,
-    pub stopped_at: Option<&'a str>,
-    pub error: Option<&'a str>,
-    pub done: Vec<DoneJson<'a>>,
-}
-
-/// A version as `run --json` names it.
-#[derive(Serialize)]
-pub struct VersionRef<'a> {
-    #[serde(skip_serializing_if = "Option::is_none")]
-    pub version: Option<String>,
-    pub hash: &'a str,
-}
-
-impl<'a> From<&'a Version> for VersionRef<'a> {
-    fn from(v: &'a Version) -> Self {
-        VersionRef {
-            version: Some(v.label()),
-            hash: &v.hash,
-        }
-    }
-}
-
-/// One item of a run: an input received or bound, a clean step, or an inspection.
-#[derive(Serialize)]
-#[serde(tag = "kind", rename_all = "snake_case")]
-pub enum DoneJson<'a> {
-    Input {
-        name: &'a str,
-        bound: bool,
-        #[serde(skip_serializing_if = "Option::is_none")]
-        file: Option<String>,
-        recorded: bool,
-        /// The store-wide step number, when the intake was recorded.
-        step: Option<i64>,
-        output: VersionRef<'a>,
-        #[serde(skip_serializing_if = "Option::is_none")]
-        differs_from_plan: Option<&'a str>,
-    },
-    Clean {
-        /// The store-wide step number, when the step was recorded.
-        step: Option<i64>,
-        /// The step's place in the plan (1-based).
-        plan_entry: usize,
-        op: &'a str,
-        recorded: bool,
-        input: VersionRef<'a>,
-        output: VersionRef<'a>,
-    },
-    Inspect {
-        plan_entry: usize,
-        hold_point: bool,
-        version: &'a str,
-        hash: &'a str,
-        passed: bool,
-        failed_rules: usize,
-    },
-}
-
-impl<'a> RunJson<'a> {
-    pub fn new(done: &'a [Done], stopped: Option<(&'a str, &'a str)>) -> Self {
-        RunJson {
-            completed: stopped.is_none(),
-            stopped_at: stopped.map(|s| s.0),
-            error: stopped.map(|s| s.1),
-            done: done.iter().map(DoneJson::from).collect(),
-        }
-    }
-}
-
-impl<'a> From<&'a Done> for DoneJson<'a> {
-    fn from(d: &'a Done) -> Self {
-        match d {
-            Done::Bound { name, version } => DoneJson::Input {
-                name,
-                bound: true,
-                file: None,
-                recorded: false,
-                step: None,
-                output: version.into(),
-                differs_from_plan: None,
-            },
-            Done::TookIn {
-                name,
-                path,
-                outcome,
-                differs_from,
-            } => {
-                let (v, step) = match &**outcome {
-                    IngestOutcome::Recorded {
-                        version, step_id, ..
-                    } => (version, Some(*step_id)),
-                    IngestOutcome::Unchanged { version } => (version, None),
-                };
-                DoneJson::Input {
-                    name,
-                    bound: false,
-                    file: Some(path.display().to_string()),
-                    recorded: step.is_some(),
-                    step,
-                    output: v.into(),
-                    differs_from_plan: differs_from.as_deref(),
-                }
-            }
-            Done::Applied { step, op, outcome } => {
-                let (input, output, recorded) = match &**outcome {
-                    ApplyOutcome::Recorded {
-                        input,
-                        version,
-                        step_id,
-                        ..
-                    } => (input, VersionRef::from(version), Some(*step_id)),
-                    ApplyOutcome::Unchanged { input, version, .. } => {
-                        (input, VersionRef::from(version), None)
-                    }
-                    ApplyOutcome::Replayed {
-                        input, output_hash, ..
-                    } => (
-                        input,
-                        VersionRef {
-                            version: None,
-                            hash: output_hash,
-                        },
-                        None,
-                    ),
-                };
-                DoneJson::Clean {
-                    step: recorded,
-                    plan_entry: *step,
-                    op: op.name(),
-                    recorded: recorded.is_some(),
-                    input: input.into(),
-                    output,
-                }
-            }
-            Done::Checked {
-                step,
-                hold_point,
-                report,
-            } => DoneJson::Inspect {
-                plan_entry: *step,
-                hold_point: *hold_point,
-                version: &report.version,
-                hash: &report.hash,
-                passed: report.passed,
-                failed_rules: report.results.iter().filter(|c| !c.passed).count(),
-            },
-        }
     }
 }
 

@@ -78,7 +78,7 @@ pub fn withdraw(
     };
     let outcome = sluice::revert::revert(&mut store, reference, &opts)?;
     if as_json {
-        json(out, &WithdrawJson::from(&outcome))?;
+        json(out, &sluice::outcome::WithdrawJson::from(&outcome))?;
     } else {
         withdraw_text(out, &outcome)?;
     }
@@ -86,41 +86,6 @@ pub fn withdraw(
         sluice::revert::RevertOutcome::Recorded(_) => 0,
         sluice::revert::RevertOutcome::Refused { .. } => 1,
     })
-}
-
-/// What `withdraw --json` prints (schema/output/withdraw.schema.json): what was recorded, or
-/// the conflicts that refused it.
-#[derive(serde::Serialize)]
-pub struct WithdrawJson<'a> {
-    pub recorded: bool,
-    /// The version whose step was withdrawn.
-    pub withdrawn: &'a str,
-    #[serde(skip_serializing_if = "Option::is_none")]
-    pub report: Option<&'a sluice::revert::RevertReport>,
-    #[serde(skip_serializing_if = "Option::is_none")]
-    pub conflicts: Option<&'a [sluice::revert::Conflict]>,
-}
-
-impl<'a> From<&'a sluice::revert::RevertOutcome> for WithdrawJson<'a> {
-    fn from(o: &'a sluice::revert::RevertOutcome) -> Self {
-        match o {
-            sluice::revert::RevertOutcome::Recorded(r) => WithdrawJson {
-                recorded: true,
-                withdrawn: &r.reverted,
-                report: Some(r),
-                conflicts: None,
-            },
-            sluice::revert::RevertOutcome::Refused {
-                reverted,
-                conflicts,
-            } => WithdrawJson {
-                recorded: false,
-                withdrawn: reverted,
-                report: None,
-                conflicts: Some(conflicts),
-            },
-        }
-    }
 }
 
 fn conflict_line(out: &mut impl Write, c: &sluice::revert::Conflict) -> io::Result<()> {

@@ -521,11 +521,76 @@ pub fn read(bytes: &[u8], path: &Path, format: ColumnarFormat) -> Result<Columna
     }
 }
 
+/// What a reading does with each batch's rows: keep them all in the table, or hand them on
+/// and keep none (the table then holds one batch at a time, and the bound on its text applies
+/// to that batch).
+type Rows<'a> = Option<&'a mut dyn FnMut(&[Vec<String>]) -> Result<()>>;
+
+/// Reads a columnar file held in `bytes` batch by batch: `start` sees the table's header and
+/// column types before any row, `rows` gets each batch's rows as text; returns the table's
+/// description (types, row groups or record batches, codecs, writer, nulls) without rows.
+/// Memory holds one batch as text, not the table.
+pub fn read_batches(
+    bytes: &[u8],
+    path: &Path,
+    format: ColumnarFormat,
+    start: &mut dyn FnMut(&ColumnarTable) -> Result<()>,
+    rows: &mut dyn FnMut(&[Vec<String>]) -> Result<()>,
+) -> Result<ColumnarTable> {
+    let mut table = match format {
+        ColumnarFormat::Parquet => read_parquet_with(
+            bytes,
+            path,
+            None,
+            MAX_COLUMNAR_TEXT_BYTES,
+            start,
+            Some(rows),
+        )?,
+        ColumnarFormat::ArrowIpc => {
+            read_ipc_with(bytes, path, MAX_COLUMNAR_TEXT_BYTES, start, Some(rows))?
+        }
+    };
+    table.rows = Vec::new();
+    table.held_bytes = 0;
+    Ok(table)
+}
+
+/// Adds a batch to `table`, or, when `rows` takes them, hands its rows on in place of the
+/// previous batch's.
+fn take_batch(
+    table: &mut ColumnarTable,
+    batch: &RecordBatch,
+    path: &Path,
+    format: ColumnarFormat,
+    limit: u64,
+    rows: &mut Rows<'_>,
+) -> Result<()> {
+    if let Some(f) = rows {
+        table.rows.clear();
+        table.held_bytes = 0;
+        push_batch(table, batch, path, format, limit)?;
+        f(&table.rows)
+    } else {
+        push_batch(table, batch, path, format, limit)
+    }
+}
+
 fn read_parquet(
     bytes: &[u8],
     path: &Path,
     only_group: Option<usize>,
     limit: u64,
+) -> Result<ColumnarTable> {
+    read_parquet_with(bytes, path, only_group, limit, &mut |_| Ok(()), None)
+}
+
+fn read_parquet_with(
+    bytes: &[u8],
+    path: &Path,
+    only_group: Option<usize>,
+    limit: u64,
+    start: &mut dyn FnMut(&ColumnarTable) -> Result<()>,
+    mut rows: Rows<'_>,
 ) -> Result<ColumnarTable> {
     use parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder;
     let format = ColumnarFormat::Parquet;
@@ -565,9 +630,10 @@ fn read_parquet(
         .with_batch_size(8192)
         .build()
         .map_err(|e| unreadable(path, format, e))?;
+    start(&table)?;
     for batch in reader {
         let batch = batch.map_err(|e| unreadable(path, format, e))?;
-        push_batch(&mut table, &batch, path, format, limit)?;
+        take_batch(&mut table, &batch, path, format, limit, &mut rows)?;
     }
     Ok(table)
 }
@@ -576,12 +642,22 @@ fn read_parquet(
 const IPC_FILE_MAGIC: &[u8] = b"ARROW1";
 
 fn read_ipc(bytes: &[u8], path: &Path, limit: u64) -> Result<ColumnarTable> {
+    read_ipc_with(bytes, path, limit, &mut |_| Ok(()), None)
+}
+
+fn read_ipc_with(
+    bytes: &[u8],
+    path: &Path,
+    limit: u64,
+    seen: &mut dyn FnMut(&ColumnarTable) -> Result<()>,
+    mut rows: Rows<'_>,
+) -> Result<ColumnarTable> {
     let format = ColumnarFormat::ArrowIpc;
     let mut table = ColumnarTable::default();
-    let start = |schema: &SchemaRef, table: &mut ColumnarTable| -> Result<()> {
+    let mut start = |schema: &SchemaRef, table: &mut ColumnarTable| -> Result<()> {
         table.header = schema.fields().iter().map(|f| f.name().clone()).collect();
         table.types = column_types(path, format, schema)?;
-        Ok(())
+        seen(table)
     };
     if bytes.starts_with(IPC_FILE_MAGIC) {
         let reader = arrow_ipc::reader::FileReader::try_new(std::io::Cursor::new(bytes), None)
@@ -590,7 +666,7 @@ fn read_ipc(bytes: &[u8], path: &Path, limit: u64) -> Result<ColumnarTable> {
         for batch in reader {
             let batch = batch.map_err(|e| unreadable(path, format, e))?;
             table.groups.push(batch.num_rows() as u64);
-            push_batch(&mut table, &batch, path, format, limit)?;
+            take_batch(&mut table, &batch, path, format, limit, &mut rows)?;
         }
     } else {
         let reader = arrow_ipc::reader::StreamReader::try_new(std::io::Cursor::new(bytes), None)
@@ -599,7 +675,7 @@ fn read_ipc(bytes: &[u8], path: &Path, limit: u64) -> Result<ColumnarTable> {
         for batch in reader {
             let batch = batch.map_err(|e| unreadable(path, format, e))?;
             table.groups.push(batch.num_rows() as u64);
-            push_batch(&mut table, &batch, path, format, limit)?;
+            take_batch(&mut table, &batch, path, format, limit, &mut rows)?;
         }
     }
     Ok(table)

@@ -11,9 +11,11 @@ use pyo3::prelude::*;
 use pyo3::types::PyBytes;
 use serde_json::{json, Value};
 
-use sluice::intake::{IngestOptions, IngestOutcome, SourceOptions};
+use sluice::columnar::write::GivenType;
+use sluice::intake::{IngestOptions, SourceOptions};
 use sluice::model::Agent;
-use sluice::ops::apply::{ApplyOptions, ApplyOutcome};
+use sluice::ops::apply::ApplyOptions;
+use sluice::outcome::{CleanJson, CompareJson, FrameJson, ReceiveJson, RunJson, WithdrawJson};
 use sluice::store::Store;
 
 create_exception!(
@@ -40,13 +42,19 @@ create_exception!(
 /// for input errors that have one.
 fn raise(e: sluice::Error) -> PyErr {
     let message = e.to_string();
+    raise_with(e, message, None)
+}
+
+/// As `raise`, with a message of the caller's and the record of what was done before the
+/// error (JSON text, as the command prints it), given as the exception's third argument.
+fn raise_with(e: sluice::Error, message: String, record: Option<String>) -> PyErr {
     let position = e.position().map(|p| {
         json!({"byte": p.byte, "line": p.line, "record": p.record, "column": p.column}).to_string()
     });
     if e.exit_code() == 2 {
-        InputError::new_err((message, position))
+        InputError::new_err((message, position, record))
     } else {
-        DataError::new_err((message, position))
+        DataError::new_err((message, position, record))
     }
 }
 
@@ -109,17 +117,7 @@ fn receive(
         &SourceOptions { sheet },
     )
     .map_err(raise)?;
-    to_json(&match outcome {
-        IngestOutcome::Recorded {
-            version,
-            step_id,
-            warnings,
-            ..
-        } => json!({"recorded": true, "step": step_id, "version": version, "warnings": warnings}),
-        IngestOutcome::Unchanged { version, .. } => {
-            json!({"recorded": false, "step": null, "version": version, "warnings": []})
-        }
-    })
+    to_json(&ReceiveJson::from_intake(&outcome))
 }
 
 /// Records the file at `path` (a frame the caller's code made) as the successor of `from`,
@@ -141,7 +139,7 @@ fn record_frame(
     line: u64,
     source: Option<String>,
 ) -> PyResult<String> {
-    use sluice::labelled::{CallingCode, LabelledOptions, LabelledOutcome};
+    use sluice::labelled::{CallingCode, LabelledOptions};
     let mut store = open(dir)?;
     let folder = Path::new(file)
         .parent()
@@ -170,26 +168,7 @@ fn record_frame(
         },
     };
     let outcome = sluice::labelled::record(&mut store, Path::new(path), &opts).map_err(raise)?;
-    to_json(&match outcome {
-        LabelledOutcome::Recorded {
-            recorded,
-            exact,
-            fallback,
-        } => {
-            let l = &recorded.lineage;
-            json!({
-                "recorded": true, "step": recorded.step_id, "input": recorded.from,
-                "version": recorded.version, "lineage": if exact { "exact" } else { "inferred" },
-                "fallback": fallback,
-                "rows_unchanged": l.n_unchanged, "rows_changed": l.n_changed_rows,
-                "rows_removed": l.n_removed, "rows_added": l.n_added,
-                "changed_by_column": l.changed_by_column.iter().map(|(c, n)| json!({"column": c, "cells": n})).collect::<Vec<_>>(),
-            })
-        }
-        LabelledOutcome::Unchanged { version } => {
-            json!({"recorded": false, "step": null, "version": version, "lineage": null})
-        }
-    })
+    to_json(&FrameJson::from(&outcome))
 }
 
 /// Applies one built-in operation (`clean` and `settings` as in a plan step) to `reference`.
@@ -221,31 +200,7 @@ fn apply(
         repeats: None,
     };
     let outcome = sluice::ops::apply::apply(&mut store, reference, &opts).map_err(raise)?;
-    to_json(&outcome_json(&outcome))
-}
-
-fn outcome_json(o: &ApplyOutcome) -> Value {
-    match o {
-        ApplyOutcome::Recorded {
-            input,
-            version,
-            step_id,
-            n_changed,
-            changed_by_column,
-            n_dropped,
-            ..
-        } => json!({
-            "recorded": true, "step": step_id, "input": input, "version": version,
-            "changed_cells": n_changed,
-            "changed_by_column": changed_by_column.iter().map(|(c, n)| json!({"column": c, "cells": n})).collect::<Vec<_>>(),
-            "dropped_rows": n_dropped,
-        }),
-        ApplyOutcome::Unchanged { input, version, .. } => json!({
-            "recorded": false, "step": null, "input": input, "version": version,
-            "changed_cells": 0, "changed_by_column": [], "dropped_rows": 0,
-        }),
-        ApplyOutcome::Replayed { input, .. } => json!({"recorded": false, "input": input}),
-    }
+    to_json(&CleanJson::new(&opts.op, &outcome))
 }
 
 /// Runs the plan in `text` (read from `plan_dir`), binding `inputs` (name, file or reference).
@@ -260,7 +215,7 @@ fn run_plan(
     name: &str,
     email: Option<&str>,
 ) -> PyResult<String> {
-    use sluice::plan::{Binding, Done};
+    use sluice::plan::Binding;
     let plan = sluice::plan::parse(text, plan_name).map_err(raise)?;
     let mut store = open(dir)?;
     let bindings = inputs
@@ -280,77 +235,66 @@ fn run_plan(
         bindings,
         agent: agent(name, email),
     };
-    let done_json = |done: &[Done]| -> Vec<Value> {
-        done.iter()
-            .map(|d| match d {
-                Done::Bound { name, version } => {
-                    json!({"done": "bound", "name": name, "version": version})
-                }
-                Done::TookIn { name, outcome, .. } => match outcome.as_ref() {
-                    IngestOutcome::Recorded { version, .. }
-                    | IngestOutcome::Unchanged { version, .. } => {
-                        json!({"done": "received", "name": name, "version": version})
-                    }
-                },
-                Done::Applied { step, outcome, .. } => {
-                    let mut v = outcome_json(outcome);
-                    v["done"] = json!("cleaned");
-                    v["plan_step"] = json!(step);
-                    v
-                }
-                Done::Checked {
-                    step,
-                    hold_point,
-                    report,
-                } => {
-                    json!({"done": "inspected", "plan_step": step, "hold_point": hold_point, "passed": report.passed})
-                }
-            })
-            .collect()
-    };
     match sluice::plan::run(&mut store, &plan, &opts) {
-        Ok(r) => to_json(
-            &json!({"ok": true, "done": done_json(&r.done), "failed_checks": r.failed_checks}),
-        ),
+        Ok(r) => to_json(&RunJson::new(&r.done, None)),
         Err(f) => {
+            // As `run --json`: the record of what was done, then the error; here the record
+            // goes with the exception.
+            let at = sluice::outcome::stopped_at(&f.at);
+            let error = f.error.to_string();
+            let record = to_json(&RunJson::new(&f.done, Some((&at, &error))))?;
+            let kept = f.done.iter().filter(|d| d.recorded().is_some()).count();
             let msg = format!(
-                "the plan stopped at {}: {} (the {} step(s) before it are kept)",
-                f.at,
-                f.error,
-                f.done.len()
+                "the run stopped at {at}: {error} (the {kept} version(s) recorded before it are kept)"
             );
-            let pos = f.error.position().map(|p| {
-                json!({"byte": p.byte, "line": p.line, "record": p.record, "column": p.column})
-                    .to_string()
-            });
-            Err(if f.error.exit_code() == 2 {
-                InputError::new_err((msg, pos))
-            } else {
-                DataError::new_err((msg, pos))
-            })
+            Err(raise_with(f.error, msg, Some(record)))
         }
     }
 }
 
-/// A version's rows as Arrow IPC file bytes: typed from the profile, or every column as text.
+/// Column types given as (column, type) pairs, read as `retrieve --column-type` reads them.
+fn given_types(types: Vec<(String, String)>) -> PyResult<Vec<(String, GivenType)>> {
+    types
+        .into_iter()
+        .map(|(c, t)| {
+            GivenType::parse(&t)
+                .map(|g| (c.clone(), g))
+                .map_err(|e| InputError::new_err((format!("types[{c:?}]: {e}"), None::<String>)))
+        })
+        .collect()
+}
+
+/// A version's rows as Arrow IPC file bytes: typed from the profile, or every column as text,
+/// the `types` given as given.
 #[pyfunction]
+#[pyo3(signature = (dir, reference, typed, types=Vec::new()))]
 fn read_ipc<'py>(
     py: Python<'py>,
     dir: &str,
     reference: &str,
     typed: bool,
+    types: Vec<(String, String)>,
 ) -> PyResult<Bound<'py, PyBytes>> {
+    let given = given_types(types)?;
     let store = open(dir)?;
     let v = sluice::refs::resolve(&store.lineage, reference).map_err(raise)?;
     let mut out = Vec::new();
-    sluice::columnar::write::write_ipc(&store, &v, typed, &mut out).map_err(raise)?;
+    sluice::columnar::write::write_ipc(&store, &v, typed, &given, &mut out).map_err(raise)?;
     Ok(PyBytes::new(py, &out))
 }
 
 /// Writes a version's rows to `path` in `format` (csv, tsv, jsonl, parquet, arrow), through a
 /// temporary file renamed into place when complete.
 #[pyfunction]
-fn write_file(dir: &str, reference: &str, format: &str, path: &str) -> PyResult<()> {
+#[pyo3(signature = (dir, reference, format, path, types=Vec::new()))]
+fn write_file(
+    dir: &str,
+    reference: &str,
+    format: &str,
+    path: &str,
+    types: Vec<(String, String)>,
+) -> PyResult<()> {
+    let given = given_types(types)?;
     use sluice::columnar::write::OutFormat;
     use sluice::export::{Format, TextFormat};
     let format = match format {
@@ -372,7 +316,7 @@ fn write_file(dir: &str, reference: &str, format: &str, path: &str) -> PyResult<
     let tmp = target.with_extension("sluice-part");
     let io = |e: std::io::Error| raise(sluice::Error::io(target, e));
     let mut f = std::io::BufWriter::new(std::fs::File::create(&tmp).map_err(io)?);
-    let written = sluice::export::write_in(&store, &v, format, &mut f)
+    let written = sluice::export::write_in_with(&store, &v, format, &given, &mut f)
         .map_err(raise)
         .and_then(|()| std::io::Write::flush(&mut f).map_err(io));
     drop(f);
@@ -413,15 +357,22 @@ fn verify(dir: &str, deep: bool) -> PyResult<String> {
     to_json(&sluice::verify::verify_with(&store, deep).map_err(raise)?)
 }
 
-/// The lineage report of a version, as data.
+/// The lineage report of a version, as data (the fields of the report's JSON form).
 #[pyfunction]
-fn report(dir: &str, reference: &str, sample: usize, name: &str) -> PyResult<String> {
+#[pyo3(signature = (dir, reference, sample, name, email=None))]
+fn report(
+    dir: &str,
+    reference: &str,
+    sample: usize,
+    name: &str,
+    email: Option<&str>,
+) -> PyResult<String> {
     let mut store = open(dir)?;
     let opts = sluice::report::ReportOptions {
         sample,
         replay: false,
         excluded: 10,
-        agent: name.into(),
+        agent: agent(name, email).identity(),
     };
     to_json(&sluice::report::build(&mut store, reference, &opts).map_err(raise)?)
 }
@@ -471,12 +422,19 @@ fn write_report(
     }))
 }
 
-/// Two versions compared: how rows were paired, the counts, and every changed cell, removed
-/// and added row (rows 1-based).
+/// Two versions compared, as `compare --json` gives it: how rows were paired, the counts, and
+/// at most `limit` changes listed (none with `counts`; by default as many as the command lists).
 #[pyfunction]
-#[pyo3(signature = (dir, a, b, key=None))]
-fn compare(dir: &str, a: &str, b: &str, key: Option<Vec<String>>) -> PyResult<String> {
-    use sluice::diff::{DiffOptions, KeyChoice, MatchedBy};
+#[pyo3(signature = (dir, a, b, key=None, limit=None, counts=false))]
+fn compare(
+    dir: &str,
+    a: &str,
+    b: &str,
+    key: Option<Vec<String>>,
+    limit: Option<usize>,
+    counts: bool,
+) -> PyResult<String> {
+    use sluice::diff::{DiffOptions, KeyChoice};
     let store = open(dir)?;
     let opts = DiffOptions {
         key: match key {
@@ -484,37 +442,35 @@ fn compare(dir: &str, a: &str, b: &str, key: Option<Vec<String>>) -> PyResult<St
             None => KeyChoice::Declared,
         },
     };
-    let d = sluice::diff::diff(&store, a, b, &opts).map_err(raise)?;
-    let matched_by = match &d.matched_by {
-        MatchedBy::Key(k) => json!({"by": "key", "key": k}),
-        MatchedBy::Order => json!({"by": "order"}),
-        MatchedBy::Lineage { .. } => json!({"by": "lineage"}),
+    let listed = if counts {
+        0
+    } else {
+        limit.unwrap_or(sluice::diff::LISTED_BY_DEFAULT)
     };
-    let header_b = &d.to.header;
-    let mut cells = Vec::new();
-    for c in &d.changes {
-        if let (Some(ar), Some(br)) = (c.a_row, c.b_row) {
-            if let (Some(ra), Some(rb)) = (d.from_rows.get(ar), d.to_rows.get(br)) {
-                for &(ia, ib) in &d.compared {
-                    let (old, new) = (ra.text(ia), rb.text(ib));
-                    if old != new {
-                        cells.push(json!({"row_a": ar + 1, "row_b": br + 1,
-                            "column": header_b.get(ib), "old": old, "new": new}));
-                    }
-                }
-            }
-        }
-    }
-    to_json(&json!({
-        "a": d.from.label(), "b": d.to.label(),
-        "matched_by": matched_by,
-        "rows_changed": d.n_changed(), "rows_unchanged": d.n_unchanged(),
-        "rows_removed": d.n_removed(), "rows_added": d.n_added(),
-        "removed": d.pairing.removed.iter().map(|r| r + 1).collect::<Vec<_>>(),
-        "added": d.pairing.added.iter().map(|r| r + 1).collect::<Vec<_>>(),
-        "changed_by_column": d.changed_by_column.iter().map(|(c, n)| json!({"column": c, "cells": n})).collect::<Vec<_>>(),
-        "cells": cells,
-    }))
+    let d = sluice::diff::diff_listed(&store, a, b, &opts, listed).map_err(raise)?;
+    to_json(&CompareJson::new(&d, listed))
+}
+
+/// Takes out the step that made `reference` (as `withdraw --json` reports it: what was
+/// recorded, or the conflicts that refused it).
+#[pyfunction]
+#[pyo3(signature = (dir, reference, reason, accept_conflicts, name, email=None))]
+fn withdraw(
+    dir: &str,
+    reference: &str,
+    reason: &str,
+    accept_conflicts: bool,
+    name: &str,
+    email: Option<&str>,
+) -> PyResult<String> {
+    let mut store = open(dir)?;
+    let opts = sluice::revert::RevertOptions {
+        reason: reason.into(),
+        force: accept_conflicts,
+        agent: agent(name, email),
+    };
+    let outcome = sluice::revert::revert(&mut store, reference, &opts).map_err(raise)?;
+    to_json(&WithdrawJson::from(&outcome))
 }
 
 /// The audit trail, oldest first, optionally of one dataset.
@@ -551,6 +507,7 @@ fn _engine(m: &Bound<'_, PyModule>) -> PyResult<()> {
         wrap_pyfunction!(report, m)?,
         wrap_pyfunction!(write_report, m)?,
         wrap_pyfunction!(compare, m)?,
+        wrap_pyfunction!(withdraw, m)?,
         wrap_pyfunction!(timeline, m)?,
     ] {
         m.add_function(f)?;
