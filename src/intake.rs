@@ -29,7 +29,7 @@ use crate::store::objects::ObjectWriter;
 use crate::store::{NewStep, NewVersion, Store, Tx};
 use crate::table::batch::RecordBatch;
 use crate::table::profile::{number_shape, Profiler};
-use crate::table::rowindex::{self, RowEntry};
+use crate::table::rowindex;
 use crate::table::stream::{encoding_for, read_full, Utf8Check};
 use crate::table::{for_each_record, RawRecord, ReadSettings, RecordStream};
 
@@ -696,7 +696,7 @@ struct Sink<'a> {
     index: ObjectWriter,
     store_dir: &'a Path,
     key_hashes: Vec<(u64, u64)>,
-    scratch: Vec<u8>,
+    rows: rowindex::Builder,
 }
 
 impl Sink<'_> {
@@ -742,14 +742,7 @@ impl Sink<'_> {
             self.key_hashes.push((h.digest(), self.n_rows));
         }
         profiler.observe(rec.iter());
-        rowindex::encode_entry(
-            &RowEntry {
-                byte: rec.byte,
-                line: rec.line,
-                fingerprint: rowindex::fingerprint(&rec, &mut self.scratch),
-            },
-            &mut self.index_buf,
-        );
+        self.rows.push(rec.byte, rec.line, &mut self.index_buf);
         if self.index_buf.len() >= 256 * 1024 {
             self.index
                 .write(&self.index_buf)
@@ -837,7 +830,7 @@ fn parse_side(
         .row_index_writer()
         .map_err(|e| store_io(store_dir, e))?;
     index
-        .write(&rowindex::header())
+        .write(&rowindex::Builder::start())
         .map_err(|e| store_io(store_dir, e))?;
     let mut sink = Sink {
         path,
@@ -852,7 +845,7 @@ fn parse_side(
         index,
         store_dir,
         key_hashes: Vec::new(),
-        scratch: Vec::with_capacity(4096),
+        rows: rowindex::Builder::new(),
     };
     let mut dialect = None;
     while let Ok(msg) = rx.recv() {
@@ -875,6 +868,7 @@ fn parse_side(
     let Some(header) = sink.header.take() else {
         return Err(Error::input(path, None, InputProblem::NoHeader));
     };
+    std::mem::take(&mut sink.rows).finish(&mut sink.index_buf);
     sink.index
         .write(&sink.index_buf)
         .map_err(|e| store_io(store_dir, e))?;
