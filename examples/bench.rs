@@ -41,8 +41,8 @@
 //! larger groups are printed with the time per million rows).
 //!
 //! How the lookups scale: per step a trail reads the step's row map and does a binary search
-//! in its runs, then reads the cell by offset, through two entries of the row index and the
-//! record's bytes; so a trail's cost is the number of steps times a lookup that does not depend
+//! in its runs, then reads the cell by offset, through the row index's checkpoint before the
+//! row and at most a stride of records after it; so a trail's cost is the number of steps times a lookup that does not depend
 //! on the rows, plus reading each step's provenance object (which grows with what the step
 //! changed). A key lookup (`--key`) and `explain` scan the version they start from, and
 //! explain carries the group's rows back through every step, so both grow with the rows.
