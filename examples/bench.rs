@@ -41,8 +41,8 @@
 //! larger groups are printed with the time per million rows).
 //!
 //! How the lookups scale: per step a trail reads the step's row map and does a binary search
-//! in its runs, then reads the cell by offset, through two entries of the row index and the
-//! record's bytes; so a trail's cost is the number of steps times a lookup that does not depend
+//! in its runs, then reads the cell by offset, through the row index's checkpoint before the
+//! row and at most a stride of records after it; so a trail's cost is the number of steps times a lookup that does not depend
 //! on the rows, plus reading each step's provenance object (which grows with what the step
 //! changed). A key lookup (`--key`) and `explain` scan the version they start from, and
 //! explain carries the group's rows back through every step, so both grow with the rows.
@@ -945,6 +945,72 @@ fn frame_sizes(file: &Path) -> Result<Value> {
     Ok(Value::Array(out))
 }
 
+/// The compact row index at several checkpoint strides, in this process on one thread, from
+/// the file's records: bytes per row stored (Zstandard level 1 in the row index's frames) and
+/// the time to find one row from its checkpoint (the parse of the stretch a trail does; the
+/// decoding of the table's frame is the same at every stride and measured above). Measurements
+/// behind `rowindex::STRIDE`.
+fn index_strides(file: &Path) -> Result<Value> {
+    use sluice::table::rowindex;
+    let data = fs::read(file)?;
+    let mut rows = Vec::new();
+    let mut parser = sluice::table::parse::Parser::new(b',', 0);
+    let mut keep = |r: sluice::table::RawRecord<'_>| -> std::result::Result<(), ()> {
+        rows.push((r.byte, r.line));
+        Ok(())
+    };
+    parser
+        .feed(&data, &mut keep)
+        .map_err(|_| anyhow!("parsing {}", file.display()))?;
+    let _ = parser.finish(&mut keep);
+    rows.remove(0);
+    let n = rows.len();
+    println!(
+        "  row index strides (1 thread, in process): stride, bytes per row stored, find one row"
+    );
+    let frame = sluice::store::segments::INDEX_FRAME_SIZE as usize;
+    let mut out = Vec::new();
+    for stride in [16u32, 64, 128, 512] {
+        let mut index = rowindex::Builder::start().to_vec();
+        let mut b = rowindex::Builder::with_stride(stride);
+        for &(byte, line) in &rows {
+            b.push(byte, line, &mut index);
+        }
+        b.finish(&mut index);
+        let mut c = zstd::bulk::Compressor::new(1)?;
+        let stored: usize = index
+            .chunks(frame)
+            .map(|ch| c.compress(ch).map(|f| f.len()))
+            .sum::<io::Result<usize>>()?;
+        let picks: Vec<usize> = (0..2000).map(|k| k * 7919 % n).collect();
+        let t = Instant::now();
+        for &r in &picks {
+            let cp = r / stride as usize * stride as usize;
+            let end = rows
+                .get(cp + stride as usize)
+                .map_or(data.len(), |&(b, _)| b as usize);
+            let at = rows[cp];
+            let found = rowindex::find_in_stretch(
+                &mut parser,
+                &data[at.0 as usize..end],
+                at,
+                (r - cp) as u64,
+            );
+            ensure!(
+                found.map(|f| (f.0, f.1)) == Some(rows[r]),
+                "stride {stride}: row {r} not found"
+            );
+        }
+        let find_us = t.elapsed().as_secs_f64() * 1e6 / picks.len() as f64;
+        let per_row = stored as f64 / n as f64;
+        println!("    stride {stride:>4}: {per_row:.2} bytes per row, {find_us:.1} µs");
+        out.push(
+            json!({"stride": stride, "bytes_per_row_stored": per_row, "find_one_row_us": find_us}),
+        );
+    }
+    Ok(Value::Array(out))
+}
+
 /// The version hash in `sluice receive --json`'s output (`version.hash`, the full hex digits).
 fn recorded_hash(stdout: &str) -> Option<String> {
     let v: Value = serde_json::from_str(stdout).ok()?;
@@ -1381,6 +1447,7 @@ fn intake_size(ctx: &Ctx, n: u64) -> Result<(Value, bool)> {
         );
     }
     let frames = frame_sizes(&file)?;
+    let strides = index_strides(&file)?;
     let (cat_packed, cat_loose) = cat_compressed_vs_loose(ctx, &file)?;
     let cat_rows = vec![cat_packed, cat_loose];
     print_table(&cat_rows, bytes);
@@ -1416,6 +1483,7 @@ fn intake_size(ctx: &Ctx, n: u64) -> Result<(Value, bool)> {
         "tools": tools,
         "store_after_intake": stored.json(),
         "frames": frames,
+        "row_index_strides": strides,
         "cat": cat_rows.iter().map(|r| (r.key.to_string(), r.json(bytes))).collect::<serde_json::Map<String, Value>>(),
         "background_load_cores": background,
         "max_other_processes_cores": rows.iter().filter_map(Row::others_cores).reduce(f64::max),

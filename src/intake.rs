@@ -1,10 +1,11 @@
 //! Intake: recording an outside file as a new version of a dataset.
 //!
-//! One pass over the file, in two threads. The reading thread reads 1 MiB pieces, checks them
-//! (UTF-8, NUL bytes), hashes them, writes them to a temporary object and parses them into
-//! batches of records; the calling thread checks the records (header, field counts, keys),
-//! profiles the columns and writes the row index. The split keeps both cores about equally
-//! busy: parsing and profiling each cost about as much as the rest together. Memory stays bounded by a few pieces in flight plus the
+//! One pass over the file, in three threads. The reading thread reads 1 MiB pieces, checks them
+//! (UTF-8, NUL bytes) and parses them into batches of records, then hands each piece to the
+//! writing thread, which hashes it, compresses it and writes it to a temporary object; the
+//! calling thread checks the records (header, field counts, keys), profiles the columns and
+//! writes the row index. Three threads on two cores keep both busy whichever part is the
+//! heaviest on a given file. Memory stays bounded by a few pieces in flight plus the
 //! profile (see `table::profile`), whatever the size of the file; only `--key` keeps 16 bytes per
 //! row, to find duplicate keys.
 //!
@@ -29,7 +30,7 @@ use crate::store::objects::ObjectWriter;
 use crate::store::{NewStep, NewVersion, Store, Tx};
 use crate::table::batch::RecordBatch;
 use crate::table::profile::{number_shape, Profiler};
-use crate::table::rowindex::{self, RowEntry};
+use crate::table::rowindex;
 use crate::table::stream::{encoding_for, read_full, Utf8Check};
 use crate::table::{for_each_record, RawRecord, ReadSettings, RecordStream};
 
@@ -83,6 +84,9 @@ enum Msg {
     /// The input ended; the dialect it was read with.
     End(Dialect),
 }
+
+/// Pieces of the file waiting for the thread that writes its copy.
+const PIECES_IN_FLIGHT: usize = 4;
 
 /// Field data per batch before it is handed to the consuming thread.
 const BATCH_BYTES: usize = 512 * 1024;
@@ -556,15 +560,26 @@ fn run_pipeline(
     std::thread::scope(|scope| {
         let (tx, rx) = mpsc::sync_channel::<Msg>(8);
         let (recycle_tx, recycle_rx) = mpsc::channel::<RecordBatch>();
-        let store_dir_r = store_dir.clone();
+        // The raw copy is hashed, compressed and written on a thread of its own: pieces go to
+        // it once checked and parsed, and come back to be filled again.
+        let (piece_tx, piece_rx) = mpsc::sync_channel::<Vec<u8>>(PIECES_IN_FLIGHT);
+        let (empty_tx, empty_rx) = mpsc::channel::<Vec<u8>>();
+        let store_dir_w = store_dir.clone();
+        let writer = scope.spawn(move || -> Result<ObjectWriter> {
+            let mut table = objects.writer().map_err(|e| store_io(&store_dir_w, e))?;
+            while let Ok(piece) = piece_rx.recv() {
+                table.write(&piece).map_err(|e| store_io(&store_dir_w, e))?;
+                let _ = empty_tx.send(piece);
+            }
+            Ok(table)
+        });
         let settings = ReadSettings {
             delimiter: opts.delimiter,
             encoding,
             max_record: Some(crate::table::stream::max_record_bytes()),
         };
         let has_header = opts.has_header;
-        let reader = scope.spawn(move || -> Result<Option<ReadSide>> {
-            let mut table = objects.writer().map_err(|e| store_io(&store_dir_r, e))?;
+        let reader = scope.spawn(move || -> Result<Option<u64>> {
             let mut check = Utf8Check::default();
             let mut rs = RecordStream::new(path, settings);
             let mut offset = 0u64;
@@ -581,6 +596,10 @@ fn run_pipeline(
                 tx.send(Msg::Batch(std::mem::replace(batch, next))).is_ok()
             };
             loop {
+                if buf.is_empty() {
+                    buf = empty_rx.try_recv().unwrap_or_default();
+                    buf.resize(STREAM_BUF, 0);
+                }
                 let n = read_full(&mut file, &mut buf).map_err(|e| Error::io(path, e))?;
                 let piece = &buf[..n];
                 if check_nul {
@@ -602,7 +621,6 @@ fn run_pipeline(
                         ));
                     }
                 }
-                table.write(piece).map_err(|e| store_io(&store_dir_r, e))?;
                 offset += n as u64;
                 progress.add(n as u64);
                 let last = n < STREAM_BUF;
@@ -619,11 +637,18 @@ fn run_pipeline(
                         // The consuming side stopped (it found a problem): stop reading.
                         return Ok(None);
                     }
+                    let mut full = std::mem::take(&mut buf);
+                    full.truncate(n);
+                    if piece_tx.send(full).is_err() {
+                        // The writing side stopped (a write failed): its error is reported.
+                        return Ok(None);
+                    }
                 }
                 if last {
                     break;
                 }
             }
+            drop(piece_tx);
             if utf8 {
                 if let Err(byte) = check.finish() {
                     return Err(Error::input(
@@ -641,22 +666,26 @@ fn run_pipeline(
                 return Ok(None);
             }
             let _ = tx.send(Msg::End(rs.dialect(has_header)));
-            Ok(Some(ReadSide {
-                table,
-                n_bytes: offset,
-            }))
+            Ok(Some(offset))
         });
 
         let parsed = parse_side(objects, &store_dir, path, opts, rx, recycle_tx);
         let read = reader
             .join()
             .map_err(|_| Error::from(ErrorKind::Internal("the reading thread panicked".into())))?;
+        let written = writer
+            .join()
+            .map_err(|_| Error::from(ErrorKind::Internal("the writing thread panicked".into())))?;
         // The consuming side only saw records the reader had checked and parsed, so a problem
-        // it found comes earlier in the file than the reader's: report it first.
-        match (parsed, read) {
-            (Err(e), _) => Err(e),
-            (Ok(_), Err(e)) => Err(e),
-            (Ok(Some(scan)), Ok(Some(read))) => Ok((read, scan)),
+        // it found comes earlier in the file than the reader's: report it first; the writer
+        // only saw pieces both had accepted.
+        match (parsed, read, written) {
+            (Err(e), _, _) => Err(e),
+            (Ok(_), Err(e), _) => Err(e),
+            (Ok(_), Ok(_), Err(e)) => Err(e),
+            (Ok(Some(scan)), Ok(Some(n_bytes)), Ok(table)) => {
+                Ok((ReadSide { table, n_bytes }, scan))
+            }
             _ => Err(ErrorKind::Internal("intake stopped without a reason".into()).into()),
         }
     })
@@ -696,7 +725,7 @@ struct Sink<'a> {
     index: ObjectWriter,
     store_dir: &'a Path,
     key_hashes: Vec<(u64, u64)>,
-    scratch: Vec<u8>,
+    rows: rowindex::Builder,
 }
 
 impl Sink<'_> {
@@ -742,14 +771,7 @@ impl Sink<'_> {
             self.key_hashes.push((h.digest(), self.n_rows));
         }
         profiler.observe(rec.iter());
-        rowindex::encode_entry(
-            &RowEntry {
-                byte: rec.byte,
-                line: rec.line,
-                fingerprint: rowindex::fingerprint(&rec, &mut self.scratch),
-            },
-            &mut self.index_buf,
-        );
+        self.rows.push(rec.byte, rec.line, &mut self.index_buf);
         if self.index_buf.len() >= 256 * 1024 {
             self.index
                 .write(&self.index_buf)
@@ -837,7 +859,7 @@ fn parse_side(
         .row_index_writer()
         .map_err(|e| store_io(store_dir, e))?;
     index
-        .write(&rowindex::header())
+        .write(&rowindex::Builder::start())
         .map_err(|e| store_io(store_dir, e))?;
     let mut sink = Sink {
         path,
@@ -852,7 +874,7 @@ fn parse_side(
         index,
         store_dir,
         key_hashes: Vec::new(),
-        scratch: Vec::with_capacity(4096),
+        rows: rowindex::Builder::new(),
     };
     let mut dialect = None;
     while let Ok(msg) = rx.recv() {
@@ -875,6 +897,7 @@ fn parse_side(
     let Some(header) = sink.header.take() else {
         return Err(Error::input(path, None, InputProblem::NoHeader));
     };
+    std::mem::take(&mut sink.rows).finish(&mut sink.index_buf);
     sink.index
         .write(&sink.index_buf)
         .map_err(|e| store_io(store_dir, e))?;

@@ -220,23 +220,18 @@ struct Rows {
     /// One parser, restarted for every record read by offset (making one costs more than
     /// reading a record).
     parser: Option<crate::table::parse::Parser>,
+    /// Per version id, the tail of its compact row index (`None`: format 1).
+    tails: HashMap<i64, Option<rowindex::Tail>>,
 }
 
 impl Rows {
     fn get(&mut self, store: &Store, v: &Version, row: u64) -> Result<&Vec<String>> {
-        match self.cache.entry((v.id, row)) {
-            std::collections::hash_map::Entry::Occupied(e) => Ok(e.into_mut()),
-            std::collections::hash_map::Entry::Vacant(e) => {
+        if !self.cache.contains_key(&(v.id, row)) {
+            {
                 let fields = if cuttable(v) {
-                    let (_, bytes) = record_bytes(store, v, row)?;
-                    let delimiter = v.dialect.delimiter_byte();
-                    let parser = match &mut self.parser {
-                        Some(p) if p.delimiter() == delimiter => {
-                            p.restart(0);
-                            p
-                        }
-                        slot => slot.insert(crate::table::parse::Parser::new(delimiter, 0)),
-                    };
+                    let (_, _, bytes) = record_bytes(store, self, v, row)?;
+                    let parser = self.parser_for(v.dialect.delimiter_byte());
+                    parser.restart(0);
                     parse_one(parser, &bytes, v)?
                 } else {
                     // A raw file in a legacy encoding: its offsets count the file's own bytes,
@@ -246,9 +241,21 @@ impl Rows {
                         .map(|r| r.texts())
                         .ok_or_else(|| missing_row(v, row))?
                 };
-                Ok(e.insert(fields))
+                self.cache.insert((v.id, row), fields);
             }
         }
+        self.cache
+            .get(&(v.id, row))
+            .ok_or_else(|| missing_row(v, row))
+    }
+
+    /// The one parser, for `delimiter`.
+    fn parser_for(&mut self, delimiter: u8) -> &mut crate::table::parse::Parser {
+        if self.parser.as_ref().map(|p| p.delimiter()) != Some(delimiter) {
+            self.parser = Some(crate::table::parse::Parser::new(delimiter, 0));
+        }
+        self.parser
+            .get_or_insert_with(|| crate::table::parse::Parser::new(delimiter, 0))
     }
 
     fn cell(&mut self, store: &Store, v: &Version, row: u64, column: &str) -> Result<String> {
@@ -276,27 +283,88 @@ fn hash_of(hex: &str, v: &Version) -> Result<crate::hash::Hash> {
         .map_err(|e: String| Error::from(ErrorKind::Inconsistent(format!("{}: {e}", v.label()))))
 }
 
-/// The row index entry of `row` and the bytes of its record (with its line ending), read in
-/// constant time: two entries of the row index, then the record, each by offset.
-fn record_bytes(store: &Store, v: &Version, row: u64) -> Result<(rowindex::RowEntry, Vec<u8>)> {
+/// The byte offset and line of `row` and the bytes of its record (with its line ending and any
+/// blank lines after it), read in near-constant time: from a compact row index the tail and
+/// the checkpoint at or before the row, then the records from there to the next checkpoint,
+/// parsed until the row; from one of format 1 two entries, then the record, each by offset.
+fn record_bytes(
+    store: &Store,
+    rows: &mut Rows,
+    v: &Version,
+    row: u64,
+) -> Result<(u64, u64, Vec<u8>)> {
     let index = hash_of(&v.row_index, v)?;
-    let at = rowindex::HEADER_LEN as u64 + row * rowindex::ENTRY_LEN as u64;
-    let two = store
-        .objects
-        .read_range(&index, at, 2 * rowindex::ENTRY_LEN)?;
-    // `entry` reads from a whole index; give it these two entries behind an empty header.
-    let mut buf = vec![0u8; rowindex::HEADER_LEN];
-    buf.extend_from_slice(&two);
-    let this = rowindex::entry(&buf, 0).ok_or_else(|| missing_row(v, row))?;
-    let end = rowindex::entry(&buf, 1).map_or(v.n_bytes, |next| next.byte);
-    if end < this.byte || end > v.n_bytes {
+    let table = hash_of(&v.hash, v)?;
+    let damaged = |e: std::io::Error| {
+        Error::from(ErrorKind::Inconsistent(format!(
+            "the row index of {} is damaged ({e}); run `sluice verify`",
+            v.label()
+        )))
+    };
+    let tail = match rows.tails.get(&v.id) {
+        Some(t) => *t,
+        None => {
+            let head = store.objects.read_range(&index, 0, rowindex::HEADER_LEN)?;
+            let t = if rowindex::format_of(&head).map_err(damaged)? == rowindex::COMPACT_FORMAT {
+                let size = store.objects.size(&index)?;
+                let at = size
+                    .checked_sub(rowindex::TAIL_LEN as u64)
+                    .ok_or_else(|| damaged(std::io::Error::other("too short for its tail")))?;
+                let b = store.objects.read_range(&index, at, rowindex::TAIL_LEN)?;
+                Some(rowindex::Tail::read(&b, size).map_err(damaged)?)
+            } else {
+                None
+            };
+            rows.tails.insert(v.id, t);
+            t
+        }
+    };
+    let Some(tail) = tail else {
+        let at = rowindex::HEADER_LEN as u64 + row * rowindex::ENTRY_LEN as u64;
+        let two = store
+            .objects
+            .read_range(&index, at, 2 * rowindex::ENTRY_LEN)?;
+        // `entry` reads from a whole index; give it these two entries behind a header.
+        let mut buf = rowindex::header().to_vec();
+        buf.extend_from_slice(&two);
+        let this = rowindex::entry(&buf, 0).ok_or_else(|| missing_row(v, row))?;
+        let end = rowindex::entry(&buf, 1).map_or(v.n_bytes, |next| next.byte);
+        if end < this.byte || end > v.n_bytes {
+            return Err(missing_row(v, row));
+        }
+        let bytes = store
+            .objects
+            .read_range(&table, this.byte, (end - this.byte) as usize)?;
+        return Ok((this.byte, this.line, bytes));
+    };
+    if row >= tail.n_rows {
         return Err(missing_row(v, row));
     }
-    let bytes =
+    let stride = u64::from(tail.stride);
+    let (i, skip) = (row / stride, row % stride);
+    let two =
         store
             .objects
-            .read_range(&hash_of(&v.hash, v)?, this.byte, (end - this.byte) as usize)?;
-    Ok((this, bytes))
+            .read_range(&index, tail.checkpoint_at(i), 2 * rowindex::CHECKPOINT_LEN)?;
+    let at = rowindex::checkpoint(&two).ok_or_else(|| missing_row(v, row))?;
+    let end = if i + 1 < tail.n_checkpoints() {
+        rowindex::checkpoint(&two[rowindex::CHECKPOINT_LEN..])
+            .ok_or_else(|| missing_row(v, row))?
+            .0
+    } else {
+        v.n_bytes
+    };
+    if end < at.0 || end > v.n_bytes {
+        return Err(missing_row(v, row));
+    }
+    let stretch = store
+        .objects
+        .read_range(&table, at.0, (end - at.0) as usize)?;
+    let parser = rows.parser_for(v.dialect.delimiter_byte());
+    let (byte, line, next) =
+        rowindex::find_in_stretch(parser, &stretch, at, skip).ok_or_else(|| missing_row(v, row))?;
+    let bytes = stretch[(byte - at.0) as usize..(next - at.0) as usize].to_vec();
+    Ok((byte, line, bytes))
 }
 
 /// The fields of the one record in `bytes`.
@@ -562,7 +630,7 @@ fn origin(
     step: &crate::model::Step,
 ) -> Result<Origin> {
     let raw_value = rows.cell(store, v, r, column)?;
-    let (entry, bytes) = record_bytes(store, v, r)?;
+    let (_, line, bytes) = record_bytes(store, rows, v, r)?;
     // The record without its line ending and the blank lines after it.
     let mut end = bytes.len();
     while end > 0 && matches!(bytes[end - 1], b'\n' | b'\r') {
@@ -598,7 +666,7 @@ fn origin(
         absolute_path: step.source.as_ref().map(|s| s.absolute_path.clone()),
         taken_in_at: step.ended_at.clone(),
         agent: step.agent.clone(),
-        line: entry.line,
+        line,
         column: column.to_string(),
         raw_value,
         raw_line: decode(v, &bytes[..end]),

@@ -742,8 +742,9 @@ fn describe_range(sel: &audit::Selector) -> String {
 }
 
 /// The deep check: each version whose objects read back intact is read again, and its row
-/// index (each row's byte offset and fingerprint) and column profile are computed as intake and
-/// the writer compute them, then compared with the stored row index object and the
+/// index and column profile are computed as intake and the writer compute them, then compared
+/// with the stored row index object (a compact one written again byte for byte; one of format
+/// 1 row by row, offsets and fingerprints) and the
 /// `column_profiles` rows. A difference means the store was written by something else than
 /// sluice, or by a sluice with a bug: the row commitments only prove the rows are the ones
 /// recorded, not that they were right. Returns the problems and the number of versions done.
@@ -760,8 +761,18 @@ fn deep_problems(store: &Store, report: &VerifyReport) -> Result<(Vec<Problem>, 
         let Ok(hash) = v.hash.parse::<Hash>() else {
             continue;
         };
-        let stored = match crate::diff::read::row_index(&store.objects, &v) {
-            Ok(x) => x,
+        let Ok(ix_hash) = v.row_index.parse::<Hash>() else {
+            continue;
+        };
+        // Format 1 is compared row by row (offsets and fingerprints); the compact format is
+        // written again from the rows read and must come out byte for byte the same.
+        let compact = match store
+            .objects
+            .read_range(&ix_hash, 0, rowindex::HEADER_LEN)
+            .and_then(|h| {
+                rowindex::format_of(&h).map_err(|e| crate::Error::io(Path::new(&v.row_index), e))
+            }) {
+            Ok(f) => f == rowindex::COMPACT_FORMAT,
             Err(e) => {
                 out.push(problem("row_index", v.label(), e.to_string()));
                 continue;
@@ -771,6 +782,8 @@ fn deep_problems(store: &Store, report: &VerifyReport) -> Result<(Vec<Problem>, 
         let mut profiler = crate::table::profile::Profiler::new(v.header.len(), &v.null_tokens);
         let mut header_seen = !v.dialect.has_header;
         let (mut fps, mut offsets) = (Vec::new(), Vec::new());
+        let mut built = rowindex::Builder::start().to_vec();
+        let mut builder = rowindex::Builder::new();
         let mut scratch = Vec::new();
         let read = store.objects.open_raw(&hash).and_then(|src| {
             crate::table::stream::for_each_record(Path::new(&v.label()), src, &settings, |r| {
@@ -779,8 +792,12 @@ fn deep_problems(store: &Store, report: &VerifyReport) -> Result<(Vec<Problem>, 
                     return Ok(());
                 }
                 profiler.observe(r.iter());
-                offsets.push(r.byte);
-                fps.push(rowindex::fingerprint(&r, &mut scratch));
+                if compact {
+                    builder.push(r.byte, r.line, &mut built);
+                } else {
+                    offsets.push(r.byte);
+                    fps.push(rowindex::fingerprint(&r, &mut scratch));
+                }
                 Ok(())
             })
         });
@@ -789,18 +806,57 @@ fn deep_problems(store: &Store, report: &VerifyReport) -> Result<(Vec<Problem>, 
             continue;
         }
         done += 1;
-        if (fps.as_slice(), offsets.as_slice()) != (stored.0.as_slice(), stored.1.as_slice()) {
-            let first = (0..fps.len().max(stored.0.len()))
-                .find(|&i| fps.get(i) != stored.0.get(i) || offsets.get(i) != stored.1.get(i))
-                .unwrap_or(0);
+        let mismatch = if compact {
+            let n_read = builder.n_rows();
+            builder.finish(&mut built);
+            if Hash::of(&built) == ix_hash {
+                None
+            } else {
+                let ours = rowindex::positions(&built).unwrap_or_default();
+                let theirs = store
+                    .objects
+                    .read_all(&ix_hash)
+                    .ok()
+                    .and_then(|d| rowindex::positions(&d).ok())
+                    .unwrap_or_default();
+                let first = (0..ours.len().max(theirs.len()))
+                    .find(|&i| ours.get(i) != theirs.get(i))
+                    .unwrap_or(0);
+                Some((n_read, theirs.len(), first))
+            }
+        } else {
+            match crate::diff::read::offsets(&store.objects, &v) {
+                Ok((Some(stored_fps), stored_offsets)) => {
+                    if (fps.as_slice(), offsets.as_slice())
+                        == (stored_fps.as_slice(), stored_offsets.as_slice())
+                    {
+                        None
+                    } else {
+                        let first = (0..fps.len().max(stored_fps.len()))
+                            .find(|&i| {
+                                fps.get(i) != stored_fps.get(i)
+                                    || offsets.get(i) != stored_offsets.get(i)
+                            })
+                            .unwrap_or(0);
+                        Some((fps.len() as u64, stored_fps.len(), first))
+                    }
+                }
+                Ok((None, _)) => Some((fps.len() as u64, 0, 0)),
+                Err(e) => {
+                    out.push(problem("row_index", v.label(), e.to_string()));
+                    continue;
+                }
+            }
+        };
+        if let Some((n_read, n_indexed, first)) = mismatch {
             out.push(problem(
                 "row_index",
                 v.label(),
                 format!(
                     "the row index {} does not match the version's bytes read again ({} rows read, {} indexed; first difference at data row {})",
                     v.row_index,
-                    fps.len(),
-                    stored.0.len(),
+                    n_read,
+                    n_indexed,
                     first + 1
                 ),
             ));

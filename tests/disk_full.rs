@@ -188,6 +188,7 @@ struct Project {
     big: PathBuf,
     big_len: u64,
     big_rows: u64,
+    big_index_len: u64,
 }
 
 fn project() -> Project {
@@ -206,6 +207,7 @@ fn project() -> Project {
     Project {
         big_len: text.len() as u64,
         big_rows: rows,
+        big_index_len: index_len(text.as_bytes()),
         big,
         dir,
     }
@@ -358,9 +360,18 @@ fn ingest_for_real(p: &Project, index_len: u64) {
     assert_eq!(report.leftover_temp_files, 0);
 }
 
-/// The row index is a fixed header followed by one fixed-size entry per data row.
-fn index_len(rows: u64) -> u64 {
-    rowindex::HEADER_LEN as u64 + rowindex::ENTRY_LEN as u64 * rows
+/// The length of the compact row index of `text` (every record after the header, by its byte
+/// offset and line, through the format's one encoder).
+fn index_len(text: &[u8]) -> u64 {
+    let mut parser = sluice::table::parse::Parser::new(b',', 0);
+    let mut rows = Vec::new();
+    let mut keep = |r: sluice::table::RawRecord<'_>| -> Result<(), ()> {
+        rows.push((r.byte, r.line));
+        Ok(())
+    };
+    parser.feed(text, &mut keep).unwrap();
+    let _ = parser.finish(&mut keep).unwrap();
+    rowindex::encode(rows.into_iter().skip(1)).len() as u64
 }
 
 #[test]
@@ -371,13 +382,13 @@ fn disk_full_while_copying_the_table_leaves_the_store_unchanged() {
     for limit in [0, 100, 5000, p.big_len / 2] {
         check_full_disk(&p, Target::Table, limit);
     }
-    ingest_for_real(&p, index_len(p.big_rows));
+    ingest_for_real(&p, p.big_index_len);
 }
 
 #[test]
 fn disk_full_while_writing_the_row_index_leaves_the_store_unchanged() {
     let p = project();
-    let index = index_len(p.big_rows);
+    let index = p.big_index_len;
     // 0: the index header itself; 100 and 5000: the first batch of entries; the middle of the
     // index (over 1 MB for this file): after several batches went out.
     for limit in [0, 100, 5000, index / 2] {
@@ -392,7 +403,7 @@ fn disk_full_for_every_object_leaves_the_store_unchanged() {
     for limit in [0, 100, 5000, p.big_len / 2] {
         check_full_disk(&p, Target::Every, limit);
     }
-    ingest_for_real(&p, index_len(p.big_rows));
+    ingest_for_real(&p, p.big_index_len);
 }
 
 // ---- a real full file system -------------------------------------------------------------
@@ -443,10 +454,10 @@ fn disk_full_on_a_small_tmpfs_reports_no_space_left_and_leaves_the_store_unchang
         "this test mounts a 2 MiB tmpfs to fill it, which needs root; run the test suite as root"
     );
     // The 16 MB export lives outside the small file system; the store lives on it. Objects
-    // are stored compressed (about 3.6 times smaller for these rows), so the export is large
-    // enough that even its compressed copy does not fit.
+    // are stored compressed, so the export holds rows with random serial numbers (which do not
+    // compress below half) and is large enough that even its compressed copy does not fit.
     let exports = tempfile::tempdir().unwrap();
-    let (text, _) = work_orders(16_000_000);
+    let text = padded_orders(120_000);
     let big = exports.path().join("q3.csv");
     fs::write(&big, &text).unwrap();
 
@@ -501,9 +512,9 @@ fn disk_full_during_apply_and_run_reports_no_space_left_and_leaves_the_store_unc
         "this test mounts a 2 MiB tmpfs to fill it, which needs root; run the test suite as root"
     );
     let exports = tempfile::tempdir().unwrap();
-    // About 3.4 MB, stored compressed in about 1 MB with its row index: its copy fits on the
+    // About 4.1 MB, stored compressed in about 1.2 MB with its row index: its copy fits on the
     // file system, a cleaned copy as well does not.
-    let text = padded_orders(30_000);
+    let text = padded_orders(36_000);
     let file = exports.path().join("oxwater.csv");
     fs::write(&file, &text).unwrap();
     let plan = exports.path().join("plan.json");

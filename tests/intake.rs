@@ -47,9 +47,9 @@ fn rfc4180_examples_parse_to_the_documented_fields_and_round_trip() {
         .objects
         .read_all(&v.row_index.parse().unwrap())
         .unwrap();
-    let second = sluice::table::rowindex::entry(&idx, 1).unwrap();
+    let second = sluice::table::rowindex::position(&idx, 1).unwrap();
     // "aaa" (5) , (1) "b\r\nbb" (7) , (1) "ccc" (5) \r\n (2) = 21 bytes before it.
-    assert_eq!((second.byte, second.line), (21, 3));
+    assert_eq!(second, (21, 3));
 }
 
 // RFC 4180 section 2: empty fields, quoted or not, are empty values.

@@ -213,3 +213,97 @@ fn a_schema_4_store_takes_sign_offs_after_migration() {
     assert_eq!(s.json(&["about", "orders", "--json"])["signed"], true);
     assert_eq!(s.ok(&["retrieve", "orders:v2"]), before);
 }
+
+/// A store whose row indexes are of format 1 (24 bytes per row: `tests/fixtures/store_rowindex_v1`,
+/// made by the last build before the compact row index: `receive` of a 300-row export with CRLF
+/// line ends, quoted fields holding line breaks and a blank line, then a `trim`) is read as it
+/// is. The same export taken in again gets compact row indexes; both forms must give every row
+/// the same byte offset and line, the fingerprints the old build stored must equal those
+/// recomputed from the bytes, and trails, a comparison across the two forms and the deep
+/// verification must agree. Every hash is kept: old indexes are never rewritten.
+#[test]
+fn row_indexes_of_format_1_are_read_beside_compact_ones() {
+    use sluice::table::rowindex;
+    let s = Sandbox::new();
+    let fixture = Path::new(concat!(
+        env!("CARGO_MANIFEST_DIR"),
+        "/tests/fixtures/store_rowindex_v1"
+    ));
+    copy_dir(fixture, s.path());
+    let about = |r: &str| s.json(&["about", r, "--json"])["version"].clone();
+    let old_indexes: Vec<String> = ["orders:v1", "orders:v2"]
+        .iter()
+        .map(|r| about(r)["row_index"].as_str().unwrap().to_string())
+        .collect();
+    s.ok(&["receive", "orders.csv", "--as", "again"]);
+    s.ok(&["clean", "again", "trim", "--why", "the till pads names"]);
+    // The cleaned bytes are the same, whichever build made them.
+    assert_eq!(about("orders:v2")["hash"], about("again:v2")["hash"]);
+
+    let store = sluice::store::Store::open(&s.path().join("sluice-store")).unwrap();
+    let version = |r: &str| sluice::refs::resolve(&store.lineage, r).unwrap();
+    let index = |r: &str| {
+        store
+            .objects
+            .read_all(&version(r).row_index.parse().unwrap())
+            .unwrap()
+    };
+    for (old, new) in [("orders:v1", "again:v1"), ("orders:v2", "again:v2")] {
+        let (a, b) = (index(old), index(new));
+        assert_eq!(rowindex::format_of(&a).unwrap(), rowindex::FORMAT_VERSION);
+        assert_eq!(rowindex::format_of(&b).unwrap(), rowindex::COMPACT_FORMAT);
+        assert_eq!(rowindex::validate(&a).unwrap(), 300);
+        assert_eq!(
+            rowindex::positions(&a).unwrap(),
+            rowindex::positions(&b).unwrap()
+        );
+        assert!(
+            b.len() * 4 < a.len(),
+            "{} bytes against {}",
+            b.len(),
+            a.len()
+        );
+        let stored = sluice::diff::read::offsets(&store.objects, &version(old)).unwrap();
+        let recomputed = sluice::diff::read::row_index(&store.objects, &version(new)).unwrap();
+        assert_eq!(
+            stored.0.as_ref(),
+            Some(&recomputed.0),
+            "{old}: fingerprints"
+        );
+        assert_eq!(stored.1, recomputed.1, "{old}: offsets");
+    }
+    drop(store);
+
+    // Rows on both sides of the blank line, one after a record over two lines, the last one.
+    for row in ["1", "150", "151", "300"] {
+        for column in ["notes", "technician"] {
+            let trail = |r: &str| {
+                let t = s.json(&["trace", r, "--row", row, "--column", column, "--json"]);
+                (
+                    t["value"].clone(),
+                    t["end"]["line"].clone(),
+                    t["end"]["raw_line"].clone(),
+                )
+            };
+            assert_eq!(trail("orders"), trail("again"), "row {row}, {column}");
+        }
+    }
+    let counts = |a: &str, b: &str| {
+        let c = s.json(&["compare", a, b, "--key", "order_id", "--counts", "--json"]);
+        (c["rows"].clone(), c["cells"].clone())
+    };
+    assert_eq!(
+        counts("orders:v1", "orders:v2"),
+        counts("orders:v1", "again:v2")
+    );
+    assert_eq!(
+        counts("again:v1", "orders:v2"),
+        counts("again:v1", "again:v2")
+    );
+    let v = s.json(&["verify", "--deep", "--json"]);
+    assert_eq!(v["intact"], true, "{v}");
+    assert_eq!(v["versions_recomputed"], 4, "{v}");
+    for (r, ix) in ["orders:v1", "orders:v2"].iter().zip(&old_indexes) {
+        assert_eq!(about(r)["row_index"].as_str().unwrap(), ix, "{r}");
+    }
+}

@@ -13,7 +13,7 @@
 
 use xxhash_rust::xxh3::xxh3_64_with_seed;
 
-use super::read::{both, cuttable, each_row, row_index, rows_of, RawRows, RowStore};
+use super::read::{both, cuttable, each_row, rows_of, RawRows, RowStore};
 use super::{cell_diffs, count_by_column, listing, CellDiff, Change};
 use crate::error::{ErrorKind, Result};
 use crate::model::Version;
@@ -288,7 +288,7 @@ fn each_wanted(
         return Ok(());
     }
     if cuttable(v) {
-        let (_, offsets) = row_index(objects, v)?;
+        let (_, offsets) = super::read::offsets(objects, v)?;
         let mut raw = RawRows::new(objects, v, offsets)?;
         for &w in wanted {
             raw.with_record(w, |r| f(w, r))?;

@@ -10,7 +10,7 @@ use crate::hash::Hash;
 use crate::model::Version;
 use crate::store::objects::Objects;
 use crate::table::parse::Parser;
-use crate::table::rowindex::{ENTRY_LEN, FORMAT_VERSION, HEADER_LEN, MAGIC};
+use crate::table::rowindex::{self, ENTRY_LEN, HEADER_LEN};
 use crate::table::RawRecord;
 
 fn parse_hash(hex: &str) -> Result<Hash> {
@@ -58,14 +58,27 @@ pub fn each_row(
     objects.each_row_doing(v, "comparing", f)
 }
 
-/// The fingerprint of every row of `v`, from its row index object (checked against its hash
-/// and its row count).
+/// The fingerprint of every row of `v` (from its row index object where it holds them, else
+/// recomputed from the version's bytes).
 pub fn fingerprints(objects: &Objects, v: &Version) -> Result<Vec<u64>> {
     Ok(row_index(objects, v)?.0)
 }
 
-/// The fingerprint and the byte offset of every row of `v`, from its row index object.
+/// The fingerprint and the byte offset of every row of `v`: the offsets from its row index
+/// object, the fingerprints from it too when it holds them (format 1), else recomputed from the
+/// version's bytes (one more read of them).
 pub fn row_index(objects: &Objects, v: &Version) -> Result<(Vec<u64>, Vec<u64>)> {
+    let (stored, offsets) = offsets(objects, v)?;
+    let fps = match stored {
+        Some(fps) => fps,
+        None => recompute_fingerprints(objects, v, &offsets)?,
+    };
+    Ok((fps, offsets))
+}
+
+/// The byte offset of every row of `v` from its row index object (checked against its hash
+/// and its row count), and the fingerprints the object holds if it is of format 1.
+pub fn offsets(objects: &Objects, v: &Version) -> Result<(Option<Vec<u64>>, Vec<u64>)> {
     let hash = parse_hash(&v.row_index)?;
     let mut reader = Hashing {
         inner: objects.open_raw(&hash)?,
@@ -81,8 +94,16 @@ pub fn row_index(objects: &Objects, v: &Version) -> Result<(Vec<u64>, Vec<u64>)>
     let io = |e| Error::io(Path::new(&v.row_index), e);
     let mut head = [0u8; HEADER_LEN];
     reader.read_exact(&mut head).map_err(io)?;
-    if &head[..4] != MAGIC || head[4..8] != FORMAT_VERSION.to_le_bytes() {
-        return Err(damaged("unknown header"));
+    let format = rowindex::format_of(&head).map_err(|_| damaged("unknown header"))?;
+    if format == rowindex::COMPACT_FORMAT {
+        let mut data = head.to_vec();
+        reader.read_to_end(&mut data).map_err(io)?;
+        check_hash(&hash, &reader.hasher)?;
+        let positions = rowindex::positions(&data).map_err(|e| damaged(&e.to_string()))?;
+        if positions.len() as u64 != v.n_rows {
+            return Err(damaged("its length does not match the row count"));
+        }
+        return Ok((None, positions.into_iter().map(|(b, _)| b).collect()));
     }
     let mut fps = Vec::with_capacity(v.n_rows as usize);
     let mut offsets = Vec::with_capacity(v.n_rows as usize);
@@ -111,7 +132,44 @@ pub fn row_index(objects: &Objects, v: &Version) -> Result<(Vec<u64>, Vec<u64>)>
         return Err(damaged("its length does not match the row count"));
     }
     check_hash(&hash, &reader.hasher)?;
-    Ok((fps, offsets))
+    Ok((Some(fps), offsets))
+}
+
+/// Every row's fingerprint computed from the version's bytes: rows cut out by `offsets` and
+/// split directly where they hold no quote (parsed otherwise), or, for a version in another
+/// encoding than UTF-8, read through the one reader of stored rows.
+fn recompute_fingerprints(objects: &Objects, v: &Version, offsets: &[u64]) -> Result<Vec<u64>> {
+    let mut fps = Vec::with_capacity(offsets.len());
+    let mut scratch = Vec::new();
+    if !cuttable(v) {
+        each_row(objects, v, |_, r| {
+            fps.push(rowindex::fingerprint(&r, &mut scratch));
+            Ok(())
+        })?;
+        return Ok(fps);
+    }
+    let mut raw = RawRows::new(objects, v, offsets.to_vec())?;
+    let mut ends = Vec::new();
+    for row in 0..offsets.len() as u64 {
+        fps.push(raw.fingerprint(row, &mut ends, &mut scratch)?);
+    }
+    raw.finish()?;
+    Ok(fps)
+}
+
+/// The fingerprint of a record split at `ends` (each field's end in `bytes`; the next field
+/// starts one delimiter later), as [`rowindex::fingerprint`] defines it.
+pub fn plain_fingerprint(bytes: &[u8], ends: &[usize], scratch: &mut Vec<u8>) -> u64 {
+    scratch.clear();
+    let mut start = 0;
+    for &e in ends {
+        scratch.extend_from_slice(&bytes[start..e]);
+        start = e + 1;
+    }
+    for (i, &e) in ends.iter().enumerate() {
+        scratch.extend_from_slice(&((e - i) as u32).to_le_bytes());
+    }
+    xxhash_rust::xxh3::xxh3_64(scratch)
 }
 
 /// Owned rows, kept compactly: the field bytes of all rows in one buffer and the field ends in
@@ -390,6 +448,44 @@ impl RawRows {
         Ok(None)
     }
 
+    /// Row `row` split directly when it holds no quote: fills `ends` with each field's end
+    /// (relative to the record's first byte; the next field starts one delimiter later) and
+    /// returns the record's bytes without its line ending; `None` when it needs parsing.
+    pub fn plain_row<'s>(
+        &'s mut self,
+        row: u64,
+        ends: &mut Vec<usize>,
+    ) -> Result<Option<&'s [u8]>> {
+        let (from, to) = self.fill(row)?;
+        let bytes = &self.buf[from..to];
+        let rec = match memchr::memchr2(b'\r', b'\n', bytes) {
+            Some(e) => &bytes[..e],
+            None => bytes,
+        };
+        if rec.is_empty() || memchr::memchr(b'"', rec).is_some() {
+            return Ok(None);
+        }
+        ends.clear();
+        ends.extend(memchr::memchr_iter(self.parser.delimiter(), rec));
+        ends.push(rec.len());
+        Ok(Some(rec))
+    }
+
+    /// The fingerprint of row `row` ([`rowindex::fingerprint`]).
+    pub fn fingerprint(
+        &mut self,
+        row: u64,
+        ends: &mut Vec<usize>,
+        scratch: &mut Vec<u8>,
+    ) -> Result<u64> {
+        if let Some(rec) = self.plain_row(row, ends)? {
+            return Ok(plain_fingerprint(rec, ends, scratch));
+        }
+        let mut fp = 0;
+        self.with_record(row, |r| fp = rowindex::fingerprint(r, scratch))?;
+        Ok(fp)
+    }
+
     /// Reads the rest of the object and checks its hash.
     pub fn finish(mut self) -> Result<()> {
         let mut sink = vec![0u8; crate::hash::STREAM_BUF];
@@ -418,7 +514,7 @@ pub fn rows_of(objects: &Objects, v: &Version, wanted: &[u64]) -> Result<RowStor
         return Ok(out);
     }
     if cuttable(v) {
-        let (_, offsets) = row_index(objects, v)?;
+        let (_, offsets) = offsets(objects, v)?;
         let mut raw = RawRows::new(objects, v, offsets)?;
         for &w in wanted {
             raw.parse_into(w, &mut out)?;

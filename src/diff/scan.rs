@@ -4,7 +4,7 @@
 
 use xxhash_rust::xxh3::xxh3_64_with_seed;
 
-use super::read::{each_row, row_index, RawRows};
+use super::read::{each_row, offsets, plain_fingerprint, RawRows};
 use crate::error::Result;
 use crate::model::Version;
 use crate::store::objects::Objects;
@@ -61,11 +61,12 @@ fn hash_fields<'f>(
     xxh3_64_with_seed(scratch, seed)
 }
 
-/// The first pass when the fingerprints are the row index's own (whole rows, no rename
-/// candidates) and rows can be cut out by offset: the fingerprints come from the row index, and
-/// of each row only the fields up to the last key column are split off its bytes (the row is
-/// parsed in full only when a quote or line break comes before them). The same numbers as
-/// [`scan`], without parsing every row.
+/// The first pass when the fingerprints are the row index's own definition (whole rows, no
+/// rename candidates) and rows can be cut out by offset: each row, cut out by the offsets of
+/// the row index, is split directly off its bytes (parsed only when it holds a quote), and its
+/// key hashed and fingerprint computed from the pieces; a row index of format 1 gives the
+/// fingerprints, and then only the fields up to the last key column are split. The same
+/// numbers as [`scan`], without running the parser over every row.
 pub fn scan_keys(
     objects: &Objects,
     v: &Version,
@@ -73,16 +74,18 @@ pub fn scan_keys(
     seed: u64,
     null_tokens: &[String],
 ) -> Result<Scan> {
-    let (fps, offsets) = row_index(objects, v)?;
-    let n = fps.len() as u64;
+    let (stored, offsets) = offsets(objects, v)?;
+    let n = offsets.len() as u64;
+    let need_fps = stored.is_none();
     let mut s = Scan {
         keys: Vec::with_capacity(n as usize),
-        fps,
+        fps: stored.unwrap_or_else(|| Vec::with_capacity(n as usize)),
         ..Scan::default()
     };
     let last = key.iter().copied().max().unwrap_or(0);
     let mut raw = RawRows::new(objects, v, offsets)?;
     let mut scratch = Vec::new();
+    let mut fp_scratch = Vec::new();
     let mut ends = Vec::new();
     // One row's key: its hash, and whether it is blank.
     fn note<'f>(
@@ -103,16 +106,27 @@ pub fn scan_keys(
     }
     let how = (key, seed, null_tokens);
     for row in 0..n {
-        if let Some(bytes) = raw.plain_prefix(row, last, &mut ends)? {
+        let bytes = if need_fps {
+            raw.plain_row(row, &mut ends)?.filter(|_| ends.len() > last)
+        } else {
+            raw.plain_prefix(row, last, &mut ends)?
+        };
+        if let Some(bytes) = bytes {
             let ends = &ends;
             let field = |c: usize| {
                 let start = if c == 0 { 0 } else { ends[c - 1] + 1 };
                 &bytes[start..ends[c]]
             };
             note(&mut s, row, field, how, &mut scratch);
+            if need_fps {
+                s.fps.push(plain_fingerprint(bytes, ends, &mut fp_scratch));
+            }
         } else {
             raw.with_record(row, |r| {
-                note(&mut s, row, |c| r.field(c), how, &mut scratch)
+                note(&mut s, row, |c| r.field(c), how, &mut scratch);
+                if need_fps {
+                    s.fps.push(fingerprint(r, &mut fp_scratch));
+                }
             })?;
         }
     }

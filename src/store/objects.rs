@@ -1057,6 +1057,17 @@ impl Objects {
         self.reader(hash).exists(hash)
     }
 
+    /// The uncompressed length of object `hash`.
+    pub fn size(&self, hash: &Hash) -> Result<u64> {
+        self.reader(hash).size(hash).map_err(|e| {
+            if e.kind() == io::ErrorKind::NotFound {
+                crate::Error::from(ErrorKind::ObjectMissing { hash: hash.hex() })
+            } else {
+                crate::Error::io(&self.reader(hash).describe(hash), e)
+            }
+        })
+    }
+
     /// Copies object `hash` to `out`, checking the hash as it goes. The bytes are written before
     /// the check completes (the object may be larger than memory), so on a mismatch the caller
     /// gets an error after the damaged bytes; `cat -o FILE` writes to a temporary file first.

@@ -12,8 +12,15 @@ use std::thread::JoinHandle;
 use crate::model::ColumnProfile;
 use crate::store::objects::{ObjectWriter, Objects};
 use crate::table::profile::Profiler;
-use crate::table::rowindex::{self, RowEntry};
+use crate::table::rowindex;
 use crate::table::write::push_record;
+
+/// The line breaks in `s` as the parser counts them: LF, CR LF, and a CR alone.
+fn line_breaks(s: &[u8]) -> u64 {
+    memchr::memchr2_iter(b'\n', b'\r', s)
+        .filter(|&i| s[i] == b'\n' || s.get(i + 1) != Some(&b'\n'))
+        .count() as u64
+}
 
 /// What writing a version produced.
 pub struct Written {
@@ -175,9 +182,7 @@ struct Serial {
     index: ObjectWriter,
     buf: Vec<u8>,
     index_buf: Vec<u8>,
-    scratch: Vec<u8>,
-    fp_scratch: Vec<u8>,
-    ends: Vec<usize>,
+    rows: rowindex::Builder,
     profiler: Profiler,
     header: Vec<String>,
     n_rows: u64,
@@ -202,16 +207,14 @@ impl Serial {
             index: writer(true)?,
             buf: Vec::with_capacity(1 << 20),
             index_buf: Vec::with_capacity(256 * 1024),
-            scratch: Vec::new(),
-            fp_scratch: Vec::new(),
-            ends: Vec::new(),
+            rows: rowindex::Builder::new(),
             profiler: Profiler::new(header.len(), null_tokens),
             header: header.to_vec(),
             n_rows: 0,
             n_bytes: 0,
             n_lines: 0,
         };
-        w.index.write(&rowindex::header())?;
+        w.index.write(&rowindex::Builder::start())?;
         let start = w.buf.len();
         push_record(&mut w.buf, header.iter().map(|h| h.as_bytes()));
         w.account(start);
@@ -221,7 +224,7 @@ impl Serial {
     fn account(&mut self, start: usize) {
         let rec = &self.buf[start..];
         self.n_bytes += rec.len() as u64;
-        self.n_lines += memchr::memchr_iter(b'\n', rec).count() as u64;
+        self.n_lines += line_breaks(rec);
     }
 
     /// [`Self::account`] for a data row whose fields are known: line breaks can only be the
@@ -230,8 +233,8 @@ impl Serial {
         self.n_bytes += (self.buf.len() - start) as u64;
         self.n_lines += 1;
         for f in fields {
-            if f.contains(&b'\n') {
-                self.n_lines += memchr::memchr_iter(b'\n', f).count() as u64;
+            if memchr::memchr2(b'\n', b'\r', f).is_some() {
+                self.n_lines += line_breaks(f);
             }
         }
     }
@@ -240,29 +243,7 @@ impl Serial {
         debug_assert_eq!(fields.len(), self.header.len());
         let entry_byte = self.n_bytes;
         let entry_line = self.n_lines + 1;
-        self.ends.clear();
-        let mut end = 0usize;
-        for f in fields {
-            end += f.len();
-            self.ends.push(end);
-        }
-        self.scratch.clear();
-        for f in fields {
-            self.scratch.extend_from_slice(f);
-        }
-        let fields_concat = std::mem::take(&mut self.scratch);
-        let mut fp_scratch = std::mem::take(&mut self.fp_scratch);
-        let fingerprint = rowindex::fingerprint_parts(&fields_concat, &self.ends, &mut fp_scratch);
-        self.scratch = fields_concat;
-        self.fp_scratch = fp_scratch;
-        rowindex::encode_entry(
-            &RowEntry {
-                byte: entry_byte,
-                line: entry_line,
-                fingerprint,
-            },
-            &mut self.index_buf,
-        );
+        self.rows.push(entry_byte, entry_line, &mut self.index_buf);
         self.profiler.observe(fields.iter().copied());
         let start = self.buf.len();
         push_record(&mut self.buf, fields.iter().copied());
@@ -281,6 +262,7 @@ impl Serial {
 
     fn finish(mut self) -> io::Result<Written> {
         self.table.write(&self.buf)?;
+        std::mem::take(&mut self.rows).finish(&mut self.index_buf);
         self.index.write(&self.index_buf)?;
         Ok(Written {
             profiles: self.profiler.finish(&self.header),
