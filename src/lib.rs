@@ -45,6 +45,7 @@ pub mod convert;
 pub mod demo;
 pub mod diff;
 pub mod endorse;
+pub mod erasure;
 pub mod error;
 pub mod exec;
 pub mod explain;
