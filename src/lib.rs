@@ -41,6 +41,7 @@ pub mod checks;
 pub mod clock;
 pub mod code;
 pub mod columnar;
+pub mod commitment;
 pub mod convert;
 pub mod demo;
 pub mod diff;

@@ -1,9 +1,8 @@
 //! Erasure orders: what a request to erase personal data names in a raw version (rows matching a
 //! predicate or a key, given cells, whole columns), who asks, why and under which request, and
-//! everything that reaches forward from it ([`reach`]); the salted cell commitments that keep
-//! the proof of the rest ([`commit`]).
+//! everything that reaches forward from it ([`reach`]). The salted cell commitments that keep
+//! the proof of the rest are [`crate::commitment`].
 
-pub mod commit;
 pub mod reach;
 
 use serde::Serialize;

@@ -14,7 +14,7 @@
 //!   header and the shape in the [`Commitment::root`].
 //! - **Salts.** Salts come from a GGM tree (Goldreich, Goldwasser and Micali, "How to construct
 //!   random functions", J. ACM 1986): a random 32-byte seed, each node's two children the two
-//!   halves of a 64-byte BLAKE3 output keyed by the node, [`DEPTH`] levels, the leaf at position
+//!   halves of a 64-byte keyed BLAKE3 output over the node's seed, [`DEPTH`] levels, the leaf at position
 //!   `i` the salt of cell `i`. Erasing cells *punctures* the tree (the puncturable PRF of Boneh and
 //!   Waters, and of Kiayias et al. and Sahai and Waters, 2013): the seed is replaced by the seeds
 //!   of the subtrees that cover every other cell, so the erased cells' salts can no longer be
@@ -52,9 +52,15 @@ impl SeedNode {
     }
 }
 
-/// The two children of a node's seed.
+/// The key of the salt tree's steps: derived once from its context string.
+fn salt_key() -> &'static Bytes32 {
+    static KEY: std::sync::OnceLock<Bytes32> = std::sync::OnceLock::new();
+    KEY.get_or_init(|| blake3::derive_key(SALT_CONTEXT, b""))
+}
+
+/// The two children of a node's seed: 64 bytes of keyed BLAKE3 output over it.
 fn children(seed: &Bytes32) -> (Bytes32, Bytes32) {
-    let mut h = blake3::Hasher::new_derive_key(SALT_CONTEXT);
+    let mut h = blake3::Hasher::new_keyed(salt_key());
     h.update(seed);
     let mut out = [0u8; 64];
     h.finalize_xof().fill(&mut out);
@@ -146,9 +152,9 @@ impl Salts {
 
     /// The salts of cells `0..n` in order (`None` for erased ones), each derived once, with
     /// the path down the tree kept between neighbours: about two hashes per cell.
-    pub fn stream(&self, n: u64) -> SaltStream<'_> {
+    pub fn stream(&self, n: u64) -> SaltStream {
         SaltStream {
-            salts: self,
+            salts: self.clone(),
             next: 0,
             n,
             node: usize::MAX,
@@ -196,8 +202,8 @@ impl Salts {
 }
 
 /// The salts of consecutive cells (see [`Salts::stream`]).
-pub struct SaltStream<'a> {
-    salts: &'a Salts,
+pub struct SaltStream {
+    salts: Salts,
     next: u64,
     n: u64,
     /// Which node the path is in, and the seeds from it down to the last cell's salt.
@@ -205,7 +211,7 @@ pub struct SaltStream<'a> {
     path: Vec<Bytes32>,
 }
 
-impl Iterator for SaltStream<'_> {
+impl Iterator for SaltStream {
     type Item = Option<Bytes32>;
 
     fn next(&mut self) -> Option<Option<Bytes32>> {
@@ -330,24 +336,19 @@ impl Commitment {
 
 /// Builds a commitment from cells given row by row: each cell's leaf from its salt and value,
 /// or, for an erased cell, the leaf kept in its place (`kept`, by cell position).
-pub struct Committer<'a> {
+pub struct Committer {
     n_cols: u64,
-    salts: SaltStream<'a>,
-    kept: &'a BTreeMap<u64, Bytes32>,
+    salts: SaltStream,
+    kept: BTreeMap<u64, Bytes32>,
     tree: TreeHasher,
     rows: u64,
     /// The first cell with neither a salt nor a kept leaf (a store that lost what it needs).
     pub missing: Option<u64>,
 }
 
-impl<'a> Committer<'a> {
+impl Committer {
     /// `n_rows` bounds the salts derived; `kept` the leaves of erased cells.
-    pub fn new(
-        salts: &'a Salts,
-        n_rows: u64,
-        n_cols: u64,
-        kept: &'a BTreeMap<u64, Bytes32>,
-    ) -> Self {
+    pub fn new(salts: &Salts, n_rows: u64, n_cols: u64, kept: BTreeMap<u64, Bytes32>) -> Self {
         Committer {
             n_cols,
             salts: salts.stream(n_rows.saturating_mul(n_cols)),
@@ -383,6 +384,39 @@ impl<'a> Committer<'a> {
             n_rows: self.rows,
             n_cols: self.n_cols,
             tree: self.tree.finish(),
+        }
+    }
+}
+
+/// A commitment made as a new version's rows are written, from a fresh random seed.
+pub struct Fresh {
+    salts: Salts,
+    committer: Committer,
+}
+
+/// A commitment as the store records it: the root (hex) and the salt tree's kept nodes.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Recorded {
+    pub root: String,
+    pub salts: Vec<u8>,
+}
+
+impl Fresh {
+    pub fn new(n_cols: usize) -> std::io::Result<Fresh> {
+        let salts = Salts::fresh(random_seed()?);
+        let n_cols = n_cols as u64;
+        let committer = Committer::new(&salts, u64::MAX / n_cols.max(1), n_cols, BTreeMap::new());
+        Ok(Fresh { salts, committer })
+    }
+
+    pub fn row<'v>(&mut self, cells: impl IntoIterator<Item = &'v [u8]>) {
+        self.committer.row(cells);
+    }
+
+    pub fn finish(self, header: &[String]) -> Recorded {
+        Recorded {
+            root: hex(&self.committer.finish().root(header)),
+            salts: self.salts.to_bytes(),
         }
     }
 }
@@ -494,7 +528,7 @@ mod tests {
         );
     }
 
-    fn commit(salts: &Salts, rows: &[Vec<Vec<u8>>], kept: &BTreeMap<u64, Bytes32>) -> Commitment {
+    fn commit(salts: &Salts, rows: &[Vec<Vec<u8>>], kept: BTreeMap<u64, Bytes32>) -> Commitment {
         let n_cols = rows.first().map_or(0, |r| r.len()) as u64;
         let mut c = Committer::new(salts, rows.len() as u64, n_cols, kept);
         for r in rows {
@@ -538,7 +572,7 @@ mod tests {
             let rows: Vec<Vec<Vec<u8>>> = (0..n_rows).map(|r| (0..n_cols).map(|c| format!("r{r}c{c}").into_bytes()).collect()).collect();
             let salts = Salts::fresh([9; 32]);
             let none = BTreeMap::new();
-            let before = commit(&salts, &rows, &none);
+            let before = commit(&salts, &rows, none);
             let total = n_rows * n_cols;
             let mut erased: Vec<u64> = pick.iter().map(|p| p.index(total) as u64).collect();
             erased.sort_unstable();
@@ -549,12 +583,12 @@ mod tests {
             for &i in &erased {
                 blanked[i as usize / n_cols][i as usize % n_cols] = Vec::new();
             }
-            prop_assert_eq!(&commit(&punct, &blanked, &kept), &before);
+            prop_assert_eq!(&commit(&punct, &blanked, kept.clone()), &before);
             let t = tamper.index(total);
             if erased.binary_search(&(t as u64)).is_err() {
                 let mut bad = blanked.clone();
                 bad[t / n_cols][t % n_cols].push(b'!');
-                prop_assert_ne!(&commit(&punct, &bad, &kept), &before);
+                prop_assert_ne!(&commit(&punct, &bad, kept), &before);
             }
         }
     }
