@@ -151,7 +151,8 @@ impl Salts {
     }
 
     /// The salts of cells `0..n` in order (`None` for erased ones), each derived once, with
-    /// the path down the tree kept between neighbours: about two hashes per cell.
+    /// the path down the tree (and both children of each node on it) kept between neighbours:
+    /// about one salt-tree step per cell.
     pub fn stream(&self, n: u64) -> SaltStream {
         SaltStream {
             salts: self.clone(),
@@ -159,6 +160,7 @@ impl Salts {
             n,
             node: usize::MAX,
             path: Vec::new(),
+            kids: Vec::new(),
         }
     }
 
@@ -209,6 +211,8 @@ pub struct SaltStream {
     /// Which node the path is in, and the seeds from it down to the last cell's salt.
     node: usize,
     path: Vec<Bytes32>,
+    /// Both children of each seed on the path, so that stepping to a sibling costs no hash.
+    kids: Vec<(Bytes32, Bytes32)>,
 }
 
 impl Iterator for SaltStream {
@@ -236,18 +240,25 @@ impl Iterator for SaltStream {
         let from = if at != self.node || off == 0 || self.path.len() != height + 1 {
             self.node = at;
             self.path.clear();
+            self.kids.clear();
             self.path.push(node.seed);
             0
         } else {
             let changed = off ^ (off - 1);
             let top = 63 - changed.leading_zeros() as usize;
-            self.path.truncate(height - top - 1 + 1);
+            self.path.truncate(height - top);
+            self.kids.truncate(height - top);
             height - top - 1
         };
         for level in from..height {
             let bit = (off >> (height - 1 - level)) & 1;
-            let seed = child(&self.path[level], bit);
-            self.path.push(seed);
+            // The seed at `from` is unchanged: its children are known already.
+            if self.kids.len() <= level {
+                let pair = children(&self.path[level]);
+                self.kids.push(pair);
+            }
+            let pair = self.kids[level];
+            self.path.push(if bit == 0 { pair.0 } else { pair.1 });
         }
         Some(Some(self.path[height]))
     }
@@ -255,6 +266,13 @@ impl Iterator for SaltStream {
 
 /// A cell's leaf: `BLAKE3(0x00 || salt || value)`.
 pub fn leaf(salt: &Bytes32, value: &[u8]) -> Bytes32 {
+    // One-shot hashing of a short input costs less than a streaming hasher's set-up.
+    let mut buf = [0u8; 97];
+    if value.len() <= 64 {
+        buf[1..33].copy_from_slice(salt);
+        buf[33..33 + value.len()].copy_from_slice(value);
+        return *blake3::hash(&buf[..33 + value.len()]).as_bytes();
+    }
     let mut h = blake3::Hasher::new();
     h.update(&[0]);
     h.update(salt);
@@ -263,11 +281,10 @@ pub fn leaf(salt: &Bytes32, value: &[u8]) -> Bytes32 {
 }
 
 fn node(l: &Bytes32, r: &Bytes32) -> Bytes32 {
-    let mut h = blake3::Hasher::new();
-    h.update(&[1]);
-    h.update(l);
-    h.update(r);
-    *h.finalize().as_bytes()
+    let mut buf = [1u8; 65];
+    buf[1..33].copy_from_slice(l);
+    buf[33..].copy_from_slice(r);
+    *blake3::hash(&buf).as_bytes()
 }
 
 /// The RFC 6962 tree hash computed as leaves arrive: a stack of complete subtrees (at most 64),
@@ -384,39 +401,6 @@ impl Committer {
             n_rows: self.rows,
             n_cols: self.n_cols,
             tree: self.tree.finish(),
-        }
-    }
-}
-
-/// A commitment made as a new version's rows are written, from a fresh random seed.
-pub struct Fresh {
-    salts: Salts,
-    committer: Committer,
-}
-
-/// A commitment as the store records it: the root (hex) and the salt tree's kept nodes.
-#[derive(Debug, Clone, PartialEq, Eq)]
-pub struct Recorded {
-    pub root: String,
-    pub salts: Vec<u8>,
-}
-
-impl Fresh {
-    pub fn new(n_cols: usize) -> std::io::Result<Fresh> {
-        let salts = Salts::fresh(random_seed()?);
-        let n_cols = n_cols as u64;
-        let committer = Committer::new(&salts, u64::MAX / n_cols.max(1), n_cols, BTreeMap::new());
-        Ok(Fresh { salts, committer })
-    }
-
-    pub fn row<'v>(&mut self, cells: impl IntoIterator<Item = &'v [u8]>) {
-        self.committer.row(cells);
-    }
-
-    pub fn finish(self, header: &[String]) -> Recorded {
-        Recorded {
-            root: hex(&self.committer.finish().root(header)),
-            salts: self.salts.to_bytes(),
         }
     }
 }

@@ -102,7 +102,6 @@ struct Scan {
     row_index: ObjectWriter,
     key_hashes: Vec<(u64, u64)>,
     warnings: Vec<String>,
-    commitment: Option<crate::commitment::Recorded>,
 }
 
 fn store_io(store_dir: &Path, e: std::io::Error) -> Error {
@@ -235,7 +234,6 @@ pub fn prepare_from(
         header: scan.header,
         dialect: scan.dialect,
         profiles: scan.profiles,
-        commitment: scan.commitment,
         warnings: {
             let mut w = named;
             w.extend(scan.warnings);
@@ -314,8 +312,6 @@ pub struct PreparedIngest {
     pub dialect: Dialect,
     profiles: Vec<ColumnProfile>,
     warnings: Vec<String>,
-    /// The salted cell commitment made as the rows were read (DEVELOPERS.md, "Cell commitments").
-    commitment: Option<crate::commitment::Recorded>,
 }
 
 /// How a prepared intake is recorded as the successor of a version (see
@@ -435,7 +431,6 @@ impl PreparedIngest {
             header,
             dialect: crate::table::write::canonical_dialect(),
             profiles: written.profiles,
-            commitment: written.commitment,
             warnings,
         }
     }
@@ -515,9 +510,6 @@ impl PreparedIngest {
             profiles: &self.profiles,
             created_at: &self.ended_at,
         })?;
-        if let Some(c) = &self.commitment {
-            tx.insert_cell_commitment(version_id, &c.root, &c.salts, "recorded", &self.ended_at)?;
-        }
         let mut details = json!({
             "version": self.table_hex,
             "row_index": self.index_hex,
@@ -705,8 +697,6 @@ struct Sink<'a> {
     store_dir: &'a Path,
     key_hashes: Vec<(u64, u64)>,
     scratch: Vec<u8>,
-    /// The salted cell commitment, made as records pass (set with the header).
-    cells: Option<crate::commitment::Fresh>,
 }
 
 impl Sink<'_> {
@@ -752,9 +742,6 @@ impl Sink<'_> {
             self.key_hashes.push((h.digest(), self.n_rows));
         }
         profiler.observe(rec.iter());
-        if let Some(c) = &mut self.cells {
-            c.row(rec.iter());
-        }
         rowindex::encode_entry(
             &RowEntry {
                 byte: rec.byte,
@@ -833,9 +820,6 @@ impl Sink<'_> {
                 .collect();
         }
         self.profiler = Some(Profiler::new(names.len(), self.null_tokens));
-        self.cells = Some(
-            crate::commitment::Fresh::new(names.len()).map_err(|e| store_io(self.store_dir, e))?,
-        );
         self.header = Some(names);
         Ok(())
     }
@@ -869,7 +853,6 @@ fn parse_side(
         store_dir,
         key_hashes: Vec::new(),
         scratch: Vec::with_capacity(4096),
-        cells: None,
     };
     let mut dialect = None;
     while let Ok(msg) = rx.recv() {
@@ -900,7 +883,6 @@ fn parse_side(
         .as_ref()
         .map(|p| p.finish(&header))
         .unwrap_or_default();
-    let commitment = sink.cells.take().map(|c| c.finish(&header));
     let mut warnings = Vec::new();
     if opts.has_header {
         if let Some(w) = header_looks_like_data(&header, &profiles) {
@@ -912,7 +894,6 @@ fn parse_side(
         header,
         n_rows: sink.n_rows,
         profiles,
-        commitment,
         row_index: sink.index,
         key_hashes: sink.key_hashes,
         warnings,

@@ -97,9 +97,6 @@ pub struct Pending {
     pub n_changed: u64,
     pub changed_by_column: Vec<(String, u64)>,
     pub n_dropped: u64,
-    /// The salted cell commitment made as the version was written (DEVELOPERS.md, "Cell
-    /// commitments"); none for a withdrawal's restored table.
-    pub commitment: Option<crate::commitment::Recorded>,
 }
 
 impl Pending {
@@ -183,9 +180,6 @@ pub fn insert_pending(
         tx.insert_column_sources(step_id, version_id, real(*input)?, sources)?;
     }
     tx.insert_cell_notes(step_id, version_id, &p.notes)?;
-    if let Some(c) = &p.commitment {
-        tx.insert_cell_commitment(version_id, &c.root, &c.salts, "recorded", &p.ended_at)?;
-    }
     Ok((version_id, step_id, seq))
 }
 
@@ -271,7 +265,6 @@ pub fn persist(
         n_changed: prov.changes.len() as u64,
         changed_by_column,
         n_dropped: prov.drops.len() as u64,
-        commitment: written.commitment,
     })
 }
 

@@ -732,8 +732,6 @@ fn restore_step(
         n_changed: 0,
         changed_by_column: Vec::new(),
         n_dropped: 0,
-        // The restored table's bytes are the base's; its commitment is made when first needed.
-        commitment: None,
     })
 }
 

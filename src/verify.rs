@@ -14,7 +14,7 @@ use crate::table::rowindex;
 pub struct Problem {
     /// "object_missing", "object_damaged", "object_size", "row_index", "database", "audit",
     /// "provenance", "cell_change", "audit_mismatch", "stray_file", "segment_damaged",
-    /// "segment_object", "segment_index", "profile" and "commitment" (`--deep`), "signature_bad",
+    /// "segment_object", "segment_index", "profile" (`--deep`), "signature_bad",
     /// "signature_missing", "signature_unknown_key", "signed_subject" (sign-offs and the
     /// signatories, `endorse`).
     pub kind: String,
@@ -772,30 +772,6 @@ fn deep_problems(store: &Store, report: &VerifyReport) -> Result<(Vec<Problem>, 
         let mut header_seen = !v.dialect.has_header;
         let (mut fps, mut offsets) = (Vec::new(), Vec::new());
         let mut scratch = Vec::new();
-        // The salted cell commitment recorded with the version, computed again over its cells.
-        let commitment = store.lineage.cell_commitment(v.id)?;
-        let mut committer = match &commitment {
-            Some((root, salts, _)) => match crate::commitment::Salts::from_bytes(salts) {
-                Some(s) => Some((
-                    root.clone(),
-                    crate::commitment::Committer::new(
-                        &s,
-                        v.n_rows,
-                        v.header.len() as u64,
-                        std::collections::BTreeMap::new(),
-                    ),
-                )),
-                None => {
-                    out.push(problem(
-                        "commitment",
-                        v.label(),
-                        "the recorded salts of its cell commitment are malformed",
-                    ));
-                    None
-                }
-            },
-            None => None,
-        };
         let read = store.objects.open_raw(&hash).and_then(|src| {
             crate::table::stream::for_each_record(Path::new(&v.label()), src, &settings, |r| {
                 if !header_seen {
@@ -803,9 +779,6 @@ fn deep_problems(store: &Store, report: &VerifyReport) -> Result<(Vec<Problem>, 
                     return Ok(());
                 }
                 profiler.observe(r.iter());
-                if let Some((_, c)) = &mut committer {
-                    c.row(r.iter());
-                }
                 offsets.push(r.byte);
                 fps.push(rowindex::fingerprint(&r, &mut scratch));
                 Ok(())
@@ -816,20 +789,6 @@ fn deep_problems(store: &Store, report: &VerifyReport) -> Result<(Vec<Problem>, 
             continue;
         }
         done += 1;
-        if let Some((root, c)) = committer {
-            let lost = c.missing;
-            let computed = crate::commitment::hex(&c.finish().root(&v.header));
-            if computed != root || lost.is_some() {
-                out.push(problem(
-                    "commitment",
-                    v.label(),
-                    format!(
-                        "the cells read again do not give the recorded cell commitment {root} (they give {computed}{})",
-                        lost.map_or(String::new(), |i| format!("; cell {i} has neither a salt nor a kept leaf"))
-                    ),
-                ));
-            }
-        }
         if (fps.as_slice(), offsets.as_slice()) != (stored.0.as_slice(), stored.1.as_slice()) {
             let first = (0..fps.len().max(stored.0.len()))
                 .find(|&i| fps.get(i) != stored.0.get(i) || offsets.get(i) != stored.1.get(i))

@@ -469,11 +469,11 @@ pub fn verify_text(out: &mut impl Write, r: &VerifyReport) -> io::Result<()> {
     if r.versions_recomputed > 0 {
         writeln!(
             out,
-            "deep: {} read again; row indexes, column profiles and cell commitments computed from the bytes{}",
+            "deep: {} read again; row indexes and column profiles computed from the bytes{}",
             plural(r.versions_recomputed, "version", "versions"),
             if r.problems
                 .iter()
-                .any(|p| p.kind == "profile" || p.kind == "row_index" || p.kind == "commitment")
+                .any(|p| p.kind == "profile" || p.kind == "row_index")
             {
                 " (differences listed above)"
             } else {

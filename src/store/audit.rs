@@ -206,7 +206,6 @@ pub fn chain_problems(entries: &[AuditEntry]) -> Vec<String> {
 pub const TABLES: &[&str] = &[
     "agents",
     "cell_changes",
-    "cell_commitments",
     "cell_notes",
     "check_results",
     "column_profiles",
@@ -321,11 +320,6 @@ const SELECTABLE: &[(&str, &str, &str)] = &[
         "column_sources",
         "output_id",
         "SELECT rowid, * FROM column_sources WHERE output_id BETWEEN ?1 AND ?2",
-    ),
-    (
-        "cell_commitments",
-        "version_id",
-        "SELECT rowid, * FROM cell_commitments WHERE version_id BETWEEN ?1 AND ?2",
     ),
     (
         "endorsements",

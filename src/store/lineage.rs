@@ -23,7 +23,6 @@ const MIGRATIONS: &[(i64, &str)] = &[
     (3, include_str!("../../schema/0003_check_gate.sql")),
     (4, include_str!("../../schema/0004_step_provenance.sql")),
     (5, include_str!("../../schema/0005_endorsements.sql")),
-    (6, include_str!("../../schema/0006_cell_commitments.sql")),
 ];
 
 /// The schema version this build writes.
@@ -623,18 +622,6 @@ impl Lineage {
     }
 
     /// The notes on single cells of output version `output_id`: (row, column, note).
-    /// Version `version_id`'s salted cell commitment: (root hex, salt tree bytes, made).
-    pub fn cell_commitment(&self, version_id: i64) -> Result<Option<(String, Vec<u8>, String)>> {
-        self.conn
-            .query_row(
-                "SELECT root, salts, made FROM cell_commitments WHERE version_id = ?1",
-                params![version_id],
-                |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)),
-            )
-            .optional()
-            .map_err(db_err)
-    }
-
     pub fn cell_notes(&self, output_id: i64) -> Result<Vec<(u64, String, String)>> {
         let mut st = self
             .conn
@@ -1233,27 +1220,6 @@ impl Tx<'_> {
         if !notes.is_empty() {
             self.wrote("cell_notes", "output_id", Key::Int(output_id));
         }
-        Ok(())
-    }
-
-    /// Records version `version_id`'s salted cell commitment: its root (hex), its salt tree's
-    /// kept nodes, and whether it was made with the version (`recorded`) or later.
-    pub fn insert_cell_commitment(
-        &mut self,
-        version_id: i64,
-        root: &str,
-        salts: &[u8],
-        made: &str,
-        at: &str,
-    ) -> Result<()> {
-        self.tx
-            .execute(
-                "INSERT INTO cell_commitments (version_id, root, salts, made, made_at)
-                 VALUES (?1, ?2, ?3, ?4, ?5)",
-                params![version_id, root, salts, made, at],
-            )
-            .map_err(db_err)?;
-        self.wrote("cell_commitments", "version_id", Key::Int(version_id));
         Ok(())
     }
 

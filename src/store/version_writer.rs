@@ -21,8 +21,6 @@ pub struct Written {
     pub index: ObjectWriter,
     pub n_rows: u64,
     pub profiles: Vec<ColumnProfile>,
-    /// The salted cell commitment made as the rows passed (none for a hashing-only writer).
-    pub commitment: Option<crate::commitment::Recorded>,
 }
 
 /// Rows handed to the writer thread: field bytes back to back, and the end of every field.
@@ -182,8 +180,6 @@ struct Serial {
     ends: Vec<usize>,
     profiler: Profiler,
     header: Vec<String>,
-    /// The salted cell commitment, made as rows pass (not for a hashing-only writer).
-    cells: Option<crate::commitment::Fresh>,
     n_rows: u64,
     /// Bytes written so far, and line breaks written so far.
     n_bytes: u64,
@@ -211,10 +207,6 @@ impl Serial {
             ends: Vec::new(),
             profiler: Profiler::new(header.len(), null_tokens),
             header: header.to_vec(),
-            cells: match objects {
-                Some(_) => Some(crate::commitment::Fresh::new(header.len())?),
-                None => None,
-            },
             n_rows: 0,
             n_bytes: 0,
             n_lines: 0,
@@ -272,9 +264,6 @@ impl Serial {
             &mut self.index_buf,
         );
         self.profiler.observe(fields.iter().copied());
-        if let Some(c) = &mut self.cells {
-            c.row(fields.iter().copied());
-        }
         let start = self.buf.len();
         push_record(&mut self.buf, fields.iter().copied());
         self.account_row(start, fields);
@@ -295,7 +284,6 @@ impl Serial {
         self.index.write(&self.index_buf)?;
         Ok(Written {
             profiles: self.profiler.finish(&self.header),
-            commitment: self.cells.map(|c| c.finish(&self.header)),
             table: self.table,
             index: self.index,
             n_rows: self.n_rows,
