@@ -200,6 +200,9 @@ enum Bench {
     /// `sluice reproduce` of the ops benchmark's plan against a plain `sluice run` of it
     #[value(alias = "replay")]
     Reproduce,
+    /// Salted cell commitments of a version's cells (what an erasure's proof needs) against
+    /// `sluice receive` of the same file and against reading its cells alone
+    Commit,
 }
 
 impl Bench {
@@ -210,6 +213,7 @@ impl Bench {
             Bench::Ops => "ops",
             Bench::Trace => "trace",
             Bench::Reproduce => "reproduce",
+            Bench::Commit => "commit",
         }
     }
 
@@ -221,6 +225,7 @@ impl Bench {
             Bench::Ops => OPS_ROWS,
             Bench::Trace => TRACE_ROWS,
             Bench::Reproduce => OPS_ROWS,
+            Bench::Commit => &[1_000_000],
         }
     }
 }
@@ -280,6 +285,7 @@ fn run_bench(bench: Bench, ctx: &Ctx) -> Result<()> {
         Bench::Ops => ops(ctx)?,
         Bench::Trace => trace_bench(ctx)?,
         Bench::Reproduce => replay_bench(ctx)?,
+        Bench::Commit => commit_bench(ctx)?,
     };
     fs::create_dir_all(&ctx.results_dir)
         .with_context(|| format!("creating {}", ctx.results_dir.display()))?;
@@ -1355,6 +1361,74 @@ fn intake(ctx: &Ctx) -> Result<Value> {
         ],
         "all_goals_met": all_pass,
         "sizes": sizes,
+        }),
+    ))
+}
+
+/// Salted cell commitments: the cells of the intake file read with the `csv` crate alone, read
+/// and committed to (GGM salts, salted leaves, RFC 6962 tree; one thread, in this process), and
+/// `sluice receive` of the same file, all in one run.
+fn commit_bench(ctx: &Ctx) -> Result<Value> {
+    use sluice::commitment::{Committer, Salts};
+    println!("== commit: salted cell commitments vs reading the cells vs sluice receive ==");
+    let mut sizes = Vec::new();
+    for n in ctx.rows_for(Bench::Commit) {
+        let file = ensure_data(&ctx.data_dir, n)?;
+        warm(&file)?;
+        let cells = |commit: bool| -> Result<Sample> {
+            let started = Instant::now();
+            let mut r = csv::ReaderBuilder::new().from_path(&file)?;
+            let n_cols = r.byte_headers()?.len() as u64;
+            let salts = Salts::fresh([42; 32]);
+            let mut c = Committer::new(&salts, n, n_cols, std::collections::BTreeMap::new());
+            let mut rec = csv::ByteRecord::new();
+            let mut bytes = 0u64;
+            while r.read_byte_record(&mut rec)? {
+                bytes += rec.as_slice().len() as u64;
+                if commit {
+                    c.row(rec.iter());
+                }
+            }
+            let root = c.finish();
+            std::hint::black_box((root, bytes));
+            let secs = started.elapsed().as_secs_f64();
+            Ok(Sample {
+                secs,
+                peak_kib: 0,
+                cpu_secs: secs,
+                others_cores: None,
+            })
+        };
+        let read = repeat(ctx.runs, |_| cells(false))?;
+        let commit = repeat(ctx.runs, |_| cells(true))?;
+        let ingest = repeat(ctx.runs, |i| Ok(sluice_ingest(ctx, &file, i)?.0))?;
+        let m = |v: &[Sample]| median(v.iter().map(|s| s.secs).collect());
+        let (read_s, commit_s, ingest_s) = (m(&read), m(&commit), m(&ingest));
+        let added = (commit_s - read_s).max(0.0);
+        println!(
+            "{} rows: reading the cells {read_s:.2} s; reading and committing {commit_s:.2} s \
+             (commitments {added:.2} s, {:.0} ns per cell); sluice receive {ingest_s:.2} s; \
+             commitments at intake would add {:.0}% to receive",
+            thousands(n),
+            added * 1e9 / (n as f64 * 10.0),
+            added / ingest_s * 100.0
+        );
+        sizes.push(json!({
+            "rows": n,
+            "read_cells_secs": read_s,
+            "read_and_commit_secs": commit_s,
+            "commit_secs": added,
+            "sluice_receive_secs": ingest_s,
+            "commit_over_receive": added / ingest_s,
+        }));
+    }
+    Ok(with_header(
+        ctx,
+        "commit",
+        json!({
+            "runs_requested": ctx.runs,
+            "notes": ["seconds are medians; one thread; the demo generator's work orders (10 columns)"],
+            "sizes": sizes,
         }),
     ))
 }

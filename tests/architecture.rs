@@ -113,7 +113,16 @@ fn the_engine_never_prints_or_reads_the_environment() {
 const LAYERS: &[(&str, &[&str])] = &[
     (
         "foundation",
-        &["error", "model", "hash", "clock", "progress", "code", "lib"],
+        &[
+            "error",
+            "model",
+            "hash",
+            "commitment",
+            "clock",
+            "progress",
+            "code",
+            "lib",
+        ],
     ),
     ("read", &["table", "sheets", "jsonl", "columnar"]),
     ("store", &["store", "refs", "agent"]),
@@ -130,6 +139,7 @@ const LAYERS: &[(&str, &[&str])] = &[
             "exec",
             "plan",
             "endorse",
+            "erasure",
         ],
     ),
     (

@@ -82,6 +82,7 @@ fn every_query_with_json_output_says_so_in_its_help() {
         "endorse",
         "signatories",
         "meanings",
+        "erase",
     ] {
         assert_contains(&s.ok(&[cmd, "--help"]), "--json");
     }

@@ -92,6 +92,32 @@ const CASES: &[(&str, &[&str], i32)] = &[
     ),
     ("signatories", &["signatories", "--json"], 0),
     ("meanings", &["meanings", "--json"], 0),
+    (
+        "erase",
+        &[
+            "erase",
+            "quillby_orders:v1",
+            "--where",
+            "customer = 'Ada Gilford'",
+            "--request",
+            "request 2026-117",
+            "--json",
+        ],
+        0,
+    ),
+    (
+        "erase",
+        &[
+            "erase",
+            "oxwater_orders:v1",
+            "--cell",
+            "2:client",
+            "--request",
+            "request 2026-118",
+            "--json",
+        ],
+        0,
+    ),
     ("timeline", &["timeline", "--json"], 0),
     (
         "timeline",

@@ -451,6 +451,18 @@ pub enum Command {
     )]
     Endorse(EndorseArgs),
 
+    /// An erasure order for personal data in a raw version: every cell it reaches, forward
+    /// through the lineage (a dry run: nothing is recorded or erased)
+    #[command(
+        after_help = "Examples:\n  sluice erase quillby_orders:v1 --where 'customer = \"Ada Gilford\"' --request \"request 2026-117, GDPR Art. 17\"\n  \
+        sluice erase oxwater_orders:v1 --key order_id=52007 --request \"request 2026-118\"\n  \
+        sluice erase fennmarsh_orders:v1 --column email --request \"retention ended\"\n\n\
+        Lists every cell derived from the named cells, in every version made from them, and the summary cells \
+        that aggregated them (kept as published, no longer recomputable). What must be erased, and what must be \
+        kept, is for the organisation's data-protection officer to decide under local law (README.md, \"Erasure\")."
+    )]
+    Erase(EraseArgs),
+
     /// The keys the store trusts for sign-offs; admit or retire one by a signed, recorded change
     #[command(after_help = "Examples:\n  sluice signatories\n  \
         sluice signatories --admit ada.pub --name \"Ada Moss\" --signing-key ~/.ssh/id_ed25519\n  \
@@ -1056,6 +1068,31 @@ pub enum LineageFormat {
     Dot,
     /// A self-contained SVG drawing
     Svg,
+}
+
+#[derive(Debug, Args)]
+#[command(group(clap::ArgGroup::new("names").required(true).args(["rows_where", "key", "cell", "column"])))]
+pub struct EraseArgs {
+    /// The raw version holding the data: NAME (latest), NAME:vN or blake3:HEX
+    pub reference: String,
+    /// Every cell of the rows where this predicate holds (the language of `clean drop`)
+    #[arg(long = "where", value_name = "PREDICATE")]
+    pub rows_where: Option<String>,
+    /// Every cell of the rows holding this value (repeat for several columns)
+    #[arg(long, value_name = "COLUMN=VALUE")]
+    pub key: Vec<String>,
+    /// One cell, by 1-based data row and column name (repeatable)
+    #[arg(long, value_name = "ROW:COLUMN")]
+    pub cell: Vec<String>,
+    /// Every cell of a column (repeatable)
+    #[arg(long, value_name = "COLUMN")]
+    pub column: Vec<String>,
+    /// The request or legal basis the order answers, as the data-protection officer files it
+    #[arg(long, value_name = "TEXT")]
+    pub request: String,
+    /// Print JSON
+    #[arg(long)]
+    pub json: bool,
 }
 
 #[derive(Debug, Args)]

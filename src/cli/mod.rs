@@ -11,6 +11,7 @@ pub mod args;
 pub mod compare;
 pub mod document;
 pub mod endorse;
+pub mod erase;
 pub mod query;
 pub mod record;
 pub mod reproduce;
@@ -183,6 +184,7 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Manual { dir } => admin::manual(dir.as_deref(), out),
         Command::Upgrade { file, output } => admin::upgrade(file, output.as_deref(), out),
         Command::Endorse(a) => endorse::endorse(&ctx, a, out),
+        Command::Erase(a) => erase::erase(&ctx, a, out),
         Command::Signatories(a) => endorse::signatories(&ctx, a, out),
         Command::Meanings {
             declare,

@@ -1,0 +1,156 @@
+//! Erasure orders: what a request to erase personal data names in a raw version (rows matching a
+//! predicate or a key, given cells, whole columns), who asks, why and under which request, and
+//! everything that reaches forward from it ([`reach`]). The salted cell commitments that keep
+//! the proof of the rest are [`crate::commitment`].
+
+pub mod reach;
+
+use serde::Serialize;
+
+use crate::error::{Error, Result};
+use crate::model::{StepKind, Version};
+use crate::ops::predicate::Predicate;
+use crate::store::Store;
+
+/// What an order names in its raw version.
+#[derive(Debug, Clone, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Target {
+    /// Every cell of the rows where the predicate holds (the predicate language of `keep` and
+    /// `drop`).
+    RowsWhere(String),
+    /// Every cell of the rows whose columns hold these values.
+    RowsWithKey(Vec<(String, String)>),
+    /// Single cells: 1-based data row and column name.
+    Cells(Vec<(u64, String)>),
+    /// Every cell of these columns.
+    Columns(Vec<String>),
+}
+
+impl Target {
+    /// In words, for the dry run and the audit entry.
+    pub fn describe(&self) -> String {
+        match self {
+            Target::RowsWhere(p) => format!("the rows where {p}"),
+            Target::RowsWithKey(pairs) => format!(
+                "the rows with {}",
+                pairs
+                    .iter()
+                    .map(|(c, v)| format!("{c} = \"{v}\""))
+                    .collect::<Vec<_>>()
+                    .join(" and ")
+            ),
+            Target::Cells(cells) => format!(
+                "the cells {}",
+                cells
+                    .iter()
+                    .map(|(r, c)| format!("row {r} {c}"))
+                    .collect::<Vec<_>>()
+                    .join(", ")
+            ),
+            Target::Columns(cols) => format!("the columns {}", cols.join(", ")),
+        }
+    }
+}
+
+/// An erasure order as asked: its raw version, what it names, the request it answers.
+#[derive(Debug, Clone)]
+pub struct Order {
+    pub version: Version,
+    pub target: Target,
+    /// A free-text reference to the request or its legal basis.
+    pub request: String,
+}
+
+/// The raw version an order may name: one received from outside (an intake), not a version
+/// made from others (erasing there would leave the raw copy whole).
+pub fn raw_version(store: &Store, v: &Version) -> Result<()> {
+    let step = store.lineage.step(v.step_id)?;
+    match step {
+        Some(s) if s.kind == StepKind::Ingest => Ok(()),
+        _ => Err(Error::usage(format!(
+            "{} was made by a step, not received; an erasure order names the raw version the data came in with (find it with `sluice trace`)",
+            v.label()
+        ))),
+    }
+}
+
+fn column(v: &Version, name: &str) -> Result<usize> {
+    v.header.iter().position(|h| h == name).ok_or_else(|| {
+        Error::usage(format!(
+            "{} has no column \"{name}\"; its columns are: {}",
+            v.label(),
+            v.header.join(", ")
+        ))
+    })
+}
+
+/// The cells of the raw version the order names (0-based row, column).
+pub fn named_cells(store: &Store, order: &Order) -> Result<reach::Cells> {
+    let v = &order.version;
+    let n_cols = v.header.len();
+    let mut cells = reach::Cells::new();
+    match &order.target {
+        Target::RowsWhere(text) => {
+            let p = Predicate::parse(text, &v.header)?;
+            let nulls: Vec<&[u8]> = v.null_tokens.iter().map(|t| t.as_bytes()).collect();
+            let blank = |x: &[u8]| x.is_empty() || nulls.contains(&x);
+            store.objects.each_row(v, |row, r| {
+                if p.holds(&r, &blank) {
+                    cells.extend((0..n_cols).map(|c| (row, c)));
+                }
+                Ok(())
+            })?;
+        }
+        Target::RowsWithKey(pairs) => {
+            let cols: Vec<usize> = pairs
+                .iter()
+                .map(|(c, _)| column(v, c))
+                .collect::<Result<_>>()?;
+            store.objects.each_row(v, |row, r| {
+                if cols
+                    .iter()
+                    .zip(pairs)
+                    .all(|(&c, (_, want))| r.field(c) == want.as_bytes())
+                {
+                    cells.extend((0..n_cols).map(|c| (row, c)));
+                }
+                Ok(())
+            })?;
+        }
+        Target::Cells(list) => {
+            for (row, name) in list {
+                if *row == 0 || *row > v.n_rows {
+                    return Err(Error::usage(format!(
+                        "{} has data rows 1 to {}; row {row} is not one of them",
+                        v.label(),
+                        v.n_rows
+                    )));
+                }
+                cells.insert((row - 1, column(v, name)?));
+            }
+        }
+        Target::Columns(names) => {
+            let cols: Vec<usize> = names.iter().map(|c| column(v, c)).collect::<Result<_>>()?;
+            for row in 0..v.n_rows {
+                cells.extend(cols.iter().map(|&c| (row, c)));
+            }
+        }
+    }
+    if cells.is_empty() {
+        return Err(Error::usage(format!(
+            "no cell of {} is {}; check the values with `sluice retrieve {}`",
+            v.label(),
+            order.target.describe(),
+            v.label()
+        )));
+    }
+    Ok(cells)
+}
+
+/// What the order reaches, found without changing anything: the dry run.
+pub fn survey(store: &Store, order: &Order) -> Result<reach::Reach> {
+    raw_version(store, &order.version)?;
+    let cells = named_cells(store, order)?;
+    reach::walk(store, &order.version, cells)
+}
