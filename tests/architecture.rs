@@ -130,6 +130,7 @@ const LAYERS: &[(&str, &[&str])] = &[
             "exec",
             "plan",
             "endorse",
+            "recompute",
         ],
     ),
     (

@@ -27,9 +27,17 @@ fn leftover_pid(name: &str) -> Option<u32> {
     let kind = parts.next()?;
     let pid = parts.next()?.parse::<u32>().ok()?;
     parts.next()?;
-    ["obj", "reclaim", "exec", "replay", "revert", "compare"]
-        .contains(&kind)
-        .then_some(pid)
+    [
+        "obj",
+        "reclaim",
+        "exec",
+        "replay",
+        "revert",
+        "compare",
+        "recompute",
+    ]
+    .contains(&kind)
+    .then_some(pid)
 }
 
 /// Whether process `pid` runs (exists and is not a zombie waiting to be reaped).
@@ -183,6 +191,17 @@ impl Store {
             start: start.to_path_buf(),
         }
         .into())
+    }
+
+    /// Whether the store keeps `v`'s bytes (and row index), as recorded: the one answer to
+    /// "is this version's content stored?". A version recorded as recomputable whose bytes
+    /// are identical to a stored version's counts as stored. Its bytes can still be read when
+    /// it is not: the engine computes them again (`crate::recompute`).
+    pub fn bytes_stored(&self, v: &crate::model::Version) -> Result<bool> {
+        if v.storage.holds_bytes() {
+            return Ok(true);
+        }
+        self.lineage.hash_stored(&v.hash)
     }
 
     /// The `sluice-store` folder.
