@@ -522,7 +522,6 @@ pub fn run(dir: &Path, agent: &Agent) -> Result<DemoReport> {
     let plan = plan::parse(PLAN, PLAN_FILE)?;
 
     let mut store = Store::init_recorded(dir, agent)?;
-    crate::recompute::on_demand(&mut store);
     let opts = plan::RunOptions {
         plan_dir: dir.to_path_buf(),
         bindings: Vec::new(),

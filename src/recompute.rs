@@ -21,7 +21,7 @@ use crate::ops::apply::{self, ApplyOptions, ApplyOutcome, ReplayCheck};
 use crate::ops::Operation;
 use crate::store::Store;
 
-/// Installs on `store` the computing of missing objects that recomputable versions name: the
+/// Installs on `store` (the store does this itself when it opens) the computing of missing objects that recomputable versions name: the
 /// first read of such an object computes it (with its ancestors as needed) into a scratch
 /// folder under `tmp/`, which goes when the store is closed. Objects of stored versions that
 /// are missing stay missing (an error naming them, as before).
@@ -54,7 +54,7 @@ pub fn on_demand(store: &mut Store) {
 /// A second handle on the same store whose new objects go to the scratch folder `dir` (and
 /// are read from there first): what on-demand computing writes with.
 fn scratch_store(store_dir: &Path, dir: &Path) -> Result<Store> {
-    let mut s = Store::open(store_dir)?;
+    let mut s = Store::open_plain(store_dir)?;
     s.objects
         .begin_stage(dir.to_path_buf())
         .map_err(|e| Error::io(dir, e))?;
@@ -210,7 +210,7 @@ fn compute_one(store: &mut Store, v: &Version) -> Result<()> {
 /// bytes of it (`verify --deep`); inputs that are themselves not stored are computed on the
 /// way, into a stage that is removed afterwards.
 pub fn check_recipe(store: &Store, v: &Version) -> Result<()> {
-    let mut s = Store::open(store.dir())?;
+    let mut s = Store::open_plain(store.dir())?;
     let dir: PathBuf = s.begin_stage("recompute")?;
     let result = (|| {
         for (_, input) in s.lineage.step_input_versions(v.step_id)? {
@@ -238,6 +238,115 @@ pub fn check_recipe(store: &Store, v: &Version) -> Result<()> {
     s.objects.discard_stage();
     let _ = std::fs::remove_dir_all(dir);
     result
+}
+
+/// A row computed on its own: (version id, 0-based row, fields).
+pub type ComputedRow = (i64, u64, Vec<String>);
+
+/// Whether `op` computes each output row from its input row alone (and the step's own
+/// parameters), so that one row of its output can be computed without the rest: the cell,
+/// row-choosing and shape operations, except those that read a table (map, lookup) or look
+/// ahead (`dedupe` keeping the last row), and never the table operations.
+fn row_local(op: &Operation) -> bool {
+    !matches!(
+        op,
+        Operation::Map { .. }
+            | Operation::Lookup { .. }
+            | Operation::Append { .. }
+            | Operation::Summarize { .. }
+            | Operation::Sort { .. }
+            | Operation::Dedupe {
+                keep: crate::ops::KeepWhich::Last,
+                ..
+            }
+    )
+}
+
+/// Data row `row` (0-based) of the recomputable version `v`, computed on its own: the row is
+/// followed back through each step's row map to the nearest version whose bytes are stored,
+/// read there with `read` (by offset), and carried forward through each step's per-record
+/// transform. A row a step kept goes through it unchanged by its choosing (`keep`, `drop`,
+/// `dedupe` keeping the first), so one row is enough. `Ok(None)` when a step on the way is
+/// not row-local ([`row_local`]): the caller then reads the version whole. A loop over the
+/// chain, never recursion. Returns every row computed on the way, as (version id, row,
+/// fields), `v`'s last, so that a trail walking back through the same chain reads none of
+/// them again.
+pub fn one_row(
+    store: &Store,
+    v: &Version,
+    row: u64,
+    read: &mut dyn FnMut(&Version, u64) -> Result<Vec<String>>,
+) -> Result<Option<Vec<ComputedRow>>> {
+    let mut chain: Vec<(Version, Operation, u64)> = Vec::new();
+    let (mut cur, mut r) = (v.clone(), row);
+    while !store.bytes_stored(&cur)? {
+        let step = recipe_step(store, &cur)?;
+        let Ok(op) = serde_json::from_value::<Operation>(step.params.clone()) else {
+            return Ok(None);
+        };
+        if !row_local(&op) {
+            return Ok(None);
+        }
+        let inputs = store.lineage.step_input_versions(step.id)?;
+        let Some((_, main)) = inputs.into_iter().find(|(role, _)| role == "input") else {
+            return Ok(None);
+        };
+        let runs = crate::provenance::row_runs(store, &cur, main.id)?;
+        let Some(in_row) = crate::model::input_of(&runs, r) else {
+            return Err(ErrorKind::Inconsistent(format!(
+                "data row {} of {} comes from no row of {} in the row map of step {}; run `sluice verify`",
+                r + 1,
+                cur.label(),
+                main.label(),
+                step.id
+            ))
+            .into());
+        };
+        chain.push((main.clone(), op, in_row));
+        cur = main;
+        r = in_row;
+    }
+    let fields = read(&cur, r)?;
+    let mut current = crate::ops::rowwise::OwnedRow::default();
+    for f in &fields {
+        current.push(f.as_bytes());
+    }
+    let texts = |o: &crate::ops::rowwise::OwnedRow| -> Vec<String> {
+        o.record(0)
+            .iter()
+            .map(|f| String::from_utf8_lossy(f).into_owned())
+            .collect()
+    };
+    let mut computed = Vec::with_capacity(chain.len());
+    for (k, (input, op, in_row)) in chain.iter().enumerate().rev() {
+        if k + 1 < chain.len() {
+            computed.push((input.id, *in_row, texts(&current)));
+        }
+        let mut step = crate::ops::rowwise::RowStep::new(store, input, op, None, None)?;
+        let mut out = crate::ops::rowwise::OwnedRow::default();
+        if !step.row(*in_row, &current.record(*in_row), &mut out)? {
+            return Err(ErrorKind::Inconsistent(format!(
+                "data row {} of {} is kept by the row map, but its step removes it when computed again; run `sluice verify --deep`",
+                in_row + 1,
+                input.label()
+            ))
+            .into());
+        }
+        current = out;
+    }
+    let fields = texts(&current);
+    if fields.len() != v.header.len() {
+        return Err(ErrorKind::Inconsistent(format!(
+            "data row {} of {} computed again has {} fields, its header {}; run `sluice verify --deep`",
+            row + 1,
+            v.label(),
+            fields.len(),
+            v.header.len()
+        ))
+        .into());
+    }
+    computed.push((v.id, row, fields));
+    Ok(Some(computed))
 }
 
 /// What a change of storage did to one version.

@@ -224,31 +224,33 @@ struct Rows {
 
 impl Rows {
     fn get(&mut self, store: &Store, v: &Version, row: u64) -> Result<&Vec<String>> {
-        match self.cache.entry((v.id, row)) {
-            std::collections::hash_map::Entry::Occupied(e) => Ok(e.into_mut()),
-            std::collections::hash_map::Entry::Vacant(e) => {
-                let fields = if cuttable(v) {
-                    let (_, bytes) = record_bytes(store, v, row)?;
-                    let delimiter = v.dialect.delimiter_byte();
-                    let parser = match &mut self.parser {
-                        Some(p) if p.delimiter() == delimiter => {
-                            p.restart(0);
-                            p
-                        }
-                        slot => slot.insert(crate::table::parse::Parser::new(delimiter, 0)),
-                    };
-                    parse_one(parser, &bytes, v)?
-                } else {
-                    // A raw file in a legacy encoding: its offsets count the file's own bytes,
-                    // so it is decoded from the start.
-                    let got = rows_of(&store.objects, v, &[row])?;
-                    got.get(row)
-                        .map(|r| r.texts())
-                        .ok_or_else(|| missing_row(v, row))?
-                };
-                Ok(e.insert(fields))
+        if !self.cache.contains_key(&(v.id, row)) {
+            let fields = self.fetch(store, v, row)?;
+            self.cache.insert((v.id, row), fields);
+        }
+        self.cache
+            .get(&(v.id, row))
+            .ok_or_else(|| missing_row(v, row))
+    }
+
+    /// One row of `v`: read by offset when its bytes are stored; computed on its own from the
+    /// nearest stored ancestor when every step on the way works row by row
+    /// ([`crate::recompute::one_row`], whose rows on the way are kept too); else read from
+    /// the version computed whole.
+    fn fetch(&mut self, store: &Store, v: &Version, row: u64) -> Result<Vec<String>> {
+        if !store.bytes_stored(v)? {
+            let parser = &mut self.parser;
+            let mut read = |sv: &Version, sr: u64| stored_row(parser, store, sv, sr);
+            if let Some(mut rows) = crate::recompute::one_row(store, v, row, &mut read)? {
+                let fields = rows.pop().map(|(_, _, f)| f).unwrap_or_default();
+                // The rows of the versions between, for the hops the trail makes next.
+                for (id, r, f) in rows {
+                    self.cache.entry((id, r)).or_insert(f);
+                }
+                return Ok(fields);
             }
         }
+        stored_row(&mut self.parser, store, v, row)
     }
 
     fn cell(&mut self, store: &Store, v: &Version, row: u64, column: &str) -> Result<String> {
@@ -259,6 +261,35 @@ impl Rows {
             )))
         })?;
         Ok(self.get(store, v, row)?.get(c).cloned().unwrap_or_default())
+    }
+}
+
+/// One row of `v` read from its bytes: by offset (two row index entries and the record), or,
+/// for a raw file in a legacy encoding, decoded from the start.
+fn stored_row(
+    parser: &mut Option<crate::table::parse::Parser>,
+    store: &Store,
+    v: &Version,
+    row: u64,
+) -> Result<Vec<String>> {
+    if cuttable(v) {
+        let (_, bytes) = record_bytes(store, v, row)?;
+        let delimiter = v.dialect.delimiter_byte();
+        let parser = match parser {
+            Some(p) if p.delimiter() == delimiter => {
+                p.restart(0);
+                p
+            }
+            slot => slot.insert(crate::table::parse::Parser::new(delimiter, 0)),
+        };
+        parse_one(parser, &bytes, v)
+    } else {
+        // A raw file in a legacy encoding: its offsets count the file's own bytes, so it is
+        // decoded from the start.
+        let got = rows_of(&store.objects, v, &[row])?;
+        got.get(row)
+            .map(|r| r.texts())
+            .ok_or_else(|| missing_row(v, row))
     }
 }
 

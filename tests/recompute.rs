@@ -275,3 +275,25 @@ fn an_edited_recipe_is_named_by_verify_and_by_the_failing_recomputation() {
         "{deep}"
     );
 }
+
+/// A trail through recomputable versions (each of its rows computed on its own from the
+/// nearest stored version) is the trail the same history gives with every version stored.
+#[test]
+fn a_trail_through_recomputable_versions_is_the_trail_through_stored_ones() {
+    let s = planned();
+    let mut through_recipes = Vec::new();
+    for (row, column) in [("1", "shop"), ("3", "parts_cost"), ("2", "service")] {
+        through_recipes.push(s.ok(&["trace", "orders:v5", "--row", row, "--column", column]));
+        through_recipes.push(s.ok(&["trace", "orders:v3", "--row", row, "--column", column]));
+    }
+    assert_contains(&through_recipes[0], "orders:v4 row 1 shop");
+    s.ok(&["recompute", "orders:v2", "orders:v3", "orders:v4"]);
+    let v = s.json(&["verify", "--json"]);
+    assert_eq!(v["versions_recomputable"], 0);
+    let mut through_stored = Vec::new();
+    for (row, column) in [("1", "shop"), ("3", "parts_cost"), ("2", "service")] {
+        through_stored.push(s.ok(&["trace", "orders:v5", "--row", row, "--column", column]));
+        through_stored.push(s.ok(&["trace", "orders:v3", "--row", row, "--column", column]));
+    }
+    assert_eq!(through_recipes, through_stored);
+}

@@ -38,11 +38,8 @@ pub struct Context<'a> {
 }
 
 impl Context<'_> {
-    /// Opens the store, with recomputable versions computed when something reads them.
     pub fn open_store(&self) -> anyhow::Result<Store> {
-        let mut store = Store::discover(self.cli.store.as_deref(), &self.cwd)?;
-        sluice::recompute::on_demand(&mut store);
-        Ok(store)
+        Ok(Store::discover(self.cli.store.as_deref(), &self.cwd)?)
     }
 
     /// Who is acting, in the order `agent` documents; `store` gives the store's setting.

@@ -58,11 +58,8 @@ fn agent(name: &str, email: Option<&str>) -> Agent {
     Agent::new(name, email, "python")
 }
 
-/// Opens the store, with recomputable versions computed when something reads them.
 fn open(dir: &str) -> PyResult<Store> {
-    let mut store = Store::discover(Some(Path::new(dir)), Path::new(dir)).map_err(raise)?;
-    sluice::recompute::on_demand(&mut store);
-    Ok(store)
+    Store::discover(Some(Path::new(dir)), Path::new(dir)).map_err(raise)
 }
 
 /// Sets up a store in `project`; returns the store's folder.
