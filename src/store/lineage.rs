@@ -1312,10 +1312,19 @@ impl Tx<'_> {
     /// The hash of every object the database records as stored (`reclaim` keeps exactly
     /// these): all but those only recomputable versions name ([`Lineage::unstored_objects`]).
     pub fn object_hashes(&self) -> Result<Vec<String>> {
-        let sql = format!(
-            "SELECT hash FROM objects WHERE hash NOT IN ({UNSTORED_OBJECTS}) ORDER BY hash"
-        );
-        let mut st = self.tx.prepare(&sql).map_err(db_err)?;
+        // The complement of `UNSTORED_OBJECTS`, written out (SQL is never built with format!).
+        let mut st = self
+            .tx
+            .prepare(
+                "SELECT o.hash FROM objects o
+                 WHERE NOT (EXISTS (SELECT 1 FROM versions v
+                                    WHERE v.hash = o.hash OR v.row_index = o.hash)
+                        AND NOT EXISTS (SELECT 1 FROM versions v
+                                        WHERE (v.hash = o.hash OR v.row_index = o.hash)
+                                          AND (v.storage IS NULL OR v.storage <> 'recomputable')))
+                 ORDER BY o.hash",
+            )
+            .map_err(db_err)?;
         let rows = st.query_map([], |r| r.get(0)).map_err(db_err)?;
         rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
     }
