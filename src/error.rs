@@ -398,6 +398,15 @@ pub enum ErrorKind {
         "object {hash} is missing from the store; run `sluice verify` to list every missing object"
     )]
     ObjectMissing { hash: String },
+    /// A recomputable version computed again from its recipe did not give its recorded bytes.
+    #[error("step {step} ({operation}) computed {version} again as {actual}, but {expected} was recorded; its recipe or its inputs changed: run `sluice verify`, and `sluice reproduce {version}` to see the difference")]
+    RecomputeMismatch {
+        step: i64,
+        operation: String,
+        version: String,
+        expected: String,
+        actual: String,
+    },
     #[error("{0}")]
     Usage(String),
     /// The data does not meet what a step needs (an amount that cannot be read, ...).
@@ -478,6 +487,7 @@ impl Error {
         match &*self.0 {
             ErrorKind::ObjectCorrupt { .. }
             | ErrorKind::ObjectMissing { .. }
+            | ErrorKind::RecomputeMismatch { .. }
             | ErrorKind::CorruptDatabase { .. }
             | ErrorKind::Sqlite(_)
             | ErrorKind::Inconsistent(_)

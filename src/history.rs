@@ -144,6 +144,8 @@ pub struct VersionDetail {
     /// The dataset's declared key, if any.
     pub key: Option<Vec<String>>,
     pub is_latest: bool,
+    /// Whether the version's bytes are kept, or computed from its recipe when read.
+    pub storage: crate::model::Storage,
     pub profile: Vec<ColumnProfile>,
     pub step: Option<Step>,
     /// Rules checked on this version, oldest first.
@@ -181,6 +183,7 @@ pub fn about(store: &Store, reference: &str) -> Result<VersionDetail> {
             .any(|s| s.status == crate::endorse::SignatureStatus::Verified),
         sign_offs,
         is_latest: latest.is_some_and(|l| l.id == version.id),
+        storage: version.storage,
         key: ds.and_then(|d| d.key),
         version,
         profile,

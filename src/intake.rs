@@ -399,6 +399,7 @@ impl PreparedIngest {
             null_tokens: self.opts.null_tokens.clone(),
             created_at: self.ended_at.clone(),
             step_id: 0,
+            storage: crate::model::Storage::Stored,
         })
     }
 
@@ -513,6 +514,7 @@ impl PreparedIngest {
             null_tokens: &opts.null_tokens,
             profiles: &self.profiles,
             created_at: &self.ended_at,
+            storage: crate::model::Storage::Stored,
         })?;
         let mut details = json!({
             "version": self.table_hex,

@@ -66,6 +66,7 @@ pub mod plan;
 pub mod progress;
 pub mod prov;
 pub mod provenance;
+pub mod recompute;
 pub mod recording;
 pub mod refs;
 pub mod replay;

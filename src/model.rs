@@ -153,6 +153,59 @@ pub struct Version {
     pub created_at: String,
     #[serde(skip)]
     pub step_id: i64,
+    /// Whether the version's bytes are kept in the store or computed again from its recipe.
+    #[serde(skip)]
+    pub storage: Storage,
+}
+
+/// Whether a version's bytes (and its row index) are kept in the store. What stays recorded
+/// either way: its hash, shape, row count, profile and the recipe of the step that made it.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Storage {
+    /// Stored (the default, and every version recorded before storage states existed).
+    #[default]
+    Stored,
+    /// Stored, and kept by a person's explicit request: never released.
+    Kept,
+    /// Not stored: computed again from its recipe (a deterministic built-in step and its
+    /// input versions) when something needs its bytes, and checked against its hash.
+    Recomputable,
+}
+
+impl Storage {
+    /// The recorded form (`versions.storage`): NULL for stored, so that rows written before
+    /// the column existed and rows written after it encode alike.
+    pub fn column(self) -> Option<&'static str> {
+        match self {
+            Storage::Stored => None,
+            Storage::Kept => Some("kept"),
+            Storage::Recomputable => Some("recomputable"),
+        }
+    }
+
+    pub fn from_column(v: Option<&str>) -> Option<Storage> {
+        match v {
+            None => Some(Storage::Stored),
+            Some("kept") => Some(Storage::Kept),
+            Some("recomputable") => Some(Storage::Recomputable),
+            Some(_) => None,
+        }
+    }
+
+    /// How screens say it.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Storage::Stored => "stored",
+            Storage::Kept => "kept",
+            Storage::Recomputable => "recomputable",
+        }
+    }
+
+    /// Whether the recorded state says the bytes are kept.
+    pub fn holds_bytes(self) -> bool {
+        self != Storage::Recomputable
+    }
 }
 
 impl Version {

@@ -813,7 +813,14 @@ fn run_fused(
             repeats: step.repeats,
         });
     }
-    let computed = match apply::compute_chain(store, &input, &aopts) {
+    // Default storage policy: an output a later step of this stretch supersedes (it writes
+    // the same dataset again) is an intermediate, recorded by hash and recipe but not
+    // written; the rest (the dataset's latest after the stretch, and outputs saved under
+    // another name) are stored. A version that stops being the latest later stays stored.
+    let keep: Vec<bool> = (0..datasets.len())
+        .map(|k| !datasets[k + 1..].contains(&datasets[k]))
+        .collect();
+    let computed = match apply::compute_chain(store, &input, &aopts, &keep) {
         Ok(c) => c,
         // A write that failed (a full disk) fails the run as it would have failed the first
         // step; nothing is recorded.
@@ -843,6 +850,24 @@ fn run_fused(
             op: aopts[k].op.clone(),
             outcome: Box::new(outcome),
         });
+    }
+    // A later step that changed nothing leaves an intermediate the latest version of its
+    // dataset: the policy stores every dataset's latest, so its bytes are computed and stored
+    // (an audit entry of its own).
+    let last = done.len().saturating_sub(1);
+    for v in current.values() {
+        if v.storage == crate::model::Storage::Recomputable
+            && store
+                .lineage
+                .latest_version(&v.dataset)
+                .is_ok_and(|l| l.is_some_and(|l| l.id == v.id))
+        {
+            if let Err(e) =
+                crate::recompute::store_bytes(store, v, crate::model::Storage::Stored, &opts.agent)
+            {
+                return Err((done, last, e));
+            }
+        }
     }
     Ok(Some(done))
 }

@@ -11,7 +11,7 @@ use serde_json::json;
 
 use crate::clock;
 use crate::error::{Error, Result};
-use crate::model::{Agent, LineageKind, RowRun, StepKind, Version};
+use crate::model::{Agent, LineageKind, RowRun, StepKind, Storage, Version};
 use crate::provenance::{ChangeLog, DropLog};
 use crate::store::version_writer::Written;
 use crate::store::{NewStep, NewVersion, Store};
@@ -97,6 +97,9 @@ pub struct Pending {
     pub n_changed: u64,
     pub changed_by_column: Vec<(String, u64)>,
     pub n_dropped: u64,
+    /// Whether the output's bytes were written ([`Storage::Stored`]) or only hashed
+    /// ([`Storage::Recomputable`]: an intermediate of a one-pass run).
+    pub storage: Storage,
 }
 
 impl Pending {
@@ -117,6 +120,7 @@ impl Pending {
             null_tokens: self.null_tokens.clone(),
             created_at: self.ended_at.clone(),
             step_id: placeholder,
+            storage: self.storage,
         }
     }
 }
@@ -175,6 +179,7 @@ pub fn insert_pending(
         null_tokens: &p.null_tokens,
         profiles: &p.profiles,
         created_at: &p.ended_at,
+        storage: p.storage,
     })?;
     for (input, sources) in &p.sources {
         tx.insert_column_sources(step_id, version_id, real(*input)?, sources)?;
@@ -212,8 +217,22 @@ pub fn persist(
 ) -> Result<Pending> {
     let store_dir = store.dir().to_path_buf();
     let store_io = |e: io::Error| Error::io(&store_dir.join("tmp"), e);
-    let (table_hash, n_bytes) = written.table.finish().map_err(store_io)?;
-    let (index_hash, index_bytes) = written.index.finish().map_err(store_io)?;
+    // An output written hash-only (an intermediate of a one-pass run, see
+    // `plan::run_fused`) is recorded by its hash and recipe; its bytes are not kept.
+    let storage = if written.table.keeps_bytes() {
+        Storage::Stored
+    } else {
+        Storage::Recomputable
+    };
+    let (table_hash, n_bytes, index_hash, index_bytes) = if storage == Storage::Stored {
+        let (t, n) = written.table.finish().map_err(store_io)?;
+        let (i, k) = written.index.finish().map_err(store_io)?;
+        (t, n, i, k)
+    } else {
+        let t = (written.table.hash(), written.table.n_bytes());
+        let i = (written.index.hash(), written.index.n_bytes());
+        (t.0, t.1, i.0, i.1)
+    };
     // The row maps, changed cells and dropped rows, as one object (none when there are none).
     let run_sets = prov.run_sets();
     let provenance = if prov.changes.is_empty() && prov.drops.is_empty() && run_sets.is_empty() {
@@ -265,6 +284,7 @@ pub fn persist(
         n_changed: prov.changes.len() as u64,
         changed_by_column,
         n_dropped: prov.drops.len() as u64,
+        storage,
     })
 }
 

@@ -388,6 +388,11 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
         let mut conflicts: Vec<Conflict> = Vec::new();
         let mut unchanged: Vec<String> = Vec::new();
         let mut applied_again: Vec<(i64, String)> = Vec::new();
+        // The restored table is stored like every latest version: a recomputable base's bytes
+        // are computed into the stage, published with the rest.
+        if !store.bytes_stored(&base)? {
+            crate::recompute::make_readable(store, &base)?;
+        }
         let restore = restore_step(store, &base, &latest, &reverted, &label, opts, &started_at)?;
         let mut seq = latest.seq + 1;
         let mut current = restore.version(recording::pending_id(0), seq);
@@ -732,6 +737,7 @@ fn restore_step(
         n_changed: 0,
         changed_by_column: Vec::new(),
         n_dropped: 0,
+        storage: crate::model::Storage::Stored,
     })
 }
 
@@ -814,7 +820,7 @@ fn fuse_ahead(
     if aopts.len() < 2 {
         return VecDeque::new();
     }
-    apply::compute_chain(store, current, &aopts)
+    apply::compute_chain(store, current, &aopts, &[])
         .map(VecDeque::from)
         .unwrap_or_default()
 }

@@ -217,6 +217,12 @@ fn find_by_key(store: &Store, v: &Version, pairs: &[(String, String)]) -> Result
 #[derive(Default)]
 struct Rows {
     cache: HashMap<(i64, u64), Vec<String>>,
+    reader: Reader,
+}
+
+/// What reading single records by offset keeps between reads.
+#[derive(Default)]
+struct Reader {
     /// One parser, restarted for every record read by offset (making one costs more than
     /// reading a record).
     parser: Option<crate::table::parse::Parser>,
@@ -224,31 +230,7 @@ struct Rows {
     tails: HashMap<i64, Option<rowindex::Tail>>,
 }
 
-impl Rows {
-    fn get(&mut self, store: &Store, v: &Version, row: u64) -> Result<&Vec<String>> {
-        if !self.cache.contains_key(&(v.id, row)) {
-            {
-                let fields = if cuttable(v) {
-                    let (_, _, bytes) = record_bytes(store, self, v, row)?;
-                    let parser = self.parser_for(v.dialect.delimiter_byte());
-                    parser.restart(0);
-                    parse_one(parser, &bytes, v)?
-                } else {
-                    // A raw file in a legacy encoding: its offsets count the file's own bytes,
-                    // so it is decoded from the start.
-                    let got = rows_of(&store.objects, v, &[row])?;
-                    got.get(row)
-                        .map(|r| r.texts())
-                        .ok_or_else(|| missing_row(v, row))?
-                };
-                self.cache.insert((v.id, row), fields);
-            }
-        }
-        self.cache
-            .get(&(v.id, row))
-            .ok_or_else(|| missing_row(v, row))
-    }
-
+impl Reader {
     /// The one parser, for `delimiter`.
     fn parser_for(&mut self, delimiter: u8) -> &mut crate::table::parse::Parser {
         if self.parser.as_ref().map(|p| p.delimiter()) != Some(delimiter) {
@@ -256,6 +238,38 @@ impl Rows {
         }
         self.parser
             .get_or_insert_with(|| crate::table::parse::Parser::new(delimiter, 0))
+    }
+}
+
+impl Rows {
+    fn get(&mut self, store: &Store, v: &Version, row: u64) -> Result<&Vec<String>> {
+        if !self.cache.contains_key(&(v.id, row)) {
+            let fields = self.fetch(store, v, row)?;
+            self.cache.insert((v.id, row), fields);
+        }
+        self.cache
+            .get(&(v.id, row))
+            .ok_or_else(|| missing_row(v, row))
+    }
+
+    /// One row of `v`: read by offset when its bytes are stored; computed on its own from the
+    /// nearest stored ancestor when every step on the way works row by row
+    /// ([`crate::recompute::one_row`], whose rows on the way are kept too); else read from
+    /// the version computed whole.
+    fn fetch(&mut self, store: &Store, v: &Version, row: u64) -> Result<Vec<String>> {
+        if !store.bytes_stored(v)? {
+            let reader = &mut self.reader;
+            let mut read = |sv: &Version, sr: u64| stored_row(reader, store, sv, sr);
+            if let Some(mut rows) = crate::recompute::one_row(store, v, row, &mut read)? {
+                let fields = rows.pop().map(|(_, _, f)| f).unwrap_or_default();
+                // The rows of the versions between, for the hops the trail makes next.
+                for (id, r, f) in rows {
+                    self.cache.entry((id, r)).or_insert(f);
+                }
+                return Ok(fields);
+            }
+        }
+        stored_row(&mut self.reader, store, v, row)
     }
 
     fn cell(&mut self, store: &Store, v: &Version, row: u64, column: &str) -> Result<String> {
@@ -266,6 +280,24 @@ impl Rows {
             )))
         })?;
         Ok(self.get(store, v, row)?.get(c).cloned().unwrap_or_default())
+    }
+}
+
+/// One row of `v` read from its bytes: by offset through its row index ([`record_bytes`]), or,
+/// for a raw file in a legacy encoding, decoded from the start.
+fn stored_row(reader: &mut Reader, store: &Store, v: &Version, row: u64) -> Result<Vec<String>> {
+    if cuttable(v) {
+        let (_, _, bytes) = record_bytes(store, reader, v, row)?;
+        let parser = reader.parser_for(v.dialect.delimiter_byte());
+        parser.restart(0);
+        parse_one(parser, &bytes, v)
+    } else {
+        // A raw file in a legacy encoding: its offsets count the file's own bytes, so it is
+        // decoded from the start.
+        let got = rows_of(&store.objects, v, &[row])?;
+        got.get(row)
+            .map(|r| r.texts())
+            .ok_or_else(|| missing_row(v, row))
     }
 }
 
@@ -289,7 +321,7 @@ fn hash_of(hex: &str, v: &Version) -> Result<crate::hash::Hash> {
 /// parsed until the row; from one of format 1 two entries, then the record, each by offset.
 fn record_bytes(
     store: &Store,
-    rows: &mut Rows,
+    rows: &mut Reader,
     v: &Version,
     row: u64,
 ) -> Result<(u64, u64, Vec<u8>)> {
@@ -630,7 +662,7 @@ fn origin(
     step: &crate::model::Step,
 ) -> Result<Origin> {
     let raw_value = rows.cell(store, v, r, column)?;
-    let (_, line, bytes) = record_bytes(store, rows, v, r)?;
+    let (_, line, bytes) = record_bytes(store, &mut rows.reader, v, r)?;
     // The record without its line ending and the blank lines after it.
     let mut end = bytes.len();
     while end > 0 && matches!(bytes[end - 1], b'\n' | b'\r') {

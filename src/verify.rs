@@ -44,8 +44,16 @@ pub struct VerifyReport {
     pub entries_without_row_commitments: u64,
     /// Database rows written in that time, which no row commitment covers.
     pub rows_before_commitments: u64,
-    /// With `--deep`: versions whose row index and profile were computed again from their bytes.
+    /// With `--deep`: versions whose row index and profile were computed again from their
+    /// bytes, and recomputable versions computed again from their recipes.
     pub versions_recomputed: u64,
+    /// Versions whose bytes the store keeps (stored or kept by request).
+    pub versions_stored: u64,
+    /// Versions recorded by hash and recipe whose bytes are computed when needed.
+    pub versions_recomputable: u64,
+    /// Recipes checked: the step is a built-in operation, its parameters read back in their
+    /// canonical form and equal those its audit entry recorded, its input versions exist.
+    pub recipes_checked: u64,
     /// Endorsements (sign-offs, admissions and retirements of signatories) whose signatures
     /// were checked against the keys the store trusted when each was made.
     pub endorsements_checked: u64,
@@ -91,8 +99,11 @@ fn verify_snapshot(store: &Store) -> Result<VerifyReport> {
 
     problems.extend(segment_problems(store)?);
 
+    // Objects only recomputable versions name are not expected in the store.
+    let unstored = un.or_default(store.lineage.unstored_objects());
     let recorded = un.or_default(store.lineage.objects());
     let mut bytes_checked = 0u64;
+    let mut not_stored = 0u64;
     let mut damaged = std::collections::HashSet::new();
     for (hex, kind, n_bytes) in &recorded {
         let Ok(hash) = hex.parse::<Hash>() else {
@@ -104,6 +115,10 @@ fn verify_snapshot(store: &Store) -> Result<VerifyReport> {
             continue;
         };
         let backend = store.objects.backend();
+        if unstored.contains(hex) && !backend.exists(&hash) {
+            not_stored += 1;
+            continue;
+        }
         if !backend.exists(&hash) {
             problems.push(problem(
                 "object_missing",
@@ -154,6 +169,9 @@ fn verify_snapshot(store: &Store) -> Result<VerifyReport> {
         let Ok(h) = v.row_index.parse::<Hash>() else {
             continue;
         };
+        if unstored.contains(&v.row_index) && !store.objects.backend().exists(&h) {
+            continue;
+        }
         match store.objects.read_all(&h) {
             Ok(data) => match rowindex::validate(&data) {
                 Ok(n) if n == v.n_rows => {}
@@ -225,7 +243,7 @@ fn verify_snapshot(store: &Store) -> Result<VerifyReport> {
     // Cell changes kept as database rows by schema 3 and earlier: each old value must be the
     // input cell the row map points at, each new value the output cell.
     for v in &versions {
-        if damaged.contains(&v.hash) {
+        if damaged.contains(&v.hash) || unstored.contains(&v.hash) {
             continue;
         }
         let Some((recorded, actual)) = un.or_default(
@@ -263,6 +281,8 @@ fn verify_snapshot(store: &Store) -> Result<VerifyReport> {
     }
 
     let entries = un.or_default(store.lineage.audit_entries());
+    let recipes = un.or_default(recipe_problems(store, &versions, &entries));
+    problems.extend(recipes.1);
     for p in audit::chain_problems(&entries) {
         let subject = p.split(':').next().unwrap_or("audit").to_string();
         problems.push(problem("audit", subject, p));
@@ -309,7 +329,7 @@ fn verify_snapshot(store: &Store) -> Result<VerifyReport> {
     Ok(VerifyReport {
         intact: problems.is_empty(),
         schema_version: store.lineage.schema_version().unwrap_or(0),
-        objects_checked: recorded.len() as u64,
+        objects_checked: recorded.len() as u64 - not_stored,
         bytes_checked,
         versions_checked: versions.len() as u64,
         audit_entries_checked: entries.len() as u64,
@@ -319,9 +339,75 @@ fn verify_snapshot(store: &Store) -> Result<VerifyReport> {
         entries_without_row_commitments: rows.legacy_entries,
         rows_before_commitments: rows.legacy_rows,
         versions_recomputed: 0,
+        versions_stored: versions.iter().filter(|v| v.storage.holds_bytes()).count() as u64,
+        versions_recomputable: versions.iter().filter(|v| !v.storage.holds_bytes()).count() as u64,
+        recipes_checked: recipes.0,
         endorsements_checked,
         problems,
     })
+}
+
+/// The recipe of every recomputable version, checked without computing anything: the step
+/// that made it is a built-in operation (deterministic), its parameters read back as an
+/// operation this build knows and are in canonical form, they equal what the step's audit
+/// entry recorded, and its input versions exist. Returns how many were checked and the
+/// problems (kind "recipe", named by the version and its step).
+fn recipe_problems(
+    store: &Store,
+    versions: &[crate::model::Version],
+    entries: &[crate::model::AuditEntry],
+) -> Result<(u64, Vec<Problem>)> {
+    use crate::model::{StepKind, Storage};
+    let mut out = Vec::new();
+    let mut n = 0u64;
+    for v in versions
+        .iter()
+        .filter(|v| v.storage == Storage::Recomputable)
+    {
+        n += 1;
+        let mut say = |detail: String| out.push(problem("recipe", v.label(), detail));
+        let Some(step) = store.lineage.step(v.step_id)? else {
+            say(format!("the step {} that made it is missing", v.step_id));
+            continue;
+        };
+        if step.kind != StepKind::Operation {
+            say(format!(
+                "it is recorded as recomputable, but it is {} (step {}), which cannot be computed again",
+                crate::recompute::made_by(step.kind),
+                step.id
+            ));
+            continue;
+        }
+        match serde_json::from_value::<crate::ops::Operation>(step.params.clone()) {
+            Ok(op) if op.params() != step.params => say(format!(
+                "the parameters of step {} are not in canonical form: {}",
+                step.id, step.params
+            )),
+            Ok(_) => {}
+            Err(e) => say(format!(
+                "the parameters of step {} cannot be read as an operation ({e})",
+                step.id
+            )),
+        }
+        let recorded = entries
+            .iter()
+            .filter(|e| e.action == "apply" && e.subject == v.audit_subject())
+            .filter_map(|e| serde_json::from_str::<serde_json::Value>(&e.details).ok())
+            .find_map(|d| d.get("operation").cloned());
+        if let Some(said) = recorded {
+            if said != step.params {
+                say(format!(
+                    "the parameters of step {} are {}, but its audit entry recorded {said} (the recipe was edited)",
+                    step.id, step.params
+                ));
+            }
+        }
+        let inputs = store.lineage.step_input_versions(step.id)?;
+        if !inputs.iter().any(|(role, _)| role == "input") {
+            say(format!("step {} records no input version", step.id));
+        }
+    }
+    Ok((n, out))
 }
 
 /// An endorsement file kept outside the store (`sluice endorse -o FILE`), held against the
@@ -761,6 +847,15 @@ fn deep_problems(store: &Store, report: &VerifyReport) -> Result<(Vec<Problem>, 
         let Ok(hash) = v.hash.parse::<Hash>() else {
             continue;
         };
+        // A version whose bytes are not stored is computed again from its recipe and its
+        // hash checked; its row index and profile come from the same writer as a stored one's.
+        if !store.bytes_stored(&v)? {
+            match crate::recompute::check_recipe(store, &v) {
+                Ok(()) => done += 1,
+                Err(e) => out.push(problem("recompute", v.label(), e.to_string())),
+            }
+            continue;
+        }
         let Ok(ix_hash) = v.row_index.parse::<Hash>() else {
             continue;
         };

@@ -140,6 +140,7 @@ const LAYERS: &[(&str, &[&str])] = &[
             "plan",
             "endorse",
             "erasure",
+            "recompute",
         ],
     ),
     (
@@ -162,6 +163,11 @@ const LAYERS: &[(&str, &[&str])] = &[
 
 /// Imports that go against the layers, each with its reason.
 const EXCEPTIONS: &[(&str, &str, &str)] = &[
+    (
+        "store",
+        "recompute",
+        "a store opened anywhere reads recomputable versions like stored ones: when it opens, it hands its objects the engine's computing of a missing object (one call), so that no caller can forget it",
+    ),
     (
         "ops::append",
         "intake",

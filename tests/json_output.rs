@@ -394,6 +394,17 @@ const CASES: &[(&str, &[&str], i32)] = &[
         ],
         0,
     ),
+    // Which versions' bytes are kept: every intermediate the policy allows released, one
+    // computed again and stored, one kept for good (quillby_orders:v2 is the demo plan's
+    // trimmed orders, made by a built-in step and not the latest).
+    ("evict", &["evict", "--all", "--json"], 0),
+    (
+        "recompute",
+        &["recompute", "quillby_orders:v2", "--json"],
+        0,
+    ),
+    ("retain", &["retain", "quillby_orders:v2", "--json"], 0),
+    ("retain", &["retain", "quillby_orders:v2", "--json"], 0),
     // The same chain on the same export again prints a run; exit 1 because the failing
     // inspection recorded above on all_orders:v9 is part of the chain and fails again (not at a
     // hold point, so the run completes).

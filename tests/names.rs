@@ -216,3 +216,55 @@ fn manual_pages_and_completions_use_no_old_name() {
     }
     assert!(found.is_empty(), "\n{}\n", found.join("\n"));
 }
+
+/// The commands that say which versions' bytes are kept use words of our own, chosen as
+/// DEVELOPERS.md's "Names of our own" says: none is a command word of version control or of
+/// data-versioning and build tools (from memory of those tools' command lists, common
+/// knowledge in the trade), whose storage verbs (check in and out, fetch, pin, prune, collect
+/// garbage, cache, materialize) would suggest their behaviour; and each has a manual page and
+/// a help text of its own.
+#[test]
+fn the_storage_commands_use_words_of_our_own() {
+    const BORROWED: &[&str] = &[
+        "add",
+        "commit",
+        "checkout",
+        "fetch",
+        "pull",
+        "push",
+        "pin",
+        "unpin",
+        "prune",
+        "gc",
+        "cache",
+        "materialize",
+        "materialise",
+        "stash",
+        "lfs",
+        "lock",
+        "unlock",
+        "archive",
+    ];
+    let s = Sandbox::new();
+    let commands = commands_in(&s.ok(&["--help"]));
+    for ours in ["retain", "recompute", "evict"] {
+        assert!(commands.iter().any(|c| c == ours), "{ours} in {commands:?}");
+        let help = s.ok(&[ours, "--help"]);
+        assert!(old_names(&help, ours).is_empty(), "{help}");
+        let words = help.split_whitespace().collect::<Vec<_>>().join(" ");
+        assert_contains(&words, "recorded in the audit log");
+    }
+    for c in &commands {
+        assert!(
+            !BORROWED.contains(&c.as_str()),
+            "`sluice {c}` borrows another tool's storage verb"
+        );
+    }
+    s.ok(&["manual", "--dir", "man"]);
+    for ours in ["retain", "recompute", "evict"] {
+        assert!(
+            s.path().join(format!("man/sluice-{ours}.1")).is_file(),
+            "a manual page for {ours}"
+        );
+    }
+}

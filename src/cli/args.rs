@@ -390,6 +390,66 @@ pub enum Command {
         json: bool,
     },
 
+    /// Keep versions' bytes stored for good, computing them from their recipes when they
+    /// are not stored (recorded in the audit log)
+    #[command(
+        after_help = "A run records the intermediate versions of a one-pass stretch of steps by hash, shape, profile \
+        and recipe, without their bytes; they are computed again, and checked against their hash, whenever \
+        something reads them. `retain` stores a version's bytes and marks it kept: `evict` will not release it.\n\n\
+        Example:\n  sluice retain quillby_orders:v3"
+    )]
+    Retain {
+        /// The versions (NAME:vN, NAME for the latest, or blake3:HEX)
+        #[arg(required = true, value_name = "REF")]
+        references: Vec<String>,
+        /// Print JSON (fields: examples/reference.md, "JSON output"; schema/output/)
+        #[arg(long)]
+        json: bool,
+    },
+
+    /// Compute recomputable versions from their recipes and store their bytes again (recorded
+    /// in the audit log)
+    #[command(
+        after_help = "Each version is computed from its nearest stored ancestors through the steps that made it, \
+        and its bytes must have the recorded hash (else the command fails naming the step, and nothing is \
+        recorded). The version is then stored like any other; `evict` may release it again.\n\n\
+        Example:\n  sluice recompute quillby_orders:v3"
+    )]
+    Recompute {
+        /// The versions (NAME:vN, NAME for the latest, or blake3:HEX)
+        #[arg(required = true, value_name = "REF")]
+        references: Vec<String>,
+        /// Print JSON (fields: examples/reference.md, "JSON output"; schema/output/)
+        #[arg(long)]
+        json: bool,
+    },
+
+    /// Stop keeping the bytes of versions that built-in steps made and can make again
+    /// (recorded in the audit log; `reclaim` then frees the space)
+    #[command(
+        after_help = "Only versions made by a built-in operation can be evicted, and never a dataset's latest \
+        version, a version signed off, or one kept with `retain`; raw data, outside commands' outputs, hand \
+        edits and withdrawals always stay stored. An evicted version keeps its hash, recipe, shape and profile, \
+        and is computed again (and checked against its hash) whenever something reads it. The space goes \
+        at the next `sluice reclaim`.\n\n\
+        Examples:\n  sluice evict quillby_orders:v2\n  sluice evict --all"
+    )]
+    Evict {
+        /// The versions (NAME:vN or blake3:HEX)
+        #[arg(
+            value_name = "REF",
+            required_unless_present = "all",
+            conflicts_with = "all"
+        )]
+        references: Vec<String>,
+        /// Every version the policy allows to evict
+        #[arg(long)]
+        all: bool,
+        /// Print JSON (fields: examples/reference.md, "JSON output"; schema/output/)
+        #[arg(long)]
+        json: bool,
+    },
+
     /// Compare two versions: rows kept, added and removed, every changed cell, and added,
     /// removed, renamed or reordered columns
     #[command(

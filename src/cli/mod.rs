@@ -16,6 +16,7 @@ pub mod query;
 pub mod record;
 pub mod reproduce;
 pub mod shell;
+pub mod storage;
 pub mod term;
 pub mod text;
 
@@ -25,7 +26,7 @@ use std::path::{Path, PathBuf};
 use anyhow::{anyhow, Context as _};
 
 use args::{Cli, Command};
-use sluice::model::Agent;
+use sluice::model::{Agent, Storage};
 use sluice::store::Store;
 
 /// What a command asks the process to exit with.
@@ -161,6 +162,17 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             endorsement,
         } => query::verify(&ctx, *deep, endorsement, *json, out),
         Command::Reclaim { json } => admin::reclaim(&ctx, *json, out),
+        Command::Retain { references, json } => {
+            storage::retain(&ctx, references, Storage::Kept, *json, out)
+        }
+        Command::Recompute { references, json } => {
+            storage::retain(&ctx, references, Storage::Stored, *json, out)
+        }
+        Command::Evict {
+            references,
+            all,
+            json,
+        } => storage::evict(&ctx, references, *all, *json, out),
         Command::Compare(a) => compare::compare(&ctx, a, out),
         Command::Reproduce {
             reference,

@@ -310,6 +310,16 @@ pub fn about_text(out: &mut impl Write, d: &VersionDetail) -> io::Result<()> {
     )?;
     writeln!(out, "  hash         blake3:{}", v.hash)?;
     writeln!(out, "  size         {}", plural(v.n_bytes, "byte", "bytes"))?;
+    // Stored is the rule and goes unsaid; the exceptions are named.
+    match d.storage {
+        sluice::model::Storage::Recomputable => writeln!(
+            out,
+            "  storage      recomputable: the bytes are computed from the recipe of step {} when read, and checked against the hash",
+            v.step_id
+        )?,
+        sluice::model::Storage::Kept => writeln!(out, "  storage      kept (sluice retain)")?,
+        sluice::model::Storage::Stored => {}
+    }
     writeln!(out, "  shape        {}", shape(v))?;
     let dl = &v.dialect;
     let delim = match dl.delimiter.as_str() {
@@ -469,6 +479,18 @@ pub fn verify_text(out: &mut impl Write, r: &VerifyReport) -> io::Result<()> {
             writeln!(out, "  {}  {}: {}", p.kind, p.subject, p.detail)?;
         }
     }
+    writeln!(
+        out,
+        "storage: {} stored, {} recomputable from {} (each recipe checked{})",
+        plural(r.versions_stored, "version", "versions"),
+        r.versions_recomputable,
+        plural(r.recipes_checked, "recipe", "recipes"),
+        if r.versions_recomputed > 0 {
+            "; computed again with --deep"
+        } else {
+            "; computed again only with --deep"
+        }
+    )?;
     if r.endorsements_checked > 0 && r.intact {
         writeln!(
             out,

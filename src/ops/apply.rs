@@ -50,6 +50,10 @@ pub struct ApplyOptions {
 pub struct ReplayCheck {
     pub output_hash: String,
     pub provenance_hash: Option<String>,
+    /// Whether the computed bytes (and row index) are written when the store does not hold
+    /// them: true to restore a stored version or to compute a recomputable one for reading;
+    /// false to only hash (a recomputable version checked by `reproduce` stays unstored).
+    pub write: bool,
 }
 
 /// What an apply did.
@@ -319,10 +323,13 @@ struct Stage {
 /// the rows pass. Each step reads the output of the one before; tables are stored versions.
 /// Nothing is recorded: [`apply_computed`] records each in turn, so a run stopped part way
 /// keeps its first steps whole. Every step must be [`fusable`] (the first with `first`).
+/// A step whose `keep` is false has its output hashed, indexed and profiled but not written:
+/// it is recorded as a recomputable version (its recipe is the step itself).
 pub fn compute_chain(
     store: &Store,
     input: &Version,
     steps: &[ApplyOptions],
+    keep: &[bool],
 ) -> Result<Vec<Computed>> {
     let store_dir = store.dir().to_path_buf();
     let store_io = |e: io::Error| Error::io(&store_dir.join("tmp"), e);
@@ -352,7 +359,12 @@ pub fn compute_chain(
         } = ready(store, &reads, opts)?;
         let step = RowStep::new(store, &reads, &opts.op, mapper, looker)?;
         let header = step.header();
-        let writer = output_writer(store, &opts, &header, &input.null_tokens).map_err(store_io)?;
+        let writer = if keep.get(k).copied().unwrap_or(true) {
+            output_writer(store, &opts, &header, &input.null_tokens)
+        } else {
+            CanonicalWriter::hashing_only(&header, &input.null_tokens)
+        }
+        .map_err(store_io)?;
         // What the next step reads: this step's output, not yet a stored version (only its
         // header, dataset and blanks are read from it while preparing).
         reads = Version {
@@ -369,6 +381,7 @@ pub fn compute_chain(
             null_tokens: input.null_tokens.clone(),
             created_at: String::new(),
             step_id: crate::recording::pending_id(k),
+            storage: crate::model::Storage::Recomputable,
         };
         stages.push(Stage {
             table_id: step.table_id(),
@@ -508,9 +521,10 @@ pub(super) fn output_writer(
     null_tokens: &[String],
 ) -> io::Result<CanonicalWriter> {
     let stored = opts.replay.as_ref().is_some_and(|c| {
-        c.output_hash
-            .parse::<Hash>()
-            .is_ok_and(|h| store.objects.exists(&h))
+        !c.write
+            || c.output_hash
+                .parse::<Hash>()
+                .is_ok_and(|h| store.objects.exists(&h))
     });
     if stored {
         CanonicalWriter::hashing_only(header, null_tokens)
@@ -654,13 +668,17 @@ fn replayed(
     let matches = out_hash == check.output_hash;
     let n_rows = written.n_rows;
     let mut restored = false;
-    if matches {
+    if matches && written.table.keeps_bytes() {
         let hash: crate::hash::Hash = out_hash
             .parse()
             .map_err(|e: String| Error::from(ErrorKind::Inconsistent(e)))?;
         if !store.objects.exists(&hash) {
             written.table.finish().map_err(store_io)?;
             restored = true;
+        }
+        // The row index goes with the bytes (a recomputable version has neither stored).
+        if !store.objects.exists(&written.index.hash()) {
+            written.index.finish().map_err(store_io)?;
         }
     }
     Ok(ApplyOutcome::Replayed {

@@ -326,7 +326,9 @@ fn hand_edit_step(
 /// After a step gave the recorded bytes: whether the stored object of `out` is damaged, in
 /// which case the entry says so and the replay stops (the steps after it would read it).
 fn stored_damaged(store: &Store, out: &Version, entry: &mut ReplayedStep) -> Result<bool> {
-    if entry.result == "restored" {
+    // A recomputable version has no stored object to hold the computed bytes against: that
+    // they have the recorded hash is the whole check.
+    if entry.result == "restored" || !store.bytes_stored(out)? {
         return Ok(false);
     }
     let state = object_state(store, &out.hash)?;
@@ -374,6 +376,8 @@ fn built_in(
         replay: Some(ReplayCheck {
             output_hash: out.hash.clone(),
             provenance_hash: store.lineage.step_provenance(id)?,
+            // A recomputable version is checked, not stored by reproducing it.
+            write: store.bytes_stored(out)?,
         }),
     };
     match apply::apply(store, &main.label(), &opts) {
@@ -410,6 +414,7 @@ fn built_in(
             opts.replay = Some(ReplayCheck {
                 output_hash: output_hash.clone(),
                 provenance_hash: None,
+                write: true,
             });
             match computed_difference(store, main, out, &opts, &output_hash) {
                 Ok(d) => entry.difference = Some(Box::new(d)),

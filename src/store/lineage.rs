@@ -13,8 +13,14 @@ use super::audit::{Key, Selector};
 use crate::error::{Error, ErrorKind, Result};
 use crate::model::{
     canonical_json, Agent, AuditEntry, CellChange, ColumnProfile, Dataset, Dialect, Drop,
-    Endorsement, LineageKind, Meaning, RowRun, SourceFile, Step, StepKind, Version,
+    Endorsement, LineageKind, Meaning, RowRun, SourceFile, Step, StepKind, Storage, Version,
 };
+
+/// The objects that only recomputable versions name (their bytes or row index).
+const UNSTORED_OBJECTS: &str = "SELECT o.hash FROM objects o
+     WHERE EXISTS (SELECT 1 FROM versions v WHERE v.hash = o.hash OR v.row_index = o.hash)
+       AND NOT EXISTS (SELECT 1 FROM versions v WHERE (v.hash = o.hash OR v.row_index = o.hash)
+                       AND (v.storage IS NULL OR v.storage <> 'recomputable'))";
 
 /// The migrations, in order. Each entry is (schema version it produces, SQL).
 const MIGRATIONS: &[(i64, &str)] = &[
@@ -23,6 +29,7 @@ const MIGRATIONS: &[(i64, &str)] = &[
     (3, include_str!("../../schema/0003_check_gate.sql")),
     (4, include_str!("../../schema/0004_step_provenance.sql")),
     (5, include_str!("../../schema/0005_endorsements.sql")),
+    (6, include_str!("../../schema/0006_storage.sql")),
 ];
 
 /// The schema version this build writes.
@@ -316,6 +323,37 @@ impl Lineage {
         )
     }
 
+    /// The versions whose bytes or row index are the object `hash`.
+    pub fn versions_of_object(&self, hash: &str) -> Result<Vec<Version>> {
+        self.query_versions(
+            "WHERE v.hash = ?1 OR v.row_index = ?1 ORDER BY v.id",
+            params![hash],
+        )
+    }
+
+    /// The objects no stored version needs: those every version that names them (as its
+    /// bytes or its row index) is [`Storage::Recomputable`]. `reclaim` may free them and
+    /// `verify` does not miss them.
+    pub fn unstored_objects(&self) -> Result<std::collections::HashSet<String>> {
+        let mut st = self.conn.prepare(UNSTORED_OBJECTS).map_err(db_err)?;
+        let rows = st.query_map([], |r| r.get(0)).map_err(db_err)?;
+        rows.collect::<rusqlite::Result<_>>().map_err(db_err)
+    }
+
+    /// Whether a version whose bytes are `hash` is recorded as stored (any of them: versions
+    /// of identical bytes share one object). For [`super::Store::bytes_stored`].
+    pub fn hash_stored(&self, hash: &str) -> Result<bool> {
+        self.conn
+            .query_row(
+                "SELECT EXISTS (SELECT 1 FROM versions WHERE hash = ?1
+                     AND (storage IS NULL OR storage <> 'recomputable'))
+                 OR NOT EXISTS (SELECT 1 FROM versions WHERE hash = ?1)",
+                params![hash],
+                |r| r.get(0),
+            )
+            .map_err(db_err)
+    }
+
     pub fn all_versions(&self) -> Result<Vec<Version>> {
         self.query_versions("ORDER BY d.name, v.seq", params![])
     }
@@ -323,7 +361,7 @@ impl Lineage {
     fn query_versions(&self, tail: &str, p: impl rusqlite::Params) -> Result<Vec<Version>> {
         let sql = format!(
             "SELECT v.id, d.name, v.seq, v.hash, v.row_index, v.n_rows, v.n_cols, v.n_bytes,
-                    v.header, v.dialect, v.null_tokens, v.created_at, v.step_id
+                    v.header, v.dialect, v.null_tokens, v.created_at, v.step_id, v.storage
              FROM versions v JOIN datasets d ON d.id = v.dataset_id {tail}"
         );
         let mut st = self.conn.prepare(&sql).map_err(db_err)?;
@@ -343,6 +381,7 @@ impl Lineage {
                     r.get::<_, String>(10)?,
                     r.get::<_, String>(11)?,
                     r.get::<_, i64>(12)?,
+                    r.get::<_, Option<String>>(13)?,
                 ))
             })
             .map_err(db_err)?;
@@ -362,6 +401,7 @@ impl Lineage {
                 nulls,
                 created_at,
                 step_id,
+                storage,
             ) = row.map_err(db_err)?;
             out.push(Version {
                 id,
@@ -377,6 +417,9 @@ impl Lineage {
                 null_tokens: parse_json_field(&nulls, "versions.null_tokens")?,
                 created_at,
                 step_id,
+                storage: Storage::from_column(storage.as_deref()).ok_or_else(|| {
+                    bad_field("versions.storage", storage.as_deref().unwrap_or(""))
+                })?,
             });
         }
         Ok(out)
@@ -938,6 +981,8 @@ pub struct NewVersion<'a> {
     pub null_tokens: &'a [String],
     pub profiles: &'a [ColumnProfile],
     pub created_at: &'a str,
+    /// Whether the version's bytes are kept (see [`Storage`]).
+    pub storage: Storage,
 }
 
 /// An open write transaction. `journal` names the rows written since the last audit entry; the
@@ -1110,8 +1155,8 @@ impl Tx<'_> {
         self.tx
             .execute(
                 "INSERT INTO versions (dataset_id, seq, hash, row_index, step_id, n_rows, n_cols,
-                    n_bytes, header, dialect, null_tokens, created_at)
-                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12)",
+                    n_bytes, header, dialect, null_tokens, created_at, storage)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13)",
                 params![
                     dataset_id,
                     seq,
@@ -1125,6 +1170,7 @@ impl Tx<'_> {
                     json(v.dialect),
                     json(v.null_tokens),
                     v.created_at,
+                    v.storage.column(),
                 ],
             )
             .map_err(db_err)?;
@@ -1250,11 +1296,34 @@ impl Tx<'_> {
         Ok(())
     }
 
-    /// The hash of every object the database records (`reclaim` keeps exactly these).
+    /// Records that version `version_id`'s bytes are now kept, kept by request, or left to be
+    /// recomputed; the next audit entry commits to the row anew.
+    pub fn set_storage(&mut self, version_id: i64, storage: Storage) -> Result<()> {
+        self.tx
+            .execute(
+                "UPDATE versions SET storage = ?2 WHERE id = ?1",
+                params![version_id, storage.column()],
+            )
+            .map_err(db_err)?;
+        self.wrote("versions", "id", Key::Int(version_id));
+        Ok(())
+    }
+
+    /// The hash of every object the database records as stored (`reclaim` keeps exactly
+    /// these): all but those only recomputable versions name ([`Lineage::unstored_objects`]).
     pub fn object_hashes(&self) -> Result<Vec<String>> {
+        // The complement of `UNSTORED_OBJECTS`, written out (SQL is never built with format!).
         let mut st = self
             .tx
-            .prepare("SELECT hash FROM objects ORDER BY hash")
+            .prepare(
+                "SELECT o.hash FROM objects o
+                 WHERE NOT (EXISTS (SELECT 1 FROM versions v
+                                    WHERE v.hash = o.hash OR v.row_index = o.hash)
+                        AND NOT EXISTS (SELECT 1 FROM versions v
+                                        WHERE (v.hash = o.hash OR v.row_index = o.hash)
+                                          AND (v.storage IS NULL OR v.storage <> 'recomputable')))
+                 ORDER BY o.hash",
+            )
             .map_err(db_err)?;
         let rows = st.query_map([], |r| r.get(0)).map_err(db_err)?;
         rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)

@@ -27,9 +27,17 @@ fn leftover_pid(name: &str) -> Option<u32> {
     let kind = parts.next()?;
     let pid = parts.next()?.parse::<u32>().ok()?;
     parts.next()?;
-    ["obj", "reclaim", "exec", "replay", "revert", "compare"]
-        .contains(&kind)
-        .then_some(pid)
+    [
+        "obj",
+        "reclaim",
+        "exec",
+        "replay",
+        "revert",
+        "compare",
+        "recompute",
+    ]
+    .contains(&kind)
+    .then_some(pid)
 }
 
 /// Whether process `pid` runs (exists and is not a zombie waiting to be reaped).
@@ -82,11 +90,13 @@ impl Store {
         )
         .map_err(|e| Error::io(&readme, e))?;
         let lineage = Lineage::create(&dir.join(DB_FILE))?;
-        Ok(Store {
+        let mut store = Store {
             objects: Objects::new(Box::new(FsBackend::new(&dir))),
             lineage,
             dir,
-        })
+        };
+        crate::recompute::on_demand(&mut store);
+        Ok(store)
     }
 
     /// Creates a new store and records its creation as the first audit entry.
@@ -109,6 +119,17 @@ impl Store {
     /// Opens the store whose folder is `dir` (the `sluice-store` folder itself, or a project
     /// folder containing one).
     pub fn open(dir: &Path) -> Result<Store> {
+        let mut store = Store::open_plain(dir)?;
+        // Whoever reads a recomputable version gets it computed from its recipe: the store
+        // asks the engine for a missing object (the one call from the store into the engine).
+        crate::recompute::on_demand(&mut store);
+        Ok(store)
+    }
+
+    /// [`Store::open`] without computing recomputable versions: a missing object stays
+    /// missing. The engine's own handle for computing them opens the store this way, so that
+    /// computing never asks for more computing.
+    pub fn open_plain(dir: &Path) -> Result<Store> {
         legacy_check(dir)?;
         let dir = if dir.file_name().is_some_and(|n| n == STORE_DIR) {
             dir.to_path_buf()
@@ -161,6 +182,7 @@ impl Store {
     pub fn open_with_backend(dir: &Path, backend: Box<dyn ObjectBackend>) -> Result<Store> {
         let mut s = Store::open(dir)?;
         s.objects = Objects::new(backend);
+        crate::recompute::on_demand(&mut s);
         Ok(s)
     }
 
@@ -183,6 +205,17 @@ impl Store {
             start: start.to_path_buf(),
         }
         .into())
+    }
+
+    /// Whether the store keeps `v`'s bytes (and row index), as recorded: the one answer to
+    /// "is this version's content stored?". A version recorded as recomputable whose bytes
+    /// are identical to a stored version's counts as stored. Its bytes can still be read when
+    /// it is not: the engine computes them again (`crate::recompute`).
+    pub fn bytes_stored(&self, v: &crate::model::Version) -> Result<bool> {
+        if v.storage.holds_bytes() {
+            return Ok(true);
+        }
+        self.lineage.hash_stored(&v.hash)
     }
 
     /// The `sluice-store` folder.

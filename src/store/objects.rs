@@ -888,6 +888,27 @@ pub struct Objects {
     stage: Option<Stage>,
     /// Objects found intact by a check made earlier in this process.
     intact: Mutex<HashSet<Hash>>,
+    /// Where the bytes of recomputable versions are computed when read (see
+    /// [`Objects::compute_missing_with`]).
+    on_demand: Option<OnDemand>,
+}
+
+/// Makes a missing object (a recomputable version's bytes or row index) readable from the
+/// scratch folder; `Ok(false)` when the object is not one it can compute.
+pub type Compute = Box<dyn Fn(&Hash) -> Result<bool> + Send + Sync>;
+
+/// Objects computed on demand for this process: a scratch folder under the store's `tmp/`,
+/// removed when the store is closed (or, after a kill, by the sweep of `tmp/`).
+struct OnDemand {
+    dir: PathBuf,
+    fs: FsBackend,
+    compute: Compute,
+}
+
+impl Drop for OnDemand {
+    fn drop(&mut self) {
+        let _ = fs::remove_dir_all(&self.dir);
+    }
 }
 
 /// A private folder of objects a command wrote but may still give up (a revert that turns out
@@ -903,6 +924,8 @@ pub struct ObjectWriter {
     hasher: blake3::Hasher,
     n_bytes: u64,
     unsynced: u64,
+    /// False for a hashing-only writer.
+    keeps: bool,
 }
 
 /// Where a hashing-only writer's bytes go: nowhere.
@@ -934,7 +957,14 @@ impl ObjectWriter {
             hasher: blake3::Hasher::new(),
             n_bytes: 0,
             unsynced: 0,
+            keeps: false,
         }
+    }
+
+    /// Whether the bytes written are kept (`finish` stores them); false for
+    /// [`ObjectWriter::hashing_only`].
+    pub fn keeps_bytes(&self) -> bool {
+        self.keeps
     }
 
     pub fn write(&mut self, data: &[u8]) -> io::Result<()> {
@@ -971,6 +1001,33 @@ impl Objects {
             backend,
             stage: None,
             intact: Mutex::new(HashSet::new()),
+            on_demand: None,
+        }
+    }
+
+    /// From now on an object the store does not hold is asked of `compute`, which writes it
+    /// into segments under `dir` (a fresh folder under `tmp/`) if it can; reads then find it
+    /// there. The engine installs this for recomputable versions (`crate::recompute`); the
+    /// store itself never computes anything.
+    pub fn compute_missing_with(&mut self, dir: PathBuf, compute: Compute) {
+        self.on_demand = Some(OnDemand {
+            fs: FsBackend::new(&dir),
+            dir,
+            compute,
+        });
+    }
+
+    /// Where object `hash` is read from, computing it when it is missing and the engine
+    /// installed a way to ([`Objects::compute_missing_with`]).
+    fn find(&self, hash: &Hash) -> Result<&dyn ObjectBackend> {
+        let r = self.reader(hash);
+        if r.exists(hash) {
+            return Ok(r);
+        }
+        match &self.on_demand {
+            Some(od) if od.fs.exists(hash) => Ok(&od.fs),
+            Some(od) if (od.compute)(hash)? && od.fs.exists(hash) => Ok(&od.fs),
+            _ => Ok(r),
         }
     }
 
@@ -1034,6 +1091,7 @@ impl Objects {
             hasher: blake3::Hasher::new(),
             n_bytes: 0,
             unsynced: 0,
+            keeps: true,
         })
     }
 
@@ -1050,20 +1108,24 @@ impl Objects {
             hasher: blake3::Hasher::new(),
             n_bytes: 0,
             unsynced: 0,
+            keeps: true,
         })
     }
 
+    /// Whether the store (or the stage) holds object `hash` now; computes nothing.
     pub fn exists(&self, hash: &Hash) -> bool {
         self.reader(hash).exists(hash)
     }
 
-    /// The uncompressed length of object `hash`.
+    /// The uncompressed length of object `hash` (computed first, like a read, when a
+    /// recomputable version names it).
     pub fn size(&self, hash: &Hash) -> Result<u64> {
-        self.reader(hash).size(hash).map_err(|e| {
+        let from = self.find(hash)?;
+        from.size(hash).map_err(|e| {
             if e.kind() == io::ErrorKind::NotFound {
                 crate::Error::from(ErrorKind::ObjectMissing { hash: hash.hex() })
             } else {
-                crate::Error::io(&self.reader(hash).describe(hash), e)
+                crate::Error::io(&from.describe(hash), e)
             }
         })
     }
@@ -1074,7 +1136,7 @@ impl Objects {
     pub fn copy_to(&self, hash: &Hash, out: &mut dyn Write) -> Result<u64> {
         let r = self.open_raw(hash)?;
         let mut hasher = blake3::Hasher::new();
-        let path = self.reader(hash).describe(hash);
+        let path = self.find(hash)?.describe(hash);
         let n_bytes = for_each_piece(
             r,
             |e| crate::Error::io(&path, e),
@@ -1106,16 +1168,14 @@ impl Objects {
     /// (trace reads single rows this way, in constant time; `verify` checks whole objects).
     pub fn read_range(&self, hash: &Hash, offset: u64, len: usize) -> Result<Vec<u8>> {
         let mut buf = vec![0u8; len];
-        let n = self
-            .reader(hash)
-            .read_at(hash, offset, &mut buf)
-            .map_err(|e| {
-                if e.kind() == io::ErrorKind::NotFound {
-                    crate::Error::from(ErrorKind::ObjectMissing { hash: hash.hex() })
-                } else {
-                    crate::Error::io(&self.reader(hash).describe(hash), e)
-                }
-            })?;
+        let from = self.find(hash)?;
+        let n = from.read_at(hash, offset, &mut buf).map_err(|e| {
+            if e.kind() == io::ErrorKind::NotFound {
+                crate::Error::from(ErrorKind::ObjectMissing { hash: hash.hex() })
+            } else {
+                crate::Error::io(&from.describe(hash), e)
+            }
+        })?;
         buf.truncate(n);
         Ok(buf)
     }
@@ -1123,11 +1183,12 @@ impl Objects {
     /// Opens an object for reading without checking its hash (callers that stream large objects
     /// check the hash themselves, or rely on `verify`).
     pub fn open_raw(&self, hash: &Hash) -> Result<Box<dyn Read + Send>> {
-        self.reader(hash).open(hash).map_err(|e| {
+        let from = self.find(hash)?;
+        from.open(hash).map_err(|e| {
             if e.kind() == io::ErrorKind::NotFound {
                 ErrorKind::ObjectMissing { hash: hash.hex() }.into()
             } else {
-                crate::Error::io(&self.reader(hash).describe(hash), e)
+                crate::Error::io(&from.describe(hash), e)
             }
         })
     }
@@ -1152,9 +1213,17 @@ impl Objects {
         {
             return Ok(None);
         }
-        let r = self.open_raw(hash)?;
-        let (actual, _) = crate::hash::hash_reader(r)
-            .map_err(|e| crate::Error::io(&self.reader(hash).describe(hash), e))?;
+        // What the store holds: a missing object is not computed to be checked.
+        let from = self.reader(hash);
+        let r = from.open(hash).map_err(|e| {
+            if e.kind() == io::ErrorKind::NotFound {
+                crate::Error::from(ErrorKind::ObjectMissing { hash: hash.hex() })
+            } else {
+                crate::Error::io(&from.describe(hash), e)
+            }
+        })?;
+        let (actual, _) =
+            crate::hash::hash_reader(r).map_err(|e| crate::Error::io(&from.describe(hash), e))?;
         Ok(if actual == *hash { None } else { Some(actual) })
     }
 }

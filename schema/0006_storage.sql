@@ -1,0 +1,15 @@
+-- sluice lineage database, schema version 6.
+--
+-- Recomputable versions. A version made by a deterministic built-in step (a step of kind
+-- 'operation') is fully described by its recipe, which the database already holds: the step's
+-- operation and canonical parameters (steps.operation, steps.params) and its input versions
+-- with their roles (step_inputs). Its bytes need not be kept: they can be computed again from
+-- the nearest stored ancestor and checked against versions.hash.
+--
+-- versions.storage says whether the version's bytes (and its row index) are kept:
+--   NULL            stored (every version written before this migration, and by default);
+--   'kept'          stored, and kept by a person's explicit request (never released);
+--   'recomputable'  not stored: recomputed from its recipe when something needs its bytes.
+-- The column is added as NULL in old rows, so the audit chain's row commitments to them stay
+-- valid; a change of a version's storage is its own audit entry, committing to the row anew.
+ALTER TABLE versions ADD COLUMN storage TEXT CHECK (storage IN ('kept', 'recomputable'));

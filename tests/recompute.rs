@@ -1,0 +1,299 @@
+//! Recomputable versions: a plan's intermediates recorded by hash and recipe without their
+//! bytes, computed again (and checked against their hash) whenever something reads them; the
+//! commands that keep, store again and release versions' bytes; `verify` checking recipes and,
+//! with `--deep`, recomputing; and a store of schema 5 migrated with every old reference and
+//! hash still resolving. The hashes are checked with the `blake3` crate (the reference
+//! implementation's Rust crate, from the registry), outside sluice's own code paths.
+
+mod common;
+
+use std::path::Path;
+
+use common::*;
+
+fn copy_dir(from: &Path, to: &Path) {
+    std::fs::create_dir_all(to).unwrap();
+    for e in std::fs::read_dir(from).unwrap() {
+        let e = e.unwrap();
+        let dest = to.join(e.file_name());
+        if e.file_type().unwrap().is_dir() {
+            copy_dir(&e.path(), &dest);
+        } else {
+            std::fs::copy(e.path(), &dest).unwrap();
+        }
+    }
+}
+
+fn blake3_hex(bytes: &[u8]) -> String {
+    blake3::hash(bytes).to_hex().to_string()
+}
+
+/// Every version of the store as `NAME:vN`, with its recorded hash and storage.
+fn versions(s: &Sandbox) -> Vec<(String, String, Option<String>)> {
+    let db = rusqlite::Connection::open(s.path().join("sluice-store/lineage.db")).unwrap();
+    let mut q = db
+        .prepare(
+            "SELECT d.name || ':v' || v.seq, v.hash, v.storage FROM versions v
+             JOIN datasets d ON d.id = v.dataset_id ORDER BY d.name, v.seq",
+        )
+        .unwrap();
+    let rows = q
+        .query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))
+        .unwrap();
+    rows.map(|r| r.unwrap()).collect()
+}
+
+/// Every object name the store's segments hold.
+fn stored_objects(s: &Sandbox) -> Vec<String> {
+    let backend = sluice::store::objects::FsBackend::new(&s.path().join("sluice-store"));
+    use sluice::store::objects::ObjectBackend;
+    let (names, _) = backend.list().unwrap();
+    names.iter().map(|h| h.hex()).collect()
+}
+
+const ORDERS: &str = "order_id,shop,service,parts_cost\n\
+WO-1, Quillby Cycle Mend ,tune-up,$12.50\n\
+WO-2,Oxwater Wheelworks,FLAT REPAIR,8.00\n\
+WO-3,  Quillby Cycle Mend,brake bleed,\"1,030.00\"\n\
+WO-4,Oxwater Wheelworks,tune-up,$4.25\n";
+
+/// A store where a plan of four row-by-row steps made orders:v2..v5 (v2..v4 intermediates).
+fn planned() -> Sandbox {
+    let s = Sandbox::with_store();
+    s.file("orders.csv", ORDERS);
+    s.file(
+        "plan.json",
+        r#"{"sluice_plan": 2, "purpose": "Q3 parts cost",
+ "sources": [{"dataset": "orders", "file": "orders.csv", "key": ["order_id"], "reason": "Q3 export"}],
+ "steps": [
+   {"dataset": "orders", "clean": "trim", "settings": {"inner": true}, "reason": "the till pads names"},
+   {"dataset": "orders", "clean": "case", "settings": {"columns": ["service"], "to": "upper"}, "reason": "one case"},
+   {"dataset": "orders", "clean": "number", "settings": {"columns": ["parts_cost"]}, "reason": "amounts"},
+   {"dataset": "orders", "clean": "case", "settings": {"columns": ["shop"], "to": "upper"}, "reason": "shop codes"}
+ ]}"#,
+    );
+    s.ok(&["run", "plan.json"]);
+    s
+}
+
+/// A store of schema 5 (`tests/fixtures/store_v5`: a keyed intake of orders.csv and a plan of
+/// trim, case, number and a summary by shop, made by the last build before recomputable
+/// versions) opens and migrates; every version resolves by `NAME:vN` and by its hash, gives
+/// bytes with its recorded BLAKE3, and still does after the old intermediates are evicted and
+/// their space reclaimed (computed again from their recipes), with the same trail as before.
+#[test]
+fn a_schema_5_store_migrates_and_every_old_reference_and_hash_resolves() {
+    let s = Sandbox::new();
+    let fixture = Path::new(concat!(
+        env!("CARGO_MANIFEST_DIR"),
+        "/tests/fixtures/store_v5"
+    ));
+    copy_dir(fixture, s.path());
+    let v = s.json(&["verify", "--json"]);
+    assert_eq!(v["intact"], true, "{v}");
+    assert_eq!(v["schema_version"], 6);
+    assert_eq!(v["versions_stored"], 5);
+    assert_eq!(v["versions_recomputable"], 0);
+    let old = versions(&s);
+    assert_eq!(old.len(), 5);
+    let mut before = Vec::new();
+    for (label, hash, storage) in &old {
+        assert_eq!(storage, &None, "{label} reads as stored");
+        let bytes = s.run(&["retrieve", label]).raw_stdout;
+        assert_eq!(&blake3_hex(&bytes), hash, "{label}");
+        let by_hash = s.run(&["retrieve", &format!("blake3:{}", &hash[..12])]);
+        assert_eq!(by_hash.raw_stdout, bytes, "{label} by its hash");
+        before.push(bytes);
+    }
+    let raw = old.iter().position(|(l, _, _)| l == "orders:v1").unwrap();
+    assert_eq!(
+        before[raw],
+        std::fs::read(fixture.join("orders.csv")).unwrap(),
+        "the raw version is the file taken in"
+    );
+    let trail = s.ok(&["trace", "orders:v4", "--row", "3", "--column", "parts_cost"]);
+
+    // The intermediates the policy allows to release: orders:v2 and v3 (v1 is raw, v4 the
+    // latest of orders, by_shop:v1 the latest of by_shop).
+    let evicted = s.json(&["evict", "--all", "--json"]);
+    let names: Vec<&str> = evicted["changes"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|c| c["version"].as_str().unwrap())
+        .collect();
+    assert_eq!(names, ["orders:v2", "orders:v3"]);
+    s.ok(&["reclaim"]);
+    let present = stored_objects(&s);
+    for (label, hash, _) in &old {
+        let gone = label == "orders:v2" || label == "orders:v3";
+        assert_eq!(
+            !present.contains(hash),
+            gone,
+            "{label}'s bytes after reclaim"
+        );
+    }
+    for ((label, hash, _), bytes) in old.iter().zip(&before) {
+        let again = s.run(&["retrieve", label]).raw_stdout;
+        assert_eq!(&again, bytes, "{label} computed again");
+        assert_eq!(&blake3_hex(&again), hash);
+    }
+    assert_eq!(
+        s.ok(&["trace", "orders:v4", "--row", "3", "--column", "parts_cost"]),
+        trail
+    );
+    let v = s.json(&["verify", "--deep", "--json"]);
+    assert_eq!(v["intact"], true, "{v}");
+    assert_eq!(v["versions_recomputable"], 2);
+    assert_eq!(v["recipes_checked"], 2);
+}
+
+/// A plan's intermediates are recorded by hash, row count and profile but not written; every
+/// reader gets their bytes computed again, with the recorded hash; the latest version is
+/// stored; `recompute`, `retain` and `evict` change what is kept, each with an audit entry.
+#[test]
+fn a_run_keeps_its_intermediates_as_recipes_and_computes_them_when_read() {
+    let s = planned();
+    let vs = versions(&s);
+    let storage: Vec<(&str, Option<&str>)> = vs
+        .iter()
+        .map(|(l, _, st)| (l.as_str(), st.as_deref()))
+        .collect();
+    assert_eq!(
+        storage,
+        [
+            ("orders:v1", None),
+            ("orders:v2", Some("recomputable")),
+            ("orders:v3", Some("recomputable")),
+            ("orders:v4", Some("recomputable")),
+            ("orders:v5", None),
+        ]
+    );
+    let present = stored_objects(&s);
+    for (label, hash, st) in &vs {
+        assert_eq!(
+            present.contains(hash),
+            st.is_none(),
+            "{label} in the segments"
+        );
+        let bytes = s.run(&["retrieve", label]).raw_stdout;
+        assert_eq!(&blake3_hex(&bytes), hash, "{label} read back");
+    }
+    // Reading wrote nothing into the store: the computed bytes lived in a scratch folder.
+    assert_eq!(stored_objects(&s), present);
+    let about = s.json(&["about", "orders:v3", "--json"]);
+    assert_eq!(about["storage"], "recomputable");
+    assert_eq!(about["profile"].as_array().unwrap().len(), 4);
+    s.ok(&["compare", "orders:v2", "orders:v4", "--counts"]);
+    s.ok(&["reproduce", "orders:v5"]);
+
+    let entries = |s: &Sandbox| s.json(&["verify", "--json"])["audit_entries_checked"].clone();
+    let n0 = entries(&s).as_u64().unwrap();
+    let err = s.fails(2, &["evict", "orders:v5"]);
+    assert_contains(
+        &err,
+        "orders:v5 stays stored: it is the latest version of orders",
+    );
+    let err = s.fails(2, &["evict", "orders:v1"]);
+    assert_contains(
+        &err,
+        "orders:v1 stays stored: it is raw data (received), which cannot be computed again",
+    );
+    let done = s.json(&["recompute", "orders:v3", "--json"]);
+    assert_eq!(done["changes"][0]["computed"], true);
+    assert_eq!(done["changes"][0]["after"], "stored");
+    assert!(stored_objects(&s).contains(&vs[2].1));
+    s.ok(&["retain", "orders:v3"]);
+    let err = s.fails(2, &["evict", "orders:v3"]);
+    assert_contains(&err, "asked to keep it stored");
+    s.ok(&["evict", "orders:v4"]);
+    assert_eq!(
+        entries(&s).as_u64().unwrap(),
+        n0 + 2,
+        "recompute and retain"
+    );
+    let v = s.json(&["verify", "--deep", "--json"]);
+    assert_eq!(v["intact"], true, "{v}");
+    assert_eq!(v["versions_stored"], 3);
+    assert_eq!(v["versions_recomputable"], 2);
+    // evict of orders:v4 was already recomputable: no entry; the storage entries are in the
+    // timeline's audit chain and committed to like every row.
+    assert_eq!(v["audit_entries_checked"].as_u64().unwrap(), n0 + 2);
+}
+
+/// A recipe edited behind sluice's back: `verify` names the version and its step (the
+/// parameters differ from what the step's audit entry recorded), reading the version fails
+/// naming the step that computes other bytes, and `verify --deep` names it too.
+#[test]
+fn an_edited_recipe_is_named_by_verify_and_by_the_failing_recomputation() {
+    let s = planned();
+    let db = rusqlite::Connection::open(s.path().join("sluice-store/lineage.db")).unwrap();
+    let (step, params): (i64, String) = db
+        .query_row(
+            "SELECT s.id, s.params FROM steps s JOIN versions v ON v.step_id = s.id
+             JOIN datasets d ON d.id = v.dataset_id WHERE d.name = 'orders' AND v.seq = 3",
+            [],
+            |r| Ok((r.get(0)?, r.get(1)?)),
+        )
+        .unwrap();
+    assert!(params.contains("\"upper\""), "{params}");
+    db.execute(
+        "UPDATE steps SET params = ?1 WHERE id = ?2",
+        rusqlite::params![params.replace("\"upper\"", "\"lower\""), step],
+    )
+    .unwrap();
+    drop(db);
+    let r = s.run(&["verify", "--json"]);
+    assert_eq!(r.code, 1, "{}", r.stderr);
+    let v: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
+    let recipe: Vec<&serde_json::Value> = v["problems"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter(|p| p["kind"] == "recipe")
+        .collect();
+    assert_eq!(recipe.len(), 1, "{v}");
+    assert_eq!(recipe[0]["subject"], "orders:v3");
+    assert_contains(
+        recipe[0]["detail"].as_str().unwrap(),
+        &format!("the parameters of step {step} are"),
+    );
+    let err = s.fails(1, &["retrieve", "orders:v3"]);
+    assert_contains(
+        &err,
+        &format!("step {step} (case) computed orders:v3 again as"),
+    );
+    let r = s.run(&["verify", "--deep", "--json"]);
+    assert_eq!(r.code, 1, "{}", r.stderr);
+    let deep: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
+    assert!(
+        deep["problems"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .any(|p| p["kind"] == "recompute" && p["subject"] == "orders:v3"),
+        "{deep}"
+    );
+}
+
+/// A trail through recomputable versions (each of its rows computed on its own from the
+/// nearest stored version) is the trail the same history gives with every version stored.
+#[test]
+fn a_trail_through_recomputable_versions_is_the_trail_through_stored_ones() {
+    let s = planned();
+    let mut through_recipes = Vec::new();
+    for (row, column) in [("1", "shop"), ("3", "parts_cost"), ("2", "service")] {
+        through_recipes.push(s.ok(&["trace", "orders:v5", "--row", row, "--column", column]));
+        through_recipes.push(s.ok(&["trace", "orders:v3", "--row", row, "--column", column]));
+    }
+    assert_contains(&through_recipes[0], "orders:v4 row 1 shop");
+    s.ok(&["recompute", "orders:v2", "orders:v3", "orders:v4"]);
+    let v = s.json(&["verify", "--json"]);
+    assert_eq!(v["versions_recomputable"], 0);
+    let mut through_stored = Vec::new();
+    for (row, column) in [("1", "shop"), ("3", "parts_cost"), ("2", "service")] {
+        through_stored.push(s.ok(&["trace", "orders:v5", "--row", row, "--column", column]));
+        through_stored.push(s.ok(&["trace", "orders:v3", "--row", row, "--column", column]));
+    }
+    assert_eq!(through_recipes, through_stored);
+}
