@@ -30,19 +30,6 @@ const ROWS: u64 = 20_000;
 /// intake of `ROWS`.
 const PLAN_ROWS: u64 = 2_500;
 
-fn copy_dir(from: &Path, to: &Path) {
-    std::fs::create_dir_all(to).unwrap();
-    for e in std::fs::read_dir(from).unwrap() {
-        let e = e.unwrap();
-        let dest = to.join(e.file_name());
-        if e.file_type().unwrap().is_dir() {
-            copy_dir(&e.path(), &dest);
-        } else {
-            std::fs::copy(e.path(), &dest).unwrap();
-        }
-    }
-}
-
 fn sluice(dir: &Path, args: &[&str]) -> Command {
     let mut c = Command::new(env!("CARGO_BIN_EXE_sluice"));
     c.args(args)
@@ -300,7 +287,10 @@ fn plan_run_killed_at_fifty_moments_keeps_whole_steps_only() {
 
     let mut tally = Tally::default();
     let mut steps_seen = vec![0u32; PLAN_STEPS + 1];
-    for (k, delay) in delays(total).enumerate() {
+    // One kill after `delay`: the store holds whole steps only, and running the plan again
+    // ends with the unkilled run's bytes. Returns how many steps the killed run recorded,
+    // whether the kill came before it ended, and how many temporary files it left.
+    let kill_at = |k: usize, delay: Duration| -> (usize, bool, usize) {
         let dir = tempfile::tempdir().unwrap();
         copy_dir(base.path(), dir.path());
         let child = sluice(dir.path(), &args).spawn().unwrap();
@@ -308,7 +298,6 @@ fn plan_run_killed_at_fifty_moments_keeps_whole_steps_only() {
         let killed = kill_after(child, delay);
         let what = format!("kill point {k} at {delay:?}");
         let left = leftovers(dir.path(), pid);
-        tally.leftovers += left.len();
         let report = assert_intact(dir.path(), &what);
         let now = versions_of(dir.path(), "orders");
         let made = now.len() - 1;
@@ -327,13 +316,6 @@ fn plan_run_killed_at_fifty_moments_keeps_whole_steps_only() {
             audit_before + made as u64,
             "{what}"
         );
-        steps_seen[made] += 1;
-        match (made, killed) {
-            (0, _) => tally.nothing += 1,
-            (PLAN_STEPS, false) => tally.already_done += 1,
-            (PLAN_STEPS, true) => tally.complete += 1,
-            _ => tally.partial_plan += 1,
-        }
         // Running the plan again succeeds and ends with the unkilled run's bytes.
         let st = sluice(dir.path(), &args).status().unwrap();
         assert!(st.success(), "{what}: the rerun failed");
@@ -349,9 +331,45 @@ fn plan_run_killed_at_fifty_moments_keeps_whole_steps_only() {
             "{what}: the rerun ended elsewhere"
         );
         assert_intact(dir.path(), &format!("{what}, after the rerun"));
+        (made, killed, left.len())
+    };
+    let mut count = |(made, killed, left): (usize, bool, usize)| {
+        tally.leftovers += left;
+        steps_seen[made] += 1;
+        match (made, killed) {
+            (0, _) => tally.nothing += 1,
+            (PLAN_STEPS, false) => tally.already_done += 1,
+            (PLAN_STEPS, true) => tally.complete += 1,
+            _ => tally.partial_plan += 1,
+        }
+        made
+    };
+    // Moments spread over the unkilled run's time and as long again, since a loaded machine
+    // runs the killed copies slower than the measured one.
+    let (mut before, mut after) = (Duration::ZERO, total * 2);
+    let mut landed = false;
+    for (k, delay) in delays(total * 2).enumerate() {
+        match count(kill_at(k, delay)) {
+            0 => before = before.max(delay),
+            PLAN_STEPS => after = after.min(delay),
+            _ => landed = true,
+        }
+    }
+    // A one-pass run records its steps together at its end, a short window: if no kill landed
+    // in it, halve the interval between the latest kill that found no step and the earliest
+    // that found them all, up to twenty more times.
+    let mut k = KILL_POINTS as usize;
+    while !landed && k < KILL_POINTS as usize + 20 && before < after {
+        let mid = before + (after - before) / 2;
+        match count(kill_at(k, mid)) {
+            0 => before = mid,
+            PLAN_STEPS => after = mid,
+            _ => landed = true,
+        }
+        k += 1;
     }
     eprintln!(
-        "crash: plan of {PLAN_STEPS} steps on {PLAN_ROWS} rows took {total:?} unkilled; {KILL_POINTS} kill points: \
+        "crash: plan of {PLAN_STEPS} steps on {PLAN_ROWS} rows took {total:?} unkilled; {k} kill points: \
          {} before the first step was recorded, {} after some of the steps, {} after all of them \
          (killed), {} after the child had exited; steps recorded when killed: {steps_seen:?}; \
          {} temporary files left by the kills, all removed by the rerun",

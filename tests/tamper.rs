@@ -411,19 +411,6 @@ fn an_audit_entry_inserted_out_of_chain_is_named() {
 
 // ---- cell changes kept as rows by schema 1 -------------------------------------------------
 
-fn copy_dir(from: &Path, to: &Path) {
-    std::fs::create_dir_all(to).unwrap();
-    for e in std::fs::read_dir(from).unwrap() {
-        let e = e.unwrap();
-        let dest = to.join(e.file_name());
-        if e.file_type().unwrap().is_dir() {
-            copy_dir(&e.path(), &dest);
-        } else {
-            std::fs::copy(e.path(), &dest).unwrap();
-        }
-    }
-}
-
 /// A copy of the schema-1 fixture, whose trim step kept its one changed cell (data row 1,
 /// amount, " 12.50" -> "12.50") as a `cell_changes` row.
 fn legacy() -> Sandbox {

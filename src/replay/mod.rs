@@ -29,7 +29,6 @@ use crate::error::{ErrorKind, Result};
 use crate::hash::Hash;
 use crate::model::{Agent, Step, StepKind, Version};
 use crate::ops::apply::{self, ApplyOptions, ApplyOutcome, ReplayCheck};
-use crate::ops::Operation;
 use crate::refs;
 use crate::store::Store;
 
@@ -352,20 +351,8 @@ fn built_in(
     entry: &mut ReplayedStep,
 ) -> Result<bool> {
     let id = step.id;
-    let op: Operation = serde_json::from_value(step.params.clone()).map_err(|e| {
-        crate::Error::from(ErrorKind::Inconsistent(format!(
-            "step {id} holds parameters this build cannot read ({e})"
-        )))
-    })?;
-    let inputs = store.lineage.step_input_versions(id)?;
-    let Some((_, main)) = inputs.iter().find(|(role, _)| role == "input") else {
-        return Err(ErrorKind::Inconsistent(format!("step {id} records no input")).into());
-    };
     // Tables and other sources by their exact recorded versions.
-    let op = match inputs.iter().find(|(role, _)| role != "input") {
-        Some((_, other)) => crate::plan::with_other_input(&op, other.label()),
-        None => op,
-    };
+    let (main, op) = crate::recompute::recorded_operation(store, step)?;
     let mut opts = ApplyOptions {
         op,
         reason: step.reason.clone().unwrap_or_else(|| "replay".into()),
@@ -416,7 +403,7 @@ fn built_in(
                 provenance_hash: None,
                 write: true,
             });
-            match computed_difference(store, main, out, &opts, &output_hash) {
+            match computed_difference(store, &main, out, &opts, &output_hash) {
                 Ok(d) => entry.difference = Some(Box::new(d)),
                 Err(e) => entry
                     .warnings

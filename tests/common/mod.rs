@@ -335,3 +335,18 @@ fn rewrite_segment_of(store_dir: &Path, hash: &str, edit: Option<impl FnOnce(&mu
         std::fs::rename(&temp, &seg).unwrap();
     }
 }
+
+/// Copies the folder `from` (a fixture store, a prepared sandbox) to `to`, recursively; the
+/// test's own folders hold no links and are a few levels deep.
+pub fn copy_dir(from: &Path, to: &Path) {
+    std::fs::create_dir_all(to).unwrap();
+    for e in std::fs::read_dir(from).unwrap() {
+        let e = e.unwrap();
+        let dest = to.join(e.file_name());
+        if e.file_type().unwrap().is_dir() {
+            copy_dir(&e.path(), &dest);
+        } else {
+            std::fs::copy(e.path(), &dest).unwrap();
+        }
+    }
+}
