@@ -191,7 +191,7 @@ fn survey_text(out: &mut impl Write, order: &Order, reach: &Reach) -> std::io::R
     for r in &reach.versions {
         writeln!(
             out,
-            "  {:<24} {:>6} erased  {:>4} kept, no longer recomputable",
+            "  {:<24} {:>6} to erase  {:>4} to keep, no longer recomputable",
             r.version.label(),
             r.erased.len(),
             r.kept_unrecomputable.len()
