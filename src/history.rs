@@ -154,6 +154,8 @@ pub struct VersionDetail {
     pub signed: bool,
     /// The sign-offs over this version, oldest first, each with its signature checked.
     pub sign_offs: Vec<crate::endorse::SignOff>,
+    /// Its recorded deliveries (`retrieve --deliver`), oldest first.
+    pub deliveries: Vec<crate::delivery::Delivery>,
 }
 
 /// One recorded check result.
@@ -176,7 +178,9 @@ pub fn about(store: &Store, reference: &str) -> Result<VersionDetail> {
     let latest = store.lineage.latest_version(&version.dataset)?;
     let checks = checks_of(store, version.id)?;
     let sign_offs = crate::endorse::sign_offs_of_version(store, &version, true)?;
+    let deliveries = crate::delivery::of_version(store, &version)?;
     Ok(VersionDetail {
+        deliveries,
         checks,
         signed: sign_offs
             .iter()

@@ -44,6 +44,7 @@ pub mod code;
 pub mod columnar;
 pub mod commitment;
 pub mod convert;
+pub mod delivery;
 pub mod demo;
 pub mod diff;
 pub mod endorse;

@@ -411,7 +411,7 @@ pub fn release_bytes(store: &mut Store, v: &Version, agent: &Agent) -> Result<St
 
 /// Why `v`'s bytes must stay stored, if they must: it was not made by a built-in step (raw
 /// data, outside work, a hand edit, a withdrawal), it is its dataset's latest version, a
-/// person signed it off, or a person asked to keep it.
+/// person signed it off, a person asked to keep it, or it was delivered (`retrieve --deliver`).
 pub fn must_stay_stored(store: &Store, v: &Version) -> Result<Option<String>> {
     let step = store.lineage.step(v.step_id)?;
     if step.as_ref().is_none_or(|s| s.kind != StepKind::Operation) {
@@ -439,6 +439,12 @@ pub fn must_stay_stored(store: &Store, v: &Version) -> Result<Option<String>> {
         .any(|e| e.kind == "version" && e.subject == v.hash);
     if signed {
         return Ok(Some("it was signed off".into()));
+    }
+    if let Some(d) = crate::delivery::of_version(store, v)?.first() {
+        return Ok(Some(format!(
+            "it was delivered (audit entry {}: {})",
+            d.audit_entry, d.why
+        )));
     }
     Ok(None)
 }

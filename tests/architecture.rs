@@ -141,6 +141,7 @@ const LAYERS: &[(&str, &[&str])] = &[
             "endorse",
             "erasure",
             "recompute",
+            "delivery",
         ],
     ),
     (

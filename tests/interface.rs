@@ -48,7 +48,10 @@ fn identify_names_a_received_file_and_refuses_a_stranger() {
     assert_eq!(j["versions"][0]["seq"], 1);
     s.file("b.csv", "id,name\n1,Bo\n");
     let err = s.fails(1, &["identify", "b.csv"]);
-    assert_contains(&err, "no version or report with these bytes");
+    assert_contains(
+        &err,
+        "no version, report or delivered file with these bytes",
+    );
 }
 
 #[test]

@@ -284,3 +284,96 @@ fn a_trail_through_recomputable_versions_is_the_trail_through_stored_ones() {
     }
     assert_eq!(through_recipes, through_stored);
 }
+
+/// A delivery (`retrieve --deliver`) records exactly the bytes handed over: the audit entry's
+/// file hash is the BLAKE3 (the `blake3` crate's) of the file written, for the stored bytes, a
+/// canonical rendering and standard output alike; `identify` and `about` name it; a delivered
+/// intermediate is computed, stored and then refused to `evict`; a delivery without a reason
+/// is refused before anything is written, and leaves the store as it was.
+#[test]
+fn a_delivery_records_the_bytes_handed_over_and_keeps_the_version_stored() {
+    let s = planned();
+    let storage_of = |label: &str| {
+        versions(&s)
+            .into_iter()
+            .find(|(l, _, _)| l == label)
+            .unwrap()
+            .2
+    };
+    assert_eq!(storage_of("orders:v3").as_deref(), Some("recomputable"));
+
+    let before = s.snapshot();
+    let err = s.fails(
+        2,
+        &["retrieve", "orders:v3", "-o", "none.csv", "--deliver", "  "],
+    );
+    assert_contains(&err, "--deliver needs a reason");
+    assert!(!s.path().join("none.csv").exists());
+    assert_eq!(s.snapshot(), before, "a refused delivery changes nothing");
+
+    let r = s.run(&[
+        "retrieve",
+        "orders:v3",
+        "--format",
+        "jsonl",
+        "-o",
+        "orders_for_review.jsonl",
+        "--deliver",
+        "order lines for the treasurer's review",
+    ]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert_contains(
+        &r.stderr,
+        "delivered orders:v3 as orders_for_review.jsonl (jsonl",
+    );
+    let written = std::fs::read(s.path().join("orders_for_review.jsonl")).unwrap();
+    let written_hex = blake3_hex(&written);
+    assert_eq!(
+        storage_of("orders:v3"),
+        None,
+        "a delivered intermediate is stored"
+    );
+
+    let id = s.json(&["identify", "orders_for_review.jsonl", "--json"]);
+    assert_eq!(id["versions"].as_array().unwrap().len(), 0);
+    let d = &id["deliveries"][0];
+    assert_eq!(d["file_hash"], written_hex.as_str());
+    assert_eq!(d["bytes"], written.len() as u64);
+    assert_eq!(d["version"], "orders:v3");
+    assert_eq!(d["format"], "jsonl");
+    assert_eq!(d["why"], "order lines for the treasurer's review");
+    assert_eq!(d["by"], format!("{PERSON} ({EMAIL})").as_str());
+    let shown = s.ok(&["identify", "orders_for_review.jsonl"]);
+    assert_contains(&shown, "is a delivered rendering of orders:v3");
+    let about = s.json(&["about", "orders:v3", "--json"]);
+    assert_eq!(about["deliveries"][0]["file_hash"], written_hex.as_str());
+    assert_contains(
+        &s.ok(&["about", "orders:v3"]),
+        "delivered    orders_for_review.jsonl (jsonl)",
+    );
+
+    let err = s.fails(2, &["evict", "orders:v3"]);
+    assert_contains(&err, "stays stored: it was delivered (audit entry");
+
+    // The stored bytes to standard output: the recorded hash is the version's own.
+    let r = s.run(&[
+        "retrieve",
+        "orders:v2",
+        "--deliver",
+        "raw-cleaned lines for the shop",
+    ]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let v2 = versions(&s)
+        .into_iter()
+        .find(|(l, _, _)| l == "orders:v2")
+        .unwrap();
+    assert_eq!(blake3_hex(&r.raw_stdout), v2.1);
+    let out = s.file("v2.csv", &r.raw_stdout);
+    let id = s.json(&["identify", out.to_str().unwrap(), "--json"]);
+    assert_eq!(id["versions"][0]["hash"], v2.1.as_str());
+    assert_eq!(id["deliveries"][0]["file"], "-");
+    assert_eq!(id["deliveries"][0]["format"], "stored bytes");
+
+    let v = s.json(&["verify", "--json"]);
+    assert_eq!(v["intact"], true, "{v}");
+}

@@ -200,7 +200,10 @@ fn a_report_is_recorded_with_its_hash_and_verify_stays_intact() {
     // A file that no report produced is not found.
     s.file("other.html", "<html></html>");
     let stderr = s.fails(1, &["identify", "other.html"]);
-    assert_contains(&stderr, "no version or report with these bytes");
+    assert_contains(
+        &stderr,
+        "no version, report or delivered file with these bytes",
+    );
 }
 
 #[test]

@@ -319,7 +319,7 @@ pub enum Command {
 
     /// Retrieve a version's exact bytes (or its rows as CSV, TSV or JSON Lines) to standard output or a file
     #[command(
-        after_help = "Examples:\n  sluice retrieve quillby_orders:v1 > q3-as-received.csv\n  sluice retrieve blake3:5f3a9c0d -o q3.csv\n  sluice retrieve all_orders --format jsonl -o all_orders.jsonl\n  sluice retrieve all_orders --format parquet --column-type total=decimal(12,2) -o all_orders.parquet"
+        after_help = "Examples:\n  sluice retrieve quillby_orders:v1 > q3-as-received.csv\n  sluice retrieve blake3:5f3a9c0d -o q3.csv\n  sluice retrieve all_orders --format jsonl -o all_orders.jsonl\n  sluice retrieve all_orders --format parquet --column-type total=decimal(12,2) -o all_orders.parquet\n  sluice retrieve q3_by_shop -o q3_by_shop.csv --deliver \"Q3 figures for the board pack\""
     )]
     Retrieve {
         /// The version: NAME (latest), NAME:vN (N-th version) or blake3:HEX (8+ hex digits)
@@ -337,6 +337,11 @@ pub enum Command {
         /// repeat for more columns
         #[arg(long = "column-type", value_name = "COLUMN=TYPE")]
         column_type: Vec<String>,
+        /// Record this retrieval as a delivery, with the reason (who receives the file and what
+        /// for): the written file's own hash goes into the audit chain, so `sluice identify`
+        /// names the file later, and the version's bytes stay stored
+        #[arg(long, value_name = "REASON")]
+        deliver: Option<String>,
     },
 
     /// The audit trail in time order: one line per step, oldest first
@@ -626,6 +631,19 @@ pub enum RetrieveFormat {
     Parquet,
     /// Arrow IPC file (Feather version 2), typed as for parquet
     Arrow,
+}
+
+impl RetrieveFormat {
+    /// The name given on the command line.
+    pub fn name(self) -> &'static str {
+        match self {
+            RetrieveFormat::Csv => "csv",
+            RetrieveFormat::Tsv => "tsv",
+            RetrieveFormat::Jsonl => "jsonl",
+            RetrieveFormat::Parquet => "parquet",
+            RetrieveFormat::Arrow => "arrow",
+        }
+    }
 }
 
 #[derive(Debug, Args)]

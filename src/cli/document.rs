@@ -130,6 +130,8 @@ pub struct Identified<'a> {
     pub versions: &'a [Version],
     /// The audit entry that recorded a report with these bytes.
     pub report: Option<ReportFound>,
+    /// The recorded deliveries of a file with these bytes (`retrieve --deliver`).
+    pub deliveries: Vec<sluice::delivery::Delivery>,
     /// The sign-offs over these bytes (a version's or a report's), signatures checked.
     pub sign_offs: Vec<sluice::endorse::SignOff>,
 }
@@ -176,12 +178,14 @@ pub fn identify(
     } else {
         None
     };
-    let found = !versions.is_empty() || report.is_some();
+    let deliveries = sluice::delivery::of_file(&store, &hex)?;
+    let found = !versions.is_empty() || report.is_some() || !deliveries.is_empty();
     let id = Identified {
         file: file.display().to_string(),
         hash: format!("blake3:{hex}"),
         versions: &versions,
         report,
+        deliveries,
         sign_offs: sluice::endorse::sign_offs(&store, &hex, true)?,
     };
     if as_json {
@@ -217,12 +221,35 @@ pub fn identify(
         )?;
         writeln!(out, "  {}", id.hash)?;
     }
+    if !as_json && !id.deliveries.is_empty() {
+        if versions.is_empty() && id.report.is_none() {
+            writeln!(
+                out,
+                "{} is a delivered rendering of {} ({})",
+                id.file,
+                id.deliveries[0].version,
+                short_hash(&id.deliveries[0].version_hash)
+            )?;
+        }
+        for d in &id.deliveries {
+            let types = if d.column_types.is_empty() {
+                String::new()
+            } else {
+                format!(", column types {}", d.column_types.join(" "))
+            };
+            writeln!(
+                out,
+                "  delivered as {} ({}{types}) at {} by {}: {} (audit entry {})",
+                d.file, d.format, d.at, d.by, d.why, d.audit_entry
+            )?;
+        }
+    }
     if found && !as_json {
         super::endorse::sign_off_lines(out, &id.sign_offs)?;
     }
     if !found && !as_json {
         eprintln!(
-            "error: no version or report with these bytes ({}, {}) is recorded in this store; \
+            "error: no version, report or delivered file with these bytes ({}, {}) is recorded in this store; \
              it was changed after it was written, or comes from another store",
             id.file, id.hash
         );

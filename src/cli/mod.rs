@@ -148,12 +148,16 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             output,
             format,
             column_type,
+            deliver,
         } => query::retrieve(
             &ctx,
-            reference,
-            output.as_deref(),
-            *format,
-            column_type,
+            query::Retrieval {
+                reference,
+                output: output.as_deref(),
+                format: *format,
+                column_types: column_type,
+                deliver: deliver.as_deref(),
+            },
             out,
         ),
         Command::Verify {

@@ -211,62 +211,108 @@ pub fn about(
     Ok(0)
 }
 
+/// What `retrieve` was asked for.
+pub struct Retrieval<'a> {
+    pub reference: &'a str,
+    pub output: Option<&'a Path>,
+    pub format: Option<RetrieveFormat>,
+    pub column_types: &'a [String],
+    /// With `--deliver`: the reason, and the retrieval is recorded as a delivery.
+    pub deliver: Option<&'a str>,
+}
+
 pub fn retrieve(
     ctx: &Context<'_>,
-    reference: &str,
-    output: Option<&Path>,
-    format: Option<RetrieveFormat>,
-    column_types: &[String],
+    r: Retrieval<'_>,
     out: &mut impl Write,
 ) -> anyhow::Result<ExitCode> {
-    let given = column_types
+    let given = r
+        .column_types
         .iter()
         .map(|p| sluice::columnar::write::parse_given(p).map_err(|e| anyhow!("--column-type {e}")))
         .collect::<anyhow::Result<Vec<_>>>()?;
-    if !given.is_empty() && format.is_none() {
+    if !given.is_empty() && r.format.is_none() {
         return Err(anyhow!(
             "--column-type applies to --format parquet or --format arrow; add one of them"
         ));
     }
-    let store = ctx.open_store()?;
-    let version = sluice::refs::resolve(&store.lineage, reference)?;
-    if let Some(format) = format {
-        use sluice::columnar::write::OutFormat;
-        use sluice::export::{Format, TextFormat};
-        let format = match format {
-            RetrieveFormat::Csv => Format::Text(TextFormat::Csv),
-            RetrieveFormat::Tsv => Format::Text(TextFormat::Tsv),
-            RetrieveFormat::Jsonl => Format::Text(TextFormat::Jsonl),
-            RetrieveFormat::Parquet => Format::Columnar(OutFormat::Parquet),
-            RetrieveFormat::Arrow => Format::Columnar(OutFormat::ArrowIpc),
-        };
-        match output {
-            None => {
-                sluice::export::write_in_with(&store, &version, format, &given, out)?;
-                out.flush()?;
-            }
-            Some(path) => super::write_file_atomically(path, |f| {
-                sluice::export::write_in_with(&store, &version, format, &given, f)?;
-                Ok(())
-            })?,
-        }
-        return Ok(0);
+    if let Some(why) = r.deliver {
+        sluice::delivery::check_reason(why)?;
     }
-    let hash = version.hash.parse().map_err(|e| {
+    let mut store = ctx.open_store()?;
+    let version = sluice::refs::resolve(&store.lineage, r.reference)?;
+    let agent = match r.deliver {
+        Some(_) => Some(ctx.agent(Some(&store))?),
+        None => None,
+    };
+    use sluice::columnar::write::OutFormat;
+    use sluice::export::{Format, TextFormat};
+    let format = r.format.map(|f| match f {
+        RetrieveFormat::Csv => Format::Text(TextFormat::Csv),
+        RetrieveFormat::Tsv => Format::Text(TextFormat::Tsv),
+        RetrieveFormat::Jsonl => Format::Text(TextFormat::Jsonl),
+        RetrieveFormat::Parquet => Format::Columnar(OutFormat::Parquet),
+        RetrieveFormat::Arrow => Format::Columnar(OutFormat::ArrowIpc),
+    });
+    let hash: sluice::hash::Hash = version.hash.parse().map_err(|e| {
         anyhow!(
             "the store holds a malformed hash for {}: {e}",
             version.label()
         )
     })?;
-    match output {
-        None => {
-            store.objects.copy_to(&hash, out)?;
-            out.flush()?;
+    // Writes the version in the asked form into `w`, then, when it is a delivery, records it
+    // with the hash of exactly the bytes written.
+    let deliver_into = |store: &mut sluice::store::Store,
+                        w: &mut dyn Write|
+     -> anyhow::Result<Option<sluice::delivery::Delivery>> {
+        let mut w = sluice::delivery::Tally::new(w, r.deliver.is_some());
+        match format {
+            Some(format) => sluice::export::write_in_with(store, &version, format, &given, &mut w)?,
+            None => {
+                store.objects.copy_to(&hash, &mut w)?;
+            }
         }
-        Some(path) => super::write_file_atomically(path, |f| {
-            store.objects.copy_to(&hash, f)?;
-            Ok(())
-        })?,
+        w.flush()?;
+        let (Some(why), Some(agent)) = (r.deliver, agent.as_ref()) else {
+            return Ok(None);
+        };
+        let (file_hash, bytes) = w.finish();
+        let file = r
+            .output
+            .map_or("-".to_string(), |p| p.display().to_string());
+        let form = r.format.map_or("stored bytes", RetrieveFormat::name);
+        let handover = sluice::delivery::Handover {
+            version: &version,
+            format: form,
+            column_types: r.column_types,
+            file: &file,
+            file_hash: &file_hash,
+            bytes,
+            why,
+        };
+        Ok(Some(sluice::delivery::record(store, &handover, agent)?))
+    };
+    let delivered = match r.output {
+        None => deliver_into(&mut store, out)?,
+        Some(path) => {
+            let mut d = None;
+            super::write_file_atomically(path, |f| {
+                d = deliver_into(&mut store, f)?;
+                Ok(())
+            })?;
+            d
+        }
+    };
+    if let Some(d) = delivered {
+        eprintln!(
+            "delivered {} as {} ({}, blake3:{}, {}): recorded as audit entry {}",
+            d.version,
+            d.file,
+            d.format,
+            &d.file_hash[..16.min(d.file_hash.len())],
+            plural(d.bytes, "byte", "bytes"),
+            d.audit_entry
+        );
     }
     Ok(0)
 }
@@ -383,6 +429,13 @@ pub fn about_text(out: &mut impl Write, d: &VersionDetail) -> io::Result<()> {
             s.at,
             s.fingerprint,
             s.status.describe()
+        )?;
+    }
+    for x in &d.deliveries {
+        writeln!(
+            out,
+            "  delivered    {} ({}) · {} · {} · {} (audit entry {})",
+            x.file, x.format, x.at, x.by, x.why, x.audit_entry
         )?;
     }
     for c in &d.checks {

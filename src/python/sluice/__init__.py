@@ -458,10 +458,14 @@ class Store:
             return table
         raise ValueError("library: expected \"pandas\", \"polars\" or \"arrow\"")
 
-    def write(self, reference, path, format="csv", types=None):
+    def write(self, reference, path, format="csv", types=None, deliver=None):
         """Writes a version's rows to ``path`` as ``retrieve --format`` does: csv, tsv, jsonl,
-        parquet or arrow; ``types`` as for ``arrow`` (parquet and arrow only)."""
-        _call("write_file", self.dir, reference, format, os.fspath(path), _types(types))
+        parquet or arrow; ``types`` as for ``arrow`` (parquet and arrow only). With
+        ``deliver`` (the reason: who receives the file and what for) the file is recorded as a
+        delivery, as ``retrieve --deliver`` does, and the record is returned (None otherwise)."""
+        out = _call("write_file", self.dir, reference, format, os.fspath(path), _types(types),
+                    deliver, self.person, self.email)
+        return None if out is None else Record(json.loads(out))
 
     def about(self, reference):
         """One version in full, as ``sluice about --json``: the version, its key, the step that

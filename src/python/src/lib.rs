@@ -286,15 +286,24 @@ fn read_ipc<'py>(
 /// Writes a version's rows to `path` in `format` (csv, tsv, jsonl, parquet, arrow), through a
 /// temporary file renamed into place when complete.
 #[pyfunction]
-#[pyo3(signature = (dir, reference, format, path, types=Vec::new()))]
+#[pyo3(signature = (dir, reference, format, path, types=Vec::new(), deliver=None, name=None, email=None))]
+#[allow(clippy::too_many_arguments)]
 fn write_file(
     dir: &str,
     reference: &str,
     format: &str,
     path: &str,
     types: Vec<(String, String)>,
-) -> PyResult<()> {
+    deliver: Option<&str>,
+    name: Option<&str>,
+    email: Option<&str>,
+) -> PyResult<Option<String>> {
+    let column_types: Vec<String> = types.iter().map(|(c, t)| format!("{c}={t}")).collect();
     let given = given_types(types)?;
+    let form = format.to_string();
+    if let Some(why) = deliver {
+        sluice::delivery::check_reason(why).map_err(raise)?;
+    }
     use sluice::columnar::write::OutFormat;
     use sluice::export::{Format, TextFormat};
     let format = match format {
@@ -310,21 +319,45 @@ fn write_file(
             )))
         }
     };
-    let store = open(dir)?;
+    let mut store = open(dir)?;
     let v = sluice::refs::resolve(&store.lineage, reference).map_err(raise)?;
     let target = Path::new(path);
     let tmp = target.with_extension("sluice-part");
     let io = |e: std::io::Error| raise(sluice::Error::io(target, e));
-    let mut f = std::io::BufWriter::new(std::fs::File::create(&tmp).map_err(io)?);
+    let file = std::io::BufWriter::new(std::fs::File::create(&tmp).map_err(io)?);
+    let mut f = sluice::delivery::Tally::new(file, deliver.is_some());
     let written = sluice::export::write_in_with(&store, &v, format, &given, &mut f)
         .map_err(raise)
         .and_then(|()| std::io::Write::flush(&mut f).map_err(io));
+    let (file_hash, bytes) = f.finish();
     drop(f);
-    if let Err(e) = written {
-        let _ = std::fs::remove_file(&tmp);
-        return Err(e);
-    }
-    std::fs::rename(&tmp, target).map_err(io)
+    let recorded = written.and_then(|()| match deliver {
+        None => Ok(None),
+        Some(why) => {
+            let who = agent(name.unwrap_or_default(), email);
+            let handover = sluice::delivery::Handover {
+                version: &v,
+                format: &form,
+                column_types: &column_types,
+                file: path,
+                file_hash: &file_hash,
+                bytes,
+                why,
+            };
+            sluice::delivery::record(&mut store, &handover, &who)
+                .map(Some)
+                .map_err(raise)
+        }
+    });
+    let recorded = match recorded {
+        Ok(r) => r,
+        Err(e) => {
+            let _ = std::fs::remove_file(&tmp);
+            return Err(e);
+        }
+    };
+    std::fs::rename(&tmp, target).map_err(io)?;
+    recorded.map(|d| to_json(&d)).transpose()
 }
 
 /// One version in full (`about`).

@@ -152,3 +152,22 @@ def test_the_report_holds_the_fields_of_its_json_form(twins):
     # The written form is sealed with its own hash and made at its own time; the rest agrees.
     py.pop("own_hash"), written.pop("own_hash")
     assert same_times(py, a) == same_times(written, a)
+
+
+def test_a_delivery_holds_the_commands_fields(twins):
+    """store.write(..., deliver=...) records what ``retrieve --deliver`` records: the record it
+    returns is the one `identify --json` and `about --json` show for the written file."""
+    store, a, _ = twins
+    store.receive(a / "repairs.csv", as_="repairs", why="weekly export")
+    target = a / "for_the_treasurer.parquet"
+    py = store.write("repairs", target, format="parquet", types={"labour": "decimal(6,2)"},
+                     deliver="labour lines for the treasurer")
+    found = command(a, "identify", str(target))
+    assert found["deliveries"] == [py]
+    assert command(a, "about", "repairs")["deliveries"] == [py]
+    assert py["format"] == "parquet" and py["column_types"] == ["labour=decimal(6,2)"]
+    assert py["bytes"] == target.stat().st_size
+    assert py["by"] == "%s (%s)" % (PERSON, EMAIL)
+    with pytest.raises(sluice.InputError):
+        store.write("repairs", a / "nobody.csv", deliver=" ")
+    assert not (a / "nobody.csv").exists()
