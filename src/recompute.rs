@@ -258,15 +258,13 @@ pub fn check_recipe(store: &Store, v: &Version) -> Result<()> {
 pub type ComputedRow = (i64, u64, Vec<String>);
 
 /// Whether `op` computes each output row from its input row alone (and the step's own
-/// parameters), so that one row of its output can be computed without the rest: the cell,
-/// row-choosing and shape operations, except those that read a table (map, lookup) or look
-/// ahead (`dedupe` keeping the last row), and never the table operations.
+/// parameters, and for `map` and `lookup` the table it recorded), so that one row of its
+/// output can be computed without the rest: the cell, row-choosing and shape operations,
+/// except `dedupe` keeping the last row (it looks ahead), and never the table operations.
 fn row_local(op: &Operation) -> bool {
     !matches!(
         op,
-        Operation::Map { .. }
-            | Operation::Lookup { .. }
-            | Operation::Append { .. }
+        Operation::Append { .. }
             | Operation::Summarize { .. }
             | Operation::Sort { .. }
             | Operation::Dedupe {
@@ -280,8 +278,9 @@ fn row_local(op: &Operation) -> bool {
 /// followed back through each step's row map to the nearest version whose bytes are stored,
 /// read there with `read` (by offset), and carried forward through each step's per-record
 /// transform. A row a step kept goes through it unchanged by its choosing (`keep`, `drop`,
-/// `dedupe` keeping the first), so one row is enough. `Ok(None)` when a step on the way is
-/// not row-local ([`row_local`]): the caller then reads the version whole. A loop over the
+/// `dedupe` keeping the first), so one row is enough; a `map` or `lookup` reads the table it
+/// recorded (by hash), not the version it changed. `Ok(None)` when a step on the way is not
+/// row-local ([`row_local`]): the caller then reads the version whole. A loop over the
 /// chain, never recursion. Returns every row computed on the way, as (version id, row,
 /// fields), `v`'s last, so that a trail walking back through the same chain reads none of
 /// them again.
@@ -295,16 +294,11 @@ pub fn one_row(
     let (mut cur, mut r) = (v.clone(), row);
     while !store.bytes_stored(&cur)? {
         let step = recipe_step(store, &cur)?;
-        let Ok(op) = serde_json::from_value::<Operation>(step.params.clone()) else {
-            return Ok(None);
-        };
+        // The operation with its table named by the exact version the step read.
+        let (main, op) = recorded_operation(store, &step)?;
         if !row_local(&op) {
             return Ok(None);
         }
-        let inputs = store.lineage.step_input_versions(step.id)?;
-        let Some((_, main)) = inputs.into_iter().find(|(role, _)| role == "input") else {
-            return Ok(None);
-        };
         let runs = crate::provenance::row_runs(store, &cur, main.id)?;
         let Some(in_row) = crate::model::input_of(&runs, r) else {
             return Err(ErrorKind::Inconsistent(format!(
@@ -336,7 +330,8 @@ pub fn one_row(
         if k + 1 < chain.len() {
             computed.push((input.id, *in_row, texts(&current)));
         }
-        let mut step = crate::ops::rowwise::RowStep::new(store, input, op, None, None)?;
+        let (mapper, looker) = apply::recorded_table(store, input, op)?;
+        let mut step = crate::ops::rowwise::RowStep::new(store, input, op, mapper, looker)?;
         let mut out = crate::ops::rowwise::OwnedRow::default();
         if !step.row(*in_row, &current.record(*in_row), &mut out)? {
             return Err(ErrorKind::Inconsistent(format!(

@@ -708,6 +708,30 @@ enum TableSource<'a> {
 }
 
 /// Reads a mapping or lookup table whole.
+/// The table a recorded `map` or `lookup` step read (named in `op` by its version's hash),
+/// ready for a [`RowStep`] on `input`: for computing one row of its output again (a trail
+/// through a recomputable version) without computing the whole version. `(None, None)` for
+/// other operations.
+pub fn recorded_table(
+    store: &Store,
+    input: &Version,
+    op: &Operation,
+) -> Result<(Option<Mapper>, Option<Looker>)> {
+    let table = match op {
+        Operation::Map { table, .. } | Operation::Lookup { table, .. } => {
+            load_table(store, table, None)?
+        }
+        _ => return Ok((None, None)),
+    };
+    Ok(match op {
+        Operation::Map { .. } => (Mapper::from_table(op, table)?, None),
+        _ => (
+            None,
+            Looker::from_table(op, &input.header, &input.label(), table)?,
+        ),
+    })
+}
+
 fn load_table(store: &Store, reference: &str, source: Option<TableSource<'_>>) -> Result<Table> {
     let source = match source {
         Some(s) => s,
