@@ -61,6 +61,11 @@ pub enum Command {
     Setup {
         /// The project folder (default: the working directory)
         dir: Option<PathBuf>,
+        /// Keep the lineage on this PostgreSQL server (a connection string such as
+        /// `host=db.example port=5432 dbname=lineage user=ada`, without a password: that stays
+        /// in ~/.pgpass, PGPASSFILE or PGPASSWORD)
+        #[arg(long, value_name = "CONN")]
+        lineage_server: Option<String>,
     },
 
     /// Record a file as a new version of a dataset
@@ -573,6 +578,9 @@ pub enum Command {
     Demo {
         /// Where to create it (default: a new folder sluice-demo… in the working directory)
         dir: Option<PathBuf>,
+        /// Keep the demo store's lineage on this PostgreSQL server (as `setup --lineage-server`)
+        #[arg(long, value_name = "CONN")]
+        lineage_server: Option<String>,
     },
 
     /// Print the tab-completion script for a shell (bash, zsh or fish)
