@@ -189,6 +189,7 @@ const LAYERS: &[(&str, &[&str])] = &[
             "graph",
             "replay",
             "verify",
+            "sharing",
             "export",
             "revert",
             "columnar::write",

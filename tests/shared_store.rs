@@ -168,3 +168,321 @@ fn eight_concurrent_writers_lose_and_duplicate_nothing() {
     let verified = s.ok(&["verify"]);
     assert!(verified.starts_with("intact:"), "{verified}");
 }
+
+/// Counts on the server, with psql: (audit entries, steps).
+fn server_counts(server: &pg::Server, db: &str) -> (u64, u64) {
+    let out = server.admin_sql(
+        db,
+        "SELECT (SELECT count(*) FROM audit_log), (SELECT count(*) FROM steps)",
+    );
+    let mut it = out.trim().split('|').map(|n| n.parse::<u64>().unwrap());
+    (it.next().unwrap(), it.next().unwrap())
+}
+
+/// A local store published into a new shared store, borrowed into two working copies, each
+/// recording on its own: the first publishes back, the second is refused with the entry where
+/// the two histories part named, and the shared store is as the first left it. Every copy
+/// verifies intact and gives back the same bytes.
+#[test]
+fn publish_and_borrow_name_a_shared_store_that_moved_on() {
+    let server = pg::server();
+    let conn = server.new_database("moving_between");
+    let s = Sandbox::new();
+    s.ok(&["demo", "local"]);
+    let published = s.ok(&[
+        "--store",
+        "local",
+        "publish",
+        "--to",
+        "shared",
+        "--lineage-server",
+        &conn,
+    ]);
+    assert!(published.contains("published to"), "{published}");
+    let (entries, steps) = server_counts(server, "moving_between");
+    assert!(entries > 20 && steps > 20, "{entries} {steps}");
+    assert!(s
+        .ok(&["--store", "shared", "verify"])
+        .starts_with("intact:"));
+    s.ok(&["borrow", "shared", "--into", "first"]);
+    s.ok(&["borrow", "shared", "--into", "second"]);
+    assert!(
+        s.path().join("first/sluice-store/lineage.db").is_file(),
+        "a working copy keeps its lineage in its folder"
+    );
+    let raw = s.ok(&["--store", "local", "retrieve", "quillby_orders:v1"]);
+    assert_eq!(
+        s.ok(&["--store", "second", "retrieve", "quillby_orders:v1"]),
+        raw
+    );
+    for who in ["first", "second"] {
+        s.file(
+            &format!("{who}/late.csv"),
+            format!("order_id,note\nL-1,late export read by {who}\n"),
+        );
+        s.ok(&[
+            "--store",
+            who,
+            "receive",
+            &format!("{who}/late.csv"),
+            "--as",
+            "late_orders",
+            "--why",
+            "a late export",
+        ]);
+    }
+    s.ok(&["--store", "first", "publish", "--to", "shared"]);
+    assert_eq!(
+        server_counts(server, "moving_between"),
+        (entries + 1, steps + 1)
+    );
+    let refused = s.run(&["--store", "second", "publish", "--to", "shared"]);
+    assert_eq!(refused.code, 1, "{}", refused.stderr);
+    assert!(
+        refused
+            .stderr
+            .contains(&format!("part at audit entry {}", entries + 1)),
+        "{}",
+        refused.stderr
+    );
+    assert!(
+        refused.stderr.contains("nothing was copied"),
+        "{}",
+        refused.stderr
+    );
+    assert_eq!(
+        server_counts(server, "moving_between"),
+        (entries + 1, steps + 1)
+    );
+    // The local store that was never borrowed is behind the shared one: refused too.
+    let behind = s.run(&["--store", "local", "publish", "--to", "shared"]);
+    assert_eq!(behind.code, 1, "{}", behind.stderr);
+    assert!(behind.stderr.contains("moved on"), "{}", behind.stderr);
+    assert_eq!(
+        s.ok(&["--store", "shared", "retrieve", "late_orders"]),
+        "order_id,note\nL-1,late export read by first\n"
+    );
+    for dir in ["shared", "first", "second"] {
+        let v = s.ok(&["--store", dir, "verify"]);
+        assert!(v.starts_with("intact:"), "{dir}: {v}");
+    }
+}
+
+/// A publish killed at moments spread over its whole run leaves the shared store with either
+/// all of the published history or none of it (counted on the server), and verifying intact;
+/// a publish after the kills completes it.
+#[test]
+fn a_killed_publish_leaves_the_shared_store_as_it_was() {
+    let server = pg::server();
+    let conn = server.new_database("killed_publish");
+    let s = Sandbox::new();
+    s.ok(&["demo", "local"]);
+    s.ok(&[
+        "--store",
+        "local",
+        "publish",
+        "--to",
+        "shared",
+        "--lineage-server",
+        &conn,
+    ]);
+    let before = server_counts(server, "killed_publish");
+    for i in 0..4 {
+        s.file(
+            &format!("more{i}.csv"),
+            format!("order_id,parts_cost\nM-{i},{}.50\n", 10 + i),
+        );
+        s.ok(&[
+            "--store",
+            "local",
+            "receive",
+            &format!("more{i}.csv"),
+            "--as",
+            "more_orders",
+            "--why",
+            "another export",
+        ]);
+    }
+    let after = (before.0 + 4, before.1 + 4);
+    // How long an unkilled publish takes, measured on a copy of the shared store's server
+    // side would need a second database; time one into a scratch database instead.
+    let scratch = server.new_database("killed_publish_timing");
+    let started = std::time::Instant::now();
+    s.ok(&[
+        "--store",
+        "local",
+        "publish",
+        "--to",
+        "timing",
+        "--lineage-server",
+        &scratch,
+    ]);
+    let full = started.elapsed();
+    let mut killed = 0;
+    for k in 1..=8u32 {
+        let child = s
+            .command(&["--store", "local", "publish", "--to", "shared"])
+            .stdout(std::process::Stdio::null())
+            .stderr(std::process::Stdio::null())
+            .spawn()
+            .unwrap();
+        if kill_after(child, full * k / 8) {
+            killed += 1;
+        }
+        let now = server_counts(server, "killed_publish");
+        assert!(
+            now == before || now == after,
+            "after a kill at {k}/8 of a publish the server holds {now:?}: neither {before:?} nor {after:?}"
+        );
+        if now == after {
+            break;
+        }
+    }
+    assert!(killed > 0, "no publish was still running when killed");
+    s.ok(&["--store", "local", "publish", "--to", "shared"]);
+    assert_eq!(server_counts(server, "killed_publish"), after);
+    let v = s.ok(&["--store", "shared", "verify"]);
+    assert!(v.starts_with("intact:"), "{v}");
+}
+
+/// Kills `child` with SIGKILL after `delay`; whether it was still running then.
+fn kill_after(mut child: std::process::Child, delay: std::time::Duration) -> bool {
+    let until = std::time::Instant::now() + delay;
+    while std::time::Instant::now() < until {
+        if child.try_wait().unwrap().is_some() {
+            return false;
+        }
+        std::thread::sleep(std::time::Duration::from_millis(2));
+    }
+    let _ = child.kill();
+    child.wait().unwrap().code().is_none()
+}
+
+/// The four roles, each refused at the server what it may not do (psql as a login of that
+/// role, so no sluice code is between the role and the server), the audit log append-only for
+/// every role and for the tables' owner, and a sluice whose login only reads refused when it
+/// records, leaving the store as it was.
+#[test]
+fn each_role_is_refused_at_the_server_what_it_may_not_do() {
+    let server = pg::server();
+    let conn = server.new_database("roles_enforced");
+    let s = Sandbox::new();
+    s.ok(&["setup", "--lineage-server", &conn]);
+    s.file("orders.csv", "order_id,parts_cost\nA-1,12.50\n");
+    s.ok(&[
+        "receive",
+        "orders.csv",
+        "--as",
+        "orders",
+        "--why",
+        "first export",
+    ]);
+    let set_up = s.ok(&["roles", "--set-up"]);
+    assert!(set_up.contains("sluice_recording"), "{set_up}");
+    for (login, role) in [
+        ("rowan_reads", "reading"),
+        ("rhea_records", "recording"),
+        ("sana_signs", "signing"),
+        ("ada_administers", "administering"),
+    ] {
+        server.add_login(login);
+        s.ok(&["roles", "--give", role, "--to", login]);
+        let of = s.ok(&["roles", "--of", login]);
+        assert!(of.contains(role), "{of}");
+    }
+    let db = "roles_enforced";
+    let refused = |login: &str, sql: &str, why: &str| {
+        let (ok, out) = server.psql(login, db, sql);
+        assert!(!ok, "{login} was allowed: {sql}\n{out}");
+        assert!(out.contains(why), "{login}: {sql}\n{out}");
+    };
+    let allowed = |login: &str, sql: &str| {
+        let (ok, out) = server.psql(login, db, sql);
+        assert!(ok, "{login} was refused: {sql}\n{out}");
+    };
+    let endorsement = |kind: &str| {
+        format!(
+            "BEGIN; INSERT INTO endorsements (id, kind, subject, label, meaning, name, signed_at,
+                fingerprint, public_key, statement, signature)
+             VALUES (1000, '{kind}', 's', 'l', 'approved', 'n', 't', 'f', 'k', 's', 'g'); ROLLBACK"
+        )
+    };
+    let denied = "permission denied";
+    // Reading: reads, and nothing else.
+    allowed("rowan_reads", "SELECT count(*) FROM steps");
+    refused(
+        "rowan_reads",
+        "INSERT INTO datasets (id, name, created_at) VALUES (100, 'x', 't')",
+        denied,
+    );
+    refused(
+        "rowan_reads",
+        "UPDATE versions SET storage = 'kept'",
+        denied,
+    );
+    // Recording: records steps, signs nothing, changes no audit entry.
+    allowed(
+        "rhea_records",
+        "BEGIN; UPDATE versions SET storage = 'kept' WHERE id = 1; ROLLBACK",
+    );
+    refused("rhea_records", &endorsement("version"), denied);
+    refused("rhea_records", "UPDATE versions SET n_rows = 0", denied);
+    refused("rhea_records", "DELETE FROM steps", denied);
+    // Signing: signs versions, reports and the audit head; admits no key.
+    allowed("sana_signs", &endorsement("version"));
+    refused(
+        "sana_signs",
+        &endorsement("admission"),
+        "row-level security",
+    );
+    refused(
+        "sana_signs",
+        "INSERT INTO datasets (id, name, created_at) VALUES (100, 'x', 't')",
+        denied,
+    );
+    // Administering: admits and retires keys; signs no version.
+    allowed("ada_administers", &endorsement("admission"));
+    refused(
+        "ada_administers",
+        &endorsement("approved_version_by_admin"),
+        "violates",
+    );
+    refused(
+        "ada_administers",
+        &endorsement("version"),
+        "row-level security",
+    );
+    // The audit log: no role may change or remove an entry ...
+    for login in [
+        "rowan_reads",
+        "rhea_records",
+        "sana_signs",
+        "ada_administers",
+    ] {
+        refused(login, "UPDATE audit_log SET agent = 'someone else'", denied);
+        refused(login, "DELETE FROM audit_log", denied);
+        refused(login, "TRUNCATE audit_log", denied);
+    }
+    // ... and neither may the tables' owner: the trigger refuses it.
+    for sql in [
+        "UPDATE audit_log SET agent = 'someone else'",
+        "DELETE FROM audit_log WHERE seq = 1",
+        "TRUNCATE audit_log",
+    ] {
+        refused(pg::SUPERUSER, sql, "append-only");
+    }
+    // Through sluice: a login that only reads can look but not record.
+    let (entries, steps) = server_counts(server, db);
+    let reader = Sandbox::new();
+    reader.file(
+        "sluice-store/location.json",
+        serde_json::json!({ "lineage": server.connection(db, "rowan_reads") }).to_string(),
+    );
+    assert!(reader.ok(&["timeline"]).contains("orders:v1"));
+    reader.file("orders2.csv", "order_id,parts_cost\nA-2,3.00\n");
+    let r = reader.run(&["receive", "orders2.csv", "--as", "orders", "--why", "more"]);
+    assert_eq!(r.code, 1, "{}", r.stderr);
+    assert!(r.stderr.contains("permission denied"), "{}", r.stderr);
+    assert_eq!(server_counts(server, db), (entries, steps));
+    assert!(s.ok(&["verify"]).starts_with("intact:"));
+}

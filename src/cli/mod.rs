@@ -15,6 +15,7 @@ pub mod erase;
 pub mod query;
 pub mod record;
 pub mod reproduce;
+pub mod shared;
 pub mod shell;
 pub mod storage;
 pub mod term;
@@ -184,6 +185,23 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             endorsement,
         } => query::verify(&ctx, *deep, endorsement, *json, out),
         Command::Reclaim { json } => admin::reclaim(&ctx, *json, out),
+        Command::Publish { to, lineage_server } => {
+            shared::publish(&ctx, to, lineage_server.as_deref(), out)
+        }
+        Command::Borrow { from, into } => shared::borrow(&ctx, from, into.as_deref(), out),
+        Command::Roles {
+            set_up,
+            give,
+            to,
+            of,
+        } => shared::roles(
+            &ctx,
+            *set_up,
+            give.as_deref(),
+            to.as_deref(),
+            of.as_deref(),
+            out,
+        ),
         Command::Retain { references, json } => {
             storage::retain(&ctx, references, Storage::Kept, *json, out)
         }

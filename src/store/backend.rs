@@ -117,6 +117,8 @@ pub trait Database: Send {
     fn query(&self, sql: &str, params: &[Value]) -> Result<Vec<Row>>;
     /// Like [`Database::query`], with the result's column names.
     fn query_named(&self, sql: &str, params: &[Value]) -> Result<(Vec<String>, Vec<Row>)>;
+    /// Runs several statements without parameters (a migration, the roles' setup).
+    fn batch(&self, sql: &str) -> Result<()>;
     /// Runs a statement; returns how many rows it changed.
     fn execute(&self, sql: &str, params: &[Value]) -> Result<u64>;
     /// Starts the write transaction of one command. Writers are put in one order: once this
@@ -146,22 +148,23 @@ pub trait Database: Send {
 
 /// The lineage tables in the order a copy fills them (each after the tables it refers to), with
 /// their columns; the copy between backends ([`super::lineage::Lineage::copy_into`]) reads and
-/// writes exactly these.
+/// writes exactly these. A row the target already holds (a copy into a store that has an
+/// earlier part of the same history) is left as it is: the copy checked that it is the same.
 pub const COPY_ORDER: &[(&str, &str, &str)] = &[
     (
         "objects",
         "SELECT hash, n_bytes, kind, created_at FROM objects ORDER BY hash",
-        "INSERT INTO objects (hash, n_bytes, kind, created_at) VALUES (?1, ?2, ?3, ?4)",
+        "INSERT INTO objects (hash, n_bytes, kind, created_at) VALUES (?1, ?2, ?3, ?4) ON CONFLICT DO NOTHING",
     ),
     (
         "agents",
         "SELECT id, identity, kind, source FROM agents ORDER BY id",
-        "INSERT INTO agents (id, identity, kind, source) VALUES (?1, ?2, ?3, ?4)",
+        "INSERT INTO agents (id, identity, kind, source) VALUES (?1, ?2, ?3, ?4) ON CONFLICT DO NOTHING",
     ),
     (
         "datasets",
         "SELECT id, name, key_columns, created_at FROM datasets ORDER BY id",
-        "INSERT INTO datasets (id, name, key_columns, created_at) VALUES (?1, ?2, ?3, ?4)",
+        "INSERT INTO datasets (id, name, key_columns, created_at) VALUES (?1, ?2, ?3, ?4) ON CONFLICT DO NOTHING",
     ),
     (
         "steps",
@@ -171,7 +174,7 @@ pub const COPY_ORDER: &[(&str, &str, &str)] = &[
         "INSERT INTO steps (id, kind, operation, params, agent_id, tool_version, reason, started_at,
                 ended_at, rows_in, rows_out, lineage, source, code, repeats_step, reverts_step,
                 provenance)
-         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17)",
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17) ON CONFLICT DO NOTHING",
     ),
     (
         "versions",
@@ -180,7 +183,7 @@ pub const COPY_ORDER: &[(&str, &str, &str)] = &[
          FROM versions ORDER BY id",
         "INSERT INTO versions (id, dataset_id, seq, hash, row_index, step_id, n_rows, n_cols,
                 n_bytes, header, dialect, null_tokens, created_at, storage)
-         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14)",
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14) ON CONFLICT DO NOTHING",
     ),
     (
         "column_profiles",
@@ -189,40 +192,40 @@ pub const COPY_ORDER: &[(&str, &str, &str)] = &[
          FROM column_profiles ORDER BY version_id, col_idx",
         "INSERT INTO column_profiles (version_id, col_idx, name, inferred_type, n_blank,
                 n_distinct, distinct_exact, min_value, max_value, min_len, max_len)
-         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11)",
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11) ON CONFLICT DO NOTHING",
     ),
     (
         "step_inputs",
         "SELECT step_id, position, version_id, role FROM step_inputs ORDER BY step_id, position",
-        "INSERT INTO step_inputs (step_id, position, version_id, role) VALUES (?1, ?2, ?3, ?4)",
+        "INSERT INTO step_inputs (step_id, position, version_id, role) VALUES (?1, ?2, ?3, ?4) ON CONFLICT DO NOTHING",
     ),
     (
         "row_runs",
         "SELECT step_id, output_id, input_id, out_start, in_start, len FROM row_runs
          ORDER BY output_id, out_start",
         "INSERT INTO row_runs (step_id, output_id, input_id, out_start, in_start, len)
-         VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6) ON CONFLICT DO NOTHING",
     ),
     (
         "cell_changes",
         "SELECT step_id, output_id, row_idx, column_name, old_value, new_value FROM cell_changes
          ORDER BY output_id, row_idx, column_name",
         "INSERT INTO cell_changes (step_id, output_id, row_idx, column_name, old_value, new_value)
-         VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6) ON CONFLICT DO NOTHING",
     ),
     (
         "drops",
         "SELECT step_id, input_id, row_idx, reason, duplicate_of FROM drops
          ORDER BY step_id, input_id, row_idx",
         "INSERT INTO drops (step_id, input_id, row_idx, reason, duplicate_of)
-         VALUES (?1, ?2, ?3, ?4, ?5)",
+         VALUES (?1, ?2, ?3, ?4, ?5) ON CONFLICT DO NOTHING",
     ),
     (
         "column_sources",
         "SELECT step_id, output_id, output_column, input_id, input_column FROM column_sources
          ORDER BY output_id, output_column, input_id, input_column",
         "INSERT INTO column_sources (step_id, output_id, output_column, input_id, input_column)
-         VALUES (?1, ?2, ?3, ?4, ?5)",
+         VALUES (?1, ?2, ?3, ?4, ?5) ON CONFLICT DO NOTHING",
     ),
     (
         "check_results",
@@ -230,14 +233,14 @@ pub const COPY_ORDER: &[(&str, &str, &str)] = &[
          FROM check_results ORDER BY id",
         "INSERT INTO check_results (id, version_id, rule, passed, n_failing, first_failing,
                 agent_id, checked_at, gate)
-         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9)",
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9) ON CONFLICT DO NOTHING",
     ),
     (
         "cell_notes",
         "SELECT step_id, output_id, row_idx, column_name, note FROM cell_notes
          ORDER BY output_id, row_idx, column_name",
         "INSERT INTO cell_notes (step_id, output_id, row_idx, column_name, note)
-         VALUES (?1, ?2, ?3, ?4, ?5)",
+         VALUES (?1, ?2, ?3, ?4, ?5) ON CONFLICT DO NOTHING",
     ),
     (
         "endorsements",
@@ -246,18 +249,36 @@ pub const COPY_ORDER: &[(&str, &str, &str)] = &[
          FROM endorsements ORDER BY id",
         "INSERT INTO endorsements (id, kind, subject, label, meaning, name, signed_at,
                 fingerprint, public_key, admitted_key, statement, signature)
-         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12)",
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12) ON CONFLICT DO NOTHING",
     ),
     (
         "meanings",
         "SELECT id, word, description, declared_at FROM meanings ORDER BY id",
-        "INSERT INTO meanings (id, word, description, declared_at) VALUES (?1, ?2, ?3, ?4)",
+        "INSERT INTO meanings (id, word, description, declared_at) VALUES (?1, ?2, ?3, ?4) ON CONFLICT DO NOTHING",
     ),
     (
         "audit_log",
         "SELECT seq, at, agent, action, subject, details, prev_hash, hash FROM audit_log
          ORDER BY seq",
         "INSERT INTO audit_log (seq, at, agent, action, subject, details, prev_hash, hash)
-         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8)",
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8) ON CONFLICT DO NOTHING",
+    ),
+];
+
+/// The columns a later step changes on an earlier row (a withdrawal marks the step it takes
+/// out, intake declares a dataset's key, storage commands set a version's storage): a copy into
+/// a store that holds an earlier part of the same history sets them as the source has them.
+pub const COPY_CHANGES: &[(&str, &str)] = &[
+    (
+        "SELECT id, reverts_step FROM steps WHERE reverts_step IS NOT NULL ORDER BY id",
+        "UPDATE steps SET reverts_step = ?2 WHERE id = ?1",
+    ),
+    (
+        "SELECT id, key_columns FROM datasets ORDER BY id",
+        "UPDATE datasets SET key_columns = ?2 WHERE id = ?1",
+    ),
+    (
+        "SELECT id, storage FROM versions ORDER BY id",
+        "UPDATE versions SET storage = ?2 WHERE id = ?1",
     ),
 ];

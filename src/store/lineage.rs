@@ -70,35 +70,86 @@ impl Lineage {
         self.db.describe()
     }
 
+    /// Runs several statements without parameters (the roles' setup), in one transaction.
+    pub(super) fn run_script(&self, sql: &str) -> Result<()> {
+        self.in_transaction(&|db| db.batch(sql))
+    }
+
+    /// Runs `f` on the backend in one write transaction (the store's own work that records
+    /// nothing in the lineage, such as the roles).
+    pub(super) fn in_transaction(&self, f: &dyn Fn(&dyn Database) -> Result<()>) -> Result<()> {
+        self.db.begin_write()?;
+        match f(self.db.as_ref()) {
+            Ok(()) => self.db.commit(),
+            Err(e) => {
+                let _ = self.db.rollback();
+                Err(e)
+            }
+        }
+    }
+
+    /// Runs one query of the store's own (the roles') and returns its rows.
+    pub(super) fn query_raw(&self, sql: &str, p: &[backend::Value]) -> Result<Vec<Row>> {
+        self.db.query(sql, p)
+    }
+
     /// Writes a copy of the lineage as it is now (one snapshot) to the new SQLite file `path`.
     pub fn copy_to(&self, path: &Path) -> Result<()> {
         if self.db.copy_file(path)? {
             return Ok(());
         }
         let target = Lineage::create(path)?;
-        self.copy_into(&target)
+        self.copy_into(&target).map(|_| ())
     }
 
-    /// Copies every row of this lineage into `target`, which must be empty, in one write
-    /// transaction there and one snapshot here: a failure (or a kill) leaves `target` as it
-    /// was. Rows keep their ids and values, so the audit chain's row commitments hold there.
-    pub fn copy_into(&self, target: &Lineage) -> Result<()> {
+    /// Why a copy into `target` would be refused, if it would: [`Lineage::copy_into`]'s check,
+    /// made before anything else is copied (the copy checks again in its transaction).
+    pub fn copy_refused(&self, target: &Lineage) -> Result<Option<String>> {
+        let ours = self.audit_entries()?;
+        let theirs = target.audit_entries()?;
+        Ok(moved_on(
+            &ours,
+            &theirs,
+            &self.describe(),
+            &target.describe(),
+        ))
+    }
+
+    /// Copies this lineage into `target`, in one snapshot here and one write transaction
+    /// there (so a failure or a kill leaves `target` as it was), when `target` holds nothing
+    /// or an earlier part of the same history: its audit chain is a beginning of this one,
+    /// entry for entry. Rows keep their ids and values, so the chain's row commitments hold
+    /// there. A `target` whose chain is not a beginning of this one (it moved on, or it is
+    /// another history) is named ([`ErrorKind::MovedOn`]) and nothing is written.
+    pub fn copy_into(&self, target: &Lineage) -> Result<Copied> {
         self.snapshot(|| {
+            let ours = self.audit_entries()?;
             target.write(|tx| {
-                let present = tx.db.query("SELECT count(*) FROM audit_log", &[])?;
-                if present.first().map_or(Ok(0), |r| r.int(0))? != 0 {
-                    return Err(ErrorKind::Usage(format!(
-                        "{} already holds a lineage; a copy goes only into an empty one",
-                        tx.db.describe()
-                    ))
-                    .into());
+                let theirs = super::audit::entries(tx.db)?;
+                if let Some(problem) = moved_on(&ours, &theirs, &self.describe(), &tx.db.describe())
+                {
+                    return Err(ErrorKind::MovedOn(problem).into());
+                }
+                if theirs.len() == ours.len() {
+                    return Ok(Copied {
+                        entries_before: theirs.len() as u64,
+                        entries_copied: 0,
+                    });
                 }
                 for (_, select, insert) in backend::COPY_ORDER {
                     for row in self.db.query(select, &[])? {
                         tx.db.execute(insert, &row.0)?;
                     }
                 }
-                Ok(())
+                for (select, update) in backend::COPY_CHANGES {
+                    for row in self.db.query(select, &[])? {
+                        tx.db.execute(update, &row.0)?;
+                    }
+                }
+                Ok(Copied {
+                    entries_before: theirs.len() as u64,
+                    entries_copied: (ours.len() - theirs.len()) as u64,
+                })
             })
         })
     }
@@ -613,6 +664,59 @@ macro_rules! version_query {
             $tail
         )
     };
+}
+
+/// What [`Lineage::copy_into`] did: the audit entries the target held, and how many it gained.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Copied {
+    pub entries_before: u64,
+    pub entries_copied: u64,
+}
+
+/// Why `theirs` (the target's chain) is not a beginning of `ours`, if it is not: the first
+/// entry where they part, named in full.
+fn moved_on(ours: &[AuditEntry], theirs: &[AuditEntry], from: &str, to: &str) -> Option<String> {
+    let describe = |e: &AuditEntry| {
+        format!(
+            "audit entry {} ({} {} by {} at {}, {})",
+            e.seq,
+            e.action,
+            e.subject,
+            e.agent,
+            e.at,
+            crate::model::short_hash(&e.hash)
+        )
+    };
+    for (i, t) in theirs.iter().enumerate() {
+        match ours.get(i) {
+            Some(o) if o.hash == t.hash => continue,
+            Some(o) if i == 0 => {
+                return Some(format!(
+                    "{to} and {from} are different stores: their first audit entries differ (there {}, here {}); nothing was copied. Copy a store only into a new shared store (`sluice publish --to DIR --lineage-server CONN`) or into the one it was borrowed from",
+                    describe(t),
+                    describe(o)
+                ))
+            }
+            Some(o) => {
+                return Some(format!(
+                    "{to} and {from} part at audit entry {}: there it is {}, here {}; nothing was copied. The histories differ from that entry on and are never merged: take a fresh copy of {to} into a new folder, redo the work after entry {} there, then copy it",
+                    t.seq,
+                    describe(t),
+                    describe(o),
+                    t.seq.saturating_sub(1)
+                ))
+            }
+            None => {
+                return Some(format!(
+                    "{to} moved on: it holds {} audit entries, this store {}, and its {} is not here; nothing was copied. Take a fresh copy of {to} into a new folder, redo the work there, then copy it",
+                    theirs.len(),
+                    ours.len(),
+                    describe(t)
+                ))
+            }
+        }
+    }
+    None
 }
 
 const VERSIONS_OF: &str = version_query!("WHERE d.name = ?1 ORDER BY v.seq");

@@ -16,6 +16,7 @@ pub mod location;
 pub mod objects;
 pub mod pg;
 pub mod reclaim;
+pub mod roles;
 pub mod rows;
 pub mod segments;
 pub mod sqlite;

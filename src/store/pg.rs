@@ -257,18 +257,6 @@ impl Pg {
             .insert(sql.to_string(), st.clone());
         Ok(st)
     }
-
-    fn batch(&self, sql: &str) -> Result<()> {
-        self.client
-            .borrow_mut()
-            .batch_execute(sql)
-            .map_err(server_err)
-    }
-
-    /// Runs `sql` (several statements, no parameters) as it is: the roles' setup.
-    pub fn run_script(&self, sql: &str) -> Result<()> {
-        self.batch(sql)
-    }
 }
 
 fn refs(params: &[Value]) -> Vec<&(dyn ToSql + Sync)> {
@@ -305,6 +293,13 @@ impl Database for Pg {
             out.push(Row(row));
         }
         Ok((names, out))
+    }
+
+    fn batch(&self, sql: &str) -> Result<()> {
+        self.client
+            .borrow_mut()
+            .batch_execute(sql)
+            .map_err(server_err)
     }
 
     fn execute(&self, sql: &str, params: &[Value]) -> Result<u64> {

@@ -157,6 +157,10 @@ impl Database for Sqlite {
         Ok((names, rows))
     }
 
+    fn batch(&self, sql: &str) -> Result<()> {
+        self.conn.execute_batch(sql).map_err(db_err)
+    }
+
     fn execute(&self, sql: &str, params: &[Value]) -> Result<u64> {
         let mut st = self.conn.prepare_cached(sql).map_err(db_err)?;
         let bound: Vec<rusqlite::types::Value> = params.iter().map(bind).collect();
