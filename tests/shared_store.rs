@@ -486,3 +486,68 @@ fn each_role_is_refused_at_the_server_what_it_may_not_do() {
     assert_eq!(server_counts(server, db), (entries, steps));
     assert!(s.ok(&["verify"]).starts_with("intact:"));
 }
+
+/// `service=NAME` is looked up in the connection service file (PGSERVICEFILE), whose
+/// password is used and never written into the store; the password file is left empty here,
+/// so the login can only have come from the service file.
+#[test]
+fn a_service_file_names_the_server_and_holds_the_password() {
+    let server = pg::server();
+    server.new_database("by_service");
+    let s = Sandbox::new();
+    let services = s.file(
+        "pg_service.conf",
+        format!(
+            "# the team's servers\n[three_rivers_lineage]\nhost=127.0.0.1\nport={}\ndbname=by_service\nuser={}\npassword={}\n",
+            server.port,
+            pg::SUPERUSER,
+            pg::PASSWORD
+        ),
+    );
+    let empty = s.file("empty_pgpass", "");
+    let run = |args: &[&str]| {
+        let out = s
+            .command(args)
+            .env("PGSERVICEFILE", &services)
+            .env("PGPASSFILE", &empty)
+            .output()
+            .unwrap();
+        assert!(
+            out.status.success(),
+            "{args:?}: {}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        String::from_utf8_lossy(&out.stdout).into_owned()
+    };
+    run(&["setup", "--lineage-server", "service=three_rivers_lineage"]);
+    let location = std::fs::read_to_string(s.path().join("sluice-store/location.json")).unwrap();
+    assert!(
+        location.contains("service=three_rivers_lineage"),
+        "{location}"
+    );
+    assert!(!location.contains(pg::PASSWORD), "{location}");
+    s.file("orders.csv", "order_id,parts_cost\nA-1,12.50\n");
+    run(&[
+        "receive",
+        "orders.csv",
+        "--as",
+        "orders",
+        "--why",
+        "first export",
+    ]);
+    let steps = server.admin_sql("by_service", "SELECT count(*) FROM steps");
+    assert_eq!(steps.trim(), "1");
+    // Without the service file the login has no password and the server refuses it.
+    let out = s
+        .command(&["timeline"])
+        .env("PGSERVICEFILE", s.path().join("no_such_file"))
+        .env("PGPASSFILE", &empty)
+        .output()
+        .unwrap();
+    assert_eq!(
+        out.status.code(),
+        Some(2),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+}

@@ -95,19 +95,24 @@ fn install_test_countdown() {
 
 /// Hands the PostgreSQL client what PostgreSQL's own programs read from the environment (a
 /// shared store's lineage server): `PGPASSWORD`, the password file (`PGPASSFILE`, else
-/// `~/.pgpass`) and the role to log in as when the connection string names none (`PGUSER`,
-/// else the operating-system user).
+/// `~/.pgpass`), the connection service file (`PGSERVICEFILE`, else `~/.pg_service.conf`) and
+/// the role to log in as when the connection string names none (`PGUSER`, else the
+/// operating-system user).
 fn install_server_client_env() {
     let env = |k: &str| std::env::var(k).ok().filter(|v| !v.is_empty());
     let passfile = env("PGPASSFILE")
         .map(PathBuf::from)
         .or_else(|| env("HOME").map(|h| PathBuf::from(h).join(".pgpass")));
+    let service_file = env("PGSERVICEFILE")
+        .map(PathBuf::from)
+        .or_else(|| env("HOME").map(|h| PathBuf::from(h).join(".pg_service.conf")));
     sluice::store::pg::use_client_env(sluice::store::pg::ClientEnv {
         password: env("PGPASSWORD"),
         passfile,
         user: env("PGUSER")
             .or_else(|| env("USER"))
             .or_else(|| env("LOGNAME")),
+        service_file,
     });
 }
 

@@ -40,6 +40,8 @@ pub struct ClientEnv {
     /// `PGUSER`, else the operating-system user: the role to log in as when the connection
     /// string names none.
     pub user: Option<String>,
+    /// `PGSERVICEFILE`, else `~/.pg_service.conf`: where `service=NAME` is looked up.
+    pub service_file: Option<PathBuf>,
 }
 
 static CLIENT_ENV: OnceLock<ClientEnv> = OnceLock::new();
@@ -169,20 +171,159 @@ pub fn passfile_password(
     None
 }
 
-/// Reads a connection string, refusing one that holds a password.
+/// The pairs of a connection string in libpq's keyword form (`key=value`, a value in single
+/// quotes when it holds spaces, `\'` and `\\` escaped); `None` for the URL form.
+pub fn keywords(conn: &str) -> Option<Vec<(String, String)>> {
+    if conn.starts_with("postgresql://") || conn.starts_with("postgres://") {
+        return None;
+    }
+    let mut out = Vec::new();
+    let mut chars = conn.chars().peekable();
+    loop {
+        while chars.peek().is_some_and(|c| c.is_whitespace()) {
+            chars.next();
+        }
+        if chars.peek().is_none() {
+            return Some(out);
+        }
+        let mut key = String::new();
+        while let Some(&c) = chars.peek() {
+            if c == '=' || c.is_whitespace() {
+                break;
+            }
+            key.push(c);
+            chars.next();
+        }
+        while chars.peek().is_some_and(|c| c.is_whitespace()) {
+            chars.next();
+        }
+        if chars.next() != Some('=') {
+            return Some(out);
+        }
+        while chars.peek().is_some_and(|c| c.is_whitespace()) {
+            chars.next();
+        }
+        let mut value = String::new();
+        if chars.peek() == Some(&'\'') {
+            chars.next();
+            while let Some(c) = chars.next() {
+                match c {
+                    '\\' => value.extend(chars.next()),
+                    '\'' => break,
+                    _ => value.push(c),
+                }
+            }
+        } else {
+            while let Some(&c) = chars.peek() {
+                if c.is_whitespace() {
+                    break;
+                }
+                if c == '\\' {
+                    chars.next();
+                    value.extend(chars.next());
+                    continue;
+                }
+                value.push(c);
+                chars.next();
+            }
+        }
+        out.push((key, value));
+    }
+}
+
+/// One service's settings in a connection service file (`[NAME]`, then `key=value` lines;
+/// `#` starts a comment line).
+pub fn service_settings(text: &str, name: &str) -> Option<Vec<(String, String)>> {
+    let mut inside = false;
+    let mut found = None;
+    for line in text.lines() {
+        let line = line.trim();
+        if line.is_empty() || line.starts_with('#') {
+            continue;
+        }
+        if let Some(section) = line.strip_prefix('[').and_then(|l| l.strip_suffix(']')) {
+            inside = section.trim() == name;
+            if inside {
+                found.get_or_insert_with(Vec::new);
+            }
+            continue;
+        }
+        if inside {
+            if let Some((k, v)) = line.split_once('=') {
+                found
+                    .get_or_insert_with(Vec::new)
+                    .push((k.trim().to_string(), v.trim().to_string()));
+            }
+        }
+    }
+    found
+}
+
+fn quoted(v: &str) -> String {
+    format!("'{}'", v.replace('\\', "\\\\").replace('\'', "\\'"))
+}
+
+/// Reads a connection string, refusing one that holds a password. `service=NAME` is looked
+/// up in the service file as libpq does (the string's own settings win over the service's);
+/// a password the service file gives is returned beside the settings, never stored.
 pub fn parse_connection(conn: &str) -> Result<Config> {
-    let config: Config = conn.parse().map_err(|e: postgres::Error| {
+    Ok(parse_with_service(conn)?.0)
+}
+
+fn parse_with_service(conn: &str) -> Result<(Config, Option<String>)> {
+    let mut text = conn.to_string();
+    let mut service_password = None;
+    if let Some(pairs) = keywords(conn) {
+        if pairs.iter().any(|(k, _)| k == "password") {
+            return Err(password_refused());
+        }
+        if let Some((_, name)) = pairs.iter().find(|(k, _)| k == "service") {
+            let env = CLIENT_ENV.get().cloned().unwrap_or_default();
+            let settings = env
+                .service_file
+                .as_ref()
+                .and_then(|f| std::fs::read_to_string(f).ok())
+                .and_then(|t| service_settings(&t, name))
+                .ok_or_else(|| {
+                    Error::from(ErrorKind::Usage(format!(
+                        "the service {name:?} is not in the connection service file (PGSERVICEFILE, else ~/.pg_service.conf); add a [{name}] section there, or name the server with host=, port=, dbname= and user="
+                    )))
+                })?;
+            let mut merged: Vec<(String, String)> = Vec::new();
+            for (k, v) in settings {
+                if k == "password" {
+                    service_password = Some(v);
+                } else {
+                    merged.push((k, v));
+                }
+            }
+            for (k, v) in pairs.into_iter().filter(|(k, _)| k != "service") {
+                merged.retain(|(m, _)| *m != k);
+                merged.push((k, v));
+            }
+            text = merged
+                .iter()
+                .map(|(k, v)| format!("{k}={}", quoted(v)))
+                .collect::<Vec<_>>()
+                .join(" ");
+        }
+    }
+    let config: Config = text.parse().map_err(|e: postgres::Error| {
         Error::from(ErrorKind::Usage(format!(
-            "the lineage server's connection string cannot be read ({e}); write it as `host=HOST port=PORT dbname=DB user=ROLE` or `postgresql://ROLE@HOST:PORT/DB`"
+            "the lineage server's connection string cannot be read ({e}); write it as `host=HOST port=PORT dbname=DB user=ROLE`, `service=NAME` or `postgresql://ROLE@HOST:PORT/DB`"
         )))
     })?;
     if config.get_password().is_some() {
-        return Err(ErrorKind::Usage(
-            "the lineage server's connection string holds a password, which would be written into the store; take it out and keep the password in ~/.pgpass (or PGPASSFILE, or PGPASSWORD)".into(),
-        )
-        .into());
+        return Err(password_refused());
     }
-    Ok(config)
+    Ok((config, service_password))
+}
+
+fn password_refused() -> Error {
+    ErrorKind::Usage(
+        "the lineage server's connection string holds a password, which would be written into the store; take it out and keep the password in ~/.pgpass (or PGPASSFILE, PGPASSWORD or a service file)".into(),
+    )
+    .into()
 }
 
 /// The connection's host, port and database as the password file and messages name them.
@@ -210,7 +351,7 @@ pub struct Pg {
 impl Pg {
     /// Connects to the server the connection string `conn` names. The caller migrates.
     pub fn connect(conn: &str) -> Result<Pg> {
-        let mut config = parse_connection(conn)?;
+        let (mut config, service_password) = parse_with_service(conn)?;
         let env = CLIENT_ENV.get().cloned().unwrap_or_default();
         if config.get_user().is_none() {
             if let Some(u) = &env.user {
@@ -219,7 +360,7 @@ impl Pg {
         }
         let user = config.get_user().unwrap_or("").to_string();
         let (host, port, db) = target(&config, &user);
-        if let Some(p) = &env.password {
+        if let Some(p) = service_password.as_ref().or(env.password.as_ref()) {
             config.password(p);
         } else if let Some(file) = &env.passfile {
             if let Ok(text) = std::fs::read_to_string(file) {
@@ -460,6 +601,36 @@ mod tests {
             passfile_password(text, "db.example", "1", "x", "y").as_deref(),
             Some("any")
         );
+    }
+
+    /// libpq's keyword form and connection service file (PostgreSQL documentation,
+    /// "Connection Strings" and "The Connection Service File").
+    #[test]
+    fn keyword_strings_and_service_files_are_read_as_libpq_reads_them() {
+        let pairs =
+            keywords("host=db.example  dbname = 'q3 lineage' user=ada application_name='it\\'s'")
+                .unwrap();
+        assert_eq!(
+            pairs,
+            [
+                ("host".into(), "db.example".into()),
+                ("dbname".into(), "q3 lineage".into()),
+                ("user".into(), "ada".into()),
+                ("application_name".into(), "it's".into()),
+            ]
+        );
+        assert_eq!(keywords("postgresql://ada@db/q3"), None);
+        let file = "# team servers\n[three_rivers]\nhost=db.example\nport=5433\npassword=s3cret\n\n[other]\nhost=elsewhere\n";
+        assert_eq!(
+            service_settings(file, "three_rivers").unwrap(),
+            [
+                ("host".into(), "db.example".into()),
+                ("port".into(), "5433".into()),
+                ("password".into(), "s3cret".into()),
+            ]
+        );
+        assert_eq!(service_settings(file, "missing"), None);
+        assert_eq!(quoted("it's a\\b"), "'it\\'s a\\\\b'");
     }
 
     #[test]

@@ -12,7 +12,7 @@ use std::sync::OnceLock;
 
 /// The superuser the tests' cluster is made with, and its password.
 pub const SUPERUSER: &str = "sluice_test_admin";
-const PASSWORD: &str = "loopback-only-test-password";
+pub const PASSWORD: &str = "loopback-only-test-password";
 
 pub struct Server {
     pub port: u16,
