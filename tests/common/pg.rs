@@ -151,7 +151,13 @@ pub fn server() -> &'static Server {
 fn start() -> Server {
     let bin = bin_dir();
     let as_nobody = unsafe { libc::geteuid() } == 0;
-    let root = std::env::temp_dir().join(format!("sluice-pg-{}", std::process::id()));
+    // As nobody, the cluster's folder must be reachable by nobody: /tmp, whatever TMPDIR says.
+    let base = if as_nobody {
+        PathBuf::from("/tmp")
+    } else {
+        std::env::temp_dir()
+    };
+    let root = base.join(format!("sluice-pg-{}", std::process::id()));
     let _ = std::fs::remove_dir_all(&root);
     let data = root.join("data");
     let socket = root.join("socket");
