@@ -13,7 +13,20 @@
 //! cargo run --release --example bench -- compare                 # 1,000,000 rows, two versions
 //! cargo run --release --example bench -- reproduce --quick       # 100,000 rows
 //! cargo run --release --example bench -- ops --rows 10000        # any size, to check it runs
+//! cargo run --release --example bench -- shared --runs 1          # needs Debian's postgresql
 //! ```
+//!
+//! # `shared`
+//!
+//! Recording throughput of a store whose lineage is on a PostgreSQL server against one whose
+//! lineage is SQLite in its folder, in the same run. The benchmark starts a cluster of its own
+//! from `/usr/lib/postgresql/*/bin` (as `nobody` when run as root) on loopback, with the
+//! server's default durability, and stops it at the end. For 1, 4 and 8 concurrent writer
+//! processes, 48 steps in all (each `sluice receive` of a new 200-row extract, one process per
+//! step, half as further versions of one dataset all writers share, half into a dataset of each
+//! writer's own) are recorded into a fresh SQLite store, then into a fresh store on the
+//! server; steps per second are wall-clock steps over the whole batch, median of `--runs`.
+//! Baseline: SQLite, the default backend, measured right before.
 //!
 //! # `trace`
 //!
@@ -203,6 +216,9 @@ enum Bench {
     /// Salted cell commitments of a version's cells (what an erasure's proof needs) against
     /// `sluice receive` of the same file and against reading its cells alone
     Commit,
+    /// Recording throughput with 1, 4 and 8 concurrent writers, lineage on a PostgreSQL server
+    /// (started here from Debian's postgresql) against SQLite in the store folder
+    Shared,
 }
 
 impl Bench {
@@ -214,6 +230,7 @@ impl Bench {
             Bench::Trace => "trace",
             Bench::Reproduce => "reproduce",
             Bench::Commit => "commit",
+            Bench::Shared => "shared",
         }
     }
 
@@ -226,6 +243,7 @@ impl Bench {
             Bench::Trace => TRACE_ROWS,
             Bench::Reproduce => OPS_ROWS,
             Bench::Commit => &[1_000_000],
+            Bench::Shared => &[SHARED_ROWS],
         }
     }
 }
@@ -286,6 +304,7 @@ fn run_bench(bench: Bench, ctx: &Ctx) -> Result<()> {
         Bench::Trace => trace_bench(ctx)?,
         Bench::Reproduce => replay_bench(ctx)?,
         Bench::Commit => commit_bench(ctx)?,
+        Bench::Shared => shared_bench(ctx)?,
     };
     fs::create_dir_all(&ctx.results_dir)
         .with_context(|| format!("creating {}", ctx.results_dir.display()))?;
@@ -3320,6 +3339,291 @@ fn sluice_init(ctx: &Ctx, store: &Path) -> Result<()> {
         String::from_utf8_lossy(&status.stderr)
     );
     Ok(())
+}
+
+// ---------------------------------------------------------------------------------------------
+// shared: recording throughput, SQLite against a PostgreSQL server
+
+/// Rows of each small extract the writers receive (a nightly meter export).
+const SHARED_ROWS: u64 = 200;
+/// Steps recorded in each measurement, split among the writers.
+const SHARED_STEPS: usize = 48;
+
+/// A PostgreSQL cluster of the benchmark's own, on loopback, stopped when dropped.
+struct BenchServer {
+    bin: PathBuf,
+    root: PathBuf,
+    port: u16,
+    as_nobody: bool,
+}
+
+impl BenchServer {
+    fn user_cmd(&self, program: &str) -> Command {
+        let path = self.bin.join(program);
+        if self.as_nobody {
+            let mut c = Command::new("runuser");
+            c.args(["-u", "nobody", "--"]).arg(path);
+            c
+        } else {
+            Command::new(path)
+        }
+    }
+
+    fn start(dir: &Path) -> Result<BenchServer> {
+        let mut found: Vec<(u32, PathBuf)> = fs::read_dir("/usr/lib/postgresql")
+            .context("PostgreSQL is not installed: apt-get install postgresql")?
+            .flatten()
+            .filter_map(|e| {
+                let v = e.file_name().to_str()?.parse::<u32>().ok()?;
+                Some((v, e.path().join("bin")))
+            })
+            .filter(|(_, b)| b.join("initdb").is_file())
+            .collect();
+        found.sort();
+        let bin = found
+            .pop()
+            .ok_or_else(|| anyhow!("no initdb under /usr/lib/postgresql"))?
+            .1;
+        let root = dir.join("pg");
+        fs::create_dir_all(root.join("socket"))?;
+        let as_nobody = std::env::var("USER").is_ok_and(|u| u == "root")
+            || fs::read_to_string("/proc/self/status").is_ok_and(|s| {
+                s.lines()
+                    .any(|l| l.starts_with("Uid:") && l.split_whitespace().nth(1) == Some("0"))
+            });
+        if as_nobody {
+            let st = Command::new("chown")
+                .args(["-R", "nobody"])
+                .arg(&root)
+                .status()?;
+            ensure!(st.success(), "chown of {} to nobody failed", root.display());
+        }
+        let port = std::net::TcpListener::bind("127.0.0.1:0")?
+            .local_addr()?
+            .port();
+        let server = BenchServer {
+            bin,
+            root,
+            port,
+            as_nobody,
+        };
+        let out = server
+            .user_cmd("initdb")
+            .arg("-D")
+            .arg(server.root.join("data"))
+            .args([
+                "-U",
+                "bench",
+                "--auth=trust",
+                "-E",
+                "UTF8",
+                "--locale=C.UTF-8",
+                "--no-sync",
+            ])
+            .output()?;
+        ensure!(
+            out.status.success(),
+            "initdb: {}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        // The server keeps its default durability (fsync on): the figures are what a team's
+        // server would do, on this machine's disk.
+        let opts = format!(
+            "-c listen_addresses=127.0.0.1 -p {} -k {} -c max_connections=40",
+            server.port,
+            server.root.join("socket").display()
+        );
+        let out = server
+            .user_cmd("pg_ctl")
+            .arg("-D")
+            .arg(server.root.join("data"))
+            .arg("-l")
+            .arg(server.root.join("log"))
+            .args(["-w", "-o", &opts, "start"])
+            .output()?;
+        ensure!(
+            out.status.success(),
+            "pg_ctl start: {}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        Ok(server)
+    }
+
+    /// A new empty database, and the connection string of a store on it.
+    fn database(&self, name: &str) -> Result<String> {
+        let out = Command::new(self.bin.join("psql"))
+            .args([
+                "-X",
+                "-q",
+                "-h",
+                "127.0.0.1",
+                "-U",
+                "bench",
+                "-d",
+                "postgres",
+            ])
+            .arg("-p")
+            .arg(self.port.to_string())
+            .arg("-c")
+            .arg(format!("CREATE DATABASE {name}"))
+            .output()?;
+        ensure!(
+            out.status.success(),
+            "psql: {}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        Ok(format!(
+            "host=127.0.0.1 port={} dbname={name} user=bench",
+            self.port
+        ))
+    }
+}
+
+impl Drop for BenchServer {
+    fn drop(&mut self) {
+        let _ = self
+            .user_cmd("pg_ctl")
+            .arg("-D")
+            .arg(self.root.join("data"))
+            .args(["-m", "fast", "-w", "stop"])
+            .output();
+    }
+}
+
+/// The one-minute load average, as the machine reports it.
+fn load_average() -> f64 {
+    fs::read_to_string("/proc/loadavg")
+        .ok()
+        .and_then(|s| s.split_whitespace().next().and_then(|v| v.parse().ok()))
+        .unwrap_or(f64::NAN)
+}
+
+/// Steps per second of `writers` processes at once, each receiving its share of
+/// [`SHARED_STEPS`] new extracts into the store at `project` (one dataset they all add
+/// versions to, and one of each writer's own).
+fn recording_rate(ctx: &Ctx, project: &Path, writers: usize) -> Result<f64> {
+    let per = SHARED_STEPS / writers;
+    let mut files = Vec::new();
+    for w in 0..writers {
+        let mut mine = Vec::new();
+        for i in 0..per {
+            let f = project.join(format!("w{w}_{i}.csv"));
+            let mut text = String::from("reading_id,meter,kwh\n");
+            for r in 0..SHARED_ROWS {
+                text.push_str(&format!(
+                    "R{w}-{i}-{r},M{},{}.{}\n",
+                    r % 40,
+                    100 + r,
+                    (w + i) % 10
+                ));
+            }
+            fs::write(&f, text)?;
+            let dataset = if i % 2 == 0 {
+                "meter_readings".to_string()
+            } else {
+                format!("depot_{w}")
+            };
+            mine.push((f, dataset));
+        }
+        files.push(mine);
+    }
+    let started = Instant::now();
+    let handles: Vec<_> = files
+        .into_iter()
+        .map(|mine| {
+            let sluice = ctx.sluice.clone();
+            let store = project.join("sluice-store");
+            std::thread::spawn(move || -> Result<()> {
+                for (f, dataset) in mine {
+                    let out = Command::new(&sluice)
+                        .arg("--store")
+                        .arg(&store)
+                        .arg("receive")
+                        .arg(&f)
+                        .args(["--as", &dataset, "--why", "nightly meter export"])
+                        .envs(IDENTITY)
+                        .output()?;
+                    ensure!(
+                        out.status.success(),
+                        "receive: {}",
+                        String::from_utf8_lossy(&out.stderr)
+                    );
+                }
+                Ok(())
+            })
+        })
+        .collect();
+    for h in handles {
+        h.join()
+            .map_err(|_| anyhow!("a writer thread panicked"))??;
+    }
+    Ok((per * writers) as f64 / secs(started.elapsed()))
+}
+
+fn shared_bench(ctx: &Ctx) -> Result<serde_json::Value> {
+    println!("\n== shared: recording throughput, lineage on PostgreSQL against SQLite ==");
+    let dir = ctx.tmp_dir.join("shared");
+    fs::create_dir_all(&dir)?;
+    let server = BenchServer::start(&dir)?;
+    println!(
+        "{} steps per measurement (`sluice receive` of a {SHARED_ROWS}-row extract, one process each), median of {} runs; load average {:.2} at the start",
+        SHARED_STEPS,
+        ctx.runs,
+        load_average()
+    );
+    println!("writers  SQLite steps/s  PostgreSQL steps/s  PostgreSQL/SQLite  load average");
+    let mut rows = Vec::new();
+    let mut n = 0;
+    for writers in [1usize, 4, 8] {
+        let (mut lite, mut pg) = (Vec::new(), Vec::new());
+        for _ in 0..ctx.runs {
+            // Same run: each SQLite measurement is followed by its PostgreSQL one.
+            n += 1;
+            let local = dir.join(format!("lite{n}"));
+            let out = Command::new(&ctx.sluice)
+                .arg("setup")
+                .arg(&local)
+                .envs(IDENTITY)
+                .output()?;
+            ensure!(
+                out.status.success(),
+                "setup: {}",
+                String::from_utf8_lossy(&out.stderr)
+            );
+            lite.push(recording_rate(ctx, &local, writers)?);
+            let conn = server.database(&format!("bench{n}"))?;
+            let shared = dir.join(format!("pg{n}"));
+            let out = Command::new(&ctx.sluice)
+                .arg("setup")
+                .arg(&shared)
+                .args(["--lineage-server", &conn])
+                .envs(IDENTITY)
+                .output()?;
+            ensure!(
+                out.status.success(),
+                "setup: {}",
+                String::from_utf8_lossy(&out.stderr)
+            );
+            pg.push(recording_rate(ctx, &shared, writers)?);
+            fs::remove_dir_all(&local)?;
+            fs::remove_dir_all(&shared)?;
+        }
+        let (l, p) = (median(lite), median(pg));
+        let load = load_average();
+        println!(
+            "{writers:>7}  {l:>14.1}  {p:>18.1}  {:>17.2}x  {load:>12.2}",
+            p / l
+        );
+        rows.push(serde_json::json!({
+            "writers": writers, "sqlite_steps_per_s": l, "postgres_steps_per_s": p,
+            "ratio": p / l, "load_average": load,
+        }));
+    }
+    drop(server);
+    let _ = fs::remove_dir_all(&dir);
+    Ok(
+        serde_json::json!({ "steps": SHARED_STEPS, "rows_per_extract": SHARED_ROWS, "results": rows }),
+    )
 }
 
 // ---------------------------------------------------------------------------------------------

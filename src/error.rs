@@ -368,6 +368,14 @@ pub enum ErrorKind {
     /// SQLite itself failed (a busy or read-only database, a failed migration).
     #[error("lineage database: {0}")]
     Sqlite(String),
+    /// The PostgreSQL server that holds a shared store's lineage refused or failed (cannot be
+    /// reached, a refused login, a permission its role lacks, a failed statement).
+    #[error("lineage database server: {0}")]
+    Server(String),
+    /// A shared store moved on since a local copy was taken from it (or holds what the local
+    /// store never had): named, never merged.
+    #[error("{0}")]
+    MovedOn(String),
     /// The store's records do not hold together (a row that names a missing step, a
     /// provenance object that does not decode): damage, or a store edited by hand.
     #[error("the store's records do not hold together: {0}")]
@@ -490,6 +498,8 @@ impl Error {
             | ErrorKind::RecomputeMismatch { .. }
             | ErrorKind::CorruptDatabase { .. }
             | ErrorKind::Sqlite(_)
+            | ErrorKind::Server(_)
+            | ErrorKind::MovedOn(_)
             | ErrorKind::Inconsistent(_)
             | ErrorKind::Internal(_)
             | ErrorKind::Data(_) => 1,

@@ -14,7 +14,7 @@
 //!   [`provenance`] keeps each step's row map, changed cells and drops compactly;
 //! - query: [`history`] (log, show), [`diff`], [`trace`] (where a value came from),
 //!   [`explain`] (why a total is what it is), [`graph`] (impact, drawings), [`replay`],
-//!   [`verify`], [`refs`] (version references); [`export`] writes a version as CSV, TSV or
+//!   [`verify`], [`refs`] (version references); [`sharing`] moves work between a local and a shared store; [`export`] writes a version as CSV, TSV or
 //!   JSON Lines; [`outcome`] holds the records the recording commands and `compare` return,
 //!   which the binary prints with `--json` and the Python package returns.
 //!
@@ -73,6 +73,7 @@ pub mod refs;
 pub mod replay;
 pub mod report;
 pub mod revert;
+pub mod sharing;
 pub mod sheets;
 pub mod store;
 pub mod table;

@@ -76,6 +76,43 @@ fn git2_is_used_only_in_the_code_capture_module() {
     }
 }
 
+/// Only the store touches a database: the SQLite crate in its SQLite backend (and the store's
+/// module that opens it), the PostgreSQL client in its server backend and nowhere else; the
+/// binary uses neither.
+#[test]
+fn only_the_store_touches_the_databases() {
+    let uses = |krate: &str| -> Vec<String> {
+        engine_sources()
+            .into_iter()
+            .filter(|(_, t)| {
+                t.contains(&format!("{krate}::")) || t.contains(&format!("use {krate}"))
+            })
+            .map(|(rel, _)| rel)
+            .collect()
+    };
+    assert_eq!(
+        uses("rusqlite"),
+        ["store/sqlite.rs"],
+        "SQLite belongs in src/store/sqlite.rs alone"
+    );
+    assert_eq!(
+        uses("postgres"),
+        ["store/pg.rs"],
+        "the PostgreSQL client belongs in src/store/pg.rs alone"
+    );
+    let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("src");
+    let mut edge = vec![root.join("main.rs")];
+    for e in std::fs::read_dir(root.join("cli")).unwrap().flatten() {
+        edge.push(e.path());
+    }
+    for f in edge {
+        let t = without_comments(&std::fs::read_to_string(&f).unwrap());
+        for krate in ["rusqlite", "postgres::"] {
+            assert!(!t.contains(krate), "{} uses {krate}", f.display());
+        }
+    }
+}
+
 #[test]
 fn the_engine_never_prints_or_reads_the_environment() {
     let forbidden = regex::Regex::new(
@@ -153,6 +190,7 @@ const LAYERS: &[(&str, &[&str])] = &[
             "graph",
             "replay",
             "verify",
+            "sharing",
             "export",
             "revert",
             "columnar::write",

@@ -116,7 +116,14 @@ fn sql_is_only_in_the_store_and_built_from_constants() {
         }
     }
     walk(&root, &mut files);
-    let store_files = ["store/lineage.rs", "store/audit.rs"];
+    let store_files = [
+        "store/lineage.rs",
+        "store/audit.rs",
+        "store/backend.rs",
+        "store/sqlite.rs",
+        "store/pg.rs",
+        "store/roles.rs",
+    ];
     let mut checked = 0;
     for f in files {
         let rel = f
@@ -128,7 +135,7 @@ fn sql_is_only_in_the_store_and_built_from_constants() {
         if !store_files.contains(&rel.as_str()) {
             assert!(
                 !keywords.is_match(&text),
-                "src/{rel} holds SQL; all SQL belongs in src/store/lineage.rs and src/store/audit.rs"
+                "src/{rel} holds SQL; all SQL belongs in the store's lineage, audit, backend and roles modules"
             );
             continue;
         }
@@ -144,9 +151,9 @@ fn sql_is_only_in_the_store_and_built_from_constants() {
                 checked += 1;
             }
         }
-        // Callers of the two functions that take a clause pass literals.
+        // Callers of the two functions that take a query pass literals or named constants.
         for c in caller.captures_iter(&text) {
-            if &c[2] != "t" {
+            if &c[2] != "t" && !c[2].starts_with(|ch: char| ch.is_ascii_uppercase()) {
                 assert_eq!(
                     &c[2], "\"",
                     "src/{rel}: query_{} called with a built clause",

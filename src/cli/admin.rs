@@ -16,6 +16,7 @@ use sluice::model::Agent;
 pub fn demo(
     ctx: &Context<'_>,
     dir: Option<&Path>,
+    lineage_server: Option<&str>,
     out: &mut impl Write,
 ) -> anyhow::Result<ExitCode> {
     let agent = ctx.agent(None)?;
@@ -23,7 +24,7 @@ pub fn demo(
         Some(d) => d.to_path_buf(),
         None => sluice::demo::fresh_folder(&ctx.cwd),
     };
-    let report = sluice::demo::run(&target, &agent)?;
+    let report = sluice::demo::run_with(&target, lineage_server, &agent)?;
     demo_text(out, &report)?;
     let d = &report.documented;
     let doc = &d.report.report;

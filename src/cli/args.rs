@@ -61,6 +61,11 @@ pub enum Command {
     Setup {
         /// The project folder (default: the working directory)
         dir: Option<PathBuf>,
+        /// Keep the lineage on this PostgreSQL server (a connection string such as
+        /// `host=db.example port=5432 dbname=lineage user=ada`, without a password: that stays
+        /// in ~/.pgpass, PGPASSFILE or PGPASSWORD)
+        #[arg(long, value_name = "CONN")]
+        lineage_server: Option<String>,
     },
 
     /// Record a file as a new version of a dataset
@@ -382,6 +387,64 @@ pub enum Command {
         json: bool,
     },
 
+    /// Copy this store into a shared store: its objects, then its lineage in one transaction on
+    /// the server (nothing is merged: a shared store that moved on is named)
+    #[command(
+        after_help = "The shared store is a folder set up with `sluice setup --lineage-server CONN`. This store is verified \
+        first (every object re-hashed, the audit chain and its row commitments checked) and each object is re-hashed as it \
+        is copied. The shared store must hold nothing yet or an earlier part of this store's history (a working copy taken \
+        with `sluice borrow`); if it moved on, nothing is copied and the entry where the two part is named. \
+        With --lineage-server, DIR is a new shared store made for this store, its lineage in that (empty) server database.\n\n\
+        Examples:\n  sluice publish --to /srv/three-rivers/q3 --lineage-server \"host=db.example dbname=q3 user=ada\"\n  \
+        sluice publish --to /srv/three-rivers/q3"
+    )]
+    Publish {
+        /// The shared store's folder (or the project folder holding it)
+        #[arg(long, value_name = "DIR")]
+        to: PathBuf,
+        /// Make DIR a new shared store whose lineage is on this PostgreSQL server (an empty
+        /// database), then publish into it
+        #[arg(long, value_name = "CONN")]
+        lineage_server: Option<String>,
+    },
+
+    /// Copy a shared store into a new working copy of your own (its lineage in its folder)
+    #[command(
+        after_help = "The shared store is verified first and every object re-hashed as it is copied; the working copy is \
+        verified when it is made. Work recorded there can be copied back with `sluice publish`.\n\n\
+        Example:\n  sluice borrow /srv/three-rivers/q3 --into q3-offline"
+    )]
+    Borrow {
+        /// The shared store's folder (or the project folder holding it)
+        from: PathBuf,
+        /// The project folder for the working copy (default: the working directory)
+        #[arg(long, value_name = "DIR")]
+        into: Option<PathBuf>,
+    },
+
+    /// The roles of a shared store, enforced by its server: reading, recording, signing,
+    /// administering
+    #[command(
+        after_help = "Run --set-up once as the owner of the server database's tables; it makes the roles sluice_reading, \
+        sluice_recording, sluice_signing and sluice_administering with their grants. Logins are the server's own \
+        (CREATE ROLE ... LOGIN); --give adds one of the roles to one.\n\n\
+        Examples:\n  sluice roles --set-up\n  sluice roles --give recording --to ada\n  sluice roles --of ada"
+    )]
+    Roles {
+        /// Make the roles and their grants (idempotent)
+        #[arg(long)]
+        set_up: bool,
+        /// Give this role ...
+        #[arg(long, value_name = "ROLE", requires = "to", value_parser = ["reading", "recording", "signing", "administering"])]
+        give: Option<String>,
+        /// ... to this login
+        #[arg(long, value_name = "LOGIN", requires = "give")]
+        to: Option<String>,
+        /// Show the roles a login has
+        #[arg(long, value_name = "LOGIN", conflicts_with_all = ["set_up", "give"])]
+        of: Option<String>,
+    },
+
     /// Give back the space of objects no version or step refers to, and pack small segments
     /// (recorded in the audit log)
     #[command(
@@ -578,6 +641,9 @@ pub enum Command {
     Demo {
         /// Where to create it (default: a new folder sluice-demo… in the working directory)
         dir: Option<PathBuf>,
+        /// Keep the demo store's lineage on this PostgreSQL server (as `setup --lineage-server`)
+        #[arg(long, value_name = "CONN")]
+        lineage_server: Option<String>,
     },
 
     /// Print the tab-completion script for a shell (bash, zsh or fish)

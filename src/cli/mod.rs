@@ -15,6 +15,7 @@ pub mod erase;
 pub mod query;
 pub mod record;
 pub mod reproduce;
+pub mod shared;
 pub mod shell;
 pub mod storage;
 pub mod term;
@@ -92,9 +93,33 @@ fn install_test_countdown() {
     }
 }
 
+/// Hands the PostgreSQL client what PostgreSQL's own programs read from the environment (a
+/// shared store's lineage server): `PGPASSWORD`, the password file (`PGPASSFILE`, else
+/// `~/.pgpass`), the connection service file (`PGSERVICEFILE`, else `~/.pg_service.conf`) and
+/// the role to log in as when the connection string names none (`PGUSER`, else the
+/// operating-system user).
+fn install_server_client_env() {
+    let env = |k: &str| std::env::var(k).ok().filter(|v| !v.is_empty());
+    let passfile = env("PGPASSFILE")
+        .map(PathBuf::from)
+        .or_else(|| env("HOME").map(|h| PathBuf::from(h).join(".pgpass")));
+    let service_file = env("PGSERVICEFILE")
+        .map(PathBuf::from)
+        .or_else(|| env("HOME").map(|h| PathBuf::from(h).join(".pg_service.conf")));
+    sluice::store::pg::use_client_env(sluice::store::pg::ClientEnv {
+        password: env("PGPASSWORD"),
+        passfile,
+        user: env("PGUSER")
+            .or_else(|| env("USER"))
+            .or_else(|| env("LOGNAME")),
+        service_file,
+    });
+}
+
 /// Runs a parsed command line; returns the exit code.
 pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
     install_test_countdown();
+    install_server_client_env();
     let cwd = std::env::current_dir().context("cannot read the working directory")?;
     let ctx = Context { cli: &cli, cwd };
     if let Some(mib) = cli.max_record_mib {
@@ -103,7 +128,10 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
     let stdout = std::io::stdout();
     let out = &mut stdout.lock();
     match &cli.command {
-        Command::Setup { dir } => record::setup(&ctx, dir.as_deref(), out),
+        Command::Setup {
+            dir,
+            lineage_server,
+        } => record::setup(&ctx, dir.as_deref(), lineage_server.as_deref(), out),
         Command::Receive(a) => record::receive(&ctx, a, out),
         Command::Clean(a) => record::clean(&ctx, a, out),
         Command::Inspect {
@@ -166,6 +194,23 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             endorsement,
         } => query::verify(&ctx, *deep, endorsement, *json, out),
         Command::Reclaim { json } => admin::reclaim(&ctx, *json, out),
+        Command::Publish { to, lineage_server } => {
+            shared::publish(&ctx, to, lineage_server.as_deref(), out)
+        }
+        Command::Borrow { from, into } => shared::borrow(&ctx, from, into.as_deref(), out),
+        Command::Roles {
+            set_up,
+            give,
+            to,
+            of,
+        } => shared::roles(
+            &ctx,
+            *set_up,
+            give.as_deref(),
+            to.as_deref(),
+            of.as_deref(),
+            out,
+        ),
         Command::Retain { references, json } => {
             storage::retain(&ctx, references, Storage::Kept, *json, out)
         }
@@ -195,7 +240,10 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             accept_conflicts,
             json,
         } => reproduce::withdraw(&ctx, reference, why, *accept_conflicts, *json, out),
-        Command::Demo { dir } => admin::demo(&ctx, dir.as_deref(), out),
+        Command::Demo {
+            dir,
+            lineage_server,
+        } => admin::demo(&ctx, dir.as_deref(), lineage_server.as_deref(), out),
         Command::Completions { shell } => admin::completions(*shell, out),
         Command::Manual { dir } => admin::manual(dir.as_deref(), out),
         Command::Upgrade { file, output } => admin::upgrade(file, output.as_deref(), out),

@@ -34,14 +34,22 @@ pub struct Acting<'a, A> {
 pub fn setup(
     ctx: &Context<'_>,
     dir: Option<&Path>,
+    lineage_server: Option<&str>,
     out: &mut impl Write,
 ) -> anyhow::Result<ExitCode> {
     let project = dir
         .map(Path::to_path_buf)
         .unwrap_or_else(|| ctx.cwd.clone());
     let agent = ctx.agent(None)?;
-    let store = Store::init_recorded(&project, &agent)?;
+    let store = Store::init_recorded_with(&project, lineage_server, &agent)?;
     writeln!(out, "set up a store in {}", store.dir().display())?;
+    if lineage_server.is_some() {
+        writeln!(
+            out,
+            "its lineage is on the server {}",
+            store.lineage.describe()
+        )?;
+    }
     writeln!(
         out,
         "next: receive a file with `sluice receive FILE --as NAME --why \"...\"`"

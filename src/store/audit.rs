@@ -17,13 +17,13 @@
 //! without commitments (a store from an earlier build) records `legacy_rows`, each table's
 //! highest rowid at that moment: rows up to there predate the commitments.
 
-use rusqlite::{params, Connection, OptionalExtension};
 use serde_json::Value;
 
-use super::lineage::db_err;
+use super::backend::{self, Database};
 use crate::error::{ErrorKind, Result};
 use crate::hash::Hash;
 use crate::model::{canonical_json, Agent, AuditEntry};
+use crate::vals;
 
 pub const GENESIS: &str = "0000000000000000000000000000000000000000000000000000000000000000";
 
@@ -56,7 +56,7 @@ pub fn entry_hash(
 }
 
 pub(super) fn append(
-    conn: &Connection,
+    conn: &dyn Database,
     agent: &Agent,
     action: &str,
     subject: &str,
@@ -64,14 +64,16 @@ pub(super) fn append(
     at: &str,
     journal: Vec<Selector>,
 ) -> Result<AuditEntry> {
-    let last: Option<(i64, String)> = conn
-        .query_row(
+    let last: Option<(i64, String)> = match conn
+        .query(
             "SELECT seq, hash FROM audit_log ORDER BY seq DESC LIMIT 1",
-            [],
-            |r| Ok((r.get(0)?, r.get(1)?)),
-        )
-        .optional()
-        .map_err(db_err)?;
+            &[],
+        )?
+        .first()
+    {
+        Some(r) => Some((r.int(0)?, r.text(1)?)),
+        None => None,
+    };
     let (seq, prev_hash) = match last {
         Some((s, h)) => (s as u64 + 1, h),
         None => (1, GENESIS.to_string()),
@@ -109,18 +111,17 @@ pub(super) fn append(
     conn.execute(
         "INSERT INTO audit_log (seq, at, agent, action, subject, details, prev_hash, hash)
          VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8)",
-        params![
+        vals![
             seq as i64,
             at,
             agent.identity(),
             action,
             subject,
-            details,
-            prev_hash,
-            hash
+            details.as_str(),
+            prev_hash.as_str(),
+            hash.as_str()
         ],
-    )
-    .map_err(db_err)?;
+    )?;
     Ok(AuditEntry {
         seq,
         at: at.to_string(),
@@ -133,28 +134,26 @@ pub(super) fn append(
     })
 }
 
-pub(super) fn entries(conn: &Connection) -> Result<Vec<AuditEntry>> {
-    let mut st = conn
-        .prepare(
-            "SELECT seq, at, agent, action, subject, details, prev_hash, hash
-             FROM audit_log ORDER BY rowid",
-        )
-        .map_err(db_err)?;
-    let rows = st
-        .query_map([], |r| {
-            Ok(AuditEntry {
-                seq: r.get::<_, i64>(0)? as u64,
-                at: r.get(1)?,
-                agent: r.get(2)?,
-                action: r.get(3)?,
-                subject: r.get(4)?,
-                details: r.get(5)?,
-                prev_hash: r.get(6)?,
-                hash: r.get(7)?,
-            })
+pub(super) fn entries(conn: &dyn Database) -> Result<Vec<AuditEntry>> {
+    conn.query(
+        "SELECT seq, at, agent, action, subject, details, prev_hash, hash
+         FROM audit_log ORDER BY seq",
+        &[],
+    )?
+    .iter()
+    .map(|r| {
+        Ok(AuditEntry {
+            seq: r.int(0)? as u64,
+            at: r.text(1)?,
+            agent: r.text(2)?,
+            action: r.text(3)?,
+            subject: r.text(4)?,
+            details: r.text(5)?,
+            prev_hash: r.text(6)?,
+            hash: r.text(7)?,
         })
-        .map_err(db_err)?;
-    rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+    })
+    .collect()
 }
 
 /// Walks the chain from the first entry and describes every break: a recomputed hash that
@@ -408,15 +407,15 @@ fn merge(mut journal: Vec<Selector>) -> Vec<Selector> {
 /// length (u64 LE) and bytes, a type tag (1 integer, 2 real, 3 text, 4 blob) and the value
 /// (i64 LE; the f64's bits LE; length and bytes). A NULL column is left out, so NULL and an
 /// empty text differ, and a column a later schema adds with NULL in old rows changes nothing.
-/// `skip` leading result columns (the rowid) are not part of the row.
-pub fn encode_row(row: &rusqlite::Row<'_>, skip: usize) -> rusqlite::Result<Vec<u8>> {
-    use rusqlite::types::ValueRef;
-    let stmt = row.as_ref();
-    let mut cols: Vec<(&str, ValueRef<'_>)> = Vec::new();
-    for i in skip..stmt.column_count() {
-        let v = row.get_ref(i)?;
-        if v != ValueRef::Null {
-            cols.push((stmt.column_name(i)?, v));
+/// `skip` leading result columns (the rowid) are not part of the row, nor is a column named
+/// `rowid` (a server's stand-in for SQLite's own), so a row encodes alike on both backends.
+pub fn encode_row(names: &[String], row: &backend::Row, skip: usize) -> Vec<u8> {
+    use backend::Value as V;
+    let mut cols: Vec<(&str, &V)> = Vec::new();
+    for (i, v) in row.0.iter().enumerate().skip(skip) {
+        let name = names.get(i).map_or("", String::as_str);
+        if *v != V::Null && name != "rowid" {
+            cols.push((name, v));
         }
     }
     cols.sort_by(|a, b| a.0.cmp(b.0));
@@ -425,43 +424,40 @@ pub fn encode_row(row: &rusqlite::Row<'_>, skip: usize) -> rusqlite::Result<Vec<
         out.extend_from_slice(&(name.len() as u64).to_le_bytes());
         out.extend_from_slice(name.as_bytes());
         match v {
-            ValueRef::Null => {}
-            ValueRef::Integer(i) => {
+            V::Null => {}
+            V::Int(i) => {
                 out.push(1);
                 out.extend_from_slice(&i.to_le_bytes());
             }
-            ValueRef::Real(f) => {
+            V::Real(f) => {
                 out.push(2);
                 out.extend_from_slice(&f.to_bits().to_le_bytes());
             }
-            ValueRef::Text(t) => {
+            V::Text(t) => {
                 out.push(3);
                 out.extend_from_slice(&(t.len() as u64).to_le_bytes());
-                out.extend_from_slice(t);
+                out.extend_from_slice(t.as_bytes());
             }
-            ValueRef::Blob(b) => {
+            V::Blob(b) => {
                 out.push(4);
                 out.extend_from_slice(&(b.len() as u64).to_le_bytes());
                 out.extend_from_slice(b);
             }
         }
     }
-    Ok(out)
+    out
 }
 
 /// The rows a selector names now, as (rowid, canonical encoding).
-pub(super) fn select_rows(conn: &Connection, sel: &Selector) -> Result<Vec<(i64, Vec<u8>)>> {
-    let mut st = conn.prepare_cached(sel.sql()).map_err(db_err)?;
+pub(super) fn select_rows(conn: &dyn Database, sel: &Selector) -> Result<Vec<(i64, Vec<u8>)>> {
     let bind = |k: &Key| match k {
-        Key::Int(i) => rusqlite::types::Value::Integer(*i),
-        Key::Text(t) => rusqlite::types::Value::Text(t.clone()),
+        Key::Int(i) => backend::Value::Int(*i),
+        Key::Text(t) => backend::Value::Text(t.clone()),
     };
-    let rows = st
-        .query_map(params![bind(&sel.from), bind(&sel.to)], |r| {
-            Ok((r.get::<_, i64>(0)?, encode_row(r, 1)?))
-        })
-        .map_err(db_err)?;
-    rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+    let (names, rows) = conn.query_named(sel.sql(), &[bind(&sel.from), bind(&sel.to)])?;
+    rows.iter()
+        .map(|r| Ok((r.int(0)?, encode_row(&names, r, 1))))
+        .collect()
 }
 
 /// BLAKE3 over the tag `sluice-rows-v1`, the selector (table, column, range) and the rows'
@@ -492,18 +488,21 @@ pub fn has_commitments(details: &str) -> bool {
         .is_some_and(|d| d.get("rows").is_some_and(Value::is_array))
 }
 
-fn last_details(conn: &Connection) -> Result<Option<(i64, String)>> {
-    conn.query_row(
-        "SELECT seq, details FROM audit_log ORDER BY seq DESC LIMIT 1",
-        [],
-        |r| Ok((r.get(0)?, r.get(1)?)),
-    )
-    .optional()
-    .map_err(db_err)
+fn last_details(conn: &dyn Database) -> Result<Option<(i64, String)>> {
+    match conn
+        .query(
+            "SELECT seq, details FROM audit_log ORDER BY seq DESC LIMIT 1",
+            &[],
+        )?
+        .first()
+    {
+        Some(r) => Ok(Some((r.int(0)?, r.text(1)?))),
+        None => Ok(None),
+    }
 }
 
 /// The highest rowid of a known table (0 when empty or missing).
-pub(super) fn max_rowid(conn: &Connection, table: &str) -> Result<i64> {
+pub(super) fn max_rowid(conn: &dyn Database, table: &str) -> Result<i64> {
     let sql = match table {
         "agents" => "SELECT coalesce(max(rowid), 0) FROM agents",
         "cell_changes" => "SELECT coalesce(max(rowid), 0) FROM cell_changes",
@@ -522,11 +521,11 @@ pub(super) fn max_rowid(conn: &Connection, table: &str) -> Result<i64> {
         "versions" => "SELECT coalesce(max(rowid), 0) FROM versions",
         _ => return Ok(0),
     };
-    conn.query_row(sql, [], |r| r.get(0)).map_err(db_err)
+    conn.query(sql, &[])?.first().map_or(Ok(0), |r| r.int(0))
 }
 
 /// Every rowid of a known table, ascending.
-pub(super) fn rowids(conn: &Connection, table: &str) -> Result<Vec<i64>> {
+pub(super) fn rowids(conn: &dyn Database, table: &str) -> Result<Vec<i64>> {
     let sql = match table {
         "agents" => "SELECT rowid FROM agents ORDER BY rowid",
         "cell_changes" => "SELECT rowid FROM cell_changes ORDER BY rowid",
@@ -545,9 +544,7 @@ pub(super) fn rowids(conn: &Connection, table: &str) -> Result<Vec<i64>> {
         "versions" => "SELECT rowid FROM versions ORDER BY rowid",
         _ => return Ok(Vec::new()),
     };
-    let mut st = conn.prepare(sql).map_err(db_err)?;
-    let rows = st.query_map([], |r| r.get(0)).map_err(db_err)?;
-    rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+    conn.query(sql, &[])?.iter().map(|r| r.int(0)).collect()
 }
 
 #[cfg(test)]
@@ -618,28 +615,43 @@ mod tests {
     /// is NULL the same as one that is not there (what a later migration adds).
     #[test]
     fn row_encoding_is_canonical() {
-        let c = Connection::open_in_memory().unwrap();
-        c.execute_batch(
-            "CREATE TABLE ab (a, b); CREATE TABLE ba (b, a); CREATE TABLE abc (a, b, c);
-             INSERT INTO ab VALUES (1, 'x'), (1, ''), (1, NULL), ('1', 'x');
-             INSERT INTO ba VALUES ('x', 1);
-             INSERT INTO abc VALUES (1, 'x', NULL);",
-        )
-        .unwrap();
-        let rows = |sql: &str| -> Vec<Vec<u8>> {
-            c.prepare(sql)
-                .unwrap()
-                .query_map([], |r| encode_row(r, 0))
-                .unwrap()
-                .map(|r| r.unwrap())
-                .collect()
-        };
-        let ab = rows("SELECT * FROM ab ORDER BY rowid");
-        assert_eq!(rows("SELECT * FROM ba")[0], ab[0]);
-        assert_eq!(rows("SELECT * FROM abc")[0], ab[0]);
-        assert_ne!(ab[0], ab[3], "an integer differs from its text");
-        assert_ne!(ab[1], ab[2], "NULL differs from an empty text");
-        assert_ne!(ab[0], ab[1]);
+        use backend::{Row, Value as V};
+        let names = |n: &[&str]| -> Vec<String> { n.iter().map(|s| s.to_string()).collect() };
+        let row = |v: Vec<V>| Row(v);
+        let ab = names(&["a", "b"]);
+        let enc = |n: &[String], v: Vec<V>| encode_row(n, &row(v), 0);
+        let first = enc(&ab, vec![V::Int(1), V::Text("x".into())]);
+        assert_eq!(
+            enc(&names(&["b", "a"]), vec![V::Text("x".into()), V::Int(1)]),
+            first,
+            "columns by name, whatever their order"
+        );
+        assert_eq!(
+            enc(
+                &names(&["a", "b", "c"]),
+                vec![V::Int(1), V::Text("x".into()), V::Null]
+            ),
+            first,
+            "a NULL column is as if it were not there"
+        );
+        assert_eq!(
+            enc(
+                &names(&["a", "b", "rowid"]),
+                vec![V::Int(1), V::Text("x".into()), V::Int(7)]
+            ),
+            first,
+            "a server's rowid column is not part of the row"
+        );
+        assert_ne!(
+            enc(&ab, vec![V::Text("1".into()), V::Text("x".into())]),
+            first,
+            "an integer differs from its text"
+        );
+        assert_ne!(
+            enc(&ab, vec![V::Int(1), V::Text(String::new())]),
+            enc(&ab, vec![V::Int(1), V::Null]),
+            "NULL differs from an empty text"
+        );
     }
 
     #[test]

@@ -1,20 +1,23 @@
-//! The lineage database (`.sluice/lineage.db`): opening it with the right settings, applying the
-//! embedded migrations from `schema/`, the write transaction every command goes through, and the
-//! queries the rest of the engine asks. All SQL in sluice is here and in [`super::audit`], and
-//! every value reaches SQLite as a bound parameter, never spliced into SQL text.
+//! The lineage database: opening it (SQLite in the store folder, or PostgreSQL on a server,
+//! behind [`super::backend::Database`]), applying the backend's migrations, the write
+//! transaction every command goes through, and the queries the rest of the engine asks. All
+//! SQL in sluice is here, in [`super::audit`] and in the backends, and every value reaches the
+//! database as a bound parameter, never spliced into SQL text.
 
-use std::path::{Path, PathBuf};
-use std::time::Duration;
+use std::path::Path;
 
-use rusqlite::{params, Connection, OpenFlags, OptionalExtension, TransactionBehavior};
 use serde_json::Value;
 
 use super::audit::{Key, Selector};
+use super::backend::{self, Database, Kind, Row};
+use super::pg::Pg;
+use super::sqlite::Sqlite;
 use crate::error::{Error, ErrorKind, Result};
 use crate::model::{
     canonical_json, Agent, AuditEntry, CellChange, ColumnProfile, Dataset, Dialect, Drop,
     Endorsement, LineageKind, Meaning, RowRun, SourceFile, Step, StepKind, Storage, Version,
 };
+use crate::vals;
 
 /// The objects that only recomputable versions name (their bytes or row index).
 const UNSTORED_OBJECTS: &str = "SELECT o.hash FROM objects o
@@ -22,222 +25,211 @@ const UNSTORED_OBJECTS: &str = "SELECT o.hash FROM objects o
        AND NOT EXISTS (SELECT 1 FROM versions v WHERE (v.hash = o.hash OR v.row_index = o.hash)
                        AND (v.storage IS NULL OR v.storage <> 'recomputable'))";
 
-/// The migrations, in order. Each entry is (schema version it produces, SQL).
-const MIGRATIONS: &[(i64, &str)] = &[
-    (1, include_str!("../../schema/0001_lineage.sql")),
-    (2, include_str!("../../schema/0002_cell_notes.sql")),
-    (3, include_str!("../../schema/0003_check_gate.sql")),
-    (4, include_str!("../../schema/0004_step_provenance.sql")),
-    (5, include_str!("../../schema/0005_endorsements.sql")),
-    (6, include_str!("../../schema/0006_storage.sql")),
-];
-
-/// The schema version this build writes.
-pub const SCHEMA_VERSION: i64 = MIGRATIONS[MIGRATIONS.len() - 1].0;
-
-/// How long a command waits for another command's write transaction before giving up.
-const BUSY_TIMEOUT: Duration = Duration::from_secs(60);
+/// The schema version this build writes (the SQLite migrations' last; a server's schema is
+/// kept at the same number).
+pub const SCHEMA_VERSION: i64 = super::sqlite::MIGRATIONS[super::sqlite::MIGRATIONS.len() - 1].0;
 
 pub struct Lineage {
-    conn: Connection,
-    path: PathBuf,
+    db: Box<dyn Database>,
 }
 
-pub(super) fn db_err(e: rusqlite::Error) -> Error {
-    ErrorKind::Sqlite(e.to_string().to_lowercase()).into()
-}
-
-fn corrupt(path: &Path, e: rusqlite::Error) -> Error {
-    ErrorKind::CorruptDatabase {
-        path: path.to_path_buf(),
-        detail: e.to_string().to_lowercase(),
-    }
-    .into()
+fn u(v: i64) -> u64 {
+    v as u64
 }
 
 impl Lineage {
-    /// Creates a new database at `path` and applies every migration.
+    /// Creates a new SQLite database at `path` and applies every migration.
     pub fn create(path: &Path) -> Result<Lineage> {
-        Lineage::connect(
-            path,
-            OpenFlags::SQLITE_OPEN_READ_WRITE | OpenFlags::SQLITE_OPEN_CREATE,
-        )
+        Lineage::with(Box::new(Sqlite::connect(path, true)?))
     }
 
-    /// Writes a copy of the database as it is now (one snapshot) to the new file `path`.
-    pub fn copy_to(&self, path: &Path) -> Result<()> {
-        let target = path.to_str().ok_or_else(|| {
-            Error::from(ErrorKind::Internal(format!(
-                "{}: not a UTF-8 path",
-                path.display()
-            )))
-        })?;
-        self.conn
-            .execute("VACUUM INTO ?1", [target])
-            .map_err(db_err)?;
-        Ok(())
-    }
-
-    /// Opens an existing database, refusing one written by a newer schema and migrating an older
-    /// one.
+    /// Opens an existing SQLite database, refusing one written by a newer schema and migrating
+    /// an older one.
     pub fn open(path: &Path) -> Result<Lineage> {
-        Lineage::connect(path, OpenFlags::SQLITE_OPEN_READ_WRITE)
+        Lineage::with(Box::new(Sqlite::connect(path, false)?))
     }
 
-    fn connect(path: &Path, flags: OpenFlags) -> Result<Lineage> {
-        let conn = Connection::open_with_flags(path, flags).map_err(|e| corrupt(path, e))?;
-        let mut l = Lineage {
-            conn,
-            path: path.to_path_buf(),
-        };
-        l.configure()?;
-        l.migrate()?;
-        Ok(l)
+    /// Connects to the lineage database on a PostgreSQL server (`conn`, a connection string
+    /// without a password), migrating it when it is empty or older.
+    pub fn connect_server(conn: &str) -> Result<Lineage> {
+        Lineage::with(Box::new(Pg::connect(conn)?))
     }
 
-    fn configure(&mut self) -> Result<()> {
-        let path = self.path.clone();
-        self.conn
-            .busy_timeout(BUSY_TIMEOUT)
-            .map_err(|e| corrupt(&path, e))?;
-        // Reading the schema first turns "file is not a database" into a clear error.
-        self.conn
-            .query_row("SELECT count(*) FROM sqlite_master", [], |r| {
-                r.get::<_, i64>(0)
-            })
-            .map_err(|e| corrupt(&path, e))?;
-        let mode: String = self
-            .conn
-            .query_row("PRAGMA journal_mode = WAL", [], |r| r.get(0))
-            .map_err(|e| corrupt(&path, e))?;
-        if !mode.eq_ignore_ascii_case("wal") {
-            return Err(ErrorKind::Sqlite(format!(
-                "could not switch the lineage database to WAL mode (got {mode})"
-            ))
-            .into());
-        }
-        self.conn
-            .execute_batch("PRAGMA foreign_keys = ON; PRAGMA synchronous = FULL;")
-            .map_err(|e| corrupt(&path, e))?;
-        Ok(())
+    fn with(db: Box<dyn Database>) -> Result<Lineage> {
+        db.migrate()?;
+        Ok(Lineage { db })
     }
 
-    fn user_version(&self) -> Result<i64> {
-        self.conn
-            .query_row("PRAGMA user_version", [], |r| r.get(0))
-            .map_err(|e| corrupt(&self.path, e))
+    /// Which backend holds the lineage.
+    pub fn kind(&self) -> Kind {
+        self.db.kind()
     }
 
-    fn migrate(&mut self) -> Result<()> {
-        let found = self.user_version()?;
-        if found > SCHEMA_VERSION {
-            return Err(ErrorKind::SchemaTooNew {
-                path: self.path.clone(),
-                found,
-                known: SCHEMA_VERSION,
+    /// Where the lineage is, for messages: the file, or the server (never a password).
+    pub fn describe(&self) -> String {
+        self.db.describe()
+    }
+
+    /// Runs several statements without parameters (the roles' setup), in one transaction.
+    pub(super) fn run_script(&self, sql: &str) -> Result<()> {
+        self.in_transaction(&|db| db.batch(sql))
+    }
+
+    /// Runs `f` on the backend in one write transaction (the store's own work that records
+    /// nothing in the lineage, such as the roles).
+    pub(super) fn in_transaction(&self, f: &dyn Fn(&dyn Database) -> Result<()>) -> Result<()> {
+        self.db.begin_write()?;
+        match f(self.db.as_ref()) {
+            Ok(()) => self.db.commit(),
+            Err(e) => {
+                let _ = self.db.rollback();
+                Err(e)
             }
-            .into());
         }
-        if found == SCHEMA_VERSION {
+    }
+
+    /// Runs one query of the store's own (the roles') and returns its rows.
+    pub(super) fn query_raw(&self, sql: &str, p: &[backend::Value]) -> Result<Vec<Row>> {
+        self.db.query(sql, p)
+    }
+
+    /// Writes a copy of the lineage as it is now (one snapshot) to the new SQLite file `path`.
+    pub fn copy_to(&self, path: &Path) -> Result<()> {
+        if self.db.copy_file(path)? {
             return Ok(());
         }
-        let path = self.path.clone();
-        let tx = self
-            .conn
-            .transaction_with_behavior(TransactionBehavior::Immediate)
-            .map_err(db_err)?;
-        // Another process may have migrated while we waited for the write lock.
-        let now: i64 = tx
-            .query_row("PRAGMA user_version", [], |r| r.get(0))
-            .map_err(|e| corrupt(&path, e))?;
-        for (v, sql) in MIGRATIONS {
-            if *v > now {
-                tx.execute_batch(sql).map_err(|e| {
-                    Error::from(ErrorKind::Sqlite(format!(
-                        "applying schema migration {v}: {}",
-                        e.to_string().to_lowercase()
-                    )))
-                })?;
-                tx.execute_batch(&format!("PRAGMA user_version = {v}"))
-                    .map_err(db_err)?;
-            }
-        }
-        tx.commit().map_err(db_err)?;
-        Ok(())
+        let target = Lineage::create(path)?;
+        self.copy_into(&target).map(|_| ())
     }
 
-    pub fn path(&self) -> &Path {
-        &self.path
+    /// Why a copy into `target` would be refused, if it would: [`Lineage::copy_into`]'s check,
+    /// made before anything else is copied (the copy checks again in its transaction).
+    pub fn copy_refused(&self, target: &Lineage) -> Result<Option<String>> {
+        let ours = self.audit_entries()?;
+        let theirs = target.audit_entries()?;
+        Ok(moved_on(
+            &ours,
+            &theirs,
+            &self.describe(),
+            &target.describe(),
+        ))
+    }
+
+    /// Copies this lineage into `target`, in one snapshot here and one write transaction
+    /// there (so a failure or a kill leaves `target` as it was), when `target` holds nothing
+    /// or an earlier part of the same history: its audit chain is a beginning of this one,
+    /// entry for entry. Rows keep their ids and values, so the chain's row commitments hold
+    /// there. A `target` whose chain is not a beginning of this one (it moved on, or it is
+    /// another history) is named ([`ErrorKind::MovedOn`]) and nothing is written.
+    pub fn copy_into(&self, target: &Lineage) -> Result<Copied> {
+        self.snapshot(|| {
+            let ours = self.audit_entries()?;
+            target.write(|tx| {
+                let theirs = super::audit::entries(tx.db)?;
+                if let Some(problem) = moved_on(&ours, &theirs, &self.describe(), &tx.db.describe())
+                {
+                    return Err(ErrorKind::MovedOn(problem).into());
+                }
+                if theirs.len() == ours.len() {
+                    return Ok(Copied {
+                        entries_before: theirs.len() as u64,
+                        entries_copied: 0,
+                    });
+                }
+                for (_, select, insert) in backend::COPY_ORDER {
+                    for row in self.db.query(select, &[])? {
+                        tx.db.execute(insert, &row.0)?;
+                    }
+                }
+                for (select, update) in backend::COPY_CHANGES {
+                    for row in self.db.query(select, &[])? {
+                        tx.db.execute(update, &row.0)?;
+                    }
+                }
+                Ok(Copied {
+                    entries_before: theirs.len() as u64,
+                    entries_copied: (ours.len() - theirs.len()) as u64,
+                })
+            })
+        })
     }
 
     pub fn schema_version(&self) -> Result<i64> {
-        self.user_version()
+        self.db.schema_version()
     }
 
-    /// Runs `f` inside one `BEGIN IMMEDIATE` transaction.
-    pub fn write<T>(&mut self, f: impl FnOnce(&mut Tx<'_>) -> Result<T>) -> Result<T> {
-        let tx = self
-            .conn
-            .transaction_with_behavior(TransactionBehavior::Immediate)
-            .map_err(db_err)?;
+    /// Runs `f` inside one write transaction (SQLite: `BEGIN IMMEDIATE`; PostgreSQL: the
+    /// writers' advisory lock first), committed when it returns `Ok`, rolled back otherwise.
+    pub fn write<T>(&self, f: impl FnOnce(&mut Tx<'_>) -> Result<T>) -> Result<T> {
+        self.db.begin_write()?;
         let mut t = Tx {
-            tx,
+            db: self.db.as_ref(),
             journal: Vec::new(),
         };
-        let out = f(&mut t)?;
-        if !t.journal.is_empty() {
-            // Every row a command writes is committed to by one of its audit entries.
-            return Err(ErrorKind::Internal(
-                "rows were written without an audit entry to commit to them; nothing was recorded"
-                    .into(),
-            )
-            .into());
+        let out = f(&mut t);
+        let out = match out {
+            Ok(v) if !t.journal.is_empty() => {
+                let _ = v;
+                // Every row a command writes is committed to by one of its audit entries.
+                Err(ErrorKind::Internal(
+                    "rows were written without an audit entry to commit to them; nothing was recorded"
+                        .into(),
+                )
+                .into())
+            }
+            other => other,
+        };
+        match out {
+            Ok(v) => {
+                self.db.commit()?;
+                Ok(v)
+            }
+            Err(e) => {
+                let _ = self.db.rollback();
+                Err(e)
+            }
         }
-        t.tx.commit().map_err(db_err)?;
-        Ok(out)
     }
 
-    /// Runs `f`, whose queries all read one snapshot of the database (a deferred read
-    /// transaction; under WAL, writers committing meanwhile are not seen). `verify` reads
-    /// through it so that a step committed while it runs is seen whole or not at all.
+    /// Runs `f`, whose queries all read one snapshot of the database (a read transaction;
+    /// writers committing meanwhile are not seen). `verify` reads through it so that a step
+    /// committed while it runs is seen whole or not at all.
     pub fn snapshot<T>(&self, f: impl FnOnce() -> Result<T>) -> Result<T> {
-        self.conn.execute_batch("BEGIN DEFERRED").map_err(db_err)?;
-        // The snapshot starts at the first read.
-        let started = self
-            .conn
-            .query_row("SELECT count(*) FROM sqlite_master", [], |r| {
-                r.get::<_, i64>(0)
-            })
-            .map_err(db_err);
-        let out = started.and_then(|_| f());
-        let end = self.conn.execute_batch("COMMIT").map_err(db_err);
+        self.db.begin_snapshot()?;
+        let out = f();
+        let end = self.db.end_snapshot();
         let out = out?;
         end?;
         Ok(out)
     }
 
+    fn rows(&self, sql: &str, p: &[backend::Value]) -> Result<Vec<Row>> {
+        self.db.query(sql, p)
+    }
+
+    fn first(&self, sql: &str, p: &[backend::Value]) -> Result<Option<Row>> {
+        Ok(self.db.query(sql, p)?.into_iter().next())
+    }
+
     // ---- queries -------------------------------------------------------------------------
 
     pub fn datasets(&self) -> Result<Vec<Dataset>> {
-        let mut st = self
-            .conn
-            .prepare(
-                "SELECT d.name, d.key_columns, d.created_at,
-                        (SELECT count(*) FROM versions v WHERE v.dataset_id = d.id)
-                 FROM datasets d ORDER BY d.name",
-            )
-            .map_err(db_err)?;
-        let rows = st
-            .query_map([], |r| {
-                Ok(Dataset {
-                    name: r.get(0)?,
-                    key: parse_key(r.get::<_, Option<String>>(1)?),
-                    created_at: r.get(2)?,
-                    n_versions: r.get::<_, i64>(3)? as u64,
-                })
+        self.rows(
+            "SELECT d.name, d.key_columns, d.created_at,
+                    (SELECT count(*) FROM versions v WHERE v.dataset_id = d.id)
+             FROM datasets d ORDER BY d.name",
+            &[],
+        )?
+        .iter()
+        .map(|r| {
+            Ok(Dataset {
+                name: r.text(0)?,
+                key: parse_key(r.opt_text(1)?),
+                created_at: r.text(2)?,
+                n_versions: u(r.int(3)?),
             })
-            .map_err(db_err)?;
-        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+        })
+        .collect()
     }
 
     pub fn dataset(&self, name: &str) -> Result<Option<Dataset>> {
@@ -245,48 +237,32 @@ impl Lineage {
     }
 
     pub fn versions_of(&self, dataset: &str) -> Result<Vec<Version>> {
-        self.query_versions("WHERE d.name = ?1 ORDER BY v.seq", params![dataset])
+        self.query_versions(VERSIONS_OF, vals![dataset])
     }
 
     pub fn latest_version(&self, dataset: &str) -> Result<Option<Version>> {
-        Ok(self
-            .query_versions(
-                "WHERE d.name = ?1 ORDER BY v.seq DESC LIMIT 1",
-                params![dataset],
-            )?
-            .pop())
+        Ok(self.query_versions(LATEST_VERSION, vals![dataset])?.pop())
     }
 
     pub fn version_by_seq(&self, dataset: &str, seq: u64) -> Result<Option<Version>> {
         Ok(self
-            .query_versions(
-                "WHERE d.name = ?1 AND v.seq = ?2",
-                params![dataset, seq as i64],
-            )?
+            .query_versions(VERSION_BY_SEQ, vals![dataset, seq as i64])?
             .pop())
     }
 
     pub fn version_by_id(&self, id: i64) -> Result<Option<Version>> {
-        Ok(self.query_versions("WHERE v.id = ?1", params![id])?.pop())
+        Ok(self.query_versions(VERSION_BY_ID, vals![id])?.pop())
     }
 
     /// The versions a step read, in order, each with its role ('input', 'table', 'other').
     pub fn step_input_versions(&self, step_id: i64) -> Result<Vec<(String, Version)>> {
-        let mut st = self
-            .conn
-            .prepare_cached(
-                "SELECT version_id, role FROM step_inputs WHERE step_id = ?1 ORDER BY position",
-            )
-            .map_err(db_err)?;
-        let rows = st
-            .query_map(params![step_id], |r| {
-                Ok((r.get::<_, i64>(0)?, r.get::<_, String>(1)?))
-            })
-            .map_err(db_err)?
-            .collect::<rusqlite::Result<Vec<_>>>()
-            .map_err(db_err)?;
+        let rows = self.rows(
+            "SELECT version_id, role FROM step_inputs WHERE step_id = ?1 ORDER BY position",
+            vals![step_id],
+        )?;
         let mut out = Vec::with_capacity(rows.len());
-        for (id, role) in rows {
+        for r in rows {
+            let (id, role) = (r.int(0)?, r.text(1)?);
             let v = self
                 .version_by_id(id)?
                 .ok_or_else(|| bad_field("step_inputs.version_id", &id.to_string()))?;
@@ -297,276 +273,127 @@ impl Lineage {
 
     /// The hash of a step's provenance object, if it has one (see `crate::provenance`).
     pub fn step_provenance(&self, step_id: i64) -> Result<Option<String>> {
-        self.conn
-            .query_row(
-                "SELECT provenance FROM steps WHERE id = ?1",
-                params![step_id],
-                |r| r.get::<_, Option<String>>(0),
-            )
-            .optional()
-            .map(Option::flatten)
-            .map_err(db_err)
+        match self.first("SELECT provenance FROM steps WHERE id = ?1", vals![step_id])? {
+            Some(r) => r.opt_text(0),
+            None => Ok(None),
+        }
     }
 
     /// The versions a step produced, in order.
     pub fn step_outputs(&self, step_id: i64) -> Result<Vec<Version>> {
-        self.query_versions("WHERE v.step_id = ?1 ORDER BY v.id", params![step_id])
+        self.query_versions(STEP_OUTPUTS, vals![step_id])
     }
 
     /// Versions whose hash starts with `prefix` (lowercase hex).
     pub fn versions_by_hash_prefix(&self, prefix: &str) -> Result<Vec<Version>> {
         // A range scan instead of LIKE, so that no character of the prefix is a pattern.
         let hi = format!("{prefix}g");
-        self.query_versions(
-            "WHERE v.hash >= ?1 AND v.hash < ?2 ORDER BY d.name, v.seq",
-            params![prefix, hi],
-        )
+        self.query_versions(VERSIONS_BY_PREFIX, vals![prefix, hi])
     }
 
     /// The versions whose bytes or row index are the object `hash`.
     pub fn versions_of_object(&self, hash: &str) -> Result<Vec<Version>> {
-        self.query_versions(
-            "WHERE v.hash = ?1 OR v.row_index = ?1 ORDER BY v.id",
-            params![hash],
-        )
+        self.query_versions(VERSIONS_OF_OBJECT, vals![hash])
     }
 
     /// The objects no stored version needs: those every version that names them (as its
     /// bytes or its row index) is [`Storage::Recomputable`]. `reclaim` may free them and
     /// `verify` does not miss them.
     pub fn unstored_objects(&self) -> Result<std::collections::HashSet<String>> {
-        let mut st = self.conn.prepare(UNSTORED_OBJECTS).map_err(db_err)?;
-        let rows = st.query_map([], |r| r.get(0)).map_err(db_err)?;
-        rows.collect::<rusqlite::Result<_>>().map_err(db_err)
+        self.rows(UNSTORED_OBJECTS, &[])?
+            .iter()
+            .map(|r| r.text(0))
+            .collect()
     }
 
     /// Whether a version whose bytes are `hash` is recorded as stored (any of them: versions
     /// of identical bytes share one object). For [`super::Store::bytes_stored`].
     pub fn hash_stored(&self, hash: &str) -> Result<bool> {
-        self.conn
-            .query_row(
-                "SELECT EXISTS (SELECT 1 FROM versions WHERE hash = ?1
+        let r = self.first(
+            "SELECT CASE WHEN EXISTS (SELECT 1 FROM versions WHERE hash = ?1
                      AND (storage IS NULL OR storage <> 'recomputable'))
-                 OR NOT EXISTS (SELECT 1 FROM versions WHERE hash = ?1)",
-                params![hash],
-                |r| r.get(0),
-            )
-            .map_err(db_err)
+                 OR NOT EXISTS (SELECT 1 FROM versions WHERE hash = ?1) THEN 1 ELSE 0 END",
+            vals![hash],
+        )?;
+        Ok(r.map_or(Ok(0), |r| r.int(0))? == 1)
     }
 
     pub fn all_versions(&self) -> Result<Vec<Version>> {
-        self.query_versions("ORDER BY d.name, v.seq", params![])
+        self.query_versions(ALL_VERSIONS, &[])
     }
 
-    fn query_versions(&self, tail: &str, p: impl rusqlite::Params) -> Result<Vec<Version>> {
-        let sql = format!(
-            "SELECT v.id, d.name, v.seq, v.hash, v.row_index, v.n_rows, v.n_cols, v.n_bytes,
-                    v.header, v.dialect, v.null_tokens, v.created_at, v.step_id, v.storage
-             FROM versions v JOIN datasets d ON d.id = v.dataset_id {tail}"
-        );
-        let mut st = self.conn.prepare(&sql).map_err(db_err)?;
-        let rows = st
-            .query_map(p, |r| {
-                Ok((
-                    r.get::<_, i64>(0)?,
-                    r.get::<_, String>(1)?,
-                    r.get::<_, i64>(2)?,
-                    r.get::<_, String>(3)?,
-                    r.get::<_, String>(4)?,
-                    r.get::<_, i64>(5)?,
-                    r.get::<_, i64>(6)?,
-                    r.get::<_, i64>(7)?,
-                    r.get::<_, String>(8)?,
-                    r.get::<_, String>(9)?,
-                    r.get::<_, String>(10)?,
-                    r.get::<_, String>(11)?,
-                    r.get::<_, i64>(12)?,
-                    r.get::<_, Option<String>>(13)?,
-                ))
-            })
-            .map_err(db_err)?;
-        let mut out = Vec::new();
-        for row in rows {
-            let (
-                id,
-                dataset,
-                seq,
-                hash,
-                row_index,
-                n_rows,
-                n_cols,
-                n_bytes,
-                header,
-                dialect,
-                nulls,
-                created_at,
-                step_id,
-                storage,
-            ) = row.map_err(db_err)?;
-            out.push(Version {
-                id,
-                dataset,
-                seq: seq as u64,
-                hash,
-                row_index,
-                n_rows: n_rows as u64,
-                n_cols: n_cols as u64,
-                n_bytes: n_bytes as u64,
-                header: parse_json_field(&header, "versions.header")?,
-                dialect: parse_json_field::<Dialect>(&dialect, "versions.dialect")?,
-                null_tokens: parse_json_field(&nulls, "versions.null_tokens")?,
-                created_at,
-                step_id,
-                storage: Storage::from_column(storage.as_deref()).ok_or_else(|| {
-                    bad_field("versions.storage", storage.as_deref().unwrap_or(""))
-                })?,
-            });
-        }
-        Ok(out)
+    fn query_versions(&self, sql: &str, p: &[backend::Value]) -> Result<Vec<Version>> {
+        read_versions(&self.rows(sql, p)?)
     }
 
     pub fn profiles(&self, version_id: i64) -> Result<Vec<ColumnProfile>> {
-        let mut st = self
-            .conn
-            .prepare(
-                "SELECT name, inferred_type, n_blank, n_distinct, distinct_exact, min_value,
-                        max_value, min_len, max_len
-                 FROM column_profiles WHERE version_id = ?1 ORDER BY col_idx",
-            )
-            .map_err(db_err)?;
-        let rows = st
-            .query_map(params![version_id], |r| {
-                Ok(ColumnProfile {
-                    name: r.get(0)?,
-                    inferred_type: r.get(1)?,
-                    n_blank: r.get::<_, i64>(2)? as u64,
-                    n_distinct: r.get::<_, i64>(3)? as u64,
-                    distinct_exact: r.get::<_, i64>(4)? == 1,
-                    min: r.get(5)?,
-                    max: r.get(6)?,
-                    min_len: r.get::<_, Option<i64>>(7)?.map(|v| v as u64),
-                    max_len: r.get::<_, Option<i64>>(8)?.map(|v| v as u64),
-                })
+        self.rows(
+            "SELECT name, inferred_type, n_blank, n_distinct, distinct_exact, min_value,
+                    max_value, min_len, max_len
+             FROM column_profiles WHERE version_id = ?1 ORDER BY col_idx",
+            vals![version_id],
+        )?
+        .iter()
+        .map(|r| {
+            Ok(ColumnProfile {
+                name: r.text(0)?,
+                inferred_type: r.text(1)?,
+                n_blank: u(r.int(2)?),
+                n_distinct: u(r.int(3)?),
+                distinct_exact: r.int(4)? == 1,
+                min: r.opt_text(5)?,
+                max: r.opt_text(6)?,
+                min_len: r.opt_int(7)?.map(u),
+                max_len: r.opt_int(8)?.map(u),
             })
-            .map_err(db_err)?;
-        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+        })
+        .collect()
     }
 
     pub fn step(&self, id: i64) -> Result<Option<Step>> {
-        Ok(self.query_steps("WHERE s.id = ?1", params![id])?.pop())
+        Ok(self.query_steps(STEP_BY_ID, vals![id])?.pop())
     }
 
     /// Steps that produced or read a version of `dataset` (every step when `None`), newest first.
     pub fn steps(&self, dataset: Option<&str>) -> Result<Vec<Step>> {
         match dataset {
-            None => self.query_steps("ORDER BY s.id DESC", params![]),
-            Some(name) => self.query_steps(
-                "WHERE s.id IN (
-                    SELECT v.step_id FROM versions v JOIN datasets d ON d.id = v.dataset_id WHERE d.name = ?1
-                    UNION
-                    SELECT i.step_id FROM step_inputs i JOIN versions v ON v.id = i.version_id
-                        JOIN datasets d ON d.id = v.dataset_id WHERE d.name = ?1)
-                 ORDER BY s.id DESC",
-                params![name],
-            ),
+            None => self.query_steps(ALL_STEPS, &[]),
+            Some(name) => self.query_steps(STEPS_OF_DATASET, vals![name]),
         }
     }
 
-    fn query_steps(&self, tail: &str, p: impl rusqlite::Params) -> Result<Vec<Step>> {
-        let sql = format!(
-            "SELECT s.id, s.kind, s.operation, s.params, a.identity, s.tool_version, s.reason,
-                    s.started_at, s.ended_at, s.rows_in, s.rows_out, s.lineage, s.source, s.code,
-                    s.repeats_step, s.reverts_step
-             FROM steps s JOIN agents a ON a.id = s.agent_id {tail}"
-        );
-        let mut st = self.conn.prepare(&sql).map_err(db_err)?;
-        type Raw = (
-            i64,
-            String,
-            Option<String>,
-            String,
-            String,
-            String,
-            Option<String>,
-            String,
-            String,
-            Option<i64>,
-            Option<i64>,
-            String,
-            Option<String>,
-            Option<String>,
-            Option<i64>,
-            Option<i64>,
-        );
-        let rows = st
-            .query_map(p, |r| {
-                Ok::<Raw, rusqlite::Error>((
-                    r.get(0)?,
-                    r.get(1)?,
-                    r.get(2)?,
-                    r.get(3)?,
-                    r.get(4)?,
-                    r.get(5)?,
-                    r.get(6)?,
-                    r.get(7)?,
-                    r.get(8)?,
-                    r.get(9)?,
-                    r.get(10)?,
-                    r.get(11)?,
-                    r.get(12)?,
-                    r.get(13)?,
-                    r.get(14)?,
-                    r.get(15)?,
-                ))
-            })
-            .map_err(db_err)?;
-        let raws = rows
-            .collect::<rusqlite::Result<Vec<Raw>>>()
-            .map_err(db_err)?;
+    fn query_steps(&self, sql: &str, p: &[backend::Value]) -> Result<Vec<Step>> {
+        let raws = self.rows(sql, p)?;
         let mut out = Vec::with_capacity(raws.len());
-        for (
-            id,
-            kind,
-            operation,
-            params_text,
-            agent,
-            tool_version,
-            reason,
-            started_at,
-            ended_at,
-            rows_in,
-            rows_out,
-            lineage,
-            source,
-            code,
-            repeats_step,
-            reverts_step,
-        ) in raws
-        {
+        for r in raws {
+            let id = r.int(0)?;
+            let kind = r.text(1)?;
+            let params_text = r.text(3)?;
+            let lineage = r.text(11)?;
             out.push(Step {
                 id,
                 kind: StepKind::parse(&kind).ok_or_else(|| bad_field("steps.kind", &kind))?,
-                operation,
+                operation: r.opt_text(2)?,
                 params: parse_json_field::<Value>(&params_text, "steps.params")?,
-                agent,
-                tool_version,
-                reason,
-                started_at,
-                ended_at,
-                rows_in: rows_in.map(|v| v as u64),
-                rows_out: rows_out.map(|v| v as u64),
+                agent: r.text(4)?,
+                tool_version: r.text(5)?,
+                reason: r.opt_text(6)?,
+                started_at: r.text(7)?,
+                ended_at: r.text(8)?,
+                rows_in: r.opt_int(9)?.map(u),
+                rows_out: r.opt_int(10)?.map(u),
                 lineage: LineageKind::parse(&lineage)
                     .ok_or_else(|| bad_field("steps.lineage", &lineage))?,
-                source: match source {
+                source: match r.opt_text(12)? {
                     Some(s) => Some(parse_json_field::<SourceFile>(&s, "steps.source")?),
                     None => None,
                 },
-                code: match code {
+                code: match r.opt_text(13)? {
                     Some(c) => Some(parse_json_field::<Value>(&c, "steps.code")?),
                     None => None,
                 },
-                repeats_step,
-                reverts_step,
+                repeats_step: r.opt_int(14)?,
+                reverts_step: r.opt_int(15)?,
                 inputs: self.labels(
                     "SELECT d.name, v.seq FROM step_inputs i JOIN versions v ON v.id = i.version_id
                      JOIN datasets d ON d.id = v.dataset_id WHERE i.step_id = ?1 ORDER BY i.position",
@@ -583,340 +410,374 @@ impl Lineage {
     }
 
     fn labels(&self, sql: &str, step_id: i64) -> Result<Vec<String>> {
-        let mut st = self.conn.prepare_cached(sql).map_err(db_err)?;
-        let rows = st
-            .query_map(params![step_id], |r| {
-                Ok(format!(
-                    "{}:v{}",
-                    r.get::<_, String>(0)?,
-                    r.get::<_, i64>(1)?
-                ))
-            })
-            .map_err(db_err)?;
-        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+        self.rows(sql, vals![step_id])?
+            .iter()
+            .map(|r| Ok(format!("{}:v{}", r.text(0)?, r.int(1)?)))
+            .collect()
     }
 
     /// The row map of output version `output_id` from input `input_id`, ordered by output row.
     pub fn row_runs(&self, output_id: i64, input_id: i64) -> Result<Vec<RowRun>> {
-        let mut st = self
-            .conn
-            .prepare_cached(
-                "SELECT out_start, in_start, len FROM row_runs
-                 WHERE output_id = ?1 AND input_id = ?2 ORDER BY out_start",
-            )
-            .map_err(db_err)?;
-        let rows = st
-            .query_map(params![output_id, input_id], |r| {
-                Ok(RowRun {
-                    out_start: r.get::<_, i64>(0)? as u64,
-                    in_start: r.get::<_, i64>(1)? as u64,
-                    len: r.get::<_, i64>(2)? as u64,
-                })
+        self.rows(
+            "SELECT out_start, in_start, len FROM row_runs
+             WHERE output_id = ?1 AND input_id = ?2 ORDER BY out_start",
+            vals![output_id, input_id],
+        )?
+        .iter()
+        .map(|r| {
+            Ok(RowRun {
+                out_start: u(r.int(0)?),
+                in_start: u(r.int(1)?),
+                len: u(r.int(2)?),
             })
-            .map_err(db_err)?;
-        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+        })
+        .collect()
     }
 
     /// The cells the step that made `output_id` changed, by row then column name.
     pub fn cell_changes(&self, output_id: i64) -> Result<Vec<CellChange>> {
-        let mut st = self
-            .conn
-            .prepare_cached(
-                "SELECT row_idx, column_name, old_value, new_value FROM cell_changes
-                 WHERE output_id = ?1 ORDER BY row_idx, column_name",
-            )
-            .map_err(db_err)?;
-        let rows = st
-            .query_map(params![output_id], |r| {
-                Ok(CellChange {
-                    row_idx: r.get::<_, i64>(0)? as u64,
-                    column: r.get(1)?,
-                    old: r.get(2)?,
-                    new: r.get(3)?,
-                })
+        self.rows(
+            "SELECT row_idx, column_name, old_value, new_value FROM cell_changes
+             WHERE output_id = ?1 ORDER BY row_idx, column_name",
+            vals![output_id],
+        )?
+        .iter()
+        .map(|r| {
+            Ok(CellChange {
+                row_idx: u(r.int(0)?),
+                column: r.text(1)?,
+                old: r.opt_text(2)?,
+                new: r.opt_text(3)?,
             })
-            .map_err(db_err)?;
-        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+        })
+        .collect()
     }
 
     /// The check results recorded on a version, oldest first: (rule JSON, passed, failing
     /// rows, who, when, whether it ran as a plan's gate).
     pub fn check_results(&self, version_id: i64) -> Result<Vec<CheckRow>> {
-        let mut st = self
-            .conn
-            .prepare_cached(
-                "SELECT c.rule, c.passed, c.n_failing, a.identity, c.checked_at, c.gate FROM check_results c
-                 JOIN agents a ON a.id = c.agent_id WHERE c.version_id = ?1 ORDER BY c.id",
-            )
-            .map_err(db_err)?;
-        let rows = st
-            .query_map(params![version_id], |r| {
-                Ok((
-                    r.get(0)?,
-                    r.get::<_, i64>(1)? == 1,
-                    r.get::<_, i64>(2)? as u64,
-                    r.get(3)?,
-                    r.get(4)?,
-                    r.get::<_, i64>(5)? == 1,
-                ))
-            })
-            .map_err(db_err)?;
-        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+        self.rows(
+            "SELECT c.rule, c.passed, c.n_failing, a.identity, c.checked_at, c.gate FROM check_results c
+             JOIN agents a ON a.id = c.agent_id WHERE c.version_id = ?1 ORDER BY c.id",
+            vals![version_id],
+        )?
+        .iter()
+        .map(|r| {
+            Ok((
+                r.text(0)?,
+                r.int(1)? == 1,
+                u(r.int(2)?),
+                r.text(3)?,
+                r.text(4)?,
+                r.int(5)? == 1,
+            ))
+        })
+        .collect()
     }
 
     /// The notes on single cells of output version `output_id`: (row, column, note).
     pub fn cell_notes(&self, output_id: i64) -> Result<Vec<(u64, String, String)>> {
-        let mut st = self
-            .conn
-            .prepare_cached(
-                "SELECT row_idx, column_name, note FROM cell_notes
-                 WHERE output_id = ?1 ORDER BY row_idx, column_name",
-            )
-            .map_err(db_err)?;
-        let rows = st
-            .query_map(params![output_id], |r| {
-                Ok((r.get::<_, i64>(0)? as u64, r.get(1)?, r.get(2)?))
-            })
-            .map_err(db_err)?;
-        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+        self.rows(
+            "SELECT row_idx, column_name, note FROM cell_notes
+             WHERE output_id = ?1 ORDER BY row_idx, column_name",
+            vals![output_id],
+        )?
+        .iter()
+        .map(|r| Ok((u(r.int(0)?), r.text(1)?, r.text(2)?)))
+        .collect()
     }
 
     /// (output column, input column) pairs recorded for output version `output_id`.
     pub fn column_sources(&self, output_id: i64) -> Result<Vec<(String, String)>> {
-        let mut st = self
-            .conn
-            .prepare_cached(
-                "SELECT output_column, input_column FROM column_sources
-                 WHERE output_id = ?1 ORDER BY output_column, input_column",
-            )
-            .map_err(db_err)?;
-        let rows = st
-            .query_map(params![output_id], |r| Ok((r.get(0)?, r.get(1)?)))
-            .map_err(db_err)?;
-        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+        self.rows(
+            "SELECT output_column, input_column FROM column_sources
+             WHERE output_id = ?1 ORDER BY output_column, input_column",
+            vals![output_id],
+        )?
+        .iter()
+        .map(|r| Ok((r.text(0)?, r.text(1)?)))
+        .collect()
     }
 
     /// Like [`Lineage::column_sources`], with the input version each source column is in:
     /// (output column, input version id, input column).
     pub fn column_sources_from(&self, output_id: i64) -> Result<Vec<(String, i64, String)>> {
-        let mut st = self
-            .conn
-            .prepare_cached(
-                "SELECT output_column, input_id, input_column FROM column_sources
-                 WHERE output_id = ?1 ORDER BY output_column, input_id, input_column",
-            )
-            .map_err(db_err)?;
-        let rows = st
-            .query_map(params![output_id], |r| {
-                Ok((r.get(0)?, r.get(1)?, r.get(2)?))
-            })
-            .map_err(db_err)?;
-        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+        self.rows(
+            "SELECT output_column, input_id, input_column FROM column_sources
+             WHERE output_id = ?1 ORDER BY output_column, input_id, input_column",
+            vals![output_id],
+        )?
+        .iter()
+        .map(|r| Ok((r.text(0)?, r.int(1)?, r.text(2)?)))
+        .collect()
     }
 
     /// The input rows of `input_id` that step `step_id` removed, by row.
     pub fn drops(&self, step_id: i64, input_id: i64) -> Result<Vec<Drop>> {
-        let mut st = self
-            .conn
-            .prepare_cached(
-                "SELECT row_idx, reason, duplicate_of FROM drops
-                 WHERE step_id = ?1 AND input_id = ?2 ORDER BY row_idx",
-            )
-            .map_err(db_err)?;
-        let rows = st
-            .query_map(params![step_id, input_id], |r| {
-                Ok(Drop {
-                    row_idx: r.get::<_, i64>(0)? as u64,
-                    reason: r.get(1)?,
-                    duplicate_of: r.get::<_, Option<i64>>(2)?.map(|v| v as u64),
-                })
+        self.rows(
+            "SELECT row_idx, reason, duplicate_of FROM drops
+             WHERE step_id = ?1 AND input_id = ?2 ORDER BY row_idx",
+            vals![step_id, input_id],
+        )?
+        .iter()
+        .map(|r| {
+            Ok(Drop {
+                row_idx: u(r.int(0)?),
+                reason: r.text(1)?,
+                duplicate_of: r.opt_int(2)?.map(u),
             })
-            .map_err(db_err)?;
-        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+        })
+        .collect()
     }
 
     pub fn audit_entries(&self) -> Result<Vec<AuditEntry>> {
-        super::audit::entries(&self.conn)
+        super::audit::entries(self.db.as_ref())
     }
 
     /// Every endorsement (sign-offs and changes to the trusted keys), in recording order.
     pub fn endorsements(&self) -> Result<Vec<Endorsement>> {
-        let mut st = self
-            .conn
-            .prepare(
-                "SELECT id, kind, subject, label, meaning, name, signed_at, fingerprint,
-                        public_key, admitted_key, statement, signature
-                 FROM endorsements ORDER BY id",
-            )
-            .map_err(db_err)?;
-        let rows = st
-            .query_map([], |r| {
-                Ok(Endorsement {
-                    id: r.get(0)?,
-                    kind: r.get(1)?,
-                    subject: r.get(2)?,
-                    label: r.get(3)?,
-                    meaning: r.get(4)?,
-                    name: r.get(5)?,
-                    signed_at: r.get(6)?,
-                    fingerprint: r.get(7)?,
-                    public_key: r.get(8)?,
-                    admitted_key: r.get(9)?,
-                    statement: r.get(10)?,
-                    signature: r.get(11)?,
-                })
+        self.rows(
+            "SELECT id, kind, subject, label, meaning, name, signed_at, fingerprint,
+                    public_key, admitted_key, statement, signature
+             FROM endorsements ORDER BY id",
+            &[],
+        )?
+        .iter()
+        .map(|r| {
+            Ok(Endorsement {
+                id: r.int(0)?,
+                kind: r.text(1)?,
+                subject: r.text(2)?,
+                label: r.text(3)?,
+                meaning: r.text(4)?,
+                name: r.text(5)?,
+                signed_at: r.text(6)?,
+                fingerprint: r.text(7)?,
+                public_key: r.text(8)?,
+                admitted_key: r.opt_text(9)?,
+                statement: r.text(10)?,
+                signature: r.text(11)?,
             })
-            .map_err(db_err)?;
-        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+        })
+        .collect()
     }
 
     /// The meanings the store declared, in declaration order.
     pub fn meanings(&self) -> Result<Vec<Meaning>> {
-        let mut st = self
-            .conn
-            .prepare("SELECT word, description, declared_at FROM meanings ORDER BY id")
-            .map_err(db_err)?;
-        let rows = st
-            .query_map([], |r| {
-                Ok(Meaning {
-                    word: r.get(0)?,
-                    description: r.get(1)?,
-                    declared_at: Some(r.get(2)?),
-                })
+        self.rows(
+            "SELECT word, description, declared_at FROM meanings ORDER BY id",
+            &[],
+        )?
+        .iter()
+        .map(|r| {
+            Ok(Meaning {
+                word: r.text(0)?,
+                description: r.text(1)?,
+                declared_at: Some(r.text(2)?),
             })
-            .map_err(db_err)?;
-        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+        })
+        .collect()
     }
 
     /// The recorded size of object `hash`, when it is recorded.
     pub fn object_size(&self, hash: &str) -> Result<Option<u64>> {
-        self.conn
-            .query_row(
-                "SELECT n_bytes FROM objects WHERE hash = ?1",
-                params![hash],
-                |r| r.get::<_, i64>(0),
-            )
-            .optional()
-            .map(|n| n.map(|n| n as u64))
-            .map_err(db_err)
+        match self.first("SELECT n_bytes FROM objects WHERE hash = ?1", vals![hash])? {
+            Some(r) => Ok(Some(u(r.int(0)?))),
+            None => Ok(None),
+        }
     }
 
     /// Every object the database records, as (hash, kind, n_bytes).
     pub fn objects(&self) -> Result<Vec<(String, String, u64)>> {
-        let mut st = self
-            .conn
-            .prepare("SELECT hash, kind, n_bytes FROM objects ORDER BY hash")
-            .map_err(db_err)?;
-        let rows = st
-            .query_map([], |r| {
-                Ok((r.get(0)?, r.get(1)?, r.get::<_, i64>(2)? as u64))
-            })
-            .map_err(db_err)?;
-        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+        self.rows("SELECT hash, kind, n_bytes FROM objects ORDER BY hash", &[])?
+            .iter()
+            .map(|r| Ok((r.text(0)?, r.text(1)?, u(r.int(2)?))))
+            .collect()
     }
 
-    /// SQLite's own structural check plus its foreign-key check, as human-readable lines.
+    /// The backend's own structural and foreign-key checks, as human-readable lines.
     pub fn integrity_problems(&self) -> Result<Vec<String>> {
-        let mut out = Vec::new();
-        let mut st = self
-            .conn
-            .prepare("PRAGMA integrity_check")
-            .map_err(|e| corrupt(&self.path, e))?;
-        let rows = st
-            .query_map([], |r| r.get::<_, String>(0))
-            .map_err(|e| corrupt(&self.path, e))?;
-        for r in rows {
-            let line = r.map_err(|e| corrupt(&self.path, e))?;
-            if line != "ok" {
-                out.push(format!("database structure: {line}"));
-            }
-        }
-        out.extend(self.strings("PRAGMA foreign_key_check", |r| {
-            Ok(format!(
-                "table {} row {} refers to a missing row of {}",
-                r.get::<_, String>(0)?,
-                r.get::<_, Option<i64>>(1)?
-                    .map_or("?".into(), |v| v.to_string()),
-                r.get::<_, String>(2)?
-            ))
-        })?);
-        Ok(out)
+        self.db.integrity_problems()
     }
 
     /// Checks that go beyond foreign keys: every version's objects are of the right kind, and
     /// version numbers of each dataset run 1..n without gaps.
     pub fn consistency_problems(&self) -> Result<Vec<String>> {
         let mut out = Vec::new();
-        out.extend(self.strings(
+        for r in self.rows(
             "SELECT d.name, v.seq, o.kind, 'table' FROM versions v JOIN datasets d ON d.id = v.dataset_id
                 JOIN objects o ON o.hash = v.hash WHERE o.kind != 'table'
              UNION ALL
              SELECT d.name, v.seq, o.kind, 'row_index' FROM versions v JOIN datasets d ON d.id = v.dataset_id
                 JOIN objects o ON o.hash = v.row_index WHERE o.kind != 'row_index'",
-            |r| {
-                Ok(format!(
-                    "version {}:v{}: its {} object is recorded as kind {}",
-                    r.get::<_, String>(0)?,
-                    r.get::<_, i64>(1)?,
-                    r.get::<_, String>(3)?,
-                    r.get::<_, String>(2)?
-                ))
-            },
-        )?);
-        out.extend(self.strings(
+            &[],
+        )? {
+            out.push(format!(
+                "version {}:v{}: its {} object is recorded as kind {}",
+                r.text(0)?,
+                r.int(1)?,
+                r.text(3)?,
+                r.text(2)?
+            ));
+        }
+        for r in self.rows(
             "SELECT d.name, count(v.id), coalesce(max(v.seq), 0) FROM datasets d
-             LEFT JOIN versions v ON v.dataset_id = d.id GROUP BY d.id
+             LEFT JOIN versions v ON v.dataset_id = d.id GROUP BY d.id, d.name
              HAVING count(v.id) != coalesce(max(v.seq), 0)",
-            |r| {
-                Ok(format!(
-                    "dataset {}: {} versions but numbers go up to {} (a version is missing)",
-                    r.get::<_, String>(0)?,
-                    r.get::<_, i64>(1)?,
-                    r.get::<_, i64>(2)?
-                ))
-            },
-        )?);
+            &[],
+        )? {
+            out.push(format!(
+                "dataset {}: {} versions but numbers go up to {} (a version is missing)",
+                r.text(0)?,
+                r.int(1)?,
+                r.int(2)?
+            ));
+        }
         Ok(out)
     }
 
     /// The rows a committed selector names now, as (rowid, canonical encoding); an error when
     /// the table is gone or unreadable.
     pub fn selected_rows(&self, sel: &Selector) -> Result<Vec<(i64, Vec<u8>)>> {
-        super::audit::select_rows(&self.conn, sel)
+        super::audit::select_rows(self.db.as_ref(), sel)
     }
 
     /// Every rowid of one of [`super::audit::TABLES`].
     pub fn rowids(&self, table: &str) -> Result<Vec<i64>> {
-        super::audit::rowids(&self.conn, table)
+        super::audit::rowids(self.db.as_ref(), table)
     }
 
-    /// The tables, views and triggers the database holds (names and types), besides SQLite's own.
+    /// The tables, views and triggers the database holds (names and types), besides the
+    /// backend's own.
     pub fn schema_objects(&self) -> Result<Vec<(String, String)>> {
-        let mut st = self
-            .conn
-            .prepare(
-                "SELECT type, name FROM sqlite_master WHERE type IN ('table', 'view', 'trigger')
-                 AND name NOT LIKE 'sqlite\\_%' ESCAPE '\\' ORDER BY name",
-            )
-            .map_err(db_err)?;
-        let rows = st
-            .query_map([], |r| Ok((r.get(0)?, r.get(1)?)))
-            .map_err(db_err)?;
-        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
-    }
-
-    /// Runs a query without parameters and renders each row as a line.
-    fn strings(
-        &self,
-        sql: &str,
-        render: impl FnMut(&rusqlite::Row<'_>) -> rusqlite::Result<String>,
-    ) -> Result<Vec<String>> {
-        let mut st = self.conn.prepare(sql).map_err(db_err)?;
-        let rows = st.query_map([], render).map_err(db_err)?;
-        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+        self.db.schema_objects()
     }
 }
 
+/// The version queries: one column list, each with its own condition and order.
+macro_rules! version_query {
+    ($tail:literal) => {
+        concat!(
+            "SELECT v.id, d.name, v.seq, v.hash, v.row_index, v.n_rows, v.n_cols, v.n_bytes,
+                    v.header, v.dialect, v.null_tokens, v.created_at, v.step_id, v.storage
+             FROM versions v JOIN datasets d ON d.id = v.dataset_id ",
+            $tail
+        )
+    };
+}
+
+/// What [`Lineage::copy_into`] did: the audit entries the target held, and how many it gained.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Copied {
+    pub entries_before: u64,
+    pub entries_copied: u64,
+}
+
+/// Why `theirs` (the target's chain) is not a beginning of `ours`, if it is not: the first
+/// entry where they part, named in full.
+fn moved_on(ours: &[AuditEntry], theirs: &[AuditEntry], from: &str, to: &str) -> Option<String> {
+    let describe = |e: &AuditEntry| {
+        format!(
+            "audit entry {} ({} {} by {} at {}, {})",
+            e.seq,
+            e.action,
+            e.subject,
+            e.agent,
+            e.at,
+            crate::model::short_hash(&e.hash)
+        )
+    };
+    for (i, t) in theirs.iter().enumerate() {
+        match ours.get(i) {
+            Some(o) if o.hash == t.hash => continue,
+            Some(o) if i == 0 => {
+                return Some(format!(
+                    "{to} and {from} are different stores: their first audit entries differ (there {}, here {}); nothing was copied. Copy a store only into a new shared store (`sluice publish --to DIR --lineage-server CONN`) or into the one it was borrowed from",
+                    describe(t),
+                    describe(o)
+                ))
+            }
+            Some(o) => {
+                return Some(format!(
+                    "{to} and {from} part at audit entry {}: there it is {}, here {}; nothing was copied. The histories differ from that entry on and are never merged: take a fresh copy of {to} into a new folder, redo the work after entry {} there, then copy it",
+                    t.seq,
+                    describe(t),
+                    describe(o),
+                    t.seq.saturating_sub(1)
+                ))
+            }
+            None => {
+                return Some(format!(
+                    "{to} moved on: it holds {} audit entries, this store {}, and its {} is not here; nothing was copied. Take a fresh copy of {to} into a new folder, redo the work there, then copy it",
+                    theirs.len(),
+                    ours.len(),
+                    describe(t)
+                ))
+            }
+        }
+    }
+    None
+}
+
+const VERSIONS_OF: &str = version_query!("WHERE d.name = ?1 ORDER BY v.seq");
+const LATEST_VERSION: &str = version_query!("WHERE d.name = ?1 ORDER BY v.seq DESC LIMIT 1");
+const VERSION_BY_SEQ: &str = version_query!("WHERE d.name = ?1 AND v.seq = ?2");
+const VERSION_BY_ID: &str = version_query!("WHERE v.id = ?1");
+const STEP_OUTPUTS: &str = version_query!("WHERE v.step_id = ?1 ORDER BY v.id");
+const VERSIONS_BY_PREFIX: &str =
+    version_query!("WHERE v.hash >= ?1 AND v.hash < ?2 ORDER BY d.name, v.seq");
+const VERSIONS_OF_OBJECT: &str =
+    version_query!("WHERE v.hash = ?1 OR v.row_index = ?1 ORDER BY v.id");
+const ALL_VERSIONS: &str = version_query!("ORDER BY d.name, v.seq");
+
+/// The step queries: one column list, each with its own condition and order.
+macro_rules! step_query {
+    ($tail:literal) => {
+        concat!(
+            "SELECT s.id, s.kind, s.operation, s.params, a.identity, s.tool_version, s.reason,
+                    s.started_at, s.ended_at, s.rows_in, s.rows_out, s.lineage, s.source, s.code,
+                    s.repeats_step, s.reverts_step
+             FROM steps s JOIN agents a ON a.id = s.agent_id ",
+            $tail
+        )
+    };
+}
+
+const STEP_BY_ID: &str = step_query!("WHERE s.id = ?1");
+const ALL_STEPS: &str = step_query!("ORDER BY s.id DESC");
+const STEPS_OF_DATASET: &str = step_query!(
+    "WHERE s.id IN (
+        SELECT v.step_id FROM versions v JOIN datasets d ON d.id = v.dataset_id WHERE d.name = ?1
+        UNION
+        SELECT i.step_id FROM step_inputs i JOIN versions v ON v.id = i.version_id
+            JOIN datasets d ON d.id = v.dataset_id WHERE d.name = ?1)
+     ORDER BY s.id DESC"
+);
+
+fn read_versions(rows: &[Row]) -> Result<Vec<Version>> {
+    let mut out = Vec::with_capacity(rows.len());
+    for r in rows {
+        let storage = r.opt_text(13)?;
+        out.push(Version {
+            id: r.int(0)?,
+            dataset: r.text(1)?,
+            seq: u(r.int(2)?),
+            hash: r.text(3)?,
+            row_index: r.text(4)?,
+            n_rows: u(r.int(5)?),
+            n_cols: u(r.int(6)?),
+            n_bytes: u(r.int(7)?),
+            header: parse_json_field(&r.text(8)?, "versions.header")?,
+            dialect: parse_json_field::<Dialect>(&r.text(9)?, "versions.dialect")?,
+            null_tokens: parse_json_field(&r.text(10)?, "versions.null_tokens")?,
+            created_at: r.text(11)?,
+            step_id: r.int(12)?,
+            storage: Storage::from_column(storage.as_deref())
+                .ok_or_else(|| bad_field("versions.storage", storage.as_deref().unwrap_or("")))?,
+        });
+    }
+    Ok(out)
+}
 fn parse_key(v: Option<String>) -> Option<Vec<String>> {
     v.and_then(|s| serde_json::from_str(&s).ok())
 }
@@ -987,8 +848,10 @@ pub struct NewVersion<'a> {
 
 /// An open write transaction. `journal` names the rows written since the last audit entry; the
 /// next entry commits to them (see [`super::audit`]).
+/// An open write transaction. `journal` names the rows written since the last audit entry; the
+/// next entry commits to them (see [`super::audit`]).
 pub struct Tx<'c> {
-    tx: rusqlite::Transaction<'c>,
+    db: &'c dyn Database,
     journal: Vec<Selector>,
 }
 
@@ -997,22 +860,35 @@ impl Tx<'_> {
         self.journal.push(Selector::one(table, by, key));
     }
 
+    fn exec(&self, sql: &str, p: &[backend::Value]) -> Result<u64> {
+        self.db.execute(sql, p)
+    }
+
+    fn first(&self, sql: &str, p: &[backend::Value]) -> Result<Option<Row>> {
+        Ok(self.db.query(sql, p)?.into_iter().next())
+    }
+
+    /// The one integer a query that always returns a row returns (an id it made).
+    fn int(&self, sql: &str, p: &[backend::Value]) -> Result<i64> {
+        match self.first(sql, p)? {
+            Some(r) => r.int(0),
+            None => Err(ErrorKind::Internal(format!("no row from {sql}")).into()),
+        }
+    }
+
     fn agent_id(&mut self, agent: &Agent) -> Result<i64> {
-        self.tx
-            .execute(
-                "INSERT INTO agents (identity, kind, source) VALUES (?1, 'person', ?2)
-                 ON CONFLICT (identity) DO NOTHING",
-                params![agent.identity(), agent.source],
-            )
-            .map_err(db_err)?;
-        let id = self
-            .tx
-            .query_row(
-                "SELECT id FROM agents WHERE identity = ?1",
-                params![agent.identity()],
-                |r| r.get(0),
-            )
-            .map_err(db_err)?;
+        // Ids are given as the highest so far plus one, inside the write transaction that
+        // holds the writers' lock: gap-free and in commit order on both backends.
+        self.exec(
+            "INSERT INTO agents (id, identity, kind, source)
+             SELECT coalesce(max(id), 0) + 1, ?1, 'person', ?2 FROM agents WHERE true
+             ON CONFLICT (identity) DO NOTHING",
+            vals![agent.identity(), agent.source.as_str()],
+        )?;
+        let id = self.int(
+            "SELECT id FROM agents WHERE identity = ?1",
+            vals![agent.identity()],
+        )?;
         self.wrote("agents", "id", Key::Int(id));
         Ok(id)
     }
@@ -1023,92 +899,83 @@ impl Tx<'_> {
             Some(src) => Some(serde_json::to_string(src).map_err(|e| Error::usage(e.to_string()))?),
             None => None,
         };
-        self.tx
-            .execute(
-                "INSERT INTO steps (kind, operation, params, agent_id, tool_version, reason,
-                    started_at, ended_at, rows_in, rows_out, lineage, source, provenance, code,
-                    repeats_step)
-                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15)",
-                params![
-                    s.kind.as_str(),
-                    s.operation,
-                    canonical_json(&s.params),
-                    agent_id,
-                    crate::TOOL_VERSION,
-                    s.reason,
-                    s.started_at,
-                    s.ended_at,
-                    s.rows_in.map(|v| v as i64),
-                    s.rows_out.map(|v| v as i64),
-                    s.lineage.as_str(),
-                    source,
-                    s.provenance,
-                    s.code.map(canonical_json),
-                    s.repeats_step,
-                ],
-            )
-            .map_err(db_err)?;
-        let step_id = self.tx.last_insert_rowid();
+        let step_id = self.int(
+            "INSERT INTO steps (id, kind, operation, params, agent_id, tool_version, reason,
+                started_at, ended_at, rows_in, rows_out, lineage, source, provenance, code,
+                repeats_step)
+             SELECT coalesce(max(id), 0) + 1, ?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12,
+                ?13, ?14, ?15 FROM steps
+             RETURNING id",
+            vals![
+                s.kind.as_str(),
+                s.operation,
+                canonical_json(&s.params),
+                agent_id,
+                crate::TOOL_VERSION,
+                s.reason,
+                s.started_at.as_str(),
+                s.ended_at.as_str(),
+                s.rows_in.map(|v| v as i64),
+                s.rows_out.map(|v| v as i64),
+                s.lineage.as_str(),
+                source,
+                s.provenance,
+                s.code.map(canonical_json),
+                s.repeats_step,
+            ],
+        )?;
         self.wrote("steps", "id", Key::Int(step_id));
         self.wrote("step_inputs", "step_id", Key::Int(step_id));
         for (pos, (vid, role)) in s.inputs.iter().enumerate() {
-            self.tx
-                .execute(
-                    "INSERT INTO step_inputs (step_id, position, version_id, role) VALUES (?1, ?2, ?3, ?4)",
-                    params![step_id, pos as i64, vid, role],
-                )
-                .map_err(db_err)?;
+            self.exec(
+                "INSERT INTO step_inputs (step_id, position, version_id, role) VALUES (?1, ?2, ?3, ?4)",
+                vals![step_id, pos as i64, *vid, *role],
+            )?;
         }
         Ok(step_id)
     }
 
     /// Marks `step_id` as the revert of `reverted` (`steps.reverts_step`).
     pub fn set_reverts_step(&mut self, step_id: i64, reverted: i64) -> Result<()> {
-        self.tx
-            .execute(
-                "UPDATE steps SET reverts_step = ?1 WHERE id = ?2",
-                params![reverted, step_id],
-            )
-            .map_err(db_err)?;
+        self.exec(
+            "UPDATE steps SET reverts_step = ?1 WHERE id = ?2",
+            vals![reverted, step_id],
+        )?;
         self.wrote("steps", "id", Key::Int(step_id));
         Ok(())
     }
 
     pub fn insert_object(&mut self, hash: &str, n_bytes: u64, kind: &str, at: &str) -> Result<()> {
-        self.tx
-            .execute(
-                "INSERT INTO objects (hash, n_bytes, kind, created_at) VALUES (?1, ?2, ?3, ?4)
-                 ON CONFLICT (hash) DO NOTHING",
-                params![hash, n_bytes as i64, kind, at],
-            )
-            .map_err(db_err)?;
+        self.exec(
+            "INSERT INTO objects (hash, n_bytes, kind, created_at) VALUES (?1, ?2, ?3, ?4)
+             ON CONFLICT (hash) DO NOTHING",
+            vals![hash, n_bytes as i64, kind, at],
+        )?;
         self.wrote("objects", "hash", Key::Text(hash.to_string()));
         Ok(())
     }
 
     pub fn latest_version_hash(&self, dataset: &str) -> Result<Option<String>> {
-        self.tx
-            .query_row(
-                "SELECT v.hash FROM versions v JOIN datasets d ON d.id = v.dataset_id
-                 WHERE d.name = ?1 ORDER BY v.seq DESC LIMIT 1",
-                params![dataset],
-                |r| r.get(0),
-            )
-            .optional()
-            .map_err(db_err)
+        match self.first(
+            "SELECT v.hash FROM versions v JOIN datasets d ON d.id = v.dataset_id
+             WHERE d.name = ?1 ORDER BY v.seq DESC LIMIT 1",
+            vals![dataset],
+        )? {
+            Some(r) => Ok(Some(r.text(0)?)),
+            None => Ok(None),
+        }
     }
 
     /// The id of the latest version of `dataset`, inside the transaction.
     pub fn latest_version_id(&self, dataset: &str) -> Result<Option<i64>> {
-        self.tx
-            .query_row(
-                "SELECT v.id FROM versions v JOIN datasets d ON d.id = v.dataset_id
-                 WHERE d.name = ?1 ORDER BY v.seq DESC LIMIT 1",
-                params![dataset],
-                |r| r.get(0),
-            )
-            .optional()
-            .map_err(db_err)
+        match self.first(
+            "SELECT v.id FROM versions v JOIN datasets d ON d.id = v.dataset_id
+             WHERE d.name = ?1 ORDER BY v.seq DESC LIMIT 1",
+            vals![dataset],
+        )? {
+            Some(r) => Ok(Some(r.int(0)?)),
+            None => Ok(None),
+        }
     }
 
     /// Records a version (creating its dataset when new) with its objects and profile, and
@@ -1118,92 +985,73 @@ impl Tx<'_> {
             Some(k) => Some(serde_json::to_string(k).map_err(|e| Error::usage(e.to_string()))?),
             None => None,
         };
-        self.tx
-            .execute(
-                "INSERT INTO datasets (name, key_columns, created_at) VALUES (?1, ?2, ?3)
-                 ON CONFLICT (name) DO NOTHING",
-                params![v.dataset, key_json, v.created_at],
-            )
-            .map_err(db_err)?;
+        self.exec(
+            "INSERT INTO datasets (id, name, key_columns, created_at)
+             SELECT coalesce(max(id), 0) + 1, ?1, ?2, ?3 FROM datasets WHERE true
+             ON CONFLICT (name) DO NOTHING",
+            vals![v.dataset, key_json.clone(), v.created_at],
+        )?;
         if let Some(k) = &key_json {
-            self.tx
-                .execute(
-                    "UPDATE datasets SET key_columns = ?2 WHERE name = ?1",
-                    params![v.dataset, k],
-                )
-                .map_err(db_err)?;
+            self.exec(
+                "UPDATE datasets SET key_columns = ?2 WHERE name = ?1",
+                vals![v.dataset, k],
+            )?;
         }
-        let dataset_id: i64 = self
-            .tx
-            .query_row(
-                "SELECT id FROM datasets WHERE name = ?1",
-                params![v.dataset],
-                |r| r.get(0),
-            )
-            .map_err(db_err)?;
+        let dataset_id = self.int("SELECT id FROM datasets WHERE name = ?1", vals![v.dataset])?;
         self.wrote("datasets", "id", Key::Int(dataset_id));
-        let seq: i64 = self
-            .tx
-            .query_row(
-                "SELECT coalesce(max(seq), 0) + 1 FROM versions WHERE dataset_id = ?1",
-                params![dataset_id],
-                |r| r.get(0),
-            )
-            .map_err(db_err)?;
+        let seq = self.int(
+            "SELECT coalesce(max(seq), 0) + 1 FROM versions WHERE dataset_id = ?1",
+            vals![dataset_id],
+        )?;
         self.insert_object(v.hash, v.n_bytes, "table", v.created_at)?;
         self.insert_object(v.row_index, v.row_index_bytes, "row_index", v.created_at)?;
-        self.tx
-            .execute(
-                "INSERT INTO versions (dataset_id, seq, hash, row_index, step_id, n_rows, n_cols,
-                    n_bytes, header, dialect, null_tokens, created_at, storage)
-                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13)",
-                params![
-                    dataset_id,
-                    seq,
-                    v.hash,
-                    v.row_index,
-                    v.step_id,
-                    v.n_rows as i64,
-                    v.header.len() as i64,
-                    v.n_bytes as i64,
-                    json(v.header),
-                    json(v.dialect),
-                    json(v.null_tokens),
-                    v.created_at,
-                    v.storage.column(),
-                ],
-            )
-            .map_err(db_err)?;
-        let version_id = self.tx.last_insert_rowid();
+        let version_id = self.int(
+            "INSERT INTO versions (id, dataset_id, seq, hash, row_index, step_id, n_rows, n_cols,
+                n_bytes, header, dialect, null_tokens, created_at, storage)
+             SELECT coalesce(max(id), 0) + 1, ?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12,
+                ?13 FROM versions
+             RETURNING id",
+            vals![
+                dataset_id,
+                seq,
+                v.hash,
+                v.row_index,
+                v.step_id,
+                v.n_rows as i64,
+                v.header.len() as i64,
+                v.n_bytes as i64,
+                json(v.header),
+                json(v.dialect),
+                json(v.null_tokens),
+                v.created_at,
+                v.storage.column(),
+            ],
+        )?;
         self.wrote("versions", "id", Key::Int(version_id));
         self.wrote("column_profiles", "version_id", Key::Int(version_id));
         for (i, p) in v.profiles.iter().enumerate() {
-            self.tx
-                .execute(
-                    "INSERT INTO column_profiles (version_id, col_idx, name, inferred_type, n_blank,
-                        n_distinct, distinct_exact, min_value, max_value, min_len, max_len)
-                     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11)",
-                    params![
-                        version_id,
-                        i as i64,
-                        p.name,
-                        p.inferred_type,
-                        p.n_blank as i64,
-                        p.n_distinct as i64,
-                        i64::from(p.distinct_exact),
-                        p.min,
-                        p.max,
-                        p.min_len.map(|x| x as i64),
-                        p.max_len.map(|x| x as i64),
-                    ],
-                )
-                .map_err(db_err)?;
+            self.exec(
+                "INSERT INTO column_profiles (version_id, col_idx, name, inferred_type, n_blank,
+                    n_distinct, distinct_exact, min_value, max_value, min_len, max_len)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11)",
+                vals![
+                    version_id,
+                    i as i64,
+                    p.name.as_str(),
+                    p.inferred_type.as_str(),
+                    p.n_blank as i64,
+                    p.n_distinct as i64,
+                    i64::from(p.distinct_exact),
+                    p.min.clone(),
+                    p.max.clone(),
+                    p.min_len.map(|x| x as i64),
+                    p.max_len.map(|x| x as i64),
+                ],
+            )?;
         }
         Ok((version_id, seq as u64))
     }
 
-    /// Records the provenance of one output version: its row map, the cells changed and the
-    /// input rows dropped.
     /// Records the results of checking rules on version `version_id`: (rule as canonical
     /// JSON, passed, failing row count, first failing rows as JSON).
     pub fn insert_check_results(
@@ -1216,28 +1064,24 @@ impl Tx<'_> {
     ) -> Result<()> {
         let agent_id = self.agent_id(agent)?;
         let mut ids = Vec::with_capacity(results.len());
-        let mut st = self
-            .tx
-            .prepare_cached(
-                "INSERT INTO check_results (version_id, rule, passed, n_failing, first_failing, agent_id, checked_at, gate)
-                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8)",
-            )
-            .map_err(db_err)?;
         for (rule, passed, n, first) in results {
-            st.execute(params![
-                version_id,
-                rule,
-                i64::from(*passed),
-                *n as i64,
-                first,
-                agent_id,
-                at,
-                i64::from(gate)
-            ])
-            .map_err(db_err)?;
-            ids.push(self.tx.last_insert_rowid());
+            ids.push(self.int(
+                "INSERT INTO check_results (id, version_id, rule, passed, n_failing, first_failing,
+                    agent_id, checked_at, gate)
+                 SELECT coalesce(max(id), 0) + 1, ?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8 FROM check_results
+                 RETURNING id",
+                vals![
+                    version_id,
+                    rule,
+                    i64::from(*passed),
+                    *n as i64,
+                    first,
+                    agent_id,
+                    at,
+                    i64::from(gate)
+                ],
+            )?);
         }
-        drop(st);
         for id in ids {
             self.wrote("check_results", "id", Key::Int(id));
         }
@@ -1251,18 +1095,13 @@ impl Tx<'_> {
         output_id: i64,
         notes: &[(u64, String, String)],
     ) -> Result<()> {
-        let mut st = self
-            .tx
-            .prepare_cached(
+        for (row, col, note) in notes {
+            self.exec(
                 "INSERT INTO cell_notes (step_id, output_id, row_idx, column_name, note)
                  VALUES (?1, ?2, ?3, ?4, ?5)",
-            )
-            .map_err(db_err)?;
-        for (row, col, note) in notes {
-            st.execute(params![step_id, output_id, *row as i64, col, note])
-                .map_err(db_err)?;
+                vals![step_id, output_id, *row as i64, col, note],
+            )?;
         }
-        drop(st);
         if !notes.is_empty() {
             self.wrote("cell_notes", "output_id", Key::Int(output_id));
         }
@@ -1278,18 +1117,13 @@ impl Tx<'_> {
         input_id: i64,
         sources: &[(String, String)],
     ) -> Result<()> {
-        let mut st = self
-            .tx
-            .prepare_cached(
+        for (out, inp) in sources {
+            self.exec(
                 "INSERT INTO column_sources (step_id, output_id, output_column, input_id, input_column)
                  VALUES (?1, ?2, ?3, ?4, ?5) ON CONFLICT DO NOTHING",
-            )
-            .map_err(db_err)?;
-        for (out, inp) in sources {
-            st.execute(params![step_id, output_id, out, input_id, inp])
-                .map_err(db_err)?;
+                vals![step_id, output_id, out, input_id, inp],
+            )?;
         }
-        drop(st);
         if !sources.is_empty() {
             self.wrote("column_sources", "output_id", Key::Int(output_id));
         }
@@ -1299,12 +1133,10 @@ impl Tx<'_> {
     /// Records that version `version_id`'s bytes are now kept, kept by request, or left to be
     /// recomputed; the next audit entry commits to the row anew.
     pub fn set_storage(&mut self, version_id: i64, storage: Storage) -> Result<()> {
-        self.tx
-            .execute(
-                "UPDATE versions SET storage = ?2 WHERE id = ?1",
-                params![version_id, storage.column()],
-            )
-            .map_err(db_err)?;
+        self.exec(
+            "UPDATE versions SET storage = ?2 WHERE id = ?1",
+            vals![version_id, storage.column()],
+        )?;
         self.wrote("versions", "id", Key::Int(version_id));
         Ok(())
     }
@@ -1313,9 +1145,8 @@ impl Tx<'_> {
     /// these): all but those only recomputable versions name ([`Lineage::unstored_objects`]).
     pub fn object_hashes(&self) -> Result<Vec<String>> {
         // The complement of `UNSTORED_OBJECTS`, written out (SQL is never built with format!).
-        let mut st = self
-            .tx
-            .prepare(
+        self.db
+            .query(
                 "SELECT o.hash FROM objects o
                  WHERE NOT (EXISTS (SELECT 1 FROM versions v
                                     WHERE v.hash = o.hash OR v.row_index = o.hash)
@@ -1323,60 +1154,58 @@ impl Tx<'_> {
                                         WHERE (v.hash = o.hash OR v.row_index = o.hash)
                                           AND (v.storage IS NULL OR v.storage <> 'recomputable')))
                  ORDER BY o.hash",
-            )
-            .map_err(db_err)?;
-        let rows = st.query_map([], |r| r.get(0)).map_err(db_err)?;
-        rows.collect::<rusqlite::Result<Vec<_>>>().map_err(db_err)
+                &[],
+            )?
+            .iter()
+            .map(|r| r.text(0))
+            .collect()
     }
 
     /// The last audit entry's sequence number and hash, inside the transaction.
     pub fn audit_head(&self) -> Result<Option<(u64, String)>> {
-        self.tx
-            .query_row(
-                "SELECT seq, hash FROM audit_log ORDER BY seq DESC LIMIT 1",
-                [],
-                |r| Ok((r.get::<_, i64>(0)? as u64, r.get(1)?)),
-            )
-            .optional()
-            .map_err(db_err)
+        match self.first(
+            "SELECT seq, hash FROM audit_log ORDER BY seq DESC LIMIT 1",
+            &[],
+        )? {
+            Some(r) => Ok(Some((u(r.int(0)?), r.text(1)?))),
+            None => Ok(None),
+        }
     }
 
     /// Records an endorsement (its `id` is ignored) and returns its id.
     pub fn insert_endorsement(&mut self, e: &Endorsement) -> Result<i64> {
-        self.tx
-            .execute(
-                "INSERT INTO endorsements (kind, subject, label, meaning, name, signed_at,
-                    fingerprint, public_key, admitted_key, statement, signature)
-                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11)",
-                params![
-                    e.kind,
-                    e.subject,
-                    e.label,
-                    e.meaning,
-                    e.name,
-                    e.signed_at,
-                    e.fingerprint,
-                    e.public_key,
-                    e.admitted_key,
-                    e.statement,
-                    e.signature
-                ],
-            )
-            .map_err(db_err)?;
-        let id = self.tx.last_insert_rowid();
+        let id = self.int(
+            "INSERT INTO endorsements (id, kind, subject, label, meaning, name, signed_at,
+                fingerprint, public_key, admitted_key, statement, signature)
+             SELECT coalesce(max(id), 0) + 1, ?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11
+             FROM endorsements
+             RETURNING id",
+            vals![
+                &e.kind,
+                &e.subject,
+                &e.label,
+                &e.meaning,
+                &e.name,
+                &e.signed_at,
+                &e.fingerprint,
+                &e.public_key,
+                e.admitted_key.clone(),
+                &e.statement,
+                &e.signature
+            ],
+        )?;
         self.wrote("endorsements", "id", Key::Int(id));
         Ok(id)
     }
 
     /// Records a meaning the store declares; returns its id.
     pub fn insert_meaning(&mut self, m: &Meaning, at: &str) -> Result<i64> {
-        self.tx
-            .execute(
-                "INSERT INTO meanings (word, description, declared_at) VALUES (?1, ?2, ?3)",
-                params![m.word, m.description, at],
-            )
-            .map_err(db_err)?;
-        let id = self.tx.last_insert_rowid();
+        let id = self.int(
+            "INSERT INTO meanings (id, word, description, declared_at)
+             SELECT coalesce(max(id), 0) + 1, ?1, ?2, ?3 FROM meanings
+             RETURNING id",
+            vals![&m.word, &m.description, at],
+        )?;
         self.wrote("meanings", "id", Key::Int(id));
         Ok(id)
     }
@@ -1391,7 +1220,7 @@ impl Tx<'_> {
         at: &str,
     ) -> Result<AuditEntry> {
         let journal = std::mem::take(&mut self.journal);
-        super::audit::append(&self.tx, agent, action, subject, details, at, journal)
+        super::audit::append(self.db, agent, action, subject, details, at, journal)
     }
 }
 

@@ -1,17 +1,25 @@
 //! The store: a project's `sluice-store/` folder, holding immutable objects ([`objects`]) and one
 //! SQLite lineage database ([`lineage`], with its hash-chained audit log in [`audit`]).
 //!
-//! This is the only module that touches SQLite. Everything that changes the store goes through
+//! A store shared by a team keeps its lineage on a PostgreSQL server instead, named in
+//! `location.json` ([`location`]; the backends behind one trait in [`backend`]).
+//!
+//! This is the only module that touches SQLite or PostgreSQL. Everything that changes the store goes through
 //! [`Store::write`], one `BEGIN IMMEDIATE` transaction per command, so concurrent commands wait
 //! for each other (busy timeout) and readers never see half a step. Objects are made durable
 //! before the transaction that references them commits; an object no row references is harmless.
 
 pub mod audit;
+pub mod backend;
 pub mod lineage;
+pub mod location;
 pub mod objects;
+pub mod pg;
 pub mod reclaim;
+pub mod roles;
 pub mod rows;
 pub mod segments;
+pub mod sqlite;
 pub mod version_writer;
 
 use std::fs;
@@ -70,10 +78,22 @@ pub struct Store {
 impl Store {
     /// Creates a new store in `project/sluice-store`. Fails if one is already there.
     pub fn init(project: &Path) -> Result<Store> {
+        Store::init_with(project, None)
+    }
+
+    /// Creates a new store in `project/sluice-store` whose lineage is on the PostgreSQL server
+    /// `lineage` names (a connection string without a password) when given: the folder then
+    /// holds the objects and `location.json`. Fails if a store is already there.
+    pub fn init_with(project: &Path, lineage: Option<&str>) -> Result<Store> {
         let dir = project.join(STORE_DIR);
-        if dir.join(DB_FILE).exists() {
+        if dir.join(DB_FILE).exists() || dir.join(location::LOCATION_FILE).exists() {
             return Err(ErrorKind::StoreExists { path: dir }.into());
         }
+        // The server is reached (and its schema made) before anything is written here.
+        let server = match lineage {
+            Some(conn) => Some((conn, Lineage::connect_server(conn)?)),
+            None => None,
+        };
         fs::create_dir_all(project).map_err(|e| Error::io(project, e))?;
         for sub in [segments::SEGMENTS_DIR, "tmp"] {
             let p = dir.join(sub);
@@ -89,7 +109,17 @@ impl Store {
              Do not edit anything here by hand; run `sluice verify` to check it.\n",
         )
         .map_err(|e| Error::io(&readme, e))?;
-        let lineage = Lineage::create(&dir.join(DB_FILE))?;
+        let lineage = match server {
+            None => Lineage::create(&dir.join(DB_FILE))?,
+            Some((conn, l)) => {
+                location::Location {
+                    lineage: Some(conn.to_string()),
+                    ..location::Location::default()
+                }
+                .write(&dir)?;
+                l
+            }
+        };
         let mut store = Store {
             objects: Objects::new(Box::new(FsBackend::new(&dir))),
             lineage,
@@ -101,7 +131,20 @@ impl Store {
 
     /// Creates a new store and records its creation as the first audit entry.
     pub fn init_recorded(project: &Path, agent: &crate::model::Agent) -> Result<Store> {
-        let mut store = Store::init(project)?;
+        Store::init_recorded_with(project, None, agent)
+    }
+
+    /// [`Store::init_with`], recording the creation as an audit entry (on a server that
+    /// already holds a lineage, the folder joins it and records nothing).
+    pub fn init_recorded_with(
+        project: &Path,
+        lineage: Option<&str>,
+        agent: &crate::model::Agent,
+    ) -> Result<Store> {
+        let mut store = Store::init_with(project, lineage)?;
+        if !store.lineage.audit_entries()?.is_empty() {
+            return Ok(store);
+        }
         let at = crate::clock::now_rfc3339();
         let dir = store.dir.display().to_string();
         store.write(|tx| {
@@ -139,7 +182,8 @@ impl Store {
             dir.to_path_buf()
         };
         let db = dir.join(DB_FILE);
-        if !db.is_file() {
+        let place = location::Location::read(&dir)?;
+        if !db.is_file() && place.lineage.is_none() {
             // `sluice setup` takes the project folder, the one that holds `sluice-store`.
             let project = if dir.file_name().is_some_and(|n| n == STORE_DIR) {
                 match dir.parent() {
@@ -170,7 +214,10 @@ impl Store {
                 .into());
             }
         }
-        let lineage = Lineage::open(&db)?;
+        let lineage = match &place.lineage {
+            Some(conn) => Lineage::connect_server(conn)?,
+            None => Lineage::open(&db)?,
+        };
         Ok(Store {
             objects: Objects::new(Box::new(FsBackend::new(&dir))),
             lineage,
@@ -195,7 +242,9 @@ impl Store {
         }
         let mut cur = Some(start);
         while let Some(d) = cur {
-            if d.join(STORE_DIR).join(DB_FILE).is_file() {
+            if d.join(STORE_DIR).join(DB_FILE).is_file()
+                || d.join(STORE_DIR).join(location::LOCATION_FILE).is_file()
+            {
                 return Store::open(&d.join(STORE_DIR));
             }
             legacy_check(d)?;

@@ -7,6 +7,8 @@
 use std::path::{Path, PathBuf};
 use std::process::{Command, Output};
 
+pub mod pg;
+
 pub struct Sandbox {
     pub dir: tempfile::TempDir,
 }
@@ -81,7 +83,11 @@ impl Sandbox {
             .env("SLUICE_PERSON", PERSON)
             .env("SLUICE_EMAIL", EMAIL)
             .env("NO_COLOR", "1")
-            .env_remove("SLUICE_STORE");
+            .env_remove("SLUICE_STORE")
+            .env_remove("PGPASSWORD");
+        if let Some(p) = pg::passfile() {
+            c.env("PGPASSFILE", p);
+        }
         c
     }
 

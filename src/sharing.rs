@@ -1,0 +1,163 @@
+//! Moving work between a store of one's own and a store shared by a team: `publish` copies a
+//! local store into a shared one (objects, then the lineage in one server transaction), and
+//! `borrow` copies a shared store into a new local working copy. Both first verify the store
+//! they copy from (every object re-hashed, the audit chain and every row commitment checked)
+//! and copy each object through its hash again; neither adds an audit entry, so the copy's
+//! chain is the original's entry for entry and a later publish can tell whether the shared
+//! store moved on meanwhile. A shared store that moved on is named, never merged.
+
+use std::path::Path;
+
+use crate::error::{ErrorKind, Result};
+use crate::hash::Hash;
+use crate::store::lineage::Copied;
+use crate::store::Store;
+
+/// What a copy moved.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Moved {
+    /// Objects copied (those the target lacked), and their bytes.
+    pub objects_copied: u64,
+    pub bytes_copied: u64,
+    /// Objects the target held already.
+    pub objects_present: u64,
+    /// Audit entries the target held before, and how many it gained.
+    pub entries_before: u64,
+    pub entries_copied: u64,
+}
+
+fn intact(store: &Store, which: &str) -> Result<()> {
+    let report = crate::verify::verify(store)?;
+    if !report.intact {
+        return Err(ErrorKind::Data(format!(
+            "{which} ({}) does not verify intact, so it is not copied; run `sluice verify` there to see what is wrong",
+            store.dir().display()
+        ))
+        .into());
+    }
+    Ok(())
+}
+
+/// Copies every stored object of `from` that `to` lacks, re-hashing each as it is read and as
+/// it is written.
+fn copy_objects(from: &Store, to: &Store, moved: &mut Moved) -> Result<()> {
+    let unstored = from.lineage.unstored_objects()?;
+    for (hex, kind, _) in from.lineage.objects()? {
+        if unstored.contains(&hex) {
+            continue;
+        }
+        let hash: Hash = hex.parse().map_err(|_| {
+            crate::Error::from(ErrorKind::Inconsistent(format!(
+                "the objects table names {hex:?}, which is not a BLAKE3 hash; run `sluice verify`"
+            )))
+        })?;
+        if to.objects.exists(&hash) {
+            moved.objects_present += 1;
+            continue;
+        }
+        let dir = to.dir().to_path_buf();
+        let io = |e| crate::Error::io(&dir, e);
+        let mut w = if kind == "row_index" {
+            to.objects.row_index_writer().map_err(io)?
+        } else {
+            to.objects.writer().map_err(io)?
+        };
+        let n = from.objects.copy_to(&hash, &mut WriteInto(&mut w))?;
+        let (written, _) = w.finish().map_err(io)?;
+        if written != hash {
+            return Err(ErrorKind::ObjectCorrupt {
+                hash: hash.hex(),
+                actual: written.hex(),
+            }
+            .into());
+        }
+        moved.objects_copied += 1;
+        moved.bytes_copied += n;
+    }
+    Ok(())
+}
+
+struct WriteInto<'a>(&'a mut crate::store::objects::ObjectWriter);
+
+impl std::io::Write for WriteInto<'_> {
+    fn write(&mut self, buf: &[u8]) -> std::io::Result<usize> {
+        self.0.write(buf)?;
+        Ok(buf.len())
+    }
+
+    fn flush(&mut self) -> std::io::Result<()> {
+        Ok(())
+    }
+}
+
+fn copy(from: &Store, to: &Store) -> Result<Moved> {
+    let mut moved = Moved {
+        objects_copied: 0,
+        bytes_copied: 0,
+        objects_present: 0,
+        entries_before: 0,
+        entries_copied: 0,
+    };
+    if let Some(problem) = from.lineage.copy_refused(&to.lineage)? {
+        return Err(ErrorKind::MovedOn(problem).into());
+    }
+    // Objects first, each made durable before the transaction that names it commits (an
+    // object nothing names yet is harmless, as after any interrupted command).
+    copy_objects(from, to, &mut moved)?;
+    let Copied {
+        entries_before,
+        entries_copied,
+    } = from.lineage.copy_into(&to.lineage)?;
+    moved.entries_before = entries_before;
+    moved.entries_copied = entries_copied;
+    Ok(moved)
+}
+
+/// Copies the local store `local` into the shared store `shared` (a store folder whose
+/// lineage is on a server): what `shared` lacks, when its chain is a beginning of `local`'s.
+pub fn publish(local: &Store, shared: &Store) -> Result<Moved> {
+    if local.lineage.kind() != crate::store::backend::Kind::Sqlite {
+        return Err(ErrorKind::Usage(format!(
+            "{} is a shared store itself; publish copies a store of your own (its lineage in its folder) into a shared one",
+            local.dir().display()
+        ))
+        .into());
+    }
+    if shared.lineage.kind() != crate::store::backend::Kind::Postgres {
+        return Err(ErrorKind::Usage(format!(
+            "{} keeps its lineage in its folder; publish copies into a shared store (one set up with `sluice setup --lineage-server CONN`)",
+            shared.dir().display()
+        ))
+        .into());
+    }
+    intact(local, "this store")?;
+    copy(local, shared)
+}
+
+/// Copies the shared store `shared` into a new local store in `project/sluice-store`, a
+/// working copy whose lineage is in its folder; it verifies intact afterwards.
+pub fn borrow(shared: &Store, project: &Path) -> Result<(Store, Moved)> {
+    if shared.lineage.kind() != crate::store::backend::Kind::Postgres {
+        return Err(ErrorKind::Usage(format!(
+            "{} keeps its lineage in its folder; borrow copies from a shared store",
+            shared.dir().display()
+        ))
+        .into());
+    }
+    intact(shared, "the shared store")?;
+    let local = Store::init(project)?;
+    let made = local.dir().to_path_buf();
+    let copied = copy(shared, &local).and_then(|moved| {
+        intact(&local, "the working copy")?;
+        Ok(moved)
+    });
+    match copied {
+        Ok(moved) => Ok((local, moved)),
+        Err(e) => {
+            // The working copy was made by this command: a failed copy leaves nothing.
+            drop(local);
+            let _ = std::fs::remove_dir_all(&made);
+            Err(e)
+        }
+    }
+}

@@ -1,0 +1,553 @@
+//! Stores whose lineage is on a PostgreSQL server, against a real server (Debian's postgresql,
+//! started by tests/common/pg.rs on loopback): the demo records the same versions, byte for
+//! byte, as on SQLite; concurrent writers leave gap-free numbers and one audit chain.
+
+mod common;
+
+use common::{pg, Sandbox};
+use serde_json::Value;
+
+/// (action, dataset, number, hash, row index, rows) of every version the timeline lists.
+fn versions(s: &Sandbox, dir: &str) -> Vec<(String, String, u64, String, String, u64)> {
+    let out = s.ok(&["--store", dir, "timeline", "--json"]);
+    let steps: Value = serde_json::from_str(&out).expect("timeline --json");
+    let mut all = Vec::new();
+    for step in steps.as_array().expect("a list of steps") {
+        for v in step["produced"].as_array().into_iter().flatten() {
+            all.push((
+                step["action"].as_str().unwrap_or("").to_string(),
+                v["dataset"].as_str().unwrap().to_string(),
+                v["seq"].as_u64().unwrap(),
+                v["hash"].as_str().unwrap().to_string(),
+                v["row_index"].as_str().unwrap().to_string(),
+                v["n_rows"].as_u64().unwrap(),
+            ));
+        }
+    }
+    all
+}
+
+/// The whole demo (plan run, hand edit, outside command, report) with its lineage on the
+/// server gives every version the same BLAKE3 hash and row index as the same demo on SQLite,
+/// and the shared store verifies intact.
+#[test]
+fn the_demo_on_the_server_records_what_it_records_on_sqlite() {
+    let server = pg::server();
+    let conn = server.new_database("demo_hashes");
+    let s = Sandbox::new();
+    s.ok(&["demo", "local"]);
+    s.ok(&["demo", "shared", "--lineage-server", &conn]);
+    let shared_dir = s.path().join("shared/sluice-store");
+    assert!(
+        !shared_dir.join("lineage.db").exists(),
+        "a shared store keeps no lineage database in its folder"
+    );
+    let location = std::fs::read_to_string(shared_dir.join("location.json")).unwrap();
+    assert!(location.contains("dbname=demo_hashes"), "{location}");
+    assert!(!location.contains("password"), "{location}");
+    let local = versions(&s, "local");
+    let shared = versions(&s, "shared");
+    assert!(local.len() > 20, "the demo records its versions: {local:?}");
+    assert_eq!(local, shared);
+    let verified = s.ok(&["--store", "shared", "verify"]);
+    assert!(verified.starts_with("intact:"), "{verified}");
+    // The rows are on the server: counted there with psql, not through sluice.
+    let steps = server.admin_sql("demo_hashes", "SELECT count(*) FROM steps");
+    let audit = server.admin_sql("demo_hashes", "SELECT count(*) FROM audit_log");
+    assert!(steps.trim().parse::<u64>().unwrap() > 20, "{steps}");
+    assert!(audit.trim().parse::<u64>().unwrap() > 20, "{audit}");
+}
+
+/// A connection string with a password is refused before anything is written: the password
+/// would be stored in the store folder.
+#[test]
+fn a_password_in_the_connection_string_is_refused() {
+    let server = pg::server();
+    let s = Sandbox::new();
+    let conn = format!(
+        "host=127.0.0.1 port={} dbname=postgres user={} password=secret",
+        server.port,
+        pg::SUPERUSER
+    );
+    let r = s.run(&["setup", "--lineage-server", &conn]);
+    assert_eq!(r.code, 2, "{}", r.stderr);
+    assert!(r.stderr.contains("holds a password"), "{}", r.stderr);
+    assert!(
+        !s.path().join("sluice-store").exists(),
+        "nothing is written"
+    );
+}
+
+/// Eight writer processes record into one shared store at once, each receiving its own new
+/// extracts as further versions of one dataset and of a dataset of its own. Bounded by count
+/// (8 writers x 12 steps), not by time, so a slow machine takes longer rather than testing less.
+/// Afterwards: every step each writer was told it recorded is there once, step numbers and
+/// version numbers run without a gap, and the audit chain verifies (checked by sluice, and
+/// counted on the server with psql).
+#[test]
+fn eight_concurrent_writers_lose_and_duplicate_nothing() {
+    const WRITERS: usize = 8;
+    const STEPS: usize = 12;
+    let server = pg::server();
+    let conn = server.new_database("many_writers");
+    let s = Sandbox::new();
+    s.ok(&["setup", "--lineage-server", &conn]);
+    let handles: Vec<_> = (0..WRITERS)
+        .map(|w| {
+            let dir = s.path().to_path_buf();
+            let mut cmds = Vec::new();
+            for i in 0..STEPS {
+                let name = format!("w{w}_{i}.csv");
+                std::fs::write(
+                    dir.join(&name),
+                    format!("reading_id,meter,kwh\nR{w}-{i},M{w},{}.{i}\n", 100 + w),
+                )
+                .unwrap();
+                let dataset = if i % 2 == 0 {
+                    "meter_readings".to_string()
+                } else {
+                    format!("depot_{w}")
+                };
+                let mut c = s.command(&[
+                    "receive",
+                    &name,
+                    "--as",
+                    &dataset,
+                    "--why",
+                    "a depot's nightly meter export",
+                    "--json",
+                ]);
+                c.env("SLUICE_PERSON", format!("Depot {w}"));
+                cmds.push(c);
+            }
+            std::thread::spawn(move || {
+                let mut made = Vec::new();
+                for mut c in cmds {
+                    let out = c.output().expect("run sluice");
+                    assert!(
+                        out.status.success(),
+                        "writer {w}: {}",
+                        String::from_utf8_lossy(&out.stderr)
+                    );
+                    let v: Value = serde_json::from_slice(&out.stdout).expect("receive --json");
+                    made.push(
+                        v["step"]
+                            .as_i64()
+                            .unwrap_or_else(|| panic!("no step number in {v}")),
+                    );
+                }
+                made
+            })
+        })
+        .collect();
+    let mut steps: Vec<i64> = handles
+        .into_iter()
+        .flat_map(|h| h.join().expect("writer thread"))
+        .collect();
+    steps.sort_unstable();
+    // The setup records an audit entry but no step, so the writers' steps are 1..=96.
+    let expected: Vec<i64> = (1..=(WRITERS * STEPS) as i64).collect();
+    assert_eq!(steps, expected, "no step lost or given twice");
+    let counts = server.admin_sql(
+        "many_writers",
+        "SELECT count(*), max(id), (SELECT count(*) FROM audit_log), (SELECT max(seq) FROM audit_log),
+                (SELECT max(seq) FROM versions v JOIN datasets d ON d.id = v.dataset_id
+                 WHERE d.name = 'meter_readings'),
+                (SELECT count(*) FROM versions v JOIN datasets d ON d.id = v.dataset_id
+                 WHERE d.name = 'meter_readings')
+         FROM steps",
+    );
+    let n = (WRITERS * STEPS) as u64;
+    let audit = n + 1; // and the setup's entry
+    let shared = (WRITERS * STEPS.div_ceil(2)) as u64;
+    assert_eq!(
+        counts.trim(),
+        format!("{n}|{n}|{audit}|{audit}|{shared}|{shared}"),
+        "steps, highest step, audit entries, highest entry, versions of the shared dataset"
+    );
+    let verified = s.ok(&["verify"]);
+    assert!(verified.starts_with("intact:"), "{verified}");
+}
+
+/// Counts on the server, with psql: (audit entries, steps).
+fn server_counts(server: &pg::Server, db: &str) -> (u64, u64) {
+    let out = server.admin_sql(
+        db,
+        "SELECT (SELECT count(*) FROM audit_log), (SELECT count(*) FROM steps)",
+    );
+    let mut it = out.trim().split('|').map(|n| n.parse::<u64>().unwrap());
+    (it.next().unwrap(), it.next().unwrap())
+}
+
+/// A local store published into a new shared store, borrowed into two working copies, each
+/// recording on its own: the first publishes back, the second is refused with the entry where
+/// the two histories part named, and the shared store is as the first left it. Every copy
+/// verifies intact and gives back the same bytes.
+#[test]
+fn publish_and_borrow_name_a_shared_store_that_moved_on() {
+    let server = pg::server();
+    let conn = server.new_database("moving_between");
+    let s = Sandbox::new();
+    s.ok(&["demo", "local"]);
+    let published = s.ok(&[
+        "--store",
+        "local",
+        "publish",
+        "--to",
+        "shared",
+        "--lineage-server",
+        &conn,
+    ]);
+    assert!(published.contains("published to"), "{published}");
+    let (entries, steps) = server_counts(server, "moving_between");
+    assert!(entries > 20 && steps > 20, "{entries} {steps}");
+    assert!(s
+        .ok(&["--store", "shared", "verify"])
+        .starts_with("intact:"));
+    s.ok(&["borrow", "shared", "--into", "first"]);
+    s.ok(&["borrow", "shared", "--into", "second"]);
+    assert!(
+        s.path().join("first/sluice-store/lineage.db").is_file(),
+        "a working copy keeps its lineage in its folder"
+    );
+    let raw = s.ok(&["--store", "local", "retrieve", "quillby_orders:v1"]);
+    assert_eq!(
+        s.ok(&["--store", "second", "retrieve", "quillby_orders:v1"]),
+        raw
+    );
+    for who in ["first", "second"] {
+        s.file(
+            &format!("{who}/late.csv"),
+            format!("order_id,note\nL-1,late export read by {who}\n"),
+        );
+        s.ok(&[
+            "--store",
+            who,
+            "receive",
+            &format!("{who}/late.csv"),
+            "--as",
+            "late_orders",
+            "--why",
+            "a late export",
+        ]);
+    }
+    s.ok(&["--store", "first", "publish", "--to", "shared"]);
+    assert_eq!(
+        server_counts(server, "moving_between"),
+        (entries + 1, steps + 1)
+    );
+    let refused = s.run(&["--store", "second", "publish", "--to", "shared"]);
+    assert_eq!(refused.code, 1, "{}", refused.stderr);
+    assert!(
+        refused
+            .stderr
+            .contains(&format!("part at audit entry {}", entries + 1)),
+        "{}",
+        refused.stderr
+    );
+    assert!(
+        refused.stderr.contains("nothing was copied"),
+        "{}",
+        refused.stderr
+    );
+    assert_eq!(
+        server_counts(server, "moving_between"),
+        (entries + 1, steps + 1)
+    );
+    // The local store that was never borrowed is behind the shared one: refused too.
+    let behind = s.run(&["--store", "local", "publish", "--to", "shared"]);
+    assert_eq!(behind.code, 1, "{}", behind.stderr);
+    assert!(behind.stderr.contains("moved on"), "{}", behind.stderr);
+    assert_eq!(
+        s.ok(&["--store", "shared", "retrieve", "late_orders"]),
+        "order_id,note\nL-1,late export read by first\n"
+    );
+    for dir in ["shared", "first", "second"] {
+        let v = s.ok(&["--store", dir, "verify"]);
+        assert!(v.starts_with("intact:"), "{dir}: {v}");
+    }
+}
+
+/// A publish killed at moments spread over its whole run leaves the shared store with either
+/// all of the published history or none of it (counted on the server), and verifying intact;
+/// a publish after the kills completes it.
+#[test]
+fn a_killed_publish_leaves_the_shared_store_as_it_was() {
+    let server = pg::server();
+    let conn = server.new_database("killed_publish");
+    let s = Sandbox::new();
+    s.ok(&["demo", "local"]);
+    s.ok(&[
+        "--store",
+        "local",
+        "publish",
+        "--to",
+        "shared",
+        "--lineage-server",
+        &conn,
+    ]);
+    let before = server_counts(server, "killed_publish");
+    for i in 0..4 {
+        s.file(
+            &format!("more{i}.csv"),
+            format!("order_id,parts_cost\nM-{i},{}.50\n", 10 + i),
+        );
+        s.ok(&[
+            "--store",
+            "local",
+            "receive",
+            &format!("more{i}.csv"),
+            "--as",
+            "more_orders",
+            "--why",
+            "another export",
+        ]);
+    }
+    let after = (before.0 + 4, before.1 + 4);
+    // How long an unkilled publish takes, measured on a copy of the shared store's server
+    // side would need a second database; time one into a scratch database instead.
+    let scratch = server.new_database("killed_publish_timing");
+    let started = std::time::Instant::now();
+    s.ok(&[
+        "--store",
+        "local",
+        "publish",
+        "--to",
+        "timing",
+        "--lineage-server",
+        &scratch,
+    ]);
+    let full = started.elapsed();
+    let mut killed = 0;
+    for k in 1..=8u32 {
+        let child = s
+            .command(&["--store", "local", "publish", "--to", "shared"])
+            .stdout(std::process::Stdio::null())
+            .stderr(std::process::Stdio::null())
+            .spawn()
+            .unwrap();
+        if kill_after(child, full * k / 8) {
+            killed += 1;
+        }
+        let now = server_counts(server, "killed_publish");
+        assert!(
+            now == before || now == after,
+            "after a kill at {k}/8 of a publish the server holds {now:?}: neither {before:?} nor {after:?}"
+        );
+        if now == after {
+            break;
+        }
+    }
+    assert!(killed > 0, "no publish was still running when killed");
+    s.ok(&["--store", "local", "publish", "--to", "shared"]);
+    assert_eq!(server_counts(server, "killed_publish"), after);
+    let v = s.ok(&["--store", "shared", "verify"]);
+    assert!(v.starts_with("intact:"), "{v}");
+}
+
+/// Kills `child` with SIGKILL after `delay`; whether it was still running then.
+fn kill_after(mut child: std::process::Child, delay: std::time::Duration) -> bool {
+    let until = std::time::Instant::now() + delay;
+    while std::time::Instant::now() < until {
+        if child.try_wait().unwrap().is_some() {
+            return false;
+        }
+        std::thread::sleep(std::time::Duration::from_millis(2));
+    }
+    let _ = child.kill();
+    child.wait().unwrap().code().is_none()
+}
+
+/// The four roles, each refused at the server what it may not do (psql as a login of that
+/// role, so no sluice code is between the role and the server), the audit log append-only for
+/// every role and for the tables' owner, and a sluice whose login only reads refused when it
+/// records, leaving the store as it was.
+#[test]
+fn each_role_is_refused_at_the_server_what_it_may_not_do() {
+    let server = pg::server();
+    let conn = server.new_database("roles_enforced");
+    let s = Sandbox::new();
+    s.ok(&["setup", "--lineage-server", &conn]);
+    s.file("orders.csv", "order_id,parts_cost\nA-1,12.50\n");
+    s.ok(&[
+        "receive",
+        "orders.csv",
+        "--as",
+        "orders",
+        "--why",
+        "first export",
+    ]);
+    let set_up = s.ok(&["roles", "--set-up"]);
+    assert!(set_up.contains("sluice_recording"), "{set_up}");
+    for (login, role) in [
+        ("rowan_reads", "reading"),
+        ("rhea_records", "recording"),
+        ("sana_signs", "signing"),
+        ("ada_administers", "administering"),
+    ] {
+        server.add_login(login);
+        s.ok(&["roles", "--give", role, "--to", login]);
+        let of = s.ok(&["roles", "--of", login]);
+        assert!(of.contains(role), "{of}");
+    }
+    let db = "roles_enforced";
+    let refused = |login: &str, sql: &str, why: &str| {
+        let (ok, out) = server.psql(login, db, sql);
+        assert!(!ok, "{login} was allowed: {sql}\n{out}");
+        assert!(out.contains(why), "{login}: {sql}\n{out}");
+    };
+    let allowed = |login: &str, sql: &str| {
+        let (ok, out) = server.psql(login, db, sql);
+        assert!(ok, "{login} was refused: {sql}\n{out}");
+    };
+    let endorsement = |kind: &str| {
+        format!(
+            "BEGIN; INSERT INTO endorsements (id, kind, subject, label, meaning, name, signed_at,
+                fingerprint, public_key, statement, signature)
+             VALUES (1000, '{kind}', 's', 'l', 'approved', 'n', 't', 'f', 'k', 's', 'g'); ROLLBACK"
+        )
+    };
+    let denied = "permission denied";
+    // Reading: reads, and nothing else.
+    allowed("rowan_reads", "SELECT count(*) FROM steps");
+    refused(
+        "rowan_reads",
+        "INSERT INTO datasets (id, name, created_at) VALUES (100, 'x', 't')",
+        denied,
+    );
+    refused(
+        "rowan_reads",
+        "UPDATE versions SET storage = 'kept'",
+        denied,
+    );
+    // Recording: records steps, signs nothing, changes no audit entry.
+    allowed(
+        "rhea_records",
+        "BEGIN; UPDATE versions SET storage = 'kept' WHERE id = 1; ROLLBACK",
+    );
+    refused("rhea_records", &endorsement("version"), denied);
+    refused("rhea_records", "UPDATE versions SET n_rows = 0", denied);
+    refused("rhea_records", "DELETE FROM steps", denied);
+    // Signing: signs versions, reports and the audit head; admits no key.
+    allowed("sana_signs", &endorsement("version"));
+    refused(
+        "sana_signs",
+        &endorsement("admission"),
+        "row-level security",
+    );
+    refused(
+        "sana_signs",
+        "INSERT INTO datasets (id, name, created_at) VALUES (100, 'x', 't')",
+        denied,
+    );
+    // Administering: admits and retires keys; signs no version.
+    allowed("ada_administers", &endorsement("admission"));
+    refused(
+        "ada_administers",
+        &endorsement("approved_version_by_admin"),
+        "violates",
+    );
+    refused(
+        "ada_administers",
+        &endorsement("version"),
+        "row-level security",
+    );
+    // The audit log: no role may change or remove an entry ...
+    for login in [
+        "rowan_reads",
+        "rhea_records",
+        "sana_signs",
+        "ada_administers",
+    ] {
+        refused(login, "UPDATE audit_log SET agent = 'someone else'", denied);
+        refused(login, "DELETE FROM audit_log", denied);
+        refused(login, "TRUNCATE audit_log", denied);
+    }
+    // ... and neither may the tables' owner: the trigger refuses it.
+    for sql in [
+        "UPDATE audit_log SET agent = 'someone else'",
+        "DELETE FROM audit_log WHERE seq = 1",
+        "TRUNCATE audit_log",
+    ] {
+        refused(pg::SUPERUSER, sql, "append-only");
+    }
+    // Through sluice: a login that only reads can look but not record.
+    let (entries, steps) = server_counts(server, db);
+    let reader = Sandbox::new();
+    reader.file(
+        "sluice-store/location.json",
+        serde_json::json!({ "lineage": server.connection(db, "rowan_reads") }).to_string(),
+    );
+    assert!(reader.ok(&["timeline"]).contains("orders:v1"));
+    reader.file("orders2.csv", "order_id,parts_cost\nA-2,3.00\n");
+    let r = reader.run(&["receive", "orders2.csv", "--as", "orders", "--why", "more"]);
+    assert_eq!(r.code, 1, "{}", r.stderr);
+    assert!(r.stderr.contains("permission denied"), "{}", r.stderr);
+    assert_eq!(server_counts(server, db), (entries, steps));
+    assert!(s.ok(&["verify"]).starts_with("intact:"));
+}
+
+/// `service=NAME` is looked up in the connection service file (PGSERVICEFILE), whose
+/// password is used and never written into the store; the password file is left empty here,
+/// so the login can only have come from the service file.
+#[test]
+fn a_service_file_names_the_server_and_holds_the_password() {
+    let server = pg::server();
+    server.new_database("by_service");
+    let s = Sandbox::new();
+    let services = s.file(
+        "pg_service.conf",
+        format!(
+            "# the team's servers\n[three_rivers_lineage]\nhost=127.0.0.1\nport={}\ndbname=by_service\nuser={}\npassword={}\n",
+            server.port,
+            pg::SUPERUSER,
+            pg::PASSWORD
+        ),
+    );
+    let empty = s.file("empty_pgpass", "");
+    let run = |args: &[&str]| {
+        let out = s
+            .command(args)
+            .env("PGSERVICEFILE", &services)
+            .env("PGPASSFILE", &empty)
+            .output()
+            .unwrap();
+        assert!(
+            out.status.success(),
+            "{args:?}: {}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        String::from_utf8_lossy(&out.stdout).into_owned()
+    };
+    run(&["setup", "--lineage-server", "service=three_rivers_lineage"]);
+    let location = std::fs::read_to_string(s.path().join("sluice-store/location.json")).unwrap();
+    assert!(
+        location.contains("service=three_rivers_lineage"),
+        "{location}"
+    );
+    assert!(!location.contains(pg::PASSWORD), "{location}");
+    s.file("orders.csv", "order_id,parts_cost\nA-1,12.50\n");
+    run(&[
+        "receive",
+        "orders.csv",
+        "--as",
+        "orders",
+        "--why",
+        "first export",
+    ]);
+    let steps = server.admin_sql("by_service", "SELECT count(*) FROM steps");
+    assert_eq!(steps.trim(), "1");
+    // Without the service file the login has no password and the server refuses it.
+    let out = s
+        .command(&["timeline"])
+        .env("PGSERVICEFILE", s.path().join("no_such_file"))
+        .env("PGPASSFILE", &empty)
+        .output()
+        .unwrap();
+    assert_eq!(
+        out.status.code(),
+        Some(2),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+}
