@@ -3,6 +3,7 @@
 //! everything that reaches forward from it ([`reach`]). The salted cell commitments that keep
 //! the proof of the rest are [`crate::commitment`].
 
+pub mod carry;
 pub mod reach;
 
 use serde::Serialize;

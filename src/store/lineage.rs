@@ -30,6 +30,7 @@ const MIGRATIONS: &[(i64, &str)] = &[
     (4, include_str!("../../schema/0004_step_provenance.sql")),
     (5, include_str!("../../schema/0005_endorsements.sql")),
     (6, include_str!("../../schema/0006_storage.sql")),
+    (7, include_str!("../../schema/0007_erasure.sql")),
 ];
 
 /// The schema version this build writes.
@@ -39,7 +40,7 @@ pub const SCHEMA_VERSION: i64 = MIGRATIONS[MIGRATIONS.len() - 1].0;
 const BUSY_TIMEOUT: Duration = Duration::from_secs(60);
 
 pub struct Lineage {
-    conn: Connection,
+    pub(super) conn: Connection,
     path: PathBuf,
 }
 
@@ -988,16 +989,31 @@ pub struct NewVersion<'a> {
 /// An open write transaction. `journal` names the rows written since the last audit entry; the
 /// next entry commits to them (see [`super::audit`]).
 pub struct Tx<'c> {
-    tx: rusqlite::Transaction<'c>,
+    pub(super) tx: rusqlite::Transaction<'c>,
     journal: Vec<Selector>,
 }
 
 impl Tx<'_> {
-    fn wrote(&mut self, table: &'static str, by: &'static str, key: Key) {
+    pub(super) fn wrote(&mut self, table: &'static str, by: &'static str, key: Key) {
         self.journal.push(Selector::one(table, by, key));
     }
 
-    fn agent_id(&mut self, agent: &Agent) -> Result<i64> {
+    pub(super) fn wrote_range(
+        &mut self,
+        table: &'static str,
+        by: &'static str,
+        from: Key,
+        to: Key,
+    ) {
+        self.journal.push(Selector {
+            table,
+            by,
+            from,
+            to,
+        });
+    }
+
+    pub(super) fn agent_id(&mut self, agent: &Agent) -> Result<i64> {
         self.tx
             .execute(
                 "INSERT INTO agents (identity, kind, source) VALUES (?1, 'person', ?2)
