@@ -539,3 +539,80 @@ fn carrying_out_an_order_erases_one_person_everywhere_and_keeps_the_proof_of_the
         "{report:#}"
     );
 }
+
+/// `sluice ARGS` in folder `dir`, stopped at I/O point `n` of its object writes when given
+/// (`SLUICE_TEST_IO_POINT=stop:N`, read by debug builds: the process ends there at once, as
+/// if killed; see tests/crash.rs). Returns whether it exited 0.
+fn sluice_in(dir: &std::path::Path, args: &[&str], stop_at: Option<u64>) -> bool {
+    let mut c = std::process::Command::new(env!("CARGO_BIN_EXE_sluice"));
+    c.args(args)
+        .current_dir(dir)
+        .env("SLUICE_PERSON", common::PERSON)
+        .env("SLUICE_EMAIL", common::EMAIL)
+        .env_remove("SLUICE_STORE")
+        .stdout(std::process::Stdio::null())
+        .stderr(std::process::Stdio::null());
+    if let Some(n) = stop_at {
+        c.env("SLUICE_TEST_IO_POINT", format!("stop:{n}"));
+    }
+    c.status().unwrap().success()
+}
+
+#[test]
+fn an_erasure_killed_at_any_io_point_leaves_the_store_as_it_was_or_is_finished_on_the_next_open() {
+    let base = Sandbox::with_demo();
+    let mut args = CARRY.to_vec();
+    args.push("--carry-out");
+    // The number of I/O points of an unstopped erasure: the first point a run passes.
+    let passes = |n: u64| {
+        let dir = tempfile::tempdir().unwrap();
+        common::copy_dir(base.path(), dir.path());
+        sluice_in(dir.path(), &args, Some(n))
+    };
+    let mut hi = 1;
+    while !passes(hi) {
+        hi *= 2;
+    }
+    let mut lo = hi / 2;
+    while lo + 1 < hi {
+        let mid = (lo + hi) / 2;
+        if passes(mid) {
+            hi = mid;
+        } else {
+            lo = mid;
+        }
+    }
+    let n_points = hi - 1;
+    assert!(n_points > 20, "{n_points} I/O points");
+    // The last points are those of removing the old bytes after the order's transaction;
+    // the others, a spread of them, write the erased forms before it.
+    let mut points: BTreeSet<u64> = (n_points.saturating_sub(15).max(1)..=n_points).collect();
+    points.extend([1, 2, n_points / 4, n_points / 2, 3 * n_points / 4]);
+    let (mut as_it_was, mut finished) = (0, 0);
+    for n in points {
+        let dir = tempfile::tempdir().unwrap();
+        common::copy_dir(base.path(), dir.path());
+        assert!(
+            !sluice_in(dir.path(), &args, Some(n)),
+            "stopped at point {n}"
+        );
+        // The next command that opens the store finds it intact, whichever way it went.
+        let out = std::process::Command::new(env!("CARGO_BIN_EXE_sluice"))
+            .args(["verify", "--json"])
+            .current_dir(dir.path())
+            .env_remove("SLUICE_STORE")
+            .output()
+            .unwrap();
+        let report: Value = serde_json::from_slice(&out.stdout).unwrap();
+        assert_eq!(report["intact"], true, "stopped at point {n}: {report:#}");
+        let found = find_everywhere(&dir.path().join("sluice-store"));
+        if report["erasure_orders"].as_array().unwrap().is_empty() {
+            assert!(!found.is_empty(), "point {n}: no order, yet nothing found");
+            as_it_was += 1;
+        } else {
+            assert!(found.is_empty(), "point {n}: recorded, yet {found:?}");
+            finished += 1;
+        }
+    }
+    assert!(as_it_was > 0 && finished > 0, "{as_it_was} and {finished}");
+}
