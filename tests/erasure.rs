@@ -471,6 +471,29 @@ fn carrying_out_an_order_erases_one_person_everywhere_and_keeps_the_proof_of_the
     );
     s.ok(&["identify", "q3-report.md"]);
 
+    // Reproducing and re-running say which steps cannot be reproduced past the order, and why.
+    let msg = s.fails(1, &["reproduce", "q3_by_shop"]);
+    assert_contains(&msg, "cannot be reproduced past an erasure");
+    assert_contains(
+        &msg,
+        "step 1: the quillby_orders:v1 it received lost 10 cells under erasure order 1",
+    );
+    let msg = s.fails(
+        1,
+        &[
+            "rerun",
+            "q3_by_shop",
+            "--with",
+            "quillby_orders=exports/quillby_2026q3.csv",
+        ],
+    );
+    assert_contains(&msg, "whose cells erasure order 1 erased");
+    // The report of a version with erased data says where and under which order.
+    s.ok(&["report", "reviewed_orders:v2", "-o", "after.md"]);
+    let md = std::fs::read_to_string(s.path().join("after.md")).unwrap();
+    assert_contains(&md, "erasure order 1");
+    assert!(!md.to_lowercase().contains("rosalind yarlstow"));
+
     // A guessed value is not confirmable: no salt the store still holds, with her name or
     // address, gives any leaf the store keeps for an erased cell.
     let store = Store::open(&store_dir).unwrap();

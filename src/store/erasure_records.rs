@@ -173,6 +173,29 @@ impl Lineage {
 }
 
 impl Tx<'_> {
+    /// Refuses to record a version whose bytes are those of a version an erasure order
+    /// erased (the same file received again, or computed again from it): that would bring
+    /// the erased values back under a name the store reads as erased.
+    pub fn refuse_erased_bytes(&self, hash: &str) -> Result<()> {
+        let hit: Option<(String, i64, i64)> = self
+            .tx
+            .query_row(
+                "SELECT d.name, v.seq, e.order_id FROM erased_versions e
+                 JOIN versions v ON v.id = e.version_id JOIN datasets d ON d.id = v.dataset_id
+                 WHERE v.hash = ?1 AND e.stored_hash <> v.hash LIMIT 1",
+                params![hash],
+                |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)),
+            )
+            .optional()
+            .map_err(db_err)?;
+        match hit {
+            None => Ok(()),
+            Some((name, seq, order)) => Err(crate::Error::from(crate::error::ErrorKind::Data(format!(
+                "these bytes are those of {name}:v{seq}, whose cells erasure order {order} erased; recording them again would bring the erased values back, so they are refused (remove the erased data from the file first)"
+            )))),
+        }
+    }
+
     /// Records an order; returns its id. Its row is committed to by the next audit entry.
     pub fn insert_erasure_order(&mut self, o: &NewOrder<'_>) -> Result<i64> {
         let agent_id = self.agent_id(o.agent)?;

@@ -1130,6 +1130,7 @@ impl Tx<'_> {
     /// Records a version (creating its dataset when new) with its objects and profile, and
     /// returns its id and 1-based number within the dataset.
     pub fn insert_version(&mut self, v: &NewVersion<'_>) -> Result<(i64, u64)> {
+        self.refuse_erased_bytes(v.hash)?;
         let key_json = match v.key {
             Some(k) => Some(serde_json::to_string(k).map_err(|e| Error::usage(e.to_string()))?),
             None => None,
