@@ -344,6 +344,17 @@ fn find_everywhere(dir: &std::path::Path) -> Vec<String> {
     found
 }
 
+/// `value` validated against `schema/output/NAME.schema.json` with the `jsonschema` crate.
+fn assert_schema(name: &str, value: &Value) {
+    let path = std::path::Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("schema/output")
+        .join(format!("{name}.schema.json"));
+    let schema: Value = serde_json::from_str(&std::fs::read_to_string(path).unwrap()).unwrap();
+    let v = jsonschema::draft202012::new(&schema).unwrap();
+    let errors: Vec<String> = v.iter_errors(value).map(|e| e.to_string()).collect();
+    assert!(errors.is_empty(), "{name}: {errors:?}");
+}
+
 #[test]
 fn carrying_out_an_order_erases_one_person_everywhere_and_keeps_the_proof_of_the_rest() {
     let s = Sandbox::with_demo();
@@ -415,6 +426,7 @@ fn carrying_out_an_order_erases_one_person_everywhere_and_keeps_the_proof_of_the
     assert_eq!(done["dry_run"], false);
     let carried = &done["carried_out"];
     assert_eq!(carried["order"], 1);
+    assert_schema("erase", &done);
 
     // Every derived cell found: each version the independent walk reaches has her whole row
     // erased, and the summaries are kept, marked.
@@ -451,6 +463,7 @@ fn carrying_out_an_order_erases_one_person_everywhere_and_keeps_the_proof_of_the
     // verify is clean and names the order; the sign-off made before still verifies.
     let report = s.json(&["verify", "--json"]);
     assert_eq!(report["intact"], true, "{report:#}");
+    assert_schema("verify", &report);
     assert_eq!(report["erasure_orders"][0]["order"], 1);
     assert_eq!(
         report["erasure_orders"][0]["versions_proved"]
