@@ -54,10 +54,134 @@ pub struct VerifyReport {
     /// Recipes checked: the step is a built-in operation, its parameters read back in their
     /// canonical form and equal those its audit entry recorded, its input versions exist.
     pub recipes_checked: u64,
+    /// Erasure orders carried out in the store, each with the versions whose remaining cells
+    /// were proved against the commitment recorded before the erasure.
+    pub erasure_orders: Vec<ErasureChecked>,
     /// Endorsements (sign-offs, admissions and retirements of signatories) whose signatures
     /// were checked against the keys the store trusted when each was made.
     pub endorsements_checked: u64,
     pub problems: Vec<Problem>,
+}
+
+/// One erasure order as `verify` found it.
+#[derive(Debug, Clone, Serialize)]
+pub struct ErasureChecked {
+    pub order: i64,
+    pub request: String,
+    pub ordered_at: String,
+    /// The versions it reached, each proved: its remaining cells with the kept leaves give
+    /// the root recorded before the erasure, and its erased cells are empty.
+    pub versions_proved: u64,
+    pub cells_erased: u64,
+}
+
+/// Every version an erasure order reached, proved from what the store keeps now: its stored
+/// form read (and hash-checked), each remaining cell's leaf computed from its value and its
+/// salt (the punctured salt tree), each erased cell's kept leaf taken in its place, and the
+/// root computed again must be the one recorded before the erasure; every erased cell must be
+/// empty in the stored form. A changed remaining cell, a moved cell, a changed kept leaf or a
+/// cell erased beyond the order gives a problem (kind "erasure") naming the version and order.
+fn erasure_problems(
+    store: &Store,
+    versions: &[crate::model::Version],
+) -> Result<(Vec<ErasureChecked>, Vec<Problem>)> {
+    use crate::commitment::{self, Committer, Salts};
+    use std::collections::BTreeMap;
+    let mut out = Vec::new();
+    let mut problems = Vec::new();
+    let orders = store.lineage.erasure_orders()?;
+    if orders.is_empty() {
+        return Ok((out, problems));
+    }
+    let erased = store.lineage.erased_versions()?;
+    for o in &orders {
+        let mut checked = ErasureChecked {
+            order: o.id,
+            request: o.request.clone(),
+            ordered_at: o.ordered_at.clone(),
+            versions_proved: 0,
+            cells_erased: 0,
+        };
+        for e in erased.iter().filter(|e| e.order_id == o.id) {
+            let Some(v) = versions.iter().find(|v| v.id == e.version_id) else {
+                continue;
+            };
+            let mut say = |detail: String| {
+                problems.push(problem(
+                    "erasure",
+                    v.label(),
+                    format!("{detail} (erasure order {})", o.id),
+                ))
+            };
+            let Some(salts) = Salts::from_bytes(&e.salts) else {
+                say("its kept salts are malformed".into());
+                continue;
+            };
+            if e.kept.len() % 40 != 0 || e.marked.len() % 8 != 0 {
+                say("its kept leaves are malformed".into());
+                continue;
+            }
+            let kept: BTreeMap<u64, commitment::Bytes32> = e
+                .kept
+                .chunks_exact(40)
+                .filter_map(|c| {
+                    let i = u64::from_le_bytes(c[..8].try_into().ok()?);
+                    let l: commitment::Bytes32 = c[8..].try_into().ok()?;
+                    Some((i, l))
+                })
+                .collect();
+            if kept.len() as u64 != e.n_erased {
+                say(format!(
+                    "{} erased cells are recorded, {} kept leaves",
+                    e.n_erased,
+                    kept.len()
+                ));
+                continue;
+            }
+            let n_cols = v.header.len() as u64;
+            let mut c = Committer::new(&salts, v.n_rows, n_cols, kept.clone());
+            let mut not_empty = None;
+            let read = store.objects.each_row(v, |row, r| {
+                let cells: Vec<&[u8]> = (0..r.len()).map(|i| r.field(i)).collect();
+                for (col, value) in cells.iter().enumerate() {
+                    let i = row * n_cols + col as u64;
+                    if kept.contains_key(&i) && !value.is_empty() && not_empty.is_none() {
+                        not_empty = Some((row, col));
+                    }
+                }
+                c.row(cells);
+                Ok(())
+            });
+            if let Err(err) = read {
+                say(format!("its erased form cannot be read: {err}"));
+                continue;
+            }
+            if let Some((row, col)) = not_empty {
+                say(format!(
+                    "row {} column {} is recorded as erased but holds a value",
+                    row + 1,
+                    v.header.get(col).map_or("?", |s| s.as_str())
+                ));
+            }
+            if let Some(i) = c.missing {
+                say(format!(
+                    "cell {} (row {}) has neither a salt nor a kept leaf",
+                    i,
+                    i / n_cols.max(1) + 1
+                ));
+                continue;
+            }
+            let root = commitment::hex(&c.finish().root(&v.header));
+            if root != e.root {
+                say("its remaining cells do not give the commitment recorded before the erasure: a remaining cell or a kept leaf was changed".into());
+                continue;
+            }
+            checked.versions_proved += 1;
+            checked.cells_erased += e.n_erased;
+        }
+        out.push(checked);
+    }
+    Ok((out, problems))
 }
 
 fn problem(kind: &str, subject: impl Into<String>, detail: impl Into<String>) -> Problem {
@@ -117,6 +241,11 @@ fn verify_snapshot(store: &Store) -> Result<VerifyReport> {
         let backend = store.objects.backend();
         if unstored.contains(hex) && !backend.exists(&hash) {
             not_stored += 1;
+            continue;
+        }
+        // An erased version's own bytes are gone by design; its erased form is an object
+        // row of its own, checked here, and its cells are proved by `erasure_problems`.
+        if store.objects.is_erased(&hash) {
             continue;
         }
         if !backend.exists(&hash) {
@@ -296,6 +425,8 @@ fn verify_snapshot(store: &Store) -> Result<VerifyReport> {
             legacy_rows: 0,
         });
     problems.extend(rows.problems);
+    let (erasure_orders, erasure_found) = un.or_default(erasure_problems(store, &versions));
+    problems.extend(erasure_found);
     for e in un.errors {
         problems.push(problem(
             "database",
@@ -342,6 +473,7 @@ fn verify_snapshot(store: &Store) -> Result<VerifyReport> {
         versions_stored: versions.iter().filter(|v| v.storage.holds_bytes()).count() as u64,
         versions_recomputable: versions.iter().filter(|v| !v.storage.holds_bytes()).count() as u64,
         recipes_checked: recipes.0,
+        erasure_orders,
         endorsements_checked,
         problems,
     })
@@ -709,6 +841,24 @@ fn row_commitments(store: &Store, entries: &[crate::model::AuditEntry]) -> Resul
             );
         }
     }
+    // A later entry whose selector covers an earlier one's whole range (an erasure commits
+    // anew to the whole of each table whose fields it overwrote) supersedes it.
+    let superseded: Vec<audit::Selector> = latest
+        .iter()
+        .filter(|(s, (seq, ..))| {
+            latest.iter().any(|(t, (later, ..))| {
+                later > seq
+                    && t.table == s.table
+                    && t.by == s.by
+                    && t.from <= s.from
+                    && s.to <= t.to
+            })
+        })
+        .map(|(s, _)| s.clone())
+        .collect();
+    for s in &superseded {
+        latest.remove(s);
+    }
     let mut covered: HashMap<&str, HashSet<i64>> = HashMap::new();
     let mut unreadable: HashSet<&str> = HashSet::new();
     for (sel, (seq, what, n, digest)) in &latest {
@@ -849,7 +999,12 @@ fn deep_problems(store: &Store, report: &VerifyReport) -> Result<(Vec<Problem>, 
         };
         // A version whose bytes are not stored is computed again from its recipe and its
         // hash checked; its row index and profile come from the same writer as a stored one's.
-        if !store.bytes_stored(&v)? {
+        let erased = store.objects.is_erased(&hash);
+        if !store.bytes_stored(&v)? && !erased {
+            // A recipe that reads a version an erasure reached cannot give its hash again.
+            if !crate::erasure::unreproducible(store, [v.step_id])?.is_empty() {
+                continue;
+            }
             match crate::recompute::check_recipe(store, &v) {
                 Ok(()) => done += 1,
                 Err(e) => out.push(problem("recompute", v.label(), e.to_string())),
@@ -904,7 +1059,7 @@ fn deep_problems(store: &Store, report: &VerifyReport) -> Result<(Vec<Problem>, 
         let mismatch = if compact {
             let n_read = builder.n_rows();
             builder.finish(&mut built);
-            if Hash::of(&built) == ix_hash {
+            if Hash::of(&built) == store.objects.form_of(&ix_hash) {
                 None
             } else {
                 let ours = rowindex::positions(&built).unwrap_or_default();
@@ -958,7 +1113,9 @@ fn deep_problems(store: &Store, report: &VerifyReport) -> Result<(Vec<Problem>, 
         }
         let computed = profiler.finish(&v.header);
         let recorded = store.lineage.profiles(v.id)?;
-        if computed != recorded {
+        // An erased version's profile describes it as recorded (less the extremes that were
+        // erased values); its erased form is proved by its cell commitment instead.
+        if computed != recorded && !erased {
             let which: Vec<String> = computed
                 .iter()
                 .zip(recorded.iter())

@@ -266,3 +266,389 @@ fn orders_are_refused_on_derived_versions_and_when_they_name_nothing() {
     assert_contains(&msg, "no cell of quillby_orders:v1");
     s.fails(2, &["erase", "quillby_orders:v1", "--request", "r"]);
 }
+
+// ---- carrying an order out ---------------------------------------------------------------
+
+/// Rosalind Yarlstow is one customer of the demo's Quillby export (demo generator, seed
+/// fixed): one order, her name and address nowhere else.
+const CARRY: &[&str] = &[
+    "erase",
+    "quillby_orders:v1",
+    "--where",
+    "email = 'rosalind.yarlstow@example.org'",
+    "--request",
+    "request 2026-121 (GDPR Art. 17), filed by the cooperative's data-protection officer",
+];
+
+/// What is searched for, lower-cased: her name and her address (another customer shares her
+/// surname, so the surname alone is not hers).
+const NEEDLES: &[&str] = &["rosalind yarlstow", "rosalind.yarlstow@example.org"];
+
+/// Every place under `dir` where a needle occurs, in every encoding the store uses: the
+/// files' own bytes (UTF-8 text in the database, its write-ahead log and README; segment
+/// files), every Zstandard frame found in any file decoded (RFC 8878: a frame starts with the
+/// magic number 0xFD2FB528, little-endian), and each needle as UTF-16LE too. The search is
+/// ASCII-case-insensitive and does not use sluice's own readers.
+fn find_everywhere(dir: &std::path::Path) -> Vec<String> {
+    fn lower(b: &[u8]) -> Vec<u8> {
+        b.to_ascii_lowercase()
+    }
+    let mut needles: Vec<(String, Vec<u8>)> = Vec::new();
+    for n in NEEDLES {
+        needles.push((n.to_string(), n.as_bytes().to_vec()));
+        let utf16: Vec<u8> = n.encode_utf16().flat_map(|u| u.to_le_bytes()).collect();
+        needles.push((format!("{n} (UTF-16LE)"), utf16));
+    }
+    let hit = |hay: &[u8], n: &[u8]| hay.windows(n.len()).any(|w| w == n);
+    let mut found = Vec::new();
+    let mut todo = vec![dir.to_path_buf()];
+    while let Some(d) = todo.pop() {
+        for e in std::fs::read_dir(&d).unwrap() {
+            let p = e.unwrap().path();
+            if p.is_dir() {
+                todo.push(p);
+                continue;
+            }
+            let bytes = std::fs::read(&p).unwrap();
+            let low = lower(&bytes);
+            for (name, n) in &needles {
+                if hit(&low, n) {
+                    found.push(format!("{name} in {}", p.display()));
+                }
+            }
+            let magic = [0x28u8, 0xB5, 0x2F, 0xFD];
+            for at in 0..bytes.len().saturating_sub(4) {
+                if bytes[at..at + 4] != magic {
+                    continue;
+                }
+                let Ok(dec) = zstd::stream::read::Decoder::with_buffer(&bytes[at..]) else {
+                    continue;
+                };
+                let mut dec = dec.single_frame();
+                let mut out = Vec::new();
+                if std::io::Read::read_to_end(&mut dec, &mut out).is_err() && out.is_empty() {
+                    continue;
+                }
+                let low = lower(&out);
+                for (name, n) in &needles {
+                    if hit(&low, n) {
+                        found.push(format!(
+                            "{name} in the frame at byte {at} of {}",
+                            p.display()
+                        ));
+                    }
+                }
+            }
+        }
+    }
+    found
+}
+
+/// `value` validated against `schema/output/NAME.schema.json` with the `jsonschema` crate.
+fn assert_schema(name: &str, value: &Value) {
+    let path = std::path::Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("schema/output")
+        .join(format!("{name}.schema.json"));
+    let schema: Value = serde_json::from_str(&std::fs::read_to_string(path).unwrap()).unwrap();
+    let v = jsonschema::draft202012::new(&schema).unwrap();
+    let errors: Vec<String> = v.iter_errors(value).map(|e| e.to_string()).collect();
+    assert!(errors.is_empty(), "{name}: {errors:?}");
+}
+
+#[test]
+fn carrying_out_an_order_erases_one_person_everywhere_and_keeps_the_proof_of_the_rest() {
+    let s = Sandbox::with_demo();
+    let store_dir = s.path().join("sluice-store");
+
+    // Before: a sign-off (OpenSSH's ssh-keygen makes the key) of a version holding her row,
+    // and a report of the summary her order was counted in.
+    let key = s.path().join("ada");
+    let st = std::process::Command::new("ssh-keygen")
+        .args(["-q", "-t", "ed25519", "-N", "", "-C", "ada", "-f"])
+        .arg(&key)
+        .status()
+        .expect("ssh-keygen runs (Debian: apt-get install openssh-client; tests/run installs it)");
+    assert!(st.success());
+    s.ok(&[
+        "signatories",
+        "--admit",
+        "ada.pub",
+        "--name",
+        "Ada Moss",
+        "--signing-key",
+        "ada",
+    ]);
+    s.ok(&[
+        "endorse",
+        "reviewed_orders:v2",
+        "--meaning",
+        "approved",
+        "--signing-key",
+        "ada",
+        "-o",
+        "approved.endorsement",
+    ]);
+    s.ok(&["report", "q3_by_shop", "-o", "q3-report.md"]);
+    let reviewed_hash = s.json(&["about", "reviewed_orders:v2", "--json"])["version"]["hash"]
+        .as_str()
+        .unwrap()
+        .to_string();
+
+    // The search can fail: before the erasure it finds her in segments (decompressed) only.
+    let before = find_everywhere(&store_dir);
+    assert!(
+        before.iter().any(|f| f.contains("frame at byte")),
+        "the search must find her before: {before:?}"
+    );
+
+    // Which raw row is hers, and what an independent walk of the row maps reaches from it.
+    let raw = csv_rows(&s, "quillby_orders:v1");
+    let start: Vec<u64> = raw
+        .iter()
+        .enumerate()
+        .filter(|(_, r)| r["email"] == "rosalind.yarlstow@example.org")
+        .map(|(i, _)| i as u64)
+        .collect();
+    assert_eq!(start.len(), 1);
+    let (want_erased, want_marked) = independent_walk(&s, "quillby_orders:v1", &start);
+    let widths: BTreeMap<String, usize> = want_erased
+        .keys()
+        .map(|l| (l.clone(), csv_rows(&s, l)[0].len()))
+        .collect();
+
+    // A dry run changes nothing; the confirmation option carries the order out.
+    let snapshot = s.snapshot();
+    s.ok(CARRY);
+    assert_eq!(s.snapshot(), snapshot);
+    let mut args = CARRY.to_vec();
+    args.extend(["--carry-out", "--json"]);
+    let done = s.json(&args);
+    assert_eq!(done["dry_run"], false);
+    let carried = &done["carried_out"];
+    assert_eq!(carried["order"], 1);
+    assert_schema("erase", &done);
+
+    // Every derived cell found: each version the independent walk reaches has her whole row
+    // erased, and the summaries are kept, marked.
+    let by_label: BTreeMap<String, &Value> = carried["versions"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|v| (v["version"].as_str().unwrap().to_string(), v))
+        .collect();
+    for (label, rows) in &want_erased {
+        let v = by_label
+            .get(label)
+            .unwrap_or_else(|| panic!("{label} not erased"));
+        assert_eq!(
+            v["cells_erased"].as_u64().unwrap(),
+            (rows.len() * widths[label]) as u64,
+            "{label}"
+        );
+    }
+    for label in want_marked.keys() {
+        let v = by_label
+            .get(label)
+            .unwrap_or_else(|| panic!("{label} not marked"));
+        assert!(
+            v["cells_kept_unrecomputable"].as_u64().unwrap() > 0,
+            "{label}"
+        );
+    }
+
+    // The bytes are gone from every file under the store.
+    let after = find_everywhere(&store_dir);
+    assert!(after.is_empty(), "still in the store: {after:?}");
+
+    // verify is clean and names the order; the sign-off made before still verifies.
+    let report = s.json(&["verify", "--json"]);
+    assert_eq!(report["intact"], true, "{report:#}");
+    assert_schema("verify", &report);
+    assert_eq!(report["erasure_orders"][0]["order"], 1);
+    assert_eq!(
+        report["erasure_orders"][0]["versions_proved"]
+            .as_u64()
+            .unwrap(),
+        by_label.len() as u64
+    );
+    assert_eq!(report["endorsements_checked"], 2);
+    let text = s.ok(&["verify", "--endorsement", "approved.endorsement"]);
+    assert_contains(&text, "erasure order 1 (request 2026-121");
+    // The version keeps its name: by hash and by NAME:vN it resolves, one row shorter in
+    // content but not in shape.
+    let by_hash = s.ok(&["retrieve", &format!("blake3:{reviewed_hash}")]);
+    assert!(!by_hash.to_lowercase().contains("rosalind yarlstow"));
+    assert_eq!(
+        by_hash.lines().count(),
+        s.ok(&["retrieve", "reviewed_orders:v2"]).lines().count()
+    );
+    s.ok(&["identify", "q3-report.md"]);
+
+    // Reproducing and re-running say which steps cannot be reproduced past the order, and why.
+    let msg = s.fails(1, &["reproduce", "q3_by_shop"]);
+    assert_contains(&msg, "cannot be reproduced past an erasure");
+    assert_contains(
+        &msg,
+        "step 1: the quillby_orders:v1 it received lost 10 cells under erasure order 1",
+    );
+    let msg = s.fails(
+        1,
+        &[
+            "rerun",
+            "q3_by_shop",
+            "--with",
+            "quillby_orders=exports/quillby_2026q3.csv",
+        ],
+    );
+    assert_contains(&msg, "whose cells erasure order 1 erased");
+    // The report of a version with erased data says where and under which order.
+    s.ok(&["report", "reviewed_orders:v2", "-o", "after.md"]);
+    let md = std::fs::read_to_string(s.path().join("after.md")).unwrap();
+    assert_contains(&md, "erasure order 1");
+    assert!(!md.to_lowercase().contains("rosalind yarlstow"));
+
+    // A guessed value is not confirmable: no salt the store still holds, with her name or
+    // address, gives any leaf the store keeps for an erased cell.
+    let store = Store::open(&store_dir).unwrap();
+    let guesses: [&[u8]; 4] = [
+        b"Rosalind Yarlstow",
+        b"ROSALIND YARLSTOW",
+        b"rosalind.yarlstow@example.org",
+        b"Rosalind.Yarlstow@example.org",
+    ];
+    for e in store.lineage.erased_versions().unwrap() {
+        let v = store.lineage.version_by_id(e.version_id).unwrap().unwrap();
+        let salts = sluice::commitment::Salts::from_bytes(&e.salts).unwrap();
+        let kept: BTreeSet<[u8; 32]> = e
+            .kept
+            .chunks_exact(40)
+            .map(|c| c[8..].try_into().unwrap())
+            .collect();
+        for (i, c) in e.kept.chunks_exact(40).enumerate() {
+            let cell = u64::from_le_bytes(c[..8].try_into().unwrap());
+            assert_eq!(salts.salt(cell), None, "{} erased cell {i}", v.label());
+        }
+        for cell in 0..v.n_rows * v.header.len() as u64 {
+            let Some(salt) = salts.salt(cell) else {
+                continue;
+            };
+            for g in guesses {
+                assert!(!kept.contains(&sluice::commitment::leaf(&salt, g)));
+            }
+        }
+    }
+
+    // A remaining cell changed in an erased version's stored form is detected.
+    let raw_v = sluice::refs::resolve(&store.lineage, "quillby_orders:v1").unwrap();
+    let own: sluice::hash::Hash = raw_v.hash.parse().unwrap();
+    let bytes = store.objects.read_all(&own).unwrap();
+    let text = String::from_utf8(bytes).unwrap();
+    let tampered = text.replacen("Zelda Gilmore", "Zelda Gilmorf", 1);
+    assert_ne!(tampered, text);
+    let mut w = store.objects.writer().unwrap();
+    w.write(tampered.as_bytes()).unwrap();
+    let (h, n) = w.finish().unwrap();
+    drop(store);
+    let db = rusqlite::Connection::open(store_dir.join("lineage.db")).unwrap();
+    db.execute(
+        "INSERT INTO objects (hash, n_bytes, kind, created_at) VALUES (?1, ?2, 'table', '2026-12-03T00:00:00Z')",
+        rusqlite::params![h.hex(), n as i64],
+    )
+    .unwrap();
+    db.execute(
+        "UPDATE erased_versions SET stored_hash = ?1 WHERE version_id = ?2",
+        rusqlite::params![h.hex(), raw_v.id],
+    )
+    .unwrap();
+    drop(db);
+    let report = s.run(&["verify", "--json"]);
+    assert_eq!(report.code, 1);
+    let report: Value = serde_json::from_str(&report.stdout).unwrap();
+    assert!(
+        report["problems"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .any(|p| p["kind"] == "erasure"
+                && p["subject"] == "quillby_orders:v1"
+                && p["detail"].as_str().unwrap().contains("commitment")),
+        "{report:#}"
+    );
+}
+
+/// `sluice ARGS` in folder `dir`, stopped at I/O point `n` of its object writes when given
+/// (`SLUICE_TEST_IO_POINT=stop:N`, read by debug builds: the process ends there at once, as
+/// if killed; see tests/crash.rs). Returns whether it exited 0.
+fn sluice_in(dir: &std::path::Path, args: &[&str], stop_at: Option<u64>) -> bool {
+    let mut c = std::process::Command::new(env!("CARGO_BIN_EXE_sluice"));
+    c.args(args)
+        .current_dir(dir)
+        .env("SLUICE_PERSON", common::PERSON)
+        .env("SLUICE_EMAIL", common::EMAIL)
+        .env_remove("SLUICE_STORE")
+        .stdout(std::process::Stdio::null())
+        .stderr(std::process::Stdio::null());
+    if let Some(n) = stop_at {
+        c.env("SLUICE_TEST_IO_POINT", format!("stop:{n}"));
+    }
+    c.status().unwrap().success()
+}
+
+#[test]
+fn an_erasure_killed_at_any_io_point_leaves_the_store_as_it_was_or_is_finished_on_the_next_open() {
+    let base = Sandbox::with_demo();
+    let mut args = CARRY.to_vec();
+    args.push("--carry-out");
+    // The number of I/O points of an unstopped erasure: the first point a run passes.
+    let passes = |n: u64| {
+        let dir = tempfile::tempdir().unwrap();
+        common::copy_dir(base.path(), dir.path());
+        sluice_in(dir.path(), &args, Some(n))
+    };
+    let mut hi = 1;
+    while !passes(hi) {
+        hi *= 2;
+    }
+    let mut lo = hi / 2;
+    while lo + 1 < hi {
+        let mid = (lo + hi) / 2;
+        if passes(mid) {
+            hi = mid;
+        } else {
+            lo = mid;
+        }
+    }
+    let n_points = hi - 1;
+    assert!(n_points > 20, "{n_points} I/O points");
+    // The last points are those of removing the old bytes after the order's transaction;
+    // the others, a spread of them, write the erased forms before it.
+    let mut points: BTreeSet<u64> = (n_points.saturating_sub(15).max(1)..=n_points).collect();
+    points.extend([1, 2, n_points / 4, n_points / 2, 3 * n_points / 4]);
+    let (mut as_it_was, mut finished) = (0, 0);
+    for n in points {
+        let dir = tempfile::tempdir().unwrap();
+        common::copy_dir(base.path(), dir.path());
+        assert!(
+            !sluice_in(dir.path(), &args, Some(n)),
+            "stopped at point {n}"
+        );
+        // The next command that opens the store finds it intact, whichever way it went.
+        let out = std::process::Command::new(env!("CARGO_BIN_EXE_sluice"))
+            .args(["verify", "--json"])
+            .current_dir(dir.path())
+            .env_remove("SLUICE_STORE")
+            .output()
+            .unwrap();
+        let report: Value = serde_json::from_slice(&out.stdout).unwrap();
+        assert_eq!(report["intact"], true, "stopped at point {n}: {report:#}");
+        let found = find_everywhere(&dir.path().join("sluice-store"));
+        if report["erasure_orders"].as_array().unwrap().is_empty() {
+            assert!(!found.is_empty(), "point {n}: no order, yet nothing found");
+            as_it_was += 1;
+        } else {
+            assert!(found.is_empty(), "point {n}: recorded, yet {found:?}");
+            finished += 1;
+        }
+    }
+    assert!(as_it_was > 0 && finished > 0, "{as_it_was} and {finished}");
+}

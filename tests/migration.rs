@@ -160,9 +160,9 @@ fn a_schema_4_store_takes_sign_offs_after_migration() {
     let before = s.ok(&["retrieve", "orders:v2"]);
     let v = s.json(&["verify", "--json"]);
     assert_eq!(v["intact"], true, "{v}");
-    assert_eq!(v["schema_version"], 6);
+    assert_eq!(v["schema_version"], sluice::store::lineage::SCHEMA_VERSION);
     assert_eq!(v["endorsements_checked"], 0);
-    assert_eq!(user_version(&db), 6);
+    assert_eq!(user_version(&db), sluice::store::lineage::SCHEMA_VERSION);
     let about = s.json(&["about", "orders", "--json"]);
     assert_eq!(about["signed"], false);
     assert_eq!(about["step"]["reason"], "the till pads names with spaces");

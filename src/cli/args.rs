@@ -580,14 +580,19 @@ pub enum Command {
     Endorse(EndorseArgs),
 
     /// An erasure order for personal data in a raw version: every cell it reaches, forward
-    /// through the lineage (a dry run: nothing is recorded or erased)
+    /// through the lineage (a dry run unless --carry-out)
     #[command(
         after_help = "Examples:\n  sluice erase quillby_orders:v1 --where 'customer = \"Ada Gilford\"' --request \"request 2026-117, GDPR Art. 17\"\n  \
+        sluice erase quillby_orders:v1 --where 'customer = \"Ada Gilford\"' --request \"request 2026-117, GDPR Art. 17\" --carry-out\n  \
         sluice erase oxwater_orders:v1 --key order_id=52007 --request \"request 2026-118\"\n  \
         sluice erase fennmarsh_orders:v1 --column email --request \"retention ended\"\n\n\
         Lists every cell derived from the named cells, in every version made from them, and the summary cells \
-        that aggregated them (kept as published, no longer recomputable). What must be erased, and what must be \
-        kept, is for the organisation's data-protection officer to decide under local law (README.md, \"Erasure\")."
+        that aggregated them (kept as published, no longer recomputable). With --carry-out the order is recorded \
+        in the audit chain with a salted commitment to every cell of every version it reaches, the cells are \
+        emptied in every stored copy, and the old bytes are removed from the segments and the database; \
+        versions keep their names, and `sluice verify` proves every other cell unchanged. What must be erased, \
+        and what must be kept, is for the organisation's data-protection officer to decide under local law \
+        (README.md, \"Erasure\")."
     )]
     Erase(EraseArgs),
 
@@ -1234,6 +1239,9 @@ pub struct EraseArgs {
     /// The request or legal basis the order answers, as the data-protection officer files it
     #[arg(long, value_name = "TEXT")]
     pub request: String,
+    /// Carry the order out: record it, then erase every cell listed (without this, a dry run)
+    #[arg(long)]
+    pub carry_out: bool,
     /// Print JSON
     #[arg(long)]
     pub json: bool,

@@ -9,7 +9,7 @@ use serde::Serialize;
 use super::args::EraseArgs;
 use super::text::{json, plural};
 use super::{Context, ExitCode};
-use sluice::erasure::{self, reach::Reach, Order, Target};
+use sluice::erasure::{self, carry::Carried, reach::Reach, Order, Target};
 use sluice::model::short_hash;
 
 #[derive(Serialize)]
@@ -37,6 +37,8 @@ struct NotFollowedJson<'a> {
 #[derive(Serialize)]
 struct SurveyJson<'a> {
     dry_run: bool,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    carried_out: Option<&'a Carried>,
     version: String,
     hash: &'a str,
     names: &'a Target,
@@ -92,6 +94,21 @@ pub fn erase(ctx: &Context<'_>, a: &EraseArgs, out: &mut impl Write) -> anyhow::
         target: target(a)?,
         request: a.request.clone(),
     };
+    if a.carry_out {
+        let mut store = store;
+        let agent = ctx.agent(Some(&store))?;
+        let at = sluice::clock::now_rfc3339();
+        let (reach, done) = erasure::carry::carry_out(&mut store, &order, &agent, &at)?;
+        if a.json {
+            let mut j = survey_json(&order, &reach);
+            j.dry_run = false;
+            j.carried_out = Some(&done);
+            json(out, &j)?;
+        } else {
+            carried_text(out, &order, &reach, &done)?;
+        }
+        return Ok(0);
+    }
     let reach = erasure::survey(&store, &order)?;
     if a.json {
         json(out, &survey_json(&order, &reach))?;
@@ -99,6 +116,73 @@ pub fn erase(ctx: &Context<'_>, a: &EraseArgs, out: &mut impl Write) -> anyhow::
         survey_text(out, &order, &reach)?;
     }
     Ok(0)
+}
+
+fn carried_text(
+    out: &mut impl Write,
+    order: &Order,
+    reach: &Reach,
+    done: &Carried,
+) -> std::io::Result<()> {
+    writeln!(
+        out,
+        "erasure order {} carried out: recorded as audit entry {}, cells erased in audit entry {}",
+        done.order, done.ordered_entry, done.erased_entry
+    )?;
+    writeln!(
+        out,
+        "  raw version  {} ({})",
+        order.version.label(),
+        short_hash(&order.version.hash)
+    )?;
+    writeln!(out, "  names        {}", order.target.describe())?;
+    writeln!(out, "  request      {}", order.request)?;
+    writeln!(out)?;
+    writeln!(
+        out,
+        "erased {} in {}; each keeps its name, and a salted commitment recorded before the erasure proves every other cell:",
+        plural(reach.n_erased(), "cell", "cells"),
+        plural(done.versions.len() as u64, "version", "versions")
+    )?;
+    for v in &done.versions {
+        let note = if v.was_recomputable {
+            "  (was recomputable: no longer, its erased form is stored)"
+        } else {
+            ""
+        };
+        writeln!(
+            out,
+            "  {:<24} {:>6} erased  {:>4} kept, no longer recomputable{note}",
+            v.version, v.cells_erased, v.cells_kept_unrecomputable
+        )?;
+    }
+    writeln!(out)?;
+    writeln!(
+        out,
+        "database: {} overwritten, then rebuilt and its write-ahead log emptied",
+        plural(done.database_fields_overwritten, "field", "fields")
+    )?;
+    writeln!(
+        out,
+        "segments: {} before, {} after; the old bytes are gone from the store",
+        done.removed.segments_before, done.removed.segments_after
+    )?;
+    if !reach.not_followed.is_empty() {
+        writeln!(out)?;
+        writeln!(
+            out,
+            "steps the lineage does not let sluice follow (check their outputs by hand; nothing was erased there):"
+        )?;
+        for n in &reach.not_followed {
+            writeln!(out, "  step {} making {}: {}", n.step, n.version, n.why)?;
+        }
+    }
+    writeln!(out)?;
+    writeln!(
+        out,
+        "this supports an erasure request; what must be erased and what kept is for the data-protection officer to decide under local law"
+    )?;
+    Ok(())
 }
 
 fn cells_json<'a>(
@@ -117,6 +201,7 @@ fn cells_json<'a>(
 fn survey_json<'a>(order: &'a Order, reach: &'a Reach) -> SurveyJson<'a> {
     SurveyJson {
         dry_run: true,
+        carried_out: None,
         version: order.version.label(),
         hash: &order.version.hash,
         names: &order.target,

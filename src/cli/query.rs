@@ -544,6 +544,17 @@ pub fn verify_text(out: &mut impl Write, r: &VerifyReport) -> io::Result<()> {
             "; computed again only with --deep"
         }
     )?;
+    for o in &r.erasure_orders {
+        writeln!(
+            out,
+            "erasure order {} ({}, {}): {} erased in {}; every other cell of them proved unchanged by the commitment recorded before it",
+            o.order,
+            o.request,
+            o.ordered_at,
+            plural(o.cells_erased, "cell", "cells"),
+            plural(o.versions_proved, "version", "versions")
+        )?;
+    }
     if r.endorsements_checked > 0 && r.intact {
         writeln!(
             out,

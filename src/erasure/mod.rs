@@ -3,6 +3,7 @@
 //! everything that reaches forward from it ([`reach`]). The salted cell commitments that keep
 //! the proof of the rest are [`crate::commitment`].
 
+pub mod carry;
 pub mod reach;
 
 use serde::Serialize;
@@ -153,4 +154,79 @@ pub fn survey(store: &Store, order: &Order) -> Result<reach::Reach> {
     raw_version(store, &order.version)?;
     let cells = named_cells(store, order)?;
     reach::walk(store, &order.version, cells)
+}
+
+/// A step that cannot be reproduced past an erasure, and why.
+#[derive(Debug, Clone, Serialize)]
+pub struct Unreproducible {
+    pub step: i64,
+    /// The version whose cells were erased: the step's input, or its own output for a
+    /// version received from outside.
+    pub version: String,
+    pub order: i64,
+    pub why: String,
+}
+
+/// The steps among `steps` (store-wide numbers) that read, or received, a version an erasure
+/// order reached: computed again now they would read its erased form and cannot give the
+/// recorded hash, and the bytes they read as recorded exist nowhere.
+pub fn unreproducible(
+    store: &Store,
+    steps: impl IntoIterator<Item = i64>,
+) -> Result<Vec<Unreproducible>> {
+    let mut out = Vec::new();
+    for id in steps {
+        let mut read: Vec<Version> = store
+            .lineage
+            .step_input_versions(id)?
+            .into_iter()
+            .map(|(_, v)| v)
+            .collect();
+        let received = store
+            .lineage
+            .step(id)?
+            .is_some_and(|s| s.kind == StepKind::Ingest);
+        if received {
+            read.extend(store.lineage.step_outputs(id)?);
+        }
+        for v in read {
+            if let Some(e) = store.lineage.erasure_of_version(v.id)? {
+                let what = if received { "received" } else { "read" };
+                out.push(Unreproducible {
+                    step: id,
+                    version: v.label(),
+                    order: e.order_id,
+                    why: format!(
+                        "the {} it {what} lost {} under erasure order {}; its recorded bytes exist nowhere now",
+                        v.label(),
+                        if e.n_erased == 1 {
+                            "1 cell".to_string()
+                        } else {
+                            format!("{} cells", e.n_erased)
+                        },
+                        e.order_id
+                    ),
+                });
+                break;
+            }
+        }
+    }
+    Ok(out)
+}
+
+/// The message a command gives when steps cannot be reproduced past an erasure.
+pub fn unreproducible_message(what: &str, blocked: &[Unreproducible]) -> String {
+    let lines: Vec<String> = blocked
+        .iter()
+        .map(|b| format!("  step {}: {}", b.step, b.why))
+        .collect();
+    format!(
+        "{what} cannot be reproduced past an erasure: {} on the way read data an erasure order removed\n{}\n(the versions keep their names and `sluice verify` proves their remaining cells; the erased values are gone by design)",
+        if blocked.len() == 1 {
+            "1 step".to_string()
+        } else {
+            format!("{} steps", blocked.len())
+        },
+        lines.join("\n")
+    )
 }

@@ -134,6 +134,12 @@ pub fn planned_commands(store: &Store, reference: &str) -> Result<Vec<PlannedCom
 pub fn replay(store: &mut Store, reference: &str, options: &ReplayOptions) -> Result<ReplayReport> {
     let target = refs::resolve(&store.lineage, reference)?;
     let seen = crate::plan::steps_behind(store, &target)?;
+    let blocked = crate::erasure::unreproducible(store, seen.iter().copied())?;
+    if !blocked.is_empty() {
+        return Err(crate::Error::from(crate::error::ErrorKind::Data(
+            crate::erasure::unreproducible_message(&target.label(), &blocked),
+        )));
+    }
     let mut steps = Vec::new();
     let mut reproduced = true;
     let mut progress = crate::progress::Task::begin(
@@ -476,6 +482,26 @@ pub fn onto(
         )));
     }
     check_new_file(store, &plan, reference, name, file, agent)?;
+    // The new file stands for its raw input and every version made from it is computed
+    // again; a step that reads, as recorded, another raw source or table an erasure reached
+    // cannot be run again as it was.
+    let target = refs::resolve(&store.lineage, reference)?;
+    let steps = crate::plan::steps_behind(store, &target)?;
+    let blocked: Vec<_> = crate::erasure::unreproducible(store, steps.iter().copied())?
+        .into_iter()
+        .filter(|b| {
+            let dataset = b.version.rsplit_once(':').map_or("", |(d, _)| d);
+            dataset != name && plan.sources.iter().any(|s| s.dataset == dataset)
+        })
+        .collect();
+    if !blocked.is_empty() {
+        return Err(crate::Error::from(crate::error::ErrorKind::Data(
+            crate::erasure::unreproducible_message(
+                &format!("the steps that made {reference}"),
+                &blocked,
+            ),
+        )));
+    }
     let mut bindings = Vec::new();
     for input in &mut plan.sources {
         if input.dataset == name {

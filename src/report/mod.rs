@@ -91,6 +91,10 @@ pub struct Report {
     /// Signatures recorded over the subject or over this kind of report: who, in what role,
     /// when, and whether each verifies. Empty when none is recorded.
     pub signoffs: Vec<SignOffLine>,
+    /// Erasure orders that emptied cells of the subject or of versions it comes from: where
+    /// and under which order, never the values. Left out when there are none.
+    #[serde(skip_serializing_if = "Vec::is_empty", default)]
+    pub erasures: Vec<ErasureLine>,
     pub caution: String,
     /// The report's own hash: the BLAKE3 of the written file with [`OWN_HASH_PLACEHOLDER`] in
     /// place of these digits. A built report holds the placeholder until [`write`] seals it.
@@ -98,6 +102,60 @@ pub struct Report {
     /// The lineage drawing (what the subject comes from); in the HTML only.
     #[serde(skip)]
     pub lineage: crate::graph::Drawing,
+}
+
+/// One erasure order as the report names it.
+#[derive(Debug, Clone, Serialize)]
+pub struct ErasureLine {
+    pub order: i64,
+    pub request: String,
+    pub ordered_at: String,
+    pub by: String,
+    /// Each version of the way it reached: `NAME:vN`, cells erased, summary cells kept as
+    /// published and no longer recomputable.
+    pub versions: Vec<(String, u64, u64)>,
+}
+
+/// The erasure orders that reached the subject or a version it comes from.
+fn erasure_lines(store: &Store, target: &crate::model::Version) -> Result<Vec<ErasureLine>> {
+    let orders = store.lineage.erasure_orders()?;
+    if orders.is_empty() {
+        return Ok(Vec::new());
+    }
+    let mut way = std::collections::BTreeSet::from([target.id]);
+    for id in crate::plan::steps_behind(store, target)? {
+        way.extend(store.lineage.step_outputs(id)?.iter().map(|v| v.id));
+        way.extend(
+            store
+                .lineage
+                .step_input_versions(id)?
+                .iter()
+                .map(|(_, v)| v.id),
+        );
+    }
+    let erased = store.lineage.erased_versions()?;
+    let mut out = Vec::new();
+    for o in orders {
+        let mut versions = Vec::new();
+        for e in erased
+            .iter()
+            .filter(|e| e.order_id == o.id && way.contains(&e.version_id))
+        {
+            if let Some(v) = store.lineage.version_by_id(e.version_id)? {
+                versions.push((v.label(), e.n_erased, (e.marked.len() / 8) as u64));
+            }
+        }
+        if !versions.is_empty() {
+            out.push(ErasureLine {
+                order: o.id,
+                request: o.request,
+                ordered_at: o.ordered_at,
+                by: o.agent,
+                versions,
+            });
+        }
+    }
+    Ok(out)
 }
 
 /// The report's first page in figures.
@@ -632,6 +690,7 @@ pub fn build(store: &mut Store, reference: &str, opts: &ReportOptions) -> Result
             statement,
         },
         signoffs: sign_off_lines(store, &target)?,
+        erasures: erasure_lines(store, &target)?,
         caution: CAUTION.to_string(),
         own_hash: OWN_HASH_PLACEHOLDER.to_string(),
         lineage: crate::graph::drawing(store, Some(reference), true)?,

@@ -646,6 +646,24 @@ pub fn markdown(r: &Report) -> String {
         o.push('\n');
     }
 
+    if !r.erasures.is_empty() {
+        let _ = writeln!(o, "## Erasures\n");
+        for e in &r.erasures {
+            let _ = writeln!(
+                o,
+                "**[Erased]** erasure order {} ({}), carried out {} by {}: cells were emptied in the versions below; their values are not in this report or in the store. Every other cell of them is proved unchanged by the commitment recorded before the erasure (`sluice verify`).\n\n| version | cells erased | summary cells kept as published, no longer recomputable |\n| --- | ---: | ---: |",
+                e.order,
+                md(&e.request),
+                utc(&e.ordered_at),
+                md(&e.by)
+            );
+            for (v, n, k) in &e.versions {
+                let _ = writeln!(o, "| {} | {n} | {k} |", md(v));
+            }
+            o.push('\n');
+        }
+    }
+
     let _ = writeln!(
         o,
         "## {}\n",
@@ -1314,6 +1332,26 @@ pub fn html(r: &Report) -> String {
     }
     let _ = writeln!(o, "</section>");
 
+    if !r.erasures.is_empty() {
+        let _ = writeln!(o, "<section id=\"erasures\"><h2>Erasures</h2>");
+        for e in &r.erasures {
+            let _ = writeln!(
+                o,
+                "<div class=\"stamp caution\"><span class=\"stamp-label\">Erased</span><p>Erasure order {} ({}), carried out {} by {}: cells were emptied in the versions below; their values are not in this report or in the store. Every other cell of them is proved unchanged by the commitment recorded before the erasure.</p></div>",
+                e.order,
+                esc(&e.request),
+                esc(&utc(&e.ordered_at)),
+                esc(&e.by)
+            );
+            let _ = writeln!(o, "<table><thead><tr><th>version</th><th>cells erased</th><th>summary cells kept as published, no longer recomputable</th></tr></thead><tbody>");
+            for (v, n, k) in &e.versions {
+                let _ = writeln!(o, "<tr><td>{}</td><td>{n}</td><td>{k}</td></tr>", esc(v));
+            }
+            let _ = writeln!(o, "</tbody></table>");
+        }
+        let _ = writeln!(o, "</section>");
+    }
+
     let f = &r.figures;
     let _ = writeln!(
         o,
@@ -1703,6 +1741,7 @@ mod tests {
                 statement: "checked".into(),
             },
             signoffs,
+            erasures: Vec::new(),
             caution: CAUTION.into(),
             own_hash: OWN_HASH_PLACEHOLDER.into(),
             lineage: crate::graph::Drawing::default(),

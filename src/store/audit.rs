@@ -212,6 +212,8 @@ pub const TABLES: &[&str] = &[
     "datasets",
     "drops",
     "endorsements",
+    "erased_versions",
+    "erasure_orders",
     "meanings",
     "objects",
     "row_runs",
@@ -329,6 +331,16 @@ const SELECTABLE: &[(&str, &str, &str)] = &[
         "meanings",
         "id",
         "SELECT rowid, * FROM meanings WHERE id BETWEEN ?1 AND ?2",
+    ),
+    (
+        "erasure_orders",
+        "id",
+        "SELECT rowid, * FROM erasure_orders WHERE id BETWEEN ?1 AND ?2",
+    ),
+    (
+        "erased_versions",
+        "order_id",
+        "SELECT rowid, * FROM erased_versions WHERE order_id BETWEEN ?1 AND ?2",
     ),
 ];
 
@@ -514,6 +526,8 @@ pub(super) fn max_rowid(conn: &dyn Database, table: &str) -> Result<i64> {
         "drops" => "SELECT coalesce(max(rowid), 0) FROM drops",
         "endorsements" => "SELECT coalesce(max(rowid), 0) FROM endorsements",
         "meanings" => "SELECT coalesce(max(rowid), 0) FROM meanings",
+        "erasure_orders" => "SELECT coalesce(max(rowid), 0) FROM erasure_orders",
+        "erased_versions" => "SELECT coalesce(max(rowid), 0) FROM erased_versions",
         "objects" => "SELECT coalesce(max(rowid), 0) FROM objects",
         "row_runs" => "SELECT coalesce(max(rowid), 0) FROM row_runs",
         "step_inputs" => "SELECT coalesce(max(rowid), 0) FROM step_inputs",
@@ -537,6 +551,8 @@ pub(super) fn rowids(conn: &dyn Database, table: &str) -> Result<Vec<i64>> {
         "drops" => "SELECT rowid FROM drops ORDER BY rowid",
         "endorsements" => "SELECT rowid FROM endorsements ORDER BY rowid",
         "meanings" => "SELECT rowid FROM meanings ORDER BY rowid",
+        "erasure_orders" => "SELECT rowid FROM erasure_orders ORDER BY rowid",
+        "erased_versions" => "SELECT rowid FROM erased_versions ORDER BY rowid",
         "objects" => "SELECT rowid FROM objects ORDER BY rowid",
         "row_runs" => "SELECT rowid FROM row_runs ORDER BY rowid",
         "step_inputs" => "SELECT rowid FROM step_inputs ORDER BY rowid",

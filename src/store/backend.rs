@@ -93,6 +93,13 @@ impl Row {
         }
     }
 
+    pub fn blob(&self, i: usize) -> Result<Vec<u8>> {
+        match self.0.get(i) {
+            Some(Value::Blob(v)) => Ok(v.clone()),
+            other => Err(wrong(i, "bytes", other.unwrap_or(&Value::Null))),
+        }
+    }
+
     pub fn opt_text(&self, i: usize) -> Result<Option<String>> {
         match self.0.get(i) {
             Some(Value::Null) => Ok(None),
@@ -255,6 +262,22 @@ pub const COPY_ORDER: &[(&str, &str, &str)] = &[
         "meanings",
         "SELECT id, word, description, declared_at FROM meanings ORDER BY id",
         "INSERT INTO meanings (id, word, description, declared_at) VALUES (?1, ?2, ?3, ?4) ON CONFLICT DO NOTHING",
+    ),
+    (
+        "erasure_orders",
+        "SELECT id, version_id, names, request, agent_id, ordered_at, n_cells
+         FROM erasure_orders ORDER BY id",
+        "INSERT INTO erasure_orders (id, version_id, names, request, agent_id, ordered_at, n_cells)
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7) ON CONFLICT DO NOTHING",
+    ),
+    (
+        "erased_versions",
+        "SELECT order_id, version_id, root, salts, kept, marked, n_erased, stored_hash,
+                stored_row_index
+         FROM erased_versions ORDER BY order_id, version_id",
+        "INSERT INTO erased_versions (order_id, version_id, root, salts, kept, marked, n_erased,
+                stored_hash, stored_row_index)
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9) ON CONFLICT DO NOTHING",
     ),
     (
         "audit_log",

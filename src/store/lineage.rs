@@ -30,7 +30,7 @@ const UNSTORED_OBJECTS: &str = "SELECT o.hash FROM objects o
 pub const SCHEMA_VERSION: i64 = super::sqlite::MIGRATIONS[super::sqlite::MIGRATIONS.len() - 1].0;
 
 pub struct Lineage {
-    db: Box<dyn Database>,
+    pub(super) db: Box<dyn Database>,
 }
 
 fn u(v: i64) -> u64 {
@@ -851,13 +851,28 @@ pub struct NewVersion<'a> {
 /// An open write transaction. `journal` names the rows written since the last audit entry; the
 /// next entry commits to them (see [`super::audit`]).
 pub struct Tx<'c> {
-    db: &'c dyn Database,
+    pub(super) db: &'c dyn Database,
     journal: Vec<Selector>,
 }
 
 impl Tx<'_> {
-    fn wrote(&mut self, table: &'static str, by: &'static str, key: Key) {
+    pub(super) fn wrote(&mut self, table: &'static str, by: &'static str, key: Key) {
         self.journal.push(Selector::one(table, by, key));
+    }
+
+    pub(super) fn wrote_range(
+        &mut self,
+        table: &'static str,
+        by: &'static str,
+        from: Key,
+        to: Key,
+    ) {
+        self.journal.push(Selector {
+            table,
+            by,
+            from,
+            to,
+        });
     }
 
     fn exec(&self, sql: &str, p: &[backend::Value]) -> Result<u64> {
@@ -876,7 +891,7 @@ impl Tx<'_> {
         }
     }
 
-    fn agent_id(&mut self, agent: &Agent) -> Result<i64> {
+    pub(super) fn agent_id(&mut self, agent: &Agent) -> Result<i64> {
         // Ids are given as the highest so far plus one, inside the write transaction that
         // holds the writers' lock: gap-free and in commit order on both backends.
         self.exec(
@@ -981,6 +996,7 @@ impl Tx<'_> {
     /// Records a version (creating its dataset when new) with its objects and profile, and
     /// returns its id and 1-based number within the dataset.
     pub fn insert_version(&mut self, v: &NewVersion<'_>) -> Result<(i64, u64)> {
+        self.refuse_erased_bytes(v.hash)?;
         let key_json = match v.key {
             Some(k) => Some(serde_json::to_string(k).map_err(|e| Error::usage(e.to_string()))?),
             None => None,

@@ -11,6 +11,7 @@
 
 pub mod audit;
 pub mod backend;
+pub mod erasure_records;
 pub mod lineage;
 pub mod location;
 pub mod objects;
@@ -166,6 +167,11 @@ impl Store {
         // Whoever reads a recomputable version gets it computed from its recipe: the store
         // asks the engine for a missing object (the one call from the store into the engine).
         crate::recompute::on_demand(&mut store);
+        // An erasure stopped after it was recorded is finished first: its old bytes go.
+        if store.erasure_unfinished()? {
+            let sluice = crate::model::Agent::new("sluice", None, "sluice");
+            store.remove_erased_bytes(&sluice, &crate::clock::now_rfc3339())?;
+        }
         Ok(store)
     }
 
@@ -218,8 +224,10 @@ impl Store {
             Some(conn) => Lineage::connect_server(conn)?,
             None => Lineage::open(&db)?,
         };
+        let mut objects = Objects::new(Box::new(FsBackend::new(&dir)));
+        objects.read_erased_forms(erased_forms(&lineage)?);
         Ok(Store {
-            objects: Objects::new(Box::new(FsBackend::new(&dir))),
+            objects,
             lineage,
             dir,
         })
@@ -229,6 +237,7 @@ impl Store {
     pub fn open_with_backend(dir: &Path, backend: Box<dyn ObjectBackend>) -> Result<Store> {
         let mut s = Store::open(dir)?;
         s.objects = Objects::new(backend);
+        s.objects.read_erased_forms(erased_forms(&s.lineage)?);
         crate::recompute::on_demand(&mut s);
         Ok(s)
     }
@@ -305,9 +314,12 @@ impl Store {
         fs::create_dir_all(dir.join("tmp")).map_err(|e| Error::io(&dir, e))?;
         let db = dir.join(DB_FILE);
         self.lineage.copy_to(&db)?;
+        let lineage = Lineage::open(&db)?;
+        let mut objects = Objects::new(Box::new(FsBackend::new(&self.dir)));
+        objects.read_erased_forms(erased_forms(&lineage)?);
         let mut trial = Store {
-            objects: Objects::new(Box::new(FsBackend::new(&self.dir))),
-            lineage: Lineage::open(&db)?,
+            objects,
+            lineage,
             dir,
         };
         let stage = trial.dir.join("stage");
@@ -370,6 +382,19 @@ impl Store {
         }
         removed
     }
+}
+
+/// The erased forms of the versions erasure orders reached, as the object reader takes them.
+fn erased_forms(
+    lineage: &Lineage,
+) -> Result<std::collections::HashMap<crate::hash::Hash, crate::hash::Hash>> {
+    let mut out = std::collections::HashMap::new();
+    for (own, form) in lineage.erased_forms()? {
+        if let (Ok(a), Ok(b)) = (own.parse(), form.parse()) {
+            out.insert(a, b);
+        }
+    }
+    Ok(out)
 }
 
 /// Refuses a store in the old hidden folder (`dir` is that folder, or a project folder holding

@@ -67,6 +67,11 @@ pub trait ObjectBackend: Send + Sync {
     fn hold_for_writing(&self) -> io::Result<()> {
         Ok(())
     }
+
+    /// Lets go of the writers' lock this process holds shared (once everything it wrote is
+    /// referenced), so that it may take the lock exclusively itself.
+    fn release_writing(&self) {}
+
     /// Like `create_temp`, for an object read mostly a few bytes at a time by offset (a row
     /// index): the real backend compresses it in frames of `frame_size` bytes. The default
     /// ignores the frame size.
@@ -740,6 +745,14 @@ impl ObjectBackend for FsBackend {
         self.shared.hold_for_writing()
     }
 
+    fn release_writing(&self) {
+        *self
+            .shared
+            .writing
+            .lock()
+            .unwrap_or_else(|p| p.into_inner()) = None;
+    }
+
     fn create_temp_framed(&self, frame_size: u32) -> io::Result<Box<dyn TempObject>> {
         let sh = &self.shared;
         sh.hold_for_writing()?;
@@ -891,6 +904,9 @@ pub struct Objects {
     /// Where the bytes of recomputable versions are computed when read (see
     /// [`Objects::compute_missing_with`]).
     on_demand: Option<OnDemand>,
+    /// Versions an erasure order reached: their own object names (bytes and row index)
+    /// mapped to the objects holding their erased form, which every read gets instead.
+    erased_forms: HashMap<Hash, Hash>,
 }
 
 /// Makes a missing object (a recomputable version's bytes or row index) readable from the
@@ -1002,7 +1018,24 @@ impl Objects {
             stage: None,
             intact: Mutex::new(HashSet::new()),
             on_demand: None,
+            erased_forms: HashMap::new(),
         }
+    }
+
+    /// From now on a read of one of `forms`' keys (an erased version's own bytes or row
+    /// index) reads the object it maps to, and checks that object's hash.
+    pub fn read_erased_forms(&mut self, forms: HashMap<Hash, Hash>) {
+        self.erased_forms = forms;
+    }
+
+    /// The object a read of `hash` reads: its erased form, or itself.
+    pub fn form_of(&self, hash: &Hash) -> Hash {
+        self.erased_forms.get(hash).copied().unwrap_or(*hash)
+    }
+
+    /// Whether `hash` names an erased version's own bytes or row index.
+    pub fn is_erased(&self, hash: &Hash) -> bool {
+        self.erased_forms.contains_key(hash)
     }
 
     /// From now on an object the store does not hold is asked of `compute`, which writes it
@@ -1017,9 +1050,21 @@ impl Objects {
         });
     }
 
+    /// Lets go of the writers' lock held since this process's first object write: call only
+    /// when every object it wrote is referenced by a committed transaction.
+    pub fn release_writing(&self) {
+        self.backend.release_writing();
+    }
+
+    /// Stops computing missing objects: the scratch folder of the ones computed goes now.
+    pub fn stop_computing(&mut self) {
+        self.on_demand = None;
+    }
+
     /// Where object `hash` is read from, computing it when it is missing and the engine
     /// installed a way to ([`Objects::compute_missing_with`]).
     fn find(&self, hash: &Hash) -> Result<&dyn ObjectBackend> {
+        let hash = &self.form_of(hash);
         let r = self.reader(hash);
         if r.exists(hash) {
             return Ok(r);
@@ -1114,12 +1159,14 @@ impl Objects {
 
     /// Whether the store (or the stage) holds object `hash` now; computes nothing.
     pub fn exists(&self, hash: &Hash) -> bool {
+        let hash = &self.form_of(hash);
         self.reader(hash).exists(hash)
     }
 
     /// The uncompressed length of object `hash` (computed first, like a read, when a
     /// recomputable version names it).
     pub fn size(&self, hash: &Hash) -> Result<u64> {
+        let hash = &self.form_of(hash);
         let from = self.find(hash)?;
         from.size(hash).map_err(|e| {
             if e.kind() == io::ErrorKind::NotFound {
@@ -1134,6 +1181,7 @@ impl Objects {
     /// the check completes (the object may be larger than memory), so on a mismatch the caller
     /// gets an error after the damaged bytes; `cat -o FILE` writes to a temporary file first.
     pub fn copy_to(&self, hash: &Hash, out: &mut dyn Write) -> Result<u64> {
+        let hash = &self.form_of(hash);
         let r = self.open_raw(hash)?;
         let mut hasher = blake3::Hasher::new();
         let path = self.find(hash)?.describe(hash);
@@ -1167,6 +1215,7 @@ impl Objects {
     /// `len` bytes of object `hash` from `offset` (fewer at its end), without checking its hash
     /// (trace reads single rows this way, in constant time; `verify` checks whole objects).
     pub fn read_range(&self, hash: &Hash, offset: u64, len: usize) -> Result<Vec<u8>> {
+        let hash = &self.form_of(hash);
         let mut buf = vec![0u8; len];
         let from = self.find(hash)?;
         let n = from.read_at(hash, offset, &mut buf).map_err(|e| {
@@ -1183,6 +1232,7 @@ impl Objects {
     /// Opens an object for reading without checking its hash (callers that stream large objects
     /// check the hash themselves, or rely on `verify`).
     pub fn open_raw(&self, hash: &Hash) -> Result<Box<dyn Read + Send>> {
+        let hash = &self.form_of(hash);
         let from = self.find(hash)?;
         from.open(hash).map_err(|e| {
             if e.kind() == io::ErrorKind::NotFound {
@@ -1204,6 +1254,7 @@ impl Objects {
 
     /// Re-hashes object `hash`; `Ok(None)` when intact, `Ok(Some(actual))` when damaged.
     pub fn check(&self, hash: &Hash) -> Result<Option<Hash>> {
+        let hash = &self.form_of(hash);
         if self.stage.is_none()
             && self
                 .intact

@@ -24,8 +24,10 @@ use crate::error::{Error, ErrorKind, Result};
 
 /// The migrations of the PostgreSQL schema, in order: (schema version it produces, SQL). A
 /// database on a server starts at the schema the SQLite migrations reach at version 6.
-pub const MIGRATIONS: &[(i64, &str)] =
-    &[(6, include_str!("../../schema/postgres/0006_lineage.sql"))];
+pub const MIGRATIONS: &[(i64, &str)] = &[
+    (6, include_str!("../../schema/postgres/0006_lineage.sql")),
+    (7, include_str!("../../schema/postgres/0007_erasure.sql")),
+];
 
 /// The advisory lock every write transaction takes first: the bytes of `sluice-w`.
 pub const WRITE_LOCK: i64 = 0x736c_7569_6365_2d77;

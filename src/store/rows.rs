@@ -31,8 +31,11 @@ impl Objects {
             .parse()
             .map_err(|e: String| Error::from(ErrorKind::Inconsistent(e)))?;
         let label = v.label();
+        // An erased version's bytes are its erased form, checked against that form's name.
+        let form = self.form_of(&hash).hex();
         let source = Source {
             doing,
+            hash: &form,
             ..Source::version(v, &label)
         };
         stored::each_row(self.open_raw(&hash)?, &source, f)

@@ -20,6 +20,7 @@ pub const MIGRATIONS: &[(i64, &str)] = &[
     (4, include_str!("../../schema/0004_step_provenance.sql")),
     (5, include_str!("../../schema/0005_endorsements.sql")),
     (6, include_str!("../../schema/0006_storage.sql")),
+    (7, include_str!("../../schema/0007_erasure.sql")),
 ];
 
 /// How long a command waits for another command's write transaction before giving up.
