@@ -8,9 +8,9 @@ use std::collections::{BTreeMap, BTreeSet, HashMap};
 use super::audit::Key;
 use super::backend::{Kind, Row, Value};
 use super::lineage::{Lineage, Tx};
-use crate::vals;
 use crate::error::Result;
 use crate::model::Agent;
+use crate::vals;
 
 /// One version an order reached, as recorded.
 #[derive(Debug, Clone, PartialEq, Eq)]

@@ -167,8 +167,9 @@ impl Store {
         // Whoever reads a recomputable version gets it computed from its recipe: the store
         // asks the engine for a missing object (the one call from the store into the engine).
         crate::recompute::on_demand(&mut store);
-        // An erasure stopped after it was recorded is finished first: its old bytes go.
-        if store.erasure_unfinished()? {
+        // An erasure stopped after it was recorded is finished first: its old bytes go. (A
+        // database too damaged to say opens as it is, for `verify` to name the damage.)
+        if store.erasure_unfinished().unwrap_or(false) {
             let sluice = crate::model::Agent::new("sluice", None, "sluice");
             store.remove_erased_bytes(&sluice, &crate::clock::now_rfc3339())?;
         }
@@ -225,7 +226,10 @@ impl Store {
             None => Lineage::open(&db)?,
         };
         let mut objects = Objects::new(Box::new(FsBackend::new(&dir)));
-        objects.read_erased_forms(erased_forms(&lineage)?);
+        // A database too damaged to say which versions were erased still opens, so that
+        // `verify` can name the damage; the erased versions' old bytes are gone from the
+        // segments, so nothing erased can be read back through it.
+        objects.read_erased_forms(erased_forms(&lineage).unwrap_or_default());
         Ok(Store {
             objects,
             lineage,
@@ -237,7 +241,8 @@ impl Store {
     pub fn open_with_backend(dir: &Path, backend: Box<dyn ObjectBackend>) -> Result<Store> {
         let mut s = Store::open(dir)?;
         s.objects = Objects::new(backend);
-        s.objects.read_erased_forms(erased_forms(&s.lineage)?);
+        s.objects
+            .read_erased_forms(erased_forms(&s.lineage).unwrap_or_default());
         crate::recompute::on_demand(&mut s);
         Ok(s)
     }
