@@ -393,8 +393,10 @@ impl Store {
 fn erased_forms(
     lineage: &Lineage,
 ) -> Result<std::collections::HashMap<crate::hash::Hash, crate::hash::Hash>> {
+    // A database too damaged to say (a table dropped) gives none: the store still opens,
+    // and `verify` names the damage.
     let mut out = std::collections::HashMap::new();
-    for (own, form) in lineage.erased_forms()? {
+    for (own, form) in lineage.erased_forms().unwrap_or_default() {
         if let (Ok(a), Ok(b)) = (own.parse(), form.parse()) {
             out.insert(a, b);
         }
