@@ -4,11 +4,13 @@
 //!
 //! In full ([`Listing::All`], for lineage inferred from outside work and for replay's summary of
 //! a difference) every such row of both sides is read and kept, with every changed cell's old
-//! and new text. For a listing ([`Listing::First`], `compare`) memory does not hold values: one
-//! side's rows to compare are read in their order and only a hash of each compared cell is kept
-//! (8 bytes per cell); the other side is then read as a stream, in its order, and each of its
-//! cells compared with its partner's hash, so that a changed row costs a few words whatever its
-//! values. Only the rows of the first `n` listed changes are read again for their values. Two
+//! and new text. For a listing ([`Listing::First`], `compare`), when the rows to compare, remove
+//! and add fit [`HELD_BYTES`] per side, both sides' rows are read once, on two threads, with
+//! their values, compared in memory, and the listing is taken from them. Past that bound memory
+//! does not hold values: both sides' rows to compare are read at once, in their orders, and
+//! only a hash of each compared cell (and key cell) is kept (8 bytes per cell), so that a
+//! changed row costs a few words whatever its values; the hashes are then compared pair by
+//! pair, and only the rows of the first `n` listed changes are read again for their values. Two
 //! cells with equal 64-bit hashes are taken as equal, as equal row fingerprints already are.
 
 use xxhash_rust::xxh3::xxh3_64_with_seed;
@@ -189,7 +191,7 @@ struct Tally {
 /// How many bytes of memory the rows of `v` held by [`compare_held`] may take, per side: up to
 /// this the rows to compare are read once, with their values, and the listing comes from them;
 /// past it only cell hashes are kept and the listed rows are read again.
-const HELD_BYTES: u64 = 32 << 20;
+const HELD_BYTES: u64 = 16 << 20;
 
 /// Whether `n` rows of `v` held in a [`RowStore`] stay within [`HELD_BYTES`] (estimated from
 /// its average row: its bytes, an 8-byte end per field, and the store's 24 bytes per row).
