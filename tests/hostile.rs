@@ -920,9 +920,10 @@ fn json_lines_past_their_bound_are_refused_before_they_are_read() {
 
 /// A comparison by key in which every row changed (200,000 rows, two of four cells changed in
 /// each, known by construction): everything is counted, only the first 50,000 changes are
-/// listed when no `--limit` is given, and memory stays a few words per row: before, every
-/// changed row was kept with both sides' values (about 730 bytes a row with `--counts`, 1,780
-/// with `--json`: 159 and 361 MiB at this size).
+/// listed when no `--limit` is given, and memory stays a few words per row (the rows to compare
+/// are held with their values only while they fit 16 MiB a side; these do not).
+/// Once, every changed row was kept with both sides' values whatever their number (about 730
+/// bytes a row with `--counts`, 1,780 with `--json`: 159 and 361 MiB at this size).
 #[test]
 fn a_keyed_comparison_in_which_every_row_changed_keeps_a_few_words_per_row() {
     let s = Sandbox::with_store();

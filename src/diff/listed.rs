@@ -4,11 +4,13 @@
 //!
 //! In full ([`Listing::All`], for lineage inferred from outside work and for replay's summary of
 //! a difference) every such row of both sides is read and kept, with every changed cell's old
-//! and new text. For a listing ([`Listing::First`], `compare`) memory does not hold values: one
-//! side's rows to compare are read in their order and only a hash of each compared cell is kept
-//! (8 bytes per cell); the other side is then read as a stream, in its order, and each of its
-//! cells compared with its partner's hash, so that a changed row costs a few words whatever its
-//! values. Only the rows of the first `n` listed changes are read again for their values. Two
+//! and new text. For a listing ([`Listing::First`], `compare`), when the rows to compare, remove
+//! and add fit [`HELD_BYTES`] per side, both sides' rows are read once, on two threads, with
+//! their values, compared in memory, and the listing is taken from them. Past that bound memory
+//! does not hold values: both sides' rows to compare are read at once, in their orders, and
+//! only a hash of each compared cell (and key cell) is kept (8 bytes per cell), so that a
+//! changed row costs a few words whatever its values; the hashes are then compared pair by
+//! pair, and only the rows of the first `n` listed changes are read again for their values. Two
 //! cells with equal 64-bit hashes are taken as equal, as equal row fingerprints already are.
 
 use xxhash_rust::xxh3::xxh3_64_with_seed;
@@ -62,14 +64,7 @@ pub(super) fn compare_pairs(
     added: &mut Vec<u64>,
     list: Listing,
 ) -> Result<Compared> {
-    let lost = || -> crate::error::Error {
-        ErrorKind::Inconsistent(format!(
-            "{} or {} has fewer rows than the store records; run `sluice verify`",
-            a.label(),
-            b.label()
-        ))
-        .into()
-    };
+    let lost = || lost(a, b);
     let n = match list {
         Listing::All => {
             return compare_all(objects, a, b, compared, keys, to_compare, removed, added)
@@ -77,6 +72,24 @@ pub(super) fn compare_pairs(
         Listing::First(n) => n,
     };
     let (ka, kb): (&[usize], &[usize]) = keys.unwrap_or((&[], &[]));
+    let held = {
+        let mut want_a: Vec<u64> = removed.to_vec();
+        want_a.extend(to_compare.iter().map(|p| p.0));
+        want_a.sort_unstable();
+        want_a.dedup();
+        let mut want_b: Vec<u64> = added.to_vec();
+        want_b.extend(to_compare.iter().map(|p| p.1));
+        want_b.sort_unstable();
+        want_b.dedup();
+        (fits(a, want_a.len()) && fits(b, want_b.len())).then_some((want_a, want_b))
+    };
+    if let Some((want_a, want_b)) = held {
+        let rows = both(
+            || rows_of(objects, a, &want_a),
+            || rows_of(objects, b, &want_b),
+        )?;
+        return compare_held(a, b, compared, keys, to_compare, removed, added, n, rows);
+    }
     let cols_a: Vec<usize> = compared
         .iter()
         .map(|p| p.0)
@@ -89,45 +102,47 @@ pub(super) fn compare_pairs(
         .collect();
     let width = cols_a.len();
 
-    // A's side: the hash of each compared cell (and key cell) of each row to compare.
-    to_compare.sort_unstable();
-    let want_a: Vec<u64> = to_compare.iter().map(|p| p.0).collect();
-    let mut hashes_a: Vec<u64> = Vec::with_capacity(want_a.len() * width);
-    each_wanted(objects, a, &want_a, |_, r| {
-        hashes_a.extend(
-            cols_a
-                .iter()
-                .map(|&c| xxh3_64_with_seed(r.field(c), CELL_SEED)),
-        );
-    })?;
-    if hashes_a.len() != want_a.len() * width {
-        return Err(lost());
-    }
-
-    // B's side, read in its order: each row compared with its partner's hashes.
+    // Each side, on a core of its own: the hash of each compared cell (and key cell) of each
+    // row to compare, in its row order.
+    let hash_cells = |v: &Version, want: &[u64], cols: &[usize]| -> Result<Vec<u64>> {
+        let mut hashes: Vec<u64> = Vec::with_capacity(want.len() * width);
+        each_wanted(objects, v, want, |_, r| {
+            hashes.extend(
+                cols.iter()
+                    .map(|&c| xxh3_64_with_seed(r.field(c), CELL_SEED)),
+            );
+        })?;
+        if hashes.len() != want.len() * width {
+            return Err(lost());
+        }
+        Ok(hashes)
+    };
+    let mut want_a: Vec<u64> = to_compare.iter().map(|p| p.0).collect();
+    want_a.sort_unstable();
     to_compare.sort_unstable_by_key(|p| p.1);
     let want_b: Vec<u64> = to_compare.iter().map(|p| p.1).collect();
+    let (hashes_a, hashes_b) = both(
+        || hash_cells(a, &want_a, &cols_a),
+        || hash_cells(b, &want_b, &cols_b),
+    )?;
+
+    // The pairs in B's order, each row's hashes against its partner's.
     let mut counts = vec![0u64; compared.len()];
     let mut changed_b: Vec<u64> = Vec::new();
     let mut split: Vec<(u64, u64)> = Vec::new();
-    let mut at = 0usize;
-    let mut broken = false;
-    each_wanted(objects, b, &want_b, |y, r| {
-        let x = to_compare[at].0;
-        at += 1;
+    for (at, &(x, y)) in to_compare.iter().enumerate() {
         let Ok(i) = want_a.binary_search(&x) else {
-            broken = true;
-            return;
+            return Err(lost());
         };
         let ha = &hashes_a[i * width..(i + 1) * width];
-        let h = |k: usize| xxh3_64_with_seed(r.field(cols_b[k]), CELL_SEED);
-        if (compared.len()..width).any(|k| ha[k] != h(k)) {
+        let hb = &hashes_b[at * width..(at + 1) * width];
+        if (compared.len()..width).any(|k| ha[k] != hb[k]) {
             split.push((x, y));
-            return;
+            continue;
         }
         let mut any = false;
         for (k, count) in counts.iter_mut().enumerate() {
-            if ha[k] != h(k) {
+            if ha[k] != hb[k] {
                 *count += 1;
                 any = true;
             }
@@ -135,13 +150,132 @@ pub(super) fn compare_pairs(
         if any {
             changed_b.push(y);
         }
-    })?;
-    if broken || at != want_b.len() {
-        return Err(lost());
     }
     drop(hashes_a);
+    drop(hashes_b);
     drop(want_a);
     drop(want_b);
+    let tally = Tally {
+        counts,
+        changed_b,
+        split,
+    };
+    finish(
+        a,
+        b,
+        compared,
+        &to_compare,
+        tally,
+        removed,
+        added,
+        n,
+        |want_a, want_b| {
+            both(
+                || rows_of(objects, a, want_a),
+                || rows_of(objects, b, want_b),
+            )
+        },
+    )
+}
+
+/// What comparing the pairs' cells found.
+struct Tally {
+    /// Changed cells per compared column.
+    counts: Vec<u64>,
+    /// The changed rows of B, ascending.
+    changed_b: Vec<u64>,
+    /// Pairs whose key values turned out to differ.
+    split: Vec<(u64, u64)>,
+}
+
+/// How many bytes of memory the rows of `v` held by [`compare_held`] may take, per side: up to
+/// this the rows to compare are read once, with their values, and the listing comes from them;
+/// past it only cell hashes are kept and the listed rows are read again.
+const HELD_BYTES: u64 = 16 << 20;
+
+/// Whether `n` rows of `v` held in a [`RowStore`] stay within [`HELD_BYTES`] (estimated from
+/// its average row: its bytes, an 8-byte end per field, and the store's 24 bytes per row).
+fn fits(v: &Version, n: usize) -> bool {
+    let per_row = v.n_bytes / v.n_rows.max(1) + 8 * v.header.len() as u64 + 24;
+    (n as u64).saturating_mul(per_row) <= HELD_BYTES
+}
+
+/// [`compare_pairs`] when the rows to compare, remove and add were read once with their values
+/// (`rows`: both sides' rows, each side read on a core of its own): compared cell by cell, and
+/// the listing taken from the same rows.
+#[allow(clippy::too_many_arguments)]
+fn compare_held(
+    a: &Version,
+    b: &Version,
+    compared: &[(usize, usize)],
+    keys: Option<(&[usize], &[usize])>,
+    mut to_compare: Vec<(u64, u64)>,
+    removed: &mut Vec<u64>,
+    added: &mut Vec<u64>,
+    n: usize,
+    (from_rows, to_rows): (RowStore, RowStore),
+) -> Result<Compared> {
+    to_compare.sort_unstable_by_key(|p| p.1);
+    let mut tally = Tally {
+        counts: vec![0u64; compared.len()],
+        changed_b: Vec::new(),
+        split: Vec::new(),
+    };
+    for &(x, y) in &to_compare {
+        let (Some(ra), Some(rb)) = (from_rows.get(x), to_rows.get(y)) else {
+            return Err(lost(a, b));
+        };
+        if let Some((ka, kb)) = keys {
+            if ka.iter().zip(kb).any(|(&i, &j)| ra.field(i) != rb.field(j)) {
+                // Different keys that share a hash.
+                tally.split.push((x, y));
+                continue;
+            }
+        }
+        let mut any = false;
+        for (count, &(i, j)) in tally.counts.iter_mut().zip(compared) {
+            if ra.field(i) != rb.field(j) {
+                *count += 1;
+                any = true;
+            }
+        }
+        if any {
+            tally.changed_b.push(y);
+        }
+    }
+    finish(
+        a,
+        b,
+        compared,
+        &to_compare,
+        tally,
+        removed,
+        added,
+        n,
+        |_, _| Ok((from_rows, to_rows)),
+    )
+}
+
+/// The end of [`compare_pairs`]: the split pairs counted as removed and added rows, the first
+/// `n` changes chosen in listing order, and their cells taken from the rows `read` gives for
+/// the listed rows of A and of B. `to_compare` is sorted by B's row.
+#[allow(clippy::too_many_arguments)]
+fn finish(
+    a: &Version,
+    b: &Version,
+    compared: &[(usize, usize)],
+    to_compare: &[(u64, u64)],
+    Tally {
+        counts,
+        changed_b,
+        split,
+    }: Tally,
+    removed: &mut Vec<u64>,
+    added: &mut Vec<u64>,
+    n: usize,
+    read: impl FnOnce(&[u64], &[u64]) -> Result<(RowStore, RowStore)>,
+) -> Result<Compared> {
+    let lost = || lost(a, b);
     removed.extend(split.iter().map(|p| p.0));
     added.extend(split.iter().map(|p| p.1));
     removed.sort_unstable();
@@ -179,10 +313,7 @@ pub(super) fn compare_pairs(
     want_b.extend_from_slice(listed_added);
     want_b.sort_unstable();
     want_b.dedup();
-    let (from_rows, to_rows) = both(
-        || rows_of(objects, a, &want_a),
-        || rows_of(objects, b, &want_b),
-    )?;
+    let (from_rows, to_rows) = read(&want_a, &want_b)?;
     let mut cells = Vec::new();
     for &(x, y) in &listed_pairs {
         let (Some(ra), Some(rb)) = (from_rows.get(x), to_rows.get(y)) else {
@@ -206,6 +337,15 @@ pub(super) fn compare_pairs(
         n_cells: counts.iter().sum(),
         n_changes,
     })
+}
+
+fn lost(a: &Version, b: &Version) -> crate::error::Error {
+    ErrorKind::Inconsistent(format!(
+        "{} or {} has fewer rows than the store records; run `sluice verify`",
+        a.label(),
+        b.label()
+    ))
+    .into()
 }
 
 /// Every changed cell with its values, every row of both sides kept.

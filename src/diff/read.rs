@@ -322,7 +322,10 @@ pub struct RawRows {
     hash: Hash,
     offsets: Vec<u64>,
     n_bytes: u64,
+    /// Read bytes in `buf[..filled]`; the rest is room for the next read, zeroed once when it
+    /// was first allocated and reused since (no zeroing per read).
     buf: Vec<u8>,
+    filled: usize,
     /// The object offset of `buf[0]`.
     buf_start: u64,
     /// One parser for every row parsed (restarted per row, never built again).
@@ -347,6 +350,7 @@ impl RawRows {
             offsets,
             n_bytes: v.n_bytes,
             buf: Vec::new(),
+            filled: 0,
             buf_start: 0,
             parser: Parser::new(v.dialect.delimiter_byte(), 0),
             label: v.label(),
@@ -372,19 +376,22 @@ impl RawRows {
         }
         // Read until the row is whole, first dropping what lies before it (only then, so that
         // the buffer moves once per piece read, not once per row).
-        while self.buf_start + (self.buf.len() as u64) < end {
-            let drop_n = ((start - self.buf_start) as usize).min(self.buf.len());
+        while self.buf_start + (self.filled as u64) < end {
+            let drop_n = ((start - self.buf_start) as usize).min(self.filled);
             if drop_n > 0 {
-                self.buf.drain(..drop_n);
+                self.buf.copy_within(drop_n..self.filled, 0);
+                self.filled -= drop_n;
                 self.buf_start += drop_n as u64;
             }
-            let have = self.buf.len();
-            self.buf.resize(have + crate::hash::STREAM_BUF, 0);
+            let have = self.filled;
+            if self.buf.len() < have + crate::hash::STREAM_BUF {
+                self.buf.resize(have + crate::hash::STREAM_BUF, 0);
+            }
             let n = self
                 .reader
                 .read(&mut self.buf[have..])
                 .map_err(|e| Error::io(Path::new(&self.label), e))?;
-            self.buf.truncate(have + n);
+            self.filled += n;
             if n == 0 {
                 return Err(self.short());
             }

@@ -477,11 +477,19 @@ impl Read for FrameReader {
     }
 }
 
-/// Reads an object from its segment with the decoding on a thread of its own, a few frames
-/// ahead of the reader, so that decoding overlaps whatever the reader does with the bytes
-/// (hashing and writing them, for `cat`). Memory: four frames.
+/// How many threads decode an object's frames for [`AheadReader`].
+const DECODERS: usize = 2;
+
+/// Reads an object from its segment with the decoding on threads of their own ([`DECODERS`]
+/// of them, frame `i` decoded by thread `i % DECODERS`, each a few frames ahead of the
+/// reader), so that decoding overlaps itself and whatever the reader does with the bytes
+/// (hashing and writing them, for `retrieve`). Frames reach the reader in order. Memory: three
+/// frames per decoding thread.
 pub struct AheadReader {
-    frames: std::sync::mpsc::Receiver<io::Result<Vec<u8>>>,
+    frames: Vec<std::sync::mpsc::Receiver<io::Result<Vec<u8>>>>,
+    /// The frame to take next, and how many there are.
+    next: usize,
+    n_frames: usize,
     out: Vec<u8>,
     pos: usize,
     done: bool,
@@ -489,23 +497,30 @@ pub struct AheadReader {
 
 impl AheadReader {
     pub fn new(file: File, table: std::sync::Arc<SeekTable>) -> io::Result<Self> {
-        let (tx, rx) = std::sync::mpsc::sync_channel(2);
-        let mut frames = FrameReader::new(file, table)?;
-        std::thread::Builder::new()
-            .name("sluice-decode".into())
-            .spawn(move || {
-                while frames.next < frames.table.raw.len() {
-                    let i = frames.next;
-                    frames.next += 1;
-                    let r = decode_frame(&frames.file, &frames.table, i, &mut frames.dec);
-                    let failed = r.is_err();
-                    if tx.send(r).is_err() || failed {
-                        return;
+        let file = std::sync::Arc::new(file);
+        let n_frames = table.raw.len();
+        let mut frames = Vec::with_capacity(DECODERS);
+        for first in 0..DECODERS {
+            let (tx, rx) = std::sync::mpsc::sync_channel(2);
+            let mut dec = zstd::bulk::Decompressor::new()?;
+            let (file, table) = (file.clone(), table.clone());
+            std::thread::Builder::new()
+                .name("sluice-decode".into())
+                .spawn(move || {
+                    for i in (first..table.raw.len()).step_by(DECODERS) {
+                        let r = decode_frame(&file, &table, i, &mut dec);
+                        let failed = r.is_err();
+                        if tx.send(r).is_err() || failed {
+                            return;
+                        }
                     }
-                }
-            })?;
+                })?;
+            frames.push(rx);
+        }
         Ok(AheadReader {
-            frames: rx,
+            frames,
+            next: 0,
+            n_frames,
             out: Vec::new(),
             pos: 0,
             done: false,
@@ -516,15 +531,22 @@ impl AheadReader {
 impl Read for AheadReader {
     fn read(&mut self, buf: &mut [u8]) -> io::Result<usize> {
         while self.pos == self.out.len() {
-            if self.done {
+            if self.done || self.next >= self.n_frames {
                 return Ok(0);
             }
-            match self.frames.recv() {
+            match self.frames[self.next % DECODERS].recv() {
                 Ok(frame) => {
-                    self.out = frame?;
+                    self.out = frame.inspect_err(|_| self.done = true)?;
+                    self.next += 1;
                     self.pos = 0;
                 }
-                Err(_) => self.done = true,
+                Err(_) => {
+                    self.done = true;
+                    return Err(bad(format!(
+                        "frame {} was not decoded (its decoding thread stopped)",
+                        self.next
+                    )));
+                }
             }
         }
         let n = buf.len().min(self.out.len() - self.pos);
