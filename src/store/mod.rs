@@ -226,10 +226,7 @@ impl Store {
             None => Lineage::open(&db)?,
         };
         let mut objects = Objects::new(Box::new(FsBackend::new(&dir)));
-        // A database too damaged to say which versions were erased still opens, so that
-        // `verify` can name the damage; the erased versions' old bytes are gone from the
-        // segments, so nothing erased can be read back through it.
-        objects.read_erased_forms(erased_forms(&lineage).unwrap_or_default());
+        objects.read_erased_forms(erased_forms(&lineage)?);
         Ok(Store {
             objects,
             lineage,
@@ -241,8 +238,7 @@ impl Store {
     pub fn open_with_backend(dir: &Path, backend: Box<dyn ObjectBackend>) -> Result<Store> {
         let mut s = Store::open(dir)?;
         s.objects = Objects::new(backend);
-        s.objects
-            .read_erased_forms(erased_forms(&s.lineage).unwrap_or_default());
+        s.objects.read_erased_forms(erased_forms(&s.lineage)?);
         crate::recompute::on_demand(&mut s);
         Ok(s)
     }
@@ -394,7 +390,8 @@ fn erased_forms(
     lineage: &Lineage,
 ) -> Result<std::collections::HashMap<crate::hash::Hash, crate::hash::Hash>> {
     // A database too damaged to say (a table dropped) gives none: the store still opens,
-    // and `verify` names the damage.
+    // and `verify` names the damage; the erased versions' old bytes are gone from the
+    // segments, so nothing erased can be read back through it.
     let mut out = std::collections::HashMap::new();
     for (own, form) in lineage.erased_forms().unwrap_or_default() {
         if let (Ok(a), Ok(b)) = (own.parse(), form.parse()) {
