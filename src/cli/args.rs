@@ -61,6 +61,10 @@ pub enum Command {
     Setup {
         /// The project folder (default: the working directory)
         dir: Option<PathBuf>,
+        /// Keep the objects in an S3-compatible bucket, http(s)://HOST[:PORT]/BUCKET[/PREFIX]
+        /// (credentials: AWS_ACCESS_KEY_ID and AWS_SECRET_ACCESS_KEY, or the AWS credentials file)
+        #[arg(long, value_name = "URL")]
+        object_bucket: Option<String>,
     },
 
     /// Record a file as a new version of a dataset
@@ -377,6 +381,30 @@ pub enum Command {
         json: bool,
     },
 
+    /// Copy every object of the store into a bucket, or back into the store's folder, each
+    /// re-hashed, then read the objects from there (recorded in the audit log)
+    #[command(
+        after_help = "The copy is made first and checked object by object; only then does the store read its objects \
+        from the new place. The old copy is left where it was.\n\nExamples:\n  \
+        sluice transfer --to-bucket http://127.0.0.1:9000/three-rivers-q3\n  sluice transfer --to-folder"
+    )]
+    Transfer {
+        /// The bucket to copy the objects into, http(s)://HOST[:PORT]/BUCKET[/PREFIX]
+        #[arg(
+            long,
+            value_name = "URL",
+            conflicts_with = "to_folder",
+            required_unless_present = "to_folder"
+        )]
+        to_bucket: Option<String>,
+        /// Copy the objects from the bucket into the store's own folder
+        #[arg(long)]
+        to_folder: bool,
+        /// Print JSON
+        #[arg(long)]
+        json: bool,
+    },
+
     /// Give back the space of objects no version or step refers to, and pack small segments
     /// (recorded in the audit log)
     #[command(
@@ -573,6 +601,9 @@ pub enum Command {
     Demo {
         /// Where to create it (default: a new folder sluice-demo… in the working directory)
         dir: Option<PathBuf>,
+        /// Keep the demo store's objects in an S3-compatible bucket (as `setup --object-bucket`)
+        #[arg(long, value_name = "URL")]
+        object_bucket: Option<String>,
     },
 
     /// Print the tab-completion script for a shell (bash, zsh or fish)

@@ -34,14 +34,22 @@ pub struct Acting<'a, A> {
 pub fn setup(
     ctx: &Context<'_>,
     dir: Option<&Path>,
+    object_bucket: Option<&str>,
     out: &mut impl Write,
 ) -> anyhow::Result<ExitCode> {
     let project = dir
         .map(Path::to_path_buf)
         .unwrap_or_else(|| ctx.cwd.clone());
     let agent = ctx.agent(None)?;
-    let store = Store::init_recorded(&project, &agent)?;
+    let at = sluice::store::location::Location {
+        objects: object_bucket.map(str::to_string),
+        ..Default::default()
+    };
+    let store = Store::init_recorded_at(&project, &agent, &at)?;
     writeln!(out, "set up a store in {}", store.dir().display())?;
+    if let Some(url) = object_bucket {
+        writeln!(out, "its objects are kept in the bucket {url}")?;
+    }
     writeln!(
         out,
         "next: receive a file with `sluice receive FILE --as NAME --why \"...\"`"

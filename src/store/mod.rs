@@ -7,11 +7,14 @@
 //! before the transaction that references them commits; an object no row references is harmless.
 
 pub mod audit;
+pub mod bucket;
 pub mod lineage;
+pub mod location;
 pub mod objects;
 pub mod reclaim;
 pub mod rows;
 pub mod segments;
+pub mod transfer;
 pub mod version_writer;
 
 use std::fs;
@@ -91,12 +94,33 @@ impl Store {
         .map_err(|e| Error::io(&readme, e))?;
         let lineage = Lineage::create(&dir.join(DB_FILE))?;
         let mut store = Store {
-            objects: Objects::new(Box::new(FsBackend::new(&dir))),
+            objects: Objects::new(object_backend(&dir)?),
             lineage,
             dir,
         };
         crate::recompute::on_demand(&mut store);
         Ok(store)
+    }
+
+    /// Like [`Store::init_recorded`], for a store whose lineage or objects live elsewhere
+    /// (`location.json`, written before anything else; the bucket is checked first).
+    pub fn init_recorded_at(
+        project: &Path,
+        agent: &crate::model::Agent,
+        at: &location::Location,
+    ) -> Result<Store> {
+        if let Some(url) = &at.objects {
+            bucket::check_reachable(url).map_err(|e| Error::io(Path::new(url), e))?;
+        }
+        let dir = project.join(STORE_DIR);
+        if dir.join(DB_FILE).exists() {
+            return Err(ErrorKind::StoreExists { path: dir }.into());
+        }
+        if *at != location::Location::default() {
+            fs::create_dir_all(&dir).map_err(|e| Error::io(&dir, e))?;
+            at.write(&dir)?;
+        }
+        Store::init_recorded(project, agent)
     }
 
     /// Creates a new store and records its creation as the first audit entry.
@@ -160,6 +184,7 @@ impl Store {
             segments::SEGMENTS_DIR,
             "tmp",
             objects::WRITERS_LOCK,
+            bucket::CACHE_DIR,
         ] {
             let p = dir.join(part);
             if fs::symlink_metadata(&p).is_ok_and(|m| m.file_type().is_symlink()) {
@@ -172,7 +197,7 @@ impl Store {
         }
         let lineage = Lineage::open(&db)?;
         Ok(Store {
-            objects: Objects::new(Box::new(FsBackend::new(&dir))),
+            objects: Objects::new(object_backend(&dir)?),
             lineage,
             dir,
         })
@@ -257,7 +282,7 @@ impl Store {
         let db = dir.join(DB_FILE);
         self.lineage.copy_to(&db)?;
         let mut trial = Store {
-            objects: Objects::new(Box::new(FsBackend::new(&self.dir))),
+            objects: Objects::new(object_backend(&self.dir)?),
             lineage: Lineage::open(&db)?,
             dir,
         };
@@ -320,6 +345,22 @@ impl Store {
             }
         }
         removed
+    }
+}
+
+/// The object backend of the store in `dir`: the bucket `location.json` names, else the
+/// store's own segments.
+pub fn object_backend(dir: &Path) -> Result<Box<dyn ObjectBackend>> {
+    match location::Location::read(dir)? {
+        location::Location {
+            objects: Some(url),
+            cache_bytes,
+            ..
+        } => Ok(Box::new(
+            bucket::BucketBackend::new(dir, &url, cache_bytes)
+                .map_err(|e| Error::io(&dir.join(location::LOCATION_FILE), e))?,
+        )),
+        _ => Ok(Box::new(FsBackend::new(dir))),
     }
 }
 
