@@ -64,38 +64,46 @@ fn agent() -> ureq::Agent {
         .into()
 }
 
-static BUCKETS: AtomicU64 = AtomicU64::new(0);
+static PLACES: AtomicU64 = AtomicU64::new(0);
+static BUCKET: std::sync::OnceLock<String> = std::sync::OnceLock::new();
 
-/// A new empty bucket, made by the steward; returns its URL as a store names it.
-fn fresh_bucket() -> (String, String) {
-    let nanos = std::time::SystemTime::now()
-        .duration_since(std::time::UNIX_EPOCH)
-        .unwrap()
-        .subsec_nanos();
-    let name = format!(
-        "sluice-test-{}-{}-{nanos}",
-        std::process::id(),
-        BUCKETS.fetch_add(1, Ordering::Relaxed)
-    );
-    let b = bucket(&name);
-    let c = creds("steward");
-    let create = CreateBucket::new(&b, &c);
-    let url = create.sign(Duration::from_secs(600));
-    let r = agent().put(url.as_str()).send(create.body()).unwrap();
-    assert!(
-        r.status().is_success(),
-        "create bucket {name}: {}",
-        r.status()
-    );
-    (format!("{}/{name}", endpoint()), name)
+/// One bucket for this test process, made by the steward (the server gives each bucket volumes
+/// of its own, so the tests share one and each store gets a folder in it).
+fn the_bucket() -> &'static str {
+    BUCKET.get_or_init(|| {
+        let nanos = std::time::SystemTime::now()
+            .duration_since(std::time::UNIX_EPOCH)
+            .unwrap()
+            .subsec_nanos();
+        let name = format!("sluice-test-{}-{nanos}", std::process::id());
+        let b = bucket(&name);
+        let c = creds("steward");
+        let create = CreateBucket::new(&b, &c);
+        let url = create.sign(Duration::from_secs(600));
+        let r = agent().put(url.as_str()).send(create.body()).unwrap();
+        assert!(
+            r.status().is_success(),
+            "create bucket {name}: {}",
+            r.status()
+        );
+        name
+    })
 }
 
-/// The keys under `objects/` in a bucket.
-fn listed(name: &str) -> Vec<String> {
-    let b = bucket(name);
+/// A fresh, empty place in the test bucket: its URL as a store names it, and its prefix.
+fn fresh_bucket() -> (String, String) {
+    let name = the_bucket();
+    let prefix = format!("store-{}", PLACES.fetch_add(1, Ordering::Relaxed));
+    (format!("{}/{name}/{prefix}", endpoint()), prefix)
+}
+
+/// The object names under `PREFIX/objects/` in the test bucket.
+fn listed(prefix: &str) -> Vec<String> {
+    let b = bucket(the_bucket());
     let c = creds("steward");
     let mut l = ListObjectsV2::new(&b, Some(&c));
-    l.with_prefix("objects/");
+    let within = format!("{prefix}/objects/");
+    l.with_prefix(within.clone());
     let url = l.sign(Duration::from_secs(600));
     let mut r = agent().get(url.as_str()).call().unwrap();
     let body = r.body_mut().read_to_string().unwrap();
@@ -103,24 +111,39 @@ fn listed(name: &str) -> Vec<String> {
         .unwrap()
         .contents
         .into_iter()
-        .map(|c| c.key.trim_start_matches("objects/").to_string())
+        .map(|c| c.key.trim_start_matches(&within).to_string())
         .collect();
     keys.sort();
     keys
 }
 
-fn put_raw(name: &str, key: &str, bytes: &[u8]) {
-    let b = bucket(name);
+fn get_raw(prefix: &str, key: &str) -> Vec<u8> {
+    let b = bucket(the_bucket());
     let c = creds("steward");
-    let url = PutObject::new(&b, Some(&c), key).sign(Duration::from_secs(600));
+    let key = format!("{prefix}/{key}");
+    let url = rusty_s3::actions::GetObject::new(&b, Some(&c), &key).sign(Duration::from_secs(600));
+    let mut r = agent().get(url.as_str()).call().unwrap();
+    r.body_mut()
+        .with_config()
+        .limit(1 << 30)
+        .read_to_vec()
+        .unwrap()
+}
+
+fn put_raw(prefix: &str, key: &str, bytes: &[u8]) {
+    let b = bucket(the_bucket());
+    let c = creds("steward");
+    let key = format!("{prefix}/{key}");
+    let url = PutObject::new(&b, Some(&c), &key).sign(Duration::from_secs(600));
     let r = agent().put(url.as_str()).send(bytes).unwrap();
     assert!(r.status().is_success(), "put {key}: {}", r.status());
 }
 
-fn delete_raw(name: &str, key: &str) {
-    let b = bucket(name);
+fn delete_raw(prefix: &str, key: &str) {
+    let b = bucket(the_bucket());
     let c = creds("steward");
-    let url = DeleteObject::new(&b, Some(&c), key).sign(Duration::from_secs(600));
+    let key = format!("{prefix}/{key}");
+    let url = DeleteObject::new(&b, Some(&c), &key).sign(Duration::from_secs(600));
     let r = agent().delete(url.as_str()).call().unwrap();
     assert!(r.status().is_success(), "delete {key}: {}", r.status());
 }
@@ -314,17 +337,12 @@ fn verify_names_an_object_changed_or_removed_in_the_bucket() {
     // Another object's bytes under the orders' name: a well-formed object that hashes wrong.
     let other = s.path().join("other.csv");
     std::fs::write(&other, orders_csv(299)).unwrap();
-    let (_, other_name) = fresh_bucket();
+    let (other_url, other_name) = fresh_bucket();
     let o = Sandbox::new();
     ok_as(
         &o,
         "recorder",
-        &[
-            "setup",
-            ".",
-            "--object-bucket",
-            &format!("{}/{other_name}", endpoint()),
-        ],
+        &["setup", ".", "--object-bucket", &other_url],
     );
     o.file("orders.csv", orders_csv(299));
     ok_as(
@@ -332,25 +350,8 @@ fn verify_names_an_object_changed_or_removed_in_the_bucket() {
         "recorder",
         &["receive", "orders.csv", "--as", "orders", "--why", "test"],
     );
-    let stolen = listed(&other_name)
-        .into_iter()
-        .max_by_key(|k| k.len())
-        .unwrap();
-    let mut bytes = Vec::new();
-    {
-        let b = bucket(&other_name);
-        let c = creds("steward");
-        let url = rusty_s3::actions::GetObject::new(&b, Some(&c), &format!("objects/{stolen}"))
-            .sign(Duration::from_secs(600));
-        let mut r = agent().get(url.as_str()).call().unwrap();
-        bytes.extend(
-            r.body_mut()
-                .with_config()
-                .limit(1 << 30)
-                .read_to_vec()
-                .unwrap(),
-        );
-    }
+    let stolen = listed(&other_name).into_iter().next().unwrap();
+    let bytes = get_raw(&other_name, &format!("objects/{stolen}"));
     assert!(!bytes.is_empty());
     put_raw(&name, &format!("objects/{orders}"), &bytes);
     delete_raw(&name, &format!("objects/{labels}"));
@@ -545,12 +546,7 @@ fn the_server_refuses_a_reader_recording_and_the_store_stays_as_it_was() {
     // Keys the server does not know: setup lists the bucket first, and makes no store.
     let t = Sandbox::new();
     let r = t
-        .command(&[
-            "setup",
-            ".",
-            "--object-bucket",
-            &format!("{}/{name}", endpoint()),
-        ])
+        .command(&["setup", ".", "--object-bucket", &url])
         .env("AWS_ACCESS_KEY_ID", "reader")
         .env("AWS_SECRET_ACCESS_KEY", "not-the-secret")
         .output()

@@ -400,9 +400,6 @@ pub enum Command {
         /// Copy the objects from the bucket into the store's own folder
         #[arg(long)]
         to_folder: bool,
-        /// Print JSON
-        #[arg(long)]
-        json: bool,
     },
 
     /// Give back the space of objects no version or step refers to, and pack small segments

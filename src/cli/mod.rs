@@ -237,8 +237,7 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Transfer {
             to_bucket,
             to_folder: _,
-            json,
-        } => admin::transfer(&ctx, to_bucket.as_deref(), *json, out),
+        } => admin::transfer(&ctx, to_bucket.as_deref(), out),
         Command::Completions { shell } => admin::completions(*shell, out),
         Command::Manual { dir } => admin::manual(dir.as_deref(), out),
         Command::Upgrade { file, output } => admin::upgrade(file, output.as_deref(), out),
