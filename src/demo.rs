@@ -498,11 +498,15 @@ pub const PLAN_FILE: &str = "q3_cleaning.json";
 /// Creates the demo in `dir`: the exports and the plan, a store, and a run of the plan (which
 /// takes the exports in and records every step).
 pub fn run(dir: &Path, agent: &Agent) -> Result<DemoReport> {
-    run_with(dir, None, agent)
+    run_at(dir, agent, &crate::store::location::Location::default())
 }
 
-/// [`run`], with the store's lineage on the PostgreSQL server `lineage` names when given.
-pub fn run_with(dir: &Path, lineage: Option<&str>, agent: &Agent) -> Result<DemoReport> {
+/// [`run`] with the store's lineage or objects where `at` says (`demo --object-bucket`).
+pub fn run_at(
+    dir: &Path,
+    agent: &Agent,
+    at: &crate::store::location::Location,
+) -> Result<DemoReport> {
     let exports = dir.join("exports");
     std::fs::create_dir_all(&exports).map_err(|e| Error::io(&exports, e))?;
     for (till, name, rows, first) in [
@@ -526,7 +530,7 @@ pub fn run_with(dir: &Path, lineage: Option<&str>, agent: &Agent) -> Result<Demo
     std::fs::write(&plan_path, PLAN).map_err(|e| Error::io(&plan_path, e))?;
     let plan = plan::parse(PLAN, PLAN_FILE)?;
 
-    let mut store = Store::init_recorded_with(dir, lineage, agent)?;
+    let mut store = Store::init_recorded_at(dir, agent, at)?;
     let opts = plan::RunOptions {
         plan_dir: dir.to_path_buf(),
         bindings: Vec::new(),

@@ -17,6 +17,7 @@ pub fn demo(
     ctx: &Context<'_>,
     dir: Option<&Path>,
     lineage_server: Option<&str>,
+    object_bucket: Option<&str>,
     out: &mut impl Write,
 ) -> anyhow::Result<ExitCode> {
     let agent = ctx.agent(None)?;
@@ -24,7 +25,12 @@ pub fn demo(
         Some(d) => d.to_path_buf(),
         None => sluice::demo::fresh_folder(&ctx.cwd),
     };
-    let report = sluice::demo::run_with(&target, lineage_server, &agent)?;
+    let at = sluice::store::location::Location {
+        lineage: lineage_server.map(str::to_string),
+        objects: object_bucket.map(str::to_string),
+        ..Default::default()
+    };
+    let report = sluice::demo::run_at(&target, &agent, &at)?;
     demo_text(out, &report)?;
     let d = &report.documented;
     let doc = &d.report.report;
@@ -252,6 +258,36 @@ pub fn demo_next(out: &mut impl Write, r: &DemoReport) -> io::Result<()> {
         writeln!(out, "  {c}")?;
     }
     Ok(())
+}
+
+/// `transfer`: the store's objects copied into a bucket or back into its folder.
+pub fn transfer(
+    ctx: &Context<'_>,
+    to_bucket: Option<&str>,
+    out: &mut impl Write,
+) -> anyhow::Result<ExitCode> {
+    let mut store = ctx.open_store()?;
+    let agent = ctx.agent(Some(&store))?;
+    let done = store.transfer(to_bucket, &agent, &sluice::clock::now_rfc3339())?;
+    writeln!(
+        out,
+        "copied {} ({}) from {} to {}, each re-hashed as it was read and again from its new place{}",
+        super::text::plural(done.objects, "object", "objects"),
+        super::text::plural(done.bytes, "byte", "bytes"),
+        done.from,
+        done.to,
+        if done.already_there > 0 {
+            format!(" ({} already there)", done.already_there)
+        } else {
+            String::new()
+        }
+    )?;
+    writeln!(
+        out,
+        "the store now reads its objects from {}; the copy in {} was left as it was",
+        done.to, done.from
+    )?;
+    Ok(0)
 }
 
 /// `reclaim`: removes objects nothing refers to and packs small segments (recorded in the

@@ -66,6 +66,10 @@ pub enum Command {
         /// in ~/.pgpass, PGPASSFILE or PGPASSWORD)
         #[arg(long, value_name = "CONN")]
         lineage_server: Option<String>,
+        /// Keep the objects in an S3-compatible bucket, http(s)://HOST[:PORT]/BUCKET[/PREFIX]
+        /// (credentials: AWS_ACCESS_KEY_ID and AWS_SECRET_ACCESS_KEY, or the AWS credentials file)
+        #[arg(long, value_name = "URL")]
+        object_bucket: Option<String>,
     },
 
     /// Record a file as a new version of a dataset
@@ -445,6 +449,27 @@ pub enum Command {
         of: Option<String>,
     },
 
+    /// Copy every object of the store into a bucket, or back into the store's folder, each
+    /// re-hashed, then read the objects from there (recorded in the audit log)
+    #[command(
+        after_help = "The copy is made first and checked object by object; only then does the store read its objects \
+        from the new place. The old copy is left where it was.\n\nExamples:\n  \
+        sluice transfer --to-bucket http://127.0.0.1:9000/three-rivers-q3\n  sluice transfer --to-folder"
+    )]
+    Transfer {
+        /// The bucket to copy the objects into, http(s)://HOST[:PORT]/BUCKET[/PREFIX]
+        #[arg(
+            long,
+            value_name = "URL",
+            conflicts_with = "to_folder",
+            required_unless_present = "to_folder"
+        )]
+        to_bucket: Option<String>,
+        /// Copy the objects from the bucket into the store's own folder
+        #[arg(long)]
+        to_folder: bool,
+    },
+
     /// Give back the space of objects no version or step refers to, and pack small segments
     /// (recorded in the audit log)
     #[command(
@@ -649,6 +674,9 @@ pub enum Command {
         /// Keep the demo store's lineage on this PostgreSQL server (as `setup --lineage-server`)
         #[arg(long, value_name = "CONN")]
         lineage_server: Option<String>,
+        /// Keep the demo store's objects in an S3-compatible bucket (as `setup --object-bucket`)
+        #[arg(long, value_name = "URL")]
+        object_bucket: Option<String>,
     },
 
     /// Print the tab-completion script for a shell (bash, zsh or fish)

@@ -116,10 +116,48 @@ fn install_server_client_env() {
     });
 }
 
+/// Who sluice acts as towards a bucket: `AWS_ACCESS_KEY_ID`, `AWS_SECRET_ACCESS_KEY` and
+/// `AWS_SESSION_TOKEN`, else the profile `AWS_PROFILE` (or `default`) of the AWS credentials file
+/// (`AWS_SHARED_CREDENTIALS_FILE`, or `~/.aws/credentials`); the region from `AWS_REGION` or
+/// `AWS_DEFAULT_REGION`. Never stored in the store.
+fn install_bucket_access() {
+    let env = |k: &str| std::env::var(k).ok().filter(|v| !v.is_empty());
+    let mut access = sluice::store::bucket::Access {
+        key: env("AWS_ACCESS_KEY_ID"),
+        secret: env("AWS_SECRET_ACCESS_KEY"),
+        token: env("AWS_SESSION_TOKEN"),
+        region: env("AWS_REGION").or_else(|| env("AWS_DEFAULT_REGION")),
+    };
+    if access.key.is_none() {
+        let file = env("AWS_SHARED_CREDENTIALS_FILE")
+            .map(PathBuf::from)
+            .or_else(|| env("HOME").map(|h| Path::new(&h).join(".aws").join("credentials")));
+        let profile = env("AWS_PROFILE").unwrap_or_else(|| "default".to_string());
+        if let Some(text) = file.and_then(|f| std::fs::read_to_string(f).ok()) {
+            let mut inside = false;
+            for line in text.lines().map(str::trim) {
+                if let Some(name) = line.strip_prefix('[').and_then(|l| l.strip_suffix(']')) {
+                    inside = name.trim() == profile;
+                } else if let (true, Some((k, v))) = (inside, line.split_once('=')) {
+                    let v = Some(v.trim().to_string());
+                    match k.trim() {
+                        "aws_access_key_id" => access.key = v,
+                        "aws_secret_access_key" => access.secret = v,
+                        "aws_session_token" => access.token = v,
+                        _ => {}
+                    }
+                }
+            }
+        }
+    }
+    sluice::store::bucket::install_access(access);
+}
+
 /// Runs a parsed command line; returns the exit code.
 pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
     install_test_countdown();
     install_server_client_env();
+    install_bucket_access();
     let cwd = std::env::current_dir().context("cannot read the working directory")?;
     let ctx = Context { cli: &cli, cwd };
     if let Some(mib) = cli.max_record_mib {
@@ -131,7 +169,14 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Setup {
             dir,
             lineage_server,
-        } => record::setup(&ctx, dir.as_deref(), lineage_server.as_deref(), out),
+            object_bucket,
+        } => record::setup(
+            &ctx,
+            dir.as_deref(),
+            lineage_server.as_deref(),
+            object_bucket.as_deref(),
+            out,
+        ),
         Command::Receive(a) => record::receive(&ctx, a, out),
         Command::Clean(a) => record::clean(&ctx, a, out),
         Command::Inspect {
@@ -243,7 +288,18 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Demo {
             dir,
             lineage_server,
-        } => admin::demo(&ctx, dir.as_deref(), lineage_server.as_deref(), out),
+            object_bucket,
+        } => admin::demo(
+            &ctx,
+            dir.as_deref(),
+            lineage_server.as_deref(),
+            object_bucket.as_deref(),
+            out,
+        ),
+        Command::Transfer {
+            to_bucket,
+            to_folder: _,
+        } => admin::transfer(&ctx, to_bucket.as_deref(), out),
         Command::Completions { shell } => admin::completions(*shell, out),
         Command::Manual { dir } => admin::manual(dir.as_deref(), out),
         Command::Upgrade { file, output } => admin::upgrade(file, output.as_deref(), out),

@@ -35,13 +35,19 @@ pub fn setup(
     ctx: &Context<'_>,
     dir: Option<&Path>,
     lineage_server: Option<&str>,
+    object_bucket: Option<&str>,
     out: &mut impl Write,
 ) -> anyhow::Result<ExitCode> {
     let project = dir
         .map(Path::to_path_buf)
         .unwrap_or_else(|| ctx.cwd.clone());
     let agent = ctx.agent(None)?;
-    let store = Store::init_recorded_with(&project, lineage_server, &agent)?;
+    let at = sluice::store::location::Location {
+        lineage: lineage_server.map(str::to_string),
+        objects: object_bucket.map(str::to_string),
+        ..Default::default()
+    };
+    let store = Store::init_recorded_at(&project, &agent, &at)?;
     writeln!(out, "set up a store in {}", store.dir().display())?;
     if lineage_server.is_some() {
         writeln!(
@@ -49,6 +55,9 @@ pub fn setup(
             "its lineage is on the server {}",
             store.lineage.describe()
         )?;
+    }
+    if let Some(url) = object_bucket {
+        writeln!(out, "its objects are kept in the bucket {url}")?;
     }
     writeln!(
         out,

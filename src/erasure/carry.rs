@@ -99,6 +99,11 @@ pub fn carry_out(
     if let Some(why) = store.lineage.erasure_refused() {
         return Err(Error::usage(why));
     }
+    if let Some(url) = crate::store::location::Location::read(store.dir())?.objects {
+        return Err(Error::usage(format!(
+            "erasure orders cannot be carried out yet on a store whose objects are in a bucket ({url}): the bucket's versioning, replicas and backups are outside sluice's reach; bring the objects back with `sluice transfer --to-folder` and ask the data-protection officer about the bucket's copies"
+        )));
+    }
     let reach = super::survey(store, order)?;
     let named = reach
         .versions

@@ -11,6 +11,7 @@
 
 pub mod audit;
 pub mod backend;
+pub mod bucket;
 pub mod erasure_records;
 pub mod lineage;
 pub mod location;
@@ -21,6 +22,7 @@ pub mod roles;
 pub mod rows;
 pub mod segments;
 pub mod sqlite;
+pub mod transfer;
 pub mod version_writer;
 
 use std::fs;
@@ -87,7 +89,8 @@ impl Store {
     /// holds the objects and `location.json`. Fails if a store is already there.
     pub fn init_with(project: &Path, lineage: Option<&str>) -> Result<Store> {
         let dir = project.join(STORE_DIR);
-        if dir.join(DB_FILE).exists() || dir.join(location::LOCATION_FILE).exists() {
+        // A location file naming only a bucket is the one `init_recorded_at` wrote first.
+        if dir.join(DB_FILE).exists() || location::Location::read(&dir)?.lineage.is_some() {
             return Err(ErrorKind::StoreExists { path: dir }.into());
         }
         // The server is reached (and its schema made) before anything is written here.
@@ -113,21 +116,45 @@ impl Store {
         let lineage = match server {
             None => Lineage::create(&dir.join(DB_FILE))?,
             Some((conn, l)) => {
-                location::Location {
-                    lineage: Some(conn.to_string()),
-                    ..location::Location::default()
-                }
-                .write(&dir)?;
+                // The bucket, when one was named, is already in the file (`init_recorded_at`).
+                let mut at = location::Location::read(&dir)?;
+                at.lineage = Some(conn.to_string());
+                at.write(&dir)?;
                 l
             }
         };
         let mut store = Store {
-            objects: Objects::new(Box::new(FsBackend::new(&dir))),
+            objects: Objects::new(object_backend(&dir)?),
             lineage,
             dir,
         };
         crate::recompute::on_demand(&mut store);
         Ok(store)
+    }
+
+    /// Like [`Store::init_recorded`], for a store whose lineage or objects live elsewhere
+    /// (`location.json`, written before anything else; the bucket is checked first).
+    pub fn init_recorded_at(
+        project: &Path,
+        agent: &crate::model::Agent,
+        at: &location::Location,
+    ) -> Result<Store> {
+        if let Some(url) = &at.objects {
+            bucket::check_reachable(url).map_err(|e| Error::io(Path::new(url), e))?;
+        }
+        let dir = project.join(STORE_DIR);
+        if dir.join(DB_FILE).exists() {
+            return Err(ErrorKind::StoreExists { path: dir }.into());
+        }
+        if *at != location::Location::default() {
+            fs::create_dir_all(&dir).map_err(|e| Error::io(&dir, e))?;
+            location::Location {
+                lineage: None,
+                ..at.clone()
+            }
+            .write(&dir)?;
+        }
+        Store::init_recorded_with(project, at.lineage.as_deref(), agent)
     }
 
     /// Creates a new store and records its creation as the first audit entry.
@@ -211,6 +238,7 @@ impl Store {
             segments::SEGMENTS_DIR,
             "tmp",
             objects::WRITERS_LOCK,
+            bucket::CACHE_DIR,
         ] {
             let p = dir.join(part);
             if fs::symlink_metadata(&p).is_ok_and(|m| m.file_type().is_symlink()) {
@@ -225,7 +253,7 @@ impl Store {
             Some(conn) => Lineage::connect_server(conn)?,
             None => Lineage::open(&db)?,
         };
-        let mut objects = Objects::new(Box::new(FsBackend::new(&dir)));
+        let mut objects = Objects::new(object_backend(&dir)?);
         objects.read_erased_forms(erased_forms(&lineage)?);
         Ok(Store {
             objects,
@@ -316,7 +344,7 @@ impl Store {
         let db = dir.join(DB_FILE);
         self.lineage.copy_to(&db)?;
         let lineage = Lineage::open(&db)?;
-        let mut objects = Objects::new(Box::new(FsBackend::new(&self.dir)));
+        let mut objects = Objects::new(object_backend(&self.dir)?);
         objects.read_erased_forms(erased_forms(&lineage)?);
         let mut trial = Store {
             objects,
@@ -399,6 +427,22 @@ fn erased_forms(
         }
     }
     Ok(out)
+}
+
+/// The object backend of the store in `dir`: the bucket `location.json` names, else the
+/// store's own segments.
+pub fn object_backend(dir: &Path) -> Result<Box<dyn ObjectBackend>> {
+    match location::Location::read(dir)? {
+        location::Location {
+            objects: Some(url),
+            cache_bytes,
+            ..
+        } => Ok(Box::new(
+            bucket::BucketBackend::new(dir, &url, cache_bytes)
+                .map_err(|e| Error::io(&dir.join(location::LOCATION_FILE), e))?,
+        )),
+        _ => Ok(Box::new(FsBackend::new(dir))),
+    }
 }
 
 /// Refuses a store in the old hidden folder (`dir` is that folder, or a project folder holding

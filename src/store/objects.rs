@@ -79,6 +79,12 @@ pub trait ObjectBackend: Send + Sync {
         let _ = frame_size;
         self.create_temp()
     }
+    /// Takes the writers' lock exclusively for this process's own writes through this backend
+    /// (waiting for every other process that may hold objects not yet referenced), until the
+    /// process ends: `transfer` copies objects while no other command writes any.
+    fn hold_exclusively(&self) -> io::Result<()> {
+        self.hold_for_writing()
+    }
     /// Publishes every object of a finished segment file (a stage's); the default copies
     /// them through `create_temp`.
     fn adopt_segment(&self, path: &Path) -> io::Result<()> {
@@ -133,6 +139,11 @@ static COUNTDOWN: std::sync::OnceLock<Arc<Countdown>> = std::sync::OnceLock::new
 /// this in debug builds only, for the crash tests).
 pub fn install_countdown(c: Arc<Countdown>) {
     let _ = COUNTDOWN.set(c);
+}
+
+/// The countdown installed for this process, if any (the bucket backend consults it too).
+pub(crate) fn countdown() -> Option<Arc<Countdown>> {
+    COUNTDOWN.get().cloned()
 }
 
 /// The lock file writers hold shared while they may have objects not yet referenced, and
@@ -739,6 +750,20 @@ impl Drop for SegTemp {
 impl ObjectBackend for FsBackend {
     fn create_temp(&self) -> io::Result<Box<dyn TempObject>> {
         self.create_temp_framed(self.shared.frame_size)
+    }
+
+    fn hold_exclusively(&self) -> io::Result<()> {
+        let mut w = self
+            .shared
+            .writing
+            .lock()
+            .unwrap_or_else(|p| p.into_inner());
+        // A shared hold of this process goes first, or the exclusive one would wait for it.
+        *w = None;
+        let f = self.shared.lock_file()?;
+        f.lock()?;
+        *w = Some(f);
+        Ok(())
     }
 
     fn hold_for_writing(&self) -> io::Result<()> {
