@@ -146,7 +146,10 @@ impl Store {
         if dir.join(DB_FILE).exists() {
             return Err(ErrorKind::StoreExists { path: dir }.into());
         }
-        if *at != location::Location::default() {
+        // The bucket is written down first, so the new store writes its objects there; the
+        // server (checked, and its schema made, by `init_with`) is added after.
+        let created = !dir.exists();
+        if at.objects.is_some() || at.cache_bytes.is_some() {
             fs::create_dir_all(&dir).map_err(|e| Error::io(&dir, e))?;
             location::Location {
                 lineage: None,
@@ -154,7 +157,13 @@ impl Store {
             }
             .write(&dir)?;
         }
-        Store::init_recorded_with(project, at.lineage.as_deref(), agent)
+        let made = Store::init_recorded_with(project, at.lineage.as_deref(), agent);
+        if made.is_err() && created {
+            // A refused server (a password in its connection string, a wrong address) leaves
+            // nothing behind.
+            let _ = fs::remove_dir_all(&dir);
+        }
+        made
     }
 
     /// Creates a new store and records its creation as the first audit entry.
