@@ -129,15 +129,7 @@ fn carried_text(
         "erasure order {} carried out: recorded as audit entry {}, cells erased in audit entry {}",
         done.order, done.ordered_entry, done.erased_entry
     )?;
-    writeln!(
-        out,
-        "  raw version  {} ({})",
-        order.version.label(),
-        short_hash(&order.version.hash)
-    )?;
-    writeln!(out, "  names        {}", order.target.describe())?;
-    writeln!(out, "  request      {}", order.request)?;
-    writeln!(out)?;
+    order_lines(out, order)?;
     writeln!(
         out,
         "erased {} in {}; each keeps its name, and a salted commitment recorded before the erasure proves every other cell:",
@@ -253,11 +245,8 @@ fn rows_text(
     Ok(())
 }
 
-fn survey_text(out: &mut impl Write, order: &Order, reach: &Reach) -> std::io::Result<()> {
-    writeln!(
-        out,
-        "erasure order, dry run: nothing was recorded and nothing erased"
-    )?;
+/// What an order names, as both screens show it: the raw version, the cells, the request.
+fn order_lines(out: &mut impl Write, order: &Order) -> std::io::Result<()> {
     writeln!(
         out,
         "  raw version  {} ({})",
@@ -267,6 +256,15 @@ fn survey_text(out: &mut impl Write, order: &Order, reach: &Reach) -> std::io::R
     writeln!(out, "  names        {}", order.target.describe())?;
     writeln!(out, "  request      {}", order.request)?;
     writeln!(out)?;
+    Ok(())
+}
+
+fn survey_text(out: &mut impl Write, order: &Order, reach: &Reach) -> std::io::Result<()> {
+    writeln!(
+        out,
+        "erasure order, dry run: nothing was recorded and nothing erased"
+    )?;
+    order_lines(out, order)?;
     writeln!(
         out,
         "it reaches {} in {}:",

@@ -54,8 +54,15 @@ pub struct NewOrder<'a> {
     pub n_cells: u64,
 }
 
-const ERASED_COLUMNS: &str = "order_id, version_id, root, salts, kept, marked, n_erased,
-     stored_hash, stored_row_index";
+/// Every erased version, in order of orders then versions.
+const ERASED_ALL: &str = "SELECT order_id, version_id, root, salts, kept, marked, n_erased,
+            stored_hash, stored_row_index
+     FROM erased_versions ORDER BY order_id, version_id";
+
+/// The latest erasure of one version.
+const ERASED_OF_VERSION: &str = "SELECT order_id, version_id, root, salts, kept, marked,
+            n_erased, stored_hash, stored_row_index
+     FROM erased_versions WHERE version_id = ?1 ORDER BY order_id DESC LIMIT 1";
 
 fn erased_from_row(r: &Row) -> Result<ErasedVersion> {
     Ok(ErasedVersion {
@@ -75,12 +82,7 @@ impl Lineage {
     /// Every erased version of every order, in order of orders then versions.
     pub fn erased_versions(&self) -> Result<Vec<ErasedVersion>> {
         self.db
-            .query(
-                &format!(
-                    "SELECT {ERASED_COLUMNS} FROM erased_versions ORDER BY order_id, version_id"
-                ),
-                &[],
-            )?
+            .query(ERASED_ALL, &[])?
             .iter()
             .map(erased_from_row)
             .collect()
@@ -89,13 +91,7 @@ impl Lineage {
     /// The latest erasure of one version, if any order reached it.
     pub fn erasure_of_version(&self, version_id: i64) -> Result<Option<ErasedVersion>> {
         self.db
-            .query(
-                &format!(
-                    "SELECT {ERASED_COLUMNS} FROM erased_versions WHERE version_id = ?1
-                     ORDER BY order_id DESC LIMIT 1"
-                ),
-                vals![version_id],
-            )?
+            .query(ERASED_OF_VERSION, vals![version_id])?
             .first()
             .map(erased_from_row)
             .transpose()
