@@ -127,19 +127,13 @@ pub fn record(store: &mut Store, h: &Handover<'_>, agent: &Agent) -> Result<Deli
     });
     let subject = h.version.audit_subject();
     let entry = store.write(|tx| tx.audit(agent, AUDIT_ACTION, &subject, &details, &at))?;
-    Ok(from_entry(&entry).unwrap_or_else(|| Delivery {
-        audit_entry: entry.seq,
-        at: entry.at.clone(),
-        by: entry.agent.clone(),
-        version: h.version.label(),
-        version_hash: h.version.hash.clone(),
-        format: h.format.to_string(),
-        column_types: h.column_types.to_vec(),
-        file: h.file.to_string(),
-        file_hash: h.file_hash.to_string(),
-        bytes: h.bytes,
-        why: h.why.to_string(),
-    }))
+    from_entry(&entry).ok_or_else(|| {
+        crate::error::ErrorKind::Internal(format!(
+            "audit entry {} was written as a delivery but does not read back as one",
+            entry.seq
+        ))
+        .into()
+    })
 }
 
 /// The delivery an audit entry records, if it records one.

@@ -73,14 +73,7 @@ pub(super) fn compare_pairs(
     };
     let (ka, kb): (&[usize], &[usize]) = keys.unwrap_or((&[], &[]));
     let held = {
-        let mut want_a: Vec<u64> = removed.to_vec();
-        want_a.extend(to_compare.iter().map(|p| p.0));
-        want_a.sort_unstable();
-        want_a.dedup();
-        let mut want_b: Vec<u64> = added.to_vec();
-        want_b.extend(to_compare.iter().map(|p| p.1));
-        want_b.sort_unstable();
-        want_b.dedup();
+        let (want_a, want_b) = wanted_rows(removed, added, &to_compare);
         (fits(a, want_a.len()) && fits(b, want_b.len())).then_some((want_a, want_b))
     };
     if let Some((want_a, want_b)) = held {
@@ -360,14 +353,7 @@ fn compare_all(
     removed: &mut Vec<u64>,
     added: &mut Vec<u64>,
 ) -> Result<Compared> {
-    let mut want_a: Vec<u64> = removed.to_vec();
-    want_a.extend(to_compare.iter().map(|p| p.0));
-    want_a.sort_unstable();
-    want_a.dedup();
-    let mut want_b: Vec<u64> = added.to_vec();
-    want_b.extend(to_compare.iter().map(|p| p.1));
-    want_b.sort_unstable();
-    want_b.dedup();
+    let (want_a, want_b) = wanted_rows(removed, added, &to_compare);
     let (from_rows, to_rows) = both(
         || rows_of(objects, a, &want_a),
         || rows_of(objects, b, &want_b),
@@ -443,4 +429,17 @@ fn each_wanted(
         }
         Ok(())
     })
+}
+
+/// The rows each side must read to list a comparison: A's removed rows and the A side of every
+/// pair to compare, B's added rows and the B side, each sorted without repeats.
+fn wanted_rows(removed: &[u64], added: &[u64], to_compare: &[(u64, u64)]) -> (Vec<u64>, Vec<u64>) {
+    let side = |own: &[u64], pick: fn(&(u64, u64)) -> u64| {
+        let mut want: Vec<u64> = own.to_vec();
+        want.extend(to_compare.iter().map(pick));
+        want.sort_unstable();
+        want.dedup();
+        want
+    };
+    (side(removed, |p| p.0), side(added, |p| p.1))
 }
