@@ -264,11 +264,16 @@ pub fn demo_next(out: &mut impl Write, r: &DemoReport) -> io::Result<()> {
 pub fn transfer(
     ctx: &Context<'_>,
     to_bucket: Option<&str>,
+    as_json: bool,
     out: &mut impl Write,
 ) -> anyhow::Result<ExitCode> {
     let mut store = ctx.open_store()?;
     let agent = ctx.agent(Some(&store))?;
     let done = store.transfer(to_bucket, &agent, &sluice::clock::now_rfc3339())?;
+    if as_json {
+        json(out, &done)?;
+        return Ok(0);
+    }
     writeln!(
         out,
         "copied {} ({}) from {} to {}, each re-hashed as it was read and again from its new place{}",

@@ -239,21 +239,31 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             endorsement,
         } => query::verify(&ctx, *deep, endorsement, *json, out),
         Command::Reclaim { json } => admin::reclaim(&ctx, *json, out),
-        Command::Publish { to, lineage_server } => {
-            shared::publish(&ctx, to, lineage_server.as_deref(), out)
+        Command::Publish {
+            to,
+            lineage_server,
+            json,
+        } => shared::publish(&ctx, to, lineage_server.as_deref(), *json, out),
+        Command::Borrow { from, into, json } => {
+            shared::borrow(&ctx, from, into.as_deref(), *json, out)
         }
-        Command::Borrow { from, into } => shared::borrow(&ctx, from, into.as_deref(), out),
         Command::Roles {
             set_up,
             give,
             to,
             of,
+            bucket_policy,
+            bucket_principal,
         } => shared::roles(
             &ctx,
-            *set_up,
-            give.as_deref(),
-            to.as_deref(),
-            of.as_deref(),
+            &shared::RolesAsked {
+                set_up: *set_up,
+                give: give.as_deref(),
+                to: to.as_deref(),
+                of: of.as_deref(),
+                bucket_policy: bucket_policy.as_deref(),
+                bucket_principals: bucket_principal,
+            },
             out,
         ),
         Command::Retain { references, json } => {
@@ -299,7 +309,8 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Transfer {
             to_bucket,
             to_folder: _,
-        } => admin::transfer(&ctx, to_bucket.as_deref(), out),
+            json,
+        } => admin::transfer(&ctx, to_bucket.as_deref(), *json, out),
         Command::Completions { shell } => admin::completions(*shell, out),
         Command::Manual { dir } => admin::manual(dir.as_deref(), out),
         Command::Upgrade { file, output } => admin::upgrade(file, output.as_deref(), out),

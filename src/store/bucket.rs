@@ -128,6 +128,17 @@ impl Place {
     fn key(&self, h: &Hash) -> String {
         format!("{}objects/{}", self.prefix, h.hex())
     }
+
+    /// The bucket's name.
+    pub fn bucket_name(&self) -> &str {
+        self.bucket.name()
+    }
+
+    /// The folder inside the bucket the store's objects are under (`objects/` in it), with its
+    /// trailing slash; empty for the bucket's top.
+    pub fn prefix(&self) -> &str {
+        &self.prefix
+    }
 }
 
 /// The HTTP side: signed requests and what the bucket answered.
