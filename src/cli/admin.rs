@@ -321,5 +321,18 @@ pub fn reclaim_text(out: &mut impl Write, r: &sluice::store::objects::Reclaimed)
         plural(r.bytes_before, "byte", "bytes"),
         plural(r.loose_converted, "loose object", "loose objects"),
         plural(r.temp_files_removed, "leftover temporary file", "leftover temporary files"),
-    )
+    )?;
+    if r.bucket_objects_removed > 0 {
+        writeln!(
+            out,
+            "removed {} from the bucket ({} stored)",
+            plural(
+                r.bucket_objects_removed,
+                "unreferenced object",
+                "unreferenced objects"
+            ),
+            plural(r.bucket_bytes_removed, "byte", "bytes"),
+        )?;
+    }
+    Ok(())
 }

@@ -75,7 +75,8 @@ impl Context<'_> {
 
 /// In debug builds only (the crash tests' binary): `SLUICE_TEST_IO_POINT=stop:N` ends the
 /// process at the Nth I/O point of its object writes as a kill would, `fail:N` makes that
-/// point fail (`store::objects::Countdown`).
+/// point fail (`store::objects::Countdown`); `stop:N:NAME` and `fail:N:NAME` count only the
+/// points of that name (`upload`: each request sending an object's bytes to a bucket).
 fn install_test_countdown() {
     if !cfg!(debug_assertions) {
         return;
@@ -86,10 +87,17 @@ fn install_test_countdown() {
     let Some((mode, n)) = v.split_once(':') else {
         return;
     };
+    let (n, only) = match n.split_once(':') {
+        Some((n, what)) => (n, Some(what)),
+        None => (n, None),
+    };
     if let Ok(n) = n.parse::<u64>() {
-        sluice::store::objects::install_countdown(std::sync::Arc::new(
-            sluice::store::objects::Countdown::new(n, mode == "stop"),
-        ));
+        use sluice::store::objects::Countdown;
+        let c = match only {
+            Some(what) => Countdown::of(n, mode == "stop", what),
+            None => Countdown::new(n, mode == "stop"),
+        };
+        sluice::store::objects::install_countdown(std::sync::Arc::new(c));
     }
 }
 

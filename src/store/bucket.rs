@@ -967,6 +967,54 @@ impl ObjectBackend for BucketBackend {
         Ok(self.inner.table(hash)?.total)
     }
 
+    fn confirm_present(&self, hashes: &[Hash]) -> io::Result<Vec<Hash>> {
+        let inner = &self.inner;
+        let mut gone = Vec::new();
+        for h in hashes {
+            let relied_on = inner
+                .present
+                .lock()
+                .unwrap_or_else(|p| p.into_inner())
+                .contains(h);
+            // Only what this process uploaded or found (a recomputable version's objects are
+            // named but never stored); asked of the server again, not of the cache.
+            if relied_on && inner.client.head(&inner.key(h))?.is_none() {
+                inner
+                    .present
+                    .lock()
+                    .unwrap_or_else(|p| p.into_inner())
+                    .remove(h);
+                gone.push(*h);
+            }
+        }
+        Ok(gone)
+    }
+
+    fn remove_unreferenced(&self, live: &HashSet<Hash>) -> io::Result<(u64, u64)> {
+        let inner = &self.inner;
+        let prefix = format!("{}objects/", inner.client.place.prefix);
+        let (mut n, mut bytes) = (0, 0);
+        for (key, size) in inner.client.list(&prefix)? {
+            let name = key.strip_prefix(&prefix).unwrap_or(&key);
+            // Names that are not hashes are not sluice's: left for `verify` to name.
+            let Ok(h) = name.parse::<Hash>() else {
+                continue;
+            };
+            if h.hex() != name || live.contains(&h) {
+                continue;
+            }
+            inner.client.delete(&key)?;
+            inner
+                .present
+                .lock()
+                .unwrap_or_else(|p| p.into_inner())
+                .remove(&h);
+            n += 1;
+            bytes += size;
+        }
+        Ok((n, bytes))
+    }
+
     fn list(&self) -> io::Result<(Vec<Hash>, Vec<PathBuf>)> {
         let inner = &self.inner;
         let prefix = format!("{}objects/", inner.client.place.prefix);

@@ -447,7 +447,16 @@ impl Store {
     /// commands left in `tmp/` ([`Store::sweep_tmp`]).
     pub fn write<T>(&mut self, f: impl FnOnce(&mut Tx<'_>) -> Result<T>) -> Result<T> {
         self.sweep_tmp();
-        self.lineage.write(f)
+        let objects = &self.objects;
+        self.lineage.write(|tx| {
+            let out = f(tx)?;
+            // Last, inside the transaction and so in the writers' order: the objects it names
+            // that this process found or put in a shared place are still there, and `reclaim`
+            // (which removes only inside a write transaction of its own) cannot remove them
+            // before this one commits.
+            objects.confirm_present(tx.objects_named())?;
+            Ok(out)
+        })
     }
 
     /// Removes the temporary files and folders of commands that are no longer running: every
