@@ -978,6 +978,24 @@ fn the_roles_bucket_policy_is_enforced_by_the_server() {
         .unwrap();
     let left = get_raw_from(&name, &key);
     assert!(!left.is_empty(), "{key} is still in the bucket");
+    // reclaim would remove an unreferenced object: refused at its first deletion, it removes
+    // and records nothing.
+    let stray = blake3::hash(b"an upload whose step was never recorded").to_hex();
+    let stray_key = format!("q3/objects/{stray}");
+    assert_eq!(put_status(&name, "recorder", &stray_key, &left), 200);
+    let r = run_as(&s, "recorder", &["reclaim"]);
+    assert_ne!(r.code, 0, "{}\n{}", r.stdout, r.stderr);
+    assert_contains(&r.stderr, "403");
+    assert_eq!(get_raw_from(&name, &stray_key), left);
+    let db = rusqlite::Connection::open(s.path().join("sluice-store/lineage.db")).unwrap();
+    let reclaims: i64 = db
+        .query_row(
+            "SELECT count(*) FROM audit_log WHERE action = 'reclaim'",
+            [],
+            |r| r.get(0),
+        )
+        .unwrap();
+    assert_eq!(reclaims, 0, "a refused reclaim is not recorded");
     assert_contains(&ok_as(&s, "reader", &["verify"]), "intact");
 }
 
