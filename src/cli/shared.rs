@@ -8,7 +8,6 @@ use super::text::json;
 use super::{Context, ExitCode};
 use sluice::outcome::MovedJson;
 use sluice::sharing::Moved;
-use sluice::store::location::Location;
 use sluice::store::{roles, Store};
 
 fn moved_text(out: &mut impl Write, m: &Moved) -> std::io::Result<()> {
@@ -160,7 +159,7 @@ fn bucket_policy(
     principals: &[String],
     out: &mut impl Write,
 ) -> anyhow::Result<()> {
-    let Some(url) = Location::read(store.dir())?.objects else {
+    let Some(url) = store.objects_bucket()? else {
         anyhow::bail!(sluice::Error::usage(
             "this store keeps its objects in its folder; a bucket policy is for a store whose objects are in a bucket \
              (`sluice setup --object-bucket URL`, or `sluice transfer --to-bucket URL`)"

@@ -369,6 +369,11 @@ impl Store {
         .into())
     }
 
+    /// The bucket URL the store keeps its objects in (`location.json`), when it does.
+    pub fn objects_bucket(&self) -> Result<Option<String>> {
+        Ok(location::Location::read(&self.dir)?.objects)
+    }
+
     /// Whether the store keeps `v`'s bytes (and row index), as recorded: the one answer to
     /// "is this version's content stored?". A version recorded as recomputable whose bytes
     /// are identical to a stored version's counts as stored. Its bytes can still be read when
