@@ -633,3 +633,32 @@ pub fn stopped_at(failure_at: &str) -> String {
         None => failure_at.to_string(),
     }
 }
+
+/// What `publish --json` and `borrow --json` print (schema/output/publish.schema.json and
+/// borrow.schema.json): where the copy went from and to, and what it moved.
+#[derive(Serialize)]
+pub struct MovedJson {
+    /// The store copied from: a folder, or a server's database (never a password).
+    pub from: String,
+    /// The store copied into, named the same way.
+    pub to: String,
+    pub objects_copied: u64,
+    pub bytes_copied: u64,
+    pub objects_present: u64,
+    pub entries_before: u64,
+    pub entries_copied: u64,
+}
+
+impl MovedJson {
+    pub fn new(from: String, to: String, m: &crate::sharing::Moved) -> MovedJson {
+        MovedJson {
+            from,
+            to,
+            objects_copied: m.objects_copied,
+            bytes_copied: m.bytes_copied,
+            objects_present: m.objects_present,
+            entries_before: m.entries_before,
+            entries_copied: m.entries_copied,
+        }
+    }
+}

@@ -2,7 +2,9 @@
 //! loopback by tests/run through tests/reference/s3server.sh, which exports its address as
 //! `SLUICE_TEST_S3_ENDPOINT`), with its users as tests/reference/s3_identities.json declares
 //! them. Every command runs the real binary; the bucket is read and damaged here with the same
-//! S3 requests any client sends (signed with AWS Signature Version 4 by rusty-s3).
+//! S3 requests any client sends (signed with AWS Signature Version 4 by rusty-s3). The test of
+//! writers on two machines also has its lineage on a real PostgreSQL server
+//! (tests/common/pg.rs).
 
 mod common;
 
@@ -76,18 +78,23 @@ fn the_bucket() -> &'static str {
             .unwrap()
             .subsec_nanos();
         let name = format!("sluice-test-{}-{nanos}", std::process::id());
-        let b = bucket(&name);
-        let c = creds("steward");
-        let create = CreateBucket::new(&b, &c);
-        let url = create.sign(Duration::from_secs(600));
-        let r = agent().put(url.as_str()).send(create.body()).unwrap();
-        assert!(
-            r.status().is_success(),
-            "create bucket {name}: {}",
-            r.status()
-        );
+        create_bucket(&name);
         name
     })
+}
+
+/// Makes the bucket `name`, as the steward.
+fn create_bucket(name: &str) {
+    let b = bucket(name);
+    let c = creds("steward");
+    let create = CreateBucket::new(&b, &c);
+    let url = create.sign(Duration::from_secs(600));
+    let r = agent().put(url.as_str()).send(create.body()).unwrap();
+    assert!(
+        r.status().is_success(),
+        "create bucket {name}: {}",
+        r.status()
+    );
 }
 
 /// A fresh, empty place in the test bucket: its URL as a store names it, and its prefix.
@@ -148,18 +155,21 @@ fn delete_raw(prefix: &str, key: &str) {
     assert!(r.status().is_success(), "delete {key}: {}", r.status());
 }
 
-/// Runs sluice as a user of the server.
-fn run_as(s: &Sandbox, who: &str, args: &[&str]) -> Run {
+/// The command that runs sluice as a user of the server.
+fn command_as(s: &Sandbox, who: &str, args: &[&str]) -> std::process::Command {
     let (k, sec) = keys(who);
-    let out = s
-        .command(args)
-        .env("AWS_ACCESS_KEY_ID", k)
+    let mut c = s.command(args);
+    c.env("AWS_ACCESS_KEY_ID", k)
         .env("AWS_SECRET_ACCESS_KEY", sec)
         .env("AWS_REGION", "us-east-1")
         .env_remove("AWS_SESSION_TOKEN")
-        .env_remove("AWS_PROFILE")
-        .output()
-        .unwrap();
+        .env_remove("AWS_PROFILE");
+    c
+}
+
+/// Runs sluice as a user of the server.
+fn run_as(s: &Sandbox, who: &str, args: &[&str]) -> Run {
+    let out = command_as(s, who, args).output().unwrap();
     Run {
         code: out.status.code().unwrap_or(-1),
         stdout: String::from_utf8_lossy(&out.stdout).into_owned(),
@@ -568,8 +578,31 @@ fn transfer_copies_a_local_store_into_a_bucket_and_back_rehashing_every_object()
     let bytes = s.ok(&["retrieve", "orders"]);
     let objects = recorded_objects(&s);
     let (url, name) = fresh_bucket();
-    let out = ok_as(&s, "recorder", &["transfer", "--to-bucket", &url]);
-    assert_contains(&out, &format!("copied {} objects", objects.len()));
+    // The JSON record (schema/output/transfer.schema.json) is the audit entry's details.
+    let out: serde_json::Value = serde_json::from_str(&ok_as(
+        &s,
+        "recorder",
+        &["transfer", "--to-bucket", &url, "--json"],
+    ))
+    .unwrap();
+    assert_eq!(schema_errors("transfer", &out), Vec::<String>::new());
+    assert_eq!(out["objects"], objects.len(), "{out}");
+    assert_eq!(out["already_there"], 0, "{out}");
+    assert_eq!(out["to"], url.as_str(), "{out}");
+    let db = rusqlite::Connection::open(s.path().join("sluice-store/lineage.db")).unwrap();
+    let details: String = db
+        .query_row(
+            "SELECT details FROM audit_log WHERE action = 'transfer' ORDER BY seq DESC LIMIT 1",
+            [],
+            |r| r.get(0),
+        )
+        .unwrap();
+    drop(db);
+    let mut details: serde_json::Value = serde_json::from_str(&details).unwrap();
+    // The entry also commits to the rows the command wrote (none here).
+    assert_eq!(details["rows"], serde_json::json!([]));
+    details.as_object_mut().unwrap().remove("rows");
+    assert_eq!(details, out);
     let in_bucket = listed(&name);
     assert_eq!(in_bucket, objects, "every stored object, and only those");
     // The local copy goes: the store now reads from the bucket alone.
@@ -591,4 +624,545 @@ fn transfer_copies_a_local_store_into_a_bucket_and_back_rehashing_every_object()
         &s.fails(2, &["transfer", "--to-folder"]),
         "already in its own folder",
     );
+}
+
+/// One version a writer was told it recorded: (step, dataset, number, the bytes it received).
+type Recorded = (i64, String, u64, String);
+
+/// Retrieves every version in `made` from the store of `machine` as the reader, each compared
+/// with the bytes its writer received (the files are canonical CSV, so the stored bytes are
+/// the received ones), on `threads` threads.
+fn all_readable(machine: &Sandbox, made: &[Recorded], threads: usize) {
+    let chunk = made.len().div_ceil(threads).max(1);
+    std::thread::scope(|scope| {
+        for part in made.chunks(chunk) {
+            scope.spawn(move || {
+                for (step, dataset, seq, bytes) in part {
+                    let r = format!("{dataset}:v{seq}");
+                    let out = command_as(machine, "reader", &["retrieve", &r])
+                        .output()
+                        .unwrap();
+                    assert!(
+                        out.status.success(),
+                        "retrieve {r} (step {step}): {}",
+                        String::from_utf8_lossy(&out.stderr)
+                    );
+                    assert_eq!(
+                        String::from_utf8_lossy(&out.stdout),
+                        bytes.as_str(),
+                        "{r} (step {step})"
+                    );
+                }
+            });
+        }
+    });
+}
+
+/// Two machines' worth of writers on one shared store: two store folders, each with its own
+/// location file naming the same PostgreSQL database for the lineage and the same place in the
+/// bucket for the objects (the second folder joins with `setup`, as a colleague's machine
+/// would). Four writer processes per folder record new versions in a loop until 60 s have
+/// passed (a bound on the load, not a timed assertion: a slow machine records fewer steps,
+/// and every check below holds for any number). Afterwards, checked on the server with psql,
+/// not through sluice: step numbers 1..N with no gap and no duplicate, each step's audit entry
+/// exactly once, one chain (each entry's predecessor hash is the previous entry's hash, no two
+/// entries share a predecessor), version numbers 1..n in every dataset; `verify` intact from
+/// both folders; and every version, whichever machine recorded it, retrieved from both
+/// folders with the very bytes its writer received.
+#[test]
+fn writers_on_two_machines_for_a_minute_lose_and_duplicate_nothing() {
+    const MACHINES: usize = 2;
+    const PER_MACHINE: usize = 4;
+    const LOAD: Duration = Duration::from_secs(60);
+    let server = pg::server();
+    let conn = server.new_database("two_machines");
+    let (url, _) = fresh_bucket();
+    let machines: Vec<Sandbox> = (0..MACHINES).map(|_| Sandbox::new()).collect();
+    let first = ok_as(
+        &machines[0],
+        "recorder",
+        &[
+            "setup",
+            ".",
+            "--lineage-server",
+            &conn,
+            "--object-bucket",
+            &url,
+        ],
+    );
+    assert_contains(&first, "set up a store");
+    let joined = ok_as(
+        &machines[1],
+        "recorder",
+        &[
+            "setup",
+            ".",
+            "--lineage-server",
+            &conn,
+            "--object-bucket",
+            &url,
+        ],
+    );
+    assert_contains(&joined, "joined the shared store");
+    let started = std::time::Instant::now();
+    let made: Vec<(usize, Recorded)> = std::thread::scope(|scope| {
+        let writers: Vec<_> = (0..MACHINES * PER_MACHINE)
+            .map(|w| {
+                let machine = &machines[w / PER_MACHINE];
+                scope.spawn(move || {
+                    let mut made = Vec::new();
+                    let mut i = 0;
+                    while started.elapsed() < LOAD {
+                        let name = format!("w{w}_{i}.csv");
+                        let bytes =
+                            format!("reading_id,meter,kwh\nR{w}-{i},M{w},{}.{i}\n", 100 + w);
+                        machine.file(&name, &bytes);
+                        let dataset = if i % 2 == 0 {
+                            "meter_readings".to_string()
+                        } else {
+                            format!("depot_{w}")
+                        };
+                        let mut c = command_as(
+                            machine,
+                            "recorder",
+                            &[
+                                "receive",
+                                &name,
+                                "--as",
+                                &dataset,
+                                "--why",
+                                "a depot's nightly meter export",
+                                "--json",
+                            ],
+                        );
+                        c.env("SLUICE_PERSON", format!("Depot {w}"));
+                        let out = c.output().expect("run sluice");
+                        assert!(
+                            out.status.success(),
+                            "writer {w}, file {i}: {}",
+                            String::from_utf8_lossy(&out.stderr)
+                        );
+                        let v: serde_json::Value =
+                            serde_json::from_slice(&out.stdout).expect("receive --json");
+                        assert_eq!(v["recorded"], true, "{v}");
+                        let step = v["step"].as_i64().expect("a step number");
+                        let seq = v["version"]["seq"].as_u64().expect("a version number");
+                        made.push((w / PER_MACHINE, (step, dataset, seq, bytes)));
+                        i += 1;
+                    }
+                    made
+                })
+            })
+            .collect();
+        writers
+            .into_iter()
+            .flat_map(|h| h.join().expect("writer thread"))
+            .collect()
+    });
+    let n = made.len();
+    let mut steps: Vec<i64> = made.iter().map(|(_, r)| r.0).collect();
+    steps.sort_unstable();
+    assert_eq!(
+        steps,
+        (1..=n as i64).collect::<Vec<_>>(),
+        "step numbers: no step lost or given twice"
+    );
+    for m in 0..MACHINES {
+        assert!(
+            made.iter().any(|(at, _)| *at == m),
+            "machine {m} recorded nothing"
+        );
+    }
+    // Version numbers as the writers were told them: 1..n in every dataset.
+    let mut by_dataset: std::collections::BTreeMap<&str, Vec<u64>> = Default::default();
+    for (_, (_, d, seq, _)) in &made {
+        by_dataset.entry(d).or_default().push(*seq);
+    }
+    for (d, seqs) in &mut by_dataset {
+        seqs.sort_unstable();
+        assert_eq!(
+            *seqs,
+            (1..=seqs.len() as u64).collect::<Vec<_>>(),
+            "version numbers of {d}"
+        );
+    }
+    // And as the server holds them.
+    let on_server = server.admin_sql(
+        "two_machines",
+        "SELECT (SELECT count(*) FROM steps), (SELECT max(id) FROM steps),
+                (SELECT count(*) FROM versions),
+                (SELECT count(*) FROM (SELECT dataset_id FROM versions GROUP BY dataset_id
+                   HAVING min(seq) <> 1 OR max(seq) <> count(*)
+                       OR count(DISTINCT seq) <> count(*)) AS gapped),
+                (SELECT count(*) FROM audit_log), (SELECT max(seq) FROM audit_log),
+                (SELECT count(*) FROM audit_log WHERE action = 'ingest'),
+                (SELECT count(DISTINCT details::json->>'step') FROM audit_log
+                   WHERE action = 'ingest'),
+                (SELECT min((details::json->>'step')::bigint) FROM audit_log
+                   WHERE action = 'ingest'),
+                (SELECT max((details::json->>'step')::bigint) FROM audit_log
+                   WHERE action = 'ingest'),
+                (SELECT count(*) FROM audit_log a JOIN audit_log b ON b.seq = a.seq + 1
+                   WHERE b.prev_hash <> a.hash),
+                (SELECT count(DISTINCT prev_hash) FROM audit_log)",
+    );
+    let audit = n + 1; // the first setup's entry; the second folder's joining records none
+    assert_eq!(
+        on_server.trim(),
+        format!("{n}|{n}|{n}|0|{audit}|{audit}|{n}|{n}|1|{n}|0|{audit}"),
+        "steps, highest step, versions, datasets with a gap, audit entries, highest entry, \
+         entries of steps, distinct steps they name, lowest and highest, broken links, \
+         distinct predecessors"
+    );
+    for m in &machines {
+        let v = ok_as(m, "reader", &["verify"]);
+        assert!(v.starts_with("intact:"), "{v}");
+    }
+    let recorded: Vec<Recorded> = made.into_iter().map(|(_, r)| r).collect();
+    for m in &machines {
+        all_readable(m, &recorded, 2);
+    }
+    // A folder that would read its objects elsewhere (its own segments, or another place in
+    // the bucket) cannot join: it could read none of what the others recorded.
+    let elsewhere = Sandbox::new();
+    for place in [
+        vec!["--lineage-server", conn.as_str()],
+        vec![
+            "--lineage-server",
+            conn.as_str(),
+            "--object-bucket",
+            &fresh_bucket().0,
+        ],
+    ] {
+        let mut args = vec!["setup", "."];
+        args.extend(place);
+        let r = run_as(&elsewhere, "recorder", &args);
+        assert_eq!(r.code, 2, "{}\n{}", r.stdout, r.stderr);
+        assert_contains(&r.stderr, "keeps its objects elsewhere");
+        assert!(
+            !elsewhere.path().join("sluice-store").exists(),
+            "a refused join leaves no folder"
+        );
+    }
+    eprintln!(
+        "{n} steps recorded by {} writers on {MACHINES} store folders in {:?}",
+        MACHINES * PER_MACHINE,
+        LOAD
+    );
+}
+
+/// Installs `policy` as the policy of the bucket `name`, as its owner (the steward): S3's
+/// PutBucketPolicy, which rusty-s3 has no action for, signed with its signing function.
+fn put_bucket_policy(name: &str, policy: &[u8]) {
+    let (k, sec) = keys("steward");
+    let mut url: url::Url = endpoint().parse().unwrap();
+    url.set_path(name);
+    let signed = rusty_s3::signing::sign(
+        &jiff::Timestamp::now(),
+        rusty_s3::Method::Put,
+        url,
+        &k,
+        &sec,
+        None,
+        "us-east-1",
+        600,
+        std::iter::once(("policy", "")),
+        std::iter::empty(),
+    );
+    let mut r = agent().put(signed.as_str()).send(policy).unwrap();
+    let status = r.status();
+    let body = r.body_mut().read_to_string().unwrap_or_default();
+    assert!(status.is_success(), "put bucket policy: {status} {body}");
+}
+
+/// The HTTP status the server answers `who`'s upload of `bytes` as `key` in the bucket `name`.
+fn put_status(name: &str, who: &str, key: &str, bytes: &[u8]) -> u16 {
+    let c = creds(who);
+    let url = PutObject::new(&bucket(name), Some(&c), key).sign(Duration::from_secs(600));
+    agent()
+        .put(url.as_str())
+        .send(bytes)
+        .unwrap()
+        .status()
+        .as_u16()
+}
+
+/// The HTTP status the server answers `who`'s deletion of `key` in the bucket `name`.
+fn delete_status(name: &str, who: &str, key: &str) -> u16 {
+    let c = creds(who);
+    let url = DeleteObject::new(&bucket(name), Some(&c), key).sign(Duration::from_secs(600));
+    agent()
+        .delete(url.as_str())
+        .call()
+        .unwrap()
+        .status()
+        .as_u16()
+}
+
+/// The bucket policy `sluice roles --bucket-policy` writes, installed by the bucket's owner,
+/// is enforced by the server (SeaweedFS evaluates bucket policies in the AWS policy language):
+/// a key named for reading cannot upload; a key named for signing cannot upload either,
+/// although the server's own user settings let it write (the policy's explicit deny is what
+/// refuses it); a recording key records through sluice as before; and nobody, the server's
+/// administrator included, can delete one of the store's objects, singly or in a batch: the
+/// store still verifies intact afterwards.
+#[test]
+fn the_roles_bucket_policy_is_enforced_by_the_server() {
+    let name = format!(
+        "sluice-policy-{}-{}",
+        std::process::id(),
+        PLACES.fetch_add(1, Ordering::Relaxed)
+    );
+    create_bucket(&name);
+    let url = format!("{}/{name}/q3", endpoint());
+    let s = Sandbox::new();
+    ok_as(&s, "recorder", &["setup", ".", "--object-bucket", &url]);
+    s.file("orders.csv", orders_csv(200));
+    ok_as(
+        &s,
+        "recorder",
+        &["receive", "orders.csv", "--as", "orders", "--why", "t"],
+    );
+    // Before the policy: the signer's key may write, as the server's user settings say.
+    assert_eq!(put_status(&name, "signer", "q3/probe.txt", b"probe"), 200);
+    // The server's principals are IAM-style user ARNs in its default account (SeaweedFS).
+    let arn = |who: &str| format!("arn:aws:iam::000000000000:user/{who}");
+    let out = ok_as(
+        &s,
+        "reader",
+        &[
+            "roles",
+            "--bucket-policy",
+            "policy.json",
+            "--bucket-principal",
+            &format!("reading={}", arn("reader")),
+            "--bucket-principal",
+            &format!("recording={}", arn("recorder")),
+            "--bucket-principal",
+            &format!("signing={}", arn("signer")),
+        ],
+    );
+    assert_contains(&out, "nobody may delete");
+    let policy = std::fs::read(s.path().join("policy.json")).unwrap();
+    let v: serde_json::Value = serde_json::from_slice(&policy).unwrap();
+    // The AWS policy language's current version (common practice: every policy names it).
+    assert_eq!(v["Version"], "2012-10-17");
+    put_bucket_policy(&name, &policy);
+    let key = format!("q3/objects/{}", recorded_objects(&s)[0]);
+    // Reading and signing keys cannot upload.
+    assert_eq!(put_status(&name, "reader", "q3/probe2.txt", b"x"), 403);
+    assert_eq!(put_status(&name, "signer", "q3/probe2.txt", b"x"), 403);
+    // A recording key records.
+    s.file("orders2.csv", orders_csv(300));
+    ok_as(
+        &s,
+        "recorder",
+        &["receive", "orders2.csv", "--as", "orders", "--why", "t"],
+    );
+    // Nobody deletes: not the roles' keys, not the server's administrator.
+    for who in ["reader", "recorder", "signer", "steward"] {
+        assert_eq!(delete_status(&name, who, &key), 403, "{who} deleted {key}");
+        assert_eq!(delete_status(&name, who, "q3/probe.txt"), 403, "{who}");
+    }
+    // Nor in a batch (S3 DeleteObjects): the server answers per key.
+    let c = creds("recorder");
+    let b = bucket(&name);
+    let ids = [rusty_s3::actions::ObjectIdentifier::new(key.clone())];
+    let batch = rusty_s3::actions::DeleteObjects::new(&b, Some(&c), ids.iter());
+    let signed = batch.sign(Duration::from_secs(600));
+    let (body, md5) = batch.body_with_md5();
+    let _ = agent()
+        .post(signed.as_str())
+        .header("Content-MD5", md5)
+        .send(body.as_bytes())
+        .unwrap();
+    let left = get_raw_from(&name, &key);
+    assert!(!left.is_empty(), "{key} is still in the bucket");
+    // reclaim would remove an unreferenced object: refused at its first deletion, it removes
+    // and records nothing.
+    let stray = blake3::hash(b"an upload whose step was never recorded").to_hex();
+    let stray_key = format!("q3/objects/{stray}");
+    assert_eq!(put_status(&name, "recorder", &stray_key, &left), 200);
+    let r = run_as(&s, "recorder", &["reclaim"]);
+    assert_ne!(r.code, 0, "{}\n{}", r.stdout, r.stderr);
+    assert_contains(&r.stderr, "403");
+    assert_eq!(get_raw_from(&name, &stray_key), left);
+    let db = rusqlite::Connection::open(s.path().join("sluice-store/lineage.db")).unwrap();
+    let reclaims: i64 = db
+        .query_row(
+            "SELECT count(*) FROM audit_log WHERE action = 'reclaim'",
+            [],
+            |r| r.get(0),
+        )
+        .unwrap();
+    assert_eq!(reclaims, 0, "a refused reclaim is not recorded");
+    assert_contains(&ok_as(&s, "reader", &["verify"]), "intact");
+}
+
+/// The bytes of `key` in the bucket `name`, read as the reader.
+fn get_raw_from(name: &str, key: &str) -> Vec<u8> {
+    let c = creds("reader");
+    let url = rusty_s3::actions::GetObject::new(&bucket(name), Some(&c), key)
+        .sign(Duration::from_secs(600));
+    let mut r = agent().get(url.as_str()).call().unwrap();
+    assert!(r.status().is_success(), "get {key}: {}", r.status());
+    r.body_mut()
+        .with_config()
+        .limit(1 << 30)
+        .read_to_vec()
+        .unwrap()
+}
+
+/// `reclaim` on a store whose objects are in a bucket removes the bucket's objects nothing
+/// refers to (here one put there under a hash's name, as a command stopped between its upload
+/// and its step would leave it), keeps every referenced object and every name that is not a
+/// hash (not sluice's), records what it removed in its audit entry, and leaves a store that
+/// verifies intact and reads as before.
+#[test]
+fn reclaim_removes_the_unreferenced_objects_of_a_bucket() {
+    let (url, name) = fresh_bucket();
+    let s = Sandbox::new();
+    ok_as(&s, "recorder", &["setup", ".", "--object-bucket", &url]);
+    s.file("orders.csv", orders_csv(500));
+    ok_as(
+        &s,
+        "recorder",
+        &["receive", "orders.csv", "--as", "orders", "--why", "t"],
+    );
+    let kept = recorded_objects(&s);
+    let bytes = ok_as(&s, "reader", &["retrieve", "orders"]);
+    let left = blake3::hash(b"an export whose step was never recorded").to_hex();
+    let copy = get_raw(&name, &format!("objects/{}", kept[0]));
+    put_raw(&name, &format!("objects/{left}"), &copy);
+    put_raw(&name, "objects/notes.txt", b"not sluice's");
+    assert!(listed(&name).contains(&left.to_string()));
+    let done: serde_json::Value =
+        serde_json::from_str(&ok_as(&s, "recorder", &["reclaim", "--json"])).unwrap();
+    assert_eq!(schema_errors("reclaim", &done), Vec::<String>::new());
+    assert_eq!(done["bucket_objects_removed"], 1, "{done}");
+    assert_eq!(done["bucket_bytes_removed"], copy.len(), "{done}");
+    let mut expected = kept.clone();
+    expected.push("notes.txt".to_string());
+    expected.sort();
+    assert_eq!(listed(&name), expected);
+    let db = rusqlite::Connection::open(s.path().join("sluice-store/lineage.db")).unwrap();
+    let details: String = db
+        .query_row(
+            "SELECT details FROM audit_log WHERE action = 'reclaim'",
+            [],
+            |r| r.get(0),
+        )
+        .unwrap();
+    let details: serde_json::Value = serde_json::from_str(&details).unwrap();
+    assert_eq!(details["bucket_objects_removed"], 1, "{details}");
+    delete_raw(&name, "objects/notes.txt");
+    assert_contains(&ok_as(&s, "reader", &["verify"]), "intact");
+    assert_eq!(ok_as(&s, "reader", &["retrieve", "orders"]), bytes);
+}
+
+/// A CSV whose stored (compressed) form is larger than one part of a multipart upload (16 MiB):
+/// each row carries 64 bytes of a xorshift generator's output as hex, which compresses to
+/// about half.
+fn incompressible_csv(rows: u64) -> String {
+    let mut s = String::from("reading_id,signature\n");
+    let mut x: u64 = 0x2545_F491_4F6C_DD1D;
+    for i in 0..rows {
+        s.push_str(&format!("S-{i:07},"));
+        for _ in 0..8 {
+            x ^= x << 13;
+            x ^= x >> 7;
+            x ^= x << 17;
+            s.push_str(&format!("{x:016x}"));
+        }
+        s.push('\n');
+    }
+    s
+}
+
+/// The objects under `PREFIX/objects/` in the test bucket, with their sizes.
+fn listed_sizes(prefix: &str) -> std::collections::BTreeMap<String, u64> {
+    let b = bucket(the_bucket());
+    let c = creds("steward");
+    let mut l = ListObjectsV2::new(&b, Some(&c));
+    let within = format!("{prefix}/objects/");
+    l.with_prefix(within.clone());
+    let url = l.sign(Duration::from_secs(600));
+    let mut r = agent().get(url.as_str()).call().unwrap();
+    let body = r.body_mut().read_to_string().unwrap();
+    ListObjectsV2::parse_response(&body)
+        .unwrap()
+        .contents
+        .into_iter()
+        .map(|c| {
+            (
+                c.key.trim_start_matches(&within).to_string(),
+                c.size.unwrap_or(0),
+            )
+        })
+        .collect()
+}
+
+/// A `receive` whose table is stored as a multipart upload (over 16 MiB once compressed),
+/// stopped as a kill would stop it at each request that sends an object's bytes (each part,
+/// each completion, each small object's single upload) in turn: the store verifies intact
+/// and records nothing, the bucket lists only whole objects (the interrupted upload is not an
+/// object), and running the command again ends with the unstopped run's hashes.
+#[test]
+fn a_command_killed_during_a_multipart_upload_leaves_the_store_intact() {
+    let csv = incompressible_csv(280_000);
+    let (url, prefix) = fresh_bucket();
+    let reference = Sandbox::new();
+    ok_as(
+        &reference,
+        "recorder",
+        &["setup", ".", "--object-bucket", &url],
+    );
+    reference.file("signatures.csv", &csv);
+    let args = [
+        "receive",
+        "signatures.csv",
+        "--as",
+        "signatures",
+        "--why",
+        "t",
+    ];
+    ok_as(&reference, "recorder", &args);
+    let want = version_hashes(&reference, "reader");
+    let whole = listed_sizes(&prefix);
+    assert!(
+        whole.values().any(|&n| n > 16 << 20),
+        "no object over one part: {whole:?}"
+    );
+    let mut points = 0;
+    for n in 1u64.. {
+        let (url, prefix) = fresh_bucket();
+        let s = Sandbox::new();
+        ok_as(&s, "recorder", &["setup", ".", "--object-bucket", &url]);
+        s.file("signatures.csv", &csv);
+        let status = command_as(&s, "recorder", &args)
+            .env("SLUICE_TEST_IO_POINT", format!("stop:{n}:upload"))
+            .status()
+            .unwrap();
+        let what = format!("receive stopped at upload {n}");
+        let v = run_as(&s, "reader", &["verify"]);
+        assert_eq!(v.code, 0, "{what}: verify\n{}\n{}", v.stdout, v.stderr);
+        for (key, size) in listed_sizes(&prefix) {
+            assert_eq!(
+                whole.get(&key),
+                Some(&size),
+                "{what}: {key} is not a whole object"
+            );
+        }
+        if status.success() {
+            assert_eq!(version_hashes(&s, "reader"), want, "{what}");
+            points = n - 1;
+            break;
+        }
+        assert_eq!(status.code(), Some(86), "{what}: stopped by the countdown");
+        assert!(version_hashes(&s, "reader").is_empty(), "{what}: recorded");
+        ok_as(&s, "recorder", &args);
+        assert_eq!(version_hashes(&s, "reader"), want, "{what}: run again");
+    }
+    // The row index's single upload, and the table's two parts and completion at least.
+    assert!(points >= 4, "only {points} uploads were passed");
 }

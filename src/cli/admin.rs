@@ -264,11 +264,16 @@ pub fn demo_next(out: &mut impl Write, r: &DemoReport) -> io::Result<()> {
 pub fn transfer(
     ctx: &Context<'_>,
     to_bucket: Option<&str>,
+    as_json: bool,
     out: &mut impl Write,
 ) -> anyhow::Result<ExitCode> {
     let mut store = ctx.open_store()?;
     let agent = ctx.agent(Some(&store))?;
     let done = store.transfer(to_bucket, &agent, &sluice::clock::now_rfc3339())?;
+    if as_json {
+        json(out, &done)?;
+        return Ok(0);
+    }
     writeln!(
         out,
         "copied {} ({}) from {} to {}, each re-hashed as it was read and again from its new place{}",
@@ -316,5 +321,18 @@ pub fn reclaim_text(out: &mut impl Write, r: &sluice::store::objects::Reclaimed)
         plural(r.bytes_before, "byte", "bytes"),
         plural(r.loose_converted, "loose object", "loose objects"),
         plural(r.temp_files_removed, "leftover temporary file", "leftover temporary files"),
-    )
+    )?;
+    if r.bucket_objects_removed > 0 {
+        writeln!(
+            out,
+            "removed {} from the bucket ({} stored)",
+            plural(
+                r.bucket_objects_removed,
+                "unreferenced object",
+                "unreferenced objects"
+            ),
+            plural(r.bucket_bytes_removed, "byte", "bytes"),
+        )?;
+    }
+    Ok(())
 }

@@ -410,6 +410,9 @@ pub enum Command {
         /// database), then publish into it
         #[arg(long, value_name = "CONN")]
         lineage_server: Option<String>,
+        /// Print JSON (fields: examples/reference.md, "JSON output"; schema/output/)
+        #[arg(long)]
+        json: bool,
     },
 
     /// Copy a shared store into a new working copy of your own (its lineage in its folder)
@@ -424,6 +427,9 @@ pub enum Command {
         /// The project folder for the working copy (default: the working directory)
         #[arg(long, value_name = "DIR")]
         into: Option<PathBuf>,
+        /// Print JSON (fields: examples/reference.md, "JSON output"; schema/output/)
+        #[arg(long)]
+        json: bool,
     },
 
     /// The roles of a shared store, enforced by its server: reading, recording, signing,
@@ -432,7 +438,11 @@ pub enum Command {
         after_help = "Run --set-up once as the owner of the server database's tables; it makes the roles sluice_reading, \
         sluice_recording, sluice_signing and sluice_administering with their grants. Logins are the server's own \
         (CREATE ROLE ... LOGIN); --give adds one of the roles to one.\n\n\
-        Examples:\n  sluice roles --set-up\n  sluice roles --give recording --to ada\n  sluice roles --of ada"
+        For a store whose objects are in a bucket, --bucket-policy writes the bucket's policy for its owner to \
+        install (S3 PutBucketPolicy): every principal is denied deleting the store's objects, each named principal may \
+        read them and list the bucket, recording principals may upload, and the others are denied uploads.\n\n\
+        Examples:\n  sluice roles --set-up\n  sluice roles --give recording --to ada\n  sluice roles --of ada\n  \
+        sluice roles --bucket-policy q3-policy.json --bucket-principal recording=arn:aws:iam::000000000000:user/ada"
     )]
     Roles {
         /// Make the roles and their grants (idempotent)
@@ -447,6 +457,14 @@ pub enum Command {
         /// Show the roles a login has
         #[arg(long, value_name = "LOGIN", conflicts_with_all = ["set_up", "give"])]
         of: Option<String>,
+        /// Write the bucket policy (AWS policy language) for the store's bucket to FILE: no
+        /// deletion of its objects for anyone, and each --bucket-principal's actions
+        #[arg(long, value_name = "FILE")]
+        bucket_policy: Option<PathBuf>,
+        /// Name a principal of the bucket's server for a role in the bucket policy, as
+        /// ROLE=ARN (arn:aws:iam::ACCOUNT:user/NAME) or ROLE=ACCOUNT; repeat for more
+        #[arg(long, value_name = "ROLE=PRINCIPAL", requires = "bucket_policy")]
+        bucket_principal: Vec<String>,
     },
 
     /// Copy every object of the store into a bucket, or back into the store's folder, each
@@ -468,6 +486,9 @@ pub enum Command {
         /// Copy the objects from the bucket into the store's own folder
         #[arg(long)]
         to_folder: bool,
+        /// Print JSON (fields: examples/reference.md, "JSON output"; schema/output/)
+        #[arg(long)]
+        json: bool,
     },
 
     /// Give back the space of objects no version or step refers to, and pack small segments

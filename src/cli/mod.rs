@@ -75,7 +75,8 @@ impl Context<'_> {
 
 /// In debug builds only (the crash tests' binary): `SLUICE_TEST_IO_POINT=stop:N` ends the
 /// process at the Nth I/O point of its object writes as a kill would, `fail:N` makes that
-/// point fail (`store::objects::Countdown`).
+/// point fail (`store::objects::Countdown`); `stop:N:NAME` and `fail:N:NAME` count only the
+/// points of that name (`upload`: each request sending an object's bytes to a bucket).
 fn install_test_countdown() {
     if !cfg!(debug_assertions) {
         return;
@@ -86,10 +87,17 @@ fn install_test_countdown() {
     let Some((mode, n)) = v.split_once(':') else {
         return;
     };
+    let (n, only) = match n.split_once(':') {
+        Some((n, what)) => (n, Some(what)),
+        None => (n, None),
+    };
     if let Ok(n) = n.parse::<u64>() {
-        sluice::store::objects::install_countdown(std::sync::Arc::new(
-            sluice::store::objects::Countdown::new(n, mode == "stop"),
-        ));
+        use sluice::store::objects::Countdown;
+        let c = match only {
+            Some(what) => Countdown::of(n, mode == "stop", what),
+            None => Countdown::new(n, mode == "stop"),
+        };
+        sluice::store::objects::install_countdown(std::sync::Arc::new(c));
     }
 }
 
@@ -239,21 +247,31 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             endorsement,
         } => query::verify(&ctx, *deep, endorsement, *json, out),
         Command::Reclaim { json } => admin::reclaim(&ctx, *json, out),
-        Command::Publish { to, lineage_server } => {
-            shared::publish(&ctx, to, lineage_server.as_deref(), out)
+        Command::Publish {
+            to,
+            lineage_server,
+            json,
+        } => shared::publish(&ctx, to, lineage_server.as_deref(), *json, out),
+        Command::Borrow { from, into, json } => {
+            shared::borrow(&ctx, from, into.as_deref(), *json, out)
         }
-        Command::Borrow { from, into } => shared::borrow(&ctx, from, into.as_deref(), out),
         Command::Roles {
             set_up,
             give,
             to,
             of,
+            bucket_policy,
+            bucket_principal,
         } => shared::roles(
             &ctx,
-            *set_up,
-            give.as_deref(),
-            to.as_deref(),
-            of.as_deref(),
+            &shared::RolesAsked {
+                set_up: *set_up,
+                give: give.as_deref(),
+                to: to.as_deref(),
+                of: of.as_deref(),
+                bucket_policy: bucket_policy.as_deref(),
+                bucket_principals: bucket_principal,
+            },
             out,
         ),
         Command::Retain { references, json } => {
@@ -299,7 +317,8 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Transfer {
             to_bucket,
             to_folder: _,
-        } => admin::transfer(&ctx, to_bucket.as_deref(), out),
+            json,
+        } => admin::transfer(&ctx, to_bucket.as_deref(), *json, out),
         Command::Completions { shell } => admin::completions(*shell, out),
         Command::Manual { dir } => admin::manual(dir.as_deref(), out),
         Command::Upgrade { file, output } => admin::upgrade(file, output.as_deref(), out),

@@ -22,7 +22,7 @@ use sluice::ops::summarize::{AggFunc, Aggregate};
 use sluice::ops::{CaseTo, KeepWhich, OnError, Operation, Renaming};
 use sluice::outcome::{CaptureJson, CleanJson, ReceiveJson, RunJson, SuccessorJson};
 use sluice::plan::Done;
-use sluice::store::Store;
+use sluice::store::{SetUp, Store};
 
 /// Arguments together with who is acting: what an engine option is made from.
 pub struct Acting<'a, A> {
@@ -47,8 +47,16 @@ pub fn setup(
         objects: object_bucket.map(str::to_string),
         ..Default::default()
     };
-    let store = Store::init_recorded_at(&project, &agent, &at)?;
-    writeln!(out, "set up a store in {}", store.dir().display())?;
+    let (store, how) = Store::set_up(&project, &agent, &at)?;
+    match how {
+        SetUp::Made => writeln!(out, "set up a store in {}", store.dir().display())?,
+        SetUp::Joined { entries } => writeln!(
+            out,
+            "joined the shared store on {} ({entries} audit entries there) from {}; nothing recorded",
+            store.lineage.describe(),
+            store.dir().display()
+        )?,
+    }
     if lineage_server.is_some() {
         writeln!(
             out,

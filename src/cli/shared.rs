@@ -4,7 +4,9 @@
 use std::io::Write;
 use std::path::Path;
 
+use super::text::json;
 use super::{Context, ExitCode};
+use sluice::outcome::MovedJson;
 use sluice::sharing::Moved;
 use sluice::store::{roles, Store};
 
@@ -25,6 +27,7 @@ pub fn publish(
     ctx: &Context<'_>,
     to: &Path,
     lineage_server: Option<&str>,
+    as_json: bool,
     out: &mut impl Write,
 ) -> anyhow::Result<ExitCode> {
     let local = ctx.open_store()?;
@@ -35,6 +38,15 @@ pub fn publish(
         None => Store::open(to)?,
     };
     let m = sluice::sharing::publish(&local, &shared)?;
+    if as_json {
+        let record = MovedJson::new(
+            local.dir().display().to_string(),
+            shared.lineage.describe(),
+            &m,
+        );
+        json(out, &record)?;
+        return Ok(0);
+    }
     if m.entries_copied == 0 {
         writeln!(
             out,
@@ -53,11 +65,21 @@ pub fn borrow(
     ctx: &Context<'_>,
     from: &Path,
     into: Option<&Path>,
+    as_json: bool,
     out: &mut impl Write,
 ) -> anyhow::Result<ExitCode> {
     let shared = Store::open(from)?;
     let project = into.map_or_else(|| ctx.cwd.clone(), Path::to_path_buf);
     let (local, m) = sluice::sharing::borrow(&shared, &project)?;
+    if as_json {
+        let record = MovedJson::new(
+            shared.lineage.describe(),
+            local.dir().display().to_string(),
+            &m,
+        );
+        json(out, &record)?;
+        return Ok(0);
+    }
     writeln!(
         out,
         "a working copy of {} in {}",
@@ -73,17 +95,24 @@ pub fn borrow(
     Ok(0)
 }
 
+/// What `roles` was asked to do.
+pub struct RolesAsked<'a> {
+    pub set_up: bool,
+    pub give: Option<&'a str>,
+    pub to: Option<&'a str>,
+    pub of: Option<&'a str>,
+    pub bucket_policy: Option<&'a Path>,
+    pub bucket_principals: &'a [String],
+}
+
 pub fn roles(
     ctx: &Context<'_>,
-    set_up: bool,
-    give: Option<&str>,
-    to: Option<&str>,
-    of: Option<&str>,
+    a: &RolesAsked<'_>,
     out: &mut impl Write,
 ) -> anyhow::Result<ExitCode> {
     let store = ctx.open_store()?;
     let mut did = false;
-    if set_up {
+    if a.set_up {
         roles::set_up(&store)?;
         writeln!(
             out,
@@ -97,12 +126,12 @@ pub fn roles(
         )?;
         did = true;
     }
-    if let (Some(role), Some(login)) = (give, to) {
+    if let (Some(role), Some(login)) = (a.give, a.to) {
         roles::give(&store, role, login)?;
         writeln!(out, "{login} now has the role {role}")?;
         did = true;
     }
-    if let Some(login) = of {
+    if let Some(login) = a.of {
         let has = roles::of(&store, login)?;
         if has.is_empty() {
             writeln!(out, "{login} has none of sluice's roles")?;
@@ -111,10 +140,62 @@ pub fn roles(
         }
         did = true;
     }
+    if let Some(path) = a.bucket_policy {
+        bucket_policy(&store, path, a.bucket_principals, out)?;
+        did = true;
+    }
     if !did {
         anyhow::bail!(sluice::Error::usage(
-            "say what to do: --set-up, --give ROLE --to LOGIN, or --of LOGIN"
+            "say what to do: --set-up, --give ROLE --to LOGIN, --of LOGIN, or --bucket-policy FILE"
         ));
     }
     Ok(0)
+}
+
+/// `roles --bucket-policy FILE`: the policy for the bucket the store's objects are in.
+fn bucket_policy(
+    store: &Store,
+    path: &Path,
+    principals: &[String],
+    out: &mut impl Write,
+) -> anyhow::Result<()> {
+    let Some(url) = store.objects_bucket()? else {
+        anyhow::bail!(sluice::Error::usage(
+            "this store keeps its objects in its folder; a bucket policy is for a store whose objects are in a bucket \
+             (`sluice setup --object-bucket URL`, or `sluice transfer --to-bucket URL`)"
+        ));
+    };
+    let mut named = Vec::new();
+    for p in principals {
+        let Some((role, who)) = p.split_once('=') else {
+            anyhow::bail!(sluice::Error::usage(format!(
+                "--bucket-principal {p}: expected ROLE=PRINCIPAL, such as recording=arn:aws:iam::000000000000:user/ada"
+            )));
+        };
+        named.push((role.trim().to_string(), who.trim().to_string()));
+    }
+    let policy = roles::bucket_policy(&url, &named)?;
+    super::write_file_atomically(path, |f| {
+        serde_json::to_writer_pretty(&mut *f, &policy)?;
+        f.write_all(b"\n")?;
+        Ok(())
+    })?;
+    writeln!(
+        out,
+        "wrote the bucket policy for {url} to {}: nobody may delete the store's objects{}",
+        path.display(),
+        if named.is_empty() {
+            String::new()
+        } else {
+            format!(
+                "; {} given their roles' actions",
+                super::text::plural(named.len() as u64, "principal", "principals")
+            )
+        }
+    )?;
+    writeln!(
+        out,
+        "next: install it as the bucket's owner (S3 PutBucketPolicy); the server then refuses what a key's role does not allow"
+    )?;
+    Ok(())
 }

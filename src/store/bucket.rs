@@ -128,6 +128,17 @@ impl Place {
     fn key(&self, h: &Hash) -> String {
         format!("{}objects/{}", self.prefix, h.hex())
     }
+
+    /// The bucket's name.
+    pub fn bucket_name(&self) -> &str {
+        self.bucket.name()
+    }
+
+    /// The folder inside the bucket the store's objects are under (`objects/` in it), with its
+    /// trailing slash; empty for the bucket's top.
+    pub fn prefix(&self) -> &str {
+        &self.prefix
+    }
 }
 
 /// The HTTP side: signed requests and what the bucket answered.
@@ -954,6 +965,54 @@ impl ObjectBackend for BucketBackend {
 
     fn size(&self, hash: &Hash) -> io::Result<u64> {
         Ok(self.inner.table(hash)?.total)
+    }
+
+    fn confirm_present(&self, hashes: &[Hash]) -> io::Result<Vec<Hash>> {
+        let inner = &self.inner;
+        let mut gone = Vec::new();
+        for h in hashes {
+            let relied_on = inner
+                .present
+                .lock()
+                .unwrap_or_else(|p| p.into_inner())
+                .contains(h);
+            // Only what this process uploaded or found (a recomputable version's objects are
+            // named but never stored); asked of the server again, not of the cache.
+            if relied_on && inner.client.head(&inner.key(h))?.is_none() {
+                inner
+                    .present
+                    .lock()
+                    .unwrap_or_else(|p| p.into_inner())
+                    .remove(h);
+                gone.push(*h);
+            }
+        }
+        Ok(gone)
+    }
+
+    fn remove_unreferenced(&self, live: &HashSet<Hash>) -> io::Result<(u64, u64)> {
+        let inner = &self.inner;
+        let prefix = format!("{}objects/", inner.client.place.prefix);
+        let (mut n, mut bytes) = (0, 0);
+        for (key, size) in inner.client.list(&prefix)? {
+            let name = key.strip_prefix(&prefix).unwrap_or(&key);
+            // Names that are not hashes are not sluice's: left for `verify` to name.
+            let Ok(h) = name.parse::<Hash>() else {
+                continue;
+            };
+            if h.hex() != name || live.contains(&h) {
+                continue;
+            }
+            inner.client.delete(&key)?;
+            inner
+                .present
+                .lock()
+                .unwrap_or_else(|p| p.into_inner())
+                .remove(&h);
+            n += 1;
+            bytes += size;
+        }
+        Ok((n, bytes))
     }
 
     fn list(&self) -> io::Result<(Vec<Hash>, Vec<PathBuf>)> {

@@ -165,6 +165,7 @@ impl Lineage {
         let mut t = Tx {
             db: self.db.as_ref(),
             journal: Vec::new(),
+            objects: Vec::new(),
         };
         let out = f(&mut t);
         let out = match out {
@@ -853,6 +854,9 @@ pub struct NewVersion<'a> {
 pub struct Tx<'c> {
     pub(super) db: &'c dyn Database,
     journal: Vec<Selector>,
+    /// The objects this transaction names (`insert_object`), for the check that they are
+    /// still where the store keeps them before it commits.
+    objects: Vec<String>,
 }
 
 impl Tx<'_> {
@@ -967,7 +971,13 @@ impl Tx<'_> {
             vals![hash, n_bytes as i64, kind, at],
         )?;
         self.wrote("objects", "hash", Key::Text(hash.to_string()));
+        self.objects.push(hash.to_string());
         Ok(())
+    }
+
+    /// The objects this transaction has named so far.
+    pub fn objects_named(&self) -> &[String] {
+        &self.objects
     }
 
     pub fn latest_version_hash(&self, dataset: &str) -> Result<Option<String>> {

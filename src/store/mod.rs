@@ -72,6 +72,19 @@ pub const LEGACY_STORE_DIR: &str = ".sluice";
 pub const DB_FILE: &str = "lineage.db";
 
 /// An open store.
+/// How many of a shared store's objects a joining folder looks for ([`Store::set_up`]).
+pub const JOIN_SAMPLE: usize = 3;
+
+/// What `setup` did with the lineage it was given.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum SetUp {
+    /// A new store, its creation the first audit entry.
+    Made,
+    /// The folder joined the store already on the server (which holds `entries` audit
+    /// entries); nothing was recorded.
+    Joined { entries: usize },
+}
+
 pub struct Store {
     dir: PathBuf,
     pub objects: Objects,
@@ -139,6 +152,16 @@ impl Store {
         agent: &crate::model::Agent,
         at: &location::Location,
     ) -> Result<Store> {
+        Store::set_up(project, agent, at).map(|(store, _)| store)
+    }
+
+    /// [`Store::init_recorded_at`], saying whether the folder started a new store or joined
+    /// the shared store already on the server (see [`SetUp`]).
+    pub fn set_up(
+        project: &Path,
+        agent: &crate::model::Agent,
+        at: &location::Location,
+    ) -> Result<(Store, SetUp)> {
         if let Some(url) = &at.objects {
             bucket::check_reachable(url).map_err(|e| Error::io(Path::new(url), e))?;
         }
@@ -157,7 +180,7 @@ impl Store {
             }
             .write(&dir)?;
         }
-        let made = Store::init_recorded_with(project, at.lineage.as_deref(), agent);
+        let made = Store::init_recorded_how(project, at.lineage.as_deref(), agent);
         if made.is_err() && created {
             // A refused server (a password in its connection string, a wrong address) leaves
             // nothing behind.
@@ -178,9 +201,19 @@ impl Store {
         lineage: Option<&str>,
         agent: &crate::model::Agent,
     ) -> Result<Store> {
+        Store::init_recorded_how(project, lineage, agent).map(|(store, _)| store)
+    }
+
+    fn init_recorded_how(
+        project: &Path,
+        lineage: Option<&str>,
+        agent: &crate::model::Agent,
+    ) -> Result<(Store, SetUp)> {
         let mut store = Store::init_with(project, lineage)?;
-        if !store.lineage.audit_entries()?.is_empty() {
-            return Ok(store);
+        let entries = store.lineage.audit_entries()?.len();
+        if entries > 0 {
+            store.check_joined_objects()?;
+            return Ok((store, SetUp::Joined { entries }));
         }
         let at = crate::clock::now_rfc3339();
         let dir = store.dir.display().to_string();
@@ -193,7 +226,40 @@ impl Store {
                 &at,
             )
         })?;
-        Ok(store)
+        Ok((store, SetUp::Made))
+    }
+
+    /// A folder joining a shared store must read its objects where the store's other folders
+    /// wrote them: some of the objects the lineage records as stored (up to
+    /// [`JOIN_SAMPLE`] of them) must be found through this folder's own location, or the
+    /// join is refused, naming where the folder looked.
+    fn check_joined_objects(&self) -> Result<()> {
+        let unstored = self.lineage.unstored_objects()?;
+        let sample: Vec<String> = self
+            .lineage
+            .objects()?
+            .into_iter()
+            .map(|(hash, _, _)| hash)
+            .filter(|h| !unstored.contains(h))
+            .take(JOIN_SAMPLE)
+            .collect();
+        let found = sample
+            .iter()
+            .filter_map(|h| h.parse::<crate::hash::Hash>().ok())
+            .any(|h| self.objects.exists(&h));
+        if sample.is_empty() || found {
+            return Ok(());
+        }
+        let place = location::Location::read(&self.dir)?
+            .objects
+            .unwrap_or_else(|| self.dir.join(segments::SEGMENTS_DIR).display().to_string());
+        Err(ErrorKind::Usage(format!(
+            "the shared store on {} keeps its objects elsewhere: none of its objects (such as {}) is in {place}; \
+             set up this folder with the bucket its other folders name (\"objects\" in their sluice-store/location.json, given as --object-bucket URL)",
+            self.lineage.describe(),
+            sample[0]
+        ))
+        .into())
     }
 
     /// Opens the store whose folder is `dir` (the `sluice-store` folder itself, or a project
@@ -303,6 +369,11 @@ impl Store {
         .into())
     }
 
+    /// The bucket URL the store keeps its objects in (`location.json`), when it does.
+    pub fn objects_bucket(&self) -> Result<Option<String>> {
+        Ok(location::Location::read(&self.dir)?.objects)
+    }
+
     /// Whether the store keeps `v`'s bytes (and row index), as recorded: the one answer to
     /// "is this version's content stored?". A version recorded as recomputable whose bytes
     /// are identical to a stored version's counts as stored. Its bytes can still be read when
@@ -381,7 +452,16 @@ impl Store {
     /// commands left in `tmp/` ([`Store::sweep_tmp`]).
     pub fn write<T>(&mut self, f: impl FnOnce(&mut Tx<'_>) -> Result<T>) -> Result<T> {
         self.sweep_tmp();
-        self.lineage.write(f)
+        let objects = &self.objects;
+        self.lineage.write(|tx| {
+            let out = f(tx)?;
+            // Last, inside the transaction and so in the writers' order: the objects it names
+            // that this process found or put in a shared place are still there, and `reclaim`
+            // (which removes only inside a write transaction of its own) cannot remove them
+            // before this one commits.
+            objects.confirm_present(tx.objects_named())?;
+            Ok(out)
+        })
     }
 
     /// Removes the temporary files and folders of commands that are no longer running: every

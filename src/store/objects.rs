@@ -85,6 +85,22 @@ pub trait ObjectBackend: Send + Sync {
     fn hold_exclusively(&self) -> io::Result<()> {
         self.hold_for_writing()
     }
+    /// Of `hashes` (the objects a write transaction is about to name), those this process
+    /// relied on finding in a place other machines also write to, and that are gone from it
+    /// now. Asked inside the transaction: `reclaim` removes objects only inside a write
+    /// transaction of its own, so one found here stays until this one commits. The store's own
+    /// segments need no check (the writers' lock keeps `reclaim` out while a command writes).
+    fn confirm_present(&self, hashes: &[Hash]) -> io::Result<Vec<Hash>> {
+        let _ = hashes;
+        Ok(Vec::new())
+    }
+    /// Removes the objects of a place other machines also write to that are not in `live`,
+    /// for `reclaim` (inside its write transaction): (objects removed, their stored bytes).
+    /// The store's own segments are reclaimed by [`FsBackend::reclaim`] instead.
+    fn remove_unreferenced(&self, live: &HashSet<Hash>) -> io::Result<(u64, u64)> {
+        let _ = live;
+        Ok((0, 0))
+    }
     /// Publishes every object of a finished segment file (a stage's); the default copies
     /// them through `create_temp`.
     fn adopt_segment(&self, path: &Path) -> io::Result<()> {
@@ -100,6 +116,9 @@ pub struct Countdown {
     at: u64,
     stop: bool,
     seen: AtomicU64,
+    /// When set, only the points of this name count (`upload`: each request that sends an
+    /// object's bytes to a bucket, a multipart upload's parts and completion included).
+    only: Option<String>,
 }
 
 /// The exit status of a process stopped by a [`Countdown`].
@@ -111,6 +130,15 @@ impl Countdown {
             at,
             stop,
             seen: AtomicU64::new(0),
+            only: None,
+        }
+    }
+
+    /// A countdown of the points named `what` only.
+    pub fn of(at: u64, stop: bool, what: &str) -> Countdown {
+        Countdown {
+            only: Some(what.to_string()),
+            ..Countdown::new(at, stop)
         }
     }
 
@@ -120,6 +148,9 @@ impl Countdown {
     }
 
     pub fn tick(&self, what: &str) -> io::Result<()> {
+        if self.only.as_deref().is_some_and(|o| o != what) {
+            return Ok(());
+        }
         let n = self.seen.fetch_add(1, Ordering::SeqCst) + 1;
         if n != self.at {
             return Ok(());
@@ -215,6 +246,10 @@ pub struct Reclaimed {
     pub objects_removed: u64,
     pub loose_converted: u64,
     pub temp_files_removed: u64,
+    /// Objects nothing refers to removed from the bucket the store keeps its objects in, and
+    /// their stored (compressed) bytes; 0 for a store whose objects are in its folder.
+    pub bucket_objects_removed: u64,
+    pub bucket_bytes_removed: u64,
 }
 
 /// Segments smaller than this are packed together by `reclaim` even when all they hold is
@@ -1079,6 +1114,29 @@ impl Objects {
     /// when every object it wrote is referenced by a committed transaction.
     pub fn release_writing(&self) {
         self.backend.release_writing();
+    }
+
+    /// Checks, inside a write transaction, that the objects it names (`named`, hex) which
+    /// this process found or put in a place other machines also write to are still there
+    /// ([`ObjectBackend::confirm_present`]); the first one gone is named, and the transaction
+    /// is rolled back.
+    pub fn confirm_present(&self, named: &[String]) -> Result<()> {
+        let hashes: Vec<Hash> = named.iter().filter_map(|h| h.parse().ok()).collect();
+        let gone = self.backend.confirm_present(&hashes).map_err(|e| {
+            let at = hashes
+                .first()
+                .map_or_else(PathBuf::new, |h| self.backend.describe(h));
+            crate::Error::io(&at, e)
+        })?;
+        match gone.first() {
+            None => Ok(()),
+            Some(h) => Err(ErrorKind::Data(format!(
+                "the object {} this command relied on was removed ({}) before its step was recorded, by `sluice reclaim` on another machine; nothing was recorded: run the command again",
+                h.hex(),
+                self.backend.describe(h).display()
+            ))
+            .into()),
+        }
     }
 
     /// Stops computing missing objects: the scratch folder of the ones computed goes now.

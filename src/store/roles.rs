@@ -2,7 +2,9 @@
 //! reading, recording, signing and administering, each a group role with grants on the
 //! lineage tables (and row-level security on the sign-offs), so that a modified client can do
 //! no more than its login's roles allow. Nobody gets UPDATE or DELETE on the audit log, and a
-//! trigger (in the schema) refuses them and TRUNCATE even to the tables' owner.
+//! trigger (in the schema) refuses them and TRUNCATE even to the tables' owner. The objects'
+//! half: the bucket policy (AWS policy language) that gives each role its S3 actions on the
+//! store's objects and denies everyone their deletion.
 
 use super::backend::{Kind, Value};
 use super::Store;
@@ -127,4 +129,100 @@ pub fn of(store: &Store, login: &str) -> Result<Vec<String>> {
         }
     }
     Ok(out)
+}
+
+/// The S3 actions each role needs on the store's objects: reading only reads (every role
+/// reads), recording also uploads (a multipart upload's parts and its abort included).
+const READ_ACTIONS: &[&str] = &["s3:GetObject"];
+const LIST_ACTIONS: &[&str] = &["s3:ListBucket"];
+const RECORD_ACTIONS: &[&str] = &[
+    "s3:PutObject",
+    "s3:AbortMultipartUpload",
+    "s3:ListMultipartUploadParts",
+];
+/// Denied to every principal on the store's objects, whatever else grants it.
+const DELETE_ACTIONS: &[&str] = &["s3:DeleteObject", "s3:DeleteObjectVersion"];
+
+/// The bucket policy (AWS policy language, version 2012-10-17) for the store whose objects are
+/// at the bucket URL `url`: nobody may delete an object under the store's folder in the bucket
+/// (an explicit deny, which no grant overrides); each principal named for a role may read the
+/// objects and list the bucket; those named for recording may also upload; every other named
+/// principal is explicitly denied uploads, so a key that the server's own user settings let
+/// write still cannot write here. `principals` pairs a role (one of [`ROLES`]) with an AWS
+/// principal: an ARN (`arn:aws:iam::ACCOUNT:user/NAME`) or an account id.
+pub fn bucket_policy(url: &str, principals: &[(String, String)]) -> Result<serde_json::Value> {
+    use serde_json::json;
+    let place = super::bucket::Place::parse(url)
+        .map_err(|e| crate::Error::from(ErrorKind::Usage(e.to_string())))?;
+    for (role, who) in principals {
+        server_role(role)?;
+        let account = who.len() == 12 && who.bytes().all(|b| b.is_ascii_digit());
+        if !(who.starts_with("arn:") || account) {
+            return Err(ErrorKind::Usage(format!(
+                "{who:?} is not an AWS principal; name it as an ARN (arn:aws:iam::ACCOUNT:user/NAME) or a 12-digit account id"
+            ))
+            .into());
+        }
+    }
+    let named = |roles: &[&str]| -> Vec<&str> {
+        let mut v: Vec<&str> = principals
+            .iter()
+            .filter(|(r, _)| roles.contains(&r.as_str()))
+            .map(|(_, w)| w.as_str())
+            .collect();
+        v.sort_unstable();
+        v.dedup();
+        v
+    };
+    let everyone = named(&["reading", "recording", "signing", "administering"]);
+    let recorders = named(&["recording"]);
+    let not_recording: Vec<&str> = everyone
+        .iter()
+        .copied()
+        .filter(|w| !recorders.contains(w))
+        .collect();
+    let bucket_arn = format!("arn:aws:s3:::{}", place.bucket_name());
+    let objects_arn = format!("{bucket_arn}/{}*", place.prefix());
+    let mut statements = vec![json!({
+        "Sid": "SluiceObjectsAreNeverDeleted",
+        "Effect": "Deny",
+        "Principal": "*",
+        "Action": DELETE_ACTIONS,
+        "Resource": [objects_arn],
+    })];
+    if !everyone.is_empty() {
+        statements.push(json!({
+            "Sid": "SluiceEveryRoleReads",
+            "Effect": "Allow",
+            "Principal": { "AWS": everyone },
+            "Action": READ_ACTIONS,
+            "Resource": [objects_arn],
+        }));
+        statements.push(json!({
+            "Sid": "SluiceEveryRoleLists",
+            "Effect": "Allow",
+            "Principal": { "AWS": everyone },
+            "Action": LIST_ACTIONS,
+            "Resource": [bucket_arn],
+        }));
+    }
+    if !recorders.is_empty() {
+        statements.push(json!({
+            "Sid": "SluiceRecordingUploads",
+            "Effect": "Allow",
+            "Principal": { "AWS": recorders },
+            "Action": RECORD_ACTIONS,
+            "Resource": [objects_arn],
+        }));
+    }
+    if !not_recording.is_empty() {
+        statements.push(json!({
+            "Sid": "SluiceOnlyRecordingUploads",
+            "Effect": "Deny",
+            "Principal": { "AWS": not_recording },
+            "Action": RECORD_ACTIONS,
+            "Resource": [objects_arn],
+        }));
+    }
+    Ok(json!({ "Version": "2012-10-17", "Statement": statements }))
 }

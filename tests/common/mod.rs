@@ -356,3 +356,25 @@ pub fn copy_dir(from: &Path, to: &Path) {
         }
     }
 }
+
+/// How `value` fails the output schema `schema/output/NAME.schema.json` (JSON Schema draft
+/// 2020-12, checked by the `jsonschema` crate): empty when it matches. For the `--json`
+/// outputs of commands that need a server (publish, borrow, transfer), checked in their own
+/// tests; tests/json_output.rs checks the others on the demo.
+pub fn schema_errors(name: &str, value: &serde_json::Value) -> Vec<String> {
+    let path = Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("schema/output")
+        .join(format!("{name}.schema.json"));
+    let text = std::fs::read_to_string(&path).unwrap_or_else(|e| {
+        panic!(
+            "{}: {e}; every --json output needs a schema",
+            path.display()
+        )
+    });
+    let schema: serde_json::Value = serde_json::from_str(&text).expect("the schema is JSON");
+    let v = jsonschema::draft202012::new(&schema)
+        .unwrap_or_else(|e| panic!("{} is not a valid schema: {e}", path.display()));
+    v.iter_errors(value)
+        .map(|e| format!("{e} at {}", e.instance_path()))
+        .collect()
+}
