@@ -1,6 +1,7 @@
 //! Several sluice processes writing one store at once: writers wait for each other (SQLite busy
 //! timeout, one write transaction per command), so no step is lost, version numbers stay
-//! gap-free and the audit chain stays intact.
+//! gap-free and the audit chain stays intact; and a writer whose object another machine's
+//! `reclaim` removed before its commit records nothing.
 
 mod common;
 
@@ -188,4 +189,82 @@ fn twelve_writers_ingesting_and_applying_while_a_reader_verifies() {
         "concurrency: 12 writer processes (20 commands) at once, {steps} steps, {entries} audit entries, \
          all present; {reads} verify runs while they worked, all intact"
     );
+}
+
+/// Objects kept where other machines also write (a bucket): a writer whose object was removed
+/// (by `reclaim` on another machine) between its upload and its commit records nothing. The
+/// removal is played by an object backend around the real one that reports, when the write
+/// transaction asks before committing, the first object it names as gone; the engine must
+/// roll the step back (no version, no audit entry) and say to run the command again, and the
+/// same intake through the real backend then records the version.
+#[test]
+fn a_writer_whose_object_vanished_before_its_commit_records_nothing() {
+    use sluice::hash::Hash;
+    use sluice::intake::{self, IngestOptions, IngestOutcome};
+    use sluice::model::Agent;
+    use sluice::store::objects::{FsBackend, ObjectBackend, TempObject};
+    use sluice::store::Store;
+    use std::io::{self, Read};
+    use std::path::PathBuf;
+
+    struct Vanishing(FsBackend);
+    impl ObjectBackend for Vanishing {
+        fn create_temp(&self) -> io::Result<Box<dyn TempObject>> {
+            self.0.create_temp()
+        }
+        fn open(&self, hash: &Hash) -> io::Result<Box<dyn Read + Send>> {
+            self.0.open(hash)
+        }
+        fn exists(&self, hash: &Hash) -> bool {
+            self.0.exists(hash)
+        }
+        fn size(&self, hash: &Hash) -> io::Result<u64> {
+            self.0.size(hash)
+        }
+        fn list(&self) -> io::Result<(Vec<Hash>, Vec<PathBuf>)> {
+            self.0.list()
+        }
+        fn describe(&self, hash: &Hash) -> PathBuf {
+            self.0.describe(hash)
+        }
+        fn confirm_present(&self, hashes: &[Hash]) -> io::Result<Vec<Hash>> {
+            Ok(hashes.iter().take(1).copied().collect())
+        }
+    }
+
+    let s = Sandbox::with_store();
+    s.file("orders.csv", "order_id,shop\nQ-1,Quillby Cycle Mend\n");
+    let dir = s.path().join("sluice-store");
+    let options = IngestOptions {
+        dataset: "orders".into(),
+        key: None,
+        reason: Some("the depot's export".into()),
+        delimiter: None,
+        has_header: true,
+        encoding: None,
+        null_tokens: vec![],
+        agent: Agent::new("Test Runner", Some("runner@example.org"), "option"),
+    };
+    let audit_before = Store::open(&dir)
+        .unwrap()
+        .lineage
+        .audit_entries()
+        .unwrap()
+        .len();
+    let mut store =
+        Store::open_with_backend(&dir, Box::new(Vanishing(FsBackend::new(&dir)))).unwrap();
+    let err = match intake::ingest(&mut store, &s.path().join("orders.csv"), &options) {
+        Err(e) => e.to_string(),
+        Ok(_) => panic!("a step naming a vanished object was recorded"),
+    };
+    drop(store);
+    assert_contains(&err, "run the command again");
+    let store = Store::open(&dir).unwrap();
+    assert!(store.lineage.versions_of("orders").unwrap().is_empty());
+    assert_eq!(store.lineage.audit_entries().unwrap().len(), audit_before);
+    drop(store);
+    let mut store = Store::open(&dir).unwrap();
+    let done = intake::ingest(&mut store, &s.path().join("orders.csv"), &options).unwrap();
+    assert!(matches!(done, IngestOutcome::Recorded { .. }));
+    assert_contains(&s.ok(&["verify"]), "intact");
 }
