@@ -38,6 +38,10 @@ pub struct NotFollowed {
 pub struct Reach {
     pub versions: Vec<Reached>,
     pub not_followed: Vec<NotFollowed>,
+    /// Reached versions (`NAME:vN`) whose column profiles an earlier build recorded without
+    /// a salt, so that their audit entries' digests still let a guess of an erased extreme be
+    /// confirmed (filled by [`super::survey`]).
+    pub profiles_committed_unsalted: Vec<String>,
 }
 
 impl Reach {
