@@ -1304,3 +1304,75 @@ fn a_guessed_extreme_of_an_erased_column_is_confirmable_from_no_digest_in_the_st
         );
     }
 }
+
+/// A store recorded by an earlier build (`tests/fixtures/store_v5`, schema 5: its audit entries
+/// committed to the profiles without a salt) keeps that gap: the dry run and the order name
+/// the versions and rows, the rows are committed to anew so that `verify` stays clean, and a
+/// second order on the same versions works there too.
+#[test]
+fn an_old_store_names_its_unsalted_profiles_and_takes_two_orders() {
+    let s = Sandbox::new();
+    let fixture = std::path::Path::new(concat!(
+        env!("CARGO_MANIFEST_DIR"),
+        "/tests/fixtures/store_v5"
+    ));
+    common::copy_dir(fixture, s.path());
+    let order = |key: &str, carry: bool| {
+        let mut args = vec![
+            "erase",
+            "orders:v1",
+            "--key",
+            key,
+            "--request",
+            "request 2026-140",
+            "--json",
+        ];
+        if carry {
+            args.push("--carry-out");
+        }
+        s.json(&args)
+    };
+    let rows = ["wo-1,", "wo-3,"];
+    assert_eq!(
+        find_these_everywhere(&s.path().join("sluice-store"), &rows).len(),
+        2 * 4,
+        "both rows in each of the four stored order versions"
+    );
+    // WO-1 holds the smallest order number of the raw version.
+    let dry = order("order_id=WO-1", false);
+    let named: Vec<&str> = dry["profiles_committed_unsalted"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|v| v.as_str().unwrap())
+        .collect();
+    assert!(named.contains(&"orders:v1"), "{dry:#}");
+    let text = s.ok(&[
+        "erase",
+        "orders:v1",
+        "--key",
+        "order_id=WO-1",
+        "--request",
+        "request 2026-140",
+    ]);
+    assert_contains(&text, "column profiles recorded by an earlier sluice");
+    let done = order("order_id=WO-1", true);
+    assert_schema("erase", &done);
+    assert!(
+        done["carried_out"]["committed_the_old_way"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .any(|r| r == "column_profiles 1"),
+        "{done:#}"
+    );
+    let report = s.json(&["verify", "--json"]);
+    assert_eq!(report["intact"], true, "{report:#}");
+    let done = order("order_id=WO-3", true);
+    assert_eq!(done["carried_out"]["order"], 2);
+    let report = s.json(&["verify", "--json"]);
+    assert_eq!(report["intact"], true, "{report:#}");
+    assert_eq!(report["erasure_orders"].as_array().unwrap().len(), 2);
+    let found = find_these_everywhere(&s.path().join("sluice-store"), &rows);
+    assert!(found.is_empty(), "{found:?}");
+}
