@@ -1376,3 +1376,86 @@ fn an_old_store_names_its_unsalted_profiles_and_takes_two_orders() {
     let found = find_these_everywhere(&s.path().join("sluice-store"), &rows);
     assert!(found.is_empty(), "{found:?}");
 }
+
+/// The same file received as two datasets is one stored object: an order on one reaches the
+/// other's cells, and what was derived from it, and erases them all. A version that only has
+/// the same row index as a reached one (rows of the same lengths, other values) is refused,
+/// with the store unchanged.
+#[test]
+fn a_copy_received_twice_is_erased_with_the_original_and_a_shared_row_index_is_refused() {
+    let s = Sandbox::with_store();
+    let file = "member,email,town\n\
+                Aaron Abbotsley,aaron.abbotsley@example.org,Quillby\n\
+                Zora Quennell,zora.quennell@example.org,Oxwater\n";
+    s.file("members.csv", file);
+    s.file("copy.csv", file);
+    s.ok(&["receive", "members.csv", "--as", "members"]);
+    s.ok(&["receive", "copy.csv", "--as", "ledger"]);
+    s.ok(&[
+        "clean",
+        "ledger",
+        "drop",
+        "town = 'Quillby'",
+        "--why",
+        "Oxwater's ledger only",
+    ]);
+    let done = s.json(&[
+        "erase",
+        "members:v1",
+        "--key",
+        "member=Zora Quennell",
+        "--request",
+        "request 2026-141",
+        "--carry-out",
+        "--json",
+    ]);
+    let erased: BTreeMap<String, u64> = done["carried_out"]["versions"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|v| {
+            (
+                v["version"].as_str().unwrap().to_string(),
+                v["cells_erased"].as_u64().unwrap(),
+            )
+        })
+        .collect();
+    assert_eq!(
+        erased,
+        BTreeMap::from([
+            ("members:v1".to_string(), 3),
+            ("ledger:v1".to_string(), 3),
+            ("ledger:v2".to_string(), 3),
+        ])
+    );
+    let found = find_these_everywhere(
+        &s.path().join("sluice-store"),
+        &["zora quennell", "zora.quennell@example.org"],
+    );
+    assert!(found.is_empty(), "{found:?}");
+    let report = s.json(&["verify", "--json"]);
+    assert_eq!(report["intact"], true, "{report:#}");
+    assert_eq!(report["erasure_orders"][0]["versions_proved"], 3);
+    assert_contains(&s.ok(&["retrieve", "ledger:v1"]), "Aaron Abbotsley");
+
+    // Other values, rows of the same lengths: one row index object for two versions.
+    s.file("a.csv", "code\nAB1\nCD2\n");
+    s.file("b.csv", "code\nXY9\nZW8\n");
+    s.ok(&["receive", "a.csv", "--as", "codes"]);
+    s.ok(&["receive", "b.csv", "--as", "other_codes"]);
+    let before = s.snapshot();
+    let msg = s.fails(
+        2,
+        &[
+            "erase",
+            "codes:v1",
+            "--cell",
+            "1:code",
+            "--request",
+            "request 2026-142",
+            "--carry-out",
+        ],
+    );
+    assert_contains(&msg, "has the same row index as other_codes:v1");
+    assert_eq!(s.snapshot(), before, "a refused order changes nothing");
+}

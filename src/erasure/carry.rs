@@ -271,11 +271,32 @@ fn check_erasable(store: &Store, reach: &Reach) -> Result<()> {
         }
         for w in &all {
             if reached.contains(&w.id) {
+                // Versions with the same bytes (the walk reaches each with the same cells)
+                // share one erased form, so they must lose the same cells.
+                if w.id != v.id && w.hash == v.hash {
+                    let twin = reach.versions.iter().find(|x| x.version.id == w.id);
+                    if twin.is_some_and(|x| x.erased != r.erased) {
+                        return Err(ErrorKind::Internal(format!(
+                            "{} and {} hold the same bytes but the order reaches different cells of them",
+                            v.label(),
+                            w.label()
+                        ))
+                        .into());
+                    }
+                }
                 continue;
             }
-            if w.hash == v.hash || w.row_index == v.row_index {
+            if w.hash == v.hash {
+                return Err(ErrorKind::Internal(format!(
+                    "{} holds the bytes of {}, which the walk did not reach",
+                    w.label(),
+                    v.label()
+                ))
+                .into());
+            }
+            if w.row_index == v.row_index {
                 return Err(refuse(format!(
-                    "{} shares its stored bytes or row index with {}, which the order does not reach; erasing one of two versions that share an object is not supported yet",
+                    "{} has the same row index as {}, which the order does not reach (their rows have the same lengths); the store reads a row index by its name, so writing one of them anew would move the other's rows: not supported",
                     v.label(),
                     w.label()
                 )));
