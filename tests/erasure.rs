@@ -761,6 +761,12 @@ fn a_second_order_on_versions_an_earlier_one_reached_erases_a_second_person_and_
     assert_contains(&md, "erasure order 1");
     assert_contains(&md, "erasure order 2");
     assert!(!md.to_lowercase().contains("elska halley"));
+    // Reproducing names both orders and the cells they took between them.
+    let msg = s.fails(1, &["reproduce", "q3_by_shop"]);
+    assert_contains(
+        &msg,
+        "step 1: the quillby_orders:v1 it received lost 20 cells under erasure orders 1, 2",
+    );
 
     // The earlier order's salts are gone: no salt the store holds gives a leaf it keeps
     // for either person's cells from a right guess.

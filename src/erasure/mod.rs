@@ -223,6 +223,7 @@ pub fn unreproducible(
     steps: impl IntoIterator<Item = i64>,
 ) -> Result<Vec<Unreproducible>> {
     let mut out = Vec::new();
+    let erased = store.lineage.erased_versions()?;
     for id in steps {
         let mut read: Vec<Version> = store
             .lineage
@@ -238,25 +239,30 @@ pub fn unreproducible(
             read.extend(store.lineage.step_outputs(id)?);
         }
         for v in read {
-            if let Some(e) = store.lineage.erasure_of_version(v.id)? {
-                let what = if received { "received" } else { "read" };
-                out.push(Unreproducible {
-                    step: id,
-                    version: v.label(),
-                    order: e.order_id,
-                    why: format!(
-                        "the {} it {what} lost {} under erasure order {}; its recorded bytes exist nowhere now",
-                        v.label(),
-                        if e.n_erased == 1 {
-                            "1 cell".to_string()
-                        } else {
-                            format!("{} cells", e.n_erased)
-                        },
-                        e.order_id
-                    ),
-                });
-                break;
-            }
+            let orders: Vec<_> = erased.iter().filter(|e| e.version_id == v.id).collect();
+            let Some(last) = orders.last() else {
+                continue;
+            };
+            let n: u64 = orders.iter().map(|e| e.n_erased).sum();
+            let what = if received { "received" } else { "read" };
+            let numbers: Vec<String> = orders.iter().map(|e| e.order_id.to_string()).collect();
+            out.push(Unreproducible {
+                step: id,
+                version: v.label(),
+                order: last.order_id,
+                why: format!(
+                    "the {} it {what} lost {} under erasure order{} {}; its recorded bytes exist nowhere now",
+                    v.label(),
+                    if n == 1 {
+                        "1 cell".to_string()
+                    } else {
+                        format!("{n} cells")
+                    },
+                    if numbers.len() == 1 { "" } else { "s" },
+                    numbers.join(", ")
+                ),
+            });
+            break;
         }
     }
     Ok(out)
