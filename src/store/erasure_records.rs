@@ -569,3 +569,30 @@ impl super::Store {
         Ok(done)
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::multiset_difference;
+
+    fn v(items: &[&str]) -> Vec<String> {
+        items.iter().map(|s| s.to_string()).collect()
+    }
+
+    /// Repeats count: what is taken out and put back restores the first list exactly.
+    #[test]
+    fn the_difference_of_two_sorted_lists_counts_repeats() {
+        let (a, b) = (v(&["a", "b", "b", "d"]), v(&["b", "c", "d", "d"]));
+        let (gone, came) = multiset_difference(&a, &b);
+        assert_eq!(gone, v(&["a", "b"]));
+        assert_eq!(came, v(&["c", "d"]));
+        let mut back = b.clone();
+        for c in &came {
+            let i = back.iter().position(|x| x == c).unwrap();
+            back.remove(i);
+        }
+        back.extend(gone);
+        back.sort();
+        assert_eq!(back, a);
+        assert_eq!(multiset_difference(&a, &a), (Vec::new(), Vec::new()));
+    }
+}
