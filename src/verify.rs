@@ -77,15 +77,17 @@ pub struct ErasureChecked {
 
 /// Every version an erasure order reached, proved from what the store keeps now: its stored
 /// form read (and hash-checked), each remaining cell's leaf computed from its value and its
-/// salt (the punctured salt tree), each erased cell's kept leaf taken in its place, and the
-/// root computed again must be the one recorded before the erasure; every erased cell must be
-/// empty in the stored form. A changed remaining cell, a moved cell, a changed kept leaf or a
-/// cell erased beyond the order gives a problem (kind "erasure") naming the version and order.
+/// salt (the punctured salt tree of the latest order that reached it), each erased cell's kept
+/// leaf taken in its place, and the root computed again must be the one recorded before the
+/// first erasure; every erased cell must be empty in the stored form. An earlier order's record
+/// of a version a later order erased more of must name the same root, and its kept leaves must
+/// be among the later one's (its salts were emptied then). A changed remaining cell, a moved
+/// cell, a changed kept leaf or a cell erased beyond the orders gives a problem (kind
+/// "erasure") naming the version and order.
 fn erasure_problems(
     store: &Store,
     versions: &[crate::model::Version],
 ) -> Result<(Vec<ErasureChecked>, Vec<Problem>)> {
-    use crate::commitment::{self, Committer, Salts};
     use std::collections::BTreeMap;
     let mut out = Vec::new();
     let mut problems = Vec::new();
@@ -94,6 +96,21 @@ fn erasure_problems(
         return Ok((out, problems));
     }
     let erased = store.lineage.erased_versions()?;
+    let mut chains: BTreeMap<i64, Vec<&crate::store::erasure_records::ErasedVersion>> =
+        BTreeMap::new();
+    for e in &erased {
+        chains.entry(e.version_id).or_default().push(e);
+    }
+    // The proof of each version from its latest record: Ok(kept leaves) or what is wrong.
+    let mut proofs: BTreeMap<i64, std::result::Result<KeptLeaves, String>> = BTreeMap::new();
+    for (id, chain) in &chains {
+        let Some(v) = versions.iter().find(|v| v.id == *id) else {
+            continue;
+        };
+        let Some(last) = chain.last() else { continue };
+        let total: u64 = chain.iter().map(|e| e.n_erased).sum();
+        proofs.insert(*id, prove_erased(store, v, last, total));
+    }
     for o in &orders {
         let mut checked = ErasureChecked {
             order: o.id,
@@ -113,68 +130,42 @@ fn erasure_problems(
                     format!("{detail} (erasure order {})", o.id),
                 ))
             };
-            let Some(salts) = Salts::from_bytes(&e.salts) else {
-                say("its kept salts are malformed".into());
-                continue;
-            };
-            if e.kept.len() % 40 != 0 || e.marked.len() % 8 != 0 {
-                say("its kept leaves are malformed".into());
-                continue;
-            }
-            let kept: BTreeMap<u64, commitment::Bytes32> = e
-                .kept
-                .chunks_exact(40)
-                .filter_map(|c| {
-                    let i = u64::from_le_bytes(c[..8].try_into().ok()?);
-                    let l: commitment::Bytes32 = c[8..].try_into().ok()?;
-                    Some((i, l))
-                })
-                .collect();
-            if kept.len() as u64 != e.n_erased {
-                say(format!(
-                    "{} erased cells are recorded, {} kept leaves",
-                    e.n_erased,
-                    kept.len()
-                ));
-                continue;
-            }
-            let n_cols = v.header.len() as u64;
-            let mut c = Committer::new(&salts, v.n_rows, n_cols, kept.clone());
-            let mut not_empty = None;
-            let read = store.objects.each_row(v, |row, r| {
-                let cells: Vec<&[u8]> = (0..r.len()).map(|i| r.field(i)).collect();
-                for (col, value) in cells.iter().enumerate() {
-                    let i = row * n_cols + col as u64;
-                    if kept.contains_key(&i) && !value.is_empty() && not_empty.is_none() {
-                        not_empty = Some((row, col));
+            let chain = &chains[&e.version_id];
+            let last = chain.last().map_or(e.order_id, |l| l.order_id);
+            match &proofs[&e.version_id] {
+                Err(why) => {
+                    // Said once, under the order whose record the proof used.
+                    if last == e.order_id {
+                        say(why.clone());
+                    }
+                    continue;
+                }
+                Ok(latest) if last != e.order_id => {
+                    let later = chain.last().map_or(0, |l| l.order_id);
+                    let Some(kept) = kept_leaves(&e.kept) else {
+                        say("its kept leaves are malformed".into());
+                        continue;
+                    };
+                    if chain.last().is_some_and(|l| l.root != e.root) {
+                        say(format!(
+                            "its recorded commitment differs from the one erasure order {later} recorded for the same version"
+                        ));
+                        continue;
+                    }
+                    if kept.iter().any(|(i, l)| latest.get(i) != Some(l)) {
+                        say(format!(
+                            "a leaf it kept is not among those erasure order {later} kept for the same version"
+                        ));
+                        continue;
+                    }
+                    if !e.salts.is_empty() {
+                        say(format!(
+                            "it still keeps salts that erasure order {later} punctured further"
+                        ));
+                        continue;
                     }
                 }
-                c.row(cells);
-                Ok(())
-            });
-            if let Err(err) = read {
-                say(format!("its erased form cannot be read: {err}"));
-                continue;
-            }
-            if let Some((row, col)) = not_empty {
-                say(format!(
-                    "row {} column {} is recorded as erased but holds a value",
-                    row + 1,
-                    v.header.get(col).map_or("?", |s| s.as_str())
-                ));
-            }
-            if let Some(i) = c.missing {
-                say(format!(
-                    "cell {} (row {}) has neither a salt nor a kept leaf",
-                    i,
-                    i / n_cols.max(1) + 1
-                ));
-                continue;
-            }
-            let root = commitment::hex(&c.finish().root(&v.header));
-            if root != e.root {
-                say("its remaining cells do not give the commitment recorded before the erasure: a remaining cell or a kept leaf was changed".into());
-                continue;
+                Ok(_) => {}
             }
             checked.versions_proved += 1;
             checked.cells_erased += e.n_erased;
@@ -182,6 +173,79 @@ fn erasure_problems(
         out.push(checked);
     }
     Ok((out, problems))
+}
+
+type KeptLeaves = std::collections::BTreeMap<u64, crate::commitment::Bytes32>;
+
+/// Each kept cell number (u64 LE) with its 32-byte leaf; `None` when malformed.
+fn kept_leaves(b: &[u8]) -> Option<KeptLeaves> {
+    if !b.len().is_multiple_of(40) {
+        return None;
+    }
+    b.chunks_exact(40)
+        .map(|c| {
+            let i = u64::from_le_bytes(c[..8].try_into().ok()?);
+            let l: crate::commitment::Bytes32 = c[8..].try_into().ok()?;
+            Some((i, l))
+        })
+        .collect()
+}
+
+/// Proves version `v` from its latest erasure record `e` (see [`erasure_problems`]), whose
+/// kept leaves must number `total`, the cells all its orders erased.
+fn prove_erased(
+    store: &Store,
+    v: &crate::model::Version,
+    e: &crate::store::erasure_records::ErasedVersion,
+    total: u64,
+) -> std::result::Result<KeptLeaves, String> {
+    use crate::commitment::{self, Committer, Salts};
+    let salts = Salts::from_bytes(&e.salts).ok_or("its kept salts are malformed")?;
+    if !e.marked.len().is_multiple_of(8) {
+        return Err("its kept leaves are malformed".into());
+    }
+    let kept = kept_leaves(&e.kept).ok_or("its kept leaves are malformed")?;
+    if kept.len() as u64 != total {
+        return Err(format!(
+            "{total} erased cells are recorded, {} kept leaves",
+            kept.len()
+        ));
+    }
+    let n_cols = v.header.len() as u64;
+    let mut c = Committer::new(&salts, v.n_rows, n_cols, kept.clone());
+    let mut not_empty = None;
+    store
+        .objects
+        .each_row(v, |row, r| {
+            let cells: Vec<&[u8]> = (0..r.len()).map(|i| r.field(i)).collect();
+            for (col, value) in cells.iter().enumerate() {
+                let i = row * n_cols + col as u64;
+                if kept.contains_key(&i) && !value.is_empty() && not_empty.is_none() {
+                    not_empty = Some((row, col));
+                }
+            }
+            c.row(cells);
+            Ok(())
+        })
+        .map_err(|err| format!("its erased form cannot be read: {err}"))?;
+    if let Some((row, col)) = not_empty {
+        return Err(format!(
+            "row {} column {} is recorded as erased but holds a value",
+            row + 1,
+            v.header.get(col).map_or("?", |s| s.as_str())
+        ));
+    }
+    if let Some(i) = c.missing {
+        return Err(format!(
+            "cell {} (row {}) has neither a salt nor a kept leaf",
+            i,
+            i / n_cols.max(1) + 1
+        ));
+    }
+    if commitment::hex(&c.finish().root(&v.header)) != e.root {
+        return Err("its remaining cells do not give the commitment recorded before the erasure: a remaining cell or a kept leaf was changed".into());
+    }
+    Ok(kept)
 }
 
 fn problem(kind: &str, subject: impl Into<String>, detail: impl Into<String>) -> Problem {
@@ -800,7 +864,9 @@ struct RowCheck {
 fn row_commitments(store: &Store, entries: &[crate::model::AuditEntry]) -> Result<RowCheck> {
     use std::collections::{BTreeMap, HashMap, HashSet};
     let mut out = Vec::new();
-    let mut latest: BTreeMap<audit::Selector, (u64, String, u64, String)> = BTreeMap::new();
+    let mut latest: BTreeMap<audit::Selector, (u64, String, u64, String, u64)> = BTreeMap::new();
+    // What erasures overwrote, by the entry that says so (see `Overwritten`).
+    let mut overwritten: Vec<(u64, crate::store::erasure_records::Overwritten)> = Vec::new();
     let mut legacy_entries = 0u64;
     let mut first_committed: Option<serde_json::Value> = None;
     for e in entries {
@@ -823,8 +889,23 @@ fn row_commitments(store: &Store, entries: &[crate::model::AuditEntry]) -> Resul
         if first_committed.is_none() {
             first_committed = Some(details.clone());
         }
+        if let Some(list) = details.get("overwritten").and_then(|o| o.as_array()) {
+            for o in list {
+                match serde_json::from_value(o.clone()) {
+                    Ok(w) => overwritten.push((e.seq, w)),
+                    Err(_) => out.push(problem(
+                        "audit",
+                        format!("audit entry {}", e.seq),
+                        format!(
+                            "audit entry {}: names overwritten rows in a form sluice never writes ({o})",
+                            e.seq
+                        ),
+                    )),
+                }
+            }
+        }
         for r in rows {
-            let Some((sel, n, digest)) = audit::Selector::from_json(r) else {
+            let Some((sel, n, digest, form)) = audit::Selector::from_json(r) else {
                 out.push(problem(
                     "audit",
                     format!("audit entry {}", e.seq),
@@ -837,7 +918,13 @@ fn row_commitments(store: &Store, entries: &[crate::model::AuditEntry]) -> Resul
             };
             latest.insert(
                 sel,
-                (e.seq, format!("{} {}", e.action, e.subject), n, digest),
+                (
+                    e.seq,
+                    format!("{} {}", e.action, e.subject),
+                    n,
+                    digest,
+                    form,
+                ),
             );
         }
     }
@@ -861,7 +948,8 @@ fn row_commitments(store: &Store, entries: &[crate::model::AuditEntry]) -> Resul
     }
     let mut covered: HashMap<&str, HashSet<i64>> = HashMap::new();
     let mut unreadable: HashSet<&str> = HashSet::new();
-    for (sel, (seq, what, n, digest)) in &latest {
+    overwritten.sort_by_key(|w| std::cmp::Reverse(w.0));
+    for (sel, (seq, what, n, digest, form)) in &latest {
         let rows = match store.lineage.selected_rows(sel) {
             Ok(rows) => rows,
             Err(e) => {
@@ -878,7 +966,12 @@ fn row_commitments(store: &Store, entries: &[crate::model::AuditEntry]) -> Resul
                 continue;
             }
         };
-        if audit::rows_digest(sel, &rows) != *digest {
+        let now = if *form == 1 {
+            audit::rows_digest(sel, &rows)
+        } else {
+            audit::leaves_digest(sel, &as_committed(sel, *seq, &rows, &overwritten))
+        };
+        if now != *digest {
             out.push(problem(
                 "audit_mismatch",
                 format!("{} {}", sel.table, describe_range(sel)),
@@ -963,6 +1056,37 @@ fn row_commitments(store: &Store, entries: &[crate::model::AuditEntry]) -> Resul
         legacy_entries,
         legacy_rows,
     })
+}
+
+/// The leaves of a selector's rows as the entry `seq` committed to them: each row's leaf now,
+/// with every later erasure's overwriting undone, latest first (`overwritten` is sorted so):
+/// the leaves it left in place are taken out, and the ones it kept from before put back.
+fn as_committed(
+    sel: &audit::Selector,
+    seq: u64,
+    rows: &[(i64, Vec<u8>)],
+    overwritten: &[(u64, crate::store::erasure_records::Overwritten)],
+) -> Vec<[u8; 32]> {
+    let mut leaves: Vec<[u8; 32]> = rows.iter().map(|(_, e)| audit::row_leaf(e)).collect();
+    for (at, w) in overwritten {
+        if *at <= seq || w.table != sel.table || !sel.covers(w.key) {
+            continue;
+        }
+        for a in &w.after {
+            let Some(a) = crate::commitment::from_hex(a) else {
+                continue;
+            };
+            if let Some(i) = leaves.iter().position(|l| *l == a) {
+                leaves.swap_remove(i);
+            }
+        }
+        leaves.extend(
+            w.before
+                .iter()
+                .filter_map(|b| crate::commitment::from_hex(b)),
+        );
+    }
+    leaves
 }
 
 fn describe_range(sel: &audit::Selector) -> String {

@@ -290,15 +290,34 @@ const NEEDLES: &[&str] = &["rosalind yarlstow", "rosalind.yarlstow@example.org"]
 /// magic number 0xFD2FB528, little-endian), and each needle as UTF-16LE too. The search is
 /// ASCII-case-insensitive and does not use sluice's own readers.
 fn find_everywhere(dir: &std::path::Path) -> Vec<String> {
-    fn lower(b: &[u8]) -> Vec<u8> {
-        b.to_ascii_lowercase()
-    }
+    find_these_everywhere(dir, NEEDLES)
+}
+
+/// [`find_everywhere`] for other needles (lower-case).
+fn find_these_everywhere(dir: &std::path::Path, these: &[&str]) -> Vec<String> {
     let mut needles: Vec<(String, Vec<u8>)> = Vec::new();
-    for n in NEEDLES {
+    for n in these {
         needles.push((n.to_string(), n.as_bytes().to_vec()));
         let utf16: Vec<u8> = n.encode_utf16().flat_map(|u| u.to_le_bytes()).collect();
         needles.push((format!("{n} (UTF-16LE)"), utf16));
     }
+    search_files(dir, &needles, true)
+}
+
+/// Every place under `dir` where one of `needles` occurs in a file's bytes or in a Zstandard
+/// frame decoded from it; `fold_case` compares ASCII-case-insensitively (needles lower-case).
+fn search_files(
+    dir: &std::path::Path,
+    needles: &[(String, Vec<u8>)],
+    fold_case: bool,
+) -> Vec<String> {
+    let lower = |b: &[u8]| -> Vec<u8> {
+        if fold_case {
+            b.to_ascii_lowercase()
+        } else {
+            b.to_vec()
+        }
+    };
     let hit = |hay: &[u8], n: &[u8]| hay.windows(n.len()).any(|w| w == n);
     let mut found = Vec::new();
     let mut todo = vec![dir.to_path_buf()];
@@ -311,7 +330,7 @@ fn find_everywhere(dir: &std::path::Path) -> Vec<String> {
             }
             let bytes = std::fs::read(&p).unwrap();
             let low = lower(&bytes);
-            for (name, n) in &needles {
+            for (name, n) in needles {
                 if hit(&low, n) {
                     found.push(format!("{name} in {}", p.display()));
                 }
@@ -330,7 +349,7 @@ fn find_everywhere(dir: &std::path::Path) -> Vec<String> {
                     continue;
                 }
                 let low = lower(&out);
-                for (name, n) in &needles {
+                for (name, n) in needles {
                     if hit(&low, n) {
                         found.push(format!(
                             "{name} in the frame at byte {at} of {}",
@@ -576,6 +595,248 @@ fn carrying_out_an_order_erases_one_person_everywhere_and_keeps_the_proof_of_the
     );
 }
 
+/// A second person of the same export, erased by a second order.
+const SECOND_ORDER: &[&str] = &[
+    "erase",
+    "quillby_orders:v1",
+    "--where",
+    "email = 'elska.halley@example.org'",
+    "--request",
+    "request 2026-133 (GDPR Art. 17), filed by the cooperative's data-protection officer",
+];
+const SECOND: &[&str] = &["elska halley", "elska.halley@example.org"];
+
+/// Admits a signatory (a key made by OpenSSH's ssh-keygen) and signs `version` off.
+fn sign_off(s: &Sandbox, version: &str) {
+    let key = s.path().join("ada");
+    let st = std::process::Command::new("ssh-keygen")
+        .args(["-q", "-t", "ed25519", "-N", "", "-C", "ada", "-f"])
+        .arg(&key)
+        .status()
+        .expect("ssh-keygen runs (Debian: apt-get install openssh-client; tests/run installs it)");
+    assert!(st.success());
+    s.ok(&[
+        "signatories",
+        "--admit",
+        "ada.pub",
+        "--name",
+        "Ada Moss",
+        "--signing-key",
+        "ada",
+    ]);
+    s.ok(&[
+        "endorse",
+        version,
+        "--meaning",
+        "approved",
+        "--signing-key",
+        "ada",
+        "-o",
+        "approved.endorsement",
+    ]);
+}
+
+#[test]
+fn a_second_order_on_versions_an_earlier_one_reached_erases_a_second_person_and_both_are_proved() {
+    let s = Sandbox::with_demo();
+    let store_dir = s.path().join("sluice-store");
+    sign_off(&s, "reviewed_orders:v2");
+
+    // Elska Halley (one order, her name and address nowhere else in the export; demo
+    // generator, seed fixed) and what an independent walk of the row maps reaches from her row.
+    let raw = csv_rows(&s, "quillby_orders:v1");
+    let start: Vec<u64> = raw
+        .iter()
+        .enumerate()
+        .filter(|(_, r)| r["email"] == "elska.halley@example.org")
+        .map(|(i, _)| i as u64)
+        .collect();
+    assert_eq!(start.len(), 1);
+    let rosalind: Vec<u64> = raw
+        .iter()
+        .enumerate()
+        .filter(|(_, r)| r["email"] == "rosalind.yarlstow@example.org")
+        .map(|(i, _)| i as u64)
+        .collect();
+    let (want_erased, want_marked) = independent_walk(&s, "quillby_orders:v1", &start);
+    let widths: BTreeMap<String, usize> = want_erased
+        .keys()
+        .map(|l| (l.clone(), csv_rows(&s, l)[0].len()))
+        .collect();
+    assert!(!find_these_everywhere(&store_dir, SECOND).is_empty());
+
+    // The first order: Rosalind Yarlstow.
+    let mut args = CARRY.to_vec();
+    args.extend(["--carry-out", "--json"]);
+    let first = s.json(&args);
+    assert_eq!(first["carried_out"]["order"], 1);
+
+    // A dry run lists only cells not erased already: her row's address is not listed again,
+    // and an order naming only her erased cell names nothing new.
+    let survey = s.json(&[
+        "erase",
+        "quillby_orders:v1",
+        "--column",
+        "email",
+        "--request",
+        "a look at what a column order would reach",
+        "--json",
+    ]);
+    let raw_entry = &survey["versions"][0];
+    assert_eq!(raw_entry["version"], "quillby_orders:v1");
+    let listed = rows_of(&raw_entry["erased"]);
+    assert_eq!(listed.len(), raw.len() - rosalind.len());
+    assert!(rosalind.iter().all(|r| !listed.contains(r)));
+    let cell = format!("{}:email", rosalind[0] + 1);
+    let again = s.run(&[
+        "erase",
+        "quillby_orders:v1",
+        "--cell",
+        &cell,
+        "--request",
+        "the same cell again",
+    ]);
+    assert_ne!(again.code, 0);
+    assert_contains(&again.stderr, "erased already by an earlier erasure order");
+
+    // The second order: Elska Halley, on versions the first reached.
+    let mut args = SECOND_ORDER.to_vec();
+    args.extend(["--carry-out", "--json"]);
+    let second = s.json(&args);
+    assert_schema("erase", &second);
+    let carried = &second["carried_out"];
+    assert_eq!(carried["order"], 2);
+    let labels = |j: &Value| -> BTreeMap<String, Value> {
+        j["carried_out"]["versions"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|v| (v["version"].as_str().unwrap().to_string(), v.clone()))
+            .collect()
+    };
+    let (by_first, by_second) = (labels(&first), labels(&second));
+    let both: Vec<&String> = by_second
+        .keys()
+        .filter(|l| by_first.contains_key(*l))
+        .collect();
+    assert!(both.len() > 3, "the orders share versions: {both:?}");
+    for (label, rows) in &want_erased {
+        let v = by_second
+            .get(label)
+            .unwrap_or_else(|| panic!("{label} not erased"));
+        assert_eq!(
+            v["cells_erased"].as_u64().unwrap(),
+            (rows.len() * widths[label]) as u64,
+            "{label}"
+        );
+    }
+    for label in want_marked.keys() {
+        let marked = |m: &BTreeMap<String, Value>| {
+            m.get(label)
+                .is_some_and(|v| v["cells_kept_unrecomputable"].as_u64().unwrap() > 0)
+        };
+        assert!(marked(&by_second) || marked(&by_first), "{label}");
+    }
+
+    // Both people's bytes are gone from every file under the store.
+    let mut needles = NEEDLES.to_vec();
+    needles.extend(SECOND);
+    let found = find_these_everywhere(&store_dir, &needles);
+    assert!(found.is_empty(), "still in the store: {found:?}");
+
+    // verify proves both orders and names them; the sign-off made before still verifies.
+    let report = s.json(&["verify", "--json"]);
+    assert_eq!(report["intact"], true, "{report:#}");
+    assert_schema("verify", &report);
+    let orders = report["erasure_orders"].as_array().unwrap();
+    assert_eq!(orders.len(), 2);
+    assert_eq!(orders[0]["versions_proved"], by_first.len() as u64);
+    assert_eq!(orders[1]["versions_proved"], by_second.len() as u64);
+    let text = s.ok(&["verify", "--endorsement", "approved.endorsement"]);
+    assert_contains(&text, "erasure order 1 (request 2026-121");
+    assert_contains(&text, "erasure order 2 (request 2026-133");
+    // The report of a version both reached names both orders.
+    s.ok(&["report", both[both.len() - 1], "-o", "after.md"]);
+    let md = std::fs::read_to_string(s.path().join("after.md")).unwrap();
+    assert_contains(&md, "erasure order 1");
+    assert_contains(&md, "erasure order 2");
+    assert!(!md.to_lowercase().contains("elska halley"));
+    // Reproducing names both orders and the cells they took between them.
+    let msg = s.fails(1, &["reproduce", "q3_by_shop"]);
+    assert_contains(
+        &msg,
+        "step 1: the quillby_orders:v1 it received lost 20 cells under erasure orders 1, 2",
+    );
+
+    // The earlier order's salts are gone: no salt the store holds gives a leaf it keeps
+    // for either person's cells from a right guess.
+    let store = Store::open(&store_dir).unwrap();
+    let guesses: [&[u8]; 4] = [
+        b"Elska Halley",
+        b"elska.halley@example.org",
+        b"Rosalind Yarlstow",
+        b"rosalind.yarlstow@example.org",
+    ];
+    for e in store.lineage.erased_versions().unwrap() {
+        let v = store.lineage.version_by_id(e.version_id).unwrap().unwrap();
+        let Some(salts) = sluice::commitment::Salts::from_bytes(&e.salts) else {
+            panic!("{}: malformed salts", v.label());
+        };
+        if by_second.contains_key(&v.label()) && e.order_id == 1 {
+            assert!(e.salts.is_empty(), "{}: order 1 keeps its salts", v.label());
+        }
+        let kept: BTreeSet<[u8; 32]> = e
+            .kept
+            .chunks_exact(40)
+            .map(|c| c[8..].try_into().unwrap())
+            .collect();
+        for cell in 0..v.n_rows * v.header.len() as u64 {
+            let Some(salt) = salts.salt(cell) else {
+                continue;
+            };
+            for g in guesses {
+                assert!(!kept.contains(&sluice::commitment::leaf(&salt, g)));
+            }
+        }
+    }
+
+    // A remaining cell changed in the stored form of a version both orders reached is seen.
+    let raw_v = sluice::refs::resolve(&store.lineage, "quillby_orders:v1").unwrap();
+    let own: sluice::hash::Hash = raw_v.hash.parse().unwrap();
+    let text = String::from_utf8(store.objects.read_all(&own).unwrap()).unwrap();
+    let tampered = text.replacen("Zelda Gilmore", "Zelda Gilmorf", 1);
+    assert_ne!(tampered, text);
+    let mut w = store.objects.writer().unwrap();
+    w.write(tampered.as_bytes()).unwrap();
+    let (h, n) = w.finish().unwrap();
+    drop(store);
+    let db = rusqlite::Connection::open(store_dir.join("lineage.db")).unwrap();
+    db.execute(
+        "INSERT INTO objects (hash, n_bytes, kind, created_at) VALUES (?1, ?2, 'table', '2026-12-03T00:00:00Z')",
+        rusqlite::params![h.hex(), n as i64],
+    )
+    .unwrap();
+    db.execute(
+        "UPDATE erased_versions SET stored_hash = ?1 WHERE version_id = ?2 AND order_id = 2",
+        rusqlite::params![h.hex(), raw_v.id],
+    )
+    .unwrap();
+    drop(db);
+    let report = s.run(&["verify", "--json"]);
+    assert_eq!(report.code, 1);
+    let report: Value = serde_json::from_str(&report.stdout).unwrap();
+    assert!(
+        report["problems"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .any(|p| p["kind"] == "erasure"
+                && p["subject"] == "quillby_orders:v1"
+                && p["detail"].as_str().unwrap().contains("commitment")),
+        "{report:#}"
+    );
+}
+
 /// `sluice ARGS` in folder `dir`, stopped at I/O point `n` of its object writes when given
 /// (`SLUICE_TEST_IO_POINT=stop:N`, read by debug builds: the process ends there at once, as
 /// if killed; see tests/crash.rs). Returns whether it exited 0.
@@ -599,11 +860,31 @@ fn an_erasure_killed_at_any_io_point_leaves_the_store_as_it_was_or_is_finished_o
     let base = Sandbox::with_demo();
     let mut args = CARRY.to_vec();
     args.push("--carry-out");
+    stop_at_io_points(&base, &args, NEEDLES, 0);
+}
+
+#[test]
+fn a_second_order_killed_at_any_io_point_leaves_the_store_as_it_was_or_is_finished_on_the_next_open(
+) {
+    let base = Sandbox::with_demo();
+    let mut first = CARRY.to_vec();
+    first.push("--carry-out");
+    base.ok(&first);
+    let mut args = SECOND_ORDER.to_vec();
+    args.push("--carry-out");
+    stop_at_io_points(&base, &args, SECOND, 1);
+}
+
+/// Runs `args` (an erasure carried out) on copies of `base` stopped at I/O points of its
+/// object writes (a spread of them, and the last ones, those of the removal after the
+/// transaction): each time the next command finds the store intact, and either no new order
+/// is recorded and `needles` are still in the store, or it is and they are nowhere.
+fn stop_at_io_points(base: &Sandbox, args: &[&str], needles: &[&str], orders_before: usize) {
     // The number of I/O points of an unstopped erasure: the first point a run passes.
     let passes = |n: u64| {
         let dir = tempfile::tempdir().unwrap();
         common::copy_dir(base.path(), dir.path());
-        sluice_in(dir.path(), &args, Some(n))
+        sluice_in(dir.path(), args, Some(n))
     };
     let mut hi = 1;
     while !passes(hi) {
@@ -629,7 +910,7 @@ fn an_erasure_killed_at_any_io_point_leaves_the_store_as_it_was_or_is_finished_o
         let dir = tempfile::tempdir().unwrap();
         common::copy_dir(base.path(), dir.path());
         assert!(
-            !sluice_in(dir.path(), &args, Some(n)),
+            !sluice_in(dir.path(), args, Some(n)),
             "stopped at point {n}"
         );
         // The next command that opens the store finds it intact, whichever way it went.
@@ -641,14 +922,546 @@ fn an_erasure_killed_at_any_io_point_leaves_the_store_as_it_was_or_is_finished_o
             .unwrap();
         let report: Value = serde_json::from_slice(&out.stdout).unwrap();
         assert_eq!(report["intact"], true, "stopped at point {n}: {report:#}");
-        let found = find_everywhere(&dir.path().join("sluice-store"));
-        if report["erasure_orders"].as_array().unwrap().is_empty() {
+        let found = find_these_everywhere(&dir.path().join("sluice-store"), needles);
+        let orders = report["erasure_orders"].as_array().unwrap().len();
+        if orders == orders_before {
             assert!(!found.is_empty(), "point {n}: no order, yet nothing found");
             as_it_was += 1;
         } else {
+            assert_eq!(orders, orders_before + 1);
             assert!(found.is_empty(), "point {n}: recorded, yet {found:?}");
             finished += 1;
         }
     }
     assert!(as_it_was > 0 && finished > 0, "{as_it_was} and {finished}");
+}
+
+// ---- a guess not confirmable from the database ---------------------------------------------
+
+/// A row's canonical encoding as DEVELOPERS.md ("Row commitments") defines it, written here
+/// from that text: its non-NULL columns sorted by name, each as the name's length (u64 LE) and
+/// bytes, a type tag (1 integer, 2 real, 3 text, 4 blob) and the value.
+fn encode_row(cols: &BTreeMap<String, rusqlite::types::Value>) -> Vec<u8> {
+    use rusqlite::types::Value as V;
+    let mut out = Vec::new();
+    for (name, v) in cols {
+        if *v == V::Null || name == "rowid" {
+            continue;
+        }
+        out.extend((name.len() as u64).to_le_bytes());
+        out.extend(name.as_bytes());
+        match v {
+            V::Integer(i) => {
+                out.push(1);
+                out.extend(i.to_le_bytes());
+            }
+            V::Real(f) => {
+                out.push(2);
+                out.extend(f.to_bits().to_le_bytes());
+            }
+            V::Text(t) => {
+                out.push(3);
+                out.extend((t.len() as u64).to_le_bytes());
+                out.extend(t.as_bytes());
+            }
+            V::Blob(b) => {
+                out.push(4);
+                out.extend((b.len() as u64).to_le_bytes());
+                out.extend(b);
+            }
+            V::Null => {}
+        }
+    }
+    out
+}
+
+/// The selector part of both digest forms: table, column and an integer range.
+fn selector_bytes(h: &mut blake3::Hasher, table: &str, by: &str, from: i64, to: i64) {
+    for name in [table, by] {
+        h.update(&(name.len() as u64).to_le_bytes());
+        h.update(name.as_bytes());
+    }
+    for k in [from, to] {
+        h.update(&[1]);
+        h.update(&k.to_le_bytes());
+    }
+}
+
+/// Form 1 (DEVELOPERS.md): BLAKE3 over `sluice-rows-v1`, the selector and the encodings in
+/// byte order, each with its length.
+fn digest_form_1(table: &str, by: &str, from: i64, to: i64, rows: &[Vec<u8>]) -> String {
+    let mut rows = rows.to_vec();
+    rows.sort();
+    let mut h = blake3::Hasher::new();
+    h.update(b"sluice-rows-v1");
+    selector_bytes(&mut h, table, by, from, to);
+    h.update(&(rows.len() as u64).to_le_bytes());
+    for r in &rows {
+        h.update(&(r.len() as u64).to_le_bytes());
+        h.update(r);
+    }
+    h.finalize().to_hex().to_string()
+}
+
+/// A row's leaf in form 2: BLAKE3 over `sluice-row-v2` and its encoding.
+fn row_leaf(encoded: &[u8]) -> [u8; 32] {
+    let mut h = blake3::Hasher::new();
+    h.update(b"sluice-row-v2");
+    h.update(encoded);
+    *h.finalize().as_bytes()
+}
+
+/// Form 2: BLAKE3 over `sluice-rows-v2`, the selector, the count and the leaves in byte order.
+fn digest_form_2(table: &str, by: &str, from: i64, to: i64, leaves: &[[u8; 32]]) -> String {
+    let mut leaves = leaves.to_vec();
+    leaves.sort();
+    let mut h = blake3::Hasher::new();
+    h.update(b"sluice-rows-v2");
+    selector_bytes(&mut h, table, by, from, to);
+    h.update(&(leaves.len() as u64).to_le_bytes());
+    for l in &leaves {
+        h.update(l);
+    }
+    h.finalize().to_hex().to_string()
+}
+
+fn hex(b: &[u8]) -> String {
+    b.iter().map(|x| format!("{x:02x}")).collect()
+}
+
+/// Every digest-like value the database holds: each run of 64 hexadecimal digits in any text
+/// of any table (the audit entries' details among them), and every 32-byte window of any blob,
+/// as hex.
+fn digests_in(db: &rusqlite::Connection) -> BTreeSet<String> {
+    let tables: Vec<String> = db
+        .prepare("SELECT name FROM sqlite_master WHERE type = 'table'")
+        .unwrap()
+        .query_map([], |r| r.get(0))
+        .unwrap()
+        .map(|t| t.unwrap())
+        .collect();
+    let mut out = BTreeSet::new();
+    for t in tables {
+        let mut st = db.prepare(&format!("SELECT * FROM \"{t}\"")).unwrap();
+        let n = st.column_count();
+        let mut rows = st.query([]).unwrap();
+        while let Some(r) = rows.next().unwrap() {
+            for i in 0..n {
+                match r.get::<_, rusqlite::types::Value>(i).unwrap() {
+                    rusqlite::types::Value::Text(text) => {
+                        let b = text.as_bytes();
+                        let mut run = 0;
+                        for (j, c) in b.iter().enumerate() {
+                            run = if c.is_ascii_hexdigit() { run + 1 } else { 0 };
+                            if run >= 64 {
+                                out.insert(text[j + 1 - 64..=j].to_ascii_lowercase());
+                            }
+                        }
+                    }
+                    rusqlite::types::Value::Blob(b) => {
+                        for w in b.windows(32) {
+                            out.insert(hex(w));
+                        }
+                    }
+                    _ => {}
+                }
+            }
+        }
+    }
+    out
+}
+
+/// The profile rows of a version, column name -> value.
+fn profile_rows(
+    db: &rusqlite::Connection,
+    version_id: i64,
+) -> Vec<BTreeMap<String, rusqlite::types::Value>> {
+    let mut st = db
+        .prepare("SELECT * FROM column_profiles WHERE version_id = ?1 ORDER BY col_idx")
+        .unwrap();
+    let names: Vec<String> = st.column_names().iter().map(|c| c.to_string()).collect();
+    st.query_map([version_id], |r| {
+        Ok(names
+            .iter()
+            .enumerate()
+            .map(|(i, n)| (n.clone(), r.get::<_, rusqlite::types::Value>(i).unwrap()))
+            .collect())
+    })
+    .unwrap()
+    .map(|r| r.unwrap())
+    .collect()
+}
+
+/// The range of the latest audit entry's selector of `column_profiles` that covers `version`.
+fn profile_selector(db: &rusqlite::Connection, version: i64) -> (i64, i64) {
+    let details: Vec<String> = db
+        .prepare("SELECT details FROM audit_log ORDER BY seq")
+        .unwrap()
+        .query_map([], |r| r.get(0))
+        .unwrap()
+        .map(|d| d.unwrap())
+        .collect();
+    let mut found = None;
+    for d in details {
+        let d: Value = serde_json::from_str(&d).unwrap();
+        for r in d["rows"].as_array().into_iter().flatten() {
+            let (from, to) = (r["from"].as_i64(), r["to"].as_i64());
+            if r["table"] == "column_profiles" {
+                if let (Some(a), Some(b)) = (from, to) {
+                    if a <= version && version <= b {
+                        found = Some((a, b));
+                    }
+                }
+            }
+        }
+    }
+    found.expect("an entry commits to the version's profile")
+}
+
+#[test]
+fn a_guessed_extreme_of_an_erased_column_is_confirmable_from_no_digest_in_the_store() {
+    // Zora Quennell is the largest member name and address and the fewest rides of the raw
+    // file (and of the version without Bea Lindqvist); Oxwater, her town, is the smallest
+    // town of both; the day she joined is neither the first nor the last.
+    let s = Sandbox::with_store();
+    s.file(
+        "members.csv",
+        "member,email,town,rides,joined\n\
+         Aaron Abbotsley,aaron.abbotsley@example.org,Quillby,14,2024-03-01\n\
+         Bea Lindqvist,bea.lindqvist@example.org,Oxwater,9,2023-05-10\n\
+         Carys Moreton,carys.moreton@example.org,Quillby,22,2025-01-20\n\
+         Zora Quennell,zora.quennell@example.org,Oxwater,5,2024-07-15\n",
+    );
+    s.ok(&["receive", "members.csv", "--as", "members"]);
+    s.ok(&[
+        "clean",
+        "members",
+        "drop",
+        "member = 'Bea Lindqvist'",
+        "--why",
+        "left the cooperative",
+    ]);
+    let store_dir = s.path().join("sluice-store");
+    let ids: Vec<i64> = {
+        let store = Store::open(&store_dir).unwrap();
+        ["members:v1", "members:v2"]
+            .iter()
+            .map(|r| sluice::refs::resolve(&store.lineage, r).unwrap().id)
+            .collect()
+    };
+    // Her values, guessed right (the row as it is now, with the extreme left out, is the
+    // erasure's own record of it, so a guess always fills the field).
+    let guesses: Vec<Option<&str>> = vec![
+        Some("Zora Quennell"),
+        Some("zora.quennell@example.org"),
+        Some("Oxwater"),
+        Some("5"),
+    ];
+
+    // Control: the encodings and digests written here from DEVELOPERS.md give, with the salts
+    // the store holds before the erasure, exactly the digests of the entries that recorded
+    // the profiles. So a miss afterwards is not a mistake of this test's arithmetic.
+    let db = rusqlite::Connection::open(store_dir.join("lineage.db")).unwrap();
+    let before = digests_in(&db);
+    let mut salts_before = Vec::new();
+    for &id in &ids {
+        let (from, to) = profile_selector(&db, id);
+        let leaves: Vec<[u8; 32]> = (from..=to)
+            .flat_map(|v| profile_rows(&db, v))
+            .map(|r| row_leaf(&encode_row(&r)))
+            .collect();
+        assert!(
+            before.contains(&digest_form_2(
+                "column_profiles",
+                "version_id",
+                from,
+                to,
+                &leaves
+            )),
+            "the test's digest of version {id}'s profile must be the store's"
+        );
+        for r in profile_rows(&db, id) {
+            let rusqlite::types::Value::Blob(salt) = &r["salt"] else {
+                panic!("a profile row recorded now has a salt: {r:?}");
+            };
+            salts_before.push((id, r["name"].clone(), salt.clone()));
+        }
+    }
+    drop(db);
+
+    s.ok(&[
+        "erase",
+        "members:v1",
+        "--key",
+        "member=Zora Quennell",
+        "--request",
+        "request 2026-130 (GDPR Art. 17)",
+        "--carry-out",
+    ]);
+    let report = s.json(&["verify", "--json"]);
+    assert_eq!(report["intact"], true, "{report:#}");
+
+    // Every profile row that held one of her values lost it and its salt; the salt is in no
+    // file under the store (decompressed frames searched too); other rows keep theirs.
+    let db = rusqlite::Connection::open(store_dir.join("lineage.db")).unwrap();
+    let mut purged = 0;
+    for (id, name, salt) in &salts_before {
+        let row = profile_rows(&db, *id)
+            .into_iter()
+            .find(|r| r["name"] == *name)
+            .unwrap();
+        let gone = row["min_value"] == rusqlite::types::Value::Null
+            || row["max_value"] == rusqlite::types::Value::Null;
+        let found = search_files(&store_dir, &[("salt".into(), salt.clone())], false);
+        if gone {
+            purged += 1;
+            assert_eq!(row["salt"], rusqlite::types::Value::Null, "{row:?}");
+            assert!(found.is_empty(), "{name:?} of {id}: {found:?}");
+        } else {
+            assert_eq!(row["salt"], rusqlite::types::Value::Blob(salt.clone()));
+        }
+    }
+    // member, email, town and rides in both versions.
+    assert_eq!(purged, 8, "{salts_before:?}");
+
+    // The guess, with every field the store still holds, gives no leaf and no digest (of
+    // either form) that the store keeps anywhere.
+    let after = digests_in(&db);
+    let mut tried = 0;
+    for &id in &ids {
+        let (from, to) = profile_selector(&db, id);
+        let rows: Vec<BTreeMap<String, rusqlite::types::Value>> =
+            (from..=to).flat_map(|v| profile_rows(&db, v)).collect();
+        for (k, row) in rows.iter().enumerate() {
+            if row["salt"] != rusqlite::types::Value::Null {
+                continue;
+            }
+            for min in &guesses {
+                for max in &guesses {
+                    let mut guessed = row.clone();
+                    let text = |g: &Option<&str>| {
+                        g.map_or(rusqlite::types::Value::Null, |t| {
+                            rusqlite::types::Value::Text(t.to_string())
+                        })
+                    };
+                    if row["min_value"] == rusqlite::types::Value::Null {
+                        guessed.insert("min_value".into(), text(min));
+                    }
+                    if row["max_value"] == rusqlite::types::Value::Null {
+                        guessed.insert("max_value".into(), text(max));
+                    }
+                    let enc = encode_row(&guessed);
+                    let leaf = row_leaf(&enc);
+                    let mut encs: Vec<Vec<u8>> = rows.iter().map(encode_row).collect();
+                    encs[k] = enc;
+                    let mut leaves: Vec<[u8; 32]> = encs.iter().map(|e| row_leaf(e)).collect();
+                    leaves[k] = leaf;
+                    for d in [
+                        hex(&leaf),
+                        hex(blake3::hash(&encs[k]).as_bytes()),
+                        digest_form_1("column_profiles", "version_id", from, to, &encs),
+                        digest_form_2("column_profiles", "version_id", from, to, &leaves),
+                    ] {
+                        assert!(!after.contains(&d), "{row:?} with {min:?}, {max:?}");
+                        tried += 1;
+                    }
+                }
+            }
+        }
+    }
+    assert!(tried >= 8 * 16 * 4, "{tried}");
+
+    // verify still holds every profile row that was not overwritten to the entry that first
+    // recorded it, and the overwritten ones to the erasure's record of them.
+    drop(db);
+    for (sql, what) in [
+        (
+            "UPDATE column_profiles SET n_blank = n_blank + 1 WHERE salt IS NOT NULL",
+            "a row kept whole",
+        ),
+        (
+            "UPDATE column_profiles SET max_len = max_len + 1 WHERE salt IS NULL AND col_idx = 0",
+            "an overwritten row",
+        ),
+    ] {
+        let copy = tempfile::tempdir().unwrap();
+        common::copy_dir(s.path(), copy.path());
+        let db = rusqlite::Connection::open(copy.path().join("sluice-store/lineage.db")).unwrap();
+        assert!(db.execute(sql, []).unwrap() > 0, "{what}");
+        drop(db);
+        let out = std::process::Command::new(env!("CARGO_BIN_EXE_sluice"))
+            .args(["verify", "--json"])
+            .current_dir(copy.path())
+            .env_remove("SLUICE_STORE")
+            .output()
+            .unwrap();
+        let r: Value = serde_json::from_slice(&out.stdout).unwrap();
+        assert!(
+            r["problems"]
+                .as_array()
+                .unwrap()
+                .iter()
+                .any(|p| p["kind"] == "audit_mismatch"
+                    && p["subject"]
+                        .as_str()
+                        .unwrap()
+                        .starts_with("column_profiles")),
+            "{what}: {r:#}"
+        );
+    }
+}
+
+/// A store recorded by an earlier build (`tests/fixtures/store_v5`, schema 5: its audit entries
+/// committed to the profiles without a salt) keeps that gap: the dry run and the order name
+/// the versions and rows, the rows are committed to anew so that `verify` stays clean, and a
+/// second order on the same versions works there too.
+#[test]
+fn an_old_store_names_its_unsalted_profiles_and_takes_two_orders() {
+    let s = Sandbox::new();
+    let fixture = std::path::Path::new(concat!(
+        env!("CARGO_MANIFEST_DIR"),
+        "/tests/fixtures/store_v5"
+    ));
+    common::copy_dir(fixture, s.path());
+    let order = |key: &str, carry: bool| {
+        let mut args = vec![
+            "erase",
+            "orders:v1",
+            "--key",
+            key,
+            "--request",
+            "request 2026-140",
+            "--json",
+        ];
+        if carry {
+            args.push("--carry-out");
+        }
+        s.json(&args)
+    };
+    let rows = ["wo-1,", "wo-3,"];
+    assert_eq!(
+        find_these_everywhere(&s.path().join("sluice-store"), &rows).len(),
+        2 * 4,
+        "both rows in each of the four stored order versions"
+    );
+    // WO-1 holds the smallest order number of the raw version.
+    let dry = order("order_id=WO-1", false);
+    let named: Vec<&str> = dry["profiles_committed_unsalted"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|v| v.as_str().unwrap())
+        .collect();
+    assert!(named.contains(&"orders:v1"), "{dry:#}");
+    let text = s.ok(&[
+        "erase",
+        "orders:v1",
+        "--key",
+        "order_id=WO-1",
+        "--request",
+        "request 2026-140",
+    ]);
+    assert_contains(&text, "column profiles recorded by an earlier sluice");
+    let done = order("order_id=WO-1", true);
+    assert_schema("erase", &done);
+    assert!(
+        done["carried_out"]["committed_the_old_way"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .any(|r| r == "column_profiles 1"),
+        "{done:#}"
+    );
+    let report = s.json(&["verify", "--json"]);
+    assert_eq!(report["intact"], true, "{report:#}");
+    let done = order("order_id=WO-3", true);
+    assert_eq!(done["carried_out"]["order"], 2);
+    let report = s.json(&["verify", "--json"]);
+    assert_eq!(report["intact"], true, "{report:#}");
+    assert_eq!(report["erasure_orders"].as_array().unwrap().len(), 2);
+    let found = find_these_everywhere(&s.path().join("sluice-store"), &rows);
+    assert!(found.is_empty(), "{found:?}");
+}
+
+/// The same file received as two datasets is one stored object: an order on one reaches the
+/// other's cells, and what was derived from it, and erases them all. A version that only has
+/// the same row index as a reached one (rows of the same lengths, other values) is refused,
+/// with the store unchanged.
+#[test]
+fn a_copy_received_twice_is_erased_with_the_original_and_a_shared_row_index_is_refused() {
+    let s = Sandbox::with_store();
+    let file = "member,email,town\n\
+                Aaron Abbotsley,aaron.abbotsley@example.org,Quillby\n\
+                Zora Quennell,zora.quennell@example.org,Oxwater\n";
+    s.file("members.csv", file);
+    s.file("copy.csv", file);
+    s.ok(&["receive", "members.csv", "--as", "members"]);
+    s.ok(&["receive", "copy.csv", "--as", "ledger"]);
+    s.ok(&[
+        "clean",
+        "ledger",
+        "drop",
+        "town = 'Quillby'",
+        "--why",
+        "Oxwater's ledger only",
+    ]);
+    let done = s.json(&[
+        "erase",
+        "members:v1",
+        "--key",
+        "member=Zora Quennell",
+        "--request",
+        "request 2026-141",
+        "--carry-out",
+        "--json",
+    ]);
+    let erased: BTreeMap<String, u64> = done["carried_out"]["versions"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|v| {
+            (
+                v["version"].as_str().unwrap().to_string(),
+                v["cells_erased"].as_u64().unwrap(),
+            )
+        })
+        .collect();
+    assert_eq!(
+        erased,
+        BTreeMap::from([
+            ("members:v1".to_string(), 3),
+            ("ledger:v1".to_string(), 3),
+            ("ledger:v2".to_string(), 3),
+        ])
+    );
+    let found = find_these_everywhere(
+        &s.path().join("sluice-store"),
+        &["zora quennell", "zora.quennell@example.org"],
+    );
+    assert!(found.is_empty(), "{found:?}");
+    let report = s.json(&["verify", "--json"]);
+    assert_eq!(report["intact"], true, "{report:#}");
+    assert_eq!(report["erasure_orders"][0]["versions_proved"], 3);
+    assert_contains(&s.ok(&["retrieve", "ledger:v1"]), "Aaron Abbotsley");
+
+    // Other values, rows of the same lengths: one row index object for two versions.
+    s.file("a.csv", "code\nAB1\nCD2\n");
+    s.file("b.csv", "code\nXY9\nZW8\n");
+    s.ok(&["receive", "a.csv", "--as", "codes"]);
+    s.ok(&["receive", "b.csv", "--as", "other_codes"]);
+    let before = s.snapshot();
+    let msg = s.fails(
+        2,
+        &[
+            "erase",
+            "codes:v1",
+            "--cell",
+            "1:code",
+            "--request",
+            "request 2026-142",
+            "--carry-out",
+        ],
+    );
+    assert_contains(&msg, "has the same row index as other_codes:v1");
+    assert_eq!(s.snapshot(), before, "a refused order changes nothing");
 }

@@ -46,6 +46,9 @@ struct SurveyJson<'a> {
     cells_erased: u64,
     versions: Vec<VersionJson<'a>>,
     not_followed: Vec<NotFollowedJson<'a>>,
+    /// Reached versions whose column profiles were committed to by an unsalted digest.
+    #[serde(skip_serializing_if = "<[String]>::is_empty")]
+    profiles_committed_unsalted: &'a [String],
 }
 
 fn target(a: &EraseArgs) -> anyhow::Result<Target> {
@@ -159,6 +162,7 @@ fn carried_text(
         "segments: {} before, {} after; the old bytes are gone from the store",
         done.removed.segments_before, done.removed.segments_after
     )?;
+    unsalted_lines(out, reach)?;
     if !reach.not_followed.is_empty() {
         writeln!(out)?;
         writeln!(
@@ -218,6 +222,7 @@ fn survey_json<'a>(order: &'a Order, reach: &'a Reach) -> SurveyJson<'a> {
                 why: &n.why,
             })
             .collect(),
+        profiles_committed_unsalted: &reach.profiles_committed_unsalted,
     }
 }
 
@@ -304,6 +309,7 @@ fn survey_text(out: &mut impl Write, order: &Order, reach: &Reach) -> std::io::R
             )?;
         }
     }
+    unsalted_lines(out, reach)?;
     if !reach.not_followed.is_empty() {
         writeln!(out)?;
         writeln!(
@@ -314,5 +320,20 @@ fn survey_text(out: &mut impl Write, order: &Order, reach: &Reach) -> std::io::R
             writeln!(out, "  step {} making {}: {}", n.step, n.version, n.why)?;
         }
     }
+    Ok(())
+}
+
+/// The reached versions whose column profiles were recorded by an earlier build, whose audit
+/// entries committed to them without a salt.
+fn unsalted_lines(out: &mut impl Write, reach: &Reach) -> std::io::Result<()> {
+    if reach.profiles_committed_unsalted.is_empty() {
+        return Ok(());
+    }
+    writeln!(out)?;
+    writeln!(
+        out,
+        "column profiles recorded by an earlier sluice, committed to without a salt: if an erased value was a column's smallest or largest, a guess of it with the profile's other fields can still be confirmed against the audit entry that recorded the version:"
+    )?;
+    writeln!(out, "  {}", reach.profiles_committed_unsalted.join(", "))?;
     Ok(())
 }

@@ -16,7 +16,7 @@ use crate::commitment::{self, Bytes32, Commitment, Salts, TreeHasher};
 use crate::error::{Error, ErrorKind, Result};
 use crate::hash::Hash;
 use crate::model::{Agent, Version};
-use crate::store::erasure_records::{ErasedVersion, NewOrder};
+use crate::store::erasure_records::{ErasedVersion, NewOrder, Purge};
 use crate::store::Store;
 use crate::table::rowindex;
 
@@ -44,6 +44,9 @@ pub struct Carried {
     pub versions: Vec<CarriedVersion>,
     /// Profile minima and maxima and cell notes that held erased values, overwritten.
     pub database_fields_overwritten: u64,
+    /// Rows overwritten that an earlier build committed to by an unsalted digest (table and
+    /// key): a guess of the value they held can still be confirmed against it.
+    pub committed_the_old_way: Vec<String>,
     /// Segment files rewritten without the old objects, and what the rebuild did.
     pub removed: crate::store::objects::Reclaimed,
 }
@@ -54,7 +57,13 @@ struct Prepared {
     recomputable: bool,
     root: Bytes32,
     salts: Salts,
+    /// Every erased cell's leaf, this order's and earlier orders' (in cell order).
     kept: Vec<(u64, Bytes32)>,
+    /// The cells this order erases.
+    n_new: u64,
+    /// The latest earlier order that reached the version, whose kept salts this one
+    /// supersedes.
+    previous: Option<i64>,
     marked: Vec<u64>,
     form_hash: Hash,
     form_bytes: u64,
@@ -125,7 +134,7 @@ pub fn carry_out(
     let names = names_record(order, &named);
     let raw = order.version.clone();
     let request = order.request.clone();
-    let (order_id, ordered_entry, erased_entry, overwritten) = store.write(|tx| {
+    let (order_id, ordered_entry, erased_entry, purge) = store.write(|tx| {
         for p in &prepared {
             tx.insert_object(&p.form_hash.hex(), p.form_bytes, "table", at)?;
             tx.insert_object(&p.index_hash.hex(), p.index_bytes, "row_index", at)?;
@@ -150,7 +159,7 @@ pub fn carry_out(
                     .flat_map(|(i, l)| i.to_le_bytes().into_iter().chain(l.iter().copied()))
                     .collect(),
                 marked: p.marked.iter().flat_map(|i| i.to_le_bytes()).collect(),
-                n_erased: p.kept.len() as u64,
+                n_erased: p.n_new,
                 stored_hash: p.form_hash.hex(),
                 stored_row_index: p.index_hash.hex(),
             })?;
@@ -162,7 +171,7 @@ pub fn carry_out(
                     "version": p.version.hash,
                     "subject": p.version.audit_subject(),
                     "root": commitment::hex(&p.root),
-                    "cells_erased": p.kept.len(),
+                    "cells_erased": p.n_new,
                     "cells_kept_unrecomputable": p.marked.len(),
                     "stored_form": p.form_hash.hex(),
                     "stored_row_index": p.index_hash.hex(),
@@ -183,9 +192,12 @@ pub fn carry_out(
             }),
             at,
         )?;
-        let mut overwritten = 0;
+        let mut purge = Purge::default();
         for p in &prepared {
-            overwritten += tx.purge_erased_values(p.version.id, &p.values, &p.cells)?;
+            tx.purge_erased_values(p.version.id, &p.values, &p.cells, &mut purge)?;
+            if let Some(earlier) = p.previous {
+                tx.supersede_salts(earlier, p.version.id, &mut purge)?;
+            }
         }
         let erased = tx.audit(
             agent,
@@ -194,12 +206,13 @@ pub fn carry_out(
             &json!({
                 "order": order_id,
                 "versions_rewritten": prepared.len(),
-                "cells_erased": prepared.iter().map(|p| p.kept.len()).sum::<usize>(),
-                "database_fields_overwritten": overwritten,
+                "cells_erased": prepared.iter().map(|p| p.n_new).sum::<u64>(),
+                "database_fields_overwritten": purge.fields,
+                "overwritten": purge.overwritten,
             }),
             at,
         )?;
-        Ok((order_id, ordered.seq, erased.seq, overwritten))
+        Ok((order_id, ordered.seq, erased.seq, purge))
     })?;
     let removed = store.remove_erased_bytes(agent, at)?;
     let versions = prepared
@@ -207,7 +220,7 @@ pub fn carry_out(
         .map(|p| CarriedVersion {
             version: p.version.label(),
             hash: p.version.hash.clone(),
-            cells_erased: p.kept.len() as u64,
+            cells_erased: p.n_new,
             cells_kept_unrecomputable: p.marked.len() as u64,
             was_recomputable: p.recomputable,
             root: commitment::hex(&p.root),
@@ -220,7 +233,12 @@ pub fn carry_out(
             ordered_entry,
             erased_entry,
             versions,
-            database_fields_overwritten: overwritten,
+            database_fields_overwritten: purge.fields,
+            committed_the_old_way: purge
+                .old_way
+                .iter()
+                .map(|(t, k)| format!("{t} {k}"))
+                .collect(),
             removed,
         },
     ))
@@ -232,12 +250,6 @@ fn check_erasable(store: &Store, reach: &Reach) -> Result<()> {
     let all = store.lineage.all_versions()?;
     for r in &reach.versions {
         let v = &r.version;
-        if store.lineage.erasure_of_version(v.id)?.is_some() {
-            return Err(refuse(format!(
-                "{} was reached by an earlier erasure order; a second order on the same version is not supported yet",
-                v.label()
-            )));
-        }
         if v.dialect
             .encoding
             .to_ascii_lowercase()
@@ -259,11 +271,32 @@ fn check_erasable(store: &Store, reach: &Reach) -> Result<()> {
         }
         for w in &all {
             if reached.contains(&w.id) {
+                // Versions with the same bytes (the walk reaches each with the same cells)
+                // share one erased form, so they must lose the same cells.
+                if w.id != v.id && w.hash == v.hash {
+                    let twin = reach.versions.iter().find(|x| x.version.id == w.id);
+                    if twin.is_some_and(|x| x.erased != r.erased) {
+                        return Err(ErrorKind::Internal(format!(
+                            "{} and {} hold the same bytes but the order reaches different cells of them",
+                            v.label(),
+                            w.label()
+                        ))
+                        .into());
+                    }
+                }
                 continue;
             }
-            if w.hash == v.hash || w.row_index == v.row_index {
+            if w.hash == v.hash {
+                return Err(ErrorKind::Internal(format!(
+                    "{} holds the bytes of {}, which the walk did not reach",
+                    w.label(),
+                    v.label()
+                ))
+                .into());
+            }
+            if w.row_index == v.row_index {
                 return Err(refuse(format!(
-                    "{} shares its stored bytes or row index with {}, which the order does not reach; erasing one of two versions that share an object is not supported yet",
+                    "{} has the same row index as {}, which the order does not reach (their rows have the same lengths); the store reads a row index by its name, so writing one of them anew would move the other's rows: not supported",
                     v.label(),
                     w.label()
                 )));
@@ -277,12 +310,41 @@ fn check_erasable(store: &Store, reach: &Reach) -> Result<()> {
 fn prepare(store: &Store, v: &Version, erased: &Cells, marked: &Cells) -> Result<Prepared> {
     let recomputable = !store.bytes_stored(v)?;
     let n_cols = v.header.len() as u64;
-    let seed =
-        commitment::random_seed().map_err(|e| Error::io(std::path::Path::new("getrandom"), e))?;
-    let salts = Salts::fresh(seed);
+    let previous = store.lineage.erasure_of_version(v.id)?;
+    let (salts, earlier, old_root) = match &previous {
+        None => {
+            let seed = commitment::random_seed()
+                .map_err(|e| Error::io(std::path::Path::new("getrandom"), e))?;
+            (Salts::fresh(seed), BTreeMap::new(), None)
+        }
+        Some(e) => {
+            let bad = || {
+                Error::from(ErrorKind::Inconsistent(format!(
+                    "the commitment erasure order {} recorded for {} is malformed; run `sluice verify`",
+                    e.order_id,
+                    v.label()
+                )))
+            };
+            let salts = Salts::from_bytes(&e.salts).ok_or_else(bad)?;
+            if e.kept.len() % 40 != 0 {
+                return Err(bad());
+            }
+            let kept: BTreeMap<u64, Bytes32> = e
+                .kept
+                .chunks_exact(40)
+                .filter_map(|c| {
+                    let i = u64::from_le_bytes(c[..8].try_into().ok()?);
+                    Some((i, c[8..].try_into().ok()?))
+                })
+                .collect();
+            (salts, kept, Some(e.root.clone()))
+        }
+    };
+    // Every cell's leaf: from its salt and value, or the leaf an earlier order kept.
     let mut stream = salts.stream(v.n_rows.saturating_mul(n_cols));
     let mut tree = TreeHasher::default();
     let mut kept = Vec::with_capacity(erased.len());
+    let mut missing = None;
     let mut values: BTreeMap<usize, BTreeSet<Vec<u8>>> = BTreeMap::new();
     store.objects.each_row(v, |row, r| {
         for c in 0..n_cols {
@@ -291,10 +353,18 @@ fn prepare(store: &Store, v: &Version, erased: &Cells, marked: &Cells) -> Result
             } else {
                 b""
             };
-            let salt = stream.next().flatten().unwrap_or([0u8; 32]);
-            let leaf = commitment::leaf(&salt, value);
-            if erased.contains(&(row, c as usize)) {
-                kept.push((row * n_cols + c, leaf));
+            let i = row * n_cols + c;
+            let salt = stream.next().flatten();
+            let leaf = match (earlier.get(&i), salt) {
+                (Some(l), _) => *l,
+                (None, Some(s)) => commitment::leaf(&s, value),
+                (None, None) => {
+                    missing.get_or_insert(i);
+                    [0u8; 32]
+                }
+            };
+            if erased.contains(&(row, c as usize)) && !earlier.contains_key(&i) {
+                kept.push((i, leaf));
                 values.entry(c as usize).or_default().insert(value.to_vec());
             }
             tree.push(leaf);
@@ -307,9 +377,25 @@ fn prepare(store: &Store, v: &Version, erased: &Cells, marked: &Cells) -> Result
         tree: tree.finish(),
     };
     let root = commitment.root(&v.header);
-    let erased_numbers: Vec<u64> = kept.iter().map(|(i, _)| *i).collect();
-    let punctured = salts.puncture(&erased_numbers);
+    if let (Some(e), Some(recorded)) = (&previous, &old_root) {
+        // The erased form must still be what the earlier order proved, before it is
+        // punctured further: the same check `verify` makes.
+        if missing.is_some() || commitment::hex(&root) != *recorded {
+            return Err(ErrorKind::Inconsistent(format!(
+                "{} no longer gives the commitment erasure order {} recorded (a remaining cell or a kept leaf was changed); nothing was erased: run `sluice verify`",
+                v.label(),
+                e.order_id
+            ))
+            .into());
+        }
+    }
+    let new_numbers: Vec<u64> = kept.iter().map(|(i, _)| *i).collect();
+    let n_new = kept.len() as u64;
+    let punctured = salts.puncture(&new_numbers);
     drop(salts);
+    let mut all_kept: Vec<(u64, Bytes32)> = earlier.into_iter().chain(kept).collect();
+    all_kept.sort_by_key(|(i, _)| *i);
+    let kept = all_kept;
 
     let own: Hash = v
         .hash
@@ -359,6 +445,8 @@ fn prepare(store: &Store, v: &Version, erased: &Cells, marked: &Cells) -> Result
         root,
         salts: punctured,
         kept,
+        n_new,
+        previous: previous.map(|e| e.order_id),
         marked: marked
             .iter()
             .map(|&(r, c)| r * header_len as u64 + c as u64)

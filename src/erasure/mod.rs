@@ -149,11 +149,59 @@ pub fn named_cells(store: &Store, order: &Order) -> Result<reach::Cells> {
     Ok(cells)
 }
 
-/// What the order reaches, found without changing anything: the dry run.
+/// What the order reaches, found without changing anything: the dry run. Cells earlier orders
+/// erased (or kept as published) are left out, and so is a version with nothing left to do.
 pub fn survey(store: &Store, order: &Order) -> Result<reach::Reach> {
     raw_version(store, &order.version)?;
     let cells = named_cells(store, order)?;
-    reach::walk(store, &order.version, cells)
+    let mut reach = reach::walk(store, &order.version, cells)?;
+    let earlier = store.lineage.erased_versions()?;
+    if !earlier.is_empty() {
+        for r in &mut reach.versions {
+            let n_cols = r.version.header.len() as u64;
+            let mut erased = std::collections::BTreeSet::new();
+            let mut marked = std::collections::BTreeSet::new();
+            for e in earlier.iter().filter(|e| e.version_id == r.version.id) {
+                erased.extend(
+                    e.kept
+                        .chunks_exact(40)
+                        .filter_map(|c| Some(u64::from_le_bytes(c[..8].try_into().ok()?))),
+                );
+                marked.extend(
+                    e.marked
+                        .chunks_exact(8)
+                        .filter_map(|c| Some(u64::from_le_bytes(c.try_into().ok()?))),
+                );
+            }
+            r.erased
+                .retain(|&(row, c)| !erased.contains(&(row * n_cols + c as u64)));
+            r.kept_unrecomputable.retain(|&(row, c)| {
+                let i = row * n_cols + c as u64;
+                !erased.contains(&i) && !marked.contains(&i)
+            });
+        }
+        let start = order.version.id;
+        if !reach
+            .versions
+            .iter()
+            .any(|r| r.version.id == start && !r.erased.is_empty())
+        {
+            return Err(Error::usage(format!(
+                "every cell of {} that is {} was erased already by an earlier erasure order; `sluice verify` names the orders",
+                order.version.label(),
+                order.target.describe()
+            )));
+        }
+        reach
+            .versions
+            .retain(|r| !r.erased.is_empty() || !r.kept_unrecomputable.is_empty());
+    }
+    for r in &reach.versions {
+        if store.lineage.profile_unsalted(r.version.id)? {
+            reach.profiles_committed_unsalted.push(r.version.label());
+        }
+    }
+    Ok(reach)
 }
 
 /// A step that cannot be reproduced past an erasure, and why.
@@ -175,6 +223,7 @@ pub fn unreproducible(
     steps: impl IntoIterator<Item = i64>,
 ) -> Result<Vec<Unreproducible>> {
     let mut out = Vec::new();
+    let erased = store.lineage.erased_versions()?;
     for id in steps {
         let mut read: Vec<Version> = store
             .lineage
@@ -190,25 +239,30 @@ pub fn unreproducible(
             read.extend(store.lineage.step_outputs(id)?);
         }
         for v in read {
-            if let Some(e) = store.lineage.erasure_of_version(v.id)? {
-                let what = if received { "received" } else { "read" };
-                out.push(Unreproducible {
-                    step: id,
-                    version: v.label(),
-                    order: e.order_id,
-                    why: format!(
-                        "the {} it {what} lost {} under erasure order {}; its recorded bytes exist nowhere now",
-                        v.label(),
-                        if e.n_erased == 1 {
-                            "1 cell".to_string()
-                        } else {
-                            format!("{} cells", e.n_erased)
-                        },
-                        e.order_id
-                    ),
-                });
-                break;
-            }
+            let orders: Vec<_> = erased.iter().filter(|e| e.version_id == v.id).collect();
+            let Some(last) = orders.last() else {
+                continue;
+            };
+            let n: u64 = orders.iter().map(|e| e.n_erased).sum();
+            let what = if received { "received" } else { "read" };
+            let numbers: Vec<String> = orders.iter().map(|e| e.order_id.to_string()).collect();
+            out.push(Unreproducible {
+                step: id,
+                version: v.label(),
+                order: last.order_id,
+                why: format!(
+                    "the {} it {what} lost {} under erasure order{} {}; its recorded bytes exist nowhere now",
+                    v.label(),
+                    if n == 1 {
+                        "1 cell".to_string()
+                    } else {
+                        format!("{n} cells")
+                    },
+                    if numbers.len() == 1 { "" } else { "s" },
+                    numbers.join(", ")
+                ),
+            });
+            break;
         }
     }
     Ok(out)

@@ -38,6 +38,10 @@ pub struct NotFollowed {
 pub struct Reach {
     pub versions: Vec<Reached>,
     pub not_followed: Vec<NotFollowed>,
+    /// Reached versions (`NAME:vN`) whose column profiles an earlier build recorded without
+    /// a salt, so that their audit entries' digests still let a guess of an erased extreme be
+    /// confirmed (filled by [`super::survey`]).
+    pub profiles_committed_unsalted: Vec<String>,
 }
 
 impl Reach {
@@ -50,8 +54,53 @@ fn inconsistent(msg: String) -> Error {
     ErrorKind::Inconsistent(msg).into()
 }
 
-/// The cells reached from `start`'s cells `cells` (which must be in `start`).
+/// The cells reached from `start`'s cells `cells` (which must be in `start`), and from the
+/// same cells of every version with the same bytes (see [`walk_with_twins`]).
 pub fn walk(store: &Store, start: &Version, cells: Cells) -> Result<Reach> {
+    walk_with_twins(store, vec![(start.clone(), cells)])
+}
+
+/// A version whose bytes are those of a reached version (the same file received twice, as two
+/// datasets or twice into one; a step whose output equals another's) holds the same values in
+/// the same cells, and one stored object is both: so its cells are reached too, and the walk is
+/// made again from every such twin with the union of the cells reached in any of them, until
+/// nothing more is reached (each round adds cells, of which there are finitely many).
+pub fn walk_with_twins(store: &Store, starts: Vec<(Version, Cells)>) -> Result<Reach> {
+    let all = store.lineage.all_versions()?;
+    let mut starts: BTreeMap<i64, (Version, Cells)> =
+        starts.into_iter().map(|(v, c)| (v.id, (v, c))).collect();
+    loop {
+        let reach = walk_from(store, starts.values().cloned().collect())?;
+        let mut by_hash: HashMap<&str, Cells> = HashMap::new();
+        for r in &reach.versions {
+            by_hash
+                .entry(r.version.hash.as_str())
+                .or_default()
+                .extend(r.erased.iter().copied());
+        }
+        let mut grew = false;
+        for w in &all {
+            let Some(cells) = by_hash.get(w.hash.as_str()) else {
+                continue;
+            };
+            if cells.is_empty() {
+                continue;
+            }
+            let slot = starts
+                .entry(w.id)
+                .or_insert_with(|| (w.clone(), Cells::new()));
+            let before = slot.1.len();
+            slot.1.extend(cells.iter().copied());
+            grew |= slot.1.len() > before;
+        }
+        if !grew {
+            return Ok(reach);
+        }
+    }
+}
+
+/// The walk from several versions' cells at once, in recording order.
+fn walk_from(store: &Store, starts: Vec<(Version, Cells)>) -> Result<Reach> {
     // Which steps read each version, with the role it had.
     let mut readers: HashMap<i64, Vec<(Step, String)>> = HashMap::new();
     let mut steps = store.lineage.steps(None)?;
@@ -62,14 +111,16 @@ pub fn walk(store: &Store, start: &Version, cells: Cells) -> Result<Reach> {
         }
     }
     let mut todo: BTreeMap<i64, Reached> = BTreeMap::new();
-    todo.insert(
-        start.id,
-        Reached {
-            version: start.clone(),
-            erased: cells,
-            kept_unrecomputable: Cells::new(),
-        },
-    );
+    for (start, cells) in starts {
+        todo.insert(
+            start.id,
+            Reached {
+                version: start,
+                erased: cells,
+                kept_unrecomputable: Cells::new(),
+            },
+        );
+    }
     let mut out = Reach::default();
     while let Some((_, here)) = todo.pop_first() {
         if here.erased.is_empty() && here.kept_unrecomputable.is_empty() {

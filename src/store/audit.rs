@@ -10,8 +10,11 @@
 //! Row commitments: every row a command writes is part of what its entry's hash covers. The
 //! write transaction keeps a journal of the rows it wrote ([`Selector`]s: a table, a column and
 //! a range of its values); when the entry is appended, each selector's rows are read back,
-//! encoded canonically ([`encode_row`]) and hashed ([`rows_digest`]), and the list lands in the
-//! entry's details as `rows` (`[{table, by, from, to, n, digest}]`). `verify` reads the same rows
+//! encoded canonically ([`encode_row`]), each encoding hashed into a leaf ([`row_leaf`]) and
+//! the leaves into a digest ([`leaves_digest`], form 2; entries of earlier builds hold
+//! [`rows_digest`], form 1), and the list lands in the entry's details as `rows`
+//! (`[{table, by, from, to, n, digest, form}]`). Rows that can hold a cell's value carry a random
+//! salt ([`RowSalts`]) so that their leaves confirm no guess of it. `verify` reads the same rows
 //! again and recomputes each digest, and counts every row of every table against the
 //! selectors, so a row no entry commits to is named too. The first entry written after entries
 //! without commitments (a store from an earlier build) records `legacy_rows`, each table's
@@ -85,7 +88,8 @@ pub(super) fn append(
     let mut rows = Vec::new();
     for sel in merge(journal) {
         let found = select_rows(conn, &sel)?;
-        rows.push(sel.to_json(found.len() as u64, &rows_digest(&sel, &found)));
+        let leaves: Vec<[u8; 32]> = found.iter().map(|(_, e)| row_leaf(e)).collect();
+        rows.push(sel.to_json(found.len() as u64, &leaves_digest(&sel, &leaves)));
     }
     map.insert("rows".into(), Value::Array(rows));
     if let Some((_, prev_details)) = &last_details(conn)? {
@@ -355,6 +359,7 @@ impl Selector {
         }
     }
 
+    /// As an entry's `rows` holds it; `form` 2 says the digest is [`leaves_digest`].
     fn to_json(&self, n: u64, digest: &str) -> Value {
         serde_json::json!({
             "table": self.table,
@@ -363,12 +368,19 @@ impl Selector {
             "to": self.to.to_json(),
             "n": n,
             "digest": digest,
+            "form": 2,
         })
     }
 
-    /// Reads a selector back from an entry's `rows`; `None` when it names a table or column
-    /// sluice never commits to (a forged entry).
-    pub fn from_json(v: &Value) -> Option<(Selector, u64, String)> {
+    /// Whether the selector's range holds the integer `key`.
+    pub fn covers(&self, key: i64) -> bool {
+        matches!((&self.from, &self.to), (Key::Int(a), Key::Int(b)) if *a <= key && key <= *b)
+    }
+
+    /// Reads a selector back from an entry's `rows`, with its count, digest and form (1: the
+    /// digest is [`rows_digest`], written by earlier builds; 2: [`leaves_digest`]); `None`
+    /// when it names a table or column sluice never commits to (a forged entry).
+    pub fn from_json(v: &Value) -> Option<(Selector, u64, String, u64)> {
         let table = v.get("table")?.as_str()?;
         let by = v.get("by")?.as_str()?;
         let (t, b, _) = SELECTABLE
@@ -383,6 +395,7 @@ impl Selector {
             },
             v.get("n")?.as_u64()?,
             v.get("digest")?.as_str()?.to_string(),
+            v.get("form").map_or(Some(1), Value::as_u64)?,
         ))
     }
 
@@ -491,6 +504,60 @@ pub fn rows_digest(sel: &Selector, rows: &[(i64, Vec<u8>)]) -> String {
         h.update(e);
     }
     h.finalize().to_hex().to_string()
+}
+
+/// One row's leaf in a commitment of form 2: BLAKE3 over the tag `sluice-row-v2` and the row's
+/// canonical encoding. A row that can hold a cell's value (a profile's extremes, a cell's note)
+/// carries a random salt column, so its leaf cannot be found again from a guess of the value
+/// and the row's other fields; an erasure that overwrites the value empties the salt and keeps
+/// the leaf from before (see [`leaves_digest`]).
+pub fn row_leaf(encoded: &[u8]) -> [u8; 32] {
+    let mut h = blake3::Hasher::new();
+    h.update(b"sluice-row-v2");
+    h.update(encoded);
+    *h.finalize().as_bytes()
+}
+
+/// The digest of form 2: BLAKE3 over the tag `sluice-rows-v2`, the selector (as in
+/// [`rows_digest`]), the count and the rows' leaves ([`row_leaf`]) in byte order. Unlike form
+/// 1 it is computed from one hash per row, so a row the store no longer holds as it was
+/// (overwritten by an erasure) can be stood in for by the leaf the erasure kept, and every
+/// other row of the selector is still checked against the entry that first committed to it.
+pub fn leaves_digest(sel: &Selector, leaves: &[[u8; 32]]) -> String {
+    let mut sorted = leaves.to_vec();
+    sorted.sort_unstable();
+    let mut h = blake3::Hasher::new();
+    h.update(b"sluice-rows-v2");
+    for name in [sel.table, sel.by] {
+        h.update(&(name.len() as u64).to_le_bytes());
+        h.update(name.as_bytes());
+    }
+    sel.from.encode(&mut h);
+    sel.to.encode(&mut h);
+    h.update(&(sorted.len() as u64).to_le_bytes());
+    for l in &sorted {
+        h.update(l);
+    }
+    h.finalize().to_hex().to_string()
+}
+
+/// Per-row salts for one write of rows that can hold a cell's value: a fresh random key from
+/// the operating system, each row's salt the keyed BLAKE3 of its position among the rows
+/// written. The key is dropped with this value, so one row's salt says nothing of another's.
+pub struct RowSalts {
+    key: [u8; 32],
+}
+
+impl RowSalts {
+    pub fn new() -> Result<RowSalts> {
+        let key = crate::commitment::random_seed()
+            .map_err(|e| crate::Error::io(std::path::Path::new("getrandom"), e))?;
+        Ok(RowSalts { key })
+    }
+
+    pub fn salt(&self, i: u64) -> [u8; 32] {
+        *blake3::keyed_hash(&self.key, &i.to_le_bytes()).as_bytes()
+    }
 }
 
 /// Whether an entry's details carry row commitments (entries of earlier builds do not).

@@ -195,11 +195,11 @@ pub const COPY_ORDER: &[(&str, &str, &str)] = &[
     (
         "column_profiles",
         "SELECT version_id, col_idx, name, inferred_type, n_blank, n_distinct, distinct_exact,
-                min_value, max_value, min_len, max_len
+                min_value, max_value, min_len, max_len, salt
          FROM column_profiles ORDER BY version_id, col_idx",
         "INSERT INTO column_profiles (version_id, col_idx, name, inferred_type, n_blank,
-                n_distinct, distinct_exact, min_value, max_value, min_len, max_len)
-         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11) ON CONFLICT DO NOTHING",
+                n_distinct, distinct_exact, min_value, max_value, min_len, max_len, salt)
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12) ON CONFLICT DO NOTHING",
     ),
     (
         "step_inputs",
@@ -244,10 +244,10 @@ pub const COPY_ORDER: &[(&str, &str, &str)] = &[
     ),
     (
         "cell_notes",
-        "SELECT step_id, output_id, row_idx, column_name, note FROM cell_notes
+        "SELECT step_id, output_id, row_idx, column_name, note, salt FROM cell_notes
          ORDER BY output_id, row_idx, column_name",
-        "INSERT INTO cell_notes (step_id, output_id, row_idx, column_name, note)
-         VALUES (?1, ?2, ?3, ?4, ?5) ON CONFLICT DO NOTHING",
+        "INSERT INTO cell_notes (step_id, output_id, row_idx, column_name, note, salt)
+         VALUES (?1, ?2, ?3, ?4, ?5, ?6) ON CONFLICT DO NOTHING",
     ),
     (
         "endorsements",

@@ -5,7 +5,7 @@
 
 use std::collections::{BTreeMap, BTreeSet, HashMap};
 
-use super::audit::Key;
+use super::audit::{self, Key, Selector};
 use super::backend::{Kind, Row, Value};
 use super::lineage::{Lineage, Tx};
 use crate::error::Result;
@@ -54,6 +54,46 @@ pub struct NewOrder<'a> {
     pub n_cells: u64,
 }
 
+/// What an erasure overwrote in the rows of one table with one key (`version_id`,
+/// `output_id` or `order_id`): the leaves (`audit::row_leaf`, hex) of the rows as they were
+/// and are no longer, and of the rows as they are now. Kept in the `erased` entry's details as
+/// `overwritten`; `verify` puts `before` back in place of `after` when it checks an earlier
+/// entry's commitment to those rows. A leaf of a row that held an erased value is salted by
+/// the row's salt, which the overwrite emptied.
+#[derive(Debug, Clone, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+pub struct Overwritten {
+    pub table: String,
+    pub key: i64,
+    pub before: Vec<String>,
+    pub after: Vec<String>,
+}
+
+/// What the purge of one order did.
+#[derive(Debug, Clone, Default)]
+pub struct Purge {
+    /// Profile extremes and cell notes overwritten.
+    pub fields: u64,
+    pub overwritten: Vec<Overwritten>,
+    /// Rows (table, key) an earlier build committed to by an unsalted digest of their
+    /// encodings: the whole table was committed to anew, and a guess of an overwritten value
+    /// with the row's other fields can still be confirmed against that older digest.
+    pub old_way: Vec<(String, i64)>,
+}
+
+const PROFILE_EXTREMES: &str = "SELECT min_value, max_value FROM column_profiles
+     WHERE version_id = ?1 AND col_idx = ?2";
+const PURGE_PROFILE_MIN: &str = "UPDATE column_profiles SET min_value = NULL, salt = NULL
+     WHERE version_id = ?1 AND col_idx = ?2";
+const PURGE_PROFILE_MAX: &str = "UPDATE column_profiles SET max_value = NULL, salt = NULL
+     WHERE version_id = ?1 AND col_idx = ?2";
+const NOTE_OF_CELL: &str = "SELECT 1 FROM cell_notes
+     WHERE output_id = ?1 AND row_idx = ?2 AND column_name = ?3";
+const DELETE_NOTE: &str =
+    "DELETE FROM cell_notes WHERE output_id = ?1 AND row_idx = ?2 AND column_name = ?3";
+const EMPTY_SALTS: &str =
+    "UPDATE erased_versions SET salts = ?3 WHERE order_id = ?1 AND version_id = ?2";
+const ALL_DETAILS: &str = "SELECT details FROM audit_log ORDER BY seq";
+
 /// Every erased version, in order of orders then versions.
 const ERASED_ALL: &str = "SELECT order_id, version_id, root, salts, kept, marked, n_erased,
             stored_hash, stored_row_index
@@ -97,6 +137,12 @@ impl Lineage {
             .transpose()
     }
 
+    /// Whether a version's column profile rows were committed to the old way: by an entry of
+    /// form 1 (an earlier build's digest over the rows' encodings, which held no salt).
+    pub fn profile_unsalted(&self, version_id: i64) -> Result<bool> {
+        committed_in_form_1(self.db.as_ref(), "column_profiles", version_id)
+    }
+
     /// Every order carried out, oldest first.
     pub fn erasure_orders(&self) -> Result<Vec<ErasureOrder>> {
         self.db
@@ -121,7 +167,9 @@ impl Lineage {
     }
 
     /// For the object reader: each erased version's own object names (bytes, row index)
-    /// mapped to the objects that hold its erased form, the latest order's.
+    /// mapped to the objects that hold its erased form, the latest order's; the forms an
+    /// earlier order wrote for a version a later order erased more of map there too (they
+    /// still hold the later order's cells, and are removed with the version's own bytes).
     pub fn erased_forms(&self) -> Result<HashMap<String, String>> {
         let rows = self.db.query(
             "SELECT v.hash, v.row_index, e.stored_hash, e.stored_row_index
@@ -129,16 +177,28 @@ impl Lineage {
              ORDER BY e.order_id",
             &[],
         )?;
-        let mut out = HashMap::new();
+        let mut chains: BTreeMap<(String, String), Vec<(String, String)>> = BTreeMap::new();
         for r in &rows {
-            let (h, ix, sh, six) = (r.text(0)?, r.text(1)?, r.text(2)?, r.text(3)?);
+            chains
+                .entry((r.text(0)?, r.text(1)?))
+                .or_default()
+                .push((r.text(2)?, r.text(3)?));
+        }
+        let mut out = HashMap::new();
+        for ((h, ix), forms) in chains {
+            let Some((sh, six)) = forms.last().cloned() else {
+                continue;
+            };
             // A version whose erased cells were already empty (or that only has summary
             // cells kept) keeps its own objects.
-            if h != sh {
-                out.insert(h, sh);
-            }
-            if ix != six {
-                out.insert(ix, six);
+            let olds = std::iter::once((h, ix)).chain(forms);
+            for (oh, oix) in olds {
+                if oh != sh {
+                    out.insert(oh, sh.clone());
+                }
+                if oix != six {
+                    out.insert(oix, six.clone());
+                }
             }
         }
         Ok(out)
@@ -244,73 +304,141 @@ impl Tx<'_> {
     }
 
     /// Overwrites what the database holds about a version's erased cells: a column profile's
-    /// minimum or maximum that is one of the column's erased values becomes NULL (`erased`:
-    /// column position -> the values erased there), and the cell notes of erased cells
-    /// (`cells`: 0-based row and column name) are deleted. Returns how many fields and notes
-    /// went.
+    /// minimum or maximum that is one of the column's erased values becomes NULL, with the
+    /// row's salt (`erased`: column position -> the values erased there), and the cell notes
+    /// of erased cells (`cells`: 0-based row and column name) are deleted. Each change is kept
+    /// in `purge` as the leaves of the rows before and after ([`Overwritten`]).
     pub fn purge_erased_values(
         &mut self,
         version_id: i64,
         erased: &BTreeMap<usize, BTreeSet<Vec<u8>>>,
         cells: &[(u64, String)],
-    ) -> Result<u64> {
-        let mut n = 0u64;
-        let mut changed_profile = false;
+        purge: &mut Purge,
+    ) -> Result<()> {
+        let mut hits: Vec<(i64, bool, bool)> = Vec::new();
         for (&col, values) in erased {
-            let rows = self.db.query(
-                "SELECT min_value, max_value FROM column_profiles
-                 WHERE version_id = ?1 AND col_idx = ?2",
-                vals![version_id, col as i64],
-            )?;
+            let rows = self
+                .db
+                .query(PROFILE_EXTREMES, vals![version_id, col as i64])?;
             let Some(r) = rows.first() else { continue };
             let (min, max) = (r.opt_text(0)?, r.opt_text(1)?);
             let hit =
                 |v: &Option<String>| v.as_ref().is_some_and(|s| values.contains(s.as_bytes()));
-            if hit(&min) {
-                self.db.execute(
-                    "UPDATE column_profiles SET min_value = NULL
-                     WHERE version_id = ?1 AND col_idx = ?2",
-                    vals![version_id, col as i64],
-                )?;
-                n += 1;
-                changed_profile = true;
-            }
-            if hit(&max) {
-                self.db.execute(
-                    "UPDATE column_profiles SET max_value = NULL
-                     WHERE version_id = ?1 AND col_idx = ?2",
-                    vals![version_id, col as i64],
-                )?;
-                n += 1;
-                changed_profile = true;
+            if hit(&min) || hit(&max) {
+                hits.push((col as i64, hit(&min), hit(&max)));
             }
         }
-        if changed_profile {
-            self.recommit_whole("column_profiles", "version_id")?;
+        if !hits.is_empty() {
+            let n = self.overwrite("column_profiles", "version_id", version_id, purge, |tx| {
+                let mut n = 0;
+                for &(col, min, max) in &hits {
+                    if min {
+                        tx.db.execute(PURGE_PROFILE_MIN, vals![version_id, col])?;
+                        n += 1;
+                    }
+                    if max {
+                        tx.db.execute(PURGE_PROFILE_MAX, vals![version_id, col])?;
+                        n += 1;
+                    }
+                }
+                Ok(n)
+            })?;
+            purge.fields += n;
         }
-        let mut changed_notes = false;
+        let mut any = false;
         for (row, column) in cells {
-            let gone = self.db.execute(
-                "DELETE FROM cell_notes WHERE output_id = ?1 AND row_idx = ?2 AND column_name = ?3",
-                vals![version_id, *row as i64, column],
-            )?;
-            if gone > 0 {
-                n += gone;
-                changed_notes = true;
-            }
+            any |= !self
+                .db
+                .query(NOTE_OF_CELL, vals![version_id, *row as i64, column])?
+                .is_empty();
         }
-        if changed_notes {
-            self.recommit_whole("cell_notes", "output_id")?;
+        if any {
+            let n = self.overwrite("cell_notes", "output_id", version_id, purge, |tx| {
+                let mut n = 0;
+                for (row, column) in cells {
+                    n += tx
+                        .db
+                        .execute(DELETE_NOTE, vals![version_id, *row as i64, column])?;
+                }
+                Ok(n)
+            })?;
+            purge.fields += n;
+        }
+        Ok(())
+    }
+
+    /// Empties the salts an earlier order kept for a version a later order erases more of
+    /// (the later order's record holds them punctured further; the earlier ones would give
+    /// the salts of the newly erased cells).
+    pub fn supersede_salts(
+        &mut self,
+        order_id: i64,
+        version_id: i64,
+        purge: &mut Purge,
+    ) -> Result<()> {
+        self.overwrite("erased_versions", "order_id", order_id, purge, |tx| {
+            tx.db.execute(
+                EMPTY_SALTS,
+                &[
+                    Value::Int(order_id),
+                    Value::Int(version_id),
+                    Value::Blob(Vec::new()),
+                ],
+            )
+        })?;
+        Ok(())
+    }
+
+    /// Runs `change` on the rows of `table` whose `by` is `key` and keeps, in `purge`, the
+    /// leaves (`audit::row_leaf`) of the rows it changed as they were and as they are. A row
+    /// an entry of form 1 (an earlier build) committed to cannot be stood in for by its leaf,
+    /// so the whole table is committed to anew, as earlier builds did, and the row is named
+    /// in `purge.old_way`.
+    fn overwrite(
+        &mut self,
+        table: &'static str,
+        by: &'static str,
+        key: i64,
+        purge: &mut Purge,
+        change: impl FnOnce(&mut Self) -> Result<u64>,
+    ) -> Result<u64> {
+        let sel = Selector::one(table, by, Key::Int(key));
+        let leaves = |db: &dyn super::backend::Database| -> Result<Vec<String>> {
+            let mut l: Vec<String> = audit::select_rows(db, &sel)?
+                .iter()
+                .map(|(_, e)| crate::commitment::hex(&audit::row_leaf(e)))
+                .collect();
+            l.sort();
+            Ok(l)
+        };
+        let before = leaves(self.db)?;
+        let n = change(self)?;
+        let after = leaves(self.db)?;
+        let (gone, came) = multiset_difference(&before, &after);
+        if gone.is_empty() && came.is_empty() {
+            return Ok(n);
+        }
+        purge.overwritten.push(Overwritten {
+            table: table.to_string(),
+            key,
+            before: gone,
+            after: came,
+        });
+        if committed_in_form_1(self.db, table, key)? {
+            self.recommit_whole(table, by)?;
+            purge.old_way.push((table.to_string(), key));
         }
         Ok(n)
     }
 
-    /// Commits anew to every row of a table whose fields the erasure overwrote: one selector
-    /// over the whole range of its key, which covers (and so, for `verify`, supersedes) every
-    /// earlier entry's selector of that table, however their ranges were merged.
+    /// Commits anew to every row of a table whose fields an erasure overwrote where an
+    /// earlier build committed to them: one selector over the whole range of its key, which
+    /// covers (and so, for `verify`, supersedes) every earlier entry's selector of that table,
+    /// however their ranges were merged.
     fn recommit_whole(&mut self, table: &'static str, by: &'static str) -> Result<()> {
         let sql = match table {
             "column_profiles" => "SELECT min(version_id), max(version_id) FROM column_profiles",
+            "erased_versions" => "SELECT min(order_id), max(order_id) FROM erased_versions",
             _ => "SELECT min(output_id), max(output_id) FROM cell_notes",
         };
         let rows = self.db.query(sql, &[])?;
@@ -321,6 +449,58 @@ impl Tx<'_> {
         }
         Ok(())
     }
+}
+
+/// Whether an entry of form 1 (an earlier build's unsalted digest over the encodings) commits
+/// to the rows of `table` with key `key`.
+fn committed_in_form_1(db: &dyn super::backend::Database, table: &str, key: i64) -> Result<bool> {
+    for r in db.query(ALL_DETAILS, &[])? {
+        let details: serde_json::Value = serde_json::from_str(&r.text(0)?).unwrap_or_default();
+        let Some(rows) = details.get("rows").and_then(|x| x.as_array()) else {
+            continue;
+        };
+        for x in rows {
+            if let Some((sel, _, _, form)) = Selector::from_json(x) {
+                if form == 1 && sel.table == table && sel.covers(key) {
+                    return Ok(true);
+                }
+            }
+        }
+    }
+    Ok(false)
+}
+
+/// The leaves in `a` and not in `b`, and in `b` and not in `a`, counting repeats (both
+/// sorted).
+fn multiset_difference(a: &[String], b: &[String]) -> (Vec<String>, Vec<String>) {
+    let (mut i, mut j) = (0, 0);
+    let (mut only_a, mut only_b) = (Vec::new(), Vec::new());
+    while i < a.len() || j < b.len() {
+        match (a.get(i), b.get(j)) {
+            (Some(x), Some(y)) if x == y => {
+                i += 1;
+                j += 1;
+            }
+            (Some(x), Some(y)) if x < y => {
+                only_a.push(x.clone());
+                i += 1;
+            }
+            (Some(_), Some(y)) => {
+                only_b.push(y.clone());
+                j += 1;
+            }
+            (Some(x), None) => {
+                only_a.push(x.clone());
+                i += 1;
+            }
+            (None, Some(y)) => {
+                only_b.push(y.clone());
+                j += 1;
+            }
+            (None, None) => break,
+        }
+    }
+    (only_a, only_b)
 }
 
 impl super::Store {
@@ -387,5 +567,32 @@ impl super::Store {
         self.lineage.rebuild_file()?;
         self.sweep_tmp();
         Ok(done)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::multiset_difference;
+
+    fn v(items: &[&str]) -> Vec<String> {
+        items.iter().map(|s| s.to_string()).collect()
+    }
+
+    /// Repeats count: what is taken out and put back restores the first list exactly.
+    #[test]
+    fn the_difference_of_two_sorted_lists_counts_repeats() {
+        let (a, b) = (v(&["a", "b", "b", "d"]), v(&["b", "c", "d", "d"]));
+        let (gone, came) = multiset_difference(&a, &b);
+        assert_eq!(gone, v(&["a", "b"]));
+        assert_eq!(came, v(&["c", "d"]));
+        let mut back = b.clone();
+        for c in &came {
+            let i = back.iter().position(|x| x == c).unwrap();
+            back.remove(i);
+        }
+        back.extend(gone);
+        back.sort();
+        assert_eq!(back, a);
+        assert_eq!(multiset_difference(&a, &a), (Vec::new(), Vec::new()));
     }
 }

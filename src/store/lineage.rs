@@ -8,7 +8,7 @@ use std::path::Path;
 
 use serde_json::Value;
 
-use super::audit::{Key, Selector};
+use super::audit::{Key, RowSalts, Selector};
 use super::backend::{self, Database, Kind, Row};
 use super::pg::Pg;
 use super::sqlite::Sqlite;
@@ -1055,23 +1055,25 @@ impl Tx<'_> {
         )?;
         self.wrote("versions", "id", Key::Int(version_id));
         self.wrote("column_profiles", "version_id", Key::Int(version_id));
+        let salts = RowSalts::new()?;
         for (i, p) in v.profiles.iter().enumerate() {
             self.exec(
                 "INSERT INTO column_profiles (version_id, col_idx, name, inferred_type, n_blank,
-                    n_distinct, distinct_exact, min_value, max_value, min_len, max_len)
-                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11)",
-                vals![
-                    version_id,
-                    i as i64,
-                    p.name.as_str(),
-                    p.inferred_type.as_str(),
-                    p.n_blank as i64,
-                    p.n_distinct as i64,
-                    i64::from(p.distinct_exact),
-                    p.min.clone(),
-                    p.max.clone(),
-                    p.min_len.map(|x| x as i64),
-                    p.max_len.map(|x| x as i64),
+                    n_distinct, distinct_exact, min_value, max_value, min_len, max_len, salt)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12)",
+                &[
+                    backend::Value::from(version_id),
+                    backend::Value::from(i as i64),
+                    backend::Value::from(p.name.as_str()),
+                    backend::Value::from(p.inferred_type.as_str()),
+                    backend::Value::from(p.n_blank as i64),
+                    backend::Value::from(p.n_distinct as i64),
+                    backend::Value::from(i64::from(p.distinct_exact)),
+                    backend::Value::from(p.min.clone()),
+                    backend::Value::from(p.max.clone()),
+                    backend::Value::from(p.min_len.map(|x| x as i64)),
+                    backend::Value::from(p.max_len.map(|x| x as i64)),
+                    backend::Value::Blob(salts.salt(i as u64).to_vec()),
                 ],
             )?;
         }
@@ -1121,11 +1123,19 @@ impl Tx<'_> {
         output_id: i64,
         notes: &[(u64, String, String)],
     ) -> Result<()> {
-        for (row, col, note) in notes {
+        let salts = RowSalts::new()?;
+        for (i, (row, col, note)) in notes.iter().enumerate() {
             self.exec(
-                "INSERT INTO cell_notes (step_id, output_id, row_idx, column_name, note)
-                 VALUES (?1, ?2, ?3, ?4, ?5)",
-                vals![step_id, output_id, *row as i64, col, note],
+                "INSERT INTO cell_notes (step_id, output_id, row_idx, column_name, note, salt)
+                 VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
+                &[
+                    backend::Value::from(step_id),
+                    backend::Value::from(output_id),
+                    backend::Value::from(*row as i64),
+                    backend::Value::from(col),
+                    backend::Value::from(note),
+                    backend::Value::Blob(salts.salt(i as u64).to_vec()),
+                ],
             )?;
         }
         if !notes.is_empty() {

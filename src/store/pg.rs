@@ -27,6 +27,7 @@ use crate::error::{Error, ErrorKind, Result};
 pub const MIGRATIONS: &[(i64, &str)] = &[
     (6, include_str!("../../schema/postgres/0006_lineage.sql")),
     (7, include_str!("../../schema/postgres/0007_erasure.sql")),
+    (8, include_str!("../../schema/postgres/0008_row_salts.sql")),
 ];
 
 /// The advisory lock every write transaction takes first: the bytes of `sluice-w`.
