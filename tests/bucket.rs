@@ -412,50 +412,60 @@ fn a_command_killed_at_any_io_point_of_an_upload_leaves_the_store_intact() {
         &["receive", "orders.csv", "--as", "orders", "--why", "t"],
     );
     let want = version_hashes(&reference, "reader");
-    let mut points = 0;
-    for n in 1u64.. {
-        let (url, name) = fresh_bucket();
-        let s = Sandbox::new();
-        ok_as(&s, "recorder", &["setup", ".", "--object-bucket", &url]);
-        s.file("orders.csv", &csv);
-        let (k, sec) = keys("recorder");
-        let status = s
-            .command(&["receive", "orders.csv", "--as", "orders", "--why", "t"])
-            .env("AWS_ACCESS_KEY_ID", k)
-            .env("AWS_SECRET_ACCESS_KEY", sec)
-            .env("SLUICE_TEST_IO_POINT", format!("stop:{n}"))
-            .status()
-            .unwrap();
-        let what = format!("receive stopped at I/O point {n}");
-        // Whatever the bucket holds, the store is intact: nothing it references is missing or
-        // partial.
-        let v = run_as(&s, "reader", &["verify", "--json"]);
-        assert_eq!(v.code, 0, "{what}: verify\n{}\n{}", v.stdout, v.stderr);
-        let recorded = recorded_objects(&s);
-        let in_bucket = listed(&name);
-        for h in &recorded {
+    let args = ["receive", "orders.csv", "--as", "orders", "--why", "t"];
+    let points = stopped_at_each_point(&want, ("orders.csv", &csv), &args, "", |s, name, what| {
+        // Whatever the bucket holds, the store is intact: nothing it references is missing
+        // or partial.
+        let in_bucket = listed(name);
+        for h in &recorded_objects(s) {
             assert!(
                 in_bucket.contains(h),
                 "{what}: {h} referenced but not in the bucket"
             );
         }
+    });
+    assert!(points >= 6, "only {points} I/O points were passed");
+}
+
+/// Runs the recording command `args` (as the recording key, on `file` written into a fresh
+/// store in a fresh bucket) stopped at I/O point 1, 2, ... of the kind `points` names (""
+/// for every point, ":upload" for uploads only), until it runs through. After each stop the
+/// store verifies intact, `bucket` holds (given the store, the bucket's name or prefix and a
+/// description of the stop), nothing is recorded, and running the command again ends with
+/// the unstopped run's version hashes `want`. Returns how many points were passed.
+fn stopped_at_each_point(
+    want: &[String],
+    file: (&str, &str),
+    args: &[&str],
+    points: &str,
+    bucket: impl Fn(&Sandbox, &str, &str),
+) -> u64 {
+    let mut n = 0u64;
+    loop {
+        n += 1;
+        let (url, place) = fresh_bucket();
+        let s = Sandbox::new();
+        ok_as(&s, "recorder", &["setup", ".", "--object-bucket", &url]);
+        s.file(file.0, file.1);
+        let status = command_as(&s, "recorder", args)
+            .env("SLUICE_TEST_IO_POINT", format!("stop:{n}{points}"))
+            .status()
+            .unwrap();
+        let what = format!("{} stopped at I/O point {n}{points}", args[0]);
+        let v = run_as(&s, "reader", &["verify", "--json"]);
+        assert_eq!(v.code, 0, "{what}: verify\n{}\n{}", v.stdout, v.stderr);
+        bucket(&s, &place, &what);
         if status.success() {
             assert_eq!(version_hashes(&s, "reader"), want, "{what}");
-            points = n - 1;
-            break;
+            return n - 1;
         }
         assert_eq!(status.code(), Some(86), "{what}: stopped by the countdown");
-        let timeline = version_hashes(&s, "reader");
-        assert!(timeline.is_empty(), "{what}: recorded {timeline:?}");
+        let recorded = version_hashes(&s, "reader");
+        assert!(recorded.is_empty(), "{what}: recorded {recorded:?}");
         // Running it again ends with the unstopped run's bytes.
-        ok_as(
-            &s,
-            "recorder",
-            &["receive", "orders.csv", "--as", "orders", "--why", "t"],
-        );
+        ok_as(&s, "recorder", args);
         assert_eq!(version_hashes(&s, "reader"), want, "{what}: run again");
     }
-    assert!(points >= 6, "only {points} I/O points were passed");
 }
 
 #[test]
@@ -1133,36 +1143,21 @@ fn a_command_killed_during_a_multipart_upload_leaves_the_store_intact() {
         whole.values().any(|&n| n > 16 << 20),
         "no object over one part: {whole:?}"
     );
-    let mut points = 0;
-    for n in 1u64.. {
-        let (url, prefix) = fresh_bucket();
-        let s = Sandbox::new();
-        ok_as(&s, "recorder", &["setup", ".", "--object-bucket", &url]);
-        s.file("signatures.csv", &csv);
-        let status = command_as(&s, "recorder", &args)
-            .env("SLUICE_TEST_IO_POINT", format!("stop:{n}:upload"))
-            .status()
-            .unwrap();
-        let what = format!("receive stopped at upload {n}");
-        let v = run_as(&s, "reader", &["verify"]);
-        assert_eq!(v.code, 0, "{what}: verify\n{}\n{}", v.stdout, v.stderr);
-        for (key, size) in listed_sizes(&prefix) {
-            assert_eq!(
-                whole.get(&key),
-                Some(&size),
-                "{what}: {key} is not a whole object"
-            );
-        }
-        if status.success() {
-            assert_eq!(version_hashes(&s, "reader"), want, "{what}");
-            points = n - 1;
-            break;
-        }
-        assert_eq!(status.code(), Some(86), "{what}: stopped by the countdown");
-        assert!(version_hashes(&s, "reader").is_empty(), "{what}: recorded");
-        ok_as(&s, "recorder", &args);
-        assert_eq!(version_hashes(&s, "reader"), want, "{what}: run again");
-    }
+    let points = stopped_at_each_point(
+        &want,
+        ("signatures.csv", &csv),
+        &args,
+        ":upload",
+        |_, prefix, what| {
+            for (key, size) in listed_sizes(prefix) {
+                assert_eq!(
+                    whole.get(&key),
+                    Some(&size),
+                    "{what}: {key} is not a whole object"
+                );
+            }
+        },
+    );
     // The row index's single upload, and the table's two parts and completion at least.
     assert!(points >= 4, "only {points} uploads were passed");
 }
