@@ -6,6 +6,7 @@
 //! chain is the original's entry for entry and a later publish can tell whether the shared
 //! store moved on meanwhile. A shared store that moved on is named, never merged.
 
+use std::collections::{BTreeSet, HashSet};
 use std::path::Path;
 
 use crate::error::{ErrorKind, Result};
@@ -29,21 +30,34 @@ pub struct Moved {
 fn intact(store: &Store, which: &str) -> Result<()> {
     let report = crate::verify::verify(store)?;
     if !report.intact {
+        let first: Vec<String> = report
+            .problems
+            .iter()
+            .take(3)
+            .map(|p| format!("{} {}: {}", p.kind, p.subject, p.detail))
+            .collect();
         return Err(ErrorKind::Data(format!(
-            "{which} ({}) does not verify intact, so it is not copied; run `sluice verify` there to see what is wrong",
-            store.dir().display()
+            "{which} ({}) does not verify intact ({} problems, the first: {}), so it is not copied; run `sluice verify` there to see them all",
+            store.dir().display(),
+            report.problems.len(),
+            first.join("; ")
         ))
         .into());
     }
     Ok(())
 }
 
-/// Copies every stored object of `from` that `to` lacks, re-hashing each as it is read and as
-/// it is written.
-fn copy_objects(from: &Store, to: &Store, moved: &mut Moved) -> Result<()> {
+/// Copies every stored object of `from` that `to` lacks (except those in `leave`), re-hashing
+/// each as it is read and as it is written.
+fn copy_objects(
+    from: &Store,
+    to: &Store,
+    leave: &BTreeSet<String>,
+    moved: &mut Moved,
+) -> Result<()> {
     let unstored = from.lineage.unstored_objects()?;
     for (hex, kind, _) in from.lineage.objects()? {
-        if unstored.contains(&hex) {
+        if unstored.contains(&hex) || leave.contains(&hex) {
             continue;
         }
         let hash: Hash = hex.parse().map_err(|_| {
@@ -90,7 +104,7 @@ impl std::io::Write for WriteInto<'_> {
     }
 }
 
-fn copy(from: &Store, to: &Store) -> Result<Moved> {
+fn copy(from: &Store, to: &Store, leave: &BTreeSet<String>) -> Result<Moved> {
     let mut moved = Moved {
         objects_copied: 0,
         bytes_copied: 0,
@@ -103,7 +117,7 @@ fn copy(from: &Store, to: &Store) -> Result<Moved> {
     }
     // Objects first, each made durable before the transaction that names it commits (an
     // object nothing names yet is harmless, as after any interrupted command).
-    copy_objects(from, to, &mut moved)?;
+    copy_objects(from, to, leave, &mut moved)?;
     let Copied {
         entries_before,
         entries_copied,
@@ -131,12 +145,85 @@ pub fn publish(local: &Store, shared: &Store) -> Result<Moved> {
         .into());
     }
     intact(local, "this store")?;
-    copy(local, shared)
+    // A working copy borrowed in part did not copy some objects; the shared store must still
+    // hold them (it is the store they were left in).
+    for (hex, _, _) in local.lineage.objects()? {
+        if let Ok(hash) = hex.parse::<Hash>() {
+            if local.objects.is_left_in_shared(&hash) && !shared.objects.exists(&hash) {
+                return Err(ErrorKind::Data(format!(
+                    "object {hex} was left in the shared store when this working copy was borrowed in part, but {} does not hold it; publish to the store it was borrowed from",
+                    shared.dir().display()
+                ))
+                .into());
+            }
+        }
+    }
+    copy(local, shared, &BTreeSet::new())
+}
+
+/// The objects a working copy of `datasets` does without: the bytes and row indexes (and
+/// erased forms) of every version that is neither a version of one of `datasets` nor read,
+/// directly or through earlier steps, by a step that made one; an object such a version
+/// shares with a kept one is copied.
+fn left_out(shared: &Store, datasets: &[String]) -> Result<BTreeSet<String>> {
+    let mut kept: HashSet<i64> = HashSet::new();
+    for name in datasets {
+        let versions = shared.lineage.versions_of(name)?;
+        if versions.is_empty() {
+            let known: Vec<String> = shared
+                .lineage
+                .datasets()?
+                .into_iter()
+                .map(|d| d.name)
+                .collect();
+            return Err(ErrorKind::Usage(format!(
+                "--dataset {name}: the shared store has no dataset of that name; it has: {}",
+                known.join(", ")
+            ))
+            .into());
+        }
+        for v in versions {
+            kept.insert(v.id);
+            for step in crate::plan::steps_behind(shared, &v)? {
+                for (_, input) in shared.lineage.step_input_versions(step)? {
+                    kept.insert(input.id);
+                }
+                for output in shared.lineage.step_outputs(step)? {
+                    kept.insert(output.id);
+                }
+            }
+        }
+    }
+    let names = |v: &crate::model::Version| -> Vec<String> {
+        let mut out = Vec::new();
+        for hex in [&v.hash, &v.row_index] {
+            out.push(hex.clone());
+            if let Ok(h) = hex.parse::<Hash>() {
+                out.push(shared.objects.form_of(&h).hex());
+            }
+        }
+        out
+    };
+    let mut leave = BTreeSet::new();
+    let mut needed = HashSet::new();
+    for v in shared.lineage.all_versions()? {
+        if kept.contains(&v.id) {
+            needed.extend(names(&v));
+        } else {
+            leave.extend(names(&v));
+        }
+    }
+    let unstored = shared.lineage.unstored_objects()?;
+    leave.retain(|hex| !needed.contains(hex) && !unstored.contains(hex));
+    Ok(leave)
 }
 
 /// Copies the shared store `shared` into a new local store in `project/sluice-store`, a
-/// working copy whose lineage is in its folder; it verifies intact afterwards.
-pub fn borrow(shared: &Store, project: &Path) -> Result<(Store, Moved)> {
+/// working copy whose lineage is in its folder; it verifies intact afterwards. With
+/// `datasets`, only their versions' bytes and those of everything they are made from are
+/// copied (see [`left_out`]); the working copy's location file names the rest as left in the
+/// shared store.
+pub fn borrow(shared: &Store, project: &Path, datasets: &[String]) -> Result<(Store, Moved)> {
     if shared.lineage.kind() != crate::store::backend::Kind::Postgres {
         return Err(ErrorKind::Usage(format!(
             "{} keeps its lineage in its folder; borrow copies from a shared store",
@@ -145,12 +232,19 @@ pub fn borrow(shared: &Store, project: &Path) -> Result<(Store, Moved)> {
         .into());
     }
     intact(shared, "the shared store")?;
-    let local = Store::init(project)?;
+    let leave = if datasets.is_empty() {
+        BTreeSet::new()
+    } else {
+        left_out(shared, datasets)?
+    };
+    let mut local = Store::init(project)?;
     let made = local.dir().to_path_buf();
-    let copied = copy(shared, &local).and_then(|moved| {
-        intact(&local, "the working copy")?;
-        Ok(moved)
-    });
+    let copied = mark_left_in(&mut local, shared, datasets, &leave)
+        .and_then(|()| copy(shared, &local, &leave))
+        .and_then(|moved| {
+            intact(&local, "the working copy")?;
+            Ok(moved)
+        });
     match copied {
         Ok(moved) => Ok((local, moved)),
         Err(e) => {
@@ -160,4 +254,30 @@ pub fn borrow(shared: &Store, project: &Path) -> Result<(Store, Moved)> {
             Err(e)
         }
     }
+}
+
+/// Writes down in `local`'s location file, and tells its objects, what a borrow in part
+/// leaves in `shared` (nothing when it borrows everything).
+fn mark_left_in(
+    local: &mut Store,
+    shared: &Store,
+    datasets: &[String],
+    leave: &BTreeSet<String>,
+) -> Result<()> {
+    if datasets.is_empty() {
+        return Ok(());
+    }
+    let mut place = crate::store::location::Location::read(local.dir())?;
+    place.left_in = Some(crate::store::location::LeftIn {
+        shared_store: shared.lineage.describe(),
+        datasets: datasets.to_vec(),
+        objects: leave.iter().cloned().collect(),
+    });
+    place.write(local.dir())?;
+    let set = leave
+        .iter()
+        .filter_map(|h| h.parse::<Hash>().ok())
+        .collect();
+    local.objects.read_left_in(shared.lineage.describe(), set);
+    Ok(())
 }

@@ -208,6 +208,138 @@ fn publish_and_borrow_name_a_shared_store_that_moved_on() {
     }
 }
 
+/// A borrow of one dataset copies the whole lineage but only the bytes of that dataset's
+/// versions and of what they are made from: those read back byte for byte, a version outside
+/// the part is refused with the shared store named, `verify` counts what was left there, work
+/// recorded in the part publishes back, and an unknown dataset leaves no working copy.
+#[test]
+fn a_borrow_in_part_copies_one_dataset_and_what_it_is_made_from() {
+    let server = pg::server();
+    let conn = server.new_database("borrowed_in_part");
+    let s = Sandbox::new();
+    s.ok(&["demo", "local"]);
+    s.ok(&[
+        "--store",
+        "local",
+        "publish",
+        "--to",
+        "shared",
+        "--lineage-server",
+        &conn,
+    ]);
+    let whole: Value =
+        serde_json::from_str(&s.ok(&["borrow", "shared", "--into", "whole", "--json"])).unwrap();
+    let part: Value = serde_json::from_str(&s.ok(&[
+        "borrow",
+        "shared",
+        "--into",
+        "part",
+        "--dataset",
+        "q3_by_shop",
+        "--json",
+    ]))
+    .unwrap();
+    assert_eq!(common::schema_errors("borrow", &part), Vec::<String>::new());
+    assert_eq!(part["entries_copied"], whole["entries_copied"], "{part}");
+    assert!(
+        part["objects_copied"].as_u64() < whole["objects_copied"].as_u64(),
+        "{part} {whole}"
+    );
+    // What was left, as the location file names it, against the timeline of the shared store:
+    // the received files and the dataset asked for are all here; the versions made after the
+    // quarter's table from other branches (the shop totals, the reviewed orders) are not.
+    let location: Value = serde_json::from_str(
+        &std::fs::read_to_string(s.path().join("part/sluice-store/location.json")).unwrap(),
+    )
+    .unwrap();
+    let left: Vec<&str> = location["left_in"]["objects"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|h| h.as_str().unwrap())
+        .collect();
+    let all = versions(&s, "shared");
+    for (action, dataset, seq, hash, row_index, _) in &all {
+        let is_left = left.contains(&hash.as_str());
+        if action == "receive" || dataset == "q3_by_shop" {
+            assert!(!is_left, "{dataset}:v{seq} is needed in the part");
+            assert!(!left.contains(&row_index.as_str()), "{dataset}:v{seq}");
+        }
+        if dataset == "q3_shop_totals" || dataset == "reviewed_orders" {
+            assert!(is_left, "{dataset}:v{seq} is outside the part");
+        }
+    }
+    assert_eq!(
+        s.ok(&["--store", "part", "retrieve", "q3_by_shop"]),
+        s.ok(&["--store", "shared", "retrieve", "q3_by_shop"])
+    );
+    assert_eq!(
+        s.ok(&["--store", "part", "retrieve", "quillby_orders:v1"]),
+        s.ok(&["--store", "shared", "retrieve", "quillby_orders:v1"])
+    );
+    let outside = s.run(&["--store", "part", "retrieve", "q3_shop_totals"]);
+    assert_ne!(outside.code, 0);
+    assert!(
+        outside.stderr.contains("left in the shared store")
+            && outside.stderr.contains("borrowed_in_part"),
+        "{}",
+        outside.stderr
+    );
+    let checked: Value =
+        serde_json::from_str(&s.ok(&["--store", "part", "verify", "--json"])).unwrap();
+    assert_eq!(
+        common::schema_errors("verify", &checked),
+        Vec::<String>::new()
+    );
+    assert_eq!(checked["intact"], true, "{checked}");
+    let counted = checked["objects_left_in_shared_store"].as_u64().unwrap();
+    assert!(counted > 0 && counted <= left.len() as u64, "{checked}");
+    assert!(s
+        .ok(&["--store", "part", "verify"])
+        .contains("borrowed in part:"));
+    let deep = s.run(&["--store", "part", "verify", "--deep"]);
+    assert_eq!(deep.code, 0, "{}\n{}", deep.stdout, deep.stderr);
+    // Work recorded in the part is published back; the shared store verifies intact.
+    s.file(
+        "part/late.csv",
+        "order_id,note\nL-2,late export read in the part\n",
+    );
+    s.ok(&[
+        "--store",
+        "part",
+        "receive",
+        "part/late.csv",
+        "--as",
+        "late_orders",
+        "--why",
+        "a late export",
+    ]);
+    let sent: Value =
+        serde_json::from_str(&s.ok(&["--store", "part", "publish", "--to", "shared", "--json"]))
+            .unwrap();
+    assert_eq!(sent["entries_copied"], 1, "{sent}");
+    assert_eq!(sent["objects_copied"], 2, "{sent}");
+    assert_eq!(
+        s.ok(&["--store", "shared", "retrieve", "late_orders"]),
+        "order_id,note\nL-2,late export read in the part\n"
+    );
+    assert!(s
+        .ok(&["--store", "shared", "verify"])
+        .starts_with("intact:"));
+    // A dataset the shared store does not have: refused, and no working copy is left.
+    let unknown = s.run(&[
+        "borrow",
+        "shared",
+        "--into",
+        "none",
+        "--dataset",
+        "q4_by_shop",
+    ]);
+    assert_eq!(unknown.code, 2, "{}", unknown.stderr);
+    assert!(unknown.stderr.contains("q3_by_shop"), "{}", unknown.stderr);
+    assert!(!s.path().join("none/sluice-store").exists());
+}
+
 /// A publish killed at moments spread over its whole run leaves the shared store with either
 /// all of the published history or none of it (counted on the server), and verifying intact;
 /// a publish after the kills completes it.

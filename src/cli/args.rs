@@ -419,7 +419,11 @@ pub enum Command {
     #[command(
         after_help = "The shared store is verified first and every object re-hashed as it is copied; the working copy is \
         verified when it is made. Work recorded there can be copied back with `sluice publish`.\n\n\
-        Example:\n  sluice borrow /srv/three-rivers/q3 --into q3-offline"
+        With --dataset, only part of the bytes is copied: those of the named datasets' versions and of every version \
+        they are made from. The whole lineage is copied; the other versions stay readable in the shared store only, \
+        and the working copy's verify counts them as left there.\n\n\
+        Examples:\n  sluice borrow /srv/three-rivers/q3 --into q3-offline\n  \
+        sluice borrow /srv/three-rivers/q3 --into q3-totals --dataset q3_by_shop"
     )]
     Borrow {
         /// The shared store's folder (or the project folder holding it)
@@ -427,6 +431,10 @@ pub enum Command {
         /// The project folder for the working copy (default: the working directory)
         #[arg(long, value_name = "DIR")]
         into: Option<PathBuf>,
+        /// Copy the bytes of this dataset's versions and of what they are made from only
+        /// (repeat for more datasets; default: everything)
+        #[arg(long, value_name = "NAME")]
+        dataset: Vec<String>,
         /// Print JSON (fields: examples/reference.md, "JSON output"; schema/output/)
         #[arg(long)]
         json: bool,

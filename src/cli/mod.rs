@@ -252,9 +252,12 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
             lineage_server,
             json,
         } => shared::publish(&ctx, to, lineage_server.as_deref(), *json, out),
-        Command::Borrow { from, into, json } => {
-            shared::borrow(&ctx, from, into.as_deref(), *json, out)
-        }
+        Command::Borrow {
+            from,
+            into,
+            dataset,
+            json,
+        } => shared::borrow(&ctx, from, into.as_deref(), dataset, *json, out),
         Command::Roles {
             set_up,
             give,

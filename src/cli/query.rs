@@ -544,6 +544,13 @@ pub fn verify_text(out: &mut impl Write, r: &VerifyReport) -> io::Result<()> {
             "; computed again only with --deep"
         }
     )?;
+    if r.objects_left_in_shared_store > 0 {
+        writeln!(
+            out,
+            "borrowed in part: {} left in the shared store, not checked here (`sluice publish` finds them there)",
+            plural(r.objects_left_in_shared_store, "object", "objects")
+        )?;
+    }
     for o in &r.erasure_orders {
         writeln!(
             out,

@@ -65,12 +65,13 @@ pub fn borrow(
     ctx: &Context<'_>,
     from: &Path,
     into: Option<&Path>,
+    datasets: &[String],
     as_json: bool,
     out: &mut impl Write,
 ) -> anyhow::Result<ExitCode> {
     let shared = Store::open(from)?;
     let project = into.map_or_else(|| ctx.cwd.clone(), Path::to_path_buf);
-    let (local, m) = sluice::sharing::borrow(&shared, &project)?;
+    let (local, m) = sluice::sharing::borrow(&shared, &project, datasets)?;
     if as_json {
         let record = MovedJson::new(
             shared.lineage.describe(),
@@ -87,6 +88,13 @@ pub fn borrow(
         local.dir().display()
     )?;
     moved_text(out, &m)?;
+    if !datasets.is_empty() {
+        writeln!(
+            out,
+            "borrowed in part: the bytes of {} and of what they are made from; the other versions are read in the shared store only",
+            datasets.join(", ")
+        )?;
+    }
     writeln!(
         out,
         "next: record there, then `sluice publish --to {}`",

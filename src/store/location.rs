@@ -1,7 +1,8 @@
 //! Where a shared store's parts live: `sluice-store/location.json`, with the PostgreSQL
 //! connection string of its lineage database (`lineage`, never a password), the bucket that
-//! holds its objects (`objects`) and the size bound of the local read cache (`cache_bytes`).
-//! A store without the file keeps both in its folder.
+//! holds its objects (`objects`), the size bound of the local read cache (`cache_bytes`), and,
+//! in a working copy borrowed in part, the objects left in the shared store it came from
+//! (`left_in`). A store without the file keeps everything in its folder.
 
 use std::fs;
 use std::path::Path;
@@ -21,6 +22,21 @@ pub struct Location {
     pub objects: Option<String>,
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub cache_bytes: Option<u64>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub left_in: Option<LeftIn>,
+}
+
+/// What a working copy borrowed in part (`sluice borrow --dataset NAME`) did not copy: the
+/// bytes and row indexes of the versions outside the named datasets and everything they are
+/// made from, which stay readable in the shared store only.
+#[derive(Debug, Clone, Default, PartialEq, Eq, Serialize, Deserialize)]
+pub struct LeftIn {
+    /// The shared store's lineage, as `describe` names it.
+    pub shared_store: String,
+    /// The datasets asked for.
+    pub datasets: Vec<String>,
+    /// The objects not copied (BLAKE3 hex), sorted.
+    pub objects: Vec<String>,
 }
 
 impl Location {
@@ -30,7 +46,7 @@ impl Location {
         match fs::read(&path) {
             Ok(bytes) => serde_json::from_slice(&bytes).map_err(|e| {
                 ErrorKind::Usage(format!(
-                    "{}: not a store location file ({e}); it holds a JSON object with the optional keys \"lineage\", \"objects\" and \"cache_bytes\"",
+                    "{}: not a store location file ({e}); it holds a JSON object with the optional keys \"lineage\", \"objects\", \"cache_bytes\" and \"left_in\"",
                     path.display()
                 ))
                 .into()

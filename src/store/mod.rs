@@ -328,8 +328,7 @@ impl Store {
             Some(conn) => Lineage::connect_server(conn)?,
             None => Lineage::open(&db)?,
         };
-        let mut objects = Objects::new(object_backend(&dir)?);
-        objects.read_erased_forms(erased_forms(&lineage)?);
+        let objects = objects_of(&dir, object_backend(&dir)?, &lineage)?;
         Ok(Store {
             objects,
             lineage,
@@ -340,8 +339,7 @@ impl Store {
     /// Like [`Store::open`], but with another object backend (tests use this to inject faults).
     pub fn open_with_backend(dir: &Path, backend: Box<dyn ObjectBackend>) -> Result<Store> {
         let mut s = Store::open(dir)?;
-        s.objects = Objects::new(backend);
-        s.objects.read_erased_forms(erased_forms(&s.lineage)?);
+        s.objects = objects_of(&s.dir, backend, &s.lineage)?;
         crate::recompute::on_demand(&mut s);
         Ok(s)
     }
@@ -424,8 +422,7 @@ impl Store {
         let db = dir.join(DB_FILE);
         self.lineage.copy_to(&db)?;
         let lineage = Lineage::open(&db)?;
-        let mut objects = Objects::new(object_backend(&self.dir)?);
-        objects.read_erased_forms(erased_forms(&lineage)?);
+        let objects = objects_of(&self.dir, object_backend(&self.dir)?, &lineage)?;
         let mut trial = Store {
             objects,
             lineage,
@@ -503,6 +500,26 @@ impl Store {
 }
 
 /// The erased forms of the versions erasure orders reached, as the object reader takes them.
+/// The store's objects through `backend`, reading erased versions' erased forms and knowing
+/// which objects a working copy borrowed in part left in the shared store.
+fn objects_of(dir: &Path, backend: Box<dyn ObjectBackend>, lineage: &Lineage) -> Result<Objects> {
+    let mut objects = Objects::new(backend);
+    objects.read_erased_forms(erased_forms(lineage)?);
+    if let Some(left) = location::Location::read(dir)?.left_in {
+        let mut set = std::collections::HashSet::new();
+        for hex in &left.objects {
+            set.insert(hex.parse::<crate::hash::Hash>().map_err(|_| {
+                Error::from(ErrorKind::Usage(format!(
+                    "{}: \"left_in\" names {hex:?}, which is not a BLAKE3 hash",
+                    dir.join(location::LOCATION_FILE).display()
+                )))
+            })?);
+        }
+        objects.read_left_in(left.shared_store, set);
+    }
+    Ok(objects)
+}
+
 fn erased_forms(
     lineage: &Lineage,
 ) -> Result<std::collections::HashMap<crate::hash::Hash, crate::hash::Hash>> {

@@ -967,6 +967,9 @@ pub struct Objects {
     /// Versions an erasure order reached: their own object names (bytes and row index)
     /// mapped to the objects holding their erased form, which every read gets instead.
     erased_forms: HashMap<Hash, Hash>,
+    /// In a working copy borrowed in part: the objects left in the shared store (a read of
+    /// one is refused with that reason rather than reported as a missing object).
+    left_in: Option<(String, HashSet<Hash>)>,
 }
 
 /// Makes a missing object (a recomputable version's bytes or row index) readable from the
@@ -1079,7 +1082,26 @@ impl Objects {
             intact: Mutex::new(HashSet::new()),
             on_demand: None,
             erased_forms: HashMap::new(),
+            left_in: None,
         }
+    }
+
+    /// Marks `objects` as left in the shared store `shared` (a working copy borrowed in part):
+    /// they are not expected here, and reading one is refused with that reason.
+    pub fn read_left_in(&mut self, shared: String, objects: HashSet<Hash>) {
+        self.left_in = Some((shared, objects));
+    }
+
+    /// Whether this is a working copy borrowed in part.
+    pub fn borrowed_in_part(&self) -> bool {
+        self.left_in.is_some()
+    }
+
+    /// Whether `hash` was left in the shared store this working copy was borrowed from.
+    pub fn is_left_in_shared(&self, hash: &Hash) -> bool {
+        self.left_in
+            .as_ref()
+            .is_some_and(|(_, set)| set.contains(hash))
     }
 
     /// From now on a read of one of `forms`' keys (an erased version's own bytes or row
@@ -1151,6 +1173,14 @@ impl Objects {
         let r = self.reader(hash);
         if r.exists(hash) {
             return Ok(r);
+        }
+        if let Some((shared, set)) = &self.left_in {
+            if set.contains(hash) {
+                return Err(crate::Error::from(crate::error::ErrorKind::Usage(format!(
+                    "object {} was left in the shared store {shared} when this working copy was borrowed in part (`sluice borrow --dataset`); read it there, or borrow the datasets you need",
+                    hash.hex()
+                ))));
+            }
         }
         match &self.on_demand {
             Some(od) if od.fs.exists(hash) => Ok(&od.fs),
