@@ -912,7 +912,8 @@ fn orders_csv(rows: &[(u8, u8, u8, u8, u8)]) -> String {
 
 /// Every version of the store with the step that made it: dataset, number, hashes of the
 /// bytes and row index, rows, header, and for operation steps the operation, parameters,
-/// provenance object, rows in and out, column sources and cell notes.
+/// provenance object, rows in and out, column sources and cell notes, and every column's
+/// profile.
 fn recorded_versions(s: &Sandbox) -> Vec<String> {
     let db = rusqlite::Connection::open(s.path().join("sluice-store").join("lineage.db")).unwrap();
     let mut q = db
@@ -924,7 +925,13 @@ fn recorded_versions(s: &Sandbox) -> Vec<String> {
                        n.column_name || ':' || n.note AS t FROM cell_notes n \
                        WHERE n.output_id = v.id ORDER BY n.row_idx, n.column_name)), \
                     (SELECT COALESCE(GROUP_CONCAT(t, ';'), '') FROM (SELECT c.output_column || '<' || \
-                       c.input_column AS t FROM column_sources c WHERE c.output_id = v.id ORDER BY t)) \
+                       c.input_column AS t FROM column_sources c WHERE c.output_id = v.id ORDER BY t)), \
+                    (SELECT COALESCE(GROUP_CONCAT(t, ';'), '') FROM (SELECT p.col_idx || ':' || p.name || \
+                       ':' || p.inferred_type || ':' || p.n_blank || ':' || p.n_distinct || ':' || \
+                       p.distinct_exact || ':' || COALESCE(p.min_value, '-') || ':' || \
+                       COALESCE(p.max_value, '-') || ':' || COALESCE(p.min_len, '-') || ':' || \
+                       COALESCE(p.max_len, '-') AS t FROM column_profiles p WHERE p.version_id = v.id \
+                       ORDER BY p.col_idx)) \
              FROM versions v JOIN datasets d ON d.id = v.dataset_id JOIN steps s ON s.id = v.step_id \
              ORDER BY d.name, v.seq",
         )
@@ -932,7 +939,7 @@ fn recorded_versions(s: &Sandbox) -> Vec<String> {
     let rows = q
         .query_map([], |r| {
             let mut cells = Vec::new();
-            for i in 0..14 {
+            for i in 0..15 {
                 let v: rusqlite::types::Value = r.get(i)?;
                 cells.push(format!("{v:?}"));
             }

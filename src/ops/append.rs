@@ -69,8 +69,9 @@ pub(super) fn run(
     let started_at = clock::now_rfc3339();
     let store_dir = store.dir().to_path_buf();
     let store_io = |e: std::io::Error| Error::io(&store_dir.join("tmp"), e);
-    let mut writer = super::apply::output_writer(store, opts, &input.header, &input.null_tokens)
-        .map_err(store_io)?;
+    let mut writer =
+        super::apply::output_writer(store, opts, &input.header, &input.null_tokens, &[])
+            .map_err(store_io)?;
     let mut n_ours = 0u64;
     each_input_row(store, &input, |_, r| {
         let fields: Vec<&[u8]> = r.iter().collect();

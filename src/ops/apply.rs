@@ -16,7 +16,7 @@ use crate::clock;
 use crate::error::{Error, ErrorKind, Result};
 use crate::hash::Hash;
 use crate::intake::{self, validate_dataset_name, IngestOptions, Prepared, PreparedIngest};
-use crate::model::{Agent, LineageKind, StepKind, Version};
+use crate::model::{Agent, ColumnProfile, LineageKind, StepKind, Version};
 pub use crate::recording::{
     apply_entry, insert_pending, pending_id, persist, OtherInput, Pending, Provenance, StepMeta,
     TableInput,
@@ -162,7 +162,7 @@ fn apply_to(store: &mut Store, input: Version, opts: &ApplyOptions, mode: Mode) 
     let store_dir = store.dir().to_path_buf();
     let store_io = |e: io::Error| Error::io(&store_dir.join("tmp"), e);
     let mut writer =
-        output_writer(store, opts, &out_header, &input.null_tokens).map_err(store_io)?;
+        output_writer(store, opts, &out_header, &input.null_tokens, &[]).map_err(store_io)?;
     let mut out = OwnedRow::default();
     each_input_row(store, &input, |in_row, r| {
         if step.row(in_row, &r, &mut out)? {
@@ -310,6 +310,8 @@ pub fn fusable(op: &Operation, first: bool) -> bool {
 struct Stage {
     step: RowStep,
     writer: CanonicalWriter,
+    /// For each output column, the column of the step before's output whose profile it has.
+    carried: Vec<Option<usize>>,
     out: OwnedRow,
     n_out: u64,
     started_at: String,
@@ -359,10 +361,18 @@ pub fn compute_chain(
         } = ready(store, &reads, opts)?;
         let step = RowStep::new(store, &reads, &opts.op, mapper, looker)?;
         let header = step.header();
-        let writer = if keep.get(k).copied().unwrap_or(true) {
-            output_writer(store, &opts, &header, &input.null_tokens)
+        // A column this step copies unchanged, every row kept, has the profile the same column
+        // has in the step before's output: it is taken from there, not computed again.
+        let carried = if k == 0 {
+            Vec::new()
         } else {
-            CanonicalWriter::hashing_only(&header, &input.null_tokens)
+            step.unchanged_columns()
+        };
+        let unprofiled: Vec<bool> = carried.iter().map(Option::is_some).collect();
+        let writer = if keep.get(k).copied().unwrap_or(true) {
+            output_writer(store, &opts, &header, &input.null_tokens, &unprofiled)
+        } else {
+            CanonicalWriter::leaving_out(None, &header, &input.null_tokens, &unprofiled)
         }
         .map_err(store_io)?;
         // What the next step reads: this step's output, not yet a stored version (only its
@@ -387,6 +397,7 @@ pub fn compute_chain(
             table_id: step.table_id(),
             step,
             writer,
+            carried,
             out: OwnedRow::default(),
             n_out: 0,
             started_at: clock::now_rfc3339(),
@@ -419,7 +430,24 @@ pub fn compute_chain(
     let mut computed = Vec::with_capacity(stages.len());
     for s in stages {
         let end = s.step.finish()?;
-        let written = s.writer.finish().map_err(store_io)?;
+        let mut written = s.writer.finish().map_err(store_io)?;
+        for (o, from) in s.carried.iter().enumerate() {
+            let Some(from) = *from else { continue };
+            let before = computed
+                .last()
+                .and_then(|c: &Computed| c.written.profiles.get(from));
+            let (Some(before), Some(own)) = (before, written.profiles.get_mut(o)) else {
+                return Err(ErrorKind::Internal(format!(
+                    "no profile to carry into column {} of a fused step",
+                    o + 1
+                ))
+                .into());
+            };
+            *own = ColumnProfile {
+                name: std::mem::take(&mut own.name),
+                ..before.clone()
+            };
+        }
         computed.push(Computed {
             opts: s.opts,
             started_at: s.started_at,
@@ -519,6 +547,7 @@ pub(super) fn output_writer(
     opts: &ApplyOptions,
     header: &[String],
     null_tokens: &[String],
+    unprofiled: &[bool],
 ) -> io::Result<CanonicalWriter> {
     let stored = opts.replay.as_ref().is_some_and(|c| {
         !c.write
@@ -526,11 +555,8 @@ pub(super) fn output_writer(
                 .parse::<Hash>()
                 .is_ok_and(|h| store.objects.exists(&h))
     });
-    if stored {
-        CanonicalWriter::hashing_only(header, null_tokens)
-    } else {
-        CanonicalWriter::new(&store.objects, header, null_tokens)
-    }
+    let objects = (!stored).then_some(&store.objects);
+    CanonicalWriter::leaving_out(objects, header, null_tokens, unprofiled)
 }
 
 /// Persists a written output and records it: the version (or nothing, when it equals the

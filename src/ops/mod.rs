@@ -443,9 +443,8 @@ impl Operation {
         }
     }
 
-    /// The new value of one cell, or `None` when the operation leaves it as it is.
-    /// True when [`Operation::cell`] would certainly leave the value as it is, decided on its
-    /// bytes without decoding them; false means "ask `cell`".
+    /// True when [`Operation::cell_into`] would certainly leave the value as it is, decided on
+    /// its bytes without decoding them; false means "ask `cell_into`".
     pub fn cell_keeps(&self, value: &[u8]) -> bool {
         match self {
             Operation::Trim { inner, .. } => text::trim_keeps(value, *inner),
@@ -454,13 +453,15 @@ impl Operation {
         }
     }
 
-    pub fn cell(&self, value: &str) -> Option<String> {
-        let new = match self {
-            Operation::Trim { inner, .. } => text::trim(value, *inner),
-            Operation::Case { to, .. } => text::case(value, *to),
-            _ => return None,
-        };
-        (new != value).then_some(new)
+    /// The new value of a cell of trim or case, written into `out` (a buffer reused from cell
+    /// to cell); false when the value stays as it is (or the operation is another one).
+    pub fn cell_into(&self, value: &str, out: &mut String) -> bool {
+        match self {
+            Operation::Trim { inner, .. } => text::trim_into(value, *inner, out),
+            Operation::Case { to, .. } => text::case_into(value, *to, out),
+            _ => return false,
+        }
+        out.as_str() != value
     }
 }
 

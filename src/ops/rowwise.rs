@@ -59,6 +59,12 @@ impl OwnedRow {
     }
 }
 
+/// Puts `value` into a reused buffer.
+fn set_value(buf: &mut String, value: &str) {
+    buf.clear();
+    buf.push_str(value);
+}
+
 /// What a [`RowStep`] found once every row went through it.
 pub struct RowStepEnd {
     pub header: Vec<String>,
@@ -97,7 +103,10 @@ pub struct RowStep {
     drops: DropLog,
     runs: RowMap,
     changed_per_column: Vec<u64>,
-    new_values: Vec<Option<Vec<u8>>>,
+    /// Each output column's new value in the current row, in a buffer reused from row to row
+    /// (no allocation per changed cell), and whether the row has one.
+    new_values: Vec<String>,
+    is_new: Vec<bool>,
     notes: Vec<(u64, String, String)>,
     /// Cells `number`, `date` or `map` could not read and must not pass: (input row, column,
     /// text, why).
@@ -145,7 +154,8 @@ impl RowStep {
             drops: DropLog::default(),
             runs: RowMap::default(),
             changed_per_column: vec![0; columns.len()],
-            new_values: vec![None; columns.len()],
+            new_values: vec![String::new(); columns.len()],
+            is_new: vec![false; columns.len()],
             targets,
             columns,
             derivs,
@@ -171,6 +181,28 @@ impl RowStep {
         }
     }
 
+    /// For each output column, the input column whose value it holds unchanged in every row
+    /// when the step also keeps every row, in order (so its profile is the input column's);
+    /// `None` for a column the step changes, derives or looks up, and for every column of a
+    /// step that may remove rows.
+    pub fn unchanged_columns(&self) -> Vec<Option<usize>> {
+        let every_row = matches!(self.chooser, RowChooser::All);
+        let looked_up = self
+            .looker
+            .as_ref()
+            .map_or(self.columns.len(), |l| self.columns.len() - l.take.len());
+        let changes = self.op.changes_cells();
+        self.columns
+            .iter()
+            .zip(&self.derivs)
+            .enumerate()
+            .map(|(o, ((_, c), d))| {
+                (every_row && o < looked_up && d.is_none() && !(changes && self.is_target[*c]))
+                    .then_some(*c)
+            })
+            .collect()
+    }
+
     /// The output header.
     pub fn header(&self) -> Vec<String> {
         self.columns.iter().map(|(n, _)| n.clone()).collect()
@@ -184,8 +216,8 @@ impl RowStep {
         }
         self.runs.push(self.out_row, in_row);
         let out_row = self.out_row;
-        for (o, slot) in self.new_values.iter_mut().enumerate() {
-            *slot = None;
+        self.is_new.fill(false);
+        for o in 0..self.columns.len() {
             let c = self.columns[o].1;
             if !self.is_target[c] || !self.op.changes_cells() {
                 continue;
@@ -282,12 +314,21 @@ impl RowStep {
                     }
                     _ => None,
                 },
-                (None, op) => op.cell(text),
+                (None, op) => {
+                    // Trim and case write into the column's buffer.
+                    if op.cell_into(text, &mut self.new_values[o]) {
+                        self.changes.push(o, out_row);
+                        self.changed_per_column[o] += 1;
+                        self.is_new[o] = true;
+                    }
+                    continue;
+                }
             };
             if let Some(new) = new {
                 self.changes.push(o, out_row);
                 self.changed_per_column[o] += 1;
-                *slot = Some(new.into_bytes());
+                set_value(&mut self.new_values[o], &new);
+                self.is_new[o] = true;
             }
         }
         if let Some(l) = &self.looker {
@@ -295,7 +336,8 @@ impl RowStep {
             match l.find(r) {
                 Some(values) => {
                     for (k, v) in values.iter().enumerate() {
-                        self.new_values[base + k] = Some(v.clone().into_bytes());
+                        set_value(&mut self.new_values[base + k], v);
+                        self.is_new[base + k] = true;
                     }
                 }
                 None if l.unmatched_fail => {
@@ -313,7 +355,8 @@ impl RowStep {
                 }
                 None => {
                     for k in 0..l.take.len() {
-                        self.new_values[base + k] = Some(Vec::new());
+                        self.new_values[base + k].clear();
+                        self.is_new[base + k] = true;
                     }
                     self.notes.push((
                         out_row,
@@ -327,14 +370,17 @@ impl RowStep {
             if let Some(d) = d {
                 let is_blank =
                     |v: &[u8]| v.is_empty() || self.null_tokens.iter().any(|t| t.as_slice() == v);
-                self.new_values[o] = Some(d.value(r, &is_blank).into_bytes());
+                let value = d.value(r, &is_blank);
+                set_value(&mut self.new_values[o], &value);
+                self.is_new[o] = true;
             }
         }
         out.clear();
         for o in 0..self.columns.len() {
-            match &self.new_values[o] {
-                Some(v) => out.push(v),
-                None => out.push(r.field(self.columns[o].1)),
+            if self.is_new[o] {
+                out.push(self.new_values[o].as_bytes());
+            } else {
+                out.push(r.field(self.columns[o].1));
             }
         }
         self.out_row += 1;

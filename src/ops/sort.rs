@@ -133,8 +133,9 @@ pub(super) fn run(
     drop(keys);
     let store_dir = store.dir().to_path_buf();
     let store_io = |e: std::io::Error| Error::io(&store_dir.join("tmp"), e);
-    let mut writer = super::apply::output_writer(store, opts, &input.header, &input.null_tokens)
-        .map_err(store_io)?;
+    let mut writer =
+        super::apply::output_writer(store, opts, &input.header, &input.null_tokens, &[])
+            .map_err(store_io)?;
     for &i in &order {
         let (bytes, ends) = &rows[i as usize];
         let mut start = 0;

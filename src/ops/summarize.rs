@@ -260,7 +260,7 @@ pub(super) fn run(
     let store_dir = store.dir().to_path_buf();
     let store_io = |e: std::io::Error| Error::io(&store_dir.join("tmp"), e);
     let mut writer =
-        super::apply::output_writer(store, opts, &out_header, &[]).map_err(store_io)?;
+        super::apply::output_writer(store, opts, &out_header, &[], &[]).map_err(store_io)?;
     for g in &groups {
         let mut cells: Vec<String> = g.key.clone();
         cells.push(g.count.to_string());

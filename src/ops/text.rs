@@ -7,11 +7,19 @@ use super::CaseTo;
 /// Removes leading and trailing white space; with `inner`, also turns every run of white space
 /// inside the value into one ASCII space.
 pub fn trim(v: &str, inner: bool) -> String {
+    let mut out = String::new();
+    trim_into(v, inner, &mut out);
+    out
+}
+
+/// [`trim`] into `out` (cleared first), so that a caller can reuse one buffer for every cell.
+pub fn trim_into(v: &str, inner: bool, out: &mut String) {
+    out.clear();
     let t = v.trim_matches(char::is_whitespace);
     if !inner {
-        return t.to_string();
+        out.push_str(t);
+        return;
     }
-    let mut out = String::with_capacity(t.len());
     let mut in_space = false;
     for c in t.chars() {
         if c.is_whitespace() {
@@ -24,7 +32,6 @@ pub fn trim(v: &str, inner: bool) -> String {
             in_space = false;
         }
     }
-    out
 }
 
 /// ASCII bytes that are White_Space (`char::is_whitespace`); every other White_Space character
@@ -70,11 +77,27 @@ pub fn case_keeps(v: &[u8], to: CaseTo) -> bool {
 /// word starts at a letter or digit that follows anything else (space, hyphen, apostrophe,
 /// the start of the value).
 pub fn case(v: &str, to: CaseTo) -> String {
+    let mut out = String::new();
+    case_into(v, to, &mut out);
+    out
+}
+
+/// [`case`] into `out` (cleared first). ASCII text, most cells, is mapped byte by byte: for
+/// ASCII letters Unicode's default case mapping is the ASCII one.
+pub fn case_into(v: &str, to: CaseTo, out: &mut String) {
+    out.clear();
     match to {
-        CaseTo::Lower => v.to_lowercase(),
-        CaseTo::Upper => v.to_uppercase(),
+        CaseTo::Lower if v.is_ascii() => {
+            out.push_str(v);
+            out.make_ascii_lowercase();
+        }
+        CaseTo::Upper if v.is_ascii() => {
+            out.push_str(v);
+            out.make_ascii_uppercase();
+        }
+        CaseTo::Lower => out.push_str(&v.to_lowercase()),
+        CaseTo::Upper => out.push_str(&v.to_uppercase()),
         CaseTo::Title => {
-            let mut out = String::with_capacity(v.len());
             let mut at_start = true;
             for c in v.chars() {
                 if c.is_alphanumeric() {
@@ -89,7 +112,6 @@ pub fn case(v: &str, to: CaseTo) -> String {
                     at_start = true;
                 }
             }
-            out
         }
     }
 }
@@ -149,6 +171,27 @@ mod tests {
                     proptest::prop_assert_eq!(case(&v, to), v.clone());
                 }
             }
+        }
+    }
+
+    proptest::proptest! {
+        // The byte-by-byte mapping of ASCII text, and the reused buffer, give what the standard
+        // library's full Unicode case mapping gives (`str::to_lowercase`, `str::to_uppercase`:
+        // Unicode's default case mapping, the reference), whatever the buffer held before.
+        #[test]
+        fn case_into_agrees_with_the_standard_mapping(
+            v in proptest::string::string_regex("[ -~]{0,12}|[ aZ\u{130}\u{3a3}ßé-]{0,8}").unwrap(),
+            stale in proptest::string::string_regex(".{0,8}").unwrap(),
+        ) {
+            let mut buf = stale.clone();
+            case_into(&v, CaseTo::Lower, &mut buf);
+            proptest::prop_assert_eq!(&buf, &v.to_lowercase());
+            let mut buf = stale.clone();
+            case_into(&v, CaseTo::Upper, &mut buf);
+            proptest::prop_assert_eq!(&buf, &v.to_uppercase());
+            let mut buf = stale;
+            trim_into(&v, false, &mut buf);
+            proptest::prop_assert_eq!(buf.as_str(), v.trim_matches(char::is_whitespace));
         }
     }
 

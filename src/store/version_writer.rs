@@ -13,7 +13,7 @@ use crate::model::ColumnProfile;
 use crate::store::objects::{ObjectWriter, Objects};
 use crate::table::profile::Profiler;
 use crate::table::rowindex;
-use crate::table::write::push_record;
+use crate::table::write::{push_packed, push_record};
 
 /// The line breaks in `s` as the parser counts them: LF, CR LF, and a CR alone.
 fn line_breaks(s: &[u8]) -> u64 {
@@ -53,21 +53,35 @@ pub struct CanonicalWriter {
 impl CanonicalWriter {
     /// Starts a version with `header`; `null_tokens` count as blanks in its profile.
     pub fn new(objects: &Objects, header: &[String], null_tokens: &[String]) -> io::Result<Self> {
-        Self::start(Some(objects), header, null_tokens)
+        Self::start(Some(objects), header, null_tokens, &[])
     }
 
     /// A writer that computes the version's hash, row index hash and profile but keeps no
     /// bytes (replay of a step whose output is already stored); its objects cannot be finished.
     pub fn hashing_only(header: &[String], null_tokens: &[String]) -> io::Result<Self> {
-        Self::start(None, header, null_tokens)
+        Self::start(None, header, null_tokens, &[])
+    }
+
+    /// [`Self::new`] (or, without `objects`, [`Self::hashing_only`]) that leaves the columns
+    /// marked in `unprofiled` out of the profile ([`Profiler::leave_out`]): the caller knows
+    /// their profiles already and puts them into [`Written::profiles`].
+    pub fn leaving_out(
+        objects: Option<&Objects>,
+        header: &[String],
+        null_tokens: &[String],
+        unprofiled: &[bool],
+    ) -> io::Result<Self> {
+        Self::start(objects, header, null_tokens, unprofiled)
     }
 
     fn start(
         objects: Option<&Objects>,
         header: &[String],
         null_tokens: &[String],
+        unprofiled: &[bool],
     ) -> io::Result<Self> {
         let mut serial = Serial::new(objects, header, null_tokens)?;
+        serial.profiler.leave_out(unprofiled);
         let n_cols = header.len();
         let (to_writer, batches) = mpsc::sync_channel::<Batch>(2);
         let (give_back, spare) = mpsc::channel::<Batch>();
@@ -75,17 +89,12 @@ impl CanonicalWriter {
             .name("sluice-writer".into())
             .spawn(move || {
                 for mut b in batches {
-                    let mut fields: Vec<&[u8]> = Vec::with_capacity(n_cols);
                     let mut start = 0;
                     for row in 0..b.rows {
-                        fields.clear();
-                        for &end in &b.ends[row * n_cols..(row + 1) * n_cols] {
-                            fields.push(&b.bytes[start..end]);
-                            start = end;
-                        }
-                        serial.write_row(&fields)?;
+                        let ends = &b.ends[row * n_cols..(row + 1) * n_cols];
+                        serial.write_row(&b.bytes, start, ends)?;
+                        start = ends.last().copied().unwrap_or(start);
                     }
-                    drop(fields);
                     b.bytes.clear();
                     b.ends.clear();
                     b.rows = 0;
@@ -227,27 +236,26 @@ impl Serial {
         self.n_lines += line_breaks(rec);
     }
 
-    /// [`Self::account`] for a data row whose fields are known: line breaks can only be the
-    /// record's own and those inside its (quoted) fields.
-    fn account_row(&mut self, start: usize, fields: &[&[u8]]) {
-        self.n_bytes += (self.buf.len() - start) as u64;
-        self.n_lines += 1;
-        for f in fields {
-            if memchr::memchr2(b'\n', b'\r', f).is_some() {
-                self.n_lines += line_breaks(f);
-            }
-        }
-    }
-
-    fn write_row(&mut self, fields: &[&[u8]]) -> io::Result<()> {
-        debug_assert_eq!(fields.len(), self.header.len());
+    /// Writes one data row, held in `bytes` as its fields back to back from `start`, each
+    /// ending at its entry of `ends` (see [`push_packed`]).
+    fn write_row(&mut self, bytes: &[u8], start: usize, ends: &[usize]) -> io::Result<()> {
+        debug_assert_eq!(ends.len(), self.header.len());
         let entry_byte = self.n_bytes;
         let entry_line = self.n_lines + 1;
         self.rows.push(entry_byte, entry_line, &mut self.index_buf);
-        self.profiler.observe(fields.iter().copied());
-        let start = self.buf.len();
-        push_record(&mut self.buf, fields.iter().copied());
-        self.account_row(start, fields);
+        self.profiler.observe_packed(bytes, start, ends);
+        let before = self.buf.len();
+        let breaks = push_packed(&mut self.buf, bytes, start, ends);
+        self.n_bytes += (self.buf.len() - before) as u64;
+        // Line breaks can only be the record's own and those inside its (quoted) fields.
+        self.n_lines += 1;
+        if breaks {
+            let mut from = start;
+            for &end in ends {
+                self.n_lines += line_breaks(&bytes[from..end]);
+                from = end;
+            }
+        }
         self.n_rows += 1;
         if self.buf.len() >= 1 << 20 {
             self.table.write(&self.buf)?;
