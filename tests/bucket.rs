@@ -193,7 +193,13 @@ fn ok_as(s: &Sandbox, who: &str, args: &[&str]) -> String {
 
 /// The hashes of every object the store's database records as stored.
 fn recorded_objects(s: &Sandbox) -> Vec<String> {
-    let db = rusqlite::Connection::open(s.path().join("sluice-store/lineage.db")).unwrap();
+    recorded_objects_of(s, ".")
+}
+
+/// [`recorded_objects`] of the store in the project folder `dir` under the sandbox.
+fn recorded_objects_of(s: &Sandbox, dir: &str) -> Vec<String> {
+    let db =
+        rusqlite::Connection::open(s.path().join(dir).join("sluice-store/lineage.db")).unwrap();
     let mut st = db
         .prepare(
             "SELECT o.hash FROM objects o WHERE NOT EXISTS (SELECT 1 FROM versions v \
@@ -916,6 +922,118 @@ fn delete_status(name: &str, who: &str, key: &str) -> u16 {
 /// refuses it); a recording key records through sluice as before; and nobody, the server's
 /// administrator included, can delete one of the store's objects, singly or in a batch: the
 /// store still verifies intact afterwards.
+/// A store of one's own published into a shared store whose lineage is on the server and
+/// whose objects are in a bucket: every stored object lands in the bucket (listed there, not
+/// in the folder), a second machine that joins reads the same bytes, and a working copy
+/// borrowed in part from it reads its dataset and verifies intact.
+#[test]
+fn publish_into_a_store_on_a_server_and_a_bucket_and_borrow_part_of_it() {
+    let server = pg::server();
+    let conn = server.new_database("published_to_bucket");
+    let (url, name) = fresh_bucket();
+    let s = Sandbox::new();
+    ok_as(&s, "recorder", &["demo", "local"]);
+    // Without the server, a bucket is refused: an existing shared store says where its
+    // objects are.
+    let alone = run_as(
+        &s,
+        "recorder",
+        &[
+            "--store",
+            "local",
+            "publish",
+            "--to",
+            "shared",
+            "--object-bucket",
+            &url,
+        ],
+    );
+    assert_eq!(alone.code, 2, "{}", alone.stderr);
+    assert!(
+        alone.stderr.contains("--lineage-server"),
+        "{}",
+        alone.stderr
+    );
+    let sent: serde_json::Value = serde_json::from_str(&ok_as(
+        &s,
+        "recorder",
+        &[
+            "--store",
+            "local",
+            "publish",
+            "--to",
+            "shared",
+            "--lineage-server",
+            &conn,
+            "--object-bucket",
+            &url,
+            "--json",
+        ],
+    ))
+    .unwrap();
+    assert!(sent["objects_copied"].as_u64().unwrap() > 20, "{sent}");
+    let in_bucket = listed(&name);
+    let local_objects = recorded_objects_of(&s, "local");
+    assert!(!local_objects.is_empty());
+    for h in &local_objects {
+        assert!(
+            in_bucket.contains(h),
+            "{h} was not published into the bucket"
+        );
+    }
+    assert_eq!(
+        std::fs::read_dir(s.path().join("shared/sluice-store/segments"))
+            .map(|d| d.count())
+            .unwrap_or(0),
+        0,
+        "the shared store's objects are in the bucket, not its folder"
+    );
+    let joined = [
+        "setup",
+        "second",
+        "--lineage-server",
+        &conn,
+        "--object-bucket",
+        &url,
+    ];
+    ok_as(&s, "recorder", &joined);
+    let raw = ok_as(
+        &s,
+        "reader",
+        &["--store", "local", "retrieve", "q3_by_shop"],
+    );
+    for dir in ["shared", "second"] {
+        assert_eq!(
+            ok_as(&s, "reader", &["--store", dir, "retrieve", "q3_by_shop"]),
+            raw,
+            "{dir}"
+        );
+        let v = ok_as(&s, "reader", &["--store", dir, "verify"]);
+        assert!(v.starts_with("intact:"), "{dir}: {v}");
+    }
+    ok_as(
+        &s,
+        "reader",
+        &[
+            "borrow",
+            "shared",
+            "--into",
+            "part",
+            "--dataset",
+            "q3_by_shop",
+        ],
+    );
+    assert_eq!(
+        ok_as(&s, "reader", &["--store", "part", "retrieve", "q3_by_shop"]),
+        raw
+    );
+    let v = ok_as(&s, "reader", &["--store", "part", "verify"]);
+    assert!(
+        v.starts_with("intact:") && v.contains("borrowed in part:"),
+        "{v}"
+    );
+}
+
 #[test]
 fn the_roles_bucket_policy_is_enforced_by_the_server() {
     let name = format!(

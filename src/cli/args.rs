@@ -398,7 +398,8 @@ pub enum Command {
         first (every object re-hashed, the audit chain and its row commitments checked) and each object is re-hashed as it \
         is copied. The shared store must hold nothing yet or an earlier part of this store's history (a working copy taken \
         with `sluice borrow`); if it moved on, nothing is copied and the entry where the two part is named. \
-        With --lineage-server, DIR is a new shared store made for this store, its lineage in that (empty) server database.\n\n\
+        With --lineage-server, DIR is a new shared store made for this store, its lineage in that (empty) server database \
+        (and its objects in the bucket --object-bucket names, when given).\n\n\
         Examples:\n  sluice publish --to /srv/three-rivers/q3 --lineage-server \"host=db.example dbname=q3 user=ada\"\n  \
         sluice publish --to /srv/three-rivers/q3"
     )]
@@ -410,6 +411,10 @@ pub enum Command {
         /// database), then publish into it
         #[arg(long, value_name = "CONN")]
         lineage_server: Option<String>,
+        /// With --lineage-server: the new shared store keeps its objects in this S3-compatible
+        /// bucket, http(s)://HOST[:PORT]/BUCKET[/PREFIX]
+        #[arg(long, value_name = "URL")]
+        object_bucket: Option<String>,
         /// Print JSON (fields: examples/reference.md, "JSON output"; schema/output/)
         #[arg(long)]
         json: bool,

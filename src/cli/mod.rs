@@ -250,8 +250,16 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Command::Publish {
             to,
             lineage_server,
+            object_bucket,
             json,
-        } => shared::publish(&ctx, to, lineage_server.as_deref(), *json, out),
+        } => shared::publish(
+            &ctx,
+            to,
+            lineage_server.as_deref(),
+            object_bucket.as_deref(),
+            *json,
+            out,
+        ),
         Command::Borrow {
             from,
             into,

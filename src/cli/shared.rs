@@ -27,15 +27,29 @@ pub fn publish(
     ctx: &Context<'_>,
     to: &Path,
     lineage_server: Option<&str>,
+    object_bucket: Option<&str>,
     as_json: bool,
     out: &mut impl Write,
 ) -> anyhow::Result<ExitCode> {
     let local = ctx.open_store()?;
-    let shared = match lineage_server {
+    let shared = match (lineage_server, object_bucket) {
         // A new shared store for this one: made without an entry of its own, so that its
         // history is this store's, entry for entry.
-        Some(conn) => Store::init_with(to, Some(conn))?,
-        None => Store::open(to)?,
+        (Some(conn), bucket) => Store::init_at(
+            to,
+            &sluice::store::location::Location {
+                lineage: Some(conn.to_string()),
+                objects: bucket.map(str::to_string),
+                ..Default::default()
+            },
+        )?,
+        (None, Some(_)) => {
+            return Err(sluice::Error::usage(
+                "--object-bucket names where a new shared store keeps its objects; give it with --lineage-server CONN (an existing shared store already says where its objects are)",
+            )
+            .into())
+        }
+        (None, None) => Store::open(to)?,
     };
     let m = sluice::sharing::publish(&local, &shared)?;
     if as_json {

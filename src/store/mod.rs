@@ -162,6 +162,27 @@ impl Store {
         agent: &crate::model::Agent,
         at: &location::Location,
     ) -> Result<(Store, SetUp)> {
+        Store::made_at(project, at, || {
+            Store::init_recorded_how(project, at.lineage.as_deref(), agent)
+        })
+    }
+
+    /// Creates a new store whose lineage or objects live where `at` says, recording nothing
+    /// (`publish --lineage-server` makes its new shared store so: its history is then the
+    /// published store's, entry for entry).
+    pub fn init_at(project: &Path, at: &location::Location) -> Result<Store> {
+        Store::made_at(project, at, || {
+            Store::init_with(project, at.lineage.as_deref())
+        })
+    }
+
+    /// Runs `make` (which creates the store in `project`) after writing down the bucket `at`
+    /// names, checked reachable first; a refusal leaves no store folder behind.
+    fn made_at<T>(
+        project: &Path,
+        at: &location::Location,
+        make: impl FnOnce() -> Result<T>,
+    ) -> Result<T> {
         if let Some(url) = &at.objects {
             bucket::check_reachable(url).map_err(|e| Error::io(Path::new(url), e))?;
         }
@@ -180,7 +201,7 @@ impl Store {
             }
             .write(&dir)?;
         }
-        let made = Store::init_recorded_how(project, at.lineage.as_deref(), agent);
+        let made = make();
         if made.is_err() && created {
             // A refused server (a password in its connection string, a wrong address) leaves
             // nothing behind.
