@@ -381,32 +381,7 @@ fn carrying_out_an_order_erases_one_person_everywhere_and_keeps_the_proof_of_the
 
     // Before: a sign-off (OpenSSH's ssh-keygen makes the key) of a version holding her row,
     // and a report of the summary her order was counted in.
-    let key = s.path().join("ada");
-    let st = std::process::Command::new("ssh-keygen")
-        .args(["-q", "-t", "ed25519", "-N", "", "-C", "ada", "-f"])
-        .arg(&key)
-        .status()
-        .expect("ssh-keygen runs (Debian: apt-get install openssh-client; tests/run installs it)");
-    assert!(st.success());
-    s.ok(&[
-        "signatories",
-        "--admit",
-        "ada.pub",
-        "--name",
-        "Ada Moss",
-        "--signing-key",
-        "ada",
-    ]);
-    s.ok(&[
-        "endorse",
-        "reviewed_orders:v2",
-        "--meaning",
-        "approved",
-        "--signing-key",
-        "ada",
-        "-o",
-        "approved.endorsement",
-    ]);
+    sign_off(&s, "reviewed_orders:v2");
     s.ok(&["report", "q3_by_shop", "-o", "q3-report.md"]);
     let reviewed_hash = s.json(&["about", "reviewed_orders:v2", "--json"])["version"]["hash"]
         .as_str()
@@ -620,6 +595,8 @@ const POINT_ERASED_FORM_AT: &str =
 const POINT_LATEST_ERASED_FORM_AT: &str =
     "UPDATE erased_versions SET stored_hash = ?1 WHERE version_id = ?2 AND order_id = 2";
 
+/// Ada Moss admitted as a signatory with a key ssh-keygen makes, and her approval of
+/// `version` written to `approved.endorsement`.
 fn sign_off(s: &Sandbox, version: &str) {
     let key = s.path().join("ada");
     let st = std::process::Command::new("ssh-keygen")

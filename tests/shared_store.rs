@@ -90,6 +90,24 @@ fn server_counts(server: &pg::Server, db: &str) -> (u64, u64) {
     (it.next().unwrap(), it.next().unwrap())
 }
 
+/// The demo recorded in `local` and published into a new shared store `shared` whose lineage
+/// is in the new server database `db`.
+fn demo_published(server: &pg::Server, db: &str) -> Sandbox {
+    let conn = server.new_database(db);
+    let s = Sandbox::new();
+    s.ok(&["demo", "local"]);
+    s.ok(&[
+        "--store",
+        "local",
+        "publish",
+        "--to",
+        "shared",
+        "--lineage-server",
+        &conn,
+    ]);
+    s
+}
+
 /// A local store published into a new shared store, borrowed into two working copies, each
 /// recording on its own: the first publishes back, the second is refused with the entry where
 /// the two histories part named, and the shared store is as the first left it. Every copy
@@ -215,18 +233,7 @@ fn publish_and_borrow_name_a_shared_store_that_moved_on() {
 #[test]
 fn a_borrow_in_part_copies_one_dataset_and_what_it_is_made_from() {
     let server = pg::server();
-    let conn = server.new_database("borrowed_in_part");
-    let s = Sandbox::new();
-    s.ok(&["demo", "local"]);
-    s.ok(&[
-        "--store",
-        "local",
-        "publish",
-        "--to",
-        "shared",
-        "--lineage-server",
-        &conn,
-    ]);
+    let s = demo_published(server, "borrowed_in_part");
     let whole: Value =
         serde_json::from_str(&s.ok(&["borrow", "shared", "--into", "whole", "--json"])).unwrap();
     let part: Value = serde_json::from_str(&s.ok(&[
@@ -346,18 +353,7 @@ fn a_borrow_in_part_copies_one_dataset_and_what_it_is_made_from() {
 #[test]
 fn a_killed_publish_leaves_the_shared_store_as_it_was() {
     let server = pg::server();
-    let conn = server.new_database("killed_publish");
-    let s = Sandbox::new();
-    s.ok(&["demo", "local"]);
-    s.ok(&[
-        "--store",
-        "local",
-        "publish",
-        "--to",
-        "shared",
-        "--lineage-server",
-        &conn,
-    ]);
+    let s = demo_published(server, "killed_publish");
     let before = server_counts(server, "killed_publish");
     for i in 0..4 {
         s.file(
