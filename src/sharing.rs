@@ -65,6 +65,11 @@ fn copy_objects(
                 "the objects table names {hex:?}, which is not a BLAKE3 hash; run `sluice verify`"
             )))
         })?;
+        // Left in the shared store by a borrow in part: `publish` checked that the target
+        // holds it, and a trial copy's target is the working copy that lacks it too.
+        if from.objects.is_left_in_shared(&hash) {
+            continue;
+        }
         if to.objects.exists(&hash) {
             moved.objects_present += 1;
             continue;
@@ -159,6 +164,18 @@ pub fn publish(local: &Store, shared: &Store) -> Result<Moved> {
         }
     }
     copy(local, shared, &BTreeSet::new())
+}
+
+/// Records in `store` what its trial copy `trial` ([`Store::trial`]) recorded: the objects it
+/// wrote (each re-hashed as it is copied), then the trial's lineage in one transaction, as
+/// `publish` copies a store. `Ok(None)` when `store` recorded something since the trial was
+/// made (another writer): its lineage is then left as it was and the caller records afresh.
+pub fn adopt_trial(trial: &Store, store: &Store) -> Result<Option<Moved>> {
+    match copy(trial, store, &BTreeSet::new()) {
+        Ok(moved) => Ok(Some(moved)),
+        Err(e) if matches!(e.kind(), ErrorKind::MovedOn(_)) => Ok(None),
+        Err(e) => Err(e),
+    }
 }
 
 /// The objects a working copy of `datasets` does without: the bytes and row indexes (and

@@ -346,6 +346,12 @@ fn the_same_chain_runs_on_next_quarters_export_and_each_step_names_the_one_it_re
     let summary = d.run(&["retrieve", "q3_by_shop:v2"]).stdout;
     assert!(summary.starts_with("shop,month,count,sum_parts_cost,mean_labour_hours\n"));
     assert_contains(&d.ok(&["verify"]), "intact");
+    // The rerun's records are the trial run's, copied in: every recomputable version it made
+    // computes again to its recorded hash, and the trial left nothing in the store's tmp/.
+    let deep = d.json(&["verify", "--deep", "--json"]);
+    assert_eq!(deep["intact"], true, "{deep}");
+    assert_eq!(deep["leftover_temp_files"], 0, "{deep}");
+    assert!(deep["versions_recomputed"].as_u64().unwrap() > 0, "{deep}");
 
     // A name the chain does not start from is refused before anything is recorded.
     let snapshot = d.snapshot();

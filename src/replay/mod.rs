@@ -525,24 +525,33 @@ pub fn onto(
         bindings,
         agent: agent.clone(),
     };
-    // All or nothing: the whole chain runs first in a trial copy of the store, whose records
-    // and objects are thrown away, so that a step that fails on the new data (a value it cannot
-    // read, a hold point) stops the rerun before anything is recorded. The steps are
-    // deterministic, so the recorded run that follows passes where the trial did.
+    // All or nothing: the whole chain runs first in a trial copy of the store, so that a step
+    // that fails on the new data (a value it cannot read, a hold point) stops the rerun before
+    // anything is recorded. When it passes, what the trial recorded is copied into the store
+    // in one transaction (objects first), as `publish` copies a store, rather than running
+    // the chain a second time; if another writer recorded meanwhile, the chain is run again
+    // for real (the steps are deterministic, so it passes where the trial did).
     let mut trial_store = store.trial()?;
     let trial = crate::plan::run(&mut trial_store, &plan, &opts);
+    let adopted = match trial {
+        Err(failure) => {
+            trial_store.end_trial();
+            return Ok(Err(crate::plan::RunFailure {
+                done: Vec::new(),
+                at: format!(
+                    "{} in a trial run of the whole chain (versions named as they would have been)",
+                    failure.at
+                ),
+                error: failure.error,
+            }));
+        }
+        Ok(report) => crate::sharing::adopt_trial(&trial_store, store).map(|m| m.map(|_| report)),
+    };
     trial_store.end_trial();
-    if let Err(failure) = trial {
-        return Ok(Err(crate::plan::RunFailure {
-            done: Vec::new(),
-            at: format!(
-                "{} in a trial run of the whole chain (versions named as they would have been)",
-                failure.at
-            ),
-            error: failure.error,
-        }));
+    match adopted? {
+        Some(report) => Ok(Ok(report)),
+        None => Ok(crate::plan::run(store, &plan, &opts)),
     }
-    Ok(crate::plan::run(store, &plan, &opts))
 }
 
 /// The checks of [`onto`] before anything is recorded: `file` exists and can be read as the
