@@ -436,8 +436,8 @@ pub enum Command {
         /// The project folder for the working copy (default: the working directory)
         #[arg(long, value_name = "DIR")]
         into: Option<PathBuf>,
-        /// Copy the bytes of this dataset's versions and of what they are made from only
-        /// (repeat for more datasets; default: everything)
+        /// Copy only the bytes of this dataset's versions and of the versions they are made
+        /// from; the lineage is copied whole (repeat for more datasets; default: everything)
         #[arg(long, value_name = "NAME")]
         dataset: Vec<String>,
         /// Print JSON (fields: examples/reference.md, "JSON output"; schema/output/)
