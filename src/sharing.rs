@@ -171,7 +171,16 @@ pub fn publish(local: &Store, shared: &Store) -> Result<Moved> {
 /// `publish` copies a store. `Ok(None)` when `store` recorded something since the trial was
 /// made (another writer): its lineage is then left as it was and the caller records afresh.
 pub fn adopt_trial(trial: &Store, store: &Store) -> Result<Option<Moved>> {
-    match copy(trial, store, &BTreeSet::new()) {
+    // The objects the store's own lineage names are there already (each was made durable
+    // before the transaction that named it): only the trial's new ones are looked at, so a
+    // store whose objects are in a bucket is not asked about every object it holds.
+    let there: BTreeSet<String> = store
+        .lineage
+        .objects()?
+        .into_iter()
+        .map(|(hash, _, _)| hash)
+        .collect();
+    match copy(trial, store, &there) {
         Ok(moved) => Ok(Some(moved)),
         Err(e) if matches!(e.kind(), ErrorKind::MovedOn(_)) => Ok(None),
         Err(e) => Err(e),
