@@ -403,22 +403,8 @@ fn verify_names_an_object_changed_or_removed_in_the_bucket() {
 #[test]
 fn a_command_killed_at_any_io_point_of_an_upload_leaves_the_store_intact() {
     let csv = orders_csv(2_000);
-    // The unstopped run's hashes.
-    let (url, _) = fresh_bucket();
-    let reference = Sandbox::new();
-    ok_as(
-        &reference,
-        "recorder",
-        &["setup", ".", "--object-bucket", &url],
-    );
-    reference.file("orders.csv", &csv);
-    ok_as(
-        &reference,
-        "recorder",
-        &["receive", "orders.csv", "--as", "orders", "--why", "t"],
-    );
-    let want = version_hashes(&reference, "reader");
     let args = ["receive", "orders.csv", "--as", "orders", "--why", "t"];
+    let (want, _) = unstopped_run(("orders.csv", &csv), &args);
     let points = stopped_at_each_point(&want, ("orders.csv", &csv), &args, "", |s, name, what| {
         // Whatever the bucket holds, the store is intact: nothing it references is missing
         // or partial.
@@ -431,6 +417,21 @@ fn a_command_killed_at_any_io_point_of_an_upload_leaves_the_store_intact() {
         }
     });
     assert!(points >= 6, "only {points} I/O points were passed");
+}
+
+/// The recording command `args` run unstopped on `file` in a fresh store in a fresh bucket:
+/// the version hashes it records, and the bucket's name or prefix.
+fn unstopped_run(file: (&str, &str), args: &[&str]) -> (Vec<String>, String) {
+    let (url, place) = fresh_bucket();
+    let reference = Sandbox::new();
+    ok_as(
+        &reference,
+        "recorder",
+        &["setup", ".", "--object-bucket", &url],
+    );
+    reference.file(file.0, file.1);
+    ok_as(&reference, "recorder", args);
+    (version_hashes(&reference, "reader"), place)
 }
 
 /// Runs the recording command `args` (as the recording key, on `file` written into a fresh
@@ -1238,14 +1239,6 @@ fn listed_sizes(prefix: &str) -> std::collections::BTreeMap<String, u64> {
 #[test]
 fn a_command_killed_during_a_multipart_upload_leaves_the_store_intact() {
     let csv = incompressible_csv(280_000);
-    let (url, prefix) = fresh_bucket();
-    let reference = Sandbox::new();
-    ok_as(
-        &reference,
-        "recorder",
-        &["setup", ".", "--object-bucket", &url],
-    );
-    reference.file("signatures.csv", &csv);
     let args = [
         "receive",
         "signatures.csv",
@@ -1254,8 +1247,7 @@ fn a_command_killed_during_a_multipart_upload_leaves_the_store_intact() {
         "--why",
         "t",
     ];
-    ok_as(&reference, "recorder", &args);
-    let want = version_hashes(&reference, "reader");
+    let (want, prefix) = unstopped_run(("signatures.csv", &csv), &args);
     let whole = listed_sizes(&prefix);
     assert!(
         whole.values().any(|&n| n > 16 << 20),

@@ -513,23 +513,11 @@ fn carrying_out_an_order_erases_one_person_everywhere_and_keeps_the_proof_of_the
     for e in store.lineage.erased_versions().unwrap() {
         let v = store.lineage.version_by_id(e.version_id).unwrap().unwrap();
         let salts = sluice::commitment::Salts::from_bytes(&e.salts).unwrap();
-        let kept: BTreeSet<[u8; 32]> = e
-            .kept
-            .chunks_exact(40)
-            .map(|c| c[8..].try_into().unwrap())
-            .collect();
         for (i, c) in e.kept.chunks_exact(40).enumerate() {
             let cell = u64::from_le_bytes(c[..8].try_into().unwrap());
             assert_eq!(salts.salt(cell), None, "{} erased cell {i}", v.label());
         }
-        for cell in 0..v.n_rows * v.header.len() as u64 {
-            let Some(salt) = salts.salt(cell) else {
-                continue;
-            };
-            for g in guesses {
-                assert!(!kept.contains(&sluice::commitment::leaf(&salt, g)));
-            }
-        }
+        no_salt_confirms_a_guess(&v, &salts, &e.kept, &guesses);
     }
 
     // A remaining cell changed in an erased version's stored form is detected.
@@ -548,6 +536,32 @@ const SECOND_ORDER: &[&str] = &[
 const SECOND: &[&str] = &["elska halley", "elska.halley@example.org"];
 
 /// Admits a signatory (a key made by OpenSSH's ssh-keygen) and signs `version` off.
+/// No salt `salts` still holds for a cell of `v`, with any of `guesses`, gives one of the leaves
+/// kept for the erased cells (`kept`: 8 bytes of cell number and the 32-byte leaf, each).
+fn no_salt_confirms_a_guess(
+    v: &sluice::model::Version,
+    salts: &sluice::commitment::Salts,
+    kept: &[u8],
+    guesses: &[&[u8]],
+) {
+    let kept: BTreeSet<[u8; 32]> = kept
+        .chunks_exact(40)
+        .map(|c| c[8..].try_into().unwrap())
+        .collect();
+    for cell in 0..v.n_rows * v.header.len() as u64 {
+        let Some(salt) = salts.salt(cell) else {
+            continue;
+        };
+        for g in guesses {
+            assert!(
+                !kept.contains(&sluice::commitment::leaf(&salt, g)),
+                "{}: a guess confirmed at cell {cell}",
+                v.label()
+            );
+        }
+    }
+}
+
 /// Points the erased form of `quillby_orders:v1` at a copy of its bytes with one remaining
 /// cell changed ("Zelda Gilmore" to "Zelda Gilmorf"), by `repoint` (parameters: the copy's
 /// hash, the version's id), and holds `verify` to naming the commitment that no longer holds.
@@ -775,19 +789,7 @@ fn a_second_order_on_versions_an_earlier_one_reached_erases_a_second_person_and_
         if by_second.contains_key(&v.label()) && e.order_id == 1 {
             assert!(e.salts.is_empty(), "{}: order 1 keeps its salts", v.label());
         }
-        let kept: BTreeSet<[u8; 32]> = e
-            .kept
-            .chunks_exact(40)
-            .map(|c| c[8..].try_into().unwrap())
-            .collect();
-        for cell in 0..v.n_rows * v.header.len() as u64 {
-            let Some(salt) = salts.salt(cell) else {
-                continue;
-            };
-            for g in guesses {
-                assert!(!kept.contains(&sluice::commitment::leaf(&salt, g)));
-            }
-        }
+        no_salt_confirms_a_guess(&v, &salts, &e.kept, &guesses);
     }
 
     // A remaining cell changed in the stored form of a version both orders reached is seen.

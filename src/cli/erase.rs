@@ -163,16 +163,7 @@ fn carried_text(
         done.removed.segments_before, done.removed.segments_after
     )?;
     unsalted_lines(out, reach)?;
-    if !reach.not_followed.is_empty() {
-        writeln!(out)?;
-        writeln!(
-            out,
-            "steps the lineage does not let sluice follow (check their outputs by hand; nothing was erased there):"
-        )?;
-        for n in &reach.not_followed {
-            writeln!(out, "  step {} making {}: {}", n.step, n.version, n.why)?;
-        }
-    }
+    not_followed_lines(out, reach, "; nothing was erased there")?;
     writeln!(out)?;
     writeln!(
         out,
@@ -310,21 +301,29 @@ fn survey_text(out: &mut impl Write, order: &Order, reach: &Reach) -> std::io::R
         }
     }
     unsalted_lines(out, reach)?;
-    if !reach.not_followed.is_empty() {
-        writeln!(out)?;
-        writeln!(
-            out,
-            "steps the lineage does not let sluice follow (check their outputs by hand):"
-        )?;
-        for n in &reach.not_followed {
-            writeln!(out, "  step {} making {}: {}", n.step, n.version, n.why)?;
-        }
-    }
+    not_followed_lines(out, reach, "")?;
     Ok(())
 }
 
 /// The reached versions whose column profiles were recorded by an earlier build, whose audit
 /// entries committed to them without a salt.
+/// The steps whose outputs the reach could not follow, when there are any; `after` ends the
+/// advice in the heading.
+fn not_followed_lines(out: &mut impl Write, reach: &Reach, after: &str) -> std::io::Result<()> {
+    if reach.not_followed.is_empty() {
+        return Ok(());
+    }
+    writeln!(out)?;
+    writeln!(
+        out,
+        "steps the lineage does not let sluice follow (check their outputs by hand{after}):"
+    )?;
+    for n in &reach.not_followed {
+        writeln!(out, "  step {} making {}: {}", n.step, n.version, n.why)?;
+    }
+    Ok(())
+}
+
 fn unsalted_lines(out: &mut impl Write, reach: &Reach) -> std::io::Result<()> {
     if reach.profiles_committed_unsalted.is_empty() {
         return Ok(());
