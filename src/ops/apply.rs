@@ -10,7 +10,7 @@
 
 use std::io::{self, Read};
 
-use super::rowwise::{Looker, Mapper, OwnedRow, RowStep, RowStepEnd, Table};
+use super::rowwise::{Looker, Mapper, OwnedRow, RowStep, RowStepEnd, Table, Taken};
 use super::Operation;
 use crate::clock;
 use crate::error::{Error, ErrorKind, Result};
@@ -404,26 +404,43 @@ pub fn compute_chain(
             opts,
         });
     }
+    for s in &mut stages {
+        s.step.expect_rows(input.n_rows);
+    }
     each_input_row(store, input, |in_row, r| {
-        let Some((first, rest)) = stages.split_first_mut() else {
-            return Ok(());
-        };
-        if !first.step.row(in_row, &r, &mut first.out)? {
-            return Ok(());
-        }
-        let (bytes, ends) = first.out.packed();
-        first.writer.write_packed(bytes, ends).map_err(store_io)?;
-        first.n_out += 1;
-        let mut prev = first;
-        for stage in rest {
-            let row = prev.n_out - 1;
-            if !stage.step.row(row, &prev.out.record(row), &mut stage.out)? {
-                break;
-            }
-            let (bytes, ends) = stage.out.packed();
-            stage.writer.write_packed(bytes, ends).map_err(store_io)?;
+        // Where the current row is: the input's record, or the output buffer of the latest
+        // stage that built one (a stage whose row is its input row copies nothing).
+        let mut held: Option<usize> = None;
+        let mut row = in_row;
+        for k in 0..stages.len() {
+            let (before, after) = stages.split_at_mut(k);
+            let stage = &mut after[0];
+            let record = match held {
+                None if k == 0 => RawRecord { ..r },
+                None => RawRecord {
+                    fields: r.fields,
+                    ends: r.ends,
+                    byte: 0,
+                    line: 0,
+                    index: row,
+                },
+                Some(j) => before[j].out.record(row),
+            };
+            let (bytes, ends) = match stage.step.take(row, &record, &mut stage.out)? {
+                Taken::Removed => break,
+                Taken::Same => (record.fields, record.ends),
+                Taken::Built => {
+                    held = Some(k);
+                    stage.out.packed()
+                }
+            };
+            let end = ends.last().copied().unwrap_or(0);
+            stage
+                .writer
+                .write_packed(&bytes[..end], ends)
+                .map_err(store_io)?;
+            row = stage.n_out;
             stage.n_out += 1;
-            prev = stage;
         }
         Ok(())
     })?;

@@ -8,6 +8,7 @@ pub mod apply;
 pub mod date;
 pub mod decimal;
 pub mod derive;
+mod keyset;
 pub mod number;
 pub mod predicate;
 pub mod rowwise;

@@ -12,7 +12,9 @@
 
 use std::collections::HashMap;
 
-use xxhash_rust::xxh3::Xxh3;
+use xxhash_rust::xxh3::xxh3_128;
+
+use super::keyset::KeySet;
 
 use super::date::{parse_date, DateProblem};
 use super::number::parse_amount;
@@ -57,6 +59,26 @@ impl OwnedRow {
     pub fn packed(&self) -> (&[u8], &[usize]) {
         (&self.bytes, &self.ends)
     }
+
+    /// Makes this row a copy of `r`, in one piece.
+    pub fn copy_of(&mut self, r: &RawRecord<'_>) {
+        let end = r.ends.last().copied().unwrap_or(0);
+        self.bytes.clear();
+        self.bytes.extend_from_slice(&r.fields[..end]);
+        self.ends.clear();
+        self.ends.extend_from_slice(r.ends);
+    }
+}
+
+/// What a [`RowStep`] made of one input row.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Taken {
+    /// The step removes the row (recorded as a drop).
+    Removed,
+    /// The output row holds the input row's values in the same order.
+    Same,
+    /// The output row is in the buffer given.
+    Built,
 }
 
 /// Puts `value` into a reused buffer.
@@ -112,6 +134,9 @@ pub struct RowStep {
     /// text, why).
     failures: Vec<(u64, String, String, &'static str)>,
     out_row: u64,
+    /// Output column `o` holds input column `o` (nothing derived or looked up, none
+    /// dropped or moved): a row with no new value is the input row.
+    same_columns: bool,
 }
 
 impl RowStep {
@@ -136,6 +161,10 @@ impl RowStep {
         let derivs: Vec<Option<super::derive::Derivation>> =
             shaped.iter().map(|(_, _, d)| d.clone()).collect();
         let columns: Vec<(String, usize)> = shaped.into_iter().map(|(n, i, _)| (n, i)).collect();
+        let same_columns = looker.is_none()
+            && columns.len() == input.header.len()
+            && columns.iter().enumerate().all(|(o, (_, c))| *c == o)
+            && derivs.iter().all(Option::is_none);
         let fill = FillFrom::new(op, input)?;
         let replacer = Replacer::new(op)?;
         let chooser = RowChooser::new(store, input, op, &targets)?;
@@ -168,6 +197,7 @@ impl RowStep {
             notes: Vec::new(),
             failures: Vec::new(),
             out_row: 0,
+            same_columns,
         })
     }
 
@@ -211,8 +241,29 @@ impl RowStep {
     /// Takes input row `in_row`: false when the step removes it (recorded as a drop), else
     /// true with its output row in `out`.
     pub fn row(&mut self, in_row: u64, r: &RawRecord<'_>, out: &mut OwnedRow) -> Result<bool> {
+        Ok(match self.take(in_row, r, out)? {
+            Taken::Removed => false,
+            Taken::Same => {
+                out.copy_of(r);
+                true
+            }
+            Taken::Built => true,
+        })
+    }
+
+    /// Makes room for `rows` input rows at once where the step keeps a table of them
+    /// (`dedupe`), when the input's row count was not known when the step was prepared.
+    pub fn expect_rows(&mut self, rows: u64) {
+        if let RowChooser::Dedupe { chosen, .. } = &mut self.chooser {
+            chosen.expect(rows);
+        }
+    }
+
+    /// [`Self::row`] that leaves `out` alone when the output row is the input row, value for
+    /// value ([`Taken::Same`]), so that a chain of steps need not copy it.
+    pub fn take(&mut self, in_row: u64, r: &RawRecord<'_>, out: &mut OwnedRow) -> Result<Taken> {
         if self.chooser.drops(in_row, r, &mut self.drops) {
-            return Ok(false);
+            return Ok(Taken::Removed);
         }
         self.runs.push(self.out_row, in_row);
         let out_row = self.out_row;
@@ -375,6 +426,10 @@ impl RowStep {
                 self.is_new[o] = true;
             }
         }
+        self.out_row += 1;
+        if self.same_columns && !self.is_new.contains(&true) {
+            return Ok(Taken::Same);
+        }
         out.clear();
         for o in 0..self.columns.len() {
             if self.is_new[o] {
@@ -383,8 +438,7 @@ impl RowStep {
                 out.push(r.field(self.columns[o].1));
             }
         }
-        self.out_row += 1;
-        Ok(true)
+        Ok(Taken::Built)
     }
 
     /// Ends the step: the cells that could not be read are an error naming them; otherwise
@@ -497,15 +551,16 @@ impl RowStep {
 
 /// The 128-bit XXH3 of some fields of a row, each preceded by its length, so that rows are
 /// compared by value without keeping them. Two different rows share a hash with probability
-/// about n²/2¹²⁹ for n rows.
-pub(crate) fn row_key(r: &RawRecord<'_>, cols: &[usize]) -> u128 {
-    let mut h = Xxh3::new();
+/// about n²/2¹²⁹ for n rows. The fields are written out into `scratch` (reused from row to
+/// row) and hashed at once.
+pub(crate) fn row_key(r: &RawRecord<'_>, cols: &[usize], scratch: &mut Vec<u8>) -> u128 {
+    scratch.clear();
     for &c in cols {
         let v = r.field(c);
-        h.update(&(v.len() as u64).to_le_bytes());
-        h.update(v);
+        scratch.extend_from_slice(&(v.len() as u64).to_le_bytes());
+        scratch.extend_from_slice(v);
     }
-    h.digest128()
+    xxh3_128(scratch)
 }
 
 pub(crate) const AMBIGUOUS: &str = "ambiguous day and month";
@@ -843,9 +898,11 @@ pub(crate) enum RowChooser {
         cols: Vec<usize>,
         /// keep first: the first row seen of each key; keep last: the last row of each key,
         /// found by a pass over the input before the main one.
-        chosen: HashMap<u128, u64>,
+        chosen: KeySet,
         keep_last: bool,
         what: String,
+        /// The key fields of the current row, written out for [`row_key`].
+        scratch: Vec<u8>,
     },
 }
 
@@ -882,10 +939,11 @@ impl RowChooser {
             _ => return Ok(RowChooser::All),
         };
         let keep_last = *keep == KeepWhich::Last;
-        let mut chosen = HashMap::new();
+        let mut chosen = KeySet::with_expected(input.n_rows);
+        let mut scratch = Vec::new();
         if keep_last {
             store.objects.each_row(input, |row, r| {
-                chosen.insert(row_key(&r, targets), row);
+                chosen.insert(row_key(&r, targets, &mut scratch), row);
                 Ok(())
             })?;
         }
@@ -898,6 +956,7 @@ impl RowChooser {
             chosen,
             keep_last,
             what,
+            scratch,
         })
     }
 
@@ -924,15 +983,16 @@ impl RowChooser {
             chosen,
             keep_last,
             what,
+            scratch,
         } = self
         else {
             return false;
         };
-        let k = row_key(r, cols);
+        let k = row_key(r, cols, scratch);
         let kept = if *keep_last {
-            chosen.get(&k).copied().unwrap_or(row)
+            chosen.get(k).unwrap_or(row)
         } else {
-            *chosen.entry(k).or_insert(row)
+            chosen.first_or_insert(k, row)
         };
         if kept == row {
             return false;
