@@ -57,6 +57,30 @@ fn strip_currency(s: &str) -> &str {
     s
 }
 
+/// Whether `text` is already an amount as [`parse_amount`] writes it with a decimal point
+/// (`-?(0|[1-9][0-9]*)(\.[0-9]+)?`, not a negative zero), so reading it would give it back
+/// unchanged: checked without allocating, for the many cells a `number` step leaves as they are.
+pub fn already_canonical(text: &str, decimal_comma: bool) -> bool {
+    let b = text.as_bytes();
+    if decimal_comma || b.is_empty() {
+        return false;
+    }
+    let negative = b[0] == b'-';
+    let digits = if negative { &b[1..] } else { b };
+    let (int, frac) = match memchr::memchr(b'.', digits) {
+        Some(i) => (&digits[..i], Some(&digits[i + 1..])),
+        None => (digits, None),
+    };
+    let int_ok = match int {
+        [b'0'] => true,
+        [first, rest @ ..] => (b'1'..=b'9').contains(first) && rest.iter().all(u8::is_ascii_digit),
+        [] => false,
+    };
+    let frac_ok = frac.is_none_or(|f| !f.is_empty() && f.iter().all(u8::is_ascii_digit));
+    let zero = int == b"0" && frac.is_none_or(|f| f.iter().all(|&c| c == b'0'));
+    int_ok && frac_ok && !(negative && zero)
+}
+
 /// Reads one amount; `None` when the text is not an amount in the accepted forms.
 pub fn parse_amount(text: &str, decimal_comma: bool) -> Option<String> {
     let mut s = text.trim();
@@ -215,6 +239,30 @@ pub fn decimal_mark_advice<'a>(
 #[cfg(test)]
 mod tests {
     use super::*;
+    use proptest::prelude::*;
+
+    proptest! {
+        /// Law: a text the quick check calls canonical reads back as itself.
+        #[test]
+        fn canonical_texts_read_back_unchanged(text in "-?[0-9]{0,4}(\\.[0-9]{0,3})?|[-+$€ ,.0-9a-z]{0,8}") {
+            if already_canonical(&text, false) {
+                prop_assert_eq!(parse_amount(&text, false), Some(text.clone()));
+            }
+            prop_assert!(!already_canonical(&text, true));
+        }
+    }
+
+    #[test]
+    fn the_quick_check_knows_canonical_amounts() {
+        for t in ["0", "12", "-12", "12.50", "0.5", "-0.01", "1204.50"] {
+            assert!(already_canonical(t, false), "{t}");
+        }
+        for t in [
+            "", "-", "012", "-0", "-0.00", "12.", ".5", "1,204.50", "€12", " 12", "+12", "1e3",
+        ] {
+            assert!(!already_canonical(t, false), "{t}");
+        }
+    }
 
     // Each row: input, decimal comma?, expected. All "common practice": no single standard
     // defines how amounts are written in exports; the percent rule is ours (documented).

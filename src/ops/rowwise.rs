@@ -288,7 +288,11 @@ impl RowStep {
             let new = match (&self.fill, &self.op) {
                 (Some(f), _) => f.fill(old, r),
                 (None, Operation::Number { .. } | Operation::Date { .. }) => {
-                    if old.is_empty() || self.null_tokens.iter().any(|t| t.as_slice() == old) {
+                    if old.is_empty()
+                        || self.null_tokens.iter().any(|t| t.as_slice() == old)
+                        || matches!(self.op, Operation::Number { decimal_comma, .. }
+                            if super::number::already_canonical(text, decimal_comma))
+                    {
                         None
                     } else {
                         match read_value(&self.op, text) {
