@@ -736,7 +736,9 @@ fn fusable_stretch(
         let Some(op) = &step.clean else {
             return k;
         };
-        if !apply::fusable(op, k == 0) {
+        // A summary ends a stretch: it takes the rows of the step before as they pass.
+        let summary = matches!(op, Operation::Summarize { .. });
+        if !(apply::fusable(op, k == 0) || summary && k > 0) {
             return k;
         }
         if let Some(last) = written.last() {
@@ -756,6 +758,9 @@ fn fusable_stretch(
             },
         };
         written.push(out);
+        if summary {
+            return k + 1;
+        }
     }
     steps.len()
 }
@@ -784,7 +789,7 @@ fn run_fused(
     let Ok(input) = resolve(store, &steps[0].dataset, current) else {
         return Ok(None);
     };
-    let mut aopts = Vec::with_capacity(steps.len());
+    let mut aopts: Vec<ApplyOptions> = Vec::with_capacity(steps.len());
     let mut datasets = Vec::with_capacity(steps.len());
     for (k, step) in steps.iter().enumerate() {
         let Some(op) = &step.clean else {
@@ -820,16 +825,30 @@ fn run_fused(
     let keep: Vec<bool> = (0..datasets.len())
         .map(|k| !datasets[k + 1..].contains(&datasets[k]))
         .collect();
-    let computed = match apply::compute_chain(store, &input, &aopts, &keep) {
+    // A summary at the end takes the rows of the step before as they pass.
+    let summary_opts = match aopts.last() {
+        Some(last) if matches!(last.op, Operation::Summarize { .. }) => aopts.pop(),
+        _ => None,
+    };
+    let row_steps = aopts.len();
+    let computed = match apply::compute_chain_summed(
+        store,
+        &input,
+        &aopts,
+        &keep[..row_steps],
+        summary_opts.as_ref(),
+    ) {
         Ok(c) => c,
         // A write that failed (a full disk) fails the run as it would have failed the first
         // step; nothing is recorded.
         Err(e) if matches!(e.kind(), ErrorKind::Io { .. }) => return Err((Vec::new(), 0, e)),
         Err(_) => return Ok(None),
     };
+    let (computed, summary) = computed;
     let mut done = Vec::with_capacity(steps.len());
     let mut reads = input;
-    for (k, (c, dataset)) in computed.into_iter().zip(datasets).enumerate() {
+    let mut datasets = datasets.into_iter();
+    for (k, (c, dataset)) in computed.into_iter().zip(datasets.by_ref()).enumerate() {
         let outcome = match apply::apply_computed(store, reads.clone(), c) {
             Ok(o) => o,
             Err(e) => return Err((done, k, e)),
@@ -848,6 +867,26 @@ fn run_fused(
         done.push(Done::Applied {
             step: first_number + k,
             op: aopts[k].op.clone(),
+            outcome: Box::new(outcome),
+        });
+    }
+    if let (Some(summary), Some(opts), Some(dataset)) = (summary, summary_opts, datasets.next()) {
+        let outcome = match apply::record_summary(store, reads.clone(), summary, &opts) {
+            Ok(o) => o,
+            Err(e) => return Err((done, row_steps, e)),
+        };
+        match &outcome {
+            ApplyOutcome::Recorded { version, .. } | ApplyOutcome::Unchanged { version, .. } => {
+                current.insert(dataset, version.clone());
+            }
+            ApplyOutcome::Replayed { .. } => {
+                let e = ErrorKind::Inconsistent("a plan step was replayed, not recorded".into());
+                return Err((done, row_steps, e.into()));
+            }
+        }
+        done.push(Done::Applied {
+            step: first_number + row_steps,
+            op: opts.op,
             outcome: Box::new(outcome),
         });
     }

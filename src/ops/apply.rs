@@ -11,6 +11,7 @@
 use std::io::{self, Read};
 
 use super::rowwise::{Looker, Mapper, OwnedRow, RowStep, RowStepEnd, Table, Taken};
+use super::summarize::Summary;
 use super::Operation;
 use crate::clock;
 use crate::error::{Error, ErrorKind, Result};
@@ -333,6 +334,20 @@ pub fn compute_chain(
     steps: &[ApplyOptions],
     keep: &[bool],
 ) -> Result<Vec<Computed>> {
+    Ok(compute_chain_summed(store, input, steps, keep, None)?.0)
+}
+
+/// [`compute_chain`] whose last step's output rows are also handed, as they pass, to the
+/// `summarize` of `summary` (a pipeline breaker: it emits only once every row is in), to be
+/// recorded after the stretch's steps with [`record_summary`] on the version the last of them
+/// recorded.
+pub(crate) fn compute_chain_summed(
+    store: &Store,
+    input: &Version,
+    steps: &[ApplyOptions],
+    keep: &[bool],
+    summary: Option<&ApplyOptions>,
+) -> Result<(Vec<Computed>, Option<Summary>)> {
     let store_dir = store.dir().to_path_buf();
     let store_io = |e: io::Error| Error::io(&store_dir.join("tmp"), e);
     let mut stages: Vec<Stage> = Vec::with_capacity(steps.len());
@@ -407,12 +422,20 @@ pub fn compute_chain(
     for s in &mut stages {
         s.step.expect_rows(input.n_rows);
     }
+    let mut summary = match summary {
+        Some(opts) if !stages.is_empty() => Some(Summary::new(&reads, opts)?),
+        Some(_) => {
+            return Err(ErrorKind::Internal("a summary fused with no step before it".into()).into())
+        }
+        None => None,
+    };
     each_input_row(store, input, |in_row, r| {
         // Where the current row is: the input's record, or the output buffer of the latest
         // stage that built one (a stage whose row is its input row copies nothing).
         let mut held: Option<usize> = None;
         let mut row = in_row;
-        for k in 0..stages.len() {
+        let n_stages = stages.len();
+        for k in 0..n_stages {
             let (before, after) = stages.split_at_mut(k);
             let stage = &mut after[0];
             let record = match held {
@@ -441,6 +464,17 @@ pub fn compute_chain(
                 .map_err(store_io)?;
             row = stage.n_out;
             stage.n_out += 1;
+            if k + 1 == n_stages {
+                if let Some(summary) = &mut summary {
+                    summary.add(
+                        row,
+                        &RawRecord {
+                            index: row,
+                            ..record_of(bytes, ends)
+                        },
+                    );
+                }
+            }
         }
         Ok(())
     })?;
@@ -473,7 +507,34 @@ pub fn compute_chain(
             table_id: s.table_id,
         });
     }
-    Ok(computed)
+    Ok((computed, summary))
+}
+
+/// A row given as its fields' bytes and ends, for a step that reads records.
+fn record_of<'a>(fields: &'a [u8], ends: &'a [usize]) -> RawRecord<'a> {
+    RawRecord {
+        fields,
+        ends,
+        byte: 0,
+        line: 0,
+        index: 0,
+    }
+}
+
+/// Records the summary a fused stretch accumulated ([`compute_chain_summed`]) as its step on
+/// `input`, the version the stretch's last step recorded: as [`apply`] would have.
+pub(crate) fn record_summary(
+    store: &mut Store,
+    input: Version,
+    summary: Summary,
+    opts: &ApplyOptions,
+) -> Result<ApplyOutcome> {
+    match summary.record(store, input, opts, Mode::Record)? {
+        Done::Outcome(o) => Ok(o),
+        Done::Deferred(_) => {
+            Err(ErrorKind::Internal("a summary meant to be recorded was deferred".into()).into())
+        }
+    }
 }
 
 /// Records one step of a fused run ([`compute_chain`]) on `input`, the version the step
