@@ -817,9 +817,7 @@ fn run_fused(
     // the same dataset again) is an intermediate, recorded by hash and recipe but not
     // written; the rest (the dataset's latest after the stretch, and outputs saved under
     // another name) are stored. A version that stops being the latest later stays stored.
-    let keep: Vec<bool> = (0..datasets.len())
-        .map(|k| !datasets[k + 1..].contains(&datasets[k]))
-        .collect();
+    let keep = crate::recompute::written_in_pass(&datasets);
     let computed = match apply::compute_chain(store, &input, &aopts, &keep) {
         Ok(c) => c,
         // A write that failed (a full disk) fails the run as it would have failed the first
