@@ -99,6 +99,9 @@ pub struct RevertedLink {
     /// The later step this one applies again (none for the revert step itself).
     pub repeats_step: Option<i64>,
     pub what: String,
+    /// Whether its bytes were written (`stored`) or only its hash and recipe recorded
+    /// (`recomputable`: a later step of the same one-pass stretch supersedes it).
+    pub storage: Storage,
 }
 
 /// A check recorded on a version of the old history, run again on the new version that stands
@@ -628,6 +631,7 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
                 hash: p.hash.clone(),
                 rows: p.n_rows,
                 repeats_step: p.repeats_step,
+                storage: p.storage,
                 what: match i {
                     0 => format!(
                         "the table of {} again, without step {reverted_id}",

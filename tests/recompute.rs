@@ -583,6 +583,23 @@ fn a_withdrawal_writes_only_what_the_policy_stores() {
             ("orders:v13", None),
         ]
     );
+    // The withdrawal says so itself.
+    let said: Vec<(&str, &str)> = done["report"]["recorded"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|l| {
+            (
+                l["version"].as_str().unwrap(),
+                l["storage"].as_str().unwrap(),
+            )
+        })
+        .collect();
+    let recorded_storage: Vec<(&str, &str)> = storage
+        .iter()
+        .map(|(l, st)| (*l, st.unwrap_or("stored")))
+        .collect();
+    assert_eq!(said, recorded_storage);
     let present = stored_objects(&s);
     for (label, hash, st) in &vs[7..] {
         assert_eq!(
