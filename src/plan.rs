@@ -822,9 +822,7 @@ fn run_fused(
     // the same dataset again) is an intermediate, recorded by hash and recipe but not
     // written; the rest (the dataset's latest after the stretch, and outputs saved under
     // another name) are stored. A version that stops being the latest later stays stored.
-    let keep: Vec<bool> = (0..datasets.len())
-        .map(|k| !datasets[k + 1..].contains(&datasets[k]))
-        .collect();
+    let keep = crate::recompute::written_in_pass(&datasets);
     // A summary at the end takes the rows of the step before as they pass.
     let summary_opts = match aopts.last() {
         Some(last) if matches!(last.op, Operation::Summarize { .. }) => aopts.pop(),

@@ -78,7 +78,7 @@ fn compute_object(store: &mut Store, hash: &Hash) -> Result<bool> {
 
 /// Whether `v`'s bytes and row index can be read from `store` now (stored, or computed into
 /// its stage earlier).
-fn readable(store: &Store, v: &Version) -> bool {
+pub fn readable(store: &Store, v: &Version) -> bool {
     let present = |hex: &str| hex.parse::<Hash>().is_ok_and(|h| store.objects.exists(&h));
     present(&v.hash) && present(&v.row_index)
 }
@@ -404,6 +404,17 @@ pub fn release_bytes(store: &mut Store, v: &Version, agent: &Agent) -> Result<St
     set_storage(store, v, Storage::Recomputable, false, agent)
 }
 
+/// Which outputs of one pass over the rows are written, by the default policy: an output a
+/// later output of the same pass supersedes (it writes the same dataset again) is an
+/// intermediate, only hashed and recorded recomputable; the others are written. `outputs`
+/// are the datasets the pass's steps write, in order. A run's stretches (`plan::run_fused`)
+/// and a withdrawal's (`revert::fuse_ahead`) decide by this.
+pub fn written_in_pass<S: PartialEq>(outputs: &[S]) -> Vec<bool> {
+    (0..outputs.len())
+        .map(|k| !outputs[k + 1..].contains(&outputs[k]))
+        .collect()
+}
+
 /// Why `v`'s bytes must stay stored, if they must: it was not made by a built-in step (raw
 /// data, outside work, a hand edit, a withdrawal), it is its dataset's latest version, a
 /// person signed it off, a person asked to keep it, or it was delivered (`retrieve --deliver`).
@@ -422,6 +433,14 @@ pub fn must_stay_stored(store: &Store, v: &Version) -> Result<Option<String>> {
     {
         return Ok(Some(format!("it is the latest version of {}", v.dataset)));
     }
+    held_for_people(store, v)
+}
+
+/// Why people need `v`'s bytes kept, if they do: a person asked to keep it, signed off its
+/// bytes (a sign-off names them by hash), or it was delivered. The part of
+/// [`must_stay_stored`] that a version not yet recorded (a withdrawal's new history) can be
+/// asked too.
+pub fn held_for_people(store: &Store, v: &Version) -> Result<Option<String>> {
     if v.storage == Storage::Kept {
         return Ok(Some(
             "a person asked to keep it stored (`sluice retain`)".into(),

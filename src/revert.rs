@@ -16,6 +16,10 @@
 //! 3. all of it is recorded in one transaction, with one audit entry per version (the revert's
 //!    first), or nothing is.
 //!
+//! What is stored follows the default policy of a run: an output a later step of the same
+//! one-pass stretch supersedes is only hashed and recorded recomputable; the restored table,
+//! re-applied hand edits and commands, and the new latest version are stored.
+//!
 //! Re-applying can meet conflicts, which refuse the revert unless forced:
 //! - an outside command after S: its program is not run again here; forced, its recorded
 //!   changes are re-applied as cell patches, as a hand edit's would be;
@@ -48,7 +52,7 @@ use serde_json::json;
 use crate::clock;
 use crate::error::{Error, ErrorKind, Result};
 use crate::hash::Hash;
-use crate::model::{Agent, LineageKind, RowRun, Step, StepKind, Version};
+use crate::model::{Agent, LineageKind, RowRun, Step, StepKind, Storage, Version};
 use crate::ops::apply::{self, ApplyOptions};
 use crate::ops::Operation;
 use crate::provenance::{ChangeLog, DropLog};
@@ -95,6 +99,9 @@ pub struct RevertedLink {
     /// The later step this one applies again (none for the revert step itself).
     pub repeats_step: Option<i64>,
     pub what: String,
+    /// Whether its bytes were written (`stored`) or only its hash and recipe recorded
+    /// (`recomputable`: a later step of the same one-pass stretch supersedes it).
+    pub storage: Storage,
 }
 
 /// A check recorded on a version of the old history, run again on the new version that stands
@@ -388,8 +395,11 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
         let mut conflicts: Vec<Conflict> = Vec::new();
         let mut unchanged: Vec<String> = Vec::new();
         let mut applied_again: Vec<(i64, String)> = Vec::new();
-        // The restored table is stored like every latest version: a recomputable base's bytes
-        // are computed into the stage, published with the rest.
+        // The restored table is stored even when a later step supersedes it: it is a `revert`
+        // step's version, which no recipe computes (`recompute::make_readable` computes only
+        // built-in operations' versions). It names the base's objects, so it costs nothing
+        // when the base is stored; a recomputable base's bytes are computed into the stage,
+        // published with the rest (the next step reads them anyway).
         if !store.bytes_stored(&base)? {
             crate::recompute::make_readable(store, &base)?;
         }
@@ -485,6 +495,7 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
                 current.clone(),
             ));
         }
+        settle_storage(store, &mut pendings, latest.seq + 1)?;
         let rechecks = recheck(store, &stands_for, &mut conflicts)?;
         Ok((pendings, conflicts, unchanged, applied_again, rechecks))
     })();
@@ -620,6 +631,7 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
                 hash: p.hash.clone(),
                 rows: p.n_rows,
                 repeats_step: p.repeats_step,
+                storage: p.storage,
                 what: match i {
                     0 => format!(
                         "the table of {} again, without step {reverted_id}",
@@ -797,7 +809,10 @@ fn rerun(store: &mut Store, l: &Later, current: &Version, opts: &RevertOptions) 
 /// The stretch of later built-in steps from the first of `later` that can run in one pass
 /// (`apply::fusable`), computed on `current`; empty when fewer than two can, or when the pass
 /// cannot finish (the steps are then applied one at a time, which fail where and as they
-/// would).
+/// would). As in a run, an output a later step of the stretch supersedes is only hashed
+/// (`recompute::written_in_pass`), except the one standing for a version an inspection was
+/// recorded on (the inspection is run on it again); the stretch's last output is written, so
+/// what the next step reads can be read.
 fn fuse_ahead(
     store: &Store,
     later: &[Later],
@@ -820,9 +835,48 @@ fn fuse_ahead(
     if aopts.len() < 2 {
         return VecDeque::new();
     }
-    apply::compute_chain(store, current, &aopts, &[])
+    let outputs: Vec<&str> = aopts
+        .iter()
+        .map(|o| o.output_dataset.as_deref().unwrap_or(&current.dataset))
+        .collect();
+    let mut keep = crate::recompute::written_in_pass(&outputs);
+    for (k, l) in later.iter().take(keep.len()).enumerate() {
+        // A store that cannot say keeps the bytes.
+        keep[k] |= !matches!(store.lineage.check_results(l.output.id), Ok(r) if r.is_empty());
+    }
+    apply::compute_chain(store, current, &aopts, &keep)
         .map(VecDeque::from)
         .unwrap_or_default()
+}
+
+/// The default storage policy applied to the new history before it is recorded: a version its
+/// stretch only hashed stays recomputable unless the policy keeps it, that is unless it is
+/// the new latest (a later step changed nothing) or people need its bytes
+/// (`recompute::held_for_people`: its bytes were signed off). Such a version is recorded
+/// stored when its bytes are in the store: the latest's always are, since the stretch's last
+/// output, which is written, has the same bytes. `first_seq` is the sequence number of the
+/// first pending version.
+fn settle_storage(store: &Store, pendings: &mut [Pending], first_seq: u64) -> Result<()> {
+    let last = pendings.len().saturating_sub(1);
+    for (i, p) in pendings.iter_mut().enumerate() {
+        if p.storage != Storage::Recomputable {
+            continue;
+        }
+        let v = p.version(recording::pending_id(i), first_seq + i as u64);
+        if i != last && crate::recompute::held_for_people(store, &v)?.is_none() {
+            continue;
+        }
+        if crate::recompute::readable(store, &v) {
+            p.storage = Storage::Stored;
+        } else if i == last {
+            return Err(ErrorKind::Internal(format!(
+                "the bytes of {}, the new latest version, were not written",
+                v.label()
+            ))
+            .into());
+        }
+    }
+    Ok(())
 }
 
 /// One conflict a patch met.

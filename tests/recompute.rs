@@ -477,3 +477,241 @@ fn a_trail_through_map_and_lookup_reads_only_its_row_and_the_recorded_tables() {
     t.ok(&["recompute", "jobs:v2", "jobs:v3"]);
     assert_eq!(trails(&t), through_recipes);
 }
+
+/// Work orders with padded shop names (the trim a withdrawal takes out), amounts with currency
+/// signs and a thousands comma, and a cancelled order.
+const WORK: &str = "order_id,shop,service,parts_cost,status\n\
+WO-1, Quillby Cycle Mend ,tune-up,$12.50,done\n\
+WO-2,Oxwater Wheelworks,FLAT REPAIR,8.00,open\n\
+WO-3,  Quillby Cycle Mend,brake bleed,\"1,030.00\",done\n\
+WO-4,Oxwater Wheelworks,tune-up,$4.25,cancelled\n\
+WO-5, Quillby Cycle Mend ,wheel true,$3.00,done\n";
+
+/// The `clean` arguments of each step after the trim, in order.
+fn later_steps() -> Vec<Vec<&'static str>> {
+    vec![
+        vec![
+            "case",
+            "--columns",
+            "service",
+            "--to",
+            "upper",
+            "--why",
+            "one case",
+        ],
+        vec!["number", "--columns", "parts_cost", "--why", "amounts"],
+        vec!["sort", "--by", "order_id:desc", "--why", "newest first"],
+        vec![
+            "case",
+            "--columns",
+            "shop",
+            "--to",
+            "lower",
+            "--why",
+            "shop codes",
+        ],
+        vec!["keep", "status != 'cancelled'", "--why", "work done"],
+    ]
+}
+
+/// `WORK` received as `orders`, then the given steps one `clean` at a time (each stored).
+fn cleaned_one_by_one(trim: bool) -> Sandbox {
+    let s = Sandbox::with_store();
+    s.file("orders.csv", WORK);
+    s.ok(&[
+        "receive",
+        "orders.csv",
+        "--as",
+        "orders",
+        "--why",
+        "Q3 export",
+    ]);
+    if trim {
+        s.ok(&["clean", "orders", "trim", "--why", "the till pads names"]);
+    }
+    for step in later_steps() {
+        let mut args = vec!["clean", "orders"];
+        args.extend(step);
+        s.ok(&args);
+    }
+    s
+}
+
+/// A withdrawal follows the storage policy of a run: of the later steps it applies again in
+/// one pass, only the pass's last output is written (orders:v9 and orders:v12 are superseded
+/// within their passes and recorded by hash and recipe, their bytes not written); the
+/// restored table (a `revert` step's version, which no recipe computes), the output the sort
+/// reads (its pass's last) and the new latest are stored. Every version it recorded has the
+/// hash the same steps give applied one at a time to the raw file in another store, and reads
+/// back as bytes whose BLAKE3 (the `blake3` crate) is that hash; `verify --deep` computes the
+/// recomputable ones again.
+#[test]
+fn a_withdrawal_writes_only_what_the_policy_stores() {
+    let s = cleaned_one_by_one(true);
+    assert_eq!(versions(&s).len(), 7);
+    let done = s.json(&[
+        "withdraw",
+        "orders:v2",
+        "--why",
+        "the padding marks a branch",
+        "--json",
+    ]);
+    assert_eq!(done["report"]["latest"], "orders:v13", "{done}");
+
+    // The reference: the same steps on the raw file one at a time, without the trim.
+    let reference = cleaned_one_by_one(false);
+    let expected: Vec<String> = versions(&reference).into_iter().map(|v| v.1).collect();
+    let vs = versions(&s);
+    let recorded: Vec<&str> = vs[7..].iter().map(|v| v.1.as_str()).collect();
+    assert_eq!(
+        recorded, expected,
+        "the restored table, then each step again"
+    );
+
+    let storage: Vec<(&str, Option<&str>)> = vs[7..]
+        .iter()
+        .map(|(l, _, st)| (l.as_str(), st.as_deref()))
+        .collect();
+    assert_eq!(
+        storage,
+        [
+            ("orders:v8", None),
+            ("orders:v9", Some("recomputable")),
+            ("orders:v10", None),
+            ("orders:v11", None),
+            ("orders:v12", Some("recomputable")),
+            ("orders:v13", None),
+        ]
+    );
+    // The withdrawal says so itself.
+    let said: Vec<(&str, &str)> = done["report"]["recorded"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|l| {
+            (
+                l["version"].as_str().unwrap(),
+                l["storage"].as_str().unwrap(),
+            )
+        })
+        .collect();
+    let recorded_storage: Vec<(&str, &str)> = storage
+        .iter()
+        .map(|(l, st)| (*l, st.unwrap_or("stored")))
+        .collect();
+    assert_eq!(said, recorded_storage);
+    let present = stored_objects(&s);
+    for (label, hash, st) in &vs[7..] {
+        assert_eq!(
+            present.contains(hash),
+            st.is_none(),
+            "{label} in the segments"
+        );
+        let bytes = s.run(&["retrieve", label]).raw_stdout;
+        assert_eq!(&blake3_hex(&bytes), hash, "{label} read back");
+    }
+    let v = s.json(&["verify", "--deep", "--json"]);
+    assert_eq!(v["intact"], true, "{v}");
+    assert_eq!(v["versions_recomputable"], 2);
+    assert_eq!(v["recipes_checked"], 2);
+    // Released and reclaimed, nothing else depends on the objects the pass did not write.
+    s.ok(&["reclaim"]);
+    for (label, hash, _) in &vs[7..] {
+        let bytes = s.run(&["retrieve", label]).raw_stdout;
+        assert_eq!(&blake3_hex(&bytes), hash, "{label} after reclaim");
+    }
+    s.ok(&["reproduce", "orders:v13"]);
+}
+
+/// What a withdrawal reads again stays stored even inside a pass: the new version standing
+/// for one an inspection was recorded on (the inspection runs on it), and a version that
+/// became the latest because the step after it changed nothing once the trim was gone (the
+/// `keep` drops only trimmed names; its identical output, the pass's last, was written).
+#[test]
+fn a_withdrawal_stores_what_it_inspects_and_its_latest() {
+    let s = Sandbox::with_store();
+    s.file("orders.csv", WORK);
+    s.file(
+        "rules.json",
+        r#"{"sluice_rules": 2, "rules": [{"dimension": "completeness", "columns": ["service"]}]}"#,
+    );
+    s.ok(&[
+        "receive",
+        "orders.csv",
+        "--as",
+        "orders",
+        "--why",
+        "Q3 export",
+    ]);
+    s.ok(&["clean", "orders", "trim", "--why", "the till pads names"]);
+    s.ok(&[
+        "clean",
+        "orders",
+        "case",
+        "--columns",
+        "service",
+        "--to",
+        "upper",
+        "--why",
+        "one case",
+    ]);
+    s.ok(&["inspect", "orders:v3", "--rules", "rules.json"]);
+    s.ok(&[
+        "clean",
+        "orders",
+        "number",
+        "--columns",
+        "parts_cost",
+        "--why",
+        "amounts",
+    ]);
+    s.ok(&[
+        "clean",
+        "orders",
+        "keep",
+        "shop != 'Quillby Cycle Mend'",
+        "--why",
+        "Oxwater's orders only",
+    ]);
+    let done = s.json(&[
+        "withdraw",
+        "orders:v2",
+        "--why",
+        "the padding marks a branch",
+        "--json",
+    ]);
+    assert_eq!(done["report"]["latest"], "orders:v8", "{done}");
+    assert_eq!(
+        done["report"]["unchanged"].as_array().unwrap().len(),
+        1,
+        "{done}"
+    );
+    assert_eq!(
+        done["report"]["checks"][0]["version"], "orders:v7",
+        "{done}"
+    );
+    let vs = versions(&s);
+    let storage: Vec<(&str, Option<&str>)> = vs[5..]
+        .iter()
+        .map(|(l, _, st)| (l.as_str(), st.as_deref()))
+        .collect();
+    assert_eq!(
+        storage,
+        [
+            ("orders:v6", None),
+            ("orders:v7", None),
+            ("orders:v8", None)
+        ]
+    );
+    let present = stored_objects(&s);
+    for (label, hash, _) in &vs[5..] {
+        assert!(present.contains(hash), "{label} in the segments");
+    }
+    let v = s.json(&["verify", "--json"]);
+    assert_eq!(v["intact"], true, "{v}");
+    let err = s.fails(2, &["evict", "orders:v8"]);
+    assert_contains(
+        &err,
+        "orders:v8 stays stored: it is the latest version of orders",
+    );
+}
