@@ -39,34 +39,48 @@ use crate::store::Store;
 const MAGIC: &[u8; 4] = b"SLPV";
 const FORMAT: u32 = 1;
 
-/// The cells a step changed, as output rows per output column, gathered while it runs.
+/// The cells a step changed, as output rows per output column, gathered while it runs. Each
+/// column keeps its rows already in the form the provenance object stores them (the gaps
+/// between increasing rows as variable-length integers, one or two bytes for most), not as
+/// 8 bytes a row, so that a long plan's steps in one pass hold little for millions of changes.
 #[derive(Debug, Default, Clone)]
 pub struct ChangeLog {
-    /// Per output column (by position): the output rows changed, increasing.
-    rows: Vec<Vec<u64>>,
+    /// Per output column (by position).
+    columns: Vec<ColumnChanges>,
+}
+
+#[derive(Debug, Default, Clone)]
+struct ColumnChanges {
+    n: u64,
+    last: u64,
+    gaps: Vec<u8>,
 }
 
 impl ChangeLog {
     pub fn new(n_columns: usize) -> Self {
         ChangeLog {
-            rows: vec![Vec::new(); n_columns],
+            columns: vec![ColumnChanges::default(); n_columns],
         }
     }
 
     /// Records that output row `row` of column `column` was changed. Rows come in order.
     pub fn push(&mut self, column: usize, row: u64) {
-        if column >= self.rows.len() {
-            self.rows.resize(column + 1, Vec::new());
+        if column >= self.columns.len() {
+            self.columns.resize(column + 1, ColumnChanges::default());
         }
-        self.rows[column].push(row);
+        let c = &mut self.columns[column];
+        debug_assert!(c.n == 0 || row > c.last);
+        put_varint(&mut c.gaps, row - c.last);
+        c.last = row;
+        c.n += 1;
     }
 
     pub fn len(&self) -> usize {
-        self.rows.iter().map(Vec::len).sum()
+        self.columns.iter().map(|c| c.n as usize).sum()
     }
 
     pub fn is_empty(&self) -> bool {
-        self.rows.iter().all(Vec::is_empty)
+        self.columns.iter().all(|c| c.n == 0)
     }
 }
 
@@ -168,21 +182,18 @@ pub fn encode(
     }
     out.extend_from_slice(&(run_bytes.len() as u64).to_le_bytes());
     out.extend_from_slice(&run_bytes);
-    let columns: Vec<(usize, &Vec<u64>)> = changes
-        .rows
+    let columns: Vec<(usize, &ColumnChanges)> = changes
+        .columns
         .iter()
         .enumerate()
-        .filter(|(_, r)| !r.is_empty())
+        .filter(|(_, c)| c.n > 0)
         .collect();
     put_varint(&mut out, columns.len() as u64);
-    for (c, rows) in columns {
+    for (c, changed) in columns {
         put_text(&mut out, header.get(c).map(String::as_str).unwrap_or(""));
-        put_varint(&mut out, rows.len() as u64);
-        let mut prev = 0;
-        for &r in rows {
-            put_varint(&mut out, r - prev);
-            prev = r;
-        }
+        put_varint(&mut out, changed.n);
+        // The gaps between changed rows, the first from row 0, as they were gathered.
+        out.extend_from_slice(&changed.gaps);
     }
     put_varint(&mut out, drops.reasons.len() as u64);
     for r in &drops.reasons {
