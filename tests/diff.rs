@@ -1,7 +1,8 @@
 //! `sluice compare`: the minimal edit script against the worked example of Myers' paper, the diff
 //! by key against pandas on generated versions with known edits, golden files of the text
 //! form, the errors, the column changes, and the law "diff, then apply the edit script, gives
-//! the second version" as a property test.
+//! the second version" as a property test, and the diff by key against a plain reference over
+//! random revisions as another.
 
 mod common;
 
@@ -430,5 +431,243 @@ proptest! {
             d.n_unchanged() + d.n_changed() + d.n_removed(),
             a.len() as u64
         );
+    }
+}
+
+// ---- the diff by key against a plain reference ------------------------------------------------
+
+/// A cell as written to the file: its value, and whether it is quoted even when it need not be
+/// (RFC 4180 allows any field to be quoted), so that equal values are sometimes written with
+/// different bytes on the two sides.
+type Cell = (String, bool);
+
+fn field(c: &Cell) -> String {
+    let (v, quote) = c;
+    // RFC 4180, section 2: a field holding a comma, a quote or a line break is quoted, with
+    // each quote doubled.
+    if *quote || v.contains([',', '"', '\n', '\r']) {
+        format!("\"{}\"", v.replace('"', "\"\""))
+    } else {
+        v.clone()
+    }
+}
+
+/// The file of a table `id,b,c`, with LF or CRLF line endings.
+fn keyed_csv(rows: &[[Cell; 3]], crlf: bool) -> String {
+    let end = if crlf { "\r\n" } else { "\n" };
+    let mut t = format!("id,b,c{end}");
+    for r in rows {
+        t.push_str(&r.iter().map(field).collect::<Vec<_>>().join(","));
+        t.push_str(end);
+    }
+    t
+}
+
+fn keyed_cell() -> impl Strategy<Value = Cell> {
+    let v = prop::sample::select(vec!["x", "y", "x ", "", "a,b", "say \"hi\"", "two\nlines"]);
+    (v.prop_map(String::from), any::<bool>())
+}
+
+fn keyed_row() -> impl Strategy<Value = [Cell; 3]> {
+    // Few key values, so that keys repeat and go missing on either side; never blank.
+    let id = prop::sample::select(vec!["1", "2", "3", "4", "5", "6"]).prop_map(String::from);
+    ((id, any::<bool>()), keyed_cell(), keyed_cell()).prop_map(|(i, b, c)| [i, b, c])
+}
+
+/// A first table and a second made from it: rows kept (in any order, some of them twice), with
+/// cells outside the key changed or written again with other quoting, rows dropped and new
+/// rows added (new key values come with the new rows).
+fn revision() -> impl Strategy<Value = (Vec<[Cell; 3]>, Vec<[Cell; 3]>)> {
+    let edit = (
+        any::<prop::sample::Index>(),
+        prop::option::of((1..3usize, keyed_cell())),
+        any::<bool>(),
+    );
+    let pick = prop_oneof![
+        3 => edit.prop_map(|(i, change, requote)| (Some((i, change, requote)), None)),
+        1 => keyed_row().prop_map(|r| (None, Some(r))),
+    ];
+    (
+        prop::collection::vec(keyed_row(), 0..12),
+        prop::collection::vec(pick, 0..14),
+    )
+        .prop_map(|(a, picks)| {
+            let mut b = Vec::new();
+            for p in picks {
+                match p {
+                    (Some((i, change, requote)), _) if !a.is_empty() => {
+                        let mut row = a[i.index(a.len())].clone();
+                        if requote {
+                            for c in row.iter_mut() {
+                                c.1 = !c.1;
+                            }
+                        }
+                        if let Some((col, cell)) = change {
+                            row[col] = cell;
+                        }
+                        b.push(row);
+                    }
+                    (_, Some(r)) => b.push(r),
+                    _ => {}
+                }
+            }
+            (a, b)
+        })
+}
+
+/// What a diff by key must find, computed plainly from the values (the rule README.md states:
+/// rows with equal key values are the same row; rows sharing a key are paired first with first
+/// in row order): (row in A, row in B, changed) for every pair in B's order, the removed and
+/// added rows, the changed cells (row in B, column, old, new), and how many key values repeat.
+type Expected = (
+    Vec<(u64, u64, bool)>,
+    Vec<u64>,
+    Vec<u64>,
+    Vec<(u64, String, String, String)>,
+    u64,
+);
+
+fn keyed_reference(a: &[[Cell; 3]], b: &[[Cell; 3]]) -> Expected {
+    let names = ["id", "b", "c"];
+    let mut keys: Vec<&String> = a.iter().chain(b).map(|r| &r[0].0).collect();
+    keys.sort();
+    keys.dedup();
+    let mut pairs = Vec::new();
+    let (mut removed, mut added) = (Vec::new(), Vec::new());
+    let mut groups = 0;
+    for k in keys {
+        let ra: Vec<u64> = (0..a.len() as u64)
+            .filter(|&i| a[i as usize][0].0 == *k)
+            .collect();
+        let rb: Vec<u64> = (0..b.len() as u64)
+            .filter(|&i| b[i as usize][0].0 == *k)
+            .collect();
+        if ra.len() > 1 || rb.len() > 1 {
+            groups += 1;
+        }
+        let n = ra.len().min(rb.len());
+        pairs.extend(ra[..n].iter().copied().zip(rb[..n].iter().copied()));
+        removed.extend_from_slice(&ra[n..]);
+        added.extend_from_slice(&rb[n..]);
+    }
+    pairs.sort_by_key(|p| p.1);
+    removed.sort_unstable();
+    added.sort_unstable();
+    let mut cells = Vec::new();
+    let mut out = Vec::new();
+    for (x, y) in pairs {
+        let (ra, rb) = (&a[x as usize], &b[y as usize]);
+        let mut changed = false;
+        for c in 0..3 {
+            if ra[c].0 != rb[c].0 {
+                changed = true;
+                cells.push((y, names[c].to_string(), ra[c].0.clone(), rb[c].0.clone()));
+            }
+        }
+        out.push((x, y, changed));
+    }
+    (out, removed, added, cells, groups)
+}
+
+/// The same five things read off a diff.
+fn keyed_found(d: &sluice::diff::Diff) -> Expected {
+    let mut pairs = Vec::new();
+    for run in &d.pairing.runs {
+        for k in 0..run.len {
+            pairs.push((run.a_start + k, run.b_start + k, run.changed));
+        }
+    }
+    let cells = d
+        .pairing
+        .cells
+        .iter()
+        .map(|c| (c.b_row, c.column.clone(), c.old.clone(), c.new.clone()))
+        .collect();
+    (
+        pairs,
+        d.pairing.removed.clone(),
+        d.pairing.added.clone(),
+        cells,
+        d.duplicates.as_ref().map_or(0, |g| g.groups),
+    )
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig::with_cases(64))]
+    #[test]
+    fn the_diff_by_key_agrees_with_a_plain_reference(
+        (a, b) in revision(),
+        crlf in (any::<bool>(), any::<bool>()),
+        limit in 0..8usize,
+    ) {
+        let dir = tempfile::tempdir().unwrap();
+        let agent = sluice::model::Agent::new(PERSON, Some(EMAIL), "option");
+        let mut store = sluice::store::Store::init_recorded(dir.path(), &agent).unwrap();
+        let mut labels = Vec::new();
+        for (name, rows, crlf) in [("a.csv", &a, crlf.0), ("b.csv", &b, crlf.1)] {
+            let path = dir.path().join(name);
+            std::fs::write(&path, keyed_csv(rows, crlf)).unwrap();
+            let opts = sluice::intake::IngestOptions {
+                dataset: "t".into(), key: None, reason: None, delimiter: Some(b','),
+                has_header: true, encoding: None, null_tokens: vec![], agent: agent.clone(),
+            };
+            match sluice::intake::ingest(&mut store, &path, &opts).unwrap() {
+                sluice::intake::IngestOutcome::Recorded { version, .. }
+                | sluice::intake::IngestOutcome::Unchanged { version } => {
+                    labels.push(version.label())
+                }
+            }
+        }
+        let (first, second) = (labels[0].as_str(), labels[1].as_str());
+        let expected = keyed_reference(&a, &b);
+        let opts = sluice::diff::DiffOptions {
+            key: sluice::diff::KeyChoice::Columns(vec!["id".into()]),
+        };
+        // Everything, as lineage inferred for outside work keeps it.
+        let all = sluice::diff::diff(&store, first, second, &opts).unwrap();
+        prop_assert_eq!(keyed_found(&all), expected.clone());
+        // The listing `compare` makes: the same counts, and the first `limit` changes (changed
+        // and added rows in B's order, then removed rows) with their cells.
+        let listed = sluice::diff::diff_listed(&store, first, second, &opts, limit).unwrap();
+        let (pairs, removed, added, cells, groups) = expected;
+        let (l_pairs, l_removed, l_added, _, l_groups) = keyed_found(&listed);
+        prop_assert_eq!(&l_pairs, &pairs);
+        prop_assert_eq!(&l_removed, &removed);
+        prop_assert_eq!(&l_added, &added);
+        prop_assert_eq!(l_groups, groups);
+        let n_changed = pairs.iter().filter(|p| p.2).count();
+        prop_assert_eq!(listed.n_changes as usize, n_changed + removed.len() + added.len());
+        prop_assert_eq!(listed.n_cells as usize, cells.len());
+        let mut order: Vec<(u64, bool)> = pairs
+            .iter()
+            .filter(|p| p.2)
+            .map(|p| (p.1, true))
+            .chain(added.iter().map(|&y| (y, false)))
+            .collect();
+        order.sort_unstable();
+        let want: Vec<(Option<u64>, Option<u64>)> = order
+            .iter()
+            .map(|&(y, changed)| {
+                let x = changed.then(|| pairs.iter().find(|p| p.1 == y).map(|p| p.0)).flatten();
+                (x, Some(y))
+            })
+            .chain(removed.iter().map(|&x| (Some(x), None)))
+            .take(limit)
+            .collect();
+        let got: Vec<(Option<u64>, Option<u64>)> =
+            listed.changes.iter().map(|c| (c.a_row, c.b_row)).collect();
+        prop_assert_eq!(got, want);
+        let listed_cells: Vec<(u64, String, String, String)> = listed
+            .pairing
+            .cells
+            .iter()
+            .map(|c| (c.b_row, c.column.clone(), c.old.clone(), c.new.clone()))
+            .collect();
+        let want_cells: Vec<(u64, String, String, String)> = cells
+            .iter()
+            .filter(|c| listed.changes.iter().any(|l| l.b_row == Some(c.0) && l.a_row.is_some()))
+            .cloned()
+            .collect();
+        prop_assert_eq!(listed_cells, want_cells);
     }
 }

@@ -1,10 +1,13 @@
 //! The diff by key. Per side, one pass keeps (key hash, row number) and a fingerprint per row;
-//! both vectors are sorted by hash and walked together. When the headers are equal and the
-//! version is UTF-8, the fingerprints are the row index's and each row is cut out by its offset
-//! with only the fields up to the key split off (see `scan::scan_keys`); otherwise
-//! every row is parsed. A pair of rows with equal fingerprints
-//! is unchanged without reading its values again; the others, and the removed and added rows,
-//! are read in a second pass, where the keys of each pair are also confirmed on their values.
+//! the pairs are spread over parts by the top bits of their hash as they are pushed, each part
+//! is sorted on its own (in the cache), and the parts of both sides are walked together. When
+//! the headers are equal and the version is UTF-8, each row is cut out by the offset of its row
+//! index (read once, for both passes) with only the fields up to the key split off (see
+//! `scan::scan_keys`), and its fingerprint is a hash of its bytes when both sides share a
+//! delimiter (the row index's own when both indexes hold them, or when the delimiters differ);
+//! otherwise every row is parsed. A pair of rows with equal fingerprints is unchanged without
+//! reading its values again; the others, and the removed and added rows, are read in a second
+//! pass, where the keys of each pair are also confirmed on their values.
 //!
 //! Keys are hashed with XXH3-64. Two rows of one side with the same hash are read again:
 //! different key values are a collision, after which the pass is repeated with another seed;
@@ -14,10 +17,12 @@
 //! there are and the first few ([`DuplicateKeys`]). A pair across the sides whose key values
 //! turn out to differ is reported as a removed and an added row.
 
+use std::sync::Arc;
+
 use super::lineage::Link;
 use super::listed::{compare_pairs, Listing};
-use super::read::{both, cuttable, each_row};
-use super::scan::{scan, scan_keys, Scan, ScanPlan};
+use super::read::{both, cuttable, each_row, offsets};
+use super::scan::{scan, scan_keys, KeyParts, Prints, Scan, ScanPlan};
 use super::{
     pairs_that_differ, push_pair, Diff, DuplicateGroup, DuplicateKeys, Layout, MatchedBy,
     RowPairing,
@@ -52,27 +57,62 @@ pub(super) fn run(
     let objects = &store.objects;
     let (cand_a, cand_b) = layout.candidates();
     let (fp_a, fp_b) = layout.fp_cols();
+    // Whole rows fingerprinted and no rename candidates: rows are cut out by the offsets of
+    // the row index, read once here for both passes.
+    let index = |fp: &Option<Vec<usize>>, cand: &[usize], v: &Version| -> Result<Option<Index>> {
+        if fp.is_some() || !cand.is_empty() || !cuttable(v) {
+            return Ok(None);
+        }
+        let (stored, offsets) = offsets(objects, v)?;
+        Ok(Some(Index {
+            stored,
+            offsets: offsets.into(),
+        }))
+    };
+    let (ia, ib) = both(|| index(&fp_a, &cand_a, a), || index(&fp_b, &cand_b, b))?;
+    // The rows' own bytes are hashed as fingerprints when both sides are cut out in one
+    // dialect, unless both indexes hold fingerprints already.
+    let by_bytes = match (&ia, &ib) {
+        (Some(x), Some(y)) => {
+            !(x.stored.is_some() && y.stored.is_some())
+                && a.dialect.delimiter_byte() == b.dialect.delimiter_byte()
+        }
+        _ => false,
+    };
+    let key_bits = KeyParts::bits_for(a.n_rows.max(b.n_rows));
     let mut seed = 0u64;
     let (mut sa, mut sb, dup_texts) = loop {
-        let plan = |k: &'_ [usize], fp: Option<&'_ [usize]>, cand: &'_ [usize], v: &Version| {
+        let plan = |k: &'_ [usize],
+                    fp: Option<&'_ [usize]>,
+                    cand: &'_ [usize],
+                    v: &Version,
+                    index: &Option<Index>| {
             let plan = ScanPlan {
                 key: Some(k),
                 fp_cols: fp,
                 cand_cols: cand,
                 seed,
+                key_bits,
                 null_tokens: &v.null_tokens,
             };
-            let mut s = if fp.is_none() && cand.is_empty() && cuttable(v) {
-                scan_keys(objects, v, k, seed, &v.null_tokens)?
-            } else {
-                scan(objects, v, &plan)?
+            let mut s = match index {
+                Some(ix) => {
+                    let prints = match &ix.stored {
+                        _ if by_bytes => Prints::Bytes,
+                        Some(fps) => Prints::Stored(fps),
+                        None => Prints::Cells,
+                    };
+                    let how = (k, seed, v.null_tokens.as_slice(), key_bits);
+                    scan_keys(objects, v, Arc::clone(&ix.offsets), prints, how)?
+                }
+                None => scan(objects, v, &plan)?,
             };
-            s.keys.sort_unstable();
+            s.keys.sort();
             Ok(s)
         };
         let (sa, sb) = both(
-            || plan(&ka, fp_a.as_deref(), &cand_a, a),
-            || plan(&kb, fp_b.as_deref(), &cand_b, b),
+            || plan(&ka, fp_a.as_deref(), &cand_a, a, &ia),
+            || plan(&kb, fp_b.as_deref(), &cand_b, b, &ib),
         )?;
         blank_keys(a, &key, &sa)?;
         blank_keys(b, &key, &sb)?;
@@ -108,75 +148,78 @@ pub(super) fn run(
         rows_to: 0,
         first: Vec::new(),
     };
-    let (mut i, mut j) = (0usize, 0usize);
-    while i < sa.keys.len() || j < sb.keys.len() {
-        let h = match (sa.keys.get(i), sb.keys.get(j)) {
-            (Some(x), Some(y)) => x.0.min(y.0),
-            (Some(x), None) => x.0,
-            (None, Some(y)) => y.0,
-            (None, None) => break,
-        };
-        let i2 = i + sa.keys[i..].iter().take_while(|k| k.0 == h).count();
-        let j2 = j + sb.keys[j..].iter().take_while(|k| k.0 == h).count();
-        let ga: Vec<u64> = sa.keys[i..i2].iter().map(|k| k.1).collect();
-        let gb: Vec<u64> = sb.keys[j..j2].iter().map(|k| k.1).collect();
-        i = i2;
-        j = j2;
-        if ga.len() <= 1 && gb.len() <= 1 {
-            match (ga.first(), gb.first()) {
-                (Some(&x), Some(&y)) => pairs.push((x, y)),
-                (Some(&x), None) => removed.push(x),
-                (None, Some(&y)) => added.push(y),
-                (None, None) => {}
-            }
-            continue;
-        }
-        dups.groups += 1;
-        dups.rows_from += ga.len() as u64;
-        dups.rows_to += gb.len() as u64;
-        if dups.first.len() < GROUPS_SHOWN {
-            let text = dup_texts
-                .binary_search_by_key(&h, |d| d.0)
-                .ok()
-                .map(|k| dup_texts[k].1.clone())
-                .unwrap_or_default();
-            dups.first.push(DuplicateGroup {
-                key: text,
-                from_rows: ga.iter().take(ROWS_SHOWN).map(|r| r + 1).collect(),
-                n_from: ga.len() as u64,
-                to_rows: gb.iter().take(ROWS_SHOWN).map(|r| r + 1).collect(),
-                n_to: gb.len() as u64,
-            });
-        }
-        match link {
-            Some(l) => {
-                // The same row of the version both come from.
-                let mut taken = vec![false; ga.len()];
-                for &y in &gb {
-                    let anc = l.b_rows().get(y as usize).copied().unwrap_or(u64::MAX);
-                    let partner = (anc != u64::MAX)
-                        .then(|| {
-                            ga.iter().enumerate().position(|(k, &x)| {
-                                !taken[k] && l.a_rows().get(x as usize) == Some(&anc)
-                            })
-                        })
-                        .flatten();
-                    match partner {
-                        Some(k) => {
-                            taken[k] = true;
-                            pairs.push((ga[k], y));
-                        }
-                        None => added.push(y),
-                    }
+    for (part_a, part_b) in sa.keys.parts().iter().zip(sb.keys.parts()) {
+        let (mut i, mut j) = (0usize, 0usize);
+        while i < part_a.len() || j < part_b.len() {
+            let h = match (part_a.get(i), part_b.get(j)) {
+                (Some(x), Some(y)) => x.0.min(y.0),
+                (Some(x), None) => x.0,
+                (None, Some(y)) => y.0,
+                (None, None) => break,
+            };
+            let i2 = i + part_a[i..].iter().take_while(|k| k.0 == h).count();
+            let j2 = j + part_b[j..].iter().take_while(|k| k.0 == h).count();
+            let (ga, gb) = (&part_a[i..i2], &part_b[j..j2]);
+            i = i2;
+            j = j2;
+            if ga.len() <= 1 && gb.len() <= 1 {
+                match (ga.first(), gb.first()) {
+                    (Some(x), Some(y)) => pairs.push((x.1, y.1)),
+                    (Some(x), None) => removed.push(x.1),
+                    (None, Some(y)) => added.push(y.1),
+                    (None, None) => {}
                 }
-                removed.extend(ga.iter().zip(&taken).filter(|(_, &t)| !t).map(|(&x, _)| x));
+                continue;
             }
-            None => {
-                // In row order: the first with the first, and so on.
-                let n = ga.len().min(gb.len());
-                pairs.extend(ga[..n].iter().copied().zip(gb[..n].iter().copied()));
-                removed.extend_from_slice(&ga[n..]);
-                added.extend_from_slice(&gb[n..]);
+            let ga: Vec<u64> = ga.iter().map(|k| k.1).collect();
+            let gb: Vec<u64> = gb.iter().map(|k| k.1).collect();
+            dups.groups += 1;
+            dups.rows_from += ga.len() as u64;
+            dups.rows_to += gb.len() as u64;
+            if dups.first.len() < GROUPS_SHOWN {
+                let text = dup_texts
+                    .binary_search_by_key(&h, |d| d.0)
+                    .ok()
+                    .map(|k| dup_texts[k].1.clone())
+                    .unwrap_or_default();
+                dups.first.push(DuplicateGroup {
+                    key: text,
+                    from_rows: ga.iter().take(ROWS_SHOWN).map(|r| r + 1).collect(),
+                    n_from: ga.len() as u64,
+                    to_rows: gb.iter().take(ROWS_SHOWN).map(|r| r + 1).collect(),
+                    n_to: gb.len() as u64,
+                });
+            }
+            match link {
+                Some(l) => {
+                    // The same row of the version both come from.
+                    let mut taken = vec![false; ga.len()];
+                    for &y in &gb {
+                        let anc = l.b_rows().get(y as usize).copied().unwrap_or(u64::MAX);
+                        let partner = (anc != u64::MAX)
+                            .then(|| {
+                                ga.iter().enumerate().position(|(k, &x)| {
+                                    !taken[k] && l.a_rows().get(x as usize) == Some(&anc)
+                                })
+                            })
+                            .flatten();
+                        match partner {
+                            Some(k) => {
+                                taken[k] = true;
+                                pairs.push((ga[k], y));
+                            }
+                            None => added.push(y),
+                        }
+                    }
+                    removed.extend(ga.iter().zip(&taken).filter(|(_, &t)| !t).map(|(&x, _)| x));
+                }
+                None => {
+                    // In row order: the first with the first, and so on.
+                    let n = ga.len().min(gb.len());
+                    pairs.extend(ga[..n].iter().copied().zip(gb[..n].iter().copied()));
+                    removed.extend_from_slice(&ga[n..]);
+                    added.extend_from_slice(&gb[n..]);
+                }
             }
         }
     }
@@ -222,6 +265,10 @@ pub(super) fn run(
         &mut removed,
         &mut added,
         list,
+        (
+            ia.as_ref().map(|i| &i.offsets),
+            ib.as_ref().map(|i| &i.offsets),
+        ),
     )?;
     let changed_b = &done.changed_b;
 
@@ -237,12 +284,14 @@ pub(super) fn run(
     drop(pairs);
     let mut runs = Vec::new();
     let mut c = 0usize;
+    let mut split = added.iter().peekable();
     for (y, &x) in a_of_b.iter().enumerate() {
         if x == u64::MAX {
             continue;
         }
         let y = y as u64;
-        if added.binary_search(&y).is_ok() {
+        while split.next_if(|&&s| s < y).is_some() {}
+        if split.next_if_eq(&&y).is_some() {
             // A pair split because its keys differed.
             continue;
         }
@@ -275,6 +324,13 @@ pub(super) fn run(
         key_idx: (ka, kb),
         duplicates: (dups.groups > 0).then_some(dups),
     })
+}
+
+/// A side's row index, read once for both passes: its row offsets and, for an index of format
+/// 1, its fingerprints.
+struct Index {
+    stored: Option<Vec<u64>>,
+    offsets: Arc<[u64]>,
 }
 
 fn lost_row(a: &Version, b: &Version) -> Error {
@@ -318,7 +374,7 @@ fn duplicate_keys(
     s: &Scan,
 ) -> Result<Option<KeyTexts>> {
     let mut suspects: Vec<(u64, u64)> = Vec::new();
-    for w in s.keys.windows(2) {
+    for w in s.keys.parts().iter().flat_map(|p| p.windows(2)) {
         if w[0].0 == w[1].0 {
             suspects.push((w[0].1, w[0].0));
             suspects.push((w[1].1, w[1].0));

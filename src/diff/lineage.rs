@@ -265,6 +265,7 @@ pub(super) fn assemble(
         &mut removed,
         &mut added,
         list,
+        (None, None),
     )?;
     let changed_b = &done.changed_b;
     let mut runs = Vec::new();

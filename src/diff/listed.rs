@@ -13,9 +13,11 @@
 //! pair, and only the rows of the first `n` listed changes are read again for their values. Two
 //! cells with equal 64-bit hashes are taken as equal, as equal row fingerprints already are.
 
+use std::sync::Arc;
+
 use xxhash_rust::xxh3::xxh3_64_with_seed;
 
-use super::read::{both, cuttable, each_row, rows_of, RawRows, RowStore};
+use super::read::{both, cuttable, each_row, rows_at, RawRows, RowStore};
 use super::{cell_diffs, count_by_column, listing, CellDiff, Change};
 use crate::error::{ErrorKind, Result};
 use crate::model::Version;
@@ -46,12 +48,16 @@ pub(super) struct Compared {
     pub n_changes: u64,
 }
 
+/// Each side's row offsets, when the caller read its row index already.
+pub(super) type Known<'k> = (Option<&'k Arc<[u64]>>, Option<&'k Arc<[u64]>>);
+
 /// The seed of the per-cell hashes (any fixed value; not the key hash's).
 const CELL_SEED: u64 = 0x636f_6d70_6172_6564;
 
 /// Compares the cells of the pairs `to_compare` (row in A, row in B; any order) over the
 /// `compared` columns. With `keys`, a pair whose key values differ (two keys that share a
 /// hash) is split into a removed and an added row. `removed` and `added` are sorted on return.
+/// `known`: each side's row offsets when the caller read its row index already.
 #[allow(clippy::too_many_arguments)]
 pub(super) fn compare_pairs(
     objects: &Objects,
@@ -63,11 +69,14 @@ pub(super) fn compare_pairs(
     removed: &mut Vec<u64>,
     added: &mut Vec<u64>,
     list: Listing,
+    known: Known<'_>,
 ) -> Result<Compared> {
     let lost = || lost(a, b);
     let n = match list {
         Listing::All => {
-            return compare_all(objects, a, b, compared, keys, to_compare, removed, added)
+            return compare_all(
+                objects, a, b, compared, keys, to_compare, removed, added, known,
+            )
         }
         Listing::First(n) => n,
     };
@@ -78,8 +87,8 @@ pub(super) fn compare_pairs(
     };
     if let Some((want_a, want_b)) = held {
         let rows = both(
-            || rows_of(objects, a, &want_a),
-            || rows_of(objects, b, &want_b),
+            || rows_at(objects, a, known.0, &want_a),
+            || rows_at(objects, b, known.1, &want_b),
         )?;
         return compare_held(a, b, compared, keys, to_compare, removed, added, n, rows);
     }
@@ -97,9 +106,13 @@ pub(super) fn compare_pairs(
 
     // Each side, on a core of its own: the hash of each compared cell (and key cell) of each
     // row to compare, in its row order.
-    let hash_cells = |v: &Version, want: &[u64], cols: &[usize]| -> Result<Vec<u64>> {
+    let hash_cells = |v: &Version,
+                      known: Option<&Arc<[u64]>>,
+                      want: &[u64],
+                      cols: &[usize]|
+     -> Result<Vec<u64>> {
         let mut hashes: Vec<u64> = Vec::with_capacity(want.len() * width);
-        each_wanted(objects, v, want, |_, r| {
+        each_wanted(objects, v, known, want, |_, r| {
             hashes.extend(
                 cols.iter()
                     .map(|&c| xxh3_64_with_seed(r.field(c), CELL_SEED)),
@@ -115,8 +128,8 @@ pub(super) fn compare_pairs(
     to_compare.sort_unstable_by_key(|p| p.1);
     let want_b: Vec<u64> = to_compare.iter().map(|p| p.1).collect();
     let (hashes_a, hashes_b) = both(
-        || hash_cells(a, &want_a, &cols_a),
-        || hash_cells(b, &want_b, &cols_b),
+        || hash_cells(a, known.0, &want_a, &cols_a),
+        || hash_cells(b, known.1, &want_b, &cols_b),
     )?;
 
     // The pairs in B's order, each row's hashes against its partner's.
@@ -164,8 +177,8 @@ pub(super) fn compare_pairs(
         n,
         |want_a, want_b| {
             both(
-                || rows_of(objects, a, want_a),
-                || rows_of(objects, b, want_b),
+                || rows_at(objects, a, known.0, want_a),
+                || rows_at(objects, b, known.1, want_b),
             )
         },
     )
@@ -352,11 +365,12 @@ fn compare_all(
     mut to_compare: Vec<(u64, u64)>,
     removed: &mut Vec<u64>,
     added: &mut Vec<u64>,
+    known: Known<'_>,
 ) -> Result<Compared> {
     let (want_a, want_b) = wanted_rows(removed, added, &to_compare);
     let (from_rows, to_rows) = both(
-        || rows_of(objects, a, &want_a),
-        || rows_of(objects, b, &want_b),
+        || rows_at(objects, a, known.0, &want_a),
+        || rows_at(objects, b, known.1, &want_b),
     )?;
     drop(want_a);
     drop(want_b);
@@ -407,6 +421,7 @@ fn compare_all(
 fn each_wanted(
     objects: &Objects,
     v: &Version,
+    known: Option<&Arc<[u64]>>,
     wanted: &[u64],
     mut f: impl FnMut(u64, &RawRecord<'_>),
 ) -> Result<()> {
@@ -414,7 +429,10 @@ fn each_wanted(
         return Ok(());
     }
     if cuttable(v) {
-        let (_, offsets) = super::read::offsets(objects, v)?;
+        let offsets = match known {
+            Some(o) => Arc::clone(o),
+            None => super::read::offsets(objects, v)?.1.into(),
+        };
         let mut raw = RawRows::new(objects, v, offsets)?;
         for &w in wanted {
             raw.with_record(w, |r| f(w, r))?;

@@ -10,8 +10,8 @@
 //!   This is the truth the steps recorded, so it is preferred to a declared key; an explicit
 //!   key (`KeyChoice::Columns`) still matches by key.
 //! - **by key** ([`keyed`]), when a key is given or declared on the dataset: rows with equal key
-//!   values are the same row. Each side keeps a sorted vector of (key hash, row number) and the
-//!   two are walked together; only rows whose fingerprints differ are read again to compare
+//!   values are the same row. Each side keeps its (key hash, row number) pairs sorted by hash
+//!   (in parts that fit the cache) and the two are walked together; only rows whose fingerprints differ are read again to compare
 //!   cells. A blank key is an error; rows that share a key are paired within their group (by
 //!   lineage when the versions are related, else in order) and reported ([`DuplicateKeys`]).
 //! - **by order** ([`aligned`]), for unrelated versions without a key: the two sequences of row fingerprints are aligned

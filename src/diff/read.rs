@@ -4,6 +4,7 @@
 
 use std::io::Read;
 use std::path::Path;
+use std::sync::Arc;
 
 use crate::error::{Error, ErrorKind, Result};
 use crate::hash::Hash;
@@ -148,7 +149,7 @@ fn recompute_fingerprints(objects: &Objects, v: &Version, offsets: &[u64]) -> Re
         })?;
         return Ok(fps);
     }
-    let mut raw = RawRows::new(objects, v, offsets.to_vec())?;
+    let mut raw = RawRows::new(objects, v, offsets)?;
     let mut ends = Vec::new();
     for row in 0..offsets.len() as u64 {
         fps.push(raw.fingerprint(row, &mut ends, &mut scratch)?);
@@ -320,7 +321,7 @@ pub fn cuttable(v: &Version) -> bool {
 pub struct RawRows {
     reader: Hashing<Box<dyn Read + Send>>,
     hash: Hash,
-    offsets: Vec<u64>,
+    offsets: Arc<[u64]>,
     n_bytes: u64,
     /// Read bytes in `buf[..filled]`; the rest is room for the next read, zeroed once when it
     /// was first allocated and reused since (no zeroing per read).
@@ -334,7 +335,7 @@ pub struct RawRows {
 }
 
 impl RawRows {
-    pub fn new(objects: &Objects, v: &Version, offsets: Vec<u64>) -> Result<RawRows> {
+    pub fn new(objects: &Objects, v: &Version, offsets: impl Into<Arc<[u64]>>) -> Result<RawRows> {
         let hash = parse_hash(&v.hash)?;
         Ok(RawRows {
             reader: Hashing {
@@ -347,7 +348,7 @@ impl RawRows {
                 )),
             },
             hash,
-            offsets,
+            offsets: offsets.into(),
             n_bytes: v.n_bytes,
             buf: Vec::new(),
             filled: 0,
@@ -516,12 +517,26 @@ impl RawRows {
 
 /// Reads the rows `wanted` (0-based, ascending) of `v` into a [`RowStore`].
 pub fn rows_of(objects: &Objects, v: &Version, wanted: &[u64]) -> Result<RowStore> {
+    rows_at(objects, v, None, wanted)
+}
+
+/// [`rows_of`], with the row offsets of `v` when they were read already (from its row index,
+/// by [`offsets`]).
+pub fn rows_at(
+    objects: &Objects,
+    v: &Version,
+    known: Option<&Arc<[u64]>>,
+    wanted: &[u64],
+) -> Result<RowStore> {
     let mut out = RowStore::new();
     if wanted.is_empty() {
         return Ok(out);
     }
     if cuttable(v) {
-        let (_, offsets) = offsets(objects, v)?;
+        let offsets = match known {
+            Some(o) => Arc::clone(o),
+            None => offsets(objects, v)?.1.into(),
+        };
         let mut raw = RawRows::new(objects, v, offsets)?;
         for &w in wanted {
             raw.parse_into(w, &mut out)?;

@@ -2,9 +2,11 @@
 //! the two versions share, and the hash of each column that might be a renamed one. All of it
 //! fixed-size numbers, so this pass keeps a few words per row and no values.
 
-use xxhash_rust::xxh3::xxh3_64_with_seed;
+use std::sync::Arc;
 
-use super::read::{each_row, offsets, plain_fingerprint, RawRows};
+use xxhash_rust::xxh3::{xxh3_64, xxh3_64_with_seed};
+
+use super::read::{each_row, plain_fingerprint, RawRows};
 use crate::error::Result;
 use crate::model::Version;
 use crate::store::objects::Objects;
@@ -22,16 +24,111 @@ pub struct ScanPlan<'a> {
     pub cand_cols: &'a [usize],
     /// The seed of the key hash (changed when two different keys share a hash).
     pub seed: u64,
+    /// The key pairs are spread over `2^key_bits` parts ([`KeyParts`]).
+    pub key_bits: u32,
     pub null_tokens: &'a [String],
 }
 
 /// How many rows with a blank key are listed in an error.
 pub const SHOWN: usize = 5;
 
+/// (key hash, row) of every row of one side, spread over parts by the top bits of the hash as
+/// they are pushed, so that sorting them is the sort of many small parts, each of which fits
+/// in the processor's cache (one sort of the whole vector missed the cache at almost every
+/// move). Once sorted, the parts in their order are the pairs in hash order, and both sides of
+/// a diff, split alike, hold any one hash in the part of the same number.
+#[derive(Debug, Default)]
+pub struct KeyParts {
+    shift: u32,
+    parts: Vec<Vec<(u64, u64)>>,
+}
+
+impl KeyParts {
+    /// `2^bits` parts (at most 16 bits) for about `n` pairs.
+    pub fn new(bits: u32, n: usize) -> KeyParts {
+        let bits = bits.min(16);
+        let count = 1usize << bits;
+        let each = n / count + n / count / 8 + 16;
+        KeyParts {
+            shift: 64 - bits,
+            parts: (0..count).map(|_| Vec::with_capacity(each)).collect(),
+        }
+    }
+
+    /// How many bits of parts suit a diff whose larger side has `n` rows: about 4,000 pairs
+    /// (64 KiB) a part, at most 256 parts.
+    pub fn bits_for(n: u64) -> u32 {
+        (64 - (n / 4096).leading_zeros()).min(8)
+    }
+
+    pub fn push(&mut self, hash: u64, row: u64) {
+        // A shift by 64 (one part) would overflow: `checked_shr` gives part 0.
+        let p = hash.checked_shr(self.shift).unwrap_or(0) as usize;
+        self.parts[p].push((hash, row));
+    }
+
+    /// Sorts every part (by hash, then row).
+    pub fn sort(&mut self) {
+        let fixed = 64 - self.shift;
+        for p in &mut self.parts {
+            sort_part(p, fixed);
+        }
+    }
+
+    pub fn parts(&self) -> &[Vec<(u64, u64)>] {
+        &self.parts
+    }
+}
+
+/// Sorts (key hash, row) pairs whose hashes agree in their top `fixed` bits into the order
+/// `sort_unstable` gives, in fewer steps: key hashes are spread evenly, so one pass moves each
+/// pair into the bucket of the hash's next bits (in place, by swapping, as in a radix sort
+/// from the top digit) and each bucket, a handful of pairs on average, is then sorted on its
+/// own. Many rows sharing a key make one large bucket, which is sorted as a whole.
+fn sort_part(keys: &mut [(u64, u64)], fixed: u32) {
+    let n = keys.len();
+    if n < 256 {
+        keys.sort_unstable();
+        return;
+    }
+    // About 16 pairs a bucket, from the bits below the fixed ones.
+    let bits = (usize::BITS - 1 - n.leading_zeros() - 4).clamp(4, 12);
+    let shift = 64 - fixed - bits;
+    let mask = (1usize << bits) - 1;
+    let bucket = |k: &(u64, u64)| (k.0 >> shift) as usize & mask;
+    let mut ends = vec![0usize; 1 << bits];
+    for k in keys.iter() {
+        ends[bucket(k)] += 1;
+    }
+    let mut heads = Vec::with_capacity(ends.len());
+    let mut at = 0usize;
+    for e in ends.iter_mut() {
+        heads.push(at);
+        at += *e;
+        *e = at;
+    }
+    for b in 0..ends.len() {
+        while heads[b] < ends[b] {
+            let d = bucket(&keys[heads[b]]);
+            if d == b {
+                heads[b] += 1;
+            } else {
+                keys.swap(heads[b], heads[d]);
+                heads[d] += 1;
+            }
+        }
+    }
+    let mut start = 0usize;
+    for &end in &ends {
+        keys[start..end].sort_unstable();
+        start = end;
+    }
+}
+
 #[derive(Debug, Default)]
 pub struct Scan {
-    /// (key hash, row), one per row, in row order until sorted.
-    pub keys: Vec<(u64, u64)>,
+    /// (key hash, row), one per row.
+    pub keys: KeyParts,
     pub fps: Vec<u64>,
     /// Per candidate column, per row.
     pub cand: Vec<Vec<u64>>,
@@ -41,7 +138,7 @@ pub struct Scan {
 }
 
 /// A length-prefixed concatenation of some cells, hashed: different cell splits never give the
-/// same bytes.
+/// same bytes (a single cell is hashed as it is).
 pub fn cells_hash(r: &RawRecord<'_>, cols: &[usize], seed: u64, scratch: &mut Vec<u8>) -> u64 {
     hash_fields(|c| r.field(c), cols, seed, scratch)
 }
@@ -52,6 +149,10 @@ fn hash_fields<'f>(
     seed: u64,
     scratch: &mut Vec<u8>,
 ) -> u64 {
+    if let [c] = cols {
+        // One cell: nothing to tell apart, so its bytes are hashed as they are.
+        return xxh3_64_with_seed(field(*c), seed);
+    }
     scratch.clear();
     for &c in cols {
         let v = field(c);
@@ -61,29 +162,46 @@ fn hash_fields<'f>(
     xxh3_64_with_seed(scratch, seed)
 }
 
-/// The first pass when the fingerprints are the row index's own definition (whole rows, no
-/// rename candidates) and rows can be cut out by offset: each row, cut out by the offsets of
-/// the row index, is split directly off its bytes (parsed only when it holds a quote), and its
-/// key hashed and fingerprint computed from the pieces; a row index of format 1 gives the
-/// fingerprints, and then only the fields up to the last key column are split. The same
-/// numbers as [`scan`], without running the parser over every row.
+/// How the first pass of a diff by key fingerprints the rows of one side.
+#[derive(Debug, Clone, Copy)]
+pub enum Prints<'p> {
+    /// The row index's own fingerprints (an index of format 1 holds them).
+    Stored(&'p [u64]),
+    /// The row index's definition ([`fingerprint`]), computed from each row's cells.
+    Cells,
+    /// A hash of each row's bytes as stored, without its line ending: equal for rows written
+    /// byte for byte alike, which hold equal values when both sides are read in one dialect.
+    /// Rows with equal values written differently (one of them quoted, say) get different
+    /// hashes and are compared cell by cell in the second pass, which finds them unchanged;
+    /// so this is a cheaper filter, never a different answer. Only the fields up to the last
+    /// key column are split.
+    Bytes,
+}
+
+/// The first pass when the fingerprints are whole rows (no rename candidates) and rows can be
+/// cut out by offset: each row, cut out by `offsets` (the row index's), has the fields up to
+/// its last key column split directly off its bytes (parsed only when a quote comes first),
+/// its key hashed from the pieces, and its fingerprint taken as `prints` says. The same key
+/// hashes as [`scan`], without running the parser over every row.
 pub fn scan_keys(
     objects: &Objects,
     v: &Version,
-    key: &[usize],
-    seed: u64,
-    null_tokens: &[String],
+    offsets: Arc<[u64]>,
+    prints: Prints<'_>,
+    (key, seed, null_tokens, key_bits): (&[usize], u64, &[String], u32),
 ) -> Result<Scan> {
-    let (stored, offsets) = offsets(objects, v)?;
     let n = offsets.len() as u64;
-    let need_fps = stored.is_none();
     let mut s = Scan {
-        keys: Vec::with_capacity(n as usize),
-        fps: stored.unwrap_or_else(|| Vec::with_capacity(n as usize)),
+        keys: KeyParts::new(key_bits, n as usize),
+        fps: match prints {
+            Prints::Stored(fps) => fps.to_vec(),
+            _ => Vec::with_capacity(n as usize),
+        },
         ..Scan::default()
     };
     let last = key.iter().copied().max().unwrap_or(0);
     let mut raw = RawRows::new(objects, v, offsets)?;
+    let delimiter = v.dialect.delimiter_byte();
     let mut scratch = Vec::new();
     let mut fp_scratch = Vec::new();
     let mut ends = Vec::new();
@@ -102,15 +220,20 @@ pub fn scan_keys(
             }
             s.n_blank += 1;
         }
-        s.keys.push((hash_fields(field, key, seed, scratch), row));
+        s.keys.push(hash_fields(field, key, seed, scratch), row);
     }
     let how = (key, seed, null_tokens);
     for row in 0..n {
-        let bytes = if need_fps {
-            raw.plain_row(row, &mut ends)?.filter(|_| ends.len() > last)
-        } else {
-            raw.plain_prefix(row, last, &mut ends)?
+        let bytes = match prints {
+            Prints::Cells => raw.plain_row(row, &mut ends)?.filter(|_| ends.len() > last),
+            Prints::Stored(_) => raw.plain_prefix(row, last, &mut ends)?,
+            Prints::Bytes => {
+                let rec = trim_line_end(raw.bytes(row)?);
+                s.fps.push(xxh3_64(rec));
+                split_prefix(rec, last, delimiter, &mut ends).then_some(rec)
+            }
         };
+        let need_fps = matches!(prints, Prints::Cells);
         if let Some(bytes) = bytes {
             let ends = &ends;
             let field = |c: usize| {
@@ -134,6 +257,38 @@ pub fn scan_keys(
     Ok(s)
 }
 
+/// A row's bytes without its line ending (and any blank lines after it).
+fn trim_line_end(bytes: &[u8]) -> &[u8] {
+    let end = bytes
+        .iter()
+        .rposition(|&c| c != b'\n' && c != b'\r')
+        .map_or(0, |i| i + 1);
+    &bytes[..end]
+}
+
+/// Splits the fields `0..=last` off a record (without its line ending) when none of its bytes
+/// up to the end of field `last` is a quote or a line break, so that csv_core would read
+/// exactly the pieces between the delimiters: fills `ends` with each field's end. False when
+/// the record needs parsing (a quote, or fewer fields).
+fn split_prefix(rec: &[u8], last: usize, delimiter: u8, ends: &mut Vec<usize>) -> bool {
+    ends.clear();
+    if rec.is_empty() {
+        return false;
+    }
+    for (i, &c) in rec.iter().enumerate() {
+        if c == delimiter {
+            ends.push(i);
+            if ends.len() > last {
+                return true;
+            }
+        } else if c == b'"' || c == b'\r' || c == b'\n' {
+            return false;
+        }
+    }
+    ends.push(rec.len());
+    ends.len() > last
+}
+
 /// [`scan`] of both versions at once, without a key: each side's fingerprint columns (`None`:
 /// the whole row) and candidate columns to hash.
 pub fn scan_both(
@@ -151,6 +306,7 @@ pub fn scan_both(
                 fp_cols: fp,
                 cand_cols: cand,
                 seed: 0,
+                key_bits: 0,
                 null_tokens: &v.null_tokens,
             },
         )
@@ -161,7 +317,11 @@ pub fn scan_both(
 pub fn scan(objects: &Objects, v: &Version, plan: &ScanPlan<'_>) -> Result<Scan> {
     let n = v.n_rows as usize;
     let mut s = Scan {
-        keys: Vec::with_capacity(if plan.key.is_some() { n } else { 0 }),
+        keys: if plan.key.is_some() {
+            KeyParts::new(plan.key_bits, n)
+        } else {
+            KeyParts::default()
+        },
         fps: Vec::with_capacity(n),
         cand: vec![Vec::with_capacity(n); plan.cand_cols.len()],
         ..Scan::default()
@@ -176,8 +336,7 @@ pub fn scan(objects: &Objects, v: &Version, plan: &ScanPlan<'_>) -> Result<Scan>
                 }
                 s.n_blank += 1;
             }
-            s.keys
-                .push((cells_hash(&r, k, plan.seed, &mut scratch), row));
+            s.keys.push(cells_hash(&r, k, plan.seed, &mut scratch), row);
         }
         s.fps.push(match plan.fp_cols {
             None => fingerprint(&r, &mut scratch),
