@@ -81,6 +81,14 @@ pub enum Taken {
     Built,
 }
 
+/// Marks output column `o` as holding a new value in the current row.
+fn mark(is_new: &mut [bool], fresh: &mut Vec<usize>, o: usize) {
+    if !is_new[o] {
+        is_new[o] = true;
+        fresh.push(o);
+    }
+}
+
 /// Puts `value` into a reused buffer.
 fn set_value(buf: &mut String, value: &str) {
     buf.clear();
@@ -129,6 +137,11 @@ pub struct RowStep {
     /// (no allocation per changed cell), and whether the row has one.
     new_values: Vec<String>,
     is_new: Vec<bool>,
+    /// The columns marked in `is_new` for the current row (so that only they are cleared).
+    fresh: Vec<usize>,
+    /// The output columns whose values the operation may change (its targets, when it changes
+    /// cells at all): the only ones a row's cell loop visits.
+    cell_outputs: Vec<usize>,
     notes: Vec<(u64, String, String)>,
     /// Cells `number`, `date` or `map` could not read and must not pass: (input row, column,
     /// text, why).
@@ -165,6 +178,13 @@ impl RowStep {
             && columns.len() == input.header.len()
             && columns.iter().enumerate().all(|(o, (_, c))| *c == o)
             && derivs.iter().all(Option::is_none);
+        let cell_outputs: Vec<usize> = if op.changes_cells() {
+            (0..columns.len())
+                .filter(|&o| is_target[columns[o].1])
+                .collect()
+        } else {
+            Vec::new()
+        };
         let fill = FillFrom::new(op, input)?;
         let replacer = Replacer::new(op)?;
         let chooser = RowChooser::new(store, input, op, &targets)?;
@@ -185,6 +205,8 @@ impl RowStep {
             changed_per_column: vec![0; columns.len()],
             new_values: vec![String::new(); columns.len()],
             is_new: vec![false; columns.len()],
+            fresh: Vec::new(),
+            cell_outputs,
             targets,
             columns,
             derivs,
@@ -267,12 +289,12 @@ impl RowStep {
         }
         self.runs.push(self.out_row, in_row);
         let out_row = self.out_row;
-        self.is_new.fill(false);
-        for o in 0..self.columns.len() {
+        for o in self.fresh.drain(..) {
+            self.is_new[o] = false;
+        }
+        for t in 0..self.cell_outputs.len() {
+            let o = self.cell_outputs[t];
             let c = self.columns[o].1;
-            if !self.is_target[c] || !self.op.changes_cells() {
-                continue;
-            }
             let old = r.field(c);
             if self.op.cell_keeps(old) {
                 continue;
@@ -374,7 +396,7 @@ impl RowStep {
                     if op.cell_into(text, &mut self.new_values[o]) {
                         self.changes.push(o, out_row);
                         self.changed_per_column[o] += 1;
-                        self.is_new[o] = true;
+                        mark(&mut self.is_new, &mut self.fresh, o);
                     }
                     continue;
                 }
@@ -383,7 +405,7 @@ impl RowStep {
                 self.changes.push(o, out_row);
                 self.changed_per_column[o] += 1;
                 set_value(&mut self.new_values[o], &new);
-                self.is_new[o] = true;
+                mark(&mut self.is_new, &mut self.fresh, o);
             }
         }
         if let Some(l) = &self.looker {
@@ -392,7 +414,7 @@ impl RowStep {
                 Some(values) => {
                     for (k, v) in values.iter().enumerate() {
                         set_value(&mut self.new_values[base + k], v);
-                        self.is_new[base + k] = true;
+                        mark(&mut self.is_new, &mut self.fresh, base + k);
                     }
                 }
                 None if l.unmatched_fail => {
@@ -411,7 +433,7 @@ impl RowStep {
                 None => {
                     for k in 0..l.take.len() {
                         self.new_values[base + k].clear();
-                        self.is_new[base + k] = true;
+                        mark(&mut self.is_new, &mut self.fresh, base + k);
                     }
                     self.notes.push((
                         out_row,
@@ -427,11 +449,11 @@ impl RowStep {
                     |v: &[u8]| v.is_empty() || self.null_tokens.iter().any(|t| t.as_slice() == v);
                 let value = d.value(r, &is_blank);
                 set_value(&mut self.new_values[o], &value);
-                self.is_new[o] = true;
+                mark(&mut self.is_new, &mut self.fresh, o);
             }
         }
         self.out_row += 1;
-        if self.same_columns && !self.is_new.contains(&true) {
+        if self.same_columns && self.fresh.is_empty() {
             return Ok(Taken::Same);
         }
         out.clear();
