@@ -514,8 +514,8 @@ fn later_steps() -> Vec<Vec<&'static str>> {
     ]
 }
 
-/// `WORK` received as `orders`, then the given steps one `clean` at a time (each stored).
-fn cleaned_one_by_one(trim: bool) -> Sandbox {
+/// A store with `WORK` received as `orders`.
+fn received() -> Sandbox {
     let s = Sandbox::with_store();
     s.file("orders.csv", WORK);
     s.ok(&[
@@ -526,13 +526,24 @@ fn cleaned_one_by_one(trim: bool) -> Sandbox {
         "--why",
         "Q3 export",
     ]);
+    s
+}
+
+/// One `clean` of `orders` with the given arguments.
+fn clean(s: &Sandbox, step: &[&str]) {
+    let mut args = vec!["clean", "orders"];
+    args.extend_from_slice(step);
+    s.ok(&args);
+}
+
+/// `WORK` received as `orders`, then the given steps one `clean` at a time (each stored).
+fn cleaned_one_by_one(trim: bool) -> Sandbox {
+    let s = received();
     if trim {
-        s.ok(&["clean", "orders", "trim", "--why", "the till pads names"]);
+        clean(&s, &["trim", "--why", "the till pads names"]);
     }
     for step in later_steps() {
-        let mut args = vec!["clean", "orders"];
-        args.extend(step);
-        s.ok(&args);
+        clean(&s, &step);
     }
     s
 }
@@ -629,50 +640,25 @@ fn a_withdrawal_writes_only_what_the_policy_stores() {
 /// `keep` drops only trimmed names; its identical output, the pass's last, was written).
 #[test]
 fn a_withdrawal_stores_what_it_inspects_and_its_latest() {
-    let s = Sandbox::with_store();
-    s.file("orders.csv", WORK);
+    let s = received();
     s.file(
         "rules.json",
         r#"{"sluice_rules": 2, "rules": [{"dimension": "completeness", "columns": ["service"]}]}"#,
     );
-    s.ok(&[
-        "receive",
-        "orders.csv",
-        "--as",
-        "orders",
-        "--why",
-        "Q3 export",
-    ]);
-    s.ok(&["clean", "orders", "trim", "--why", "the till pads names"]);
-    s.ok(&[
-        "clean",
-        "orders",
-        "case",
-        "--columns",
-        "service",
-        "--to",
-        "upper",
-        "--why",
-        "one case",
-    ]);
+    let steps = later_steps();
+    clean(&s, &["trim", "--why", "the till pads names"]);
+    clean(&s, &steps[0]);
     s.ok(&["inspect", "orders:v3", "--rules", "rules.json"]);
-    s.ok(&[
-        "clean",
-        "orders",
-        "number",
-        "--columns",
-        "parts_cost",
-        "--why",
-        "amounts",
-    ]);
-    s.ok(&[
-        "clean",
-        "orders",
-        "keep",
-        "shop != 'Quillby Cycle Mend'",
-        "--why",
-        "Oxwater's orders only",
-    ]);
+    clean(&s, &steps[1]);
+    clean(
+        &s,
+        &[
+            "keep",
+            "shop != 'Quillby Cycle Mend'",
+            "--why",
+            "Oxwater's orders only",
+        ],
+    );
     let done = s.json(&[
         "withdraw",
         "orders:v2",
