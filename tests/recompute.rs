@@ -15,6 +15,13 @@ fn blake3_hex(bytes: &[u8]) -> String {
     blake3::hash(bytes).to_hex().to_string()
 }
 
+/// Each version's label and recorded storage (`None`: stored).
+fn storage_of(vs: &[(String, String, Option<String>)]) -> Vec<(&str, Option<&str>)> {
+    vs.iter()
+        .map(|(l, _, st)| (l.as_str(), st.as_deref()))
+        .collect()
+}
+
 /// Every version of the store as `NAME:vN`, with its recorded hash and storage.
 fn versions(s: &Sandbox) -> Vec<(String, String, Option<String>)> {
     let db = rusqlite::Connection::open(s.path().join("sluice-store/lineage.db")).unwrap();
@@ -142,10 +149,7 @@ fn a_schema_5_store_migrates_and_every_old_reference_and_hash_resolves() {
 fn a_run_keeps_its_intermediates_as_recipes_and_computes_them_when_read() {
     let s = planned();
     let vs = versions(&s);
-    let storage: Vec<(&str, Option<&str>)> = vs
-        .iter()
-        .map(|(l, _, st)| (l.as_str(), st.as_deref()))
-        .collect();
+    let storage = storage_of(&vs);
     assert_eq!(
         storage,
         [
@@ -579,10 +583,7 @@ fn a_withdrawal_writes_only_what_the_policy_stores() {
         "the restored table, then each step again"
     );
 
-    let storage: Vec<(&str, Option<&str>)> = vs[7..]
-        .iter()
-        .map(|(l, _, st)| (l.as_str(), st.as_deref()))
-        .collect();
+    let storage = storage_of(&vs[7..]);
     assert_eq!(
         storage,
         [
@@ -677,10 +678,7 @@ fn a_withdrawal_stores_what_it_inspects_and_its_latest() {
         "{done}"
     );
     let vs = versions(&s);
-    let storage: Vec<(&str, Option<&str>)> = vs[5..]
-        .iter()
-        .map(|(l, _, st)| (l.as_str(), st.as_deref()))
-        .collect();
+    let storage = storage_of(&vs[5..]);
     assert_eq!(
         storage,
         [
