@@ -84,18 +84,22 @@ impl ChangeLog {
     }
 }
 
-/// The input rows a step dropped, with their reasons kept once each.
+/// The input rows a step dropped, with their reasons kept once each. The drops are kept in the
+/// provenance object's own form as they come (the gap from the row before, the reason's
+/// number, the row duplicated plus one or 0, each a variable-length integer), a few bytes a
+/// drop rather than 24.
 #[derive(Debug, Default, Clone)]
 pub struct DropLog {
     reasons: Vec<String>,
     index: HashMap<String, u32>,
-    /// (input row, reason number, row it duplicated).
-    entries: Vec<(u64, u32, Option<u64>)>,
+    n: usize,
+    last: u64,
+    entries: Vec<u8>,
 }
 
 impl DropLog {
     /// Records that input row `row` was dropped. For a duplicate, `reason` is what follows
-    /// "duplicate of data row N" (see [`reason_text`]).
+    /// "duplicate of data row N" (see [`reason_text`]). Rows come in order.
     pub fn push(&mut self, row: u64, reason: &str, duplicate_of: Option<u64>) {
         let n = match self.index.get(reason) {
             Some(&n) => n,
@@ -106,27 +110,45 @@ impl DropLog {
                 n
             }
         };
-        self.entries.push((row, n, duplicate_of));
+        debug_assert!(self.n == 0 || row > self.last);
+        put_varint(&mut self.entries, row - self.last);
+        put_varint(&mut self.entries, u64::from(n));
+        put_varint(&mut self.entries, duplicate_of.map_or(0, |d| d + 1));
+        self.last = row;
+        self.n += 1;
     }
 
     pub fn len(&self) -> usize {
-        self.entries.len()
+        self.n
     }
 
     pub fn is_empty(&self) -> bool {
-        self.entries.is_empty()
+        self.n == 0
     }
 
     /// Every drop, in order of input row.
     pub fn drops(&self) -> Vec<Drop> {
-        self.entries
-            .iter()
-            .map(|&(row, n, dup)| Drop {
+        let mut r = Reader {
+            bytes: &self.entries,
+            at: 0,
+            what: "being written",
+        };
+        let mut row = 0u64;
+        let mut out = Vec::with_capacity(self.n);
+        for _ in 0..self.n {
+            // Written just above by `push`: always whole.
+            let (Ok(gap), Ok(n), Ok(dup)) = (r.varint(), r.varint(), r.varint()) else {
+                break;
+            };
+            row += gap;
+            let dup = dup.checked_sub(1);
+            out.push(Drop {
                 row_idx: row,
-                reason: reason_text(&self.reasons[n as usize], dup),
+                reason: reason_text(self.reasons.get(n as usize).map_or("", String::as_str), dup),
                 duplicate_of: dup,
-            })
-            .collect()
+            });
+        }
+        out
     }
 }
 
@@ -199,14 +221,9 @@ pub fn encode(
     for r in &drops.reasons {
         put_text(&mut out, r);
     }
-    put_varint(&mut out, drops.entries.len() as u64);
-    let mut prev = 0;
-    for &(row, n, dup) in &drops.entries {
-        put_varint(&mut out, row - prev);
-        prev = row;
-        put_varint(&mut out, u64::from(n));
-        put_varint(&mut out, dup.map_or(0, |d| d + 1));
-    }
+    put_varint(&mut out, drops.n as u64);
+    // The drops as they were gathered: each row's gap from the one before, reason, duplicate.
+    out.extend_from_slice(&drops.entries);
     out
 }
 
