@@ -32,6 +32,23 @@ fn versions(s: &Sandbox, dir: &str) -> Vec<(String, String, u64, String, String,
 /// The whole demo (plan run, hand edit, outside command, report) with its lineage on the
 /// server gives every version the same BLAKE3 hash and row index as the same demo on SQLite,
 /// and the shared store verifies intact.
+/// A late export of one order (`row`) written into store folder `who` and received there as
+/// `late_orders`.
+fn receive_late(s: &Sandbox, who: &str, row: &str) {
+    let file = format!("{who}/late.csv");
+    s.file(&file, format!("order_id,note\n{row}\n"));
+    s.ok(&[
+        "--store",
+        who,
+        "receive",
+        &file,
+        "--as",
+        "late_orders",
+        "--why",
+        "a late export",
+    ]);
+}
+
 #[test]
 fn the_demo_on_the_server_records_what_it_records_on_sqlite() {
     let server = pg::server();
@@ -164,20 +181,7 @@ fn publish_and_borrow_name_a_shared_store_that_moved_on() {
         raw
     );
     for who in ["first", "second"] {
-        s.file(
-            &format!("{who}/late.csv"),
-            format!("order_id,note\nL-1,late export read by {who}\n"),
-        );
-        s.ok(&[
-            "--store",
-            who,
-            "receive",
-            &format!("{who}/late.csv"),
-            "--as",
-            "late_orders",
-            "--why",
-            "a late export",
-        ]);
+        receive_late(&s, who, &format!("L-1,late export read by {who}"));
     }
     let sent: Value =
         serde_json::from_str(&s.ok(&["--store", "first", "publish", "--to", "shared", "--json"]))
@@ -307,20 +311,7 @@ fn a_borrow_in_part_copies_one_dataset_and_what_it_is_made_from() {
     let deep = s.run(&["--store", "part", "verify", "--deep"]);
     assert_eq!(deep.code, 0, "{}\n{}", deep.stdout, deep.stderr);
     // Work recorded in the part is published back; the shared store verifies intact.
-    s.file(
-        "part/late.csv",
-        "order_id,note\nL-2,late export read in the part\n",
-    );
-    s.ok(&[
-        "--store",
-        "part",
-        "receive",
-        "part/late.csv",
-        "--as",
-        "late_orders",
-        "--why",
-        "a late export",
-    ]);
+    receive_late(&s, "part", "L-2,late export read in the part");
     let sent: Value =
         serde_json::from_str(&s.ok(&["--store", "part", "publish", "--to", "shared", "--json"]))
             .unwrap();

@@ -260,16 +260,7 @@ impl RowStore {
 
     /// Adds a row held elsewhere; rows must be pushed in increasing order.
     pub fn push_ref(&mut self, row: u64, r: RowRef<'_>) {
-        self.push(
-            row,
-            &RawRecord {
-                fields: r.fields,
-                ends: r.ends,
-                byte: 0,
-                line: 0,
-                index: 0,
-            },
-        );
+        self.push(row, &RawRecord::packed(r.fields, r.ends, 0));
     }
 
     /// The row number of the `i`-th stored row.

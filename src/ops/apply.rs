@@ -440,13 +440,7 @@ pub(crate) fn compute_chain_summed(
             let stage = &mut after[0];
             let record = match held {
                 None if k == 0 => RawRecord { ..r },
-                None => RawRecord {
-                    fields: r.fields,
-                    ends: r.ends,
-                    byte: 0,
-                    line: 0,
-                    index: row,
-                },
+                None => RawRecord::packed(r.fields, r.ends, row),
                 Some(j) => before[j].out.record(row),
             };
             let (bytes, ends) = match stage.step.take(row, &record, &mut stage.out)? {
@@ -466,13 +460,7 @@ pub(crate) fn compute_chain_summed(
             stage.n_out += 1;
             if k + 1 == n_stages {
                 if let Some(summary) = &mut summary {
-                    summary.add(
-                        row,
-                        &RawRecord {
-                            index: row,
-                            ..record_of(bytes, ends)
-                        },
-                    );
+                    summary.add(row, &RawRecord::packed(bytes, ends, row));
                 }
             }
         }
@@ -508,17 +496,6 @@ pub(crate) fn compute_chain_summed(
         });
     }
     Ok((computed, summary))
-}
-
-/// A row given as its fields' bytes and ends, for a step that reads records.
-fn record_of<'a>(fields: &'a [u8], ends: &'a [usize]) -> RawRecord<'a> {
-    RawRecord {
-        fields,
-        ends,
-        byte: 0,
-        line: 0,
-        index: 0,
-    }
 }
 
 /// Records the summary a fused stretch accumulated ([`compute_chain_summed`]) as its step on

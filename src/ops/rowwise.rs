@@ -46,13 +46,7 @@ impl OwnedRow {
 
     /// The row as a record, for the next step of a chain (positions are not known there).
     pub fn record(&self, index: u64) -> RawRecord<'_> {
-        RawRecord {
-            fields: &self.bytes,
-            ends: &self.ends,
-            byte: 0,
-            line: 0,
-            index,
-        }
+        RawRecord::packed(&self.bytes, &self.ends, index)
     }
 
     /// The fields' bytes back to back, and where each ends (for a writer).

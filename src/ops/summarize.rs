@@ -152,6 +152,8 @@ pub(super) fn run(
 /// handed on by the last step of a fused stretch of a plan (`apply::compute_chain_summed`),
 /// so that the summary of a plan's cleaned table costs no second read of it.
 pub(crate) struct Summary {
+    /// The dataset the summary makes.
+    dataset: String,
     by: Vec<String>,
     aggregates: Vec<Aggregate>,
     by_idx: Vec<usize>,
@@ -173,12 +175,13 @@ impl Summary {
             return Err(Error::usage("summarize was called for another operation"));
         };
         let label = input.label();
-        match &opts.output_dataset {
-            Some(d) if *d != input.dataset => crate::intake::validate_dataset_name(d)?,
+        let dataset = match &opts.output_dataset {
+            Some(d) if *d != input.dataset => d.clone(),
             _ => return Err(Error::usage(
                 "summarize makes a new dataset: name it with --as NAME (e.g. --as revenue_by_shop)",
             )),
-        }
+        };
+        crate::intake::validate_dataset_name(&dataset)?;
         if by.is_empty() {
             return Err(Error::usage(
                 "summarize needs --by COLUMN[,COLUMN..] to group on",
@@ -204,6 +207,7 @@ impl Summary {
             }
         }
         Ok(Summary {
+            dataset,
             by: by.clone(),
             aggregates: aggregates.clone(),
             by_idx,
@@ -306,12 +310,6 @@ impl Summary {
             ))
             .into());
         }
-        let dataset = match &opts.output_dataset {
-            Some(d) if *d != input.dataset => d.clone(),
-            _ => return Err(Error::usage(
-                "summarize makes a new dataset: name it with --as NAME (e.g. --as revenue_by_shop)",
-            )),
-        };
         let store_dir = store.dir().to_path_buf();
         let store_io = |e: std::io::Error| Error::io(&store_dir.join("tmp"), e);
         let mut writer = super::apply::output_writer(store, opts, &self.out_header, &[], &[])
@@ -343,7 +341,7 @@ impl Summary {
         record(
             store,
             input,
-            &dataset,
+            &self.dataset,
             opts,
             &self.started_at,
             written,

@@ -25,6 +25,20 @@ pub struct RawRecord<'a> {
     pub index: u64,
 }
 
+impl<'a> RawRecord<'a> {
+    /// A row held as its fields' bytes back to back and where each ends, as row `index` of
+    /// a table that is not a file (an operation's output): no byte offset or line to give.
+    pub fn packed(fields: &'a [u8], ends: &'a [usize], index: u64) -> Self {
+        RawRecord {
+            fields,
+            ends,
+            byte: 0,
+            line: 0,
+            index,
+        }
+    }
+}
+
 impl RawRecord<'_> {
     pub fn len(&self) -> usize {
         self.ends.len()
