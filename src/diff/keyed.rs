@@ -7,7 +7,10 @@
 //! delimiter (the row index's own when both indexes hold them, or when the delimiters differ);
 //! otherwise every row is parsed. A pair of rows with equal fingerprints is unchanged without
 //! reading its values again; the others, and the removed and added rows, are read in a second
-//! pass, where the keys of each pair are also confirmed on their values.
+//! pass, where the keys of each pair are also confirmed on their values. When rows are cut out
+//! by offset and both versions together are at most [`KEEP_BYTES`], the first pass keeps the
+//! bytes it read (checked against each version's hash) and the second cuts its rows out of
+//! them: each object is then decoded and hashed once, not twice.
 //!
 //! Keys are hashed with XXH3-64. Two rows of one side with the same hash are read again:
 //! different key values are a collision, after which the pass is repeated with another seed;
@@ -17,11 +20,9 @@
 //! there are and the first few ([`DuplicateKeys`]). A pair across the sides whose key values
 //! turn out to differ is reported as a removed and an added row.
 
-use std::sync::Arc;
-
 use super::lineage::Link;
 use super::listed::{compare_pairs, Listing};
-use super::read::{both, cuttable, each_row, offsets};
+use super::read::{both, cuttable, each_row, offsets, Cut};
 use super::scan::{scan, scan_keys, KeyParts, Prints, Scan, ScanPlan};
 use super::{
     pairs_that_differ, push_pair, Diff, DuplicateGroup, DuplicateKeys, Layout, MatchedBy,
@@ -30,6 +31,11 @@ use super::{
 use crate::error::{Error, ErrorKind, Result};
 use crate::model::Version;
 use crate::store::Store;
+
+/// Up to this many bytes of both versions together, the first pass keeps what it reads and the
+/// second cuts its rows out of memory: each version is then decoded and hashed once, not twice.
+/// Past it the second pass reads the objects again, so memory stays bounded.
+pub const KEEP_BYTES: u64 = 256 << 20;
 
 /// How many seeds are tried before the keys are declared impossible to tell apart by hash
 /// (each further try is needed with probability about n²/2⁶⁵).
@@ -52,7 +58,7 @@ pub(super) fn run(
     ka: Vec<usize>,
     kb: Vec<usize>,
     link: Option<&Link>,
-    list: Listing,
+    (list, keep_bytes): (Listing, u64),
 ) -> Result<Diff> {
     let objects = &store.objects;
     let (cand_a, cand_b) = layout.candidates();
@@ -66,10 +72,11 @@ pub(super) fn run(
         let (stored, offsets) = offsets(objects, v)?;
         Ok(Some(Index {
             stored,
-            offsets: offsets.into(),
+            cut: Cut::offsets(offsets),
         }))
     };
-    let (ia, ib) = both(|| index(&fp_a, &cand_a, a), || index(&fp_b, &cand_b, b))?;
+    let (mut ia, mut ib) = both(|| index(&fp_a, &cand_a, a), || index(&fp_b, &cand_b, b))?;
+    let keep = ia.is_some() && ib.is_some() && a.n_bytes.saturating_add(b.n_bytes) <= keep_bytes;
     // The rows' own bytes are hashed as fingerprints when both sides are cut out in one
     // dialect, unless both indexes hold fingerprints already.
     let by_bytes = match (&ia, &ib) {
@@ -103,17 +110,24 @@ pub(super) fn run(
                         None => Prints::Cells,
                     };
                     let how = (k, seed, v.null_tokens.as_slice(), key_bits);
-                    scan_keys(objects, v, Arc::clone(&ix.offsets), prints, how)?
+                    scan_keys(objects, v, &ix.cut, prints, how, keep)?
                 }
                 None => scan(objects, v, &plan)?,
             };
             s.keys.sort();
             Ok(s)
         };
-        let (sa, sb) = both(
+        let (mut sa, mut sb) = both(
             || plan(&ka, fp_a.as_deref(), &cand_a, a, &ia),
             || plan(&kb, fp_b.as_deref(), &cand_b, b, &ib),
         )?;
+        for (ix, s) in [(&mut ia, &mut sa), (&mut ib, &mut sb)] {
+            if let Some(ix) = ix {
+                if let Some(k) = s.kept.take() {
+                    ix.cut.kept = Some(k);
+                }
+            }
+        }
         blank_keys(a, &key, &sa)?;
         blank_keys(b, &key, &sb)?;
         let dup_a = duplicate_keys(store, a, &ka, &sa)?;
@@ -265,10 +279,7 @@ pub(super) fn run(
         &mut removed,
         &mut added,
         list,
-        (
-            ia.as_ref().map(|i| &i.offsets),
-            ib.as_ref().map(|i| &i.offsets),
-        ),
+        (ia.as_ref().map(|i| &i.cut), ib.as_ref().map(|i| &i.cut)),
     )?;
     let changed_b = &done.changed_b;
 
@@ -330,7 +341,7 @@ pub(super) fn run(
 /// 1, its fingerprints.
 struct Index {
     stored: Option<Vec<u64>>,
-    offsets: Arc<[u64]>,
+    cut: Cut,
 }
 
 fn lost_row(a: &Version, b: &Version) -> Error {

@@ -13,11 +13,9 @@
 //! pair, and only the rows of the first `n` listed changes are read again for their values. Two
 //! cells with equal 64-bit hashes are taken as equal, as equal row fingerprints already are.
 
-use std::sync::Arc;
-
 use xxhash_rust::xxh3::xxh3_64_with_seed;
 
-use super::read::{both, cuttable, each_row, rows_at, RawRows, RowStore};
+use super::read::{both, cuttable, each_row, rows_at, Cut, RawRows, RowStore};
 use super::{cell_diffs, count_by_column, listing, CellDiff, Change};
 use crate::error::{ErrorKind, Result};
 use crate::model::Version;
@@ -48,8 +46,9 @@ pub(super) struct Compared {
     pub n_changes: u64,
 }
 
-/// Each side's row offsets, when the caller read its row index already.
-pub(super) type Known<'k> = (Option<&'k Arc<[u64]>>, Option<&'k Arc<[u64]>>);
+/// What the first pass left about each side: its row offsets, when the caller read its row
+/// index already, and its bytes when they were kept.
+pub(super) type Known<'k> = (Option<&'k Cut>, Option<&'k Cut>);
 
 /// The seed of the per-cell hashes (any fixed value; not the key hash's).
 const CELL_SEED: u64 = 0x636f_6d70_6172_6564;
@@ -57,7 +56,8 @@ const CELL_SEED: u64 = 0x636f_6d70_6172_6564;
 /// Compares the cells of the pairs `to_compare` (row in A, row in B; any order) over the
 /// `compared` columns. With `keys`, a pair whose key values differ (two keys that share a
 /// hash) is split into a removed and an added row. `removed` and `added` are sorted on return.
-/// `known`: each side's row offsets when the caller read its row index already.
+/// `known`: each side's row offsets when the caller read its row index already (and its bytes
+/// when the first pass kept them).
 #[allow(clippy::too_many_arguments)]
 pub(super) fn compare_pairs(
     objects: &Objects,
@@ -106,23 +106,20 @@ pub(super) fn compare_pairs(
 
     // Each side, on a core of its own: the hash of each compared cell (and key cell) of each
     // row to compare, in its row order.
-    let hash_cells = |v: &Version,
-                      known: Option<&Arc<[u64]>>,
-                      want: &[u64],
-                      cols: &[usize]|
-     -> Result<Vec<u64>> {
-        let mut hashes: Vec<u64> = Vec::with_capacity(want.len() * width);
-        each_wanted(objects, v, known, want, |_, r| {
-            hashes.extend(
-                cols.iter()
-                    .map(|&c| xxh3_64_with_seed(r.field(c), CELL_SEED)),
-            );
-        })?;
-        if hashes.len() != want.len() * width {
-            return Err(lost());
-        }
-        Ok(hashes)
-    };
+    let hash_cells =
+        |v: &Version, known: Option<&Cut>, want: &[u64], cols: &[usize]| -> Result<Vec<u64>> {
+            let mut hashes: Vec<u64> = Vec::with_capacity(want.len() * width);
+            each_wanted(objects, v, known, want, |_, r| {
+                hashes.extend(
+                    cols.iter()
+                        .map(|&c| xxh3_64_with_seed(r.field(c), CELL_SEED)),
+                );
+            })?;
+            if hashes.len() != want.len() * width {
+                return Err(lost());
+            }
+            Ok(hashes)
+        };
     let mut want_a: Vec<u64> = to_compare.iter().map(|p| p.0).collect();
     want_a.sort_unstable();
     to_compare.sort_unstable_by_key(|p| p.1);
@@ -421,7 +418,7 @@ fn compare_all(
 fn each_wanted(
     objects: &Objects,
     v: &Version,
-    known: Option<&Arc<[u64]>>,
+    known: Option<&Cut>,
     wanted: &[u64],
     mut f: impl FnMut(u64, &RawRecord<'_>),
 ) -> Result<()> {
@@ -429,11 +426,11 @@ fn each_wanted(
         return Ok(());
     }
     if cuttable(v) {
-        let offsets = match known {
-            Some(o) => Arc::clone(o),
-            None => super::read::offsets(objects, v)?.1.into(),
+        let cut = match known {
+            Some(c) => c.clone(),
+            None => Cut::offsets(super::read::offsets(objects, v)?.1),
         };
-        let mut raw = RawRows::new(objects, v, offsets)?;
+        let mut raw = RawRows::cut(objects, v, &cut)?;
         for &w in wanted {
             raw.with_record(w, |r| f(w, r))?;
         }

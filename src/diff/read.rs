@@ -306,9 +306,51 @@ pub fn cuttable(v: &Version) -> bool {
     v.dialect.encoding == "utf-8"
 }
 
+/// A version's whole bytes, read once and kept for a later pass.
+#[derive(Debug)]
+pub struct Kept(Vec<u8>);
+
+impl Kept {
+    fn new(len: usize) -> Kept {
+        // Zeroed memory from the allocator: for a large block, fresh pages the kernel zeroes
+        // as they are first written, so nothing is written twice.
+        Kept(vec![0u8; len])
+    }
+
+    fn bytes_mut(&mut self) -> &mut [u8] {
+        &mut self.0
+    }
+}
+
+impl std::ops::Deref for Kept {
+    type Target = [u8];
+    fn deref(&self) -> &[u8] {
+        &self.0
+    }
+}
+
+/// What a diff's first pass leaves for its second about one version: the byte offset of every
+/// row (from its row index), and the version's whole bytes when the first pass kept them
+/// ([`RawRows::keeping`]), already checked against the version's hash.
+#[derive(Debug, Clone)]
+pub struct Cut {
+    pub offsets: Arc<[u64]>,
+    pub kept: Option<Arc<Kept>>,
+}
+
+impl Cut {
+    pub fn offsets(offsets: impl Into<Arc<[u64]>>) -> Cut {
+        Cut {
+            offsets: offsets.into(),
+            kept: None,
+        }
+    }
+}
+
 /// The bytes of single rows of a stored version, cut out by the offsets of its row index while
-/// the object is read once from start to end (and re-hashed; [`RawRows::finish`] checks it).
-/// Nothing is parsed but the rows asked for.
+/// the object is read once from start to end (and re-hashed; [`RawRows::finish`] checks it),
+/// or from the bytes a first pass kept ([`Cut::kept`], checked then: nothing is read or hashed
+/// again). Nothing is parsed but the rows asked for.
 pub struct RawRows {
     reader: Hashing<Box<dyn Read + Send>>,
     hash: Hash,
@@ -323,6 +365,11 @@ pub struct RawRows {
     /// One parser for every row parsed (restarted per row, never built again).
     parser: Parser,
     label: String,
+    /// Where every byte read stays (from the object's first byte, `filled` of them), for
+    /// [`RawRows::finish_keeping`]; `buf` is then unused.
+    keeping: Option<Kept>,
+    /// The version's bytes, kept by an earlier pass: rows are cut out of them instead.
+    kept: Option<Arc<Kept>>,
 }
 
 impl RawRows {
@@ -346,14 +393,67 @@ impl RawRows {
             buf_start: 0,
             parser: Parser::new(v.dialect.delimiter_byte(), 0),
             label: v.label(),
+            keeping: None,
+            kept: None,
         })
+    }
+
+    /// [`Self::new`] that keeps every byte it reads, so that [`Self::finish_keeping`] hands the
+    /// whole version over (checked) for a later pass to read from memory ([`Self::cut`]).
+    pub fn keeping(
+        objects: &Objects,
+        v: &Version,
+        offsets: impl Into<Arc<[u64]>>,
+    ) -> Result<RawRows> {
+        let mut raw = RawRows::new(objects, v, offsets)?;
+        let len = usize::try_from(v.n_bytes).map_err(|_| raw.short())?;
+        raw.keeping = Some(Kept::new(len));
+        Ok(raw)
+    }
+
+    /// Rows of `v` cut out as `cut` says: from its kept bytes when an earlier pass kept them,
+    /// else read from the object again ([`Self::new`]).
+    pub fn cut(objects: &Objects, v: &Version, cut: &Cut) -> Result<RawRows> {
+        let Some(bytes) = &cut.kept else {
+            return RawRows::new(objects, v, Arc::clone(&cut.offsets));
+        };
+        let raw = RawRows {
+            reader: Hashing {
+                inner: Box::new(std::io::empty()),
+                hasher: blake3::Hasher::new(),
+                progress: None,
+            },
+            hash: parse_hash(&v.hash)?,
+            offsets: Arc::clone(&cut.offsets),
+            n_bytes: v.n_bytes,
+            buf: Vec::new(),
+            filled: 0,
+            buf_start: 0,
+            parser: Parser::new(v.dialect.delimiter_byte(), 0),
+            label: v.label(),
+            keeping: None,
+            kept: Some(Arc::clone(bytes)),
+        };
+        if bytes.len() as u64 != v.n_bytes {
+            return Err(raw.short());
+        }
+        Ok(raw)
+    }
+
+    /// The bytes rows are cut out of.
+    fn data(&self) -> &[u8] {
+        match (&self.kept, &self.keeping) {
+            (Some(k), _) => k,
+            (None, Some(k)) => k,
+            (None, None) => &self.buf,
+        }
     }
 
     /// The bytes of row `row` (its record, line ending and any blank lines after it). Rows
     /// must be asked for in increasing order.
     pub fn bytes(&mut self, row: u64) -> Result<&[u8]> {
         let (from, to) = self.fill(row)?;
-        Ok(&self.buf[from..to])
+        Ok(&self.data()[from..to])
     }
 
     /// Reads until row `row` is whole in the buffer; returns where it lies there.
@@ -365,6 +465,30 @@ impl RawRows {
         let end = end.copied().unwrap_or(self.n_bytes);
         if start < self.buf_start || end < start {
             return Err(self.short());
+        }
+        let whole = |len: usize| match (usize::try_from(start), usize::try_from(end)) {
+            (Ok(s), Ok(e)) if e <= len => Some((s, e)),
+            _ => None,
+        };
+        if let Some(k) = &self.kept {
+            return whole(k.len()).ok_or_else(|| self.short());
+        }
+        if let Some(k) = &mut self.keeping {
+            // Every byte stays where it was read, the object's first at 0.
+            let Some((s, e)) = whole(k.len()) else {
+                return Err(self.short());
+            };
+            while self.filled < e {
+                let n = self
+                    .reader
+                    .read(&mut k.bytes_mut()[self.filled..])
+                    .map_err(|e| Error::io(Path::new(&self.label), e))?;
+                if n == 0 {
+                    return Err(self.short());
+                }
+                self.filled += n;
+            }
+            return Ok((s, e));
         }
         // Read until the row is whole, first dropping what lies before it (only then, so that
         // the buffer moves once per piece read, not once per row).
@@ -401,7 +525,11 @@ impl RawRows {
     /// Parses row `row` and calls `f` with its record.
     pub fn with_record(&mut self, row: u64, f: impl FnOnce(&RawRecord<'_>)) -> Result<()> {
         let (from, to) = self.fill(row)?;
-        let bytes = &self.buf[from..to];
+        let bytes = match (&self.kept, &self.keeping) {
+            (Some(k), _) => &k[from..to],
+            (None, Some(k)) => &k[from..to],
+            (None, None) => &self.buf[from..to],
+        };
         let p = &mut self.parser;
         p.restart(0);
         let mut f = Some(f);
@@ -430,8 +558,8 @@ impl RawRows {
         ends: &mut Vec<usize>,
     ) -> Result<Option<&'s [u8]>> {
         let (from, to) = self.fill(row)?;
-        let bytes = &self.buf[from..to];
         let delimiter = self.parser.delimiter();
+        let bytes = &self.data()[from..to];
         ends.clear();
         for (i, &c) in bytes.iter().enumerate() {
             if c == delimiter {
@@ -456,7 +584,8 @@ impl RawRows {
         ends: &mut Vec<usize>,
     ) -> Result<Option<&'s [u8]>> {
         let (from, to) = self.fill(row)?;
-        let bytes = &self.buf[from..to];
+        let delimiter = self.parser.delimiter();
+        let bytes = &self.data()[from..to];
         let rec = match memchr::memchr2(b'\r', b'\n', bytes) {
             Some(e) => &bytes[..e],
             None => bytes,
@@ -465,7 +594,7 @@ impl RawRows {
             return Ok(None);
         }
         ends.clear();
-        ends.extend(memchr::memchr_iter(self.parser.delimiter(), rec));
+        ends.extend(memchr::memchr_iter(delimiter, rec));
         ends.push(rec.len());
         Ok(Some(rec))
     }
@@ -485,8 +614,12 @@ impl RawRows {
         Ok(fp)
     }
 
-    /// Reads the rest of the object and checks its hash.
+    /// Reads the rest of the object and checks its hash (nothing to do for kept bytes, checked
+    /// when they were read).
     pub fn finish(mut self) -> Result<()> {
+        if self.kept.is_some() {
+            return Ok(());
+        }
         let mut sink = vec![0u8; crate::hash::STREAM_BUF];
         while self
             .reader
@@ -495,6 +628,35 @@ impl RawRows {
             > 0
         {}
         check_hash(&self.hash, &self.reader.hasher)
+    }
+
+    /// [`Self::finish`] of a reader made by [`Self::keeping`]: the rest is read too, the hash
+    /// checked, and the whole version handed over for [`Cut::kept`].
+    pub fn finish_keeping(mut self) -> Result<Arc<Kept>> {
+        let Some(mut kept) = self.keeping.take() else {
+            return Err(ErrorKind::Internal(
+                "a reader that kept nothing was asked for its bytes".into(),
+            )
+            .into());
+        };
+        let io = |e| Error::io(Path::new(&self.label), e);
+        while self.filled < kept.len() {
+            let n = self
+                .reader
+                .read(&mut kept.bytes_mut()[self.filled..])
+                .map_err(io)?;
+            if n == 0 {
+                return Err(self.short());
+            }
+            self.filled += n;
+        }
+        // Nothing may follow the recorded length.
+        let mut probe = [0u8; 1];
+        if self.reader.read(&mut probe).map_err(io)? != 0 {
+            return Err(self.short());
+        }
+        check_hash(&self.hash, &self.reader.hasher)?;
+        Ok(Arc::new(kept))
     }
 
     fn short(&self) -> Error {
@@ -511,12 +673,12 @@ pub fn rows_of(objects: &Objects, v: &Version, wanted: &[u64]) -> Result<RowStor
     rows_at(objects, v, None, wanted)
 }
 
-/// [`rows_of`], with the row offsets of `v` when they were read already (from its row index,
-/// by [`offsets`]).
+/// [`rows_of`], with what a first pass left about `v` when it read its row index already (and
+/// perhaps kept its bytes).
 pub fn rows_at(
     objects: &Objects,
     v: &Version,
-    known: Option<&Arc<[u64]>>,
+    known: Option<&Cut>,
     wanted: &[u64],
 ) -> Result<RowStore> {
     let mut out = RowStore::new();
@@ -524,11 +686,11 @@ pub fn rows_at(
         return Ok(out);
     }
     if cuttable(v) {
-        let offsets = match known {
-            Some(o) => Arc::clone(o),
-            None => offsets(objects, v)?.1.into(),
+        let cut = match known {
+            Some(c) => c.clone(),
+            None => Cut::offsets(offsets(objects, v)?.1),
         };
-        let mut raw = RawRows::new(objects, v, offsets)?;
+        let mut raw = RawRows::cut(objects, v, &cut)?;
         for &w in wanted {
             raw.parse_into(w, &mut out)?;
         }

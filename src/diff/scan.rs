@@ -6,7 +6,7 @@ use std::sync::Arc;
 
 use xxhash_rust::xxh3::{xxh3_64, xxh3_64_with_seed};
 
-use super::read::{each_row, plain_fingerprint, RawRows};
+use super::read::{each_row, plain_fingerprint, Cut, RawRows};
 use crate::error::Result;
 use crate::model::Version;
 use crate::store::objects::Objects;
@@ -135,6 +135,8 @@ pub struct Scan {
     /// The first rows whose key is blank, and how many there are.
     pub blank: Vec<u64>,
     pub n_blank: u64,
+    /// The version's bytes, when the pass was asked to keep them for the next.
+    pub kept: Option<Arc<super::read::Kept>>,
 }
 
 /// A length-prefixed concatenation of some cells, hashed: different cell splits never give the
@@ -182,15 +184,19 @@ pub enum Prints<'p> {
 /// cut out by offset: each row, cut out by `offsets` (the row index's), has the fields up to
 /// its last key column split directly off its bytes (parsed only when a quote comes first),
 /// its key hashed from the pieces, and its fingerprint taken as `prints` says. The same key
-/// hashes as [`scan`], without running the parser over every row.
+/// hashes as [`scan`], without running the parser over every row. With `keep`, the version's
+/// bytes are kept and handed over in [`Scan::kept`] (checked against its hash); rows are cut
+/// out of bytes `cut` holds already, if any (a pass repeated with another seed).
 pub fn scan_keys(
     objects: &Objects,
     v: &Version,
-    offsets: Arc<[u64]>,
+    cut: &Cut,
     prints: Prints<'_>,
     (key, seed, null_tokens, key_bits): (&[usize], u64, &[String], u32),
+    keep: bool,
 ) -> Result<Scan> {
-    let n = offsets.len() as u64;
+    let n = cut.offsets.len() as u64;
+    let keep = keep && cut.kept.is_none();
     let mut s = Scan {
         keys: KeyParts::new(key_bits, n as usize),
         fps: match prints {
@@ -200,7 +206,11 @@ pub fn scan_keys(
         ..Scan::default()
     };
     let last = key.iter().copied().max().unwrap_or(0);
-    let mut raw = RawRows::new(objects, v, offsets)?;
+    let mut raw = if keep {
+        RawRows::keeping(objects, v, Arc::clone(&cut.offsets))?
+    } else {
+        RawRows::cut(objects, v, cut)?
+    };
     let delimiter = v.dialect.delimiter_byte();
     let mut scratch = Vec::new();
     let mut fp_scratch = Vec::new();
@@ -253,7 +263,11 @@ pub fn scan_keys(
             })?;
         }
     }
-    raw.finish()?;
+    if keep {
+        s.kept = Some(raw.finish_keeping()?);
+    } else {
+        raw.finish()?;
+    }
     Ok(s)
 }
 
