@@ -25,7 +25,7 @@ use std::sync::mpsc::{sync_channel, Receiver};
 
 use similar::algorithms::{myers, DiffHook};
 
-use super::read::{both, cuttable, each_row, row_index, RawRows, RowRef, RowStore};
+use super::read::{both, cuttable, each_row, row_index_cut, Cut, RawRows, RowRef, RowStore};
 use super::scan::scan_both;
 use super::{
     cell_diffs, count_by_column, equal_cells, push_pair, settle_columns, Alignment, Change,
@@ -148,6 +148,7 @@ pub(super) fn run(
     b: &Version,
     layout: Layout,
     guard: &[(usize, usize)],
+    keep_bytes: u64,
 ) -> Result<Diff> {
     let objects = &store.objects;
     let (cand_a, cand_b) = layout.candidates();
@@ -159,11 +160,17 @@ pub(super) fn run(
         && cuttable(a)
         && cuttable(b)
         && a.dialect.delimiter == b.dialect.delimiter;
-    let mut offsets = (Vec::new(), Vec::new());
+    // The bytes read for the fingerprints are kept for the pass that confirms the pairs, when
+    // both versions together fit the budget.
+    let keep = by_bytes && a.n_bytes.saturating_add(b.n_bytes) <= keep_bytes;
+    let mut cuts = (Cut::offsets(Vec::new()), Cut::offsets(Vec::new()));
     let (fa, fb, hash_a, hash_b) = if layout.identical {
-        let ((fa, oa), (fb, ob)) = both(|| row_index(objects, a), || row_index(objects, b))?;
+        let ((fa, ca), (fb, cb)) = both(
+            || row_index_cut(objects, a, keep),
+            || row_index_cut(objects, b, keep),
+        )?;
         if by_bytes {
-            offsets = (oa, ob);
+            cuts = (ca, cb);
         }
         (fa, fb, Vec::new(), Vec::new())
     } else {
@@ -205,8 +212,9 @@ pub(super) fn run(
     // Matched pairs whose values differ after all (equal fingerprints of different rows).
     let mut unequal: Vec<(u64, u64)> = Vec::new();
     if by_bytes {
-        let mut raw_a = RawRows::new(objects, a, std::mem::take(&mut offsets.0))?;
-        let mut raw_b = RawRows::new(objects, b, std::mem::take(&mut offsets.1))?;
+        let mut raw_a = RawRows::cut(objects, a, &cuts.0)?;
+        let mut raw_b = RawRows::cut(objects, b, &cuts.1)?;
+        drop(cuts);
         let (mut pa, mut pb) = (0u64, 0u64);
         for &(ma, mb, len) in matched.iter().chain(std::iter::once(&(na, nb, 0))) {
             for x in pa..ma {

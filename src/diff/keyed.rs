@@ -8,7 +8,7 @@
 //! otherwise every row is parsed. A pair of rows with equal fingerprints is unchanged without
 //! reading its values again; the others, and the removed and added rows, are read in a second
 //! pass, where the keys of each pair are also confirmed on their values. When rows are cut out
-//! by offset and both versions together are at most [`KEEP_BYTES`], the first pass keeps the
+//! by offset and both versions together are at most [`super::read::KEEP_BYTES`], the first pass keeps the
 //! bytes it read (checked against each version's hash) and the second cuts its rows out of
 //! them: each object is then decoded and hashed once, not twice.
 //!
@@ -31,11 +31,6 @@ use super::{
 use crate::error::{Error, ErrorKind, Result};
 use crate::model::Version;
 use crate::store::Store;
-
-/// Up to this many bytes of both versions together, the first pass keeps what it reads and the
-/// second cuts its rows out of memory: each version is then decoded and hashed once, not twice.
-/// Past it the second pass reads the objects again, so memory stays bounded.
-pub const KEEP_BYTES: u64 = 256 << 20;
 
 /// How many seeds are tried before the keys are declared impossible to tell apart by hash
 /// (each further try is needed with probability about n²/2⁶⁵).

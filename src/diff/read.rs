@@ -72,7 +72,10 @@ pub fn row_index(objects: &Objects, v: &Version) -> Result<(Vec<u64>, Vec<u64>)>
     let (stored, offsets) = offsets(objects, v)?;
     let fps = match stored {
         Some(fps) => fps,
-        None => recompute_fingerprints(objects, v, &offsets)?,
+        None => {
+            let offsets: Arc<[u64]> = offsets.as_slice().into();
+            recompute_fingerprints(objects, v, &offsets, false)?.0
+        }
     };
     Ok((fps, offsets))
 }
@@ -136,10 +139,33 @@ pub fn offsets(objects: &Objects, v: &Version) -> Result<(Option<Vec<u64>>, Vec<
     Ok((Some(fps), offsets))
 }
 
+/// [`row_index`] for a pass that cuts rows out of `v` afterwards: the fingerprints, and the
+/// offsets as a [`Cut`] which, with `keep`, also holds the version's bytes when its
+/// fingerprints had to be computed from them (they are then read once for both passes).
+pub fn row_index_cut(objects: &Objects, v: &Version, keep: bool) -> Result<(Vec<u64>, Cut)> {
+    let (stored, offsets) = offsets(objects, v)?;
+    let mut cut = Cut::offsets(offsets);
+    let fps = match stored {
+        Some(fps) => fps,
+        None => {
+            let (fps, kept) = recompute_fingerprints(objects, v, &cut.offsets, keep)?;
+            cut.kept = kept;
+            fps
+        }
+    };
+    Ok((fps, cut))
+}
+
 /// Every row's fingerprint computed from the version's bytes: rows cut out by `offsets` and
 /// split directly where they hold no quote (parsed otherwise), or, for a version in another
-/// encoding than UTF-8, read through the one reader of stored rows.
-fn recompute_fingerprints(objects: &Objects, v: &Version, offsets: &[u64]) -> Result<Vec<u64>> {
+/// encoding than UTF-8, read through the one reader of stored rows. With `keep` (and rows
+/// that can be cut out), the version's bytes are handed back too.
+fn recompute_fingerprints(
+    objects: &Objects,
+    v: &Version,
+    offsets: &Arc<[u64]>,
+    keep: bool,
+) -> Result<(Vec<u64>, Option<Arc<Kept>>)> {
     let mut fps = Vec::with_capacity(offsets.len());
     let mut scratch = Vec::new();
     if !cuttable(v) {
@@ -147,15 +173,22 @@ fn recompute_fingerprints(objects: &Objects, v: &Version, offsets: &[u64]) -> Re
             fps.push(rowindex::fingerprint(&r, &mut scratch));
             Ok(())
         })?;
-        return Ok(fps);
+        return Ok((fps, None));
     }
-    let mut raw = RawRows::new(objects, v, offsets)?;
+    let mut raw = if keep {
+        RawRows::keeping(objects, v, Arc::clone(offsets))?
+    } else {
+        RawRows::new(objects, v, Arc::clone(offsets))?
+    };
     let mut ends = Vec::new();
     for row in 0..offsets.len() as u64 {
         fps.push(raw.fingerprint(row, &mut ends, &mut scratch)?);
     }
+    if keep {
+        return Ok((fps, Some(raw.finish_keeping()?)));
+    }
     raw.finish()?;
-    Ok(fps)
+    Ok((fps, None))
 }
 
 /// The fingerprint of a record split at `ends` (each field's end in `bytes`; the next field
@@ -305,6 +338,12 @@ pub fn both<A: Send, B>(
 pub fn cuttable(v: &Version) -> bool {
     v.dialect.encoding == "utf-8"
 }
+
+/// Up to this many bytes of both versions together, a comparison whose rows are cut out by
+/// offset keeps what its first pass read and its second pass cuts its rows out of memory: each
+/// version is then decoded and hashed once, not twice. Past it the second pass reads the
+/// objects again, so memory stays bounded.
+pub const KEEP_BYTES: u64 = 256 << 20;
 
 /// A version's whole bytes, read once and kept for a later pass.
 #[derive(Debug)]
