@@ -192,23 +192,30 @@ pub fn table<const N: usize>(
     rows: &[[String; N]],
     right: &[bool; N],
 ) -> io::Result<()> {
+    // Each cell's width in characters, counted once.
+    let widths: Vec<[usize; N]> = rows
+        .iter()
+        .map(|r| std::array::from_fn(|i| r[i].chars().count()))
+        .collect();
     let mut w = [0usize; N];
-    for r in rows {
-        for (i, c) in r.iter().enumerate() {
-            w[i] = w[i].max(c.chars().count());
+    for cw in &widths {
+        for (m, &c) in w.iter_mut().zip(cw) {
+            *m = (*m).max(c);
         }
     }
-    for r in rows {
-        let mut line = String::from("  ");
+    let mut line = String::new();
+    for (r, cw) in rows.iter().zip(&widths) {
+        line.clear();
+        line.push_str("  ");
         for (i, c) in r.iter().enumerate() {
-            let pad = w[i] - c.chars().count();
+            let pad = w[i] - cw[i];
             if right[i] {
-                line.push_str(&" ".repeat(pad));
+                line.extend(std::iter::repeat_n(' ', pad));
                 line.push_str(c);
             } else {
                 line.push_str(c);
                 if i + 1 < N {
-                    line.push_str(&" ".repeat(pad));
+                    line.extend(std::iter::repeat_n(' ', pad));
                 }
             }
             if i + 1 < N {

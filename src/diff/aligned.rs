@@ -25,7 +25,9 @@ use std::sync::mpsc::{sync_channel, Receiver};
 
 use similar::algorithms::{myers, DiffHook};
 
-use super::read::{both, cuttable, each_row, row_index_cut, Cut, RawRows, RowRef, RowStore};
+use super::read::{
+    both, cuttable, each_row, free_aside, row_index_cut, Cut, RawRows, RowRef, RowStore,
+};
 use super::scan::scan_both;
 use super::{
     cell_diffs, count_by_column, equal_cells, push_pair, settle_columns, Alignment, Change,
@@ -214,7 +216,6 @@ pub(super) fn run(
     if by_bytes {
         let mut raw_a = RawRows::cut(objects, a, &cuts.0)?;
         let mut raw_b = RawRows::cut(objects, b, &cuts.1)?;
-        drop(cuts);
         let (mut pa, mut pb) = (0u64, 0u64);
         for &(ma, mb, len) in matched.iter().chain(std::iter::once(&(na, nb, 0))) {
             for x in pa..ma {
@@ -243,6 +244,8 @@ pub(super) fn run(
         }
         raw_a.finish()?;
         raw_b.finish()?;
+        // Nothing reads the versions again.
+        free_aside(cuts);
     } else {
         confirm_by_values(
             objects,

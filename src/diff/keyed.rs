@@ -22,7 +22,7 @@
 
 use super::lineage::Link;
 use super::listed::{compare_pairs, Listing};
-use super::read::{both, cuttable, each_row, offsets, Cut};
+use super::read::{both, cuttable, each_row, free_aside, offsets, Cut};
 use super::scan::{scan, scan_keys, KeyParts, Prints, Scan, ScanPlan};
 use super::{
     pairs_that_differ, push_pair, Diff, DuplicateGroup, DuplicateKeys, Layout, MatchedBy,
@@ -276,6 +276,8 @@ pub(super) fn run(
         list,
         (ia.as_ref().map(|i| &i.cut), ib.as_ref().map(|i| &i.cut)),
     )?;
+    // Nothing reads the versions again.
+    free_aside((ia, ib));
     let changed_b = &done.changed_b;
 
     // The row map in the second version's order.

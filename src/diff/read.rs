@@ -317,6 +317,16 @@ impl RowStore {
     }
 }
 
+/// Frees `value` on a thread of its own, so that giving back a large block (the kept bytes of
+/// two versions: tens of thousands of pages) overlaps with the work that follows; inline when
+/// no thread can be started.
+pub fn free_aside<T: Send + 'static>(value: T) {
+    // When no thread can be started, the closure, and the value in it, is dropped right here.
+    let _ = std::thread::Builder::new()
+        .name("sluice-free".into())
+        .spawn(move || drop(value));
+}
+
 /// Runs `fa` on another thread and `fb` on this one, and returns both results: the two
 /// versions of a diff are read at the same time, one per core.
 pub fn both<A: Send, B>(
