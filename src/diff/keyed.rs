@@ -146,92 +146,21 @@ pub(super) fn run(
     };
 
     // The merge walk: (row in A, row in B) for equal key hashes; rows sharing a key are paired
-    // within their group.
-    let mut pairs: Vec<(u64, u64)> = Vec::new();
-    let mut removed: Vec<u64> = Vec::new();
-    let mut added: Vec<u64> = Vec::new();
-    let mut dups = DuplicateKeys {
-        paired_by: if link.is_some() { "lineage" } else { "order" },
-        groups: 0,
-        rows_from: 0,
-        rows_to: 0,
-        first: Vec::new(),
-    };
-    for (part_a, part_b) in sa.keys.parts().iter().zip(sb.keys.parts()) {
-        let (mut i, mut j) = (0usize, 0usize);
-        while i < part_a.len() || j < part_b.len() {
-            let h = match (part_a.get(i), part_b.get(j)) {
-                (Some(x), Some(y)) => x.0.min(y.0),
-                (Some(x), None) => x.0,
-                (None, Some(y)) => y.0,
-                (None, None) => break,
-            };
-            let i2 = i + part_a[i..].iter().take_while(|k| k.0 == h).count();
-            let j2 = j + part_b[j..].iter().take_while(|k| k.0 == h).count();
-            let (ga, gb) = (&part_a[i..i2], &part_b[j..j2]);
-            i = i2;
-            j = j2;
-            if ga.len() <= 1 && gb.len() <= 1 {
-                match (ga.first(), gb.first()) {
-                    (Some(x), Some(y)) => pairs.push((x.1, y.1)),
-                    (Some(x), None) => removed.push(x.1),
-                    (None, Some(y)) => added.push(y.1),
-                    (None, None) => {}
-                }
-                continue;
-            }
-            let ga: Vec<u64> = ga.iter().map(|k| k.1).collect();
-            let gb: Vec<u64> = gb.iter().map(|k| k.1).collect();
-            dups.groups += 1;
-            dups.rows_from += ga.len() as u64;
-            dups.rows_to += gb.len() as u64;
-            if dups.first.len() < GROUPS_SHOWN {
-                let text = dup_texts
-                    .binary_search_by_key(&h, |d| d.0)
-                    .ok()
-                    .map(|k| dup_texts[k].1.clone())
-                    .unwrap_or_default();
-                dups.first.push(DuplicateGroup {
-                    key: text,
-                    from_rows: ga.iter().take(ROWS_SHOWN).map(|r| r + 1).collect(),
-                    n_from: ga.len() as u64,
-                    to_rows: gb.iter().take(ROWS_SHOWN).map(|r| r + 1).collect(),
-                    n_to: gb.len() as u64,
-                });
-            }
-            match link {
-                Some(l) => {
-                    // The same row of the version both come from.
-                    let mut taken = vec![false; ga.len()];
-                    for &y in &gb {
-                        let anc = l.b_rows().get(y as usize).copied().unwrap_or(u64::MAX);
-                        let partner = (anc != u64::MAX)
-                            .then(|| {
-                                ga.iter().enumerate().position(|(k, &x)| {
-                                    !taken[k] && l.a_rows().get(x as usize) == Some(&anc)
-                                })
-                            })
-                            .flatten();
-                        match partner {
-                            Some(k) => {
-                                taken[k] = true;
-                                pairs.push((ga[k], y));
-                            }
-                            None => added.push(y),
-                        }
-                    }
-                    removed.extend(ga.iter().zip(&taken).filter(|(_, &t)| !t).map(|(&x, _)| x));
-                }
-                None => {
-                    // In row order: the first with the first, and so on.
-                    let n = ga.len().min(gb.len());
-                    pairs.extend(ga[..n].iter().copied().zip(gb[..n].iter().copied()));
-                    removed.extend_from_slice(&ga[n..]);
-                    added.extend_from_slice(&gb[n..]);
-                }
-            }
-        }
-    }
+    // within their group. The two halves of the parts are walked at once and put together in
+    // order, which is the order one walk of all of them gives.
+    let paired_by = if link.is_some() { "lineage" } else { "order" };
+    let Walked {
+        pairs,
+        mut removed,
+        mut added,
+        dups,
+    } = walk_halves(
+        sa.keys.parts(),
+        sb.keys.parts(),
+        link,
+        &dup_texts,
+        paired_by,
+    )?;
     removed.sort_unstable();
     added.sort_unstable();
     drop(dup_texts);
@@ -334,6 +263,146 @@ pub(super) fn run(
     })
 }
 
+/// What walking some of the parts of both sides together found.
+struct Walked {
+    pairs: Vec<(u64, u64)>,
+    removed: Vec<u64>,
+    added: Vec<u64>,
+    dups: DuplicateKeys,
+}
+
+/// The merge walk over matching parts of the two sides (the same part numbers): (row in A,
+/// row in B) for equal key hashes, rows sharing a key paired within their group (through
+/// `link` when the versions are related, else in row order), and the rows of either side
+/// alone.
+fn walk(
+    parts_a: &[Vec<(u64, u64)>],
+    parts_b: &[Vec<(u64, u64)>],
+    link: Option<&Link>,
+    dup_texts: &KeyTexts,
+    paired_by: &'static str,
+) -> Walked {
+    let n: usize = parts_b.iter().map(Vec::len).sum();
+    let mut pairs: Vec<(u64, u64)> = Vec::with_capacity(n);
+    let mut removed: Vec<u64> = Vec::new();
+    let mut added: Vec<u64> = Vec::new();
+    let mut dups = DuplicateKeys {
+        paired_by,
+        groups: 0,
+        rows_from: 0,
+        rows_to: 0,
+        first: Vec::new(),
+    };
+    for (part_a, part_b) in parts_a.iter().zip(parts_b) {
+        let (mut i, mut j) = (0usize, 0usize);
+        while i < part_a.len() || j < part_b.len() {
+            let h = match (part_a.get(i), part_b.get(j)) {
+                (Some(x), Some(y)) => x.0.min(y.0),
+                (Some(x), None) => x.0,
+                (None, Some(y)) => y.0,
+                (None, None) => break,
+            };
+            let i2 = i + part_a[i..].iter().take_while(|k| k.0 == h).count();
+            let j2 = j + part_b[j..].iter().take_while(|k| k.0 == h).count();
+            let (ga, gb) = (&part_a[i..i2], &part_b[j..j2]);
+            i = i2;
+            j = j2;
+            if ga.len() <= 1 && gb.len() <= 1 {
+                match (ga.first(), gb.first()) {
+                    (Some(x), Some(y)) => pairs.push((x.1, y.1)),
+                    (Some(x), None) => removed.push(x.1),
+                    (None, Some(y)) => added.push(y.1),
+                    (None, None) => {}
+                }
+                continue;
+            }
+            let ga: Vec<u64> = ga.iter().map(|k| k.1).collect();
+            let gb: Vec<u64> = gb.iter().map(|k| k.1).collect();
+            dups.groups += 1;
+            dups.rows_from += ga.len() as u64;
+            dups.rows_to += gb.len() as u64;
+            if dups.first.len() < GROUPS_SHOWN {
+                let text = dup_texts
+                    .binary_search_by_key(&h, |d| d.0)
+                    .ok()
+                    .map(|k| dup_texts[k].1.clone())
+                    .unwrap_or_default();
+                dups.first.push(DuplicateGroup {
+                    key: text,
+                    from_rows: ga.iter().take(ROWS_SHOWN).map(|r| r + 1).collect(),
+                    n_from: ga.len() as u64,
+                    to_rows: gb.iter().take(ROWS_SHOWN).map(|r| r + 1).collect(),
+                    n_to: gb.len() as u64,
+                });
+            }
+            match link {
+                Some(l) => {
+                    // The same row of the version both come from.
+                    let mut taken = vec![false; ga.len()];
+                    for &y in &gb {
+                        let anc = l.b_rows().get(y as usize).copied().unwrap_or(u64::MAX);
+                        let partner = (anc != u64::MAX)
+                            .then(|| {
+                                ga.iter().enumerate().position(|(k, &x)| {
+                                    !taken[k] && l.a_rows().get(x as usize) == Some(&anc)
+                                })
+                            })
+                            .flatten();
+                        match partner {
+                            Some(k) => {
+                                taken[k] = true;
+                                pairs.push((ga[k], y));
+                            }
+                            None => added.push(y),
+                        }
+                    }
+                    removed.extend(ga.iter().zip(&taken).filter(|(_, &t)| !t).map(|(&x, _)| x));
+                }
+                None => {
+                    // In row order: the first with the first, and so on.
+                    let n = ga.len().min(gb.len());
+                    pairs.extend(ga[..n].iter().copied().zip(gb[..n].iter().copied()));
+                    removed.extend_from_slice(&ga[n..]);
+                    added.extend_from_slice(&gb[n..]);
+                }
+            }
+        }
+    }
+    Walked {
+        pairs,
+        removed,
+        added,
+        dups,
+    }
+}
+
+/// [`walk`] of all the parts, done as two walks at once, one of each half of the parts, put
+/// together in order: the same pairs, rows and groups in the same order as one walk.
+fn walk_halves(
+    parts_a: &[Vec<(u64, u64)>],
+    parts_b: &[Vec<(u64, u64)>],
+    link: Option<&Link>,
+    dup_texts: &KeyTexts,
+    paired_by: &'static str,
+) -> Result<Walked> {
+    let half = parts_a.len().min(parts_b.len()) / 2;
+    let ((pa1, pa2), (pb1, pb2)) = (parts_a.split_at(half), parts_b.split_at(half));
+    let (later, mut earlier) = both(
+        || Ok(walk(pa2, pb2, link, dup_texts, paired_by)),
+        || Ok(walk(pa1, pb1, link, dup_texts, paired_by)),
+    )?;
+    earlier.pairs.extend(later.pairs);
+    earlier.removed.extend(later.removed);
+    earlier.added.extend(later.added);
+    let dups = &mut earlier.dups;
+    dups.groups += later.dups.groups;
+    dups.rows_from += later.dups.rows_from;
+    dups.rows_to += later.dups.rows_to;
+    let room = GROUPS_SHOWN.saturating_sub(dups.first.len());
+    dups.first.extend(later.dups.first.into_iter().take(room));
+    Ok(earlier)
+}
+
 /// A side's row index, read once for both passes: its row offsets and, for an index of format
 /// 1, its fingerprints.
 struct Index {
@@ -425,4 +494,47 @@ fn duplicate_keys(
         ));
     }
     Ok(Some(out))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use proptest::prelude::*;
+
+    fn parts_of(pairs: &[(u64, u64)], bits: u32) -> KeyParts {
+        let mut k = KeyParts::new(bits, pairs.len());
+        for &(h, r) in pairs {
+            k.push(h, r);
+        }
+        k.sort();
+        k
+    }
+
+    proptest! {
+        /// Walking the two halves of the parts at once and putting them together is the walk
+        /// of all of them: the same pairs, removed and added rows, and groups of shared keys.
+        #[test]
+        fn the_halves_walked_at_once_are_the_whole_walk(
+            a in proptest::collection::vec((0u64..40, 0u64..1000), 0..300),
+            b in proptest::collection::vec((0u64..40, 0u64..1000), 0..300),
+            bits in 0u32..4,
+        ) {
+            // Hashes spread over the whole range, so that every part gets some; few distinct
+            // ones, so that keys repeat within and across the sides.
+            let spread = |v: &[(u64, u64)]| -> Vec<(u64, u64)> {
+                v.iter()
+                    .enumerate()
+                    .map(|(row, &(h, _))| (h.wrapping_mul(0x9e37_79b9_7f4a_7c15), row as u64))
+                    .collect()
+            };
+            let (ka, kb) = (parts_of(&spread(&a), bits), parts_of(&spread(&b), bits));
+            let texts: KeyTexts = Vec::new();
+            let whole = walk(ka.parts(), kb.parts(), None, &texts, "order");
+            let halves = walk_halves(ka.parts(), kb.parts(), None, &texts, "order").unwrap();
+            prop_assert_eq!(&whole.pairs, &halves.pairs);
+            prop_assert_eq!(&whole.removed, &halves.removed);
+            prop_assert_eq!(&whole.added, &halves.added);
+            prop_assert_eq!(format!("{:?}", whole.dups), format!("{:?}", halves.dups));
+        }
+    }
 }
