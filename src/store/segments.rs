@@ -421,20 +421,38 @@ pub fn decode_frame(
     i: usize,
     dec: &mut zstd::bulk::Decompressor<'static>,
 ) -> io::Result<Vec<u8>> {
+    let mut out = Vec::new();
+    decode_frame_into(file, table, i, dec, &mut Vec::new(), &mut out)?;
+    Ok(out)
+}
+
+/// [`decode_frame`] into `out` (its earlier contents replaced), reading the compressed bytes
+/// into `comp`: both buffers are reused from frame to frame, nothing allocated once they are
+/// large enough.
+fn decode_frame_into(
+    file: &File,
+    table: &SeekTable,
+    i: usize,
+    dec: &mut zstd::bulk::Decompressor<'static>,
+    comp: &mut Vec<u8>,
+    out: &mut Vec<u8>,
+) -> io::Result<()> {
     let (from, to) = (table.starts[i], table.starts[i + 1]);
-    let mut comp = vec![0u8; (to - from) as usize];
-    file.read_exact_at(&mut comp, from)?;
-    let out = dec
-        .decompress(&comp, table.raw[i] as usize)
+    let (n_comp, n_raw) = ((to - from) as usize, table.raw[i] as usize);
+    comp.resize(n_comp, 0);
+    file.read_exact_at(comp, from)?;
+    out.clear();
+    out.reserve(n_raw);
+    dec.decompress_to_buffer(comp.as_slice(), out)
         .map_err(|e| bad(format!("frame {i} at byte {from} does not decode ({e})")))?;
-    if out.len() != table.raw[i] as usize {
+    if out.len() != n_raw {
         return Err(bad(format!(
             "frame {i} at byte {from} decodes to {} bytes, its seek table says {}",
             out.len(),
-            table.raw[i]
+            n_raw
         )));
     }
-    Ok(out)
+    Ok(())
 }
 
 /// Reads an object from its segment frame by frame (memory: one frame).
@@ -483,10 +501,15 @@ const DECODERS: usize = 2;
 /// Reads an object from its segment with the decoding on threads of their own ([`DECODERS`]
 /// of them, frame `i` decoded by thread `i % DECODERS`, each a few frames ahead of the
 /// reader), so that decoding overlaps itself and whatever the reader does with the bytes
-/// (hashing and writing them, for `retrieve`). Frames reach the reader in order. Memory: three
-/// frames per decoding thread.
+/// (hashing and writing them, for `retrieve`). Frames reach the reader in order, and each
+/// frame's buffer goes back to its thread once read, to be decoded into again (with the
+/// compressed bytes' buffer, also kept by the thread, nothing is allocated per frame). Memory:
+/// about four frames per decoding thread.
 pub struct AheadReader {
     frames: Vec<std::sync::mpsc::Receiver<io::Result<Vec<u8>>>>,
+    /// Per decoding thread: where a frame's buffer goes back once read, to be decoded into
+    /// again (no allocation per frame).
+    spent: Vec<std::sync::mpsc::Sender<Vec<u8>>>,
     /// The frame to take next, and how many there are.
     next: usize,
     n_frames: usize,
@@ -500,15 +523,20 @@ impl AheadReader {
         let file = std::sync::Arc::new(file);
         let n_frames = table.raw.len();
         let mut frames = Vec::with_capacity(DECODERS);
+        let mut spent = Vec::with_capacity(DECODERS);
         for first in 0..DECODERS {
             let (tx, rx) = std::sync::mpsc::sync_channel(2);
+            let (give_back, returned) = std::sync::mpsc::channel::<Vec<u8>>();
             let mut dec = zstd::bulk::Decompressor::new()?;
             let (file, table) = (file.clone(), table.clone());
             std::thread::Builder::new()
                 .name("sluice-decode".into())
                 .spawn(move || {
+                    let mut comp = Vec::new();
                     for i in (first..table.raw.len()).step_by(DECODERS) {
-                        let r = decode_frame(&file, &table, i, &mut dec);
+                        let mut out = returned.try_recv().unwrap_or_default();
+                        let r = decode_frame_into(&file, &table, i, &mut dec, &mut comp, &mut out)
+                            .map(|()| out);
                         let failed = r.is_err();
                         if tx.send(r).is_err() || failed {
                             return;
@@ -516,9 +544,11 @@ impl AheadReader {
                     }
                 })?;
             frames.push(rx);
+            spent.push(give_back);
         }
         Ok(AheadReader {
             frames,
+            spent,
             next: 0,
             n_frames,
             out: Vec::new(),
@@ -536,7 +566,13 @@ impl Read for AheadReader {
             }
             match self.frames[self.next % DECODERS].recv() {
                 Ok(frame) => {
-                    self.out = frame.inspect_err(|_| self.done = true)?;
+                    let read =
+                        std::mem::replace(&mut self.out, frame.inspect_err(|_| self.done = true)?);
+                    // The frame read before goes back to the thread that decoded it (which
+                    // may have stopped: it is then simply dropped).
+                    if let Some(back) = self.next.checked_sub(1).map(|k| k % DECODERS) {
+                        let _ = self.spent[back].send(read);
+                    }
                     self.next += 1;
                     self.pos = 0;
                 }
