@@ -424,18 +424,37 @@ pub struct RawRows {
 impl RawRows {
     pub fn new(objects: &Objects, v: &Version, offsets: impl Into<Arc<[u64]>>) -> Result<RawRows> {
         let hash = parse_hash(&v.hash)?;
-        Ok(RawRows {
+        let inner = objects.open_raw(&hash)?;
+        let progress = crate::progress::Task::begin(
+            || format!("comparing {}", v.label()),
+            Some(v.n_bytes),
+            crate::progress::Unit::Bytes,
+        );
+        Ok(RawRows::over(
+            v,
+            hash,
+            offsets.into(),
+            inner,
+            Some(progress),
+        ))
+    }
+
+    /// Rows of `v` read from `inner` (nothing, for kept bytes).
+    fn over(
+        v: &Version,
+        hash: Hash,
+        offsets: Arc<[u64]>,
+        inner: Box<dyn Read + Send>,
+        progress: Option<crate::progress::Task>,
+    ) -> RawRows {
+        RawRows {
             reader: Hashing {
-                inner: objects.open_raw(&hash)?,
+                inner,
                 hasher: blake3::Hasher::new(),
-                progress: Some(crate::progress::Task::begin(
-                    || format!("comparing {}", v.label()),
-                    Some(v.n_bytes),
-                    crate::progress::Unit::Bytes,
-                )),
+                progress,
             },
             hash,
-            offsets: offsets.into(),
+            offsets,
             n_bytes: v.n_bytes,
             buf: Vec::new(),
             filled: 0,
@@ -444,7 +463,7 @@ impl RawRows {
             label: v.label(),
             keeping: None,
             kept: None,
-        })
+        }
     }
 
     /// [`Self::new`] that keeps every byte it reads, so that [`Self::finish_keeping`] hands the
@@ -466,23 +485,14 @@ impl RawRows {
         let Some(bytes) = &cut.kept else {
             return RawRows::new(objects, v, Arc::clone(&cut.offsets));
         };
-        let raw = RawRows {
-            reader: Hashing {
-                inner: Box::new(std::io::empty()),
-                hasher: blake3::Hasher::new(),
-                progress: None,
-            },
-            hash: parse_hash(&v.hash)?,
-            offsets: Arc::clone(&cut.offsets),
-            n_bytes: v.n_bytes,
-            buf: Vec::new(),
-            filled: 0,
-            buf_start: 0,
-            parser: Parser::new(v.dialect.delimiter_byte(), 0),
-            label: v.label(),
-            keeping: None,
-            kept: Some(Arc::clone(bytes)),
-        };
+        let mut raw = RawRows::over(
+            v,
+            parse_hash(&v.hash)?,
+            Arc::clone(&cut.offsets),
+            Box::new(std::io::empty()),
+            None,
+        );
+        raw.kept = Some(Arc::clone(bytes));
         if bytes.len() as u64 != v.n_bytes {
             return Err(raw.short());
         }
