@@ -258,23 +258,10 @@ fn row_text(c: &Change) -> String {
     }
 }
 
-/// `f` of every item, in order; on two threads, each taking half of the items in order, when
-/// there are many (a listing of tens of thousands of changes).
+/// `f` of every item, in order; a long listing (tens of thousands of changes) is built in two
+/// halves at once.
 fn built<T: Sync, R: Send>(items: &[T], f: impl Fn(&T) -> R + Sync) -> Vec<R> {
-    const ALONE: usize = 4096;
-    if items.len() < ALONE {
-        return items.iter().map(&f).collect();
-    }
-    let (first, second) = items.split_at(items.len() / 2);
-    std::thread::scope(|s| {
-        let later = s.spawn(|| second.iter().map(&f).collect::<Vec<R>>());
-        let mut out: Vec<R> = first.iter().map(&f).collect();
-        match later.join() {
-            Ok(rest) => out.extend(rest),
-            Err(panic) => std::panic::resume_unwind(panic),
-        }
-        out
-    })
+    sluice::diff::read::each_in_halves(items, 4096, |x| Some(f(x)))
 }
 
 pub fn compare_text(out: &mut impl Write, d: &Diff, how: &How) -> io::Result<()> {

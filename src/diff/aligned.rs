@@ -25,9 +25,7 @@ use std::sync::mpsc::{sync_channel, Receiver};
 
 use similar::algorithms::{myers, DiffHook};
 
-use super::read::{
-    both, cuttable, each_row, free_aside, row_index_cut, Cut, RawRows, RowRef, RowStore,
-};
+use super::read::{both, cuttable, each_row, free_aside, row_index_cut, RawRows, RowRef, RowStore};
 use super::scan::scan_both;
 use super::{
     cell_diffs, count_by_column, equal_cells, push_pair, settle_columns, Alignment, Change,
@@ -165,15 +163,13 @@ pub(super) fn run(
     // The bytes read for the fingerprints are kept for the pass that confirms the pairs, when
     // both versions together fit the budget.
     let keep = by_bytes && a.n_bytes.saturating_add(b.n_bytes) <= keep_bytes;
-    let mut cuts = (Cut::offsets(Vec::new()), Cut::offsets(Vec::new()));
+    let mut cuts = None;
     let (fa, fb, hash_a, hash_b) = if layout.identical {
         let ((fa, ca), (fb, cb)) = both(
             || row_index_cut(objects, a, keep),
             || row_index_cut(objects, b, keep),
         )?;
-        if by_bytes {
-            cuts = (ca, cb);
-        }
+        cuts = by_bytes.then_some((ca, cb));
         (fa, fb, Vec::new(), Vec::new())
     } else {
         let (sa, sb) = scan_both(
@@ -213,7 +209,7 @@ pub(super) fn run(
     let mut to_rows = RowStore::new();
     // Matched pairs whose values differ after all (equal fingerprints of different rows).
     let mut unequal: Vec<(u64, u64)> = Vec::new();
-    if by_bytes {
+    if let Some(cuts) = cuts {
         let mut raw_a = RawRows::cut(objects, a, &cuts.0)?;
         let mut raw_b = RawRows::cut(objects, b, &cuts.1)?;
         let (mut pa, mut pb) = (0u64, 0u64);

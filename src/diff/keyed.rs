@@ -117,10 +117,8 @@ pub(super) fn run(
             || plan(&kb, fp_b.as_deref(), &cand_b, b, &ib),
         )?;
         for (ix, s) in [(&mut ia, &mut sa), (&mut ib, &mut sb)] {
-            if let Some(ix) = ix {
-                if let Some(k) = s.kept.take() {
-                    ix.cut.kept = Some(k);
-                }
+            if let (Some(ix), Some(k)) = (ix, s.kept.take()) {
+                ix.cut.kept = Some(k);
             }
         }
         blank_keys(a, &key, &sa)?;
@@ -148,19 +146,12 @@ pub(super) fn run(
     // The merge walk: (row in A, row in B) for equal key hashes; rows sharing a key are paired
     // within their group. The two halves of the parts are walked at once and put together in
     // order, which is the order one walk of all of them gives.
-    let paired_by = if link.is_some() { "lineage" } else { "order" };
     let Walked {
         pairs,
         mut removed,
         mut added,
         dups,
-    } = walk_halves(
-        sa.keys.parts(),
-        sb.keys.parts(),
-        link,
-        &dup_texts,
-        paired_by,
-    )?;
+    } = walk_halves(sa.keys.parts(), sb.keys.parts(), link, &dup_texts)?;
     removed.sort_unstable();
     added.sort_unstable();
     drop(dup_texts);
@@ -280,14 +271,13 @@ fn walk(
     parts_b: &[Vec<(u64, u64)>],
     link: Option<&Link>,
     dup_texts: &KeyTexts,
-    paired_by: &'static str,
 ) -> Walked {
     let n: usize = parts_b.iter().map(Vec::len).sum();
     let mut pairs: Vec<(u64, u64)> = Vec::with_capacity(n);
     let mut removed: Vec<u64> = Vec::new();
     let mut added: Vec<u64> = Vec::new();
     let mut dups = DuplicateKeys {
-        paired_by,
+        paired_by: if link.is_some() { "lineage" } else { "order" },
         groups: 0,
         rows_from: 0,
         rows_to: 0,
@@ -383,13 +373,12 @@ fn walk_halves(
     parts_b: &[Vec<(u64, u64)>],
     link: Option<&Link>,
     dup_texts: &KeyTexts,
-    paired_by: &'static str,
 ) -> Result<Walked> {
     let half = parts_a.len().min(parts_b.len()) / 2;
     let ((pa1, pa2), (pb1, pb2)) = (parts_a.split_at(half), parts_b.split_at(half));
     let (later, mut earlier) = both(
-        || Ok(walk(pa2, pb2, link, dup_texts, paired_by)),
-        || Ok(walk(pa1, pb1, link, dup_texts, paired_by)),
+        || Ok(walk(pa2, pb2, link, dup_texts)),
+        || Ok(walk(pa1, pb1, link, dup_texts)),
     )?;
     earlier.pairs.extend(later.pairs);
     earlier.removed.extend(later.removed);
@@ -529,8 +518,8 @@ mod tests {
             };
             let (ka, kb) = (parts_of(&spread(&a), bits), parts_of(&spread(&b), bits));
             let texts: KeyTexts = Vec::new();
-            let whole = walk(ka.parts(), kb.parts(), None, &texts, "order");
-            let halves = walk_halves(ka.parts(), kb.parts(), None, &texts, "order").unwrap();
+            let whole = walk(ka.parts(), kb.parts(), None, &texts);
+            let halves = walk_halves(ka.parts(), kb.parts(), None, &texts).unwrap();
             prop_assert_eq!(&whole.pairs, &halves.pairs);
             prop_assert_eq!(&whole.removed, &halves.removed);
             prop_assert_eq!(&whole.added, &halves.added);

@@ -579,22 +579,8 @@ pub(crate) fn pairs_that_differ(
                 .iter()
                 .any(|(ha, hb)| ha[x as usize] != hb[y as usize])
     };
-    let pick = |part: &[(u64, u64)]| -> Vec<(u64, u64)> {
-        part.iter().copied().filter(|p| differs(p)).collect()
-    };
-    // Many pairs: both halves at once (each a random read of two fingerprints per pair).
-    let to_compare = if pairs.len() < 1 << 16 {
-        pick(pairs)
-    } else {
-        let (first, second) = pairs.split_at(pairs.len() / 2);
-        match read::both(|| Ok(pick(second)), || Ok(pick(first))) {
-            Ok((later, mut earlier)) => {
-                earlier.extend(later);
-                earlier
-            }
-            Err(_) => pick(pairs),
-        }
-    };
+    // Many pairs: both halves at once (each pair a random read of two fingerprints).
+    let to_compare = read::each_in_halves(pairs, 1 << 16, |p| differs(p).then_some(*p));
     Settled {
         compared,
         columns,

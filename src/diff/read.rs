@@ -175,20 +175,12 @@ fn recompute_fingerprints(
         })?;
         return Ok((fps, None));
     }
-    let mut raw = if keep {
-        RawRows::keeping(objects, v, Arc::clone(offsets))?
-    } else {
-        RawRows::new(objects, v, Arc::clone(offsets))?
-    };
+    let mut raw = RawRows::open(objects, v, &Cut::offsets(Arc::clone(offsets)), keep)?;
     let mut ends = Vec::new();
     for row in 0..offsets.len() as u64 {
         fps.push(raw.fingerprint(row, &mut ends, &mut scratch)?);
     }
-    if keep {
-        return Ok((fps, Some(raw.finish_keeping()?)));
-    }
-    raw.finish()?;
-    Ok((fps, None))
+    Ok((fps, raw.done()?))
 }
 
 /// The fingerprint of a record split at `ends` (each field's end in `bytes`; the next field
@@ -327,6 +319,30 @@ pub fn free_aside<T: Send + 'static>(value: T) {
         .spawn(move || drop(value));
 }
 
+/// `f` of each item of `items`, in order: over the two halves at once when there are at least
+/// `alone` of them (the second half on another thread, its results put after the first's),
+/// else on this thread.
+pub fn each_in_halves<T: Sync, R: Send>(
+    items: &[T],
+    alone: usize,
+    f: impl Fn(&T) -> Option<R> + Sync,
+) -> Vec<R> {
+    let run = |part: &[T]| -> Vec<R> { part.iter().filter_map(&f).collect() };
+    if items.len() < alone.max(2) {
+        return run(items);
+    }
+    let (first, second) = items.split_at(items.len() / 2);
+    std::thread::scope(|s| {
+        let later = s.spawn(|| run(second));
+        let mut out = run(first);
+        match later.join() {
+            Ok(rest) => out.extend(rest),
+            Err(panic) => std::panic::resume_unwind(panic),
+        }
+        out
+    })
+}
+
 /// Runs `fa` on another thread and `fb` on this one, and returns both results: the two
 /// versions of a diff are read at the same time, one per core.
 pub fn both<A: Send, B>(
@@ -380,7 +396,7 @@ impl std::ops::Deref for Kept {
 
 /// What a diff's first pass leaves for its second about one version: the byte offset of every
 /// row (from its row index), and the version's whole bytes when the first pass kept them
-/// ([`RawRows::keeping`]), already checked against the version's hash.
+/// ([`RawRows::open`]), already checked against the version's hash.
 #[derive(Debug, Clone)]
 pub struct Cut {
     pub offsets: Arc<[u64]>,
@@ -415,7 +431,7 @@ pub struct RawRows {
     parser: Parser,
     label: String,
     /// Where every byte read stays (from the object's first byte, `filled` of them), for
-    /// [`RawRows::finish_keeping`]; `buf` is then unused.
+    /// [`RawRows::done`]; `buf` is then unused.
     keeping: Option<Kept>,
     /// The version's bytes, kept by an earlier pass: rows are cut out of them instead.
     kept: Option<Arc<Kept>>,
@@ -466,14 +482,14 @@ impl RawRows {
         }
     }
 
-    /// [`Self::new`] that keeps every byte it reads, so that [`Self::finish_keeping`] hands the
-    /// whole version over (checked) for a later pass to read from memory ([`Self::cut`]).
-    pub fn keeping(
-        objects: &Objects,
-        v: &Version,
-        offsets: impl Into<Arc<[u64]>>,
-    ) -> Result<RawRows> {
-        let mut raw = RawRows::new(objects, v, offsets)?;
+    /// Rows of `v` for a pass over all of them: cut out of the bytes `cut` holds when an
+    /// earlier pass kept them, else read from the object, keeping every byte read when `keep`
+    /// says so, for [`Self::done`] to hand over for a later pass.
+    pub fn open(objects: &Objects, v: &Version, cut: &Cut, keep: bool) -> Result<RawRows> {
+        if !keep || cut.kept.is_some() {
+            return RawRows::cut(objects, v, cut);
+        }
+        let mut raw = RawRows::new(objects, v, Arc::clone(&cut.offsets))?;
         let len = usize::try_from(v.n_bytes).map_err(|_| raw.short())?;
         raw.keeping = Some(Kept::new(len));
         Ok(raw)
@@ -501,11 +517,7 @@ impl RawRows {
 
     /// The bytes rows are cut out of.
     fn data(&self) -> &[u8] {
-        match (&self.kept, &self.keeping) {
-            (Some(k), _) => k,
-            (None, Some(k)) => k,
-            (None, None) => &self.buf,
-        }
+        held(&self.kept, &self.keeping, &self.buf)
     }
 
     /// The bytes of row `row` (its record, line ending and any blank lines after it). Rows
@@ -584,11 +596,7 @@ impl RawRows {
     /// Parses row `row` and calls `f` with its record.
     pub fn with_record(&mut self, row: u64, f: impl FnOnce(&RawRecord<'_>)) -> Result<()> {
         let (from, to) = self.fill(row)?;
-        let bytes = match (&self.kept, &self.keeping) {
-            (Some(k), _) => &k[from..to],
-            (None, Some(k)) => &k[from..to],
-            (None, None) => &self.buf[from..to],
-        };
+        let bytes = &held(&self.kept, &self.keeping, &self.buf)[from..to];
         let p = &mut self.parser;
         p.restart(0);
         let mut f = Some(f);
@@ -689,14 +697,11 @@ impl RawRows {
         check_hash(&self.hash, &self.reader.hasher)
     }
 
-    /// [`Self::finish`] of a reader made by [`Self::keeping`]: the rest is read too, the hash
-    /// checked, and the whole version handed over for [`Cut::kept`].
-    pub fn finish_keeping(mut self) -> Result<Arc<Kept>> {
+    /// [`Self::finish`], handing over the version's whole bytes (checked) when this reader
+    /// kept them ([`Self::open`]), for [`Cut::kept`].
+    pub fn done(mut self) -> Result<Option<Arc<Kept>>> {
         let Some(mut kept) = self.keeping.take() else {
-            return Err(ErrorKind::Internal(
-                "a reader that kept nothing was asked for its bytes".into(),
-            )
-            .into());
+            return self.finish().map(|()| None);
         };
         let io = |e| Error::io(Path::new(&self.label), e);
         while self.filled < kept.len() {
@@ -715,7 +720,7 @@ impl RawRows {
             return Err(self.short());
         }
         check_hash(&self.hash, &self.reader.hasher)?;
-        Ok(Arc::new(kept))
+        Ok(Some(Arc::new(kept)))
     }
 
     fn short(&self) -> Error {
@@ -724,6 +729,17 @@ impl RawRows {
             self.label
         ))
         .into()
+    }
+}
+
+/// The bytes a [`RawRows`] cuts its rows out of: those an earlier pass kept, those this pass
+/// keeps, or its reading buffer (a function of the fields, so that the parser can be borrowed
+/// beside them).
+fn held<'h>(kept: &'h Option<Arc<Kept>>, keeping: &'h Option<Kept>, buf: &'h [u8]) -> &'h [u8] {
+    match (kept, keeping) {
+        (Some(k), _) => k,
+        (None, Some(k)) => k,
+        (None, None) => buf,
     }
 }
 

@@ -196,7 +196,6 @@ pub fn scan_keys(
     keep: bool,
 ) -> Result<Scan> {
     let n = cut.offsets.len() as u64;
-    let keep = keep && cut.kept.is_none();
     let mut s = Scan {
         keys: KeyParts::new(key_bits, n as usize),
         fps: match prints {
@@ -206,11 +205,7 @@ pub fn scan_keys(
         ..Scan::default()
     };
     let last = key.iter().copied().max().unwrap_or(0);
-    let mut raw = if keep {
-        RawRows::keeping(objects, v, Arc::clone(&cut.offsets))?
-    } else {
-        RawRows::cut(objects, v, cut)?
-    };
+    let mut raw = RawRows::open(objects, v, cut, keep)?;
     let delimiter = v.dialect.delimiter_byte();
     let mut scratch = Vec::new();
     let mut fp_scratch = Vec::new();
@@ -263,11 +258,7 @@ pub fn scan_keys(
             })?;
         }
     }
-    if keep {
-        s.kept = Some(raw.finish_keeping()?);
-    } else {
-        raw.finish()?;
-    }
+    s.kept = raw.done()?;
     Ok(s)
 }
 
