@@ -862,3 +862,42 @@ fn row_numbers_are_written_alike_on_every_screen_and_counts_with_separators() {
     let trace = s.ok(&["trace", "o", "--row", "1001", "--column", "shop"]);
     assert_contains(&trace, "data row 1001");
 }
+
+// Before: `retrieve -o` wrote a temporary file beside the target and renamed it into place,
+// also over a pipe or a device: `-o /dev/null` run as root replaced the device with a regular
+// file. A named pipe stands in for the device here (`mkfifo`, POSIX); what comes out of it
+// must be the version's bytes, and it must still be a pipe afterwards.
+#[test]
+fn retrieve_into_a_named_pipe_writes_into_it_and_leaves_it_a_pipe() {
+    use std::io::Read;
+    use std::os::unix::fs::FileTypeExt;
+    let s = Sandbox::with_store();
+    let table = "order_id,shop\n1,Ferry Lane\n2,\"Mill Row, east\"\n";
+    s.file("orders.csv", table);
+    s.ok(&["receive", "orders.csv", "--as", "o"]);
+    let pipe = s.path().join("out.pipe");
+    let made = std::process::Command::new("mkfifo")
+        .arg(&pipe)
+        .status()
+        .expect("mkfifo runs");
+    assert!(made.success());
+    let reading = {
+        let pipe = pipe.clone();
+        std::thread::spawn(move || {
+            let mut got = Vec::new();
+            std::fs::File::open(&pipe)
+                .and_then(|mut f| f.read_to_end(&mut got))
+                .map(|_| got)
+        })
+    };
+    s.ok(&["retrieve", "o", "-o", pipe.to_str().expect("a UTF-8 path")]);
+    // First the kind: a pipe replaced by a file was never opened for writing, so its reader
+    // would wait for ever (the failed test ends the process, and the reader with it).
+    let kind = std::fs::symlink_metadata(&pipe).expect("the pipe is there");
+    assert!(kind.file_type().is_fifo(), "{kind:?}");
+    let got = reading
+        .join()
+        .expect("the reading thread ends")
+        .expect("the pipe is read");
+    assert_eq!(String::from_utf8_lossy(&got), table);
+}

@@ -380,6 +380,7 @@ pub fn read_text(
 
 /// Writes through a temporary file beside `path` and renames it into place only when `fill`
 /// succeeds, so a failed `retrieve -o` never leaves a partial file under the requested name.
+/// An existing pipe or device is written into directly.
 pub fn write_file_atomically(
     path: &Path,
     fill: impl FnOnce(&mut std::fs::File) -> anyhow::Result<()>,
@@ -392,6 +393,15 @@ pub fn write_file_atomically(
         .file_name()
         .ok_or_else(|| anyhow!("{}: not a file name", path.display()))?;
     folder_exists(path, dir)?;
+    // A pipe or a device (`/dev/null`, `/dev/stdout`, a named pipe) is written into: renaming a
+    // file over it would replace the device itself with a regular file.
+    if std::fs::metadata(path).is_ok_and(|m| !m.is_file() && !m.is_dir()) {
+        let mut f = std::fs::OpenOptions::new()
+            .write(true)
+            .open(path)
+            .with_context(|| format!("cannot write {}", path.display()))?;
+        return fill(&mut f);
+    }
     let tmp = dir.join(format!(".{}.sluice-part", name.to_string_lossy()));
     let mut f =
         std::fs::File::create(&tmp).with_context(|| format!("cannot write {}", path.display()))?;
