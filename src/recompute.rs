@@ -88,8 +88,58 @@ pub fn readable(store: &Store, v: &Version) -> bool {
 /// ancestors are found with an explicit stack, then computed in order, each checked against
 /// its recorded hash.
 pub fn make_readable(store: &mut Store, target: &Version) -> Result<()> {
-    for v in recipe_order(store, target)? {
-        compute_one(store, &v)?;
+    let order = recipe_order(store, target)?;
+    let mut at = 0;
+    while at < order.len() {
+        let run = fusable_recipes(store, &order[at..])?;
+        let n = run.len().max(1);
+        if run.len() > 1 {
+            compute_run(store, &order[at..at + n], run)?;
+        } else {
+            compute_one(store, &order[at])?;
+        }
+        at += n;
+    }
+    Ok(())
+}
+
+/// The recipes of the versions at the start of `order` that can be computed in one pass over
+/// their rows: each made from the one before by a step that may join a fused run
+/// ([`apply::fusable`]); each with the version it reads.
+fn fusable_recipes(store: &Store, order: &[Version]) -> Result<Vec<(Version, ApplyOptions)>> {
+    let mut run: Vec<(Version, ApplyOptions)> = Vec::new();
+    for (k, v) in order.iter().enumerate() {
+        let (main, opts) = recipe_options(store, v)?;
+        let follows = k == 0 || main.id == order[k - 1].id;
+        if !follows || !apply::fusable(&opts.op, k == 0) {
+            break;
+        }
+        run.push((main, opts));
+    }
+    Ok(run)
+}
+
+/// Computes `versions` from their `recipes` ([`fusable_recipes`]) in one pass, each checked
+/// against its recorded hash and the last written (the others are only hashed: nothing after
+/// them in this computation reads them); when the pass cannot run, one at a time, so that the
+/// error names the step.
+fn compute_run(
+    store: &mut Store,
+    versions: &[Version],
+    recipes: Vec<(Version, ApplyOptions)>,
+) -> Result<()> {
+    let (inputs, mut opts): (Vec<Version>, Vec<ApplyOptions>) = recipes.into_iter().unzip();
+    let last = opts.len().saturating_sub(1);
+    for o in &mut opts[..last] {
+        if let Some(check) = &mut o.replay {
+            check.write = false;
+        }
+    }
+    let Ok(outcomes) = apply::replay_chain(store, &inputs, &opts) else {
+        return versions.iter().try_for_each(|v| compute_one(store, v));
+    };
+    for ((v, o), outcome) in versions.iter().zip(&opts).zip(outcomes) {
+        held_to_recorded(v, o, outcome, true)?;
     }
     Ok(())
 }

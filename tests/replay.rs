@@ -986,3 +986,89 @@ fn a_rerun_that_fails_at_a_later_step_records_nothing() {
     assert_contains(&out, "recorded q3_by_shop:v2");
     assert_contains(&out, "done: every step recorded");
 }
+
+// A plan's row-by-row steps are computed again in one pass, as `run` computed them. When the
+// third of four such steps no longer gives its recorded bytes (its parameters edited behind
+// sluice's back), the steps before it are still judged one by one, it is named with how its
+// output differs, and the replay stops there. Expected values worked out by hand from the
+// three rows written here: trim gives `Ada Lin`, `Bo Sand`, `cy rowe`; the recorded case step
+// wrote them in capitals, the edited one writes them in small letters, so every name differs.
+#[test]
+fn a_step_in_the_middle_of_a_fused_run_that_differs_is_named_and_stops_the_replay() {
+    let s = Sandbox::with_store();
+    s.file(
+        "tallies.csv",
+        "id,name,amount\n1, Ada Lin ,\"1,200.50\"\n2,Bo Sand,30\n3, cy rowe,cancel\n",
+    );
+    s.file(
+        "plan.json",
+        r#"{"sluice_plan": 2, "purpose": "the ferry tallies cleaned",
+            "sources": [{"dataset": "t", "file": "tallies.csv", "reason": "the tally sheet"}],
+            "steps": [
+              {"dataset": "t", "clean": "trim", "settings": {}, "reason": "padding"},
+              {"dataset": "t", "clean": "case", "settings": {"columns": ["name"], "to": "upper"}, "reason": "one spelling"},
+              {"dataset": "t", "clean": "drop", "settings": {"predicate": "amount = 'cancel'"}, "reason": "cancelled"},
+              {"dataset": "t", "clean": "number", "settings": {"columns": ["amount"]}, "reason": "amounts"}]}"#,
+    );
+    s.ok(&["run", "plan.json"]);
+    assert_eq!(
+        s.ok(&["retrieve", "t"]),
+        "id,name,amount\n1,ADA LIN,1200.50\n2,BO SAND,30\n"
+    );
+    let whole = s.json(&["reproduce", "t", "--json"]);
+    assert_eq!(whole["reproduced"], true);
+    let results: Vec<&str> = whole["steps"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|st| st["result"].as_str().unwrap())
+        .collect();
+    assert_eq!(results, ["raw_intact", "same", "same", "same", "same"]);
+
+    // The run leaves t:v3 recomputable; its bytes are kept, so that the recorded output can be
+    // compared with what the edited step computes (it stays in the fused run).
+    s.ok(&["retain", "t:v3"]);
+    let db = rusqlite::Connection::open(store_dir(&s).join("lineage.db")).unwrap();
+    let changed = db
+        .execute(
+            "UPDATE steps SET params = replace(params, '\"to\":\"upper\"', '\"to\":\"lower\"')
+             WHERE operation = 'case'",
+            [],
+        )
+        .unwrap();
+    assert_eq!(changed, 1);
+    drop(db);
+    let r = s.run(&["reproduce", "t", "--json"]);
+    assert_eq!(r.code, 1);
+    let report: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
+    assert_eq!(report["reproduced"], false);
+    let steps = report["steps"].as_array().unwrap();
+    let seen: Vec<(&str, &str)> = steps
+        .iter()
+        .map(|st| {
+            (
+                st["produced"].as_str().unwrap(),
+                st["result"].as_str().unwrap(),
+            )
+        })
+        .collect();
+    assert_eq!(
+        seen,
+        [
+            ("t:v1", "raw_intact"),
+            ("t:v2", "same"),
+            ("t:v3", "differs")
+        ]
+    );
+    let diff = &steps[2]["difference"];
+    assert_eq!(diff["rows_changed"], 3);
+    assert_eq!(diff["rows_only_recorded"], 0);
+    assert_eq!(diff["changed_cells"][0]["column"], "name");
+    let computed: Vec<&str> = diff["examples"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|e| e["cells"][0]["computed"].as_str().unwrap())
+        .collect();
+    assert_eq!(computed, ["ada lin", "bo sand", "cy rowe"]);
+}

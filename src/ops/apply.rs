@@ -327,7 +327,9 @@ struct Stage {
 /// Nothing is recorded: [`apply_computed`] records each in turn, so a run stopped part way
 /// keeps its first steps whole. Every step must be [`fusable`] (the first with `first`).
 /// A step whose `keep` is false has its output hashed, indexed and profiled but not written:
-/// it is recorded as a recomputable version (its recipe is the step itself).
+/// it is recorded as a recomputable version (its recipe is the step itself). A step computed
+/// again ([`ApplyOptions::replay`]) with `keep` writes its output only when its check asks for
+/// the bytes and the store lacks them ([`replay_chain`]).
 pub fn compute_chain(
     store: &Store,
     input: &Version,
@@ -353,7 +355,7 @@ pub(crate) fn compute_chain_summed(
     let mut stages: Vec<Stage> = Vec::with_capacity(steps.len());
     let mut reads = input.clone();
     for (k, opts) in steps.iter().enumerate() {
-        if !fusable(&opts.op, k == 0) || opts.map_table_file.is_some() || opts.replay.is_some() {
+        if !fusable(&opts.op, k == 0) || opts.map_table_file.is_some() {
             return Err(ErrorKind::Internal(format!(
                 "step {} of a fused run cannot be fused",
                 k + 1
@@ -528,6 +530,31 @@ pub fn apply_computed(store: &mut Store, input: Version, c: Computed) -> Result<
             Err(ErrorKind::Internal("a step meant to be recorded was deferred".into()).into())
         }
     }
+}
+
+/// Recorded built-in steps computed again in one pass ([`compute_chain`]), each held against
+/// what it recorded: every one of `steps` carries its [`ReplayCheck`], the first reads
+/// `inputs[0]`, and each later one reads the version the step before it recorded (its
+/// `inputs[k]`, named in its outcome). Nothing is recorded; the outcomes are
+/// [`ApplyOutcome::Replayed`], in order, with a missing stored output restored when it came
+/// out with its recorded hash, as [`apply`] of each in turn would have given them.
+pub fn replay_chain(
+    store: &mut Store,
+    inputs: &[Version],
+    steps: &[ApplyOptions],
+) -> Result<Vec<ApplyOutcome>> {
+    let (Some(first), true) = (inputs.first(), inputs.len() == steps.len()) else {
+        return Err(ErrorKind::Internal("a replayed run without its inputs".into()).into());
+    };
+    if steps.iter().any(|o| o.replay.is_none()) {
+        return Err(ErrorKind::Internal("a replayed run with a step to record".into()).into());
+    }
+    let computed = compute_chain(store, first, steps, &vec![true; steps.len()])?;
+    computed
+        .into_iter()
+        .zip(inputs)
+        .map(|(c, input)| apply_computed(store, input.clone(), c))
+        .collect()
 }
 
 /// One step of a fused run ([`compute_chain`]) on `input`, made durable but not recorded

@@ -65,6 +65,24 @@ pub struct ReplayedStep {
     pub difference: Option<Box<Difference>>,
 }
 
+impl ReplayedStep {
+    /// The entry of `step`, which made `out`, before it is judged.
+    fn of(step: &Step, out: &Version) -> ReplayedStep {
+        ReplayedStep {
+            step: step.id,
+            kind: step.kind,
+            operation: step.operation.clone(),
+            produced: out.label(),
+            recorded_hash: out.hash.clone(),
+            computed_hash: None,
+            result: String::new(),
+            detail: None,
+            warnings: Vec::new(),
+            difference: None,
+        }
+    }
+}
+
 #[derive(Debug, Clone, Serialize)]
 pub struct ReplayReport {
     pub version: String,
@@ -133,7 +151,9 @@ pub fn planned_commands(store: &Store, reference: &str) -> Result<Vec<PlannedCom
 /// shown to give its recorded bytes.
 pub fn replay(store: &mut Store, reference: &str, options: &ReplayOptions) -> Result<ReplayReport> {
     let target = refs::resolve(&store.lineage, reference)?;
-    let seen = crate::plan::steps_behind(store, &target)?;
+    let seen: Vec<i64> = crate::plan::steps_behind(store, &target)?
+        .into_iter()
+        .collect();
     let blocked = crate::erasure::unreproducible(store, seen.iter().copied())?;
     if !blocked.is_empty() {
         return Err(crate::Error::from(crate::error::ErrorKind::Data(
@@ -147,25 +167,37 @@ pub fn replay(store: &mut Store, reference: &str, options: &ReplayOptions) -> Re
         Some(seen.len() as u64),
         crate::progress::Unit::Steps,
     );
-    for id in seen {
+    // Steps before this position are not fused again (a fused run that could not run is
+    // taken one step at a time, so that the step that fails is named).
+    let mut one_at_a_time_until = 0;
+    let mut i = 0;
+    while i < seen.len() {
+        if i >= one_at_a_time_until {
+            let run = fusable_run(store, &seen[i..])?;
+            if run.len() > 1 {
+                let n = run.len();
+                match fused(store, run, &mut steps, &mut progress)? {
+                    Some(stop) => {
+                        i += n;
+                        if stop {
+                            reproduced = false;
+                            break;
+                        }
+                    }
+                    None => one_at_a_time_until = i + n,
+                }
+                continue;
+            }
+        }
+        let id = seen[i];
+        i += 1;
         progress.add(1);
         let step = load_step(store, id)?;
         let outputs = store.lineage.step_outputs(id)?;
         let Some(out) = outputs.first() else {
             continue;
         };
-        let mut entry = ReplayedStep {
-            step: id,
-            kind: step.kind,
-            operation: step.operation.clone(),
-            produced: out.label(),
-            recorded_hash: out.hash.clone(),
-            computed_hash: None,
-            result: String::new(),
-            detail: None,
-            warnings: Vec::new(),
-            difference: None,
-        };
+        let mut entry = ReplayedStep::of(&step, out);
         let stop = match step.kind {
             StepKind::Ingest if crate::convert::conversion_of(&step).is_some() => {
                 converted_intake(store, &step, out, &mut entry)?
@@ -349,17 +381,20 @@ fn stored_damaged(store: &Store, out: &Version, entry: &mut ReplayedStep) -> Res
     Ok(true)
 }
 
-/// Runs a built-in step again; `true` when the replay stops here.
-fn built_in(
-    store: &mut Store,
-    step: &Step,
-    out: &Version,
-    entry: &mut ReplayedStep,
-) -> Result<bool> {
-    let id = step.id;
-    // Tables and other sources by their exact recorded versions.
-    let (main, op) = crate::recompute::recorded_operation(store, step)?;
-    let mut opts = ApplyOptions {
+/// One recorded built-in step, ready to be computed again: the version it read, the version
+/// it made, and its options with the check of what it recorded.
+struct Rerun {
+    step: Step,
+    main: Version,
+    out: Version,
+    opts: ApplyOptions,
+}
+
+/// Built-in step `step` (which made `out`) ready to be computed again; tables and other
+/// sources by their exact recorded versions.
+fn rerun_of(store: &Store, step: Step, out: Version) -> Result<Rerun> {
+    let (main, op) = crate::recompute::recorded_operation(store, &step)?;
+    let opts = ApplyOptions {
         op,
         reason: step.reason.clone().unwrap_or_else(|| "replay".into()),
         output_dataset: Some(out.dataset.clone()),
@@ -368,12 +403,94 @@ fn built_in(
         repeats: None,
         replay: Some(ReplayCheck {
             output_hash: out.hash.clone(),
-            provenance_hash: store.lineage.step_provenance(id)?,
+            provenance_hash: store.lineage.step_provenance(step.id)?,
             // A recomputable version is checked, not stored by reproducing it.
-            write: store.bytes_stored(out)?,
+            write: store.bytes_stored(&out)?,
         }),
     };
-    match apply::apply(store, &main.label(), &opts) {
+    Ok(Rerun {
+        step,
+        main,
+        out,
+        opts,
+    })
+}
+
+/// The built-in steps at the start of `ids` that can be computed again in one pass over their
+/// rows: each reads the version the one before made, and each may join a fused run
+/// ([`apply::fusable`]). Empty or one step: nothing to fuse.
+fn fusable_run(store: &Store, ids: &[i64]) -> Result<Vec<Rerun>> {
+    let mut run: Vec<Rerun> = Vec::new();
+    for &id in ids {
+        let step = load_step(store, id)?;
+        if step.kind != StepKind::Operation {
+            break;
+        }
+        let Some(out) = store.lineage.step_outputs(id)?.into_iter().next() else {
+            break;
+        };
+        let Ok(r) = rerun_of(store, step, out) else {
+            break;
+        };
+        let follows = run.last().is_none_or(|before| before.out.id == r.main.id);
+        if !follows || !apply::fusable(&r.opts.op, run.is_empty()) {
+            break;
+        }
+        run.push(r);
+    }
+    Ok(run)
+}
+
+/// Computes a run of built-in steps again in one pass ([`apply::replay_chain`]) and judges
+/// each as [`built_in`] would; `Some(true)` when the replay stops in it, `None` when the run
+/// could not be computed (the caller then takes its steps one at a time, to name the one that
+/// fails).
+fn fused(
+    store: &mut Store,
+    run: Vec<Rerun>,
+    entries: &mut Vec<ReplayedStep>,
+    progress: &mut crate::progress::Task,
+) -> Result<Option<bool>> {
+    let inputs: Vec<Version> = run.iter().map(|r| r.main.clone()).collect();
+    let opts: Vec<ApplyOptions> = run.iter().map(|r| r.opts.clone()).collect();
+    let Ok(outcomes) = apply::replay_chain(store, &inputs, &opts) else {
+        return Ok(None);
+    };
+    for (r, outcome) in run.into_iter().zip(outcomes) {
+        progress.add(1);
+        let mut entry = ReplayedStep::of(&r.step, &r.out);
+        let stop = judge(store, &r, Ok(outcome), &mut entry)?;
+        entries.push(entry);
+        if stop {
+            return Ok(Some(true));
+        }
+    }
+    Ok(Some(false))
+}
+
+/// Runs a built-in step again; `true` when the replay stops here.
+fn built_in(
+    store: &mut Store,
+    step: &Step,
+    out: &Version,
+    entry: &mut ReplayedStep,
+) -> Result<bool> {
+    let r = rerun_of(store, step.clone(), out.clone())?;
+    let outcome = apply::apply(store, &r.main.label(), &r.opts);
+    judge(store, &r, outcome, entry)
+}
+
+/// What a built-in step computed again gave, held against what it recorded; `true` when the
+/// replay stops here.
+fn judge(
+    store: &mut Store,
+    r: &Rerun,
+    outcome: Result<ApplyOutcome>,
+    entry: &mut ReplayedStep,
+) -> Result<bool> {
+    let (main, out) = (&r.main, &r.out);
+    let mut opts = r.opts.clone();
+    match outcome {
         Ok(ApplyOutcome::Replayed {
             output_hash,
             matches,
@@ -409,7 +526,7 @@ fn built_in(
                 provenance_hash: None,
                 write: true,
             });
-            match computed_difference(store, &main, out, &opts, &output_hash) {
+            match computed_difference(store, main, out, &opts, &output_hash) {
                 Ok(d) => entry.difference = Some(Box::new(d)),
                 Err(e) => entry
                     .warnings
