@@ -157,6 +157,7 @@ fn apply_to(store: &mut Store, input: Version, opts: &ApplyOptions, mode: Mode) 
     } = ready(store, &input, opts)?;
     let opts = &opts;
     let mut step = RowStep::new(store, &input, &opts.op, mapper, looker)?;
+    step.expect_rows(input.n_rows);
     let table_id = step.table_id();
     let out_header = step.header();
     let started_at = clock::now_rfc3339();
@@ -623,7 +624,9 @@ fn record_computed(
 }
 
 /// The writer of a step's output: in replay, when the recorded output is already stored, one
-/// that only hashes (nothing is written to disk); otherwise one that keeps the bytes.
+/// that only hashes (nothing is written to disk); otherwise one that keeps the bytes. In replay
+/// no column is profiled: nothing is recorded, and the recorded profile is checked by `verify
+/// --deep` against the bytes, not against a replay.
 pub(super) fn output_writer(
     store: &Store,
     opts: &ApplyOptions,
@@ -638,6 +641,13 @@ pub(super) fn output_writer(
                 .is_ok_and(|h| store.objects.exists(&h))
     });
     let objects = (!stored).then_some(&store.objects);
+    let none_profiled;
+    let unprofiled = if opts.replay.is_some() {
+        none_profiled = vec![true; header.len()];
+        &none_profiled
+    } else {
+        unprofiled
+    };
     CanonicalWriter::leaving_out(objects, header, null_tokens, unprofiled)
 }
 

@@ -268,7 +268,8 @@ impl RowStep {
     }
 
     /// Makes room for `rows` input rows at once where the step keeps a table of them
-    /// (`dedupe`), when the input's row count was not known when the step was prepared.
+    /// (`dedupe` keeping the first row), before they pass: a step is prepared without it, so
+    /// that one prepared to compute a single row again allocates nothing per row.
     pub fn expect_rows(&mut self, rows: u64) {
         if let RowChooser::Dedupe { chosen, .. } = &mut self.chooser {
             chosen.expect(rows);
@@ -959,7 +960,14 @@ impl RowChooser {
             _ => return Ok(RowChooser::All),
         };
         let keep_last = *keep == KeepWhich::Last;
-        let mut chosen = KeySet::with_expected(input.n_rows);
+        // Keeping the last row, every key is recorded now; keeping the first, the table is
+        // sized when the rows are about to pass (`RowStep::expect_rows`), so that a step
+        // prepared to compute one row again (a trail) does not allocate it for every row.
+        let mut chosen = if keep_last {
+            KeySet::with_expected(input.n_rows)
+        } else {
+            KeySet::default()
+        };
         let mut scratch = Vec::new();
         if keep_last {
             store.objects.each_row(input, |row, r| {
