@@ -195,6 +195,8 @@ struct Shared {
     tmp: PathBuf,
     index: Mutex<Index>,
     tables: Mutex<HashMap<Hash, Arc<SeekTable>>>,
+    /// Frames decoded for reads by offset, emptied with `tables`.
+    frames: segments::FrameCache,
     writing: Mutex<Option<File>>,
     faults: Option<Arc<Countdown>>,
     level: i32,
@@ -271,6 +273,7 @@ impl FsBackend {
                 tmp: store_dir.join("tmp"),
                 index: Mutex::new(Index::default()),
                 tables: Mutex::new(HashMap::new()),
+                frames: segments::FrameCache::default(),
                 writing: Mutex::new(None),
                 faults,
                 level: segments::LEVEL,
@@ -485,6 +488,7 @@ impl FsBackend {
         })?;
         *sh.index.lock().unwrap_or_else(|p| p.into_inner()) = Index::default();
         sh.tables.lock().unwrap_or_else(|p| p.into_inner()).clear();
+        sh.frames.clear();
         for (path, r) in self.segments()? {
             out.segments_after += 1;
             out.bytes_after += fs::symlink_metadata(&path)?.len();
@@ -665,6 +669,7 @@ impl Shared {
                         .lock()
                         .unwrap_or_else(|p| p.into_inner())
                         .clear();
+                    self.frames.clear();
                 }
                 Err(err) => return Err(err),
             }
@@ -833,7 +838,10 @@ impl ObjectBackend for FsBackend {
         let len = buf.len();
         let got = self.shared.with_object(hash, |file, table| {
             let mut tmp = vec![0u8; len];
-            let n = segments::read_at(&file, &table, offset, &mut tmp)?;
+            let frames = &self.shared.frames;
+            let n = segments::read_at(&file, &table, offset, &mut tmp, &|i, decode| {
+                frames.get(hash, i, decode)
+            })?;
             tmp.truncate(n);
             Ok(tmp)
         })?;

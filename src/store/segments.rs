@@ -37,6 +37,7 @@ use std::fs::{self, File};
 use std::io::{self, Read, Write};
 use std::os::unix::fs::FileExt;
 use std::path::{Path, PathBuf};
+use std::sync::Arc;
 
 use crate::hash::Hash;
 
@@ -592,15 +593,29 @@ impl Read for AheadReader {
     }
 }
 
+/// Where [`read_at`] takes frame `i` from: `decode` it, or give one kept from an earlier read.
+pub type FrameSource<'s> =
+    &'s dyn Fn(usize, &dyn Fn() -> io::Result<Vec<u8>>) -> io::Result<Arc<Vec<u8>>>;
+
+/// A decoded frame, named by its object and its number.
+type KeptFrame = ((Hash, usize), Arc<Vec<u8>>);
+
 /// Reads `buf.len()` bytes from uncompressed `offset` (fewer at the end), decoding only the
-/// frames that hold them.
-pub fn read_at(file: &File, table: &SeekTable, offset: u64, buf: &mut [u8]) -> io::Result<usize> {
-    let mut dec = zstd::bulk::Decompressor::new()?;
+/// frames that hold them; `frame(i, decode)` gives frame `i`, decoded by `decode` or kept from
+/// an earlier read.
+pub fn read_at(
+    file: &File,
+    table: &SeekTable,
+    offset: u64,
+    buf: &mut [u8],
+    frame: FrameSource<'_>,
+) -> io::Result<usize> {
     let mut i = (offset / u64::from(table.frame_size)) as usize;
     let mut within = (offset % u64::from(table.frame_size)) as usize;
     let mut n = 0;
     while n < buf.len() && i < table.raw.len() {
-        let frame = decode_frame(file, table, i, &mut dec)?;
+        let decode = || decode_frame(file, table, i, &mut zstd::bulk::Decompressor::new()?);
+        let frame = frame(i, &decode)?;
         if within < frame.len() {
             let k = (frame.len() - within).min(buf.len() - n);
             buf[n..n + k].copy_from_slice(&frame[within..within + k]);
@@ -610,6 +625,50 @@ pub fn read_at(file: &File, table: &SeekTable, offset: u64, buf: &mut [u8]) -> i
         i += 1;
     }
     Ok(n)
+}
+
+/// How many decoded frames a store keeps for reads by offset ([`FrameCache`]): 4 MiB of
+/// frames of the default size.
+const CACHED_FRAMES: usize = 16;
+
+/// Frames decoded for reads by offset, the latest [`CACHED_FRAMES`] of them: a trail reads the
+/// first bytes of the same provenance objects, and rows near each other, again and again.
+/// Keyed by object and frame, and emptied whenever the store's seek tables are (an object's
+/// frames are fixed once published, as its seek table is).
+#[derive(Default)]
+pub struct FrameCache(std::sync::Mutex<std::collections::VecDeque<KeptFrame>>);
+
+impl FrameCache {
+    /// Frame `i` of object `hash`: kept from an earlier read, else decoded and kept.
+    pub fn get(
+        &self,
+        hash: &Hash,
+        i: usize,
+        decode: &dyn Fn() -> io::Result<Vec<u8>>,
+    ) -> io::Result<Arc<Vec<u8>>> {
+        let key = (*hash, i);
+        {
+            let mut kept = self.0.lock().unwrap_or_else(|p| p.into_inner());
+            if let Some(at) = kept.iter().position(|(k, _)| *k == key) {
+                let hit = kept.remove(at);
+                let frame = hit.as_ref().map(|(_, f)| Arc::clone(f));
+                if let (Some(hit), Some(frame)) = (hit, frame) {
+                    kept.push_front(hit);
+                    return Ok(frame);
+                }
+            }
+        }
+        let frame = Arc::new(decode()?);
+        let mut kept = self.0.lock().unwrap_or_else(|p| p.into_inner());
+        kept.push_front((key, Arc::clone(&frame)));
+        kept.truncate(CACHED_FRAMES);
+        Ok(frame)
+    }
+
+    /// Forgets every frame.
+    pub fn clear(&self) {
+        self.0.lock().unwrap_or_else(|p| p.into_inner()).clear();
+    }
 }
 
 /// A fresh segment file name: creation time in nanoseconds, process and a counter, so names
@@ -687,11 +746,19 @@ mod tests {
             .read_to_end(&mut ahead)
             .unwrap();
         assert_eq!(ahead, first);
-        let mut buf = [0u8; 1500];
-        let n = read_at(&file, &table, 1990, &mut buf).unwrap();
-        assert_eq!(&buf[..n], &first[1990..3490]);
-        let n = read_at(&file, &table, first.len() as u64 - 10, &mut buf).unwrap();
-        assert_eq!(n, 10);
+        // Reads by offset, each frame decoded afresh and through a cache of decoded frames
+        // (the second read at 1990 is served from it): the same bytes.
+        let cache = FrameCache::default();
+        let name = Hash::from_bytes(*blake3::hash(&first).as_bytes());
+        let fresh: FrameSource<'_> = &|_, decode| decode().map(Arc::new);
+        let kept: FrameSource<'_> = &|i, decode| cache.get(&name, i, decode);
+        for frame in [fresh, kept, kept] {
+            let mut buf = [0u8; 1500];
+            let n = read_at(&file, &table, 1990, &mut buf, frame).unwrap();
+            assert_eq!(&buf[..n], &first[1990..3490]);
+            let n = read_at(&file, &table, first.len() as u64 - 10, &mut buf, frame).unwrap();
+            assert_eq!(&buf[..n], &first[first.len() - 10..]);
+        }
 
         // The object's stored range alone decodes with the reference library's streaming
         // decoder (it skips the seek table, a skippable frame, RFC 8878 section 3.1.2).
