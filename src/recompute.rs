@@ -10,7 +10,7 @@
 //! The walk back to stored ancestors is a loop over an explicit stack, never recursion, so
 //! a long chain of recomputable versions cannot deepen the call stack.
 
-use std::collections::HashSet;
+use std::collections::{HashMap, HashSet};
 use std::path::{Path, PathBuf};
 use std::sync::Mutex;
 
@@ -89,12 +89,20 @@ pub fn readable(store: &Store, v: &Version) -> bool {
 /// its recorded hash.
 pub fn make_readable(store: &mut Store, target: &Version) -> Result<()> {
     let order = recipe_order(store, target)?;
+    // How many of the versions to compute read each version: one that only the next step of a
+    // fused pass reads need not be written.
+    let mut readers: HashMap<i64, usize> = HashMap::new();
+    for v in &order {
+        for (_, input) in store.lineage.step_input_versions(v.step_id)? {
+            *readers.entry(input.id).or_default() += 1;
+        }
+    }
     let mut at = 0;
     while at < order.len() {
         let run = fusable_recipes(store, &order[at..])?;
         let n = run.len().max(1);
         if run.len() > 1 {
-            compute_run(store, &order[at..at + n], run)?;
+            compute_run(store, &order[at..at + n], run, &readers)?;
         } else {
             compute_one(store, &order[at])?;
         }
@@ -120,19 +128,20 @@ fn fusable_recipes(store: &Store, order: &[Version]) -> Result<Vec<(Version, App
 }
 
 /// Computes `versions` from their `recipes` ([`fusable_recipes`]) in one pass, each checked
-/// against its recorded hash and the last written (the others are only hashed: nothing after
-/// them in this computation reads them); when the pass cannot run, one at a time, so that the
-/// error names the step.
+/// against its recorded hash; the last is written, and so is any other that more than one of
+/// the versions to compute reads (`readers`), the rest only hashed. When the pass cannot run,
+/// one at a time, so that the error names the step.
 fn compute_run(
     store: &mut Store,
     versions: &[Version],
     recipes: Vec<(Version, ApplyOptions)>,
+    readers: &HashMap<i64, usize>,
 ) -> Result<()> {
     let (inputs, mut opts): (Vec<Version>, Vec<ApplyOptions>) = recipes.into_iter().unzip();
     let last = opts.len().saturating_sub(1);
-    for o in &mut opts[..last] {
+    for (v, o) in versions.iter().zip(&mut opts[..last]) {
         if let Some(check) = &mut o.replay {
-            check.write = false;
+            check.write = readers.get(&v.id).is_some_and(|&n| n > 1);
         }
     }
     let Ok(outcomes) = apply::replay_chain(store, &inputs, &opts) else {
