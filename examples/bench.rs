@@ -204,6 +204,11 @@ struct Cli {
     #[arg(long, default_value_t = 3, value_parser = clap::value_parser!(u32).range(1..=99))]
     runs: u32,
 
+    /// Keep the scratch stores under target/bench-tmp/ (named by benchmark and size) for
+    /// profiling by hand, instead of removing each when its benchmark ends
+    #[arg(long)]
+    keep_stores: bool,
+
     /// Internal: hash FILE with BLAKE3 on THREADS threads and print "SECONDS HEX"
     #[arg(long, hide = true, num_args = 2, value_names = ["FILE", "THREADS"])]
     hash_child: Option<Vec<String>>,
@@ -286,6 +291,8 @@ struct Ctx {
     rows: Option<Vec<u64>>,
     runs: u32,
     bench_exe: PathBuf,
+    /// `--keep-stores`: scratch folders stay after their benchmark.
+    keep_stores: bool,
 }
 
 fn main() {
@@ -377,6 +384,7 @@ fn context(cli: &Cli) -> Result<Ctx> {
         rows,
         runs: cli.runs,
         bench_exe,
+        keep_stores: cli.keep_stores,
     })
 }
 
@@ -766,7 +774,8 @@ fn repeat(runs: u32, mut once: impl FnMut(u32) -> Result<Sample>) -> Result<Vec<
 }
 
 /// A fresh scratch folder under target/bench-tmp; removed by [`Scratch::drop`].
-struct Scratch(PathBuf);
+/// A scratch folder under `target/bench-tmp/`, removed when dropped unless `--keep-stores`.
+struct Scratch(PathBuf, bool);
 
 impl Scratch {
     fn new(ctx: &Ctx, name: &str) -> Result<Self> {
@@ -775,12 +784,16 @@ impl Scratch {
             fs::remove_dir_all(&p).with_context(|| format!("removing {}", p.display()))?;
         }
         fs::create_dir_all(&p).with_context(|| format!("creating {}", p.display()))?;
-        Ok(Scratch(p))
+        Ok(Scratch(p, ctx.keep_stores))
     }
 }
 
 impl Drop for Scratch {
     fn drop(&mut self) {
+        if self.1 {
+            eprintln!("kept {}", self.0.display());
+            return;
+        }
         if let Err(e) = fs::remove_dir_all(&self.0) {
             eprintln!("warning: could not remove {}: {e}", self.0.display());
         }
@@ -1010,7 +1023,7 @@ fn index_strides(file: &Path) -> Result<Value> {
     println!(
         "  row index strides (1 thread, in process): stride, bytes per row stored, find one row"
     );
-    let frame = sluice::store::segments::INDEX_FRAME_SIZE as usize;
+    let frame = sluice::store::segments::RANDOM_ACCESS_FRAME_SIZE as usize;
     let mut out = Vec::new();
     for stride in [16u32, 64, 128, 512] {
         let mut index = rowindex::Builder::start().to_vec();
@@ -3023,7 +3036,7 @@ fn trace_size(ctx: &Ctx, n: u64) -> Result<(Value, Vec<f64>, bool)> {
         thousands(n),
         bytes as f64 / 1e6
     );
-    let scratch = Scratch::new(ctx, "trace-store")?;
+    let scratch = Scratch::new(ctx, &format!("trace-store-{n}"))?;
     let store = scratch.0.join("store");
     sluice_init(ctx, &store)?;
     let plan = scratch.0.join("plan.json");

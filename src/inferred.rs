@@ -187,20 +187,12 @@ pub(crate) fn write_provenance(
     changes: &ChangeLog,
     drops: &DropLog,
 ) -> Result<Option<(String, u64)>> {
-    if runs.is_empty() && changes.is_empty() && drops.is_empty() {
-        return Ok(None);
-    }
     let run_sets: Vec<(u32, &[RowRun])> = if runs.is_empty() {
         Vec::new()
     } else {
         vec![(0, runs)]
     };
-    let bytes = provenance::encode(header, changes, drops, &run_sets);
-    let store_io = |e: std::io::Error| Error::io(&store.dir().join("tmp"), e);
-    let mut w = store.objects.writer().map_err(store_io)?;
-    w.write(&bytes).map_err(store_io)?;
-    let (hash, n) = w.finish().map_err(store_io)?;
-    Ok(Some((hash.hex(), n)))
+    provenance::write(store, header, changes, drops, &run_sets)
 }
 
 impl Successor {

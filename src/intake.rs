@@ -858,7 +858,7 @@ fn parse_side(
     recycle: mpsc::Sender<RecordBatch>,
 ) -> Result<Option<Scan>> {
     let mut index = objects
-        .row_index_writer()
+        .random_access_writer()
         .map_err(|e| store_io(store_dir, e))?;
     index
         .write(&rowindex::Builder::start())

@@ -358,8 +358,7 @@ pub fn one_row(
         if !row_local(&op) {
             return Ok(None);
         }
-        let runs = crate::provenance::row_runs(store, &cur, main.id)?;
-        let Some(in_row) = crate::model::input_of(&runs, r) else {
+        let Some(in_row) = crate::provenance::input_row(store, &cur, main.id, r)? else {
             return Err(ErrorKind::Inconsistent(format!(
                 "data row {} of {} comes from no row of {} in the row map of step {}; run `sluice verify`",
                 r + 1,

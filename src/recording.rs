@@ -235,15 +235,8 @@ pub fn persist(
     };
     // The row maps, changed cells and dropped rows, as one object (none when there are none).
     let run_sets = prov.run_sets();
-    let provenance = if prov.changes.is_empty() && prov.drops.is_empty() && run_sets.is_empty() {
-        None
-    } else {
-        let bytes = crate::provenance::encode(out_header, &prov.changes, &prov.drops, &run_sets);
-        let mut w = store.objects.writer().map_err(store_io)?;
-        w.write(&bytes).map_err(store_io)?;
-        let (hash, n) = w.finish().map_err(store_io)?;
-        Some((hash.hex(), n))
-    };
+    let provenance =
+        crate::provenance::write(store, out_header, &prov.changes, &prov.drops, &run_sets)?;
     let mut inputs = vec![(input.id, "input".to_string())];
     let mut sources = vec![(input.id, prov.sources.clone())];
     if let Some((id, table_sources)) = &prov.table {

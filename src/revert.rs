@@ -683,7 +683,6 @@ fn restore_step(
     opts: &RevertOptions,
     started_at: &str,
 ) -> Result<Pending> {
-    let store_io = |e: std::io::Error| Error::io(&store.dir().join("tmp"), e);
     let runs = [RowRun {
         out_start: 0,
         in_start: 0,
@@ -694,20 +693,13 @@ fn restore_step(
     } else {
         Vec::new()
     };
-    let provenance = if sets.is_empty() {
-        None
-    } else {
-        let bytes = crate::provenance::encode(
-            &base.header,
-            &ChangeLog::new(base.header.len()),
-            &DropLog::default(),
-            &sets,
-        );
-        let mut w = store.objects.writer().map_err(store_io)?;
-        w.write(&bytes).map_err(store_io)?;
-        let (hash, n) = w.finish().map_err(store_io)?;
-        Some((hash.hex(), n))
-    };
+    let provenance = crate::provenance::write(
+        store,
+        &base.header,
+        &ChangeLog::new(base.header.len()),
+        &DropLog::default(),
+        &sets,
+    )?;
     let row_index_bytes = store.lineage.object_size(&base.row_index)?.ok_or_else(|| {
         db(format!(
             "the row index of {} is not recorded; run `sluice verify`",

@@ -77,7 +77,7 @@ fn copy_objects(
         let dir = to.dir().to_path_buf();
         let io = |e| crate::Error::io(&dir, e);
         let mut w = if kind == "row_index" {
-            to.objects.row_index_writer().map_err(io)?
+            to.objects.random_access_writer().map_err(io)?
         } else {
             to.objects.writer().map_err(io)?
         };

@@ -473,8 +473,7 @@ fn follow(
         // The input the row came from, and its row there.
         let mut from: Option<(Version, u64)> = None;
         for (_, input) in &inputs {
-            let runs = crate::provenance::row_runs(store, &v, input.id)?;
-            if let Some(row) = crate::model::input_of(&runs, r) {
+            if let Some(row) = crate::provenance::input_row(store, &v, input.id, r)? {
                 from = Some((input.clone(), row));
                 break;
             }

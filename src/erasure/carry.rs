@@ -430,7 +430,7 @@ fn prepare(store: &Store, v: &Version, erased: &Cells, marked: &Cells) -> Result
     let ix = rowindex::encode(new_positions);
     let mut w = store
         .objects
-        .row_index_writer()
+        .random_access_writer()
         .map_err(|e| Error::io(store.dir(), e))?;
     w.write(&ix).map_err(|e| Error::io(store.dir(), e))?;
     let (index_hash, index_bytes) = w.finish().map_err(|e| Error::io(store.dir(), e))?;

@@ -1261,11 +1261,12 @@ impl Objects {
         })
     }
 
-    /// A writer for a row index: smaller frames ([`segments::INDEX_FRAME_SIZE`]), since a
-    /// trail reads two of its entries at a time and decodes the frame that holds them.
-    pub fn row_index_writer(&self) -> io::Result<ObjectWriter> {
+    /// A writer for an object read a few bytes at a time by offset (a row index, a step's
+    /// provenance object): smaller frames ([`segments::RANDOM_ACCESS_FRAME_SIZE`]), since a
+    /// trail reads a few of its entries at a time and decodes the frame that holds them.
+    pub fn random_access_writer(&self) -> io::Result<ObjectWriter> {
         self.backend.hold_for_writing()?;
-        let frame = segments::INDEX_FRAME_SIZE;
+        let frame = segments::RANDOM_ACCESS_FRAME_SIZE;
         Ok(ObjectWriter {
             temp: match &self.stage {
                 Some(st) => st.fs.create_temp_framed(frame)?,

@@ -52,8 +52,9 @@ pub const TAIL_LEN: u64 = 8 + 8 + 32 + 8;
 pub const ENTRY_LEN: usize = 32 + 8 + 8 + 8 + 4 + 4;
 /// Uncompressed bytes per frame (see DEVELOPERS.md, "On-disk format", for the measurements).
 pub const FRAME_SIZE: u32 = 256 << 10;
-/// Uncompressed bytes per frame of a row index, which trails read 48 bytes at a time.
-pub const INDEX_FRAME_SIZE: u32 = 32 << 10;
+/// Uncompressed bytes per frame of an object read a few bytes at a time by offset: a row
+/// index (48 bytes at a time) and a step's provenance object (its block table and one block).
+pub const RANDOM_ACCESS_FRAME_SIZE: u32 = 32 << 10;
 /// The Zstandard level new objects are written at.
 pub const LEVEL: i32 = 1;
 /// The largest frame size a reader accepts (a received store could claim any).

@@ -207,7 +207,7 @@ impl Serial {
         null_tokens: &[String],
     ) -> io::Result<Self> {
         let writer = |row_index: bool| match objects {
-            Some(o) if row_index => o.row_index_writer(),
+            Some(o) if row_index => o.random_access_writer(),
             Some(o) => o.writer(),
             None => Ok(crate::store::objects::ObjectWriter::hashing_only()),
         };
