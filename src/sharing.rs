@@ -56,6 +56,8 @@ fn copy_objects(
     moved: &mut Moved,
 ) -> Result<()> {
     let unstored = from.lineage.unstored_objects()?;
+    // Objects read a few bytes at a time by offset keep their small frames in the copy.
+    let provenance = from.lineage.provenance_objects()?;
     for (hex, kind, _) in from.lineage.objects()? {
         if unstored.contains(&hex) || leave.contains(&hex) {
             continue;
@@ -76,7 +78,7 @@ fn copy_objects(
         }
         let dir = to.dir().to_path_buf();
         let io = |e| crate::Error::io(&dir, e);
-        let mut w = if kind == "row_index" {
+        let mut w = if kind == "row_index" || provenance.contains(&hex) {
             to.objects.random_access_writer().map_err(io)?
         } else {
             to.objects.writer().map_err(io)?

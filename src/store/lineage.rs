@@ -280,6 +280,17 @@ impl Lineage {
         }
     }
 
+    /// The hashes of every step's provenance object.
+    pub fn provenance_objects(&self) -> Result<std::collections::HashSet<String>> {
+        self.rows(
+            "SELECT provenance FROM steps WHERE provenance IS NOT NULL",
+            &[],
+        )?
+        .iter()
+        .map(|r| r.text(0))
+        .collect()
+    }
+
     /// The versions a step produced, in order.
     pub fn step_outputs(&self, step_id: i64) -> Result<Vec<Version>> {
         self.query_versions(STEP_OUTPUTS, vals![step_id])
