@@ -190,6 +190,21 @@ fn put_text(out: &mut Vec<u8>, s: &str) {
     out.extend_from_slice(s.as_bytes());
 }
 
+/// Runs in output order, each as the difference of its output start from the previous run's
+/// end, the zigzag difference of its input start from the previous run's input end, and its
+/// length; the first run's differences taken from 0.
+fn put_runs(out: &mut Vec<u8>, runs: &[RowRun]) {
+    let (mut out_end, mut in_end) = (0u64, 0u64);
+    for r in runs {
+        put_varint(out, r.out_start - out_end);
+        let d = r.in_start as i64 - in_end as i64;
+        put_varint(out, ((d << 1) ^ (d >> 63)) as u64);
+        put_varint(out, r.len);
+        out_end = r.out_start + r.len;
+        in_end = r.in_start + r.len;
+    }
+}
+
 /// The object's bytes for a step's changes (named by `header`, the output columns), drops and
 /// row maps (each with the position of its input among the step's inputs).
 pub fn encode(
@@ -213,15 +228,7 @@ pub fn encode(
         let mut blocks = Vec::new();
         for block in set.chunks(RUNS_PER_BLOCK) {
             table.extend_from_slice(&block[0].out_start.to_le_bytes());
-            let (mut out_end, mut in_end) = (0u64, 0u64);
-            for r in block {
-                put_varint(&mut blocks, r.out_start - out_end);
-                let d = r.in_start as i64 - in_end as i64;
-                put_varint(&mut blocks, ((d << 1) ^ (d >> 63)) as u64);
-                put_varint(&mut blocks, r.len);
-                out_end = r.out_start + r.len;
-                in_end = r.in_start + r.len;
-            }
+            put_runs(&mut blocks, block);
             table.extend_from_slice(&(blocks.len() as u64).to_le_bytes());
         }
         run_bytes.extend_from_slice(&table);
@@ -1133,15 +1140,7 @@ mod tests {
         for (position, set) in runs {
             put_varint(&mut run_bytes, u64::from(*position));
             put_varint(&mut run_bytes, set.len() as u64);
-            let (mut out_end, mut in_end) = (0u64, 0u64);
-            for r in set.iter() {
-                put_varint(&mut run_bytes, r.out_start - out_end);
-                let d = r.in_start as i64 - in_end as i64;
-                put_varint(&mut run_bytes, ((d << 1) ^ (d >> 63)) as u64);
-                put_varint(&mut run_bytes, r.len);
-                out_end = r.out_start + r.len;
-                in_end = r.in_start + r.len;
-            }
+            put_runs(&mut run_bytes, set);
         }
         let mut out = MAGIC.to_vec();
         out.extend_from_slice(&FORMAT_SEQUENTIAL.to_le_bytes());
