@@ -1237,6 +1237,37 @@ mod tests {
         );
     }
 
+    proptest::proptest! {
+        /// The law of format 2: for any row map (runs of any lengths, input starts that jump
+        /// back and forth, as a sort or dedupe makes them) and any row, the one-row reader
+        /// gives what the whole map gives, and the whole decode gives the map back; in both
+        /// formats.
+        #[test]
+        fn one_row_reads_agree_with_the_whole_map(
+            runs in proptest::collection::vec((0u64..4, 0u64..5_000, 1u64..6), 0..700),
+            rows in proptest::collection::vec(0u64..3_000, 1..40),
+        ) {
+            let mut set = Vec::with_capacity(runs.len());
+            let mut out = 0u64;
+            for (gap, in_start, len) in runs {
+                out += gap;
+                set.push(RowRun { out_start: out, in_start, len });
+                out += len;
+            }
+            let sets: [(u32, &[RowRun]); 1] = [(3, &set)];
+            let blocked = encode(&[], &ChangeLog::new(0), &DropLog::default(), &sets);
+            let old = sequential(&sets);
+            proptest::prop_assert_eq!(&decode(&blocked, "t").unwrap().runs, &vec![(3, set.clone())]);
+            proptest::prop_assert_eq!(&decode(&old, "t").unwrap().runs, &vec![(3, set.clone())]);
+            for row in rows {
+                let expected = crate::model::input_of(&set, row);
+                proptest::prop_assert_eq!(find(&blocked, &|p| p == 3, row).unwrap(), expected);
+                proptest::prop_assert_eq!(find(&old, &|p| p == 3, row).unwrap(), expected);
+                proptest::prop_assert_eq!(find(&blocked, &|p| p == 0, row).unwrap(), None);
+            }
+        }
+    }
+
     #[test]
     fn damaged_blocks_are_refused_or_misread_without_a_panic() {
         let runs = filter_runs(1_000, |i| i % 2 == 0 || i % 5 == 0);
