@@ -28,6 +28,10 @@ pub const MIGRATIONS: &[(i64, &str)] = &[
     (6, include_str!("../../schema/postgres/0006_lineage.sql")),
     (7, include_str!("../../schema/postgres/0007_erasure.sql")),
     (8, include_str!("../../schema/postgres/0008_row_salts.sql")),
+    (
+        9,
+        include_str!("../../schema/postgres/0009_blocked_run_sets.sql"),
+    ),
 ];
 
 /// The advisory lock every write transaction takes first: the bytes of `sluice-w`.

@@ -22,6 +22,7 @@ pub const MIGRATIONS: &[(i64, &str)] = &[
     (6, include_str!("../../schema/0006_storage.sql")),
     (7, include_str!("../../schema/0007_erasure.sql")),
     (8, include_str!("../../schema/0008_row_salts.sql")),
+    (9, include_str!("../../schema/0009_blocked_run_sets.sql")),
 ];
 
 /// How long a command waits for another command's write transaction before giving up.

@@ -1,0 +1,8 @@
+-- sluice lineage database, schema version 9.
+--
+-- No table changes. From this version on, a step's provenance object may be of format 2: its
+-- run sets in blocks of 128 runs behind a table, so that a trail reads one block (see
+-- DEVELOPERS.md, "On-disk format"). A build of schema 8 reads only format 1 and would report
+-- every newer provenance object as damaged; the version number makes it refuse the store
+-- instead ("written by a newer sluice"). Objects of format 1 stay as they are and are read as
+-- before.

@@ -1,0 +1,2 @@
+-- sluice lineage database on a PostgreSQL server, schema version 9: no table changes; the
+-- number marks that provenance objects of format 2 may follow (see the SQLite migration 0009).
