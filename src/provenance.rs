@@ -144,11 +144,7 @@ impl DropLog {
 
     /// Every drop, in order of input row.
     pub fn drops(&self) -> Vec<Drop> {
-        let mut r = Reader {
-            bytes: &self.entries,
-            at: 0,
-            what: "being written",
-        };
+        let mut r = Reader::new(&self.entries, 0, "being written");
         let mut row = 0u64;
         let mut out = Vec::with_capacity(self.n);
         for _ in 0..self.n {
@@ -293,15 +289,31 @@ struct Reader<'a> {
     bytes: &'a [u8],
     at: usize,
     what: &'a str,
+    /// Where `bytes` start in the object (a part read by offset), for the byte errors name.
+    base: u64,
 }
 
-impl Reader<'_> {
+/// The error for provenance object `what`, malformed at byte `at` of it.
+fn malformed(what: &str, at: u64, why: &str) -> Error {
+    ErrorKind::Inconsistent(format!(
+        "the provenance object {what} is malformed at byte {at} ({why}); run `sluice verify`"
+    ))
+    .into()
+}
+
+impl<'a> Reader<'a> {
+    /// A reader of `bytes`, which are the object's bytes from offset `base`.
+    fn new(bytes: &'a [u8], base: u64, what: &'a str) -> Self {
+        Reader {
+            bytes,
+            at: 0,
+            what,
+            base,
+        }
+    }
+
     fn bad(&self, why: &str) -> Error {
-        ErrorKind::Inconsistent(format!(
-            "the provenance object {} is malformed at byte {} ({why}); run `sluice verify`",
-            self.what, self.at
-        ))
-        .into()
+        malformed(self.what, self.base + self.at as u64, why)
     }
 
     fn varint(&mut self) -> Result<u64> {
@@ -347,7 +359,7 @@ impl Reader<'_> {
 
 /// Reads a provenance object; `what` names it in errors.
 pub fn decode(bytes: &[u8], what: &str) -> Result<Decoded> {
-    let mut r = Reader { bytes, at: 0, what };
+    let mut r = Reader::new(bytes, 0, what);
     if bytes.len() < HEADER_LEN || &bytes[..4] != MAGIC {
         return Err(r.bad("it does not start with SLPV"));
     }
@@ -573,11 +585,7 @@ fn find_input_row(
     row: u64,
 ) -> Result<Option<u64>> {
     let head = read(0, HEADER_LEN)?;
-    let r = Reader {
-        bytes: &head,
-        at: 0,
-        what,
-    };
+    let r = Reader::new(&head, 0, what);
     if head.len() < HEADER_LEN || &head[..4] != MAGIC {
         return Err(r.bad("it does not start with SLPV"));
     }
@@ -605,28 +613,15 @@ fn find_input_row(
     };
     let mut at = HEADER_LEN as u64;
     let first = window(read, at)?;
-    let mut r = Reader {
-        bytes: &first,
-        at: 0,
-        what,
-    };
+    let mut r = Reader::new(&first, at, what);
     let n_sets = r.varint()?;
     at += r.at as u64;
     for _ in 0..n_sets {
         if at >= end {
-            return Err(Reader {
-                bytes: &[],
-                at: at as usize,
-                what,
-            }
-            .bad("a run set runs past the end"));
+            return Err(malformed(what, at, "a run set runs past the end"));
         }
         let bytes = window(read, at)?;
-        let mut r = Reader {
-            bytes: &bytes,
-            at: 0,
-            what,
-        };
+        let mut r = Reader::new(&bytes, at, what);
         let (position, n, per_block, n_blocks) = set_head(&mut r, end - at)?;
         let table_at = at + r.at as u64;
         let blocks_at = table_at + (n_blocks * BLOCK_ENTRY) as u64;
@@ -637,14 +632,7 @@ fn find_input_row(
             at = blocks_at;
             continue;
         }
-        let damaged = |why: &str| {
-            Reader {
-                bytes: &[],
-                at: table_at as usize,
-                what,
-            }
-            .bad(why)
-        };
+        let damaged = |why: &str| malformed(what, table_at, why);
         if !wanted(position) {
             // Only the last entry: where this set's blocks end.
             let last = read(
@@ -691,11 +679,7 @@ fn find_input_row(
                 return Err(damaged("a block ends before it starts"));
             }
             let block = read(blocks_at + start, (stop - start) as usize)?;
-            let mut r = Reader {
-                bytes: &block,
-                at: 0,
-                what,
-            };
+            let mut r = Reader::new(&block, blocks_at + start, what);
             let count = per_block.min(n - k * per_block);
             let mut runs = Vec::with_capacity(count.min(block.len() / 3));
             runs_from(&mut r, count, 0, &mut runs)?;
@@ -714,11 +698,7 @@ fn find_input_row(
 /// Reads the run sets of a provenance object from its first bytes alone (the header and the
 /// run sets): what a trail needs, without the changed cells and drops after them.
 pub fn decode_runs(prefix: &[u8], what: &str) -> Result<RunSets> {
-    let mut r = Reader {
-        bytes: prefix,
-        at: 0,
-        what,
-    };
+    let mut r = Reader::new(prefix, 0, what);
     if prefix.len() < HEADER_LEN || &prefix[..4] != MAGIC {
         return Err(r.bad("it does not start with SLPV"));
     }
@@ -1235,6 +1215,27 @@ mod tests {
             "{read} of {} bytes read",
             blocked.len()
         );
+    }
+
+    #[test]
+    fn errors_name_the_byte_of_the_object_not_of_the_part_read() {
+        let runs = filter_runs(1_000, |i| i % 2 == 0 || i % 5 == 0);
+        let mut bytes = encode(
+            &[],
+            &ChangeLog::new(0),
+            &DropLog::default(),
+            &[(0, &runs[..])],
+        );
+        let runs_end = 16 + u64::from_le_bytes(bytes[8..16].try_into().unwrap()) as usize;
+        // The last run's length, the last byte of the run sets, made 0.
+        assert!(bytes[runs_end - 1] < 0x80);
+        bytes[runs_end - 1] = 0;
+        let last_row = runs.last().map(|r| r.out_start).unwrap();
+        let whole = decode(&bytes, "t").unwrap_err().to_string();
+        let one = find(&bytes, &|_| true, last_row).unwrap_err().to_string();
+        let named = format!("at byte {runs_end} (a run of no rows)");
+        assert!(whole.contains(&named), "{whole}");
+        assert!(one.contains(&named), "{one}");
     }
 
     proptest::proptest! {
