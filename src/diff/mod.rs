@@ -775,11 +775,12 @@ mod tests {
     use crate::model::Agent;
 
     /// Two versions of one keyed table with changed, removed, added, quoted and repeated-key
-    /// rows, a multi-line cell and CRLF line endings in the second.
+    /// rows, a multi-line cell and CRLF line endings in the second; about a megabyte each, so
+    /// that each is stored in several frames and rows cross from one frame into the next.
     fn two_versions(dir: &std::path::Path) -> (Store, Version, Version) {
         let mut first = String::from("id,shop,amount,note\n");
         let mut second = String::from("id,shop,amount,note\r\n");
-        for i in 0..3000u32 {
+        for i in 0..30_000u32 {
             let note = match i % 5 {
                 0 => "\"said \"\"later\"\"\"".to_string(),
                 1 => "\"two\nlines\"".to_string(),
@@ -851,6 +852,7 @@ mod tests {
             (&by_key, Listing::First(25)),
             (&by_order, Listing::All),
         ] {
+            assert!(a.n_bytes > 3 * u64::from(crate::store::segments::FRAME_SIZE));
             let kept = diff_keeping(&store, &a, &b, opts, list, u64::MAX).unwrap();
             let again = diff_keeping(&store, &a, &b, opts, list, 0).unwrap();
             assert_eq!(format!("{kept:?}"), format!("{again:?}"));

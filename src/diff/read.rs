@@ -10,6 +10,7 @@ use crate::error::{Error, ErrorKind, Result};
 use crate::hash::Hash;
 use crate::model::Version;
 use crate::store::objects::Objects;
+use crate::store::segments::Pieces;
 use crate::table::parse::Parser;
 use crate::table::rowindex::{self, ENTRY_LEN, HEADER_LEN};
 use crate::table::RawRecord;
@@ -26,13 +27,20 @@ struct Hashing<R> {
     progress: Option<crate::progress::Task>,
 }
 
+impl<R> Hashing<R> {
+    /// Hashes bytes read past the inner reader (and counts them).
+    fn saw(&mut self, bytes: &[u8]) {
+        self.hasher.update(bytes);
+        if let Some(p) = &mut self.progress {
+            p.add(bytes.len() as u64);
+        }
+    }
+}
+
 impl<R: Read> Read for Hashing<R> {
     fn read(&mut self, buf: &mut [u8]) -> std::io::Result<usize> {
         let n = self.inner.read(buf)?;
-        self.hasher.update(&buf[..n]);
-        if let Some(p) = &mut self.progress {
-            p.add(n as u64);
-        }
+        self.saw(&buf[..n]);
         Ok(n)
     }
 }
@@ -371,27 +379,79 @@ pub fn cuttable(v: &Version) -> bool {
 /// objects again, so memory stays bounded.
 pub const KEEP_BYTES: u64 = 256 << 20;
 
-/// A version's whole bytes, read once and kept for a later pass.
-#[derive(Debug)]
-pub struct Kept(Vec<u8>);
+/// A version's whole bytes, read once and kept for a later pass: the pieces the object was
+/// read in (a segment object's frames, each where its decoding thread put it: nothing is
+/// copied, and the kernel's first touch of that memory happens on the decoding threads), and
+/// where each starts.
+#[derive(Debug, Default)]
+pub struct Kept {
+    pieces: Vec<Vec<u8>>,
+    /// Where each piece starts in the version's bytes.
+    starts: Vec<u64>,
+    len: u64,
+}
 
 impl Kept {
-    fn new(len: usize) -> Kept {
-        // Zeroed memory from the allocator: for a large block, fresh pages the kernel zeroes
-        // as they are first written, so nothing is written twice.
-        Kept(vec![0u8; len])
+    fn push(&mut self, piece: Vec<u8>) {
+        self.starts.push(self.len);
+        self.len += piece.len() as u64;
+        self.pieces.push(piece);
     }
 
-    fn bytes_mut(&mut self) -> &mut [u8] {
-        &mut self.0
+    /// How many bytes are kept.
+    pub fn len(&self) -> u64 {
+        self.len
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.len == 0
+    }
+
+    /// Where bytes `from..to` (non-empty, within [`Self::len`]) lie: within one piece, or
+    /// across several ([`Held::Spill`], after copying them into `spill`). `at` is the piece the
+    /// last call found: rows are mostly asked for in order, so the next is that one or the one
+    /// after.
+    fn locate(&self, from: u64, to: u64, at: &mut usize, spill: &mut Vec<u8>) -> Held {
+        let holds = |c: usize| {
+            c < self.pieces.len()
+                && self.starts[c] <= from
+                && from < self.starts[c] + self.pieces[c].len() as u64
+        };
+        let c = if holds(*at) {
+            *at
+        } else if holds(*at + 1) {
+            *at + 1
+        } else {
+            self.starts
+                .partition_point(|&s| s <= from)
+                .saturating_sub(1)
+        };
+        *at = c;
+        let (start, piece) = (self.starts[c], &self.pieces[c]);
+        if to <= start + piece.len() as u64 {
+            return Held::Piece(c, (from - start) as usize, (to - start) as usize);
+        }
+        // A row that crosses from one piece into the next: copied apart.
+        spill.clear();
+        let mut k = c;
+        while (spill.len() as u64) < to - from {
+            let (s, p) = (self.starts[k], &self.pieces[k]);
+            let a = from.max(s) - s;
+            let b = to.min(s + p.len() as u64) - s;
+            spill.extend_from_slice(&p[a as usize..b as usize]);
+            k += 1;
+        }
+        Held::Spill
     }
 }
 
-impl std::ops::Deref for Kept {
-    type Target = [u8];
-    fn deref(&self) -> &[u8] {
-        &self.0
-    }
+/// Where a row [`RawRows::fill`] found lies: in the reading buffer, in a kept piece, or in the
+/// spill buffer a row crossing two kept pieces was copied into.
+#[derive(Debug, Clone, Copy)]
+enum Held {
+    Buf(usize, usize),
+    Piece(usize, usize, usize),
+    Spill,
 }
 
 /// What a diff's first pass leaves for its second about one version: the byte offset of every
@@ -430,29 +490,36 @@ pub struct RawRows {
     /// One parser for every row parsed (restarted per row, never built again).
     parser: Parser,
     label: String,
-    /// Where every byte read stays (from the object's first byte, `filled` of them), for
-    /// [`RawRows::done`]; `buf` is then unused.
+    /// Where every byte read stays, for [`RawRows::done`], read from `pieces` (and hashed by
+    /// `reader`'s hasher); `buf` is then unused.
     keeping: Option<Kept>,
+    pieces: Option<Box<dyn Pieces>>,
     /// The version's bytes, kept by an earlier pass: rows are cut out of them instead.
     kept: Option<Arc<Kept>>,
+    /// The kept piece the last row was found in, and where a row crossing pieces is copied.
+    piece_at: usize,
+    spill: Vec<u8>,
 }
 
 impl RawRows {
     pub fn new(objects: &Objects, v: &Version, offsets: impl Into<Arc<[u64]>>) -> Result<RawRows> {
         let hash = parse_hash(&v.hash)?;
         let inner = objects.open_raw(&hash)?;
-        let progress = crate::progress::Task::begin(
-            || format!("comparing {}", v.label()),
-            Some(v.n_bytes),
-            crate::progress::Unit::Bytes,
-        );
         Ok(RawRows::over(
             v,
             hash,
             offsets.into(),
             inner,
-            Some(progress),
+            Some(Self::progress(v)),
         ))
+    }
+
+    fn progress(v: &Version) -> crate::progress::Task {
+        crate::progress::Task::begin(
+            || format!("comparing {}", v.label()),
+            Some(v.n_bytes),
+            crate::progress::Unit::Bytes,
+        )
     }
 
     /// Rows of `v` read from `inner` (nothing, for kept bytes).
@@ -478,7 +545,10 @@ impl RawRows {
             parser: Parser::new(v.dialect.delimiter_byte(), 0),
             label: v.label(),
             keeping: None,
+            pieces: None,
             kept: None,
+            piece_at: 0,
+            spill: Vec::new(),
         }
     }
 
@@ -489,9 +559,17 @@ impl RawRows {
         if !keep || cut.kept.is_some() {
             return RawRows::cut(objects, v, cut);
         }
-        let mut raw = RawRows::new(objects, v, Arc::clone(&cut.offsets))?;
-        let len = usize::try_from(v.n_bytes).map_err(|_| raw.short())?;
-        raw.keeping = Some(Kept::new(len));
+        let hash = parse_hash(&v.hash)?;
+        let pieces = objects.open_pieces(&hash)?;
+        let mut raw = RawRows::over(
+            v,
+            hash,
+            Arc::clone(&cut.offsets),
+            Box::new(std::io::empty()),
+            Some(Self::progress(v)),
+        );
+        raw.keeping = Some(Kept::default());
+        raw.pieces = Some(pieces);
         Ok(raw)
     }
 
@@ -509,57 +587,60 @@ impl RawRows {
             None,
         );
         raw.kept = Some(Arc::clone(bytes));
-        if bytes.len() as u64 != v.n_bytes {
+        if bytes.len() != v.n_bytes {
             return Err(raw.short());
         }
         Ok(raw)
     }
 
-    /// The bytes rows are cut out of.
-    fn data(&self) -> &[u8] {
-        held(&self.kept, &self.keeping, &self.buf)
+    /// The bytes [`Self::fill`] found.
+    fn data(&self, at: Held) -> &[u8] {
+        held(at, &self.kept, &self.keeping, &self.buf, &self.spill)
     }
 
     /// The bytes of row `row` (its record, line ending and any blank lines after it). Rows
     /// must be asked for in increasing order.
     pub fn bytes(&mut self, row: u64) -> Result<&[u8]> {
-        let (from, to) = self.fill(row)?;
-        Ok(&self.data()[from..to])
+        let at = self.fill(row)?;
+        Ok(self.data(at))
     }
 
-    /// Reads until row `row` is whole in the buffer; returns where it lies there.
-    fn fill(&mut self, row: u64) -> Result<(usize, usize)> {
+    /// Reads until row `row` is whole in the buffer (or kept); returns where it lies.
+    fn fill(&mut self, row: u64) -> Result<Held> {
         let i = row as usize;
         let (Some(&start), end) = (self.offsets.get(i), self.offsets.get(i + 1)) else {
             return Err(self.short());
         };
         let end = end.copied().unwrap_or(self.n_bytes);
-        if start < self.buf_start || end < start {
+        if start < self.buf_start || end < start || end > self.n_bytes {
             return Err(self.short());
         }
-        let whole = |len: usize| match (usize::try_from(start), usize::try_from(end)) {
-            (Ok(s), Ok(e)) if e <= len => Some((s, e)),
-            _ => None,
-        };
-        if let Some(k) = &self.kept {
-            return whole(k.len()).ok_or_else(|| self.short());
-        }
         if let Some(k) = &mut self.keeping {
-            // Every byte stays where it was read, the object's first at 0.
-            let Some((s, e)) = whole(k.len()) else {
-                return Err(self.short());
-            };
-            while self.filled < e {
-                let n = self
-                    .reader
-                    .read(&mut k.bytes_mut()[self.filled..])
-                    .map_err(|e| Error::io(Path::new(&self.label), e))?;
-                if n == 0 {
-                    return Err(self.short());
-                }
-                self.filled += n;
+            // Every piece stays as it was read.
+            let pieces = self.pieces.as_mut().ok_or_else(|| {
+                Error::from(ErrorKind::Inconsistent(
+                    "a reader keeping bytes has nothing to read them from".into(),
+                ))
+            })?;
+            while k.len() < end {
+                let piece = pieces
+                    .next_piece()
+                    .map_err(|e| Error::io(Path::new(&self.label), e))?
+                    .ok_or_else(|| short(&self.label))?;
+                self.reader.saw(&piece);
+                k.push(piece);
             }
-            return Ok((s, e));
+        }
+        let kept = self.kept.as_deref().or(self.keeping.as_ref());
+        if let Some(k) = kept {
+            if end > k.len() {
+                return Err(self.short());
+            }
+            if start == end {
+                self.spill.clear();
+                return Ok(Held::Spill);
+            }
+            return Ok(k.locate(start, end, &mut self.piece_at, &mut self.spill));
         }
         // Read until the row is whole, first dropping what lies before it (only then, so that
         // the buffer moves once per piece read, not once per row).
@@ -585,7 +666,7 @@ impl RawRows {
         }
         let from = (start - self.buf_start) as usize;
         let to = (end - self.buf_start) as usize;
-        Ok((from, to))
+        Ok(Held::Buf(from, to))
     }
 
     /// Parses row `row` into `out`.
@@ -595,8 +676,8 @@ impl RawRows {
 
     /// Parses row `row` and calls `f` with its record.
     pub fn with_record(&mut self, row: u64, f: impl FnOnce(&RawRecord<'_>)) -> Result<()> {
-        let (from, to) = self.fill(row)?;
-        let bytes = &held(&self.kept, &self.keeping, &self.buf)[from..to];
+        let at = self.fill(row)?;
+        let bytes = held(at, &self.kept, &self.keeping, &self.buf, &self.spill);
         let p = &mut self.parser;
         p.restart(0);
         let mut f = Some(f);
@@ -624,9 +705,9 @@ impl RawRows {
         last: usize,
         ends: &mut Vec<usize>,
     ) -> Result<Option<&'s [u8]>> {
-        let (from, to) = self.fill(row)?;
+        let at = self.fill(row)?;
         let delimiter = self.parser.delimiter();
-        let bytes = &self.data()[from..to];
+        let bytes = self.data(at);
         ends.clear();
         for (i, &c) in bytes.iter().enumerate() {
             if c == delimiter {
@@ -650,9 +731,9 @@ impl RawRows {
         row: u64,
         ends: &mut Vec<usize>,
     ) -> Result<Option<&'s [u8]>> {
-        let (from, to) = self.fill(row)?;
+        let at = self.fill(row)?;
         let delimiter = self.parser.delimiter();
-        let bytes = &self.data()[from..to];
+        let bytes = self.data(at);
         let rec = match memchr::memchr2(b'\r', b'\n', bytes) {
             Some(e) => &bytes[..e],
             None => bytes,
@@ -700,23 +781,19 @@ impl RawRows {
     /// [`Self::finish`], handing over the version's whole bytes (checked) when this reader
     /// kept them ([`Self::open`]), for [`Cut::kept`].
     pub fn done(mut self) -> Result<Option<Arc<Kept>>> {
-        let Some(mut kept) = self.keeping.take() else {
+        let (Some(mut kept), Some(mut pieces)) = (self.keeping.take(), self.pieces.take()) else {
             return self.finish().map(|()| None);
         };
         let io = |e| Error::io(Path::new(&self.label), e);
-        while self.filled < kept.len() {
-            let n = self
-                .reader
-                .read(&mut kept.bytes_mut()[self.filled..])
-                .map_err(io)?;
-            if n == 0 {
-                return Err(self.short());
-            }
-            self.filled += n;
-        }
         // Nothing may follow the recorded length.
-        let mut probe = [0u8; 1];
-        if self.reader.read(&mut probe).map_err(io)? != 0 {
+        while kept.len() <= self.n_bytes {
+            let Some(piece) = pieces.next_piece().map_err(io)? else {
+                break;
+            };
+            self.reader.saw(&piece);
+            kept.push(piece);
+        }
+        if kept.len() != self.n_bytes {
             return Err(self.short());
         }
         check_hash(&self.hash, &self.reader.hasher)?;
@@ -724,22 +801,35 @@ impl RawRows {
     }
 
     fn short(&self) -> Error {
-        ErrorKind::Inconsistent(format!(
-            "the bytes of {} do not match its row index; run `sluice verify`",
-            self.label
-        ))
-        .into()
+        short(&self.label)
     }
+}
+
+/// The error for a version whose bytes do not match its row index.
+fn short(label: &str) -> Error {
+    ErrorKind::Inconsistent(format!(
+        "the bytes of {label} do not match its row index; run `sluice verify`"
+    ))
+    .into()
 }
 
 /// The bytes a [`RawRows`] cuts its rows out of: those an earlier pass kept, those this pass
 /// keeps, or its reading buffer (a function of the fields, so that the parser can be borrowed
 /// beside them).
-fn held<'h>(kept: &'h Option<Arc<Kept>>, keeping: &'h Option<Kept>, buf: &'h [u8]) -> &'h [u8] {
-    match (kept, keeping) {
-        (Some(k), _) => k,
-        (None, Some(k)) => k,
-        (None, None) => buf,
+fn held<'h>(
+    at: Held,
+    kept: &'h Option<Arc<Kept>>,
+    keeping: &'h Option<Kept>,
+    buf: &'h [u8],
+    spill: &'h [u8],
+) -> &'h [u8] {
+    match at {
+        Held::Buf(from, to) => &buf[from..to],
+        Held::Spill => spill,
+        Held::Piece(c, from, to) => match kept.as_deref().or(keeping.as_ref()) {
+            Some(k) => &k.pieces[c][from..to],
+            None => &[],
+        },
     }
 }
 
@@ -781,4 +871,46 @@ pub fn rows_at(
         Ok(())
     })?;
     Ok(out)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Kept pieces give every range of bytes exactly as one contiguous buffer would, whether
+    /// it lies in one piece or crosses two or more, asked for in order or not.
+    #[test]
+    fn kept_pieces_give_every_range_as_one_buffer_would() {
+        let whole: Vec<u8> = (0..=255u8).cycle().take(97).collect();
+        let mut sevens = vec![7; 13];
+        sevens.push(6);
+        for sizes in [vec![97], vec![1, 96], vec![40, 1, 1, 30, 25], sevens] {
+            assert_eq!(sizes.iter().sum::<usize>(), whole.len());
+            let mut kept = Kept::default();
+            let mut at = 0;
+            for n in &sizes {
+                kept.push(whole[at..at + n].to_vec());
+                at += n;
+            }
+            assert_eq!(kept.len(), whole.len() as u64);
+            let (mut piece, mut spill) = (0, Vec::new());
+            let mut ranges = Vec::new();
+            for from in 0..whole.len() {
+                for to in from + 1..=whole.len() {
+                    ranges.push((from, to));
+                }
+            }
+            // In order, then backwards.
+            let backwards: Vec<_> = ranges.iter().rev().copied().collect();
+            for (from, to) in ranges.into_iter().chain(backwards) {
+                let at = kept.locate(from as u64, to as u64, &mut piece, &mut spill);
+                let got = match at {
+                    Held::Piece(c, a, b) => &kept.pieces[c][a..b],
+                    Held::Spill => &spill[..],
+                    Held::Buf(..) => panic!("kept bytes found in the reading buffer"),
+                };
+                assert_eq!(got, &whole[from..to], "{sizes:?} {from}..{to}");
+            }
+        }
+    }
 }

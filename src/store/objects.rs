@@ -41,6 +41,12 @@ pub const SYNC_EVERY: u64 = 32 << 20;
 pub trait ObjectBackend: Send + Sync {
     fn create_temp(&self) -> io::Result<Box<dyn TempObject>>;
     fn open(&self, hash: &Hash) -> io::Result<Box<dyn Read + Send>>;
+    /// Opens an object to be read whole as owned pieces, for a reader that keeps every byte
+    /// (no copy into its own buffer). The default cuts what [`Self::open`] reads into pieces;
+    /// the real backend hands over a segment object's decoded frames as they are.
+    fn open_pieces(&self, hash: &Hash) -> io::Result<Box<dyn segments::Pieces>> {
+        Ok(Box::new(segments::ReadPieces(self.open(hash)?)))
+    }
     /// Reads up to `buf.len()` bytes of object `hash` from `offset`; fewer only at the end. The
     /// default reads from the start and skips; a backend that can seek does better.
     fn read_at(&self, hash: &Hash, offset: u64, buf: &mut [u8]) -> io::Result<usize> {
@@ -887,6 +893,21 @@ impl ObjectBackend for FsBackend {
         Ok(Box::new(File::open(p)?))
     }
 
+    fn open_pieces(&self, hash: &Hash) -> io::Result<Box<dyn segments::Pieces>> {
+        if let Some(r) = self.shared.with_object(hash, |file, table| {
+            if table.raw.len() > 2 {
+                Ok(Box::new(segments::AheadReader::new(file, table)?) as Box<dyn segments::Pieces>)
+            } else {
+                Ok(Box::new(segments::ReadPieces(segments::FrameReader::new(
+                    file, table,
+                )?)) as Box<dyn segments::Pieces>)
+            }
+        })? {
+            return Ok(r);
+        }
+        Ok(Box::new(segments::ReadPieces(self.open(hash)?)))
+    }
+
     fn exists(&self, hash: &Hash) -> bool {
         if self.shared.locate(hash).is_some() {
             return true;
@@ -1354,9 +1375,25 @@ impl Objects {
     /// Opens an object for reading without checking its hash (callers that stream large objects
     /// check the hash themselves, or rely on `verify`).
     pub fn open_raw(&self, hash: &Hash) -> Result<Box<dyn Read + Send>> {
+        self.opened(hash, |from, hash| from.open(hash))
+    }
+
+    /// [`Self::open_raw`] as owned pieces ([`ObjectBackend::open_pieces`]), for a reader that
+    /// keeps every byte it reads; the hash is not checked either.
+    pub fn open_pieces(&self, hash: &Hash) -> Result<Box<dyn segments::Pieces>> {
+        self.opened(hash, |from, hash| from.open_pieces(hash))
+    }
+
+    /// `open` applied to the backend that holds object `hash` (its erased form, if any), a
+    /// missing object named as such.
+    fn opened<T>(
+        &self,
+        hash: &Hash,
+        open: impl FnOnce(&dyn ObjectBackend, &Hash) -> io::Result<T>,
+    ) -> Result<T> {
         let hash = &self.form_of(hash);
         let from = self.find(hash)?;
-        from.open(hash).map_err(|e| {
+        open(from, hash).map_err(|e| {
             if e.kind() == io::ErrorKind::NotFound {
                 ErrorKind::ObjectMissing { hash: hash.hex() }.into()
             } else {

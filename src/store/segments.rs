@@ -560,32 +560,79 @@ impl AheadReader {
     }
 }
 
+impl AheadReader {
+    /// The next decoded frame, taken off its decoding thread, in order; `None` at the end.
+    fn take(&mut self) -> io::Result<Option<Vec<u8>>> {
+        if self.done || self.next >= self.n_frames {
+            return Ok(None);
+        }
+        match self.frames[self.next % DECODERS].recv() {
+            Ok(frame) => {
+                self.next += 1;
+                frame.inspect_err(|_| self.done = true).map(Some)
+            }
+            Err(_) => {
+                self.done = true;
+                Err(bad(format!(
+                    "frame {} was not decoded (its decoding thread stopped)",
+                    self.next
+                )))
+            }
+        }
+    }
+}
+
+/// An object read as a sequence of owned pieces, in order, for a reader that keeps every byte
+/// it reads ([`crate::diff::read`]): each piece is handed over as it was decoded, never copied
+/// into a buffer of the reader's, so the memory it lies in is first touched on the thread
+/// that decoded it.
+pub trait Pieces: Send {
+    /// The next piece (never empty); `None` at the end of the object.
+    fn next_piece(&mut self) -> io::Result<Option<Vec<u8>>>;
+}
+
+impl Pieces for AheadReader {
+    fn next_piece(&mut self) -> io::Result<Option<Vec<u8>>> {
+        if self.pos < self.out.len() {
+            let rest = self.out.split_off(self.pos);
+            self.pos = self.out.len();
+            return Ok(Some(rest));
+        }
+        // A frame handed over is not given back: its thread decodes the next one into a
+        // fresh buffer.
+        self.take()
+    }
+}
+
+/// Any reader as [`Pieces`] of up to [`PIECE_LEN`] bytes (each read until full or at the end).
+pub struct ReadPieces<R>(pub R);
+
+/// The size of the pieces [`ReadPieces`] hands over: a frame of the default size.
+pub const PIECE_LEN: usize = FRAME_SIZE as usize;
+
+impl<R: Read + Send> Pieces for ReadPieces<R> {
+    fn next_piece(&mut self) -> io::Result<Option<Vec<u8>>> {
+        let mut piece = Vec::with_capacity(PIECE_LEN);
+        (&mut self.0)
+            .take(PIECE_LEN as u64)
+            .read_to_end(&mut piece)?;
+        Ok((!piece.is_empty()).then_some(piece))
+    }
+}
+
 impl Read for AheadReader {
     fn read(&mut self, buf: &mut [u8]) -> io::Result<usize> {
         while self.pos == self.out.len() {
-            if self.done || self.next >= self.n_frames {
+            let Some(frame) = self.take()? else {
                 return Ok(0);
+            };
+            let read = std::mem::replace(&mut self.out, frame);
+            // The frame read before goes back to the thread that decoded it (which may have
+            // stopped: it is then simply dropped).
+            if let Some(back) = (self.next - 1).checked_sub(1).map(|k| k % DECODERS) {
+                let _ = self.spent[back].send(read);
             }
-            match self.frames[self.next % DECODERS].recv() {
-                Ok(frame) => {
-                    let read =
-                        std::mem::replace(&mut self.out, frame.inspect_err(|_| self.done = true)?);
-                    // The frame read before goes back to the thread that decoded it (which
-                    // may have stopped: it is then simply dropped).
-                    if let Some(back) = self.next.checked_sub(1).map(|k| k % DECODERS) {
-                        let _ = self.spent[back].send(read);
-                    }
-                    self.next += 1;
-                    self.pos = 0;
-                }
-                Err(_) => {
-                    self.done = true;
-                    return Err(bad(format!(
-                        "frame {} was not decoded (its decoding thread stopped)",
-                        self.next
-                    )));
-                }
-            }
+            self.pos = 0;
         }
         let n = buf.len().min(self.out.len() - self.pos);
         buf[..n].copy_from_slice(&self.out[self.pos..self.pos + n]);
@@ -747,6 +794,28 @@ mod tests {
             .read_to_end(&mut ahead)
             .unwrap();
         assert_eq!(ahead, first);
+        // Handed over as pieces: the frames as decoded, whole from the start or after a read
+        // that stopped inside one; any reader cut into pieces of the default frame size.
+        let pieces = |p: &mut dyn Pieces| {
+            let mut out = Vec::new();
+            while let Some(piece) = p.next_piece().unwrap() {
+                assert!(!piece.is_empty());
+                out.push(piece);
+            }
+            out
+        };
+        let mut fresh = AheadReader::new(file.try_clone().unwrap(), table.clone()).unwrap();
+        let frames = pieces(&mut fresh);
+        assert_eq!(frames.len(), table.raw.len());
+        assert_eq!(frames.concat(), first);
+        let mut begun = AheadReader::new(file.try_clone().unwrap(), table.clone()).unwrap();
+        let mut head = [0u8; 1500];
+        begun.read_exact(&mut head).unwrap();
+        let rest = pieces(&mut begun);
+        assert_eq!([&head[..], &rest.concat()].concat(), first);
+        let cut = pieces(&mut ReadPieces(&first[..]));
+        assert_eq!(cut.len(), first.len().div_ceil(PIECE_LEN));
+        assert_eq!(cut.concat(), first);
         // Reads by offset, each frame decoded afresh and through a cache of decoded frames
         // (the second read at 1990 is served from it): the same bytes.
         let cache = FrameCache::default();
