@@ -45,6 +45,10 @@ pub struct Explanation {
     pub recomputed: String,
     /// Whether it equals the stored value.
     pub agrees: bool,
+    /// The stored value is kept as published under an erasure order that erased values it
+    /// aggregated: computed again from what the store holds now, it is not expected to agree.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub kept_as_published: Option<crate::erasure::CellErasure>,
     /// The summary's input version.
     pub input: String,
     pub contributing: Contributing,
@@ -251,7 +255,9 @@ pub fn explain(
     };
 
     let upstream = upstream(store, &input, &members, &group, of_column.as_deref(), limit)?;
+    let kept_as_published = crate::erasure::cell_erasure(store, &v, r, column)?;
     Ok(Explanation {
+        kept_as_published,
         version: v.label(),
         hash: v.hash.clone(),
         row: r + 1,

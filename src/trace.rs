@@ -12,6 +12,7 @@ use std::collections::HashMap;
 use serde::Serialize;
 
 use crate::diff::read::{cuttable, rows_of};
+use crate::erasure::{cell_erasure, CellErasure};
 use crate::error::{Error, ErrorKind, Result};
 use crate::model::{StepKind, Version};
 use crate::ops::Operation;
@@ -111,6 +112,9 @@ pub struct Origin {
     pub cell: Option<String>,
     pub stored_kind: Option<String>,
     pub formula: Option<String>,
+    /// The raw cell was erased by an erasure order (`raw_value` is then empty).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub erased: Option<CellErasure>,
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -124,6 +128,10 @@ pub struct Trail {
     /// Newest first.
     pub hops: Vec<Hop>,
     pub end: End,
+    /// The cell was erased by an erasure order (`value` is then empty), or is a summary cell
+    /// kept as published after an order erased values it aggregated.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub erased: Option<CellErasure>,
 }
 
 /// How deep derived columns may branch before the trail stops (a guard against a malformed
@@ -446,6 +454,7 @@ fn follow(
         end: End::Branches {
             sources: Vec::new(),
         },
+        erased: cell_erasure(store, &start, start_row, &start_column)?,
     };
     let (mut v, mut r, mut col) = (start, start_row, start_column);
     loop {
@@ -661,6 +670,7 @@ fn origin(
     step: &crate::model::Step,
 ) -> Result<Origin> {
     let raw_value = rows.cell(store, v, r, column)?;
+    let erased = cell_erasure(store, v, r, column)?;
     let (_, line, bytes) = record_bytes(store, &mut rows.reader, v, r)?;
     // The record without its line ending and the blank lines after it.
     let mut end = bytes.len();
@@ -688,6 +698,7 @@ fn origin(
             cell: place.cell,
             stored_kind: Some(place.stored_kind),
             formula: place.formula,
+            erased,
         });
     }
     Ok(Origin {
@@ -707,6 +718,7 @@ fn origin(
         cell: None,
         stored_kind: None,
         formula: None,
+        erased,
     })
 }
 

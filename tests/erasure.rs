@@ -501,6 +501,67 @@ fn carrying_out_an_order_erases_one_person_everywhere_and_keeps_the_proof_of_the
     assert_contains(&md, "erasure order 1");
     assert!(!md.to_lowercase().contains("rosalind yarlstow"));
 
+    // Every reader gets the erased forms, checked against their own names: a comparison of two
+    // reached versions and a lookup in one (both refused as damaged objects before this was
+    // fixed). The trail of an erased cell, and the explanation of a summary cell kept as
+    // published, name the order instead of showing an empty value as the data's.
+    let compared = s.ok(&["compare", "quillby_orders:v1", "quillby_orders:v2"]);
+    for needle in NEEDLES {
+        assert!(!compared.to_lowercase().contains(needle), "{compared}");
+    }
+    s.ok(&[
+        "clean",
+        "q3_by_shop",
+        "lookup",
+        "--table",
+        "all_orders:v12",
+        "--on",
+        "shop",
+        "--table-on",
+        "order_id",
+        "--take",
+        "email",
+        "--why",
+        "a contact per shop",
+        "--as",
+        "shop_contacts",
+    ]);
+    let (label, rows) = want_erased
+        .iter()
+        .find(|(l, _)| l.starts_with("quillby_orders:v2"))
+        .expect("her row in quillby_orders:v2");
+    let row = (rows.iter().next().unwrap() + 1).to_string();
+    let trail = s.json(&["trace", label, "--row", &row, "--column", "email", "--json"]);
+    assert_schema("trace", &trail);
+    assert_eq!(trail["value"], "");
+    assert_eq!(trail["erased"]["what"], "erased");
+    assert_eq!(trail["erased"]["order"], 1);
+    assert_eq!(trail["end"]["erased"]["what"], "erased");
+    let text = s.ok(&["trace", label, "--row", &row, "--column", "email"]);
+    assert_contains(&text, "erased by erasure order 1 (request 2026-121");
+    let (summary, rows) = want_marked
+        .iter()
+        .next()
+        .expect("a summary kept as published");
+    let column = csv_rows(&s, summary)[0]
+        .keys()
+        .find(|c| c.starts_with("sum_"))
+        .expect("a sum column")
+        .clone();
+    let row = (rows.iter().next().unwrap() + 1).to_string();
+    let why = s.json(&[
+        "explain", summary, "--row", &row, "--column", &column, "--json",
+    ]);
+    assert_schema("explain", &why);
+    assert_eq!(why["agrees"], false, "{why:#}");
+    assert_eq!(why["kept_as_published"]["what"], "kept_as_published");
+    assert_eq!(why["kept_as_published"]["order"], 1);
+    let text = s.ok(&["explain", summary, "--row", &row, "--column", &column]);
+    assert_contains(&text, "kept as published under erasure order 1");
+    assert!(!text.contains("DIFFERS"), "{text}");
+    let report = s.json(&["verify", "--json"]);
+    assert_eq!(report["intact"], true, "{report:#}");
+
     // A guessed value is not confirmable: no salt the store still holds, with her name or
     // address, gives any leaf the store keeps for an erased cell.
     let store = Store::open(&store_dir).unwrap();

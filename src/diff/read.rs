@@ -20,6 +20,23 @@ fn parse_hash(hex: &str) -> Result<Hash> {
         .map_err(|e: String| Error::from(ErrorKind::Inconsistent(e)))
 }
 
+/// The name of the bytes the store reads for object `hex` (an erased version's erased form,
+/// else the object itself), which is what they must hash to.
+fn form(objects: &Objects, hex: &str) -> Result<Hash> {
+    Ok(objects.form_of(&parse_hash(hex)?))
+}
+
+/// The name and length of the bytes the store reads for `v`'s rows: its erased form's after an
+/// erasure (shorter than the bytes recorded), else its own.
+fn stored_bytes(objects: &Objects, v: &Version) -> Result<(Hash, u64)> {
+    let hash = parse_hash(&v.hash)?;
+    if objects.is_erased(&hash) {
+        let form = objects.form_of(&hash);
+        return Ok((form, objects.size(&form)?));
+    }
+    Ok((hash, v.n_bytes))
+}
+
 /// A reader that hashes what passes through it (and reports how far it is, when asked to).
 struct Hashing<R> {
     inner: R,
@@ -91,7 +108,7 @@ pub fn row_index(objects: &Objects, v: &Version) -> Result<(Vec<u64>, Vec<u64>)>
 /// The byte offset of every row of `v` from its row index object (checked against its hash
 /// and its row count), and the fingerprints the object holds if it is of format 1.
 pub fn offsets(objects: &Objects, v: &Version) -> Result<(Option<Vec<u64>>, Vec<u64>)> {
-    let hash = parse_hash(&v.row_index)?;
+    let hash = form(objects, &v.row_index)?;
     let mut reader = Hashing {
         inner: objects.open_raw(&hash)?,
         hasher: blake3::Hasher::new(),
@@ -503,11 +520,11 @@ pub struct RawRows {
 
 impl RawRows {
     pub fn new(objects: &Objects, v: &Version, offsets: impl Into<Arc<[u64]>>) -> Result<RawRows> {
-        let hash = parse_hash(&v.hash)?;
+        let (hash, n_bytes) = stored_bytes(objects, v)?;
         let inner = objects.open_raw(&hash)?;
         Ok(RawRows::over(
             v,
-            hash,
+            (hash, n_bytes),
             offsets.into(),
             inner,
             Some(Self::progress(v)),
@@ -522,10 +539,11 @@ impl RawRows {
         )
     }
 
-    /// Rows of `v` read from `inner` (nothing, for kept bytes).
+    /// Rows of `v` read from `inner` (nothing, for kept bytes), which must be `n_bytes` bytes
+    /// that hash to `hash`.
     fn over(
         v: &Version,
-        hash: Hash,
+        (hash, n_bytes): (Hash, u64),
         offsets: Arc<[u64]>,
         inner: Box<dyn Read + Send>,
         progress: Option<crate::progress::Task>,
@@ -538,7 +556,7 @@ impl RawRows {
             },
             hash,
             offsets,
-            n_bytes: v.n_bytes,
+            n_bytes,
             buf: Vec::new(),
             filled: 0,
             buf_start: 0,
@@ -559,11 +577,11 @@ impl RawRows {
         if !keep || cut.kept.is_some() {
             return RawRows::cut(objects, v, cut);
         }
-        let hash = parse_hash(&v.hash)?;
-        let pieces = objects.open_pieces(&hash)?;
+        let stored = stored_bytes(objects, v)?;
+        let pieces = objects.open_pieces(&stored.0)?;
         let mut raw = RawRows::over(
             v,
-            hash,
+            stored,
             Arc::clone(&cut.offsets),
             Box::new(std::io::empty()),
             Some(Self::progress(v)),
@@ -581,13 +599,13 @@ impl RawRows {
         };
         let mut raw = RawRows::over(
             v,
-            parse_hash(&v.hash)?,
+            stored_bytes(objects, v)?,
             Arc::clone(&cut.offsets),
             Box::new(std::io::empty()),
             None,
         );
         raw.kept = Some(Arc::clone(bytes));
-        if bytes.len() != v.n_bytes {
+        if bytes.len() != raw.n_bytes {
             return Err(raw.short());
         }
         Ok(raw)

@@ -284,3 +284,77 @@ pub fn unreproducible_message(what: &str, blocked: &[Unreproducible]) -> String 
         lines.join("\n")
     )
 }
+
+/// What erasure orders did to one cell of a version, as the commands that show cells say it.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize)]
+pub struct CellErasure {
+    /// `erased`: the value is gone from the store; `kept_as_published`: a summary cell that
+    /// aggregated erased values, kept as it was published and no longer computable again.
+    pub what: &'static str,
+    /// The order that did it, its request and when it was carried out.
+    pub order: i64,
+    pub request: String,
+    pub ordered_at: String,
+}
+
+/// What the orders did to cell (`row`, 0-based data row; `column`) of `v`, if anything: the
+/// first order whose record of `v` names the cell as erased, or as a summary cell kept as
+/// published.
+pub fn cell_erasure(
+    store: &Store,
+    v: &Version,
+    row: u64,
+    column: &str,
+) -> Result<Option<CellErasure>> {
+    let Some(col) = v.header.iter().position(|h| h == column) else {
+        return Ok(None);
+    };
+    if store.lineage.erasure_of_version(v.id)?.is_none() {
+        return Ok(None);
+    }
+    let cell = row
+        .checked_mul(v.header.len() as u64)
+        .and_then(|c| c.checked_add(col as u64));
+    let Some(cell) = cell else {
+        return Ok(None);
+    };
+    let numbers = |b: &[u8], width: usize| -> Vec<u64> {
+        b.chunks_exact(width)
+            .filter_map(|c| c.get(..8)?.try_into().ok().map(u64::from_le_bytes))
+            .collect()
+    };
+    let found = store
+        .lineage
+        .erased_versions()?
+        .into_iter()
+        .filter(|e| e.version_id == v.id)
+        .find_map(|e| {
+            if numbers(&e.kept, 40).contains(&cell) {
+                Some((e.order_id, "erased"))
+            } else if numbers(&e.marked, 8).contains(&cell) {
+                Some((e.order_id, "kept_as_published"))
+            } else {
+                None
+            }
+        });
+    let Some((order, what)) = found else {
+        return Ok(None);
+    };
+    let o = store
+        .lineage
+        .erasure_orders()?
+        .into_iter()
+        .find(|o| o.id == order)
+        .ok_or_else(|| {
+            Error::from(crate::error::ErrorKind::Inconsistent(format!(
+                "erasure order {order}, named by the record of {}, is missing; run `sluice verify`",
+                v.label()
+            )))
+        })?;
+    Ok(Some(CellErasure {
+        what,
+        order,
+        request: o.request,
+        ordered_at: o.ordered_at,
+    }))
+}

@@ -871,12 +871,19 @@ fn load_table(store: &Store, reference: &str, source: Option<TableSource<'_>>) -
             p.label(),
         ),
     };
+    // What the bytes read must hash to: an erased version's bytes are its erased form, checked
+    // against that form's name (the table keeps the version's own name).
+    let mut read_as = hash.clone();
     let reader: Box<dyn Read + Send> = match &source {
-        TableSource::Version(_) => store.objects.open_raw(
-            &hash
-                .parse()
-                .map_err(|e: String| Error::from(ErrorKind::Inconsistent(e)))?,
-        )?,
+        TableSource::Version(_) => {
+            let form = store.objects.form_of(
+                &hash
+                    .parse()
+                    .map_err(|e: String| Error::from(ErrorKind::Inconsistent(e)))?,
+            );
+            read_as = form.hex();
+            store.objects.open_raw(&form)?
+        }
         // Not stored under its name yet: read the file itself, checked against its hash.
         TableSource::Pending(p) => {
             Box::new(std::fs::File::open(p.path()).map_err(|e| Error::io(p.path(), e))?)
@@ -884,7 +891,7 @@ fn load_table(store: &Store, reference: &str, source: Option<TableSource<'_>>) -
     };
     let mut rows = Vec::new();
     let source = crate::table::stored::Source {
-        hash: &hash,
+        hash: &read_as,
         dialect: &dialect,
         label: &label,
         n_bytes: None,
