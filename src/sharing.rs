@@ -72,6 +72,11 @@ fn copy_objects(
         if from.objects.is_left_in_shared(&hash) {
             continue;
         }
+        // An erased version's own bytes and row index are gone; its erased forms are objects
+        // of their own (in this listing), which the copy reads in their place, as this one does.
+        if from.objects.is_erased(&hash) {
+            continue;
+        }
         if to.objects.exists(&hash) {
             moved.objects_present += 1;
             continue;
@@ -270,6 +275,7 @@ pub fn borrow(shared: &Store, project: &Path, datasets: &[String]) -> Result<(St
     let copied = mark_left_in(&mut local, shared, datasets, &leave)
         .and_then(|()| copy(shared, &local, &leave))
         .and_then(|moved| {
+            local.reload_erased_forms()?;
             intact(&local, "the working copy")?;
             Ok(moved)
         });

@@ -610,3 +610,54 @@ fn a_service_file_names_the_server_and_holds_the_password() {
         String::from_utf8_lossy(&out.stderr)
     );
 }
+
+/// A store where an erasure order was carried out publishes like any other: the erased
+/// versions' own objects are gone, so their erased forms go instead (each under its own
+/// name), with the order's records; the shared store and a copy borrowed from it verify intact
+/// with the order named and give back the erased forms, byte for byte the local store's.
+#[test]
+fn a_store_with_an_erasure_publishes_its_erased_forms() {
+    let server = pg::server();
+    let conn = server.new_database("after_erasure");
+    let s = Sandbox::new();
+    s.ok(&["demo", "local"]);
+    s.ok(&[
+        "--store",
+        "local",
+        "erase",
+        "quillby_orders:v1",
+        "--where",
+        "email = 'rosalind.yarlstow@example.org'",
+        "--request",
+        "request 2026-121, filed by the cooperative's data-protection officer",
+        "--carry-out",
+    ]);
+    s.ok(&[
+        "--store",
+        "local",
+        "publish",
+        "--to",
+        "shared",
+        "--lineage-server",
+        &conn,
+    ]);
+    s.ok(&["borrow", "shared", "--into", "copy"]);
+    for store in ["shared", "copy"] {
+        let report: Value =
+            serde_json::from_str(&s.ok(&["--store", store, "verify", "--json"])).unwrap();
+        assert_eq!(report["intact"], true, "{store}: {report:#}");
+        assert_eq!(report["erasure_orders"][0]["order"], 1, "{store}");
+        for version in ["quillby_orders:v1", "all_orders:v12", "reviewed_orders:v2"] {
+            let here = s.ok(&["--store", store, "retrieve", version]);
+            assert_eq!(
+                here,
+                s.ok(&["--store", "local", "retrieve", version]),
+                "{store} {version}"
+            );
+            assert!(
+                !here.contains("rosalind.yarlstow@example.org"),
+                "{store} {version}"
+            );
+        }
+    }
+}

@@ -405,6 +405,13 @@ impl Store {
     }
 
     /// The `sluice-store` folder.
+    /// Reads again which objects are erased versions' own, and their erased forms, after the
+    /// lineage gained erasure records from a copy (`borrow`), so that readers get the forms.
+    pub fn reload_erased_forms(&mut self) -> Result<()> {
+        self.objects.read_erased_forms(erased_forms(&self.lineage)?);
+        Ok(())
+    }
+
     pub fn dir(&self) -> &Path {
         &self.dir
     }
