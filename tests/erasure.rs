@@ -477,6 +477,16 @@ fn carrying_out_an_order_erases_one_person_everywhere_and_keeps_the_proof_of_the
         s.ok(&["retrieve", "reviewed_orders:v2"]).lines().count()
     );
     s.ok(&["identify", "q3-report.md"]);
+    // The raw export, outside the store, is named as still holding what the order erased.
+    let found = s.json(&["identify", "exports/quillby_2026q3.csv", "--json"]);
+    assert_schema("identify", &found);
+    assert_eq!(found["erasures"][0]["version"], "quillby_orders:v1");
+    assert_eq!(found["erasures"][0]["order"], 1);
+    assert_eq!(found["erasures"][0]["cells_erased"], 10);
+    assert_contains(
+        &s.ok(&["identify", "exports/quillby_2026q3.csv"]),
+        "this file still holds what the order erased from the store",
+    );
 
     // Reproducing and re-running say which steps cannot be reproduced past the order, and why.
     let msg = s.fails(1, &["reproduce", "q3_by_shop"]);

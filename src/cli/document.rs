@@ -134,6 +134,10 @@ pub struct Identified<'a> {
     pub deliveries: Vec<sluice::delivery::Delivery>,
     /// The sign-offs over these bytes (a version's or a report's), signatures checked.
     pub sign_offs: Vec<sluice::endorse::SignOff>,
+    /// The erasure orders that reached those versions: the file still holds what they erased
+    /// from the store.
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    pub erasures: Vec<sluice::erasure::VersionErasure>,
 }
 
 #[derive(Serialize)]
@@ -187,6 +191,13 @@ pub fn identify(
         report,
         deliveries,
         sign_offs: sluice::endorse::sign_offs(&store, &hex, true)?,
+        erasures: versions
+            .iter()
+            .map(|v| sluice::erasure::orders_reaching(&store, v))
+            .collect::<sluice::Result<Vec<_>>>()?
+            .into_iter()
+            .flatten()
+            .collect(),
     };
     if as_json {
         json(out, &id)?;
@@ -207,6 +218,27 @@ pub fn identify(
                 shape(v),
                 v.step_id
             )?;
+        }
+        for e in &id.erasures {
+            let order = format!(
+                "erasure order {} ({}, {})",
+                e.order, e.request, e.ordered_at
+            );
+            if e.cells_erased > 0 {
+                writeln!(
+                    out,
+                    "  {} lost {} under {order}: this file still holds what the order erased from the store",
+                    e.version,
+                    plural(e.cells_erased, "cell", "cells"),
+                )?;
+            } else {
+                writeln!(
+                    out,
+                    "  {} keeps {} as published under {order}, which erased values they aggregated",
+                    e.version,
+                    plural(e.cells_kept_as_published, "summary cell", "summary cells"),
+                )?;
+            }
         }
     } else if let Some(r) = &id.report {
         writeln!(

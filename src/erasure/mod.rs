@@ -345,16 +345,64 @@ pub fn cell_erasure(
         .erasure_orders()?
         .into_iter()
         .find(|o| o.id == order)
-        .ok_or_else(|| {
-            Error::from(crate::error::ErrorKind::Inconsistent(format!(
-                "erasure order {order}, named by the record of {}, is missing; run `sluice verify`",
-                v.label()
-            )))
-        })?;
+        .ok_or_else(|| order_missing(order, v))?;
     Ok(Some(CellErasure {
         what,
         order,
         request: o.request,
         ordered_at: o.ordered_at,
     }))
+}
+
+/// One order that reached a version: how many of the version's cells it erased (beyond those
+/// earlier orders erased) and how many summary cells it kept as published.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize)]
+pub struct VersionErasure {
+    pub version: String,
+    pub order: i64,
+    pub request: String,
+    pub ordered_at: String,
+    pub cells_erased: u64,
+    pub cells_kept_as_published: u64,
+}
+
+/// Every order that reached `v`, oldest first (none for a version no order reached).
+pub fn orders_reaching(store: &Store, v: &Version) -> Result<Vec<VersionErasure>> {
+    if store.lineage.erasure_of_version(v.id)?.is_none() {
+        return Ok(Vec::new());
+    }
+    let orders = store.lineage.erasure_orders()?;
+    let mut out: Vec<VersionErasure> = Vec::new();
+    // Each record keeps the erased cells of every order up to its own.
+    let (mut erased_before, mut kept_before) = (0u64, 0u64);
+    for e in store
+        .lineage
+        .erased_versions()?
+        .into_iter()
+        .filter(|e| e.version_id == v.id)
+    {
+        let (erased, kept) = ((e.kept.len() / 40) as u64, (e.marked.len() / 8) as u64);
+        let o = orders
+            .iter()
+            .find(|o| o.id == e.order_id)
+            .ok_or_else(|| order_missing(e.order_id, v))?;
+        out.push(VersionErasure {
+            version: v.label(),
+            order: o.id,
+            request: o.request.clone(),
+            ordered_at: o.ordered_at.clone(),
+            cells_erased: erased.saturating_sub(erased_before),
+            cells_kept_as_published: kept.saturating_sub(kept_before),
+        });
+        (erased_before, kept_before) = (erased.max(erased_before), kept.max(kept_before));
+    }
+    Ok(out)
+}
+
+fn order_missing(order: i64, v: &Version) -> Error {
+    crate::error::ErrorKind::Inconsistent(format!(
+        "erasure order {order}, named by the record of {}, is missing; run `sluice verify`",
+        v.label()
+    ))
+    .into()
 }
