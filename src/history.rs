@@ -156,6 +156,10 @@ pub struct VersionDetail {
     pub sign_offs: Vec<crate::endorse::SignOff>,
     /// Its recorded deliveries (`retrieve --deliver`), oldest first.
     pub deliveries: Vec<crate::delivery::Delivery>,
+    /// The erasure orders that reached it, oldest first: what is read of it is then its
+    /// erased form, never computed from its recipe again.
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    pub erasures: Vec<crate::erasure::VersionErasure>,
 }
 
 /// One recorded check result.
@@ -179,7 +183,9 @@ pub fn about(store: &Store, reference: &str) -> Result<VersionDetail> {
     let checks = checks_of(store, version.id)?;
     let sign_offs = crate::endorse::sign_offs_of_version(store, &version, true)?;
     let deliveries = crate::delivery::of_version(store, &version)?;
+    let erasures = crate::erasure::orders_reaching(store, &version)?;
     Ok(VersionDetail {
+        erasures,
         deliveries,
         checks,
         signed: sign_offs

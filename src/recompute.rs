@@ -491,6 +491,12 @@ pub fn must_stay_stored(store: &Store, v: &Version) -> Result<Option<String>> {
     {
         return Ok(Some(format!("it is the latest version of {}", v.dataset)));
     }
+    if let Some(e) = store.lineage.erasure_of_version(v.id)? {
+        return Ok(Some(format!(
+            "erasure order {} reached it, so what it was computed from lost cells and its erased form is the only copy of the rest",
+            e.order_id
+        )));
+    }
     held_for_people(store, v)
 }
 

@@ -569,6 +569,21 @@ fn carrying_out_an_order_erases_one_person_everywhere_and_keeps_the_proof_of_the
     let text = s.ok(&["explain", summary, "--row", &row, "--column", &column]);
     assert_contains(&text, "kept as published under erasure order 1");
     assert!(!text.contains("DIFFERS"), "{text}");
+    // A reached version's erased form is the only copy of its other cells: it stays stored.
+    let msg = s.fails(2, &["evict", "quillby_orders:v2"]);
+    assert_contains(&msg, "erasure order 1 reached it");
+    s.ok(&["evict", "--all"]);
+    let about = s.json(&["about", "quillby_orders:v2", "--json"]);
+    assert_schema("about", &about);
+    assert_eq!(about["erasures"][0]["order"], 1, "{about:#}");
+    assert_eq!(about["erasures"][0]["cells_erased"], 10, "{about:#}");
+    let text = s.ok(&["about", "quillby_orders:v2"]);
+    assert_contains(&text, "storage      its erased form, stored");
+    assert_contains(
+        &text,
+        "erased       10 cells under erasure order 1 (request 2026-121",
+    );
+    assert!(!text.contains("recomputable"), "{text}");
     let report = s.json(&["verify", "--json"]);
     assert_eq!(report["intact"], true, "{report:#}");
 

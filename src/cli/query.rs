@@ -364,6 +364,10 @@ pub fn about_text(out: &mut impl Write, d: &VersionDetail) -> io::Result<()> {
     writeln!(out, "  size         {}", plural(v.n_bytes, "byte", "bytes"))?;
     // Stored is the rule and goes unsaid; the exceptions are named.
     match d.storage {
+        _ if !d.erasures.is_empty() => writeln!(
+            out,
+            "  storage      its erased form, stored; it is not computed from its recipe again"
+        )?,
         sluice::model::Storage::Recomputable => writeln!(
             out,
             "  storage      recomputable: the bytes are computed from the recipe of step {} when read, and checked against the hash",
@@ -371,6 +375,26 @@ pub fn about_text(out: &mut impl Write, d: &VersionDetail) -> io::Result<()> {
         )?,
         sluice::model::Storage::Kept => writeln!(out, "  storage      kept (sluice retain)")?,
         sluice::model::Storage::Stored => {}
+    }
+    for e in &d.erasures {
+        let order = format!(
+            "erasure order {} ({}, {})",
+            e.order, e.request, e.ordered_at
+        );
+        if e.cells_erased > 0 {
+            writeln!(
+                out,
+                "  erased       {} under {order}",
+                plural(e.cells_erased, "cell", "cells")
+            )?;
+        }
+        if e.cells_kept_as_published > 0 {
+            writeln!(
+                out,
+                "  erased       {} kept as published under {order}, no longer computable again",
+                plural(e.cells_kept_as_published, "summary cell", "summary cells")
+            )?;
+        }
     }
     writeln!(out, "  shape        {}", shape(v))?;
     let dl = &v.dialect;
