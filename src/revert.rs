@@ -296,6 +296,16 @@ pub fn revert(store: &mut Store, reference: &str, opts: &RevertOptions) -> Resul
         .lineage
         .version_by_seq(&target.dataset, target.seq - 1)?
         .ok_or_else(|| db(format!("{}:v{} is missing", target.dataset, target.seq - 1)))?;
+    if let Some(e) = store.lineage.erasure_of_version(base.id)? {
+        return Err(ErrorKind::Data(format!(
+            "step {} cannot be withdrawn: {}, the table it would restore, lost cells under erasure order {}, so its recorded bytes exist nowhere now; record the change you want as a new step on the latest version of {} instead",
+            reverted.id,
+            base.label(),
+            e.order_id,
+            target.dataset
+        ))
+        .into());
+    }
     let reverted_inputs = store.lineage.step_input_versions(reverted.id)?;
     let Some(reverted_main) = reverted_inputs.iter().position(|(_, v)| v.id == base.id) else {
         return Err(Error::usage(format!(

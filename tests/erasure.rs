@@ -569,6 +569,16 @@ fn carrying_out_an_order_erases_one_person_everywhere_and_keeps_the_proof_of_the
     let text = s.ok(&["explain", summary, "--row", &row, "--column", &column]);
     assert_contains(&text, "kept as published under erasure order 1");
     assert!(!text.contains("DIFFERS"), "{text}");
+    // A step whose input lost cells cannot be withdrawn (the table it would restore exists
+    // only as its erased form); the store is left as it was.
+    let snapshot = s.snapshot();
+    let msg = s.fails(
+        1,
+        &["withdraw", "all_orders:v5", "--why", "the drop was wrong"],
+    );
+    assert_contains(&msg, "lost cells under erasure order 1");
+    assert_eq!(s.snapshot(), snapshot);
+
     // A reached version's erased form is the only copy of its other cells: it stays stored.
     let msg = s.fails(2, &["evict", "quillby_orders:v2"]);
     assert_contains(&msg, "erasure order 1 reached it");
