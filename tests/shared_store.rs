@@ -110,9 +110,16 @@ fn server_counts(server: &pg::Server, db: &str) -> (u64, u64) {
 /// The demo recorded in `local` and published into a new shared store `shared` whose lineage
 /// is in the new server database `db`.
 fn demo_published(server: &pg::Server, db: &str) -> Sandbox {
-    let conn = server.new_database(db);
     let s = Sandbox::new();
     s.ok(&["demo", "local"]);
+    publish_new(&s, server, db);
+    s
+}
+
+/// `local` published into a new shared store `shared` whose lineage is in the new server
+/// database `db`.
+fn publish_new(s: &Sandbox, server: &pg::Server, db: &str) {
+    let conn = server.new_database(db);
     s.ok(&[
         "--store",
         "local",
@@ -122,7 +129,6 @@ fn demo_published(server: &pg::Server, db: &str) -> Sandbox {
         "--lineage-server",
         &conn,
     ]);
-    s
 }
 
 /// A local store published into a new shared store, borrowed into two working copies, each
@@ -618,7 +624,6 @@ fn a_service_file_names_the_server_and_holds_the_password() {
 #[test]
 fn a_store_with_an_erasure_publishes_its_erased_forms() {
     let server = pg::server();
-    let conn = server.new_database("after_erasure");
     let s = Sandbox::new();
     s.ok(&["demo", "local"]);
     s.ok(&[
@@ -632,15 +637,7 @@ fn a_store_with_an_erasure_publishes_its_erased_forms() {
         "request 2026-121, filed by the cooperative's data-protection officer",
         "--carry-out",
     ]);
-    s.ok(&[
-        "--store",
-        "local",
-        "publish",
-        "--to",
-        "shared",
-        "--lineage-server",
-        &conn,
-    ]);
+    publish_new(&s, server, "after_erasure");
     s.ok(&["borrow", "shared", "--into", "copy"]);
     for store in ["shared", "copy"] {
         let report: Value =

@@ -220,10 +220,7 @@ pub fn identify(
             )?;
         }
         for e in &id.erasures {
-            let order = format!(
-                "erasure order {} ({}, {})",
-                e.order, e.request, e.ordered_at
-            );
+            let order = order_named(e.order, &e.request, &e.ordered_at);
             if e.cells_erased > 0 {
                 writeln!(
                     out,

@@ -377,10 +377,7 @@ pub fn about_text(out: &mut impl Write, d: &VersionDetail) -> io::Result<()> {
         sluice::model::Storage::Stored => {}
     }
     for e in &d.erasures {
-        let order = format!(
-            "erasure order {} ({}, {})",
-            e.order, e.request, e.ordered_at
-        );
+        let order = order_named(e.order, &e.request, &e.ordered_at);
         if e.cells_erased > 0 {
             writeln!(
                 out,
@@ -584,10 +581,8 @@ pub fn verify_text(out: &mut impl Write, r: &VerifyReport) -> io::Result<()> {
     for o in &r.erasure_orders {
         writeln!(
             out,
-            "erasure order {} ({}, {}): {} erased in {}; every other cell of them proved unchanged by the commitment recorded before it",
-            o.order,
-            o.request,
-            o.ordered_at,
+            "{}: {} erased in {}; every other cell of them proved unchanged by the commitment recorded before it",
+            order_named(o.order, &o.request, &o.ordered_at),
             plural(o.cells_erased, "cell", "cells"),
             plural(o.versions_proved, "version", "versions")
         )?;
@@ -639,10 +634,7 @@ pub fn verify_text(out: &mut impl Write, r: &VerifyReport) -> io::Result<()> {
 
 /// What an erasure order did to a cell, in one line (never its value).
 fn erased_line(e: &sluice::erasure::CellErasure) -> String {
-    let order = format!(
-        "erasure order {} ({}, {})",
-        e.order, e.request, e.ordered_at
-    );
+    let order = order_named(e.order, &e.request, &e.ordered_at);
     if e.what == "erased" {
         format!("erased by {order}: the store no longer holds its value")
     } else {

@@ -302,6 +302,11 @@ pub fn ingest_outcome_short(out: &mut impl Write, o: &IngestOutcome) -> io::Resu
     }
 }
 
+/// An erasure order as commands name it: "erasure order N (REQUEST, WHEN)" (never a value).
+pub fn order_named(order: i64, request: &str, ordered_at: &str) -> String {
+    format!("erasure order {order} ({request}, {ordered_at})")
+}
+
 #[cfg(test)]
 mod tests {
     #[test]
