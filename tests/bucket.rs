@@ -1271,3 +1271,36 @@ fn a_command_killed_during_a_multipart_upload_leaves_the_store_intact() {
     // The row index's single upload, and the table's two parts and completion at least.
     assert!(points >= 4, "only {points} uploads were passed");
 }
+
+/// A store where an erasure order was carried out moves into a bucket and back: the erased
+/// versions' own objects are gone, so their erased forms move instead (each under its own
+/// name), and the store reads, verifies and names the order from either place.
+#[test]
+fn transfer_moves_the_erased_forms_of_a_store_with_an_erasure() {
+    let s = Sandbox::with_store();
+    s.file("orders.csv", orders_csv(400));
+    s.ok(&["receive", "orders.csv", "--as", "orders", "--why", "t"]);
+    s.ok(&["clean", "orders", "trim", "--why", "t"]);
+    s.ok(&[
+        "erase",
+        "orders:v1",
+        "--key",
+        "order_id=WO-0000007",
+        "--request",
+        "request 7",
+        "--carry-out",
+    ]);
+    let bytes = s.ok(&["retrieve", "orders:v1"]);
+    assert!(!bytes.contains("WO-0000007"));
+    let (url, _) = fresh_bucket();
+    ok_as(&s, "recorder", &["transfer", "--to-bucket", &url]);
+    std::fs::remove_dir_all(s.path().join("sluice-store/segments")).unwrap();
+    let report: serde_json::Value =
+        serde_json::from_str(&ok_as(&s, "reader", &["verify", "--json"])).unwrap();
+    assert_eq!(report["intact"], true, "{report:#}");
+    assert_eq!(report["erasure_orders"][0]["order"], 1, "{report:#}");
+    assert_eq!(ok_as(&s, "reader", &["retrieve", "orders:v1"]), bytes);
+    ok_as(&s, "reader", &["transfer", "--to-folder"]);
+    assert_contains(&s.ok(&["verify"]), "intact");
+    assert_eq!(s.ok(&["retrieve", "orders:v1"]), bytes);
+}

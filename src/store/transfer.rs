@@ -107,6 +107,7 @@ impl Store {
             .map_err(|e| Error::io(&lock_path, e))?;
         self.sweep_tmp();
         let from = self.objects.backend();
+        let objects = &self.objects;
         let mut done = Transferred {
             from: from_name.clone(),
             to: to_name.clone(),
@@ -119,6 +120,11 @@ impl Store {
                 let Ok(h) = hex.parse::<Hash>() else {
                     continue;
                 };
+                // An erased version's own bytes and row index are gone; its erased forms are
+                // objects of their own (listed too), read in their place.
+                if objects.is_erased(&h) {
+                    continue;
+                }
                 let at_from = |e: io::Error| Error::io(&from.describe(&h), e);
                 let at_to = |e: io::Error| Error::io(&to.describe(&h), e);
                 if to.exists(&h) {
