@@ -1201,7 +1201,7 @@ fn deep_problems(store: &Store, report: &VerifyReport) -> Result<(Vec<Problem>, 
         let mut built = rowindex::Builder::start().to_vec();
         let mut builder = rowindex::Builder::new();
         let mut scratch = Vec::new();
-        let read = store.objects.open_raw(&hash).and_then(|src| {
+        let read = store.objects.open_raw(&hash).and_then(|(src, _)| {
             crate::table::stream::for_each_record(Path::new(&v.label()), src, &settings, |r| {
                 if !header_seen {
                     header_seen = true;

@@ -24,7 +24,7 @@ fn agent() -> Agent {
 /// The data rows of a stored version, as strings.
 fn rows_of(store: &Store, v: &Version) -> Vec<Vec<String>> {
     let mut out = Vec::new();
-    let r = store.objects.open_raw(&v.hash.parse().unwrap()).unwrap();
+    let r = store.objects.open_raw(&v.hash.parse().unwrap()).unwrap().0;
     let mut header = v.dialect.has_header;
     for_each_record(
         Path::new("v"),

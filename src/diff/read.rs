@@ -20,21 +20,13 @@ fn parse_hash(hex: &str) -> Result<Hash> {
         .map_err(|e: String| Error::from(ErrorKind::Inconsistent(e)))
 }
 
-/// The name of the bytes the store reads for object `hex` (an erased version's erased form,
-/// else the object itself), which is what they must hash to.
-fn form(objects: &Objects, hex: &str) -> Result<Hash> {
-    Ok(objects.form_of(&parse_hash(hex)?))
-}
-
-/// The name and length of the bytes the store reads for `v`'s rows: its erased form's after an
-/// erasure (shorter than the bytes recorded), else its own.
-fn stored_bytes(objects: &Objects, v: &Version) -> Result<(Hash, u64)> {
-    let hash = parse_hash(&v.hash)?;
-    if objects.is_erased(&hash) {
-        let form = objects.form_of(&hash);
-        return Ok((form, objects.size(&form)?));
+/// How many bytes the store holds for `v`'s rows under `name`, the name they are read as
+/// ([`Objects::open_raw`]): an erased form is shorter than the bytes recorded.
+fn stored_len(objects: &Objects, v: &Version, name: &Hash) -> Result<u64> {
+    if *name == parse_hash(&v.hash)? {
+        return Ok(v.n_bytes);
     }
-    Ok((hash, v.n_bytes))
+    objects.size(name)
 }
 
 /// A reader that hashes what passes through it (and reports how far it is, when asked to).
@@ -108,9 +100,9 @@ pub fn row_index(objects: &Objects, v: &Version) -> Result<(Vec<u64>, Vec<u64>)>
 /// The byte offset of every row of `v` from its row index object (checked against its hash
 /// and its row count), and the fingerprints the object holds if it is of format 1.
 pub fn offsets(objects: &Objects, v: &Version) -> Result<(Option<Vec<u64>>, Vec<u64>)> {
-    let hash = form(objects, &v.row_index)?;
+    let (inner, hash) = objects.open_raw(&parse_hash(&v.row_index)?)?;
     let mut reader = Hashing {
-        inner: objects.open_raw(&hash)?,
+        inner,
         hasher: blake3::Hasher::new(),
         progress: None,
     };
@@ -520,11 +512,10 @@ pub struct RawRows {
 
 impl RawRows {
     pub fn new(objects: &Objects, v: &Version, offsets: impl Into<Arc<[u64]>>) -> Result<RawRows> {
-        let (hash, n_bytes) = stored_bytes(objects, v)?;
-        let inner = objects.open_raw(&hash)?;
+        let (inner, hash) = objects.open_raw(&parse_hash(&v.hash)?)?;
         Ok(RawRows::over(
             v,
-            (hash, n_bytes),
+            (hash, stored_len(objects, v, &hash)?),
             offsets.into(),
             inner,
             Some(Self::progress(v)),
@@ -577,11 +568,10 @@ impl RawRows {
         if !keep || cut.kept.is_some() {
             return RawRows::cut(objects, v, cut);
         }
-        let stored = stored_bytes(objects, v)?;
-        let pieces = objects.open_pieces(&stored.0)?;
+        let (pieces, hash) = objects.open_pieces(&parse_hash(&v.hash)?)?;
         let mut raw = RawRows::over(
             v,
-            stored,
+            (hash, stored_len(objects, v, &hash)?),
             Arc::clone(&cut.offsets),
             Box::new(std::io::empty()),
             Some(Self::progress(v)),
@@ -597,9 +587,12 @@ impl RawRows {
         let Some(bytes) = &cut.kept else {
             return RawRows::new(objects, v, Arc::clone(&cut.offsets));
         };
+        // Checked when they were read: nothing is hashed again, only their length held to
+        // what the store holds under the name the rows are read as.
+        let hash = objects.form_of(&parse_hash(&v.hash)?);
         let mut raw = RawRows::over(
             v,
-            stored_bytes(objects, v)?,
+            (hash, stored_len(objects, v, &hash)?),
             Arc::clone(&cut.offsets),
             Box::new(std::io::empty()),
             None,

@@ -309,29 +309,25 @@ pub fn cell_erasure(
     let Some(col) = v.header.iter().position(|h| h == column) else {
         return Ok(None);
     };
-    if store.lineage.erasure_of_version(v.id)?.is_none() {
-        return Ok(None);
-    }
     let cell = row
         .checked_mul(v.header.len() as u64)
         .and_then(|c| c.checked_add(col as u64));
     let Some(cell) = cell else {
         return Ok(None);
     };
-    let numbers = |b: &[u8], width: usize| -> Vec<u64> {
+    // Kept leaves are a cell number (u64 LE) and a leaf each; marked cells, numbers alone.
+    let names = |b: &[u8], width: usize| {
         b.chunks_exact(width)
-            .filter_map(|c| c.get(..8)?.try_into().ok().map(u64::from_le_bytes))
-            .collect()
+            .any(|c| c.get(..8).and_then(|n| n.try_into().ok()) == Some(cell.to_le_bytes()))
     };
     let found = store
         .lineage
-        .erased_versions()?
+        .erasures_of_version(v.id)?
         .into_iter()
-        .filter(|e| e.version_id == v.id)
         .find_map(|e| {
-            if numbers(&e.kept, 40).contains(&cell) {
+            if names(&e.kept, 40) {
                 Some((e.order_id, "erased"))
-            } else if numbers(&e.marked, 8).contains(&cell) {
+            } else if names(&e.marked, 8) {
                 Some((e.order_id, "kept_as_published"))
             } else {
                 None
@@ -368,19 +364,15 @@ pub struct VersionErasure {
 
 /// Every order that reached `v`, oldest first (none for a version no order reached).
 pub fn orders_reaching(store: &Store, v: &Version) -> Result<Vec<VersionErasure>> {
-    if store.lineage.erasure_of_version(v.id)?.is_none() {
+    let records = store.lineage.erasures_of_version(v.id)?;
+    if records.is_empty() {
         return Ok(Vec::new());
     }
     let orders = store.lineage.erasure_orders()?;
     let mut out: Vec<VersionErasure> = Vec::new();
     // Each record keeps the erased cells of every order up to its own.
     let (mut erased_before, mut kept_before) = (0u64, 0u64);
-    for e in store
-        .lineage
-        .erased_versions()?
-        .into_iter()
-        .filter(|e| e.version_id == v.id)
-    {
+    for e in records {
         let (erased, kept) = ((e.kept.len() / 40) as u64, (e.marked.len() / 8) as u64);
         let o = orders
             .iter()

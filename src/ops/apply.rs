@@ -876,13 +876,13 @@ fn load_table(store: &Store, reference: &str, source: Option<TableSource<'_>>) -
     let mut read_as = hash.clone();
     let reader: Box<dyn Read + Send> = match &source {
         TableSource::Version(_) => {
-            let form = store.objects.form_of(
+            let (bytes, form) = store.objects.open_raw(
                 &hash
                     .parse()
                     .map_err(|e: String| Error::from(ErrorKind::Inconsistent(e)))?,
-            );
+            )?;
             read_as = form.hex();
-            store.objects.open_raw(&form)?
+            bytes
         }
         // Not stored under its name yet: read the file itself, checked against its hash.
         TableSource::Pending(p) => {

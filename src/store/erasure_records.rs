@@ -99,6 +99,11 @@ const ERASED_ALL: &str = "SELECT order_id, version_id, root, salts, kept, marked
             stored_hash, stored_row_index
      FROM erased_versions ORDER BY order_id, version_id";
 
+/// Every erasure of one version, oldest order first.
+const ERASURES_OF_VERSION: &str = "SELECT order_id, version_id, root, salts, kept, marked,
+            n_erased, stored_hash, stored_row_index
+     FROM erased_versions WHERE version_id = ?1 ORDER BY order_id";
+
 /// The latest erasure of one version.
 const ERASED_OF_VERSION: &str = "SELECT order_id, version_id, root, salts, kept, marked,
             n_erased, stored_hash, stored_row_index
@@ -123,6 +128,15 @@ impl Lineage {
     pub fn erased_versions(&self) -> Result<Vec<ErasedVersion>> {
         self.db
             .query(ERASED_ALL, &[])?
+            .iter()
+            .map(erased_from_row)
+            .collect()
+    }
+
+    /// Every erasure of one version, oldest order first (none when no order reached it).
+    pub fn erasures_of_version(&self, version_id: i64) -> Result<Vec<ErasedVersion>> {
+        self.db
+            .query(ERASURES_OF_VERSION, vals![version_id])?
             .iter()
             .map(erased_from_row)
             .collect()

@@ -1324,8 +1324,8 @@ impl Objects {
     /// the check completes (the object may be larger than memory), so on a mismatch the caller
     /// gets an error after the damaged bytes; `cat -o FILE` writes to a temporary file first.
     pub fn copy_to(&self, hash: &Hash, out: &mut dyn Write) -> Result<u64> {
-        let hash = &self.form_of(hash);
-        let r = self.open_raw(hash)?;
+        let (r, hash) = self.open_raw(hash)?;
+        let hash = &hash;
         let mut hasher = blake3::Hasher::new();
         let path = self.find(hash)?.describe(hash);
         let n_bytes = for_each_piece(
@@ -1373,33 +1373,35 @@ impl Objects {
     }
 
     /// Opens an object for reading without checking its hash (callers that stream large objects
-    /// check the hash themselves, or rely on `verify`).
-    pub fn open_raw(&self, hash: &Hash) -> Result<Box<dyn Read + Send>> {
+    /// check the hash themselves, or rely on `verify`), with the name its bytes must hash to:
+    /// `hash`, or for an erased version's bytes or row index, its erased form's.
+    pub fn open_raw(&self, hash: &Hash) -> Result<(Box<dyn Read + Send>, Hash)> {
         self.opened(hash, |from, hash| from.open(hash))
     }
 
     /// [`Self::open_raw`] as owned pieces ([`ObjectBackend::open_pieces`]), for a reader that
     /// keeps every byte it reads; the hash is not checked either.
-    pub fn open_pieces(&self, hash: &Hash) -> Result<Box<dyn segments::Pieces>> {
+    pub fn open_pieces(&self, hash: &Hash) -> Result<(Box<dyn segments::Pieces>, Hash)> {
         self.opened(hash, |from, hash| from.open_pieces(hash))
     }
 
     /// `open` applied to the backend that holds object `hash` (its erased form, if any), a
-    /// missing object named as such.
+    /// missing object named as such; with the name of what was opened.
     fn opened<T>(
         &self,
         hash: &Hash,
         open: impl FnOnce(&dyn ObjectBackend, &Hash) -> io::Result<T>,
-    ) -> Result<T> {
+    ) -> Result<(T, Hash)> {
         let hash = &self.form_of(hash);
         let from = self.find(hash)?;
-        open(from, hash).map_err(|e| {
+        let opened = open(from, hash).map_err(|e| {
             if e.kind() == io::ErrorKind::NotFound {
                 ErrorKind::ObjectMissing { hash: hash.hex() }.into()
             } else {
                 crate::Error::io(&from.describe(hash), e)
             }
-        })
+        })?;
+        Ok((opened, *hash))
     }
 
     /// Notes that object `hash`, where the store reads it from, was just re-hashed and found

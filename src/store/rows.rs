@@ -32,12 +32,13 @@ impl Objects {
             .map_err(|e: String| Error::from(ErrorKind::Inconsistent(e)))?;
         let label = v.label();
         // An erased version's bytes are its erased form, checked against that form's name.
-        let form = self.form_of(&hash).hex();
+        let (bytes, form) = self.open_raw(&hash)?;
+        let form = form.hex();
         let source = Source {
             doing,
             hash: &form,
             ..Source::version(v, &label)
         };
-        stored::each_row(self.open_raw(&hash)?, &source, f)
+        stored::each_row(bytes, &source, f)
     }
 }

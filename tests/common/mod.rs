@@ -326,7 +326,7 @@ fn rewrite_segment_of(store_dir: &Path, hash: &str, edit: Option<impl FnOnce(&mu
         let Some(f) = edit.take() else { continue };
         let store = sluice::store::Store::open(store_dir).unwrap();
         let mut bytes = Vec::new();
-        std::io::Read::read_to_end(&mut store.objects.open_raw(&h).unwrap(), &mut bytes).unwrap();
+        std::io::Read::read_to_end(&mut store.objects.open_raw(&h).unwrap().0, &mut bytes).unwrap();
         f(&mut bytes);
         w.write(&bytes, &none).unwrap();
         w.end_object(&h, &none).unwrap();
