@@ -7,7 +7,8 @@
 //! writes the row index. Three threads on two cores keep both busy whichever part is the
 //! heaviest on a given file. Memory stays bounded by a few pieces in flight plus the
 //! profile (see `table::profile`), whatever the size of the file; only `--key` keeps 16 bytes per
-//! row, to find duplicate keys.
+//! row, to find duplicate keys. A [`Feed`] may be handed each checked row on the calling
+//! thread as well (a plan's first steps, computed in the same read of the file).
 //!
 //! Nothing is referenced until everything has been checked: the objects are made durable, then
 //! one transaction records the step, the version, its profile and the audit entry. A failure at
@@ -135,7 +136,42 @@ pub fn prepare_from(
     opts: &IngestOptions,
     source: &SourceOptions,
 ) -> Result<Prepared> {
+    prepare_feeding(store, path, opts, source, None)
+}
+
+/// What receives a file's data rows while intake reads them, once intake has checked each
+/// (a plan's first steps computed in the same pass: `plan::run`). A feed sees rows of a file
+/// that may still be refused later (a ragged row further on): what it makes counts only if
+/// the intake succeeds.
+pub trait Feed {
+    /// The header, before any row, and an estimate of how many rows will follow.
+    fn header(&mut self, header: &[String], rows: u64);
+    /// Data row `row` (0-based, in order), parsed as a read of the stored version gives it.
+    fn row(&mut self, row: u64, r: RawRecord<'_>);
+}
+
+/// Whether [`prepare_feeding`] can hand the rows of `path` to a feed: delimited text read as
+/// UTF-8 (the rows it parses are then those a read of the stored copy gives).
+pub fn can_feed(path: &Path, opts: &IngestOptions, source: &SourceOptions) -> bool {
+    crate::convert::SourceFormat::of(path).is_none()
+        && source.sheet.is_none()
+        && opts
+            .encoding
+            .as_deref()
+            .is_none_or(|e| encoding_for(e).is_ok_and(|e| e == encoding_rs::UTF_8))
+}
+
+/// [`prepare_from`], handing every data row to `feed` as it is checked (only when
+/// [`can_feed`]; otherwise the feed is given nothing).
+pub fn prepare_feeding(
+    store: &Store,
+    path: &Path,
+    opts: &IngestOptions,
+    source: &SourceOptions,
+    feed: Option<&mut dyn Feed>,
+) -> Result<Prepared> {
     validate_dataset_name(&opts.dataset)?;
+    let feed = feed.filter(|_| can_feed(path, opts, source));
     let named = crate::convert::check_named_format(path)?;
     if let Some(format) = crate::convert::SourceFormat::of(path) {
         return crate::convert::prepare(store, path, opts, source, format);
@@ -170,7 +206,7 @@ pub fn prepare_from(
     let file = File::open(path).map_err(|e| Error::io(path, e))?;
     let started_at = clock::now_rfc3339();
 
-    let (read_side, scan) = run_pipeline(store, path, file, encoding, opts)?;
+    let (read_side, scan) = run_pipeline(store, path, file, encoding, opts, feed)?;
 
     // Duplicate keys: equal hashes are candidates, confirmed on the values themselves.
     if let Some(key) = &opts.key {
@@ -261,7 +297,17 @@ pub fn ingest_from(
     opts: &IngestOptions,
     source: &SourceOptions,
 ) -> Result<IngestOutcome> {
-    let mut ready = match prepare_from(store, path, opts, source)? {
+    let prepared = prepare_from(store, path, opts, source)?;
+    record_prepared(store, prepared, opts)
+}
+
+/// Records an intake [`prepare_feeding`] read and checked, as [`ingest_from`] does.
+pub fn record_prepared(
+    store: &mut Store,
+    prepared: Prepared,
+    opts: &IngestOptions,
+) -> Result<IngestOutcome> {
+    let mut ready = match prepared {
         Prepared::Unchanged(version) => return Ok(IngestOutcome::Unchanged { version: *version }),
         Prepared::Ready(p) => p,
     };
@@ -552,7 +598,9 @@ fn run_pipeline(
     mut file: File,
     encoding: Option<&'static encoding_rs::Encoding>,
     opts: &IngestOptions,
+    feed: Option<&mut dyn Feed>,
 ) -> Result<(ReadSide, Scan)> {
+    let file_len = file.metadata().map(|m| m.len()).unwrap_or(0);
     let store_dir = store.dir().to_path_buf();
     let objects = &store.objects;
     let utf8 = encoding.is_none_or(|e| e == encoding_rs::UTF_8);
@@ -671,7 +719,14 @@ fn run_pipeline(
             Ok(Some(offset))
         });
 
-        let parsed = parse_side(objects, &store_dir, path, opts, rx, recycle_tx);
+        let fed = feed.map(|feed| Fed {
+            feed,
+            file_len,
+            announced: false,
+            header_seen: !opts.has_header,
+            row: 0,
+        });
+        let parsed = parse_side(objects, &store_dir, path, opts, rx, recycle_tx, fed);
         let read = reader
             .join()
             .map_err(|_| Error::from(ErrorKind::Internal("the reading thread panicked".into())))?;
@@ -849,6 +904,49 @@ impl Sink<'_> {
     }
 }
 
+/// A feed and where it is in the file.
+struct Fed<'f> {
+    feed: &'f mut dyn Feed,
+    file_len: u64,
+    /// Whether the feed has been given the header.
+    announced: bool,
+    header_seen: bool,
+    row: u64,
+}
+
+impl Fed<'_> {
+    /// Hands the data rows of a batch intake has checked to the feed; the header first, with
+    /// the rows the file would hold if all were as long as this batch's.
+    fn batch(&mut self, header: &[String], batch: &RecordBatch) {
+        if !self.announced {
+            let (mut first, mut last, mut n) = (None, 0u64, 0u64);
+            let _ = batch.for_each(|r| -> std::result::Result<(), ()> {
+                first.get_or_insert(r.byte);
+                last = r.byte;
+                n += 1;
+                Ok(())
+            });
+            let span = last.saturating_sub(first.unwrap_or(0));
+            let estimate = if n > 1 && span > 0 {
+                self.file_len.saturating_mul(n - 1) / span
+            } else {
+                0
+            };
+            self.feed.header(header, estimate + estimate / 10);
+            self.announced = true;
+        }
+        let _ = batch.for_each(|r| -> std::result::Result<(), ()> {
+            if !self.header_seen {
+                self.header_seen = true;
+                return Ok(());
+            }
+            self.feed.row(self.row, r);
+            self.row += 1;
+            Ok(())
+        });
+    }
+}
+
 fn parse_side(
     objects: &crate::store::Objects,
     store_dir: &Path,
@@ -856,6 +954,7 @@ fn parse_side(
     opts: &IngestOptions,
     rx: mpsc::Receiver<Msg>,
     recycle: mpsc::Sender<RecordBatch>,
+    mut fed: Option<Fed<'_>>,
 ) -> Result<Option<Scan>> {
     let mut index = objects
         .random_access_writer()
@@ -883,6 +982,9 @@ fn parse_side(
         match msg {
             Msg::Batch(mut batch) => {
                 batch.for_each(|r| sink.on_record(r))?;
+                if let (Some(fed), Some(header)) = (&mut fed, &sink.header) {
+                    fed.batch(header, &batch);
+                }
                 batch.clear();
                 let _ = recycle.send(batch);
             }

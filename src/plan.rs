@@ -479,7 +479,10 @@ pub fn run(
     let mut done = Vec::new();
     // The version each dataset name stands for in this run.
     let mut current: BTreeMap<String, Version> = BTreeMap::new();
-    for (input, source) in plan.sources.iter().zip(sources) {
+    // Steps a pass computed while their input was taken in, recorded already.
+    let mut skip_until = 0;
+    let n_sources = plan.sources.len();
+    for (i, (input, source)) in plan.sources.iter().zip(sources).enumerate() {
         let fail = |done, error| RunFailure {
             done,
             at: format!("input {}", input.dataset),
@@ -515,7 +518,36 @@ pub fn run(
                 let source = intake::SourceOptions {
                     sheet: input.sheet.clone(),
                 };
-                match intake::ingest_from(store, &path, &iopts, &source) {
+                // The last input, when the plan's first steps read it row by row, is taken in
+                // and passed through those steps in the same read of the file.
+                let ahead = if i + 1 == n_sources {
+                    stretch_on_intake(store, plan, &current, &iopts, &path, &source, opts)
+                } else {
+                    None
+                };
+                let (prepared, chain) = match ahead {
+                    Some((n, stretch)) => {
+                        let mut feed = StretchFeed {
+                            store,
+                            stretch: &stretch,
+                            input: pending_input(&iopts),
+                            chain: None,
+                            failed_write: None,
+                        };
+                        let prepared =
+                            intake::prepare_feeding(store, &path, &iopts, &source, Some(&mut feed));
+                        let chain = match feed.failed_write {
+                            Some(e) => Err(e),
+                            None => Ok(feed.chain.map(|c| (n, stretch, c))),
+                        };
+                        (prepared, chain)
+                    }
+                    None => (
+                        intake::prepare_from(store, &path, &iopts, &source),
+                        Ok(None),
+                    ),
+                };
+                match prepared.and_then(|p| intake::record_prepared(store, p, &iopts)) {
                     Ok(outcome) => {
                         let v = match &outcome {
                             IngestOutcome::Recorded { version, .. }
@@ -525,13 +557,50 @@ pub fn run(
                             .hash
                             .clone()
                             .filter(|h| !h.eq_ignore_ascii_case(&v.hash));
-                        current.insert(input.dataset.clone(), v);
+                        current.insert(input.dataset.clone(), v.clone());
                         done.push(Done::TookIn {
                             name: input.dataset.clone(),
                             path,
                             outcome: Box::new(outcome),
                             differs_from,
                         });
+                        // A pass that could not finish leaves the steps to the loop below,
+                        // which computes them from the stored input (and stops where and as
+                        // that run does); a failed write fails the run at the first step.
+                        let chain = match chain {
+                            Ok(c) => c,
+                            Err(error) => {
+                                let at = format!("step 1 ({})", plan.steps[0].describe());
+                                return Err(RunFailure { done, at, error });
+                            }
+                        };
+                        if let Some((n, stretch, chain)) = chain {
+                            match chain.finish() {
+                                Ok(computed) => {
+                                    match stretch.record(store, v, computed, 1, &mut current, opts)
+                                    {
+                                        Ok(items) => {
+                                            done.extend(items);
+                                            skip_until = n;
+                                        }
+                                        Err((items, k, error)) => {
+                                            done.extend(items);
+                                            let at = format!(
+                                                "step {} ({})",
+                                                k + 1,
+                                                plan.steps[k].describe()
+                                            );
+                                            return Err(RunFailure { done, at, error });
+                                        }
+                                    }
+                                }
+                                Err(error) if matches!(error.kind(), ErrorKind::Io { .. }) => {
+                                    let at = format!("step 1 ({})", plan.steps[0].describe());
+                                    return Err(RunFailure { done, at, error });
+                                }
+                                Err(_) => {}
+                            }
+                        }
                     }
                     Err(e) => return Err(fail(done, e)),
                 }
@@ -541,7 +610,7 @@ pub fn run(
     let mut failed_checks = 0;
     // Steps already recorded by a fused pass, and steps to run one at a time after a fused
     // pass could not finish.
-    let (mut skip_until, mut plain_until) = (0, 0);
+    let mut plain_until = 0;
     for (i, step) in plan.steps.iter().enumerate() {
         if i < skip_until {
             continue;
@@ -774,6 +843,121 @@ type FusedFailure = (Vec<Done>, usize, Error);
 /// not be completed (a step refused its input, a cell could not be read), nothing was
 /// recorded, and the caller runs the steps one at a time instead, which stops where and as
 /// such a run does. A failed write stops the run at the stretch's first step.
+/// The stretch of steps at the start of `plan` to compute while its last input, a file, is
+/// taken in, and how many steps it holds: when the first step reads that input, at least two
+/// steps form a stretch ([`fusable_stretch`]), the first needs no read of its input ahead
+/// (`apply::fusable` of a later position), none reads the input as a table, and intake can
+/// hand the file's rows over (`intake::can_feed`).
+fn stretch_on_intake(
+    store: &Store,
+    plan: &Plan,
+    current: &BTreeMap<String, Version>,
+    iopts: &IngestOptions,
+    path: &Path,
+    source: &intake::SourceOptions,
+    opts: &RunOptions,
+) -> Option<(usize, Stretch)> {
+    let first = plan.steps.first()?;
+    if first.dataset != iopts.dataset
+        || !first
+            .clean
+            .as_ref()
+            .is_some_and(|op| apply::fusable(op, false))
+        || !intake::can_feed(path, iopts, source)
+    {
+        return None;
+    }
+    let mut ahead = current.clone();
+    ahead.insert(iopts.dataset.clone(), pending_input(iopts));
+    let n = fusable_stretch(store, &plan.steps, &ahead);
+    if n < 2
+        || plan.steps[..n].iter().any(|s| {
+            s.clean
+                .as_ref()
+                .and_then(other_input)
+                .is_some_and(|t| t == iopts.dataset)
+        })
+    {
+        return None;
+    }
+    Some((
+        n,
+        Stretch::prepare(store, &plan.steps[..n], &iopts.dataset, &ahead, opts)?,
+    ))
+}
+
+/// The input of a stretch computed while its file is taken in, before it has a name: its
+/// dataset and blanks; the header is filled in when intake has read it.
+fn pending_input(iopts: &IngestOptions) -> Version {
+    Version {
+        id: crate::recording::pending_id(0),
+        dataset: iopts.dataset.clone(),
+        seq: 0,
+        hash: String::new(),
+        row_index: String::new(),
+        n_rows: 0,
+        n_cols: 0,
+        n_bytes: 0,
+        header: Vec::new(),
+        dialect: crate::table::write::canonical_dialect(),
+        null_tokens: iopts.null_tokens.clone(),
+        created_at: String::new(),
+        step_id: crate::recording::pending_id(0),
+        storage: crate::model::Storage::Stored,
+    }
+}
+
+/// Computes a stretch on the rows intake hands over ([`intake::Feed`]). A step that refuses
+/// its input, or a row it cannot compute, ends the pass: `chain` is then `None`, and the run
+/// computes the steps from the stored input instead.
+struct StretchFeed<'a> {
+    store: &'a Store,
+    stretch: &'a Stretch,
+    input: Version,
+    chain: Option<apply::Chain>,
+    /// A write that failed (a full disk): it fails the run at the stretch's first step, as
+    /// the same failure in a pass over the stored copy does.
+    failed_write: Option<Error>,
+}
+
+impl StretchFeed<'_> {
+    fn stop(&mut self, e: Error) {
+        self.chain = None;
+        if matches!(e.kind(), ErrorKind::Io { .. }) {
+            self.failed_write.get_or_insert(e);
+        }
+    }
+}
+
+impl intake::Feed for StretchFeed<'_> {
+    fn header(&mut self, header: &[String], rows: u64) {
+        self.input.header = header.to_vec();
+        self.input.n_cols = header.len() as u64;
+        let s = self.stretch;
+        match apply::Chain::prepare(
+            self.store,
+            &self.input,
+            &s.aopts,
+            &s.keep[..s.row_steps],
+            s.summary_opts.as_ref(),
+        ) {
+            Ok(mut c) => {
+                c.expect_rows(rows);
+                self.chain = Some(c);
+            }
+            Err(e) => self.stop(e),
+        }
+    }
+
+    fn row(&mut self, row: u64, r: crate::table::RawRecord<'_>) {
+        if let Some(chain) = &mut self.chain {
+            if let Err(e) = chain.row(row, r) {
+                self.stop(e);
+            }
+        }
+    }
+}
+
 fn run_fused(
     store: &mut Store,
     steps: &[PlanStep],
@@ -781,60 +965,18 @@ fn run_fused(
     current: &mut BTreeMap<String, Version>,
     opts: &RunOptions,
 ) -> std::result::Result<Option<Vec<Done>>, FusedFailure> {
-    let resolve =
-        |store: &Store, name: &str, current: &BTreeMap<String, Version>| match current.get(name) {
-            Some(v) => Ok(v.clone()),
-            None => refs::resolve(&store.lineage, name),
-        };
-    let Ok(input) = resolve(store, &steps[0].dataset, current) else {
+    let Ok(input) = resolve_in_run(store, &steps[0].dataset, current) else {
         return Ok(None);
     };
-    let mut aopts: Vec<ApplyOptions> = Vec::with_capacity(steps.len());
-    let mut datasets = Vec::with_capacity(steps.len());
-    for (k, step) in steps.iter().enumerate() {
-        let Some(op) = &step.clean else {
-            return Ok(None);
-        };
-        let op = match other_input(op) {
-            Some(name) => match resolve(store, name, current) {
-                Ok(v) => with_other_input(op, v.label()),
-                Err(_) => return Ok(None),
-            },
-            None => op.clone(),
-        };
-        let dataset = match &step.save_as {
-            Some(n) => n.clone(),
-            None if k > 0 || current.contains_key(&step.dataset) => step.dataset.clone(),
-            None => input.dataset.clone(),
-        };
-        datasets.push(dataset.clone());
-        aopts.push(ApplyOptions {
-            op,
-            reason: step.reason.clone().unwrap_or_default(),
-            output_dataset: Some(dataset),
-            agent: opts.agent.clone(),
-            map_table_file: None,
-            replay: None,
-            repeats: step.repeats,
-        });
-    }
-    // Default storage policy: an output a later step of this stretch supersedes (it writes
-    // the same dataset again) is an intermediate, recorded by hash and recipe but not
-    // written; the rest (the dataset's latest after the stretch, and outputs saved under
-    // another name) are stored. A version that stops being the latest later stays stored.
-    let keep = crate::recompute::written_in_pass(&datasets);
-    // A summary at the end takes the rows of the step before as they pass.
-    let summary_opts = match aopts.last() {
-        Some(last) if matches!(last.op, Operation::Summarize { .. }) => aopts.pop(),
-        _ => None,
+    let Some(stretch) = Stretch::prepare(store, steps, &input.dataset, current, opts) else {
+        return Ok(None);
     };
-    let row_steps = aopts.len();
     let computed = match apply::compute_chain_summed(
         store,
         &input,
-        &aopts,
-        &keep[..row_steps],
-        summary_opts.as_ref(),
+        &stretch.aopts,
+        &stretch.keep[..stretch.row_steps],
+        stretch.summary_opts.as_ref(),
     ) {
         Ok(c) => c,
         // A write that failed (a full disk) fails the run as it would have failed the first
@@ -842,71 +984,180 @@ fn run_fused(
         Err(e) if matches!(e.kind(), ErrorKind::Io { .. }) => return Err((Vec::new(), 0, e)),
         Err(_) => return Ok(None),
     };
-    let (computed, summary) = computed;
-    let mut done = Vec::with_capacity(steps.len());
-    let mut reads = input;
-    let mut datasets = datasets.into_iter();
-    for (k, (c, dataset)) in computed.into_iter().zip(datasets.by_ref()).enumerate() {
-        let outcome = match apply::apply_computed(store, reads.clone(), c) {
-            Ok(o) => o,
-            Err(e) => return Err((done, k, e)),
-        };
-        let version = match &outcome {
-            ApplyOutcome::Recorded { version, .. } | ApplyOutcome::Unchanged { version, .. } => {
-                version.clone()
-            }
-            ApplyOutcome::Replayed { .. } => {
-                let e = ErrorKind::Inconsistent("a plan step was replayed, not recorded".into());
-                return Err((done, k, e.into()));
-            }
-        };
-        current.insert(dataset, version.clone());
-        reads = version;
-        done.push(Done::Applied {
-            step: first_number + k,
-            op: aopts[k].op.clone(),
-            outcome: Box::new(outcome),
-        });
+    stretch
+        .record(store, input, computed, first_number, current, opts)
+        .map(Some)
+}
+
+/// The version `name` stands for in a run: the one the run gave it, else the store's.
+fn resolve_in_run(
+    store: &Store,
+    name: &str,
+    current: &BTreeMap<String, Version>,
+) -> Result<Version> {
+    match current.get(name) {
+        Some(v) => Ok(v.clone()),
+        None => refs::resolve(&store.lineage, name),
     }
-    if let (Some(summary), Some(opts), Some(dataset)) = (summary, summary_opts, datasets.next()) {
-        let outcome = match apply::record_summary(store, reads.clone(), summary, &opts) {
-            Ok(o) => o,
-            Err(e) => return Err((done, row_steps, e)),
-        };
-        match &outcome {
-            ApplyOutcome::Recorded { version, .. } | ApplyOutcome::Unchanged { version, .. } => {
-                current.insert(dataset, version.clone());
-            }
-            ApplyOutcome::Replayed { .. } => {
-                let e = ErrorKind::Inconsistent("a plan step was replayed, not recorded".into());
-                return Err((done, row_steps, e.into()));
-            }
+}
+
+/// A stretch of a plan's steps ready to be computed in one pass: each step's options, the
+/// dataset it writes, whether its output is stored, and the summary that may end it.
+struct Stretch {
+    aopts: Vec<ApplyOptions>,
+    datasets: Vec<String>,
+    keep: Vec<bool>,
+    summary_opts: Option<ApplyOptions>,
+    row_steps: usize,
+}
+
+impl Stretch {
+    /// `None` when a step's table cannot be resolved: the steps then run one at a time,
+    /// which fail where and as such a run does. `input_dataset` is the dataset the first step
+    /// reads.
+    fn prepare(
+        store: &Store,
+        steps: &[PlanStep],
+        input_dataset: &str,
+        current: &BTreeMap<String, Version>,
+        opts: &RunOptions,
+    ) -> Option<Stretch> {
+        let mut aopts: Vec<ApplyOptions> = Vec::with_capacity(steps.len());
+        let mut datasets = Vec::with_capacity(steps.len());
+        for (k, step) in steps.iter().enumerate() {
+            let op = step.clean.as_ref()?;
+            let op = match other_input(op) {
+                Some(name) => {
+                    with_other_input(op, resolve_in_run(store, name, current).ok()?.label())
+                }
+                None => op.clone(),
+            };
+            let dataset = match &step.save_as {
+                Some(n) => n.clone(),
+                None if k > 0 || current.contains_key(&step.dataset) => step.dataset.clone(),
+                None => input_dataset.to_string(),
+            };
+            datasets.push(dataset.clone());
+            aopts.push(ApplyOptions {
+                op,
+                reason: step.reason.clone().unwrap_or_default(),
+                output_dataset: Some(dataset),
+                agent: opts.agent.clone(),
+                map_table_file: None,
+                replay: None,
+                repeats: step.repeats,
+            });
         }
-        done.push(Done::Applied {
-            step: first_number + row_steps,
-            op: opts.op,
-            outcome: Box::new(outcome),
-        });
+        // Default storage policy: an output a later step of this stretch supersedes (it writes
+        // the same dataset again) is an intermediate, recorded by hash and recipe but not
+        // written; the rest (the dataset's latest after the stretch, and outputs saved under
+        // another name) are stored. A version that stops being the latest later stays stored.
+        let keep = crate::recompute::written_in_pass(&datasets);
+        // A summary at the end takes the rows of the step before as they pass.
+        let summary_opts = match aopts.last() {
+            Some(last) if matches!(last.op, Operation::Summarize { .. }) => aopts.pop(),
+            _ => None,
+        };
+        let row_steps = aopts.len();
+        Some(Stretch {
+            aopts,
+            datasets,
+            keep,
+            summary_opts,
+            row_steps,
+        })
     }
-    // A later step that changed nothing leaves an intermediate the latest version of its
-    // dataset: the policy stores every dataset's latest, so its bytes are computed and stored
-    // (an audit entry of its own).
-    let last = done.len().saturating_sub(1);
-    for v in current.values() {
-        if v.storage == crate::model::Storage::Recomputable
-            && store
-                .lineage
-                .latest_version(&v.dataset)
-                .is_ok_and(|l| l.is_some_and(|l| l.id == v.id))
+
+    /// Records each step the pass computed on `input` in turn, in its own transaction, as
+    /// [`run_step`] would, then the summary.
+    fn record(
+        self,
+        store: &mut Store,
+        input: Version,
+        computed: (Vec<apply::Computed>, Option<crate::ops::summarize::Summary>),
+        first_number: usize,
+        current: &mut BTreeMap<String, Version>,
+        opts: &RunOptions,
+    ) -> std::result::Result<Vec<Done>, FusedFailure> {
+        let Stretch {
+            aopts,
+            datasets,
+            summary_opts,
+            row_steps,
+            ..
+        } = self;
+        let (computed, summary) = computed;
+        let mut done = Vec::with_capacity(row_steps + 1);
+        let mut reads = input;
+        let mut datasets = datasets.into_iter();
+        for (k, (c, dataset)) in computed.into_iter().zip(datasets.by_ref()).enumerate() {
+            let outcome = match apply::apply_computed(store, reads.clone(), c) {
+                Ok(o) => o,
+                Err(e) => return Err((done, k, e)),
+            };
+            let version = match &outcome {
+                ApplyOutcome::Recorded { version, .. }
+                | ApplyOutcome::Unchanged { version, .. } => version.clone(),
+                ApplyOutcome::Replayed { .. } => {
+                    let e =
+                        ErrorKind::Inconsistent("a plan step was replayed, not recorded".into());
+                    return Err((done, k, e.into()));
+                }
+            };
+            current.insert(dataset, version.clone());
+            reads = version;
+            done.push(Done::Applied {
+                step: first_number + k,
+                op: aopts[k].op.clone(),
+                outcome: Box::new(outcome),
+            });
+        }
+        if let (Some(summary), Some(opts), Some(dataset)) = (summary, summary_opts, datasets.next())
         {
-            if let Err(e) =
-                crate::recompute::store_bytes(store, v, crate::model::Storage::Stored, &opts.agent)
+            let outcome = match apply::record_summary(store, reads.clone(), summary, &opts) {
+                Ok(o) => o,
+                Err(e) => return Err((done, row_steps, e)),
+            };
+            match &outcome {
+                ApplyOutcome::Recorded { version, .. }
+                | ApplyOutcome::Unchanged { version, .. } => {
+                    current.insert(dataset, version.clone());
+                }
+                ApplyOutcome::Replayed { .. } => {
+                    let e =
+                        ErrorKind::Inconsistent("a plan step was replayed, not recorded".into());
+                    return Err((done, row_steps, e.into()));
+                }
+            }
+            done.push(Done::Applied {
+                step: first_number + row_steps,
+                op: opts.op,
+                outcome: Box::new(outcome),
+            });
+        }
+        // A later step that changed nothing leaves an intermediate the latest version of its
+        // dataset: the policy stores every dataset's latest, so its bytes are computed and
+        // stored (an audit entry of its own).
+        let last = done.len().saturating_sub(1);
+        for v in current.values() {
+            if v.storage == crate::model::Storage::Recomputable
+                && store
+                    .lineage
+                    .latest_version(&v.dataset)
+                    .is_ok_and(|l| l.is_some_and(|l| l.id == v.id))
             {
-                return Err((done, last, e));
+                if let Err(e) = crate::recompute::store_bytes(
+                    store,
+                    v,
+                    crate::model::Storage::Stored,
+                    &opts.agent,
+                ) {
+                    return Err((done, last, e));
+                }
             }
         }
+        Ok(done)
     }
-    Ok(Some(done))
 }
 
 fn run_step(

@@ -1029,3 +1029,128 @@ proptest::proptest! {
         }
     }
 }
+
+/// The first steps of a plan are computed while its file is taken in (one read of the file);
+/// each file here must give the versions, row indexes, provenance and profiles that the same
+/// steps give when they read the file's stored copy (`--input` bound to the version a
+/// `receive` made): quoted fields with delimiters and line breaks inside, CRLF line ends, a
+/// byte-order mark, blank lines, a semicolon delimiter found by sniffing, no header, a header
+/// alone, and a file larger than intake's batches.
+#[test]
+fn a_plan_computed_while_its_file_is_taken_in_records_what_a_run_on_the_stored_copy_records() {
+    let mut long = String::from("id,name,amount,status\n");
+    for i in 0..40_000 {
+        long.push_str(&format!(
+            "{},\" Name {} \",{}.{:02},{}\n",
+            i % 30_000,
+            i % 977,
+            i % 1_000,
+            i % 100,
+            if i % 7 == 0 { "test" } else { "done" }
+        ));
+    }
+    let files: Vec<(&str, String, bool)> = vec![
+        (
+            "quoted",
+            "id,name,amount,status\n1,\"Smith, Ann\", 12.50 ,done\n2,\"two\nlines\",3,test\n3,\"say \"\"hi\"\"\",4,done\n".into(),
+            true,
+        ),
+        (
+            "crlf",
+            "id,name,amount,status\r\n1, a ,1,done\r\n2,b ,2,test\r\n".into(),
+            true,
+        ),
+        ("bom", "\u{feff}id,name,amount,status\n1, a ,1,done\n".into(), true),
+        (
+            "blank lines",
+            "id,name,amount,status\n1, a ,1,done\n\n2,b,2,done\n\n".into(),
+            true,
+        ),
+        (
+            "semicolons",
+            "id;name;amount;status\n1; a ;1;done\n2;b;2;test\n".into(),
+            true,
+        ),
+        ("no header", "1, a ,1,done\n2,b,2,test\n".into(), false),
+        ("header alone", "id,name,amount,status\n".into(), true),
+        ("long", long, true),
+    ];
+    for (what, text, header) in files {
+        let status = if header { "status" } else { "col4" };
+        let name = if header { "name" } else { "col2" };
+        let id = if header { "id" } else { "col1" };
+        let steps = json!([
+            {"dataset": "orders", "clean": "trim", "reason": "spaces"},
+            {"dataset": "orders", "clean": "case", "settings": {"columns": [name], "to": "upper"}, "reason": "case"},
+            {"dataset": "orders", "clean": "dedupe", "reason": "twice"},
+            {"dataset": "orders", "clean": "drop", "settings": {"predicate": format!("{status} = 'test'")}, "reason": "tests"},
+            {"dataset": "orders", "clean": "summarize", "save_as": "totals",
+             "settings": {"by": [status], "aggregates": [{"func": "max", "column": id}]}, "reason": "largest"}
+        ]);
+        let plan = json!({"sluice_plan": 2,
+            "sources": [{"dataset": "orders", "file": "o.csv", "header": header}],
+            "steps": steps});
+        let fed = Sandbox::with_store();
+        let stored = Sandbox::with_store();
+        for s in [&fed, &stored] {
+            s.file("o.csv", &text);
+            s.file("plan.json", plan.to_string());
+        }
+        fed.ok(&["run", "plan.json"]);
+        let mut receive = vec![
+            "receive",
+            "o.csv",
+            "--as",
+            "orders",
+            "--why",
+            "raw input of a plan",
+        ];
+        if !header {
+            receive.push("--no-header");
+        }
+        stored.ok(&receive);
+        stored.ok(&["run", "plan.json", "--input", "orders=orders:v1"]);
+        assert_eq!(
+            recorded_versions(&fed),
+            recorded_versions(&stored),
+            "the {what} file"
+        );
+        for label in version_labels(&fed) {
+            let f = fed.ok(&["retrieve", &label]);
+            assert_eq!(
+                f,
+                stored.ok(&["retrieve", &label]),
+                "{label} of the {what} file"
+            );
+        }
+        assert_contains(&fed.ok(&["verify"]), "intact");
+    }
+}
+
+/// A file refused part way (a ragged row after rows the steps had already computed) fails the
+/// run at the input, as taking it in alone would, and leaves the store as it was.
+#[test]
+fn a_file_refused_while_its_steps_are_computed_leaves_the_store_as_it_was() {
+    let s = Sandbox::with_store();
+    let mut text = String::from("id,name,status\n");
+    for i in 0..30_000 {
+        text.push_str(&format!("{i}, n{i} ,done\n"));
+    }
+    text.push_str("30000,short\n");
+    s.file("o.csv", &text);
+    s.file(
+        "plan.json",
+        r#"{"sluice_plan": 2,
+            "sources": [{"dataset": "orders", "file": "o.csv"}],
+            "steps": [
+              {"dataset": "orders", "clean": "trim", "reason": "spaces"},
+              {"dataset": "orders", "clean": "drop", "settings": {"predicate": "status = 'test'"}, "reason": "tests"}
+            ]}"#,
+    );
+    let before = s.snapshot();
+    let r = s.run(&["run", "plan.json"]);
+    assert_ne!(r.code, 0);
+    assert_contains(&r.stderr, "input orders");
+    assert_contains(&r.stderr, "30002");
+    assert_eq!(before, s.snapshot());
+}

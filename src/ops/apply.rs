@@ -9,6 +9,7 @@
 //! transaction records the step, the version, its provenance and the audit entry.
 
 use std::io::{self, Read};
+use std::path::PathBuf;
 
 use super::rowwise::{Looker, Mapper, OwnedRow, RowStep, RowStepEnd, Table, Taken};
 use super::summarize::Summary;
@@ -351,88 +352,133 @@ pub(crate) fn compute_chain_summed(
     keep: &[bool],
     summary: Option<&ApplyOptions>,
 ) -> Result<(Vec<Computed>, Option<Summary>)> {
-    let store_dir = store.dir().to_path_buf();
-    let store_io = |e: io::Error| Error::io(&store_dir.join("tmp"), e);
-    let mut stages: Vec<Stage> = Vec::with_capacity(steps.len());
-    let mut reads = input.clone();
-    for (k, opts) in steps.iter().enumerate() {
-        if !fusable(&opts.op, k == 0) || opts.map_table_file.is_some() {
-            return Err(ErrorKind::Internal(format!(
-                "step {} of a fused run cannot be fused",
-                k + 1
-            ))
-            .into());
+    let mut chain = Chain::prepare(store, input, steps, keep, summary)?;
+    chain.expect_rows(input.n_rows);
+    each_input_row(store, input, |in_row, r| chain.row(in_row, r))?;
+    chain.finish()
+}
+
+/// A run of row-by-row steps being computed in one pass ([`compute_chain_summed`]): prepared
+/// on its input's shape, handed every input row in order, then finished. Its input is a stored
+/// version, or a file being taken in whose rows reach it as intake checks them
+/// (`intake::prepare_feeding`): the steps need its header, dataset and blanks, not its name.
+pub(crate) struct Chain {
+    stages: Vec<Stage>,
+    summary: Option<Summary>,
+    store_dir: PathBuf,
+}
+
+impl Chain {
+    /// Prepares every step on the output of the one before (the first on `input`) and starts
+    /// its writer. Nothing is written to the store's named objects.
+    pub(crate) fn prepare(
+        store: &Store,
+        input: &Version,
+        steps: &[ApplyOptions],
+        keep: &[bool],
+        summary: Option<&ApplyOptions>,
+    ) -> Result<Chain> {
+        let store_dir = store.dir().to_path_buf();
+        let store_io = |e: io::Error| Error::io(&store_dir.join("tmp"), e);
+        let mut stages: Vec<Stage> = Vec::with_capacity(steps.len());
+        let mut reads = input.clone();
+        for (k, opts) in steps.iter().enumerate() {
+            if !fusable(&opts.op, k == 0) || opts.map_table_file.is_some() {
+                return Err(ErrorKind::Internal(format!(
+                    "step {} of a fused run cannot be fused",
+                    k + 1
+                ))
+                .into());
+            }
+            let dataset = opts
+                .output_dataset
+                .clone()
+                .unwrap_or_else(|| reads.dataset.clone());
+            validate_dataset_name(&dataset)?;
+            if opts.reason.trim().is_empty() {
+                return Err(Error::usage("--why needs a reason"));
+            }
+            let Ready {
+                mapper,
+                looker,
+                opts,
+                ..
+            } = ready(store, &reads, opts)?;
+            let step = RowStep::new(store, &reads, &opts.op, mapper, looker)?;
+            let header = step.header();
+            // A column this step copies unchanged, every row kept, has the profile the same
+            // column has in the step before's output: it is taken from there, not computed
+            // again.
+            let carried = if k == 0 {
+                Vec::new()
+            } else {
+                step.unchanged_columns()
+            };
+            let unprofiled: Vec<bool> = carried.iter().map(Option::is_some).collect();
+            let writer = if keep.get(k).copied().unwrap_or(true) {
+                output_writer(store, &opts, &header, &input.null_tokens, &unprofiled)
+            } else {
+                CanonicalWriter::leaving_out(None, &header, &input.null_tokens, &unprofiled)
+            }
+            .map_err(store_io)?;
+            // What the next step reads: this step's output, not yet a stored version (only its
+            // header, dataset and blanks are read from it while preparing).
+            reads = Version {
+                id: crate::recording::pending_id(k),
+                dataset,
+                seq: 0,
+                hash: String::new(),
+                row_index: String::new(),
+                n_rows: 0,
+                n_cols: header.len() as u64,
+                n_bytes: 0,
+                header,
+                dialect: crate::table::write::canonical_dialect(),
+                null_tokens: input.null_tokens.clone(),
+                created_at: String::new(),
+                step_id: crate::recording::pending_id(k),
+                storage: crate::model::Storage::Recomputable,
+            };
+            stages.push(Stage {
+                table_id: step.table_id(),
+                step,
+                writer,
+                carried,
+                out: OwnedRow::default(),
+                n_out: 0,
+                started_at: clock::now_rfc3339(),
+                opts,
+            });
         }
-        let dataset = opts
-            .output_dataset
-            .clone()
-            .unwrap_or_else(|| reads.dataset.clone());
-        validate_dataset_name(&dataset)?;
-        if opts.reason.trim().is_empty() {
-            return Err(Error::usage("--why needs a reason"));
-        }
-        let Ready {
-            mapper,
-            looker,
-            opts,
-            ..
-        } = ready(store, &reads, opts)?;
-        let step = RowStep::new(store, &reads, &opts.op, mapper, looker)?;
-        let header = step.header();
-        // A column this step copies unchanged, every row kept, has the profile the same column
-        // has in the step before's output: it is taken from there, not computed again.
-        let carried = if k == 0 {
-            Vec::new()
-        } else {
-            step.unchanged_columns()
+        let summary = match summary {
+            Some(opts) if !stages.is_empty() => Some(Summary::new(&reads, opts)?),
+            Some(_) => {
+                return Err(
+                    ErrorKind::Internal("a summary fused with no step before it".into()).into(),
+                )
+            }
+            None => None,
         };
-        let unprofiled: Vec<bool> = carried.iter().map(Option::is_some).collect();
-        let writer = if keep.get(k).copied().unwrap_or(true) {
-            output_writer(store, &opts, &header, &input.null_tokens, &unprofiled)
-        } else {
-            CanonicalWriter::leaving_out(None, &header, &input.null_tokens, &unprofiled)
-        }
-        .map_err(store_io)?;
-        // What the next step reads: this step's output, not yet a stored version (only its
-        // header, dataset and blanks are read from it while preparing).
-        reads = Version {
-            id: crate::recording::pending_id(k),
-            dataset,
-            seq: 0,
-            hash: String::new(),
-            row_index: String::new(),
-            n_rows: 0,
-            n_cols: header.len() as u64,
-            n_bytes: 0,
-            header,
-            dialect: crate::table::write::canonical_dialect(),
-            null_tokens: input.null_tokens.clone(),
-            created_at: String::new(),
-            step_id: crate::recording::pending_id(k),
-            storage: crate::model::Storage::Recomputable,
-        };
-        stages.push(Stage {
-            table_id: step.table_id(),
-            step,
-            writer,
-            carried,
-            out: OwnedRow::default(),
-            n_out: 0,
-            started_at: clock::now_rfc3339(),
-            opts,
-        });
+        Ok(Chain {
+            stages,
+            summary,
+            store_dir,
+        })
     }
-    for s in &mut stages {
-        s.step.expect_rows(input.n_rows);
-    }
-    let mut summary = match summary {
-        Some(opts) if !stages.is_empty() => Some(Summary::new(&reads, opts)?),
-        Some(_) => {
-            return Err(ErrorKind::Internal("a summary fused with no step before it".into()).into())
+
+    /// How many input rows to expect (an estimate is enough: a step that keeps a table of the
+    /// rows it has seen sizes it from this, and grows it if more come).
+    pub(crate) fn expect_rows(&mut self, rows: u64) {
+        for s in &mut self.stages {
+            s.step.expect_rows(rows);
         }
-        None => None,
-    };
-    each_input_row(store, input, |in_row, r| {
+    }
+
+    /// Hands input row `in_row` (0-based, rows in order) through the steps.
+    pub(crate) fn row(&mut self, in_row: u64, r: RawRecord<'_>) -> Result<()> {
+        let store_dir = &self.store_dir;
+        let store_io = |e: io::Error| Error::io(&store_dir.join("tmp"), e);
+        let stages = &mut self.stages;
         // Where the current row is: the input's record, or the output buffer of the latest
         // stage that built one (a stage whose row is its input row copies nothing).
         let mut held: Option<usize> = None;
@@ -462,43 +508,50 @@ pub(crate) fn compute_chain_summed(
             row = stage.n_out;
             stage.n_out += 1;
             if k + 1 == n_stages {
-                if let Some(summary) = &mut summary {
+                if let Some(summary) = &mut self.summary {
                     summary.add(row, &RawRecord::packed(bytes, ends, row));
                 }
             }
         }
         Ok(())
-    })?;
-    let mut computed = Vec::with_capacity(stages.len());
-    for s in stages {
-        let end = s.step.finish()?;
-        let mut written = s.writer.finish().map_err(store_io)?;
-        for (o, from) in s.carried.iter().enumerate() {
-            let Some(from) = *from else { continue };
-            let before = computed
-                .last()
-                .and_then(|c: &Computed| c.written.profiles.get(from));
-            let (Some(before), Some(own)) = (before, written.profiles.get_mut(o)) else {
-                return Err(ErrorKind::Internal(format!(
-                    "no profile to carry into column {} of a fused step",
-                    o + 1
-                ))
-                .into());
-            };
-            *own = ColumnProfile {
-                name: std::mem::take(&mut own.name),
-                ..before.clone()
-            };
-        }
-        computed.push(Computed {
-            opts: s.opts,
-            started_at: s.started_at,
-            written,
-            end,
-            table_id: s.table_id,
-        });
     }
-    Ok((computed, summary))
+
+    /// Ends the pass: every step's provenance, and its output's hash, row index and profile
+    /// (a column carried from the step before takes that step's profile).
+    pub(crate) fn finish(self) -> Result<(Vec<Computed>, Option<Summary>)> {
+        let store_dir = &self.store_dir;
+        let store_io = |e: io::Error| Error::io(&store_dir.join("tmp"), e);
+        let mut computed = Vec::with_capacity(self.stages.len());
+        for s in self.stages {
+            let end = s.step.finish()?;
+            let mut written = s.writer.finish().map_err(store_io)?;
+            for (o, from) in s.carried.iter().enumerate() {
+                let Some(from) = *from else { continue };
+                let before = computed
+                    .last()
+                    .and_then(|c: &Computed| c.written.profiles.get(from));
+                let (Some(before), Some(own)) = (before, written.profiles.get_mut(o)) else {
+                    return Err(ErrorKind::Internal(format!(
+                        "no profile to carry into column {} of a fused step",
+                        o + 1
+                    ))
+                    .into());
+                };
+                *own = ColumnProfile {
+                    name: std::mem::take(&mut own.name),
+                    ..before.clone()
+                };
+            }
+            computed.push(Computed {
+                opts: s.opts,
+                started_at: s.started_at,
+                written,
+                end,
+                table_id: s.table_id,
+            });
+        }
+        Ok((computed, self.summary))
+    }
 }
 
 /// Records the summary a fused stretch accumulated ([`compute_chain_summed`]) as its step on
