@@ -7,8 +7,8 @@
 //! writes the row index. Three threads on two cores keep both busy whichever part is the
 //! heaviest on a given file. Memory stays bounded by a few pieces in flight plus the
 //! profile (see `table::profile`), whatever the size of the file; only `--key` keeps 16 bytes per
-//! row, to find duplicate keys. A [`Feed`] may be handed each checked row on the calling
-//! thread as well (a plan's first steps, computed in the same read of the file).
+//! row, to find duplicate keys. A [`Feed`] may be handed each checked batch of records as well
+//! (a plan's first steps, computed in the same read of the file on a thread of their own).
 //!
 //! Nothing is referenced until everything has been checked: the objects are made durable, then
 //! one transaction records the step, the version, its profile and the audit entry. A failure at
@@ -146,8 +146,10 @@ pub fn prepare_from(
 pub trait Feed {
     /// The header, before any row, and an estimate of how many rows will follow.
     fn header(&mut self, header: &[String], rows: u64);
-    /// Data row `row` (0-based, in order), parsed as a read of the stored version gives it.
-    fn row(&mut self, row: u64, r: RawRecord<'_>);
+    /// A batch of checked records, parsed as a read of the stored version gives them: its
+    /// first `skip` records are not data (the header), the next is data row `first_row`
+    /// (0-based), and the rest follow in order. Gives back a batch intake may fill again.
+    fn batch(&mut self, batch: RecordBatch, skip: usize, first_row: u64) -> RecordBatch;
 }
 
 /// Whether [`prepare_feeding`] can hand the rows of `path` to a feed: delimited text read as
@@ -915,9 +917,9 @@ struct Fed<'f> {
 }
 
 impl Fed<'_> {
-    /// Hands the data rows of a batch intake has checked to the feed; the header first, with
-    /// the rows the file would hold if all were as long as this batch's.
-    fn batch(&mut self, header: &[String], batch: &RecordBatch) {
+    /// Hands a batch intake has checked to the feed; the header first, with the rows the file
+    /// would hold if all were as long as this batch's. Returns a batch to fill again.
+    fn batch(&mut self, header: &[String], batch: RecordBatch) -> RecordBatch {
         if !self.announced {
             let (mut first, mut last, mut n) = (None, 0u64, 0u64);
             let _ = batch.for_each(|r| -> std::result::Result<(), ()> {
@@ -935,15 +937,11 @@ impl Fed<'_> {
             self.feed.header(header, estimate + estimate / 10);
             self.announced = true;
         }
-        let _ = batch.for_each(|r| -> std::result::Result<(), ()> {
-            if !self.header_seen {
-                self.header_seen = true;
-                return Ok(());
-            }
-            self.feed.row(self.row, r);
-            self.row += 1;
-            Ok(())
-        });
+        let skip = usize::from(!self.header_seen && !batch.is_empty());
+        self.header_seen |= skip > 0;
+        let first_row = self.row;
+        self.row += (batch.len() - skip) as u64;
+        self.feed.batch(batch, skip, first_row)
     }
 }
 
@@ -983,7 +981,7 @@ fn parse_side(
             Msg::Batch(mut batch) => {
                 batch.for_each(|r| sink.on_record(r))?;
                 if let (Some(fed), Some(header)) = (&mut fed, &sink.header) {
-                    fed.batch(header, &batch);
+                    batch = fed.batch(header, batch);
                 }
                 batch.clear();
                 let _ = recycle.send(batch);

@@ -31,6 +31,7 @@ use crate::ops::apply::{self, ApplyOptions, ApplyOutcome};
 use crate::ops::Operation;
 use crate::refs;
 use crate::store::Store;
+use crate::table::batch::RecordBatch;
 
 /// The plan format version this build reads and writes.
 pub const PLAN_FORMAT: u32 = 2;
@@ -531,16 +532,14 @@ pub fn run(
                             store,
                             stretch: &stretch,
                             input: pending_input(&iopts),
-                            chain: None,
-                            failed_write: None,
+                            worker: None,
+                            refused: None,
                         };
                         let prepared =
                             intake::prepare_feeding(store, &path, &iopts, &source, Some(&mut feed));
-                        let chain = match feed.failed_write {
-                            Some(e) => Err(e),
-                            None => Ok(feed.chain.map(|c| (n, stretch, c))),
-                        };
-                        (prepared, chain)
+                        let chain = feed.finish();
+                        drop(feed);
+                        (prepared, chain.map(|c| c.map(|c| (n, stretch, c))))
                     }
                     None => (
                         intake::prepare_from(store, &path, &iopts, &source),
@@ -907,25 +906,58 @@ fn pending_input(iopts: &IngestOptions) -> Version {
     }
 }
 
-/// Computes a stretch on the rows intake hands over ([`intake::Feed`]). A step that refuses
-/// its input, or a row it cannot compute, ends the pass: `chain` is then `None`, and the run
-/// computes the steps from the stored input instead.
+/// Computes a stretch on the rows intake hands over ([`intake::Feed`]), on a thread of its
+/// own (intake's calling thread checks, profiles and indexes the same rows meanwhile). A step
+/// that refuses its input, or a row it cannot compute, ends the pass: [`StretchFeed::finish`]
+/// then gives no chain, and the run computes the steps from the stored input instead.
 struct StretchFeed<'a> {
     store: &'a Store,
     stretch: &'a Stretch,
     input: Version,
-    chain: Option<apply::Chain>,
-    /// A write that failed (a full disk): it fails the run at the stretch's first step, as
-    /// the same failure in a pass over the stored copy does.
-    failed_write: Option<Error>,
+    worker: Option<StretchWorker>,
+    /// Why the stretch could not be prepared.
+    refused: Option<Error>,
 }
 
+/// The thread computing a stretch: batches go to it, and come back to be filled again.
+struct StretchWorker {
+    to: std::sync::mpsc::SyncSender<(RecordBatch, usize, u64)>,
+    back: std::sync::mpsc::Receiver<RecordBatch>,
+    thread: std::thread::JoinHandle<(Option<apply::Chain>, Option<Error>)>,
+}
+
+/// Batches on their way to the stretch's thread at most: a few MiB of rows.
+const BATCHES_AHEAD: usize = 4;
+
 impl StretchFeed<'_> {
-    fn stop(&mut self, e: Error) {
-        self.chain = None;
-        if matches!(e.kind(), ErrorKind::Io { .. }) {
-            self.failed_write.get_or_insert(e);
+    /// Waits for the stretch's thread: the chain when every row went through it; an error
+    /// when a write failed (a full disk: it fails the run at the stretch's first step, as the
+    /// same failure in a pass over the stored copy does); `Ok(None)` when the pass stopped.
+    fn finish(&mut self) -> Result<Option<apply::Chain>> {
+        let refused = self.refused.take();
+        let (chain, error) = match self.worker.take() {
+            Some(w) => {
+                drop(w.to);
+                w.thread.join().map_err(|_| {
+                    Error::from(ErrorKind::Internal(
+                        "the thread of a plan's steps panicked".into(),
+                    ))
+                })?
+            }
+            None => (None, refused),
+        };
+        match error {
+            Some(e) if matches!(e.kind(), ErrorKind::Io { .. }) => Err(e),
+            _ => Ok(chain),
         }
+    }
+}
+
+impl Drop for StretchFeed<'_> {
+    fn drop(&mut self) {
+        // After an intake that failed: the thread ends once it has the batches sent, and its
+        // temporary objects go with it, before the store is left.
+        let _ = self.finish();
     }
 }
 
@@ -934,26 +966,65 @@ impl intake::Feed for StretchFeed<'_> {
         self.input.header = header.to_vec();
         self.input.n_cols = header.len() as u64;
         let s = self.stretch;
-        match apply::Chain::prepare(
+        let mut chain = match apply::Chain::prepare(
             self.store,
             &self.input,
             &s.aopts,
             &s.keep[..s.row_steps],
             s.summary_opts.as_ref(),
         ) {
-            Ok(mut c) => {
-                c.expect_rows(rows);
-                self.chain = Some(c);
+            Ok(c) => c,
+            Err(e) => {
+                self.refused = Some(e);
+                return;
             }
-            Err(e) => self.stop(e),
+        };
+        chain.expect_rows(rows);
+        let (to, rx) = std::sync::mpsc::sync_channel::<(RecordBatch, usize, u64)>(BATCHES_AHEAD);
+        let (back_tx, back) = std::sync::mpsc::channel::<RecordBatch>();
+        let thread = std::thread::Builder::new()
+            .name("sluice-steps".into())
+            .spawn(move || {
+                let mut chain = Some(chain);
+                let mut error = None;
+                while let Ok((mut batch, skip, first_row)) = rx.recv() {
+                    if let Some(c) = &mut chain {
+                        let (mut seen, mut row) = (0usize, first_row);
+                        let done = batch.for_each(|r| {
+                            if seen < skip {
+                                seen += 1;
+                                return Ok(());
+                            }
+                            row += 1;
+                            c.row(row - 1, r)
+                        });
+                        if let Err(e) = done {
+                            chain = None;
+                            error = Some(e);
+                        }
+                    }
+                    batch.clear();
+                    let _ = back_tx.send(batch);
+                }
+                (chain, error)
+            });
+        match thread {
+            Ok(thread) => self.worker = Some(StretchWorker { to, back, thread }),
+            Err(e) => {
+                self.refused = Some(Error::from(ErrorKind::Internal(format!(
+                    "could not start the thread of a plan's steps: {e}"
+                ))))
+            }
         }
     }
 
-    fn row(&mut self, row: u64, r: crate::table::RawRecord<'_>) {
-        if let Some(chain) = &mut self.chain {
-            if let Err(e) = chain.row(row, r) {
-                self.stop(e);
+    fn batch(&mut self, batch: RecordBatch, skip: usize, first_row: u64) -> RecordBatch {
+        match &self.worker {
+            Some(w) => {
+                let _ = w.to.send((batch, skip, first_row));
+                w.back.try_recv().unwrap_or_default()
             }
+            None => batch,
         }
     }
 }
