@@ -610,7 +610,9 @@ fn run_pipeline(
         encoding.is_none_or(|e| e != encoding_rs::UTF_16LE && e != encoding_rs::UTF_16BE);
 
     std::thread::scope(|scope| {
-        let (tx, rx) = mpsc::sync_channel::<Msg>(8);
+        // Batches parsed ahead of the calling thread (fewer when it hands them on to a feed,
+        // which holds some of its own).
+        let (tx, rx) = mpsc::sync_channel::<Msg>(if feed.is_some() { 4 } else { 8 });
         let (recycle_tx, recycle_rx) = mpsc::channel::<RecordBatch>();
         // The raw copy is hashed, compressed and written on a thread of its own: pieces go to
         // it once checked and parsed, and come back to be filled again.
@@ -934,7 +936,7 @@ impl Fed<'_> {
             } else {
                 0
             };
-            self.feed.header(header, estimate + estimate / 10);
+            self.feed.header(header, estimate + estimate / 64);
             self.announced = true;
         }
         let skip = usize::from(!self.header_seen && !batch.is_empty());

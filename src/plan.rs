@@ -927,7 +927,7 @@ struct StretchWorker {
 }
 
 /// Batches on their way to the stretch's thread at most: a few MiB of rows.
-const BATCHES_AHEAD: usize = 4;
+const BATCHES_AHEAD: usize = 2;
 
 impl StretchFeed<'_> {
     /// Waits for the stretch's thread: the chain when every row went through it; an error

@@ -30,11 +30,13 @@ pub struct Written {
     pub profiles: Vec<ColumnProfile>,
 }
 
-/// Rows handed to the writer thread: field bytes back to back, and the end of every field.
+/// Rows handed to the writer thread: field bytes back to back, and the end of every field
+/// (32 bits each: a batch holds about [`BATCH_BYTES`]; the nine writers of a ten-step plan
+/// hold some 36 batches, whose ends would be half their memory at 64 bits).
 #[derive(Default)]
 struct Batch {
     bytes: Vec<u8>,
-    ends: Vec<usize>,
+    ends: Vec<u32>,
     rows: usize,
 }
 
@@ -88,11 +90,17 @@ impl CanonicalWriter {
         let thread = std::thread::Builder::new()
             .name("sluice-writer".into())
             .spawn(move || {
+                let mut ends: Vec<usize> = Vec::with_capacity(n_cols);
                 for mut b in batches {
                     let mut start = 0;
                     for row in 0..b.rows {
-                        let ends = &b.ends[row * n_cols..(row + 1) * n_cols];
-                        serial.write_row(&b.bytes, start, ends)?;
+                        ends.clear();
+                        ends.extend(
+                            b.ends[row * n_cols..(row + 1) * n_cols]
+                                .iter()
+                                .map(|&e| e as usize),
+                        );
+                        serial.write_row(&b.bytes, start, &ends)?;
                         start = ends.last().copied().unwrap_or(start);
                     }
                     b.bytes.clear();
@@ -119,9 +127,10 @@ impl CanonicalWriter {
     /// Writes one data row; `fields` must have one value per header column.
     pub fn write_row(&mut self, fields: &[&[u8]]) -> io::Result<()> {
         debug_assert_eq!(fields.len(), self.n_cols);
+        self.make_room(fields.iter().map(|f| f.len()).sum())?;
         for f in fields {
             self.batch.bytes.extend_from_slice(f);
-            self.batch.ends.push(self.batch.bytes.len());
+            self.batch.ends.push(self.batch.bytes.len() as u32);
         }
         self.batch.rows += 1;
         if self.batch.bytes.len() >= BATCH_BYTES || self.batch.rows >= BATCH_BYTES / 16 {
@@ -134,11 +143,29 @@ impl CanonicalWriter {
     /// ends (an operation's output row), without a list of slices.
     pub fn write_packed(&mut self, bytes: &[u8], ends: &[usize]) -> io::Result<()> {
         debug_assert_eq!(ends.len(), self.n_cols);
+        self.make_room(bytes.len())?;
         let base = self.batch.bytes.len();
         self.batch.bytes.extend_from_slice(bytes);
-        self.batch.ends.extend(ends.iter().map(|e| base + e));
+        self.batch
+            .ends
+            .extend(ends.iter().map(|e| (base + e) as u32));
         self.batch.rows += 1;
         if self.batch.bytes.len() >= BATCH_BYTES || self.batch.rows >= BATCH_BYTES / 16 {
+            self.send()?;
+        }
+        Ok(())
+    }
+
+    /// Sends the batch on first when a row of `len` bytes would take its field ends past 32
+    /// bits; a row that long on its own cannot be written.
+    fn make_room(&mut self, len: usize) -> io::Result<()> {
+        let limit = u32::MAX as usize;
+        if len > limit {
+            return Err(io::Error::other(format!(
+                "a row of {len} bytes is longer than a version can hold (at most {limit})"
+            )));
+        }
+        if self.batch.bytes.len() + len > limit {
             self.send()?;
         }
         Ok(())
