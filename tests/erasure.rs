@@ -596,6 +596,25 @@ fn carrying_out_an_order_erases_one_person_everywhere_and_keeps_the_proof_of_the
     assert!(!text.contains("recomputable"), "{text}");
     let report = s.json(&["verify", "--json"]);
     assert_eq!(report["intact"], true, "{report:#}");
+    // verify counts each version as `about` calls it: a reached version (its erased form) as
+    // stored, whatever its recorded storage.
+    let (mut recomputable, mut reached_recomputable) = (0u64, 0);
+    for entry in s.json(&["timeline", "--json"]).as_array().unwrap() {
+        for out in entry["produced"].as_array().into_iter().flatten() {
+            let label = format!("{}:v{}", out["dataset"].as_str().unwrap(), out["seq"]);
+            let about = s.json(&["about", &label, "--json"]);
+            let reached = about["erasures"].as_array().is_some_and(|e| !e.is_empty());
+            if about["storage"] == "recomputable" {
+                if reached {
+                    reached_recomputable += 1;
+                } else {
+                    recomputable += 1;
+                }
+            }
+        }
+    }
+    assert!(reached_recomputable > 0, "the case this checks");
+    assert_eq!(report["versions_recomputable"], recomputable, "{report:#}");
 
     // A guessed value is not confirmable: no salt the store still holds, with her name or
     // address, gives any leaf the store keeps for an erased cell.
