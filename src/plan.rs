@@ -519,85 +519,28 @@ pub fn run(
                 let source = intake::SourceOptions {
                     sheet: input.sheet.clone(),
                 };
-                // The last input, when the plan's first steps read it row by row, is taken in
-                // and passed through those steps in the same read of the file.
-                let ahead = if i + 1 == n_sources {
-                    stretch_on_intake(store, plan, &current, &iopts, &path, &source, opts)
-                } else {
-                    None
-                };
-                let (prepared, chain) = match ahead {
-                    Some((n, stretch)) => {
-                        let mut feed = StretchFeed {
-                            store,
-                            stretch: &stretch,
-                            input: pending_input(&iopts),
-                            worker: None,
-                            refused: None,
-                        };
-                        let prepared =
-                            intake::prepare_feeding(store, &path, &iopts, &source, Some(&mut feed));
-                        let chain = feed.finish();
-                        drop(feed);
-                        (prepared, chain.map(|c| c.map(|c| (n, stretch, c))))
-                    }
-                    None => (
-                        intake::prepare_from(store, &path, &iopts, &source),
-                        Ok(None),
-                    ),
-                };
-                match prepared.and_then(|p| intake::record_prepared(store, p, &iopts)) {
-                    Ok(outcome) => {
-                        let v = match &outcome {
-                            IngestOutcome::Recorded { version, .. }
-                            | IngestOutcome::Unchanged { version } => version.clone(),
-                        };
+                let file = (&iopts, path.as_path(), &source);
+                match take_in(store, plan, i + 1 == n_sources, file, &mut current, opts) {
+                    Ok((outcome, ahead)) => {
                         let differs_from = input
                             .hash
                             .clone()
-                            .filter(|h| !h.eq_ignore_ascii_case(&v.hash));
-                        current.insert(input.dataset.clone(), v.clone());
+                            .filter(|h| !h.eq_ignore_ascii_case(&taken_in(&outcome).hash));
                         done.push(Done::TookIn {
                             name: input.dataset.clone(),
                             path,
                             outcome: Box::new(outcome),
                             differs_from,
                         });
-                        // A pass that could not finish leaves the steps to the loop below,
-                        // which computes them from the stored input (and stops where and as
-                        // that run does); a failed write fails the run at the first step.
-                        let chain = match chain {
-                            Ok(c) => c,
-                            Err(error) => {
-                                let at = format!("step 1 ({})", plan.steps[0].describe());
-                                return Err(RunFailure { done, at, error });
+                        match ahead {
+                            Ahead::Nothing => {}
+                            Ahead::Recorded { n, items } => {
+                                done.extend(items);
+                                skip_until = n;
                             }
-                        };
-                        if let Some((n, stretch, chain)) = chain {
-                            match chain.finish() {
-                                Ok(computed) => {
-                                    match stretch.record(store, v, computed, 1, &mut current, opts)
-                                    {
-                                        Ok(items) => {
-                                            done.extend(items);
-                                            skip_until = n;
-                                        }
-                                        Err((items, k, error)) => {
-                                            done.extend(items);
-                                            let at = format!(
-                                                "step {} ({})",
-                                                k + 1,
-                                                plan.steps[k].describe()
-                                            );
-                                            return Err(RunFailure { done, at, error });
-                                        }
-                                    }
-                                }
-                                Err(error) if matches!(error.kind(), ErrorKind::Io { .. }) => {
-                                    let at = format!("step 1 ({})", plan.steps[0].describe());
-                                    return Err(RunFailure { done, at, error });
-                                }
-                                Err(_) => {}
+                            Ahead::Failed { items, at, error } => {
+                                done.extend(items);
+                                return Err(RunFailure { done, at, error });
                             }
                         }
                     }
@@ -837,11 +780,91 @@ fn fusable_stretch(
 /// the step that failed, and why.
 type FusedFailure = (Vec<Done>, usize, Error);
 
-/// Runs a stretch of row-by-row steps in one pass ([`apply::compute_chain`]), then records
-/// each step in turn in its own transaction, as [`run_step`] would. `Ok(None)`: the pass could
-/// not be completed (a step refused its input, a cell could not be read), nothing was
-/// recorded, and the caller runs the steps one at a time instead, which stops where and as
-/// such a run does. A failed write stops the run at the stretch's first step.
+/// What became of a plan's first stretch computed while its input was taken in ([`take_in`]).
+enum Ahead {
+    /// None was computed (or the pass could not finish): the steps run as usual.
+    Nothing,
+    /// The first `n` steps are recorded.
+    Recorded { n: usize, items: Vec<Done> },
+    /// The intake is recorded, and the run stopped at a step of the stretch.
+    Failed {
+        items: Vec<Done>,
+        at: String,
+        error: Error,
+    },
+}
+
+/// Takes in the file `path` as input `iopts.dataset` and records it, giving the dataset that
+/// version in `current`. When it is the plan's last input (`last`) and the plan's first steps
+/// read it row by row ([`stretch_on_intake`]), they are computed on its rows as intake reads
+/// them and recorded after it. An error is the intake's: nothing of it is recorded.
+fn take_in(
+    store: &mut Store,
+    plan: &Plan,
+    last: bool,
+    (iopts, path, source): (&IngestOptions, &Path, &intake::SourceOptions),
+    current: &mut BTreeMap<String, Version>,
+    opts: &RunOptions,
+) -> Result<(IngestOutcome, Ahead)> {
+    let ahead = if last {
+        stretch_on_intake(store, plan, current, iopts, path, source, opts)
+    } else {
+        None
+    };
+    let Some((n, stretch)) = ahead else {
+        let outcome = intake::ingest_from(store, path, iopts, source)?;
+        current.insert(iopts.dataset.clone(), taken_in(&outcome).clone());
+        return Ok((outcome, Ahead::Nothing));
+    };
+    let mut feed = StretchFeed {
+        store,
+        stretch: &stretch,
+        input: pending_input(iopts),
+        worker: None,
+        refused: None,
+    };
+    let prepared = intake::prepare_feeding(store, path, iopts, source, Some(&mut feed));
+    let chain = feed.finish();
+    drop(feed);
+    let outcome = intake::record_prepared(store, prepared?, iopts)?;
+    let v = taken_in(&outcome).clone();
+    current.insert(iopts.dataset.clone(), v.clone());
+    let at_first = || format!("step 1 ({})", plan.steps[0].describe());
+    // A failed write fails the run at the stretch's first step; a pass that could not finish
+    // leaves the steps to the run's loop, which computes them from the stored input (and stops
+    // where and as that run does).
+    let computed = match chain.and_then(|c| c.map(apply::Chain::finish).transpose()) {
+        Ok(Some(computed)) => computed,
+        Ok(None) => return Ok((outcome, Ahead::Nothing)),
+        Err(error) if matches!(error.kind(), ErrorKind::Io { .. }) => {
+            let at = at_first();
+            let ahead = Ahead::Failed {
+                items: Vec::new(),
+                at,
+                error,
+            };
+            return Ok((outcome, ahead));
+        }
+        Err(_) => return Ok((outcome, Ahead::Nothing)),
+    };
+    let ahead = match stretch.record(store, v, computed, 1, current, opts) {
+        Ok(items) => Ahead::Recorded { n, items },
+        Err((items, k, error)) => Ahead::Failed {
+            items,
+            at: format!("step {} ({})", k + 1, plan.steps[k].describe()),
+            error,
+        },
+    };
+    Ok((outcome, ahead))
+}
+
+/// The version an intake recorded or found unchanged.
+fn taken_in(outcome: &IngestOutcome) -> &Version {
+    match outcome {
+        IngestOutcome::Recorded { version, .. } | IngestOutcome::Unchanged { version } => version,
+    }
+}
+
 /// The stretch of steps at the start of `plan` to compute while its last input, a file, is
 /// taken in, and how many steps it holds: when the first step reads that input, at least two
 /// steps form a stretch ([`fusable_stretch`]), the first needs no read of its input ahead
@@ -1029,6 +1052,11 @@ impl intake::Feed for StretchFeed<'_> {
     }
 }
 
+/// Runs a stretch of row-by-row steps in one pass ([`apply::compute_chain`]), then records
+/// each step in turn in its own transaction, as [`run_step`] would. `Ok(None)`: the pass could
+/// not be completed (a step refused its input, a cell could not be read), nothing was
+/// recorded, and the caller runs the steps one at a time instead, which stops where and as
+/// such a run does. A failed write stops the run at the stretch's first step.
 fn run_fused(
     store: &mut Store,
     steps: &[PlanStep],
