@@ -1035,7 +1035,8 @@ proptest::proptest! {
 /// steps give when they read the file's stored copy (`--input` bound to the version a
 /// `receive` made): quoted fields with delimiters and line breaks inside, CRLF line ends, a
 /// byte-order mark, blank lines, a semicolon delimiter found by sniffing, no header, a header
-/// alone, and a file larger than intake's batches.
+/// alone, and a file larger than intake's batches; with a null token, which the profiles of
+/// every step count as blank.
 #[test]
 fn a_plan_computed_while_its_file_is_taken_in_records_what_a_run_on_the_stored_copy_records() {
     let mut long = String::from("id,name,amount,status\n");
@@ -1052,7 +1053,7 @@ fn a_plan_computed_while_its_file_is_taken_in_records_what_a_run_on_the_stored_c
     let files: Vec<(&str, String, bool)> = vec![
         (
             "quoted",
-            "id,name,amount,status\n1,\"Smith, Ann\", 12.50 ,done\n2,\"two\nlines\",3,test\n3,\"say \"\"hi\"\"\",4,done\n".into(),
+            "id,name,amount,status\n1,\"Smith, Ann\", 12.50 ,done\n2,\"two\nlines\",NA,test\n3,\"say \"\"hi\"\"\",4,done\n4,NA,NA,done\n".into(),
             true,
         ),
         (
@@ -1088,7 +1089,7 @@ fn a_plan_computed_while_its_file_is_taken_in_records_what_a_run_on_the_stored_c
              "settings": {"by": [status], "aggregates": [{"func": "max", "column": id}]}, "reason": "largest"}
         ]);
         let plan = json!({"sluice_plan": 2,
-            "sources": [{"dataset": "orders", "file": "o.csv", "header": header}],
+            "sources": [{"dataset": "orders", "file": "o.csv", "header": header, "null_tokens": ["NA"]}],
             "steps": steps});
         let fed = Sandbox::with_store();
         let stored = Sandbox::with_store();
@@ -1104,6 +1105,8 @@ fn a_plan_computed_while_its_file_is_taken_in_records_what_a_run_on_the_stored_c
             "orders",
             "--why",
             "raw input of a plan",
+            "--null-token",
+            "NA",
         ];
         if !header {
             receive.push("--no-header");
