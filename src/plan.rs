@@ -819,7 +819,7 @@ fn take_in(
     let mut feed = StretchFeed {
         store,
         stretch: &stretch,
-        input: pending_input(iopts),
+        iopts,
         worker: None,
         refused: None,
     };
@@ -829,7 +829,6 @@ fn take_in(
     let outcome = intake::record_prepared(store, prepared?, iopts)?;
     let v = taken_in(&outcome).clone();
     current.insert(iopts.dataset.clone(), v.clone());
-    let at_first = || format!("step 1 ({})", plan.steps[0].describe());
     // A failed write fails the run at the stretch's first step; a pass that could not finish
     // leaves the steps to the run's loop, which computes them from the stored input (and stops
     // where and as that run does).
@@ -837,7 +836,7 @@ fn take_in(
         Ok(Some(computed)) => computed,
         Ok(None) => return Ok((outcome, Ahead::Nothing)),
         Err(error) if matches!(error.kind(), ErrorKind::Io { .. }) => {
-            let at = at_first();
+            let at = format!("step 1 ({})", plan.steps[0].describe());
             let ahead = Ahead::Failed {
                 items: Vec::new(),
                 at,
@@ -890,7 +889,7 @@ fn stretch_on_intake(
         return None;
     }
     let mut ahead = current.clone();
-    ahead.insert(iopts.dataset.clone(), pending_input(iopts));
+    ahead.insert(iopts.dataset.clone(), pending_input(iopts, Vec::new()));
     let n = fusable_stretch(store, &plan.steps, &ahead);
     if n < 2
         || plan.steps[..n].iter().any(|s| {
@@ -909,24 +908,15 @@ fn stretch_on_intake(
 }
 
 /// The input of a stretch computed while its file is taken in, before it has a name: its
-/// dataset and blanks; the header is filled in when intake has read it.
-fn pending_input(iopts: &IngestOptions) -> Version {
-    Version {
-        id: crate::recording::pending_id(0),
-        dataset: iopts.dataset.clone(),
-        seq: 0,
-        hash: String::new(),
-        row_index: String::new(),
-        n_rows: 0,
-        n_cols: 0,
-        n_bytes: 0,
-        header: Vec::new(),
-        dialect: crate::table::write::canonical_dialect(),
-        null_tokens: iopts.null_tokens.clone(),
-        created_at: String::new(),
-        step_id: crate::recording::pending_id(0),
-        storage: crate::model::Storage::Stored,
-    }
+/// dataset and blanks, and the header once intake has read it.
+fn pending_input(iopts: &IngestOptions, header: Vec<String>) -> Version {
+    crate::recording::unnamed_version(
+        0,
+        iopts.dataset.clone(),
+        header,
+        iopts.null_tokens.clone(),
+        crate::model::Storage::Stored,
+    )
 }
 
 /// Computes a stretch on the rows intake hands over ([`intake::Feed`]), on a thread of its
@@ -936,7 +926,7 @@ fn pending_input(iopts: &IngestOptions) -> Version {
 struct StretchFeed<'a> {
     store: &'a Store,
     stretch: &'a Stretch,
-    input: Version,
+    iopts: &'a IngestOptions,
     worker: Option<StretchWorker>,
     /// Why the stretch could not be prepared.
     refused: Option<Error>,
@@ -986,12 +976,10 @@ impl Drop for StretchFeed<'_> {
 
 impl intake::Feed for StretchFeed<'_> {
     fn header(&mut self, header: &[String], rows: u64) {
-        self.input.header = header.to_vec();
-        self.input.n_cols = header.len() as u64;
         let s = self.stretch;
         let mut chain = match apply::Chain::prepare(
             self.store,
-            &self.input,
+            &pending_input(self.iopts, header.to_vec()),
             &s.aopts,
             &s.keep[..s.row_steps],
             s.summary_opts.as_ref(),

@@ -131,6 +131,34 @@ pub fn pending_id(index: usize) -> i64 {
     -(index as i64) - 1
 }
 
+/// A version not recorded yet, as a step being prepared reads it: its dataset, header and
+/// blanks (no name, rows or bytes yet), under the placeholder id of the `index`-th pending
+/// version.
+pub fn unnamed_version(
+    index: usize,
+    dataset: String,
+    header: Vec<String>,
+    null_tokens: Vec<String>,
+    storage: Storage,
+) -> Version {
+    Version {
+        id: pending_id(index),
+        dataset,
+        seq: 0,
+        hash: String::new(),
+        row_index: String::new(),
+        n_rows: 0,
+        n_cols: header.len() as u64,
+        n_bytes: 0,
+        header,
+        dialect: canonical_dialect(),
+        null_tokens,
+        created_at: String::new(),
+        step_id: pending_id(index),
+        storage,
+    }
+}
+
 /// Records a pending step and its version inside `tx`; `real` turns a pending input's
 /// placeholder id into the id its version was given. Returns (version id, step id, seq). The
 /// audit entry is the caller's, since one may cover several steps.

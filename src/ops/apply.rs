@@ -423,22 +423,13 @@ impl Chain {
             .map_err(store_io)?;
             // What the next step reads: this step's output, not yet a stored version (only its
             // header, dataset and blanks are read from it while preparing).
-            reads = Version {
-                id: crate::recording::pending_id(k),
+            reads = crate::recording::unnamed_version(
+                k,
                 dataset,
-                seq: 0,
-                hash: String::new(),
-                row_index: String::new(),
-                n_rows: 0,
-                n_cols: header.len() as u64,
-                n_bytes: 0,
                 header,
-                dialect: crate::table::write::canonical_dialect(),
-                null_tokens: input.null_tokens.clone(),
-                created_at: String::new(),
-                step_id: crate::recording::pending_id(k),
-                storage: crate::model::Storage::Recomputable,
-            };
+                input.null_tokens.clone(),
+                crate::model::Storage::Recomputable,
+            );
             stages.push(Stage {
                 table_id: step.table_id(),
                 step,
