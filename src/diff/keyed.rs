@@ -9,7 +9,8 @@
 //! reading its values again; the others, and the removed and added rows, are read in a second
 //! pass, where the keys of each pair are also confirmed on their values. When rows are cut out
 //! by offset and both versions together are at most [`super::read::KEEP_BYTES`], the first pass keeps the
-//! bytes it read (checked against each version's hash) and the second cuts its rows out of
+//! bytes of the rows the second may need (checked against each version's hash; the two sides
+//! meet by fingerprint as they read, [`super::meet`]) and the second cuts its rows out of
 //! them: each object is then decoded and hashed once, not twice.
 //!
 //! Keys are hashed with XXH3-64. Two rows of one side with the same hash are read again:
@@ -22,8 +23,9 @@
 
 use super::lineage::Link;
 use super::listed::{compare_pairs, Listing};
+use super::meet::{Ends, Meet, COPY_SHARE};
 use super::read::{both, cuttable, each_row, free_aside, offsets, Cut};
-use super::scan::{scan, scan_keys, KeyParts, Prints, Scan, ScanPlan};
+use super::scan::{scan, scan_keys, Keep, KeyParts, Prints, Scan, ScanPlan};
 use super::{
     pairs_that_differ, push_pair, Diff, DuplicateGroup, DuplicateKeys, Layout, MatchedBy,
     RowPairing,
@@ -84,11 +86,23 @@ pub(super) fn run(
     let key_bits = KeyParts::bits_for(a.n_rows.max(b.n_rows));
     let mut seed = 0u64;
     let (mut sa, mut sb, dup_texts) = loop {
+        // A pass repeated with another seed reads every row again: bytes kept in part cannot
+        // serve it, so it reads the object and meets the other side afresh.
+        for ix in [&mut ia, &mut ib].into_iter().flatten() {
+            if ix.cut.kept.as_ref().is_some_and(|k| !k.is_whole()) {
+                ix.cut.kept = None;
+            }
+        }
+        let budget = usize::try_from(keep_bytes / COPY_SHARE).unwrap_or(usize::MAX);
+        let meet = Meet::new(a.n_rows, b.n_rows, budget);
         let plan = |k: &'_ [usize],
                     fp: Option<&'_ [usize]>,
                     cand: &'_ [usize],
                     v: &Version,
-                    index: &Option<Index>| {
+                    index: &Option<Index>,
+                    side: usize| {
+            // However this side's pass ends, the other no longer waits for it.
+            let _ends = Ends(&meet, side);
             let plan = ScanPlan {
                 key: Some(k),
                 fp_cols: fp,
@@ -105,6 +119,11 @@ pub(super) fn run(
                         None => Prints::Cells,
                     };
                     let how = (k, seed, v.null_tokens.as_slice(), key_bits);
+                    let keep = if keep {
+                        Keep::Met(&meet, side)
+                    } else {
+                        Keep::No
+                    };
                     scan_keys(objects, v, &ix.cut, prints, how, keep)?
                 }
                 None => scan(objects, v, &plan)?,
@@ -113,8 +132,8 @@ pub(super) fn run(
             Ok(s)
         };
         let (mut sa, mut sb) = both(
-            || plan(&ka, fp_a.as_deref(), &cand_a, a, &ia),
-            || plan(&kb, fp_b.as_deref(), &cand_b, b, &ib),
+            || plan(&ka, fp_a.as_deref(), &cand_a, a, &ia, 0),
+            || plan(&kb, fp_b.as_deref(), &cand_b, b, &ib, 1),
         )?;
         for (ix, s) in [(&mut ia, &mut sa), (&mut ib, &mut sb)] {
             if let (Some(ix), Some(k)) = (ix, s.kept.take()) {

@@ -15,7 +15,7 @@
 
 use xxhash_rust::xxh3::xxh3_64_with_seed;
 
-use super::read::{both, cuttable, each_row, rows_at, Cut, RawRows, RowStore};
+use super::read::{both, cuttable, each_row, rows_at, Cut, RowStore};
 use super::{cell_diffs, count_by_column, listing, CellDiff, Change};
 use crate::error::{ErrorKind, Result};
 use crate::model::Version;
@@ -426,11 +426,7 @@ fn each_wanted(
         return Ok(());
     }
     if cuttable(v) {
-        let cut = match known {
-            Some(c) => c.clone(),
-            None => Cut::offsets(super::read::offsets(objects, v)?.1),
-        };
-        let mut raw = RawRows::cut(objects, v, &cut)?;
+        let mut raw = super::read::wanted_rows_reader(objects, v, known, wanted)?;
         for &w in wanted {
             raw.with_record(w, |r| f(w, r))?;
         }

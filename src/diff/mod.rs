@@ -35,6 +35,7 @@ pub mod chars;
 pub mod keyed;
 pub mod lineage;
 pub mod listed;
+mod meet;
 pub mod read;
 mod scan;
 
@@ -774,12 +775,29 @@ mod tests {
     use crate::intake::{ingest, IngestOptions};
     use crate::model::Agent;
 
+    /// How the second of [`two_versions`] orders its rows.
+    #[derive(Debug, Clone, Copy, PartialEq)]
+    enum Order {
+        /// As the first does.
+        Same,
+        /// Backwards: no row meets its equal where the first pass would look for it.
+        Reversed,
+        /// After 20,000 new rows: every equal lies far behind its proportional place.
+        AfterNew,
+    }
+
     /// Two versions of one keyed table with changed, removed, added, quoted and repeated-key
-    /// rows, a multi-line cell and CRLF line endings in the second; about a megabyte each, so
-    /// that each is stored in several frames and rows cross from one frame into the next.
-    fn two_versions(dir: &std::path::Path) -> (Store, Version, Version) {
+    /// rows, a multi-line cell and CRLF line endings in the second, its rows in `order`; about
+    /// a megabyte each, so that each is stored in several frames and rows cross from one frame
+    /// into the next.
+    fn two_versions(dir: &std::path::Path, order: Order) -> (Store, Version, Version) {
         let mut first = String::from("id,shop,amount,note\n");
-        let mut second = String::from("id,shop,amount,note\r\n");
+        let mut second = String::new();
+        if order == Order::AfterNew {
+            for i in 0..20_000u32 {
+                second.push_str(&format!("A{i:05},Ferry Lane,{}.25,early\r\n", i % 89));
+            }
+        }
         for i in 0..30_000u32 {
             let note = match i % 5 {
                 0 => "\"said \"\"later\"\"\"".to_string(),
@@ -804,12 +822,41 @@ mod tests {
                     second.push_str("\r\n");
                 }
             }
+            if i == 100 {
+                // Two rows sharing a key, swapped: paired in order, each pair differs though
+                // each row has an equal on the other side, so the first pass may have let
+                // them go and the second must read them again.
+                let (x, y) = ("D00100,Mill Row,1.00,x", "D00100,Mill Row,2.00,y");
+                first.push_str(&format!("{x}\n{y}\n"));
+                second.push_str(&format!("{y}\r\n{x}\r\n"));
+            }
             if i % 13 == 0 {
                 // Added rows, one of them repeating a key.
                 second.push_str(&format!("N{i:05},Ferry Lane,1.00,new\r\n"));
             }
         }
         second.push_str("K00007,Ferry Lane,2.00,again\r\n");
+        if order == Order::Reversed {
+            // Rows hold quoted line breaks: reversed record by record, not line by line.
+            let mut records = Vec::new();
+            let mut rest = second.as_str();
+            while !rest.is_empty() {
+                let mut quoted = false;
+                let end = rest
+                    .char_indices()
+                    .find(|&(_, c)| {
+                        if c == '"' {
+                            quoted = !quoted;
+                        }
+                        c == '\n' && !quoted
+                    })
+                    .map_or(rest.len(), |(i, _)| i + 1);
+                records.push(&rest[..end]);
+                rest = &rest[end..];
+            }
+            second = records.into_iter().rev().collect();
+        }
+        let second = format!("id,shop,amount,note\r\n{second}");
         std::fs::write(dir.join("first.csv"), first).unwrap();
         std::fs::write(dir.join("second.csv"), second).unwrap();
         let agent = Agent::new("Robin Example", Some("robin@example.org"), "option");
@@ -836,26 +883,47 @@ mod tests {
 
     /// Keeping the versions' bytes between the passes is only a way of reading them: a
     /// comparison by key (listed in full or in part) and one by order give the same answer with
-    /// them kept and with every row read again.
+    /// them kept, with only the rows that met no equal kept (in the same order, reversed, or
+    /// far from their places; with room to copy them all, or too little, so that the rest is
+    /// kept whole), and with every row read again.
     #[test]
     fn a_comparison_is_the_same_whether_or_not_its_bytes_are_kept() {
+        for order in [Order::Same, Order::Reversed, Order::AfterNew] {
+            same_whether_or_not_kept(order);
+        }
+    }
+
+    fn same_whether_or_not_kept(order: Order) {
         let dir = tempfile::tempdir().unwrap();
-        let (store, a, b) = two_versions(dir.path());
+        let (store, a, b) = two_versions(dir.path(), order);
         let by_key = DiffOptions {
             key: KeyChoice::Columns(vec!["id".into()]),
         };
         let by_order = DiffOptions {
             key: KeyChoice::Unkeyed,
         };
-        for (opts, list) in [
-            (&by_key, Listing::All),
-            (&by_key, Listing::First(25)),
-            (&by_order, Listing::All),
-        ] {
+        // The rows of the second in another order concern only the first pass by key (the one
+        // whose sides meet); compared by order they would only be slow.
+        let ways: &[(&DiffOptions, Listing)] = match order {
+            Order::Same => &[
+                (&by_key, Listing::All),
+                (&by_key, Listing::First(25)),
+                (&by_order, Listing::All),
+            ],
+            _ => &[(&by_key, Listing::All)],
+        };
+        for &(opts, list) in ways {
             assert!(a.n_bytes > 3 * u64::from(crate::store::segments::FRAME_SIZE));
             let kept = diff_keeping(&store, &a, &b, opts, list, u64::MAX).unwrap();
             let again = diff_keeping(&store, &a, &b, opts, list, 0).unwrap();
-            assert_eq!(format!("{kept:?}"), format!("{again:?}"));
+            assert_eq!(format!("{kept:?}"), format!("{again:?}"), "{order:?}");
+            if matches!(opts.key, KeyChoice::Columns(_)) {
+                // Room for both versions, and an eighth of that for copied rows: about 600 KB,
+                // less than a reversed version's rows.
+                let tight =
+                    diff_keeping(&store, &a, &b, opts, list, a.n_bytes + b.n_bytes).unwrap();
+                assert_eq!(format!("{tight:?}"), format!("{again:?}"), "{order:?}");
+            }
             assert!(kept.n_changes > 500, "{}", kept.n_changes);
             assert_eq!(
                 kept.duplicates.is_some(),

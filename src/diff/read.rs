@@ -388,16 +388,27 @@ pub fn cuttable(v: &Version) -> bool {
 /// objects again, so memory stays bounded.
 pub const KEEP_BYTES: u64 = 256 << 20;
 
-/// A version's whole bytes, read once and kept for a later pass: the pieces the object was
-/// read in (a segment object's frames, each where its decoding thread put it: nothing is
-/// copied, and the kernel's first touch of that memory happens on the decoding threads), and
-/// where each starts.
+/// A version's bytes, read once and kept for a later pass: the pieces the object was read in (a
+/// segment object's frames, each where its decoding thread put it: nothing is copied, and the
+/// kernel's first touch of that memory happens on the decoding threads), and where each
+/// starts. A first pass that meets the other side's rows as it reads ([`super::meet`]) gives
+/// back the pieces whose rows all have an equal on the other side, after copying out the rows
+/// that may not ([`RawRows::let_go`]): the bytes before [`Self::whole_from`] are then only those
+/// rows.
 #[derive(Debug, Default)]
 pub struct Kept {
     pieces: Vec<Vec<u8>>,
     /// Where each piece starts in the version's bytes.
     starts: Vec<u64>,
     len: u64,
+    /// `pieces[..first]` were given back (and are empty); they end where `pieces[first]`
+    /// starts.
+    first: usize,
+    /// The rows copied out of pieces before they were given back, one after another.
+    copied: Vec<u8>,
+    /// Per copied row, ascending: its byte range in the version and where it starts in
+    /// `copied`.
+    rows: Vec<(u64, u64, usize)>,
 }
 
 impl Kept {
@@ -407,7 +418,7 @@ impl Kept {
         self.pieces.push(piece);
     }
 
-    /// How many bytes are kept.
+    /// How many bytes were read (kept whole, or given back with some rows copied out).
     pub fn len(&self) -> u64 {
         self.len
     }
@@ -416,11 +427,46 @@ impl Kept {
         self.len == 0
     }
 
+    /// Where the bytes kept whole start: before it, only the copied rows are held.
+    pub fn whole_from(&self) -> u64 {
+        self.starts.get(self.first).copied().unwrap_or(self.len)
+    }
+
+    /// Whether every byte read is still held (no piece was given back).
+    pub fn is_whole(&self) -> bool {
+        self.first == 0
+    }
+
+    /// How many bytes of rows were copied out of pieces given back.
+    pub fn copied_len(&self) -> usize {
+        self.copied.len()
+    }
+
+    /// Whether the bytes `from..to` (one row's) can be had: kept whole, or copied as that row.
+    pub fn holds(&self, from: u64, to: u64) -> bool {
+        if to > self.len || from > to {
+            return false;
+        }
+        from >= self.whole_from() || from == to || self.copied_row(from, to).is_some()
+    }
+
+    /// Where the row `from..to` was copied to, if it was.
+    fn copied_row(&self, from: u64, to: u64) -> Option<usize> {
+        let i = self.rows.binary_search_by_key(&from, |r| r.0).ok()?;
+        let (_, end, at) = self.rows[i];
+        (end == to).then_some(at)
+    }
+
     /// Where bytes `from..to` (non-empty, within [`Self::len`]) lie: within one piece, or
-    /// across several ([`Held::Spill`], after copying them into `spill`). `at` is the piece the
-    /// last call found: rows are mostly asked for in order, so the next is that one or the one
-    /// after.
-    fn locate(&self, from: u64, to: u64, at: &mut usize, spill: &mut Vec<u8>) -> Held {
+    /// across several ([`Held::Spill`], after copying them into `spill`), or, before
+    /// [`Self::whole_from`], in the copy of that row (`None` when the row was not copied).
+    /// `at` is the piece the last call found: rows are mostly asked for in order, so the next
+    /// is that one or the one after.
+    fn locate(&self, from: u64, to: u64, at: &mut usize, spill: &mut Vec<u8>) -> Option<Held> {
+        if from < self.whole_from() {
+            let c = self.copied_row(from, to)?;
+            return Some(Held::Copied(c, c + (to - from) as usize));
+        }
         let holds = |c: usize| {
             c < self.pieces.len()
                 && self.starts[c] <= from
@@ -438,7 +484,11 @@ impl Kept {
         *at = c;
         let (start, piece) = (self.starts[c], &self.pieces[c]);
         if to <= start + piece.len() as u64 {
-            return Held::Piece(c, (from - start) as usize, (to - start) as usize);
+            return Some(Held::Piece(
+                c,
+                (from - start) as usize,
+                (to - start) as usize,
+            ));
         }
         // A row that crosses from one piece into the next: copied apart.
         spill.clear();
@@ -450,7 +500,32 @@ impl Kept {
             spill.extend_from_slice(&p[a as usize..b as usize]);
             k += 1;
         }
-        Held::Spill
+        Some(Held::Spill)
+    }
+
+    /// Copies the row `from..to` (held whole, not yet copied, after every row copied so far).
+    fn copy_row(&mut self, from: u64, to: u64, spill: &mut Vec<u8>) -> Option<()> {
+        let mut at = self.first;
+        let held = self.locate(from, to, &mut at, spill)?;
+        let bytes = match held {
+            Held::Piece(c, a, b) => &self.pieces[c][a..b],
+            Held::Spill => &spill[..],
+            Held::Copied(..) | Held::Buf(..) => return None,
+        };
+        let start = self.copied.len();
+        self.copied.extend_from_slice(bytes);
+        self.rows.push((from, to, start));
+        Some(())
+    }
+
+    /// Gives back, through `give`, the pieces that end at or before `boundary`.
+    fn give_back_before(&mut self, boundary: u64, mut give: impl FnMut(Vec<u8>)) {
+        while self.first < self.pieces.len()
+            && self.starts[self.first] + self.pieces[self.first].len() as u64 <= boundary
+        {
+            give(std::mem::take(&mut self.pieces[self.first]));
+            self.first += 1;
+        }
     }
 }
 
@@ -461,6 +536,8 @@ enum Held {
     Buf(usize, usize),
     Piece(usize, usize, usize),
     Spill,
+    /// A range of [`Kept::copied`].
+    Copied(usize, usize),
 }
 
 /// What a diff's first pass leaves for its second about one version: the byte offset of every
@@ -651,7 +728,9 @@ impl RawRows {
                 self.spill.clear();
                 return Ok(Held::Spill);
             }
-            return Ok(k.locate(start, end, &mut self.piece_at, &mut self.spill));
+            return k
+                .locate(start, end, &mut self.piece_at, &mut self.spill)
+                .ok_or_else(|| not_kept(&self.label, row));
         }
         // Read until the row is whole, first dropping what lies before it (only then, so that
         // the buffer moves once per piece read, not once per row).
@@ -773,6 +852,55 @@ impl RawRows {
         Ok(fp)
     }
 
+    /// The first row of the kept piece that holds row `upto`'s first byte (of the last piece
+    /// read, when that byte is not read yet): the rows before it lie in pieces
+    /// [`Self::let_go`] can give back. At most `upto`; 0 when nothing is being kept.
+    pub fn held_from_row(&self, upto: u64) -> u64 {
+        let Some(k) = &self.keeping else {
+            return 0;
+        };
+        let Some(last) = k.pieces.len().checked_sub(1) else {
+            return 0;
+        };
+        let at = self
+            .offsets
+            .get(upto as usize)
+            .copied()
+            .unwrap_or(self.n_bytes);
+        let c = k
+            .starts
+            .partition_point(|&s| s <= at)
+            .saturating_sub(1)
+            .clamp(k.first.min(last), last);
+        let boundary = k.starts[c];
+        self.offsets.partition_point(|&o| o < boundary) as u64
+    }
+
+    /// Copies the rows `copy` (ascending, after every row copied before, each before `bound`,
+    /// which [`Self::held_from_row`] gave) out of the kept pieces, then gives back to be
+    /// decoded into again every piece that ends at or before row `bound`'s first byte: the rows
+    /// of those pieces not copied are no longer held ([`Kept::whole_from`]).
+    pub fn let_go(&mut self, bound: u64, copy: &[u64]) -> Result<()> {
+        let (Some(k), Some(pieces)) = (self.keeping.as_mut(), self.pieces.as_mut()) else {
+            return Ok(());
+        };
+        let end = |i: usize| self.offsets.get(i).copied().unwrap_or(self.n_bytes);
+        for &row in copy {
+            let i = row as usize;
+            let (from, to) = (end(i), end(i + 1));
+            if from < to && k.copy_row(from, to, &mut self.spill).is_none() {
+                return Err(not_kept(&self.label, row));
+            }
+        }
+        k.give_back_before(end(bound as usize), |p| pieces.give_back(p));
+        Ok(())
+    }
+
+    /// How many bytes of rows [`Self::let_go`] copied so far.
+    pub fn copied_len(&self) -> usize {
+        self.keeping.as_ref().map_or(0, Kept::copied_len)
+    }
+
     /// Reads the rest of the object and checks its hash (nothing to do for kept bytes, checked
     /// when they were read).
     pub fn finish(mut self) -> Result<()> {
@@ -816,6 +944,16 @@ impl RawRows {
     }
 }
 
+/// The error for a row a first pass did not keep, asked for from what it kept (the readers of
+/// a second pass check first, [`wanted_rows_reader`]).
+fn not_kept(label: &str, row: u64) -> Error {
+    ErrorKind::Inconsistent(format!(
+        "row {} of {label} was not kept by the first pass of this comparison",
+        row + 1
+    ))
+    .into()
+}
+
 /// The error for a version whose bytes do not match its row index.
 fn short(label: &str) -> Error {
     ErrorKind::Inconsistent(format!(
@@ -841,7 +979,37 @@ fn held<'h>(
             Some(k) => &k.pieces[c][from..to],
             None => &[],
         },
+        Held::Copied(from, to) => match kept.as_deref().or(keeping.as_ref()) {
+            Some(k) => &k.copied[from..to],
+            None => &[],
+        },
     }
+}
+
+/// A reader of the rows `wanted` (0-based, ascending) of `v`, which can be cut out by offset:
+/// out of the bytes a first pass kept (`known`) when they hold every one of those rows, else
+/// out of the object, read again (the row index too, when no first pass read it).
+pub fn wanted_rows_reader(
+    objects: &Objects,
+    v: &Version,
+    known: Option<&Cut>,
+    wanted: &[u64],
+) -> Result<RawRows> {
+    let mut cut = match known {
+        Some(c) => c.clone(),
+        None => Cut::offsets(offsets(objects, v)?.1),
+    };
+    if let Some(k) = cut.kept.as_deref().filter(|k| !k.is_whole()) {
+        let all = wanted.iter().all(|&w| {
+            let i = w as usize;
+            let to = cut.offsets.get(i + 1).copied().unwrap_or(k.len());
+            cut.offsets.get(i).is_some_and(|&from| k.holds(from, to))
+        });
+        if !all {
+            cut.kept = None;
+        }
+    }
+    RawRows::cut(objects, v, &cut)
 }
 
 /// Reads the rows `wanted` (0-based, ascending) of `v` into a [`RowStore`].
@@ -862,11 +1030,7 @@ pub fn rows_at(
         return Ok(out);
     }
     if cuttable(v) {
-        let cut = match known {
-            Some(c) => c.clone(),
-            None => Cut::offsets(offsets(objects, v)?.1),
-        };
-        let mut raw = RawRows::cut(objects, v, &cut)?;
+        let mut raw = wanted_rows_reader(objects, v, known, wanted)?;
         for &w in wanted {
             raw.parse_into(w, &mut out)?;
         }
@@ -916,11 +1080,68 @@ mod tests {
             for (from, to) in ranges.into_iter().chain(backwards) {
                 let at = kept.locate(from as u64, to as u64, &mut piece, &mut spill);
                 let got = match at {
-                    Held::Piece(c, a, b) => &kept.pieces[c][a..b],
-                    Held::Spill => &spill[..],
-                    Held::Buf(..) => panic!("kept bytes found in the reading buffer"),
+                    Some(Held::Piece(c, a, b)) => &kept.pieces[c][a..b],
+                    Some(Held::Spill) => &spill[..],
+                    other => panic!("{other:?} for bytes kept whole"),
                 };
                 assert_eq!(got, &whole[from..to], "{sizes:?} {from}..{to}");
+            }
+        }
+    }
+
+    /// Rows copied out before their pieces are given back are found as they were, every other
+    /// row before where the whole bytes start is not held (and asked for, not found), and the
+    /// bytes from there on are still given as one buffer would.
+    #[test]
+    fn rows_copied_before_their_pieces_go_are_found_and_no_others() {
+        let whole: Vec<u8> = (0..=255u8).cycle().take(120).collect();
+        // Rows of 1 to 11 bytes, some crossing pieces of 17 bytes.
+        let mut bounds = vec![0u64];
+        while *bounds.last().unwrap() < 120 {
+            let next = bounds.last().unwrap() + 1 + bounds.len() as u64 % 11;
+            bounds.push(next.min(120));
+        }
+        let rows: Vec<(u64, u64)> = bounds.windows(2).map(|w| (w[0], w[1])).collect();
+        for cut_row in [0usize, 1, 5, rows.len() / 2, rows.len() - 1, rows.len()] {
+            for every in [1usize, 2, 3] {
+                let mut kept = Kept::default();
+                for piece in whole.chunks(17) {
+                    kept.push(piece.to_vec());
+                }
+                let copy: Vec<usize> = (0..cut_row).filter(|r| r % every == 0).collect();
+                let mut spill = Vec::new();
+                for &r in &copy {
+                    let (from, to) = rows[r];
+                    assert!(kept.copy_row(from, to, &mut spill).is_some());
+                }
+                let boundary = rows.get(cut_row).map_or(120, |r| r.0);
+                let mut given = 0;
+                kept.give_back_before(boundary, |p| given += p.len());
+                let whole_from = kept.whole_from();
+                assert!(whole_from <= boundary);
+                assert_eq!(given as u64, whole_from);
+                assert_eq!(kept.is_whole(), whole_from == 0);
+                let mut at = 0;
+                for (r, &(from, to)) in rows.iter().enumerate() {
+                    let expect_held = from >= whole_from || copy.contains(&r);
+                    assert_eq!(
+                        kept.holds(from, to),
+                        expect_held,
+                        "row {r} cut at {cut_row}"
+                    );
+                    let got = match kept.locate(from, to, &mut at, &mut spill) {
+                        Some(Held::Piece(c, a, b)) => kept.pieces[c][a..b].to_vec(),
+                        Some(Held::Spill) => spill.clone(),
+                        Some(Held::Copied(a, b)) => kept.copied[a..b].to_vec(),
+                        Some(Held::Buf(..)) => panic!("kept bytes found in the reading buffer"),
+                        None => {
+                            assert!(!expect_held, "row {r} held but not found");
+                            continue;
+                        }
+                    };
+                    assert!(expect_held);
+                    assert_eq!(got, &whole[from as usize..to as usize], "row {r}");
+                }
             }
         }
     }

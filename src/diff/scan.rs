@@ -2,10 +2,12 @@
 //! the two versions share, and the hash of each column that might be a renamed one. All of it
 //! fixed-size numbers, so this pass keeps a few words per row and no values.
 
+use std::collections::VecDeque;
 use std::sync::Arc;
 
 use xxhash_rust::xxh3::{xxh3_64, xxh3_64_with_seed};
 
+use super::meet::{Meet, EVERY};
 use super::read::{each_row, plain_fingerprint, Cut, RawRows};
 use crate::error::Result;
 use crate::model::Version;
@@ -180,20 +182,30 @@ pub enum Prints<'p> {
     Bytes,
 }
 
+/// Whether a first pass keeps the bytes it reads for the second.
+#[derive(Debug, Clone, Copy)]
+pub enum Keep<'m> {
+    No,
+    /// The bytes of the rows that may have no equal on the other side, met there as side 0 or
+    /// 1 ([`Meet`]); the rest of the version when too many rows do not meet in time.
+    Met(&'m Meet, usize),
+}
+
 /// The first pass when the fingerprints are whole rows (no rename candidates) and rows can be
 /// cut out by offset: each row, cut out by `offsets` (the row index's), has the fields up to
 /// its last key column split directly off its bytes (parsed only when a quote comes first),
 /// its key hashed from the pieces, and its fingerprint taken as `prints` says. The same key
 /// hashes as [`scan`], without running the parser over every row. With `keep`, the version's
-/// bytes are kept and handed over in [`Scan::kept`] (checked against its hash); rows are cut
-/// out of bytes `cut` holds already, if any (a pass repeated with another seed).
+/// bytes (or those of its rows without an equal on the other side, [`Keep::Met`]) are kept
+/// and handed over in [`Scan::kept`] (checked against its hash); rows are cut out of bytes
+/// `cut` holds already, if any (a pass repeated with another seed: they must be whole).
 pub fn scan_keys(
     objects: &Objects,
     v: &Version,
     cut: &Cut,
     prints: Prints<'_>,
     (key, seed, null_tokens, key_bits): (&[usize], u64, &[String], u32),
-    keep: bool,
+    keep: Keep<'_>,
 ) -> Result<Scan> {
     let n = cut.offsets.len() as u64;
     let mut s = Scan {
@@ -205,7 +217,11 @@ pub fn scan_keys(
         ..Scan::default()
     };
     let last = key.iter().copied().max().unwrap_or(0);
-    let mut raw = RawRows::open(objects, v, cut, keep)?;
+    let mut raw = RawRows::open(objects, v, cut, !matches!(keep, Keep::No))?;
+    let mut meeting = match keep {
+        Keep::Met(meet, side) if cut.kept.is_none() => Some(Meeting::new(meet, side)),
+        _ => None,
+    };
     let delimiter = v.dialect.delimiter_byte();
     let mut scratch = Vec::new();
     let mut fp_scratch = Vec::new();
@@ -257,9 +273,70 @@ pub fn scan_keys(
                 }
             })?;
         }
+        if let Some(m) = &mut meeting {
+            m.read(s.fps[row as usize], row, &mut raw)?;
+        }
+    }
+    if let Some(m) = &mut meeting {
+        m.meet(n, &mut raw)?;
     }
     s.kept = raw.done()?;
     Ok(s)
+}
+
+/// One side's part in a [`Meet`]: the rows read since it last met the other side, and those
+/// waiting for an equal there.
+struct Meeting<'m> {
+    meet: &'m Meet,
+    side: usize,
+    batch: Vec<(u64, u64)>,
+    waiting: VecDeque<(u64, u64)>,
+    /// False once [`Meet::budget`] is spent: the rest is kept whole.
+    letting_go: bool,
+}
+
+impl<'m> Meeting<'m> {
+    fn new(meet: &'m Meet, side: usize) -> Self {
+        Meeting {
+            meet,
+            side,
+            batch: Vec::with_capacity(EVERY),
+            waiting: VecDeque::new(),
+            letting_go: true,
+        }
+    }
+
+    /// Row `row`, with fingerprint `fp`, was read; every [`EVERY`] rows the sides meet.
+    fn read(&mut self, fp: u64, row: u64, raw: &mut RawRows) -> Result<()> {
+        self.batch.push((fp, row));
+        if self.batch.len() == EVERY {
+            self.meet(row + 1, raw)?;
+        }
+        Ok(())
+    }
+
+    /// Publishes the rows read before `read`, then decides about the waiting rows the other
+    /// side has read past: copies out those still waiting and gives back the frames they lay
+    /// in.
+    fn meet(&mut self, read: u64, raw: &mut RawRows) -> Result<()> {
+        self.meet
+            .publish(self.side, &self.batch, read, &mut self.waiting);
+        self.batch.clear();
+        if !self.letting_go {
+            self.waiting.clear();
+            return Ok(());
+        }
+        let bound = raw.held_from_row(self.meet.covered(self.side).min(read));
+        let decided = self.waiting.partition_point(|w| w.1 < bound);
+        let copy = self
+            .meet
+            .still_waiting(self.side, self.waiting.drain(..decided));
+        raw.let_go(bound, &copy)?;
+        if raw.copied_len() > self.meet.budget() {
+            self.letting_go = false;
+        }
+        Ok(())
+    }
 }
 
 /// A row's bytes without its line ending (and any blank lines after it).

@@ -589,6 +589,12 @@ impl AheadReader {
 pub trait Pieces: Send {
     /// The next piece (never empty); `None` at the end of the object.
     fn next_piece(&mut self) -> io::Result<Option<Vec<u8>>>;
+
+    /// Takes back a piece handed over earlier that its reader no longer needs, to decode a
+    /// later frame into (memory already touched, so no fresh pages); the default drops it.
+    fn give_back(&mut self, piece: Vec<u8>) {
+        drop(piece);
+    }
 }
 
 impl Pieces for AheadReader {
@@ -598,9 +604,15 @@ impl Pieces for AheadReader {
             self.pos = self.out.len();
             return Ok(Some(rest));
         }
-        // A frame handed over is not given back: its thread decodes the next one into a
-        // fresh buffer.
+        // A frame handed over comes back only through `give_back`: until then its thread
+        // decodes the next one into a fresh buffer.
         self.take()
+    }
+
+    fn give_back(&mut self, piece: Vec<u8>) {
+        // To the thread of the next frame not yet taken (which may have stopped: the piece is
+        // then simply dropped).
+        let _ = self.spent[self.next % DECODERS].send(piece);
     }
 }
 
