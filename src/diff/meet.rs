@@ -11,7 +11,9 @@
 //! copied out (and no longer wait), the others dropped, and the frames before them given
 //! back. A side more than [`LEAD`] rows ahead of the other (proportionally) waits for it, so
 //! that the table stays small (in the processor's cache) and few frames are held; a side that
-//! has ended, well or not, is waited for no longer, and two sides cannot both be ahead. The
+//! has ended, well or not, is waited for no longer, and two sides cannot both be ahead. When a
+//! side has copied more than its budget (versions in another order), both stop meeting and
+//! keep the rest of their versions whole. The
 //! second pass checks that what was kept holds every row it needs, and reads the object again
 //! when not (rows sharing a key, say), so the meeting only decides what is kept, never what a
 //! diff says.
@@ -23,18 +25,18 @@ use std::sync::{Condvar, Mutex, MutexGuard};
 
 /// Rows to spare past the proportional position before a side's rows are decided: equals
 /// moved by about this many rows (rows inserted or removed before them) are still met.
-pub const SLACK: u64 = 8192;
+pub const SLACK: u64 = 2048;
 
 /// How far (in its own rows, proportionally) a side may read ahead of the other before it waits.
-pub const LEAD: u64 = 8192;
+pub const LEAD: u64 = 1024;
 
 /// How many rows a side reads between two meetings.
-pub const EVERY: usize = 2048;
+pub const EVERY: usize = 1024;
 
 /// What share of the bytes a diff may keep (both versions whole) a side may spend on copied
-/// rows: past it the side stops giving frames back and keeps the rest of its version whole
-/// (versions in another order, where few rows meet in time).
-pub const COPY_SHARE: u64 = 8;
+/// rows: past it both sides stop meeting and keep the rest of their versions whole (versions in
+/// another order, where few rows meet in time).
+pub const COPY_SHARE: u64 = 32;
 
 /// Fingerprints are already uniform 64-bit hashes: the table uses them as they are.
 #[derive(Default)]
@@ -73,6 +75,8 @@ pub struct Meet {
     ended: [AtomicBool; 2],
     /// How many bytes of copied rows a side may hold.
     budget: usize,
+    /// Set when a side spent its budget: neither side meets any more.
+    given_up: AtomicBool,
 }
 
 /// One side's count in a table entry.
@@ -95,7 +99,23 @@ impl Meet {
             published: [AtomicU64::new(0), AtomicU64::new(0)],
             rows: [rows_a, rows_b],
             ended: [AtomicBool::new(false), AtomicBool::new(false)],
+            given_up: AtomicBool::new(false),
         }
+    }
+
+    /// Whether the sides stopped meeting (a side spent its budget): each keeps the rest of its
+    /// version whole.
+    pub fn given_up(&self) -> bool {
+        self.given_up.load(Ordering::Acquire)
+    }
+
+    /// Stops the meeting for both sides: the rows still waiting are kept (copied, or in the
+    /// pieces not given back), the table is emptied, and a side waiting for the other goes on.
+    pub fn give_up(&self) {
+        let mut open = self.table();
+        self.given_up.store(true, Ordering::Release);
+        *open = Table::default();
+        self.moved.notify_all();
     }
 
     /// How many bytes of copied rows a side may hold before it keeps the rest whole.
@@ -136,7 +156,10 @@ impl Meet {
         }
         self.published[side].store(read, Ordering::Release);
         self.moved.notify_all();
-        while self.ahead(side) > LEAD && !self.ended[1 - side].load(Ordering::Acquire) {
+        while self.ahead(side) > LEAD
+            && !self.ended[1 - side].load(Ordering::Acquire)
+            && !self.given_up()
+        {
             open = self.moved.wait(open).unwrap_or_else(|p| p.into_inner());
         }
     }

@@ -682,19 +682,41 @@ impl RawRows {
     }
 
     /// The bytes [`Self::fill`] found.
+    #[inline]
     fn data(&self, at: Held) -> &[u8] {
         held(at, &self.kept, &self.keeping, &self.buf, &self.spill)
     }
 
     /// The bytes of row `row` (its record, line ending and any blank lines after it). Rows
     /// must be asked for in increasing order.
+    #[inline]
     pub fn bytes(&mut self, row: u64) -> Result<&[u8]> {
         let at = self.fill(row)?;
         Ok(self.data(at))
     }
 
     /// Reads until row `row` is whole in the buffer (or kept); returns where it lies.
+    #[inline]
     fn fill(&mut self, row: u64) -> Result<Held> {
+        // The common case, kept small enough to inline into a pass over every row: the row
+        // lies whole in the kept piece the row before was found in (a given-back piece is
+        // empty, so never found here).
+        let i = row as usize;
+        if let (Some(&start), Some(&end)) = (self.offsets.get(i), self.offsets.get(i + 1)) {
+            if let Some(k) = self.kept.as_deref().or(self.keeping.as_ref()) {
+                let c = self.piece_at;
+                if let (Some(&s), Some(p)) = (k.starts.get(c), k.pieces.get(c)) {
+                    if s <= start && start < end && end <= s + p.len() as u64 {
+                        return Ok(Held::Piece(c, (start - s) as usize, (end - s) as usize));
+                    }
+                }
+            }
+        }
+        self.fill_any(row)
+    }
+
+    /// [`Self::fill`] in every case.
+    fn fill_any(&mut self, row: u64) -> Result<Held> {
         let i = row as usize;
         let (Some(&start), end) = (self.offsets.get(i), self.offsets.get(i + 1)) else {
             return Err(self.short());
@@ -965,6 +987,7 @@ fn short(label: &str) -> Error {
 /// The bytes a [`RawRows`] cuts its rows out of: those an earlier pass kept, those this pass
 /// keeps, or its reading buffer (a function of the fields, so that the parser can be borrowed
 /// beside them).
+#[inline]
 fn held<'h>(
     at: Held,
     kept: &'h Option<Arc<Kept>>,

@@ -291,7 +291,7 @@ struct Meeting<'m> {
     side: usize,
     batch: Vec<(u64, u64)>,
     waiting: VecDeque<(u64, u64)>,
-    /// False once [`Meet::budget`] is spent: the rest is kept whole.
+    /// False once a side spent its [`Meet::budget`]: the rest is kept whole.
     letting_go: bool,
 }
 
@@ -319,13 +319,16 @@ impl<'m> Meeting<'m> {
     /// side has read past: copies out those still waiting and gives back the frames they lay
     /// in.
     fn meet(&mut self, read: u64, raw: &mut RawRows) -> Result<()> {
-        self.meet
-            .publish(self.side, &self.batch, read, &mut self.waiting);
-        self.batch.clear();
-        if !self.letting_go {
+        if !self.letting_go || self.meet.given_up() {
+            // The rest of the version is kept whole.
+            self.letting_go = false;
+            self.batch.clear();
             self.waiting.clear();
             return Ok(());
         }
+        self.meet
+            .publish(self.side, &self.batch, read, &mut self.waiting);
+        self.batch.clear();
         let bound = raw.held_from_row(self.meet.covered(self.side).min(read));
         let decided = self.waiting.partition_point(|w| w.1 < bound);
         let copy = self
@@ -334,6 +337,7 @@ impl<'m> Meeting<'m> {
         raw.let_go(bound, &copy)?;
         if raw.copied_len() > self.meet.budget() {
             self.letting_go = false;
+            self.meet.give_up();
         }
         Ok(())
     }
