@@ -120,11 +120,11 @@ pub fn offsets(objects: &Objects, v: &Version) -> Result<(Option<Vec<u64>>, Vec<
         let mut data = head.to_vec();
         reader.read_to_end(&mut data).map_err(io)?;
         check_hash(&hash, &reader.hasher)?;
-        let positions = rowindex::positions(&data).map_err(|e| damaged(&e.to_string()))?;
-        if positions.len() as u64 != v.n_rows {
+        let offsets = rowindex::offsets(&data).map_err(|e| damaged(&e.to_string()))?;
+        if offsets.len() as u64 != v.n_rows {
             return Err(damaged("its length does not match the row count"));
         }
-        return Ok((None, positions.into_iter().map(|(b, _)| b).collect()));
+        return Ok((None, offsets));
     }
     let mut fps = Vec::with_capacity(v.n_rows as usize);
     let mut offsets = Vec::with_capacity(v.n_rows as usize);

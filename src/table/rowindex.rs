@@ -278,11 +278,44 @@ pub fn encode(rows: impl IntoIterator<Item = (u64, u64)>) -> Vec<u8> {
 
 /// The (byte offset, 1-based line) of every data row of a whole row index of either format.
 pub fn positions(data: &[u8]) -> io::Result<Vec<(u64, u64)>> {
+    let mut out = Vec::new();
+    each_position(
+        data,
+        &mut out,
+        |o, n| o.reserve(n.min(1 << 24) as usize),
+        |o, byte, line| o.push((byte, line)),
+    )?;
+    Ok(out)
+}
+
+/// The byte offset of every data row of a whole row index of either format (8 bytes a row
+/// held, where [`positions`] holds 16).
+pub fn offsets(data: &[u8]) -> io::Result<Vec<u64>> {
+    let mut out = Vec::new();
+    each_position(
+        data,
+        &mut out,
+        |o, n| o.reserve(n.min(1 << 24) as usize),
+        |o, byte, _| o.push(byte),
+    )?;
+    Ok(out)
+}
+
+/// Calls `each` with the byte offset and 1-based line of every data row of a whole row index of
+/// either format, in order, after `count` with how many rows it holds; both get `out`.
+fn each_position<T>(
+    data: &[u8],
+    out: &mut T,
+    count: impl FnOnce(&mut T, u64),
+    mut each: impl FnMut(&mut T, u64, u64),
+) -> io::Result<()> {
     if format_of(data)? == FORMAT_VERSION {
         let n = validate(data)?;
-        return Ok((0..n)
-            .filter_map(|i| entry(data, i).map(|e| (e.byte, e.line)))
-            .collect());
+        count(out, n);
+        for e in (0..n).filter_map(|i| entry(data, i)) {
+            each(out, e.byte, e.line);
+        }
+        return Ok(());
     }
     let tail_at = data
         .len()
@@ -291,7 +324,7 @@ pub fn positions(data: &[u8]) -> io::Result<Vec<(u64, u64)>> {
         .ok_or_else(|| invalid("row index too short for its tail"))?;
     let tail = Tail::read(&data[tail_at..], data.len() as u64)?;
     let tokens_end = HEADER_LEN + tail.tokens_len as usize;
-    let mut out = Vec::with_capacity(tail.n_rows.min(1 << 24) as usize);
+    count(out, tail.n_rows);
     let mut at = HEADER_LEN;
     let (mut byte, mut line) = (0u64, 0u64);
     let stride = u64::from(tail.stride);
@@ -314,12 +347,12 @@ pub fn positions(data: &[u8]) -> io::Result<Vec<(u64, u64)>> {
                 )));
             }
         }
-        out.push((byte, line));
+        each(out, byte, line);
     }
     if at != tokens_end {
         return Err(bad());
     }
-    Ok(out)
+    Ok(())
 }
 
 /// The (byte offset, 1-based line) of 0-based data row `row` in a whole row index of either
