@@ -132,3 +132,27 @@ mod tests {
         assert!("xyz".parse::<Hash>().is_err());
     }
 }
+
+/// A hasher for keys that are already uniform 64-bit hashes (XXH3 of values, row
+/// fingerprints): a table of them uses their bits as they are, with nothing hashed again.
+#[derive(Debug, Default, Clone, Copy)]
+pub struct AsIs(u64);
+
+impl std::hash::Hasher for AsIs {
+    fn finish(&self) -> u64 {
+        self.0
+    }
+
+    fn write(&mut self, bytes: &[u8]) {
+        for &b in bytes {
+            self.0 = self.0.rotate_left(8) ^ u64::from(b);
+        }
+    }
+
+    fn write_u64(&mut self, n: u64) {
+        self.0 = n;
+    }
+}
+
+/// What a set or map keyed by such hashes is built with ([`AsIs`]).
+pub type AsIsBuild = std::hash::BuildHasherDefault<AsIs>;

@@ -20,7 +20,6 @@
 
 use std::collections::HashSet;
 use std::convert::Infallible;
-use std::hash::{BuildHasherDefault, Hasher};
 use std::sync::mpsc::{sync_channel, Receiver};
 
 use similar::algorithms::{myers, DiffHook};
@@ -42,26 +41,7 @@ pub const PAIR_WINDOW: u64 = 32;
 const BATCH_ROWS: usize = 4096;
 
 /// Fingerprints are already uniform hashes: a set of them needs no further hashing.
-#[derive(Default)]
-struct Identity(u64);
-
-impl Hasher for Identity {
-    fn finish(&self) -> u64 {
-        self.0
-    }
-
-    fn write(&mut self, bytes: &[u8]) {
-        for &b in bytes {
-            self.0 = (self.0 << 8) | u64::from(b);
-        }
-    }
-
-    fn write_u64(&mut self, n: u64) {
-        self.0 = n;
-    }
-}
-
-type FpSet = HashSet<u64, BuildHasherDefault<Identity>>;
+type FpSet = HashSet<u64, crate::hash::AsIsBuild>;
 
 /// Runs of matched rows (start in A, start in B, length), in order.
 struct Runs<'a> {

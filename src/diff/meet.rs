@@ -19,9 +19,10 @@
 //! diff says.
 
 use std::collections::{HashMap, VecDeque};
-use std::hash::{BuildHasherDefault, Hasher};
 use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
 use std::sync::{Condvar, Mutex, MutexGuard};
+
+use crate::hash::AsIsBuild;
 
 /// Rows to spare past the proportional position before a side's rows are decided: equals
 /// moved by about this many rows (rows inserted or removed before them) are still met.
@@ -38,29 +39,9 @@ pub const EVERY: usize = 1024;
 /// another order, where few rows meet in time).
 pub const COPY_SHARE: u64 = 32;
 
-/// Fingerprints are already uniform 64-bit hashes: the table uses them as they are.
-#[derive(Default)]
-struct AsIs(u64);
-
-impl Hasher for AsIs {
-    fn finish(&self) -> u64 {
-        self.0
-    }
-
-    fn write(&mut self, bytes: &[u8]) {
-        for &b in bytes {
-            self.0 = self.0.rotate_left(8) ^ u64::from(b);
-        }
-    }
-
-    fn write_u64(&mut self, n: u64) {
-        self.0 = n;
-    }
-}
-
 /// Per fingerprint, how many rows wait for an equal: side 0's as a positive count, side 1's as
 /// a negative one (a small entry keeps the table in the cache).
-type Table = HashMap<u64, i32, BuildHasherDefault<AsIs>>;
+type Table = HashMap<u64, i32, AsIsBuild>;
 
 /// The meeting place of the two sides (0 and 1) of one first pass.
 #[derive(Debug)]

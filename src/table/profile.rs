@@ -32,37 +32,14 @@ const HLL_REGISTERS: usize = 1 << HLL_BITS;
 
 /// Counts distinct values: exactly while few, then by HyperLogLog.
 enum Distinct {
-    Exact(HashSet<u64, BuildXxh>),
+    /// Values are already hashed with XXH3: the set uses those bits as they are.
+    Exact(HashSet<u64, crate::hash::AsIsBuild>),
     Estimate(Box<[u8; HLL_REGISTERS]>),
-}
-
-/// Values are already hashed with XXH3; the set only needs to spread those bits.
-#[derive(Default, Clone, Copy)]
-struct BuildXxh;
-struct PassThrough(u64);
-impl std::hash::Hasher for PassThrough {
-    fn finish(&self) -> u64 {
-        self.0
-    }
-    fn write(&mut self, bytes: &[u8]) {
-        for &b in bytes {
-            self.0 = self.0.rotate_left(8) ^ u64::from(b);
-        }
-    }
-    fn write_u64(&mut self, n: u64) {
-        self.0 = n;
-    }
-}
-impl std::hash::BuildHasher for BuildXxh {
-    type Hasher = PassThrough;
-    fn build_hasher(&self) -> PassThrough {
-        PassThrough(0)
-    }
 }
 
 impl Distinct {
     fn new() -> Self {
-        Distinct::Exact(HashSet::with_hasher(BuildXxh))
+        Distinct::Exact(HashSet::default())
     }
 
     fn insert(&mut self, h: u64) {
