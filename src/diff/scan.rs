@@ -274,7 +274,10 @@ pub fn scan_keys(
             })?;
         }
         if let Some(m) = &mut meeting {
-            m.read(s.fps[row as usize], row, &mut raw)?;
+            // Every row has its fingerprint by now (pushed above, or stored); a missing one
+            // would only cost the meeting a row, which the second pass reads again.
+            let fp = s.fps.get(row as usize).copied().unwrap_or_default();
+            m.read(fp, row, &mut raw)?;
         }
     }
     if let Some(m) = &mut meeting {
