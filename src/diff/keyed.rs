@@ -84,6 +84,7 @@ pub(super) fn run(
         _ => false,
     };
     let key_bits = KeyParts::bits_for(a.n_rows.max(b.n_rows));
+    let budget = usize::try_from(keep_bytes / COPY_SHARE).unwrap_or(usize::MAX);
     let mut seed = 0u64;
     let (mut sa, mut sb, dup_texts) = loop {
         // A pass repeated with another seed reads every row again: bytes kept in part cannot
@@ -93,7 +94,6 @@ pub(super) fn run(
                 ix.cut.kept = None;
             }
         }
-        let budget = usize::try_from(keep_bytes / COPY_SHARE).unwrap_or(usize::MAX);
         let meet = Meet::new(a.n_rows, b.n_rows, budget);
         let plan = |k: &'_ [usize],
                     fp: Option<&'_ [usize]>,

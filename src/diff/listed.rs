@@ -15,12 +15,11 @@
 
 use xxhash_rust::xxh3::xxh3_64_with_seed;
 
-use super::read::{both, cuttable, each_row, rows_at, Cut, RowStore};
+use super::read::{both, each_wanted, rows_at, Cut, RowStore};
 use super::{cell_diffs, count_by_column, listing, CellDiff, Change};
 use crate::error::{ErrorKind, Result};
 use crate::model::Version;
 use crate::store::objects::Objects;
-use crate::table::RawRecord;
 
 /// How much of a comparison's detail is kept.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -410,35 +409,6 @@ fn compare_all(
         to_rows,
         changes,
         changed_by_column,
-    })
-}
-
-/// Calls `f` with each row of `wanted` (0-based, ascending, no repeats) of `v`, in order; rows
-/// are cut out by offset when the version allows it, so only they are parsed.
-fn each_wanted(
-    objects: &Objects,
-    v: &Version,
-    known: Option<&Cut>,
-    wanted: &[u64],
-    mut f: impl FnMut(u64, &RawRecord<'_>),
-) -> Result<()> {
-    if wanted.is_empty() {
-        return Ok(());
-    }
-    if cuttable(v) {
-        let mut raw = super::read::wanted_rows_reader(objects, v, known, wanted)?;
-        for &w in wanted {
-            raw.with_record(w, |r| f(w, r))?;
-        }
-        return raw.finish();
-    }
-    let mut next = 0usize;
-    each_row(objects, v, |row, r| {
-        if next < wanted.len() && wanted[next] == row {
-            f(row, &r);
-            next += 1;
-        }
-        Ok(())
     })
 }
 

@@ -147,13 +147,18 @@ impl Meet {
 
     /// How many rows `side` has published past the other side's proportional position.
     fn ahead(&self, side: usize) -> u64 {
-        let other = 1 - side;
-        let theirs = self.published[other].load(Ordering::Acquire);
-        let at =
-            u128::from(theirs) * u128::from(self.rows[side]) / u128::from(self.rows[other].max(1));
         self.published[side]
             .load(Ordering::Acquire)
-            .saturating_sub(at as u64)
+            .saturating_sub(self.other_at(side))
+    }
+
+    /// How far the other side has published, in `side`'s rows (proportionally to both row
+    /// counts).
+    fn other_at(&self, side: usize) -> u64 {
+        let other = 1 - side;
+        let seen = self.published[other].load(Ordering::Acquire);
+        (u128::from(seen) * u128::from(self.rows[side]) / u128::from(self.rows[other].max(1)))
+            as u64
     }
 
     /// Marks `side` ended (every row published, or stopped): the other side no longer waits for
@@ -168,15 +173,10 @@ impl Meet {
     /// place (all of them once the other side has published all of its rows).
     pub fn covered(&self, side: usize) -> u64 {
         let other = 1 - side;
-        let (seen, of) = (
-            self.published[other].load(Ordering::Acquire),
-            self.rows[other],
-        );
-        if seen >= of {
+        if self.published[other].load(Ordering::Acquire) >= self.rows[other] {
             return self.rows[side];
         }
-        let at = u128::from(seen) * u128::from(self.rows[side]) / u128::from(of.max(1));
-        (at as u64).saturating_sub(SLACK)
+        self.other_at(side).saturating_sub(SLACK)
     }
 
     /// Of `rows` ((fingerprint, row) of `side`, ascending, each pushed onto `waiting` by

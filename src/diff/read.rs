@@ -1012,7 +1012,7 @@ fn held<'h>(
 /// A reader of the rows `wanted` (0-based, ascending) of `v`, which can be cut out by offset:
 /// out of the bytes a first pass kept (`known`) when they hold every one of those rows, else
 /// out of the object, read again (the row index too, when no first pass read it).
-pub fn wanted_rows_reader(
+fn wanted_rows_reader(
     objects: &Objects,
     v: &Version,
     known: Option<&Cut>,
@@ -1049,26 +1049,38 @@ pub fn rows_at(
     wanted: &[u64],
 ) -> Result<RowStore> {
     let mut out = RowStore::new();
+    each_wanted(objects, v, known, wanted, |row, r| out.push(row, r))?;
+    Ok(out)
+}
+
+/// Calls `f` with each row of `wanted` (0-based, ascending, no repeats) of `v`, in order; rows
+/// are cut out by offset when the version allows it (out of what a first pass kept, `known`,
+/// when that holds them all), so only they are parsed.
+pub fn each_wanted(
+    objects: &Objects,
+    v: &Version,
+    known: Option<&Cut>,
+    wanted: &[u64],
+    mut f: impl FnMut(u64, &RawRecord<'_>),
+) -> Result<()> {
     if wanted.is_empty() {
-        return Ok(out);
+        return Ok(());
     }
     if cuttable(v) {
         let mut raw = wanted_rows_reader(objects, v, known, wanted)?;
         for &w in wanted {
-            raw.parse_into(w, &mut out)?;
+            raw.with_record(w, |r| f(w, r))?;
         }
-        raw.finish()?;
-        return Ok(out);
+        return raw.finish();
     }
     let mut next = 0usize;
     each_row(objects, v, |row, r| {
         if next < wanted.len() && wanted[next] == row {
-            out.push(row, &r);
+            f(row, &r);
             next += 1;
         }
         Ok(())
-    })?;
-    Ok(out)
+    })
 }
 
 #[cfg(test)]
