@@ -901,3 +901,47 @@ fn retrieve_into_a_named_pipe_writes_into_it_and_leaves_it_a_pipe() {
         .expect("the pipe is read");
     assert_eq!(String::from_utf8_lossy(&got), table);
 }
+
+// Before: `sluice --store FOLDER setup` set the store up in the working directory, ignoring
+// `--store`, and every later command given the same `--store` then found no store there.
+#[test]
+fn setup_makes_its_store_where_store_points_and_refuses_two_different_folders() {
+    let s = Sandbox::new();
+    s.ok(&["--store", "project", "setup"]);
+    assert!(s.path().join("project/sluice-store/lineage.db").is_file());
+    assert!(!s.path().join("sluice-store").exists());
+    // The store's own folder names the same project.
+    s.ok(&["--store", "other/sluice-store", "setup"]);
+    assert!(s.path().join("other/sluice-store/lineage.db").is_file());
+    // The folder and --store agreeing is not a conflict.
+    s.ok(&["--store", "third", "setup", "third"]);
+    assert!(s.path().join("third/sluice-store/lineage.db").is_file());
+    // Two different folders: refused, nothing made.
+    let err = s.fails(2, &["--store", "left", "setup", "right"]);
+    assert_contains(&err, "two folders to set up a store in");
+    assert!(!s.path().join("left").exists() && !s.path().join("right").exists());
+    // SLUICE_STORE from the environment gives way to the folder given.
+    let out = s
+        .command(&["setup", "fourth"])
+        .env("SLUICE_STORE", s.path().join("elsewhere"))
+        .output()
+        .expect("run sluice");
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert!(s.path().join("fourth/sluice-store/lineage.db").is_file());
+    assert!(!s.path().join("elsewhere").exists());
+    // And the store --store named is the one later commands use.
+    s.file("bikes.csv", "id,kind\n1,cargo\n2,touring\n");
+    s.ok(&[
+        "--store",
+        "project",
+        "receive",
+        "bikes.csv",
+        "--as",
+        "bikes",
+    ]);
+    assert_contains(&s.ok(&["--store", "project", "timeline"]), "bikes");
+}
