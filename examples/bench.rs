@@ -122,7 +122,8 @@
 //! Measures `sluice receive` of a dirty work-order CSV (made by [`sluice::demo::work_orders`],
 //! Quillby till, deterministic: 1,000,000 rows are about 104 MB, 5,000,000 rows about 523 MB)
 //! into a fresh store: wall time, throughput (MB = 10^6 bytes per second) and the child
-//! process's peak resident memory (`ru_maxrss` from `wait4`). Side by side, on the same file in
+//! process's peak resident memory (`ru_maxrss` from `wait4`, with this process's own peak reset
+//! before each spawn, which the child would otherwise inherit). Side by side, on the same file in
 //! the same run, it measures the two baselines intake is judged against:
 //!
 //! - BLAKE3 alone, the floor any content-hashing intake pays: the file hashed by the `blake3`
@@ -682,6 +683,7 @@ fn run_measured(cmd: &mut Command, log_dir: &Path, what: &str) -> Result<(Sample
     let err =
         File::create(&err_path).with_context(|| format!("creating {}", err_path.display()))?;
     cmd.stdin(Stdio::null()).stdout(out).stderr(err);
+    forget_own_peak()?;
     // Flush dirty pages left by earlier runs, so that they are not written during this one.
     // SAFETY: sync has no preconditions.
     unsafe { libc::sync() };
@@ -737,6 +739,17 @@ fn background_load() -> Result<Option<f64>> {
     };
     std::thread::sleep(MIN_LOAD_WINDOW);
     Ok(busy_cpu_secs().map(|b| (b - a) / secs(t.elapsed())))
+}
+
+/// Lowers this process's recorded peak resident memory to what it holds now (Linux's
+/// `clear_refs`, value 5). A child's `ru_maxrss` is at least the peak of the process that
+/// spawned it: `Command` starts children in the parent's address space until they exec, and
+/// the kernel carries that space's high-water mark over to the child at the exec. Without this,
+/// every child measured after this benchmark had read a 100 MB file whole was reported at 140
+/// MiB or more, whatever it used.
+fn forget_own_peak() -> Result<()> {
+    fs::write("/proc/self/clear_refs", "5")
+        .context("resetting this process's peak memory through /proc/self/clear_refs")
 }
 
 /// Waits for the child `pid` and returns its wait status and resource usage.
@@ -949,21 +962,9 @@ fn cat_compressed_vs_loose(ctx: &Ctx, file: &Path) -> Result<(Row, Row)> {
             store.objects.copy_to(&h, &mut out)?;
         }
     }
-    let mut rows = Vec::new();
-    for (store, tool, key) in [
-        (
-            &packed,
-            "sluice retrieve, compressed segments",
-            "cat_compressed",
-        ),
-        (
-            &loose,
-            "sluice retrieve, uncompressed loose objects",
-            "cat_loose",
-        ),
-    ] {
-        let out = scratch.0.join(format!("{key}.csv"));
-        let samples = repeat(ctx.runs, |i| {
+    let retrieve =
+        |store: &Path, tool: &'static str, key: &'static str, i: u32| -> Result<Sample> {
+            let out = scratch.0.join(format!("{key}.csv"));
             let _ = fs::remove_file(&out);
             let mut cmd = Command::new(&ctx.sluice);
             cmd.arg("--store")
@@ -974,15 +975,32 @@ fn cat_compressed_vs_loose(ctx: &Ctx, file: &Path) -> Result<(Row, Row)> {
             let (sample, _) =
                 run_measured(&mut cmd, &scratch.0.join(format!("log-{key}-{i}")), tool)?;
             Ok(sample)
-        })?;
+        };
+    const PACKED: (&str, &str) = ("sluice retrieve, compressed segments", "cat_compressed");
+    const LOOSE: (&str, &str) = ("sluice retrieve, uncompressed loose objects", "cat_loose");
+    // In turn, so that the ratio compares runs made at the same moments.
+    let (packed_samples, loose_samples) = repeat_in_turn(
+        ctx.runs,
+        |i| retrieve(&packed, PACKED.0, PACKED.1, i),
+        |i| retrieve(&loose, LOOSE.0, LOOSE.1, i),
+    )?;
+    let raw = fs::read(file)?;
+    for (tool, key) in [PACKED, LOOSE] {
         ensure!(
-            fs::read(&out)? == fs::read(file)?,
+            fs::read(scratch.0.join(format!("{key}.csv")))? == raw,
             "{tool} did not give the file's bytes back"
         );
-        rows.push(Row { tool, key, samples });
     }
-    let loose_row = rows.pop().ok_or_else(|| anyhow!("no loose row"))?;
-    let packed_row = rows.pop().ok_or_else(|| anyhow!("no packed row"))?;
+    let packed_row = Row {
+        tool: PACKED.0,
+        key: PACKED.1,
+        samples: packed_samples,
+    };
+    let loose_row = Row {
+        tool: LOOSE.0,
+        key: LOOSE.1,
+        samples: loose_samples,
+    };
     Ok((packed_row, loose_row))
 }
 
