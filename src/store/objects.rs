@@ -18,7 +18,7 @@ use std::sync::{Arc, Mutex};
 
 use super::segments::{self, Entry, SeekTable, SegmentWriter, SEGMENTS_DIR};
 use crate::error::{ErrorKind, Result};
-use crate::hash::{for_each_piece, Hash};
+use crate::hash::Hash;
 
 /// A temporary object being written. Dropping it without `persist` removes the temporary file.
 pub trait TempObject: Write + Send {
@@ -45,7 +45,7 @@ pub trait ObjectBackend: Send + Sync {
     /// (no copy into its own buffer). The default cuts what [`Self::open`] reads into pieces;
     /// the real backend hands over a segment object's decoded frames as they are.
     fn open_pieces(&self, hash: &Hash) -> io::Result<Box<dyn segments::Pieces>> {
-        Ok(Box::new(segments::ReadPieces(self.open(hash)?)))
+        Ok(Box::new(segments::ReadPieces::new(self.open(hash)?)))
     }
     /// Reads up to `buf.len()` bytes of object `hash` from `offset`; fewer only at the end. The
     /// default reads from the start and skips; a backend that can seek does better.
@@ -898,14 +898,16 @@ impl ObjectBackend for FsBackend {
             if table.raw.len() > 2 {
                 Ok(Box::new(segments::AheadReader::new(file, table)?) as Box<dyn segments::Pieces>)
             } else {
-                Ok(Box::new(segments::ReadPieces(segments::FrameReader::new(
-                    file, table,
-                )?)) as Box<dyn segments::Pieces>)
+                Ok(
+                    Box::new(segments::ReadPieces::new(segments::FrameReader::new(
+                        file, table,
+                    )?)) as Box<dyn segments::Pieces>,
+                )
             }
         })? {
             return Ok(r);
         }
-        Ok(Box::new(segments::ReadPieces(self.open(hash)?)))
+        Ok(Box::new(segments::ReadPieces::new(self.open(hash)?)))
     }
 
     fn exists(&self, hash: &Hash) -> bool {
@@ -1324,19 +1326,23 @@ impl Objects {
     /// the check completes (the object may be larger than memory), so on a mismatch the caller
     /// gets an error after the damaged bytes; `cat -o FILE` writes to a temporary file first.
     pub fn copy_to(&self, hash: &Hash, out: &mut dyn Write) -> Result<u64> {
-        let (r, hash) = self.open_raw(hash)?;
+        // Piece by piece as decoded, each piece going back to be decoded into again: the bytes
+        // are hashed and written from where they were decoded, never copied to a buffer first.
+        let (mut pieces, hash) = self.open_pieces(hash)?;
         let hash = &hash;
         let mut hasher = blake3::Hasher::new();
         let path = self.find(hash)?.describe(hash);
-        let n_bytes = for_each_piece(
-            r,
-            |e| crate::Error::io(&path, e),
-            |piece| {
-                hasher.update(piece);
-                out.write_all(piece)
-                    .map_err(|e| crate::Error::io(Path::new("output"), e))
-            },
-        )?;
+        let mut n_bytes = 0u64;
+        while let Some(piece) = pieces
+            .next_piece()
+            .map_err(|e| crate::Error::io(&path, e))?
+        {
+            hasher.update(&piece);
+            out.write_all(&piece)
+                .map_err(|e| crate::Error::io(Path::new("output"), e))?;
+            n_bytes += piece.len() as u64;
+            pieces.give_back(piece);
+        }
         let actual = Hash::from_bytes(*hasher.finalize().as_bytes());
         if actual != *hash {
             return Err(ErrorKind::ObjectCorrupt {

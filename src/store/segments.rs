@@ -616,19 +616,38 @@ impl Pieces for AheadReader {
     }
 }
 
-/// Any reader as [`Pieces`] of up to [`PIECE_LEN`] bytes (each read until full or at the end).
-pub struct ReadPieces<R>(pub R);
+/// Any reader as [`Pieces`] of up to [`PIECE_LEN`] bytes (each read until full or at the end),
+/// read into a piece given back when there is one.
+pub struct ReadPieces<R> {
+    reader: R,
+    spare: Option<Vec<u8>>,
+}
+
+impl<R> ReadPieces<R> {
+    pub fn new(reader: R) -> Self {
+        ReadPieces {
+            reader,
+            spare: None,
+        }
+    }
+}
 
 /// The size of the pieces [`ReadPieces`] hands over: a frame of the default size.
 pub const PIECE_LEN: usize = FRAME_SIZE as usize;
 
 impl<R: Read + Send> Pieces for ReadPieces<R> {
     fn next_piece(&mut self) -> io::Result<Option<Vec<u8>>> {
-        let mut piece = Vec::with_capacity(PIECE_LEN);
-        (&mut self.0)
+        let mut piece = self.spare.take().unwrap_or_default();
+        piece.clear();
+        piece.reserve(PIECE_LEN);
+        (&mut self.reader)
             .take(PIECE_LEN as u64)
             .read_to_end(&mut piece)?;
         Ok((!piece.is_empty()).then_some(piece))
+    }
+
+    fn give_back(&mut self, piece: Vec<u8>) {
+        self.spare = Some(piece);
     }
 }
 
@@ -825,9 +844,29 @@ mod tests {
         begun.read_exact(&mut head).unwrap();
         let rest = pieces(&mut begun);
         assert_eq!([&head[..], &rest.concat()].concat(), first);
-        let cut = pieces(&mut ReadPieces(&first[..]));
+        let cut = pieces(&mut ReadPieces::new(&first[..]));
         assert_eq!(cut.len(), first.len().div_ceil(PIECE_LEN));
         assert_eq!(cut.concat(), first);
+        // Pieces given back are decoded or read into again, and the bytes stay the same.
+        let recycled = |p: &mut dyn Pieces| {
+            let mut out = Vec::new();
+            while let Some(piece) = p.next_piece().unwrap() {
+                out.extend_from_slice(&piece);
+                p.give_back(piece);
+            }
+            out
+        };
+        assert_eq!(recycled(&mut ReadPieces::new(&first[..])), first);
+        let mut ahead = AheadReader::new(file.try_clone().unwrap(), table.clone()).unwrap();
+        assert_eq!(recycled(&mut ahead), first);
+        // A reader's next piece is read into the one given back (told by its capacity).
+        let long: Vec<u8> = (0..PIECE_LEN * 5 / 2).map(|i| (i % 251) as u8).collect();
+        let mut reader = ReadPieces::new(&long[..]);
+        let _ = reader.next_piece().unwrap();
+        reader.give_back(Vec::with_capacity(3 * PIECE_LEN));
+        let second = reader.next_piece().unwrap().unwrap();
+        assert!(second.capacity() >= 3 * PIECE_LEN);
+        assert_eq!(second, &long[PIECE_LEN..2 * PIECE_LEN]);
         // Reads by offset, each frame decoded afresh and through a cache of decoded frames
         // (the second read at 1990 is served from it): the same bytes.
         let cache = FrameCache::default();
