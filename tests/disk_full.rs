@@ -560,3 +560,39 @@ fn disk_full_during_apply_and_run_reports_no_space_left_and_leaves_the_store_unc
     }
     eprintln!("disk full: the file system after the intake:\n{free}");
 }
+
+/// `retrieve -o` hands what it wrote to the disk every 8 MiB on a thread of its own (so that the
+/// sync before the file is renamed into place has little left to wait for). A version of 16 MB
+/// to a folder with room comes back byte for byte; to a 12 MiB file system it fails after one of
+/// those syncs, says the disk is full, and leaves no file, whole or partial, under any name.
+#[test]
+fn retrieve_to_a_full_disk_reports_it_and_leaves_no_file() {
+    // SAFETY: geteuid has no preconditions and cannot fail.
+    let root = unsafe { libc::geteuid() == 0 };
+    assert!(
+        root,
+        "this test mounts a 12 MiB tmpfs to fill it, which needs root; run the test suite as root"
+    );
+    let text = padded_orders(120_000);
+    assert!(text.len() > 15 << 20);
+    let s = Sandbox::with_store();
+    s.file("q3.csv", &text);
+    s.ok(&["receive", "q3.csv", "--as", "orders"]);
+    s.ok(&["retrieve", "orders", "-o", "back.csv"]);
+    assert!(fs::read(s.path().join("back.csv")).unwrap() == text.as_bytes());
+
+    let out = tempfile::tempdir().unwrap();
+    let _mount = TmpfsMount::new(out.path(), "12m"); // dropped (unmounted) before `out`
+    let target = out.path().join("q3.csv");
+    let err = s.fails(1, &["retrieve", "orders", "-o", target.to_str().unwrap()]);
+    assert_contains(&err, "no space left");
+    assert!(
+        !err.contains("panicked"),
+        "the binary panicked instead of reporting:\n{err}"
+    );
+    let left: Vec<_> = fs::read_dir(out.path())
+        .unwrap()
+        .map(|e| e.unwrap().file_name())
+        .collect();
+    assert!(left.is_empty(), "left behind: {left:?}");
+}

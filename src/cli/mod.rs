@@ -383,7 +383,7 @@ pub fn read_text(
 /// An existing pipe or device is written into directly.
 pub fn write_file_atomically(
     path: &Path,
-    fill: impl FnOnce(&mut std::fs::File) -> anyhow::Result<()>,
+    fill: impl FnOnce(&mut OutFile) -> anyhow::Result<()>,
 ) -> anyhow::Result<()> {
     let dir = path
         .parent()
@@ -396,23 +396,103 @@ pub fn write_file_atomically(
     // A pipe or a device (`/dev/null`, `/dev/stdout`, a named pipe) is written into: renaming a
     // file over it would replace the device itself with a regular file.
     if std::fs::metadata(path).is_ok_and(|m| !m.is_file() && !m.is_dir()) {
-        let mut f = std::fs::OpenOptions::new()
+        let f = std::fs::OpenOptions::new()
             .write(true)
             .open(path)
             .with_context(|| format!("cannot write {}", path.display()))?;
-        return fill(&mut f);
+        return fill(&mut OutFile::new(f, false));
     }
     let tmp = dir.join(format!(".{}.sluice-part", name.to_string_lossy()));
-    let mut f =
+    let f =
         std::fs::File::create(&tmp).with_context(|| format!("cannot write {}", path.display()))?;
-    let result = fill(&mut f).and_then(|_| f.sync_all().map_err(Into::into));
-    drop(f);
+    let mut f = OutFile::new(f, true);
+    let result = fill(&mut f).and_then(|_| f.finish().map_err(Into::into));
     if let Err(e) = result {
         let _ = std::fs::remove_file(&tmp);
         return Err(e);
     }
     std::fs::rename(&tmp, path).with_context(|| format!("cannot write {}", path.display()))?;
     Ok(())
+}
+
+/// How many bytes [`OutFile`] writes between two syncs on its helper thread.
+const SYNC_EVERY: u64 = 8 << 20;
+
+/// A file [`write_file_atomically`] fills. When it is to be synced before it is renamed into
+/// place, what was written is handed to the disk as the writing goes on: every [`SYNC_EVERY`]
+/// bytes a thread of its own syncs the file, so the last sync waits for the last stretch only
+/// (a 106 MB `retrieve -o` spent 45 ms of its 120 ms in a sync at the end).
+pub struct OutFile {
+    file: std::fs::File,
+    unsynced: u64,
+    /// Whether the file is synced at all (not a device or a pipe).
+    synced: bool,
+    syncer: Option<(
+        std::sync::mpsc::SyncSender<()>,
+        std::thread::JoinHandle<std::io::Result<()>>,
+    )>,
+}
+
+impl OutFile {
+    fn new(file: std::fs::File, synced: bool) -> Self {
+        OutFile {
+            file,
+            unsynced: 0,
+            synced,
+            syncer: None,
+        }
+    }
+
+    /// Asks the syncing thread (started the first time) to sync what is written so far, unless
+    /// it is still busy with the last request.
+    fn sync_behind(&mut self) -> std::io::Result<()> {
+        if self.syncer.is_none() {
+            let file = self.file.try_clone()?;
+            let (tx, rx) = std::sync::mpsc::sync_channel::<()>(1);
+            let handle = std::thread::Builder::new()
+                .name("sluice-sync".into())
+                .spawn(move || {
+                    for () in rx {
+                        file.sync_data()?;
+                    }
+                    Ok(())
+                })?;
+            self.syncer = Some((tx, handle));
+        }
+        if let Some((tx, _)) = &self.syncer {
+            // Full: a sync is already waiting, which will cover these bytes too. Gone: the
+            // thread stopped on an error, which `finish` reports.
+            let _ = tx.try_send(());
+        }
+        Ok(())
+    }
+
+    /// Waits for the syncing thread and syncs the whole file; an error of either is returned.
+    fn finish(mut self) -> std::io::Result<()> {
+        if let Some((tx, handle)) = self.syncer.take() {
+            drop(tx);
+            handle
+                .join()
+                .map_err(|_| std::io::Error::other("the thread syncing the output stopped"))??;
+        }
+        self.file.sync_all()
+    }
+}
+
+impl Write for OutFile {
+    fn write(&mut self, buf: &[u8]) -> std::io::Result<usize> {
+        let n = self.file.write(buf)?;
+        self.unsynced += n as u64;
+        if self.synced && self.unsynced >= SYNC_EVERY {
+            self.unsynced = 0;
+            self.sync_behind()?;
+        }
+        Ok(n)
+    }
+
+    fn flush(&mut self) -> std::io::Result<()> {
+        self.file.flush()
+    }
 }
 
 /// The folder a file the user named goes into must exist; the message names that folder, not
