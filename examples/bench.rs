@@ -959,7 +959,7 @@ fn cat_compressed_vs_loose(ctx: &Ctx, file: &Path) -> Result<(Row, Row)> {
             fs::create_dir_all(&dir)?;
             let mut out = fs::File::create(dir.join(&hex[2..]))?;
             let h: sluice::hash::Hash = hex.parse().map_err(|e| anyhow!("{e}"))?;
-            store.objects.copy_to(&h, &mut out)?;
+            store.objects.copy_to(&h, &mut out, &dir)?;
         }
     }
     let retrieve =

@@ -242,7 +242,7 @@ pub fn exec(store: &mut Store, opts: &ExecOptions) -> Result<ExecOutcome> {
             .hash
             .parse()
             .map_err(|e: String| Error::from(ErrorKind::Inconsistent(e)))?;
-        store.objects.copy_to(&hash, &mut f)?;
+        store.objects.copy_to(&hash, &mut f, &path)?;
         f.sync_all().map_err(|e| Error::io(&path, e))?;
         files.push((name.clone(), path));
     }

@@ -88,7 +88,7 @@ fn copy_objects(
         } else {
             to.objects.writer().map_err(io)?
         };
-        let n = from.objects.copy_to(&hash, &mut WriteInto(&mut w))?;
+        let n = from.objects.copy_to(&hash, &mut WriteInto(&mut w), &dir)?;
         let (written, _) = w.finish().map_err(io)?;
         if written != hash {
             return Err(ErrorKind::ObjectCorrupt {

@@ -564,7 +564,8 @@ fn disk_full_during_apply_and_run_reports_no_space_left_and_leaves_the_store_unc
 /// `retrieve -o` hands what it wrote to the disk every 8 MiB on a thread of its own (so that the
 /// sync before the file is renamed into place has little left to wait for). A version of 16 MB
 /// to a folder with room comes back byte for byte; to a 12 MiB file system it fails after one of
-/// those syncs, says the disk is full, and leaves no file, whole or partial, under any name.
+/// those syncs, says the disk is full (naming the file), and leaves no file, whole or partial,
+/// under any name.
 #[test]
 fn retrieve_to_a_full_disk_reports_it_and_leaves_no_file() {
     // SAFETY: geteuid has no preconditions and cannot fail.
@@ -585,7 +586,7 @@ fn retrieve_to_a_full_disk_reports_it_and_leaves_no_file() {
     let _mount = TmpfsMount::new(out.path(), "12m"); // dropped (unmounted) before `out`
     let target = out.path().join("q3.csv");
     let err = s.fails(1, &["retrieve", "orders", "-o", target.to_str().unwrap()]);
-    assert_contains(&err, "no space left");
+    assert_contains(&err, &format!("{}: no space left", target.display()));
     assert!(
         !err.contains("panicked"),
         "the binary panicked instead of reporting:\n{err}"

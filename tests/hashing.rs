@@ -158,7 +158,7 @@ proptest! {
                 prop_assert_eq!(&version.hash, &blake3::hash(&data).to_hex().to_string());
                 let h: Hash = version.hash.parse().unwrap();
                 let mut out = Vec::new();
-                store.objects.copy_to(&h, &mut out).unwrap();
+                store.objects.copy_to(&h, &mut out, std::path::Path::new("copy")).unwrap();
                 prop_assert_eq!(out, data);
             }
             Ok(IngestOutcome::Unchanged { .. }) => prop_assert!(false, "a new dataset cannot be unchanged"),

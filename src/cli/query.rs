@@ -275,7 +275,8 @@ pub fn retrieve(
         match format {
             Some(format) => sluice::export::write_in_with(store, &version, format, &given, &mut w)?,
             None => {
-                store.objects.copy_to(&hash, &mut w)?;
+                let out_name = r.output.unwrap_or(Path::new("standard output"));
+                store.objects.copy_to(&hash, &mut w, out_name)?;
             }
         }
         w.flush()?;

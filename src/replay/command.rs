@@ -273,7 +273,7 @@ pub(super) fn rerun(store: &mut Store, step: &Step, outputs: &[Version]) -> Resu
             .map_err(|e: String| Error::from(ErrorKind::Inconsistent(e)))?;
         let _ = fs::remove_file(&target);
         let mut out = fs::File::create(&target).map_err(|e| Error::io(&target, e))?;
-        if let Err(e) = store.objects.copy_to(&hash, &mut out) {
+        if let Err(e) = store.objects.copy_to(&hash, &mut out, &target) {
             return Ok(Rerun::stop(
                 "code_missing",
                 format!("the recorded bytes of {} cannot be read: {e}", f.path),
@@ -312,7 +312,7 @@ pub(super) fn rerun(store: &mut Store, step: &Step, outputs: &[Version]) -> Resu
             .parse()
             .map_err(|e: String| Error::from(ErrorKind::Inconsistent(e)))?;
         let mut f = fs::File::create(&path).map_err(|e| Error::io(&path, e))?;
-        if let Err(e) = store.objects.copy_to(&hash, &mut f) {
+        if let Err(e) = store.objects.copy_to(&hash, &mut f, &path) {
             return Ok(Rerun::stop(
                 "failed",
                 format!(

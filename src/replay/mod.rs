@@ -565,7 +565,7 @@ fn computed_difference(
             _ => return Err(ErrorKind::Inconsistent("a replayed step was recorded".into()).into()),
         }
         let mut f = std::fs::File::create(&tmp).map_err(|e| crate::Error::io(&tmp, e))?;
-        store.objects.copy_to(&hash, &mut f)?;
+        store.objects.copy_to(&hash, &mut f, &tmp)?;
         Ok::<(), crate::Error>(())
     })();
     store.objects.discard_stage();

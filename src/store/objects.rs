@@ -1322,10 +1322,11 @@ impl Objects {
         })
     }
 
-    /// Copies object `hash` to `out`, checking the hash as it goes. The bytes are written before
-    /// the check completes (the object may be larger than memory), so on a mismatch the caller
-    /// gets an error after the damaged bytes; `cat -o FILE` writes to a temporary file first.
-    pub fn copy_to(&self, hash: &Hash, out: &mut dyn Write) -> Result<u64> {
+    /// Copies object `hash` to `out`, checking the hash as it goes; a failed write is named by
+    /// `out_name` (the file, or standard output). The bytes are written before the check
+    /// completes (the object may be larger than memory), so on a mismatch the caller gets an
+    /// error after the damaged bytes; `retrieve -o FILE` writes to a temporary file first.
+    pub fn copy_to(&self, hash: &Hash, out: &mut dyn Write, out_name: &Path) -> Result<u64> {
         // Piece by piece as decoded, each piece going back to be decoded into again: the bytes
         // are hashed and written from where they were decoded, never copied to a buffer first.
         let (mut pieces, hash) = self.open_pieces(hash)?;
@@ -1339,7 +1340,7 @@ impl Objects {
         {
             hasher.update(&piece);
             out.write_all(&piece)
-                .map_err(|e| crate::Error::io(Path::new("output"), e))?;
+                .map_err(|e| crate::Error::io(out_name, e))?;
             n_bytes += piece.len() as u64;
             pieces.give_back(piece);
         }
@@ -1357,7 +1358,7 @@ impl Objects {
     /// Reads a whole object into memory, checking its hash. For small objects only.
     pub fn read_all(&self, hash: &Hash) -> Result<Vec<u8>> {
         let mut v = Vec::new();
-        self.copy_to(hash, &mut v)?;
+        self.copy_to(hash, &mut v, Path::new("memory"))?;
         Ok(v)
     }
 
