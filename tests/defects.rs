@@ -902,10 +902,11 @@ fn retrieve_into_a_named_pipe_writes_into_it_and_leaves_it_a_pipe() {
     assert_eq!(String::from_utf8_lossy(&got), table);
 }
 
-// Before: `sluice --store FOLDER setup` set the store up in the working directory, ignoring
-// `--store`, and every later command given the same `--store` then found no store there.
+// Before: `sluice --store FOLDER setup` (and `demo`, and `borrow`) made the store in the working
+// directory, ignoring `--store`, and every later command given the same `--store` then found no
+// store there.
 #[test]
-fn setup_makes_its_store_where_store_points_and_refuses_two_different_folders() {
+fn commands_that_make_a_store_make_it_where_store_points_and_refuse_two_different_folders() {
     let s = Sandbox::new();
     s.ok(&["--store", "project", "setup"]);
     assert!(s.path().join("project/sluice-store/lineage.db").is_file());
@@ -918,7 +919,10 @@ fn setup_makes_its_store_where_store_points_and_refuses_two_different_folders() 
     assert!(s.path().join("third/sluice-store/lineage.db").is_file());
     // Two different folders: refused, nothing made.
     let err = s.fails(2, &["--store", "left", "setup", "right"]);
-    assert_contains(&err, "two folders to set up a store in");
+    assert_contains(
+        &err,
+        "two folders to make the store in: DIR right and --store left",
+    );
     assert!(!s.path().join("left").exists() && !s.path().join("right").exists());
     // SLUICE_STORE from the environment gives way to the folder given.
     let out = s
@@ -933,6 +937,19 @@ fn setup_makes_its_store_where_store_points_and_refuses_two_different_folders() 
     );
     assert!(s.path().join("fourth/sluice-store/lineage.db").is_file());
     assert!(!s.path().join("elsewhere").exists());
+    // `demo` and `borrow` make stores too, and follow the same rule.
+    s.ok(&["--store", "tour", "demo"]);
+    assert!(s.path().join("tour/sluice-store/lineage.db").is_file());
+    let err = s.fails(2, &["--store", "tour2", "demo", "tour3"]);
+    assert_contains(
+        &err,
+        "two folders to make the store in: DIR tour3 and --store tour2",
+    );
+    let err = s.fails(2, &["--store", "copy", "borrow", "tour", "--into", "copy2"]);
+    assert_contains(
+        &err,
+        "two folders to make the store in: --into copy2 and --store copy",
+    );
     // And the store --store named is the one later commands use.
     s.file("bikes.csv", "id,kind\n1,cargo\n2,touring\n");
     s.ok(&[

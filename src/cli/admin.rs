@@ -21,10 +21,7 @@ pub fn demo(
     out: &mut impl Write,
 ) -> anyhow::Result<ExitCode> {
     let agent = ctx.agent(None)?;
-    let target = match dir {
-        Some(d) => d.to_path_buf(),
-        None => sluice::demo::fresh_folder(&ctx.cwd),
-    };
+    let target = ctx.new_store_folder(dir, "DIR", || sluice::demo::fresh_folder(&ctx.cwd))?;
     let at = sluice::store::location::Location {
         lineage: lineage_server.map(str::to_string),
         objects: object_bucket.map(str::to_string),

@@ -59,7 +59,7 @@ pub enum Command {
     /// Set up a store (a sluice-store folder) in a project folder
     #[command(after_help = "Example:\n  sluice setup work/q3-orders")]
     Setup {
-        /// The project folder (default: the working directory)
+        /// The project folder (default: the folder --store names, else the working directory)
         dir: Option<PathBuf>,
         /// Keep the lineage on this PostgreSQL server (a connection string such as
         /// `host=db.example port=5432 dbname=lineage user=ada`, without a password: that stays
@@ -433,7 +433,8 @@ pub enum Command {
     Borrow {
         /// The shared store's folder (or the project folder holding it)
         from: PathBuf,
-        /// The project folder for the working copy (default: the working directory)
+        /// The project folder for the working copy (default: the folder --store names, else the
+        /// working directory)
         #[arg(long, value_name = "DIR")]
         into: Option<PathBuf>,
         /// Copy only the bytes of this dataset's versions and of the versions they are made
@@ -703,7 +704,8 @@ pub enum Command {
     /// Create a store with an invented example (three bicycle repair shops) and take it in
     #[command(after_help = "Example:\n  sluice demo\n  sluice demo /tmp/try-sluice")]
     Demo {
-        /// Where to create it (default: a new folder sluice-demo… in the working directory)
+        /// Where to create it (default: the folder --store names, else a new folder sluice-demo…
+        /// in the working directory)
         dir: Option<PathBuf>,
         /// Keep the demo store's lineage on this PostgreSQL server (as `setup --lineage-server`)
         #[arg(long, value_name = "CONN")]

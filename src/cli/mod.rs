@@ -44,6 +44,42 @@ impl Context<'_> {
         Ok(Store::discover(self.cli.store.as_deref(), &self.cwd)?)
     }
 
+    /// The project folder a command that makes a store (`setup`, `demo`, `borrow`) makes it
+    /// in: the folder given (shown to the user as `given_as`), else the one `--store` (or
+    /// SLUICE_STORE) names, as a project folder or its `sluice-store` folder, else `default`.
+    /// A folder given beside a different `--store` flag is refused rather than one of them
+    /// silently ignored; SLUICE_STORE set in the environment gives way to the folder given.
+    pub fn new_store_folder(
+        &self,
+        given: Option<&Path>,
+        given_as: &str,
+        default: impl FnOnce() -> PathBuf,
+    ) -> anyhow::Result<PathBuf> {
+        let project_of = |p: &Path| {
+            if p.file_name().is_some_and(|n| n == sluice::store::STORE_DIR) {
+                p.parent()
+                    .filter(|parent| !parent.as_os_str().is_empty())
+                    .map_or_else(|| PathBuf::from("."), Path::to_path_buf)
+            } else {
+                p.to_path_buf()
+            }
+        };
+        let store = self.cli.store.as_deref();
+        let flag =
+            store.filter(|s| std::env::var_os("SLUICE_STORE").as_deref() != Some(s.as_os_str()));
+        match (given, flag, store) {
+            (Some(d), Some(s), _) if project_of(s) != d => Err(sluice::Error::usage(format!(
+                "two folders to make the store in: {given_as} {} and --store {}; give one of them",
+                d.display(),
+                s.display()
+            ))
+            .into()),
+            (Some(d), _, _) => Ok(d.to_path_buf()),
+            (None, _, Some(s)) => Ok(project_of(s)),
+            (None, _, None) => Ok(default()),
+        }
+    }
+
     /// Who is acting, in the order `agent` documents; `store` gives the store's setting.
     pub fn agent(&self, store: Option<&Store>) -> anyhow::Result<Agent> {
         let env = |k: &str| std::env::var(k).ok();

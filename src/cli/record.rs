@@ -31,38 +31,6 @@ pub struct Acting<'a, A> {
     pub cwd: &'a Path,
 }
 
-/// The project folder `sluice setup` makes its store in: the folder given, else the one
-/// `--store` (or SLUICE_STORE) names, as a project folder or its `sluice-store` folder, else the
-/// working directory. A folder given beside a different `--store` flag is refused rather than
-/// one of them silently ignored; SLUICE_STORE set in the environment gives way to the folder.
-fn setup_folder(ctx: &Context<'_>, dir: Option<&Path>) -> anyhow::Result<PathBuf> {
-    let project_of = |p: &Path| {
-        if p.file_name().is_some_and(|n| n == sluice::store::STORE_DIR) {
-            p.parent()
-                .filter(|parent| !parent.as_os_str().is_empty())
-                .map_or_else(|| PathBuf::from("."), Path::to_path_buf)
-        } else {
-            p.to_path_buf()
-        }
-    };
-    let flag = ctx
-        .cli
-        .store
-        .as_deref()
-        .filter(|s| std::env::var_os("SLUICE_STORE").as_deref() != Some(s.as_os_str()));
-    match (dir, flag, ctx.cli.store.as_deref()) {
-        (Some(d), Some(s), _) if project_of(s) != d => Err(sluice::error::Error::usage(format!(
-            "two folders to set up a store in: {} and --store {}; give one of them",
-            d.display(),
-            s.display()
-        ))
-        .into()),
-        (Some(d), _, _) => Ok(d.to_path_buf()),
-        (None, _, Some(s)) => Ok(project_of(s)),
-        (None, _, None) => Ok(ctx.cwd.clone()),
-    }
-}
-
 pub fn setup(
     ctx: &Context<'_>,
     dir: Option<&Path>,
@@ -70,7 +38,7 @@ pub fn setup(
     object_bucket: Option<&str>,
     out: &mut impl Write,
 ) -> anyhow::Result<ExitCode> {
-    let project = setup_folder(ctx, dir)?;
+    let project = ctx.new_store_folder(dir, "DIR", || ctx.cwd.clone())?;
     let agent = ctx.agent(None)?;
     let at = sluice::store::location::Location {
         lineage: lineage_server.map(str::to_string),

@@ -83,8 +83,8 @@ pub fn borrow(
     as_json: bool,
     out: &mut impl Write,
 ) -> anyhow::Result<ExitCode> {
+    let project = ctx.new_store_folder(into, "--into", || ctx.cwd.clone())?;
     let shared = Store::open(from)?;
-    let project = into.map_or_else(|| ctx.cwd.clone(), Path::to_path_buf);
     let (local, m) = sluice::sharing::borrow(&shared, &project, datasets)?;
     if as_json {
         let record = MovedJson::new(
