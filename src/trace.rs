@@ -184,17 +184,23 @@ fn find_by_key(store: &Store, v: &Version, pairs: &[(String, String)]) -> Result
             })
         })
         .collect::<Result<_>>()?;
-    let mut found = Vec::new();
-    store.objects.each_row(v, |row, r| {
-        if cols
-            .iter()
-            .zip(pairs)
-            .all(|(&c, (_, want))| r.field(c) == want.as_bytes())
-        {
-            found.push(row);
+    let found = match rows_holding(store, v, &cols, pairs)? {
+        Some(found) => found,
+        None => {
+            let mut found = Vec::new();
+            store.objects.each_row(v, |row, r| {
+                if cols
+                    .iter()
+                    .zip(pairs)
+                    .all(|(&c, (_, want))| r.field(c) == want.as_bytes())
+                {
+                    found.push(row);
+                }
+                Ok(())
+            })?;
+            found
         }
-        Ok(())
-    })?;
+    };
     let what = pairs
         .iter()
         .map(|(c, x)| format!("{c}={x}"))
@@ -219,6 +225,122 @@ fn find_by_key(store: &Store, v: &Version, pairs: &[(String, String)]) -> Result
             if many.len() > 10 { ", ..." } else { "" }
         ))),
     }
+}
+
+/// Up to this many rows whose bytes hold the value sought are parsed one by one
+/// ([`rows_holding`]); past it every row is parsed instead, which is then no slower.
+const MAX_CANDIDATES: usize = 20_000;
+
+/// The rows of `v` whose columns `cols` hold the values of `pairs`, found without parsing every
+/// row: its bytes are searched for the longest value, and only the rows holding it somewhere
+/// are parsed and checked (a row whose field equals the value holds its bytes, quoted or not,
+/// as long as the value has no quote for the file to double). The object is re-hashed as it is
+/// searched, as a parse of every row would. `None` when the search cannot be relied on (a
+/// legacy encoding, whose bytes differ from the text; a value with a quote; only empty values)
+/// or would not be quicker (bytes not stored, too many rows holding the value): the caller
+/// then parses every row.
+fn rows_holding(
+    store: &Store,
+    v: &Version,
+    cols: &[usize],
+    pairs: &[(String, String)],
+) -> Result<Option<Vec<u64>>> {
+    let Some(needle) = pairs
+        .iter()
+        .map(|(_, want)| want.as_bytes())
+        .max_by_key(|want| want.len())
+        .filter(|want| !want.is_empty() && !want.contains(&b'"'))
+    else {
+        return Ok(None);
+    };
+    if !cuttable(v) || !store.bytes_stored(v)? {
+        return Ok(None);
+    }
+    let damaged = |e: std::io::Error| {
+        Error::from(ErrorKind::Inconsistent(format!(
+            "the row index of {} is damaged ({e}); run `sluice verify`",
+            v.label()
+        )))
+    };
+    let table = hash_of(&v.hash, v)?;
+    let starts =
+        rowindex::offsets(&store.objects.read_all(&hash_of(&v.row_index, v)?)?).map_err(damaged)?;
+    // Every row holding the needle, in order, once: an occurrence at byte `o` is in the last
+    // row starting at or before it (none: the header).
+    let mut held: Vec<u64> = Vec::new();
+    let note = |held: &mut Vec<u64>, o: u64| {
+        let r = starts.partition_point(|&s| s <= o) as u64;
+        if r > 0 && held.last() != Some(&(r - 1)) {
+            held.push(r - 1);
+        }
+    };
+    let finder = memchr::memmem::Finder::new(needle);
+    let (mut pieces, form) = store.objects.open_pieces(&table)?;
+    let mut hasher = blake3::Hasher::new();
+    // The last `needle.len() - 1` bytes read, for an occurrence across two pieces.
+    let keep = needle.len() - 1;
+    let (mut tail, mut across) = (Vec::with_capacity(2 * keep), Vec::with_capacity(2 * keep));
+    let mut at = 0u64;
+    while let Some(piece) = pieces
+        .next_piece()
+        .map_err(|e| Error::io(std::path::Path::new(&form.hex()), e))?
+    {
+        hasher.update(&piece);
+        if keep > 0 && !tail.is_empty() {
+            across.clear();
+            across.extend_from_slice(&tail);
+            across.extend_from_slice(&piece[..piece.len().min(keep)]);
+            let from = at - tail.len() as u64;
+            for i in finder.find_iter(&across) {
+                if i < tail.len() {
+                    note(&mut held, from + i as u64);
+                }
+            }
+        }
+        for i in finder.find_iter(&piece) {
+            note(&mut held, at + i as u64);
+        }
+        if keep > 0 {
+            tail.extend_from_slice(&piece[piece.len().saturating_sub(keep)..]);
+            tail.drain(..tail.len().saturating_sub(keep));
+        }
+        at += piece.len() as u64;
+        pieces.give_back(piece);
+        if held.len() > MAX_CANDIDATES {
+            return Ok(None);
+        }
+    }
+    let actual = crate::hash::Hash::from_bytes(*hasher.finalize().as_bytes());
+    if actual != form {
+        return Err(ErrorKind::ObjectCorrupt {
+            hash: form.hex(),
+            actual: actual.hex(),
+        }
+        .into());
+    }
+    let mut parser = crate::table::parse::Parser::new(v.dialect.delimiter_byte(), 0);
+    let mut found = Vec::new();
+    for r in held {
+        let from = starts[r as usize];
+        let to = starts.get(r as usize + 1).copied().unwrap_or(at);
+        let len = usize::try_from(to.saturating_sub(from)).map_err(|_| {
+            damaged(std::io::Error::other(format!(
+                "data row {} is too long",
+                r + 1
+            )))
+        })?;
+        let bytes = store.objects.read_range(&table, from, len)?;
+        parser.restart(0);
+        let fields = parse_one(&mut parser, &bytes, v)?;
+        let holds = cols
+            .iter()
+            .zip(pairs)
+            .all(|(&c, (_, want))| fields.get(c).is_some_and(|f| f == want));
+        if holds {
+            found.push(r);
+        }
+    }
+    Ok(Some(found))
 }
 
 /// Rows read so far, by version id and 0-based row.

@@ -315,3 +315,128 @@ fn a_raw_line_in_a_legacy_encoding_is_shown_decoded() {
     assert_eq!(t["end"]["raw_line"], "1; José ");
     assert_eq!(t["end"]["line"], 2);
 }
+
+/// A row picked by key is found by searching the version's bytes for the value and parsing only
+/// the rows that hold it; when that cannot be relied on (a value with a quote) or would not be
+/// quicker (thousands of rows holding it), every row is parsed. Either way the rows found must
+/// be those whose field equals the value, which the `csv` crate (the reference reader here,
+/// RFC 4180) tells from the same file: values that are parts of other values, a value in the
+/// header or in another column only, quoted fields holding the delimiter, a line break or a
+/// doubled quote, CRLF line endings, duplicates, and a value across the 256 KiB pieces the
+/// object is read in.
+#[test]
+fn rows_picked_by_key_are_the_rows_whose_field_equals_the_value() {
+    let mut text = String::from("id,customer,note\r\n");
+    let mut x: u64 = 0x2545_F491_4F6C_DD1D;
+    for i in 0..30_000u64 {
+        // xorshift64 (Marsaglia 2003), for notes that differ from row to row.
+        x ^= x << 13;
+        x ^= x >> 7;
+        x ^= x << 17;
+        let note = match i % 7 {
+            0 => format!("\"see {}, twice\"", x % 1000),
+            1 => format!("\"line\r\nbreak {}\"", x % 97),
+            2 => format!("\"a \"\"quoted\"\" {}\"", x % 50),
+            3 => format!("ref {}", 1000 + i / 3),
+            _ => format!("n{}", x % 100_000),
+        };
+        let id = if i == 12_345 { 777 } else { 1000 + i };
+        text.push_str(&format!("{id},Customer {},{note}\r\n", i % 250));
+        // An id across the first boundary between pieces (tables are stored in frames of
+        // 256 KiB, and read a frame at a time): a filler row, then id 4242421 from 3 bytes
+        // before the boundary.
+        const PIECE: usize = 256 << 10;
+        if text.len() > PIECE - 400 && text.len() < PIECE - 100 {
+            let start = "8,Customer x,".len() + 2;
+            let pad = PIECE - 3 - text.len() - start;
+            text.push_str(&format!("8,Customer x,{}\r\n", "p".repeat(pad)));
+            assert_eq!(text.len(), PIECE - 3);
+            text.push_str("4242421,Customer y,boundary\r\n");
+        }
+    }
+    text.push_str("id,Customer 1,header again\r\n");
+    let s = Sandbox::with_store();
+    s.file("orders.csv", &text);
+    s.ok(&["receive", "orders.csv", "--as", "orders"]);
+
+    check_keys(&s, text.as_bytes(), PROBES);
+    // After an erasure order the version's bytes are its erased form (and so is its row index):
+    // the rows found are those of the bytes `retrieve` gives now.
+    s.ok(&[
+        "erase",
+        "orders:v1",
+        "--key",
+        "id=1005",
+        "--request",
+        "R-1",
+        "--carry-out",
+    ]);
+    let erased = s.run(&["retrieve", "orders:v1"]).raw_stdout;
+    assert_ne!(erased, text.as_bytes());
+    check_keys(
+        &s,
+        &erased,
+        &[(0, "id", "1005"), (0, "id", "1006"), (0, "id", "4242421")],
+    );
+}
+
+/// The keys [`rows_picked_by_key_are_the_rows_whose_field_equals_the_value`] looks up: column,
+/// name, value.
+const PROBES: &[(usize, &str, &str)] = &[
+    (0, "id", "1000"), // also the start of 1000..1009 and inside notes
+    (0, "id", "1001"),
+    (0, "id", "777"),     // moved out of sequence; "777" is in many notes
+    (0, "id", "12345"),   // in no row's id
+    (0, "id", "id"),      // the header's own name, and a data row's
+    (0, "id", "30999"),   // the last row
+    (0, "id", "4242421"), // across two pieces
+    (1, "customer", "Customer 7"),
+    (2, "note", "ref 1000"),
+    (2, "note", "line\r\nbreak 5"),
+    (2, "note", "a \"quoted\" 3"), // a quote: every row parsed
+    (2, "note", "n1"),
+    (1, "customer", "Customer"), // in every row, as a part: every row parsed
+];
+
+/// `sluice trace orders:v1 --key` of each probe finds the rows the `csv` crate finds in `bytes`.
+fn check_keys(s: &Sandbox, bytes: &[u8], probes: &[(usize, &str, &str)]) {
+    let mut reference = csv::ReaderBuilder::new().from_reader(bytes);
+    let records: Vec<csv::StringRecord> = reference.records().map(|r| r.unwrap()).collect();
+    let expected = |col: usize, value: &str| -> Vec<usize> {
+        (0..records.len())
+            .filter(|&i| &records[i][col] == value)
+            .map(|i| i + 1)
+            .collect()
+    };
+    for &(col, name, value) in probes {
+        let want = expected(col, value);
+        let key = format!("{name}={value}");
+        let args = [
+            "trace", "orders", "--key", &key, "--column", "customer", "--json",
+        ];
+        let r = s.run(&args);
+        match want.as_slice() {
+            [one] => {
+                assert_eq!(r.code, 0, "{key}: {}", r.stderr);
+                let t: Value = serde_json::from_str(&r.stdout).unwrap();
+                assert_eq!(t["row"], *one as u64, "{key}");
+            }
+            [] => {
+                assert_eq!(r.code, 2, "{key}: {}", r.stdout);
+                assert_contains(&r.stderr, &format!("no row of orders:v1 has {key}"));
+            }
+            many => {
+                assert_eq!(r.code, 2, "{key}: {}", r.stdout);
+                let rows: Vec<String> = many.iter().take(10).map(|r| r.to_string()).collect();
+                assert_contains(
+                    &r.stderr,
+                    &format!(
+                        "{} rows of orders:v1 have {key} (data rows {}",
+                        many.len(),
+                        rows.join(", ")
+                    ),
+                );
+            }
+        }
+    }
+}
