@@ -3284,6 +3284,14 @@ fn trace_size(ctx: &Ctx, n: u64) -> Result<(Value, Vec<f64>, bool)> {
     for r in &explain_rows {
         line(format!("explain summary:v1 --row 1 --column {}", r.tool), r);
     }
+    let by_key = trace_by_key(ctx, &store, &scratch.0, picks.last().copied().unwrap_or(1))?;
+    match &by_key {
+        Ok((key, r)) => line(
+            format!("trace --key {key} --column {}", TRACE_COLUMNS[0]),
+            r,
+        ),
+        Err(why) => println!("  trace by key: not timed ({why})"),
+    }
     if let Some(worst) = trace_rows
         .iter()
         .chain(&explain_rows)
@@ -3369,11 +3377,75 @@ fn trace_size(ctx: &Ctx, n: u64) -> Result<(Value, Vec<f64>, bool)> {
         "explain_group_rows": group_rows,
         "explain": explain_json,
         "explain_goal_judged": judged,
+        "trace_by_key": by_key.as_ref().ok().map(|(key, r)| {
+            let mut v = r.json(bytes);
+            v["key"] = json!(key);
+            v
+        }),
         "background_load_cores": background,
         "goals": goals.iter().map(Goal::json).collect::<Vec<_>>(),
         "all_goals_met": pass,
     });
     Ok((value, median_ms, pass))
+}
+
+/// A trail picked by key rather than by row (for information; the goal is judged by row): the
+/// order id of data row `row` of the latest version, found again by `trace --key`, which
+/// searches the version's bytes for it. `Err` with the reason when that id is not one row's.
+fn trace_by_key(
+    ctx: &Ctx,
+    store: &Path,
+    scratch: &Path,
+    row: u64,
+) -> Result<std::result::Result<(String, Row), String>> {
+    let row_text = row.to_string();
+    let id: Value = serde_json::from_str(&sluice_quiet(
+        ctx,
+        store,
+        &[
+            "trace", "orders", "--row", &row_text, "--column", "order_id", "--json",
+        ]
+        .map(std::ffi::OsStr::new),
+    )?)?;
+    let key = format!("order_id={}", id["value"].as_str().unwrap_or_default());
+    let args = [
+        "trace",
+        "orders",
+        "--key",
+        &key,
+        "--column",
+        TRACE_COLUMNS[0],
+    ];
+    let probe = Command::new(&ctx.sluice)
+        .arg("--store")
+        .arg(store)
+        .args(args)
+        .envs(IDENTITY)
+        .output()
+        .context("running sluice trace --key")?;
+    if !probe.status.success() {
+        return Ok(Err(String::from_utf8_lossy(&probe.stderr)
+            .trim()
+            .to_string()));
+    }
+    let samples = repeat(TRACE_RUNS.max(ctx.runs), |i| {
+        let mut c = Command::new(&ctx.sluice);
+        c.arg("--store").arg(store).args(args).envs(IDENTITY);
+        let (s, _) = run_measured(
+            &mut c,
+            &scratch.join(format!("log-trace-key-{i}")),
+            "sluice trace --key",
+        )?;
+        Ok(s)
+    })?;
+    Ok(Ok((
+        key,
+        Row {
+            tool: "by key",
+            key: "by_key",
+            samples,
+        },
+    )))
 }
 
 // ---------------------------------------------------------------------------------------------
