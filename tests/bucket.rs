@@ -239,11 +239,9 @@ fn version_hashes(s: &Sandbox, who: &str) -> Vec<String> {
 /// takes several compressed frames.
 fn orders_csv(rows: u64) -> String {
     let mut s = String::from("order_id,shop,technician,parts_cost,note\n");
-    let mut x: u64 = 0x9E37_79B9_7F4A_7C15;
+    let mut rng = Xorshift64(0x9E37_79B9_7F4A_7C15);
     for i in 0..rows {
-        x ^= x << 13;
-        x ^= x >> 7;
-        x ^= x << 17;
+        let x = rng.next();
         let shop = ["Quillby", "Oxwater", "Fennmarsh"][(x % 3) as usize];
         s.push_str(&format!(
             "WO-{i:07},{shop},T{:03},{}.{:02},chain {:016x}\n",
@@ -1194,14 +1192,11 @@ fn reclaim_removes_the_unreferenced_objects_of_a_bucket() {
 /// about half.
 fn incompressible_csv(rows: u64) -> String {
     let mut s = String::from("reading_id,signature\n");
-    let mut x: u64 = 0x2545_F491_4F6C_DD1D;
+    let mut rng = Xorshift64(0x2545_F491_4F6C_DD1D);
     for i in 0..rows {
         s.push_str(&format!("S-{i:07},"));
         for _ in 0..8 {
-            x ^= x << 13;
-            x ^= x >> 7;
-            x ^= x << 17;
-            s.push_str(&format!("{x:016x}"));
+            s.push_str(&format!("{:016x}", rng.next()));
         }
         s.push('\n');
     }

@@ -17,7 +17,7 @@ use std::process::Command;
 use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::Arc;
 
-use common::{assert_contains, Sandbox};
+use common::{assert_contains, Sandbox, Xorshift64};
 use sluice::hash::Hash;
 use sluice::intake::{self, IngestOptions, IngestOutcome};
 use sluice::model::Agent;
@@ -408,6 +408,16 @@ fn disk_full_for_every_object_leaves_the_store_unchanged() {
 
 // ---- a real full file system -------------------------------------------------------------
 
+/// The tests that fill a real file system mount a small tmpfs (of `size`), which needs root.
+fn must_be_root(size: &str) {
+    // SAFETY: geteuid has no preconditions and cannot fail.
+    let root = unsafe { libc::geteuid() == 0 };
+    assert!(
+        root,
+        "this test mounts a {size} tmpfs to fill it, which needs root; run the test suite as root"
+    );
+}
+
 /// A tmpfs mounted for the duration of a test; unmounted when dropped, even if the test fails.
 struct TmpfsMount {
     at: PathBuf,
@@ -447,12 +457,7 @@ impl Drop for TmpfsMount {
 
 #[test]
 fn disk_full_on_a_small_tmpfs_reports_no_space_left_and_leaves_the_store_unchanged() {
-    // SAFETY: geteuid has no preconditions and cannot fail.
-    let root = unsafe { libc::geteuid() == 0 };
-    assert!(
-        root,
-        "this test mounts a 2 MiB tmpfs to fill it, which needs root; run the test suite as root"
-    );
+    must_be_root("2 MiB");
     // The 16 MB export lives outside the small file system; the store lives on it. Objects
     // are stored compressed, so the export holds rows with random serial numbers (which do not
     // compress below half) and is large enough that even its compressed copy does not fit.
@@ -487,14 +492,11 @@ fn disk_full_on_a_small_tmpfs_reports_no_space_left_and_leaves_the_store_unchang
 /// compressor shrinks below half, so that the stored objects keep a predictable size.
 fn padded_orders(rows: usize) -> String {
     let mut t = String::from("order_id,shop,notes,serial\n");
-    let mut x: u64 = 0x9E37_79B9_7F4A_7C15;
+    let mut rng = Xorshift64(0x9E37_79B9_7F4A_7C15);
     for i in 0..rows {
         let mut serial = String::new();
         for _ in 0..3 {
-            x ^= x << 13;
-            x ^= x >> 7;
-            x ^= x << 17;
-            serial.push_str(&format!("{x:016x}"));
+            serial.push_str(&format!("{:016x}", rng.next()));
         }
         t.push_str(&format!(
             "WO-{i:06},  Oxwater Wheelworks  ,  brake cable replaced and gears indexed {i}  ,{serial}\n"
@@ -505,12 +507,7 @@ fn padded_orders(rows: usize) -> String {
 
 #[test]
 fn disk_full_during_apply_and_run_reports_no_space_left_and_leaves_the_store_unchanged() {
-    // SAFETY: geteuid has no preconditions and cannot fail.
-    let root = unsafe { libc::geteuid() == 0 };
-    assert!(
-        root,
-        "this test mounts a 2 MiB tmpfs to fill it, which needs root; run the test suite as root"
-    );
+    must_be_root("2 MiB");
     let exports = tempfile::tempdir().unwrap();
     // About 4.1 MB, stored compressed in about 1.2 MB with its row index: its copy fits on the
     // file system, a cleaned copy as well does not.
@@ -568,12 +565,7 @@ fn disk_full_during_apply_and_run_reports_no_space_left_and_leaves_the_store_unc
 /// under any name.
 #[test]
 fn retrieve_to_a_full_disk_reports_it_and_leaves_no_file() {
-    // SAFETY: geteuid has no preconditions and cannot fail.
-    let root = unsafe { libc::geteuid() == 0 };
-    assert!(
-        root,
-        "this test mounts a 12 MiB tmpfs to fill it, which needs root; run the test suite as root"
-    );
+    must_be_root("12 MiB");
     let text = padded_orders(120_000);
     assert!(text.len() > 15 << 20);
     let s = Sandbox::with_store();

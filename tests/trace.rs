@@ -4,7 +4,7 @@
 
 mod common;
 
-use common::{assert_contains, Sandbox};
+use common::{assert_contains, Sandbox, Xorshift64};
 use serde_json::Value;
 
 /// A store with orders whose notes hold line breaks (so lines and rows differ), cleaned by
@@ -327,12 +327,9 @@ fn a_raw_line_in_a_legacy_encoding_is_shown_decoded() {
 #[test]
 fn rows_picked_by_key_are_the_rows_whose_field_equals_the_value() {
     let mut text = String::from("id,customer,note\r\n");
-    let mut x: u64 = 0x2545_F491_4F6C_DD1D;
+    let mut rng = Xorshift64(0x2545_F491_4F6C_DD1D);
     for i in 0..30_000u64 {
-        // xorshift64 (Marsaglia 2003), for notes that differ from row to row.
-        x ^= x << 13;
-        x ^= x >> 7;
-        x ^= x << 17;
+        let x = rng.next(); // for notes that differ from row to row
         let note = match i % 7 {
             0 => format!("\"see {}, twice\"", x % 1000),
             1 => format!("\"line\r\nbreak {}\"", x % 97),

@@ -13,6 +13,21 @@ pub struct Sandbox {
     pub dir: tempfile::TempDir,
 }
 
+/// A xorshift64 generator (Marsaglia 2003, "Xorshift RNGs", shifts 13, 7, 17): deterministic
+/// values that differ from row to row and do not compress, for generated test files.
+pub struct Xorshift64(pub u64);
+
+impl Xorshift64 {
+    pub fn next(&mut self) -> u64 {
+        let mut x = self.0;
+        x ^= x << 13;
+        x ^= x >> 7;
+        x ^= x << 17;
+        self.0 = x;
+        x
+    }
+}
+
 /// Who the tests act as: `SLUICE_PERSON` and `SLUICE_EMAIL`, and how it is recorded.
 pub const PERSON: &str = "Test Runner";
 pub const EMAIL: &str = "runner@example.org";
