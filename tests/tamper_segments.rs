@@ -95,6 +95,39 @@ fn a_flipped_byte_inside_a_frame_is_named_by_segment_and_object() {
     assert_ne!(s.run(&["retrieve", "orders:v1"]).code, 0);
 }
 
+/// An object of many frames is checked with its frames decoded on threads of their own: a
+/// byte flipped in a middle frame is still named, by object and frame.
+#[test]
+fn a_flipped_byte_in_a_middle_frame_of_a_large_object_is_named() {
+    let s = Sandbox::with_store();
+    let mut rng = Xorshift64(0x9E37_79B9_7F4A_7C15);
+    let mut text = String::from("order_id,serial\n");
+    for i in 0..40_000 {
+        text.push_str(&format!("WO-{i},{:016x}\n", rng.next()));
+    }
+    s.file("big.csv", &text);
+    s.ok(&["receive", "big.csv", "--as", "big"]);
+    let h = hash_of(&s, "big:v1");
+    let (seg, e) = FsBackend::new(&store_dir(&s)).locate(&h).unwrap();
+    let table =
+        sluice::store::segments::read_seek_table(&std::fs::File::open(&seg).unwrap(), &e).unwrap();
+    assert!(table.raw.len() >= 4, "{} frames", table.raw.len());
+    let mut bytes = std::fs::read(&seg).unwrap();
+    // Inside frame 2's compressed block, past its header (RFC 8878, section 3.1.1).
+    let at = (table.starts[2] + 20) as usize;
+    bytes[at] ^= 0x20;
+    std::fs::write(&seg, &bytes).unwrap();
+
+    let ps = problems(&s);
+    let named = find(&ps, "segment_object");
+    assert_eq!(named.len(), 1, "{ps:?}");
+    assert_eq!(named[0]["subject"], h.hex());
+    assert_contains(named[0]["detail"].as_str().unwrap(), "frame 2");
+    assert!(find(&ps, "object_damaged")
+        .iter()
+        .any(|p| p["subject"] == h.hex()));
+}
+
 #[test]
 fn a_truncated_segment_is_named() {
     let s = store();
