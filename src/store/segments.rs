@@ -114,6 +114,8 @@ pub struct SegmentWriter {
     frames: Vec<(u32, u32)>,
     pending: Vec<u8>,
     raw: u64,
+    /// The last frame compressed, its buffer reused for the next.
+    frame: Vec<u8>,
 }
 
 fn bad(msg: impl Into<String>) -> io::Error {
@@ -155,6 +157,7 @@ impl SegmentWriter {
             frames: Vec::new(),
             pending: Vec::with_capacity(frame_size as usize),
             raw: 0,
+            frame: Vec::new(),
         })
     }
 
@@ -174,20 +177,45 @@ impl SegmentWriter {
         if self.pending.is_empty() {
             return Ok(());
         }
-        let frame = self.compressor.compress(&self.pending)?;
-        let sizes = (
-            u32::try_from(frame.len()).map_err(|_| bad("a compressed frame over 4 GiB"))?,
-            self.pending.len() as u32,
-        );
-        self.put(&frame, tick)?;
-        self.frames.push(sizes);
+        let pending = std::mem::take(&mut self.pending);
+        let done = self.compress_frame(&pending, tick);
+        self.pending = pending;
         self.pending.clear();
-        Ok(())
+        done
     }
 
-    /// Adds uncompressed bytes of the current object.
+    /// Compresses `raw` as one frame into the reused output buffer and writes it.
+    fn compress_frame(&mut self, raw: &[u8], tick: Tick) -> io::Result<()> {
+        let mut frame = std::mem::take(&mut self.frame);
+        frame.clear();
+        frame.reserve(zstd::zstd_safe::compress_bound(raw.len()));
+        let done = self
+            .compressor
+            .compress_to_buffer(raw, &mut frame)
+            .and_then(|_| {
+                let sizes = (
+                    u32::try_from(frame.len()).map_err(|_| bad("a compressed frame over 4 GiB"))?,
+                    raw.len() as u32,
+                );
+                self.put(&frame, tick)?;
+                self.frames.push(sizes);
+                Ok(())
+            });
+        self.frame = frame;
+        done
+    }
+
+    /// Adds uncompressed bytes of the current object. A whole frame's worth of `data` met at a
+    /// frame boundary is compressed where it lies, without a copy.
     pub fn write(&mut self, mut data: &[u8], tick: Tick) -> io::Result<()> {
+        let whole = self.frame_size as usize;
         while !data.is_empty() {
+            if self.pending.is_empty() && data.len() >= whole {
+                self.compress_frame(&data[..whole], tick)?;
+                self.raw += whole as u64;
+                data = &data[whole..];
+                continue;
+            }
             let room = self.frame_size as usize - self.pending.len();
             let take = room.min(data.len());
             self.pending.extend_from_slice(&data[..take]);
@@ -792,6 +820,41 @@ mod tests {
 
     fn no_tick(_: &str) -> io::Result<()> {
         Ok(())
+    }
+
+    /// However an object's bytes are handed to the writer (a byte at a time, in pieces that
+    /// cross frame boundaries, whole frames at a boundary, all at once), the segment is the
+    /// same: the frames are cut at the same places and compressed alike.
+    #[test]
+    fn a_segment_does_not_depend_on_how_its_bytes_were_handed_over() {
+        let dir = tempfile::tempdir().unwrap();
+        let data: Vec<u8> = (0..20_000u32)
+            .flat_map(|i| (i * 7 % 253).to_le_bytes())
+            .collect();
+        let hash = Hash::from_bytes(*blake3::hash(&data).as_bytes());
+        let written = |name: &str, cuts: &[usize]| -> Vec<u8> {
+            let path = dir.path().join(name);
+            let mut w = SegmentWriter::create(&path, 1, 1000, &no_tick).unwrap();
+            let (mut rest, mut k) = (&data[..], 0);
+            while !rest.is_empty() {
+                let n = cuts[k % cuts.len()].min(rest.len());
+                w.write(&rest[..n], &no_tick).unwrap();
+                rest = &rest[n..];
+                k += 1;
+            }
+            w.end_object(&hash, &no_tick).unwrap();
+            w.finish(&no_tick).unwrap();
+            fs::read(&path).unwrap()
+        };
+        let all = written("all.seg", &[data.len()]);
+        for (name, cuts) in [
+            ("bytes.seg", &[1][..]),
+            ("odd.seg", &[7, 993, 1000, 3005]),
+            ("frames.seg", &[1000]),
+            ("mixed.seg", &[400, 2600, 1000, 1]),
+        ] {
+            assert!(written(name, cuts) == all, "{name}");
+        }
     }
 
     #[test]
