@@ -448,6 +448,12 @@ pub fn write_file_atomically(
         return Err(e);
     }
     std::fs::rename(&tmp, path).with_context(|| format!("cannot write {}", path.display()))?;
+    // The new name is synced too, as the store syncs its own folders after publishing. Best
+    // effort: the file is whole and in place either way, and some file systems refuse to open
+    // or sync a folder.
+    if let Ok(folder) = std::fs::File::open(dir) {
+        let _ = folder.sync_all();
+    }
     Ok(())
 }
 
