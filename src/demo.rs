@@ -597,8 +597,11 @@ pub fn run_at(
             .to_string(),
         plan: PathBuf::from(PLAN_FILE),
         done: report.done,
-        next_commands: vec![
-            format!("cd {}", dir.display()),
+        // No `cd .` when the demo was made where the user stands.
+        next_commands: (dir != Path::new("."))
+            .then(|| format!("cd {}", dir.display()))
+            .into_iter()
+            .chain([
             "sluice timeline --dataset all_orders".to_string(),
             "sluice about all_orders".to_string(),
             "sluice retrieve q3_by_shop".to_string(),
@@ -607,7 +610,8 @@ pub fn run_at(
             "sluice retrieve quillby_orders:v1 | head -5".to_string(),
             "sluice export q3_by_shop --format plan".to_string(),
             "sluice verify".to_string(),
-        ],
+            ])
+            .collect(),
     })
 }
 
