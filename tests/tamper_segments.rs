@@ -74,24 +74,11 @@ fn a_flipped_byte_inside_a_frame_is_named_by_segment_and_object() {
     let s = store();
     let h = hash_of(&s, "orders:v1");
     let (seg, e) = FsBackend::new(&store_dir(&s)).locate(&h).unwrap();
-    let mut bytes = std::fs::read(&seg).unwrap();
     // Past the frame header (4-byte magic, descriptor, window, content size), inside the
     // compressed block (RFC 8878, section 3.1.1).
-    let at = (e.offset + 9) as usize;
-    bytes[at] ^= 0x20;
-    std::fs::write(&seg, &bytes).unwrap();
-
-    let ps = problems(&s);
-    let named = find(&ps, "segment_object");
-    assert_eq!(named.len(), 1, "{ps:?}");
-    assert_eq!(named[0]["subject"], h.hex());
-    let detail = named[0]["detail"].as_str().unwrap();
-    assert_contains(detail, &seg.file_name().unwrap().to_string_lossy());
-    assert_contains(detail, "frame 0");
-    // The object check names the same object; `cat` refuses rather than give altered bytes.
-    assert!(find(&ps, "object_damaged")
-        .iter()
-        .any(|p| p["subject"] == h.hex()));
+    let detail = flip_and_verify(&s, &seg, e.offset + 9, &h, 0);
+    assert_contains(&detail, &seg.file_name().unwrap().to_string_lossy());
+    // `retrieve` refuses rather than give altered bytes.
     assert_ne!(s.run(&["retrieve", "orders:v1"]).code, 0);
 }
 
@@ -112,20 +99,26 @@ fn a_flipped_byte_in_a_middle_frame_of_a_large_object_is_named() {
     let table =
         sluice::store::segments::read_seek_table(&std::fs::File::open(&seg).unwrap(), &e).unwrap();
     assert!(table.raw.len() >= 4, "{} frames", table.raw.len());
-    let mut bytes = std::fs::read(&seg).unwrap();
     // Inside frame 2's compressed block, past its header (RFC 8878, section 3.1.1).
-    let at = (table.starts[2] + 20) as usize;
-    bytes[at] ^= 0x20;
-    std::fs::write(&seg, &bytes).unwrap();
+    flip_and_verify(&s, &seg, table.starts[2] + 20, &h, 2);
+}
 
-    let ps = problems(&s);
+/// Flips one bit of the byte at `at` in `seg`, then checks that `verify` names object `h` once
+/// as a damaged segment object, at `frame`, and as a damaged object; returns the first detail.
+fn flip_and_verify(s: &Sandbox, seg: &Path, at: u64, h: &Hash, frame: usize) -> String {
+    let mut bytes = std::fs::read(seg).unwrap();
+    bytes[at as usize] ^= 0x20;
+    std::fs::write(seg, &bytes).unwrap();
+    let ps = problems(s);
     let named = find(&ps, "segment_object");
     assert_eq!(named.len(), 1, "{ps:?}");
     assert_eq!(named[0]["subject"], h.hex());
-    assert_contains(named[0]["detail"].as_str().unwrap(), "frame 2");
+    let detail = named[0]["detail"].as_str().unwrap().to_string();
+    assert_contains(&detail, &format!("frame {frame}"));
     assert!(find(&ps, "object_damaged")
         .iter()
         .any(|p| p["subject"] == h.hex()));
+    detail
 }
 
 #[test]
