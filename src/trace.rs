@@ -256,15 +256,8 @@ fn rows_holding(
     if !cuttable(v) || !store.bytes_stored(v)? {
         return Ok(None);
     }
-    let damaged = |e: std::io::Error| {
-        Error::from(ErrorKind::Inconsistent(format!(
-            "the row index of {} is damaged ({e}); run `sluice verify`",
-            v.label()
-        )))
-    };
     let table = hash_of(&v.hash, v)?;
-    let starts =
-        rowindex::offsets(&store.objects.read_all(&hash_of(&v.row_index, v)?)?).map_err(damaged)?;
+    let starts = crate::diff::read::offsets(&store.objects, v)?.1;
     // Every row holding the needle, in order, once: an occurrence at byte `o` is in the last
     // row starting at or before it (none: the header).
     let mut held: Vec<u64> = Vec::new();
@@ -275,17 +268,11 @@ fn rows_holding(
         }
     };
     let finder = memchr::memmem::Finder::new(needle);
-    let (mut pieces, form) = store.objects.open_pieces(&table)?;
-    let mut hasher = blake3::Hasher::new();
     // The last `needle.len() - 1` bytes read, for an occurrence across two pieces.
     let keep = needle.len() - 1;
     let (mut tail, mut across) = (Vec::with_capacity(2 * keep), Vec::with_capacity(2 * keep));
     let mut at = 0u64;
-    while let Some(piece) = pieces
-        .next_piece()
-        .map_err(|e| Error::io(std::path::Path::new(&form.hex()), e))?
-    {
-        hasher.update(&piece);
+    let searched = store.objects.each_piece(&table, |piece| {
         if keep > 0 && !tail.is_empty() {
             across.clear();
             across.extend_from_slice(&tail);
@@ -297,7 +284,7 @@ fn rows_holding(
                 }
             }
         }
-        for i in finder.find_iter(&piece) {
+        for i in finder.find_iter(piece) {
             note(&mut held, at + i as u64);
         }
         if keep > 0 {
@@ -305,28 +292,25 @@ fn rows_holding(
             tail.drain(..tail.len().saturating_sub(keep));
         }
         at += piece.len() as u64;
-        pieces.give_back(piece);
-        if held.len() > MAX_CANDIDATES {
-            return Ok(None);
-        }
-    }
-    let actual = crate::hash::Hash::from_bytes(*hasher.finalize().as_bytes());
-    if actual != form {
-        return Err(ErrorKind::ObjectCorrupt {
-            hash: form.hex(),
-            actual: actual.hex(),
-        }
-        .into());
-    }
+        Ok(if held.len() > MAX_CANDIDATES {
+            std::ops::ControlFlow::Break(())
+        } else {
+            std::ops::ControlFlow::Continue(())
+        })
+    })?;
+    let Some(total) = searched else {
+        return Ok(None);
+    };
     let mut parser = crate::table::parse::Parser::new(v.dialect.delimiter_byte(), 0);
     let mut found = Vec::new();
     for r in held {
         let from = starts[r as usize];
-        let to = starts.get(r as usize + 1).copied().unwrap_or(at);
+        let to = starts.get(r as usize + 1).copied().unwrap_or(total);
         let len = usize::try_from(to.saturating_sub(from)).map_err(|_| {
-            damaged(std::io::Error::other(format!(
-                "data row {} is too long",
-                r + 1
+            Error::from(ErrorKind::Inconsistent(format!(
+                "data row {} of {} is longer than this machine can hold",
+                r + 1,
+                v.label()
             )))
         })?;
         let bytes = store.objects.read_range(&table, from, len)?;

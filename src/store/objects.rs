@@ -12,6 +12,7 @@
 use std::collections::{HashMap, HashSet};
 use std::fs::{self, File, OpenOptions};
 use std::io::{self, Read, Write};
+use std::ops::ControlFlow;
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::{Arc, Mutex};
@@ -1340,32 +1341,50 @@ impl Objects {
     /// completes (the object may be larger than memory), so on a mismatch the caller gets an
     /// error after the damaged bytes; `retrieve -o FILE` writes to a temporary file first.
     pub fn copy_to(&self, hash: &Hash, out: &mut dyn Write, out_name: &Path) -> Result<u64> {
-        // Piece by piece as decoded, each piece going back to be decoded into again: the bytes
-        // are hashed and written from where they were decoded, never copied to a buffer first.
+        let copied = self.each_piece(hash, |piece| {
+            out.write_all(piece)
+                .map_err(|e| crate::Error::io(out_name, e))?;
+            Ok(ControlFlow::Continue(()))
+        })?;
+        // A copy never stops early.
+        Ok(copied.unwrap_or_default())
+    }
+
+    /// Calls `f` with object `hash`'s bytes (its erased form's, if any) piece by piece as they
+    /// are decoded, never copied to a buffer first, each piece then going back to be decoded
+    /// into again; the bytes are re-hashed on the way, and a mismatch is an error after the
+    /// last piece. Returns how many bytes there were, or `None` when `f` stopped the read
+    /// early (`ControlFlow::Break`; the hash is then not checked).
+    pub fn each_piece(
+        &self,
+        hash: &Hash,
+        mut f: impl FnMut(&[u8]) -> Result<ControlFlow<()>>,
+    ) -> Result<Option<u64>> {
         let (mut pieces, hash) = self.open_pieces(hash)?;
-        let hash = &hash;
         let mut hasher = blake3::Hasher::new();
-        let path = self.find(hash)?.describe(hash);
+        let path = self.find(&hash)?.describe(&hash);
         let mut n_bytes = 0u64;
         while let Some(piece) = pieces
             .next_piece()
             .map_err(|e| crate::Error::io(&path, e))?
         {
             hasher.update(&piece);
-            out.write_all(&piece)
-                .map_err(|e| crate::Error::io(out_name, e))?;
+            let flow = f(&piece)?;
             n_bytes += piece.len() as u64;
             pieces.give_back(piece);
+            if flow.is_break() {
+                return Ok(None);
+            }
         }
         let actual = Hash::from_bytes(*hasher.finalize().as_bytes());
-        if actual != *hash {
+        if actual != hash {
             return Err(ErrorKind::ObjectCorrupt {
                 hash: hash.hex(),
                 actual: actual.hex(),
             }
             .into());
         }
-        Ok(n_bytes)
+        Ok(Some(n_bytes))
     }
 
     /// Reads a whole object into memory, checking its hash. For small objects only.
